@@ -1,0 +1,349 @@
+"""The operations of onnxcal as plain functions over paths.
+
+Each function validates its inputs and output paths before doing any work,
+calls the stage modules, writes its outputs atomically and returns a frozen
+dataclass. The command line (``cli``) is a thin layer over these functions;
+they are also the Python API (``import onnxcal``).
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from . import capture as _capture
+from . import fit as _fit
+from . import graph, verify as _verify
+from ._files import check_output_path, sha256_file
+from .capture import Capture, ProgressFn
+from .data import Dataset, load_npz
+from .errors import OnnxcalError
+from .fit import FitSummary
+from .graph import ModelInfo, Record
+from .verify import VerifyResult
+
+
+@dataclass(frozen=True)
+class PatchResult:
+    """A written patched model and its calibration record."""
+
+    path: str
+    record: Record
+
+
+@dataclass(frozen=True)
+class CalibrateResult:
+    """Everything ``calibrate`` did: the fit, the patched model and its verification."""
+
+    summary: FitSummary
+    patch: PatchResult | None
+    verification: VerifyResult
+
+
+def inspect(model_path: str | os.PathLike) -> ModelInfo:
+    """Describe a model: inputs, outputs, opset, class-score output, record."""
+    model = graph.load_model(model_path)
+    return graph.describe(model, model_path, sha256_file(model_path))
+
+
+def _require_finite(logits: np.ndarray, source: str) -> None:
+    rows = _capture.nonfinite_rows(logits)
+    if rows.size:
+        first = ", ".join(str(int(i)) for i in rows[:5])
+        raise OnnxcalError(
+            f"the logits in '{source}' contain NaN or Inf in {rows.size} of {len(logits)} "
+            f"rows (first rows: {first})",
+            "check the model and the inputs of those rows",
+        )
+
+
+def _load_data(data_path: str | os.PathLike, require_labels: bool = True) -> Dataset:
+    return load_npz(data_path, require_labels=require_labels)
+
+
+def capture(
+    model_path: str | os.PathLike,
+    data_path: str | os.PathLike,
+    *,
+    out: str | os.PathLike | None = None,
+    output: str | None = None,
+    batch_size: int = _capture.DEFAULT_BATCH,
+    force: bool = False,
+    progress: ProgressFn | None = None,
+) -> Capture:
+    """Run the model over a labelled ``.npz`` set; return (and write) the logits.
+
+    Parameters
+    ----------
+    model_path : path
+        The ONNX model.
+    data_path : path
+        ``.npz`` with one array per model input and ``labels``.
+    out : path, optional
+        Where to write the capture file.
+    output : str, optional
+        The class-score output (the likeliest float output by default).
+    batch_size : int, default 64
+    force : bool
+        Replace an existing ``out``.
+    progress : callable, optional
+        ``progress(description, done, total)``.
+    """
+    if out is not None:
+        check_output_path(out, [model_path, data_path], force=force)
+    _check_batch_size(batch_size)
+    model = graph.load_model(model_path)
+    cap = _capture.capture(
+        model,
+        _load_data(data_path),
+        model_path=model_path,
+        model_sha256=sha256_file(model_path),
+        output=output,
+        batch_size=batch_size,
+        progress=progress,
+    )
+    if out is not None:
+        _capture.save_capture(out, cap)
+    return cap
+
+
+def _check_batch_size(batch_size: int) -> None:
+    if batch_size < 1:
+        raise OnnxcalError(f"--batch-size {batch_size} is not a positive number of samples")
+
+
+def fit(
+    source: Capture | str | os.PathLike,
+    *,
+    out: str | os.PathLike | None = None,
+    force: bool = False,
+) -> FitSummary:
+    """Fit a temperature to captured logits; return (and write) the summary.
+
+    Parameters
+    ----------
+    source : Capture or path
+        A capture, or the path of a capture file.
+    out : path, optional
+        Where to write FIT.json.
+    force : bool
+        Replace an existing ``out``.
+    """
+    inputs = [] if isinstance(source, Capture) else [source]
+    if out is not None:
+        check_output_path(out, inputs, force=force)
+    cap = source if isinstance(source, Capture) else _capture.load_capture(source)
+    _require_finite(cap.logits, cap.meta.data_source if isinstance(source, Capture) else str(source))
+    summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict())
+    if out is not None:
+        _fit.save_fit(out, summary)
+    return summary
+
+
+def _resolve_temperature(
+    temperature: float | None, fit_source: FitSummary | str | os.PathLike | None
+) -> tuple[float, dict]:
+    if (temperature is None) == (fit_source is None):
+        raise OnnxcalError("give exactly one of --temperature and --fit")
+    if temperature is not None:
+        return graph.check_temperature(temperature), {"method": "temperature", "given": True}
+    summary = fit_source if isinstance(fit_source, FitSummary) else _fit.load_fit(fit_source)
+    return summary.temperature, summary.to_dict()
+
+
+def patch(
+    model_path: str | os.PathLike,
+    out: str | os.PathLike,
+    *,
+    temperature: float | None = None,
+    fit: FitSummary | str | os.PathLike | None = None,
+    output: str | None = None,
+    output_name: str = graph.DEFAULT_OUTPUT_NAME,
+    drop_logits: bool = False,
+    force: bool = False,
+) -> PatchResult:
+    """Write a copy of the model that outputs calibrated probabilities.
+
+    Parameters
+    ----------
+    model_path : path
+        The ONNX model; never modified.
+    out : path
+        The patched model; must differ from ``model_path``.
+    temperature : float, optional
+        T; or give ``fit``.
+    fit : FitSummary or path, optional
+        A fit (or FIT.json) whose temperature is used and recorded.
+    output : str, optional
+        The class-score output.
+    output_name : str, default "probabilities"
+        Name of the added output when the model ends in raw logits.
+    drop_logits : bool
+        Remove the logits output in that case.
+    force : bool
+        Replace an existing ``out``.
+    """
+    inputs = [model_path] + ([fit] if isinstance(fit, (str, os.PathLike)) else [])
+    check_output_path(out, inputs, force=force)
+    t, fit_dict = _resolve_temperature(temperature, fit)
+    model = graph.load_model(model_path)
+    patched = graph.patch(
+        model,
+        t,
+        source_sha256=sha256_file(model_path),
+        source_path=Path(model_path).resolve(),
+        output=output,
+        new_output=output_name,
+        drop_logits=drop_logits,
+        fit=fit_dict,
+    )
+    graph.save_model(patched, out)
+    return PatchResult(path=str(out), record=graph.read_record(patched))
+
+
+def _verify_models(
+    patched,
+    record: Record,
+    dataset: Dataset,
+    logits: np.ndarray,
+    *,
+    original: str,
+    original_sha: str,
+    batch_size: int,
+    progress: ProgressFn | None,
+) -> VerifyResult:
+    """Run the patched model and compare it with the original's logits."""
+    site = graph.find_scores(patched, record.output)
+    (probs,) = _capture.run_model(
+        patched,
+        dataset,
+        [record.output],
+        batch_size=batch_size,
+        progress=progress,
+        description="running patched model",
+    )
+    rows = _capture.as_rows(probs, site.class_axis)
+    checks = _verify.compare(rows, logits, record.temperature, record.activation, site.dtype)
+    checks += (
+        _verify.record_check(record.temperature, graph.temperature_value(patched, record)),
+        _verify.source_check(record.source_sha256, original_sha),
+    )
+    return VerifyResult(checks=checks, n=dataset.n, original=original)
+
+
+def verify(
+    patched_path: str | os.PathLike,
+    data_path: str | os.PathLike,
+    *,
+    original: str | os.PathLike | None = None,
+    batch_size: int = _capture.DEFAULT_BATCH,
+    progress: ProgressFn | None = None,
+) -> VerifyResult:
+    """Check a patched model against softmax(original logits / T) in NumPy.
+
+    Parameters
+    ----------
+    patched_path : path
+        A model written by :func:`patch`.
+    data_path : path
+        ``.npz`` with one array per model input (labels optional).
+    original : path, optional
+        The uncalibrated model; by default the path in the record, if it exists.
+    """
+    _check_batch_size(batch_size)
+    patched = graph.load_model(patched_path)
+    record = graph.read_record(patched)
+    if record is None:
+        raise OnnxcalError(
+            f"'{patched_path}' has no onnxcal calibration record",
+            "verify a model written by 'onnxcal patch' or 'onnxcal calibrate'",
+        )
+    if original is None:
+        if not Path(record.source_path).is_file():
+            raise OnnxcalError(
+                f"the original model recorded in '{patched_path}' ({record.source_path}) "
+                "is not there",
+                "pass --original PATH",
+            )
+        original = record.source_path
+    base = graph.load_model(original)
+    dataset = _load_data(data_path, require_labels=False)
+    base_site = graph.find_scores(
+        base, record.output if record.rewrite == "insert-before-activation" else record.scores
+    )
+    logits = _capture.capture_scores(base, dataset, base_site, batch_size=batch_size, progress=progress)
+    return _verify_models(
+        patched,
+        record,
+        dataset,
+        logits,
+        original=str(original),
+        original_sha=sha256_file(original),
+        batch_size=batch_size,
+        progress=progress,
+    )
+
+
+def calibrate(
+    model_path: str | os.PathLike,
+    data_path: str | os.PathLike,
+    out: str | os.PathLike,
+    *,
+    output: str | None = None,
+    output_name: str = graph.DEFAULT_OUTPUT_NAME,
+    drop_logits: bool = False,
+    batch_size: int = _capture.DEFAULT_BATCH,
+    force: bool = False,
+    progress: ProgressFn | None = None,
+) -> CalibrateResult:
+    """Capture, fit, patch and verify in one go.
+
+    The patched model is verified in memory against the captured logits
+    before it is written; when a check fails nothing is written and
+    ``result.patch`` is None.
+    """
+    check_output_path(out, [model_path, data_path], force=force)
+    _check_batch_size(batch_size)
+    model = graph.load_model(model_path)
+    sha = sha256_file(model_path)
+    dataset = _load_data(data_path)
+    cap = _capture.capture(
+        model,
+        dataset,
+        model_path=model_path,
+        model_sha256=sha,
+        output=output,
+        batch_size=batch_size,
+        progress=progress,
+    )
+    _require_finite(cap.logits, str(data_path))
+    summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict())
+    patched = graph.patch(
+        model,
+        summary.temperature,
+        source_sha256=sha,
+        source_path=Path(model_path).resolve(),
+        output=output,
+        new_output=output_name,
+        drop_logits=drop_logits,
+        fit=summary.to_dict(),
+    )
+    record = graph.read_record(patched)
+    result = _verify_models(
+        patched,
+        record,
+        dataset,
+        cap.logits,
+        original=str(model_path),
+        original_sha=sha,
+        batch_size=batch_size,
+        progress=progress,
+    )
+    written = None
+    if result.passed:
+        graph.save_model(patched, out)
+        written = PatchResult(path=str(out), record=record)
+    return CalibrateResult(summary=summary, patch=written, verification=result)

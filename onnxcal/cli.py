@@ -1,0 +1,415 @@
+"""Command line: parse, call ``onnxcal.api``, print. Nothing else imports this module.
+
+Exit status: 0 success, 1 a verification check failed, 2 bad input (one line
+on stderr; ``onnxcal --debug CMD ...`` shows the traceback), 130 interrupted.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import sys
+import traceback
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+from typing import Annotated, Optional
+
+import typer
+from rich.console import Console
+from rich.progress import (
+    BarColumn,
+    MofNCompleteColumn,
+    Progress,
+    ProgressColumn,
+    TextColumn,
+    TimeRemainingColumn,
+)
+from rich.table import Table
+from rich.text import Text
+
+from . import __version__, api
+from .capture import DEFAULT_BATCH, ProgressFn
+from .errors import OnnxcalError
+from .fit import FitSummary
+from .graph import DEFAULT_OUTPUT_NAME, ModelInfo, TensorSpec
+from .verify import VerifyResult
+
+app = typer.Typer(
+    name="onnxcal",
+    help=(
+        "Calibrate an exported ONNX classifier: capture its logits on labelled data, "
+        "fit a temperature T by minimising NLL, patch the graph to emit "
+        "softmax(logits / T), and verify the patched file against NumPy.\n\n"
+        "Exit status: 0 success, 1 a check failed, 2 bad input."
+    ),
+    add_completion=False,
+    no_args_is_help=True,
+    pretty_exceptions_enable=False,
+    rich_markup_mode=None,
+)
+out = Console(highlight=False, markup=False)
+err = Console(stderr=True, highlight=False, markup=False)
+
+CAUTION = (
+    "Calibration holds only for data like the validation set and drifts under "
+    "distribution shift; it is no substitute for validation under local regulations "
+    "and licensed professional review."
+)
+
+# --------------------------------------------------------------------------
+# Shared options
+
+ModelArg = Annotated[Path, typer.Argument(help="The ONNX model file.", show_default=False)]
+DataOpt = Annotated[
+    Path,
+    typer.Option(
+        "--data",
+        help="Validation set: .npz with one array per model input plus 'labels'.",
+        show_default=False,
+    ),
+]
+OutputOpt = Annotated[
+    Optional[str],
+    typer.Option("--output", help="The class-score output (default: the likeliest float output)."),
+]
+BatchOpt = Annotated[
+    int, typer.Option("--batch-size", help="Samples per onnxruntime call.", min=1)
+]
+ForceOpt = Annotated[bool, typer.Option("--force", help="Replace an existing output file.")]
+JsonOpt = Annotated[bool, typer.Option("--json", help="Print JSON instead of a table.")]
+QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress bar.")]
+
+
+class _RateColumn(ProgressColumn):
+    """Samples per second."""
+
+    def render(self, task) -> Text:
+        speed = task.finished_speed or task.speed
+        return Text(f"{speed:,.0f} samples/s" if speed else "- samples/s")
+
+
+@contextlib.contextmanager
+def _progress(quiet: bool) -> Iterator[ProgressFn | None]:
+    """A rich progress bar on stderr, fed by the stages' progress callback."""
+    if quiet:
+        yield None
+        return
+    bar = Progress(
+        TextColumn("{task.description}"),
+        BarColumn(),
+        MofNCompleteColumn(),
+        _RateColumn(),
+        TimeRemainingColumn(),
+        console=err,
+        transient=False,
+    )
+    tasks: dict[str, int] = {}
+
+    def update(description: str, done: int, total: int) -> None:
+        if not tasks:  # start drawing at the first batch, not before
+            bar.start()
+        if description not in tasks:
+            tasks[description] = bar.add_task(description, total=total)
+        bar.update(tasks[description], completed=done)
+
+    try:
+        yield update
+    finally:
+        if tasks:
+            bar.stop()
+
+
+def _warn(messages: Sequence[str]) -> None:
+    for m in messages:
+        err.print(f"warning: {m}", soft_wrap=True)
+
+
+def _print_json(data) -> None:
+    sys.stdout.write(json.dumps(data, indent=2, sort_keys=True, default=str) + "\n")
+
+
+# --------------------------------------------------------------------------
+# Rendering
+
+
+def _shape(spec: TensorSpec) -> str:
+    if spec.shape is None:
+        return "?"
+    return "[" + ", ".join("?" if d is None else str(d) for d in spec.shape) + "]"
+
+
+def _render_info(info: ModelInfo) -> None:
+    table = Table(title=f"{info.path}  (opset {info.opset})", title_justify="left")
+    for col in ("", "name", "dtype", "shape"):
+        table.add_column(col)
+    for kind, specs in (("input", info.inputs), ("output", info.outputs)):
+        for s in specs:
+            table.add_row(kind, s.name, s.dtype, _shape(s))
+    out.print(table)
+    site = info.site
+    if site is None:
+        out.print("class scores: none found (no floating-point output)")
+    else:
+        ends = f"ends in {site.activation.capitalize()}" if site.activation else "raw logits"
+        out.print(
+            f"class scores: output '{site.output}' ({ends}; logits tensor '{site.scores}', "
+            f"class axis {site.class_axis}, {site.num_classes or '?'} classes)"
+        )
+    out.print(f"batch dim: {'fixed' if info.batch_fixed else 'dynamic'}")
+    if info.record is not None:
+        out.print(
+            f"calibration record: T = {info.record.temperature:.4f} on output "
+            f"'{info.record.output}' ({info.record.rewrite})"
+        )
+    else:
+        out.print("calibration record: none")
+    out.print(f"sha256: {info.sha256}")
+
+
+def _render_fit(summary: FitSummary) -> None:
+    t = summary.result.temperature
+    table = Table(title=f"temperature T = {t:.4f}", title_justify="left")
+    table.add_column("metric")
+    table.add_column("before (T = 1)", justify="right")
+    table.add_column(f"after (T = {t:.3g})", justify="right")
+    b, a = summary.before, summary.after
+    rows = [
+        ("NLL", b.nll, a.nll),
+        (f"ECE ({b.n_bins} bins)", b.ece, a.ece),
+        ("Brier score", b.brier, a.brier),
+        ("accuracy", b.accuracy, a.accuracy),
+        ("mean confidence", b.mean_confidence, a.mean_confidence),
+    ]
+    for name, x, y in rows:
+        table.add_row(name, f"{x:.4f}", f"{y:.4f}")
+    out.print(table)
+    out.print(f"{b.n} samples; figures are on the data T was fitted on (in-sample).")
+    _warn(summary.result.warnings)
+
+
+def _render_verify(result: VerifyResult) -> None:
+    table = Table(title=f"verify against {result.original} ({result.n} samples)", title_justify="left")
+    for col in ("check", "result", "value", "limit", "what"):
+        table.add_column(col)
+    for c in result.checks:
+        table.add_row(c.name, "pass" if c.passed else "FAIL", f"{c.value:.3g}", f"{c.limit:.3g}", c.detail)
+    out.print(table)
+    out.print("verify: all checks passed" if result.passed else "verify: FAILED")
+
+
+# --------------------------------------------------------------------------
+# Commands
+
+
+@app.callback()
+def _root(
+    debug: Annotated[
+        bool, typer.Option("--debug", help="Show tracebacks for errors (put it before the command).")
+    ] = False,
+    version: Annotated[bool, typer.Option("--version", help="Print the version and exit.")] = False,
+) -> None:
+    if version:
+        out.print(f"onnxcal {__version__}")
+        raise typer.Exit(0)
+
+
+@app.command()
+def inspect(model: ModelArg, as_json: JsonOpt = False) -> None:
+    """Show a model's inputs, outputs, opset, class-score output and calibration record."""
+    info = api.inspect(model)
+    _print_json(info.to_dict()) if as_json else _render_info(info)
+
+
+@app.command()
+def capture(
+    model: ModelArg,
+    data: DataOpt,
+    out_path: Annotated[
+        Path, typer.Option("--out", help="Capture file to write (.npz).", show_default=False)
+    ],
+    output: OutputOpt = None,
+    batch_size: BatchOpt = DEFAULT_BATCH,
+    force: ForceOpt = False,
+    quiet: QuietOpt = False,
+) -> None:
+    """Run the model on CPU over a labelled set and save its logits and labels."""
+    with _progress(quiet) as progress:
+        cap = api.capture(
+            model, data, out=out_path, output=output, batch_size=batch_size, force=force, progress=progress
+        )
+    out.print(
+        f"captured {cap.meta.n} x {cap.meta.num_classes} logits from '{cap.meta.scores}' "
+        f"-> {out_path}"
+    )
+    if (rows := api._capture.nonfinite_rows(cap.logits)).size:
+        _warn([f"{rows.size} rows hold NaN or Inf logits; 'onnxcal fit' will refuse them"])
+
+
+@app.command()
+def fit(
+    logits: Annotated[Path, typer.Argument(help="Capture file from 'onnxcal capture'.", show_default=False)],
+    out_path: Annotated[Optional[Path], typer.Option("--out", help="Write the fit to this JSON file.")] = None,
+    force: ForceOpt = False,
+    as_json: JsonOpt = False,
+) -> None:
+    """Fit a temperature to captured logits by minimising NLL; print before/after metrics."""
+    summary = api.fit(logits, out=out_path, force=force)
+    if as_json:
+        _print_json(summary.to_dict())
+        return
+    _render_fit(summary)
+    if out_path is not None:
+        out.print(f"wrote {out_path}")
+
+
+@app.command()
+def patch(
+    model: ModelArg,
+    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False)],
+    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to bake in.")] = None,
+    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.")] = None,
+    output: OutputOpt = None,
+    output_name: Annotated[
+        str, typer.Option("--output-name", help="Name of the added output when the model ends in logits.")
+    ] = DEFAULT_OUTPUT_NAME,
+    drop_logits: Annotated[
+        bool, typer.Option("--drop-logits", help="Remove the logits output when a new output is added.")
+    ] = False,
+    force: ForceOpt = False,
+) -> None:
+    """Rewrite the graph so the model outputs softmax(logits / T)."""
+    result = api.patch(
+        model,
+        out_path,
+        temperature=temperature,
+        fit=fit_file,
+        output=output,
+        output_name=output_name,
+        drop_logits=drop_logits,
+        force=force,
+    )
+    r = result.record
+    how = "Div inserted before the existing activation" if r.rewrite == "insert-before-activation" else "Div + Softmax appended"
+    out.print(f"T = {r.temperature:.4f}: {how}; calibrated output '{r.output}' -> {result.path}")
+
+
+@app.command()
+def verify(
+    patched: Annotated[Path, typer.Argument(help="Patched model.", show_default=False)],
+    data: Annotated[
+        Path, typer.Option("--data", help=".npz with one array per model input.", show_default=False)
+    ],
+    original: Annotated[
+        Optional[Path],
+        typer.Option("--original", help="The uncalibrated model (default: the path in the record)."),
+    ] = None,
+    batch_size: BatchOpt = DEFAULT_BATCH,
+    as_json: JsonOpt = False,
+    quiet: QuietOpt = False,
+) -> None:
+    """Check the patched model against softmax(original logits / T) computed in NumPy.
+
+    Exit 0 when every check passes, 1 when one fails, 2 on bad input.
+    """
+    with _progress(quiet or as_json) as progress:
+        result = api.verify(patched, data, original=original, batch_size=batch_size, progress=progress)
+    _print_json(result.to_dict()) if as_json else _render_verify(result)
+    if not result.passed:
+        raise typer.Exit(1)
+
+
+@app.command()
+def calibrate(
+    model: ModelArg,
+    data: DataOpt,
+    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False)],
+    output: OutputOpt = None,
+    output_name: Annotated[
+        str, typer.Option("--output-name", help="Name of the added output when the model ends in logits.")
+    ] = DEFAULT_OUTPUT_NAME,
+    drop_logits: Annotated[
+        bool, typer.Option("--drop-logits", help="Remove the logits output when a new output is added.")
+    ] = False,
+    batch_size: BatchOpt = DEFAULT_BATCH,
+    force: ForceOpt = False,
+    as_json: JsonOpt = False,
+    quiet: QuietOpt = False,
+) -> None:
+    """Capture, fit, patch and verify in one go; print the before/after table.
+
+    Nothing is written when verification fails (exit 1).
+    """
+    with _progress(quiet or as_json) as progress:
+        result = api.calibrate(
+            model,
+            data,
+            out_path,
+            output=output,
+            output_name=output_name,
+            drop_logits=drop_logits,
+            batch_size=batch_size,
+            force=force,
+            progress=progress,
+        )
+    if as_json:
+        _print_json(
+            {
+                "fit": result.summary.to_dict(),
+                "verify": result.verification.to_dict(),
+                "written": result.patch.path if result.patch else None,
+            }
+        )
+    else:
+        _render_fit(result.summary)
+        _render_verify(result.verification)
+        if result.patch is not None:
+            r = result.patch.record
+            out.print(f"wrote {result.patch.path} (calibrated output '{r.output}')")
+            out.print(f"caution: {CAUTION}", soft_wrap=True)
+    if result.patch is None:
+        err.print(f"error: verification failed; '{out_path}' was not written")
+        raise typer.Exit(1)
+
+
+# --------------------------------------------------------------------------
+# Entry point
+
+
+def _one_line(text: str) -> str:
+    return " ".join(str(text).split())
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the CLI; return the exit status (the console script exits with it)."""
+    args = list(sys.argv[1:] if argv is None else argv)
+    debug = "--debug" in args
+    if debug:  # accept --debug anywhere on the line
+        args = ["--debug"] + [a for a in args if a != "--debug"]
+    try:
+        rv = app(args=args, prog_name="onnxcal", standalone_mode=False)
+    except OnnxcalError as exc:
+        if debug:
+            traceback.print_exc()
+        err.print(f"onnxcal: error: {_one_line(exc)}", soft_wrap=True)
+        return exc.exit_code
+    except typer.TyperException as exc:  # bad usage: the parser's own message
+        show = getattr(exc, "show", None)
+        show() if show else err.print(f"onnxcal: error: {_one_line(exc)}")
+        return 2
+    except (KeyboardInterrupt, typer.Abort):
+        err.print("onnxcal: interrupted; no output was written")
+        return 130
+    except Exception as exc:  # an unexpected failure: still one line unless --debug
+        if debug:
+            traceback.print_exc()
+        err.print(
+            f"onnxcal: internal error: {type(exc).__name__}: {_one_line(exc)} "
+            "(rerun with --debug and report it)",
+            soft_wrap=True,
+        )
+        return 2
+    return rv if isinstance(rv, int) else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,33 @@
+"""The one exception type that reaches the user.
+
+Every stage raises :class:`OnnxcalError` for input it cannot accept. The
+message is a single sentence that names the problem (file, input or option)
+and, where there is one, the fix. The CLI prints it on one line and exits
+with status 2; library callers catch it like any other exception.
+"""
+
+from __future__ import annotations
+
+
+class OnnxcalError(Exception):
+    """A problem with the user's input, reported without a traceback.
+
+    Parameters
+    ----------
+    message : str
+        What is wrong, naming the file, input or option concerned.
+    hint : str, optional
+        What to do about it; appended to the message after a semicolon.
+    """
+
+    exit_code = 2
+
+    def __init__(self, message: str, hint: str | None = None) -> None:
+        self.message = message
+        self.hint = hint
+        super().__init__(self.__str__())
+
+    def __str__(self) -> str:
+        if self.hint:
+            return f"{self.message}; {self.hint}"
+        return self.message

@@ -1,0 +1,167 @@
+"""The command line: the demo end to end, exit codes, and bad input."""
+
+import json
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import onnx
+import pytest
+from onnx import numpy_helper
+
+from conftest import (
+    DEMO_MODEL,
+    DEMO_TEST,
+    DEMO_VAL,
+    files_in,
+    identity_model,
+    onehot_int_model,
+    random_mlp,
+    save_model,
+)
+from onnxcal import graph
+
+
+def test_demo_end_to_end(tmp_path, run_cli):
+    out = tmp_path / "calibrated.onnx"
+    r = run_cli("calibrate", DEMO_MODEL, "--data", DEMO_VAL, "--out", out, "--quiet")
+    assert r.code == 0, r.err
+    assert "ECE (15 bins)" in r.out and "all checks passed" in r.out
+    assert "validation set" in r.out  # the caution is printed
+    r = run_cli("verify", out, "--data", DEMO_TEST, "--quiet")
+    assert r.code == 0, r.err
+    r = run_cli("verify", out, "--data", DEMO_TEST, "--json")
+    data = json.loads(r.out)
+    assert data["passed"] and {c["name"] for c in data["checks"]} >= {"reference", "argmax", "record"}
+
+
+def test_calibrate_json_shows_ece_falling(tmp_path, run_cli):
+    r = run_cli("calibrate", DEMO_MODEL, "--data", DEMO_VAL, "--out", tmp_path / "c.onnx", "--json")
+    assert r.code == 0, r.err
+    m = json.loads(r.out)["fit"]["metrics"]
+    assert m["after"]["ece"] < m["before"]["ece"]
+
+
+def test_step_by_step_commands(tmp_path, run_cli):
+    cap, fit, patched = tmp_path / "c.npz", tmp_path / "fit.json", tmp_path / "p.onnx"
+    assert run_cli("capture", DEMO_MODEL, "--data", DEMO_VAL, "--out", cap, "-q").code == 0
+    r = run_cli("fit", cap, "--out", fit)
+    assert r.code == 0 and "temperature T =" in r.out
+    t = json.loads(fit.read_text())["temperature"]
+    r = run_cli("fit", cap, "--json")
+    assert json.loads(r.out)["temperature"] == t
+    assert run_cli("patch", DEMO_MODEL, "--fit", fit, "--out", patched).code == 0
+    r = run_cli("inspect", patched, "--json")
+    info = json.loads(r.out)
+    assert info["record"]["temperature"] == t and info["site"]["output"] == "probabilities"
+    r = run_cli("inspect", DEMO_MODEL)
+    assert "band_energies" in r.out and "raw logits" in r.out and "dynamic" in r.out
+
+
+def test_wrong_temperature_in_a_copy_fails_verify(tmp_path, run_cli):
+    out = tmp_path / "calibrated.onnx"
+    assert run_cli("patch", DEMO_MODEL, "--temperature", "2.0", "--out", out).code == 0
+    model = onnx.load(str(out))
+    record = graph.read_record(model)
+    for init in model.graph.initializer:
+        if init.name == record.temperature_initializer:
+            init.CopyFrom(numpy_helper.from_array(np.array(2.5, np.float32), init.name))
+    tampered = tmp_path / "tampered.onnx"
+    onnx.save(model, tampered)
+    r = run_cli("verify", tampered, "--data", DEMO_VAL, "--original", DEMO_MODEL, "-q")
+    assert r.code == 1
+    assert "FAIL" in r.out
+
+
+def test_console_script_runs(tmp_path):
+    # The installed entry point, as a user would call it (beside this interpreter).
+    exe = Path(sys.executable).with_name("onnxcal")
+    cmd = [str(exe)] if exe.exists() else [sys.executable, "-m", "onnxcal"]
+    r = subprocess.run(cmd + ["inspect", str(DEMO_MODEL), "--json"], capture_output=True, text=True)
+    assert r.returncode == 0, r.stderr
+    assert json.loads(r.stdout)["opset"] == 17
+    r = subprocess.run(cmd + ["inspect", str(tmp_path / "missing.onnx")], capture_output=True, text=True)
+    assert r.returncode == 2 and "Traceback" not in r.stderr
+
+
+# --------------------------------------------------------------------------
+# Bad input: one line on stderr, exit 2, no traceback, nothing written.
+
+
+@pytest.fixture
+def work(tmp_path, rng):
+    d = tmp_path / "work"
+    d.mkdir()
+    save_model(random_mlp(rng), d / "model.onnx")
+    x = rng.normal(size=(20, 6)).astype(np.float32)
+    np.savez(d / "val.npz", x=x, labels=rng.integers(0, 4, 20))
+    np.savez(d / "nolabels.npz", x=x)
+    np.savez(d / "biglabels.npz", x=x, labels=np.full(20, 4))
+    np.savez(d / "short.npz", x=x, labels=np.zeros(19, np.int64))
+    (d / "text.onnx").write_text("not a model\n")
+    save_model(onehot_int_model(), d / "intonly.onnx")
+    save_model(identity_model(3), d / "identity.onnx")
+    z = rng.normal(size=(20, 3)).astype(np.float32)
+    z[[2, 5, 11], 1] = np.nan
+    z[7, 0] = np.inf
+    np.savez(d / "nan.npz", x=z, labels=rng.integers(0, 3, 20))
+    np.savez(d / "x3.npz", x=z[:, :3], labels=rng.integers(0, 3, 20))
+    return d
+
+
+BAD = [
+    (["inspect", "text.onnx"], "not a readable ONNX model"),
+    (["calibrate", "text.onnx", "--data", "val.npz", "--out", "o.onnx"], "not a readable ONNX model"),
+    (["calibrate", "intonly.onnx", "--data", "x3.npz", "--out", "o.onnx"], "no floating-point output"),
+    (["capture", "model.onnx", "--data", "nolabels.npz", "--out", "c.npz"], "no array named 'labels'"),
+    (["calibrate", "model.onnx", "--data", "biglabels.npz", "--out", "o.onnx"], r"label 4 at row 0 .*outside \[0, 4\)"),
+    (["capture", "model.onnx", "--data", "short.npz", "--out", "c.npz"], "different numbers of samples"),
+    (["calibrate", "identity.onnx", "--data", "nan.npz", "--out", "o.onnx", "-q"], "NaN or Inf in 4 of 20 rows .first rows: 2, 5, 7, 11"),
+    (["patch", "model.onnx", "--temperature", "2", "--out", "model.onnx"], "is the input file"),
+    (["patch", "model.onnx", "--temperature", "2", "--out", "./sub/../model.onnx"], "is the input file"),
+    (["calibrate", "model.onnx", "--data", "val.npz", "--out", "missing_dir/o.onnx"], "output directory .* does not exist"),
+    (["patch", "model.onnx", "--temperature", "0", "--out", "o.onnx"], "not a positive finite number"),
+    (["patch", "model.onnx", "--temperature", "2", "--output", "nope", "--out", "o.onnx"], "no output named 'nope'"),
+    (["verify", "model.onnx", "--data", "val.npz"], "no onnxcal calibration record"),
+    (["fit", "val.npz"], "not an onnxcal capture file"),
+    (["capture", "model.onnx", "--data", "model.onnx", "--out", "c.npz"], "not an .npz archive"),
+]
+
+
+@pytest.mark.parametrize("args, message", BAD, ids=[" ".join(a[:2]) + f"-{i}" for i, (a, _) in enumerate(BAD)])
+def test_bad_input(work, run_cli, monkeypatch, args, message):
+    monkeypatch.chdir(work)
+    (work / "sub").mkdir(exist_ok=True)
+    before = files_in(work)
+    r = run_cli(*args)
+    assert r.code == 2
+    assert "Traceback" not in r.err
+    lines = [line for line in r.err.splitlines() if line.strip()]
+    assert len(lines) == 1, r.err
+    assert lines[0].startswith("onnxcal: error:")
+    assert re.search(message, lines[0]), lines[0]
+    assert files_in(work) == before  # nothing created, nothing changed
+
+
+def test_existing_output_needs_force(work, run_cli, monkeypatch):
+    monkeypatch.chdir(work)
+    assert run_cli("patch", "model.onnx", "--temperature", "2", "--out", "p.onnx").code == 0
+    first = (work / "p.onnx").read_bytes()
+    r = run_cli("patch", "model.onnx", "--temperature", "3", "--out", "p.onnx")
+    assert r.code == 2 and "already exists" in r.err and "--force" in r.err
+    assert (work / "p.onnx").read_bytes() == first
+    assert run_cli("patch", "model.onnx", "--temperature", "3", "--out", "p.onnx", "--force").code == 0
+    assert (work / "p.onnx").read_bytes() != first
+
+
+def test_debug_shows_traceback(work, run_cli, monkeypatch):
+    monkeypatch.chdir(work)
+    r = run_cli("inspect", "text.onnx", "--debug")
+    assert r.code == 2 and "Traceback" in r.err
+
+
+def test_usage_error_exits_2(run_cli):
+    r = run_cli("patch")
+    assert r.code == 2

@@ -1,0 +1,59 @@
+"""The NumPy reference and the checks built on it."""
+
+import numpy as np
+import pytest
+import scipy.special
+
+from onnxcal.verify import compare, record_check, reference_probabilities, source_check
+
+
+def test_reference_matches_scipy(rng):
+    # Reference library: scipy.special.softmax / log_softmax / expit.
+    z = rng.normal(scale=5, size=(40, 6)).astype(np.float32)
+    np.testing.assert_allclose(
+        reference_probabilities(z, 2.0, "softmax"), scipy.special.softmax(z / 2.0, axis=1), rtol=1e-6
+    )
+    np.testing.assert_allclose(
+        reference_probabilities(z, 2.0, "logsoftmax"),
+        scipy.special.log_softmax(z.astype(np.float64) / 2.0, axis=1),
+        rtol=1e-12,
+    )
+    np.testing.assert_allclose(
+        reference_probabilities(z, 2.0, "sigmoid"), scipy.special.expit(z / 2.0), rtol=1e-6
+    )
+
+
+def test_compare_passes_exact_and_fails_wrong_temperature(rng):
+    z = rng.normal(scale=3, size=(100, 5))
+    good = scipy.special.softmax(z / 1.5, axis=1).astype(np.float32)
+    checks = {c.name: c for c in compare(good, z, 1.5, "softmax", "float32")}
+    assert all(c.passed for c in checks.values())
+    wrong = scipy.special.softmax(z / 1.6, axis=1).astype(np.float32)
+    checks = {c.name: c for c in compare(wrong, z, 1.5, "softmax", "float32")}
+    assert not checks["reference"].passed and checks["reference"].value > 1e-3
+    assert checks["argmax"].passed  # a wrong T still keeps the argmax
+
+
+def test_compare_flags_bad_row_sums_and_argmax(rng):
+    z = rng.normal(size=(50, 3))
+    p = scipy.special.softmax(z, axis=1)
+    swapped = p[:, ::-1].copy()
+    checks = {c.name: c for c in compare(swapped, z, 1.0, "softmax", "float32")}
+    assert not checks["argmax"].passed and checks["row-sums"].passed
+    scaled = {c.name: c for c in compare(p * 1.01, z, 1.0, "softmax", "float32")}
+    assert not scaled["row-sums"].passed
+
+
+def test_sigmoid_decisions(rng):
+    z = rng.normal(size=(30, 2))
+    p = scipy.special.expit(z / 3.0)
+    checks = {c.name: c for c in compare(p, z, 3.0, "sigmoid", "float64")}
+    assert checks["decisions"].passed and checks["reference"].passed
+
+
+def test_record_and_source_checks():
+    assert record_check(2.0, 2.0).passed
+    assert not record_check(2.0, 2.5).passed
+    assert not record_check(2.0, None).passed
+    assert source_check("a" * 64, "a" * 64).passed
+    assert not source_check("a" * 64, "b" * 64).passed
