@@ -46,7 +46,8 @@ class CalibrateResult:
 def inspect(model_path: str | os.PathLike) -> ModelInfo:
     """Describe a model: inputs, outputs, opset, class-score output, record."""
     model = graph.load_model(model_path)
-    return graph.describe(model, model_path, sha256_file(model_path))
+    external = tuple(str(f) for f in graph.external_data_files(model_path))
+    return graph.describe(model, model_path, sha256_file(model_path), external)
 
 
 def _require_finite(logits: np.ndarray, source: str) -> None:
@@ -73,6 +74,7 @@ def capture(
     batch_size: int = _capture.DEFAULT_BATCH,
     force: bool = False,
     progress: ProgressFn | None = None,
+    activation: str | None = None,
 ) -> Capture:
     """Run the model over a labelled ``.npz`` set; return (and write) the logits.
 
@@ -91,6 +93,9 @@ def capture(
         Replace an existing ``out``.
     progress : callable, optional
         ``progress(description, done, total)``.
+    activation : {"softmax", "sigmoid"}, optional
+        How raw logits become probabilities (default: sigmoid for one logit,
+        softmax otherwise); decides the labels' form.
     """
     if out is not None:
         check_output_path(out, [model_path, data_path], force=force)
@@ -104,6 +109,7 @@ def capture(
         output=output,
         batch_size=batch_size,
         progress=progress,
+        activation=activation,
     )
     if out is not None:
         _capture.save_capture(out, cap)
@@ -137,7 +143,7 @@ def fit(
         check_output_path(out, inputs, force=force)
     cap = source if isinstance(source, Capture) else _capture.load_capture(source)
     _require_finite(cap.logits, cap.meta.data_source if isinstance(source, Capture) else str(source))
-    summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict())
+    summary = _fit.summarize(*_capture.fitting_rows(cap), cap.meta.to_dict())
     if out is not None:
         _fit.save_fit(out, summary)
     return summary
@@ -154,6 +160,60 @@ def _resolve_temperature(
     return summary.temperature, summary.to_dict()
 
 
+@dataclass(frozen=True)
+class PatchOptions:
+    """How to rewrite the graph (the patch options shared by patch and calibrate).
+
+    Attributes
+    ----------
+    output : str, optional
+        The class-score output (the likeliest float output by default).
+    output_name : str, default "probabilities"
+        Name of the added output when the model ends in raw logits.
+    drop_logits : bool
+        Remove the logits output in that case.
+    activation : {"softmax", "sigmoid"}, optional
+        What follows raw logits (default: sigmoid for one logit, else softmax).
+    compute_dtype : {"float32", "float64"}, optional
+        Run the Div and activation in this dtype (e.g. for float16 models).
+    fold : bool
+        Fold 1/T into the weight and bias of the final Gemm / MatMul(+Add).
+    """
+
+    output: str | None = None
+    output_name: str = graph.DEFAULT_OUTPUT_NAME
+    drop_logits: bool = False
+    activation: str | None = None
+    compute_dtype: str | None = None
+    fold: bool = False
+
+    def patch(self, model, temperature: float, *, sha: str, path, fit: dict):
+        return graph.patch(
+            model,
+            temperature,
+            source_sha256=sha,
+            source_path=Path(path).resolve(),
+            output=self.output,
+            new_output=self.output_name,
+            drop_logits=self.drop_logits,
+            fit=fit,
+            activation=self.activation,
+            compute_dtype=self.compute_dtype,
+            fold=self.fold,
+        )
+
+
+def _check_outputs(out, inputs: list, model_path, force: bool) -> bool:
+    """Check ``out`` (and, for a model with external data, ``out``.data); True if external."""
+    check_output_path(out, inputs, force=force)
+    sources = graph.external_data_files(model_path)
+    if sources:
+        check_output_path(
+            graph.external_data_path(out), [*inputs, *sources], force=force, option="--out's data file"
+        )
+    return bool(sources)
+
+
 def patch(
     model_path: str | os.PathLike,
     out: str | os.PathLike,
@@ -163,6 +223,9 @@ def patch(
     output: str | None = None,
     output_name: str = graph.DEFAULT_OUTPUT_NAME,
     drop_logits: bool = False,
+    activation: str | None = None,
+    compute_dtype: str | None = None,
+    fold: bool = False,
     force: bool = False,
 ) -> PatchResult:
     """Write a copy of the model that outputs calibrated probabilities.
@@ -170,37 +233,27 @@ def patch(
     Parameters
     ----------
     model_path : path
-        The ONNX model; never modified.
+        The ONNX model; never modified. A model already patched by onnxcal
+        has its patch undone first (so patches never stack).
     out : path
-        The patched model; must differ from ``model_path``.
+        The patched model; must differ from ``model_path``. A model with
+        external data is written with its weights in ``out``.data.
     temperature : float, optional
         T; or give ``fit``.
     fit : FitSummary or path, optional
         A fit (or FIT.json) whose temperature is used and recorded.
-    output : str, optional
-        The class-score output.
-    output_name : str, default "probabilities"
-        Name of the added output when the model ends in raw logits.
-    drop_logits : bool
-        Remove the logits output in that case.
+    output, output_name, drop_logits, activation, compute_dtype, fold
+        See :class:`PatchOptions`.
     force : bool
         Replace an existing ``out``.
     """
     inputs = [model_path] + ([fit] if isinstance(fit, (str, os.PathLike)) else [])
-    check_output_path(out, inputs, force=force)
+    external = _check_outputs(out, inputs, model_path, force)
     t, fit_dict = _resolve_temperature(temperature, fit)
+    options = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold)
     model = graph.load_model(model_path)
-    patched = graph.patch(
-        model,
-        t,
-        source_sha256=sha256_file(model_path),
-        source_path=Path(model_path).resolve(),
-        output=output,
-        new_output=output_name,
-        drop_logits=drop_logits,
-        fit=fit_dict,
-    )
-    graph.save_model(patched, out)
+    patched = options.patch(model, t, sha=sha256_file(model_path), path=model_path, fit=fit_dict)
+    graph.save_model(patched, out, external=external)
     return PatchResult(path=str(out), record=graph.read_record(patched))
 
 
@@ -211,6 +264,7 @@ def _verify_models(
     logits: np.ndarray,
     *,
     original: str,
+    original_model,
     original_sha: str,
     batch_size: int,
     progress: ProgressFn | None,
@@ -218,20 +272,32 @@ def _verify_models(
     """Run the patched model and compare it with the original's logits."""
     site = graph.find_scores(patched, record.output)
     (probs,) = _capture.run_model(
-        patched,
+        graph.expose(patched, [site.tensor]),
         dataset,
-        [record.output],
+        [site.tensor],
         batch_size=batch_size,
         progress=progress,
         description="running patched model",
     )
     rows = _capture.as_rows(probs, site.class_axis)
-    checks = _verify.compare(rows, logits, record.temperature, record.activation, site.dtype)
+    dtypes = (site.dtype, site.output_dtype or site.dtype)
+    checks = _verify.compare(rows, logits, record.temperature, record.activation, dtypes)
+    in_graph = graph.temperature_value(patched, record, original_model)
     checks += (
-        _verify.record_check(record.temperature, graph.temperature_value(patched, record)),
+        _verify.record_check(record.temperature, in_graph, graph.temperature_dtype(patched, record)),
         _verify.source_check(record.source_sha256, original_sha),
     )
     return VerifyResult(checks=checks, n=dataset.n, original=original)
+
+
+def _source_site(base, record: Record):
+    """The class-score site of the uncalibrated model the record was made from."""
+    if record.source_output:
+        return graph.find_scores(base, record.source_output)
+    # records written before source_output existed
+    return graph.find_scores(
+        base, record.output if record.rewrite == "insert-before-activation" else record.scores
+    )
 
 
 def verify(
@@ -242,7 +308,7 @@ def verify(
     batch_size: int = _capture.DEFAULT_BATCH,
     progress: ProgressFn | None = None,
 ) -> VerifyResult:
-    """Check a patched model against softmax(original logits / T) in NumPy.
+    """Check a patched model against the NumPy reference from the original's logits.
 
     Parameters
     ----------
@@ -271,9 +337,7 @@ def verify(
         original = record.source_path
     base = graph.load_model(original)
     dataset = _load_data(data_path, require_labels=False)
-    base_site = graph.find_scores(
-        base, record.output if record.rewrite == "insert-before-activation" else record.scores
-    )
+    base_site = _source_site(base, record)
     logits = _capture.capture_scores(base, dataset, base_site, batch_size=batch_size, progress=progress)
     return _verify_models(
         patched,
@@ -281,6 +345,7 @@ def verify(
         dataset,
         logits,
         original=str(original),
+        original_model=base,
         original_sha=sha256_file(original),
         batch_size=batch_size,
         progress=progress,
@@ -295,6 +360,9 @@ def calibrate(
     output: str | None = None,
     output_name: str = graph.DEFAULT_OUTPUT_NAME,
     drop_logits: bool = False,
+    activation: str | None = None,
+    compute_dtype: str | None = None,
+    fold: bool = False,
     batch_size: int = _capture.DEFAULT_BATCH,
     force: bool = False,
     progress: ProgressFn | None = None,
@@ -303,11 +371,17 @@ def calibrate(
 
     The patched model is verified in memory against the captured logits
     before it is written; when a check fails nothing is written and
-    ``result.patch`` is None.
+    ``result.patch`` is None. ``output`` ... ``fold``: see :class:`PatchOptions`.
     """
-    check_output_path(out, [model_path, data_path], force=force)
+    external = _check_outputs(out, [model_path, data_path], model_path, force)
     _check_batch_size(batch_size)
+    options = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold)
     model = graph.load_model(model_path)
+    if (previous := graph.read_record(model)) is not None:
+        raise OnnxcalError(
+            f"'{model_path}' is already calibrated by onnxcal (T = {previous.temperature:.4g})",
+            f"calibrate the original model ({previous.source_path}), or change T with 'onnxcal patch'",
+        )
     sha = sha256_file(model_path)
     dataset = _load_data(data_path)
     cap = _capture.capture(
@@ -318,19 +392,11 @@ def calibrate(
         output=output,
         batch_size=batch_size,
         progress=progress,
+        activation=activation,
     )
     _require_finite(cap.logits, str(data_path))
-    summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict())
-    patched = graph.patch(
-        model,
-        summary.temperature,
-        source_sha256=sha,
-        source_path=Path(model_path).resolve(),
-        output=output,
-        new_output=output_name,
-        drop_logits=drop_logits,
-        fit=summary.to_dict(),
-    )
+    summary = _fit.summarize(*_capture.fitting_rows(cap), cap.meta.to_dict())
+    patched = options.patch(model, summary.temperature, sha=sha, path=model_path, fit=summary.to_dict())
     record = graph.read_record(patched)
     result = _verify_models(
         patched,
@@ -338,12 +404,13 @@ def calibrate(
         dataset,
         cap.logits,
         original=str(model_path),
+        original_model=model,
         original_sha=sha,
         batch_size=batch_size,
         progress=progress,
     )
     written = None
     if result.passed:
-        graph.save_model(patched, out)
+        graph.save_model(patched, out, external=external)
         written = PatchResult(path=str(out), record=record)
     return CalibrateResult(summary=summary, patch=written, verification=result)

@@ -24,7 +24,7 @@ from . import __version__
 from ._files import atomic_path, require_file
 from .data import Dataset, check_labels, match_inputs
 from .errors import OnnxcalError
-from .graph import ScoreSite, expose, find_scores, tensor_spec
+from .graph import ScoreSite, expose_scores, find_scores, fit_kind, tensor_spec
 
 ProgressFn = Callable[[str, int, int], None]
 """Called as ``progress(description, samples_done, samples_total)`` after each batch."""
@@ -45,7 +45,9 @@ class CaptureMeta:
     scores : str
         The tensor captured (the logits behind ``output``).
     activation : str or None
-        What the model applies to ``scores`` (None for raw logits).
+        What the model applies to ``scores`` (None for raw logits;
+        ``"softmax"`` for an ai.onnx.ml classifier's probabilities, whose
+        logarithm is captured).
     class_axis : int
         Class axis of ``output`` in the model.
     num_classes : int
@@ -54,6 +56,9 @@ class CaptureMeta:
         Number of captured rows.
     data_source : str
         The validation file.
+    fit_as : str
+        ``"softmax"`` (labels are class indices, one per row) or
+        ``"sigmoid"`` (labels are 0/1, one per logit); see :func:`fitting_rows`.
     onnxcal_version : str
     """
 
@@ -66,6 +71,7 @@ class CaptureMeta:
     num_classes: int
     n: int
     data_source: str
+    fit_as: str = "softmax"
     onnxcal_version: str = __version__
 
     def to_dict(self) -> dict:
@@ -177,15 +183,29 @@ def capture_scores(
     """
     init = {i.name for i in model.graph.initializer}
     match_inputs(dataset, [tensor_spec(vi) for vi in model.graph.input if vi.name not in init])
+    exposed, name = expose_scores(model, site)
     (scores,) = run_model(
-        expose(model, [site.scores]),
+        exposed,
         dataset,
-        [site.scores],
+        [name],
         batch_size=batch_size,
         progress=progress,
         description="capturing logits",
     )
-    return as_rows(scores, site.class_axis).astype(np.float32, copy=False)
+    rows = as_rows(scores, site.class_axis)
+    if site.from_probabilities:
+        rows = log_probabilities(rows)
+    return rows.astype(np.float32, copy=False)
+
+
+def log_probabilities(p: np.ndarray) -> np.ndarray:
+    """log(max(p, tiny)): logits for probabilities, as the patched graph computes them.
+
+    softmax(log p) = p, and softmax(log p / T) = softmax(z / T) for logits z
+    with p = softmax(z), since softmax ignores a constant added to every
+    class (common practice). ``tiny`` is the dtype's smallest normal number.
+    """
+    return np.log(np.maximum(p, np.finfo(p.dtype).tiny))
 
 
 def capture(
@@ -197,6 +217,7 @@ def capture(
     output: str | None = None,
     batch_size: int = DEFAULT_BATCH,
     progress: ProgressFn | None = None,
+    activation: str | None = None,
 ) -> Capture:
     """Run the model over a labelled set and return its logits.
 
@@ -214,6 +235,9 @@ def capture(
         Samples per onnxruntime call (ignored for a fixed batch dim).
     progress : callable, optional
         See :data:`ProgressFn`.
+    activation : {"softmax", "sigmoid"}, optional
+        How raw logits become probabilities (see ``graph.fit_kind``); decides
+        the labels' form.
 
     Returns
     -------
@@ -222,11 +246,12 @@ def capture(
     if dataset.labels is None:
         raise OnnxcalError(f"'{dataset.source}' has no labels", "add a 'labels' array")
     site = find_scores(model, output)
-    if site.num_classes is not None:  # range-check labels before the (long) run
-        check_labels(dataset.labels, dataset.n, site.num_classes, dataset.source)
+    kind = fit_kind(site, activation)
+    if site.num_classes is not None and kind == "softmax" and dataset.labels.ndim == 1:
+        check_labels(dataset.labels, dataset.n, site.num_classes, dataset.source)  # before the run
     logits = capture_scores(model, dataset, site, batch_size=batch_size, progress=progress)
     k = logits.shape[1]
-    labels = check_labels(dataset.labels, logits.shape[0], k, dataset.source)
+    labels = label_rows(dataset.labels, logits.shape, kind, dataset.source)
     meta = CaptureMeta(
         model_sha256=model_sha256,
         model_path=str(model_path),
@@ -237,8 +262,63 @@ def capture(
         num_classes=k,
         n=int(logits.shape[0]),
         data_source=dataset.source,
+        fit_as=kind,
     )
     return Capture(logits=logits, labels=labels, meta=meta)
+
+
+def label_rows(labels: np.ndarray, shape: tuple[int, int], kind: str, source: str) -> np.ndarray:
+    """Labels lined up with captured rows of ``shape`` (rows, k), as int64.
+
+    ``kind == "softmax"``: class indices, one per row; per-pixel labels
+    (e.g. n x H x W for an n x K x H x W output) are flattened in the rows'
+    order. ``kind == "sigmoid"``: 0/1 for every logit, shaped (rows, k);
+    (n,) is accepted for one logit.
+
+    Raises
+    ------
+    OnnxcalError
+        The labels do not fit the rows or are not of the right kind.
+    """
+    labels = np.asarray(labels)
+    rows, k = shape
+    if kind == "softmax":
+        if labels.ndim > 1 and labels.size == rows:
+            labels = labels.reshape(-1)
+        elif labels.ndim > 1:
+            raise OnnxcalError(
+                f"labels in '{source}' have shape {labels.shape}, which does not give one "
+                f"class index per score row ({rows} rows)",
+                "give per-sample labels, or per-pixel labels shaped like the output without its class axis",
+            )
+        return check_labels(labels, rows, k, source)
+    if labels.size != rows * k:
+        raise OnnxcalError(
+            f"labels in '{source}' have shape {labels.shape}, but a sigmoid output with "
+            f"{k} logit(s) per row needs one 0/1 label per logit ({rows} x {k})",
+            "give 0/1 labels shaped like the output",
+        )
+    flat = labels.reshape(rows, k)
+    if flat.dtype.kind not in "iubf" or not np.isin(flat, (0, 1)).all():
+        raise OnnxcalError(
+            f"labels in '{source}' are not all 0 or 1, as a sigmoid output needs",
+            "give 0/1 labels (1 = the label applies)",
+        )
+    return flat.astype(np.int64)
+
+
+def fitting_rows(cap: Capture) -> tuple[np.ndarray, np.ndarray]:
+    """The (logits, labels) a softmax temperature is fitted and scored on.
+
+    A sigmoid logit z is the two-class softmax of [0, z] (sigmoid(z) =
+    softmax([0, z])[1], common practice), so sigmoid(z / T) for every logit
+    is fitted as a softmax temperature on rows [0, z] with the 0/1 label:
+    the mean NLL is then the mean binary cross-entropy over all logits.
+    """
+    if cap.meta.fit_as != "sigmoid":
+        return cap.logits, cap.labels
+    z = cap.logits.reshape(-1, 1)
+    return np.concatenate([np.zeros_like(z), z], axis=1), cap.labels.reshape(-1)
 
 
 def nonfinite_rows(logits: np.ndarray) -> np.ndarray:
@@ -275,5 +355,5 @@ def load_capture(path: str | os.PathLike) -> Capture:
         raise OnnxcalError(f"'{p}' is not an onnxcal capture file ({exc})", hint) from exc
     if logits.ndim != 2 or logits.dtype.kind != "f":
         raise OnnxcalError(f"'{p}' holds logits of shape {logits.shape} ({logits.dtype})", hint)
-    labels = check_labels(labels, logits.shape[0], logits.shape[1], str(p))
+    labels = label_rows(labels, logits.shape, meta.fit_as, str(p))
     return Capture(logits=logits, labels=labels, meta=meta)

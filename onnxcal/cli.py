@@ -78,6 +78,29 @@ BatchOpt = Annotated[
 ForceOpt = Annotated[bool, typer.Option("--force", help="Replace an existing output file.")]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Print JSON instead of a table.")]
 QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress bar.")]
+ActivationOpt = Annotated[
+    Optional[str],
+    typer.Option(
+        "--activation",
+        help="softmax or sigmoid: what turns raw logits into probabilities "
+        "(default: sigmoid for one logit, softmax otherwise).",
+    ),
+]
+ComputeDtypeOpt = Annotated[
+    Optional[str],
+    typer.Option(
+        "--compute-dtype",
+        help="float32 or float64: run the Div and activation in this dtype (Casts "
+        "around them; e.g. for float16 models). The output keeps its dtype.",
+    ),
+]
+FoldOpt = Annotated[
+    bool,
+    typer.Option(
+        "--fold",
+        help="Scale the weight and bias of the final Gemm / MatMul(+Add) by 1/T instead of adding a Div.",
+    ),
+]
 
 
 class _RateColumn(ProgressColumn):
@@ -148,13 +171,11 @@ def _render_info(info: ModelInfo) -> None:
     out.print(table)
     site = info.site
     if site is None:
-        out.print("class scores: none found (no floating-point output)")
+        out.print(f"class scores: none found ({info.site_problem})", soft_wrap=True)
     else:
-        ends = f"ends in {site.activation.capitalize()}" if site.activation else "raw logits"
-        out.print(
-            f"class scores: output '{site.output}' ({ends}; logits tensor '{site.scores}', "
-            f"class axis {site.class_axis}, {site.num_classes or '?'} classes)"
-        )
+        out.print(f"class scores: {_describe_site(site)}", soft_wrap=True)
+    if info.external_data:
+        out.print(f"external data: {', '.join(info.external_data)}", soft_wrap=True)
     out.print(f"batch dim: {'fixed' if info.batch_fixed else 'dynamic'}")
     if info.record is not None:
         out.print(
@@ -164,6 +185,21 @@ def _render_info(info: ModelInfo) -> None:
     else:
         out.print("calibration record: none")
     out.print(f"sha256: {info.sha256}")
+
+
+def _describe_site(site) -> str:
+    names = {"softmax": "Softmax", "logsoftmax": "LogSoftmax", "sigmoid": "Sigmoid"}
+    if site.from_probabilities:
+        ends = f"probabilities of an ai.onnx.ml classifier, tensor '{site.scores}'"
+    elif site.activation:
+        ends = f"ends in {names[site.activation]}; logits tensor '{site.scores}'"
+    else:
+        ends = "raw logits"
+    where = f", values in tensor '{site.tensor}'" if site.tensor != site.output else ""
+    return (
+        f"output '{site.output}' ({ends}{where}; class axis {site.class_axis} of rank "
+        f"{site.rank}, {site.num_classes or '?'} classes, {site.dtype})"
+    )
 
 
 def _render_fit(summary: FitSummary) -> None:
@@ -228,6 +264,7 @@ def capture(
         Path, typer.Option("--out", help="Capture file to write (.npz).", show_default=False)
     ],
     output: OutputOpt = None,
+    activation: ActivationOpt = None,
     batch_size: BatchOpt = DEFAULT_BATCH,
     force: ForceOpt = False,
     quiet: QuietOpt = False,
@@ -235,7 +272,14 @@ def capture(
     """Run the model on CPU over a labelled set and save its logits and labels."""
     with _progress(quiet) as progress:
         cap = api.capture(
-            model, data, out=out_path, output=output, batch_size=batch_size, force=force, progress=progress
+            model,
+            data,
+            out=out_path,
+            output=output,
+            batch_size=batch_size,
+            force=force,
+            progress=progress,
+            activation=activation,
         )
     out.print(
         f"captured {cap.meta.n} x {cap.meta.num_classes} logits from '{cap.meta.scores}' "
@@ -275,9 +319,12 @@ def patch(
     drop_logits: Annotated[
         bool, typer.Option("--drop-logits", help="Remove the logits output when a new output is added.")
     ] = False,
+    activation: ActivationOpt = None,
+    compute_dtype: ComputeDtypeOpt = None,
+    fold: FoldOpt = False,
     force: ForceOpt = False,
 ) -> None:
-    """Rewrite the graph so the model outputs softmax(logits / T)."""
+    """Rewrite the graph so the model outputs softmax(logits / T) (or sigmoid(logits / T))."""
     result = api.patch(
         model,
         out_path,
@@ -286,11 +333,27 @@ def patch(
         output=output,
         output_name=output_name,
         drop_logits=drop_logits,
+        activation=activation,
+        compute_dtype=compute_dtype,
+        fold=fold,
         force=force,
     )
     r = result.record
-    how = "Div inserted before the existing activation" if r.rewrite == "insert-before-activation" else "Div + Softmax appended"
-    out.print(f"T = {r.temperature:.4f}: {how}; calibrated output '{r.output}' -> {result.path}")
+    out.print(f"T = {r.temperature:.4f}: {_how(r)}; calibrated output '{r.output}' -> {result.path}")
+
+
+def _how(r) -> str:
+    how = {
+        "insert-before-activation": "Div inserted before the existing activation",
+        "append-softmax": "Div + Softmax appended",
+        "append-sigmoid": "Div + Sigmoid appended",
+        "ml-log-probabilities": "classifier probabilities replaced by softmax(log p / T)",
+    }.get(r.rewrite, r.rewrite)
+    if r.folded:
+        how += " (T folded into the weights, no Div)"
+    if r.compute_dtype:
+        how += f" (computed in {r.compute_dtype})"
+    return how
 
 
 @app.command()
@@ -330,6 +393,9 @@ def calibrate(
     drop_logits: Annotated[
         bool, typer.Option("--drop-logits", help="Remove the logits output when a new output is added.")
     ] = False,
+    activation: ActivationOpt = None,
+    compute_dtype: ComputeDtypeOpt = None,
+    fold: FoldOpt = False,
     batch_size: BatchOpt = DEFAULT_BATCH,
     force: ForceOpt = False,
     as_json: JsonOpt = False,
@@ -347,6 +413,9 @@ def calibrate(
             output=output,
             output_name=output_name,
             drop_logits=drop_logits,
+            activation=activation,
+            compute_dtype=compute_dtype,
+            fold=fold,
             batch_size=batch_size,
             force=force,
             progress=progress,
