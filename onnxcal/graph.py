@@ -274,6 +274,12 @@ def _check_locations(locations: list[str], model_path: Path) -> tuple[Path, ...]
                 "outside the model's directory (absolute path, '..' or a symlink leading out)",
                 "keep the external data files beside the .onnx file, named relative to it",
             )
+        if (base / rel).is_symlink():  # onnx's loader refuses links too
+            raise OnnxcalError(
+                f"external data file '{loc}' of '{model_path}' is a symbolic link, which "
+                "onnx will not read through",
+                "put the weights file itself beside the .onnx file",
+            )
         if not target.is_file():
             raise OnnxcalError(
                 f"external data file '{loc}' of '{model_path}' is not in '{base}'",
@@ -877,6 +883,10 @@ class _Surgery:
             self.graph.node.insert(index + j, node)
         self.nodes = []
 
+    def value_info(self, vi: onnx.ValueInfoProto) -> None:
+        self.graph.value_info.append(vi)
+        self.changes.setdefault("value_info", []).append(vi.name)
+
     def rename_output(self, node: onnx.NodeProto, slot: int, base: str) -> str:
         """Give ``node.output[slot]`` a new name (returned); the old name is freed for us."""
         new = self.name(base)
@@ -1014,6 +1024,9 @@ def _rewrite_ml(s: _Surgery, site: ScoreSite, scale: ScaleFn, compute: str | Non
     ml = s.graph.node[site.node]
     p = ml.output[1]
     raw = s.rename_output(ml, 1, f"{p}_uncalibrated")
+    # Type the renamed tensor: onnx infers none for some ai.onnx.ml ops
+    # (TreeEnsembleClassifier-1), and strict shape inference needs one.
+    s.value_info(helper.make_tensor_value_info(raw, _ELEM[site.dtype], [None, site.num_classes]))
     tiny = s.constant("onnxcal_smallest_probability", _scalar("", np.finfo(np_dtype(site.dtype)).tiny, site.dtype))
     logp = s.node("Log", [s.node("Max", [raw, tiny], f"{p}_clamped")], f"{p}_log")
     scaled = _scaled(s, logp, site.dtype, scale, compute)
@@ -1184,6 +1197,9 @@ def unpatch(model: onnx.ModelProto) -> onnx.ModelProto:
     inits = [i for i in g.initializer if i.name not in set(ch["initializers"])]
     del g.initializer[:]
     g.initializer.extend(inits)
+    infos = [vi for vi in g.value_info if vi.name not in set(ch.get("value_info", []))]
+    del g.value_info[:]
+    g.value_info.extend(infos)
     outputs = list(g.output)
     restored = None
     if ch.get("dropped"):
