@@ -180,7 +180,8 @@ def _render_info(info: ModelInfo) -> None:
     if info.record is not None:
         out.print(
             f"calibration record: T = {info.record.temperature:.4f} on output "
-            f"'{info.record.output}' ({info.record.rewrite})"
+            f"'{info.record.output}' ({_how(info.record)})",
+            soft_wrap=True,
         )
     else:
         out.print("calibration record: none")
@@ -343,16 +344,20 @@ def patch(
 
 
 def _how(r) -> str:
+    """One line on what the patch did to the graph."""
+    if r.folded:
+        how = "1/T folded into the weight and bias of the logits layer"
+        how += "; Softmax appended" if r.rewrite == "append-softmax" else ""
+        how += "; Sigmoid appended" if r.rewrite == "append-sigmoid" else ""
+        return how
     how = {
         "insert-before-activation": "Div inserted before the existing activation",
         "append-softmax": "Div + Softmax appended",
         "append-sigmoid": "Div + Sigmoid appended",
         "ml-log-probabilities": "classifier probabilities replaced by softmax(log p / T)",
     }.get(r.rewrite, r.rewrite)
-    if r.folded:
-        how += " (T folded into the weights, no Div)"
     if r.compute_dtype:
-        how += f" (computed in {r.compute_dtype})"
+        how += f", computed in {r.compute_dtype}"
     return how
 
 

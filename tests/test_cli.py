@@ -165,3 +165,54 @@ def test_debug_shows_traceback(work, run_cli, monkeypatch):
 def test_usage_error_exits_2(run_cli):
     r = run_cli("patch")
     assert r.code == 2
+
+
+EXPORTERS = Path(__file__).resolve().parents[1] / "fixtures" / "exporters"
+
+
+def test_patch_options_on_exported_models(tmp_path, run_cli):
+    fp16 = EXPORTERS / "belt_spectrogram_softmax_fp16_op13.onnx"
+    r = run_cli("patch", fp16, "--temperature", "2", "--compute-dtype", "float32", "--out", tmp_path / "a.onnx")
+    assert r.code == 0 and "computed in float32" in r.out
+    cnn = EXPORTERS / "belt_spectrogram_softmax_op13.onnx"
+    r = run_cli("patch", cnn, "--temperature", "2", "--fold", "--out", tmp_path / "b.onnx")
+    assert r.code == 0 and "folded" in r.out
+    r = run_cli("inspect", tmp_path / "b.onnx", "--json")
+    assert json.loads(r.out)["record"]["folded"] is True
+    r = run_cli("verify", tmp_path / "b.onnx", "--data", EXPORTERS / "belt_spectrogram_val.npz", "-q")
+    assert r.code == 0, r.out
+    seg = EXPORTERS / "belt_surface_softmax_op11.onnx"
+    r = run_cli("patch", seg, "--temperature", "2", "--fold", "--out", tmp_path / "c.onnx")
+    assert r.code == 2 and "not a Gemm or MatMul" in r.err and not (tmp_path / "c.onnx").exists()
+    r = run_cli("patch", cnn, "--temperature", "2", "--activation", "sigmoid", "--out", tmp_path / "d.onnx")
+    assert r.code == 2 and "already comes from softmax" in r.err
+    r = run_cli("patch", cnn, "--temperature", "2", "--compute-dtype", "half", "--out", tmp_path / "e.onnx")
+    assert r.code == 2 and "--compute-dtype 'half' is not one of" in r.err
+
+
+def test_calibrate_raw_multi_logit_head_as_sigmoid(tmp_path, run_cli):
+    # The multi-label head without its Sigmoid: --activation sigmoid says how to read it.
+    model = onnx.load(str(EXPORTERS / "belt_faults_multilabel_op17.onnx"))
+    sigmoid = next(n for n in model.graph.node if n.op_type == "Sigmoid")
+    model.graph.node.remove(sigmoid)
+    model.graph.output[0].name = sigmoid.input[0]
+    raw = save_model(model, tmp_path / "raw.onnx")
+    val = EXPORTERS / "belt_faults_multilabel_op17_val.npz"
+    r = run_cli("calibrate", raw, "--data", val, "--out", tmp_path / "s.onnx", "--activation", "sigmoid", "-q")
+    assert r.code == 0, r.err
+    assert graph.read_record(onnx.load(str(tmp_path / "s.onnx"))).rewrite == "append-sigmoid"
+    r = run_cli("calibrate", raw, "--data", val, "--out", tmp_path / "t.onnx", "-q")
+    assert r.code == 2 and "labels" in r.err  # read as a softmax, 0/1 flags are no class indices
+
+
+def test_inspect_zipmap_model(run_cli):
+    r = run_cli("inspect", EXPORTERS / "wine_boosted_zipmap.onnx")
+    assert r.code == 0
+    assert "seq(map(int64, float32))" in r.out and "ai.onnx.ml classifier" in r.out
+
+
+def test_calibrate_refuses_an_already_calibrated_model(tmp_path, run_cli):
+    out = tmp_path / "c.onnx"
+    assert run_cli("patch", DEMO_MODEL, "--temperature", "2", "--out", out).code == 0
+    r = run_cli("calibrate", out, "--data", DEMO_VAL, "--out", tmp_path / "d.onnx", "-q")
+    assert r.code == 2 and "already calibrated" in r.err

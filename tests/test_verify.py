@@ -57,3 +57,20 @@ def test_record_and_source_checks():
     assert not record_check(2.0, None).passed
     assert source_check("a" * 64, "a" * 64).passed
     assert not source_check("a" * 64, "b" * 64).passed
+
+
+def test_tolerance_follows_the_coarsest_dtype():
+    from onnxcal.verify import TOLERANCE, tolerance
+
+    assert tolerance("float32") == TOLERANCE["float32"]
+    assert tolerance(("float16", "float32")) == TOLERANCE["float16"]
+    # IEEE 754 binary16 unit roundoff is 2**-11: the limit is a few units, not less.
+    assert 2.0**-11 < TOLERANCE["float16"] < 0.01
+    assert TOLERANCE["float64"] < TOLERANCE["float32"] < TOLERANCE["float16"] < TOLERANCE["bfloat16"]
+
+
+def test_record_check_rounds_to_the_initializer_dtype():
+    t16 = float(np.float16(1.2345))
+    assert record_check(1.2345, t16, "float16").passed  # T held in float16
+    assert not record_check(1.2345, t16, "float32").passed
+    assert not record_check(1.2345, float(np.float16(1.25)), "float16").passed
