@@ -19,11 +19,14 @@ from .metrics import log_softmax
 # docs/commands.md (verify) gives the reasoning and the measured errors.
 # float32 softmax outputs carry ~1e-7 relative rounding; 1e-5 leaves room for
 # the different summation orders of onnxruntime's kernels (common practice).
-# float16 has a unit roundoff of 2**-11 (4.9e-4, IEEE 754 binary16) and
-# bfloat16 of 2**-8 (3.9e-3): the output alone is rounded by up to that much
-# near 1, and the Div rounds z / T by as much again relative to |z / T|, so
-# the limits are a few units of roundoff.
-TOLERANCE = {"float64": 1e-9, "float32": 1e-5, "float16": 4e-3, "bfloat16": 3e-2}
+# float16 has a unit roundoff of 2**-11 (4.9e-4, IEEE 754 binary16): the
+# output alone is rounded by up to that much near 1, the Div rounds z / T
+# relative to |z / T|, and onnxruntime's CPU provider runs float16 Gemm in
+# float32 and may skip a float16 rounding of the logits that the captured
+# reference has (measured: 2.6e-3 on the float16 fixture, even at T = 1).
+# 5e-3 still catches a T off by 2 % there. bfloat16 (unit roundoff 2**-8, 8x
+# coarser) scales that; no fixture measures it (no onnxruntime CPU kernels).
+TOLERANCE = {"float64": 1e-9, "float32": 1e-5, "float16": 5e-3, "bfloat16": 4e-2}
 
 
 def tolerance(dtypes: str | tuple[str, ...]) -> float:

@@ -13,6 +13,7 @@ from onnx.reference import ReferenceEvaluator
 from conftest import identity_model, onehot_int_model, random_mlp, save_model
 from onnxcal import graph
 from onnxcal.errors import OnnxcalError
+from onnxcal.verify import tolerance
 
 SHA = "0" * 64
 
@@ -333,7 +334,7 @@ def test_append_with_float16_compute_dtype(rng, x):
     (z, p) = run_ort(patched, x.astype(np.float16), ["scores", "probabilities"])
     assert p.dtype == np.float16
     ref = scipy.special.softmax(z.astype(np.float64) / 2.0, axis=1)
-    np.testing.assert_allclose(p, ref, atol=4e-3)  # verify.TOLERANCE["float16"]
+    np.testing.assert_allclose(p, ref, atol=tolerance("float16"))
     # Same dtype as the scores: no Casts, nothing recorded.
     assert graph.read_record(do_patch(random_mlp(rng), 2.0, compute_dtype="float32")).compute_dtype is None
     with pytest.raises(OnnxcalError, match="--compute-dtype 'int8' is not one of"):
