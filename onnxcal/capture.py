@@ -5,7 +5,7 @@ captured is that activation's input (the logits), exposed as an extra output
 of an in-memory copy; the model file is never changed.
 
 A capture file is an ``.npz`` with ``logits`` (float32, n x k), ``labels``
-(int64, n) and ``meta`` (a JSON string, see :class:`CaptureMeta`).
+(int64, n; or uint8, n x k 0/1 for a multi-label model) and ``meta`` (a JSON string, see :class:`CaptureMeta`).
 """
 
 from __future__ import annotations
@@ -22,7 +22,7 @@ import onnx
 
 from . import __version__
 from ._files import atomic_path, require_file
-from .data import Dataset, check_labels, match_inputs
+from .data import Dataset, check_label_array, match_inputs
 from .errors import OnnxcalError
 from .graph import ScoreSite, expose, find_scores, tensor_spec
 
@@ -223,10 +223,10 @@ def capture(
         raise OnnxcalError(f"'{dataset.source}' has no labels", "add a 'labels' array")
     site = find_scores(model, output)
     if site.num_classes is not None:  # range-check labels before the (long) run
-        check_labels(dataset.labels, dataset.n, site.num_classes, dataset.source)
+        check_label_array(dataset.labels, dataset.n, site.num_classes, dataset.source)
     logits = capture_scores(model, dataset, site, batch_size=batch_size, progress=progress)
     k = logits.shape[1]
-    labels = check_labels(dataset.labels, logits.shape[0], k, dataset.source)
+    labels = check_label_array(dataset.labels, logits.shape[0], k, dataset.source)
     meta = CaptureMeta(
         model_sha256=model_sha256,
         model_path=str(model_path),
@@ -275,5 +275,5 @@ def load_capture(path: str | os.PathLike) -> Capture:
         raise OnnxcalError(f"'{p}' is not an onnxcal capture file ({exc})", hint) from exc
     if logits.ndim != 2 or logits.dtype.kind != "f":
         raise OnnxcalError(f"'{p}' holds logits of shape {logits.shape} ({logits.dtype})", hint)
-    labels = check_labels(labels, logits.shape[0], logits.shape[1], str(p))
+    labels = check_label_array(labels, logits.shape[0], logits.shape[1], str(p))
     return Capture(logits=logits, labels=labels, meta=meta)

@@ -32,9 +32,8 @@ Optimization", SIAM J. Sci. Comput. 16(5), 1995 (L-BFGS-B).
 from __future__ import annotations
 
 import json
-import math
 import os
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -180,6 +179,21 @@ def _softmax_pass(logits, labels, beta, rows=None, weights=None, count_ties=Fals
         h += _dot(t["h"], w)
         total += len(y) if w is None else float(w.sum())
     return np.array([f / total]), np.array([g / total]), np.array([h / total]), np.array([unseparated])
+
+
+def nll_derivatives(
+    logits: np.ndarray, labels: np.ndarray, beta: float
+) -> tuple[float, float, float]:
+    """Mean NLL of softmax(beta * logits) and its first two derivatives in beta.
+
+    One pass over ``logits`` in row chunks, float64 accumulation.
+
+    Returns
+    -------
+    f, df, d2f : float
+    """
+    f, g, h, _ = _softmax_pass(logits, labels, np.array([float(beta)]))
+    return float(f[0]), float(g[0]), float(h[0])
 
 
 def _dot(x: np.ndarray, w: np.ndarray | None, axis: int = 0):
@@ -400,7 +414,7 @@ def fit_sigmoid_temperature(
     --------
     >>> z = np.array([[2.0], [2.0], [-2.0], [-2.0]])
     >>> round(fit_sigmoid_temperature(z, np.array([1, 0, 0, 0])).temperature, 2)
-    2.63
+    1.82
     """
     n_rows = len(logits) if rows is None else len(rows)
     kind = kind_of(logits.shape[1], np.ndim(labels))
@@ -445,38 +459,75 @@ def _affine_pass(logits, labels, w, b, rows, weights, softmax: bool):
     return f / total, gw / total, gb / total
 
 
+def _logit_scale(logits, rows) -> float:
+    """RMS of the logits on up to ~10 000 evenly spaced rows (to precondition w)."""
+    idx = np.arange(len(logits)) if rows is None else rows
+    sample = np.asarray(logits[idx[:: max(1, len(idx) // 10_000)]], dtype=np.float64)
+    return float(np.sqrt(np.mean(sample * sample))) or 1.0
+
+
 def _fit_affine(logits, labels, method, l2, rows, weights, start, kind) -> FitResult:
     k = logits.shape[1]
     softmax = method == "vector"
     evals = 0
+    # Optimise u = c * w with c the logits' RMS, so a unit step in u moves the
+    # scaled logits as much as a unit step in b (L-BFGS starts from an identity
+    # Hessian; without this it needs many more passes on large logits).
+    c = _logit_scale(logits, rows)
 
     def objective(x):
         nonlocal evals
         evals += 1
-        w, b = x[:k], x[k:]
+        w, b = x[:k] / c, x[k:]
         f, gw, gb = _affine_pass(logits, labels, w, b, rows, weights, softmax)
         f += l2 * (np.sum((w - 1.0) ** 2) + np.sum(b * b))
-        return f, np.concatenate([gw + 2.0 * l2 * (w - 1.0), gb + 2.0 * l2 * b])
+        return f, np.concatenate([(gw + 2.0 * l2 * (w - 1.0)) / c, gb + 2.0 * l2 * b])
 
     if start is None:
-        x0 = np.concatenate([np.ones(k), np.zeros(k)])
+        x0 = np.concatenate([np.full(k, c), np.zeros(k)])
     else:
         a = start.arrays()
-        x0 = np.concatenate([np.broadcast_to(a["w"], (k,)), np.broadcast_to(a["b"], (k,))])
-    bounds = [(1.0 / T_MAX, 1.0 / T_MIN)] * k + [(-B_MAX, B_MAX)] * k
+        x0 = np.concatenate([c * np.broadcast_to(a["w"], (k,)), np.broadcast_to(a["b"], (k,))])
+    bounds = [(c / T_MAX, c / T_MIN)] * k + [(-B_MAX, B_MAX)] * k
     res = scipy.optimize.minimize(
         objective, x0, jac=True, method="L-BFGS-B", bounds=bounds,
-        options={"maxiter": 2000, "maxfun": 4000, "ftol": 1e-13, "gtol": 1e-9, "maxcor": 20},
+        options={"maxiter": 2000, "maxfun": 4000, "ftol": 1e-12, "gtol": 1e-8, "maxcor": 20},
     )
-    w, b = res.x[:k], res.x[k:]
+    res.x[:k] /= c
+    res.jac[:k] *= c
+    w, b = res.x[:k], res.x[k:].copy()
+    if softmax:
+        # softmax(s + c) = softmax(s): report the biases with mean 0 (the L2
+        # optimum has it already, as the NLL is flat along b + c).
+        b -= b.mean()
     notes = _affine_bound_notes(w, b, labels, softmax)
+    if not notes and _unseparated(logits, labels, rows, weights, softmax) == 0:
+        notes.append(
+            "the model is right on every sample of this set, so the likelihood keeps rising "
+            "as the scales grow and the fit stopped at an arbitrary large scale; use a larger "
+            "or harder validation set"
+        )
     scaling = Scaling.of_affine(w if softmax else w[0], b if softmax else b[0], method, kind)
     n_rows = len(logits) if rows is None else len(rows)
     # L-BFGS-B stops on a small relative change of f or of the projected
     # gradient; "abnormal" line-search ends at the optimum count as converged
     # when the projected gradient is small.
+    bounds = [(1.0 / T_MAX, 1.0 / T_MIN)] * k + [(-B_MAX, B_MAX)] * k
     converged = bool(res.success) or float(np.max(np.abs(_projected(res.jac, res.x, bounds)))) < 1e-6
     return _result(scaling, evals * (1.0 if rows is None else len(rows) / max(n_rows, 1)), converged, notes)
+
+
+def _unseparated(logits, labels, rows, weights, softmax: bool) -> int:
+    """Rows (entries) whose true score is not strictly on the right side."""
+    count = 0
+    for z, y, w in iter_chunks(logits, labels, rows, weights):
+        if softmax:
+            zy = z[np.arange(len(y)), y]
+            bad = (z >= zy[:, None]).sum(axis=1) > 1
+        else:
+            bad = ((2.0 * y.reshape(len(y), -1) - 1.0) * z <= 0).any(axis=1)
+        count += int(np.count_nonzero(bad if w is None else bad & (w > 0)))
+    return count
 
 
 def _projected(grad, x, bounds):

@@ -7,12 +7,18 @@ rewrites work on a copy and return it, checked with
 The rewrites (one function each):
 
 * ``_insert_before_activation`` — the class scores already pass through a
-  Softmax, LogSoftmax or Sigmoid: put ``Div(scores, T)`` in front of it, so
-  every output keeps its name, shape, dtype and meaning (drop-in).
-* ``_append_softmax`` — the output holds raw logits: add ``Div`` and
-  ``Softmax`` after it and expose the result as a new output.
-* ``_set_temperature`` — the model already carries an onnxcal record: replace
-  the temperature initializer instead of stacking a second Div.
+  Softmax, LogSoftmax or Sigmoid: put the calibration nodes in front of it,
+  so every output keeps its name, shape, dtype and meaning (drop-in).
+* ``_append_activation`` — the output holds raw logits: add the calibration
+  nodes and a ``Softmax`` (or, for binary and multi-label models, a
+  ``Sigmoid``) after it and expose the result as a new output.
+* ``_set_parameters`` — the model already carries an onnxcal record: replace
+  the parameter initializers instead of stacking a second calibration.
+
+The calibration nodes come from one builder per form of the map:
+``_divide_nodes`` (temperature: ``Div(scores, T)``, T a scalar or one per
+label) and ``_affine_nodes`` (vector and Platt scaling:
+``Add(Mul(scores, w), b)``).
 
 The calibration record is JSON in ``metadata_props`` under ``RECORD_KEY``.
 """
@@ -31,6 +37,7 @@ from onnx import helper, numpy_helper
 from . import __version__
 from ._files import atomic_write_bytes, require_file
 from .errors import OnnxcalError
+from .scaling import Scaling, check_scaling
 
 RECORD_KEY = "onnxcal.calibration"
 RECORD_FORMAT = 1
@@ -127,29 +134,36 @@ class Record:
 
     Attributes
     ----------
-    temperature : float
-        T; the scores are divided by it.
+    temperature : float or None
+        T when the method is temperature scaling with one T; else None
+        (see ``parameters``).
     output : str
         The output that carries calibrated probabilities.
     scores : str
         The tensor divided by T.
     rewrite : str
-        ``"insert-before-activation"`` or ``"append-softmax"``.
+        ``"insert-before-activation"``, ``"append-softmax"`` or ``"append-sigmoid"``.
     activation : str
-        The activation after the Div (``"softmax"``, ``"logsoftmax"``, ...).
+        The activation after the calibration nodes (``"softmax"``, ``"logsoftmax"``, ``"sigmoid"``).
     temperature_initializer : str
-        Name of the initializer holding T.
+        Name of the initializer holding T ("" when the method has none).
     source_sha256 : str
         SHA-256 of the uncalibrated model file.
     source_path : str
         Path of the uncalibrated model when it was patched.
     fit : dict
-        Fit summary (method, metrics before/after), as in FIT.json.
+        Fit summary (method, metrics, intervals), as in FIT.json.
+    method : str
+        ``"temperature"``, ``"vector"`` or ``"platt"``.
+    parameters : dict
+        The baked-in parameters (``{"temperature": T}``, ``{"w": ..., "b": ...}``).
+    initializers : dict
+        Name of the initializer holding each parameter.
     onnxcal_version : str
     format : int
     """
 
-    temperature: float
+    temperature: float | None
     output: str
     scores: str
     rewrite: str
@@ -158,11 +172,19 @@ class Record:
     source_sha256: str
     source_path: str
     fit: dict = field(default_factory=dict)
+    method: str = "temperature"
+    parameters: dict = field(default_factory=dict)
+    initializers: dict = field(default_factory=dict)
     onnxcal_version: str = __version__
     format: int = RECORD_FORMAT
 
     def to_dict(self) -> dict:
         return asdict(self)
+
+    @property
+    def scaling(self) -> Scaling:
+        """The calibration map the record describes."""
+        return Scaling(self.method, dict(self.parameters), self.fit.get("kind", "multiclass"))
 
 
 def load_model(path: str | os.PathLike) -> onnx.ModelProto:
@@ -321,7 +343,14 @@ def read_record(model: onnx.ModelProto) -> Record | None:
         if prop.key == RECORD_KEY:
             try:
                 data = json.loads(prop.value)
-                return Record(**data)
+                record = Record(**data)
+                if not record.parameters and record.temperature is not None:  # written before vector scaling
+                    record = replace(
+                        record,
+                        parameters={"temperature": record.temperature},
+                        initializers={"temperature": record.temperature_initializer},
+                    )
+                return record
             except (ValueError, TypeError) as exc:
                 raise OnnxcalError(
                     f"the model's calibration record ({RECORD_KEY}) is damaged: {exc}",
@@ -364,6 +393,14 @@ def temperature_value(model: onnx.ModelProto, record: Record) -> float | None:
     return None
 
 
+def parameter_values(model: onnx.ModelProto, record: Record) -> dict[str, np.ndarray] | None:
+    """The values of the record's parameter initializers in the graph (flattened), or None."""
+    inits = {i.name: i for i in model.graph.initializer}
+    if not record.initializers or any(n not in inits for n in record.initializers.values()):
+        return None
+    return {k: numpy_helper.to_array(inits[n]).astype(np.float64).reshape(-1) for k, n in record.initializers.items()}
+
+
 # --------------------------------------------------------------------------
 # Rewriting
 
@@ -392,47 +429,73 @@ def _all_names(graph: onnx.GraphProto) -> set[str]:
     return names
 
 
-def _temperature_tensor(name: str, temperature: float, dtype: str) -> onnx.TensorProto:
-    return numpy_helper.from_array(np.array(temperature, dtype=np.dtype(dtype)), name=name)
+def _parameter_tensor(name: str, value, dtype: str, site: ScoreSite) -> onnx.TensorProto:
+    """A parameter initializer: a scalar, or one value per class shaped to
+    broadcast along the class axis of the scores (ONNX multidirectional
+    broadcasting aligns trailing dims)."""
+    arr = np.asarray(value, dtype=np.dtype(dtype))
+    if arr.ndim == 1:
+        arr = arr.reshape((arr.size,) + (1,) * (site.rank - 1 - site.class_axis))
+    return numpy_helper.from_array(arr, name=name)
+
+
+def _divide_nodes(graph, site, scaling, source, taken):
+    """``Div(source, T)``: temperature scaling (one T, or one per label)."""
+    t_name = unique_name("onnxcal_temperature", taken)
+    graph.initializer.append(_parameter_tensor(t_name, scaling.parameters["temperature"], site.dtype, site))
+    out = unique_name(f"{source}_calibrated", taken)
+    div = helper.make_node("Div", [source, t_name], [out], name=unique_name("onnxcal_divide", taken))
+    return [div], out, {"temperature": t_name}
+
+
+def _affine_nodes(graph, site, scaling, source, taken):
+    """``Add(Mul(source, w), b)``: vector scaling (per class) or Platt scaling (scalars)."""
+    w_name = unique_name("onnxcal_scale", taken)
+    b_name = unique_name("onnxcal_bias", taken)
+    for name, key in ((w_name, "w"), (b_name, "b")):
+        graph.initializer.append(_parameter_tensor(name, scaling.parameters[key], site.dtype, site))
+    scaled = unique_name(f"{source}_scaled", taken)
+    out = unique_name(f"{source}_calibrated", taken)
+    nodes = [
+        helper.make_node("Mul", [source, w_name], [scaled], name=unique_name("onnxcal_multiply", taken)),
+        helper.make_node("Add", [scaled, b_name], [out], name=unique_name("onnxcal_add", taken)),
+    ]
+    return nodes, out, {"w": w_name, "b": b_name}
+
+
+_NODE_BUILDERS = {"temperature": _divide_nodes, "vector": _affine_nodes, "platt": _affine_nodes}
 
 
 def _insert_before_activation(
-    graph: onnx.GraphProto, site: ScoreSite, t_name: str, taken: set[str]
+    graph: onnx.GraphProto, site: ScoreSite, nodes: list[onnx.NodeProto], calibrated: str
 ) -> None:
-    """Rewire the activation node to read ``Div(scores, T)``."""
-    scaled = unique_name(f"{site.scores}_calibrated", taken)
-    div = helper.make_node(
-        "Div", [site.scores, t_name], [scaled], name=unique_name("onnxcal_divide", taken)
-    )
+    """Rewire the activation node to read the calibrated scores."""
     act = graph.node[site.node]
-    act.input[0] = scaled
-    graph.node.insert(site.node, div)
+    act.input[0] = calibrated
+    for offset, node in enumerate(nodes):
+        graph.node.insert(site.node + offset, node)
 
 
-def _append_softmax(
+def _append_activation(
     graph: onnx.GraphProto,
     site: ScoreSite,
-    t_name: str,
+    nodes: list[onnx.NodeProto],
+    calibrated: str,
     taken: set[str],
     new_output: str,
     drop_logits: bool,
+    activation: str,
 ) -> None:
-    """Add ``Softmax(Div(output, T))`` as a new graph output ``new_output``."""
-    scaled = unique_name(f"{site.output}_scaled", taken)
-    graph.node.append(
-        helper.make_node(
-            "Div", [site.output, t_name], [scaled], name=unique_name("onnxcal_divide", taken)
-        )
-    )
-    graph.node.append(
-        helper.make_node(
-            "Softmax",
-            [scaled],
-            [new_output],
-            name=unique_name("onnxcal_softmax", taken),
+    """Add ``Softmax`` (or ``Sigmoid``) of the calibrated scores as a new graph output."""
+    graph.node.extend(nodes)
+    if activation == "softmax":
+        act = helper.make_node(
+            "Softmax", [calibrated], [new_output], name=unique_name("onnxcal_softmax", taken),
             axis=site.class_axis,
         )
-    )
+    else:
+        act = helper.make_node("Sigmoid", [calibrated], [new_output], name=unique_name("onnxcal_sigmoid", taken))
+    graph.node.append(act)
     old = next(vi for vi in graph.output if vi.name == site.output)
     new_vi = onnx.ValueInfoProto()
     new_vi.CopyFrom(old)
@@ -444,18 +507,30 @@ def _append_softmax(
     graph.output.append(new_vi)
 
 
-def _set_temperature(graph: onnx.GraphProto, record: Record, temperature: float) -> None:
-    """Replace the value of an existing temperature initializer."""
-    for i, init in enumerate(graph.initializer):
-        if init.name == record.temperature_initializer:
-            dtype = helper.tensor_dtype_to_np_dtype(init.data_type)
-            graph.initializer[i].CopyFrom(_temperature_tensor(init.name, temperature, dtype))
-            return
-    raise OnnxcalError(
-        f"the calibration record names initializer '{record.temperature_initializer}' "
-        "but the graph has none of that name",
-        "patch the original, uncalibrated model instead",
-    )
+def _set_parameters(graph: onnx.GraphProto, record: Record, scaling: Scaling) -> None:
+    """Replace the values of the existing parameter initializers."""
+    if scaling.method != record.method or set(record.initializers) != set(scaling.parameters):
+        raise OnnxcalError(
+            f"the model is already calibrated with {record.method} scaling and cannot be "
+            f"re-patched with {scaling.method} scaling in place",
+            "patch the original, uncalibrated model instead",
+        )
+    inits = {init.name: i for i, init in enumerate(graph.initializer)}
+    for key, name in record.initializers.items():
+        if name not in inits:
+            raise OnnxcalError(
+                f"the calibration record names initializer '{name}' but the graph has none of that name",
+                "patch the original, uncalibrated model instead",
+            )
+        old = graph.initializer[inits[name]]
+        new = np.asarray(scaling.parameters[key], dtype=helper.tensor_dtype_to_np_dtype(old.data_type))
+        if new.size != int(np.prod(old.dims)):
+            raise OnnxcalError(
+                f"the new {scaling.method} parameter '{key}' has {new.size} values, the model's has "
+                f"{int(np.prod(old.dims))}",
+                "patch the original, uncalibrated model instead",
+            )
+        graph.initializer[inits[name]].CopyFrom(numpy_helper.from_array(new.reshape(tuple(old.dims)), name))
 
 
 def _write_record(model: onnx.ModelProto, record: Record) -> None:
@@ -481,9 +556,29 @@ def check_temperature(temperature: float) -> float:
     return t
 
 
+def _site_scaling(calibration: float | Scaling, site: ScoreSite) -> Scaling:
+    """The scaling to bake in, checked against the site it goes to."""
+    if not isinstance(calibration, Scaling):
+        kind = "binary" if site.num_classes == 1 else "multiclass"
+        calibration = Scaling.of_temperature(check_temperature(calibration), kind)
+    scaling = check_scaling(calibration, site.num_classes)
+    if scaling.activation == "sigmoid" and site.activation in ("softmax", "logsoftmax"):
+        raise OnnxcalError(
+            f"a {scaling.kind} calibration (for sigmoid outputs) cannot go before the "
+            f"{site.activation.capitalize()} of output '{site.output}'",
+            "fit it on logits captured from this output",
+        )
+    if scaling.method == "vector" and site.activation == "sigmoid":
+        raise OnnxcalError(
+            f"vector scaling is fitted for a softmax, but output '{site.output}' ends in a Sigmoid",
+            "use --method temperature, or fit on a softmax output",
+        )
+    return scaling
+
+
 def patch(
     model: onnx.ModelProto,
-    temperature: float,
+    calibration: float | Scaling,
     *,
     source_sha256: str,
     source_path: str | os.PathLike,
@@ -492,14 +587,14 @@ def patch(
     drop_logits: bool = False,
     fit: dict | None = None,
 ) -> onnx.ModelProto:
-    """Return a copy of ``model`` whose output carries softmax(scores / T).
+    """Return a copy of ``model`` whose output carries calibrated probabilities.
 
     Parameters
     ----------
     model : onnx.ModelProto
         Not modified.
-    temperature : float
-        T > 0.
+    calibration : float or Scaling
+        A temperature T > 0, or a fitted scaling (temperature, vector, Platt).
     source_sha256, source_path : str
         Identify the uncalibrated model in the record.
     output : str, optional
@@ -516,41 +611,48 @@ def patch(
     onnx.ModelProto
         Checked with ``onnx.checker.check_model(full_check=True)``.
     """
-    temperature = check_temperature(temperature)
     out = onnx.ModelProto()
     out.CopyFrom(model)
     graph = out.graph
     previous = read_record(model)
     if previous is not None:
-        _set_temperature(graph, previous, temperature)
-        record = replace(previous, temperature=temperature, fit=fit or {})
+        scaling = _site_scaling(calibration, find_scores(model, previous.output))
+        _set_parameters(graph, previous, scaling)
+        record = replace(
+            previous, temperature=scaling.temperature, parameters=dict(scaling.parameters), fit=fit or {}
+        )
     else:
         site = find_scores(model, output)
+        scaling = _site_scaling(calibration, site)
         taken = _all_names(graph)
-        t_name = unique_name("onnxcal_temperature", taken)
-        graph.initializer.append(_temperature_tensor(t_name, temperature, site.dtype))
+        if site.activation is None and new_output in taken:
+            raise OnnxcalError(
+                f"the model already has a tensor named '{new_output}'",
+                "choose another name with --output-name",
+            )
+        taken.add(new_output)
+        source = site.scores if site.activation is not None else site.output
+        nodes, calibrated_scores, inits = _NODE_BUILDERS[scaling.method](graph, site, scaling, source, taken)
         if site.activation is not None:
-            _insert_before_activation(graph, site, t_name, taken)
+            _insert_before_activation(graph, site, nodes, calibrated_scores)
             rewrite, activation, calibrated = "insert-before-activation", site.activation, site.output
         else:
-            if new_output in taken:
-                raise OnnxcalError(
-                    f"the model already has a tensor named '{new_output}'",
-                    "choose another name with --output-name",
-                )
-            taken.add(new_output)
-            _append_softmax(graph, site, t_name, taken, new_output, drop_logits)
-            rewrite, activation, calibrated = "append-softmax", "softmax", new_output
+            activation = scaling.activation
+            _append_activation(graph, site, nodes, calibrated_scores, taken, new_output, drop_logits, activation)
+            rewrite, calibrated = f"append-{activation}", new_output
         record = Record(
-            temperature=temperature,
+            temperature=scaling.temperature,
             output=calibrated,
-            scores=site.scores if site.activation else site.output,
+            scores=source,
             rewrite=rewrite,
             activation=activation,
-            temperature_initializer=t_name,
+            temperature_initializer=inits.get("temperature", ""),
             source_sha256=source_sha256,
             source_path=str(source_path),
             fit=fit or {},
+            method=scaling.method,
+            parameters=dict(scaling.parameters),
+            initializers=inits,
         )
     _write_record(out, record)
     try:

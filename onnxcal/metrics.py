@@ -251,7 +251,7 @@ def adaptive_calibration_error(
     Examples
     --------
     >>> round(adaptive_calibration_error(np.array([0.6, 0.7, 0.8, 0.9]), np.array([1, 0, 1, 1]), n_bins=2), 3)
-    0.25
+    0.15
     """
     return ece_from_bins(*equal_mass_bins(confidence, correct, n_bins))
 

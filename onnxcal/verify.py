@@ -1,8 +1,9 @@
 """Check a patched model against a NumPy reference computed from the original.
 
-The reference is ``softmax(logits / T)`` in float64, where the logits are the
-original model's class scores on the same inputs and T is the temperature in
-the patched model's calibration record.
+The reference is the activation of the calibrated logits in float64, e.g.
+``softmax(logits / T)`` or ``softmax(w * logits + b)``, where the logits are
+the original model's class scores on the same inputs and the parameters are
+those in the patched model's calibration record (``Scaling.apply``).
 """
 
 from __future__ import annotations
@@ -11,7 +12,8 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 
-from .metrics import log_softmax
+from .metrics import log_softmax, sigmoid
+from .scaling import Scaling
 
 # Largest allowed |patched - reference| and |row sum - 1|, by output dtype.
 # float32 softmax outputs carry ~1e-7 relative rounding; 1e-5 leaves room for
@@ -54,33 +56,47 @@ class VerifyResult:
         }
 
 
-def reference_probabilities(logits: np.ndarray, temperature: float, activation: str) -> np.ndarray:
-    """The NumPy reference: the activation of ``logits / temperature``, float64.
+def _as_scaling(scaling: Scaling | float) -> Scaling:
+    return scaling if isinstance(scaling, Scaling) else Scaling.of_temperature(float(scaling))
 
-    ``logits`` has the class axis last. For ``"logsoftmax"`` the reference is
-    in log space, like the model's output.
+
+def _describe(scaling: Scaling) -> str:
+    if scaling.temperature is not None:
+        return f"logits / {scaling.temperature:.6g}"
+    return "logits / T_k" if scaling.method == "temperature" else "w * logits + b"
+
+
+def reference_probabilities(logits: np.ndarray, scaling: Scaling | float, activation: str) -> np.ndarray:
+    """The NumPy reference: the activation of the calibrated logits, float64.
+
+    ``logits`` has the class axis last; ``scaling`` is a Scaling or a
+    temperature. For ``"logsoftmax"`` the reference is in log space, like
+    the model's output.
     """
-    z = np.asarray(logits, dtype=np.float64) / temperature
+    z = _as_scaling(scaling).apply(logits)
     if activation == "logsoftmax":
         return log_softmax(z, axis=-1)
     if activation == "sigmoid":
-        return 1.0 / (1.0 + np.exp(-z))
+        return sigmoid(z)
     return np.exp(log_softmax(z, axis=-1))
 
 
 def compare(
     patched: np.ndarray,
     logits: np.ndarray,
-    temperature: float,
+    scaling: Scaling | float,
     activation: str,
     dtype: str,
 ) -> tuple[Check, ...]:
     """Checks (1) max abs error vs reference, (2) row sums, (3) argmax agreement.
 
-    Both arrays have the class axis last and the same shape.
+    Both arrays have the class axis last and the same shape. The argmax (or
+    0.5-threshold decisions) must match the reference's; for temperature
+    scaling that is the original's.
     """
     tol = TOLERANCE.get(dtype, 1e-5)
-    ref = reference_probabilities(logits, temperature, activation)
+    scaling = _as_scaling(scaling)
+    ref = reference_probabilities(logits, scaling, activation)
     got = np.asarray(patched, dtype=np.float64)
     err = float(np.max(np.abs(got - ref))) if got.size else 0.0
     checks = [
@@ -89,38 +105,45 @@ def compare(
             err <= tol,
             err,
             tol,
-            f"max |patched - softmax(logits / {temperature:.6g})| over {got.size} values",
+            f"max |patched - {activation}({_describe(scaling)})| over {got.size} values",
         )
     ]
     if activation in ("softmax", "logsoftmax"):
         probs = np.exp(got) if activation == "logsoftmax" else got
         sums = float(np.max(np.abs(probs.sum(axis=-1) - 1.0))) if got.size else 0.0
         checks.append(Check("row-sums", sums <= tol, sums, tol, "max |sum_k p_k - 1| over rows"))
-        agree = float(np.mean(got.argmax(axis=-1) == np.asarray(logits).argmax(axis=-1)))
-        checks.append(
-            Check("argmax", agree == 1.0, agree, 1.0, "fraction of rows whose argmax is unchanged")
-        )
+        agree = float(np.mean(got.argmax(axis=-1) == ref.argmax(axis=-1)))
+        what = "unchanged" if scaling.method == "temperature" else "as in the reference"
+        checks.append(Check("argmax", agree == 1.0, agree, 1.0, f"fraction of rows whose argmax is {what}"))
     else:
-        decide = float(np.mean((got > 0.5) == (np.asarray(logits) > 0)))
+        decide = float(np.mean((got > 0.5) == (ref > 0.5)))
         checks.append(
-            Check("decisions", decide == 1.0, decide, 1.0, "fraction of 0.5-threshold decisions kept")
+            Check("decisions", decide == 1.0, decide, 1.0, "fraction of 0.5-threshold decisions as in the reference")
         )
     return tuple(checks)
 
 
-def record_check(recorded: float, in_graph: float | None) -> Check:
-    """Check that the record's temperature is the one the graph uses."""
+def _flat(values) -> np.ndarray:
+    if isinstance(values, dict):
+        return np.concatenate([np.asarray(values[k], dtype=np.float64).reshape(-1) for k in sorted(values)])
+    return np.asarray(values, dtype=np.float64).reshape(-1)
+
+
+def record_check(recorded, in_graph) -> Check:
+    """Check that the record's parameters are the ones the graph uses.
+
+    ``recorded`` and ``in_graph`` are a temperature, or dicts of parameter
+    arrays (``in_graph`` None when an initializer is missing).
+    """
     if in_graph is None:
-        return Check("record", False, float("nan"), recorded, "temperature initializer missing")
-    diff = abs(recorded - in_graph) / recorded
-    # float32 initializer holds T to ~6e-8 relative.
-    return Check(
-        "record",
-        diff <= 1e-6,
-        diff,
-        1e-6,
-        f"record T = {recorded:.6g}, graph T = {in_graph:.6g} (relative difference)",
-    )
+        return Check("record", False, float("nan"), 1e-6, "parameter initializer missing")
+    r, g = _flat(recorded), _flat(in_graph)
+    if r.shape != g.shape:
+        return Check("record", False, float("nan"), 1e-6, f"record has {r.size} parameters, graph {g.size}")
+    # A float32 initializer holds each value to ~6e-8 relative.
+    diff = float(np.max(np.abs(r - g) / np.maximum(np.abs(r), 1e-12))) if r.size else 0.0
+    shown = f"record T = {r[0]:.6g}, graph T = {g[0]:.6g}" if r.size == 1 else f"{r.size} parameters"
+    return Check("record", diff <= 1e-6, diff, 1e-6, f"{shown} (max relative difference)")
 
 
 def source_check(recorded_sha: str, original_sha: str) -> Check:
