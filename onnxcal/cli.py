@@ -349,6 +349,7 @@ def fit(
     _render_fit(summary)
     if out_path is not None:
         out.print(f"wrote {out_path}")
+    out.print(f"caution: {CAUTION}", soft_wrap=True)
 
 
 @app.command()

@@ -54,7 +54,7 @@ _MAX_PASSES = 60
 _STEP_TOL = 1e-7
 # Above this many rows, the first Newton steps run on every m-th row only.
 _WARM_START_ROWS = 40_000
-_WARM_START_SAMPLE = 20_000
+_WARM_START_SAMPLE = 10_000
 MIN_PER_CLASS = 20
 FORMAT = 2
 

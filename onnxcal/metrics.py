@@ -25,12 +25,14 @@ import numpy as np
 from .scaling import Scaling, kind_of
 
 DEFAULT_BINS = 15
-# float64 elements per chunk: 2 MiB per temporary array, a handful at a time.
-_CHUNK_ELEMENTS = 1 << 18
+# float64 elements per chunk: 512 KiB per temporary array, a handful at a time
+# (measured fastest on this machine among 2^15 to 2^20: larger chunks fall out
+# of cache and pay page faults for every temporary).
+_CHUNK_ELEMENTS = 1 << 16
 
 
 def chunk_rows(n_classes: int) -> int:
-    """Rows per chunk so one float64 chunk of ``n_classes`` columns is ~2 MiB."""
+    """Rows per chunk so one float64 chunk of ``n_classes`` columns is ~512 KiB."""
     return max(1, _CHUNK_ELEMENTS // max(1, n_classes))
 
 
@@ -125,8 +127,37 @@ def reliability_bins(
     -------
     counts, confidence_sum, correct_sum : ndarray of shape (n_bins,)
     """
-    edges = np.linspace(0.0, 1.0, n_bins + 1)
-    return _binned(np.searchsorted(edges[1:-1], confidence, side="left"), confidence, correct, n_bins, weights)
+    return _binned(bin_ids(confidence, n_bins), confidence, correct, n_bins, weights)
+
+
+def bin_ids(p: np.ndarray, n_bins: int) -> np.ndarray:
+    """Index of the equal-width bin ``((m-1)/M, m/M]`` of each value in [0, 1].
+
+    The same as ``np.searchsorted(np.linspace(0, 1, M + 1)[1:-1], p)`` (the
+    rule of ``sklearn.calibration.calibration_curve``), computed as
+    ceil(p M) - 1, with values within rounding of an edge settled by the
+    search itself; several times faster on large arrays.
+
+    Examples
+    --------
+    >>> bin_ids(np.array([0.0, 0.1, 0.10001, 0.5, 1.0]), 10)
+    array([0, 0, 1, 4, 9])
+    """
+    p = np.asarray(p, dtype=np.float64)
+    f = p * n_bins
+    ids = np.ceil(f)
+    ids -= 1.0
+    np.clip(ids, 0, n_bins - 1, out=ids)
+    # Only values within rounding of an edge can disagree with the edges as
+    # numpy.linspace computes them; settle those by the edges themselves.
+    # (The edge at 0 needs no care: ceil - 1 and the clip put [0, 1/M] in bin 0.)
+    near = np.abs(f - np.rint(f)) < 1e-6
+    near &= f > 0.5
+    if near.any():
+        edges = np.linspace(0.0, 1.0, n_bins + 1)
+        ids[near] = np.searchsorted(edges[1:-1], p[near])
+    ids = ids.astype(np.intp)
+    return ids
 
 
 def _binned(ids, confidence, correct, n_bins, weights):
@@ -258,9 +289,7 @@ def adaptive_calibration_error(
 
 def _classwise_ids(p: np.ndarray, n_bins: int) -> np.ndarray:
     """Flat (class, bin) index of every entry of a (rows, K) probability array."""
-    edges = np.linspace(0.0, 1.0, n_bins + 1)
-    ids = np.searchsorted(edges[1:-1], p, side="left")
-    return (ids + n_bins * np.arange(p.shape[1])).ravel()
+    return (bin_ids(p, n_bins) + n_bins * np.arange(p.shape[1])).ravel()
 
 
 def _classwise_from_sums(p_sum: np.ndarray, y_sum: np.ndarray, n: float, n_classes: int) -> float:
@@ -431,6 +460,32 @@ def evaluate(
     return _evaluate_sigmoid(logits, labels, scaling, n_bins, rows, weights, kind)
 
 
+def _classwise_add(p_sum, y_sum, p, y, w, n_bins, onehot=None):
+    """Add a chunk's classwise-ECE sums, flat (class, bin) index k * M + m.
+
+    Only entries above the first edge are binned one by one (fewer than M
+    per row for softmax probabilities); the first bin gets the rest by
+    subtraction from the column sums, which is much faster for many classes.
+    """
+    k = p.shape[1]
+    first = np.linspace(0.0, 1.0, n_bins + 1)[1]
+    wp = p if w is None else p * w[:, None]
+    rows, cols = np.nonzero(p > first)
+    ids = bin_ids(p[rows, cols], n_bins) + n_bins * cols
+    upper = np.bincount(ids, weights=wp[rows, cols], minlength=k * n_bins)
+    p_sum += upper
+    p_sum[::n_bins] += wp.sum(axis=0) - upper.reshape(k, n_bins).sum(axis=1)
+    if onehot is None:  # multiclass: the label's entry of each row
+        r = np.arange(len(y))
+        ids_y = bin_ids(p[r, y], n_bins) + n_bins * y
+        y_sum += np.bincount(ids_y, weights=w, minlength=k * n_bins)
+    else:
+        wy = onehot if w is None else onehot * w[:, None]
+        upper_y = np.bincount(ids, weights=wy[rows, cols], minlength=k * n_bins)
+        y_sum += upper_y
+        y_sum[::n_bins] += wy.sum(axis=0) - upper_y.reshape(k, n_bins).sum(axis=1)
+
+
 def _evaluate_softmax(logits, labels, scaling, n_bins, rows, weights) -> Metrics:
     k = logits.shape[1]
     bins = np.zeros((3, n_bins))
@@ -440,9 +495,14 @@ def _evaluate_softmax(logits, labels, scaling, n_bins, rows, weights) -> Metrics
     confs, corrects = [], []
     for z, y, w in iter_chunks(logits, labels, rows, weights):
         r = np.arange(len(y))
-        logp = log_softmax(scaling.apply(z))
-        nll_sum -= _wsum(logp[r, y], w)
-        p = np.exp(logp, out=logp)
+        s = scaling.apply(z)
+        s -= s.max(axis=1, keepdims=True)
+        sy = s[r, y]
+        p = np.exp(s, out=s)
+        total = p.sum(axis=1)
+        p /= total[:, None]
+        # -log p_y = log sum_k exp(s_k) - s_y, with s shifted by its row maximum
+        nll_sum += _wsum(np.log(total) - sy, w)
         py = p[r, y]
         # sum_k (p_k - y_k)^2 = sum_k p_k^2 - 2 p_y + 1
         brier_sum += _wsum(np.einsum("ij,ij->i", p, p) - 2.0 * py + 1.0, w)
@@ -450,9 +510,7 @@ def _evaluate_softmax(logits, labels, scaling, n_bins, rows, weights) -> Metrics
         conf = p[r, pred]
         correct = pred == y
         bins += reliability_bins(conf, correct, n_bins, w)
-        ids = _classwise_ids(p, n_bins)
-        p_sum += np.bincount(ids, weights=(p if w is None else p * w[:, None]).ravel(), minlength=k * n_bins)
-        y_sum += np.bincount(ids.reshape(p.shape)[r, y], weights=w, minlength=k * n_bins)
+        _classwise_add(p_sum, y_sum, p, y, w, n_bins)
         confs.append(conf)
         corrects.append(correct)
     n = float(len(logits) if rows is None else len(rows)) if weights is None else float(np.sum(weights))
@@ -478,9 +536,7 @@ def _evaluate_sigmoid(logits, labels, scaling, n_bins, rows, weights, kind) -> M
         conf = np.where(pred, p, 1.0 - p).ravel()
         correct = (pred == (y > 0.5)).ravel()
         bins += reliability_bins(conf, correct, n_bins, ww)
-        ids = _classwise_ids(p, n_bins)
-        p_sum += np.bincount(ids, weights=(p if w is None else p * w[:, None]).ravel(), minlength=k * n_bins)
-        y_sum += np.bincount(ids, weights=(y if w is None else y * w[:, None]).ravel(), minlength=k * n_bins)
+        _classwise_add(p_sum, y_sum, p, y, w, n_bins, onehot=y)
         confs.append(conf)
         corrects.append(correct)
     n = float(len(logits) if rows is None else len(rows)) if weights is None else float(np.sum(weights))

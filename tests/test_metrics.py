@@ -286,3 +286,14 @@ def test_huge_float32_logits_give_finite_metrics():
     mb = evaluate(zb, y % 2)
     assert np.isfinite(mb.nll) and mb.nll > 100  # confidently wrong half the time
     assert np.all(np.isfinite(sigmoid(zb)))
+
+
+def test_bin_ids_follow_the_searchsorted_rule(rng):
+    # The rule of sklearn.calibration.calibration_curve: np.searchsorted over the
+    # inner edges of np.linspace(0, 1, M + 1), right-closed bins; exact edges,
+    # their float neighbours, 0 and 1 included.
+    for m in (2, 10, 15, 100):
+        edges = np.linspace(0, 1, m + 1)
+        p = np.concatenate([rng.random(5000), edges, np.nextafter(edges, 2), np.nextafter(edges, -1)])
+        p = np.clip(p, 0, 1)
+        np.testing.assert_array_equal(metrics.bin_ids(p, m), np.searchsorted(edges[1:-1], p))
