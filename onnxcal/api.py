@@ -23,7 +23,7 @@ from .data import Dataset, load_npz
 from .errors import OnnxcalError
 from .fit import FitOptions, FitSummary
 from .graph import ModelInfo, Record
-from .scaling import Scaling
+from .scaling import METHODS, MULTILABEL_MODES, Scaling
 from .verify import VerifyResult
 
 
@@ -126,8 +126,6 @@ def check_fit_options(options: FitOptions) -> FitOptions:
         ``--l2``, a holdout fraction outside [0, 0.9], a negative number of
         bootstrap replicates or fewer than 2 bins.
     """
-    from .scaling import METHODS, MULTILABEL_MODES
-
     if options.method not in METHODS:
         raise OnnxcalError(f"--method {options.method!r} is not one of: {', '.join(METHODS)}")
     if options.multilabel is not None and options.multilabel not in MULTILABEL_MODES:

@@ -39,7 +39,7 @@ from pathlib import Path
 import numpy as np
 import scipy.optimize
 
-from . import __version__
+from . import __version__, resample
 from ._files import atomic_write_bytes, require_file
 from .errors import OnnxcalError
 from .metrics import DEFAULT_BINS, Metrics, evaluate, iter_chunks, sigmoid
@@ -765,8 +765,6 @@ def summarize(
     -------
     FitSummary
     """
-    from . import resample
-
     resolve_kind(logits, labels, options)
     n = len(logits)
     notes, warnings = [], data_warnings(labels, logits.shape[1])

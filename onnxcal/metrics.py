@@ -486,13 +486,57 @@ def _classwise_add(p_sum, y_sum, p, y, w, n_bins, onehot=None):
         y_sum[::n_bins] += wy.sum(axis=0) - upper_y.reshape(k, n_bins).sum(axis=1)
 
 
+class _Sums:
+    """Running sums of one evaluation (chunk by chunk)."""
+
+    def __init__(self, k: int, n_bins: int) -> None:
+        self.k, self.n_bins = k, n_bins
+        self.bins = np.zeros((3, n_bins))
+        self.p_sum = np.zeros(k * n_bins)
+        self.y_sum = np.zeros(k * n_bins)
+        self.nll = self.brier = 0.0
+        self.confs: list[np.ndarray] = []
+        self.corrects: list[np.ndarray] = []
+
+    def add_top_label(self, conf, correct, w) -> None:
+        self.bins += reliability_bins(conf, correct, self.n_bins, w)
+        self.confs.append(conf)
+        self.corrects.append(correct)
+
+    def metrics(self, n: float, per_sample: int, weights, kind: str) -> Metrics:
+        """Metrics from the sums; ``per_sample`` predictions per sample (K for multi-label)."""
+        entries = n * per_sample
+        counts, conf_sum, corr_sum = self.bins
+        conf = np.concatenate(self.confs) if self.confs else np.zeros(0)
+        correct = np.concatenate(self.corrects) if self.corrects else np.zeros(0, bool)
+        entry_weights = None if weights is None else np.repeat(np.asarray(weights), per_sample)
+        nan = float("nan")
+        accuracy = float(corr_sum.sum() / entries) if entries else nan
+        mean_conf = float(conf_sum.sum() / entries) if entries else nan
+        return Metrics(
+            n=int(round(n)),
+            nll=float(self.nll / entries) if entries else nan,
+            ece=ece_from_bins(counts, conf_sum, corr_sum),
+            mce=mce_from_bins(counts, conf_sum, corr_sum),
+            adaptive_ece=ece_from_bins(*equal_mass_bins(conf, correct, self.n_bins, entry_weights)),
+            classwise_ece=_classwise_from_sums(self.p_sum, self.y_sum, n, self.k),
+            brier=float(self.brier / entries) if entries else nan,
+            accuracy=accuracy,
+            mean_confidence=mean_conf,
+            gap=mean_conf - accuracy,
+            n_bins=self.n_bins,
+            kind=kind,
+        )
+
+
+def _total(logits, rows, weights) -> float:
+    if weights is not None:
+        return float(np.sum(weights))
+    return float(len(logits) if rows is None else len(rows))
+
+
 def _evaluate_softmax(logits, labels, scaling, n_bins, rows, weights) -> Metrics:
-    k = logits.shape[1]
-    bins = np.zeros((3, n_bins))
-    p_sum = np.zeros(k * n_bins)
-    y_sum = np.zeros(k * n_bins)
-    nll_sum = brier_sum = 0.0
-    confs, corrects = [], []
+    sums = _Sums(logits.shape[1], n_bins)
     for z, y, w in iter_chunks(logits, labels, rows, weights):
         r = np.arange(len(y))
         s = scaling.apply(z)
@@ -502,67 +546,27 @@ def _evaluate_softmax(logits, labels, scaling, n_bins, rows, weights) -> Metrics
         total = p.sum(axis=1)
         p /= total[:, None]
         # -log p_y = log sum_k exp(s_k) - s_y, with s shifted by its row maximum
-        nll_sum += _wsum(np.log(total) - sy, w)
-        py = p[r, y]
+        sums.nll += _wsum(np.log(total) - sy, w)
         # sum_k (p_k - y_k)^2 = sum_k p_k^2 - 2 p_y + 1
-        brier_sum += _wsum(np.einsum("ij,ij->i", p, p) - 2.0 * py + 1.0, w)
+        sums.brier += _wsum(np.einsum("ij,ij->i", p, p) - 2.0 * p[r, y] + 1.0, w)
         pred = p.argmax(axis=1)
-        conf = p[r, pred]
-        correct = pred == y
-        bins += reliability_bins(conf, correct, n_bins, w)
-        _classwise_add(p_sum, y_sum, p, y, w, n_bins)
-        confs.append(conf)
-        corrects.append(correct)
-    n = float(len(logits) if rows is None else len(rows)) if weights is None else float(np.sum(weights))
-    return _finish(n, n, nll_sum, brier_sum, bins, confs, corrects, weights, (p_sum, y_sum, k), n_bins, "multiclass")
+        sums.add_top_label(p[r, pred], pred == y, w)
+        _classwise_add(sums.p_sum, sums.y_sum, p, y, w, n_bins)
+    return sums.metrics(_total(logits, rows, weights), 1, weights, "multiclass")
 
 
 def _evaluate_sigmoid(logits, labels, scaling, n_bins, rows, weights, kind) -> Metrics:
     k = logits.shape[1]
-    bins = np.zeros((3, n_bins))
-    p_sum = np.zeros(k * n_bins)
-    y_sum = np.zeros(k * n_bins)
-    nll_sum = brier_sum = 0.0
-    confs, corrects = [], []
+    sums = _Sums(k, n_bins)
     for z, y, w in iter_chunks(logits, labels, rows, weights):
         y = y.reshape(len(y), -1).astype(np.float64)
         s = scaling.apply(z)
         p = sigmoid(s)
         ww = None if w is None else np.repeat(w, k)
         # -[y log p + (1 - y) log(1 - p)] = log(1 + e^s) - y s
-        nll_sum += _wsum((np.logaddexp(0.0, s) - y * s).ravel(), ww)
-        brier_sum += _wsum(((p - y) ** 2).ravel(), ww)
+        sums.nll += _wsum((np.logaddexp(0.0, s) - y * s).ravel(), ww)
+        sums.brier += _wsum(((p - y) ** 2).ravel(), ww)
         pred = p > 0.5
-        conf = np.where(pred, p, 1.0 - p).ravel()
-        correct = (pred == (y > 0.5)).ravel()
-        bins += reliability_bins(conf, correct, n_bins, ww)
-        _classwise_add(p_sum, y_sum, p, y, w, n_bins, onehot=y)
-        confs.append(conf)
-        corrects.append(correct)
-    n = float(len(logits) if rows is None else len(rows)) if weights is None else float(np.sum(weights))
-    entry_weights = None if weights is None else np.repeat(np.asarray(weights), k)
-    return _finish(n, n * k, nll_sum, brier_sum, bins, confs, corrects, entry_weights, (p_sum, y_sum, k), n_bins, kind)
-
-
-def _finish(n, entries, nll_sum, brier_sum, bins, confs, corrects, weights, classwise, n_bins, kind) -> Metrics:
-    """Metrics from the accumulated sums; ``entries`` is the (weighted) number of predictions."""
-    counts, conf_sum, corr_sum = bins
-    conf = np.concatenate(confs) if confs else np.zeros(0)
-    correct = np.concatenate(corrects) if corrects else np.zeros(0, bool)
-    p_sum, y_sum, k = classwise
-    accuracy = float(corr_sum.sum() / entries) if entries else float("nan")
-    mean_conf = float(conf_sum.sum() / entries) if entries else float("nan")
-    return Metrics(
-        n=int(round(n)),
-        nll=float(nll_sum / entries) if entries else float("nan"),
-        ece=ece_from_bins(counts, conf_sum, corr_sum),
-        mce=mce_from_bins(counts, conf_sum, corr_sum),
-        adaptive_ece=ece_from_bins(*equal_mass_bins(conf, correct, n_bins, weights)),
-        classwise_ece=_classwise_from_sums(p_sum, y_sum, n, k),
-        brier=float(brier_sum / entries) if entries else float("nan"),
-        accuracy=accuracy,
-        mean_confidence=mean_conf,
-        gap=mean_conf - accuracy,
-        n_bins=n_bins,
-        kind=kind,
-    )
+        sums.add_top_label(np.where(pred, p, 1.0 - p).ravel(), (pred == (y > 0.5)).ravel(), ww)
+        _classwise_add(sums.p_sum, sums.y_sum, p, y, w, n_bins, onehot=y)
+    return sums.metrics(_total(logits, rows, weights), k, weights, kind)
