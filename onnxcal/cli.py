@@ -219,7 +219,7 @@ def _describe_scaling(summary: FitSummary) -> str:
     iv = (summary.intervals or {}).get("parameters", {})
     if s.temperature is not None:
         t = iv.get("temperature")
-        extra = f" (95% interval {t[0]:.4f} to {t[1]:.4f})" if t else ""
+        extra = f" (fit-part 95% interval {t[0]:.4f} to {t[1]:.4f})" if t else ""
         how = "sigmoid(z / T)" if s.kind != "multiclass" else "softmax(z / T)"
         return f"temperature scaling, {how}: T = {s.temperature:.4f}{extra}"
     a = s.arrays()

@@ -11,8 +11,8 @@ resampled copy of the logits is made. The interval is the 2.5th to 97.5th
 percentile of the replicates (Efron & Tibshirani 1993, ch. 13).
 
 Temperature scaling of a multiclass model has a fast path whose cost does
-not grow with the number of replicates: one chunked pass computes, for
-every row, the NLL's derivatives (fit part) and the metrics' per-row terms
+not grow with the number of replicates: after one pass at the fit (for the
+standard error that sets the grid), one chunked pass computes, for every row, the NLL's derivatives (fit part) and the metrics' per-row terms
 with their derivatives (held-out part) at a grid of G = 9 values of
 beta = 1/T spanning +-6 standard errors around the fit. A replicate's
 weighted gradient at the grid points is then a dot product with its

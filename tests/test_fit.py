@@ -494,3 +494,19 @@ def test_load_fit_refuses_non_json(tmp_path):
     path.write_text("T = 2")
     with pytest.raises(OnnxcalError, match="not an onnxcal fit file"):
         load_fit(path)
+
+
+def test_memory_stays_bounded_beyond_the_logits(rng):
+    # The solvers and the metrics work in row chunks: their temporaries must not
+    # grow with the logits (here 40 MB of float32; a float64 copy would be 80 MB).
+    import tracemalloc
+
+    z = rng.normal(scale=3.0, size=(5000, 2000)).astype(np.float32)
+    y = gumbel_labels(rng, z, 1.5)
+    for fn in (lambda: fit_temperature(z, y), lambda: evaluate(z, y, 1.5)):
+        tracemalloc.start()
+        base = tracemalloc.get_traced_memory()[0]
+        fn()
+        peak = tracemalloc.get_traced_memory()[1] - base
+        tracemalloc.stop()
+        assert peak < 8 * 2**20, peak
