@@ -21,8 +21,9 @@ from ._files import check_output_path, sha256_file
 from .capture import Capture, ProgressFn
 from .data import Dataset, load_npz
 from .errors import OnnxcalError
-from .fit import FitSummary
+from .fit import FitOptions, FitSummary
 from .graph import ModelInfo, Record
+from .scaling import METHODS, MULTILABEL_MODES, Scaling
 from .verify import VerifyResult
 
 
@@ -121,13 +122,46 @@ def _check_batch_size(batch_size: int) -> None:
         raise OnnxcalError(f"--batch-size {batch_size} is not a positive number of samples")
 
 
+def check_fit_options(options: FitOptions) -> FitOptions:
+    """Validate the fit options given by the user.
+
+    Raises
+    ------
+    OnnxcalError
+        An unknown method or multi-label mode, a negative or non-finite
+        ``--l2``, a holdout fraction outside [0, 0.9], a negative number of
+        bootstrap replicates or fewer than 2 bins.
+    """
+    if options.method not in METHODS:
+        raise OnnxcalError(f"--method {options.method!r} is not one of: {', '.join(METHODS)}")
+    if options.multilabel is not None and options.multilabel not in MULTILABEL_MODES:
+        raise OnnxcalError(
+            f"--multilabel {options.multilabel!r} is not one of: {', '.join(MULTILABEL_MODES)}"
+        )
+    if not np.isfinite(options.l2) or options.l2 < 0:
+        raise OnnxcalError(f"--l2 {options.l2!r} is not a non-negative number", "use 0 for no penalty")
+    if options.l2 > 0 and options.method == "temperature":
+        raise OnnxcalError("--l2 applies to --method vector and platt, not temperature")
+    if not 0 <= options.holdout <= 0.9:
+        raise OnnxcalError(
+            f"--holdout {options.holdout!r} is not a fraction between 0 and 0.9",
+            "use e.g. 0.25, or 0 to score in-sample",
+        )
+    if options.bootstrap < 0:
+        raise OnnxcalError(f"--bootstrap {options.bootstrap} is negative", "use 0 to skip the intervals")
+    if options.n_bins < 2:
+        raise OnnxcalError(f"--bins {options.n_bins} is fewer than 2 bins")
+    return options
+
+
 def fit(
     source: Capture | str | os.PathLike,
     *,
     out: str | os.PathLike | None = None,
     force: bool = False,
+    options: FitOptions = FitOptions(),
 ) -> FitSummary:
-    """Fit a temperature to captured logits; return (and write) the summary.
+    """Fit a calibration map to captured logits; return (and write) the summary.
 
     Parameters
     ----------
@@ -137,27 +171,30 @@ def fit(
         Where to write FIT.json.
     force : bool
         Replace an existing ``out``.
+    options : FitOptions
+        Method, holdout, bootstrap, ... (see :class:`onnxcal.fit.FitOptions`).
     """
+    check_fit_options(options)
     inputs = [] if isinstance(source, Capture) else [source]
     if out is not None:
         check_output_path(out, inputs, force=force)
     cap = source if isinstance(source, Capture) else _capture.load_capture(source)
     _require_finite(cap.logits, cap.meta.data_source if isinstance(source, Capture) else str(source))
-    summary = _fit.summarize(*_capture.fitting_rows(cap), cap.meta.to_dict())
+    summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options)
     if out is not None:
         _fit.save_fit(out, summary)
     return summary
 
 
-def _resolve_temperature(
+def _resolve_scaling(
     temperature: float | None, fit_source: FitSummary | str | os.PathLike | None
-) -> tuple[float, dict]:
+) -> tuple[float | Scaling, dict]:
     if (temperature is None) == (fit_source is None):
         raise OnnxcalError("give exactly one of --temperature and --fit")
     if temperature is not None:
         return graph.check_temperature(temperature), {"method": "temperature", "given": True}
     summary = fit_source if isinstance(fit_source, FitSummary) else _fit.load_fit(fit_source)
-    return summary.temperature, summary.to_dict()
+    return summary.scaling, summary.to_dict()
 
 
 @dataclass(frozen=True)
@@ -177,7 +214,8 @@ class PatchOptions:
     compute_dtype : {"float32", "float64"}, optional
         Run the Div and activation in this dtype (e.g. for float16 models).
     fold : bool
-        Fold 1/T into the weight and bias of the final Gemm / MatMul(+Add).
+        Fold 1/T into the weight and bias of the final Gemm / MatMul(+Add)
+        (temperature scaling with one T only).
     """
 
     output: str | None = None
@@ -187,10 +225,10 @@ class PatchOptions:
     compute_dtype: str | None = None
     fold: bool = False
 
-    def patch(self, model, temperature: float, *, sha: str, path, fit: dict):
+    def patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict):
         return graph.patch(
             model,
-            temperature,
+            calibration,
             source_sha256=sha,
             source_path=Path(path).resolve(),
             output=self.output,
@@ -241,7 +279,7 @@ def patch(
     temperature : float, optional
         T; or give ``fit``.
     fit : FitSummary or path, optional
-        A fit (or FIT.json) whose temperature is used and recorded.
+        A fit (or FIT.json) whose parameters are baked in and recorded.
     output, output_name, drop_logits, activation, compute_dtype, fold
         See :class:`PatchOptions`.
     force : bool
@@ -249,10 +287,10 @@ def patch(
     """
     inputs = [model_path] + ([fit] if isinstance(fit, (str, os.PathLike)) else [])
     external = _check_outputs(out, inputs, model_path, force)
-    t, fit_dict = _resolve_temperature(temperature, fit)
-    options = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold)
+    calibration, fit_dict = _resolve_scaling(temperature, fit)
+    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold)
     model = graph.load_model(model_path)
-    patched = options.patch(model, t, sha=sha256_file(model_path), path=model_path, fit=fit_dict)
+    patched = patching.patch(model, calibration, sha=sha256_file(model_path), path=model_path, fit=fit_dict)
     graph.save_model(patched, out, external=external)
     return PatchResult(path=str(out), record=graph.read_record(patched))
 
@@ -281,10 +319,11 @@ def _verify_models(
     )
     rows = _capture.as_rows(probs, site.class_axis)
     dtypes = (site.dtype, site.output_dtype or site.dtype)
-    checks = _verify.compare(rows, logits, record.temperature, record.activation, dtypes)
-    in_graph = graph.temperature_value(patched, record, original_model)
+    checks = _verify.compare(rows, logits, record.scaling, record.activation, dtypes)
+    in_graph = graph.parameter_values(patched, record, original_model)
+    recorded = {"temperature": record.temperature} if record.folded else record.parameters
     checks += (
-        _verify.record_check(record.temperature, in_graph, graph.temperature_dtype(patched, record)),
+        _verify.record_check(recorded, in_graph, graph.temperature_dtype(patched, record)),
         _verify.source_check(record.source_sha256, original_sha),
     )
     return VerifyResult(checks=checks, n=dataset.n, original=original)
@@ -308,7 +347,7 @@ def verify(
     batch_size: int = _capture.DEFAULT_BATCH,
     progress: ProgressFn | None = None,
 ) -> VerifyResult:
-    """Check a patched model against the NumPy reference from the original's logits.
+    """Check a patched model against its NumPy reference (e.g. softmax(original logits / T)).
 
     Parameters
     ----------
@@ -366,20 +405,23 @@ def calibrate(
     batch_size: int = _capture.DEFAULT_BATCH,
     force: bool = False,
     progress: ProgressFn | None = None,
+    options: FitOptions = FitOptions(),
 ) -> CalibrateResult:
     """Capture, fit, patch and verify in one go.
 
     The patched model is verified in memory against the captured logits
     before it is written; when a check fails nothing is written and
-    ``result.patch`` is None. ``output`` ... ``fold``: see :class:`PatchOptions`.
+    ``result.patch`` is None. ``output`` ... ``fold``: see :class:`PatchOptions`;
+    ``options`` are those of :func:`fit`.
     """
+    check_fit_options(options)
     external = _check_outputs(out, [model_path, data_path], model_path, force)
     _check_batch_size(batch_size)
-    options = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold)
+    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold)
     model = graph.load_model(model_path)
     if (previous := graph.read_record(model)) is not None:
         raise OnnxcalError(
-            f"'{model_path}' is already calibrated by onnxcal (T = {previous.temperature:.4g})",
+            f"'{model_path}' is already calibrated by onnxcal ({previous.method} scaling)",
             f"calibrate the original model ({previous.source_path}), or change T with 'onnxcal patch'",
         )
     sha = sha256_file(model_path)
@@ -395,8 +437,8 @@ def calibrate(
         activation=activation,
     )
     _require_finite(cap.logits, str(data_path))
-    summary = _fit.summarize(*_capture.fitting_rows(cap), cap.meta.to_dict())
-    patched = options.patch(model, summary.temperature, sha=sha, path=model_path, fit=summary.to_dict())
+    summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options)
+    patched = patching.patch(model, summary.scaling, sha=sha, path=model_path, fit=summary.to_dict())
     record = graph.read_record(patched)
     result = _verify_models(
         patched,

@@ -5,7 +5,7 @@ captured is that activation's input (the logits), exposed as an extra output
 of an in-memory copy; the model file is never changed.
 
 A capture file is an ``.npz`` with ``logits`` (float32, n x k), ``labels``
-(int64, n) and ``meta`` (a JSON string, see :class:`CaptureMeta`).
+(int64, n; or uint8, n x k 0/1 for a multi-label model) and ``meta`` (a JSON string, see :class:`CaptureMeta`).
 """
 
 from __future__ import annotations
@@ -22,7 +22,7 @@ import onnx
 
 from . import __version__
 from ._files import atomic_path, require_file
-from .data import Dataset, check_labels, match_inputs
+from .data import Dataset, check_labels, check_multilabel, match_inputs
 from .errors import OnnxcalError
 from .graph import ScoreSite, expose_scores, find_scores, fit_kind, tensor_spec
 
@@ -58,7 +58,7 @@ class CaptureMeta:
         The validation file.
     fit_as : str
         ``"softmax"`` (labels are class indices, one per row) or
-        ``"sigmoid"`` (labels are 0/1, one per logit); see :func:`fitting_rows`.
+        ``"sigmoid"`` (labels are 0/1, one per logit: binary or multi-label).
     onnxcal_version : str
     """
 
@@ -272,8 +272,8 @@ def label_rows(labels: np.ndarray, shape: tuple[int, int], kind: str, source: st
 
     ``kind == "softmax"``: class indices, one per row; per-pixel labels
     (e.g. n x H x W for an n x K x H x W output) are flattened in the rows'
-    order. ``kind == "sigmoid"``: 0/1 for every logit, shaped (rows, k);
-    (n,) is accepted for one logit.
+    order. ``kind == "sigmoid"``: 0/1 for every logit: (rows,) int64 for one
+    logit (binary), (rows, k) uint8 for k labels (multi-label).
 
     Raises
     ------
@@ -298,27 +298,9 @@ def label_rows(labels: np.ndarray, shape: tuple[int, int], kind: str, source: st
             f"{k} logit(s) per row needs one 0/1 label per logit ({rows} x {k})",
             "give 0/1 labels shaped like the output",
         )
-    flat = labels.reshape(rows, k)
-    if flat.dtype.kind not in "iubf" or not np.isin(flat, (0, 1)).all():
-        raise OnnxcalError(
-            f"labels in '{source}' are not all 0 or 1, as a sigmoid output needs",
-            "give 0/1 labels (1 = the label applies)",
-        )
-    return flat.astype(np.int64)
-
-
-def fitting_rows(cap: Capture) -> tuple[np.ndarray, np.ndarray]:
-    """The (logits, labels) a softmax temperature is fitted and scored on.
-
-    A sigmoid logit z is the two-class softmax of [0, z] (sigmoid(z) =
-    softmax([0, z])[1], common practice), so sigmoid(z / T) for every logit
-    is fitted as a softmax temperature on rows [0, z] with the 0/1 label:
-    the mean NLL is then the mean binary cross-entropy over all logits.
-    """
-    if cap.meta.fit_as != "sigmoid":
-        return cap.logits, cap.labels
-    z = cap.logits.reshape(-1, 1)
-    return np.concatenate([np.zeros_like(z), z], axis=1), cap.labels.reshape(-1)
+    if k == 1:  # binary: one 0/1 class index per row
+        return check_labels(labels.reshape(-1), rows, 2, source)
+    return check_multilabel(labels.reshape(rows, k), rows, k, source)
 
 
 def nonfinite_rows(logits: np.ndarray) -> np.ndarray:

@@ -24,10 +24,12 @@ unique deterministic names and notes every change so it can be undone:
 * ``_fold``: scale a Gemm / MatMul(+Add)'s weight and bias instead of
   adding a Div.
 
-What goes in front of the activation is one function of type ``ScaleFn``
-(``divide_by_temperature`` today: one Div by the T initializer). Re-patching
-a patched model first undoes the previous patch (``unpatch``), so patches
-never stack.
+What goes in front of the activation is one function of type ``ScaleFn``,
+made by ``scale_fn`` from the fitted ``Scaling``: ``divide_by_temperature``
+(temperature scaling: ``Div(scores, T)``, T a scalar or one per label) or
+``multiply_add`` (vector and Platt scaling: ``Add(Mul(scores, w), b)``).
+Re-patching a patched model first undoes the previous patch (``unpatch``),
+so patches never stack.
 
 The calibration record is JSON in ``metadata_props`` under ``RECORD_KEY``.
 """
@@ -37,7 +39,7 @@ from __future__ import annotations
 import json
 import os
 from collections.abc import Callable, Iterator
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from functools import partial
 from pathlib import Path
 
@@ -48,6 +50,7 @@ from onnx import helper, numpy_helper
 from . import __version__
 from ._files import atomic_write_bytes, require_file
 from .errors import OnnxcalError
+from .scaling import Scaling, check_scaling
 
 RECORD_KEY = "onnxcal.calibration"
 RECORD_FORMAT = 2
@@ -137,6 +140,10 @@ class ScoreSite:
         the logits are then log(max(p, tiny)).
     output_dtype : str
         numpy dtype name of ``tensor``.
+    scores_axis, scores_rank : int
+        Class axis and rank of ``scores`` (where per-class parameters
+        broadcast); they differ from ``class_axis``/``rank`` when layout ops
+        sit between the activation and the output.
     """
 
     output: str
@@ -151,6 +158,8 @@ class ScoreSite:
     layout: tuple[int, ...] = ()
     from_probabilities: bool = False
     output_dtype: str = ""
+    scores_axis: int = 1
+    scores_rank: int = 2
 
 
 @dataclass(frozen=True)
@@ -180,8 +189,9 @@ class Record:
 
     Attributes
     ----------
-    temperature : float
-        T; the scores are divided by it.
+    temperature : float or None
+        T when the method is temperature scaling with one T; else None
+        (see ``parameters``).
     output : str
         The output that carries calibrated probabilities.
     scores : str
@@ -193,13 +203,22 @@ class Record:
         The meaning of ``output`` (``"softmax"``, ``"logsoftmax"``,
         ``"sigmoid"``).
     temperature_initializer : str
-        Name of the initializer holding T ("" when folded).
+        Name of the initializer holding T ("" when folded or when the
+        method has no single T).
     source_sha256 : str
         SHA-256 of the uncalibrated model file.
     source_path : str
         Path of the uncalibrated model when it was patched.
     fit : dict
-        Fit summary (method, metrics before/after), as in FIT.json.
+        Fit summary (method, metrics, intervals), as in FIT.json.
+    method : str
+        ``"temperature"``, ``"vector"`` or ``"platt"``.
+    parameters : dict
+        The baked-in parameters (``{"temperature": T}``, ``{"w": ..., "b": ...}``).
+    initializers : dict
+        Name of the initializer holding each parameter (empty when folded).
+    kind : str
+        ``"multiclass"``, ``"binary"`` or ``"multilabel"``.
     folded : bool
         T was folded into the weight and bias of ``changes["scaled"]``.
     compute_dtype : str or None
@@ -215,7 +234,7 @@ class Record:
     format : int
     """
 
-    temperature: float
+    temperature: float | None
     output: str
     scores: str
     rewrite: str
@@ -224,6 +243,10 @@ class Record:
     source_sha256: str
     source_path: str
     fit: dict = field(default_factory=dict)
+    method: str = "temperature"
+    parameters: dict = field(default_factory=dict)
+    initializers: dict = field(default_factory=dict)
+    kind: str = "multiclass"
     folded: bool = False
     compute_dtype: str | None = None
     source_output: str = ""
@@ -233,6 +256,12 @@ class Record:
 
     def to_dict(self) -> dict:
         return asdict(self)
+
+    @property
+    def scaling(self) -> Scaling:
+        """The calibration map the record describes."""
+        parameters = self.parameters or {"temperature": self.temperature}
+        return Scaling(self.method, dict(parameters), self.kind)
 
 
 def _tensors(graph: onnx.GraphProto) -> Iterator[onnx.TensorProto]:
@@ -625,6 +654,8 @@ def _activation_site(
         tensor=tensor,
         layout=tuple(i for i in reversed(chain) if graph.node[i].op_type not in ("Identity", "Cast")),
         output_dtype=shapes.dtype(tensor) or spec.dtype,
+        scores_axis=axis,
+        scores_rank=rank,
     )
 
 
@@ -680,6 +711,8 @@ def _raw_site(spec: TensorSpec, shapes: _Shapes) -> ScoreSite:
         dtype=spec.dtype,
         tensor=spec.name,
         output_dtype=spec.dtype,
+        scores_axis=axis,
+        scores_rank=rank,
     )
 
 
@@ -730,7 +763,15 @@ def read_record(model: onnx.ModelProto) -> Record | None:
         if prop.key == RECORD_KEY:
             try:
                 data = json.loads(prop.value)
-                return Record(**data)
+                record = Record(**data)
+                if not record.parameters and record.temperature is not None:  # written before vector scaling
+                    record = replace(
+                        record,
+                        parameters={"temperature": record.temperature},
+                        initializers={"temperature": record.temperature_initializer}
+                        if record.temperature_initializer else {},
+                    )
+                return record
             except (ValueError, TypeError) as exc:
                 raise OnnxcalError(
                     f"the model's calibration record ({RECORD_KEY}) is damaged: {exc}",
@@ -803,9 +844,29 @@ def temperature_value(
     return float(arr.reshape(-1)[0]) if arr.size == 1 else None
 
 
+def parameter_values(
+    model: onnx.ModelProto, record: Record, original: onnx.ModelProto | None = None
+) -> dict[str, np.ndarray] | None:
+    """The values of the record's parameters as the graph holds them, or None.
+
+    For a folded model only T exists, estimated from the weights (see
+    :func:`temperature_value`).
+    """
+    if record.folded:
+        t = temperature_value(model, record, original)
+        return None if t is None else {"temperature": np.array([t])}
+    inits = record.initializers or {"temperature": record.temperature_initializer}
+    found = {k: _initializer(model.graph, n) for k, n in inits.items()}
+    if any(v is None for v in found.values()):
+        return None
+    return {k: numpy_helper.to_array(v).astype(np.float64).reshape(-1) for k, v in found.items()}
+
+
 def temperature_dtype(model: onnx.ModelProto, record: Record) -> str | None:
     """The dtype T is held in: its initializer's, or the folded weights'."""
-    names = record.changes.get("scaled", []) if record.folded else [record.temperature_initializer]
+    names = record.changes.get("scaled", []) if record.folded else list(
+        (record.initializers or {"temperature": record.temperature_initializer}).values()
+    )
     for init in model.graph.initializer:
         if init.name in names:
             return np.dtype(helper.tensor_dtype_to_np_dtype(init.data_type)).name
@@ -905,17 +966,54 @@ ScaleFn = Callable[[_Surgery, str, str], str]
 Initializers it adds go in ``surgery.parameters`` by role."""
 
 
-def divide_by_temperature(surgery: _Surgery, x: str, dtype: str, *, temperature: float) -> str:
-    """Temperature scaling: one ``Div(x, T)`` with T a scalar initializer in ``dtype``.
+_PARAMETER_NAMES = {"temperature": "onnxcal_temperature", "w": "onnxcal_scale", "b": "onnxcal_bias"}
+
+
+def _parameter(s: _Surgery, role: str, value, dtype: str, site: ScoreSite) -> str:
+    """A parameter initializer: a scalar, or one value per class shaped to
+    broadcast along the class axis of the scores (ONNX multidirectional
+    broadcasting aligns trailing dims; ONNX operator spec, Broadcasting)."""
+    arr = np.asarray(value, dtype=np_dtype(dtype))
+    if arr.ndim == 1:
+        arr = arr.reshape((arr.size,) + (1,) * (site.scores_rank - 1 - site.scores_axis))
+    name = s.constant(_PARAMETER_NAMES[role], numpy_helper.from_array(arr, ""))
+    s.parameters[role] = name
+    return name
+
+
+def divide_by_temperature(
+    surgery: _Surgery, x: str, dtype: str, *, temperature, site: ScoreSite
+) -> str:
+    """Temperature scaling: ``Div(x, T)``, T a scalar (or one per label) in ``dtype``.
 
     References
     ----------
     Guo, Pleiss, Sun, Weinberger, "On Calibration of Modern Neural Networks",
     ICML 2017, sec. 4.2.
     """
-    t_name = surgery.constant("onnxcal_temperature", _scalar("", temperature, dtype))
-    surgery.parameters["temperature"] = t_name
+    t_name = _parameter(surgery, "temperature", temperature, dtype, site)
     return surgery.node("Div", [x, t_name], f"{x}_calibrated")
+
+
+def multiply_add(surgery: _Surgery, x: str, dtype: str, *, w, b, site: ScoreSite) -> str:
+    """Vector scaling (per class) or Platt scaling (scalars): ``Add(Mul(x, w), b)``.
+
+    References
+    ----------
+    Guo et al. 2017, sec. 4.2 (vector scaling); Platt, "Probabilistic Outputs
+    for Support Vector Machines ...", 1999 (Platt scaling).
+    """
+    w_name = _parameter(surgery, "w", w, dtype, site)
+    b_name = _parameter(surgery, "b", b, dtype, site)
+    scaled = surgery.node("Mul", [x, w_name], f"{x}_scaled")
+    return surgery.node("Add", [scaled, b_name], f"{x}_calibrated")
+
+
+def scale_fn(scaling: Scaling, site: ScoreSite) -> ScaleFn:
+    """The ``ScaleFn`` that bakes ``scaling`` in front of ``site``'s activation."""
+    if scaling.method == "temperature":
+        return partial(divide_by_temperature, temperature=scaling.parameters["temperature"], site=site)
+    return partial(multiply_add, w=scaling.parameters["w"], b=scaling.parameters["b"], site=site)
 
 
 def _no_scaling(surgery: _Surgery, x: str, dtype: str) -> str:
@@ -1232,7 +1330,34 @@ def check_temperature(temperature: float) -> float:
     return t
 
 
-def _check_options(site: ScoreSite, compute_dtype: str | None, fold: bool) -> str | None:
+def _site_scaling(calibration: float | Scaling, site: ScoreSite, activation: str | None) -> Scaling:
+    """The scaling to bake in, checked against the site it goes to.
+
+    A bare temperature becomes temperature scaling of the site's kind
+    (softmax: multiclass; sigmoid: binary for one logit, else multi-label).
+    """
+    if isinstance(calibration, Scaling):
+        scaling = check_scaling(calibration, site.num_classes)
+        # For raw logits the fitted scaling says what to append, unless --activation does.
+        requested = activation if (activation or site.activation) else scaling.activation
+        kind = fit_kind(site, requested)
+        if scaling.activation != kind:
+            raise OnnxcalError(
+                f"a {scaling.kind} calibration (for {scaling.activation} outputs) does not fit "
+                f"output '{site.output}', which is calibrated through a {kind}",
+                "fit it on logits captured from this output",
+            )
+        return scaling
+    kind = fit_kind(site, activation)
+    t = check_temperature(calibration)
+    if kind == "softmax":
+        return Scaling.of_temperature(t, "multiclass")
+    return Scaling.of_temperature(t, "binary" if site.num_classes == 1 or site.rank == 1 else "multilabel")
+
+
+def _check_options(
+    site: ScoreSite, compute_dtype: str | None, fold: bool, scaling: Scaling
+) -> str | None:
     """Validate --compute-dtype and --fold against the site; the compute dtype to use."""
     if compute_dtype is not None and compute_dtype not in COMPUTE_DTYPES:
         raise OnnxcalError(
@@ -1242,6 +1367,12 @@ def _check_options(site: ScoreSite, compute_dtype: str | None, fold: bool) -> st
         raise OnnxcalError(
             "--compute-dtype sets the dtype of the inserted Div, and with --fold there is none",
             "give one of --fold and --compute-dtype",
+        )
+    if fold and scaling.temperature is None:
+        raise OnnxcalError(
+            f"--fold folds a single temperature into the weights; {scaling.method} scaling "
+            "with per-class or per-label parameters is inserted as nodes instead",
+            "leave out --fold",
         )
     if fold and site.from_probabilities:
         raise OnnxcalError(
@@ -1256,7 +1387,7 @@ def _check_options(site: ScoreSite, compute_dtype: str | None, fold: bool) -> st
 
 def patch(
     model: onnx.ModelProto,
-    temperature: float,
+    calibration: float | Scaling,
     *,
     source_sha256: str,
     source_path: str | os.PathLike,
@@ -1275,8 +1406,9 @@ def patch(
     model : onnx.ModelProto
         Not modified. If it carries an onnxcal record, that patch is undone
         first (see :func:`unpatch`), so patches never stack.
-    temperature : float
-        T > 0.
+    calibration : float or Scaling
+        A temperature T > 0, or a fitted scaling (temperature, vector, Platt,
+        per-label temperatures).
     source_sha256, source_path : str
         Identify the uncalibrated model in the record (kept from the old
         record when re-patching).
@@ -1303,19 +1435,19 @@ def patch(
     onnx.ModelProto
         Checked with ``onnx.checker.check_model(full_check=True)``.
     """
-    temperature = check_temperature(temperature)
     previous = read_record(model)
     out = unpatch(model)
     if previous is not None:
         source_sha256, source_path = previous.source_sha256, previous.source_path
         output = output or previous.source_output or None
     site = find_scores(out, output)
-    kind = fit_kind(site, activation)
-    compute = _check_options(site, compute_dtype, fold)
+    scaling = _site_scaling(calibration, site, activation)
+    kind = scaling.activation
+    compute = _check_options(site, compute_dtype, fold, scaling)
     s = _Surgery(out.graph)
     if fold:
-        _fold(s, site, temperature, drop_logits)
-    scale: ScaleFn = _no_scaling if fold else partial(divide_by_temperature, temperature=temperature)
+        _fold(s, site, scaling.temperature, drop_logits)
+    scale: ScaleFn = _no_scaling if fold else scale_fn(scaling, site)
     if site.from_probabilities:
         _rewrite_ml(s, site, scale, compute)
         rewrite, calibrated = "ml-log-probabilities", site.output
@@ -1333,7 +1465,7 @@ def patch(
         _append_activation(s, site, scale, compute, kind, new_output, drop_logits, opset_version(out))
         rewrite, calibrated = f"append-{kind}", new_output
     record = Record(
-        temperature=temperature,
+        temperature=scaling.temperature,
         output=calibrated,
         scores=site.scores,
         rewrite=rewrite,
@@ -1342,6 +1474,10 @@ def patch(
         source_sha256=source_sha256,
         source_path=str(source_path),
         fit=fit or {},
+        method=scaling.method,
+        parameters=dict(scaling.parameters),
+        initializers=dict(s.parameters),
+        kind=scaling.kind,
         folded=fold,
         compute_dtype=compute,
         source_output=site.output,

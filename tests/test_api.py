@@ -11,8 +11,9 @@ from sklearn.exceptions import ConvergenceWarning
 from sklearn.model_selection import train_test_split
 from sklearn.neural_network import MLPClassifier
 
-from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, mlp_model
-from onnxcal import api
+from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, mlp_model, random_mlp
+from onnxcal import api, graph
+from onnxcal.fit import FitOptions
 from onnxcal.metrics import evaluate
 
 
@@ -93,3 +94,65 @@ def test_inspect_demo():
     info = api.inspect(DEMO_MODEL)
     assert info.site.output == "logits" and info.site.activation is None
     assert info.site.num_classes == 5 and not info.batch_fixed and info.opset == 17
+
+
+def test_digits_vector_scaling_end_to_end(digits_setup):
+    d, clf, x_test, y_test = digits_setup
+    out = d / "vector.onnx"
+    result = api.calibrate(d / "digits.onnx", d / "val.npz", out, options=FitOptions(method="vector", bootstrap=20))
+    assert result.verification.passed and result.patch.record.method == "vector"
+    assert [n.op_type for n in onnx.load(str(out)).graph.node[-3:]] == ["Mul", "Add", "Softmax"]
+    assert api.verify(out, d / "test.npz").passed
+    before = _scores(d / "digits.onnx", "probabilities", "pixels", x_test).astype(np.float64)
+    after = _scores(out, "probabilities", "pixels", x_test).astype(np.float64)
+    assert evaluate(np.log(after), y_test).nll < evaluate(np.log(before), y_test).nll
+    fit = result.patch.record.fit
+    assert fit["metrics"]["basis"] == "held-out" and len(fit["intervals"]["parameters"]["w"]) == 10
+
+
+def _labelled(tmp_path, rng, model, name, make_labels):
+    """Save ``model`` and a set whose labels are drawn from its own logits."""
+    x = rng.normal(size=(1500, 6)).astype(np.float32)
+    site = graph.find_scores(model)
+    (z,) = ort.InferenceSession(
+        graph.expose(model, [site.scores]).SerializeToString(), providers=["CPUExecutionProvider"]
+    ).run([site.scores], {"x": x})
+    onnx.save(model, tmp_path / f"{name}.onnx")
+    np.savez(tmp_path / f"{name}.npz", x=x, labels=make_labels(z))
+    return tmp_path / f"{name}.onnx", tmp_path / f"{name}.npz"
+
+
+@pytest.mark.parametrize("final, method", [(None, "platt"), ("Sigmoid", "platt"), (None, "temperature"), ("Sigmoid", "temperature")])
+def test_binary_single_logit_end_to_end(tmp_path, rng, final, method):
+    model = random_mlp(rng, k=1, scale=3.0, final=final)
+    # Labels from sigmoid(z / 2 - 0.5): the model is overconfident and biased.
+    path, data = _labelled(
+        tmp_path, rng, model, "binary", lambda z: (rng.random(len(z)) < 1 / (1 + np.exp(-(z[:, 0] / 2 - 0.5)))).astype(int)
+    )
+    cap = api.capture(path, data, out=tmp_path / "cap.npz")
+    summary = api.fit(tmp_path / "cap.npz", out=tmp_path / "fit.json", options=FitOptions(method=method, bootstrap=20))
+    assert summary.scaling.kind == "binary" and summary.after.nll < summary.before.nll
+    res = api.patch(path, tmp_path / "p.onnx", fit=tmp_path / "fit.json")
+    assert res.record.activation == "sigmoid" and res.record.method == method
+    check = api.verify(tmp_path / "p.onnx", data, original=path)
+    assert check.passed, check.to_dict()
+    assert {c.name for c in check.checks} >= {"reference", "decisions", "record"}
+    assert cap.labels.ndim == 1
+
+
+@pytest.mark.parametrize("mode", ["shared", "per-label"])
+def test_multilabel_sigmoid_end_to_end(tmp_path, rng, mode):
+    model = random_mlp(rng, k=3, scale=3.0, final="Sigmoid")
+    t = np.array([0.7, 1.5, 3.0])
+    path, data = _labelled(
+        tmp_path, rng, model, "tags", lambda z: (rng.random(z.shape) < 1 / (1 + np.exp(-z / t))).astype(np.uint8)
+    )
+    result = api.calibrate(path, data, tmp_path / "p.onnx", options=FitOptions(multilabel=mode, bootstrap=10))
+    assert result.verification.passed and result.patch is not None
+    params = result.patch.record.parameters["temperature"]
+    if mode == "per-label":
+        np.testing.assert_allclose(params, t, rtol=0.35)
+    else:
+        assert isinstance(params, float)
+    assert result.summary.after.kind == "multilabel"
+    assert api.verify(tmp_path / "p.onnx", data).passed

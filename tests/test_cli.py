@@ -48,7 +48,7 @@ def test_step_by_step_commands(tmp_path, run_cli):
     cap, fit, patched = tmp_path / "c.npz", tmp_path / "fit.json", tmp_path / "p.onnx"
     assert run_cli("capture", DEMO_MODEL, "--data", DEMO_VAL, "--out", cap, "-q").code == 0
     r = run_cli("fit", cap, "--out", fit)
-    assert r.code == 0 and "temperature T =" in r.out
+    assert r.code == 0 and "temperature scaling" in r.out and "T = " in r.out
     t = json.loads(fit.read_text())["temperature"]
     r = run_cli("fit", cap, "--json")
     assert json.loads(r.out)["temperature"] == t
@@ -216,3 +216,59 @@ def test_calibrate_refuses_an_already_calibrated_model(tmp_path, run_cli):
     assert run_cli("patch", DEMO_MODEL, "--temperature", "2", "--out", out).code == 0
     r = run_cli("calibrate", out, "--data", DEMO_VAL, "--out", tmp_path / "d.onnx", "-q")
     assert r.code == 2 and "already calibrated" in r.err
+
+
+# --------------------------------------------------------------------------
+# fit options
+
+
+@pytest.fixture(scope="module")
+def demo_capture(tmp_path_factory):
+    from onnxcal import api
+
+    path = tmp_path_factory.mktemp("cap") / "cap.npz"
+    api.capture(DEMO_MODEL, DEMO_VAL, out=path)
+    return path
+
+
+def test_fit_table_shows_held_out_intervals_and_fit_part(demo_capture, run_cli):
+    r = run_cli("fit", demo_capture, "--bootstrap", "30", "--seed", "3")
+    assert r.code == 0, r.err
+    for text in ("held-out", "95% interval", "fit part", "MCE", "adaptive ECE", "classwise ECE", "gap", "refitted on all 2000"):
+        assert text in r.out, text
+    r = run_cli("fit", demo_capture, "--holdout", "0", "--bootstrap", "0")
+    assert "in-sample" in r.out and "95% interval" not in r.out and "fit part" not in r.out
+
+
+def test_fit_vector_then_patch_and_verify(demo_capture, tmp_path, run_cli):
+    fit = tmp_path / "fit.json"
+    r = run_cli("fit", demo_capture, "--method", "vector", "--l2", "0.001", "--bootstrap", "10", "--out", fit)
+    assert r.code == 0, r.err
+    assert "vector scaling" in r.out
+    data = json.loads(fit.read_text())
+    assert data["method"] == "vector" and data["options"]["l2"] == 0.001
+    assert len(data["intervals"]["parameters"]["w"]) == 5 and data["temperature"] is None
+    out = tmp_path / "p.onnx"
+    r = run_cli("patch", DEMO_MODEL, "--fit", fit, "--out", out)
+    assert r.code == 0 and "Mul + Add + Softmax appended" in r.out
+    assert "vector scaling" in run_cli("inspect", out).out
+    r = run_cli("verify", out, "--data", DEMO_TEST, "-q")
+    assert r.code == 0, r.out
+
+
+BAD_FIT = [
+    (["--holdout", "1.5"], "--holdout 1.5 is not a fraction"),
+    (["--method", "platt"], "--method platt does not apply to a multiclass"),
+    (["--method", "nope"], "--method 'nope' is not one of"),
+    (["--multilabel", "shared"], "--multilabel needs an N x K"),
+    (["--bootstrap", "-1"], "--bootstrap -1 is negative"),
+    (["--l2", "0.1"], "--l2 applies to --method vector and platt"),
+]
+
+
+@pytest.mark.parametrize("args, message", BAD_FIT, ids=[a[0] for a, _ in BAD_FIT])
+def test_bad_fit_options(demo_capture, tmp_path, run_cli, args, message):
+    r = run_cli("fit", demo_capture, "--out", tmp_path / "fit.json", *args)
+    assert r.code == 2 and "Traceback" not in r.err
+    assert re.search(message, r.err), r.err
+    assert not (tmp_path / "fit.json").exists()

@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from onnxcal.data import check_labels, load_npz, match_inputs
+from onnxcal.data import check_label_array, check_labels, load_npz, match_inputs
 from onnxcal.errors import OnnxcalError
 from onnxcal.graph import TensorSpec
 
@@ -99,3 +99,17 @@ def test_check_labels_errors(labels, message):
 def test_whole_float_labels_are_accepted():
     out = check_labels(np.array([0.0, 2.0, 1.0]), 3, 3, "set.npz")
     assert out.dtype == np.int64 and out.tolist() == [0, 2, 1]
+
+
+def test_multilabel_and_single_logit_labels():
+    y = np.array([[0, 1, 1], [1, 0, 0]])
+    out = check_label_array(y, 2, 3, "set.npz")
+    assert out.dtype == np.uint8 and out.tolist() == y.tolist()
+    # A single-logit binary model takes 0/1 class labels.
+    assert check_label_array(np.array([0, 1, 1]), 3, 1, "set.npz").tolist() == [0, 1, 1]
+    with pytest.raises(OnnxcalError, match=r"label 2 at row 0, column 1 .* is not 0 or 1"):
+        check_label_array(np.array([[0, 2, 1], [1, 0, 0]]), 2, 3, "set.npz")
+    with pytest.raises(OnnxcalError, match=r"shape \(2, 2\), expected \(2, 3\)"):
+        check_label_array(np.array([[0, 1], [1, 0]]), 2, 3, "set.npz")
+    with pytest.raises(OnnxcalError, match=r"label 2 at row 0 .* outside \[0, 2\)"):
+        check_label_array(np.array([2, 0]), 2, 1, "set.npz")

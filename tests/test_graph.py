@@ -14,6 +14,7 @@ from conftest import identity_model, onehot_int_model, random_mlp, save_model
 from onnxcal import graph
 from onnxcal.errors import OnnxcalError
 from onnxcal.verify import tolerance
+from onnxcal.scaling import Scaling
 
 SHA = "0" * 64
 
@@ -423,3 +424,127 @@ def test_record_without_changes_cannot_be_undone(rng):
             p.value = json.dumps(old)
     with pytest.raises(OnnxcalError, match="does not say what the patch changed"):
         do_patch(patched, 1.0)
+
+
+# --------------------------------------------------------------------------
+# Vector, Platt and per-label scalings
+
+
+def _vector(k, rng):
+    w = rng.uniform(0.4, 1.6, size=k)
+    b = rng.normal(scale=0.5, size=k)
+    return Scaling.of_affine(w, b - b.mean(), "vector", "multiclass"), w, b - b.mean()
+
+
+@pytest.mark.parametrize("runner", [run_ort, run_reference])
+def test_vector_scaling_appended_matches_scipy(rng, x, runner):
+    model = random_mlp(rng, scale=3.0)
+    (z,) = run_ort(model, x)
+    scaling, w, b = _vector(4, rng)
+    patched = do_patch(model, scaling)
+    assert [n.op_type for n in patched.graph.node[-3:]] == ["Mul", "Add", "Softmax"]
+    (probs,) = runner(patched, x, ["probabilities"])
+    # Reference library: scipy.special.softmax of w * z + b (Guo et al. 2017, sec. 4.2).
+    np.testing.assert_allclose(probs, scipy.special.softmax(z.astype(np.float64) * w + b, axis=1), atol=1e-6)
+    record = graph.read_record(patched)
+    assert record.method == "vector" and record.temperature is None and record.rewrite == "append-softmax"
+    np.testing.assert_allclose(graph.parameter_values(patched, record)["w"], w, rtol=1e-7)
+
+
+@pytest.mark.parametrize("runner", [run_ort, run_reference])
+@pytest.mark.parametrize("final", ["Softmax", "LogSoftmax"])
+@pytest.mark.filterwarnings("ignore:divide by zero:RuntimeWarning")
+def test_vector_scaling_before_softmax_is_drop_in(rng, x, runner, final):
+    model = random_mlp(rng, scale=2.0, final=final)
+    (z,) = run_ort(graph.expose(model, ["logits"]), x, ["logits"])
+    scaling, w, b = _vector(4, rng)
+    patched = do_patch(model, scaling)
+    assert [o.SerializeToString() for o in patched.graph.output] == [o.SerializeToString() for o in model.graph.output]
+    (got,) = runner(patched, x)
+    ref = scipy.special.softmax(z.astype(np.float64) * w + b, axis=1)
+    np.testing.assert_allclose(np.exp(got) if final == "LogSoftmax" else got, ref, atol=1e-6)
+
+
+def _single_logit_model(rng, final=None):
+    return random_mlp(rng, k=1, scale=2.0, final=final)
+
+
+@pytest.mark.parametrize("final", [None, "Sigmoid"])
+def test_platt_scaling_on_a_single_logit(rng, x, final):
+    model = _single_logit_model(rng, final)
+    (z,) = run_ort(graph.expose(model, ["logits"]) if final else model, x, ["logits" if final else "scores"])
+    scaling = Scaling.of_affine(0.6, -0.3, "platt", "binary")
+    patched = do_patch(model, scaling)
+    out = "scores" if final else "probabilities"
+    record = graph.read_record(patched)
+    assert record.activation == "sigmoid"
+    assert record.rewrite == ("insert-before-activation" if final else "append-sigmoid")
+    for runner in (run_ort, run_reference):
+        (p,) = runner(patched, x, [out])
+        # Reference library: scipy.special.expit (Platt 1999: sigmoid(a z + b)).
+        np.testing.assert_allclose(p, scipy.special.expit(0.6 * z.astype(np.float64) - 0.3), atol=1e-6)
+
+
+def test_binary_temperature_appends_a_sigmoid(rng, x):
+    # One logit: a softmax over one value is always 1, so the calibrated output is sigmoid(z / T).
+    model = _single_logit_model(rng)
+    (z,) = run_ort(model, x)
+    patched = do_patch(model, 2.0)
+    (p,) = run_ort(patched, x, ["probabilities"])
+    np.testing.assert_allclose(p, scipy.special.expit(z.astype(np.float64) / 2.0), atol=1e-6)
+    assert graph.read_record(patched).rewrite == "append-sigmoid"
+
+
+@pytest.mark.parametrize("runner", [run_ort, run_reference])
+def test_per_label_temperatures_before_sigmoid(rng, x, runner):
+    model = random_mlp(rng, k=3, final="Sigmoid", scale=2.0)
+    (z,) = run_ort(graph.expose(model, ["logits"]), x, ["logits"])
+    t = np.array([0.5, 1.0, 3.0])
+    patched = do_patch(model, Scaling.of_temperature(t, "multilabel"))
+    div = next(n for n in patched.graph.node if n.op_type == "Div")
+    init = next(i for i in patched.graph.initializer if i.name == div.input[1])
+    assert list(init.dims) == [3]  # a K-vector broadcast over the class axis
+    (p,) = runner(patched, x)
+    np.testing.assert_allclose(p, scipy.special.expit(z.astype(np.float64) / t), atol=1e-6)
+
+
+def test_per_class_parameters_follow_the_class_axis(rng):
+    # Class axis 1 of a rank-3 output (e.g. per-position scores): w must broadcast
+    # as (K, 1) under ONNX multidirectional broadcasting (ONNX operator spec, Broadcasting.md).
+    k, length = 3, 5
+    graph_ = helper.make_graph(
+        [helper.make_node("Softmax", ["x"], ["probs"], axis=1)],
+        "seq",
+        [helper.make_tensor_value_info("x", onnx.TensorProto.FLOAT, ["N", k, length])],
+        [helper.make_tensor_value_info("probs", onnx.TensorProto.FLOAT, ["N", k, length])],
+    )
+    model = helper.make_model(graph_, opset_imports=[helper.make_opsetid("", 17)])
+    model.ir_version = 8
+    scaling, w, b = _vector(k, rng)
+    patched = do_patch(model, scaling)
+    z = rng.normal(size=(2, k, length)).astype(np.float32)
+    (p,) = run_reference(patched, z)
+    ref = scipy.special.softmax(z * w[:, None] + b[:, None], axis=1)
+    np.testing.assert_allclose(p, ref, atol=1e-6)
+
+
+def test_repatch_vector_replaces_and_may_switch_method(rng, x):
+    model = random_mlp(rng, final="Softmax")
+    first, _, _ = _vector(4, rng)
+    second, w2, b2 = _vector(4, rng)
+    once = do_patch(model, first)
+    twice = do_patch(once, second)
+    assert len(twice.graph.node) == len(once.graph.node)
+    record = graph.read_record(twice)
+    np.testing.assert_allclose(graph.parameter_values(twice, record)["b"], b2, rtol=1e-6, atol=1e-7)
+    # The previous patch is undone first, so another method replaces it exactly.
+    assert do_patch(once, 2.0).SerializeToString() == do_patch(model, 2.0).SerializeToString()
+
+
+def test_mismatched_scalings_are_refused(rng):
+    with pytest.raises(OnnxcalError, match="multiclass calibration .* calibrated through a sigmoid"):
+        do_patch(random_mlp(rng, final="Sigmoid"), _vector(4, rng)[0])
+    with pytest.raises(OnnxcalError, match="multilabel calibration .* calibrated through a softmax"):
+        do_patch(random_mlp(rng, final="Softmax"), Scaling.of_temperature([1.0] * 4, "multilabel"))
+    with pytest.raises(OnnxcalError, match="has 3 values for 4 classes"):
+        do_patch(random_mlp(rng), Scaling.of_affine([1.0] * 3, [0.0] * 3, "vector", "multiclass"))
