@@ -292,11 +292,15 @@ def _classwise_ids(p: np.ndarray, n_bins: int) -> np.ndarray:
     return (bin_ids(p, n_bins) + n_bins * np.arange(p.shape[1])).ravel()
 
 
-def _classwise_from_sums(p_sum: np.ndarray, y_sum: np.ndarray, n: float, n_classes: int) -> float:
+def _per_class_errors(p_sum: np.ndarray, y_sum: np.ndarray, n: float, n_classes: int) -> np.ndarray:
+    """Each class's calibration error from flat (class, bin) sums: the terms of the classwise ECE."""
     if not n:
-        return float("nan")
-    per_class = np.abs(y_sum - p_sum).reshape(n_classes, -1).sum(axis=1) / n
-    return float(per_class.mean())
+        return np.full(n_classes, np.nan)
+    return np.abs(y_sum - p_sum).reshape(n_classes, -1).sum(axis=1) / n
+
+
+def _classwise_from_sums(p_sum: np.ndarray, y_sum: np.ndarray, n: float, n_classes: int) -> float:
+    return float(_per_class_errors(p_sum, y_sum, n, n_classes).mean())
 
 
 def classwise_calibration_error(
@@ -399,6 +403,18 @@ class Metrics:
 METRIC_FIELDS = (
     "nll", "ece", "mce", "adaptive_ece", "classwise_ece", "brier", "accuracy", "mean_confidence", "gap",
 )
+# How tables (CLI, report) name them; ``{bins}`` is the number of bins.
+METRIC_LABELS = {
+    "nll": "NLL",
+    "ece": "ECE ({bins} bins)",
+    "mce": "MCE",
+    "adaptive_ece": "adaptive ECE",
+    "classwise_ece": "classwise ECE",
+    "brier": "Brier score",
+    "accuracy": "accuracy",
+    "mean_confidence": "mean confidence",
+    "gap": "gap (conf - acc)",
+}
 
 
 def _as_scaling(scaling: Scaling | float, kind: str) -> Scaling:
@@ -570,3 +586,179 @@ def _evaluate_sigmoid(logits, labels, scaling, n_bins, rows, weights, kind) -> M
         sums.add_top_label(np.where(pred, p, 1.0 - p).ravel(), (pred == (y > 0.5)).ravel(), ww)
         _classwise_add(sums.p_sum, sums.y_sum, p, y, w, n_bins, onehot=y)
     return sums.metrics(_total(logits, rows, weights), k, weights, kind)
+
+
+# --------------------------------------------------------------------------
+# Reliability diagrams and per-class errors (drawn by ``report``)
+
+
+@dataclass(frozen=True)
+class Reliability:
+    """The figures behind a reliability diagram and the per-class error bars.
+
+    Attributes
+    ----------
+    kind : str
+        ``"multiclass"``, ``"binary"`` or ``"multilabel"``.
+    quantity : str
+        ``"top-label"`` (multiclass): each sample's prediction is the
+        probability of its predicted class, and "observed" is the fraction
+        of those predictions that are right. ``"positive"`` (binary and
+        multi-label): each (sample, label) entry's prediction is the
+        probability that the label is present, and "observed" is the
+        fraction of entries where it is.
+    edges : ndarray of shape (M + 1,)
+        Bin edges 0, 1/M, ..., 1; bins are ``((m-1)/M, m/M]``.
+    counts : ndarray of shape (M,)
+        Predictions per bin (also the confidence histogram).
+    confidence : ndarray of shape (M,)
+        Mean prediction in each bin; NaN for an empty bin.
+    observed : ndarray of shape (M,)
+        Fraction correct (top-label) or present (positive) in each bin;
+        NaN for an empty bin.
+    class_error : ndarray of shape (K,)
+        Calibration error of each class's (label's) probability,
+        sum_m |B_km|/n |freq_k(B_km) - conf_k(B_km)|; their mean is the
+        classwise ECE.
+    """
+
+    kind: str
+    quantity: str
+    edges: np.ndarray
+    counts: np.ndarray
+    confidence: np.ndarray
+    observed: np.ndarray
+    class_error: np.ndarray
+
+    @property
+    def error(self) -> float:
+        """The binned calibration error of the diagram, sum_m |B_m|/n |observed - confidence|.
+
+        For ``top-label`` this is the ECE of :func:`evaluate`; for a binary
+        model (``positive``, K = 1) it is the classwise ECE.
+        """
+        full = self.counts > 0
+        gaps = np.abs(self.observed[full] - self.confidence[full]) * self.counts[full]
+        return float(gaps.sum() / self.counts.sum()) if full.any() else float("nan")
+
+    def to_dict(self) -> dict:
+        """JSON-ready: arrays as lists, NaN (empty bins) as None."""
+
+        def plain(a: np.ndarray) -> list:
+            return [None if not np.isfinite(v) else float(v) for v in np.asarray(a, dtype=np.float64)]
+
+        return {
+            "kind": self.kind,
+            "quantity": self.quantity,
+            "edges": plain(self.edges),
+            "counts": [int(round(c)) for c in self.counts],
+            "confidence": plain(self.confidence),
+            "observed": plain(self.observed),
+            "class_error": plain(self.class_error),
+            "error": None if not np.isfinite(self.error) else self.error,
+        }
+
+
+def reliability(
+    logits: np.ndarray,
+    labels: np.ndarray,
+    scaling: Scaling | float = 1.0,
+    n_bins: int = DEFAULT_BINS,
+    *,
+    rows: np.ndarray | None = None,
+) -> Reliability:
+    """Per-bin counts, mean prediction and observed frequency, and per-class errors.
+
+    Multiclass: the top-label reliability diagram (equal-width bins of the
+    predicted class's probability against the fraction correct), as for
+    the ECE. Binary and multi-label: every entry's probability that the
+    label is present against the fraction present (for a binary model this
+    is the curve of ``sklearn.calibration.calibration_curve``).
+
+    Parameters
+    ----------
+    logits : ndarray of shape (n, k)
+    labels : ndarray of shape (n,) or (n, k)
+    scaling : Scaling or float, default 1.0
+        The calibration map (a number is a temperature).
+    n_bins : int, default 15
+    rows : ndarray of int, optional
+        Only these rows (sorted indices).
+
+    Returns
+    -------
+    Reliability
+
+    References
+    ----------
+    DeGroot & Fienberg, "The Comparison and Evaluation of Forecasters",
+    The Statistician 32(1/2), 1983 (reliability diagrams); Niculescu-Mizil
+    & Caruana, "Predicting Good Probabilities With Supervised Learning",
+    ICML 2005, sec. 2; Guo et al. 2017, sec. 2 (top-label form). Per-class
+    errors: Kull et al. 2019, sec. 2 (classwise-ECE).
+
+    Examples
+    --------
+    >>> r = reliability(np.array([[2.0, 0.0], [0.0, 2.0]]), np.array([0, 0]), n_bins=10)
+    >>> int(r.counts[8]), float(r.observed[8])
+    (2, 0.5)
+    """
+    k = logits.shape[1]
+    kind = kind_of(k, np.ndim(labels))
+    scaling = _as_scaling(scaling, kind)
+    bins = np.zeros((3, n_bins))
+    p_sum, y_sum = np.zeros(k * n_bins), np.zeros(k * n_bins)
+    n = 0
+    for z, y, _ in iter_chunks(logits, labels, rows):
+        s = scaling.apply(z)
+        if kind == "multiclass":
+            p = softmax(s, axis=1)
+            pred = p.argmax(axis=1)
+            bins += reliability_bins(p[np.arange(len(y)), pred], pred == y, n_bins)
+            _classwise_add(p_sum, y_sum, p, y, None, n_bins)
+        else:
+            p = sigmoid(s)
+            present = y.reshape(len(y), -1).astype(np.float64)
+            bins += reliability_bins(p.ravel(), present.ravel(), n_bins)
+            _classwise_add(p_sum, y_sum, p, present, None, n_bins, onehot=present)
+        n += len(y)
+    counts, conf_sum, obs_sum = bins
+    with np.errstate(invalid="ignore", divide="ignore"):
+        confidence = np.where(counts > 0, conf_sum / counts, np.nan)
+        observed = np.where(counts > 0, obs_sum / counts, np.nan)
+    return Reliability(
+        kind=kind,
+        quantity="top-label" if kind == "multiclass" else "positive",
+        edges=np.linspace(0.0, 1.0, n_bins + 1),
+        counts=counts,
+        confidence=confidence,
+        observed=observed,
+        class_error=_per_class_errors(p_sum, y_sum, n, k),
+    )
+
+
+def scores_from_probabilities(output: np.ndarray, activation: str) -> np.ndarray:
+    """Logits that give back a model's probability output, float64, for :func:`evaluate`.
+
+    ``"softmax"``: log(max(p, tiny)), since softmax(log p) = p for rows
+    that sum to 1 (common practice). ``"logsoftmax"``: the output itself.
+    ``"sigmoid"``: the logit log(p) - log(1 - p), each clamped the same
+    way. ``tiny`` is the smallest normal number of the output's dtype, so
+    a probability rounded to 0 or 1 gives a large finite logit, as the
+    output's own precision allows.
+
+    Examples
+    --------
+    >>> scores_from_probabilities(np.array([[0.5]]), "sigmoid")
+    array([[0.]])
+    """
+    if activation == "logsoftmax":
+        return np.asarray(output, dtype=np.float64)
+    p = np.asarray(output)
+    if p.dtype.kind != "f":
+        p = p.astype(np.float64)
+    tiny = np.finfo(p.dtype).tiny
+    log_p = np.log(np.maximum(p, tiny).astype(np.float64))
+    if activation == "sigmoid":
+        return log_p - np.log(np.maximum(1.0 - p, tiny).astype(np.float64))
+    return log_p
