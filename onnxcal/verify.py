@@ -4,16 +4,26 @@ The reference is the activation of the calibrated logits in float64, e.g.
 ``softmax(logits / T)`` or ``softmax(w * logits + b)``, where the logits are
 the original model's class scores on the same inputs and the parameters are
 those in the patched model's calibration record (``Scaling.apply``).
+
+Besides the reference checks, a CI gate may hold the patched model's own
+outputs to thresholds on labelled data (:func:`threshold_checks`) and its
+speed to a bound relative to the original (:func:`time_alternately`,
+:func:`latency_check`); :func:`junit_xml` reports every check as a JUnit
+test case.
 """
 
 from __future__ import annotations
 
+import time
+import xml.etree.ElementTree as ET
+from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass
+from datetime import datetime, timezone
 
 import numpy as np
 
 from .graph import np_dtype
-from .metrics import log_softmax, sigmoid
+from .metrics import METRIC_LABELS, Metrics, log_softmax, sigmoid
 from .scaling import Scaling
 
 # Largest allowed |patched - reference| and |row sum - 1|, by the dtype the
@@ -39,35 +49,86 @@ def tolerance(dtypes: str | tuple[str, ...]) -> float:
 
 @dataclass(frozen=True)
 class Check:
-    """One verification check and its measured figure."""
+    """One verification check and its measured figure.
+
+    Attributes
+    ----------
+    name : str
+        Short id (``reference``, ``argmax``, ``record``, ``max-ece``, ...).
+    passed : bool
+        False when the check failed; True when it passed or was skipped.
+    value, limit : float or None
+        The measured figure and the bound it is held to (None when there
+        is no figure, or no bound: a figure reported for information).
+    detail : str
+        What was measured, in words.
+    skipped : bool
+        The check could not be run (``detail`` says why); it does not fail.
+    """
 
     name: str
     passed: bool
-    value: float
-    limit: float
+    value: float | None
+    limit: float | None
     detail: str
+    skipped: bool = False
+
+    @property
+    def status(self) -> str:
+        """``"pass"``, ``"fail"`` or ``"skip"``."""
+        return "skip" if self.skipped else ("pass" if self.passed else "fail")
 
     def to_dict(self) -> dict:
-        return asdict(self)
+        return {**asdict(self), "status": self.status}
+
+
+def skipped(name: str, why: str) -> Check:
+    """A check that could not be run, and why."""
+    return Check(name, True, None, None, why, skipped=True)
 
 
 @dataclass(frozen=True)
 class VerifyResult:
-    """All checks; ``passed`` when every one passed."""
+    """All checks; ``passed`` when none failed (skipped checks do not fail).
+
+    Attributes
+    ----------
+    checks : tuple of Check
+    n : int
+        Samples run.
+    original : str
+        Where the reference logits came from: the original model's path,
+        the capture file(s), or the patched model itself.
+    reference_from : str
+        ``"original"`` (the uncalibrated model was run), ``"scores"``
+        (a capture of it was read), ``"patched-graph"`` (the patch was
+        undone in memory and the patched graph's own logits recomputed)
+        or ``"none"`` (no calibration record to build a reference from).
+    notes : tuple of str
+        What the reader should know about how the checks were made.
+    """
 
     checks: tuple[Check, ...]
     n: int
     original: str
+    reference_from: str = "original"
+    notes: tuple[str, ...] = ()
 
     @property
     def passed(self) -> bool:
         return all(c.passed for c in self.checks)
+
+    @property
+    def failed(self) -> tuple[Check, ...]:
+        return tuple(c for c in self.checks if not c.passed)
 
     def to_dict(self) -> dict:
         return {
             "passed": self.passed,
             "n": self.n,
             "original": self.original,
+            "reference_from": self.reference_from,
+            "notes": list(self.notes),
             "checks": [c.to_dict() for c in self.checks],
         }
 
@@ -162,10 +223,10 @@ def record_check(recorded, in_graph, dtype: str | None = "float32") -> Check:
     # roundoff of the weights' dtype.
     limit = {"float16": float(np.finfo(np.float16).eps), "bfloat16": 2.0**-7}.get(dtype, 1e-6)
     if in_graph is None:
-        return Check("record", False, float("nan"), limit, "parameter in the graph not found")
+        return Check("record", False, None, limit, "parameter in the graph not found")
     r, g = _flat(recorded), _flat(in_graph)
     if r.shape != g.shape:
-        return Check("record", False, float("nan"), limit, f"record has {r.size} parameters, graph {g.size}")
+        return Check("record", False, None, limit, f"record has {r.size} parameters, graph {g.size}")
     rounded = r.astype(np_dtype(dtype)).astype(np.float64)
     diff = float(np.max(np.abs(rounded - g) / np.maximum(np.abs(rounded), 1e-12))) if r.size else 0.0
     shown = f"record T = {r[0]:.6g}, graph T = {g[0]:.6g}" if r.size == 1 else f"{r.size} parameters"
@@ -183,3 +244,134 @@ def source_check(recorded_sha: str, original_sha: str) -> Check:
         "original's sha256 matches the record" if same else
         f"original's sha256 {original_sha[:12]}... differs from the record's {recorded_sha[:12]}...",
     )
+
+
+def format_figure(value: float | None) -> str:
+    """A check's value or limit for tables: 3 significant digits, "-" when absent."""
+    return "-" if value is None else f"{value:.3g}"
+
+
+def threshold_checks(
+    metrics: Metrics,
+    *,
+    max_ece: float | None = None,
+    max_nll: float | None = None,
+    min_accuracy: float | None = None,
+) -> tuple[Check, ...]:
+    """Hold metrics of the patched model's outputs against the labels to bounds.
+
+    ``metrics`` is :func:`onnxcal.metrics.evaluate` of the patched model's
+    own outputs (see :func:`onnxcal.metrics.scores_from_probabilities`);
+    each bound given becomes one check (``max-ece``, ``max-nll``,
+    ``min-accuracy``). A NaN figure fails.
+    """
+    wanted = (("max-ece", "ece", max_ece, True), ("max-nll", "nll", max_nll, True),
+              ("min-accuracy", "accuracy", min_accuracy, False))
+    checks = []
+    for name, field, limit, upper in wanted:
+        if limit is None:
+            continue
+        value = float(getattr(metrics, field))
+        ok = bool(value <= limit) if upper else bool(value >= limit)
+        label = METRIC_LABELS[field].format(bins=metrics.n_bins)
+        bound = "at most" if upper else "at least"
+        checks.append(
+            Check(
+                name,
+                ok,
+                value,
+                float(limit),
+                f"{label} of the patched model's outputs against the labels of {metrics.n} samples "
+                f"({bound} {limit:g})",
+            )
+        )
+    return tuple(checks)
+
+
+def time_alternately(
+    runs: Sequence[Callable[[], object]], repeats: int, warmup: int = 3
+) -> np.ndarray:
+    """Wall time of each callable, ``repeats`` times, interleaved in one process.
+
+    Round r calls them in order, round r + 1 in reverse (A B, B A, A B, ...),
+    so a change in the machine's load, or a cache warmed by the previous
+    call, hits every callable alike (common practice for side-by-side
+    timing on a shared machine). ``warmup`` rounds are run first and not
+    timed.
+
+    Returns
+    -------
+    ndarray of shape (len(runs), repeats)
+        Seconds per call.
+    """
+    for _ in range(warmup):
+        for run in runs:
+            run()
+    times = np.empty((len(runs), repeats))
+    order = list(range(len(runs)))
+    for r in range(repeats):
+        for i in order if r % 2 == 0 else order[::-1]:
+            start = time.perf_counter()
+            runs[i]()
+            times[i, r] = time.perf_counter() - start
+    return times
+
+
+def latency_check(
+    original: np.ndarray, patched: np.ndarray, max_ratio: float | None = None, *, batch: int, against: str = "original"
+) -> Check:
+    """Median latency of the patched model over the original's, as a ratio.
+
+    ``original`` and ``patched`` are seconds per call from
+    :func:`time_alternately`; without ``max_ratio`` the figure is reported
+    and the check passes.
+    """
+    a, b = float(np.median(original)), float(np.median(patched))
+    ratio = b / a if a > 0 else float("inf")
+    detail = (
+        f"median latency, patched {b * 1e3:.3g} ms / {against} {a * 1e3:.3g} ms, "
+        f"{len(patched)} alternating runs each on a batch of {batch}"
+    )
+    return Check("latency", max_ratio is None or ratio <= max_ratio, ratio, max_ratio, detail)
+
+
+def _line(c: Check) -> str:
+    return f"{c.name}: {c.status}, value {format_figure(c.value)}, limit {format_figure(c.limit)}: {c.detail}"
+
+
+def junit_xml(result: VerifyResult, *, suite: str, elapsed: float = 0.0) -> bytes:
+    """The checks as JUnit XML: one ``testcase`` per check, in one ``testsuite``.
+
+    A failed check carries a ``failure`` element, a skipped one a
+    ``skipped`` element; each has its figure in ``system-out``. The layout
+    (``testsuites`` > ``testsuite`` > ``testcase`` > ``failure`` /
+    ``skipped`` / ``system-out``, with ``tests``, ``failures``, ``errors``,
+    ``skipped`` and ``time`` counts) is the one CI systems read (common
+    practice; there is no single published schema).
+    """
+    checks = result.checks
+    counts = {
+        "tests": str(len(checks)),
+        "failures": str(len(result.failed)),
+        "errors": "0",
+        "skipped": str(sum(c.skipped for c in checks)),
+        "time": f"{elapsed:.3f}",
+    }
+    root = ET.Element("testsuites", {"name": "onnxcal verify", **counts})
+    stamp = datetime.now(timezone.utc).replace(microsecond=0).isoformat()
+    ts = ET.SubElement(root, "testsuite", {"name": suite, **counts, "timestamp": stamp})
+    props = ET.SubElement(ts, "properties")
+    for key, value in (("samples", result.n), ("reference_from", result.reference_from), ("original", result.original)):
+        ET.SubElement(props, "property", {"name": key, "value": str(value)})
+    for c in checks:
+        case = ET.SubElement(ts, "testcase", {"classname": suite, "name": c.name, "time": "0"})
+        if c.skipped:
+            ET.SubElement(case, "skipped", {"message": c.detail})
+        elif not c.passed:
+            fail = ET.SubElement(case, "failure", {"message": _line(c), "type": "check failed"})
+            fail.text = _line(c)
+        ET.SubElement(case, "system-out").text = _line(c)
+    if result.notes:
+        ET.SubElement(ts, "system-out").text = "\n".join(result.notes)
+    ET.indent(root)
+    return ('<?xml version="1.0" encoding="UTF-8"?>\n' + ET.tostring(root, encoding="unicode") + "\n").encode()

@@ -111,3 +111,95 @@ def test_record_check_compares_every_parameter():
     assert record_check(recorded, {"w": np.array([1.0, 2.0]), "b": np.array([0.5, -0.5])}).passed
     assert not record_check(recorded, {"w": np.array([1.0, 2.0]), "b": np.array([0.5, -0.4])}).passed
     assert not record_check(recorded, {"w": np.array([1.0]), "b": np.array([0.5])}).passed
+
+
+# --------------------------------------------------------------------------
+# The CI gate: thresholds, latency, JUnit XML
+
+
+def _metrics(**values):
+    from onnxcal.metrics import Metrics
+
+    base = dict(n=100, nll=0.5, ece=0.05, mce=0.2, adaptive_ece=0.05, classwise_ece=0.03, brier=0.3,
+                accuracy=0.9, mean_confidence=0.92, gap=0.02)
+    return Metrics(**{**base, **values})
+
+
+def test_threshold_checks_hold_each_bound():
+    from onnxcal.verify import threshold_checks
+
+    m = _metrics()
+    assert threshold_checks(m) == ()
+    checks = {c.name: c for c in threshold_checks(m, max_ece=0.06, max_nll=0.5, min_accuracy=0.9)}
+    assert all(c.passed for c in checks.values())  # bounds are inclusive
+    assert checks["max-ece"].value == 0.05 and checks["max-ece"].limit == 0.06
+    checks = {c.name: c for c in threshold_checks(m, max_ece=0.04, max_nll=0.49, min_accuracy=0.91)}
+    assert not any(c.passed for c in checks.values())
+    assert not threshold_checks(_metrics(ece=float("nan")), max_ece=1.0)[0].passed
+
+
+def test_time_alternately_interleaves_and_reverses():
+    from onnxcal.verify import time_alternately
+
+    calls = []
+    times = time_alternately([lambda: calls.append("a"), lambda: calls.append("b")], repeats=4, warmup=1)
+    assert times.shape == (2, 4) and np.all(times >= 0)
+    assert "".join(calls) == "ab" + "ab" + "ba" + "ab" + "ba"  # warm-up, then A B, B A, ...
+
+
+def test_latency_check_ratio_and_limit():
+    from onnxcal.verify import latency_check
+
+    a, b = np.array([1.0, 2.0, 3.0]), np.array([2.0, 4.0, 100.0])
+    c = latency_check(a, b, None, batch=8)
+    assert c.value == pytest.approx(2.0) and c.passed and c.limit is None  # medians 2 and 4
+    assert not latency_check(a, b, 1.5, batch=8).passed
+    assert latency_check(a, b, 2.0, batch=8).passed and "batch of 8" in c.detail
+
+
+def test_junit_xml_has_one_testcase_per_check():
+    # The layout CI systems read: testsuites > testsuite > testcase > failure | skipped
+    # (the JUnit XML convention of Ant's junitreport, common practice).
+    import xml.etree.ElementTree as ET
+
+    from onnxcal.verify import Check, VerifyResult, junit_xml, skipped
+
+    result = VerifyResult(
+        checks=(
+            Check("reference", True, 1e-7, 1e-5, "max |patched - softmax(logits / 2)|"),
+            Check("max-ece", False, 0.08, 0.05, "ECE <b>& more</b>"),
+            skipped("source", "no original model"),
+        ),
+        n=10,
+        original="m.onnx",
+        notes=("a note",),
+    )
+    root = ET.fromstring(junit_xml(result, suite="onnxcal verify p.onnx", elapsed=1.5))
+    assert root.tag == "testsuites" and root.get("tests") == "3" and root.get("failures") == "1"
+    (suite,) = root.findall("testsuite")
+    assert suite.get("name") == "onnxcal verify p.onnx" and suite.get("skipped") == "1" and suite.get("errors") == "0"
+    assert float(suite.get("time")) == 1.5 and suite.get("timestamp")
+    cases = suite.findall("testcase")
+    assert [c.get("name") for c in cases] == ["reference", "max-ece", "source"]
+    assert all(c.get("classname") == "onnxcal verify p.onnx" for c in cases)
+    assert cases[0].find("failure") is None and cases[0].find("skipped") is None
+    failure = cases[1].find("failure")
+    assert failure is not None and "0.08" in failure.get("message") and "<b>& more</b>" in failure.text
+    assert cases[2].find("skipped").get("message") == "no original model"
+    assert all(c.find("system-out") is not None for c in cases)
+    props = {p.get("name"): p.get("value") for p in suite.find("properties")}
+    assert props == {"samples": "10", "reference_from": "original", "original": "m.onnx"}
+
+
+def test_check_status_and_json():
+    import json
+
+    from onnxcal.verify import Check, VerifyResult, skipped
+
+    s = skipped("source", "why")
+    assert s.passed and s.status == "skip" and s.value is None
+    bad = Check("record", False, None, None, "no record")
+    result = VerifyResult(checks=(s, bad), n=1, original="")
+    assert not result.passed and result.failed == (bad,)
+    d = json.loads(json.dumps(result.to_dict(), allow_nan=False))
+    assert [c["status"] for c in d["checks"]] == ["skip", "fail"] and d["reference_from"] == "original"
