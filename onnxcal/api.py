@@ -9,22 +9,30 @@ they are also the Python API (``import onnxcal``).
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass
+import time
+from collections.abc import Sequence
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
 
 from . import capture as _capture
 from . import fit as _fit
-from . import graph, verify as _verify
-from ._files import check_output_path, sha256_file
+from . import graph
+from . import report as _report
+from . import verify as _verify
+from ._files import atomic_write_bytes, check_output_path, require_file, sha256_file
 from .capture import Capture, ProgressFn
 from .data import Dataset, load_npz
 from .errors import OnnxcalError
 from .fit import FitOptions, FitSummary
 from .graph import ModelInfo, Record
-from .scaling import METHODS, MULTILABEL_MODES, Scaling
-from .verify import VerifyResult
+from .metrics import DEFAULT_BINS, evaluate, scores_from_probabilities
+from .report import ReportResult
+from .scaling import METHODS, MULTILABEL_MODES, Scaling, check_scaling, kind_of
+from .verify import Check, VerifyResult
+
+DEFAULT_LATENCY_RUNS = 50
 
 
 @dataclass(frozen=True)
@@ -37,11 +45,12 @@ class PatchResult:
 
 @dataclass(frozen=True)
 class CalibrateResult:
-    """Everything ``calibrate`` did: the fit, the patched model and its verification."""
+    """Everything ``calibrate`` did: the fit, the patched model, its verification and report."""
 
     summary: FitSummary
     patch: PatchResult | None
     verification: VerifyResult
+    report: ReportResult | None = None
 
 
 def inspect(model_path: str | os.PathLike) -> ModelInfo:
@@ -295,38 +304,89 @@ def patch(
     return PatchResult(path=str(out), record=graph.read_record(patched))
 
 
-def _verify_models(
-    patched,
-    record: Record,
-    dataset: Dataset,
-    logits: np.ndarray,
-    *,
-    original: str,
-    original_model,
-    original_sha: str,
-    batch_size: int,
-    progress: ProgressFn | None,
-) -> VerifyResult:
-    """Run the patched model and compare it with the original's logits."""
-    site = graph.find_scores(patched, record.output)
-    (probs,) = _capture.run_model(
-        graph.expose(patched, [site.tensor]),
+# --------------------------------------------------------------------------
+# Capture files, the patched model's outputs, the reference checks
+
+
+def _as_paths(value) -> list:
+    if value is None:
+        return []
+    if isinstance(value, (str, os.PathLike)):
+        return [value]
+    return list(value)
+
+
+def _load_scores(paths: Sequence[str | os.PathLike]) -> Capture:
+    """Read one or more capture files as one Capture, rows in the order given.
+
+    Every operation that reads capture files (``verify --scores``,
+    ``report``) reads them through this function.
+
+    Raises
+    ------
+    OnnxcalError
+        No file, a file that is not a capture, or captures of different
+        models, outputs or kinds.
+    """
+    if not paths:
+        raise OnnxcalError("no capture file given", "give the file(s) written by 'onnxcal capture'")
+    caps = [_capture.load_capture(p) for p in paths]
+    first = caps[0].meta
+    for path, cap in zip(paths[1:], caps[1:]):
+        m = cap.meta
+        if (m.model_sha256, m.scores, m.num_classes, m.fit_as) != (
+            first.model_sha256, first.scores, first.num_classes, first.fit_as
+        ):
+            raise OnnxcalError(
+                f"capture file '{path}' holds scores of another model or output than '{paths[0]}'",
+                "give captures of one model's output",
+            )
+    if len(caps) == 1:
+        return caps[0]
+    logits = np.concatenate([c.logits for c in caps])
+    labels = np.concatenate([c.labels for c in caps])
+    meta = replace(first, n=int(len(logits)), data_source=", ".join(c.meta.data_source for c in caps))
+    return Capture(logits=logits, labels=labels, meta=meta)
+
+
+def _run_output(model, site, dataset: Dataset, batch_size: int, progress) -> np.ndarray:
+    """The values of ``site``'s output for every sample, class axis last: (rows, k)."""
+    (values,) = _capture.run_model(
+        graph.expose(model, [site.tensor]),
         dataset,
         [site.tensor],
         batch_size=batch_size,
         progress=progress,
         description="running patched model",
     )
-    rows = _capture.as_rows(probs, site.class_axis)
+    return _capture.as_rows(values, site.class_axis)
+
+
+def _reference_checks(
+    rows: np.ndarray, site, record: Record, logits: np.ndarray, patched, original_model, source_sha: str | None
+) -> list[Check]:
+    """Checks (1)-(3): the outputs against the reference, the record against the graph and the source."""
     dtypes = (site.dtype, site.output_dtype or site.dtype)
-    checks = _verify.compare(rows, logits, record.scaling, record.activation, dtypes)
-    in_graph = graph.parameter_values(patched, record, original_model)
-    recorded = {"temperature": record.temperature} if record.folded else record.parameters
-    checks += (
-        _verify.record_check(recorded, in_graph, graph.temperature_dtype(patched, record)),
-        _verify.source_check(record.source_sha256, original_sha),
-    )
-    return VerifyResult(checks=checks, n=dataset.n, original=original)
+    checks = list(_verify.compare(rows, logits, record.scaling, record.activation, dtypes))
+    if record.folded and original_model is None:
+        checks.append(
+            _verify.skipped(
+                "record", "T is folded into the weights; reading it back needs the original model (--original)"
+            )
+        )
+    else:
+        in_graph = graph.parameter_values(patched, record, original_model)
+        recorded = {"temperature": record.temperature} if record.folded else record.parameters
+        checks.append(_verify.record_check(recorded, in_graph, graph.temperature_dtype(patched, record)))
+    if source_sha is None:
+        checks.append(
+            _verify.skipped(
+                "source", f"no original model or scores to compare with the record's sha256 {record.source_sha256[:12]}..."
+            )
+        )
+    else:
+        checks.append(_verify.source_check(record.source_sha256, source_sha))
+    return checks
 
 
 def _source_site(base, record: Record):
@@ -339,56 +399,429 @@ def _source_site(base, record: Record):
     )
 
 
+def _unpatched(patched, patched_path):
+    try:
+        return graph.unpatch(patched)
+    except OnnxcalError as exc:
+        raise OnnxcalError(
+            f"cannot recover the uncalibrated graph from '{patched_path}': {exc.message}",
+            "pass --original MODEL or --scores CAPTURE",
+        ) from exc
+
+
+# --------------------------------------------------------------------------
+# verify: the CI gate
+
+
+def _check_gate(max_ece, max_nll, min_accuracy, n_bins, max_latency_ratio, latency_runs) -> None:
+    for option, value in (("--max-ece", max_ece), ("--min-accuracy", min_accuracy)):
+        if value is not None and not (np.isfinite(value) and 0 <= value <= 1):
+            raise OnnxcalError(f"{option} {value!r} is not a number between 0 and 1")
+    if max_nll is not None and not (np.isfinite(max_nll) and max_nll >= 0):
+        raise OnnxcalError(f"--max-nll {max_nll!r} is not a non-negative number")
+    if max_latency_ratio is not None and not (np.isfinite(max_latency_ratio) and max_latency_ratio > 0):
+        raise OnnxcalError(
+            f"--max-latency-ratio {max_latency_ratio!r} is not a positive number", "use e.g. 1.05 for 5 % slower"
+        )
+    if latency_runs < 1:
+        raise OnnxcalError(f"--latency-runs {latency_runs} is not a positive number of runs")
+    if n_bins < 2:
+        raise OnnxcalError(f"--bins {n_bins} is fewer than 2 bins")
+
+
+def _latency_feed(model, dataset: Dataset, batch_size: int) -> tuple[dict, int]:
+    """The first batch of the data, cast to the model's input dtypes (padded for a fixed batch)."""
+    init = {i.name for i in model.graph.initializer}
+    size = _capture._fixed_batch(model) or min(batch_size, dataset.n)
+    feed = {}
+    for vi in model.graph.input:
+        if vi.name in init:
+            continue
+        batch = np.asarray(dataset.inputs[vi.name][:size], dtype=graph.tensor_spec(vi).dtype)
+        if len(batch) < size:
+            batch = np.concatenate([batch, np.repeat(batch[-1:], size - len(batch), axis=0)])
+        feed[vi.name] = batch
+    return feed, size
+
+
+def _latency(base, patched, dataset: Dataset, batch_size: int, runs: int, max_ratio, against: str) -> Check:
+    feed, size = _latency_feed(patched, dataset, batch_size)
+    sessions = [_capture.make_session(base), _capture.make_session(patched)]
+    times = _verify.time_alternately([lambda s=s: s.run(None, feed) for s in sessions], runs)
+    return _verify.latency_check(times[0], times[1], max_ratio, batch=size, against=against)
+
+
+def _threshold_checks(rows, activation, site, dataset: Dataset, cap: Capture | None, n_bins, limits) -> tuple:
+    """Check (4): metrics of the patched model's own outputs against the labels."""
+    if activation is None:  # raw logits (a model without a record)
+        logits, kind = rows, graph.fit_kind(site)
+    else:
+        logits, kind = scores_from_probabilities(rows, activation), "sigmoid" if activation == "sigmoid" else "softmax"
+    if dataset.labels is not None:
+        labels = _capture.label_rows(dataset.labels, rows.shape, kind, dataset.source)
+    else:
+        labels = cap.labels
+        if len(labels) != len(rows):
+            raise OnnxcalError(
+                f"the labels of --scores hold {len(labels)} rows but the patched model gives {len(rows)} rows",
+                "capture the original model on the same data file",
+            )
+    return _verify.threshold_checks(evaluate(logits, labels, 1.0, n_bins), **limits)
+
+
 def verify(
     patched_path: str | os.PathLike,
     data_path: str | os.PathLike,
     *,
     original: str | os.PathLike | None = None,
+    scores: str | os.PathLike | Sequence[str | os.PathLike] | None = None,
+    max_ece: float | None = None,
+    max_nll: float | None = None,
+    min_accuracy: float | None = None,
+    n_bins: int = DEFAULT_BINS,
+    latency: bool = False,
+    max_latency_ratio: float | None = None,
+    latency_runs: int = DEFAULT_LATENCY_RUNS,
+    junit: str | os.PathLike | None = None,
+    force: bool = False,
     batch_size: int = _capture.DEFAULT_BATCH,
     progress: ProgressFn | None = None,
 ) -> VerifyResult:
-    """Check a patched model against its NumPy reference (e.g. softmax(original logits / T)).
+    """Check a patched model for CI: reference, decisions, record, thresholds, latency.
+
+    The checks, each with its figure (see ``docs/ci.md``):
+
+    1. ``reference`` (and ``row-sums`` for softmax outputs): the patched
+       outputs against the NumPy reference, e.g. softmax(original logits / T),
+       within the tolerance of the dtype the graph computes in.
+    2. ``argmax`` (softmax) or ``decisions`` (sigmoid): every row decides
+       as the reference does.
+    3. ``record``: the calibration record is present and its parameters are
+       the graph's; ``source``: the original's sha256 is the record's.
+    4. ``max-ece``, ``max-nll``, ``min-accuracy``, when a bound is given:
+       metrics of the patched model's outputs against the labels.
+    5. ``latency``, with ``latency`` or ``max_latency_ratio``: median
+       latency of the patched model over the original's (or, without one,
+       over the uncalibrated graph recovered from the patched one),
+       measured alternately in this process.
 
     Parameters
     ----------
     patched_path : path
-        A model written by :func:`patch`.
+        A model written by :func:`patch` or :func:`calibrate`.
     data_path : path
-        ``.npz`` with one array per model input (labels optional).
+        ``.npz`` with one array per model input (``labels`` needed for
+        the thresholds, unless ``scores`` carry them).
     original : path, optional
-        The uncalibrated model; by default the path in the record, if it exists.
+        The uncalibrated model; by default the path in the record, if that
+        file exists.
+    scores : path or list of paths, optional
+        Capture file(s) of the original model on the same data, used
+        instead of running it. With neither ``original`` (nor the recorded
+        path) nor ``scores``, the reference is recomputed from the patched
+        graph's own logits tensor, and the result says so.
+    max_ece, max_nll, min_accuracy : float, optional
+        Bounds for check 4; ``n_bins`` bins for the ECE.
+    latency, max_latency_ratio, latency_runs
+        Check 5: measure (``latency_runs`` runs of each model on one batch
+        of ``batch_size`` samples), and fail above ``max_latency_ratio``.
+    junit : path, optional
+        Also write the checks as JUnit XML here (``force`` to replace it).
+
+    Returns
+    -------
+    VerifyResult
+        ``passed`` is False when a check failed (the CLI exits 1).
+
+    Raises
+    ------
+    OnnxcalError
+        Bad input (the CLI exits 2): unreadable files, options out of
+        range, ``original`` and ``scores`` together, thresholds without
+        labels, scores that do not line up with the data.
     """
+    started = time.perf_counter()
     _check_batch_size(batch_size)
+    _check_gate(max_ece, max_nll, min_accuracy, n_bins, max_latency_ratio, latency_runs)
+    score_paths = _as_paths(scores)
+    if original is not None and score_paths:
+        raise OnnxcalError(
+            "give --original or --scores, not both", "--scores stands in for running the original model"
+        )
+    if junit is not None:
+        inputs = [patched_path, data_path, *score_paths, *([original] if original is not None else [])]
+        check_output_path(junit, inputs, force=force, option="--junit")
+    latency = latency or max_latency_ratio is not None
+    limits = {"max_ece": max_ece, "max_nll": max_nll, "min_accuracy": min_accuracy}
+    thresholds = any(v is not None for v in limits.values())
     patched = graph.load_model(patched_path)
     record = graph.read_record(patched)
-    if record is None:
-        raise OnnxcalError(
-            f"'{patched_path}' has no onnxcal calibration record",
-            "verify a model written by 'onnxcal patch' or 'onnxcal calibrate'",
-        )
-    if original is None:
-        if not Path(record.source_path).is_file():
-            raise OnnxcalError(
-                f"the original model recorded in '{patched_path}' ({record.source_path}) "
-                "is not there",
-                "pass --original PATH",
-            )
-        original = record.source_path
-    base = graph.load_model(original)
     dataset = _load_data(data_path, require_labels=False)
-    base_site = _source_site(base, record)
-    logits = _capture.capture_scores(base, dataset, base_site, batch_size=batch_size, progress=progress)
-    return _verify_models(
-        patched,
-        record,
-        dataset,
-        logits,
-        original=str(original),
-        original_model=base,
-        original_sha=sha256_file(original),
-        batch_size=batch_size,
-        progress=progress,
+    cap = _load_scores(score_paths) if score_paths else None
+    if thresholds and dataset.labels is None and cap is None:
+        raise OnnxcalError(
+            f"--max-ece, --max-nll and --min-accuracy need labels, and '{data_path}' has none",
+            "add a 'labels' array, or give --scores with a capture of the same data",
+        )
+    if original is None and cap is None and record is not None and Path(record.source_path).is_file():
+        original = record.source_path
+    if record is None and latency and original is None:
+        raise OnnxcalError(
+            f"--latency: '{patched_path}' has no calibration record, so there is no uncalibrated graph "
+            "to compare its speed with",
+            "pass --original MODEL",
+        )
+    notes: list[str] = []
+    base = graph.load_model(original) if original is not None else None
+    if record is None:
+        mode, where = "none", str(original or "")
+        site = graph.find_scores(patched)
+        rows = _run_output(patched, site, dataset, batch_size, progress)
+        activation = site.activation
+        notes.append(f"'{patched_path}' carries no onnxcal calibration record, so there is no reference to compare with")
+        decision = "decisions" if site.activation == "sigmoid" else "argmax"
+        checks = [
+            _verify.skipped("reference", "no calibration record: no parameters to build a reference from"),
+            _verify.skipped(decision, "no calibration record: no reference to compare the decisions with"),
+            Check(
+                "record",
+                False,
+                None,
+                None,
+                "the model carries no onnxcal calibration record (metadata key "
+                f"'{graph.RECORD_KEY}'); tools that re-save a model may drop it",
+            ),
+            _verify.skipped("source", "no calibration record"),
+        ]
+    else:
+        site = graph.find_scores(patched, record.output)
+        if cap is not None:
+            mode, where, logits, source_sha, params_from = "scores", ", ".join(map(str, score_paths)), cap.logits, cap.meta.model_sha256, None
+        elif base is not None:
+            logits = _capture.capture_scores(
+                base, dataset, _source_site(base, record), batch_size=batch_size, progress=progress
+            )
+            mode, where, source_sha, params_from = "original", str(original), sha256_file(original), base
+        else:
+            unpatched = _unpatched(patched, patched_path)
+            logits = _capture.capture_scores(
+                unpatched, dataset, _source_site(unpatched, record), batch_size=batch_size, progress=progress
+            )
+            mode, where, source_sha, params_from = "patched-graph", str(patched_path), None, None
+            notes.append(
+                "no original model (--original, or the path in the record) and no --scores: the reference "
+                f"is recomputed from the patched graph's own logits tensor '{record.scores}' (the patch "
+                "undone in memory), so it checks the calibration nodes, not that the logits are the "
+                "original model's"
+            )
+            if record.folded:
+                notes.append("T is folded into the weights, so that reference only re-checks the activation; "
+                             "give --original or --scores to check T")
+        rows = _run_output(patched, site, dataset, batch_size, progress)
+        if len(rows) != len(logits):
+            raise OnnxcalError(
+                f"the reference holds {len(logits)} rows of scores but the patched model gives {len(rows)} "
+                f"rows on '{data_path}'",
+                "capture the original model on the same data file",
+            )
+        activation = record.activation
+        checks = _reference_checks(rows, site, record, logits, patched, params_from, source_sha)
+    if thresholds:
+        checks += _threshold_checks(rows, activation, site, dataset, cap, n_bins, limits)
+    if latency:
+        against = "original" if base is not None else "uncalibrated copy"
+        reference_model = base if base is not None else _unpatched(patched, patched_path)
+        checks.append(
+            _latency(reference_model, patched, dataset, batch_size, latency_runs, max_latency_ratio, against)
+        )
+    result = VerifyResult(
+        checks=tuple(checks), n=dataset.n, original=where, reference_from=mode, notes=tuple(notes)
     )
+    if junit is not None:
+        xml = _verify.junit_xml(
+            result, suite=f"onnxcal verify {Path(patched_path).name}", elapsed=time.perf_counter() - started
+        )
+        atomic_write_bytes(junit, xml)
+    return result
+
+
+# --------------------------------------------------------------------------
+# report
+
+
+def _check_formats(formats) -> tuple[str, ...]:
+    if isinstance(formats, str):
+        formats = [f.strip() for f in formats.split(",") if f.strip()]
+    bad = [f for f in formats if f not in _report.FORMATS]
+    if bad or not formats:
+        raise OnnxcalError(
+            f"--format {','.join(formats)!r} is not a comma-separated list of: {', '.join(_report.FORMATS)}",
+            "e.g. --format html,md",
+        )
+    return tuple(f for f in _report.FORMATS if f in formats)
+
+
+def _report_targets(directory, formats, inputs, force: bool, option: str) -> list[Path]:
+    """The report's files, checked before any work; the directory may not exist yet."""
+    d = Path(directory)
+    if d.exists() and not d.is_dir():
+        raise OnnxcalError(f"{option} '{d}' is a file, not a directory", "give a directory for the report")
+    parent = d.parent if str(d.parent) else Path(".")
+    if not d.exists() and not parent.is_dir():
+        raise OnnxcalError(f"the directory '{parent}' that would hold {option} '{d}' does not exist", "create it first")
+    targets = [d / name for name in _report.outputs(formats)]
+    if d.is_dir():
+        for target in targets:
+            check_output_path(target, inputs, force=force, option=f"{option} file")
+    return targets
+
+
+def _write_report(directory, content: dict, formats) -> ReportResult:
+    """Render every file in memory, then write each atomically."""
+    files = _report.render(content, formats)
+    d = Path(directory)
+    d.mkdir(exist_ok=True)
+    written = []
+    for name, data in files.items():
+        atomic_write_bytes(d / name, data)
+        written.append(str(d / name))
+    return ReportResult(directory=str(d), files=tuple(written), content=content)
+
+
+def _class_names(value, k: int) -> list[str] | None:
+    """Class names from a list or a text file (one per line), checked against K."""
+    if value is None:
+        return None
+    if isinstance(value, (str, os.PathLike)):
+        path = require_file(value, "class names file")
+        try:
+            names = [line.strip() for line in path.read_text().splitlines() if line.strip()]
+        except (OSError, UnicodeDecodeError) as exc:
+            raise OnnxcalError(f"cannot read class names from '{path}' ({exc})", "give a UTF-8 text file") from exc
+        where = f"'{path}'"
+    else:
+        names, where = [str(v) for v in value], "the class names"
+    if k == 1 and len(names) == 2:  # binary: (negative, positive); the logit is the positive label's
+        names = names[1:]
+    if len(names) != k:
+        raise OnnxcalError(
+            f"{where} give {len(names)} names for a model with {k} logit(s) per sample",
+            "give one name per line, in the order of the model's classes",
+        )
+    return names
+
+
+def _fit_from_record(record: Record, model_path) -> FitSummary | None:
+    if "metrics" not in record.fit:  # patched with a given T: no fit to show
+        return None
+    try:
+        return _fit.summary_from_dict(record.fit)
+    except (OnnxcalError, KeyError, TypeError, ValueError) as exc:
+        raise OnnxcalError(
+            f"the fit summary in the calibration record of '{model_path}' is damaged ({exc})",
+            "patch the original model again with 'onnxcal patch --fit FIT.json'",
+        ) from exc
+
+
+def _check_report_scaling(scaling: Scaling, cap: Capture, source_sha: str | None, what: str) -> None:
+    kind = kind_of(cap.logits.shape[1], cap.labels.ndim)
+    if scaling.kind != kind:
+        raise OnnxcalError(
+            f"{what} is for a {scaling.kind} classifier, but the capture holds {kind} scores",
+            "give a capture of the model it was fitted on",
+        )
+    check_scaling(scaling, cap.logits.shape[1])
+    if source_sha is not None and source_sha != cap.meta.model_sha256:
+        raise OnnxcalError(
+            f"{what} was made for the model with sha256 {source_sha[:12]}..., but the capture is of "
+            f"the model with sha256 {cap.meta.model_sha256[:12]}...",
+            "capture the model the calibration was made for",
+        )
+
+
+def report(
+    captures: Capture | str | os.PathLike | Sequence[str | os.PathLike],
+    out: str | os.PathLike,
+    *,
+    temperature: float | None = None,
+    fit: FitSummary | str | os.PathLike | None = None,
+    model: str | os.PathLike | None = None,
+    formats: str | Sequence[str] = _report.FORMATS,
+    class_names: str | os.PathLike | Sequence[str] | None = None,
+    n_bins: int | None = None,
+    force: bool = False,
+) -> ReportResult:
+    """Write a report on a calibration into the directory ``out``.
+
+    Files (by ``formats``): ``report.html`` (self-contained: inline CSS,
+    plots as base64 PNG), ``summary.md`` (a before/after table and verdict
+    lines for a pull-request comment), ``report.json`` (every number) and
+    ``reliability.png``, ``confidence.png``, ``classes.png``.
+
+    Parameters
+    ----------
+    captures : Capture, path or list of paths
+        Logits and labels (capture files are read as one set).
+    out : path
+        The report directory; created if missing (its parent must exist).
+    temperature : float, optional
+        A temperature given by hand; or give ``fit`` or ``model``.
+    fit : FitSummary or path, optional
+        A fit (FIT.json). On the capture it was made on, the figures are
+        those of its held-out part, with its bootstrap intervals.
+    model : path, optional
+        A patched model: its calibration record gives the parameters and
+        the fit, and its name and sha256 go into the report.
+    formats : str or list of str
+        Any of ``html``, ``md``, ``json``, ``png`` (default: all).
+    class_names : path or list of str, optional
+        One name per class (a text file: one per line).
+    n_bins : int, optional
+        Bins of the ECEs and the plots (default: the fit's, else 15).
+    force : bool
+        Replace existing report files.
+
+    Returns
+    -------
+    ReportResult
+    """
+    if sum(x is not None for x in (temperature, fit, model)) != 1:
+        raise OnnxcalError("give exactly one of --temperature, --fit and --model")
+    if n_bins is not None and n_bins < 2:
+        raise OnnxcalError(f"--bins {n_bins} is fewer than 2 bins")
+    formats = _check_formats(formats)
+    capture_paths = [] if isinstance(captures, Capture) else _as_paths(captures)
+    inputs = [*capture_paths, *[p for p in (fit, model, class_names) if isinstance(p, (str, os.PathLike))]]
+    _report_targets(out, formats, inputs, force, "--out")
+    cap = captures if isinstance(captures, Capture) else _load_scores(capture_paths)
+    _require_finite(cap.logits, ", ".join(map(str, capture_paths)) or cap.meta.data_source)
+    calibrated = None
+    if temperature is not None:
+        kind = kind_of(cap.logits.shape[1], cap.labels.ndim)
+        summary, scaling = None, Scaling.of_temperature(graph.check_temperature(temperature), kind)
+        source_sha, what = None, "the temperature"
+    elif fit is not None:
+        summary = fit if isinstance(fit, FitSummary) else _fit.load_fit(fit)
+        scaling, source_sha, what = summary.scaling, summary.capture.get("model_sha256"), "the fit"
+    else:
+        record = graph.read_record(graph.load_model(model))
+        if record is None:
+            raise OnnxcalError(
+                f"'{model}' has no onnxcal calibration record", "give a model written by 'onnxcal patch' or 'calibrate'"
+            )
+        summary, scaling = _fit_from_record(record, model), record.scaling
+        source_sha, what = record.source_sha256, f"the calibration in '{model}'"
+        calibrated = {"name": Path(model).name, "path": str(model), "sha256": sha256_file(model)}
+    _check_report_scaling(scaling, cap, source_sha, what)
+    names = _class_names(class_names, cap.logits.shape[1])
+    content = _report.build(
+        cap, scaling, summary=summary, class_names=names, n_bins=n_bins, calibrated=calibrated
+    )
+    return _write_report(out, content, formats)
+
+
+# --------------------------------------------------------------------------
+# calibrate
 
 
 def calibrate(
@@ -406,16 +839,23 @@ def calibrate(
     force: bool = False,
     progress: ProgressFn | None = None,
     options: FitOptions = FitOptions(),
+    report: str | os.PathLike | None = None,
+    class_names: str | os.PathLike | Sequence[str] | None = None,
 ) -> CalibrateResult:
-    """Capture, fit, patch and verify in one go.
+    """Capture, fit, patch and verify in one go (and write a report).
 
     The patched model is verified in memory against the captured logits
     before it is written; when a check fails nothing is written and
     ``result.patch`` is None. ``output`` ... ``fold``: see :class:`PatchOptions`;
-    ``options`` are those of :func:`fit`.
+    ``options`` are those of :func:`fit`. With ``report`` (a directory),
+    every file of :func:`report` is written there too, with the
+    verification, also when it failed; ``class_names`` name the classes in it.
     """
     check_fit_options(options)
     external = _check_outputs(out, [model_path, data_path], model_path, force)
+    if report is not None:
+        names_input = [class_names] if isinstance(class_names, (str, os.PathLike)) else []
+        _report_targets(report, _report.FORMATS, [model_path, data_path, out, *names_input], force, "--report")
     _check_batch_size(batch_size)
     patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold)
     model = graph.load_model(model_path)
@@ -437,22 +877,23 @@ def calibrate(
         activation=activation,
     )
     _require_finite(cap.logits, str(data_path))
+    names = _class_names(class_names, cap.logits.shape[1])
     summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options)
     patched = patching.patch(model, summary.scaling, sha=sha, path=model_path, fit=summary.to_dict())
     record = graph.read_record(patched)
-    result = _verify_models(
-        patched,
-        record,
-        dataset,
-        cap.logits,
-        original=str(model_path),
-        original_model=model,
-        original_sha=sha,
-        batch_size=batch_size,
-        progress=progress,
-    )
+    site = graph.find_scores(patched, record.output)
+    rows = _run_output(patched, site, dataset, batch_size, progress)
+    checks = _reference_checks(rows, site, record, cap.logits, patched, model, sha)
+    result = VerifyResult(checks=tuple(checks), n=dataset.n, original=str(model_path))
     written = None
     if result.passed:
         graph.save_model(patched, out, external=external)
         written = PatchResult(path=str(out), record=record)
-    return CalibrateResult(summary=summary, patch=written, verification=result)
+    written_report = None
+    if report is not None:
+        calibrated = None if written is None else {"name": Path(out).name, "path": str(out), "sha256": sha256_file(out)}
+        content = _report.build(
+            cap, summary.scaling, summary=summary, class_names=names, calibrated=calibrated, verification=result
+        )
+        written_report = _write_report(report, content, _report.FORMATS)
+    return CalibrateResult(summary=summary, patch=written, verification=result, report=written_report)

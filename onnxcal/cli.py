@@ -33,7 +33,9 @@ from .capture import DEFAULT_BATCH, ProgressFn
 from .errors import OnnxcalError
 from .fit import FitOptions, FitSummary
 from .graph import DEFAULT_OUTPUT_NAME, ModelInfo, TensorSpec
-from .verify import VerifyResult
+from .metrics import DEFAULT_BINS, METRIC_LABELS
+from .report import FORMATS, ReportResult, describe_scaling
+from .verify import VerifyResult, format_figure
 
 app = typer.Typer(
     name="onnxcal",
@@ -233,17 +235,7 @@ def _describe_site(site) -> str:
     )
 
 
-_METRIC_ROWS = (
-    ("nll", "NLL"),
-    ("ece", "ECE ({bins} bins)"),
-    ("mce", "MCE"),
-    ("adaptive_ece", "adaptive ECE"),
-    ("classwise_ece", "classwise ECE"),
-    ("brier", "Brier score"),
-    ("accuracy", "accuracy"),
-    ("mean_confidence", "mean confidence"),
-    ("gap", "gap (conf - acc)"),
-)
+_METRIC_ROWS = tuple(METRIC_LABELS.items())
 
 
 def _interval(pair) -> str:
@@ -251,23 +243,7 @@ def _interval(pair) -> str:
 
 
 def _describe_scaling(summary: FitSummary) -> str:
-    s = summary.scaling
-    iv = (summary.intervals or {}).get("parameters", {})
-    if s.temperature is not None:
-        t = iv.get("temperature")
-        extra = f" (fit-part 95% interval {t[0]:.4f} to {t[1]:.4f})" if t else ""
-        how = "sigmoid(z / T)" if s.kind != "multiclass" else "softmax(z / T)"
-        return f"temperature scaling, {how}: T = {s.temperature:.4f}{extra}"
-    a = s.arrays()
-    if s.method == "temperature":
-        t = a["temperature"]
-        return f"per-label temperature scaling: {t.size} temperatures from {t.min():.4f} to {t.max():.4f}"
-    if s.method == "platt":
-        return f"Platt scaling, sigmoid(a z + b): a = {float(a['w']):.4f}, b = {float(a['b']):.4f}"
-    return (
-        f"vector scaling, softmax(w * z + b): {a['w'].size} classes, w from {a['w'].min():.4f} to "
-        f"{a['w'].max():.4f}, b from {a['b'].min():.4f} to {a['b'].max():.4f}"
-    )
+    return describe_scaling(summary.scaling, summary.intervals)
 
 
 def _render_fit(summary: FitSummary) -> None:
@@ -300,14 +276,39 @@ def _render_fit(summary: FitSummary) -> None:
     _warn(summary.warnings)
 
 
+_REFERENCE_FROM = {
+    "original": "the original model",
+    "scores": "captured scores",
+    "patched-graph": "the patched graph's own logits",
+}
+
+
 def _render_verify(result: VerifyResult) -> None:
-    table = Table(title=f"verify against {result.original} ({result.n} samples)", title_justify="left")
+    if result.reference_from in _REFERENCE_FROM:
+        where = f" ({result.original})" if result.original else ""
+        title = f"verify: reference from {_REFERENCE_FROM[result.reference_from]}{where}, {result.n} samples"
+    else:
+        title = f"verify: no reference (no calibration record), {result.n} samples"
+    table = Table(title=title, title_justify="left")
     for col in ("check", "result", "value", "limit", "what"):
         table.add_column(col)
     for c in result.checks:
-        table.add_row(c.name, "pass" if c.passed else "FAIL", f"{c.value:.3g}", f"{c.limit:.3g}", c.detail)
+        status = {"pass": "pass", "fail": "FAIL", "skip": "skipped"}[c.status]
+        table.add_row(c.name, status, format_figure(c.value), format_figure(c.limit), c.detail)
     out.print(table)
-    out.print("verify: all checks passed" if result.passed else "verify: FAILED")
+    for note in result.notes:
+        out.print(f"note: {note}", soft_wrap=True)
+    if result.passed:
+        out.print("verify: all checks passed")
+    else:
+        out.print(f"verify: FAILED ({', '.join(c.name for c in result.failed)})")
+
+
+def _render_report(result: ReportResult, verdict: bool = True) -> None:
+    for line in result.content["verdict"] if verdict else ():
+        out.print(f"  {line}", soft_wrap=True)
+    out.print(f"wrote {len(result.files)} report files to {result.directory}: "
+              + ", ".join(Path(f).name for f in result.files), soft_wrap=True)
 
 
 # --------------------------------------------------------------------------
@@ -452,29 +453,139 @@ def _how(r) -> str:
     return how
 
 
-@app.command()
+@app.command(
+    epilog="Exit status: 0 every check passed (skipped ones do not fail), 1 a check failed, "
+    "2 bad input (nothing is written then)."
+)
 def verify(
     patched: Annotated[Path, typer.Argument(help="Patched model.", show_default=False)],
     data: Annotated[
-        Path, typer.Option("--data", help=".npz with one array per model input.", show_default=False)
+        Path,
+        typer.Option(
+            "--data",
+            help=".npz with one array per model input ('labels' too for the thresholds).",
+            show_default=False,
+        ),
     ],
     original: Annotated[
         Optional[Path],
         typer.Option("--original", help="The uncalibrated model (default: the path in the record)."),
     ] = None,
+    scores: Annotated[
+        Optional[list[Path]],
+        typer.Option(
+            "--scores",
+            help="Capture file of the original model on the same data, instead of running it "
+            "(repeat for several files, in the data's order).",
+            show_default=False,
+        ),
+    ] = None,
+    max_ece: Annotated[
+        Optional[float], typer.Option("--max-ece", help="Fail when the patched model's ECE on the labels is above this.")
+    ] = None,
+    max_nll: Annotated[
+        Optional[float], typer.Option("--max-nll", help="Fail when its NLL on the labels is above this.")
+    ] = None,
+    min_accuracy: Annotated[
+        Optional[float], typer.Option("--min-accuracy", help="Fail when its accuracy on the labels is below this.")
+    ] = None,
+    bins: BinsOpt = DEFAULT_BINS,
+    latency: Annotated[
+        bool,
+        typer.Option("--latency", help="Time the patched model against the original, alternating runs; report the ratio."),
+    ] = False,
+    max_latency_ratio: Annotated[
+        Optional[float],
+        typer.Option("--max-latency-ratio", help="Fail when median patched / original latency is above this (implies --latency)."),
+    ] = None,
+    latency_runs: Annotated[
+        int, typer.Option("--latency-runs", help="Timed runs of each model for --latency.", min=1)
+    ] = api.DEFAULT_LATENCY_RUNS,
+    junit: Annotated[
+        Optional[Path], typer.Option("--junit", help="Also write the checks as JUnit XML to this file.")
+    ] = None,
     batch_size: BatchOpt = DEFAULT_BATCH,
+    force: ForceOpt = False,
     as_json: JsonOpt = False,
     quiet: QuietOpt = False,
 ) -> None:
-    """Check the patched model against its NumPy reference, e.g. softmax(original logits / T).
+    """Check a patched model, e.g. for a CI gate; each check is reported with its figure.
 
-    Exit 0 when every check passes, 1 when one fails, 2 on bad input.
+    (1) reference: the outputs against softmax(original logits / T) (or the
+    method's reference) in float64 NumPy, within the tolerance of the graph's
+    dtype, and row sums; (2) argmax or 0.5-threshold decisions as the
+    reference's; (3) record: the calibration record is present and its
+    parameters are the graph's, source: the original's sha256 is the
+    record's; (4) --max-ece, --max-nll, --min-accuracy on the labels; (5)
+    --latency. Without --original (or the recorded path) and --scores, (1)
+    and (2) use the patched graph's own logits and say so.
     """
     with _progress(quiet or as_json) as progress:
-        result = api.verify(patched, data, original=original, batch_size=batch_size, progress=progress)
+        result = api.verify(
+            patched,
+            data,
+            original=original,
+            scores=scores or None,
+            max_ece=max_ece,
+            max_nll=max_nll,
+            min_accuracy=min_accuracy,
+            n_bins=bins,
+            latency=latency,
+            max_latency_ratio=max_latency_ratio,
+            latency_runs=latency_runs,
+            junit=junit,
+            force=force,
+            batch_size=batch_size,
+            progress=progress,
+        )
     _print_json(result.to_dict()) if as_json else _render_verify(result)
+    if junit is not None and not as_json:
+        out.print(f"wrote {junit}")
     if not result.passed:
         raise typer.Exit(1)
+
+
+@app.command()
+def report(
+    captures: Annotated[
+        list[Path],
+        typer.Argument(help="Capture file(s) from 'onnxcal capture' (several are read as one set).", show_default=False),
+    ],
+    out_dir: Annotated[
+        Path, typer.Option("--out", help="Directory for the report (created if missing).", show_default=False)
+    ],
+    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to report on.")] = None,
+    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.")] = None,
+    model: Annotated[
+        Optional[Path], typer.Option("--model", help="A patched model: its calibration record gives the parameters.")
+    ] = None,
+    formats: Annotated[
+        str, typer.Option("--format", help=f"Comma-separated outputs among {','.join(FORMATS)}.")
+    ] = ",".join(FORMATS),
+    class_names: Annotated[
+        Optional[Path], typer.Option("--class-names", help="Text file with one class name per line.")
+    ] = None,
+    bins: Annotated[Optional[int], typer.Option("--bins", help="Bins (default: the fit's, else 15).")] = None,
+    force: ForceOpt = False,
+) -> None:
+    """Write report.html (self-contained), summary.md, report.json and the plots as PNG files.
+
+    Give the parameters with one of --temperature, --fit or --model. On the
+    capture a fit was made on, the figures are those of its held-out part.
+    """
+    result = api.report(
+        captures,
+        out_dir,
+        temperature=temperature,
+        fit=fit_file,
+        model=model,
+        formats=formats,
+        class_names=class_names,
+        n_bins=bins,
+        force=force,
+    )
+    _render_report(result)
+    out.print(f"caution: {CAUTION}", soft_wrap=True)
 
 
 @app.command()
@@ -499,6 +610,13 @@ def calibrate(
     seed: SeedOpt = 0,
     bootstrap: BootstrapOpt = 200,
     bins: BinsOpt = 15,
+    report_dir: Annotated[
+        Optional[Path],
+        typer.Option("--report", help="Also write the report (as 'onnxcal report') into this directory."),
+    ] = None,
+    class_names: Annotated[
+        Optional[Path], typer.Option("--class-names", help="Text file with one class name per line (for --report).")
+    ] = None,
     batch_size: BatchOpt = DEFAULT_BATCH,
     force: ForceOpt = False,
     as_json: JsonOpt = False,
@@ -506,7 +624,8 @@ def calibrate(
 ) -> None:
     """Capture, fit, patch and verify in one go; print the before/after table.
 
-    Nothing is written when verification fails (exit 1).
+    The patched model is not written when verification fails (exit 1); the
+    report, when asked for, is written either way.
     """
     with _progress(quiet or as_json) as progress:
         result = api.calibrate(
@@ -523,6 +642,8 @@ def calibrate(
             force=force,
             progress=progress,
             options=FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins),
+            report=report_dir,
+            class_names=class_names,
         )
     if as_json:
         _print_json(
@@ -530,11 +651,14 @@ def calibrate(
                 "fit": result.summary.to_dict(),
                 "verify": result.verification.to_dict(),
                 "written": result.patch.path if result.patch else None,
+                "report": list(result.report.files) if result.report else None,
             }
         )
     else:
         _render_fit(result.summary)
         _render_verify(result.verification)
+        if result.report is not None:
+            _render_report(result.report, verdict=False)
         if result.patch is not None:
             r = result.patch.record
             out.print(f"wrote {result.patch.path} (calibrated output '{r.output}')")

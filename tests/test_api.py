@@ -1,5 +1,6 @@
 """End to end through the Python API, on open data and on the bundled demo."""
 
+import re
 import warnings
 
 import numpy as np
@@ -156,3 +157,56 @@ def test_multilabel_sigmoid_end_to_end(tmp_path, rng, mode):
         assert isinstance(params, float)
     assert result.summary.after.kind == "multilabel"
     assert api.verify(tmp_path / "p.onnx", data).passed
+
+
+# --------------------------------------------------------------------------
+# The package's top-level functions
+
+
+def test_top_level_functions_are_the_api():
+    import importlib
+
+    import onnxcal
+
+    for name in ("capture", "fit", "patch", "verify", "report", "calibrate", "inspect"):
+        assert getattr(onnxcal, name) is getattr(api, name), name
+        assert getattr(onnxcal, name).__doc__, name
+    # The stage modules stay importable by their dotted names.
+    from onnxcal.capture import Capture
+    from onnxcal.fit import FitOptions as Options
+    from onnxcal.verify import Check
+
+    assert importlib.import_module("onnxcal.fit").summarize and Options is FitOptions
+    assert importlib.import_module("onnxcal.capture").Capture is Capture and Check
+
+
+def test_top_level_functions_run_the_job(tmp_path):
+    import onnxcal
+
+    cap = onnxcal.capture(DEMO_MODEL, DEMO_VAL)
+    summary = onnxcal.fit(cap, options=FitOptions(bootstrap=0))
+    patched = onnxcal.patch(DEMO_MODEL, tmp_path / "p.onnx", fit=summary)
+    checked = onnxcal.verify(patched.path, DEMO_TEST, max_ece=0.1)
+    assert checked.passed and checked.reference_from == "original"
+    written = onnxcal.report(cap, tmp_path / "r", fit=summary, formats="json")
+    assert written.content["metrics"]["after"]["ece"] == pytest.approx(summary.after.ece, rel=1e-12)
+
+
+def test_notebook_style_example_runs(tmp_path):
+    # docs/calibrate_in_python.py, run as its header says: from a directory holding fixtures/.
+    import subprocess
+    import sys
+
+    from conftest import FIXTURES, ROOT
+
+    (tmp_path / "fixtures").symlink_to(FIXTURES)
+    r = subprocess.run([sys.executable, str(ROOT / "docs" / "calibrate_in_python.py")], cwd=tmp_path,
+                       capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
+    assert re.search(r"T = 3\.4\d+ \(fit-part 95% interval", r.stdout)
+    assert "verify: all checks passed" in r.stdout and "checks passed: True" in r.stdout
+    assert "ECE fell" in r.stdout
+    out = tmp_path / "calibration-demo"
+    for name in ("scores.npz", "fit.json", "calibrated.onnx", "verify.xml", "report/report.html",
+                 "report/summary.md", "report_again/report.json", "calibrated_again.onnx"):
+        assert (out / name).is_file(), name

@@ -1,6 +1,7 @@
 """Fitting: recovery of known parameters, agreement with reference solvers,
 holdout, bootstrap, warnings and FIT.json."""
 
+import importlib
 import json
 
 import numpy as np
@@ -11,11 +12,13 @@ from sklearn.datasets import load_digits
 from sklearn.linear_model import LogisticRegression
 from sklearn.model_selection import train_test_split
 
-from onnxcal import fit as fitmod
 from onnxcal import metrics, resample
 from onnxcal.errors import OnnxcalError
 from onnxcal.fit import (
+    T_MAX,
+    T_MIN,
     FitOptions,
+    _affine_pass,
     fit_scaling,
     fit_sigmoid_temperature,
     fit_temperature,
@@ -25,6 +28,9 @@ from onnxcal.fit import (
     summarize,
 )
 from onnxcal.metrics import evaluate
+
+# The stage module itself (the attribute onnxcal.fit is the API function).
+fitmod = importlib.import_module("onnxcal.fit")
 
 
 def gumbel_labels(rng, z, temperature):
@@ -118,7 +124,7 @@ def test_perfect_accuracy_hits_lower_bound_with_reason():
     z = (np.eye(4)[np.arange(400) % 4] * 6.0).astype(np.float32)
     y = np.arange(400) % 4
     result = fit_temperature(z, y)
-    assert result.on_bound and result.temperature == fitmod.T_MIN
+    assert result.on_bound and result.temperature == T_MIN
     assert any("every sample" in w for w in result.warnings)
 
 
@@ -126,7 +132,7 @@ def test_uninformative_scores_hit_upper_bound(rng):
     z = rng.normal(size=(2000, 3))
     y = rng.integers(0, 3, size=2000)  # labels independent of the scores
     result = fit_temperature(z, y)
-    assert result.on_bound and result.temperature == fitmod.T_MAX
+    assert result.on_bound and result.temperature == T_MAX
     assert any("no information" in w for w in result.warnings)
 
 
@@ -247,10 +253,10 @@ def test_vector_gradient_matches_finite_differences(rng):
     y = rng.integers(0, 4, size=400)
 
     def f(x):
-        return fitmod._affine_pass(z, y, x[:4], x[4:], None, None, True)[0]
+        return _affine_pass(z, y, x[:4], x[4:], None, None, True)[0]
 
     def g(x):
-        _, gw, gb = fitmod._affine_pass(z, y, x[:4], x[4:], None, None, True)
+        _, gw, gb = _affine_pass(z, y, x[:4], x[4:], None, None, True)
         return np.concatenate([gw, gb])
 
     x = np.array([0.7, 1.1, 0.9, 1.3, 0.2, -0.1, 0.0, 0.4])
@@ -276,7 +282,7 @@ def test_vector_and_platt_bounds_on_separable_data():
     platt = fit_scaling(zb, yb, FitOptions(method="platt"))
     assert platt.on_bound and any("every sample" in w for w in platt.warnings)
     binary_t = fit_scaling(zb, yb, FitOptions())
-    assert binary_t.on_bound and binary_t.temperature == fitmod.T_MIN
+    assert binary_t.on_bound and binary_t.temperature == T_MIN
 
 
 def test_methods_checked_against_the_kind(rng):
