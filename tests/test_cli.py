@@ -478,3 +478,61 @@ def test_verify_help_documents_the_exit_codes(run_cli):
     assert "0 every check passed" in text and "1 a check failed" in text and "2 bad input" in text
     for option in ("--max-ece", "--max-nll", "--min-accuracy", "--latency", "--max-latency-ratio", "--junit", "--scores"):
         assert option in text
+
+
+# --------------------------------------------------------------------------
+# docs/ci.md, run as written
+
+
+def _ci_blocks() -> list[tuple[str, str]]:
+    """(kind, body) of each example block of docs/ci.md, in order.
+
+    The blocks are marked with HTML comments (invisible when rendered):
+    ``run`` is run in the repository root, ``file PATH`` is written to PATH,
+    ``job`` is the CI job (its ``PATH=`` line is run with this test's onnxcal
+    on PATH; its install lines need a network and a package index).
+    """
+    text = (Path(__file__).resolve().parents[1] / "docs" / "ci.md").read_text()
+    return re.findall(r"<!-- ci-example: (.+?) -->\n```sh\n(.*?)```", text, re.S)
+
+
+def test_ci_example_works_as_written(tmp_path):
+    import os
+    import xml.etree.ElementTree as ET
+
+    blocks = _ci_blocks()
+    assert [k for k, _ in blocks] == ["run", "run", "file ci/calibration.env", "file ci/check-calibration.sh", "job"]
+    (tmp_path / "fixtures").symlink_to(DEMO_MODEL.parent)
+    env = {**os.environ, "PATH": f"{Path(sys.executable).parent}{os.pathsep}{os.environ['PATH']}"}
+
+    def bash(script):
+        return subprocess.run(["bash", "-c", script], cwd=tmp_path, env=env, capture_output=True, text=True, timeout=300)
+
+    for kind, body in blocks:
+        if kind == "run":
+            r = bash("set -euo pipefail\n" + body)
+            assert r.returncode == 0, r.stderr
+        elif kind.startswith("file "):
+            (tmp_path / kind.split(" ", 1)[1]).write_text(body)
+        else:
+            assert "python3 -m venv .venv" in body and "pip install" in body
+            (job,) = [line for line in body.splitlines() if line.startswith("PATH=")]
+    r = bash(job)
+    assert r.returncode == 0, r.stdout + r.stderr
+    junit = ET.parse(tmp_path / "reports" / "calibration-junit.xml").getroot()
+    assert junit.get("failures") == "0"
+    names = {c.get("name") for c in junit.iter("testcase")}
+    assert names >= {"reference", "argmax", "record", "source", "max-ece", "max-nll", "min-accuracy", "latency"}
+    for d in ("calibration", "calibration-test"):
+        assert (tmp_path / "reports" / d / "report.html").is_file()
+    # A bound the model does not meet fails the job, and the report is still written.
+    env_file = tmp_path / "ci" / "calibration.env"
+    env_file.write_text(env_file.read_text().replace("CAL_MAX_ECE=0.05", "CAL_MAX_ECE=0.001"))
+    (tmp_path / "reports" / "calibration-test" / "report.html").unlink()
+    r = bash(job)
+    assert r.returncode == 1 and "verify: FAILED (max-ece)" in r.stdout
+    assert (tmp_path / "reports" / "calibration-test" / "report.html").is_file()
+    # A changed file fails the checksum step before anything runs.
+    (tmp_path / "validation" / "conveyor_faults_test_scores.npz").write_bytes(b"changed")
+    r = bash(job)
+    assert r.returncode != 0 and "FAILED" in r.stdout + r.stderr
