@@ -9,6 +9,7 @@ they are also the Python API (``import onnxcal``).
 from __future__ import annotations
 
 import os
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -18,8 +19,8 @@ from . import capture as _capture
 from . import fit as _fit
 from . import graph, verify as _verify
 from ._files import check_output_path, sha256_file
-from .capture import Capture, ProgressFn
-from .data import Dataset, load_npz
+from .capture import Capture, ProgressFn, RunOptions
+from .data import DataSpec, Dataset, check_selection, load_dataset
 from .errors import OnnxcalError
 from .fit import FitSummary
 from .graph import ModelInfo, Record
@@ -60,63 +61,88 @@ def _require_finite(logits: np.ndarray, source: str) -> None:
         )
 
 
-def _load_data(data_path: str | os.PathLike, require_labels: bool = True) -> Dataset:
-    return load_npz(data_path, require_labels=require_labels)
+DataSource = str | os.PathLike | DataSpec
+"""A validation set: a path (``.npz``, ``.npy``, ``.csv`` or an image folder) or a DataSpec."""
+
+
+def _data_spec(data: DataSource) -> DataSpec:
+    spec = data if isinstance(data, DataSpec) else DataSpec(path=data)
+    check_selection(spec.selection)  # before any work
+    return spec
+
+
+def _load_data(model, data: DataSource, require_labels: bool = True) -> Dataset:
+    """Load the set for ``model``'s inputs (checked against them)."""
+    init = {i.name for i in model.graph.initializer}
+    specs = [graph.tensor_spec(vi) for vi in model.graph.input if vi.name not in init]
+    return load_dataset(_data_spec(data), specs, require_labels=require_labels)
+
+
+def _run_options(
+    batch_size: int, threads: int, optimization: str, provider: str
+) -> RunOptions:
+    return _capture.check_run_options(RunOptions(batch_size, threads, optimization, provider))
 
 
 def capture(
     model_path: str | os.PathLike,
-    data_path: str | os.PathLike,
+    data: DataSource,
     *,
     out: str | os.PathLike | None = None,
     output: str | None = None,
     batch_size: int = _capture.DEFAULT_BATCH,
+    threads: int = 0,
+    optimization: str = "all",
+    provider: str = _capture.CPU,
     force: bool = False,
     progress: ProgressFn | None = None,
 ) -> Capture:
-    """Run the model over a labelled ``.npz`` set; return (and write) the logits.
+    """Run the model over a labelled set; return (and write) the logits.
 
     Parameters
     ----------
     model_path : path
         The ONNX model.
-    data_path : path
-        ``.npz`` with one array per model input and ``labels``.
+    data : path or DataSpec
+        The validation set: ``.npz`` with one array per model input and
+        ``labels``, a CSV table, a folder of images, or a
+        :class:`~onnxcal.data.DataSpec` for per-input ``.npy`` files, class
+        names, preprocessing and ``--limit``/``--shuffle-seed``/``--shard``.
     out : path, optional
-        Where to write the capture file.
+        Where to write the capture file; the logits are streamed into it
+        and the returned capture's logits are a memory map of it.
     output : str, optional
         The class-score output (the likeliest float output by default).
     batch_size : int, default 64
+    threads : int, default 0
+        onnxruntime intra-op threads (0: its default).
+    optimization : str, default "all"
+        Graph optimisation level: disable, basic, extended or all.
+    provider : str, default "CPUExecutionProvider"
     force : bool
         Replace an existing ``out``.
     progress : callable, optional
         ``progress(description, done, total)``.
     """
+    spec = _data_spec(data)
     if out is not None:
-        check_output_path(out, [model_path, data_path], force=force)
-    _check_batch_size(batch_size)
+        check_output_path(out, [model_path, *spec.files()], force=force)
+    options = _run_options(batch_size, threads, optimization, provider)
     model = graph.load_model(model_path)
-    cap = _capture.capture(
+    return _capture.capture(
         model,
-        _load_data(data_path),
+        _load_data(model, spec),
         model_path=model_path,
         model_sha256=sha256_file(model_path),
         output=output,
-        batch_size=batch_size,
+        options=options,
         progress=progress,
+        out=out,
     )
-    if out is not None:
-        _capture.save_capture(out, cap)
-    return cap
-
-
-def _check_batch_size(batch_size: int) -> None:
-    if batch_size < 1:
-        raise OnnxcalError(f"--batch-size {batch_size} is not a positive number of samples")
 
 
 def fit(
-    source: Capture | str | os.PathLike,
+    source: Capture | str | os.PathLike | Sequence[str | os.PathLike],
     *,
     out: str | os.PathLike | None = None,
     force: bool = False,
@@ -125,22 +151,27 @@ def fit(
 
     Parameters
     ----------
-    source : Capture or path
-        A capture, or the path of a capture file.
+    source : Capture, path or sequence of paths
+        A capture, or capture files (several are merged: same model, output
+        and class list, no shared rows; see :func:`onnxcal.capture.merge_captures`).
     out : path, optional
         Where to write FIT.json.
     force : bool
         Replace an existing ``out``.
     """
-    inputs = [] if isinstance(source, Capture) else [source]
+    inputs = [] if isinstance(source, Capture) else _capture_paths(source)
     if out is not None:
         check_output_path(out, inputs, force=force)
-    cap = source if isinstance(source, Capture) else _capture.load_capture(source)
-    _require_finite(cap.logits, cap.meta.data_source if isinstance(source, Capture) else str(source))
+    cap = source if isinstance(source, Capture) else _capture.load_captures(inputs)
+    _require_finite(cap.logits, cap.meta.data_source if isinstance(source, Capture) else ", ".join(map(str, inputs)))
     summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict())
     if out is not None:
         _fit.save_fit(out, summary)
     return summary
+
+
+def _capture_paths(source: str | os.PathLike | Sequence[str | os.PathLike]) -> list:
+    return [source] if isinstance(source, (str, os.PathLike)) else list(source)
 
 
 def _resolve_temperature(
@@ -212,7 +243,7 @@ def _verify_models(
     *,
     original: str,
     original_sha: str,
-    batch_size: int,
+    options: RunOptions,
     progress: ProgressFn | None,
 ) -> VerifyResult:
     """Run the patched model and compare it with the original's logits."""
@@ -221,7 +252,7 @@ def _verify_models(
         patched,
         dataset,
         [record.output],
-        batch_size=batch_size,
+        options=options,
         progress=progress,
         description="running patched model",
     )
@@ -236,10 +267,13 @@ def _verify_models(
 
 def verify(
     patched_path: str | os.PathLike,
-    data_path: str | os.PathLike,
+    data: DataSource,
     *,
     original: str | os.PathLike | None = None,
     batch_size: int = _capture.DEFAULT_BATCH,
+    threads: int = 0,
+    optimization: str = "all",
+    provider: str = _capture.CPU,
     progress: ProgressFn | None = None,
 ) -> VerifyResult:
     """Check a patched model against softmax(original logits / T) in NumPy.
@@ -248,12 +282,15 @@ def verify(
     ----------
     patched_path : path
         A model written by :func:`patch`.
-    data_path : path
-        ``.npz`` with one array per model input (labels optional).
+    data : path or DataSpec
+        The inputs, in any form :func:`capture` takes (labels optional).
     original : path, optional
         The uncalibrated model; by default the path in the record, if it exists.
+    batch_size, threads, optimization, provider
+        As for :func:`capture`.
     """
-    _check_batch_size(batch_size)
+    spec = _data_spec(data)
+    options = _run_options(batch_size, threads, optimization, provider)
     patched = graph.load_model(patched_path)
     record = graph.read_record(patched)
     if record is None:
@@ -270,11 +307,11 @@ def verify(
             )
         original = record.source_path
     base = graph.load_model(original)
-    dataset = _load_data(data_path, require_labels=False)
+    dataset = _load_data(base, spec, require_labels=False)
     base_site = graph.find_scores(
         base, record.output if record.rewrite == "insert-before-activation" else record.scores
     )
-    logits = _capture.capture_scores(base, dataset, base_site, batch_size=batch_size, progress=progress)
+    logits = _capture.capture_scores(base, dataset, base_site, options=options, progress=progress)
     return _verify_models(
         patched,
         record,
@@ -282,44 +319,48 @@ def verify(
         logits,
         original=str(original),
         original_sha=sha256_file(original),
-        batch_size=batch_size,
+        options=options,
         progress=progress,
     )
 
 
 def calibrate(
     model_path: str | os.PathLike,
-    data_path: str | os.PathLike,
+    data: DataSource,
     out: str | os.PathLike,
     *,
     output: str | None = None,
     output_name: str = graph.DEFAULT_OUTPUT_NAME,
     drop_logits: bool = False,
     batch_size: int = _capture.DEFAULT_BATCH,
+    threads: int = 0,
+    optimization: str = "all",
+    provider: str = _capture.CPU,
     force: bool = False,
     progress: ProgressFn | None = None,
 ) -> CalibrateResult:
     """Capture, fit, patch and verify in one go.
 
-    The patched model is verified in memory against the captured logits
-    before it is written; when a check fails nothing is written and
-    ``result.patch`` is None.
+    ``data`` and the run options are as for :func:`capture`. The patched
+    model is verified in memory against the captured logits before it is
+    written; when a check fails nothing is written and ``result.patch`` is None.
     """
-    check_output_path(out, [model_path, data_path], force=force)
-    _check_batch_size(batch_size)
+    spec = _data_spec(data)
+    check_output_path(out, [model_path, *spec.files()], force=force)
+    options = _run_options(batch_size, threads, optimization, provider)
     model = graph.load_model(model_path)
     sha = sha256_file(model_path)
-    dataset = _load_data(data_path)
+    dataset = _load_data(model, spec)
     cap = _capture.capture(
         model,
         dataset,
         model_path=model_path,
         model_sha256=sha,
         output=output,
-        batch_size=batch_size,
+        options=options,
         progress=progress,
     )
-    _require_finite(cap.logits, str(data_path))
+    _require_finite(cap.logits, dataset.source)
     summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict())
     patched = graph.patch(
         model,
@@ -339,7 +380,7 @@ def calibrate(
         cap.logits,
         original=str(model_path),
         original_sha=sha,
-        batch_size=batch_size,
+        options=options,
         progress=progress,
     )
     written = None
