@@ -14,7 +14,8 @@ hard-codes the batch, say) it falls back to B samples per call with an
 
 A capture file is an uncompressed ``.npz`` with ``logits`` (float32,
 rows x k), ``labels`` (int64), ``indices`` (int64, the row number of each
-sample in the validation set) and ``meta`` (a JSON string, see
+sample in the validation set; absent when the capture holds every row in
+order) and ``meta`` (a JSON string, see
 :class:`CaptureMeta`). :func:`capture` with ``out`` streams the logits into
 the file batch by batch, so memory holds one batch whatever the set's size;
 the file is written under a temporary name and renamed when complete.
@@ -43,6 +44,8 @@ ProgressFn = Callable[[str, int, int], None]
 """Called as ``progress(description, samples_done, samples_total)`` after each batch."""
 
 DEFAULT_BATCH = 64
+RELEASE_BYTES = 16 << 20
+"""Memory-mapped input pages are handed back to the kernel every this many bytes."""
 CPU = "CPUExecutionProvider"
 OPTIMIZATION_LEVELS = {
     "disable": "ORT_DISABLE_ALL",
@@ -184,8 +187,8 @@ class CaptureMeta:
 class Capture:
     """Captured logits, labels and where they came from.
 
-    ``indices`` holds the row number in the validation set of each sample
-    (None for captures written before onnxcal recorded them).
+    ``indices`` holds the row number in the validation set of each sample,
+    or None when the samples are all rows of the set in order.
     """
 
     logits: np.ndarray
@@ -194,10 +197,10 @@ class Capture:
     indices: np.ndarray | None = None
 
     def sample_indices(self) -> np.ndarray:
-        """``indices``, or 0..n-1 when they were not recorded."""
+        """``indices``, or 0..n-1 when the capture holds every row in order."""
         if self.indices is not None:
             return self.indices
-        return np.arange(len(self.labels), dtype=np.int64)
+        return np.arange(self.meta.data_total or len(self.labels), dtype=np.int64)
 
 
 # --------------------------------------------------------------------------
@@ -376,14 +379,20 @@ def run_batches(
 ) -> Iterator[tuple[int, int, list[np.ndarray]]]:
     """Yield ``(start, stop, outputs)`` batch by batch over the selected rows.
 
-    After each batch has been consumed its input pages are released
-    (:meth:`Dataset.release`) and ``progress`` is called.
+    After each batch has been consumed ``progress`` is called; the input
+    pages of consumed rows are released (:meth:`Dataset.release`) whenever
+    they add up to :data:`RELEASE_BYTES`, so the resident size stays bounded
+    without paying a page-table flush on every small batch.
     """
     n = dataset.n
+    row_bytes = dataset.mapped_row_bytes
+    released = 0
     for start in range(0, n, plan.step):
         stop = min(start + plan.step, n)
         yield start, stop, run_batch(plan, dataset, start, stop)
-        dataset.release(start, stop)
+        if row_bytes and ((stop - released) * row_bytes >= RELEASE_BYTES or stop == n):
+            dataset.release(released, stop)
+            released = stop
         if progress is not None:
             progress(description, stop, n)
 
@@ -419,6 +428,8 @@ def as_rows(scores: np.ndarray, class_axis: int) -> np.ndarray:
     """Move the class axis last and flatten the rest: (rows, k)."""
     if scores.ndim == 1:
         return scores.reshape(-1, 1)
+    if scores.ndim == 2 and class_axis == 1:
+        return scores
     moved = np.moveaxis(scores, class_axis, -1)
     return moved.reshape(-1, moved.shape[-1])
 
@@ -475,23 +486,45 @@ class _MemoryRows(_Rows):
 
 
 class _NpyRows(_Rows):
-    """Streams the rows as ``logits.npy`` into an open zip archive."""
+    """Streams the rows as ``logits.npy`` into an open zip archive.
+
+    Rows are gathered in a buffer of about 1 MiB between writes, so a model
+    with small batches does not pay one archive write per batch.
+    """
+
+    BUFFER_BYTES = 1 << 20
 
     def __init__(self, samples: int, archive: zipfile.ZipFile):
         super().__init__(samples)
         self.archive = archive
         self.fh = None
+        self.held = 0
 
     def _open(self) -> None:
         self.fh = self.archive.open("logits.npy", "w", force_zip64=True)
         header = {"descr": "<f4", "fortran_order": False, "shape": (self.total, self.k)}
         np.lib.format.write_array_header_1_0(self.fh, header)
+        self.buffer = np.empty((max(1, self.BUFFER_BYTES // (4 * self.k)), self.k), dtype="<f4")
 
     def _write(self, rows: np.ndarray) -> None:
-        self.fh.write(rows.data)
+        if self.held + len(rows) > len(self.buffer):
+            self._flush()
+        if len(rows) > len(self.buffer):
+            self.fh.write(rows.data)
+            return
+        self.buffer[self.held : self.held + len(rows)] = rows
+        self.held += len(rows)
 
-    def close(self) -> None:
+    def _flush(self) -> None:
+        if self.held:
+            self.fh.write(self.buffer[: self.held].data)
+            self.held = 0
+
+    def close(self, complete: bool = True) -> None:
+        """Write what is buffered (when ``complete``) and close the member."""
         if self.fh is not None:
+            if complete:
+                self._flush()
             self.fh.close()
 
 
@@ -575,28 +608,34 @@ def capture(
         raise OnnxcalError(f"'{dataset.source}' has no labels", "add a 'labels' array")
     options = _options(options, batch_size)
     site = find_scores(model, output)
-    if site.num_classes is not None:  # range-check labels before the (long) run
-        check_labels(dataset.labels, dataset.n, site.num_classes, dataset.source)
+    labels = None
+    if site.num_classes is not None:  # check labels before the (long) run
+        labels = check_labels(dataset.labels, dataset.n, site.num_classes, dataset.source)
         _check_class_names(dataset, site.num_classes)
     _check_data(model, dataset)
+
+    def finish(sink: _Rows, mode: str) -> tuple[np.ndarray, CaptureMeta]:
+        checked = labels is not None and (len(labels), site.num_classes) == (sink.total, sink.k)
+        final = labels if checked else check_labels(dataset.labels, sink.total, sink.k, dataset.source)
+        _check_class_names(dataset, sink.k)
+        return final, _meta(dataset, site, sink, mode, model_path, model_sha256)
+
     if out is None:
         sink = _MemoryRows(dataset.n)
-        mode = _fill_scores(model, dataset, site, sink, options, progress)
-        labels = check_labels(dataset.labels, sink.total, sink.k, dataset.source)
-        _check_class_names(dataset, sink.k)
-        return Capture(sink.array, labels, _meta(dataset, site, sink, mode, model_path, model_sha256),
-                       dataset.row_numbers())
+        final, meta = finish(sink, _fill_scores(model, dataset, site, sink, options, progress))
+        return Capture(sink.array, final, meta, dataset.rows)
     with atomic_path(Path(out)) as tmp, zipfile.ZipFile(tmp, "w", zipfile.ZIP_STORED, allowZip64=True) as zf:
         sink = _NpyRows(dataset.n, zf)
         try:
             mode = _fill_scores(model, dataset, site, sink, options, progress)
-        finally:
-            sink.close()
-        labels = check_labels(dataset.labels, sink.total, sink.k, dataset.source)
-        _check_class_names(dataset, sink.k)
-        meta = _meta(dataset, site, sink, mode, model_path, model_sha256)
-        _write_tail(zf, labels, dataset.row_numbers(), meta)
-    return load_capture(out)
+        except BaseException:
+            sink.close(complete=False)  # the temporary file is removed; nothing to flush
+            raise
+        sink.close()
+        final, meta = finish(sink, mode)
+        _write_tail(zf, final, dataset.rows, meta)
+    logits = read_npz(Path(out), "")["logits"]  # a memory map of what was just written
+    return Capture(logits, final, meta, dataset.rows)
 
 
 def _check_class_names(dataset: Dataset, k: int) -> None:
@@ -645,9 +684,12 @@ def _write_member(zf: zipfile.ZipFile, name: str, arr: np.ndarray) -> None:
         np.lib.format.write_array(fh, np.asarray(arr), allow_pickle=False)
 
 
-def _write_tail(zf: zipfile.ZipFile, labels: np.ndarray, indices: np.ndarray, meta: CaptureMeta) -> None:
+def _write_tail(
+    zf: zipfile.ZipFile, labels: np.ndarray, indices: np.ndarray | None, meta: CaptureMeta
+) -> None:
     _write_member(zf, "labels", labels)
-    _write_member(zf, "indices", np.asarray(indices, dtype=np.int64))
+    if indices is not None:  # absent: the samples are rows 0..n-1 of the set
+        _write_member(zf, "indices", np.asarray(indices, dtype=np.int64))
     _write_member(zf, "meta", np.array(json.dumps(meta.to_dict(), sort_keys=True)))
 
 
@@ -655,7 +697,7 @@ def save_capture(path: str | os.PathLike, cap: Capture) -> None:
     """Write a capture file atomically."""
     with atomic_path(Path(path)) as tmp, zipfile.ZipFile(tmp, "w", zipfile.ZIP_STORED, allowZip64=True) as zf:
         _write_member(zf, "logits", np.asarray(cap.logits, dtype=np.float32))
-        _write_tail(zf, cap.labels, cap.sample_indices(), cap.meta)
+        _write_tail(zf, cap.labels, cap.indices, cap.meta)
 
 
 def load_capture(path: str | os.PathLike) -> Capture:
@@ -740,7 +782,7 @@ def merge_captures(captures: Sequence[Capture], sources: Sequence[str]) -> Captu
     offsets = np.cumsum([0] + [len(c.sample_indices()) for c in captures])
     groups: dict[str, list[int]] = {}
     for i, cap in enumerate(captures):
-        key = cap.meta.data_id if cap.indices is not None else f"\0unindexed-{i}"
+        key = cap.meta.data_id or f"\0unidentified-{i}"  # files from before fingerprints
         groups.setdefault(key, []).append(i)
     order = []  # positions in the concatenation of all captures' samples, in merged order
     for members in groups.values():

@@ -11,6 +11,7 @@ import functools
 import inspect as _inspect
 import json
 import sys
+import time
 import traceback
 import typing
 import warnings
@@ -220,12 +221,17 @@ def _progress(quiet: bool) -> Iterator[ProgressFn | None]:
     )
     tasks: dict[str, int] = {}
 
+    shown: dict[str, float] = {}
+
     def update(description: str, done: int, total: int) -> None:
         if not tasks:  # start drawing at the first batch, not before
             bar.start()
         if description not in tasks:
             tasks[description] = bar.add_task(description, total=total)
-        bar.update(tasks[description], completed=done)
+        now = time.monotonic()
+        if done >= total or now - shown.get(description, 0.0) >= 0.05:  # cheap on tiny batches
+            shown[description] = now
+            bar.update(tasks[description], completed=done)
 
     try:
         yield update

@@ -137,6 +137,14 @@ class Dataset:
             name: np.ascontiguousarray(self.inputs[name][key], dtype=dtypes[name]) for name in dtypes
         }
 
+    @property
+    def mapped_row_bytes(self) -> int:
+        """Bytes per row of the memory-mapped inputs (0 when none is mapped)."""
+        return sum(
+            arr.strides[0] for arr in self.inputs.values()
+            if getattr(arr, "_mmap", None) is not None and arr.ndim
+        )
+
     def release(self, start: int, stop: int) -> None:
         """Hand the pages of memory-mapped rows ``start..stop-1`` back to the kernel.
 

@@ -279,8 +279,11 @@ def test_streamed_file_equals_the_in_memory_capture(tmp_path, npz_set):
     with np.load(out, allow_pickle=False) as npz:  # numpy's own reader reads the file
         np.testing.assert_array_equal(npz["logits"], mem.logits)
         np.testing.assert_array_equal(npz["labels"], mem.labels)
-        np.testing.assert_array_equal(npz["indices"], np.arange(120))
+        assert "indices" not in npz.files  # every row, in order
     assert streamed.meta == mem.meta and streamed.meta.batching == "batched"
+    assert streamed.indices is None and streamed.sample_indices().tolist() == list(range(120))
+    shard = capture_of(model, load_set(model, path, shard=(2, 3)), out=tmp_path / "s.npz")
+    assert load_capture(tmp_path / "s.npz").indices.tolist() == list(range(40, 80)) == shard.indices.tolist()
 
 
 def test_interrupted_capture_leaves_no_file(tmp_path, npz_set):
@@ -330,7 +333,7 @@ def test_shards_merged_equal_the_unsharded_capture(tmp_path, npz_set, seed):
     merged = load_captures(files)
     np.testing.assert_array_equal(merged.logits, whole.logits)
     np.testing.assert_array_equal(merged.labels, whole.labels)
-    np.testing.assert_array_equal(merged.indices, whole.indices)
+    np.testing.assert_array_equal(merged.indices, whole.sample_indices())
     assert merged.meta.n == 120 and merged.meta.merged_from == tuple(map(str, files))
     assert merged.meta.shard is None
 
