@@ -22,8 +22,9 @@ from ._files import check_output_path, sha256_file
 from .capture import Capture, ProgressFn, RunOptions
 from .data import DataSpec, Dataset, check_selection, load_dataset
 from .errors import OnnxcalError
-from .fit import FitSummary
+from .fit import FitOptions, FitSummary
 from .graph import ModelInfo, Record
+from .scaling import METHODS, MULTILABEL_MODES, Scaling
 from .verify import VerifyResult
 
 
@@ -47,7 +48,8 @@ class CalibrateResult:
 def inspect(model_path: str | os.PathLike) -> ModelInfo:
     """Describe a model: inputs, outputs, opset, class-score output, record."""
     model = graph.load_model(model_path)
-    return graph.describe(model, model_path, sha256_file(model_path))
+    external = tuple(str(f) for f in graph.external_data_files(model_path))
+    return graph.describe(model, model_path, sha256_file(model_path), external)
 
 
 def _require_finite(logits: np.ndarray, source: str) -> None:
@@ -78,9 +80,7 @@ def _load_data(model, data: DataSource, require_labels: bool = True) -> Dataset:
     return load_dataset(_data_spec(data), specs, require_labels=require_labels)
 
 
-def _run_options(
-    batch_size: int, threads: int, optimization: str, provider: str
-) -> RunOptions:
+def _run_options(batch_size: int, threads: int, optimization: str, provider: str) -> RunOptions:
     return _capture.check_run_options(RunOptions(batch_size, threads, optimization, provider))
 
 
@@ -96,6 +96,7 @@ def capture(
     provider: str = _capture.CPU,
     force: bool = False,
     progress: ProgressFn | None = None,
+    activation: str | None = None,
 ) -> Capture:
     """Run the model over a labelled set; return (and write) the logits.
 
@@ -123,11 +124,14 @@ def capture(
         Replace an existing ``out``.
     progress : callable, optional
         ``progress(description, done, total)``.
+    activation : {"softmax", "sigmoid"}, optional
+        How raw logits become probabilities (default: sigmoid for one logit,
+        softmax otherwise); decides the labels' form.
     """
     spec = _data_spec(data)
     if out is not None:
         check_output_path(out, [model_path, *spec.files()], force=force)
-    options = _run_options(batch_size, threads, optimization, provider)
+    run = _run_options(batch_size, threads, optimization, provider)
     model = graph.load_model(model_path)
     return _capture.capture(
         model,
@@ -135,10 +139,43 @@ def capture(
         model_path=model_path,
         model_sha256=sha256_file(model_path),
         output=output,
-        options=options,
+        options=run,
         progress=progress,
+        activation=activation,
         out=out,
     )
+
+
+def check_fit_options(options: FitOptions) -> FitOptions:
+    """Validate the fit options given by the user.
+
+    Raises
+    ------
+    OnnxcalError
+        An unknown method or multi-label mode, a negative or non-finite
+        ``--l2``, a holdout fraction outside [0, 0.9], a negative number of
+        bootstrap replicates or fewer than 2 bins.
+    """
+    if options.method not in METHODS:
+        raise OnnxcalError(f"--method {options.method!r} is not one of: {', '.join(METHODS)}")
+    if options.multilabel is not None and options.multilabel not in MULTILABEL_MODES:
+        raise OnnxcalError(
+            f"--multilabel {options.multilabel!r} is not one of: {', '.join(MULTILABEL_MODES)}"
+        )
+    if not np.isfinite(options.l2) or options.l2 < 0:
+        raise OnnxcalError(f"--l2 {options.l2!r} is not a non-negative number", "use 0 for no penalty")
+    if options.l2 > 0 and options.method == "temperature":
+        raise OnnxcalError("--l2 applies to --method vector and platt, not temperature")
+    if not 0 <= options.holdout <= 0.9:
+        raise OnnxcalError(
+            f"--holdout {options.holdout!r} is not a fraction between 0 and 0.9",
+            "use e.g. 0.25, or 0 to score in-sample",
+        )
+    if options.bootstrap < 0:
+        raise OnnxcalError(f"--bootstrap {options.bootstrap} is negative", "use 0 to skip the intervals")
+    if options.n_bins < 2:
+        raise OnnxcalError(f"--bins {options.n_bins} is fewer than 2 bins")
+    return options
 
 
 def fit(
@@ -146,8 +183,9 @@ def fit(
     *,
     out: str | os.PathLike | None = None,
     force: bool = False,
+    options: FitOptions = FitOptions(),
 ) -> FitSummary:
-    """Fit a temperature to captured logits; return (and write) the summary.
+    """Fit a calibration map to captured logits; return (and write) the summary.
 
     Parameters
     ----------
@@ -158,13 +196,16 @@ def fit(
         Where to write FIT.json.
     force : bool
         Replace an existing ``out``.
+    options : FitOptions
+        Method, holdout, bootstrap, ... (see :class:`onnxcal.fit.FitOptions`).
     """
+    check_fit_options(options)
     inputs = [] if isinstance(source, Capture) else _capture_paths(source)
     if out is not None:
         check_output_path(out, inputs, force=force)
     cap = source if isinstance(source, Capture) else _capture.load_captures(inputs)
     _require_finite(cap.logits, cap.meta.data_source if isinstance(source, Capture) else ", ".join(map(str, inputs)))
-    summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict())
+    summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options)
     if out is not None:
         _fit.save_fit(out, summary)
     return summary
@@ -174,15 +215,70 @@ def _capture_paths(source: str | os.PathLike | Sequence[str | os.PathLike]) -> l
     return [source] if isinstance(source, (str, os.PathLike)) else list(source)
 
 
-def _resolve_temperature(
+def _resolve_scaling(
     temperature: float | None, fit_source: FitSummary | str | os.PathLike | None
-) -> tuple[float, dict]:
+) -> tuple[float | Scaling, dict]:
     if (temperature is None) == (fit_source is None):
         raise OnnxcalError("give exactly one of --temperature and --fit")
     if temperature is not None:
         return graph.check_temperature(temperature), {"method": "temperature", "given": True}
     summary = fit_source if isinstance(fit_source, FitSummary) else _fit.load_fit(fit_source)
-    return summary.temperature, summary.to_dict()
+    return summary.scaling, summary.to_dict()
+
+
+@dataclass(frozen=True)
+class PatchOptions:
+    """How to rewrite the graph (the patch options shared by patch and calibrate).
+
+    Attributes
+    ----------
+    output : str, optional
+        The class-score output (the likeliest float output by default).
+    output_name : str, default "probabilities"
+        Name of the added output when the model ends in raw logits.
+    drop_logits : bool
+        Remove the logits output in that case.
+    activation : {"softmax", "sigmoid"}, optional
+        What follows raw logits (default: sigmoid for one logit, else softmax).
+    compute_dtype : {"float32", "float64"}, optional
+        Run the Div and activation in this dtype (e.g. for float16 models).
+    fold : bool
+        Fold 1/T into the weight and bias of the final Gemm / MatMul(+Add)
+        (temperature scaling with one T only).
+    """
+
+    output: str | None = None
+    output_name: str = graph.DEFAULT_OUTPUT_NAME
+    drop_logits: bool = False
+    activation: str | None = None
+    compute_dtype: str | None = None
+    fold: bool = False
+
+    def patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict):
+        return graph.patch(
+            model,
+            calibration,
+            source_sha256=sha,
+            source_path=Path(path).resolve(),
+            output=self.output,
+            new_output=self.output_name,
+            drop_logits=self.drop_logits,
+            fit=fit,
+            activation=self.activation,
+            compute_dtype=self.compute_dtype,
+            fold=self.fold,
+        )
+
+
+def _check_outputs(out, inputs: list, model_path, force: bool) -> bool:
+    """Check ``out`` (and, for a model with external data, ``out``.data); True if external."""
+    check_output_path(out, inputs, force=force)
+    sources = graph.external_data_files(model_path)
+    if sources:
+        check_output_path(
+            graph.external_data_path(out), [*inputs, *sources], force=force, option="--out's data file"
+        )
+    return bool(sources)
 
 
 def patch(
@@ -194,6 +290,9 @@ def patch(
     output: str | None = None,
     output_name: str = graph.DEFAULT_OUTPUT_NAME,
     drop_logits: bool = False,
+    activation: str | None = None,
+    compute_dtype: str | None = None,
+    fold: bool = False,
     force: bool = False,
 ) -> PatchResult:
     """Write a copy of the model that outputs calibrated probabilities.
@@ -201,37 +300,27 @@ def patch(
     Parameters
     ----------
     model_path : path
-        The ONNX model; never modified.
+        The ONNX model; never modified. A model already patched by onnxcal
+        has its patch undone first (so patches never stack).
     out : path
-        The patched model; must differ from ``model_path``.
+        The patched model; must differ from ``model_path``. A model with
+        external data is written with its weights in ``out``.data.
     temperature : float, optional
         T; or give ``fit``.
     fit : FitSummary or path, optional
-        A fit (or FIT.json) whose temperature is used and recorded.
-    output : str, optional
-        The class-score output.
-    output_name : str, default "probabilities"
-        Name of the added output when the model ends in raw logits.
-    drop_logits : bool
-        Remove the logits output in that case.
+        A fit (or FIT.json) whose parameters are baked in and recorded.
+    output, output_name, drop_logits, activation, compute_dtype, fold
+        See :class:`PatchOptions`.
     force : bool
         Replace an existing ``out``.
     """
     inputs = [model_path] + ([fit] if isinstance(fit, (str, os.PathLike)) else [])
-    check_output_path(out, inputs, force=force)
-    t, fit_dict = _resolve_temperature(temperature, fit)
+    external = _check_outputs(out, inputs, model_path, force)
+    calibration, fit_dict = _resolve_scaling(temperature, fit)
+    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold)
     model = graph.load_model(model_path)
-    patched = graph.patch(
-        model,
-        t,
-        source_sha256=sha256_file(model_path),
-        source_path=Path(model_path).resolve(),
-        output=output,
-        new_output=output_name,
-        drop_logits=drop_logits,
-        fit=fit_dict,
-    )
-    graph.save_model(patched, out)
+    patched = patching.patch(model, calibration, sha=sha256_file(model_path), path=model_path, fit=fit_dict)
+    graph.save_model(patched, out, external=external)
     return PatchResult(path=str(out), record=graph.read_record(patched))
 
 
@@ -242,27 +331,41 @@ def _verify_models(
     logits: np.ndarray,
     *,
     original: str,
+    original_model,
     original_sha: str,
-    options: RunOptions,
+    run: RunOptions,
     progress: ProgressFn | None,
 ) -> VerifyResult:
     """Run the patched model and compare it with the original's logits."""
     site = graph.find_scores(patched, record.output)
     (probs,) = _capture.run_model(
-        patched,
+        graph.expose(patched, [site.tensor]),
         dataset,
-        [record.output],
-        options=options,
+        [site.tensor],
+        options=run,
         progress=progress,
         description="running patched model",
     )
     rows = _capture.as_rows(probs, site.class_axis)
-    checks = _verify.compare(rows, logits, record.temperature, record.activation, site.dtype)
+    dtypes = (site.dtype, site.output_dtype or site.dtype)
+    checks = _verify.compare(rows, logits, record.scaling, record.activation, dtypes)
+    in_graph = graph.parameter_values(patched, record, original_model)
+    recorded = {"temperature": record.temperature} if record.folded else record.parameters
     checks += (
-        _verify.record_check(record.temperature, graph.temperature_value(patched, record)),
+        _verify.record_check(recorded, in_graph, graph.temperature_dtype(patched, record)),
         _verify.source_check(record.source_sha256, original_sha),
     )
     return VerifyResult(checks=checks, n=dataset.n, original=original)
+
+
+def _source_site(base, record: Record):
+    """The class-score site of the uncalibrated model the record was made from."""
+    if record.source_output:
+        return graph.find_scores(base, record.source_output)
+    # records written before source_output existed
+    return graph.find_scores(
+        base, record.output if record.rewrite == "insert-before-activation" else record.scores
+    )
 
 
 def verify(
@@ -276,7 +379,7 @@ def verify(
     provider: str = _capture.CPU,
     progress: ProgressFn | None = None,
 ) -> VerifyResult:
-    """Check a patched model against softmax(original logits / T) in NumPy.
+    """Check a patched model against its NumPy reference (e.g. softmax(original logits / T)).
 
     Parameters
     ----------
@@ -290,7 +393,7 @@ def verify(
         As for :func:`capture`.
     """
     spec = _data_spec(data)
-    options = _run_options(batch_size, threads, optimization, provider)
+    run = _run_options(batch_size, threads, optimization, provider)
     patched = graph.load_model(patched_path)
     record = graph.read_record(patched)
     if record is None:
@@ -308,18 +411,17 @@ def verify(
         original = record.source_path
     base = graph.load_model(original)
     dataset = _load_data(base, spec, require_labels=False)
-    base_site = graph.find_scores(
-        base, record.output if record.rewrite == "insert-before-activation" else record.scores
-    )
-    logits = _capture.capture_scores(base, dataset, base_site, options=options, progress=progress)
+    base_site = _source_site(base, record)
+    logits = _capture.capture_scores(base, dataset, base_site, options=run, progress=progress)
     return _verify_models(
         patched,
         record,
         dataset,
         logits,
         original=str(original),
+        original_model=base,
         original_sha=sha256_file(original),
-        options=options,
+        run=run,
         progress=progress,
     )
 
@@ -332,23 +434,36 @@ def calibrate(
     output: str | None = None,
     output_name: str = graph.DEFAULT_OUTPUT_NAME,
     drop_logits: bool = False,
+    activation: str | None = None,
+    compute_dtype: str | None = None,
+    fold: bool = False,
     batch_size: int = _capture.DEFAULT_BATCH,
     threads: int = 0,
     optimization: str = "all",
     provider: str = _capture.CPU,
     force: bool = False,
     progress: ProgressFn | None = None,
+    options: FitOptions = FitOptions(),
 ) -> CalibrateResult:
     """Capture, fit, patch and verify in one go.
 
-    ``data`` and the run options are as for :func:`capture`. The patched
-    model is verified in memory against the captured logits before it is
-    written; when a check fails nothing is written and ``result.patch`` is None.
+    The patched model is verified in memory against the captured logits
+    before it is written; when a check fails nothing is written and
+    ``result.patch`` is None. ``data`` and ``batch_size`` ... ``provider``: as
+    for :func:`capture`; ``output`` ... ``fold``: see :class:`PatchOptions`;
+    ``options`` are those of :func:`fit`.
     """
+    check_fit_options(options)
     spec = _data_spec(data)
-    check_output_path(out, [model_path, *spec.files()], force=force)
-    options = _run_options(batch_size, threads, optimization, provider)
+    external = _check_outputs(out, [model_path, *spec.files()], model_path, force)
+    run = _run_options(batch_size, threads, optimization, provider)
+    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold)
     model = graph.load_model(model_path)
+    if (previous := graph.read_record(model)) is not None:
+        raise OnnxcalError(
+            f"'{model_path}' is already calibrated by onnxcal ({previous.method} scaling)",
+            f"calibrate the original model ({previous.source_path}), or change T with 'onnxcal patch'",
+        )
     sha = sha256_file(model_path)
     dataset = _load_data(model, spec)
     cap = _capture.capture(
@@ -357,21 +472,13 @@ def calibrate(
         model_path=model_path,
         model_sha256=sha,
         output=output,
-        options=options,
+        options=run,
         progress=progress,
+        activation=activation,
     )
     _require_finite(cap.logits, dataset.source)
-    summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict())
-    patched = graph.patch(
-        model,
-        summary.temperature,
-        source_sha256=sha,
-        source_path=Path(model_path).resolve(),
-        output=output,
-        new_output=output_name,
-        drop_logits=drop_logits,
-        fit=summary.to_dict(),
-    )
+    summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options)
+    patched = patching.patch(model, summary.scaling, sha=sha, path=model_path, fit=summary.to_dict())
     record = graph.read_record(patched)
     result = _verify_models(
         patched,
@@ -379,12 +486,13 @@ def calibrate(
         dataset,
         cap.logits,
         original=str(model_path),
+        original_model=model,
         original_sha=sha,
-        options=options,
+        run=run,
         progress=progress,
     )
     written = None
     if result.passed:
-        graph.save_model(patched, out)
+        graph.save_model(patched, out, external=external)
         written = PatchResult(path=str(out), record=record)
     return CalibrateResult(summary=summary, patch=written, verification=result)

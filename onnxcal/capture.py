@@ -13,7 +13,8 @@ hard-codes the batch, say) it falls back to B samples per call with an
 :class:`~onnxcal.errors.OnnxcalWarning`.
 
 A capture file is an uncompressed ``.npz`` with ``logits`` (float32,
-rows x k), ``labels`` (int64), ``indices`` (int64, the row number of each
+rows x k), ``labels`` (int64, one per row; or uint8, rows x k 0/1 for a
+multi-label model), ``indices`` (int64, the row number of each
 sample in the validation set; absent when the capture holds every row in
 order) and ``meta`` (a JSON string, see
 :class:`CaptureMeta`). :func:`capture` with ``out`` streams the logits into
@@ -36,9 +37,9 @@ import onnx
 
 from . import __version__
 from ._files import atomic_path, require_file
-from .data import Dataset, check_labels, match_inputs, read_npz
+from .data import Dataset, check_labels, check_multilabel, match_inputs, read_npz
 from .errors import OnnxcalError, OnnxcalWarning
-from .graph import ScoreSite, expose, find_scores, tensor_spec
+from .graph import ScoreSite, expose_scores, find_scores, fit_kind, tensor_spec
 
 ProgressFn = Callable[[str, int, int], None]
 """Called as ``progress(description, samples_done, samples_total)`` after each batch."""
@@ -121,7 +122,9 @@ class CaptureMeta:
     scores : str
         The tensor captured (the logits behind ``output``).
     activation : str or None
-        What the model applies to ``scores`` (None for raw logits).
+        What the model applies to ``scores`` (None for raw logits;
+        ``"softmax"`` for an ai.onnx.ml classifier's probabilities, whose
+        logarithm is captured).
     class_axis : int
         Class axis of ``output`` in the model.
     num_classes : int
@@ -130,6 +133,9 @@ class CaptureMeta:
         Number of captured rows.
     data_source : str
         The validation set.
+    fit_as : str
+        ``"softmax"`` (labels are class indices, one per row) or
+        ``"sigmoid"`` (labels are 0/1, one per logit: binary or multi-label).
     onnxcal_version : str
     class_names : tuple of str or None
         Names of the classes, when known (``--classes`` or folder names).
@@ -159,6 +165,7 @@ class CaptureMeta:
     num_classes: int
     n: int
     data_source: str
+    fit_as: str = "softmax"
     onnxcal_version: str = __version__
     class_names: tuple[str, ...] | None = None
     data_id: str = ""
@@ -537,10 +544,22 @@ def _fill_scores(
     progress: ProgressFn | None,
 ) -> str:
     """Run the model and pass its logits to ``sink``; return the batching mode."""
-    plan = plan_run(expose(model, [site.scores]), dataset, [site.scores], options)
+    exposed, name = expose_scores(model, site)
+    plan = plan_run(exposed, dataset, [name], options)
     for start, stop, (scores,) in run_batches(plan, dataset, progress=progress, description="capturing logits"):
-        sink.add(as_rows(scores, site.class_axis), stop - start)
+        rows = as_rows(scores, site.class_axis)
+        sink.add(log_probabilities(rows) if site.from_probabilities else rows, stop - start)
     return plan.mode
+
+
+def log_probabilities(p: np.ndarray) -> np.ndarray:
+    """log(max(p, tiny)): logits for probabilities, as the patched graph computes them.
+
+    softmax(log p) = p, and softmax(log p / T) = softmax(z / T) for logits z
+    with p = softmax(z), since softmax ignores a constant added to every
+    class (common practice). ``tiny`` is the dtype's smallest normal number.
+    """
+    return np.log(np.maximum(p, np.finfo(p.dtype).tiny))
 
 
 def _check_data(model: onnx.ModelProto, dataset: Dataset) -> None:
@@ -578,6 +597,7 @@ def capture(
     options: RunOptions | None = None,
     progress: ProgressFn | None = None,
     out: str | os.PathLike | None = None,
+    activation: str | None = None,
 ) -> Capture:
     """Run the model over a labelled set and return its logits.
 
@@ -599,6 +619,9 @@ def capture(
     out : path, optional
         Stream the capture into this file (written atomically); the returned
         capture's logits are then a memory map of it.
+    activation : {"softmax", "sigmoid"}, optional
+        How raw logits become probabilities (see ``graph.fit_kind``); decides
+        the labels' form.
 
     Returns
     -------
@@ -608,17 +631,19 @@ def capture(
         raise OnnxcalError(f"'{dataset.source}' has no labels", "add a 'labels' array")
     options = _options(options, batch_size)
     site = find_scores(model, output)
+    kind = fit_kind(site, activation)
     labels = None
-    if site.num_classes is not None:  # check labels before the (long) run
-        labels = check_labels(dataset.labels, dataset.n, site.num_classes, dataset.source)
-        _check_class_names(dataset, site.num_classes)
+    if site.num_classes is not None and kind == "softmax" and np.ndim(dataset.labels) == 1:
+        labels = check_labels(dataset.labels, dataset.n, site.num_classes, dataset.source)  # before the run
+    if site.num_classes is not None:
+        _check_class_names(dataset, site.num_classes, kind)
     _check_data(model, dataset)
 
     def finish(sink: _Rows, mode: str) -> tuple[np.ndarray, CaptureMeta]:
         checked = labels is not None and (len(labels), site.num_classes) == (sink.total, sink.k)
-        final = labels if checked else check_labels(dataset.labels, sink.total, sink.k, dataset.source)
-        _check_class_names(dataset, sink.k)
-        return final, _meta(dataset, site, sink, mode, model_path, model_sha256)
+        final = labels if checked else label_rows(dataset.labels, (sink.total, sink.k), kind, dataset.source)
+        _check_class_names(dataset, sink.k, kind)
+        return final, _meta(dataset, site, sink, mode, kind, model_path, model_sha256)
 
     if out is None:
         sink = _MemoryRows(dataset.n)
@@ -638,16 +663,17 @@ def capture(
     return Capture(logits, final, meta, dataset.rows)
 
 
-def _check_class_names(dataset: Dataset, k: int) -> None:
+def _check_class_names(dataset: Dataset, k: int, kind: str) -> None:
     names = dataset.class_names
-    if names is not None and len(names) != k:
+    want = 2 if kind == "sigmoid" and k == 1 else k  # one logit: negative and positive class
+    if names is not None and len(names) != want:
         raise OnnxcalError(
-            f"the class list of '{dataset.source}' has {len(names)} classes but the model has {k}",
+            f"the class list of '{dataset.source}' has {len(names)} classes but the model has {want}",
             "give one class name per model class, in the model's order",
         )
 
 
-def _meta(dataset: Dataset, site: ScoreSite, sink: _Rows, mode: str, path, sha: str) -> CaptureMeta:
+def _meta(dataset: Dataset, site: ScoreSite, sink: _Rows, mode: str, kind: str, path, sha: str) -> CaptureMeta:
     sel = dataset.selection
     return CaptureMeta(
         model_sha256=sha,
@@ -659,6 +685,7 @@ def _meta(dataset: Dataset, site: ScoreSite, sink: _Rows, mode: str, path, sha: 
         num_classes=sink.k,
         n=sink.total,
         data_source=dataset.source,
+        fit_as=kind,
         class_names=dataset.class_names,
         data_id=dataset.data_id,
         data_total=dataset.total,
@@ -668,6 +695,42 @@ def _meta(dataset: Dataset, site: ScoreSite, sink: _Rows, mode: str, path, sha: 
         preprocess=dataset.preprocess,
         batching=mode,
     )
+
+
+def label_rows(labels: np.ndarray, shape: tuple[int, int], kind: str, source: str) -> np.ndarray:
+    """Labels lined up with captured rows of ``shape`` (rows, k), as int64.
+
+    ``kind == "softmax"``: class indices, one per row; per-pixel labels
+    (e.g. n x H x W for an n x K x H x W output) are flattened in the rows'
+    order. ``kind == "sigmoid"``: 0/1 for every logit: (rows,) int64 for one
+    logit (binary), (rows, k) uint8 for k labels (multi-label).
+
+    Raises
+    ------
+    OnnxcalError
+        The labels do not fit the rows or are not of the right kind.
+    """
+    labels = np.asarray(labels)
+    rows, k = shape
+    if kind == "softmax":
+        if labels.ndim > 1 and labels.size == rows:
+            labels = labels.reshape(-1)
+        elif labels.ndim > 1:
+            raise OnnxcalError(
+                f"labels in '{source}' have shape {labels.shape}, which does not give one "
+                f"class index per score row ({rows} rows)",
+                "give per-sample labels, or per-pixel labels shaped like the output without its class axis",
+            )
+        return check_labels(labels, rows, k, source)
+    if labels.size != rows * k:
+        raise OnnxcalError(
+            f"labels in '{source}' have shape {labels.shape}, but a sigmoid output with "
+            f"{k} logit(s) per row needs one 0/1 label per logit ({rows} x {k})",
+            "give 0/1 labels shaped like the output",
+        )
+    if k == 1:  # binary: one 0/1 class index per row
+        return check_labels(labels.reshape(-1), rows, 2, source)
+    return check_multilabel(labels.reshape(rows, k), rows, k, source)
 
 
 def nonfinite_rows(logits: np.ndarray) -> np.ndarray:
@@ -722,7 +785,7 @@ def load_capture(path: str | os.PathLike) -> Capture:
         raise OnnxcalError(f"'{p}' is not an onnxcal capture file ({exc.message})", hint) from exc
     if logits.ndim != 2 or logits.dtype.kind != "f":
         raise OnnxcalError(f"'{p}' holds logits of shape {logits.shape} ({logits.dtype})", hint)
-    labels = check_labels(labels, logits.shape[0], logits.shape[1], str(p))
+    labels = label_rows(labels, logits.shape, meta.fit_as, str(p))
     indices = arrays.get("indices")
     if indices is not None:
         indices = np.asarray(indices)
@@ -737,6 +800,7 @@ _SAME = (
     ("output", "hold different model outputs"),
     ("scores", "hold different logits tensors"),
     ("activation", "hold scores with different activations"),
+    ("fit_as", "are fitted as different kinds (softmax or sigmoid)"),
     ("class_axis", "have different class axes"),
     ("num_classes", "have different numbers of classes"),
     ("class_names", "have different class lists"),

@@ -20,6 +20,7 @@ from pathlib import Path
 from typing import Annotated, Optional
 
 import typer
+from rich import box
 from rich.console import Console
 from rich.progress import (
     BarColumn,
@@ -36,7 +37,7 @@ from . import __version__, api
 from .capture import CPU, DEFAULT_BATCH, OPTIMIZATION_LEVELS, ProgressFn
 from .data import IMAGE_OPTIONS, DataSpec, Selection, parse_shard
 from .errors import OnnxcalError, OnnxcalWarning
-from .fit import FitSummary
+from .fit import FitOptions, FitSummary
 from .graph import DEFAULT_OUTPUT_NAME, ModelInfo, TensorSpec
 from .verify import VerifyResult
 
@@ -44,8 +45,9 @@ app = typer.Typer(
     name="onnxcal",
     help=(
         "Calibrate an exported ONNX classifier: capture its logits on labelled data, "
-        "fit a temperature T by minimising NLL, patch the graph to emit "
-        "softmax(logits / T), and verify the patched file against NumPy.\n\n"
+        "fit a temperature T (or vector or Platt scaling) by minimising NLL, patch the "
+        "graph to emit the calibrated probabilities, e.g. softmax(logits / T), and "
+        "verify the patched file against NumPy.\n\n"
         "Exit status: 0 success, 1 a check failed, 2 bad input."
     ),
     add_completion=False,
@@ -73,6 +75,59 @@ OutputOpt = Annotated[
 ForceOpt = Annotated[bool, typer.Option("--force", help="Replace an existing output file.")]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Print JSON instead of a table.")]
 QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress bar.")]
+ActivationOpt = Annotated[
+    Optional[str],
+    typer.Option(
+        "--activation",
+        help="softmax or sigmoid: what turns raw logits into probabilities "
+        "(default: sigmoid for one logit, softmax otherwise).",
+    ),
+]
+ComputeDtypeOpt = Annotated[
+    Optional[str],
+    typer.Option(
+        "--compute-dtype",
+        help="float32 or float64: run the Div and activation in this dtype (Casts "
+        "around them; e.g. for float16 models). The output keeps its dtype.",
+    ),
+]
+FoldOpt = Annotated[
+    bool,
+    typer.Option(
+        "--fold",
+        help="Scale the weight and bias of the final Gemm / MatMul(+Add) by 1/T instead of adding a Div.",
+    ),
+]
+MethodOpt = Annotated[
+    str,
+    typer.Option(
+        "--method",
+        help="temperature (softmax(z/T), or sigmoid(z/T) for one logit), vector "
+        "(softmax(w*z+b), per class) or platt (sigmoid(a*z+b), one logit).",
+    ),
+]
+MultilabelOpt = Annotated[
+    Optional[str],
+    typer.Option(
+        "--multilabel",
+        help="For N x K 0/1 labels: 'shared' (one T for all labels, the default) or 'per-label' (one T each).",
+    ),
+]
+L2Opt = Annotated[
+    float, typer.Option("--l2", help="Penalty l2*(sum (w-1)^2 + sum b^2) added to the NLL (vector, platt).")
+]
+HoldoutOpt = Annotated[
+    float,
+    typer.Option(
+        "--holdout",
+        help="Fraction held out (stratified) to score the fit on; 0 scores in-sample.",
+    ),
+]
+SeedOpt = Annotated[int, typer.Option("--seed", help="Seed of the holdout split and the bootstrap.")]
+BootstrapOpt = Annotated[
+    int, typer.Option("--bootstrap", help="Bootstrap replicates for 95% intervals; 0 skips them.")
+]
+BinsOpt = Annotated[int, typer.Option("--bins", help="Bins of the ECEs.")]
 
 
 # --------------------------------------------------------------------------
@@ -269,43 +324,101 @@ def _render_info(info: ModelInfo) -> None:
     out.print(table)
     site = info.site
     if site is None:
-        out.print("class scores: none found (no floating-point output)")
+        out.print(f"class scores: none found ({info.site_problem})", soft_wrap=True)
     else:
-        ends = f"ends in {site.activation.capitalize()}" if site.activation else "raw logits"
-        out.print(
-            f"class scores: output '{site.output}' ({ends}; logits tensor '{site.scores}', "
-            f"class axis {site.class_axis}, {site.num_classes or '?'} classes)"
-        )
+        out.print(f"class scores: {_describe_site(site)}", soft_wrap=True)
+    if info.external_data:
+        out.print(f"external data: {', '.join(info.external_data)}", soft_wrap=True)
     out.print(f"batch dim: {'fixed' if info.batch_fixed else 'dynamic'}")
     if info.record is not None:
-        out.print(
-            f"calibration record: T = {info.record.temperature:.4f} on output "
-            f"'{info.record.output}' ({info.record.rewrite})"
-        )
+        r = info.record
+        what = f"T = {r.temperature:.4f}" if r.temperature is not None else f"{r.method} scaling"
+        out.print(f"calibration record: {what} on output '{r.output}' ({_how(r)})", soft_wrap=True)
     else:
         out.print("calibration record: none")
     out.print(f"sha256: {info.sha256}")
 
 
+def _describe_site(site) -> str:
+    names = {"softmax": "Softmax", "logsoftmax": "LogSoftmax", "sigmoid": "Sigmoid"}
+    if site.from_probabilities:
+        ends = f"probabilities of an ai.onnx.ml classifier, tensor '{site.scores}'"
+    elif site.activation:
+        ends = f"ends in {names[site.activation]}; logits tensor '{site.scores}'"
+    else:
+        ends = "raw logits"
+    where = f", values in tensor '{site.tensor}'" if site.tensor != site.output else ""
+    return (
+        f"output '{site.output}' ({ends}{where}; class axis {site.class_axis} of rank "
+        f"{site.rank}, {site.num_classes or '?'} classes, {site.dtype})"
+    )
+
+
+_METRIC_ROWS = (
+    ("nll", "NLL"),
+    ("ece", "ECE ({bins} bins)"),
+    ("mce", "MCE"),
+    ("adaptive_ece", "adaptive ECE"),
+    ("classwise_ece", "classwise ECE"),
+    ("brier", "Brier score"),
+    ("accuracy", "accuracy"),
+    ("mean_confidence", "mean confidence"),
+    ("gap", "gap (conf - acc)"),
+)
+
+
+def _interval(pair) -> str:
+    return "-" if pair is None else f"{pair[0]:.3f} to {pair[1]:.3f}"
+
+
+def _describe_scaling(summary: FitSummary) -> str:
+    s = summary.scaling
+    iv = (summary.intervals or {}).get("parameters", {})
+    if s.temperature is not None:
+        t = iv.get("temperature")
+        extra = f" (fit-part 95% interval {t[0]:.4f} to {t[1]:.4f})" if t else ""
+        how = "sigmoid(z / T)" if s.kind != "multiclass" else "softmax(z / T)"
+        return f"temperature scaling, {how}: T = {s.temperature:.4f}{extra}"
+    a = s.arrays()
+    if s.method == "temperature":
+        t = a["temperature"]
+        return f"per-label temperature scaling: {t.size} temperatures from {t.min():.4f} to {t.max():.4f}"
+    if s.method == "platt":
+        return f"Platt scaling, sigmoid(a z + b): a = {float(a['w']):.4f}, b = {float(a['b']):.4f}"
+    return (
+        f"vector scaling, softmax(w * z + b): {a['w'].size} classes, w from {a['w'].min():.4f} to "
+        f"{a['w'].max():.4f}, b from {a['b'].min():.4f} to {a['b'].max():.4f}"
+    )
+
+
 def _render_fit(summary: FitSummary) -> None:
-    t = summary.result.temperature
-    table = Table(title=f"temperature T = {t:.4f}", title_justify="left")
-    table.add_column("metric")
-    table.add_column("before (T = 1)", justify="right")
-    table.add_column(f"after (T = {t:.3g})", justify="right")
     b, a = summary.before, summary.after
-    rows = [
-        ("NLL", b.nll, a.nll),
-        (f"ECE ({b.n_bins} bins)", b.ece, a.ece),
-        ("Brier score", b.brier, a.brier),
-        ("accuracy", b.accuracy, a.accuracy),
-        ("mean confidence", b.mean_confidence, a.mean_confidence),
-    ]
-    for name, x, y in rows:
-        table.add_row(name, f"{x:.4f}", f"{y:.4f}")
+    where = f"{b.n} held-out samples" if summary.basis == "held-out" else f"{b.n} samples, in-sample"
+    table = Table(
+        title=f"{_describe_scaling(summary)}\nbefore/after on {where}",
+        title_justify="left",
+        box=box.SIMPLE_HEAD,
+    )
+    table.add_column("metric", no_wrap=True)
+    table.add_column("before", justify="right", no_wrap=True)
+    table.add_column("after", justify="right", no_wrap=True)
+    intervals = (summary.intervals or {}).get("after")
+    if intervals is not None:
+        table.add_column("after:\n95% interval", justify="right", no_wrap=True)
+    if summary.fit_part is not None:
+        table.add_column("fit part\nbefore", justify="right", no_wrap=True)
+        table.add_column("fit part\nafter", justify="right", no_wrap=True)
+    for key, label in _METRIC_ROWS:
+        row = [label.format(bins=b.n_bins), f"{getattr(b, key):.4f}", f"{getattr(a, key):.4f}"]
+        if intervals is not None:
+            row.append(_interval(intervals.get(key)))
+        if summary.fit_part is not None:
+            row += [f"{getattr(summary.fit_part[k], key):.4f}" for k in ("before", "after")]
+        table.add_row(*row)
     out.print(table)
-    out.print(f"{b.n} samples; figures are on the data T was fitted on (in-sample).")
-    _warn(summary.result.warnings)
+    for note in summary.notes:
+        out.print(f"note: {note}", soft_wrap=True)
+    _warn(summary.warnings)
 
 
 def _render_verify(result: VerifyResult) -> None:
@@ -349,6 +462,7 @@ def capture(
         Path, typer.Option("--out", help="Capture file to write (.npz).", show_default=False)
     ],
     output: OutputOpt = None,
+    activation: ActivationOpt = None,
     force: ForceOpt = False,
     quiet: QuietOpt = False,
     *,
@@ -360,7 +474,16 @@ def capture(
     The logits stream into the file batch by batch; it appears only when complete.
     """
     with _progress(quiet) as progress:
-        cap = api.capture(model, data, out=out_path, output=output, force=force, progress=progress, **runtime)
+        cap = api.capture(
+            model,
+            data,
+            out=out_path,
+            output=output,
+            force=force,
+            progress=progress,
+            activation=activation,
+            **runtime,
+        )
     out.print(
         f"captured {cap.meta.n} x {cap.meta.num_classes} logits from '{cap.meta.scores}' "
         f"-> {out_path}"
@@ -377,17 +500,30 @@ def fit(
                        metavar="LOGITS.npz...", show_default=False),
     ],
     out_path: Annotated[Optional[Path], typer.Option("--out", help="Write the fit to this JSON file.")] = None,
+    method: MethodOpt = "temperature",
+    multilabel: MultilabelOpt = None,
+    l2: L2Opt = 0.0,
+    holdout: HoldoutOpt = 0.25,
+    seed: SeedOpt = 0,
+    bootstrap: BootstrapOpt = 200,
+    bins: BinsOpt = 15,
     force: ForceOpt = False,
     as_json: JsonOpt = False,
 ) -> None:
-    """Fit a temperature to captured logits by minimising NLL; print before/after metrics."""
-    summary = api.fit(logits, out=out_path, force=force)
+    """Fit a calibration map to captured logits by minimising NLL; print before/after metrics.
+
+    The headline figures are on a held-out part (--holdout), with bootstrap
+    95% intervals (--bootstrap); the parameters written are refitted on all samples.
+    """
+    options = FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins)
+    summary = api.fit(logits, out=out_path, force=force, options=options)
     if as_json:
         _print_json(summary.to_dict())
         return
     _render_fit(summary)
     if out_path is not None:
         out.print(f"wrote {out_path}")
+    out.print(f"caution: {CAUTION}", soft_wrap=True)
 
 
 @app.command()
@@ -403,9 +539,12 @@ def patch(
     drop_logits: Annotated[
         bool, typer.Option("--drop-logits", help="Remove the logits output when a new output is added.")
     ] = False,
+    activation: ActivationOpt = None,
+    compute_dtype: ComputeDtypeOpt = None,
+    fold: FoldOpt = False,
     force: ForceOpt = False,
 ) -> None:
-    """Rewrite the graph so the model outputs softmax(logits / T)."""
+    """Rewrite the graph so the model outputs calibrated probabilities (e.g. softmax(logits / T))."""
     result = api.patch(
         model,
         out_path,
@@ -414,11 +553,33 @@ def patch(
         output=output,
         output_name=output_name,
         drop_logits=drop_logits,
+        activation=activation,
+        compute_dtype=compute_dtype,
+        fold=fold,
         force=force,
     )
     r = result.record
-    how = "Div inserted before the existing activation" if r.rewrite == "insert-before-activation" else "Div + Softmax appended"
-    out.print(f"T = {r.temperature:.4f}: {how}; calibrated output '{r.output}' -> {result.path}")
+    what = f"T = {r.temperature:.4f}" if r.temperature is not None else f"{r.method} scaling"
+    out.print(f"{what}: {_how(r)}; calibrated output '{r.output}' -> {result.path}")
+
+
+def _how(r) -> str:
+    """One line on what the patch did to the graph."""
+    if r.folded:
+        how = "1/T folded into the weight and bias of the logits layer"
+        how += "; Softmax appended" if r.rewrite == "append-softmax" else ""
+        how += "; Sigmoid appended" if r.rewrite == "append-sigmoid" else ""
+        return how
+    nodes = "Div" if r.method == "temperature" else "Mul + Add"
+    how = {
+        "insert-before-activation": f"{nodes} inserted before the existing activation",
+        "append-softmax": f"{nodes} + Softmax appended",
+        "append-sigmoid": f"{nodes} + Sigmoid appended",
+        "ml-log-probabilities": "classifier probabilities replaced by softmax(scaled log p)",
+    }.get(r.rewrite, r.rewrite)
+    if r.compute_dtype:
+        how += f", computed in {r.compute_dtype}"
+    return how
 
 
 @app.command()
@@ -435,7 +596,7 @@ def verify(
     data: DataSpec,
     runtime: dict,
 ) -> None:
-    """Check the patched model against softmax(original logits / T) computed in NumPy.
+    """Check the patched model against its NumPy reference, e.g. softmax(original logits / T).
 
     Exit 0 when every check passes, 1 when one fails, 2 on bad input.
     """
@@ -458,6 +619,16 @@ def calibrate(
     drop_logits: Annotated[
         bool, typer.Option("--drop-logits", help="Remove the logits output when a new output is added.")
     ] = False,
+    activation: ActivationOpt = None,
+    compute_dtype: ComputeDtypeOpt = None,
+    fold: FoldOpt = False,
+    method: MethodOpt = "temperature",
+    multilabel: MultilabelOpt = None,
+    l2: L2Opt = 0.0,
+    holdout: HoldoutOpt = 0.25,
+    seed: SeedOpt = 0,
+    bootstrap: BootstrapOpt = 200,
+    bins: BinsOpt = 15,
     force: ForceOpt = False,
     as_json: JsonOpt = False,
     quiet: QuietOpt = False,
@@ -477,8 +648,12 @@ def calibrate(
             output=output,
             output_name=output_name,
             drop_logits=drop_logits,
+            activation=activation,
+            compute_dtype=compute_dtype,
+            fold=fold,
             force=force,
             progress=progress,
+            options=FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins),
             **runtime,
         )
     if as_json:

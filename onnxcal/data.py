@@ -1330,3 +1330,37 @@ def check_labels(labels: np.ndarray, n: int, num_classes: int, source: str) -> n
             "check that the labels use the model's class indices",
         )
     return out
+
+
+def check_multilabel(labels: np.ndarray, n: int, num_labels: int, source: str) -> np.ndarray:
+    """Return an N x K 0/1 multi-label array as uint8 after checking it.
+
+    Raises
+    ------
+    OnnxcalError
+        Wrong shape, or values other than 0 and 1.
+    """
+    labels = np.asarray(labels)
+    if labels.ndim != 2 or labels.shape != (n, num_labels):
+        raise OnnxcalError(
+            f"multi-label labels in '{source}' have shape {labels.shape}, expected ({n}, {num_labels}): "
+            "one 0/1 column per model output",
+            "give an N x K array of 0 and 1",
+        )
+    if labels.dtype.kind not in "iubf":
+        raise OnnxcalError(f"labels in '{source}' have dtype {labels.dtype}, not numbers", "give 0 and 1")
+    bad = (labels != 0) & (labels != 1)
+    if bad.any():
+        i, j = (int(v) for v in np.argwhere(bad)[0])
+        raise OnnxcalError(
+            f"label {labels[i, j].item()!r} at row {i}, column {j} in '{source}' is not 0 or 1",
+            "multi-label labels must be 0 (absent) or 1 (present)",
+        )
+    return labels.astype(np.uint8)
+
+
+def check_label_array(labels: np.ndarray, n: int, num_classes: int, source: str) -> np.ndarray:
+    """Check class labels (1-D; 0/1 for a single-logit binary model) or an N x K multi-label array."""
+    if np.ndim(labels) == 2:
+        return check_multilabel(labels, n, num_classes, source)
+    return check_labels(labels, n, max(num_classes, 2), source)

@@ -2,17 +2,34 @@
 
 Plain functions over ``onnx.ModelProto``. A model passed in is never changed:
 rewrites work on a copy and return it, checked with
-``onnx.checker.check_model(full_check=True)``.
+``onnx.checker.check_model(full_check=True)``. ``docs/graph.md`` explains how
+the class scores are found and rewritten, with the ONNX operator spec
+references.
 
-The rewrites (one function each):
+Finding the scores (``find_scores``): walk back from the chosen output
+through ops that keep every class's values (Identity, Cast, Reshape,
+Flatten, Squeeze, Unsqueeze, Transpose, and on ai.onnx.ml probabilities
+Normalizer and ZipMap), tracking the class axis, to the last Softmax,
+LogSoftmax or Sigmoid, or to an ai.onnx.ml classifier's probability output.
 
-* ``_insert_before_activation`` — the class scores already pass through a
-  Softmax, LogSoftmax or Sigmoid: put ``Div(scores, T)`` in front of it, so
-  every output keeps its name, shape, dtype and meaning (drop-in).
-* ``_append_softmax`` — the output holds raw logits: add ``Div`` and
-  ``Softmax`` after it and expose the result as a new output.
-* ``_set_temperature`` — the model already carries an onnxcal record: replace
-  the temperature initializer instead of stacking a second Div.
+The rewrites (one function each), all built on ``_Surgery``, which gives
+unique deterministic names and notes every change so it can be undone:
+
+* ``_insert_before_activation``: the scores pass through a Softmax,
+  LogSoftmax or Sigmoid; put the scaling in front of it (drop-in).
+* ``_append_activation``: raw logits; add the scaling and a Softmax (per
+  class axis, also below opset 13) or Sigmoid as a new output.
+* ``_rewrite_ml``: probabilities from an ai.onnx.ml classifier; replace
+  them by softmax(scale(log max(p, tiny))) and recompute its label output.
+* ``_fold``: scale a Gemm / MatMul(+Add)'s weight and bias instead of
+  adding a Div.
+
+What goes in front of the activation is one function of type ``ScaleFn``,
+made by ``scale_fn`` from the fitted ``Scaling``: ``divide_by_temperature``
+(temperature scaling: ``Div(scores, T)``, T a scalar or one per label) or
+``multiply_add`` (vector and Platt scaling: ``Add(Mul(scores, w), b)``).
+Re-patching a patched model first undoes the previous patch (``unpatch``),
+so patches never stack.
 
 The calibration record is JSON in ``metadata_props`` under ``RECORD_KEY``.
 """
@@ -21,7 +38,9 @@ from __future__ import annotations
 
 import json
 import os
+from collections.abc import Callable, Iterator
 from dataclasses import asdict, dataclass, field, replace
+from functools import partial
 from pathlib import Path
 
 import numpy as np
@@ -31,20 +50,37 @@ from onnx import helper, numpy_helper
 from . import __version__
 from ._files import atomic_write_bytes, require_file
 from .errors import OnnxcalError
+from .scaling import Scaling, check_scaling
 
 RECORD_KEY = "onnxcal.calibration"
-RECORD_FORMAT = 1
+RECORD_FORMAT = 2
 DEFAULT_OUTPUT_NAME = "probabilities"
+ML_DOMAIN = "ai.onnx.ml"
 
 ACTIVATIONS = {"Softmax": "softmax", "LogSoftmax": "logsoftmax", "Sigmoid": "sigmoid"}
-# Ops that pass class scores through unchanged (values and class order kept).
-_PASS_THROUGH = {"Identity"}
+# What the user may ask for with --activation when the output holds raw logits.
+ACTIVATION_CHOICES = ("softmax", "sigmoid")
+COMPUTE_DTYPES = ("float32", "float64")
+# ai.onnx.ml classifiers whose second output holds class probabilities.
+_ML_CLASSIFIERS = {"LinearClassifier", "TreeEnsembleClassifier", "SVMClassifier"}
+# Ops that move class scores around without changing any class's values.
+_LAYOUT = {"Identity", "Cast", "Reshape", "Flatten", "Squeeze", "Unsqueeze", "Transpose"}
+_RESHAPES = {"Reshape", "Flatten", "Squeeze", "Unsqueeze"}
 _FLOAT_TYPES = {
     onnx.TensorProto.FLOAT,
     onnx.TensorProto.DOUBLE,
     onnx.TensorProto.FLOAT16,
     onnx.TensorProto.BFLOAT16,
 }
+_ELEM = {np.dtype(helper.tensor_dtype_to_np_dtype(e)).name: e for e in _FLOAT_TYPES}
+# Below this many bytes an initializer stays inside the .onnx file when the
+# model is saved with external data (onnx.save_model's own default).
+EXTERNAL_THRESHOLD = 1024
+
+
+def np_dtype(name: str) -> np.dtype:
+    """numpy dtype for a float dtype name, bfloat16 included (via onnx's ml_dtypes)."""
+    return np.dtype(helper.tensor_dtype_to_np_dtype(_ELEM[name]))
 
 
 # --------------------------------------------------------------------------
@@ -76,20 +112,38 @@ class ScoreSite:
     output : str
         The graph output chosen as class scores.
     scores : str
-        The tensor holding logits: the input of ``activation`` when there is
-        one, else the output itself.
+        The tensor the scaling applies to: the input of ``activation`` when
+        there is one, the output itself for raw logits, or the probability
+        tensor of an ai.onnx.ml classifier (``from_probabilities``).
     activation : str or None
         ``"softmax"``, ``"logsoftmax"``, ``"sigmoid"`` or None (raw logits).
+        ``"softmax"`` for an ai.onnx.ml classifier: softmax(log p) = p.
     node : int or None
-        Index in ``graph.node`` of the activation node.
+        Index in ``graph.node`` of the activation (or ML classifier) node.
     class_axis : int
-        Class axis of ``output``, non-negative.
+        Class axis of ``tensor``, non-negative.
     rank : int
-        Rank of ``output``.
+        Rank of ``tensor``.
     num_classes : int or None
         Size of the class axis when it is fixed in the graph.
     dtype : str
-        numpy dtype name of the scores.
+        numpy dtype name of ``scores``.
+    tensor : str
+        The tensor holding the output's values: the output itself, or the
+        probability tensor a ZipMap turns into a sequence of maps.
+    layout : tuple of int
+        Indices of the layout nodes (Transpose, Reshape, ...) between the
+        activation and ``tensor``, in order; ``expose_scores`` replays them on
+        the logits so captured rows line up with the output.
+    from_probabilities : bool
+        True when ``scores`` holds probabilities from an ai.onnx.ml classifier;
+        the logits are then log(max(p, tiny)).
+    output_dtype : str
+        numpy dtype name of ``tensor``.
+    scores_axis, scores_rank : int
+        Class axis and rank of ``scores`` (where per-class parameters
+        broadcast); they differ from ``class_axis``/``rank`` when layout ops
+        sit between the activation and the output.
     """
 
     output: str
@@ -100,6 +154,12 @@ class ScoreSite:
     rank: int
     num_classes: int | None
     dtype: str
+    tensor: str = ""
+    layout: tuple[int, ...] = ()
+    from_probabilities: bool = False
+    output_dtype: str = ""
+    scores_axis: int = 1
+    scores_rank: int = 2
 
 
 @dataclass(frozen=True)
@@ -114,6 +174,8 @@ class ModelInfo:
     site: ScoreSite | None
     batch_fixed: bool
     record: Record | None = None
+    external_data: tuple[str, ...] = ()
+    site_problem: str | None = None
 
     def to_dict(self) -> dict:
         d = asdict(self)
@@ -127,29 +189,52 @@ class Record:
 
     Attributes
     ----------
-    temperature : float
-        T; the scores are divided by it.
+    temperature : float or None
+        T when the method is temperature scaling with one T; else None
+        (see ``parameters``).
     output : str
         The output that carries calibrated probabilities.
     scores : str
-        The tensor divided by T.
+        The tensor divided by T (in the uncalibrated model).
     rewrite : str
-        ``"insert-before-activation"`` or ``"append-softmax"``.
+        ``"insert-before-activation"``, ``"append-softmax"``,
+        ``"append-sigmoid"`` or ``"ml-log-probabilities"``.
     activation : str
-        The activation after the Div (``"softmax"``, ``"logsoftmax"``, ...).
+        The meaning of ``output`` (``"softmax"``, ``"logsoftmax"``,
+        ``"sigmoid"``).
     temperature_initializer : str
-        Name of the initializer holding T.
+        Name of the initializer holding T ("" when folded or when the
+        method has no single T).
     source_sha256 : str
         SHA-256 of the uncalibrated model file.
     source_path : str
         Path of the uncalibrated model when it was patched.
     fit : dict
-        Fit summary (method, metrics before/after), as in FIT.json.
+        Fit summary (method, metrics, intervals), as in FIT.json.
+    method : str
+        ``"temperature"``, ``"vector"`` or ``"platt"``.
+    parameters : dict
+        The baked-in parameters (``{"temperature": T}``, ``{"w": ..., "b": ...}``).
+    initializers : dict
+        Name of the initializer holding each parameter (empty when folded).
+    kind : str
+        ``"multiclass"``, ``"binary"`` or ``"multilabel"``.
+    folded : bool
+        T was folded into the weight and bias of ``changes["scaled"]``.
+    compute_dtype : str or None
+        The dtype the scaling and activation run in, when Casts were added.
+    source_output : str
+        The output chosen in the uncalibrated model.
+    changes : dict
+        What the patch added or renamed, so that it can be undone:
+        ``nodes``, ``initializers``, ``outputs`` (names added), ``renamed``
+        (tensor name now -> before), ``dropped`` ([index, name] of a removed
+        output), ``scaled`` (initializers divided by T when folded).
     onnxcal_version : str
     format : int
     """
 
-    temperature: float
+    temperature: float | None
     output: str
     scores: str
     rewrite: str
@@ -158,25 +243,107 @@ class Record:
     source_sha256: str
     source_path: str
     fit: dict = field(default_factory=dict)
+    method: str = "temperature"
+    parameters: dict = field(default_factory=dict)
+    initializers: dict = field(default_factory=dict)
+    kind: str = "multiclass"
+    folded: bool = False
+    compute_dtype: str | None = None
+    source_output: str = ""
+    changes: dict = field(default_factory=dict)
     onnxcal_version: str = __version__
     format: int = RECORD_FORMAT
 
     def to_dict(self) -> dict:
         return asdict(self)
 
+    @property
+    def scaling(self) -> Scaling:
+        """The calibration map the record describes."""
+        parameters = self.parameters or {"temperature": self.temperature}
+        return Scaling(self.method, dict(parameters), self.kind)
+
+
+def _tensors(graph: onnx.GraphProto) -> Iterator[onnx.TensorProto]:
+    """Every tensor of a graph: initializers, Constant values, subgraphs'."""
+    yield from graph.initializer
+    for node in graph.node:
+        for a in node.attribute:
+            if a.type == onnx.AttributeProto.TENSOR:
+                yield a.t
+            elif a.type == onnx.AttributeProto.TENSORS:
+                yield from a.tensors
+            elif a.type == onnx.AttributeProto.GRAPH:
+                yield from _tensors(a.g)
+            elif a.type == onnx.AttributeProto.GRAPHS:
+                for g in a.graphs:
+                    yield from _tensors(g)
+
+
+def _external_locations(model: onnx.ModelProto) -> list[str]:
+    locations = []
+    for t in _tensors(model.graph):
+        if t.data_location == onnx.TensorProto.EXTERNAL:
+            entry = {e.key: e.value for e in t.external_data}
+            locations.append(entry.get("location", ""))
+    return sorted(set(locations))
+
+
+def _check_locations(locations: list[str], model_path: Path) -> tuple[Path, ...]:
+    """Resolve external-data locations; refuse any outside the model's directory."""
+    base = model_path.resolve().parent
+    files = []
+    for loc in locations:
+        rel = Path(loc)
+        target = (base / rel).resolve()
+        outside = rel.is_absolute() or ".." in rel.parts or not target.is_relative_to(base)
+        if outside or not loc:
+            raise OnnxcalError(
+                f"'{model_path}' keeps weights at external location '{loc}', which is "
+                "outside the model's directory (absolute path, '..' or a symlink leading out)",
+                "keep the external data files beside the .onnx file, named relative to it",
+            )
+        if (base / rel).is_symlink():  # onnx's loader refuses links too
+            raise OnnxcalError(
+                f"external data file '{loc}' of '{model_path}' is a symbolic link, which "
+                "onnx will not read through",
+                "put the weights file itself beside the .onnx file",
+            )
+        if not target.is_file():
+            raise OnnxcalError(
+                f"external data file '{loc}' of '{model_path}' is not in '{base}'",
+                "copy the weights file beside the .onnx file",
+            )
+        files.append(target)
+    return tuple(files)
+
+
+def external_data_files(path: str | os.PathLike) -> tuple[Path, ...]:
+    """The external data files a model file uses (checked to lie beside it)."""
+    p = require_file(path, "model")
+    try:
+        model = onnx.load(str(p), load_external_data=False)
+    except Exception:  # load_model reports unreadable files
+        return ()
+    return _check_locations(_external_locations(model), p)
+
 
 def load_model(path: str | os.PathLike) -> onnx.ModelProto:
     """Load and check an ONNX model file, with errors that name the file.
 
+    External data are read from the model's directory; a location outside
+    it (absolute, ``..``, a symlink leading out) is refused before any read.
+
     Raises
     ------
     OnnxcalError
-        The file is missing, is not an ONNX model, or fails onnx's checker.
+        The file is missing, is not an ONNX model, fails onnx's checker, or
+        points outside its directory for external data.
     """
     p = require_file(path, "model")
     try:
-        model = onnx.load(str(p))
-    except Exception as exc:  # protobuf DecodeError, external-data errors, ...
+        model = onnx.load(str(p), load_external_data=False)
+    except Exception as exc:  # protobuf DecodeError, ...
         raise OnnxcalError(
             f"'{p}' is not a readable ONNX model ({type(exc).__name__}: {exc})",
             "give the path of an .onnx file exported by your framework",
@@ -186,6 +353,14 @@ def load_model(path: str | os.PathLike) -> onnx.ModelProto:
             f"'{p}' is not an ONNX model (no IR version or no graph outputs)",
             "give the path of an .onnx file exported by your framework",
         )
+    if _check_locations(_external_locations(model), p):
+        try:
+            onnx.external_data_helper.load_external_data_for_model(model, str(p.resolve().parent))
+        except Exception as exc:
+            raise OnnxcalError(
+                f"cannot read the external data of '{p}': {str(exc).splitlines()[0]}",
+                "check that the weights file beside it is complete",
+            ) from exc
     try:
         onnx.checker.check_model(model)
     except Exception as exc:
@@ -213,14 +388,25 @@ def _dims(vi: onnx.ValueInfoProto) -> tuple[int | str | None, ...] | None:
     )
 
 
+def _type_name(tp: onnx.TypeProto) -> str:
+    kind = tp.WhichOneof("value")
+    if kind == "tensor_type":
+        elem = tp.tensor_type.elem_type
+        return np.dtype(helper.tensor_dtype_to_np_dtype(elem)).name if elem else "unknown"
+    if kind == "sequence_type":
+        return f"seq({_type_name(tp.sequence_type.elem_type)})"
+    if kind == "map_type":
+        key = np.dtype(helper.tensor_dtype_to_np_dtype(tp.map_type.key_type)).name
+        return f"map({key}, {_type_name(tp.map_type.value_type)})"
+    return kind or "unknown"
+
+
 def tensor_spec(vi: onnx.ValueInfoProto) -> TensorSpec:
     """Describe a ValueInfoProto as a TensorSpec."""
-    kind = vi.type.WhichOneof("value")
-    if kind != "tensor_type":
-        return TensorSpec(vi.name, kind or "unknown", None, False)
+    if vi.type.WhichOneof("value") != "tensor_type":
+        return TensorSpec(vi.name, _type_name(vi.type), None, False)
     elem = vi.type.tensor_type.elem_type
-    dtype = np.dtype(helper.tensor_dtype_to_np_dtype(elem)).name if elem else "unknown"
-    return TensorSpec(vi.name, dtype, _dims(vi), elem in _FLOAT_TYPES)
+    return TensorSpec(vi.name, _type_name(vi.type), _dims(vi), elem in _FLOAT_TYPES)
 
 
 def _producers(graph: onnx.GraphProto) -> dict[str, int]:
@@ -234,12 +420,114 @@ def _attr(node: onnx.NodeProto, name: str, default):
     return default
 
 
-def _pick_output(graph: onnx.GraphProto, output: str | None) -> TensorSpec:
+class _Shapes:
+    """Shapes of a graph's tensors: declared ones, else from shape inference (lazily)."""
+
+    def __init__(self, model: onnx.ModelProto) -> None:
+        self._model = model
+        g = model.graph
+        self._known = {vi.name: vi for vi in [*g.input, *g.output, *g.value_info]}
+        self._inferred: dict[str, onnx.ValueInfoProto] | None = None
+
+    def _info(self, name: str) -> onnx.ValueInfoProto | None:
+        vi = self._known.get(name)
+        if (vi is None or _dims(vi) is None) and self._inferred is None:
+            try:
+                inferred = onnx.shape_inference.infer_shapes(self._model)
+                self._inferred = {v.name: v for v in inferred.graph.value_info}
+            except Exception:  # inference is best effort; callers handle None
+                self._inferred = {}
+        if vi is None or _dims(vi) is None:
+            vi = (self._inferred or {}).get(name, vi)
+        return vi
+
+    def shape(self, name: str) -> tuple[int | str | None, ...] | None:
+        vi = self._info(name)
+        return _dims(vi) if vi is not None else None
+
+    def dtype(self, name: str) -> str | None:
+        vi = self._info(name)
+        if vi is None or not vi.type.tensor_type.elem_type:
+            return None
+        return _type_name(vi.type)
+
+
+def _is_activation(node: onnx.NodeProto) -> bool:
+    return node.op_type in ACTIVATIONS and node.domain in ("", "ai.onnx")
+
+
+def _is_ml_classifier(node: onnx.NodeProto, tensor: str) -> bool:
+    return (
+        node.domain == ML_DOMAIN
+        and node.op_type in _ML_CLASSIFIERS
+        and len(node.output) > 1
+        and node.output[1] == tensor
+    )
+
+
+def _is_probability_pass(node: onnx.NodeProto) -> bool:
+    """Ops that keep a probability vector as it is (ai.onnx.ml)."""
+    if node.domain != ML_DOMAIN:
+        return False
+    return node.op_type == "ZipMap" or (
+        node.op_type == "Normalizer" and _attr(node, "norm", b"MAX") in (b"L1", "L1")
+    )
+
+
+def _rank(shape) -> int | None:
+    return len(shape) if shape is not None else None
+
+
+def _same_dims(a, b) -> bool:
+    """Products of two dim lists are equal (symbolic dims compared by name)."""
+    if any(d is None for d in [*a, *b]):
+        return False
+    ints_a = int(np.prod([d for d in a if isinstance(d, int)], dtype=np.int64))
+    ints_b = int(np.prod([d for d in b if isinstance(d, int)], dtype=np.int64))
+    syms_a = sorted(d for d in a if isinstance(d, str))
+    syms_b = sorted(d for d in b if isinstance(d, str))
+    return ints_a == ints_b and syms_a == syms_b
+
+
+def _axis_through_reshape(axis: int, before, after) -> int | None:
+    """Where the class axis ends up when a reshape keeps it whole, else None.
+
+    The class axis survives when some output axis has its size and the same
+    product of sizes in front of it.
+    """
+    if before is None or after is None:
+        return None
+    k = before[axis]
+    if len(after) == 1 and k == 1:  # (n, 1) squeezed to (n,): one logit per sample
+        return 0
+    for j, d in enumerate(after):
+        if d == k and _same_dims(before[:axis], after[:j]):
+            return j
+    return None
+
+
+def _axis_forward(node: onnx.NodeProto, axis: int, shapes: _Shapes) -> int | None:
+    """Class axis of ``node``'s output given that of its input (None: lost)."""
+    if node.op_type in ("Identity", "Cast") or _is_probability_pass(node):
+        return axis
+    if node.op_type == "Transpose":
+        rank = _rank(shapes.shape(node.input[0]))
+        perm = list(_attr(node, "perm", [])) or (list(range(rank))[::-1] if rank else [])
+        return perm.index(axis) if axis in perm else None
+    return _axis_through_reshape(axis, shapes.shape(node.input[0]), shapes.shape(node.output[0]))
+
+
+def _pick_output(graph: onnx.GraphProto, output: str | None, producers: dict[str, int]) -> TensorSpec:
     specs = [tensor_spec(vi) for vi in graph.output]
+
+    def usable(s: TensorSpec) -> bool:  # float tensors, and ZipMap outputs
+        zipmap = s.name in producers and graph.node[producers[s.name]].op_type == "ZipMap"
+        return s.is_float or zipmap
+
     if output is not None:
         for s in specs:
             if s.name == output:
-                if not s.is_float:
+                if not usable(s):
                     raise OnnxcalError(
                         f"output '{output}' has element type {s.dtype}, not a float type",
                         "choose the output that holds class scores",
@@ -247,66 +535,220 @@ def _pick_output(graph: onnx.GraphProto, output: str | None) -> TensorSpec:
                 return s
         names = ", ".join(s.name for s in specs)
         raise OnnxcalError(f"the model has no output named '{output}'", f"choose one of: {names}")
-    floats = [s for s in specs if s.is_float]
+    floats = [s for s in specs if usable(s)]
     if not floats:
         kinds = ", ".join(f"{s.name} ({s.dtype})" for s in specs)
         raise OnnxcalError(
             f"the model has no floating-point output to calibrate (outputs: {kinds})",
             "onnxcal needs an output of class scores or probabilities",
         )
-    # Prefer an output shaped like (batch, classes).
-    ranked = [s for s in floats if s.shape is not None and len(s.shape) >= 2]
+    # Prefer an output shaped like (batch, classes), or a ZipMap's.
+    ranked = [s for s in floats if s.shape is None or len(s.shape) >= 2]
     return (ranked or floats)[0]
 
 
 def find_scores(model: onnx.ModelProto, output: str | None = None) -> ScoreSite:
     """Locate the class scores behind ``output`` (or the likeliest output).
 
-    Walks back from the output through ops that pass values through
-    unchanged to the last Softmax, LogSoftmax or Sigmoid, if there is one.
+    Walks back from the output through ops that keep every class's values
+    (tracking the class axis) to the last Softmax, LogSoftmax or Sigmoid, or
+    to an ai.onnx.ml classifier's probabilities. Without either, the output
+    holds raw logits with the class axis 1 (NCHW-style layouts; common
+    practice).
 
     Raises
     ------
     OnnxcalError
-        No such output, no float output, or a class axis that does not fit.
+        No such output, no float output, a class axis that does not fit or
+        is lost on the way, or a Softmax below opset 13 that normalises over
+        more than the class axis.
     """
     graph = model.graph
-    spec = _pick_output(graph, output)
-    rank = len(spec.shape) if spec.shape is not None else 2
     producers = _producers(graph)
-    tensor, node_idx, activation = spec.name, None, None
-    axis = -1 if opset_version(model) >= 13 else 1
+    spec = _pick_output(graph, output, producers)
+    shapes = _Shapes(model)
+    chain: list[int] = []  # nodes walked through, from the output backwards
+    tensor = spec.name
     while tensor in producers:
-        node = graph.node[producers[tensor]]
-        if node.op_type in ACTIVATIONS and node.domain in ("", "ai.onnx"):
-            node_idx, activation = producers[tensor], ACTIVATIONS[node.op_type]
-            default = -1 if opset_version(model) >= 13 else 1
-            axis = int(_attr(node, "axis", default)) if activation != "sigmoid" else -1
-            tensor = node.input[0]
-            break
-        if node.op_type in _PASS_THROUGH:
+        i = producers[tensor]
+        node = graph.node[i]
+        if _is_activation(node):
+            return _activation_site(model, spec, i, chain, shapes)
+        if _is_ml_classifier(node, tensor):
+            return _ml_site(spec, i, node, chain, shapes, graph)
+        if (node.op_type in _LAYOUT and node.domain in ("", "ai.onnx")) or _is_probability_pass(node):
+            chain.append(i)
             tensor = node.input[0]
             continue
         break
-    if activation is None:
-        tensor = spec.name
-    class_axis = axis + rank if axis < 0 else axis
-    if not 0 <= class_axis < rank:
-        raise OnnxcalError(
-            f"class axis {axis} is out of range for output '{spec.name}' of rank {rank}",
-            "check the model's Softmax axis",
-        )
-    size = spec.shape[class_axis] if spec.shape is not None else None
+    return _raw_site(spec, shapes)
+
+
+def _values_tensor(spec: TensorSpec, chain: list[int], graph: onnx.GraphProto) -> tuple[str, list[int]]:
+    """The tensor holding the output's values (a ZipMap's input) and the chain below it."""
+    if chain and graph.node[chain[0]].op_type == "ZipMap":
+        return graph.node[chain[0]].input[0], chain[1:]
+    return spec.name, chain
+
+
+def _follow_axis(
+    axis: int, chain: list[int], graph: onnx.GraphProto, shapes: _Shapes, what: str
+) -> int:
+    """Map the class axis forward through ``chain`` (given output-first)."""
+    for i in reversed(chain):
+        node = graph.node[i]
+        new = _axis_forward(node, axis, shapes)
+        if new is None:
+            raise OnnxcalError(
+                f"the {node.op_type} node '{node.name or node.output[0]}' after the {what} "
+                "does not keep the class axis whole (or its shapes are unknown)",
+                "choose an output whose class axis onnxcal can follow (--output)",
+            )
+        axis = new
+    return axis
+
+
+def _activation_site(
+    model: onnx.ModelProto, spec: TensorSpec, index: int, chain: list[int], shapes: _Shapes
+) -> ScoreSite:
+    graph = model.graph
+    node = graph.node[index]
+    activation = ACTIVATIONS[node.op_type]
+    scores = node.input[0]
+    tensor, chain = _values_tensor(spec, chain, graph)
+    in_shape = shapes.shape(scores)
+    rank = _rank(in_shape) or _rank(shapes.shape(tensor)) or 2
+    opset = opset_version(model)
+    if activation == "sigmoid":
+        axis = 1 if rank >= 2 else 0
+    else:
+        axis = int(_attr(node, "axis", -1 if opset >= 13 else 1))
+        if not -rank <= axis < rank:
+            raise OnnxcalError(
+                f"class axis {axis} is out of range for output '{spec.name}' of rank {rank}",
+                "check the model's Softmax axis",
+            )
+        axis %= rank
+        trailing = in_shape[axis + 1 :] if in_shape is not None else (None,) * (rank - axis - 1)
+        if opset < 13 and any(d != 1 for d in trailing):
+            # Softmax-1/11 coerce the input to 2-D around `axis` (ONNX operator
+            # spec, Softmax changelog): it normalises over axes axis..rank-1 jointly.
+            raise OnnxcalError(
+                f"the {node.op_type} of output '{spec.name}' (opset {opset}, axis {axis}, "
+                f"rank {rank}) normalises over axes {axis}..{rank - 1} jointly, not per class",
+                "onnxcal cannot calibrate this as class probabilities; re-export the model "
+                "with the Softmax on the class axis",
+            )
+    size = in_shape[axis] if in_shape is not None else None
+    out_axis = _follow_axis(axis, chain, graph, shapes, node.op_type)
+    out_shape = shapes.shape(tensor)
     return ScoreSite(
         output=spec.name,
-        scores=tensor,
+        scores=scores,
         activation=activation,
-        node=node_idx,
-        class_axis=class_axis,
+        node=index,
+        class_axis=out_axis,
+        rank=_rank(out_shape) or rank,
+        num_classes=size if isinstance(size, int) and size > 0 else None,
+        dtype=shapes.dtype(scores) or spec.dtype,
+        tensor=tensor,
+        layout=tuple(i for i in reversed(chain) if graph.node[i].op_type not in ("Identity", "Cast")),
+        output_dtype=shapes.dtype(tensor) or spec.dtype,
+        scores_axis=axis,
+        scores_rank=rank,
+    )
+
+
+def _ml_site(
+    spec: TensorSpec, index: int, node: onnx.NodeProto, chain: list[int], shapes: _Shapes, graph
+) -> ScoreSite:
+    tensor, chain = _values_tensor(spec, chain, graph)
+    if any(graph.node[i].op_type not in ("Identity", "Normalizer", "Cast") for i in chain):
+        raise OnnxcalError(
+            f"the probabilities of the {node.op_type} behind output '{spec.name}' are "
+            "reshaped on the way to it",
+            "choose the classifier's probability output itself with --output",
+        )
+    labels = _class_labels(node)
+    labels = labels.dims[0] if labels is not None else None
+    shape = shapes.shape(node.output[1])
+    k = shape[1] if shape is not None and len(shape) == 2 and isinstance(shape[1], int) else None
+    return ScoreSite(
+        output=spec.name,
+        scores=node.output[1],
+        activation="softmax",
+        node=index,
+        class_axis=1,
+        rank=2,
+        num_classes=k or labels,
+        dtype=shapes.dtype(node.output[1]) or "float32",
+        tensor=tensor,
+        from_probabilities=True,
+        output_dtype=shapes.dtype(tensor) or "float32",
+    )
+
+
+def _raw_site(spec: TensorSpec, shapes: _Shapes) -> ScoreSite:
+    if not spec.is_float:
+        raise OnnxcalError(
+            f"output '{spec.name}' ({spec.dtype}) does not come from an ai.onnx.ml classifier "
+            "or an activation onnxcal knows",
+            "choose a tensor output of class scores with --output",
+        )
+    rank = len(spec.shape) if spec.shape is not None else 2
+    axis = 1 if rank >= 2 else 0
+    size = spec.shape[axis] if spec.shape is not None else None
+    if rank == 1:
+        size = 1
+    return ScoreSite(
+        output=spec.name,
+        scores=spec.name,
+        activation=None,
+        node=None,
+        class_axis=axis,
         rank=rank,
         num_classes=size if isinstance(size, int) and size > 0 else None,
         dtype=spec.dtype,
+        tensor=spec.name,
+        output_dtype=spec.dtype,
+        scores_axis=axis,
+        scores_rank=rank,
     )
+
+
+def fit_kind(site: ScoreSite, requested: str | None = None) -> str:
+    """How the calibrated scores become probabilities: ``"softmax"`` or ``"sigmoid"``.
+
+    An activation in the model decides; for raw logits ``requested`` (the
+    ``--activation`` option) does, else one logit means a sigmoid and more
+    mean a softmax (common practice).
+
+    Raises
+    ------
+    OnnxcalError
+        ``requested`` is not a known choice or contradicts the model.
+    """
+    if requested is not None and requested not in ACTIVATION_CHOICES:
+        raise OnnxcalError(
+            f"--activation {requested!r} is not one of: {', '.join(ACTIVATION_CHOICES)}"
+        )
+    if site.activation is not None:
+        kind = "sigmoid" if site.activation == "sigmoid" else "softmax"
+        if requested is not None and requested != kind:
+            what = "an ai.onnx.ml classifier" if site.from_probabilities else site.activation
+            raise OnnxcalError(
+                f"output '{site.output}' already comes from {what}, so --activation "
+                f"{requested} does not apply",
+                "leave out --activation",
+            )
+        return kind
+    single = site.num_classes == 1 or site.rank == 1
+    if requested == "softmax" and single:
+        raise OnnxcalError(
+            f"output '{site.output}' holds one logit per sample; a softmax over one value is always 1",
+            "use --activation sigmoid (or leave it out)",
+        )
+    return requested or ("sigmoid" if single else "softmax")
 
 
 def read_record(model: onnx.ModelProto) -> Record | None:
@@ -321,7 +763,15 @@ def read_record(model: onnx.ModelProto) -> Record | None:
         if prop.key == RECORD_KEY:
             try:
                 data = json.loads(prop.value)
-                return Record(**data)
+                record = Record(**data)
+                if not record.parameters and record.temperature is not None:  # written before vector scaling
+                    record = replace(
+                        record,
+                        parameters={"temperature": record.temperature},
+                        initializers={"temperature": record.temperature_initializer}
+                        if record.temperature_initializer else {},
+                    )
+                return record
             except (ValueError, TypeError) as exc:
                 raise OnnxcalError(
                     f"the model's calibration record ({RECORD_KEY}) is damaged: {exc}",
@@ -330,16 +780,22 @@ def read_record(model: onnx.ModelProto) -> Record | None:
     return None
 
 
-def describe(model: onnx.ModelProto, path: str | os.PathLike, sha256: str) -> ModelInfo:
+def describe(
+    model: onnx.ModelProto,
+    path: str | os.PathLike,
+    sha256: str,
+    external_data: tuple[str, ...] = (),
+) -> ModelInfo:
     """Summarise a model for ``inspect``."""
     graph = model.graph
     init_names = {i.name for i in graph.initializer}
     inputs = tuple(tensor_spec(vi) for vi in graph.input if vi.name not in init_names)
     record = read_record(model)
+    problem = None
     try:  # a patched model: describe the calibrated output
         site = find_scores(model, record.output if record else None)
-    except OnnxcalError:
-        site = None
+    except OnnxcalError as exc:
+        site, problem = None, str(exc)
     batch_fixed = any(
         s.shape is not None and len(s.shape) > 0 and isinstance(s.shape[0], int) for s in inputs
     )
@@ -352,15 +808,68 @@ def describe(model: onnx.ModelProto, path: str | os.PathLike, sha256: str) -> Mo
         site=site,
         batch_fixed=batch_fixed,
         record=record,
+        external_data=tuple(external_data),
+        site_problem=problem,
     )
 
 
-def temperature_value(model: onnx.ModelProto, record: Record) -> float | None:
-    """The value of the record's temperature initializer in the graph, or None."""
+def _initializer(graph: onnx.GraphProto, name: str) -> onnx.TensorProto | None:
+    return next((i for i in graph.initializer if i.name == name), None)
+
+
+def temperature_value(
+    model: onnx.ModelProto, record: Record, original: onnx.ModelProto | None = None
+) -> float | None:
+    """The temperature the graph applies, or None when it cannot be read.
+
+    For a folded model this is the least-squares ratio of the original's
+    weights to the patched ones (it needs ``original``).
+    """
+    if record.folded:
+        if original is None:
+            return None
+        num = den = 0.0
+        for name in record.changes.get("scaled", []):
+            a, b = _initializer(original.graph, name), _initializer(model.graph, name)
+            if a is None or b is None:
+                return None
+            w = numpy_helper.to_array(a).astype(np.float64).ravel()
+            v = numpy_helper.to_array(b).astype(np.float64).ravel()
+            num, den = num + float(w @ w), den + float(w @ v)
+        return num / den if den > 0 else None
+    init = _initializer(model.graph, record.temperature_initializer)
+    if init is None:
+        return None
+    arr = numpy_helper.to_array(init)
+    return float(arr.reshape(-1)[0]) if arr.size == 1 else None
+
+
+def parameter_values(
+    model: onnx.ModelProto, record: Record, original: onnx.ModelProto | None = None
+) -> dict[str, np.ndarray] | None:
+    """The values of the record's parameters as the graph holds them, or None.
+
+    For a folded model only T exists, estimated from the weights (see
+    :func:`temperature_value`).
+    """
+    if record.folded:
+        t = temperature_value(model, record, original)
+        return None if t is None else {"temperature": np.array([t])}
+    inits = record.initializers or {"temperature": record.temperature_initializer}
+    found = {k: _initializer(model.graph, n) for k, n in inits.items()}
+    if any(v is None for v in found.values()):
+        return None
+    return {k: numpy_helper.to_array(v).astype(np.float64).reshape(-1) for k, v in found.items()}
+
+
+def temperature_dtype(model: onnx.ModelProto, record: Record) -> str | None:
+    """The dtype T is held in: its initializer's, or the folded weights'."""
+    names = record.changes.get("scaled", []) if record.folded else list(
+        (record.initializers or {"temperature": record.temperature_initializer}).values()
+    )
     for init in model.graph.initializer:
-        if init.name == record.temperature_initializer:
-            arr = numpy_helper.to_array(init)
-            return float(arr.reshape(-1)[0]) if arr.size == 1 else None
+        if init.name in names:
+            return np.dtype(helper.tensor_dtype_to_np_dtype(init.data_type)).name
     return None
 
 
@@ -389,82 +898,422 @@ def _all_names(graph: onnx.GraphProto) -> set[str]:
         names.update(node.input)
         names.update(node.output)
         names.add(node.name)
+        for a in node.attribute:  # names inside subgraphs may not be reused either
+            for g in [a.g] if a.type == onnx.AttributeProto.GRAPH else list(a.graphs):
+                names |= _all_names(g)
     return names
 
 
-def _temperature_tensor(name: str, temperature: float, dtype: str) -> onnx.TensorProto:
-    return numpy_helper.from_array(np.array(temperature, dtype=np.dtype(dtype)), name=name)
+def _scalar(name: str, value: float, dtype: str) -> onnx.TensorProto:
+    return numpy_helper.from_array(np.array(value, dtype=np_dtype(dtype)), name=name)
+
+
+class _Surgery:
+    """Adds nodes and initializers to a graph under unique names, noting every change.
+
+    ``changes`` ends up in the record; ``unpatch`` reads it to undo the patch.
+    """
+
+    def __init__(self, graph: onnx.GraphProto) -> None:
+        self.graph = graph
+        self.taken = _all_names(graph)
+        self.nodes: list[onnx.NodeProto] = []
+        self.changes: dict = {"nodes": [], "initializers": [], "outputs": [], "renamed": {}}
+        self.parameters: dict[str, str] = {}  # role -> initializer name (e.g. "temperature")
+
+    def name(self, base: str) -> str:
+        return unique_name(base, self.taken)
+
+    def constant(self, base: str, tensor: onnx.TensorProto) -> str:
+        tensor.name = self.name(base)
+        self.graph.initializer.append(tensor)
+        self.changes["initializers"].append(tensor.name)
+        return tensor.name
+
+    def node(self, op: str, inputs: list[str], out: str, output: str | None = None, **attrs) -> str:
+        """Queue ``op``; its output is ``output`` or a new name from ``out``."""
+        result = output or self.name(out)
+        name = self.name(f"onnxcal_{op.lower()}")
+        self.nodes.append(helper.make_node(op, inputs, [result], name=name, **attrs))
+        self.changes["nodes"].append(name)
+        return result
+
+    def flush(self, index: int) -> None:
+        """Insert the queued nodes at ``index`` of ``graph.node``."""
+        for j, node in enumerate(self.nodes):
+            self.graph.node.insert(index + j, node)
+        self.nodes = []
+
+    def value_info(self, vi: onnx.ValueInfoProto) -> None:
+        self.graph.value_info.append(vi)
+        self.changes.setdefault("value_info", []).append(vi.name)
+
+    def rename_output(self, node: onnx.NodeProto, slot: int, base: str) -> str:
+        """Give ``node.output[slot]`` a new name (returned); the old name is freed for us."""
+        new = self.name(base)
+        self.changes["renamed"][new] = node.output[slot]
+        node.output[slot] = new
+        return new
+
+    def rename_input(self, node: onnx.NodeProto, slot: int, new: str) -> None:
+        self.changes["renamed"][new] = node.input[slot]
+        node.input[slot] = new
+
+
+ScaleFn = Callable[[_Surgery, str, str], str]
+"""``scale(surgery, x, dtype) -> name``: add the nodes that scale the scores
+``x`` (of numpy dtype name ``dtype``) and return the scaled tensor's name.
+Initializers it adds go in ``surgery.parameters`` by role."""
+
+
+_PARAMETER_NAMES = {"temperature": "onnxcal_temperature", "w": "onnxcal_scale", "b": "onnxcal_bias"}
+
+
+def _parameter(s: _Surgery, role: str, value, dtype: str, site: ScoreSite) -> str:
+    """A parameter initializer: a scalar, or one value per class shaped to
+    broadcast along the class axis of the scores (ONNX multidirectional
+    broadcasting aligns trailing dims; ONNX operator spec, Broadcasting)."""
+    arr = np.asarray(value, dtype=np_dtype(dtype))
+    if arr.ndim == 1:
+        arr = arr.reshape((arr.size,) + (1,) * (site.scores_rank - 1 - site.scores_axis))
+    name = s.constant(_PARAMETER_NAMES[role], numpy_helper.from_array(arr, ""))
+    s.parameters[role] = name
+    return name
+
+
+def divide_by_temperature(
+    surgery: _Surgery, x: str, dtype: str, *, temperature, site: ScoreSite
+) -> str:
+    """Temperature scaling: ``Div(x, T)``, T a scalar (or one per label) in ``dtype``.
+
+    References
+    ----------
+    Guo, Pleiss, Sun, Weinberger, "On Calibration of Modern Neural Networks",
+    ICML 2017, sec. 4.2.
+    """
+    t_name = _parameter(surgery, "temperature", temperature, dtype, site)
+    return surgery.node("Div", [x, t_name], f"{x}_calibrated")
+
+
+def multiply_add(surgery: _Surgery, x: str, dtype: str, *, w, b, site: ScoreSite) -> str:
+    """Vector scaling (per class) or Platt scaling (scalars): ``Add(Mul(x, w), b)``.
+
+    References
+    ----------
+    Guo et al. 2017, sec. 4.2 (vector scaling); Platt, "Probabilistic Outputs
+    for Support Vector Machines ...", 1999 (Platt scaling).
+    """
+    w_name = _parameter(surgery, "w", w, dtype, site)
+    b_name = _parameter(surgery, "b", b, dtype, site)
+    scaled = surgery.node("Mul", [x, w_name], f"{x}_scaled")
+    return surgery.node("Add", [scaled, b_name], f"{x}_calibrated")
+
+
+def scale_fn(scaling: Scaling, site: ScoreSite) -> ScaleFn:
+    """The ``ScaleFn`` that bakes ``scaling`` in front of ``site``'s activation."""
+    if scaling.method == "temperature":
+        return partial(divide_by_temperature, temperature=scaling.parameters["temperature"], site=site)
+    return partial(multiply_add, w=scaling.parameters["w"], b=scaling.parameters["b"], site=site)
+
+
+def _no_scaling(surgery: _Surgery, x: str, dtype: str) -> str:
+    """The scale when T is folded into the weights: nothing to add."""
+    return x
+
+
+def _scaled(surgery: _Surgery, x: str, dtype: str, scale: ScaleFn, compute: str | None) -> str:
+    """``scale(x)``, after a Cast to the compute dtype when one is asked for."""
+    if compute is None:
+        return scale(surgery, x, dtype)
+    cast = surgery.node("Cast", [x], f"{x}_{compute}", to=_ELEM[compute])
+    return scale(surgery, cast, compute)
+
+
+def _cast_back(surgery: _Surgery, y: str, dtype: str, compute: str | None, output: str) -> str:
+    """Cast ``y`` back to ``dtype`` under the name ``output`` (when a compute dtype was used)."""
+    return surgery.node("Cast", [y], output, output=output, to=_ELEM[dtype]) if compute else y
 
 
 def _insert_before_activation(
-    graph: onnx.GraphProto, site: ScoreSite, t_name: str, taken: set[str]
+    s: _Surgery, site: ScoreSite, scale: ScaleFn, compute: str | None
 ) -> None:
-    """Rewire the activation node to read ``Div(scores, T)``."""
-    scaled = unique_name(f"{site.scores}_calibrated", taken)
-    div = helper.make_node(
-        "Div", [site.scores, t_name], [scaled], name=unique_name("onnxcal_divide", taken)
-    )
-    act = graph.node[site.node]
-    act.input[0] = scaled
-    graph.node.insert(site.node, div)
+    """Rewire the activation to read ``scale(scores)``; its output keeps its name."""
+    s.rename_input(s.graph.node[site.node], 0, _scaled(s, site.scores, site.dtype, scale, compute))
+    index = site.node + len(s.nodes)  # where the activation is once the queue is in
+    s.flush(site.node)
+    if compute is not None:  # the activation now runs in `compute`; cast its result back
+        act = s.graph.node[index]
+        wanted = act.output[0]
+        inner = s.rename_output(act, 0, f"{wanted}_{compute}")
+        _cast_back(s, inner, site.dtype, compute, wanted)
+        s.flush(index + 1)
 
 
-def _append_softmax(
-    graph: onnx.GraphProto,
+def _softmax_on_axis(s: _Surgery, x: str, axis: int, rank: int, opset: int, output: str) -> str:
+    """Softmax over one axis, correct at every opset.
+
+    From opset 13 Softmax normalises over ``axis`` alone. Softmax-1/11 coerce
+    the input to 2-D around ``axis`` and normalise over all axes from it on
+    (ONNX operator spec, Softmax changelog), which is per-class only when
+    ``axis`` is the last: otherwise Transpose the class axis last, Softmax,
+    and Transpose back.
+    """
+    if opset >= 13 or axis == rank - 1:
+        return s.node("Softmax", [x], output, output=output, axis=axis)
+    perm = [i for i in range(rank) if i != axis] + [axis]
+    inverse = [int(i) for i in np.argsort(perm)]
+    moved = s.node("Transpose", [x], f"{x}_class_last", perm=perm)
+    probs = s.node("Softmax", [moved], f"{x}_class_last_softmax", axis=rank - 1)
+    return s.node("Transpose", [probs], output, output=output, perm=inverse)
+
+
+def _append_activation(
+    s: _Surgery,
     site: ScoreSite,
-    t_name: str,
-    taken: set[str],
+    scale: ScaleFn,
+    compute: str | None,
+    kind: str,
     new_output: str,
     drop_logits: bool,
+    opset: int,
 ) -> None:
-    """Add ``Softmax(Div(output, T))`` as a new graph output ``new_output``."""
-    scaled = unique_name(f"{site.output}_scaled", taken)
-    graph.node.append(
-        helper.make_node(
-            "Div", [site.output, t_name], [scaled], name=unique_name("onnxcal_divide", taken)
-        )
-    )
-    graph.node.append(
-        helper.make_node(
-            "Softmax",
-            [scaled],
-            [new_output],
-            name=unique_name("onnxcal_softmax", taken),
-            axis=site.class_axis,
-        )
-    )
-    old = next(vi for vi in graph.output if vi.name == site.output)
+    """Add ``activation(scale(output))`` as a new graph output ``new_output``."""
+    scaled = _scaled(s, site.output, site.dtype, scale, compute)
+    inner = s.name(f"{new_output}_{compute}") if compute else new_output
+    if kind == "sigmoid":
+        s.node("Sigmoid", [scaled], inner, output=inner)
+    else:
+        if site.rank is None:
+            raise OnnxcalError(f"the rank of output '{site.output}' is unknown", "re-export with shapes")
+        _softmax_on_axis(s, scaled, site.class_axis, site.rank, opset, inner)
+    _cast_back(s, inner, site.dtype, compute, new_output)
+    s.flush(len(s.graph.node))
+    old_index, old = next((i, vi) for i, vi in enumerate(s.graph.output) if vi.name == site.output)
     new_vi = onnx.ValueInfoProto()
     new_vi.CopyFrom(old)
     new_vi.name = new_output
     if drop_logits:
-        keep = [vi for vi in graph.output if vi.name != site.output]
-        del graph.output[:]
-        graph.output.extend(keep)
-    graph.output.append(new_vi)
+        del s.graph.output[old_index]
+        s.changes["dropped"] = [old_index, site.output]
+    s.graph.output.append(new_vi)
+    s.changes["outputs"].append(new_output)
 
 
-def _set_temperature(graph: onnx.GraphProto, record: Record, temperature: float) -> None:
-    """Replace the value of an existing temperature initializer."""
-    for i, init in enumerate(graph.initializer):
-        if init.name == record.temperature_initializer:
-            dtype = helper.tensor_dtype_to_np_dtype(init.data_type)
-            graph.initializer[i].CopyFrom(_temperature_tensor(init.name, temperature, dtype))
-            return
+def _class_labels(node: onnx.NodeProto) -> onnx.TensorProto | None:
+    # LinearClassifier and SVMClassifier call it classlabels_ints (ONNX-ML operator spec).
+    ints = _attr(node, "classlabels_int64s", None) or _attr(node, "classlabels_ints", None)
+    if ints:
+        return numpy_helper.from_array(np.array(ints, dtype=np.int64))
+    strings = _attr(node, "classlabels_strings", None)
+    if strings:
+        return helper.make_tensor("", onnx.TensorProto.STRING, [len(strings)], list(strings))
+    return None
+
+
+def _rewrite_ml(s: _Surgery, site: ScoreSite, scale: ScaleFn, compute: str | None) -> None:
+    """Calibrate an ai.onnx.ml classifier's probabilities through their logarithm.
+
+    softmax(log p / T) = softmax(z / T) for any logits z with p = softmax(z),
+    because softmax ignores a constant added to every class (common
+    practice). p is clamped to the dtype's smallest normal number first, so
+    a probability that underflowed to 0 stays finite. The classifier's label
+    output is recomputed as classlabels[argmax] of the new probabilities.
+    """
+    ml = s.graph.node[site.node]
+    p = ml.output[1]
+    raw = s.rename_output(ml, 1, f"{p}_uncalibrated")
+    # Type the renamed tensor: onnx infers none for some ai.onnx.ml ops
+    # (TreeEnsembleClassifier-1), and strict shape inference needs one.
+    s.value_info(helper.make_tensor_value_info(raw, _ELEM[site.dtype], [None, site.num_classes]))
+    tiny = s.constant("onnxcal_smallest_probability", _scalar("", np.finfo(np_dtype(site.dtype)).tiny, site.dtype))
+    logp = s.node("Log", [s.node("Max", [raw, tiny], f"{p}_clamped")], f"{p}_log")
+    scaled = _scaled(s, logp, site.dtype, scale, compute)
+    inner = s.name(f"{p}_{compute}") if compute else p
+    s.node("Softmax", [scaled], inner, output=inner, axis=1)
+    _cast_back(s, inner, site.dtype, compute, p)
+    classes = _class_labels(ml)
+    if ml.output[0] and classes is not None:
+        label = ml.output[0]
+        s.rename_output(ml, 0, f"{label}_uncalibrated")
+        index = s.node("ArgMax", [p], f"{label}_index", axis=1, keepdims=0)
+        s.node("Gather", [s.constant("onnxcal_class_labels", classes), index], label, output=label, axis=0)
+    s.flush(site.node + 1)
+
+
+# -- folding ---------------------------------------------------------------
+
+_QUANTIZED = {"QLinearMatMul", "MatMulInteger", "QGemm", "DequantizeLinear", "QLinearConv"}
+
+
+def _uses(graph: onnx.GraphProto) -> dict[str, int]:
+    counts: dict[str, int] = {}
+    for node in graph.node:
+        for name in node.input:
+            counts[name] = counts.get(name, 0) + 1
+        for a in node.attribute:  # subgraphs may read outer tensors
+            for g in [a.g] if a.type == onnx.AttributeProto.GRAPH else list(a.graphs):
+                for name, c in _uses(g).items():
+                    counts[name] = counts.get(name, 0) + c
+    for vi in graph.output:
+        counts[vi.name] = counts.get(vi.name, 0) + 1
+    return counts
+
+
+def _fold_targets(graph: onnx.GraphProto, site: ScoreSite, drop_logits: bool) -> list[str]:
+    """The weight and bias initializers whose scaling by 1/T scales the scores.
+
+    Raises
+    ------
+    OnnxcalError
+        The scores do not come straight from a Gemm or MatMul(+Add), or its
+        weight or bias is shared, quantized or not a constant.
+    """
+    producers, uses = _producers(graph), _uses(graph)
+    inits = {i.name: i for i in graph.initializer}
+    overridable = {vi.name for vi in graph.input}
+    why = "leave out --fold to insert a Div instead"
+    tensor = site.scores
+    # Each tensor on the way down has one reader: the activation (or, for raw
+    # logits, the output that --drop-logits removes), then the next node down.
+    if site.activation is None:
+        if not drop_logits:
+            raise OnnxcalError(
+                f"--fold would change the logits output '{site.output}' itself (to logits / T)",
+                "add --drop-logits to replace it by the probabilities, or " + why,
+            )
+    while True:
+        if uses.get(tensor, 0) != 1:
+            raise OnnxcalError(
+                f"--fold: tensor '{tensor}' is used by more than the activation, so scaling "
+                "its producer would change other outputs", why,
+            )
+        node = graph.node[producers[tensor]] if tensor in producers else None
+        if node is None:
+            raise OnnxcalError(f"--fold: the scores '{tensor}' are not computed by the graph", why)
+        if node.op_type in _RESHAPES | {"Identity", "Transpose"}:
+            tensor = node.input[0]
+            continue
+        break
+
+    def constant(name: str, role: str) -> str:
+        if node.op_type in _QUANTIZED or (name in producers and graph.node[producers[name]].op_type in _QUANTIZED):
+            raise OnnxcalError(f"--fold: the {role} of '{node.name or node.op_type}' is quantized", why)
+        if name not in inits or name in overridable:
+            raise OnnxcalError(
+                f"--fold: the {role} '{name}' of '{node.name or node.op_type}' is not a constant initializer", why
+            )
+        if inits[name].data_type not in _FLOAT_TYPES:
+            raise OnnxcalError(f"--fold: the {role} '{name}' is not floating point (quantized?)", why)
+        if uses.get(name, 0) != 1:
+            raise OnnxcalError(f"--fold: the {role} '{name}' is shared with other nodes", why)
+        return name
+
+    if node.op_type in _QUANTIZED:
+        raise OnnxcalError(f"--fold: the logits come from a quantized {node.op_type}", why)
+    if node.op_type == "Gemm":
+        return [constant(n, r) for n, r in zip(node.input[1:], ("weight", "bias")) if n]
+    bias = None
+    if node.op_type == "Add":
+        a, b = node.input
+        bias, mm = (b, a) if b in inits else (a, b)
+        mm_node = graph.node[producers[mm]] if mm in producers else None
+        if mm_node is None or mm_node.op_type != "MatMul" or uses.get(mm, 0) != 1:
+            raise OnnxcalError("--fold: the logits come from an Add that does not follow a MatMul", why)
+        node = mm_node
+    if node.op_type == "MatMul":
+        weight = next((n for n in node.input if n in inits), node.input[1])
+        return [constant(weight, "weight")] + ([constant(bias, "bias")] if bias else [])
     raise OnnxcalError(
-        f"the calibration record names initializer '{record.temperature_initializer}' "
-        "but the graph has none of that name",
-        "patch the original, uncalibrated model instead",
+        f"--fold: the logits come from a {node.op_type}, not a Gemm or MatMul(+Add)", why
     )
 
 
-def _write_record(model: onnx.ModelProto, record: Record) -> None:
+def _scale_initializers(graph: onnx.GraphProto, names: list[str], factor: float) -> None:
+    """Multiply initializers by ``factor`` in place (float64 product, rounded to their dtype)."""
+    for i, init in enumerate(graph.initializer):
+        if init.name in names:
+            arr = numpy_helper.to_array(init)
+            new = numpy_helper.from_array((arr.astype(np.float64) * factor).astype(arr.dtype), init.name)
+            graph.initializer[i].CopyFrom(new)
+
+
+def _fold(s: _Surgery, site: ScoreSite, temperature: float, drop_logits: bool) -> None:
+    """Scale the logits' weight and bias by 1/T in place: no extra op."""
+    names = _fold_targets(s.graph, site, drop_logits)
+    _scale_initializers(s.graph, names, 1.0 / temperature)
+    s.changes["scaled"] = names
+
+
+# -- records and undo ------------------------------------------------------
+
+
+def _write_record(model: onnx.ModelProto, record: Record | None) -> None:
     keep = [p for p in model.metadata_props if p.key != RECORD_KEY]
     del model.metadata_props[:]
     model.metadata_props.extend(keep)
-    entry = model.metadata_props.add()
-    entry.key = RECORD_KEY
-    entry.value = json.dumps(record.to_dict(), sort_keys=True)
+    if record is not None:
+        entry = model.metadata_props.add()
+        entry.key = RECORD_KEY
+        entry.value = json.dumps(record.to_dict(), sort_keys=True)
+
+
+def unpatch(model: onnx.ModelProto) -> onnx.ModelProto:
+    """A copy of a patched ``model`` with onnxcal's patch undone.
+
+    Exact for every rewrite that adds nodes; a folded model gets its weights
+    multiplied back by T, which is exact up to one rounding of the weights'
+    dtype.
+
+    Raises
+    ------
+    OnnxcalError
+        The record is from an older onnxcal that did not note its changes.
+    """
+    record = read_record(model)
+    out = onnx.ModelProto()
+    out.CopyFrom(model)
+    if record is None:
+        return out
+    ch = record.changes
+    if not ch:
+        raise OnnxcalError(
+            "the model's calibration record does not say what the patch changed "
+            f"(record format {record.format})",
+            "patch the original, uncalibrated model instead",
+        )
+    g = out.graph
+    added = set(ch["nodes"])
+    keep = [n for n in g.node if n.name not in added]
+    renamed = ch["renamed"]
+    for node in keep:
+        for i, name in enumerate(node.input):
+            node.input[i] = renamed.get(name, name)
+        for i, name in enumerate(node.output):
+            node.output[i] = renamed.get(name, name)
+    del g.node[:]
+    g.node.extend(keep)
+    inits = [i for i in g.initializer if i.name not in set(ch["initializers"])]
+    del g.initializer[:]
+    g.initializer.extend(inits)
+    infos = [vi for vi in g.value_info if vi.name not in set(ch.get("value_info", []))]
+    del g.value_info[:]
+    g.value_info.extend(infos)
+    outputs = list(g.output)
+    restored = None
+    if ch.get("dropped"):
+        index, name = ch["dropped"]
+        restored = onnx.ValueInfoProto()
+        restored.CopyFrom(next(vi for vi in outputs if vi.name in ch["outputs"]))
+        restored.name = name
+    outputs = [vi for vi in outputs if vi.name not in set(ch["outputs"])]
+    if restored is not None:
+        outputs.insert(index, restored)
+    del g.output[:]
+    g.output.extend(outputs)
+    if record.folded:
+        _scale_initializers(g, ch["scaled"], record.temperature)
+    _write_record(out, None)
+    return out
 
 
 def check_temperature(temperature: float) -> float:
@@ -481,9 +1330,64 @@ def check_temperature(temperature: float) -> float:
     return t
 
 
+def _site_scaling(calibration: float | Scaling, site: ScoreSite, activation: str | None) -> Scaling:
+    """The scaling to bake in, checked against the site it goes to.
+
+    A bare temperature becomes temperature scaling of the site's kind
+    (softmax: multiclass; sigmoid: binary for one logit, else multi-label).
+    """
+    if isinstance(calibration, Scaling):
+        scaling = check_scaling(calibration, site.num_classes)
+        # For raw logits the fitted scaling says what to append, unless --activation does.
+        requested = activation if (activation or site.activation) else scaling.activation
+        kind = fit_kind(site, requested)
+        if scaling.activation != kind:
+            raise OnnxcalError(
+                f"a {scaling.kind} calibration (for {scaling.activation} outputs) does not fit "
+                f"output '{site.output}', which is calibrated through a {kind}",
+                "fit it on logits captured from this output",
+            )
+        return scaling
+    kind = fit_kind(site, activation)
+    t = check_temperature(calibration)
+    if kind == "softmax":
+        return Scaling.of_temperature(t, "multiclass")
+    return Scaling.of_temperature(t, "binary" if site.num_classes == 1 or site.rank == 1 else "multilabel")
+
+
+def _check_options(
+    site: ScoreSite, compute_dtype: str | None, fold: bool, scaling: Scaling
+) -> str | None:
+    """Validate --compute-dtype and --fold against the site; the compute dtype to use."""
+    if compute_dtype is not None and compute_dtype not in COMPUTE_DTYPES:
+        raise OnnxcalError(
+            f"--compute-dtype {compute_dtype!r} is not one of: {', '.join(COMPUTE_DTYPES)}"
+        )
+    if fold and compute_dtype is not None:
+        raise OnnxcalError(
+            "--compute-dtype sets the dtype of the inserted Div, and with --fold there is none",
+            "give one of --fold and --compute-dtype",
+        )
+    if fold and scaling.temperature is None:
+        raise OnnxcalError(
+            f"--fold folds a single temperature into the weights; {scaling.method} scaling "
+            "with per-class or per-label parameters is inserted as nodes instead",
+            "leave out --fold",
+        )
+    if fold and site.from_probabilities:
+        raise OnnxcalError(
+            f"--fold: output '{site.output}' comes from an ai.onnx.ml classifier, which has "
+            "no logits layer to fold T into",
+            "leave out --fold",
+        )
+    if compute_dtype == site.dtype:
+        return None
+    return compute_dtype
+
+
 def patch(
     model: onnx.ModelProto,
-    temperature: float,
+    calibration: float | Scaling,
     *,
     source_sha256: str,
     source_path: str | os.PathLike,
@@ -491,17 +1395,23 @@ def patch(
     new_output: str = DEFAULT_OUTPUT_NAME,
     drop_logits: bool = False,
     fit: dict | None = None,
+    activation: str | None = None,
+    compute_dtype: str | None = None,
+    fold: bool = False,
 ) -> onnx.ModelProto:
-    """Return a copy of ``model`` whose output carries softmax(scores / T).
+    """Return a copy of ``model`` whose output carries calibrated probabilities.
 
     Parameters
     ----------
     model : onnx.ModelProto
-        Not modified.
-    temperature : float
-        T > 0.
+        Not modified. If it carries an onnxcal record, that patch is undone
+        first (see :func:`unpatch`), so patches never stack.
+    calibration : float or Scaling
+        A temperature T > 0, or a fitted scaling (temperature, vector, Platt,
+        per-label temperatures).
     source_sha256, source_path : str
-        Identify the uncalibrated model in the record.
+        Identify the uncalibrated model in the record (kept from the old
+        record when re-patching).
     output : str, optional
         The class-score output; the likeliest float output by default.
     new_output : str, default "probabilities"
@@ -510,48 +1420,69 @@ def patch(
         Remove the logits output when a new output is added.
     fit : dict, optional
         Fit summary stored in the record.
+    activation : {"softmax", "sigmoid"}, optional
+        What to append after raw logits (default: sigmoid for one logit,
+        softmax otherwise); must agree with an activation the model has.
+    compute_dtype : {"float32", "float64"}, optional
+        Run the Div and the activation in this dtype (Casts around them);
+        the output keeps its dtype.
+    fold : bool
+        Scale the weight and bias of the Gemm / MatMul(+Add) producing the
+        logits by 1/T instead of inserting a Div.
 
     Returns
     -------
     onnx.ModelProto
         Checked with ``onnx.checker.check_model(full_check=True)``.
     """
-    temperature = check_temperature(temperature)
-    out = onnx.ModelProto()
-    out.CopyFrom(model)
-    graph = out.graph
     previous = read_record(model)
+    out = unpatch(model)
     if previous is not None:
-        _set_temperature(graph, previous, temperature)
-        record = replace(previous, temperature=temperature, fit=fit or {})
+        source_sha256, source_path = previous.source_sha256, previous.source_path
+        output = output or previous.source_output or None
+    site = find_scores(out, output)
+    scaling = _site_scaling(calibration, site, activation)
+    kind = scaling.activation
+    compute = _check_options(site, compute_dtype, fold, scaling)
+    s = _Surgery(out.graph)
+    if fold:
+        _fold(s, site, scaling.temperature, drop_logits)
+    scale: ScaleFn = _no_scaling if fold else scale_fn(scaling, site)
+    if site.from_probabilities:
+        _rewrite_ml(s, site, scale, compute)
+        rewrite, calibrated = "ml-log-probabilities", site.output
+    elif site.activation is not None:
+        if not fold:
+            _insert_before_activation(s, site, scale, compute)
+        rewrite, calibrated = "insert-before-activation", site.output
     else:
-        site = find_scores(model, output)
-        taken = _all_names(graph)
-        t_name = unique_name("onnxcal_temperature", taken)
-        graph.initializer.append(_temperature_tensor(t_name, temperature, site.dtype))
-        if site.activation is not None:
-            _insert_before_activation(graph, site, t_name, taken)
-            rewrite, activation, calibrated = "insert-before-activation", site.activation, site.output
-        else:
-            if new_output in taken:
-                raise OnnxcalError(
-                    f"the model already has a tensor named '{new_output}'",
-                    "choose another name with --output-name",
-                )
-            taken.add(new_output)
-            _append_softmax(graph, site, t_name, taken, new_output, drop_logits)
-            rewrite, activation, calibrated = "append-softmax", "softmax", new_output
-        record = Record(
-            temperature=temperature,
-            output=calibrated,
-            scores=site.scores if site.activation else site.output,
-            rewrite=rewrite,
-            activation=activation,
-            temperature_initializer=t_name,
-            source_sha256=source_sha256,
-            source_path=str(source_path),
-            fit=fit or {},
-        )
+        if new_output in s.taken:
+            raise OnnxcalError(
+                f"the model already has a tensor named '{new_output}'",
+                "choose another name with --output-name",
+            )
+        s.taken.add(new_output)
+        _append_activation(s, site, scale, compute, kind, new_output, drop_logits, opset_version(out))
+        rewrite, calibrated = f"append-{kind}", new_output
+    record = Record(
+        temperature=scaling.temperature,
+        output=calibrated,
+        scores=site.scores,
+        rewrite=rewrite,
+        activation=site.activation or kind,
+        temperature_initializer=s.parameters.get("temperature", ""),
+        source_sha256=source_sha256,
+        source_path=str(source_path),
+        fit=fit or {},
+        method=scaling.method,
+        parameters=dict(scaling.parameters),
+        initializers=dict(s.parameters),
+        kind=scaling.kind,
+        folded=fold,
+        compute_dtype=compute,
+        source_output=site.output,
+        changes=s.changes,
+    )
     _write_record(out, record)
     try:
         onnx.checker.check_model(out, full_check=True)
@@ -585,6 +1516,63 @@ def expose(model: onnx.ModelProto, tensors: list[str]) -> onnx.ModelProto:
     return out
 
 
-def save_model(model: onnx.ModelProto, path: str | os.PathLike) -> None:
-    """Serialise ``model`` and write it atomically to ``path``."""
-    atomic_write_bytes(Path(path), model.SerializeToString())
+def expose_scores(model: onnx.ModelProto, site: ScoreSite) -> tuple[onnx.ModelProto, str]:
+    """A copy of ``model`` that outputs the logits laid out like ``site.tensor``.
+
+    When layout ops (Transpose, Reshape, ...) sit between the activation and
+    the output, they are replayed on the logits, so captured rows line up
+    with the output (and with per-pixel labels shaped like it).
+    """
+    out = onnx.ModelProto()
+    out.CopyFrom(model)
+    s = _Surgery(out.graph)
+    tensor = site.scores
+    for i in site.layout:
+        node = onnx.NodeProto()
+        node.CopyFrom(out.graph.node[i])
+        node.name = s.name(f"onnxcal_{node.op_type.lower()}")
+        node.input[0] = tensor
+        tensor = s.name(f"{site.scores}_{node.op_type.lower()}")
+        node.output[0] = tensor
+        s.nodes.append(node)
+    s.flush(len(out.graph.node))
+    return expose(out, [tensor]), tensor
+
+
+def _split_external(model: onnx.ModelProto, location: str) -> bytes:
+    """Move large initializers of ``model`` (in place) to one external-data blob."""
+    blob = bytearray()
+    for init in model.graph.initializer:
+        if init.HasField("raw_data") and len(init.raw_data) >= EXTERNAL_THRESHOLD:
+            raw = init.raw_data
+            entries = {"location": location, "offset": str(len(blob)), "length": str(len(raw))}
+            blob += raw
+            init.ClearField("raw_data")
+            init.data_location = onnx.TensorProto.EXTERNAL
+            del init.external_data[:]
+            for key, value in entries.items():
+                entry = init.external_data.add()
+                entry.key, entry.value = key, value
+    return bytes(blob)
+
+
+def external_data_path(path: str | os.PathLike) -> Path:
+    """Where ``save_model(..., external=True)`` puts the weights of ``path``."""
+    p = Path(path)
+    return p.with_name(p.name + ".data")
+
+
+def save_model(model: onnx.ModelProto, path: str | os.PathLike, *, external: bool = False) -> None:
+    """Serialise ``model`` and write it atomically to ``path``.
+
+    With ``external``, initializers of at least ``EXTERNAL_THRESHOLD`` bytes
+    go to ``<path>.data`` beside it (written first, also atomically).
+    """
+    if not external:
+        atomic_write_bytes(Path(path), model.SerializeToString())
+        return
+    copy = onnx.ModelProto()
+    copy.CopyFrom(model)
+    data = external_data_path(path)
+    atomic_write_bytes(data, _split_external(copy, data.name))
+    atomic_write_bytes(Path(path), copy.SerializeToString())

@@ -1,24 +1,61 @@
-"""Calibration metrics over logits and integer labels.
+"""Calibration metrics over logits and labels.
 
-Every function here is pure: arrays in, numbers or arrays out. The logits of a
-large validation set are processed in row chunks with float64 accumulation,
-so memory stays bounded by one chunk whatever the number of samples.
+Every function here is pure: arrays in, numbers or arrays out. ``evaluate``
+works through the logits of a large validation set in row chunks (float32
+in, float64 sums), so its temporaries stay a few MiB whatever the number of
+samples; it keeps one confidence and one correctness flag per prediction
+for the adaptive (equal-mass) ECE, whose bin edges need all of them.
 Drawing is elsewhere (``report``); this module only computes.
+
+Three kinds of classifier are scored (see :mod:`onnxcal.scaling`):
+``multiclass`` (softmax over K logits, integer labels), ``binary`` (one
+logit, sigmoid, 0/1 labels) and ``multilabel`` (K sigmoids, an N x K 0/1
+label array). Binary and multi-label predictions are scored entry by entry:
+each (sample, label) pair is one binary prediction whose top-label
+confidence is max(p, 1 - p).
 """
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from dataclasses import asdict, dataclass
 
 import numpy as np
 
+from .scaling import Scaling, kind_of
+
 DEFAULT_BINS = 15
-_CHUNK_ELEMENTS = 1 << 22  # float64 elements per chunk (32 MiB)
+# float64 elements per chunk: 512 KiB per temporary array, a handful at a time
+# (measured fastest on this machine among 2^15 to 2^20: larger chunks fall out
+# of cache and pay page faults for every temporary).
+_CHUNK_ELEMENTS = 1 << 16
 
 
 def chunk_rows(n_classes: int) -> int:
-    """Rows per chunk so one float64 chunk of ``n_classes`` columns is ~32 MiB."""
+    """Rows per chunk so one float64 chunk of ``n_classes`` columns is ~512 KiB."""
     return max(1, _CHUNK_ELEMENTS // max(1, n_classes))
+
+
+def iter_chunks(
+    logits: np.ndarray,
+    labels: np.ndarray,
+    rows: np.ndarray | None = None,
+    weights: np.ndarray | None = None,
+) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray | None]]:
+    """Yield ``(z, y, w)`` row chunks: logits as float64, labels, weights.
+
+    ``rows`` (sorted indices) restricts to a subset, gathered chunk by chunk
+    so no copy of the subset is made; ``weights`` has one entry per selected
+    row (bootstrap counts), or is None.
+    """
+    total = len(logits) if rows is None else len(rows)
+    step = chunk_rows(logits.shape[1])
+    for start in range(0, total, step):
+        pick = slice(start, start + step) if rows is None else rows[start : start + step]
+        z = np.asarray(logits[pick], dtype=np.float64)
+        y = np.asarray(labels[pick])
+        w = None if weights is None else np.asarray(weights[start : start + step], dtype=np.float64)
+        yield z, y, w
 
 
 def log_softmax(z: np.ndarray, axis: int = -1) -> np.ndarray:
@@ -47,8 +84,28 @@ def softmax(z: np.ndarray, axis: int = -1) -> np.ndarray:
     return np.exp(log_softmax(z, axis=axis))
 
 
+def sigmoid(z: np.ndarray) -> np.ndarray:
+    """The logistic function 1 / (1 + exp(-z)) in float64, without overflow.
+
+    Examples
+    --------
+    >>> sigmoid(np.array([0.0, 1e4, -1e4]))
+    array([0.5, 1. , 0. ])
+    """
+    z = np.asarray(z, dtype=np.float64)
+    e = np.exp(-np.abs(z))
+    return np.where(z >= 0, 1.0 / (1.0 + e), e / (1.0 + e))
+
+
+def _wsum(x: np.ndarray, w: np.ndarray | None) -> float:
+    return float(x.sum() if w is None else x @ w)
+
+
 def reliability_bins(
-    confidence: np.ndarray, correct: np.ndarray, n_bins: int = DEFAULT_BINS
+    confidence: np.ndarray,
+    correct: np.ndarray,
+    n_bins: int = DEFAULT_BINS,
+    weights: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per-bin sample counts, summed confidence and summed correctness.
 
@@ -63,16 +120,51 @@ def reliability_bins(
         1 where the prediction is right, else 0.
     n_bins : int
         Number of bins M.
+    weights : ndarray of shape (n,), optional
+        Weight of each sample (e.g. bootstrap counts).
 
     Returns
     -------
     counts, confidence_sum, correct_sum : ndarray of shape (n_bins,)
     """
-    edges = np.linspace(0.0, 1.0, n_bins + 1)
-    ids = np.searchsorted(edges[1:-1], confidence, side="left")
-    counts = np.bincount(ids, minlength=n_bins).astype(np.float64)
-    conf_sum = np.bincount(ids, weights=confidence, minlength=n_bins)
-    corr_sum = np.bincount(ids, weights=correct.astype(np.float64), minlength=n_bins)
+    return _binned(bin_ids(confidence, n_bins), confidence, correct, n_bins, weights)
+
+
+def bin_ids(p: np.ndarray, n_bins: int) -> np.ndarray:
+    """Index of the equal-width bin ``((m-1)/M, m/M]`` of each value in [0, 1].
+
+    The same as ``np.searchsorted(np.linspace(0, 1, M + 1)[1:-1], p)`` (the
+    rule of ``sklearn.calibration.calibration_curve``), computed as
+    ceil(p M) - 1, with values within rounding of an edge settled by the
+    search itself; several times faster on large arrays.
+
+    Examples
+    --------
+    >>> bin_ids(np.array([0.0, 0.1, 0.10001, 0.5, 1.0]), 10)
+    array([0, 0, 1, 4, 9])
+    """
+    p = np.asarray(p, dtype=np.float64)
+    f = p * n_bins
+    ids = np.ceil(f)
+    ids -= 1.0
+    np.clip(ids, 0, n_bins - 1, out=ids)
+    # Only values within rounding of an edge can disagree with the edges as
+    # numpy.linspace computes them; settle those by the edges themselves.
+    # (The edge at 0 needs no care: ceil - 1 and the clip put [0, 1/M] in bin 0.)
+    near = np.abs(f - np.rint(f)) < 1e-6
+    near &= f > 0.5
+    if near.any():
+        edges = np.linspace(0.0, 1.0, n_bins + 1)
+        ids[near] = np.searchsorted(edges[1:-1], p[near])
+    ids = ids.astype(np.intp)
+    return ids
+
+
+def _binned(ids, confidence, correct, n_bins, weights):
+    w = np.ones(len(ids)) if weights is None else np.asarray(weights, dtype=np.float64)
+    counts = np.bincount(ids, weights=w, minlength=n_bins)
+    conf_sum = np.bincount(ids, weights=w * confidence, minlength=n_bins)
+    corr_sum = np.bincount(ids, weights=w * np.asarray(correct, dtype=np.float64), minlength=n_bins)
     return counts, conf_sum, corr_sum
 
 
@@ -83,6 +175,14 @@ def ece_from_bins(counts: np.ndarray, conf_sum: np.ndarray, corr_sum: np.ndarray
     """
     n = counts.sum()
     return float(np.abs(corr_sum - conf_sum).sum() / n) if n else float("nan")
+
+
+def mce_from_bins(counts: np.ndarray, conf_sum: np.ndarray, corr_sum: np.ndarray) -> float:
+    """Maximum calibration error: max over non-empty bins of |acc(B_m) - conf(B_m)|."""
+    full = counts > 0
+    if not full.any():
+        return float("nan")
+    return float(np.max(np.abs(corr_sum[full] - conf_sum[full]) / counts[full]))
 
 
 def expected_calibration_error(
@@ -120,6 +220,129 @@ def expected_calibration_error(
     return ece_from_bins(*reliability_bins(confidence, correct, n_bins))
 
 
+def maximum_calibration_error(
+    confidence: np.ndarray, correct: np.ndarray, n_bins: int = DEFAULT_BINS
+) -> float:
+    """Top-label maximum calibration error: the worst bin's |accuracy - confidence|.
+
+    Same equal-width bins as :func:`expected_calibration_error`; empty bins
+    are skipped.
+
+    References
+    ----------
+    Naeini, Cooper, Hauskrecht, AAAI 2015 (MCE); Guo et al., ICML 2017,
+    sec. 2 eq. (5).
+
+    Examples
+    --------
+    >>> maximum_calibration_error(np.array([0.9, 0.9, 0.3]), np.array([1, 0, 0]), n_bins=10)
+    0.4
+    """
+    confidence = np.asarray(confidence, dtype=np.float64).ravel()
+    return mce_from_bins(*reliability_bins(confidence, np.asarray(correct).ravel(), n_bins))
+
+
+def equal_mass_bins(
+    confidence: np.ndarray,
+    correct: np.ndarray,
+    n_bins: int = DEFAULT_BINS,
+    weights: np.ndarray | None = None,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Bin sums (as :func:`reliability_bins`) over equal-mass bins.
+
+    Edges are the 0, 1/M, ..., 1 quantiles of the confidences (linear
+    interpolation, as ``numpy.percentile``), bins are right-closed, so each
+    bin holds about n/M samples. Integer ``weights`` (bootstrap counts)
+    count a sample that many times, edges included.
+    """
+    confidence = np.asarray(confidence, dtype=np.float64).ravel()
+    pool = confidence if weights is None else np.repeat(confidence, np.asarray(weights, dtype=np.int64))
+    if pool.size == 0:
+        return np.zeros(n_bins), np.zeros(n_bins), np.zeros(n_bins)
+    edges = np.quantile(pool, np.linspace(0.0, 1.0, n_bins + 1))
+    ids = np.searchsorted(edges[1:-1], confidence, side="left")
+    return _binned(ids, confidence, np.asarray(correct).ravel(), n_bins, weights)
+
+
+def adaptive_calibration_error(
+    confidence: np.ndarray, correct: np.ndarray, n_bins: int = DEFAULT_BINS
+) -> float:
+    """Top-label ECE over equal-mass bins (adaptive ECE).
+
+    ECE_adaptive = sum_m |B_m|/n * |acc(B_m) - conf(B_m)| with bins chosen
+    so each holds about n/M predictions (see :func:`equal_mass_bins`). This
+    is the top-label form; Nixon et al. also average the same quantity over
+    classes.
+
+    References
+    ----------
+    Nixon, Dusenberry, Zhang, Jerfel, Tran, "Measuring Calibration in Deep
+    Learning", CVPR Workshops 2019, sec. 3 ("adaptive calibration error").
+
+    Examples
+    --------
+    >>> round(adaptive_calibration_error(np.array([0.6, 0.7, 0.8, 0.9]), np.array([1, 0, 1, 1]), n_bins=2), 3)
+    0.15
+    """
+    return ece_from_bins(*equal_mass_bins(confidence, correct, n_bins))
+
+
+def _classwise_ids(p: np.ndarray, n_bins: int) -> np.ndarray:
+    """Flat (class, bin) index of every entry of a (rows, K) probability array."""
+    return (bin_ids(p, n_bins) + n_bins * np.arange(p.shape[1])).ravel()
+
+
+def _classwise_from_sums(p_sum: np.ndarray, y_sum: np.ndarray, n: float, n_classes: int) -> float:
+    if not n:
+        return float("nan")
+    per_class = np.abs(y_sum - p_sum).reshape(n_classes, -1).sum(axis=1) / n
+    return float(per_class.mean())
+
+
+def classwise_calibration_error(
+    probabilities: np.ndarray, labels: np.ndarray, n_bins: int = DEFAULT_BINS
+) -> float:
+    """Classwise ECE: the mean over classes of each class probability's ECE.
+
+    classwise-ECE = (1/K) sum_k sum_m |B_km|/n * |freq_k(B_km) - conf_k(B_km)|,
+    where B_km holds the samples whose probability for class k falls in the
+    m-th equal-width bin, freq is the fraction of them labelled k and conf
+    their mean probability for k. Every class's probability is examined,
+    not only the top one.
+
+    Parameters
+    ----------
+    probabilities : ndarray of shape (n, K)
+        Class probabilities (multiclass) or per-label probabilities
+        (multi-label, binary with K = 1).
+    labels : ndarray of shape (n,) or (n, K)
+        Integer class indices, or a 0/1 array of the same shape as
+        ``probabilities``.
+
+    References
+    ----------
+    Kull, Perello-Nieto, Kängsepp, Silva Filho, Song, Flach, "Beyond
+    temperature scaling: Obtaining well-calibrated multiclass probabilities
+    with Dirichlet calibration", NeurIPS 2019, sec. 2 (classwise-ECE);
+    Nixon et al., CVPR Workshops 2019 (the same quantity as "static
+    calibration error").
+
+    Examples
+    --------
+    >>> p = np.array([[0.8, 0.2], [0.8, 0.2]])
+    >>> round(classwise_calibration_error(p, np.array([0, 1]), n_bins=10), 3)
+    0.3
+    """
+    p = np.asarray(probabilities, dtype=np.float64)
+    labels = np.asarray(labels)
+    onehot = labels if labels.ndim == 2 else np.eye(p.shape[1])[labels]
+    ids = _classwise_ids(p, n_bins)
+    size = p.shape[1] * n_bins
+    p_sum = np.bincount(ids, weights=p.ravel(), minlength=size)
+    y_sum = np.bincount(ids, weights=onehot.ravel().astype(np.float64), minlength=size)
+    return _classwise_from_sums(p_sum, y_sum, len(p), p.shape[1])
+
+
 @dataclass(frozen=True)
 class Metrics:
     """Calibration metrics of one set of predictions.
@@ -127,40 +350,71 @@ class Metrics:
     Attributes
     ----------
     n : int
-        Number of samples.
+        Number of samples (the sum of the weights when weighted).
     nll : float
-        Mean negative log-likelihood of the true class (natural log).
+        Mean negative log-likelihood of the labels (natural log); for binary
+        and multi-label, the mean binary cross-entropy over all entries.
     ece : float
         Top-label expected calibration error, ``n_bins`` equal-width bins.
+    mce : float
+        Maximum calibration error over the same bins.
+    adaptive_ece : float
+        Top-label ECE over ``n_bins`` equal-mass bins.
+    classwise_ece : float
+        Mean over classes (labels) of each class probability's ECE.
     brier : float
-        Multiclass Brier score: mean over samples of sum_k (p_k - y_k)^2, in [0, 2].
+        Multiclass: mean over samples of sum_k (p_k - y_k)^2, in [0, 2].
+        Binary and multi-label: mean over entries of (p - y)^2, in [0, 1].
     accuracy : float
-        Fraction of samples whose argmax is the label.
+        Fraction of right predictions (argmax; p > 0.5 per entry for
+        binary and multi-label).
     mean_confidence : float
         Mean probability of the predicted class.
+    gap : float
+        mean_confidence - accuracy: positive means overconfident.
     n_bins : int
-        Number of bins used for ECE.
+        Number of bins used for the ECEs.
+    kind : str
+        ``"multiclass"``, ``"binary"`` or ``"multilabel"``.
     """
 
     n: int
     nll: float
     ece: float
+    mce: float
+    adaptive_ece: float
+    classwise_ece: float
     brier: float
     accuracy: float
     mean_confidence: float
+    gap: float
     n_bins: int = DEFAULT_BINS
+    kind: str = "multiclass"
 
     def to_dict(self) -> dict:
         return asdict(self)
 
 
+# Metric fields shown in tables and given bootstrap intervals, in order.
+METRIC_FIELDS = (
+    "nll", "ece", "mce", "adaptive_ece", "classwise_ece", "brier", "accuracy", "mean_confidence", "gap",
+)
+
+
+def _as_scaling(scaling: Scaling | float, kind: str) -> Scaling:
+    return scaling if isinstance(scaling, Scaling) else Scaling.of_temperature(float(scaling), kind)
+
+
 def evaluate(
     logits: np.ndarray,
     labels: np.ndarray,
-    temperature: float = 1.0,
+    scaling: Scaling | float = 1.0,
     n_bins: int = DEFAULT_BINS,
+    *,
+    rows: np.ndarray | None = None,
+    weights: np.ndarray | None = None,
 ) -> Metrics:
-    """Metrics of ``softmax(logits / temperature)`` against ``labels``.
+    """Metrics of the calibrated probabilities against ``labels``.
 
     Works through the logits in row chunks (float32 in, float64 sums), so a
     memory-mapped capture larger than RAM can be scored.
@@ -168,13 +422,18 @@ def evaluate(
     Parameters
     ----------
     logits : ndarray of shape (n, k)
-        Class scores before softmax.
-    labels : ndarray of shape (n,)
-        Integer class indices in [0, k).
-    temperature : float, default 1.0
-        The scores are divided by it before the softmax.
+        Class scores before the activation (k = 1 for a binary model).
+    labels : ndarray of shape (n,) or (n, k)
+        Integer class indices (0/1 for binary), or a 0/1 multi-label array.
+    scaling : Scaling or float, default 1.0
+        The calibration map; a number is a temperature (the scores are
+        divided by it).
     n_bins : int, default 15
-        Bins for ECE.
+        Bins for the ECEs.
+    rows : ndarray of int, optional
+        Score only these rows (sorted indices).
+    weights : ndarray, optional
+        One non-negative integer weight per scored row (bootstrap counts).
 
     Returns
     -------
@@ -182,9 +441,10 @@ def evaluate(
 
     References
     ----------
-    NLL and ECE: Guo et al. 2017, sec. 2 and 5. Brier score: G. W. Brier,
+    NLL, ECE and MCE: Guo et al. 2017, sec. 2 and 5. Brier score: G. W. Brier,
     "Verification of forecasts expressed in terms of probability",
     Monthly Weather Review 78(1), 1950 (multiclass form, summed over classes).
+    Adaptive ECE: Nixon et al. 2019. Classwise ECE: Kull et al. 2019.
 
     Examples
     --------
@@ -192,34 +452,121 @@ def evaluate(
     >>> m.accuracy
     0.5
     """
-    n, k = logits.shape
-    counts = np.zeros(n_bins)
-    conf_sum = np.zeros(n_bins)
-    corr_sum = np.zeros(n_bins)
-    nll_sum = brier_sum = 0.0
-    step = chunk_rows(k)
-    rows = np.arange(min(step, n))
-    for start in range(0, n, step):
-        z = np.asarray(logits[start : start + step], dtype=np.float64) / temperature
-        y = np.asarray(labels[start : start + step])
-        r = rows[: len(y)]
-        logp = log_softmax(z)
-        p = np.exp(logp)
-        nll_sum -= logp[r, y].sum()
+    k = logits.shape[1]
+    kind = kind_of(k, np.ndim(labels))
+    scaling = _as_scaling(scaling, kind)
+    if kind == "multiclass":
+        return _evaluate_softmax(logits, labels, scaling, n_bins, rows, weights)
+    return _evaluate_sigmoid(logits, labels, scaling, n_bins, rows, weights, kind)
+
+
+def _classwise_add(p_sum, y_sum, p, y, w, n_bins, onehot=None):
+    """Add a chunk's classwise-ECE sums, flat (class, bin) index k * M + m.
+
+    Only entries above the first edge are binned one by one (fewer than M
+    per row for softmax probabilities); the first bin gets the rest by
+    subtraction from the column sums, which is much faster for many classes.
+    """
+    k = p.shape[1]
+    first = np.linspace(0.0, 1.0, n_bins + 1)[1]
+    wp = p if w is None else p * w[:, None]
+    rows, cols = np.nonzero(p > first)
+    ids = bin_ids(p[rows, cols], n_bins) + n_bins * cols
+    upper = np.bincount(ids, weights=wp[rows, cols], minlength=k * n_bins)
+    p_sum += upper
+    p_sum[::n_bins] += wp.sum(axis=0) - upper.reshape(k, n_bins).sum(axis=1)
+    if onehot is None:  # multiclass: the label's entry of each row
+        r = np.arange(len(y))
+        ids_y = bin_ids(p[r, y], n_bins) + n_bins * y
+        y_sum += np.bincount(ids_y, weights=w, minlength=k * n_bins)
+    else:
+        wy = onehot if w is None else onehot * w[:, None]
+        upper_y = np.bincount(ids, weights=wy[rows, cols], minlength=k * n_bins)
+        y_sum += upper_y
+        y_sum[::n_bins] += wy.sum(axis=0) - upper_y.reshape(k, n_bins).sum(axis=1)
+
+
+class _Sums:
+    """Running sums of one evaluation (chunk by chunk)."""
+
+    def __init__(self, k: int, n_bins: int) -> None:
+        self.k, self.n_bins = k, n_bins
+        self.bins = np.zeros((3, n_bins))
+        self.p_sum = np.zeros(k * n_bins)
+        self.y_sum = np.zeros(k * n_bins)
+        self.nll = self.brier = 0.0
+        self.confs: list[np.ndarray] = []
+        self.corrects: list[np.ndarray] = []
+
+    def add_top_label(self, conf, correct, w) -> None:
+        self.bins += reliability_bins(conf, correct, self.n_bins, w)
+        self.confs.append(conf)
+        self.corrects.append(correct)
+
+    def metrics(self, n: float, per_sample: int, weights, kind: str) -> Metrics:
+        """Metrics from the sums; ``per_sample`` predictions per sample (K for multi-label)."""
+        entries = n * per_sample
+        counts, conf_sum, corr_sum = self.bins
+        conf = np.concatenate(self.confs) if self.confs else np.zeros(0)
+        correct = np.concatenate(self.corrects) if self.corrects else np.zeros(0, bool)
+        entry_weights = None if weights is None else np.repeat(np.asarray(weights), per_sample)
+        nan = float("nan")
+        accuracy = float(corr_sum.sum() / entries) if entries else nan
+        mean_conf = float(conf_sum.sum() / entries) if entries else nan
+        return Metrics(
+            n=int(round(n)),
+            nll=float(self.nll / entries) if entries else nan,
+            ece=ece_from_bins(counts, conf_sum, corr_sum),
+            mce=mce_from_bins(counts, conf_sum, corr_sum),
+            adaptive_ece=ece_from_bins(*equal_mass_bins(conf, correct, self.n_bins, entry_weights)),
+            classwise_ece=_classwise_from_sums(self.p_sum, self.y_sum, n, self.k),
+            brier=float(self.brier / entries) if entries else nan,
+            accuracy=accuracy,
+            mean_confidence=mean_conf,
+            gap=mean_conf - accuracy,
+            n_bins=self.n_bins,
+            kind=kind,
+        )
+
+
+def _total(logits, rows, weights) -> float:
+    if weights is not None:
+        return float(np.sum(weights))
+    return float(len(logits) if rows is None else len(rows))
+
+
+def _evaluate_softmax(logits, labels, scaling, n_bins, rows, weights) -> Metrics:
+    sums = _Sums(logits.shape[1], n_bins)
+    for z, y, w in iter_chunks(logits, labels, rows, weights):
+        r = np.arange(len(y))
+        s = scaling.apply(z)
+        s -= s.max(axis=1, keepdims=True)
+        sy = s[r, y]
+        p = np.exp(s, out=s)
+        total = p.sum(axis=1)
+        p /= total[:, None]
+        # -log p_y = log sum_k exp(s_k) - s_y, with s shifted by its row maximum
+        sums.nll += _wsum(np.log(total) - sy, w)
         # sum_k (p_k - y_k)^2 = sum_k p_k^2 - 2 p_y + 1
-        brier_sum += (np.einsum("ij,ij->i", p, p) - 2.0 * p[r, y] + 1.0).sum()
+        sums.brier += _wsum(np.einsum("ij,ij->i", p, p) - 2.0 * p[r, y] + 1.0, w)
         pred = p.argmax(axis=1)
-        conf = p[r, pred]
-        c, s, a = reliability_bins(conf, (pred == y), n_bins)
-        counts += c
-        conf_sum += s
-        corr_sum += a
-    return Metrics(
-        n=int(n),
-        nll=float(nll_sum / n),
-        ece=ece_from_bins(counts, conf_sum, corr_sum),
-        brier=float(brier_sum / n),
-        accuracy=float(corr_sum.sum() / n),
-        mean_confidence=float(conf_sum.sum() / n),
-        n_bins=n_bins,
-    )
+        sums.add_top_label(p[r, pred], pred == y, w)
+        _classwise_add(sums.p_sum, sums.y_sum, p, y, w, n_bins)
+    return sums.metrics(_total(logits, rows, weights), 1, weights, "multiclass")
+
+
+def _evaluate_sigmoid(logits, labels, scaling, n_bins, rows, weights, kind) -> Metrics:
+    k = logits.shape[1]
+    sums = _Sums(k, n_bins)
+    for z, y, w in iter_chunks(logits, labels, rows, weights):
+        y = y.reshape(len(y), -1).astype(np.float64)
+        s = scaling.apply(z)
+        p = sigmoid(s)
+        ww = None if w is None else np.repeat(w, k)
+        # -[y log p + (1 - y) log(1 - p)] = log(1 + e^s) - y s
+        sums.nll += _wsum((np.logaddexp(0.0, s) - y * s).ravel(), ww)
+        sums.brier += _wsum(((p - y) ** 2).ravel(), ww)
+        pred = p > 0.5
+        sums.add_top_label(np.where(pred, p, 1.0 - p).ravel(), (pred == (y > 0.5)).ravel(), ww)
+        _classwise_add(sums.p_sum, sums.y_sum, p, y, w, n_bins, onehot=y)
+    return sums.metrics(_total(logits, rows, weights), k, weights, kind)

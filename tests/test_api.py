@@ -11,8 +11,9 @@ from sklearn.exceptions import ConvergenceWarning
 from sklearn.model_selection import train_test_split
 from sklearn.neural_network import MLPClassifier
 
-from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, mlp_model
-from onnxcal import api
+from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, mlp_model, random_mlp
+from onnxcal import api, graph
+from onnxcal.fit import FitOptions
 from onnxcal.metrics import evaluate
 
 
@@ -113,6 +114,8 @@ from conftest import (  # noqa: E402
 )
 from onnxcal.data import DataSpec, Selection  # noqa: E402
 
+QUICK = FitOptions(holdout=0, bootstrap=0)  # in-sample, no intervals: these tests are about the data
+
 FORMS = {
     "npz": (DEMO_MODEL, DEMO_VAL),
     "csv": (DEMO_MODEL, DataSpec(path=DEMO_CSV, label_column="condition", classes=DEMO_CLASSES)),
@@ -124,7 +127,7 @@ FORMS = {
 @pytest.mark.parametrize("form", FORMS)
 def test_every_input_form_calibrates(tmp_path, form):
     model, data = FORMS[form]
-    result = api.calibrate(model, data, tmp_path / "out.onnx")
+    result = api.calibrate(model, data, tmp_path / "out.onnx", options=QUICK)
     assert result.verification.passed and result.patch is not None
     s = result.summary
     assert s.after.nll < s.before.nll and s.after.accuracy == s.before.accuracy
@@ -132,9 +135,9 @@ def test_every_input_form_calibrates(tmp_path, form):
 
 
 def test_csv_and_npz_of_the_same_rows_fit_the_same_temperature(tmp_path):
-    csv_fit = api.calibrate(DEMO_MODEL, FORMS["csv"][1], tmp_path / "a.onnx").summary
+    csv_fit = api.calibrate(DEMO_MODEL, FORMS["csv"][1], tmp_path / "a.onnx", options=QUICK).summary
     npz_fit = api.calibrate(
-        DEMO_MODEL, DataSpec(path=DEMO_VAL, selection=Selection(limit=400)), tmp_path / "b.onnx"
+        DEMO_MODEL, DataSpec(path=DEMO_VAL, selection=Selection(limit=400)), tmp_path / "b.onnx", options=QUICK
     ).summary
     assert csv_fit.temperature == npz_fit.temperature
 
@@ -151,7 +154,69 @@ def test_fit_accepts_shard_files(tmp_path):
     files = [tmp_path / f"s{i}.npz" for i in (1, 2, 3)]
     for i, f in enumerate(files, start=1):
         api.capture(DEMO_MODEL, DataSpec(path=DEMO_VAL, selection=Selection(shard=(i, 3))), out=f)
-    whole = api.fit(api.capture(DEMO_MODEL, DEMO_VAL))
-    merged = api.fit(files, out=tmp_path / "fit.json")
+    whole = api.fit(api.capture(DEMO_MODEL, DEMO_VAL), options=QUICK)
+    merged = api.fit(files, out=tmp_path / "fit.json", options=QUICK)
     assert merged.temperature == whole.temperature
     assert list(merged.capture["merged_from"]) == [str(f) for f in files]
+
+
+def test_digits_vector_scaling_end_to_end(digits_setup):
+    d, clf, x_test, y_test = digits_setup
+    out = d / "vector.onnx"
+    result = api.calibrate(d / "digits.onnx", d / "val.npz", out, options=FitOptions(method="vector", bootstrap=20))
+    assert result.verification.passed and result.patch.record.method == "vector"
+    assert [n.op_type for n in onnx.load(str(out)).graph.node[-3:]] == ["Mul", "Add", "Softmax"]
+    assert api.verify(out, d / "test.npz").passed
+    before = _scores(d / "digits.onnx", "probabilities", "pixels", x_test).astype(np.float64)
+    after = _scores(out, "probabilities", "pixels", x_test).astype(np.float64)
+    assert evaluate(np.log(after), y_test).nll < evaluate(np.log(before), y_test).nll
+    fit = result.patch.record.fit
+    assert fit["metrics"]["basis"] == "held-out" and len(fit["intervals"]["parameters"]["w"]) == 10
+
+
+def _labelled(tmp_path, rng, model, name, make_labels):
+    """Save ``model`` and a set whose labels are drawn from its own logits."""
+    x = rng.normal(size=(1500, 6)).astype(np.float32)
+    site = graph.find_scores(model)
+    (z,) = ort.InferenceSession(
+        graph.expose(model, [site.scores]).SerializeToString(), providers=["CPUExecutionProvider"]
+    ).run([site.scores], {"x": x})
+    onnx.save(model, tmp_path / f"{name}.onnx")
+    np.savez(tmp_path / f"{name}.npz", x=x, labels=make_labels(z))
+    return tmp_path / f"{name}.onnx", tmp_path / f"{name}.npz"
+
+
+@pytest.mark.parametrize("final, method", [(None, "platt"), ("Sigmoid", "platt"), (None, "temperature"), ("Sigmoid", "temperature")])
+def test_binary_single_logit_end_to_end(tmp_path, rng, final, method):
+    model = random_mlp(rng, k=1, scale=3.0, final=final)
+    # Labels from sigmoid(z / 2 - 0.5): the model is overconfident and biased.
+    path, data = _labelled(
+        tmp_path, rng, model, "binary", lambda z: (rng.random(len(z)) < 1 / (1 + np.exp(-(z[:, 0] / 2 - 0.5)))).astype(int)
+    )
+    cap = api.capture(path, data, out=tmp_path / "cap.npz")
+    summary = api.fit(tmp_path / "cap.npz", out=tmp_path / "fit.json", options=FitOptions(method=method, bootstrap=20))
+    assert summary.scaling.kind == "binary" and summary.after.nll < summary.before.nll
+    res = api.patch(path, tmp_path / "p.onnx", fit=tmp_path / "fit.json")
+    assert res.record.activation == "sigmoid" and res.record.method == method
+    check = api.verify(tmp_path / "p.onnx", data, original=path)
+    assert check.passed, check.to_dict()
+    assert {c.name for c in check.checks} >= {"reference", "decisions", "record"}
+    assert cap.labels.ndim == 1
+
+
+@pytest.mark.parametrize("mode", ["shared", "per-label"])
+def test_multilabel_sigmoid_end_to_end(tmp_path, rng, mode):
+    model = random_mlp(rng, k=3, scale=3.0, final="Sigmoid")
+    t = np.array([0.7, 1.5, 3.0])
+    path, data = _labelled(
+        tmp_path, rng, model, "tags", lambda z: (rng.random(z.shape) < 1 / (1 + np.exp(-z / t))).astype(np.uint8)
+    )
+    result = api.calibrate(path, data, tmp_path / "p.onnx", options=FitOptions(multilabel=mode, bootstrap=10))
+    assert result.verification.passed and result.patch is not None
+    params = result.patch.record.parameters["temperature"]
+    if mode == "per-label":
+        np.testing.assert_allclose(params, t, rtol=0.35)
+    else:
+        assert isinstance(params, float)
+    assert result.summary.after.kind == "multilabel"
+    assert api.verify(tmp_path / "p.onnx", data).passed

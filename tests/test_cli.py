@@ -48,7 +48,7 @@ def test_step_by_step_commands(tmp_path, run_cli):
     cap, fit, patched = tmp_path / "c.npz", tmp_path / "fit.json", tmp_path / "p.onnx"
     assert run_cli("capture", DEMO_MODEL, "--data", DEMO_VAL, "--out", cap, "-q").code == 0
     r = run_cli("fit", cap, "--out", fit)
-    assert r.code == 0 and "temperature T =" in r.out
+    assert r.code == 0 and "temperature scaling" in r.out and "T = " in r.out
     t = json.loads(fit.read_text())["temperature"]
     r = run_cli("fit", cap, "--json")
     assert json.loads(r.out)["temperature"] == t
@@ -177,7 +177,7 @@ def test_images_and_npy_inputs_on_the_command_line(tmp_path, run_cli):
     r = run_cli(
         "calibrate", BELT_MODEL, "--data", BELT_IMAGES, "--classes", BELT_CLASSES,
         "--resize", "32", "--crop", "32", "--mean", "0.485,0.456,0.406", "--std", "0.229,0.224,0.225",
-        "--out", tmp_path / "belt.onnx", "-q", "--json",
+        "--out", tmp_path / "belt.onnx", "-q", "--json", "--bootstrap", "0",
     )
     assert r.code == 0, r.err
     assert json.loads(r.out)["fit"]["capture"]["preprocess"]["mean"] == [0.485, 0.456, 0.406]
@@ -193,9 +193,9 @@ def test_capture_shards_then_fit_them_together(tmp_path, run_cli):
     for i in (1, 2):
         r = run_cli("capture", DEMO_MODEL, "--data", DEMO_VAL, "--shard", f"{i}/2", "--out", tmp_path / f"{i}.npz", "-q")
         assert r.code == 0, r.err
-    r = run_cli("fit", tmp_path / "1.npz", tmp_path / "2.npz", "--json")
+    r = run_cli("fit", tmp_path / "1.npz", tmp_path / "2.npz", "--json", "--bootstrap", "0")
     assert r.code == 0, r.err
-    whole = run_cli("fit", *[tmp_path / "1.npz"], "--json")
+    whole = run_cli("fit", tmp_path / "1.npz", "--json", "--bootstrap", "0")
     assert json.loads(r.out)["capture"]["n"] == 2000 and json.loads(whole.out)["capture"]["n"] == 1000
     r = run_cli("fit", tmp_path / "1.npz", tmp_path / "1.npz")
     assert r.code == 2 and "both hold row 0" in r.err
@@ -241,3 +241,110 @@ def test_bad_data_input(work, run_cli, monkeypatch, args, message):
     assert len(lines) == 1 and lines[0].startswith("onnxcal: error:"), r.err
     assert re.search(message, lines[0]), lines[0]
     assert files_in(work) == before
+
+
+EXPORTERS = Path(__file__).resolve().parents[1] / "fixtures" / "exporters"
+
+
+def test_patch_options_on_exported_models(tmp_path, run_cli):
+    fp16 = EXPORTERS / "belt_spectrogram_softmax_fp16_op13.onnx"
+    r = run_cli("patch", fp16, "--temperature", "2", "--compute-dtype", "float32", "--out", tmp_path / "a.onnx")
+    assert r.code == 0 and "computed in float32" in r.out
+    cnn = EXPORTERS / "belt_spectrogram_softmax_op13.onnx"
+    r = run_cli("patch", cnn, "--temperature", "2", "--fold", "--out", tmp_path / "b.onnx")
+    assert r.code == 0 and "folded" in r.out
+    r = run_cli("inspect", tmp_path / "b.onnx", "--json")
+    assert json.loads(r.out)["record"]["folded"] is True
+    r = run_cli("verify", tmp_path / "b.onnx", "--data", EXPORTERS / "belt_spectrogram_val.npz", "-q")
+    assert r.code == 0, r.out
+    seg = EXPORTERS / "belt_surface_softmax_op11.onnx"
+    r = run_cli("patch", seg, "--temperature", "2", "--fold", "--out", tmp_path / "c.onnx")
+    assert r.code == 2 and "not a Gemm or MatMul" in r.err and not (tmp_path / "c.onnx").exists()
+    r = run_cli("patch", cnn, "--temperature", "2", "--activation", "sigmoid", "--out", tmp_path / "d.onnx")
+    assert r.code == 2 and "already comes from softmax" in r.err
+    r = run_cli("patch", cnn, "--temperature", "2", "--compute-dtype", "half", "--out", tmp_path / "e.onnx")
+    assert r.code == 2 and "--compute-dtype 'half' is not one of" in r.err
+
+
+def test_calibrate_raw_multi_logit_head_as_sigmoid(tmp_path, run_cli):
+    # The multi-label head without its Sigmoid: --activation sigmoid says how to read it.
+    model = onnx.load(str(EXPORTERS / "belt_faults_multilabel_op17.onnx"))
+    sigmoid = next(n for n in model.graph.node if n.op_type == "Sigmoid")
+    model.graph.node.remove(sigmoid)
+    model.graph.output[0].name = sigmoid.input[0]
+    raw = save_model(model, tmp_path / "raw.onnx")
+    val = EXPORTERS / "belt_faults_multilabel_op17_val.npz"
+    r = run_cli("calibrate", raw, "--data", val, "--out", tmp_path / "s.onnx", "--activation", "sigmoid", "-q")
+    assert r.code == 0, r.err
+    assert graph.read_record(onnx.load(str(tmp_path / "s.onnx"))).rewrite == "append-sigmoid"
+    r = run_cli("calibrate", raw, "--data", val, "--out", tmp_path / "t.onnx", "-q")
+    assert r.code == 2 and "labels" in r.err  # read as a softmax, 0/1 flags are no class indices
+
+
+def test_inspect_zipmap_model(run_cli):
+    r = run_cli("inspect", EXPORTERS / "wine_boosted_zipmap.onnx")
+    assert r.code == 0
+    assert "seq(map(int64, float32))" in r.out and "ai.onnx.ml classifier" in r.out
+
+
+def test_calibrate_refuses_an_already_calibrated_model(tmp_path, run_cli):
+    out = tmp_path / "c.onnx"
+    assert run_cli("patch", DEMO_MODEL, "--temperature", "2", "--out", out).code == 0
+    r = run_cli("calibrate", out, "--data", DEMO_VAL, "--out", tmp_path / "d.onnx", "-q")
+    assert r.code == 2 and "already calibrated" in r.err
+
+
+# --------------------------------------------------------------------------
+# fit options
+
+
+@pytest.fixture(scope="module")
+def demo_capture(tmp_path_factory):
+    from onnxcal import api
+
+    path = tmp_path_factory.mktemp("cap") / "cap.npz"
+    api.capture(DEMO_MODEL, DEMO_VAL, out=path)
+    return path
+
+
+def test_fit_table_shows_held_out_intervals_and_fit_part(demo_capture, run_cli):
+    r = run_cli("fit", demo_capture, "--bootstrap", "30", "--seed", "3")
+    assert r.code == 0, r.err
+    for text in ("held-out", "95% interval", "fit part", "MCE", "adaptive ECE", "classwise ECE", "gap", "refitted on all 2000"):
+        assert text in r.out, text
+    r = run_cli("fit", demo_capture, "--holdout", "0", "--bootstrap", "0")
+    assert "in-sample" in r.out and "95% interval" not in r.out and "fit part" not in r.out
+
+
+def test_fit_vector_then_patch_and_verify(demo_capture, tmp_path, run_cli):
+    fit = tmp_path / "fit.json"
+    r = run_cli("fit", demo_capture, "--method", "vector", "--l2", "0.001", "--bootstrap", "10", "--out", fit)
+    assert r.code == 0, r.err
+    assert "vector scaling" in r.out
+    data = json.loads(fit.read_text())
+    assert data["method"] == "vector" and data["options"]["l2"] == 0.001
+    assert len(data["intervals"]["parameters"]["w"]) == 5 and data["temperature"] is None
+    out = tmp_path / "p.onnx"
+    r = run_cli("patch", DEMO_MODEL, "--fit", fit, "--out", out)
+    assert r.code == 0 and "Mul + Add + Softmax appended" in r.out
+    assert "vector scaling" in run_cli("inspect", out).out
+    r = run_cli("verify", out, "--data", DEMO_TEST, "-q")
+    assert r.code == 0, r.out
+
+
+BAD_FIT = [
+    (["--holdout", "1.5"], "--holdout 1.5 is not a fraction"),
+    (["--method", "platt"], "--method platt does not apply to a multiclass"),
+    (["--method", "nope"], "--method 'nope' is not one of"),
+    (["--multilabel", "shared"], "--multilabel needs an N x K"),
+    (["--bootstrap", "-1"], "--bootstrap -1 is negative"),
+    (["--l2", "0.1"], "--l2 applies to --method vector and platt"),
+]
+
+
+@pytest.mark.parametrize("args, message", BAD_FIT, ids=[a[0] for a, _ in BAD_FIT])
+def test_bad_fit_options(demo_capture, tmp_path, run_cli, args, message):
+    r = run_cli("fit", demo_capture, "--out", tmp_path / "fit.json", *args)
+    assert r.code == 2 and "Traceback" not in r.err
+    assert re.search(message, r.err), r.err
+    assert not (tmp_path / "fit.json").exists()

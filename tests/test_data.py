@@ -22,6 +22,7 @@ from onnxcal.data import (
     DataSpec,
     ImageOptions,
     Selection,
+    check_label_array,
     check_labels,
     image_options,
     load_dataset,
@@ -560,3 +561,17 @@ def test_whole_float_labels_are_accepted():
 def test_in_memory_dataset_still_works():
     ds = Dataset({"x": np.zeros((4, 3), np.float32)}, np.array([0, 1, 2, 0]), "mem")
     assert ds.n == ds.total == 4 and ds.row_numbers().tolist() == [0, 1, 2, 3]
+
+
+def test_multilabel_and_single_logit_labels():
+    y = np.array([[0, 1, 1], [1, 0, 0]])
+    out = check_label_array(y, 2, 3, "set.npz")
+    assert out.dtype == np.uint8 and out.tolist() == y.tolist()
+    # A single-logit binary model takes 0/1 class labels.
+    assert check_label_array(np.array([0, 1, 1]), 3, 1, "set.npz").tolist() == [0, 1, 1]
+    with pytest.raises(OnnxcalError, match=r"label 2 at row 0, column 1 .* is not 0 or 1"):
+        check_label_array(np.array([[0, 2, 1], [1, 0, 0]]), 2, 3, "set.npz")
+    with pytest.raises(OnnxcalError, match=r"shape \(2, 2\), expected \(2, 3\)"):
+        check_label_array(np.array([[0, 1], [1, 0]]), 2, 3, "set.npz")
+    with pytest.raises(OnnxcalError, match=r"label 2 at row 0 .* outside \[0, 2\)"):
+        check_label_array(np.array([2, 0]), 2, 1, "set.npz")

@@ -3,16 +3,24 @@
 import numpy as np
 import pytest
 import scipy.special
+from sklearn.calibration import calibration_curve
 from sklearn.metrics import brier_score_loss, log_loss
 
 from onnxcal import metrics
 from onnxcal.metrics import (
+    METRIC_FIELDS,
+    adaptive_calibration_error,
+    classwise_calibration_error,
+    equal_mass_bins,
     evaluate,
     expected_calibration_error,
     log_softmax,
+    maximum_calibration_error,
     reliability_bins,
+    sigmoid,
     softmax,
 )
+from onnxcal.scaling import Scaling
 
 
 def test_softmax_matches_scipy(rng):
@@ -100,7 +108,7 @@ def test_evaluate_chunked_equals_whole(rng, monkeypatch):
     whole = evaluate(z, y, 1.7)
     monkeypatch.setattr(metrics, "_CHUNK_ELEMENTS", 7 * 10)  # ten rows per chunk
     chunked = evaluate(z, y, 1.7)
-    for field in ("nll", "ece", "brier", "accuracy", "mean_confidence"):
+    for field in METRIC_FIELDS:
         assert getattr(chunked, field) == pytest.approx(getattr(whole, field), rel=1e-10)
 
 
@@ -110,3 +118,173 @@ def test_evaluate_reads_a_memmap(tmp_path, rng):
     np.save(tmp_path / "z.npy", z)
     mm = np.load(tmp_path / "z.npy", mmap_mode="r")
     assert evaluate(mm, y) == evaluate(z, y)
+
+
+# --------------------------------------------------------------------------
+# Binning against scikit-learn, the other ECEs, binary and multi-label metrics
+
+
+def _binary_case(rng, n=3000):
+    z = rng.normal(scale=2.0, size=n)
+    p = scipy.special.expit(z)
+    y = (rng.random(n) < scipy.special.expit(z / 1.7)).astype(int)
+    return p, y
+
+
+@pytest.mark.parametrize("n_bins", [5, 10, 15])
+@pytest.mark.parametrize("strategy, binning", [("uniform", reliability_bins), ("quantile", equal_mass_bins)])
+def test_bins_match_sklearn_calibration_curve(rng, n_bins, strategy, binning):
+    # Reference library: sklearn.calibration.calibration_curve gives, per non-empty
+    # bin, the observed frequency and the mean predicted probability; strategy
+    # "uniform" = our equal-width bins (ECE, MCE), "quantile" = our equal-mass
+    # bins (adaptive ECE). Binned here: the positive-class probability.
+    p, y = _binary_case(rng)
+    prob_true, prob_pred = calibration_curve(y, p, n_bins=n_bins, strategy=strategy)
+    counts, p_sum, y_sum = binning(p, y, n_bins)
+    full = counts > 0
+    np.testing.assert_allclose(y_sum[full] / counts[full], prob_true, rtol=1e-12)
+    np.testing.assert_allclose(p_sum[full] / counts[full], prob_pred, rtol=1e-12)
+    if strategy == "quantile":
+        assert counts.max() - counts.min() <= 1  # equal mass: n/M each, give or take one
+
+
+def test_binary_classwise_ece_from_sklearn_curve(rng):
+    # The classwise ECE of a single-logit binary model is the ECE of its
+    # probability (Kull et al. 2019, sec. 2): sum_m n_m/n |freq_m - conf_m|, here
+    # from sklearn's calibration_curve with bin sizes counted by numpy.histogram
+    # over the same right-closed uniform edges.
+    p, y = _binary_case(rng)
+    prob_true, prob_pred = calibration_curve(y, p, n_bins=15, strategy="uniform")
+    sizes = np.bincount(np.searchsorted(np.linspace(0, 1, 16)[1:-1], p), minlength=15)
+    expected = np.sum(sizes[sizes > 0] / len(p) * np.abs(prob_true - prob_pred))
+    m = evaluate(scipy.special.logit(p)[:, None], y)
+    assert m.kind == "binary"
+    assert m.classwise_ece == pytest.approx(expected, rel=1e-9)
+
+
+def test_mce_worked_example():
+    # By hand from the definition (Naeini et al. 2015; Guo et al. 2017, eq. 5), M = 10:
+    #   bin (0.8, 0.9]: 0.85, 0.85, 0.9, 0.9 -> acc 2/4, conf 0.875 -> gap 0.375
+    #   bin (0.5, 0.6]: 0.55, 0.6           -> acc 2/2, conf 0.575 -> gap 0.425 (the max)
+    conf = np.array([0.85, 0.85, 0.9, 0.9, 0.55, 0.6])
+    correct = np.array([1, 0, 1, 0, 1, 1])
+    assert maximum_calibration_error(conf, correct, n_bins=10) == pytest.approx(0.425)
+
+
+def test_adaptive_ece_worked_example():
+    # By hand (Nixon et al. 2019, equal-mass ranges), M = 2 over 4 predictions:
+    #   edges = quantiles 0, 1/2, 1 = 0.6, 0.75, 0.9
+    #   range [0.6, 0.75]: 0.6, 0.7 -> acc 1/2, conf 0.65 -> 2/4 * 0.15
+    #   range (0.75, 0.9]: 0.8, 0.9 -> acc 2/2, conf 0.85 -> 2/4 * 0.15
+    conf = np.array([0.6, 0.7, 0.8, 0.9])
+    correct = np.array([1, 0, 1, 1])
+    assert adaptive_calibration_error(conf, correct, n_bins=2) == pytest.approx(0.15)
+
+
+def test_classwise_ece_worked_example():
+    # By hand (Kull et al. 2019, classwise-ECE), M = 10, two samples, two classes:
+    #   class 0: both p = 0.8 in (0.7, 0.8], one labelled 0 -> |1/2 - 0.8| = 0.3
+    #   class 1: both p = 0.2 in (0.1, 0.2], one labelled 1 -> |1/2 - 0.2| = 0.3
+    #   mean over classes = 0.3
+    p = np.array([[0.8, 0.2], [0.8, 0.2]])
+    assert classwise_calibration_error(p, np.array([0, 1]), n_bins=10) == pytest.approx(0.3)
+
+
+def test_evaluate_classwise_matches_the_function(rng):
+    z = rng.normal(scale=3.0, size=(700, 6))
+    y = rng.integers(0, 6, 700)
+    p = scipy.special.softmax(z / 1.3, axis=1)
+    assert evaluate(z, y, 1.3).classwise_ece == pytest.approx(classwise_calibration_error(p, y), rel=1e-10)
+
+
+def test_gap_is_positive_when_overconfident(rng):
+    z = rng.normal(scale=4.0, size=(4000, 5))
+    y = np.argmax(z + 3.0 * rng.gumbel(size=z.shape), axis=1)  # truth: T = 3, model says T = 1
+    m = evaluate(z, y)
+    assert m.gap == pytest.approx(m.mean_confidence - m.accuracy)
+    assert m.gap > 0.1
+
+
+def test_binary_metrics_match_references(rng):
+    # References: sklearn.metrics.log_loss and brier_score_loss on the positive
+    # probability sigmoid(z / T).
+    z = rng.normal(scale=2.5, size=(800, 1))
+    y = (rng.random(800) < 0.5).astype(int)
+    p = scipy.special.expit(z[:, 0] / 1.6)
+    m = evaluate(z, y, 1.6)
+    assert m.nll == pytest.approx(log_loss(y, p), rel=1e-9)
+    assert m.brier == pytest.approx(brier_score_loss(y, p), rel=1e-9)
+    assert m.accuracy == pytest.approx(np.mean((p > 0.5) == y))
+    assert m.mean_confidence == pytest.approx(np.mean(np.maximum(p, 1 - p)))
+
+
+def test_binary_equals_two_class_softmax(rng):
+    # softmax([0, z])_1 = sigmoid(z) (common practice): every metric agrees,
+    # except the multiclass Brier, which sums over both classes (twice the binary).
+    z = rng.normal(scale=2.0, size=600)
+    y = rng.integers(0, 2, 600)
+    one = evaluate(z[:, None], y, 1.4)
+    two = evaluate(np.c_[np.zeros(600), z], y, 1.4)
+    for key in ("nll", "ece", "mce", "adaptive_ece", "classwise_ece", "accuracy", "mean_confidence", "gap"):
+        assert getattr(one, key) == pytest.approx(getattr(two, key), rel=1e-9, abs=1e-12)
+    assert two.brier == pytest.approx(2 * one.brier, rel=1e-12)
+
+
+def test_multilabel_metrics_are_entrywise(rng):
+    # Reference library: sklearn.metrics.log_loss / brier_score_loss over all
+    # (sample, label) entries pooled; classwise ECE is the mean of each label's ECE.
+    z = rng.normal(scale=2.0, size=(500, 3))
+    y = (rng.random((500, 3)) < 0.4).astype(np.uint8)
+    t = np.array([0.8, 1.0, 2.0])
+    m = evaluate(z, y, Scaling.of_temperature(t, "multilabel"))
+    p = scipy.special.expit(z / t)
+    assert m.kind == "multilabel" and m.n == 500
+    assert m.nll == pytest.approx(log_loss(y.ravel(), p.ravel()), rel=1e-9)
+    assert m.brier == pytest.approx(brier_score_loss(y.ravel(), p.ravel()), rel=1e-9)
+    per_label = [evaluate(scipy.special.logit(p[:, [k]]), y[:, k]).classwise_ece for k in range(3)]
+    assert m.classwise_ece == pytest.approx(np.mean(per_label), rel=1e-9)
+    assert m.accuracy == pytest.approx(np.mean((p > 0.5) == y))
+
+
+def test_vector_scaling_metrics(rng):
+    z = rng.normal(scale=2.0, size=(300, 3))
+    y = rng.integers(0, 3, 300)
+    w, b = np.array([0.5, 1.0, 2.0]), np.array([0.1, 0.0, -0.1])
+    m = evaluate(z, y, Scaling.of_affine(w, b, "vector", "multiclass"))
+    assert m.nll == pytest.approx(log_loss(y, scipy.special.softmax(z * w + b, axis=1)), rel=1e-9)
+
+
+def test_weights_equal_repeated_rows(rng):
+    # A bootstrap count c means the row appears c times, for every metric.
+    z = rng.normal(scale=3.0, size=(400, 4))
+    y = rng.integers(0, 4, 400)
+    counts = rng.integers(0, 3, 400)
+    rows = np.flatnonzero(np.arange(400) % 3 != 0)
+    weighted = evaluate(z, y, 1.5, rows=rows, weights=counts[rows])
+    repeated = evaluate(np.repeat(z[rows], counts[rows], axis=0), np.repeat(y[rows], counts[rows]), 1.5)
+    for key in METRIC_FIELDS:
+        assert getattr(weighted, key) == pytest.approx(getattr(repeated, key), rel=1e-9, abs=1e-12)
+    assert weighted.n == repeated.n
+
+
+def test_huge_float32_logits_give_finite_metrics():
+    rng = np.random.default_rng(3)
+    z = (rng.normal(size=(500, 4)) * 1e4).astype(np.float32)
+    y = rng.integers(0, 4, 500)
+    m = evaluate(z, y)
+    assert all(np.isfinite(getattr(m, key)) for key in METRIC_FIELDS)
+    zb = (rng.normal(size=(500, 1)) * 1e4).astype(np.float32)
+    mb = evaluate(zb, y % 2)
+    assert np.isfinite(mb.nll) and mb.nll > 100  # confidently wrong half the time
+    assert np.all(np.isfinite(sigmoid(zb)))
+
+
+def test_bin_ids_follow_the_searchsorted_rule(rng):
+    # The rule of sklearn.calibration.calibration_curve: np.searchsorted over the
+    # inner edges of np.linspace(0, 1, M + 1), right-closed bins; exact edges,
+    # their float neighbours, 0 and 1 included.
+    for m in (2, 10, 15, 100):
+        edges = np.linspace(0, 1, m + 1)
+        p = np.concatenate([rng.random(5000), edges, np.nextafter(edges, 2), np.nextafter(edges, -1)])
+        p = np.clip(p, 0, 1)
+        np.testing.assert_array_equal(metrics.bin_ids(p, m), np.searchsorted(edges[1:-1], p))

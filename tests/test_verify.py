@@ -4,6 +4,7 @@ import numpy as np
 import pytest
 import scipy.special
 
+from onnxcal.scaling import Scaling
 from onnxcal.verify import compare, record_check, reference_probabilities, source_check
 
 
@@ -57,3 +58,56 @@ def test_record_and_source_checks():
     assert not record_check(2.0, None).passed
     assert source_check("a" * 64, "a" * 64).passed
     assert not source_check("a" * 64, "b" * 64).passed
+
+
+def test_tolerance_follows_the_coarsest_dtype():
+    from onnxcal.verify import TOLERANCE, tolerance
+
+    assert tolerance("float32") == TOLERANCE["float32"]
+    assert tolerance(("float16", "float32")) == TOLERANCE["float16"]
+    # IEEE 754 binary16 unit roundoff is 2**-11: the limit is a few units, not less.
+    assert 2.0**-11 < TOLERANCE["float16"] < 0.01
+    assert TOLERANCE["float64"] < TOLERANCE["float32"] < TOLERANCE["float16"] < TOLERANCE["bfloat16"]
+
+
+def test_record_check_rounds_to_the_initializer_dtype():
+    t16 = float(np.float16(1.2345))
+    assert record_check(1.2345, t16, "float16").passed  # T held in float16
+    assert not record_check(1.2345, t16, "float32").passed
+    assert not record_check(1.2345, float(np.float16(1.25)), "float16").passed
+
+
+def test_reference_for_vector_platt_and_per_label(rng):
+    # Reference library: scipy.special.softmax / expit of the calibrated logits.
+    z = rng.normal(scale=3, size=(40, 3))
+    w, b = np.array([0.5, 1.0, 2.0]), np.array([0.2, 0.0, -0.2])
+    vec = Scaling.of_affine(w, b, "vector", "multiclass")
+    np.testing.assert_allclose(
+        reference_probabilities(z, vec, "softmax"), scipy.special.softmax(z * w + b, axis=1), rtol=1e-12
+    )
+    platt = Scaling.of_affine(0.7, -0.4, "platt", "binary")
+    np.testing.assert_allclose(
+        reference_probabilities(z[:, :1], platt, "sigmoid"), scipy.special.expit(0.7 * z[:, :1] - 0.4), rtol=1e-12
+    )
+    t = np.array([0.5, 1.0, 4.0])
+    per = Scaling.of_temperature(t, "multilabel")
+    np.testing.assert_allclose(reference_probabilities(z, per, "sigmoid"), scipy.special.expit(z / t), rtol=1e-12)
+
+
+def test_vector_argmax_is_checked_against_the_reference(rng):
+    # Vector scaling may change the argmax; the check compares with the reference's.
+    z = rng.normal(scale=1.0, size=(200, 3))
+    vec = Scaling.of_affine([1.0, 1.0, 1.0], [0.0, 0.0, 2.0], "vector", "multiclass")
+    good = scipy.special.softmax(z + [0.0, 0.0, 2.0], axis=1)
+    assert (good.argmax(1) != z.argmax(1)).any()
+    checks = {c.name: c for c in compare(good, z, vec, "softmax", "float64")}
+    assert all(c.passed for c in checks.values())
+    checks = {c.name: c for c in compare(scipy.special.softmax(z, axis=1), z, vec, "softmax", "float64")}
+    assert not checks["argmax"].passed and not checks["reference"].passed
+
+
+def test_record_check_compares_every_parameter():
+    recorded = {"w": [1.0, 2.0], "b": [0.5, -0.5]}
+    assert record_check(recorded, {"w": np.array([1.0, 2.0]), "b": np.array([0.5, -0.5])}).passed
+    assert not record_check(recorded, {"w": np.array([1.0, 2.0]), "b": np.array([0.5, -0.4])}).passed
+    assert not record_check(recorded, {"w": np.array([1.0]), "b": np.array([0.5])}).passed

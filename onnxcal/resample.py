@@ -1,0 +1,350 @@
+"""Honest evaluation of a fit: a stratified holdout split and bootstrap intervals.
+
+Bootstrap (Efron 1979): each replicate draws, with replacement, as many rows
+as the fit part has from the fit part and as many as the held-out part has
+from the held-out part (the same draw serves both with ``--holdout 0``),
+refits the parameters on the resampled fit part and scores the refitted
+map on the resampled held-out part, so the intervals carry the uncertainty
+of the parameters and the sampling noise of the metrics together. A draw
+is a vector of counts (how often each row was drawn), used as weights; no
+resampled copy of the logits is made. The interval is the 2.5th to 97.5th
+percentile of the replicates (Efron & Tibshirani 1993, ch. 13).
+
+Temperature scaling of a multiclass model has a fast path whose cost does
+not grow with the number of replicates: after one pass at the fit (for the
+standard error that sets the grid), one chunked pass computes, for every row, the NLL's derivatives (fit part) and the metrics' per-row terms
+with their derivatives (held-out part) at a grid of G = 9 values of
+beta = 1/T spanning +-6 standard errors around the fit. A replicate's
+weighted gradient at the grid points is then a dot product with its
+counts, its root comes from cubic Hermite interpolation between the two
+grid points around it, and its metrics from the same interpolation of each
+row's terms. The interpolation error is of order (grid step)^4, far below
+the spread of the replicates (tests check it against the exact refit). A
+replicate whose root falls outside the grid is refitted exactly. When the
+held-out part is small enough (rows x classes x replicates below
+``EXACT_EVAL_BUDGET``), replicates are scored exactly instead, classwise
+ECE included; above it the classwise ECE gets no interval (it would need
+every class probability of every row per replicate).
+
+References
+----------
+Efron, "Bootstrap Methods: Another Look at the Jackknife", Annals of
+Statistics 7(1), 1979. Efron & Tibshirani, "An Introduction to the
+Bootstrap", Chapman & Hall 1993, ch. 13 (percentile intervals).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .errors import OnnxcalError
+from .metrics import (
+    METRIC_FIELDS,
+    ece_from_bins,
+    equal_mass_bins,
+    evaluate,
+    iter_chunks,
+    mce_from_bins,
+    reliability_bins,
+)
+from .scaling import Scaling
+
+LEVEL = 0.95
+GRID_POINTS = 9
+GRID_HALF_WIDTH = 6.0  # standard errors of log(beta) on each side of the fit
+EXACT_EVAL_BUDGET = 2e7  # held-out rows x classes x replicates scored exactly
+
+
+# --------------------------------------------------------------------------
+# Holdout
+
+
+def _strata(labels: np.ndarray) -> np.ndarray:
+    """One stratum per row: the class, or for multi-label rows the rarest label present."""
+    labels = np.asarray(labels)
+    if labels.ndim == 1:
+        return labels.astype(np.int64)
+    freq = labels.sum(axis=0).astype(np.float64)
+    masked = np.where(labels > 0, freq[None, :], np.inf)
+    strata = masked.argmin(axis=1)
+    strata[~(labels > 0).any(axis=1)] = labels.shape[1]  # rows with no label present
+    return strata
+
+
+def strata_name(labels: np.ndarray) -> str:
+    """What the split is stratified by, for the record."""
+    return "class" if np.ndim(labels) == 1 else "rarest label present"
+
+
+def split_holdout(labels: np.ndarray, fraction: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """Stratified split into (fit rows, held-out rows), both sorted.
+
+    From each stratum (class; for multi-label rows, the rarest label
+    present, a simple form of stratification common in practice) a random
+    round(fraction * size) rows are held out, so every class keeps its share
+    in both parts.
+
+    Raises
+    ------
+    OnnxcalError
+        The fraction leaves no rows in one of the parts.
+
+    Examples
+    --------
+    >>> fit_rows, held = split_holdout(np.array([0, 0, 0, 0, 1, 1, 1, 1]), 0.25, seed=0)
+    >>> len(held), sorted(np.array([0, 0, 0, 0, 1, 1, 1, 1])[held].tolist())
+    (2, [0, 1])
+    """
+    strata = _strata(labels)
+    n = len(strata)
+    rng = np.random.default_rng(seed)
+    perm = rng.permutation(n)
+    order = perm[np.argsort(strata[perm], kind="stable")]
+    sorted_strata = strata[order]
+    starts = np.flatnonzero(np.r_[True, sorted_strata[1:] != sorted_strata[:-1]])
+    sizes = np.diff(np.r_[starts, n])
+    group = np.repeat(np.arange(len(starts)), sizes)
+    rank = np.arange(n) - starts[group]
+    take = np.floor(fraction * sizes + 0.5).astype(np.int64)
+    held = np.zeros(n, dtype=bool)
+    held[order[rank < take[group]]] = True
+    if not held.any() or held.all():
+        raise OnnxcalError(
+            f"--holdout {fraction:g} leaves {'no' if not held.any() else 'all'} of the {n} samples "
+            "held out",
+            "use a larger set, a fraction between 0.1 and 0.5, or --holdout 0 (in-sample figures)",
+        )
+    return np.flatnonzero(~held), np.flatnonzero(held)
+
+
+# --------------------------------------------------------------------------
+# Bootstrap
+
+
+def _counts(rng: np.random.Generator, n: int) -> np.ndarray:
+    """How often each of n rows is drawn in n draws with replacement."""
+    return np.bincount(rng.integers(0, n, n), minlength=n).astype(np.float64)
+
+
+def _draws(rng: np.random.Generator, replicates: int, n_fit: int, n_eval: int | None):
+    """Yield (fit counts, held-out counts) per replicate, one at a time."""
+    for _ in range(replicates):
+        cf = _counts(rng, n_fit)
+        yield cf, (cf if n_eval is None else _counts(rng, n_eval))
+
+
+def _percentile(values: np.ndarray) -> list:
+    """[low, high] per column of (replicates, ...) values; None where any is NaN."""
+    q = np.percentile(values, [100 * (1 - LEVEL) / 2, 100 * (1 + LEVEL) / 2], axis=0)
+    if q.ndim == 1:
+        return None if not np.all(np.isfinite(q)) else [float(q[0]), float(q[1])]
+    return [_percentile(values[:, j]) for j in range(values.shape[1])]
+
+
+def bootstrap(
+    logits: np.ndarray,
+    labels: np.ndarray,
+    options,
+    fit_rows: np.ndarray,
+    eval_rows: np.ndarray,
+    start: Scaling,
+) -> dict:
+    """Percentile intervals for the parameters and every after-metric.
+
+    Parameters
+    ----------
+    options : onnxcal.fit.FitOptions
+        Method, replicates (``bootstrap``), seed, bins.
+    fit_rows, eval_rows : ndarray of int
+        The two parts (the same array for an in-sample evaluation).
+    start : Scaling
+        The fit on ``fit_rows``: the replicates start from it.
+
+    Returns
+    -------
+    dict
+        ``level``, ``replicates``, ``parameters`` ({name: [low, high] or a list
+        of them}), ``after`` ({metric: [low, high] or None}), ``exact_eval``
+        and ``notes``.
+    """
+    rng = np.random.default_rng([options.seed, 1])
+    same = fit_rows is eval_rows
+    fast = start.method == "temperature" and start.kind == "multiclass"
+    draws = _draws(rng, options.bootstrap, len(fit_rows), None if same else len(eval_rows))
+    if fast:
+        params, metrics, fallbacks = _grid_replicates(logits, labels, options, fit_rows, eval_rows, start, draws)
+    else:
+        params, metrics = _exact_replicates(logits, labels, options, fit_rows, eval_rows, start, draws)
+        fallbacks = 0
+    names = list(start.parameters)
+    out = {
+        "level": LEVEL,
+        "kind": "percentile",
+        "replicates": options.bootstrap,
+        "seed": options.seed,
+        "parameters": {name: _percentile(np.array([p[name] for p in params])) for name in names},
+        "after": {f: _percentile(np.array([m[f] for m in metrics])) for f in METRIC_FIELDS},
+        "notes": [],
+    }
+    if start.temperature is not None:
+        out["temperature"] = out["parameters"]["temperature"]
+    what = "held-out" if not same else "in-sample"
+    out["notes"].append(
+        f"95% percentile intervals from {options.bootstrap} bootstrap replicates (refit on a resampled "
+        f"fit part, scored on a resampled {what} part)"
+    )
+    if out["after"]["classwise_ece"] is None:
+        out["notes"].append(
+            "no interval for classwise ECE: the held-out part is too large to score every "
+            "replicate's class probabilities exactly"
+        )
+    if fallbacks:
+        out["notes"].append(f"{fallbacks} replicates fell outside the interpolation grid and were refitted exactly")
+    return out
+
+
+def _exact_replicates(logits, labels, options, fit_rows, eval_rows, start, draws):
+    from .fit import fit_scaling
+
+    params, metrics = [], []
+    for cf, ce in draws:
+        res = fit_scaling(logits, labels, options, rows=fit_rows, weights=cf, start=start)
+        m = evaluate(logits, labels, res.scaling, options.n_bins, rows=eval_rows, weights=ce)
+        params.append(res.scaling.arrays())
+        metrics.append(m.to_dict())
+    return params, metrics
+
+
+# Fast path for multiclass temperature scaling --------------------------------
+
+
+def _grid_terms(logits, labels, rows, betas, held_out: bool) -> dict[str, np.ndarray]:
+    """Per-row terms at each beta of the grid, float32 arrays of shape (rows, G).
+
+    Fit part: ``g`` (dNLL/dbeta) and ``h`` (d2NLL/dbeta2). Held-out part:
+    NLL, confidence and Brier terms with their beta-derivatives, and whether
+    the (beta-invariant) argmax is right.
+    """
+    g_count = len(betas)
+    names = ("nll", "g", "conf", "dconf", "brier", "dbrier") if held_out else ("g", "h")
+    out = {k: np.empty((len(rows), g_count), dtype=np.float32) for k in names}
+    correct = np.empty(len(rows), dtype=bool)
+    start = 0
+    for z, y, _ in iter_chunks(logits, labels, rows):
+        c = len(y)
+        r = np.arange(c)
+        correct[start : start + c] = z.argmax(axis=1) == y
+        z -= z.max(axis=1, keepdims=True)
+        zy = z[r, y]
+        for j, beta in enumerate(betas):
+            e = np.exp(beta * z)
+            tot = e.sum(axis=1)
+            m1 = np.einsum("ij,ij->i", e, z) / tot  # E_p[z] (shifted)
+            sl = (slice(start, start + c), j)
+            out["g"][sl] = m1 - zy
+            if not held_out:
+                m2 = np.einsum("ij,ij,ij->i", e, z, z) / tot
+                out["h"][sl] = np.maximum(m2 - m1 * m1, 0.0)
+                continue
+            p_y = np.exp(beta * zy) / tot
+            sq = np.einsum("ij,ij->i", e, e) / (tot * tot)  # sum_k p_k^2
+            sqz = np.einsum("ij,ij,ij->i", e, e, z) / (tot * tot)  # sum_k p_k^2 z_k
+            out["nll"][sl] = np.log(tot) - beta * zy
+            out["conf"][sl] = 1.0 / tot  # the top class has z = 0 after the shift
+            out["dconf"][sl] = -m1 / tot  # p_max (z_max - E_p z)
+            out["brier"][sl] = sq - 2.0 * p_y + 1.0
+            out["dbrier"][sl] = 2.0 * (sqz - m1 * sq) - 2.0 * p_y * (zy - m1)
+        start += c
+    if held_out:
+        out["correct"] = correct
+    return out
+
+
+def _hermite(t, h, y0, d0, y1, d1):
+    """Cubic Hermite interpolation on an interval of length h at t in [0, 1]."""
+    t2, t3 = t * t, t * t * t
+    return (
+        (2 * t3 - 3 * t2 + 1) * y0 + (t3 - 2 * t2 + t) * h * d0 + (-2 * t3 + 3 * t2) * y1 + (t3 - t2) * h * d1
+    )
+
+
+def _grid(logits, labels, fit_rows, beta_hat) -> np.ndarray:
+    """Betas around the fit, +-GRID_HALF_WIDTH sandwich standard errors of log(beta)."""
+    terms = _grid_terms(logits, labels, fit_rows, [beta_hat], held_out=False)
+    g = terms["g"][:, 0].astype(np.float64)
+    h = terms["h"][:, 0].astype(np.float64)
+    # Sandwich variance of an M-estimator: Var(beta) = sum g_i^2 / (sum h_i)^2.
+    se_log = float(np.sqrt(np.sum(g * g)) / max(np.sum(h), 1e-300) / beta_hat)
+    half = GRID_HALF_WIDTH * max(se_log, 1e-4)
+    return beta_hat * np.exp(np.linspace(-half, half, GRID_POINTS))
+
+
+def _grid_replicates(logits, labels, options, fit_rows, eval_rows, start, draws):
+    from .fit import fit_scaling
+
+    betas = _grid(logits, labels, fit_rows, 1.0 / start.temperature)
+    fit_terms = _grid_terms(logits, labels, fit_rows, betas, held_out=False)
+    n_classes = logits.shape[1]
+    exact_eval = len(eval_rows) * n_classes * options.bootstrap <= EXACT_EVAL_BUDGET
+    held = None if exact_eval else _grid_terms(logits, labels, eval_rows, betas, held_out=True)
+    steps = np.diff(betas)
+    params, metrics, fallbacks = [], [], 0
+    for cf, ce in draws:
+        s = cf @ fit_terms["g"].astype(np.float64)  # weighted gradient at each grid beta
+        d = cf @ fit_terms["h"].astype(np.float64)
+        j = int(np.searchsorted(s, 0.0)) - 1  # s is increasing in beta (convex NLL)
+        if j < 0 or j >= len(betas) - 1:
+            res = fit_scaling(logits, labels, options, rows=fit_rows, weights=cf, start=start)
+            beta, j = 1.0 / res.temperature, None
+            fallbacks += 1
+        else:
+            t = _hermite_root(steps[j], s[j], d[j], s[j + 1], d[j + 1])
+            beta = betas[j] + t * steps[j]
+        params.append({"temperature": np.array(1.0 / beta)})
+        if exact_eval or j is None:
+            m = evaluate(logits, labels, 1.0 / beta, options.n_bins, rows=eval_rows, weights=ce).to_dict()
+            if held is not None:
+                m["classwise_ece"] = float("nan")
+        else:
+            m = _interpolated_metrics(held, ce, j, t, steps[j], options.n_bins)
+        metrics.append(m)
+    return params, metrics, fallbacks
+
+
+def _hermite_root(h, s0, d0, s1, d1) -> float:
+    """t in [0, 1] where the Hermite cubic through (s0, d0), (s1, d1) crosses 0."""
+    lo, hi = 0.0, 1.0
+    for _ in range(60):  # bisection: the cubic is increasing between two such points
+        mid = 0.5 * (lo + hi)
+        if _hermite(mid, h, s0, d0, s1, d1) < 0:
+            lo = mid
+        else:
+            hi = mid
+    return 0.5 * (lo + hi)
+
+
+def _interpolated_metrics(held, weights, j, t, h, n_bins) -> dict:
+    def at(name, deriv):
+        y = held[name].astype(np.float64)
+        d = held[deriv].astype(np.float64)
+        return _hermite(t, h, y[:, j], d[:, j], y[:, j + 1], d[:, j + 1])
+
+    total = weights.sum()
+    nll = float(weights @ at("nll", "g")) / total
+    brier = float(weights @ at("brier", "dbrier")) / total
+    conf = np.clip(at("conf", "dconf"), 0.0, 1.0)
+    correct = held["correct"]
+    bins = reliability_bins(conf, correct, n_bins, weights)
+    accuracy = float(weights @ correct) / total
+    mean_conf = float(weights @ conf) / total
+    return {
+        "nll": nll,
+        "ece": ece_from_bins(*bins),
+        "mce": mce_from_bins(*bins),
+        "adaptive_ece": ece_from_bins(*equal_mass_bins(conf, correct, n_bins, weights)),
+        "classwise_ece": float("nan"),
+        "brier": brier,
+        "accuracy": accuracy,
+        "mean_confidence": mean_conf,
+        "gap": mean_conf - accuracy,
+    }
