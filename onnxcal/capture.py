@@ -341,9 +341,10 @@ def _disagreement(
 ) -> str | None:
     """Why a freed batch does not reproduce the exported model's runs, or None.
 
-    float32 results of one sample computed alone or within a batch may differ
-    in the last bits (kernels may sum in another order), so floats are
-    compared to 1e-5 relative to their scale (common practice).
+    Results of one sample computed alone or within a batch may differ in
+    the last bits (kernels may sum in another order), so floats are compared
+    to 1e-5 relative to their scale, or 8 units in the last place of a
+    narrower dtype such as float16 (common practice).
     """
     for name, g, w in zip(names, got, want):
         if g.shape != w.shape:
@@ -352,7 +353,7 @@ def _disagreement(
             scale = max(1.0, float(np.nanmax(np.abs(w)))) if w.size else 1.0
             err = float(np.nanmax(np.abs(g.astype(np.float64) - w))) if w.size else 0.0
             same_nan = np.array_equal(np.isnan(g), np.isnan(w))
-            if not same_nan or err > 1e-5 * scale:
+            if not same_nan or err > max(1e-5, 8 * float(np.finfo(w.dtype).eps)) * scale:
                 return f"output '{name}' differs from {fixed}-sample runs by up to {err:.3g}"
         elif not np.array_equal(g, w):
             return f"output '{name}' differs from {fixed}-sample runs"

@@ -133,6 +133,7 @@ BinsOpt = Annotated[int, typer.Option("--bins", help="Bins of the ECEs.")]
 # --------------------------------------------------------------------------
 # Data, image and runtime options, shared by capture, calibrate and verify
 
+
 def _option(name: str, kind, default, flag: str, help: str, **extra) -> _inspect.Parameter:
     extra.setdefault("show_default", default is not None)
     option = typer.Option(flag, help=help, **extra)

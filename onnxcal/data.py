@@ -600,8 +600,8 @@ def class_indices(
         listed = ", ".join(classes[:8]) + (", ..." if len(classes) > 8 else "")
         where = f"the class list '{classes_file}'" if classes_file else "the class list"
         raise OnnxcalError(
-            f"label '{wanted[i]}' at {describe(i)} is not in {where} ({listed}); "
-            f"{int((~found).sum())} labels are unknown",
+            f"label '{wanted[i]}' at {describe(i)} is not in {where} ({listed}; "
+            f"{int((~found).sum())} unknown in all)",
             "fix the label or add the class to the class list",
         )
     return order[pos].astype(np.int64)
