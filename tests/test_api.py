@@ -11,8 +11,25 @@ from sklearn.exceptions import ConvergenceWarning
 from sklearn.model_selection import train_test_split
 from sklearn.neural_network import MLPClassifier
 
-from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, mlp_model, random_mlp
+from conftest import (
+    BELT_CLASSES,
+    BELT_IMAGES,
+    BELT_MODEL,
+    BELT_PREPROCESS,
+    DEMO_CLASSES,
+    DEMO_CSV,
+    DEMO_MODEL,
+    DEMO_TEST,
+    DEMO_VAL,
+    TICKETS,
+    TICKETS_CLASSES,
+    TICKETS_LABELS,
+    TICKETS_MODEL,
+    mlp_model,
+    random_mlp,
+)
 from onnxcal import api, graph
+from onnxcal.data import DataSpec, Selection
 from onnxcal.fit import FitOptions
 from onnxcal.metrics import evaluate
 
@@ -98,21 +115,6 @@ def test_inspect_demo():
 
 # --------------------------------------------------------------------------
 # Every input form through calibrate
-
-
-from conftest import (  # noqa: E402
-    BELT_CLASSES,
-    BELT_IMAGES,
-    BELT_MODEL,
-    BELT_PREPROCESS,
-    DEMO_CLASSES,
-    DEMO_CSV,
-    TICKETS,
-    TICKETS_CLASSES,
-    TICKETS_LABELS,
-    TICKETS_MODEL,
-)
-from onnxcal.data import DataSpec, Selection  # noqa: E402
 
 QUICK = FitOptions(holdout=0, bootstrap=0)  # in-sample, no intervals: these tests are about the data
 

@@ -12,9 +12,15 @@ import pytest
 from onnx import numpy_helper
 
 from conftest import (
+    BELT_CLASSES,
+    BELT_IMAGES,
+    BELT_MODEL,
     DEMO_MODEL,
     DEMO_TEST,
     DEMO_VAL,
+    TICKETS,
+    TICKETS_LABELS,
+    TICKETS_MODEL,
     files_in,
     identity_model,
     onehot_int_model,
@@ -170,7 +176,6 @@ def test_usage_error_exits_2(run_cli):
 # --------------------------------------------------------------------------
 # Data forms, shards and warnings on the command line
 
-from conftest import BELT_CLASSES, BELT_IMAGES, BELT_MODEL, TICKETS, TICKETS_LABELS, TICKETS_MODEL  # noqa: E402
 
 
 def test_images_and_npy_inputs_on_the_command_line(tmp_path, run_cli):
