@@ -243,8 +243,8 @@ class PatchOptions:
     compute_dtype : {"float32", "float64"}, optional
         Run the Div and activation in this dtype (e.g. for float16 models).
     fold : bool
-        Fold 1/T into the weight and bias of the final Gemm / MatMul(+Add)
-        (temperature scaling with one T only).
+        Fold the scaling into the weight and bias of the final Gemm /
+        MatMul(+Add) instead of adding nodes (every method).
     """
 
     output: str | None = None
@@ -349,10 +349,14 @@ def _verify_models(
     rows = _capture.as_rows(probs, site.class_axis)
     dtypes = (site.dtype, site.output_dtype or site.dtype)
     checks = _verify.compare(rows, logits, record.scaling, record.activation, dtypes)
-    in_graph = graph.parameter_values(patched, record, original_model)
-    recorded = {"temperature": record.temperature} if record.folded else record.parameters
+    if record.folded:
+        found = graph.folded_values(patched, record, original_model)
+        record_check = _verify.folded_record_check(record.scaling, found)
+    else:
+        in_graph = graph.parameter_values(patched, record)
+        record_check = _verify.record_check(record.parameters, in_graph, graph.temperature_dtype(patched, record))
     checks += (
-        _verify.record_check(recorded, in_graph, graph.temperature_dtype(patched, record)),
+        record_check,
         _verify.source_check(record.source_sha256, original_sha),
     )
     return VerifyResult(checks=checks, n=dataset.n, original=original)

@@ -95,7 +95,8 @@ FoldOpt = Annotated[
     bool,
     typer.Option(
         "--fold",
-        help="Scale the weight and bias of the final Gemm / MatMul(+Add) by 1/T instead of adding a Div.",
+        help="Fold the scaling into the weight and bias of the Gemm / MatMul(+Add) computing the "
+        "logits (1/T, or per class w and b for vector, Platt and per-label scaling) instead of adding nodes.",
     ),
 ]
 MethodOpt = Annotated[
@@ -567,7 +568,8 @@ def patch(
 def _how(r) -> str:
     """One line on what the patch did to the graph."""
     if r.folded:
-        how = "1/T folded into the weight and bias of the logits layer"
+        what = "1/T" if r.temperature is not None else f"{r.method} scaling"
+        how = f"{what} folded into the weight and bias of the logits layer"
         how += "; Softmax appended" if r.rewrite == "append-softmax" else ""
         how += "; Sigmoid appended" if r.rewrite == "append-sigmoid" else ""
         return how
