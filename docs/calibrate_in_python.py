@@ -17,6 +17,7 @@
 from pathlib import Path
 
 import onnxcal
+from onnxcal.data import DataSpec
 from onnxcal.fit import FitOptions
 
 MODEL = Path("fixtures/conveyor_faults.onnx")
@@ -72,11 +73,12 @@ print("open", report.directory + "/report.html")
 
 # %% [markdown]
 # The same in one call (capture, fit, patch, verify in memory, write only when
-# every check passes, and the report beside it):
+# every check passes, and the report beside it). A `DataSpec` says how to read
+# the data; here it also names the classes, which the capture records:
 
 # %%
-result = onnxcal.calibrate(MODEL, VALIDATION, OUT / "calibrated_again.onnx", report=OUT / "report_again",
-                           class_names=CLASSES, force=True)
+data = DataSpec(path=VALIDATION, classes=CLASSES)
+result = onnxcal.calibrate(MODEL, data, OUT / "calibrated_again.onnx", report=OUT / "report_again", force=True)
 print("written:", result.patch.path if result.patch else None, "| checks passed:", result.verification.passed)
 
 # %% [markdown]

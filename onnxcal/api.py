@@ -11,7 +11,7 @@ from __future__ import annotations
 import os
 import time
 from collections.abc import Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -22,8 +22,8 @@ from . import graph
 from . import report as _report
 from . import verify as _verify
 from ._files import atomic_write_bytes, check_output_path, require_file, sha256_file
-from .capture import Capture, ProgressFn
-from .data import Dataset, load_npz
+from .capture import Capture, ProgressFn, RunOptions
+from .data import DataSpec, Dataset, check_selection, load_dataset
 from .errors import OnnxcalError
 from .fit import FitOptions, FitSummary
 from .graph import ModelInfo, Record
@@ -32,7 +32,7 @@ from .report import ReportResult
 from .scaling import METHODS, MULTILABEL_MODES, Scaling, check_scaling, kind_of
 from .verify import Check, VerifyResult
 
-DEFAULT_LATENCY_RUNS = 50
+DEFAULT_LATENCY_RUNS = 100
 
 
 @dataclass(frozen=True)
@@ -71,34 +71,63 @@ def _require_finite(logits: np.ndarray, source: str) -> None:
         )
 
 
-def _load_data(data_path: str | os.PathLike, require_labels: bool = True) -> Dataset:
-    return load_npz(data_path, require_labels=require_labels)
+DataSource = str | os.PathLike | DataSpec
+"""A validation set: a path (``.npz``, ``.npy``, ``.csv`` or an image folder) or a DataSpec."""
+
+
+def _data_spec(data: DataSource) -> DataSpec:
+    spec = data if isinstance(data, DataSpec) else DataSpec(path=data)
+    check_selection(spec.selection)  # before any work
+    return spec
+
+
+def _load_data(model, data: DataSource, require_labels: bool = True) -> Dataset:
+    """Load the set for ``model``'s inputs (checked against them)."""
+    init = {i.name for i in model.graph.initializer}
+    specs = [graph.tensor_spec(vi) for vi in model.graph.input if vi.name not in init]
+    return load_dataset(_data_spec(data), specs, require_labels=require_labels)
+
+
+def _run_options(batch_size: int, threads: int, optimization: str, provider: str) -> RunOptions:
+    return _capture.check_run_options(RunOptions(batch_size, threads, optimization, provider))
 
 
 def capture(
     model_path: str | os.PathLike,
-    data_path: str | os.PathLike,
+    data: DataSource,
     *,
     out: str | os.PathLike | None = None,
     output: str | None = None,
     batch_size: int = _capture.DEFAULT_BATCH,
+    threads: int = 0,
+    optimization: str = "all",
+    provider: str = _capture.CPU,
     force: bool = False,
     progress: ProgressFn | None = None,
     activation: str | None = None,
 ) -> Capture:
-    """Run the model over a labelled ``.npz`` set; return (and write) the logits.
+    """Run the model over a labelled set; return (and write) the logits.
 
     Parameters
     ----------
     model_path : path
         The ONNX model.
-    data_path : path
-        ``.npz`` with one array per model input and ``labels``.
+    data : path or DataSpec
+        The validation set: ``.npz`` with one array per model input and
+        ``labels``, a CSV table, a folder of images, or a
+        :class:`~onnxcal.data.DataSpec` for per-input ``.npy`` files, class
+        names, preprocessing and ``--limit``/``--shuffle-seed``/``--shard``.
     out : path, optional
-        Where to write the capture file.
+        Where to write the capture file; the logits are streamed into it
+        and the returned capture's logits are a memory map of it.
     output : str, optional
         The class-score output (the likeliest float output by default).
     batch_size : int, default 64
+    threads : int, default 0
+        onnxruntime intra-op threads (0: its default).
+    optimization : str, default "all"
+        Graph optimisation level: disable, basic, extended or all.
+    provider : str, default "CPUExecutionProvider"
     force : bool
         Replace an existing ``out``.
     progress : callable, optional
@@ -107,28 +136,22 @@ def capture(
         How raw logits become probabilities (default: sigmoid for one logit,
         softmax otherwise); decides the labels' form.
     """
+    spec = _data_spec(data)
     if out is not None:
-        check_output_path(out, [model_path, data_path], force=force)
-    _check_batch_size(batch_size)
+        check_output_path(out, [model_path, *spec.files()], force=force)
+    run = _run_options(batch_size, threads, optimization, provider)
     model = graph.load_model(model_path)
-    cap = _capture.capture(
+    return _capture.capture(
         model,
-        _load_data(data_path),
+        _load_data(model, spec),
         model_path=model_path,
         model_sha256=sha256_file(model_path),
         output=output,
-        batch_size=batch_size,
+        options=run,
         progress=progress,
         activation=activation,
+        out=out,
     )
-    if out is not None:
-        _capture.save_capture(out, cap)
-    return cap
-
-
-def _check_batch_size(batch_size: int) -> None:
-    if batch_size < 1:
-        raise OnnxcalError(f"--batch-size {batch_size} is not a positive number of samples")
 
 
 def check_fit_options(options: FitOptions) -> FitOptions:
@@ -164,7 +187,7 @@ def check_fit_options(options: FitOptions) -> FitOptions:
 
 
 def fit(
-    source: Capture | str | os.PathLike,
+    source: Capture | str | os.PathLike | Sequence[str | os.PathLike],
     *,
     out: str | os.PathLike | None = None,
     force: bool = False,
@@ -174,8 +197,9 @@ def fit(
 
     Parameters
     ----------
-    source : Capture or path
-        A capture, or the path of a capture file.
+    source : Capture, path or sequence of paths
+        A capture, or capture files (several are merged: same model, output
+        and class list, no shared rows; see :func:`onnxcal.capture.merge_captures`).
     out : path, optional
         Where to write FIT.json.
     force : bool
@@ -184,15 +208,19 @@ def fit(
         Method, holdout, bootstrap, ... (see :class:`onnxcal.fit.FitOptions`).
     """
     check_fit_options(options)
-    inputs = [] if isinstance(source, Capture) else [source]
+    inputs = [] if isinstance(source, Capture) else _capture_paths(source)
     if out is not None:
         check_output_path(out, inputs, force=force)
-    cap = source if isinstance(source, Capture) else _capture.load_capture(source)
-    _require_finite(cap.logits, cap.meta.data_source if isinstance(source, Capture) else str(source))
+    cap = source if isinstance(source, Capture) else _capture.load_captures(inputs)
+    _require_finite(cap.logits, cap.meta.data_source if isinstance(source, Capture) else ", ".join(map(str, inputs)))
     summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options)
     if out is not None:
         _fit.save_fit(out, summary)
     return summary
+
+
+def _capture_paths(source: str | os.PathLike | Sequence[str | os.PathLike]) -> list:
+    return [source] if isinstance(source, (str, os.PathLike)) else list(source)
 
 
 def _resolve_scaling(
@@ -223,8 +251,8 @@ class PatchOptions:
     compute_dtype : {"float32", "float64"}, optional
         Run the Div and activation in this dtype (e.g. for float16 models).
     fold : bool
-        Fold 1/T into the weight and bias of the final Gemm / MatMul(+Add)
-        (temperature scaling with one T only).
+        Fold the scaling into the weight and bias of the final Gemm /
+        MatMul(+Add) instead of adding nodes (every method).
     """
 
     output: str | None = None
@@ -316,46 +344,13 @@ def _as_paths(value) -> list:
     return list(value)
 
 
-def _load_scores(paths: Sequence[str | os.PathLike]) -> Capture:
-    """Read one or more capture files as one Capture, rows in the order given.
-
-    Every operation that reads capture files (``verify --scores``,
-    ``report``) reads them through this function.
-
-    Raises
-    ------
-    OnnxcalError
-        No file, a file that is not a capture, or captures of different
-        models, outputs or kinds.
-    """
-    if not paths:
-        raise OnnxcalError("no capture file given", "give the file(s) written by 'onnxcal capture'")
-    caps = [_capture.load_capture(p) for p in paths]
-    first = caps[0].meta
-    for path, cap in zip(paths[1:], caps[1:]):
-        m = cap.meta
-        if (m.model_sha256, m.scores, m.num_classes, m.fit_as) != (
-            first.model_sha256, first.scores, first.num_classes, first.fit_as
-        ):
-            raise OnnxcalError(
-                f"capture file '{path}' holds scores of another model or output than '{paths[0]}'",
-                "give captures of one model's output",
-            )
-    if len(caps) == 1:
-        return caps[0]
-    logits = np.concatenate([c.logits for c in caps])
-    labels = np.concatenate([c.labels for c in caps])
-    meta = replace(first, n=int(len(logits)), data_source=", ".join(c.meta.data_source for c in caps))
-    return Capture(logits=logits, labels=labels, meta=meta)
-
-
-def _run_output(model, site, dataset: Dataset, batch_size: int, progress) -> np.ndarray:
+def _run_output(model, site, dataset: Dataset, run: RunOptions, progress) -> np.ndarray:
     """The values of ``site``'s output for every sample, class axis last: (rows, k)."""
     (values,) = _capture.run_model(
         graph.expose(model, [site.tensor]),
         dataset,
         [site.tensor],
-        batch_size=batch_size,
+        options=run,
         progress=progress,
         description="running patched model",
     )
@@ -371,13 +366,16 @@ def _reference_checks(
     if record.folded and original_model is None:
         checks.append(
             _verify.skipped(
-                "record", "T is folded into the weights; reading it back needs the original model (--original)"
+                "record", "the parameters are folded into the weights; reading them back needs the "
+                "original model (--original)"
             )
         )
+    elif record.folded:
+        found = graph.folded_values(patched, record, original_model)
+        checks.append(_verify.folded_record_check(record.scaling, found))
     else:
-        in_graph = graph.parameter_values(patched, record, original_model)
-        recorded = {"temperature": record.temperature} if record.folded else record.parameters
-        checks.append(_verify.record_check(recorded, in_graph, graph.temperature_dtype(patched, record)))
+        in_graph = graph.parameter_values(patched, record)
+        checks.append(_verify.record_check(record.parameters, in_graph, graph.temperature_dtype(patched, record)))
     if source_sha is None:
         checks.append(
             _verify.skipped(
@@ -429,25 +427,18 @@ def _check_gate(max_ece, max_nll, min_accuracy, n_bins, max_latency_ratio, laten
         raise OnnxcalError(f"--bins {n_bins} is fewer than 2 bins")
 
 
-def _latency_feed(model, dataset: Dataset, batch_size: int) -> tuple[dict, int]:
-    """The first batch of the data, cast to the model's input dtypes (padded for a fixed batch)."""
-    init = {i.name for i in model.graph.initializer}
-    size = _capture._fixed_batch(model) or min(batch_size, dataset.n)
-    feed = {}
-    for vi in model.graph.input:
-        if vi.name in init:
-            continue
-        batch = np.asarray(dataset.inputs[vi.name][:size], dtype=graph.tensor_spec(vi).dtype)
-        if len(batch) < size:
-            batch = np.concatenate([batch, np.repeat(batch[-1:], size - len(batch), axis=0)])
-        feed[vi.name] = batch
-    return feed, size
-
-
-def _latency(base, patched, dataset: Dataset, batch_size: int, runs: int, max_ratio, against: str) -> Check:
-    feed, size = _latency_feed(patched, dataset, batch_size)
-    sessions = [_capture.make_session(base), _capture.make_session(patched)]
-    times = _verify.time_alternately([lambda s=s: s.run(None, feed) for s in sessions], runs)
+def _latency(base, patched, dataset: Dataset, run: RunOptions, runs: int, max_ratio, against: str) -> Check:
+    """Check (5): both models on the first batch of the data, timed alternately."""
+    plans = [_capture.plan_run(m, dataset, [o.name for o in m.graph.output], run) for m in (base, patched)]
+    size = min(plans[1].step, dataset.n)
+    feeds = []
+    for plan in plans:
+        feed = dataset.batch(0, size, plan.dtypes)
+        if plan.pad is not None and size < plan.pad:  # a fixed batch dim: pad as the runs do
+            feed = {k: np.concatenate([v, np.repeat(v[-1:], plan.pad - size, axis=0)]) for k, v in feed.items()}
+        feeds.append(feed)
+    calls = [lambda p=p, f=f: p.session.run(None, f) for p, f in zip(plans, feeds)]
+    times = _verify.time_alternately(calls, runs, warmup=max(3, runs // 10))
     return _verify.latency_check(times[0], times[1], max_ratio, batch=size, against=against)
 
 
@@ -471,7 +462,7 @@ def _threshold_checks(rows, activation, site, dataset: Dataset, cap: Capture | N
 
 def verify(
     patched_path: str | os.PathLike,
-    data_path: str | os.PathLike,
+    data: DataSource,
     *,
     original: str | os.PathLike | None = None,
     scores: str | os.PathLike | Sequence[str | os.PathLike] | None = None,
@@ -485,6 +476,9 @@ def verify(
     junit: str | os.PathLike | None = None,
     force: bool = False,
     batch_size: int = _capture.DEFAULT_BATCH,
+    threads: int = 0,
+    optimization: str = "all",
+    provider: str = _capture.CPU,
     progress: ProgressFn | None = None,
 ) -> VerifyResult:
     """Check a patched model for CI: reference, decisions, record, thresholds, latency.
@@ -509,8 +503,8 @@ def verify(
     ----------
     patched_path : path
         A model written by :func:`patch` or :func:`calibrate`.
-    data_path : path
-        ``.npz`` with one array per model input (``labels`` needed for
+    data : path or DataSpec
+        The inputs, in any form :func:`capture` takes (labels needed for
         the thresholds, unless ``scores`` carry them).
     original : path, optional
         The uncalibrated model; by default the path in the record, if that
@@ -527,6 +521,8 @@ def verify(
         of ``batch_size`` samples), and fail above ``max_latency_ratio``.
     junit : path, optional
         Also write the checks as JUnit XML here (``force`` to replace it).
+    batch_size, threads, optimization, provider
+        As for :func:`capture` (the latency runs use them too).
 
     Returns
     -------
@@ -541,7 +537,8 @@ def verify(
         labels, scores that do not line up with the data.
     """
     started = time.perf_counter()
-    _check_batch_size(batch_size)
+    spec = _data_spec(data)
+    run = _run_options(batch_size, threads, optimization, provider)
     _check_gate(max_ece, max_nll, min_accuracy, n_bins, max_latency_ratio, latency_runs)
     score_paths = _as_paths(scores)
     if original is not None and score_paths:
@@ -549,18 +546,18 @@ def verify(
             "give --original or --scores, not both", "--scores stands in for running the original model"
         )
     if junit is not None:
-        inputs = [patched_path, data_path, *score_paths, *([original] if original is not None else [])]
+        inputs = [patched_path, *spec.files(), *score_paths, *([original] if original is not None else [])]
         check_output_path(junit, inputs, force=force, option="--junit")
     latency = latency or max_latency_ratio is not None
     limits = {"max_ece": max_ece, "max_nll": max_nll, "min_accuracy": min_accuracy}
     thresholds = any(v is not None for v in limits.values())
     patched = graph.load_model(patched_path)
     record = graph.read_record(patched)
-    dataset = _load_data(data_path, require_labels=False)
-    cap = _load_scores(score_paths) if score_paths else None
+    dataset = _load_data(patched, spec, require_labels=False)
+    cap = _capture.load_captures(score_paths) if score_paths else None
     if thresholds and dataset.labels is None and cap is None:
         raise OnnxcalError(
-            f"--max-ece, --max-nll and --min-accuracy need labels, and '{data_path}' has none",
+            f"--max-ece, --max-nll and --min-accuracy need labels, and '{dataset.source}' has none",
             "add a 'labels' array, or give --scores with a capture of the same data",
         )
     if original is None and cap is None and record is not None and Path(record.source_path).is_file():
@@ -576,7 +573,7 @@ def verify(
     if record is None:
         mode, where = "none", str(original or "")
         site = graph.find_scores(patched)
-        rows = _run_output(patched, site, dataset, batch_size, progress)
+        rows = _run_output(patched, site, dataset, run, progress)
         activation = site.activation
         notes.append(f"'{patched_path}' carries no onnxcal calibration record, so there is no reference to compare with")
         decision = "decisions" if site.activation == "sigmoid" else "argmax"
@@ -598,14 +595,12 @@ def verify(
         if cap is not None:
             mode, where, logits, source_sha, params_from = "scores", ", ".join(map(str, score_paths)), cap.logits, cap.meta.model_sha256, None
         elif base is not None:
-            logits = _capture.capture_scores(
-                base, dataset, _source_site(base, record), batch_size=batch_size, progress=progress
-            )
+            logits = _capture.capture_scores(base, dataset, _source_site(base, record), options=run, progress=progress)
             mode, where, source_sha, params_from = "original", str(original), sha256_file(original), base
         else:
             unpatched = _unpatched(patched, patched_path)
             logits = _capture.capture_scores(
-                unpatched, dataset, _source_site(unpatched, record), batch_size=batch_size, progress=progress
+                unpatched, dataset, _source_site(unpatched, record), options=run, progress=progress
             )
             mode, where, source_sha, params_from = "patched-graph", str(patched_path), None, None
             notes.append(
@@ -615,13 +610,13 @@ def verify(
                 "original model's"
             )
             if record.folded:
-                notes.append("T is folded into the weights, so that reference only re-checks the activation; "
-                             "give --original or --scores to check T")
-        rows = _run_output(patched, site, dataset, batch_size, progress)
+                notes.append("the parameters are folded into the weights, so that reference only re-checks "
+                             "the activation; give --original or --scores to check the parameters")
+        rows = _run_output(patched, site, dataset, run, progress)
         if len(rows) != len(logits):
             raise OnnxcalError(
                 f"the reference holds {len(logits)} rows of scores but the patched model gives {len(rows)} "
-                f"rows on '{data_path}'",
+                f"rows on '{dataset.source}'",
                 "capture the original model on the same data file",
             )
         activation = record.activation
@@ -632,7 +627,7 @@ def verify(
         against = "original" if base is not None else "uncalibrated copy"
         reference_model = base if base is not None else _unpatched(patched, patched_path)
         checks.append(
-            _latency(reference_model, patched, dataset, batch_size, latency_runs, max_latency_ratio, against)
+            _latency(reference_model, patched, dataset, run, latency_runs, max_latency_ratio, against)
         )
     result = VerifyResult(
         checks=tuple(checks), n=dataset.n, original=where, reference_from=mode, notes=tuple(notes)
@@ -709,6 +704,17 @@ def _class_names(value, k: int) -> list[str] | None:
             "give one name per line, in the order of the model's classes",
         )
     return names
+
+
+def _capture_names(cap: Capture) -> list[str] | None:
+    """The class names a capture recorded (``--classes``, image folders), if they fit its logits."""
+    names = cap.meta.class_names
+    k = cap.logits.shape[1]
+    if not names:
+        return None
+    if k == 1 and len(names) == 2:  # binary: (negative, positive); the logit is the positive class's
+        return list(names[1:])
+    return list(names) if len(names) == k else None
 
 
 def _fit_from_record(record: Record, model_path) -> FitSummary | None:
@@ -793,7 +799,7 @@ def report(
     capture_paths = [] if isinstance(captures, Capture) else _as_paths(captures)
     inputs = [*capture_paths, *[p for p in (fit, model, class_names) if isinstance(p, (str, os.PathLike))]]
     _report_targets(out, formats, inputs, force, "--out")
-    cap = captures if isinstance(captures, Capture) else _load_scores(capture_paths)
+    cap = captures if isinstance(captures, Capture) else _capture.load_captures(capture_paths)
     _require_finite(cap.logits, ", ".join(map(str, capture_paths)) or cap.meta.data_source)
     calibrated = None
     if temperature is not None:
@@ -813,7 +819,7 @@ def report(
         source_sha, what = record.source_sha256, f"the calibration in '{model}'"
         calibrated = {"name": Path(model).name, "path": str(model), "sha256": sha256_file(model)}
     _check_report_scaling(scaling, cap, source_sha, what)
-    names = _class_names(class_names, cap.logits.shape[1])
+    names = _class_names(class_names, cap.logits.shape[1]) or _capture_names(cap)
     content = _report.build(
         cap, scaling, summary=summary, class_names=names, n_bins=n_bins, calibrated=calibrated
     )
@@ -826,7 +832,7 @@ def report(
 
 def calibrate(
     model_path: str | os.PathLike,
-    data_path: str | os.PathLike,
+    data: DataSource,
     out: str | os.PathLike,
     *,
     output: str | None = None,
@@ -836,27 +842,30 @@ def calibrate(
     compute_dtype: str | None = None,
     fold: bool = False,
     batch_size: int = _capture.DEFAULT_BATCH,
+    threads: int = 0,
+    optimization: str = "all",
+    provider: str = _capture.CPU,
     force: bool = False,
     progress: ProgressFn | None = None,
     options: FitOptions = FitOptions(),
     report: str | os.PathLike | None = None,
-    class_names: str | os.PathLike | Sequence[str] | None = None,
 ) -> CalibrateResult:
     """Capture, fit, patch and verify in one go (and write a report).
 
     The patched model is verified in memory against the captured logits
     before it is written; when a check fails nothing is written and
-    ``result.patch`` is None. ``output`` ... ``fold``: see :class:`PatchOptions`;
+    ``result.patch`` is None. ``data`` and ``batch_size`` ... ``provider``: as
+    for :func:`capture`; ``output`` ... ``fold``: see :class:`PatchOptions`;
     ``options`` are those of :func:`fit`. With ``report`` (a directory),
     every file of :func:`report` is written there too, with the
-    verification, also when it failed; ``class_names`` name the classes in it.
+    verification, also when it failed.
     """
     check_fit_options(options)
-    external = _check_outputs(out, [model_path, data_path], model_path, force)
+    spec = _data_spec(data)
+    external = _check_outputs(out, [model_path, *spec.files()], model_path, force)
     if report is not None:
-        names_input = [class_names] if isinstance(class_names, (str, os.PathLike)) else []
-        _report_targets(report, _report.FORMATS, [model_path, data_path, out, *names_input], force, "--report")
-    _check_batch_size(batch_size)
+        _report_targets(report, _report.FORMATS, [model_path, *spec.files(), out], force, "--report")
+    run = _run_options(batch_size, threads, optimization, provider)
     patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold)
     model = graph.load_model(model_path)
     if (previous := graph.read_record(model)) is not None:
@@ -865,24 +874,23 @@ def calibrate(
             f"calibrate the original model ({previous.source_path}), or change T with 'onnxcal patch'",
         )
     sha = sha256_file(model_path)
-    dataset = _load_data(data_path)
+    dataset = _load_data(model, spec)
     cap = _capture.capture(
         model,
         dataset,
         model_path=model_path,
         model_sha256=sha,
         output=output,
-        batch_size=batch_size,
+        options=run,
         progress=progress,
         activation=activation,
     )
-    _require_finite(cap.logits, str(data_path))
-    names = _class_names(class_names, cap.logits.shape[1])
+    _require_finite(cap.logits, dataset.source)
     summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options)
     patched = patching.patch(model, summary.scaling, sha=sha, path=model_path, fit=summary.to_dict())
     record = graph.read_record(patched)
     site = graph.find_scores(patched, record.output)
-    rows = _run_output(patched, site, dataset, batch_size, progress)
+    rows = _run_output(patched, site, dataset, run, progress)
     checks = _reference_checks(rows, site, record, cap.logits, patched, model, sha)
     result = VerifyResult(checks=tuple(checks), n=dataset.n, original=str(model_path))
     written = None
@@ -893,7 +901,8 @@ def calibrate(
     if report is not None:
         calibrated = None if written is None else {"name": Path(out).name, "path": str(out), "sha256": sha256_file(out)}
         content = _report.build(
-            cap, summary.scaling, summary=summary, class_names=names, calibrated=calibrated, verification=result
+            cap, summary.scaling, summary=summary, class_names=_capture_names(cap), calibrated=calibrated,
+            verification=result,
         )
         written_report = _write_report(report, content, _report.FORMATS)
     return CalibrateResult(summary=summary, patch=written, verification=result, report=written_report)

@@ -4,17 +4,32 @@ When the model already ends in a Softmax, LogSoftmax or Sigmoid, the tensor
 captured is that activation's input (the logits), exposed as an extra output
 of an in-memory copy; the model file is never changed.
 
-A capture file is an ``.npz`` with ``logits`` (float32, n x k), ``labels``
-(int64, n; or uint8, n x k 0/1 for a multi-label model) and ``meta`` (a JSON string, see :class:`CaptureMeta`).
+Batching. Models with a dynamic batch dim run ``batch_size`` samples per
+call. A model exported with a fixed batch dim B (often 1, on edge devices)
+is first tried in a copy with that dim made symbolic: the copy runs the
+first batch, and its output is compared with B-sample runs of the model as
+exported. If they agree the capture runs batched; if not (a Reshape that
+hard-codes the batch, say) it falls back to B samples per call with an
+:class:`~onnxcal.errors.OnnxcalWarning`.
+
+A capture file is an uncompressed ``.npz`` with ``logits`` (float32,
+rows x k), ``labels`` (int64, one per row; or uint8, rows x k 0/1 for a
+multi-label model), ``indices`` (int64, the row number of each
+sample in the validation set; absent when the capture holds every row in
+order) and ``meta`` (a JSON string, see
+:class:`CaptureMeta`). :func:`capture` with ``out`` streams the logits into
+the file batch by batch, so memory holds one batch whatever the set's size;
+the file is written under a temporary name and renamed when complete.
 """
 
 from __future__ import annotations
 
 import json
 import os
+import warnings
 import zipfile
-from collections.abc import Callable, Sequence
-from dataclasses import asdict, dataclass
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -22,14 +37,76 @@ import onnx
 
 from . import __version__
 from ._files import atomic_path, require_file
-from .data import Dataset, check_labels, check_multilabel, match_inputs
-from .errors import OnnxcalError
+from .data import Dataset, check_labels, check_multilabel, match_inputs, read_npz
+from .errors import OnnxcalError, OnnxcalWarning
 from .graph import ScoreSite, expose_scores, find_scores, fit_kind, tensor_spec
 
 ProgressFn = Callable[[str, int, int], None]
 """Called as ``progress(description, samples_done, samples_total)`` after each batch."""
 
 DEFAULT_BATCH = 64
+RELEASE_BYTES = 16 << 20
+"""Memory-mapped input pages are handed back to the kernel every this many bytes."""
+CPU = "CPUExecutionProvider"
+OPTIMIZATION_LEVELS = {
+    "disable": "ORT_DISABLE_ALL",
+    "basic": "ORT_ENABLE_BASIC",
+    "extended": "ORT_ENABLE_EXTENDED",
+    "all": "ORT_ENABLE_ALL",
+}
+"""``--optimization`` names for onnxruntime's graph optimisation levels."""
+
+
+@dataclass(frozen=True)
+class RunOptions:
+    """How onnxruntime runs the model.
+
+    Attributes
+    ----------
+    batch_size : int
+        Samples per call (a fixed batch dim that cannot be freed overrides it).
+    threads : int
+        Intra-op threads; 0 leaves onnxruntime's default (one per core).
+    optimization : str
+        Graph optimisation level, a key of :data:`OPTIMIZATION_LEVELS`.
+    provider : str
+        Execution provider; the CPU provider backs up any other.
+    """
+
+    batch_size: int = DEFAULT_BATCH
+    threads: int = 0
+    optimization: str = "all"
+    provider: str = CPU
+
+
+def check_run_options(options: RunOptions) -> RunOptions:
+    """Validate run options, with errors that name the option."""
+    import onnxruntime as ort
+
+    if isinstance(options.batch_size, bool) or options.batch_size < 1:
+        raise OnnxcalError(f"--batch-size {options.batch_size} is not a positive number of samples")
+    if options.threads < 0:
+        raise OnnxcalError(
+            f"--threads {options.threads} is negative",
+            "give a number of threads, or 0 for onnxruntime's default",
+        )
+    if options.optimization not in OPTIMIZATION_LEVELS:
+        raise OnnxcalError(
+            f"--optimization {options.optimization!r} is not a graph optimisation level",
+            f"choose one of: {', '.join(OPTIMIZATION_LEVELS)}",
+        )
+    available = ort.get_available_providers()
+    if options.provider not in available:
+        raise OnnxcalError(
+            f"--provider {options.provider} is not available in this onnxruntime",
+            f"installed providers: {', '.join(available)}",
+        )
+    return options
+
+
+def _options(options: RunOptions | None, batch_size: int | None) -> RunOptions:
+    options = options or RunOptions()
+    return options if batch_size is None else replace(options, batch_size=batch_size)
 
 
 @dataclass(frozen=True)
@@ -55,11 +132,28 @@ class CaptureMeta:
     n : int
         Number of captured rows.
     data_source : str
-        The validation file.
+        The validation set.
     fit_as : str
         ``"softmax"`` (labels are class indices, one per row) or
         ``"sigmoid"`` (labels are 0/1, one per logit: binary or multi-label).
     onnxcal_version : str
+    class_names : tuple of str or None
+        Names of the classes, when known (``--classes`` or folder names).
+    data_id : str
+        Fingerprint of the validation files (see :class:`onnxcal.data.Dataset`).
+    data_total : int
+        Samples in the whole validation set, before ``--limit``/``--shard``.
+    shard : str or None
+        ``"I/N"`` when the capture is one shard of the set.
+    limit, shuffle_seed : int or None
+        The selection options used.
+    preprocess : dict or None
+        Image preprocessing, resolved against the model input.
+    batching : str
+        ``"batched"`` (dynamic batch dim), ``"freed"`` (a fixed batch dim made
+        symbolic in a copy) or ``"fixed"`` (run at the exported batch size).
+    merged_from : tuple of str
+        Capture files this one was merged from.
     """
 
     model_sha256: str
@@ -73,46 +167,242 @@ class CaptureMeta:
     data_source: str
     fit_as: str = "softmax"
     onnxcal_version: str = __version__
+    class_names: tuple[str, ...] | None = None
+    data_id: str = ""
+    data_total: int = 0
+    shard: str | None = None
+    limit: int | None = None
+    shuffle_seed: int | None = None
+    preprocess: dict | None = None
+    batching: str = ""
+    merged_from: tuple[str, ...] = ()
 
     def to_dict(self) -> dict:
         return asdict(self)
 
+    @classmethod
+    def from_dict(cls, data: dict) -> CaptureMeta:
+        """Inverse of :meth:`to_dict` (JSON lists back to tuples)."""
+        data = dict(data)
+        for key in ("class_names", "merged_from"):
+            if isinstance(data.get(key), list):
+                data[key] = tuple(data[key])
+        return cls(**data)
+
 
 @dataclass(frozen=True)
 class Capture:
-    """Captured logits, labels and where they came from."""
+    """Captured logits, labels and where they came from.
+
+    ``indices`` holds the row number in the validation set of each sample,
+    or None when the samples are all rows of the set in order.
+    """
 
     logits: np.ndarray
     labels: np.ndarray
     meta: CaptureMeta
+    indices: np.ndarray | None = None
+
+    def sample_indices(self) -> np.ndarray:
+        """``indices``, or 0..n-1 when the capture holds every row in order."""
+        if self.indices is not None:
+            return self.indices
+        return np.arange(self.meta.data_total or len(self.labels), dtype=np.int64)
 
 
-def make_session(model: onnx.ModelProto):
-    """An onnxruntime session on CPU for an in-memory model."""
+# --------------------------------------------------------------------------
+# Sessions and the batch plan
+
+
+def make_session(model: onnx.ModelProto, options: RunOptions | None = None):
+    """An onnxruntime session for an in-memory model (CPU unless ``options`` say else)."""
     import onnxruntime as ort
 
+    options = options or RunOptions()
     opts = ort.SessionOptions()
     opts.log_severity_level = 3
+    if options.threads:
+        opts.intra_op_num_threads = options.threads
+    opts.graph_optimization_level = getattr(
+        ort.GraphOptimizationLevel, OPTIMIZATION_LEVELS[options.optimization]
+    )
+    providers = [options.provider] + ([CPU] if options.provider != CPU else [])
     try:
-        return ort.InferenceSession(
-            model.SerializeToString(), sess_options=opts, providers=["CPUExecutionProvider"]
-        )
+        return ort.InferenceSession(model.SerializeToString(), sess_options=opts, providers=providers)
     except Exception as exc:  # onnxruntime raises its own exception types
         raise OnnxcalError(
-            f"onnxruntime cannot load the model: {str(exc).splitlines()[0]}",
+            f"onnxruntime cannot load the model: {_first_line(exc)}",
             "check that the model runs in onnxruntime on CPU",
         ) from exc
 
 
-def _fixed_batch(model: onnx.ModelProto) -> int | None:
+def _first_line(exc: BaseException) -> str:
+    text = str(exc).strip()
+    return text.splitlines()[0] if text else type(exc).__name__
+
+
+def _graph_inputs(model: onnx.ModelProto) -> list[onnx.ValueInfoProto]:
     init = {i.name for i in model.graph.initializer}
-    for vi in model.graph.input:
-        if vi.name in init:
-            continue
+    return [vi for vi in model.graph.input if vi.name not in init]
+
+
+def _fixed_batch(model: onnx.ModelProto) -> int | None:
+    for vi in _graph_inputs(model):
         shape = tensor_spec(vi).shape
         if shape and isinstance(shape[0], int) and shape[0] > 0:
             return shape[0]
     return None
+
+
+def free_batch_dim(model: onnx.ModelProto, batch: int) -> onnx.ModelProto:
+    """A copy of ``model`` whose inputs' and outputs' leading dim ``batch`` is symbolic.
+
+    Intermediate shape annotations (``value_info``) are dropped from the copy
+    so that onnxruntime infers them again; the copy is for running only.
+    """
+    out = onnx.ModelProto()
+    out.CopyFrom(model)
+    init = {i.name for i in out.graph.initializer}
+    for vi in [*out.graph.input, *out.graph.output]:
+        if vi.name in init or not vi.type.HasField("tensor_type"):
+            continue
+        dims = vi.type.tensor_type.shape.dim
+        if len(dims) and dims[0].HasField("dim_value") and dims[0].dim_value == batch:
+            dims[0].dim_param = "onnxcal_batch"
+    del out.graph.value_info[:]
+    return out
+
+
+@dataclass(frozen=True)
+class RunPlan:
+    """A session and how to batch for it.
+
+    ``mode`` is ``"batched"``, ``"freed"`` or ``"fixed"`` (see :class:`CaptureMeta`);
+    ``pad`` is the fixed batch size that short batches are padded to.
+    """
+
+    session: object
+    names: tuple[str, ...]
+    dtypes: Mapping[str, str | None]
+    step: int
+    pad: int | None
+    mode: str
+
+
+def _dtypes(model: onnx.ModelProto, session) -> dict[str, str | None]:
+    specs = {vi.name: tensor_spec(vi).dtype for vi in model.graph.input}
+    return {i.name: (None if specs.get(i.name, "unknown") == "unknown" else specs[i.name]) for i in session.get_inputs()}
+
+
+def plan_run(
+    model: onnx.ModelProto,
+    dataset: Dataset,
+    names: Sequence[str],
+    options: RunOptions | None = None,
+) -> RunPlan:
+    """Open a session for ``model`` and decide the batching (see the module docstring)."""
+    options = options or RunOptions()
+    session = make_session(model, options)
+    dtypes = _dtypes(model, session)
+    fixed = _fixed_batch(model)
+    if fixed is None:
+        return RunPlan(session, tuple(names), dtypes, options.batch_size, None, "batched")
+    native = RunPlan(session, tuple(names), dtypes, fixed, fixed, "fixed")
+    if options.batch_size <= fixed or dataset.n <= fixed:
+        return native
+    probe = min(options.batch_size, dataset.n)
+    try:
+        freed = RunPlan(make_session(free_batch_dim(model, fixed), options), tuple(names), dtypes,
+                        options.batch_size, None, "freed")
+        got = run_batch(freed, dataset, 0, probe)
+        reason = _disagreement(got, _run_span(native, dataset, 0, probe), names, probe, fixed)
+    except OnnxcalError as exc:
+        reason = f"it fails on a batch of {probe} ({exc.message})"
+    if reason is None:
+        return freed
+    warnings.warn(
+        OnnxcalWarning(
+            f"the model's batch dim is fixed at {fixed} and a copy with it freed does not "
+            f"reproduce the exported model: {reason}; running {fixed} sample(s) per call instead, "
+            "which is slower"
+        ),
+        stacklevel=2,
+    )
+    return native
+
+
+def _run_span(plan: RunPlan, dataset: Dataset, start: int, stop: int) -> list[np.ndarray]:
+    parts = [run_batch(plan, dataset, s, min(s + plan.step, stop)) for s in range(start, stop, plan.step)]
+    return [np.concatenate(p) for p in zip(*parts)]
+
+
+def _disagreement(
+    got: list[np.ndarray], want: list[np.ndarray], names: Sequence[str], probe: int, fixed: int
+) -> str | None:
+    """Why a freed batch does not reproduce the exported model's runs, or None.
+
+    Results of one sample computed alone or within a batch may differ in
+    the last bits (kernels may sum in another order), so floats are compared
+    to 1e-5 relative to their scale, or 8 units in the last place of a
+    narrower dtype such as float16 (common practice).
+    """
+    for name, g, w in zip(names, got, want):
+        if g.shape != w.shape:
+            return f"output '{name}' has shape {g.shape} for {probe} samples instead of {w.shape}"
+        if w.dtype.kind == "f":
+            scale = max(1.0, float(np.nanmax(np.abs(w)))) if w.size else 1.0
+            err = float(np.nanmax(np.abs(g.astype(np.float64) - w))) if w.size else 0.0
+            same_nan = np.array_equal(np.isnan(g), np.isnan(w))
+            if not same_nan or err > max(1e-5, 8 * float(np.finfo(w.dtype).eps)) * scale:
+                return f"output '{name}' differs from {fixed}-sample runs by up to {err:.3g}"
+        elif not np.array_equal(g, w):
+            return f"output '{name}' differs from {fixed}-sample runs"
+    return None
+
+
+def run_batch(plan: RunPlan, dataset: Dataset, start: int, stop: int) -> list[np.ndarray]:
+    """Run selected rows ``start..stop-1``; one array per name, samples on axis 0."""
+    feed = dataset.batch(start, stop, plan.dtypes)
+    count = stop - start
+    if plan.pad is not None and count < plan.pad:  # pad a short batch of a fixed-batch model
+        feed = {k: np.concatenate([v, np.repeat(v[-1:], plan.pad - count, axis=0)]) for k, v in feed.items()}
+    try:
+        outs = plan.session.run(list(plan.names), feed)
+    except Exception as exc:  # onnxruntime raises its own exception types
+        rows = dataset.row_numbers()
+        raise OnnxcalError(
+            f"onnxruntime failed on rows {int(rows[start])}..{int(rows[stop - 1])} of "
+            f"'{dataset.source}': {_first_line(exc)}",
+            "check that the data matches the model's inputs",
+        ) from exc
+    return [np.asarray(o)[:count] if plan.pad is not None else np.asarray(o) for o in outs]
+
+
+def run_batches(
+    plan: RunPlan,
+    dataset: Dataset,
+    *,
+    progress: ProgressFn | None = None,
+    description: str = "running model",
+) -> Iterator[tuple[int, int, list[np.ndarray]]]:
+    """Yield ``(start, stop, outputs)`` batch by batch over the selected rows.
+
+    After each batch has been consumed ``progress`` is called; the input
+    pages of consumed rows are released (:meth:`Dataset.release`) whenever
+    they add up to :data:`RELEASE_BYTES`, so the resident size stays bounded
+    without paying a page-table flush on every small batch.
+    """
+    n = dataset.n
+    row_bytes = dataset.mapped_row_bytes
+    released = 0
+    for start in range(0, n, plan.step):
+        stop = min(start + plan.step, n)
+        yield start, stop, run_batch(plan, dataset, start, stop)
+        if row_bytes and ((stop - released) * row_bytes >= RELEASE_BYTES or stop == n):
+            dataset.release(released, stop)
+            released = stop
+        if progress is not None:
+            progress(description, stop, n)
 
 
 def run_model(
@@ -120,7 +410,8 @@ def run_model(
     dataset: Dataset,
     names: Sequence[str],
     *,
-    batch_size: int = DEFAULT_BATCH,
+    batch_size: int | None = None,
+    options: RunOptions | None = None,
     progress: ProgressFn | None = None,
     description: str = "running model",
 ) -> list[np.ndarray]:
@@ -129,73 +420,137 @@ def run_model(
     Each returned array has the samples along axis 0. Inputs are cast to the
     model's dtypes batch by batch, so memory-mapped inputs are read lazily.
     """
-    session = make_session(model)
-    specs = {i.name: i.type for i in session.get_inputs()}
-    fixed = _fixed_batch(model)
-    step = fixed or batch_size
-    n = dataset.n
+    plan = plan_run(model, dataset, names, _options(options, batch_size))
     parts: list[list[np.ndarray]] = [[] for _ in names]
-    dtypes = {vi.name: tensor_spec(vi).dtype for vi in model.graph.input}
-    for start in range(0, n, step):
-        stop = min(start + step, n)
-        feed = {}
-        for name in specs:
-            batch = np.asarray(dataset.inputs[name][start:stop], dtype=dtypes[name])
-            if fixed and stop - start < fixed:  # pad the last batch of a fixed-batch model
-                pad = np.repeat(batch[-1:], fixed - (stop - start), axis=0)
-                batch = np.concatenate([batch, pad])
-            feed[name] = batch
-        try:
-            outs = session.run(list(names), feed)
-        except Exception as exc:
-            raise OnnxcalError(
-                f"onnxruntime failed on samples {start}..{stop - 1} of '{dataset.source}': "
-                f"{str(exc).splitlines()[0]}",
-                "check that the data matches the model's inputs",
-            ) from exc
+    for _, _, outs in run_batches(plan, dataset, progress=progress, description=description):
         for part, out in zip(parts, outs):
-            part.append(np.asarray(out)[: stop - start])
-        if progress is not None:
-            progress(description, stop, n)
+            part.append(out)
     return [np.concatenate(p) for p in parts]
+
+
+# --------------------------------------------------------------------------
+# Scores, row by row
 
 
 def as_rows(scores: np.ndarray, class_axis: int) -> np.ndarray:
     """Move the class axis last and flatten the rest: (rows, k)."""
     if scores.ndim == 1:
         return scores.reshape(-1, 1)
+    if scores.ndim == 2 and class_axis == 1:
+        return scores
     moved = np.moveaxis(scores, class_axis, -1)
     return moved.reshape(-1, moved.shape[-1])
 
 
-def capture_scores(
+class _Rows:
+    """Receives float32 score rows batch by batch for a known number of samples.
+
+    The first batch fixes the rows per sample and K; storage is allocated
+    then, for the whole set.
+    """
+
+    def __init__(self, samples: int):
+        self.samples = samples
+        self.per_sample: int | None = None
+        self.k = 0
+        self.filled = 0
+
+    @property
+    def total(self) -> int:
+        return self.samples * (self.per_sample or 0)
+
+    def add(self, rows: np.ndarray, count: int) -> None:
+        r, k = rows.shape
+        if self.per_sample is None:
+            if r == 0 or r % count:
+                raise OnnxcalError(
+                    f"the model gave {r} score rows for {count} samples",
+                    "choose an output with one row (or a fixed number of rows) per sample",
+                )
+            self.per_sample, self.k = r // count, k
+            self._open()
+        elif (r, k) != (self.per_sample * count, self.k):
+            raise OnnxcalError(
+                f"the model gave {r} x {k} score rows for {count} samples after "
+                f"{self.per_sample} x {self.k} per sample for earlier ones",
+                "give inputs of one size (e.g. images preprocessed to one size)",
+            )
+        self._write(np.ascontiguousarray(rows, dtype="<f4"))
+        self.filled += r
+
+    def _open(self) -> None:
+        raise NotImplementedError
+
+    def _write(self, rows: np.ndarray) -> None:
+        raise NotImplementedError
+
+
+class _MemoryRows(_Rows):
+    def _open(self) -> None:
+        self.array = np.empty((self.total, self.k), dtype=np.float32)
+
+    def _write(self, rows: np.ndarray) -> None:
+        self.array[self.filled : self.filled + len(rows)] = rows
+
+
+class _NpyRows(_Rows):
+    """Streams the rows as ``logits.npy`` into an open zip archive.
+
+    Rows are gathered in a buffer of about 1 MiB between writes, so a model
+    with small batches does not pay one archive write per batch.
+    """
+
+    BUFFER_BYTES = 1 << 20
+
+    def __init__(self, samples: int, archive: zipfile.ZipFile):
+        super().__init__(samples)
+        self.archive = archive
+        self.fh = None
+        self.held = 0
+
+    def _open(self) -> None:
+        self.fh = self.archive.open("logits.npy", "w", force_zip64=True)
+        header = {"descr": "<f4", "fortran_order": False, "shape": (self.total, self.k)}
+        np.lib.format.write_array_header_1_0(self.fh, header)
+        self.buffer = np.empty((max(1, self.BUFFER_BYTES // (4 * self.k)), self.k), dtype="<f4")
+
+    def _write(self, rows: np.ndarray) -> None:
+        if self.held + len(rows) > len(self.buffer):
+            self._flush()
+        if len(rows) > len(self.buffer):
+            self.fh.write(rows.data)
+            return
+        self.buffer[self.held : self.held + len(rows)] = rows
+        self.held += len(rows)
+
+    def _flush(self) -> None:
+        if self.held:
+            self.fh.write(self.buffer[: self.held].data)
+            self.held = 0
+
+    def close(self, complete: bool = True) -> None:
+        """Write what is buffered (when ``complete``) and close the member."""
+        if self.fh is not None:
+            if complete:
+                self._flush()
+            self.fh.close()
+
+
+def _fill_scores(
     model: onnx.ModelProto,
     dataset: Dataset,
     site: ScoreSite,
-    *,
-    batch_size: int = DEFAULT_BATCH,
-    progress: ProgressFn | None = None,
-) -> np.ndarray:
-    """The logits behind ``site`` for every sample, float32, shape (rows, k).
-
-    Checks the set against the model's inputs first. The class axis is moved
-    last and any other axes (e.g. pixels) are flattened into rows.
-    """
-    init = {i.name for i in model.graph.initializer}
-    match_inputs(dataset, [tensor_spec(vi) for vi in model.graph.input if vi.name not in init])
+    sink: _Rows,
+    options: RunOptions,
+    progress: ProgressFn | None,
+) -> str:
+    """Run the model and pass its logits to ``sink``; return the batching mode."""
     exposed, name = expose_scores(model, site)
-    (scores,) = run_model(
-        exposed,
-        dataset,
-        [name],
-        batch_size=batch_size,
-        progress=progress,
-        description="capturing logits",
-    )
-    rows = as_rows(scores, site.class_axis)
-    if site.from_probabilities:
-        rows = log_probabilities(rows)
-    return rows.astype(np.float32, copy=False)
+    plan = plan_run(exposed, dataset, [name], options)
+    for start, stop, (scores,) in run_batches(plan, dataset, progress=progress, description="capturing logits"):
+        rows = as_rows(scores, site.class_axis)
+        sink.add(log_probabilities(rows) if site.from_probabilities else rows, stop - start)
+    return plan.mode
 
 
 def log_probabilities(p: np.ndarray) -> np.ndarray:
@@ -208,6 +563,30 @@ def log_probabilities(p: np.ndarray) -> np.ndarray:
     return np.log(np.maximum(p, np.finfo(p.dtype).tiny))
 
 
+def _check_data(model: onnx.ModelProto, dataset: Dataset) -> None:
+    match_inputs(dataset, [tensor_spec(vi) for vi in _graph_inputs(model)])
+
+
+def capture_scores(
+    model: onnx.ModelProto,
+    dataset: Dataset,
+    site: ScoreSite,
+    *,
+    batch_size: int | None = None,
+    options: RunOptions | None = None,
+    progress: ProgressFn | None = None,
+) -> np.ndarray:
+    """The logits behind ``site`` for every selected sample, float32, shape (rows, k).
+
+    Checks the set against the model's inputs first. The class axis is moved
+    last and any other axes (e.g. pixels) are flattened into rows.
+    """
+    _check_data(model, dataset)
+    sink = _MemoryRows(dataset.n)
+    _fill_scores(model, dataset, site, sink, _options(options, batch_size), progress)
+    return sink.array
+
+
 def capture(
     model: onnx.ModelProto,
     dataset: Dataset,
@@ -215,8 +594,10 @@ def capture(
     model_path: str | os.PathLike,
     model_sha256: str,
     output: str | None = None,
-    batch_size: int = DEFAULT_BATCH,
+    batch_size: int | None = None,
+    options: RunOptions | None = None,
     progress: ProgressFn | None = None,
+    out: str | os.PathLike | None = None,
     activation: str | None = None,
 ) -> Capture:
     """Run the model over a labelled set and return its logits.
@@ -231,10 +612,14 @@ def capture(
         Recorded in the capture's metadata.
     output : str, optional
         The class-score output (the likeliest float output by default).
-    batch_size : int
-        Samples per onnxruntime call (ignored for a fixed batch dim).
+    batch_size : int, optional
+        Samples per onnxruntime call (overrides ``options.batch_size``).
+    options : RunOptions, optional
     progress : callable, optional
         See :data:`ProgressFn`.
+    out : path, optional
+        Stream the capture into this file (written atomically); the returned
+        capture's logits are then a memory map of it.
     activation : {"softmax", "sigmoid"}, optional
         How raw logits become probabilities (see ``graph.fit_kind``); decides
         the labels' form.
@@ -245,26 +630,72 @@ def capture(
     """
     if dataset.labels is None:
         raise OnnxcalError(f"'{dataset.source}' has no labels", "add a 'labels' array")
+    options = _options(options, batch_size)
     site = find_scores(model, output)
     kind = fit_kind(site, activation)
-    if site.num_classes is not None and kind == "softmax" and dataset.labels.ndim == 1:
-        check_labels(dataset.labels, dataset.n, site.num_classes, dataset.source)  # before the run
-    logits = capture_scores(model, dataset, site, batch_size=batch_size, progress=progress)
-    k = logits.shape[1]
-    labels = label_rows(dataset.labels, logits.shape, kind, dataset.source)
-    meta = CaptureMeta(
-        model_sha256=model_sha256,
-        model_path=str(model_path),
+    labels = None
+    if site.num_classes is not None and kind == "softmax" and np.ndim(dataset.labels) == 1:
+        labels = check_labels(dataset.labels, dataset.n, site.num_classes, dataset.source)  # before the run
+    if site.num_classes is not None:
+        _check_class_names(dataset, site.num_classes, kind)
+    _check_data(model, dataset)
+
+    def finish(sink: _Rows, mode: str) -> tuple[np.ndarray, CaptureMeta]:
+        checked = labels is not None and (len(labels), site.num_classes) == (sink.total, sink.k)
+        final = labels if checked else label_rows(dataset.labels, (sink.total, sink.k), kind, dataset.source)
+        _check_class_names(dataset, sink.k, kind)
+        return final, _meta(dataset, site, sink, mode, kind, model_path, model_sha256)
+
+    if out is None:
+        sink = _MemoryRows(dataset.n)
+        final, meta = finish(sink, _fill_scores(model, dataset, site, sink, options, progress))
+        return Capture(sink.array, final, meta, dataset.rows)
+    with atomic_path(Path(out)) as tmp, zipfile.ZipFile(tmp, "w", zipfile.ZIP_STORED, allowZip64=True) as zf:
+        sink = _NpyRows(dataset.n, zf)
+        try:
+            mode = _fill_scores(model, dataset, site, sink, options, progress)
+        except BaseException:
+            sink.close(complete=False)  # the temporary file is removed; nothing to flush
+            raise
+        sink.close()
+        final, meta = finish(sink, mode)
+        _write_tail(zf, final, dataset.rows, meta)
+    logits = read_npz(Path(out), "")["logits"]  # a memory map of what was just written
+    return Capture(logits, final, meta, dataset.rows)
+
+
+def _check_class_names(dataset: Dataset, k: int, kind: str) -> None:
+    names = dataset.class_names
+    want = 2 if kind == "sigmoid" and k == 1 else k  # one logit: negative and positive class
+    if names is not None and len(names) != want:
+        raise OnnxcalError(
+            f"the class list of '{dataset.source}' has {len(names)} classes but the model has {want}",
+            "give one class name per model class, in the model's order",
+        )
+
+
+def _meta(dataset: Dataset, site: ScoreSite, sink: _Rows, mode: str, kind: str, path, sha: str) -> CaptureMeta:
+    sel = dataset.selection
+    return CaptureMeta(
+        model_sha256=sha,
+        model_path=str(path),
         output=site.output,
         scores=site.scores,
         activation=site.activation,
         class_axis=site.class_axis,
-        num_classes=k,
-        n=int(logits.shape[0]),
+        num_classes=sink.k,
+        n=sink.total,
         data_source=dataset.source,
         fit_as=kind,
+        class_names=dataset.class_names,
+        data_id=dataset.data_id,
+        data_total=dataset.total,
+        shard=sel.shard_text,
+        limit=sel.limit,
+        shuffle_seed=sel.shuffle_seed,
+        preprocess=dataset.preprocess,
+        batching=mode,
     )
-    return Capture(logits=logits, labels=labels, meta=meta)
 
 
 def label_rows(labels: np.ndarray, shape: tuple[int, int], kind: str, source: str) -> np.ndarray:
@@ -308,19 +739,35 @@ def nonfinite_rows(logits: np.ndarray) -> np.ndarray:
     return np.flatnonzero(~np.isfinite(logits).all(axis=1))
 
 
+# --------------------------------------------------------------------------
+# Capture files
+
+
+def _write_member(zf: zipfile.ZipFile, name: str, arr: np.ndarray) -> None:
+    with zf.open(f"{name}.npy", "w", force_zip64=True) as fh:
+        np.lib.format.write_array(fh, np.asarray(arr), allow_pickle=False)
+
+
+def _write_tail(
+    zf: zipfile.ZipFile, labels: np.ndarray, indices: np.ndarray | None, meta: CaptureMeta
+) -> None:
+    _write_member(zf, "labels", labels)
+    if indices is not None:  # absent: the samples are rows 0..n-1 of the set
+        _write_member(zf, "indices", np.asarray(indices, dtype=np.int64))
+    _write_member(zf, "meta", np.array(json.dumps(meta.to_dict(), sort_keys=True)))
+
+
 def save_capture(path: str | os.PathLike, cap: Capture) -> None:
     """Write a capture file atomically."""
-    with atomic_path(Path(path)) as tmp, open(tmp, "wb") as fh:
-        np.savez(
-            fh,
-            logits=cap.logits,
-            labels=cap.labels,
-            meta=np.array(json.dumps(cap.meta.to_dict(), sort_keys=True)),
-        )
+    with atomic_path(Path(path)) as tmp, zipfile.ZipFile(tmp, "w", zipfile.ZIP_STORED, allowZip64=True) as zf:
+        _write_member(zf, "logits", np.asarray(cap.logits, dtype=np.float32))
+        _write_tail(zf, cap.labels, cap.indices, cap.meta)
 
 
 def load_capture(path: str | os.PathLike) -> Capture:
-    """Read a capture file written by :func:`save_capture`.
+    """Read a capture file written by :func:`capture` or :func:`save_capture`.
+
+    The logits are a read-only memory map of the file.
 
     Raises
     ------
@@ -330,12 +777,154 @@ def load_capture(path: str | os.PathLike) -> Capture:
     p = require_file(path, "capture file")
     hint = "give a file written by 'onnxcal capture'"
     try:
-        with np.load(p, allow_pickle=False) as npz:
-            logits, labels, meta_json = npz["logits"], npz["labels"], str(npz["meta"])
-        meta = CaptureMeta(**json.loads(meta_json))
-    except (zipfile.BadZipFile, KeyError, ValueError, TypeError, OSError, AttributeError) as exc:
+        arrays = read_npz(p, hint)
+        logits, labels, meta_json = arrays["logits"], np.asarray(arrays["labels"]), str(arrays["meta"])
+        meta = CaptureMeta.from_dict(json.loads(meta_json))
+    except (KeyError, ValueError, TypeError, AttributeError) as exc:
         raise OnnxcalError(f"'{p}' is not an onnxcal capture file ({exc})", hint) from exc
+    except OnnxcalError as exc:
+        raise OnnxcalError(f"'{p}' is not an onnxcal capture file ({exc.message})", hint) from exc
     if logits.ndim != 2 or logits.dtype.kind != "f":
         raise OnnxcalError(f"'{p}' holds logits of shape {logits.shape} ({logits.dtype})", hint)
     labels = label_rows(labels, logits.shape, meta.fit_as, str(p))
-    return Capture(logits=logits, labels=labels, meta=meta)
+    indices = arrays.get("indices")
+    if indices is not None:
+        indices = np.asarray(indices)
+        if indices.ndim != 1 or indices.dtype.kind not in "iu" or len(indices) == 0 or logits.shape[0] % len(indices):
+            raise OnnxcalError(f"'{p}' holds sample indices of shape {indices.shape} ({indices.dtype})", hint)
+        indices = indices.astype(np.int64)
+    return Capture(logits=logits, labels=labels, meta=meta, indices=indices)
+
+
+_SAME = (
+    ("model_sha256", "were captured from different models (sha256)"),
+    ("output", "hold different model outputs"),
+    ("scores", "hold different logits tensors"),
+    ("activation", "hold scores with different activations"),
+    ("fit_as", "are fitted as different kinds (softmax or sigmoid)"),
+    ("class_axis", "have different class axes"),
+    ("num_classes", "have different numbers of classes"),
+    ("class_names", "have different class lists"),
+)
+
+
+def merge_captures(captures: Sequence[Capture], sources: Sequence[str]) -> Capture:
+    """One capture from several of one model, output and class list.
+
+    Rows are identified by the validation set's fingerprint and row number;
+    two captures holding the same row are refused. The merged rows are in
+    row order per set, so the shards of a set merge into exactly the
+    capture of the whole set.
+
+    Raises
+    ------
+    OnnxcalError
+        The captures differ in model, output or class list, or overlap.
+    """
+    if len(captures) == 1:
+        return captures[0]
+    first = captures[0].meta
+    for cap, src in zip(captures[1:], sources[1:]):
+        for key, what in _SAME:
+            a, b = getattr(first, key), getattr(cap.meta, key)
+            if a != b:
+                raise OnnxcalError(
+                    f"'{sources[0]}' and '{src}' {what} ({_short(a)} vs {_short(b)})",
+                    "merge only captures of one model output with one class list",
+                )
+        if cap.meta.data_id == first.data_id and cap.meta.preprocess != first.preprocess:
+            raise OnnxcalError(
+                f"'{sources[0]}' and '{src}' read the same images with different preprocessing",
+                "capture every shard with the same preprocessing options",
+            )
+    per_sample = {len(c.labels) // len(c.sample_indices()) for c in captures}
+    if len(per_sample) != 1:
+        raise OnnxcalError(
+            f"the captures {', '.join(sources)} hold different numbers of score rows per sample",
+            "merge only captures of inputs of one size",
+        )
+    (r,) = per_sample
+    offsets = np.cumsum([0] + [len(c.sample_indices()) for c in captures])
+    groups: dict[str, list[int]] = {}
+    for i, cap in enumerate(captures):
+        key = cap.meta.data_id or f"\0unidentified-{i}"  # files from before fingerprints
+        groups.setdefault(key, []).append(i)
+    order = []  # positions in the concatenation of all captures' samples, in merged order
+    for members in groups.values():
+        idx = np.concatenate([captures[i].sample_indices() for i in members])
+        owner = np.concatenate([np.full(len(captures[i].sample_indices()), i) for i in members])
+        where = np.concatenate([offsets[i] + np.arange(len(captures[i].sample_indices())) for i in members])
+        perm = np.argsort(idx, kind="stable")
+        dup = np.flatnonzero(idx[perm][1:] == idx[perm][:-1])
+        if dup.size:
+            a, b = owner[perm][dup[0]], owner[perm][dup[0] + 1]
+            raise OnnxcalError(
+                f"'{sources[a]}' and '{sources[b]}' both hold row {int(idx[perm][dup[0]])} of "
+                f"'{captures[a].meta.data_source}' ({dup.size} shared rows in all)",
+                "capture each shard once, with the same --shuffle-seed and distinct --shard I/N",
+            )
+        _check_coverage([captures[i] for i in members], [sources[i] for i in members])
+        order.append(where[perm])
+    samples = np.concatenate(order)
+    rows = (samples[:, None] * r + np.arange(r)).ravel()
+    logits = np.concatenate([np.asarray(c.logits) for c in captures])[rows]
+    labels = np.concatenate([c.labels for c in captures])[rows]
+    indices = np.concatenate([c.sample_indices() for c in captures])[samples]
+    meta = replace(
+        first,
+        n=int(len(logits)),
+        data_source=" + ".join(dict.fromkeys(c.meta.data_source for c in captures)),
+        data_total=sum(captures[m[0]].meta.data_total for m in groups.values()),
+        shard=None,
+        limit=None,
+        batching=",".join(sorted({c.meta.batching for c in captures} - {""})),
+        merged_from=tuple(str(s) for s in sources),
+    )
+    return Capture(logits, labels, meta, indices)
+
+
+def _check_coverage(parts: Sequence[Capture], sources: Sequence[str]) -> None:
+    """Shards i/N of one set, all present, must cover it; warn when some are missing."""
+    metas = [c.meta for c in parts]
+    shards = [m.shard for m in metas]
+    if any(s is None for s in shards) or any(m.limit is not None for m in metas):
+        return
+    counts = {int(s.split("/")[1]) for s in shards}
+    seeds = {m.shuffle_seed for m in metas}
+    if len(counts) != 1 or len(seeds) != 1:
+        return
+    (n_shards,) = counts
+    have = {int(s.split("/")[0]) for s in shards}
+    samples = sum(len(c.sample_indices()) for c in parts)
+    if have == set(range(1, n_shards + 1)):
+        if samples != metas[0].data_total:
+            raise OnnxcalError(
+                f"the {n_shards} shards ({', '.join(sources)}) hold {samples} rows of "
+                f"'{metas[0].data_source}', which has {metas[0].data_total}",
+                "capture every shard with the same data, --shuffle-seed and onnxcal/numpy versions",
+            )
+        return
+    missing = sorted(set(range(1, n_shards + 1)) - have)
+    warnings.warn(
+        OnnxcalWarning(
+            f"merging {len(have)} of {n_shards} shards of '{metas[0].data_source}'; "
+            f"shard(s) {', '.join(str(m) for m in missing)} missing"
+        ),
+        stacklevel=3,
+    )
+
+
+def _short(value) -> str:
+    text = str(value)
+    return text[:12] + "..." if len(text) > 15 else text
+
+
+def load_captures(paths: str | os.PathLike | Sequence[str | os.PathLike]) -> Capture:
+    """Load one capture file, or several merged into one (see :func:`merge_captures`)."""
+    if isinstance(paths, (str, os.PathLike)):
+        paths = [paths]
+    paths = list(paths)
+    if not paths:
+        raise OnnxcalError("no capture files given", "give at least one file written by 'onnxcal capture'")
+    return merge_captures([load_capture(p) for p in paths], [str(p) for p in paths])
+

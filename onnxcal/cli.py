@@ -7,10 +7,15 @@ on stderr; ``onnxcal --debug CMD ...`` shows the traceback), 130 interrupted.
 from __future__ import annotations
 
 import contextlib
+import functools
+import inspect as _inspect
 import json
 import sys
+import time
 import traceback
-from collections.abc import Iterator, Sequence
+import typing
+import warnings
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import Annotated, Optional
 
@@ -29,8 +34,9 @@ from rich.table import Table
 from rich.text import Text
 
 from . import __version__, api
-from .capture import DEFAULT_BATCH, ProgressFn
-from .errors import OnnxcalError
+from .capture import CPU, DEFAULT_BATCH, OPTIMIZATION_LEVELS, ProgressFn
+from .data import IMAGE_OPTIONS, DataSpec, Selection, parse_shard
+from .errors import OnnxcalError, OnnxcalWarning
 from .fit import FitOptions, FitSummary
 from .graph import DEFAULT_OUTPUT_NAME, ModelInfo, TensorSpec
 from .metrics import DEFAULT_BINS, METRIC_LABELS
@@ -64,20 +70,9 @@ CAUTION = (
 # Shared options
 
 ModelArg = Annotated[Path, typer.Argument(help="The ONNX model file.", show_default=False)]
-DataOpt = Annotated[
-    Path,
-    typer.Option(
-        "--data",
-        help="Validation set: .npz with one array per model input plus 'labels'.",
-        show_default=False,
-    ),
-]
 OutputOpt = Annotated[
     Optional[str],
     typer.Option("--output", help="The class-score output (default: the likeliest float output)."),
-]
-BatchOpt = Annotated[
-    int, typer.Option("--batch-size", help="Samples per onnxruntime call.", min=1)
 ]
 ForceOpt = Annotated[bool, typer.Option("--force", help="Replace an existing output file.")]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Print JSON instead of a table.")]
@@ -102,7 +97,8 @@ FoldOpt = Annotated[
     bool,
     typer.Option(
         "--fold",
-        help="Scale the weight and bias of the final Gemm / MatMul(+Add) by 1/T instead of adding a Div.",
+        help="Fold the scaling into the weight and bias of the Gemm / MatMul(+Add) computing the "
+        "logits (1/T, or per class w and b for vector, Platt and per-label scaling) instead of adding nodes.",
     ),
 ]
 MethodOpt = Annotated[
@@ -137,6 +133,128 @@ BootstrapOpt = Annotated[
 BinsOpt = Annotated[int, typer.Option("--bins", help="Bins of the ECEs.")]
 
 
+# --------------------------------------------------------------------------
+# Data, image and runtime options, shared by capture, calibrate and verify
+
+
+def _option(name: str, kind, default, flag: str, help: str, **extra) -> _inspect.Parameter:
+    extra.setdefault("show_default", default is not None)
+    option = typer.Option(flag, help=help, **extra)
+    return _inspect.Parameter(
+        name, _inspect.Parameter.KEYWORD_ONLY, default=default, annotation=Annotated[kind, option]
+    )
+
+
+_SHARED_OPTIONS = (
+    _option("data", Optional[Path], None, "--data",
+            "Validation set: .npz (one array per model input, plus 'labels'), .npy (a one-input "
+            "model), .csv table, or a folder of images (one subfolder per class)."),
+    _option("inputs", Optional[list[str]], None, "--input",
+            "One .npy per model input (memory-mapped); repeat for each input.", metavar="NAME=FILE.npy"),
+    _option("labels", Optional[Path], None, "--labels",
+            "Labels .npy (with --input), or a CSV mapping image files to classes "
+            "(columns 'file' and the label column)."),
+    _option("label_column", Optional[str], None, "--label-column", "Label column of a CSV (default 'label')."),
+    _option("feature_columns", Optional[str], None, "--feature-columns",
+            "CSV columns fed to the model, in order (default: all but the label).", metavar="A,B,..."),
+    _option("classes", Optional[Path], None, "--classes",
+            "Class names, one per line, in the model's class order; string labels are mapped through it."),
+    _option("limit", Optional[int], None, "--limit", "Use at most N samples.", metavar="N"),
+    _option("shuffle_seed", Optional[int], None, "--shuffle-seed",
+            "Take --limit/--shard samples from a random permutation with this seed.", metavar="SEED"),
+    _option("shard", Optional[str], None, "--shard",
+            "Capture the I-th of N deterministic slices (1 <= I <= N); 'onnxcal fit' merges the files.",
+            metavar="I/N"),
+    _option("preprocess", Optional[Path], None, "--preprocess",
+            "Image options below as a TOML or JSON file (options given here win)."),
+    _option("resize", Optional[int], None, "--resize", "Image: resize the shorter side to N pixels.", metavar="N"),
+    _option("crop", Optional[str], None, "--crop", "Image: centre crop.", metavar="N|HxW"),
+    _option("scale", Optional[bool], None, "--scale/--no-scale",
+            "Image: divide pixels by 255 (default: yes for float inputs).", show_default=False),
+    _option("mean", Optional[str], None, "--mean", "Image: per-channel mean, subtracted after scaling.",
+            metavar="M[,M,M]"),
+    _option("std", Optional[str], None, "--std", "Image: per-channel std, divided by after the mean.",
+            metavar="S[,S,S]"),
+    _option("channel_order", Optional[str], None, "--channel-order", "Image: RGB (default) or BGR.",
+            metavar="RGB|BGR"),
+    _option("layout", Optional[str], None, "--layout", "Image: NCHW or NHWC (default: from the model).",
+            metavar="NCHW|NHWC"),
+    _option("dtype", Optional[str], None, "--dtype", "Image: input dtype (default: the model's).", metavar="DTYPE"),
+    _option("interpolation", Optional[str], None, "--interpolation",
+            "Image: resize filter: nearest, bilinear (default), bicubic, lanczos.", metavar="FILTER"),
+    _option("batch_size", int, DEFAULT_BATCH, "--batch-size", "Samples per onnxruntime call.", min=1),
+    _option("threads", int, 0, "--threads", "onnxruntime intra-op threads (0: its default).", min=0),
+    _option("optimization", str, "all", "--optimization",
+            f"Graph optimisation level: {', '.join(OPTIMIZATION_LEVELS)}."),
+    _option("provider", str, CPU, "--provider", "onnxruntime execution provider."),
+)
+"""Data, image and runtime options shared by capture, calibrate and verify."""
+
+_RUNTIME_KEYS = ("batch_size", "threads", "optimization", "provider")
+
+
+def _input_files(values: Sequence[str] | None) -> dict[str, str]:
+    files: dict[str, str] = {}
+    for item in values or ():
+        name, sep, path = item.partition("=")
+        if not sep or not name.strip() or not path.strip():
+            raise OnnxcalError(f"--input '{item}' is not of the form NAME=FILE.npy", "e.g. --input input_ids=ids.npy")
+        if name.strip() in files:
+            raise OnnxcalError(f"--input gives model input '{name.strip()}' twice", "give each input once")
+        files[name.strip()] = path.strip()
+    return files
+
+
+def _spec(values: dict) -> DataSpec:
+    columns = values["feature_columns"]
+    shard = values.get("shard")
+    return DataSpec(
+        path=values["data"],
+        inputs=_input_files(values["inputs"]),
+        labels=values["labels"],
+        label_column=values["label_column"],
+        feature_columns=[c.strip() for c in columns.split(",") if c.strip()] if columns is not None else None,
+        classes=values["classes"],
+        preprocess=values["preprocess"],
+        image={k: values[k] for k in IMAGE_OPTIONS if values[k] is not None},
+        selection=Selection(values["limit"], values["shuffle_seed"], parse_shard(shard) if shard else None),
+    )
+
+
+def _data_options(*, shard: bool = False) -> Callable:
+    """Give a command the shared data/image/runtime options.
+
+    The command declares keyword parameters ``data`` (it receives a
+    :class:`~onnxcal.data.DataSpec`) and ``runtime`` (a dict of the
+    ``api`` run keywords); the options themselves are :data:`_SHARED_OPTIONS`,
+    so every command documents them alike.
+    """
+    shared = [p for p in _SHARED_OPTIONS if shard or p.name != "shard"]
+
+    def decorate(fn: Callable) -> Callable:
+        own_hints = typing.get_type_hints(fn, include_extras=True)
+        own = [
+            p.replace(kind=_inspect.Parameter.KEYWORD_ONLY, annotation=own_hints[p.name])
+            for p in _inspect.signature(fn).parameters.values()
+            if p.name not in ("data", "runtime")
+        ]
+        names = [p.name for p in shared]
+
+        @functools.wraps(fn)
+        def command(**kwargs):
+            values = {name: kwargs.pop(name) for name in names}
+            runtime = {k: values[k] for k in _RUNTIME_KEYS}
+            return fn(**kwargs, data=_spec(values), runtime=runtime)
+
+        params = own + shared
+        command.__signature__ = _inspect.Signature(params)
+        command.__annotations__ = {p.name: p.annotation for p in params}
+        del command.__wrapped__  # typer must read the new signature, not fn's
+        return command
+
+    return decorate
+
+
 class _RateColumn(ProgressColumn):
     """Samples per second."""
 
@@ -162,12 +280,17 @@ def _progress(quiet: bool) -> Iterator[ProgressFn | None]:
     )
     tasks: dict[str, int] = {}
 
+    shown: dict[str, float] = {}
+
     def update(description: str, done: int, total: int) -> None:
         if not tasks:  # start drawing at the first batch, not before
             bar.start()
         if description not in tasks:
             tasks[description] = bar.add_task(description, total=total)
-        bar.update(tasks[description], completed=done)
+        now = time.monotonic()
+        if done >= total or now - shown.get(description, 0.0) >= 0.05:  # cheap on tiny batches
+            shown[description] = now
+            bar.update(tasks[description], completed=done)
 
     try:
         yield update
@@ -335,29 +458,34 @@ def inspect(model: ModelArg, as_json: JsonOpt = False) -> None:
 
 
 @app.command()
+@_data_options(shard=True)
 def capture(
     model: ModelArg,
-    data: DataOpt,
     out_path: Annotated[
         Path, typer.Option("--out", help="Capture file to write (.npz).", show_default=False)
     ],
     output: OutputOpt = None,
     activation: ActivationOpt = None,
-    batch_size: BatchOpt = DEFAULT_BATCH,
     force: ForceOpt = False,
     quiet: QuietOpt = False,
+    *,
+    data: DataSpec,
+    runtime: dict,
 ) -> None:
-    """Run the model on CPU over a labelled set and save its logits and labels."""
+    """Run the model on CPU over a labelled set and save its logits and labels.
+
+    The logits stream into the file batch by batch; it appears only when complete.
+    """
     with _progress(quiet) as progress:
         cap = api.capture(
             model,
             data,
             out=out_path,
             output=output,
-            batch_size=batch_size,
             force=force,
             progress=progress,
             activation=activation,
+            **runtime,
         )
     out.print(
         f"captured {cap.meta.n} x {cap.meta.num_classes} logits from '{cap.meta.scores}' "
@@ -369,7 +497,11 @@ def capture(
 
 @app.command()
 def fit(
-    logits: Annotated[Path, typer.Argument(help="Capture file from 'onnxcal capture'.", show_default=False)],
+    logits: Annotated[
+        list[Path],
+        typer.Argument(help="Capture file(s) from 'onnxcal capture'; several (e.g. shards) are merged.",
+                       metavar="LOGITS.npz...", show_default=False),
+    ],
     out_path: Annotated[Optional[Path], typer.Option("--out", help="Write the fit to this JSON file.")] = None,
     method: MethodOpt = "temperature",
     multilabel: MultilabelOpt = None,
@@ -437,7 +569,8 @@ def patch(
 def _how(r) -> str:
     """One line on what the patch did to the graph."""
     if r.folded:
-        how = "1/T folded into the weight and bias of the logits layer"
+        what = "1/T" if r.temperature is not None else f"{r.method} scaling"
+        how = f"{what} folded into the weight and bias of the logits layer"
         how += "; Softmax appended" if r.rewrite == "append-softmax" else ""
         how += "; Sigmoid appended" if r.rewrite == "append-sigmoid" else ""
         return how
@@ -457,16 +590,9 @@ def _how(r) -> str:
     epilog="Exit status: 0 every check passed (skipped ones do not fail), 1 a check failed, "
     "2 bad input (nothing is written then)."
 )
+@_data_options()
 def verify(
     patched: Annotated[Path, typer.Argument(help="Patched model.", show_default=False)],
-    data: Annotated[
-        Path,
-        typer.Option(
-            "--data",
-            help=".npz with one array per model input ('labels' too for the thresholds).",
-            show_default=False,
-        ),
-    ],
     original: Annotated[
         Optional[Path],
         typer.Option("--original", help="The uncalibrated model (default: the path in the record)."),
@@ -504,10 +630,12 @@ def verify(
     junit: Annotated[
         Optional[Path], typer.Option("--junit", help="Also write the checks as JUnit XML to this file.")
     ] = None,
-    batch_size: BatchOpt = DEFAULT_BATCH,
     force: ForceOpt = False,
     as_json: JsonOpt = False,
     quiet: QuietOpt = False,
+    *,
+    data: DataSpec,
+    runtime: dict,
 ) -> None:
     """Check a patched model, e.g. for a CI gate; each check is reported with its figure.
 
@@ -535,8 +663,8 @@ def verify(
             latency_runs=latency_runs,
             junit=junit,
             force=force,
-            batch_size=batch_size,
             progress=progress,
+            **runtime,
         )
     _print_json(result.to_dict()) if as_json else _render_verify(result)
     if junit is not None and not as_json:
@@ -563,7 +691,9 @@ def report(
         str, typer.Option("--format", help=f"Comma-separated outputs among {','.join(FORMATS)}.")
     ] = ",".join(FORMATS),
     class_names: Annotated[
-        Optional[Path], typer.Option("--class-names", help="Text file with one class name per line.")
+        Optional[Path],
+        typer.Option("--classes", help="Class names, one per line, in the model's class order "
+                     "(default: those recorded in the capture)."),
     ] = None,
     bins: Annotated[Optional[int], typer.Option("--bins", help="Bins (default: the fit's, else 15).")] = None,
     force: ForceOpt = False,
@@ -589,9 +719,9 @@ def report(
 
 
 @app.command()
+@_data_options()
 def calibrate(
     model: ModelArg,
-    data: DataOpt,
     out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False)],
     output: OutputOpt = None,
     output_name: Annotated[
@@ -614,13 +744,12 @@ def calibrate(
         Optional[Path],
         typer.Option("--report", help="Also write the report (as 'onnxcal report') into this directory."),
     ] = None,
-    class_names: Annotated[
-        Optional[Path], typer.Option("--class-names", help="Text file with one class name per line (for --report).")
-    ] = None,
-    batch_size: BatchOpt = DEFAULT_BATCH,
     force: ForceOpt = False,
     as_json: JsonOpt = False,
     quiet: QuietOpt = False,
+    *,
+    data: DataSpec,
+    runtime: dict,
 ) -> None:
     """Capture, fit, patch and verify in one go; print the before/after table.
 
@@ -638,12 +767,11 @@ def calibrate(
             activation=activation,
             compute_dtype=compute_dtype,
             fold=fold,
-            batch_size=batch_size,
             force=force,
             progress=progress,
             options=FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins),
             report=report_dir,
-            class_names=class_names,
+            **runtime,
         )
     if as_json:
         _print_json(
@@ -676,6 +804,17 @@ def _one_line(text: str) -> str:
     return " ".join(str(text).split())
 
 
+_default_showwarning = warnings.showwarning
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    """OnnxcalWarning as one 'warning:' line on stderr; others as Python shows them."""
+    if issubclass(category, OnnxcalWarning):
+        _warn([_one_line(message)])
+    else:
+        _default_showwarning(message, category, filename, lineno, file, line)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the CLI; return the exit status (the console script exits with it)."""
     args = list(sys.argv[1:] if argv is None else argv)
@@ -683,7 +822,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     if debug:  # accept --debug anywhere on the line
         args = ["--debug"] + [a for a in args if a != "--debug"]
     try:
-        rv = app(args=args, prog_name="onnxcal", standalone_mode=False)
+        with warnings.catch_warnings():
+            warnings.simplefilter("always", OnnxcalWarning)
+            warnings.showwarning = _show_warning
+            rv = app(args=args, prog_name="onnxcal", standalone_mode=False)
     except OnnxcalError as exc:
         if debug:
             traceback.print_exc()

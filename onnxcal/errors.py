@@ -31,3 +31,11 @@ class OnnxcalError(Exception):
         if self.hint:
             return f"{self.message}; {self.hint}"
         return self.message
+
+
+class OnnxcalWarning(UserWarning):
+    """Something the user should know that does not stop the work.
+
+    Raised through :func:`warnings.warn` (e.g. a fixed-batch model that must
+    run one sample at a time); the CLI prints it as one ``warning:`` line.
+    """

@@ -21,8 +21,8 @@ unique deterministic names and notes every change so it can be undone:
   class axis, also below opset 13) or Sigmoid as a new output.
 * ``_rewrite_ml``: probabilities from an ai.onnx.ml classifier; replace
   them by softmax(scale(log max(p, tiny))) and recompute its label output.
-* ``_fold``: scale a Gemm / MatMul(+Add)'s weight and bias instead of
-  adding a Div.
+* ``_fold``: fold the scaling (w * z + b per class) into a Gemm /
+  MatMul(+Add)'s weight and bias instead of adding nodes.
 
 What goes in front of the activation is one function of type ``ScaleFn``,
 made by ``scale_fn`` from the fitted ``Scaling``: ``divide_by_temperature``
@@ -220,7 +220,8 @@ class Record:
     kind : str
         ``"multiclass"``, ``"binary"`` or ``"multilabel"``.
     folded : bool
-        T was folded into the weight and bias of ``changes["scaled"]``.
+        The scaling (w * z + b per class; 1/T for temperature scaling) was
+        folded into the weight and bias of ``changes["scaled"]``.
     compute_dtype : str or None
         The dtype the scaling and activation run in, when Casts were added.
     source_output : str
@@ -229,7 +230,11 @@ class Record:
         What the patch added or renamed, so that it can be undone:
         ``nodes``, ``initializers``, ``outputs`` (names added), ``renamed``
         (tensor name now -> before), ``dropped`` ([index, name] of a removed
-        output), ``scaled`` (initializers divided by T when folded).
+        output), ``scaled`` (initializers changed when folded), ``fold``
+        (the layer, its weight and bias, Gemm's beta, which weight axis and
+        output axis hold the classes, the bias's dims and values before
+        folding) and ``rounded`` (how many times earlier folds and unfolds
+        rounded the weights, when re-patching a folded model).
     onnxcal_version : str
     format : int
     """
@@ -820,23 +825,16 @@ def _initializer(graph: onnx.GraphProto, name: str) -> onnx.TensorProto | None:
 def temperature_value(
     model: onnx.ModelProto, record: Record, original: onnx.ModelProto | None = None
 ) -> float | None:
-    """The temperature the graph applies, or None when it cannot be read.
+    """The single temperature the graph applies, or None when it cannot be read.
 
-    For a folded model this is the least-squares ratio of the original's
-    weights to the patched ones (it needs ``original``).
+    For a folded model this is 1 / w estimated from the original's weights
+    and the patched ones (it needs ``original``; see :func:`folded_values`).
     """
+    if record.temperature is None:
+        return None
     if record.folded:
-        if original is None:
-            return None
-        num = den = 0.0
-        for name in record.changes.get("scaled", []):
-            a, b = _initializer(original.graph, name), _initializer(model.graph, name)
-            if a is None or b is None:
-                return None
-            w = numpy_helper.to_array(a).astype(np.float64).ravel()
-            v = numpy_helper.to_array(b).astype(np.float64).ravel()
-            num, den = num + float(w @ w), den + float(w @ v)
-        return num / den if den > 0 else None
+        found = None if original is None else folded_values(model, record, original)
+        return None if found is None else float(1.0 / np.mean(found.w))
     init = _initializer(model.graph, record.temperature_initializer)
     if init is None:
         return None
@@ -849,12 +847,17 @@ def parameter_values(
 ) -> dict[str, np.ndarray] | None:
     """The values of the record's parameters as the graph holds them, or None.
 
-    For a folded model only T exists, estimated from the weights (see
-    :func:`temperature_value`).
+    For a folded model they are estimated from the weights against
+    ``original``'s (see :func:`folded_values`): T_k = 1 / w_k for
+    temperature scaling, else w and b.
     """
     if record.folded:
-        t = temperature_value(model, record, original)
-        return None if t is None else {"temperature": np.array([t])}
+        found = None if original is None else folded_values(model, record, original)
+        if found is None:
+            return None
+        if record.method == "temperature":
+            return {"temperature": 1.0 / found.w}
+        return {"w": found.w, "b": found.b.reshape(-1)}
     inits = record.initializers or {"temperature": record.temperature_initializer}
     found = {k: _initializer(model.graph, n) for k, n in inits.items()}
     if any(v is None for v in found.values()):
@@ -1159,26 +1162,70 @@ def _uses(graph: onnx.GraphProto) -> dict[str, int]:
     return counts
 
 
-def _fold_targets(graph: onnx.GraphProto, site: ScoreSite, drop_logits: bool) -> list[str]:
-    """The weight and bias initializers whose scaling by 1/T scales the scores.
+@dataclass(frozen=True)
+class _FoldSite:
+    """The linear layer the scores come from, and which of its weights hold class k.
+
+    ``weight_axis`` is the weight's axis with one slice per class and
+    ``class_from_end`` the class axis of the layer's output counted from the
+    end (1: the last), along which a per-class bias broadcasts; both are None
+    when every class is scaled alike and they need not be known.
+    ``bias_before`` keeps the bias's dims and values before folding, so that
+    ``unpatch`` restores it exactly (also when folding expanded a scalar
+    bias to one per class); subtracting b back out of it would lose up to
+    |b_k / beta| / |w_k| times the dtype's rounding. Stored in
+    ``Record.changes["fold"]``.
+    """
+
+    layer: str
+    weight: str
+    bias: str = ""
+    beta: float = 1.0
+    weight_axis: int | None = None
+    class_from_end: int | None = None
+    bias_before: dict | None = None
+
+
+def _axis_backward(node: onnx.NodeProto, axis: int, rank: int, shapes: _Shapes) -> tuple[int, int] | None:
+    """Class axis and rank of a layout node's input, given its output's (None: lost)."""
+    if node.op_type == "Identity":
+        return axis, rank
+    in_shape = shapes.shape(node.input[0])
+    if node.op_type == "Transpose":
+        perm = list(_attr(node, "perm", [])) or list(range(rank))[::-1]
+        return (perm[axis], rank) if axis < len(perm) else None
+    moved = _axis_through_reshape(axis, shapes.shape(node.output[0]), in_shape)
+    return None if moved is None else (moved, len(in_shape))
+
+
+def _fold_site(model: onnx.ModelProto, site: ScoreSite, drop_logits: bool, per_class: bool) -> _FoldSite:
+    """The Gemm or MatMul(+Add) whose weight and bias can take the scaling.
+
+    With ``per_class``, also which weight slice and bias entry belong to
+    class k: the class axis is followed back from the scores through the
+    layout ops (Identity, Transpose, reshapes) to the layer's output.
 
     Raises
     ------
     OnnxcalError
-        The scores do not come straight from a Gemm or MatMul(+Add), or its
-        weight or bias is shared, quantized or not a constant.
+        The scores do not come straight from a Gemm or MatMul(+Add), its
+        weight or bias is shared, quantized or not a constant, or (per
+        class) the class axis is lost on the way or is not the layer's
+        output-feature axis.
     """
+    graph = model.graph
     producers, uses = _producers(graph), _uses(graph)
     inits = {i.name: i for i in graph.initializer}
     overridable = {vi.name for vi in graph.input}
-    why = "leave out --fold to insert a Div instead"
-    tensor = site.scores
+    why = "leave out --fold to insert the scaling as nodes instead"
+    shapes = _Shapes(model)
+    tensor, tracked, lost = site.scores, (site.scores_axis, site.scores_rank), None
     # Each tensor on the way down has one reader: the activation (or, for raw
     # logits, the output that --drop-logits removes), then the next node down.
     if site.activation is None:
         if not drop_logits:
             raise OnnxcalError(
-                f"--fold would change the logits output '{site.output}' itself (to logits / T)",
+                f"--fold would change the logits output '{site.output}' itself (to the calibrated logits)",
                 "add --drop-logits to replace it by the probabilities, or " + why,
             )
     while True:
@@ -1191,6 +1238,8 @@ def _fold_targets(graph: onnx.GraphProto, site: ScoreSite, drop_logits: bool) ->
         if node is None:
             raise OnnxcalError(f"--fold: the scores '{tensor}' are not computed by the graph", why)
         if node.op_type in _RESHAPES | {"Identity", "Transpose"}:
+            if tracked is not None:
+                tracked, lost = _axis_backward(node, *tracked, shapes), node
             tensor = node.input[0]
             continue
         break
@@ -1210,9 +1259,7 @@ def _fold_targets(graph: onnx.GraphProto, site: ScoreSite, drop_logits: bool) ->
 
     if node.op_type in _QUANTIZED:
         raise OnnxcalError(f"--fold: the logits come from a quantized {node.op_type}", why)
-    if node.op_type == "Gemm":
-        return [constant(n, r) for n, r in zip(node.input[1:], ("weight", "bias")) if n]
-    bias = None
+    bias = ""
     if node.op_type == "Add":
         a, b = node.input
         bias, mm = (b, a) if b in inits else (a, b)
@@ -1220,28 +1267,247 @@ def _fold_targets(graph: onnx.GraphProto, site: ScoreSite, drop_logits: bool) ->
         if mm_node is None or mm_node.op_type != "MatMul" or uses.get(mm, 0) != 1:
             raise OnnxcalError("--fold: the logits come from an Add that does not follow a MatMul", why)
         node = mm_node
-    if node.op_type == "MatMul":
-        weight = next((n for n in node.input if n in inits), node.input[1])
-        return [constant(weight, "weight")] + ([constant(bias, "bias")] if bias else [])
-    raise OnnxcalError(
-        f"--fold: the logits come from a {node.op_type}, not a Gemm or MatMul(+Add)", why
-    )
+    if node.op_type == "Gemm":
+        weight = constant(node.input[1], "weight")
+        bias = constant(node.input[2], "bias") if len(node.input) > 2 and node.input[2] else ""
+        # Gemm: Y = alpha A' B' + beta C; column k of B' (row k of B when transB) is class k.
+        ndim, weight_axis, from_end = 2, 0 if _attr(node, "transB", 0) else 1, 1
+    elif node.op_type == "MatMul":
+        weight = constant(next((n for n in node.input if n in inits), node.input[1]), "weight")
+        bias = constant(bias, "bias") if bias else ""
+        # MatMul(A, W): W's last axis is the output's; MatMul(W, B): W's second-last.
+        ndim = len(inits[weight].dims)
+        from_end = 1 if list(node.input).index(weight) == 1 else 2
+        weight_axis = ndim - from_end
+    else:
+        raise OnnxcalError(
+            f"--fold: the logits come from a {node.op_type}, not a Gemm or MatMul(+Add)", why
+        )
+    layer = node.name or node.op_type
+    beta = float(_attr(node, "beta", 1.0)) if node.op_type == "Gemm" else 1.0
+    fold = _FoldSite(layer, weight, bias, beta)
+    if not per_class:
+        return fold
+    if tracked is None:
+        raise OnnxcalError(
+            f"--fold: cannot tell which part of weight '{weight}' belongs to which class: the class "
+            f"axis is lost through the {lost.op_type} node '{lost.name or lost.output[0]}' "
+            "(it merges axes, or its shapes are unknown)", why,
+        )
+    axis, rank = tracked
+    if ndim < 2 or rank - axis != from_end:
+        raise OnnxcalError(
+            f"--fold: the class axis of the scores is not the output-feature axis of '{layer}', "
+            f"so no slice of weight '{weight}' holds one class", why,
+        )
+    return replace(fold, weight_axis=weight_axis, class_from_end=from_end)
 
 
-def _scale_initializers(graph: onnx.GraphProto, names: list[str], factor: float) -> None:
-    """Multiply initializers by ``factor`` in place (float64 product, rounded to their dtype)."""
+def _uniform(v: np.ndarray) -> np.ndarray:
+    """``v`` as a 0-d array when every class has the same value."""
+    v = np.asarray(v, dtype=np.float64)
+    return np.array(v.flat[0]) if v.size and np.all(v == v.flat[0]) else v
+
+
+def _along(v: np.ndarray, axis: int | None, ndim: int) -> np.ndarray:
+    """Per-class values laid along ``axis`` of an ``ndim``-D array (a 0-d ``v`` as it is)."""
+    if v.ndim == 0:
+        return v
+    shape = [1] * ndim
+    shape[axis] = v.size
+    return v.reshape(shape)
+
+
+def _from_end(v: np.ndarray, class_from_end: int | None) -> np.ndarray:
+    """Per-class values that broadcast (trailing dims aligned) along axis ``-class_from_end``."""
+    return v if v.ndim == 0 else v.reshape((v.size,) + (1,) * (class_from_end - 1))
+
+
+def _fold_affine(scaling: Scaling) -> tuple[np.ndarray, np.ndarray]:
+    """The scaling as per-class (w, b), each 0-d when it is the same for every class."""
+    w, b = scaling.affine()
+    return _uniform(w), _uniform(b)
+
+
+def _array(graph: onnx.GraphProto, name: str) -> np.ndarray | None:
+    init = _initializer(graph, name)
+    return None if init is None else numpy_helper.to_array(init)
+
+
+def _put_arrays(graph: onnx.GraphProto, arrays: dict[str, np.ndarray]) -> None:
+    """Replace initializers by float64 ``arrays``, each rounded once to the dtype it had."""
     for i, init in enumerate(graph.initializer):
-        if init.name in names:
-            arr = numpy_helper.to_array(init)
-            new = numpy_helper.from_array((arr.astype(np.float64) * factor).astype(arr.dtype), init.name)
+        if init.name in arrays:
+            dtype = np.dtype(helper.tensor_dtype_to_np_dtype(init.data_type))
+            with np.errstate(over="ignore"):
+                new = numpy_helper.from_array(np.asarray(arrays[init.name]).astype(dtype), init.name)
+            if init.HasField("doc_string"):
+                new.doc_string = init.doc_string
             graph.initializer[i].CopyFrom(new)
 
 
-def _fold(s: _Surgery, site: ScoreSite, temperature: float, drop_logits: bool) -> None:
-    """Scale the logits' weight and bias by 1/T in place: no extra op."""
-    names = _fold_targets(s.graph, site, drop_logits)
-    _scale_initializers(s.graph, names, 1.0 / temperature)
-    s.changes["scaled"] = names
+def _fold(s: _Surgery, model: onnx.ModelProto, site: ScoreSite, scaling: Scaling, drop_logits: bool) -> None:
+    """Fold w * z + b into the weight and bias of the layer computing z: no extra op.
+
+    Slice k of the weight (column k of a Gemm's B', ...) is multiplied by
+    w_k, and bias entry k becomes w_k c_k + b_k / beta, so that
+    alpha A' (B' w) + beta (w c + b / beta) = w (alpha A' B' + beta c) + b.
+    """
+    w, b = _fold_affine(scaling)
+    fold = _fold_site(model, site, drop_logits, per_class=w.ndim > 0 or b.ndim > 0)
+    shift = bool(np.any(b != 0))
+    if np.any(w == 0):
+        raise OnnxcalError(
+            "--fold: the scaling multiplies some class's logit by 0, so the folded weights could "
+            "not be restored", "leave out --fold to insert the scaling as nodes instead",
+        )
+    if shift and not fold.bias:
+        raise OnnxcalError(
+            f"--fold: '{fold.layer}' has no bias to take the offset b of {scaling.method} scaling",
+            "leave out --fold to insert Mul + Add instead, or fit temperature scaling (no offset)",
+        )
+    if shift and fold.beta == 0:
+        raise OnnxcalError(
+            f"--fold: '{fold.layer}' multiplies its bias by beta = 0, so it cannot take the offset b "
+            f"of {scaling.method} scaling", "leave out --fold to insert Mul + Add instead",
+        )
+    weight = _array(s.graph, fold.weight)
+    arrays = {fold.weight: weight.astype(np.float64) * _along(w, fold.weight_axis, weight.ndim)}
+    dtypes = {fold.weight: weight.dtype}
+    if fold.bias:
+        bias = _array(s.graph, fold.bias)
+        offset = _from_end(b, fold.class_from_end) / fold.beta if shift else 0.0
+        arrays[fold.bias] = bias.astype(np.float64) * _from_end(w, fold.class_from_end) + offset
+        dtypes[fold.bias] = bias.dtype
+        fold = replace(fold, bias_before={"dims": list(bias.shape), "values": [float(v) for v in bias.ravel()]})
+    for name, arr in arrays.items():
+        dtype = dtypes[name]
+        with np.errstate(over="ignore"):
+            fits = np.all(np.isfinite(arr.astype(dtype)))
+        if not fits:
+            raise OnnxcalError(
+                f"--fold: the scaled '{name}' does not fit in {dtype.name}",
+                "leave out --fold to insert the scaling as nodes instead",
+            )
+    _put_arrays(s.graph, arrays)
+    s.changes["scaled"] = list(arrays)
+    s.changes["fold"] = asdict(fold)
+
+
+def _recorded_fold(record: Record) -> _FoldSite:
+    """The fold a record describes (records before per-class folding scaled every entry by 1/T)."""
+    if "fold" in record.changes:
+        return _FoldSite(**record.changes["fold"])
+    names = record.changes["scaled"]
+    return _FoldSite("", names[0], names[1] if len(names) > 1 else "")
+
+
+def _unfold(graph: onnx.GraphProto, record: Record) -> None:
+    """Undo ``_fold`` in place: divide the weight by w, put the recorded bias back."""
+    fold = _recorded_fold(record)
+    w, _ = _fold_affine(record.scaling)
+    weight = _array(graph, fold.weight)
+    arrays = {fold.weight: weight.astype(np.float64) / _along(w, fold.weight_axis, weight.ndim)}
+    if fold.bias_before is not None:
+        arrays[fold.bias] = np.reshape(fold.bias_before["values"], fold.bias_before["dims"])
+    elif fold.bias:  # a record from before per-class folding: the bias was divided by T
+        arrays[fold.bias] = _array(graph, fold.bias).astype(np.float64) / w
+    _put_arrays(graph, arrays)
+
+
+def _roundings(record: Record | None) -> int:
+    """How many times the weights of ``unpatch(model)`` were rounded since the source.
+
+    Each fold rounds the folded weight once and each unfold once more; a
+    later fold adds one (``FoldedValues.roundings``), so verify's limit can
+    follow repeated re-patching.
+    """
+    if record is None:
+        return 0
+    return record.changes.get("rounded", 0) + (2 if record.folded else 0)
+
+
+@dataclass(frozen=True)
+class FoldedValues:
+    """The per-class w and b that a folded model's weights carry, against the original's.
+
+    Attributes
+    ----------
+    w : ndarray
+        Least-squares multiplier of each class's weight slice, W'_k ~ w_k W_k:
+        shape (K,); (1,) when every class was scaled alike (one ratio over
+        the whole weight).
+    b : ndarray
+        Offset per class, class axis last: beta (c'_k - w_k c_k) from the
+        patched and original biases (zeros when the layer has no bias).
+    b_scale : ndarray
+        beta (|c'_k| + |w_k c_k|), shaped like ``b``: the size that b's
+        rounding error is relative to.
+    residual : float
+        Largest |W'_k - w_k W_k| relative to the largest |w_k W_k| of the same
+        slice: rounding only when the weights are a per-class multiple of the
+        original's.
+    dtype : str
+        The weights' dtype.
+    roundings : int
+        How many times the weights were rounded since the source: 1 for one
+        fold, 2 more for each re-patch of a folded model (unfold, fold).
+    """
+
+    w: np.ndarray
+    b: np.ndarray
+    b_scale: np.ndarray
+    residual: float
+    dtype: str
+    roundings: int = 1
+
+
+def _class_last(x: np.ndarray, class_from_end: int | None) -> np.ndarray:
+    if class_from_end is None:
+        return x.reshape(-1, 1)
+    return np.moveaxis(x, -class_from_end, -1).reshape(-1, x.shape[-class_from_end])
+
+
+def folded_values(
+    model: onnx.ModelProto, record: Record, original: onnx.ModelProto
+) -> FoldedValues | None:
+    """Estimate the w and b folded into ``model``'s weights from ``original``'s.
+
+    Per class, w_k is the least-squares ratio of the patched weight slice to
+    the original's, then b_k = beta (c'_k - w_k c_k) from the biases. None
+    when a folded initializer is missing or its shape does not fit.
+    """
+    fold = _recorded_fold(record)
+    w0, w1 = _array(original.graph, fold.weight), _array(model.graph, fold.weight)
+    if w0 is None or w1 is None or w0.shape != w1.shape:
+        return None
+    axis = fold.weight_axis
+
+    def slices(x: np.ndarray) -> np.ndarray:  # a row per class (one row when all are alike)
+        x = x.astype(np.float64)
+        return x.reshape(1, -1) if axis is None else np.moveaxis(x, axis, 0).reshape(x.shape[axis], -1)
+
+    a, c = slices(w0), slices(w1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w = np.sum(a * c, axis=1) / np.sum(a * a, axis=1)
+        fitted = w[:, None] * a
+        residual = float(np.max(np.max(np.abs(c - fitted), axis=1) / np.max(np.abs(fitted), axis=1)))
+    roundings = record.changes.get("rounded", 0) + 1
+    if not fold.bias:
+        zeros = np.zeros((1, 1))
+        return FoldedValues(w, zeros, zeros, residual, w1.dtype.name, roundings)
+    c0, c1 = _array(original.graph, fold.bias), _array(model.graph, fold.bias)
+    if c0 is None or c1 is None:
+        return None
+    per = _from_end(w, fold.class_from_end) if fold.class_from_end else w.reshape(())
+    try:
+        scaled = per * c0.astype(np.float64)
+        b = fold.beta * (c1.astype(np.float64) - scaled)
+    except ValueError:  # shapes that do not fit together
+        return None
+    b, b_scale = np.broadcast_arrays(b, fold.beta * (np.abs(c1.astype(np.float64)) + np.abs(scaled)))
+    b, b_scale = _class_last(b, fold.class_from_end), _class_last(b_scale, fold.class_from_end)
+    return FoldedValues(w, b, b_scale, residual, w1.dtype.name, roundings)
 
 
 # -- records and undo ------------------------------------------------------
@@ -1260,9 +1526,9 @@ def _write_record(model: onnx.ModelProto, record: Record | None) -> None:
 def unpatch(model: onnx.ModelProto) -> onnx.ModelProto:
     """A copy of a patched ``model`` with onnxcal's patch undone.
 
-    Exact for every rewrite that adds nodes; a folded model gets its weights
-    multiplied back by T, which is exact up to one rounding of the weights'
-    dtype.
+    Exact for every rewrite that adds nodes. A folded model gets its weight
+    divided by w again, restored up to one rounding of its dtype, and its
+    bias back exactly (dims and values, from the record).
 
     Raises
     ------
@@ -1311,7 +1577,7 @@ def unpatch(model: onnx.ModelProto) -> onnx.ModelProto:
     del g.output[:]
     g.output.extend(outputs)
     if record.folded:
-        _scale_initializers(g, ch["scaled"], record.temperature)
+        _unfold(g, record)
     _write_record(out, None)
     return out
 
@@ -1368,16 +1634,10 @@ def _check_options(
             "--compute-dtype sets the dtype of the inserted Div, and with --fold there is none",
             "give one of --fold and --compute-dtype",
         )
-    if fold and scaling.temperature is None:
-        raise OnnxcalError(
-            f"--fold folds a single temperature into the weights; {scaling.method} scaling "
-            "with per-class or per-label parameters is inserted as nodes instead",
-            "leave out --fold",
-        )
     if fold and site.from_probabilities:
         raise OnnxcalError(
             f"--fold: output '{site.output}' comes from an ai.onnx.ml classifier, which has "
-            "no logits layer to fold T into",
+            "no logits layer to fold the scaling into",
             "leave out --fold",
         )
     if compute_dtype == site.dtype:
@@ -1427,8 +1687,9 @@ def patch(
         Run the Div and the activation in this dtype (Casts around them);
         the output keeps its dtype.
     fold : bool
-        Scale the weight and bias of the Gemm / MatMul(+Add) producing the
-        logits by 1/T instead of inserting a Div.
+        Fold the scaling (any of them: each is w * z + b per class) into the
+        weight and bias of the Gemm / MatMul(+Add) producing the logits
+        instead of inserting nodes (see ``_fold``).
 
     Returns
     -------
@@ -1445,8 +1706,10 @@ def patch(
     kind = scaling.activation
     compute = _check_options(site, compute_dtype, fold, scaling)
     s = _Surgery(out.graph)
+    if rounded := _roundings(previous):
+        s.changes["rounded"] = rounded
     if fold:
-        _fold(s, site, scaling.temperature, drop_logits)
+        _fold(s, out, site, scaling, drop_logits)
     scale: ScaleFn = _no_scaling if fold else scale_fn(scaling, site)
     if site.from_probabilities:
         _rewrite_ml(s, site, scale, compute)

@@ -113,6 +113,22 @@ class Scaling:
             return z / a["temperature"]
         return z * a["w"] + a["b"]
 
+    def affine(self) -> tuple[np.ndarray, np.ndarray]:
+        """``(w, b)`` with ``apply(z) = w * z + b``, float64: ``(1/T, 0)`` for temperature scaling.
+
+        Every method onnxcal fits is an affine map per class on the logits;
+        ``graph`` folds it into a linear layer in this form.
+
+        Examples
+        --------
+        >>> Scaling.of_temperature([2.0, 4.0], "multilabel").affine()
+        (array([0.5 , 0.25]), array([0., 0.]))
+        """
+        a = self.arrays()
+        if self.method == "temperature":
+            return 1.0 / a["temperature"], np.zeros_like(a["temperature"])
+        return a["w"], a["b"]
+
     def scale(self) -> np.ndarray:
         """The multiplier of the logits: 1/T, or w (for warnings on its size)."""
         a = self.arrays()

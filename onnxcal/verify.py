@@ -79,7 +79,12 @@ class Check:
         return "skip" if self.skipped else ("pass" if self.passed else "fail")
 
     def to_dict(self) -> dict:
-        return {**asdict(self), "status": self.status}
+        """JSON-ready: a NaN or infinite figure becomes None."""
+        d = asdict(self)
+        for key in ("value", "limit"):
+            if d[key] is not None and not np.isfinite(d[key]):
+                d[key] = None
+        return {**d, "status": self.status}
 
 
 def skipped(name: str, why: str) -> Check:
@@ -214,13 +219,11 @@ def record_check(recorded, in_graph, dtype: str | None = "float32") -> Check:
     ``recorded`` and ``in_graph`` are a temperature, or dicts of parameter
     arrays (``in_graph`` None when an initializer is missing). The graph
     holds them in ``dtype``, so they are compared with the recorded values
-    rounded to that dtype; a folded T (estimated from the weights) may
-    differ by the dtype's rounding.
+    rounded to that dtype. Folded models: :func:`folded_record_check`.
     """
     dtype = dtype or "float32"
-    # A float32 initializer holds a value exactly as rounded; 1e-6 is a margin.
-    # A folded T is a least-squares ratio of rounded weights: up to one unit
-    # roundoff of the weights' dtype.
+    # An initializer holds a value exactly as rounded; 1e-6 (and one float16
+    # or two bfloat16 unit roundoffs) is a margin.
     limit = {"float16": float(np.finfo(np.float16).eps), "bfloat16": 2.0**-7}.get(dtype, 1e-6)
     if in_graph is None:
         return Check("record", False, None, limit, "parameter in the graph not found")
@@ -231,6 +234,51 @@ def record_check(recorded, in_graph, dtype: str | None = "float32") -> Check:
     diff = float(np.max(np.abs(rounded - g) / np.maximum(np.abs(rounded), 1e-12))) if r.size else 0.0
     shown = f"record T = {r[0]:.6g}, graph T = {g[0]:.6g}" if r.size == 1 else f"{r.size} parameters"
     return Check("record", diff <= limit, diff, limit, f"{shown} ({dtype}; max relative difference)")
+
+
+# A folded parameter is estimated from weights each rounded once to their
+# dtype: w_k as a least-squares ratio (relative error <= one unit roundoff u),
+# b_k = beta (c'_k - w_k c_k) (error <= u beta (|c'_k| + |w_k c_k|)), and the
+# patched weights are w_k times the original's within 2u (IEEE 754 rounding,
+# u = 2**-24 float32, 2**-11 float16, 2**-8 bfloat16). The limit allows 4u;
+# for float64 weights the float64 sums themselves dominate, hence 1e-12.
+# Re-patching a folded model rounds the weights twice more (unfold, fold):
+# after r roundings the bounds are r u and 2 r u, and the limit is (r + 1)/2
+# times these values.
+FOLD_LIMIT = {"float64": 1e-12, "float32": 4 * 2.0**-24, "float16": 4 * 2.0**-11, "bfloat16": 4 * 2.0**-8}
+
+
+def folded_record_check(recorded: Scaling, found) -> Check:
+    """Check that a folded model's weights carry the record's parameters.
+
+    ``found`` (``graph.folded_values``) holds the per-class w and b
+    estimated from the original's and the patched weights, or None when a
+    folded initializer is missing. Each is compared with the record's
+    (``Scaling.affine``: 1/T and 0 for temperature scaling): w relative to
+    |w|, b relative to the size of the bias terms it is computed from, and
+    every patched weight slice must be its w_k times the original's; all
+    within :data:`FOLD_LIMIT` of the weights' dtype, times (r + 1) / 2 for
+    weights rounded r times (re-patching a folded model).
+    """
+    if found is None:
+        return Check("record", False, float("nan"), float("nan"), "folded weights not found in both models")
+    limit = FOLD_LIMIT.get(found.dtype, FOLD_LIMIT["float32"]) * (found.roundings + 1) / 2
+    w, b = recorded.affine()
+    try:
+        np.broadcast_shapes(found.w.shape, w.shape)
+        np.broadcast_shapes(found.b.shape, b.shape)
+    except ValueError:
+        detail = f"record has {w.size} classes, the folded weights {found.w.size}"
+        return Check("record", False, float("nan"), limit, detail)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dw = np.abs(found.w - w) / np.abs(w)
+        db = np.abs(found.b - b) / np.maximum(found.b_scale, np.finfo(np.float64).tiny)
+    diff = float(np.max(np.concatenate([dw.ravel(), db.ravel(), [found.residual]])))
+    if recorded.temperature is not None:
+        shown = f"record T = {recorded.temperature:.6g}, folded weights T = {1.0 / np.mean(found.w):.6g}"
+    else:
+        shown = f"{recorded.method} w, b of {max(w.size, found.w.size)} classes estimated from the folded weights"
+    return Check("record", diff <= limit, diff, limit, f"{shown} ({found.dtype}; max relative difference)")
 
 
 def source_check(recorded_sha: str, original_sha: str) -> Check:
@@ -248,7 +296,7 @@ def source_check(recorded_sha: str, original_sha: str) -> Check:
 
 def format_figure(value: float | None) -> str:
     """A check's value or limit for tables: 3 significant digits, "-" when absent."""
-    return "-" if value is None else f"{value:.3g}"
+    return "-" if value is None or not np.isfinite(value) else f"{value:.3g}"
 
 
 def threshold_checks(

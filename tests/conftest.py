@@ -133,3 +133,19 @@ def identity_model(k: int = 3) -> onnx.ModelProto:
     model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
     model.ir_version = 8
     return model
+
+
+BELT_MODEL = FIXTURES / "belt_camera.onnx"
+BELT_IMAGES = FIXTURES / "belt_images"
+BELT_CLASSES = FIXTURES / "belt_camera_classes.txt"
+BELT_PREPROCESS = FIXTURES / "belt_camera_preprocess.toml"
+BELT_LABELS = FIXTURES / "belt_images_labels.csv"
+DEMO_CSV = FIXTURES / "conveyor_faults_val.csv"
+DEMO_CLASSES = FIXTURES / "conveyor_faults_classes.txt"
+TICKETS_MODEL = FIXTURES / "tickets.onnx"
+TICKETS = {
+    "input_ids": FIXTURES / "tickets_input_ids.npy",
+    "attention_mask": FIXTURES / "tickets_attention_mask.npy",
+}
+TICKETS_LABELS = FIXTURES / "tickets_labels.npy"
+TICKETS_CLASSES = FIXTURES / "tickets_classes.txt"

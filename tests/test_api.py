@@ -12,8 +12,25 @@ from sklearn.exceptions import ConvergenceWarning
 from sklearn.model_selection import train_test_split
 from sklearn.neural_network import MLPClassifier
 
-from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, mlp_model, random_mlp
+from conftest import (
+    BELT_CLASSES,
+    BELT_IMAGES,
+    BELT_MODEL,
+    BELT_PREPROCESS,
+    DEMO_CLASSES,
+    DEMO_CSV,
+    DEMO_MODEL,
+    DEMO_TEST,
+    DEMO_VAL,
+    TICKETS,
+    TICKETS_CLASSES,
+    TICKETS_LABELS,
+    TICKETS_MODEL,
+    mlp_model,
+    random_mlp,
+)
 from onnxcal import api, graph
+from onnxcal.data import DataSpec, Selection
 from onnxcal.fit import FitOptions
 from onnxcal.metrics import evaluate
 
@@ -95,6 +112,55 @@ def test_inspect_demo():
     info = api.inspect(DEMO_MODEL)
     assert info.site.output == "logits" and info.site.activation is None
     assert info.site.num_classes == 5 and not info.batch_fixed and info.opset == 17
+
+
+# --------------------------------------------------------------------------
+# Every input form through calibrate
+
+QUICK = FitOptions(holdout=0, bootstrap=0)  # in-sample, no intervals: these tests are about the data
+
+FORMS = {
+    "npz": (DEMO_MODEL, DEMO_VAL),
+    "csv": (DEMO_MODEL, DataSpec(path=DEMO_CSV, label_column="condition", classes=DEMO_CLASSES)),
+    "npy": (TICKETS_MODEL, DataSpec(inputs=TICKETS, labels=TICKETS_LABELS, classes=TICKETS_CLASSES)),
+    "images": (BELT_MODEL, DataSpec(path=BELT_IMAGES, classes=BELT_CLASSES, preprocess=BELT_PREPROCESS)),
+}
+
+
+@pytest.mark.parametrize("form", FORMS)
+def test_every_input_form_calibrates(tmp_path, form):
+    model, data = FORMS[form]
+    result = api.calibrate(model, data, tmp_path / "out.onnx", options=QUICK)
+    assert result.verification.passed and result.patch is not None
+    s = result.summary
+    assert s.after.nll < s.before.nll and s.after.accuracy == s.before.accuracy
+    assert api.verify(tmp_path / "out.onnx", data, batch_size=7).passed
+
+
+def test_csv_and_npz_of_the_same_rows_fit_the_same_temperature(tmp_path):
+    csv_fit = api.calibrate(DEMO_MODEL, FORMS["csv"][1], tmp_path / "a.onnx", options=QUICK).summary
+    npz_fit = api.calibrate(
+        DEMO_MODEL, DataSpec(path=DEMO_VAL, selection=Selection(limit=400)), tmp_path / "b.onnx", options=QUICK
+    ).summary
+    assert csv_fit.temperature == npz_fit.temperature
+
+
+def test_image_class_order_matters(tmp_path):
+    # Without the class list the sorted folder names misname two of the three classes.
+    good = api.capture(BELT_MODEL, FORMS["images"][1])
+    wrong = api.capture(BELT_MODEL, DataSpec(path=BELT_IMAGES, preprocess=BELT_PREPROCESS))
+    acc = lambda c: float(np.mean(np.asarray(c.logits).argmax(1) == c.labels))  # noqa: E731
+    assert acc(good) >= 0.8 > acc(wrong)
+
+
+def test_fit_accepts_shard_files(tmp_path):
+    files = [tmp_path / f"s{i}.npz" for i in (1, 2, 3)]
+    for i, f in enumerate(files, start=1):
+        api.capture(DEMO_MODEL, DataSpec(path=DEMO_VAL, selection=Selection(shard=(i, 3))), out=f)
+    whole = api.fit(api.capture(DEMO_MODEL, DEMO_VAL), options=QUICK)
+    merged = api.fit(files, out=tmp_path / "fit.json", options=QUICK)
+    assert merged.temperature == whole.temperature
+    assert list(merged.capture["merged_from"]) == [str(f) for f in files]
 
 
 def test_digits_vector_scaling_end_to_end(digits_setup):

@@ -1,14 +1,41 @@
 """Capturing logits with onnxruntime."""
 
+import warnings
+from dataclasses import replace
+
 import numpy as np
+import onnx
 import onnxruntime as ort
 import pytest
+from onnx import TensorProto, helper, numpy_helper
+from onnx.reference import ReferenceEvaluator
 
-from conftest import DEMO_MODEL, DEMO_VAL, random_mlp
+from conftest import (
+    BELT_CLASSES,
+    BELT_MODEL,
+    DEMO_MODEL,
+    DEMO_VAL,
+    TICKETS,
+    TICKETS_CLASSES,
+    TICKETS_LABELS,
+    TICKETS_MODEL,
+    files_in,
+    random_mlp,
+)
 from onnxcal import graph
-from onnxcal.capture import capture, load_capture, nonfinite_rows, run_model, save_capture
-from onnxcal.data import Dataset, load_npz
-from onnxcal.errors import OnnxcalError
+from onnxcal.capture import (
+    RunOptions,
+    capture,
+    check_run_options,
+    load_capture,
+    load_captures,
+    merge_captures,
+    nonfinite_rows,
+    run_model,
+    save_capture,
+)
+from onnxcal.data import DataSpec, Dataset, Selection, load_dataset, load_npz
+from onnxcal.errors import OnnxcalError, OnnxcalWarning
 
 
 def capture_of(model, ds, **kw):
@@ -95,6 +122,270 @@ def test_nonfinite_rows():
     z[1, 0] = np.nan
     z[3, 1] = np.inf
     assert nonfinite_rows(z).tolist() == [1, 3]
+
+
+# --------------------------------------------------------------------------
+# Run options
+
+
+def test_threads_and_optimisation_levels_give_the_same_logits(rng):
+    model = random_mlp(rng)
+    ds = Dataset({"x": rng.normal(size=(40, 6)).astype(np.float32)}, rng.integers(0, 4, 40), "mem")
+    base = capture_of(model, ds).logits
+    for options in (RunOptions(threads=1), RunOptions(optimization="disable"), RunOptions(batch_size=7)):
+        np.testing.assert_allclose(capture_of(model, ds, options=options).logits, base, rtol=1e-6)
+
+
+@pytest.mark.parametrize(
+    "options, message",
+    [
+        (RunOptions(provider="NoSuchExecutionProvider"), "--provider NoSuchExecutionProvider is not available.*CPUExecutionProvider"),
+        (RunOptions(optimization="max"), "--optimization 'max' .*disable, basic, extended, all"),
+        (RunOptions(threads=-1), "--threads -1 is negative"),
+        (RunOptions(batch_size=0), "--batch-size 0 is not a positive"),
+    ],
+)
+def test_run_option_errors(options, message):
+    with pytest.raises(OnnxcalError, match=message):
+        check_run_options(options)
+
+
+# --------------------------------------------------------------------------
+# Fixed batch dims
+
+
+def per_sample(model, x):
+    """onnxruntime on the model as exported, one sample per call (the reference)."""
+    sess = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
+    name = sess.get_inputs()[0].name
+    return np.concatenate([sess.run(None, {name: x[i : i + 1]})[0] for i in range(len(x))])
+
+
+def batch1_model(kind: str, rng) -> onnx.ModelProto:
+    """Batch fixed at 1: 'gemm' frees cleanly; 'reshape' hard-codes the batch in a
+    Reshape (fails when freed); 'coupled' normalises over the batch axis (runs
+    when freed but gives other numbers)."""
+    w = numpy_helper.from_array(rng.normal(size=(6, 3)).astype(np.float32), "w")
+    b = numpy_helper.from_array(rng.normal(size=3).astype(np.float32), "b")
+    inits = [w, b]
+    if kind == "gemm":
+        nodes = [helper.make_node("Gemm", ["x", "w", "b"], ["scores"])]
+    elif kind == "reshape":
+        inits.append(numpy_helper.from_array(np.array([1, 6], np.int64), "shape"))
+        nodes = [
+            helper.make_node("Reshape", ["x", "shape"], ["flat"]),
+            helper.make_node("Gemm", ["flat", "w", "b"], ["scores"]),
+        ]
+    else:
+        nodes = [
+            helper.make_node("ReduceMean", ["x"], ["mu"], axes=[0, 1], keepdims=1),
+            helper.make_node("Sub", ["x", "mu"], ["centred"]),
+            helper.make_node("Gemm", ["centred", "w", "b"], ["scores"]),
+        ]
+    graph_ = helper.make_graph(
+        nodes, kind,
+        [helper.make_tensor_value_info("x", TensorProto.FLOAT, [1, 6])],
+        [helper.make_tensor_value_info("scores", TensorProto.FLOAT, [1, 3])],
+        initializer=inits,
+    )
+    model = helper.make_model(graph_, opset_imports=[helper.make_opsetid("", 17)])
+    model.ir_version = 8
+    onnx.checker.check_model(model, full_check=True)
+    return model
+
+
+def test_batch1_model_is_freed_and_batched(rng):
+    model = batch1_model("gemm", rng)
+    x = rng.normal(size=(70, 6)).astype(np.float32)
+    ds = Dataset({"x": x}, rng.integers(0, 3, 70), "mem")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", OnnxcalWarning)  # no fallback warning
+        cap = capture_of(model, ds, batch_size=32)
+    assert cap.meta.batching == "freed"
+    np.testing.assert_allclose(cap.logits, per_sample(model, x), rtol=1e-6, atol=1e-6)
+    # the model itself keeps its fixed batch dim
+    assert model.graph.input[0].type.tensor_type.shape.dim[0].dim_value == 1
+
+
+@pytest.mark.parametrize("kind, reason", [("reshape", "fails on a batch of 32"), ("coupled", "differs from 1-sample runs")])
+def test_batch1_model_that_cannot_be_freed_falls_back(rng, kind, reason):
+    model = batch1_model(kind, rng)
+    x = rng.normal(size=(40, 6)).astype(np.float32)
+    ds = Dataset({"x": x}, rng.integers(0, 3, 40), "mem")
+    seen = []
+    with pytest.warns(OnnxcalWarning, match=f"fixed at 1 .*{reason}.*1 sample.s. per call"):
+        cap = capture_of(model, ds, batch_size=32, progress=lambda d, done, total: seen.append(done))
+    assert cap.meta.batching == "fixed"
+    assert seen[:3] == [1, 2, 3] and seen[-1] == 40
+    np.testing.assert_allclose(cap.logits, per_sample(model, x), rtol=1e-6, atol=1e-6)
+
+
+def test_batch_size_one_does_not_try_freeing(rng):
+    model = batch1_model("reshape", rng)
+    ds = Dataset({"x": rng.normal(size=(5, 6)).astype(np.float32)}, rng.integers(0, 3, 5), "mem")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", OnnxcalWarning)
+        assert capture_of(model, ds, batch_size=1).meta.batching == "fixed"
+
+
+# --------------------------------------------------------------------------
+# Multi-input models
+
+
+def test_multi_input_model_against_the_onnx_reference_evaluator():
+    model = graph.load_model(TICKETS_MODEL)
+    ds = load_dataset(
+        DataSpec(inputs=TICKETS, labels=TICKETS_LABELS, classes=TICKETS_CLASSES),
+        [graph.tensor_spec(vi) for vi in model.graph.input],
+    )
+    cap = capture_of(model, ds, batch_size=50)
+    # onnx's ReferenceEvaluator follows the ONNX operator spec, independently of onnxruntime
+    feeds = {k: np.load(v) for k, v in TICKETS.items()}
+    (ref,) = ReferenceEvaluator(model).run(None, feeds)
+    np.testing.assert_allclose(cap.logits, ref, rtol=1e-5, atol=1e-6)
+    assert cap.meta.class_names == ("mechanical", "electrical", "sensor")
+
+
+def test_class_list_must_match_the_model(rng, tmp_path):
+    model = random_mlp(rng)  # 4 classes
+    ds = Dataset({"x": np.zeros((3, 6), np.float32)}, np.zeros(3, np.int64), "mem", class_names=("a", "b"))
+    with pytest.raises(OnnxcalError, match="class list of 'mem' has 2 classes but the model has 4"):
+        capture_of(model, ds)
+
+
+# --------------------------------------------------------------------------
+# Streaming to the file, interruption
+
+
+@pytest.fixture
+def npz_set(tmp_path, rng):
+    model = random_mlp(rng)
+    x = rng.normal(size=(120, 6)).astype(np.float32)
+    np.savez(tmp_path / "val.npz", x=x, labels=rng.integers(0, 4, 120))
+    return model, tmp_path / "val.npz"
+
+
+def load_set(model, path, **selection):
+    return load_dataset(DataSpec(path=path, selection=Selection(**selection)), [graph.tensor_spec(model.graph.input[0])])
+
+
+def test_streamed_file_equals_the_in_memory_capture(tmp_path, npz_set):
+    model, path = npz_set
+    ds = load_set(model, path)
+    mem = capture_of(model, ds, batch_size=16)
+    out = tmp_path / "c.npz"
+    streamed = capture_of(model, ds, batch_size=16, out=out)
+    assert isinstance(streamed.logits, np.memmap)  # read back in place
+    with np.load(out, allow_pickle=False) as npz:  # numpy's own reader reads the file
+        np.testing.assert_array_equal(npz["logits"], mem.logits)
+        np.testing.assert_array_equal(npz["labels"], mem.labels)
+        assert "indices" not in npz.files  # every row, in order
+    assert streamed.meta == mem.meta and streamed.meta.batching == "batched"
+    assert streamed.indices is None and streamed.sample_indices().tolist() == list(range(120))
+    shard = capture_of(model, load_set(model, path, shard=(2, 3)), out=tmp_path / "s.npz")
+    assert load_capture(tmp_path / "s.npz").indices.tolist() == list(range(40, 80)) == shard.indices.tolist()
+
+
+def test_interrupted_capture_leaves_no_file(tmp_path, npz_set):
+    model, path = npz_set
+    before = files_in(tmp_path)
+
+    def interrupt(description, done, total):
+        if done >= 32:
+            raise KeyboardInterrupt
+
+    with pytest.raises(KeyboardInterrupt):
+        capture_of(model, load_set(model, path), batch_size=16, progress=interrupt, out=tmp_path / "c.npz")
+    assert files_in(tmp_path) == before  # no output, no temporary file
+
+
+def test_failure_mid_run_leaves_no_file(tmp_path):
+    from PIL import Image
+
+    model = graph.load_model(BELT_MODEL)
+    for i in range(3):
+        (tmp_path / "imgs" / "clean").mkdir(parents=True, exist_ok=True)
+        Image.new("RGB", (32, 32), (100, 100, 100)).save(tmp_path / "imgs" / "clean" / f"{i}.png")
+    (tmp_path / "imgs" / "clean" / "2.png").write_bytes(b"\x89PNG truncated")
+    spec = DataSpec(path=tmp_path / "imgs", classes=BELT_CLASSES)
+    ds = load_dataset(spec, [graph.tensor_spec(model.graph.input[0])])
+    before = files_in(tmp_path)
+    seen = []
+    with pytest.raises(OnnxcalError, match="image .*2.png' cannot be read"):
+        capture_of(model, ds, batch_size=1, out=tmp_path / "c.npz",
+                   progress=lambda d, done, total: seen.append(done))
+    assert seen == [1, 2]  # two batches were written before the failure
+    assert files_in(tmp_path) == before
+
+
+# --------------------------------------------------------------------------
+# Shards and merging
+
+
+@pytest.mark.parametrize("seed", [None, 11])
+def test_shards_merged_equal_the_unsharded_capture(tmp_path, npz_set, seed):
+    model, path = npz_set
+    whole = capture_of(model, load_set(model, path), batch_size=10)
+    files = []
+    for i in (3, 1, 2):  # any order
+        files.append(tmp_path / f"shard{i}.npz")
+        capture_of(model, load_set(model, path, shard=(i, 3), shuffle_seed=seed), batch_size=10, out=files[-1])
+    merged = load_captures(files)
+    np.testing.assert_array_equal(merged.logits, whole.logits)
+    np.testing.assert_array_equal(merged.labels, whole.labels)
+    np.testing.assert_array_equal(merged.indices, whole.sample_indices())
+    assert merged.meta.n == 120 and merged.meta.merged_from == tuple(map(str, files))
+    assert merged.meta.shard is None
+
+
+def test_merge_refuses_overlap_and_other_models(tmp_path, npz_set, rng):
+    model, path = npz_set
+    a, b = tmp_path / "a.npz", tmp_path / "b.npz"
+    capture_of(model, load_set(model, path, shard=(1, 2)), out=a)
+    capture_of(model, load_set(model, path, limit=70), out=b)
+    with pytest.raises(OnnxcalError, match="'.*a.npz' and '.*b.npz' both hold row 0 of .*val.npz' .60 shared rows"):
+        load_captures([a, b])
+    with pytest.raises(OnnxcalError, match="both hold row 0"):
+        load_captures([a, a])
+    other = tmp_path / "other.npz"
+    cap = capture(model, load_set(model, path, shard=(2, 2)), model_path="m2.onnx", model_sha256="cd", out=other)
+    with pytest.raises(OnnxcalError, match="captured from different models .sha256.*ab vs cd"):
+        load_captures([a, other])
+    named = replace(cap, meta=replace(cap.meta, model_sha256="ab", class_names=("p", "q", "r", "s")))
+    with pytest.raises(OnnxcalError, match="different class lists"):
+        merge_captures([load_capture(a), named], ["a.npz", "named"])
+
+
+def test_merge_warns_about_missing_shards_and_checks_coverage(tmp_path, npz_set):
+    model, path = npz_set
+    parts = [capture_of(model, load_set(model, path, shard=(i, 3))) for i in (1, 2, 3)]
+    with pytest.warns(OnnxcalWarning, match="merging 2 of 3 shards .*shard.s. 2 missing"):
+        merge_captures([parts[0], parts[2]], ["1", "3"])
+    wrong = [replace(p, meta=replace(p.meta, data_total=121)) for p in parts]
+    with pytest.raises(OnnxcalError, match="the 3 shards .* hold 120 rows of .* which has 121"):
+        merge_captures(wrong, ["1", "2", "3"])
+
+
+def test_captures_of_different_sets_merge_side_by_side(tmp_path, rng):
+    model = random_mlp(rng)
+    for name in ("p", "q"):
+        np.savez(tmp_path / f"{name}.npz", x=rng.normal(size=(8, 6)).astype(np.float32), labels=rng.integers(0, 4, 8))
+    caps = [capture_of(model, load_set(model, tmp_path / f"{n}.npz")) for n in ("p", "q")]
+    merged = merge_captures(caps, ["p", "q"])
+    np.testing.assert_array_equal(merged.logits, np.concatenate([c.logits for c in caps]))
+    assert merged.meta.data_total == 16
+
+
+def test_old_capture_files_without_indices_still_load(tmp_path, rng):
+    model = random_mlp(rng)
+    ds = Dataset({"x": rng.normal(size=(9, 6)).astype(np.float32)}, rng.integers(0, 4, 9), "mem")
+    cap = capture_of(model, ds)
+    meta = {k: v for k, v in cap.meta.to_dict().items() if k in ("model_sha256", "model_path", "output", "scores", "activation", "class_axis", "num_classes", "n", "data_source", "onnxcal_version")}
+    import json
+    np.savez(tmp_path / "old.npz", logits=cap.logits, labels=cap.labels, meta=np.array(json.dumps(meta)))
+    old = load_capture(tmp_path / "old.npz")
+    assert old.indices is None and old.sample_indices().tolist() == list(range(9))
+    np.testing.assert_array_equal(old.logits, cap.logits)
 
 
 # -- labels for segmentation and sigmoid heads, fitting rows ----------------

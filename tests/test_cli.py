@@ -12,9 +12,15 @@ import pytest
 from onnx import numpy_helper
 
 from conftest import (
+    BELT_CLASSES,
+    BELT_IMAGES,
+    BELT_MODEL,
     DEMO_MODEL,
     DEMO_TEST,
     DEMO_VAL,
+    TICKETS,
+    TICKETS_LABELS,
+    TICKETS_MODEL,
     files_in,
     identity_model,
     onehot_int_model,
@@ -164,6 +170,81 @@ def test_debug_shows_traceback(work, run_cli, monkeypatch):
 def test_usage_error_exits_2(run_cli):
     r = run_cli("patch")
     assert r.code == 2
+
+
+# --------------------------------------------------------------------------
+# Data forms, shards and warnings on the command line
+
+
+
+def test_images_and_npy_inputs_on_the_command_line(tmp_path, run_cli):
+    r = run_cli(
+        "calibrate", BELT_MODEL, "--data", BELT_IMAGES, "--classes", BELT_CLASSES,
+        "--resize", "32", "--crop", "32", "--mean", "0.485,0.456,0.406", "--std", "0.229,0.224,0.225",
+        "--out", tmp_path / "belt.onnx", "-q", "--json", "--bootstrap", "0",
+    )
+    assert r.code == 0, r.err
+    assert json.loads(r.out)["fit"]["capture"]["preprocess"]["mean"] == [0.485, 0.456, 0.406]
+    r = run_cli(
+        "capture", TICKETS_MODEL, "--input", f"input_ids={TICKETS['input_ids']}",
+        "--input", f"attention_mask={TICKETS['attention_mask']}", "--labels", TICKETS_LABELS,
+        "--threads", "1", "--out", tmp_path / "t.npz", "-q",
+    )
+    assert r.code == 0, r.err and "captured 300 x 3 logits" in r.out
+
+
+def test_capture_shards_then_fit_them_together(tmp_path, run_cli):
+    for i in (1, 2):
+        r = run_cli("capture", DEMO_MODEL, "--data", DEMO_VAL, "--shard", f"{i}/2", "--out", tmp_path / f"{i}.npz", "-q")
+        assert r.code == 0, r.err
+    r = run_cli("fit", tmp_path / "1.npz", tmp_path / "2.npz", "--json", "--bootstrap", "0")
+    assert r.code == 0, r.err
+    whole = run_cli("fit", tmp_path / "1.npz", "--json", "--bootstrap", "0")
+    assert json.loads(r.out)["capture"]["n"] == 2000 and json.loads(whole.out)["capture"]["n"] == 1000
+    r = run_cli("fit", tmp_path / "1.npz", tmp_path / "1.npz")
+    assert r.code == 2 and "both hold row 0" in r.err
+
+
+def test_fallback_warning_is_one_line(tmp_path, run_cli, rng):
+    model = random_mlp(rng, batch=1)
+    coupled = onnx.ModelProto()
+    coupled.CopyFrom(model)  # make it couple samples across the batch
+    g = coupled.graph
+    g.node.insert(0, onnx.helper.make_node("ReduceMean", ["x"], ["mu"], axes=[0, 1], keepdims=1))
+    g.node.insert(1, onnx.helper.make_node("Sub", ["x", "mu"], ["xc"]))
+    g.node[2].input[0] = "xc"
+    save_model(coupled, tmp_path / "m.onnx")
+    np.savez(tmp_path / "v.npz", x=rng.normal(size=(30, 6)).astype(np.float32), labels=rng.integers(0, 4, 30))
+    r = run_cli("capture", tmp_path / "m.onnx", "--data", tmp_path / "v.npz", "--out", tmp_path / "c.npz", "-q")
+    assert r.code == 0, r.err
+    lines = [line for line in r.err.splitlines() if line.strip()]
+    assert len(lines) == 1 and lines[0].startswith("warning: the model's batch dim is fixed at 1")
+
+
+DATA_BAD = [
+    (["capture", "model.onnx", "--data", "val.npz", "--out", "c.npz", "--shard", "0/3"], "--shard 0/3 is out of range"),
+    (["capture", "model.onnx", "--input", "x", "--out", "c.npz"], "--input 'x' is not of the form NAME=FILE.npy"),
+    (["capture", "model.onnx", "--out", "c.npz"], "no validation data given; pass --data PATH or --input"),
+    (["capture", "model.onnx", "--data", "val.npz", "--resize", "8", "--out", "c.npz"], "--resize applies to image folders only"),
+    (["calibrate", "model.onnx", "--data", "val.npz", "--provider", "Nope", "--out", "o.onnx"], "--provider Nope is not available"),
+    (["calibrate", "model.onnx", "--data", "val.npz", "--optimization", "max", "--out", "o.onnx"], "--optimization 'max'"),
+    (["capture", "model.onnx", "--data", "bad.csv", "--out", "c.npz"], "line 3, column 'b' .* holds 'oops', not a number"),
+    (["verify", "model.onnx", "--data", "val.npz", "--limit", "0"], "--limit 0 is not a positive"),
+    (["capture", "model.onnx", "--data", "val.npz", "--out", "val.npz", "--force"], "is the input file"),
+]
+
+
+@pytest.mark.parametrize("args, message", DATA_BAD, ids=[f"data-{i}" for i in range(len(DATA_BAD))])
+def test_bad_data_input(work, run_cli, monkeypatch, args, message):
+    monkeypatch.chdir(work)
+    (work / "bad.csv").write_text("a,b,c,d,e,f,label\n1,2,3,4,5,6,0\n1,oops,3,4,5,6,1\n")
+    before = files_in(work)
+    r = run_cli(*args)
+    assert r.code == 2
+    lines = [line for line in r.err.splitlines() if line.strip()]
+    assert len(lines) == 1 and lines[0].startswith("onnxcal: error:"), r.err
+    assert re.search(message, lines[0]), lines[0]
+    assert files_in(work) == before
 
 
 EXPORTERS = Path(__file__).resolve().parents[1] / "fixtures" / "exporters"

@@ -1,6 +1,7 @@
 """Graph reading and rewriting, checked with onnxruntime and onnx's reference evaluator."""
 
 import json
+from dataclasses import replace
 
 import numpy as np
 import onnx
@@ -13,7 +14,7 @@ from onnx.reference import ReferenceEvaluator
 from conftest import identity_model, onehot_int_model, random_mlp, save_model
 from onnxcal import graph
 from onnxcal.errors import OnnxcalError
-from onnxcal.verify import tolerance
+from onnxcal.verify import folded_record_check, tolerance
 from onnxcal.scaling import Scaling
 
 SHA = "0" * 64
@@ -548,3 +549,240 @@ def test_mismatched_scalings_are_refused(rng):
         do_patch(random_mlp(rng, final="Softmax"), Scaling.of_temperature([1.0] * 4, "multilabel"))
     with pytest.raises(OnnxcalError, match="has 3 values for 4 classes"):
         do_patch(random_mlp(rng), Scaling.of_affine([1.0] * 3, [0.0] * 3, "vector", "multiclass"))
+
+
+# --------------------------------------------------------------------------
+# Folding every per-class affine scaling into the logits layer
+
+
+def _model_of(nodes, x_shape, out_shape, inits, opset=17):
+    g = helper.make_graph(
+        nodes,
+        "fold",
+        [helper.make_tensor_value_info("x", 1, x_shape)],
+        [helper.make_tensor_value_info("scores", 1, out_shape)],
+        initializer=inits,
+    )
+    m = helper.make_model(g, opset_imports=[helper.make_opsetid("", opset)])
+    m.ir_version = 8
+    onnx.checker.check_model(m, full_check=True)
+    return m
+
+
+def _linear_model(rng, op="Gemm", trans_b=0, alpha=1.0, beta=1.0, bias_shape=(4,), k=4, final="Softmax"):
+    """x (N x 6) -> Gemm (or MatMul + Add) -> final: the layer a fold goes into."""
+    w = 2.0 * rng.normal(size=(6, k))
+    inits = [numpy_helper.from_array((w.T if trans_b else w).astype(np.float32), "weight")]
+    if bias_shape is not None:
+        inits.append(numpy_helper.from_array(np.asarray(rng.normal(size=bias_shape), np.float32), "bias"))
+    bias = ["bias"] if bias_shape is not None else []
+    if op == "Gemm":
+        attrs = dict(transB=trans_b, alpha=alpha, beta=beta)
+        nodes = [helper.make_node("Gemm", ["x", "weight", *bias], ["logits"], name="head", **attrs)]
+    else:
+        nodes = [
+            helper.make_node("MatMul", ["x", "weight"], ["mm"], name="head"),
+            helper.make_node("Add", ["mm", *bias], ["logits"], name="head_bias"),
+        ]
+    nodes.append(helper.make_node(final, ["logits"], ["scores"], axis=1))
+    return _model_of(nodes, ["N", 6], ["N", k], inits)
+
+
+FOLD_LAYERS = {
+    "gemm": {},
+    "gemm-transB-alpha-beta-1xK": dict(trans_b=1, alpha=0.5, beta=2.0, bias_shape=(1, 4)),
+    "gemm-scalar-bias": dict(trans_b=1, alpha=1.5, beta=0.7, bias_shape=()),
+    "gemm-beta-3-bias-(1,)": dict(beta=3.0, bias_shape=(1,)),
+    "matmul-add": dict(op="MatMul"),
+    "matmul-add-scalar-bias": dict(op="MatMul", bias_shape=()),
+}
+
+
+@pytest.mark.parametrize("runner", [run_ort, run_reference])
+@pytest.mark.parametrize("layer", list(FOLD_LAYERS))
+def test_vector_fold_equals_unfolded(rng, x, layer, runner):
+    model = _linear_model(rng, **FOLD_LAYERS[layer])
+    scaling, w, b = _vector(4, rng)
+    folded = do_patch(model, scaling, fold=True)
+    assert [n.op_type for n in folded.graph.node] == [n.op_type for n in model.graph.node]  # zero extra ops
+    (z,) = run_ort(graph.expose(model, ["logits"]), x, ["logits"])
+    (got,) = runner(folded, x)
+    (unfolded,) = runner(do_patch(model, scaling), x)
+    np.testing.assert_allclose(got, unfolded, atol=1e-6, rtol=0)
+    # Reference library: scipy.special.softmax of w * z + b (Guo et al. 2017, sec. 4.2).
+    np.testing.assert_allclose(got, scipy.special.softmax(z.astype(np.float64) * w + b, axis=1), atol=1e-6)
+    record = graph.read_record(folded)
+    assert record.folded and record.initializers == {} and record.changes["scaled"] == ["weight", "bias"]
+    found = graph.folded_values(folded, record, model)  # what verify's record check reads
+    np.testing.assert_allclose(found.w, w, rtol=1e-6)
+    np.testing.assert_allclose(found.b, np.broadcast_to(b, found.b.shape), atol=1e-6)
+
+
+@pytest.mark.parametrize("layer", list(FOLD_LAYERS))
+def test_unpatch_of_a_vector_fold_restores_the_weights(rng, layer):
+    model = _linear_model(rng, **FOLD_LAYERS[layer])
+    scaling, w, _ = _vector(4, rng)
+    folded = do_patch(model, scaling, fold=True)
+    back = graph.unpatch(folded)
+    arrays = {
+        name: [numpy_helper.to_array(graph._initializer(m.graph, name)) for m in (model, folded, back)]
+        for name in ("weight", "bias")
+    }
+    before, _, after = arrays["weight"]
+    eps = float(np.finfo(np.float32).eps)
+    np.testing.assert_allclose(after, before, rtol=eps, atol=0)  # one rounding of float32
+    before, patched, after = arrays["bias"]
+    assert patched.shape[-1] == 4  # a single-valued bias is expanded to one per class
+    assert after.shape == before.shape and after.tobytes() == before.tobytes()  # exactly, from the record
+    # Nothing but the weight's rounding differs from the original.
+    expected = onnx.ModelProto()
+    expected.CopyFrom(model)
+    graph._initializer(expected.graph, "weight").CopyFrom(graph._initializer(back.graph, "weight"))
+    assert back.SerializeToString() == expected.SerializeToString()
+
+
+def test_repeated_refolding_still_matches_the_original(rng):
+    # A tiny bias and large offsets: taking b back out of the bias would lose
+    # |b| / |c| roundings; the bias comes back exactly from the record, and
+    # verify's limit follows the weight's roundings (one per fold and unfold).
+    model = _linear_model(rng, trans_b=1)
+    bias = graph._initializer(model.graph, "bias")
+    bias.CopyFrom(numpy_helper.from_array(numpy_helper.to_array(bias) * 1e-3, "bias"))
+    patched = model
+    for i in range(3):
+        w = rng.uniform(0.5, 1.5, size=4)
+        scaling = Scaling.of_affine(w, 3.0 * rng.choice([-1.0, 1.0], size=4), "vector", "multiclass")
+        patched = do_patch(patched, scaling, fold=True)
+        found = graph.folded_values(patched, graph.read_record(patched), model)
+        assert found.roundings == 1 + 2 * i
+        check = folded_record_check(scaling, found)
+        assert check.passed, check
+    back = graph.unpatch(patched)
+    assert graph._initializer(back.graph, "bias").SerializeToString() == bias.SerializeToString()
+
+
+def test_repatching_a_vector_fold_replaces_it(rng, x):
+    model = _linear_model(rng, trans_b=1, bias_shape=())
+    first, second = _vector(4, rng)[0], _vector(4, rng)[0]
+    once = do_patch(model, first, fold=True)
+    twice = do_patch(once, second, fold=True)
+    assert len(twice.graph.node) == len(model.graph.node)
+    assert graph.read_record(twice).parameters == second.parameters
+    np.testing.assert_allclose(run_ort(twice, x)[0], run_ort(do_patch(model, second, fold=True), x)[0], atol=1e-6)
+    # Unfolded first, so another method (inserted as a Div) applies to the original weights.
+    plain = do_patch(once, 2.0)
+    assert not graph.read_record(plain).folded
+    np.testing.assert_allclose(run_ort(plain, x)[0], run_ort(do_patch(model, 2.0), x)[0], atol=1e-6)
+
+
+def test_per_class_fold_through_a_weight_on_the_left(rng):
+    # MatMul(W, x): row k of W is class k, and the class axis of the output is
+    # the second-last; the (K, 1) bias broadcasts along it (ONNX operator spec,
+    # MatMul follows numpy.matmul; Broadcasting.md).
+    inits = [
+        numpy_helper.from_array(rng.normal(size=(4, 6)).astype(np.float32), "weight"),
+        numpy_helper.from_array(rng.normal(size=(4, 1)).astype(np.float32), "bias"),
+    ]
+    nodes = [
+        helper.make_node("MatMul", ["weight", "x"], ["mm"]),
+        helper.make_node("Add", ["mm", "bias"], ["logits"]),
+        helper.make_node("Softmax", ["logits"], ["scores"], axis=1),
+    ]
+    model = _model_of(nodes, ["N", 6, 5], ["N", 4, 5], inits)
+    scaling, w, b = _vector(4, rng)
+    folded = do_patch(model, scaling, fold=True)
+    assert graph.read_record(folded).changes["fold"]["weight_axis"] == 0
+    z = rng.normal(size=(3, 6, 5)).astype(np.float32)
+    (logits,) = run_reference(graph.expose(model, ["logits"]), z, ["logits"])
+    for runner in (run_ort, run_reference):
+        (got,) = runner(folded, z)
+        ref = scipy.special.softmax(logits.astype(np.float64) * w[:, None] + b[:, None], axis=1)
+        np.testing.assert_allclose(got, ref, atol=1e-6)
+
+
+def _class_axis_lost_model(rng):
+    """Gemm (N x 8) reshaped to N x 4 x 2 before the Softmax: class k is in columns 2k, 2k+1."""
+    inits = [
+        numpy_helper.from_array(rng.normal(size=(6, 8)).astype(np.float32), "weight"),
+        numpy_helper.from_array(rng.normal(size=8).astype(np.float32), "bias"),
+        _axes("shape", [-1, 4, 2]),
+    ]
+    nodes = [
+        helper.make_node("Gemm", ["x", "weight", "bias"], ["logits"], name="head"),
+        helper.make_node("Reshape", ["logits", "shape"], ["grouped"], name="group"),
+        helper.make_node("Softmax", ["grouped"], ["scores"], axis=1),
+    ]
+    return _model_of(nodes, ["N", 6], ["N", 4, 2], inits)
+
+
+def _class_axis_not_features_model(rng):
+    """x (N x 3 x 6) @ W (6 x 3), softmax over axis 1: a class is not a weight column."""
+    inits = [
+        numpy_helper.from_array(rng.normal(size=(6, 3)).astype(np.float32), "weight"),
+        numpy_helper.from_array(rng.normal(size=3).astype(np.float32), "bias"),
+    ]
+    nodes = [
+        helper.make_node("MatMul", ["x", "weight"], ["mm"], name="head"),
+        helper.make_node("Add", ["mm", "bias"], ["logits"]),
+        helper.make_node("Softmax", ["logits"], ["scores"], axis=1),
+    ]
+    return _model_of(nodes, ["N", 3, 6], ["N", 3, 3], inits)
+
+
+def _shared_weight(model):
+    model.graph.node.append(helper.make_node("Identity", ["weight"], ["weight_copy"]))
+    model.graph.output.append(helper.make_empty_tensor_value_info("weight_copy"))
+    return model
+
+
+def test_fold_refusals_say_what_to_do(rng):
+    vector, _, _ = _vector(4, rng)
+    no_offset = Scaling.of_affine(vector.parameters["w"], [0.0] * 4, "vector", "multiclass")
+    cases = [
+        (_linear_model(rng, bias_shape=None), vector,
+         "'head' has no bias to take the offset b of vector scaling; leave out --fold to insert Mul "
+         r"\+ Add instead, or fit temperature scaling \(no offset\)"),
+        (_linear_model(rng, beta=0.0), vector, "'head' multiplies its bias by beta = 0"),
+        (_class_axis_lost_model(rng), vector,
+         "cannot tell which part of weight 'weight' belongs to which class: the class axis is lost "
+         "through the Reshape node 'group'.*; leave out --fold to insert the scaling as nodes instead"),
+        (_class_axis_not_features_model(rng), Scaling.of_affine([1.0, 2.0, 3.0], [0.0] * 3, "vector", "multiclass"),
+         "the class axis of the scores is not the output-feature axis of 'head'"),
+        (_linear_model(rng), Scaling.of_affine([1.0, 0.0, 1.0, 1.0], [0.0] * 4, "vector", "multiclass"),
+         "multiplies some class's logit by 0"),
+        (random_mlp(rng, dtype=np.float16, final="Softmax"), 1e-5, "the scaled 'w1' does not fit in float16"),
+        (_matmul_add_model(rng, weight_as_input=True), vector, "'weight' .* is not a constant initializer"),
+        (_matmul_add_model(rng, quantized=True), vector, "quantized"),
+        (random_mlp(rng), vector, "would change the logits output 'scores' itself.*add --drop-logits"),
+        (_shared_weight(_linear_model(rng)), vector, "the weight 'weight' is shared with other nodes"),
+    ]
+    for model, scaling, match in cases:
+        with pytest.raises(OnnxcalError, match=match):
+            do_patch(model, scaling, fold=True)
+    # Without an offset a layer with no bias (or beta = 0) folds fine; so does one
+    # temperature through the Reshape (every class scaled alike needs no tracking).
+    x = rng.normal(size=(8, 6)).astype(np.float32)
+    for model, scaling in [
+        (_linear_model(rng, bias_shape=None), no_offset),
+        (_linear_model(rng, beta=0.0), no_offset),
+        (_class_axis_lost_model(rng), 2.0),
+    ]:
+        folded = do_patch(model, scaling, fold=True)
+        assert len(folded.graph.node) == len(model.graph.node)
+        np.testing.assert_allclose(run_ort(folded, x)[0], run_ort(do_patch(model, scaling), x)[0], atol=1e-6)
+
+
+def test_unpatch_of_a_fold_recorded_before_per_class_folding(rng, x):
+    # Records of single-T folds made before per-class folding have no "fold"
+    # entry: every scaled initializer was divided by T.
+    model = _linear_model(rng, trans_b=1)
+    folded = do_patch(model, 2.0, fold=True)
+    record = graph.read_record(folded)
+    old = dict(record.changes)
+    del old["fold"]
+    graph._write_record(folded, replace(record, changes=old))
+    record = graph.read_record(folded)
+    assert graph.temperature_value(folded, record, model) == pytest.approx(2.0, rel=1e-6)
+    back = graph.unpatch(folded)
+    w0, w1 = (numpy_helper.to_array(graph._initializer(m.graph, "weight")) for m in (model, back))
+    np.testing.assert_allclose(w1, w0, rtol=float(np.finfo(np.float32).eps), atol=0)

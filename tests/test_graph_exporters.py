@@ -11,6 +11,7 @@ scikit-learn's bundled digits and wine data.
 
 from __future__ import annotations
 
+import json
 import os
 from dataclasses import dataclass
 from pathlib import Path
@@ -26,7 +27,8 @@ from conftest import FIXTURES
 from onnxcal import api, graph
 from onnxcal.capture import as_rows, log_probabilities
 from onnxcal.errors import OnnxcalError
-from onnxcal.verify import tolerance
+from onnxcal.scaling import Scaling
+from onnxcal.verify import folded_record_check, tolerance
 
 EXPORTERS = FIXTURES / "exporters"
 SHA = "0" * 64
@@ -446,3 +448,113 @@ def test_calibrate_and_verify_pass(tmp_path, fx):
     again = api.verify(out, val_path(fx))
     assert again.passed
     assert {c.name for c in again.checks} >= {"reference", "record", "source"}
+
+
+# -- folding per-class scalings (vector, Platt, per-label temperatures) ------
+
+FOLD_SCALINGS = {
+    "belt_spectrogram_softmax_op13": Scaling.of_affine(
+        [0.6, 1.3, 0.9, 1.1], [0.2, -0.4, 0.1, 0.1], "vector", "multiclass"
+    ),
+    "belt_spectrogram_logits_op17": Scaling.of_affine(
+        [1.4, 0.7, 1.0, 0.8], [-0.3, 0.0, 0.5, -0.2], "vector", "multiclass"
+    ),
+    "belt_spectrogram_softmax_fp16_op13": Scaling.of_affine(
+        [0.6, 1.3, 0.9, 1.1], [0.2, -0.4, 0.1, 0.1], "vector", "multiclass"
+    ),
+    "belt_tear_sigmoid_op17": Scaling.of_affine(0.6, -0.3, "platt", "binary"),
+    "belt_faults_multilabel_op17": Scaling.of_temperature([0.5, 1.0, 2.0, 3.0], "multilabel"),
+}
+
+
+def affine_reference(z: np.ndarray, scaling: Scaling, activation: str) -> np.ndarray:
+    # Reference library: scipy.special.softmax / expit of w * z + b (vector
+    # scaling, Guo et al. 2017, sec. 4.2; Platt 1999; z / T_k per label).
+    w, b = scaling.affine()
+    u = z * w + b
+    return scipy.special.expit(u) if activation == "sigmoid" else scipy.special.softmax(u, axis=1)
+
+
+@pytest.mark.parametrize("runner_name", list(RUNNERS))
+@pytest.mark.parametrize("name", list(FOLD_SCALINGS))
+def test_per_class_fold_equals_unfolded(models, name, runner_name):
+    fx, model, scaling = BY_NAME[name], models[name], FOLD_SCALINGS[name]
+    runner, n = RUNNERS[runner_name]
+    feed = inputs(model, fx, n)
+    folded = do_patch(model, scaling, fold=True, drop_logits=True)
+    record = graph.read_record(folded)
+    assert record.folded and record.method == scaling.method
+    extra = 1 if fx.activation is None else 0  # the appended Softmax
+    assert len(folded.graph.node) == len(model.graph.node) + extra  # zero extra ops otherwise
+    site = graph.find_scores(model)
+    tol = tolerance((site.dtype, site.output_dtype))
+    got = calibrated_rows(folded, feed, runner)
+    unfolded = calibrated_rows(do_patch(model, scaling, drop_logits=True), feed, runner)
+    np.testing.assert_allclose(got, unfolded, atol=tol, rtol=0)
+    z = scores_of(model, site, feed, runner)
+    np.testing.assert_allclose(got, affine_reference(z, scaling, record.activation), atol=tol, rtol=0)
+    # The record check verify runs; unpatch gives the weight back within one
+    # rounding, the bias exactly.
+    assert folded_record_check(scaling, graph.folded_values(folded, record, model)).passed
+    back = graph.unpatch(folded)
+    fold = record.changes["fold"]
+    w0, w1 = (onnx.numpy_helper.to_array(graph._initializer(m.graph, fold["weight"])) for m in (model, back))
+    np.testing.assert_allclose(w1, w0, rtol=float(np.finfo(w0.dtype).eps), atol=0)
+    b0, b1 = (graph._initializer(m.graph, fold["bias"]) for m in (model, back))
+    assert onnx.numpy_helper.to_array(b1).tobytes() == onnx.numpy_helper.to_array(b0).tobytes()
+
+
+CLI_FOLDS = [
+    (FIXTURES / "conveyor_faults.onnx", FIXTURES / "conveyor_faults_val.npz", ["--method", "vector", "--drop-logits"]),
+    (EXPORTERS / "belt_tear_sigmoid_op17.onnx", EXPORTERS / "belt_tear_sigmoid_op17_val.npz", ["--method", "platt"]),
+    (
+        EXPORTERS / "belt_faults_multilabel_op17.onnx",
+        EXPORTERS / "belt_faults_multilabel_op17_val.npz",
+        ["--multilabel", "per-label"],
+    ),
+]
+
+
+def _tamper(path: Path, name: str, change) -> None:
+    model = onnx.load(str(path))
+    init = graph._initializer(model.graph, name)
+    arr = onnx.numpy_helper.to_array(init).copy()
+    change(arr)
+    init.CopyFrom(onnx.numpy_helper.from_array(arr, name))
+    onnx.save(model, str(path))
+
+
+def _scale_largest_entry(a: np.ndarray) -> None:
+    a.flat[np.argmax(np.abs(a))] *= 1.001
+
+
+def _shift(a: np.ndarray) -> None:
+    a += 1e-3
+
+
+def _record_check(run_cli, path: Path, val: Path) -> tuple[int, dict]:
+    r = run_cli("verify", path, "--data", val, "--json")
+    return r.code, next(c for c in json.loads(r.out)["checks"] if c["name"] == "record")
+
+
+@pytest.mark.parametrize("model, val, options", CLI_FOLDS, ids=["demo-vector", "platt", "per-label"])
+def test_calibrate_fold_then_verify_through_the_cli(tmp_path, run_cli, model, val, options):
+    out = tmp_path / "folded.onnx"
+    r = run_cli("calibrate", model, "--data", val, "--out", out, "--fold", "--bootstrap", "0", "--json", *options)
+    assert r.code == 0, r.err
+    patched, original = onnx.load(str(out)), onnx.load(str(model))
+    record = graph.read_record(patched)
+    assert record.folded and record.method == ("temperature" if "--multilabel" in options else options[1])
+    appended = 1 if "--drop-logits" in options else 0  # the Softmax after raw logits
+    assert len(patched.graph.node) == len(original.graph.node) + appended
+    code, check = _record_check(run_cli, out, val)
+    assert code == 0 and check["passed"] and check["value"] <= check["limit"]
+    # A folded weight changed by 0.1 % (its largest entry), or a bias by 1e-3: verify fails.
+    fold = record.changes["fold"]
+    _tamper(out, fold["weight"], _scale_largest_entry)
+    code, check = _record_check(run_cli, out, val)
+    assert code == 1 and not check["passed"]
+    graph.save_model(patched, out)
+    _tamper(out, fold["bias"], _shift)
+    code, check = _record_check(run_cli, out, val)
+    assert code == 1 and not check["passed"]

@@ -32,7 +32,7 @@ def demo(tmp_path_factory):
 
     d = tmp_path_factory.mktemp("report")
     code = main(["calibrate", str(DEMO_MODEL), "--data", str(DEMO_VAL), "--out", str(d / "calibrated.onnx"),
-                 "--report", str(d / "report"), "--class-names", str(CLASSES), "--bootstrap", "50", "-q"])
+                 "--report", str(d / "report"), "--classes", str(CLASSES), "--bootstrap", "50", "-q"])
     assert code == 0
     cap = api.capture(DEMO_MODEL, DEMO_VAL, out=d / "scores.npz")
     api.fit(cap, out=d / "fit.json", options=FitOptions(bootstrap=50))
@@ -251,7 +251,7 @@ BAD_REPORT = [
     (["--temperature", "2", "--fit", "FIT"], "exactly one of"),
     (["--temperature", "0"], "not a positive finite number"),
     (["--temperature", "2", "--format", "pdf"], "--format 'pdf' is not a comma-separated list"),
-    (["--temperature", "2", "--class-names", "THREE"], "give 3 names for a model with 5 logit"),
+    (["--temperature", "2", "--classes", "THREE"], "give 3 names for a model with 5 logit"),
     (["--temperature", "2", "--bins", "1"], "fewer than 2 bins"),
     (["--model", "DEMO"], "has no onnxcal calibration record"),
     (["--fit", "OTHERFIT"], "was made for the model with sha256"),

@@ -5,7 +5,8 @@ import pytest
 import scipy.special
 
 from onnxcal.scaling import Scaling
-from onnxcal.verify import compare, record_check, reference_probabilities, source_check
+from onnxcal.graph import FoldedValues
+from onnxcal.verify import compare, folded_record_check, record_check, reference_probabilities, source_check
 
 
 def test_reference_matches_scipy(rng):
@@ -111,6 +112,31 @@ def test_record_check_compares_every_parameter():
     assert record_check(recorded, {"w": np.array([1.0, 2.0]), "b": np.array([0.5, -0.5])}).passed
     assert not record_check(recorded, {"w": np.array([1.0, 2.0]), "b": np.array([0.5, -0.4])}).passed
     assert not record_check(recorded, {"w": np.array([1.0]), "b": np.array([0.5])}).passed
+
+
+def _found(w, b, residual=0.0, dtype="float32", b_scale=4.0):
+    b = np.atleast_2d(np.asarray(b, dtype=np.float64))
+    return FoldedValues(np.asarray(w, dtype=np.float64), b, np.full(b.shape, b_scale), residual, dtype)
+
+
+def test_folded_record_check_allows_the_weights_rounding_only():
+    vec = Scaling.of_affine([0.5, 2.0], [0.25, -1.0], "vector", "multiclass")
+    u = 2.0**-24  # float32 unit roundoff (IEEE 754 binary32)
+    assert folded_record_check(vec, _found([0.5, 2.0], [0.25, -1.0])).passed
+    # w off by one rounding relative to w, b by one relative to the bias terms (4.0).
+    assert folded_record_check(vec, _found([0.5 * (1 + u), 2.0], [0.25, -1.0 + 4 * u])).passed
+    assert not folded_record_check(vec, _found([0.5 * (1 + 1e-5), 2.0], [0.25, -1.0])).passed
+    assert folded_record_check(vec, _found([0.5 * (1 + 1e-5), 2.0], [0.25, -1.0], dtype="float16")).passed
+    assert not folded_record_check(vec, _found([0.5, 2.0], [0.25, -1.0 + 4e-5])).passed
+    # Weights that are not a per-class multiple of the original's.
+    assert not folded_record_check(vec, _found([0.5, 2.0], [0.25, -1.0], residual=1e-5)).passed
+    assert not folded_record_check(vec, _found([0.5, 2.0, 1.0], [0.25, -1.0, 0.0])).passed
+    assert not folded_record_check(vec, None).passed
+    # Temperature scaling is w = 1/T, b = 0; an offset in the bias is caught.
+    t = Scaling.of_temperature(2.0)
+    assert folded_record_check(t, _found([0.5], [0.0, 0.0])).passed
+    assert not folded_record_check(t, _found([0.5], [0.0, 1e-3])).passed
+    assert not folded_record_check(t, _found([float("nan")], [0.0])).passed  # a zero weight column
 
 
 # --------------------------------------------------------------------------
