@@ -341,11 +341,12 @@ def time_alternately(
 ) -> np.ndarray:
     """Wall time of each callable, ``repeats`` times, interleaved in one process.
 
-    Round r calls them in order, round r + 1 in reverse (A B, B A, A B, ...),
-    so a change in the machine's load, or a cache warmed by the previous
-    call, hits every callable alike (common practice for side-by-side
-    timing on a shared machine). ``warmup`` rounds are run first and not
-    timed.
+    Round r calls them in order rotated by r (A B C, B C A, C A B, ...; for
+    two: A B, B A, A B, ...), so every callable takes every position
+    equally often and a change in the machine's load, or a cache warmed by
+    the previous call, hits every callable alike (common practice for
+    side-by-side timing on a shared machine). ``warmup`` rounds are run
+    first and not timed.
 
     Returns
     -------
@@ -356,9 +357,9 @@ def time_alternately(
         for run in runs:
             run()
     times = np.empty((len(runs), repeats))
-    order = list(range(len(runs)))
+    k = len(runs)
     for r in range(repeats):
-        for i in order if r % 2 == 0 else order[::-1]:
+        for i in [(r + j) % k for j in range(k)]:
             start = time.perf_counter()
             runs[i]()
             times[i, r] = time.perf_counter() - start

@@ -171,6 +171,9 @@ def test_time_alternately_interleaves_and_reverses():
     times = time_alternately([lambda: calls.append("a"), lambda: calls.append("b")], repeats=4, warmup=1)
     assert times.shape == (2, 4) and np.all(times >= 0)
     assert "".join(calls) == "ab" + "ab" + "ba" + "ab" + "ba"  # warm-up, then A B, B A, ...
+    calls.clear()
+    time_alternately([lambda c=c: calls.append(c) for c in "abc"], repeats=3, warmup=0)
+    assert "".join(calls) == "abc" + "bca" + "cab"  # each in each position once
 
 
 def test_latency_check_ratio_and_limit():
