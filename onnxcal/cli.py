@@ -438,16 +438,23 @@ def _render_report(result: ReportResult, verdict: bool = True) -> None:
 # Commands
 
 
+def _show_version(value: bool) -> None:
+    if value:
+        out.print(f"onnxcal {__version__}")
+        raise typer.Exit(0)
+
+
 @app.callback()
 def _root(
     debug: Annotated[
         bool, typer.Option("--debug", help="Show tracebacks for errors (put it before the command).")
     ] = False,
-    version: Annotated[bool, typer.Option("--version", help="Print the version and exit.")] = False,
+    version: Annotated[
+        bool,
+        typer.Option("--version", help="Print the version and exit.", is_eager=True, callback=_show_version),
+    ] = False,
 ) -> None:
-    if version:
-        out.print(f"onnxcal {__version__}")
-        raise typer.Exit(0)
+    pass
 
 
 @app.command()

@@ -167,6 +167,13 @@ def test_debug_shows_traceback(work, run_cli, monkeypatch):
     assert r.code == 2 and "Traceback" in r.err
 
 
+def test_version(run_cli):
+    from onnxcal import __version__
+
+    r = run_cli("--version")
+    assert r.code == 0 and r.out.strip() == f"onnxcal {__version__}"
+
+
 def test_usage_error_exits_2(run_cli):
     r = run_cli("patch")
     assert r.code == 2
