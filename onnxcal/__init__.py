@@ -7,12 +7,13 @@ frozen dataclass (see :mod:`onnxcal.api`)::
     result = onnxcal.calibrate("model.onnx", "val.npz", "calibrated.onnx", report="report/")
 
 ``capture``, ``fit``, ``patch``, ``verify``, ``report``, ``calibrate`` and
-``inspect`` are the functions of ``onnxcal.api``. Three of them share their
+``inspect`` are the functions of ``onnxcal.api``. Four of them share their
 name with a stage module (``onnxcal.capture``, ``onnxcal.fit``,
-``onnxcal.verify``, and ``onnxcal.report``): as attributes of the package
-the names are the functions; the modules stay importable by their dotted
-name, e.g. ``from onnxcal.fit import FitOptions`` (DEVELOPERS.md, "Python
-API").
+``onnxcal.verify``, ``onnxcal.report``): as attributes of the package the
+names are the functions; the modules stay importable by their dotted name,
+e.g. ``from onnxcal.fit import FitOptions``, or as objects with
+``importlib.import_module("onnxcal.fit")`` (DEVELOPERS.md, "The Python API
+and the module names").
 """
 
 __version__ = "0.1.0"

@@ -411,6 +411,57 @@ def _unpatched(patched, patched_path):
 # verify: the CI gate
 
 
+@dataclass(frozen=True)
+class _Reference:
+    """Where verify's reference logits came from (see ``VerifyResult.reference_from``)."""
+
+    logits: np.ndarray | None
+    mode: str
+    where: str
+    source_sha: str | None  # the original's sha256, when known
+    original_model: object | None  # to read folded parameters back against
+    notes: tuple[str, ...] = ()
+
+
+def _reference(patched, patched_path, record: Record, dataset, cap, original, score_paths, run, progress) -> _Reference:
+    """The original's logits: captured (``--scores``), run (``--original``), or the patched graph's own."""
+    if cap is not None:
+        return _Reference(cap.logits, "scores", ", ".join(map(str, score_paths)), cap.meta.model_sha256, None)
+    if original is not None:
+        base = graph.load_model(original)
+        logits = _capture.capture_scores(base, dataset, _source_site(base, record), options=run, progress=progress)
+        return _Reference(logits, "original", str(original), sha256_file(original), base)
+    unpatched = _unpatched(patched, patched_path)
+    logits = _capture.capture_scores(unpatched, dataset, _source_site(unpatched, record), options=run, progress=progress)
+    notes = [
+        "no original model (--original, or the path in the record) and no --scores: the reference is "
+        f"recomputed from the patched graph's own logits tensor '{record.scores}' (the patch undone in "
+        "memory), so it checks the calibration nodes, not that the logits are the original model's"
+    ]
+    if record.folded:
+        notes.append("the parameters are folded into the weights, so that reference only re-checks the "
+                     "activation; give --original or --scores to check the parameters")
+    return _Reference(logits, "patched-graph", str(patched_path), None, None, tuple(notes))
+
+
+def _unrecorded_checks(site) -> list[Check]:
+    """A model without a calibration record: the record check fails, the reference checks cannot run."""
+    decision = "decisions" if site.activation == "sigmoid" else "argmax"
+    return [
+        _verify.skipped("reference", "no calibration record: no parameters to build a reference from"),
+        _verify.skipped(decision, "no calibration record: no reference to compare the decisions with"),
+        Check(
+            "record",
+            False,
+            None,
+            None,
+            f"the model carries no onnxcal calibration record (metadata key '{graph.RECORD_KEY}'); "
+            "tools that re-save a model may drop it",
+        ),
+        _verify.skipped("source", "no calibration record"),
+    ]
+
+
 def _check_gate(max_ece, max_nll, min_accuracy, n_bins, max_latency_ratio, latency_runs) -> None:
     for option, value in (("--max-ece", max_ece), ("--min-accuracy", min_accuracy)):
         if value is not None and not (np.isfinite(value) and 0 <= value <= 1):
@@ -568,69 +619,39 @@ def verify(
             "to compare its speed with",
             "pass --original MODEL",
         )
-    notes: list[str] = []
-    base = graph.load_model(original) if original is not None else None
     if record is None:
-        mode, where = "none", str(original or "")
         site = graph.find_scores(patched)
         rows = _run_output(patched, site, dataset, run, progress)
-        activation = site.activation
-        notes.append(f"'{patched_path}' carries no onnxcal calibration record, so there is no reference to compare with")
-        decision = "decisions" if site.activation == "sigmoid" else "argmax"
-        checks = [
-            _verify.skipped("reference", "no calibration record: no parameters to build a reference from"),
-            _verify.skipped(decision, "no calibration record: no reference to compare the decisions with"),
-            Check(
-                "record",
-                False,
-                None,
-                None,
-                "the model carries no onnxcal calibration record (metadata key "
-                f"'{graph.RECORD_KEY}'); tools that re-save a model may drop it",
-            ),
-            _verify.skipped("source", "no calibration record"),
-        ]
+        note = f"'{patched_path}' carries no onnxcal calibration record, so there is no reference to compare with"
+        ref = _Reference(None, "none", str(original or ""), None, None, (note,))
+        activation, checks = site.activation, _unrecorded_checks(site)
     else:
         site = graph.find_scores(patched, record.output)
-        if cap is not None:
-            mode, where, logits, source_sha, params_from = "scores", ", ".join(map(str, score_paths)), cap.logits, cap.meta.model_sha256, None
-        elif base is not None:
-            logits = _capture.capture_scores(base, dataset, _source_site(base, record), options=run, progress=progress)
-            mode, where, source_sha, params_from = "original", str(original), sha256_file(original), base
-        else:
-            unpatched = _unpatched(patched, patched_path)
-            logits = _capture.capture_scores(
-                unpatched, dataset, _source_site(unpatched, record), options=run, progress=progress
-            )
-            mode, where, source_sha, params_from = "patched-graph", str(patched_path), None, None
-            notes.append(
-                "no original model (--original, or the path in the record) and no --scores: the reference "
-                f"is recomputed from the patched graph's own logits tensor '{record.scores}' (the patch "
-                "undone in memory), so it checks the calibration nodes, not that the logits are the "
-                "original model's"
-            )
-            if record.folded:
-                notes.append("the parameters are folded into the weights, so that reference only re-checks "
-                             "the activation; give --original or --scores to check the parameters")
+        ref = _reference(patched, patched_path, record, dataset, cap, original, score_paths, run, progress)
         rows = _run_output(patched, site, dataset, run, progress)
-        if len(rows) != len(logits):
+        if len(rows) != len(ref.logits):
             raise OnnxcalError(
-                f"the reference holds {len(logits)} rows of scores but the patched model gives {len(rows)} "
+                f"the reference holds {len(ref.logits)} rows of scores but the patched model gives {len(rows)} "
                 f"rows on '{dataset.source}'",
                 "capture the original model on the same data file",
             )
         activation = record.activation
-        checks = _reference_checks(rows, site, record, logits, patched, params_from, source_sha)
+        checks = _reference_checks(rows, site, record, ref.logits, patched, ref.original_model, ref.source_sha)
     if thresholds:
         checks += _threshold_checks(rows, activation, site, dataset, cap, n_bins, limits)
     if latency:
-        against = "original" if base is not None else "uncalibrated copy"
-        reference_model = base if base is not None else _unpatched(patched, patched_path)
+        against = "original" if original is not None else "uncalibrated copy"
+        if ref.original_model is not None:
+            reference_model = ref.original_model
+        elif original is not None:
+            reference_model = graph.load_model(original)
+        else:
+            reference_model = _unpatched(patched, patched_path)
         checks.append(
             _latency(reference_model, patched, dataset, run, latency_runs, max_latency_ratio, against)
         )
     result = VerifyResult(
-        checks=tuple(checks), n=dataset.n, original=where, reference_from=mode, notes=tuple(notes)
+        checks=tuple(checks), n=dataset.n, original=ref.where, reference_from=ref.mode, notes=ref.notes
     )
     if junit is not None:
         xml = _verify.junit_xml(

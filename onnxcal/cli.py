@@ -611,6 +611,7 @@ def verify(
             help="Capture file of the original model on the same data, instead of running it "
             "(repeat for several files, in the data's order).",
             show_default=False,
+            metavar="CAPTURE.npz",
         ),
     ] = None,
     max_ece: Annotated[
@@ -684,7 +685,11 @@ def verify(
 def report(
     captures: Annotated[
         list[Path],
-        typer.Argument(help="Capture file(s) from 'onnxcal capture' (several are read as one set).", show_default=False),
+        typer.Argument(
+            help="Capture file(s) from 'onnxcal capture' (several are read as one set).",
+            show_default=False,
+            metavar="CAPTURE.npz",
+        ),
     ],
     out_dir: Annotated[
         Path, typer.Option("--out", help="Directory for the report (created if missing).", show_default=False)

@@ -675,8 +675,9 @@ def render_html(content: dict, pngs: dict[str, bytes]) -> str:
     ]
     if c["figures_use"] != c["parameters"]:
         t = Scaling(c["method"], c["figures_use"]).temperature
-        used = f"T = {t:.4f}" if t is not None else "the parameters fitted on the fit part"
-        parts.append(f"<p>The held-out figures use {_e(used)}, fitted without the held-out samples.</p>")
+        used = f"T = {t:.4f}" if t is not None else "the parameters"
+        parts.append(f"<p>The held-out figures use {_e(used)} as fitted on the fit part alone, "
+                     "without the held-out samples.</p>")
     head, rows = metric_rows(content)
     parts += [
         '<h2 id="metrics">Metrics before and after</h2>',
