@@ -238,8 +238,10 @@ def _verdict(content: dict) -> list[str]:
         if b is None or a is None:
             lines.append(f"{name} could not be computed {where}.")
             continue
-        trend = "fell" if a < b else ("rose" if a > b else "stayed")
-        lines.append(f"{name} {trend} from {b:.4f} to {a:.4f} {where}.")
+        if a == b:
+            lines.append(f"{name} is unchanged at {a:.4f} {where}.")
+        else:
+            lines.append(f"{name} {'fell' if a < b else 'rose'} from {b:.4f} to {a:.4f} {where}.")
     b, a = before["accuracy"], after["accuracy"]
     if b == a:
         lines.append(f"Accuracy is unchanged at {a:.4f}.")
