@@ -10,8 +10,9 @@ from __future__ import annotations
 
 import os
 import time
+import warnings
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -21,10 +22,20 @@ from . import fit as _fit
 from . import graph
 from . import report as _report
 from . import verify as _verify
-from ._files import atomic_write_bytes, check_output_path, require_file, sha256_file
+from ._files import (
+    atomic_write_bytes,
+    atomic_write_files,
+    check_not_input,
+    check_output_path,
+    check_writable,
+    require_file,
+    sha256_bytes,
+    sha256_file,
+)
+from ._limits import DEFAULT_MAX_MODEL_BYTES, parse_size
 from .capture import Capture, ProgressFn, RunOptions
 from .data import DataSpec, Dataset, check_selection, load_dataset
-from .errors import OnnxcalError
+from .errors import OnnxcalError, OnnxcalWarning
 from .fit import FitOptions, FitSummary
 from .graph import ModelInfo, Record
 from .metrics import DEFAULT_BINS, evaluate, scores_from_probabilities
@@ -53,22 +64,45 @@ class CalibrateResult:
     report: ReportResult | None = None
 
 
-def inspect(model_path: str | os.PathLike) -> ModelInfo:
-    """Describe a model: inputs, outputs, opset, class-score output, record."""
-    model = graph.load_model(model_path)
-    external = tuple(str(f) for f in graph.external_data_files(model_path))
+def _max_bytes(max_model_bytes: int | str) -> int:
+    return parse_size(max_model_bytes, "--max-model-bytes")
+
+
+def inspect(model_path: str | os.PathLike, *, max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES) -> ModelInfo:
+    """Describe a model: inputs, outputs, opset, class-score output, record.
+
+    ``max_model_bytes`` (an int or a size such as ``"8GiB"``): larger model
+    files, with their external data, are refused before they are read.
+    """
+    limit = _max_bytes(max_model_bytes)
+    model = graph.load_model(model_path, max_bytes=limit)
+    external = tuple(str(f) for f in graph.external_data_files(model_path, max_bytes=limit))
     return graph.describe(model, model_path, sha256_file(model_path), external)
 
 
-def _require_finite(logits: np.ndarray, source: str) -> None:
-    rows = _capture.nonfinite_rows(logits)
-    if rows.size:
-        first = ", ".join(str(int(i)) for i in rows[:5])
-        raise OnnxcalError(
-            f"the logits in '{source}' contain NaN or Inf in {rows.size} of {len(logits)} "
-            f"rows (first rows: {first})",
-            "check the model and the inputs of those rows",
+def _finite(cap: Capture, source: str, drop: bool) -> tuple[Capture, str | None]:
+    """``cap`` when its logits are finite; else refused, or (``drop``) without those samples and a note."""
+    bad = _capture.nonfinite_logits(cap)
+    if not bad.count:
+        return cap, None
+    what = f"the logits in '{source}' contain NaN or Inf in {bad.describe(len(cap.logits))}"
+    if not drop:
+        raise OnnxcalError(what, "check the model and the inputs of those rows, or pass --drop-nonfinite to leave them out")
+    kept = _capture.without_nonfinite(cap)
+    return kept, f"dropped {len(cap.logits) - len(kept.logits)} rows: {what}"
+
+
+def _warn_nonfinite_inputs(cap: Capture, source: str) -> None:
+    for name, bad in cap.nonfinite_inputs.items():
+        warnings.warn(
+            OnnxcalWarning(f"input '{name}' of '{source}' holds NaN or Inf in {bad.describe(cap.meta.n)}"),
+            stacklevel=3,
         )
+
+
+def _model_files(model_path, limit: int) -> list:
+    """A model file and its external data files: inputs that no output may be."""
+    return [model_path, *graph.external_data_files(model_path, max_bytes=limit)]
 
 
 DataSource = str | os.PathLike | DataSpec
@@ -81,8 +115,13 @@ def _data_spec(data: DataSource) -> DataSpec:
     return spec
 
 
-def _load_data(model, data: DataSource, require_labels: bool = True) -> Dataset:
-    """Load the set for ``model``'s inputs (checked against them)."""
+def _load_data(model, data: DataSource, require_labels: bool = True, batch_size: int = _capture.DEFAULT_BATCH) -> Dataset:
+    """Load the set for ``model``'s inputs (checked against them).
+
+    A model whose declared input shapes need more memory per batch than is
+    available is refused first, before any data file is opened.
+    """
+    _capture.check_input_memory(model, batch_size)
     init = {i.name for i in model.graph.initializer}
     specs = [graph.tensor_spec(vi) for vi in model.graph.input if vi.name not in init]
     return load_dataset(_data_spec(data), specs, require_labels=require_labels)
@@ -105,6 +144,7 @@ def capture(
     force: bool = False,
     progress: ProgressFn | None = None,
     activation: str | None = None,
+    max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
 ) -> Capture:
     """Run the model over a labelled set; return (and write) the logits.
 
@@ -135,15 +175,22 @@ def capture(
     activation : {"softmax", "sigmoid"}, optional
         How raw logits become probabilities (default: sigmoid for one logit,
         softmax otherwise); decides the labels' form.
+    max_model_bytes : int or str, default 8 GiB
+        Larger model files (with external data) are refused unread.
+
+    Rows of the inputs or logits holding NaN or Inf are reported as
+    :class:`~onnxcal.errors.OnnxcalWarning` (count and first rows); the
+    capture keeps them, and ``fit`` refuses them unless told to drop them.
     """
     spec = _data_spec(data)
+    limit = _max_bytes(max_model_bytes)
     if out is not None:
-        check_output_path(out, [model_path, *spec.files()], force=force)
+        check_output_path(out, [*_model_files(model_path, limit), *spec.files()], force=force)
     run = _run_options(batch_size, threads, optimization, provider)
-    model = graph.load_model(model_path)
-    return _capture.capture(
+    model = graph.load_model(model_path, max_bytes=limit)
+    cap = _capture.capture(
         model,
-        _load_data(model, spec),
+        _load_data(model, spec, batch_size=run.batch_size),
         model_path=model_path,
         model_sha256=sha256_file(model_path),
         output=output,
@@ -152,6 +199,16 @@ def capture(
         activation=activation,
         out=out,
     )
+    _warn_nonfinite_inputs(cap, cap.meta.data_source)
+    if (bad := _capture.nonfinite_logits(cap)).count:
+        warnings.warn(
+            OnnxcalWarning(
+                f"the logits of {bad.describe(len(cap.logits))} are NaN or Inf; 'onnxcal fit' refuses them "
+                "unless --drop-nonfinite"
+            ),
+            stacklevel=2,
+        )
+    return cap
 
 
 def check_fit_options(options: FitOptions) -> FitOptions:
@@ -192,6 +249,7 @@ def fit(
     out: str | os.PathLike | None = None,
     force: bool = False,
     options: FitOptions = FitOptions(),
+    drop_nonfinite: bool = False,
 ) -> FitSummary:
     """Fit a calibration map to captured logits; return (and write) the summary.
 
@@ -206,17 +264,25 @@ def fit(
         Replace an existing ``out``.
     options : FitOptions
         Method, holdout, bootstrap, ... (see :class:`onnxcal.fit.FitOptions`).
+    drop_nonfinite : bool
+        Leave out the samples whose logits hold NaN or Inf (a note says how
+        many); by default they are refused, with their count and first rows.
     """
     check_fit_options(options)
     inputs = [] if isinstance(source, Capture) else _capture_paths(source)
     if out is not None:
         check_output_path(out, inputs, force=force)
     cap = source if isinstance(source, Capture) else _capture.load_captures(inputs)
-    _require_finite(cap.logits, cap.meta.data_source if isinstance(source, Capture) else ", ".join(map(str, inputs)))
-    summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options)
+    where = cap.meta.data_source if isinstance(source, Capture) else ", ".join(map(str, inputs))
+    cap, dropped = _finite(cap, where, drop_nonfinite)
+    summary = _with_note(_fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options), dropped)
     if out is not None:
         _fit.save_fit(out, summary)
     return summary
+
+
+def _with_note(summary: FitSummary, note: str | None) -> FitSummary:
+    return summary if note is None else replace(summary, notes=(*summary.notes, note))
 
 
 def _capture_paths(source: str | os.PathLike | Sequence[str | os.PathLike]) -> list:
@@ -278,10 +344,13 @@ class PatchOptions:
         )
 
 
-def _check_outputs(out, inputs: list, model_path, force: bool) -> bool:
-    """Check ``out`` (and, for a model with external data, ``out``.data); True if external."""
-    check_output_path(out, inputs, force=force)
-    sources = graph.external_data_files(model_path)
+def _check_outputs(out, inputs: list, model_path, force: bool, limit: int) -> bool:
+    """Check ``out`` (and, for a model with external data, ``out``.data); True if external.
+
+    Neither may be one of ``inputs`` or of the model's external data files.
+    """
+    sources = graph.external_data_files(model_path, max_bytes=limit)
+    check_output_path(out, [*inputs, *sources], force=force)
     if sources:
         check_output_path(
             graph.external_data_path(out), [*inputs, *sources], force=force, option="--out's data file"
@@ -302,6 +371,7 @@ def patch(
     compute_dtype: str | None = None,
     fold: bool = False,
     force: bool = False,
+    max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
 ) -> PatchResult:
     """Write a copy of the model that outputs calibrated probabilities.
 
@@ -321,12 +391,17 @@ def patch(
         See :class:`PatchOptions`.
     force : bool
         Replace an existing ``out``.
+    max_model_bytes : int or str, default 8 GiB
+        Larger model files (with external data) are refused unread.
     """
+    limit = _max_bytes(max_model_bytes)
     inputs = [model_path] + ([fit] if isinstance(fit, (str, os.PathLike)) else [])
-    external = _check_outputs(out, inputs, model_path, force)
+    external = _check_outputs(out, inputs, model_path, force, limit)
     calibration, fit_dict = _resolve_scaling(temperature, fit)
     patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold)
-    model = graph.load_model(model_path)
+    model = graph.load_model(model_path, max_bytes=limit)
+    if (previous := graph.read_record(model)) is not None:  # re-patching undoes it: it must fit the graph
+        graph.check_record(model, previous, f"'{model_path}'")
     patched = patching.patch(model, calibration, sha=sha256_file(model_path), path=model_path, fit=fit_dict)
     graph.save_model(patched, out, external=external)
     return PatchResult(path=str(out), record=graph.read_record(patched))
@@ -423,12 +498,14 @@ class _Reference:
     notes: tuple[str, ...] = ()
 
 
-def _reference(patched, patched_path, record: Record, dataset, cap, original, score_paths, run, progress) -> _Reference:
+def _reference(
+    patched, patched_path, record: Record, dataset, cap, original, score_paths, run, progress, limit: int
+) -> _Reference:
     """The original's logits: captured (``--scores``), run (``--original``), or the patched graph's own."""
     if cap is not None:
         return _Reference(cap.logits, "scores", ", ".join(map(str, score_paths)), cap.meta.model_sha256, None)
     if original is not None:
-        base = graph.load_model(original)
+        base = graph.load_model(original, max_bytes=limit)
         logits = _capture.capture_scores(base, dataset, _source_site(base, record), options=run, progress=progress)
         return _Reference(logits, "original", str(original), sha256_file(original), base)
     unpatched = _unpatched(patched, patched_path)
@@ -531,6 +608,7 @@ def verify(
     optimization: str = "all",
     provider: str = _capture.CPU,
     progress: ProgressFn | None = None,
+    max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
 ) -> VerifyResult:
     """Check a patched model for CI: reference, decisions, record, thresholds, latency.
 
@@ -574,6 +652,8 @@ def verify(
         Also write the checks as JUnit XML here (``force`` to replace it).
     batch_size, threads, optimization, provider
         As for :func:`capture` (the latency runs use them too).
+    max_model_bytes : int or str, default 8 GiB
+        Larger model files (with external data) are refused unread.
 
     Returns
     -------
@@ -596,15 +676,19 @@ def verify(
         raise OnnxcalError(
             "give --original or --scores, not both", "--scores stands in for running the original model"
         )
+    limit = _max_bytes(max_model_bytes)
+    patched = graph.load_model(patched_path, max_bytes=limit)
+    record = graph.read_record(patched)
     if junit is not None:
-        inputs = [patched_path, *spec.files(), *score_paths, *([original] if original is not None else [])]
+        models = [patched_path, *([original] if original is not None else [])]
+        if record is not None and Path(record.source_path).is_file():
+            models.append(record.source_path)  # the default original
+        inputs = [f for m in models for f in _model_files(m, limit)] + [*spec.files(), *score_paths]
         check_output_path(junit, inputs, force=force, option="--junit")
     latency = latency or max_latency_ratio is not None
     limits = {"max_ece": max_ece, "max_nll": max_nll, "min_accuracy": min_accuracy}
     thresholds = any(v is not None for v in limits.values())
-    patched = graph.load_model(patched_path)
-    record = graph.read_record(patched)
-    dataset = _load_data(patched, spec, require_labels=False)
+    dataset = _load_data(patched, spec, require_labels=False, batch_size=run.batch_size)
     cap = _capture.load_captures(score_paths) if score_paths else None
     if thresholds and dataset.labels is None and cap is None:
         raise OnnxcalError(
@@ -627,7 +711,7 @@ def verify(
         activation, checks = site.activation, _unrecorded_checks(site)
     else:
         site = graph.find_scores(patched, record.output)
-        ref = _reference(patched, patched_path, record, dataset, cap, original, score_paths, run, progress)
+        ref = _reference(patched, patched_path, record, dataset, cap, original, score_paths, run, progress, limit)
         rows = _run_output(patched, site, dataset, run, progress)
         if len(rows) != len(ref.logits):
             raise OnnxcalError(
@@ -644,7 +728,7 @@ def verify(
         if ref.original_model is not None:
             reference_model = ref.original_model
         elif original is not None:
-            reference_model = graph.load_model(original)
+            reference_model = graph.load_model(original, max_bytes=limit)
         else:
             reference_model = _unpatched(patched, patched_path)
         checks.append(
@@ -679,12 +763,13 @@ def _check_formats(formats) -> tuple[str, ...]:
 
 def _report_targets(directory, formats, inputs, force: bool, option: str) -> list[Path]:
     """The report's files, checked before any work; the directory may not exist yet."""
-    d = Path(directory)
+    d = check_not_input(directory, inputs, option)
     if d.exists() and not d.is_dir():
         raise OnnxcalError(f"{option} '{d}' is a file, not a directory", "give a directory for the report")
     parent = d.parent if str(d.parent) else Path(".")
     if not d.exists() and not parent.is_dir():
         raise OnnxcalError(f"the directory '{parent}' that would hold {option} '{d}' does not exist", "create it first")
+    check_writable(d if d.is_dir() else parent, option)
     targets = [d / name for name in _report.outputs(formats)]
     if d.is_dir():
         for target in targets:
@@ -692,16 +777,18 @@ def _report_targets(directory, formats, inputs, force: bool, option: str) -> lis
     return targets
 
 
-def _write_report(directory, content: dict, formats) -> ReportResult:
-    """Render every file in memory, then write each atomically."""
-    files = _report.render(content, formats)
+def _report_files(directory, content: dict, formats) -> tuple[dict[Path, bytes], ReportResult]:
+    """Every file of a report, rendered in memory, and the result that describes them."""
     d = Path(directory)
-    d.mkdir(exist_ok=True)
-    written = []
-    for name, data in files.items():
-        atomic_write_bytes(d / name, data)
-        written.append(str(d / name))
-    return ReportResult(directory=str(d), files=tuple(written), content=content)
+    files = {d / name: data for name, data in _report.render(content, formats).items()}
+    return files, ReportResult(directory=str(d), files=tuple(map(str, files)), content=content)
+
+
+def _write_report(directory, content: dict, formats) -> ReportResult:
+    """Render every file in memory, then write them together (a new directory appears whole)."""
+    files, result = _report_files(directory, content, formats)
+    atomic_write_files(files)
+    return result
 
 
 def _class_names(value, k: int) -> list[str] | None:
@@ -777,6 +864,8 @@ def report(
     class_names: str | os.PathLike | Sequence[str] | None = None,
     n_bins: int | None = None,
     force: bool = False,
+    drop_nonfinite: bool = False,
+    max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
 ) -> ReportResult:
     """Write a report on a calibration into the directory ``out``.
 
@@ -807,6 +896,11 @@ def report(
         Bins of the ECEs and the plots (default: the fit's, else 15).
     force : bool
         Replace existing report files.
+    drop_nonfinite : bool
+        Leave out samples whose logits hold NaN or Inf (noted in the
+        report); by default they are refused.
+    max_model_bytes : int or str, default 8 GiB
+        A larger ``model`` file is refused unread.
 
     Returns
     -------
@@ -817,11 +911,13 @@ def report(
     if n_bins is not None and n_bins < 2:
         raise OnnxcalError(f"--bins {n_bins} is fewer than 2 bins")
     formats = _check_formats(formats)
+    limit = _max_bytes(max_model_bytes)
     capture_paths = [] if isinstance(captures, Capture) else _as_paths(captures)
-    inputs = [*capture_paths, *[p for p in (fit, model, class_names) if isinstance(p, (str, os.PathLike))]]
+    inputs = [*capture_paths, *[p for p in (fit, class_names) if isinstance(p, (str, os.PathLike))]]
+    inputs += _model_files(model, limit) if model is not None else []
     _report_targets(out, formats, inputs, force, "--out")
     cap = captures if isinstance(captures, Capture) else _capture.load_captures(capture_paths)
-    _require_finite(cap.logits, ", ".join(map(str, capture_paths)) or cap.meta.data_source)
+    cap, dropped = _finite(cap, ", ".join(map(str, capture_paths)) or cap.meta.data_source, drop_nonfinite)
     calibrated = None
     if temperature is not None:
         kind = kind_of(cap.logits.shape[1], cap.labels.ndim)
@@ -831,11 +927,7 @@ def report(
         summary = fit if isinstance(fit, FitSummary) else _fit.load_fit(fit)
         scaling, source_sha, what = summary.scaling, summary.capture.get("model_sha256"), "the fit"
     else:
-        record = graph.read_record(graph.load_model(model))
-        if record is None:
-            raise OnnxcalError(
-                f"'{model}' has no onnxcal calibration record", "give a model written by 'onnxcal patch' or 'calibrate'"
-            )
+        record = _record_of(model, limit)
         summary, scaling = _fit_from_record(record, model), record.scaling
         source_sha, what = record.source_sha256, f"the calibration in '{model}'"
         calibrated = {"name": Path(model).name, "path": str(model), "sha256": sha256_file(model)}
@@ -844,7 +936,34 @@ def report(
     content = _report.build(
         cap, scaling, summary=summary, class_names=names, n_bins=n_bins, calibrated=calibrated
     )
+    if dropped is not None:
+        content["notes"] = [*content.get("notes", []), dropped]
     return _write_report(out, content, formats)
+
+
+def _record_of(model_path, limit: int) -> Record:
+    """The calibration record of a patched model, checked to describe its graph and its parameters.
+
+    For a folded model the parameters cannot be read back without the
+    original (``onnxcal verify --original`` checks them).
+    """
+    model = graph.load_model(model_path, max_bytes=limit)
+    record = graph.read_record(model)
+    if record is None:
+        raise OnnxcalError(
+            f"'{model_path}' has no onnxcal calibration record", "give a model written by 'onnxcal patch' or 'calibrate'"
+        )
+    graph.check_record(model, record, f"'{model_path}'")
+    if not record.folded:
+        check = _verify.record_check(
+            record.parameters, graph.parameter_values(model, record), graph.temperature_dtype(model, record)
+        )
+        if not check.passed:
+            raise OnnxcalError(
+                f"the calibration record of '{model_path}' does not match the parameters in its graph ({check.detail})",
+                f"run 'onnxcal verify {model_path}' to see what differs, and patch the original model again",
+            )
+    return record
 
 
 # --------------------------------------------------------------------------
@@ -870,6 +989,8 @@ def calibrate(
     progress: ProgressFn | None = None,
     options: FitOptions = FitOptions(),
     report: str | os.PathLike | None = None,
+    drop_nonfinite: bool = False,
+    max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
 ) -> CalibrateResult:
     """Capture, fit, patch and verify in one go (and write a report).
 
@@ -879,23 +1000,29 @@ def calibrate(
     for :func:`capture`; ``output`` ... ``fold``: see :class:`PatchOptions`;
     ``options`` are those of :func:`fit`. With ``report`` (a directory),
     every file of :func:`report` is written there too, with the
-    verification, also when it failed.
+    verification, also when it failed. The model and the report are written
+    together, only once everything is computed. ``drop_nonfinite`` leaves out
+    samples whose logits hold NaN or Inf (a note says how many; by default
+    they are refused); ``max_model_bytes`` as for :func:`capture`.
     """
     check_fit_options(options)
     spec = _data_spec(data)
-    external = _check_outputs(out, [model_path, *spec.files()], model_path, force)
+    limit = _max_bytes(max_model_bytes)
+    external = _check_outputs(out, [model_path, *spec.files()], model_path, force, limit)
     if report is not None:
-        _report_targets(report, _report.FORMATS, [model_path, *spec.files(), out], force, "--report")
+        outputs = [out, *([graph.external_data_path(out)] if external else [])]
+        inputs = [*_model_files(model_path, limit), *spec.files(), *outputs]
+        _report_targets(report, _report.FORMATS, inputs, force, "--report")
     run = _run_options(batch_size, threads, optimization, provider)
     patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold)
-    model = graph.load_model(model_path)
+    model = graph.load_model(model_path, max_bytes=limit)
     if (previous := graph.read_record(model)) is not None:
         raise OnnxcalError(
             f"'{model_path}' is already calibrated by onnxcal ({previous.method} scaling)",
             f"calibrate the original model ({previous.source_path}), or change T with 'onnxcal patch'",
         )
     sha = sha256_file(model_path)
-    dataset = _load_data(model, spec)
+    dataset = _load_data(model, spec, batch_size=run.batch_size)
     cap = _capture.capture(
         model,
         dataset,
@@ -906,24 +1033,32 @@ def calibrate(
         progress=progress,
         activation=activation,
     )
-    _require_finite(cap.logits, dataset.source)
-    summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options)
+    keep = _capture.finite_mask(cap)
+    full = cap
+    cap, dropped = _finite(cap, dataset.source, drop_nonfinite)
+    _warn_nonfinite_inputs(full, dataset.source)
+    summary = _with_note(_fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options), dropped)
     patched = patching.patch(model, summary.scaling, sha=sha, path=model_path, fit=summary.to_dict())
     record = graph.read_record(patched)
     site = graph.find_scores(patched, record.output)
     rows = _run_output(patched, site, dataset, run, progress)
-    checks = _reference_checks(rows, site, record, cap.logits, patched, model, sha)
+    checks = _reference_checks(rows[keep], site, record, cap.logits, patched, model, sha)
     result = VerifyResult(checks=tuple(checks), n=dataset.n, original=str(model_path))
+    files: dict[Path, bytes] = {}
     written = None
     if result.passed:
-        graph.save_model(patched, out, external=external)
+        files = graph.model_files(patched, out, external=external)
         written = PatchResult(path=str(out), record=record)
     written_report = None
     if report is not None:
-        calibrated = None if written is None else {"name": Path(out).name, "path": str(out), "sha256": sha256_file(out)}
+        calibrated = None if written is None else {
+            "name": Path(out).name, "path": str(out), "sha256": sha256_bytes(files[Path(out)])
+        }
         content = _report.build(
             cap, summary.scaling, summary=summary, class_names=_capture_names(cap), calibrated=calibrated,
             verification=result,
         )
-        written_report = _write_report(report, content, _report.FORMATS)
+        report_files, written_report = _report_files(report, content, _report.FORMATS)
+        files.update(report_files)
+    atomic_write_files(files)
     return CalibrateResult(summary=summary, patch=written, verification=result, report=written_report)

@@ -26,11 +26,13 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import warnings
 import zipfile
 from collections.abc import Callable, Iterator, Mapping, Sequence
-from dataclasses import asdict, dataclass, replace
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
+from typing import ClassVar
 
 import numpy as np
 import onnx
@@ -38,7 +40,8 @@ import onnx
 from . import __version__
 from ._files import atomic_path, require_file
 from .data import Dataset, check_labels, check_multilabel, match_inputs, read_npz
-from .errors import OnnxcalError, OnnxcalWarning
+from ._limits import check_memory, format_bytes
+from .errors import OnnxcalError, OnnxcalWarning, first_line
 from .graph import ScoreSite, expose_scores, find_scores, fit_kind, tensor_spec
 
 ProgressFn = Callable[[str, int, int], None]
@@ -190,6 +193,29 @@ class CaptureMeta:
         return cls(**data)
 
 
+@dataclass
+class Nonfinite:
+    """Rows holding NaN or Inf, counted batch by batch: how many, and the first few row numbers."""
+
+    count: int = 0
+    first: list[int] = field(default_factory=list)
+    keep: ClassVar[int] = 5
+
+    def add(self, bad: np.ndarray, rows: np.ndarray) -> None:
+        """Count the rows where ``bad`` is true; ``rows`` are their row numbers in the set."""
+        idx = np.flatnonzero(bad)
+        self.count += int(idx.size)
+        for r in rows[idx]:
+            if len(self.first) >= self.keep:
+                break
+            if int(r) not in self.first:
+                self.first.append(int(r))
+
+    def describe(self, total: int) -> str:
+        """``'4 of 40 rows (first rows: 2, 5, 7, 11)'``."""
+        return f"{self.count} of {total} rows (first rows: {', '.join(map(str, self.first))})"
+
+
 @dataclass(frozen=True)
 class Capture:
     """Captured logits, labels and where they came from.
@@ -202,6 +228,8 @@ class Capture:
     labels: np.ndarray
     meta: CaptureMeta
     indices: np.ndarray | None = None
+    nonfinite_inputs: Mapping[str, Nonfinite] = field(default_factory=dict)
+    """Inputs whose rows held NaN or Inf in the run that made this capture (empty when read from a file)."""
 
     def sample_indices(self) -> np.ndarray:
         """``indices``, or 0..n-1 when the capture holds every row in order."""
@@ -230,15 +258,47 @@ def make_session(model: onnx.ModelProto, options: RunOptions | None = None):
     try:
         return ort.InferenceSession(model.SerializeToString(), sess_options=opts, providers=providers)
     except Exception as exc:  # onnxruntime raises its own exception types
+        op = _unsupported_operator(model, str(exc))
+        if op is not None:
+            op_type, domain, node = op
+            raise OnnxcalError(
+                f"unsupported operator '{op_type}' in domain '{domain or 'ai.onnx'}' (node '{node}'): "
+                "onnxruntime has no kernel for it",
+                "export the model with standard ONNX operators, or run it where its custom-op library is installed",
+            ) from exc
         raise OnnxcalError(
-            f"onnxruntime cannot load the model: {_first_line(exc)}",
+            f"onnxruntime cannot load the model: {first_line(exc)}",
             "check that the model runs in onnxruntime on CPU",
         ) from exc
 
 
-def _first_line(exc: BaseException) -> str:
-    text = str(exc).strip()
-    return text.splitlines()[0] if text else type(exc).__name__
+def _nodes(graph: onnx.GraphProto) -> Iterator[onnx.NodeProto]:
+    for node in graph.node:
+        yield node
+        for a in node.attribute:
+            for g in [a.g] * a.HasField("g") + list(a.graphs):
+                yield from _nodes(g)
+
+
+def _unsupported_operator(model: onnx.ModelProto, message: str) -> tuple[str, str, str] | None:
+    """(op, domain, node) of the node onnxruntime refused, when its message names one.
+
+    onnxruntime words it as "DOMAIN:OP(VERSION) is not a registered
+    function/op" for an unknown domain, or "Could not find an implementation
+    for OP(VERSION) node with name 'NAME'" for a known one (onnxruntime
+    1.2x messages, from memory; anything else keeps the general message).
+    """
+    local = {(f.domain, f.name) for f in model.functions}
+    nodes = [n for n in _nodes(model.graph) if (n.domain, n.op_type) not in local]
+    for n in nodes:
+        if n.domain not in ("", "ai.onnx") and f"{n.domain}:{n.op_type}(" in message:
+            return n.op_type, n.domain, n.name or n.output[0]
+    named = re.search(r"implementation for (\w+)\(\d+\) node with name '([^']*)'", message)
+    if named:
+        for n in nodes:
+            if n.op_type == named.group(1) and (n.name or "") == named.group(2):
+                return n.op_type, n.domain, n.name or n.output[0]
+    return None
 
 
 def _graph_inputs(model: onnx.ModelProto) -> list[onnx.ValueInfoProto]:
@@ -294,6 +354,53 @@ def _dtypes(model: onnx.ModelProto, session) -> dict[str, str | None]:
     return {i.name: (None if specs.get(i.name, "unknown") == "unknown" else specs[i.name]) for i in session.get_inputs()}
 
 
+def _itemsize(dtype: str | None) -> int:
+    try:
+        return np.dtype(dtype).itemsize if dtype not in (None, "unknown") else 4
+    except TypeError:
+        return 4  # a non-tensor type: counted as float32
+
+
+def check_input_memory(model: onnx.ModelProto, batch_size: int, dataset: Dataset | None = None) -> None:
+    """Refuse a model whose inputs, for one batch, need more memory than is available.
+
+    The batch dim counts as ``batch_size`` (or the model's fixed batch when
+    larger); the other dims are the data's when ``dataset`` is given, else
+    the model's declared ones (symbolic dims count as 1, so a declared shape
+    alone is refused only when its fixed dims are too large). Checked before
+    the data are read, and again before the model runs.
+
+    Raises
+    ------
+    OnnxcalError
+        Naming the largest input, its shape and ``--batch-size``.
+    """
+    needs = []
+    for vi in _graph_inputs(model):
+        spec = tensor_spec(vi)
+        if spec.shape is None or not spec.shape:
+            continue
+        first = spec.shape[0]
+        batch = max(batch_size, first if isinstance(first, int) and first > 0 else 0)
+        if dataset is not None and spec.name in dataset.inputs:
+            row, where = tuple(dataset.inputs[spec.name].shape[1:]), "in the data"
+        else:
+            row, where = tuple(d if isinstance(d, int) and d > 0 else 1 for d in spec.shape[1:]), "declared"
+        per_sample = int(np.prod(row, dtype=np.float64)) * _itemsize(spec.dtype)
+        needs.append((batch * per_sample, per_sample, batch, spec, where))
+    if not needs:
+        return
+    total = sum(n[0] for n in needs)
+    _, per_sample, batch, spec, where = max(needs, key=lambda n: n[0])
+    shape = "[" + ", ".join("?" if d is None else str(d) for d in spec.shape) + "]"
+    check_memory(
+        total,
+        f"a batch of {batch} samples of input '{spec.name}' (shape {shape} {where}, {spec.dtype}, "
+        f"{format_bytes(per_sample)} per sample)",
+        "lower --batch-size, or check the model's input shape",
+    )
+
+
 def plan_run(
     model: onnx.ModelProto,
     dataset: Dataset,
@@ -302,6 +409,7 @@ def plan_run(
 ) -> RunPlan:
     """Open a session for ``model`` and decide the batching (see the module docstring)."""
     options = options or RunOptions()
+    check_input_memory(model, options.batch_size, dataset)
     session = make_session(model, options)
     dtypes = _dtypes(model, session)
     fixed = _fixed_batch(model)
@@ -360,10 +468,23 @@ def _disagreement(
     return None
 
 
-def run_batch(plan: RunPlan, dataset: Dataset, start: int, stop: int) -> list[np.ndarray]:
-    """Run selected rows ``start..stop-1``; one array per name, samples on axis 0."""
+def run_batch(
+    plan: RunPlan, dataset: Dataset, start: int, stop: int, watch: dict[str, Nonfinite] | None = None
+) -> list[np.ndarray]:
+    """Run selected rows ``start..stop-1``; one array per name, samples on axis 0.
+
+    With ``watch``, rows of float inputs holding NaN or Inf are counted in
+    it, by input name.
+    """
     feed = dataset.batch(start, stop, plan.dtypes)
     count = stop - start
+    if watch is not None:
+        rows = dataset.row_numbers()[start:stop]
+        for name, arr in feed.items():
+            if arr.dtype.kind == "f" and arr.ndim:
+                bad = ~np.isfinite(arr.reshape(count, -1)).all(axis=1)
+                if bad.any():
+                    watch.setdefault(name, Nonfinite()).add(bad, rows)
     if plan.pad is not None and count < plan.pad:  # pad a short batch of a fixed-batch model
         feed = {k: np.concatenate([v, np.repeat(v[-1:], plan.pad - count, axis=0)]) for k, v in feed.items()}
     try:
@@ -372,7 +493,7 @@ def run_batch(plan: RunPlan, dataset: Dataset, start: int, stop: int) -> list[np
         rows = dataset.row_numbers()
         raise OnnxcalError(
             f"onnxruntime failed on rows {int(rows[start])}..{int(rows[stop - 1])} of "
-            f"'{dataset.source}': {_first_line(exc)}",
+            f"'{dataset.source}': {first_line(exc)}",
             "check that the data matches the model's inputs",
         ) from exc
     return [np.asarray(o)[:count] if plan.pad is not None else np.asarray(o) for o in outs]
@@ -384,8 +505,11 @@ def run_batches(
     *,
     progress: ProgressFn | None = None,
     description: str = "running model",
+    watch: dict[str, Nonfinite] | None = None,
 ) -> Iterator[tuple[int, int, list[np.ndarray]]]:
     """Yield ``(start, stop, outputs)`` batch by batch over the selected rows.
+
+    ``watch`` counts inputs' rows holding NaN or Inf (see :func:`run_batch`).
 
     After each batch has been consumed ``progress`` is called; the input
     pages of consumed rows are released (:meth:`Dataset.release`) whenever
@@ -397,7 +521,7 @@ def run_batches(
     released = 0
     for start in range(0, n, plan.step):
         stop = min(start + plan.step, n)
-        yield start, stop, run_batch(plan, dataset, start, stop)
+        yield start, stop, run_batch(plan, dataset, start, stop, watch)
         if row_bytes and ((stop - released) * row_bytes >= RELEASE_BYTES or stop == n):
             dataset.release(released, stop)
             released = stop
@@ -487,6 +611,11 @@ class _Rows:
 
 class _MemoryRows(_Rows):
     def _open(self) -> None:
+        check_memory(
+            self.total * self.k * 4,
+            f"holding the logits of {self.total} rows x {self.k} classes in memory",
+            "capture to a file first ('onnxcal capture --out'), or use --limit",
+        )
         self.array = np.empty((self.total, self.k), dtype=np.float32)
 
     def _write(self, rows: np.ndarray) -> None:
@@ -543,14 +672,17 @@ def _fill_scores(
     sink: _Rows,
     options: RunOptions,
     progress: ProgressFn | None,
-) -> str:
-    """Run the model and pass its logits to ``sink``; return the batching mode."""
+) -> tuple[str, dict[str, Nonfinite]]:
+    """Run the model and pass its logits to ``sink``; return the batching mode and the
+    inputs whose rows held NaN or Inf."""
     exposed, name = expose_scores(model, site)
     plan = plan_run(exposed, dataset, [name], options)
-    for start, stop, (scores,) in run_batches(plan, dataset, progress=progress, description="capturing logits"):
+    watch: dict[str, Nonfinite] = {}
+    batches = run_batches(plan, dataset, progress=progress, description="capturing logits", watch=watch)
+    for start, stop, (scores,) in batches:
         rows = as_rows(scores, site.class_axis)
         sink.add(log_probabilities(rows) if site.from_probabilities else rows, stop - start)
-    return plan.mode
+    return plan.mode, watch
 
 
 def log_probabilities(p: np.ndarray) -> np.ndarray:
@@ -648,12 +780,13 @@ def capture(
 
     if out is None:
         sink = _MemoryRows(dataset.n)
-        final, meta = finish(sink, _fill_scores(model, dataset, site, sink, options, progress))
-        return Capture(sink.array, final, meta, dataset.rows)
+        mode, watch = _fill_scores(model, dataset, site, sink, options, progress)
+        final, meta = finish(sink, mode)
+        return Capture(sink.array, final, meta, dataset.rows, watch)
     with atomic_path(Path(out)) as tmp, zipfile.ZipFile(tmp, "w", zipfile.ZIP_STORED, allowZip64=True) as zf:
         sink = _NpyRows(dataset.n, zf)
         try:
-            mode = _fill_scores(model, dataset, site, sink, options, progress)
+            mode, watch = _fill_scores(model, dataset, site, sink, options, progress)
         except BaseException:
             sink.close(complete=False)  # the temporary file is removed; nothing to flush
             raise
@@ -661,7 +794,7 @@ def capture(
         final, meta = finish(sink, mode)
         _write_tail(zf, final, dataset.rows, meta)
     logits = read_npz(Path(out), "")["logits"]  # a memory map of what was just written
-    return Capture(logits, final, meta, dataset.rows)
+    return Capture(logits, final, meta, dataset.rows, watch)
 
 
 def _check_class_names(dataset: Dataset, k: int, kind: str) -> None:
@@ -734,9 +867,45 @@ def label_rows(labels: np.ndarray, shape: tuple[int, int], kind: str, source: st
     return check_multilabel(labels.reshape(rows, k), rows, k, source)
 
 
-def nonfinite_rows(logits: np.ndarray) -> np.ndarray:
-    """Indices of rows holding NaN or Inf."""
-    return np.flatnonzero(~np.isfinite(logits).all(axis=1))
+def nonfinite_rows(logits: np.ndarray, chunk: int = 1 << 16) -> np.ndarray:
+    """Indices of rows holding NaN or Inf (read in chunks: ``logits`` may be a memory map)."""
+    parts = [
+        start + np.flatnonzero(~np.isfinite(logits[start : start + chunk]).all(axis=1))
+        for start in range(0, len(logits), chunk)
+    ]
+    return np.concatenate(parts) if parts else np.zeros(0, np.int64)
+
+
+def _rows_per_sample(cap: Capture) -> int:
+    return max(1, len(cap.logits) // max(1, len(cap.sample_indices())))
+
+
+def nonfinite_logits(cap: Capture) -> Nonfinite:
+    """The score rows of ``cap`` holding NaN or Inf, with the set's row numbers of the first samples."""
+    rows = nonfinite_rows(cap.logits)
+    found = Nonfinite()
+    if rows.size:
+        found.add(np.ones(rows.size, bool), cap.sample_indices()[rows // _rows_per_sample(cap)])
+    return found
+
+
+def finite_mask(cap: Capture) -> np.ndarray:
+    """True for the score rows of the samples whose logits are all finite (every row of a sample alike)."""
+    rows = nonfinite_rows(cap.logits)
+    r = _rows_per_sample(cap)
+    keep_samples = np.ones(len(cap.logits) // r, bool)
+    keep_samples[rows // r] = False
+    return np.repeat(keep_samples, r)
+
+
+def without_nonfinite(cap: Capture) -> Capture:
+    """``cap`` without the samples whose logits hold NaN or Inf (every row of such a sample)."""
+    keep = finite_mask(cap)
+    if keep.all():
+        return cap
+    logits = np.asarray(cap.logits)[keep]
+    samples = cap.sample_indices()[keep[:: _rows_per_sample(cap)]]
+    return Capture(logits, cap.labels[keep], replace(cap.meta, n=int(len(logits))), samples, cap.nonfinite_inputs)
 
 
 # --------------------------------------------------------------------------
@@ -780,7 +949,7 @@ def load_capture(path: str | os.PathLike) -> Capture:
         arrays = read_npz(p, hint)
         logits, labels, meta_json = arrays["logits"], np.asarray(arrays["labels"]), str(arrays["meta"])
         meta = CaptureMeta.from_dict(json.loads(meta_json))
-    except (KeyError, ValueError, TypeError, AttributeError) as exc:
+    except (KeyError, ValueError, TypeError, AttributeError, RecursionError) as exc:
         raise OnnxcalError(f"'{p}' is not an onnxcal capture file ({exc})", hint) from exc
     except OnnxcalError as exc:
         raise OnnxcalError(f"'{p}' is not an onnxcal capture file ({exc.message})", hint) from exc

@@ -131,6 +131,23 @@ BootstrapOpt = Annotated[
     int, typer.Option("--bootstrap", help="Bootstrap replicates for 95% intervals; 0 skips them.")
 ]
 BinsOpt = Annotated[int, typer.Option("--bins", help="Bins of the ECEs.")]
+MaxModelBytesOpt = Annotated[
+    str,
+    typer.Option(
+        "--max-model-bytes",
+        help="Refuse a model file larger than this (with its external data), before reading it: "
+        "bytes, or a size such as 512MiB or 8GiB.",
+        metavar="SIZE",
+    ),
+]
+MAX_MODEL_BYTES = "8GiB"
+DropNonfiniteOpt = Annotated[
+    bool,
+    typer.Option(
+        "--drop-nonfinite",
+        help="Leave out the samples whose logits are NaN or Inf (and say how many) instead of refusing them.",
+    ),
+]
 
 
 # --------------------------------------------------------------------------
@@ -458,9 +475,9 @@ def _root(
 
 
 @app.command()
-def inspect(model: ModelArg, as_json: JsonOpt = False) -> None:
+def inspect(model: ModelArg, as_json: JsonOpt = False, max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES) -> None:
     """Show a model's inputs, outputs, opset, class-score output and calibration record."""
-    info = api.inspect(model)
+    info = api.inspect(model, max_model_bytes=max_model_bytes)
     _print_json(info.to_dict()) if as_json else _render_info(info)
 
 
@@ -475,6 +492,7 @@ def capture(
     activation: ActivationOpt = None,
     force: ForceOpt = False,
     quiet: QuietOpt = False,
+    max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
     *,
     data: DataSpec,
     runtime: dict,
@@ -492,14 +510,13 @@ def capture(
             force=force,
             progress=progress,
             activation=activation,
+            max_model_bytes=max_model_bytes,
             **runtime,
         )
     out.print(
         f"captured {cap.meta.n} x {cap.meta.num_classes} logits from '{cap.meta.scores}' "
         f"-> {out_path}"
     )
-    if (rows := api._capture.nonfinite_rows(cap.logits)).size:
-        _warn([f"{rows.size} rows hold NaN or Inf logits; 'onnxcal fit' will refuse them"])
 
 
 @app.command()
@@ -517,6 +534,7 @@ def fit(
     seed: SeedOpt = 0,
     bootstrap: BootstrapOpt = 200,
     bins: BinsOpt = 15,
+    drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
     as_json: JsonOpt = False,
 ) -> None:
@@ -526,7 +544,7 @@ def fit(
     95% intervals (--bootstrap); the parameters written are refitted on all samples.
     """
     options = FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins)
-    summary = api.fit(logits, out=out_path, force=force, options=options)
+    summary = api.fit(logits, out=out_path, force=force, options=options, drop_nonfinite=drop_nonfinite)
     if as_json:
         _print_json(summary.to_dict())
         return
@@ -553,6 +571,7 @@ def patch(
     compute_dtype: ComputeDtypeOpt = None,
     fold: FoldOpt = False,
     force: ForceOpt = False,
+    max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
 ) -> None:
     """Rewrite the graph so the model outputs calibrated probabilities (e.g. softmax(logits / T))."""
     result = api.patch(
@@ -567,6 +586,7 @@ def patch(
         compute_dtype=compute_dtype,
         fold=fold,
         force=force,
+        max_model_bytes=max_model_bytes,
     )
     r = result.record
     what = f"T = {r.temperature:.4f}" if r.temperature is not None else f"{r.method} scaling"
@@ -641,6 +661,7 @@ def verify(
     force: ForceOpt = False,
     as_json: JsonOpt = False,
     quiet: QuietOpt = False,
+    max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
     *,
     data: DataSpec,
     runtime: dict,
@@ -672,6 +693,7 @@ def verify(
             junit=junit,
             force=force,
             progress=progress,
+            max_model_bytes=max_model_bytes,
             **runtime,
         )
     _print_json(result.to_dict()) if as_json else _render_verify(result)
@@ -708,7 +730,9 @@ def report(
                      "(default: those recorded in the capture)."),
     ] = None,
     bins: Annotated[Optional[int], typer.Option("--bins", help="Bins (default: the fit's, else 15).")] = None,
+    drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
+    max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
 ) -> None:
     """Write report.html (self-contained), summary.md, report.json and the plots as PNG files.
 
@@ -725,7 +749,12 @@ def report(
         class_names=class_names,
         n_bins=bins,
         force=force,
+        drop_nonfinite=drop_nonfinite,
+        max_model_bytes=max_model_bytes,
     )
+    for note in result.content["notes"]:
+        if note.startswith("dropped "):
+            out.print(f"note: {note}", soft_wrap=True)
     _render_report(result)
     out.print(f"caution: {CAUTION}", soft_wrap=True)
 
@@ -756,9 +785,11 @@ def calibrate(
         Optional[Path],
         typer.Option("--report", help="Also write the report (as 'onnxcal report') into this directory."),
     ] = None,
+    drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
     as_json: JsonOpt = False,
     quiet: QuietOpt = False,
+    max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
     *,
     data: DataSpec,
     runtime: dict,
@@ -783,6 +814,8 @@ def calibrate(
             progress=progress,
             options=FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins),
             report=report_dir,
+            drop_nonfinite=drop_nonfinite,
+            max_model_bytes=max_model_bytes,
             **runtime,
         )
     if as_json:

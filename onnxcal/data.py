@@ -29,7 +29,9 @@ import os
 import re
 import struct
 import tomllib
+import warnings
 import zipfile
+import zlib
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -37,7 +39,8 @@ from pathlib import Path
 import numpy as np
 
 from ._files import require_file
-from .errors import OnnxcalError
+from ._limits import check_memory, format_bytes
+from .errors import OnnxcalError, first_line
 from .graph import TensorSpec
 
 LABELS_KEY = "labels"
@@ -407,8 +410,26 @@ def _combine(parts: Sequence[tuple[str, str]]) -> str:
 # NumPy arrays
 
 
-def _npz_member(path: Path, info: zipfile.ZipInfo) -> np.ndarray | None:
-    """Memory-map an uncompressed ``.npy`` member of an ``.npz`` in place, or None."""
+def _member_header(fh) -> tuple[tuple[int, ...], bool, np.dtype] | None:
+    """The shape, order and dtype in an ``.npy`` header read from ``fh``, or None."""
+    try:
+        version = np.lib.format.read_magic(fh)
+        reader = {(1, 0): np.lib.format.read_array_header_1_0, (2, 0): np.lib.format.read_array_header_2_0}
+        if version not in reader:
+            return None
+        return reader[version](fh)
+    except ValueError:
+        return None
+
+
+def _npz_member(path: Path, info: zipfile.ZipInfo, key: str) -> np.ndarray | None:
+    """Memory-map an uncompressed ``.npy`` member of an ``.npz`` in place, or None.
+
+    Raises
+    ------
+    OnnxcalError
+        The member's header claims more bytes than the member holds.
+    """
     if info.compress_type != zipfile.ZIP_STORED or info.flag_bits & 0x1:  # compressed/encrypted
         return None
     with open(path, "rb") as fh:
@@ -417,46 +438,77 @@ def _npz_member(path: Path, info: zipfile.ZipInfo) -> np.ndarray | None:
         if len(local) < 30 or local[:4] != b"PK\x03\x04":
             return None
         name_len, extra_len = struct.unpack("<HH", local[26:30])
-        fh.seek(info.header_offset + 30 + name_len + extra_len)
-        try:
-            version = np.lib.format.read_magic(fh)
-            reader = {(1, 0): np.lib.format.read_array_header_1_0, (2, 0): np.lib.format.read_array_header_2_0}
-            if version not in reader:
-                return None
-            shape, fortran, dtype = reader[version](fh)
-        except ValueError:
+        start = info.header_offset + 30 + name_len + extra_len
+        fh.seek(start)
+        header = _member_header(fh)
+        if header is None:
             return None
+        shape, fortran, dtype = header
         offset = fh.tell()
     if dtype.hasobject or int(np.prod(shape)) == 0:
         return None
+    need = int(np.prod(shape, dtype=np.float64)) * dtype.itemsize
+    if offset - start + need > info.file_size:
+        raise OnnxcalError(
+            f"array '{key}' in '{path}' is truncated: its header says {_show(shape)} {dtype} "
+            f"({format_bytes(need)}) but the file holds {format_bytes(max(0, info.file_size - (offset - start)))}",
+            "save the array again with numpy.savez",
+        )
     return np.memmap(path, dtype=dtype, mode="r", offset=offset, shape=shape, order="F" if fortran else "C")
 
 
+def _check_inflated_size(path: Path, zf: zipfile.ZipFile, info: zipfile.ZipInfo, key: str) -> None:
+    """Refuse a compressed member that would not fit in memory once read, from its header alone."""
+    try:
+        with zf.open(info) as fh:
+            header = _member_header(fh)
+    except (zipfile.BadZipFile, OSError, EOFError, ValueError, zlib.error):
+        return  # numpy's own read reports the damage
+    if header is None:
+        return
+    shape, _, dtype = header
+    check_memory(
+        int(np.prod(shape, dtype=np.float64)) * dtype.itemsize,
+        f"array '{key}' in '{path}' (compressed, shape {_show(shape)} {dtype})",
+        "save the data uncompressed (numpy.savez), which onnxcal reads without loading it whole",
+    )
+
+
 def read_npz(path: Path, hint: str) -> dict[str, np.ndarray]:
-    """Every array of an ``.npz``; uncompressed members are memory maps."""
+    """Every array of an ``.npz``; uncompressed members are memory maps.
+
+    Compressed members are read whole, after checking from their header
+    that they fit in memory; no member is ever unpickled.
+    """
     if not zipfile.is_zipfile(path):
         raise OnnxcalError(f"'{path}' is not an .npz archive", hint)
     try:
         npz = np.load(path, allow_pickle=False)
-        with zipfile.ZipFile(path) as zf:
-            infos = {i.filename: i for i in zf.infolist()}
+        zf = zipfile.ZipFile(path)
+        infos = {i.filename: i for i in zf.infolist()}
     except (zipfile.BadZipFile, ValueError, OSError, EOFError) as exc:
-        raise OnnxcalError(f"'{path}' is not a readable .npz file ({exc})", hint) from exc
+        raise OnnxcalError(f"'{path}' is not a readable .npz file ({first_line(exc)})", hint) from exc
     arrays: dict[str, np.ndarray] = {}
-    with npz:
+    with npz, zf:
         for key in npz.files:
             info = infos.get(key + ".npy")
-            mapped = _npz_member(path, info) if info is not None else None
+            mapped = _npz_member(path, info, key) if info is not None else None
             if mapped is not None:
                 arrays[key] = mapped
                 continue
+            if info is not None:
+                _check_inflated_size(path, zf, info, key)
             try:
                 arrays[key] = npz[key]
-            except ValueError as exc:  # object arrays need pickle, which we refuse
-                raise OnnxcalError(
-                    f"array '{key}' in '{path}' holds Python objects, which onnxcal will not unpickle",
-                    "save it as a numeric array",
-                ) from exc
+            except ValueError as exc:
+                if "allow_pickle" in str(exc) or "Object arrays" in str(exc):  # refused: needs pickle
+                    raise OnnxcalError(
+                        f"array '{key}' in '{path}' holds Python objects, which onnxcal will not unpickle",
+                        "save it as a numeric array",
+                    ) from exc
+                raise OnnxcalError(f"array '{key}' in '{path}' cannot be read ({first_line(exc)})", hint) from exc
+            except (zipfile.BadZipFile, OSError, EOFError, zlib.error) as exc:
+                raise OnnxcalError(f"array '{key}' in '{path}' cannot be read ({first_line(exc)})", hint) from exc
     return arrays
 
 
@@ -1072,7 +1124,11 @@ class ImageArray:
         name = self.files[i]
         o = self.plan.options
         try:
-            with Image.open(self.root / name) as img:
+            with warnings.catch_warnings():
+                # Pillow warns above MAX_IMAGE_PIXELS and raises at twice that; refuse both
+                warnings.simplefilter("error", Image.DecompressionBombWarning)
+                img = Image.open(self.root / name)
+            with img:
                 img = img.convert("L" if self.plan.channels == 1 else "RGB")
                 if o.resize is not None:
                     w, h = img.size
@@ -1090,8 +1146,16 @@ class ImageArray:
                     left, top = (w - cw) // 2, (h - ch) // 2
                     img = img.crop((left, top, left + cw, top + ch))
                 arr = np.asarray(img, dtype=np.uint8)
-        except (OSError, UnidentifiedImageError, ValueError) as exc:
-            raise OnnxcalError(f"image '{self.root / name}' cannot be read ({exc})", "fix or remove the file") from exc
+        except (Image.DecompressionBombWarning, Image.DecompressionBombError) as exc:
+            raise OnnxcalError(
+                f"image '{self.root / name}' claims {_pixels(exc)} pixels, more than Pillow's limit of "
+                f"{Image.MAX_IMAGE_PIXELS} for safe decoding (a decompression bomb?)",
+                "remove the file, or resize the images before calibrating",
+            ) from exc
+        except (OSError, UnidentifiedImageError, ValueError, SyntaxError) as exc:
+            raise OnnxcalError(
+                f"image '{self.root / name}' cannot be read ({first_line(exc)})", "fix or remove the file"
+            ) from exc
         return arr[:, :, None] if arr.ndim == 2 else arr
 
     def __getitem__(self, key) -> np.ndarray:
@@ -1113,6 +1177,12 @@ class ImageArray:
         if p.layout == "NCHW":
             batch = batch.transpose(0, 3, 1, 2)
         return np.ascontiguousarray(batch, dtype=p.dtype)
+
+
+def _pixels(exc: Exception) -> str:
+    """The pixel count in Pillow's decompression-bomb message ("Image size (N pixels) exceeds ...")."""
+    m = re.search(r"\((\d+) pixels\)", str(exc))
+    return m.group(1) if m else "too many"
 
 
 def _image_files(folder: Path) -> list[str]:
@@ -1259,7 +1329,13 @@ def match_inputs(dataset: Dataset, specs: Sequence[TensorSpec]) -> None:
         )
     for spec in specs:
         arr = dataset.inputs[spec.name]
-        want = np.dtype(spec.dtype)
+        try:
+            want = np.dtype(spec.dtype)
+        except TypeError:  # a sequence, a map, or no element type at all
+            raise OnnxcalError(
+                f"model input '{spec.name}' has type {spec.dtype}, which onnxcal cannot feed from arrays",
+                "calibrate a model whose inputs are tensors of numbers",
+            ) from None
         if not _kind_ok(arr.dtype, want):
             raise OnnxcalError(
                 f"input '{spec.name}' is {arr.dtype} in the data but {want} in the model",

@@ -39,3 +39,16 @@ class OnnxcalWarning(UserWarning):
     Raised through :func:`warnings.warn` (e.g. a fixed-batch model that must
     run one sample at a time); the CLI prints it as one ``warning:`` line.
     """
+
+
+def first_line(exc: BaseException, limit: int = 300) -> str:
+    """The first line of a library's error message (its type name when empty), at most ``limit`` characters.
+
+    Messages from onnx, onnxruntime, numpy and Pillow are quoted this way
+    inside an :class:`OnnxcalError` sentence when they name something the
+    user can act on (a node, a tensor); the full original stays chained
+    (``raise ... from exc``) and ``onnxcal --debug`` prints it.
+    """
+    text = str(exc).strip()
+    line = text.splitlines()[0] if text else type(exc).__name__
+    return line if len(line) <= limit else line[: limit - 3] + "..."

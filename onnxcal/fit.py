@@ -889,5 +889,5 @@ def load_fit(path: str | os.PathLike) -> FitSummary:
         return summary_from_dict(data)
     except OnnxcalError as exc:
         raise OnnxcalError(f"'{p}' holds invalid calibration parameters: {exc.message}", hint) from exc
-    except (OSError, UnicodeDecodeError, ValueError, KeyError, TypeError, AttributeError) as exc:
+    except (OSError, UnicodeDecodeError, ValueError, KeyError, TypeError, AttributeError, RecursionError) as exc:
         raise OnnxcalError(f"'{p}' is not an onnxcal fit file ({type(exc).__name__}: {exc})", hint) from exc

@@ -41,15 +41,16 @@ import os
 from collections.abc import Callable, Iterator
 from dataclasses import asdict, dataclass, field, replace
 from functools import partial
-from pathlib import Path
+from pathlib import Path, PureWindowsPath
 
 import numpy as np
 import onnx
 from onnx import helper, numpy_helper
 
 from . import __version__
-from ._files import atomic_write_bytes, require_file
-from .errors import OnnxcalError
+from ._files import atomic_write_files, require_file
+from ._limits import DEFAULT_MAX_MODEL_BYTES, check_model_size
+from .errors import OnnxcalError, first_line
 from .scaling import Scaling, check_scaling
 
 RECORD_KEY = "onnxcal.calibration"
@@ -269,63 +270,130 @@ class Record:
         return Scaling(self.method, dict(parameters), self.kind)
 
 
+def _attribute_tensors(a: onnx.AttributeProto) -> Iterator[onnx.TensorProto]:
+    """Tensors an attribute holds, whatever its declared type says (a hostile file may
+    set ``t`` on an INT attribute; onnx's loader would still read it)."""
+    if a.HasField("t"):
+        yield a.t
+    yield from a.tensors
+    for sparse in [a.sparse_tensor] * a.HasField("sparse_tensor") + list(a.sparse_tensors):
+        yield sparse.values
+        yield sparse.indices
+    for g in [a.g] * a.HasField("g") + list(a.graphs):
+        yield from _tensors(g)
+
+
 def _tensors(graph: onnx.GraphProto) -> Iterator[onnx.TensorProto]:
-    """Every tensor of a graph: initializers, Constant values, subgraphs'."""
+    """Every tensor of a graph: initializers (sparse ones too), attributes, subgraphs'."""
     yield from graph.initializer
+    for sparse in graph.sparse_initializer:
+        yield sparse.values
+        yield sparse.indices
     for node in graph.node:
         for a in node.attribute:
-            if a.type == onnx.AttributeProto.TENSOR:
-                yield a.t
-            elif a.type == onnx.AttributeProto.TENSORS:
-                yield from a.tensors
-            elif a.type == onnx.AttributeProto.GRAPH:
-                yield from _tensors(a.g)
-            elif a.type == onnx.AttributeProto.GRAPHS:
-                for g in a.graphs:
-                    yield from _tensors(g)
+            yield from _attribute_tensors(a)
+
+
+def _model_tensors(model: onnx.ModelProto) -> Iterator[onnx.TensorProto]:
+    """Every tensor of a model: its graph's and those of its local functions."""
+    yield from _tensors(model.graph)
+    for function in model.functions:
+        for node in function.node:
+            for a in node.attribute:
+                yield from _attribute_tensors(a)
 
 
 def _external_locations(model: onnx.ModelProto) -> list[str]:
     locations = []
-    for t in _tensors(model.graph):
+    for t in _model_tensors(model):
         if t.data_location == onnx.TensorProto.EXTERNAL:
             entry = {e.key: e.value for e in t.external_data}
             locations.append(entry.get("location", ""))
     return sorted(set(locations))
 
 
-def _check_locations(locations: list[str], model_path: Path) -> tuple[Path, ...]:
-    """Resolve external-data locations; refuse any outside the model's directory."""
-    base = model_path.resolve().parent
-    files = []
-    for loc in locations:
-        rel = Path(loc)
-        target = (base / rel).resolve()
-        outside = rel.is_absolute() or ".." in rel.parts or not target.is_relative_to(base)
-        if outside or not loc:
+def _check_location(loc: str, model_path: Path, base: Path) -> Path:
+    """The file an external-data location names, refused unless it is safely inside ``base``.
+
+    Refused: an empty or absolute location (POSIX or Windows style), a
+    ``..`` component, any component that is a symbolic link, a path that
+    resolves outside ``base`` anyway, anything but a regular file, and a file
+    with more than one hard link (it may be a link to a file outside, e.g. a
+    key, that no path check can see). These checks hold on their own; onnx's
+    loader (>= 1.21) makes similar ones as it opens the file. Reference:
+    onnx's security advisories on external data, from memory CVE-2022-25882
+    and CVE-2024-27318 (path traversal through ``location``), and
+    GHSA-538c-55jv-c5g9 (external-data attribute injection, named in onnx
+    1.23's ``external_data_helper.py``); see docs/security.md.
+    """
+    where = f"'{model_path}' keeps weights at external location '{loc}', which is outside the model's directory"
+    hint = "keep the external data files beside the .onnx file, named relative to it"
+    rel, win = Path(loc), PureWindowsPath(loc)
+    if not loc or rel.is_absolute() or win.is_absolute() or win.drive:
+        raise OnnxcalError(f"{where} (an absolute path)" if loc else f"{where} (an empty location)", hint)
+    if ".." in rel.parts or ".." in win.parts:
+        raise OnnxcalError(f"{where} ('..' leads out of it)", hint)
+    step = base
+    for part in rel.parts:
+        step = step / part
+        if step.is_symlink():
             raise OnnxcalError(
-                f"'{model_path}' keeps weights at external location '{loc}', which is "
-                "outside the model's directory (absolute path, '..' or a symlink leading out)",
-                "keep the external data files beside the .onnx file, named relative to it",
-            )
-        if (base / rel).is_symlink():  # onnx's loader refuses links too
-            raise OnnxcalError(
-                f"external data file '{loc}' of '{model_path}' is a symbolic link, which "
-                "onnx will not read through",
+                f"external data file '{loc}' of '{model_path}' is a symbolic link"
+                + ("" if step == base / rel else f" (through '{step.relative_to(base)}')")
+                + ", which could lead outside the model's directory",
                 "put the weights file itself beside the .onnx file",
             )
-        if not target.is_file():
-            raise OnnxcalError(
-                f"external data file '{loc}' of '{model_path}' is not in '{base}'",
-                "copy the weights file beside the .onnx file",
-            )
-        files.append(target)
-    return tuple(files)
+    target = base / rel
+    if not target.resolve().is_relative_to(base):
+        raise OnnxcalError(f"{where} (it resolves to '{target.resolve()}')", hint)
+    if not target.is_file():
+        raise OnnxcalError(
+            f"external data file '{loc}' of '{model_path}' is not a file in '{base}'",
+            "copy the weights file beside the .onnx file",
+        )
+    links = target.stat().st_nlink
+    if links > 1:
+        raise OnnxcalError(
+            f"external data file '{loc}' of '{model_path}' has {links} hard links, so it may be "
+            "a file from outside the model's directory",
+            "copy the weights beside the .onnx file (a copy, not a hard link)",
+        )
+    return target
 
 
-def external_data_files(path: str | os.PathLike) -> tuple[Path, ...]:
-    """The external data files a model file uses (checked to lie beside it)."""
+def _check_locations(locations: list[str], model_path: Path) -> tuple[Path, ...]:
+    """Resolve external-data locations; refuse any that could read outside the model's directory."""
+    base = model_path.resolve().parent
+    return tuple(_check_location(loc, model_path, base) for loc in locations)
+
+
+def _parse(p: Path) -> onnx.ModelProto:
+    """The ModelProto of a file, without its external data; errors name the file."""
+    try:
+        return onnx.load(str(p), load_external_data=False)
+    except OSError as exc:
+        raise OnnxcalError(f"cannot read model '{p}': {exc.strerror or exc}", "check that the file is readable") from exc
+    except Exception as exc:  # protobuf DecodeError, ...
+        raise OnnxcalError(
+            f"'{p}' is not a readable ONNX model (its bytes do not parse as an ONNX ModelProto: "
+            "a truncated download, or another kind of file)",
+            "give the path of an .onnx file exported by your framework",
+        ) from exc
+
+
+def _sized_model_file(path: str | os.PathLike, max_bytes: int) -> Path:
     p = require_file(path, "model")
+    check_model_size(p, 0, max_bytes)
+    if p.stat().st_size == 0:
+        raise OnnxcalError(f"'{p}' is empty (0 bytes)", "give the path of an .onnx file exported by your framework")
+    return p
+
+
+def external_data_files(
+    path: str | os.PathLike, *, max_bytes: int = DEFAULT_MAX_MODEL_BYTES
+) -> tuple[Path, ...]:
+    """The external data files a model file uses (checked to lie beside it)."""
+    p = _sized_model_file(path, max_bytes)
     try:
         model = onnx.load(str(p), load_external_data=False)
     except Exception:  # load_model reports unreadable files
@@ -333,44 +401,50 @@ def external_data_files(path: str | os.PathLike) -> tuple[Path, ...]:
     return _check_locations(_external_locations(model), p)
 
 
-def load_model(path: str | os.PathLike) -> onnx.ModelProto:
+def load_model(path: str | os.PathLike, *, max_bytes: int = DEFAULT_MAX_MODEL_BYTES) -> onnx.ModelProto:
     """Load and check an ONNX model file, with errors that name the file.
 
-    External data are read from the model's directory; a location outside
-    it (absolute, ``..``, a symlink leading out) is refused before any read.
+    The file (plus its external data) must be at most ``max_bytes``, checked
+    before it is read. External data are read from the model's directory; a
+    location that could lead outside it (absolute, ``..``, a symlink, a
+    hard link) is refused before any read, and so is external data left in
+    a tensor onnx does not load (onnxruntime would look for it elsewhere).
 
     Raises
     ------
     OnnxcalError
-        The file is missing, is not an ONNX model, fails onnx's checker, or
-        points outside its directory for external data.
+        The file is missing, empty, too large, is not an ONNX model, fails
+        onnx's checker, or points outside its directory for external data.
     """
-    p = require_file(path, "model")
-    try:
-        model = onnx.load(str(p), load_external_data=False)
-    except Exception as exc:  # protobuf DecodeError, ...
-        raise OnnxcalError(
-            f"'{p}' is not a readable ONNX model ({type(exc).__name__}: {exc})",
-            "give the path of an .onnx file exported by your framework",
-        ) from exc
+    p = _sized_model_file(path, max_bytes)
+    model = _parse(p)
     if model.ir_version == 0 or not model.graph.output:
         raise OnnxcalError(
             f"'{p}' is not an ONNX model (no IR version or no graph outputs)",
             "give the path of an .onnx file exported by your framework",
         )
-    if _check_locations(_external_locations(model), p):
+    files = _check_locations(_external_locations(model), p)
+    if files:
+        check_model_size(p, sum(f.stat().st_size for f in set(files)), max_bytes)
         try:
             onnx.external_data_helper.load_external_data_for_model(model, str(p.resolve().parent))
         except Exception as exc:
             raise OnnxcalError(
-                f"cannot read the external data of '{p}': {str(exc).splitlines()[0]}",
+                f"cannot read the external data of '{p}' ({first_line(exc)})",
                 "check that the weights file beside it is complete",
             ) from exc
+        left = [t.name for t in _model_tensors(model) if t.data_location == onnx.TensorProto.EXTERNAL]
+        if left:
+            raise OnnxcalError(
+                f"'{p}' keeps tensor '{left[0]}' in external data where onnx does not load it "
+                "(e.g. a sparse initializer)",
+                "save the model with that tensor inside the .onnx file",
+            )
     try:
         onnx.checker.check_model(model)
     except Exception as exc:
         raise OnnxcalError(
-            f"'{p}' fails the ONNX checker: {str(exc).splitlines()[0]}",
+            f"'{p}' fails the ONNX checker: {first_line(exc)}",
             "re-export the model or repair it before calibrating",
         ) from exc
     return model
@@ -756,18 +830,47 @@ def fit_kind(site: ScoreSite, requested: str | None = None) -> str:
     return requested or ("sigmoid" if single else "softmax")
 
 
+_RECORD_TYPES = {
+    "temperature": (int, float, type(None)),
+    "compute_dtype": (str, type(None)),
+    "folded": (bool,),
+    "format": (int,),
+    **{k: (dict,) for k in ("fit", "parameters", "initializers", "changes")},
+}
+_CHANGE_LISTS = ("nodes", "initializers", "outputs", "value_info", "scaled")
+
+
+def _check_record_fields(data) -> None:
+    """Refuse a record whose fields are not of the types onnxcal writes (a garbled or forged record)."""
+    if not isinstance(data, dict):
+        raise TypeError(f"it is a JSON {type(data).__name__}, not an object")
+    for key, value in data.items():
+        want = _RECORD_TYPES.get(key, (str,))
+        if key in Record.__dataclass_fields__ and not isinstance(value, want):
+            raise TypeError(f"field '{key}' is {type(value).__name__} {value!r:.40}")
+    changes = data.get("changes", {})
+    for key in _CHANGE_LISTS:
+        if not isinstance(changes.get(key, []), list) or not all(isinstance(v, str) for v in changes.get(key, [])):
+            raise TypeError(f"changes '{key}' is not a list of names")
+    renamed = changes.get("renamed", {})
+    if not isinstance(renamed, dict) or not all(isinstance(v, str) for v in [*renamed, *renamed.values()]):
+        raise TypeError("changes 'renamed' is not a map of names")
+
+
 def read_record(model: onnx.ModelProto) -> Record | None:
     """Return the onnxcal calibration record of ``model``, or None.
 
     Raises
     ------
     OnnxcalError
-        A record is present but is not valid JSON of the expected form.
+        A record is present but is not valid JSON of the expected form (field
+        types, valid parameters).
     """
     for prop in model.metadata_props:
         if prop.key == RECORD_KEY:
             try:
                 data = json.loads(prop.value)
+                _check_record_fields(data)
                 record = Record(**data)
                 if not record.parameters and record.temperature is not None:  # written before vector scaling
                     record = replace(
@@ -776,13 +879,60 @@ def read_record(model: onnx.ModelProto) -> Record | None:
                         initializers={"temperature": record.temperature_initializer}
                         if record.temperature_initializer else {},
                     )
+                check_scaling(record.scaling)
                 return record
-            except (ValueError, TypeError) as exc:
+            except (ValueError, TypeError, RecursionError) as exc:
                 raise OnnxcalError(
-                    f"the model's calibration record ({RECORD_KEY}) is damaged: {exc}",
+                    f"the model's calibration record ({RECORD_KEY}) is damaged: {first_line(exc)}",
+                    "patch the original model again",
+                ) from exc
+            except OnnxcalError as exc:
+                raise OnnxcalError(
+                    f"the model's calibration record ({RECORD_KEY}) is damaged: {exc.message}",
                     "patch the original model again",
                 ) from exc
     return None
+
+
+def check_record(model: onnx.ModelProto, record: Record, where: str = "the model") -> None:
+    """Refuse a record that does not describe the graph it sits in.
+
+    A tool that edits a patched model (an optimiser, a converter) may drop or
+    rename what onnxcal added but keep the metadata; undoing the patch or
+    reporting on its parameters from such a record would be wrong. The
+    parameters' values are not compared here: ``onnxcal verify`` reports a
+    difference there as a failed check.
+
+    Raises
+    ------
+    OnnxcalError
+        Something the record says the patch added, or its calibrated output,
+        is not in the graph.
+    """
+    g = model.graph
+    have = {
+        "node": {n.name for n in g.node},
+        "initializer": {i.name for i in g.initializer},
+        "output": {o.name for o in g.output},
+    }
+    tensors = {t for n in g.node for t in n.output} | {i.name for i in g.input} | have["initializer"]
+    ch = record.changes
+    wanted = [("node", n) for n in ch.get("nodes", [])] + [("initializer", n) for n in ch.get("initializers", [])]
+    wanted += [("output", n) for n in ch.get("outputs", [])] + [("initializer", n) for n in ch.get("scaled", [])]
+    wanted += [("initializer", n) for n in record.initializers.values() if n]
+    problem = next((f"{kind} '{name}' that the patch added is missing" for kind, name in wanted
+                    if name not in have[kind]), None)
+    if problem is None and record.output not in have["output"]:
+        problem = f"its calibrated output '{record.output}' is not an output of the graph"
+    if problem is None:
+        lost = next((new for new in ch.get("renamed", {}) if new not in tensors), None)
+        problem = None if lost is None else f"tensor '{lost}' that the patch renamed is missing"
+    if problem is not None:
+        raise OnnxcalError(
+            f"the calibration record of {where} does not match its graph: {problem} "
+            "(was the model edited after onnxcal patched it?)",
+            "patch the original, uncalibrated model again",
+        )
 
 
 def describe(
@@ -1547,6 +1697,7 @@ def unpatch(model: onnx.ModelProto) -> onnx.ModelProto:
             f"(record format {record.format})",
             "patch the original, uncalibrated model instead",
         )
+    check_record(model, record)
     g = out.graph
     added = set(ch["nodes"])
     keep = [n for n in g.node if n.name not in added]
@@ -1825,17 +1976,24 @@ def external_data_path(path: str | os.PathLike) -> Path:
     return p.with_name(p.name + ".data")
 
 
-def save_model(model: onnx.ModelProto, path: str | os.PathLike, *, external: bool = False) -> None:
-    """Serialise ``model`` and write it atomically to ``path``.
+def model_files(model: onnx.ModelProto, path: str | os.PathLike, *, external: bool = False) -> dict[Path, bytes]:
+    """The bytes of each file ``save_model`` writes: ``path``, and with ``external`` ``<path>.data``.
 
     With ``external``, initializers of at least ``EXTERNAL_THRESHOLD`` bytes
-    go to ``<path>.data`` beside it (written first, also atomically).
+    go to ``<path>.data`` beside it.
     """
     if not external:
-        atomic_write_bytes(Path(path), model.SerializeToString())
-        return
+        return {Path(path): model.SerializeToString()}
     copy = onnx.ModelProto()
     copy.CopyFrom(model)
     data = external_data_path(path)
-    atomic_write_bytes(data, _split_external(copy, data.name))
-    atomic_write_bytes(Path(path), copy.SerializeToString())
+    blob = _split_external(copy, data.name)
+    return {data: blob, Path(path): copy.SerializeToString()}
+
+
+def save_model(model: onnx.ModelProto, path: str | os.PathLike, *, external: bool = False) -> None:
+    """Serialise ``model`` and write it atomically to ``path`` (see :func:`model_files`).
+
+    With external data both files are complete before either is renamed into place.
+    """
+    atomic_write_files(model_files(model, path, external=external))

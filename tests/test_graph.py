@@ -188,7 +188,7 @@ def test_load_model_errors(tmp_path, rng):
     truncated = tmp_path / "truncated.onnx"
     truncated.write_bytes(random_mlp(rng).SerializeToString()[:-40])
     for path in (text, empty, truncated):
-        with pytest.raises(OnnxcalError, match="not (a readable ONNX model|an ONNX model)"):
+        with pytest.raises(OnnxcalError, match=r"not (a readable ONNX model|an ONNX model)|is empty \(0 bytes\)"):
             graph.load_model(path)
     with pytest.raises(OnnxcalError, match="does not exist"):
         graph.load_model(tmp_path / "missing.onnx")
