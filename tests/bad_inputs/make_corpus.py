@@ -1,0 +1,350 @@
+"""Generate the bad-input corpus that ``test_bad_inputs.py`` feeds to every command.
+
+Run:  python tests/bad_inputs/make_corpus.py DIR
+
+Every file is made here from code (numpy, onnx, Pillow, and onnxcal itself
+for the good captures, fits and patched models that the bad ones are
+tampered copies of); nothing is a hand-edited binary. The test runs this
+into a temporary directory once per session, so the corpus is never
+committed. The good files first, then one bad file (or directory) per
+cause; the table of cases in ``test_bad_inputs.py`` says which command is
+given which file and what the error must say.
+
+All data are invented (tiny random models on random inputs).
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import os
+import shutil
+import struct
+import sys
+import warnings
+import zipfile
+import zlib
+from pathlib import Path
+
+import numpy as np
+import onnx
+from onnx import TensorProto, helper, numpy_helper
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE.parent))  # tests/: the model builders of conftest.py
+
+from conftest import BELT_MODEL, identity_model, mlp_model, onehot_int_model, random_mlp  # noqa: E402
+
+from onnxcal import api  # noqa: E402
+from onnxcal.data import DataSpec, Selection  # noqa: E402
+from onnxcal.errors import OnnxcalWarning  # noqa: E402
+from onnxcal.fit import FitOptions  # noqa: E402
+
+SEED = 20270107
+N = 40  # rows of the good validation set
+D, K = 6, 4  # features and classes of the good model
+
+
+def _save(model: onnx.ModelProto, path: Path) -> Path:
+    path.write_bytes(model.SerializeToString())
+    return path
+
+
+def _finish(graph: onnx.GraphProto, opset: int = 17, **kw) -> onnx.ModelProto:
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", opset)], **kw)
+    model.ir_version = 8
+    return model
+
+
+def _vi(name: str, shape, elem=TensorProto.FLOAT) -> onnx.ValueInfoProto:
+    return helper.make_tensor_value_info(name, elem, shape)
+
+
+# --------------------------------------------------------------------------
+# Good files
+
+
+def good_files(d: Path, rng: np.random.Generator) -> None:
+    model = random_mlp(rng, d=D, k=K)
+    _save(model, d / "model.onnx")
+    _save(random_mlp(rng, d=D, k=K), d / "other_model.onnx")  # same inputs, another sha256
+    _save(identity_model(3), d / "identity3.onnx")
+    x = rng.normal(size=(N, D)).astype(np.float32)
+    y = np.arange(N) % K
+    np.savez(d / "val.npz", x=x, labels=y)
+    np.savez(d / "val3.npz", x=x[:, :3], labels=np.arange(N) % 3)  # for the 3-input models
+    header = ",".join(f"f{i}" for i in range(D)) + ",label\n"
+    rows = "".join(",".join(f"{v:.4f}" for v in row) + f",{label}\n" for row, label in zip(x, y))
+    (d / "val.csv").write_text(header + rows)
+    api.capture(d / "model.onnx", d / "val.npz", out=d / "cap.npz")
+    api.capture(d / "other_model.onnx", d / "val.npz", out=d / "other_cap.npz")
+    for i in (1, 2):
+        spec = DataSpec(path=d / "val.npz", selection=Selection(shard=(i, 2)))
+        api.capture(d / "model.onnx", spec, out=d / f"shard{i}.npz")
+    api.fit(d / "cap.npz", out=d / "fit.json", options=FitOptions(bootstrap=0))
+    api.patch(d / "model.onnx", d / "patched.onnx", fit=d / "fit.json")
+    (d / "existing.json").write_text('{"keep": "me"}\n')
+    os.symlink("val.npz", d / "val_link.npz")  # another name of the data file
+    (d / "sub").mkdir()
+    (d / "readonly").mkdir()
+    # the image model of the fixtures (float32 N x 3 x 32 x 32) and a small folder for it
+    shutil.copyfile(BELT_MODEL, d / "belt.onnx")
+    images = d / "images"
+    for k, colour in enumerate([(120, 120, 120), (140, 100, 80), (90, 120, 130)]):
+        (images / f"class{k}").mkdir(parents=True)
+        for j in range(2):
+            _png(images / f"class{k}" / f"img{j}.png", colour)
+    # an existing report, for report and calibrate --report without --force
+    (d / "old_report").mkdir()
+    (d / "old_report" / "report.html").write_text("<p>an earlier report</p>\n")
+
+
+def _png(path: Path, colour) -> None:
+    from PIL import Image
+
+    Image.new("RGB", (32, 32), colour).save(path)
+
+
+# --------------------------------------------------------------------------
+# Bad ONNX files
+
+
+def bad_models(d: Path, rng: np.random.Generator) -> None:
+    good = (d / "model.onnx").read_bytes()
+    (d / "truncated.onnx").write_bytes(good[: len(good) // 2])
+    (d / "empty.onnx").write_bytes(b"")
+    (d / "text.onnx").write_text("ir_version: 8\nthis is a text file, not a protobuf\n")
+    # a valid protobuf of another message: a TensorProto parses as a ModelProto with unknown fields
+    (d / "tensor_proto.onnx").write_bytes(numpy_helper.from_array(np.ones((3, 3), np.float32), "t").SerializeToString())
+    # another message that does parse as a ModelProto (its fields do not clash): the bare graph
+    (d / "graph_proto.onnx").write_bytes(onnx.load(str(d / "model.onnx")).graph.SerializeToString())
+    (d / "model_dir.onnx").mkdir()  # a directory named like a model
+
+    # a graph with a cycle: y = Relu(z), z = Relu(y)
+    cycle = helper.make_graph(
+        [helper.make_node("Relu", ["z"], ["y"], name="a"), helper.make_node("Add", ["x", "y"], ["z"], name="b")],
+        "cycle",
+        [_vi("x", ["N", K])],
+        [_vi("y", ["N", K])],
+    )
+    _save(_finish(cycle), d / "cycle.onnx")
+
+    # a Gemm whose weight is neither an initializer nor an input
+    missing = onnx.load(str(d / "model.onnx"))
+    kept = [i for i in missing.graph.initializer if i.name != "w1"]
+    del missing.graph.initializer[:]
+    missing.graph.initializer.extend(kept)
+    _save(missing, d / "missing_initializer.onnx")
+
+    _save(onehot_int_model(), d / "int64_output.onnx")
+
+    # a Softmax on an axis the rank-2 scores do not have
+    w = rng.normal(size=(D, K)).astype(np.float32)
+    axis = mlp_model([(w, np.zeros(K))], final="Softmax")
+    next(n for n in axis.graph.node if n.op_type == "Softmax").attribute[0].i = 5
+    _save(axis, d / "class_axis.onnx")
+
+    # an operator of a domain onnxruntime has no kernels for
+    custom = helper.make_graph(
+        [helper.make_node("Gemm", ["x", "w", "b"], ["h"], name="gemm"),
+         helper.make_node("VibrationScore", ["h"], ["scores"], name="custom", domain="com.example.belt")],
+        "custom_op",
+        [_vi("x", ["N", D])],
+        [_vi("scores", ["N", K])],
+        initializer=[numpy_helper.from_array(w, "w"), numpy_helper.from_array(np.zeros(K, np.float32), "b")],
+    )
+    model = helper.make_model(
+        custom, opset_imports=[helper.make_opsetid("", 17), helper.make_opsetid("com.example.belt", 1)]
+    )
+    model.ir_version = 8
+    _save(model, d / "custom_op.onnx")
+
+    # an input whose declared fixed dims need ~1 TiB per batch of 64: 64 x 4 x 1M x 1M bytes
+    huge = helper.make_graph(
+        [helper.make_node("ReduceMean", ["x"], ["m"], axes=[2, 3], keepdims=0, name="mean"),
+         helper.make_node("Identity", ["m"], ["scores"], name="id")],
+        "huge_input",
+        [_vi("x", ["N", K, 1 << 20, 1 << 20])],
+        [_vi("scores", ["N", K])],
+    )
+    _save(_finish(huge), d / "huge_input.onnx")
+
+    # the good model patched, then its record made to disagree with its graph
+    patched = onnx.load(str(d / "patched.onnx"))
+    record = json.loads(next(p.value for p in patched.metadata_props if p.key == "onnxcal.calibration"))
+    lost = onnx.ModelProto()
+    lost.CopyFrom(patched)  # a tool removed onnxcal's Div but kept the metadata
+    div = next(n for n in lost.graph.node if n.name in record["changes"]["nodes"] and n.op_type == "Div")
+    for node in lost.graph.node:
+        node.input[:] = [div.input[0] if name == div.output[0] else name for name in node.input]
+    lost.graph.node.remove(div)
+    _save(lost, d / "record_lost_node.onnx")
+    other = onnx.ModelProto()
+    other.CopyFrom(patched)  # T in the graph changed behind the record's back
+    init = next(i for i in other.graph.initializer if i.name == record["temperature_initializer"])
+    init.CopyFrom(numpy_helper.from_array(np.array(record["temperature"] * 3, np.float32), init.name))
+    _save(other, d / "record_wrong_t.onnx")
+    garbled = onnx.ModelProto()
+    garbled.CopyFrom(patched)  # a record whose fields have the wrong types
+    record_bad = dict(record, changes="nodes: all of them", parameters=[1, 2])
+    next(p for p in garbled.metadata_props if p.key == "onnxcal.calibration").value = json.dumps(record_bad)
+    _save(garbled, d / "record_garbled.onnx")
+
+
+# --------------------------------------------------------------------------
+# External data pointing outside the model's directory
+
+
+def _external_model(rng: np.random.Generator) -> onnx.ModelProto:
+    w = rng.normal(size=(D, 64)).astype(np.float32)  # 1536 bytes: above onnx's 1024-byte threshold
+    return mlp_model([(w, np.zeros(64)), (rng.normal(size=(64, K)), np.zeros(K))])
+
+
+def _point_to(model: onnx.ModelProto, location: str) -> onnx.ModelProto:
+    out = onnx.ModelProto()
+    out.CopyFrom(model)
+    for init in out.graph.initializer:
+        for entry in init.external_data:
+            if entry.key == "location":
+                entry.value = location
+    return out
+
+
+def external_data(d: Path, rng: np.random.Generator) -> None:
+    base = _external_model(rng)
+    good = d / "ext_good"
+    good.mkdir()
+    named = d / "ext_named"  # weights in 'shared.onnx.data': the data file of an output named 'shared.onnx'
+    named.mkdir()
+    for folder, location in ((good, "model.onnx.data"), (named, "shared.onnx.data")):
+        copy = onnx.ModelProto()
+        copy.CopyFrom(base)  # onnx.save moves the weights of the proto it is given to the file
+        onnx.save(copy, folder / "model.onnx", save_as_external_data=True, location=location)
+    outside = d / "outside"
+    outside.mkdir()
+    shutil.copyfile(good / "model.onnx.data", outside / "weights.bin")
+    (d / "ext_out.onnx.data").write_bytes(b"weights of an earlier patched model")
+    stored = onnx.load(str(good / "model.onnx"), load_external_data=False)
+    cases = {
+        "ext_dotdot": "../outside/weights.bin",
+        "ext_absolute": str((outside / "weights.bin").resolve()),
+        "ext_symlink": "weights.bin",  # a symlink beside the model, to ../outside/weights.bin
+        "ext_hardlink": "weights.bin",  # a hard link beside the model, of ../outside/weights.bin
+    }
+    for name, location in cases.items():
+        folder = d / name
+        folder.mkdir()
+        _save(_point_to(stored, location), folder / "model.onnx")
+    os.symlink(os.path.join("..", "outside", "weights.bin"), d / "ext_symlink" / "weights.bin")
+    os.link(outside / "weights.bin", d / "ext_hardlink" / "weights.bin")
+
+
+# --------------------------------------------------------------------------
+# Bad data sets
+
+
+def bad_data(d: Path, rng: np.random.Generator) -> None:
+    x = rng.normal(size=(N, D)).astype(np.float32)
+    y = np.arange(N) % K
+    np.savez(d / "pickled.npz", x=np.array([{"row": i} for i in range(N)], dtype=object), labels=y)
+    np.savez(d / "missing_input.npz", band=x, labels=y)
+    np.savez(d / "wrong_dtype.npz", x=x.astype(np.complex64), labels=y)
+    np.savez(d / "wrong_rank.npz", x=x[:, :, None], labels=y)
+    np.savez(d / "wrong_features.npz", x=x[:, :5], labels=y)
+    np.savez(d / "empty_set.npz", x=np.zeros((0, D), np.float32), labels=np.zeros(0, np.int64))
+    np.savez(d / "fraction_labels.npz", x=x, labels=np.where(np.arange(N) == 7, 1.5, y).astype(np.float64))
+    np.savez(d / "negative_labels.npz", x=x, labels=np.where(np.arange(N) == 3, -1, y))
+    np.savez(d / "labels_too_big.npz", x=x, labels=np.where(np.arange(N) == 9, K, y))
+    np.savez(d / "length_mismatch.npz", x=x, labels=y[:-1])
+    z = rng.normal(size=(N, 3)).astype(np.float32)
+    z[[2, 5, 11], 1] = np.nan
+    z[7, 0] = np.inf
+    np.savez(d / "nonfinite.npz", x=z, labels=np.arange(N) % 3)
+    with warnings.catch_warnings():  # capture warns about those rows; here they are wanted
+        warnings.simplefilter("ignore", OnnxcalWarning)
+        api.capture(d / "identity3.onnx", d / "nonfinite.npz", out=d / "nonfinite_cap.npz")
+    # a compressed member whose header claims 2^40 float64 values (8 TiB) in a few bytes
+    _npz_claiming(d / "bomb.npz", "x", (1 << 20, 1 << 20), "<f8", y)
+    # an uncompressed member whose header claims more rows than the file holds
+    _npz_claiming(d / "short_member.npz", "x", (N * 1000, D), "<f4", y, compress=False)
+    text = (d / "val.csv").read_text().splitlines()
+    cells = text[3].split(",")
+    cells[2] = "n/a"
+    text[3] = ",".join(cells)
+    (d / "non_numeric.csv").write_text("\n".join(text) + "\n")
+    capture = (d / "cap.npz").read_bytes()
+    (d / "truncated_cap.npz").write_bytes(capture[: len(capture) * 2 // 3])
+
+
+def _npz_claiming(path: Path, key: str, shape, descr: str, labels, compress: bool = True) -> None:
+    """An .npz whose member ``key`` has a header claiming ``shape`` but a few bytes of data."""
+    head = io.BytesIO()
+    np.lib.format.write_array_header_1_0(head, {"descr": descr, "fortran_order": False, "shape": shape})
+    method = zipfile.ZIP_DEFLATED if compress else zipfile.ZIP_STORED
+    with zipfile.ZipFile(path, "w", method) as zf:
+        zf.writestr(f"{key}.npy", head.getvalue() + bytes(64))
+        buf = io.BytesIO()
+        np.lib.format.write_array(buf, np.asarray(labels))
+        zf.writestr("labels.npy", buf.getvalue())
+
+
+# --------------------------------------------------------------------------
+# Bad image folders
+
+
+def _raw_png(width: int, height: int, data: bytes) -> bytes:
+    """A PNG with an IHDR of the given size and ``data`` as its (compressed) pixels."""
+
+    def chunk(kind: bytes, body: bytes) -> bytes:
+        return struct.pack(">I", len(body)) + kind + body + struct.pack(">I", zlib.crc32(kind + body))
+
+    ihdr = struct.pack(">IIBBBBB", width, height, 8, 2, 0, 0, 0)
+    return b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", ihdr) + chunk(b"IDAT", zlib.compress(data)) + chunk(b"IEND", b"")
+
+
+def bad_images(d: Path) -> None:
+    def copy(name: str) -> Path:
+        shutil.copytree(d / "images", d / name)
+        return d / name
+
+    png = (d / "images" / "class0" / "img0.png").read_bytes()
+    (copy("images_corrupt") / "class1" / "broken.png").write_bytes(png[: len(png) // 2])
+    (copy("images_not_image") / "class2" / "notes.png").write_text("inspection notes, not a picture\n")
+    (copy("images_empty_class") / "class3").mkdir()
+    # a PNG that claims 40000 x 40000 pixels (1.6e9, past Pillow's decompression-bomb limit)
+    (copy("images_bomb") / "class0" / "huge.png").write_bytes(_raw_png(40000, 40000, bytes(1024)))
+
+
+# --------------------------------------------------------------------------
+# Bad fit files
+
+
+def bad_fits(d: Path) -> None:
+    fit = json.loads((d / "fit.json").read_text())
+    for name, value in (("negative_t", -1.5), ("text_t", "warm")):
+        bad = json.loads(json.dumps(fit))
+        bad["temperature"] = value
+        bad["parameters"]["temperature"] = value
+        (d / f"fit_{name}.json").write_text(json.dumps(bad, indent=2))
+    (d / "fit_not_json.json").write_text("temperature = 1.5\n")
+    (d / "fit_deep.json").write_text("[" * 100_000 + "]" * 100_000)
+
+
+def make(directory: str | os.PathLike) -> Path:
+    """Write the whole corpus into ``directory`` (created; must not exist)."""
+    d = Path(directory)
+    d.mkdir(parents=True)
+    rng = np.random.default_rng(SEED)
+    good_files(d, rng)
+    bad_models(d, rng)
+    external_data(d, rng)
+    bad_data(d, rng)
+    bad_images(d)
+    bad_fits(d)
+    return d
+
+
+if __name__ == "__main__":
+    if len(sys.argv) != 2:
+        sys.exit("usage: python tests/bad_inputs/make_corpus.py DIR")
+    print(f"wrote the corpus to {make(sys.argv[1])}")

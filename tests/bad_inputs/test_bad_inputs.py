@@ -1,0 +1,278 @@
+"""The bad-input corpus: every command, every kind of bad file or option.
+
+``make_corpus.py`` writes the files into a temporary directory once per
+session; each case below runs one command on them in-process (the CLI's
+``main``, as the console script calls it) from inside that directory and
+asserts what onnxcal promises for bad input (docs/security.md):
+
+* exit status 2;
+* one line on stderr, ``onnxcal: error: ...``, that names the cause (the
+  regular expression of the case) and no traceback;
+* no file or directory created, and every file of the corpus unchanged
+  (sha256 of each before and after; symlinks by their target).
+
+Two cases at the end run the real console script in a subprocess to check
+the process's exit status and stderr, and one runs as an unprivileged user
+to meet a real permission error.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import re
+import shutil
+import subprocess
+import sys
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+import pytest
+
+import make_corpus
+
+
+@pytest.fixture(scope="session")
+def corpus(tmp_path_factory) -> Path:
+    return make_corpus.make(tmp_path_factory.mktemp("bad_inputs") / "corpus")
+
+
+def snapshot(root: Path) -> dict[str, str]:
+    """Every path under ``root``: sha256 of files, 'dir' for directories, link targets."""
+    state = {}
+    for top, dirs, files in os.walk(root):
+        for name in dirs + files:
+            p = Path(top) / name
+            rel = str(p.relative_to(root))
+            if p.is_symlink():
+                state[rel] = "-> " + os.readlink(p)
+            elif p.is_dir():
+                state[rel] = "dir"
+            else:
+                state[rel] = hashlib.sha256(p.read_bytes()).hexdigest()
+    return state
+
+
+# --------------------------------------------------------------------------
+# Simulated environments (see docs/security.md, "Unwritable directories")
+
+
+def unwritable_readonly(monkeypatch, corpus: Path) -> None:
+    """``readonly/`` as an unprivileged user sees it.
+
+    The tests run as root here, and root may write into a directory whatever
+    its mode bits, so ``chmod`` alone proves nothing. onnxcal asks the OS
+    whether it may write there (``os.access``) before any work; this makes
+    the OS answer "no" for ``readonly/`` exactly as it would for a user
+    without write permission. The real kernel refusal is checked in
+    ``test_unprivileged_user_meets_a_real_permission_error`` below.
+    """
+    real = os.access
+    target = (corpus / "readonly").resolve()
+
+    def access(path, mode, *args, **kwargs):
+        if mode & os.W_OK and Path(path).resolve() == target:
+            return False
+        return real(path, mode, *args, **kwargs)
+
+    monkeypatch.setattr(os, "access", access)
+
+
+def eacces_on_create(monkeypatch, corpus: Path) -> None:
+    """Creating the temporary file fails with EACCES although ``os.access`` said yes
+    (as on an NFS export with root squashed, or under a mandatory access policy)."""
+    real = tempfile.mkstemp
+
+    def mkstemp(*args, dir=None, **kwargs):
+        if dir is not None and Path(dir).resolve() == (corpus / "readonly").resolve():
+            raise PermissionError(13, "Permission denied", str(Path(dir) / "tmpfile"))
+        return real(*args, dir=dir, **kwargs)
+
+    monkeypatch.setattr(tempfile, "mkstemp", mkstemp)
+
+
+# --------------------------------------------------------------------------
+# The table
+
+
+@dataclass(frozen=True)
+class Case:
+    id: str
+    args: tuple
+    message: str  # a regular expression the error line must match
+    setup: object = None  # setup(monkeypatch, corpus) before the run
+
+    def argv(self, corpus: Path) -> list[str]:
+        return [str(a).replace("{corpus}", str(corpus)) for a in self.args]
+
+
+def case(id, *args, message, setup=None) -> Case:
+    return Case(id, args, message, setup)
+
+
+NPZ = ("--data", "val.npz")
+T2 = ("--temperature", "2")
+
+CASES = [
+    # ---- ONNX files that are not (usable) models
+    case("truncated-onnx", "inspect", "truncated.onnx", message=r"'truncated.onnx' is not a readable ONNX model"),
+    case("zero-byte-onnx", "capture", "empty.onnx", *NPZ, "--out", "c.npz", message=r"'empty.onnx' is empty \(0 bytes\)"),
+    case("text-named-onnx", "patch", "text.onnx", *T2, "--out", "p.onnx", message=r"'text.onnx' is not a readable ONNX model"),
+    case("other-protobuf", "inspect", "tensor_proto.onnx", message=r"'tensor_proto.onnx' is not a readable ONNX model"),
+    case("other-protobuf-that-parses", "capture", "graph_proto.onnx", *NPZ, "--out", "c.npz", message=r"'graph_proto.onnx' is not an ONNX model \(no IR version"),
+    case("directory-named-onnx", "inspect", "model_dir.onnx", message=r"model 'model_dir.onnx' is not a regular file"),
+    case("graph-with-cycle", "calibrate", "cycle.onnx", *NPZ, "--out", "o.onnx", message=r"'cycle.onnx' fails the ONNX checker: .*topologically sorted"),
+    case("missing-initializer", "patch", "missing_initializer.onnx", *T2, "--out", "p.onnx", message=r"'missing_initializer.onnx' fails the ONNX checker: .*w1"),
+    case("int64-only-output", "calibrate", "int64_output.onnx", "--data", "val3.npz", "--out", "o.onnx", message=r"no floating-point output to calibrate \(outputs: label \(int64\)\)"),
+    case("no-such-output", "capture", "model.onnx", *NPZ, "--output", "nope", "--out", "c.npz", message=r"no output named 'nope'; choose one of: scores"),
+    case("class-axis-out-of-range", "patch", "class_axis.onnx", *T2, "--out", "p.onnx", message=r"class axis 5 is out of range for output 'scores' of rank 2"),
+    case("custom-op-domain", "capture", "custom_op.onnx", *NPZ, "--out", "c.npz", message=r"unsupported operator 'VibrationScore' in domain 'com.example.belt'"),
+    case("model-over-size-limit", "inspect", "model.onnx", "--max-model-bytes", "100", message=r"'model.onnx' is \d+ bytes .*more than --max-model-bytes 100"),
+    case("bad-size-limit", "patch", "model.onnx", *T2, "--out", "p.onnx", "--max-model-bytes", "lots", message=r"--max-model-bytes 'lots' is not a size"),
+    case("declared-input-too-big", "capture", "huge_input.onnx", *NPZ, "--out", "c.npz", message=r"a batch of 64 samples of input 'x' \(shape \[N, 4, 1048576, 1048576\] declared, float32, 16 TiB per sample\) needs 1 PiB, more than the .* of memory available; lower --batch-size"),
+    # ---- external data outside the model's directory
+    case("external-dotdot", "inspect", "ext_dotdot/model.onnx", message=r"external location '\.\./outside/weights.bin', which is outside the model's directory"),
+    case("external-absolute", "patch", "ext_absolute/model.onnx", *T2, "--out", "p.onnx", message=r"external location '/.*weights.bin', which is outside the model's directory"),
+    case("external-symlink", "capture", "ext_symlink/model.onnx", *NPZ, "--out", "c.npz", message=r"external data file 'weights.bin' of '.*' is a symbolic link"),
+    case("external-hardlink", "verify", "ext_hardlink/model.onnx", *NPZ, message=r"external data file 'weights.bin' of '.*' has 2 hard links"),
+    # ---- data files
+    case("npz-pickled-objects", "capture", "model.onnx", "--data", "pickled.npz", "--out", "c.npz", message=r"array 'x' in 'pickled.npz' holds Python objects"),
+    case("npz-missing-input", "capture", "model.onnx", "--data", "missing_input.npz", "--out", "c.npz", message=r"'missing_input.npz' has no array for model input 'x'"),
+    case("wrong-dtype", "capture", "model.onnx", "--data", "wrong_dtype.npz", "--out", "c.npz", message=r"input 'x' is complex64 in the data but float32 in the model"),
+    case("wrong-rank", "calibrate", "model.onnx", "--data", "wrong_rank.npz", "--out", "o.onnx", message=r"input 'x' has rank 3 .* but rank 2 in the model"),
+    case("wrong-feature-count", "verify", "patched.onnx", "--data", "wrong_features.npz", message=r"input 'x' has size 5 on axis 1 in the data but 6 in the model"),
+    case("empty-data-set", "capture", "model.onnx", "--data", "empty_set.npz", "--out", "c.npz", message=r"'empty_set.npz' holds no samples"),
+    case("labels-with-fractions", "calibrate", "model.onnx", "--data", "fraction_labels.npz", "--out", "o.onnx", message=r"label 1.5 at row 7 in 'fraction_labels.npz' is not a whole class index"),
+    case("negative-labels", "capture", "model.onnx", "--data", "negative_labels.npz", "--out", "c.npz", message=r"label -1 at row 3 .* outside \[0, 4\)"),
+    case("labels-at-least-k", "calibrate", "model.onnx", "--data", "labels_too_big.npz", "--out", "o.onnx", message=r"label 4 at row 9 .* outside \[0, 4\)"),
+    case("length-mismatch", "capture", "model.onnx", "--data", "length_mismatch.npz", "--out", "c.npz", message=r"different numbers of samples \(x: 40, labels: 39\)"),
+    case("nan-inf-rows-calibrate", "calibrate", "identity3.onnx", "--data", "nonfinite.npz", "--out", "o.onnx", "-q", message=r"NaN or Inf in 4 of 40 rows \(first rows: 2, 5, 7, 11\).*--drop-nonfinite"),
+    case("nan-inf-rows-fit", "fit", "nonfinite_cap.npz", "--out", "f.json", message=r"NaN or Inf in 4 of 40 rows \(first rows: 2, 5, 7, 11\).*--drop-nonfinite"),
+    case("nan-inf-rows-report", "report", "nonfinite_cap.npz", "--out", "rep", *T2, message=r"NaN or Inf in 4 of 40 rows \(first rows: 2, 5, 7, 11\)"),
+    case("csv-non-numeric-cell", "capture", "model.onnx", "--data", "non_numeric.csv", "--out", "c.npz", message=r"line 4, column 'f2' .* holds 'n/a', not a number"),
+    case("npz-compressed-bomb", "capture", "model.onnx", "--data", "bomb.npz", "--out", "c.npz", message=r"array 'x' in 'bomb.npz' \(compressed, shape \[1048576, 1048576\] float64\) needs 8 TiB, more than the .* of memory available"),
+    case("npz-member-shorter-than-header", "capture", "model.onnx", "--data", "short_member.npz", "--out", "c.npz", message=r"array 'x' in 'short_member.npz' is truncated: its header says \[40000, 6\] float32 \(938 KiB\)"),
+    case("images-corrupt", "capture", "belt.onnx", "--data", "images_corrupt", "--out", "c.npz", message=r"image '.*broken.png' cannot be read"),
+    case("images-non-image-file", "calibrate", "belt.onnx", "--data", "images_not_image", "--out", "o.onnx", message=r"image '.*notes.png' cannot be read"),
+    case("images-empty-class", "capture", "belt.onnx", "--data", "images_empty_class", "--out", "c.npz", message=r"class subfolder '.*class3' holds no images"),
+    case("images-decompression-bomb", "capture", "belt.onnx", "--data", "images_bomb", "--out", "c.npz", message=r"image '.*huge.png' claims 1600000000 pixels, more than Pillow's limit"),
+    # ---- captures
+    case("truncated-capture", "fit", "truncated_cap.npz", message=r"'truncated_cap.npz' is not an onnxcal capture file .*not an .npz archive"),
+    case("data-file-as-capture", "fit", "val.npz", message=r"'val.npz' is not an onnxcal capture file"),
+    case("shards-of-different-models", "fit", "shard1.npz", "other_cap.npz", message=r"were captured from different models"),
+    case("overlapping-shards", "fit", "shard1.npz", "cap.npz", message=r"both hold row 0 of"),
+    # ---- fit files
+    case("fit-negative-temperature", "patch", "model.onnx", "--fit", "fit_negative_t.json", "--out", "p.onnx", message=r"temperature -1.5 is not a positive finite number"),
+    case("fit-non-numeric-temperature", "report", "cap.npz", "--out", "rep", "--fit", "fit_text_t.json", message=r"'warm' is not a number"),
+    case("fit-not-json", "patch", "model.onnx", "--fit", "fit_not_json.json", "--out", "p.onnx", message=r"'fit_not_json.json' is not an onnxcal fit file"),
+    case("report-dir-is-a-file", "calibrate", "model.onnx", *NPZ, "--out", "o.onnx", "--report", "fit_deep.json", message=r"--report 'fit_deep.json' is a file"),
+    case("fit-json-nested-too-deep", "patch", "model.onnx", "--fit", "fit_deep.json", "--out", "p.onnx", message=r"'fit_deep.json' is not an onnxcal fit file"),
+    # ---- patched models whose record disagrees with their graph
+    # verify reports such a model as a failed check (exit 1, issue 6); the commands that
+    # build on the record (patch re-patches by undoing it, report takes its parameters)
+    # cannot work from a record that misdescribes the graph, so for them it is bad input.
+    case("record-lost-node-repatch", "patch", "record_lost_node.onnx", *T2, "--out", "p.onnx", message=r"calibration record of 'record_lost_node.onnx' does not match its graph: node 'onnxcal_div' .* is missing"),
+    case("record-lost-node-report", "report", "cap.npz", "--out", "rep", "--model", "record_lost_node.onnx", message=r"does not match its graph"),
+    case("record-wrong-t-report", "report", "cap.npz", "--out", "rep", "--model", "record_wrong_t.onnx", message=r"calibration record of 'record_wrong_t.onnx' does not match the parameters in its graph \(record T = [\d.]+, graph T = [\d.]+"),
+    case("record-garbled", "patch", "record_garbled.onnx", *T2, "--out", "p.onnx", message=r"calibration record .* is damaged"),
+    # ---- outputs
+    case("out-equals-input", "patch", "model.onnx", *T2, "--out", "model.onnx", "--force", message=r"--out 'model.onnx' is the input file 'model.onnx'"),
+    case("out-other-spelling", "patch", "model.onnx", *T2, "--out", "sub/../model.onnx", "--force", message=r"is the input file 'model.onnx'"),
+    case("out-absolute-spelling", "fit", "cap.npz", "--out", "{corpus}/cap.npz", "--force", message=r"is the input file 'cap.npz'"),
+    case("out-through-symlink", "capture", "model.onnx", "--data", "val_link.npz", "--out", "val.npz", "--force", message=r"is the input file 'val_link.npz'"),
+    case("out-is-fit-file", "patch", "model.onnx", "--fit", "fit.json", "--out", "fit.json", "--force", message=r"is the input file 'fit.json'"),
+    case("out-is-input-external-data", "patch", "ext_good/model.onnx", *T2, "--out", "ext_good/model.onnx.data", "--force", message=r"is the input file '.*model.onnx.data'"),
+    case("out-data-is-input-external-data", "patch", "ext_named/model.onnx", *T2, "--out", "ext_named/shared.onnx", "--force", message=r"--out's data file 'ext_named/shared.onnx.data' is the input file"),
+    case("junit-is-input", "verify", "patched.onnx", *NPZ, "--junit", "patched.onnx", "--force", message=r"--junit 'patched.onnx' is the input file"),
+    case("out-inside-image-folder", "capture", "belt.onnx", "--data", "images", "--out", "images/class0/c.npz", message=r"--out 'images/class0/c.npz' is inside the input folder 'images'"),
+    case("report-inside-image-folder", "calibrate", "belt.onnx", "--data", "images", "--out", "o.onnx", "--report", "images", message=r"--report 'images' is inside the input folder 'images'"),
+    case("existing-out", "fit", "cap.npz", "--out", "existing.json", message=r"--out 'existing.json' already exists; pass --force"),
+    case("existing-junit", "verify", "patched.onnx", *NPZ, "--junit", "existing.json", message=r"--junit 'existing.json' already exists"),
+    case("existing-report-file", "report", "cap.npz", "--out", "old_report", *T2, message=r"'old_report/report.html' already exists"),
+    case("existing-calibrate-report", "calibrate", "model.onnx", *NPZ, "--out", "o.onnx", "--report", "old_report", message=r"'old_report/report.html' already exists"),
+    case("existing-external-data-out", "calibrate", "ext_good/model.onnx", *NPZ, "--out", "ext_out.onnx", message=r"'ext_out.onnx.data' already exists"),
+    case("output-dir-missing", "capture", "model.onnx", *NPZ, "--out", "nowhere/c.npz", message=r"output directory 'nowhere' for --out does not exist"),
+    case("unwritable-dir-capture", "capture", "model.onnx", *NPZ, "--out", "readonly/c.npz", setup=unwritable_readonly, message=r"cannot write to directory 'readonly' \(--out\)"),
+    case("unwritable-dir-report", "report", "cap.npz", "--out", "readonly/rep", *T2, setup=unwritable_readonly, message=r"cannot write to directory 'readonly' \(--out\)"),
+    case("eacces-on-write", "patch", "model.onnx", *T2, "--out", "readonly/p.onnx", setup=eacces_on_create, message=r"cannot write 'readonly/p.onnx': Permission denied"),
+]
+
+
+@pytest.mark.parametrize("c", CASES, ids=[c.id for c in CASES])
+def test_bad_input(corpus, run_cli, monkeypatch, c):
+    monkeypatch.chdir(corpus)
+    if c.setup is not None:
+        c.setup(monkeypatch, corpus)
+    before = snapshot(corpus)
+    r = run_cli(*c.argv(corpus))
+    lines = [line for line in r.err.splitlines() if line.strip()]
+    assert r.code == 2, r.err
+    assert "Traceback" not in r.err and "internal error" not in r.err, r.err
+    assert len(lines) == 1 and lines[0].startswith("onnxcal: error: "), r.err
+    assert re.search(c.message, lines[0]), lines[0]
+    assert snapshot(corpus) == before  # nothing created, nothing changed
+
+
+def test_the_corpus_covers_every_command_and_forty_cases():
+    commands = {c.args[0] for c in CASES}
+    assert commands == {"inspect", "capture", "fit", "patch", "verify", "report", "calibrate"}
+    assert len(CASES) >= 40 and len({c.id for c in CASES}) == len(CASES)
+
+
+# --------------------------------------------------------------------------
+# The real process: exit status and stderr
+
+
+def _console() -> list[str]:
+    exe = Path(sys.executable).with_name("onnxcal")
+    return [str(exe)] if exe.exists() else [sys.executable, "-m", "onnxcal"]
+
+
+@pytest.mark.parametrize(
+    "args, message",
+    [
+        (["inspect", "truncated.onnx"], "is not a readable ONNX model"),
+        (["capture", "model.onnx", "--data", "pickled.npz", "--out", "c.npz"], "holds Python objects"),
+    ],
+    ids=["truncated-onnx", "pickled-npz"],
+)
+def test_console_script_exit_status_and_stderr(corpus, args, message):
+    before = snapshot(corpus)
+    r = subprocess.run(_console() + args, cwd=corpus, capture_output=True, text=True, timeout=120)
+    assert r.returncode == 2 and r.stdout == ""
+    assert r.stderr.count("\n") == 1 and r.stderr.startswith("onnxcal: error: ") and message in r.stderr
+    assert snapshot(corpus) == before
+
+
+@pytest.mark.parametrize("c", [c for c in CASES if c.id in ("truncated-onnx", "npz-pickled-objects", "images-corrupt")],
+                         ids=lambda c: c.id)
+def test_debug_keeps_the_original_error(corpus, run_cli, monkeypatch, c):
+    """--debug shows the library's own exception (chained under onnxcal's) and still ends with the one line."""
+    monkeypatch.chdir(corpus)
+    r = run_cli("--debug", *c.argv(corpus))
+    assert r.code == 2
+    assert "Traceback" in r.err and "The above exception was the direct cause" in r.err
+    assert r.err.rstrip().splitlines()[-1].startswith("onnxcal: error: ")
+
+
+def test_unprivileged_user_meets_a_real_permission_error():
+    """The kernel's own EACCES, without simulation: run as 'nobody' when we are root."""
+    work = Path(tempfile.mkdtemp(prefix="onnxcal-eacces-"))
+    try:
+        work.chmod(0o755)
+        shutil.copyfile(Path(make_corpus.BELT_MODEL), work / "model.onnx")
+        (work / "locked").mkdir()
+        (work / "locked").chmod(0o555)
+        cmd = _console() + ["patch", "model.onnx", "--temperature", "2", "--out", "locked/p.onnx"]
+        if os.geteuid() == 0:
+            if shutil.which("setpriv") is None:
+                pytest.skip("running as root without setpriv: cannot drop privileges for a real EACCES")
+            cmd = ["setpriv", "--reuid=65534", "--regid=65534", "--clear-groups", "--"] + cmd
+        r = subprocess.run(cmd, cwd=work, capture_output=True, text=True, timeout=120)
+        assert r.returncode == 2, r.stderr
+        assert r.stderr.startswith("onnxcal: error: cannot write to directory 'locked' (--out)"), r.stderr
+        assert "Traceback" not in r.stderr and os.listdir(work / "locked") == []
+    finally:
+        (work / "locked").chmod(0o755)
+        shutil.rmtree(work)
