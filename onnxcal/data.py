@@ -551,21 +551,30 @@ def _same_lengths(arrays: Mapping[str, np.ndarray], labels: np.ndarray | None, s
 
 
 def read_npy(path: str | os.PathLike, what: str) -> np.ndarray:
-    """Open one ``.npy`` with ``mmap_mode='r'`` (never unpickling)."""
+    """Open one ``.npy`` with ``mmap_mode='r'`` (never unpickling).
+
+    The header is read first: an array of Python objects is refused from
+    its dtype alone, before numpy is asked to load anything.
+    """
     p = require_file(path, what)
+    hint = "save it with numpy.save"
+    try:
+        with open(p, "rb") as fh:
+            header = _member_header(fh)
+    except OSError as exc:
+        raise OnnxcalError(f"cannot read {what} '{p}': {exc.strerror or exc}", "check that the file is readable") from exc
+    if header is None:
+        if zipfile.is_zipfile(p):  # an .npz given where an .npy was expected
+            raise OnnxcalError(f"{what} '{p}' is not an .npy file", "give one array saved with numpy.save")
+        raise OnnxcalError(f"{what} '{p}' is not a readable .npy file (no .npy header)", hint)
+    if header[2].hasobject:
+        raise OnnxcalError(
+            f"{what} '{p}' holds Python objects, which onnxcal will not unpickle", "save it as a numeric array"
+        )
     try:
         arr = np.load(p, mmap_mode="r", allow_pickle=False)
-    except ValueError as exc:
-        if "allow_pickle" in str(exc) or "Object arrays" in str(exc):
-            raise OnnxcalError(
-                f"{what} '{p}' holds Python objects, which onnxcal will not unpickle",
-                "save it as a numeric array",
-            ) from exc
-        raise OnnxcalError(f"{what} '{p}' is not a readable .npy file ({exc})", "save it with numpy.save") from exc
-    except (OSError, EOFError) as exc:
-        raise OnnxcalError(f"{what} '{p}' is not a readable .npy file ({exc})", "save it with numpy.save") from exc
-    if not isinstance(arr, np.ndarray):  # an .npz given where an .npy was expected
-        raise OnnxcalError(f"{what} '{p}' is not an .npy file", "give one array saved with numpy.save")
+    except (ValueError, OSError, EOFError) as exc:
+        raise OnnxcalError(f"{what} '{p}' is not a readable .npy file ({first_line(exc)})", hint) from exc
     return arr
 
 

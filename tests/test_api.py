@@ -31,6 +31,7 @@ from conftest import (
 )
 from onnxcal import api, graph
 from onnxcal.data import DataSpec, Selection
+from onnxcal.errors import OnnxcalError
 from onnxcal.fit import FitOptions
 from onnxcal.metrics import evaluate
 
@@ -276,3 +277,30 @@ def test_notebook_style_example_runs(tmp_path):
     for name in ("scores.npz", "fit.json", "calibrated.onnx", "verify.xml", "report/report.html",
                  "report/summary.md", "report_again/report.json", "calibrated_again.onnx"):
         assert (out / name).is_file(), name
+
+
+def test_dropping_nonfinite_rows_fits_as_the_finite_rows_alone(tmp_path):
+    # The demo with NaN in 30 rows' inputs (the model then gives NaN logits there): with
+    # --drop-nonfinite, fit and calibrate give the fit of the capture of the other rows.
+    val = np.load(DEMO_VAL)
+    x, y = val["band_energies"].copy(), val["labels"]
+    bad = np.arange(7, 2000, 67)
+    x[bad, 3] = np.nan
+    np.savez(tmp_path / "nan.npz", band_energies=x, labels=y)
+    keep = np.setdiff1d(np.arange(len(y)), bad)
+    np.savez(tmp_path / "clean.npz", band_energies=x[keep], labels=y[keep])
+    options = FitOptions(bootstrap=0)
+    with pytest.warns(Warning):  # the inputs and the logits of those rows are reported
+        api.capture(DEMO_MODEL, tmp_path / "nan.npz", out=tmp_path / "nan_cap.npz")
+    with pytest.raises(OnnxcalError, match=r"NaN or Inf in 30 of 2000 rows \(first rows: 7, 74, 141, 208, 275\)"):
+        api.fit(tmp_path / "nan_cap.npz", options=options)
+    dropped = api.fit(tmp_path / "nan_cap.npz", options=options, drop_nonfinite=True)
+    clean = api.fit(api.capture(DEMO_MODEL, tmp_path / "clean.npz"), options=options)
+    assert dropped.temperature == pytest.approx(clean.temperature, rel=1e-12)
+    assert dropped.after == clean.after
+    assert any(n.startswith("dropped 30 rows: ") for n in dropped.notes)
+    with pytest.warns(Warning, match="input 'band_energies'"):
+        result = api.calibrate(DEMO_MODEL, tmp_path / "nan.npz", tmp_path / "c.onnx", options=options,
+                               drop_nonfinite=True)
+    assert result.patch is not None and result.verification.passed
+    assert result.summary.temperature == pytest.approx(clean.temperature, rel=1e-12)
