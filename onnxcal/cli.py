@@ -876,9 +876,14 @@ def main(argv: Sequence[str] | None = None) -> int:
             traceback.print_exc()
         err.print(f"onnxcal: error: {_one_line(exc)}", soft_wrap=True)
         return exc.exit_code
-    except typer.TyperException as exc:  # bad usage: the parser's own message
-        show = getattr(exc, "show", None)
-        show() if show else err.print(f"onnxcal: error: {_one_line(exc)}")
+    except typer.TyperException as exc:  # bad usage: the parser's message, on one line too
+        if type(exc).__name__ == "NoArgsIsHelpError":  # 'onnxcal' alone: the help
+            exc.show()
+            return 2
+        ctx = getattr(exc, "ctx", None)
+        message = exc.format_message() if hasattr(exc, "format_message") else str(exc)
+        see = f"; see '{ctx.command_path} --help'" if ctx is not None else ""
+        err.print(f"onnxcal: error: {_one_line(message).rstrip('.')}{see}", soft_wrap=True)
         return 2
     except (KeyboardInterrupt, typer.Abort):
         err.print("onnxcal: interrupted; no output was written")

@@ -116,6 +116,10 @@ NPZ = ("--data", "val.npz")
 T2 = ("--temperature", "2")
 
 CASES = [
+    # ---- the command line itself
+    case("option-not-a-number", "fit", "cap.npz", "--bins", "many", message=r"Invalid value for '--bins'.*; see 'onnxcal fit --help'"),
+    case("missing-option", "patch", "model.onnx", *T2, message=r"Missing option '--out'; see 'onnxcal patch --help'"),
+    case("unknown-option", "verify", "patched.onnx", *NPZ, "--max-ec", "0.1", message=r"No such option: --max-ec"),
     # ---- ONNX files that are not (usable) models
     case("truncated-onnx", "inspect", "truncated.onnx", message=r"'truncated.onnx' is not a readable ONNX model"),
     case("zero-byte-onnx", "capture", "empty.onnx", *NPZ, "--out", "c.npz", message=r"'empty.onnx' is empty \(0 bytes\)"),
