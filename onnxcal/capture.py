@@ -468,23 +468,85 @@ def _disagreement(
     return None
 
 
+def _surely_finite(a: np.ndarray) -> bool:
+    """True when ``a`` (contiguous, float) holds no NaN or Inf; False when it may.
+
+    One dot product of ``a`` with itself is the fast test: NaN and Inf carry
+    through it (IEEE 754), and a BLAS dot costs a fraction of a pass of
+    ``isfinite``. A False may also be an overflow of the sum of squares,
+    which the caller's exact test then sorts out. float16 and other narrow
+    types, which a dot would overflow, get the exact test at once.
+    """
+    if a.dtype not in (np.float32, np.float64):
+        return bool(np.isfinite(a).all())
+    flat = a.reshape(-1)
+    with np.errstate(over="ignore", invalid="ignore"):
+        return bool(np.isfinite(np.dot(flat, flat)))
+
+
+class InputWatch:
+    """Counts the rows of float inputs holding NaN or Inf as batches go by.
+
+    Small batches are tested together, about 1 MiB at a time, so a tiny
+    model pays one dot product per MiB of inputs rather than one per batch;
+    only a block that may hold NaN or Inf is searched row by row. ``found``
+    maps input names to their :class:`Nonfinite` rows; call :meth:`flush`
+    after the last batch.
+    """
+
+    FLUSH_BYTES = 1 << 20
+
+    def __init__(self, dataset: Dataset) -> None:
+        self.dataset = dataset
+        self.found: dict[str, Nonfinite] = {}
+        self._floats: list[str] | None = None  # the float inputs, from the first batch
+        self._pending: list[list[np.ndarray]] = []  # per batch, the float inputs in ``_floats`` order
+        self._first = 0
+        self._stop = 0
+        self._bytes = 0
+
+    def add(self, feed: Mapping[str, np.ndarray], start: int, stop: int) -> None:
+        """Take the inputs of selected rows ``start..stop-1`` (batches in order)."""
+        if self._floats is None:
+            self._floats = [k for k, v in feed.items() if v.dtype.kind == "f"]
+        if not self._floats:
+            return
+        if not self._pending:
+            self._first = start
+        arrays = [feed[k] for k in self._floats]
+        self._pending.append(arrays)
+        self._stop = stop
+        self._bytes += sum(a.nbytes for a in arrays)
+        if self._bytes >= self.FLUSH_BYTES:
+            self.flush()
+
+    def flush(self) -> None:
+        """Test what is pending."""
+        if not self._pending:
+            return
+        for i, name in enumerate(self._floats):
+            parts = [arrays[i] for arrays in self._pending]
+            block = parts[0] if len(parts) == 1 else np.concatenate(parts)
+            if not block.size or _surely_finite(block):
+                continue
+            bad = ~np.isfinite(block.reshape(len(block), -1)).all(axis=1)
+            if bad.any():
+                rows = self.dataset.row_numbers()[self._first : self._stop]
+                self.found.setdefault(name, Nonfinite()).add(bad, rows)
+        self._pending, self._bytes = [], 0
+
+
 def run_batch(
-    plan: RunPlan, dataset: Dataset, start: int, stop: int, watch: dict[str, Nonfinite] | None = None
+    plan: RunPlan, dataset: Dataset, start: int, stop: int, watch: InputWatch | None = None
 ) -> list[np.ndarray]:
     """Run selected rows ``start..stop-1``; one array per name, samples on axis 0.
 
-    With ``watch``, rows of float inputs holding NaN or Inf are counted in
-    it, by input name.
+    With ``watch``, the inputs' rows holding NaN or Inf are counted in it.
     """
     feed = dataset.batch(start, stop, plan.dtypes)
     count = stop - start
     if watch is not None:
-        rows = dataset.row_numbers()[start:stop]
-        for name, arr in feed.items():
-            if arr.dtype.kind == "f" and arr.ndim:
-                bad = ~np.isfinite(arr.reshape(count, -1)).all(axis=1)
-                if bad.any():
-                    watch.setdefault(name, Nonfinite()).add(bad, rows)
+        watch.add(feed, start, stop)
     if plan.pad is not None and count < plan.pad:  # pad a short batch of a fixed-batch model
         feed = {k: np.concatenate([v, np.repeat(v[-1:], plan.pad - count, axis=0)]) for k, v in feed.items()}
     try:
@@ -505,11 +567,11 @@ def run_batches(
     *,
     progress: ProgressFn | None = None,
     description: str = "running model",
-    watch: dict[str, Nonfinite] | None = None,
+    watch: InputWatch | None = None,
 ) -> Iterator[tuple[int, int, list[np.ndarray]]]:
     """Yield ``(start, stop, outputs)`` batch by batch over the selected rows.
 
-    ``watch`` counts inputs' rows holding NaN or Inf (see :func:`run_batch`).
+    ``watch`` counts the inputs' rows holding NaN or Inf (flushed after the last batch).
 
     After each batch has been consumed ``progress`` is called; the input
     pages of consumed rows are released (:meth:`Dataset.release`) whenever
@@ -527,6 +589,8 @@ def run_batches(
             released = stop
         if progress is not None:
             progress(description, stop, n)
+    if watch is not None:
+        watch.flush()
 
 
 def run_model(
@@ -677,12 +741,12 @@ def _fill_scores(
     inputs whose rows held NaN or Inf."""
     exposed, name = expose_scores(model, site)
     plan = plan_run(exposed, dataset, [name], options)
-    watch: dict[str, Nonfinite] = {}
+    watch = InputWatch(dataset)
     batches = run_batches(plan, dataset, progress=progress, description="capturing logits", watch=watch)
     for start, stop, (scores,) in batches:
         rows = as_rows(scores, site.class_axis)
         sink.add(log_probabilities(rows) if site.from_probabilities else rows, stop - start)
-    return plan.mode, watch
+    return plan.mode, watch.found
 
 
 def log_probabilities(p: np.ndarray) -> np.ndarray:
@@ -868,12 +932,17 @@ def label_rows(labels: np.ndarray, shape: tuple[int, int], kind: str, source: st
 
 
 def nonfinite_rows(logits: np.ndarray, chunk: int = 1 << 16) -> np.ndarray:
-    """Indices of rows holding NaN or Inf (read in chunks: ``logits`` may be a memory map)."""
-    parts = [
-        start + np.flatnonzero(~np.isfinite(logits[start : start + chunk]).all(axis=1))
-        for start in range(0, len(logits), chunk)
-    ]
-    return np.concatenate(parts) if parts else np.zeros(0, np.int64)
+    """Indices of rows holding NaN or Inf (read in chunks: ``logits`` may be a memory map).
+
+    A chunk that is surely finite (one dot product, see ``_surely_finite``)
+    is skipped; only the others are searched row by row.
+    """
+    parts = [np.zeros(0, np.int64)]
+    for start in range(0, len(logits), chunk):
+        block = np.ascontiguousarray(logits[start : start + chunk])
+        if block.size and not _surely_finite(block):
+            parts.append(start + np.flatnonzero(~np.isfinite(block).all(axis=1)))
+    return np.concatenate(parts)
 
 
 def _rows_per_sample(cap: Capture) -> int:

@@ -465,3 +465,22 @@ def test_dropping_nonfinite_drops_whole_samples(tmp_path):
     assert (found.count, found.first) == (1, [7])  # the set's row number of that sample
     kept = without_nonfinite(cap)
     assert kept.logits.shape == (8, 2) and kept.indices.tolist() == [3, 5] and kept.meta.n == 8
+
+
+@pytest.mark.parametrize("flush_bytes", [1, 200, 1 << 20])
+def test_input_watch_finds_the_same_rows_however_it_groups_batches(rng, monkeypatch, flush_bytes):
+    from onnxcal.capture import InputWatch
+
+    x = rng.normal(size=(100, 5)).astype(np.float32)
+    bad = [3, 4, 17, 58, 99]
+    x[bad, rng.integers(0, 5, len(bad))] = [np.nan, np.inf, -np.inf, np.nan, np.nan]
+    x[60, 0] = 3e38  # finite, but its square overflows the dot product: the exact test decides
+    ds = Dataset(inputs={"x": x, "ids": np.arange(100)}, labels=None, source="s", rows=np.arange(0, 100, 1))
+    monkeypatch.setattr(InputWatch, "FLUSH_BYTES", flush_bytes)
+    watch = InputWatch(ds)
+    for start in range(0, 100, 7):
+        stop = min(start + 7, 100)
+        watch.add(ds.batch(start, stop, {"x": "float32", "ids": "int64"}), start, stop)
+    watch.flush()
+    assert list(watch.found) == ["x"]  # integer inputs are not searched
+    assert watch.found["x"].count == 5 and watch.found["x"].first == bad
