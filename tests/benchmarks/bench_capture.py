@@ -8,6 +8,10 @@
               (target: >= 5x faster)
   rss         peak resident memory of capturing a .npy set larger than 4 GB
               (target: <= model + 2 batches + logits + 200 MB)
+  revisions   this tree's capture against another revision's (--baseline DIR,
+              a directory holding that revision's onnxcal/ package, e.g.
+              git archive main onnxcal | tar -x -C /tmp/base), alternating:
+              what a change costs in capture throughput
 
 Run from the repository root, e.g.
 
@@ -183,6 +187,33 @@ def bench_throughput(work: Path, args) -> None:
         shutil.rmtree(d)
 
 
+def bench_revisions(work: Path, args) -> None:
+    """This tree's api.capture against the baseline's, same data and model, alternating order."""
+    global ROOT
+    here = ROOT
+    cases = [("mlp 256-512-512-10", [256, 512, 512, 10], args.n), ("demo-size mlp 16-48-5", [16, 48, 5], 10 * args.n)]
+    for name, widths, n in cases:
+        d = Path(tempfile.mkdtemp(dir=work))
+        (d / "m.onnx").write_bytes(mlp(widths).SerializeToString())
+        write_set(d, n, widths[0], widths[-1])
+        kw = dict(model=d / "m.onnx", x=d / "x.npy", labels=d / "labels.npy", batch=args.batch, threads=args.threads)
+        whole, steady = [], []
+        print(f"revisions, {name}, n={n}, batch {args.batch}, threads {args.threads}: this tree / baseline")
+        for r in range(args.rounds):
+            got = {}
+            for which in (("baseline", "this") if r % 2 == 0 else ("this", "baseline")):
+                ROOT = args.baseline if which == "baseline" else here
+                got[which] = run(ONNXCAL, out=d / "cap.npz", **kw)
+            ROOT = here
+            whole.append(got["baseline"]["seconds"] / got["this"]["seconds"])
+            steady.append(got["this"]["steady"] / got["baseline"]["steady"])
+            print(f"  round {r + 1}: baseline {got['baseline']['seconds']:.3f} s, this {got['this']['seconds']:.3f} s, "
+                  f"throughput ratio end to end {whole[-1]:.3f}, after the first batch {steady[-1]:.3f}")
+        print(f"  median throughput ratio this / baseline: end to end {np.median(whole):.3f}, "
+              f"after the first batch {np.median(steady):.3f}")
+        shutil.rmtree(d)
+
+
 def bench_batch1(work: Path, args) -> None:
     for name, widths in (("mlp 256-512-512-10", [256, 512, 512, 10]), ("demo-size mlp 16-48-5", [16, 48, 5])):
         d = Path(tempfile.mkdtemp(dir=work))
@@ -238,7 +269,8 @@ def bench_rss(work: Path, args) -> None:
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    parser.add_argument("which", choices=["throughput", "batch1", "rss", "all"])
+    parser.add_argument("which", choices=["throughput", "batch1", "rss", "revisions", "all"])
+    parser.add_argument("--baseline", type=Path, help="for revisions: a directory with another onnxcal/ package")
     parser.add_argument("--rounds", type=int, default=5)
     parser.add_argument("--batch", type=int, default=64)
     parser.add_argument("--threads", type=int, default=1)
@@ -252,6 +284,10 @@ def main() -> None:
         for which in ("throughput", "batch1", "rss"):
             if args.which in (which, "all"):
                 {"throughput": bench_throughput, "batch1": bench_batch1, "rss": bench_rss}[which](work, args)
+        if args.which == "revisions":
+            if args.baseline is None or not (args.baseline / "onnxcal" / "__init__.py").is_file():
+                raise SystemExit("revisions needs --baseline DIR with DIR/onnxcal/__init__.py")
+            bench_revisions(work, args)
     finally:
         shutil.rmtree(work, ignore_errors=True)
 
