@@ -570,8 +570,8 @@ def _latency(base, patched, dataset: Dataset, run: RunOptions, runs: int, max_ra
     return _verify.latency_check(times[0], times[1], max_ratio, batch=size, against=against)
 
 
-def _threshold_checks(rows, activation, site, dataset: Dataset, cap: Capture | None, n_bins, limits) -> tuple:
-    """Check (4): metrics of the patched model's own outputs against the labels."""
+def _threshold_checks(rows, activation, site, dataset: Dataset, cap: Capture | None, n_bins, limits, keep=None) -> tuple:
+    """Check (4): metrics of the patched model's own outputs against the labels (the rows ``keep`` only)."""
     if activation is None:  # raw logits (a model without a record)
         logits, kind = rows, graph.fit_kind(site)
     else:
@@ -585,7 +585,30 @@ def _threshold_checks(rows, activation, site, dataset: Dataset, cap: Capture | N
                 f"the labels of --scores hold {len(labels)} rows but the patched model gives {len(rows)} rows",
                 "capture the original model on the same data file",
             )
+    if keep is not None:
+        logits, labels = logits[keep], labels[keep]
     return _verify.threshold_checks(evaluate(logits, labels, 1.0, n_bins), **limits)
+
+
+def _finite_outputs(rows: np.ndarray, reference, dataset: Dataset, drop: bool) -> tuple[np.ndarray | None, str | None]:
+    """The rows where the patched outputs (and the reference logits) are finite; None when all are.
+
+    Refused, with the count and first rows of the set, unless ``drop``; then a note says how many.
+    """
+    bad = ~np.isfinite(rows).all(axis=1)
+    if reference is not None:
+        bad |= ~np.isfinite(reference).all(axis=1)
+    if not bad.any():
+        return None, None
+    found = _capture.Nonfinite()
+    found.add(bad, np.repeat(dataset.row_numbers(), max(1, len(rows) // dataset.n)))
+    what = (
+        f"the patched model's outputs{'' if reference is None else ' or the reference logits'} on "
+        f"'{dataset.source}' hold NaN or Inf in {found.describe(len(rows))}"
+    )
+    if not drop:
+        raise OnnxcalError(what, "check those rows of the data, or pass --drop-nonfinite to leave them out")
+    return ~bad, f"dropped {int(bad.sum())} rows: {what}"
 
 
 def verify(
@@ -609,6 +632,7 @@ def verify(
     provider: str = _capture.CPU,
     progress: ProgressFn | None = None,
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
+    drop_nonfinite: bool = False,
 ) -> VerifyResult:
     """Check a patched model for CI: reference, decisions, record, thresholds, latency.
 
@@ -654,6 +678,10 @@ def verify(
         As for :func:`capture` (the latency runs use them too).
     max_model_bytes : int or str, default 8 GiB
         Larger model files (with external data) are refused unread.
+    drop_nonfinite : bool
+        Leave out the rows where the patched outputs or the reference
+        logits hold NaN or Inf (a note says how many); by default they are
+        refused.
 
     Returns
     -------
@@ -708,6 +736,7 @@ def verify(
         rows = _run_output(patched, site, dataset, run, progress)
         note = f"'{patched_path}' carries no onnxcal calibration record, so there is no reference to compare with"
         ref = _Reference(None, "none", str(original or ""), None, None, (note,))
+        keep, dropped = _finite_outputs(rows, None, dataset, drop_nonfinite)
         activation, checks = site.activation, _unrecorded_checks(site)
     else:
         site = graph.find_scores(patched, record.output)
@@ -720,9 +749,13 @@ def verify(
                 "capture the original model on the same data file",
             )
         activation = record.activation
-        checks = _reference_checks(rows, site, record, ref.logits, patched, ref.original_model, ref.source_sha)
+        keep, dropped = _finite_outputs(rows, ref.logits, dataset, drop_nonfinite)
+        kept = (rows, ref.logits) if keep is None else (rows[keep], ref.logits[keep])
+        checks = _reference_checks(kept[0], site, record, kept[1], patched, ref.original_model, ref.source_sha)
+    if dropped is not None:
+        ref = replace(ref, notes=(*ref.notes, dropped))
     if thresholds:
-        checks += _threshold_checks(rows, activation, site, dataset, cap, n_bins, limits)
+        checks += _threshold_checks(rows, activation, site, dataset, cap, n_bins, limits, keep)
     if latency:
         against = "original" if original is not None else "uncalibrated copy"
         if ref.original_model is not None:

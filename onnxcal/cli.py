@@ -311,6 +311,9 @@ def _progress(quiet: bool) -> Iterator[ProgressFn | None]:
 
     try:
         yield update
+    except BaseException:
+        bar.live.transient = True  # a failure: its one line, without the bars above it
+        raise
     finally:
         if tasks:
             bar.stop()
@@ -658,6 +661,7 @@ def verify(
     junit: Annotated[
         Optional[Path], typer.Option("--junit", help="Also write the checks as JUnit XML to this file.")
     ] = None,
+    drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
     as_json: JsonOpt = False,
     quiet: QuietOpt = False,
@@ -694,6 +698,7 @@ def verify(
             force=force,
             progress=progress,
             max_model_bytes=max_model_bytes,
+            drop_nonfinite=drop_nonfinite,
             **runtime,
         )
     _print_json(result.to_dict()) if as_json else _render_verify(result)

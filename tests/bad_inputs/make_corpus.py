@@ -83,6 +83,7 @@ def good_files(d: Path, rng: np.random.Generator) -> None:
         api.capture(d / "model.onnx", spec, out=d / f"shard{i}.npz")
     api.fit(d / "cap.npz", out=d / "fit.json", options=FitOptions(bootstrap=0))
     api.patch(d / "model.onnx", d / "patched.onnx", fit=d / "fit.json")
+    api.patch(d / "identity3.onnx", d / "patched3.onnx", temperature=2.0)  # scores = x: NaN in, NaN out
     (d / "existing.json").write_text('{"keep": "me"}\n')
     os.symlink("val.npz", d / "val_link.npz")  # another name of the data file
     (d / "sub").mkdir()

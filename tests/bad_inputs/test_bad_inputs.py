@@ -154,6 +154,7 @@ CASES = [
     case("length-mismatch", "capture", "model.onnx", "--data", "length_mismatch.npz", "--out", "c.npz", message=r"different numbers of samples \(x: 40, labels: 39\)"),
     case("nan-inf-rows-calibrate", "calibrate", "identity3.onnx", "--data", "nonfinite.npz", "--out", "o.onnx", "-q", message=r"NaN or Inf in 4 of 40 rows \(first rows: 2, 5, 7, 11\).*--drop-nonfinite"),
     case("nan-inf-rows-fit", "fit", "nonfinite_cap.npz", "--out", "f.json", message=r"NaN or Inf in 4 of 40 rows \(first rows: 2, 5, 7, 11\).*--drop-nonfinite"),
+    case("nan-inf-rows-verify", "verify", "patched3.onnx", "--data", "nonfinite.npz", "--max-ece", "0.5", message=r"outputs or the reference logits on 'nonfinite.npz' hold NaN or Inf in 4 of 40 rows \(first rows: 2, 5, 7, 11\).*--drop-nonfinite"),
     case("nan-inf-rows-report", "report", "nonfinite_cap.npz", "--out", "rep", *T2, message=r"NaN or Inf in 4 of 40 rows \(first rows: 2, 5, 7, 11\)"),
     case("csv-non-numeric-cell", "capture", "model.onnx", "--data", "non_numeric.csv", "--out", "c.npz", message=r"line 4, column 'f2' .* holds 'n/a', not a number"),
     case("npz-compressed-bomb", "capture", "model.onnx", "--data", "bomb.npz", "--out", "c.npz", message=r"array 'x' in 'bomb.npz' \(compressed, shape \[1048576, 1048576\] float64\) needs 8 TiB, more than the .* of memory available"),
@@ -239,6 +240,8 @@ def test_the_fixes_the_errors_suggest_work(corpus, run_cli, monkeypatch):
     before = snapshot(corpus)
     r = run_cli("fit", "nonfinite_cap.npz", "--drop-nonfinite", "--bootstrap", "0")
     assert r.code == 0 and "note: dropped 4 rows: the logits in 'nonfinite_cap.npz' contain NaN or Inf" in r.out
+    r = run_cli("verify", "patched3.onnx", "--data", "nonfinite.npz", "--max-ece", "0.5", "--drop-nonfinite", "-q")
+    assert r.code == 0 and "note: dropped 4 rows" in r.out and "all checks passed" in r.out
     assert run_cli("inspect", "model.onnx", "--max-model-bytes", "1KiB").code == 0
     assert run_cli("capture", "huge_input.onnx", *NPZ, "--out", "c.npz", "--batch-size", "1").code == 2  # still 16 TiB
     assert snapshot(corpus) == before
