@@ -1018,10 +1018,10 @@ def load_capture(path: str | os.PathLike) -> Capture:
         arrays = read_npz(p, hint)
         logits, labels, meta_json = arrays["logits"], np.asarray(arrays["labels"]), str(arrays["meta"])
         meta = CaptureMeta.from_dict(json.loads(meta_json))
-    except (KeyError, ValueError, TypeError, AttributeError, RecursionError) as exc:
-        raise OnnxcalError(f"'{p}' is not an onnxcal capture file ({exc})", hint) from exc
     except OnnxcalError as exc:
         raise OnnxcalError(f"'{p}' is not an onnxcal capture file ({exc.message})", hint) from exc
+    except Exception as exc:  # missing arrays, a meta that is not the JSON onnxcal writes, ...
+        raise OnnxcalError(f"'{p}' is not an onnxcal capture file ({first_line(exc)})", hint) from exc
     if logits.ndim != 2 or logits.dtype.kind != "f":
         raise OnnxcalError(f"'{p}' holds logits of shape {logits.shape} ({logits.dtype})", hint)
     labels = label_rows(labels, logits.shape, meta.fit_as, str(p))

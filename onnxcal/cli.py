@@ -10,6 +10,7 @@ import contextlib
 import functools
 import inspect as _inspect
 import json
+import struct
 import sys
 import time
 import traceback
@@ -57,8 +58,42 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
     rich_markup_mode=None,
 )
-out = Console(highlight=False, markup=False)
-err = Console(stderr=True, highlight=False, markup=False)
+
+
+def printable(text: str) -> str:
+    r"""``text`` with every character a terminal would act on shown escaped.
+
+    Names and messages can come from a hostile file (a tensor named with an
+    ANSI escape sequence, a label holding a control character, a code point
+    numpy allows and Unicode does not); escaped, they cannot drive the
+    terminal, and they still show what the file holds.
+
+    >>> print(printable("logits\x1b[2J, été"))
+    logits\x1b[2J, été
+    """
+    if all(line.isprintable() for line in text.split("\n")):
+        return text
+    raw = text.encode("utf-32-le", "surrogatepass")  # code points, without making a str of each
+    kept = []
+    for o in struct.unpack(f"<{len(raw) // 4}I", raw):
+        c = chr(o) if o <= 0x10FFFF else ""
+        kept.append(c if c and (c == "\n" or c.isprintable()) else _escaped(o))
+    return "".join(kept)
+
+
+def _escaped(o: int) -> str:
+    return f"\\x{o:02x}" if o < 0x100 else f"\\u{o:04x}" if o < 0x10000 else f"\\U{o:08x}"
+
+
+class _Console(Console):
+    """A rich Console whose strings (printed, or in tables) pass through :func:`printable`."""
+
+    def render_str(self, text: str, **kwargs):
+        return super().render_str(printable(text), **kwargs)
+
+
+out = _Console(highlight=False, markup=False)
+err = _Console(stderr=True, highlight=False, markup=False)
 
 CAUTION = (
     "Calibration holds only for data like the validation set and drifts under "

@@ -418,7 +418,7 @@ def _member_header(fh) -> tuple[tuple[int, ...], bool, np.dtype] | None:
         if version not in reader:
             return None
         return reader[version](fh)
-    except ValueError:
+    except Exception:  # not a header numpy can parse (ValueError, tokenize's TokenError, EOF, ...)
         return None
 
 
@@ -457,28 +457,61 @@ def _npz_member(path: Path, info: zipfile.ZipInfo, key: str) -> np.ndarray | Non
     return np.memmap(path, dtype=dtype, mode="r", offset=offset, shape=shape, order="F" if fortran else "C")
 
 
-def _check_inflated_size(path: Path, zf: zipfile.ZipFile, info: zipfile.ZipInfo, key: str) -> None:
-    """Refuse a compressed member that would not fit in memory once read, from its header alone."""
-    try:
+def _checked_text(arr: np.ndarray, key: str, path: Path) -> np.ndarray:
+    """``arr``, refused when it is text holding code points that are not Unicode characters.
+
+    numpy stores text as raw 32-bit code points and turns any of them into
+    Python strings, also surrogates and values above U+10FFFF, which then
+    break string handling far from the file (even printing an error).
+    """
+    if arr.dtype.kind != "U" or not arr.size:
+        return arr
+    order = arr.dtype.byteorder if arr.dtype.byteorder in "<>" else "="
+    codes = np.ascontiguousarray(arr).view(f"{order}u4")
+    if ((codes > 0x10FFFF) | ((codes >= 0xD800) & (codes <= 0xDFFF))).any():
+        raise OnnxcalError(
+            f"array '{key}' in '{path}' holds text that is not valid Unicode (a damaged or forged file)",
+            "save the text again with numpy from Python strings",
+        )
+    return arr
+
+
+def _read_member(path: Path, npz, zf: zipfile.ZipFile, info: zipfile.ZipInfo | None, key: str) -> np.ndarray:
+    """One member of an ``.npz``: its header read first, then mapped in place or read whole.
+
+    Python objects are refused from the header's dtype, before numpy reads
+    anything; a compressed member is read whole only when its header's size
+    fits in the memory available.
+    """
+    header = None
+    if info is not None:
         with zf.open(info) as fh:
             header = _member_header(fh)
-    except (zipfile.BadZipFile, OSError, EOFError, ValueError, zlib.error):
-        return  # numpy's own read reports the damage
-    if header is None:
-        return
-    shape, _, dtype = header
-    check_memory(
-        int(np.prod(shape, dtype=np.float64)) * dtype.itemsize,
-        f"array '{key}' in '{path}' (compressed, shape {_show(shape)} {dtype})",
-        "save the data uncompressed (numpy.savez), which onnxcal reads without loading it whole",
-    )
+    if header is not None and header[2].hasobject:
+        raise OnnxcalError(
+            f"array '{key}' in '{path}' holds Python objects, which onnxcal will not unpickle",
+            "save it as a numeric array",
+        )
+    mapped = _npz_member(path, info, key) if info is not None else None
+    if mapped is not None:
+        return mapped
+    if header is not None:
+        shape, _, dtype = header
+        check_memory(
+            int(np.prod(shape, dtype=np.float64)) * dtype.itemsize,
+            f"array '{key}' in '{path}' (compressed, shape {_show(shape)} {dtype})",
+            "save the data uncompressed (numpy.savez), which onnxcal reads without loading it whole",
+        )
+    return npz[key]
 
 
 def read_npz(path: Path, hint: str) -> dict[str, np.ndarray]:
     """Every array of an ``.npz``; uncompressed members are memory maps.
 
     Compressed members are read whole, after checking from their header
-    that they fit in memory; no member is ever unpickled.
+    that they fit in memory; no member is ever unpickled. Whatever a damaged
+    archive makes zipfile, zlib or numpy raise is reported as one error
+    naming the file and the array.
     """
     if not zipfile.is_zipfile(path):
         raise OnnxcalError(f"'{path}' is not an .npz archive", hint)
@@ -486,28 +519,16 @@ def read_npz(path: Path, hint: str) -> dict[str, np.ndarray]:
         npz = np.load(path, allow_pickle=False)
         zf = zipfile.ZipFile(path)
         infos = {i.filename: i for i in zf.infolist()}
-    except (zipfile.BadZipFile, ValueError, OSError, EOFError) as exc:
+    except Exception as exc:  # a damaged archive: zipfile and numpy raise many kinds
         raise OnnxcalError(f"'{path}' is not a readable .npz file ({first_line(exc)})", hint) from exc
     arrays: dict[str, np.ndarray] = {}
     with npz, zf:
         for key in npz.files:
-            info = infos.get(key + ".npy")
-            mapped = _npz_member(path, info, key) if info is not None else None
-            if mapped is not None:
-                arrays[key] = mapped
-                continue
-            if info is not None:
-                _check_inflated_size(path, zf, info, key)
             try:
-                arrays[key] = npz[key]
-            except ValueError as exc:
-                if "allow_pickle" in str(exc) or "Object arrays" in str(exc):  # refused: needs pickle
-                    raise OnnxcalError(
-                        f"array '{key}' in '{path}' holds Python objects, which onnxcal will not unpickle",
-                        "save it as a numeric array",
-                    ) from exc
-                raise OnnxcalError(f"array '{key}' in '{path}' cannot be read ({first_line(exc)})", hint) from exc
-            except (zipfile.BadZipFile, OSError, EOFError, zlib.error) as exc:
+                arrays[key] = _checked_text(_read_member(path, npz, zf, infos.get(key + ".npy"), key), key, path)
+            except OnnxcalError:
+                raise
+            except Exception as exc:  # a damaged member: zip, zlib, the .npy header or its data
                 raise OnnxcalError(f"array '{key}' in '{path}' cannot be read ({first_line(exc)})", hint) from exc
     return arrays
 
@@ -1128,7 +1149,7 @@ class ImageArray:
 
     def _load(self, i: int) -> np.ndarray:
         """One image as uint8 (H, W, C), resized and cropped."""
-        from PIL import Image, UnidentifiedImageError
+        from PIL import Image
 
         name = self.files[i]
         o = self.plan.options
@@ -1161,7 +1182,9 @@ class ImageArray:
                 f"{Image.MAX_IMAGE_PIXELS} for safe decoding (a decompression bomb?)",
                 "remove the file, or resize the images before calibrating",
             ) from exc
-        except (OSError, UnidentifiedImageError, ValueError, SyntaxError) as exc:
+        except OnnxcalError:
+            raise
+        except Exception as exc:  # a damaged image: Pillow's decoders raise many kinds (OSError, struct.error, ...)
             raise OnnxcalError(
                 f"image '{self.root / name}' cannot be read ({first_line(exc)})", "fix or remove the file"
             ) from exc

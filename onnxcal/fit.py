@@ -41,7 +41,7 @@ import scipy.optimize
 
 from . import __version__, resample
 from ._files import atomic_write_bytes, require_file
-from .errors import OnnxcalError
+from .errors import OnnxcalError, first_line
 from .metrics import DEFAULT_BINS, Metrics, evaluate, iter_chunks, sigmoid
 from .scaling import METHODS_FOR, MULTILABEL_MODES, Scaling, check_scaling, is_far_from_one, kind_of
 
@@ -889,5 +889,5 @@ def load_fit(path: str | os.PathLike) -> FitSummary:
         return summary_from_dict(data)
     except OnnxcalError as exc:
         raise OnnxcalError(f"'{p}' holds invalid calibration parameters: {exc.message}", hint) from exc
-    except (OSError, UnicodeDecodeError, ValueError, KeyError, TypeError, AttributeError, RecursionError) as exc:
-        raise OnnxcalError(f"'{p}' is not an onnxcal fit file ({type(exc).__name__}: {exc})", hint) from exc
+    except Exception as exc:  # not JSON, or not the JSON onnxcal writes (any field missing or mistyped)
+        raise OnnxcalError(f"'{p}' is not an onnxcal fit file ({type(exc).__name__}: {first_line(exc)})", hint) from exc

@@ -881,14 +881,14 @@ def read_record(model: onnx.ModelProto) -> Record | None:
                     )
                 check_scaling(record.scaling)
                 return record
-            except (ValueError, TypeError, RecursionError) as exc:
-                raise OnnxcalError(
-                    f"the model's calibration record ({RECORD_KEY}) is damaged: {first_line(exc)}",
-                    "patch the original model again",
-                ) from exc
             except OnnxcalError as exc:
                 raise OnnxcalError(
                     f"the model's calibration record ({RECORD_KEY}) is damaged: {exc.message}",
+                    "patch the original model again",
+                ) from exc
+            except Exception as exc:  # not JSON, or not the record onnxcal writes
+                raise OnnxcalError(
+                    f"the model's calibration record ({RECORD_KEY}) is damaged: {first_line(exc)}",
                     "patch the original model again",
                 ) from exc
     return None

@@ -242,3 +242,27 @@ def test_external_data_onnx_leaves_unloaded_is_refused(tmp_path):
     (tmp_path / "model.onnx").write_bytes(model.SerializeToString())
     with pytest.raises(OnnxcalError, match="keeps tensor 'w' in external data where onnx does not load it"):
         graph.load_model(tmp_path / "model.onnx")
+
+
+# --------------------------------------------------------------------------
+# Names from a hostile file cannot drive the terminal
+
+
+def test_escape_sequences_in_a_model_are_shown_not_obeyed(tmp_path, run_cli):
+    # ESC [ 2 J clears the screen and ESC ] 0 ; ... BEL retitles the window (ECMA-48 / xterm
+    # control sequences); printed raw they would act on the user's terminal
+    clear, title = "\x1b[2J", "\x1b]0;pwned\x07"
+    g = helper.make_graph(
+        [helper.make_node("Softmax", [f"x{clear}"], [f"probs{title}"], axis=1)], "hostile",
+        [helper.make_tensor_value_info(f"x{clear}", TensorProto.FLOAT, ["N", 3])],
+        [helper.make_tensor_value_info(f"probs{title}", TensorProto.FLOAT, ["N", 3])],
+    )
+    model = helper.make_model(g, opset_imports=[helper.make_opsetid("", 17)])
+    model.ir_version = 8
+    path = tmp_path / "hostile.onnx"
+    path.write_bytes(model.SerializeToString())
+    for args in (["inspect", path], ["inspect", path, "--json"], ["patch", path, "--temperature", "2", "--output", "nope", "--out", tmp_path / "p.onnx"]):
+        r = run_cli(*args)
+        assert "\x1b" not in r.out + r.err and "\x07" not in r.out + r.err
+    assert "probs\\x1b]0;pwned\\x07" in run_cli("inspect", path).out.replace("\n", "")  # shown, escaped
+    assert "choose one of: probs\\x1b]0;pwned\\x07" in r.err  # the error names the outputs, escaped

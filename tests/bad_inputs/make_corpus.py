@@ -268,6 +268,18 @@ def bad_data(d: Path, rng: np.random.Generator) -> None:
     _npz_claiming(d / "bomb.npz", "x", (1 << 20, 1 << 20), "<f8", y)
     # an uncompressed member whose header claims more rows than the file holds
     _npz_claiming(d / "short_member.npz", "x", (N * 1000, D), "<f4", y, compress=False)
+    # an .npy header cut inside its dict (numpy's header parser raises a tokenizer error)
+    with zipfile.ZipFile(d / "damaged_header.npz", "w") as zf:
+        head = b"{'descr': '<f4', 'fortran_order': False, 'shape': (40,"
+        zf.writestr("x.npy", b"\x93NUMPY\x01\x00" + struct.pack("<H", len(head)) + head + bytes(64))
+        zf.writestr("labels.npy", _npy_bytes(y))
+    # a member whose zip entry names a compression method zipfile does not know (99)
+    np.savez(d / "odd_compression.npz", x=x, labels=y)
+    raw = bytearray((d / "odd_compression.npz").read_bytes())
+    for signature, field in ((b"PK\x03\x04", 8), (b"PK\x01\x02", 10)):  # local and central headers
+        at = raw.index(signature)
+        raw[at + field : at + field + 2] = struct.pack("<H", 99)
+    (d / "odd_compression.npz").write_bytes(bytes(raw))
     text = (d / "val.csv").read_text().splitlines()
     cells = text[3].split(",")
     cells[2] = "n/a"
@@ -275,6 +287,18 @@ def bad_data(d: Path, rng: np.random.Generator) -> None:
     (d / "non_numeric.csv").write_text("\n".join(text) + "\n")
     capture = (d / "cap.npz").read_bytes()
     (d / "truncated_cap.npz").write_bytes(capture[: len(capture) * 2 // 3])
+    # a capture whose metadata text holds a code point above U+10FFFF (numpy stores raw UCS-4)
+    with np.load(d / "cap.npz") as cap:
+        arrays = {k: cap[k] for k in cap.files}
+    meta = np.array(str(arrays["meta"]))
+    meta.reshape(1).view(np.uint32)[3] = 0x110000
+    np.savez(d / "bad_text_cap.npz", **dict(arrays, meta=meta))
+
+
+def _npy_bytes(arr) -> bytes:
+    buf = io.BytesIO()
+    np.lib.format.write_array(buf, np.asarray(arr))
+    return buf.getvalue()
 
 
 def _npz_claiming(path: Path, key: str, shape, descr: str, labels, compress: bool = True) -> None:
@@ -284,9 +308,7 @@ def _npz_claiming(path: Path, key: str, shape, descr: str, labels, compress: boo
     method = zipfile.ZIP_DEFLATED if compress else zipfile.ZIP_STORED
     with zipfile.ZipFile(path, "w", method) as zf:
         zf.writestr(f"{key}.npy", head.getvalue() + bytes(64))
-        buf = io.BytesIO()
-        np.lib.format.write_array(buf, np.asarray(labels))
-        zf.writestr("labels.npy", buf.getvalue())
+        zf.writestr("labels.npy", _npy_bytes(labels))
 
 
 # --------------------------------------------------------------------------

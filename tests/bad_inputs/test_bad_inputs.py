@@ -159,12 +159,15 @@ CASES = [
     case("csv-non-numeric-cell", "capture", "model.onnx", "--data", "non_numeric.csv", "--out", "c.npz", message=r"line 4, column 'f2' .* holds 'n/a', not a number"),
     case("npz-compressed-bomb", "capture", "model.onnx", "--data", "bomb.npz", "--out", "c.npz", message=r"array 'x' in 'bomb.npz' \(compressed, shape \[1048576, 1048576\] float64\) needs 8 TiB, more than the .* of memory available"),
     case("npz-member-shorter-than-header", "capture", "model.onnx", "--data", "short_member.npz", "--out", "c.npz", message=r"array 'x' in 'short_member.npz' is truncated: its header says \[40000, 6\] float32 \(938 KiB\)"),
+    case("npz-damaged-header", "capture", "model.onnx", "--data", "damaged_header.npz", "--out", "c.npz", message=r"array 'x' in 'damaged_header.npz' cannot be read"),
+    case("npz-unknown-compression", "calibrate", "model.onnx", "--data", "odd_compression.npz", "--out", "o.onnx", message=r"array 'x' in 'odd_compression.npz' cannot be read \(That compression method is not supported\)"),
     case("images-corrupt", "capture", "belt.onnx", "--data", "images_corrupt", "--out", "c.npz", message=r"image '.*broken.png' cannot be read"),
     case("images-non-image-file", "calibrate", "belt.onnx", "--data", "images_not_image", "--out", "o.onnx", message=r"image '.*notes.png' cannot be read"),
     case("images-empty-class", "capture", "belt.onnx", "--data", "images_empty_class", "--out", "c.npz", message=r"class subfolder '.*class3' holds no images"),
     case("images-decompression-bomb", "capture", "belt.onnx", "--data", "images_bomb", "--out", "c.npz", message=r"image '.*huge.png' claims 1600000000 pixels, more than Pillow's limit"),
     # ---- captures
     case("truncated-capture", "fit", "truncated_cap.npz", message=r"'truncated_cap.npz' is not an onnxcal capture file .*not an .npz archive"),
+    case("capture-text-not-unicode", "report", "bad_text_cap.npz", "--out", "rep", *T2, message=r"array 'meta' in 'bad_text_cap.npz' holds text that is not valid Unicode"),
     case("data-file-as-capture", "fit", "val.npz", message=r"'val.npz' is not an onnxcal capture file"),
     case("shards-of-different-models", "fit", "shard1.npz", "other_cap.npz", message=r"were captured from different models"),
     case("overlapping-shards", "fit", "shard1.npz", "cap.npz", message=r"both hold row 0 of"),
@@ -282,7 +285,7 @@ def test_console_script_exit_status_and_stderr(corpus, args, message):
     assert snapshot(corpus) == before
 
 
-@pytest.mark.parametrize("c", [c for c in CASES if c.id in ("truncated-onnx", "npz-pickled-objects", "images-corrupt")],
+@pytest.mark.parametrize("c", [c for c in CASES if c.id in ("truncated-onnx", "graph-with-cycle", "images-corrupt")],
                          ids=lambda c: c.id)
 def test_debug_keeps_the_original_error(corpus, run_cli, monkeypatch, c):
     """--debug shows the library's own exception (chained under onnxcal's) and still ends with the one line."""
