@@ -100,7 +100,7 @@ def check_writable(directory: str | os.PathLike, option: str = "--out") -> None:
     work; a write that fails later anyway (a quota, a policy ``os.access``
     does not see) is still reported cleanly by :func:`atomic_path`.
     """
-    if not os.access(directory, os.W_OK | os.X_OK):
+    if not os.access(directory, os.W_OK | os.X_OK, effective_ids=os.access in os.supports_effective_ids):
         raise OnnxcalError(
             f"cannot write to directory '{directory}' ({option})",
             "choose a directory you may write to, or change its permissions",
@@ -119,7 +119,8 @@ def check_output_path(
     Refuses an output that is one of the inputs (also through a symlink, a
     hard link or a different spelling of the path) or lies inside an input
     folder, an output directory that does not exist or may not be written
-    to, and an existing output unless ``force`` is true.
+    to, an existing output that is not a regular file (``/dev/null``, which
+    the rename would replace), and an existing output unless ``force`` is true.
     """
     p = check_not_input(out, inputs, option)
     parent = p.parent if str(p.parent) else Path(".")
@@ -129,6 +130,8 @@ def check_output_path(
         )
     if p.is_dir():
         raise OnnxcalError(f"{option} '{p}' is a directory", "give a file path")
+    if p.exists() and not p.is_file():  # a device, a FIFO: --force would replace it with a file
+        raise OnnxcalError(f"{option} '{p}' is not a regular file (a device or a pipe)", "give the path of a file")
     if p.exists() and not force:
         raise OnnxcalError(f"{option} '{p}' already exists", "pass --force to replace it")
     check_writable(parent, option)

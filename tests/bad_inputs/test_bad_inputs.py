@@ -201,6 +201,7 @@ CASES = [
     case("existing-report-file", "report", "cap.npz", "--out", "old_report", *T2, message=r"'old_report/report.html' already exists"),
     case("existing-calibrate-report", "calibrate", "model.onnx", *NPZ, "--out", "o.onnx", "--report", "old_report", message=r"'old_report/report.html' already exists"),
     case("existing-external-data-out", "calibrate", "ext_good/model.onnx", *NPZ, "--out", "ext_out.onnx", message=r"'ext_out.onnx.data' already exists"),
+    case("out-is-a-device", "fit", "cap.npz", "--out", "/dev/null", "--force", message=r"--out '/dev/null' is not a regular file \(a device or a pipe\)"),
     case("output-dir-missing", "capture", "model.onnx", *NPZ, "--out", "nowhere/c.npz", message=r"output directory 'nowhere' for --out does not exist"),
     case("unwritable-dir-capture", "capture", "model.onnx", *NPZ, "--out", "readonly/c.npz", setup=unwritable_readonly, message=r"cannot write to directory 'readonly' \(--out\)"),
     case("unwritable-dir-report", "report", "cap.npz", "--out", "readonly/rep", *T2, setup=unwritable_readonly, message=r"cannot write to directory 'readonly' \(--out\)"),
