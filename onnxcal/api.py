@@ -8,6 +8,8 @@ they are also the Python API (``import onnxcal``).
 
 from __future__ import annotations
 
+import contextlib
+import hashlib
 import os
 import time
 from collections.abc import Sequence
@@ -21,7 +23,7 @@ from . import fit as _fit
 from . import graph
 from . import report as _report
 from . import verify as _verify
-from ._files import atomic_write_bytes, check_output_path, require_file, sha256_file
+from ._files import atomic_write_bytes, atomic_write_files, check_output_path, require_file, sha256_file, write_error
 from .capture import Capture, ProgressFn, RunOptions
 from .data import DataSpec, Dataset, check_selection, load_dataset
 from .errors import OnnxcalError
@@ -692,16 +694,26 @@ def _report_targets(directory, formats, inputs, force: bool, option: str) -> lis
     return targets
 
 
-def _write_report(directory, content: dict, formats) -> ReportResult:
-    """Render every file in memory, then write each atomically."""
-    files = _report.render(content, formats)
+def _write_report(directory, content: dict, formats, also: dict | None = None) -> ReportResult:
+    """Render every file in memory, then write them (and the files ``also``) as one group.
+
+    A directory created here is removed again when the writing fails.
+    """
     d = Path(directory)
-    d.mkdir(exist_ok=True)
-    written = []
-    for name, data in files.items():
-        atomic_write_bytes(d / name, data)
-        written.append(str(d / name))
-    return ReportResult(directory=str(d), files=tuple(written), content=content)
+    files = {d / name: data for name, data in _report.render(content, formats).items()}
+    created = not d.exists()
+    try:
+        d.mkdir(exist_ok=True)
+    except OSError as exc:
+        raise write_error(exc, d) from exc
+    try:
+        atomic_write_files({**(also or {}), **files})
+    except BaseException:
+        if created:
+            with contextlib.suppress(OSError):
+                d.rmdir()
+        raise
+    return ReportResult(directory=str(d), files=tuple(str(f) for f in files), content=content)
 
 
 def _class_names(value, k: int) -> list[str] | None:
@@ -914,16 +926,19 @@ def calibrate(
     rows = _run_output(patched, site, dataset, run, progress)
     checks = _reference_checks(rows, site, record, cap.logits, patched, model, sha)
     result = VerifyResult(checks=tuple(checks), n=dataset.n, original=str(model_path))
-    written = None
+    written, files = None, {}
     if result.passed:
-        graph.save_model(patched, out, external=external)
+        files = graph.model_files(patched, out, external=external)
         written = PatchResult(path=str(out), record=record)
     written_report = None
-    if report is not None:
-        calibrated = None if written is None else {"name": Path(out).name, "path": str(out), "sha256": sha256_file(out)}
+    if report is None:
+        atomic_write_files(files)
+    else:  # the model and the report are written together, or neither is
+        sha_out = hashlib.sha256(files[Path(out)]).hexdigest() if files else None
+        calibrated = None if written is None else {"name": Path(out).name, "path": str(out), "sha256": sha_out}
         content = _report.build(
             cap, summary.scaling, summary=summary, class_names=_capture_names(cap), calibrated=calibrated,
             verification=result,
         )
-        written_report = _write_report(report, content, _report.FORMATS)
+        written_report = _write_report(report, content, _report.FORMATS, also=files)
     return CalibrateResult(summary=summary, patch=written, verification=result, report=written_report)

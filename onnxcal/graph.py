@@ -48,7 +48,7 @@ import onnx
 from onnx import helper, numpy_helper
 
 from . import __version__
-from ._files import atomic_write_bytes, require_file
+from ._files import atomic_write_files, require_file
 from .errors import OnnxcalError
 from .scaling import Scaling, check_scaling
 
@@ -1825,17 +1825,26 @@ def external_data_path(path: str | os.PathLike) -> Path:
     return p.with_name(p.name + ".data")
 
 
+def model_files(model: onnx.ModelProto, path: str | os.PathLike, *, external: bool = False) -> dict[Path, bytes]:
+    """The files :func:`save_model` writes, with their bytes, in the order it renames them.
+
+    With ``external``, initializers of at least ``EXTERNAL_THRESHOLD`` bytes
+    go to ``<path>.data`` beside ``path`` (listed first).
+    """
+    if not external:
+        return {Path(path): model.SerializeToString()}
+    copy = onnx.ModelProto()
+    copy.CopyFrom(model)
+    data = external_data_path(path)
+    blob = _split_external(copy, data.name)
+    return {data: blob, Path(path): copy.SerializeToString()}
+
+
 def save_model(model: onnx.ModelProto, path: str | os.PathLike, *, external: bool = False) -> None:
     """Serialise ``model`` and write it atomically to ``path``.
 
     With ``external``, initializers of at least ``EXTERNAL_THRESHOLD`` bytes
-    go to ``<path>.data`` beside it (written first, also atomically).
+    go to ``<path>.data`` beside it; both files are written completely
+    before either is renamed into place (see :func:`onnxcal._files.atomic_paths`).
     """
-    if not external:
-        atomic_write_bytes(Path(path), model.SerializeToString())
-        return
-    copy = onnx.ModelProto()
-    copy.CopyFrom(model)
-    data = external_data_path(path)
-    atomic_write_bytes(data, _split_external(copy, data.name))
-    atomic_write_bytes(Path(path), copy.SerializeToString())
+    atomic_write_files(model_files(model, path, external=external))
