@@ -28,6 +28,7 @@ import mmap
 import os
 import re
 import struct
+import tokenize
 import tomllib
 import zipfile
 from collections.abc import Callable, Mapping, Sequence
@@ -407,6 +408,10 @@ def _combine(parts: Sequence[tuple[str, str]]) -> str:
 # NumPy arrays
 
 
+# What numpy's .npy header parser raises on a damaged header besides ValueError.
+_BAD_HEADER = (ValueError, SyntaxError, tokenize.TokenError)
+
+
 def _npz_member(path: Path, info: zipfile.ZipInfo) -> np.ndarray | None:
     """Memory-map an uncompressed ``.npy`` member of an ``.npz`` in place, or None."""
     if info.compress_type != zipfile.ZIP_STORED or info.flag_bits & 0x1:  # compressed/encrypted
@@ -424,7 +429,7 @@ def _npz_member(path: Path, info: zipfile.ZipInfo) -> np.ndarray | None:
             if version not in reader:
                 return None
             shape, fortran, dtype = reader[version](fh)
-        except ValueError:
+        except _BAD_HEADER:  # np.load reads it again and says what is wrong
             return None
         offset = fh.tell()
     if dtype.hasobject or int(np.prod(shape)) == 0:
@@ -440,24 +445,39 @@ def read_npz(path: Path, hint: str) -> dict[str, np.ndarray]:
         npz = np.load(path, allow_pickle=False)
         with zipfile.ZipFile(path) as zf:
             infos = {i.filename: i for i in zf.infolist()}
-    except (zipfile.BadZipFile, ValueError, OSError, EOFError) as exc:
-        raise OnnxcalError(f"'{path}' is not a readable .npz file ({exc})", hint) from exc
+    except Exception as exc:  # zipfile and numpy raise many kinds on a damaged archive
+        raise OnnxcalError(f"'{path}' is not a readable .npz file ({type(exc).__name__}: {exc})", hint) from exc
     arrays: dict[str, np.ndarray] = {}
     with npz:
         for key in npz.files:
-            info = infos.get(key + ".npy")
-            mapped = _npz_member(path, info) if info is not None else None
-            if mapped is not None:
-                arrays[key] = mapped
-                continue
             try:
-                arrays[key] = npz[key]
-            except ValueError as exc:  # object arrays need pickle, which we refuse
+                info = infos.get(key + ".npy")
+                mapped = _npz_member(path, info) if info is not None else None
+                arrays[key] = mapped if mapped is not None else npz[key]
+            except ValueError as exc:
+                if "allow_pickle" in str(exc):  # object arrays need pickle, which we refuse
+                    raise OnnxcalError(
+                        f"array '{key}' in '{path}' holds Python objects, which onnxcal will not unpickle",
+                        "save it as a numeric array",
+                    ) from exc
+                raise OnnxcalError(f"array '{key}' in '{path}' cannot be read ({exc})", hint) from exc
+            except Exception as exc:  # a damaged member: zipfile, zlib, numpy's header parser, ...
                 raise OnnxcalError(
-                    f"array '{key}' in '{path}' holds Python objects, which onnxcal will not unpickle",
-                    "save it as a numeric array",
+                    f"array '{key}' in '{path}' cannot be read ({type(exc).__name__}: {exc})", hint
                 ) from exc
+            _check_text_array(arrays[key], key, path)
     return arrays
+
+
+def _check_text_array(arr: np.ndarray, key: str, path: Path) -> None:
+    """A numpy string array ('<U') holds UCS-4 code units: each must be a Unicode code point."""
+    if arr.dtype.kind == "U" and arr.size and arr.dtype.itemsize:
+        units = np.ascontiguousarray(arr).view(np.uint32)
+        if int(units.max()) > 0x10FFFF:
+            raise OnnxcalError(
+                f"array '{key}' in '{path}' holds strings with characters that are not Unicode",
+                "save the labels or class names as valid text (or as class indices)",
+            )
 
 
 def load_npz(path: str | os.PathLike, *, require_labels: bool = True) -> Dataset:
