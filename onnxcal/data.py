@@ -472,7 +472,7 @@ def read_npz(path: Path, hint: str) -> dict[str, np.ndarray]:
 def _check_text_array(arr: np.ndarray, key: str, path: Path) -> None:
     """A numpy string array ('<U') holds UCS-4 code units: each must be a Unicode code point."""
     if arr.dtype.kind == "U" and arr.size and arr.dtype.itemsize:
-        units = np.ascontiguousarray(arr).view(np.uint32)
+        units = np.ascontiguousarray(arr.reshape(-1), dtype=arr.dtype.newbyteorder("=")).view(np.uint32)
         if int(units.max()) > 0x10FFFF:
             raise OnnxcalError(
                 f"array '{key}' in '{path}' holds strings with characters that are not Unicode",

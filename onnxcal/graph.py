@@ -868,6 +868,9 @@ def _check_record(record: Record) -> Record:
             raise TypeError(f"field '{name}' is {type(value).__name__}, not {kind.__name__}")
     if not (record.compute_dtype is None or isinstance(record.compute_dtype, str)):
         raise TypeError("field 'compute_dtype' is not a string")
+    t = record.temperature
+    if t is not None and (isinstance(t, bool) or not isinstance(t, (int, float))):
+        raise TypeError(f"field 'temperature' is {type(t).__name__}, not a number")
     check_scaling(record.scaling)
     return record
 

@@ -811,6 +811,7 @@ def _with_record(model, record: dict):
         ("changes", {"nodes": ["x"]}, "KeyError"),  # was: KeyError in unpatch
         ("output", 5, "field 'output' is int"),
         ("folded", "yes", "field 'folded'"),
+        ("temperature", "2", "field 'temperature' is str"),
         ("parameters", {"temperature": -2.0}, "not a positive finite number"),
         ("method", "magic", "unknown calibration method"),
     ],
