@@ -7,7 +7,8 @@
 The first argument names the target (see targets.py); the rest go to
 libFuzzer. The seed corpus is made from the fixtures into
 tests/fuzz/corpus/TARGET/ (not committed) on the first run, and the corpus
-grows there; findings are written to tests/fuzz/findings/. Default limits:
+grows there; findings are written to tests/fuzz/findings/, the fuzzed file to
+tests/fuzz/work/TARGET/. Default limits:
 -timeout=20 (seconds per input: a hang is a finding) and -rss_limit_mb=4096.
 A finding is any exception other than OnnxcalError, a hang or a crash; rerun
 one with `fuzz_load.py TARGET FILE`. See docs/fuzzing.md.
@@ -47,6 +48,7 @@ def main() -> None:
     for flag, value in defaults.items():
         if not any(a.startswith(flag + "=") for a in args):
             args.insert(1, f"{flag}={value}")
+    targets.use_workdir(HERE / "work" / name)
     targets.demo_model()  # load the fixtures before fuzzing starts
     kwargs = {}
     if name == "model":

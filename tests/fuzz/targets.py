@@ -23,6 +23,7 @@ Targets:
 
 from __future__ import annotations
 
+import atexit
 import io
 import json
 import random
@@ -52,12 +53,21 @@ _demo: onnx.ModelProto | None = None
 
 
 def workdir() -> Path:
-    """One directory per process for the fuzzed files (removed at exit by the OS's tmp cleaner)."""
+    """One directory per process for the fuzzed files, removed when the process exits."""
     global _work
     if _work is None:
         _work = Path(tempfile.mkdtemp(prefix="onnxcal-fuzz-"))
+        atexit.register(shutil.rmtree, _work, ignore_errors=True)
         shutil.copy(EXTERNAL_DATA, _work / EXTERNAL_DATA.name)  # so seeds with external data resolve
     return _work
+
+
+def use_workdir(path: Path) -> None:
+    """Write the fuzzed files in ``path`` (fuzz_load.py: libFuzzer exits without Python's atexit)."""
+    global _work
+    path.mkdir(parents=True, exist_ok=True)
+    shutil.copy(EXTERNAL_DATA, path / EXTERNAL_DATA.name)
+    _work = path
 
 
 def demo_model() -> onnx.ModelProto:
