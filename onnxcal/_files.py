@@ -4,8 +4,7 @@ Outputs are written to a temporary file in the destination directory, flushed
 and fsync'ed, then renamed over the destination (and the directory fsync'ed),
 so a crash or Ctrl-C leaves either the old state or the complete new file,
 never a partial one. Several outputs of one command are written in full
-before any is renamed (:func:`atomic_write_files`), and a new directory of
-outputs appears whole (:func:`atomic_directory`).
+before any is renamed (:func:`atomic_write_files`).
 """
 
 from __future__ import annotations
@@ -14,12 +13,21 @@ import contextlib
 import errno
 import hashlib
 import os
-import shutil
+import re
+import stat
+import sys
 import tempfile
-from collections.abc import Iterable, Iterator, Mapping
+import time
+import warnings
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from pathlib import Path
 
-from .errors import OnnxcalError
+from .errors import OnnxcalError, OnnxcalWarning
+
+try:
+    import fcntl
+except ImportError:  # Windows: no locks, so stale temporaries are left alone
+    fcntl = None
 
 _CHUNK = 1 << 20
 
@@ -138,18 +146,6 @@ def check_output_path(
     return p
 
 
-def write_error(dest: str | os.PathLike, exc: OSError) -> OnnxcalError:
-    """An OSError met while writing ``dest``, as a one-line error naming it."""
-    why = exc.strerror or str(exc) or type(exc).__name__
-    if exc.errno in (errno.ENOSPC, errno.EDQUOT, errno.EFBIG):
-        hint = "free some space (or quota) on that disk, or write to another one"
-    elif exc.errno in (errno.EACCES, errno.EPERM, errno.EROFS):
-        hint = "choose a directory you may write to, or change its permissions"
-    else:
-        hint = "check the disk and the directory, then run the command again"
-    return OnnxcalError(f"cannot write '{dest}': {why}", hint)
-
-
 def _fsync_directory(directory: Path) -> None:
     """Make a rename in ``directory`` durable (POSIX; a no-op where directories cannot be opened)."""
     if not hasattr(os, "O_DIRECTORY"):
@@ -166,90 +162,229 @@ def _fsync_directory(directory: Path) -> None:
         os.close(fd)
 
 
+# Test hook (tests only; see DEVELOPERS.md): seconds to sleep once the temporaries
+# are complete and fsync'ed, just before they are renamed onto the outputs, so a
+# test can kill the process at that moment. Unset, it costs one environment lookup.
+PAUSE_HOOK = "ONNXCAL_TEST_PAUSE_BEFORE_RENAME"
+
+# A temporary left by a killed writer is removed by the next write of the same
+# output once it is at least this old and no process holds its lock.
+STALE_SECONDS = 60.0
+
+_WRITE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EFBIG, errno.EROFS}
+_REASONS = {
+    errno.ENOSPC: ("the disk is full", "free space on that disk or write the output elsewhere"),
+    errno.EDQUOT: ("the disk quota is used up", "free space within your quota or write the output elsewhere"),
+    errno.EFBIG: ("the file is too large for its file system", "write the output to another file system"),
+    errno.EROFS: ("the file system is read-only", "write the output elsewhere"),
+    errno.EACCES: ("permission denied", "write the output to a directory you can write to"),
+    errno.EPERM: ("the operation is not permitted", "write the output to a directory you can write to"),
+}
+
+
+def write_error(exc: OSError, dests: str | os.PathLike | Sequence[str | os.PathLike]) -> OnnxcalError:
+    """An OnnxcalError for a failed write of ``dests`` (disk full, permission denied, ...)."""
+    if isinstance(dests, (str, os.PathLike)):
+        dests = [dests]
+    names = ", ".join(f"'{d}'" for d in dests)
+    reason, hint = _REASONS.get(exc.errno, (exc.strerror or str(exc), "check the output path and its disk"))
+    detail = f" ({exc.strerror})" if exc.strerror and exc.strerror.lower() != reason else ""
+    return OnnxcalError(f"cannot write {names}: {reason}{detail}", f"{hint}; no output was written")
+
+
+def _tmp_pattern(dest: Path) -> re.Pattern:
+    # mkstemp's names: prefix, 8 characters of [a-z0-9_], suffix
+    return re.compile(re.escape(f".{dest.name}.") + r"[a-z0-9_]{8}\.tmp")
+
+
+def remove_stale_temporaries(dest: str | os.PathLike) -> list[Path]:
+    """Remove temporaries of ``dest`` that a killed writer left beside it.
+
+    A writer holds an exclusive ``flock`` on its temporary until it renames
+    or removes it, and the kernel drops the lock when the process dies (also
+    by SIGKILL). A temporary named like ``dest``'s, older than
+    ``STALE_SECONDS`` and whose lock can be taken has no live writer, so
+    removing it is safe. Without ``fcntl`` (Windows) nothing is removed.
+    """
+    dest = Path(dest)
+    if fcntl is None:
+        return []
+    pattern, removed = _tmp_pattern(dest), []
+    parent = dest.parent if str(dest.parent) else Path(".")
+    try:
+        entries = [e for e in os.scandir(parent) if pattern.fullmatch(e.name)]
+    except OSError:
+        return []
+    for entry in entries:
+        try:
+            st = entry.stat(follow_symlinks=False)
+            if not stat.S_ISREG(st.st_mode) or time.time() - st.st_mtime < STALE_SECONDS:
+                continue
+            fd = os.open(entry.path, os.O_RDONLY | os.O_NOFOLLOW)
+        except OSError:
+            continue
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)  # fails while a writer holds it
+            os.unlink(entry.path)
+            removed.append(Path(entry.path))
+        except OSError:
+            pass
+        finally:
+            os.close(fd)
+    if removed:
+        warnings.warn(
+            OnnxcalWarning(
+                f"removed {len(removed)} temporary file(s) that an interrupted onnxcal run left "
+                f"beside '{dest}' ({', '.join(p.name for p in removed)})"
+            ),
+            stacklevel=4,
+        )
+    return removed
+
+
+class _Temporary:
+    """A locked temporary file beside ``dest``, to be renamed onto it."""
+
+    def __init__(self, dest: Path) -> None:
+        self.dest = dest
+        remove_stale_temporaries(dest)
+        try:
+            self.fd, name = tempfile.mkstemp(prefix=f".{dest.name}.", suffix=".tmp", dir=dest.parent)
+        except OSError as exc:
+            raise write_error(exc, dest) from exc
+        self.path = Path(name)
+        try:
+            if fcntl is not None:
+                fcntl.flock(self.fd, fcntl.LOCK_EX)
+            os.chmod(self.path, 0o666 & ~_umask())  # mkstemp makes 0600; give the usual mode
+        except OSError as exc:
+            self.discard()
+            raise write_error(exc, dest) from exc
+
+    def sync(self) -> None:
+        with open(self.path, "rb+") as fh:
+            os.fsync(fh.fileno())
+
+    def commit(self) -> None:
+        os.replace(self.path, self.dest)
+        os.close(self.fd)
+
+    def discard(self) -> None:
+        with contextlib.suppress(FileNotFoundError):
+            self.path.unlink()
+        os.close(self.fd)
+
+
+def _pause_for_tests(temporaries: list[_Temporary]) -> None:
+    seconds = os.environ.get(PAUSE_HOOK)
+    if seconds:
+        names = ", ".join(str(t.path) for t in temporaries)
+        sys.stderr.write(f"onnxcal: {PAUSE_HOOK}: {names} complete; renaming in {seconds} s\n")
+        sys.stderr.flush()
+        time.sleep(float(seconds))
+
+
+def _owner(exc: OSError, temporaries: list[_Temporary]) -> list[Path] | None:
+    """The outputs an OSError raised while writing concerns, or None if it is no write error."""
+    for t in temporaries:
+        if exc.filename is not None and os.fsdecode(exc.filename) == str(t.path):
+            return [t.dest]
+    if exc.errno in _WRITE_ERRNOS or (exc.errno is not None and exc.filename is None):
+        return [t.dest for t in temporaries]  # a file object's write: it names no path
+    return None
+
+
+@contextlib.contextmanager
+def atomic_paths(dests: Sequence[str | os.PathLike]) -> Iterator[list[Path]]:
+    """Yield temporary paths beside ``dests``; rename each onto its destination on success.
+
+    The caller writes every file to its temporary. On normal exit all of
+    them are fsync'ed, then renamed in order (the first first); on any
+    exception (including KeyboardInterrupt) every temporary is removed and
+    no destination is touched. An OSError while writing (disk full,
+    permission denied, ...) becomes an :class:`OnnxcalError` that names the
+    destination. A group is renamed file by file, so only a crash between
+    two renames can leave some of the new files beside old ones.
+    """
+    temporaries: list[_Temporary] = []
+    try:
+        for dest in dests:
+            temporaries.append(_Temporary(Path(dest)))
+        try:
+            yield [t.path for t in temporaries]
+        except OSError as exc:
+            owner = _owner(exc, temporaries)
+            if owner is None:
+                raise
+            raise write_error(exc, owner) from exc
+        for t in temporaries:
+            _step(t.sync, t.dest)
+        _pause_for_tests(temporaries)
+        directories = {t.dest.parent for t in temporaries}
+        while temporaries:
+            _step(temporaries[0].commit, temporaries[0].dest)
+            temporaries.pop(0)
+        for directory in directories:  # make the renames durable
+            _fsync_directory(directory)
+    finally:
+        for t in temporaries:
+            t.discard()
+
+
+def _step(action, dest: Path) -> None:
+    try:
+        action()
+    except OSError as exc:
+        raise write_error(exc, [dest]) from exc
+
+
 @contextlib.contextmanager
 def atomic_path(dest: str | os.PathLike) -> Iterator[Path]:
     """Yield a temporary path beside ``dest``; rename it onto ``dest`` on success.
 
     The caller writes the whole file to the yielded path. On normal exit the
     file is fsync'ed and renamed onto ``dest`` (and the directory fsync'ed);
-    on any exception (including KeyboardInterrupt) the temporary file is
-    removed and ``dest`` is untouched. An OSError (no space, no permission)
-    is raised as an :class:`OnnxcalError` naming ``dest``.
+    on any exception (including
+    KeyboardInterrupt) the temporary file is removed and ``dest`` is
+    untouched (see :func:`atomic_paths`). A process killed outright (SIGKILL,
+    power loss) can leave the hidden temporary ``.NAME.XXXXXXXX.tmp`` behind;
+    the next write of the same output removes it (see
+    :func:`remove_stale_temporaries`).
     """
-    dest = Path(dest)
-    try:
-        fd, tmp_name = tempfile.mkstemp(prefix=f".{dest.name}.", suffix=".tmp", dir=dest.parent)
-    except OSError as exc:
-        raise write_error(dest, exc) from exc
-    os.close(fd)
-    tmp = Path(tmp_name)
-    try:
-        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; give the usual mode
+    with atomic_paths([dest]) as (tmp,):
         yield tmp
-        with open(tmp, "rb+") as fh:
-            os.fsync(fh.fileno())
-        os.replace(tmp, dest)
-        _fsync_directory(dest.parent)
-    except BaseException as exc:
-        with contextlib.suppress(FileNotFoundError):
-            tmp.unlink()
-        if isinstance(exc, OSError):
-            raise write_error(dest, exc) from exc
-        raise
-
-
-@contextlib.contextmanager
-def atomic_directory(dest: str | os.PathLike) -> Iterator[Path]:
-    """Yield a temporary directory beside ``dest`` (which must not exist); rename it onto ``dest`` on success.
-
-    The files written into it are fsync'ed before the rename, so the new
-    directory appears whole or not at all; on any exception it is removed.
-    """
-    dest = Path(dest)
-    parent = dest.parent if str(dest.parent) else Path(".")
-    try:
-        tmp = Path(tempfile.mkdtemp(prefix=f".{dest.name}.", suffix=".tmp", dir=parent))
-    except OSError as exc:
-        raise write_error(dest, exc) from exc
-    try:
-        os.chmod(tmp, 0o777 & ~_umask())  # mkdtemp makes 0700
-        yield tmp
-        for f in tmp.iterdir():
-            with open(f, "rb+") as fh:
-                os.fsync(fh.fileno())
-        _fsync_directory(tmp)
-        os.rename(tmp, dest)  # fails, rather than merging, if dest appeared meanwhile
-        _fsync_directory(parent)
-    except BaseException as exc:
-        shutil.rmtree(tmp, ignore_errors=True)
-        if isinstance(exc, OSError):
-            raise write_error(dest, exc) from exc
-        raise
 
 
 def atomic_write_files(files: Mapping[str | os.PathLike, bytes]) -> None:
-    """Write several files together, each atomically (see :func:`atomic_path`).
+    """Write several files together, each atomically (see :func:`atomic_paths`).
 
     Every file is written in full under a temporary name before any is
     renamed into place, so a failure while writing (a full disk) leaves none
-    of them. Files of a directory that does not exist yet go into a
-    temporary directory renamed into place whole (:func:`atomic_directory`).
-    Only a failure between the renames themselves could leave some in place.
+    of them. A destination directory that does not exist yet (a new report
+    directory) is created, and removed again if the writing fails. Only a
+    crash between the renames themselves could leave some files in place;
+    a process killed outright can leave such a new directory empty.
     """
-    with contextlib.ExitStack() as stack:
-        new_dirs: dict[Path, Path] = {}
-        for dest, data in files.items():
-            dest = Path(dest)
-            if dest.parent.is_dir():
-                tmp = stack.enter_context(atomic_path(dest))
-            else:
-                if dest.parent not in new_dirs:
-                    new_dirs[dest.parent] = stack.enter_context(atomic_directory(dest.parent))
-                tmp = new_dirs[dest.parent] / dest.name
-            try:
-                tmp.write_bytes(data)
-            except OSError as exc:
-                raise write_error(dest, exc) from exc
+    created: list[Path] = []
+    try:
+        for parent in dict.fromkeys(Path(d).parent for d in files):
+            if not parent.is_dir():
+                try:
+                    parent.mkdir(mode=0o777)
+                except OSError as exc:
+                    raise write_error(exc, parent) from exc
+                created.append(parent)
+        with atomic_paths(list(files)) as tmps:
+            for tmp, (dest, data) in zip(tmps, files.items()):
+                try:
+                    tmp.write_bytes(data)
+                except OSError as exc:
+                    raise write_error(exc, dest) from exc
+    except BaseException:
+        for d in reversed(created):
+            with contextlib.suppress(OSError):
+                d.rmdir()
+        raise
 
 
 def atomic_write_bytes(dest: str | os.PathLike, data: bytes) -> None:

@@ -818,7 +818,7 @@ def _report_files(directory, content: dict, formats) -> tuple[dict[Path, bytes],
 
 
 def _write_report(directory, content: dict, formats) -> ReportResult:
-    """Render every file in memory, then write them together (a new directory appears whole)."""
+    """Render every file in memory, then write them together (a new directory is removed again if writing fails)."""
     files, result = _report_files(directory, content, formats)
     atomic_write_files(files)
     return result

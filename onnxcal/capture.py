@@ -24,6 +24,7 @@ the file is written under a temporary name and renamed when complete.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import re
@@ -722,11 +723,18 @@ class _NpyRows(_Rows):
             self.held = 0
 
     def close(self, complete: bool = True) -> None:
-        """Write what is buffered (when ``complete``) and close the member."""
+        """Write what is buffered (when ``complete``) and close the member.
+
+        The member is closed also when the last write fails (e.g. the disk is
+        full), so the archive's own close reports that error and not an open
+        member.
+        """
         if self.fh is not None:
-            if complete:
-                self._flush()
-            self.fh.close()
+            try:
+                if complete:
+                    self._flush()
+            finally:
+                self.fh.close()
 
 
 def _fill_scores(
@@ -852,7 +860,8 @@ def capture(
         try:
             mode, watch = _fill_scores(model, dataset, site, sink, options, progress)
         except BaseException:
-            sink.close(complete=False)  # the temporary file is removed; nothing to flush
+            with contextlib.suppress(Exception):  # keep the first error; the temporary is removed
+                sink.close(complete=False)
             raise
         sink.close()
         final, meta = finish(sink, mode)

@@ -928,6 +928,15 @@ def main(argv: Sequence[str] | None = None) -> int:
     except (KeyboardInterrupt, typer.Abort):
         err.print("onnxcal: interrupted; no output was written")
         return 130
+    except OSError as exc:  # a file error the api did not word (e.g. a file removed meanwhile)
+        if debug:
+            traceback.print_exc()
+        where = f" '{exc.filename}'" if exc.filename else ""
+        err.print(
+            f"onnxcal: error: cannot access{where}: {exc.strerror or exc}; check the path and its permissions",
+            soft_wrap=True,
+        )
+        return 2
     except Exception as exc:  # an unexpected failure: still one line unless --debug
         if debug:
             traceback.print_exc()

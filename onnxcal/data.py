@@ -31,7 +31,6 @@ import struct
 import tomllib
 import warnings
 import zipfile
-import zlib
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path

@@ -308,7 +308,14 @@ def _external_locations(model: onnx.ModelProto) -> list[str]:
     for t in _model_tensors(model):
         if t.data_location == onnx.TensorProto.EXTERNAL:
             entry = {e.key: e.value for e in t.external_data}
-            locations.append(entry.get("location", ""))
+            location = entry.get("location", "")
+            if not isinstance(location, str) or "\0" in location:  # protobuf gives bytes when not UTF-8
+                raise OnnxcalError(
+                    f"the external data location {location!r} of tensor '{t.name}' is not a file name "
+                    "(not UTF-8 text, or it holds a NUL byte)",
+                    "re-export the model, or save it without external data",
+                )
+            locations.append(location)
     return sorted(set(locations))
 
 
@@ -423,6 +430,11 @@ def load_model(path: str | os.PathLike, *, max_bytes: int = DEFAULT_MAX_MODEL_BY
             f"'{p}' is not an ONNX model (no IR version or no graph outputs)",
             "give the path of an .onnx file exported by your framework",
         )
+    if (field_name := _non_text(model)) is not None:
+        raise OnnxcalError(
+            f"'{p}' is damaged: its field {field_name} holds bytes that are not UTF-8 text",
+            "re-export the model",
+        )
     files = _check_locations(_external_locations(model), p)
     if files:
         check_model_size(p, sum(f.stat().st_size for f in set(files)), max_bytes)
@@ -450,6 +462,29 @@ def load_model(path: str | os.PathLike, *, max_bytes: int = DEFAULT_MAX_MODEL_BY
     return model
 
 
+def _repeated(fd) -> bool:
+    flag = getattr(fd, "is_repeated", None)  # protobuf >= 6; older ones have only the label
+    return bool(flag) if flag is not None else fd.label == fd.LABEL_REPEATED
+
+
+def _non_text(message) -> str | None:
+    """The first string field (depth first) of a protobuf message whose value is not text.
+
+    protobuf hands over the bytes of a ``string`` field that is not valid
+    UTF-8 as ``bytes``; every name in onnx and onnxruntime is text.
+    """
+    for fd, value in message.ListFields():
+        if fd.type not in (fd.TYPE_STRING, fd.TYPE_MESSAGE):
+            continue
+        for v in value if _repeated(fd) else (value,):
+            if fd.type == fd.TYPE_STRING:
+                if not isinstance(v, str):
+                    return fd.full_name
+            elif (found := _non_text(v)) is not None:
+                return found
+    return None
+
+
 def opset_version(model: onnx.ModelProto) -> int:
     """Opset of the default ONNX domain."""
     for imp in model.opset_import:
@@ -467,16 +502,21 @@ def _dims(vi: onnx.ValueInfoProto) -> tuple[int | str | None, ...] | None:
     )
 
 
+def _elem_name(elem: int) -> str:
+    try:
+        return np.dtype(helper.tensor_dtype_to_np_dtype(elem)).name if elem else "unknown"
+    except KeyError:  # a number no ONNX version defines
+        return f"unknown type {elem}"
+
+
 def _type_name(tp: onnx.TypeProto) -> str:
     kind = tp.WhichOneof("value")
     if kind == "tensor_type":
-        elem = tp.tensor_type.elem_type
-        return np.dtype(helper.tensor_dtype_to_np_dtype(elem)).name if elem else "unknown"
+        return _elem_name(tp.tensor_type.elem_type)
     if kind == "sequence_type":
         return f"seq({_type_name(tp.sequence_type.elem_type)})"
     if kind == "map_type":
-        key = np.dtype(helper.tensor_dtype_to_np_dtype(tp.map_type.key_type)).name
-        return f"map({key}, {_type_name(tp.map_type.value_type)})"
+        return f"map({_elem_name(tp.map_type.key_type)}, {_type_name(tp.map_type.value_type)})"
     return kind or "unknown"
 
 
@@ -574,7 +614,7 @@ def _axis_through_reshape(axis: int, before, after) -> int | None:
     The class axis survives when some output axis has its size and the same
     product of sizes in front of it.
     """
-    if before is None or after is None:
+    if before is None or after is None or not 0 <= axis < len(before):  # unknown or inconsistent shapes
         return None
     k = before[axis]
     if len(after) == 1 and k == 1:  # (n, 1) squeezed to (n,): one logit per sample
@@ -639,9 +679,20 @@ def find_scores(model: onnx.ModelProto, output: str | None = None) -> ScoreSite:
     ------
     OnnxcalError
         No such output, no float output, a class axis that does not fit or
-        is lost on the way, or a Softmax below opset 13 that normalises over
-        more than the class axis.
+        is lost on the way, a Softmax below opset 13 that normalises over
+        more than the class axis, or scores of a type that is not float.
     """
+    site = _locate_scores(model, output)
+    if site.dtype not in _ELEM:  # the tensor the scaling goes to
+        raise OnnxcalError(
+            f"the class scores '{site.scores}' behind output '{site.output}' have element type "
+            f"{site.dtype}, not a floating-point type",
+            "choose an output of float class scores with --output, or repair the model",
+        )
+    return site
+
+
+def _locate_scores(model: onnx.ModelProto, output: str | None) -> ScoreSite:
     graph = model.graph
     producers = _producers(graph)
     spec = _pick_output(graph, output, producers)
@@ -696,7 +747,9 @@ def _activation_site(
     scores = node.input[0]
     tensor, chain = _values_tensor(spec, chain, graph)
     in_shape = shapes.shape(scores)
-    rank = _rank(in_shape) or _rank(shapes.shape(tensor)) or 2
+    rank = len(in_shape) if in_shape is not None else (_rank(shapes.shape(tensor)) or 2)
+    if rank == 0:
+        raise _rank_zero(scores, spec.name)
     opset = opset_version(model)
     if activation == "sigmoid":
         axis = 1 if rank >= 2 else 0
@@ -767,6 +820,13 @@ def _ml_site(
     )
 
 
+def _rank_zero(scores: str, output: str) -> OnnxcalError:
+    return OnnxcalError(
+        f"the scores '{scores}' behind output '{output}' are a single number (rank 0), with no class axis",
+        "choose an output of class scores with --output, or repair the model's shapes",
+    )
+
+
 def _raw_site(spec: TensorSpec, shapes: _Shapes) -> ScoreSite:
     if not spec.is_float:
         raise OnnxcalError(
@@ -775,6 +835,8 @@ def _raw_site(spec: TensorSpec, shapes: _Shapes) -> ScoreSite:
             "choose a tensor output of class scores with --output",
         )
     rank = len(spec.shape) if spec.shape is not None else 2
+    if rank == 0:
+        raise _rank_zero(spec.name, spec.name)
     axis = 1 if rank >= 2 else 0
     size = spec.shape[axis] if spec.shape is not None else None
     if rank == 1:
@@ -892,6 +954,14 @@ def read_record(model: onnx.ModelProto) -> Record | None:
                     "patch the original model again",
                 ) from exc
     return None
+
+
+def _damaged(exc: Exception) -> OnnxcalError:
+    detail = exc.message if isinstance(exc, OnnxcalError) else first_line(exc)
+    return OnnxcalError(
+        f"the model's calibration record ({RECORD_KEY}) is damaged: {detail}",
+        "patch the original model again",
+    )
 
 
 def check_record(model: onnx.ModelProto, record: Record, where: str = "the model") -> None:
@@ -1698,7 +1768,17 @@ def unpatch(model: onnx.ModelProto) -> onnx.ModelProto:
             "patch the original, uncalibrated model instead",
         )
     check_record(model, record)
-    g = out.graph
+    try:
+        _undo(out.graph, record)
+    except (KeyError, TypeError, ValueError, IndexError, AttributeError, StopIteration) as exc:
+        raise _damaged(exc) from exc  # the record comes from the file: its changes may not fit
+    _write_record(out, None)
+    return out
+
+
+def _undo(g: onnx.GraphProto, record: Record) -> None:
+    """Undo in place the changes ``record`` lists."""
+    ch = record.changes
     added = set(ch["nodes"])
     keep = [n for n in g.node if n.name not in added]
     renamed = ch["renamed"]
@@ -1729,8 +1809,6 @@ def unpatch(model: onnx.ModelProto) -> onnx.ModelProto:
     g.output.extend(outputs)
     if record.folded:
         _unfold(g, record)
-    _write_record(out, None)
-    return out
 
 
 def check_temperature(temperature: float) -> float:

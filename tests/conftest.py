@@ -5,12 +5,22 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
+import os
+
 import numpy as np
 import onnx
 import pytest
+from hypothesis import settings
 from onnx import TensorProto, helper, numpy_helper
 
 from onnxcal.cli import main
+
+# Property tests (hypothesis): no example database on disk and no deadline (the
+# machine is shared); in CI (CI=true) the examples are derandomized, so a run is
+# reproducible and cannot fail by chance. Elsewhere each run draws new examples.
+settings.register_profile("ci", database=None, deadline=None, derandomize=True, print_blob=True)
+settings.register_profile("dev", database=None, deadline=None, print_blob=True)
+settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE") or ("ci" if os.environ.get("CI") else "dev"))
 
 ROOT = Path(__file__).resolve().parents[1]
 FIXTURES = ROOT / "fixtures"

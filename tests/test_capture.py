@@ -484,3 +484,17 @@ def test_input_watch_finds_the_same_rows_however_it_groups_batches(rng, monkeypa
     watch.flush()
     assert list(watch.found) == ["x"]  # integer inputs are not searched
     assert watch.found["x"].count == 5 and watch.found["x"].first == bad
+
+
+def test_a_capture_whose_metadata_is_not_unicode_is_refused(tmp_path, rng):
+    # Found by the fuzzer (tests/fuzz): json.loads(str(meta)) raised SystemError.
+    model = random_mlp(rng)
+    ds = Dataset({"x": rng.normal(size=(5, 6)).astype(np.float32)}, rng.integers(0, 4, 5), "mem")
+    path = tmp_path / "c.npz"
+    save_capture(path, capture_of(model, ds))
+    data = path.read_bytes()
+    brace = "{".encode("utf-32-le")
+    assert brace in data
+    path.write_bytes(data.replace(brace, (0x110000).to_bytes(4, "little"), 1))
+    with pytest.raises(OnnxcalError, match="not an onnxcal capture file .*not valid Unicode"):
+        load_capture(path)

@@ -575,3 +575,58 @@ def test_multilabel_and_single_logit_labels():
         check_label_array(np.array([[0, 1], [1, 0]]), 2, 3, "set.npz")
     with pytest.raises(OnnxcalError, match=r"label 2 at row 0 .* outside \[0, 2\)"):
         check_label_array(np.array([2, 0]), 2, 1, "set.npz")
+
+
+# -- damaged archives: what the fuzzer (tests/fuzz) found, each now a clean OnnxcalError --
+
+
+def _demo_npz(path):
+    np.savez(path, x=np.arange(12, dtype=np.float32).reshape(4, 3), labels=np.array([0, 1, 2, 0]))
+    return path
+
+
+def _damage(path, old: bytes, new: bytes, count: int = 1):
+    data = path.read_bytes()
+    assert old in data
+    path.write_bytes(data.replace(old, new, count))
+    return path
+
+
+def test_a_damaged_compressed_member_is_refused(tmp_path):
+    path = tmp_path / "crc.npz"
+    np.savez_compressed(path, x=np.arange(4000, dtype=np.float32), labels=np.zeros(4000, np.int64))
+    data = bytearray(path.read_bytes())
+    data[len(data) // 4] ^= 0xFF  # inside x's deflated data: a bad CRC or a bad deflate stream
+    path.write_bytes(bytes(data))
+    with pytest.raises(OnnxcalError, match=r"array 'x' in .* cannot be read \((BadZipFile|error|Bad CRC-32)"):
+        load_npz(path)  # was: BadZipFile or zlib.error from numpy
+
+
+def test_an_unsupported_compression_method_is_refused(tmp_path):
+    path = _demo_npz(tmp_path / "method.npz")
+    # the compression method of the first member's local header and central entry: 0 (stored) -> 99
+    data = bytearray(path.read_bytes())
+    for sig, at in ((b"PK\x03\x04", 8), (b"PK\x01\x02", 10)):
+        i = data.index(sig)
+        data[i + at : i + at + 2] = (99).to_bytes(2, "little")
+    path.write_bytes(bytes(data))
+    with pytest.raises(OnnxcalError, match="cannot be read|not a readable .npz file"):
+        load_npz(path)  # was: NotImplementedError from zipfile
+
+
+def test_an_npy_header_that_breaks_numpys_parser_is_refused(tmp_path):
+    path = _demo_npz(tmp_path / "header.npz")
+    _damage(path, b"'descr': '<f4'", b"'descr': '<f4(")  # an unclosed bracket in the header's dict
+    with pytest.raises(OnnxcalError, match=r"array 'x' .* cannot be read"):
+        load_npz(path)  # was: tokenize.TokenError
+
+
+def test_strings_that_are_not_unicode_are_refused(tmp_path):
+    path = tmp_path / "labels.npz"
+    np.savez(path, x=np.zeros((2, 3), np.float32), labels=np.array(["ab", "cd"]))
+    _damage(path, "a".encode("utf-32-le"), (0x110000).to_bytes(4, "little"))  # past U+10FFFF
+    with pytest.raises(OnnxcalError, match="holds text that is not valid Unicode"):
+        load_npz(path)  # was: SystemError when numpy made a str of it
+    big = tmp_path / "big_endian.npz"  # valid text in the other byte order is fine
+    np.savez(big, x=np.zeros((2, 3), np.float32), labels=np.array(["ab", "cd"]).astype(">U2"))
+    assert load_npz(big, require_labels=False).labels.tolist() == ["ab", "cd"]

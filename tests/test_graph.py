@@ -786,3 +786,120 @@ def test_unpatch_of_a_fold_recorded_before_per_class_folding(rng, x):
     back = graph.unpatch(folded)
     w0, w1 = (numpy_helper.to_array(graph._initializer(m.graph, "weight")) for m in (model, back))
     np.testing.assert_allclose(w1, w0, rtol=float(np.finfo(np.float32).eps), atol=0)
+
+
+# -- hostile files: what the fuzzer (tests/fuzz) found, each now a clean OnnxcalError --
+
+
+def _record_of(model) -> dict:
+    return json.loads(next(p.value for p in model.metadata_props if p.key == graph.RECORD_KEY))
+
+
+def _with_record(model, record: dict):
+    out = onnx.ModelProto()
+    out.CopyFrom(model)
+    for p in out.metadata_props:
+        if p.key == graph.RECORD_KEY:
+            p.value = json.dumps(record)
+    return out
+
+
+@pytest.mark.parametrize(
+    "field, value, words",
+    [
+        ("changes", 3, "changes"),  # was: TypeError in unpatch
+        ("changes", {"nodes": ["x"]}, "node 'x' that the patch added is missing"),  # was: KeyError in unpatch
+        ("output", 5, "field 'output' is int"),
+        ("folded", "yes", "field 'folded'"),
+        ("temperature", "2", "field 'temperature' is str"),
+        ("parameters", {"temperature": -2.0}, "not a positive finite number"),
+        ("method", "magic", "unknown calibration method"),
+    ],
+)
+def test_a_damaged_record_is_refused_cleanly(rng, field, value, words):
+    patched = do_patch(random_mlp(rng, final="Softmax"), 2.0)
+    bad = _with_record(patched, {**_record_of(patched), field: value})
+    refused = f"calibration record .*(is damaged|does not match its graph): .*{words}"
+    with pytest.raises(OnnxcalError, match=refused):
+        graph.unpatch(bad)
+    with pytest.raises(OnnxcalError, match=refused):
+        do_patch(bad, 1.5)
+
+
+def _softmax_over(elem: int) -> onnx.ModelProto:
+    """x -> Softmax -> Cast(float): the scores behind the float output are of type ``elem``."""
+    g = helper.make_graph(
+        [helper.make_node("Softmax", ["x"], ["p"], axis=1), helper.make_node("Cast", ["p"], ["y"], to=1)],
+        "typed",
+        [helper.make_tensor_value_info("x", elem, ["N", 3])],
+        [helper.make_tensor_value_info("y", onnx.TensorProto.FLOAT, ["N", 3])],
+        value_info=[helper.make_tensor_value_info("p", elem, ["N", 3])],
+    )
+    m = helper.make_model(g, opset_imports=[helper.make_opsetid("", 17)])
+    m.ir_version = 8
+    return m
+
+
+@pytest.mark.parametrize("elem", [onnx.TensorProto.COMPLEX64, onnx.TensorProto.UINT32])
+def test_scores_of_a_non_float_type_are_refused(elem):
+    with pytest.raises(OnnxcalError, match=r"class scores 'x' .* not a floating-point type"):
+        graph.find_scores(_softmax_over(elem))  # was: KeyError when patching
+
+
+def test_an_undefined_element_type_is_named():
+    vi = helper.make_tensor_value_info("y", onnx.TensorProto.FLOAT, ["N", 3])
+    vi.type.tensor_type.elem_type = 44  # no ONNX version defines it
+    assert graph.tensor_spec(vi).dtype == "unknown type 44"  # was: KeyError
+
+
+def test_rank_zero_scores_are_refused():
+    g = helper.make_graph(
+        [helper.make_node("Sigmoid", ["x"], ["y"])],
+        "scalar",
+        [helper.make_tensor_value_info("x", onnx.TensorProto.FLOAT, [])],
+        [helper.make_tensor_value_info("y", onnx.TensorProto.FLOAT, ["N", 1])],  # a shape that lies
+    )
+    m = helper.make_model(g, opset_imports=[helper.make_opsetid("", 17)])
+    with pytest.raises(OnnxcalError, match="rank 0"):
+        graph.find_scores(m)  # was: IndexError
+    m.graph.ClearField("node")
+    m.graph.output[0].type.tensor_type.shape.ClearField("dim")  # raw logits of rank 0
+    with pytest.raises(OnnxcalError, match="rank 0"):
+        graph.find_scores(m)
+
+
+def test_a_reshape_whose_shapes_disagree_loses_the_class_axis():
+    g = helper.make_graph(
+        [helper.make_node("Softmax", ["x"], ["p"], axis=2), helper.make_node("Flatten", ["p"], ["y"], axis=1)],
+        "lying",
+        [helper.make_tensor_value_info("x", onnx.TensorProto.FLOAT, ["N", 2, 3])],
+        [helper.make_tensor_value_info("y", onnx.TensorProto.FLOAT, ["N", 6])],
+        value_info=[helper.make_tensor_value_info("p", onnx.TensorProto.FLOAT, ["N", 6])],  # rank 2, not 3
+    )
+    m = helper.make_model(g, opset_imports=[helper.make_opsetid("", 17)])
+    with pytest.raises(OnnxcalError, match="does not keep the class axis whole"):
+        graph.find_scores(m)  # was: IndexError
+
+
+def test_names_that_are_not_utf8_are_refused_at_load(tmp_path, rng):
+    data = random_mlp(rng).SerializeToString()
+    assert data.count(b"scores") >= 1
+    path = tmp_path / "bad.onnx"
+    path.write_bytes(data.replace(b"scores", b"sco\xffes"))  # protobuf then hands over bytes
+    with pytest.raises(OnnxcalError, match="holds bytes that are not UTF-8 text"):
+        graph.load_model(path)  # was: TypeError or UnicodeDecodeError further on
+
+
+@pytest.mark.parametrize("location", [b"w\xff.bin", b"w\x00.bin"])
+def test_external_locations_that_are_no_file_name_are_refused(tmp_path, rng, location):
+    model = random_mlp(rng)
+    init = model.graph.initializer[0]
+    init.ClearField("raw_data")
+    init.ClearField("float_data")
+    init.data_location = onnx.TensorProto.EXTERNAL
+    e = init.external_data.add()
+    e.key, e.value = "location", "PLACEHOLDER"
+    path = tmp_path / "m.onnx"
+    path.write_bytes(model.SerializeToString().replace(b"PLACEHOLDER", location.ljust(11, b"_")))
+    with pytest.raises(OnnxcalError, match="is not a file name|not UTF-8 text"):
+        graph.load_model(path)  # was: TypeError in sorted(), ValueError in realpath

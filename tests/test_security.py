@@ -51,7 +51,12 @@ def findings(source: str, name: str = "<source>") -> list[str]:
         elif isinstance(node, ast.Call):
             func = node.func
             called = func.id if isinstance(func, ast.Name) else func.attr if isinstance(func, ast.Attribute) else ""
-            if called in CODE_BUILTINS:
+            # the builtins themselves (``eval(...)``, ``builtins.exec(...)``), not a method
+            # of the same name such as ``re.compile``
+            builtin = isinstance(func, ast.Name) or (
+                isinstance(func, ast.Attribute) and isinstance(func.value, ast.Name) and func.value.id == "builtins"
+            )
+            if called in CODE_BUILTINS and builtin:
                 found.append(f"{where} calls {called}")
             keywords = {k.arg: k.value for k in node.keywords}
             pickle = keywords.get("allow_pickle")
@@ -79,6 +84,7 @@ def test_the_scan_finds_what_it_looks_for():
     )
     assert len(findings(bad)) == 7
     assert findings("import numpy as np\nnp.load('a.npy', allow_pickle=False)\nnp.savez('a', x=1)\n") == []
+    assert findings("import re, builtins\nre.compile('x')\nbuiltins.eval('1')\n") == ["<source>:3 calls eval"]
 
 
 def test_package_source_executes_no_code_from_data():

@@ -46,6 +46,42 @@ def test_compare_flags_bad_row_sums_and_argmax(rng):
     assert not scaled["row-sums"].passed
 
 
+def test_rounding_ties_are_no_argmax_failure():
+    # Found by tests/test_properties.py: float16 rounds both probabilities of
+    # logits (0, 1e-4) to 0.5, so the output's argmax (0) differs from the
+    # reference's (1) although the patch is exact.
+    z = np.array([[0.0, 1e-4], [2.0, 0.0]])
+    got = scipy.special.softmax(z, axis=1).astype(np.float16)
+    assert got[0, 0] == got[0, 1]
+    checks = {c.name: c for c in compare(got, z, 1.0, "softmax", "float16")}
+    assert all(c.passed for c in checks.values())
+    swapped = got[:, ::-1]  # a real change of decision in row 1 still fails
+    assert not {c.name: c for c in compare(swapped, z, 1.0, "softmax", "float16")}["argmax"].passed
+
+
+def test_sigmoid_decision_at_the_threshold_within_rounding():
+    z = np.array([[1e-5], [3.0]])
+    got = scipy.special.expit(z).astype(np.float16)  # 0.5000025 rounds to 0.5: "not above 0.5"
+    checks = {c.name: c for c in compare(got, z, 1.0, "sigmoid", "float16")}
+    assert checks["decisions"].passed
+    wrong = 1 - got  # the decision in row 1 flips by far more than rounding
+    assert not {c.name: c for c in compare(wrong, z, 1.0, "sigmoid", "float16")}["decisions"].passed
+
+
+def test_log_probabilities_are_compared_relative_to_their_size():
+    # Found by tests/test_properties.py: a float32 log-probability near -400
+    # carries about 400 times the rounding of one near 0 (2.4e-5 > 1e-5).
+    z = np.array([[10.0, -10.0, 0.0]])
+    t = 0.05
+    ref = scipy.special.log_softmax(z / t, axis=1)
+    got = (ref * (1 + 2.0**-23)).astype(np.float32)  # a couple of float32 rounding steps off
+    assert np.max(np.abs(got - ref)) > 1e-5
+    check = {c.name: c for c in compare(got, z, t, "logsoftmax", "float32")}["reference"]
+    assert check.passed and check.value < 1e-6
+    wrong = scipy.special.log_softmax(z / (t * 1.001), axis=1)  # T off by 0.1 %
+    assert not {c.name: c for c in compare(wrong, z, t, "logsoftmax", "float32")}["reference"].passed
+
+
 def test_sigmoid_decisions(rng):
     z = rng.normal(size=(30, 2))
     p = scipy.special.expit(z / 3.0)

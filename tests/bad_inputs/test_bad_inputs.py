@@ -205,7 +205,7 @@ CASES = [
     case("output-dir-missing", "capture", "model.onnx", *NPZ, "--out", "nowhere/c.npz", message=r"output directory 'nowhere' for --out does not exist"),
     case("unwritable-dir-capture", "capture", "model.onnx", *NPZ, "--out", "readonly/c.npz", setup=unwritable_readonly, message=r"cannot write to directory 'readonly' \(--out\)"),
     case("unwritable-dir-report", "report", "cap.npz", "--out", "readonly/rep", *T2, setup=unwritable_readonly, message=r"cannot write to directory 'readonly' \(--out\)"),
-    case("eacces-on-write", "patch", "model.onnx", *T2, "--out", "readonly/p.onnx", setup=eacces_on_create, message=r"cannot write 'readonly/p.onnx': Permission denied"),
+    case("eacces-on-write", "patch", "model.onnx", *T2, "--out", "readonly/p.onnx", setup=eacces_on_create, message=r"cannot write 'readonly/p.onnx': permission denied"),
 ]
 
 

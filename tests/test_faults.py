@@ -1,0 +1,294 @@
+"""Fault injection: commands killed mid-write and a full disk never cost the user data.
+
+Two faults, at every writer:
+
+- SIGKILL. The commands run as subprocesses with the test hook
+  ``ONNXCAL_TEST_PAUSE_BEFORE_RENAME`` (``onnxcal._files.PAUSE_HOOK``), which
+  makes them sleep between the complete, fsync'ed temporary and the rename;
+  the test kills them there, and a large capture also while it streams.
+- ENOSPC. Every temporary an output is written to is opened on ``/dev/full``
+  instead, so the kernel itself answers each write with ENOSPC, through the
+  real buffered-file and zip code paths.
+
+Each asserts that no output exists (or that a replaced one is unchanged), that
+the inputs are intact (sha256 before and after), what is left of the temporary
+and that the next run cleans it.
+"""
+
+import errno
+import hashlib
+import io
+import os
+import re
+import select
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import onnx
+import pytest
+from onnx import TensorProto, helper, numpy_helper
+
+from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, FIXTURES, files_in
+from onnxcal import _files, api
+from onnxcal.capture import load_capture
+
+EXTERNAL = FIXTURES / "exporters" / "belt_spectrogram_external.onnx"
+TEMPORARY = re.compile(r"\..+\.[a-z0-9_]{8}\.tmp")
+
+
+def sha256s(paths) -> dict[str, str]:
+    return {str(p): hashlib.sha256(Path(p).read_bytes()).hexdigest() for p in paths}
+
+
+def temporaries(directory: Path) -> list[Path]:
+    return sorted(p for p in directory.rglob("*") if TEMPORARY.fullmatch(p.name))
+
+
+def age(paths, seconds: float = 2 * _files.STALE_SECONDS) -> None:
+    old = time.time() - seconds
+    for p in paths:
+        os.utime(p, (old, old))
+
+
+@pytest.fixture
+def work(tmp_path):
+    """A directory with copies of the demo and the external-data model (the inputs)."""
+    d = tmp_path / "work"
+    d.mkdir()
+    for src in (DEMO_MODEL, DEMO_VAL, DEMO_TEST, EXTERNAL, EXTERNAL.with_name(EXTERNAL.name + ".data")):
+        shutil.copy(src, d / src.name)
+    return d
+
+
+def _start(args, cwd: Path, env: dict) -> subprocess.Popen:
+    return subprocess.Popen(
+        [sys.executable, "-m", "onnxcal", *map(str, args)],
+        cwd=cwd,
+        env={**os.environ, **env},
+        stdin=subprocess.DEVNULL,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+
+
+def _wait_for_pause(proc: subprocess.Popen, timeout: float = 120) -> list[Path]:
+    """Read the child's stderr until the hook says it is pausing; the complete temporaries."""
+    deadline, seen = time.monotonic() + timeout, []
+    while time.monotonic() < deadline:
+        ready, _, _ = select.select([proc.stderr], [], [], 0.5)
+        if not ready:
+            assert proc.poll() is None, f"exited {proc.returncode} before the pause: {seen}"
+            continue
+        line = proc.stderr.readline()
+        assert line, f"stderr closed before the pause: {seen}"
+        seen.append(line)
+        if _files.PAUSE_HOOK in line:
+            names = line.split(": ", 2)[2].rsplit(" complete;", 1)[0]
+            return [Path(n) for n in names.split(", ")]
+    raise AssertionError(f"no pause within {timeout} s: {seen}")
+
+
+def _kill(proc: subprocess.Popen) -> None:
+    proc.send_signal(signal.SIGKILL)
+    proc.wait(timeout=60)
+    proc.stderr.close()
+    assert proc.returncode == -signal.SIGKILL
+
+
+def _capture_file(work: Path) -> Path:
+    api.capture(work / DEMO_MODEL.name, work / DEMO_VAL.name, out=work / "c.npz")
+    return work / "c.npz"
+
+
+KILLED = {
+    "patch": (["patch", DEMO_MODEL.name, "--temperature", "1.5", "--out", "p.onnx"], ["p.onnx"]),
+    "patch-external": (
+        ["patch", EXTERNAL.name, "--temperature", "1.5", "--out", "p.onnx"],
+        ["p.onnx.data", "p.onnx"],
+    ),
+    "capture": (["capture", DEMO_MODEL.name, "--data", DEMO_VAL.name, "--out", "out.npz", "-q"], ["out.npz"]),
+    "fit": (["fit", "c.npz", "--out", "fit.json", "--bootstrap", "0"], ["fit.json"]),
+    "calibrate": (
+        ["calibrate", DEMO_MODEL.name, "--data", DEMO_VAL.name, "--out", "cal.onnx", "--report", "rep", "-q",
+         "--bootstrap", "0"],
+        ["cal.onnx", "rep/report.html", "rep/summary.md", "rep/report.json", "rep/reliability.png",
+         "rep/confidence.png", "rep/classes.png"],
+    ),
+}
+
+
+@pytest.mark.parametrize("case", KILLED)
+def test_sigkill_before_the_rename_leaves_no_output(work, run_cli, monkeypatch, case):
+    args, outputs = KILLED[case]
+    if case == "fit":
+        _capture_file(work)
+    inputs = sorted(work.iterdir())
+    before = sha256s(inputs)
+    proc = _start(args, work, {_files.PAUSE_HOOK: "600"})
+    try:
+        complete = _wait_for_pause(proc)
+        assert sorted(p.name for p in complete) == sorted(
+            p.name for p in temporaries(work)
+        ), "the hook names every temporary"
+        if case == "patch":  # a live writer's temporary is never taken for a stale one
+            age(complete)
+            assert _files.remove_stale_temporaries(work / "p.onnx") == []
+    finally:
+        _kill(proc)
+    assert not any((work / o).exists() for o in outputs)
+    assert sha256s(inputs) == before  # the inputs are intact
+    # What SIGKILL leaves: the hidden, complete temporaries (and an empty report directory).
+    left = temporaries(work)
+    assert left == sorted(complete) and all(p.stat().st_size > 0 for p in left)
+    assert {p for p in work.rglob("*") if p.is_file()} == {*inputs, *left}
+    # The next run of the same command removes them once they are stale.
+    age(left)
+    monkeypatch.chdir(work)
+    r = run_cli(*args)
+    assert r.code == 0, r.err
+    assert r.err.count("removed 1 temporary file(s) that an interrupted onnxcal run left") == len(left)
+    assert temporaries(work) == [] and all((work / o).is_file() for o in outputs)
+    assert sha256s(inputs) == before
+
+
+def _wide_model(path: Path, k: int) -> None:
+    """scores = x tiled k times: a few bytes of input per sample, k float32 logits out."""
+    graph = helper.make_graph(
+        [helper.make_node("Tile", ["x", "reps"], ["scores"])],
+        "wide",
+        [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 1])],
+        [helper.make_tensor_value_info("scores", TensorProto.FLOAT, ["N", k])],
+        initializer=[numpy_helper.from_array(np.array([1, k], np.int64), "reps")],
+    )
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
+    model.ir_version = 8
+    onnx.save(model, path)
+
+
+def test_sigkill_while_a_large_capture_streams(work, run_cli):
+    n, k = 400_000, 256  # 400 MB of logits if it ran to the end
+    _wide_model(work / "wide.onnx", k)
+    rng = np.random.default_rng(0)
+    np.savez(work / "wide.npz", x=rng.normal(size=(n, 1)).astype(np.float32), labels=rng.integers(0, k, n))
+    inputs = [work / "wide.onnx", work / "wide.npz"]
+    before = sha256s(inputs)
+    proc = _start(["capture", "wide.onnx", "--data", "wide.npz", "--out", "big.npz", "--batch-size", "1", "-q"],
+                  work, {})
+    try:
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline:
+            streaming = [p for p in temporaries(work) if p.stat().st_size >= 4 << 20]
+            if streaming:
+                break
+            assert proc.poll() is None, "the capture ended before it was killed"
+            time.sleep(0.01)
+        else:
+            raise AssertionError("the capture did not start streaming in time")
+    finally:
+        _kill(proc)
+    assert not (work / "big.npz").exists()
+    assert sha256s(inputs) == before
+    (left,) = temporaries(work)  # a partial temporary: far from the 400 MB of the whole
+    assert 4 << 20 <= left.stat().st_size < n * k * 4 // 2
+    age([left])
+    r = run_cli("capture", work / "wide.onnx", "--data", work / "wide.npz", "--out", work / "big.npz",
+                "--limit", "10", "-q")
+    assert r.code == 0 and "removed 1 temporary file" in r.err, r.err
+    assert temporaries(work) == [] and load_capture(work / "big.npz").logits.shape == (10, k)
+
+
+# --------------------------------------------------------------------------
+# A full disk: every write of the chosen output's temporaries fails with ENOSPC.
+
+
+@pytest.fixture
+def full_disk(monkeypatch):
+    """``full_disk(name)``: writes to the temporaries of outputs named ``name`` go to /dev/full."""
+    if not os.path.exists("/dev/full"):
+        pytest.skip("/dev/full is needed to have the kernel answer ENOSPC")
+    real_open = io.open
+
+    def arm(name: str) -> None:
+        pattern = re.compile(re.escape(f".{name}.") + r"[a-z0-9_]{8}\.tmp")
+
+        def fake_open(file, mode="r", *args, **kwargs):
+            if isinstance(file, (str, os.PathLike)) and pattern.fullmatch(Path(file).name) and set(mode) & set("wax+"):
+                return real_open("/dev/full", mode.replace("x", "w"), *args, **kwargs)
+            return real_open(file, mode, *args, **kwargs)
+
+        monkeypatch.setattr(io, "open", fake_open)  # what pathlib and zipfile open files with
+
+    return arm
+
+
+def _patched_demo(work: Path) -> Path:
+    api.patch(work / DEMO_MODEL.name, work / "patched.onnx", temperature=1.7)
+    return work / "patched.onnx"
+
+
+FULL = {
+    "model": (["patch", DEMO_MODEL.name, "--temperature", "2", "--out", "p.onnx"], "p.onnx"),
+    "external-data": (["patch", EXTERNAL.name, "--temperature", "2", "--out", "p.onnx"], "p.onnx.data"),
+    "external-graph": (["patch", EXTERNAL.name, "--temperature", "2", "--out", "p.onnx"], "p.onnx"),
+    "external-replaced": (
+        ["patch", EXTERNAL.name, "--temperature", "2", "--out", "old.onnx", "--force"], "old.onnx"
+    ),
+    "capture": (["capture", DEMO_MODEL.name, "--data", DEMO_VAL.name, "--out", "out.npz", "-q"], "out.npz"),
+    "capture-streaming": (  # 5 MB of logits: the disk fills during the run, not at the end
+        ["capture", "wide.onnx", "--data", "wide.npz", "--out", "out.npz", "-q"], "out.npz"
+    ),
+    "fit": (["fit", "c.npz", "--out", "fit.json", "--bootstrap", "0"], "fit.json"),
+    "fit-replaced": (["fit", "c.npz", "--out", "c_fit.json", "--bootstrap", "0", "--force"], "c_fit.json"),
+    "report": (["report", "c.npz", "--temperature", "2", "--out", "rep"], "summary.md"),
+    "junit": (["verify", "patched.onnx", "--data", DEMO_TEST.name, "--junit", "j.xml", "-q"], "j.xml"),
+    "calibrate-model": (
+        ["calibrate", DEMO_MODEL.name, "--data", DEMO_VAL.name, "--out", "cal.onnx", "-q", "--bootstrap", "0"],
+        "cal.onnx",
+    ),
+    "calibrate-report": (
+        ["calibrate", DEMO_MODEL.name, "--data", DEMO_VAL.name, "--out", "cal.onnx", "--report", "rep", "-q",
+         "--bootstrap", "0"],
+        "reliability.png",
+    ),
+}
+
+
+@pytest.mark.parametrize("case", FULL)
+def test_disk_full_is_one_clean_line_and_nothing_changes(work, run_cli, full_disk, monkeypatch, case):
+    args, target = FULL[case]
+    _capture_file(work)
+    _patched_demo(work)
+    api.patch(work / EXTERNAL.name, work / "old.onnx", temperature=3.0)  # outputs --force would replace
+    api.fit(work / "c.npz", out=work / "c_fit.json")
+    _wide_model(work / "wide.onnx", 256)
+    np.savez(work / "wide.npz", x=np.ones((5000, 1), np.float32), labels=np.zeros(5000, np.int64))
+    monkeypatch.chdir(work)
+    before = files_in(work)
+    full_disk(target)
+    r = run_cli(*args)
+    assert r.code == 2, (r.out, r.err)
+    (line,) = r.err.strip().splitlines()
+    assert line.startswith("onnxcal: error: cannot write ") and "Traceback" not in r.err
+    assert f"{target}': the disk is full" in line and "no output was written" in line
+    assert files_in(work) == before  # nothing created (no temporary either), nothing replaced
+    assert not (work / "rep").exists()
+
+
+def test_permission_denied_on_the_output_directory(work, run_cli, monkeypatch):
+    """As for a directory the user may not write to (root, which runs CI here, may write anywhere)."""
+
+    def mkstemp(**kwargs):
+        raise PermissionError(errno.EACCES, "Permission denied", str(kwargs["dir"]))
+
+    monkeypatch.setattr(_files.tempfile, "mkstemp", mkstemp)
+    monkeypatch.chdir(work)
+    before = files_in(work)
+    r = run_cli("patch", DEMO_MODEL.name, "--temperature", "2", "--out", "p.onnx")
+    assert r.code == 2 and "cannot write 'p.onnx': permission denied" in r.err
+    assert len(r.err.strip().splitlines()) == 1 and files_in(work) == before
