@@ -112,6 +112,12 @@ OutputOpt = Annotated[
 ForceOpt = Annotated[bool, typer.Option("--force", help="Replace an existing output file.")]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Print JSON instead of a table.")]
 QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress bar.")]
+OutputNameOpt = Annotated[
+    str, typer.Option("--output-name", help="Name of the added output when the model ends in logits.")
+]
+DropLogitsOpt = Annotated[
+    bool, typer.Option("--drop-logits", help="Remove the logits output when a new output is added.")
+]
 ActivationOpt = Annotated[
     Optional[str],
     typer.Option(
@@ -599,12 +605,8 @@ def patch(
     temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to bake in.")] = None,
     fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.")] = None,
     output: OutputOpt = None,
-    output_name: Annotated[
-        str, typer.Option("--output-name", help="Name of the added output when the model ends in logits.")
-    ] = DEFAULT_OUTPUT_NAME,
-    drop_logits: Annotated[
-        bool, typer.Option("--drop-logits", help="Remove the logits output when a new output is added.")
-    ] = False,
+    output_name: OutputNameOpt = DEFAULT_OUTPUT_NAME,
+    drop_logits: DropLogitsOpt = False,
     activation: ActivationOpt = None,
     compute_dtype: ComputeDtypeOpt = None,
     fold: FoldOpt = False,
@@ -805,12 +807,8 @@ def calibrate(
     model: ModelArg,
     out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False)],
     output: OutputOpt = None,
-    output_name: Annotated[
-        str, typer.Option("--output-name", help="Name of the added output when the model ends in logits.")
-    ] = DEFAULT_OUTPUT_NAME,
-    drop_logits: Annotated[
-        bool, typer.Option("--drop-logits", help="Remove the logits output when a new output is added.")
-    ] = False,
+    output_name: OutputNameOpt = DEFAULT_OUTPUT_NAME,
+    drop_logits: DropLogitsOpt = False,
     activation: ActivationOpt = None,
     compute_dtype: ComputeDtypeOpt = None,
     fold: FoldOpt = False,
