@@ -40,7 +40,7 @@ import onnx
 
 from . import __version__
 from ._files import atomic_path, require_file
-from .data import Dataset, check_labels, check_multilabel, match_inputs, read_npz
+from .data import Dataset, check_label_array, check_labels, match_inputs, read_npz
 from ._limits import check_memory, format_bytes
 from .errors import OnnxcalError, OnnxcalWarning, first_line
 from .graph import ScoreSite, expose_scores, find_scores, fit_kind, tensor_spec
@@ -935,9 +935,8 @@ def label_rows(labels: np.ndarray, shape: tuple[int, int], kind: str, source: st
             f"{k} logit(s) per row needs one 0/1 label per logit ({rows} x {k})",
             "give 0/1 labels shaped like the output",
         )
-    if k == 1:  # binary: one 0/1 class index per row
-        return check_labels(labels.reshape(-1), rows, 2, source)
-    return check_multilabel(labels.reshape(rows, k), rows, k, source)
+    # binary: one 0/1 class index per row; multi-label: rows x k of 0/1
+    return check_label_array(labels.reshape(-1) if k == 1 else labels.reshape(rows, k), rows, k, source)
 
 
 def nonfinite_rows(logits: np.ndarray, chunk: int = 1 << 16) -> np.ndarray:
