@@ -82,7 +82,10 @@ class SlurmCluster:
     def env(self, extra_path: str = "") -> dict[str, str]:
         """The environment for Slurm's clients (and so for the jobs, which inherit it)."""
         path = os.pathsep.join(p for p in (extra_path, os.environ.get("PATH", ""), "/usr/sbin") if p)
-        return {**os.environ, "PATH": path, "SLURM_CONF": str(self.conf)}
+        # Nothing of a Slurm job this test may itself run in (SBATCH_* are sbatch's option defaults).
+        outer = ("SLURM_", "SBATCH_", "SALLOC_", "SRUN_", "SQUEUE_", "SINFO_", "SCANCEL_")
+        env = {k: v for k, v in os.environ.items() if not k.startswith(outer)}
+        return {**env, "PATH": path, "SLURM_CONF": str(self.conf)}
 
     def write_config(self) -> None:
         for d in ("munge", "state", "spool", "log"):
@@ -197,12 +200,20 @@ PartitionName=test Nodes={NODE} Default=YES MaxTime=INFINITE State=UP
             if any(state != "COMPLETED" and state in FINAL for state, _ in jobs.values()):
                 return jobs  # a failed task: the dependent fit will never run
             time.sleep(0.5)
-        raise TimeoutError(f"Slurm jobs still running after {timeout:.0f} s: {self.jobs()}\n{self.logs()}")
+        raise TimeoutError(f"Slurm jobs still running after {timeout:.0f} s: {self.jobs()}")
 
     def logs(self, extra: tuple[Path, ...] = ()) -> str:
-        """The tails of the daemons' logs (and of ``extra`` files), for failure messages."""
-        names = ("munged.log", "munged.stderr", "slurmctld.log", "slurmctld.stderr", "slurmd.log", "slurmd.stderr")
-        return "\n".join([_tail(self.root / "log" / n) for n in names] + [_tail(p) for p in extra])
+        """The tails of the daemons' logs (and of ``extra`` files), for failure messages.
+
+        A daemon in the foreground may log to stderr only (munged does); its
+        log file is shown when it has one, else what it printed.
+        """
+        tails = []
+        for name in DAEMONS:
+            log = self.root / "log" / f"{name}.log"
+            has_log = log.exists() and log.stat().st_size > 0
+            tails.append(_tail(log if has_log else self.root / "log" / f"{name}.stderr"))
+        return "\n".join(tails + [_tail(p) for p in extra])
 
     def stop(self) -> None:
         """Cancel every job, stop the daemons (slurmd, slurmctld, munged) by their ids."""
