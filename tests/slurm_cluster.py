@@ -20,7 +20,7 @@ import socket
 import subprocess
 import tempfile
 import time
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -69,7 +69,7 @@ class SlurmCluster:
     user: str = field(default_factory=lambda: pwd.getpwuid(os.getuid()).pw_name)
     ctld_port: int = field(default_factory=_free_port)
     slurmd_port: int = field(default_factory=_free_port)
-    processes: dict[str, subprocess.Popen] = field(default_factory=dict)
+    processes: dict[str, subprocess.Popen[bytes]] = field(default_factory=dict)
 
     @property
     def conf(self) -> Path:
@@ -159,7 +159,7 @@ PartitionName=test Nodes={NODE} Default=YES MaxTime=INFINITE State=UP
         self._spawn("slurmd", "-D", "-f", str(self.conf), "-N", NODE)
         self._wait_for(lambda: self.node_state() == "idle", timeout, f"node {NODE} idle")
 
-    def _wait_for(self, ready, timeout: float, what: str) -> None:
+    def _wait_for(self, ready: Callable[[], bool], timeout: float, what: str) -> None:
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             dead = [n for n, p in self.processes.items() if p.poll() is not None]
@@ -170,7 +170,9 @@ PartitionName=test Nodes={NODE} Default=YES MaxTime=INFINITE State=UP
             time.sleep(0.2)
         raise ClusterUnavailable(f"no {what} after {timeout:.0f} s\n{self.logs()}")
 
-    def run(self, *args: str, env: Mapping[str, str] | None = None, timeout: float = 30.0) -> subprocess.CompletedProcess:
+    def run(
+        self, *args: str, env: Mapping[str, str] | None = None, timeout: float = 30.0
+    ) -> subprocess.CompletedProcess[str]:
         """A Slurm client command against this cluster."""
         return subprocess.run(
             [shutil.which(args[0], path=_SEARCH) or args[0], *args[1:]],
@@ -179,7 +181,7 @@ PartitionName=test Nodes={NODE} Default=YES MaxTime=INFINITE State=UP
 
     def node_state(self) -> str:
         r = self.run("sinfo", "-h", "-n", NODE, "-o", "%T")
-        return r.stdout.strip()
+        return str(r.stdout).strip()
 
     def jobs(self) -> dict[str, tuple[str, str]]:
         """Every job and array task the controller still knows: id -> (state, reason)."""
@@ -262,3 +264,16 @@ def start_cluster() -> SlurmCluster:
                 break
     assert last is not None
     raise last
+
+
+if __name__ == "__main__":  # a cluster to try things on: python tests/slurm_cluster.py
+    signal.signal(signal.SIGTERM, signal.default_int_handler)  # stop cleanly on kill PID too
+    cluster = start_cluster()
+    print(f"Slurm test cluster up in {cluster.root}\n  export SLURM_CONF={cluster.conf}\nCtrl-C stops it.")
+    try:
+        signal.pause()
+    except KeyboardInterrupt:
+        pass
+    finally:
+        cluster.stop()
+        shutil.rmtree(cluster.root, ignore_errors=True)

@@ -12,17 +12,18 @@ from __future__ import annotations
 import json
 import os
 import re
-import shlex
 import shutil
 import subprocess
 import sys
 import textwrap
+from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
 
-from conftest import DEMO_MODEL, DEMO_VAL
+from conftest import DEMO_MODEL, DEMO_VAL, CliResult
 from onnxcal.capture import load_captures
 from slurm_cluster import ClusterUnavailable, SlurmCluster, start_cluster
 
@@ -56,19 +57,24 @@ def _work_folder(path: Path) -> Path:
     return path
 
 
-def _unsharded_fit(work: Path, run_cli) -> dict:
+def _job_logs(work: Path) -> tuple[Path, ...]:
+    return tuple(sorted(work.glob("*.log")) + sorted(work.glob("slurm-*.out")))
+
+
+def _unsharded_fit(work: Path, run_cli: Callable[..., CliResult]) -> dict[str, Any]:
     """Capture the whole set in one go and fit it, with the CLI's defaults."""
     r = run_cli("capture", work / "model.onnx", "--data", work / "val.npz", "--quiet", "--out", work / "whole.npz")
     assert r.code == 0, r.err
     r = run_cli("fit", work / "whole.npz", "--out", work / "fit-whole.json")
     assert r.code == 0, r.err
-    return json.loads((work / "fit-whole.json").read_text())
+    fit: dict[str, Any] = json.loads((work / "fit-whole.json").read_text())
+    return fit
 
 
-def _assert_same_fit(merged: dict, whole: dict, shard_files: list[Path], work: Path) -> None:
+def _assert_same_fit(merged: dict[str, Any], whole: dict[str, Any], shard_files: list[Path], work: Path) -> None:
     # The merged capture is the unsharded one, row for row, bit for bit.
     cap, one = load_captures(shard_files), load_captures(work / "whole.npz")
-    assert np.array_equal(cap.indices, np.arange(2000)) and np.array_equal(cap.labels, one.labels)
+    assert np.array_equal(cap.sample_indices(), np.arange(2000)) and np.array_equal(cap.labels, one.labels)
     assert np.array_equal(np.asarray(cap.logits), np.asarray(one.logits))
     # The same T to the last bit (JSON keeps a float's shortest round-trip repr),
     # and every figure of the fit: metrics, intervals, split, options, notes.
@@ -85,7 +91,7 @@ def _assert_same_fit(merged: dict, whole: dict, shard_files: list[Path], work: P
 
 
 @pytest.fixture
-def slurm(request) -> SlurmCluster:
+def slurm(request: pytest.FixtureRequest) -> SlurmCluster:
     """A one-node Slurm cluster in a temporary folder, stopped and removed after the test."""
     try:
         cluster = start_cluster()
@@ -102,7 +108,9 @@ def slurm(request) -> SlurmCluster:
     return cluster
 
 
-def test_slurm_job_array_works_as_written(slurm, tmp_path, run_cli):
+def test_slurm_job_array_works_as_written(
+    slurm: SlurmCluster, tmp_path: Path, run_cli: Callable[..., CliResult]
+) -> None:
     blocks = _example_blocks()
     assert [k for k, _ in blocks] == ["file capture.sh", "run"]
     work = _work_folder(tmp_path / "shared")
@@ -115,14 +123,13 @@ def test_slurm_job_array_works_as_written(slurm, tmp_path, run_cli):
             r = subprocess.run(["bash", "-c", "set -euo pipefail\n" + body], cwd=work, env=env,
                                capture_output=True, text=True, timeout=60)
             assert r.returncode == 0, r.stdout + r.stderr + slurm.logs()
-    job_logs = lambda: tuple(sorted(work.glob("*.log")) + sorted(work.glob("slurm-*.out")))  # noqa: E731
     try:
         jobs = slurm.wait_for_jobs(JOBS_TIMEOUT)
     except TimeoutError as exc:
-        pytest.fail(f"{exc}\n{slurm.logs(job_logs())}")
+        pytest.fail(f"{exc}\n{slurm.logs(_job_logs(work))}")
     assert len(jobs) == SHARDS + 1, jobs  # the array's tasks and the fit
     failed = {j: s for j, s in jobs.items() if s[0] != "COMPLETED"}
-    assert not failed, f"{failed}\n{slurm.logs(job_logs())}"
+    assert not failed, f"{failed}\n{slurm.logs(_job_logs(work))}"
     shard_files = sorted((work / "captures").glob("shard-*.npz"))
     assert len(shard_files) == SHARDS
     assert "captured 125 x 5 logits" in (work / "capture-7.log").read_text()
@@ -136,15 +143,19 @@ def test_slurm_job_array_works_as_written(slurm, tmp_path, run_cli):
 # Kubernetes (no cluster: the container's script, run for every index)
 
 
-def test_kubernetes_indexed_job_command_covers_the_set(tmp_path, run_cli, monkeypatch):
+def test_kubernetes_indexed_job_command_covers_the_set(
+    tmp_path: Path, run_cli: Callable[..., CliResult], monkeypatch: pytest.MonkeyPatch
+) -> None:
     """The pod's script with JOB_COMPLETION_INDEX = 0 .. 15, as an indexed Job sets it.
 
-    bash runs the doc's script with ``onnxcal`` defined as a shell function that
-    prints its arguments, and the test then runs that command line with the
-    real onnxcal in this process (16 fresh interpreters would take a minute on
-    two cores). This checks the index arithmetic and the command line, not
-    Kubernetes: the doc says so.
+    /bin/sh (as in the Job's ``command``) runs the doc's script with
+    ``onnxcal`` defined as a shell function that prints its arguments, one a
+    line, and the test then runs that command line with the real onnxcal in
+    this process (16 fresh interpreters would take a minute on two cores).
+    This checks the index arithmetic and the command line, not Kubernetes:
+    the doc says so.
     """
+    assert 'command: ["/bin/sh", "-c"]' in DOC.read_text()
     script = _kubernetes_script()
     completions = re.search(r"completions: (\d+)", DOC.read_text())
     assert completions and int(completions.group(1)) == SHARDS
@@ -153,12 +164,12 @@ def test_kubernetes_indexed_job_command_covers_the_set(tmp_path, run_cli, monkey
     monkeypatch.chdir(work)
     commands = []
     for index in range(SHARDS):
-        r = subprocess.run(
-            ["bash", "-c", "set -eu\nonnxcal() { printf '%q ' onnxcal \"$@\"; }\n" + script],
+        pod = subprocess.run(
+            ["/bin/sh", "-c", "set -eu\nonnxcal() { printf '%s\\n' onnxcal \"$@\"; }\n" + script],
             env={**os.environ, "JOB_COMPLETION_INDEX": str(index)}, capture_output=True, text=True, timeout=30,
         )
-        assert r.returncode == 0, r.stderr
-        commands.append(shlex.split(r.stdout))
+        assert pod.returncode == 0, pod.stderr
+        commands.append(pod.stdout.splitlines())
     assert [c[c.index("--shard") + 1] for c in commands] == [f"{i}/{SHARDS}" for i in range(1, SHARDS + 1)]
     for argv in commands:
         assert argv[:2] == ["onnxcal", "capture"], argv
