@@ -37,9 +37,9 @@ import onnxruntime as ort
 import pytest
 import scipy.optimize
 import scipy.special
+from conftest import FIXTURES
 
 import onnxcal
-from conftest import FIXTURES
 from onnxcal import graph
 from onnxcal.errors import OnnxcalError
 from onnxcal.fit import FitOptions
@@ -497,7 +497,7 @@ XFAIL_SECOND_HEAD = {m: "item 8: patching the second head undoes the first head'
 
 def _model_cases(table: dict[str, str]) -> list:
     return [
-        pytest.param(m, id=m, marks=[pytest.mark.xfail(strict=True, reason=f"issue 10: {table[m]}")] if m in table else [])
+        pytest.param(m, id=m, marks=[pytest.mark.xfail(strict=True, reason=f"issue 10: {table[m]}")] * (m in table))
         for m in TWO_HEAD_MODELS
     ]
 
@@ -524,7 +524,8 @@ def test_calibrating_a_second_head_keeps_the_first(model, workdir):
     except OnnxcalError:
         return  # refusing clearly is allowed
     outputs = run(out, first)
-    np.testing.assert_allclose(outputs[first.output], expected(first, t_first), atol=tolerance(first, outputs[first.output]))
+    want = expected(first, t_first)
+    np.testing.assert_allclose(outputs[first.output], want, atol=tolerance(first, want))
     np.testing.assert_allclose(outputs[second.output], expected(second, 2.0), atol=1e-5)
 
 
