@@ -145,15 +145,23 @@ def conditional_coverage_floor(n: int, alpha: float, confidence: float = 0.95) -
     return float(stats.beta.ppf(1.0 - confidence, k, n + 1 - k))
 
 
-def _sorted_running_sums(p: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Classes by p descending (ties: lower index first) and the running sums through each, in p's dtype.
+def _mass_before(p: np.ndarray) -> np.ndarray:
+    """N x K: for each class, the sum of the probabilities ranked before it, as the graph adds them.
 
-    The graph's ``TopK(p, K, axis=-1, largest=1, sorted=1)`` (ONNX TopK
-    breaks ties by the lower index) and ``CumSum(values, axis=-1)``; NumPy's
-    cumsum adds left to right in the array's dtype, one rounding per step.
+    Classes are ranked by p descending, ties by the lower index first
+    (``TopK(p, K, axis=-1, largest=1, sorted=1)``: ONNX TopK breaks ties by
+    the lower index); the running sum before each is ``CumSum(values,
+    axis=-1, exclusive=1)`` (NumPy's cumsum adds left to right in the
+    array's dtype, one rounding per step, and the exclusive sum is the same
+    additions one place later); ``ScatterElements`` puts it back in class order.
     """
     order = np.argsort(-p, axis=-1, kind="stable")
-    return order, np.cumsum(np.take_along_axis(p, order, axis=-1), axis=-1, dtype=p.dtype)
+    through = np.cumsum(np.take_along_axis(p, order, axis=-1), axis=-1, dtype=p.dtype)
+    before = np.zeros_like(through)
+    before[:, 1:] = through[:, :-1]
+    by_class = np.empty_like(before)
+    np.put_along_axis(by_class, order, before, axis=-1)
+    return by_class
 
 
 def _true_class_scores(p: np.ndarray, y: np.ndarray, score: str) -> np.ndarray:
@@ -164,9 +172,7 @@ def _true_class_scores(p: np.ndarray, y: np.ndarray, score: str) -> np.ndarray:
     """
     if score == "las":
         return -np.take_along_axis(p, y[:, None], axis=1)[:, 0]
-    order, through = _sorted_running_sums(p)
-    position = np.argmax(order == y[:, None], axis=1)
-    return np.take_along_axis(through, position[:, None], axis=1)[:, 0]
+    return np.take_along_axis(_mass_before(p), y[:, None], axis=1)[:, 0]
 
 
 @dataclass(frozen=True)
@@ -349,12 +355,7 @@ def class_set(probabilities: np.ndarray, threshold: SetThreshold) -> np.ndarray:
     t = threshold.vector(p.shape[1]).astype(p.dtype)
     if threshold.score == "las":
         return np.asarray(p >= t, dtype=bool)
-    order, through = _sorted_running_sums(p)
-    before = np.zeros_like(through)
-    before[:, 1:] = through[:, :-1]  # exclusive running sum: the same additions, one place later
-    by_class = np.empty_like(before)
-    np.put_along_axis(by_class, order, before, axis=-1)
-    return np.asarray(by_class < t, dtype=bool)
+    return np.asarray(_mass_before(p) <= t, dtype=bool)
 
 
 def class_set_size(membership: np.ndarray) -> np.ndarray:

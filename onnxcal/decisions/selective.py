@@ -25,10 +25,11 @@ Two published procedures:
     rejected; any procedure controlling the family-wise error rate at delta
     gives the guarantee above for every rejected threshold (LTT Theorem 1,
     from memory), and the lowest one is returned (the most rows accepted).
-    With ``starts`` > 1 the grid is tested by that many fixed sequences
-    from evenly spaced start points, each at delta / starts (Bonferroni
-    over the sequences): a sequence that starts where too few rows are
-    accepted to certify anything does not end the search.
+    By default the grid is tested by ``starts`` = 10 fixed sequences from
+    evenly spaced start points, each at delta / 10 (Bonferroni over the
+    sequences): a sequence that starts where too few rows are accepted to
+    certify anything then does not end the search. ``starts=1`` is plain
+    fixed-sequence testing.
 ``"sgr"``
     Selection with guaranteed risk (Geifman & El-Yaniv, NeurIPS 2017,
     Algorithm 1): a binary search over the rows' own sorted confidences,
@@ -51,7 +52,7 @@ from ._inputs import Predictions, check_fraction, compute_dtype, predictions
 from .binomial import Proportion, proportion, tail_pvalue, upper_bound
 
 DEFAULT_CONFIDENCE = 0.95
-DEFAULT_STARTS = 10  # fixed sequences over the built-in grid
+DEFAULT_STARTS = 10  # fixed sequences, delta split evenly between them
 GRID_POINTS = 200
 METHODS = ("ltt", "sgr")
 
@@ -176,13 +177,34 @@ def threshold_grid(
     return np.unique(np.r_[grid, 0.0])[::-1]
 
 
+class _Tally:
+    """The rows sorted by confidence, to count the rows (and the wrong ones) above any threshold."""
+
+    def __init__(self, conf: np.ndarray, wrong: np.ndarray) -> None:
+        order = np.argsort(conf, kind="stable")
+        self.sorted = conf[order]
+        self.wrong_from = np.r_[np.cumsum(wrong[order][::-1])[::-1], 0]  # wrong rows at sorted index >= i
+
+    def at(self, thresholds: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Rows with confidence >= each threshold, and how many of them are wrong."""
+        first = np.searchsorted(self.sorted, np.asarray(thresholds, dtype=self.sorted.dtype), side="left")
+        return len(self.sorted) - first, self.wrong_from[first]
+
+
 def counts_at(conf: np.ndarray, wrong: np.ndarray, thresholds: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Rows with confidence >= each threshold, and how many of them are wrong."""
-    order = np.argsort(conf, kind="stable")
-    c = conf[order]
-    suffix = np.r_[np.cumsum(wrong[order][::-1])[::-1], 0]
-    first = np.searchsorted(c, np.asarray(thresholds, dtype=c.dtype), side="left")
-    return len(c) - first, suffix[first]
+    return _Tally(conf, wrong).at(thresholds)
+
+
+def start_points(grid_size: int, starts: int) -> np.ndarray:
+    """Where the fixed sequences start: ``starts`` evenly spaced grid indices (fewer on a short grid).
+
+    Examples
+    --------
+    >>> start_points(200, 10).tolist()
+    [0, 22, 44, 66, 88, 111, 133, 155, 177, 199]
+    """
+    return np.unique(np.round(np.linspace(0, grid_size - 1, min(starts, grid_size))).astype(np.intp))
 
 
 def fixed_sequences(pvalues: np.ndarray, delta: float, starts: int) -> int | None:
@@ -201,7 +223,7 @@ def fixed_sequences(pvalues: np.ndarray, delta: float, starts: int) -> int | Non
     True
     """
     g = len(pvalues)
-    begin = np.unique(np.round(np.linspace(0, g - 1, min(starts, g))).astype(np.intp))
+    begin = start_points(g, starts)
     ok = pvalues <= delta / len(begin)
     fail_at = np.where(ok, g, np.arange(g))
     next_fail = np.minimum.accumulate(fail_at[::-1])[::-1]  # first failing index >= j
@@ -260,17 +282,20 @@ class AcceptThreshold:
         }
 
 
-def _result(
-    conf: np.ndarray, wrong: np.ndarray, tau: float | None, bound: float, error: float, confidence: float,
-    method: str, detail: str,
+def _found(
+    n: int, chosen: tuple[float, int, int, float], error: float, confidence: float, method: str, detail: str
 ) -> AcceptThreshold:
-    n = len(conf)
-    if tau is None:
-        return AcceptThreshold(None, error, confidence, method, n, proportion(0, n), proportion(0, 0), math.nan, detail)
-    n_acc, n_wrong = (int(v[0]) for v in counts_at(conf, wrong, np.array([tau])))
+    tau, n_acc, n_wrong, bound = chosen
     return AcceptThreshold(
         tau, error, confidence, method, n, proportion(n_acc, n), proportion(n_wrong, n_acc), bound, detail
     )
+
+
+def _none(
+    n: int, closest: tuple[float, int, int, float], error: float, confidence: float, method: str
+) -> AcceptThreshold:
+    detail = _none_detail(error, confidence, n, closest)
+    return AcceptThreshold(None, error, confidence, method, n, proportion(0, n), proportion(0, 0), math.nan, detail)
 
 
 def _none_detail(error: float, confidence: float, n: int, best: tuple[float, int, int, float]) -> str:
@@ -285,36 +310,33 @@ def _none_detail(error: float, confidence: float, n: int, best: tuple[float, int
 def _ltt(
     conf: np.ndarray, wrong: np.ndarray, error: float, confidence: float, grid: np.ndarray, starts: int
 ) -> AcceptThreshold:
-    delta = 1.0 - confidence
     n_acc, n_wrong = counts_at(conf, wrong, grid)
     pvalues = tail_pvalue(n_wrong, n_acc, error)
-    chosen = fixed_sequences(pvalues, delta, starts)
-    chains = len(np.unique(np.round(np.linspace(0, len(grid) - 1, min(starts, len(grid))))))
-    level = delta / chains
+    chosen = fixed_sequences(pvalues, 1.0 - confidence, starts)
+    chains = len(start_points(len(grid), starts))
+    level = (1.0 - confidence) / chains
+    j = int(np.argmin(pvalues)) if chosen is None else chosen
+    at = (float(grid[j]), int(n_acc[j]), int(n_wrong[j]), float(upper_bound(n_wrong[j], n_acc[j], level)))
     if chosen is None:
-        j = int(np.argmin(pvalues))
-        best = (float(grid[j]), int(n_acc[j]), int(n_wrong[j]), float(upper_bound(n_wrong[j], n_acc[j], level)))
-        detail = _none_detail(error, confidence, len(conf), best)
-        return _result(conf, wrong, None, math.nan, error, confidence, "ltt", detail)
+        return _none(len(conf), at, error, confidence, "ltt")
     detail = (
         f"Learn then Test: fixed-sequence testing over {len(grid)} thresholds from the highest down, "
         f"{chains} sequence{'s' if chains > 1 else ''} at level {level:.3g} each; the lowest threshold rejected"
     )
-    bound = float(upper_bound(n_wrong[chosen], n_acc[chosen], level))
-    return _result(conf, wrong, float(grid[chosen]), bound, error, confidence, "ltt", detail)
+    return _found(len(conf), at, error, confidence, "ltt", detail)
 
 
 def _sgr(conf: np.ndarray, wrong: np.ndarray, error: float, confidence: float) -> AcceptThreshold:
     m = len(conf)
     steps = math.ceil(math.log2(m)) if m > 1 else 0
     level = (1.0 - confidence) / max(steps, 1)
-    c = np.sort(conf)
+    tally = _Tally(conf, wrong)
     z_min, z_max = 1, m
     tried = []
     for _ in range(steps):  # Geifman & El-Yaniv 2017, Algorithm 1 (1-based z over ascending confidences)
         z = math.ceil((z_min + z_max) / 2)
-        theta = c[z - 1]
-        n_acc, n_wrong = (int(v[0]) for v in counts_at(conf, wrong, np.array([theta])))
+        theta = tally.sorted[z - 1]
+        n_acc, n_wrong = (int(v[0]) for v in tally.at(np.array([theta])))
         bound = float(upper_bound(n_wrong, n_acc, level))
         tried.append((float(theta), n_acc, n_wrong, bound))
         if bound < error:
@@ -323,14 +345,13 @@ def _sgr(conf: np.ndarray, wrong: np.ndarray, error: float, confidence: float) -
             z_min = z
     good = [t for t in tried if t[3] < error]
     if not good:
-        best = min(tried, key=lambda t: t[3]) if tried else (float(c[-1]), 1, int(wrong.sum()), 1.0)
-        return _result(conf, wrong, None, math.nan, error, confidence, "sgr", _none_detail(error, confidence, m, best))
-    tau, _, _, bound = min(good, key=lambda t: t[0])
+        closest = min(tried, key=lambda t: t[3]) if tried else (float(conf[0]), 1, int(wrong[0]), 1.0)
+        return _none(m, closest, error, confidence, "sgr")
     detail = (
         f"selection with guaranteed risk: binary search in {steps} steps over the rows' confidences, "
         f"each bound at level {level:.3g}; the lowest threshold whose bound is under the target"
     )
-    return _result(conf, wrong, tau, bound, error, confidence, "sgr", detail)
+    return _found(m, min(good, key=lambda t: t[0]), error, confidence, "sgr", detail)
 
 
 def _grid(thresholds: np.ndarray | None, n_classes: int, dtype: np.dtype) -> np.ndarray:
@@ -343,27 +364,26 @@ def _grid(thresholds: np.ndarray | None, n_classes: int, dtype: np.dtype) -> np.
 
 def _choose(
     conf: np.ndarray, wrong: np.ndarray, error: float, confidence: float, method: str,
-    thresholds: np.ndarray | None, starts: int | None, n_classes: int,
+    thresholds: np.ndarray | None, starts: int, n_classes: int,
 ) -> AcceptThreshold:
     if method == "sgr":
         return _sgr(conf, wrong, error, confidence)
-    chains = starts if starts is not None else (DEFAULT_STARTS if thresholds is None else 1)
-    return _ltt(conf, wrong, error, confidence, _grid(thresholds, n_classes, conf.dtype), chains)
+    return _ltt(conf, wrong, error, confidence, _grid(thresholds, n_classes, conf.dtype), starts)
 
 
-def _check_options(error: float, confidence: float, method: str, starts: int | None) -> None:
+def _check_options(error: float, confidence: float, method: str, starts: int) -> None:
     check_fraction(error, "the error target", "e.g. 0.02 for at most 2 % wrong among accepted rows")
     check_fraction(confidence, "the confidence", "e.g. 0.95")
     if method not in METHODS:
         raise OnnxcalError(f"unknown threshold method {method!r}", f"use one of: {', '.join(METHODS)}")
-    if starts is not None and (isinstance(starts, bool) or not isinstance(starts, int) or starts < 1):
+    if isinstance(starts, bool) or not isinstance(starts, int) or starts < 1:
         raise OnnxcalError(f"starts must be a positive integer, got {starts!r}")
 
 
 def choose_accept_threshold(
     probabilities: np.ndarray, labels: np.ndarray, rows: np.ndarray, *, error: float,
     confidence: float = DEFAULT_CONFIDENCE, method: str = "ltt", thresholds: np.ndarray | None = None,
-    starts: int | None = None,
+    starts: int = DEFAULT_STARTS,
 ) -> AcceptThreshold:
     """Choose tau so the error among rows with confidence >= tau is <= ``error`` with probability ``confidence``.
 
@@ -391,9 +411,11 @@ def choose_accept_threshold(
     thresholds : ndarray, optional
         LTT's grid, fixed before these rows' labels are seen (e.g.
         :func:`threshold_grid` of other rows). Default :func:`default_thresholds`.
-    starts : int, optional
-        LTT's number of fixed sequences (delta is split evenly between
-        them). Default 10 over the built-in grid, 1 over a grid you pass.
+    starts : int, default 10
+        LTT's number of fixed sequences, from evenly spaced points of the
+        grid (delta is split evenly between them); 1 is plain
+        fixed-sequence testing from the top, which stops for good where the
+        top thresholds accept too few rows to certify anything.
 
     Returns
     -------
@@ -419,7 +441,7 @@ def choose_accept_threshold(
     --------
     >>> p = np.r_[np.full(29, 0.97), np.full(11, 0.7)]        # P(class 1), one sigmoid
     >>> y = np.r_[np.ones(29, int), np.zeros(10, int), 1]     # the 0.7s: 10 of 11 wrong
-    >>> r = choose_accept_threshold(p, y, np.arange(40), error=0.1, thresholds=[0.95, 0.6])
+    >>> r = choose_accept_threshold(p, y, np.arange(40), error=0.1, thresholds=[0.95, 0.6], starts=1)
     >>> r.threshold, r.accepted.successes, r.errors.successes
     (0.95, 29, 0)
     """
@@ -438,7 +460,7 @@ def choose_accept_threshold(
 def choose_accept_thresholds_per_label(
     probabilities: np.ndarray, labels: np.ndarray, rows: np.ndarray, *, error: float,
     confidence: float = DEFAULT_CONFIDENCE, method: str = "ltt", thresholds: np.ndarray | None = None,
-    starts: int | None = None, joint: bool = True,
+    starts: int = DEFAULT_STARTS, joint: bool = True,
 ) -> tuple[AcceptThreshold, ...]:
     """One threshold per label of a multi-label (K sigmoids) model.
 
