@@ -40,6 +40,7 @@ from onnxcal.decisions import (
     upper_bound,
     verdict,
 )
+from onnxcal.decisions.conformal import _mass_before  # the running sums class_set compares, to check bitwise
 from onnxcal.decisions.selective import fixed_sequences
 from onnxcal.errors import OnnxcalError
 
@@ -567,6 +568,7 @@ def _decision_graph(n_classes: int, t: np.ndarray, q: np.ndarray, tau: float) ->
         helper.make_tensor_value_info("aps_set", TensorProto.BOOL, ["N", n_classes]),
         helper.make_tensor_value_info("accept", TensorProto.BOOL, ["N"]),
         helper.make_tensor_value_info("aps_size", TensorProto.INT64, ["N"]),
+        helper.make_tensor_value_info("before", f32, ["N", n_classes]),
     ]
     graph = helper.make_graph(nodes, "decisions", [helper.make_tensor_value_info("p", f32, ["N", n_classes])],
                               outputs, inits)
@@ -575,17 +577,25 @@ def _decision_graph(n_classes: int, t: np.ndarray, q: np.ndarray, tau: float) ->
     return model
 
 
-def test_onnx_operators_compute_the_reference_sets():
-    # Outside references: onnxruntime and onnx's ReferenceEvaluator (the ONNX spec's own implementation),
-    # on float32 probabilities with many ties (TopK breaks them by the lower index, per the spec).
+@pytest.mark.parametrize("data", ["ties", "continuous"])
+def test_onnx_operators_compute_the_reference_sets(data):
+    # Outside references: onnxruntime and onnx's ReferenceEvaluator (the ONNX spec's own implementation).
+    # On float32 probabilities with many ties (TopK breaks them by the lower index, per the spec), and on
+    # continuous ones, where the running sums must round as NumPy's left-to-right float32 sums do: equal
+    # to the bit, so the reference decides rows at the boundary as the graph does.
     rng = np.random.default_rng(21)
-    p = (rng.multinomial(16, np.ones(5) / 5, size=500) / 16).astype(np.float32)
-    t_las = np.array([0.3, 0.25, 0.5, 0.125, 0.3])
-    q_aps = np.array([0.5, 0.75, 0.25, 0.875, 0.5])
-    las = SetThreshold("las", 0.9, True, tuple(t_las), (50,) * 5, (46,) * 5, "float32")
-    aps = SetThreshold("aps", 0.9, True, tuple(q_aps), (50,) * 5, (46,) * 5, "float32")
-    model = _decision_graph(5, t_las, q_aps, 0.5)
-    expected = [class_set(p, las), class_set(p, aps), accept(p, 0.5), class_set_size(class_set(p, aps))]
+    k = 5 if data == "ties" else 40
+    if data == "ties":
+        p = (rng.multinomial(16, np.ones(k) / k, size=500) / 16).astype(np.float32)
+    else:
+        p = softmax(rng.normal(0, 2, (2000, k)), axis=1).astype(np.float32)
+    t_las = rng.choice([0.125, 0.25, 0.3, 0.5], k)
+    q_aps = rng.choice([0.25, 0.5, 0.75, 0.875, 0.95], k)
+    las = SetThreshold("las", 0.9, True, tuple(t_las), (50,) * k, (46,) * k, "float32")
+    aps = SetThreshold("aps", 0.9, True, tuple(q_aps), (50,) * k, (46,) * k, "float32")
+    model = _decision_graph(k, t_las, q_aps, 0.5)
+    expected = [class_set(p, las), class_set(p, aps), accept(p, 0.5), class_set_size(class_set(p, aps)),
+                _mass_before(p)]
     session = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
     for got in (session.run(None, {"p": p}), ReferenceEvaluator(model).run(None, {"p": p})):
         for g, e in zip(got, expected, strict=True):
