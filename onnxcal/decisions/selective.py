@@ -78,8 +78,9 @@ def accept(probabilities: np.ndarray, threshold: float | np.ndarray, kind: str =
     keepdims=0), tau)``; binary and multi-label ``GreaterOrEqual(Max(p,
     Sub(1, p)), tau)`` (one tau per label for multi-label, broadcast over
     rows). ``tau`` is an initializer of the compute dtype; float16
-    probabilities are cast to float32 first. GreaterOrEqual needs opset 12;
-    ``Not(Less(...))`` is the same for opset 11.
+    probabilities are cast to float32 first. GreaterOrEqual needs opset 12
+    (``Not(Less(...))`` is the same for opset 11); ReduceMax takes its axes
+    as an input from opset 18.
 
     Parameters
     ----------
