@@ -154,7 +154,7 @@ def default_thresholds(n_classes: int, points: int = GRID_POINTS) -> np.ndarray:
 
 
 def threshold_grid(
-    confidence: np.ndarray, n_rows: int, error: float, confidence_level: float = DEFAULT_CONFIDENCE,
+    other_confidences: np.ndarray, n_rows: int, error: float, confidence: float = DEFAULT_CONFIDENCE,
     points: int = 100,
 ) -> np.ndarray:
     """A grid from the confidences of OTHER rows (e.g. those the map was fitted on).
@@ -172,9 +172,9 @@ def threshold_grid(
     >>> g.tolist()   # accept 29 / 290 = 10 % and 100 % of the other rows, then everything
     [0.95, 0.5, 0.0]
     """
-    top = min(1.0, rows_needed(error, confidence_level) / n_rows)
+    top = min(1.0, rows_needed(error, confidence) / n_rows)
     coverage = np.linspace(top, 1.0, points)
-    grid = np.quantile(np.asarray(confidence, dtype=np.float64), 1.0 - coverage, method="lower")
+    grid = np.quantile(np.asarray(other_confidences, dtype=np.float64), 1.0 - coverage, method="lower")
     return np.unique(np.r_[grid, 0.0])[::-1]
 
 
