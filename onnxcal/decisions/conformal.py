@@ -24,16 +24,21 @@ Scores (``score``):
     smallest sets on average among sets with this coverage when p is the
     true conditional distribution (their Theorem 1, from memory).
 ``"aps"``
-    Adaptive prediction sets (Romano, Sesia & Candes, NeurIPS 2020),
-    deterministic form: sort the classes by p descending, s(x, y) = the
-    running sum of p through y. The set takes classes in that order while
-    the running sum before them is below q, so it always holds the top
-    class: C(x) = {y : sum of p ranked before y < q}. It contains {y : s(x,
-    y) <= q}, so the lower bound 1 - alpha holds; the upper bound does not
-    (it includes the class that crosses q, which the randomised form of the
-    paper would include only with a probability). The randomised form needs
-    a uniform random number per row, which a deployed graph has no input
-    for; this is the form of Angelopoulos & Bates 2021, sec. 2.1 (from memory).
+    Adaptive prediction sets (Romano, Sesia & Candes, NeurIPS 2020). Their
+    score is randomised: (mass of the classes ranked before y) + u * p_y,
+    u uniform on [0, 1], classes ranked by p descending. A deployed graph
+    has no random input (and a random operator would make its outputs
+    unverifiable), so this is the deterministic form with u = 0: s(x, y) =
+    the sum of p over the classes ranked before y (ties: lower index
+    first), C(x) = {y : s(x, y) <= q}, the top classes while the mass before
+    them is <= q. An ordinary conformal score, so both bounds hold, except
+    that the top class always scores 0, an atom: the upper bound needs q >
+    0 (when the top class is right on at least ceil((n + 1)(1 - alpha)) of
+    the rows, q = 0 and every set is the top class alone, covering as often
+    as the model is right). The set always holds the top class. (u = 1 can
+    give empty sets to the most confident rows; taking q from the u = 1
+    scores but including the class that crosses it, as some accounts do,
+    keeps the lower bound and over-covers.)
 
 With ``class_conditional``, each class y gets its own quantile q_y from the
 rows labelled y (a Mondrian conformal predictor: Vovk et al. 2005, sec. 4.5
@@ -168,7 +173,7 @@ def _true_class_scores(p: np.ndarray, y: np.ndarray, score: str) -> np.ndarray:
     """Each row's score, in a form whose order is exact in p's dtype.
 
     LAS: -p_y (ranks rows exactly as 1 - p_y does, without the rounding of
-    1 - p); APS: the running sum through y as the graph adds it.
+    1 - p); APS: the mass ranked before y, as the graph adds it.
     """
     if score == "las":
         return -np.take_along_axis(p, y[:, None], axis=1)[:, 0]
@@ -190,8 +195,9 @@ class SetThreshold:
         One threshold per class (Mondrian) or one for all.
     thresholds : tuple of float
         One value, or one per class. LAS: t = 1 - q (the k-th largest true
-        class probability, -inf when q is infinite); APS: q (inf when
-        infinite). Exact in ``dtype``.
+        class probability, -inf when q is infinite); APS: q, one of the
+        masses ranked before the true class (inf when infinite). Exact in
+        ``dtype``.
     n : tuple of int
         Rows each quantile was taken over (per class when class-conditional).
     rank : tuple of int
@@ -323,10 +329,12 @@ def class_set(probabilities: np.ndarray, threshold: SetThreshold) -> np.ndarray:
       ``Not(Less(p, t))`` before).
     - APS: ``values, indices = TopK(p, K, axis=-1, largest=1, sorted=1)``;
       ``before = CumSum(values, axis=-1, exclusive=1)``;
-      ``before_by_class = ScatterElements(zeros_like(p), indices, before,
-      axis=-1)``; ``Less(before_by_class, q)``. TopK with ``largest`` and
-      ``sorted`` and ScatterElements need opset 11, CumSum opset 11; K is
-      the static class count (or ``Shape`` -> ``Gather`` for a dynamic one).
+      ``before_by_class = ScatterElements(p, indices, before, axis=-1)``
+      (``indices`` is a permutation, so every element of ``p`` is
+      replaced); ``LessOrEqual(before_by_class, q)`` (opset 12;
+      ``Not(Greater(...))`` before). TopK with ``largest`` and ``sorted``,
+      CumSum and ScatterElements need opset 11; K is the static class count
+      (or ``Shape`` -> ``Gather`` for a dynamic one).
 
     Parameters
     ----------
