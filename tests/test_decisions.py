@@ -499,7 +499,8 @@ def test_split_conformal_coverage_over_1000_splits(conformal_draws, score):
     assert abs(overall.mean() - ranks[0, 0] / (n + 1)) < 4 * se
     if score == "aps":
         # The upper bound needs q > 0: the mass before the true class is 0 whenever it is the top class,
-        # an atom. Here the top class is right on about 60 % of rows, less than 1 - alpha, so q > 0.
+        # an atom. Here the top class is right on about 64 % of rows (61 to 66 % per class), less than
+        # 1 - alpha, so q > 0.
         assert np.all(q > 0)
 
 
@@ -519,7 +520,7 @@ def test_class_conditional_coverage_over_1000_splits(conformal_draws, score):
         assert se < (upper - 0.9) / 4
 
 
-def test_aps_sets_always_hold_the_top_class_and_cover_at_least_as_the_bound(conformal_draws):
+def test_aps_sets_always_hold_the_top_class(conformal_draws):
     pool, idx, labels = conformal_draws
     t = choose_set_threshold(pool[idx[0]], labels[0], np.arange(idx.shape[1]), coverage=0.9, score="aps")
     member = class_set(pool, t)
