@@ -119,8 +119,8 @@ def scores_of(model: onnx.ModelProto, site: graph.ScoreSite, feed: dict, runner)
     """The original model's class scores as rows (class axis last), float64."""
     exposed, name = graph.expose_scores(model, site)
     (z,) = runner(graph.expose(exposed, [name]), feed, [name])
-    rows = as_rows(np.asarray(z), site.class_axis)
-    return (log_probabilities(rows) if site.from_probabilities else rows).astype(np.float64)
+    # expose_scores builds the logits as the patch does (log p, a classifier's raw scores, ...)
+    return as_rows(np.asarray(z), site.class_axis).astype(np.float64)
 
 
 def reference(z: np.ndarray, t: float, activation: str) -> np.ndarray:
@@ -133,7 +133,7 @@ def reference(z: np.ndarray, t: float, activation: str) -> np.ndarray:
 
 
 def do_patch(model, t=T, **kw):
-    return graph.patch(model, t, source_sha256=SHA, source_path="/src/model.onnx", **kw)
+    return graph.patch(model, t, source_sha256=SHA, source_name="model.onnx", **kw)
 
 
 def calibrated_rows(patched: onnx.ModelProto, feed: dict, runner) -> np.ndarray:
@@ -532,8 +532,10 @@ def _shift(a: np.ndarray) -> None:
     a += 1e-3
 
 
-def _record_check(run_cli, path: Path, val: Path) -> tuple[int, dict]:
-    r = run_cli("verify", path, "--data", val, "--json")
+def _record_check(run_cli, path: Path, val: Path, original: Path) -> tuple[int, dict]:
+    # The record names the original by file name; verify looks for it beside the patched model,
+    # so a patched model written elsewhere is verified with --original.
+    r = run_cli("verify", path, "--data", val, "--original", original, "--json")
     return r.code, next(c for c in json.loads(r.out)["checks"] if c["name"] == "record")
 
 
@@ -547,14 +549,14 @@ def test_calibrate_fold_then_verify_through_the_cli(tmp_path, run_cli, model, va
     assert record.folded and record.method == ("temperature" if "--multilabel" in options else options[1])
     appended = 1 if "--drop-logits" in options else 0  # the Softmax after raw logits
     assert len(patched.graph.node) == len(original.graph.node) + appended
-    code, check = _record_check(run_cli, out, val)
+    code, check = _record_check(run_cli, out, val, model)
     assert code == 0 and check["passed"] and check["value"] <= check["limit"]
     # A folded weight changed by 0.1 % (its largest entry), or a bias by 1e-3: verify fails.
     fold = record.changes["fold"]
     _tamper(out, fold["weight"], _scale_largest_entry)
-    code, check = _record_check(run_cli, out, val)
+    code, check = _record_check(run_cli, out, val, model)
     assert code == 1 and not check["passed"]
     graph.save_model(patched, out)
     _tamper(out, fold["bias"], _shift)
-    code, check = _record_check(run_cli, out, val)
+    code, check = _record_check(run_cli, out, val, model)
     assert code == 1 and not check["passed"]

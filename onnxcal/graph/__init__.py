@@ -6,11 +6,19 @@ rewrites work on a copy and return it, checked with
 the class scores are found and rewritten, with the ONNX operator spec
 references.
 
+The modules show the job: ``io`` (load with checked external data, save),
+``find`` (the score finder: ``match`` is a small declarative matcher,
+``patterns`` the spellings of an activation, ``passes`` the layout ops and
+post-processing walked through, ``post`` what post-processing does),
+``surgery`` (unique names, the scalings, the logits recipes), ``rewrite``
+(the rewrites, patch, unpatch, expose), ``fold`` and ``record``.
+
 Finding the scores (``find_scores``): walk back from the chosen output
-through ops that keep every class's values (Identity, Cast, Reshape,
-Flatten, Squeeze, Unsqueeze, Transpose, and on ai.onnx.ml probabilities
-Normalizer and ZipMap), tracking the class axis, to the last Softmax,
-LogSoftmax or Sigmoid, or to an ai.onnx.ml classifier's probability output.
+through layout ops (Identity, Cast, Reshape, Flatten, Squeeze, Unsqueeze,
+Transpose, tracking the class axis) and post-processing that keeps the
+probabilities meaningful (a constant factor, a clip, one class taken, a
+quantization round trip, an L1 normalisation, ZipMap), trying at every
+tensor the spellings of an activation in ``patterns.SPELLINGS``.
 
 The rewrites (one function each), all built on ``rewrite._Surgery``, which gives
 unique deterministic names and notes every change so it can be undone:
@@ -34,19 +42,19 @@ so patches never stack.
 The calibration record is JSON in ``metadata_props`` under ``RECORD_KEY``.
 """
 
+from . import post
 from .find import (
-    ACTIVATION_CHOICES,
-    ACTIVATIONS,
+    HOLDS,
     ModelInfo,
     ScoreSite,
     describe,
+    describe_site,
     find_scores,
     fit_kind,
+    read_as,
 )
 from .fold import FoldedValues, folded_values
-from .io import (
-    _model_tensors as _model_tensors,
-)
+from .io import _model_tensors as _model_tensors
 from .io import (
     external_data_files,
     external_data_path,
@@ -59,24 +67,23 @@ from .record import (
     check_record,
     parameter_values,
     read_record,
+    read_records,
     temperature_dtype,
     temperature_value,
 )
-from .record import (
-    _write_record as _write_record,
-)
-from .rewrite import (
+from .record import _write_record as _write_record
+from .record import _write_records as _write_records
+from .rewrite import at_identity, check_temperature, expose, expose_scores, patch, unpatch
+from .surgery import (
     ScaleFn,
-    check_temperature,
+    default_opset,
     divide_by_temperature,
-    expose,
-    expose_scores,
     multiply_add,
-    patch,
     scale_fn,
-    unpatch,
 )
 from .tensors import (
+    ACTIVATION_CHOICES,
+    ACTIVATIONS,
     COMPUTE_DTYPES,
     DEFAULT_OUTPUT_NAME,
     EXTERNAL_THRESHOLD,
@@ -89,19 +96,15 @@ from .tensors import (
     tensor_spec,
     unique_name,
 )
-from .tensors import (
-    _attr as _attr,
-)
-from .tensors import (
-    _initializer as _initializer,
-)
+from .tensors import _attr as _attr
+from .tensors import _initializer as _initializer
 
 __all__ = [
-    "ACTIVATIONS", "ACTIVATION_CHOICES", "COMPUTE_DTYPES", "DEFAULT_OUTPUT_NAME", "EXTERNAL_THRESHOLD",
-    "ML_DOMAIN", "RECORD_FORMAT", "RECORD_KEY", "FoldedValues", "ModelInfo", "Record", "ScaleFn",
-    "ScoreSite", "TensorSpec", "check_record", "check_temperature", "describe", "divide_by_temperature",
-    "expose", "expose_scores", "external_data_files", "external_data_path", "find_scores", "fit_kind",
-    "folded_values", "load_model", "model_files", "multiply_add", "np_dtype", "opset_version",
-    "parameter_values", "patch", "read_record", "save_model", "scale_fn", "temperature_dtype",
-    "temperature_value", "tensor_spec", "unique_name", "unpatch",
+    "ACTIVATIONS", "ACTIVATION_CHOICES", "COMPUTE_DTYPES", "DEFAULT_OUTPUT_NAME", "EXTERNAL_THRESHOLD", "HOLDS",
+    "ML_DOMAIN", "RECORD_FORMAT", "RECORD_KEY", "FoldedValues", "ModelInfo", "Record", "ScaleFn", "ScoreSite",
+    "TensorSpec", "at_identity", "check_record", "check_temperature", "default_opset", "describe", "describe_site",
+    "divide_by_temperature", "expose", "expose_scores", "external_data_files", "external_data_path",
+    "find_scores", "fit_kind", "folded_values", "load_model", "model_files", "multiply_add", "np_dtype",
+    "opset_version", "parameter_values", "patch", "post", "read_as", "read_record", "read_records",
+    "save_model", "scale_fn", "temperature_dtype", "temperature_value", "tensor_spec", "unique_name", "unpatch",
 ]

@@ -25,7 +25,7 @@ from .tensors import (
 if TYPE_CHECKING:  # imported for annotations only (record and rewrite import this module)
     from .find import ScoreSite
     from .record import Record
-    from .rewrite import _Surgery
+    from .surgery import _Surgery
 
 
 # -- folding ---------------------------------------------------------------
@@ -100,7 +100,8 @@ def _fold_site(model: onnx.ModelProto, site: ScoreSite, drop_logits: bool, per_c
                 "add --drop-logits to replace it by the probabilities, or " + why,
             )
     while True:
-        if uses.get(tensor, 0) != 1:
+        # a written-out softmax may read the logits twice, both times inside the activation
+        if uses.get(tensor, 0) != (max(1, len(site.rewire)) if tensor == site.scores else 1):
             raise OnnxcalError(
                 f"--fold: tensor '{tensor}' is used by more than the activation, so scaling "
                 "its producer would change other outputs", why,

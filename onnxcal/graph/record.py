@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 from dataclasses import asdict, dataclass, field, replace
+from pathlib import PurePosixPath, PureWindowsPath
 
 import numpy as np
 import onnx
@@ -13,6 +14,7 @@ from .. import __version__
 from ..errors import OnnxcalError, first_line
 from ..scaling import Scaling, check_scaling
 from .fold import folded_values
+from .post import from_json
 from .tensors import RECORD_FORMAT, RECORD_KEY, _initializer
 
 
@@ -40,8 +42,10 @@ class Record:
         method has no single T).
     source_sha256 : str
         SHA-256 of the uncalibrated model file.
-    source_path : str
-        Path of the uncalibrated model when it was patched.
+    source_name : str
+        File name (not the path: the same patch gives the same bytes from
+        any folder) of the uncalibrated model. Records of format 2 held its
+        path (``source_path``); reading one keeps the name.
     fit : dict
         Fit summary (method, metrics, intervals), as in FIT.json.
     method : str
@@ -68,6 +72,18 @@ class Record:
         output axis hold the classes, the bias's dims and values before
         folding) and ``rounded`` (how many times earlier folds and unfolds
         rounded the weights, when re-patching a folded model).
+    holds : str
+        What ``source_output`` holds: logits, probabilities or log-probabilities.
+    spelling : str
+        The pattern the score finder recognised (``ScoreSite.spelling``).
+    logits_from : str
+        How the logits were obtained (``ScoreSite.logits_from``).
+    post : list of dict
+        The post-processing between the activation and the output
+        (``post.to_json``); verify's reference applies it.
+    fitted_on_sha256 : str
+        SHA-256 of the model the parameters were fitted on, when it is a
+        twin of this one (``--fitted-on-twin``); "" when it is the source.
     onnxcal_version : str
     format : int
     """
@@ -79,7 +95,7 @@ class Record:
     activation: str
     temperature_initializer: str
     source_sha256: str
-    source_path: str
+    source_name: str
     fit: dict = field(default_factory=dict)
     method: str = "temperature"
     parameters: dict = field(default_factory=dict)
@@ -89,6 +105,11 @@ class Record:
     compute_dtype: str | None = None
     source_output: str = ""
     changes: dict = field(default_factory=dict)
+    holds: str = ""
+    spelling: str = ""
+    logits_from: str = "tensor"
+    post: list = field(default_factory=list)
+    fitted_on_sha256: str = ""
     onnxcal_version: str = __version__
     format: int = RECORD_FORMAT
 
@@ -108,6 +129,7 @@ _RECORD_TYPES = {
     "folded": (bool,),
     "format": (int,),
     **{k: (dict,) for k in ("fit", "parameters", "initializers", "changes")},
+    "post": (list,),
 }
 _CHANGE_LISTS = ("nodes", "initializers", "outputs", "value_info", "scaled")
 
@@ -129,41 +151,71 @@ def _check_record_fields(data) -> None:
         raise TypeError("changes 'renamed' is not a map of names")
 
 
-def read_record(model: onnx.ModelProto) -> Record | None:
-    """Return the onnxcal calibration record of ``model``, or None.
+def _from_dict(data) -> Record:
+    """A Record from its JSON form (format 2 or 3), checked."""
+    _check_record_fields(data)
+    data = dict(data)
+    if "source_path" in data:  # format 2 held the path; keep the file name only
+        path = data.pop("source_path")
+        data.setdefault("source_name", PureWindowsPath(path).name if "\\" in path else PurePosixPath(path).name)
+    if not all(isinstance(item, dict) for item in data.get("post", [])):
+        raise TypeError("field 'post' is not a list of objects")
+    record = Record(**data)
+    if not record.parameters and record.temperature is not None:  # written before vector scaling
+        record = replace(
+            record,
+            parameters={"temperature": record.temperature},
+            initializers={"temperature": record.temperature_initializer}
+            if record.temperature_initializer else {},
+        )
+    check_scaling(record.scaling)
+    from_json(record.post)  # every step one onnxcal knows
+    return record
+
+
+def read_records(model: onnx.ModelProto) -> tuple[Record, ...]:
+    """Every calibration record of ``model``, in the order the heads were patched (empty: none).
+
+    Format 3 stores a JSON list, one record per calibrated output; format 2
+    (one head) a single object.
 
     Raises
     ------
     OnnxcalError
         A record is present but is not valid JSON of the expected form (field
-        types, valid parameters).
+        types, valid parameters), or two records calibrate one output.
     """
     for prop in model.metadata_props:
         if prop.key == RECORD_KEY:
             try:
                 data = json.loads(prop.value)
-                _check_record_fields(data)
-                record = Record(**data)
-                if not record.parameters and record.temperature is not None:  # written before vector scaling
-                    record = replace(
-                        record,
-                        parameters={"temperature": record.temperature},
-                        initializers={"temperature": record.temperature_initializer}
-                        if record.temperature_initializer else {},
-                    )
-                check_scaling(record.scaling)
-                return record
+                records = tuple(_from_dict(d) for d in (data if isinstance(data, list) else [data]))
+                if not records:
+                    raise ValueError("it lists no record")
             except OnnxcalError as exc:
-                raise OnnxcalError(
-                    f"the model's calibration record ({RECORD_KEY}) is damaged: {exc.message}",
-                    "patch the original model again",
-                ) from exc
+                raise _damaged(exc) from exc
             except Exception as exc:  # not JSON, or not the record onnxcal writes
-                raise OnnxcalError(
-                    f"the model's calibration record ({RECORD_KEY}) is damaged: {first_line(exc)}",
-                    "patch the original model again",
-                ) from exc
-    return None
+                raise _damaged(exc) from exc
+            outputs = [r.output for r in records]
+            if len(set(outputs)) != len(outputs):
+                raise _damaged(ValueError(f"two records calibrate output '{max(outputs, key=outputs.count)}'"))
+            return records
+    return ()
+
+
+def read_record(model: onnx.ModelProto, output: str | None = None) -> Record | None:
+    """The calibration record of ``output`` (its calibrated or its original output name),
+    or without ``output`` the one patched last; None when there is none.
+
+    Raises
+    ------
+    OnnxcalError
+        As :func:`read_records`.
+    """
+    records = read_records(model)
+    if output is None:
+        return records[-1] if records else None
+    return next((r for r in records if output in (r.output, r.source_output)), None)
 
 
 def _damaged(exc: Exception) -> OnnxcalError:
@@ -272,11 +324,17 @@ def temperature_dtype(model: onnx.ModelProto, record: Record) -> str | None:
 # -- records and undo ------------------------------------------------------
 
 
-def _write_record(model: onnx.ModelProto, record: Record | None) -> None:
+def _write_records(model: onnx.ModelProto, records: list[Record] | tuple[Record, ...]) -> None:
+    """Store ``records`` (format 3: a JSON list) in ``model``'s metadata, or remove them."""
     keep = [p for p in model.metadata_props if p.key != RECORD_KEY]
     del model.metadata_props[:]
     model.metadata_props.extend(keep)
-    if record is not None:
+    if records:
         entry = model.metadata_props.add()
         entry.key = RECORD_KEY
-        entry.value = json.dumps(record.to_dict(), sort_keys=True)
+        entry.value = json.dumps([r.to_dict() for r in records], sort_keys=True)
+
+
+def _write_record(model: onnx.ModelProto, record: Record | None) -> None:
+    """Store one record (the model's only one), or none."""
+    _write_records(model, [] if record is None else [record])

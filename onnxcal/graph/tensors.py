@@ -8,10 +8,8 @@ import numpy as np
 import onnx
 from onnx import helper, numpy_helper
 
-from ..errors import OnnxcalError
-
 RECORD_KEY = "onnxcal.calibration"
-RECORD_FORMAT = 2
+RECORD_FORMAT = 3
 DEFAULT_OUTPUT_NAME = "probabilities"
 ML_DOMAIN = "ai.onnx.ml"
 
@@ -62,11 +60,12 @@ class TensorSpec:
 
 
 def opset_version(model: onnx.ModelProto) -> int:
-    """Opset of the default ONNX domain."""
+    """Opset of the default ONNX domain; 0 when the model imports none (e.g. a
+    converter's export made only of ai.onnx.ml operators)."""
     for imp in model.opset_import:
         if imp.domain in ("", "ai.onnx"):
             return int(imp.version)
-    raise OnnxcalError("model has no opset import for the default ONNX domain")
+    return 0
 
 
 def _dims(vi: onnx.ValueInfoProto) -> tuple[int | str | None, ...] | None:

@@ -172,7 +172,7 @@ def bad_models(d: Path, rng: np.random.Generator) -> None:
 
     # the good model patched, then its record made to disagree with its graph
     patched = onnx.load(str(d / "patched.onnx"))
-    record = json.loads(next(p.value for p in patched.metadata_props if p.key == "onnxcal.calibration"))
+    (record,) = json.loads(next(p.value for p in patched.metadata_props if p.key == "onnxcal.calibration"))
     lost = onnx.ModelProto()
     lost.CopyFrom(patched)  # a tool removed onnxcal's Div but kept the metadata
     div = next(n for n in lost.graph.node if n.name in record["changes"]["nodes"] and n.op_type == "Div")
@@ -188,7 +188,7 @@ def bad_models(d: Path, rng: np.random.Generator) -> None:
     garbled = onnx.ModelProto()
     garbled.CopyFrom(patched)  # a record whose fields have the wrong types
     record_bad = dict(record, changes="nodes: all of them", parameters=[1, 2])
-    next(p for p in garbled.metadata_props if p.key == "onnxcal.calibration").value = json.dumps(record_bad)
+    next(p for p in garbled.metadata_props if p.key == "onnxcal.calibration").value = json.dumps([record_bad])
     _save(garbled, d / "record_garbled.onnx")
 
 
