@@ -718,8 +718,23 @@ def _latency(base, patched, dataset: Dataset, run: RunOptions, runs: int, max_ra
     return _verify.latency_check(times[0], times[1], max_ratio, batch=size, against=against)
 
 
-def _threshold_checks(rows, activation, site, dataset: Dataset, cap: Capture | None, n_bins, limits, keep=None) -> tuple:
-    """Check (4): metrics of the patched model's own outputs against the labels (the rows ``keep`` only)."""
+def _threshold_checks(
+    rows, activation, site, dataset: Dataset, cap: Capture | None, n_bins, limits, keep=None, record=None
+) -> tuple:
+    """Check (4): metrics of the patched model's own outputs against the labels (the rows ``keep`` only).
+
+    Post-processing the output carries (x100, one class of two) is undone
+    first (``graph.post.invert``).
+    """
+    post = graph.post.from_json(record.post) if record is not None else ()
+    if post:
+        rows = graph.post.invert(rows, post, site.num_classes or 0)
+        if rows is None:
+            raise OnnxcalError(
+                f"--max-ece, --max-nll and --min-accuracy need every class's probability, and output "
+                f"'{site.output}' holds one class's of {site.num_classes}",
+                "leave out the thresholds, or verify an output that holds every class",
+            )
     if activation is None:  # raw logits (a model without a record)
         logits, kind = rows, graph.fit_kind(site)
     else:

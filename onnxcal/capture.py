@@ -795,7 +795,9 @@ def probe(
     output and to see what the output holds.
     """
     exposed, name = expose_scores(model, site, also=(site.tensor,))
-    plan = plan_run(exposed, dataset, [name, site.tensor], options or RunOptions())
+    with warnings.catch_warnings():  # the capture that follows warns about the batching, once
+        warnings.simplefilter("ignore", OnnxcalWarning)
+        plan = plan_run(exposed, dataset, [name, site.tensor], options or RunOptions())
     z, values = _run_span(plan, dataset, 0, min(rows, dataset.n))
     return as_rows(z, site.class_axis), output_rows(values, site)
 

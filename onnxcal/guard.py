@@ -25,7 +25,7 @@ about K * 5e-4 of rounding, common practice), values lie in [0, 1] within
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 from scipy.special import logsumexp
@@ -48,7 +48,6 @@ class RowStats:
     unit: int = 0
     saturated: int = 0
     k: int = 0
-    labels: set = field(default_factory=set)
 
     def add(self, rows: np.ndarray) -> None:
         """Count ``rows`` (n x K, class axis last); NaN rows count as neither."""
@@ -151,6 +150,6 @@ def label_coverage(labels: np.ndarray, k: int) -> tuple[str | None, str | None]:
             f"({n} samples would cover about {expected:.0f} of {k} equally likely classes)")
     if d <= k / 4 and d <= expected / 4:
         return what, None
-    if d < k / 2 and d < expected / 2:
+    if n >= 2 * k and d < k / 2 and d < expected / 2:  # with fewer samples, missing classes are no surprise
         return None, what
     return None, None

@@ -23,7 +23,7 @@ import onnx
 from . import graph
 from . import guard as _guard
 from .capture import RunOptions, probe, run_model
-from .data import Dataset
+from .data import Dataset, check_labels
 from .errors import OnnxcalError, OnnxcalWarning
 from .graph import Record, ScoreSite
 from .verify import Check, identity_check, output_tolerance, reference_probabilities, skipped, tolerance
@@ -166,9 +166,14 @@ def warn_saturated(site: ScoreSite, stats: _guard.RowStats | None) -> None:
 
 
 def check_label_coverage(labels: np.ndarray, k: int, site: ScoreSite, class_names, source: str) -> None:
-    """Refuse (or warn about) an output with far more values per row than the labels have classes."""
-    if class_names is not None or np.ndim(labels) != 1 or site.takes_one:
+    """Refuse (or warn about) an output with far more values per row than the labels have classes.
+
+    The labels are checked first (class indices in [0, K)), so a bad label
+    is reported as such.
+    """
+    if class_names is not None or np.ndim(labels) != 1 or site.takes_one or k < 2:
         return
+    check_labels(labels, len(labels), k, source)
     refuse, warn = _guard.label_coverage(labels, k)
     if refuse is not None:
         raise OnnxcalError(

@@ -21,11 +21,11 @@ import onnx
 import onnxruntime as ort
 import pytest
 import scipy.special
+from conftest import FIXTURES
 from onnx.reference import ReferenceEvaluator
 
-from conftest import FIXTURES
 from onnxcal import api, graph
-from onnxcal.capture import as_rows, log_probabilities
+from onnxcal.capture import as_rows
 from onnxcal.errors import OnnxcalError
 from onnxcal.scaling import Scaling
 from onnxcal.verify import folded_record_check, tolerance
@@ -346,18 +346,25 @@ def test_transpose_softmax_transpose_is_tracked(models):
     assert site.scores == "/Transpose_output_0" and site.class_axis == 1
 
 
-def test_ml_label_follows_the_calibrated_argmax(models):
+def test_ml_label_output_is_the_classifiers_own(models):
+    # The label is the classifier's own decision: the patch leaves the node that computes it as it was
+    # (it used to recompute it from the new argmax, which changes an SVM's decisions where its label and
+    # the argmax of its Platt probabilities disagree). Temperature scaling cannot change the argmax.
     for name in ("digits_logreg_zipmap", "wine_boosted_tensor"):
         model = models[name]
         fx = BY_NAME[name]
         feed = inputs(model, fx, 64)
         patched = do_patch(model, 0.5)  # T < 1 sharpens; the argmax still stays
         label_name = patched.graph.output[0].name
+        classifier = next(n for n in model.graph.node if n.domain == "ai.onnx.ml" and n.op_type.endswith("Classifier"))
+        assert any(n.SerializeToString() == classifier.SerializeToString() or
+                   (n.op_type == classifier.op_type and n.output[0] == classifier.output[0]) for n in patched.graph.node)
+        assert not any(n.op_type in ("ArgMax", "Gather") and label_name in n.output for n in patched.graph.node)
         site = graph.find_scores(patched, fx.output)
         labels, probs = run_ort(graph.expose(patched, [site.tensor]), feed, [label_name, site.tensor])
         (before,) = run_ort(model, feed, [label_name])
-        np.testing.assert_array_equal(labels, probs.argmax(1))  # classes are 0..K-1 here
         np.testing.assert_array_equal(labels, before)
+        np.testing.assert_array_equal(labels, probs.argmax(1))  # classes are 0..K-1 here
 
 
 def test_zipmap_output_keeps_its_type_and_matches_the_tensor(models):

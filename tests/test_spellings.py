@@ -24,7 +24,6 @@ from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 
 from onnxcal import graph
-from onnxcal.errors import OnnxcalError
 from onnxcal.graph import post
 
 SHA = "0" * 64

@@ -43,16 +43,8 @@ The calibration record is JSON in ``metadata_props`` under ``RECORD_KEY``.
 """
 
 from . import post
-from .find import (
-    HOLDS,
-    ModelInfo,
-    ScoreSite,
-    describe,
-    describe_site,
-    find_scores,
-    fit_kind,
-    read_as,
-)
+from .describe import ModelInfo, describe, describe_site
+from .find import HOLDS, ScoreSite, find_scores, fit_kind, read_as
 from .fold import FoldedValues, folded_values
 from .io import _model_tensors as _model_tensors
 from .io import (
@@ -73,7 +65,14 @@ from .record import (
 )
 from .record import _write_record as _write_record
 from .record import _write_records as _write_records
-from .rewrite import at_identity, check_temperature, expose, expose_scores, patch, unpatch
+from .rewrite import (
+    at_identity,
+    check_temperature,
+    expose,
+    expose_scores,
+    patch,
+    unpatch,
+)
 from .surgery import (
     ScaleFn,
     default_opset,

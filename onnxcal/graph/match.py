@@ -98,6 +98,7 @@ class View:
         overridable = {vi.name for vi in self.graph.input}
         self._inits = {i.name: i for i in self.graph.initializer if i.name not in overridable}
         self.shapes = _Shapes(model)
+        self.output = ""  # the output being read, for messages
 
     def producer(self, tensor: str) -> int | None:
         return self.producers.get(tensor)

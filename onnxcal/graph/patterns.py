@@ -94,12 +94,12 @@ class Spelling:
     post: Callable[[Found, View], tuple[PostOp, ...]] = lambda found, view: ()
 
 
-def _in_range(axis: int, rank: int | None, what: str) -> int:
+def _in_range(axis: int, rank: int | None, view: View) -> int:
     if rank is None:
         return axis if axis >= 0 else axis + 2  # unknown rank: N x K (common practice)
     if not -rank <= axis < rank:
         raise OnnxcalError(
-            f"class axis {axis} is out of range for the {what} over a tensor of rank {rank}",
+            f"class axis {axis} is out of range for output '{view.output}' of rank {rank}",
             "check the model's Softmax axis",
         )
     return axis % rank
@@ -108,7 +108,7 @@ def _in_range(axis: int, rank: int | None, what: str) -> int:
 def _softmax_axis(found: Found, view: View, rank: int | None) -> int:
     node = view.node(found.nodes["act"])
     opset = int(_attr(node, "opset", view.opset)) if node.op_type == "QLinearSoftmax" else view.opset
-    axis = _in_range(int(_attr(node, "axis", -1 if opset >= 13 else 1)), rank, node.op_type)
+    axis = _in_range(int(_attr(node, "axis", -1 if opset >= 13 else 1)), rank, view)
     shape = view.shapes.shape(node.input[0])
     trailing = shape[axis + 1 :] if shape is not None else ((None,) * (rank - axis - 1) if rank else ())
     if opset < 13 and any(d != 1 for d in trailing):
@@ -140,7 +140,7 @@ def _reduced_axis(*names: str) -> Callable[[Found, View, int | None], int]:
                         f"{'every axis' if axes is None else f'axes {axes}'}, not one class axis",
                         "choose an output whose softmax runs over one axis (--output)",
                     )
-                seen.add(_in_range(axes[0], rank, "written-out softmax"))
+                seen.add(_in_range(axes[0], rank, view))
         if len(seen) != 1:
             raise OnnxcalError(
                 f"the reductions of a written-out softmax run over different axes ({sorted(seen)})",
