@@ -513,3 +513,62 @@ def test_the_same_patch_gives_the_same_bytes_from_any_folder(tmp_path, run_cli, 
     (record,) = json.loads(next(p.value for p in onnx.load(str(tmp_path / "one" / "cal.onnx")).metadata_props))
     text = json.dumps(record)
     assert record["source_name"] == "model.onnx" and str(tmp_path) not in text and os.sep + "one" not in text
+
+
+# --------------------------------------------------------------------------
+# Post-processed and quantized outputs, end to end
+
+
+def _percent_model() -> onnx.ModelProto:
+    model = softmax_model()
+    model.graph.node.append(helper.make_node("Mul", ["probs", "hundred"], ["probs_pct"]))
+    model.graph.initializer.append(numpy_helper.from_array(np.array(100.0, np.float32), "hundred"))
+    model.graph.output[0].name = "probs_pct"
+    return model
+
+
+def _qdq_model() -> onnx.ModelProto:
+    """Softmax -> QuantizeLinear -> DequantizeLinear (uint8, scale 1/256), as onnxruntime.quantization's QDQ format."""
+    return _model(
+        [helper.make_node("Softmax", ["fc_out"], ["p"], axis=1),
+         helper.make_node("QuantizeLinear", ["p", "s", "zp"], ["p_q"]),
+         helper.make_node("DequantizeLinear", ["p_q", "s", "zp"], ["probs"])],
+        [("probs", 1, ["N", K])],
+        [numpy_helper.from_array(np.array(1 / 256, np.float32), "s"), numpy_helper.from_array(np.array(0, np.uint8), "zp")],
+    )
+
+
+@pytest.mark.parametrize("make, reference", [
+    (_percent_model, lambda p: 100 * p),
+    # ONNX operator spec, QuantizeLinear: round half to even, saturate to uint8; DequantizeLinear back
+    (_qdq_model, lambda p: np.clip(np.rint(p * 256), 0, 255) / 256),
+], ids=["percent", "qdq"])
+def test_post_processed_outputs_are_calibrated_in_place_and_verified(tmp_path, make, reference):
+    model = make()
+    path = save_model(model, tmp_path / "m.onnx")
+    val, x = data(tmp_path)
+    result = api.calibrate(path, val, tmp_path / "out.onnx", options=NO_BOOT)
+    assert result.verification.passed, result.verification.failed
+    patched = onnx.load(str(tmp_path / "out.onnx"))
+    assert [o.SerializeToString() for o in patched.graph.output] == [o.SerializeToString() for o in model.graph.output]
+    t = result.summary.scaling.temperature
+    labels = np.load(val)["labels"]
+    assert t == pytest.approx(scipy_temperature(logits_of(x), labels), rel=1e-3)
+    (got,) = ort_run(patched, x)
+    want = reference(scipy.special.softmax(logits_of(x) / t, axis=1))
+    np.testing.assert_allclose(got, want, atol=100 * 1e-5 if make is _percent_model else 1 / 256 + 1e-6)
+    gate = api.verify(tmp_path / "out.onnx", val, max_ece=0.5, min_accuracy=0.1)  # m.onnx beside it
+    assert gate.passed and gate.reference_from == "original"
+
+
+def test_a_reading_that_drops_the_post_processing_fails_verify(tmp_path):
+    from dataclasses import replace
+
+    model = _percent_model()
+    wrong = replace(graph.find_scores(model), post=())  # x100 not seen
+    patched = graph.patch(model, 1.5, source_sha256="0" * 64, source_name="m.onnx", site=wrong)
+    path = save_model(patched, tmp_path / "wrong.onnx")
+    val, _ = data(tmp_path)
+    result = api.verify(path, val)
+    reference = next(c for c in result.checks if c.name == "reference")
+    assert not result.passed and not reference.passed and reference.value > 1

@@ -68,8 +68,10 @@ def describe_site(site: ScoreSite) -> str:
         "dequantized": f"the dequantized tensor '{site.scores}' (the logits)",
         "log-sigmoid": f"log sigmoid of tensor '{site.scores}' (the logits of the normalised scores)",
     }.get(site.logits_from, f"tensor '{site.scores}'")
+    moved = (f", moved by {len(site.layout)} layout op(s) to class axis {site.class_axis} of the output"
+             if site.layout else "")
     return (f"output '{site.output}' holds {site.holds}: {_words_of(site)} over axis {site.scores_axis} "
-            f"of {logits}, {k}, {site.dtype}{then}")
+            f"of {logits}, {k}, {site.dtype}{moved}{then}")
 
 
 def describe(

@@ -170,6 +170,17 @@ def bad_models(d: Path, rng: np.random.Generator) -> None:
     )
     _save(_finish(huge), d / "huge_input.onnx")
 
+    # two outputs of class probabilities (one the other x 100): which one is not said
+    two = helper.make_graph(
+        [helper.make_node("Softmax", ["x"], ["probs"], axis=1, name="softmax"),
+         helper.make_node("Mul", ["probs", "hundred"], ["probs_pct"], name="percent")],
+        "two_probability_outputs",
+        [_vi("x", ["N", K])],
+        [_vi("probs", ["N", K]), _vi("probs_pct", ["N", K])],
+        initializer=[numpy_helper.from_array(np.array(100.0, np.float32), "hundred")],
+    )
+    _save(_finish(two), d / "two_outputs.onnx")
+
     # the good model patched, then its record made to disagree with its graph
     patched = onnx.load(str(d / "patched.onnx"))
     (record,) = json.loads(next(p.value for p in patched.metadata_props if p.key == "onnxcal.calibration"))
