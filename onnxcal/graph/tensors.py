@@ -127,7 +127,7 @@ class _Shapes:
         vi = self._known.get(name)
         if (vi is None or _dims(vi) is None) and self._inferred is None:
             try:
-                inferred = onnx.shape_inference.infer_shapes(self._model)
+                inferred = onnx.shape_inference.infer_shapes(_without_weights(self._model))
                 self._inferred = {v.name: v for v in inferred.graph.value_info}
             except Exception:  # inference is best effort; callers handle None
                 self._inferred = {}
@@ -144,6 +144,38 @@ class _Shapes:
         if vi is None or not vi.type.tensor_type.elem_type:
             return None
         return _type_name(vi.type)
+
+
+SMALL_INITIALIZER = 1024
+"""Initializers of fewer bytes keep their values for shape inference (a Reshape's target shape)."""
+
+
+def _without_weights(model: onnx.ModelProto) -> onnx.ModelProto:
+    """A copy of ``model`` for shape inference: large initializers become graph inputs of their type.
+
+    Inference needs the values of small constants (shapes, axes) only, so a
+    400 MiB model is not copied (twice, in and out of onnx's C++) to find a
+    tensor's shape; the model passed in is not changed.
+    """
+    light = onnx.ModelProto()
+    for field in ("ir_version", "producer_name", "domain", "model_version"):
+        setattr(light, field, getattr(model, field))
+    light.opset_import.extend(model.opset_import)
+    light.functions.extend(model.functions)
+    g, src = light.graph, model.graph
+    g.name = src.name
+    g.node.extend(src.node)
+    g.input.extend(src.input)
+    g.output.extend(src.output)
+    g.value_info.extend(src.value_info)
+    declared = {vi.name for vi in src.input}
+    for init in src.initializer:
+        if init.data_location != onnx.TensorProto.EXTERNAL and init.ByteSize() < SMALL_INITIALIZER:
+            g.initializer.append(init)
+        elif init.name not in declared:
+            g.input.append(helper.make_tensor_value_info(init.name, init.data_type, list(init.dims)))
+    g.sparse_initializer.extend(src.sparse_initializer)
+    return light
 
 
 def _rank(shape) -> int | None:
