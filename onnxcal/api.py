@@ -36,7 +36,7 @@ from ._files import (
 )
 from ._limits import DEFAULT_MAX_MODEL_BYTES, parse_size
 from .capture import Capture, ProgressFn, RunOptions
-from .data import DataSpec, Dataset, check_selection, load_dataset
+from .data import Dataset, DataSpec, check_selection, load_dataset
 from .errors import OnnxcalError, OnnxcalWarning
 from .fit import FitOptions, FitSummary
 from .graph import ModelInfo, Record

@@ -26,7 +26,14 @@ from .capture import RunOptions, probe, run_model
 from .data import Dataset, check_labels
 from .errors import OnnxcalError, OnnxcalWarning
 from .graph import Record, ScoreSite
-from .verify import Check, identity_check, output_tolerance, reference_probabilities, skipped, tolerance
+from .verify import (
+    Check,
+    identity_check,
+    output_tolerance,
+    reference_probabilities,
+    skipped,
+    tolerance,
+)
 
 
 @dataclass(frozen=True)
