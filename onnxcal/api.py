@@ -561,6 +561,8 @@ def _reference_checks(
 def _source_site(base, record: Record):
     """The class-score site of the uncalibrated model the record was made from, read as then."""
     kw = _reading.patch_reading({"spelling": record.spelling, "holds": record.holds, "logits_from": record.logits_from})
+    if record.rewrite == "ml-log-probabilities":  # format 2: ai.onnx.ml probabilities were read through log p
+        kw["logits_from"] = "log"
     # records written before source_output existed name the output or the scores
     output = record.source_output or (record.output if record.rewrite == "insert-before-activation" else record.scores)
     site = graph.find_scores(base, output, logits_from=kw.get("logits_from"))

@@ -572,3 +572,20 @@ def test_a_reading_that_drops_the_post_processing_fails_verify(tmp_path):
     result = api.verify(path, val)
     reference = next(c for c in result.checks if c.name == "reference")
     assert not result.passed and not reference.passed and reference.value > 1
+
+
+def test_format_2_records_are_still_read_and_undone():
+    model = softmax_model()
+    patched = graph.patch(model, 2.0, source_sha256="0" * 64, source_name="m.onnx")
+    (record,) = json.loads(next(p.value for p in patched.metadata_props if p.key == graph.RECORD_KEY))
+    old = {k: v for k, v in record.items() if k not in ("source_name", "holds", "spelling", "logits_from", "post",
+                                                         "fitted_on_sha256")}
+    old.update(format=2, source_path="C:\\Users\\someone\\models\\m.onnx")  # one object, with a path
+    for p in patched.metadata_props:
+        if p.key == graph.RECORD_KEY:
+            p.value = json.dumps(old)
+    read = graph.read_record(patched)
+    assert read.source_name == "m.onnx" and read.format == 2 and read.temperature == 2.0
+    assert graph.unpatch(patched).SerializeToString() == model.SerializeToString()
+    again = graph.patch(patched, 3.0, source_sha256="1" * 64, source_name="other.onnx")
+    assert graph.read_record(again).source_name == "m.onnx"  # kept from the record when re-patching
