@@ -20,6 +20,8 @@ import numpy as np
 from . import capture as _capture
 from . import fit as _fit
 from . import graph
+from . import guard as _guard
+from . import reading as _reading
 from . import report as _report
 from . import verify as _verify
 from ._files import (
@@ -34,7 +36,7 @@ from ._files import (
 )
 from ._limits import DEFAULT_MAX_MODEL_BYTES, parse_size
 from .capture import Capture, ProgressFn, RunOptions
-from .data import DataSpec, Dataset, check_selection, load_dataset
+from .data import Dataset, DataSpec, check_selection, load_dataset
 from .errors import OnnxcalError, OnnxcalWarning
 from .fit import FitOptions, FitSummary
 from .graph import ModelInfo, Record
@@ -145,6 +147,7 @@ def capture(
     progress: ProgressFn | None = None,
     activation: str | None = None,
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
+    output_holds: str | None = None,
 ) -> Capture:
     """Run the model over a labelled set; return (and write) the logits.
 
@@ -177,6 +180,10 @@ def capture(
         softmax otherwise); decides the labels' form.
     max_model_bytes : int or str, default 8 GiB
         Larger model files (with external data) are refused unread.
+    output_holds : {"logits", "probabilities", "log-probabilities"}, optional
+        What the output holds; by default the graph says, and the data are
+        checked (an output of raw logits whose rows are probabilities is
+        read as probabilities, with a note in ``Capture.notes``).
 
     Rows of the inputs or logits holding NaN or Inf are reported as
     :class:`~onnxcal.errors.OnnxcalWarning` (count and first rows); the
@@ -188,16 +195,9 @@ def capture(
         check_output_path(out, [*_model_files(model_path, limit), *spec.files()], force=force)
     run = _run_options(batch_size, threads, optimization, provider)
     model = graph.load_model(model_path, max_bytes=limit)
-    cap = _capture.capture(
-        model,
-        _load_data(model, spec, batch_size=run.batch_size),
-        model_path=model_path,
-        model_sha256=sha256_file(model_path),
-        output=output,
-        options=run,
-        progress=progress,
-        activation=activation,
-        out=out,
+    dataset = _load_data(model, spec, batch_size=run.batch_size)
+    cap = _read_and_capture(
+        model, dataset, model_path, sha256_file(model_path), output, output_holds, activation, run, progress, out
     )
     _warn_nonfinite_inputs(cap, cap.meta.data_source)
     if (bad := _capture.nonfinite_logits(cap)).count:
@@ -209,6 +209,26 @@ def capture(
             stacklevel=2,
         )
     return cap
+
+
+def _read_and_capture(
+    model, dataset: Dataset, model_path, sha: str, output, holds, activation, run: RunOptions, progress, out=None
+) -> Capture:
+    """Read the model (checked on the first rows), check the labels against it, capture its logits."""
+    if dataset.labels is None:
+        raise OnnxcalError(f"'{dataset.source}' has no labels", "add a 'labels' array")
+    _capture.check_input_memory(model, run.batch_size, dataset)
+    read = _reading.read_model(model, dataset, output=output, holds=holds, activation=activation, run=run)
+    site = read.site
+    kind = graph.fit_kind(site, activation)
+    if kind == "softmax":
+        _reading.check_label_coverage(dataset.labels, read.k, site, dataset.class_names, dataset.source)
+    cap = _capture.capture(
+        model, dataset, model_path=Path(model_path).name, model_sha256=sha, options=run, progress=progress,
+        activation=activation, out=out, site=site, check=_reading.capture_check(site, kind),
+    )
+    _reading.warn_saturated(site, cap.stats)
+    return replace(cap, notes=read.notes)
 
 
 def check_fit_options(options: FitOptions) -> FitOptions:
@@ -319,6 +339,8 @@ class PatchOptions:
     fold : bool
         Fold the scaling into the weight and bias of the final Gemm /
         MatMul(+Add) instead of adding nodes (every method).
+    output_holds : {"logits", "probabilities", "log-probabilities"}, optional
+        What the output holds, when the graph cannot tell.
     """
 
     output: str | None = None
@@ -327,21 +349,47 @@ class PatchOptions:
     activation: str | None = None
     compute_dtype: str | None = None
     fold: bool = False
+    output_holds: str | None = None
 
-    def patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict):
+    def patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict, reading: dict | None = None,
+              fitted_on: str = ""):
+        """``graph.patch`` with these options; ``reading`` says how a capture read the model."""
+        if reading is None:
+            reading = {} if self.output_holds is None else {"holds": self.output_holds, "holds_from": "stated"}
         return graph.patch(
             model,
             calibration,
             source_sha256=sha,
-            source_path=Path(path).resolve(),
+            source_name=Path(path).name,
             output=self.output,
             new_output=self.output_name,
             drop_logits=self.drop_logits,
-            fit=fit,
+            fit=_portable(fit),
             activation=self.activation,
             compute_dtype=self.compute_dtype,
             fold=self.fold,
+            fitted_on_sha256=fitted_on,
+            **reading,
         )
+
+
+def _portable(fit: dict) -> dict:
+    """A fit summary without the user's directories: file names only (the record goes inside the model)."""
+    capture = fit.get("capture")
+    if not isinstance(capture, dict):
+        return fit
+    capture = dict(capture)
+    for key in ("model_path", "data_source"):
+        if isinstance(capture.get(key), str):
+            capture[key] = " + ".join(_name(part) for part in capture[key].split(" + "))
+    if isinstance(capture.get("merged_from"), (list, tuple)):
+        capture["merged_from"] = [_name(p) for p in capture["merged_from"]]
+    return {**fit, "capture": capture}
+
+
+def _name(text: str) -> str:
+    """The last component of a path written POSIX or Windows style."""
+    return text.replace("\\", "/").rstrip("/").rsplit("/", 1)[-1] or text
 
 
 def _check_outputs(out, inputs: list, model_path, force: bool, limit: int) -> bool:
@@ -372,6 +420,8 @@ def patch(
     fold: bool = False,
     force: bool = False,
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
+    output_holds: str | None = None,
+    fitted_on_twin: bool = False,
 ) -> PatchResult:
     """Write a copy of the model that outputs calibrated probabilities.
 
@@ -379,7 +429,8 @@ def patch(
     ----------
     model_path : path
         The ONNX model; never modified. A model already patched by onnxcal
-        has its patch undone first (so patches never stack).
+        has the patch of the same output undone first (so patches never
+        stack); the calibration of other outputs is kept.
     out : path
         The patched model; must differ from ``model_path``. A model with
         external data is written with its weights in ``out``.data.
@@ -387,24 +438,63 @@ def patch(
         T; or give ``fit``.
     fit : FitSummary or path, optional
         A fit (or FIT.json) whose parameters are baked in and recorded.
-    output, output_name, drop_logits, activation, compute_dtype, fold
-        See :class:`PatchOptions`.
+    output, output_name, drop_logits, activation, compute_dtype, fold, output_holds
+        See :class:`PatchOptions`. With ``fit``, the output and how it was
+        read (e.g. probabilities read through log p) are the capture's,
+        unless given.
     force : bool
         Replace an existing ``out``.
     max_model_bytes : int or str, default 8 GiB
         Larger model files (with external data) are refused unread.
+    fitted_on_twin : bool
+        The fit was made on another build of this model (its float16 or
+        quantized twin): a fit whose capture's model sha256 differs from
+        this model's (and from its recorded original's) is refused without
+        it. The record then holds both hashes.
     """
     limit = _max_bytes(max_model_bytes)
     inputs = [model_path] + ([fit] if isinstance(fit, (str, os.PathLike)) else [])
     external = _check_outputs(out, inputs, model_path, force, limit)
     calibration, fit_dict = _resolve_scaling(temperature, fit)
-    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold)
+    if fitted_on_twin and fit is None:
+        raise OnnxcalError("--fitted-on-twin applies to --fit (a fit made on another build of the model)")
     model = graph.load_model(model_path, max_bytes=limit)
-    if (previous := graph.read_record(model)) is not None:  # re-patching undoes it: it must fit the graph
+    sha = sha256_file(model_path)
+    records = graph.read_records(model)
+    for previous in records:  # re-patching undoes a head: its record must fit the graph
         graph.check_record(model, previous, f"'{model_path}'")
-    patched = patching.patch(model, calibration, sha=sha256_file(model_path), path=model_path, fit=fit_dict)
+    fitted_on = _provenance(fit_dict, fit, model_path, sha, records, fitted_on_twin)
+    meta = fit_dict.get("capture") if isinstance(fit_dict.get("capture"), dict) else {}
+    if output is None and meta.get("output") in {o.name for o in model.graph.output} and not records:
+        output = meta["output"]
+    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds)
+    reading = _reading.patch_reading(meta) if output_holds is None and meta else None
+    patched = patching.patch(model, calibration, sha=sha, path=model_path, fit=fit_dict, reading=reading,
+                             fitted_on=fitted_on)
     graph.save_model(patched, out, external=external)
-    return PatchResult(path=str(out), record=graph.read_record(patched))
+    return PatchResult(path=str(out), record=graph.read_record(patched, output))
+
+
+def _provenance(fit_dict: dict, fit, model_path, sha: str, records, twin: bool) -> str:
+    """The sha256 of the twin the fit was made on ("" for this model); a fit of another model is refused.
+
+    The fit's capture names the model it ran (sha256). It may be this file,
+    or, for a model already patched, the original the records name.
+    """
+    meta = fit_dict.get("capture") if isinstance(fit_dict.get("capture"), dict) else {}
+    fitted = meta.get("model_sha256") if isinstance(meta.get("model_sha256"), str) else None
+    mine = {sha, *(r.source_sha256 for r in records)}
+    if fit is None or not fitted or fitted in mine:
+        return ""
+    if not twin:
+        where = f"'{fit}'" if isinstance(fit, (str, os.PathLike)) else "the fit"
+        raise OnnxcalError(
+            f"{where} was fitted on the model with sha256 {fitted[:12]}..., not on '{model_path}' "
+            f"(sha256 {sha[:12]}...)",
+            "patch the model the fit was made on, or add --fitted-on-twin if this model is a build of it "
+            "(its float16 or quantized twin)",
+        )
+    return fitted
 
 
 # --------------------------------------------------------------------------
@@ -429,15 +519,21 @@ def _run_output(model, site, dataset: Dataset, run: RunOptions, progress) -> np.
         progress=progress,
         description="running patched model",
     )
-    return _capture.as_rows(values, site.class_axis)
+    return _capture.output_rows(values, site)
 
 
 def _reference_checks(
     rows: np.ndarray, site, record: Record, logits: np.ndarray, patched, original_model, source_sha: str | None
 ) -> list[Check]:
-    """Checks (1)-(3): the outputs against the reference, the record against the graph and the source."""
-    dtypes = (site.dtype, site.output_dtype or site.dtype)
-    checks = list(_verify.compare(rows, logits, record.scaling, record.activation, dtypes))
+    """Checks (1)-(3): the outputs against the reference, the record against the graph and the source.
+
+    The reference is post(activation(scale(logits))) with the post-processing
+    the record noted when the model was patched; the tolerance follows every
+    dtype the values pass through in the patched graph (``site.dtypes``).
+    """
+    dtypes = tuple(dict.fromkeys([site.dtype, site.output_dtype or site.dtype, *site.dtypes]))
+    post = graph.post.from_json(record.post)
+    checks = list(_verify.compare(rows, logits, record.scaling, record.activation, dtypes, post))
     if record.folded and original_model is None:
         checks.append(
             _verify.skipped(
@@ -463,13 +559,16 @@ def _reference_checks(
 
 
 def _source_site(base, record: Record):
-    """The class-score site of the uncalibrated model the record was made from."""
-    if record.source_output:
-        return graph.find_scores(base, record.source_output)
-    # records written before source_output existed
-    return graph.find_scores(
-        base, record.output if record.rewrite == "insert-before-activation" else record.scores
-    )
+    """The class-score site of the uncalibrated model the record was made from, read as then."""
+    kw = _reading.patch_reading({"spelling": record.spelling, "holds": record.holds, "logits_from": record.logits_from})
+    if record.rewrite == "ml-log-probabilities":  # format 2: ai.onnx.ml probabilities were read through log p
+        kw["logits_from"] = "log"
+    # records written before source_output existed name the output or the scores
+    output = record.source_output or (record.output if record.rewrite == "insert-before-activation" else record.scores)
+    site = graph.find_scores(base, output, logits_from=kw.get("logits_from"))
+    if "holds" in kw:
+        site = graph.read_as(site, kw["holds"], record.scaling.activation, source=kw["holds_from"])
+    return site
 
 
 def _unpatched(patched, patched_path):
@@ -498,27 +597,78 @@ class _Reference:
     notes: tuple[str, ...] = ()
 
 
-def _reference(
-    patched, patched_path, record: Record, dataset, cap, original, score_paths, run, progress, limit: int
-) -> _Reference:
-    """The original's logits: captured (``--scores``), run (``--original``), or the patched graph's own."""
+def _reference(patched, patched_path, record: Record, dataset, cap, original, base, score_paths, run, progress) -> _Reference:
+    """The original's logits: captured (``--scores``), run (``--original``, loaded as ``base``), or the patched graph's own."""
     if cap is not None:
         return _Reference(cap.logits, "scores", ", ".join(map(str, score_paths)), cap.meta.model_sha256, None)
-    if original is not None:
-        base = graph.load_model(original, max_bytes=limit)
+    if base is not None:
         logits = _capture.capture_scores(base, dataset, _source_site(base, record), options=run, progress=progress)
         return _Reference(logits, "original", str(original), sha256_file(original), base)
     unpatched = _unpatched(patched, patched_path)
     logits = _capture.capture_scores(unpatched, dataset, _source_site(unpatched, record), options=run, progress=progress)
     notes = [
-        "no original model (--original, or the path in the record) and no --scores: the reference is "
-        f"recomputed from the patched graph's own logits tensor '{record.scores}' (the patch undone in "
+        "no original model (--original, or the recorded original beside the patched model) and no --scores: the "
+        f"reference is recomputed from the patched graph's own logits tensor '{record.scores}' (the patch undone in "
         "memory), so it checks the calibration nodes, not that the logits are the original model's"
     ]
     if record.folded:
         notes.append("the parameters are folded into the weights, so that reference only re-checks the "
                      "activation; give --original or --scores to check the parameters")
     return _Reference(logits, "patched-graph", str(patched_path), None, None, tuple(notes))
+
+
+def _raw_reading_check(logits: np.ndarray, record: Record) -> Check:
+    """Check (1b): an output patched as raw logits does not in fact hold probabilities (``guard``)."""
+    stats = _guard.RowStats()
+    stats.add(np.asarray(logits))
+    seen = _guard.looks_like(stats, record.scaling.activation)
+    return _verify.reading_check(None if seen == "logits" else _guard.describe(stats))
+
+
+def _head_checks(patched, patched_path, records, dataset, cap, original, base, score_paths, run, progress, drop):
+    """Checks (1)-(3) of every calibrated output; the last head's rows, site and keep mask; the reference."""
+    several = len(records) > 1
+    checks: list[Check] = []
+    ref = None
+    for record in records:
+        own = cap if cap is not None and (not several or cap.meta.output == record.source_output) else None
+        ref = _reference(patched, patched_path, record, dataset, own, original, base, score_paths, run, progress)
+        site = graph.find_scores(patched, record.output)
+        rows = _run_output(patched, site, dataset, run, progress)
+        if len(rows) != len(ref.logits):
+            raise OnnxcalError(
+                f"the reference holds {len(ref.logits)} rows of scores but the patched model gives {len(rows)} "
+                f"rows on '{dataset.source}'",
+                "capture the original model on the same data file",
+            )
+        keep, dropped = _finite_outputs(rows, ref.logits, dataset, drop)
+        kept = (rows, ref.logits) if keep is None else (rows[keep], ref.logits[keep])
+        head = _reference_checks(kept[0], site, record, kept[1], patched, ref.original_model, ref.source_sha)
+        if record.rewrite.startswith("append-"):
+            head.append(_raw_reading_check(kept[1], record))
+        checks += [replace(c, name=f"{c.name} ({record.source_output})") for c in head] if several else head
+        notes = [*ref.notes, *([dropped] if dropped else [])]
+        if record.fitted_on_sha256:
+            notes.append(
+                f"output '{record.output}': the parameters were fitted on a twin of the original (sha256 "
+                f"{record.fitted_on_sha256[:12]}..., stated with --fitted-on-twin when patching); the original's "
+                f"sha256 is {record.source_sha256[:12]}..."
+            )
+        ref = replace(ref, notes=tuple(dict.fromkeys([*(ref.notes or ()), *notes])))
+    return checks, rows, site, keep, ref
+
+
+def _default_original(patched_path, records) -> tuple[Path | None, str | None]:
+    """The recorded original beside the patched model, when its sha256 is the record's; else a note why not."""
+    if not records:
+        return None, None
+    candidate = Path(patched_path).parent / records[0].source_name
+    if not records[0].source_name or not candidate.is_file() or candidate.resolve() == Path(patched_path).resolve():
+        return None, None
+    if sha256_file(candidate) != records[0].source_sha256:
+        return None, (f"'{candidate}' beside the patched model is not the recorded original (its sha256 differs "
+                      "from the record's), so it was not used")
+    return candidate, None
 
 
 def _unrecorded_checks(site) -> list[Check]:
@@ -570,8 +720,23 @@ def _latency(base, patched, dataset: Dataset, run: RunOptions, runs: int, max_ra
     return _verify.latency_check(times[0], times[1], max_ratio, batch=size, against=against)
 
 
-def _threshold_checks(rows, activation, site, dataset: Dataset, cap: Capture | None, n_bins, limits, keep=None) -> tuple:
-    """Check (4): metrics of the patched model's own outputs against the labels (the rows ``keep`` only)."""
+def _threshold_checks(
+    rows, activation, site, dataset: Dataset, cap: Capture | None, n_bins, limits, keep=None, record=None
+) -> tuple:
+    """Check (4): metrics of the patched model's own outputs against the labels (the rows ``keep`` only).
+
+    Post-processing the output carries (x100, one class of two) is undone
+    first (``graph.post.invert``).
+    """
+    post = graph.post.from_json(record.post) if record is not None else ()
+    if post:
+        rows = graph.post.invert(rows, post, site.num_classes or 0)
+        if rows is None:
+            raise OnnxcalError(
+                f"--max-ece, --max-nll and --min-accuracy need every class's probability, and output "
+                f"'{site.output}' holds one class's of {site.num_classes}",
+                "leave out the thresholds, or verify an output that holds every class",
+            )
     if activation is None:  # raw logits (a model without a record)
         logits, kind = rows, graph.fit_kind(site)
     else:
@@ -706,11 +871,11 @@ def verify(
         )
     limit = _max_bytes(max_model_bytes)
     patched = graph.load_model(patched_path, max_bytes=limit)
-    record = graph.read_record(patched)
+    records = graph.read_records(patched)
+    record = records[-1] if records else None
+    beside, why_not = (None, None) if original is not None or score_paths else _default_original(patched_path, records)
     if junit is not None:
-        models = [patched_path, *([original] if original is not None else [])]
-        if record is not None and Path(record.source_path).is_file():
-            models.append(record.source_path)  # the default original
+        models = [patched_path, *([original] if original is not None else []), *([beside] if beside else [])]
         inputs = [f for m in models for f in _model_files(m, limit)] + [*spec.files(), *score_paths]
         check_output_path(junit, inputs, force=force, option="--junit")
     latency = latency or max_latency_ratio is not None
@@ -723,8 +888,7 @@ def verify(
             f"--max-ece, --max-nll and --min-accuracy need labels, and '{dataset.source}' has none",
             "add a 'labels' array, or give --scores with a capture of the same data",
         )
-    if original is None and cap is None and record is not None and Path(record.source_path).is_file():
-        original = record.source_path
+    original = original if original is not None else beside
     if record is None and latency and original is None:
         raise OnnxcalError(
             f"--latency: '{patched_path}' has no calibration record, so there is no uncalibrated graph "
@@ -738,24 +902,20 @@ def verify(
         ref = _Reference(None, "none", str(original or ""), None, None, (note,))
         keep, dropped = _finite_outputs(rows, None, dataset, drop_nonfinite)
         activation, checks = site.activation, _unrecorded_checks(site)
+        if dropped is not None:
+            ref = replace(ref, notes=(*ref.notes, dropped))
     else:
-        site = graph.find_scores(patched, record.output)
-        ref = _reference(patched, patched_path, record, dataset, cap, original, score_paths, run, progress, limit)
-        rows = _run_output(patched, site, dataset, run, progress)
-        if len(rows) != len(ref.logits):
-            raise OnnxcalError(
-                f"the reference holds {len(ref.logits)} rows of scores but the patched model gives {len(rows)} "
-                f"rows on '{dataset.source}'",
-                "capture the original model on the same data file",
-            )
+        base = graph.load_model(original, max_bytes=limit) if original is not None else None
+        checks, rows, site, keep, ref = _head_checks(
+            patched, patched_path, records, dataset, cap, original, base, score_paths, run, progress, drop_nonfinite
+        )
         activation = record.activation
-        keep, dropped = _finite_outputs(rows, ref.logits, dataset, drop_nonfinite)
-        kept = (rows, ref.logits) if keep is None else (rows[keep], ref.logits[keep])
-        checks = _reference_checks(kept[0], site, record, kept[1], patched, ref.original_model, ref.source_sha)
-    if dropped is not None:
-        ref = replace(ref, notes=(*ref.notes, dropped))
+        checks.append(_reading.identity(base or _unpatched(patched, patched_path), patched, records, dataset, run,
+                                        progress))
+    if why_not is not None:
+        ref = replace(ref, notes=(why_not, *ref.notes))
     if thresholds:
-        checks += _threshold_checks(rows, activation, site, dataset, cap, n_bins, limits, keep)
+        checks += _threshold_checks(rows, activation, site, dataset, cap, n_bins, limits, keep, record)
     if latency:
         against = "original" if original is not None else "uncalibrated copy"
         if ref.original_model is not None:
@@ -974,6 +1134,21 @@ def report(
     return _write_report(out, content, formats)
 
 
+def _check_not_calibrated(model, model_path, output: str | None) -> None:
+    """``calibrate`` fits an output once: another output of a calibrated model may be calibrated."""
+    records = graph.read_records(model)
+    if not records:
+        return
+    done = next((r for r in records if output in (r.output, r.source_output)), None)
+    if output is None or done is not None:
+        what = done or records[-1]
+        raise OnnxcalError(
+            f"'{model_path}' is already calibrated by onnxcal ({what.method} scaling of output '{what.source_output}')",
+            f"calibrate the original model ({what.source_name}), change T with 'onnxcal patch', or calibrate "
+            "another output with --output",
+        )
+
+
 def _record_of(model_path, limit: int) -> Record:
     """The calibration record of a patched model, checked to describe its graph and its parameters.
 
@@ -1024,12 +1199,15 @@ def calibrate(
     report: str | os.PathLike | None = None,
     drop_nonfinite: bool = False,
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
+    output_holds: str | None = None,
 ) -> CalibrateResult:
     """Capture, fit, patch and verify in one go (and write a report).
 
     The patched model is verified in memory against the captured logits
-    before it is written; when a check fails nothing is written and
-    ``result.patch`` is None. ``data`` and ``batch_size`` ... ``provider``: as
+    (and, with its parameters at the identity, against the original's own
+    outputs) before it is written; when a check fails nothing is written and
+    ``result.patch`` is None. A model already calibrated by onnxcal may
+    have another output calibrated (``output``); each has its own record. ``data`` and ``batch_size`` ... ``provider``: as
     for :func:`capture`; ``output`` ... ``fold``: see :class:`PatchOptions`;
     ``options`` are those of :func:`fit`. With ``report`` (a directory),
     every file of :func:`report` is written there too, with the
@@ -1047,35 +1225,28 @@ def calibrate(
         inputs = [*_model_files(model_path, limit), *spec.files(), *outputs]
         _report_targets(report, _report.FORMATS, inputs, force, "--report")
     run = _run_options(batch_size, threads, optimization, provider)
-    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold)
+    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds)
     model = graph.load_model(model_path, max_bytes=limit)
-    if (previous := graph.read_record(model)) is not None:
-        raise OnnxcalError(
-            f"'{model_path}' is already calibrated by onnxcal ({previous.method} scaling)",
-            f"calibrate the original model ({previous.source_path}), or change T with 'onnxcal patch'",
-        )
+    _check_not_calibrated(model, model_path, output)
+    graph.default_opset(model)  # before the capture: can the patch import the operators it adds?
     sha = sha256_file(model_path)
     dataset = _load_data(model, spec, batch_size=run.batch_size)
-    cap = _capture.capture(
-        model,
-        dataset,
-        model_path=model_path,
-        model_sha256=sha,
-        output=output,
-        options=run,
-        progress=progress,
-        activation=activation,
-    )
+    cap = _read_and_capture(model, dataset, model_path, sha, output, output_holds, activation, run, progress)
     keep = _capture.finite_mask(cap)
     full = cap
     cap, dropped = _finite(cap, dataset.source, drop_nonfinite)
     _warn_nonfinite_inputs(full, dataset.source)
-    summary = _with_note(_fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options), dropped)
-    patched = patching.patch(model, summary.scaling, sha=sha, path=model_path, fit=summary.to_dict())
-    record = graph.read_record(patched)
+    summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options)
+    for note in (*cap.notes, dropped):
+        summary = _with_note(summary, note)
+    patched = patching.patch(model, summary.scaling, sha=sha, path=model_path, fit=summary.to_dict(),
+                             reading=_reading.patch_reading(cap.meta.to_dict()))
+    record = graph.read_record(patched, cap.meta.output)
     site = graph.find_scores(patched, record.output)
     rows = _run_output(patched, site, dataset, run, progress)
-    checks = _reference_checks(rows[keep], site, record, cap.logits, patched, model, sha)
+    source_sha = sha if len(graph.read_records(patched)) == 1 else record.source_sha256  # other heads: the original's
+    checks = _reference_checks(rows[keep], site, record, cap.logits, patched, model, source_sha)
+    checks.append(_reading.identity(model, patched, (record,), dataset, run, progress))
     result = VerifyResult(checks=tuple(checks), n=dataset.n, original=str(model_path))
     files: dict[Path, bytes] = {}
     written = None

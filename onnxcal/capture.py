@@ -43,7 +43,8 @@ from ._files import atomic_path, require_file
 from .data import Dataset, check_label_array, check_labels, match_inputs, read_npz
 from ._limits import check_memory, format_bytes
 from .errors import OnnxcalError, OnnxcalWarning, first_line
-from .graph import ScoreSite, expose_scores, find_scores, fit_kind, tensor_spec
+from .graph import ScoreSite, expose_scores, find_scores, fit_kind, np_dtype, tensor_spec
+from .guard import PROBE_ROWS, RowStats
 
 ProgressFn = Callable[[str, int, int], None]
 """Called as ``progress(description, samples_done, samples_total)`` after each batch."""
@@ -158,6 +159,10 @@ class CaptureMeta:
         symbolic in a copy) or ``"fixed"`` (run at the exported batch size).
     merged_from : tuple of str
         Capture files this one was merged from.
+    holds, logits_from, spelling : str
+        How the output was read (``graph.ScoreSite``): what it holds, how
+        the logits were obtained (e.g. ``"log"`` for log p), the pattern
+        recognised. ``patch --fit`` reads the model the same way.
     """
 
     model_sha256: str
@@ -180,6 +185,9 @@ class CaptureMeta:
     preprocess: dict | None = None
     batching: str = ""
     merged_from: tuple[str, ...] = ()
+    holds: str = ""
+    logits_from: str = "tensor"
+    spelling: str = ""
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -231,6 +239,10 @@ class Capture:
     indices: np.ndarray | None = None
     nonfinite_inputs: Mapping[str, Nonfinite] = field(default_factory=dict)
     """Inputs whose rows held NaN or Inf in the run that made this capture (empty when read from a file)."""
+    stats: RowStats | None = None
+    """What the captured rows look like (``guard``), from the run that made this capture."""
+    notes: tuple[str, ...] = ()
+    """What the reader should know about how the output was read (e.g. read as probabilities)."""
 
     def sample_indices(self) -> np.ndarray:
         """``indices``, or 0..n-1 when the capture holds every row in order."""
@@ -744,17 +756,50 @@ def _fill_scores(
     sink: _Rows,
     options: RunOptions,
     progress: ProgressFn | None,
-) -> tuple[str, dict[str, Nonfinite]]:
-    """Run the model and pass its logits to ``sink``; return the batching mode and the
-    inputs whose rows held NaN or Inf."""
+) -> tuple[str, dict[str, Nonfinite], RowStats]:
+    """Run the model and pass its logits to ``sink``; return the batching mode, the
+    inputs whose rows held NaN or Inf, and what the rows look like (``guard``)."""
     exposed, name = expose_scores(model, site)
     plan = plan_run(exposed, dataset, [name], options)
     watch = InputWatch(dataset)
+    stats = RowStats()
+    tiny = float(np.finfo(np_dtype(site.dtype)).tiny)
     batches = run_batches(plan, dataset, progress=progress, description="capturing logits", watch=watch)
     for start, stop, (scores,) in batches:
         rows = as_rows(scores, site.class_axis)
-        sink.add(log_probabilities(rows) if site.from_probabilities else rows, stop - start)
-    return plan.mode, watch.found
+        stats.add(rows)
+        if site.logits_from == "log":
+            stats.add_saturated(rows, tiny)
+        sink.add(rows, stop - start)
+    return plan.mode, watch.found, stats
+
+
+def output_rows(values: np.ndarray, site: ScoreSite) -> np.ndarray:
+    """The output's values as rows lined up with the captured logits' rows (class axis last).
+
+    An output holding one class's value gives one column (its other axes
+    are those of the logits' rows, in order).
+    """
+    if site.takes_one:
+        return np.asarray(values).reshape(-1, 1)
+    return as_rows(values, site.class_axis)
+
+
+def probe(
+    model: onnx.ModelProto, dataset: Dataset, site: ScoreSite, options: RunOptions | None = None,
+    rows: int = PROBE_ROWS,
+) -> tuple[np.ndarray, np.ndarray]:
+    """The logits and the output's values of the first ``rows`` samples, as rows.
+
+    Run before a capture to check the reading against the model's own
+    output and to see what the output holds.
+    """
+    exposed, name = expose_scores(model, site, also=(site.tensor,))
+    with warnings.catch_warnings():  # the capture that follows warns about the batching, once
+        warnings.simplefilter("ignore", OnnxcalWarning)
+        plan = plan_run(exposed, dataset, [name, site.tensor], options or RunOptions())
+    z, values = _run_span(plan, dataset, 0, min(rows, dataset.n))
+    return as_rows(z, site.class_axis), output_rows(values, site)
 
 
 def log_probabilities(p: np.ndarray) -> np.ndarray:
@@ -763,6 +808,7 @@ def log_probabilities(p: np.ndarray) -> np.ndarray:
     softmax(log p) = p, and softmax(log p / T) = softmax(z / T) for logits z
     with p = softmax(z), since softmax ignores a constant added to every
     class (common practice). ``tiny`` is the dtype's smallest normal number.
+    (Capture builds the same in the graph, ``graph.expose_scores``.)
     """
     return np.log(np.maximum(p, np.finfo(p.dtype).tiny))
 
@@ -803,6 +849,8 @@ def capture(
     progress: ProgressFn | None = None,
     out: str | os.PathLike | None = None,
     activation: str | None = None,
+    site: ScoreSite | None = None,
+    check: Callable[[RowStats], None] | None = None,
 ) -> Capture:
     """Run the model over a labelled set and return its logits.
 
@@ -827,6 +875,11 @@ def capture(
     activation : {"softmax", "sigmoid"}, optional
         How raw logits become probabilities (see ``graph.fit_kind``); decides
         the labels' form.
+    site : graph.ScoreSite, optional
+        How to read the model (default: ``graph.find_scores(model, output)``).
+    check : callable, optional
+        Called with the statistics of every captured row (``guard.RowStats``)
+        before anything is written; it raises to refuse the capture.
 
     Returns
     -------
@@ -835,7 +888,7 @@ def capture(
     if dataset.labels is None:
         raise OnnxcalError(f"'{dataset.source}' has no labels", "add a 'labels' array")
     options = _options(options, batch_size)
-    site = find_scores(model, output)
+    site = site if site is not None else find_scores(model, output)
     kind = fit_kind(site, activation)
     labels = None
     if site.num_classes is not None and kind == "softmax" and np.ndim(dataset.labels) == 1:
@@ -852,13 +905,17 @@ def capture(
 
     if out is None:
         sink = _MemoryRows(dataset.n)
-        mode, watch = _fill_scores(model, dataset, site, sink, options, progress)
+        mode, watch, stats = _fill_scores(model, dataset, site, sink, options, progress)
+        if check is not None:
+            check(stats)
         final, meta = finish(sink, mode)
-        return Capture(sink.array, final, meta, dataset.rows, watch)
+        return Capture(sink.array, final, meta, dataset.rows, watch, stats)
     with atomic_path(Path(out)) as tmp, zipfile.ZipFile(tmp, "w", zipfile.ZIP_STORED, allowZip64=True) as zf:
         sink = _NpyRows(dataset.n, zf)
         try:
-            mode, watch = _fill_scores(model, dataset, site, sink, options, progress)
+            mode, watch, stats = _fill_scores(model, dataset, site, sink, options, progress)
+            if check is not None:
+                check(stats)
         except BaseException:
             with contextlib.suppress(Exception):  # keep the first error; the temporary is removed
                 sink.close(complete=False)
@@ -867,7 +924,7 @@ def capture(
         final, meta = finish(sink, mode)
         _write_tail(zf, final, dataset.rows, meta)
     logits = read_npz(Path(out), "")["logits"]  # a memory map of what was just written
-    return Capture(logits, final, meta, dataset.rows, watch)
+    return Capture(logits, final, meta, dataset.rows, watch, stats)
 
 
 def _check_class_names(dataset: Dataset, k: int, kind: str) -> None:
@@ -901,6 +958,9 @@ def _meta(dataset: Dataset, site: ScoreSite, sink: _Rows, mode: str, kind: str, 
         shuffle_seed=sel.shuffle_seed,
         preprocess=dataset.preprocess,
         batching=mode,
+        holds=site.holds,
+        logits_from=site.logits_from,
+        spelling=site.spelling,
     )
 
 
@@ -982,7 +1042,9 @@ def without_nonfinite(cap: Capture) -> Capture:
         return cap
     logits = np.asarray(cap.logits)[keep]
     samples = cap.sample_indices()[keep[:: _rows_per_sample(cap)]]
-    return Capture(logits, cap.labels[keep], replace(cap.meta, n=int(len(logits))), samples, cap.nonfinite_inputs)
+    return Capture(
+        logits, cap.labels[keep], replace(cap.meta, n=int(len(logits))), samples, cap.nonfinite_inputs, cap.stats
+    )
 
 
 # --------------------------------------------------------------------------
@@ -1047,6 +1109,7 @@ _SAME = (
     ("output", "hold different model outputs"),
     ("scores", "hold different logits tensors"),
     ("activation", "hold scores with different activations"),
+    ("logits_from", "read the output differently (how the logits were obtained)"),
     ("fit_as", "are fitted as different kinds (softmax or sigmoid)"),
     ("class_axis", "have different class axes"),
     ("num_classes", "have different numbers of classes"),

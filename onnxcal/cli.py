@@ -134,6 +134,15 @@ ComputeDtypeOpt = Annotated[
         "around them; e.g. for float16 models). The output keeps its dtype.",
     ),
 ]
+OutputHoldsOpt = Annotated[
+    Optional[str],
+    typer.Option(
+        "--output-holds",
+        help="logits, probabilities or log-probabilities: what the output holds, when the graph cannot tell "
+        "(checked against the data; by default the graph says, and an output of raw logits whose rows are "
+        "probabilities is read as probabilities).",
+    ),
+]
 FoldOpt = Annotated[
     bool,
     typer.Option(
@@ -380,7 +389,9 @@ def _shape(spec: TensorSpec) -> str:
 
 
 def _render_info(info: ModelInfo) -> None:
-    table = Table(title=f"{info.path}  (opset {info.opset})", title_justify="left")
+    opsets = ", ".join(f"{d} {v}" for d, v in (info.opsets or {}).items() if d != "ai.onnx")
+    opset = f"opset {info.opset}" if info.opset else "no default-domain opset"
+    table = Table(title=f"{info.path}  ({opset}{', ' + opsets if opsets else ''})", title_justify="left")
     for col in ("", "name", "dtype", "shape"):
         table.add_column(col)
     for kind, specs in (("input", info.inputs), ("output", info.outputs)):
@@ -391,14 +402,15 @@ def _render_info(info: ModelInfo) -> None:
     if site is None:
         out.print(f"class scores: none found ({info.site_problem})", soft_wrap=True)
     else:
+        out.print(f"found: {info.reading}", soft_wrap=True)
         out.print(f"class scores: {_describe_site(site)}", soft_wrap=True)
     if info.external_data:
         out.print(f"external data: {', '.join(info.external_data)}", soft_wrap=True)
     out.print(f"batch dim: {'fixed' if info.batch_fixed else 'dynamic'}")
-    if info.record is not None:
-        r = info.record
-        what = f"T = {r.temperature:.4f}" if r.temperature is not None else f"{r.method} scaling"
-        out.print(f"calibration record: {what} on output '{r.output}' ({_how(r)})", soft_wrap=True)
+    if info.records:
+        for r in info.records:
+            what = f"T = {r.temperature:.4f}" if r.temperature is not None else f"{r.method} scaling"
+            out.print(f"calibration record: {what} on output '{r.output}' ({_how(r)})", soft_wrap=True)
     else:
         out.print("calibration record: none")
     out.print(f"sha256: {info.sha256}")
@@ -406,8 +418,10 @@ def _render_info(info: ModelInfo) -> None:
 
 def _describe_site(site) -> str:
     names = {"softmax": "Softmax", "logsoftmax": "LogSoftmax", "sigmoid": "Sigmoid"}
-    if site.from_probabilities:
+    if site.spelling == "ml-classifier":
         ends = f"probabilities of an ai.onnx.ml classifier, tensor '{site.scores}'"
+    elif site.from_probabilities:
+        ends = f"{site.holds}; logits from tensor '{site.scores}' ({site.logits_from})"
     elif site.activation:
         ends = f"ends in {names[site.activation]}; logits tensor '{site.scores}'"
     else:
@@ -485,6 +499,8 @@ def _render_verify(result: VerifyResult) -> None:
     if result.passed:
         out.print("verify: all checks passed")
     else:
+        for c in result.failed:  # each failure as a full sentence, unwrapped
+            out.print(f"failed: {c.name}: {c.detail}", soft_wrap=True)
         out.print(f"verify: FAILED ({', '.join(c.name for c in result.failed)})")
 
 
@@ -534,6 +550,7 @@ def capture(
     ],
     output: OutputOpt = None,
     activation: ActivationOpt = None,
+    output_holds: OutputHoldsOpt = None,
     force: ForceOpt = False,
     quiet: QuietOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
@@ -555,8 +572,11 @@ def capture(
             progress=progress,
             activation=activation,
             max_model_bytes=max_model_bytes,
+            output_holds=output_holds,
             **runtime,
         )
+    for note in cap.notes:
+        out.print(f"note: {note}", soft_wrap=True)
     out.print(
         f"captured {cap.meta.n} x {cap.meta.num_classes} logits from '{cap.meta.scores}' "
         f"-> {out_path}"
@@ -610,6 +630,15 @@ def patch(
     activation: ActivationOpt = None,
     compute_dtype: ComputeDtypeOpt = None,
     fold: FoldOpt = False,
+    output_holds: OutputHoldsOpt = None,
+    fitted_on_twin: Annotated[
+        bool,
+        typer.Option(
+            "--fitted-on-twin",
+            help="The --fit was made on another build of this model (its float16 or quantized twin); "
+            "without it a fit of a model with another sha256 is refused.",
+        ),
+    ] = False,
     force: ForceOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
 ) -> None:
@@ -627,6 +656,8 @@ def patch(
         fold=fold,
         force=force,
         max_model_bytes=max_model_bytes,
+        output_holds=output_holds,
+        fitted_on_twin=fitted_on_twin,
     )
     r = result.record
     what = f"T = {r.temperature:.4f}" if r.temperature is not None else f"{r.method} scaling"
@@ -647,6 +678,7 @@ def _how(r) -> str:
         "append-softmax": f"{nodes} + Softmax appended",
         "append-sigmoid": f"{nodes} + Sigmoid appended",
         "ml-log-probabilities": "classifier probabilities replaced by softmax(scaled log p)",
+        "replace-values": f"values replaced in place by the activation of the scaled logits ({r.logits_from})",
     }.get(r.rewrite, r.rewrite)
     if r.compute_dtype:
         how += f", computed in {r.compute_dtype}"
@@ -812,6 +844,7 @@ def calibrate(
     activation: ActivationOpt = None,
     compute_dtype: ComputeDtypeOpt = None,
     fold: FoldOpt = False,
+    output_holds: OutputHoldsOpt = None,
     method: MethodOpt = "temperature",
     multilabel: MultilabelOpt = None,
     l2: L2Opt = 0.0,
@@ -854,6 +887,7 @@ def calibrate(
             report=report_dir,
             drop_nonfinite=drop_nonfinite,
             max_model_bytes=max_model_bytes,
+            output_holds=output_holds,
             **runtime,
         )
     if as_json:

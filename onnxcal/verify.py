@@ -23,6 +23,7 @@ from datetime import datetime, timezone
 import numpy as np
 
 from .graph import np_dtype
+from .graph import post as _post
 from .metrics import METRIC_LABELS, Metrics, log_softmax, sigmoid
 from .scaling import Scaling
 
@@ -148,19 +149,32 @@ def _describe(scaling: Scaling) -> str:
     return "logits / T_k" if scaling.method == "temperature" else "w * logits + b"
 
 
-def reference_probabilities(logits: np.ndarray, scaling: Scaling | float, activation: str) -> np.ndarray:
-    """The NumPy reference: the activation of the calibrated logits, float64.
+def reference_probabilities(
+    logits: np.ndarray, scaling: Scaling | float, activation: str, post: tuple = ()
+) -> np.ndarray:
+    """The NumPy reference: post(activation(scale(logits))), float64.
 
     ``logits`` has the class axis last; ``scaling`` is a Scaling or a
     temperature. For ``"logsoftmax"`` the reference is in log space, like
-    the model's output.
+    the model's output. ``post`` is the post-processing the model applies
+    between the activation and the output (``graph.post``: x100, a clip,
+    one class taken, a quantization round trip), in order.
     """
     z = _as_scaling(scaling).apply(logits)
     if activation == "logsoftmax":
-        return log_softmax(z, axis=-1)
-    if activation == "sigmoid":
-        return sigmoid(z)
-    return np.exp(log_softmax(z, axis=-1))
+        p = log_softmax(z, axis=-1)
+    elif activation == "sigmoid":
+        p = sigmoid(z)
+    else:
+        p = np.exp(log_softmax(z, axis=-1))
+    return _post.apply(p, tuple(post))
+
+
+def output_tolerance(dtypes: str | tuple[str, ...], post: tuple = ()) -> float:
+    """The tolerance for an output: the dtype's (:func:`tolerance`), times what a constant
+    factor multiplies the values by, plus one quantization step when the output is quantized
+    (a float softmax quantized by onnxcal and a quantized kernel may round one step apart)."""
+    return tolerance(dtypes) * max(1.0, _post.gain(tuple(post))) + _post.step_size(tuple(post))
 
 
 def compare(
@@ -169,37 +183,46 @@ def compare(
     scaling: Scaling | float,
     activation: str,
     dtype: str | tuple[str, ...],
+    post: tuple = (),
 ) -> tuple[Check, ...]:
     """Checks (1) max abs error vs reference, (2) row sums, (3) argmax agreement
-    (for a sigmoid: the 0.5-threshold decision of every logit).
+    (for a sigmoid, or one class's probability: the 0.5-threshold decisions).
 
-    Both arrays have the class axis last and the same shape. The argmax (or
-    0.5-threshold decisions) must match the reference's; for temperature
-    scaling that is the original's. ``dtype`` is the dtype (or dtypes) the
-    patched graph computes in; see :func:`tolerance`.
+    ``patched`` holds the model's real output as rows (class axis last);
+    ``logits`` the original logits as rows; the reference is
+    post(activation(scale(logits))) (:func:`reference_probabilities`). The
+    argmax (or 0.5-threshold decisions) must match the reference's; for
+    temperature scaling that is the original's. ``dtype`` is the dtype (or
+    dtypes) the values pass through; see :func:`output_tolerance`.
     """
-    tol = tolerance(dtype)
+    post = tuple(post)
+    tol = output_tolerance(dtype, post)
     scaling = _as_scaling(scaling)
-    ref = reference_probabilities(logits, scaling, activation)
+    ref = reference_probabilities(logits, scaling, activation, post)
     got = np.asarray(patched, dtype=np.float64)
     diff = np.abs(got - ref)
     relative = ""
     if activation == "logsoftmax":  # a log-probability of -400 rounds by 400 times more than one near 0
         diff, relative = diff / np.maximum(1.0, np.abs(ref)), ", relative beyond |reference| = 1"
     err = float(np.max(diff)) if got.size else 0.0
+    then = _post.describe(post)
     checks = [
         Check(
             "reference",
             err <= tol,
             err,
             tol,
-            f"max |patched - {activation}({_describe(scaling)})|{relative} over {got.size} values",
+            f"max |patched - {activation}({_describe(scaling)}){then}|{relative} over {got.size} values",
         )
     ]
-    if activation in ("softmax", "logsoftmax"):
-        probs = np.exp(got) if activation == "logsoftmax" else got
-        sums = float(np.max(np.abs(probs.sum(axis=-1) - 1.0))) if got.size else 0.0
-        checks.append(Check("row-sums", sums <= tol, sums, tol, "max |sum_k p_k - 1| over rows"))
+    one = _post.takes_one(post)
+    if activation in ("softmax", "logsoftmax") and not one:
+        if all(isinstance(op, (_post.Scale, _post.Normalize)) for op in post):
+            probs = np.exp(got) if activation == "logsoftmax" else got / max(_post.gain(post), 1e-300)
+            sums = float(np.max(np.abs(probs.sum(axis=-1) - 1.0))) if got.size else 0.0
+            checks.append(Check("row-sums", sums <= tol, sums, tol, "max |sum_k p_k - 1| over rows"))
+        else:
+            checks.append(skipped("row-sums", f"the output is post-processed ({then[7:]}), its rows need not sum to 1"))
         agree = _top_class_agreement(got, ref, tol)
         what = "unchanged" if scaling.method == "temperature" else "as in the reference"
         checks.append(
@@ -207,11 +230,71 @@ def compare(
         )
     else:
         # A decision may differ only where the reference lies within rounding of the threshold.
-        decide = float(np.mean(((got > 0.5) == (ref > 0.5)) | (np.abs(ref - 0.5) <= tol))) if got.size else 1.0
+        half = 0.5 * max(_post.gain(post), 1e-300) if one or post else 0.5
+        decide = float(np.mean(((got > half) == (ref > half)) | (np.abs(ref - half) <= tol))) if got.size else 1.0
         checks.append(
             Check("decisions", decide == 1.0, decide, 1.0, "fraction of 0.5-threshold decisions as in the reference")
         )
     return tuple(checks)
+
+
+def identity_check(outputs: list[tuple[str, np.ndarray, np.ndarray, float]], params: str) -> Check:
+    """The patched model with its parameters set to the identity reproduces the original's outputs.
+
+    ``outputs`` holds, for every output the patched model keeps (same
+    name), the original's values, the identity-patched model's and the
+    tolerance. A rewrite that read the model right changes nothing at the
+    identity (T = 1, w = 1, b = 0); one that scaled the wrong tensor, or
+    treated probabilities as logits, does. This compares the model's own
+    outputs, not onnxcal's reading of them. ``params`` names the identity
+    ("T = 1", "w = 1, b = 0").
+    """
+    worst: tuple[float, str, float, float] | None = None
+    for name, original, identity, tol in outputs:
+        err = _difference(original, identity)
+        if err > tol:
+            detail = (f"with {params} the patched output '{name}' differs from the original's by {err:.3g} "
+                      f"(more than {tol:.3g}): onnxcal did not find the real logits, or misread what follows them")
+            return Check("identity", False, err, tol, detail)
+        ratio = err / tol if tol > 0 else 0.0
+        if worst is None or ratio > worst[0]:
+            worst = (ratio, name, err, tol)
+    if worst is None:
+        return skipped("identity", "the patched model keeps none of the original's outputs")
+    names = ", ".join(f"'{n}'" for n, *_ in outputs)
+    return Check("identity", True, worst[2], worst[3],
+                 f"with {params} the patched model reproduces the original's outputs {names} (max difference)")
+
+
+def _difference(a, b) -> float:
+    """Largest difference between two outputs: numbers (float or not), or ZipMap lists of maps."""
+    a, b = np.asarray(a), np.asarray(b)
+    if a.dtype == object:  # a ZipMap's sequence of maps: compare the values, key by key
+        if len(a) != len(b):
+            return float("inf")
+        keys = sorted(a[0]) if len(a) else []
+        a = np.array([[row[k] for k in keys] for row in a], dtype=np.float64)
+        b = np.array([[row.get(k, np.nan) for k in keys] for row in b], dtype=np.float64)
+    if a.shape != b.shape:
+        return float("inf")
+    if a.dtype.kind not in "fc" or b.dtype.kind not in "fc":
+        return 0.0 if np.array_equal(a, b) else float("inf")
+    a, b = a.astype(np.float64), b.astype(np.float64)
+    both_nan = np.isnan(a) & np.isnan(b)
+    with np.errstate(invalid="ignore"):
+        d = np.where(both_nan, 0.0, np.abs(a - b))
+    return float(np.max(d)) if d.size else 0.0
+
+
+def reading_check(described: str | None) -> Check:
+    """Fails when the original output, read as raw logits, holds probability rows (``guard``)."""
+    if described is None:
+        return Check("reading", True, None, None, "the original output's rows do not look like probabilities")
+    return Check(
+        "reading", False, None, None,
+        f"the original output holds probabilities, not raw logits ({described}), yet the patch "
+        "treats them as logits: onnxcal misread the model",
+    )
 
 
 def _top_class_agreement(got: np.ndarray, ref: np.ndarray, tol: float) -> float:

@@ -253,7 +253,7 @@ def test_top_level_functions_run_the_job(tmp_path):
     cap = onnxcal.capture(DEMO_MODEL, DEMO_VAL)
     summary = onnxcal.fit(cap, options=FitOptions(bootstrap=0))
     patched = onnxcal.patch(DEMO_MODEL, tmp_path / "p.onnx", fit=summary)
-    checked = onnxcal.verify(patched.path, DEMO_TEST, max_ece=0.1)
+    checked = onnxcal.verify(patched.path, DEMO_TEST, max_ece=0.1, original=DEMO_MODEL)  # not beside it
     assert checked.passed and checked.reference_from == "original"
     written = onnxcal.report(cap, tmp_path / "r", fit=summary, formats="json")
     assert written.content["metrics"]["after"]["ece"] == pytest.approx(summary.after.ece, rel=1e-12)

@@ -267,7 +267,8 @@ def test_disk_full_is_one_clean_line_and_nothing_changes(work, run_cli, full_dis
     api.patch(work / EXTERNAL.name, work / "old.onnx", temperature=3.0)  # outputs --force would replace
     api.fit(work / "c.npz", out=work / "c_fit.json")
     _wide_model(work / "wide.onnx", 256)
-    np.savez(work / "wide.npz", x=np.ones((5000, 1), np.float32), labels=np.zeros(5000, np.int64))
+    # labels over every class: one label on a 256-wide output is refused as not the class scores
+    np.savez(work / "wide.npz", x=np.ones((5000, 1), np.float32), labels=np.arange(5000, dtype=np.int64) % 256)
     monkeypatch.chdir(work)
     before = files_in(work)
     full_disk(target)

@@ -32,7 +32,7 @@ def run_reference(model, x, names=None):
 
 
 def do_patch(model, t, **kw):
-    return graph.patch(model, t, source_sha256=SHA, source_path="/src/model.onnx", **kw)
+    return graph.patch(model, t, source_sha256=SHA, source_name="model.onnx", **kw)
 
 
 @pytest.fixture
@@ -97,7 +97,7 @@ def test_record_round_trip(rng):
     assert record.source_sha256 == SHA and record.rewrite == "append-softmax"
     assert graph.temperature_value(patched, record) == pytest.approx(1.75)
     raw = next(p.value for p in patched.metadata_props if p.key == graph.RECORD_KEY)
-    assert json.loads(raw)["temperature"] == 1.75
+    assert json.loads(raw)[0]["temperature"] == 1.75  # format 3: one record per calibrated output
 
 
 def test_patch_is_deterministic(rng):
@@ -110,7 +110,7 @@ def test_names_never_collide(rng, x):
     # Occupy the names onnxcal would pick first.
     model.graph.node.append(helper.make_node("Identity", ["scores"], ["onnxcal_temperature"]))
     model.graph.output.append(helper.make_tensor_value_info("onnxcal_temperature", 1, ["N", 4]))
-    patched = do_patch(model, 2.0)
+    patched = do_patch(model, 2.0, output="scores")  # two raw outputs: the choice must be said
     record = graph.read_record(patched)
     assert record.temperature_initializer == "onnxcal_temperature_1"
     outs = run_ort(patched, x, ["probabilities"])
@@ -410,7 +410,7 @@ def test_fold_refuses_non_constant_and_quantized_weights(rng):
 def test_unpatch_restores_a_dropped_output_in_place(rng):
     model = random_mlp(rng)
     model.graph.output.append(helper.make_tensor_value_info("h0", 1, ["N", 8]))
-    patched = do_patch(model, 2.0, drop_logits=True)
+    patched = do_patch(model, 2.0, drop_logits=True, output="scores")  # two raw outputs: the choice must be said
     assert [o.name for o in patched.graph.output] == ["h0", "probabilities"]
     assert graph.unpatch(patched).SerializeToString() == model.SerializeToString()
 
@@ -792,7 +792,8 @@ def test_unpatch_of_a_fold_recorded_before_per_class_folding(rng, x):
 
 
 def _record_of(model) -> dict:
-    return json.loads(next(p.value for p in model.metadata_props if p.key == graph.RECORD_KEY))
+    (record,) = json.loads(next(p.value for p in model.metadata_props if p.key == graph.RECORD_KEY))
+    return record
 
 
 def _with_record(model, record: dict):
@@ -800,7 +801,7 @@ def _with_record(model, record: dict):
     out.CopyFrom(model)
     for p in out.metadata_props:
         if p.key == graph.RECORD_KEY:
-            p.value = json.dumps(record)
+            p.value = json.dumps([record])
     return out
 
 

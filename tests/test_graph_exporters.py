@@ -21,11 +21,11 @@ import onnx
 import onnxruntime as ort
 import pytest
 import scipy.special
+from conftest import FIXTURES
 from onnx.reference import ReferenceEvaluator
 
-from conftest import FIXTURES
 from onnxcal import api, graph
-from onnxcal.capture import as_rows, log_probabilities
+from onnxcal.capture import as_rows
 from onnxcal.errors import OnnxcalError
 from onnxcal.scaling import Scaling
 from onnxcal.verify import folded_record_check, tolerance
@@ -119,8 +119,8 @@ def scores_of(model: onnx.ModelProto, site: graph.ScoreSite, feed: dict, runner)
     """The original model's class scores as rows (class axis last), float64."""
     exposed, name = graph.expose_scores(model, site)
     (z,) = runner(graph.expose(exposed, [name]), feed, [name])
-    rows = as_rows(np.asarray(z), site.class_axis)
-    return (log_probabilities(rows) if site.from_probabilities else rows).astype(np.float64)
+    # expose_scores builds the logits as the patch does (log p, a classifier's raw scores, ...)
+    return as_rows(np.asarray(z), site.class_axis).astype(np.float64)
 
 
 def reference(z: np.ndarray, t: float, activation: str) -> np.ndarray:
@@ -133,7 +133,7 @@ def reference(z: np.ndarray, t: float, activation: str) -> np.ndarray:
 
 
 def do_patch(model, t=T, **kw):
-    return graph.patch(model, t, source_sha256=SHA, source_path="/src/model.onnx", **kw)
+    return graph.patch(model, t, source_sha256=SHA, source_name="model.onnx", **kw)
 
 
 def calibrated_rows(patched: onnx.ModelProto, feed: dict, runner) -> np.ndarray:
@@ -346,18 +346,25 @@ def test_transpose_softmax_transpose_is_tracked(models):
     assert site.scores == "/Transpose_output_0" and site.class_axis == 1
 
 
-def test_ml_label_follows_the_calibrated_argmax(models):
+def test_ml_label_output_is_the_classifiers_own(models):
+    # The label is the classifier's own decision: the patch leaves the node that computes it as it was
+    # (it used to recompute it from the new argmax, which changes an SVM's decisions where its label and
+    # the argmax of its Platt probabilities disagree). Temperature scaling cannot change the argmax.
     for name in ("digits_logreg_zipmap", "wine_boosted_tensor"):
         model = models[name]
         fx = BY_NAME[name]
         feed = inputs(model, fx, 64)
         patched = do_patch(model, 0.5)  # T < 1 sharpens; the argmax still stays
         label_name = patched.graph.output[0].name
+        classifier = next(n for n in model.graph.node if n.domain == "ai.onnx.ml" and n.op_type.endswith("Classifier"))
+        assert any(n.SerializeToString() == classifier.SerializeToString() or
+                   (n.op_type == classifier.op_type and n.output[0] == classifier.output[0]) for n in patched.graph.node)
+        assert not any(n.op_type in ("ArgMax", "Gather") and label_name in n.output for n in patched.graph.node)
         site = graph.find_scores(patched, fx.output)
         labels, probs = run_ort(graph.expose(patched, [site.tensor]), feed, [label_name, site.tensor])
         (before,) = run_ort(model, feed, [label_name])
-        np.testing.assert_array_equal(labels, probs.argmax(1))  # classes are 0..K-1 here
         np.testing.assert_array_equal(labels, before)
+        np.testing.assert_array_equal(labels, probs.argmax(1))  # classes are 0..K-1 here
 
 
 def test_zipmap_output_keeps_its_type_and_matches_the_tensor(models):
@@ -532,8 +539,10 @@ def _shift(a: np.ndarray) -> None:
     a += 1e-3
 
 
-def _record_check(run_cli, path: Path, val: Path) -> tuple[int, dict]:
-    r = run_cli("verify", path, "--data", val, "--json")
+def _record_check(run_cli, path: Path, val: Path, original: Path) -> tuple[int, dict]:
+    # The record names the original by file name; verify looks for it beside the patched model,
+    # so a patched model written elsewhere is verified with --original.
+    r = run_cli("verify", path, "--data", val, "--original", original, "--json")
     return r.code, next(c for c in json.loads(r.out)["checks"] if c["name"] == "record")
 
 
@@ -547,14 +556,14 @@ def test_calibrate_fold_then_verify_through_the_cli(tmp_path, run_cli, model, va
     assert record.folded and record.method == ("temperature" if "--multilabel" in options else options[1])
     appended = 1 if "--drop-logits" in options else 0  # the Softmax after raw logits
     assert len(patched.graph.node) == len(original.graph.node) + appended
-    code, check = _record_check(run_cli, out, val)
+    code, check = _record_check(run_cli, out, val, model)
     assert code == 0 and check["passed"] and check["value"] <= check["limit"]
     # A folded weight changed by 0.1 % (its largest entry), or a bias by 1e-3: verify fails.
     fold = record.changes["fold"]
     _tamper(out, fold["weight"], _scale_largest_entry)
-    code, check = _record_check(run_cli, out, val)
+    code, check = _record_check(run_cli, out, val, model)
     assert code == 1 and not check["passed"]
     graph.save_model(patched, out)
     _tamper(out, fold["bias"], _shift)
-    code, check = _record_check(run_cli, out, val)
+    code, check = _record_check(run_cli, out, val, model)
     assert code == 1 and not check["passed"]

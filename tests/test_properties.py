@@ -112,7 +112,7 @@ def test_patched_model_matches_the_numpy_reference(case):
     |reference|) was 1.4.
     """
     model, x, axis, end, t = case
-    patched = graph.patch(model, t, source_sha256=SHA, source_path="m.onnx")
+    patched = graph.patch(model, t, source_sha256=SHA, source_name="m.onnx")
     out = graph.read_record(patched).output
     got = run(patched, x, out).astype(np.float64)
     ref = reference(x, axis, end, t)
@@ -148,7 +148,7 @@ def test_temperature_scaling_keeps_the_top_class(case):
     """
     model, x, axis, end, t = case
     assume(end != "raw" or x.shape[1] > 1)  # one logit: no argmax
-    patched = graph.patch(model, t, source_sha256=SHA, source_path="m.onnx")
+    patched = graph.patch(model, t, source_sha256=SHA, source_name="m.onnx")
     out = graph.read_record(patched).output
     before = run(model, x, "probs" if end != "raw" else "logits")
     after = run(patched, x, out)
@@ -167,7 +167,7 @@ def test_verify_accepts_every_correct_patch(case):
     model, x, axis, end, t = case
     assume(end != "raw" or x.shape[1] > 1)
     assume(not _dropped_division(x.dtype, t))
-    patched = graph.patch(model, t, source_sha256=SHA, source_path="m.onnx")
+    patched = graph.patch(model, t, source_sha256=SHA, source_name="m.onnx")
     record = graph.read_record(patched)
     site = graph.find_scores(patched, record.output)
     got = run(patched, x, record.output)
@@ -248,19 +248,19 @@ def test_patching_twice_equals_patching_once_with_the_second_temperature(model, 
     if fold:
         assume(graph.read_record(model) is None)
         try:
-            once = graph.patch(model, t2, source_sha256=SHA, source_path="m.onnx", fold=True)
+            once = graph.patch(model, t2, source_sha256=SHA, source_name="m.onnx", fold=True)
         except OnnxcalError:  # not every model has a foldable logits layer
             assume(False)
-        first = graph.patch(model, t1, source_sha256=SHA, source_path="m.onnx", fold=True)
-        twice = graph.patch(first, t2, source_sha256="1" * 64, source_path="other.onnx", fold=True)
+        first = graph.patch(model, t1, source_sha256=SHA, source_name="m.onnx", fold=True)
+        twice = graph.patch(first, t2, source_sha256="1" * 64, source_name="other.onnx", fold=True)
         x = np.random.default_rng(0).standard_normal((7, 4)).astype(np.dtype(_input_dtype(model)))
         out = graph.read_record(once).output
         np.testing.assert_allclose(run(twice, x, out), run(once, x, out), rtol=1e-5, atol=1e-6)
         assert graph.read_record(twice).source_sha256 == SHA  # the original stays named
         return
-    once = graph.patch(model, t2, source_sha256=SHA, source_path="m.onnx")
-    first = graph.patch(model, t1, source_sha256=SHA, source_path="m.onnx")
-    twice = graph.patch(first, t2, source_sha256="1" * 64, source_path="other.onnx")
+    once = graph.patch(model, t2, source_sha256=SHA, source_name="m.onnx")
+    first = graph.patch(model, t1, source_sha256=SHA, source_name="m.onnx")
+    twice = graph.patch(first, t2, source_sha256="1" * 64, source_name="other.onnx")
     assert twice.SerializeToString() == once.SerializeToString()
 
 

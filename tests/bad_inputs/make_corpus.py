@@ -170,9 +170,20 @@ def bad_models(d: Path, rng: np.random.Generator) -> None:
     )
     _save(_finish(huge), d / "huge_input.onnx")
 
+    # two outputs of class probabilities (one the other x 100): which one is not said
+    two = helper.make_graph(
+        [helper.make_node("Softmax", ["x"], ["probs"], axis=1, name="softmax"),
+         helper.make_node("Mul", ["probs", "hundred"], ["probs_pct"], name="percent")],
+        "two_probability_outputs",
+        [_vi("x", ["N", K])],
+        [_vi("probs", ["N", K]), _vi("probs_pct", ["N", K])],
+        initializer=[numpy_helper.from_array(np.array(100.0, np.float32), "hundred")],
+    )
+    _save(_finish(two), d / "two_outputs.onnx")
+
     # the good model patched, then its record made to disagree with its graph
     patched = onnx.load(str(d / "patched.onnx"))
-    record = json.loads(next(p.value for p in patched.metadata_props if p.key == "onnxcal.calibration"))
+    (record,) = json.loads(next(p.value for p in patched.metadata_props if p.key == "onnxcal.calibration"))
     lost = onnx.ModelProto()
     lost.CopyFrom(patched)  # a tool removed onnxcal's Div but kept the metadata
     div = next(n for n in lost.graph.node if n.name in record["changes"]["nodes"] and n.op_type == "Div")
@@ -188,7 +199,7 @@ def bad_models(d: Path, rng: np.random.Generator) -> None:
     garbled = onnx.ModelProto()
     garbled.CopyFrom(patched)  # a record whose fields have the wrong types
     record_bad = dict(record, changes="nodes: all of them", parameters=[1, 2])
-    next(p for p in garbled.metadata_props if p.key == "onnxcal.calibration").value = json.dumps(record_bad)
+    next(p for p in garbled.metadata_props if p.key == "onnxcal.calibration").value = json.dumps([record_bad])
     _save(garbled, d / "record_garbled.onnx")
 
 

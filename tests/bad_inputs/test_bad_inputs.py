@@ -132,6 +132,13 @@ CASES = [
     case("int64-only-output", "calibrate", "int64_output.onnx", "--data", "val3.npz", "--out", "o.onnx", message=r"no floating-point output to calibrate \(outputs: label \(int64\)\)"),
     case("no-such-output", "capture", "model.onnx", *NPZ, "--output", "nope", "--out", "c.npz", message=r"no output named 'nope'; choose one of: scores"),
     case("class-axis-out-of-range", "patch", "class_axis.onnx", *T2, "--out", "p.onnx", message=r"class axis 5 is out of range for output 'scores' of rank 2"),
+    # ---- reading the model: which output, what it holds, whose fit
+    case("several-probability-outputs", "patch", "two_outputs.onnx", *T2, "--out", "p.onnx", message=r"2 outputs of class probabilities: 'probs' .*'probs_pct'.*choose one with --output"),
+    case("output-holds-unknown", "patch", "model.onnx", *T2, "--out", "p.onnx", "--output-holds", "odds", message=r"--output-holds 'odds' is not one of: logits, probabilities, log-probabilities"),
+    case("output-holds-contradicts-graph", "patch", "two_outputs.onnx", *T2, "--out", "p.onnx", "--output", "probs", "--output-holds", "logits", message=r"output 'probs' comes from Softmax, so it holds probabilities, not logits"),
+    case("output-holds-contradicts-data", "capture", "model.onnx", *NPZ, "--out", "c.npz", "--output-holds", "probabilities", message=r"--output-holds probabilities: on the first .* rows of 'val.npz', only 0 of .* rows"),
+    case("fit-of-another-model", "patch", "other_model.onnx", "--fit", "fit.json", "--out", "p.onnx", message=r"'fit.json' was fitted on the model with sha256 .*, not on 'other_model.onnx'.*--fitted-on-twin"),
+    case("twin-without-fit", "patch", "model.onnx", *T2, "--out", "p.onnx", "--fitted-on-twin", message=r"--fitted-on-twin applies to --fit"),
     case("custom-op-domain", "capture", "custom_op.onnx", *NPZ, "--out", "c.npz", message=r"unsupported operator 'VibrationScore' in domain 'com.example.belt'"),
     case("model-over-size-limit", "inspect", "model.onnx", "--max-model-bytes", "100", message=r"'model.onnx' is \d+ bytes .*more than --max-model-bytes 100"),
     case("bad-size-limit", "patch", "model.onnx", *T2, "--out", "p.onnx", "--max-model-bytes", "lots", message=r"--max-model-bytes 'lots' is not a size"),

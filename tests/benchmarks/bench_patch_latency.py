@@ -66,7 +66,7 @@ def mlp(sizes: list[int], seed: int) -> onnx.ModelProto:
 
 
 def variants(model: onnx.ModelProto) -> dict[str, onnx.ModelProto]:
-    common = dict(source_sha256="0" * 64, source_path="bench.onnx")
+    common = dict(source_sha256="0" * 64, source_name="bench.onnx")
     return {
         "plain": model,
         "patched": graph.patch(model, T, **common),

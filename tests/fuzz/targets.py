@@ -101,7 +101,7 @@ def fuzz_model(data: bytes) -> None:
         json.dumps(info.to_dict(), default=str)  # what inspect --json prints
         model = graph.load_model(path)
         graph.find_scores(model)
-        graph.patch(model, 1.5, source_sha256=SHA, source_path=path)
+        graph.patch(model, 1.5, source_sha256=SHA, source_name=path)
 
     _boundary(run)
 
@@ -127,7 +127,7 @@ def fuzz_fit(data: bytes) -> None:
 
     def run():
         summary = load_fit(path)
-        graph.patch(demo_model(), summary.scaling, source_sha256=SHA, source_path=DEMO_MODEL)
+        graph.patch(demo_model(), summary.scaling, source_sha256=SHA, source_name=DEMO_MODEL)
 
     _boundary(run)
 
@@ -151,7 +151,7 @@ def seeds(target: str) -> dict[str, bytes]:
     small = {k: val[k][:24] for k in val.files}
     if target == "model":
         out = {p.name: p.read_bytes() for p in sorted(FIXTURES.rglob("*.onnx")) if p.stat().st_size < 40_000}
-        patched = graph.patch(demo_model(), 1.7, source_sha256=SHA, source_path=DEMO_MODEL)
+        patched = graph.patch(demo_model(), 1.7, source_sha256=SHA, source_name=DEMO_MODEL)
         out["demo_patched.onnx"] = patched.SerializeToString()
         return out
     if target == "npz":
@@ -279,7 +279,7 @@ def _record_like(rnd: random.Random) -> dict:
     """A real calibration record with some fields replaced by junk."""
     global _record
     if _record is None:
-        patched = graph.patch(demo_model(), 1.7, source_sha256=SHA, source_path=DEMO_MODEL)
+        patched = graph.patch(demo_model(), 1.7, source_sha256=SHA, source_name=DEMO_MODEL)
         _record = graph.read_record(patched).to_dict()
     record = json.loads(json.dumps(_record))
     junk = [None, -1, 0, 1.5, "x", [], {}, [1, 2], {"temperature": -2}, 1e308, "NaN"]

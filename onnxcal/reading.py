@@ -1,0 +1,250 @@
+"""Reading a model right before fitting it, and checking the reading on the data.
+
+The score finder (``graph.find_scores``) reads the graph. Before a capture
+that reading is checked against the model's own output on the first rows
+(``read_model``): the logits it names must reproduce the output through the
+activation and post-processing it found, an ai.onnx.ml classifier whose
+raw scores do not is read through log p instead, and an output read as raw
+logits whose rows are probabilities (``guard``) is read as probabilities.
+After the capture the whole set is checked again (``check_capture``).
+``identity_check`` runs the patched model with its parameters at the
+identity against the original model: the check ``verify`` and ``calibrate``
+use to catch a misreading.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, replace
+
+import numpy as np
+import onnx
+
+from . import graph
+from . import guard as _guard
+from .capture import RunOptions, probe, run_model
+from .data import Dataset, check_labels
+from .errors import OnnxcalError, OnnxcalWarning
+from .graph import Record, ScoreSite
+from .verify import (
+    Check,
+    identity_check,
+    output_tolerance,
+    reference_probabilities,
+    skipped,
+    tolerance,
+)
+
+
+@dataclass(frozen=True)
+class Reading:
+    """How the model is read, and what the first rows showed."""
+
+    site: ScoreSite
+    notes: tuple[str, ...] = ()
+    k: int = 0
+
+
+def read_model(
+    model: onnx.ModelProto,
+    dataset: Dataset,
+    *,
+    output: str | None,
+    holds: str | None,
+    activation: str | None,
+    run: RunOptions,
+) -> Reading:
+    """The reading of ``model``'s output, checked on the first rows of ``dataset``.
+
+    Raises
+    ------
+    OnnxcalError
+        The logits found do not reproduce the model's output, or the data
+        contradict ``holds`` (what the user says the output holds).
+    """
+    site = graph.find_scores(model, output)
+    kind = graph.fit_kind(site, activation)
+    notes: list[str] = []
+    if holds is not None:
+        site = graph.read_as(site, holds, kind, source="stated")
+    z, values = probe(model, dataset, site, run)
+    if site.logits_from == "raw-scores" and _mismatch(z, values, site) is not None:
+        notes.append(
+            f"the raw scores of the {site.ml_transform} classifier behind output '{site.output}' do not "
+            "reproduce its probabilities, so onnxcal calibrates log p instead"
+        )
+        site = replace(site, logits_from="log")
+        z, values = probe(model, dataset, site, run)
+    stats = _guard.RowStats()
+    stats.add(values)
+    if holds is not None:
+        if (why := _guard.agrees(stats, holds, kind)) is not None:
+            raise OnnxcalError(
+                f"--output-holds {holds}: on the first {stats.rows} rows of '{dataset.source}', {why}",
+                "leave out --output-holds, or check which output you chose (--output)",
+            )
+    elif site.activation is None:
+        seen = _guard.looks_like(stats, kind)
+        if seen != "logits":
+            site = graph.read_as(site, seen, kind, source="data")
+            z, values = probe(model, dataset, site, run)
+            notes.append(
+                f"output '{site.output}' holds {seen}, not logits: {_guard.describe(stats)}; onnxcal "
+                f"calibrates them through z = {_Z[site.logits_from]} and replaces the output's values in place "
+                "(say otherwise with --output-holds)"
+            )
+    if site.activation is not None and (why := _mismatch(z, values, site)) is not None:
+        raise OnnxcalError(
+            f"onnxcal's reading of output '{site.output}' ({graph.describe_site(site)}) does not reproduce the "
+            f"model's own output on the first rows ({why})",
+            "choose another output with --output, or say what it holds with --output-holds",
+        )
+    return Reading(site, tuple(notes), int(z.shape[1]) if z.ndim == 2 else 0)
+
+
+_Z = {"log": "log p", "logit": "log p - log(1 - p)", "log-probabilities": "the log-probabilities themselves"}
+
+
+def _mismatch(z: np.ndarray, values: np.ndarray, site: ScoreSite) -> str | None:
+    """Why post(activation(z)) is not the model's output (within its tolerance), or None."""
+    if site.activation is None:
+        return None
+    ref = reference_probabilities(z.astype(np.float64), 1.0, site.activation, site.post)
+    got = np.asarray(values, dtype=np.float64)
+    if ref.shape != got.shape:
+        return f"{ref.shape[1]} values per row where the output has {got.shape[1]}"
+    tol = output_tolerance(site.dtypes or (site.dtype,), site.post)
+    diff = np.abs(got - ref)
+    if site.activation == "logsoftmax":
+        diff = diff / np.maximum(1.0, np.abs(ref))
+    finite = np.isfinite(diff)
+    err = float(np.max(diff[finite])) if finite.any() else 0.0
+    return None if err <= tol else f"they differ by up to {err:.3g}, more than {tol:.3g}"
+
+
+def capture_check(site: ScoreSite, kind: str):
+    """The check ``capture`` runs on the statistics of every captured row (before writing).
+
+    Refuses logits behind a recognised softmax that are themselves
+    probability rows, and an output read one way on the first rows that
+    the whole set contradicts.
+    """
+
+    def check(stats: _guard.RowStats) -> None:
+        seen = _guard.looks_like(stats, kind)
+        if site.logits_from == "tensor" and site.activation in ("softmax", "logsoftmax") and seen == "probabilities":
+            raise OnnxcalError(
+                f"the logits '{site.scores}' behind the {site.spelling} of output '{site.output}' are themselves "
+                f"probabilities ({_guard.describe(stats)}): the model applies a softmax to probabilities, and "
+                "temperature scaling of those would not calibrate it",
+                "calibrate the output that holds the first probabilities (--output), or re-export the model "
+                "without the second softmax",
+            )
+        if site.activation is None and seen != "logits":
+            raise OnnxcalError(
+                f"output '{site.output}' was read as raw logits from its first rows, but over the whole set "
+                f"{_guard.describe(stats)}",
+                "say what it holds with --output-holds",
+            )
+        if site.spelling == "data" and site.logits_from == "log" and stats.share("log-probabilities") < _guard.AUTO_SHARE:
+            raise OnnxcalError(
+                f"output '{site.output}' was read as probabilities from its first rows, but over the whole set only "
+                f"{stats.log_probabilities} of {stats.rows} rows are probability vectors",
+                "say what it holds with --output-holds",
+            )
+
+    return check
+
+
+def warn_saturated(site: ScoreSite, stats: _guard.RowStats | None) -> None:
+    """Warn when log p loses margins: probabilities rounded to 0 or 1 in the output's dtype."""
+    if stats is None or site.logits_from != "log" or not stats.saturated:
+        return
+    why = (f"the classifier's raw scores are not available (post_transform {site.ml_transform})"
+           if site.spelling == "ml-classifier" else "the model gives probabilities, not logits")
+    warnings.warn(
+        OnnxcalWarning(
+            f"{stats.saturated} of {stats.rows} rows of output '{site.output}' hold probabilities rounded to 0 or 1 "
+            f"in {site.dtype}: log p loses their margins, so the fitted T may be far from the one the true margins "
+            f"give ({why})"
+        ),
+        stacklevel=3,
+    )
+
+
+def check_label_coverage(labels: np.ndarray, k: int, site: ScoreSite, class_names, source: str) -> None:
+    """Refuse (or warn about) an output with far more values per row than the labels have classes.
+
+    The labels are checked first (class indices in [0, K)), so a bad label
+    is reported as such.
+    """
+    if class_names is not None or np.ndim(labels) != 1 or site.takes_one or k < 2:
+        return
+    check_labels(labels, len(labels), k, source)
+    refuse, warn = _guard.label_coverage(labels, k)
+    if refuse is not None:
+        raise OnnxcalError(
+            f"output '{site.output}' may not be the class scores: on '{source}' {refuse}",
+            "choose the class-score output with --output, or give --classes with one name per value if "
+            "the labels really cover only these classes",
+        )
+    if warn is not None:
+        warnings.warn(OnnxcalWarning(f"output '{site.output}': {warn}"), stacklevel=3)
+
+
+def patch_reading(meta: dict) -> dict:
+    """The keyword arguments of ``graph.patch`` that read a model as a capture read it."""
+    kw: dict = {}
+    if meta.get("spelling") in ("stated", "data") and meta.get("holds"):
+        kw.update(holds=meta["holds"], holds_from=meta["spelling"])
+    if meta.get("spelling") == "ml-classifier" and meta.get("logits_from") == "log":
+        kw["logits_from"] = "log"
+    return kw
+
+
+def site_reading(site: ScoreSite) -> dict:
+    """The keyword arguments of ``graph.patch`` that read a model as ``site`` does."""
+    return patch_reading({"spelling": site.spelling, "holds": site.holds, "logits_from": site.logits_from})
+
+
+def _params(records: tuple[Record, ...]) -> str:
+    methods = {r.method for r in records}
+    return "T = 1" if methods == {"temperature"} else "the identity (T = 1, w = 1, b = 0)"
+
+
+def identity(
+    original: onnx.ModelProto | None,
+    patched: onnx.ModelProto,
+    records: tuple[Record, ...],
+    dataset: Dataset,
+    run: RunOptions,
+    progress=None,
+) -> Check:
+    """``verify.identity_check`` of the patched model at the identity against ``original``."""
+    if original is None:
+        return skipped("identity", "no original model: the patch cannot be undone exactly (folded weights), "
+                                   "give --original")
+    at_one = graph.at_identity(patched, records, original)
+    if at_one is None:
+        return skipped("identity", "the parameters are folded into the weights; give --original")
+    names = [o.name for o in original.graph.output if o.name in {p.name for p in patched.graph.output}]
+    if not names:
+        return skipped("identity", "the patched model keeps none of the original's outputs")
+    want = run_model(original, dataset, names, options=run, progress=progress, description="running the original")
+    got = run_model(at_one, dataset, names, options=run, progress=progress, description="running at the identity")
+    tols = _tolerances(patched, original, records, names)
+    return identity_check([(n, w, g, tols[n]) for n, w, g in zip(names, want, got)], _params(records))
+
+
+def _tolerances(patched: onnx.ModelProto, original: onnx.ModelProto, records, names: list[str]) -> dict[str, float]:
+    """Per output: the calibrated ones follow the dtypes their values pass through; others their own dtype."""
+    specs = {vi.name: graph.tensor_spec(vi) for vi in original.graph.output}
+    tols = {n: (tolerance(specs[n].dtype) if specs[n].is_float else 0.0) for n in names}
+    for r in records:
+        if r.output in tols:
+            site = graph.find_scores(patched, r.output)
+            dtypes = tuple(dict.fromkeys([*site.dtypes, *(site.dtype,)]))
+            tols[r.output] = max(tols[r.output], output_tolerance(dtypes, site.post))
+            if specs[r.output].dtype.startswith("seq("):
+                tols[r.output] = output_tolerance(dtypes, site.post)
+    return tols
