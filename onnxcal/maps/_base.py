@@ -295,6 +295,23 @@ class GraphBuilder:
         log1p = self.node("Log", [self.node("Add", [e, self.const("one", 1.0)], "one_plus")], "log1p")
         return self.node("Add", [self.node("Relu", [z], "relu"), log1p], "softplus")
 
+    def log_softmax(self, z: str) -> str:
+        """z - max(z) - log(sum(exp(z - max(z)))) along the last axis.
+
+        Spelled out rather than LogSoftmax, which onnx's ReferenceEvaluator
+        computes as log(softmax(z)) (-inf once a probability underflows); the
+        row maximum comes from ArgMax + GatherElements, whose signatures are
+        the same at every opset from 13 on (ReduceMax's axes moved from an
+        attribute to an input at opset 18).
+        """
+        top, indices = self.name("row_max"), self.name("row_argmax")
+        k = self.const("top_k", np.array([1]), "int64")
+        self.nodes.append(helper.make_node("TopK", [z, k], [top, indices], name=self.name("topk"), axis=-1))
+        shifted = self.node("Sub", [z, top], "shifted")
+        axes = self.const("axes_lse", np.array([-1]), "int64")
+        total = self.node("ReduceSum", [self.node("Exp", [shifted], "exp_shifted"), axes], "sum_exp", keepdims=1)
+        return self.node("Sub", [shifted, self.node("Log", [total], "log_sum_exp")], "log_probabilities")
+
     def renormalise(self, q: str, num_classes: int) -> str:
         """q / sum_k q_k along the last axis; a row of zeros becomes uniform 1/K.
 

@@ -252,7 +252,7 @@ def build(
     g = GraphBuilder(x, dtype, f"onnxcal_{method}", taken, compute_dtype)
     feats = g.start()
     if log_probs:
-        feats = g.node("LogSoftmax", [feats], "log_probabilities", axis=-1)
+        feats = g.log_softmax(feats)
     s = g.node("MatMul", [feats, g.const("weight_t", w.T)], "matmul")
     s = g.node("Add", [s, g.const("bias", b)], "logits")
     if output == "probabilities":

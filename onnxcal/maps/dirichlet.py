@@ -20,8 +20,8 @@ same for every class and the map equals matrix scaling on the logits.
 Parameters (JSON): ``{"W": [[K floats] x K], "b": [K floats]}``, the
 calibrated logits being ``log_softmax(z) @ W.T + b``.
 
-Graph: LogSoftmax(z) then MatMul + Add (+ Softmax), any opset >= 13. The
-LogSoftmax keeps it from folding into a preceding linear layer, except
+Graph: log-softmax(z) (TopK, Sub, Exp, ReduceSum, Log, Sub) then MatMul + Add (+ Softmax), any opset >= 13. The
+log-softmax keeps it from folding into a preceding linear layer, except
 when W's row sums are equal (then fold as matrix scaling; see
 :func:`row_sums_equal`).
 """
@@ -111,7 +111,8 @@ def build(
 ) -> Subgraph:
     """ONNX nodes computing the map from the logits ``x`` (N x K, class axis last).
 
-    LogSoftmax + MatMul + Add (+ Softmax, unless ``output="logits"``);
+    log-softmax (spelled out, see ``GraphBuilder.log_softmax``) + MatMul + Add
+    (+ Softmax, unless ``output="logits"``);
     opset >= 13; dtypes float16 (run in float32), float32, float64. Other
     arguments as :func:`onnxcal.maps.matrix.build`.
     """
