@@ -158,7 +158,10 @@ def fit(
     notes: list[str] = []
     passes = 0.0
     if temperature is None:
-        ts = fit_temperature(scores, labels, rows=rows, weights=weights)
+        # Explicit rows make fit_temperature gather (copy) every chunk: given
+        # float64 scores and no rows it shifts the caller's array in place.
+        every = np.arange(len(scores)) if rows is None else rows
+        ts = fit_temperature(scores, labels, rows=every, weights=weights)
         temperature, passes = float(ts.temperature), ts.passes
         notes.extend(ts.warnings)
     a, w = components(scores, labels, temperature, rows, weights)

@@ -44,6 +44,7 @@ from ._base import GraphBuilder, MapFit, Subgraph
 
 METHOD = "isotonic"
 KINDS = _lookup.KINDS
+TIE_RESOLUTION = float(np.finfo(np.float64).resolution)
 
 
 def n_parameters(params: dict) -> int:
@@ -67,7 +68,11 @@ def knots(p: np.ndarray, t: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.n
     """
     order = np.argsort(p, kind="stable")
     p, t, w = p[order], t[order], w[order]
-    u, first = np.unique(p, return_index=True)
+    # Ties: values closer than float64's resolution (1e-15) to the previous
+    # one are one value, as scikit-learn's _make_unique merges them; two
+    # softmax outputs of equal logits can differ in the last bit.
+    first = np.flatnonzero(np.concatenate([[True], np.diff(p) >= TIE_RESOLUTION]))
+    u = p[first]
     ws = np.add.reduceat(w, first)
     ts = np.add.reduceat(w * t, first) / ws
     fitted = scipy.optimize.isotonic_regression(ts, weights=ws, increasing=True).x
