@@ -154,7 +154,9 @@ def chunks(
 
     As :func:`onnxcal.metrics.iter_chunks`, with the chunk size in elements
     as a parameter. ``rows`` (sorted indices) selects a subset without a
-    copy of it; ``weights`` has one entry per selected row.
+    copy of it; ``weights`` has one entry per selected row. A chunk of
+    float64 scores without ``rows`` is a view of the caller's array: never
+    change it in place.
     """
     total = len(scores) if rows is None else len(rows)
     step = max(1, elements // max(1, scores.shape[1]))
