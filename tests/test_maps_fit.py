@@ -463,9 +463,9 @@ def test_ovr_platt_equals_scikit_learn_sigmoid_given_platts_targets(digits_logit
         # onnxcal's plain fit maximises the likelihood of the 0/1 labels, so it
         # scores them at least as well as scikit-learn's smoothed-target fit
         # (on nearly separable classes the two differ a lot: smoothing keeps a small).
-        def bce(a, b):
-            s = a * z[:, k] + b
-            return float(np.mean(np.logaddexp(0.0, s) - pos * s))
+        def bce(a, b, score=z[:, k], target=pos):
+            s = a * score + b
+            return float(np.mean(np.logaddexp(0.0, s) - target * s))
 
         assert bce(plain_fit["a"][k], plain_fit["b"][k]) <= bce(-calibrators[k].a_, -calibrators[k].b_) + 1e-12
 

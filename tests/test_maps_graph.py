@@ -24,7 +24,9 @@ from onnxcal.maps import MODULES, beta, dirichlet, ensemble, histogram, isotonic
 
 # onnx's ReferenceEvaluator computes Sigmoid as 1 / (1 + exp(-x)) and warns
 # when exp overflows for |x| ~ 1e4 (its result is still right: 0 or 1).
-pytestmark = pytest.mark.filterwarnings("ignore:overflow encountered in exp:RuntimeWarning", "ignore:invalid value encountered in divide:RuntimeWarning")
+pytestmark = pytest.mark.filterwarnings(
+    "ignore:overflow encountered in exp:RuntimeWarning", "ignore:invalid value encountered in divide:RuntimeWarning"
+)
 
 K = 4
 
@@ -55,7 +57,10 @@ def _params(method: str, z: np.ndarray, y: np.ndarray, rng: np.random.Generator)
     return MODULES[method].fit(z, y).parameters
 
 
-CASES = [(name, k) for name, m in MODULES.items() for k in ((K, 1) if "binary" in m.KINDS and "multiclass" in m.KINDS else (1,) if "binary" in m.KINDS else (K,))]
+# Every method at every width it takes: K logits (multiclass), one (binary).
+CASES = [
+    (name, k) for name, m in MODULES.items() for k in ((K,) if "multiclass" in m.KINDS else ()) + ((1,) if "binary" in m.KINDS else ())
+]
 
 
 def _run_both(model: onnx.ModelProto, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

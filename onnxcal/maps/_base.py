@@ -119,7 +119,7 @@ def field_array(params: Mapping, name: str, method: str, *, ndim: int, shape: tu
         raise OnnxcalError(f"{what} must be {want}, got an array of rank {arr.ndim}")
     if not np.all(np.isfinite(arr)):
         raise OnnxcalError(f"{what} holds values that are not finite numbers")
-    if shape is not None and any(w is not None and w != s for w, s in zip(shape, arr.shape)):
+    if shape is not None and any(w is not None and w != s for w, s in zip(shape, arr.shape, strict=False)):
         want_shape = " x ".join("any" if w is None else str(w) for w in shape)
         raise OnnxcalError(
             f"{what} has shape {' x '.join(map(str, arr.shape))}, expected {want_shape}",

@@ -113,15 +113,15 @@ def simplex_weights(a: np.ndarray, w: np.ndarray | None) -> tuple[np.ndarray, bo
         m = np.maximum(a @ v, tiny)
         return -float(wt @ np.log(m)) / total, -(a.T @ (wt / m)) / total
 
-    best = None
-    for v0 in (np.array([0.8, 0.1, 0.1]), np.array([1 / 3, 1 / 3, 1 / 3])):
-        res = scipy.optimize.minimize(
+    runs = [
+        scipy.optimize.minimize(
             objective, v0, jac=True, method="SLSQP", bounds=[(0.0, 1.0)] * 3,
             constraints=[{"type": "eq", "fun": lambda v: v.sum() - 1.0, "jac": lambda v: np.ones(3)}],
             options={"ftol": 1e-15, "maxiter": 500},
         )
-        if best is None or res.fun < best.fun:
-            best = res
+        for v0 in (np.array([0.8, 0.1, 0.1]), np.array([1 / 3, 1 / 3, 1 / 3]))
+    ]
+    best = min(runs, key=lambda r: float(r.fun))
     v = np.clip(best.x, 0.0, None)
     return v / v.sum(), bool(best.success)
 
@@ -162,7 +162,7 @@ def fit(
         # float64 scores and no rows it shifts the caller's array in place.
         every = np.arange(len(scores)) if rows is None else rows
         ts = fit_temperature(scores, labels, rows=every, weights=weights)
-        temperature, passes = float(ts.temperature), ts.passes
+        temperature, passes = float(ts.scaling.arrays()["temperature"]), ts.passes
         notes.extend(ts.warnings)
     a, w = components(scores, labels, temperature, rows, weights)
     v, converged = simplex_weights(a, w)

@@ -49,7 +49,7 @@ STRATEGIES = ("quantile", "uniform")
 
 
 def n_parameters(params: dict) -> int:
-    return sum(len(e) + len(v) for e, v in zip(params["edges"], params["values"]))
+    return sum(len(e) + len(v) for e, v in zip(params["edges"], params["values"], strict=True))
 
 
 def bin_edges(p: np.ndarray, w: np.ndarray, bins: int, strategy: str) -> np.ndarray:
@@ -86,7 +86,7 @@ def binned(p: np.ndarray, t: np.ndarray, w: np.ndarray, bins: int, strategy: str
 
 def calibrate_columns(params: dict, p: np.ndarray) -> np.ndarray:
     q = np.empty_like(p)
-    for k, (e, v) in enumerate(zip(params["edges"], params["values"])):
+    for k, (e, v) in enumerate(zip(params["edges"], params["values"], strict=True)):
         q[:, k] = np.asarray(v, dtype=np.float64)[np.searchsorted(np.asarray(e, dtype=np.float64), p[:, k], side="left")]
     return q
 
@@ -117,7 +117,7 @@ def check_parameters(params: dict, num_classes: int | None = None, kind: str | N
     edges, values = _lookup.check_tables(params, ("edges", "values"), num_classes, METHOD, kind)
     if len(edges) != len(values):
         raise OnnxcalError(f"histogram parameters 'edges' and 'values' have {len(edges)} and {len(values)} per-class lists")
-    for k, (e, v) in enumerate(zip(edges, values)):
+    for k, (e, v) in enumerate(zip(edges, values, strict=True)):
         if len(v) != len(e) + 1:
             raise OnnxcalError(f"histogram parameter 'values[{k}]' has {len(v)} values for {len(e)} edges (needs one more)")
         _lookup.strictly_increasing(e, f"edges[{k}]", METHOD)

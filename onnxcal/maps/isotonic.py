@@ -86,7 +86,7 @@ def knots(p: np.ndarray, t: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.n
 def calibrate_columns(params: dict, p: np.ndarray) -> np.ndarray:
     """Each column's isotonic map, before renormalisation (float64)."""
     q = np.empty_like(p)
-    for k, (x, y) in enumerate(zip(params["x"], params["y"])):
+    for k, (x, y) in enumerate(zip(params["x"], params["y"], strict=True)):
         q[:, k] = np.interp(p[:, k], np.asarray(x, dtype=np.float64), np.asarray(y, dtype=np.float64))
     return q
 
@@ -120,7 +120,7 @@ def check_parameters(params: dict, num_classes: int | None = None, kind: str | N
     xs, ys = _lookup.check_tables(params, ("x", "y"), num_classes, METHOD, kind)
     if len(xs) != len(ys):
         raise OnnxcalError(f"isotonic parameters 'x' and 'y' have {len(xs)} and {len(ys)} per-class lists")
-    for k, (x, y) in enumerate(zip(xs, ys)):
+    for k, (x, y) in enumerate(zip(xs, ys, strict=True)):
         if len(x) != len(y):
             raise OnnxcalError(f"isotonic parameters 'x[{k}]' and 'y[{k}]' have {len(x)} and {len(y)} values")
         _lookup.strictly_increasing(x, f"x[{k}]", METHOD)
@@ -184,7 +184,7 @@ def tables(params: dict) -> dict[str, np.ndarray]:
     base_x = np.zeros((len(xs), width + 1))
     base_y = np.zeros((len(xs), width + 1))
     slope = np.zeros((len(xs), width + 1))
-    for k, (x, y) in enumerate(zip(xs, ys)):
+    for k, (x, y) in enumerate(zip(xs, ys, strict=True)):
         m = len(x)
         base_x[k, 0], base_y[k, 0] = x[0], y[0]
         base_x[k, 1:m], base_y[k, 1:m] = x[:-1], y[:-1]
