@@ -12,7 +12,8 @@ One module per method; each exposes the same functions:
 * ``build(x, dtype, num_classes, params, *, taken=(), compute_dtype=None)
   -> Subgraph``: the ONNX nodes and initializers (standard operators, opset
   >= 13) that compute the map from the tensor ``x``;
-* ``METHOD``, ``KINDS``, ``n_parameters``.
+* ``METHOD``, ``KINDS``, ``n_parameters(num_classes, params=None)`` (the
+  lookups need ``params``: their size comes from the fit).
 
 ==========================  ===========  ==========================================  ============
 method                      kinds        calibrated probabilities                    keeps argmax

@@ -42,7 +42,7 @@ A_MAX = 100.0  # a, b in [0, A_MAX] (a bound for separable data)
 C_MAX = 1000.0
 
 
-def n_parameters(num_classes: int = 1) -> int:
+def n_parameters(num_classes: int = 1, params: dict | None = None) -> int:
     return 3
 
 

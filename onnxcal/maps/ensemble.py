@@ -46,7 +46,7 @@ KINDS = ("multiclass",)
 _SUM_TOL = 1e-6
 
 
-def n_parameters(num_classes: int = 0) -> int:
+def n_parameters(num_classes: int = 0, params: dict | None = None) -> int:
     return 3  # T and two free weights
 
 

@@ -48,7 +48,10 @@ DEFAULT_BINS = 10  # Zadrozny & Elkan 2001 used 10 bins (from memory)
 STRATEGIES = ("quantile", "uniform")
 
 
-def n_parameters(params: dict) -> int:
+def n_parameters(num_classes: int, params: dict | None = None) -> int:
+    """Edges and values over all classes (the fit decides how many: ``params`` is needed)."""
+    if params is None:
+        raise ValueError("a binning's size depends on its fit: pass params")
     return sum(len(e) + len(v) for e, v in zip(params["edges"], params["values"], strict=True))
 
 

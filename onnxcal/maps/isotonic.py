@@ -47,8 +47,10 @@ KINDS = _lookup.KINDS
 TIE_RESOLUTION = float(np.finfo(np.float64).resolution)
 
 
-def n_parameters(params: dict) -> int:
-    """Knots and values over all classes (the fit decides how many)."""
+def n_parameters(num_classes: int, params: dict | None = None) -> int:
+    """Knots and values over all classes (the fit decides how many: ``params`` is needed)."""
+    if params is None:
+        raise ValueError("an isotonic map's size depends on its fit: pass params")
     return sum(2 * len(x) for x in params["x"])
 
 

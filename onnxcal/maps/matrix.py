@@ -36,7 +36,7 @@ KINDS = _linear.KINDS
 DEFAULT_L2 = _linear.DEFAULT_L2
 
 
-def n_parameters(num_classes: int) -> int:
+def n_parameters(num_classes: int, params: dict | None = None) -> int:
     return num_classes * num_classes + num_classes
 
 

@@ -58,7 +58,7 @@ KINDS = ("multiclass", "binary")
 A_MIN, A_MAX = 1.0 / T_MAX, 1.0 / T_MIN
 
 
-def n_parameters(num_classes: int) -> int:
+def n_parameters(num_classes: int, params: dict | None = None) -> int:
     return 2 * num_classes
 
 

@@ -119,9 +119,7 @@ def metrics(p: np.ndarray, y: np.ndarray) -> dict[str, float]:
 
 
 def n_parameters(method: str, k: int, params: dict | None) -> int:
-    return {"temperature": 1, "vector": 2 * k, "platt": 2}.get(method) or (
-        maps.module(method).n_parameters(params) if method in maps.LOOKUP_METHODS else maps.module(method).n_parameters(k)
-    )
+    return {"temperature": 1, "vector": 2 * k, "platt": 2}.get(method) or maps.module(method).n_parameters(k, params)
 
 
 def fit_onnxcal(method: str, z: np.ndarray, y: np.ndarray, **kw) -> Callable[[np.ndarray], np.ndarray]:
