@@ -161,3 +161,18 @@ def test_ensemble_and_ovr_platt_are_probabilities_only():
     with pytest.raises(TypeError):
         ovr_platt.build("z", "float32", 3, {"a": [1.0] * 3, "b": [0.0] * 3}, output="logits")  # type: ignore[call-arg]
     assert histogram.build("z", "float32", 1, {"edges": [[]], "values": [[0.3]]}).output
+
+
+@pytest.mark.parametrize(("method", "k"), CASES)
+def test_graph_matches_reference_float64(method, k):
+    # float64 in and out (onnxruntime's double kernels; the ONNX specification's
+    # types for every operator used): the graph and the reference then agree to
+    # rounding.
+    rng = np.random.default_rng(11)
+    z = _logits(rng, 200, k)
+    params = _params(method, z, _labels(rng, z), rng)
+    mod = MODULES[method]
+    model = standalone_model(mod.build("logits", "float64", k, params), "float64", k, 13)
+    for got in _run_both(model, z):
+        assert got.dtype == np.float64
+        np.testing.assert_allclose(got, mod.apply(params, z), atol=1e-9, rtol=0)
