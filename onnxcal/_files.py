@@ -19,7 +19,7 @@ import sys
 import tempfile
 import time
 import warnings
-from collections.abc import Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from pathlib import Path
 
 from .errors import OnnxcalError, OnnxcalWarning
@@ -42,6 +42,39 @@ def sha256_file(path: str | os.PathLike) -> str:
     except OSError as exc:
         raise OnnxcalError(f"cannot read '{path}': {exc.strerror or exc}", "check that the file is readable") from exc
     return digest.hexdigest()
+
+
+def copy_range(src: int, dst: int, length: int, src_offset: int, dst_offset: int) -> None:
+    """Copy ``length`` bytes from ``src`` at ``src_offset`` to ``dst`` at ``dst_offset`` (file descriptors).
+
+    The kernel copies (``os.copy_file_range``: no bytes pass through this
+    process, and a file system that can share extents copy-on-write, or a
+    network file system that copies on the server, does so; the result is
+    an independent file either way); where it cannot (another file system,
+    an old kernel, another OS) through a buffer of 8 MiB. Memory stays flat
+    whatever ``length`` is.
+    """
+    done = 0
+    fast = hasattr(os, "copy_file_range")
+    while done < length:
+        count = length - done
+        if fast:
+            try:
+                n = os.copy_file_range(src, dst, count, src_offset + done, dst_offset + done)
+            except OSError as exc:
+                if exc.errno not in (errno.EXDEV, errno.ENOSYS, errno.EINVAL, errno.EOPNOTSUPP, errno.ENOTSUP):
+                    raise
+                fast, n = False, -1
+            if n == 0:
+                raise OSError(errno.EIO, f"the source ends {length - done} bytes early")
+            if n > 0:
+                done += n
+                continue
+        block = os.pread(src, min(count, 8 << 20), src_offset + done)
+        if not block:
+            raise OSError(errno.EIO, f"the source ends {length - done} bytes early")
+        os.pwrite(dst, block, dst_offset + done)
+        done += len(block)
 
 
 def sha256_bytes(data: bytes) -> str:
@@ -355,8 +388,15 @@ def atomic_path(dest: str | os.PathLike) -> Iterator[Path]:
         yield tmp
 
 
-def atomic_write_files(files: Mapping[str | os.PathLike, bytes]) -> None:
+Writer = Callable[[Path], None]
+"""Writes a whole file to the (temporary) path it is given: a file too large to hold as bytes."""
+
+
+def atomic_write_files(files: Mapping[str | os.PathLike, bytes | Writer]) -> None:
     """Write several files together, each atomically (see :func:`atomic_paths`).
+
+    Each value is the file's bytes, or a :data:`Writer` that writes it to
+    the temporary path it is given (streamed, e.g. a model's weights).
 
     Every file is written in full under a temporary name before any is
     renamed into place, so a failure while writing (a full disk) leaves none
@@ -377,7 +417,10 @@ def atomic_write_files(files: Mapping[str | os.PathLike, bytes]) -> None:
         with atomic_paths(list(files)) as tmps:
             for tmp, (dest, data) in zip(tmps, files.items()):
                 try:
-                    tmp.write_bytes(data)
+                    if callable(data):
+                        data(tmp)
+                    else:
+                        tmp.write_bytes(data)
                 except OSError as exc:
                     raise write_error(exc, dest) from exc
     except BaseException:
