@@ -44,7 +44,33 @@ def sha256_file(path: str | os.PathLike) -> str:
     return digest.hexdigest()
 
 
-def copy_range(src: int, dst: int, length: int, src_offset: int, dst_offset: int) -> None:
+def _data_runs(src: int, start: int, end: int) -> Iterator[tuple[int, int]]:
+    """The (offset, stop) runs of ``src`` between ``start`` and ``end`` that may hold data (not holes).
+
+    ``SEEK_DATA`` / ``SEEK_HOLE`` where the OS and file system answer; else the whole range.
+    """
+    if not hasattr(os, "SEEK_DATA"):
+        yield start, end
+        return
+    pos = start
+    while pos < end:
+        try:
+            data = os.lseek(src, pos, os.SEEK_DATA)
+            hole = os.lseek(src, data, os.SEEK_HOLE)
+        except OSError as exc:
+            if exc.errno == errno.ENXIO:  # only a hole from pos to the end of the file
+                return
+            yield pos, end  # the file system cannot tell
+            return
+        if data >= end:
+            return
+        yield data, min(hole, end)
+        pos = hole
+
+
+def copy_range(
+    src: int, dst: int, length: int, src_offset: int, dst_offset: int, *, skip_holes: bool = False
+) -> None:
     """Copy ``length`` bytes from ``src`` at ``src_offset`` to ``dst`` at ``dst_offset`` (file descriptors).
 
     The kernel copies (``os.copy_file_range``: no bytes pass through this
@@ -52,8 +78,16 @@ def copy_range(src: int, dst: int, length: int, src_offset: int, dst_offset: int
     network file system that copies on the server, does so; the result is
     an independent file either way); where it cannot (another file system,
     an old kernel, another OS) through a buffer of 8 MiB. Memory stays flat
-    whatever ``length`` is.
+    whatever ``length`` is. With ``skip_holes`` the holes of a sparse
+    source are left unwritten, so the destination stays sparse: only for a
+    destination that reads zeros there (a new file, extended at the end).
     """
+    runs = _data_runs(src, src_offset, src_offset + length) if skip_holes else [(src_offset, src_offset + length)]
+    for start, stop in runs:
+        _copy_run(src, dst, stop - start, start, dst_offset + start - src_offset)
+
+
+def _copy_run(src: int, dst: int, length: int, src_offset: int, dst_offset: int) -> None:
     done = 0
     fast = hasattr(os, "copy_file_range")
     while done < length:

@@ -7,6 +7,7 @@ each weight from its file into the output's own data file.
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import os
 import shutil
@@ -14,7 +15,7 @@ from pathlib import Path, PureWindowsPath
 
 import onnx
 
-from .._files import Writer, atomic_write_files, copy_range, require_file, sha256_bytes, sha256_file
+from .._files import Writer, _data_runs, atomic_write_files, copy_range, require_file, sha256_bytes, sha256_file
 from .._limits import DEFAULT_MAX_MODEL_BYTES, check_model_size, format_bytes
 from ..errors import OnnxcalError, first_line
 from . import external
@@ -193,12 +194,38 @@ def load_model(
     return model
 
 
+_HASH_BLOCK = 1 << 22
+
+
+def _hash_range(digest, fd: int, offset: int, length: int | None) -> None:
+    """Feed ``length`` bytes of ``fd`` from ``offset`` (None: to the end) to ``digest``.
+
+    One buffer is read into again and again (a new bytes object per read
+    would have its pages cleared by the kernel first); the holes of a
+    sparse file are hashed as the zeros they read as, without reading them.
+    """
+    end = os.fstat(fd).st_size if length is None else offset + length
+    buffer = memoryview(bytearray(_HASH_BLOCK))
+    zeros = memoryview(bytes(_HASH_BLOCK))
+    pos = offset
+    for start, stop in [*_data_runs(fd, offset, end), (end, end)]:
+        while pos < start:  # a hole before this run
+            n = min(_HASH_BLOCK, start - pos)
+            digest.update(zeros[:n])
+            pos += n
+        while pos < stop:
+            n = os.preadv(fd, [buffer[:min(_HASH_BLOCK, stop - pos)]], pos)
+            if n == 0:
+                raise OSError(errno.EIO, f"the file ends {end - pos} bytes early")
+            digest.update(buffer[:n])
+            pos += n
+
+
 def _sha256_contained(folder: Path, location: str) -> str:
     digest = hashlib.sha256()
     fd = open_contained(folder, location)
     try:
-        while block := os.read(fd, 1 << 22):
-            digest.update(block)
+        _hash_range(digest, fd, 0, None)
     finally:
         os.close(fd)
     return digest.hexdigest()
@@ -308,7 +335,10 @@ def _plan_data(model: onnx.ModelProto, location: str) -> tuple[onnx.ModelProto, 
 
 
 def _data_writer(pieces: list[tuple[int, Span | bytes]], size: int) -> Writer:
-    """Writes the data file: each span copied from its file (:func:`~onnxcal._files.copy_range`)."""
+    """Writes the data file: each span copied from its file (:func:`~onnxcal._files.copy_range`).
+
+    The file is new (a temporary), so the holes of a sparse source stay holes.
+    """
 
     def write(path: Path) -> None:
         sources: dict[tuple[str, str], int] = {}
@@ -323,7 +353,12 @@ def _data_writer(pieces: list[tuple[int, Span | bytes]], size: int) -> Writer:
                 key = (piece.folder, piece.location)
                 if key not in sources:
                     sources[key] = open_contained(piece.folder, piece.location)
-                copy_range(sources[key], fd, piece.length, piece.offset, offset)
+                if os.fstat(sources[key]).st_size < piece.offset + piece.length:
+                    raise OnnxcalError(
+                        f"external data file '{piece.location}' in '{piece.folder}' is shorter than when the "
+                        "model was loaded", "keep the model's files unchanged while onnxcal runs",
+                    )
+                copy_range(sources[key], fd, piece.length, piece.offset, offset, skip_holes=True)
             os.ftruncate(fd, size)
         finally:
             os.close(fd)
@@ -393,13 +428,7 @@ def saved_sha256(model: onnx.ModelProto, path: str | os.PathLike, *, external: b
         else:
             fd = open_contained(piece.folder, piece.location)
             try:
-                done = 0
-                while done < piece.length:
-                    block = os.pread(fd, min(piece.length - done, 1 << 22), piece.offset + done)
-                    if not block:
-                        raise OnnxcalError(f"external data file '{piece.location}' ends early", "check the weights file")
-                    digest.update(block)
-                    done += len(block)
+                _hash_range(digest, fd, piece.offset, piece.length)
             finally:
                 os.close(fd)
         end = offset + (len(piece) if isinstance(piece, bytes) else piece.length)
