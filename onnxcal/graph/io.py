@@ -342,7 +342,8 @@ def _data_writer(pieces: list[tuple[int, Span | bytes]], size: int) -> Writer:
 
     def write(path: Path) -> None:
         sources: dict[tuple[str, str], int] = {}
-        fd = os.open(path, os.O_WRONLY)
+        fh = Path(path).open("r+b")  # noqa: SIM115 (closed below, with the sources)
+        fd = fh.fileno()
         try:
             for offset, piece in pieces:
                 if isinstance(piece, bytes):
@@ -361,7 +362,7 @@ def _data_writer(pieces: list[tuple[int, Span | bytes]], size: int) -> Writer:
                 copy_range(sources[key], fd, piece.length, piece.offset, offset, skip_holes=True)
             os.ftruncate(fd, size)
         finally:
-            os.close(fd)
+            fh.close()
             for src in sources.values():
                 os.close(src)
 
