@@ -433,7 +433,9 @@ def patch(
         stack); the calibration of other outputs is kept.
     out : path
         The patched model; must differ from ``model_path``. A model with
-        external data is written with its weights in ``out``.data.
+        external data is written with its weights in ``out``.data, streamed
+        from the model's files (never loaded; only ``fold`` reads the one
+        weight it scales).
     temperature : float, optional
         T; or give ``fit``.
     fit : FitSummary or path, optional
@@ -445,7 +447,7 @@ def patch(
     force : bool
         Replace an existing ``out``.
     max_model_bytes : int or str, default 8 GiB
-        Larger model files (with external data) are refused unread.
+        Larger model files are refused unread (the external data do not count: patch never loads them).
     fitted_on_twin : bool
         The fit was made on another build of this model (its float16 or
         quantized twin): a fit whose capture's model sha256 differs from

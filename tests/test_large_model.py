@@ -219,3 +219,25 @@ def test_a_data_file_changed_after_loading_is_refused_not_read(tmp_path, rng):
     with pytest.raises(OnnxcalError, match="was it replaced"):
         graph.save_model(loaded, tmp_path / "out.onnx")
     assert not (tmp_path / "out.onnx").exists() and not (tmp_path / "out.onnx.data").exists()
+
+
+def test_the_output_keeps_small_tensors_in_its_graph_and_the_rest_in_its_data_file(tmp_path, rng):
+    # initializers of 1024 bytes or more go to OUT.data (onnx's default threshold), whether they were
+    # still in the input's file (w0, w1) or read in at load (the biases, the folded weight)
+    model = random_mlp(rng, d=600, k=500, hidden=600, final="Softmax")
+    path = tmp_path / "model.onnx"
+    _save_external(model, path, "model.onnx.data")
+    api.patch(path, tmp_path / "out.onnx", temperature=T, fold=True)
+    saved = onnx.load(str(tmp_path / "out.onnx"), load_external_data=False)
+    outside = {t.name for t in saved.graph.initializer if t.data_location == TensorProto.EXTERNAL}
+    assert outside == {"w0", "b0", "w1", "b1"}
+    for t in saved.graph.initializer:
+        if t.name in outside:
+            entries = {e.key: e.value for e in t.external_data}
+            assert entries["location"] == "out.onnx.data"
+            if int(entries["length"]) >= graph.external.RESIDENT_BYTES:  # aligned as onnx's save aligns
+                assert int(entries["offset"]) % (1 << 16) == 0
+    # reproducible: the same patch gives the same bytes
+    first = [(tmp_path / n).read_bytes() for n in ("out.onnx", "out.onnx.data")]
+    api.patch(path, tmp_path / "out.onnx", temperature=T, fold=True, force=True)
+    assert [(tmp_path / n).read_bytes() for n in ("out.onnx", "out.onnx.data")] == first

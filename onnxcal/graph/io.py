@@ -312,14 +312,14 @@ def _plan_data(model: onnx.ModelProto, location: str) -> tuple[onnx.ModelProto, 
     """
     copy = onnx.ModelProto()
     copy.CopyFrom(model)
-    inline = {id(t) for t in copy.graph.initializer}
+    main = len(copy.graph.initializer)  # _model_tensors yields these first
     pieces: list[tuple[int, Span | bytes]] = []
     end = 0
-    for t in _model_tensors(copy):
+    for i, t in enumerate(_model_tensors(copy)):
         if is_external(t):
             piece: Span | bytes = external.span(t)
             length = piece.length
-        elif id(t) in inline and t.HasField("raw_data") and len(t.raw_data) >= EXTERNAL_THRESHOLD:
+        elif i < main and t.HasField("raw_data") and len(t.raw_data) >= EXTERNAL_THRESHOLD:
             piece = t.raw_data
             length = len(piece)
             t.ClearField("raw_data")
