@@ -29,6 +29,7 @@ from scipy.special import softmax
 from onnxcal import api, graph
 from onnxcal._files import sha256_file
 from onnxcal.errors import OnnxcalError
+from onnxcal.fit import FitOptions
 
 from conftest import random_mlp
 
@@ -129,6 +130,15 @@ def test_a_model_over_2_gib_is_patched_and_runs(large_folder, rng):
     z = x.astype(np.float64) @ w.astype(np.float64) + b
     np.testing.assert_allclose(p, softmax(z / T, axis=1), atol=2e-6)
     print(f"patch of a {sizes / 2**30:.2f} GiB model: {patch_seconds:.1f} s")
+    # inspect, calibrate and verify too: the model runs from its files, never as one message
+    assert api.inspect(path).external_data == (str((large_folder / "model.onnx.data").resolve()),)
+    labels = (z + rng.gumbel(size=z.shape) * 2).argmax(axis=1)  # noisier than the model: T > 1
+    np.savez(large_folder / "val.npz", x=x, labels=labels)
+    calibrated = api.calibrate(path, large_folder / "val.npz", large_folder / "cal.onnx", options=FitOptions(bootstrap=0))
+    assert calibrated.verification.passed and calibrated.patch is not None
+    checked = api.verify(large_folder / "cal.onnx", large_folder / "val.npz")  # the original is found beside it
+    assert checked.passed and checked.reference_from == "original", checked.checks
+    assert next(c for c in checked.checks if c.name == "source").detail == "original's sha256 matches the record"
 
 
 # --------------------------------------------------------------------------
