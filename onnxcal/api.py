@@ -31,7 +31,6 @@ from ._files import (
     check_output_path,
     check_writable,
     require_file,
-    sha256_bytes,
     sha256_file,
 )
 from ._limits import DEFAULT_MAX_MODEL_BYTES, parse_size

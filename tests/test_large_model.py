@@ -23,6 +23,7 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 import pytest
+from conftest import random_mlp
 from onnx import TensorProto, helper, numpy_helper
 from scipy.special import softmax
 
@@ -30,8 +31,6 @@ from onnxcal import api, graph
 from onnxcal._files import sha256_file
 from onnxcal.errors import OnnxcalError
 from onnxcal.fit import FitOptions
-
-from conftest import random_mlp
 
 PROTOBUF_LIMIT = 1 << 31  # protobuf's 2 GiB limit on one message (its documentation)
 PAD_BYTES = PROTOBUF_LIMIT + (1 << 20)
@@ -134,7 +133,9 @@ def test_a_model_over_2_gib_is_patched_and_runs(large_folder, rng):
     assert api.inspect(path).external_data == (str((large_folder / "model.onnx.data").resolve()),)
     labels = (z + rng.gumbel(size=z.shape) * 2).argmax(axis=1)  # noisier than the model: T > 1
     np.savez(large_folder / "val.npz", x=x, labels=labels)
-    calibrated = api.calibrate(path, large_folder / "val.npz", large_folder / "cal.onnx", options=FitOptions(bootstrap=0))
+    calibrated = api.calibrate(
+        path, large_folder / "val.npz", large_folder / "cal.onnx", options=FitOptions(bootstrap=0)
+    )
     assert calibrated.verification.passed and calibrated.patch is not None
     checked = api.verify(large_folder / "cal.onnx", large_folder / "val.npz")  # the original is found beside it
     assert checked.passed and checked.reference_from == "original", checked.checks

@@ -103,6 +103,7 @@ class Span:
 
 
 def _entries(t: onnx.TensorProto) -> dict[str, str]:
+    """The ``external_data`` entries of ``t`` as a dict."""
     return {e.key: e.value for e in t.external_data}
 
 
@@ -275,7 +276,7 @@ def for_onnxruntime(model: onnx.ModelProto) -> tuple[bytes, str | None]:
     tensors = external_tensors(copy)
     spans = [span(t) for t in tensors]
     common = os.path.commonpath([s.folder for s in spans])
-    for t, s in zip(tensors, spans):
+    for t, s in zip(tensors, spans, strict=True):
         inner = os.path.relpath(s.folder, common)
         _point_to(t, s.location if inner == "." else PurePosixPath(Path(inner).as_posix(), s.location).as_posix())
     return copy.SerializeToString(), common

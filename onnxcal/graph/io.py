@@ -12,6 +12,7 @@ import hashlib
 import os
 import shutil
 from pathlib import Path, PureWindowsPath
+from typing import Any
 
 import onnx
 
@@ -174,9 +175,10 @@ def load_model(
                 "(e.g. a sparse initializer)",
                 "save the model with that tensor inside the .onnx file",
             )
-        sizes = {loc: f.stat().st_size for loc, f in zip(locations, files)}
+        sizes = {loc: f.stat().st_size for loc, f in zip(locations, files, strict=True)}
         if count_external:
-            check_model_size(p, sum({f.resolve(): n for f, n in zip(files, sizes.values())}.values()), max_bytes)
+            by_file = {f.resolve(): n for f, n in zip(files, sizes.values(), strict=True)}  # one file, named twice
+            check_model_size(p, sum(by_file.values()), max_bytes)
         try:
             external.resolve(_model_tensors(model), p.resolve().parent, sizes)
         except OSError as exc:
@@ -197,7 +199,7 @@ def load_model(
 _HASH_BLOCK = 1 << 22
 
 
-def _hash_range(digest, fd: int, offset: int, length: int | None) -> None:
+def _hash_range(digest: Any, fd: int, offset: int, length: int | None) -> None:
     """Feed ``length`` bytes of ``fd`` from ``offset`` (None: to the end) to ``digest``.
 
     One buffer is read into again and again (a new bytes object per read

@@ -167,8 +167,10 @@ def main() -> None:
         print(f"\nmedian of {args.runs} alternating runs (output's graph: {graph_mib:.2f} MiB)")
         for name, runs in results.items():
             seconds = statistics.median(s for s, _ in runs)
-            print(f"  {name:10s} {seconds:6.1f} s  {seconds / cp:4.2f}x cp   peak RSS {max(m for _, m in runs):6.0f} MiB")
-        work = statistics.median(p - s for (p, _), (s, _) in zip(results["patch"], results["startup"]))
+            peak = max(m for _, m in runs)
+            print(f"  {name:10s} {seconds:6.1f} s  {seconds / cp:4.2f}x cp   peak RSS {peak:6.0f} MiB")
+        pairs = zip(results["patch"], results["startup"], strict=True)
+        work = statistics.median(p - s for (p, _), (s, _) in pairs)
         print(f"  patch less startup (per run, median) {work:.1f} s: {work / cp:.2f}x cp")
     finally:
         shutil.rmtree(folder, ignore_errors=True)
