@@ -11,6 +11,7 @@ from onnx import helper, numpy_helper
 
 from ..errors import OnnxcalError
 from ..scaling import Scaling
+from .external import tensor_array
 from .tensors import (
     _FLOAT_TYPES,
     _RESHAPES,
@@ -203,7 +204,7 @@ def _fold_affine(scaling: Scaling) -> tuple[np.ndarray, np.ndarray]:
 
 def _array(graph: onnx.GraphProto, name: str) -> np.ndarray | None:
     init = _initializer(graph, name)
-    return None if init is None else numpy_helper.to_array(init)
+    return None if init is None else tensor_array(init)
 
 
 def _put_arrays(graph: onnx.GraphProto, arrays: dict[str, np.ndarray]) -> None:

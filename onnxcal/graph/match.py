@@ -33,8 +33,7 @@ from typing import Any, Union
 
 import numpy as np
 import onnx
-from onnx import numpy_helper
-
+from .external import tensor_array
 from .tensors import _attr, _Shapes
 
 
@@ -109,12 +108,12 @@ class View:
     def constant(self, tensor: str) -> np.ndarray | None:
         """The value of ``tensor`` when it is a constant of the graph, else None."""
         if tensor in self._inits:
-            return numpy_helper.to_array(self._inits[tensor])
+            return tensor_array(self._inits[tensor])
         i = self.producers.get(tensor)
         if i is None or self.graph.node[i].op_type != "Constant":
             return None
         value = _attr(self.graph.node[i], "value", None)
-        return None if not isinstance(value, onnx.TensorProto) else numpy_helper.to_array(value)
+        return None if not isinstance(value, onnx.TensorProto) else tensor_array(value)
 
 
 @dataclass
