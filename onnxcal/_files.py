@@ -1,27 +1,49 @@
 """File helpers shared by the stages: hashing, output-path checks, atomic writes.
 
 Outputs are written to a temporary file in the destination directory, flushed
-and fsync'ed, then renamed over the destination (and the directory fsync'ed),
+and fsync'ed, then moved onto the destination (and the directory fsync'ed),
 so a crash or Ctrl-C leaves either the old state or the complete new file,
 never a partial one. Several outputs of one command are written in full
-before any is renamed (:func:`atomic_write_files`).
+before any is moved into place, and the moves of a group are not cut by
+SIGINT or SIGTERM (:func:`atomic_write_files`). An output that did not
+exist when the command checked it is published without replacing anything
+(``renameat2(RENAME_NOREPLACE)``, else ``link`` + ``unlink``, else a check
+under a lock of the directory), so a file that appears meanwhile (another
+program, another run) is kept and the command fails; with ``--force`` it is
+replaced.
+
+Each temporary ``.NAME.XXXXXXXX.tmp`` has an owner record
+``.NAME.XXXXXXXX.owner`` beside it, created first and locked (``flock``) by
+the writing process for as long as it lives; the record names the process,
+its host, and the inode of itself and of the temporary. Only a temporary
+whose record proves it (same inodes), whose lock is free and whose process
+is gone is ever removed by a later run (:func:`remove_stale_temporaries`);
+never an input of the running command, and never a file without a record.
 """
 
 from __future__ import annotations
 
 import contextlib
+import contextvars
+import ctypes
 import errno
+import functools
 import hashlib
+import json
 import os
 import re
+import socket
 import stat
 import sys
 import tempfile
 import time
 import warnings
-from collections.abc import Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TypeVar
 
+from . import _signals
 from .errors import OnnxcalError, OnnxcalWarning
 
 try:
@@ -47,6 +69,81 @@ def sha256_file(path: str | os.PathLike) -> str:
 def sha256_bytes(data: bytes) -> str:
     """Hex SHA-256 of ``data`` (of a file about to be written)."""
     return hashlib.sha256(data).hexdigest()
+
+
+# --------------------------------------------------------------------------
+# One command's writes
+
+
+@dataclass
+class Command:
+    """What one command (one ``api`` call) has told this module about its files.
+
+    Attributes
+    ----------
+    protected : set of (int, int)
+        ``(st_dev, st_ino)`` of the command's inputs: never removed, even
+        when named like a temporary of onnxcal's.
+    replace : dict of str to bool
+        Each output checked by :func:`check_output_path` (absolute path)
+        and whether it may replace an existing file (``--force``).
+    written : list of Path
+        Outputs published so far (for the message of an interrupted run).
+    """
+
+    protected: set[tuple[int, int]] = field(default_factory=set)
+    replace: dict[str, bool] = field(default_factory=dict)
+    written: list[Path] = field(default_factory=list)
+
+
+_COMMAND: contextvars.ContextVar[Command | None] = contextvars.ContextVar("onnxcal_command", default=None)
+
+
+@contextlib.contextmanager
+def command() -> Iterator[Command]:
+    """The scope of one command; a command inside another (the CLI's) shares the outer scope."""
+    current = _COMMAND.get()
+    if current is not None:
+        yield current
+        return
+    token = _COMMAND.set(Command())
+    try:
+        yield _COMMAND.get()
+    finally:
+        _COMMAND.reset(token)
+
+
+F = TypeVar("F", bound=Callable)
+
+
+def one_command(fn: F) -> F:
+    """Decorate an ``api`` function: its checks and writes share one :class:`Command`."""
+
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        with command():
+            return fn(*args, **kwargs)
+
+    return wrapper  # type: ignore[return-value]
+
+
+def current_command() -> Command | None:
+    """The :class:`Command` in force, if any."""
+    return _COMMAND.get()
+
+
+def _key(path: str | os.PathLike) -> str:
+    return os.path.abspath(os.fspath(path))
+
+
+def _protect(paths: Iterable[str | os.PathLike]) -> None:
+    run = _COMMAND.get()
+    if run is None:
+        return
+    for p in paths:
+        with contextlib.suppress(OSError, ValueError):
+            st = os.stat(p)
+            run.protected.add((st.st_dev, st.st_ino))
 
 
 def require_file(path: str | os.PathLike, what: str) -> Path:
@@ -87,6 +184,8 @@ def check_not_input(
     through (``os.path.samefile`` for existing files, resolved paths else).
     """
     p = Path(out)
+    inputs = list(inputs)
+    _protect(inputs)
     for src in map(Path, inputs):
         if src.is_dir() and _inside(p, src):
             raise OnnxcalError(
@@ -143,6 +242,8 @@ def check_output_path(
     if p.exists() and not force:
         raise OnnxcalError(f"{option} '{p}' already exists", "pass --force to replace it")
     check_writable(parent, option)
+    if (run := _COMMAND.get()) is not None:  # at the end, replace only with --force
+        run.replace[_key(p)] = force
     return p
 
 
@@ -162,13 +263,15 @@ def _fsync_directory(directory: Path) -> None:
         os.close(fd)
 
 
+
+
 # Test hook (tests only; see DEVELOPERS.md): seconds to sleep once the temporaries
-# are complete and fsync'ed, just before they are renamed onto the outputs, so a
+# are complete and fsync'ed, just before they are moved onto the outputs, so a
 # test can kill the process at that moment. Unset, it costs one environment lookup.
 PAUSE_HOOK = "ONNXCAL_TEST_PAUSE_BEFORE_RENAME"
 
-# A temporary left by a killed writer is removed by the next write of the same
-# output once it is at least this old and no process holds its lock.
+# A temporary whose owner record names another host (a shared file system) is
+# removed only once this old: there the process cannot be looked up.
 STALE_SECONDS = 60.0
 
 _WRITE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EFBIG, errno.EROFS}
@@ -192,87 +295,320 @@ def write_error(exc: OSError, dests: str | os.PathLike | Sequence[str | os.PathL
     return OnnxcalError(f"cannot write {names}: {reason}{detail}", f"{hint}; no output was written")
 
 
-def _tmp_pattern(dest: Path) -> re.Pattern:
-    # mkstemp's names: prefix, 8 characters of [a-z0-9_], suffix
-    return re.compile(re.escape(f".{dest.name}.") + r"[a-z0-9_]{8}\.tmp")
+def appeared_error(dest: Path) -> OnnxcalError:
+    """An OnnxcalError for an output that another run or program created while this one worked."""
+    return OnnxcalError(
+        f"'{dest}' was written by another run or program while this one worked (it did not exist when "
+        "this run started); it was left as it is and this run wrote nothing",
+        "pass --force to replace it, or write to another path",
+    )
+
+
+# --------------------------------------------------------------------------
+# Owner records and stale temporaries
+
+_OWNER_KIND = "onnxcal temporary owner"
+_TOKEN = r"[a-z0-9_]{8}"  # tempfile.mkstemp's random part
+
+
+def _owner_pattern(dest: Path) -> re.Pattern:
+    return re.compile(re.escape(f".{dest.name}.") + f"({_TOKEN})" + re.escape(".owner"))
+
+
+def _temporary_name(dest: Path, token: str) -> str:
+    return f".{dest.name}.{token}.tmp"
+
+
+def _process_gone(record: dict, age: float) -> bool:
+    """True when the process that wrote ``record`` has ended (or, on another host, long ago)."""
+    if record.get("host") != socket.gethostname():
+        return age >= STALE_SECONDS
+    pid = record.get("pid")
+    if not isinstance(pid, int) or pid <= 0 or pid == os.getpid():
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return True
+    except OSError:  # EPERM: alive, another user's
+        return False
+    return False
+
+
+def _read_owner(fd: int, st: os.stat_result) -> dict | None:
+    """The owner record open at ``fd``, if it is one and describes itself (its own inode)."""
+    if not stat.S_ISREG(st.st_mode) or st.st_size > 4096:
+        return None
+    try:
+        record = json.loads(os.pread(fd, 4096, 0).decode())
+    except (OSError, ValueError):
+        return None
+    if not isinstance(record, dict) or record.get("kind") != _OWNER_KIND:
+        return None
+    if (record.get("device"), record.get("inode")) != (st.st_dev, st.st_ino):
+        return None  # a copy of a record (cp -a) proves nothing
+    return record
+
+
+def _stale_pair(parent: Path, name: str, token: str, dest: Path, protected: set) -> tuple[Path, Path | None, dict] | None:
+    """(owner, its temporary or None, record) when ``name`` is a provably stale owner record; else None.
+
+    Holds the owner's lock while deciding and removing, so two runs cannot
+    both act on one record.
+    """
+    owner = parent / name
+    try:
+        fd = os.open(owner, os.O_RDONLY | os.O_NOFOLLOW | os.O_CLOEXEC)
+    except OSError:
+        return None
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)  # fails while the writer lives
+        except OSError:
+            return None
+        st = os.fstat(fd)
+        record = _read_owner(fd, st)
+        if record is None or (st.st_dev, st.st_ino) in protected:
+            return None
+        if record.get("temporary") != _temporary_name(dest, token):
+            return None
+        if not _process_gone(record, time.time() - st.st_mtime):
+            return None
+        temporary: Path | None = parent / record["temporary"]
+        try:
+            tst = os.lstat(temporary)
+        except FileNotFoundError:
+            temporary = None
+        else:
+            if (tst.st_dev, tst.st_ino) in protected:
+                return None  # an input of this command: neither it nor its record is touched
+            ours = stat.S_ISREG(tst.st_mode) and (tst.st_dev, tst.st_ino) == (st.st_dev, record.get("temporary_inode"))
+            if ours:
+                os.unlink(temporary)
+            else:
+                temporary = None  # not provably the file onnxcal made: left alone
+        os.unlink(owner)
+        return owner, temporary, record
+    except OSError:
+        return None
+    finally:
+        os.close(fd)
 
 
 def remove_stale_temporaries(dest: str | os.PathLike) -> list[Path]:
-    """Remove temporaries of ``dest`` that a killed writer left beside it.
+    """Remove the temporaries of ``dest`` that a stopped onnxcal process left beside it.
 
-    A writer holds an exclusive ``flock`` on its temporary until it renames
-    or removes it, and the kernel drops the lock when the process dies (also
-    by SIGKILL). A temporary named like ``dest``'s, older than
-    ``STALE_SECONDS`` and whose lock can be taken has no live writer, so
-    removing it is safe. Without ``fcntl`` (Windows) nothing is removed.
+    A temporary is removed only when all of these hold: its owner record
+    ``.NAME.XXXXXXXX.owner`` is a regular file that parses as onnxcal's and
+    names its own inode (so a copied or hand-made file does not count); the
+    record's lock can be taken (a live writer holds it until it is done, and
+    the kernel drops it when the process dies, SIGKILL included); the
+    process it names is gone (on another host: the record is older than
+    ``STALE_SECONDS``); the temporary is a regular file with the inode the
+    record names; and neither is an input of the running command. The record
+    is removed with it. Each removal is reported in one warning naming the
+    file and why. Without ``fcntl`` (Windows) nothing is removed.
+
+    Returns the temporaries removed.
     """
     dest = Path(dest)
     if fcntl is None:
         return []
-    pattern, removed = _tmp_pattern(dest), []
     parent = dest.parent if str(dest.parent) else Path(".")
+    pattern = _owner_pattern(dest)
+    run = _COMMAND.get()
+    protected = run.protected if run is not None else set()
     try:
-        entries = [e for e in os.scandir(parent) if pattern.fullmatch(e.name)]
+        names = [(e.name, m.group(1)) for e in os.scandir(parent) if (m := pattern.fullmatch(e.name))]
     except OSError:
         return []
-    for entry in entries:
-        try:
-            st = entry.stat(follow_symlinks=False)
-            if not stat.S_ISREG(st.st_mode) or time.time() - st.st_mtime < STALE_SECONDS:
-                continue
-            fd = os.open(entry.path, os.O_RDONLY | os.O_NOFOLLOW)
-        except OSError:
+    removed = []
+    for name, token in names:
+        with _signals.deferred():  # a record and its temporary go together
+            found = _stale_pair(parent, name, token, dest, protected)
+        if found is None:
             continue
-        try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)  # fails while a writer holds it
-            os.unlink(entry.path)
-            removed.append(Path(entry.path))
-        except OSError:
-            pass
-        finally:
-            os.close(fd)
-    if removed:
+        owner, temporary, record = found
+        started = time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(record.get("started", 0)))
+        what = f"'{temporary}' and its owner record '{owner.name}'" if temporary else f"the owner record '{owner}'"
         warnings.warn(
             OnnxcalWarning(
-                f"removed {len(removed)} temporary file(s) that an interrupted onnxcal run left "
-                f"beside '{dest}' ({', '.join(p.name for p in removed)})"
+                f"removed {what}: left by onnxcal process {record.get('pid')} on {record.get('host')} "
+                f"(started {started}), which stopped before renaming it; that process is gone and "
+                "no process holds the file"
             ),
             stacklevel=4,
         )
+        if temporary is not None:
+            removed.append(temporary)
     return removed
 
 
-class _Temporary:
-    """A locked temporary file beside ``dest``, to be renamed onto it."""
+# --------------------------------------------------------------------------
+# Publication: replace, or never replace
 
-    def __init__(self, dest: Path) -> None:
-        self.dest = dest
+
+def _renameat2(src: Path, dst: Path) -> bool:
+    """``renameat2(src, dst, RENAME_NOREPLACE)``; False when the system or file system lacks it.
+
+    Raises FileExistsError when ``dst`` exists, OSError for other failures.
+    """
+    fn = _libc_renameat2()
+    if fn is None:
+        return False
+    at_fdcwd, rename_noreplace = -100, 1  # <fcntl.h>, <linux/fs.h>
+    if fn(at_fdcwd, os.fsencode(src), at_fdcwd, os.fsencode(dst), rename_noreplace) == 0:
+        return True
+    err = ctypes.get_errno()
+    if err in (errno.EINVAL, errno.ENOSYS, errno.ENOTSUP, errno.EOPNOTSUPP):
+        return False
+    raise OSError(err, os.strerror(err), str(dst))
+
+
+@functools.lru_cache(maxsize=1)
+def _libc_renameat2():
+    if not sys.platform.startswith("linux"):
+        return None
+    try:
+        fn = ctypes.CDLL(None, use_errno=True).renameat2  # glibc >= 2.28
+    except (OSError, AttributeError):
+        return None
+    fn.argtypes = [ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p, ctypes.c_uint]
+    fn.restype = ctypes.c_int
+    return fn
+
+
+@contextlib.contextmanager
+def _directory_lock(directory: Path) -> Iterator[None]:
+    """An exclusive ``flock`` on ``directory`` (no-op where directories cannot be locked)."""
+    fd = None
+    with contextlib.suppress(OSError, AttributeError):
+        fd = os.open(directory, os.O_RDONLY | os.O_DIRECTORY)
+        if fcntl is not None:
+            fcntl.flock(fd, fcntl.LOCK_EX)
+    try:
+        yield
+    finally:
+        if fd is not None:
+            os.close(fd)
+
+
+def rename_noreplace(src: Path, dst: Path) -> None:
+    """Move ``src`` onto ``dst`` only if ``dst`` does not exist (FileExistsError otherwise).
+
+    ``renameat2(RENAME_NOREPLACE)`` (Linux 3.15, glibc 2.28) does it in one
+    step; where the file system lacks it, ``link`` (which never replaces)
+    then ``unlink`` of the temporary name; where links are not allowed
+    either, a check that ``dst`` is absent and a rename, both under a lock
+    of the directory that every onnxcal run takes there (another program
+    could still slip in between; the window is a few microseconds).
+    """
+    if _renameat2(src, dst):
+        return
+    try:
+        os.link(src, dst)
+    except FileExistsError:
+        raise
+    except OSError as exc:
+        if exc.errno not in (errno.EPERM, errno.ENOTSUP, errno.EOPNOTSUPP, errno.EMLINK, errno.ENOSYS, errno.EXDEV):
+            raise
+    else:
+        os.unlink(src)
+        return
+    with _directory_lock(dst.parent):
+        if os.path.lexists(dst):
+            raise FileExistsError(errno.EEXIST, os.strerror(errno.EEXIST), str(dst))
+        os.rename(src, dst)
+
+
+# --------------------------------------------------------------------------
+# Temporaries
+
+
+class _Temporary:
+    """A temporary file beside ``dest`` and its locked owner record, to be moved onto ``dest``."""
+
+    def __init__(self, dest: Path, replace: bool) -> None:
+        self.dest, self.replace = dest, replace
+        self.path: Path | None = None
+        self.owner: Path | None = None
+        self.identity: tuple[int, int] | None = None
+        self._fd = -1
         remove_stale_temporaries(dest)
+        parent = dest.parent if str(dest.parent) else Path(".")
         try:
-            self.fd, name = tempfile.mkstemp(prefix=f".{dest.name}.", suffix=".tmp", dir=dest.parent)
-        except OSError as exc:
-            raise write_error(exc, dest) from exc
-        self.path = Path(name)
-        try:
-            if fcntl is not None:
-                fcntl.flock(self.fd, fcntl.LOCK_EX)
-            os.chmod(self.path, 0o666 & ~_umask())  # mkstemp makes 0600; give the usual mode
+            for _ in range(100):  # a name taken by someone else's file: draw another
+                self._fd, name = tempfile.mkstemp(prefix=f".{dest.name}.", suffix=".owner", dir=str(parent))
+                self.owner = Path(name)
+                token = self.owner.name[len(dest.name) + 2 : -len(".owner")]
+                if fcntl is not None:
+                    fcntl.flock(self._fd, fcntl.LOCK_EX)
+                st = os.fstat(self._fd)
+                self._record = {
+                    "kind": _OWNER_KIND, "pid": os.getpid(), "host": socket.gethostname(),
+                    "started": time.time(), "device": st.st_dev, "inode": st.st_ino,
+                    "output": dest.name, "temporary": _temporary_name(dest, token), "temporary_inode": None,
+                }
+                self._write_record()
+                path = self.owner.parent / self._record["temporary"]  # absolute, as mkstemp's
+                try:
+                    fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW, 0o666)
+                except FileExistsError:
+                    self._drop_owner()
+                    continue
+                self.path = path
+                tst = os.fstat(fd)
+                os.close(fd)
+                self.identity = (tst.st_dev, tst.st_ino)
+                self._record["temporary_inode"] = tst.st_ino
+                self._write_record()
+                return
+            raise FileExistsError(errno.EEXIST, "no free temporary name", str(parent))
         except OSError as exc:
             self.discard()
             raise write_error(exc, dest) from exc
+
+    def _write_record(self) -> None:
+        data = json.dumps(self._record).encode()
+        os.ftruncate(self._fd, 0)
+        os.pwrite(self._fd, data, 0)
+
+    def _drop_owner(self) -> None:
+        if self.owner is not None:
+            with contextlib.suppress(OSError):
+                os.unlink(self.owner)
+            self.owner = None
+        if self._fd >= 0:
+            fd, self._fd = self._fd, -1  # never closed twice, whatever happens next
+            os.close(fd)
 
     def sync(self) -> None:
         with open(self.path, "rb+") as fh:
             os.fsync(fh.fileno())
 
-    def commit(self) -> None:
-        os.replace(self.path, self.dest)
-        os.close(self.fd)
+    def publish(self) -> None:
+        """Move the temporary onto ``dest`` (replacing it only when allowed); then drop the record."""
+        if self.replace:
+            os.replace(self.path, self.dest)
+        else:
+            rename_noreplace(self.path, self.dest)
+        self.path = None
+        self._drop_owner()
+
+    def unpublish(self) -> None:
+        """Remove ``dest`` again if it is still the file this temporary became (roll back a new output)."""
+        with contextlib.suppress(OSError):
+            st = os.lstat(self.dest)
+            if (st.st_dev, st.st_ino) == self.identity:
+                os.unlink(self.dest)
 
     def discard(self) -> None:
-        with contextlib.suppress(FileNotFoundError):
-            self.path.unlink()
-        os.close(self.fd)
+        """Remove the temporary and its record. Safe to call more than once."""
+        if self.path is not None:
+            path, self.path = self.path, None
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(path)
+        self._drop_owner()
 
 
 def _pause_for_tests(temporaries: list[_Temporary]) -> None:
@@ -287,29 +623,68 @@ def _pause_for_tests(temporaries: list[_Temporary]) -> None:
 def _owner(exc: OSError, temporaries: list[_Temporary]) -> list[Path] | None:
     """The outputs an OSError raised while writing concerns, or None if it is no write error."""
     for t in temporaries:
-        if exc.filename is not None and os.fsdecode(exc.filename) == str(t.path):
+        if exc.filename is not None and t.path is not None and os.fsdecode(exc.filename) == str(t.path):
             return [t.dest]
     if exc.errno in _WRITE_ERRNOS or (exc.errno is not None and exc.filename is None):
         return [t.dest for t in temporaries]  # a file object's write: it names no path
     return None
 
 
+def _may_replace(dest: Path, replace: bool | None) -> bool:
+    if replace is not None:
+        return replace
+    run = _COMMAND.get()
+    return bool(run is not None and run.replace.get(_key(dest), False))
+
+
+def _publish_group(temporaries: list[_Temporary]) -> None:
+    """Move every temporary onto its output, all or none (SIGINT/SIGTERM are held back meanwhile).
+
+    Outputs that may not be replaced are checked first, so a file that
+    appeared meanwhile stops the group before anything moves; one that
+    appears in the microseconds between that check and its move makes the
+    outputs already published (new files of this run) be removed again.
+    """
+    for t in temporaries:
+        if not t.replace and os.path.lexists(t.dest):
+            raise appeared_error(t.dest)
+    done: list[_Temporary] = []
+    try:
+        for t in temporaries:
+            t.publish()
+            done.append(t)
+    except OSError as exc:
+        for t in reversed(done):
+            if not t.replace:
+                t.unpublish()
+        if isinstance(exc, FileExistsError):
+            raise appeared_error(temporaries[len(done)].dest) from exc
+        raise write_error(exc, [temporaries[len(done)].dest]) from exc
+    for directory in {t.dest.parent for t in temporaries}:  # make the renames durable
+        _fsync_directory(directory)
+    if (run := _COMMAND.get()) is not None:
+        run.written.extend(t.dest for t in temporaries)
+
+
 @contextlib.contextmanager
-def atomic_paths(dests: Sequence[str | os.PathLike]) -> Iterator[list[Path]]:
-    """Yield temporary paths beside ``dests``; rename each onto its destination on success.
+def atomic_paths(dests: Sequence[str | os.PathLike], *, replace: bool | None = None) -> Iterator[list[Path]]:
+    """Yield temporary paths beside ``dests``; move each onto its destination on success.
 
     The caller writes every file to its temporary. On normal exit all of
-    them are fsync'ed, then renamed in order (the first first); on any
-    exception (including KeyboardInterrupt) every temporary is removed and
-    no destination is touched. An OSError while writing (disk full,
-    permission denied, ...) becomes an :class:`OnnxcalError` that names the
-    destination. A group is renamed file by file, so only a crash between
-    two renames can leave some of the new files beside old ones.
+    them are fsync'ed, then moved into place as a group (see
+    :func:`_publish_group`); on any exception (including KeyboardInterrupt)
+    every temporary and its owner record are removed and no destination is
+    touched. An OSError while writing (disk full, permission denied, ...)
+    becomes an :class:`OnnxcalError` that names the destination.
+
+    ``replace``: whether an existing destination may be replaced. By
+    default, what :func:`check_output_path` was told for that path in this
+    command (``--force``), and no for a path it was not asked about.
     """
     temporaries: list[_Temporary] = []
     try:
         for dest in dests:
-            temporaries.append(_Temporary(Path(dest)))
+            temporaries.append(_Temporary(Path(dest), _may_replace(Path(dest), replace)))
         try:
             yield [t.path for t in temporaries]
         except OSError as exc:
@@ -320,15 +695,12 @@ def atomic_paths(dests: Sequence[str | os.PathLike]) -> Iterator[list[Path]]:
         for t in temporaries:
             _step(t.sync, t.dest)
         _pause_for_tests(temporaries)
-        directories = {t.dest.parent for t in temporaries}
-        while temporaries:
-            _step(temporaries[0].commit, temporaries[0].dest)
-            temporaries.pop(0)
-        for directory in directories:  # make the renames durable
-            _fsync_directory(directory)
+        with _signals.deferred():
+            _publish_group(temporaries)
     finally:
-        for t in temporaries:
-            t.discard()
+        with _signals.deferred():
+            for t in temporaries:
+                t.discard()
 
 
 def _step(action, dest: Path) -> None:
@@ -339,31 +711,30 @@ def _step(action, dest: Path) -> None:
 
 
 @contextlib.contextmanager
-def atomic_path(dest: str | os.PathLike) -> Iterator[Path]:
-    """Yield a temporary path beside ``dest``; rename it onto ``dest`` on success.
+def atomic_path(dest: str | os.PathLike, *, replace: bool | None = None) -> Iterator[Path]:
+    """Yield a temporary path beside ``dest``; move it onto ``dest`` on success.
 
     The caller writes the whole file to the yielded path. On normal exit the
-    file is fsync'ed and renamed onto ``dest`` (and the directory fsync'ed);
-    on any exception (including
-    KeyboardInterrupt) the temporary file is removed and ``dest`` is
-    untouched (see :func:`atomic_paths`). A process killed outright (SIGKILL,
-    power loss) can leave the hidden temporary ``.NAME.XXXXXXXX.tmp`` behind;
-    the next write of the same output removes it (see
-    :func:`remove_stale_temporaries`).
+    file is fsync'ed and moved onto ``dest`` (and the directory fsync'ed);
+    on any exception (including KeyboardInterrupt) the temporary file is
+    removed and ``dest`` is untouched (see :func:`atomic_paths`). A process
+    killed outright (SIGKILL, power loss) can leave the hidden temporary
+    ``.NAME.XXXXXXXX.tmp`` and its owner record behind; the next write of the
+    same output removes them (see :func:`remove_stale_temporaries`).
     """
-    with atomic_paths([dest]) as (tmp,):
+    with atomic_paths([dest], replace=replace) as (tmp,):
         yield tmp
 
 
-def atomic_write_files(files: Mapping[str | os.PathLike, bytes]) -> None:
+def atomic_write_files(files: Mapping[str | os.PathLike, bytes], *, replace: bool | None = None) -> None:
     """Write several files together, each atomically (see :func:`atomic_paths`).
 
     Every file is written in full under a temporary name before any is
-    renamed into place, so a failure while writing (a full disk) leaves none
-    of them. A destination directory that does not exist yet (a new report
-    directory) is created, and removed again if the writing fails. Only a
-    crash between the renames themselves could leave some files in place;
-    a process killed outright can leave such a new directory empty.
+    moved into place, and the moves are not interrupted by SIGINT or
+    SIGTERM, so a failure or a signal leaves all of them old or all new. A
+    destination directory that does not exist yet (a new report directory)
+    is created, and removed again if the writing fails or is interrupted;
+    a process killed outright can leave such a new directory behind.
     """
     created: list[Path] = []
     try:
@@ -374,19 +745,20 @@ def atomic_write_files(files: Mapping[str | os.PathLike, bytes]) -> None:
                 except OSError as exc:
                     raise write_error(exc, parent) from exc
                 created.append(parent)
-        with atomic_paths(list(files)) as tmps:
+        with atomic_paths(list(files), replace=replace) as tmps:
             for tmp, (dest, data) in zip(tmps, files.items()):
                 try:
                     tmp.write_bytes(data)
                 except OSError as exc:
                     raise write_error(exc, dest) from exc
     except BaseException:
-        for d in reversed(created):
-            with contextlib.suppress(OSError):
-                d.rmdir()
+        with _signals.deferred():
+            for d in reversed(created):
+                with contextlib.suppress(OSError):
+                    d.rmdir()  # only when empty: never a directory that holds published files
         raise
 
 
-def atomic_write_bytes(dest: str | os.PathLike, data: bytes) -> None:
+def atomic_write_bytes(dest: str | os.PathLike, data: bytes, *, replace: bool | None = None) -> None:
     """Write ``data`` to ``dest`` atomically (see :func:`atomic_path`)."""
-    atomic_write_files({dest: data})
+    atomic_write_files({dest: data}, replace=replace)

@@ -28,6 +28,7 @@ from ._files import (
     check_not_input,
     check_output_path,
     check_writable,
+    one_command,
     require_file,
     sha256_bytes,
     sha256_file,
@@ -131,6 +132,7 @@ def _run_options(batch_size: int, threads: int, optimization: str, provider: str
     return _capture.check_run_options(RunOptions(batch_size, threads, optimization, provider))
 
 
+@one_command
 def capture(
     model_path: str | os.PathLike,
     data: DataSource,
@@ -243,6 +245,7 @@ def check_fit_options(options: FitOptions) -> FitOptions:
     return options
 
 
+@one_command
 def fit(
     source: Capture | str | os.PathLike | Sequence[str | os.PathLike],
     *,
@@ -358,6 +361,7 @@ def _check_outputs(out, inputs: list, model_path, force: bool, limit: int) -> bo
     return bool(sources)
 
 
+@one_command
 def patch(
     model_path: str | os.PathLike,
     out: str | os.PathLike,
@@ -611,6 +615,7 @@ def _finite_outputs(rows: np.ndarray, reference, dataset: Dataset, drop: bool) -
     return ~bad, f"dropped {int(bad.sum())} rows: {what}"
 
 
+@one_command
 def verify(
     patched_path: str | os.PathLike,
     data: DataSource,
@@ -886,6 +891,7 @@ def _check_report_scaling(scaling: Scaling, cap: Capture, source_sha: str | None
         )
 
 
+@one_command
 def report(
     captures: Capture | str | os.PathLike | Sequence[str | os.PathLike],
     out: str | os.PathLike,
@@ -1003,6 +1009,7 @@ def _record_of(model_path, limit: int) -> Record:
 # calibrate
 
 
+@one_command
 def calibrate(
     model_path: str | os.PathLike,
     data: DataSource,

@@ -1,7 +1,8 @@
 """Command line: parse, call ``onnxcal.api``, print. Nothing else imports this module.
 
 Exit status: 0 success, 1 a verification check failed, 2 bad input (one line
-on stderr; ``onnxcal --debug CMD ...`` shows the traceback), 130 interrupted.
+on stderr; ``onnxcal --debug CMD ...`` shows the traceback), 130 interrupted
+by SIGINT (Ctrl-C), 143 by SIGTERM; the run's temporaries are removed first.
 """
 
 from __future__ import annotations
@@ -10,6 +11,7 @@ import contextlib
 import functools
 import inspect as _inspect
 import json
+import os
 import struct
 import sys
 import time
@@ -34,7 +36,7 @@ from rich.progress import (
 from rich.table import Table
 from rich.text import Text
 
-from . import __version__, api
+from . import __version__, _files, _signals, api
 from .capture import CPU, DEFAULT_BATCH, OPTIMIZATION_LEVELS, ProgressFn
 from .data import IMAGE_OPTIONS, DataSpec, Selection, parse_shard
 from .errors import OnnxcalError, OnnxcalWarning
@@ -898,23 +900,48 @@ def _show_warning(message, category, filename, lineno, file=None, line=None) -> 
         _default_showwarning(message, category, filename, lineno, file, line)
 
 
+def _written(paths: Sequence[Path]) -> str:
+    """What an interrupted run leaves: nothing, or the complete outputs it published before the signal."""
+    if not paths:
+        return "no output was written"
+    shown = ", ".join(f"'{p}'" for p in paths[:3]) + (f" and {len(paths) - 3} more" if len(paths) > 3 else "")
+    return f"the outputs were complete and written before it stopped ({shown})"
+
+
 def main(argv: Sequence[str] | None = None) -> int:
-    """Run the CLI; return the exit status (the console script exits with it)."""
+    """Run the CLI; return the exit status (the console script exits with it).
+
+    SIGINT and SIGTERM stop the run like an error (``_signals``): its
+    temporaries are removed, one line is printed, and the status is 130 or
+    143. Whatever ends the run, the line that reports it is printed with
+    both signals ignored, so it is never cut short by a second one.
+    """
     args = list(sys.argv[1:] if argv is None else argv)
     debug = "--debug" in args
     if debug:  # accept --debug anywhere on the line
         args = ["--debug"] + [a for a in args if a != "--debug"]
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("always", OnnxcalWarning)
-            warnings.showwarning = _show_warning
-            rv = app(args=args, prog_name="onnxcal", standalone_mode=False)
-    except OnnxcalError as exc:
-        if debug:
-            traceback.print_exc()
+    with _signals.interrupting(), _files.command() as run:
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("always", OnnxcalWarning)
+                warnings.showwarning = _show_warning
+                rv = app(args=args, prog_name="onnxcal", standalone_mode=False)
+        except BaseException as exc:  # noqa: B036 - every ending is reported on one line
+            _signals.stopping()
+            return _report_failure(exc, debug, run.written)
+    return rv if isinstance(rv, int) else 0
+
+
+def _report_failure(exc: BaseException, debug: bool, written: Sequence[Path]) -> int:
+    """Print the one line that says how the run ended; return the exit status."""
+    if isinstance(exc, SystemExit):  # typer.Exit and --version end the run normally
+        return exc.code if isinstance(exc.code, int) else 0
+    if debug and not isinstance(exc, typer.TyperException):
+        traceback.print_exception(exc)
+    if isinstance(exc, OnnxcalError):
         err.print(f"onnxcal: error: {_one_line(exc)}", soft_wrap=True)
         return exc.exit_code
-    except typer.TyperException as exc:  # bad usage: the parser's message, on one line too
+    if isinstance(exc, typer.TyperException):  # bad usage: the parser's message, on one line too
         if type(exc).__name__ == "NoArgsIsHelpError":  # 'onnxcal' alone: the help
             exc.show()
             return 2
@@ -923,28 +950,25 @@ def main(argv: Sequence[str] | None = None) -> int:
         see = f"; see '{ctx.command_path} --help'" if ctx is not None else ""
         err.print(f"onnxcal: error: {_one_line(message).rstrip('.')}{see}", soft_wrap=True)
         return 2
-    except (KeyboardInterrupt, typer.Abort):
-        err.print("onnxcal: interrupted; no output was written")
-        return 130
-    except OSError as exc:  # a file error the api did not word (e.g. a file removed meanwhile)
-        if debug:
-            traceback.print_exc()
-        where = f" '{exc.filename}'" if exc.filename else ""
+    if isinstance(exc, (_signals.Interrupted, KeyboardInterrupt, typer.Abort)):
+        cause = exc.__cause__ if isinstance(exc, typer.Abort) and exc.__cause__ is not None else exc
+        name = _signals.name_of(cause)
+        err.print(f"onnxcal: interrupted by {name}; {_written(written)}", soft_wrap=True)
+        return _signals.exit_status(name)
+    if isinstance(exc, OSError):  # a file error the api did not word (e.g. a file removed meanwhile)
+        where = f" '{printable(os.fsdecode(exc.filename))}'" if exc.filename else ""
         err.print(
             f"onnxcal: error: cannot access{where}: {exc.strerror or exc}; check the path and its permissions",
             soft_wrap=True,
         )
         return 2
-    except Exception as exc:  # an unexpected failure: still one line unless --debug
-        if debug:
-            traceback.print_exc()
-        err.print(
-            f"onnxcal: internal error: {type(exc).__name__}: {_one_line(exc)} "
-            "(rerun with --debug and report it)",
-            soft_wrap=True,
-        )
-        return 2
-    return rv if isinstance(rv, int) else 0
+    if not isinstance(exc, Exception):
+        raise exc
+    err.print(  # an unexpected failure: still one line unless --debug
+        f"onnxcal: internal error: {type(exc).__name__}: {_one_line(exc)} (rerun with --debug and report it)",
+        soft_wrap=True,
+    )
+    return 2
 
 
 if __name__ == "__main__":

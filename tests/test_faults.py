@@ -39,6 +39,7 @@ from onnxcal.capture import load_capture
 
 EXTERNAL = FIXTURES / "exporters" / "belt_spectrogram_external.onnx"
 TEMPORARY = re.compile(r"\..+\.[a-z0-9_]{8}\.tmp")
+OWNER = re.compile(r"\..+\.[a-z0-9_]{8}\.owner")
 
 
 def sha256s(paths) -> dict[str, str]:
@@ -47,6 +48,11 @@ def sha256s(paths) -> dict[str, str]:
 
 def temporaries(directory: Path) -> list[Path]:
     return sorted(p for p in directory.rglob("*") if TEMPORARY.fullmatch(p.name))
+
+
+def owners(directory: Path) -> list[Path]:
+    """The owner records of temporaries (see onnxcal/_files.py)."""
+    return sorted(p for p in directory.rglob("*") if OWNER.fullmatch(p.name))
 
 
 def age(paths, seconds: float = 2 * _files.STALE_SECONDS) -> None:
@@ -143,17 +149,20 @@ def test_sigkill_before_the_rename_leaves_no_output(work, run_cli, monkeypatch, 
         _kill(proc)
     assert not any((work / o).exists() for o in outputs)
     assert sha256s(inputs) == before  # the inputs are intact
-    # What SIGKILL leaves: the hidden, complete temporaries (and an empty report directory).
-    left = temporaries(work)
+    # What SIGKILL leaves: the hidden, complete temporaries with their owner records
+    # (and an empty report directory).
+    left, records = temporaries(work), owners(work)
     assert left == sorted(complete) and all(p.stat().st_size > 0 for p in left)
-    assert {p for p in work.rglob("*") if p.is_file()} == {*inputs, *left}
-    # The next run of the same command removes them once they are stale.
-    age(left)
+    assert sorted(p.name.rsplit(".", 1)[0] for p in records) == sorted(p.name.rsplit(".", 1)[0] for p in left)
+    assert {p for p in work.rglob("*") if p.is_file()} == {*inputs, *left, *records}
+    # The next run of the same command removes them: their records prove them, the process is gone.
     monkeypatch.chdir(work)
     r = run_cli(*args)
     assert r.code == 0, r.err
-    assert r.err.count("removed 1 temporary file(s) that an interrupted onnxcal run left") == len(left)
-    assert temporaries(work) == [] and all((work / o).is_file() for o in outputs)
+    for tmp in left:
+        assert f"warning: removed '{tmp.relative_to(work)}' and its owner record" in r.err, r.err
+    assert r.err.count("warning: removed ") == len(left)
+    assert temporaries(work) == [] and owners(work) == [] and all((work / o).is_file() for o in outputs)
     assert sha256s(inputs) == before
 
 
@@ -196,11 +205,11 @@ def test_sigkill_while_a_large_capture_streams(work, run_cli):
     assert sha256s(inputs) == before
     (left,) = temporaries(work)  # a partial temporary: far from the 400 MB of the whole
     assert 4 << 20 <= left.stat().st_size < n * k * 4 // 2
-    age([left])
     r = run_cli("capture", work / "wide.onnx", "--data", work / "wide.npz", "--out", work / "big.npz",
                 "--limit", "10", "-q")
-    assert r.code == 0 and "removed 1 temporary file" in r.err, r.err
-    assert temporaries(work) == [] and load_capture(work / "big.npz").logits.shape == (10, k)
+    assert r.code == 0 and f"removed '{left}' and its owner record" in r.err, r.err
+    assert temporaries(work) == [] and owners(work) == []
+    assert load_capture(work / "big.npz").logits.shape == (10, k)
 
 
 # --------------------------------------------------------------------------
