@@ -537,36 +537,45 @@ class _Temporary:
         remove_stale_temporaries(dest)
         parent = dest.parent if str(dest.parent) else Path(".")
         try:
-            for _ in range(100):  # a name taken by someone else's file: draw another
-                self._fd, name = tempfile.mkstemp(prefix=f".{dest.name}.", suffix=".owner", dir=str(parent))
-                self.owner = Path(name)
-                token = self.owner.name[len(dest.name) + 2 : -len(".owner")]
-                if fcntl is not None:
-                    fcntl.flock(self._fd, fcntl.LOCK_EX)
-                st = os.fstat(self._fd)
-                self._record = {
-                    "kind": _OWNER_KIND, "pid": os.getpid(), "host": socket.gethostname(),
-                    "started": time.time(), "device": st.st_dev, "inode": st.st_ino,
-                    "output": dest.name, "temporary": _temporary_name(dest, token), "temporary_inode": None,
-                }
-                self._write_record()
-                path = self.owner.parent / self._record["temporary"]  # absolute, as mkstemp's
-                try:
-                    fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW, 0o666)
-                except FileExistsError:
-                    self._drop_owner()
-                    continue
-                self.path = path
-                tst = os.fstat(fd)
-                os.close(fd)
-                self.identity = (tst.st_dev, tst.st_ino)
-                self._record["temporary_inode"] = tst.st_ino
-                self._write_record()
-                return
-            raise FileExistsError(errno.EEXIST, "no free temporary name", str(parent))
+            with _signals.deferred():  # never a record without its bookkeeping
+                self._create(dest, parent)
         except OSError as exc:
             self.discard()
             raise write_error(exc, dest) from exc
+        except BaseException:
+            self.discard()
+            raise
+
+    def _create(self, dest: Path, parent: Path) -> None:
+        for _ in range(100):  # a name taken by someone else's file: draw another
+            self._fd, name = tempfile.mkstemp(prefix=f".{dest.name}.", suffix=".owner", dir=str(parent))
+            self.owner = Path(name)
+            token = self.owner.name[len(dest.name) + 2 : -len(".owner")]
+            if fcntl is not None:
+                fcntl.flock(self._fd, fcntl.LOCK_EX)
+            st = os.fstat(self._fd)
+            self._record = {
+                "kind": _OWNER_KIND, "pid": os.getpid(), "host": socket.gethostname(),
+                "started": time.time(), "device": st.st_dev, "inode": st.st_ino,
+                "output": dest.name, "temporary": _temporary_name(dest, token), "temporary_inode": None,
+            }
+            self._write_record()
+            path = self.owner.parent / self._record["temporary"]  # absolute, as mkstemp's
+            try:
+                fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW, 0o666)
+            except FileExistsError:
+                self._drop_owner()
+                continue
+            self.path = path
+            try:
+                tst = os.fstat(fd)
+            finally:
+                os.close(fd)
+            self.identity = (tst.st_dev, tst.st_ino)
+            self._record["temporary_inode"] = tst.st_ino
+            self._write_record()
+            return
+        raise FileExistsError(errno.EEXIST, "no free temporary name", str(parent))
 
     def _write_record(self) -> None:
         data = json.dumps(self._record).encode()
@@ -631,10 +640,12 @@ def _owner(exc: OSError, temporaries: list[_Temporary]) -> list[Path] | None:
 
 
 def _may_replace(dest: Path, replace: bool | None) -> bool:
+    """Whether ``dest`` may be replaced: as given; in a command, only if checked with --force;
+    outside any command (a library call such as ``fit.save_fit``), yes, as a save function does."""
     if replace is not None:
         return replace
     run = _COMMAND.get()
-    return bool(run is not None and run.replace.get(_key(dest), False))
+    return True if run is None else run.replace.get(_key(dest), False)
 
 
 def _publish_group(temporaries: list[_Temporary]) -> None:
@@ -678,8 +689,9 @@ def atomic_paths(dests: Sequence[str | os.PathLike], *, replace: bool | None = N
     becomes an :class:`OnnxcalError` that names the destination.
 
     ``replace``: whether an existing destination may be replaced. By
-    default, what :func:`check_output_path` was told for that path in this
-    command (``--force``), and no for a path it was not asked about.
+    default, within a command (:func:`command`), what
+    :func:`check_output_path` was told for that path (``--force``), and no
+    for a path it was not asked about; outside any command, yes.
     """
     temporaries: list[_Temporary] = []
     try:
@@ -740,11 +752,12 @@ def atomic_write_files(files: Mapping[str | os.PathLike, bytes], *, replace: boo
     try:
         for parent in dict.fromkeys(Path(d).parent for d in files):
             if not parent.is_dir():
-                try:
-                    parent.mkdir(mode=0o777)
-                except OSError as exc:
-                    raise write_error(exc, parent) from exc
-                created.append(parent)
+                with _signals.deferred():  # a directory made is a directory noted
+                    try:
+                        parent.mkdir(mode=0o777)
+                    except OSError as exc:
+                        raise write_error(exc, parent) from exc
+                    created.append(parent)
         with atomic_paths(list(files), replace=replace) as tmps:
             for tmp, (dest, data) in zip(tmps, files.items()):
                 try:

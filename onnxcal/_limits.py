@@ -121,3 +121,34 @@ def check_memory(needed: int, what: str, hint: str) -> None:
             f"{what} needs {format_bytes(needed)}, more than the {format_bytes(available)} of memory available",
             hint,
         )
+
+
+def check_range(value, low, high, option: str, what: str = "a number") -> None:
+    """Refuse an option's value outside [low, high] (``high`` None: no upper bound), with the range in the message.
+
+    >>> check_range(100000, 0, 64, "--threads", "a number of threads")
+    Traceback (most recent call last):
+    ...
+    onnxcal.errors.OnnxcalError: --threads 100000 is out of range: give a number of threads from 0 to 64
+    """
+    ok = value is not None and not isinstance(value, bool) and low <= value and (high is None or value <= high)
+    if not ok:  # NaN fails too
+        span = f"of at least {_plain(low)}" if high is None else f"from {_plain(low)} to {_plain(high)}"
+        raise OnnxcalError(f"{option} {value!r} is out of range: give {what} {span}")
+
+
+def _plain(x) -> str:
+    return str(x) if isinstance(x, int) else f"{x:g}"
+
+
+MAX_BINS = 100_000
+"""Largest ``--bins``: beyond it the bins hold a handful of samples even in a million."""
+
+
+def check_bins_memory(n_bins: int, num_classes: int, option: str = "--bins") -> None:
+    """Refuse ``n_bins`` when the per-class bin sums (a few float64 arrays of K x M) do not fit in memory."""
+    check_memory(
+        4 * 8 * int(num_classes) * int(n_bins),
+        f"{option} {n_bins} for {num_classes} classes (the per-class bin sums of the classwise ECE)",
+        f"lower {option}",
+    )

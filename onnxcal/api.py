@@ -33,7 +33,8 @@ from ._files import (
     sha256_bytes,
     sha256_file,
 )
-from ._limits import DEFAULT_MAX_MODEL_BYTES, parse_size
+from ._limits import DEFAULT_MAX_MODEL_BYTES, MAX_BINS, check_bins_memory, check_range, parse_size
+from ._numeric import check_in_dtype, max_abs
 from .capture import Capture, ProgressFn, RunOptions
 from .data import DataSpec, Dataset, check_selection, load_dataset
 from .errors import OnnxcalError, OnnxcalWarning
@@ -45,6 +46,7 @@ from .scaling import METHODS, MULTILABEL_MODES, Scaling, check_scaling, kind_of
 from .verify import Check, VerifyResult
 
 DEFAULT_LATENCY_RUNS = 100
+MAX_LATENCY_RUNS = 100_000
 
 
 @dataclass(frozen=True)
@@ -87,6 +89,8 @@ def _finite(cap: Capture, source: str, drop: bool) -> tuple[Capture, str | None]
     if not bad.count:
         return cap, None
     what = f"the logits in '{source}' contain NaN or Inf in {bad.describe(len(cap.logits))}"
+    if bad.count == len(cap.logits):
+        raise OnnxcalError(f"{what}: every row, so nothing is left to work on", "check the model and its inputs")
     if not drop:
         raise OnnxcalError(what, "check the model and the inputs of those rows, or pass --drop-nonfinite to leave them out")
     kept = _capture.without_nonfinite(cap)
@@ -213,15 +217,21 @@ def capture(
     return cap
 
 
+MAX_SEED = 2**32 - 1
+MAX_BOOTSTRAP = 10_000
+MAX_L2 = 1e6
+
+
 def check_fit_options(options: FitOptions) -> FitOptions:
-    """Validate the fit options given by the user.
+    """Validate the fit options given by the user, each against its range.
 
     Raises
     ------
     OnnxcalError
-        An unknown method or multi-label mode, a negative or non-finite
-        ``--l2``, a holdout fraction outside [0, 0.9], a negative number of
-        bootstrap replicates or fewer than 2 bins.
+        An unknown method or multi-label mode, or a number out of its range
+        (named in the message): ``--l2`` 0 to 1e6 (and 0 for temperature
+        scaling), ``--holdout`` 0 to 0.9, ``--seed`` 0 to 2^32 - 1,
+        ``--bootstrap`` 0 to 10 000, ``--bins`` 2 to 100 000.
     """
     if options.method not in METHODS:
         raise OnnxcalError(f"--method {options.method!r} is not one of: {', '.join(METHODS)}")
@@ -229,19 +239,14 @@ def check_fit_options(options: FitOptions) -> FitOptions:
         raise OnnxcalError(
             f"--multilabel {options.multilabel!r} is not one of: {', '.join(MULTILABEL_MODES)}"
         )
-    if not np.isfinite(options.l2) or options.l2 < 0:
-        raise OnnxcalError(f"--l2 {options.l2!r} is not a non-negative number", "use 0 for no penalty")
+    # 1e6 times the penalty pins w to 1 and b to 0 already (the NLL is a mean, of order 1)
+    check_range(options.l2, 0.0, MAX_L2, "--l2", "a penalty (0 for none)")
     if options.l2 > 0 and options.method == "temperature":
         raise OnnxcalError("--l2 applies to --method vector and platt, not temperature")
-    if not 0 <= options.holdout <= 0.9:
-        raise OnnxcalError(
-            f"--holdout {options.holdout!r} is not a fraction between 0 and 0.9",
-            "use e.g. 0.25, or 0 to score in-sample",
-        )
-    if options.bootstrap < 0:
-        raise OnnxcalError(f"--bootstrap {options.bootstrap} is negative", "use 0 to skip the intervals")
-    if options.n_bins < 2:
-        raise OnnxcalError(f"--bins {options.n_bins} is fewer than 2 bins")
+    check_range(options.holdout, 0.0, 0.9, "--holdout", "a fraction (0 scores in-sample)")
+    check_range(options.seed, 0, MAX_SEED, "--seed", "a seed")
+    check_range(options.bootstrap, 0, MAX_BOOTSTRAP, "--bootstrap", "a number of replicates (0 skips the intervals)")
+    check_range(options.n_bins, 2, MAX_BINS, "--bins", "a number of bins")
     return options
 
 
@@ -278,6 +283,7 @@ def fit(
     cap = source if isinstance(source, Capture) else _capture.load_captures(inputs)
     where = cap.meta.data_source if isinstance(source, Capture) else ", ".join(map(str, inputs))
     cap, dropped = _finite(cap, where, drop_nonfinite)
+    check_bins_memory(options.n_bins, cap.logits.shape[1])
     summary = _with_note(_fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options), dropped)
     if out is not None:
         _fit.save_fit(out, summary)
@@ -331,7 +337,17 @@ class PatchOptions:
     compute_dtype: str | None = None
     fold: bool = False
 
-    def patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict):
+    def patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict, largest_logit=None):
+        """The patched model, its parameters checked against the dtype the graph computes them in
+        (and, given ``largest_logit``, against the logits seen; see ``_numeric``)."""
+        with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):  # checked below
+            patched = self._patch(model, calibration, sha=sha, path=path, fit=fit)
+        record = graph.read_record(patched)
+        dtype = record.compute_dtype or graph.temperature_dtype(patched, record) or "float32"
+        check_in_dtype(record.scaling, dtype, largest_logit=largest_logit)
+        return patched
+
+    def _patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict):
         return graph.patch(
             model,
             calibration,
@@ -553,10 +569,8 @@ def _check_gate(max_ece, max_nll, min_accuracy, n_bins, max_latency_ratio, laten
         raise OnnxcalError(
             f"--max-latency-ratio {max_latency_ratio!r} is not a positive number", "use e.g. 1.05 for 5 % slower"
         )
-    if latency_runs < 1:
-        raise OnnxcalError(f"--latency-runs {latency_runs} is not a positive number of runs")
-    if n_bins < 2:
-        raise OnnxcalError(f"--bins {n_bins} is fewer than 2 bins")
+    check_range(latency_runs, 1, MAX_LATENCY_RUNS, "--latency-runs", "a number of runs")
+    check_range(n_bins, 2, MAX_BINS, "--bins", "a number of bins")
 
 
 def _latency(base, patched, dataset: Dataset, run: RunOptions, runs: int, max_ratio, against: str) -> Check:
@@ -591,6 +605,7 @@ def _threshold_checks(rows, activation, site, dataset: Dataset, cap: Capture | N
             )
     if keep is not None:
         logits, labels = logits[keep], labels[keep]
+    check_bins_memory(n_bins, logits.shape[1])
     return _verify.threshold_checks(evaluate(logits, labels, 1.0, n_bins), **limits)
 
 
@@ -610,6 +625,11 @@ def _finite_outputs(rows: np.ndarray, reference, dataset: Dataset, drop: bool) -
         f"the patched model's outputs{'' if reference is None else ' or the reference logits'} on "
         f"'{dataset.source}' hold NaN or Inf in {found.describe(len(rows))}"
     )
+    if bad.all():  # a check over no rows is no pass
+        raise OnnxcalError(
+            f"{what}: every row, so there is nothing left to check ({len(rows)} of {len(rows)} rows would be dropped)",
+            "check the patched model (its parameters, its dtype) and the data",
+        )
     if not drop:
         raise OnnxcalError(what, "check those rows of the data, or pass --drop-nonfinite to leave them out")
     return ~bad, f"dropped {int(bad.sum())} rows: {what}"
@@ -947,8 +967,8 @@ def report(
     """
     if sum(x is not None for x in (temperature, fit, model)) != 1:
         raise OnnxcalError("give exactly one of --temperature, --fit and --model")
-    if n_bins is not None and n_bins < 2:
-        raise OnnxcalError(f"--bins {n_bins} is fewer than 2 bins")
+    if n_bins is not None:
+        check_range(n_bins, 2, MAX_BINS, "--bins", "a number of bins")
     formats = _check_formats(formats)
     limit = _max_bytes(max_model_bytes)
     capture_paths = [] if isinstance(captures, Capture) else _as_paths(captures)
@@ -971,6 +991,9 @@ def report(
         source_sha, what = record.source_sha256, f"the calibration in '{model}'"
         calibrated = {"name": Path(model).name, "path": str(model), "sha256": sha256_file(model)}
     _check_report_scaling(scaling, cap, source_sha, what)
+    check_in_dtype(scaling, "float64", largest_logit=max_abs(cap.logits), computes="the report computes in",
+                   hint="check the parameters")
+    check_bins_memory(n_bins or (summary.options.n_bins if summary is not None else DEFAULT_BINS), cap.logits.shape[1])
     names = _class_names(class_names, cap.logits.shape[1]) or _capture_names(cap)
     content = _report.build(
         cap, scaling, summary=summary, class_names=names, n_bins=n_bins, calibrated=calibrated
@@ -1077,8 +1100,11 @@ def calibrate(
     full = cap
     cap, dropped = _finite(cap, dataset.source, drop_nonfinite)
     _warn_nonfinite_inputs(full, dataset.source)
+    check_bins_memory(options.n_bins, cap.logits.shape[1])
     summary = _with_note(_fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options), dropped)
-    patched = patching.patch(model, summary.scaling, sha=sha, path=model_path, fit=summary.to_dict())
+    patched = patching.patch(
+        model, summary.scaling, sha=sha, path=model_path, fit=summary.to_dict(), largest_logit=max_abs(cap.logits)
+    )
     record = graph.read_record(patched)
     site = graph.find_scores(patched, record.output)
     rows = _run_output(patched, site, dataset, run, progress)

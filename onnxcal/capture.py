@@ -41,7 +41,7 @@ import onnx
 from . import __version__
 from ._files import atomic_path, require_file
 from .data import Dataset, check_label_array, check_labels, match_inputs, read_npz
-from ._limits import check_memory, format_bytes
+from ._limits import check_memory, check_range, format_bytes
 from .errors import OnnxcalError, OnnxcalWarning, first_line
 from .graph import ScoreSite, expose_scores, find_scores, fit_kind, tensor_spec
 
@@ -83,17 +83,36 @@ class RunOptions:
     provider: str = CPU
 
 
-def check_run_options(options: RunOptions) -> RunOptions:
-    """Validate run options, with errors that name the option."""
+MAX_BATCH = 1 << 24
+"""Largest ``--batch-size`` (16 777 216); the memory check usually refuses far less."""
+
+
+def max_threads() -> int:
+    """Largest ``--threads``: 4 per core of this machine, at least 64 (onnxruntime crashes creating 100 000)."""
+    return max(64, 4 * (os.cpu_count() or 1))
+
+
+def onnxruntime():
+    """onnxruntime, imported with its telemetry off.
+
+    Left on, onnxruntime writes a device id and a database under
+    ``~/.cache/Microsoft/DeveloperTools`` (or ``$XDG_CACHE_HOME``) when it
+    starts; onnxcal writes nothing but the outputs the user names.
+    ``ORT_DISABLE_TELEMETRY`` must be set before onnxruntime is first imported
+    (measured with onnxruntime 1.32); a value the user set is kept.
+    """
+    os.environ.setdefault("ORT_DISABLE_TELEMETRY", "1")
     import onnxruntime as ort
 
-    if isinstance(options.batch_size, bool) or options.batch_size < 1:
-        raise OnnxcalError(f"--batch-size {options.batch_size} is not a positive number of samples")
-    if options.threads < 0:
-        raise OnnxcalError(
-            f"--threads {options.threads} is negative",
-            "give a number of threads, or 0 for onnxruntime's default",
-        )
+    return ort
+
+
+def check_run_options(options: RunOptions) -> RunOptions:
+    """Validate run options, with errors that name the option and its range."""
+    ort = onnxruntime()
+    check_range(options.batch_size, 1, MAX_BATCH, "--batch-size", "a number of samples")
+    check_range(options.threads, 0, max_threads(), "--threads",
+                "a number of threads (0: onnxruntime's default, one per core)")
     if options.optimization not in OPTIMIZATION_LEVELS:
         raise OnnxcalError(
             f"--optimization {options.optimization!r} is not a graph optimisation level",
@@ -245,11 +264,12 @@ class Capture:
 
 def make_session(model: onnx.ModelProto, options: RunOptions | None = None):
     """An onnxruntime session for an in-memory model (CPU unless ``options`` say else)."""
-    import onnxruntime as ort
-
+    ort = onnxruntime()
     options = options or RunOptions()
     opts = ort.SessionOptions()
-    opts.log_severity_level = 3
+    # FATAL only: a run-time failure is reported once, as onnxcal's one line (rows and node),
+    # not also by onnxruntime's own coloured log lines on stderr
+    opts.log_severity_level = 4
     if options.threads:
         opts.intra_op_num_threads = options.threads
     opts.graph_optimization_level = getattr(

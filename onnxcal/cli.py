@@ -84,6 +84,8 @@ def printable(text: str) -> str:
 
 
 def _escaped(o: int) -> str:
+    if 0xDC80 <= o <= 0xDCFF:  # a byte of a file name that is not UTF-8 (Python's surrogateescape)
+        return f"\\x{o - 0xDC00:02x}"
     return f"\\x{o:02x}" if o < 0x100 else f"\\u{o:04x}" if o < 0x10000 else f"\\U{o:08x}"
 
 

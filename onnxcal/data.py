@@ -38,7 +38,7 @@ from pathlib import Path
 import numpy as np
 
 from ._files import require_file
-from ._limits import check_memory, format_bytes
+from ._limits import check_memory, check_range, format_bytes
 from .errors import OnnxcalError, first_line
 from .graph import TensorSpec
 
@@ -190,12 +190,15 @@ def parse_shard(text: str) -> tuple[int, int]:
     return i, n
 
 
+MAX_SEED = 2**32 - 1
+
+
 def check_selection(selection: Selection) -> Selection:
-    """Validate a selection's numbers, with errors naming the option."""
-    if selection.limit is not None and selection.limit < 1:
-        raise OnnxcalError(f"--limit {selection.limit} is not a positive number of samples")
-    if selection.shuffle_seed is not None and selection.shuffle_seed < 0:
-        raise OnnxcalError(f"--shuffle-seed {selection.shuffle_seed} is negative", "give a seed >= 0")
+    """Validate a selection's numbers, with errors naming the option and its range."""
+    if selection.limit is not None:
+        check_range(selection.limit, 1, None, "--limit", "a number of samples")
+    if selection.shuffle_seed is not None:
+        check_range(selection.shuffle_seed, 0, MAX_SEED, "--shuffle-seed", "a seed")
     if selection.shard is not None:
         parse_shard(f"{selection.shard[0]}/{selection.shard[1]}")
     return selection
@@ -892,6 +895,11 @@ IMAGE_OPTIONS = (
 """Preprocessing keys, as ``--resize`` etc. on the command line or keys of the file."""
 
 _INTERPOLATION = ("nearest", "bilinear", "bicubic", "lanczos")
+MAX_SIDE = 65535
+"""Largest ``--resize`` and ``--crop`` side in pixels (PNG and most formats stop there or near)."""
+
+_SIXTEEN_BITS = {"I;16", "I;16L", "I;16B", "I;16N"}
+_UNKNOWN_RANGE = {"I": "32-bit integer", "F": "32-bit floating-point", "I;32": "32-bit integer"}
 
 
 @dataclass(frozen=True)
@@ -981,7 +989,7 @@ def _image_value(key: str, value, where: str):
 
     if key == "resize":
         n = _as_int(value)
-        return n if n is not None and n > 0 else fail("a positive number of pixels")
+        return n if n is not None and 0 < n <= MAX_SIDE else fail(f"a number of pixels from 1 to {MAX_SIDE}")
     if key == "crop":
         if isinstance(value, str):
             parts = re.split(r"[x,]", value.lower())
@@ -990,8 +998,8 @@ def _image_value(key: str, value, where: str):
         else:
             parts = [value]
         dims = [_as_int(v) for v in parts]
-        if len(dims) not in (1, 2) or any(d is None or d <= 0 for d in dims):
-            fail("a size N or HxW in pixels")
+        if len(dims) not in (1, 2) or any(d is None or not 0 < d <= MAX_SIDE for d in dims):
+            fail(f"a size N or HxW in pixels, each from 1 to {MAX_SIDE}")
         return (dims[0], dims[-1])
     if key == "scale":
         text = str(value).strip().lower()
@@ -1158,18 +1166,24 @@ class ImageArray:
                 warnings.simplefilter("error", Image.DecompressionBombWarning)
                 img = Image.open(self.root / name)
             with img:
-                img = img.convert("L" if self.plan.channels == 1 else "RGB")
+                img = _eight_bits(img, shown(name)).convert("L" if self.plan.channels == 1 else "RGB")
                 if o.resize is not None:
                     w, h = img.size
                     s = o.resize / min(w, h)
                     size = (max(1, round(w * s)), max(1, round(h * s)))
+                    check_memory(
+                        size[0] * size[1] * self.plan.channels * (1 + self.plan.dtype.itemsize),
+                        f"image '{shown(name)}' ({h}x{w}, height x width) resized by --resize {o.resize} to "
+                        f"{size[1]}x{size[0]}",
+                        "lower --resize to the size the model takes",
+                    )
                     img = img.resize(size, getattr(Image.Resampling, o.interpolation.upper()))
                 if o.crop is not None:
                     ch, cw = o.crop
                     w, h = img.size
                     if ch > h or cw > w:
                         raise OnnxcalError(
-                            f"--crop {ch}x{cw} is larger than image '{name}' ({h}x{w} after --resize)",
+                            f"--crop {ch}x{cw} is larger than image '{shown(name)}' ({h}x{w} after --resize)",
                             "lower --crop or raise --resize",
                         )
                     left, top = (w - cw) // 2, (h - ch) // 2
@@ -1185,7 +1199,7 @@ class ImageArray:
             raise
         except Exception as exc:  # a damaged image: Pillow's decoders raise many kinds (OSError, struct.error, ...)
             raise OnnxcalError(
-                f"image '{self.root / name}' cannot be read ({first_line(exc)})", "fix or remove the file"
+                f"image '{shown(self.root / name)}' cannot be read ({first_line(exc)})", "fix or remove the file"
             ) from exc
         return arr[:, :, None] if arr.ndim == 2 else arr
 
@@ -1208,6 +1222,41 @@ class ImageArray:
         if p.layout == "NCHW":
             batch = batch.transpose(0, 3, 1, 2)
         return np.ascontiguousarray(batch, dtype=p.dtype)
+
+
+def shown(name: str | os.PathLike) -> str:
+    r"""A file name as the user can read it: bytes that are not UTF-8 shown escaped.
+
+    Names come from the file system as str with undecodable bytes kept as
+    lone surrogates (Python's ``surrogateescape``); they print as ``\xff``.
+
+    >>> shown(os.fsdecode(b"class0/caf\xe9.png"))
+    'class0/caf\\xe9.png'
+    """
+    return os.fsencode(name).decode("utf-8", "backslashreplace")
+
+
+def _eight_bits(img, name: str):
+    """``img`` with 8-bit channels: 16-bit greyscale reduced by its high byte.
+
+    Pillow opens a 16-bit greyscale PNG as mode ``I;16`` and its
+    ``convert("L")`` then saturates every value above 255 (1000 and 20000
+    both become 255). onnxcal keeps the high byte instead, as Pillow itself
+    does for 16-bit colour PNGs (48-bit RGB opens as 8-bit RGB that way).
+    32-bit integer or floating-point images (``I``, ``F``: some TIFFs) have
+    no fixed range, so they are refused, naming the mode.
+    """
+    from PIL import Image
+
+    if img.mode in _SIXTEEN_BITS:
+        return Image.fromarray((np.asarray(img, dtype=np.uint16) >> 8).astype(np.uint8), mode="L")
+    if img.mode in _UNKNOWN_RANGE:
+        raise OnnxcalError(
+            f"image '{name}' has {_UNKNOWN_RANGE[img.mode]} pixels (Pillow mode '{img.mode}'), whose range "
+            "onnxcal cannot know to bring them to the 0-255 the preprocessing works in",
+            "convert the images to 8- or 16-bit PNG or JPEG first",
+        )
+    return img
 
 
 def _pixels(exc: Exception) -> str:
@@ -1257,15 +1306,15 @@ def load_image_folder(
             raise OnnxcalError("--label-column applies to a labels CSV", "give it with --labels FILE.csv")
         files, labels, names = _class_folders(root, classes)
     listing = hashlib.sha256()
-    for name in files:
-        listing.update(f"{name}\0{(root / name).stat().st_size}\n".encode())
+    for name in files:  # names as bytes: any bytes a file system allows
+        listing.update(os.fsencode(name) + f"\0{(root / name).stat().st_size}\n".encode())
     parts = [("images", listing.hexdigest())]
     if labels_csv is not None:
         parts.append(("labels", file_fingerprint(Path(labels_csv))))
     return Dataset(
         inputs={model_input.name: ImageArray(root, files, plan, model_input)},
         labels=labels,
-        source=str(root),
+        source=shown(root),
         class_names=names,
         data_id=_combine(parts),
         preprocess=plan.to_dict(),
@@ -1282,7 +1331,7 @@ def _class_folders(root: Path, classes: Sequence[str] | None) -> tuple[list[str]
     folders = sorted(p.name for p in root.iterdir() if p.is_dir() and not p.name.startswith("."))
     if not folders:
         raise OnnxcalError(f"'{root}' has no class subfolders", "put the images of each class in a subfolder named after it")
-    names = tuple(classes) if classes is not None else tuple(folders)
+    names = tuple(classes) if classes is not None else tuple(shown(f) for f in folders)
     if classes is not None:
         index = class_indices(np.array(folders), classes, lambda i: f"subfolder '{folders[i]}' of '{root}'")
     else:
@@ -1313,6 +1362,11 @@ def _listed_images(
     files = [f.strip() for f in _column(rows, header.index("file"))]
     for i, name in enumerate(files):
         target = (root / name)
+        if Path(name).is_absolute() or ".." in Path(name).parts:
+            raise OnnxcalError(
+                f"line {lines[i]} of '{table}' names '{name}', which is outside the image folder '{root}'",
+                "give paths relative to the image folder, without '..' (onnxcal reads images only from there)",
+            )
         if not target.is_file():
             raise OnnxcalError(
                 f"line {lines[i]} of '{table}' names '{name}', which is not a file in '{root}'",

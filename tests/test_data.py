@@ -382,7 +382,7 @@ def test_uint8_and_grayscale_models(tmp_path):
         ({"resize": 32, "crop": 40}, r"--crop 40x40 is larger than image"),
         ({"resize": 32, "crop": 32, "mean": "0.5,0.5"}, "--mean has 2 values but the model takes 3-channel"),
         ({"resize": 32, "crop": 32, "dtype": "float16"}, "--dtype float16 does not match .* takes float32"),
-        ({"resize": "big"}, "--resize = 'big' is not a positive number"),
+        ({"resize": "big"}, "--resize = .big. is not a number of pixels from 1 to 65535"),
         ({"crop": "2x3x4"}, "--crop = '2x3x4' is not a size"),
         ({"std": "1,0,1"}, "--std = '1,0,1' is not a list of finite numbers .std > 0"),
         ({"layout": "CHW"}, "--layout = 'CHW' is not NCHW or NHWC"),
@@ -520,7 +520,7 @@ def test_parse_shard_errors(text, message):
 def test_selection_errors(tmp_path):
     with pytest.raises(OnnxcalError, match="shard 1/3 of .* holds no rows .the set has 2"):
         load(path=write(tmp_path, x=np.zeros((2, 3)), labels=np.array([0, 1])), selection=Selection(shard=(1, 3)))
-    with pytest.raises(OnnxcalError, match="--limit 0 is not a positive"):
+    with pytest.raises(OnnxcalError, match="--limit 0 is out of range: give a number of samples of at least 1"):
         load(path=DEMO_VAL, selection=Selection(limit=0))
 
 

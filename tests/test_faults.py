@@ -19,6 +19,7 @@ import errno
 import hashlib
 import io
 import os
+import random
 import re
 import select
 import shutil
@@ -301,3 +302,198 @@ def test_permission_denied_on_the_output_directory(work, run_cli, monkeypatch):
     r = run_cli("patch", DEMO_MODEL.name, "--temperature", "2", "--out", "p.onnx")
     assert r.code == 2 and "cannot write 'p.onnx': permission denied" in r.err
     assert len(r.err.strip().splitlines()) == 1 and files_in(work) == before
+
+
+# --------------------------------------------------------------------------
+# SIGINT and SIGTERM: handled like an error (issue 11)
+
+
+def _console() -> list[str]:
+    """The installed console script: it handles signals from its first instruction."""
+    exe = Path(sys.executable).with_name("onnxcal")
+    return [str(exe)] if exe.exists() else [sys.executable, "-m", "onnxcal"]
+
+
+CALIBRATE = ["calibrate", DEMO_MODEL.name, "--data", DEMO_VAL.name, "--out", "cal.onnx", "--report", "rep", "-q",
+             "--bootstrap", "0"]
+CALIBRATE_OUTPUTS = ["cal.onnx", *(f"rep/{n}" for n in ("report.html", "summary.md", "report.json",
+                                                         "reliability.png", "confidence.png", "classes.png"))]
+
+
+def _what_is_left(work: Path, inputs: list[Path]) -> set[str]:
+    """Every path under ``work`` that is not an input (files and directories)."""
+    return {str(p.relative_to(work)) for p in work.rglob("*")} - {str(p.relative_to(work)) for p in inputs}
+
+
+def _assert_clean_ending(work: Path, inputs: list[Path], name: str, code: int, err: str) -> bool:
+    """One line, the status of the signal, and all outputs or none; True when they were written."""
+    lines = err.strip().splitlines()
+    assert code == 128 + getattr(signal, name), (code, err)
+    assert len(lines) == 1 and lines[0].startswith(f"onnxcal: interrupted by {name}; "), err
+    left = _what_is_left(work, inputs)
+    if lines[0].endswith("no output was written"):
+        assert left == set(), left
+        return False
+    assert "the outputs were complete and written before it stopped" in lines[0]
+    assert left == {*CALIBRATE_OUTPUTS, "rep"}, left  # the whole group, no temporary
+    return True
+
+
+def _calibrate_run(work: Path, name: str | None = None, delay: float = 0.0) -> tuple[int, str, float]:
+    """Run CALIBRATE with the console script; send ``name`` after ``delay`` s. (status, stderr, seconds)."""
+    started = time.monotonic()
+    proc = subprocess.Popen(_console() + CALIBRATE, cwd=work, stdin=subprocess.DEVNULL,
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    if name is not None:
+        time.sleep(delay)
+        if proc.poll() is None:
+            proc.send_signal(getattr(signal, name))
+    _, err = proc.communicate(timeout=120)
+    return proc.returncode, err, time.monotonic() - started
+
+
+def test_signals_at_random_moments_leave_nothing_behind(work):
+    """SIGINT / SIGTERM at seeded random moments of 'calibrate --report', from interpreter start to exit.
+
+    One run without a signal measures how long the command takes (T); then
+    up to 6 runs get SIGINT or SIGTERM at a moment drawn uniformly from
+    [0, 1.1 T] (seeded), each followed by a run without a signal, within
+    about 20 s in all (fewer runs on a loaded machine, at least 2). Each must end either
+    with status 0 and every output, or with 130 / 143, one line, and the
+    group of outputs whole or absent; never a temporary, an owner record or
+    an empty report directory, never a traceback. The inputs stay
+    byte-identical, and the next run succeeds.
+    """
+    inputs = sorted(work.iterdir())
+    before = sha256s(inputs)
+    code, err, took = _calibrate_run(work)
+    assert code == 0 and err == "", err
+    rng = random.Random(20271111)
+    started, runs = time.monotonic(), []
+    while True:
+        assert _what_is_left(work, inputs) == {*CALIBRATE_OUTPUTS, "rep"}
+        shutil.rmtree(work / "rep")
+        (work / "cal.onnx").unlink()
+        if len(runs) == 6 or time.monotonic() - started > 16 - took:
+            break
+        name, delay = rng.choice(["SIGINT", "SIGTERM"]), rng.uniform(0.0, 1.1 * took)
+        code, err, _ = _calibrate_run(work, name, delay)
+        written = code == 0 or _assert_clean_ending(work, inputs, name, code, err)
+        assert "Traceback" not in err and sha256s(inputs) == before
+        runs.append((name, round(delay, 2), code))
+        if not written:  # what an interrupted run leaves is nothing: the next run starts afresh
+            assert _what_is_left(work, inputs) == set()
+            code, err, _ = _calibrate_run(work)
+            assert code == 0 and err == "", err
+    assert len(runs) >= 2 and any(code in (130, 143) for *_, code in runs), runs
+    assert sha256s(inputs) == before
+
+
+@pytest.mark.parametrize("name", ["SIGINT", "SIGTERM"])
+def test_a_signal_just_before_the_renames_removes_every_temporary(work, name):
+    inputs = sorted(work.iterdir())
+    proc = _start(CALIBRATE, work, {_files.PAUSE_HOOK: "600"})
+    try:
+        _wait_for_pause(proc)
+        proc.send_signal(getattr(signal, name))
+        err = proc.stderr.read()
+        proc.wait(timeout=60)
+    finally:
+        proc.kill()
+        proc.wait()
+        proc.stderr.close()
+    assert not _assert_clean_ending(work, inputs, name, proc.returncode, err)
+
+
+def test_sigterm_while_a_capture_streams_removes_the_temporary(work):
+    """Issue 11: SIGTERM during a capture left the streaming temporary (SIGKILL still may; above)."""
+    _wide_model(work / "wide.onnx", 256)
+    np.savez(work / "wide.npz", x=np.ones((400_000, 1), np.float32), labels=np.zeros(400_000, np.int64))
+    inputs = sorted(work.iterdir())
+    proc = subprocess.Popen(_console() + ["capture", "wide.onnx", "--data", "wide.npz", "--out", "big.npz",
+                                          "--batch-size", "1", "-q"],
+                            cwd=work, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    try:
+        deadline = time.monotonic() + 120
+        while not [p for p in temporaries(work) if p.stat().st_size >= 1 << 20]:
+            assert proc.poll() is None and time.monotonic() < deadline, "the capture did not stream in time"
+            time.sleep(0.01)
+        proc.send_signal(signal.SIGTERM)
+        _, err = proc.communicate(timeout=60)
+    finally:
+        proc.kill()
+        proc.wait()
+    assert proc.returncode == 143 and err.strip() == "onnxcal: interrupted by SIGTERM; no output was written"
+    assert _what_is_left(work, inputs) == set()
+
+
+# --------------------------------------------------------------------------
+# No user file is deleted or replaced (issue 11)
+
+
+def test_a_temporary_named_input_is_not_deleted(work, run_cli, monkeypatch):
+    """'onnxcal patch .p.onnx.abcdefgh.tmp ... --out p.onnx' deleted its own input."""
+    monkeypatch.chdir(work)
+    named = work / ".p.onnx.abcdefgh.tmp"
+    shutil.copy(work / DEMO_MODEL.name, named)
+    age([named], 86400)
+    before = sha256s([named])
+    r = run_cli("patch", named.name, "--temperature", "2", "--out", "p.onnx")
+    assert r.code == 0 and "removed" not in r.err, r.err
+    assert sha256s([named]) == before and (work / "p.onnx").is_file()
+
+
+def test_a_users_backup_named_like_a_temporary_is_not_deleted(work, run_cli, monkeypatch):
+    """A user's '.FIT.json.backup01.tmp' beside FIT.json was deleted by the next fit."""
+    monkeypatch.chdir(work)
+    _capture_file(work)
+    backups = {".FIT.json.backup01.tmp": b'{"temperature": 1.3}\n', ".FIT.json.abcd1234.tmp": b"named as ours\n"}
+    for name, data in backups.items():
+        (work / name).write_bytes(data)
+        age([work / name], 86400)
+    for force in ([], ["--force"]):
+        r = run_cli("fit", "c.npz", "--out", "FIT.json", "--bootstrap", "0", *force)
+        assert r.code == 0 and "removed" not in r.err, r.err
+    assert {name: (work / name).read_bytes() for name in backups} == backups
+
+
+def test_an_output_created_while_the_command_runs_is_kept(work):
+    """'calibrate --out M' replaced an M that another program created 2.5 s after it started."""
+    inputs = sorted(work.iterdir())
+    proc = _start(CALIBRATE, work, {_files.PAUSE_HOOK: "2"})
+    try:
+        _wait_for_pause(proc)  # the run checked its outputs long ago; now another program writes one
+        (work / "cal.onnx").write_bytes(b"another program's file")
+        err = proc.stderr.read()
+        proc.wait(timeout=60)
+    finally:
+        proc.kill()
+        proc.wait()
+        proc.stderr.close()
+    assert proc.returncode == 2, err
+    assert err.strip().startswith("onnxcal: error: 'cal.onnx' was written by another run or program"), err
+    assert (work / "cal.onnx").read_bytes() == b"another program's file"
+    assert _what_is_left(work, inputs) == {"cal.onnx"}  # no report, no temporary
+
+
+def _race(work: Path, args: list[str], extra: dict | None = None) -> list[subprocess.CompletedProcess]:
+    """Run the same command twice, started together; both pause before their renames."""
+    env = {**os.environ, _files.PAUSE_HOOK: "1", **(extra or {})}
+    procs = [subprocess.Popen(_console() + args, cwd=work, env=env, stdout=subprocess.DEVNULL,
+                              stderr=subprocess.PIPE, text=True) for _ in range(2)]
+    return [(p.wait(timeout=300), p.stderr.read()) for p in procs]
+
+
+def test_two_runs_writing_the_same_output_one_wins_the_other_exits_2(work):
+    inputs = sorted(work.iterdir())
+    before = sha256s(inputs)
+    results = _race(work, CALIBRATE)
+    codes = sorted(code for code, _ in results)
+    assert codes == [0, 2], results
+    (loser,) = [err for code, err in results if code == 2]
+    (line,) = [ln for ln in loser.splitlines() if not ln.startswith(f"onnxcal: {_files.PAUSE_HOOK}")]
+    assert re.fullmatch(r"onnxcal: error: '(cal\.onnx|rep/[a-z.]+)' was written by another run or program while "
+                        r"this one worked .* this run wrote nothing; pass --force to replace it, or write to another path",
+                        line), line
+    assert _what_is_left(work, inputs) == {*CALIBRATE_OUTPUTS, "rep"}  # the winner's group, whole
+    assert sha256s(inputs) == before

@@ -458,7 +458,7 @@ def test_a_group_that_meets_an_appeared_file_publishes_nothing(tmp_path, monkeyp
 
     monkeypatch.setattr(_files, "rename_noreplace", late)
     with pytest.raises(OnnxcalError, match="m.onnx' was written by another run"):
-        _files.atomic_write_files({a: b"weights", b: b"graph"})
+        _files.atomic_write_files({a: b"weights", b: b"graph"}, replace=False)
     assert files_in(tmp_path) == {"m.onnx": b"theirs"}  # the new m.onnx.data was taken back
 
 
@@ -528,7 +528,7 @@ def test_a_signal_during_a_group_is_delivered_after_it(tmp_path, monkeypatch):
 
     monkeypatch.setattr(_files, "rename_noreplace", rename)
     with pytest.raises(KeyboardInterrupt):
-        _files.atomic_write_files(files)
+        _files.atomic_write_files(files, replace=False)
     assert len(moved) == 3 and files_in(tmp_path) == {p.name: d for p, d in files.items()}  # all new
 
 
@@ -546,7 +546,7 @@ def test_a_failed_rename_in_a_group_cleans_up_everything(tmp_path, monkeypatch):
 
     monkeypatch.setattr(_files, "rename_noreplace", fail_second)
     with pytest.raises(OnnxcalError, match="cannot write '.*b.png'"):
-        _files.atomic_write_files(files)
+        _files.atomic_write_files(files, replace=False)
     assert list(tmp_path.iterdir()) == []  # a.png taken back, temporaries and the new directory removed
 
 
