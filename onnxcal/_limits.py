@@ -17,6 +17,8 @@ from .errors import OnnxcalError
 
 DEFAULT_MAX_MODEL_BYTES = 8 << 30
 """Default of ``--max-model-bytes``: 8 GiB (the .onnx file plus its external data)."""
+MAX_SIZE = 1 << 63
+"""Sizes are below 8 EiB (what a file offset can address)."""
 
 _UNITS = {"": 1, "b": 1, "k": 1000, "kb": 1000, "m": 1000**2, "mb": 1000**2, "g": 1000**3, "gb": 1000**3,
           "t": 1000**4, "tb": 1000**4, "kib": 1 << 10, "mib": 1 << 20, "gib": 1 << 30, "tib": 1 << 40}
@@ -36,9 +38,12 @@ def parse_size(text: str | int, option: str = "--max-model-bytes") -> int:
             raise OnnxcalError(
                 f"{option} {str(text)!r} is not a size", "give bytes, or a number with KiB, MiB, GiB (e.g. 8GiB)"
             )
-        value = int(float(m.group(1)) * _UNITS[m.group(2).lower()])
-    if value <= 0:
-        raise OnnxcalError(f"{option} {text!r} is not a positive size", "e.g. 8GiB")
+        number = float(m.group(1)) * _UNITS[m.group(2).lower()]
+        if not number < MAX_SIZE:  # also inf, from a number too long for a float
+            raise OnnxcalError(f"{option} {str(text)!r} is out of range: give a size from 1 byte to 8 EiB", "e.g. 8GiB")
+        value = int(number)
+    if not 0 < value < MAX_SIZE:
+        raise OnnxcalError(f"{option} {text!r} is out of range: give a size from 1 byte to 8 EiB", "e.g. 8GiB")
     return value
 
 

@@ -293,6 +293,29 @@ def make_session(model: onnx.ModelProto, options: RunOptions | None = None):
         ) from exc
 
 
+_NODE_FAILED = re.compile(r"while running (\w+) node\. Name:'(.*?)' Status Message: (?:\S+:\d+ )?(?:\S+\(.*?\) )?(.*)")
+
+
+def runtime_failure(exc: BaseException) -> str:
+    """onnxruntime's run-time error as the start of one sentence: which node failed, and why.
+
+    onnxruntime words it "... Non-zero status code returned while running
+    Reshape node. Name:'r' Status Message: <file>:<line> <function> <what>"
+    (onnxruntime 1.2x-1.3x, measured); when the text has another form the
+    first line of it is quoted as it is.
+
+    >>> runtime_failure(RuntimeError("[ONNXRuntimeError] : 1 : FAIL : Non-zero status code returned while "
+    ...                 "running Div node. Name:'int_div' Status Message: element_wise_ops.cc:703 Compute "
+    ...                 "Integer division by zero"))
+    "node 'int_div' (Div) failed (Compute Integer division by zero)"
+    """
+    m = _NODE_FAILED.search(first_line(exc, limit=10_000))
+    if m is None:
+        return f"onnxruntime failed ({first_line(exc)})"
+    why = m.group(3).strip() or "no reason given"
+    return f"node '{m.group(2)}' ({m.group(1)}) failed ({why if len(why) <= 300 else why[:297] + '...'})"
+
+
 def _nodes(graph: onnx.GraphProto) -> Iterator[onnx.NodeProto]:
     for node in graph.node:
         yield node
@@ -575,8 +598,7 @@ def run_batch(
     except Exception as exc:  # onnxruntime raises its own exception types
         rows = dataset.row_numbers()
         raise OnnxcalError(
-            f"onnxruntime failed on rows {int(rows[start])}..{int(rows[stop - 1])} of "
-            f"'{dataset.source}': {first_line(exc)}",
+            f"{runtime_failure(exc)} on rows {int(rows[start])}..{int(rows[stop - 1])} of '{dataset.source}'",
             "check that the data matches the model's inputs",
         ) from exc
     return [np.asarray(o)[:count] if plan.pad is not None else np.asarray(o) for o in outs]

@@ -36,7 +36,7 @@ from rich.progress import (
 from rich.table import Table
 from rich.text import Text
 
-from . import __version__, _files, _signals, api
+from . import __version__, _files, _runenv, _signals, api
 from .capture import CPU, DEFAULT_BATCH, OPTIMIZATION_LEVELS, ProgressFn
 from .data import IMAGE_OPTIONS, DataSpec, Selection, parse_shard
 from .errors import OnnxcalError, OnnxcalWarning
@@ -891,15 +891,13 @@ def _one_line(text: str) -> str:
     return " ".join(str(text).split())
 
 
-_default_showwarning = warnings.showwarning
-
-
 def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
-    """OnnxcalWarning as one 'warning:' line on stderr; others as Python shows them."""
+    """Every warning as one 'warning:' line on stderr: onnxcal's as they are, a library's
+    (numpy's RuntimeWarning, say) with its category, without Python's source line."""
     if issubclass(category, OnnxcalWarning):
         _warn([_one_line(message)])
     else:
-        _default_showwarning(message, category, filename, lineno, file, line)
+        _warn([f"{category.__name__}: {_one_line(message)}"])
 
 
 def _written(paths: Sequence[Path]) -> str:
@@ -924,7 +922,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         args = ["--debug"] + [a for a in args if a != "--debug"]
     with _signals.interrupting(), _files.command() as run:
         try:
-            with warnings.catch_warnings():
+            with warnings.catch_warnings(), _runenv.private_caches(), _runenv.one_line_logging(lambda m: _warn([m])):
                 warnings.simplefilter("always", OnnxcalWarning)
                 warnings.showwarning = _show_warning
                 rv = app(args=args, prog_name="onnxcal", standalone_mode=False)

@@ -39,7 +39,7 @@ import numpy as np
 
 from ._files import require_file
 from ._limits import check_memory, check_range, format_bytes
-from .errors import OnnxcalError, first_line
+from .errors import OnnxcalError, OnnxcalWarning, first_line
 from .graph import TensorSpec
 
 LABELS_KEY = "labels"
@@ -770,6 +770,25 @@ def _numeric_column(cells: np.ndarray, path: Path, name: str, j: int, lines: lis
         raise
 
 
+def _check_fits(values: np.ndarray, dtype: np.dtype, where: str, lines: list[int], input_name: str) -> None:
+    """Refuse finite values the model input's dtype cannot hold (float16 above 65504, int8 above 127, ...).
+
+    Cast, they would become Inf or wrap around without a word.
+    """
+    info = np.finfo(dtype) if dtype.kind == "f" else np.iinfo(dtype) if dtype.kind in "iu" else None
+    if info is None or dtype == np.float64:
+        return
+    low, high = float(info.min), float(info.max)
+    bad = np.isfinite(values) & ((values < low) | (values > high))
+    if bad.any():
+        i = int(np.argmax(bad))
+        raise OnnxcalError(
+            f"line {lines[i]}, {where} holds {values[i]:g}, outside what model input '{input_name}' "
+            f"({dtype.name}) can hold ({low:g} to {high:g})",
+            "rescale that column as the model was trained, or check the data",
+        )
+
+
 def load_csv(
     path: str | os.PathLike,
     model_input: TensorSpec,
@@ -840,7 +859,9 @@ def load_csv(
     x = np.empty((len(rows), len(features)), dtype=dtype if dtype.kind == "f" else np.float64)
     for col, name in enumerate(features):
         j = header.index(name)
-        x[:, col] = _numeric_column(_column(rows, j), p, name, j, lines)
+        values = _numeric_column(_column(rows, j), p, name, j, lines)
+        _check_fits(values, dtype, f"column '{name}' of '{p}'", lines, model_input.name)
+        x[:, col] = values
     if dtype.kind in "iub":
         whole = np.isfinite(x) & (x == np.round(x))
         if not whole.all():
@@ -897,6 +918,9 @@ IMAGE_OPTIONS = (
 _INTERPOLATION = ("nearest", "bilinear", "bicubic", "lanczos")
 MAX_SIDE = 65535
 """Largest ``--resize`` and ``--crop`` side in pixels (PNG and most formats stop there or near)."""
+
+ENLARGE_WARNING = 8
+"""A --resize that enlarges an image more than this many times per side is warned about (once)."""
 
 _SIXTEEN_BITS = {"I;16", "I;16L", "I;16B", "I;16N"}
 _UNKNOWN_RANGE = {"I": "32-bit integer", "F": "32-bit floating-point", "I;32": "32-bit integer"}
@@ -1112,7 +1136,8 @@ class ImageArray:
 
     def __init__(self, root: Path, files: Sequence[str], plan: _ImagePlan, spec: TensorSpec):
         self.root, self.files, self.plan, self.spec = root, list(files), plan, spec
-        height, width = self._load(0).shape[:2]
+        self._warned = False
+        height, width = self._planned_size(0)  # from the header: nothing decoded before the memory checks
         self._check_size(height, width)
         self.shape_hw = (height, width)
         c = plan.channels
@@ -1154,53 +1179,90 @@ class ImageArray:
             "often a little larger than the crop)",
         )
 
+    def _resized(self, name: str, w: int, h: int) -> tuple[int, int]:
+        """(width, height) after --resize, checked against the memory one such image needs."""
+        o = self.plan.options
+        if o.resize is None:
+            return w, h
+        s = o.resize / min(w, h)
+        size = (max(1, round(w * s)), max(1, round(h * s)))
+        what = f"image '{shown(name)}' ({h}x{w}, height x width) resized by --resize {o.resize} to {size[1]}x{size[0]}"
+        needs = size[0] * size[1] * self.plan.channels * (1 + self.plan.dtype.itemsize)
+        check_memory(needs, what, "lower --resize to the size the model takes")
+        if s > ENLARGE_WARNING and not self._warned:
+            self._warned = True
+            warnings.warn(
+                OnnxcalWarning(f"{what}, {s:.0f} times its size in each direction ({format_bytes(needs)} while it "
+                               "is preprocessed); check --resize, the shorter side after resizing in pixels"),
+                stacklevel=2,
+            )
+        return size
+
+    def _crop_box(self, name: str, w: int, h: int) -> tuple[int, int, int, int] | None:
+        o = self.plan.options
+        if o.crop is None:
+            return None
+        ch, cw = o.crop
+        if ch > h or cw > w:
+            raise OnnxcalError(
+                f"--crop {ch}x{cw} is larger than image '{shown(name)}' ({h}x{w} after --resize)",
+                "lower --crop or raise --resize",
+            )
+        left, top = (w - cw) // 2, (h - ch) // 2
+        return left, top, left + cw, top + ch
+
+    def _planned_size(self, i: int) -> tuple[int, int]:
+        """(height, width) of image ``i`` after preprocessing, from its header alone."""
+        name = self.files[i]
+        with self._open(name) as img:
+            w, h = self._resized(name, *img.size)
+        box = self._crop_box(name, w, h)
+        return (h, w) if box is None else (box[3] - box[1], box[2] - box[0])
+
+    def _open(self, name: str):
+        """The image ``name``, opened (its header read): Pillow's errors as OnnxcalError."""
+        from PIL import Image
+
+        try:
+            with warnings.catch_warnings():
+                # Pillow warns above MAX_IMAGE_PIXELS and raises at twice that; refuse both
+                warnings.simplefilter("error", Image.DecompressionBombWarning)
+                return Image.open(self.root / name)
+        except Exception as exc:
+            raise self._unreadable(name, exc) from exc
+
+    def _unreadable(self, name: str, exc: Exception) -> OnnxcalError:
+        from PIL import Image
+
+        if isinstance(exc, (Image.DecompressionBombWarning, Image.DecompressionBombError)):
+            return OnnxcalError(
+                f"image '{shown(self.root / name)}' claims {_pixels(exc)} pixels, more than Pillow's limit of "
+                f"{Image.MAX_IMAGE_PIXELS} for safe decoding (a decompression bomb?)",
+                "remove the file, or resize the images before calibrating",
+            )
+        # a damaged image: Pillow's decoders raise many kinds (OSError, struct.error, ...)
+        return OnnxcalError(f"image '{shown(self.root / name)}' cannot be read ({first_line(exc)})", "fix or remove the file")
+
     def _load(self, i: int) -> np.ndarray:
         """One image as uint8 (H, W, C), resized and cropped."""
         from PIL import Image
 
         name = self.files[i]
-        o = self.plan.options
+        img = self._open(name)
         try:
-            with warnings.catch_warnings():
-                # Pillow warns above MAX_IMAGE_PIXELS and raises at twice that; refuse both
+            with img, warnings.catch_warnings():
                 warnings.simplefilter("error", Image.DecompressionBombWarning)
-                img = Image.open(self.root / name)
-            with img:
                 img = _eight_bits(img, shown(name)).convert("L" if self.plan.channels == 1 else "RGB")
-                if o.resize is not None:
-                    w, h = img.size
-                    s = o.resize / min(w, h)
-                    size = (max(1, round(w * s)), max(1, round(h * s)))
-                    check_memory(
-                        size[0] * size[1] * self.plan.channels * (1 + self.plan.dtype.itemsize),
-                        f"image '{shown(name)}' ({h}x{w}, height x width) resized by --resize {o.resize} to "
-                        f"{size[1]}x{size[0]}",
-                        "lower --resize to the size the model takes",
-                    )
-                    img = img.resize(size, getattr(Image.Resampling, o.interpolation.upper()))
-                if o.crop is not None:
-                    ch, cw = o.crop
-                    w, h = img.size
-                    if ch > h or cw > w:
-                        raise OnnxcalError(
-                            f"--crop {ch}x{cw} is larger than image '{shown(name)}' ({h}x{w} after --resize)",
-                            "lower --crop or raise --resize",
-                        )
-                    left, top = (w - cw) // 2, (h - ch) // 2
-                    img = img.crop((left, top, left + cw, top + ch))
+                size = self._resized(name, *img.size)
+                if size != img.size:
+                    img = img.resize(size, getattr(Image.Resampling, self.plan.options.interpolation.upper()))
+                if (box := self._crop_box(name, *img.size)) is not None:
+                    img = img.crop(box)
                 arr = np.asarray(img, dtype=np.uint8)
-        except (Image.DecompressionBombWarning, Image.DecompressionBombError) as exc:
-            raise OnnxcalError(
-                f"image '{self.root / name}' claims {_pixels(exc)} pixels, more than Pillow's limit of "
-                f"{Image.MAX_IMAGE_PIXELS} for safe decoding (a decompression bomb?)",
-                "remove the file, or resize the images before calibrating",
-            ) from exc
         except OnnxcalError:
             raise
-        except Exception as exc:  # a damaged image: Pillow's decoders raise many kinds (OSError, struct.error, ...)
-            raise OnnxcalError(
-                f"image '{shown(self.root / name)}' cannot be read ({first_line(exc)})", "fix or remove the file"
-            ) from exc
+        except Exception as exc:
+            raise self._unreadable(name, exc) from exc
         return arr[:, :, None] if arr.ndim == 2 else arr
 
     def __getitem__(self, key) -> np.ndarray:
