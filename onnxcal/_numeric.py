@@ -20,14 +20,15 @@ import numpy as np
 from .errors import OnnxcalError
 from .scaling import Scaling
 
-_CHUNK = 1 << 16
+_CHUNK_ELEMENTS = 1 << 18
 
 
 def max_abs(logits: np.ndarray) -> float:
     """The largest |logit| among the finite values, read in row chunks (``logits`` may be a memory map)."""
     top = 0.0
-    for start in range(0, len(logits), _CHUNK):
-        block = np.asarray(logits[start : start + _CHUNK])
+    step = max(1, _CHUNK_ELEMENTS // max(1, int(np.prod(logits.shape[1:]))))
+    for start in range(0, len(logits), step):
+        block = np.asarray(logits[start : start + step])
         finite = np.abs(block[np.isfinite(block)])
         if finite.size:
             top = max(top, float(finite.max()))

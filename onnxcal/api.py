@@ -33,7 +33,7 @@ from ._files import (
     sha256_bytes,
     sha256_file,
 )
-from ._limits import DEFAULT_MAX_MODEL_BYTES, MAX_BINS, check_bins_memory, check_range, parse_size
+from ._limits import DEFAULT_MAX_MODEL_BYTES, MAX_BINS, check_bins_memory, check_memory, check_range, parse_size
 from ._numeric import check_in_dtype, max_abs
 from .capture import Capture, ProgressFn, RunOptions
 from .data import DataSpec, Dataset, check_selection, load_dataset
@@ -93,6 +93,8 @@ def _finite(cap: Capture, source: str, drop: bool) -> tuple[Capture, str | None]
         raise OnnxcalError(f"{what}: every row, so nothing is left to work on", "check the model and its inputs")
     if not drop:
         raise OnnxcalError(what, "check the model and the inputs of those rows, or pass --drop-nonfinite to leave them out")
+    rows = len(cap.logits) - bad.count
+    check_memory(rows * cap.logits.shape[1] * 4, f"a copy of the logits of the {rows} rows kept", "use --limit")
     kept = _capture.without_nonfinite(cap)
     return kept, f"dropped {len(cap.logits) - len(kept.logits)} rows: {what}"
 
@@ -458,6 +460,12 @@ def _reference_checks(
     """Checks (1)-(3): the outputs against the reference, the record against the graph and the source."""
     dtypes = (site.dtype, site.output_dtype or site.dtype)
     checks = list(_verify.compare(rows, logits, record.scaling, record.activation, dtypes))
+    return checks + _record_checks(record, patched, original_model, source_sha)
+
+
+def _record_checks(record: Record, patched, original_model, source_sha: str | None) -> list[Check]:
+    """Check (3): the record against the graph's parameters, and the original's sha256 against the record's."""
+    checks = []
     if record.folded and original_model is None:
         checks.append(
             _verify.skipped(
@@ -480,6 +488,37 @@ def _reference_checks(
     else:
         checks.append(_verify.source_check(record.source_sha256, source_sha))
     return checks
+
+
+def _compare_as_it_runs(patched, record: Record, dataset: Dataset, run: RunOptions, progress, logits, keep) -> list[Check]:
+    """Checks (1)-(2) of ``calibrate``: the patched model run batch by batch, each batch compared
+    with the captured logits of its rows (those in ``keep``) as it comes.
+
+    Nothing of the patched outputs is kept beyond a batch, so the command
+    holds the logits and little else (docs/benchmarks.md, calibrate's memory).
+    """
+    site = graph.find_scores(patched, record.output)
+    plan = _capture.plan_run(graph.expose(patched, [site.tensor]), dataset, [site.tensor], run)
+    comparison = _verify.Comparison(record.scaling, record.activation, (site.dtype, site.output_dtype or site.dtype))
+    done = 0
+    batches = _capture.run_batches(plan, dataset, progress=progress, description="running patched model")
+    for _, _, (values,) in batches:
+        rows = _capture.as_rows(values, site.class_axis)
+        span = slice(done, done + len(rows))
+        done += len(rows)
+        if done > len(logits):
+            break
+        mask = keep[span]
+        if mask.all():
+            comparison.add(rows, logits[span])
+        else:
+            comparison.add(rows[mask], logits[span][mask])
+    if done != len(logits):
+        raise OnnxcalError(
+            f"the patched model gives {done} rows of scores but the original gave {len(logits)} on '{dataset.source}'",
+            "report this with the model's inspect output",
+        )
+    return list(comparison.checks())
 
 
 def _source_site(base, record: Record):
@@ -1106,9 +1145,8 @@ def calibrate(
         model, summary.scaling, sha=sha, path=model_path, fit=summary.to_dict(), largest_logit=max_abs(cap.logits)
     )
     record = graph.read_record(patched)
-    site = graph.find_scores(patched, record.output)
-    rows = _run_output(patched, site, dataset, run, progress)
-    checks = _reference_checks(rows[keep], site, record, cap.logits, patched, model, sha)
+    checks = _compare_as_it_runs(patched, record, dataset, run, progress, full.logits, keep)
+    checks += _record_checks(record, patched, model, sha)
     result = VerifyResult(checks=tuple(checks), n=dataset.n, original=str(model_path))
     files: dict[Path, bytes] = {}
     written = None
