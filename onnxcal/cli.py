@@ -162,20 +162,21 @@ MultilabelOpt = Annotated[
     ),
 ]
 L2Opt = Annotated[
-    float, typer.Option("--l2", help="Penalty l2*(sum (w-1)^2 + sum b^2) added to the NLL (vector, platt).")
+    float,
+    typer.Option("--l2", help="Penalty l2*(sum (w-1)^2 + sum b^2) added to the NLL (vector, platt; 0 to 1e6)."),
 ]
 HoldoutOpt = Annotated[
     float,
     typer.Option(
         "--holdout",
-        help="Fraction held out (stratified) to score the fit on; 0 scores in-sample.",
+        help="Fraction held out (stratified) to score the fit on, 0 to 0.9; 0 scores in-sample.",
     ),
 ]
-SeedOpt = Annotated[int, typer.Option("--seed", help="Seed of the holdout split and the bootstrap.")]
+SeedOpt = Annotated[int, typer.Option("--seed", help="Seed of the holdout split and the bootstrap (0 to 2^32-1).")]
 BootstrapOpt = Annotated[
-    int, typer.Option("--bootstrap", help="Bootstrap replicates for 95% intervals; 0 skips them.")
+    int, typer.Option("--bootstrap", help="Bootstrap replicates for 95% intervals (0 to 10000); 0 skips them.")
 ]
-BinsOpt = Annotated[int, typer.Option("--bins", help="Bins of the ECEs.")]
+BinsOpt = Annotated[int, typer.Option("--bins", help="Bins of the ECEs (2 to 100000).")]
 MaxModelBytesOpt = Annotated[
     str,
     typer.Option(
@@ -221,16 +222,17 @@ _SHARED_OPTIONS = (
             "CSV columns fed to the model, in order (default: all but the label).", metavar="A,B,..."),
     _option("classes", Optional[Path], None, "--classes",
             "Class names, one per line, in the model's class order; string labels are mapped through it."),
-    _option("limit", Optional[int], None, "--limit", "Use at most N samples.", metavar="N"),
+    _option("limit", Optional[int], None, "--limit", "Use at most N samples (N >= 1).", metavar="N"),
     _option("shuffle_seed", Optional[int], None, "--shuffle-seed",
-            "Take --limit/--shard samples from a random permutation with this seed.", metavar="SEED"),
+            "Take --limit/--shard samples from a random permutation with this seed (0 to 2^32-1).", metavar="SEED"),
     _option("shard", Optional[str], None, "--shard",
             "Capture the I-th of N deterministic slices (1 <= I <= N); 'onnxcal fit' merges the files.",
             metavar="I/N"),
     _option("preprocess", Optional[Path], None, "--preprocess",
             "Image options below as a TOML or JSON file (options given here win)."),
-    _option("resize", Optional[int], None, "--resize", "Image: resize the shorter side to N pixels.", metavar="N"),
-    _option("crop", Optional[str], None, "--crop", "Image: centre crop.", metavar="N|HxW"),
+    _option("resize", Optional[int], None, "--resize", "Image: resize the shorter side to N pixels (1 to 65535).",
+            metavar="N"),
+    _option("crop", Optional[str], None, "--crop", "Image: centre crop (sides of 1 to 65535 pixels).", metavar="N|HxW"),
     _option("scale", Optional[bool], None, "--scale/--no-scale",
             "Image: divide pixels by 255 (default: yes for float inputs).", show_default=False),
     _option("mean", Optional[str], None, "--mean", "Image: per-channel mean, subtracted after scaling.",
@@ -244,8 +246,8 @@ _SHARED_OPTIONS = (
     _option("dtype", Optional[str], None, "--dtype", "Image: input dtype (default: the model's).", metavar="DTYPE"),
     _option("interpolation", Optional[str], None, "--interpolation",
             "Image: resize filter: nearest, bilinear (default), bicubic, lanczos.", metavar="FILTER"),
-    _option("batch_size", int, DEFAULT_BATCH, "--batch-size", "Samples per onnxruntime call.", min=1),
-    _option("threads", int, 0, "--threads", "onnxruntime intra-op threads (0: its default).", min=0),
+    _option("batch_size", int, DEFAULT_BATCH, "--batch-size", "Samples per onnxruntime call (1 to 16777216)."),
+    _option("threads", int, 0, "--threads", "onnxruntime intra-op threads (0: its default; at most 4 per core, or 64)."),
     _option("optimization", str, "all", "--optimization",
             f"Graph optimisation level: {', '.join(OPTIMIZATION_LEVELS)}."),
     _option("provider", str, CPU, "--provider", "onnxruntime execution provider."),
@@ -697,7 +699,7 @@ def verify(
         typer.Option("--max-latency-ratio", help="Fail when median patched / original latency is above this (implies --latency)."),
     ] = None,
     latency_runs: Annotated[
-        int, typer.Option("--latency-runs", help="Timed runs of each model for --latency.", min=1)
+        int, typer.Option("--latency-runs", help="Timed runs of each model for --latency (1 to 100000).")
     ] = api.DEFAULT_LATENCY_RUNS,
     junit: Annotated[
         Optional[Path], typer.Option("--junit", help="Also write the checks as JUnit XML to this file.")
@@ -775,7 +777,7 @@ def report(
         typer.Option("--classes", help="Class names, one per line, in the model's class order "
                      "(default: those recorded in the capture)."),
     ] = None,
-    bins: Annotated[Optional[int], typer.Option("--bins", help="Bins (default: the fit's, else 15).")] = None,
+    bins: Annotated[Optional[int], typer.Option("--bins", help="Bins, 2 to 100000 (default: the fit's, else 15).")] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,

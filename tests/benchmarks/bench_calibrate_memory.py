@@ -61,6 +61,7 @@ IMPORTS = """
 import json
 import numpy, onnx, onnxruntime, scipy.optimize
 from onnxcal import api, cli
+assert api.__file__.startswith({root!r}), api.__file__
 hwm = [line for line in open("/proc/self/status") if line.startswith("VmHWM")][0].split()[1]
 print(json.dumps({{"peak_kib": int(hwm)}}))
 """
@@ -68,6 +69,8 @@ print(json.dumps({{"peak_kib": int(hwm)}}))
 CALIBRATE = """
 import json, time
 from onnxcal.cli import main
+import onnxcal
+assert onnxcal.__file__.startswith({root!r}), onnxcal.__file__
 t0 = time.perf_counter()
 code = main({argv!r})
 seconds = time.perf_counter() - t0
@@ -77,8 +80,11 @@ print(json.dumps({{"peak_kib": int(hwm), "code": code, "seconds": seconds}}))
 
 
 def run(code: str, source: Path = ROOT, **kw) -> dict | None:
+    """Run ``code`` in a fresh python importing onnxcal from ``source`` (from a neutral directory:
+    ``python -c`` puts the working directory first on the path)."""
     env = dict(os.environ, PYTHONPATH=str(source))
-    out = subprocess.run([sys.executable, "-c", code.format(**kw)], env=env, capture_output=True, text=True)
+    out = subprocess.run([sys.executable, "-c", code.format(**kw)], env=env, capture_output=True, text=True,
+                         cwd=tempfile.gettempdir())
     if out.returncode != 0:
         raise SystemExit(out.stderr)
     lines = out.stdout.strip().splitlines()
@@ -89,7 +95,7 @@ def calibrate(work: Path, source: Path, args, tag: str) -> dict:
     out, rep = work / f"out-{tag}.onnx", work / f"rep-{tag}"
     argv = ["calibrate", str(work / "m.onnx"), "--data", str(work / "d.npz"), "--out", str(out),
             "--report", str(rep), "-q", "--bootstrap", str(args.bootstrap)]
-    result = run(CALIBRATE, source, argv=argv)
+    result = run(CALIBRATE, source, argv=argv, root=str(source))
     if result["code"] != 0:
         raise SystemExit(f"calibrate exited {result['code']}")
     out.unlink()
@@ -114,7 +120,7 @@ def main() -> None:
         mib = 2**20
         logits = args.n * args.k * 4
         model = (work / "m.onnx").stat().st_size
-        imports = run(IMPORTS)["peak_kib"] * 1024
+        imports = run(IMPORTS, root=str(ROOT))["peak_kib"] * 1024
         print(f"calibrate --report, {args.n} x {args.k} float32 logits = {logits / mib:.0f} MiB, "
               f"model {model / mib:.2f} MiB, --bootstrap {args.bootstrap}:")
         print(f"  imports alone: {imports / mib:.0f} MiB")
