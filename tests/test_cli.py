@@ -539,7 +539,7 @@ BAD_VERIFY = [
     (["--data", "HALF", "--scores", "SCORES"], "holds 2000 rows of scores but the patched model gives 1000 rows"),
     (["--junit", "EXISTING"], "already exists"),
     (["--junit", "MISSINGDIR"], "does not exist"),
-    (["--latency-runs", "0"], "--latency-runs.*greater than or equal to 1"),
+    (["--latency-runs", "0"], "--latency-runs 0 is out of range: give a number of runs from 1 to 100000"),
 ]
 
 
