@@ -106,9 +106,10 @@ def command() -> Iterator[Command]:
     if current is not None:
         yield current
         return
-    token = _COMMAND.set(Command())
+    run = Command()
+    token = _COMMAND.set(run)
     try:
-        yield _COMMAND.get()
+        yield run
     finally:
         _COMMAND.reset(token)
 
@@ -350,7 +351,9 @@ def _read_owner(fd: int, st: os.stat_result) -> dict | None:
     return record
 
 
-def _stale_pair(parent: Path, name: str, token: str, dest: Path, protected: set) -> tuple[Path, Path | None, dict] | None:
+def _stale_pair(
+    parent: Path, name: str, token: str, dest: Path, protected: set
+) -> tuple[Path, Path | None, dict] | None:
     """(owner, its temporary or None, record) when ``name`` is a provably stale owner record; else None.
 
     Holds the owner's lock while deciding and removing, so two runs cannot
@@ -374,21 +377,21 @@ def _stale_pair(parent: Path, name: str, token: str, dest: Path, protected: set)
             return None
         if not _process_gone(record, time.time() - st.st_mtime):
             return None
-        temporary: Path | None = parent / record["temporary"]
+        path = parent / str(record["temporary"])
+        removed: Path | None = None
         try:
-            tst = os.lstat(temporary)
+            tst = os.lstat(path)
         except FileNotFoundError:
-            temporary = None
+            pass
         else:
             if (tst.st_dev, tst.st_ino) in protected:
                 return None  # an input of this command: neither it nor its record is touched
-            ours = stat.S_ISREG(tst.st_mode) and (tst.st_dev, tst.st_ino) == (st.st_dev, record.get("temporary_inode"))
-            if ours:
-                os.unlink(temporary)
-            else:
-                temporary = None  # not provably the file onnxcal made: left alone
+            if stat.S_ISREG(tst.st_mode) and (tst.st_dev, tst.st_ino) == (st.st_dev, record.get("temporary_inode")):
+                os.unlink(path)
+                removed = path
+            # else: not provably the file onnxcal made, left alone
         os.unlink(owner)
-        return owner, temporary, record
+        return owner, removed, record
     except OSError:
         return None
     finally:
@@ -534,6 +537,7 @@ class _Temporary:
         self.owner: Path | None = None
         self.identity: tuple[int, int] | None = None
         self._fd = -1
+        self._record: dict = {}
         remove_stale_temporaries(dest)
         parent = dest.parent if str(dest.parent) else Path(".")
         try:
@@ -591,16 +595,23 @@ class _Temporary:
             fd, self._fd = self._fd, -1  # never closed twice, whatever happens next
             os.close(fd)
 
+    @property
+    def written(self) -> Path:
+        """The temporary's path (while it exists)."""
+        if self.path is None:
+            raise AssertionError(f"the temporary of '{self.dest}' is already gone")
+        return self.path
+
     def sync(self) -> None:
-        with open(self.path, "rb+") as fh:
+        with open(self.written, "rb+") as fh:
             os.fsync(fh.fileno())
 
     def publish(self) -> None:
         """Move the temporary onto ``dest`` (replacing it only when allowed); then drop the record."""
         if self.replace:
-            os.replace(self.path, self.dest)
+            os.replace(self.written, self.dest)
         else:
-            rename_noreplace(self.path, self.dest)
+            rename_noreplace(self.written, self.dest)
         self.path = None
         self._drop_owner()
 
@@ -698,7 +709,7 @@ def atomic_paths(dests: Sequence[str | os.PathLike], *, replace: bool | None = N
         for dest in dests:
             temporaries.append(_Temporary(Path(dest), _may_replace(Path(dest), replace)))
         try:
-            yield [t.path for t in temporaries]
+            yield [t.written for t in temporaries]
         except OSError as exc:
             owner = _owner(exc, temporaries)
             if owner is None:
@@ -759,7 +770,7 @@ def atomic_write_files(files: Mapping[str | os.PathLike, bytes], *, replace: boo
                         raise write_error(exc, parent) from exc
                     created.append(parent)
         with atomic_paths(list(files), replace=replace) as tmps:
-            for tmp, (dest, data) in zip(tmps, files.items()):
+            for tmp, (dest, data) in zip(tmps, files.items(), strict=True):
                 try:
                     tmp.write_bytes(data)
                 except OSError as exc:

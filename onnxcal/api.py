@@ -490,7 +490,9 @@ def _record_checks(record: Record, patched, original_model, source_sha: str | No
     return checks
 
 
-def _compare_as_it_runs(patched, record: Record, dataset: Dataset, run: RunOptions, progress, logits, keep) -> list[Check]:
+def _compare_as_it_runs(
+    patched, record: Record, dataset: Dataset, run: RunOptions, progress, logits, keep
+) -> list[Check]:
     """Checks (1)-(2) of ``calibrate``: the patched model run batch by batch, each batch compared
     with the captured logits of its rows (those in ``keep``) as it comes.
 

@@ -247,7 +247,8 @@ _SHARED_OPTIONS = (
     _option("interpolation", Optional[str], None, "--interpolation",
             "Image: resize filter: nearest, bilinear (default), bicubic, lanczos.", metavar="FILTER"),
     _option("batch_size", int, DEFAULT_BATCH, "--batch-size", "Samples per onnxruntime call (1 to 16777216)."),
-    _option("threads", int, 0, "--threads", "onnxruntime intra-op threads (0: its default; at most 4 per core, or 64)."),
+    _option("threads", int, 0, "--threads",
+            "onnxruntime intra-op threads (0: its default; at most 4 per core, or 64)."),
     _option("optimization", str, "all", "--optimization",
             f"Graph optimisation level: {', '.join(OPTIMIZATION_LEVELS)}."),
     _option("provider", str, CPU, "--provider", "onnxruntime execution provider."),
@@ -777,7 +778,9 @@ def report(
         typer.Option("--classes", help="Class names, one per line, in the model's class order "
                      "(default: those recorded in the capture)."),
     ] = None,
-    bins: Annotated[Optional[int], typer.Option("--bins", help="Bins, 2 to 100000 (default: the fit's, else 15).")] = None,
+    bins: Annotated[
+        Optional[int], typer.Option("--bins", help="Bins, 2 to 100000 (default: the fit's, else 15).")
+    ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,

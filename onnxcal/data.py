@@ -1241,7 +1241,9 @@ class ImageArray:
                 "remove the file, or resize the images before calibrating",
             )
         # a damaged image: Pillow's decoders raise many kinds (OSError, struct.error, ...)
-        return OnnxcalError(f"image '{shown(self.root / name)}' cannot be read ({first_line(exc)})", "fix or remove the file")
+        return OnnxcalError(
+            f"image '{shown(self.root / name)}' cannot be read ({first_line(exc)})", "fix or remove the file"
+        )
 
     def _load(self, i: int) -> np.ndarray:
         """One image as uint8 (H, W, C), resized and cropped."""

@@ -225,14 +225,12 @@ class Comparison:
             checks.append(Check("row-sums", self.sums <= tol, self.sums, tol, "max |sum_k p_k - 1| over rows"))
             agree = self.agree / self.rows if self.rows else 1.0
             what = "unchanged" if self.scaling.method == "temperature" else "as in the reference"
-            checks.append(
-                Check("argmax", agree == 1.0, agree, 1.0, f"fraction of rows whose argmax is {what} (up to rounding ties)")
-            )
+            detail = f"fraction of rows whose argmax is {what} (up to rounding ties)"
+            checks.append(Check("argmax", agree == 1.0, agree, 1.0, detail))
         else:
             decide = self.agree / self.values if self.values else 1.0
-            checks.append(
-                Check("decisions", decide == 1.0, decide, 1.0, "fraction of 0.5-threshold decisions as in the reference")
-            )
+            detail = "fraction of 0.5-threshold decisions as in the reference"
+            checks.append(Check("decisions", decide == 1.0, decide, 1.0, detail))
         return tuple(checks)
 
 

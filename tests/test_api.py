@@ -319,8 +319,8 @@ def test_a_temperature_the_graph_cannot_compute_with_is_refused_and_float64_is_t
     api.patch(DEMO_MODEL, tmp_path / "p.onnx", temperature=1e-45, compute_dtype="float64")
     sess = ort.InferenceSession(str(tmp_path / "p.onnx"), providers=["CPUExecutionProvider"])
     x = np.load(DEMO_VAL)["band_energies"][:200]
-    (probs,) = [o for o, meta in zip(sess.run(None, {"band_energies": x}), sess.get_outputs())
-                if meta.name == "probabilities"]
+    outputs = zip(sess.run(None, {"band_energies": x}), sess.get_outputs(), strict=True)
+    (probs,) = [o for o, meta in outputs if meta.name == "probabilities"]
     assert np.isfinite(probs).all()  # onnxruntime's own outputs: finite (one-hot, at such a T)
 
 

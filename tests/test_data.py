@@ -688,7 +688,8 @@ def test_a_labels_csv_cannot_reach_outside_the_image_folder(tmp_path, name):
     Image.new("RGB", (32, 32)).save(tmp_path / "outside.png")
     table = tmp_path / "labels.csv"
     table.write_text(f"file,label\na/1.png,0\n{name},1\n")
-    with pytest.raises(OnnxcalError, match=f"line 3 of '.*labels.csv' names '{name}', which is outside the image folder"):
+    message = f"line 3 of '.*labels.csv' names '{name}', which is outside the image folder"
+    with pytest.raises(OnnxcalError, match=message):
         load(IMAGE_SPEC, path=root, labels=table)
 
 
@@ -696,7 +697,8 @@ def test_csv_values_beyond_the_input_dtype_are_refused(tmp_path):
     table = tmp_path / "t.csv"
     table.write_text("f0,f1,f2,label\n1,2,3,0\n4,-70000,6,1\n")
     spec = [TensorSpec("x", "float16", ("N", 3), True)]
-    with pytest.raises(OnnxcalError, match=r"line 3, column 'f1' .* holds -70000, outside .* \(float16\) can hold \(-65504 to 65504\)"):
+    message = r"line 3, column 'f1' .* holds -70000, outside .* \(float16\) can hold \(-65504 to 65504\)"
+    with pytest.raises(OnnxcalError, match=message):
         load(spec, path=table)
     spec = [TensorSpec("x", "int8", ("N", 3), True)]
     table.write_text("f0,f1,f2,label\n1,2,300,0\n")

@@ -493,7 +493,7 @@ def test_two_runs_writing_the_same_output_one_wins_the_other_exits_2(work):
     (loser,) = [err for code, err in results if code == 2]
     (line,) = [ln for ln in loser.splitlines() if not ln.startswith(f"onnxcal: {_files.PAUSE_HOOK}")]
     assert re.fullmatch(r"onnxcal: error: '(cal\.onnx|rep/[a-z.]+)' was written by another run or program while "
-                        r"this one worked .* this run wrote nothing; pass --force to replace it, or write to another path",
-                        line), line
+                        r"this one worked .* this run wrote nothing; pass --force to replace it, "
+                        r"or write to another path", line), line
     assert _what_is_left(work, inputs) == {*CALIBRATE_OUTPUTS, "rep"}  # the winner's group, whole
     assert sha256s(inputs) == before

@@ -323,7 +323,8 @@ def test_read_only_home_and_tmpdir_give_no_warnings(tmp_path):
     if os.geteuid() != 0 or shutil.which("setpriv") is None:
         pytest.skip("needs root and setpriv to run as an unprivileged user")
     drop = ["setpriv", "--reuid=65534", "--regid=65534", "--clear-groups", "--"]
-    can_read = "import importlib.util, os, sys; s = importlib.util.find_spec('onnxcal'); sys.exit(not os.access(s.origin, os.R_OK))"
+    can_read = ("import importlib.util, os, sys; s = importlib.util.find_spec('onnxcal'); "
+                "sys.exit(not os.access(s.origin, os.R_OK))")
     if subprocess.run(drop + [sys.executable, "-c", can_read], capture_output=True).returncode:
         pytest.skip("user nobody cannot read this checkout or its venv (a private home directory?)")
     base = Path(tempfile.mkdtemp(prefix="onnxcal-readonly-"))

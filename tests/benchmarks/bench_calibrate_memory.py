@@ -129,11 +129,11 @@ def main() -> None:
             for name, source in trees if r % 2 == 0 else trees[::-1]:
                 got = calibrate(work, source, args, name.replace(" ", "-"))
                 peak = got["peak_kib"] * 1024
-                print(f"  {name:10s} round {r + 1}: peak RSS {peak / mib:7.0f} MiB = {peak / logits:5.2f} x the logits; "
-                      f"beyond the imports {(peak - imports) / logits:5.2f} x; {got['seconds']:.0f} s")
+                print(f"  {name:10s} round {r + 1}: peak RSS {peak / mib:7.0f} MiB = {peak / logits:5.2f} x the "
+                      f"logits; beyond the imports {(peak - imports) / logits:5.2f} x; {got['seconds']:.0f} s")
                 if name == "this tree":
-                    budget = 3 * logits + model
-                    print(f"    (peak - imports) / (3 x logits + model) = {(peak - imports) / budget:.2f} (target <= 1)")
+                    ratio = (peak - imports) / (3 * logits + model)
+                    print(f"    (peak - imports) / (3 x logits + model) = {ratio:.2f} (target <= 1)")
     finally:
         shutil.rmtree(work, ignore_errors=True)
 
