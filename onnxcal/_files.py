@@ -516,7 +516,12 @@ def rename_noreplace(src: Path, dst: Path) -> None:
         if exc.errno not in (errno.EPERM, errno.ENOTSUP, errno.EOPNOTSUPP, errno.EMLINK, errno.ENOSYS, errno.EXDEV):
             raise
     else:
-        os.unlink(src)
+        try:
+            os.unlink(src)
+        except OSError:
+            with contextlib.suppress(OSError):
+                os.unlink(dst)  # the link just made: not published after all
+            raise
         return
     with _directory_lock(dst.parent):
         if os.path.lexists(dst):
