@@ -16,7 +16,7 @@ from pathlib import Path
 import pytest
 
 from conftest import DEMO_MODEL, DEMO_VAL, files_in, random_mlp
-from onnxcal import _files, api
+from onnxcal import _files, _temporaries, api
 from onnxcal.errors import OnnxcalError, OnnxcalWarning
 from onnxcal.fit import FitOptions
 
@@ -137,7 +137,7 @@ def journal(monkeypatch):
     """Record fsync (by the path of the fd) and rename calls, in order."""
     events = []
     real_fsync, real_replace, real_rename = os.fsync, os.replace, os.rename
-    real_noreplace = _files.rename_noreplace
+    real_noreplace = _temporaries.rename_noreplace
 
     def fsync(fd):
         events.append(("fsync", os.readlink(f"/proc/self/fd/{fd}")))
@@ -160,7 +160,7 @@ def journal(monkeypatch):
     monkeypatch.setattr(os, "fsync", fsync)
     monkeypatch.setattr(os, "replace", replace)
     monkeypatch.setattr(os, "rename", rename)
-    monkeypatch.setattr(_files, "rename_noreplace", rename_noreplace)
+    monkeypatch.setattr(_temporaries, "rename_noreplace", rename_noreplace)
     return events
 
 
@@ -209,7 +209,7 @@ def test_every_writer_is_atomic_and_durable(tmp_path, rng, journal, writer):
 # Atomic writes: temporaries, the test hook, stale temporaries of killed writers
 
 
-def _temporaries(directory):
+def _leftovers(directory):
     """Temporaries and their owner records."""
     return sorted(p.name for p in directory.iterdir() if p.name.endswith((".tmp", ".owner")))
 
@@ -238,7 +238,7 @@ def test_failure_in_the_body_removes_the_temporary_and_keeps_the_old_file(tmp_pa
         with _files.atomic_path(dest) as tmp:
             tmp.write_bytes(b"half")
             raise KeyboardInterrupt
-    assert dest.read_bytes() == b"old" and _temporaries(tmp_path) == []
+    assert dest.read_bytes() == b"old" and _leftovers(tmp_path) == []
 
 
 def test_pause_hook_sleeps_after_the_complete_write_and_before_the_rename(tmp_path, monkeypatch, capsys):
@@ -289,7 +289,7 @@ def test_enospc_on_fsync_is_a_clean_error_and_the_old_file_stays(tmp_path, monke
     monkeypatch.setattr(os, "fsync", fsync)
     with pytest.raises(OnnxcalError, match=r"cannot write '.*fit\.json': the disk is full"):
         _files.atomic_write_bytes(dest, b"new")
-    assert dest.read_bytes() == b"old" and _temporaries(tmp_path) == []
+    assert dest.read_bytes() == b"old" and _leftovers(tmp_path) == []
 
 
 def test_permission_denied_creating_the_temporary(tmp_path, monkeypatch):
@@ -325,7 +325,7 @@ def test_a_group_is_renamed_only_when_every_file_is_written(tmp_path, monkeypatc
         _files.atomic_write_files({first: b"new weights", second: b"new graph"})
     # the weights were written completely, but not renamed: the old pair is intact
     assert first.read_bytes() == b"old weights" and second.read_bytes() == b"old graph"
-    assert _temporaries(tmp_path) == []
+    assert _leftovers(tmp_path) == []
 
 
 def _dead_pid() -> int:
@@ -440,7 +440,7 @@ def test_publication_never_replaces_a_file_that_appeared_meanwhile(tmp_path):
             with _files.atomic_path(dest) as tmp:
                 tmp.write_bytes(b"ours")
                 dest.write_bytes(b"theirs")  # another program, while this run works
-    assert dest.read_bytes() == b"theirs" and _temporaries(tmp_path) == []
+    assert dest.read_bytes() == b"theirs" and _leftovers(tmp_path) == []
     with _files.command():
         _files.check_output_path(dest, force=True)  # --force: replaced
         _files.atomic_write_bytes(dest, b"ours")
@@ -449,14 +449,14 @@ def test_publication_never_replaces_a_file_that_appeared_meanwhile(tmp_path):
 
 def test_a_group_that_meets_an_appeared_file_publishes_nothing(tmp_path, monkeypatch):
     a, b = tmp_path / "m.onnx.data", tmp_path / "m.onnx"
-    real = _files.rename_noreplace
+    real = _temporaries.rename_noreplace
 
     def late(src, dst):  # b appears between the group's check and its move
         if Path(dst) == b:
             b.write_bytes(b"theirs")
         return real(src, dst)
 
-    monkeypatch.setattr(_files, "rename_noreplace", late)
+    monkeypatch.setattr(_temporaries, "rename_noreplace", late)
     with pytest.raises(OnnxcalError, match="m.onnx' was written by another run"):
         _files.atomic_write_files({a: b"weights", b: b"graph"}, replace=False)
     assert files_in(tmp_path) == {"m.onnx": b"theirs"}  # the new m.onnx.data was taken back
@@ -465,7 +465,7 @@ def test_a_group_that_meets_an_appeared_file_publishes_nothing(tmp_path, monkeyp
 @pytest.mark.parametrize("how", ["renameat2", "link", "locked check"])
 def test_no_replace_publication_on_every_path(tmp_path, monkeypatch, how):
     if how != "renameat2":  # a file system without RENAME_NOREPLACE
-        monkeypatch.setattr(_files, "_renameat2", lambda src, dst: False)
+        monkeypatch.setattr(_temporaries, "_renameat2", lambda src, dst: False)
     if how == "locked check":  # and without hard links (FAT, some network file systems)
         def no_link(src, dst):
             raise OSError(errno.EPERM, "Operation not permitted")
@@ -475,10 +475,10 @@ def test_no_replace_publication_on_every_path(tmp_path, monkeypatch, how):
     src.write_bytes(b"new")
     dst.write_bytes(b"old")
     with pytest.raises(FileExistsError):
-        _files.rename_noreplace(src, dst)
+        _temporaries.rename_noreplace(src, dst)
     assert dst.read_bytes() == b"old" and src.read_bytes() == b"new"
     dst.unlink()
-    _files.rename_noreplace(src, dst)
+    _temporaries.rename_noreplace(src, dst)
     assert dst.read_bytes() == b"new" and not src.exists() and dst.stat().st_nlink == 1
 
 
@@ -511,13 +511,13 @@ def test_a_late_writer_of_the_same_output_is_refused_and_the_first_file_kept(tmp
         writer.kill()
         writer.wait()
     assert writer.returncode == 2 and "was written by another run or program" in out
-    assert dest.read_bytes() == b"second" and _temporaries(tmp_path) == []
+    assert dest.read_bytes() == b"second" and _leftovers(tmp_path) == []
 
 
 def test_a_signal_during_a_group_is_delivered_after_it(tmp_path, monkeypatch):
     """Issue 11, 6a: SIGINT between the renames of a group left a new model beside an old report."""
     files = {tmp_path / name: name.encode() for name in ("model.onnx", "model.onnx.data", "report.json")}
-    real = _files.rename_noreplace
+    real = _temporaries.rename_noreplace
     moved = []
 
     def rename(src, dst):
@@ -526,7 +526,7 @@ def test_a_signal_during_a_group_is_delivered_after_it(tmp_path, monkeypatch):
             signal.raise_signal(signal.SIGINT)  # Ctrl-C after the first rename
         return real(src, dst)
 
-    monkeypatch.setattr(_files, "rename_noreplace", rename)
+    monkeypatch.setattr(_temporaries, "rename_noreplace", rename)
     with pytest.raises(KeyboardInterrupt):
         _files.atomic_write_files(files, replace=False)
     assert len(moved) == 3 and files_in(tmp_path) == {p.name: d for p, d in files.items()}  # all new
@@ -535,7 +535,7 @@ def test_a_signal_during_a_group_is_delivered_after_it(tmp_path, monkeypatch):
 def test_a_failed_rename_in_a_group_cleans_up_everything(tmp_path, monkeypatch):
     """Issue 11, 6a: the clean-up stopped at a descriptor closed twice ("Bad file descriptor")."""
     files = {tmp_path / "rep" / name: b"x" for name in ("a.png", "b.png", "c.png")}
-    real = _files.rename_noreplace
+    real = _temporaries.rename_noreplace
     calls = []
 
     def fail_second(src, dst):
@@ -544,7 +544,7 @@ def test_a_failed_rename_in_a_group_cleans_up_everything(tmp_path, monkeypatch):
             raise OSError(errno.EIO, os.strerror(errno.EIO))
         return real(src, dst)
 
-    monkeypatch.setattr(_files, "rename_noreplace", fail_second)
+    monkeypatch.setattr(_temporaries, "rename_noreplace", fail_second)
     with pytest.raises(OnnxcalError, match="cannot write '.*b.png'"):
         _files.atomic_write_files(files, replace=False)
     assert list(tmp_path.iterdir()) == []  # a.png taken back, temporaries and the new directory removed
@@ -560,4 +560,4 @@ def test_a_temporary_closes_its_descriptor_once_whatever_the_order(tmp_path, mon
     t.publish()
     t.discard()  # the clean-up after a signal that came between the rename and the bookkeeping
     t.discard()
-    assert closes.count(fd) == 1 and _temporaries(tmp_path) == [] and (tmp_path / "out.bin").read_bytes() == b"x"
+    assert closes.count(fd) == 1 and _leftovers(tmp_path) == [] and (tmp_path / "out.bin").read_bytes() == b"x"
