@@ -6,8 +6,9 @@ with Python's traceback or no word at all. This module lies outside the
 package, so it runs before any of that is imported: it installs handlers
 that turn either signal into a clean exit (one line, status 130 or 143),
 then hands over to ``onnxcal.cli.main``, whose own handlers remove the run's
-temporaries (see ``onnxcal/_signals.py``). ``python -m onnxcal`` imports the
-package first and is covered from the moment the CLI starts.
+temporaries (see ``onnxcal/_signals.py``), and ignores both signals once it
+returns, while the interpreter shuts down. ``python -m onnxcal`` imports the
+package first and is covered from the moment the CLI starts until it returns.
 """
 
 import signal
@@ -32,7 +33,14 @@ def main() -> int:
         name = exc.args[0] if exc.args and exc.args[0] in ("SIGINT", "SIGTERM") else "SIGINT"
         sys.stderr.write(f"onnxcal: interrupted by {name}; no output was written\n")
         return 128 + int(signal.Signals[name])
-    return cli.main()
+    try:
+        return cli.main()
+    finally:
+        # The run is over and the process exits next. Ignored signals stay ignored while Python
+        # shuts down (it resets only handlers of its own to the default action, which would
+        # end the process with no word after a complete run).
+        for s in (signal.SIGINT, signal.SIGTERM):
+            signal.signal(s, signal.SIG_IGN)
 
 
 if __name__ == "__main__":
