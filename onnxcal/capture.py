@@ -38,7 +38,7 @@ from typing import ClassVar
 import numpy as np
 import onnx
 
-from . import __version__
+from . import __version__, _signals
 from ._files import atomic_path, require_file
 from .data import Dataset, check_label_array, check_labels, match_inputs, read_npz
 from ._limits import check_memory, check_range, format_bytes
@@ -102,7 +102,8 @@ def onnxruntime():
     (measured with onnxruntime 1.32); a value the user set is kept.
     """
     os.environ.setdefault("ORT_DISABLE_TELEMETRY", "1")
-    import onnxruntime as ort
+    with _signals.deferred():  # a signal inside an extension module's import can crash it
+        import onnxruntime as ort
 
     return ort
 

@@ -37,6 +37,7 @@ from pathlib import Path
 
 import numpy as np
 
+from . import _signals
 from ._files import require_file
 from ._limits import check_memory, check_range, format_bytes
 from .errors import OnnxcalError, OnnxcalWarning, first_line
@@ -1221,7 +1222,7 @@ class ImageArray:
 
     def _open(self, name: str):
         """The image ``name``, opened (its header read): Pillow's errors as OnnxcalError."""
-        from PIL import Image
+        Image = _pillow()
 
         try:
             with warnings.catch_warnings():
@@ -1232,7 +1233,7 @@ class ImageArray:
             raise self._unreadable(name, exc) from exc
 
     def _unreadable(self, name: str, exc: Exception) -> OnnxcalError:
-        from PIL import Image
+        Image = _pillow()
 
         if isinstance(exc, (Image.DecompressionBombWarning, Image.DecompressionBombError)):
             return OnnxcalError(
@@ -1247,7 +1248,7 @@ class ImageArray:
 
     def _load(self, i: int) -> np.ndarray:
         """One image as uint8 (H, W, C), resized and cropped."""
-        from PIL import Image
+        Image = _pillow()
 
         name = self.files[i]
         img = self._open(name)
@@ -1288,6 +1289,14 @@ class ImageArray:
         return np.ascontiguousarray(batch, dtype=p.dtype)
 
 
+def _pillow():
+    """``PIL.Image``, imported with SIGINT and SIGTERM held back (an extension module's import
+    interrupted by a signal can crash the process)."""
+    with _signals.deferred():
+        from PIL import Image
+    return Image
+
+
 def shown(name: str | os.PathLike) -> str:
     r"""A file name as the user can read it: bytes that are not UTF-8 shown escaped.
 
@@ -1310,7 +1319,7 @@ def _eight_bits(img, name: str):
     32-bit integer or floating-point images (``I``, ``F``: some TIFFs) have
     no fixed range, so they are refused, naming the mode.
     """
-    from PIL import Image
+    Image = _pillow()
 
     if img.mode in _SIXTEEN_BITS:
         return Image.fromarray((np.asarray(img, dtype=np.uint16) >> 8).astype(np.uint8), mode="L")

@@ -34,7 +34,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
+from . import __version__, _signals
 from .capture import Capture
 from .fit import FitSummary, data_warnings
 from .metrics import DEFAULT_BINS, METRIC_FIELDS, METRIC_LABELS, Metrics, evaluate, reliability
@@ -385,8 +385,9 @@ def _axis_words(quantity: str) -> tuple[str, str, str]:
 
 
 def _new_figure(ncols: int):
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
+    with _signals.deferred():  # a signal inside an extension module's import can crash it
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+        from matplotlib.figure import Figure
 
     fig = Figure(figsize=FIGSIZE, dpi=DPI, layout="constrained")
     FigureCanvasAgg(fig)
