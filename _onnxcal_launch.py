@@ -20,7 +20,7 @@ SIGNALS = (signal.SIGINT, signal.SIGTERM)
 _received: list[str] = []
 
 
-def _note(signum, frame):
+def _note(signum: int, frame: object) -> None:
     _received.append(signal.Signals(signum).name)
 
 

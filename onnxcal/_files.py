@@ -112,7 +112,7 @@ def one_command(fn: F) -> F:
     """Decorate an ``api`` function: its checks and writes share one :class:`Command`."""
 
     @functools.wraps(fn)
-    def wrapper(*args, **kwargs):
+    def wrapper(*args: object, **kwargs: object) -> object:
         with command():
             return fn(*args, **kwargs)
 

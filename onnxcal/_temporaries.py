@@ -24,7 +24,7 @@ import stat
 import sys
 import time
 import warnings
-from collections.abc import Iterator, Set as AbstractSet
+from collections.abc import Callable, Iterator, Set as AbstractSet
 from pathlib import Path
 
 from . import _signals
@@ -204,7 +204,7 @@ def _renameat2(src: Path, dst: Path) -> bool:
 
 
 @functools.lru_cache(maxsize=1)
-def _libc_renameat2():
+def _libc_renameat2() -> Callable[..., int] | None:
     if not sys.platform.startswith("linux"):
         return None
     try:

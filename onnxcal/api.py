@@ -16,6 +16,7 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
+import onnx
 
 from . import capture as _capture
 from . import fit as _fit
@@ -491,7 +492,8 @@ def _record_checks(record: Record, patched, original_model, source_sha: str | No
 
 
 def _compare_as_it_runs(
-    patched, record: Record, dataset: Dataset, run: RunOptions, progress, logits, keep
+    patched: onnx.ModelProto, record: Record, dataset: Dataset, run: RunOptions, progress: ProgressFn | None,
+    logits: np.ndarray, keep: np.ndarray,
 ) -> list[Check]:
     """Checks (1)-(2) of ``calibrate``: the patched model run batch by batch, each batch compared
     with the captured logits of its rows (those in ``keep``) as it comes.
