@@ -17,6 +17,8 @@ from .errors import OnnxcalError
 
 DEFAULT_MAX_MODEL_BYTES = 8 << 30
 """Default of ``--max-model-bytes``: 8 GiB (the .onnx file plus its external data)."""
+MAX_SIZE = 1 << 63
+"""Sizes are below 8 EiB (what a file offset can address)."""
 
 _UNITS = {"": 1, "b": 1, "k": 1000, "kb": 1000, "m": 1000**2, "mb": 1000**2, "g": 1000**3, "gb": 1000**3,
           "t": 1000**4, "tb": 1000**4, "kib": 1 << 10, "mib": 1 << 20, "gib": 1 << 30, "tib": 1 << 40}
@@ -36,9 +38,12 @@ def parse_size(text: str | int, option: str = "--max-model-bytes") -> int:
             raise OnnxcalError(
                 f"{option} {str(text)!r} is not a size", "give bytes, or a number with KiB, MiB, GiB (e.g. 8GiB)"
             )
-        value = int(float(m.group(1)) * _UNITS[m.group(2).lower()])
-    if value <= 0:
-        raise OnnxcalError(f"{option} {text!r} is not a positive size", "e.g. 8GiB")
+        number = float(m.group(1)) * _UNITS[m.group(2).lower()]
+        if not number < MAX_SIZE:  # also inf, from a number too long for a float
+            raise OnnxcalError(f"{option} {str(text)!r} is out of range: give a size from 1 byte to 8 EiB", "e.g. 8GiB")
+        value = int(number)
+    if not 0 < value < MAX_SIZE:
+        raise OnnxcalError(f"{option} {text!r} is out of range: give a size from 1 byte to 8 EiB", "e.g. 8GiB")
     return value
 
 
@@ -121,3 +126,34 @@ def check_memory(needed: int, what: str, hint: str) -> None:
             f"{what} needs {format_bytes(needed)}, more than the {format_bytes(available)} of memory available",
             hint,
         )
+
+
+def check_range(value, low, high, option: str, what: str = "a number") -> None:
+    """Refuse an option's value outside [low, high] (``high`` None: no upper bound), with the range in the message.
+
+    >>> check_range(100000, 0, 64, "--threads", "a number of threads")
+    Traceback (most recent call last):
+    ...
+    onnxcal.errors.OnnxcalError: --threads 100000 is out of range: give a number of threads from 0 to 64
+    """
+    ok = value is not None and not isinstance(value, bool) and low <= value and (high is None or value <= high)
+    if not ok:  # NaN fails too
+        span = f"of at least {_plain(low)}" if high is None else f"from {_plain(low)} to {_plain(high)}"
+        raise OnnxcalError(f"{option} {value!r} is out of range: give {what} {span}")
+
+
+def _plain(x) -> str:
+    return str(x) if isinstance(x, int) else f"{x:g}"
+
+
+MAX_BINS = 100_000
+"""Largest ``--bins``: beyond it the bins hold a handful of samples even in a million."""
+
+
+def check_bins_memory(n_bins: int, num_classes: int, option: str = "--bins") -> None:
+    """Refuse ``n_bins`` when the per-class bin sums (a few float64 arrays of K x M) do not fit in memory."""
+    check_memory(
+        4 * 8 * int(num_classes) * int(n_bins),
+        f"{option} {n_bins} for {num_classes} classes (the per-class bin sums of the classwise ECE)",
+        f"lower {option}",
+    )

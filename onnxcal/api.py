@@ -16,6 +16,7 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
+import onnx
 
 from . import capture as _capture
 from . import fit as _fit
@@ -30,10 +31,12 @@ from ._files import (
     check_not_input,
     check_output_path,
     check_writable,
+    one_command,
     require_file,
     sha256_file,
 )
-from ._limits import DEFAULT_MAX_MODEL_BYTES, parse_size
+from ._limits import DEFAULT_MAX_MODEL_BYTES, MAX_BINS, check_bins_memory, check_memory, check_range, parse_size
+from ._numeric import check_in_dtype, max_abs
 from .capture import Capture, ProgressFn, RunOptions
 from .data import Dataset, DataSpec, check_selection, load_dataset
 from .errors import OnnxcalError, OnnxcalWarning
@@ -45,6 +48,7 @@ from .scaling import METHODS, MULTILABEL_MODES, Scaling, check_scaling, kind_of
 from .verify import Check, VerifyResult
 
 DEFAULT_LATENCY_RUNS = 100
+MAX_LATENCY_RUNS = 100_000
 
 
 @dataclass(frozen=True)
@@ -87,8 +91,12 @@ def _finite(cap: Capture, source: str, drop: bool) -> tuple[Capture, str | None]
     if not bad.count:
         return cap, None
     what = f"the logits in '{source}' contain NaN or Inf in {bad.describe(len(cap.logits))}"
+    if bad.count == len(cap.logits):
+        raise OnnxcalError(f"{what}: every row, so nothing is left to work on", "check the model and its inputs")
     if not drop:
         raise OnnxcalError(what, "check the model and the inputs of those rows, or pass --drop-nonfinite to leave them out")
+    rows = len(cap.logits) - bad.count
+    check_memory(rows * cap.logits.shape[1] * 4, f"a copy of the logits of the {rows} rows kept", "use --limit")
     kept = _capture.without_nonfinite(cap)
     return kept, f"dropped {len(cap.logits) - len(kept.logits)} rows: {what}"
 
@@ -132,6 +140,7 @@ def _run_options(batch_size: int, threads: int, optimization: str, provider: str
     return _capture.check_run_options(RunOptions(batch_size, threads, optimization, provider))
 
 
+@one_command
 def capture(
     model_path: str | os.PathLike,
     data: DataSource,
@@ -230,15 +239,21 @@ def _read_and_capture(
     return replace(cap, notes=read.notes)
 
 
+MAX_SEED = 2**32 - 1
+MAX_BOOTSTRAP = 10_000
+MAX_L2 = 1e6
+
+
 def check_fit_options(options: FitOptions) -> FitOptions:
-    """Validate the fit options given by the user.
+    """Validate the fit options given by the user, each against its range.
 
     Raises
     ------
     OnnxcalError
-        An unknown method or multi-label mode, a negative or non-finite
-        ``--l2``, a holdout fraction outside [0, 0.9], a negative number of
-        bootstrap replicates or fewer than 2 bins.
+        An unknown method or multi-label mode, or a number out of its range
+        (named in the message): ``--l2`` 0 to 1e6 (and 0 for temperature
+        scaling), ``--holdout`` 0 to 0.9, ``--seed`` 0 to 2^32 - 1,
+        ``--bootstrap`` 0 to 10 000, ``--bins`` 2 to 100 000.
     """
     if options.method not in METHODS:
         raise OnnxcalError(f"--method {options.method!r} is not one of: {', '.join(METHODS)}")
@@ -246,22 +261,18 @@ def check_fit_options(options: FitOptions) -> FitOptions:
         raise OnnxcalError(
             f"--multilabel {options.multilabel!r} is not one of: {', '.join(MULTILABEL_MODES)}"
         )
-    if not np.isfinite(options.l2) or options.l2 < 0:
-        raise OnnxcalError(f"--l2 {options.l2!r} is not a non-negative number", "use 0 for no penalty")
+    # 1e6 times the penalty pins w to 1 and b to 0 already (the NLL is a mean, of order 1)
+    check_range(options.l2, 0.0, MAX_L2, "--l2", "a penalty (0 for none)")
     if options.l2 > 0 and options.method == "temperature":
         raise OnnxcalError("--l2 applies to --method vector and platt, not temperature")
-    if not 0 <= options.holdout <= 0.9:
-        raise OnnxcalError(
-            f"--holdout {options.holdout!r} is not a fraction between 0 and 0.9",
-            "use e.g. 0.25, or 0 to score in-sample",
-        )
-    if options.bootstrap < 0:
-        raise OnnxcalError(f"--bootstrap {options.bootstrap} is negative", "use 0 to skip the intervals")
-    if options.n_bins < 2:
-        raise OnnxcalError(f"--bins {options.n_bins} is fewer than 2 bins")
+    check_range(options.holdout, 0.0, 0.9, "--holdout", "a fraction (0 scores in-sample)")
+    check_range(options.seed, 0, MAX_SEED, "--seed", "a seed")
+    check_range(options.bootstrap, 0, MAX_BOOTSTRAP, "--bootstrap", "a number of replicates (0 skips the intervals)")
+    check_range(options.n_bins, 2, MAX_BINS, "--bins", "a number of bins")
     return options
 
 
+@one_command
 def fit(
     source: Capture | str | os.PathLike | Sequence[str | os.PathLike],
     *,
@@ -294,6 +305,7 @@ def fit(
     cap = source if isinstance(source, Capture) else _capture.load_captures(inputs)
     where = cap.meta.data_source if isinstance(source, Capture) else ", ".join(map(str, inputs))
     cap, dropped = _finite(cap, where, drop_nonfinite)
+    check_bins_memory(options.n_bins, cap.logits.shape[1])
     summary = _with_note(_fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options), dropped)
     if out is not None:
         _fit.save_fit(out, summary)
@@ -351,8 +363,19 @@ class PatchOptions:
     output_holds: str | None = None
 
     def patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict, reading: dict | None = None,
-              fitted_on: str = ""):
-        """``graph.patch`` with these options; ``reading`` says how a capture read the model."""
+              fitted_on: str = "", largest_logit=None):
+        """``graph.patch`` with these options, its parameters checked against the dtype the graph
+        computes them in (and, given ``largest_logit``, against the logits seen; see ``_numeric``).
+        ``reading`` says how a capture read the model."""
+        with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):  # checked below
+            patched = self._patch(model, calibration, sha=sha, path=path, fit=fit, reading=reading, fitted_on=fitted_on)
+        for record in graph.read_records(patched):
+            dtype = record.compute_dtype or graph.temperature_dtype(patched, record) or "float32"
+            check_in_dtype(record.scaling, dtype, largest_logit=largest_logit)
+        return patched
+
+    def _patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict, reading: dict | None,
+               fitted_on: str):
         if reading is None:
             reading = {} if self.output_holds is None else {"holds": self.output_holds, "holds_from": "stated"}
         return graph.patch(
@@ -405,6 +428,7 @@ def _check_outputs(out, inputs: list, model_path, force: bool, limit: int) -> bo
     return bool(sources)
 
 
+@one_command
 def patch(
     model_path: str | os.PathLike,
     out: str | os.PathLike,
@@ -542,9 +566,21 @@ def _reference_checks(
     the record noted when the model was patched; the tolerance follows every
     dtype the values pass through in the patched graph (``site.dtypes``).
     """
-    dtypes = tuple(dict.fromkeys([site.dtype, site.output_dtype or site.dtype, *site.dtypes]))
-    post = graph.post.from_json(record.post)
-    checks = list(_verify.compare(rows, logits, record.scaling, record.activation, dtypes, post))
+    checks = list(_verify.compare(rows, logits, record.scaling, record.activation, _site_dtypes(site),
+                                  graph.post.from_json(record.post)))
+    return checks + _record_checks(record, patched, original_model, source_sha, file_only_sha)
+
+
+def _site_dtypes(site) -> tuple[str, ...]:
+    """Every dtype the calibrated values pass through (the tolerance follows the coarsest)."""
+    return tuple(dict.fromkeys([site.dtype, site.output_dtype or site.dtype, *site.dtypes]))
+
+
+def _record_checks(
+    record: Record, patched, original_model, source_sha: str | None, file_only_sha: str | None = None
+) -> list[Check]:
+    """Check (3): the record against the graph's parameters, and the original's sha256 against the record's."""
+    checks: list[Check] = []
     if record.folded and original_model is None:
         checks.append(
             _verify.skipped(
@@ -567,6 +603,41 @@ def _reference_checks(
     else:
         checks.append(_verify.source_check(record.source_sha256, source_sha, file_only_sha))
     return checks
+
+
+def _compare_as_it_runs(
+    patched: onnx.ModelProto, record: Record, dataset: Dataset, run: RunOptions, progress: ProgressFn | None,
+    logits: np.ndarray, keep: np.ndarray,
+) -> list[Check]:
+    """Checks (1)-(2) of ``calibrate``: the patched model run batch by batch, each batch compared
+    with the captured logits of its rows (those in ``keep``) as it comes.
+
+    Nothing of the patched outputs is kept beyond a batch, so the command
+    holds the logits and little else (docs/benchmarks.md, calibrate's memory).
+    """
+    site = graph.find_scores(patched, record.output)
+    plan = _capture.plan_run(graph.expose(patched, [site.tensor]), dataset, [site.tensor], run)
+    post = graph.post.from_json(record.post)
+    comparison = _verify.Comparison(record.scaling, record.activation, _site_dtypes(site), post)
+    done = 0
+    batches = _capture.run_batches(plan, dataset, progress=progress, description="running patched model")
+    for _, _, (values,) in batches:
+        rows = _capture.output_rows(values, site)
+        span = slice(done, done + len(rows))
+        done += len(rows)
+        if done > len(logits):
+            break
+        mask = keep[span]
+        if mask.all():
+            comparison.add(rows, logits[span])
+        else:
+            comparison.add(rows[mask], logits[span][mask])
+    if done != len(logits):
+        raise OnnxcalError(
+            f"the patched model gives {done} rows of scores but the original gave {len(logits)} on '{dataset.source}'",
+            "report this with the model's inspect output",
+        )
+    return list(comparison.checks())
 
 
 def _source_site(base, record: Record):
@@ -714,10 +785,8 @@ def _check_gate(max_ece, max_nll, min_accuracy, n_bins, max_latency_ratio, laten
         raise OnnxcalError(
             f"--max-latency-ratio {max_latency_ratio!r} is not a positive number", "use e.g. 1.05 for 5 % slower"
         )
-    if latency_runs < 1:
-        raise OnnxcalError(f"--latency-runs {latency_runs} is not a positive number of runs")
-    if n_bins < 2:
-        raise OnnxcalError(f"--bins {n_bins} is fewer than 2 bins")
+    check_range(latency_runs, 1, MAX_LATENCY_RUNS, "--latency-runs", "a number of runs")
+    check_range(n_bins, 2, MAX_BINS, "--bins", "a number of bins")
 
 
 def _latency(base, patched, dataset: Dataset, run: RunOptions, runs: int, max_ratio, against: str) -> Check:
@@ -767,6 +836,7 @@ def _threshold_checks(
             )
     if keep is not None:
         logits, labels = logits[keep], labels[keep]
+    check_bins_memory(n_bins, logits.shape[1])
     return _verify.threshold_checks(evaluate(logits, labels, 1.0, n_bins), **limits)
 
 
@@ -786,11 +856,17 @@ def _finite_outputs(rows: np.ndarray, reference, dataset: Dataset, drop: bool) -
         f"the patched model's outputs{'' if reference is None else ' or the reference logits'} on "
         f"'{dataset.source}' hold NaN or Inf in {found.describe(len(rows))}"
     )
+    if bad.all():  # a check over no rows is no pass
+        raise OnnxcalError(
+            f"{what}: every row, so there is nothing left to check ({len(rows)} of {len(rows)} rows would be dropped)",
+            "check the patched model (its parameters, its dtype) and the data",
+        )
     if not drop:
         raise OnnxcalError(what, "check those rows of the data, or pass --drop-nonfinite to leave them out")
     return ~bad, f"dropped {int(bad.sum())} rows: {what}"
 
 
+@one_command
 def verify(
     patched_path: str | os.PathLike,
     data: DataSource,
@@ -1061,6 +1137,7 @@ def _check_report_scaling(scaling: Scaling, cap: Capture, source_sha: str | None
         )
 
 
+@one_command
 def report(
     captures: Capture | str | os.PathLike | Sequence[str | os.PathLike],
     out: str | os.PathLike,
@@ -1116,8 +1193,8 @@ def report(
     """
     if sum(x is not None for x in (temperature, fit, model)) != 1:
         raise OnnxcalError("give exactly one of --temperature, --fit and --model")
-    if n_bins is not None and n_bins < 2:
-        raise OnnxcalError(f"--bins {n_bins} is fewer than 2 bins")
+    if n_bins is not None:
+        check_range(n_bins, 2, MAX_BINS, "--bins", "a number of bins")
     formats = _check_formats(formats)
     limit = _max_bytes(max_model_bytes)
     capture_paths = [] if isinstance(captures, Capture) else _as_paths(captures)
@@ -1140,6 +1217,9 @@ def report(
         source_sha, what = record.source_sha256, f"the calibration in '{model}'"
         calibrated = {"name": Path(model).name, "path": str(model), "sha256": graph.model_sha256(model)}
     _check_report_scaling(scaling, cap, source_sha, what)
+    check_in_dtype(scaling, "float64", largest_logit=max_abs(cap.logits), computes="the report computes in",
+                   hint="check the parameters")
+    check_bins_memory(n_bins or (summary.options.n_bins if summary is not None else DEFAULT_BINS), cap.logits.shape[1])
     names = _class_names(class_names, cap.logits.shape[1]) or _capture_names(cap)
     content = _report.build(
         cap, scaling, summary=summary, class_names=names, n_bins=n_bins, calibrated=calibrated
@@ -1193,6 +1273,7 @@ def _record_of(model_path, limit: int) -> Record:
 # calibrate
 
 
+@one_command
 def calibrate(
     model_path: str | os.PathLike,
     data: DataSource,
@@ -1251,16 +1332,16 @@ def calibrate(
     full = cap
     cap, dropped = _finite(cap, dataset.source, drop_nonfinite)
     _warn_nonfinite_inputs(full, dataset.source)
+    check_bins_memory(options.n_bins, cap.logits.shape[1])
     summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options)
     for note in (*cap.notes, dropped):
         summary = _with_note(summary, note)
     patched = patching.patch(model, summary.scaling, sha=sha, path=model_path, fit=summary.to_dict(),
-                             reading=_reading.patch_reading(cap.meta.to_dict()))
+                             reading=_reading.patch_reading(cap.meta.to_dict()), largest_logit=max_abs(cap.logits))
     record = graph.read_record(patched, cap.meta.output)
-    site = graph.find_scores(patched, record.output)
-    rows = _run_output(patched, site, dataset, run, progress)
+    checks = _compare_as_it_runs(patched, record, dataset, run, progress, full.logits, keep)
     source_sha = sha if len(graph.read_records(patched)) == 1 else record.source_sha256  # other heads: the original's
-    checks = _reference_checks(rows[keep], site, record, cap.logits, patched, model, source_sha)
+    checks += _record_checks(record, patched, model, source_sha)
     checks.append(_reading.identity(model, patched, (record,), dataset, run, progress))
     result = VerifyResult(checks=tuple(checks), n=dataset.n, original=str(model_path))
     files: dict[Path, bytes] = {}

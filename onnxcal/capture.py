@@ -38,10 +38,10 @@ from typing import ClassVar
 import numpy as np
 import onnx
 
-from . import __version__
+from . import __version__, _signals
 from ._files import atomic_path, require_file
 from .data import Dataset, check_label_array, check_labels, match_inputs, read_npz
-from ._limits import check_memory, format_bytes
+from ._limits import check_memory, check_range, format_bytes
 from .errors import OnnxcalError, OnnxcalWarning, first_line
 from .graph import ScoreSite, expose_scores, find_scores, fit_kind, np_dtype, tensor_spec
 from .graph.external import ORT_FOLDER_OPTION, for_onnxruntime
@@ -85,17 +85,37 @@ class RunOptions:
     provider: str = CPU
 
 
-def check_run_options(options: RunOptions) -> RunOptions:
-    """Validate run options, with errors that name the option."""
-    import onnxruntime as ort
+MAX_BATCH = 1 << 24
+"""Largest ``--batch-size`` (16 777 216); the memory check usually refuses far less."""
 
-    if isinstance(options.batch_size, bool) or options.batch_size < 1:
-        raise OnnxcalError(f"--batch-size {options.batch_size} is not a positive number of samples")
-    if options.threads < 0:
-        raise OnnxcalError(
-            f"--threads {options.threads} is negative",
-            "give a number of threads, or 0 for onnxruntime's default",
-        )
+
+def max_threads() -> int:
+    """Largest ``--threads``: 4 per core of this machine, at least 64 (onnxruntime crashes creating 100 000)."""
+    return max(64, 4 * (os.cpu_count() or 1))
+
+
+def onnxruntime():
+    """onnxruntime, imported with its telemetry off.
+
+    Left on, onnxruntime writes a device id and a database under
+    ``~/.cache/Microsoft/DeveloperTools`` (or ``$XDG_CACHE_HOME``) when it
+    starts; onnxcal writes nothing but the outputs the user names.
+    ``ORT_DISABLE_TELEMETRY`` must be set before onnxruntime is first imported
+    (measured with onnxruntime 1.32); a value the user set is kept.
+    """
+    os.environ.setdefault("ORT_DISABLE_TELEMETRY", "1")
+    with _signals.deferred():  # a signal inside an extension module's import can crash it
+        import onnxruntime as ort
+
+    return ort
+
+
+def check_run_options(options: RunOptions) -> RunOptions:
+    """Validate run options, with errors that name the option and its range."""
+    ort = onnxruntime()
+    check_range(options.batch_size, 1, MAX_BATCH, "--batch-size", "a number of samples")
+    check_range(options.threads, 0, max_threads(), "--threads",
+                "a number of threads (0: onnxruntime's default, one per core)")
     if options.optimization not in OPTIMIZATION_LEVELS:
         raise OnnxcalError(
             f"--optimization {options.optimization!r} is not a graph optimisation level",
@@ -262,11 +282,12 @@ def make_session(model: onnx.ModelProto, options: RunOptions | None = None):
     Weights the model keeps in external data are read by onnxruntime from
     their files (never serialised into one message, which could not exceed 2 GiB).
     """
-    import onnxruntime as ort
-
+    ort = onnxruntime()
     options = options or RunOptions()
     opts = ort.SessionOptions()
-    opts.log_severity_level = 3
+    # FATAL only: a run-time failure is reported once, as onnxcal's one line (rows and node),
+    # not also by onnxruntime's own coloured log lines on stderr
+    opts.log_severity_level = 4
     if options.threads:
         opts.intra_op_num_threads = options.threads
     opts.graph_optimization_level = getattr(
@@ -291,6 +312,29 @@ def make_session(model: onnx.ModelProto, options: RunOptions | None = None):
             f"onnxruntime cannot load the model: {first_line(exc)}",
             "check that the model runs in onnxruntime on CPU",
         ) from exc
+
+
+_NODE_FAILED = re.compile(r"while running (\w+) node\. Name:'(.*?)' Status Message: (?:\S+:\d+ )?(?:\S+\(.*?\) )?(.*)")
+
+
+def runtime_failure(exc: BaseException) -> str:
+    """onnxruntime's run-time error as the start of one sentence: which node failed, and why.
+
+    onnxruntime words it "... Non-zero status code returned while running
+    Reshape node. Name:'r' Status Message: <file>:<line> <function> <what>"
+    (onnxruntime 1.2x-1.3x, measured); when the text has another form the
+    first line of it is quoted as it is.
+
+    >>> runtime_failure(RuntimeError("[ONNXRuntimeError] : 1 : FAIL : Non-zero status code returned while "
+    ...                 "running Div node. Name:'int_div' Status Message: element_wise_ops.cc:703 Compute "
+    ...                 "Integer division by zero"))
+    "node 'int_div' (Div) failed (Compute Integer division by zero)"
+    """
+    m = _NODE_FAILED.search(first_line(exc, limit=10_000))
+    if m is None:
+        return f"onnxruntime failed ({first_line(exc)})"
+    why = m.group(3).strip() or "no reason given"
+    return f"node '{m.group(2)}' ({m.group(1)}) failed ({why if len(why) <= 300 else why[:297] + '...'})"
 
 
 def _nodes(graph: onnx.GraphProto) -> Iterator[onnx.NodeProto]:
@@ -575,8 +619,7 @@ def run_batch(
     except Exception as exc:  # onnxruntime raises its own exception types
         rows = dataset.row_numbers()
         raise OnnxcalError(
-            f"onnxruntime failed on rows {int(rows[start])}..{int(rows[stop - 1])} of "
-            f"'{dataset.source}': {first_line(exc)}",
+            f"{runtime_failure(exc)} on rows {int(rows[start])}..{int(rows[stop - 1])} of '{dataset.source}'",
             "check that the data matches the model's inputs",
         ) from exc
     return [np.asarray(o)[:count] if plan.pad is not None else np.asarray(o) for o in outs]

@@ -1,7 +1,8 @@
 """Command line: parse, call ``onnxcal.api``, print. Nothing else imports this module.
 
 Exit status: 0 success, 1 a verification check failed, 2 bad input (one line
-on stderr; ``onnxcal --debug CMD ...`` shows the traceback), 130 interrupted.
+on stderr; ``onnxcal --debug CMD ...`` shows the traceback), 130 interrupted
+by SIGINT (Ctrl-C), 143 by SIGTERM; the run's temporaries are removed first.
 """
 
 from __future__ import annotations
@@ -10,6 +11,7 @@ import contextlib
 import functools
 import inspect as _inspect
 import json
+import os
 import struct
 import sys
 import time
@@ -34,7 +36,7 @@ from rich.progress import (
 from rich.table import Table
 from rich.text import Text
 
-from . import __version__, api
+from . import __version__, _files, _runenv, _signals, api
 from .capture import CPU, DEFAULT_BATCH, OPTIMIZATION_LEVELS, ProgressFn
 from .data import IMAGE_OPTIONS, DataSpec, Selection, parse_shard
 from .errors import OnnxcalError, OnnxcalWarning
@@ -82,6 +84,8 @@ def printable(text: str) -> str:
 
 
 def _escaped(o: int) -> str:
+    if 0xDC80 <= o <= 0xDCFF:  # a byte of a file name that is not UTF-8 (Python's surrogateescape)
+        return f"\\x{o - 0xDC00:02x}"
     return f"\\x{o:02x}" if o < 0x100 else f"\\u{o:04x}" if o < 0x10000 else f"\\U{o:08x}"
 
 
@@ -167,20 +171,21 @@ MultilabelOpt = Annotated[
     ),
 ]
 L2Opt = Annotated[
-    float, typer.Option("--l2", help="Penalty l2*(sum (w-1)^2 + sum b^2) added to the NLL (vector, platt).")
+    float,
+    typer.Option("--l2", help="Penalty l2*(sum (w-1)^2 + sum b^2) added to the NLL (vector, platt; 0 to 1e6)."),
 ]
 HoldoutOpt = Annotated[
     float,
     typer.Option(
         "--holdout",
-        help="Fraction held out (stratified) to score the fit on; 0 scores in-sample.",
+        help="Fraction held out (stratified) to score the fit on, 0 to 0.9; 0 scores in-sample.",
     ),
 ]
-SeedOpt = Annotated[int, typer.Option("--seed", help="Seed of the holdout split and the bootstrap.")]
+SeedOpt = Annotated[int, typer.Option("--seed", help="Seed of the holdout split and the bootstrap (0 to 2^32-1).")]
 BootstrapOpt = Annotated[
-    int, typer.Option("--bootstrap", help="Bootstrap replicates for 95% intervals; 0 skips them.")
+    int, typer.Option("--bootstrap", help="Bootstrap replicates for 95% intervals (0 to 10000); 0 skips them.")
 ]
-BinsOpt = Annotated[int, typer.Option("--bins", help="Bins of the ECEs.")]
+BinsOpt = Annotated[int, typer.Option("--bins", help="Bins of the ECEs (2 to 100000).")]
 MaxModelBytesOpt = Annotated[
     str,
     typer.Option(
@@ -226,16 +231,17 @@ _SHARED_OPTIONS = (
             "CSV columns fed to the model, in order (default: all but the label).", metavar="A,B,..."),
     _option("classes", Optional[Path], None, "--classes",
             "Class names, one per line, in the model's class order; string labels are mapped through it."),
-    _option("limit", Optional[int], None, "--limit", "Use at most N samples.", metavar="N"),
+    _option("limit", Optional[int], None, "--limit", "Use at most N samples (N >= 1).", metavar="N"),
     _option("shuffle_seed", Optional[int], None, "--shuffle-seed",
-            "Take --limit/--shard samples from a random permutation with this seed.", metavar="SEED"),
+            "Take --limit/--shard samples from a random permutation with this seed (0 to 2^32-1).", metavar="SEED"),
     _option("shard", Optional[str], None, "--shard",
             "Capture the I-th of N deterministic slices (1 <= I <= N); 'onnxcal fit' merges the files.",
             metavar="I/N"),
     _option("preprocess", Optional[Path], None, "--preprocess",
             "Image options below as a TOML or JSON file (options given here win)."),
-    _option("resize", Optional[int], None, "--resize", "Image: resize the shorter side to N pixels.", metavar="N"),
-    _option("crop", Optional[str], None, "--crop", "Image: centre crop.", metavar="N|HxW"),
+    _option("resize", Optional[int], None, "--resize", "Image: resize the shorter side to N pixels (1 to 65535).",
+            metavar="N"),
+    _option("crop", Optional[str], None, "--crop", "Image: centre crop (sides of 1 to 65535 pixels).", metavar="N|HxW"),
     _option("scale", Optional[bool], None, "--scale/--no-scale",
             "Image: divide pixels by 255 (default: yes for float inputs).", show_default=False),
     _option("mean", Optional[str], None, "--mean", "Image: per-channel mean, subtracted after scaling.",
@@ -249,8 +255,9 @@ _SHARED_OPTIONS = (
     _option("dtype", Optional[str], None, "--dtype", "Image: input dtype (default: the model's).", metavar="DTYPE"),
     _option("interpolation", Optional[str], None, "--interpolation",
             "Image: resize filter: nearest, bilinear (default), bicubic, lanczos.", metavar="FILTER"),
-    _option("batch_size", int, DEFAULT_BATCH, "--batch-size", "Samples per onnxruntime call.", min=1),
-    _option("threads", int, 0, "--threads", "onnxruntime intra-op threads (0: its default).", min=0),
+    _option("batch_size", int, DEFAULT_BATCH, "--batch-size", "Samples per onnxruntime call (1 to 16777216)."),
+    _option("threads", int, 0, "--threads",
+            "onnxruntime intra-op threads (0: its default; at most 4 per core, or 64)."),
     _option("optimization", str, "all", "--optimization",
             f"Graph optimisation level: {', '.join(OPTIMIZATION_LEVELS)}."),
     _option("provider", str, CPU, "--provider", "onnxruntime execution provider."),
@@ -725,7 +732,7 @@ def verify(
         typer.Option("--max-latency-ratio", help="Fail when median patched / original latency is above this (implies --latency)."),
     ] = None,
     latency_runs: Annotated[
-        int, typer.Option("--latency-runs", help="Timed runs of each model for --latency.", min=1)
+        int, typer.Option("--latency-runs", help="Timed runs of each model for --latency (1 to 100000).")
     ] = api.DEFAULT_LATENCY_RUNS,
     junit: Annotated[
         Optional[Path], typer.Option("--junit", help="Also write the checks as JUnit XML to this file.")
@@ -803,7 +810,9 @@ def report(
         typer.Option("--classes", help="Class names, one per line, in the model's class order "
                      "(default: those recorded in the capture)."),
     ] = None,
-    bins: Annotated[Optional[int], typer.Option("--bins", help="Bins (default: the fit's, else 15).")] = None,
+    bins: Annotated[
+        Optional[int], typer.Option("--bins", help="Bins, 2 to 100000 (default: the fit's, else 15).")
+    ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
@@ -921,34 +930,57 @@ def _one_line(text: str) -> str:
     return " ".join(str(text).split())
 
 
-_default_showwarning = warnings.showwarning
-
-
 def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
-    """OnnxcalWarning as one 'warning:' line on stderr; others as Python shows them."""
+    """Every warning as one 'warning:' line on stderr: onnxcal's as they are, a library's
+    (numpy's RuntimeWarning, say) with its category, without Python's source line."""
     if issubclass(category, OnnxcalWarning):
         _warn([_one_line(message)])
     else:
-        _default_showwarning(message, category, filename, lineno, file, line)
+        _warn([f"{category.__name__}: {_one_line(message)}"])
+
+
+def _written(paths: Sequence[Path]) -> str:
+    """What an interrupted run leaves: nothing, or the complete outputs it published before the signal."""
+    if not paths:
+        return "no output was written"
+    shown = ", ".join(f"'{p}'" for p in paths[:3]) + (f" and {len(paths) - 3} more" if len(paths) > 3 else "")
+    return f"the outputs were complete and written before it stopped ({shown})"
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Run the CLI; return the exit status (the console script exits with it)."""
+    """Run the CLI; return the exit status (the console script exits with it).
+
+    SIGINT and SIGTERM stop the run like an error (``_signals``): its
+    temporaries are removed, one line is printed, and the status is 130 or
+    143. Whatever ends the run, the line that reports it is printed with
+    both signals ignored, so it is never cut short by a second one.
+    """
     args = list(sys.argv[1:] if argv is None else argv)
     debug = "--debug" in args
     if debug:  # accept --debug anywhere on the line
         args = ["--debug"] + [a for a in args if a != "--debug"]
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("always", OnnxcalWarning)
-            warnings.showwarning = _show_warning
-            rv = app(args=args, prog_name="onnxcal", standalone_mode=False)
-    except OnnxcalError as exc:
-        if debug:
-            traceback.print_exc()
+    with _signals.interrupting(), _files.command() as run:
+        try:
+            with warnings.catch_warnings(), _runenv.private_caches(), _runenv.one_line_logging(lambda m: _warn([m])):
+                warnings.simplefilter("always", OnnxcalWarning)
+                warnings.showwarning = _show_warning
+                rv = app(args=args, prog_name="onnxcal", standalone_mode=False)
+        except BaseException as exc:  # noqa: B036 - every ending is reported on one line
+            _signals.stopping()
+            return _report_failure(exc, debug, run.written)
+    return rv if isinstance(rv, int) else 0
+
+
+def _report_failure(exc: BaseException, debug: bool, written: Sequence[Path]) -> int:
+    """Print the one line that says how the run ended; return the exit status."""
+    if isinstance(exc, SystemExit):  # typer.Exit and --version end the run normally
+        return exc.code if isinstance(exc.code, int) else 0
+    if debug and not isinstance(exc, typer.TyperException):
+        traceback.print_exception(exc)
+    if isinstance(exc, OnnxcalError):
         err.print(f"onnxcal: error: {_one_line(exc)}", soft_wrap=True)
         return exc.exit_code
-    except typer.TyperException as exc:  # bad usage: the parser's message, on one line too
+    if isinstance(exc, typer.TyperException):  # bad usage: the parser's message, on one line too
         if type(exc).__name__ == "NoArgsIsHelpError":  # 'onnxcal' alone: the help
             exc.show()
             return 2
@@ -957,28 +989,25 @@ def main(argv: Sequence[str] | None = None) -> int:
         see = f"; see '{ctx.command_path} --help'" if ctx is not None else ""
         err.print(f"onnxcal: error: {_one_line(message).rstrip('.')}{see}", soft_wrap=True)
         return 2
-    except (KeyboardInterrupt, typer.Abort):
-        err.print("onnxcal: interrupted; no output was written")
-        return 130
-    except OSError as exc:  # a file error the api did not word (e.g. a file removed meanwhile)
-        if debug:
-            traceback.print_exc()
-        where = f" '{exc.filename}'" if exc.filename else ""
+    if isinstance(exc, (_signals.Interrupted, KeyboardInterrupt, typer.Abort)):
+        cause = exc.__cause__ if isinstance(exc, typer.Abort) and exc.__cause__ is not None else exc
+        name = _signals.name_of(cause)
+        err.print(f"onnxcal: interrupted by {name}; {_written(written)}", soft_wrap=True)
+        return _signals.exit_status(name)
+    if isinstance(exc, OSError):  # a file error the api did not word (e.g. a file removed meanwhile)
+        where = f" '{printable(os.fsdecode(exc.filename))}'" if exc.filename else ""
         err.print(
             f"onnxcal: error: cannot access{where}: {exc.strerror or exc}; check the path and its permissions",
             soft_wrap=True,
         )
         return 2
-    except Exception as exc:  # an unexpected failure: still one line unless --debug
-        if debug:
-            traceback.print_exc()
-        err.print(
-            f"onnxcal: internal error: {type(exc).__name__}: {_one_line(exc)} "
-            "(rerun with --debug and report it)",
-            soft_wrap=True,
-        )
-        return 2
-    return rv if isinstance(rv, int) else 0
+    if not isinstance(exc, Exception):
+        raise exc
+    err.print(  # an unexpected failure: still one line unless --debug
+        f"onnxcal: internal error: {type(exc).__name__}: {_one_line(exc)} (rerun with --debug and report it)",
+        soft_wrap=True,
+    )
+    return 2
 
 
 if __name__ == "__main__":

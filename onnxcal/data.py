@@ -37,9 +37,10 @@ from pathlib import Path
 
 import numpy as np
 
+from . import _signals
 from ._files import require_file
-from ._limits import check_memory, format_bytes
-from .errors import OnnxcalError, first_line
+from ._limits import check_memory, check_range, format_bytes
+from .errors import OnnxcalError, OnnxcalWarning, first_line
 from .graph import TensorSpec
 
 LABELS_KEY = "labels"
@@ -190,12 +191,15 @@ def parse_shard(text: str) -> tuple[int, int]:
     return i, n
 
 
+MAX_SEED = 2**32 - 1
+
+
 def check_selection(selection: Selection) -> Selection:
-    """Validate a selection's numbers, with errors naming the option."""
-    if selection.limit is not None and selection.limit < 1:
-        raise OnnxcalError(f"--limit {selection.limit} is not a positive number of samples")
-    if selection.shuffle_seed is not None and selection.shuffle_seed < 0:
-        raise OnnxcalError(f"--shuffle-seed {selection.shuffle_seed} is negative", "give a seed >= 0")
+    """Validate a selection's numbers, with errors naming the option and its range."""
+    if selection.limit is not None:
+        check_range(selection.limit, 1, None, "--limit", "a number of samples")
+    if selection.shuffle_seed is not None:
+        check_range(selection.shuffle_seed, 0, MAX_SEED, "--shuffle-seed", "a seed")
     if selection.shard is not None:
         parse_shard(f"{selection.shard[0]}/{selection.shard[1]}")
     return selection
@@ -767,6 +771,25 @@ def _numeric_column(cells: np.ndarray, path: Path, name: str, j: int, lines: lis
         raise
 
 
+def _check_fits(values: np.ndarray, dtype: np.dtype, where: str, lines: list[int], input_name: str) -> None:
+    """Refuse finite values the model input's dtype cannot hold (float16 above 65504, int8 above 127, ...).
+
+    Cast, they would become Inf or wrap around without a word.
+    """
+    info = np.finfo(dtype) if dtype.kind == "f" else np.iinfo(dtype) if dtype.kind in "iu" else None
+    if info is None or dtype == np.float64:
+        return
+    low, high = float(info.min), float(info.max)
+    bad = np.isfinite(values) & ((values < low) | (values > high))
+    if bad.any():
+        i = int(np.argmax(bad))
+        raise OnnxcalError(
+            f"line {lines[i]}, {where} holds {values[i]:g}, outside what model input '{input_name}' "
+            f"({dtype.name}) can hold ({low:g} to {high:g})",
+            "rescale that column as the model was trained, or check the data",
+        )
+
+
 def load_csv(
     path: str | os.PathLike,
     model_input: TensorSpec,
@@ -837,7 +860,9 @@ def load_csv(
     x = np.empty((len(rows), len(features)), dtype=dtype if dtype.kind == "f" else np.float64)
     for col, name in enumerate(features):
         j = header.index(name)
-        x[:, col] = _numeric_column(_column(rows, j), p, name, j, lines)
+        values = _numeric_column(_column(rows, j), p, name, j, lines)
+        _check_fits(values, dtype, f"column '{name}' of '{p}'", lines, model_input.name)
+        x[:, col] = values
     if dtype.kind in "iub":
         whole = np.isfinite(x) & (x == np.round(x))
         if not whole.all():
@@ -892,6 +917,14 @@ IMAGE_OPTIONS = (
 """Preprocessing keys, as ``--resize`` etc. on the command line or keys of the file."""
 
 _INTERPOLATION = ("nearest", "bilinear", "bicubic", "lanczos")
+MAX_SIDE = 65535
+"""Largest ``--resize`` and ``--crop`` side in pixels (PNG and most formats stop there or near)."""
+
+ENLARGE_WARNING = 8
+"""A --resize that enlarges an image more than this many times per side is warned about (once)."""
+
+_SIXTEEN_BITS = {"I;16", "I;16L", "I;16B", "I;16N"}
+_UNKNOWN_RANGE = {"I": "32-bit integer", "F": "32-bit floating-point", "I;32": "32-bit integer"}
 
 
 @dataclass(frozen=True)
@@ -981,7 +1014,7 @@ def _image_value(key: str, value, where: str):
 
     if key == "resize":
         n = _as_int(value)
-        return n if n is not None and n > 0 else fail("a positive number of pixels")
+        return n if n is not None and 0 < n <= MAX_SIDE else fail(f"a number of pixels from 1 to {MAX_SIDE}")
     if key == "crop":
         if isinstance(value, str):
             parts = re.split(r"[x,]", value.lower())
@@ -990,8 +1023,8 @@ def _image_value(key: str, value, where: str):
         else:
             parts = [value]
         dims = [_as_int(v) for v in parts]
-        if len(dims) not in (1, 2) or any(d is None or d <= 0 for d in dims):
-            fail("a size N or HxW in pixels")
+        if len(dims) not in (1, 2) or any(d is None or not 0 < d <= MAX_SIDE for d in dims):
+            fail(f"a size N or HxW in pixels, each from 1 to {MAX_SIDE}")
         return (dims[0], dims[-1])
     if key == "scale":
         text = str(value).strip().lower()
@@ -1104,7 +1137,8 @@ class ImageArray:
 
     def __init__(self, root: Path, files: Sequence[str], plan: _ImagePlan, spec: TensorSpec):
         self.root, self.files, self.plan, self.spec = root, list(files), plan, spec
-        height, width = self._load(0).shape[:2]
+        self._warned = False
+        height, width = self._planned_size(0)  # from the header: nothing decoded before the memory checks
         self._check_size(height, width)
         self.shape_hw = (height, width)
         c = plan.channels
@@ -1146,47 +1180,92 @@ class ImageArray:
             "often a little larger than the crop)",
         )
 
-    def _load(self, i: int) -> np.ndarray:
-        """One image as uint8 (H, W, C), resized and cropped."""
-        from PIL import Image
-
-        name = self.files[i]
+    def _resized(self, name: str, w: int, h: int) -> tuple[int, int]:
+        """(width, height) after --resize, checked against the memory one such image needs."""
         o = self.plan.options
+        if o.resize is None:
+            return w, h
+        s = o.resize / min(w, h)
+        size = (max(1, round(w * s)), max(1, round(h * s)))
+        what = f"image '{shown(name)}' ({h}x{w}, height x width) resized by --resize {o.resize} to {size[1]}x{size[0]}"
+        needs = size[0] * size[1] * self.plan.channels * (1 + self.plan.dtype.itemsize)
+        check_memory(needs, what, "lower --resize to the size the model takes")
+        if s > ENLARGE_WARNING and not self._warned:
+            self._warned = True
+            warnings.warn(
+                OnnxcalWarning(f"{what}, {s:.0f} times its size in each direction ({format_bytes(needs)} while it "
+                               "is preprocessed); check --resize, the shorter side after resizing in pixels"),
+                stacklevel=2,
+            )
+        return size
+
+    def _crop_box(self, name: str, w: int, h: int) -> tuple[int, int, int, int] | None:
+        o = self.plan.options
+        if o.crop is None:
+            return None
+        ch, cw = o.crop
+        if ch > h or cw > w:
+            raise OnnxcalError(
+                f"--crop {ch}x{cw} is larger than image '{shown(name)}' ({h}x{w} after --resize)",
+                "lower --crop or raise --resize",
+            )
+        left, top = (w - cw) // 2, (h - ch) // 2
+        return left, top, left + cw, top + ch
+
+    def _planned_size(self, i: int) -> tuple[int, int]:
+        """(height, width) of image ``i`` after preprocessing, from its header alone."""
+        name = self.files[i]
+        with self._open(name) as img:
+            w, h = self._resized(name, *img.size)
+        box = self._crop_box(name, w, h)
+        return (h, w) if box is None else (box[3] - box[1], box[2] - box[0])
+
+    def _open(self, name: str):
+        """The image ``name``, opened (its header read): Pillow's errors as OnnxcalError."""
+        Image = _pillow()
+
         try:
             with warnings.catch_warnings():
                 # Pillow warns above MAX_IMAGE_PIXELS and raises at twice that; refuse both
                 warnings.simplefilter("error", Image.DecompressionBombWarning)
-                img = Image.open(self.root / name)
-            with img:
-                img = img.convert("L" if self.plan.channels == 1 else "RGB")
-                if o.resize is not None:
-                    w, h = img.size
-                    s = o.resize / min(w, h)
-                    size = (max(1, round(w * s)), max(1, round(h * s)))
-                    img = img.resize(size, getattr(Image.Resampling, o.interpolation.upper()))
-                if o.crop is not None:
-                    ch, cw = o.crop
-                    w, h = img.size
-                    if ch > h or cw > w:
-                        raise OnnxcalError(
-                            f"--crop {ch}x{cw} is larger than image '{name}' ({h}x{w} after --resize)",
-                            "lower --crop or raise --resize",
-                        )
-                    left, top = (w - cw) // 2, (h - ch) // 2
-                    img = img.crop((left, top, left + cw, top + ch))
-                arr = np.asarray(img, dtype=np.uint8)
-        except (Image.DecompressionBombWarning, Image.DecompressionBombError) as exc:
-            raise OnnxcalError(
-                f"image '{self.root / name}' claims {_pixels(exc)} pixels, more than Pillow's limit of "
+                return Image.open(self.root / name)
+        except Exception as exc:
+            raise self._unreadable(name, exc) from exc
+
+    def _unreadable(self, name: str, exc: Exception) -> OnnxcalError:
+        Image = _pillow()
+
+        if isinstance(exc, (Image.DecompressionBombWarning, Image.DecompressionBombError)):
+            return OnnxcalError(
+                f"image '{shown(self.root / name)}' claims {_pixels(exc)} pixels, more than Pillow's limit of "
                 f"{Image.MAX_IMAGE_PIXELS} for safe decoding (a decompression bomb?)",
                 "remove the file, or resize the images before calibrating",
-            ) from exc
+            )
+        # a damaged image: Pillow's decoders raise many kinds (OSError, struct.error, ...)
+        return OnnxcalError(
+            f"image '{shown(self.root / name)}' cannot be read ({first_line(exc)})", "fix or remove the file"
+        )
+
+    def _load(self, i: int) -> np.ndarray:
+        """One image as uint8 (H, W, C), resized and cropped."""
+        Image = _pillow()
+
+        name = self.files[i]
+        img = self._open(name)
+        try:
+            with img, warnings.catch_warnings():
+                warnings.simplefilter("error", Image.DecompressionBombWarning)
+                img = _eight_bits(img, shown(name)).convert("L" if self.plan.channels == 1 else "RGB")
+                size = self._resized(name, *img.size)
+                if size != img.size:
+                    img = img.resize(size, getattr(Image.Resampling, self.plan.options.interpolation.upper()))
+                if (box := self._crop_box(name, *img.size)) is not None:
+                    img = img.crop(box)
+                arr = np.asarray(img, dtype=np.uint8)
         except OnnxcalError:
             raise
-        except Exception as exc:  # a damaged image: Pillow's decoders raise many kinds (OSError, struct.error, ...)
-            raise OnnxcalError(
-                f"image '{self.root / name}' cannot be read ({first_line(exc)})", "fix or remove the file"
-            ) from exc
+        except Exception as exc:
+            raise self._unreadable(name, exc) from exc
         return arr[:, :, None] if arr.ndim == 2 else arr
 
     def __getitem__(self, key) -> np.ndarray:
@@ -1208,6 +1287,49 @@ class ImageArray:
         if p.layout == "NCHW":
             batch = batch.transpose(0, 3, 1, 2)
         return np.ascontiguousarray(batch, dtype=p.dtype)
+
+
+def _pillow():
+    """``PIL.Image``, imported with SIGINT and SIGTERM held back (an extension module's import
+    interrupted by a signal can crash the process)."""
+    with _signals.deferred():
+        from PIL import Image
+    return Image
+
+
+def shown(name: str | os.PathLike) -> str:
+    r"""A file name as the user can read it: bytes that are not UTF-8 shown escaped.
+
+    Names come from the file system as str with undecodable bytes kept as
+    lone surrogates (Python's ``surrogateescape``); they print as ``\xff``.
+
+    >>> shown(os.fsdecode(b"class0/caf\xe9.png"))
+    'class0/caf\\xe9.png'
+    """
+    return os.fsencode(name).decode("utf-8", "backslashreplace")
+
+
+def _eight_bits(img, name: str):
+    """``img`` with 8-bit channels: 16-bit greyscale reduced by its high byte.
+
+    Pillow opens a 16-bit greyscale PNG as mode ``I;16`` and its
+    ``convert("L")`` then saturates every value above 255 (1000 and 20000
+    both become 255). onnxcal keeps the high byte instead, as Pillow itself
+    does for 16-bit colour PNGs (48-bit RGB opens as 8-bit RGB that way).
+    32-bit integer or floating-point images (``I``, ``F``: some TIFFs) have
+    no fixed range, so they are refused, naming the mode.
+    """
+    Image = _pillow()
+
+    if img.mode in _SIXTEEN_BITS:
+        return Image.fromarray((np.asarray(img, dtype=np.uint16) >> 8).astype(np.uint8), mode="L")
+    if img.mode in _UNKNOWN_RANGE:
+        raise OnnxcalError(
+            f"image '{name}' has {_UNKNOWN_RANGE[img.mode]} pixels (Pillow mode '{img.mode}'), whose range "
+            "onnxcal cannot know to bring them to the 0-255 the preprocessing works in",
+            "convert the images to 8- or 16-bit PNG or JPEG first",
+        )
+    return img
 
 
 def _pixels(exc: Exception) -> str:
@@ -1257,15 +1379,15 @@ def load_image_folder(
             raise OnnxcalError("--label-column applies to a labels CSV", "give it with --labels FILE.csv")
         files, labels, names = _class_folders(root, classes)
     listing = hashlib.sha256()
-    for name in files:
-        listing.update(f"{name}\0{(root / name).stat().st_size}\n".encode())
+    for name in files:  # names as bytes: any bytes a file system allows
+        listing.update(os.fsencode(name) + f"\0{(root / name).stat().st_size}\n".encode())
     parts = [("images", listing.hexdigest())]
     if labels_csv is not None:
         parts.append(("labels", file_fingerprint(Path(labels_csv))))
     return Dataset(
         inputs={model_input.name: ImageArray(root, files, plan, model_input)},
         labels=labels,
-        source=str(root),
+        source=shown(root),
         class_names=names,
         data_id=_combine(parts),
         preprocess=plan.to_dict(),
@@ -1282,7 +1404,7 @@ def _class_folders(root: Path, classes: Sequence[str] | None) -> tuple[list[str]
     folders = sorted(p.name for p in root.iterdir() if p.is_dir() and not p.name.startswith("."))
     if not folders:
         raise OnnxcalError(f"'{root}' has no class subfolders", "put the images of each class in a subfolder named after it")
-    names = tuple(classes) if classes is not None else tuple(folders)
+    names = tuple(classes) if classes is not None else tuple(shown(f) for f in folders)
     if classes is not None:
         index = class_indices(np.array(folders), classes, lambda i: f"subfolder '{folders[i]}' of '{root}'")
     else:
@@ -1313,6 +1435,11 @@ def _listed_images(
     files = [f.strip() for f in _column(rows, header.index("file"))]
     for i, name in enumerate(files):
         target = (root / name)
+        if Path(name).is_absolute() or ".." in Path(name).parts:
+            raise OnnxcalError(
+                f"line {lines[i]} of '{table}' names '{name}', which is outside the image folder '{root}'",
+                "give paths relative to the image folder, without '..' (onnxcal reads images only from there)",
+            )
         if not target.is_file():
             raise OnnxcalError(
                 f"line {lines[i]} of '{table}' names '{name}', which is not a file in '{root}'",

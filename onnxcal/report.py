@@ -34,7 +34,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
+from . import __version__, _signals
 from .capture import Capture
 from .fit import FitSummary, data_warnings
 from .metrics import DEFAULT_BINS, METRIC_FIELDS, METRIC_LABELS, Metrics, evaluate, reliability
@@ -385,8 +385,9 @@ def _axis_words(quantity: str) -> tuple[str, str, str]:
 
 
 def _new_figure(ncols: int):
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
+    with _signals.deferred():  # a signal inside an extension module's import can crash it
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+        from matplotlib.figure import Figure
 
     fig = Figure(figsize=FIGSIZE, dpi=DPI, layout="constrained")
     FigureCanvasAgg(fig)
@@ -751,14 +752,28 @@ def outputs(formats) -> list[str]:
     return [name for f in FORMATS if f in formats for name in FILES[f]]
 
 
+def _utf8(text: str) -> bytes:
+    r"""UTF-8 bytes of a page; a path that is not UTF-8 (its bytes kept as lone surrogates) shows as ``\xNN``.
+
+    >>> _utf8("model in 'caf\udce9/'")
+    b"model in 'caf\\xe9/'"
+    """
+    try:
+        return text.encode()
+    except UnicodeEncodeError:
+        escaped = all(not 0xD800 <= ord(c) <= 0xDFFF or 0xDC80 <= ord(c) <= 0xDCFF for c in text)
+        raw = text.encode("utf-8", "surrogateescape" if escaped else "backslashreplace")
+        return raw.decode("utf-8", "backslashreplace").encode()
+
+
 def render(content: dict, formats) -> dict[str, bytes]:
     """Every file of the report for ``formats``, by file name, in memory."""
     pngs = draw(content)
     files: dict[str, bytes] = {}
     if "html" in formats:
-        files["report.html"] = render_html(content, pngs).encode()
+        files["report.html"] = _utf8(render_html(content, pngs))
     if "md" in formats:
-        files["summary.md"] = render_markdown(content).encode()
+        files["summary.md"] = _utf8(render_markdown(content))
     if "json" in formats:
         files["report.json"] = render_json(content).encode()
     if "png" in formats:

@@ -24,7 +24,7 @@ import numpy as np
 
 from .graph import np_dtype
 from .graph import post as _post
-from .metrics import METRIC_LABELS, Metrics, log_softmax, sigmoid
+from .metrics import METRIC_LABELS, Metrics, chunk_rows, log_softmax, sigmoid
 from .scaling import Scaling
 
 # Largest allowed |patched - reference| and |row sum - 1|, by the dtype the
@@ -177,6 +177,96 @@ def output_tolerance(dtypes: str | tuple[str, ...], post: tuple = ()) -> float:
     return tolerance(dtypes) * max(1.0, _post.gain(tuple(post))) + _post.step_size(tuple(post))
 
 
+class Comparison:
+    """Checks (1)-(3) of :func:`compare`, accumulated over row chunks.
+
+    ``add`` takes the patched outputs and the original logits of some rows
+    (class axis last); only chunk-sized float64 temporaries are made, so a
+    large set is compared in the memory of its inputs, or batch by batch
+    as a model runs (``calibrate``). ``checks`` gives the figures over all
+    rows added. The reference is post(activation(scale(logits)))
+    (:func:`reference_probabilities`), ``post`` the model's own
+    post-processing after the activation.
+    """
+
+    def __init__(
+        self, scaling: Scaling | float, activation: str, dtype: str | tuple[str, ...], post: tuple = ()
+    ) -> None:
+        self.scaling, self.activation, self.post = _as_scaling(scaling), activation, tuple(post)
+        self.tol = output_tolerance(dtype, self.post)
+        self.one = _post.takes_one(self.post)
+        # Row sums are checked when the post-processing keeps them known (a factor, an L1 norm).
+        self.summable = all(isinstance(op, (_post.Scale, _post.Normalize)) for op in self.post)
+        self.half = 0.5 * max(_post.gain(self.post), 1e-300) if self.one or self.post else 0.5
+        self.values = self.rows = 0
+        self.err = self.sums = 0.0
+        self.agree = 0.0  # rows (softmax) or values (sigmoid, one class) that decide as the reference does
+
+    @property
+    def multiclass(self) -> bool:
+        return self.activation in ("softmax", "logsoftmax") and not self.one
+
+    def add(self, patched: np.ndarray, logits: np.ndarray) -> None:
+        """Compare the patched outputs of some rows with the reference from their logits."""
+        patched, logits = np.asarray(patched), np.asarray(logits)
+        if patched.ndim < 2:
+            self._add(patched, logits)
+            return
+        step = chunk_rows(max(patched.shape[-1], np.shape(logits)[-1] if np.ndim(logits) else 1))
+        for start in range(0, len(patched), step):
+            self._add(patched[start : start + step], logits[start : start + step])
+
+    def _add(self, patched: np.ndarray, logits: np.ndarray) -> None:
+        ref = reference_probabilities(logits, self.scaling, self.activation, self.post)
+        got = np.asarray(patched, dtype=np.float64)
+        if not got.size:
+            return
+        diff = np.abs(got - ref)
+        if self.activation == "logsoftmax":  # a log-probability of -400 rounds by 400 times more than one near 0
+            diff /= np.maximum(1.0, np.abs(ref))
+        self.err = max(self.err, float(np.max(diff)))
+        self.values += got.size
+        self.rows += got.size // got.shape[-1] if got.ndim else 1
+        if self.multiclass:
+            if self.summable:
+                gain = max(_post.gain(self.post), 1e-300)
+                probs = np.exp(got) if self.activation == "logsoftmax" else got / gain
+                self.sums = max(self.sums, float(np.max(np.abs(probs.sum(axis=-1) - 1.0))))
+            self.agree += _top_class_agreeing(got, ref, self.tol)
+        else:
+            # A decision may differ only where the reference lies within rounding of the threshold.
+            half, tol = self.half, self.tol
+            self.agree += float(np.sum(((got > half) == (ref > half)) | (np.abs(ref - half) <= tol)))
+
+    def checks(self) -> tuple[Check, ...]:
+        tol, activation = self.tol, self.activation
+        relative = ", relative beyond |reference| = 1" if activation == "logsoftmax" else ""
+        then = _post.describe(self.post)
+        checks = [
+            Check(
+                "reference",
+                self.err <= tol,
+                self.err,
+                tol,
+                f"max |patched - {activation}({_describe(self.scaling)}){then}|{relative} over {self.values} values",
+            )
+        ]
+        if self.multiclass:
+            if self.summable:
+                checks.append(Check("row-sums", self.sums <= tol, self.sums, tol, "max |sum_k p_k - 1| over rows"))
+            else:
+                checks.append(skipped("row-sums", f"the output is post-processed ({then[7:]}), its rows need not sum to 1"))
+            agree = self.agree / self.rows if self.rows else 1.0
+            what = "unchanged" if self.scaling.method == "temperature" else "as in the reference"
+            detail = f"fraction of rows whose argmax is {what} (up to rounding ties)"
+            checks.append(Check("argmax", agree == 1.0, agree, 1.0, detail))
+        else:
+            decide = self.agree / self.values if self.values else 1.0
+            detail = "fraction of 0.5-threshold decisions as in the reference"
+            checks.append(Check("decisions", decide == 1.0, decide, 1.0, detail))
+        return tuple(checks)
+
+
 def compare(
     patched: np.ndarray,
     logits: np.ndarray,
@@ -193,49 +283,12 @@ def compare(
     post(activation(scale(logits))) (:func:`reference_probabilities`). The
     argmax (or 0.5-threshold decisions) must match the reference's; for
     temperature scaling that is the original's. ``dtype`` is the dtype (or
-    dtypes) the values pass through; see :func:`output_tolerance`.
+    dtypes) the values pass through; see :func:`output_tolerance`. Computed
+    in row chunks (:class:`Comparison`): the float64 reference is never made whole.
     """
-    post = tuple(post)
-    tol = output_tolerance(dtype, post)
-    scaling = _as_scaling(scaling)
-    ref = reference_probabilities(logits, scaling, activation, post)
-    got = np.asarray(patched, dtype=np.float64)
-    diff = np.abs(got - ref)
-    relative = ""
-    if activation == "logsoftmax":  # a log-probability of -400 rounds by 400 times more than one near 0
-        diff, relative = diff / np.maximum(1.0, np.abs(ref)), ", relative beyond |reference| = 1"
-    err = float(np.max(diff)) if got.size else 0.0
-    then = _post.describe(post)
-    checks = [
-        Check(
-            "reference",
-            err <= tol,
-            err,
-            tol,
-            f"max |patched - {activation}({_describe(scaling)}){then}|{relative} over {got.size} values",
-        )
-    ]
-    one = _post.takes_one(post)
-    if activation in ("softmax", "logsoftmax") and not one:
-        if all(isinstance(op, (_post.Scale, _post.Normalize)) for op in post):
-            probs = np.exp(got) if activation == "logsoftmax" else got / max(_post.gain(post), 1e-300)
-            sums = float(np.max(np.abs(probs.sum(axis=-1) - 1.0))) if got.size else 0.0
-            checks.append(Check("row-sums", sums <= tol, sums, tol, "max |sum_k p_k - 1| over rows"))
-        else:
-            checks.append(skipped("row-sums", f"the output is post-processed ({then[7:]}), its rows need not sum to 1"))
-        agree = _top_class_agreement(got, ref, tol)
-        what = "unchanged" if scaling.method == "temperature" else "as in the reference"
-        checks.append(
-            Check("argmax", agree == 1.0, agree, 1.0, f"fraction of rows whose argmax is {what} (up to rounding ties)")
-        )
-    else:
-        # A decision may differ only where the reference lies within rounding of the threshold.
-        half = 0.5 * max(_post.gain(post), 1e-300) if one or post else 0.5
-        decide = float(np.mean(((got > half) == (ref > half)) | (np.abs(ref - half) <= tol))) if got.size else 1.0
-        checks.append(
-            Check("decisions", decide == 1.0, decide, 1.0, "fraction of 0.5-threshold decisions as in the reference")
-        )
-    return tuple(checks)
+    comparison = Comparison(scaling, activation, dtype, post)
+    comparison.add(patched, logits)
+    return comparison.checks()
 
 
 def identity_check(outputs: list[tuple[str, np.ndarray, np.ndarray, float]], params: str) -> Check:
@@ -297,18 +350,16 @@ def reading_check(described: str | None) -> Check:
     )
 
 
-def _top_class_agreement(got: np.ndarray, ref: np.ndarray, tol: float) -> float:
-    """Fraction of rows whose patched top class is, within ``tol``, a top class of the reference.
+def _top_class_agreeing(got: np.ndarray, ref: np.ndarray, tol: float) -> int:
+    """Rows whose patched top class is, within ``tol``, a top class of the reference.
 
     Rounding the output can tie two classes that the reference tells apart,
     or swap two whose reference values differ by less than the rounding (a
     float16 output rounds 0.50001 and 0.49999 alike); such rows agree. A
     patch that changes a decision by more than the rounding does not.
     """
-    if not got.size:
-        return 1.0
     chosen = np.take_along_axis(ref, got.argmax(axis=-1)[..., None], axis=-1)[..., 0]
-    return float(np.mean(chosen >= ref.max(axis=-1) - 2 * tol))
+    return int(np.count_nonzero(chosen >= ref.max(axis=-1) - 2 * tol))
 
 
 def _flat(values) -> np.ndarray:

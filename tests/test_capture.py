@@ -141,8 +141,8 @@ def test_threads_and_optimisation_levels_give_the_same_logits(rng):
     [
         (RunOptions(provider="NoSuchExecutionProvider"), "--provider NoSuchExecutionProvider is not available.*CPUExecutionProvider"),
         (RunOptions(optimization="max"), "--optimization 'max' .*disable, basic, extended, all"),
-        (RunOptions(threads=-1), "--threads -1 is negative"),
-        (RunOptions(batch_size=0), "--batch-size 0 is not a positive"),
+        (RunOptions(threads=-1), r"--threads -1 is out of range: give a number of threads \(0: onnxruntime.s default, one per core\) from 0 to \d+"),
+        (RunOptions(batch_size=0), "--batch-size 0 is out of range: give a number of samples from 1 to 16777216"),
     ],
 )
 def test_run_option_errors(options, message):

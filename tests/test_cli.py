@@ -236,7 +236,7 @@ DATA_BAD = [
     (["calibrate", "model.onnx", "--data", "val.npz", "--provider", "Nope", "--out", "o.onnx"], "--provider Nope is not available"),
     (["calibrate", "model.onnx", "--data", "val.npz", "--optimization", "max", "--out", "o.onnx"], "--optimization 'max'"),
     (["capture", "model.onnx", "--data", "bad.csv", "--out", "c.npz"], "line 3, column 'b' .* holds 'oops', not a number"),
-    (["verify", "model.onnx", "--data", "val.npz", "--limit", "0"], "--limit 0 is not a positive"),
+    (["verify", "model.onnx", "--data", "val.npz", "--limit", "0"], "--limit 0 is out of range: give a number of samples of at least 1"),
     (["capture", "model.onnx", "--data", "val.npz", "--out", "val.npz", "--force"], "is the input file"),
 ]
 
@@ -344,11 +344,11 @@ def test_fit_vector_then_patch_and_verify(demo_capture, tmp_path, run_cli):
 
 
 BAD_FIT = [
-    (["--holdout", "1.5"], "--holdout 1.5 is not a fraction"),
+    (["--holdout", "1.5"], r"--holdout 1.5 is out of range: give a fraction \(0 scores in-sample\) from 0 to 0.9"),
     (["--method", "platt"], "--method platt does not apply to a multiclass"),
     (["--method", "nope"], "--method 'nope' is not one of"),
     (["--multilabel", "shared"], "--multilabel needs an N x K"),
-    (["--bootstrap", "-1"], "--bootstrap -1 is negative"),
+    (["--bootstrap", "-1"], r"--bootstrap -1 is out of range: give a number of replicates \(0 skips the intervals\) from 0 to 10000"),
     (["--l2", "0.1"], "--l2 applies to --method vector and platt"),
 ]
 
@@ -541,7 +541,7 @@ BAD_VERIFY = [
     (["--data", "HALF", "--scores", "SCORES"], "holds 2000 rows of scores but the patched model gives 1000 rows"),
     (["--junit", "EXISTING"], "already exists"),
     (["--junit", "MISSINGDIR"], "does not exist"),
-    (["--latency-runs", "0"], "--latency-runs.*greater than or equal to 1"),
+    (["--latency-runs", "0"], "--latency-runs 0 is out of range: give a number of runs from 1 to 100000"),
 ]
 
 

@@ -382,7 +382,7 @@ def test_uint8_and_grayscale_models(tmp_path):
         ({"resize": 32, "crop": 40}, r"--crop 40x40 is larger than image"),
         ({"resize": 32, "crop": 32, "mean": "0.5,0.5"}, "--mean has 2 values but the model takes 3-channel"),
         ({"resize": 32, "crop": 32, "dtype": "float16"}, "--dtype float16 does not match .* takes float32"),
-        ({"resize": "big"}, "--resize = 'big' is not a positive number"),
+        ({"resize": "big"}, "--resize = .big. is not a number of pixels from 1 to 65535"),
         ({"crop": "2x3x4"}, "--crop = '2x3x4' is not a size"),
         ({"std": "1,0,1"}, "--std = '1,0,1' is not a list of finite numbers .std > 0"),
         ({"layout": "CHW"}, "--layout = 'CHW' is not NCHW or NHWC"),
@@ -520,7 +520,7 @@ def test_parse_shard_errors(text, message):
 def test_selection_errors(tmp_path):
     with pytest.raises(OnnxcalError, match="shard 1/3 of .* holds no rows .the set has 2"):
         load(path=write(tmp_path, x=np.zeros((2, 3)), labels=np.array([0, 1])), selection=Selection(shard=(1, 3)))
-    with pytest.raises(OnnxcalError, match="--limit 0 is not a positive"):
+    with pytest.raises(OnnxcalError, match="--limit 0 is out of range: give a number of samples of at least 1"):
         load(path=DEMO_VAL, selection=Selection(limit=0))
 
 
@@ -630,3 +630,77 @@ def test_strings_that_are_not_unicode_are_refused(tmp_path):
     big = tmp_path / "big_endian.npz"  # valid text in the other byte order is fine
     np.savez(big, x=np.zeros((2, 3), np.float32), labels=np.array(["ab", "cd"]).astype(">U2"))
     assert load_npz(big, require_labels=False).labels.tolist() == ["ab", "cd"]
+
+
+# --------------------------------------------------------------------------
+# Issue 11: file names of any bytes, paths inside the folder, pixel depths
+
+
+def _png_bytes(width: int, height: int, depth: int, colour: int, rows: np.ndarray) -> bytes:
+    """A PNG written by hand (PNG spec, ISO/IEC 15948: IHDR, one IDAT of filter-0 rows, IEND)."""
+    import struct
+    import zlib
+
+    def chunk(kind: bytes, body: bytes) -> bytes:
+        return struct.pack(">I", len(body)) + kind + body + struct.pack(">I", zlib.crc32(kind + body))
+
+    raw = b"".join(b"\x00" + row.tobytes() for row in rows)
+    ihdr = struct.pack(">IIBBBBB", width, height, depth, colour, 0, 0, 0)
+    return b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", ihdr) + chunk(b"IDAT", zlib.compress(raw)) + chunk(b"IEND", b"")
+
+
+def test_sixteen_bit_greyscale_is_reduced_by_the_bit_depth_not_saturated(tmp_path):
+    """A 16-bit PNG's values 1000 and 20000 both reached the model as 255; now they keep their scale.
+
+    The reference is Pillow's own reading of a 16-bit colour PNG holding the
+    same samples in each channel: it keeps the high byte of each (3 and 78).
+    """
+    samples = np.array([[1000, 20000] * 16] * 32, ">u2")
+    root = tmp_path / "imgs"
+    (root / "a").mkdir(parents=True)
+    (root / "a" / "grey16.png").write_bytes(_png_bytes(32, 32, 16, 0, samples))
+    colour = tmp_path / "rgb48.png"
+    colour.write_bytes(_png_bytes(32, 32, 16, 2, np.repeat(samples, 3, axis=1)))
+    with Image.open(root / "a" / "grey16.png") as img:
+        assert img.mode == "I;16"  # what made convert("RGB") saturate
+    pillow = np.asarray(Image.open(colour).convert("RGB"))[..., 0]
+    assert sorted(set(pillow.ravel().tolist())) == [3, 78]
+    ds = load(IMAGE_SPEC, path=root, image={"scale": False})
+    x = ds.batch(0, 1, {"image": "float32"})["image"][0]
+    assert np.array_equal(x[0], pillow.astype(np.float32)) and np.array_equal(x[0], x[2])
+
+
+def test_image_files_and_folders_named_with_any_bytes_load(tmp_path):
+    """Names that are not UTF-8 gave an internal UnicodeEncodeError; the class name shows the byte escaped."""
+    import os
+
+    root = image_tree(tmp_path, ["a/1.png", "b/1.png"])
+    Image.new("RGB", (32, 32), (50, 60, 70)).save(root / "a" / os.fsdecode(b"caf\xe9.png"))
+    os.rename(root / "b", root / os.fsdecode(b"r\xfcst"))
+    ds = load(IMAGE_SPEC, path=root)
+    assert ds.n == 3 and ds.class_names == ("a", "r\\xfcst")
+    assert ds.batch(0, 3, {"image": "float32"})["image"].shape == (3, 3, 32, 32)
+
+
+@pytest.mark.parametrize("name", ["../outside.png", "a/../../outside.png", "/etc/passwd"])
+def test_a_labels_csv_cannot_reach_outside_the_image_folder(tmp_path, name):
+    root = image_tree(tmp_path, ["a/1.png"])
+    Image.new("RGB", (32, 32)).save(tmp_path / "outside.png")
+    table = tmp_path / "labels.csv"
+    table.write_text(f"file,label\na/1.png,0\n{name},1\n")
+    message = f"line 3 of '.*labels.csv' names '{name}', which is outside the image folder"
+    with pytest.raises(OnnxcalError, match=message):
+        load(IMAGE_SPEC, path=root, labels=table)
+
+
+def test_csv_values_beyond_the_input_dtype_are_refused(tmp_path):
+    table = tmp_path / "t.csv"
+    table.write_text("f0,f1,f2,label\n1,2,3,0\n4,-70000,6,1\n")
+    spec = [TensorSpec("x", "float16", ("N", 3), True)]
+    message = r"line 3, column 'f1' .* holds -70000, outside .* \(float16\) can hold \(-65504 to 65504\)"
+    with pytest.raises(OnnxcalError, match=message):
+        load(spec, path=table)
+    spec = [TensorSpec("x", "int8", ("N", 3), True)]
+    table.write_text("f0,f1,f2,label\n1,2,300,0\n")
+    with pytest.raises(OnnxcalError, match=r"holds 300, outside .* \(int8\) can hold \(-128 to 127\)"):
+        load(spec, path=table)

@@ -6,6 +6,7 @@ from __future__ import annotations
 import errno
 import fcntl
 import os
+import signal
 import stat
 import subprocess
 import sys
@@ -15,7 +16,7 @@ from pathlib import Path
 import pytest
 
 from conftest import DEMO_MODEL, DEMO_VAL, files_in, random_mlp
-from onnxcal import _files, api
+from onnxcal import _files, _temporaries, api
 from onnxcal.errors import OnnxcalError, OnnxcalWarning
 from onnxcal.fit import FitOptions
 
@@ -91,10 +92,10 @@ def test_several_files_appear_all_or_none(tmp_path, monkeypatch):
     files = {tmp_path / "a.bin": b"A" * 100, tmp_path / "b.bin": b"B" * 100, tmp_path / "c.bin": b"C" * 100}
     _fail_nth_write(monkeypatch, 3)
     with pytest.raises(OnnxcalError, match=r"cannot write '.*c.bin': the disk is full \(No space left on device\); free space"):
-        _files.atomic_write_files(files)
+        _files.atomic_write_files(files, replace=True)
     assert files_in(tmp_path) == {"b.bin": b"kept"}  # no new file, the old one untouched, no temporaries
     monkeypatch.undo()
-    _files.atomic_write_files(files)
+    _files.atomic_write_files(files, replace=True)
     assert files_in(tmp_path) == {p.name: b for p, b in files.items()}
 
 
@@ -136,6 +137,7 @@ def journal(monkeypatch):
     """Record fsync (by the path of the fd) and rename calls, in order."""
     events = []
     real_fsync, real_replace, real_rename = os.fsync, os.replace, os.rename
+    real_noreplace = _temporaries.rename_noreplace
 
     def fsync(fd):
         events.append(("fsync", os.readlink(f"/proc/self/fd/{fd}")))
@@ -149,11 +151,16 @@ def journal(monkeypatch):
         events.append(("rename", str(Path(src).resolve()), str(Path(dst).resolve())))
         return real_rename(src, dst)
 
+    def rename_noreplace(src, dst):  # renameat2 through ctypes: not seen by the os module
+        events.append(("rename", str(Path(src).resolve()), str(Path(dst).resolve())))
+        return real_noreplace(src, dst)
+
     if not Path("/proc/self/fd").is_dir():
         pytest.skip("needs /proc/self/fd to name fsync'ed descriptors")
     monkeypatch.setattr(os, "fsync", fsync)
     monkeypatch.setattr(os, "replace", replace)
     monkeypatch.setattr(os, "rename", rename)
+    monkeypatch.setattr(_temporaries, "rename_noreplace", rename_noreplace)
     return events
 
 
@@ -202,8 +209,9 @@ def test_every_writer_is_atomic_and_durable(tmp_path, rng, journal, writer):
 # Atomic writes: temporaries, the test hook, stale temporaries of killed writers
 
 
-def _temporaries(directory):
-    return sorted(p.name for p in directory.iterdir() if p.name.endswith(".tmp"))
+def _leftovers(directory):
+    """Temporaries and their owner records."""
+    return sorted(p.name for p in directory.iterdir() if p.name.endswith((".tmp", ".owner")))
 
 
 def _age(path, seconds: float = 2 * _files.STALE_SECONDS) -> None:
@@ -214,7 +222,7 @@ def _age(path, seconds: float = 2 * _files.STALE_SECONDS) -> None:
 def test_atomic_write_replaces_and_leaves_no_temporary(tmp_path):
     dest = tmp_path / "out.bin"
     dest.write_bytes(b"old")
-    _files.atomic_write_bytes(dest, b"new contents")
+    _files.atomic_write_bytes(dest, b"new contents", replace=True)
     assert dest.read_bytes() == b"new contents"
     assert [p.name for p in tmp_path.iterdir()] == ["out.bin"]
     # the usual mode for a new file (0666 less the umask), not mkstemp's 0600
@@ -230,7 +238,7 @@ def test_failure_in_the_body_removes_the_temporary_and_keeps_the_old_file(tmp_pa
         with _files.atomic_path(dest) as tmp:
             tmp.write_bytes(b"half")
             raise KeyboardInterrupt
-    assert dest.read_bytes() == b"old" and _temporaries(tmp_path) == []
+    assert dest.read_bytes() == b"old" and _leftovers(tmp_path) == []
 
 
 def test_pause_hook_sleeps_after_the_complete_write_and_before_the_rename(tmp_path, monkeypatch, capsys):
@@ -250,7 +258,7 @@ def test_pause_hook_sleeps_after_the_complete_write_and_before_the_rename(tmp_pa
 
     monkeypatch.delenv(_files.PAUSE_HOOK)
     seen.clear()
-    _files.atomic_write_bytes(dest, b"again")
+    _files.atomic_write_bytes(dest, b"again", replace=True)
     assert seen == [] and capsys.readouterr().err == ""  # unset: no pause, no output
 
 
@@ -281,7 +289,7 @@ def test_enospc_on_fsync_is_a_clean_error_and_the_old_file_stays(tmp_path, monke
     monkeypatch.setattr(os, "fsync", fsync)
     with pytest.raises(OnnxcalError, match=r"cannot write '.*fit\.json': the disk is full"):
         _files.atomic_write_bytes(dest, b"new")
-    assert dest.read_bytes() == b"old" and _temporaries(tmp_path) == []
+    assert dest.read_bytes() == b"old" and _leftovers(tmp_path) == []
 
 
 def test_permission_denied_creating_the_temporary(tmp_path, monkeypatch):
@@ -317,70 +325,239 @@ def test_a_group_is_renamed_only_when_every_file_is_written(tmp_path, monkeypatc
         _files.atomic_write_files({first: b"new weights", second: b"new graph"})
     # the weights were written completely, but not renamed: the old pair is intact
     assert first.read_bytes() == b"old weights" and second.read_bytes() == b"old graph"
-    assert _temporaries(tmp_path) == []
+    assert _leftovers(tmp_path) == []
 
 
-def test_stale_temporaries_are_removed_only_when_safe(tmp_path):
+def _dead_pid() -> int:
+    """The pid of a process that has ended (a child, waited for)."""
+    child = subprocess.Popen([sys.executable, "-c", "pass"])
+    child.wait()
+    return child.pid
+
+
+def _abandon(dest: Path, pid: int | None = None, host: str | None = None) -> tuple[Path, Path]:
+    """What a writer killed outright leaves: a complete temporary and its owner record, lock free.
+
+    Made with the writer's own code, then the record rewritten to name a
+    process that has ended (this one is alive) and its descriptor closed
+    without removing anything, as the kernel does for a killed process.
+    """
+    t = _files._Temporary(dest, False)
+    t.path.write_bytes(b"complete output")
+    t._record["pid"] = _dead_pid() if pid is None else pid
+    if host is not None:
+        t._record["host"] = host
+    t._write_record()
+    os.close(t._fd)
+    return t.path, t.owner
+
+
+def test_a_proven_stale_temporary_is_removed_and_the_warning_says_why(tmp_path):
     dest = tmp_path / "out.onnx"
-    stale = tmp_path / ".out.onnx.abcd1234.tmp"
-    young = tmp_path / ".out.onnx.young123.tmp"
-    locked = tmp_path / ".out.onnx.locked12.tmp"
-    others = [
-        tmp_path / ".out.onnx.short.tmp",  # not mkstemp's 8 characters
-        tmp_path / ".out.onnx.abcd1234.tmp.keep",
-        tmp_path / ".other.onnx.abcd1234.tmp",  # another output's
-        tmp_path / "out.onnx.abcd1234.tmp",  # not hidden
-    ]
-    for p in [stale, young, locked, *others]:
-        p.write_bytes(b"x")
-    link = tmp_path / ".out.onnx.link1234.tmp"
-    link.symlink_to(tmp_path / "elsewhere")
-    folder = tmp_path / ".out.onnx.dir12345.tmp"
-    folder.mkdir()
-    for p in [stale, locked, *others, folder]:
-        _age(p)
-    holder = os.open(locked, os.O_RDONLY)  # as a live writer holds its temporary
+    tmp, owner = _abandon(dest)
+    with pytest.warns(OnnxcalWarning) as seen:
+        assert _files.remove_stale_temporaries(dest) == [tmp]
+    (w,) = seen
+    text = str(w.message)
+    assert f"removed '{tmp}' and its owner record '{owner.name}'" in text
+    assert "which stopped before renaming it; that process is gone and no process holds the file" in text
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_files_named_like_temporaries_are_never_removed_without_proof(tmp_path):
+    """Issue 11: a user's '.FIT.json.backup01.tmp' beside FIT.json was deleted."""
+    dest = tmp_path / "FIT.json"
+    user = {
+        ".FIT.json.backup01.tmp": b"the user's backup",
+        ".FIT.json.abcd1234.tmp": b"named exactly like a temporary",
+        ".FIT.json.abcd1234.owner": b'{"kind": "onnxcal temporary owner"}',  # a record that names no inode
+    }
+    for name, data in user.items():
+        (tmp_path / name).write_bytes(data)
+        _age(tmp_path / name, 86400)
+    # a real stale pair, then copied (cp -a keeps names and contents, not inodes): the copies prove nothing
+    tmp, owner = _abandon(dest)
+    copy = tmp_path / "copy"
+    copy.mkdir()
+    for p in (tmp, owner):
+        (copy / p.name).write_bytes(p.read_bytes())
+    assert _files.remove_stale_temporaries(copy / "FIT.json") == []
+    assert sorted(p.name for p in copy.iterdir()) == sorted([tmp.name, owner.name])
+    # the temporary replaced by another file under its name: the record is removed, the file kept
+    other = tmp_path / "other"
+    other.write_bytes(b"another file under that name")
+    os.replace(other, tmp)
+    with pytest.warns(OnnxcalWarning, match="removed the owner record"):
+        assert _files.remove_stale_temporaries(dest) == []
+    assert tmp.read_bytes() == b"another file under that name" and not owner.exists()
+    assert all((tmp_path / name).read_bytes() == data for name, data in user.items())
+
+
+def test_a_temporary_whose_process_lives_or_whose_lock_is_held_stays(tmp_path):
+    dest = tmp_path / "out.onnx"
+    sleeper = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    try:
+        tmp, owner = _abandon(dest, pid=sleeper.pid)  # lock free, but the process named is alive
+        assert _files.remove_stale_temporaries(dest) == [] and tmp.exists() and owner.exists()
+    finally:
+        sleeper.kill()
+        sleeper.wait()
+    holder = os.open(owner, os.O_RDONLY)  # a live writer holds the lock of its record
     fcntl.flock(holder, fcntl.LOCK_EX)
     try:
-        with pytest.warns(OnnxcalWarning, match="removed 1 temporary file"):
-            removed = _files.remove_stale_temporaries(dest)
+        assert _files.remove_stale_temporaries(dest) == [] and tmp.exists()
     finally:
         os.close(holder)
-    assert removed == [stale] and not stale.exists()
-    assert all(p.exists() for p in [young, locked, *others, folder]) and link.is_symlink()
-    # the lock released (its writer gone), the next write of the output removes it
-    with pytest.warns(OnnxcalWarning, match=locked.name):
-        _files.atomic_write_bytes(dest, b"model")
-    assert not locked.exists() and dest.read_bytes() == b"model"
+    with pytest.warns(OnnxcalWarning, match="removed"):  # both gone: removed
+        assert _files.remove_stale_temporaries(dest) == [tmp]
 
 
-def test_a_live_writers_temporary_survives_another_run(tmp_path):
-    """A second process writing the same output leaves the first one's temporary alone."""
+def test_a_record_from_another_host_is_trusted_only_when_old(tmp_path):
+    dest = tmp_path / "out.onnx"
+    tmp, owner = _abandon(dest, pid=1, host="another-host.example")  # a shared file system
+    assert _files.remove_stale_temporaries(dest) == [] and tmp.exists()
+    _age(owner)
+    with pytest.warns(OnnxcalWarning, match="on another-host.example"):
+        assert _files.remove_stale_temporaries(dest) == [tmp]
+
+
+def test_an_input_of_the_command_is_never_removed(tmp_path):
+    """Issue 11: 'onnxcal patch .p.onnx.XXXXXXXX.tmp ... --out p.onnx' deleted its own input."""
+    dest = tmp_path / "p.onnx"
+    tmp, owner = _abandon(dest)  # even a real stale temporary, once it is an input
+    with _files.command():
+        _files.check_output_path(dest, [tmp])
+        assert _files.remove_stale_temporaries(dest) == []
+    assert tmp.read_bytes() == b"complete output" and owner.exists()
+
+
+def test_publication_never_replaces_a_file_that_appeared_meanwhile(tmp_path):
+    dest = tmp_path / "out.onnx"
+    with _files.command():
+        _files.check_output_path(dest)  # absent at the check: the write may not replace anything
+        with pytest.raises(OnnxcalError, match=r"'.*out.onnx' was written by another run or program while this one "
+                           r"worked .*left as it is and this run wrote nothing; pass --force"):
+            with _files.atomic_path(dest) as tmp:
+                tmp.write_bytes(b"ours")
+                dest.write_bytes(b"theirs")  # another program, while this run works
+    assert dest.read_bytes() == b"theirs" and _leftovers(tmp_path) == []
+    with _files.command():
+        _files.check_output_path(dest, force=True)  # --force: replaced
+        _files.atomic_write_bytes(dest, b"ours")
+    assert dest.read_bytes() == b"ours"
+
+
+def test_a_group_that_meets_an_appeared_file_publishes_nothing(tmp_path, monkeypatch):
+    a, b = tmp_path / "m.onnx.data", tmp_path / "m.onnx"
+    real = _temporaries.rename_noreplace
+
+    def late(src, dst):  # b appears between the group's check and its move
+        if Path(dst) == b:
+            b.write_bytes(b"theirs")
+        return real(src, dst)
+
+    monkeypatch.setattr(_temporaries, "rename_noreplace", late)
+    with pytest.raises(OnnxcalError, match="m.onnx' was written by another run"):
+        _files.atomic_write_files({a: b"weights", b: b"graph"}, replace=False)
+    assert files_in(tmp_path) == {"m.onnx": b"theirs"}  # the new m.onnx.data was taken back
+
+
+@pytest.mark.parametrize("how", ["renameat2", "link", "locked check"])
+def test_no_replace_publication_on_every_path(tmp_path, monkeypatch, how):
+    if how != "renameat2":  # a file system without RENAME_NOREPLACE
+        monkeypatch.setattr(_temporaries, "_renameat2", lambda src, dst: False)
+    if how == "locked check":  # and without hard links (FAT, some network file systems)
+        def no_link(src, dst):
+            raise OSError(errno.EPERM, "Operation not permitted")
+
+        monkeypatch.setattr(os, "link", no_link)
+    src, dst = tmp_path / "src", tmp_path / "dst"
+    src.write_bytes(b"new")
+    dst.write_bytes(b"old")
+    with pytest.raises(FileExistsError):
+        _temporaries.rename_noreplace(src, dst)
+    assert dst.read_bytes() == b"old" and src.read_bytes() == b"new"
+    dst.unlink()
+    _temporaries.rename_noreplace(src, dst)
+    assert dst.read_bytes() == b"new" and not src.exists() and dst.stat().st_nlink == 1
+
+
+def test_a_late_writer_of_the_same_output_is_refused_and_the_first_file_kept(tmp_path):
+    """Two writers of one new output: the first to finish wins, the other is refused (issue 11)."""
     dest = tmp_path / "out.bin"
     code = (
-        "import os, time\n"
+        "import sys\n"
         "from onnxcal import _files\n"
-        f"with _files.atomic_path({str(dest)!r}) as tmp:\n"
-        "    tmp.write_bytes(b'first')\n"
-        f"    old = time.time() - 2 * _files.STALE_SECONDS\n"
-        "    os.utime(tmp, (old, old))\n"
-        "    print(tmp, flush=True)\n"
-        "    input()\n"
+        "from onnxcal.errors import OnnxcalError\n"
+        f"with _files.command():\n"
+        f"    _files.check_output_path({str(dest)!r})\n"
+        "    try:\n"
+        f"        with _files.atomic_path({str(dest)!r}) as tmp:\n"
+        "            tmp.write_bytes(b'first')\n"
+        "            print(tmp, flush=True)\n"
+        "            input()\n"
+        "    except OnnxcalError as exc:\n"
+        "        print(exc, flush=True)\n"
+        "        sys.exit(2)\n"
     )
     writer = subprocess.Popen([sys.executable, "-c", code], stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
     try:
         tmp = writer.stdout.readline().strip()
-        assert _files.remove_stale_temporaries(dest) == []  # old, but locked by a live writer
+        assert _files.remove_stale_temporaries(dest) == []  # a live writer's temporary is not stale
         _files.atomic_write_bytes(dest, b"second")
         assert os.path.exists(tmp)
-        writer.communicate("\n", timeout=60)
+        out, _ = writer.communicate("\n", timeout=60)
     finally:
         writer.kill()
         writer.wait()
-    assert writer.returncode == 0 and dest.read_bytes() == b"first"  # the last rename wins
-    assert _temporaries(tmp_path) == []
+    assert writer.returncode == 2 and "was written by another run or program" in out
+    assert dest.read_bytes() == b"second" and _leftovers(tmp_path) == []
 
 
-def test_sha256_of_an_unreadable_file_is_a_clean_error(tmp_path):
-    with pytest.raises(OnnxcalError, match=r"cannot read '.*'"):
-        _files.sha256_file(tmp_path)  # a directory: open() fails with IsADirectoryError
+def test_a_signal_during_a_group_is_delivered_after_it(tmp_path, monkeypatch):
+    """Issue 11, 6a: SIGINT between the renames of a group left a new model beside an old report."""
+    files = {tmp_path / name: name.encode() for name in ("model.onnx", "model.onnx.data", "report.json")}
+    real = _temporaries.rename_noreplace
+    moved = []
+
+    def rename(src, dst):
+        moved.append(Path(dst).name)
+        if len(moved) == 1:
+            signal.raise_signal(signal.SIGINT)  # Ctrl-C after the first rename
+        return real(src, dst)
+
+    monkeypatch.setattr(_temporaries, "rename_noreplace", rename)
+    with pytest.raises(KeyboardInterrupt):
+        _files.atomic_write_files(files, replace=False)
+    assert len(moved) == 3 and files_in(tmp_path) == {p.name: d for p, d in files.items()}  # all new
+
+
+def test_a_failed_rename_in_a_group_cleans_up_everything(tmp_path, monkeypatch):
+    """Issue 11, 6a: the clean-up stopped at a descriptor closed twice ("Bad file descriptor")."""
+    files = {tmp_path / "rep" / name: b"x" for name in ("a.png", "b.png", "c.png")}
+    real = _temporaries.rename_noreplace
+    calls = []
+
+    def fail_second(src, dst):
+        calls.append(dst)
+        if len(calls) == 2:
+            raise OSError(errno.EIO, os.strerror(errno.EIO))
+        return real(src, dst)
+
+    monkeypatch.setattr(_temporaries, "rename_noreplace", fail_second)
+    with pytest.raises(OnnxcalError, match="cannot write '.*b.png'"):
+        _files.atomic_write_files(files, replace=False)
+    assert list(tmp_path.iterdir()) == []  # a.png taken back, temporaries and the new directory removed
+
+
+def test_a_temporary_closes_its_descriptor_once_whatever_the_order(tmp_path, monkeypatch):
+    closes = []
+    real_close = os.close
+    monkeypatch.setattr(os, "close", lambda fd: (closes.append(fd), real_close(fd))[1])
+    t = _files._Temporary(tmp_path / "out.bin", False)
+    fd = t._fd
+    t.path.write_bytes(b"x")
+    t.publish()
+    t.discard()  # the clean-up after a signal that came between the rename and the bookkeeping
+    t.discard()
+    assert closes.count(fd) == 1 and _leftovers(tmp_path) == [] and (tmp_path / "out.bin").read_bytes() == b"x"

@@ -252,7 +252,7 @@ BAD_REPORT = [
     (["--temperature", "0"], "not a positive finite number"),
     (["--temperature", "2", "--format", "pdf"], "--format 'pdf' is not a comma-separated list"),
     (["--temperature", "2", "--classes", "THREE"], "give 3 names for a model with 5 logit"),
-    (["--temperature", "2", "--bins", "1"], "fewer than 2 bins"),
+    (["--temperature", "2", "--bins", "1"], "--bins 1 is out of range: give a number of bins from 2 to 100000"),
     (["--model", "DEMO"], "has no onnxcal calibration record"),
     (["--fit", "OTHERFIT"], "was made for the model with sha256"),
 ]

@@ -14,6 +14,10 @@ from __future__ import annotations
 import ast
 import importlib.util
 import os
+import shutil
+import subprocess
+import sys
+import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -23,6 +27,7 @@ import pytest
 from onnx import TensorProto, helper, numpy_helper
 
 import onnxcal
+from conftest import DEMO_MODEL, DEMO_VAL
 from onnxcal import api, graph
 from onnxcal.errors import OnnxcalError
 
@@ -272,3 +277,72 @@ def test_escape_sequences_in_a_model_are_shown_not_obeyed(tmp_path, run_cli):
         assert "\x1b" not in r.out + r.err and "\x07" not in r.out + r.err
     assert "probs\\x1b]0;pwned\\x07" in run_cli("inspect", path).out.replace("\n", "")  # shown, escaped
     assert "choose one of: probs\\x1b]0;pwned\\x07" in r.err  # the error names the outputs, escaped
+
+
+# --------------------------------------------------------------------------
+# Nothing written outside the outputs the user named (issue 11)
+
+
+def _console() -> list[str]:
+    exe = Path(sys.executable).with_name("onnxcal")
+    return [str(exe)] if exe.exists() else [sys.executable, "-m", "onnxcal"]
+
+
+def _tree(root: Path) -> dict[str, str]:
+    return {str(p.relative_to(root)): ("dir" if p.is_dir() else p.read_bytes().hex()[:64]) for p in root.rglob("*")}
+
+
+def _run_env(home: Path, tmp: Path) -> dict[str, str]:
+    env = {k: v for k, v in os.environ.items() if k not in ("MPLCONFIGDIR", "XDG_CACHE_HOME", "XDG_CONFIG_HOME",
+                                                          "ORT_DISABLE_TELEMETRY")}
+    return {**env, "HOME": str(home), "TMPDIR": str(tmp)}
+
+
+def test_a_run_writes_nothing_but_its_outputs(tmp_path):
+    """onnxruntime wrote a device id and a database under ~/.cache, matplotlib its font cache under
+    ~/.cache and ~/.config: a fresh HOME and TMPDIR must be as empty after a run as before."""
+    home, tmp, work = tmp_path / "home", tmp_path / "tmp", tmp_path / "work"
+    for d in (home, tmp, work):
+        d.mkdir()
+    shutil.copy(DEMO_MODEL, work / "m.onnx")
+    shutil.copy(DEMO_VAL, work / "v.npz")
+    r = subprocess.run(_console() + ["calibrate", "m.onnx", "--data", "v.npz", "--out", "o.onnx", "--report", "rep",
+                                     "-q", "--bootstrap", "0"],
+                       cwd=work, env=_run_env(home, tmp), capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0 and r.stderr == "", r.stderr
+    assert _tree(home) == {} and _tree(tmp) == {}
+    assert {p.name for p in work.iterdir()} == {"m.onnx", "v.npz", "o.onnx", "rep"}
+
+
+def test_read_only_home_and_tmpdir_give_no_warnings(tmp_path):
+    """As an unprivileged user whose HOME and TMPDIR it may not write to: no warning, nothing written.
+
+    (Root may write anywhere, so this runs as user 'nobody' with setpriv, as the test of a
+    real permission error in tests/bad_inputs does.)
+    """
+    if os.geteuid() != 0 or shutil.which("setpriv") is None:
+        pytest.skip("needs root and setpriv to run as an unprivileged user")
+    drop = ["setpriv", "--reuid=65534", "--regid=65534", "--clear-groups", "--"]
+    can_read = ("import importlib.util, os, sys; s = importlib.util.find_spec('onnxcal'); "
+                "sys.exit(not os.access(s.origin, os.R_OK))")
+    if subprocess.run(drop + [sys.executable, "-c", can_read], capture_output=True).returncode:
+        pytest.skip("user nobody cannot read this checkout or its venv (a private home directory?)")
+    base = Path(tempfile.mkdtemp(prefix="onnxcal-readonly-"))
+    try:
+        base.chmod(0o755)
+        home, tmp, work = base / "home", base / "tmp", base / "work"
+        for d in (home, tmp, work):
+            d.mkdir()
+        home.chmod(0o555)
+        tmp.chmod(0o555)
+        work.chmod(0o777)
+        shutil.copy(DEMO_MODEL, work / "m.onnx")
+        shutil.copy(DEMO_VAL, work / "v.npz")
+        r = subprocess.run(drop + _console() + ["calibrate", "m.onnx", "--data", "v.npz", "--out", "o.onnx",
+                                                "--report", "rep", "-q", "--bootstrap", "0"],
+                           cwd=work, env=_run_env(home, tmp), capture_output=True, text=True, timeout=300)
+        assert r.returncode == 0 and r.stderr == "", r.stderr
+        assert _tree(home) == {} and _tree(tmp) == {}
+        assert (work / "rep" / "reliability.png").is_file()
+    finally:
+        shutil.rmtree(base, ignore_errors=True)

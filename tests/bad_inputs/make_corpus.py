@@ -180,6 +180,17 @@ def bad_models(d: Path, rng: np.random.Generator) -> None:
         initializer=[numpy_helper.from_array(np.array(100.0, np.float32), "hundred")],
     )
     _save(_finish(two), d / "two_outputs.onnx")
+    # a model that fails at run time: its Reshape cannot take a batch of 40 x 6 values (issue 11)
+    reshape = helper.make_graph(
+        [helper.make_node("Reshape", ["x", "shape"], ["scores"], name="impossible_reshape")],
+        "reshape_fails",
+        [_vi("x", ["N", D])],
+        [_vi("scores", ["M", K])],
+        initializer=[numpy_helper.from_array(np.array([7, -1], np.int64), "shape")],
+    )
+    _save(_finish(reshape), d / "reshape_fails.onnx")
+    # a float16 model, for CSV values float16 cannot hold
+    _save(mlp_model([(rng.normal(size=(D, K)), np.zeros(K))], dtype=np.float16), d / "f16.onnx")
 
     # the good model patched, then its record made to disagree with its graph
     patched = onnx.load(str(d / "patched.onnx"))
@@ -275,6 +286,20 @@ def bad_data(d: Path, rng: np.random.Generator) -> None:
     with warnings.catch_warnings():  # capture warns about those rows; here they are wanted
         warnings.simplefilter("ignore", OnnxcalWarning)
         api.capture(d / "identity3.onnx", d / "nonfinite.npz", out=d / "nonfinite_cap.npz")
+    # every row NaN: nothing is left once they are dropped (issue 11)
+    np.savez(d / "all_nan.npz", x=np.full((N, 3), np.nan, np.float32), labels=np.arange(N) % 3)
+    # logits near the largest float32: divided by a tiny T they overflow even float64
+    np.savez(d / "huge_logits.npz", x=np.where(np.arange(N * 3).reshape(N, 3) % 2, 3e38, -3e38).astype(np.float32),
+             labels=np.arange(N) % 3)
+    with warnings.catch_warnings():  # capture warns about those rows; here they are wanted
+        warnings.simplefilter("ignore", OnnxcalWarning)
+        api.capture(d / "identity3.onnx", d / "all_nan.npz", out=d / "all_nan_cap.npz")
+    api.capture(d / "identity3.onnx", d / "huge_logits.npz", out=d / "huge_logits_cap.npz")
+    text16 = (d / "val.csv").read_text().splitlines()
+    cells = text16[5].split(",")
+    cells[1] = "70000"  # float16 holds at most 65504
+    text16[5] = ",".join(cells)
+    (d / "f16_overflow.csv").write_text("\n".join(text16) + "\n")
     # a compressed member whose header claims 2^40 float64 values (8 TiB) in a few bytes
     _npz_claiming(d / "bomb.npz", "x", (1 << 20, 1 << 20), "<f8", y)
     # an uncompressed member whose header claims more rows than the file holds
@@ -347,6 +372,15 @@ def bad_images(d: Path) -> None:
     (copy("images_empty_class") / "class3").mkdir()
     # a PNG that claims 40000 x 40000 pixels (1.6e9, past Pillow's decompression-bomb limit)
     (copy("images_bomb") / "class0" / "huge.png").write_bytes(_raw_png(40000, 40000, bytes(1024)))
+    # a damaged image whose name is not UTF-8 (a byte 0xff): reported escaped (issue 11)
+    (copy("images_bad_name") / "class1" / os.fsdecode(b"broken\xff.png")).write_bytes(png[: len(png) // 2])
+    # a 32-bit floating-point TIFF: its range is unknown, so it is refused by mode (issue 11)
+    from PIL import Image
+
+    Image.fromarray(np.full((32, 32), 1000.0, np.float32), mode="F").save(copy("images_32bit") / "class2" / "depth.tif")
+    # a labels CSV naming a file outside the image folder (issue 11)
+    (d / "outside.png").write_bytes(png)
+    (d / "outside_labels.csv").write_text("file,label\nclass0/img0.png,0\n../outside.png,1\n")
 
 
 # --------------------------------------------------------------------------
@@ -361,6 +395,9 @@ def bad_fits(d: Path) -> None:
         bad["parameters"]["temperature"] = value
         (d / f"fit_{name}.json").write_text(json.dumps(bad, indent=2))
     (d / "fit_not_json.json").write_text("temperature = 1.5\n")
+    tiny = json.loads(json.dumps(fit))  # a temperature float32 cannot hold: every probability NaN (issue 11)
+    tiny["temperature"] = tiny["parameters"]["temperature"] = 1e-300
+    (d / "fit_tiny_t.json").write_text(json.dumps(tiny, indent=2))
     (d / "fit_deep.json").write_text("[" * 100_000 + "]" * 100_000)
 
 

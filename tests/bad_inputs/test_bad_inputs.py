@@ -93,6 +93,17 @@ def eacces_on_create(monkeypatch, corpus: Path) -> None:
     monkeypatch.setattr(tempfile, "mkstemp", mkstemp)
 
 
+def memory(available: int):
+    """A machine with ``available`` bytes of memory free (as the kernel and the cgroup would say)."""
+
+    def setup(monkeypatch, corpus: Path) -> None:
+        from onnxcal import _limits
+
+        monkeypatch.setattr(_limits, "available_memory", lambda: available)
+
+    return setup
+
+
 # --------------------------------------------------------------------------
 # The table
 
@@ -213,6 +224,33 @@ CASES = [
     case("unwritable-dir-capture", "capture", "model.onnx", *NPZ, "--out", "readonly/c.npz", setup=unwritable_readonly, message=r"cannot write to directory 'readonly' \(--out\)"),
     case("unwritable-dir-report", "report", "cap.npz", "--out", "readonly/rep", *T2, setup=unwritable_readonly, message=r"cannot write to directory 'readonly' \(--out\)"),
     case("eacces-on-write", "patch", "model.onnx", *T2, "--out", "readonly/p.onnx", setup=eacces_on_create, message=r"cannot write 'readonly/p.onnx': permission denied"),
+    # ---- issue 11: parameters the graph's dtype cannot compute with (every probability would be NaN)
+    case("temperature-subnormal", "patch", "model.onnx", "--temperature", "1e-45", "--out", "p.onnx", message=r"temperature 1e-45 is below 1.18e-38, the smallest normal float32 number \(the patched model computes the calibration in float32\).*--compute-dtype float64"),
+    case("temperature-too-large", "patch", "model.onnx", "--temperature", "1e300", "--out", "p.onnx", message=r"temperature 1e\+300 is above 3.4e\+38, the largest float32 number"),
+    case("fit-json-temperature-subnormal", "patch", "model.onnx", "--fit", "fit_tiny_t.json", "--out", "p.onnx", message=r"temperature 1e-300 is below 1.18e-38, the smallest normal float32 number"),
+    case("logits-over-t-overflow", "report", "huge_logits_cap.npz", "--temperature", "1e-280", "--out", "rep", message=r"temperature 1e-280 makes the calibrated logits overflow float64 \(the report computes in float64\): the largest \|logit\| seen is 3e\+38.*T must be at least"),
+    case("verify-every-row-dropped", "verify", "patched3.onnx", "--data", "all_nan.npz", "--drop-nonfinite", "-q", message=r"NaN or Inf in 40 of 40 rows .*: every row, so there is nothing left to check \(40 of 40 rows would be dropped\)"),
+    case("fit-every-row-dropped", "fit", "all_nan_cap.npz", "--drop-nonfinite", "--out", "f.json", message=r"NaN or Inf in 40 of 40 rows .*: every row, so nothing is left to work on"),
+    # ---- issue 11: every numeric option within its range, with the range in the message
+    case("threads-out-of-range", "capture", "model.onnx", *NPZ, "--out", "c.npz", "--threads", "100000", message=r"--threads 100000 is out of range: give a number of threads .* from 0 to \d+"),
+    case("batch-size-out-of-range", "calibrate", "model.onnx", *NPZ, "--out", "o.onnx", "--batch-size", "100000000", message=r"--batch-size 100000000 is out of range: give a number of samples from 1 to 16777216"),
+    case("seed-negative", "fit", "cap.npz", "--seed", "-5", message=r"--seed -5 is out of range: give a seed from 0 to 4294967295"),
+    case("shuffle-seed-negative", "capture", "model.onnx", *NPZ, "--out", "c.npz", "--limit", "5", "--shuffle-seed", "-1", message=r"--shuffle-seed -1 is out of range: give a seed from 0 to 4294967295"),
+    case("bins-out-of-range", "fit", "cap.npz", "--bins", "2000000000", message=r"--bins 2000000000 is out of range: give a number of bins from 2 to 100000"),
+    case("bins-over-memory", "fit", "cap.npz", "--bins", "100000", "--bootstrap", "0", setup=memory(1 << 20), message=r"--bins 100000 for 4 classes \(the per-class bin sums of the classwise ECE\) needs 12.2 MiB, more than the 1 MiB of memory available; lower --bins"),
+    case("bootstrap-out-of-range", "calibrate", "model.onnx", *NPZ, "--out", "o.onnx", "--bootstrap", "1000000", message=r"--bootstrap 1000000 is out of range: give a number of replicates .* from 0 to 10000"),
+    case("l2-out-of-range", "fit", "cap.npz", "--method", "vector", "--l2", "1e308", message=r"--l2 1e\+308 is out of range: give a penalty \(0 for none\) from 0 to 1e\+06"),
+    case("latency-runs-out-of-range", "verify", "patched.onnx", *NPZ, "--latency-runs", "0", message=r"--latency-runs 0 is out of range: give a number of runs from 1 to 100000"),
+    case("max-model-bytes-out-of-range", "inspect", "model.onnx", "--max-model-bytes", "9" * 400, message=r"--max-model-bytes '9+' is out of range: give a size from 1 byte to 8 EiB"),
+    case("resize-out-of-range", "capture", "belt.onnx", "--data", "images", "--out", "c.npz", "--resize", "70000", message=r"--resize = 70000 is not a number of pixels from 1 to 65535"),
+    case("resize-over-memory", "capture", "belt.onnx", "--data", "images", "--out", "c.npz", "--resize", "20000", setup=memory(2 << 30), message=r"image 'class0/img0.png' \(32x32, height x width\) resized by --resize 20000 to 20000x20000 needs 5.59 GiB, more than the 2 GiB of memory available; lower --resize"),
+    # ---- issue 11: file names of any bytes, image paths inside the folder, pixel depths
+    case("images-name-not-utf8", "capture", "belt.onnx", "--data", "images_bad_name", "--out", "c.npz", message=r"image 'images_bad_name/class1/broken\\xff\.png' cannot be read"),
+    case("images-csv-outside-folder", "capture", "belt.onnx", "--data", "images", "--labels", "outside_labels.csv", "--out", "c.npz", message=r"line 3 of 'outside_labels.csv' names '\.\./outside\.png', which is outside the image folder 'images'"),
+    case("images-32-bit-float", "calibrate", "belt.onnx", "--data", "images_32bit", "--out", "o.onnx", message=r"image 'class2/depth.tif' has 32-bit floating-point pixels \(Pillow mode 'F'\)"),
+    case("csv-float16-overflow", "capture", "f16.onnx", "--data", "f16_overflow.csv", "--out", "c.npz", message=r"line 6, column 'f1' of 'f16_overflow.csv' holds 70000, outside what model input 'x' \(float16\) can hold \(-65504 to 65504\)"),
+    # ---- issue 11: a model that fails at run time: one line naming the node and the rows
+    case("model-fails-at-run-time", "capture", "reshape_fails.onnx", *NPZ, "--out", "c.npz", "-q", message=r"node 'impossible_reshape' \(Reshape\) failed \(.*cannot be reshaped.*\) on rows 0\.\.39 of 'val.npz'"),
 ]
 
 
@@ -282,8 +320,12 @@ def _console() -> list[str]:
     [
         (["inspect", "truncated.onnx"], "is not a readable ONNX model"),
         (["capture", "model.onnx", "--data", "pickled.npz", "--out", "c.npz"], "holds Python objects"),
+        # onnxruntime's own (coloured, multi-line) log goes to the process's stderr, which only a
+        # real process shows: it must be silent, leaving onnxcal's one line (issue 11)
+        (["capture", "reshape_fails.onnx", "--data", "val.npz", "--out", "c.npz", "-q"],
+         "node 'impossible_reshape' (Reshape) failed"),
     ],
-    ids=["truncated-onnx", "pickled-npz"],
+    ids=["truncated-onnx", "pickled-npz", "runtime-failure"],
 )
 def test_console_script_exit_status_and_stderr(corpus, args, message):
     before = snapshot(corpus)

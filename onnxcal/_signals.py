@@ -1,0 +1,127 @@
+"""SIGINT and SIGTERM: handled like an error, never in the middle of a group of renames.
+
+The command line installs :func:`interrupting` handlers: the first SIGINT or
+SIGTERM raises :class:`Interrupted` (carrying the signal's name) in the
+main thread, so every ``finally`` and ``except BaseException`` on the
+way out runs, as for any error: temporaries are removed, a directory the
+run created is removed again. Later signals of the same run are noted and
+ignored, so the clean-up itself is not cut short; SIGKILL still stops the
+process at once.
+
+:func:`deferred` holds both signals back across a short critical section
+(the renames that publish a group of outputs, the removal of temporaries):
+a signal that arrives meanwhile is delivered when the section ends, to
+whatever handler was in force before (the CLI's, Python's default
+KeyboardInterrupt, or the default action of SIGTERM). It works at the
+Python level, so it holds whichever thread the kernel delivered the signal
+to (onnxruntime runs threads of its own, which ``pthread_sigmask`` in the
+main thread would not cover).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import signal
+import threading
+from collections.abc import Iterator
+
+SIGNALS = (signal.SIGINT, signal.SIGTERM)
+
+
+class Interrupted(BaseException):
+    """The run was stopped by SIGINT or SIGTERM (``args[0]``: the signal's name).
+
+    A BaseException, like KeyboardInterrupt, so ``except Exception`` does
+    not swallow it; unlike KeyboardInterrupt, the command-line parser does
+    not turn it into an abort of its own.
+    """
+
+
+def _in_main_thread() -> bool:
+    return threading.current_thread() is threading.main_thread()
+
+
+@contextlib.contextmanager
+def deferred() -> Iterator[None]:
+    """Hold SIGINT and SIGTERM back until the block ends, then deliver them.
+
+    Outside the main thread (where Python cannot set handlers) the block
+    runs unprotected; so does it when a handler was installed outside
+    Python (``signal.getsignal`` returns None), which cannot be restored.
+    """
+    previous = {s: signal.getsignal(s) for s in SIGNALS} if _in_main_thread() else {}
+    if not previous or any(h is None for h in previous.values()):
+        yield
+        return
+    received: list[int] = []
+    for s in SIGNALS:
+        signal.signal(s, lambda signum, frame: received.append(signum))
+    try:
+        yield
+    finally:
+        for s, handler in previous.items():
+            signal.signal(s, handler)
+        for signum in dict.fromkeys(received):  # once each, in the order they came
+            signal.raise_signal(signum)
+
+
+def _raise(signum: int, frame: object) -> None:
+    for s in SIGNALS:  # the run is stopping: later signals must not cut the clean-up short
+        signal.signal(s, _note)
+    raise Interrupted(signal.Signals(signum).name)
+
+
+def _note(signum: int, frame: object) -> None:
+    return None
+
+
+@contextlib.contextmanager
+def interrupting() -> Iterator[None]:
+    """Within the block, SIGINT and SIGTERM raise Interrupted('SIGINT' / 'SIGTERM').
+
+    When the handlers were already installed for the process (by
+    :func:`install`, at the console script's start) they are left to ignore
+    both signals afterwards: the process is about to exit with the status
+    the block decided. Otherwise the previous handlers are restored (the
+    CLI's ``main`` may be called in-process, by tests). Outside the main
+    thread nothing changes.
+    """
+    if not _in_main_thread():
+        yield
+        return
+    previous = {s: signal.getsignal(s) for s in SIGNALS}
+    installed_before = all(h in (_raise, _note) for h in previous.values())
+    install()
+    try:
+        yield
+    finally:
+        for s, handler in previous.items():
+            if installed_before:
+                signal.signal(s, _note)
+            elif handler is not None:
+                signal.signal(s, handler)
+
+
+def install() -> None:
+    """Make SIGINT and SIGTERM raise Interrupted from now on (main thread only)."""
+    for s in SIGNALS:
+        signal.signal(s, _raise)
+
+
+def stopping() -> None:
+    """The run is ending: ignore further SIGINT and SIGTERM (main thread only)."""
+    if _in_main_thread():
+        for s in SIGNALS:
+            signal.signal(s, _note)
+
+
+def name_of(exc: BaseException) -> str:
+    """The signal an Interrupted (or a KeyboardInterrupt) stands for: its argument, else SIGINT."""
+    if exc.args and exc.args[0] in ("SIGINT", "SIGTERM"):
+        return exc.args[0]
+    return "SIGINT"
+
+
+def exit_status(name: str) -> int:
+    """128 + the signal's number, as a shell reports a process stopped by it: 130, 143."""
+    return 128 + int(signal.Signals[name])
