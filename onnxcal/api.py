@@ -148,6 +148,7 @@ def capture(
     activation: str | None = None,
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
     output_holds: str | None = None,
+    score_columns: str | None = None,
 ) -> Capture:
     """Run the model over a labelled set; return (and write) the logits.
 
@@ -184,6 +185,10 @@ def capture(
         What the output holds; by default the graph says, and the data are
         checked (an output of raw logits whose rows are probabilities is
         read as probabilities, with a note in ``Capture.notes``).
+    score_columns : str, optional
+        ``"START:STOP"``: the output concatenates class scores with other
+        values (a detector's boxes and scores); capture only the scores at
+        positions START..STOP-1 along the Concat's axis.
 
     Rows of the inputs or logits holding NaN or Inf are reported as
     :class:`~onnxcal.errors.OnnxcalWarning` (count and first rows); the
@@ -191,13 +196,15 @@ def capture(
     """
     spec = _data_spec(data)
     limit = _max_bytes(max_model_bytes)
+    _check_columns(score_columns)
     if out is not None:
         check_output_path(out, [*_model_files(model_path, limit), *spec.files()], force=force)
     run = _run_options(batch_size, threads, optimization, provider)
     model = graph.load_model(model_path, max_bytes=limit)
     dataset = _load_data(model, spec, batch_size=run.batch_size)
     cap = _read_and_capture(
-        model, dataset, model_path, sha256_file(model_path), output, output_holds, activation, run, progress, out
+        model, dataset, model_path, sha256_file(model_path), output, output_holds, activation, run, progress, out,
+        columns=score_columns,
     )
     _warn_nonfinite_inputs(cap, cap.meta.data_source)
     if (bad := _capture.nonfinite_logits(cap)).count:
@@ -211,14 +218,21 @@ def capture(
     return cap
 
 
+def _check_columns(score_columns: str | None) -> None:
+    if score_columns is not None:
+        graph.parse_columns(score_columns)
+
+
 def _read_and_capture(
-    model, dataset: Dataset, model_path, sha: str, output, holds, activation, run: RunOptions, progress, out=None
+    model, dataset: Dataset, model_path, sha: str, output, holds, activation, run: RunOptions, progress, out=None,
+    columns: str | None = None,
 ) -> Capture:
     """Read the model (checked on the first rows), check the labels against it, capture its logits."""
     if dataset.labels is None:
         raise OnnxcalError(f"'{dataset.source}' has no labels", "add a 'labels' array")
     _capture.check_input_memory(model, run.batch_size, dataset)
-    read = _reading.read_model(model, dataset, output=output, holds=holds, activation=activation, run=run)
+    read = _reading.read_model(model, dataset, output=output, holds=holds, activation=activation, run=run,
+                               score_columns=columns)
     site = read.site
     kind = graph.fit_kind(site, activation)
     if kind == "softmax":
@@ -341,6 +355,9 @@ class PatchOptions:
         MatMul(+Add) instead of adding nodes (every method).
     output_holds : {"logits", "probabilities", "log-probabilities"}, optional
         What the output holds, when the graph cannot tell.
+    score_columns : str, optional
+        ``"START:STOP"``: calibrate only these positions of an output that
+        concatenates class scores with other values.
     """
 
     output: str | None = None
@@ -350,12 +367,15 @@ class PatchOptions:
     compute_dtype: str | None = None
     fold: bool = False
     output_holds: str | None = None
+    score_columns: str | None = None
 
     def patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict, reading: dict | None = None,
               fitted_on: str = ""):
         """``graph.patch`` with these options; ``reading`` says how a capture read the model."""
         if reading is None:
             reading = {} if self.output_holds is None else {"holds": self.output_holds, "holds_from": "stated"}
+        if self.score_columns is not None:
+            reading = {**reading, "score_columns": self.score_columns}
         return graph.patch(
             model,
             calibration,
@@ -422,6 +442,7 @@ def patch(
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
     output_holds: str | None = None,
     fitted_on_twin: bool = False,
+    score_columns: str | None = None,
 ) -> PatchResult:
     """Write a copy of the model that outputs calibrated probabilities.
 
@@ -438,10 +459,10 @@ def patch(
         T; or give ``fit``.
     fit : FitSummary or path, optional
         A fit (or FIT.json) whose parameters are baked in and recorded.
-    output, output_name, drop_logits, activation, compute_dtype, fold, output_holds
+    output, output_name, drop_logits, activation, compute_dtype, fold, output_holds, score_columns
         See :class:`PatchOptions`. With ``fit``, the output and how it was
-        read (e.g. probabilities read through log p) are the capture's,
-        unless given.
+        read (e.g. probabilities read through log p, the score columns)
+        are the capture's, unless given.
     force : bool
         Replace an existing ``out``.
     max_model_bytes : int or str, default 8 GiB
@@ -453,6 +474,7 @@ def patch(
         it. The record then holds both hashes.
     """
     limit = _max_bytes(max_model_bytes)
+    _check_columns(score_columns)
     inputs = [model_path] + ([fit] if isinstance(fit, (str, os.PathLike)) else [])
     external = _check_outputs(out, inputs, model_path, force, limit)
     calibration, fit_dict = _resolve_scaling(temperature, fit)
@@ -467,7 +489,8 @@ def patch(
     meta = fit_dict.get("capture") if isinstance(fit_dict.get("capture"), dict) else {}
     if output is None and meta.get("output") in {o.name for o in model.graph.output} and not records:
         output = meta["output"]
-    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds)
+    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds,
+                            score_columns)
     reading = _reading.patch_reading(meta) if output_holds is None and meta else None
     patched = patching.patch(model, calibration, sha=sha, path=model_path, fit=fit_dict, reading=reading,
                              fitted_on=fitted_on)
@@ -560,12 +583,13 @@ def _reference_checks(
 
 def _source_site(base, record: Record):
     """The class-score site of the uncalibrated model the record was made from, read as then."""
-    kw = _reading.patch_reading({"spelling": record.spelling, "holds": record.holds, "logits_from": record.logits_from})
+    kw = _reading.patch_reading({"spelling": record.spelling, "holds": record.holds, "logits_from": record.logits_from,
+                                 "score_columns": record.score_columns})
     if record.rewrite == "ml-log-probabilities":  # format 2: ai.onnx.ml probabilities were read through log p
         kw["logits_from"] = "log"
     # records written before source_output existed name the output or the scores
     output = record.source_output or (record.output if record.rewrite == "insert-before-activation" else record.scores)
-    site = graph.find_scores(base, output, logits_from=kw.get("logits_from"))
+    site = graph.find_scores(base, output, logits_from=kw.get("logits_from"), score_columns=kw.get("score_columns"))
     if "holds" in kw:
         site = graph.read_as(site, kw["holds"], record.scaling.activation, source=kw["holds_from"])
     return site
@@ -633,7 +657,7 @@ def _head_checks(patched, patched_path, records, dataset, cap, original, base, s
     for record in records:
         own = cap if cap is not None and (not several or cap.meta.output == record.source_output) else None
         ref = _reference(patched, patched_path, record, dataset, own, original, base, score_paths, run, progress)
-        site = graph.find_scores(patched, record.output)
+        site = graph.find_recorded(patched, record)
         rows = _run_output(patched, site, dataset, run, progress)
         if len(rows) != len(ref.logits):
             raise OnnxcalError(
@@ -1200,6 +1224,7 @@ def calibrate(
     drop_nonfinite: bool = False,
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
     output_holds: str | None = None,
+    score_columns: str | None = None,
 ) -> CalibrateResult:
     """Capture, fit, patch and verify in one go (and write a report).
 
@@ -1217,6 +1242,7 @@ def calibrate(
     they are refused); ``max_model_bytes`` as for :func:`capture`.
     """
     check_fit_options(options)
+    _check_columns(score_columns)
     spec = _data_spec(data)
     limit = _max_bytes(max_model_bytes)
     external = _check_outputs(out, [model_path, *spec.files()], model_path, force, limit)
@@ -1225,13 +1251,15 @@ def calibrate(
         inputs = [*_model_files(model_path, limit), *spec.files(), *outputs]
         _report_targets(report, _report.FORMATS, inputs, force, "--report")
     run = _run_options(batch_size, threads, optimization, provider)
-    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds)
+    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds,
+                            score_columns)
     model = graph.load_model(model_path, max_bytes=limit)
     _check_not_calibrated(model, model_path, output)
     graph.default_opset(model)  # before the capture: can the patch import the operators it adds?
     sha = sha256_file(model_path)
     dataset = _load_data(model, spec, batch_size=run.batch_size)
-    cap = _read_and_capture(model, dataset, model_path, sha, output, output_holds, activation, run, progress)
+    cap = _read_and_capture(model, dataset, model_path, sha, output, output_holds, activation, run, progress,
+                            columns=score_columns)
     keep = _capture.finite_mask(cap)
     full = cap
     cap, dropped = _finite(cap, dataset.source, drop_nonfinite)
@@ -1242,7 +1270,7 @@ def calibrate(
     patched = patching.patch(model, summary.scaling, sha=sha, path=model_path, fit=summary.to_dict(),
                              reading=_reading.patch_reading(cap.meta.to_dict()))
     record = graph.read_record(patched, cap.meta.output)
-    site = graph.find_scores(patched, record.output)
+    site = graph.find_recorded(patched, record)
     rows = _run_output(patched, site, dataset, run, progress)
     source_sha = sha if len(graph.read_records(patched)) == 1 else record.source_sha256  # other heads: the original's
     checks = _reference_checks(rows[keep], site, record, cap.logits, patched, model, source_sha)

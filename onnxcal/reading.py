@@ -53,6 +53,7 @@ def read_model(
     holds: str | None,
     activation: str | None,
     run: RunOptions,
+    score_columns: str | None = None,
 ) -> Reading:
     """The reading of ``model``'s output, checked on the first rows of ``dataset``.
 
@@ -62,7 +63,7 @@ def read_model(
         The logits found do not reproduce the model's output, or the data
         contradict ``holds`` (what the user says the output holds).
     """
-    site = graph.find_scores(model, output)
+    site = graph.find_scores(model, output, score_columns=score_columns)
     kind = graph.fit_kind(site, activation)
     notes: list[str] = []
     if holds is not None:
@@ -199,12 +200,16 @@ def patch_reading(meta: dict) -> dict:
         kw.update(holds=meta["holds"], holds_from=meta["spelling"])
     if meta.get("spelling") == "ml-classifier" and meta.get("logits_from") == "log":
         kw["logits_from"] = "log"
+    if meta.get("score_columns"):
+        kw["score_columns"] = meta["score_columns"]
     return kw
 
 
 def site_reading(site: ScoreSite) -> dict:
     """The keyword arguments of ``graph.patch`` that read a model as ``site`` does."""
-    return patch_reading({"spelling": site.spelling, "holds": site.holds, "logits_from": site.logits_from})
+    columns = "" if site.columns is None else f"{site.columns[1]}:{site.columns[2]}"
+    return patch_reading({"spelling": site.spelling, "holds": site.holds, "logits_from": site.logits_from,
+                          "score_columns": columns})
 
 
 def _params(records: tuple[Record, ...]) -> str:
@@ -242,7 +247,7 @@ def _tolerances(patched: onnx.ModelProto, original: onnx.ModelProto, records, na
     tols = {n: (tolerance(specs[n].dtype) if specs[n].is_float else 0.0) for n in names}
     for r in records:
         if r.output in tols:
-            site = graph.find_scores(patched, r.output)
+            site = graph.find_recorded(patched, r)
             dtypes = tuple(dict.fromkeys([*site.dtypes, *(site.dtype,)]))
             tols[r.output] = max(tols[r.output], output_tolerance(dtypes, site.post))
             if specs[r.output].dtype.startswith("seq("):

@@ -27,8 +27,8 @@ from onnx import helper, numpy_helper
 
 from ..errors import OnnxcalError
 from ..scaling import Scaling, check_scaling
-from .find import ScoreSite, find_scores, fit_kind, read_as
-from .fold import _fold, _roundings, _unfold
+from .find import Branch, ScoreSite, find_scores, fit_kind, read_as
+from .fold import _constants, _fold, _roundings, _unfold
 from .post import to_json
 from .record import Record, _damaged, _write_records, check_record, read_records
 from .surgery import (
@@ -42,7 +42,7 @@ from .surgery import (
     build_logits,
     scale_fn,
 )
-from .tensors import _ELEM, COMPUTE_DTYPES, DEFAULT_OUTPUT_NAME, ML_DOMAIN
+from .tensors import _ELEM, COMPUTE_DTYPES, DEFAULT_OUTPUT_NAME, ML_DOMAIN, _attr, subgraphs
 
 _SINGLE = ("softmax", "log-softmax", "sigmoid")
 _OPS = {"softmax": "Softmax", "logsoftmax": "LogSoftmax", "sigmoid": "Sigmoid"}
@@ -54,6 +54,11 @@ def _insert_before(s: _Surgery, site: ScoreSite, scale: ScaleFn, compute: str | 
     With a compute dtype, a single activation op runs in it and its result
     is cast back; a written-out activation gets the scaled logits cast back.
     """
+    if site.branches:  # the activation sits in subgraphs: insert in every one of them
+        for branch in site.branches:
+            sub = s.sub(_subgraph(s.graph, branch))
+            _insert_before(sub, branch.site, scale, compute)
+        return
     single = compute is not None and site.spelling in _SINGLE
     scaled = _scaled(s, site.scores, site.dtype, scale, compute)
     if compute is not None and not single:
@@ -70,6 +75,12 @@ def _insert_before(s: _Surgery, site: ScoreSite, scale: ScaleFn, compute: str | 
         inner = s.rename_output(act, 0, f"{wanted}_{compute}")
         _cast_back(s, inner, site.dtype, compute, wanted)
         s.flush(at + 1)
+
+
+def _subgraph(graph: onnx.GraphProto, branch: Branch) -> onnx.GraphProto:
+    """The subgraph a ``Branch`` reads (an attribute of one of ``graph``'s nodes)."""
+    node = graph.node[branch.node]
+    return next(a.g for a in node.attribute if a.name == branch.attribute)
 
 
 def _replace_values(s: _Surgery, site: ScoreSite, scale: ScaleFn, compute: str | None, opset: int) -> None:
@@ -195,22 +206,17 @@ def _undo(model: onnx.ModelProto, record: Record) -> None:
     """Undo in place the changes ``record`` lists."""
     g = model.graph
     ch = record.changes
-    added = set(ch["nodes"])
-    keep = [n for n in g.node if n.name not in added]
-    renamed = ch["renamed"]
-    for node in keep:
-        for i, name in enumerate(node.input):
-            node.input[i] = renamed.get(name, name)
-        for i, name in enumerate(node.output):
-            node.output[i] = renamed.get(name, name)
-    del g.node[:]
-    g.node.extend(keep)
+    _undo_nodes(g, set(ch["nodes"]), ch["renamed"])
     inits = [i for i in g.initializer if i.name not in set(ch["initializers"])]
     del g.initializer[:]
     g.initializer.extend(inits)
     infos = [vi for vi in g.value_info if vi.name not in set(ch.get("value_info", []))]
     del g.value_info[:]
     g.value_info.extend(infos)
+    if ch.get("inputs"):  # initializers listed as inputs (IR version 3)
+        kept_inputs = [vi for vi in g.input if vi.name not in set(ch["inputs"])]
+        del g.input[:]
+        g.input.extend(kept_inputs)
     outputs = list(g.output)
     restored = None
     if ch.get("dropped"):
@@ -229,6 +235,21 @@ def _undo(model: onnx.ModelProto, record: Record) -> None:
         model.opset_import.extend(kept)
     if record.folded:
         _unfold(g, record)
+
+
+def _undo_nodes(g: onnx.GraphProto, added: set[str], renamed: dict[str, str]) -> None:
+    """Remove the nodes a patch added and undo its renames, in ``g`` and in every subgraph
+    (a head inside If branches or a Loop/Scan body is patched there)."""
+    keep = [n for n in g.node if n.name not in added]
+    for node in keep:
+        for i, name in enumerate(node.input):
+            node.input[i] = renamed.get(name, name)
+        for i, name in enumerate(node.output):
+            node.output[i] = renamed.get(name, name)
+        for _, sub in subgraphs(node):
+            _undo_nodes(sub, added, renamed)
+    del g.node[:]
+    g.node.extend(keep)
 
 
 def _head(records: tuple[Record, ...], output: str | None) -> Record | None:
@@ -318,6 +339,10 @@ def _check_options(
             "--compute-dtype sets the dtype of the inserted Div, and with --fold there is none",
             "give one of --fold and --compute-dtype",
         )
+    if fold and (site.branches or site.columns):
+        where = "inside subgraphs" if site.branches else "in one part of a Concat"
+        raise OnnxcalError(f"--fold: the logits of output '{site.output}' are {where}; folding works on one "
+                           "linear layer of the main graph", "leave out --fold")
     if fold and site.from_probabilities:
         what = ("an ai.onnx.ml classifier, which has no logits layer" if site.spelling == "ml-classifier"
                 else f"logits computed from other values ({site.logits_from}), with no layer")
@@ -351,6 +376,7 @@ def patch(
     logits_from: str | None = None,
     fitted_on_sha256: str = "",
     site: ScoreSite | None = None,
+    score_columns: str | None = None,
 ) -> onnx.ModelProto:
     """Return a copy of ``model`` whose output carries calibrated probabilities.
 
@@ -398,6 +424,9 @@ def patch(
         on this very model), used as it is. Tests force a wrong reading this
         way to see verify catch it. Not for a model that already calibrates
         that output.
+    score_columns : str, optional
+        ``"START:STOP"``: calibrate only these positions of an output that
+        concatenates class scores with other values (see ``find_scores``).
 
     Returns
     -------
@@ -418,13 +447,13 @@ def patch(
         output = output if output not in (None, previous.output) else (previous.source_output or None)
     kind = activation or (calibration.activation if isinstance(calibration, Scaling) else None)
     if site is None:
-        site = find_scores(out, output, logits_from=logits_from)
+        site = find_scores(out, output, logits_from=logits_from, score_columns=score_columns)
         if holds is not None:
             site = read_as(site, holds, kind, source=holds_from)
     _check_heads(out, site, others)
     scaling = _site_scaling(calibration, site, activation)
     compute = _check_options(site, compute_dtype, fold, scaling)
-    s = _Surgery(out.graph)
+    s = _Surgery(out.graph, out.ir_version)
     opset = add_default_opset(s, out)
     if rounded := _roundings(previous):
         s.changes["rounded"] = rounded
@@ -455,6 +484,7 @@ def patch(
         logits_from=site.logits_from,
         post=to_json(site.post),
         fitted_on_sha256=fitted_on_sha256 if fitted_on_sha256 != source_sha256 else "",
+        score_columns=_columns_text(site),
     )
     _write_records(out, [*others, record])
     try:
@@ -465,6 +495,16 @@ def patch(
             "report this with the model's inspect output",
         ) from exc
     return out
+
+
+def _columns_text(site: ScoreSite) -> str:
+    """``"START:STOP"`` of a site that is one part of a Concat, else ""."""
+    return "" if site.columns is None else f"{site.columns[1]}:{site.columns[2]}"
+
+
+def find_recorded(model: onnx.ModelProto, record: Record) -> ScoreSite:
+    """The site of the output ``record`` calibrated in the patched ``model``, read as the patch read it."""
+    return find_scores(model, record.output, score_columns=record.score_columns or None)
 
 
 def _copy(model: onnx.ModelProto) -> onnx.ModelProto:
@@ -478,7 +518,7 @@ def _rewrite(
     new_output: str, drop_logits: bool, opset: int, fold: bool,
 ) -> tuple[str, str]:
     """Apply the rewrite the site calls for; its name and the calibrated output."""
-    if site.activation is not None and site.rewire:
+    if site.inserts:
         if not fold:
             _insert_before(s, site, scale, compute)
         return "insert-before-activation", site.output
@@ -530,19 +570,48 @@ def expose_scores(
     output (e.g. the output's values, to check the reading against).
     """
     out = _copy(model)
-    s = _Surgery(out.graph)
+    s = _Surgery(out.graph, out.ir_version)
     add_default_opset(s, out)
-    tensor = build_logits(s, site, site.scores)
+    tensor = _laid_out_logits(s, site)
+    return expose(out, [tensor, *also]), tensor
+
+
+def _laid_out_logits(s: _Surgery, site: ScoreSite) -> str:
+    """Add to ``s.graph`` the nodes giving the logits of ``site`` laid out like its output; their name."""
+    tensor = _branch_logits(s, site) if site.branches else build_logits(s, site, site.scores)
     for i in site.layout:
         node = onnx.NodeProto()
-        node.CopyFrom(out.graph.node[i])
+        node.CopyFrom(s.graph.node[i])
         node.name = s.name(f"onnxcal_{node.op_type.lower()}")
         node.input[0] = tensor
         tensor = s.name(f"{site.scores}_{node.op_type.lower()}")
         node.output[0] = tensor
         s.nodes.append(node)
-    s.flush(len(out.graph.node))
-    return expose(out, [tensor, *also]), tensor
+    s.flush(len(s.graph.node))
+    return tensor
+
+
+def _branch_logits(s: _Surgery, site: ScoreSite) -> str:
+    """The logits of a head inside subgraphs, as a new output of the If/Loop/Scan node.
+
+    Every branch (the body) gets one more output, its logits laid out like
+    the output the values leave by; the node gets one more output, which is
+    then the logits of the branch that ran (If) or the logits of every
+    iteration stacked like the values (a Loop's or Scan's scan output).
+    """
+    node = s.graph.node[site.node]
+    for branch in site.branches:
+        g = _subgraph(s.graph, branch)
+        inner = _laid_out_logits(s.sub(g), branch.site)
+        g.output.append(helper.make_tensor_value_info(inner, _ELEM[branch.site.dtype], None))
+    if node.op_type == "Scan":  # one more scan output, stacked like the one the values leave by
+        j = site.branches[0].slot - (len(node.input) - int(_attr(node, "num_scan_inputs", 0)))
+        for a in node.attribute:
+            if a.name in ("scan_output_axes", "scan_output_directions"):
+                a.ints.append(a.ints[j] if j < len(a.ints) else 0)
+    name = s.name(f"{site.scores}_exposed")
+    node.output.append(name)
+    return name
 
 
 def at_identity(
@@ -561,10 +630,10 @@ def at_identity(
         if record.folded:
             if original is None:
                 return None
-            source = {i.name: i for i in original.graph.initializer}
+            source, target = _constants(original.graph), _constants(out.graph)
             for name in record.changes.get("scaled", []):
-                if name in source and name in inits:
-                    inits[name].CopyFrom(source[name])
+                if name in source and name in target:
+                    target[name].CopyFrom(source[name])
             continue
         for role, name in (record.initializers or {"temperature": record.temperature_initializer}).items():
             init = inits.get(name)
