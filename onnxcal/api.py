@@ -309,10 +309,48 @@ def fit(
     cap = source if isinstance(source, Capture) else _capture.load_captures(inputs)
     where = cap.meta.data_source if isinstance(source, Capture) else ", ".join(map(str, inputs))
     cap, dropped = _finite(cap, where, drop_nonfinite)
-    summary = _with_note(_fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options), dropped)
+    summary = _with_note(_summarize(cap, options), dropped)
     if out is not None:
         _fit.save_fit(out, summary)
     return summary
+
+
+def _summarize(cap: Capture, options: FitOptions) -> FitSummary:
+    """``fit.summarize`` on a capture, with the checks that need what the fit does not know:
+    how the capture read the logits (``reading.fit_read_logits``) and the search bounds of T."""
+    summary = _reading.fit_read_logits(_fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options))
+    bound = _bound_warnings(summary.intervals)
+    return replace(summary, warnings=(*summary.warnings, *bound)) if bound else summary
+
+
+def _bound_warnings(intervals: dict | None) -> list[str]:
+    """Warnings for bootstrap intervals of T that reach the fit's search bounds.
+
+    A replicate whose resampled fit part is (nearly) separated perfectly
+    has its likelihood rise as T shrinks, and its T stops at the bound
+    ``fit.T_MIN`` (or, with scores carrying no information, at ``T_MAX``):
+    an interval ending there ends at the bound, not at an estimate.
+    """
+    found = (intervals or {}).get("parameters", {}).get("temperature")
+    if not found:
+        return []
+    pairs = [found] if isinstance(found[0], (int, float)) else [p for p in found if p is not None]
+    low = any(p[0] <= _fit.T_MIN * (1 + 1e-6) for p in pairs)
+    high = any(p[1] >= _fit.T_MAX * (1 - 1e-6) for p in pairs)
+    out = []
+    if low:
+        out.append(
+            f"the bootstrap interval of T reaches the search bound T = {_fit.T_MIN:g}: in some replicates the "
+            "resampled fit part is (nearly) separated perfectly and the likelihood keeps rising as T shrinks, so "
+            "the interval's lower end is the bound, not an estimate; use a larger or harder validation set"
+        )
+    if high:
+        out.append(
+            f"the bootstrap interval of T reaches the search bound T = {_fit.T_MAX:g}: in some replicates the "
+            "scores carry almost no information about the labels, so the interval's upper end is the bound, "
+            "not an estimate"
+        )
+    return out
 
 
 def _with_note(summary: FitSummary, note: str | None) -> FitSummary:
@@ -1264,7 +1302,7 @@ def calibrate(
     full = cap
     cap, dropped = _finite(cap, dataset.source, drop_nonfinite)
     _warn_nonfinite_inputs(full, dataset.source)
-    summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options)
+    summary = _summarize(cap, options)
     for note in (*cap.notes, dropped):
         summary = _with_note(summary, note)
     patched = patching.patch(model, summary.scaling, sha=sha, path=model_path, fit=summary.to_dict(),

@@ -25,6 +25,7 @@ from . import guard as _guard
 from .capture import RunOptions, probe, run_model
 from .data import Dataset, check_labels
 from .errors import OnnxcalError, OnnxcalWarning
+from .fit import FitSummary
 from .graph import Record, ScoreSite
 from .verify import (
     Check,
@@ -155,6 +156,41 @@ def capture_check(site: ScoreSite, kind: str):
             )
 
     return check
+
+
+PROBABILITIES_ADVICE = "really holds logits and not probabilities"
+"""The phrase of the fit's warning about a temperature far from 1 (``fit._far_warning``)."""
+
+
+def fit_read_logits(summary: FitSummary) -> FitSummary:
+    """``summary`` without the advice to check that the output holds logits, when onnxcal read them.
+
+    A temperature far from 1 makes the fit warn that the output may hold
+    probabilities. When the capture read the logits itself (the input of a
+    Softmax or Sigmoid it recognised, or log p of probabilities it knows to
+    be such, checked by the data guard), that advice is wrong: a note says
+    what T far from 1 means instead.
+    """
+    meta = summary.capture
+    if meta.get("activation") is None:
+        return summary
+
+    def keep(ws: tuple[str, ...]) -> tuple[str, ...]:
+        return tuple(w for w in ws if PROBABILITIES_ADVICE not in w)
+
+    if keep(summary.warnings) == tuple(summary.warnings):
+        return summary
+    t = summary.temperature
+    how = ("much over-confident (T > 1 softens it)" if t is not None and t > 1 else
+           "much under-confident (T < 1 sharpens it)" if t is not None else "far from calibrated")
+    note = (f"the fitted scaling is far from the identity: onnxcal read the logits behind output "
+            f"'{meta.get('output')}' itself ({meta.get('spelling')}, checked not to be probabilities), so the model "
+            f"is {how} on this set")
+    result = replace(summary.result, warnings=keep(summary.result.warnings))
+    held = summary.holdout_result
+    held = None if held is None else replace(held, warnings=keep(held.warnings))
+    return replace(summary, result=result, holdout_result=held, warnings=keep(summary.warnings),
+                   notes=(*summary.notes, note))
 
 
 def warn_saturated(site: ScoreSite, stats: _guard.RowStats | None) -> None:
