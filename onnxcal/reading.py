@@ -268,13 +268,28 @@ def identity(
     at_one = graph.at_identity(patched, records, original)
     if at_one is None:
         return skipped("identity", "the parameters are folded into the weights; give --original")
-    names = [o.name for o in original.graph.output if o.name in {p.name for p in patched.graph.output}]
+    kept = [o for o in original.graph.output if o.name in {p.name for p in patched.graph.output}]
+    names = [o.name for o in kept if _samples_first(graph.tensor_spec(o))]
     if not names:
         return skipped("identity", "the patched model keeps none of the original's outputs")
     want = run_model(original, dataset, names, options=run, progress=progress, description="running the original")
     got = run_model(at_one, dataset, names, options=run, progress=progress, description="running at the identity")
     tols = _tolerances(patched, original, records, names)
-    return identity_check([(n, w, g, tols[n]) for n, w, g in zip(names, want, got)], _params(records))
+    check = identity_check([(n, w, g, tols[n]) for n, w, g in zip(names, want, got)], _params(records))
+    others = [f"'{o.name}'" for o in kept if o.name not in names]
+    if others:  # a recurrent state (1 x N x H), a single number: batches do not stack on axis 0
+        check = replace(check, detail=f"{check.detail}; not compared: {', '.join(others)} (samples not on axis 0)")
+    return check
+
+
+def _samples_first(spec: graph.TensorSpec) -> bool:
+    """True unless the declared shape says the samples are not on axis 0: a single number, or a
+    fixed first dim before a dynamic one (an LSTM's state, num_directions x N x H)."""
+    if spec.shape is None:
+        return True
+    if not spec.shape:
+        return False
+    return not (isinstance(spec.shape[0], int) and any(not isinstance(d, int) for d in spec.shape[1:]))
 
 
 def _tolerances(patched: onnx.ModelProto, original: onnx.ModelProto, records, names: list[str]) -> dict[str, float]:
