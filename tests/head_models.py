@@ -268,7 +268,8 @@ def recurrent(head: str = "sigmoid", state_inputs: bool = False) -> onnx.ModelPr
 
 
 def fed_back_state() -> onnx.ModelProto:
-    """A written-out recurrent cell: state (N x H) in, state_out = Tanh(x W + state U) out, beside raw logits (N x 3)."""
+    """A written-out recurrent cell: state (N x H) in, state_out = Tanh(x W + state U) out,
+    beside raw logits (N x 3)."""
     nodes = [
         helper.make_node("MatMul", ["x2", "cell_w"], ["xw"], name="cell_x"),
         helper.make_node("MatMul", ["state", "cell_u"], ["su"], name="cell_s"),

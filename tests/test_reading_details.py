@@ -73,8 +73,8 @@ def test_the_class_count_comes_from_the_declared_output_when_the_logits_have_no_
 
 
 def test_a_dim_of_minus_one_is_dynamic_not_a_fixed_batch(tmp_path, run_cli):
-    model = _model([helper.make_node("Gemm", ["x", "w", "b"], ["z"]), helper.make_node("Softmax", ["z"], ["p"], axis=1)],
-                   "p", [-1, 3], _wb(), inputs=[helper.make_tensor_value_info("x", TensorProto.FLOAT, [-1, 4])])
+    nodes = [helper.make_node("Gemm", ["x", "w", "b"], ["z"]), helper.make_node("Softmax", ["z"], ["p"], axis=1)]
+    model = _model(nodes, "p", [-1, 3], _wb(), inputs=[helper.make_tensor_value_info("x", TensorProto.FLOAT, [-1, 4])])
     path = save_model(model, tmp_path / "m.onnx")
     info = api.inspect(path)
     assert not info.batch_fixed and info.inputs[0].shape == (None, 4)
@@ -97,10 +97,11 @@ def test_fold_reads_weights_from_constant_nodes():
              helper.make_node("Softmax", ["z"], ["p"], axis=1, name="softmax")]
     model = _model(nodes, "p", ["N", 3], [])
     x = RNG.normal(size=(20, 4)).astype(np.float32)
-    for scaling in (2.0, api.Scaling("vector", {"w": [0.5, 1.5, 0.8], "b": [0.1, -0.2, 0.0]}, "multiclass")):
+    w_v, b_v = np.array([0.5, 1.5, 0.8]), np.array([0.1, -0.2, 0.0])
+    vector = api.Scaling("vector", {"w": list(w_v), "b": list(b_v)}, "multiclass")
+    for scaling, w, b in ((2.0, np.full(3, 0.5), np.zeros(3)), (vector, w_v, b_v)):
         folded = do_patch(model, scaling, fold=True)
         assert not [n for n in folded.graph.node if n.op_type in ("Div", "Mul")]  # no extra op: folded
-        w, b = (np.array([0.5, 0.5, 0.5]), np.zeros(3)) if scaling == 2.0 else (np.array([0.5, 1.5, 0.8]), np.array([0.1, -0.2, 0.0]))
         (got,) = run(folded, x)
         np.testing.assert_allclose(got, sp.softmax(logits_of(x) * w + b, axis=1), atol=1e-5)
         back = graph.unpatch(folded)
@@ -139,8 +140,8 @@ def test_ir3_models_pass_the_checker_after_patching(final, post):
     onnx.checker.check_model(patched, full_check=True)  # the ONNX checker: T is listed as an input too
     assert "onnxcal_temperature" in {i.name for i in patched.graph.input}
     x = RNG.normal(size=(10, 4)).astype(np.float32)
-    got = run(patched, x)[-1]
-    np.testing.assert_allclose(got, sp.softmax(logits_of(x) / 2.0, axis=1) * (100 if post else 1), atol=1e-5 * (100 if post else 1))
+    gain = 100 if post else 1
+    np.testing.assert_allclose(run(patched, x)[-1], sp.softmax(logits_of(x) / 2.0, axis=1) * gain, atol=1e-5 * gain)
     assert graph.unpatch(patched).SerializeToString() == model.SerializeToString()
 
 

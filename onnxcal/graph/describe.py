@@ -10,9 +10,9 @@ import onnx
 from ..errors import OnnxcalError
 from . import post as _post
 from .find import ScoreSite, _words_of, find_scores
-from .site import COMPOSED_WORDS
 from .record import Record, read_records
 from .rewrite import find_recorded
+from .site import COMPOSED_WORDS
 from .tensors import TensorSpec, opset_version, tensor_spec
 
 

@@ -24,7 +24,7 @@ from . import post as _post
 from .match import Found, View
 from .passes import RESHAPES, Step, step
 from .patterns import RAW_TRANSFORMS, Spelling, first_match, ml_transform
-from .site import HOLDS, Branch, ScoreSite, _words_of, fit_kind, read_as
+from .site import HOLDS, Branch, ScoreSite, _words_of, fit_kind, read_as, words_for
 from .tensors import (
     _ELEM,
     TensorSpec,
@@ -214,7 +214,7 @@ def _inner(view: View, spec: TensorSpec) -> ScoreSite:
 def _read(view: View, spec: TensorSpec, columns: tuple[int, int] | None = None, top: bool = True) -> ScoreSite:
     if top:
         view.output = spec.name
-    tensor, steps = spec.name, []
+    tensor, steps = spec.name, list[Step]()
     while True:
         found = first_match(tensor, view)
         if found is not None:
@@ -268,12 +268,13 @@ def _site(view: View, spec: TensorSpec, values: str, steps: list[Step], spelling
     if rank == 0:
         raise _rank_zero(z, spec.name)
     axis = spelling.axis(found, view, rank)
-    size = z_shape[axis] if z_shape is not None and axis < len(z_shape) else None
+    dim = z_shape[axis] if z_shape is not None and axis < len(z_shape) else None
+    size = dim if isinstance(dim, int) else None
     if spelling.name == "ml-classifier":
         size = _ml_classes(node, shapes)
     elif spelling.activation == "sigmoid" and rank == 1:
         size = 1  # a rank-1 Sigmoid: one binary score per row
-    rewire = ()
+    rewire: tuple[tuple[int, int], ...] = ()
     if logits_from == "tensor":
         rewire = tuple((i, slot) for i in sorted(found.matched) for slot, name in enumerate(view.node(i).input)
                        if name == z)
@@ -297,10 +298,11 @@ def _assemble(view: View, spec: TensorSpec, values: str, steps: list[Step], c: n
     forward = list(reversed(steps))
     if c.columns is not None:
         _check_after_concat(view, forward, c)
-    out_axis, out_rank, layout, taken = _follow(view, values, c.axis, c.rank, forward, _words_of(c))
+    out_axis, out_rank, layout, taken = _follow(view, values, c.axis, c.rank, forward, words_for(c.spelling))
     size = c.size
     if size is None and not taken and spec.shape is not None and len(spec.shape) == out_rank:
-        size = spec.shape[out_axis]  # declared by the output (the logits' shape unknown)
+        declared = spec.shape[out_axis]  # declared by the output (the logits' shape unknown)
+        size = declared if isinstance(declared, int) else None
     path = [values, *(s.source for s in steps), tensor]
     dtypes = tuple(dict.fromkeys(d for d in [c.dtype, *c.dtypes, *(shapes.dtype(t) for t in path)] if d in _ELEM))
     return ScoreSite(

@@ -14,8 +14,10 @@ ReduceMean, Concat, LSTM, GRU, RNN).
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
+
+import onnx
 
 from ..errors import OnnxcalError
 from .match import View
@@ -38,10 +40,10 @@ class Composed:
 
     scores: str
     logits_from: str
-    activation: str
+    activation: str | None
     spelling: str
     holds: str
-    node: int
+    node: int | None
     nodes: tuple[int, ...]
     axis: int
     rank: int
@@ -66,15 +68,23 @@ def spec_of(view: View, tensor: str) -> TensorSpec:
     return TensorSpec(tensor, dtype, view.shapes.shape(tensor), dtype in ("float16", "bfloat16", "float32", "float64"))
 
 
-def _name(node) -> str:
+def _name(node: onnx.NodeProto) -> str:
     return f"{node.op_type} '{node.name or node.output[0]}'"
+
+
+def _size(d: int | str | None) -> int | None:
+    """A dim as a size: None when symbolic or unknown."""
+    return d if isinstance(d, int) else None
 
 
 # --------------------------------------------------------------------------
 # Heads inside subgraphs
 
 
-def _exits(node, slot: int, view: View) -> tuple[list[tuple[str, object, int]], int | None] | None:
+Exit = tuple[str, onnx.GraphProto, int]
+
+
+def _exits(node: onnx.NodeProto, slot: int, view: View) -> tuple[list[Exit], int | None] | None:
     """The subgraph outputs that give ``node``'s output ``slot``, and the axis a Loop/Scan stacks
     the iterations on (None for If). None for a value carried from one iteration to the next.
 
@@ -99,7 +109,7 @@ def _exits(node, slot: int, view: View) -> tuple[list[tuple[str, object, int]], 
     return None
 
 
-def _reached_outputs(graph, start: str) -> set[str]:
+def _reached_outputs(graph: onnx.GraphProto, start: str) -> set[str]:
     """The outputs of ``graph`` whose values depend on tensor ``start`` (through any node,
     subgraphs' reads of outer tensors included)."""
     reads: dict[str, list[int]] = {}
@@ -117,7 +127,7 @@ def _reached_outputs(graph, start: str) -> set[str]:
     return {o.name for o in graph.output} & seen
 
 
-def _all(graph):
+def _all(graph: onnx.GraphProto) -> Iterator[onnx.NodeProto]:
     for node in graph.node:
         yield node
         for _, g in subgraphs(node):
@@ -192,14 +202,14 @@ def _probabilities_at(view: View, tensor: str, index: int, inner: ScoreSite, axi
                       spelling: str, words: str) -> Composed | None:
     """``tensor`` read as holding what ``inner`` holds, calibrated in place through log p, logit p
     or the log-probabilities themselves (``replace-values``)."""
-    if inner.post:
+    if inner.post or inner.activation is None:
         return None  # percent, clipped, one class: the data guard reads the values
     how = {"softmax": "log", "sigmoid": "logit", "logsoftmax": "log-probabilities"}[inner.activation]
     size = inner.num_classes
     if inner.activation == "sigmoid":
         axis = 1 if rank >= 2 else 0
         shape = view.shapes.shape(tensor)
-        size = 1 if rank <= 1 else (shape[axis] if shape is not None and isinstance(shape[axis], int) else None)
+        size = 1 if rank <= 1 else (_size(shape[axis]) if shape is not None and len(shape) > axis else None)
     dtype = view.shapes.dtype(tensor) or inner.output_dtype or inner.dtype
     return Composed(tensor, how, inner.activation, spelling, inner.holds, index, (index,), axis, rank,
                     axis, rank, size, dtype, words, values=tensor)
@@ -307,10 +317,11 @@ def concat_part(
     if rank is None:
         return None
     axis = int(_attr(node, "axis", 1)) % rank
-    parts, start = [], 0
+    parts: list[_Part] = []
+    start: int | None = 0
     for name in node.input:
         shape = view.shapes.shape(name)
-        size = shape[axis] if shape is not None and len(shape) == rank and isinstance(shape[axis], int) else None
+        size = _size(shape[axis]) if shape is not None and len(shape) == rank else None
         try:
             site = read(view, spec_of(view, name))
         except OnnxcalError:
@@ -335,10 +346,12 @@ def concat_part(
     )
 
 
-def _mixed(node, tensor: str, axis: int, parts: list[_Part], columns) -> OnnxcalError:
+def _mixed(
+    node: onnx.NodeProto, tensor: str, axis: int, parts: list[_Part], columns: tuple[int, int] | None
+) -> OnnxcalError:
     listed = "; ".join(p.describe() for p in parts)
-    offer = [p for p in parts if _isolable(p, axis)]
-    hint = (f"calibrate only the scores with --score-columns {offer[0].start}:{offer[0].start + offer[0].size}"
+    offer = [(p.start, p.start + p.size) for p in parts if _isolable(p, axis) and p.start is not None and p.size]
+    hint = (f"calibrate only the scores with --score-columns {offer[0][0]}:{offer[0][1]}"
             " (the other positions stay as they are)" if offer else
             "onnxcal cannot isolate the scores here (their extent is not fixed in the graph, or they are "
             "laid out differently); choose another output with --output")

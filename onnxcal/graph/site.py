@@ -250,8 +250,13 @@ def fit_kind(site: ScoreSite, requested: str | None = None) -> str:
 
 
 def _words_of(site: ScoreSite) -> str:
-    spelling = BY_NAME.get(site.spelling)
-    return spelling.words if spelling is not None else COMPOSED_WORDS.get(site.spelling, site.spelling)
+    return words_for(site.spelling)
+
+
+def words_for(name: str) -> str:
+    """A spelling's name in words (``"Softmax"``, ``"a mean (ReduceMean) of probabilities"``)."""
+    spelling = BY_NAME.get(name)
+    return spelling.words if spelling is not None else COMPOSED_WORDS.get(name, name)
 
 
 # Spellings the finder composes itself (not a pattern of ``SPELLINGS``), in words.
