@@ -439,7 +439,7 @@ def _describe_site(site) -> str:
     where = f", values in tensor '{site.tensor}'" if site.tensor != site.output else ""
     return (
         f"output '{site.output}' ({ends}{where}; class axis {site.class_axis} of rank "
-        f"{site.rank}, {site.num_classes or '?'} classes, {site.dtype})"
+        f"{site.rank}, {site.num_classes or '?'} class{'' if site.num_classes == 1 else 'es'}, {site.dtype})"
     )
 
 
