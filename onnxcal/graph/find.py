@@ -57,7 +57,7 @@ def _named(view: View, output: str) -> TensorSpec:
                     f"output '{output}' has element type {s.dtype}, not a float type",
                     "choose the output that holds class scores",
                 )
-            if (why := nested.recurrent_state(view, output)) is not None:
+            if (why := nested.recurrent_state(view, output, loops=False)) is not None:
                 raise OnnxcalError(
                     f"output '{output}' is {why}: a state the model hands back to be fed in again, "
                     "not class scores",
@@ -70,8 +70,9 @@ def _named(view: View, output: str) -> TensorSpec:
 
 def _without_states(view: View, usable: list[TensorSpec]) -> list[TensorSpec]:
     """The outputs that may hold class scores: never a recurrent state (an LSTM's ``Y_h``, a Loop's
-    carried value), nor, beside other candidates, an output that mirrors an input it is computed
-    from (a state fed back)."""
+    carried value; the latter may still be named with ``--output``: a sum of logits carried through a
+    Loop is class scores), nor, beside other candidates, an output that mirrors an input it is
+    computed from (a state fed back)."""
     states = {s.name: why for s in usable if (why := nested.recurrent_state(view, s.name)) is not None}
     if states and len(states) == len(usable):
         listed = "; ".join(f"'{name}' is {why}" for name, why in states.items())

@@ -369,13 +369,13 @@ def _mixed(
 RECURRENT = {"LSTM": ("Y_h", "Y_c"), "GRU": ("Y_h",), "RNN": ("Y_h",)}
 
 
-def recurrent_state(view: View, tensor: str, depth: int = 0) -> str | None:
+def recurrent_state(view: View, tensor: str, loops: bool = True, depth: int = 0) -> str | None:
     """Why ``tensor`` is a recurrent state (in words), or None.
 
-    A state output of an LSTM, GRU or RNN (``Y_h``, ``Y_c``), a value a
-    Loop carries or a Scan's state, reached through layout ops or a Concat
-    (of hidden and cell states): what a streaming caller feeds back as the
-    next call's state input, never class scores.
+    A state output of an LSTM, GRU or RNN (``Y_h``, ``Y_c``: what a
+    streaming caller feeds back as the next call's initial state), and with
+    ``loops`` a value a Loop carries or a Scan's state, reached through
+    layout ops or a Concat (of hidden and cell states).
     """
     i = view.producer(tensor)
     if i is None or depth > 64:
@@ -384,14 +384,14 @@ def recurrent_state(view: View, tensor: str, depth: int = 0) -> str | None:
     slot = list(node.output).index(tensor)
     if node.op_type in RECURRENT and 1 <= slot <= len(RECURRENT[node.op_type]):
         return f"the state output {RECURRENT[node.op_type][slot - 1]} of {_name(node)}"
-    if node.op_type == "Loop" and slot < len(node.input) - 2:
+    if loops and node.op_type == "Loop" and slot < len(node.input) - 2:
         return f"a value {_name(node)} carries from one iteration to the next"
-    if node.op_type == "Scan" and slot < len(node.input) - int(_attr(node, "num_scan_inputs", 0)):
+    if loops and node.op_type == "Scan" and slot < len(node.input) - int(_attr(node, "num_scan_inputs", 0)):
         return f"a state of {_name(node)}"
     if node.op_type in LAYOUT:
-        return recurrent_state(view, node.input[0], depth + 1)
+        return recurrent_state(view, node.input[0], loops, depth + 1)
     if node.op_type == "Concat":
-        return next((why for x in node.input if (why := recurrent_state(view, x, depth + 1))), None)
+        return next((why for x in node.input if (why := recurrent_state(view, x, loops, depth + 1))), None)
     return None
 
 
