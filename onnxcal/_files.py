@@ -19,7 +19,7 @@ import sys
 import tempfile
 import time
 import warnings
-from collections.abc import Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from pathlib import Path
 
 from .errors import OnnxcalError, OnnxcalWarning
@@ -42,6 +42,73 @@ def sha256_file(path: str | os.PathLike) -> str:
     except OSError as exc:
         raise OnnxcalError(f"cannot read '{path}': {exc.strerror or exc}", "check that the file is readable") from exc
     return digest.hexdigest()
+
+
+def _data_runs(src: int, start: int, end: int) -> Iterator[tuple[int, int]]:
+    """The (offset, stop) runs of ``src`` between ``start`` and ``end`` that may hold data (not holes).
+
+    ``SEEK_DATA`` / ``SEEK_HOLE`` where the OS and file system answer; else the whole range.
+    """
+    if not hasattr(os, "SEEK_DATA"):
+        yield start, end
+        return
+    pos = start
+    while pos < end:
+        try:
+            data = os.lseek(src, pos, os.SEEK_DATA)
+            hole = os.lseek(src, data, os.SEEK_HOLE)
+        except OSError as exc:
+            if exc.errno == errno.ENXIO:  # only a hole from pos to the end of the file
+                return
+            yield pos, end  # the file system cannot tell
+            return
+        if data >= end:
+            return
+        yield data, min(hole, end)
+        pos = hole
+
+
+def copy_range(
+    src: int, dst: int, length: int, src_offset: int, dst_offset: int, *, skip_holes: bool = False
+) -> None:
+    """Copy ``length`` bytes from ``src`` at ``src_offset`` to ``dst`` at ``dst_offset`` (file descriptors).
+
+    The kernel copies (``os.copy_file_range``: no bytes pass through this
+    process, and a file system that can share extents copy-on-write, or a
+    network file system that copies on the server, does so; the result is
+    an independent file either way); where it cannot (another file system,
+    an old kernel, another OS) through a buffer of 8 MiB. Memory stays flat
+    whatever ``length`` is. With ``skip_holes`` the holes of a sparse
+    source are left unwritten, so the destination stays sparse: only for a
+    destination that reads zeros there (a new file, extended at the end).
+    """
+    runs = _data_runs(src, src_offset, src_offset + length) if skip_holes else [(src_offset, src_offset + length)]
+    for start, stop in runs:
+        _copy_run(src, dst, stop - start, start, dst_offset + start - src_offset)
+
+
+def _copy_run(src: int, dst: int, length: int, src_offset: int, dst_offset: int) -> None:
+    done = 0
+    fast = hasattr(os, "copy_file_range")
+    while done < length:
+        count = length - done
+        if fast:
+            try:
+                n = os.copy_file_range(src, dst, count, src_offset + done, dst_offset + done)
+            except OSError as exc:
+                if exc.errno not in (errno.EXDEV, errno.ENOSYS, errno.EINVAL, errno.EOPNOTSUPP, errno.ENOTSUP):
+                    raise
+                fast, n = False, -1
+            if n == 0:
+                raise OSError(errno.EIO, f"the source ends {length - done} bytes early")
+            if n > 0:
+                done += n
+                continue
+        block = os.pread(src, min(count, 8 << 20), src_offset + done)
+        if not block:
+            raise OSError(errno.EIO, f"the source ends {length - done} bytes early")
+        os.pwrite(dst, block, dst_offset + done)
+        done += len(block)
 
 
 def sha256_bytes(data: bytes) -> str:
@@ -355,8 +422,15 @@ def atomic_path(dest: str | os.PathLike) -> Iterator[Path]:
         yield tmp
 
 
-def atomic_write_files(files: Mapping[str | os.PathLike, bytes]) -> None:
+Writer = Callable[[Path], None]
+"""Writes a whole file to the (temporary) path it is given: a file too large to hold as bytes."""
+
+
+def atomic_write_files(files: Mapping[str | os.PathLike, bytes | Writer]) -> None:
     """Write several files together, each atomically (see :func:`atomic_paths`).
+
+    Each value is the file's bytes, or a :data:`Writer` that writes it to
+    the temporary path it is given (streamed, e.g. a model's weights).
 
     Every file is written in full under a temporary name before any is
     renamed into place, so a failure while writing (a full disk) leaves none
@@ -377,7 +451,10 @@ def atomic_write_files(files: Mapping[str | os.PathLike, bytes]) -> None:
         with atomic_paths(list(files)) as tmps:
             for tmp, (dest, data) in zip(tmps, files.items()):
                 try:
-                    tmp.write_bytes(data)
+                    if callable(data):
+                        data(tmp)
+                    else:
+                        tmp.write_bytes(data)
                 except OSError as exc:
                     raise write_error(exc, dest) from exc
     except BaseException:

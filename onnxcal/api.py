@@ -31,7 +31,6 @@ from ._files import (
     check_output_path,
     check_writable,
     require_file,
-    sha256_bytes,
     sha256_file,
 )
 from ._limits import DEFAULT_MAX_MODEL_BYTES, parse_size
@@ -77,9 +76,9 @@ def inspect(model_path: str | os.PathLike, *, max_model_bytes: int | str = DEFAU
     files, with their external data, are refused before they are read.
     """
     limit = _max_bytes(max_model_bytes)
-    model = graph.load_model(model_path, max_bytes=limit)
+    model = graph.load_model(model_path, max_bytes=limit, count_external=False)
     external = tuple(str(f) for f in graph.external_data_files(model_path, max_bytes=limit))
-    return graph.describe(model, model_path, sha256_file(model_path), external)
+    return graph.describe(model, model_path, graph.model_sha256(model_path), external)
 
 
 def _finite(cap: Capture, source: str, drop: bool) -> tuple[Capture, str | None]:
@@ -203,8 +202,8 @@ def capture(
     model = graph.load_model(model_path, max_bytes=limit)
     dataset = _load_data(model, spec, batch_size=run.batch_size)
     cap = _read_and_capture(
-        model, dataset, model_path, sha256_file(model_path), output, output_holds, activation, run, progress, out,
-        columns=score_columns,
+        model, dataset, model_path, graph.model_sha256(model_path), output, output_holds, activation, run, progress,
+        out, columns=score_columns,
     )
     _warn_nonfinite_inputs(cap, cap.meta.data_source)
     if (bad := _capture.nonfinite_logits(cap)).count:
@@ -492,7 +491,9 @@ def patch(
         stack); the calibration of other outputs is kept.
     out : path
         The patched model; must differ from ``model_path``. A model with
-        external data is written with its weights in ``out``.data.
+        external data is written with its weights in ``out``.data, streamed
+        from the model's files (never loaded; only ``fold`` reads the one
+        weight it scales).
     temperature : float, optional
         T; or give ``fit``.
     fit : FitSummary or path, optional
@@ -504,7 +505,7 @@ def patch(
     force : bool
         Replace an existing ``out``.
     max_model_bytes : int or str, default 8 GiB
-        Larger model files (with external data) are refused unread.
+        Larger model files are refused unread (the external data do not count: patch never loads them).
     fitted_on_twin : bool
         The fit was made on another build of this model (its float16 or
         quantized twin): a fit whose capture's model sha256 differs from
@@ -518,8 +519,8 @@ def patch(
     calibration, fit_dict = _resolve_scaling(temperature, fit)
     if fitted_on_twin and fit is None:
         raise OnnxcalError("--fitted-on-twin applies to --fit (a fit made on another build of the model)")
-    model = graph.load_model(model_path, max_bytes=limit)
-    sha = sha256_file(model_path)
+    model = graph.load_model(model_path, max_bytes=limit, count_external=False)
+    sha = graph.model_sha256(model_path)
     records = graph.read_records(model)
     for previous in records:  # re-patching undoes a head: its record must fit the graph
         graph.check_record(model, previous, f"'{model_path}'")
@@ -536,6 +537,15 @@ def patch(
     return PatchResult(path=str(out), record=graph.read_record(patched, output))
 
 
+def _file_only_sha256(model_path) -> str | None:
+    """The sha256 of the .onnx file alone, for a model with external data (None without).
+
+    onnxcal before external data were hashed (docs/graph.md, "What the source
+    hash covers") recorded this in captures and records; they are still read.
+    """
+    return sha256_file(model_path) if graph.external_data_files(model_path) else None
+
+
 def _provenance(fit_dict: dict, fit, model_path, sha: str, records, twin: bool) -> str:
     """The sha256 of the twin the fit was made on ("" for this model); a fit of another model is refused.
 
@@ -544,7 +554,7 @@ def _provenance(fit_dict: dict, fit, model_path, sha: str, records, twin: bool) 
     """
     meta = fit_dict.get("capture") if isinstance(fit_dict.get("capture"), dict) else {}
     fitted = meta.get("model_sha256") if isinstance(meta.get("model_sha256"), str) else None
-    mine = {sha, *(r.source_sha256 for r in records)}
+    mine = {sha, _file_only_sha256(model_path), *(r.source_sha256 for r in records)}
     if fit is None or not fitted or fitted in mine:
         return ""
     if not twin:
@@ -584,7 +594,8 @@ def _run_output(model, site, dataset: Dataset, run: RunOptions, progress) -> np.
 
 
 def _reference_checks(
-    rows: np.ndarray, site, record: Record, logits: np.ndarray, patched, original_model, source_sha: str | None
+    rows: np.ndarray, site, record: Record, logits: np.ndarray, patched, original_model, source_sha: str | None,
+    file_only_sha: str | None = None,
 ) -> list[Check]:
     """Checks (1)-(3): the outputs against the reference, the record against the graph and the source.
 
@@ -615,7 +626,7 @@ def _reference_checks(
             )
         )
     else:
-        checks.append(_verify.source_check(record.source_sha256, source_sha))
+        checks.append(_verify.source_check(record.source_sha256, source_sha, file_only_sha))
     return checks
 
 
@@ -657,6 +668,7 @@ class _Reference:
     source_sha: str | None  # the original's sha256, when known
     original_model: object | None  # to read folded parameters back against
     notes: tuple[str, ...] = ()
+    file_only_sha: str | None = None  # the original's .onnx file alone, when it has external data
 
 
 def _reference(patched, patched_path, record: Record, dataset, cap, original, base, score_paths, run, progress) -> _Reference:
@@ -665,7 +677,8 @@ def _reference(patched, patched_path, record: Record, dataset, cap, original, ba
         return _Reference(cap.logits, "scores", ", ".join(map(str, score_paths)), cap.meta.model_sha256, None)
     if base is not None:
         logits = _capture.capture_scores(base, dataset, _source_site(base, record), options=run, progress=progress)
-        return _Reference(logits, "original", str(original), sha256_file(original), base)
+        return _Reference(logits, "original", str(original), graph.model_sha256(original), base,
+                          file_only_sha=_file_only_sha256(original))
     unpatched = _unpatched(patched, patched_path)
     logits = _capture.capture_scores(unpatched, dataset, _source_site(unpatched, record), options=run, progress=progress)
     notes = [
@@ -705,7 +718,9 @@ def _head_checks(patched, patched_path, records, dataset, cap, original, base, s
             )
         keep, dropped = _finite_outputs(rows, ref.logits, dataset, drop)
         kept = (rows, ref.logits) if keep is None else (rows[keep], ref.logits[keep])
-        head = _reference_checks(kept[0], site, record, kept[1], patched, ref.original_model, ref.source_sha)
+        head = _reference_checks(
+            kept[0], site, record, kept[1], patched, ref.original_model, ref.source_sha, ref.file_only_sha
+        )
         if record.rewrite.startswith("append-"):
             head.append(_raw_reading_check(kept[1], record))
         checks += [replace(c, name=f"{c.name} ({record.source_output})") for c in head] if several else head
@@ -727,7 +742,7 @@ def _default_original(patched_path, records) -> tuple[Path | None, str | None]:
     candidate = Path(patched_path).parent / records[0].source_name
     if not records[0].source_name or not candidate.is_file() or candidate.resolve() == Path(patched_path).resolve():
         return None, None
-    if sha256_file(candidate) != records[0].source_sha256:
+    if records[0].source_sha256 not in (graph.model_sha256(candidate), _file_only_sha256(candidate)):
         return None, (f"'{candidate}' beside the patched model is not the recorded original (its sha256 differs "
                       "from the record's), so it was not used")
     return candidate, None
@@ -1185,7 +1200,7 @@ def report(
         record = _record_of(model, limit)
         summary, scaling = _fit_from_record(record, model), record.scaling
         source_sha, what = record.source_sha256, f"the calibration in '{model}'"
-        calibrated = {"name": Path(model).name, "path": str(model), "sha256": sha256_file(model)}
+        calibrated = {"name": Path(model).name, "path": str(model), "sha256": graph.model_sha256(model)}
     _check_report_scaling(scaling, cap, source_sha, what)
     names = _class_names(class_names, cap.logits.shape[1]) or _capture_names(cap)
     content = _report.build(
@@ -1217,7 +1232,7 @@ def _record_of(model_path, limit: int) -> Record:
     For a folded model the parameters cannot be read back without the
     original (``onnxcal verify --original`` checks them).
     """
-    model = graph.load_model(model_path, max_bytes=limit)
+    model = graph.load_model(model_path, max_bytes=limit, count_external=False)
     record = graph.read_record(model)
     if record is None:
         raise OnnxcalError(
@@ -1294,7 +1309,7 @@ def calibrate(
     model = graph.load_model(model_path, max_bytes=limit)
     _check_not_calibrated(model, model_path, output)
     graph.default_opset(model)  # before the capture: can the patch import the operators it adds?
-    sha = sha256_file(model_path)
+    sha = graph.model_sha256(model_path)
     dataset = _load_data(model, spec, batch_size=run.batch_size)
     cap = _read_and_capture(model, dataset, model_path, sha, output, output_holds, activation, run, progress,
                             columns=score_columns)
@@ -1322,7 +1337,7 @@ def calibrate(
     written_report = None
     if report is not None:
         calibrated = None if written is None else {
-            "name": Path(out).name, "path": str(out), "sha256": sha256_bytes(files[Path(out)])
+            "name": Path(out).name, "path": str(out), "sha256": graph.saved_sha256(patched, out, external=external)
         }
         content = _report.build(
             cap, summary.scaling, summary=summary, class_names=_capture_names(cap), calibrated=calibrated,

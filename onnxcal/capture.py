@@ -44,6 +44,7 @@ from .data import Dataset, check_label_array, check_labels, match_inputs, read_n
 from ._limits import check_memory, format_bytes
 from .errors import OnnxcalError, OnnxcalWarning, first_line
 from .graph import ScoreSite, expose_scores, find_scores, fit_kind, np_dtype, tensor_spec
+from .graph.external import ORT_FOLDER_OPTION, for_onnxruntime
 from .guard import PROBE_ROWS, RowStats
 
 ProgressFn = Callable[[str, int, int], None]
@@ -260,7 +261,11 @@ class Capture:
 
 
 def make_session(model: onnx.ModelProto, options: RunOptions | None = None):
-    """An onnxruntime session for an in-memory model (CPU unless ``options`` say else)."""
+    """An onnxruntime session for an in-memory model (CPU unless ``options`` say else).
+
+    Weights the model keeps in external data are read by onnxruntime from
+    their files (never serialised into one message, which could not exceed 2 GiB).
+    """
     import onnxruntime as ort
 
     options = options or RunOptions()
@@ -272,8 +277,11 @@ def make_session(model: onnx.ModelProto, options: RunOptions | None = None):
         ort.GraphOptimizationLevel, OPTIMIZATION_LEVELS[options.optimization]
     )
     providers = [options.provider] + ([CPU] if options.provider != CPU else [])
+    data, folder = for_onnxruntime(model)  # weights left in their files are read from there
+    if folder is not None:
+        opts.add_session_config_entry(ORT_FOLDER_OPTION, folder)
     try:
-        return ort.InferenceSession(model.SerializeToString(), sess_options=opts, providers=providers)
+        return ort.InferenceSession(data, sess_options=opts, providers=providers)
     except Exception as exc:  # onnxruntime raises its own exception types
         op = _unsupported_operator(model, str(exc))
         if op is not None:

@@ -195,8 +195,8 @@ MaxModelBytesOpt = Annotated[
     str,
     typer.Option(
         "--max-model-bytes",
-        help="Refuse a model file larger than this (with its external data), before reading it: "
-        "bytes, or a size such as 512MiB or 8GiB.",
+        help="Refuse a model file larger than this, before reading it (with its external data when the "
+        "command runs the model): bytes, or a size such as 512MiB or 8GiB.",
         metavar="SIZE",
     ),
 ]

@@ -6,7 +6,8 @@ rewrites work on a copy and return it, checked with
 the class scores are found and rewritten, with the ONNX operator spec
 references.
 
-The modules show the job: ``io`` (load with checked external data, save),
+The modules show the job: ``io`` (load with checked external data, hash, save),
+``external`` (weights left in their files: read one tensor, hand them to onnxruntime),
 ``find`` (the score finder: ``match`` is a small declarative matcher,
 ``patterns`` the spellings of an activation, ``passes`` the layout ops and
 post-processing walked through, ``post`` what post-processing does),
@@ -47,13 +48,16 @@ from .describe import ModelInfo, describe, describe_site
 from .find import HOLDS, Branch, ScoreSite, find_scores, fit_kind, read_as
 from .fold import FoldedValues, folded_values
 from .io import _model_tensors as _model_tensors
+from .external import check_model, for_onnxruntime, tensor_array
 from .nested import parse_columns
 from .io import (
     external_data_files,
     external_data_path,
     load_model,
     model_files,
+    model_sha256,
     save_model,
+    saved_sha256,
 )
 from .record import (
     Record,
@@ -102,10 +106,11 @@ from .tensors import _initializer as _initializer
 
 __all__ = [
     "ACTIVATIONS", "ACTIVATION_CHOICES", "COMPUTE_DTYPES", "DEFAULT_OUTPUT_NAME", "EXTERNAL_THRESHOLD", "HOLDS",
-    "ML_DOMAIN", "RECORD_FORMAT", "RECORD_KEY", "Branch", "FoldedValues", "ModelInfo", "Record", "ScaleFn", "ScoreSite",
-    "TensorSpec", "at_identity", "check_record", "check_temperature", "default_opset", "describe", "describe_site",
-    "divide_by_temperature", "expose", "expose_scores", "external_data_files", "external_data_path",
-    "find_recorded", "find_scores", "fit_kind", "folded_values", "load_model", "model_files", "multiply_add", "np_dtype",
-    "opset_version", "parameter_values", "parse_columns", "patch", "post", "read_as", "read_record", "read_records",
-    "save_model", "scale_fn", "temperature_dtype", "temperature_value", "tensor_spec", "unique_name", "unpatch",
+    "ML_DOMAIN", "RECORD_FORMAT", "RECORD_KEY", "Branch", "FoldedValues", "ModelInfo", "Record", "ScaleFn",
+    "ScoreSite", "TensorSpec", "at_identity", "check_model", "check_record", "check_temperature", "default_opset",
+    "describe", "describe_site", "divide_by_temperature", "expose", "expose_scores", "external_data_files",
+    "external_data_path", "find_recorded", "find_scores", "fit_kind", "folded_values", "for_onnxruntime",
+    "load_model", "model_files", "model_sha256", "multiply_add", "np_dtype", "opset_version", "parameter_values",
+    "parse_columns", "patch", "post", "read_as", "read_record", "read_records", "save_model", "saved_sha256",
+    "scale_fn", "temperature_dtype", "temperature_value", "tensor_array", "tensor_spec", "unique_name", "unpatch",
 ]

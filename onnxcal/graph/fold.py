@@ -11,6 +11,7 @@ from onnx import helper, numpy_helper
 
 from ..errors import OnnxcalError
 from ..scaling import Scaling
+from .external import tensor_array
 from .tensors import (
     _FLOAT_TYPES,
     _RESHAPES,
@@ -216,7 +217,7 @@ def _constants(graph: onnx.GraphProto) -> dict[str, onnx.TensorProto]:
 
 def _array(graph: onnx.GraphProto, name: str) -> np.ndarray | None:
     tensor = _constants(graph).get(name)
-    return None if tensor is None else numpy_helper.to_array(tensor)
+    return None if tensor is None else tensor_array(tensor)
 
 
 def _put_arrays(graph: onnx.GraphProto, arrays: dict[str, np.ndarray]) -> None:

@@ -1,50 +1,27 @@
-"""Reading and writing model files: size limits, checked external data, atomic saves."""
+"""Reading and writing model files: size limits, checked external data, hashes, atomic saves.
+
+A model's weights in external data stay in their files (``external``): the
+graph is read, the locations checked, small tensors read in; saving streams
+each weight from its file into the output's own data file.
+"""
 
 from __future__ import annotations
 
+import errno
+import hashlib
 import os
-from collections.abc import Iterator
+import shutil
 from pathlib import Path, PureWindowsPath
+from typing import Any
 
 import onnx
 
-from .._files import atomic_write_files, require_file
-from .._limits import DEFAULT_MAX_MODEL_BYTES, check_model_size
+from .._files import Writer, _data_runs, atomic_write_files, copy_range, require_file, sha256_bytes, sha256_file
+from .._limits import DEFAULT_MAX_MODEL_BYTES, check_model_size, format_bytes
 from ..errors import OnnxcalError, first_line
+from . import external
+from .external import Span, _model_tensors, is_external, open_contained
 from .tensors import EXTERNAL_THRESHOLD
-
-
-def _attribute_tensors(a: onnx.AttributeProto) -> Iterator[onnx.TensorProto]:
-    """Tensors an attribute holds, whatever its declared type says (a hostile file may
-    set ``t`` on an INT attribute; onnx's loader would still read it)."""
-    if a.HasField("t"):
-        yield a.t
-    yield from a.tensors
-    for sparse in [a.sparse_tensor] * a.HasField("sparse_tensor") + list(a.sparse_tensors):
-        yield sparse.values
-        yield sparse.indices
-    for g in [a.g] * a.HasField("g") + list(a.graphs):
-        yield from _tensors(g)
-
-
-def _tensors(graph: onnx.GraphProto) -> Iterator[onnx.TensorProto]:
-    """Every tensor of a graph: initializers (sparse ones too), attributes, subgraphs'."""
-    yield from graph.initializer
-    for sparse in graph.sparse_initializer:
-        yield sparse.values
-        yield sparse.indices
-    for node in graph.node:
-        for a in node.attribute:
-            yield from _attribute_tensors(a)
-
-
-def _model_tensors(model: onnx.ModelProto) -> Iterator[onnx.TensorProto]:
-    """Every tensor of a model: its graph's and those of its local functions."""
-    yield from _tensors(model.graph)
-    for function in model.functions:
-        for node in function.node:
-            for a in node.attribute:
-                yield from _attribute_tensors(a)
 
 
 def _external_locations(model: onnx.ModelProto) -> list[str]:
@@ -152,14 +129,23 @@ def external_data_files(
     return _check_locations(_external_locations(model), p)
 
 
-def load_model(path: str | os.PathLike, *, max_bytes: int = DEFAULT_MAX_MODEL_BYTES) -> onnx.ModelProto:
-    """Load and check an ONNX model file, with errors that name the file.
+def load_model(
+    path: str | os.PathLike, *, max_bytes: int = DEFAULT_MAX_MODEL_BYTES, count_external: bool = True
+) -> onnx.ModelProto:
+    """Load and check an ONNX model file, with errors that name the file; weights stay in their files.
 
-    The file (plus its external data) must be at most ``max_bytes``, checked
-    before it is read. External data are read from the model's directory; a
-    location that could lead outside it (absolute, ``..``, a symlink, a
-    hard link) is refused before any read, and so is external data left in
-    a tensor onnx does not load (onnxruntime would look for it elsewhere).
+    The file must be at most ``max_bytes`` (with its external data when
+    ``count_external``: the commands that run the model, whose weights
+    onnxruntime then holds in memory), checked before it is read. The graph
+    is read without its external data; every location is checked first: one
+    that could lead outside the model's directory (absolute, ``..``, a
+    symlink, a hard link) is refused before any read, and so is external
+    data in a tensor onnx does not load (onnxruntime would look for it
+    elsewhere). External tensors of at least ``external.RESIDENT_BYTES``
+    stay in their files, noted with the model's folder (see
+    :mod:`onnxcal.graph.external`); smaller ones are read in. The checker
+    runs on the file's path (``onnx.checker.check_model(path)``), as onnx
+    asks for models over 2 GiB.
 
     Raises
     ------
@@ -179,31 +165,114 @@ def load_model(path: str | os.PathLike, *, max_bytes: int = DEFAULT_MAX_MODEL_BY
             f"'{p}' is damaged: its field {field_name} holds bytes that are not UTF-8 text",
             "re-export the model",
         )
-    files = _check_locations(_external_locations(model), p)
+    locations = _external_locations(model)
+    files = _check_locations(locations, p)
     if files:
-        check_model_size(p, sum(f.stat().st_size for f in set(files)), max_bytes)
-        try:
-            onnx.external_data_helper.load_external_data_for_model(model, str(p.resolve().parent))
-        except Exception as exc:
-            raise OnnxcalError(
-                f"cannot read the external data of '{p}' ({first_line(exc)})",
-                "check that the weights file beside it is complete",
-            ) from exc
-        left = [t.name for t in _model_tensors(model) if t.data_location == onnx.TensorProto.EXTERNAL]
+        left = [t.name for t in _model_tensors(model, dense=False) if is_external(t)]
         if left:
             raise OnnxcalError(
                 f"'{p}' keeps tensor '{left[0]}' in external data where onnx does not load it "
                 "(e.g. a sparse initializer)",
                 "save the model with that tensor inside the .onnx file",
             )
+        sizes = {loc: f.stat().st_size for loc, f in zip(locations, files, strict=True)}
+        if count_external:
+            by_file = {f.resolve(): n for f, n in zip(files, sizes.values(), strict=True)}  # one file, named twice
+            check_model_size(p, sum(by_file.values()), max_bytes)
+        try:
+            external.resolve(_model_tensors(model), p.resolve().parent, sizes)
+        except OSError as exc:
+            raise OnnxcalError(
+                f"cannot read the external data of '{p}' ({exc.strerror or exc})",
+                "check that the weights file beside it is readable",
+            ) from exc
     try:
-        onnx.checker.check_model(model)
+        onnx.checker.check_model(str(p))
     except Exception as exc:
         raise OnnxcalError(
             f"'{p}' fails the ONNX checker: {first_line(exc)}",
             "re-export the model or repair it before calibrating",
         ) from exc
     return model
+
+
+_HASH_BLOCK = 1 << 22
+
+
+def _hash_range(digest: Any, fd: int, offset: int, length: int | None) -> None:
+    """Feed ``length`` bytes of ``fd`` from ``offset`` (None: to the end) to ``digest``.
+
+    One buffer is read into again and again (a new bytes object per read
+    would have its pages cleared by the kernel first); the holes of a
+    sparse file are hashed as the zeros they read as, without reading them.
+    """
+    end = os.fstat(fd).st_size if length is None else offset + length
+    buffer = memoryview(bytearray(_HASH_BLOCK))
+    zeros = memoryview(bytes(_HASH_BLOCK))
+    pos = offset
+    for start, stop in [*_data_runs(fd, offset, end), (end, end)]:
+        while pos < start:  # a hole before this run
+            n = min(_HASH_BLOCK, start - pos)
+            digest.update(zeros[:n])
+            pos += n
+        while pos < stop:
+            n = os.preadv(fd, [buffer[:min(_HASH_BLOCK, stop - pos)]], pos)
+            if n == 0:
+                raise OSError(errno.EIO, f"the file ends {end - pos} bytes early")
+            digest.update(buffer[:n])
+            pos += n
+
+
+def _sha256_contained(folder: Path, location: str) -> str:
+    digest = hashlib.sha256()
+    fd = open_contained(folder, location)
+    try:
+        _hash_range(digest, fd, 0, None)
+    finally:
+        os.close(fd)
+    return digest.hexdigest()
+
+
+def _listing_line(digest: str, name: str) -> str:
+    """A line as GNU ``sha256sum`` prints it; a name holding a backslash or newline is escaped
+    (``\\\\``, ``\\n``) and the line starts with a backslash."""
+    if "\\" not in name and "\n" not in name:
+        return f"{digest}  {name}\n"
+    return "\\" + f"{digest}  " + name.replace("\\", "\\\\").replace("\n", "\\n") + "\n"
+
+
+def model_sha256(path: str | os.PathLike) -> str:
+    """The SHA-256 that identifies a model: of its file, and with external data of its files' listing.
+
+    Without external data: the file's SHA-256 (``sha256sum model.onnx``).
+    With external data: the SHA-256 of the listing ``sha256sum`` prints for
+    the model file read from standard input (its name does not count: a
+    renamed copy is the same model) followed by each distinct external-data
+    location the model names, sorted by code point (``LC_ALL=C sort``), as
+    written in the model, from the model's folder::
+
+        cd MODEL_FOLDER && { sha256sum < model.onnx; sha256sum LOCATION...; } | sha256sum
+
+    Every byte is read, streamed; the locations are checked as by
+    :func:`load_model` first (docs/graph.md).
+    """
+    p = Path(path)
+    try:
+        model = onnx.load(str(p), load_external_data=False)
+    except Exception:  # not a model: hash the bytes (load_model says what is wrong)
+        return sha256_file(p)
+    locations = _external_locations(model)
+    if not locations:
+        return sha256_file(p)
+    _check_locations(locations, p)
+    folder = p.resolve().parent
+    lines = [_listing_line(sha256_file(p), "-")]
+    try:
+        lines += [_listing_line(_sha256_contained(folder, loc), loc) for loc in locations]
+    except OSError as exc:
+        raise OnnxcalError(f"cannot read the external data of '{p}' ({exc.strerror or exc})",
+                           "check that the weights files beside it are readable") from exc
+    return sha256_bytes("".join(lines).encode())
 
 
 def _repeated(fd) -> bool:
@@ -229,21 +298,77 @@ def _non_text(message) -> str | None:
     return None
 
 
-def _split_external(model: onnx.ModelProto, location: str) -> bytes:
-    """Move large initializers of ``model`` (in place) to one external-data blob."""
-    blob = bytearray()
-    for init in model.graph.initializer:
-        if init.HasField("raw_data") and len(init.raw_data) >= EXTERNAL_THRESHOLD:
-            raw = init.raw_data
-            entries = {"location": location, "offset": str(len(blob)), "length": str(len(raw))}
-            blob += raw
-            init.ClearField("raw_data")
-            init.data_location = onnx.TensorProto.EXTERNAL
-            del init.external_data[:]
-            for key, value in entries.items():
-                entry = init.external_data.add()
-                entry.key, entry.value = key, value
-    return bytes(blob)
+ALIGN = 1 << 16
+"""Tensors of at least ``ALIGN_FROM`` bytes start at a multiple of this in the data file (as onnx's
+``save_model`` aligns them: 64 KiB, the allocation granularity a memory map needs on Windows)."""
+ALIGN_FROM = 1 << 20
+
+
+def _plan_data(model: onnx.ModelProto, location: str) -> tuple[onnx.ModelProto, list[tuple[int, Span | bytes]], int]:
+    """A copy of ``model`` whose weights are in ``location``, and what goes where in that file.
+
+    Every tensor still in a file, and every initializer of the main graph
+    holding at least ``EXTERNAL_THRESHOLD`` bytes, in the order the model
+    lists them; each piece is a :class:`~onnxcal.graph.external.Span` to
+    copy, or bytes (a tensor in memory, e.g. a folded weight).
+    """
+    copy = onnx.ModelProto()
+    copy.CopyFrom(model)
+    main = len(copy.graph.initializer)  # _model_tensors yields these first
+    pieces: list[tuple[int, Span | bytes]] = []
+    end = 0
+    for i, t in enumerate(_model_tensors(copy)):
+        if is_external(t):
+            piece: Span | bytes = external.span(t)
+            length = piece.length
+        elif i < main and t.HasField("raw_data") and len(t.raw_data) >= EXTERNAL_THRESHOLD:
+            piece = t.raw_data
+            length = len(piece)
+            t.ClearField("raw_data")
+            t.data_location = onnx.TensorProto.EXTERNAL
+        else:
+            continue
+        if length >= ALIGN_FROM:
+            end = -(-end // ALIGN) * ALIGN
+        external._point_to(t, location, end, length)
+        pieces.append((end, piece))
+        end += length
+    return copy, pieces, end
+
+
+def _data_writer(pieces: list[tuple[int, Span | bytes]], size: int) -> Writer:
+    """Writes the data file: each span copied from its file (:func:`~onnxcal._files.copy_range`).
+
+    The file is new (a temporary), so the holes of a sparse source stay holes.
+    """
+
+    def write(path: Path) -> None:
+        sources: dict[tuple[str, str], int] = {}
+        fh = Path(path).open("r+b")  # noqa: SIM115 (closed below, with the sources)
+        fd = fh.fileno()
+        try:
+            for offset, piece in pieces:
+                if isinstance(piece, bytes):
+                    view, done = memoryview(piece), 0
+                    while done < len(view):
+                        done += os.pwrite(fd, view[done:done + (1 << 26)], offset + done)
+                    continue
+                key = (piece.folder, piece.location)
+                if key not in sources:
+                    sources[key] = open_contained(piece.folder, piece.location)
+                if os.fstat(sources[key]).st_size < piece.offset + piece.length:
+                    raise OnnxcalError(
+                        f"external data file '{piece.location}' in '{piece.folder}' is shorter than when the "
+                        "model was loaded", "keep the model's files unchanged while onnxcal runs",
+                    )
+                copy_range(sources[key], fd, piece.length, piece.offset, offset, skip_holes=True)
+            os.ftruncate(fd, size)
+        finally:
+            fh.close()
+            for src in sources.values():
+                os.close(src)
+
+    return write
 
 
 def external_data_path(path: str | os.PathLike) -> Path:
@@ -252,23 +377,76 @@ def external_data_path(path: str | os.PathLike) -> Path:
     return p.with_name(p.name + ".data")
 
 
-def model_files(model: onnx.ModelProto, path: str | os.PathLike, *, external: bool = False) -> dict[Path, bytes]:
-    """The bytes of each file ``save_model`` writes: ``path``, and with ``external`` ``<path>.data``.
+def _check_room(path: Path, needed: int) -> None:
+    """Refuse a write that the output's file system has no room for, before writing."""
+    folder = path.parent if str(path.parent) else Path(".")
+    try:
+        free = shutil.disk_usage(folder).free
+    except OSError:
+        return
+    if needed > free:
+        raise OnnxcalError(
+            f"writing '{path}' and its data file needs {format_bytes(needed)}, and only {format_bytes(free)} "
+            f"is free on its disk",
+            "free space on that disk or write the output elsewhere; no output was written",
+        )
 
-    With ``external``, initializers of at least ``EXTERNAL_THRESHOLD`` bytes
-    go to ``<path>.data`` beside it.
+
+def model_files(
+    model: onnx.ModelProto, path: str | os.PathLike, *, external: bool = False
+) -> dict[Path, bytes | Writer]:
+    """What ``save_model`` writes: ``path``'s bytes, and with external data ``<path>.data``'s writer.
+
+    With ``external`` (always, when tensors of ``model`` are still in their
+    files), the weights go to ``<path>.data`` beside it: every tensor still
+    in a file, streamed from it (never held in memory; copied, so the output
+    does not depend on the input's files), and the initializers of at least
+    ``EXTERNAL_THRESHOLD`` bytes held in memory. The layout is deterministic:
+    the same model gives the same bytes.
     """
-    if not external:
+    if not external and not external_tensors_of(model):
         return {Path(path): model.SerializeToString()}
-    copy = onnx.ModelProto()
-    copy.CopyFrom(model)
     data = external_data_path(path)
-    blob = _split_external(copy, data.name)
-    return {data: blob, Path(path): copy.SerializeToString()}
+    copy, pieces, size = _plan_data(model, data.name)
+    graph_bytes = copy.SerializeToString()
+    _check_room(Path(path), size + len(graph_bytes))
+    return {data: _data_writer(pieces, size), Path(path): graph_bytes}
+
+
+def saved_sha256(model: onnx.ModelProto, path: str | os.PathLike, *, external: bool = False) -> str:
+    """:func:`model_sha256` of the files ``save_model(model, path, external=...)`` writes, before writing them.
+
+    The weights are streamed from their files through the hash (read once more).
+    """
+    if not external and not external_tensors_of(model):
+        return sha256_bytes(model.SerializeToString())
+    data = external_data_path(path)
+    copy, pieces, size = _plan_data(model, data.name)
+    graph_bytes = copy.SerializeToString()
+    digest, end = hashlib.sha256(), 0
+    for offset, piece in pieces:
+        digest.update(bytes(offset - end))
+        if isinstance(piece, bytes):
+            digest.update(piece)
+        else:
+            fd = open_contained(piece.folder, piece.location)
+            try:
+                _hash_range(digest, fd, piece.offset, piece.length)
+            finally:
+                os.close(fd)
+        end = offset + (len(piece) if isinstance(piece, bytes) else piece.length)
+    digest.update(bytes(size - end))
+    listing = _listing_line(sha256_bytes(graph_bytes), "-") + _listing_line(digest.hexdigest(), data.name)
+    return sha256_bytes(listing.encode())
+
+
+def external_tensors_of(model: onnx.ModelProto) -> bool:
+    """True when some tensor of ``model`` is still in its file."""
+    return any(is_external(t) for t in _model_tensors(model))
 
 
 def save_model(model: onnx.ModelProto, path: str | os.PathLike, *, external: bool = False) -> None:
-    """Serialise ``model`` and write it atomically to ``path`` (see :func:`model_files`).
+    """Write ``model`` atomically to ``path`` (see :func:`model_files`).
 
     With external data both files are complete before either is renamed into place.
     """

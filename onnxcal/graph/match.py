@@ -33,8 +33,8 @@ from typing import Any, Union
 
 import numpy as np
 import onnx
-from onnx import numpy_helper
 
+from .external import tensor_array
 from .tensors import _Shapes, constant_node_value, overridable
 
 
@@ -124,11 +124,11 @@ class View:
     def constant(self, tensor: str) -> np.ndarray | None:
         """The value of ``tensor`` when it is a constant of the graph (or of a scope around it), else None."""
         if tensor in self._inits:
-            return numpy_helper.to_array(self._inits[tensor])
+            return tensor_array(self._inits[tensor])
         i = self.producers.get(tensor)
         if i is not None:
             value = constant_node_value(self.graph.node[i])
-            return None if value is None else numpy_helper.to_array(value)
+            return None if value is None else tensor_array(value)
         if self.parent is not None and tensor not in self._inputs:
             return self.parent.constant(tensor)
         return None

@@ -8,11 +8,12 @@ from pathlib import PurePosixPath, PureWindowsPath
 
 import numpy as np
 import onnx
-from onnx import helper, numpy_helper
+from onnx import helper
 
 from .. import __version__
 from ..errors import OnnxcalError, first_line
 from ..scaling import Scaling, check_scaling
+from .external import tensor_array
 from .fold import _constants, folded_values
 from .post import from_json
 from .tensors import RECORD_FORMAT, RECORD_KEY, _initializer, all_nodes, constant_node_value
@@ -289,7 +290,7 @@ def temperature_value(
     init = _initializer(model.graph, record.temperature_initializer)
     if init is None:
         return None
-    arr = numpy_helper.to_array(init)
+    arr = tensor_array(init)
     return float(arr.reshape(-1)[0]) if arr.size == 1 else None
 
 
@@ -313,7 +314,7 @@ def parameter_values(
     found = {k: _initializer(model.graph, n) for k, n in inits.items()}
     if any(v is None for v in found.values()):
         return None
-    return {k: numpy_helper.to_array(v).astype(np.float64).reshape(-1) for k, v in found.items()}
+    return {k: tensor_array(v).astype(np.float64).reshape(-1) for k, v in found.items()}
 
 
 def temperature_dtype(model: onnx.ModelProto, record: Record) -> str | None:

@@ -27,6 +27,7 @@ from onnx import helper, numpy_helper
 
 from ..errors import OnnxcalError
 from ..scaling import Scaling, check_scaling
+from .external import check_model, tensor_array
 from .find import Branch, ScoreSite, find_scores, fit_kind, read_as
 from .fold import _constants, _fold, _roundings, _unfold
 from .post import to_json
@@ -488,7 +489,7 @@ def patch(
     )
     _write_records(out, [*others, record])
     try:
-        onnx.checker.check_model(out, full_check=True)
+        check_model(out)
     except Exception as exc:  # a bug on our side, or a model onnx cannot infer
         raise OnnxcalError(
             f"the patched model fails the ONNX checker: {str(exc).splitlines()[0]}",
@@ -639,7 +640,7 @@ def at_identity(
             init = inits.get(name)
             if init is None:
                 continue
-            arr = numpy_helper.to_array(init)
+            arr = tensor_array(init)
             value = np.zeros_like(arr) if role == "b" else np.ones_like(arr)
             init.CopyFrom(numpy_helper.from_array(value, name))
     return out
