@@ -70,11 +70,9 @@ from .record import (
 )
 from .record import _write_record as _write_record
 from .record import _write_records as _write_records
+from .expose import at_identity, expose, expose_scores
 from .rewrite import (
-    at_identity,
     check_temperature,
-    expose,
-    expose_scores,
     find_recorded,
     patch,
     unpatch,
