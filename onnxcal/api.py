@@ -156,6 +156,7 @@ def capture(
     activation: str | None = None,
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
     output_holds: str | None = None,
+    score_columns: str | None = None,
 ) -> Capture:
     """Run the model over a labelled set; return (and write) the logits.
 
@@ -192,6 +193,10 @@ def capture(
         What the output holds; by default the graph says, and the data are
         checked (an output of raw logits whose rows are probabilities is
         read as probabilities, with a note in ``Capture.notes``).
+    score_columns : str, optional
+        ``"START:STOP"``: the output concatenates class scores with other
+        values (a detector's boxes and scores); capture only the scores at
+        positions START..STOP-1 along the Concat's axis.
 
     Rows of the inputs or logits holding NaN or Inf are reported as
     :class:`~onnxcal.errors.OnnxcalWarning` (count and first rows); the
@@ -199,13 +204,15 @@ def capture(
     """
     spec = _data_spec(data)
     limit = _max_bytes(max_model_bytes)
+    _check_columns(score_columns)
     if out is not None:
         check_output_path(out, [*_model_files(model_path, limit), *spec.files()], force=force)
     run = _run_options(batch_size, threads, optimization, provider)
     model = graph.load_model(model_path, max_bytes=limit)
     dataset = _load_data(model, spec, batch_size=run.batch_size)
     cap = _read_and_capture(
-        model, dataset, model_path, graph.model_sha256(model_path), output, output_holds, activation, run, progress, out
+        model, dataset, model_path, graph.model_sha256(model_path), output, output_holds, activation, run, progress,
+        out, columns=score_columns,
     )
     _warn_nonfinite_inputs(cap, cap.meta.data_source)
     if (bad := _capture.nonfinite_logits(cap)).count:
@@ -219,14 +226,21 @@ def capture(
     return cap
 
 
+def _check_columns(score_columns: str | None) -> None:
+    if score_columns is not None:
+        graph.parse_columns(score_columns)
+
+
 def _read_and_capture(
-    model, dataset: Dataset, model_path, sha: str, output, holds, activation, run: RunOptions, progress, out=None
+    model, dataset: Dataset, model_path, sha: str, output, holds, activation, run: RunOptions, progress, out=None,
+    columns: str | None = None,
 ) -> Capture:
     """Read the model (checked on the first rows), check the labels against it, capture its logits."""
     if dataset.labels is None:
         raise OnnxcalError(f"'{dataset.source}' has no labels", "add a 'labels' array")
     _capture.check_input_memory(model, run.batch_size, dataset)
-    read = _reading.read_model(model, dataset, output=output, holds=holds, activation=activation, run=run)
+    read = _reading.read_model(model, dataset, output=output, holds=holds, activation=activation, run=run,
+                               score_columns=columns)
     site = read.site
     kind = graph.fit_kind(site, activation)
     if kind == "softmax":
@@ -306,10 +320,48 @@ def fit(
     where = cap.meta.data_source if isinstance(source, Capture) else ", ".join(map(str, inputs))
     cap, dropped = _finite(cap, where, drop_nonfinite)
     check_bins_memory(options.n_bins, cap.logits.shape[1])
-    summary = _with_note(_fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options), dropped)
+    summary = _with_note(_summarize(cap, options), dropped)
     if out is not None:
         _fit.save_fit(out, summary)
     return summary
+
+
+def _summarize(cap: Capture, options: FitOptions) -> FitSummary:
+    """``fit.summarize`` on a capture, with the checks that need what the fit does not know:
+    how the capture read the logits (``reading.fit_read_logits``) and the search bounds of T."""
+    summary = _reading.fit_read_logits(_fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options))
+    bound = _bound_warnings(summary.intervals)
+    return replace(summary, warnings=(*summary.warnings, *bound)) if bound else summary
+
+
+def _bound_warnings(intervals: dict | None) -> list[str]:
+    """Warnings for bootstrap intervals of T that reach the fit's search bounds.
+
+    A replicate whose resampled fit part is (nearly) separated perfectly
+    has its likelihood rise as T shrinks, and its T stops at the bound
+    ``fit.T_MIN`` (or, with scores carrying no information, at ``T_MAX``):
+    an interval ending there ends at the bound, not at an estimate.
+    """
+    found = (intervals or {}).get("parameters", {}).get("temperature")
+    if not found:
+        return []
+    pairs = [found] if isinstance(found[0], (int, float)) else [p for p in found if p is not None]
+    low = any(p[0] <= _fit.T_MIN * (1 + 1e-6) for p in pairs)
+    high = any(p[1] >= _fit.T_MAX * (1 - 1e-6) for p in pairs)
+    out = []
+    if low:
+        out.append(
+            f"the bootstrap interval of T reaches the search bound T = {_fit.T_MIN:g}: in some replicates the "
+            "resampled fit part is (nearly) separated perfectly and the likelihood keeps rising as T shrinks, so "
+            "the interval's lower end is the bound, not an estimate; use a larger or harder validation set"
+        )
+    if high:
+        out.append(
+            f"the bootstrap interval of T reaches the search bound T = {_fit.T_MAX:g}: in some replicates the "
+            "scores carry almost no information about the labels, so the interval's upper end is the bound, "
+            "not an estimate"
+        )
+    return out
 
 
 def _with_note(summary: FitSummary, note: str | None) -> FitSummary:
@@ -352,6 +404,9 @@ class PatchOptions:
         MatMul(+Add) instead of adding nodes (every method).
     output_holds : {"logits", "probabilities", "log-probabilities"}, optional
         What the output holds, when the graph cannot tell.
+    score_columns : str, optional
+        ``"START:STOP"``: calibrate only these positions of an output that
+        concatenates class scores with other values.
     """
 
     output: str | None = None
@@ -361,6 +416,7 @@ class PatchOptions:
     compute_dtype: str | None = None
     fold: bool = False
     output_holds: str | None = None
+    score_columns: str | None = None
 
     def patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict, reading: dict | None = None,
               fitted_on: str = "", largest_logit=None):
@@ -378,6 +434,8 @@ class PatchOptions:
                fitted_on: str):
         if reading is None:
             reading = {} if self.output_holds is None else {"holds": self.output_holds, "holds_from": "stated"}
+        if self.score_columns is not None:
+            reading = {**reading, "score_columns": self.score_columns}
         return graph.patch(
             model,
             calibration,
@@ -445,6 +503,7 @@ def patch(
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
     output_holds: str | None = None,
     fitted_on_twin: bool = False,
+    score_columns: str | None = None,
 ) -> PatchResult:
     """Write a copy of the model that outputs calibrated probabilities.
 
@@ -463,10 +522,10 @@ def patch(
         T; or give ``fit``.
     fit : FitSummary or path, optional
         A fit (or FIT.json) whose parameters are baked in and recorded.
-    output, output_name, drop_logits, activation, compute_dtype, fold, output_holds
+    output, output_name, drop_logits, activation, compute_dtype, fold, output_holds, score_columns
         See :class:`PatchOptions`. With ``fit``, the output and how it was
-        read (e.g. probabilities read through log p) are the capture's,
-        unless given.
+        read (e.g. probabilities read through log p, the score columns)
+        are the capture's, unless given.
     force : bool
         Replace an existing ``out``.
     max_model_bytes : int or str, default 8 GiB
@@ -478,6 +537,7 @@ def patch(
         it. The record then holds both hashes.
     """
     limit = _max_bytes(max_model_bytes)
+    _check_columns(score_columns)
     inputs = [model_path] + ([fit] if isinstance(fit, (str, os.PathLike)) else [])
     external = _check_outputs(out, inputs, model_path, force, limit)
     calibration, fit_dict = _resolve_scaling(temperature, fit)
@@ -492,7 +552,8 @@ def patch(
     meta = fit_dict.get("capture") if isinstance(fit_dict.get("capture"), dict) else {}
     if output is None and meta.get("output") in {o.name for o in model.graph.output} and not records:
         output = meta["output"]
-    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds)
+    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds,
+                            score_columns)
     reading = _reading.patch_reading(meta) if output_holds is None and meta else None
     patched = patching.patch(model, calibration, sha=sha, path=model_path, fit=fit_dict, reading=reading,
                              fitted_on=fitted_on)
@@ -615,7 +676,7 @@ def _compare_as_it_runs(
     Nothing of the patched outputs is kept beyond a batch, so the command
     holds the logits and little else (docs/benchmarks.md, calibrate's memory).
     """
-    site = graph.find_scores(patched, record.output)
+    site = graph.find_recorded(patched, record)
     plan = _capture.plan_run(graph.expose(patched, [site.tensor]), dataset, [site.tensor], run)
     post = graph.post.from_json(record.post)
     comparison = _verify.Comparison(record.scaling, record.activation, _site_dtypes(site), post)
@@ -642,12 +703,13 @@ def _compare_as_it_runs(
 
 def _source_site(base, record: Record):
     """The class-score site of the uncalibrated model the record was made from, read as then."""
-    kw = _reading.patch_reading({"spelling": record.spelling, "holds": record.holds, "logits_from": record.logits_from})
+    kw = _reading.patch_reading({"spelling": record.spelling, "holds": record.holds, "logits_from": record.logits_from,
+                                 "score_columns": record.score_columns})
     if record.rewrite == "ml-log-probabilities":  # format 2: ai.onnx.ml probabilities were read through log p
         kw["logits_from"] = "log"
     # records written before source_output existed name the output or the scores
     output = record.source_output or (record.output if record.rewrite == "insert-before-activation" else record.scores)
-    site = graph.find_scores(base, output, logits_from=kw.get("logits_from"))
+    site = graph.find_scores(base, output, logits_from=kw.get("logits_from"), score_columns=kw.get("score_columns"))
     if "holds" in kw:
         site = graph.read_as(site, kw["holds"], record.scaling.activation, source=kw["holds_from"])
     return site
@@ -717,7 +779,7 @@ def _head_checks(patched, patched_path, records, dataset, cap, original, base, s
     for record in records:
         own = cap if cap is not None and (not several or cap.meta.output == record.source_output) else None
         ref = _reference(patched, patched_path, record, dataset, own, original, base, score_paths, run, progress)
-        site = graph.find_scores(patched, record.output)
+        site = graph.find_recorded(patched, record)
         rows = _run_output(patched, site, dataset, run, progress)
         if len(rows) != len(ref.logits):
             raise OnnxcalError(
@@ -1296,6 +1358,7 @@ def calibrate(
     drop_nonfinite: bool = False,
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
     output_holds: str | None = None,
+    score_columns: str | None = None,
 ) -> CalibrateResult:
     """Capture, fit, patch and verify in one go (and write a report).
 
@@ -1313,6 +1376,7 @@ def calibrate(
     they are refused); ``max_model_bytes`` as for :func:`capture`.
     """
     check_fit_options(options)
+    _check_columns(score_columns)
     spec = _data_spec(data)
     limit = _max_bytes(max_model_bytes)
     external = _check_outputs(out, [model_path, *spec.files()], model_path, force, limit)
@@ -1321,19 +1385,21 @@ def calibrate(
         inputs = [*_model_files(model_path, limit), *spec.files(), *outputs]
         _report_targets(report, _report.FORMATS, inputs, force, "--report")
     run = _run_options(batch_size, threads, optimization, provider)
-    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds)
+    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds,
+                            score_columns)
     model = graph.load_model(model_path, max_bytes=limit)
     _check_not_calibrated(model, model_path, output)
     graph.default_opset(model)  # before the capture: can the patch import the operators it adds?
     sha = graph.model_sha256(model_path)
     dataset = _load_data(model, spec, batch_size=run.batch_size)
-    cap = _read_and_capture(model, dataset, model_path, sha, output, output_holds, activation, run, progress)
+    cap = _read_and_capture(model, dataset, model_path, sha, output, output_holds, activation, run, progress,
+                            columns=score_columns)
     keep = _capture.finite_mask(cap)
     full = cap
     cap, dropped = _finite(cap, dataset.source, drop_nonfinite)
     _warn_nonfinite_inputs(full, dataset.source)
     check_bins_memory(options.n_bins, cap.logits.shape[1])
-    summary = _fit.summarize(cap.logits, cap.labels, cap.meta.to_dict(), options)
+    summary = _summarize(cap, options)
     for note in (*cap.notes, dropped):
         summary = _with_note(summary, note)
     patched = patching.patch(model, summary.scaling, sha=sha, path=model_path, fit=summary.to_dict(),

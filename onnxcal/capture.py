@@ -184,6 +184,9 @@ class CaptureMeta:
         How the output was read (``graph.ScoreSite``): what it holds, how
         the logits were obtained (e.g. ``"log"`` for log p), the pattern
         recognised. ``patch --fit`` reads the model the same way.
+    score_columns : str
+        ``"START:STOP"`` when only these positions of a Concat output are
+        class scores (``--score-columns``); "" otherwise.
     """
 
     model_sha256: str
@@ -209,6 +212,7 @@ class CaptureMeta:
     holds: str = ""
     logits_from: str = "tensor"
     spelling: str = ""
+    score_columns: str = ""
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -833,6 +837,9 @@ def output_rows(values: np.ndarray, site: ScoreSite) -> np.ndarray:
     """
     if site.takes_one:
         return np.asarray(values).reshape(-1, 1)
+    if site.columns is not None:  # only these positions of a Concat are class scores
+        axis, start, stop = site.columns
+        values = np.take(values, np.arange(start, stop), axis=axis)
     return as_rows(values, site.class_axis)
 
 
@@ -1012,6 +1019,7 @@ def _meta(dataset: Dataset, site: ScoreSite, sink: _Rows, mode: str, kind: str, 
         holds=site.holds,
         logits_from=site.logits_from,
         spelling=site.spelling,
+        score_columns="" if site.columns is None else f"{site.columns[1]}:{site.columns[2]}",
     )
 
 

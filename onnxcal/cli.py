@@ -147,6 +147,16 @@ OutputHoldsOpt = Annotated[
         "probabilities is read as probabilities).",
     ),
 ]
+ScoreColumnsOpt = Annotated[
+    Optional[str],
+    typer.Option(
+        "--score-columns",
+        metavar="START:STOP",
+        help="When the output concatenates class scores with other values (a detector's boxes and "
+        "sigmoid scores), calibrate only the scores: positions START to STOP-1 along the Concat's axis, as "
+        "the refusal lists them. The other positions stay byte-identical.",
+    ),
+]
 FoldOpt = Annotated[
     bool,
     typer.Option(
@@ -436,7 +446,7 @@ def _describe_site(site) -> str:
     where = f", values in tensor '{site.tensor}'" if site.tensor != site.output else ""
     return (
         f"output '{site.output}' ({ends}{where}; class axis {site.class_axis} of rank "
-        f"{site.rank}, {site.num_classes or '?'} classes, {site.dtype})"
+        f"{site.rank}, {site.num_classes or '?'} class{'' if site.num_classes == 1 else 'es'}, {site.dtype})"
     )
 
 
@@ -558,6 +568,7 @@ def capture(
     output: OutputOpt = None,
     activation: ActivationOpt = None,
     output_holds: OutputHoldsOpt = None,
+    score_columns: ScoreColumnsOpt = None,
     force: ForceOpt = False,
     quiet: QuietOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
@@ -580,6 +591,7 @@ def capture(
             activation=activation,
             max_model_bytes=max_model_bytes,
             output_holds=output_holds,
+            score_columns=score_columns,
             **runtime,
         )
     for note in cap.notes:
@@ -638,6 +650,7 @@ def patch(
     compute_dtype: ComputeDtypeOpt = None,
     fold: FoldOpt = False,
     output_holds: OutputHoldsOpt = None,
+    score_columns: ScoreColumnsOpt = None,
     fitted_on_twin: Annotated[
         bool,
         typer.Option(
@@ -664,6 +677,7 @@ def patch(
         force=force,
         max_model_bytes=max_model_bytes,
         output_holds=output_holds,
+        score_columns=score_columns,
         fitted_on_twin=fitted_on_twin,
     )
     r = result.record
@@ -854,6 +868,7 @@ def calibrate(
     compute_dtype: ComputeDtypeOpt = None,
     fold: FoldOpt = False,
     output_holds: OutputHoldsOpt = None,
+    score_columns: ScoreColumnsOpt = None,
     method: MethodOpt = "temperature",
     multilabel: MultilabelOpt = None,
     l2: L2Opt = 0.0,
@@ -897,6 +912,7 @@ def calibrate(
             drop_nonfinite=drop_nonfinite,
             max_model_bytes=max_model_bytes,
             output_holds=output_holds,
+            score_columns=score_columns,
             **runtime,
         )
     if as_json:

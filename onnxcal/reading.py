@@ -25,6 +25,7 @@ from . import guard as _guard
 from .capture import RunOptions, probe, run_model
 from .data import Dataset, check_labels
 from .errors import OnnxcalError, OnnxcalWarning
+from .fit import FitSummary
 from .graph import Record, ScoreSite
 from .verify import (
     Check,
@@ -53,6 +54,7 @@ def read_model(
     holds: str | None,
     activation: str | None,
     run: RunOptions,
+    score_columns: str | None = None,
 ) -> Reading:
     """The reading of ``model``'s output, checked on the first rows of ``dataset``.
 
@@ -62,7 +64,7 @@ def read_model(
         The logits found do not reproduce the model's output, or the data
         contradict ``holds`` (what the user says the output holds).
     """
-    site = graph.find_scores(model, output)
+    site = graph.find_scores(model, output, score_columns=score_columns)
     kind = graph.fit_kind(site, activation)
     notes: list[str] = []
     if holds is not None:
@@ -156,6 +158,41 @@ def capture_check(site: ScoreSite, kind: str):
     return check
 
 
+PROBABILITIES_ADVICE = "really holds logits and not probabilities"
+"""The phrase of the fit's warning about a temperature far from 1 (``fit._far_warning``)."""
+
+
+def fit_read_logits(summary: FitSummary) -> FitSummary:
+    """``summary`` without the advice to check that the output holds logits, when onnxcal read them.
+
+    A temperature far from 1 makes the fit warn that the output may hold
+    probabilities. When the capture read the logits itself (the input of a
+    Softmax or Sigmoid it recognised, or log p of probabilities it knows to
+    be such, checked by the data guard), that advice is wrong: a note says
+    what T far from 1 means instead.
+    """
+    meta = summary.capture
+    if meta.get("activation") is None:
+        return summary
+
+    def keep(ws: tuple[str, ...]) -> tuple[str, ...]:
+        return tuple(w for w in ws if PROBABILITIES_ADVICE not in w)
+
+    if keep(summary.warnings) == tuple(summary.warnings):
+        return summary
+    t = summary.temperature
+    how = ("much over-confident (T > 1 softens it)" if t is not None and t > 1 else
+           "much under-confident (T < 1 sharpens it)" if t is not None else "far from calibrated")
+    note = (f"the fitted scaling is far from the identity: onnxcal read the logits behind output "
+            f"'{meta.get('output')}' itself ({meta.get('spelling')}, checked not to be probabilities), so the model "
+            f"is {how} on this set")
+    result = replace(summary.result, warnings=keep(summary.result.warnings))
+    held = summary.holdout_result
+    held = None if held is None else replace(held, warnings=keep(held.warnings))
+    return replace(summary, result=result, holdout_result=held, warnings=keep(summary.warnings),
+                   notes=(*summary.notes, note))
+
+
 def warn_saturated(site: ScoreSite, stats: _guard.RowStats | None) -> None:
     """Warn when log p loses margins: probabilities rounded to 0 or 1 in the output's dtype."""
     if stats is None or site.logits_from != "log" or not stats.saturated:
@@ -199,12 +236,16 @@ def patch_reading(meta: dict) -> dict:
         kw.update(holds=meta["holds"], holds_from=meta["spelling"])
     if meta.get("spelling") == "ml-classifier" and meta.get("logits_from") == "log":
         kw["logits_from"] = "log"
+    if meta.get("score_columns"):
+        kw["score_columns"] = meta["score_columns"]
     return kw
 
 
 def site_reading(site: ScoreSite) -> dict:
     """The keyword arguments of ``graph.patch`` that read a model as ``site`` does."""
-    return patch_reading({"spelling": site.spelling, "holds": site.holds, "logits_from": site.logits_from})
+    columns = "" if site.columns is None else f"{site.columns[1]}:{site.columns[2]}"
+    return patch_reading({"spelling": site.spelling, "holds": site.holds, "logits_from": site.logits_from,
+                          "score_columns": columns})
 
 
 def _params(records: tuple[Record, ...]) -> str:
@@ -227,13 +268,28 @@ def identity(
     at_one = graph.at_identity(patched, records, original)
     if at_one is None:
         return skipped("identity", "the parameters are folded into the weights; give --original")
-    names = [o.name for o in original.graph.output if o.name in {p.name for p in patched.graph.output}]
+    kept = [o for o in original.graph.output if o.name in {p.name for p in patched.graph.output}]
+    names = [o.name for o in kept if _samples_first(graph.tensor_spec(o))]
     if not names:
         return skipped("identity", "the patched model keeps none of the original's outputs")
     want = run_model(original, dataset, names, options=run, progress=progress, description="running the original")
     got = run_model(at_one, dataset, names, options=run, progress=progress, description="running at the identity")
     tols = _tolerances(patched, original, records, names)
-    return identity_check([(n, w, g, tols[n]) for n, w, g in zip(names, want, got)], _params(records))
+    check = identity_check([(n, w, g, tols[n]) for n, w, g in zip(names, want, got)], _params(records))
+    others = [f"'{o.name}'" for o in kept if o.name not in names]
+    if others:  # a recurrent state (1 x N x H), a single number: batches do not stack on axis 0
+        check = replace(check, detail=f"{check.detail}; not compared: {', '.join(others)} (samples not on axis 0)")
+    return check
+
+
+def _samples_first(spec: graph.TensorSpec) -> bool:
+    """True unless the declared shape says the samples are not on axis 0: a single number, or a
+    fixed first dim before a dynamic one (an LSTM's state, num_directions x N x H)."""
+    if spec.shape is None:
+        return True
+    if not spec.shape:
+        return False
+    return not (isinstance(spec.shape[0], int) and any(not isinstance(d, int) for d in spec.shape[1:]))
 
 
 def _tolerances(patched: onnx.ModelProto, original: onnx.ModelProto, records, names: list[str]) -> dict[str, float]:
@@ -242,7 +298,7 @@ def _tolerances(patched: onnx.ModelProto, original: onnx.ModelProto, records, na
     tols = {n: (tolerance(specs[n].dtype) if specs[n].is_float else 0.0) for n in names}
     for r in records:
         if r.output in tols:
-            site = graph.find_scores(patched, r.output)
+            site = graph.find_recorded(patched, r)
             dtypes = tuple(dict.fromkeys([*site.dtypes, *(site.dtype,)]))
             tols[r.output] = max(tols[r.output], output_tolerance(dtypes, site.post))
             if specs[r.output].dtype.startswith("seq("):

@@ -11,6 +11,8 @@ from ..errors import OnnxcalError
 from . import post as _post
 from .find import ScoreSite, _words_of, find_scores
 from .record import Record, read_records
+from .rewrite import find_recorded
+from .site import COMPOSED_WORDS
 from .tensors import TensorSpec, opset_version, tensor_spec
 
 
@@ -48,30 +50,49 @@ def describe_site(site: ScoreSite) -> str:
     e.g. "output 'probs' holds probabilities: Softmax over axis 1 of tensor
     'fc_out' (the logits), then x100 (percent)".
     """
-    k = f"{site.num_classes} classes" if site.num_classes else "classes of unknown count"
+    k = _classes(site)
     then = _post.describe(site.post)
     if site.activation is None:
         return (f"output '{site.output}' holds raw logits (no activation found): class axis "
                 f"{site.class_axis}, {k}, {site.dtype}")
     if site.spelling in ("stated", "data"):
         how = "as stated with --output-holds" if site.spelling == "stated" else "as the data show"
-        z = {"log": "log p", "logit": "log p - log(1 - p)", "log-probabilities": "the values"}[site.logits_from]
-        return (f"output '{site.output}' holds {site.holds} ({how}): calibrated through z = {z}, "
+        return (f"output '{site.output}' holds {site.holds} ({how}): calibrated through z = {_Z[site.logits_from]}, "
                 f"class axis {site.class_axis}, {k}, {site.dtype}")
     if site.spelling == "ml-classifier":
         route = ("its raw scores (a copy with post_transform NONE) are the logits"
                  if site.logits_from == "raw-scores" else "calibrated through z = log p")
         return (f"output '{site.output}' holds probabilities of an ai.onnx.ml classifier, tensor "
                 f"'{site.scores}' (post_transform {site.ml_transform}): {route}, {k}{then}")
+    if site.spelling in COMPOSED_WORDS:  # a mean of probabilities, probabilities computed in subgraphs
+        return (f"output '{site.output}' holds {site.holds}: {site.composed}; calibrated in place through "
+                f"z = {_Z[site.logits_from]}, class axis {site.class_axis}, {k}, {site.dtype}{then}")
     logits = {
         "tensor": f"tensor '{site.scores}' (the logits)",
         "dequantized": f"the dequantized tensor '{site.scores}' (the logits)",
         "log-sigmoid": f"log sigmoid of tensor '{site.scores}' (the logits of the normalised scores)",
     }.get(site.logits_from, f"tensor '{site.scores}'")
+    if site.branches:
+        others = [f"'{b.site.scores}' in the {b.where}" for b in site.branches[1:]]
+        logits += f" in the {site.branches[0].where}" + "".join(f", and {o}" for o in others)
     moved = (f", moved by {len(site.layout)} layout op(s) to class axis {site.class_axis} of the output"
              if site.layout else "")
-    return (f"output '{site.output}' holds {site.holds}: {_words_of(site)} over axis {site.scores_axis} "
+    where = f"{site.holds}"
+    if site.columns is not None:
+        where += (f" at {site.composed} (the other positions are left as they are)")
+    return (f"output '{site.output}' holds {where}: {_words_of(site)} over axis {site.scores_axis} "
             f"of {logits}, {k}, {site.dtype}{moved}{then}")
+
+
+_Z = {"log": "log p", "logit": "log p - log(1 - p)", "log-probabilities": "the values"}
+
+
+def _classes(site: ScoreSite) -> str:
+    if site.num_classes is None:
+        return "classes of unknown count"
+    if site.num_classes == 1:
+        return "1 class (one binary score per " + ("row)" if site.rank == 1 else "value)")
+    return f"{site.num_classes} classes"
 
 
 def describe(
@@ -88,7 +109,7 @@ def describe(
     record = records[-1] if records else None
     problem = None
     try:  # a patched model: describe the calibrated output
-        site = find_scores(model, record.output if record else None)
+        site = find_recorded(model, record) if record else find_scores(model)
     except OnnxcalError as exc:
         site, problem = None, str(exc)
     batch_fixed = any(

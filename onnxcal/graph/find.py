@@ -2,28 +2,31 @@
 
 ``find_scores`` walks back from the output through layout ops and
 post-processing (``passes``), trying at every tensor the spellings of an
-activation (``patterns.SPELLINGS``) in order. The first that matches says
-where the logits are; without one the output holds raw logits. The result
-is a ``ScoreSite``: the public description of the reading, which capture,
-patch and verify all work from.
+activation (``patterns.SPELLINGS``) in order, then the readings composed
+from others (``nested``: a head inside the subgraphs of an If, Loop or
+Scan; a mean of probabilities; the score part of a Concat). The first that
+fits says where the logits are; without one the output holds raw logits.
+The result is a ``ScoreSite`` (``site``): the public description of the
+reading, which capture, patch and verify all work from.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from dataclasses import replace
 
 import numpy as np
 import onnx
 from onnx import helper, numpy_helper
 
 from ..errors import OnnxcalError
+from . import nested
 from . import post as _post
 from .match import Found, View
 from .passes import RESHAPES, Step, step
-from .patterns import BY_NAME, RAW_TRANSFORMS, Spelling, first_match, ml_transform
+from .patterns import RAW_TRANSFORMS, Spelling, first_match, ml_transform
+from .site import HOLDS, Branch, ScoreSite, _words_of, fit_kind, read_as, words_for
 from .tensors import (
     _ELEM,
-    ACTIVATION_CHOICES,
     TensorSpec,
     _attr,
     _axis_through_reshape,
@@ -33,121 +36,7 @@ from .tensors import (
     tensor_spec,
 )
 
-HOLDS = ("logits", "probabilities", "log-probabilities")
-"""What an output may hold (``--output-holds``)."""
-
-
-@dataclass(frozen=True)
-class ScoreSite:
-    """Where a model's class scores are and what turns them into the output.
-
-    The public contract of the score finder (``find_scores``).
-
-    Attributes
-    ----------
-    output : str
-        The graph output chosen.
-    holds : str
-        What the output holds: ``"logits"``, ``"probabilities"`` or
-        ``"log-probabilities"``.
-    spelling : str
-        The pattern recognised (``patterns.SPELLINGS``: ``"softmax"``,
-        ``"softmax-written-out"``, ``"qlinear-softmax"``,
-        ``"ml-classifier"``, ...), ``"raw-logits"`` when none matched, or
-        ``"stated"`` / ``"data"`` when the output was read as probabilities
-        by ``--output-holds`` or by the data (``read_as``).
-    scores : str
-        The logits tensor z when ``logits_from`` is ``"tensor"``; else the
-        tensor the logits are computed from (see ``logits_from``).
-    logits_from : str
-        How the logits come from ``scores``: ``"tensor"`` (they are it),
-        ``"log"`` (log(max(p, tiny)) of probabilities), ``"logit"``
-        (log p - log(1 - p)), ``"log-probabilities"`` (the values are
-        log-probabilities already), ``"log-sigmoid"`` (log sigmoid(x), for
-        L1-normalised sigmoids), ``"dequantized"`` (DequantizeLinear of a
-        quantized input) or ``"raw-scores"`` (an ai.onnx.ml classifier's
-        scores before its post_transform). ``expose_scores`` builds them.
-    activation : str or None
-        What turns the logits into the values: ``"softmax"``,
-        ``"logsoftmax"``, ``"sigmoid"``, or None for raw logits.
-    post : tuple of post.PostOp
-        What the model does to the values between the activation and the
-        output, in order (``x100``, a clip, one class taken, a
-        quantization round trip, an L1 normalisation).
-    node : int or None
-        Index in ``graph.node`` of the activation (or classifier) node.
-    nodes : tuple of int
-        Every node of the recognised pattern.
-    rewire : tuple of (int, int)
-        (node index, input slot) of every place the pattern reads the
-        logits (two for a softmax written out with the max subtracted);
-        the scaling is inserted there. Empty unless ``logits_from`` is
-        ``"tensor"`` and there is an activation.
-    values : str
-        The tensor the activation produces (before post-processing).
-    tensor : str
-        The tensor holding the output's values: the output itself, or the
-        probabilities a ZipMap turns into a sequence of maps.
-    class_axis : int
-        The class axis of the logits as captured (laid out like the output
-        by replaying ``layout``); also the output's when no class is taken.
-    rank : int
-        Rank of the captured logits.
-    num_classes : int or None
-        K, when fixed in the graph.
-    dtype : str
-        numpy dtype name of the logits (of ``scores``).
-    layout : tuple of int
-        Layout nodes (Transpose, Reshape, ...) between the activation and
-        the output, replayed on the logits when they are captured.
-    output_dtype : str
-        numpy dtype name of ``tensor``.
-    scores_axis, scores_rank : int
-        Class axis and rank of the logits where the scaling applies.
-    dtypes : tuple of str
-        Every float dtype the values pass through, logits to output
-        (verify's tolerance follows the coarsest).
-    ml_transform : str
-        An ai.onnx.ml classifier's ``post_transform``, else "".
-    path : tuple of int
-        Every node between the logits and the output (the pattern's, the
-        layout ops' and the post-processing's).
-    """
-
-    output: str
-    scores: str
-    activation: str | None
-    node: int | None
-    class_axis: int
-    rank: int
-    num_classes: int | None
-    dtype: str
-    tensor: str = ""
-    layout: tuple[int, ...] = ()
-    output_dtype: str = ""
-    scores_axis: int = 1
-    scores_rank: int = 2
-    holds: str = "logits"
-    spelling: str = "raw-logits"
-    logits_from: str = "tensor"
-    post: tuple[_post.PostOp, ...] = ()
-    nodes: tuple[int, ...] = ()
-    rewire: tuple[tuple[int, int], ...] = ()
-    values: str = ""
-    dtypes: tuple[str, ...] = ()
-    ml_transform: str = ""
-    path: tuple[int, ...] = ()
-
-    @property
-    def from_probabilities(self) -> bool:
-        """True when the logits are computed from the model's values, not read off a tensor."""
-        return self.logits_from != "tensor"
-
-    @property
-    def takes_one(self) -> bool:
-        """True when the output holds one class's value (a class taken by Gather or Slice)."""
-        return _post.takes_one(self.post)
-
+__all__ = ["HOLDS", "Branch", "ScoreSite", "find_scores", "fit_kind", "read_as"]
 
 # --------------------------------------------------------------------------
 # Choosing the output
@@ -168,12 +57,37 @@ def _named(view: View, output: str) -> TensorSpec:
                     f"output '{output}' has element type {s.dtype}, not a float type",
                     "choose the output that holds class scores",
                 )
+            if (why := nested.recurrent_state(view, output, loops=False)) is not None:
+                raise OnnxcalError(
+                    f"output '{output}' is {why}: a state the model hands back to be fed in again, "
+                    "not class scores",
+                    "choose the class-score output with --output",
+                )
             return s
     names = ", ".join(s.name for s in specs)
     raise OnnxcalError(f"the model has no output named '{output}'", f"choose one of: {names}")
 
 
-def _choose(view: View) -> ScoreSite:
+def _without_states(view: View, usable: list[TensorSpec]) -> list[TensorSpec]:
+    """The outputs that may hold class scores: never a recurrent state (an LSTM's ``Y_h``, a Loop's
+    carried value; the latter may still be named with ``--output``: a sum of logits carried through a
+    Loop is class scores), nor, beside other candidates, an output that mirrors an input it is
+    computed from (a state fed back)."""
+    states = {s.name: why for s in usable if (why := nested.recurrent_state(view, s.name)) is not None}
+    if states and len(states) == len(usable):
+        listed = "; ".join(f"'{name}' is {why}" for name, why in states.items())
+        raise OnnxcalError(
+            f"every float output of the model is a recurrent state ({listed}), not class scores",
+            "export the model with its class-score output",
+        )
+    kept = [s for s in usable if s.name not in states]
+    if len(kept) > 1:
+        fed = {s.name for s in kept if nested.fed_back(view, s) is not None}
+        kept = [s for s in kept if s.name not in fed] or kept
+    return kept
+
+
+def _choose(view: View, columns: tuple[int, int] | None = None) -> ScoreSite:
     """The output to calibrate when none is named.
 
     An output produced by a recognised activation or probability pattern
@@ -191,12 +105,13 @@ def _choose(view: View) -> ScoreSite:
             f"the model has no floating-point output to calibrate (outputs: {kinds})",
             "onnxcal needs an output of class scores or probabilities",
         )
+    usable = _without_states(view, usable)
     if len(usable) == 1:
-        return _read(view, usable[0])
+        return _read(view, usable[0], columns)
     readings: list[tuple[TensorSpec, ScoreSite | None]] = []
     for s in usable:
         try:
-            readings.append((s, _read(view, s)))
+            readings.append((s, _read(view, s, columns)))
         except OnnxcalError:
             readings.append((s, None))
     found = [site for _, site in readings if site is not None and site.activation is not None]
@@ -230,20 +145,23 @@ def find_scores(
     *,
     holds: str | None = None,
     logits_from: str | None = None,
+    score_columns: str | None = None,
 ) -> ScoreSite:
     """Locate the class scores behind ``output`` (or the one output that holds them).
 
     Walks back from the output through layout ops and post-processing
     (tracking the class axis) to the first spelling of an activation it
-    recognises (``patterns.SPELLINGS``). Without one, the output holds raw
-    logits with the class axis 1 (NCHW-style layouts; common practice).
+    recognises (``patterns.SPELLINGS``), looking into the subgraphs of If,
+    Loop and Scan nodes, through a mean of probabilities and into a Concat
+    (``nested``). Without one, the output holds raw logits with the class
+    axis 1 (NCHW-style layouts; common practice).
 
     Parameters
     ----------
     model : onnx.ModelProto
     output : str, optional
         The output; by default the one output produced by a recognised
-        activation (see ``_choose``).
+        activation (see ``_choose``); never a recurrent state.
     holds : {"logits", "probabilities", "log-probabilities"}, optional
         What the output holds, as stated by the user or found in the data:
         it must agree with a recognised activation, and it turns a raw
@@ -251,17 +169,30 @@ def find_scores(
     logits_from : str, optional
         ``"log"`` reads an ai.onnx.ml classifier through log p even when its
         raw scores are available.
+    score_columns : str, optional
+        ``"START:STOP"``: the output concatenates class scores with other
+        values, and the scores are positions START..STOP-1 along the
+        Concat's axis (``--score-columns``).
 
     Raises
     ------
     OnnxcalError
-        No such output, several candidates, no float output, a class axis
-        that does not fit or is lost, a Softmax below opset 13 that
-        normalises over more than the class axis, scores of a type that is
-        not float, or ``holds`` contradicting the graph.
+        No such output, several candidates, no float output, a recurrent
+        state named as the output, a class axis that does not fit or is
+        lost, a Softmax below opset 13 that normalises over more than the
+        class axis, scores of a type that is not float, ``holds``
+        contradicting the graph, subgraphs that compute the output in
+        different ways, or class scores concatenated with other values
+        (without matching ``score_columns``).
     """
     view = View(model, opset_version(model))
-    site = _read(view, _named(view, output)) if output is not None else _choose(view)
+    columns = nested.parse_columns(score_columns) if score_columns else None
+    site = _read(view, _named(view, output), columns) if output is not None else _choose(view, columns)
+    if columns is not None and site.columns is None:
+        raise OnnxcalError(
+            f"--score-columns: output '{site.output}' is not a Concat of class scores with other values",
+            "leave out --score-columns",
+        )
     if holds is not None:
         site = read_as(site, holds)
     if logits_from == "log" and site.logits_from == "raw-scores":
@@ -275,18 +206,44 @@ def find_scores(
     return site
 
 
-def _read(view: View, spec: TensorSpec) -> ScoreSite:
-    view.output = spec.name
-    tensor, steps = spec.name, []
+def _inner(view: View, spec: TensorSpec) -> ScoreSite:
+    """The walker's reading of a tensor inside the graph (an input of a Concat or a mean, a
+    subgraph's output), for the composed readings of ``nested``."""
+    return _read(view, spec, None, top=False)
+
+
+def _read(view: View, spec: TensorSpec, columns: tuple[int, int] | None = None, top: bool = True) -> ScoreSite:
+    if top:
+        view.output = spec.name
+    tensor, steps = spec.name, list[Step]()
     while True:
         found = first_match(tensor, view)
         if found is not None:
             return _site(view, spec, tensor, steps, *found)
+        composed = _composed(view, tensor, columns)
+        if composed is not None:
+            return _assemble(view, spec, tensor, steps, composed)
         nxt = step(tensor, view)
         if nxt is None or (nxt.zipmap and steps):
             return _raw_site(spec, view.shapes)
         steps.append(nxt)
         tensor = nxt.source
+
+
+def _composed(view: View, tensor: str, columns: tuple[int, int] | None) -> nested.Composed | None:
+    index = view.producer(tensor)
+    if index is None:
+        return None
+    node = view.node(index)
+    if node.domain not in ("", "ai.onnx"):
+        return None
+    if node.op_type in ("If", "Loop", "Scan"):
+        return nested.through_subgraphs(view, tensor, index, _inner)
+    if node.op_type == "ReduceMean":
+        return nested.pooled_mean(view, tensor, index, _inner)
+    if node.op_type == "Concat":
+        return nested.concat_part(view, tensor, index, _inner, columns)
+    return None
 
 
 def _rank_zero(scores: str, output: str) -> OnnxcalError:
@@ -297,6 +254,7 @@ def _rank_zero(scores: str, output: str) -> OnnxcalError:
 
 
 def _site(view: View, spec: TensorSpec, values: str, steps: list[Step], spelling: Spelling, found: Found) -> ScoreSite:
+    """The site of a spelling matched at ``values``, followed on to the output."""
     shapes = view.shapes
     act = found.nodes.get("act", min(found.matched))
     node = view.node(act)
@@ -311,47 +269,83 @@ def _site(view: View, spec: TensorSpec, values: str, steps: list[Step], spelling
     if rank == 0:
         raise _rank_zero(z, spec.name)
     axis = spelling.axis(found, view, rank)
+    dim = z_shape[axis] if z_shape is not None and axis < len(z_shape) else None
+    size = dim if isinstance(dim, int) else None
+    if spelling.name == "ml-classifier":
+        size = _ml_classes(node, shapes)
+    elif spelling.activation == "sigmoid" and rank == 1:
+        size = 1  # a rank-1 Sigmoid: one binary score per row
+    rewire: tuple[tuple[int, int], ...] = ()
+    if logits_from == "tensor":
+        rewire = tuple((i, slot) for i in sorted(found.matched) for slot, name in enumerate(view.node(i).input)
+                       if name == z)
+    composed = nested.Composed(
+        z, logits_from, spelling.activation, spelling.name,
+        "log-probabilities" if spelling.activation == "logsoftmax" else "probabilities",
+        act, tuple(sorted(found.matched)), axis, rank, axis, rank, size,
+        _logits_dtype(view, z, logits_from, values, spec), "",
+        post=spelling.post(found, view), rewire=rewire, path=tuple(found.matched), values=values,
+    )
+    site = _assemble(view, spec, values, steps, composed)
+    return replace(site, ml_transform=ml_transform(node)) if spelling.name == "ml-classifier" else site
+
+
+def _assemble(view: View, spec: TensorSpec, values: str, steps: list[Step], c: nested.Composed) -> ScoreSite:
+    """The ``ScoreSite`` of what ``c`` says ``values`` holds, followed through ``steps`` to the output."""
+    shapes = view.shapes
     tensor = spec.name
     if steps and steps[0].zipmap:
         tensor, steps = steps[0].source, steps[1:]
     forward = list(reversed(steps))
-    out_axis, out_rank, layout, taken = _follow(view, values, axis, rank, forward, spelling.words)
-    size = z_shape[axis] if z_shape is not None and axis < len(z_shape) else None
-    if spelling.name == "ml-classifier":
-        size = _ml_classes(node, shapes)
-    post = spelling.post(found, view) + tuple(s.post for s in forward if s.post is not None)
-    rewire = ()
-    if logits_from == "tensor":
-        rewire = tuple((i, slot) for i in sorted(found.matched) for slot, name in enumerate(view.node(i).input)
-                       if name == z)
-    dtype = _logits_dtype(view, z, logits_from, values, spec)
+    if c.columns is not None:
+        _check_after_concat(view, forward, c)
+    out_axis, out_rank, layout, taken = _follow(view, values, c.axis, c.rank, forward, words_for(c.spelling))
+    size = c.size
+    if size is None and not taken and spec.shape is not None and len(spec.shape) == out_rank:
+        declared = spec.shape[out_axis]  # declared by the output (the logits' shape unknown)
+        size = declared if isinstance(declared, int) else None
     path = [values, *(s.source for s in steps), tensor]
-    dtypes = tuple(dict.fromkeys(d for d in [dtype, *(shapes.dtype(t) for t in path)] if d in _ELEM))
+    dtypes = tuple(dict.fromkeys(d for d in [c.dtype, *c.dtypes, *(shapes.dtype(t) for t in path)] if d in _ELEM))
     return ScoreSite(
         output=spec.name,
-        scores=z,
-        activation=spelling.activation,
-        node=act,
+        scores=c.scores,
+        activation=c.activation,
+        node=c.node,
         class_axis=out_axis,
         rank=out_rank,
         num_classes=size if isinstance(size, int) and size > 0 else None,
-        dtype=dtype,
+        dtype=c.dtype,
         tensor=tensor,
-        layout=layout,
-        output_dtype=shapes.dtype(tensor) or (spec.dtype if spec.is_float else dtype),
-        scores_axis=axis,
-        scores_rank=rank,
-        holds="log-probabilities" if spelling.activation == "logsoftmax" else "probabilities",
-        spelling=spelling.name,
-        logits_from=logits_from,
-        post=post,
-        nodes=tuple(sorted(found.matched)),
-        rewire=rewire,
-        values=values,
+        layout=c.layout + layout,
+        output_dtype=shapes.dtype(tensor) or (spec.dtype if spec.is_float else c.dtype),
+        scores_axis=c.scores_axis,
+        scores_rank=c.scores_rank,
+        holds=c.holds,
+        spelling=c.spelling,
+        logits_from=c.logits_from,
+        post=c.post + tuple(s.post for s in forward if s.post is not None),
+        nodes=c.nodes,
+        rewire=c.rewire,
+        values=c.values or values,
         dtypes=dtypes,
-        ml_transform=ml_transform(node) if spelling.name == "ml-classifier" else "",
-        path=tuple(sorted({i for s in steps for i in s.nodes} | found.matched)),
+        path=tuple(sorted({i for s in steps for i in s.nodes} | set(c.path) | set(c.nodes))),
+        branches=c.branches,
+        columns=None if c.columns is None else (out_axis, *c.columns),
+        composed=c.words,
     )
+
+
+def _check_after_concat(view: View, forward: list[Step], c: nested.Composed) -> None:
+    """After a Concat whose score part is calibrated alone, only ops that keep every position's
+    place may follow (the captured scores are laid out like the output by replaying them)."""
+    for s in forward:
+        node = view.node(s.nodes[0])
+        if s.post is not None or node.op_type in ("Reshape", "Flatten"):
+            raise OnnxcalError(
+                f"a {node.op_type} node '{node.name or node.output[0]}' follows the Concat of '{view.output}', "
+                "so onnxcal cannot lay its score positions out like the output",
+                "choose the Concat's output itself with --output if it is a graph output, or leave out --score-columns",
+            )
 
 
 def _logits_dtype(view: View, z: str, logits_from: str, values: str, spec: TensorSpec) -> str:
@@ -439,84 +433,6 @@ def _raw_site(spec: TensorSpec, shapes: _Shapes) -> ScoreSite:
         values=spec.name,
         dtypes=(spec.dtype,) if spec.dtype in _ELEM else (),
     )
-
-
-def read_as(site: ScoreSite, holds: str, kind: str | None = None, *, source: str = "stated") -> ScoreSite:
-    """``site`` read as holding ``holds`` (what the user states, or what the data show).
-
-    A recognised activation must agree. A raw output read as probabilities
-    is calibrated through z = log p (softmax; ``kind`` "sigmoid" or one value
-    per row: z = logit p) and as log-probabilities through z = the values;
-    the rewrite then replaces the output's values in place (drop-in).
-    ``source`` ("stated" or "data") is kept in ``spelling``.
-
-    Raises
-    ------
-    OnnxcalError
-        ``holds`` is not one of ``HOLDS``, or contradicts the graph.
-    """
-    if holds not in HOLDS:
-        raise OnnxcalError(f"--output-holds {holds!r} is not one of: {', '.join(HOLDS)}")
-    if site.activation is not None:
-        if holds != site.holds:
-            raise OnnxcalError(
-                f"output '{site.output}' comes from {_words_of(site)}, so it holds {site.holds}, not {holds}",
-                "leave out --output-holds, or choose another output with --output",
-            )
-        return site
-    if holds == "logits":
-        return site
-    single = site.num_classes == 1 or site.rank == 1
-    sigmoid = kind == "sigmoid" or (kind is None and single)
-    if holds == "log-probabilities":
-        activation, logits_from = "logsoftmax", "log-probabilities"
-    else:
-        activation, logits_from = ("sigmoid", "logit") if sigmoid else ("softmax", "log")
-    return replace(site, activation=activation, logits_from=logits_from, holds=holds, spelling=source)
-
-
-def fit_kind(site: ScoreSite, requested: str | None = None) -> str:
-    """How the calibrated scores become probabilities: ``"softmax"`` or ``"sigmoid"``.
-
-    An activation in the model decides; for raw logits ``requested`` (the
-    ``--activation`` option) does, else one logit means a sigmoid and more
-    mean a softmax (common practice).
-
-    Raises
-    ------
-    OnnxcalError
-        ``requested`` is not a known choice or contradicts the model.
-    """
-    if requested is not None and requested not in ACTIVATION_CHOICES:
-        raise OnnxcalError(
-            f"--activation {requested!r} is not one of: {', '.join(ACTIVATION_CHOICES)}"
-        )
-    if site.activation is not None:
-        kind = "sigmoid" if site.activation == "sigmoid" else "softmax"
-        if requested is not None and requested != kind:
-            what = "an ai.onnx.ml classifier" if site.spelling == "ml-classifier" else site.activation
-            raise OnnxcalError(
-                f"output '{site.output}' already comes from {what}, so --activation "
-                f"{requested} does not apply",
-                "leave out --activation",
-            )
-        return kind
-    single = site.num_classes == 1 or site.rank == 1
-    if requested == "softmax" and single:
-        raise OnnxcalError(
-            f"output '{site.output}' holds one logit per sample; a softmax over one value is always 1",
-            "use --activation sigmoid (or leave it out)",
-        )
-    return requested or ("sigmoid" if single else "softmax")
-
-
-# --------------------------------------------------------------------------
-# In words
-
-
-def _words_of(site: ScoreSite) -> str:
-    spelling = BY_NAME.get(site.spelling)
-    return spelling.words if spelling is not None else site.spelling
 
 
 def _axis_forward(node: onnx.NodeProto, axis: int, shapes: _Shapes) -> int | None:

@@ -17,10 +17,11 @@ from .tensors import (
     _RESHAPES,
     _attr,
     _axis_through_reshape,
-    _initializer,
     _producers,
     _Shapes,
     _uses,
+    constant_node_value,
+    overridable,
 )
 
 if TYPE_CHECKING:  # imported for annotations only (record and rewrite import this module)
@@ -87,8 +88,8 @@ def _fold_site(model: onnx.ModelProto, site: ScoreSite, drop_logits: bool, per_c
     """
     graph = model.graph
     producers, uses = _producers(graph), _uses(graph)
-    inits = {i.name: i for i in graph.initializer}
-    overridable = {vi.name for vi in graph.input}
+    inits = _constants(graph)
+    fed = overridable(model)
     why = "leave out --fold to insert the scaling as nodes instead"
     shapes = _Shapes(model)
     tensor, tracked, lost = site.scores, (site.scores_axis, site.scores_rank), None
@@ -120,9 +121,10 @@ def _fold_site(model: onnx.ModelProto, site: ScoreSite, drop_logits: bool, per_c
     def constant(name: str, role: str) -> str:
         if node.op_type in _QUANTIZED or (name in producers and graph.node[producers[name]].op_type in _QUANTIZED):
             raise OnnxcalError(f"--fold: the {role} of '{node.name or node.op_type}' is quantized", why)
-        if name not in inits or name in overridable:
+        if name not in inits or name in fed:
             raise OnnxcalError(
-                f"--fold: the {role} '{name}' of '{node.name or node.op_type}' is not a constant initializer", why
+                f"--fold: the {role} '{name}' of '{node.name or node.op_type}' is not a constant initializer "
+                "(nor a Constant node)", why
             )
         if inits[name].data_type not in _FLOAT_TYPES:
             raise OnnxcalError(f"--fold: the {role} '{name}' is not floating point (quantized?)", why)
@@ -202,21 +204,33 @@ def _fold_affine(scaling: Scaling) -> tuple[np.ndarray, np.ndarray]:
     return _uniform(w), _uniform(b)
 
 
+def _constants(graph: onnx.GraphProto) -> dict[str, onnx.TensorProto]:
+    """The graph's constant tensors by name: its initializers and what its ``Constant`` nodes hold
+    (exporters write weights either way; ONNX operator spec, Constant)."""
+    found = {i.name: i for i in graph.initializer}
+    for node in graph.node:
+        value = constant_node_value(node)
+        if value is not None:
+            found.setdefault(node.output[0], value)
+    return found
+
+
 def _array(graph: onnx.GraphProto, name: str) -> np.ndarray | None:
-    init = _initializer(graph, name)
-    return None if init is None else tensor_array(init)
+    tensor = _constants(graph).get(name)
+    return None if tensor is None else tensor_array(tensor)
 
 
 def _put_arrays(graph: onnx.GraphProto, arrays: dict[str, np.ndarray]) -> None:
-    """Replace initializers by float64 ``arrays``, each rounded once to the dtype it had."""
-    for i, init in enumerate(graph.initializer):
-        if init.name in arrays:
-            dtype = np.dtype(helper.tensor_dtype_to_np_dtype(init.data_type))
+    """Replace constants (initializers, Constant nodes' values) by float64 ``arrays``, each rounded
+    once to the dtype it had."""
+    for name, tensor in _constants(graph).items():
+        if name in arrays:
+            dtype = np.dtype(helper.tensor_dtype_to_np_dtype(tensor.data_type))
             with np.errstate(over="ignore"):
-                new = numpy_helper.from_array(np.asarray(arrays[init.name]).astype(dtype), init.name)
-            if init.HasField("doc_string"):
-                new.doc_string = init.doc_string
-            graph.initializer[i].CopyFrom(new)
+                new = numpy_helper.from_array(np.asarray(arrays[name]).astype(dtype), tensor.name)
+            if tensor.HasField("doc_string"):
+                new.doc_string = tensor.doc_string
+            tensor.CopyFrom(new)
 
 
 def _fold(s: _Surgery, model: onnx.ModelProto, site: ScoreSite, scaling: Scaling, drop_logits: bool) -> None:

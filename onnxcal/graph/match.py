@@ -33,8 +33,9 @@ from typing import Any, Union
 
 import numpy as np
 import onnx
+
 from .external import tensor_array
-from .tensors import _attr, _Shapes
+from .tensors import _Shapes, constant_node_value, overridable
 
 
 @dataclass(frozen=True)
@@ -87,17 +88,32 @@ _DEFAULT = ("", "ai.onnx")
 
 
 class View:
-    """What patterns read of a graph: producers, constants, attributes, shapes, the opset."""
+    """What patterns read of a graph: producers, constants, attributes, shapes, the opset.
 
-    def __init__(self, model: onnx.ModelProto, opset: int | None) -> None:
+    ``sub(graph)`` gives the view of a subgraph (an ``If`` branch, a
+    ``Loop``/``Scan`` body): its own producers, and the constants of the
+    scopes around it (a subgraph may read any tensor of an enclosing graph;
+    ONNX IR spec, "Names Within a Graph").
+    """
+
+    def __init__(
+        self, model: onnx.ModelProto, opset: int | None, graph: onnx.GraphProto | None = None,
+        parent: View | None = None,
+    ) -> None:
         self.model = model
-        self.graph = model.graph
+        self.graph = model.graph if graph is None else graph
+        self.parent = parent
         self.opset = opset or 0
         self.producers = {out: i for i, n in enumerate(self.graph.node) for out in n.output if out}
-        overridable = {vi.name for vi in self.graph.input}
-        self._inits = {i.name: i for i in self.graph.initializer if i.name not in overridable}
-        self.shapes = _Shapes(model)
-        self.output = ""  # the output being read, for messages
+        skip = overridable(model) if parent is None else set()
+        self._inits = {i.name: i for i in self.graph.initializer if i.name not in skip}
+        self._inputs = {vi.name for vi in self.graph.input} if parent is not None else set()
+        self.shapes = parent.shapes if parent is not None else _Shapes(model)
+        self.output = parent.output if parent is not None else ""  # the output being read, for messages
+
+    def sub(self, graph: onnx.GraphProto) -> View:
+        """The view of ``graph``, a subgraph of an attribute of one of this graph's nodes."""
+        return View(self.model, self.opset, graph, self)
 
     def producer(self, tensor: str) -> int | None:
         return self.producers.get(tensor)
@@ -106,14 +122,16 @@ class View:
         return self.graph.node[index]
 
     def constant(self, tensor: str) -> np.ndarray | None:
-        """The value of ``tensor`` when it is a constant of the graph, else None."""
+        """The value of ``tensor`` when it is a constant of the graph (or of a scope around it), else None."""
         if tensor in self._inits:
             return tensor_array(self._inits[tensor])
         i = self.producers.get(tensor)
-        if i is None or self.graph.node[i].op_type != "Constant":
-            return None
-        value = _attr(self.graph.node[i], "value", None)
-        return None if not isinstance(value, onnx.TensorProto) else tensor_array(value)
+        if i is not None:
+            value = constant_node_value(self.graph.node[i])
+            return None if value is None else tensor_array(value)
+        if self.parent is not None and tensor not in self._inputs:
+            return self.parent.constant(tensor)
+        return None
 
 
 @dataclass

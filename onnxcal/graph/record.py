@@ -14,9 +14,9 @@ from .. import __version__
 from ..errors import OnnxcalError, first_line
 from ..scaling import Scaling, check_scaling
 from .external import tensor_array
-from .fold import folded_values
+from .fold import _constants, folded_values
 from .post import from_json
-from .tensors import RECORD_FORMAT, RECORD_KEY, _initializer
+from .tensors import RECORD_FORMAT, RECORD_KEY, _initializer, all_nodes, constant_node_value
 
 
 @dataclass(frozen=True)
@@ -85,6 +85,9 @@ class Record:
     fitted_on_sha256 : str
         SHA-256 of the model the parameters were fitted on, when it is a
         twin of this one (``--fitted-on-twin``); "" when it is the source.
+    score_columns : str
+        ``"START:STOP"`` when only these positions of a Concat output were
+        calibrated (``--score-columns``); "" otherwise.
     onnxcal_version : str
     format : int
     """
@@ -111,6 +114,7 @@ class Record:
     logits_from: str = "tensor"
     post: list = field(default_factory=list)
     fitted_on_sha256: str = ""
+    score_columns: str = ""
     onnxcal_version: str = __version__
     format: int = RECORD_FORMAT
 
@@ -132,7 +136,7 @@ _RECORD_TYPES = {
     **{k: (dict,) for k in ("fit", "parameters", "initializers", "changes")},
     "post": (list,),
 }
-_CHANGE_LISTS = ("nodes", "initializers", "outputs", "value_info", "scaled")
+_CHANGE_LISTS = ("nodes", "initializers", "outputs", "value_info", "scaled", "inputs")
 
 
 def _check_record_fields(data) -> None:
@@ -243,15 +247,17 @@ def check_record(model: onnx.ModelProto, record: Record, where: str = "the model
         is not in the graph.
     """
     g = model.graph
+    nodes = list(all_nodes(g))  # a patch may add nodes inside subgraphs (If branches, Loop/Scan bodies)
     have = {
-        "node": {n.name for n in g.node},
+        "node": {n.name for n in nodes},
         "initializer": {i.name for i in g.initializer},
         "output": {o.name for o in g.output},
+        "constant": {i.name for i in g.initializer} | {n.output[0] for n in g.node if constant_node_value(n)},
     }
-    tensors = {t for n in g.node for t in n.output} | {i.name for i in g.input} | have["initializer"]
+    tensors = {t for n in nodes for t in n.output} | {i.name for i in g.input} | have["initializer"]
     ch = record.changes
     wanted = [("node", n) for n in ch.get("nodes", [])] + [("initializer", n) for n in ch.get("initializers", [])]
-    wanted += [("output", n) for n in ch.get("outputs", [])] + [("initializer", n) for n in ch.get("scaled", [])]
+    wanted += [("output", n) for n in ch.get("outputs", [])] + [("constant", n) for n in ch.get("scaled", [])]
     wanted += [("initializer", n) for n in record.initializers.values() if n]
     problem = next((f"{kind} '{name}' that the patch added is missing" for kind, name in wanted
                     if name not in have[kind]), None)
@@ -316,8 +322,8 @@ def temperature_dtype(model: onnx.ModelProto, record: Record) -> str | None:
     names = record.changes.get("scaled", []) if record.folded else list(
         (record.initializers or {"temperature": record.temperature_initializer}).values()
     )
-    for init in model.graph.initializer:
-        if init.name in names:
+    for name, init in _constants(model.graph).items():
+        if name in names:
             return np.dtype(helper.tensor_dtype_to_np_dtype(init.data_type)).name
     return None
 

@@ -1,4 +1,4 @@
-"""Rewriting the graph: the rewrites, patch, unpatch, expose.
+"""Rewriting the graph: the rewrites, patch, unpatch (``expose`` holds the copies made for running).
 
 Three rewrites, chosen from the ``ScoreSite``:
 
@@ -23,11 +23,12 @@ from pathlib import Path, PurePosixPath, PureWindowsPath
 
 import numpy as np
 import onnx
-from onnx import helper, numpy_helper
+from onnx import helper
 
 from ..errors import OnnxcalError
 from ..scaling import Scaling, check_scaling
-from .external import check_model, tensor_array
+from .expose import _subgraph
+from .external import check_model
 from .find import ScoreSite, find_scores, fit_kind, read_as
 from .fold import _fold, _roundings, _unfold
 from .post import to_json
@@ -43,7 +44,13 @@ from .surgery import (
     build_logits,
     scale_fn,
 )
-from .tensors import _ELEM, COMPUTE_DTYPES, DEFAULT_OUTPUT_NAME, ML_DOMAIN
+from .tensors import (
+    _ELEM,
+    COMPUTE_DTYPES,
+    DEFAULT_OUTPUT_NAME,
+    ML_DOMAIN,
+    subgraphs,
+)
 
 _SINGLE = ("softmax", "log-softmax", "sigmoid")
 _OPS = {"softmax": "Softmax", "logsoftmax": "LogSoftmax", "sigmoid": "Sigmoid"}
@@ -55,6 +62,11 @@ def _insert_before(s: _Surgery, site: ScoreSite, scale: ScaleFn, compute: str | 
     With a compute dtype, a single activation op runs in it and its result
     is cast back; a written-out activation gets the scaled logits cast back.
     """
+    if site.branches:  # the activation sits in subgraphs: insert in every one of them
+        for branch in site.branches:
+            sub = s.sub(_subgraph(s.graph, branch))
+            _insert_before(sub, branch.site, scale, compute)
+        return
     single = compute is not None and site.spelling in _SINGLE
     scaled = _scaled(s, site.scores, site.dtype, scale, compute)
     if compute is not None and not single:
@@ -196,22 +208,17 @@ def _undo(model: onnx.ModelProto, record: Record) -> None:
     """Undo in place the changes ``record`` lists."""
     g = model.graph
     ch = record.changes
-    added = set(ch["nodes"])
-    keep = [n for n in g.node if n.name not in added]
-    renamed = ch["renamed"]
-    for node in keep:
-        for i, name in enumerate(node.input):
-            node.input[i] = renamed.get(name, name)
-        for i, name in enumerate(node.output):
-            node.output[i] = renamed.get(name, name)
-    del g.node[:]
-    g.node.extend(keep)
+    _undo_nodes(g, set(ch["nodes"]), ch["renamed"])
     inits = [i for i in g.initializer if i.name not in set(ch["initializers"])]
     del g.initializer[:]
     g.initializer.extend(inits)
     infos = [vi for vi in g.value_info if vi.name not in set(ch.get("value_info", []))]
     del g.value_info[:]
     g.value_info.extend(infos)
+    if ch.get("inputs"):  # initializers listed as inputs (IR version 3)
+        kept_inputs = [vi for vi in g.input if vi.name not in set(ch["inputs"])]
+        del g.input[:]
+        g.input.extend(kept_inputs)
     outputs = list(g.output)
     restored = None
     if ch.get("dropped"):
@@ -230,6 +237,21 @@ def _undo(model: onnx.ModelProto, record: Record) -> None:
         model.opset_import.extend(kept)
     if record.folded:
         _unfold(g, record)
+
+
+def _undo_nodes(g: onnx.GraphProto, added: set[str], renamed: dict[str, str]) -> None:
+    """Remove the nodes a patch added and undo its renames, in ``g`` and in every subgraph
+    (a head inside If branches or a Loop/Scan body is patched there)."""
+    keep = [n for n in g.node if n.name not in added]
+    for node in keep:
+        for i, name in enumerate(node.input):
+            node.input[i] = renamed.get(name, name)
+        for i, name in enumerate(node.output):
+            node.output[i] = renamed.get(name, name)
+        for _, sub in subgraphs(node):
+            _undo_nodes(sub, added, renamed)
+    del g.node[:]
+    g.node.extend(keep)
 
 
 def _head(records: tuple[Record, ...], output: str | None) -> Record | None:
@@ -319,6 +341,10 @@ def _check_options(
             "--compute-dtype sets the dtype of the inserted Div, and with --fold there is none",
             "give one of --fold and --compute-dtype",
         )
+    if fold and (site.branches or site.columns):
+        where = "inside subgraphs" if site.branches else "in one part of a Concat"
+        raise OnnxcalError(f"--fold: the logits of output '{site.output}' are {where}; folding works on one "
+                           "linear layer of the main graph", "leave out --fold")
     if fold and site.from_probabilities:
         what = ("an ai.onnx.ml classifier, which has no logits layer" if site.spelling == "ml-classifier"
                 else f"logits computed from other values ({site.logits_from}), with no layer")
@@ -352,6 +378,7 @@ def patch(
     logits_from: str | None = None,
     fitted_on_sha256: str = "",
     site: ScoreSite | None = None,
+    score_columns: str | None = None,
 ) -> onnx.ModelProto:
     """Return a copy of ``model`` whose output carries calibrated probabilities.
 
@@ -399,6 +426,9 @@ def patch(
         on this very model), used as it is. Tests force a wrong reading this
         way to see verify catch it. Not for a model that already calibrates
         that output.
+    score_columns : str, optional
+        ``"START:STOP"``: calibrate only these positions of an output that
+        concatenates class scores with other values (see ``find_scores``).
 
     Returns
     -------
@@ -419,13 +449,13 @@ def patch(
         output = output if output not in (None, previous.output) else (previous.source_output or None)
     kind = activation or (calibration.activation if isinstance(calibration, Scaling) else None)
     if site is None:
-        site = find_scores(out, output, logits_from=logits_from)
+        site = find_scores(out, output, logits_from=logits_from, score_columns=score_columns)
         if holds is not None:
             site = read_as(site, holds, kind, source=holds_from)
     _check_heads(out, site, others)
     scaling = _site_scaling(calibration, site, activation)
     compute = _check_options(site, compute_dtype, fold, scaling)
-    s = _Surgery(out.graph)
+    s = _Surgery(out.graph, out.ir_version)
     opset = add_default_opset(s, out)
     if rounded := _roundings(previous):
         s.changes["rounded"] = rounded
@@ -456,6 +486,7 @@ def patch(
         logits_from=site.logits_from,
         post=to_json(site.post),
         fitted_on_sha256=fitted_on_sha256 if fitted_on_sha256 != source_sha256 else "",
+        score_columns=_columns_text(site),
     )
     _write_records(out, [*others, record])
     try:
@@ -466,6 +497,16 @@ def patch(
             "report this with the model's inspect output",
         ) from exc
     return out
+
+
+def _columns_text(site: ScoreSite) -> str:
+    """``"START:STOP"`` of a site that is one part of a Concat, else ""."""
+    return "" if site.columns is None else f"{site.columns[1]}:{site.columns[2]}"
+
+
+def find_recorded(model: onnx.ModelProto, record: Record) -> ScoreSite:
+    """The site of the output ``record`` calibrated in the patched ``model``, read as the patch read it."""
+    return find_scores(model, record.output, score_columns=record.score_columns or None)
 
 
 def _copy(model: onnx.ModelProto) -> onnx.ModelProto:
@@ -479,7 +520,7 @@ def _rewrite(
     new_output: str, drop_logits: bool, opset: int, fold: bool,
 ) -> tuple[str, str]:
     """Apply the rewrite the site calls for; its name and the calibrated output."""
-    if site.activation is not None and site.rewire:
+    if site.inserts:
         if not fold:
             _insert_before(s, site, scale, compute)
         return "insert-before-activation", site.output
@@ -495,83 +536,3 @@ def _rewrite(
     kind = scaling.activation
     _append_activation(s, site, scale, compute, kind, new_output, drop_logits, opset)
     return f"append-{kind}", new_output
-
-
-def expose(model: onnx.ModelProto, tensors: list[str]) -> onnx.ModelProto:
-    """A copy of ``model`` with ``tensors`` added as graph outputs (for capture).
-
-    Types come from shape inference; the copy is for running, never saved.
-    """
-    out = _copy(model)
-    existing = {vi.name for vi in out.graph.output}
-    missing = [t for t in tensors if t not in existing]
-    if not missing:
-        return out
-    try:
-        inferred = onnx.shape_inference.infer_shapes(out)
-        known = {vi.name: vi for vi in inferred.graph.value_info}
-    except Exception:  # inference is a nicety here; fall back to untyped outputs
-        known = {}
-    for name in missing:
-        vi = known.get(name)
-        out.graph.output.append(vi if vi is not None else helper.make_empty_tensor_value_info(name))
-    return out
-
-
-def expose_scores(
-    model: onnx.ModelProto, site: ScoreSite, also: tuple[str, ...] = ()
-) -> tuple[onnx.ModelProto, str]:
-    """A copy of ``model`` that outputs the logits of ``site``, laid out like ``site.tensor``.
-
-    The logits are built as the patch builds them (``build_logits``: log p,
-    a classifier's raw scores, ...). When layout ops (Transpose, Reshape,
-    ...) sit between the activation and the output, they are replayed on
-    the logits, so captured rows line up with the output (and with
-    per-pixel labels shaped like it). ``also`` names further tensors to
-    output (e.g. the output's values, to check the reading against).
-    """
-    out = _copy(model)
-    s = _Surgery(out.graph)
-    add_default_opset(s, out)
-    tensor = build_logits(s, site, site.scores)
-    for i in site.layout:
-        node = onnx.NodeProto()
-        node.CopyFrom(out.graph.node[i])
-        node.name = s.name(f"onnxcal_{node.op_type.lower()}")
-        node.input[0] = tensor
-        tensor = s.name(f"{site.scores}_{node.op_type.lower()}")
-        node.output[0] = tensor
-        s.nodes.append(node)
-    s.flush(len(out.graph.node))
-    return expose(out, [tensor, *also]), tensor
-
-
-def at_identity(
-    model: onnx.ModelProto, records: tuple[Record, ...], original: onnx.ModelProto | None = None
-) -> onnx.ModelProto | None:
-    """A copy of a patched ``model`` whose calibration parameters are the identity.
-
-    T = 1 and w = 1, b = 0: the rewritten graph must then give the original
-    model's outputs (``verify``'s identity check). A folded head gets the
-    original's weights back from ``original``; None when it is needed and
-    not given.
-    """
-    out = _copy(model)
-    inits = {i.name: i for i in out.graph.initializer}
-    for record in records:
-        if record.folded:
-            if original is None:
-                return None
-            source = {i.name: i for i in original.graph.initializer}
-            for name in record.changes.get("scaled", []):
-                if name in source and name in inits:
-                    inits[name].CopyFrom(source[name])
-            continue
-        for role, name in (record.initializers or {"temperature": record.temperature_initializer}).items():
-            init = inits.get(name)
-            if init is None:
-                continue
-            arr = tensor_array(init)
-            value = np.zeros_like(arr) if role == "b" else np.ones_like(arr)
-            init.CopyFrom(numpy_helper.from_array(value, name))
-    return out

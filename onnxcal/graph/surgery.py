@@ -37,20 +37,41 @@ class _Surgery:
     ``changes`` ends up in the record; ``unpatch`` reads it to undo the patch.
     """
 
-    def __init__(self, graph: onnx.GraphProto) -> None:
+    def __init__(self, graph: onnx.GraphProto, ir_version: int = 0) -> None:
         self.graph = graph
+        self.ir_version = ir_version
         self.taken = _all_names(graph)
         self.nodes: list[onnx.NodeProto] = []
         self.changes: dict = {"nodes": [], "initializers": [], "outputs": [], "renamed": {}}
         self.parameters: dict[str, str] = {}  # role -> initializer name (e.g. "temperature")
+        self.root = self
+
+    def sub(self, graph: onnx.GraphProto) -> _Surgery:
+        """A surgery on a subgraph of this graph (an If branch, a Loop/Scan body).
+
+        It shares the names taken (unique across the whole model), the
+        changes noted and the parameters; its constants go into the main
+        graph, which every subgraph may read (ONNX IR spec, outer scope).
+        """
+        inner = _Surgery.__new__(_Surgery)
+        inner.graph, inner.ir_version, inner.taken, inner.nodes = graph, self.ir_version, self.taken, []
+        inner.changes, inner.parameters, inner.root = self.changes, self.parameters, self.root
+        return inner
 
     def name(self, base: str) -> str:
         return unique_name(base, self.taken)
 
     def constant(self, base: str, tensor: onnx.TensorProto) -> str:
+        """Add an initializer (to the main graph); below IR version 4 it is also listed as a graph
+        input, as that IR requires of every initializer (ONNX IR spec, IR version 3)."""
+        if self.root is not self:
+            return self.root.constant(base, tensor)
         tensor.name = self.name(base)
         self.graph.initializer.append(tensor)
         self.changes["initializers"].append(tensor.name)
+        if 0 < self.ir_version < 4:
+            self.graph.input.append(helper.make_tensor_value_info(tensor.name, tensor.data_type, list(tensor.dims)))
+            self.changes.setdefault("inputs", []).append(tensor.name)
         return tensor.name
 
     def node(self, op: str, inputs: list[str], out: str, output: str | None = None, **attrs) -> str:
@@ -96,6 +117,8 @@ def _parameter(s: _Surgery, role: str, value, dtype: str, site: ScoreSite) -> st
     """A parameter initializer: a scalar, or one value per class shaped to
     broadcast along the class axis of the scores (ONNX multidirectional
     broadcasting aligns trailing dims; ONNX operator spec, Broadcasting)."""
+    if role in s.parameters:  # the same parameter, read again inside another branch
+        return s.parameters[role]
     arr = np.asarray(value, dtype=np_dtype(dtype))
     if arr.ndim == 1:
         arr = arr.reshape((arr.size,) + (1,) * (site.scores_rank - 1 - site.scores_axis))

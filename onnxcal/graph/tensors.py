@@ -69,11 +69,17 @@ def opset_version(model: onnx.ModelProto) -> int:
 
 
 def _dims(vi: onnx.ValueInfoProto) -> tuple[int | str | None, ...] | None:
+    """Fixed dims as ints, symbolic ones by name, unknown ones as None.
+
+    A negative ``dim_value`` (-1: some converters' spelling of a dynamic
+    dim; onnxruntime reads it as unknown) is unknown, not a size.
+    """
     t = vi.type.tensor_type
     if not vi.type.HasField("tensor_type") or not t.HasField("shape"):
         return None
     return tuple(
-        d.dim_value if d.HasField("dim_value") else (d.dim_param or None) for d in t.shape.dim
+        (d.dim_value if d.dim_value >= 0 else None) if d.HasField("dim_value") else (d.dim_param or None)
+        for d in t.shape.dim
     )
 
 
@@ -119,8 +125,7 @@ class _Shapes:
 
     def __init__(self, model: onnx.ModelProto) -> None:
         self._model = model
-        g = model.graph
-        self._known = {vi.name: vi for vi in [*g.input, *g.output, *g.value_info]}
+        self._known = _value_infos(model.graph)
         self._inferred: dict[str, onnx.ValueInfoProto] | None = None
 
     def _info(self, name: str) -> onnx.ValueInfoProto | None:
@@ -128,7 +133,7 @@ class _Shapes:
         if (vi is None or _dims(vi) is None) and self._inferred is None:
             try:
                 inferred = onnx.shape_inference.infer_shapes(_without_weights(self._model))
-                self._inferred = {v.name: v for v in inferred.graph.value_info}
+                self._inferred = _value_infos(inferred.graph, inputs=False)
             except Exception:  # inference is best effort; callers handle None
                 self._inferred = {}
         if vi is None or _dims(vi) is None:
@@ -144,6 +149,36 @@ class _Shapes:
         if vi is None or not vi.type.tensor_type.elem_type:
             return None
         return _type_name(vi.type)
+
+
+def subgraphs(node: onnx.NodeProto) -> list[tuple[str, onnx.GraphProto]]:
+    """(attribute name, graph) of every subgraph of ``node`` (If branches, Loop and Scan bodies)."""
+    out = []
+    for a in node.attribute:
+        if a.type == onnx.AttributeProto.GRAPH:
+            out.append((a.name, a.g))
+        elif a.type == onnx.AttributeProto.GRAPHS:
+            out.extend((a.name, g) for g in a.graphs)
+    return out
+
+
+def all_nodes(graph: onnx.GraphProto):
+    """Every node of ``graph`` and of its subgraphs, depth first."""
+    for node in graph.node:
+        yield node
+        for _, g in subgraphs(node):
+            yield from all_nodes(g)
+
+
+def _value_infos(graph: onnx.GraphProto, inputs: bool = True) -> dict[str, onnx.ValueInfoProto]:
+    """Every value info of ``graph`` and its subgraphs by name (names are unique across a model,
+    ONNX IR spec: a subgraph may not reuse a name of an enclosing scope)."""
+    infos = {vi.name: vi for vi in [*(graph.input if inputs else ()), *graph.output, *graph.value_info]}
+    for node in graph.node:
+        for _, g in subgraphs(node):
+            for name, vi in _value_infos(g).items():
+                infos.setdefault(name, vi)
+    return infos
 
 
 SMALL_INITIALIZER = 1024
@@ -213,6 +248,27 @@ def _axis_through_reshape(axis: int, before, after) -> int | None:
 
 def _initializer(graph: onnx.GraphProto, name: str) -> onnx.TensorProto | None:
     return next((i for i in graph.initializer if i.name == name), None)
+
+
+def overridable(model: onnx.ModelProto) -> set[str]:
+    """Initializers a caller may override by feeding a graph input of the same name.
+
+    From IR version 4 an initializer listed among the graph inputs is a
+    default value the caller may replace; before it, every initializer had
+    to be listed as an input, so the listing says nothing and they are
+    constants (ONNX IR spec, "Graphs" and its IR version history).
+    """
+    if model.ir_version and model.ir_version < 4:
+        return set()
+    return {vi.name for vi in model.graph.input}
+
+
+def constant_node_value(node: onnx.NodeProto) -> onnx.TensorProto | None:
+    """The tensor a ``Constant`` node holds in its ``value`` attribute, else None."""
+    if node.op_type != "Constant" or node.domain not in ("", "ai.onnx"):
+        return None
+    value = _attr(node, "value", None)
+    return value if isinstance(value, onnx.TensorProto) else None
 
 
 # --------------------------------------------------------------------------

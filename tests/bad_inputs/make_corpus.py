@@ -192,6 +192,62 @@ def bad_models(d: Path, rng: np.random.Generator) -> None:
     # a float16 model, for CSV values float16 cannot hold
     _save(mlp_model([(rng.normal(size=(D, K)), np.zeros(K))], dtype=np.float16), d / "f16.onnx")
 
+    # a detector head: box coordinates and sigmoid scores in one Concat (issue 12)
+    boxes_w, scores_w = rng.normal(size=(D, 4)).astype(np.float32), rng.normal(size=(D, K)).astype(np.float32)
+    det = helper.make_graph(
+        [helper.make_node("MatMul", ["x", "box_w"], ["boxes"], name="boxes"),
+         helper.make_node("MatMul", ["x", "cls_w"], ["cls_logits"], name="cls"),
+         helper.make_node("Sigmoid", ["cls_logits"], ["cls_scores"], name="cls_sigmoid"),
+         helper.make_node("Concat", ["boxes", "cls_scores"], ["detections"], axis=1, name="det_concat")],
+        "detector_concat",
+        [_vi("x", ["N", D])],
+        [_vi("detections", ["N", 4 + K])],
+        initializer=[numpy_helper.from_array(boxes_w, "box_w"), numpy_helper.from_array(scores_w, "cls_w")],
+    )
+    _save(_finish(det), d / "detector.onnx")
+
+    # an LSTM whose state outputs sit beside a rank-1 sigmoid score (issue 12)
+    h = 3
+    lstm = helper.make_graph(
+        [helper.make_node("Unsqueeze", ["x", "zero"], ["x_seq"], name="one_step"),
+         helper.make_node("LSTM", ["x_seq", "lstm_w", "lstm_r"], ["y", "hn", "cn"], hidden_size=h, name="lstm"),
+         helper.make_node("Squeeze", ["hn", "zero"], ["h_last"], name="last"),
+         helper.make_node("Gemm", ["h_last", "head_w"], ["head"], name="head"),
+         helper.make_node("Reshape", ["head", "flat"], ["logit"], name="flatten"),
+         helper.make_node("Sigmoid", ["logit"], ["score"], name="score")],
+        "recurrent_state",
+        [_vi("x", ["N", D])],
+        [_vi("score", ["N"]), _vi("hn", [1, "N", h]), _vi("cn", [1, "N", h])],
+        initializer=[numpy_helper.from_array(rng.normal(size=(1, 4 * h, D)).astype(np.float32), "lstm_w"),
+                     numpy_helper.from_array(rng.normal(size=(1, 4 * h, h)).astype(np.float32), "lstm_r"),
+                     numpy_helper.from_array(rng.normal(size=(h, 1)).astype(np.float32), "head_w"),
+                     numpy_helper.from_array(np.array([0], np.int64), "zero"),
+                     numpy_helper.from_array(np.array([-1], np.int64), "flat")],
+    )
+    _save(_finish(lstm), d / "recurrent.onnx")
+
+    # an If whose branches compute the output differently: a Sigmoid in one, raw values in the other
+    def branch(tag: str, sigmoid: bool) -> onnx.GraphProto:
+        nodes = [helper.make_node("MatMul", ["x", f"{tag}_w"], [f"{tag}_z"], name=f"{tag}_matmul")]
+        out = f"{tag}_z"
+        if sigmoid:
+            nodes.append(helper.make_node("Sigmoid", [out], [f"{tag}_p"], name=f"{tag}_sigmoid"))
+            out = f"{tag}_p"
+        w = numpy_helper.from_array(rng.normal(size=(D, 1)).astype(np.float32), f"{tag}_w")
+        return helper.make_graph(nodes, tag, [], [_vi(out, ["N", 1])], initializer=[w])
+
+    mixed = helper.make_graph(
+        [helper.make_node("ReduceMax", ["x"], ["x_max"], keepdims=0, name="max"),
+         helper.make_node("Greater", ["x_max", "limit"], ["cond"], name="cond"),
+         helper.make_node("If", ["cond"], ["out"], then_branch=branch("then", True),
+                          else_branch=branch("else", False), name="which")],
+        "branches_disagree",
+        [_vi("x", ["N", D])],
+        [_vi("out", ["N", 1])],
+        initializer=[numpy_helper.from_array(np.array(0.0, np.float32), "limit")],
+    )
+    _save(_finish(mixed), d / "branches_disagree.onnx")
+
     # the good model patched, then its record made to disagree with its graph
     patched = onnx.load(str(d / "patched.onnx"))
     (record,) = json.loads(next(p.value for p in patched.metadata_props if p.key == "onnxcal.calibration"))
