@@ -10,21 +10,31 @@ is a vector of counts (how often each row was drawn), used as weights; no
 resampled copy of the logits is made. The interval is the 2.5th to 97.5th
 percentile of the replicates (Efron & Tibshirani 1993, ch. 13).
 
-Temperature scaling of a multiclass model has a fast path whose cost does
-not grow with the number of replicates: after one pass at the fit (for the
-standard error that sets the grid), one chunked pass computes, for every row, the NLL's derivatives (fit part) and the metrics' per-row terms
-with their derivatives (held-out part) at a grid of G = 9 values of
-beta = 1/T spanning +-6 standard errors around the fit. A replicate's
-weighted gradient at the grid points is then a dot product with its
-counts, its root comes from cubic Hermite interpolation between the two
-grid points around it, and its metrics from the same interpolation of each
-row's terms. The interpolation error is of order (grid step)^4, far below
-the spread of the replicates (tests check it against the exact refit). A
-replicate whose root falls outside the grid is refitted exactly. When the
-held-out part is small enough (rows x classes x replicates below
-``EXACT_EVAL_BUDGET``), replicates are scored exactly instead, classwise
-ECE included; above it the classwise ECE gets no interval (it would need
-every class probability of every row per replicate).
+Temperature scaling of a multiclass model has two fast paths whose cost
+does not grow with the number of replicates (each replicate still draws
+its counts and takes a few vector operations over the rows):
+
+* on a large set, :mod:`onnxcal.expansion`: Taylor series in beta = 1/T
+  around the fit, from the cumulants of every row that the pass scoring
+  the fit computes anyway (no further pass over the logits);
+* on a smaller set, where a replicate's beta can lie too far from the fit
+  for that series, a grid: one pass at the fit (for the standard error
+  that sets the grid) and one chunked pass compute, for every row, the
+  NLL's derivatives (fit part) and the metrics' per-row terms with their
+  derivatives (held-out part) at G = 9 values of beta spanning +-6
+  standard errors around the fit. A replicate's weighted gradient at the
+  grid points is then a dot product with its counts, its root comes from
+  cubic Hermite interpolation between the two grid points around it, and
+  its metrics from the same interpolation of each row's terms (error of
+  order (grid step)^4).
+
+Either way a replicate outside the reach of the approximation is refitted
+exactly. When the held-out part is small enough (rows x classes x
+replicates below ``EXACT_EVAL_BUDGET``), replicates are scored exactly
+instead, classwise ECE included; above it the classwise ECE gets no
+interval (it would need every class probability of every row per
+replicate). The refitting function is passed in (``refit``), so this
+module does not depend on :mod:`onnxcal.fit`.
 
 References
 ----------
@@ -35,9 +45,13 @@ Bootstrap", Chapman & Hall 1993, ch. 13 (percentile intervals).
 
 from __future__ import annotations
 
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
+
 import numpy as np
 
 from .errors import OnnxcalError
+from .expansion import Expansion, expand
 from .metrics import (
     METRIC_FIELDS,
     ece_from_bins,
@@ -48,6 +62,10 @@ from .metrics import (
     reliability_bins,
 )
 from .scaling import Scaling
+from .sweep import default_threads
+
+Refit = Callable[..., object]
+"""``refit(logits, labels, options, rows=, weights=, start=)`` -> a FitResult."""
 
 LEVEL = 0.95
 GRID_POINTS = 9
@@ -148,6 +166,10 @@ def bootstrap(
     fit_rows: np.ndarray,
     eval_rows: np.ndarray,
     start: Scaling,
+    *,
+    refit: Refit,
+    expansion: Expansion | None = None,
+    threads: int | None = None,
 ) -> dict:
     """Percentile intervals for the parameters and every after-metric.
 
@@ -159,22 +181,34 @@ def bootstrap(
         The two parts (the same array for an in-sample evaluation).
     start : Scaling
         The fit on ``fit_rows``: the replicates start from it.
+    refit : callable
+        ``refit(logits, labels, options, rows=, weights=, start=)`` -> FitResult
+        (:func:`onnxcal.fit.fit_scaling`), for the replicates refitted exactly.
+    expansion : Expansion, optional
+        The per-row terms at the fit (multiclass temperature), when the
+        caller's pass made them; else a pass makes them here.
+    threads : int, optional
+        Threads for the passes and the replicates; the result does not depend on it.
 
     Returns
     -------
     dict
         ``level``, ``replicates``, ``parameters`` ({name: [low, high] or a list
-        of them}), ``after`` ({metric: [low, high] or None}), ``exact_eval``
-        and ``notes``.
+        of them}), ``after`` ({metric: [low, high] or None}), ``method``
+        (how the replicates were computed) and ``notes``.
     """
     rng = np.random.default_rng([options.seed, 1])
     same = fit_rows is eval_rows
     fast = start.method == "temperature" and start.kind == "multiclass"
     draws = _draws(rng, options.bootstrap, len(fit_rows), None if same else len(eval_rows))
+    run = Replicates(logits, labels, options, fit_rows, eval_rows, start, refit, threads)
+    how = "exact"
     if fast:
-        params, metrics, fallbacks = _grid_replicates(logits, labels, options, fit_rows, eval_rows, start, draws)
+        expansion = expansion or expand(logits, labels, fit_rows, eval_rows, 1.0 / start.temperature, threads)
+        how = "taylor" if expansion.accurate else "grid"
+        params, metrics, fallbacks = (run.taylor(expansion, draws) if expansion.accurate else run.grid(draws))
     else:
-        params, metrics = _exact_replicates(logits, labels, options, fit_rows, eval_rows, start, draws)
+        params, metrics = run.exact(draws)
         fallbacks = 0
     names = list(start.parameters)
     out = {
@@ -182,6 +216,7 @@ def bootstrap(
         "kind": "percentile",
         "replicates": options.bootstrap,
         "seed": options.seed,
+        "method": how,
         "parameters": {name: _percentile(np.array([p[name] for p in params])) for name in names},
         "after": {f: _percentile(np.array([m[f] for m in metrics])) for f in METRIC_FIELDS},
         "notes": [],
@@ -199,23 +234,79 @@ def bootstrap(
             "replicate's class probabilities exactly"
         )
     if fallbacks:
-        out["notes"].append(f"{fallbacks} replicates fell outside the interpolation grid and were refitted exactly")
+        where = "outside the interpolation grid" if how == "grid" else "too far from the fit for its expansion"
+        out["notes"].append(f"{fallbacks} replicates fell {where} and were refitted exactly")
     return out
 
 
-def _exact_replicates(logits, labels, options, fit_rows, eval_rows, start, draws):
-    from .fit import fit_scaling
-
-    params, metrics = [], []
-    for cf, ce in draws:
-        res = fit_scaling(logits, labels, options, rows=fit_rows, weights=cf, start=start)
-        m = evaluate(logits, labels, res.scaling, options.n_bins, rows=eval_rows, weights=ce)
-        params.append(res.scaling.arrays())
-        metrics.append(m.to_dict())
-    return params, metrics
+# Replicates ------------------------------------------------------------------
 
 
-# Fast path for multiclass temperature scaling --------------------------------
+class Replicates:
+    """The replicates of one bootstrap: refitted exactly, on the grid, or from the expansion."""
+
+    def __init__(self, logits, labels, options, fit_rows, eval_rows, start, refit, threads) -> None:
+        self.logits, self.labels, self.options = logits, labels, options
+        self.fit_rows, self.eval_rows, self.start = fit_rows, eval_rows, start
+        self.refit, self.threads = refit, threads
+
+    def _refit(self, cf):
+        return self.refit(self.logits, self.labels, self.options, rows=self.fit_rows, weights=cf, start=self.start)
+
+    def _score(self, scaling, ce) -> dict:
+        m = evaluate(self.logits, self.labels, scaling, self.options.n_bins, rows=self.eval_rows, weights=ce)
+        return m.to_dict()
+
+    def exact(self, draws):
+        params, metrics = [], []
+        for cf, ce in draws:
+            res = self._refit(cf)
+            params.append(res.scaling.arrays())
+            metrics.append(self._score(res.scaling, ce))
+        return params, metrics
+
+    def grid(self, draws):
+        return _grid_replicates(
+            self.logits, self.labels, self.options, self.fit_rows, self.eval_rows, self.start, draws, self.refit
+        )
+
+    def taylor(self, exp: Expansion, draws):
+        """Each replicate from the expansion; refitted exactly when its root is too far out."""
+        n_bins = self.options.n_bins
+        exact_eval = len(self.eval_rows) * self.logits.shape[1] * self.options.bootstrap <= EXACT_EVAL_BUDGET
+
+        def one(cf, ce):
+            d = exp.root(cf)
+            if d is None:
+                beta = 1.0 / self._refit(cf).temperature
+            else:
+                beta = exp.beta0 + d
+            m = None if exact_eval or d is None else exp.metrics(ce, d, n_bins)
+            if m is None:
+                m = self._score(1.0 / beta, ce)
+                if not exact_eval:
+                    m["classwise_ece"] = float("nan")
+            return {"temperature": np.array(1.0 / beta)}, m, d is None
+
+        done = _map_in_order(one, draws, default_threads() if self.threads is None else self.threads)
+        return [r[0] for r in done], [r[1] for r in done], sum(r[2] for r in done)
+
+
+def _map_in_order(fn, items, threads: int) -> list:
+    """[fn(*item) for item in items], on ``threads`` threads, items drawn in order."""
+    if threads <= 1:
+        return [fn(*item) for item in items]
+    with ThreadPoolExecutor(threads) as pool:
+        pending, out = [], []
+        for item in items:  # the draws come from one generator, in order
+            pending.append(pool.submit(fn, *item))
+            if len(pending) > 2 * threads:
+                out.append(pending.pop(0).result())
+        out.extend(f.result() for f in pending)
+    return out
+
+
+# The grid (multiclass temperature scaling on small sets) --------------------
 
 
 def _grid_terms(logits, labels, rows, betas, held_out: bool) -> dict[str, np.ndarray]:
@@ -279,22 +370,21 @@ def _grid(logits, labels, fit_rows, beta_hat) -> np.ndarray:
     return beta_hat * np.exp(np.linspace(-half, half, GRID_POINTS))
 
 
-def _grid_replicates(logits, labels, options, fit_rows, eval_rows, start, draws):
-    from .fit import fit_scaling
-
+def _grid_replicates(logits, labels, options, fit_rows, eval_rows, start, draws, refit):
     betas = _grid(logits, labels, fit_rows, 1.0 / start.temperature)
     fit_terms = _grid_terms(logits, labels, fit_rows, betas, held_out=False)
+    g_terms, h_terms = fit_terms["g"].astype(np.float64), fit_terms["h"].astype(np.float64)
     n_classes = logits.shape[1]
     exact_eval = len(eval_rows) * n_classes * options.bootstrap <= EXACT_EVAL_BUDGET
     held = None if exact_eval else _grid_terms(logits, labels, eval_rows, betas, held_out=True)
     steps = np.diff(betas)
     params, metrics, fallbacks = [], [], 0
     for cf, ce in draws:
-        s = cf @ fit_terms["g"].astype(np.float64)  # weighted gradient at each grid beta
-        d = cf @ fit_terms["h"].astype(np.float64)
+        s = cf @ g_terms  # weighted gradient at each grid beta
+        d = cf @ h_terms
         j = int(np.searchsorted(s, 0.0)) - 1  # s is increasing in beta (convex NLL)
         if j < 0 or j >= len(betas) - 1:
-            res = fit_scaling(logits, labels, options, rows=fit_rows, weights=cf, start=start)
+            res = refit(logits, labels, options, rows=fit_rows, weights=cf, start=start)
             beta, j = 1.0 / res.temperature, None
             fallbacks += 1
         else:
@@ -348,3 +438,4 @@ def _interpolated_metrics(held, weights, j, t, h, n_bins) -> dict:
         "mean_confidence": mean_conf,
         "gap": mean_conf - accuracy,
     }
+

@@ -423,9 +423,10 @@ def test_grid_bootstrap_matches_exact_refits(rng, monkeypatch):
     opts = FitOptions(bootstrap=25)
     start = fit_temperature(z, y, rows=fit_rows).scaling
     draws = _draws(5, 25, len(fit_rows), len(held))
-    exact_p, exact_m = resample._exact_replicates(z, y, opts, fit_rows, held, start, draws)
+    run = resample.Replicates(z, y, opts, fit_rows, held, start, fit_scaling, 1)
+    exact_p, exact_m = run.exact(draws)
     monkeypatch.setattr(resample, "EXACT_EVAL_BUDGET", 0)  # interpolate the metrics too
-    grid_p, grid_m, fallbacks = resample._grid_replicates(z, y, opts, fit_rows, held, start, draws)
+    grid_p, grid_m, fallbacks = run.grid(draws)
     assert fallbacks == 0
     t_exact = np.array([float(p["temperature"]) for p in exact_p])
     t_grid = np.array([float(p["temperature"]) for p in grid_p])

@@ -1,0 +1,464 @@
+"""One chunked pass over multiclass logits at one inverse temperature.
+
+Every multiclass temperature fit and every softmax score reads the logits
+the same way: row chunks, ``e = exp(beta z)``, the row sums of ``e`` and,
+when asked, of ``e x^j`` and ``e^2 x^j`` (x = beta z, shifted). This
+module does that once per pass, for the solver, the metrics and the
+bootstrap together, and hands the per-row results of each chunk to
+*consumers* (:class:`MomentSums` here, the metric sums in
+:mod:`onnxcal.metrics`).
+
+Precision. Float32 logits are exponentiated in float32 (the exponential
+is what a pass costs) and everything derived from the row sums is float64;
+float64 logits stay float64 throughout. A row is shifted by its maximum
+before the exponential unless every row of the chunk has
+``|beta max_k z_k| <= 20``, where ``exp`` and its square stay in float32's
+normal range and the shift (a broadcast, about a third of an exponential)
+buys nothing but a little precision in the higher cumulants.
+
+Threads. Chunks are dealt to ``LANES`` lanes (chunk i to lane i mod
+LANES), each lane with its own float64 sums, merged in lane order, so the
+result does not depend on how many threads ran the lanes. numpy releases
+the GIL in the exponential, the BLAS row sums and the other large
+kernels, so two threads use two cores.
+
+Cumulants. With p = softmax(beta z) and L(beta) = log sum_k exp(beta z_k),
+the j-th derivative of L is the j-th cumulant of z under p; these are the
+derivatives of the NLL in beta that the solvers and the bootstrap use
+(see :mod:`onnxcal.fit`). They come from the raw moments
+mu_j = sum_k e_k x_k^j / sum_k e_k by the recursion
+kappa_n = mu_n - sum_{j=1}^{n-1} C(n-1, j-1) kappa_j mu_{n-j}
+(common practice), and kappa_j(z) = kappa_j(x) / beta^j.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable, Sequence
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+from math import comb
+from typing import Protocol
+
+import numpy as np
+
+from .binning import bin_ids
+
+CHUNK_ELEMENTS = 1 << 16
+"""Logit values per chunk (256 KiB of float32): a few such buffers stay in cache."""
+LANES = 4
+"""Accumulator lanes: results are the same for 1 to LANES threads."""
+PARALLEL_ELEMENTS = 1 << 21
+"""Passes over fewer logit values than this run in the calling thread."""
+UNSHIFTED_LIMIT = 20.0
+"""float32 rows are left unshifted when |beta max z| is at most this (exp(2 * 20) is far from overflow)."""
+
+
+def default_threads() -> int:
+    """Threads for a pass: the cores this process may use, at most :data:`LANES`."""
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:  # not on Linux
+        cores = os.cpu_count() or 1
+    return max(1, min(LANES, cores))
+
+
+def compute_dtype(logits: np.ndarray) -> np.dtype:
+    """float32 for float32 (and narrower float) logits, else float64."""
+    dt = np.dtype(logits.dtype)
+    return np.dtype(np.float32) if dt.kind == "f" and dt.itemsize <= 4 else np.dtype(np.float64)
+
+
+def rows_per_chunk(n_classes: int) -> int:
+    return max(1, CHUNK_ELEMENTS // max(1, n_classes))
+
+
+@dataclass(frozen=True)
+class Chunk:
+    """Rows ``start..start+len(y)-1`` of a pass (positions among its selected rows)."""
+
+    index: int
+    start: int
+    z: np.ndarray
+    y: np.ndarray
+    w: np.ndarray | None
+    part: np.ndarray | None
+
+
+class Consumer(Protocol):
+    def add(self, chunk: Chunk, terms: ExpTerms) -> None: ...
+
+
+@dataclass
+class ExpTerms:
+    """Per-row results of one chunk at one beta (float64 arrays of the chunk's length).
+
+    The chunk's exponentials are ``e = exp(x)`` with ``x = b z - s``: ``b``
+    is beta rounded to the logits' dtype, ``s`` a per-row shift (0, or b
+    times the row maximum). The exact beta differs from b by the factor
+    1 + ``eps``; weights at the exact beta are ``e exp(eps x)``, which the
+    sums take to first order (``eps`` is below 6e-8, so the error is of
+    order 1e-12). ``e``, ``x`` and ``ex`` (= e x, or None) are scratch
+    buffers, valid only while the consumers run. ``total`` is
+    sum_k e_k (1 + eps x_k), so a probability is e (1 + eps x) / total.
+
+    ``log_total`` is L(beta) = log sum_k exp(beta z_k), ``cumulants[:, j-1]``
+    the j-th cumulant of z under softmax(beta z) (the j-th derivative of L),
+    ``sq_log_total`` and ``sq_cumulants`` the same at 2 beta (from e^2).
+    """
+
+    beta: float
+    b: float
+    eps: float
+    x: np.ndarray
+    e: np.ndarray
+    ex: np.ndarray | None
+    total: np.ndarray
+    log_total: np.ndarray
+    top: np.ndarray
+    zmax: np.ndarray
+    zy: np.ndarray
+    cumulants: np.ndarray
+    sq_log_total: np.ndarray | None = None
+    sq_cumulants: np.ndarray | None = None
+
+    @property
+    def nll(self) -> np.ndarray:
+        return self.log_total - self.beta * self.zy
+
+    def probabilities(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+        """Probabilities of the entries (rows, cols) of the chunk, float64."""
+        e = self.e[rows, cols].astype(np.float64)
+        if self.eps:
+            e *= 1.0 + self.eps * self.x[rows, cols]
+        return e / self.total[rows]
+
+
+class _Buffers:
+    def __init__(self, rows: int, k: int, dtype: np.dtype) -> None:
+        self.x = np.empty((rows, k), dtype)
+        self.e = np.empty((rows, k), dtype)
+        self.ex = np.empty((rows, k), dtype)
+        self.p = np.empty((rows, k), dtype)
+        self.q = np.empty((rows, k), dtype)
+        self.ones = np.ones(k, dtype)
+
+
+def cumulants_from_moments(mu: np.ndarray) -> np.ndarray:
+    """Cumulants kappa_1..kappa_m from raw moments mu_1..mu_m (columns of an (n, m) array)."""
+    m = mu.shape[1]
+    kappa = np.empty_like(mu)
+    for n in range(1, m + 1):
+        acc = mu[:, n - 1].copy()
+        for j in range(1, n):
+            acc -= comb(n - 1, j - 1) * kappa[:, j - 1] * mu[:, n - j - 1]
+        kappa[:, n - 1] = acc
+    return kappa
+
+
+def _row_sums(a: np.ndarray, ones: np.ndarray) -> np.ndarray:
+    return np.asarray(a @ ones, dtype=np.float64)
+
+
+def _power_sums(w: np.ndarray, x: np.ndarray, first: np.ndarray, p: np.ndarray, ones, count: int) -> np.ndarray:
+    """Row sums of w x^j for j = 0..count; ``first`` receives w x (p is scratch)."""
+    out = np.empty((len(w), count + 1))
+    out[:, 0] = _row_sums(w, ones)
+    if count >= 1:
+        np.multiply(w, x, out=first)
+        out[:, 1] = _row_sums(first, ones)
+    if count >= 2:
+        np.multiply(first, x, out=p)
+        out[:, 2] = _row_sums(p, ones)
+        for j in range(3, count + 1):
+            np.multiply(p, x, out=p)
+            out[:, j] = _row_sums(p, ones)
+    return out
+
+
+def _at_beta(sums: np.ndarray, eps: float, wanted: int) -> np.ndarray:
+    """Row sums of w x^j exp(eps x), j = 0..wanted, to first order in eps."""
+    if not eps:
+        return sums[:, : wanted + 1]
+    return sums[:, : wanted + 1] + eps * sums[:, 1 : wanted + 2]
+
+
+def _cumulants(sums: np.ndarray, s: np.ndarray, b: float) -> np.ndarray:
+    """Cumulants of z = (x + s) / b from row sums of w x^j (j = 0..m)."""
+    kappa = cumulants_from_moments(sums[:, 1:] / sums[:, :1])
+    if kappa.shape[1]:
+        kappa[:, 0] += s
+        kappa /= b ** np.arange(1, kappa.shape[1] + 1)
+    return kappa
+
+
+def exp_terms(
+    z: np.ndarray,
+    y: np.ndarray,
+    beta: float,
+    moments: int,
+    sq_moments: int | None,
+    buf: _Buffers,
+    sq_rows: np.ndarray | None = None,
+) -> ExpTerms:
+    """The exponentials of one chunk and their row sums (see :class:`ExpTerms`).
+
+    ``moments``: cumulants 1..moments of z under softmax(beta z).
+    ``sq_moments``: None for nothing at 2 beta, else L(2 beta) for every row
+    and cumulants 1..sq_moments under softmax(2 beta z) for the rows of the
+    boolean mask ``sq_rows`` (all when None; NaN elsewhere).
+    """
+    c = len(y)
+    r = np.arange(c)
+    top = z.argmax(axis=1)
+    zmax = z[r, top].astype(np.float64)
+    zy = z[r, y].astype(np.float64)
+    dtype = buf.e.dtype
+    b = float(dtype.type(beta))
+    eps = beta / b - 1.0
+    unshifted = dtype == np.float32 and c > 0 and float(np.abs(b * zmax).max()) <= UNSHIFTED_LIMIT
+    s = np.zeros(c) if unshifted else (b * zmax).astype(dtype).astype(np.float64)
+    x, e, ex = buf.x[:c], buf.e[:c], buf.ex[:c]
+    z = np.asarray(z, dtype=dtype)
+    if unshifted and b == 1.0:
+        x = z
+    else:
+        np.multiply(z, dtype.type(b), out=x)
+        if not unshifted:
+            np.subtract(x, s.astype(dtype)[:, None], out=x)
+    np.exp(x, out=e)
+    extra = 1 if eps else 0
+    sums = _power_sums(e, x, ex, buf.p[:c], buf.ones, moments + extra)
+    at = _at_beta(sums, eps, moments)
+    scale = beta / b
+    terms = ExpTerms(
+        beta, b, eps, x, e, ex, at[:, 0], scale * s + np.log(at[:, 0]), top, zmax, zy, _cumulants(at, s, b)
+    )
+    if sq_moments is not None:
+        e2 = np.multiply(e, e, out=buf.p[:c])
+        base = _at_beta(_power_sums(e2, x, e2 if not extra else buf.q[:c], buf.q[:c], buf.ones, extra), 2 * eps, 0)
+        terms.sq_log_total = 2.0 * scale * s + np.log(base[:, 0])
+        terms.sq_cumulants = np.full((c, sq_moments), np.nan)
+        if sq_moments:
+            pick = slice(None) if sq_rows is None else np.flatnonzero(sq_rows)
+            e2p, xp = (e2, x) if sq_rows is None else (e2[pick], x[pick])
+            high = _power_sums(e2p, xp, np.empty_like(e2p), np.empty_like(e2p), buf.ones, sq_moments + extra)
+            terms.sq_cumulants[pick] = _cumulants(_at_beta(high, 2 * eps, sq_moments), s[pick], b)
+    return terms
+
+
+# --------------------------------------------------------------------------
+# Running a pass
+
+
+@dataclass(frozen=True)
+class Selection:
+    """Which rows a pass reads: all (``rows`` None) or sorted indices; optional
+    per-row weights and part numbers (both indexed like the selected rows)."""
+
+    rows: np.ndarray | None = None
+    weights: np.ndarray | None = None
+    part: np.ndarray | None = None
+
+
+ALL_ROWS = Selection()
+
+
+def _chunk(logits, labels, sel: Selection, step: int, index: int) -> Chunk:
+    start = index * step
+    if sel.rows is None:
+        key = slice(start, start + step)
+    else:
+        key = sel.rows[start : start + step]
+        if len(key) and int(key[-1]) - int(key[0]) == len(key) - 1:
+            key = slice(int(key[0]), int(key[-1]) + 1)  # a contiguous run: read a view
+    pick = slice(start, start + step)
+    w = None if sel.weights is None else np.asarray(sel.weights[pick], dtype=np.float64)
+    part = None if sel.part is None else sel.part[pick]
+    return Chunk(index, start, logits[key], np.asarray(labels[key]), w, part)
+
+
+def run_pass(
+    logits: np.ndarray,
+    labels: np.ndarray,
+    beta: float,
+    consumers: Callable[[], Sequence[Consumer]],
+    *,
+    selection: Selection = ALL_ROWS,
+    moments: int = 0,
+    sq_moments: int | None = None,
+    sq_part: int | None = None,
+    threads: int | None = None,
+) -> list[Sequence[Consumer]]:
+    """One pass: call every consumer on every chunk; return the consumers of each lane.
+
+    ``consumers()`` makes the consumers of one lane. Lanes hold disjoint sets
+    of chunks (chunk i in lane i mod LANES); merge their sums in lane order.
+    ``moments`` and ``sq_moments`` as in :func:`exp_terms`; the cumulants at
+    2 beta only for the rows of part ``sq_part`` (all when None).
+    """
+    n = len(logits) if selection.rows is None else len(selection.rows)
+    k = logits.shape[1]
+    step = rows_per_chunk(k)
+    n_chunks = -(-n // step)
+    lanes = [consumers() for _ in range(LANES)]
+    dtype = compute_dtype(logits)
+    threads = default_threads() if threads is None else max(1, min(int(threads), LANES))
+    if n * k < PARALLEL_ELEMENTS:
+        threads = 1
+
+    def work(worker: int) -> None:
+        buf = _Buffers(min(step, max(n, 1)), k, dtype)
+        for index in range(n_chunks):
+            lane = index % LANES
+            if lane % threads != worker:
+                continue
+            chunk = _chunk(logits, labels, selection, step, index)
+            mask = None if sq_part is None or chunk.part is None else chunk.part == sq_part
+            terms = exp_terms(chunk.z, chunk.y, beta, moments, sq_moments, buf, mask)
+            for consumer in lanes[lane]:
+                consumer.add(chunk, terms)
+
+    if threads == 1:
+        work(0)
+    else:
+        with ThreadPoolExecutor(threads) as pool:
+            for f in [pool.submit(work, t) for t in range(threads)]:
+                f.result()
+    return lanes
+
+
+class MomentSums:
+    """Weighted sums per part of the NLL's beta-derivatives, and optionally per-row terms.
+
+    For a row with label y the NLL is L(beta) - beta z_y, so its first
+    derivative is g = kappa_1 - z_y and its j-th (j >= 2) kappa_j.
+    ``sums[part]`` holds [sum w g, sum w kappa_2, ..., sum w kappa_m] and
+    ``weight[part]`` the total weight; ``wrong[part]`` the weight of rows whose
+    label is not the (first) top logit. With ``keep`` the per-row
+    [g, kappa_2, ...] go into ``keep[positions]`` (shared by all lanes).
+    """
+
+    def __init__(self, parts: int, order: int, keep: np.ndarray | None = None) -> None:
+        self.sums = np.zeros((parts, order))
+        self.weight = np.zeros(parts)
+        self.wrong = np.zeros(parts)
+        self.keep = keep
+        self.parts = parts
+
+    def add(self, chunk: Chunk, terms: ExpTerms) -> None:
+        d = terms.cumulants.copy()
+        d[:, 0] -= terms.zy
+        w = np.ones(len(d)) if chunk.w is None else chunk.w
+        part = np.zeros(len(d), np.intp) if chunk.part is None else chunk.part
+        onehot = np.zeros((self.parts, len(d)))
+        onehot[part, np.arange(len(d))] = w
+        self.sums += onehot @ d
+        self.weight += onehot.sum(axis=1)
+        self.wrong += onehot @ (terms.top != chunk.y)
+        if self.keep is not None:
+            self.keep[chunk.start : chunk.start + len(d)] = d
+
+    @staticmethod
+    def merge(lanes: Sequence[MomentSums]) -> MomentSums:
+        out = lanes[0]
+        for other in lanes[1:]:
+            out.sums += other.sums
+            out.weight += other.weight
+            out.wrong += other.wrong
+        return out
+
+
+class ScoreSums:
+    """Sums behind the metrics of softmax(beta z), per part (a pass consumer).
+
+    Per part: total weight, NLL and Brier sums, the top-label reliability
+    sums (counts, confidence, correct) over ``n_bins`` equal-width bins,
+    and the classwise sums (probability and label indicator per (class,
+    bin), flat index class * M + bin). The confidence and correctness of
+    every row go into ``conf`` and ``correct`` at the row's position (the
+    adaptive ECE needs all of them).
+
+    Classwise bins: a softmax row has fewer than M probabilities above
+    the first edge 1/M; only those are binned one by one, found by one
+    comparison of the exponentials with a threshold per chunk. The first
+    bin of each class gets the rest, by subtraction from the class's
+    column sum (a matrix-vector product).
+    """
+
+    def __init__(self, parts: int, k: int, n_bins: int, conf: np.ndarray, correct: np.ndarray) -> None:
+        self.parts, self.k, self.n_bins = parts, k, n_bins
+        self.weight = np.zeros(parts)
+        self.nll = np.zeros(parts)
+        self.brier = np.zeros(parts)
+        self.bins = np.zeros((parts, 3, n_bins))
+        self.p_sum = np.zeros(parts * k * n_bins)
+        self.y_sum = np.zeros(parts * k * n_bins)
+        self.column = np.zeros(parts * k)  # sum of p per (part, class)
+        self.upper = np.zeros(parts * k)  # of which above the first edge
+        self.conf, self.correct = conf, correct
+        self.first = float(np.linspace(0.0, 1.0, n_bins + 1)[1])
+
+    def add(self, chunk: Chunk, terms: ExpTerms) -> None:
+        c = len(chunk.y)
+        r = np.arange(c)
+        w = np.ones(c) if chunk.w is None else chunk.w
+        part = np.zeros(c, np.intp) if chunk.part is None else np.asarray(chunk.part, np.intp)
+        log_total = terms.log_total
+        conf = np.exp(terms.beta * terms.zmax - log_total)
+        p_y = np.exp(terms.beta * terms.zy - log_total)
+        correct = terms.top == chunk.y
+        P, M = self.parts, self.n_bins
+        self.weight += np.bincount(part, w, P)
+        self.nll += np.bincount(part, w * (log_total - terms.beta * terms.zy), P)
+        # sum_k (p_k - y_k)^2 = sum_k p_k^2 - 2 p_y + 1, sum_k p_k^2 = exp(L(2 beta) - 2 L(beta))
+        brier = np.exp(terms.sq_log_total - 2.0 * log_total) - 2.0 * p_y + 1.0
+        self.brier += np.bincount(part, w * brier, P)
+        ids = bin_ids(conf, M) + M * part
+        for j, v in enumerate((w, w * conf, w * correct)):
+            self.bins[:, j] += np.bincount(ids, v, P * M).reshape(P, M)
+        self.conf[chunk.start : chunk.start + c] = conf
+        self.correct[chunk.start : chunk.start + c] = correct
+        self._classwise(terms, w, part, terms.probabilities(r, chunk.y), chunk.y)
+
+    def _classwise(self, terms: ExpTerms, w, part, p_y, y) -> None:
+        e, total, k, M = terms.e, terms.total, self.k, self.n_bins
+        c = len(total)
+        inv = w / total
+        coef = np.zeros((self.parts, c), e.dtype)
+        coef[part, np.arange(c)] = inv
+        col = coef @ e
+        if terms.eps:  # p = e (1 + eps x) / total
+            coef[part, np.arange(c)] = inv * terms.eps
+            col = col + coef @ terms.ex
+        self.column += np.asarray(col, np.float64).ravel()
+        lim = total * self.first * (1.0 - 1e-5)  # p > 1/M needs e > total / M, give or take eps x
+        lo = float(lim.min())
+        if float(lim.max()) <= 4.0 * lo:
+            cand = np.flatnonzero(e.ravel() > e.dtype.type(lo))
+        else:
+            cand = np.flatnonzero((e > lim.astype(e.dtype)[:, None]).ravel())
+        rows, cols = np.divmod(cand, k)
+        p = terms.probabilities(rows, cols)
+        keep = p > self.first
+        rows, cols, p = rows[keep], cols[keep], p[keep]
+        wp = p * w[rows]
+        np.add.at(self.p_sum, bin_ids(p, M) + M * cols + (k * M) * part[rows], wp)
+        np.add.at(self.upper, cols + k * part[rows], wp)
+        np.add.at(self.y_sum, bin_ids(p_y, M) + M * y + (k * M) * part, w)
+
+    def classwise(self, part: int) -> tuple[np.ndarray, np.ndarray]:
+        """The (class, bin) sums of probabilities and labels of one part."""
+        size = self.k * self.n_bins
+        p_sum = self.p_sum[part * size : (part + 1) * size].copy()
+        rest = self.column - self.upper
+        p_sum[:: self.n_bins] += rest[part * self.k : (part + 1) * self.k]
+        return p_sum, self.y_sum[part * size : (part + 1) * size]
+
+    @staticmethod
+    def merge(lanes: Sequence[ScoreSums]) -> ScoreSums:
+        out = lanes[0]
+        for o in lanes[1:]:
+            for name in ("weight", "nll", "brier", "bins", "p_sum", "y_sum", "column", "upper"):
+                getattr(out, name).__iadd__(getattr(o, name))
+        return out

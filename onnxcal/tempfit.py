@@ -1,0 +1,176 @@
+"""Multiclass temperature scaling in one or two passes over the logits.
+
+The mean NLL f(beta) = mean_i [L_i(beta) - beta z_iy] (beta = 1/T,
+L_i = log sum_k exp(beta z_ik)) has the derivatives
+
+    f'(beta)      = mean_i (kappa_1,i - z_iy),
+    f^(j)(beta)   = mean_i kappa_j,i          (j >= 2),
+
+kappa_j,i the j-th cumulant of z_i under softmax(beta z_i), all from one
+:mod:`onnxcal.sweep` pass. Newton's method uses the first two; with
+``ORDER`` = 5 cumulants a pass gives the Taylor polynomial of f' of degree
+4, whose root is the next iterate. From a start within a few standard
+errors of the optimum (the fit of a subsample) that root is the optimum
+to about 1e-14, and the size of the last term kept, |f^(5) d^4 / 4!| / f'',
+bounds the error the step leaves with a wide margin; a step whose bound
+is below ``ACCEPT`` (relative) ends the solve without another pass. Far
+from the optimum the step is the safeguarded Newton step in log(beta)
+(a bracket from the sign of f', bisection when a step leaves it), as
+before.
+
+On a large set the solve starts on strided subsamples of growing size
+(10 000 rows, then 100 000 when the set is over four times that), each
+warm-starting the next, so the full set is read once or twice.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from math import factorial
+
+import numpy as np
+
+from .sweep import ALL_ROWS, MomentSums, Selection, run_pass
+
+ORDER = 5
+"""Cumulants per solver pass (the Taylor polynomial of f' has degree ORDER - 1)."""
+ACCEPT = 1e-10
+"""A step whose error bound is below this (relative to beta) is final."""
+STAGE_ACCEPT = 1e-6
+"""The same for a subsample stage (only a warm start)."""
+STEP_TOL = 1e-7
+"""A step in log(beta) below this is final (after taking it)."""
+MAX_PASSES = 60
+STAGE_ROWS = (10_000, 100_000)
+STAGE_FACTOR = 4  # a stage of m rows runs when the set has more than STAGE_FACTOR * m rows
+
+PassFn = Callable[[float], tuple[np.ndarray, float]]
+"""beta -> (mean derivatives [f', f'', ..., f^(ORDER)], weight of rows whose label is not the top logit)."""
+
+
+def taylor_root(derivs: np.ndarray) -> tuple[float, float] | None:
+    """Root d of sum_j derivs[j] d^j / j! near -derivs[0] / derivs[1], and its error bound.
+
+    None when the polynomial is not increasing along the way (then the
+    caller keeps the Newton step).
+    """
+    coef = np.asarray(derivs, dtype=np.float64) / np.array([factorial(j) for j in range(len(derivs))])
+    poly = np.polynomial.Polynomial(coef)
+    slope = poly.deriv()
+    if coef[1] <= 0:
+        return None
+    d = -coef[0] / coef[1]
+    for _ in range(50):
+        s = float(slope(d))
+        if not s > 0:
+            return None
+        step = float(poly(d)) / s
+        d -= step
+        if abs(step) <= 1e-16 * max(abs(d), 1e-300):
+            break
+    return d, abs(coef[-1] * d ** (len(coef) - 1)) / coef[1]
+
+
+def _newton_step(beta: float, g: float, h: float, lo: float, hi: float, b_min: float, b_max: float) -> float:
+    """The safeguarded Newton step in u = log(beta) (see :mod:`onnxcal.fit`)."""
+    curvature = beta * beta * h + beta * g  # d2f/du2
+    step = -(beta * g) / curvature if curvature > 0 else -np.sign(g) * 50.0
+    new = beta * float(np.exp(np.clip(step, -50.0, 50.0)))
+    mid = float(np.sqrt(lo * hi))
+    if new >= hi:
+        new = b_max if hi == b_max else mid
+    if new <= lo:
+        new = b_min if lo == b_min else mid
+    return new
+
+
+def next_beta(beta: float, derivs: np.ndarray, lo: float, hi: float, b_min: float, b_max: float, accept: float):
+    """The next iterate and whether it is final (its error bound is below ``accept``)."""
+    g, h = float(derivs[0]), float(derivs[1])
+    new = _newton_step(beta, g, h, lo, hi, b_min, b_max)
+    if abs(np.log(new / beta)) <= 0.05 and h > 0:
+        root = taylor_root(derivs)
+        if root is not None:
+            d, bound = root
+            cand = beta + d
+            if lo < cand < hi and abs(np.log(cand / beta)) <= 0.1:
+                return cand, bound <= accept * cand
+    return new, abs(np.log(new / beta)) <= STEP_TOL
+
+
+def solve(pass_fn: PassFn, beta0: float, b_min: float, b_max: float, accept: float = ACCEPT):
+    """Minimise f from ``beta0``; returns (beta, passes, converged).
+
+    On the first pass, if every row's label is the strict top logit
+    (``pass_fn`` reports no wrong rows and ``separated`` confirms no ties), f
+    keeps falling as beta grows and ``b_max`` is the answer.
+    """
+    beta = float(np.clip(beta0, b_min, b_max))
+    lo, hi = b_min, b_max
+    for passes in range(1, MAX_PASSES + 1):
+        derivs, wrong = pass_fn(beta)
+        g = float(derivs[0])
+        if passes == 1 and wrong == 0 and g < 0:
+            return b_max, passes, True
+        if g == 0 or (beta <= b_min and g > 0) or (beta >= b_max and g < 0):
+            return beta, passes, True
+        if g > 0:
+            hi = beta
+        else:
+            lo = beta
+        beta, final = next_beta(beta, derivs, lo, hi, b_min, b_max, accept)
+        if final:
+            return beta, passes, True
+    return beta, MAX_PASSES, False
+
+
+def moment_pass(
+    logits, labels, beta: float, selection: Selection = ALL_ROWS, threads: int | None = None
+) -> MomentSums:
+    """Weighted sums of the NLL's derivatives at beta (one part)."""
+    lanes = run_pass(
+        logits, labels, beta, lambda: (MomentSums(1, ORDER),), selection=selection, moments=ORDER,
+        threads=threads,
+    )
+    return MomentSums.merge([lane[0] for lane in lanes])
+
+
+def derivatives(sums: MomentSums, part: int = 0) -> tuple[np.ndarray, float]:
+    """Mean derivatives of f and the weight of wrong rows, from a pass's sums."""
+    return sums.sums[part] / sums.weight[part], float(sums.wrong[part])
+
+
+def fit_beta(
+    logits: np.ndarray,
+    labels: np.ndarray,
+    rows: np.ndarray | None,
+    weights: np.ndarray | None,
+    start: float | None,
+    bounds: tuple[float, float],
+    threads: int | None = None,
+) -> tuple[float, float, bool]:
+    """beta minimising the mean NLL on ``rows`` (weighted): (beta, passes, converged).
+
+    Without ``start`` a large set is first fitted on subsamples (see the
+    module docstring); their passes count by their fraction of the rows.
+    """
+    n = len(logits) if rows is None else len(rows)
+    b_min, b_max = bounds
+
+    def on(r, w):
+        sel = Selection(rows=r, weights=w)
+        return lambda beta: derivatives(moment_pass(logits, labels, beta, sel, threads))
+
+    beta, passes = (1.0 if start is None else float(start)), 0.0
+    if start is None:
+        for size in STAGE_ROWS:
+            if n <= STAGE_FACTOR * size:
+                break
+            stride = n // size
+            sub = (np.arange(n) if rows is None else rows)[::stride]
+            sub_w = None if weights is None else weights[::stride]
+            beta, p, _ = solve(on(sub, sub_w), beta, b_min, b_max, STAGE_ACCEPT)
+            passes += p * len(sub) / n
+            beta = float(np.clip(beta, b_min * 1.0001, b_max / 1.0001))  # let the full data decide bounds
+    beta, p, converged = solve(on(rows, weights), beta, b_min, b_max)
+    return beta, passes + p, converged
