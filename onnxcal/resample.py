@@ -216,7 +216,7 @@ def bootstrap(
         "kind": "percentile",
         "replicates": options.bootstrap,
         "seed": options.seed,
-        "method": how,
+        "replicates_by": how,
         "parameters": {name: _percentile(np.array([p[name] for p in params])) for name in names},
         "after": {f: _percentile(np.array([m[f] for m in metrics])) for f in METRIC_FIELDS},
         "notes": [],

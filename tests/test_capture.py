@@ -499,3 +499,68 @@ def test_a_capture_whose_metadata_is_not_unicode_is_refused(tmp_path, rng):
     path.write_bytes(data.replace(brace, (0x110000).to_bytes(4, "little"), 1))
     with pytest.raises(OnnxcalError, match="not an onnxcal capture file .*not valid Unicode"):
         load_capture(path)
+
+
+# --------------------------------------------------------------------------
+# Blocks of batches and the automatic batch size
+
+
+class _Recorder:
+    """Wraps a session: records the batch size of every call, optionally sleeping in it."""
+
+    def __init__(self, session, sleep: float = 0.0):
+        self.session, self.sleep, self.sizes = session, sleep, []
+
+    def run(self, names, feed):
+        self.sizes.append(len(next(iter(feed.values()))))
+        if self.sleep:
+            import time
+
+            time.sleep(self.sleep)
+        return self.session.run(names, feed)
+
+
+def _batches(model, x, options, sleep=0.0):
+    from onnxcal.capture import plan_run, run_batches
+
+    ds = Dataset({"x": x}, np.zeros(len(x), np.int64), "mem")
+    plan = plan_run(model, ds, [model.graph.output[0].name], options)
+    rec = _Recorder(plan.session, sleep)
+    plan = replace(plan, session=rec)
+    blocks = list(run_batches(plan, ds))
+    return rec.sizes, blocks
+
+
+def test_blocks_are_whole_batches_and_give_the_same_logits(rng):
+    model = random_mlp(rng)
+    x = rng.normal(size=(30_000, 6)).astype(np.float32)
+    sizes, blocks = _batches(model, x, RunOptions(batch_size=100))
+    assert set(sizes[:-1]) == {100} and sizes[-1] == 100  # 30 000 = 300 batches of 100
+    assert [b[0] for b in blocks] == sorted(b[0] for b in blocks) and blocks[-1][1] == 30_000
+    assert all((stop - start) % 100 == 0 for start, stop, _ in blocks)
+    got = np.concatenate([outs[0] for _, _, outs in blocks])
+    np.testing.assert_allclose(got, per_sample(model, x), rtol=1e-5, atol=1e-6)
+
+
+def test_automatic_batch_size_grows_for_a_cheap_model(rng):
+    # A call of this model costs a few microseconds, of the order of onnxcal's
+    # own work per call: the batch doubles until that work is under 5 %.
+    model = random_mlp(rng)
+    x = rng.normal(size=(200_000, 6)).astype(np.float32)
+    sizes, blocks = _batches(model, x, RunOptions(threads=1))
+    assert sizes[0] == 64 and max(sizes) > 64
+    steps = sizes[:-1]
+    assert steps == sorted(steps) and all(s in (64, 128, 256, 512, 1024, 2048, 4096, 8192, 16384) for s in steps)
+    sess = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
+    want = sess.run(None, {"x": x})[0]  # onnxruntime on the whole set in one call
+    np.testing.assert_allclose(np.concatenate([o[0] for _, _, o in blocks]), want, rtol=1e-5, atol=1e-6)
+    # an explicit batch size is kept
+    sizes, _ = _batches(model, x[:20_000], RunOptions(batch_size=64, threads=1))
+    assert set(sizes[:-1]) == {64}
+
+
+def test_automatic_batch_size_stays_for_a_slow_model(rng):
+    model = random_mlp(rng)
+    x = rng.normal(size=(3000, 6)).astype(np.float32)
+    sizes, _ = _batches(model, x, RunOptions(), sleep=0.002)  # 2 ms per call: onnxcal's share is tiny
+    assert set(sizes[:-1]) == {64}
