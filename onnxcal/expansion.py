@@ -45,7 +45,9 @@ SQ_ORDER = 4
 TAYLOR_TOL = 1e-8
 """Bound on the error of a replicate's beta (relative) from the expansion."""
 TERM_TOL = 1e-13
-"""A per-row series stops when the bound on its remaining terms is below this."""
+"""A per-row series drops its highest terms while they are below this (for every row)."""
+SERIES_LIMIT = 1e-6
+"""A per-row series whose last term exceeds this for some row is not converging: score exactly."""
 HALF_WIDTH = 6.0
 """Standard errors of beta on each side of the fit the expansion must cover."""
 
@@ -53,14 +55,15 @@ HALF_WIDTH = 6.0
 def _series(derivs: np.ndarray, largest: np.ndarray, d: float) -> np.ndarray | None:
     """sum_j derivs[j] d^j / j! over the columns, to the order the terms need.
 
-    Terms are dropped from the top while the largest of them is below
-    TERM_TOL; None when even the last kept one is not (the series is then
-    not accurate enough at d).
+    Terms are dropped from the top while the largest of them (over the
+    rows) is below TERM_TOL. None when the last term exceeds SERIES_LIMIT
+    for some row: the series is then not converging at d (the replicate's
+    root, accepted by its own bound, keeps d far inside that).
     """
     top = len(derivs) - 1
     while top > 0 and largest[top] * abs(d) ** top / factorial(top) <= TERM_TOL:
         top -= 1
-    if top == len(derivs) - 1 and top and largest[top] * abs(d) ** top / factorial(top) > 1e3 * TERM_TOL:
+    if top == len(derivs) - 1 and largest[top] * abs(d) ** top / factorial(top) > SERIES_LIMIT:
         return None
     acc = derivs[top].copy()
     for j in range(top - 1, -1, -1):
