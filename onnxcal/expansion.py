@@ -8,9 +8,10 @@ beta0 (see :mod:`onnxcal.sweep`), computed in the same pass that scores
 the fit:
 
 * its beta: the root of f'(beta0 + d) = sum_j F_j d^j / j!, with
-  F_j = sum_i c_i (g_i, kappa_2,i, kappa_3,i), then mean kappa_4 and kappa_5
-  times the replicate's weight (their replicate-to-replicate variation moves
-  the root by about 1e-3 of those terms, far below the bound);
+  F_j = sum_i c_i (g_i, kappa_2,i, kappa_3,i), then the fit part's mean
+  kappa_4 and kappa_5 (from the fit's own last pass, a step away) times
+  the replicate's weight (their replicate-to-replicate variation, and the
+  step, move the root by about 1e-3 of those terms, far below the bound);
 * per held-out row, log p_top (the top class's log-probability,
   beta z_max - L(beta)), log p_y = log p_top + beta (z_y - z_max) and
   log sum_k p_k^2 = L(2 beta) - 2 L(beta), each to the order its terms
@@ -40,8 +41,11 @@ from .binning import ece_from_bins, lerp_quantiles, mce_from_bins
 from .sweep import Selection, run_pass
 from .tempfit import ORDER, taylor_root
 
-SQ_ORDER = 4
-"""Cumulants at 2 beta per held-out row (the Brier score's terms)."""
+TERMS = 3
+"""Cumulants kept per row (the fit part's g, kappa_2, kappa_3; the held-out part's series to d^3)."""
+SQ_ORDER = 3
+"""Cumulants at 2 beta per held-out row (the Brier score's terms; a fourth would add
+about 16 kappa'_4 d^4 / 4!, below 1e-12 where the expansion is used)."""
 TAYLOR_TOL = 1e-8
 """Bound on the error of a replicate's beta (relative) from the expansion."""
 TERM_TOL = 1e-13
@@ -76,11 +80,13 @@ def _series(derivs: np.ndarray, largest: np.ndarray, d: float) -> np.ndarray | N
 class Expansion:
     """Per-row Taylor terms in beta at the fit ``beta0`` (see the module docstring).
 
-    Fit part: ``fit_terms`` (rows, ORDER) = [g, kappa_2, ..., kappa_ORDER]
-    per row (g = kappa_1 - z_y). Held-out part, in ``order`` (ascending
-    confidence ``u`` at beta0): ``log_top`` (ORDER + 1, rows), the
-    derivatives of log p_top; ``gap`` = z_y - z_max; ``log_sq``
-    (SQ_ORDER + 1, rows), the derivatives of log sum_k p_k^2; ``correct``.
+    Fit part: ``fit_terms`` (rows, TERMS) = [g, kappa_2, kappa_3] per row
+    (g = kappa_1 - z_y; transposed by :meth:`finish`) and ``high``, the means
+    of kappa_4 and kappa_5.
+    Held-out part, in ``order`` (ascending confidence ``u`` at beta0):
+    ``log_top`` (TERMS + 1, rows), the derivatives of log p_top; ``gap`` =
+    z_y - z_max; ``log_sq`` (SQ_ORDER + 1, rows), the derivatives of
+    log sum_k p_k^2; ``correct``.
     """
 
     beta0: float
@@ -90,38 +96,41 @@ class Expansion:
     log_sq: np.ndarray
     correct: np.ndarray
     accurate: bool = False
-    order: np.ndarray | None = None
+    order: np.ndarray | None = None  # held-out positions in ascending confidence
+    rank: np.ndarray | None = None  # the inverse: a position's place in that order
     u: np.ndarray | None = None
     high: np.ndarray | None = None  # mean kappa_4, kappa_5 over the fit rows
     top_max: np.ndarray | None = None  # largest |derivative| of each order
     sq_max: np.ndarray | None = None
 
-    def root(self, cf: np.ndarray) -> float | None:
-        """The replicate's d = beta - beta0, or None when the expansion cannot give it to TAYLOR_TOL."""
-        derivs = np.concatenate([cf @ self.fit_terms, float(cf.sum()) * self.high])
+    def root(self, counts: np.ndarray) -> float | None:
+        """The replicate's d = beta - beta0 (``counts``: how often each fit row was drawn),
+        or None when the expansion cannot give it to TAYLOR_TOL."""
+        derivs = np.concatenate([self.fit_terms @ counts, float(counts.sum()) * self.high])
         found = taylor_root(derivs)
         if found is None or found[1] > TAYLOR_TOL * self.beta0:
             return None
         return found[0]
 
-    def metrics(self, ce: np.ndarray, d: float, n_bins: int) -> dict | None:
-        """Every metric but the classwise ECE at beta0 + d, weighted by ``ce``; None if out of reach."""
+    def metrics(self, drawn: np.ndarray, d: float, n_bins: int) -> dict | None:
+        """Every metric but the classwise ECE at beta0 + d (``drawn``: the positions drawn
+        from the held-out part); None if out of the series' reach."""
         log_top = _series(self.log_top, self.top_max, d)
         log_sq = _series(self.log_sq, self.sq_max, d)
         if log_top is None or log_sq is None:
             return None
-        beta = self.beta0 + d
-        c = ce[self.order]
-        total = float(c.sum())
-        v = np.minimum(np.exp(log_top), 1.0)
+        c = np.bincount(self.rank[drawn], minlength=len(self.u)).astype(np.float64)  # counts, in u order
+        total = float(len(drawn))
+        v = np.exp(log_top)
+        np.minimum(v, 1.0, out=v)
         log_py = log_top
-        log_py += beta * self.gap  # in place: log_top is not needed any more
+        log_py += (self.beta0 + d) * self.gap  # in place: log_top is not needed any more
         delta = float(np.abs(v - self.u).max()) * (1 + 1e-9) + 1e-15
         sums = _Prefix(self.u, v, c, self.correct, delta)
-        counts, conf_sum, corr_sum = sums.bins(np.linspace(0.0, 1.0, n_bins + 1)[1:-1])
-        mass = sums.bins(sums.quantiles(np.linspace(0.0, 1.0, n_bins + 1))[1:-1])
-        accuracy = corr_sum.sum() / total
-        mean_conf = conf_sum.sum() / total
+        edges = np.linspace(0.0, 1.0, n_bins + 1)[1:-1]
+        counts, conf_sum, corr_sum = sums.bins(edges)
+        mass = sums.bins(sums.quantiles(np.linspace(0.0, 1.0, n_bins + 1)[1:-1]))  # the inner edges
+        accuracy, mean_conf = corr_sum.sum() / total, conf_sum.sum() / total
         return {
             "nll": -float(c @ log_py) / total,
             "ece": ece_from_bins(counts, conf_sum, corr_sum),
@@ -134,23 +143,26 @@ class Expansion:
             "gap": float(mean_conf - accuracy),
         }
 
-    def finish(self) -> Expansion:
-        """Sort the held-out rows by confidence and decide whether the expansion is accurate.
+    def finish(self, high: np.ndarray) -> Expansion:
+        """Take the fit part's mean kappa_4, kappa_5 (``high``), sort the held-out rows by
+        confidence, and decide whether the expansion is accurate.
 
         Accurate: the root's error bound (see :func:`onnxcal.tempfit.taylor_root`)
         at HALF_WIDTH sandwich standard errors from the fit is below TAYLOR_TOL.
         """
         t = self.fit_terms
         g, h = t[:, 0], t[:, 1]
-        self.high = t[:, 3:].mean(axis=0) if len(t) else np.zeros(ORDER - 3)
+        self.high = np.asarray(high, dtype=np.float64)[: ORDER - TERMS]
         se = float(np.sqrt(g @ g) / max(h.sum(), 1e-300))  # Var(beta) = sum g^2 / (sum h)^2
         reach = HALF_WIDTH * max(se, 1e-4 * self.beta0)
-        bound = abs(t[:, -1].sum()) * reach ** (ORDER - 1) / factorial(ORDER - 1) / max(h.sum(), 1e-300)
+        bound = abs(self.high[-1]) * len(t) * reach ** (ORDER - 1) / factorial(ORDER - 1) / max(h.sum(), 1e-300)
         self.accurate = bool(len(t) and bound <= TAYLOR_TOL * self.beta0)
-        self.fit_terms = np.ascontiguousarray(t[:, :3])
+        self.fit_terms = np.ascontiguousarray(t.T)  # (TERMS, rows): a dot product per term with the counts
         if self.accurate:
             u = np.exp(self.log_top[0])
             self.order = np.argsort(u, kind="stable")
+            self.rank = np.empty_like(self.order)
+            self.rank[self.order] = np.arange(len(self.order))
             self.u = u[self.order]
             self.log_top = np.ascontiguousarray(self.log_top[:, self.order])
             self.log_sq = np.ascontiguousarray(self.log_sq[:, self.order])
@@ -161,37 +173,53 @@ class Expansion:
 
 
 class _Prefix:
-    """Sums over the held-out rows of (c, c v, c correct) below any edge, from prefix sums.
+    """Sums over the held-out rows of (c, c v, c correct) below any edge.
 
     Rows are in ascending order of ``u``; every ``v`` is within ``delta``
     of its ``u``, so rows with u < e - delta have v < e and rows with
-    u > e + delta have v > e: only the rows between are tested.
+    u > e + delta have v > e: only the rows between are tested one by one,
+    and the rows before are summed in segments between the edges (dot
+    products, without a cumulative array for the confidences).
     """
 
     def __init__(self, u, v, c, correct, delta) -> None:
-        self.u, self.v, self.c, self.delta = u, v, c, delta
-        self.w = np.stack([c, c * v, c * correct])
-        self.cum = np.zeros((3, len(c) + 1))
-        np.cumsum(self.w, axis=1, out=self.cum[:, 1:])
+        self.u, self.v, self.c, self.correct, self.delta = u, v, c, correct, delta
+        self.cum = np.zeros(len(c) + 1)
+        np.cumsum(c, out=self.cum[1:])
 
-    def below(self, edge: float) -> np.ndarray:
-        """(count, confidence, correct) sums over the rows with v <= edge."""
-        lo = int(np.searchsorted(self.u, edge - self.delta, side="left"))
-        hi = int(np.searchsorted(self.u, edge + self.delta, side="right"))
-        out = self.cum[:, lo].copy()
-        if hi > lo:
-            out += self.w[:, lo:hi] @ (self.v[lo:hi] <= edge)
+    def _before(self, positions: np.ndarray) -> np.ndarray:
+        """(count, confidence, correct) sums over the rows before each of the sorted positions."""
+        out = np.zeros((3, len(positions)))
+        out[0] = self.cum[positions]
+        start, conf, corr = 0, 0.0, 0.0
+        for i, stop in enumerate(positions):
+            if stop > start:
+                c = self.c[start:stop]
+                conf += float(c @ self.v[start:stop])
+                corr += float(c @ self.correct[start:stop])
+                start = stop
+            out[1, i], out[2, i] = conf, corr
         return out
 
     def bins(self, inner: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Sums per bin for right-closed bins with these inner edges (as ``searchsorted(side='left')``)."""
-        below = np.column_stack([np.zeros(3), *(self.below(float(e)) for e in inner), self.cum[:, -1]])
-        counts, conf, corr = np.diff(below, axis=1)
+        inner = np.asarray(inner, dtype=np.float64)
+        lo = np.searchsorted(self.u, inner - self.delta, side="left")
+        hi = np.searchsorted(self.u, inner + self.delta, side="right")
+        ends = np.concatenate([lo, [len(self.u)]])
+        order = np.argsort(ends, kind="stable")
+        below = np.empty((3, len(ends)))
+        below[:, order] = self._before(ends[order])
+        for j, (a, b) in enumerate(zip(lo, hi, strict=True)):  # rows within delta of an edge, one by one
+            if b > a:
+                w = self.c[a:b] * (self.v[a:b] <= inner[j])
+                below[:, j] += [w.sum(), w @ self.v[a:b], w @ self.correct[a:b]]
+        counts, conf, corr = np.diff(np.column_stack([np.zeros(3), below]), axis=1)
         return counts, conf, corr
 
     def quantiles(self, qs: np.ndarray) -> np.ndarray:
         """Quantiles of the pool of v (each row ``c`` times), as ``numpy.quantile`` of the repeated values."""
-        cum = self.cum[0]
+        cum = self.cum
         n = int(round(cum[-1]))
 
         def pair(j: int) -> tuple[float, float]:
@@ -219,6 +247,7 @@ class ExpansionRows:
 
     def __init__(self, exp: Expansion, local: np.ndarray | None) -> None:
         self.exp, self.local = exp, local
+        self.high = np.zeros(ORDER - TERMS)  # sums of kappa_4, kappa_5 over the fit rows, when the pass has them
 
     def add(self, chunk, terms) -> None:
         c = len(chunk.y)
@@ -228,10 +257,13 @@ class ExpansionRows:
         at_fit = pos[fit] if self.local is None else self.local[pos[fit]]
         at_held = pos[held] if self.local is None else self.local[pos[held]]
         kappa = terms.cumulants
-        g = kappa.copy()
+        g = kappa[:, :TERMS].copy()
         g[:, 0] -= terms.zy
         self.exp.fit_terms[at_fit] = g[fit]
-        top = np.empty((kappa.shape[1] + 1, c))
+        if kappa.shape[1] >= ORDER:
+            self.high += kappa[fit, TERMS:ORDER].sum(axis=0)
+        kappa = kappa[:, :TERMS]
+        top = np.empty((TERMS + 1, c))
         top[0] = terms.beta * terms.zmax - terms.log_total
         top[1] = terms.zmax - kappa[:, 0]
         top[2:] = -kappa[:, 1:].T
@@ -248,20 +280,22 @@ class ExpansionRows:
 def new_expansion(beta0: float, n_fit: int, n_held: int) -> Expansion:
     return Expansion(
         beta0,
-        np.empty((n_fit, ORDER)),
-        np.empty((ORDER + 1, n_held)),
+        np.empty((n_fit, TERMS)),
+        np.empty((TERMS + 1, n_held)),
         np.empty(n_held),
         np.empty((SQ_ORDER + 1, n_held)),
         np.empty(n_held, dtype=bool),
     )
 
 
-def expansion_parts(n: int, fit_rows: np.ndarray, eval_rows: np.ndarray):
-    """(part per row or None, local index per row or None) for a pass over all n rows."""
+def expansion_parts(n: int, fit_rows: np.ndarray, eval_rows: np.ndarray, local: bool = True):
+    """(part per row or None, index within its part per row or None) for a pass over all n rows."""
     if fit_rows is eval_rows:
         return None, None
     part = np.zeros(n, np.int8)
     part[eval_rows] = 1
+    if not local:
+        return part, None
     local = np.empty(n, np.intp)
     local[fit_rows] = np.arange(len(fit_rows))
     local[eval_rows] = np.arange(len(eval_rows))
@@ -272,8 +306,8 @@ def expand(logits, labels, fit_rows, eval_rows, beta0: float, threads=None) -> E
     """One pass at beta0 over both parts, filling an :class:`Expansion`."""
     part, local = expansion_parts(len(logits), fit_rows, eval_rows)
     exp = new_expansion(beta0, len(fit_rows), len(eval_rows))
-    run_pass(
+    lanes = run_pass(
         logits, labels, beta0, lambda: (ExpansionRows(exp, local),), selection=Selection(part=part),
         moments=ORDER, sq_moments=SQ_ORDER, sq_part=None if part is None else 1, threads=threads,
     )
-    return exp.finish()
+    return exp.finish(sum(lane[0].high for lane in lanes) / max(len(fit_rows), 1))

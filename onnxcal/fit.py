@@ -45,6 +45,7 @@ from .errors import OnnxcalError, first_line
 from .metrics import DEFAULT_BINS, Metrics, evaluate, iter_chunks, sigmoid
 from .passes import fit_and_score
 from .scaling import METHODS_FOR, MULTILABEL_MODES, Scaling, check_scaling, is_far_from_one, kind_of
+from .sweep import one_blas_thread
 from .tempfit import fit_beta
 
 T_MIN = 0.01
@@ -380,11 +381,11 @@ def fit_temperature(
     >>> round(fit_temperature(z, np.array([0, 1, 1, 0])).temperature, 1)
     100.0
     """
-    beta, passes, converged = fit_beta(
+    done = fit_beta(
         logits, labels, rows, weights, None if start is None else 1.0 / start, (1.0 / T_MAX, 1.0 / T_MIN),
         threads,
     )
-    return _temperature_result(np.array([beta]), passes, converged, "multiclass")
+    return _temperature_result(np.array([done.beta]), done.passes, done.converged, "multiclass")
 
 
 def fit_sigmoid_temperature(
@@ -768,7 +769,9 @@ def _temperature_passes(logits, labels, options, fit_rows, eval_rows, threads):
         logits, labels, fit_rows, eval_rows, options.n_bins, (1.0 / T_MAX, 1.0 / T_MIN), options.bootstrap > 0,
         threads,
     )
-    part, full = (_temperature_result(np.array([s[0]]), s[1], s[2], "multiclass") for s in (scored.part, scored.full))
+    part, full = (
+        _temperature_result(np.array([s.beta]), s.passes, s.converged, "multiclass") for s in (scored.part, scored.full)
+    )
     return part, full, (tuple(scored.before), tuple(scored.after)), scored.expansion
 
 
@@ -797,6 +800,11 @@ def summarize(
     -------
     FitSummary
     """
+    with one_blas_thread():
+        return _summarize(logits, labels, capture_meta, options, threads)
+
+
+def _summarize(logits, labels, capture_meta, options, threads) -> FitSummary:
     kind = resolve_kind(logits, labels, options)
     n = len(logits)
     notes, warnings = [], data_warnings(labels, logits.shape[1])

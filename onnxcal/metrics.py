@@ -33,7 +33,7 @@ from .binning import (  # noqa: F401  (re-exported: part of this module's interf
     weighted_quantiles,
 )
 from .scaling import Scaling, kind_of
-from .sweep import ALL_ROWS, ScoreSums, Selection, run_pass
+from .sweep import ALL_ROWS, RowScores, ScoreSums, Selection, run_pass
 
 # float64 elements per chunk: 512 KiB per temporary array, a handful at a time
 # (measured fastest on this machine among 2^15 to 2^20: larger chunks fall out
@@ -485,7 +485,7 @@ def score_metrics(sums: ScoreSums, part: int, mask: np.ndarray | None, weights: 
     pick = (lambda a: a) if mask is None else (lambda a: a[mask])
     n = float(sums.weight[part])
     p_sum, y_sum = sums.classwise(part)
-    top = (pick(sums.conf), pick(sums.correct), None if weights is None else pick(weights), None)
+    top = (pick(sums.rows.conf), pick(sums.rows.correct), None if weights is None else pick(weights), None)
     return _metrics_from(
         n, 1, sums.bins[part], sums.nll[part], sums.brier[part], top,
         _classwise_from_sums(p_sum, y_sum, n, sums.k), "multiclass",
@@ -508,21 +508,22 @@ def temperature_pass(
 ) -> tuple[ScoreSums, list]:
     """One pass scoring softmax(beta z) per part (and feeding ``extra`` consumers).
 
-    Returns the merged :class:`~onnxcal.sweep.ScoreSums` and, per lane, the
-    ``extra`` consumers (for the caller to merge).
+    Returns the merged :class:`~onnxcal.sweep.ScoreSums` and,
+    per lane, the ``extra`` consumers (for the caller to merge).
     """
     n = len(logits) if selection.rows is None else len(selection.rows)
-    conf, correct = np.empty(n), np.empty(n, dtype=bool)
+    rows = RowScores(n)
     k = logits.shape[1]
 
     def make():
-        return (ScoreSums(parts, k, n_bins, conf, correct), *(extra() if extra else ()))
+        return (ScoreSums(parts, k, n_bins, rows), *(extra() if extra else ()))
 
     lanes = run_pass(
         logits, labels, beta, make, selection=selection, moments=moments, sq_moments=sq_moments,
         sq_part=sq_part, threads=threads,
     )
-    return ScoreSums.merge([lane[0] for lane in lanes]), [lane[1:] for lane in lanes]
+    sums = ScoreSums.merge([lane[0] for lane in lanes])
+    return sums, [lane[1:] for lane in lanes]
 
 
 def _total(logits, rows, weights) -> float:

@@ -5,32 +5,53 @@ subsample stages of the fit, a fraction of a pass):
 
 1. beta = 1 over all rows: the before-metrics of both parts;
 2. the fit on the fit part (:func:`onnxcal.tempfit.fit_beta`): one pass
-   over the fit part after the subsamples;
+   over the fit part after the subsamples, with five cumulants;
 3. beta = the fit, over all rows: the after-metrics of both parts, the
-   NLL's derivatives on each part and, with a bootstrap, the per-row
-   Taylor terms (:class:`onnxcal.resample.Expansion`).
+   NLL's first three derivatives on each part and, with a bootstrap, the
+   per-row Taylor terms
+   (:class:`onnxcal.expansion.Expansion`).
 
 Pass 3's derivatives on the fit part check the fit (its next step must be
 below :data:`onnxcal.tempfit.ACCEPT`, :data:`CHECK_FLOAT32` for float32
 logits; if it is not, which needs unusual data, the fit steps on and pass
-3 runs again), and their sum over both
-parts gives the refit on all rows its first step: the refit reads the
+3 runs again), and their sum over both parts, with the higher derivatives
+of pass 2, gives the refit on all rows its step: the refit reads the
 logits again only when that step's error bound is too large.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from math import factorial
 
 import numpy as np
 
-from .expansion import SQ_ORDER, Expansion, ExpansionRows, expansion_parts, new_expansion
+from .expansion import SQ_ORDER, TERMS, Expansion, ExpansionRows, expansion_parts, new_expansion
 from .metrics import Metrics, score_metrics, temperature_pass
-from .sweep import MomentSums, Selection, compute_dtype
-from .tempfit import ACCEPT, MAX_PASSES, ORDER, derivatives, fit_beta, moment_pass, solve, taylor_root
+from .sweep import ALL_ROWS, MomentSums, Selection, compute_dtype
+from .tempfit import (
+    ACCEPT,
+    MAX_PASSES,
+    ORDER,
+    Solved,
+    derivatives,
+    fit_beta,
+    moment_pass,
+    snapped,
+    solve,
+    taylor_root,
+)
 
-Solved = tuple[float, float, bool]
-"""(beta, passes, converged)"""
+CHECK_FLOAT32 = 1e-8
+"""How far (relative) pass 3 may put the fit part's optimum from the fit, for float32 logits.
+
+Pass 2 (rows gathered from the fit part) and pass 3 (all rows) round the
+float32 exponentials of a row alike only up to the chunk layout of the
+row sums, and the noise this leaves in f' moves its root by about 1e-9
+(relative) on 750 000 rows; float64 logits are checked to ACCEPT.
+"""
+BORROWED_ERROR = 0.1
+"""Relative error assumed of the derivatives the refit borrows from pass 2 (see :func:`_refit`)."""
 
 
 @dataclass(frozen=True)
@@ -48,16 +69,6 @@ class Scored:
     expansion: Expansion | None
 
 
-CHECK_FLOAT32 = 1e-8
-"""How far (relative) pass 3 may put the fit part's optimum from the fit, for float32 logits.
-
-Pass 2 (rows gathered from the fit part) and pass 3 (all rows) round the
-float32 exponentials of a row alike only up to the chunk layout of the
-row sums, and the noise this leaves in f' moves its root by about 1e-9
-(relative) on 750 000 rows; float64 logits are checked to ACCEPT.
-"""
-
-
 def _settled(beta: float, derivs: np.ndarray, bounds: tuple[float, float], tol: float) -> bool:
     """Whether beta is the optimum (within ``tol``) or a bound the optimum lies beyond."""
     g = float(derivs[0])
@@ -67,16 +78,40 @@ def _settled(beta: float, derivs: np.ndarray, bounds: tuple[float, float], tol: 
     return root is not None and abs(root[0]) <= tol * beta
 
 
-def _from(first, logits, labels, rows, threads):
-    """A solver pass function whose first call returns ``first`` (a pass already made)."""
-    pending = [first]
+def _passes(logits, labels, rows, threads, first=None):
+    """A solver pass function over ``rows``; its first call returns ``first`` when given (a pass already made)."""
+    pending = [] if first is None else [first]
+    snap = snapped(logits)
 
     def pass_fn(beta):
         if pending:
             return pending.pop()
-        return derivatives(moment_pass(logits, labels, beta, Selection(rows=rows), threads))
+        at = snap(beta)
+        return derivatives(moment_pass(logits, labels, at, Selection(rows=rows), threads), at)
 
     return pass_fn
+
+
+def _refit(logits, labels, sums: MomentSums, beta: float, high: np.ndarray, bounds, threads) -> Solved:
+    """The refit on all rows from pass 3's sums and pass 2's higher derivatives.
+
+    Pass 3 gives the first three derivatives of f over all rows at the fit
+    part's beta; the fourth and fifth are the fit part's means from pass 2,
+    a step away. The terms they make are small (the step is about the
+    difference between the two optima, 3e-5 of beta on a million rows of
+    1000 classes, 1e-3 with 4 classes), so
+    the step is taken without another pass when those terms, assumed
+    BORROWED_ERROR wrong, stay below ACCEPT along with the series' own bound.
+    """
+    own = sums.sums.sum(axis=0) / sums.weight.sum()
+    derivs = np.concatenate([own, high[len(own) :]])
+    done = solve(_passes(logits, labels, None, threads, (derivs, float(sums.wrong.sum()), beta)), beta, *bounds)
+    d = done.beta - beta
+    borrowed = sum(abs(derivs[j] * d**j / factorial(j)) for j in range(len(own), len(derivs)))
+    if done.passes == 1 and BORROWED_ERROR * borrowed > ACCEPT * done.beta * max(float(derivs[1]), 1e-300):
+        again = solve(_passes(logits, labels, None, threads), done.beta, *bounds)
+        return Solved(again.beta, 1 + again.passes, again.converged)
+    return done
 
 
 def fit_and_score(
@@ -94,40 +129,45 @@ def fit_and_score(
     ``eval_rows is fit_rows`` means an in-sample evaluation (one part, all rows).
     """
     holdout = fit_rows is not eval_rows
-    part, local = expansion_parts(len(logits), fit_rows, eval_rows)
+    part, local = expansion_parts(len(logits), fit_rows, eval_rows, local=bootstrap)
     parts = 2 if holdout else 1
     masks = [part == p for p in range(parts)] if holdout else [None]
-    sel = Selection(part=part)
+    sel = Selection(part=part) if holdout else ALL_ROWS
     first, _ = temperature_pass(logits, labels, 1.0, n_bins, selection=sel, parts=parts, threads=threads)
     before = [score_metrics(first, p, masks[p], None) for p in range(parts)]
+    del first  # its per-row scores
     fit_on = fit_rows if holdout else None
     tol = CHECK_FLOAT32 if compute_dtype(logits) == np.float32 else ACCEPT
-    beta, passes, converged = fit_beta(logits, labels, fit_on, None, None, bounds, threads)
+    fit = fit_beta(logits, labels, fit_on, None, None, bounds, threads)
+    beta, passes, converged = fit.beta, fit.passes, fit.converged
+    high = fit.derivs if fit.derivs is not None and len(fit.derivs) == ORDER else np.zeros(ORDER)
+    order = TERMS  # the first three derivatives on all rows: the check, the refit's step, the expansion
     for _ in range(MAX_PASSES):
         exp = new_expansion(beta, len(fit_rows), len(eval_rows)) if bootstrap else None
 
         def extra(exp=exp):
-            return (MomentSums(parts, ORDER),) + ((ExpansionRows(exp, local),) if exp is not None else ())
+            return (MomentSums(parts, order),) + ((ExpansionRows(exp, local),) if exp is not None else ())
 
         scores, lanes = temperature_pass(
-            logits, labels, beta, n_bins, selection=sel, parts=parts, moments=ORDER,
+            logits, labels, beta, n_bins, selection=sel, parts=parts, moments=order,
             sq_moments=SQ_ORDER if bootstrap else 0, sq_part=1 if holdout else None, extra=extra,
             threads=threads,
         )
         sums = MomentSums.merge([lane[0] for lane in lanes])
         passes += 1  # the check of the fit, shared with the scores
-        on_fit = derivatives(sums, 0)
-        if _settled(beta, on_fit[0], bounds, tol):
+        own, wrong, _ = derivatives(sums, beta, 0)
+        check = np.concatenate([own, high[order:]])
+        if _settled(beta, check, bounds, tol):
             break
-        beta, p, converged = solve(_from(on_fit, logits, labels, fit_on, threads), beta, *bounds)
-        passes += p - 1
+        redo = solve(_passes(logits, labels, fit_on, threads, (check, wrong, beta)), beta, *bounds)
+        beta, converged, passes = redo.beta, redo.converged, passes + redo.passes - 1
+        if redo.derivs is not None and len(redo.derivs) == ORDER:
+            high = redo.derivs
     after = [score_metrics(scores, p, masks[p], None) for p in range(parts)]
     if holdout:
-        total = MomentSums(1, ORDER)
-        total.sums[0], total.weight[0], total.wrong[0] = sums.sums.sum(0), sums.weight.sum(), sums.wrong.sum()
-        full = solve(_from(derivatives(total), logits, labels, None, threads), beta, *bounds)
+        full = _refit(logits, labels, sums, beta, high, bounds, threads)
     else:
-        full = (beta, passes, converged)
-    return Scored(
-        (beta, passes, converged), full, before, after, None if exp is None else exp.finish()
-    )
+        full = Solved(beta, passes, converged)
+    if exp is not None:
+        exp.finish(high[TERMS:ORDER])
+    return Scored(Solved(beta, passes, converged), full, before, after, exp)

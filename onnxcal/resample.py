@@ -117,15 +117,15 @@ def split_holdout(labels: np.ndarray, fraction: float, seed: int) -> tuple[np.nd
     n = len(strata)
     rng = np.random.default_rng(seed)
     perm = rng.permutation(n)
-    order = perm[np.argsort(strata[perm], kind="stable")]
-    sorted_strata = strata[order]
-    starts = np.flatnonzero(np.r_[True, sorted_strata[1:] != sorted_strata[:-1]])
-    sizes = np.diff(np.r_[starts, n])
-    group = np.repeat(np.arange(len(starts)), sizes)
-    rank = np.arange(n) - starts[group]
+    order = perm[np.argsort(strata[perm], kind="stable")]  # a random order within each stratum
+    del perm
+    sizes = np.bincount(strata)
+    del strata
+    starts = np.concatenate([[0], np.cumsum(sizes)[:-1]])
     take = np.floor(fraction * sizes + 0.5).astype(np.int64)
     held = np.zeros(n, dtype=bool)
-    held[order[rank < take[group]]] = True
+    for start, count in zip(starts[take > 0], take[take > 0], strict=True):  # the first rows of each stratum
+        held[order[start : start + count]] = True
     if not held.any() or held.all():
         raise OnnxcalError(
             f"--holdout {fraction:g} leaves {'no' if not held.any() else 'all'} of the {n} samples "
@@ -139,16 +139,32 @@ def split_holdout(labels: np.ndarray, fraction: float, seed: int) -> tuple[np.nd
 # Bootstrap
 
 
-def _counts(rng: np.random.Generator, n: int) -> np.ndarray:
-    """How often each of n rows is drawn in n draws with replacement."""
-    return np.bincount(rng.integers(0, n, n), minlength=n).astype(np.float64)
+class Draw:
+    """One replicate: n draws with replacement from each part's n positions.
+
+    ``fit`` and ``held`` are the drawn positions (the same array for an
+    in-sample bootstrap); the counts (how often each position was drawn,
+    the weights of the replicate) are made when asked for.
+    """
+
+    def __init__(self, fit: np.ndarray, n_fit: int, held: np.ndarray, n_held: int) -> None:
+        self.fit, self.held, self.n_fit, self.n_held = fit, held, n_fit, n_held
+
+    @property
+    def fit_counts(self) -> np.ndarray:
+        return np.bincount(self.fit, minlength=self.n_fit).astype(np.float64)
+
+    @property
+    def held_counts(self) -> np.ndarray:
+        return np.bincount(self.held, minlength=self.n_held).astype(np.float64)
 
 
 def _draws(rng: np.random.Generator, replicates: int, n_fit: int, n_eval: int | None):
-    """Yield (fit counts, held-out counts) per replicate, one at a time."""
+    """Yield one :class:`Draw` per replicate (the fit part's draws first, then the held-out part's)."""
     for _ in range(replicates):
-        cf = _counts(rng, n_fit)
-        yield cf, (cf if n_eval is None else _counts(rng, n_eval))
+        fit = rng.integers(0, n_fit, n_fit)
+        held = fit if n_eval is None else rng.integers(0, n_eval, n_eval)
+        yield Draw(fit, n_fit, held, n_fit if n_eval is None else n_eval)
 
 
 def _percentile(values: np.ndarray) -> list:
@@ -259,10 +275,10 @@ class Replicates:
 
     def exact(self, draws):
         params, metrics = [], []
-        for cf, ce in draws:
-            res = self._refit(cf)
+        for draw in draws:
+            res = self._refit(draw.fit_counts)
             params.append(res.scaling.arrays())
-            metrics.append(self._score(res.scaling, ce))
+            metrics.append(self._score(res.scaling, draw.held_counts))
         return params, metrics
 
     def grid(self, draws):
@@ -275,15 +291,16 @@ class Replicates:
         n_bins = self.options.n_bins
         exact_eval = len(self.eval_rows) * self.logits.shape[1] * self.options.bootstrap <= EXACT_EVAL_BUDGET
 
-        def one(cf, ce):
-            d = exp.root(cf)
+        def one(draw):
+            counts = draw.fit_counts
+            d = exp.root(counts)
             if d is None:
-                beta = 1.0 / self._refit(cf).temperature
+                beta = 1.0 / self._refit(counts).temperature
             else:
                 beta = exp.beta0 + d
-            m = None if exact_eval or d is None else exp.metrics(ce, d, n_bins)
+            m = None if exact_eval or d is None else exp.metrics(draw.held, d, n_bins)
             if m is None:
-                m = self._score(1.0 / beta, ce)
+                m = self._score(1.0 / beta, draw.held_counts)
                 if not exact_eval:
                     m["classwise_ece"] = float("nan")
             return {"temperature": np.array(1.0 / beta)}, m, d is None
@@ -293,13 +310,13 @@ class Replicates:
 
 
 def _map_in_order(fn, items, threads: int) -> list:
-    """[fn(*item) for item in items], on ``threads`` threads, items drawn in order."""
+    """[fn(item) for item in items], on ``threads`` threads, items drawn in order."""
     if threads <= 1:
-        return [fn(*item) for item in items]
+        return [fn(item) for item in items]
     with ThreadPoolExecutor(threads) as pool:
         pending, out = [], []
         for item in items:  # the draws come from one generator, in order
-            pending.append(pool.submit(fn, *item))
+            pending.append(pool.submit(fn, item))
             if len(pending) > 2 * threads:
                 out.append(pending.pop(0).result())
         out.extend(f.result() for f in pending)
@@ -379,7 +396,8 @@ def _grid_replicates(logits, labels, options, fit_rows, eval_rows, start, draws,
     held = None if exact_eval else _grid_terms(logits, labels, eval_rows, betas, held_out=True)
     steps = np.diff(betas)
     params, metrics, fallbacks = [], [], 0
-    for cf, ce in draws:
+    for draw in draws:
+        cf, ce = draw.fit_counts, draw.held_counts
         s = cf @ g_terms  # weighted gradient at each grid beta
         d = cf @ h_terms
         j = int(np.searchsorted(s, 0.0)) - 1  # s is increasing in beta (convex NLL)

@@ -44,14 +44,36 @@ import numpy as np
 
 from .binning import bin_ids
 
-CHUNK_ELEMENTS = 1 << 16
-"""Logit values per chunk (256 KiB of float32): a few such buffers stay in cache."""
+CHUNK_ELEMENTS = 1 << 18
+"""Logit values per chunk (1 MiB of float32): large enough that the few hundred numpy
+calls a chunk takes cost little beside its arithmetic, small enough that its five
+scratch arrays stay in the cache (measured fastest among 2^16 to 2^20 on 1 000 classes)."""
 LANES = 4
 """Accumulator lanes: results are the same for 1 to LANES threads."""
 PARALLEL_ELEMENTS = 1 << 21
 """Passes over fewer logit values than this run in the calling thread."""
 UNSHIFTED_LIMIT = 20.0
 """float32 rows are left unshifted when |beta max z| is at most this (exp(2 * 20) is far from overflow)."""
+
+
+_BLAS: list = []
+
+
+def one_blas_thread():
+    """A context in which BLAS (numpy's dot products) runs on one thread.
+
+    onnxcal's passes and bootstrap replicates run on threads of their own; a
+    multithreaded BLAS under them would oversubscribe the cores, and its
+    threads, woken for every dot product, wait for a core whenever the
+    machine is busy (measured: a 17 000-element dot product took 37 ms
+    instead of 0.01 ms on a loaded two-core machine). Process-wide while it
+    lasts (threadpoolctl).
+    """
+    from threadpoolctl import ThreadpoolController
+
+    if not _BLAS:
+        _BLAS.append(ThreadpoolController())
+    return _BLAS[0].limit(limits=1, user_api="blas")
 
 
 def default_threads() -> int:
@@ -135,61 +157,83 @@ class ExpTerms:
 
 
 class _Buffers:
-    def __init__(self, rows: int, k: int, dtype: np.dtype) -> None:
-        self.x = np.empty((rows, k), dtype)
-        self.e = np.empty((rows, k), dtype)
-        self.ex = np.empty((rows, k), dtype)
-        self.p = np.empty((rows, k), dtype)
-        self.q = np.empty((rows, k), dtype)
-        self.ones = np.ones(k, dtype)
+    """Scratch arrays of one thread: five chunk-sized arrays and the row sums."""
+
+    def __init__(self, rows: int, k: int, dtype: np.dtype, powers: int = 8) -> None:
+        self.x, self.e, self.ex, self.p, self.q = (np.empty((rows, k), dtype) for _ in range(5))
+        self.r = np.arange(rows)
+        self.sums = np.empty((powers + 1, rows), dtype)
 
 
 def cumulants_from_moments(mu: np.ndarray) -> np.ndarray:
-    """Cumulants kappa_1..kappa_m from raw moments mu_1..mu_m (columns of an (n, m) array)."""
-    m = mu.shape[1]
+    """Cumulants kappa_1..kappa_m from raw moments mu_1..mu_m (rows of an (m, n) array).
+
+    Up to m = 5 from the central moments c_j (kappa_2 = c_2, kappa_3 = c_3,
+    kappa_4 = c_4 - 3 c_2^2, kappa_5 = c_5 - 10 c_3 c_2); beyond, by the
+    recursion kappa_n = mu_n - sum_{j=1}^{n-1} C(n-1, j-1) kappa_j mu_{n-j}
+    (both common practice).
+    """
+    m = len(mu)
+    if m > 5:
+        kappa = np.empty_like(mu)
+        for n in range(1, m + 1):
+            acc = mu[n - 1].copy()
+            for j in range(1, n):
+                acc -= comb(n - 1, j - 1) * kappa[j - 1] * mu[n - j - 1]
+            kappa[n - 1] = acc
+        return kappa
     kappa = np.empty_like(mu)
-    for n in range(1, m + 1):
-        acc = mu[:, n - 1].copy()
-        for j in range(1, n):
-            acc -= comb(n - 1, j - 1) * kappa[:, j - 1] * mu[:, n - j - 1]
-        kappa[:, n - 1] = acc
+    if m == 0:
+        return kappa
+    m1 = kappa[0] = mu[0]
+    if m >= 2:
+        sq = m1 * m1
+        c2 = kappa[1] = mu[1] - sq
+    if m >= 3:
+        c3 = kappa[2] = mu[2] - m1 * (3.0 * mu[1] - 2.0 * sq)
+    if m >= 4:
+        c4 = mu[3] - m1 * (4.0 * mu[2] - m1 * (6.0 * mu[1] - 3.0 * sq))
+        kappa[3] = c4 - 3.0 * c2 * c2
+    if m >= 5:
+        c5 = mu[4] - m1 * (5.0 * mu[3] - m1 * (10.0 * mu[2] - m1 * (10.0 * mu[1] - 4.0 * sq)))
+        kappa[4] = c5 - 10.0 * c3 * c2
     return kappa
 
 
-def _row_sums(a: np.ndarray, ones: np.ndarray) -> np.ndarray:
-    return np.asarray(a @ ones, dtype=np.float64)
+def _power_sums(w, x, count: int, first, scratch, out) -> np.ndarray:
+    """Row sums of w x^j, j = 0..count, as float64 rows (count + 1, rows).
+
+    ``first`` receives w x, ``scratch`` the higher powers (either may be
+    ``w`` itself when it is not needed afterwards); ``out`` takes the sums.
+    """
+    np.einsum("ij->i", w, out=out[0])
+    prev = w
+    for j in range(1, count + 1):
+        dest = first if j == 1 else scratch
+        np.multiply(prev, x, out=dest)
+        np.einsum("ij->i", dest, out=out[j])
+        prev = dest
+    return out.astype(np.float64)
 
 
-def _power_sums(w: np.ndarray, x: np.ndarray, first: np.ndarray, p: np.ndarray, ones, count: int) -> np.ndarray:
-    """Row sums of w x^j for j = 0..count; ``first`` receives w x (p is scratch)."""
-    out = np.empty((len(w), count + 1))
-    out[:, 0] = _row_sums(w, ones)
-    if count >= 1:
-        np.multiply(w, x, out=first)
-        out[:, 1] = _row_sums(first, ones)
-    if count >= 2:
-        np.multiply(first, x, out=p)
-        out[:, 2] = _row_sums(p, ones)
-        for j in range(3, count + 1):
-            np.multiply(p, x, out=p)
-            out[:, j] = _row_sums(p, ones)
-    return out
+def _cumulants(sums: np.ndarray, eps: float, m: int, s: np.ndarray, b: float) -> tuple[np.ndarray, np.ndarray]:
+    """Row totals at the exact beta and the cumulants 1..m of z = (x + s) / b (an (m, c) array).
 
-
-def _at_beta(sums: np.ndarray, eps: float, wanted: int) -> np.ndarray:
-    """Row sums of w x^j exp(eps x), j = 0..wanted, to first order in eps."""
-    if not eps:
-        return sums[:, : wanted + 1]
-    return sums[:, : wanted + 1] + eps * sums[:, 1 : wanted + 2]
-
-
-def _cumulants(sums: np.ndarray, s: np.ndarray, b: float) -> np.ndarray:
-    """Cumulants of z = (x + s) / b from row sums of w x^j (j = 0..m)."""
-    kappa = cumulants_from_moments(sums[:, 1:] / sums[:, :1])
-    if kappa.shape[1]:
-        kappa[:, 0] += s
-        kappa /= b ** np.arange(1, kappa.shape[1] + 1)
-    return kappa
+    ``sums`` holds the row sums of w x^j (j = 0..max(m, 1)); the weights at the
+    exact beta are w exp(eps x), to first order w (1 + eps x), so the sum of
+    order j needs that of order j + 1. The highest one is left at b: its
+    correction is about eps x ~ 1e-7 of itself, and the top cumulant only
+    ever enters multiplied by d^m, d a step in beta (at most ~1e-2).
+    """
+    at = sums[: m + 1].copy()
+    if eps:
+        top = min(m, len(sums) - 2)
+        at[: top + 1] += eps * sums[1 : top + 2]
+    kappa = cumulants_from_moments(at[1:] / at[0])
+    if m:
+        kappa[0] += s
+        kappa /= (b ** np.arange(1, m + 1))[:, None]
+    return at[0], kappa
 
 
 def exp_terms(
@@ -209,42 +253,66 @@ def exp_terms(
     boolean mask ``sq_rows`` (all when None; NaN elsewhere).
     """
     c = len(y)
-    r = np.arange(c)
+    r = buf.r[:c]
+    dtype = buf.e.dtype
+    z = np.asarray(z, dtype=dtype)
     top = z.argmax(axis=1)
     zmax = z[r, top].astype(np.float64)
     zy = z[r, y].astype(np.float64)
-    dtype = buf.e.dtype
     b = float(dtype.type(beta))
     eps = beta / b - 1.0
-    unshifted = dtype == np.float32 and c > 0 and float(np.abs(b * zmax).max()) <= UNSHIFTED_LIMIT
-    s = np.zeros(c) if unshifted else (b * zmax).astype(dtype).astype(np.float64)
-    x, e, ex = buf.x[:c], buf.e[:c], buf.ex[:c]
-    z = np.asarray(z, dtype=dtype)
-    if unshifted and b == 1.0:
-        x = z
+    unshifted = dtype == np.float32 and c > 0 and b * max(abs(zmax.max()), abs(zmax.min())) <= UNSHIFTED_LIMIT
+    x, e = buf.x[:c], buf.e[:c]
+    if unshifted:
+        s = 0.0
+        if b == 1.0:
+            x = z
+        else:
+            np.multiply(z, dtype.type(b), out=x)
     else:
+        s32 = (b * zmax).astype(dtype)
+        s = s32.astype(np.float64)
         np.multiply(z, dtype.type(b), out=x)
-        if not unshifted:
-            np.subtract(x, s.astype(dtype)[:, None], out=x)
+        np.subtract(x, s32[:, None], out=x)
     np.exp(x, out=e)
-    extra = 1 if eps else 0
-    sums = _power_sums(e, x, ex, buf.p[:c], buf.ones, moments + extra)
-    at = _at_beta(sums, eps, moments)
+    count = max(moments, 1 if eps else 0)  # the total at the exact beta needs the first power
+    sums = _power_sums(e, x, count, buf.ex[:c], buf.p[:c], buf.sums[: count + 1, :c])
+    total, kappa = _cumulants(sums, eps, moments, s, b)
     scale = beta / b
-    terms = ExpTerms(
-        beta, b, eps, x, e, ex, at[:, 0], scale * s + np.log(at[:, 0]), top, zmax, zy, _cumulants(at, s, b)
-    )
+    log_total = np.log(total)
+    if not unshifted:
+        log_total += scale * s
+    terms = ExpTerms(beta, b, eps, x, e, buf.ex[:c] if count else None, total, log_total, top, zmax, zy, kappa.T)
     if sq_moments is not None:
-        e2 = np.multiply(e, e, out=buf.p[:c])
-        base = _at_beta(_power_sums(e2, x, e2 if not extra else buf.q[:c], buf.q[:c], buf.ones, extra), 2 * eps, 0)
-        terms.sq_log_total = 2.0 * scale * s + np.log(base[:, 0])
-        terms.sq_cumulants = np.full((c, sq_moments), np.nan)
-        if sq_moments:
-            pick = slice(None) if sq_rows is None else np.flatnonzero(sq_rows)
-            e2p, xp = (e2, x) if sq_rows is None else (e2[pick], x[pick])
-            high = _power_sums(e2p, xp, np.empty_like(e2p), np.empty_like(e2p), buf.ones, sq_moments + extra)
-            terms.sq_cumulants[pick] = _cumulants(_at_beta(high, 2 * eps, sq_moments), s[pick], b)
+        _squares(terms, buf, sq_moments, s, scale, sq_rows)
     return terms
+
+
+def _squares(terms: ExpTerms, buf: _Buffers, sq_moments: int, s, scale: float, sq_rows) -> None:
+    """L(2 beta) of every row, and the cumulants at 2 beta of the rows in ``sq_rows`` (weights e^2)."""
+    c = len(terms.zy)
+    e2 = np.multiply(terms.e, terms.e, out=buf.p[:c])
+    q = buf.q[:c]
+    extra = 1 if terms.eps else 0
+    sums = _power_sums(e2, terms.x, extra, q, q, buf.sums[: extra + 1, :c])
+    total = sums[0] + 2.0 * terms.eps * sums[1] if extra else sums[0]
+    terms.sq_log_total = np.log(total) + 2.0 * scale * s
+    terms.sq_cumulants = np.full((c, sq_moments), np.nan)
+    if not sq_moments:
+        return
+    count = max(sq_moments, extra)
+    if sq_rows is None:
+        pick, w2, xs, ss = slice(None), e2, terms.x, s
+        out = buf.sums[: count + 1, :c]
+    else:
+        pick = np.flatnonzero(sq_rows)
+        w2, xs = e2[pick], terms.x[pick]
+        ss = s if np.isscalar(s) else s[pick]
+        out = np.empty((count + 1, len(pick)), e2.dtype)
+    scratch = q if sq_rows is None else w2
+    sums = _power_sums(w2, xs, count, scratch, scratch, out)
+    _, kappa = _cumulants(sums, 2.0 * terms.eps, sq_moments, ss, terms.b)
+    terms.sq_cumulants[pick] = kappa.T
 
 
 # --------------------------------------------------------------------------
@@ -369,83 +437,85 @@ class MomentSums:
         return out
 
 
+class RowScores:
+    """Per-row scores of one pass, written by every lane at its rows' positions (9 bytes a row)."""
+
+    def __init__(self, n: int) -> None:
+        self.conf = np.empty(n)  # probability of the top class
+        self.correct = np.empty(n, dtype=bool)  # the top class is the label
+
+
 class ScoreSums:
     """Sums behind the metrics of softmax(beta z), per part (a pass consumer).
 
-    Per part: total weight, NLL and Brier sums, the top-label reliability
-    sums (counts, confidence, correct) over ``n_bins`` equal-width bins,
-    and the classwise sums (probability and label indicator per (class,
-    bin), flat index class * M + bin). The confidence and correctness of
-    every row go into ``conf`` and ``correct`` at the row's position (the
-    adaptive ECE needs all of them).
-
-    Classwise bins: a softmax row has fewer than M probabilities above
-    the first edge 1/M; only those are binned one by one, found by one
-    comparison of the exponentials with a threshold per chunk. The first
-    bin of each class gets the rest, by subtraction from the class's
-    column sum (a matrix-vector product).
+    Chunk by chunk: the total weight, NLL and Brier sums per part, the
+    top-label reliability sums (counts, confidence, correct) over
+    ``n_bins`` equal-width bins, and the classwise sums (probability and
+    label indicator per (class, bin), flat index class * M + bin). Per row
+    it keeps the top-label confidence and correctness (in a shared
+    :class:`RowScores`: the adaptive ECE needs them all). The probability
+    side of the classwise sums needs every entry: a softmax row has fewer than M
+    probabilities above the first edge 1/M; only those are binned one by
+    one, found by one comparison of the exponentials with a threshold per
+    chunk. The first bin of each class gets the rest, by subtraction from
+    the class's column sum (a matrix-vector product).
     """
 
-    def __init__(self, parts: int, k: int, n_bins: int, conf: np.ndarray, correct: np.ndarray) -> None:
-        self.parts, self.k, self.n_bins = parts, k, n_bins
-        self.weight = np.zeros(parts)
-        self.nll = np.zeros(parts)
-        self.brier = np.zeros(parts)
+    def __init__(self, parts: int, k: int, n_bins: int, rows: RowScores) -> None:
+        self.parts, self.k, self.n_bins, self.rows = parts, k, n_bins, rows
+        self.weight, self.nll, self.brier = np.zeros(parts), np.zeros(parts), np.zeros(parts)
         self.bins = np.zeros((parts, 3, n_bins))
         self.p_sum = np.zeros(parts * k * n_bins)
         self.y_sum = np.zeros(parts * k * n_bins)
         self.column = np.zeros(parts * k)  # sum of p per (part, class)
         self.upper = np.zeros(parts * k)  # of which above the first edge
-        self.conf, self.correct = conf, correct
         self.first = float(np.linspace(0.0, 1.0, n_bins + 1)[1])
 
     def add(self, chunk: Chunk, terms: ExpTerms) -> None:
         c = len(chunk.y)
-        r = np.arange(c)
+        at = slice(chunk.start, chunk.start + c)
+        log_total, beta, P = terms.log_total, terms.beta, self.parts
         w = np.ones(c) if chunk.w is None else chunk.w
-        part = np.zeros(c, np.intp) if chunk.part is None else np.asarray(chunk.part, np.intp)
-        log_total = terms.log_total
-        conf = np.exp(terms.beta * terms.zmax - log_total)
-        p_y = np.exp(terms.beta * terms.zy - log_total)
-        correct = terms.top == chunk.y
-        P, M = self.parts, self.n_bins
-        self.weight += np.bincount(part, w, P)
-        self.nll += np.bincount(part, w * (log_total - terms.beta * terms.zy), P)
-        # sum_k (p_k - y_k)^2 = sum_k p_k^2 - 2 p_y + 1, sum_k p_k^2 = exp(L(2 beta) - 2 L(beta))
-        brier = np.exp(terms.sq_log_total - 2.0 * log_total) - 2.0 * p_y + 1.0
-        self.brier += np.bincount(part, w * brier, P)
-        ids = bin_ids(conf, M) + M * part
+        part = np.zeros(c, np.intp) if chunk.part is None else chunk.part.astype(np.intp)
+        conf = np.exp(beta * terms.zmax - log_total, out=self.rows.conf[at])
+        correct = np.equal(terms.top, chunk.y, out=self.rows.correct[at])
+        ids = bin_ids(conf, self.n_bins) + self.n_bins * part
         for j, v in enumerate((w, w * conf, w * correct)):
-            self.bins[:, j] += np.bincount(ids, v, P * M).reshape(P, M)
-        self.conf[chunk.start : chunk.start + c] = conf
-        self.correct[chunk.start : chunk.start + c] = correct
-        self._classwise(terms, w, part, terms.probabilities(r, chunk.y), chunk.y)
+            self.bins[:, j] += np.bincount(ids, v, P * self.n_bins).reshape(P, self.n_bins)
+        log_py = beta * terms.zy - log_total
+        # sum_k (p_k - y_k)^2 = sum_k p_k^2 - 2 p_y + 1, sum_k p_k^2 = exp(L(2 beta) - 2 L(beta))
+        brier = np.exp(terms.sq_log_total - 2.0 * log_total) - 2.0 * np.exp(log_py) + 1.0
+        self.weight += np.bincount(part, w, P)
+        self.nll -= np.bincount(part, w * log_py, P)
+        self.brier += np.bincount(part, w * brier, P)
+        p_y = terms.probabilities(np.arange(c), chunk.y)  # as the classwise bins see it
+        np.add.at(self.y_sum, bin_ids(p_y, self.n_bins) + self.n_bins * chunk.y + (self.k * self.n_bins) * part, w)
+        self._classwise(terms, w, part)
 
-    def _classwise(self, terms: ExpTerms, w, part, p_y, y) -> None:
+    def _classwise(self, terms: ExpTerms, w: np.ndarray, part: np.ndarray) -> None:
         e, total, k, M = terms.e, terms.total, self.k, self.n_bins
         c = len(total)
-        inv = w / total
-        coef = np.zeros((self.parts, c), e.dtype)
-        coef[part, np.arange(c)] = inv
-        col = coef @ e
-        if terms.eps:  # p = e (1 + eps x) / total
-            coef[part, np.arange(c)] = inv * terms.eps
-            col = col + coef @ terms.ex
-        self.column += np.asarray(col, np.float64).ravel()
-        lim = total * self.first * (1.0 - 1e-5)  # p > 1/M needs e > total / M, give or take eps x
-        lo = float(lim.min())
-        if float(lim.max()) <= 4.0 * lo:
-            cand = np.flatnonzero(e.ravel() > e.dtype.type(lo))
-        else:
-            cand = np.flatnonzero((e > lim.astype(e.dtype)[:, None]).ravel())
+        inv = (w / total).astype(e.dtype)
+        for p in range(self.parts):
+            coef = inv if self.parts == 1 else np.where(part == p, inv, e.dtype.type(0))
+            col = np.einsum("c,ck->k", coef, e)
+            if terms.eps:  # p = e (1 + eps x) / total
+                col += e.dtype.type(terms.eps) * np.einsum("c,ck->k", coef, terms.ex)
+            self.column[p * k : (p + 1) * k] += col
+        lo = float(total.min()) * self.first * (1.0 - 1e-5)  # p > 1/M needs e > total / M, give or take eps x
+        cand = np.flatnonzero(e.ravel() > e.dtype.type(lo))
+        if len(cand) > 4 * c * M:  # rows of very different totals: a threshold per row
+            lim = (total * self.first * (1.0 - 1e-5)).astype(e.dtype)
+            cand = np.flatnonzero((e > lim[:, None]).ravel())
         rows, cols = np.divmod(cand, k)
         p = terms.probabilities(rows, cols)
         keep = p > self.first
         rows, cols, p = rows[keep], cols[keep], p[keep]
         wp = p * w[rows]
-        np.add.at(self.p_sum, bin_ids(p, M) + M * cols + (k * M) * part[rows], wp)
-        np.add.at(self.upper, cols + k * part[rows], wp)
-        np.add.at(self.y_sum, bin_ids(p_y, M) + M * y + (k * M) * part, w)
+        where = cols + k * part[rows]
+        np.add.at(self.p_sum, bin_ids(p, M) + M * where, wp)
+        np.add.at(self.upper, where, wp)
+
 
     def classwise(self, part: int) -> tuple[np.ndarray, np.ndarray]:
         """The (class, bin) sums of probabilities and labels of one part."""

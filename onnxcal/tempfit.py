@@ -26,11 +26,12 @@ warm-starting the next, so the full set is read once or twice.
 from __future__ import annotations
 
 from collections.abc import Callable
+from dataclasses import dataclass
 from math import factorial
 
 import numpy as np
 
-from .sweep import ALL_ROWS, MomentSums, Selection, run_pass
+from .sweep import ALL_ROWS, MomentSums, Selection, compute_dtype, run_pass
 
 ORDER = 5
 """Cumulants per solver pass (the Taylor polynomial of f' has degree ORDER - 1)."""
@@ -44,8 +45,12 @@ MAX_PASSES = 60
 STAGE_ROWS = (10_000, 100_000)
 STAGE_FACTOR = 4  # a stage of m rows runs when the set has more than STAGE_FACTOR * m rows
 
-PassFn = Callable[[float], tuple[np.ndarray, float]]
-"""beta -> (mean derivatives [f', f'', ..., f^(ORDER)], weight of rows whose label is not the top logit)."""
+PassFn = Callable[[float], tuple[np.ndarray, float, float]]
+"""beta -> (mean derivatives [f', f'', ...] at beta', weight of rows whose label is not the top logit, beta').
+
+beta' is the beta the pass was made at: beta, or beta rounded to float32
+for float32 logits (where the pass then needs no correction to the exact
+beta; the solver only needs to know where it stands)."""
 
 
 def taylor_root(derivs: np.ndarray) -> tuple[float, float] | None:
@@ -98,30 +103,44 @@ def next_beta(beta: float, derivs: np.ndarray, lo: float, hi: float, b_min: floa
     return new, abs(np.log(new / beta)) <= STEP_TOL
 
 
-def solve(pass_fn: PassFn, beta0: float, b_min: float, b_max: float, accept: float = ACCEPT):
-    """Minimise f from ``beta0``; returns (beta, passes, converged).
+@dataclass(frozen=True)
+class Solved:
+    """A solve's outcome: beta, passes, whether it converged, and the mean derivatives
+    [f', f'', ...] of its last pass (at ``at``)."""
 
-    On the first pass, if every row's label is the strict top logit
-    (``pass_fn`` reports no wrong rows and ``separated`` confirms no ties), f
-    keeps falling as beta grows and ``b_max`` is the answer.
+    beta: float
+    passes: float
+    converged: bool
+    derivs: np.ndarray | None = None
+    at: float | None = None
+
+
+def solve(pass_fn: PassFn, beta0: float, b_min: float, b_max: float, accept: float = ACCEPT) -> Solved:
+    """Minimise f from ``beta0``.
+
+    On the first pass, if every row's label is the (first) top logit,
+    f' < 0 for every beta (the NLL keeps falling as beta grows) and
+    ``b_max`` is the answer.
     """
     beta = float(np.clip(beta0, b_min, b_max))
     lo, hi = b_min, b_max
+    derivs, at = None, None
     for passes in range(1, MAX_PASSES + 1):
-        derivs, wrong = pass_fn(beta)
+        derivs, wrong, beta = pass_fn(beta)
+        at = beta
         g = float(derivs[0])
         if passes == 1 and wrong == 0 and g < 0:
-            return b_max, passes, True
+            return Solved(b_max, passes, True, derivs, at)
         if g == 0 or (beta <= b_min and g > 0) or (beta >= b_max and g < 0):
-            return beta, passes, True
+            return Solved(beta, passes, True, derivs, at)
         if g > 0:
             hi = beta
         else:
             lo = beta
         beta, final = next_beta(beta, derivs, lo, hi, b_min, b_max, accept)
         if final:
-            return beta, passes, True
-    return beta, MAX_PASSES, False
+            return Solved(beta, passes, True, derivs, at)
+    return Solved(beta, MAX_PASSES, False, derivs, at)
 
 
 def moment_pass(
@@ -135,9 +154,16 @@ def moment_pass(
     return MomentSums.merge([lane[0] for lane in lanes])
 
 
-def derivatives(sums: MomentSums, part: int = 0) -> tuple[np.ndarray, float]:
-    """Mean derivatives of f and the weight of wrong rows, from a pass's sums."""
-    return sums.sums[part] / sums.weight[part], float(sums.wrong[part])
+def derivatives(sums: MomentSums, beta: float, part: int = 0) -> tuple[np.ndarray, float, float]:
+    """Mean derivatives of f, the weight of wrong rows and beta, from a pass's sums (a :data:`PassFn` result)."""
+    return sums.sums[part] / sums.weight[part], float(sums.wrong[part]), beta
+
+
+def snapped(logits: np.ndarray) -> Callable[[float], float]:
+    """Where a solver pass is made: beta itself, or for float32 logits the nearest float32 number."""
+    if compute_dtype(logits) == np.float32:
+        return lambda beta: float(np.float32(beta))
+    return float
 
 
 def fit_beta(
@@ -148,8 +174,8 @@ def fit_beta(
     start: float | None,
     bounds: tuple[float, float],
     threads: int | None = None,
-) -> tuple[float, float, bool]:
-    """beta minimising the mean NLL on ``rows`` (weighted): (beta, passes, converged).
+) -> Solved:
+    """beta minimising the mean NLL on ``rows`` (weighted), with its passes and last derivatives.
 
     Without ``start`` a large set is first fitted on subsamples (see the
     module docstring); their passes count by their fraction of the rows.
@@ -157,9 +183,16 @@ def fit_beta(
     n = len(logits) if rows is None else len(rows)
     b_min, b_max = bounds
 
+    snap = snapped(logits)
+
     def on(r, w):
         sel = Selection(rows=r, weights=w)
-        return lambda beta: derivatives(moment_pass(logits, labels, beta, sel, threads))
+
+        def pass_fn(beta):
+            at = snap(beta)
+            return derivatives(moment_pass(logits, labels, at, sel, threads), at)
+
+        return pass_fn
 
     beta, passes = (1.0 if start is None else float(start)), 0.0
     if start is None:
@@ -169,8 +202,8 @@ def fit_beta(
             stride = n // size
             sub = (np.arange(n) if rows is None else rows)[::stride]
             sub_w = None if weights is None else weights[::stride]
-            beta, p, _ = solve(on(sub, sub_w), beta, b_min, b_max, STAGE_ACCEPT)
-            passes += p * len(sub) / n
-            beta = float(np.clip(beta, b_min * 1.0001, b_max / 1.0001))  # let the full data decide bounds
-    beta, p, converged = solve(on(rows, weights), beta, b_min, b_max)
-    return beta, passes + p, converged
+            stage = solve(on(sub, sub_w), beta, b_min, b_max, STAGE_ACCEPT)
+            passes += stage.passes * len(sub) / n
+            beta = float(np.clip(stage.beta, b_min * 1.0001, b_max / 1.0001))  # let the full data decide bounds
+    done = solve(on(rows, weights), beta, b_min, b_max)
+    return Solved(done.beta, passes + done.passes, done.converged, done.derivs, done.at)

@@ -506,15 +506,21 @@ def test_load_fit_refuses_non_json(tmp_path):
 def test_memory_stays_bounded_beyond_the_logits(rng):
     # The solvers and the metrics work in row chunks: their temporaries must not
     # grow with the logits (here 40 MB of float32; a float64 copy would be 80 MB).
+    # A pass holds five 1 MiB scratch arrays per thread (two threads here) and a
+    # few per-row figures (9 bytes per row) and small sums: about 15 MB in all.
     import tracemalloc
 
     z = rng.normal(scale=3.0, size=(5000, 2000)).astype(np.float32)
     y = gumbel_labels(rng, z, 1.5)
     no_bootstrap = FitOptions(bootstrap=0)
-    for fn in (lambda: fit_temperature(z, y), lambda: evaluate(z, y, 1.5), lambda: summarize(z, y, {}, no_bootstrap)):
+    for fn in (
+        lambda: fit_temperature(z, y, threads=2),
+        lambda: evaluate(z, y, 1.5, threads=2),
+        lambda: summarize(z, y, {}, no_bootstrap, threads=2),
+    ):
         tracemalloc.start()
         base = tracemalloc.get_traced_memory()[0]
         fn()
         peak = tracemalloc.get_traced_memory()[1] - base
         tracemalloc.stop()
-        assert peak < 8 * 2**20, peak
+        assert peak < 20 * 2**20, peak

@@ -23,7 +23,7 @@ def definitions(z, beta):
 
 
 def terms(z, y, beta, moments=5, sq=4):
-    buf = sweep._Buffers(len(z), z.shape[1], sweep.compute_dtype(z))
+    buf = sweep._Buffers(len(z), z.shape[1], sweep.compute_dtype(z))  # noqa: SLF001
     return sweep.exp_terms(z, y, beta, moments, sq, buf)
 
 
