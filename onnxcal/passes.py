@@ -42,13 +42,18 @@ from .tempfit import (
     taylor_root,
 )
 
-CHECK_FLOAT32 = 1e-8
+CHECK_FLOAT32 = 1e-7
 """How far (relative) pass 3 may put the fit part's optimum from the fit, for float32 logits.
 
-Pass 2 (rows gathered from the fit part) and pass 3 (all rows) round the
-float32 exponentials of a row alike only up to the chunk layout of the
-row sums, and the noise this leaves in f' moves its root by about 1e-9
-(relative) on 750 000 rows; float64 logits are checked to ACCEPT.
+For float32 logits the fit part's beta is taken to the nearest float32
+number (up to 3e-8 away, a ten-thousandth of its standard error on a
+million rows), so that pass 3 takes its exponentials at exactly that
+beta and needs no correction terms (see :mod:`onnxcal.sweep`); the
+metrics of both parts and the T reported for the fit part are at that
+beta. Besides, pass 2 (rows gathered from the fit part) and pass 3 (all
+rows) round a row's float32 exponentials alike only up to the chunk
+layout of the row sums, which moves the root of f' by about 1e-9 on
+750 000 rows. Float64 logits are used as they are and checked to ACCEPT.
 """
 BORROWED_ERROR = 0.1
 """Relative error assumed of the derivatives the refit borrows from pass 2 (see :func:`_refit`)."""
@@ -139,7 +144,7 @@ def fit_and_score(
     fit_on = fit_rows if holdout else None
     tol = CHECK_FLOAT32 if compute_dtype(logits) == np.float32 else ACCEPT
     fit = fit_beta(logits, labels, fit_on, None, None, bounds, threads)
-    beta, passes, converged = fit.beta, fit.passes, fit.converged
+    beta, passes, converged = snapped(logits)(fit.beta), fit.passes, fit.converged
     high = fit.derivs if fit.derivs is not None and len(fit.derivs) == ORDER else np.zeros(ORDER)
     order = TERMS  # the first three derivatives on all rows: the check, the refit's step, the expansion
     for _ in range(MAX_PASSES):
@@ -160,7 +165,7 @@ def fit_and_score(
         if _settled(beta, check, bounds, tol):
             break
         redo = solve(_passes(logits, labels, fit_on, threads, (check, wrong, beta)), beta, *bounds)
-        beta, converged, passes = redo.beta, redo.converged, passes + redo.passes - 1
+        beta, converged, passes = snapped(logits)(redo.beta), redo.converged, passes + redo.passes - 1
         if redo.derivs is not None and len(redo.derivs) == ORDER:
             high = redo.derivs
     after = [score_metrics(scores, p, masks[p], None) for p in range(parts)]
