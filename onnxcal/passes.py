@@ -22,7 +22,6 @@ logits again only when that step's error bound is too large.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from math import factorial
 
 import numpy as np
 
@@ -55,8 +54,6 @@ rows) round a row's float32 exponentials alike only up to the chunk
 layout of the row sums, which moves the root of f' by about 1e-9 on
 750 000 rows. Float64 logits are used as they are and checked to ACCEPT.
 """
-BORROWED_ERROR = 0.1
-"""Relative error assumed of the derivatives the refit borrows from pass 2 (see :func:`_refit`)."""
 
 
 @dataclass(frozen=True)
@@ -101,22 +98,15 @@ def _refit(logits, labels, sums: MomentSums, beta: float, high: np.ndarray, boun
     """The refit on all rows from pass 3's sums and pass 2's higher derivatives.
 
     Pass 3 gives the first three derivatives of f over all rows at the fit
-    part's beta; the fourth and fifth are the fit part's means from pass 2,
-    a step away. The terms they make are small (the step is about the
-    difference between the two optima, 3e-5 of beta on a million rows of
-    1000 classes, 1e-3 with 4 classes), so
-    the step is taken without another pass when those terms, assumed
-    BORROWED_ERROR wrong, stay below ACCEPT along with the series' own bound.
+    part's beta; the fourth and fifth are the fit part's, borrowed from pass
+    2 (see :func:`onnxcal.tempfit.next_beta`). Their terms are small (the
+    step is about the difference between the two optima, 3e-5 of beta on a
+    million rows of 1000 classes, 1e-3 with 4 classes), so the step is
+    usually final without reading the logits again.
     """
     own = sums.sums.sum(axis=0) / sums.weight.sum()
-    derivs = np.concatenate([own, high[len(own) :]])
-    done = solve(_passes(logits, labels, None, threads, (derivs, float(sums.wrong.sum()), beta)), beta, *bounds)
-    d = done.beta - beta
-    borrowed = sum(abs(derivs[j] * d**j / factorial(j)) for j in range(len(own), len(derivs)))
-    if done.passes == 1 and BORROWED_ERROR * borrowed > ACCEPT * done.beta * max(float(derivs[1]), 1e-300):
-        again = solve(_passes(logits, labels, None, threads), done.beta, *bounds)
-        return Solved(again.beta, 1 + again.passes, again.converged)
-    return done
+    first = (own, float(sums.wrong.sum()), beta)
+    return solve(_passes(logits, labels, None, threads, first), beta, *bounds, borrowed=high)
 
 
 def fit_and_score(

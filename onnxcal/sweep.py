@@ -19,8 +19,9 @@ buys nothing but a little precision in the higher cumulants.
 Threads. Chunks are dealt to ``LANES`` lanes (chunk i to lane i mod
 LANES), each lane with its own float64 sums, merged in lane order, so the
 result does not depend on how many threads ran the lanes. numpy releases
-the GIL in the exponential, the BLAS row sums and the other large
-kernels, so two threads use two cores.
+the GIL in the exponential, the BLAS row and column sums and the other
+large kernels, so two threads use two cores; BLAS itself is held to one
+thread meanwhile (:func:`one_blas_thread`).
 
 Cumulants. With p = softmax(beta z) and L(beta) = log sum_k exp(beta z_k),
 the j-th derivative of L is the j-th cumulant of z under p; these are the
@@ -34,7 +35,9 @@ kappa_n = mu_n - sum_{j=1}^{n-1} C(n-1, j-1) kappa_j mu_{n-j}
 from __future__ import annotations
 
 import os
+import threading
 from collections.abc import Callable, Sequence
+from contextlib import nullcontext
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from math import comb
@@ -200,18 +203,29 @@ def cumulants_from_moments(mu: np.ndarray) -> np.ndarray:
     return kappa
 
 
+_ONES: dict = {}
+
+
+def _ones(k: int, dtype: np.dtype) -> np.ndarray:
+    key = (k, np.dtype(dtype))
+    if key not in _ONES:
+        _ONES[key] = np.ones(k, dtype)
+    return _ONES[key]
+
+
 def _power_sums(w, x, count: int, first, scratch, out) -> np.ndarray:
     """Row sums of w x^j, j = 0..count, as float64 rows (count + 1, rows).
 
     ``first`` receives w x, ``scratch`` the higher powers (either may be
     ``w`` itself when it is not needed afterwards); ``out`` takes the sums.
     """
-    np.einsum("ij->i", w, out=out[0])
+    ones = _ones(w.shape[1], w.dtype)
+    np.matmul(w, ones, out=out[0])
     prev = w
     for j in range(1, count + 1):
         dest = first if j == 1 else scratch
         np.multiply(prev, x, out=dest)
-        np.einsum("ij->i", dest, out=out[j])
+        np.matmul(dest, ones, out=out[j])
         prev = dest
     return out.astype(np.float64)
 
@@ -387,12 +401,13 @@ def run_pass(
             for consumer in lanes[lane]:
                 consumer.add(chunk, terms)
 
-    if threads == 1:
-        work(0)
-    else:
-        with ThreadPoolExecutor(threads) as pool:
-            for f in [pool.submit(work, t) for t in range(threads)]:
-                f.result()
+    with one_blas_thread() if threading.current_thread() is threading.main_thread() else nullcontext():
+        if threads == 1:
+            work(0)
+        else:
+            with ThreadPoolExecutor(threads) as pool:
+                for f in [pool.submit(work, t) for t in range(threads)]:
+                    f.result()
     return lanes
 
 
@@ -498,9 +513,9 @@ class ScoreSums:
         inv = (w / total).astype(e.dtype)
         for p in range(self.parts):
             coef = inv if self.parts == 1 else np.where(part == p, inv, e.dtype.type(0))
-            col = np.einsum("c,ck->k", coef, e)
+            col = coef @ e
             if terms.eps:  # p = e (1 + eps x) / total
-                col += e.dtype.type(terms.eps) * np.einsum("c,ck->k", coef, terms.ex)
+                col += e.dtype.type(terms.eps) * (coef @ terms.ex)
             self.column[p * k : (p + 1) * k] += col
         lo = float(total.min()) * self.first * (1.0 - 1e-5)  # p > 1/M needs e > total / M, give or take eps x
         cand = np.flatnonzero(e.ravel() > e.dtype.type(lo))

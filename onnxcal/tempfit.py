@@ -44,6 +44,11 @@ STEP_TOL = 1e-7
 MAX_PASSES = 60
 STAGE_ROWS = (10_000, 100_000)
 STAGE_FACTOR = 4  # a stage of m rows runs when the set has more than STAGE_FACTOR * m rows
+BORROWING = 3
+"""Derivatives the first full-set pass takes after a subsample stage (the stage's last pass gives
+the rest; their terms, small a step from the optimum, count in the bound)."""
+BORROW_FROM_CLASSES = 32
+"""Below this many classes per row the two products a pass saves by borrowing cost next to nothing."""
 
 PassFn = Callable[[float], tuple[np.ndarray, float, float]]
 """beta -> (mean derivatives [f', f'', ...] at beta', weight of rows whose label is not the top logit, beta').
@@ -89,18 +94,36 @@ def _newton_step(beta: float, g: float, h: float, lo: float, hi: float, b_min: f
     return new
 
 
-def next_beta(beta: float, derivs: np.ndarray, lo: float, hi: float, b_min: float, b_max: float, accept: float):
-    """The next iterate and whether it is final (its error bound is below ``accept``)."""
+BORROWED_ERROR = 0.1
+"""Relative error assumed of derivatives borrowed from a nearby pass (see :func:`next_beta`)."""
+
+
+def next_beta(
+    beta: float, derivs: np.ndarray, lo: float, hi: float, b_min: float, b_max: float, accept: float, own: int = 0
+):
+    """The next iterate and whether it is final (its error bound is below ``accept``).
+
+    ``derivs[own:]`` (when ``own``) were borrowed from a pass at a nearby
+    beta or over a subsample: their terms, assumed BORROWED_ERROR wrong,
+    count in the bound.
+    """
     g, h = float(derivs[0]), float(derivs[1])
     new = _newton_step(beta, g, h, lo, hi, b_min, b_max)
     if abs(np.log(new / beta)) <= 0.05 and h > 0:
         root = taylor_root(derivs)
         if root is not None:
             d, bound = root
+            if own:
+                bound += BORROWED_ERROR * borrowed_terms(derivs, own, d) / h
             cand = beta + d
             if lo < cand < hi and abs(np.log(cand / beta)) <= 0.1:
                 return cand, bound <= accept * cand
     return new, abs(np.log(new / beta)) <= STEP_TOL
+
+
+def borrowed_terms(derivs: np.ndarray, own: int, d: float) -> float:
+    """sum_{j >= own} |derivs[j] d^j / j!|: the terms of f' that borrowed derivatives make."""
+    return sum(abs(float(derivs[j]) * d**j / factorial(j)) for j in range(own, len(derivs)))
 
 
 @dataclass(frozen=True)
@@ -115,18 +138,27 @@ class Solved:
     at: float | None = None
 
 
-def solve(pass_fn: PassFn, beta0: float, b_min: float, b_max: float, accept: float = ACCEPT) -> Solved:
+def solve(
+    pass_fn: PassFn, beta0: float, b_min: float, b_max: float, accept: float = ACCEPT,
+    borrowed: np.ndarray | None = None,
+) -> Solved:
     """Minimise f from ``beta0``.
 
     On the first pass, if every row's label is the (first) top logit,
     f' < 0 for every beta (the NLL keeps falling as beta grows) and
-    ``b_max`` is the answer.
+    ``b_max`` is the answer. When a pass gives fewer derivatives than
+    ``borrowed`` (from a nearby pass), the higher ones are taken from it.
     """
     beta = float(np.clip(beta0, b_min, b_max))
     lo, hi = b_min, b_max
     derivs, at = None, None
     for passes in range(1, MAX_PASSES + 1):
         derivs, wrong, beta = pass_fn(beta)
+        own = len(derivs)
+        if borrowed is not None and own < len(borrowed):
+            derivs = np.concatenate([derivs, borrowed[own:]])
+        else:
+            own = 0
         at = beta
         g = float(derivs[0])
         if passes == 1 and wrong == 0 and g < 0:
@@ -137,18 +169,18 @@ def solve(pass_fn: PassFn, beta0: float, b_min: float, b_max: float, accept: flo
             hi = beta
         else:
             lo = beta
-        beta, final = next_beta(beta, derivs, lo, hi, b_min, b_max, accept)
+        beta, final = next_beta(beta, derivs, lo, hi, b_min, b_max, accept, own)
         if final:
             return Solved(beta, passes, True, derivs, at)
     return Solved(beta, MAX_PASSES, False, derivs, at)
 
 
 def moment_pass(
-    logits, labels, beta: float, selection: Selection = ALL_ROWS, threads: int | None = None
+    logits, labels, beta: float, selection: Selection = ALL_ROWS, threads: int | None = None, order: int = ORDER
 ) -> MomentSums:
-    """Weighted sums of the NLL's derivatives at beta (one part)."""
+    """Weighted sums of the NLL's first ``order`` derivatives at beta (one part)."""
     lanes = run_pass(
-        logits, labels, beta, lambda: (MomentSums(1, ORDER),), selection=selection, moments=ORDER,
+        logits, labels, beta, lambda: (MomentSums(1, order),), selection=selection, moments=order,
         threads=threads,
     )
     return MomentSums.merge([lane[0] for lane in lanes])
@@ -185,16 +217,18 @@ def fit_beta(
 
     snap = snapped(logits)
 
-    def on(r, w):
+    def on(r, w, first_order=ORDER):
         sel = Selection(rows=r, weights=w)
+        orders = [first_order]
 
         def pass_fn(beta):
             at = snap(beta)
-            return derivatives(moment_pass(logits, labels, at, sel, threads), at)
+            order = orders.pop() if orders else ORDER
+            return derivatives(moment_pass(logits, labels, at, sel, threads, order), at)
 
         return pass_fn
 
-    beta, passes = (1.0 if start is None else float(start)), 0.0
+    beta, passes, stage = (1.0 if start is None else float(start)), 0.0, None
     if start is None:
         for size in STAGE_ROWS:
             if n <= STAGE_FACTOR * size:
@@ -205,5 +239,10 @@ def fit_beta(
             stage = solve(on(sub, sub_w), beta, b_min, b_max, STAGE_ACCEPT)
             passes += stage.passes * len(sub) / n
             beta = float(np.clip(stage.beta, b_min * 1.0001, b_max / 1.0001))  # let the full data decide bounds
-    done = solve(on(rows, weights), beta, b_min, b_max)
+    wide = logits.shape[1] >= BORROW_FROM_CLASSES
+    if wide and stage is not None and stage.derivs is not None and len(stage.derivs) == ORDER:
+        # the first full-set pass takes three derivatives; the fourth and fifth come from the last stage
+        done = solve(on(rows, weights, BORROWING), beta, b_min, b_max, borrowed=stage.derivs)
+    else:
+        done = solve(on(rows, weights), beta, b_min, b_max)
     return Solved(done.beta, passes + done.passes, done.converged, done.derivs, done.at)
