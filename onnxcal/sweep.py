@@ -37,8 +37,8 @@ from __future__ import annotations
 import os
 import threading
 from collections.abc import Callable, Sequence
-from contextlib import nullcontext
 from concurrent.futures import ThreadPoolExecutor
+from contextlib import nullcontext
 from dataclasses import dataclass
 from math import comb
 from typing import Protocol

@@ -32,5 +32,5 @@ def test_weighted_equal_mass_bins_count_a_row_as_often_as_drawn(rng):
     counts = rng.integers(0, 3, 500)
     weighted = equal_mass_bins(conf, correct, 10, counts)
     repeated = equal_mass_bins(np.repeat(conf, counts), np.repeat(correct, counts), 10)
-    for a, b in zip(weighted, repeated):
+    for a, b in zip(weighted, repeated, strict=True):
         np.testing.assert_allclose(a, b, rtol=1e-12)

@@ -1,7 +1,6 @@
 """Bootstrap replicates from the expansion at the fit, against exact refits."""
 
 import numpy as np
-import pytest
 
 from onnxcal import expansion, resample
 from onnxcal.binning import _binned
@@ -73,12 +72,12 @@ def test_prefix_bins_and_quantiles_are_exact(rng):
     correct = (rng.random(n) < v).astype(np.float64)
     sums = expansion._Prefix(u, v, c, correct, delta * (1 + 1e-9))
     inner = np.linspace(0, 1, 16)[1:-1]
-    for got, want in zip(sums.bins(inner), _binned(np.searchsorted(inner, v), v, correct, 15, c)):
+    for got, want in zip(sums.bins(inner), _binned(np.searchsorted(inner, v), v, correct, 15, c), strict=True):
         np.testing.assert_allclose(got, want, rtol=1e-11, atol=1e-9)
     qs = np.linspace(0, 1, 16)
     edges = sums.quantiles(qs)
     np.testing.assert_array_equal(edges, np.quantile(np.repeat(v, c.astype(int)), qs))
     mass = sums.bins(edges[1:-1])
     want = _binned(np.searchsorted(edges[1:-1], v), v, correct, 15, c)
-    for got, w in zip(mass, want):
+    for got, w in zip(mass, want, strict=True):
         np.testing.assert_allclose(got, w, rtol=1e-11, atol=1e-9)
