@@ -124,19 +124,19 @@ def _data_spec(data: DataSource) -> DataSpec:
     return spec
 
 
-def _load_data(model, data: DataSource, require_labels: bool = True, batch_size: int = _capture.DEFAULT_BATCH) -> Dataset:
+def _load_data(model, data: DataSource, require_labels: bool = True, batch_size: int | None = None) -> Dataset:
     """Load the set for ``model``'s inputs (checked against them).
 
     A model whose declared input shapes need more memory per batch than is
     available is refused first, before any data file is opened.
     """
-    _capture.check_input_memory(model, batch_size)
+    _capture.check_input_memory(model, batch_size or _capture.DEFAULT_BATCH)
     init = {i.name for i in model.graph.initializer}
     specs = [graph.tensor_spec(vi) for vi in model.graph.input if vi.name not in init]
     return load_dataset(_data_spec(data), specs, require_labels=require_labels)
 
 
-def _run_options(batch_size: int, threads: int, optimization: str, provider: str) -> RunOptions:
+def _run_options(batch_size: int | None, threads: int, optimization: str, provider: str) -> RunOptions:
     return _capture.check_run_options(RunOptions(batch_size, threads, optimization, provider))
 
 
@@ -147,7 +147,7 @@ def capture(
     *,
     out: str | os.PathLike | None = None,
     output: str | None = None,
-    batch_size: int = _capture.DEFAULT_BATCH,
+    batch_size: int | None = None,
     threads: int = 0,
     optimization: str = "all",
     provider: str = _capture.CPU,
@@ -174,7 +174,9 @@ def capture(
         and the returned capture's logits are a memory map of it.
     output : str, optional
         The class-score output (the likeliest float output by default).
-    batch_size : int, default 64
+    batch_size : int, optional
+        Samples per onnxruntime call; by default 64, doubled while onnxcal's
+        own work per call costs more than 5 % of the call (a very small model).
     threads : int, default 0
         onnxruntime intra-op threads (0: its default).
     optimization : str, default "all"
@@ -238,7 +240,7 @@ def _read_and_capture(
     """Read the model (checked on the first rows), check the labels against it, capture its logits."""
     if dataset.labels is None:
         raise OnnxcalError(f"'{dataset.source}' has no labels", "add a 'labels' array")
-    _capture.check_input_memory(model, run.batch_size, dataset)
+    _capture.check_input_memory(model, run.batch_size or _capture.DEFAULT_BATCH, dataset)
     read = _reading.read_model(model, dataset, output=output, holds=holds, activation=activation, run=run,
                                score_columns=columns)
     site = read.site
@@ -944,7 +946,7 @@ def verify(
     latency_runs: int = DEFAULT_LATENCY_RUNS,
     junit: str | os.PathLike | None = None,
     force: bool = False,
-    batch_size: int = _capture.DEFAULT_BATCH,
+    batch_size: int | None = None,
     threads: int = 0,
     optimization: str = "all",
     provider: str = _capture.CPU,
@@ -1347,7 +1349,7 @@ def calibrate(
     activation: str | None = None,
     compute_dtype: str | None = None,
     fold: bool = False,
-    batch_size: int = _capture.DEFAULT_BATCH,
+    batch_size: int | None = None,
     threads: int = 0,
     optimization: str = "all",
     provider: str = _capture.CPU,

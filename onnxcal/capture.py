@@ -28,6 +28,7 @@ import contextlib
 import json
 import os
 import re
+import time
 import warnings
 import zipfile
 from collections.abc import Callable, Iterator, Mapping, Sequence
@@ -51,8 +52,17 @@ ProgressFn = Callable[[str, int, int], None]
 """Called as ``progress(description, samples_done, samples_total)`` after each batch."""
 
 DEFAULT_BATCH = 64
+"""Samples per call to start from when no batch size is given (see :func:`run_batches`)."""
 RELEASE_BYTES = 16 << 20
 """Memory-mapped input pages are handed back to the kernel every this many bytes."""
+BLOCK_BYTES = 1 << 20
+"""Inputs are read, cast and checked, and outputs handed on, this many bytes of inputs at a time."""
+OVERHEAD = 0.05
+"""An automatic batch size doubles while onnxcal's own time per call exceeds this share of the call."""
+AUTO_BATCH_BYTES = 8 << 20
+"""An automatic batch size stops growing before one batch of inputs exceeds this."""
+AUTO_BATCH_ROWS = 1 << 14
+"""... or this many samples."""
 CPU = "CPUExecutionProvider"
 OPTIMIZATION_LEVELS = {
     "disable": "ORT_DISABLE_ALL",
@@ -69,8 +79,10 @@ class RunOptions:
 
     Attributes
     ----------
-    batch_size : int
-        Samples per call (a fixed batch dim that cannot be freed overrides it).
+    batch_size : int or None
+        Samples per call (a fixed batch dim that cannot be freed overrides
+        it); None chooses it: :data:`DEFAULT_BATCH`, doubled while onnxcal's
+        own work per call costs more than :data:`OVERHEAD` of the call.
     threads : int
         Intra-op threads; 0 leaves onnxruntime's default (one per core).
     optimization : str
@@ -79,7 +91,7 @@ class RunOptions:
         Execution provider; the CPU provider backs up any other.
     """
 
-    batch_size: int = DEFAULT_BATCH
+    batch_size: int | None = None
     threads: int = 0
     optimization: str = "all"
     provider: str = CPU
@@ -113,7 +125,8 @@ def onnxruntime():
 def check_run_options(options: RunOptions) -> RunOptions:
     """Validate run options, with errors that name the option and its range."""
     ort = onnxruntime()
-    check_range(options.batch_size, 1, MAX_BATCH, "--batch-size", "a number of samples")
+    if options.batch_size is not None:  # None: automatic (see ``BatchSizer``)
+        check_range(options.batch_size, 1, MAX_BATCH, "--batch-size", "a number of samples")
     check_range(options.threads, 0, max_threads(), "--threads",
                 "a number of threads (0: onnxruntime's default, one per core)")
     if options.optimization not in OPTIMIZATION_LEVELS:
@@ -407,7 +420,8 @@ class RunPlan:
     """A session and how to batch for it.
 
     ``mode`` is ``"batched"``, ``"freed"`` or ``"fixed"`` (see :class:`CaptureMeta`);
-    ``pad`` is the fixed batch size that short batches are padded to.
+    ``pad`` is the fixed batch size that short batches are padded to; with
+    ``grow`` the batch size ``step`` is automatic (see :func:`run_batches`).
     """
 
     session: object
@@ -416,6 +430,7 @@ class RunPlan:
     step: int
     pad: int | None
     mode: str
+    grow: bool = False
 
 
 def _dtypes(model: onnx.ModelProto, session) -> dict[str, str | None]:
@@ -478,19 +493,21 @@ def plan_run(
 ) -> RunPlan:
     """Open a session for ``model`` and decide the batching (see the module docstring)."""
     options = options or RunOptions()
-    check_input_memory(model, options.batch_size, dataset)
+    grow = options.batch_size is None
+    batch = DEFAULT_BATCH if grow else options.batch_size
+    check_input_memory(model, batch, dataset)
     session = make_session(model, options)
     dtypes = _dtypes(model, session)
     fixed = _fixed_batch(model)
     if fixed is None:
-        return RunPlan(session, tuple(names), dtypes, options.batch_size, None, "batched")
+        return RunPlan(session, tuple(names), dtypes, batch, None, "batched", grow)
     native = RunPlan(session, tuple(names), dtypes, fixed, fixed, "fixed")
-    if options.batch_size <= fixed or dataset.n <= fixed:
+    if batch <= fixed or dataset.n <= fixed:
         return native
-    probe = min(options.batch_size, dataset.n)
+    probe = min(batch, dataset.n)
     try:
         freed = RunPlan(make_session(free_batch_dim(model, fixed), options), tuple(names), dtypes,
-                        options.batch_size, None, "freed")
+                        batch, None, "freed", grow)
         got = run_batch(freed, dataset, 0, probe)
         reason = _disagreement(got, _run_span(native, dataset, 0, probe), names, probe, fixed)
     except OnnxcalError as exc:
@@ -629,6 +646,57 @@ def run_batch(
     return [np.asarray(o)[:count] if plan.pad is not None else np.asarray(o) for o in outs]
 
 
+def _run_block(
+    plan: RunPlan, dataset: Dataset, feed: Mapping[str, np.ndarray], start: int, step: int, timed: bool
+) -> tuple[list[np.ndarray], float]:
+    """Run a block's inputs ``step`` samples per call: the outputs concatenated, and
+    (when ``timed``) the seconds spent in the runtime."""
+    count = len(next(iter(feed.values())))
+    names, items, run = list(plan.names), list(feed.items()), plan.session.run
+    got: list[list] = []
+    spent, s = 0.0, 0
+    try:
+        for s in range(0, count, step):
+            batch = {k: v[s : s + step] for k, v in items}
+            if plan.pad is not None and count - s < plan.pad:  # pad a short batch of a fixed-batch model
+                batch = {k: np.concatenate([v, np.repeat(v[-1:], plan.pad - len(v), axis=0)]) for k, v in batch.items()}
+            if timed:
+                t0 = time.perf_counter()
+                got.append(run(names, batch))
+                spent += time.perf_counter() - t0
+            else:
+                got.append(run(names, batch))
+    except Exception as exc:  # onnxruntime raises its own exception types
+        rows = dataset.row_numbers()
+        raise OnnxcalError(
+            f"onnxruntime failed on rows {int(rows[start + s])}..{int(rows[start + min(s + step, count) - 1])} of "
+            f"'{dataset.source}': {first_line(exc)}",
+            "check that the data matches the model's inputs",
+        ) from exc
+    outs = []
+    for i in range(len(names)):
+        parts = [np.asarray(g[i]) for g in got]
+        if plan.pad is not None:
+            parts[-1] = parts[-1][: count - (len(got) - 1) * step]
+        outs.append(parts[0] if len(parts) == 1 else np.concatenate(parts))
+    return outs, spent
+
+
+def _grown(step: int, wall: float, spent: float, row_bytes: float) -> int | None:
+    """The next automatic batch size, or None to keep ``step`` from now on.
+
+    ``wall`` is a block's whole time (reading, checking, running, handing
+    on), ``spent`` its time in the runtime: their difference is onnxcal's
+    own work, which must stay below OVERHEAD of the runtime's.
+    """
+    if wall - spent <= OVERHEAD * spent:
+        return None
+    bigger = 2 * step
+    if bigger > AUTO_BATCH_ROWS or bigger * row_bytes > AUTO_BATCH_BYTES:
+        return None
+    return bigger
+
+
 def run_batches(
     plan: RunPlan,
     dataset: Dataset,
@@ -637,26 +705,51 @@ def run_batches(
     description: str = "running model",
     watch: InputWatch | None = None,
 ) -> Iterator[tuple[int, int, list[np.ndarray]]]:
-    """Yield ``(start, stop, outputs)`` batch by batch over the selected rows.
+    """Yield ``(start, stop, outputs)`` block by block over the selected rows.
 
-    ``watch`` counts the inputs' rows holding NaN or Inf (flushed after the last batch).
+    A block is as many whole batches as make about :data:`BLOCK_BYTES` of
+    inputs (at least one batch): its inputs are read and cast in one copy
+    and handed to ``watch`` (which counts rows holding NaN or Inf; flushed
+    after the last block), the model runs on views of them one batch per
+    call, and the block's outputs come back concatenated. So onnxcal's own
+    work per call is a slice and a few Python operations, whatever the
+    batch size; the rest is per block.
 
-    After each batch has been consumed ``progress`` is called; the input
+    With ``plan.grow`` the batch size is automatic: after each block,
+    while onnxcal's own time (the block's time outside the runtime, the
+    consumer's included) exceeds :data:`OVERHEAD` of the runtime's, the
+    batch size doubles (up to :data:`AUTO_BATCH_ROWS` samples or
+    :data:`AUTO_BATCH_BYTES` of inputs); the first time it does not, it
+    stays. A model whose calls take more than a few microseconds settles
+    at :data:`DEFAULT_BATCH` after the first block.
+
+    After each block has been consumed ``progress`` is called; the input
     pages of consumed rows are released (:meth:`Dataset.release`) whenever
     they add up to :data:`RELEASE_BYTES`, so the resident size stays bounded
-    without paying a page-table flush on every small batch.
+    without paying a page-table flush on every small block.
     """
     n = dataset.n
-    row_bytes = dataset.mapped_row_bytes
-    released = 0
-    for start in range(0, n, plan.step):
-        stop = min(start + plan.step, n)
-        yield start, stop, run_batch(plan, dataset, start, stop, watch)
-        if row_bytes and ((stop - released) * row_bytes >= RELEASE_BYTES or stop == n):
+    mapped = dataset.mapped_row_bytes
+    released, start, step, block, grow = 0, 0, plan.step, plan.step, plan.grow
+    while start < n:
+        t0 = time.perf_counter()
+        stop = min(start + block, n)
+        feed = dataset.batch(start, stop, plan.dtypes)
+        if watch is not None:
+            watch.add(feed, start, stop)
+        outs, spent = _run_block(plan, dataset, feed, start, step, grow)
+        yield start, stop, outs
+        if mapped and ((stop - released) * mapped >= RELEASE_BYTES or stop == n):
             dataset.release(released, stop)
             released = stop
         if progress is not None:
             progress(description, stop, n)
+        row_bytes = sum(v.nbytes for v in feed.values()) / (stop - start)
+        if grow and start > 0:  # the first block (one batch) pays the runtime's warm-up
+            bigger = _grown(step, time.perf_counter() - t0, spent, row_bytes)
+            step, grow = (bigger, True) if bigger else (step, False)
+        block = max(step, int(BLOCK_BYTES // max(row_bytes, 1.0)) // step * step)
+        start = stop
     if watch is not None:
         watch.flush()
 

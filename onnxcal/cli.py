@@ -265,9 +265,11 @@ _SHARED_OPTIONS = (
     _option("dtype", Optional[str], None, "--dtype", "Image: input dtype (default: the model's).", metavar="DTYPE"),
     _option("interpolation", Optional[str], None, "--interpolation",
             "Image: resize filter: nearest, bilinear (default), bicubic, lanczos.", metavar="FILTER"),
-    _option("batch_size", int, DEFAULT_BATCH, "--batch-size", "Samples per onnxruntime call (1 to 16777216)."),
+    _option("batch_size", Optional[int], None, "--batch-size",
+            f"Samples per onnxruntime call, 1 to 16777216 (default: {DEFAULT_BATCH}, doubled while onnxcal's own "
+            "work per call costs more than 5 % of the call).", min=1, metavar="N"),
     _option("threads", int, 0, "--threads",
-            "onnxruntime intra-op threads (0: its default; at most 4 per core, or 64)."),
+            "onnxruntime intra-op threads (0: its default; at most 4 per core, or 64).", min=0),
     _option("optimization", str, "all", "--optimization",
             f"Graph optimisation level: {', '.join(OPTIMIZATION_LEVELS)}."),
     _option("provider", str, CPU, "--provider", "onnxruntime execution provider."),

@@ -43,7 +43,10 @@ from . import __version__, resample
 from ._files import atomic_write_bytes, require_file
 from .errors import OnnxcalError, first_line
 from .metrics import DEFAULT_BINS, Metrics, evaluate, iter_chunks, sigmoid
+from .passes import fit_and_score
 from .scaling import METHODS_FOR, MULTILABEL_MODES, Scaling, check_scaling, is_far_from_one, kind_of
+from .sweep import one_blas_thread
+from .tempfit import fit_beta
 
 T_MIN = 0.01
 T_MAX = 100.0
@@ -342,6 +345,7 @@ def fit_temperature(
     rows: np.ndarray | None = None,
     weights: np.ndarray | None = None,
     start: float | None = None,
+    threads: int | None = None,
 ) -> FitResult:
     """Fit T minimising the mean NLL of softmax(logits / T).
 
@@ -357,6 +361,9 @@ def fit_temperature(
         One weight per fitted row (bootstrap counts).
     start : float, optional
         Starting T (e.g. the fit on all samples, for a bootstrap replicate).
+    threads : int, optional
+        Threads for the passes over the logits (see
+        :func:`onnxcal.sweep.default_threads`); the result does not depend on it.
 
     Returns
     -------
@@ -374,15 +381,11 @@ def fit_temperature(
     >>> round(fit_temperature(z, np.array([0, 1, 1, 0])).temperature, 1)
     100.0
     """
-    n_rows = len(logits) if rows is None else len(rows)
-
-    def pass_fn(beta, first, r, w):
-        return _softmax_pass(logits, labels, beta, r, w, count_ties=first)
-
-    beta, passes, converged = _solve_beta(
-        pass_fn, n_rows, rows, weights, None if start is None else 1.0 / start, 1
+    done = fit_beta(
+        logits, labels, rows, weights, None if start is None else 1.0 / start, (1.0 / T_MAX, 1.0 / T_MIN),
+        threads,
     )
-    return _temperature_result(beta, passes, converged, "multiclass")
+    return _temperature_result(np.array([done.beta]), done.passes, done.converged, "multiclass")
 
 
 def fit_sigmoid_temperature(
@@ -745,11 +748,40 @@ class FitSummary:
         }
 
 
+def _fit_and_evaluate(logits, labels, options, fit_rows, eval_rows):
+    """Fit on the fit part, score both parts before and after, refit on all (any method)."""
+    if fit_rows is eval_rows:
+        result = fit_scaling(logits, labels, options)
+        before = evaluate(logits, labels, 1.0, options.n_bins)
+        after = evaluate(logits, labels, result.scaling, options.n_bins)
+        return result, result, ((before,), (after,))
+    part = fit_scaling(logits, labels, options, rows=fit_rows)
+    scores = tuple(
+        tuple(evaluate(logits, labels, s, options.n_bins, rows=rows) for rows in (fit_rows, eval_rows))
+        for s in (1.0, part.scaling)
+    )
+    return part, fit_scaling(logits, labels, options, start=part.scaling), scores
+
+
+def _temperature_passes(logits, labels, options, fit_rows, eval_rows, threads):
+    """The same for a multiclass temperature, in three passes (see :mod:`onnxcal.passes`)."""
+    scored = fit_and_score(
+        logits, labels, fit_rows, eval_rows, options.n_bins, (1.0 / T_MAX, 1.0 / T_MIN), options.bootstrap > 0,
+        threads,
+    )
+    part, full = (
+        _temperature_result(np.array([s.beta]), s.passes, s.converged, "multiclass") for s in (scored.part, scored.full)
+    )
+    return part, full, (tuple(scored.before), tuple(scored.after)), scored.expansion
+
+
 def summarize(
     logits: np.ndarray,
     labels: np.ndarray,
     capture_meta: dict,
     options: FitOptions = FitOptions(),
+    *,
+    threads: int | None = None,
 ) -> FitSummary:
     """Fit on the fit part, score on the held-out part, bootstrap, refit on all.
 
@@ -760,40 +792,49 @@ def summarize(
     capture_meta : dict
         Stored with the summary.
     options : FitOptions
+    threads : int, optional
+        Threads for the passes over the logits and the bootstrap (default:
+        the cores available); the result does not depend on it.
 
     Returns
     -------
     FitSummary
     """
-    resolve_kind(logits, labels, options)
+    with one_blas_thread():
+        return _summarize(logits, labels, capture_meta, options, threads)
+
+
+def _summarize(logits, labels, capture_meta, options, threads) -> FitSummary:
+    kind = resolve_kind(logits, labels, options)
     n = len(logits)
     notes, warnings = [], data_warnings(labels, logits.shape[1])
     if options.holdout > 0:
         fit_rows, eval_rows = resample.split_holdout(labels, options.holdout, options.seed)
-        part = fit_scaling(logits, labels, options, rows=fit_rows)
-        before = evaluate(logits, labels, 1.0, options.n_bins, rows=eval_rows)
-        after = evaluate(logits, labels, part.scaling, options.n_bins, rows=eval_rows)
-        fit_part = {
-            "before": evaluate(logits, labels, 1.0, options.n_bins, rows=fit_rows),
-            "after": evaluate(logits, labels, part.scaling, options.n_bins, rows=fit_rows),
-        }
+    else:
+        fit_rows = eval_rows = np.arange(n)
+    if kind == "multiclass" and options.method == "temperature":
+        part, result, scores, expansion = _temperature_passes(logits, labels, options, fit_rows, eval_rows, threads)
+    else:
+        part, result, scores = _fit_and_evaluate(logits, labels, options, fit_rows, eval_rows)
+        expansion = None
+    if options.holdout > 0:
+        (fit_before, before), (fit_after, after) = scores
+        fit_part = {"before": fit_before, "after": fit_after}
         basis = "held-out"
         notes.append(
             f"headline figures are on {len(eval_rows)} held-out samples ({options.holdout:g} of the set, "
             f"stratified, seed {options.seed}), calibrated with the fit on the other {len(fit_rows)}"
         )
-        result = fit_scaling(logits, labels, options, start=part.scaling)
         notes.append(f"the parameters baked in are refitted on all {n} samples")
     else:
-        fit_rows = eval_rows = np.arange(n)
-        part = result = fit_scaling(logits, labels, options)
-        before = evaluate(logits, labels, 1.0, options.n_bins)
-        after = evaluate(logits, labels, result.scaling, options.n_bins)
-        fit_part, basis = None, "in-sample"
+        ((before,), (after,)), fit_part, basis = scores, None, "in-sample"
         notes.append("--holdout 0: the figures are in-sample (on the data the parameters were fitted on), so optimistic")
     intervals = None
     if options.bootstrap > 0:
-        intervals = resample.bootstrap(logits, labels, options, fit_rows, eval_rows, part.scaling)
+        intervals = resample.bootstrap(
+            logits, labels, options, fit_rows, eval_rows, part.scaling, refit=fit_scaling, expansion=expansion,
+            threads=threads,
+        )
         notes.extend(intervals.get("notes", []))
     for w in (*part.warnings, *result.warnings):
         if w not in warnings:

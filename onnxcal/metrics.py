@@ -17,14 +17,24 @@ confidence is max(p, 1 - p).
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import asdict, dataclass
 
 import numpy as np
 
+from .binning import (  # noqa: F401  (re-exported: part of this module's interface)
+    DEFAULT_BINS,
+    _binned,
+    bin_ids,
+    ece_from_bins,
+    equal_mass_bins,
+    mce_from_bins,
+    reliability_bins,
+    weighted_quantiles,
+)
 from .scaling import Scaling, kind_of
+from .sweep import ALL_ROWS, RowScores, ScoreSums, Selection, run_pass
 
-DEFAULT_BINS = 15
 # float64 elements per chunk: 512 KiB per temporary array, a handful at a time
 # (measured fastest on this machine among 2^15 to 2^20: larger chunks fall out
 # of cache and pay page faults for every temporary).
@@ -101,90 +111,6 @@ def _wsum(x: np.ndarray, w: np.ndarray | None) -> float:
     return float(x.sum() if w is None else x @ w)
 
 
-def reliability_bins(
-    confidence: np.ndarray,
-    correct: np.ndarray,
-    n_bins: int = DEFAULT_BINS,
-    weights: np.ndarray | None = None,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per-bin sample counts, summed confidence and summed correctness.
-
-    Bins are M equal-width intervals ``((m-1)/M, m/M]`` over [0, 1], with a
-    confidence of exactly 0 put in the first bin (Guo et al. 2017, sec. 2).
-
-    Parameters
-    ----------
-    confidence : ndarray of shape (n,)
-        Predicted probability of the predicted class.
-    correct : ndarray of shape (n,)
-        1 where the prediction is right, else 0.
-    n_bins : int
-        Number of bins M.
-    weights : ndarray of shape (n,), optional
-        Weight of each sample (e.g. bootstrap counts).
-
-    Returns
-    -------
-    counts, confidence_sum, correct_sum : ndarray of shape (n_bins,)
-    """
-    return _binned(bin_ids(confidence, n_bins), confidence, correct, n_bins, weights)
-
-
-def bin_ids(p: np.ndarray, n_bins: int) -> np.ndarray:
-    """Index of the equal-width bin ``((m-1)/M, m/M]`` of each value in [0, 1].
-
-    The same as ``np.searchsorted(np.linspace(0, 1, M + 1)[1:-1], p)`` (the
-    rule of ``sklearn.calibration.calibration_curve``), computed as
-    ceil(p M) - 1, with values within rounding of an edge settled by the
-    search itself; several times faster on large arrays.
-
-    Examples
-    --------
-    >>> bin_ids(np.array([0.0, 0.1, 0.10001, 0.5, 1.0]), 10)
-    array([0, 0, 1, 4, 9])
-    """
-    p = np.asarray(p, dtype=np.float64)
-    f = p * n_bins
-    ids = np.ceil(f)
-    ids -= 1.0
-    np.clip(ids, 0, n_bins - 1, out=ids)
-    # Only values within rounding of an edge can disagree with the edges as
-    # numpy.linspace computes them; settle those by the edges themselves.
-    # (The edge at 0 needs no care: ceil - 1 and the clip put [0, 1/M] in bin 0.)
-    near = np.abs(f - np.rint(f)) < 1e-6
-    near &= f > 0.5
-    if near.any():
-        edges = np.linspace(0.0, 1.0, n_bins + 1)
-        ids[near] = np.searchsorted(edges[1:-1], p[near])
-    ids = ids.astype(np.intp)
-    return ids
-
-
-def _binned(ids, confidence, correct, n_bins, weights):
-    w = np.ones(len(ids)) if weights is None else np.asarray(weights, dtype=np.float64)
-    counts = np.bincount(ids, weights=w, minlength=n_bins)
-    conf_sum = np.bincount(ids, weights=w * confidence, minlength=n_bins)
-    corr_sum = np.bincount(ids, weights=w * np.asarray(correct, dtype=np.float64), minlength=n_bins)
-    return counts, conf_sum, corr_sum
-
-
-def ece_from_bins(counts: np.ndarray, conf_sum: np.ndarray, corr_sum: np.ndarray) -> float:
-    """Expected calibration error from the sums of :func:`reliability_bins`.
-
-    ECE = sum_m |B_m|/n * |acc(B_m) - conf(B_m)| = sum_m |corr_m - conf_m| / n.
-    """
-    n = counts.sum()
-    return float(np.abs(corr_sum - conf_sum).sum() / n) if n else float("nan")
-
-
-def mce_from_bins(counts: np.ndarray, conf_sum: np.ndarray, corr_sum: np.ndarray) -> float:
-    """Maximum calibration error: max over non-empty bins of |acc(B_m) - conf(B_m)|."""
-    full = counts > 0
-    if not full.any():
-        return float("nan")
-    return float(np.max(np.abs(corr_sum[full] - conf_sum[full]) / counts[full]))
-
-
 def expected_calibration_error(
     confidence: np.ndarray, correct: np.ndarray, n_bins: int = DEFAULT_BINS
 ) -> float:
@@ -240,28 +166,6 @@ def maximum_calibration_error(
     """
     confidence = np.asarray(confidence, dtype=np.float64).ravel()
     return mce_from_bins(*reliability_bins(confidence, np.asarray(correct).ravel(), n_bins))
-
-
-def equal_mass_bins(
-    confidence: np.ndarray,
-    correct: np.ndarray,
-    n_bins: int = DEFAULT_BINS,
-    weights: np.ndarray | None = None,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Bin sums (as :func:`reliability_bins`) over equal-mass bins.
-
-    Edges are the 0, 1/M, ..., 1 quantiles of the confidences (linear
-    interpolation, as ``numpy.percentile``), bins are right-closed, so each
-    bin holds about n/M samples. Integer ``weights`` (bootstrap counts)
-    count a sample that many times, edges included.
-    """
-    confidence = np.asarray(confidence, dtype=np.float64).ravel()
-    pool = confidence if weights is None else np.repeat(confidence, np.asarray(weights, dtype=np.int64))
-    if pool.size == 0:
-        return np.zeros(n_bins), np.zeros(n_bins), np.zeros(n_bins)
-    edges = np.quantile(pool, np.linspace(0.0, 1.0, n_bins + 1))
-    ids = np.searchsorted(edges[1:-1], confidence, side="left")
-    return _binned(ids, confidence, np.asarray(correct).ravel(), n_bins, weights)
 
 
 def adaptive_calibration_error(
@@ -429,11 +333,14 @@ def evaluate(
     *,
     rows: np.ndarray | None = None,
     weights: np.ndarray | None = None,
+    threads: int | None = None,
 ) -> Metrics:
     """Metrics of the calibrated probabilities against ``labels``.
 
-    Works through the logits in row chunks (float32 in, float64 sums), so a
-    memory-mapped capture larger than RAM can be scored.
+    Works through the logits in row chunks (float64 sums), so a
+    memory-mapped capture larger than RAM can be scored. A multiclass
+    temperature (or none) is scored in one :mod:`onnxcal.sweep` pass:
+    float32 logits are exponentiated in float32.
 
     Parameters
     ----------
@@ -450,6 +357,10 @@ def evaluate(
         Score only these rows (sorted indices).
     weights : ndarray, optional
         One non-negative integer weight per scored row (bootstrap counts).
+    threads : int, optional
+        Threads for a temperature-scaled softmax (default: the cores
+        available, see :func:`onnxcal.sweep.default_threads`); the result
+        does not depend on it.
 
     Returns
     -------
@@ -471,6 +382,11 @@ def evaluate(
     k = logits.shape[1]
     kind = kind_of(k, np.ndim(labels))
     scaling = _as_scaling(scaling, kind)
+    if kind == "multiclass" and scaling.method == "temperature":
+        sel = Selection(rows=rows, weights=weights)
+        beta = 1.0 / float(scaling.temperature)
+        sums, _ = temperature_pass(logits, labels, beta, n_bins, selection=sel, threads=threads)
+        return score_metrics(sums, 0, None, weights)
     if kind == "multiclass":
         return _evaluate_softmax(logits, labels, scaling, n_bins, rows, weights)
     return _evaluate_sigmoid(logits, labels, scaling, n_bins, rows, weights, kind)
@@ -521,28 +437,93 @@ class _Sums:
 
     def metrics(self, n: float, per_sample: int, weights, kind: str) -> Metrics:
         """Metrics from the sums; ``per_sample`` predictions per sample (K for multi-label)."""
-        entries = n * per_sample
-        counts, conf_sum, corr_sum = self.bins
         conf = np.concatenate(self.confs) if self.confs else np.zeros(0)
         correct = np.concatenate(self.corrects) if self.corrects else np.zeros(0, bool)
         entry_weights = None if weights is None else np.repeat(np.asarray(weights), per_sample)
-        nan = float("nan")
-        accuracy = float(corr_sum.sum() / entries) if entries else nan
-        mean_conf = float(conf_sum.sum() / entries) if entries else nan
-        return Metrics(
-            n=int(round(n)),
-            nll=float(self.nll / entries) if entries else nan,
-            ece=ece_from_bins(counts, conf_sum, corr_sum),
-            mce=mce_from_bins(counts, conf_sum, corr_sum),
-            adaptive_ece=ece_from_bins(*equal_mass_bins(conf, correct, self.n_bins, entry_weights)),
-            classwise_ece=_classwise_from_sums(self.p_sum, self.y_sum, n, self.k),
-            brier=float(self.brier / entries) if entries else nan,
-            accuracy=accuracy,
-            mean_confidence=mean_conf,
-            gap=mean_conf - accuracy,
-            n_bins=self.n_bins,
-            kind=kind,
+        classwise = _classwise_from_sums(self.p_sum, self.y_sum, n, self.k)
+        return _metrics_from(
+            n, per_sample, self.bins, self.nll, self.brier, (conf, correct, entry_weights, None), classwise,
+            kind,
         )
+
+
+def _metrics_from(n, per_sample, bins, nll, brier, top_label, classwise, kind, order=None) -> Metrics:
+    """Metrics from the sums of one evaluation.
+
+    ``top_label`` = (confidence, correctness, weights, order) of every
+    prediction, for the equal-mass bins of the adaptive ECE.
+    """
+    entries = n * per_sample
+    counts, conf_sum, corr_sum = bins
+    conf, correct, entry_weights, order = top_label
+    nan = float("nan")
+    accuracy = float(corr_sum.sum() / entries) if entries else nan
+    mean_conf = float(conf_sum.sum() / entries) if entries else nan
+    n_bins = len(counts)
+    return Metrics(
+        n=int(round(n)),
+        nll=float(nll / entries) if entries else nan,
+        ece=ece_from_bins(counts, conf_sum, corr_sum),
+        mce=mce_from_bins(counts, conf_sum, corr_sum),
+        adaptive_ece=ece_from_bins(*equal_mass_bins(conf, correct, n_bins, entry_weights, order=order)),
+        classwise_ece=classwise,
+        brier=float(brier / entries) if entries else nan,
+        accuracy=accuracy,
+        mean_confidence=mean_conf,
+        gap=mean_conf - accuracy,
+        n_bins=n_bins,
+        kind=kind,
+    )
+
+
+def score_metrics(sums: ScoreSums, part: int, mask: np.ndarray | None, weights: np.ndarray | None) -> Metrics:
+    """The Metrics of one part of a pass's :class:`~onnxcal.sweep.ScoreSums`.
+
+    ``mask`` selects the part's rows among the pass's positions (None: all),
+    ``weights`` the pass's per-row weights (None: unweighted).
+    """
+    pick = (lambda a: a) if mask is None else (lambda a: a[mask])
+    n = float(sums.weight[part])
+    p_sum, y_sum = sums.classwise(part)
+    top = (pick(sums.rows.conf), pick(sums.rows.correct), None if weights is None else pick(weights), None)
+    return _metrics_from(
+        n, 1, sums.bins[part], sums.nll[part], sums.brier[part], top,
+        _classwise_from_sums(p_sum, y_sum, n, sums.k), "multiclass",
+    )
+
+
+def temperature_pass(
+    logits: np.ndarray,
+    labels: np.ndarray,
+    beta: float,
+    n_bins: int = DEFAULT_BINS,
+    *,
+    selection: Selection = ALL_ROWS,
+    parts: int = 1,
+    moments: int = 0,
+    sq_moments: int = 0,
+    sq_part: int | None = None,
+    extra: Callable[[], Sequence] | None = None,
+    threads: int | None = None,
+) -> tuple[ScoreSums, list]:
+    """One pass scoring softmax(beta z) per part (and feeding ``extra`` consumers).
+
+    Returns the merged :class:`~onnxcal.sweep.ScoreSums` and,
+    per lane, the ``extra`` consumers (for the caller to merge).
+    """
+    n = len(logits) if selection.rows is None else len(selection.rows)
+    rows = RowScores(n)
+    k = logits.shape[1]
+
+    def make():
+        return (ScoreSums(parts, k, n_bins, rows), *(extra() if extra else ()))
+
+    lanes = run_pass(
+        logits, labels, beta, make, selection=selection, moments=moments, sq_moments=sq_moments,
+        sq_part=sq_part, threads=threads,
+    )
+    sums = ScoreSums.merge([lane[0] for lane in lanes])
+    return sums, [lane[1:] for lane in lanes]
 
 
 def _total(logits, rows, weights) -> float:
@@ -709,7 +690,13 @@ def reliability(
     bins = np.zeros((3, n_bins))
     p_sum, y_sum = np.zeros(k * n_bins), np.zeros(k * n_bins)
     n = 0
-    for z, y, _ in iter_chunks(logits, labels, rows):
+    if kind == "multiclass" and scaling.method == "temperature":  # the pass evaluate makes
+        sums, _ = temperature_pass(
+            logits, labels, 1.0 / float(scaling.temperature), n_bins, selection=Selection(rows=rows)
+        )
+        bins, n = sums.bins[0], float(sums.weight[0])
+        p_sum, y_sum = sums.classwise(0)
+    for z, y, _ in iter_chunks(logits, labels, rows) if not n else ():
         s = scaling.apply(z)
         if kind == "multiclass":
             p = softmax(s, axis=1)

@@ -10,21 +10,31 @@ is a vector of counts (how often each row was drawn), used as weights; no
 resampled copy of the logits is made. The interval is the 2.5th to 97.5th
 percentile of the replicates (Efron & Tibshirani 1993, ch. 13).
 
-Temperature scaling of a multiclass model has a fast path whose cost does
-not grow with the number of replicates: after one pass at the fit (for the
-standard error that sets the grid), one chunked pass computes, for every row, the NLL's derivatives (fit part) and the metrics' per-row terms
-with their derivatives (held-out part) at a grid of G = 9 values of
-beta = 1/T spanning +-6 standard errors around the fit. A replicate's
-weighted gradient at the grid points is then a dot product with its
-counts, its root comes from cubic Hermite interpolation between the two
-grid points around it, and its metrics from the same interpolation of each
-row's terms. The interpolation error is of order (grid step)^4, far below
-the spread of the replicates (tests check it against the exact refit). A
-replicate whose root falls outside the grid is refitted exactly. When the
-held-out part is small enough (rows x classes x replicates below
-``EXACT_EVAL_BUDGET``), replicates are scored exactly instead, classwise
-ECE included; above it the classwise ECE gets no interval (it would need
-every class probability of every row per replicate).
+Temperature scaling of a multiclass model has two fast paths whose cost
+does not grow with the number of replicates (each replicate still draws
+its counts and takes a few vector operations over the rows):
+
+* on a large set, :mod:`onnxcal.expansion`: Taylor series in beta = 1/T
+  around the fit, from the cumulants of every row that the pass scoring
+  the fit computes anyway (no further pass over the logits);
+* on a smaller set, where a replicate's beta can lie too far from the fit
+  for that series, a grid: one pass at the fit (for the standard error
+  that sets the grid) and one chunked pass compute, for every row, the
+  NLL's derivatives (fit part) and the metrics' per-row terms with their
+  derivatives (held-out part) at G = 9 values of beta spanning +-6
+  standard errors around the fit. A replicate's weighted gradient at the
+  grid points is then a dot product with its counts, its root comes from
+  cubic Hermite interpolation between the two grid points around it, and
+  its metrics from the same interpolation of each row's terms (error of
+  order (grid step)^4).
+
+Either way a replicate outside the reach of the approximation is refitted
+exactly. When the held-out part is small enough (rows x classes x
+replicates below ``EXACT_EVAL_BUDGET``), replicates are scored exactly
+instead, classwise ECE included; above it the classwise ECE gets no
+interval (it would need every class probability of every row per
+replicate). The refitting function is passed in (``refit``), so this
+module does not depend on :mod:`onnxcal.fit`.
 
 References
 ----------
@@ -35,9 +45,13 @@ Bootstrap", Chapman & Hall 1993, ch. 13 (percentile intervals).
 
 from __future__ import annotations
 
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
+
 import numpy as np
 
 from .errors import OnnxcalError
+from .expansion import Expansion, expand
 from .metrics import (
     METRIC_FIELDS,
     ece_from_bins,
@@ -48,6 +62,10 @@ from .metrics import (
     reliability_bins,
 )
 from .scaling import Scaling
+from .sweep import default_threads
+
+Refit = Callable[..., object]
+"""``refit(logits, labels, options, rows=, weights=, start=)`` -> a FitResult."""
 
 LEVEL = 0.95
 GRID_POINTS = 9
@@ -99,15 +117,15 @@ def split_holdout(labels: np.ndarray, fraction: float, seed: int) -> tuple[np.nd
     n = len(strata)
     rng = np.random.default_rng(seed)
     perm = rng.permutation(n)
-    order = perm[np.argsort(strata[perm], kind="stable")]
-    sorted_strata = strata[order]
-    starts = np.flatnonzero(np.r_[True, sorted_strata[1:] != sorted_strata[:-1]])
-    sizes = np.diff(np.r_[starts, n])
-    group = np.repeat(np.arange(len(starts)), sizes)
-    rank = np.arange(n) - starts[group]
+    order = perm[np.argsort(strata[perm], kind="stable")]  # a random order within each stratum
+    del perm
+    sizes = np.bincount(strata)
+    del strata
+    starts = np.concatenate([[0], np.cumsum(sizes)[:-1]])
     take = np.floor(fraction * sizes + 0.5).astype(np.int64)
     held = np.zeros(n, dtype=bool)
-    held[order[rank < take[group]]] = True
+    for start, count in zip(starts[take > 0], take[take > 0], strict=True):  # the first rows of each stratum
+        held[order[start : start + count]] = True
     if not held.any() or held.all():
         raise OnnxcalError(
             f"--holdout {fraction:g} leaves {'no' if not held.any() else 'all'} of the {n} samples "
@@ -121,16 +139,32 @@ def split_holdout(labels: np.ndarray, fraction: float, seed: int) -> tuple[np.nd
 # Bootstrap
 
 
-def _counts(rng: np.random.Generator, n: int) -> np.ndarray:
-    """How often each of n rows is drawn in n draws with replacement."""
-    return np.bincount(rng.integers(0, n, n), minlength=n).astype(np.float64)
+class Draw:
+    """One replicate: n draws with replacement from each part's n positions.
+
+    ``fit`` and ``held`` are the drawn positions (the same array for an
+    in-sample bootstrap); the counts (how often each position was drawn,
+    the weights of the replicate) are made when asked for.
+    """
+
+    def __init__(self, fit: np.ndarray, n_fit: int, held: np.ndarray, n_held: int) -> None:
+        self.fit, self.held, self.n_fit, self.n_held = fit, held, n_fit, n_held
+
+    @property
+    def fit_counts(self) -> np.ndarray:
+        return np.bincount(self.fit, minlength=self.n_fit).astype(np.float64)
+
+    @property
+    def held_counts(self) -> np.ndarray:
+        return np.bincount(self.held, minlength=self.n_held).astype(np.float64)
 
 
 def _draws(rng: np.random.Generator, replicates: int, n_fit: int, n_eval: int | None):
-    """Yield (fit counts, held-out counts) per replicate, one at a time."""
+    """Yield one :class:`Draw` per replicate (the fit part's draws first, then the held-out part's)."""
     for _ in range(replicates):
-        cf = _counts(rng, n_fit)
-        yield cf, (cf if n_eval is None else _counts(rng, n_eval))
+        fit = rng.integers(0, n_fit, n_fit)
+        held = fit if n_eval is None else rng.integers(0, n_eval, n_eval)
+        yield Draw(fit, n_fit, held, n_fit if n_eval is None else n_eval)
 
 
 def _percentile(values: np.ndarray) -> list:
@@ -148,6 +182,10 @@ def bootstrap(
     fit_rows: np.ndarray,
     eval_rows: np.ndarray,
     start: Scaling,
+    *,
+    refit: Refit,
+    expansion: Expansion | None = None,
+    threads: int | None = None,
 ) -> dict:
     """Percentile intervals for the parameters and every after-metric.
 
@@ -159,22 +197,34 @@ def bootstrap(
         The two parts (the same array for an in-sample evaluation).
     start : Scaling
         The fit on ``fit_rows``: the replicates start from it.
+    refit : callable
+        ``refit(logits, labels, options, rows=, weights=, start=)`` -> FitResult
+        (:func:`onnxcal.fit.fit_scaling`), for the replicates refitted exactly.
+    expansion : Expansion, optional
+        The per-row terms at the fit (multiclass temperature), when the
+        caller's pass made them; else a pass makes them here.
+    threads : int, optional
+        Threads for the passes and the replicates; the result does not depend on it.
 
     Returns
     -------
     dict
         ``level``, ``replicates``, ``parameters`` ({name: [low, high] or a list
-        of them}), ``after`` ({metric: [low, high] or None}), ``exact_eval``
-        and ``notes``.
+        of them}), ``after`` ({metric: [low, high] or None}), ``method``
+        (how the replicates were computed) and ``notes``.
     """
     rng = np.random.default_rng([options.seed, 1])
     same = fit_rows is eval_rows
     fast = start.method == "temperature" and start.kind == "multiclass"
     draws = _draws(rng, options.bootstrap, len(fit_rows), None if same else len(eval_rows))
+    run = Replicates(logits, labels, options, fit_rows, eval_rows, start, refit, threads)
+    how = "exact"
     if fast:
-        params, metrics, fallbacks = _grid_replicates(logits, labels, options, fit_rows, eval_rows, start, draws)
+        expansion = expansion or expand(logits, labels, fit_rows, eval_rows, 1.0 / start.temperature, threads)
+        how = "taylor" if expansion.accurate else "grid"
+        params, metrics, fallbacks = (run.taylor(expansion, draws) if expansion.accurate else run.grid(draws))
     else:
-        params, metrics = _exact_replicates(logits, labels, options, fit_rows, eval_rows, start, draws)
+        params, metrics = run.exact(draws)
         fallbacks = 0
     names = list(start.parameters)
     out = {
@@ -182,6 +232,7 @@ def bootstrap(
         "kind": "percentile",
         "replicates": options.bootstrap,
         "seed": options.seed,
+        "replicates_by": how,
         "parameters": {name: _percentile(np.array([p[name] for p in params])) for name in names},
         "after": {f: _percentile(np.array([m[f] for m in metrics])) for f in METRIC_FIELDS},
         "notes": [],
@@ -199,23 +250,80 @@ def bootstrap(
             "replicate's class probabilities exactly"
         )
     if fallbacks:
-        out["notes"].append(f"{fallbacks} replicates fell outside the interpolation grid and were refitted exactly")
+        where = "outside the interpolation grid" if how == "grid" else "too far from the fit for its expansion"
+        out["notes"].append(f"{fallbacks} replicates fell {where} and were refitted exactly")
     return out
 
 
-def _exact_replicates(logits, labels, options, fit_rows, eval_rows, start, draws):
-    from .fit import fit_scaling
-
-    params, metrics = [], []
-    for cf, ce in draws:
-        res = fit_scaling(logits, labels, options, rows=fit_rows, weights=cf, start=start)
-        m = evaluate(logits, labels, res.scaling, options.n_bins, rows=eval_rows, weights=ce)
-        params.append(res.scaling.arrays())
-        metrics.append(m.to_dict())
-    return params, metrics
+# Replicates ------------------------------------------------------------------
 
 
-# Fast path for multiclass temperature scaling --------------------------------
+class Replicates:
+    """The replicates of one bootstrap: refitted exactly, on the grid, or from the expansion."""
+
+    def __init__(self, logits, labels, options, fit_rows, eval_rows, start, refit, threads) -> None:
+        self.logits, self.labels, self.options = logits, labels, options
+        self.fit_rows, self.eval_rows, self.start = fit_rows, eval_rows, start
+        self.refit, self.threads = refit, threads
+
+    def _refit(self, cf):
+        return self.refit(self.logits, self.labels, self.options, rows=self.fit_rows, weights=cf, start=self.start)
+
+    def _score(self, scaling, ce) -> dict:
+        m = evaluate(self.logits, self.labels, scaling, self.options.n_bins, rows=self.eval_rows, weights=ce)
+        return m.to_dict()
+
+    def exact(self, draws):
+        params, metrics = [], []
+        for draw in draws:
+            res = self._refit(draw.fit_counts)
+            params.append(res.scaling.arrays())
+            metrics.append(self._score(res.scaling, draw.held_counts))
+        return params, metrics
+
+    def grid(self, draws):
+        return _grid_replicates(
+            self.logits, self.labels, self.options, self.fit_rows, self.eval_rows, self.start, draws, self.refit
+        )
+
+    def taylor(self, exp: Expansion, draws):
+        """Each replicate from the expansion; refitted exactly when its root is too far out."""
+        n_bins = self.options.n_bins
+        exact_eval = len(self.eval_rows) * self.logits.shape[1] * self.options.bootstrap <= EXACT_EVAL_BUDGET
+
+        def one(draw):
+            counts = draw.fit_counts
+            d = exp.root(counts)
+            if d is None:
+                beta = 1.0 / self._refit(counts).temperature
+            else:
+                beta = exp.beta0 + d
+            m = None if exact_eval or d is None else exp.metrics(draw.held, d, n_bins)
+            if m is None:
+                m = self._score(1.0 / beta, draw.held_counts)
+                if not exact_eval:
+                    m["classwise_ece"] = float("nan")
+            return {"temperature": np.array(1.0 / beta)}, m, d is None
+
+        done = _map_in_order(one, draws, default_threads() if self.threads is None else self.threads)
+        return [r[0] for r in done], [r[1] for r in done], sum(r[2] for r in done)
+
+
+def _map_in_order(fn, items, threads: int) -> list:
+    """[fn(item) for item in items], on ``threads`` threads, items drawn in order."""
+    if threads <= 1:
+        return [fn(item) for item in items]
+    with ThreadPoolExecutor(threads) as pool:
+        pending, out = [], []
+        for item in items:  # the draws come from one generator, in order
+            pending.append(pool.submit(fn, item))
+            if len(pending) > 2 * threads:
+                out.append(pending.pop(0).result())
+        out.extend(f.result() for f in pending)
+    return out
+
+
+# The grid (multiclass temperature scaling on small sets) --------------------
 
 
 def _grid_terms(logits, labels, rows, betas, held_out: bool) -> dict[str, np.ndarray]:
@@ -279,22 +387,22 @@ def _grid(logits, labels, fit_rows, beta_hat) -> np.ndarray:
     return beta_hat * np.exp(np.linspace(-half, half, GRID_POINTS))
 
 
-def _grid_replicates(logits, labels, options, fit_rows, eval_rows, start, draws):
-    from .fit import fit_scaling
-
+def _grid_replicates(logits, labels, options, fit_rows, eval_rows, start, draws, refit):
     betas = _grid(logits, labels, fit_rows, 1.0 / start.temperature)
     fit_terms = _grid_terms(logits, labels, fit_rows, betas, held_out=False)
+    g_terms, h_terms = fit_terms["g"].astype(np.float64), fit_terms["h"].astype(np.float64)
     n_classes = logits.shape[1]
     exact_eval = len(eval_rows) * n_classes * options.bootstrap <= EXACT_EVAL_BUDGET
     held = None if exact_eval else _grid_terms(logits, labels, eval_rows, betas, held_out=True)
     steps = np.diff(betas)
     params, metrics, fallbacks = [], [], 0
-    for cf, ce in draws:
-        s = cf @ fit_terms["g"].astype(np.float64)  # weighted gradient at each grid beta
-        d = cf @ fit_terms["h"].astype(np.float64)
+    for draw in draws:
+        cf, ce = draw.fit_counts, draw.held_counts
+        s = cf @ g_terms  # weighted gradient at each grid beta
+        d = cf @ h_terms
         j = int(np.searchsorted(s, 0.0)) - 1  # s is increasing in beta (convex NLL)
         if j < 0 or j >= len(betas) - 1:
-            res = fit_scaling(logits, labels, options, rows=fit_rows, weights=cf, start=start)
+            res = refit(logits, labels, options, rows=fit_rows, weights=cf, start=start)
             beta, j = 1.0 / res.temperature, None
             fallbacks += 1
         else:
@@ -348,3 +456,4 @@ def _interpolated_metrics(held, weights, j, t, h, n_bins) -> dict:
         "mean_confidence": mean_conf,
         "gap": mean_conf - accuracy,
     }
+

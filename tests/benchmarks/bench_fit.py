@@ -1,7 +1,9 @@
-"""Benchmark: onnxcal's temperature fit against the baseline a practitioner writes.
+"""Benchmarks of fitting: the solver against a scipy baseline, and the whole fit command.
 
-    .venv/bin/python tests/benchmarks/bench_fit.py [--n 100000] [--k 1000] [--rounds 2]
+    .venv/bin/python tests/benchmarks/bench_fit.py [solver] [--n 100000] [--k 1000] [--rounds 2]
+    .venv/bin/python tests/benchmarks/bench_fit.py command [--n 1000000] [--k 1000] [--rounds 3] [--cache DIR]
 
+``solver``:
 Data: n x k float32 logits ~ N(0, 3^2), labels drawn from softmax(z / 1.5)
 by Gumbel-max sampling (so the true T is 1.5). The baseline is
 ``scipy.optimize.minimize_scalar(method="bounded")`` on T over the mean NLL
@@ -11,6 +13,17 @@ times each, in the same process; the figures are the medians.
 Also measured: passes over the data, the extra memory of a fit and of the
 whole ``fit`` command (holdout + bootstrap) beyond the logits (numpy
 allocations traced with tracemalloc), and what the bootstrap costs.
+
+``command``: the whole ``fit`` command (``summarize`` with the defaults:
+25 % holdout, every metric before and after on both parts, the refit on
+all rows, 200 bootstrap replicates; and with ``--bootstrap 0``), with one
+and with two threads, against one float32 logsumexp pass over the same
+logits (chunked, max / subtract / exp / sum / log, in place: what an
+expert writes; one thread). Every fit is timed between two such passes
+and its ratio taken to their mean, so drifting machine load hits both;
+the figures are the medians over the rounds. Then the extra memory of
+the command without bootstrap (tracemalloc), which must stay below 64 MiB
+beyond the logits.
 """
 
 from __future__ import annotations
@@ -73,13 +86,80 @@ def traced_peak(fn) -> tuple[float, object]:
     return (peak - base) / 2**20, out
 
 
+def logsumexp_pass(z: np.ndarray, rows: int = 64) -> np.ndarray:
+    """One float32 logsumexp over the rows of z, as an expert writes it (the yardstick)."""
+    out = np.empty(len(z))
+    buf = np.empty((rows, z.shape[1]), dtype=np.float32)
+    for s in range(0, len(z), rows):
+        c = z[s : s + rows]
+        e = buf[: len(c)]
+        m = c.max(axis=1, keepdims=True)
+        np.subtract(c, m, out=e)
+        np.exp(e, out=e)
+        out[s : s + len(c)] = np.log(e.sum(axis=1)) + m[:, 0]
+    return out
+
+
+def cached_data(n: int, k: int, cache: str | None) -> tuple[np.ndarray, np.ndarray]:
+    if cache is None:
+        return make_data(n, k)
+    import pathlib
+
+    d = pathlib.Path(cache)
+    zf, yf = d / f"logits_{n}x{k}.npy", d / f"labels_{n}x{k}.npy"
+    if not zf.exists():
+        d.mkdir(parents=True, exist_ok=True)
+        z, y = make_data(n, k)
+        np.save(zf, z)
+        np.save(yf, y)
+    return np.load(zf), np.load(yf)
+
+
+def bench_command(args) -> None:
+    z, y = cached_data(args.n, args.k, args.cache)
+    print(f"logits {args.n} x {args.k} float32 ({z.nbytes / 2**30:.2f} GiB), fit command with the defaults")
+    logsumexp_pass(z)  # warm the pages
+    cases = [(b, t) for b in (0, 200) for t in (1, 2)]
+    ratios: dict = {c: [] for c in cases}
+    for r in range(args.rounds):
+        for boot, threads in cases if r % 2 == 0 else cases[::-1]:
+            t0 = time.perf_counter()
+            logsumexp_pass(z)
+            before = time.perf_counter() - t0
+            t0 = time.perf_counter()
+            s = summarize(z, y, {}, FitOptions(bootstrap=boot), threads=threads)
+            fit = time.perf_counter() - t0
+            t0 = time.perf_counter()
+            logsumexp_pass(z)
+            after = time.perf_counter() - t0
+            ratios[(boot, threads)].append(fit / ((before + after) / 2))
+            print(f"round {r + 1}, bootstrap {boot:3d}, threads {threads}: logsumexp pass {before:.2f} / "
+                  f"{after:.2f} s, fit {fit:.2f} s, ratio {ratios[(boot, threads)][-1]:.2f} "
+                  f"(passes: fit part {s.holdout_result.passes:.2f}, refit {s.result.passes:.2f}"
+                  f"{', replicates by ' + s.intervals['replicates_by'] if s.intervals else ''})")
+    for (boot, threads), rs in ratios.items():
+        target = 4.0 if boot else 2.5
+        print(f"bootstrap {boot:3d}, threads {threads}: median ratio to one logsumexp pass "
+              f"{statistics.median(rs):.2f} (rounds {', '.join(f'{x:.2f}' for x in rs)})  [target <= {target}]")
+    mib, _ = traced_peak(lambda: summarize(z, y, {}, FitOptions(bootstrap=0), threads=2))
+    print(f"extra memory, fit command without bootstrap: {mib:.1f} MiB beyond the logits  [target <= 64]")
+    mib, _ = traced_peak(lambda: summarize(z, y, {}, FitOptions(bootstrap=200), threads=2))
+    print(f"extra memory, fit command with 200 bootstrap replicates: {mib:.1f} MiB beyond the logits")
+
+
 def main() -> None:
     ap = argparse.ArgumentParser()
-    ap.add_argument("--n", type=int, default=100_000)
+    ap.add_argument("which", nargs="?", choices=["solver", "command"], default="solver")
+    ap.add_argument("--n", type=int, default=None, help="rows (solver: 100000, command: 1000000)")
     ap.add_argument("--k", type=int, default=1000)
-    ap.add_argument("--rounds", type=int, default=2)
-    ap.add_argument("--skip-extras", action="store_true", help="only the timing comparison")
+    ap.add_argument("--rounds", type=int, default=None, help="solver: 2, command: 3")
+    ap.add_argument("--cache", default=None, help="command: keep the generated logits in this directory")
+    ap.add_argument("--skip-extras", action="store_true", help="solver: only the timing comparison")
     args = ap.parse_args()
+    if args.which == "command":
+        args.n, args.rounds = args.n or 1_000_000, args.rounds or 3
+        return bench_command(args)
+    args.n, args.rounds = args.n or 100_000, args.rounds or 2
     z, y = make_data(args.n, args.k)
     print(f"logits {args.n} x {args.k} float32 ({z.nbytes / 2**20:.0f} MiB), true T = {T_TRUE}")
 

@@ -1,0 +1,549 @@
+"""One chunked pass over multiclass logits at one inverse temperature.
+
+Every multiclass temperature fit and every softmax score reads the logits
+the same way: row chunks, ``e = exp(beta z)``, the row sums of ``e`` and,
+when asked, of ``e x^j`` and ``e^2 x^j`` (x = beta z, shifted). This
+module does that once per pass, for the solver, the metrics and the
+bootstrap together, and hands the per-row results of each chunk to
+*consumers* (:class:`MomentSums` here, the metric sums in
+:mod:`onnxcal.metrics`).
+
+Precision. Float32 logits are exponentiated in float32 (the exponential
+is what a pass costs) and everything derived from the row sums is float64;
+float64 logits stay float64 throughout. A row is shifted by its maximum
+before the exponential unless every row of the chunk has
+``|beta max_k z_k| <= 20``, where ``exp`` and its square stay in float32's
+normal range and the shift (a broadcast, about a third of an exponential)
+buys nothing but a little precision in the higher cumulants.
+
+Threads. Chunks are dealt to ``LANES`` lanes (chunk i to lane i mod
+LANES), each lane with its own float64 sums, merged in lane order, so the
+result does not depend on how many threads ran the lanes. numpy releases
+the GIL in the exponential, the BLAS row and column sums and the other
+large kernels, so two threads use two cores; BLAS itself is held to one
+thread meanwhile (:func:`one_blas_thread`).
+
+Cumulants. With p = softmax(beta z) and L(beta) = log sum_k exp(beta z_k),
+the j-th derivative of L is the j-th cumulant of z under p; these are the
+derivatives of the NLL in beta that the solvers and the bootstrap use
+(see :mod:`onnxcal.fit`). They come from the raw moments
+mu_j = sum_k e_k x_k^j / sum_k e_k by the recursion
+kappa_n = mu_n - sum_{j=1}^{n-1} C(n-1, j-1) kappa_j mu_{n-j}
+(common practice), and kappa_j(z) = kappa_j(x) / beta^j.
+"""
+
+from __future__ import annotations
+
+import os
+import threading
+from collections.abc import Callable, Sequence
+from concurrent.futures import ThreadPoolExecutor
+from contextlib import nullcontext
+from dataclasses import dataclass
+from math import comb
+from typing import Protocol
+
+import numpy as np
+
+from .binning import bin_ids
+
+CHUNK_ELEMENTS = 1 << 18
+"""Logit values per chunk (1 MiB of float32): large enough that the few hundred numpy
+calls a chunk takes cost little beside its arithmetic, small enough that its five
+scratch arrays stay in the cache (measured fastest among 2^16 to 2^20 on 1 000 classes)."""
+LANES = 4
+"""Accumulator lanes: results are the same for 1 to LANES threads."""
+PARALLEL_ELEMENTS = 1 << 21
+"""Passes over fewer logit values than this run in the calling thread."""
+UNSHIFTED_LIMIT = 20.0
+"""float32 rows are left unshifted when |beta max z| is at most this (exp(2 * 20) is far from overflow)."""
+
+
+_BLAS: list = []
+
+
+def one_blas_thread():
+    """A context in which BLAS (numpy's dot products) runs on one thread.
+
+    onnxcal's passes and bootstrap replicates run on threads of their own; a
+    multithreaded BLAS under them would oversubscribe the cores, and its
+    threads, woken for every dot product, wait for a core whenever the
+    machine is busy (measured: a 17 000-element dot product took 37 ms
+    instead of 0.01 ms on a loaded two-core machine). Process-wide while it
+    lasts (threadpoolctl).
+    """
+    from threadpoolctl import ThreadpoolController
+
+    if not _BLAS:
+        _BLAS.append(ThreadpoolController())
+    return _BLAS[0].limit(limits=1, user_api="blas")
+
+
+def default_threads() -> int:
+    """Threads for a pass: the cores this process may use, at most :data:`LANES`."""
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:  # not on Linux
+        cores = os.cpu_count() or 1
+    return max(1, min(LANES, cores))
+
+
+def compute_dtype(logits: np.ndarray) -> np.dtype:
+    """float32 for float32 (and narrower float) logits, else float64."""
+    dt = np.dtype(logits.dtype)
+    return np.dtype(np.float32) if dt.kind == "f" and dt.itemsize <= 4 else np.dtype(np.float64)
+
+
+def rows_per_chunk(n_classes: int) -> int:
+    return max(1, CHUNK_ELEMENTS // max(1, n_classes))
+
+
+@dataclass(frozen=True)
+class Chunk:
+    """Rows ``start..start+len(y)-1`` of a pass (positions among its selected rows)."""
+
+    index: int
+    start: int
+    z: np.ndarray
+    y: np.ndarray
+    w: np.ndarray | None
+    part: np.ndarray | None
+
+
+class Consumer(Protocol):
+    def add(self, chunk: Chunk, terms: ExpTerms) -> None: ...
+
+
+@dataclass
+class ExpTerms:
+    """Per-row results of one chunk at one beta (float64 arrays of the chunk's length).
+
+    The chunk's exponentials are ``e = exp(x)`` with ``x = b z - s``: ``b``
+    is beta rounded to the logits' dtype, ``s`` a per-row shift (0, or b
+    times the row maximum). The exact beta differs from b by the factor
+    1 + ``eps``; weights at the exact beta are ``e exp(eps x)``, which the
+    sums take to first order (``eps`` is below 6e-8, so the error is of
+    order 1e-12). ``e``, ``x`` and ``ex`` (= e x, or None) are scratch
+    buffers, valid only while the consumers run. ``total`` is
+    sum_k e_k (1 + eps x_k), so a probability is e (1 + eps x) / total.
+
+    ``log_total`` is L(beta) = log sum_k exp(beta z_k), ``cumulants[:, j-1]``
+    the j-th cumulant of z under softmax(beta z) (the j-th derivative of L),
+    ``sq_log_total`` and ``sq_cumulants`` the same at 2 beta (from e^2).
+    """
+
+    beta: float
+    b: float
+    eps: float
+    x: np.ndarray
+    e: np.ndarray
+    ex: np.ndarray | None
+    total: np.ndarray
+    log_total: np.ndarray
+    top: np.ndarray
+    zmax: np.ndarray
+    zy: np.ndarray
+    cumulants: np.ndarray
+    sq_log_total: np.ndarray | None = None
+    sq_cumulants: np.ndarray | None = None
+
+    @property
+    def nll(self) -> np.ndarray:
+        return self.log_total - self.beta * self.zy
+
+    def probabilities(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+        """Probabilities of the entries (rows, cols) of the chunk, float64."""
+        e = self.e[rows, cols].astype(np.float64)
+        if self.eps:
+            e *= 1.0 + self.eps * self.x[rows, cols]
+        return e / self.total[rows]
+
+
+class _Buffers:
+    """Scratch arrays of one thread: five chunk-sized arrays and the row sums."""
+
+    def __init__(self, rows: int, k: int, dtype: np.dtype, powers: int = 8) -> None:
+        self.x, self.e, self.ex, self.p, self.q = (np.empty((rows, k), dtype) for _ in range(5))
+        self.r = np.arange(rows)
+        self.sums = np.empty((powers + 1, rows), dtype)
+
+
+def cumulants_from_moments(mu: np.ndarray) -> np.ndarray:
+    """Cumulants kappa_1..kappa_m from raw moments mu_1..mu_m (rows of an (m, n) array).
+
+    Up to m = 5 from the central moments c_j (kappa_2 = c_2, kappa_3 = c_3,
+    kappa_4 = c_4 - 3 c_2^2, kappa_5 = c_5 - 10 c_3 c_2); beyond, by the
+    recursion kappa_n = mu_n - sum_{j=1}^{n-1} C(n-1, j-1) kappa_j mu_{n-j}
+    (both common practice).
+    """
+    m = len(mu)
+    if m > 5:
+        kappa = np.empty_like(mu)
+        for n in range(1, m + 1):
+            acc = mu[n - 1].copy()
+            for j in range(1, n):
+                acc -= comb(n - 1, j - 1) * kappa[j - 1] * mu[n - j - 1]
+            kappa[n - 1] = acc
+        return kappa
+    kappa = np.empty_like(mu)
+    if m == 0:
+        return kappa
+    m1 = kappa[0] = mu[0]
+    if m >= 2:
+        sq = m1 * m1
+        c2 = kappa[1] = mu[1] - sq
+    if m >= 3:
+        c3 = kappa[2] = mu[2] - m1 * (3.0 * mu[1] - 2.0 * sq)
+    if m >= 4:
+        c4 = mu[3] - m1 * (4.0 * mu[2] - m1 * (6.0 * mu[1] - 3.0 * sq))
+        kappa[3] = c4 - 3.0 * c2 * c2
+    if m >= 5:
+        c5 = mu[4] - m1 * (5.0 * mu[3] - m1 * (10.0 * mu[2] - m1 * (10.0 * mu[1] - 4.0 * sq)))
+        kappa[4] = c5 - 10.0 * c3 * c2
+    return kappa
+
+
+_ONES: dict = {}
+
+
+def _ones(k: int, dtype: np.dtype) -> np.ndarray:
+    key = (k, np.dtype(dtype))
+    if key not in _ONES:
+        _ONES[key] = np.ones(k, dtype)
+    return _ONES[key]
+
+
+def _power_sums(w, x, count: int, first, scratch, out) -> np.ndarray:
+    """Row sums of w x^j, j = 0..count, as float64 rows (count + 1, rows).
+
+    ``first`` receives w x, ``scratch`` the higher powers (either may be
+    ``w`` itself when it is not needed afterwards); ``out`` takes the sums.
+    """
+    ones = _ones(w.shape[1], w.dtype)
+    np.matmul(w, ones, out=out[0])
+    prev = w
+    for j in range(1, count + 1):
+        dest = first if j == 1 else scratch
+        np.multiply(prev, x, out=dest)
+        np.matmul(dest, ones, out=out[j])
+        prev = dest
+    return out.astype(np.float64)
+
+
+def _cumulants(sums: np.ndarray, eps: float, m: int, s: np.ndarray, b: float) -> tuple[np.ndarray, np.ndarray]:
+    """Row totals at the exact beta and the cumulants 1..m of z = (x + s) / b (an (m, c) array).
+
+    ``sums`` holds the row sums of w x^j (j = 0..max(m, 1)); the weights at the
+    exact beta are w exp(eps x), to first order w (1 + eps x), so the sum of
+    order j needs that of order j + 1. The highest one is left at b: its
+    correction is about eps x ~ 1e-7 of itself, and the top cumulant only
+    ever enters multiplied by d^m, d a step in beta (at most ~1e-2).
+    """
+    at = sums[: m + 1].copy()
+    if eps:
+        top = min(m, len(sums) - 2)
+        at[: top + 1] += eps * sums[1 : top + 2]
+    kappa = cumulants_from_moments(at[1:] / at[0])
+    if m:
+        kappa[0] += s
+        kappa /= (b ** np.arange(1, m + 1))[:, None]
+    return at[0], kappa
+
+
+def exp_terms(
+    z: np.ndarray,
+    y: np.ndarray,
+    beta: float,
+    moments: int,
+    sq_moments: int | None,
+    buf: _Buffers,
+    sq_rows: np.ndarray | None = None,
+) -> ExpTerms:
+    """The exponentials of one chunk and their row sums (see :class:`ExpTerms`).
+
+    ``moments``: cumulants 1..moments of z under softmax(beta z).
+    ``sq_moments``: None for nothing at 2 beta, else L(2 beta) for every row
+    and cumulants 1..sq_moments under softmax(2 beta z) for the rows of the
+    boolean mask ``sq_rows`` (all when None; NaN elsewhere).
+    """
+    c = len(y)
+    r = buf.r[:c]
+    dtype = buf.e.dtype
+    z = np.asarray(z, dtype=dtype)
+    top = z.argmax(axis=1)
+    zmax = z[r, top].astype(np.float64)
+    zy = z[r, y].astype(np.float64)
+    b = float(dtype.type(beta))
+    eps = beta / b - 1.0
+    unshifted = dtype == np.float32 and c > 0 and b * max(abs(zmax.max()), abs(zmax.min())) <= UNSHIFTED_LIMIT
+    x, e = buf.x[:c], buf.e[:c]
+    if unshifted:
+        s = 0.0
+        if b == 1.0:
+            x = z
+        else:
+            np.multiply(z, dtype.type(b), out=x)
+    else:
+        s32 = (b * zmax).astype(dtype)
+        s = s32.astype(np.float64)
+        np.multiply(z, dtype.type(b), out=x)
+        np.subtract(x, s32[:, None], out=x)
+    np.exp(x, out=e)
+    count = max(moments, 1 if eps else 0)  # the total at the exact beta needs the first power
+    sums = _power_sums(e, x, count, buf.ex[:c], buf.p[:c], buf.sums[: count + 1, :c])
+    total, kappa = _cumulants(sums, eps, moments, s, b)
+    scale = beta / b
+    log_total = np.log(total)
+    if not unshifted:
+        log_total += scale * s
+    terms = ExpTerms(beta, b, eps, x, e, buf.ex[:c] if count else None, total, log_total, top, zmax, zy, kappa.T)
+    if sq_moments is not None:
+        _squares(terms, buf, sq_moments, s, scale, sq_rows)
+    return terms
+
+
+def _squares(terms: ExpTerms, buf: _Buffers, sq_moments: int, s, scale: float, sq_rows) -> None:
+    """L(2 beta) of every row, and the cumulants at 2 beta of the rows in ``sq_rows`` (weights e^2)."""
+    c = len(terms.zy)
+    e2 = np.multiply(terms.e, terms.e, out=buf.p[:c])
+    q = buf.q[:c]
+    extra = 1 if terms.eps else 0
+    sums = _power_sums(e2, terms.x, extra, q, q, buf.sums[: extra + 1, :c])
+    total = sums[0] + 2.0 * terms.eps * sums[1] if extra else sums[0]
+    terms.sq_log_total = np.log(total) + 2.0 * scale * s
+    terms.sq_cumulants = np.full((c, sq_moments), np.nan)
+    if not sq_moments:
+        return
+    count = max(sq_moments, extra)
+    if sq_rows is None:
+        pick, w2, xs, ss = slice(None), e2, terms.x, s
+        out = buf.sums[: count + 1, :c]
+    else:
+        pick = np.flatnonzero(sq_rows)
+        w2, xs = e2[pick], terms.x[pick]
+        ss = s if np.isscalar(s) else s[pick]
+        out = np.empty((count + 1, len(pick)), e2.dtype)
+    scratch = q if sq_rows is None else w2
+    sums = _power_sums(w2, xs, count, scratch, scratch, out)
+    _, kappa = _cumulants(sums, 2.0 * terms.eps, sq_moments, ss, terms.b)
+    terms.sq_cumulants[pick] = kappa.T
+
+
+# --------------------------------------------------------------------------
+# Running a pass
+
+
+@dataclass(frozen=True)
+class Selection:
+    """Which rows a pass reads: all (``rows`` None) or sorted indices; optional
+    per-row weights and part numbers (both indexed like the selected rows)."""
+
+    rows: np.ndarray | None = None
+    weights: np.ndarray | None = None
+    part: np.ndarray | None = None
+
+
+ALL_ROWS = Selection()
+
+
+def _chunk(logits, labels, sel: Selection, step: int, index: int) -> Chunk:
+    start = index * step
+    if sel.rows is None:
+        key = slice(start, start + step)
+    else:
+        key = sel.rows[start : start + step]
+        if len(key) and int(key[-1]) - int(key[0]) == len(key) - 1:
+            key = slice(int(key[0]), int(key[-1]) + 1)  # a contiguous run: read a view
+    pick = slice(start, start + step)
+    w = None if sel.weights is None else np.asarray(sel.weights[pick], dtype=np.float64)
+    part = None if sel.part is None else sel.part[pick]
+    return Chunk(index, start, logits[key], np.asarray(labels[key]), w, part)
+
+
+def run_pass(
+    logits: np.ndarray,
+    labels: np.ndarray,
+    beta: float,
+    consumers: Callable[[], Sequence[Consumer]],
+    *,
+    selection: Selection = ALL_ROWS,
+    moments: int = 0,
+    sq_moments: int | None = None,
+    sq_part: int | None = None,
+    threads: int | None = None,
+) -> list[Sequence[Consumer]]:
+    """One pass: call every consumer on every chunk; return the consumers of each lane.
+
+    ``consumers()`` makes the consumers of one lane. Lanes hold disjoint sets
+    of chunks (chunk i in lane i mod LANES); merge their sums in lane order.
+    ``moments`` and ``sq_moments`` as in :func:`exp_terms`; the cumulants at
+    2 beta only for the rows of part ``sq_part`` (all when None).
+    """
+    n = len(logits) if selection.rows is None else len(selection.rows)
+    k = logits.shape[1]
+    step = rows_per_chunk(k)
+    n_chunks = -(-n // step)
+    lanes = [consumers() for _ in range(LANES)]
+    dtype = compute_dtype(logits)
+    threads = default_threads() if threads is None else max(1, min(int(threads), LANES))
+    if n * k < PARALLEL_ELEMENTS:
+        threads = 1
+
+    def work(worker: int) -> None:
+        buf = _Buffers(min(step, max(n, 1)), k, dtype)
+        for index in range(n_chunks):
+            lane = index % LANES
+            if lane % threads != worker:
+                continue
+            chunk = _chunk(logits, labels, selection, step, index)
+            mask = None if sq_part is None or chunk.part is None else chunk.part == sq_part
+            terms = exp_terms(chunk.z, chunk.y, beta, moments, sq_moments, buf, mask)
+            for consumer in lanes[lane]:
+                consumer.add(chunk, terms)
+
+    with one_blas_thread() if threading.current_thread() is threading.main_thread() else nullcontext():
+        if threads == 1:
+            work(0)
+        else:
+            with ThreadPoolExecutor(threads) as pool:
+                for f in [pool.submit(work, t) for t in range(threads)]:
+                    f.result()
+    return lanes
+
+
+class MomentSums:
+    """Weighted sums per part of the NLL's beta-derivatives, and optionally per-row terms.
+
+    For a row with label y the NLL is L(beta) - beta z_y, so its first
+    derivative is g = kappa_1 - z_y and its j-th (j >= 2) kappa_j.
+    ``sums[part]`` holds [sum w g, sum w kappa_2, ..., sum w kappa_m] and
+    ``weight[part]`` the total weight; ``wrong[part]`` the weight of rows whose
+    label is not the (first) top logit. With ``keep`` the per-row
+    [g, kappa_2, ...] go into ``keep[positions]`` (shared by all lanes).
+    """
+
+    def __init__(self, parts: int, order: int, keep: np.ndarray | None = None) -> None:
+        self.sums = np.zeros((parts, order))
+        self.weight = np.zeros(parts)
+        self.wrong = np.zeros(parts)
+        self.keep = keep
+        self.parts = parts
+
+    def add(self, chunk: Chunk, terms: ExpTerms) -> None:
+        d = terms.cumulants.copy()
+        d[:, 0] -= terms.zy
+        w = np.ones(len(d)) if chunk.w is None else chunk.w
+        part = np.zeros(len(d), np.intp) if chunk.part is None else chunk.part
+        onehot = np.zeros((self.parts, len(d)))
+        onehot[part, np.arange(len(d))] = w
+        self.sums += onehot @ d
+        self.weight += onehot.sum(axis=1)
+        self.wrong += onehot @ (terms.top != chunk.y)
+        if self.keep is not None:
+            self.keep[chunk.start : chunk.start + len(d)] = d
+
+    @staticmethod
+    def merge(lanes: Sequence[MomentSums]) -> MomentSums:
+        out = lanes[0]
+        for other in lanes[1:]:
+            out.sums += other.sums
+            out.weight += other.weight
+            out.wrong += other.wrong
+        return out
+
+
+class RowScores:
+    """Per-row scores of one pass, written by every lane at its rows' positions (9 bytes a row)."""
+
+    def __init__(self, n: int) -> None:
+        self.conf = np.empty(n)  # probability of the top class
+        self.correct = np.empty(n, dtype=bool)  # the top class is the label
+
+
+class ScoreSums:
+    """Sums behind the metrics of softmax(beta z), per part (a pass consumer).
+
+    Chunk by chunk: the total weight, NLL and Brier sums per part, the
+    top-label reliability sums (counts, confidence, correct) over
+    ``n_bins`` equal-width bins, and the classwise sums (probability and
+    label indicator per (class, bin), flat index class * M + bin). Per row
+    it keeps the top-label confidence and correctness (in a shared
+    :class:`RowScores`: the adaptive ECE needs them all). The probability
+    side of the classwise sums needs every entry: a softmax row has fewer than M
+    probabilities above the first edge 1/M; only those are binned one by
+    one, found by one comparison of the exponentials with a threshold per
+    chunk. The first bin of each class gets the rest, by subtraction from
+    the class's column sum (a matrix-vector product).
+    """
+
+    def __init__(self, parts: int, k: int, n_bins: int, rows: RowScores) -> None:
+        self.parts, self.k, self.n_bins, self.rows = parts, k, n_bins, rows
+        self.weight, self.nll, self.brier = np.zeros(parts), np.zeros(parts), np.zeros(parts)
+        self.bins = np.zeros((parts, 3, n_bins))
+        self.p_sum = np.zeros(parts * k * n_bins)
+        self.y_sum = np.zeros(parts * k * n_bins)
+        self.column = np.zeros(parts * k)  # sum of p per (part, class)
+        self.upper = np.zeros(parts * k)  # of which above the first edge
+        self.first = float(np.linspace(0.0, 1.0, n_bins + 1)[1])
+
+    def add(self, chunk: Chunk, terms: ExpTerms) -> None:
+        c = len(chunk.y)
+        at = slice(chunk.start, chunk.start + c)
+        log_total, beta, P = terms.log_total, terms.beta, self.parts
+        w = np.ones(c) if chunk.w is None else chunk.w
+        part = np.zeros(c, np.intp) if chunk.part is None else chunk.part.astype(np.intp)
+        conf = np.exp(beta * terms.zmax - log_total, out=self.rows.conf[at])
+        correct = np.equal(terms.top, chunk.y, out=self.rows.correct[at])
+        ids = bin_ids(conf, self.n_bins) + self.n_bins * part
+        for j, v in enumerate((w, w * conf, w * correct)):
+            self.bins[:, j] += np.bincount(ids, v, P * self.n_bins).reshape(P, self.n_bins)
+        log_py = beta * terms.zy - log_total
+        # sum_k (p_k - y_k)^2 = sum_k p_k^2 - 2 p_y + 1, sum_k p_k^2 = exp(L(2 beta) - 2 L(beta))
+        brier = np.exp(terms.sq_log_total - 2.0 * log_total) - 2.0 * np.exp(log_py) + 1.0
+        self.weight += np.bincount(part, w, P)
+        self.nll -= np.bincount(part, w * log_py, P)
+        self.brier += np.bincount(part, w * brier, P)
+        p_y = terms.probabilities(np.arange(c), chunk.y)  # as the classwise bins see it
+        np.add.at(self.y_sum, bin_ids(p_y, self.n_bins) + self.n_bins * chunk.y + (self.k * self.n_bins) * part, w)
+        self._classwise(terms, w, part)
+
+    def _classwise(self, terms: ExpTerms, w: np.ndarray, part: np.ndarray) -> None:
+        e, total, k, M = terms.e, terms.total, self.k, self.n_bins
+        c = len(total)
+        inv = (w / total).astype(e.dtype)
+        for p in range(self.parts):
+            coef = inv if self.parts == 1 else np.where(part == p, inv, e.dtype.type(0))
+            col = coef @ e
+            if terms.eps:  # p = e (1 + eps x) / total
+                col += e.dtype.type(terms.eps) * (coef @ terms.ex)
+            self.column[p * k : (p + 1) * k] += col
+        lo = float(total.min()) * self.first * (1.0 - 1e-5)  # p > 1/M needs e > total / M, give or take eps x
+        cand = np.flatnonzero(e.ravel() > e.dtype.type(lo))
+        if len(cand) > 4 * c * M:  # rows of very different totals: a threshold per row
+            lim = (total * self.first * (1.0 - 1e-5)).astype(e.dtype)
+            cand = np.flatnonzero((e > lim[:, None]).ravel())
+        rows, cols = np.divmod(cand, k)
+        p = terms.probabilities(rows, cols)
+        keep = p > self.first
+        rows, cols, p = rows[keep], cols[keep], p[keep]
+        wp = p * w[rows]
+        where = cols + k * part[rows]
+        np.add.at(self.p_sum, bin_ids(p, M) + M * where, wp)
+        np.add.at(self.upper, where, wp)
+
+
+    def classwise(self, part: int) -> tuple[np.ndarray, np.ndarray]:
+        """The (class, bin) sums of probabilities and labels of one part."""
+        size = self.k * self.n_bins
+        p_sum = self.p_sum[part * size : (part + 1) * size].copy()
+        rest = self.column - self.upper
+        p_sum[:: self.n_bins] += rest[part * self.k : (part + 1) * self.k]
+        return p_sum, self.y_sum[part * size : (part + 1) * size]
+
+    @staticmethod
+    def merge(lanes: Sequence[ScoreSums]) -> ScoreSums:
+        out = lanes[0]
+        for o in lanes[1:]:
+            for name in ("weight", "nll", "brier", "bins", "p_sum", "y_sum", "column", "upper"):
+                getattr(out, name).__iadd__(getattr(o, name))
+        return out
