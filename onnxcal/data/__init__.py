@@ -37,11 +37,11 @@ from pathlib import Path
 
 import numpy as np
 
-from . import _signals
-from ._files import require_file
-from ._limits import check_memory, check_range, format_bytes
-from .errors import OnnxcalError, OnnxcalWarning, first_line
-from .graph import TensorSpec
+from .. import _signals
+from .._files import require_file
+from .._limits import check_memory, check_range, format_bytes
+from ..errors import OnnxcalError, OnnxcalWarning, first_line
+from ..graph import TensorSpec
 
 LABELS_KEY = "labels"
 IMAGE_SUFFIXES = frozenset({".png", ".jpg", ".jpeg", ".bmp", ".gif", ".tif", ".tiff", ".webp", ".ppm", ".pgm"})
