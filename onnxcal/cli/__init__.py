@@ -36,15 +36,15 @@ from rich.progress import (
 from rich.table import Table
 from rich.text import Text
 
-from . import __version__, _files, _runenv, _signals, api
-from .capture import CPU, DEFAULT_BATCH, OPTIMIZATION_LEVELS, ProgressFn
-from .data import IMAGE_OPTIONS, DataSpec, Selection, parse_shard
-from .errors import OnnxcalError, OnnxcalWarning
-from .fit import FitOptions, FitSummary
-from .graph import DEFAULT_OUTPUT_NAME, ModelInfo, TensorSpec
-from .metrics import DEFAULT_BINS, METRIC_LABELS
-from .report import FORMATS, ReportResult, describe_scaling
-from .verify import VerifyResult, format_figure
+from .. import __version__, _files, _runenv, _signals, api
+from ..capture import CPU, DEFAULT_BATCH, OPTIMIZATION_LEVELS, ProgressFn
+from ..data import IMAGE_OPTIONS, DataSpec, Selection, parse_shard
+from ..errors import OnnxcalError, OnnxcalWarning
+from ..fit import FitOptions, FitSummary
+from ..graph import DEFAULT_OUTPUT_NAME, ModelInfo, TensorSpec
+from ..metrics import DEFAULT_BINS, METRIC_LABELS
+from ..report import FORMATS, ReportResult, describe_scaling
+from ..verify import VerifyResult, format_figure
 
 app = typer.Typer(
     name="onnxcal",
