@@ -1,0 +1,416 @@
+"""The commands: each parses its options, calls ``onnxcal.api`` and prints.
+
+They are plain functions here; :mod:`onnxcal.cli.app` registers them with
+the typer app (the function's name is the command's, its docstring the help).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated, Optional
+
+import typer
+
+from .. import api
+from ..data import DataSpec
+from ..fit import FitOptions
+from ..graph import DEFAULT_OUTPUT_NAME
+from ..metrics import DEFAULT_BINS
+from ..report import FORMATS
+from .console import err, out, print_json, progress_bar
+from .options import (
+    MAX_MODEL_BYTES,
+    ActivationOpt,
+    BinsOpt,
+    BootstrapOpt,
+    ComputeDtypeOpt,
+    DropLogitsOpt,
+    DropNonfiniteOpt,
+    FoldOpt,
+    ForceOpt,
+    HoldoutOpt,
+    JsonOpt,
+    L2Opt,
+    MaxModelBytesOpt,
+    MethodOpt,
+    ModelArg,
+    MultilabelOpt,
+    OutputHoldsOpt,
+    OutputNameOpt,
+    OutputOpt,
+    QuietOpt,
+    ScoreColumnsOpt,
+    SeedOpt,
+    data_options,
+)
+from .render import (
+    CAUTION,
+    how_patched,
+    render_fit,
+    render_info,
+    render_report,
+    render_verify,
+)
+
+
+def inspect(model: ModelArg, as_json: JsonOpt = False, max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES) -> None:
+    """Show a model's inputs, outputs, opset, class-score output and calibration record."""
+    info = api.inspect(model, max_model_bytes=max_model_bytes)
+    print_json(info.to_dict()) if as_json else render_info(info)
+
+
+@data_options(shard=True)
+def capture(
+    model: ModelArg,
+    out_path: Annotated[
+        Path, typer.Option("--out", help="Capture file to write (.npz).", show_default=False)
+    ],
+    output: OutputOpt = None,
+    activation: ActivationOpt = None,
+    output_holds: OutputHoldsOpt = None,
+    score_columns: ScoreColumnsOpt = None,
+    force: ForceOpt = False,
+    quiet: QuietOpt = False,
+    max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
+    *,
+    data: DataSpec,
+    runtime: dict,
+) -> None:
+    """Run the model on CPU over a labelled set and save its logits and labels.
+
+    The logits stream into the file batch by batch; it appears only when complete.
+    """
+    with progress_bar(quiet) as progress:
+        cap = api.capture(
+            model,
+            data,
+            out=out_path,
+            output=output,
+            force=force,
+            progress=progress,
+            activation=activation,
+            max_model_bytes=max_model_bytes,
+            output_holds=output_holds,
+            score_columns=score_columns,
+            **runtime,
+        )
+    for note in cap.notes:
+        out.print(f"note: {note}", soft_wrap=True)
+    out.print(
+        f"captured {cap.meta.n} x {cap.meta.num_classes} logits from '{cap.meta.scores}' "
+        f"-> {out_path}"
+    )
+
+
+def fit(
+    logits: Annotated[
+        list[Path],
+        typer.Argument(help="Capture file(s) from 'onnxcal capture'; several (e.g. shards) are merged.",
+                       metavar="LOGITS.npz...", show_default=False),
+    ],
+    out_path: Annotated[Optional[Path], typer.Option("--out", help="Write the fit to this JSON file.")] = None,
+    method: MethodOpt = "temperature",
+    multilabel: MultilabelOpt = None,
+    l2: L2Opt = 0.0,
+    holdout: HoldoutOpt = 0.25,
+    seed: SeedOpt = 0,
+    bootstrap: BootstrapOpt = 200,
+    bins: BinsOpt = 15,
+    drop_nonfinite: DropNonfiniteOpt = False,
+    force: ForceOpt = False,
+    as_json: JsonOpt = False,
+) -> None:
+    """Fit a calibration map to captured logits by minimising NLL; print before/after metrics.
+
+    The headline figures are on a held-out part (--holdout), with bootstrap
+    95% intervals (--bootstrap); the parameters written are refitted on all samples.
+    """
+    options = FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins)
+    summary = api.fit(logits, out=out_path, force=force, options=options, drop_nonfinite=drop_nonfinite)
+    if as_json:
+        print_json(summary.to_dict())
+        return
+    render_fit(summary)
+    if out_path is not None:
+        out.print(f"wrote {out_path}")
+    out.print(f"caution: {CAUTION}", soft_wrap=True)
+
+
+def patch(
+    model: ModelArg,
+    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False)],
+    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to bake in.")] = None,
+    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.")] = None,
+    output: OutputOpt = None,
+    output_name: OutputNameOpt = DEFAULT_OUTPUT_NAME,
+    drop_logits: DropLogitsOpt = False,
+    activation: ActivationOpt = None,
+    compute_dtype: ComputeDtypeOpt = None,
+    fold: FoldOpt = False,
+    output_holds: OutputHoldsOpt = None,
+    score_columns: ScoreColumnsOpt = None,
+    fitted_on_twin: Annotated[
+        bool,
+        typer.Option(
+            "--fitted-on-twin",
+            help="The --fit was made on another build of this model (its float16 or quantized twin); "
+            "without it a fit of a model with another sha256 is refused.",
+        ),
+    ] = False,
+    force: ForceOpt = False,
+    max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
+) -> None:
+    """Rewrite the graph so the model outputs calibrated probabilities (e.g. softmax(logits / T))."""
+    result = api.patch(
+        model,
+        out_path,
+        temperature=temperature,
+        fit=fit_file,
+        output=output,
+        output_name=output_name,
+        drop_logits=drop_logits,
+        activation=activation,
+        compute_dtype=compute_dtype,
+        fold=fold,
+        force=force,
+        max_model_bytes=max_model_bytes,
+        output_holds=output_holds,
+        score_columns=score_columns,
+        fitted_on_twin=fitted_on_twin,
+    )
+    r = result.record
+    what = f"T = {r.temperature:.4f}" if r.temperature is not None else f"{r.method} scaling"
+    out.print(f"{what}: {how_patched(r)}; calibrated output '{r.output}' -> {result.path}")
+
+
+VERIFY_EPILOG = (
+    "Exit status: 0 every check passed (skipped ones do not fail), 1 a check failed, "
+    "2 bad input (nothing is written then)."
+)
+"""The end of ``onnxcal verify --help``."""
+
+
+@data_options()
+def verify(
+    patched: Annotated[Path, typer.Argument(help="Patched model.", show_default=False)],
+    original: Annotated[
+        Optional[Path],
+        typer.Option("--original", help="The uncalibrated model (default: the path in the record)."),
+    ] = None,
+    scores: Annotated[
+        Optional[list[Path]],
+        typer.Option(
+            "--scores",
+            help="Capture file of the original model on the same data, instead of running it "
+            "(repeat for several files, in the data's order).",
+            show_default=False,
+            metavar="CAPTURE.npz",
+        ),
+    ] = None,
+    max_ece: Annotated[
+        Optional[float], typer.Option("--max-ece", help="Fail when the patched model's ECE on the labels is above this.")
+    ] = None,
+    max_nll: Annotated[
+        Optional[float], typer.Option("--max-nll", help="Fail when its NLL on the labels is above this.")
+    ] = None,
+    min_accuracy: Annotated[
+        Optional[float], typer.Option("--min-accuracy", help="Fail when its accuracy on the labels is below this.")
+    ] = None,
+    bins: BinsOpt = DEFAULT_BINS,
+    latency: Annotated[
+        bool,
+        typer.Option("--latency", help="Time the patched model against the original, alternating runs; report the ratio."),
+    ] = False,
+    max_latency_ratio: Annotated[
+        Optional[float],
+        typer.Option("--max-latency-ratio", help="Fail when median patched / original latency is above this (implies --latency)."),
+    ] = None,
+    latency_runs: Annotated[
+        int, typer.Option("--latency-runs", help="Timed runs of each model for --latency (1 to 100000).")
+    ] = api.DEFAULT_LATENCY_RUNS,
+    junit: Annotated[
+        Optional[Path], typer.Option("--junit", help="Also write the checks as JUnit XML to this file.")
+    ] = None,
+    drop_nonfinite: DropNonfiniteOpt = False,
+    force: ForceOpt = False,
+    as_json: JsonOpt = False,
+    quiet: QuietOpt = False,
+    max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
+    *,
+    data: DataSpec,
+    runtime: dict,
+) -> None:
+    """Check a patched model, e.g. for a CI gate; each check is reported with its figure.
+
+    (1) reference: the outputs against softmax(original logits / T) (or the
+    method's reference) in float64 NumPy, within the tolerance of the graph's
+    dtype, and row sums; (2) argmax or 0.5-threshold decisions as the
+    reference's; (3) record: the calibration record is present and its
+    parameters are the graph's, source: the original's sha256 is the
+    record's; (4) --max-ece, --max-nll, --min-accuracy on the labels; (5)
+    --latency. Without --original (or the recorded path) and --scores, (1)
+    and (2) use the patched graph's own logits and say so.
+    """
+    with progress_bar(quiet or as_json) as progress:
+        result = api.verify(
+            patched,
+            data,
+            original=original,
+            scores=scores or None,
+            max_ece=max_ece,
+            max_nll=max_nll,
+            min_accuracy=min_accuracy,
+            n_bins=bins,
+            latency=latency,
+            max_latency_ratio=max_latency_ratio,
+            latency_runs=latency_runs,
+            junit=junit,
+            force=force,
+            progress=progress,
+            max_model_bytes=max_model_bytes,
+            drop_nonfinite=drop_nonfinite,
+            **runtime,
+        )
+    print_json(result.to_dict()) if as_json else render_verify(result)
+    if junit is not None and not as_json:
+        out.print(f"wrote {junit}")
+    if not result.passed:
+        raise typer.Exit(1)
+
+
+def report(
+    captures: Annotated[
+        list[Path],
+        typer.Argument(
+            help="Capture file(s) from 'onnxcal capture' (several are read as one set).",
+            show_default=False,
+            metavar="CAPTURE.npz",
+        ),
+    ],
+    out_dir: Annotated[
+        Path, typer.Option("--out", help="Directory for the report (created if missing).", show_default=False)
+    ],
+    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to report on.")] = None,
+    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.")] = None,
+    model: Annotated[
+        Optional[Path], typer.Option("--model", help="A patched model: its calibration record gives the parameters.")
+    ] = None,
+    formats: Annotated[
+        str, typer.Option("--format", help=f"Comma-separated outputs among {','.join(FORMATS)}.")
+    ] = ",".join(FORMATS),
+    class_names: Annotated[
+        Optional[Path],
+        typer.Option("--classes", help="Class names, one per line, in the model's class order "
+                     "(default: those recorded in the capture)."),
+    ] = None,
+    bins: Annotated[
+        Optional[int], typer.Option("--bins", help="Bins, 2 to 100000 (default: the fit's, else 15).")
+    ] = None,
+    drop_nonfinite: DropNonfiniteOpt = False,
+    force: ForceOpt = False,
+    max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
+) -> None:
+    """Write report.html (self-contained), summary.md, report.json and the plots as PNG files.
+
+    Give the parameters with one of --temperature, --fit or --model. On the
+    capture a fit was made on, the figures are those of its held-out part.
+    """
+    result = api.report(
+        captures,
+        out_dir,
+        temperature=temperature,
+        fit=fit_file,
+        model=model,
+        formats=formats,
+        class_names=class_names,
+        n_bins=bins,
+        force=force,
+        drop_nonfinite=drop_nonfinite,
+        max_model_bytes=max_model_bytes,
+    )
+    for note in result.content["notes"]:
+        if note.startswith("dropped "):
+            out.print(f"note: {note}", soft_wrap=True)
+    render_report(result)
+    out.print(f"caution: {CAUTION}", soft_wrap=True)
+
+
+@data_options()
+def calibrate(
+    model: ModelArg,
+    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False)],
+    output: OutputOpt = None,
+    output_name: OutputNameOpt = DEFAULT_OUTPUT_NAME,
+    drop_logits: DropLogitsOpt = False,
+    activation: ActivationOpt = None,
+    compute_dtype: ComputeDtypeOpt = None,
+    fold: FoldOpt = False,
+    output_holds: OutputHoldsOpt = None,
+    score_columns: ScoreColumnsOpt = None,
+    method: MethodOpt = "temperature",
+    multilabel: MultilabelOpt = None,
+    l2: L2Opt = 0.0,
+    holdout: HoldoutOpt = 0.25,
+    seed: SeedOpt = 0,
+    bootstrap: BootstrapOpt = 200,
+    bins: BinsOpt = 15,
+    report_dir: Annotated[
+        Optional[Path],
+        typer.Option("--report", help="Also write the report (as 'onnxcal report') into this directory."),
+    ] = None,
+    drop_nonfinite: DropNonfiniteOpt = False,
+    force: ForceOpt = False,
+    as_json: JsonOpt = False,
+    quiet: QuietOpt = False,
+    max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
+    *,
+    data: DataSpec,
+    runtime: dict,
+) -> None:
+    """Capture, fit, patch and verify in one go; print the before/after table.
+
+    The patched model is not written when verification fails (exit 1); the
+    report, when asked for, is written either way.
+    """
+    with progress_bar(quiet or as_json) as progress:
+        result = api.calibrate(
+            model,
+            data,
+            out_path,
+            output=output,
+            output_name=output_name,
+            drop_logits=drop_logits,
+            activation=activation,
+            compute_dtype=compute_dtype,
+            fold=fold,
+            force=force,
+            progress=progress,
+            options=FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins),
+            report=report_dir,
+            drop_nonfinite=drop_nonfinite,
+            max_model_bytes=max_model_bytes,
+            output_holds=output_holds,
+            score_columns=score_columns,
+            **runtime,
+        )
+    if as_json:
+        print_json(
+            {
+                "fit": result.summary.to_dict(),
+                "verify": result.verification.to_dict(),
+                "written": result.patch.path if result.patch else None,
+                "report": list(result.report.files) if result.report else None,
+            }
+        )
+    else:
+        render_fit(result.summary)
+        render_verify(result.verification)
+        if result.report is not None:
+            render_report(result.report, verdict=False)
+        if result.patch is not None:
+            r = result.patch.record
+            out.print(f"wrote {result.patch.path} (calibrated output '{r.output}')")
+            out.print(f"caution: {CAUTION}", soft_wrap=True)
+    if result.patch is None:
+        err.print(f"error: verification failed; '{out_path}' was not written")
+        raise typer.Exit(1)

@@ -1,0 +1,256 @@
+"""The options of the commands, declared once: those several commands take
+(``--output``, ``--force``, ``--method`` ...) as ``Annotated`` types, and the
+data, image and runtime options of capture, calibrate and verify as the
+decorator :func:`data_options`, which hands a command a
+:class:`~onnxcal.data.DataSpec` and the ``api`` run keywords.
+"""
+
+from __future__ import annotations
+
+import functools
+import inspect as _inspect
+import typing
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Annotated, Optional
+
+import typer
+
+from ..capture import CPU, DEFAULT_BATCH, OPTIMIZATION_LEVELS
+from ..data import IMAGE_OPTIONS, DataSpec, Selection, parse_shard
+from ..errors import OnnxcalError
+
+# --------------------------------------------------------------------------
+# Shared options
+
+ModelArg = Annotated[Path, typer.Argument(help="The ONNX model file.", show_default=False)]
+OutputOpt = Annotated[
+    Optional[str],
+    typer.Option("--output", help="The class-score output (default: the likeliest float output)."),
+]
+ForceOpt = Annotated[bool, typer.Option("--force", help="Replace an existing output file.")]
+JsonOpt = Annotated[bool, typer.Option("--json", help="Print JSON instead of a table.")]
+QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress bar.")]
+OutputNameOpt = Annotated[
+    str, typer.Option("--output-name", help="Name of the added output when the model ends in logits.")
+]
+DropLogitsOpt = Annotated[
+    bool, typer.Option("--drop-logits", help="Remove the logits output when a new output is added.")
+]
+ActivationOpt = Annotated[
+    Optional[str],
+    typer.Option(
+        "--activation",
+        help="softmax or sigmoid: what turns raw logits into probabilities "
+        "(default: sigmoid for one logit, softmax otherwise).",
+    ),
+]
+ComputeDtypeOpt = Annotated[
+    Optional[str],
+    typer.Option(
+        "--compute-dtype",
+        help="float32 or float64: run the Div and activation in this dtype (Casts "
+        "around them; e.g. for float16 models). The output keeps its dtype.",
+    ),
+]
+OutputHoldsOpt = Annotated[
+    Optional[str],
+    typer.Option(
+        "--output-holds",
+        help="logits, probabilities or log-probabilities: what the output holds, when the graph cannot tell "
+        "(checked against the data; by default the graph says, and an output of raw logits whose rows are "
+        "probabilities is read as probabilities).",
+    ),
+]
+ScoreColumnsOpt = Annotated[
+    Optional[str],
+    typer.Option(
+        "--score-columns",
+        metavar="START:STOP",
+        help="When the output concatenates class scores with other values (a detector's boxes and "
+        "sigmoid scores), calibrate only the scores: positions START to STOP-1 along the Concat's axis, as "
+        "the refusal lists them. The other positions stay byte-identical.",
+    ),
+]
+FoldOpt = Annotated[
+    bool,
+    typer.Option(
+        "--fold",
+        help="Fold the scaling into the weight and bias of the Gemm / MatMul(+Add) computing the "
+        "logits (1/T, or per class w and b for vector, Platt and per-label scaling) instead of adding nodes.",
+    ),
+]
+MethodOpt = Annotated[
+    str,
+    typer.Option(
+        "--method",
+        help="temperature (softmax(z/T), or sigmoid(z/T) for one logit), vector "
+        "(softmax(w*z+b), per class) or platt (sigmoid(a*z+b), one logit).",
+    ),
+]
+MultilabelOpt = Annotated[
+    Optional[str],
+    typer.Option(
+        "--multilabel",
+        help="For N x K 0/1 labels: 'shared' (one T for all labels, the default) or 'per-label' (one T each).",
+    ),
+]
+L2Opt = Annotated[
+    float,
+    typer.Option("--l2", help="Penalty l2*(sum (w-1)^2 + sum b^2) added to the NLL (vector, platt; 0 to 1e6)."),
+]
+HoldoutOpt = Annotated[
+    float,
+    typer.Option(
+        "--holdout",
+        help="Fraction held out (stratified) to score the fit on, 0 to 0.9; 0 scores in-sample.",
+    ),
+]
+SeedOpt = Annotated[int, typer.Option("--seed", help="Seed of the holdout split and the bootstrap (0 to 2^32-1).")]
+BootstrapOpt = Annotated[
+    int, typer.Option("--bootstrap", help="Bootstrap replicates for 95% intervals (0 to 10000); 0 skips them.")
+]
+BinsOpt = Annotated[int, typer.Option("--bins", help="Bins of the ECEs (2 to 100000).")]
+MaxModelBytesOpt = Annotated[
+    str,
+    typer.Option(
+        "--max-model-bytes",
+        help="Refuse a model file larger than this, before reading it (with its external data when the "
+        "command runs the model): bytes, or a size such as 512MiB or 8GiB.",
+        metavar="SIZE",
+    ),
+]
+MAX_MODEL_BYTES = "8GiB"
+DropNonfiniteOpt = Annotated[
+    bool,
+    typer.Option(
+        "--drop-nonfinite",
+        help="Leave out the samples whose logits are NaN or Inf (and say how many) instead of refusing them.",
+    ),
+]
+
+
+# --------------------------------------------------------------------------
+# Data, image and runtime options, shared by capture, calibrate and verify
+
+
+def _option(name: str, kind, default, flag: str, help: str, **extra) -> _inspect.Parameter:
+    extra.setdefault("show_default", default is not None)
+    option = typer.Option(flag, help=help, **extra)
+    return _inspect.Parameter(
+        name, _inspect.Parameter.KEYWORD_ONLY, default=default, annotation=Annotated[kind, option]
+    )
+
+
+_SHARED_OPTIONS = (
+    _option("data", Optional[Path], None, "--data",
+            "Validation set: .npz (one array per model input, plus 'labels'), .npy (a one-input "
+            "model), .csv table, or a folder of images (one subfolder per class)."),
+    _option("inputs", Optional[list[str]], None, "--input",
+            "One .npy per model input (memory-mapped); repeat for each input.", metavar="NAME=FILE.npy"),
+    _option("labels", Optional[Path], None, "--labels",
+            "Labels .npy (with --input), or a CSV mapping image files to classes "
+            "(columns 'file' and the label column)."),
+    _option("label_column", Optional[str], None, "--label-column", "Label column of a CSV (default 'label')."),
+    _option("feature_columns", Optional[str], None, "--feature-columns",
+            "CSV columns fed to the model, in order (default: all but the label).", metavar="A,B,..."),
+    _option("classes", Optional[Path], None, "--classes",
+            "Class names, one per line, in the model's class order; string labels are mapped through it."),
+    _option("limit", Optional[int], None, "--limit", "Use at most N samples (N >= 1).", metavar="N"),
+    _option("shuffle_seed", Optional[int], None, "--shuffle-seed",
+            "Take --limit/--shard samples from a random permutation with this seed (0 to 2^32-1).", metavar="SEED"),
+    _option("shard", Optional[str], None, "--shard",
+            "Capture the I-th of N deterministic slices (1 <= I <= N); 'onnxcal fit' merges the files.",
+            metavar="I/N"),
+    _option("preprocess", Optional[Path], None, "--preprocess",
+            "Image options below as a TOML or JSON file (options given here win)."),
+    _option("resize", Optional[int], None, "--resize", "Image: resize the shorter side to N pixels (1 to 65535).",
+            metavar="N"),
+    _option("crop", Optional[str], None, "--crop", "Image: centre crop (sides of 1 to 65535 pixels).", metavar="N|HxW"),
+    _option("scale", Optional[bool], None, "--scale/--no-scale",
+            "Image: divide pixels by 255 (default: yes for float inputs).", show_default=False),
+    _option("mean", Optional[str], None, "--mean", "Image: per-channel mean, subtracted after scaling.",
+            metavar="M[,M,M]"),
+    _option("std", Optional[str], None, "--std", "Image: per-channel std, divided by after the mean.",
+            metavar="S[,S,S]"),
+    _option("channel_order", Optional[str], None, "--channel-order", "Image: RGB (default) or BGR.",
+            metavar="RGB|BGR"),
+    _option("layout", Optional[str], None, "--layout", "Image: NCHW or NHWC (default: from the model).",
+            metavar="NCHW|NHWC"),
+    _option("dtype", Optional[str], None, "--dtype", "Image: input dtype (default: the model's).", metavar="DTYPE"),
+    _option("interpolation", Optional[str], None, "--interpolation",
+            "Image: resize filter: nearest, bilinear (default), bicubic, lanczos.", metavar="FILTER"),
+    _option("batch_size", Optional[int], None, "--batch-size",
+            f"Samples per onnxruntime call, 1 to 16777216 (default: {DEFAULT_BATCH}, doubled while onnxcal's own "
+            "work per call costs more than 5 % of the call).", min=1, metavar="N"),
+    _option("threads", int, 0, "--threads",
+            "onnxruntime intra-op threads (0: its default; at most 4 per core, or 64).", min=0),
+    _option("optimization", str, "all", "--optimization",
+            f"Graph optimisation level: {', '.join(OPTIMIZATION_LEVELS)}."),
+    _option("provider", str, CPU, "--provider", "onnxruntime execution provider."),
+)
+"""Data, image and runtime options shared by capture, calibrate and verify."""
+
+_RUNTIME_KEYS = ("batch_size", "threads", "optimization", "provider")
+
+
+def _input_files(values: Sequence[str] | None) -> dict[str, str]:
+    files: dict[str, str] = {}
+    for item in values or ():
+        name, sep, path = item.partition("=")
+        if not sep or not name.strip() or not path.strip():
+            raise OnnxcalError(f"--input '{item}' is not of the form NAME=FILE.npy", "e.g. --input input_ids=ids.npy")
+        if name.strip() in files:
+            raise OnnxcalError(f"--input gives model input '{name.strip()}' twice", "give each input once")
+        files[name.strip()] = path.strip()
+    return files
+
+
+def _spec(values: dict) -> DataSpec:
+    columns = values["feature_columns"]
+    shard = values.get("shard")
+    return DataSpec(
+        path=values["data"],
+        inputs=_input_files(values["inputs"]),
+        labels=values["labels"],
+        label_column=values["label_column"],
+        feature_columns=[c.strip() for c in columns.split(",") if c.strip()] if columns is not None else None,
+        classes=values["classes"],
+        preprocess=values["preprocess"],
+        image={k: values[k] for k in IMAGE_OPTIONS if values[k] is not None},
+        selection=Selection(values["limit"], values["shuffle_seed"], parse_shard(shard) if shard else None),
+    )
+
+
+def data_options(*, shard: bool = False) -> Callable:
+    """Give a command the shared data/image/runtime options.
+
+    The command declares keyword parameters ``data`` (it receives a
+    :class:`~onnxcal.data.DataSpec`) and ``runtime`` (a dict of the
+    ``api`` run keywords); the options themselves are :data:`_SHARED_OPTIONS`,
+    so every command documents them alike.
+    """
+    shared = [p for p in _SHARED_OPTIONS if shard or p.name != "shard"]
+
+    def decorate(fn: Callable) -> Callable:
+        own_hints = typing.get_type_hints(fn, include_extras=True)
+        own = [
+            p.replace(kind=_inspect.Parameter.KEYWORD_ONLY, annotation=own_hints[p.name])
+            for p in _inspect.signature(fn).parameters.values()
+            if p.name not in ("data", "runtime")
+        ]
+        names = [p.name for p in shared]
+
+        @functools.wraps(fn)
+        def command(**kwargs):
+            values = {name: kwargs.pop(name) for name in names}
+            runtime = {k: values[k] for k in _RUNTIME_KEYS}
+            return fn(**kwargs, data=_spec(values), runtime=runtime)
+
+        params = own + shared
+        command.__signature__ = _inspect.Signature(params)
+        command.__annotations__ = {p.name: p.annotation for p in params}
+        del command.__wrapped__  # typer must read the new signature, not fn's
+        return command
+
+    return decorate
