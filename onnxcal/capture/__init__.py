@@ -39,14 +39,14 @@ from typing import ClassVar
 import numpy as np
 import onnx
 
-from . import __version__, _signals
-from ._files import atomic_path, require_file
-from .data import Dataset, check_label_array, check_labels, match_inputs, read_npz
-from ._limits import check_memory, check_range, format_bytes
-from .errors import OnnxcalError, OnnxcalWarning, first_line
-from .graph import ScoreSite, expose_scores, find_scores, fit_kind, np_dtype, tensor_spec
-from .graph.external import ORT_FOLDER_OPTION, for_onnxruntime
-from .guard import PROBE_ROWS, RowStats
+from .. import __version__, _signals
+from .._files import atomic_path, require_file
+from ..data import Dataset, check_label_array, check_labels, match_inputs, read_npz
+from .._limits import check_memory, check_range, format_bytes
+from ..errors import OnnxcalError, OnnxcalWarning, first_line
+from ..graph import ScoreSite, expose_scores, find_scores, fit_kind, np_dtype, tensor_spec
+from ..graph.external import ORT_FOLDER_OPTION, for_onnxruntime
+from ..guard import PROBE_ROWS, RowStats
 
 ProgressFn = Callable[[str, int, int], None]
 """Called as ``progress(description, samples_done, samples_total)`` after each batch."""
