@@ -35,7 +35,7 @@ def _run_block(
     """Run a block's inputs ``step`` samples per call: the outputs concatenated, and
     (when ``timed``) the seconds spent in the runtime."""
     count = len(next(iter(feed.values())))
-    names, items, run = list(plan.names), list(feed.items()), plan.session.run
+    names, items, run, fed = list(plan.names), list(feed.items()), plan.session.run, dataset.feed
     got: list[list[np.ndarray]] = []
     spent, s = 0.0, 0
     try:
@@ -45,10 +45,10 @@ def _run_block(
                 batch = padded(batch, plan.pad)
             if timed:
                 t0 = time.perf_counter()
-                got.append(run(names, batch))
+                got.append(run(names, fed(batch)))
                 spent += time.perf_counter() - t0
             else:
-                got.append(run(names, batch))
+                got.append(run(names, fed(batch)))
     except Exception as exc:  # onnxruntime raises its own exception types
         rows = dataset.row_numbers()
         raise OnnxcalError(

@@ -25,29 +25,40 @@ def graph_inputs(model: onnx.ModelProto) -> list[onnx.ValueInfoProto]:
     return [vi for vi in model.graph.input if vi.name not in init]
 
 
-def _fixed_batch(model: onnx.ModelProto) -> int | None:
+def _fixed_batch(model: onnx.ModelProto, dataset: Dataset | None = None) -> int | None:
+    """The fixed batch size of the first input the data feed per sample (on its batch axis), or None."""
+    constants = dataset.constants if dataset is not None else {}
+    axes = dataset.batch_axes if dataset is not None else {}
     for vi in graph_inputs(model):
         shape = tensor_spec(vi).shape
-        if shape and isinstance(shape[0], int) and shape[0] > 0:
-            return shape[0]
+        if vi.name in constants or not shape:
+            continue
+        dim = shape[axes.get(vi.name, 0)]
+        if isinstance(dim, int) and dim > 0:
+            return dim
     return None
 
 
-def free_batch_dim(model: onnx.ModelProto, batch: int) -> onnx.ModelProto:
-    """A copy of ``model`` whose inputs' and outputs' leading dim ``batch`` is symbolic.
+def free_batch_dim(
+    model: onnx.ModelProto, batch: int, axes: Mapping[str, int] | None = None, constants: Sequence[str] = ()
+) -> onnx.ModelProto:
+    """A copy of ``model`` whose inputs' and outputs' batch dim ``batch`` is symbolic.
 
-    Intermediate shape annotations (``value_info``) are dropped from the copy
-    so that onnxruntime infers them again; the copy is for running only.
+    The batch dim is the leading one, or the one ``axes`` gives for an input;
+    ``constants`` (inputs fed as they are) keep their shape. Intermediate
+    shape annotations (``value_info``) are dropped from the copy so that
+    onnxruntime infers them again; the copy is for running only.
     """
     out = onnx.ModelProto()
     out.CopyFrom(model)
-    init = {i.name for i in out.graph.initializer}
+    init = {i.name for i in out.graph.initializer} | set(constants)
     for vi in [*out.graph.input, *out.graph.output]:
         if vi.name in init or not vi.type.HasField("tensor_type"):
             continue
         dims = vi.type.tensor_type.shape.dim
-        if len(dims) and dims[0].HasField("dim_value") and dims[0].dim_value == batch:
-            dims[0].dim_param = "onnxcal_batch"
+        at = (axes or {}).get(vi.name, 0)
+        if len(dims) > at and dims[at].HasField("dim_value") and dims[at].dim_value == batch:
+            dims[at].dim_param = "onnxcal_batch"
     del out.graph.value_info[:]
     return out
 
@@ -100,11 +111,13 @@ def check_input_memory(model: onnx.ModelProto, batch_size: int, dataset: Dataset
         Naming the largest input, its shape and ``--batch-size``.
     """
     needs = []
+    constants = dataset.constants if dataset is not None else {}
+    axes = dataset.batch_axes if dataset is not None else {}
     for vi in graph_inputs(model):
         spec = tensor_spec(vi)
-        if spec.shape is None or not spec.shape:
+        if spec.shape is None or not spec.shape or spec.name in constants:  # constants: one copy, not per sample
             continue
-        first = spec.shape[0]
+        first = spec.shape[axes.get(spec.name, 0)]
         batch = max(batch_size, first if isinstance(first, int) and first > 0 else 0)
         if dataset is not None and spec.name in dataset.inputs:
             row, where = tuple(dataset.inputs[spec.name].shape[1:]), "in the data"
@@ -138,7 +151,7 @@ def plan_run(
     check_input_memory(model, batch, dataset)
     session = make_session(model, options)
     dtypes = _dtypes(model, session)
-    fixed = _fixed_batch(model)
+    fixed = _fixed_batch(model, dataset)
     if fixed is None:
         return RunPlan(session, tuple(names), dtypes, batch, None, "batched", grow)
     native = RunPlan(session, tuple(names), dtypes, fixed, fixed, "fixed")
@@ -146,7 +159,8 @@ def plan_run(
         return native
     probe = min(batch, dataset.n)
     try:
-        freed = RunPlan(make_session(free_batch_dim(model, fixed), options), tuple(names), dtypes,
+        copy = free_batch_dim(model, fixed, dataset.batch_axes, tuple(dataset.constants))
+        freed = RunPlan(make_session(copy, options), tuple(names), dtypes,
                         batch, None, "freed", grow)
         got = run_batch(freed, dataset, 0, probe)
         reason = _disagreement(got, run_span(native, dataset, 0, probe), names, probe, fixed)
@@ -209,7 +223,7 @@ def run_batch(
     if plan.pad is not None and count < plan.pad:  # pad a short batch of a fixed-batch model
         feed = padded(feed, plan.pad)
     try:
-        outs = plan.session.run(list(plan.names), feed)
+        outs = plan.session.run(list(plan.names), dataset.feed(feed))
     except Exception as exc:  # onnxruntime raises its own exception types
         rows = dataset.row_numbers()
         raise OnnxcalError(

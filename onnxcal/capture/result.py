@@ -65,6 +65,13 @@ class CaptureMeta:
     score_columns : str
         ``"START:STOP"`` when only these positions of a Concat output are
         class scores (``--score-columns``); "" otherwise.
+    constants : dict of str to str
+        Inputs given once (``--constant``): the number, ``zeros``, or the
+        file name (``array`` from Python) and SHA-256 of an array's bytes.
+        ``verify`` of a model patched from this capture re-uses the numbers
+        and zeros when given none.
+    batch_axes : dict of str to int
+        Inputs whose samples lie on another axis than 0 (``--batch-axis``).
     """
 
     model_sha256: str
@@ -91,6 +98,8 @@ class CaptureMeta:
     logits_from: str = "tensor"
     spelling: str = ""
     score_columns: str = ""
+    constants: dict[str, str] = field(default_factory=dict)
+    batch_axes: dict[str, int] = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         return asdict(self)
