@@ -161,3 +161,14 @@ class Capture:
         if self.indices is not None:
             return self.indices
         return np.arange(self.meta.data_total or len(self.labels), dtype=np.int64)
+
+    @property
+    def rows_per_sample(self) -> int:
+        """Score rows per sample: 1 for a classifier, T for a per-position head, H x W per pixel."""
+        return max(1, len(self.logits) // max(1, len(self.sample_indices())))
+
+    def groups(self) -> np.ndarray | None:
+        """The sample of each score row (0, 0, ..., 1, 1, ...: rows are sample-major), or None
+        when every sample is one row; the holdout and the bootstrap resample whole samples by it."""
+        r = self.rows_per_sample
+        return None if r == 1 else np.arange(len(self.logits), dtype=np.int64) // r
