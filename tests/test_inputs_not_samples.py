@@ -167,3 +167,23 @@ def test_the_refusals_name_the_input_and_why(case: dict[str, object]) -> None:
     with pytest.raises(OnnxcalError, match=r"constant 'h0' has size 2 on axis 1, the batch axis"):
         api.capture(model, DataSpec(path=_dir(case) / "val_x.npz",
                                     constants={"sr": 1, "h0": np.zeros((1, 2, hm.STATE_H), np.float32)}))
+
+
+def test_a_csv_table_feeds_the_other_input_beside_a_constant(tmp_path: Path) -> None:
+    from onnx import TensorProto, helper, numpy_helper
+
+    w = np.random.default_rng(6).normal(size=(3, 2)).astype(np.float32)
+    graph = helper.make_graph(
+        [helper.make_node("MatMul", ["x", "w"], ["proj"]), helper.make_node("Mul", ["proj", "gain"], ["z"]),
+         helper.make_node("Softmax", ["z"], ["p"], axis=1)],
+        "gain", [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 3]),
+                 helper.make_tensor_value_info("gain", TensorProto.FLOAT, [])],
+        [helper.make_tensor_value_info("p", TensorProto.FLOAT, ["N", 2])], [numpy_helper.from_array(w, "w")])
+    onnx.save(helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)]), tmp_path / "m.onnx")
+    x = np.random.default_rng(7).normal(size=(40, 3)).astype(np.float32)
+    rows = "".join(f"{a:.6f},{b:.6f},{c:.6f},{i % 2}\n" for i, (a, b, c) in enumerate(x))
+    (tmp_path / "val.csv").write_text("a,b,c,label\n" + rows)
+    cap = api.capture(tmp_path / "m.onnx", DataSpec(path=tmp_path / "val.csv", constants={"gain": 2.5}))
+    x_csv = np.loadtxt(tmp_path / "val.csv", delimiter=",", skiprows=1, usecols=(0, 1, 2), dtype=np.float32)
+    want = (x_csv @ w) * np.float32(2.5)  # ONNX MatMul and Mul, by NumPy
+    np.testing.assert_allclose(cap.logits, want, rtol=1e-5, atol=1e-6)

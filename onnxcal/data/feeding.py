@@ -327,12 +327,12 @@ def with_constants(ds: Dataset, spec: DataSpec, specs: Sequence[TensorSpec]) -> 
     """
     by_name = {s.name: s for s in specs}
     for name in spec.constants:
-        if name in ds.inputs and np.ndim(ds.inputs[name]) > 0:
+        if name in ds.inputs and getattr(ds.inputs[name], "ndim", 1) > 0:
             raise OnnxcalError(
                 f"input '{name}' is given both in '{ds.source}' and by --constant",
                 f"drop one of them (the array '{name}' or --constant {name}=...)",
             )
-    scalars = {k: v for k, v in ds.inputs.items() if np.ndim(v) == 0 and k in by_name}
+    scalars = {k: v for k, v in ds.inputs.items() if getattr(v, "ndim", 1) == 0 and k in by_name}
     values: dict[str, ConstantValue] = {k: np.asarray(v)[()] for k, v in scalars.items()}
     values.update(spec.constants)
     if not values:
