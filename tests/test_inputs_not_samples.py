@@ -144,6 +144,8 @@ def test_calibrate_fits_the_temperature_of_the_true_logits(case: dict[str, objec
     feeds = _feeds(_arr(case, "x"), 16000, _arr(case, "h0"))
     state = hm.run(patched, feeds, ["hn"])[0]
     np.testing.assert_array_equal(state, hm.run(case["model"], feeds, ["hn"])[0])  # type: ignore[arg-type]
+    identity = next(c for c in result.verification.checks if c.name == "identity")
+    assert identity.passed and "'hn'" in identity.detail and "not compared" not in identity.detail
 
 
 @pytest.mark.xfail(strict=True, reason="verify's re-use is wired into api after issue 13's split of api.py")

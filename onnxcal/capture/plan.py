@@ -69,7 +69,9 @@ class RunPlan:
 
     ``mode`` is ``"batched"``, ``"freed"`` or ``"fixed"`` (see :class:`CaptureMeta`);
     ``pad`` is the fixed batch size that short batches are padded to; with
-    ``grow`` the batch size ``step`` is automatic (see :func:`run_batches`).
+    ``grow`` the batch size ``step`` is automatic (see :func:`run_batches`);
+    ``out_axes`` gives, per name, the axis of its samples when not 0 (a
+    recurrent state 1 x N x H), along which batches are cut and joined.
     """
 
     session: object
@@ -79,7 +81,16 @@ class RunPlan:
     pad: int | None
     mode: str
     grow: bool = False
+    out_axes: tuple[int, ...] = ()
 
+    def axis(self, i: int) -> int:
+        """The samples' axis of output ``i``."""
+        return self.out_axes[i] if self.out_axes else 0
+
+
+def first(arr: np.ndarray, count: int, axis: int) -> np.ndarray:
+    """The first ``count`` samples of ``arr`` along ``axis`` (a padded batch cut back)."""
+    return arr[(slice(None),) * axis + (slice(0, count),)]
 
 def _dtypes(model: onnx.ModelProto, session: Any) -> dict[str, str | None]:
     """The dtype to cast each session input to (None when the model does not say)."""
@@ -143,8 +154,11 @@ def plan_run(
     dataset: Dataset,
     names: Sequence[str],
     options: RunOptions | None = None,
+    out_axes: Sequence[int] = (),
 ) -> RunPlan:
-    """Open a session for ``model`` and decide the batching (see the module docstring)."""
+    """Open a session for ``model`` and decide the batching (see the module docstring);
+    ``out_axes`` as in :class:`RunPlan`."""
+    axes = tuple(out_axes)
     options = options or RunOptions()
     grow = options.batch_size is None
     batch = DEFAULT_BATCH if grow else options.batch_size
@@ -153,15 +167,15 @@ def plan_run(
     dtypes = _dtypes(model, session)
     fixed = _fixed_batch(model, dataset)
     if fixed is None:
-        return RunPlan(session, tuple(names), dtypes, batch, None, "batched", grow)
-    native = RunPlan(session, tuple(names), dtypes, fixed, fixed, "fixed")
+        return RunPlan(session, tuple(names), dtypes, batch, None, "batched", grow, axes)
+    native = RunPlan(session, tuple(names), dtypes, fixed, fixed, "fixed", out_axes=axes)
     if batch <= fixed or dataset.n <= fixed:
         return native
     probe = min(batch, dataset.n)
     try:
         copy = free_batch_dim(model, fixed, dataset.batch_axes, tuple(dataset.constants))
         freed = RunPlan(make_session(copy, options), tuple(names), dtypes,
-                        batch, None, "freed", grow)
+                        batch, None, "freed", grow, axes)
         got = run_batch(freed, dataset, 0, probe)
         reason = _disagreement(got, run_span(native, dataset, 0, probe), names, probe, fixed)
     except OnnxcalError as exc:
@@ -182,7 +196,7 @@ def plan_run(
 def run_span(plan: RunPlan, dataset: Dataset, start: int, stop: int) -> list[np.ndarray]:
     """Selected rows ``start..stop-1`` run ``plan.step`` samples per call, the outputs concatenated."""
     parts = [run_batch(plan, dataset, s, min(s + plan.step, stop)) for s in range(start, stop, plan.step)]
-    return [np.concatenate(p) for p in zip(*parts, strict=True)]
+    return [np.concatenate(p, axis=plan.axis(i)) for i, p in enumerate(zip(*parts, strict=True))]
 
 
 def _disagreement(
@@ -230,7 +244,9 @@ def run_batch(
             f"{runtime_failure(exc)} on rows {int(rows[start])}..{int(rows[stop - 1])} of '{dataset.source}'",
             "check that the data matches the model's inputs",
         ) from exc
-    return [np.asarray(o)[:count] if plan.pad is not None else np.asarray(o) for o in outs]
+    if plan.pad is None:
+        return [np.asarray(o) for o in outs]
+    return [first(np.asarray(o), count, plan.axis(i)) for i, o in enumerate(outs)]
 
 
 def padded(feed: Mapping[str, np.ndarray], size: int) -> dict[str, np.ndarray]:
