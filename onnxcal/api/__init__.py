@@ -18,14 +18,14 @@ from pathlib import Path
 import numpy as np
 import onnx
 
-from . import capture as _capture
-from . import fit as _fit
-from . import graph
-from . import guard as _guard
-from . import reading as _reading
-from . import report as _report
-from . import verify as _verify
-from ._files import (
+from .. import capture as _capture
+from .. import fit as _fit
+from .. import graph
+from .. import guard as _guard
+from .. import reading as _reading
+from .. import report as _report
+from .. import verify as _verify
+from .._files import (
     atomic_write_bytes,
     atomic_write_files,
     check_not_input,
@@ -35,17 +35,17 @@ from ._files import (
     require_file,
     sha256_file,
 )
-from ._limits import DEFAULT_MAX_MODEL_BYTES, MAX_BINS, check_bins_memory, check_memory, check_range, parse_size
-from ._numeric import check_in_dtype, max_abs
-from .capture import Capture, ProgressFn, RunOptions
-from .data import Dataset, DataSpec, check_selection, load_dataset
-from .errors import OnnxcalError, OnnxcalWarning
-from .fit import FitOptions, FitSummary
-from .graph import ModelInfo, Record
-from .metrics import DEFAULT_BINS, evaluate, scores_from_probabilities
-from .report import ReportResult
-from .scaling import METHODS, MULTILABEL_MODES, Scaling, check_scaling, kind_of
-from .verify import Check, VerifyResult
+from .._limits import DEFAULT_MAX_MODEL_BYTES, MAX_BINS, check_bins_memory, check_memory, check_range, parse_size
+from .._numeric import check_in_dtype, max_abs
+from ..capture import Capture, ProgressFn, RunOptions
+from ..data import Dataset, DataSpec, check_selection, load_dataset
+from ..errors import OnnxcalError, OnnxcalWarning
+from ..fit import FitOptions, FitSummary
+from ..graph import ModelInfo, Record
+from ..metrics import DEFAULT_BINS, evaluate, scores_from_probabilities
+from ..report import ReportResult
+from ..scaling import METHODS, MULTILABEL_MODES, Scaling, check_scaling, kind_of
+from ..verify import Check, VerifyResult
 
 DEFAULT_LATENCY_RUNS = 100
 MAX_LATENCY_RUNS = 100_000
