@@ -22,7 +22,7 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 
-from .binning import (  # noqa: F401  (re-exported: part of this module's interface)
+from ..binning import (  # noqa: F401  (re-exported: part of this module's interface)
     DEFAULT_BINS,
     _binned,
     bin_ids,
@@ -32,8 +32,8 @@ from .binning import (  # noqa: F401  (re-exported: part of this module's interf
     reliability_bins,
     weighted_quantiles,
 )
-from .scaling import Scaling, kind_of
-from .sweep import ALL_ROWS, RowScores, ScoreSums, Selection, run_pass
+from ..scaling import Scaling, kind_of
+from ..sweep import ALL_ROWS, RowScores, ScoreSums, Selection, run_pass
 
 # float64 elements per chunk: 512 KiB per temporary array, a handful at a time
 # (measured fastest on this machine among 2^15 to 2^20: larger chunks fall out
