@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from onnxcal.binning import equal_mass_bins, weighted_quantiles
+from onnxcal.metrics.binning import equal_mass_bins, weighted_quantiles
 
 
 @pytest.mark.parametrize("seed", range(5))

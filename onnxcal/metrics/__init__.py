@@ -22,7 +22,9 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 
-from ..binning import (  # noqa: F401  (re-exported: part of this module's interface)
+from ..scaling import Scaling, kind_of
+from ..sweep import ALL_ROWS, Selection, run_pass
+from .binning import (  # noqa: F401  (re-exported: part of this module's interface)
     DEFAULT_BINS,
     _binned,
     bin_ids,
@@ -32,8 +34,7 @@ from ..binning import (  # noqa: F401  (re-exported: part of this module's inter
     reliability_bins,
     weighted_quantiles,
 )
-from ..scaling import Scaling, kind_of
-from ..sweep import ALL_ROWS, RowScores, ScoreSums, Selection, run_pass
+from .score_sums import RowScores, ScoreSums
 
 # float64 elements per chunk: 512 KiB per temporary array, a handful at a time
 # (measured fastest on this machine among 2^15 to 2^20: larger chunks fall out
@@ -477,7 +478,7 @@ def _metrics_from(n, per_sample, bins, nll, brier, top_label, classwise, kind, o
 
 
 def score_metrics(sums: ScoreSums, part: int, mask: np.ndarray | None, weights: np.ndarray | None) -> Metrics:
-    """The Metrics of one part of a pass's :class:`~onnxcal.sweep.ScoreSums`.
+    """The Metrics of one part of a pass's :class:`~onnxcal.metrics.score_sums.ScoreSums`.
 
     ``mask`` selects the part's rows among the pass's positions (None: all),
     ``weights`` the pass's per-row weights (None: unweighted).
@@ -508,7 +509,7 @@ def temperature_pass(
 ) -> tuple[ScoreSums, list]:
     """One pass scoring softmax(beta z) per part (and feeding ``extra`` consumers).
 
-    Returns the merged :class:`~onnxcal.sweep.ScoreSums` and,
+    Returns the merged :class:`~onnxcal.metrics.score_sums.ScoreSums` and,
     per lane, the ``extra`` consumers (for the caller to merge).
     """
     n = len(logits) if selection.rows is None else len(selection.rows)
