@@ -30,7 +30,6 @@ KNOWN_LARGE = {
     "onnxcal/cli.py",
     "onnxcal/data.py",
     "onnxcal/fit.py",
-    "onnxcal/metrics/__init__.py",
     "onnxcal/report.py",
 }
 

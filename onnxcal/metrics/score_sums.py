@@ -9,12 +9,12 @@ turns them into :class:`~onnxcal.metrics.Metrics`.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 
 import numpy as np
 
-from ..sweep import Chunk, ExpTerms
-from .binning import bin_ids
+from ..sweep import ALL_ROWS, Chunk, ExpTerms, Selection, run_pass
+from .binning import DEFAULT_BINS, bin_ids
 
 
 class RowScores:
@@ -111,3 +111,37 @@ class ScoreSums:
             for name in ("weight", "nll", "brier", "bins", "p_sum", "y_sum", "column", "upper"):
                 getattr(out, name).__iadd__(getattr(o, name))
         return out
+
+
+def temperature_pass(
+    logits: np.ndarray,
+    labels: np.ndarray,
+    beta: float,
+    n_bins: int = DEFAULT_BINS,
+    *,
+    selection: Selection = ALL_ROWS,
+    parts: int = 1,
+    moments: int = 0,
+    sq_moments: int = 0,
+    sq_part: int | None = None,
+    extra: Callable[[], Sequence] | None = None,
+    threads: int | None = None,
+) -> tuple[ScoreSums, list]:
+    """One pass scoring softmax(beta z) per part (and feeding ``extra`` consumers).
+
+    Returns the merged :class:`~onnxcal.metrics.score_sums.ScoreSums` and,
+    per lane, the ``extra`` consumers (for the caller to merge).
+    """
+    n = len(logits) if selection.rows is None else len(selection.rows)
+    rows = RowScores(n)
+    k = logits.shape[1]
+
+    def make():
+        return (ScoreSums(parts, k, n_bins, rows), *(extra() if extra else ()))
+
+    lanes = run_pass(
+        logits, labels, beta, make, selection=selection, moments=moments, sq_moments=sq_moments,
+        sq_part=sq_part, threads=threads,
+    )
+    sums = ScoreSums.merge([lane[0] for lane in lanes])
+    return sums, [lane[1:] for lane in lanes]
