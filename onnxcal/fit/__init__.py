@@ -39,14 +39,14 @@ from pathlib import Path
 import numpy as np
 import scipy.optimize
 
-from . import __version__, resample
-from ._files import atomic_write_bytes, require_file
-from .errors import OnnxcalError, first_line
-from .metrics import DEFAULT_BINS, Metrics, evaluate, iter_chunks, sigmoid
-from .passes import fit_and_score
-from .scaling import METHODS_FOR, MULTILABEL_MODES, Scaling, check_scaling, is_far_from_one, kind_of
-from .sweep import one_blas_thread
-from .tempfit import fit_beta
+from .. import __version__, resample
+from .._files import atomic_write_bytes, require_file
+from ..errors import OnnxcalError, first_line
+from ..metrics import DEFAULT_BINS, Metrics, evaluate, iter_chunks, sigmoid
+from ..passes import fit_and_score
+from ..scaling import METHODS_FOR, MULTILABEL_MODES, Scaling, check_scaling, is_far_from_one, kind_of
+from ..sweep import one_blas_thread
+from ..tempfit import fit_beta
 
 T_MIN = 0.01
 T_MAX = 100.0
