@@ -34,13 +34,13 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__, _signals
-from .capture import Capture
-from .fit import FitSummary, data_warnings
-from .metrics import DEFAULT_BINS, METRIC_FIELDS, METRIC_LABELS, Metrics, evaluate, reliability
-from .resample import split_holdout
-from .scaling import Scaling
-from .verify import VerifyResult, format_figure
+from .. import __version__, _signals
+from ..capture import Capture
+from ..fit import FitSummary, data_warnings
+from ..metrics import DEFAULT_BINS, METRIC_FIELDS, METRIC_LABELS, Metrics, evaluate, reliability
+from ..resample import split_holdout
+from ..scaling import Scaling
+from ..verify import VerifyResult, format_figure
 
 FORMAT = 1
 FORMATS = ("html", "md", "json", "png")
