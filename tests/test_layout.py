@@ -29,7 +29,6 @@ KNOWN_LARGE = {
     "onnxcal/capture.py",
     "onnxcal/cli.py",
     "onnxcal/data.py",
-    "onnxcal/report/__init__.py",
 }
 
 
