@@ -6,7 +6,8 @@ import json
 import os
 from pathlib import Path
 
-from .._files import atomic_write_bytes, require_file
+from .._files import atomic_write_bytes
+from .._paths import require_file
 from ..errors import OnnxcalError, first_line
 from ..metrics import Metrics
 from ..scaling import Scaling, check_scaling
