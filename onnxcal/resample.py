@@ -190,6 +190,34 @@ def split_holdout(
     return np.flatnonzero(~held), np.flatnonzero(held)
 
 
+def split_samples(groups: np.ndarray | None, fit_rows: np.ndarray, eval_rows: np.ndarray) -> dict[str, object]:
+    """For the record of a split of rows grouped by sample: how many samples each part holds and
+    how many rows a sample has (empty for one row per sample)."""
+    if groups is None:
+        return {}
+    g = np.asarray(groups)
+    per = np.bincount(g)
+    sizes = sorted(set(per[per > 0].tolist()))
+    return {
+        "grouped_by": "sample",
+        "rows_per_sample": sizes[0] if len(sizes) == 1 else sizes,
+        "samples_fit": samples_of(g[fit_rows]).count,
+        "samples_holdout": samples_of(g[eval_rows]).count if eval_rows is not fit_rows else 0,
+    }
+
+
+def rows_of_samples(rows: int, samples: int | None) -> str:
+    """A count for the notes: ``'1920 rows of 30 samples'``, or ``'30 samples'`` when each sample
+    is one row.
+
+    >>> rows_of_samples(1920, 30), rows_of_samples(30, None)
+    ('1920 rows of 30 samples', '30 samples')
+    """
+    if samples is None or samples == rows:
+        return f"{rows} samples"
+    return f"{rows} rows of {samples} samples"
+
+
 def _held_out(strata: np.ndarray, fraction: float, seed: int) -> np.ndarray:
     """Which units (rows, or samples) are held out: round(fraction * size) random ones of each stratum."""
     n = len(strata)

@@ -148,13 +148,13 @@ def test_calibrate_fits_the_temperature_of_the_true_logits(case: dict[str, objec
     assert identity.passed and "'hn'" in identity.detail and "not compared" not in identity.detail
 
 
-@pytest.mark.xfail(strict=True, reason="verify's re-use is wired into api after issue 13's split of api.py")
 def test_verify_reuses_the_recorded_constant_and_batch_axis(case: dict[str, object], tmp_path: Path) -> None:
     spec = DataSpec(path=_dir(case) / "val.npz", constants={"sr": 16000}, batch_axes={"h0": 1})
     out = tmp_path / "patched.onnx"
     api.calibrate(_dir(case) / "model.onnx", spec, out)
-    result = api.verify(out, _dir(case) / "val.npz", original=_dir(case) / "model.onnx")
+    result = api.verify(out, _dir(case) / "val.npz", original=_dir(case) / "model.onnx", latency_runs=5, latency=True)
     assert result.passed and result.n == N
+    assert {c.name for c in result.checks} >= {"reference", "identity", "latency"}
     with pytest.raises(OnnxcalError, match="model input 'sr' is a single number"):
         api.verify(out, DataSpec(path=_dir(case) / "val.npz", batch_axes={"h0": 1}))  # given: no re-use
 

@@ -168,3 +168,27 @@ def test_dense_heads_split_and_bootstrap_by_sample(head: str, tmp_path) -> None:
     width = np.ptp(grouped["temperature"])
     assert abs(width / np.ptp(reference) - 1) < 0.3  # the same width as a by-sample bootstrap done apart
     assert width > 1.8 * np.ptp(by_row["temperature"])  # rows of one sample are far from independent
+
+
+def test_fit_and_report_of_a_dense_capture_say_how_many_samples_stand_behind_the_figures(tmp_path) -> None:
+    import json
+
+    from onnxcal import api
+
+    z, y, groups = _dense_capture("per_position", tmp_path)
+    options = FitOptions(holdout=0.25, seed=1, bootstrap=40)
+    api.capture(tmp_path / "model.onnx", tmp_path / "val.npz", out=tmp_path / "cap.npz")
+    summary = api.fit(tmp_path / "cap.npz", out=tmp_path / "fit.json", options=options)
+    fit_rows, held = resample.split_holdout(y, 0.25, 1, groups=groups)
+    s_held = len(np.unique(groups[held]))
+    split = json.loads((tmp_path / "fit.json").read_text())["split"]
+    assert split["grouped_by"] == "sample" and split["rows_per_sample"] == 6
+    assert (split["samples_fit"], split["samples_holdout"]) == (len(np.unique(groups[fit_rows])), s_held)
+    assert summary.intervals is not None and summary.intervals["resampled"] == "samples"
+    assert summary.before.n == len(held)  # the figures are on the rows of the held-out samples
+    assert any(f"on {len(held)} held-out rows of {s_held} samples" in note for note in summary.notes)
+    api.report(tmp_path / "cap.npz", fit=tmp_path / "fit.json", out=tmp_path / "rep")
+    content = json.loads((tmp_path / "rep" / "report.json").read_text())
+    assert content["data"]["samples_evaluated"] == s_held and content["data"]["rows_per_sample"] == 6
+    assert f"{len(held)} rows of {s_held} held-out samples" in content["verdict"][0]
+    assert content["metrics"]["after_interval"] is not None  # the report re-made the fit's grouped split

@@ -223,6 +223,28 @@ def _temperature_passes(logits, labels, options, fit_rows, eval_rows, threads):
     return part, full, (tuple(scored.before), tuple(scored.after)), scored.expansion
 
 
+def _holdout_notes(
+    options: FitOptions, fit_rows: np.ndarray, eval_rows: np.ndarray, groups: np.ndarray | None
+) -> list[str]:
+    """What the headline figures stand on: held-out samples (rows of whole samples, for a dense output)."""
+    if groups is None:
+        n = len(fit_rows) + len(eval_rows)
+        held, fit, total, by = f"{len(eval_rows)} held-out samples", f"{len(fit_rows)}", f"{n} samples", []
+    else:
+        s_fit, s_held = (resample.samples_of(np.asarray(groups)[rows]).count for rows in (fit_rows, eval_rows))
+        held = f"{len(eval_rows)} held-out rows of {s_held} samples"
+        fit = resample.rows_of_samples(len(fit_rows), s_fit)
+        total = resample.rows_of_samples(len(fit_rows) + len(eval_rows), s_fit + s_held)
+        by = [f"the holdout and the bootstrap take whole samples ({s_fit} to fit, {s_held} held out, with all "
+              "their rows): the rows of one sample are not independent"]
+    return [
+        f"headline figures are on {held} ({options.holdout:g} of the set, stratified, seed {options.seed}), "
+        f"calibrated with the fit on the other {fit}",
+        f"the parameters baked in are refitted on all {total}",
+        *by,
+    ]
+
+
 def summarize(
     logits: np.ndarray,
     labels: np.ndarray,
@@ -230,6 +252,7 @@ def summarize(
     options: FitOptions = DEFAULT_OPTIONS,
     *,
     threads: int | None = None,
+    groups: np.ndarray | None = None,
 ) -> FitSummary:
     """Fit on the fit part, score on the held-out part, bootstrap, refit on all.
 
@@ -243,21 +266,26 @@ def summarize(
     threads : int, optional
         Threads for the passes over the logits and the bootstrap (default:
         the cores available); the result does not depend on it.
+    groups : ndarray of int, optional
+        The sample of each row (sorted), when a sample gives several rows (a
+        per-position or per-pixel output: ``Capture.groups()``): the holdout
+        and the bootstrap then take whole samples, and the notes and
+        ``split`` say how many.
 
     Returns
     -------
     FitSummary
     """
     with one_blas_thread():
-        return _summarize(logits, labels, capture_meta, options, threads)
+        return _summarize(logits, labels, capture_meta, options, threads, groups)
 
 
-def _summarize(logits, labels, capture_meta, options, threads) -> FitSummary:
+def _summarize(logits, labels, capture_meta, options, threads, groups=None) -> FitSummary:
     kind = resolve_kind(logits, labels, options)
     n = len(logits)
     notes, warnings = [], data_warnings(labels, logits.shape[1])
     if options.holdout > 0:
-        fit_rows, eval_rows = resample.split_holdout(labels, options.holdout, options.seed)
+        fit_rows, eval_rows = resample.split_holdout(labels, options.holdout, options.seed, groups=groups)
     else:
         fit_rows = eval_rows = np.arange(n)
     if kind == "multiclass" and options.method == "temperature":
@@ -269,11 +297,7 @@ def _summarize(logits, labels, capture_meta, options, threads) -> FitSummary:
         (fit_before, before), (fit_after, after) = scores
         fit_part = {"before": fit_before, "after": fit_after}
         basis = "held-out"
-        notes.append(
-            f"headline figures are on {len(eval_rows)} held-out samples ({options.holdout:g} of the set, "
-            f"stratified, seed {options.seed}), calibrated with the fit on the other {len(fit_rows)}"
-        )
-        notes.append(f"the parameters baked in are refitted on all {n} samples")
+        notes.extend(_holdout_notes(options, fit_rows, eval_rows, groups))
     else:
         ((before,), (after,)), fit_part, basis = scores, None, "in-sample"
         notes.append(
@@ -283,7 +307,7 @@ def _summarize(logits, labels, capture_meta, options, threads) -> FitSummary:
     if options.bootstrap > 0:
         intervals = resample.bootstrap(
             logits, labels, options, fit_rows, eval_rows, part.scaling, refit=fit_scaling, expansion=expansion,
-            threads=threads,
+            threads=threads, groups=groups,
         )
         notes.extend(intervals.get("notes", []))
     for w in (*part.warnings, *result.warnings):
@@ -303,6 +327,7 @@ def _summarize(logits, labels, capture_meta, options, threads) -> FitSummary:
             "n_fit": int(len(fit_rows)),
             "n_holdout": int(len(eval_rows)) if options.holdout > 0 else 0,
             "stratified_by": resample.strata_name(labels) if options.holdout > 0 else None,
+            **resample.split_samples(groups, fit_rows, eval_rows),
         },
         intervals=intervals,
         options=options,
