@@ -23,7 +23,7 @@ from .._files import require_file
 from .._limits import check_memory, format_bytes
 from ..errors import OnnxcalError, first_line
 from ..graph import TensorSpec
-from .feeding import lengths_hint, samples_first
+from .axes import lengths_hint, samples_first
 from .fingerprint import combine, file_fingerprint
 from .inputs import show_shape
 from .spec import LABELS_KEY, Dataset

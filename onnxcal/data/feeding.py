@@ -1,6 +1,6 @@
 """Inputs that are not one sample per row on axis 0: constants given once
-(``--constant NAME=VALUE|FILE.npy|zeros``) and arrays whose samples lie on
-another axis (``--batch-axis NAME=AXIS``, e.g. a recurrent state 1 x N x H).
+(``--constant NAME=VALUE|FILE.npy|zeros``), and the checks of ``--batch-axis``
+(the arrays themselves are in ``axes``).
 
 A constant becomes a :class:`~onnxcal.data.spec.Constant`: its value in the
 model's dtype, with the batch axis (when the input has one) of size 1, which
@@ -22,22 +22,15 @@ import numpy as np
 
 from ..errors import OnnxcalError
 from ..graph import TensorSpec
+from .arrays import read_npy
+from .axes import ZEROS, free_dims, scalar_refusal, shown
 from .inputs import kind_ok
 from .spec import Constant, Dataset, DataSpec
-
-ZEROS = "zeros"
-"""``--constant NAME=zeros``: zeros shaped like the declared input."""
 
 IN_DATA = "(in the data)"
 """Marks, in a capture's record, a constant that was a single number in the data file."""
 
 ConstantValue = str | os.PathLike[str] | int | float | np.ndarray
-
-
-def _shown(shape: Sequence[int | str | None] | None) -> str:
-    if shape is None:
-        return "?"
-    return "[" + ", ".join("?" if d is None else str(d) for d in shape) + "]"
 
 
 def _declared(spec: TensorSpec) -> np.dtype:
@@ -48,40 +41,6 @@ def _declared(spec: TensorSpec) -> np.dtype:
             f"model input '{spec.name}' has type {spec.dtype}, which onnxcal cannot feed from arrays",
             "calibrate a model whose inputs are tensors of numbers",
         ) from None
-
-
-def _free_dims(shape: Sequence[int | str | None]) -> list[int]:
-    """Positions of the dims the model leaves open (symbolic or unknown)."""
-    return [i for i, d in enumerate(shape) if not (isinstance(d, int) and d > 0)]
-
-
-def scalar_refusal(spec: TensorSpec) -> OnnxcalError:
-    """The refusal for a rank-0 input fed as per-sample data."""
-    return OnnxcalError(
-        f"input '{spec.name}' is a single number (shape []) in the model: it cannot be fed per sample",
-        f"give it once with --constant {spec.name}=VALUE",
-    )
-
-
-def state_refusal(spec: TensorSpec, axis: int, shape: tuple[int, ...] | None = None) -> OnnxcalError:
-    """The refusal for an input whose samples lie on ``axis``, given with samples on axis 0."""
-    want = ["n" if i == axis else (str(d) if isinstance(d, int) and d > 0 else "?") for i, d in
-            enumerate(spec.shape or ())]
-    have = "" if shape is None else f" (the data's array has shape {tuple(shape)})"
-    return OnnxcalError(
-        f"input '{spec.name}' has shape {_shown(spec.shape)} in the model, samples on axis {axis}{have}",
-        f"give --batch-axis {spec.name}={axis} with an array of shape ({', '.join(want)}), "
-        f"or --constant {spec.name}={ZEROS}",
-    )
-
-
-def state_axis(spec: TensorSpec) -> int | None:
-    """The likely batch axis of an input declared with fixed dims before its only open one
-    (a recurrent state ``[1, N, 128]``), else None."""
-    if not spec.shape:
-        return None
-    free = _free_dims(spec.shape)
-    return free[0] if len(free) == 1 and free[0] > 0 else None
 
 
 # --------------------------------------------------------------------------
@@ -109,48 +68,11 @@ def check_feeding(spec: DataSpec, specs: Sequence[TensorSpec]) -> None:
         if not isinstance(axis, int) or axis < 0 or (rank is not None and axis >= rank):
             raise OnnxcalError(
                 f"--batch-axis {name}={axis} is out of range: input '{name}' has rank {rank} "
-                f"(shape {_shown(shape)})",
+                f"(shape {shown(shape)})",
                 f"give an axis from 0 to {max((rank or 1) - 1, 0)}",
             )
         if rank == 0:
             raise scalar_refusal(by_name[name])
-
-
-def samples_first(
-    arrays: Mapping[str, np.ndarray], batch_axes: Mapping[str, int], source: str
-) -> dict[str, np.ndarray]:
-    """``arrays`` with each ``batch_axes`` input's samples moved to axis 0 (views)."""
-    moved = dict(arrays)
-    for name, axis in batch_axes.items():
-        if name not in moved:
-            continue
-        arr = moved[name]
-        if axis >= arr.ndim:
-            raise OnnxcalError(
-                f"--batch-axis {name}={axis}: array '{name}' of '{source}' has shape {arr.shape}, no axis {axis}",
-                "give the axis that holds the samples",
-            )
-        moved[name] = np.moveaxis(arr, axis, 0)
-    return moved
-
-
-def lengths_hint(
-    arrays: Mapping[str, np.ndarray], n: int | None, specs: Sequence[TensorSpec], batch_axes: Mapping[str, int]
-) -> OnnxcalError | None:
-    """When arrays disagree on their sample count: a refusal naming an input that
-    cannot be fed per sample on axis 0 (a single number; a state with its samples
-    on a later axis), or None."""
-    by_name = {s.name: s for s in specs}
-    for name, arr in arrays.items():
-        spec = by_name.get(name)
-        if spec is None or name in batch_axes:
-            continue
-        if arr.ndim == 0 or spec.shape == ():
-            return scalar_refusal(spec)
-        axis = state_axis(spec)
-        if axis is not None and n is not None and arr.shape[0] != n and axis < arr.ndim and arr.shape[axis] == n:
-            return state_refusal(spec, axis, arr.shape)
-    return None
 
 
 # --------------------------------------------------------------------------
@@ -175,8 +97,6 @@ def _number(name: str, text: str) -> int | float:
 
 def _read_value(name: str, value: ConstantValue) -> tuple[np.ndarray | None, str]:
     """The array given (None for ``zeros``) and how it was given."""
-    from .arrays import read_npy  # arrays imports this module
-
     if isinstance(value, np.ndarray):
         return value, f"array sha256:{_digest(value)}"
     if isinstance(value, (bool, np.bool_)):
@@ -199,10 +119,10 @@ def _axis_for(name: str, spec: TensorSpec, batch_axes: Mapping[str, int], batch_
     batch dim of the inputs fed per sample, else the input's only open dim."""
     if (axis := _named_axis(name, spec, batch_axes, batch_dims)) is not None:
         return axis
-    free = _free_dims(spec.shape or ())
+    free = free_dims(spec.shape or ())
     if len(free) > 1:
         raise OnnxcalError(
-            f"--constant {name}={given}: input '{name}' has several open dims ({_shown(spec.shape)}), "
+            f"--constant {name}={given}: input '{name}' has several open dims ({shown(spec.shape)}), "
             "so onnxcal cannot tell which one holds the samples",
             f"give --batch-axis {name}=AXIS, or the whole array with --constant {name}=FILE.npy",
         )
@@ -238,7 +158,7 @@ def _filled(name: str, spec: TensorSpec, arr: np.ndarray | None, axis: int | Non
             shape.append(d)
         else:
             raise OnnxcalError(
-                f"--constant {name}: input '{name}' has an open dim on axis {i} ({_shown(spec.shape)}), "
+                f"--constant {name}: input '{name}' has an open dim on axis {i} ({shown(spec.shape)}), "
                 "so a single number or zeros cannot fill it",
                 f"give the whole array with --constant {name}=FILE.npy",
             )
@@ -254,14 +174,14 @@ def _checked_array(name: str, spec: TensorSpec, arr: np.ndarray, axis: int | Non
     if arr.ndim != len(shape):
         raise OnnxcalError(
             f"constant '{name}' has shape {arr.shape} but the model's input has rank {len(shape)} "
-            f"(shape {_shown(shape)})",
+            f"(shape {shown(shape)})",
             "give an array of the input's declared shape (size 1 on its batch axis)",
         )
     for i, (have, need) in enumerate(zip(arr.shape, shape, strict=True)):
         if i != axis and isinstance(need, int) and need > 0 and have != need:
             raise OnnxcalError(
                 f"constant '{name}' has size {have} on axis {i} but the model's input has {need} "
-                f"(shape {_shown(shape)})",
+                f"(shape {shown(shape)})",
                 "give an array of the input's declared shape",
             )
     if axis is not None and arr.shape[axis] != 1:
@@ -308,7 +228,7 @@ def make_constant(
         axis = _axis_for(name, spec, batch_axes, batch_dims, given) if spec.shape else None
         return Constant(_filled(name, spec, arr, axis, dtype), axis, given)
     axis = _named_axis(name, spec, batch_axes, batch_dims)
-    if axis is None and (free := _free_dims(spec.shape)) and len(free) == 1 and arr.ndim == len(spec.shape) \
+    if axis is None and (free := free_dims(spec.shape)) and len(free) == 1 and arr.ndim == len(spec.shape) \
             and arr.shape[free[0]] == 1:
         axis = free[0]
     axis = _checked_array(name, spec, arr, axis)
