@@ -42,9 +42,10 @@ from .data import Dataset, DataSpec, check_selection, load_dataset
 from .errors import OnnxcalError, OnnxcalWarning
 from .fit import FitOptions, FitSummary
 from .graph import ModelInfo, Record
+from .l1_sigmoid import capture_kind
 from .metrics import DEFAULT_BINS, evaluate, scores_from_probabilities
 from .report import ReportResult
-from .scaling import METHODS, MULTILABEL_MODES, Scaling, check_scaling, kind_of
+from .scaling import METHODS, MULTILABEL_MODES, Scaling, check_scaling
 from .verify import Check, VerifyResult
 
 DEFAULT_LATENCY_RUNS = 100
@@ -245,7 +246,7 @@ def _read_and_capture(
                                score_columns=columns)
     site = read.site
     kind = graph.fit_kind(site, activation)
-    if kind == "softmax":
+    if kind != "sigmoid":  # class labels (softmax, sigmoid-l1)
         _reading.check_label_coverage(dataset.labels, read.k, site, dataset.class_names, dataset.source)
     cap = _capture.capture(
         model, dataset, model_path=Path(model_path).name, model_sha256=sha, options=run, progress=progress,
@@ -888,6 +889,8 @@ def _threshold_checks(
     if activation is None:  # raw logits (a model without a record)
         logits, kind = rows, graph.fit_kind(site)
     else:
+        if activation == "sigmoid" and graph.post.normalises(post):  # L1-normalised sigmoids: probability rows
+            activation = "softmax"
         logits, kind = scores_from_probabilities(rows, activation), "sigmoid" if activation == "sigmoid" else "softmax"
     if dataset.labels is not None:
         labels = _capture.label_rows(dataset.labels, rows.shape, kind, dataset.source)
@@ -1186,7 +1189,7 @@ def _fit_from_record(record: Record, model_path) -> FitSummary | None:
 
 
 def _check_report_scaling(scaling: Scaling, cap: Capture, source_sha: str | None, what: str) -> None:
-    kind = kind_of(cap.logits.shape[1], cap.labels.ndim)
+    kind = capture_kind(cap.logits.shape[1], cap.labels.ndim, cap.meta.fit_as)
     if scaling.kind != kind:
         raise OnnxcalError(
             f"{what} is for a {scaling.kind} classifier, but the capture holds {kind} scores",
@@ -1269,7 +1272,7 @@ def report(
     cap, dropped = _finite(cap, ", ".join(map(str, capture_paths)) or cap.meta.data_source, drop_nonfinite)
     calibrated = None
     if temperature is not None:
-        kind = kind_of(cap.logits.shape[1], cap.labels.ndim)
+        kind = capture_kind(cap.logits.shape[1], cap.labels.ndim, cap.meta.fit_as)
         summary, scaling = None, Scaling.of_temperature(graph.check_temperature(temperature), kind)
         source_sha, what = None, "the temperature"
     elif fit is not None:

@@ -173,8 +173,10 @@ class CaptureMeta:
     data_source : str
         The validation set.
     fit_as : str
-        ``"softmax"`` (labels are class indices, one per row) or
-        ``"sigmoid"`` (labels are 0/1, one per logit: binary or multi-label).
+        ``"softmax"`` (labels are class indices, one per row),
+        ``"sigmoid"`` (labels are 0/1, one per logit: binary or multi-label)
+        or ``"sigmoid-l1"`` (class indices; the logits enter one sigmoid per
+        class, L1-normalised after: fitted as L1(sigmoid(z / T)), ``l1_fit``).
     onnxcal_version : str
     class_names : tuple of str or None
         Names of the classes, when known (``--classes`` or folder names).
@@ -1042,7 +1044,7 @@ def capture(
     site = site if site is not None else find_scores(model, output)
     kind = fit_kind(site, activation)
     labels = None
-    if site.num_classes is not None and kind == "softmax" and np.ndim(dataset.labels) == 1:
+    if site.num_classes is not None and kind != "sigmoid" and np.ndim(dataset.labels) == 1:  # class indices
         labels = check_labels(dataset.labels, dataset.n, site.num_classes, dataset.source)  # before the run
     if site.num_classes is not None:
         _check_class_names(dataset, site.num_classes, kind)
@@ -1119,7 +1121,7 @@ def _meta(dataset: Dataset, site: ScoreSite, sink: _Rows, mode: str, kind: str, 
 def label_rows(labels: np.ndarray, shape: tuple[int, int], kind: str, source: str) -> np.ndarray:
     """Labels lined up with captured rows of ``shape`` (rows, k), as int64.
 
-    ``kind == "softmax"``: class indices, one per row; per-pixel labels
+    ``kind == "softmax"`` (or ``"sigmoid-l1"``): class indices, one per row; per-pixel labels
     (e.g. n x H x W for an n x K x H x W output) are flattened in the rows'
     order. ``kind == "sigmoid"``: 0/1 for every logit: (rows,) int64 for one
     logit (binary), (rows, k) uint8 for k labels (multi-label).
@@ -1131,7 +1133,7 @@ def label_rows(labels: np.ndarray, shape: tuple[int, int], kind: str, source: st
     """
     labels = np.asarray(labels)
     rows, k = shape
-    if kind == "softmax":
+    if kind != "sigmoid":  # softmax, sigmoid-l1: class indices
         if labels.ndim > 1 and labels.size == rows:
             labels = labels.reshape(-1)
         elif labels.ndim > 1:

@@ -44,7 +44,7 @@ from ._files import atomic_write_bytes, require_file
 from .errors import OnnxcalError, first_line
 from .metrics import DEFAULT_BINS, Metrics, evaluate, iter_chunks, sigmoid
 from .passes import fit_and_score
-from .scaling import METHODS_FOR, MULTILABEL_MODES, Scaling, check_scaling, is_far_from_one, kind_of
+from .scaling import METHODS_FOR, MULTILABEL_MODES, SIGMOID_L1, Scaling, check_scaling, is_far_from_one, kind_of
 from .sweep import one_blas_thread
 from .tempfit import fit_beta
 
@@ -800,6 +800,10 @@ def summarize(
     -------
     FitSummary
     """
+    if capture_meta.get("fit_as") == SIGMOID_L1:  # L1(sigmoid(z / T)): a fit of its own
+        from .l1_fit import summarize_l1  # imports this module
+
+        return summarize_l1(logits, labels, capture_meta, options, threads=threads)
     with one_blas_thread():
         return _summarize(logits, labels, capture_meta, options, threads)
 

@@ -22,6 +22,7 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 
+from . import l1_sigmoid as _l1
 from .binning import (  # noqa: F401  (re-exported: part of this module's interface)
     DEFAULT_BINS,
     _binned,
@@ -350,7 +351,7 @@ def evaluate(
         Integer class indices (0/1 for binary), or a 0/1 multi-label array.
     scaling : Scaling or float, default 1.0
         The calibration map; a number is a temperature (the scores are
-        divided by it).
+        divided by it). A ``sigmoid-l1`` scaling scores L1(sigmoid(z / T)).
     n_bins : int, default 15
         Bins for the ECEs.
     rows : ndarray of int, optional
@@ -379,6 +380,9 @@ def evaluate(
     >>> m.accuracy
     0.5
     """
+    if _l1.uses(scaling):  # L1(sigmoid(z / T)) = softmax(log sigmoid(z / T)) (l1_sigmoid)
+        rows_l1 = _l1.LogSigmoidRows(logits, scaling.temperature)
+        return evaluate(rows_l1, labels, 1.0, n_bins, rows=rows, weights=weights, threads=threads)
     k = logits.shape[1]
     kind = kind_of(k, np.ndim(labels))
     scaling = _as_scaling(scaling, kind)
@@ -684,6 +688,8 @@ def reliability(
     >>> int(r.counts[8]), float(r.observed[8])
     (2, 0.5)
     """
+    if _l1.uses(scaling):  # scored as softmax(log sigmoid(z / T)), see evaluate
+        return reliability(_l1.LogSigmoidRows(logits, scaling.temperature), labels, 1.0, n_bins, rows=rows)
     k = logits.shape[1]
     kind = kind_of(k, np.ndim(labels))
     scaling = _as_scaling(scaling, kind)
