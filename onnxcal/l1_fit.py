@@ -3,13 +3,15 @@
 The mean NLL of ``l1_sigmoid.nll_terms`` is minimised over u = log T in
 [log T_MIN, log T_MAX] (``fit.T_MIN``, ``fit.T_MAX``): since it need not be
 convex in 1/T, a grid of ``GRID`` values of u finds the basin of the
-smallest NLL, then Brent's bounded method (``scipy.optimize.minimize_scalar``,
-``method="bounded"``; Brent, "Algorithms for Minimization without
-Derivatives", 1973, ch. 5) refines it between the grid's neighbours. A
-bootstrap replicate starts from the fit instead: the bracket around it is
-widened until the derivative changes sign, then refined the same way. Every
-evaluation is one chunked pass over the logits (float64 sums, any row
-subset and bootstrap weights).
+smallest NLL; between the grid's neighbours the root of the derivative
+dF/du is found by Brent's method (``scipy.optimize.brentq``; Brent,
+"Algorithms for Minimization without Derivatives", 1973, ch. 4), or, where
+the derivative does not change sign there, the NLL is minimised by Brent's
+bounded method (``scipy.optimize.minimize_scalar``, ch. 5). A bound is the
+answer when the NLL rises from it. A bootstrap replicate starts from the
+fit instead: the bracket around it is widened until the derivative changes
+sign. Every evaluation is one chunked pass over the logits (float64 sums,
+any row subset and bootstrap weights).
 
 ``summarize_l1`` is ``fit.summarize`` for this kind: the stratified
 holdout, the fit on the fit part scored before and after on both parts
@@ -32,7 +34,7 @@ from .metrics import evaluate, iter_chunks
 from .scaling import Scaling, is_far_from_one
 from .sweep import one_blas_thread
 
-GRID = 29  # values of log T on [log T_MIN, log T_MAX]: a step of 0.33 (T x 1.39)
+GRID = 19  # values of log T on [log T_MIN, log T_MAX]: a step of 0.51 (T x 1.67)
 _XATOL = 1e-10  # Brent's tolerance on log T
 _WARM_STEP = 0.25  # half-width of a replicate's first bracket, in log T
 
@@ -95,40 +97,63 @@ def fit_temperature_l1(
     f = _Objective(logits, labels, rows, weights)
     lo, hi = math.log(T_MIN), math.log(T_MAX)
     bracket = None if start is None else _warm_bracket(f, math.log(start), lo, hi)
-    if bracket is None:
-        bracket = _grid_bracket(f, lo, hi)
-    res = scipy.optimize.minimize_scalar(f.value, bounds=bracket, method="bounded", options={"xatol": _XATOL})
-    u = float(res.x)
-    if u - lo < 1e-6 or hi - u < 1e-6:  # Brent never evaluates the ends themselves
-        end = lo if u - lo < 1e-6 else hi
-        u = end if f.value(end) <= float(res.fun) else u
-    return _result(math.exp(u), f.passes, bool(res.success), lo, hi, u)
+    u, converged = _minimum(f, *(bracket or _grid_bracket(f, lo, hi)))
+    return _result(math.exp(u), f.passes, converged, lo, hi, u)
 
 
-def _grid_bracket(f: _Objective, lo: float, hi: float) -> tuple[float, float]:
-    """The grid's neighbours of its smallest NLL."""
+# (a, slope at a, b, slope at b, a is a bound the NLL may rise from, b is a bound it may fall to)
+_Bracket = tuple[float, float, float, float, bool, bool]
+
+
+def _minimum(f: _Objective, a: float, ga: float, b: float, gb: float, low_end: bool, high_end: bool
+             ) -> tuple[float, bool]:
+    """The minimum in [a, b] (u, converged): a bound when the NLL rises from it (falls to it), else
+    the root of the slope (``scipy.optimize.brentq``), else Brent's bounded method on the NLL."""
+    if low_end and ga >= 0:
+        return a, True
+    if high_end and gb <= 0:
+        return b, True
+    if ga < 0 < gb:
+        u, info = scipy.optimize.brentq(f.slope, a, b, xtol=_XATOL, full_output=True, disp=False)
+        return float(u), bool(info.converged)
+    res = scipy.optimize.minimize_scalar(f.value, bounds=(a, b), method="bounded", options={"xatol": _XATOL})
+    return float(res.x), bool(res.success)
+
+
+def _grid_bracket(f: _Objective, lo: float, hi: float) -> _Bracket:
+    """The grid's neighbours of its smallest NLL, with the slopes there (a bound when it is the smallest)."""
     grid = np.linspace(lo, hi, GRID)
     i = int(np.argmin([f.value(float(u)) for u in grid]))
-    return float(grid[max(i - 1, 0)]), float(grid[min(i + 1, GRID - 1)])
+    a, b = float(grid[max(i - 1, 0)]), float(grid[min(i + 1, GRID - 1)])
+    ga = f.slope(a)
+    if i == 0 and ga >= 0:
+        return a, ga, b, 0.0, True, False
+    return a, ga, b, f.slope(b), i == 0, i == GRID - 1
 
 
-def _warm_bracket(f: _Objective, u0: float, lo: float, hi: float) -> tuple[float, float] | None:
-    """[a, b] around ``u0`` with dF/du < 0 at a and > 0 at b (or a bound), widened in doubling steps;
+def _warm_bracket(f: _Objective, u0: float, lo: float, hi: float) -> _Bracket | None:
+    """[a, b] around ``u0`` with dF/du <= 0 at a and >= 0 at b (or a bound), widened in doubling steps;
     None when it would span more than the grid's own bracket (then the grid decides)."""
     u0 = min(max(u0, lo), hi)
     a, step = max(lo, u0 - _WARM_STEP), _WARM_STEP
-    while a > lo and f.slope(a) > 0:
+    ga = f.slope(a)
+    while ga > 0 and a > lo:
         step *= 2
+        if step > 4:
+            return None
         a = max(lo, a - step)
-        if step > 4:
-            return None
+        ga = f.slope(a)
+    if a == lo and ga >= 0:
+        return a, ga, a, ga, True, False
     b, step = min(hi, u0 + _WARM_STEP), _WARM_STEP
-    while b < hi and f.slope(b) < 0:
+    gb = f.slope(b)
+    while gb < 0 and b < hi:
         step *= 2
-        b = min(hi, b + step)
         if step > 4:
             return None
-    return a, b
+        b = min(hi, b + step)
+        gb = f.slope(b)
+    return a, ga, b, gb, a == lo, b == hi
 
 
 def _result(t: float, passes: float, converged: bool, lo: float, hi: float, u: float) -> FitResult:
