@@ -192,3 +192,20 @@ def test_fit_and_report_of_a_dense_capture_say_how_many_samples_stand_behind_the
     assert content["data"]["samples_evaluated"] == s_held and content["data"]["rows_per_sample"] == 6
     assert f"{len(held)} rows of {s_held} held-out samples" in content["verdict"][0]
     assert content["metrics"]["after_interval"] is not None  # the report re-made the fit's grouped split
+
+
+def test_l1_normalised_sigmoids_are_split_and_resampled_by_sample_too() -> None:
+    from onnxcal.fit import summarize
+
+    rng = np.random.default_rng(11)
+    z = rng.normal(scale=4.0, size=(200, 4))
+    s = 1 / (1 + np.exp(-z / 2.5))
+    y = (rng.random(200)[:, None] > np.cumsum(s / s.sum(axis=1, keepdims=True), axis=1)).sum(axis=1)
+    zd, yd, groups = _duplicated(z, y)
+    options = FitOptions(holdout=0.25, bootstrap=20, seed=3)
+    plain = summarize(z, y, {"fit_as": "sigmoid-l1"}, options)
+    grouped = summarize(zd, yd, {"fit_as": "sigmoid-l1"}, options, groups=groups)
+    assert grouped.split["samples_holdout"] == plain.split["n_holdout"] and grouped.split["rows_per_sample"] == M
+    assert grouped.temperature == pytest.approx(plain.temperature, rel=1e-6)
+    assert plain.intervals is not None and grouped.intervals is not None
+    np.testing.assert_allclose(grouped.intervals["temperature"], plain.intervals["temperature"], rtol=1e-5)

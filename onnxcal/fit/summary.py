@@ -28,7 +28,7 @@ from .options import (
     FitResult,
     _first,
 )
-from .outcome import FitSummary, data_warnings
+from .outcome import FitSummary, data_warnings, holdout_notes
 from .temperature import _temperature_result, fit_sigmoid_temperature, fit_temperature
 
 # --------------------------------------------------------------------------
@@ -121,28 +121,6 @@ def _temperature_passes(logits, labels, options, fit_rows, eval_rows, threads):
     return part, full, (tuple(scored.before), tuple(scored.after)), scored.expansion
 
 
-def _holdout_notes(
-    options: FitOptions, fit_rows: np.ndarray, eval_rows: np.ndarray, groups: np.ndarray | None
-) -> list[str]:
-    """What the headline figures stand on: held-out samples (rows of whole samples, for a dense output)."""
-    if groups is None:
-        n = len(fit_rows) + len(eval_rows)
-        held, fit, total, by = f"{len(eval_rows)} held-out samples", f"{len(fit_rows)}", f"{n} samples", []
-    else:
-        s_fit, s_held = (resample.samples_of(np.asarray(groups)[rows]).count for rows in (fit_rows, eval_rows))
-        held = f"{len(eval_rows)} held-out rows of {s_held} samples"
-        fit = resample.rows_of_samples(len(fit_rows), s_fit)
-        total = resample.rows_of_samples(len(fit_rows) + len(eval_rows), s_fit + s_held)
-        by = [f"the holdout and the bootstrap take whole samples ({s_fit} to fit, {s_held} held out, with all "
-              "their rows): the rows of one sample are not independent"]
-    return [
-        f"headline figures are on {held} ({options.holdout:g} of the set, stratified, seed {options.seed}), "
-        f"calibrated with the fit on the other {fit}",
-        f"the parameters baked in are refitted on all {total}",
-        *by,
-    ]
-
-
 def summarize(
     logits: np.ndarray,
     labels: np.ndarray,
@@ -175,7 +153,7 @@ def summarize(
     FitSummary
     """
     if capture_meta.get("fit_as") == SIGMOID_L1:  # L1(sigmoid(z / T)): a fit of its own
-        return summarize_l1(logits, labels, capture_meta, options, threads=threads)
+        return summarize_l1(logits, labels, capture_meta, options, threads=threads, groups=groups)
     with one_blas_thread():
         return _summarize(logits, labels, capture_meta, options, threads, groups)
 
@@ -197,7 +175,7 @@ def _summarize(logits, labels, capture_meta, options, threads, groups=None) -> F
         (fit_before, before), (fit_after, after) = scores
         fit_part = {"before": fit_before, "after": fit_after}
         basis = "held-out"
-        notes.extend(_holdout_notes(options, fit_rows, eval_rows, groups))
+        notes.extend(holdout_notes(options, fit_rows, eval_rows, groups))
     else:
         ((before,), (after,)), fit_part, basis = scores, None, "in-sample"
         notes.append(
