@@ -40,7 +40,7 @@ from .calibration_error import (
 )
 from .core import chunk_rows, iter_chunks, log_softmax, scores_from_probabilities, sigmoid, softmax
 from .evaluation import METRIC_FIELDS, METRIC_LABELS, Metrics, evaluate, score_metrics
-from .reliability import Reliability, reliability
+from .reliability import Z_95, Reliability, reliability, wilson_interval
 from .score_sums import RowScores, ScoreSums, temperature_pass
 
 __all__ = [
@@ -49,6 +49,7 @@ __all__ = [
     "METRIC_LABELS",
     "Metrics",
     "Reliability",
+    "Z_95",
     "RowScores",
     "ScoreSums",
     "adaptive_calibration_error",
@@ -72,4 +73,5 @@ __all__ = [
     "softmax",
     "temperature_pass",
     "weighted_quantiles",
+    "wilson_interval",
 ]
