@@ -221,7 +221,7 @@ def _confidence_figure(content: Content) -> Figure:
         ax.set_xlim(0, 1)
         ax.set_xlabel(x_label, fontsize=8.5)
         ax.set_title(f"{first}\ndistribution of the predictions", fontsize=8.5)
-        ax.legend(loc="upper left", fontsize=7.5)
+        ax.legend(loc="upper center", fontsize=7.5)  # the predictions pile up at the ends
         ax.grid(True, axis="y", linewidth=0.3, color="#bbbbbb")
     axes[0].set_ylabel(f"{what} per bin (count)", fontsize=8.5)
     return fig
