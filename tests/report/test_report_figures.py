@@ -5,7 +5,11 @@ Wilson interval and is drawn as faint as its count is small."""
 from __future__ import annotations
 
 import copy
+import json
+import os
 import re
+import subprocess
+import sys
 from html.parser import HTMLParser
 from pathlib import Path
 
@@ -304,3 +308,43 @@ def _html_rows(html: str) -> dict[str, list[str]]:
 def _md_rows(md: str) -> dict[str, list[str]]:
     rows = [[c.strip() for c in line.strip("|").split("|")] for line in md.splitlines() if line.startswith("| ")]
     return {r[0]: r for r in rows[1:]}
+
+
+# --------------------------------------------------------------------------
+# The demo is calibrated with its class names where the docs calibrate it
+
+ROOT = Path(__file__).resolve().parents[2]
+
+
+def _run(command: str, cwd: Path) -> subprocess.CompletedProcess[str]:
+    env = {**os.environ, "PATH": f"{Path(sys.executable).parent}{os.pathsep}{os.environ['PATH']}"}
+    return subprocess.run(["bash", "-c", "set -euo pipefail\n" + command], cwd=cwd, env=env,
+                          capture_output=True, text=True, timeout=300)
+
+
+def test_readme_quick_start_calibrates_the_demo_with_its_class_names(tmp_path):
+    text = (ROOT / "README.md").read_text()
+    quick = text.split("## Quick start", 1)[1].split("\n## ", 1)[0]
+    blocks = re.findall(r"```sh\n(.*?)```", quick, re.S)
+    assert len(blocks) == 2 and all(len(b.strip().splitlines()) == 1 for b in blocks)  # two commands
+    calibrate = blocks[0].strip().split(" && ")[-1]
+    assert calibrate.startswith(".venv/bin/onnxcal calibrate fixtures/conveyor_faults.onnx")
+    assert "--classes fixtures/conveyor_faults_classes.txt" in calibrate
+    (tmp_path / "fixtures").symlink_to(FIXTURES)
+    # As written, with this checkout's onnxcal for the one installed in .venv (the install needs an index).
+    r = _run(calibrate.replace(".venv/bin/onnxcal", "onnxcal", 1) + " --report report", tmp_path)
+    assert r.returncode == 0, r.stderr
+    names = json.loads((tmp_path / "report" / "report.json").read_text())["data"]["class_names"]
+    assert names == CLASSES.read_text().split() and "class 0" not in (tmp_path / "report" / "report.html").read_text()
+
+
+def test_the_guide_calibrates_the_demo_with_its_class_names(tmp_path):
+    text = (ROOT / "docs" / "guide-handed-off-model.md").read_text()
+    (command,) = re.findall(r"\n    (onnxcal calibrate fixtures/conveyor_faults\.onnx .*?)\n\n", text, re.S)
+    assert "--classes fixtures/conveyor_faults_classes.txt" in command and "--report report/" in command
+    (tmp_path / "fixtures").symlink_to(FIXTURES)
+    r = _run(command.replace("\n    ", "\n"), tmp_path)  # as written, the continuation lines unindented
+    assert r.returncode == 0, r.stderr
+    content = json.loads((tmp_path / "report" / "report.json").read_text())
+    assert content["data"]["class_names"] == CLASSES.read_text().split()
+    assert [b["name"] for b in content["data"]["balance"]] == CLASSES.read_text().split()
