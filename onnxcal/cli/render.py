@@ -132,7 +132,7 @@ def render_verify(result: VerifyResult) -> None:
     for col in ("check", "result", "value", "limit", "what"):
         table.add_column(col)
     for c in result.checks:
-        status = {"pass": "pass", "fail": "FAIL", "skip": "skipped"}[c.status]
+        status = {"pass": "pass", "fail": "FAIL", "skip": "skipped", "undecided": "undecided"}[c.status]
         table.add_row(c.name, status, format_figure(c.value), format_figure(c.limit), c.detail)
     out.print(table)
     for note in result.notes:
