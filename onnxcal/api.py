@@ -24,6 +24,7 @@ from . import graph
 from . import guard as _guard
 from . import reading as _reading
 from . import report as _report
+from . import decision_steps as _decide
 from . import verify as _verify
 from ._files import (
     atomic_write_bytes,
@@ -39,6 +40,7 @@ from ._limits import DEFAULT_MAX_MODEL_BYTES, MAX_BINS, check_bins_memory, check
 from ._numeric import check_in_dtype, max_abs
 from .capture import Capture, ProgressFn, RunOptions
 from .data import Dataset, DataSpec, check_selection, load_dataset
+from .decisions.plan import DecisionOptions, Decisions
 from .errors import OnnxcalError, OnnxcalWarning
 from .fit import FitOptions, FitSummary
 from .graph import ModelInfo, Record
@@ -57,6 +59,7 @@ class PatchResult:
 
     path: str
     record: Record
+    decisions: Decisions | None = None
 
 
 @dataclass(frozen=True)
@@ -67,6 +70,7 @@ class CalibrateResult:
     patch: PatchResult | None
     verification: VerifyResult
     report: ReportResult | None = None
+    decisions: Decisions | None = None
 
 
 def _max_bytes(max_model_bytes: int | str) -> int:
@@ -506,6 +510,8 @@ def patch(
     output_holds: str | None = None,
     fitted_on_twin: bool = False,
     score_columns: str | None = None,
+    decisions: DecisionOptions = DecisionOptions(),
+    decision_data: DataSource | None = None,
 ) -> PatchResult:
     """Write a copy of the model that outputs calibrated probabilities.
 
@@ -537,10 +543,18 @@ def patch(
         quantized twin): a fit whose capture's model sha256 differs from
         this model's (and from its recorded original's) is refused without
         it. The record then holds both hashes.
+    decisions, decision_data
+        Decision outputs beside the calibrated probabilities (``accept``,
+        ``class_set``, ``class_set_size``; see ``docs/decisions.md``), their
+        thresholds chosen on ``decision_data``, a labelled set the map was
+        not fitted on, run through the patched model (required with them).
     """
     limit = _max_bytes(max_model_bytes)
     _check_columns(score_columns)
+    _decide.check_request(decisions, decision_data is not None, None)
+    decision_spec = _data_spec(decision_data) if decisions.wanted and decision_data is not None else None
     inputs = [model_path] + ([fit] if isinstance(fit, (str, os.PathLike)) else [])
+    inputs += decision_spec.files() if decision_spec is not None else []
     external = _check_outputs(out, inputs, model_path, force, limit)
     calibration, fit_dict = _resolve_scaling(temperature, fit)
     if fitted_on_twin and fit is None:
@@ -559,8 +573,32 @@ def patch(
     reading = _reading.patch_reading(meta) if output_holds is None and meta else None
     patched = patching.patch(model, calibration, sha=sha, path=model_path, fit=fit_dict, reading=reading,
                              fitted_on=fitted_on)
+    chosen = None
+    if decision_spec is not None:
+        patched, chosen = _patch_decisions(patched, output, decision_spec, decisions)
     graph.save_model(patched, out, external=external)
-    return PatchResult(path=str(out), record=graph.read_record(patched, output))
+    return PatchResult(path=str(out), record=graph.read_record(patched, output), decisions=chosen)
+
+
+def _patch_decisions(
+    patched: onnx.ModelProto, output: str | None, spec: DataSpec, decisions: DecisionOptions
+) -> tuple[onnx.ModelProto, Decisions]:
+    """Choose the thresholds on the separate labelled set and add the decision outputs."""
+    record = graph.read_record(patched, output)
+    dataset = _load_data(patched, spec)
+    run = _run_options(None, 0, "all", _capture.CPU)
+    chosen = _decide.on_separate(patched, record, dataset, run, None, decisions)
+    _warn_unmet(chosen)
+    return _decide.bake(patched, record, chosen), chosen
+
+
+def _warn_unmet(chosen: Decisions) -> None:
+    if chosen.unmet:
+        warnings.warn(OnnxcalWarning(
+            f"no acceptance threshold meets an error of at most {chosen.options.accept_error:g} with confidence "
+            f"{chosen.options.accept_confidence:g} on {chosen.rows.description}: the model's 'accept' output "
+            "accepts nothing" + (f" for labels {list(chosen.unmet)}" if chosen.kind == "multilabel" else "")
+        ), stacklevel=3)
 
 
 def _file_only_sha256(model_path) -> str | None:
@@ -953,6 +991,9 @@ def verify(
     progress: ProgressFn | None = None,
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
     drop_nonfinite: bool = False,
+    accept_error: float | None = None,
+    accept_confidence: float | None = None,
+    set_coverage: float | None = None,
 ) -> VerifyResult:
     """Check a patched model for CI: reference, decisions, record, thresholds, latency.
 
@@ -1002,6 +1043,12 @@ def verify(
         Leave out the rows where the patched outputs or the reference
         logits hold NaN or Inf (a note says how many); by default they are
         refused.
+    accept_error, accept_confidence, set_coverage : float, optional
+        For a model with decision outputs (``docs/decisions.md``): the
+        targets the gates ``accept-error`` and ``set-coverage`` hold them to
+        on labelled data (default: the record's), and the level of their
+        intervals. The checks ``decision-record``, ``decision-outputs`` and
+        ``decision-reference`` run whenever the model has decision outputs.
 
     Returns
     -------
@@ -1019,6 +1066,7 @@ def verify(
     spec = _data_spec(data)
     run = _run_options(batch_size, threads, optimization, provider)
     _check_gate(max_ece, max_nll, min_accuracy, n_bins, max_latency_ratio, latency_runs)
+    targets = _decide.check_targets(accept_error, accept_confidence, set_coverage)
     score_paths = _as_paths(scores)
     if original is not None and score_paths:
         raise OnnxcalError(
@@ -1071,6 +1119,14 @@ def verify(
         ref = replace(ref, notes=(why_not, *ref.notes))
     if thresholds:
         checks += _threshold_checks(rows, activation, site, dataset, cap, n_bins, limits, keep, record)
+    if record is not None and (targets.wanted or any(r.decisions for r in records)):
+        logits = ref.logits if keep is None else ref.logits[keep]
+        reference = _verify.reference_probabilities(logits, record.scaling, record.activation)
+        labels = dataset.labels if dataset.labels is not None else (cap.labels if cap is not None else None)
+        checks += _decide.verify_checks(patched, records, dataset, run, progress, reference, keep, targets,
+                                        accept_confidence, labels)
+    elif targets.wanted:
+        raise OnnxcalError(f"'{patched_path}' has no calibration record, so no decision outputs to hold to targets")
     if latency:
         against = "original" if original is not None else "uncalibrated copy"
         if ref.original_model is not None:
@@ -1361,6 +1417,8 @@ def calibrate(
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
     output_holds: str | None = None,
     score_columns: str | None = None,
+    decisions: DecisionOptions = DecisionOptions(),
+    decision_data: DataSource | None = None,
 ) -> CalibrateResult:
     """Capture, fit, patch and verify in one go (and write a report).
 
@@ -1376,12 +1434,20 @@ def calibrate(
     together, only once everything is computed. ``drop_nonfinite`` leaves out
     samples whose logits hold NaN or Inf (a note says how many; by default
     they are refused); ``max_model_bytes`` as for :func:`capture`.
+    ``decisions`` adds decision outputs beside the probabilities (see
+    ``docs/decisions.md``), their thresholds chosen on the held-out rows
+    (the map baked in is then the one fitted on the other rows) or on
+    ``decision_data``, a separate labelled set (same forms and options as
+    ``data``).
     """
     check_fit_options(options)
     _check_columns(score_columns)
     spec = _data_spec(data)
+    _decide.check_request(decisions, decision_data is not None, options)
+    decision_spec = replace(spec, path=decision_data) if decisions.wanted and decision_data is not None else None
     limit = _max_bytes(max_model_bytes)
-    external = _check_outputs(out, [model_path, *spec.files()], model_path, force, limit)
+    extra = decision_spec.files() if decision_spec is not None else []
+    external = _check_outputs(out, [model_path, *spec.files(), *extra], model_path, force, limit)
     if report is not None:
         outputs = [out, *([graph.external_data_path(out)] if external else [])]
         inputs = [*_model_files(model_path, limit), *spec.files(), *outputs]
@@ -1404,10 +1470,19 @@ def calibrate(
     summary = _summarize(cap, options)
     for note in (*cap.notes, dropped):
         summary = _with_note(summary, note)
+    summary = _decide.baked_summary(summary, decisions, decision_spec is not None)
     patched = patching.patch(model, summary.scaling, sha=sha, path=model_path, fit=summary.to_dict(),
                              reading=_reading.patch_reading(cap.meta.to_dict()), largest_logit=max_abs(cap.logits))
     record = graph.read_record(patched, cap.meta.output)
+    chosen = None
+    if decisions.wanted:
+        source = dataset if decision_spec is None else _load_data(patched, decision_spec, batch_size=run.batch_size)
+        patched, record, chosen = _calibrate_decisions(patched, record, cap, keep, source, decision_spec is None,
+                                                       options, decisions, run, progress)
     checks = _compare_as_it_runs(patched, record, dataset, run, progress, full.logits, keep)
+    if chosen is not None:
+        reference = _verify.reference_probabilities(cap.logits, record.scaling, record.activation)
+        checks += _decide.exact_checks(patched, record, dataset, run, progress, reference, keep)[0]
     source_sha = sha if len(graph.read_records(patched)) == 1 else record.source_sha256  # other heads: the original's
     checks += _record_checks(record, patched, model, source_sha)
     checks.append(_reading.identity(model, patched, (record,), dataset, run, progress))
@@ -1429,4 +1504,20 @@ def calibrate(
         report_files, written_report = _report_files(report, content, _report.FORMATS)
         files.update(report_files)
     atomic_write_files(files)
-    return CalibrateResult(summary=summary, patch=written, verification=result, report=written_report)
+    return CalibrateResult(summary=summary, patch=written, verification=result, report=written_report,
+                           decisions=chosen)
+
+
+def _calibrate_decisions(
+    patched: onnx.ModelProto, record: Record, cap: Capture, keep: np.ndarray, dataset: Dataset, holdout: bool,
+    options: FitOptions, decisions: DecisionOptions, run: RunOptions, progress: ProgressFn | None,
+) -> tuple[onnx.ModelProto, Record, Decisions]:
+    """Choose the thresholds (on the held-out rows, or every row of a separate set) and add the outputs."""
+    if holdout:
+        p = _decide.model_probabilities(patched, record, dataset, run, progress)
+        chosen = _decide.on_holdout(p[keep], cap.labels, options, decisions)
+    else:
+        chosen = _decide.on_separate(patched, record, dataset, run, progress, decisions)
+    _warn_unmet(chosen)
+    patched = _decide.bake(patched, record, chosen)
+    return patched, graph.read_record(patched, record.output), chosen

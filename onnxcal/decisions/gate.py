@@ -130,9 +130,15 @@ def _near(ref: np.ndarray, section: dict[str, Any], tol: float) -> np.ndarray:
         if sets.score == "las":
             near |= np.any(np.abs(p - t) <= tol, axis=1)
         else:  # the mass before a class adds up to K roundings; classes within tol may rank either way
-            near |= np.any(np.abs(_mass_before(p) - t) <= tol * p.shape[1], axis=1)
+            slack = tol * p.shape[1]
+            near |= np.any(np.abs(_mass_before(p) - t) <= slack, axis=1)
             ranked = -np.sort(-p, axis=1)
-            near |= np.any(ranked[:, :-1] - ranked[:, 1:] <= tol, axis=1)
+            before = np.cumsum(ranked, axis=1) - ranked
+            tied = ranked[:, :-1] - ranked[:, 1:] <= tol
+            # a swap of two tied classes moves the mass before them within [before, before + both]
+            span_low, span_high = before[:, :-1] - slack, before[:, :-1] + ranked[:, :-1] + ranked[:, 1:] + slack
+            crosses = (span_low <= t.max()) & (span_high >= t.min())  # any class's threshold (one when marginal)
+            near |= np.any(tied & crosses, axis=1)
     return near
 
 

@@ -170,8 +170,9 @@ class Decisions:
             t = self.sets
             q = ", ".join(f"{v:.6g}" for v in t.thresholds)
             per = " per class" if t.class_conditional else ""
+            what = "within each class" if t.class_conditional else "marginal"
             out.append(
-                f"class_set: {t.score.upper()} sets{per} for coverage {t.coverage:g} (marginal, needs exchangeable "
+                f"class_set: {t.score.upper()} sets{per} for coverage {t.coverage:g} ({what}, for exchangeable "
                 f"data), threshold{'s' if len(t.thresholds) > 1 else ''} {q} from {', '.join(map(str, t.n))} rows"
             )
             if any(t.infinite):
