@@ -88,7 +88,10 @@ def test_the_fit_part_map_is_baked_in_and_the_record_says_where_the_rows_came_fr
     assert record.decisions["initializers"]["accept"] == "onnxcal_accept_threshold"
 
 
-@pytest.mark.parametrize(("target", "status", "code"), [("0.5", "pass", 0), ("0.001", "fail", 1), (None, "undecided", 0)])
+GATES = [("0.5", "pass", 0), ("0.001", "fail", 1), (None, "undecided", 0)]
+
+
+@pytest.mark.parametrize(("target", "status", "code"), GATES)
 def test_verify_gates(demo: tuple[Path, api.CalibrateResult], run_cli: Any, target: str | None, status: str,
                       code: int) -> None:
     path, _ = demo
