@@ -1323,7 +1323,7 @@ def report(
     _report_targets(out, formats, inputs, force, "--out")
     cap = captures if isinstance(captures, Capture) else _capture.load_captures(capture_paths)
     cap, dropped = _finite(cap, ", ".join(map(str, capture_paths)) or cap.meta.data_source, drop_nonfinite)
-    calibrated = None
+    calibrated, decisions = None, None
     if temperature is not None:
         kind = kind_of(cap.logits.shape[1], cap.labels.ndim)
         summary, scaling = None, Scaling.of_temperature(graph.check_temperature(temperature), kind)
@@ -1335,6 +1335,7 @@ def report(
         record = _record_of(model, limit)
         summary, scaling = _fit_from_record(record, model), record.scaling
         source_sha, what = record.source_sha256, f"the calibration in '{model}'"
+        decisions = record.decisions
         calibrated = {"name": Path(model).name, "path": str(model), "sha256": graph.model_sha256(model)}
     _check_report_scaling(scaling, cap, source_sha, what)
     check_in_dtype(scaling, "float64", largest_logit=max_abs(cap.logits), computes="the report computes in",
@@ -1342,7 +1343,7 @@ def report(
     check_bins_memory(n_bins or (summary.options.n_bins if summary is not None else DEFAULT_BINS), cap.logits.shape[1])
     names = _class_names(class_names, cap.logits.shape[1]) or _capture_names(cap)
     content = _report.build(
-        cap, scaling, summary=summary, class_names=names, n_bins=n_bins, calibrated=calibrated
+        cap, scaling, summary=summary, class_names=names, n_bins=n_bins, calibrated=calibrated, decisions=decisions
     )
     if dropped is not None:
         content["notes"] = [*content.get("notes", []), dropped]
@@ -1499,7 +1500,7 @@ def calibrate(
         }
         content = _report.build(
             cap, summary.scaling, summary=summary, class_names=_capture_names(cap), calibrated=calibrated,
-            verification=result,
+            verification=result, decisions=record.decisions,
         )
         report_files, written_report = _report_files(report, content, _report.FORMATS)
         files.update(report_files)

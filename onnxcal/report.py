@@ -28,13 +28,13 @@ import base64
 import html
 import io
 import json
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
 
-from . import __version__, _signals
+from . import __version__, _signals, decision_report
 from .capture import Capture
 from .fit import FitSummary, data_warnings
 from .metrics import DEFAULT_BINS, METRIC_FIELDS, METRIC_LABELS, Metrics, evaluate, reliability
@@ -46,7 +46,7 @@ FORMAT = 1
 FORMATS = ("html", "md", "json", "png")
 FILES = {"html": ("report.html",), "md": ("summary.md",), "json": ("report.json",)}
 PLOTS = ("reliability", "confidence", "classes")
-FILES["png"] = tuple(f"{p}.png" for p in PLOTS)
+FILES["png"] = (*(f"{p}.png" for p in PLOTS), "decisions.png")  # the last only with decision outputs
 
 # Okabe-Ito colours (Okabe & Ito 2008): distinct under protanopia,
 # deuteranopia and tritanopia.
@@ -272,6 +272,7 @@ def build(
     n_bins: int | None = None,
     calibrated: dict | None = None,
     verification: VerifyResult | None = None,
+    decisions: dict | None = None,
 ) -> dict:
     """Every number of the report, as the JSON-ready dictionary report.json holds.
 
@@ -291,6 +292,9 @@ def build(
         ``name``, ``path``, ``sha256`` of the patched model.
     verification : VerifyResult, optional
         Shown when given (``calibrate --report``).
+    decisions : dict, optional
+        The record's ``decisions`` section: the risk-coverage curve and the
+        set sizes on the rows the figures are on (``decision_report``).
     """
     bins = n_bins or (summary.options.n_bins if summary is not None else DEFAULT_BINS)
     k = cap.logits.shape[1]
@@ -361,8 +365,21 @@ def build(
         "verification": verification.to_dict() if verification is not None else None,
         "cautions": list(CAUTIONS),
     }
+    if decisions and decisions.get("rows", {}).get("source") == "holdout" and ev.basis == "held-out":
+        ev = replace(ev, description=ev.description.replace(
+            f"the parameters baked into the model are refitted on all {len(cap.logits)}",
+            "these are the parameters baked into the model (not refitted: the decision thresholds come from "
+            "the held-out samples)"))
+        content["metrics"]["description"] = ev.description
+    content["decisions"] = _decision_figures(cap, ev, decisions)
     content["verdict"] = _verdict(content)
     return content
+
+
+def _decision_figures(cap: Capture, ev: Evaluation, decisions: dict | None) -> dict | None:
+    rows = ev.rows if ev.rows is not None else np.arange(len(cap.logits))
+    return decision_report.section(cap.logits, cap.labels, rows, ev.scaling, ev.scaling.activation,
+                                   decisions or {}, ev.description)
 
 
 # --------------------------------------------------------------------------
@@ -516,11 +533,14 @@ def draw(content: dict) -> dict[str, bytes]:
     and after side by side, the confidence histograms before and after, and
     the per-class calibration errors.
     """
-    return {
+    pngs = {
         "reliability": _reliability_plot(content),
         "confidence": _confidence_plot(content),
         "classes": _classes_plot(content),
     }
+    if content.get("decisions"):
+        pngs["decisions"] = decision_report.plot(content, _new_figure, _png, OKABE_ITO)
+    return pngs
 
 
 # --------------------------------------------------------------------------
@@ -696,6 +716,8 @@ def render_html(content: dict, pngs: dict[str, bytes]) -> str:
             f'height="{PLOT_PIXELS[1]}" alt="{_e(_CAPTIONS[name])}">'
             f"<figcaption>{_e(_CAPTIONS[name])}</figcaption></figure>"
         )
+    if content.get("decisions"):
+        parts.append(decision_report.html(content["decisions"], pngs["decisions"], PLOT_PIXELS))
     if content["verification"] is not None:
         parts += ['<h2 id="verification">Verification</h2>', _verification_html(content["verification"])]
     parts.append('<h2 id="warnings">Warnings</h2>')
@@ -737,6 +759,8 @@ def render_markdown(content: dict) -> str:
         "",
         *[f"- {_md(line)}" for line in content["verdict"]],
     ]
+    if content.get("decisions"):
+        lines += ["", "Decisions:", *[f"- {_md(x)}" for x in decision_report.lines(content["decisions"])]]
     if content["warnings"]:
         lines += ["", "Warnings:", *[f"- {_md(w)}" for w in content["warnings"]]]
     lines += ["", "> **Cautions.** " + " ".join(content["cautions"]), ""]
@@ -777,5 +801,5 @@ def render(content: dict, formats) -> dict[str, bytes]:
     if "json" in formats:
         files["report.json"] = render_json(content).encode()
     if "png" in formats:
-        files.update({f"{name}.png": pngs[name] for name in PLOTS})
+        files.update({f"{name}.png": png for name, png in pngs.items()})
     return files

@@ -142,3 +142,22 @@ def test_separate_set_keeps_the_refit_and_patch_chooses_on_it(tmp_path: Path) ->
     again = api.patch(tmp_path / "b.onnx", tmp_path / "c.onnx", temperature=1.5)
     outputs = [o.name for o in onnx.load(str(again.path)).graph.output]
     assert "accept" not in outputs and not again.record.decisions
+
+
+def test_report_shows_the_risk_coverage_curve_and_the_set_sizes(tmp_path: Path) -> None:
+    result = api.calibrate(DEMO_MODEL, DEMO_VAL, tmp_path / "m.onnx", options=FAST, decisions=DECIDE,
+                           report=tmp_path / "rep")
+    content = json.loads((tmp_path / "rep" / "report.json").read_text())
+    d = content["decisions"]
+    chosen = result.decisions.accept[0]
+    n = result.summary.split["n_holdout"]
+    assert d["n"] == n and sum(d["class_set"]["sizes"]) == n
+    # the curve's point at tau: the rows the threshold accepted when it was chosen (the float64 reference
+    # may put a row lying on tau on the other side, hence the one-row slack)
+    assert abs(d["accept"]["at_threshold"]["coverage"] - chosen.accepted.rate) <= 1 / n
+    curve = d["accept"]["curve"]
+    assert curve["coverage"] == sorted(curve["coverage"]) and curve["coverage"][-1] == 1.0
+    assert "decisions.png" in {p.name for p in (tmp_path / "rep").iterdir()}
+    html = (tmp_path / "rep" / "report.html").read_text()
+    assert 'id="decisions"' in html and "licensed professionals" in html and "risk-coverage" in html
+    assert "not refitted" in content["metrics"]["description"]
