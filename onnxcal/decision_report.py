@@ -89,7 +89,8 @@ def plot(content: dict[str, Any], new_figure: Any, png: Any, colours: dict[str, 
             _risk_panel(ax, d["accept"], colours)
         else:
             _sizes_panel(ax, d["class_set"], colours)
-    return png(fig)
+    drawn: bytes = png(fig)
+    return drawn
 
 
 def _risk_panel(ax: Any, a: dict[str, Any], colours: dict[str, str]) -> None:
@@ -132,7 +133,8 @@ def _sizes_panel(ax: Any, s: dict[str, Any], colours: dict[str, str]) -> None:
 
 def lines(d: dict[str, Any]) -> list[str]:
     """The figures in words (HTML and Markdown)."""
-    out = [f"Decision thresholds chosen on {d['rows'].get('description', 'labelled rows')}; figures on {d['description']}."]
+    where = d["rows"].get("description", "labelled rows")
+    out = [f"Decision thresholds chosen on {where}; figures on {d['description']}."]
     if "accept" in d:
         a = d["accept"]
         if a["threshold"] is None:
@@ -154,6 +156,7 @@ def lines(d: dict[str, Any]) -> list[str]:
 def html(d: dict[str, Any], png: bytes, size: tuple[int, int]) -> str:
     data = base64.b64encode(png).decode("ascii")
     items = "".join(f"<li>{_html.escape(x)}</li>" for x in lines(d))
+    caption = _html.escape(CAPTION)
     return (f'<h2 id="decisions">Decisions</h2><ul>{items}</ul>'
             f'<figure id="plot-decisions"><img src="data:image/png;base64,{data}" width="{size[0]}" '
-            f'height="{size[1]}" alt="{_html.escape(CAPTION)}"><figcaption>{_html.escape(CAPTION)}</figcaption></figure>')
+            f'height="{size[1]}" alt="{caption}"><figcaption>{caption}</figcaption></figure>')
