@@ -21,7 +21,7 @@ import onnxruntime as ort
 import pytest
 from scipy import stats
 
-from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL
+from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, random_mlp, save_model
 from digits_model import make_digits
 from onnxcal import api, graph
 from onnxcal.decisions import conditional_coverage_floor
@@ -161,3 +161,28 @@ def test_report_shows_the_risk_coverage_curve_and_the_set_sizes(tmp_path: Path) 
     html = (tmp_path / "rep" / "report.html").read_text()
     assert 'id="decisions"' in html and "licensed professionals" in html and "risk-coverage" in html
     assert "not refitted" in content["metrics"]["description"]
+
+
+@pytest.mark.parametrize("labels_per_row", [1, 3], ids=["one-sigmoid", "multi-label"])
+def test_sigmoid_heads(tmp_path: Path, labels_per_row: int) -> None:
+    """Labels drawn from the model's own probabilities (so it is calibrated): the gates must not fail."""
+    rng = np.random.default_rng(16 + labels_per_row)
+    model = random_mlp(rng, k=labels_per_row, final="Sigmoid")
+    save_model(model, tmp_path / "m.onnx")
+    x = rng.normal(size=(3000, 6)).astype(np.float32)
+    sess = ort.InferenceSession(str(tmp_path / "m.onnx"), providers=["CPUExecutionProvider"])
+    p = sess.run(None, {"x": x})[0]
+    y = (rng.random(p.shape) < p).astype(np.int64)
+    y = y[:, 0] if labels_per_row == 1 else y
+    np.savez(tmp_path / "val.npz", x=x[:2000], labels=y[:2000])
+    np.savez(tmp_path / "test.npz", x=x[2000:], labels=y[2000:])
+    decide = DecisionOptions(accept_error=0.1, set_coverage=0.9 if labels_per_row == 1 else None)
+    result = api.calibrate(tmp_path / "m.onnx", tmp_path / "val.npz", tmp_path / "out.onnx", options=FAST,
+                           decisions=decide)
+    assert result.verification.passed and len(result.decisions.accept) == labels_per_row
+    out, labels = _run(tmp_path / "out.onnx", tmp_path / "test.npz")
+    assert out["accept"].shape == ((1000,) if labels_per_row == 1 else (1000, 3))
+    if labels_per_row == 1:
+        assert out["class_set"].shape == (1000, 2)
+    checks = {c.name: c for c in api.verify(tmp_path / "out.onnx", tmp_path / "test.npz").checks}
+    assert checks["decision-outputs"].status == "pass" and checks["accept-error"].status != "fail"
