@@ -73,6 +73,10 @@ class DecisionOptions:
         }
 
 
+NO_DECISIONS = DecisionOptions()
+"""The default of the commands' ``decisions``: no decision outputs."""
+
+
 def check_decision_options(options: DecisionOptions) -> DecisionOptions:
     """Validate the options once, at the command's boundary (before any work)."""
     if options.accept_error is not None:

@@ -19,6 +19,7 @@ accepts. ``verify`` runs the decision outputs and checks them
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import replace
 from pathlib import Path
 from typing import Any
@@ -26,17 +27,18 @@ from typing import Any
 import numpy as np
 import onnx
 
-from . import graph
-from .capture import ProgressFn, RunOptions, label_rows, run_model
-from .data import Dataset
-from .decisions import gate
-from .decisions.plan import HOLDOUT, SEPARATE, DecisionOptions, Decisions, Rows, check_decision_options, choose
-from .errors import OnnxcalError
-from .fit import FitOptions, FitSummary
-from .graph import Record
-from .graph.decide import add_decisions, probabilities_layout
-from .resample import split_holdout
-from .verify import Check, skipped, tolerance
+from .. import graph
+from ..capture import CPU, ProgressFn, RunOptions, label_rows, run_model
+from ..data import Dataset, DataSpec
+from ..decisions import gate
+from ..decisions.plan import HOLDOUT, SEPARATE, DecisionOptions, Decisions, Rows, check_decision_options, choose
+from ..errors import OnnxcalError, OnnxcalWarning
+from ..fit import FitOptions, FitSummary
+from ..graph import Record
+from ..graph.decide import add_decisions, probabilities_layout
+from ..resample import split_holdout
+from ..verify import Check, reference_probabilities, skipped, tolerance
+from .common import load_data, run_options
 
 
 def check_request(decisions: DecisionOptions, separate: bool, fit_options: FitOptions | None) -> None:
@@ -220,3 +222,77 @@ def verify_checks(
         named = head + gates(record, p, got, y, dataset.source, targets, level)
         checks += [replace(c, name=f"{c.name} ({record.source_output})") for c in named] if len(records) > 1 else named
     return checks
+
+
+def warn_unmet(chosen: Decisions) -> None:
+    """Warn when no acceptance threshold meets the target (the model then accepts nothing)."""
+    if chosen.unmet:
+        labels = f" for labels {list(chosen.unmet)}" if chosen.kind == "multilabel" else ""
+        warnings.warn(OnnxcalWarning(
+            f"no acceptance threshold meets an error of at most {chosen.options.accept_error:g} with confidence "
+            f"{chosen.options.accept_confidence:g} on {chosen.rows.description}: the model's 'accept' output "
+            f"accepts nothing{labels}"
+        ), stacklevel=3)
+
+
+def decision_spec(decisions: DecisionOptions, decision_data: Any, like: DataSpec | None) -> DataSpec | None:
+    """The separate labelled set to choose on (with ``like``'s options, for calibrate), or None."""
+    if not decisions.wanted or decision_data is None:
+        return None
+    if isinstance(decision_data, DataSpec):
+        return decision_data
+    return replace(like, path=decision_data) if like is not None else DataSpec(path=decision_data)
+
+
+def for_patch(patched: onnx.ModelProto, output: str | None, spec: DataSpec, decisions: DecisionOptions
+              ) -> tuple[onnx.ModelProto, Decisions]:
+    """``patch``: choose on the separate labelled set and add the decision outputs."""
+    record = graph.read_record(patched, output)
+    dataset = load_data(patched, spec)
+    chosen = on_separate(patched, record, dataset, run_options(None, 0, "all", CPU), None,
+                         decisions)
+    warn_unmet(chosen)
+    return bake(patched, record, chosen), chosen
+
+
+def for_calibrate(
+    patched: onnx.ModelProto, record: Record, labels: np.ndarray, keep: np.ndarray, dataset: Dataset,
+    separate: DataSpec | None, options: FitOptions, decisions: DecisionOptions, run: RunOptions,
+    progress: ProgressFn | None,
+) -> tuple[onnx.ModelProto, Record, Decisions]:
+    """``calibrate``: choose on the held-out rows (``labels``: the kept rows'), or on every row of
+    ``separate``; add the outputs. Returns the model, its record and the thresholds."""
+    if separate is None:
+        p = model_probabilities(patched, record, dataset, run, progress)
+        chosen = on_holdout(p[keep], labels, options, decisions)
+    else:
+        other = load_data(patched, separate, batch_size=run.batch_size)
+        chosen = on_separate(patched, record, other, run, progress, decisions)
+    warn_unmet(chosen)
+    patched = bake(patched, record, chosen)
+    return patched, graph.read_record(patched, record.output), chosen
+
+
+def for_verify(
+    patched: onnx.ModelProto, records: tuple[Record, ...], dataset: Dataset, cap_labels: np.ndarray | None,
+    ref_logits: np.ndarray | None, keep: np.ndarray | None, targets: DecisionOptions, level: float | None,
+    run: RunOptions, progress: ProgressFn | None, path: Any,
+) -> list[Check]:
+    """``verify``'s decision checks (none for a model without decision outputs and without targets).
+
+    ``ref_logits``: the last head's reference logits, every row (``keep`` is applied here).
+    """
+    if not records:
+        if targets.wanted:
+            raise OnnxcalError(f"'{path}' has no calibration record, so no decision outputs to hold to targets",
+                               "add them with calibrate or patch (--accept-error, --set-coverage)")
+        return []
+    if not targets.wanted and not any(r.decisions for r in records):
+        return []
+    record = records[-1]
+    reference = None
+    if ref_logits is not None:
+        logits = ref_logits if keep is None else ref_logits[keep]
+        reference = reference_probabilities(logits, record.scaling, record.activation)
+    labels = dataset.labels if dataset.labels is not None else cap_labels
+    return verify_checks(patched, records, dataset, run, progress, reference, keep, targets, level, labels)

@@ -14,10 +14,10 @@ from typing import Any
 
 import numpy as np
 
-from .decisions import class_set, class_set_size, proportion, risk_coverage
-from .decisions.gate import accept_threshold, set_threshold
-from .scaling import Scaling
-from .verify import reference_probabilities
+from ..decisions import class_set, class_set_size, proportion, risk_coverage
+from ..decisions.gate import accept_threshold, set_threshold
+from ..scaling import Scaling
+from ..verify import reference_probabilities
 
 MAX_CURVE_POINTS = 400
 CAPTION = (
