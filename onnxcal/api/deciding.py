@@ -247,7 +247,7 @@ def decision_spec(decisions: DecisionOptions, decision_data: Any, like: DataSpec
 def for_patch(patched: onnx.ModelProto, output: str | None, spec: DataSpec, decisions: DecisionOptions
               ) -> tuple[onnx.ModelProto, Decisions]:
     """``patch``: choose on the separate labelled set and add the decision outputs."""
-    record = graph.read_record(patched, output)
+    record = _record(patched, output)
     dataset = load_data(patched, spec)
     chosen = on_separate(patched, record, dataset, run_options(None, 0, "all", CPU), None,
                          decisions)
@@ -270,7 +270,15 @@ def for_calibrate(
         chosen = on_separate(patched, record, other, run, progress, decisions)
     warn_unmet(chosen)
     patched = bake(patched, record, chosen)
-    return patched, graph.read_record(patched, record.output), chosen
+    return patched, _record(patched, record.output), chosen
+
+
+def _record(model: onnx.ModelProto, output: str | None) -> Record:
+    """The record of ``output`` in a model onnxcal has just patched (so there is one)."""
+    record = graph.read_record(model, output)
+    if record is None:  # not reached: the patch wrote it
+        raise OnnxcalError(f"no calibration record for output '{output}' after patching")
+    return record
 
 
 def for_verify(

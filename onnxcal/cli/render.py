@@ -145,7 +145,8 @@ def render_verify(result: VerifyResult) -> None:
         out.print(f"note: {note}", soft_wrap=True)
     undecided = [c.name for c in result.checks if c.status == "undecided"]
     for name in undecided:  # not a failure: the data cannot tell either way
-        out.print(f"undecided: {name}: the interval straddles the target; more labelled rows would tell", soft_wrap=True)
+        out.print(f"undecided: {name}: the interval straddles the target; more labelled rows would tell",
+                  soft_wrap=True)
     if result.passed:
         out.print("verify: all checks passed" + (f" ({len(undecided)} undecided)" if undecided else ""))
     else:
