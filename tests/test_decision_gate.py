@@ -93,3 +93,18 @@ def test_coverage_gate_pass_fail_undecided(coverage: float, outcome: str) -> Non
     sets = plan.SetThreshold("las", coverage, False, (0.2,), (5000,), (4501,), "float32")
     check = gate.coverage_gate({"class_set": member}, y, sets, coverage, 0.95)
     assert check.status == outcome, check.detail
+
+
+def test_an_undecided_gate_passes_and_says_so_in_junit() -> None:
+    import xml.etree.ElementTree as ET
+
+    from onnxcal.verify import Check, VerifyResult, junit_xml
+
+    undecided = Check("set-coverage", True, 0.89, 0.884, "interval straddles", undecided=True)
+    result = VerifyResult(checks=(undecided, Check("accept-error", False, 0.2, 0.05, "above")), n=10, original="m")
+    assert undecided.status == "undecided" and undecided.to_dict()["status"] == "undecided"
+    assert [c.name for c in result.failed] == ["accept-error"]
+    cases = {c.get("name"): c for c in ET.fromstring(junit_xml(result, suite="s")).iter("testcase")}
+    out = cases["set-coverage"].find("system-out")
+    assert cases["set-coverage"].find("failure") is None and out is not None and "undecided" in (out.text or "")
+    assert cases["accept-error"].find("failure") is not None
