@@ -133,7 +133,7 @@ def on_separate(
 def bake(patched: onnx.ModelProto, record: Record, chosen: Decisions) -> onnx.ModelProto:
     """The patched model with the decision outputs the thresholds call for."""
     return add_decisions(patched, output=record.output, accept_threshold=chosen.accept_threshold,
-                                      sets=chosen.sets, section=chosen.section())
+                         sets=chosen.sets, section=chosen.section())
 
 
 def _in_graph(model: onnx.ModelProto, section: dict[str, Any]) -> dict[str, np.ndarray | None]:
