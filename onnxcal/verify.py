@@ -66,6 +66,9 @@ class Check:
         What was measured, in words.
     skipped : bool
         The check could not be run (``detail`` says why); it does not fail.
+    undecided : bool
+        A statistical gate whose interval straddles its target (more data
+        would tell); it does not fail.
     """
 
     name: str
@@ -74,11 +77,14 @@ class Check:
     limit: float | None
     detail: str
     skipped: bool = False
+    undecided: bool = False
 
     @property
     def status(self) -> str:
-        """``"pass"``, ``"fail"`` or ``"skip"``."""
-        return "skip" if self.skipped else ("pass" if self.passed else "fail")
+        """``"pass"``, ``"fail"``, ``"skip"`` or ``"undecided"``."""
+        if self.skipped:
+            return "skip"
+        return "undecided" if self.undecided and self.passed else ("pass" if self.passed else "fail")
 
     def to_dict(self) -> dict:
         """JSON-ready: a NaN or infinite figure becomes None."""

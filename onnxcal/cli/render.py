@@ -131,6 +131,12 @@ _REFERENCE_FROM = {
 }
 
 
+def render_decisions(lines: list[str]) -> None:
+    """The decision thresholds chosen, what they do on the rows they come from, and where those are."""
+    for line in lines:
+        out.print(line, soft_wrap=True)
+
+
 def render_verify(result: VerifyResult) -> None:
     if result.reference_from in _REFERENCE_FROM:
         where = f" ({result.original})" if result.original else ""
@@ -141,13 +147,17 @@ def render_verify(result: VerifyResult) -> None:
     for col in ("check", "result", "value", "limit", "what"):
         table.add_column(col)
     for c in result.checks:
-        status = {"pass": "pass", "fail": "FAIL", "skip": "skipped"}[c.status]
+        status = {"pass": "pass", "fail": "FAIL", "skip": "skipped", "undecided": "undecided"}[c.status]
         table.add_row(c.name, status, format_figure(c.value), format_figure(c.limit), c.detail)
     out.print(table)
     for note in result.notes:
         out.print(f"note: {note}", soft_wrap=True)
+    undecided = [c.name for c in result.checks if c.status == "undecided"]
+    for name in undecided:  # not a failure: the data cannot tell either way
+        out.print(f"undecided: {name}: the interval straddles the target; more labelled rows would tell",
+                  soft_wrap=True)
     if result.passed:
-        out.print("verify: all checks passed")
+        out.print("verify: all checks passed" + (f" ({len(undecided)} undecided)" if undecided else ""))
     else:
         for c in result.failed:  # each failure as a full sentence, unwrapped
             out.print(f"failed: {c.name}: {c.detail}", soft_wrap=True)

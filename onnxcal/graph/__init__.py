@@ -44,6 +44,9 @@ made by ``scale_fn`` from the fitted ``Scaling``: ``divide_by_temperature``
 Re-patching a patched model first undoes the previous patch (``unpatch``),
 so patches never stack.
 
+``decide.add_decisions`` adds decision outputs (``accept``, ``class_set``,
+``class_set_size``) beside a patched model's calibrated probabilities.
+
 The calibration record is JSON in ``metadata_props`` under ``RECORD_KEY``.
 """
 

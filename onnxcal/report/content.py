@@ -7,7 +7,7 @@ the cautions every report carries.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -22,6 +22,7 @@ from ..metrics import DEFAULT_BINS, METRIC_FIELDS, Metrics, evaluate, reliabilit
 from ..resample import split_holdout
 from ..scaling import SIGMOID_L1, Scaling
 from ..verify import VerifyResult
+from . import decisions as decision_figures
 
 FORMAT = 1
 
@@ -252,6 +253,7 @@ def build(
     n_bins: int | None = None,
     calibrated: dict | None = None,
     verification: VerifyResult | None = None,
+    decisions: dict | None = None,
 ) -> dict:
     """Every number of the report, as the JSON-ready dictionary report.json holds.
 
@@ -271,6 +273,9 @@ def build(
         ``name``, ``path``, ``sha256`` of the patched model.
     verification : VerifyResult, optional
         Shown when given (``calibrate --report``).
+    decisions : dict, optional
+        The record's ``decisions`` section: the risk-coverage curve and the
+        set sizes on the rows the figures are on (``report.decisions``).
     """
     bins = n_bins or (summary.options.n_bins if summary is not None else DEFAULT_BINS)
     k = cap.logits.shape[1]
@@ -342,5 +347,19 @@ def build(
         "verification": verification.to_dict() if verification is not None else None,
         "cautions": list(CAUTIONS),
     }
+    if decisions and decisions.get("rows", {}).get("source") == "holdout" and ev.basis == "held-out":
+        ev = replace(ev, description=ev.description.replace(
+            f"the parameters baked into the model are refitted on all {len(cap.logits)}",
+            "these are the parameters baked into the model (not refitted: the decision thresholds come from "
+            "the held-out samples)"))
+        content["metrics"]["description"] = ev.description
+    content["decisions"] = _decision_figures(cap, ev, decisions)
     content["verdict"] = _verdict(content)
     return content
+
+
+def _decision_figures(cap: Capture, ev: Evaluation, decisions: dict | None) -> dict | None:
+    """report.json's ``decisions`` (None without decision outputs), on the rows the figures are on."""
+    rows = ev.rows if ev.rows is not None else np.arange(len(cap.logits))
+    return decision_figures.section(cap.logits, cap.labels, rows, ev.scaling, ev.scaling.activation,
+                                    decisions or {}, ev.description)

@@ -9,12 +9,13 @@ import json
 from ..metrics import METRIC_FIELDS, METRIC_LABELS
 from ..scaling import Scaling
 from ..verify import format_figure
+from . import decisions as decision_figures
 from .plots import PLOT_PIXELS, PLOTS, Content, draw, used_parameters
 from .tables import MARK, bin_table, class_error_table, interval_footnote, outside_interval
 
 FORMATS = ("html", "md", "json", "png")
 FILES = {"html": ("report.html",), "md": ("summary.md",), "json": ("report.json",)}
-FILES["png"] = tuple(f"{p}.png" for p in PLOTS)
+FILES["png"] = (*(f"{p}.png" for p in PLOTS), "decisions.png")  # the last only with decision outputs
 
 
 # --------------------------------------------------------------------------
@@ -230,6 +231,8 @@ def render_html(content: dict, pngs: dict[str, bytes]) -> str:
             f'height="{PLOT_PIXELS[1]}" alt="{_e(_CAPTIONS[name])}">'
             f"<figcaption>{_e(_CAPTIONS[name])}</figcaption>{_figure_tables(content, name)}</figure>"
         )
+    if content.get("decisions"):
+        parts.append(decision_figures.html(content["decisions"], pngs["decisions"], PLOT_PIXELS))
     if content["verification"] is not None:
         parts += ['<h2 id="verification">Verification</h2>', _verification_html(content["verification"])]
     parts.append('<h2 id="warnings">Warnings</h2>')
@@ -274,6 +277,8 @@ def render_markdown(content: dict) -> str:
     footnote = interval_footnote(content)
     if footnote:
         lines += ["", _md(footnote)]
+    if content.get("decisions"):
+        lines += ["", "Decisions:", *[f"- {_md(x)}" for x in decision_figures.lines(content["decisions"])]]
     if content["warnings"]:
         lines += ["", "Warnings:", *[f"- {_md(w)}" for w in content["warnings"]]]
     lines += ["", "> **Cautions.** " + " ".join(content["cautions"]), ""]
@@ -314,5 +319,5 @@ def render(content: dict, formats) -> dict[str, bytes]:
     if "json" in formats:
         files["report.json"] = render_json(content).encode()
     if "png" in formats:
-        files.update({f"{name}.png": pngs[name] for name in PLOTS})
+        files.update({f"{name}.png": png for name, png in pngs.items()})
     return files

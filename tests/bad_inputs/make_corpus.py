@@ -73,6 +73,7 @@ def good_files(d: Path, rng: np.random.Generator) -> None:
     y = np.arange(N) % K
     np.savez(d / "val.npz", x=x, labels=y)
     np.savez(d / "val3.npz", x=x[:, :3], labels=np.arange(N) % 3)  # for the 3-input models
+    np.savez(d / "unlabelled.npz", x=x)  # inputs only (issue 16: --decision-data needs labels)
     header = ",".join(f"f{i}" for i in range(D)) + ",label\n"
     rows = "".join(",".join(f"{v:.4f}" for v in row) + f",{label}\n" for row, label in zip(x, y))
     (d / "val.csv").write_text(header + rows)
