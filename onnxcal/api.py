@@ -656,7 +656,8 @@ def _record_checks(
         checks.append(_verify.folded_record_check(record.scaling, found))
     else:
         in_graph = graph.parameter_values(patched, record)
-        checks.append(_verify.record_check(record.parameters, in_graph, graph.temperature_dtype(patched, record)))
+        expected = graph.recorded_values(patched, record)
+        checks.append(_verify.record_check(expected, in_graph, graph.temperature_dtype(patched, record)))
     if source_sha is None:
         checks.append(
             _verify.skipped(

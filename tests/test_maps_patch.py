@@ -156,3 +156,39 @@ def test_record_keeps_method_and_parameters(rng):
     assert record.method == "histogram"
     assert record.parameters == scaling.parameters
     assert record.scaling == scaling
+
+
+@pytest.mark.parametrize(("method", "kind"), CASES)
+def test_record_check_reads_the_map_back(rng, method, kind):
+    from onnxcal.verify import record_check
+
+    model = random_mlp(rng, k=1 if kind == "binary" else K, scale=3.0, final="Sigmoid" if kind == "binary" else "Softmax")
+    scaling = fitted(method, kind, rng)
+    patched = do_patch(model, scaling)
+    record = graph.read_record(patched)
+    expected = graph.recorded_values(patched, record)
+    found = graph.parameter_values(patched, record)
+    assert expected and record_check(expected, found, graph.temperature_dtype(patched, record)).passed
+    # A changed parameter in the graph is caught.
+    name = sorted(record.initializers.values())[0]
+    init = next(i for i in patched.graph.initializer if i.name == name)
+    arr = onnx.numpy_helper.to_array(init).copy()
+    init.CopyFrom(onnx.numpy_helper.from_array((arr + 0.5).astype(arr.dtype), name))
+    assert not record_check(expected, graph.parameter_values(patched, record), "float32").passed
+
+
+@pytest.mark.parametrize(("method", "kind"), CASES)
+def test_identity_gives_the_original_or_is_said_unavailable(rng, method, kind):
+    x = rng.normal(size=(32, 6)).astype(np.float32)
+    final = "Sigmoid" if kind == "binary" else "Softmax"
+    model = random_mlp(rng, k=1 if kind == "binary" else K, scale=3.0, final=final)
+    patched = do_patch(model, fitted(method, kind, rng))
+    records = graph.read_records(patched)
+    why = graph.identity_unavailable(records)
+    if method in ("isotonic", "histogram") or (method == "ovr-platt" and kind == "multiclass"):
+        assert why is not None and method in why
+        return
+    assert why is None
+    at_one = graph.at_identity(patched, records)
+    assert at_one is not None
+    np.testing.assert_allclose(run_ort(at_one, x)[0], run_ort(model, x)[0], atol=1e-6)

@@ -21,6 +21,7 @@ from onnx import helper, numpy_helper
 
 from ..errors import OnnxcalError
 from ..scaling import Scaling
+from .mapped import build_options, is_parameter
 from .tensors import _ELEM, _all_names, _scalar, np_dtype, opset_version, unique_name
 
 if TYPE_CHECKING:
@@ -155,8 +156,6 @@ def multiply_add(surgery: _Surgery, x: str, dtype: str, *, w, b, site: ScoreSite
     return surgery.node("Add", [scaled, b_name], f"{x}_calibrated")
 
 
-# Maps whose builder can stop at logits (feeding the model's own activation).
-_LOGIT_MAPS = ("matrix", "dirichlet", "beta")
 _BUILD_DTYPES = ("float16", "float32", "float64")
 
 
@@ -181,13 +180,17 @@ def map_logits(surgery: _Surgery, x: str, dtype: str, *, scaling: Scaling, site:
     if one_dim:  # one score per row: the map reads N x 1
         axes = surgery.constant("onnxcal_axes_last", numpy_helper.from_array(np.array([-1], dtype=np.int64), ""))
         x = surgery.node("Unsqueeze", [x, axes], f"{x}_column")
-    extra = {"output": "logits"} if scaling.method in _LOGIT_MAPS else {}
-    num_classes = 1 if one_dim else int(site.num_classes or 1)
-    sub = module(scaling.method).build(x, dtype, num_classes, scaling.parameters, taken=surgery.taken, **extra)
+    extra = build_options(scaling.method)
+    num_classes = map_width(site)
+    build = module(scaling.method).build
+    sub = build(x, dtype, num_classes, scaling.parameters, taken=surgery.taken, **extra)
+    alone = build("x", dtype, num_classes, scaling.parameters, **extra)  # the roles: names in a graph of its own
     surgery.taken.update(sub.names)
-    for tensor in sub.initializers:
+    for tensor, role in zip(sub.initializers, alone.initializers, strict=True):
         surgery.root.graph.initializer.append(tensor)
         surgery.changes["initializers"].append(tensor.name)
+        if is_parameter(tensor):
+            surgery.parameters.setdefault(role.name, tensor.name)
     for node in sub.nodes:
         surgery.nodes.append(node)
         surgery.changes["nodes"].append(node.name)
@@ -197,6 +200,11 @@ def map_logits(surgery: _Surgery, x: str, dtype: str, *, scaling: Scaling, site:
     if one_dim:
         out = surgery.node("Squeeze", [out, axes], f"{x}_calibrated")
     return out
+
+
+def map_width(site: ScoreSite) -> int:
+    """The width of the logits a map reads at ``site`` (one score per row: 1)."""
+    return 1 if site.scores_rank == 1 else int(site.num_classes or 1)
 
 
 def _probabilities_as_logits(surgery: _Surgery, p: str, dtype: str, num_classes: int) -> str:
