@@ -226,7 +226,8 @@ def bootstrap(
     else:
         params, metrics = run.exact(draws)
         fallbacks = 0
-    names = list(start.parameters)
+    # A lookup's tables change size from one replicate to the next: no interval per entry.
+    names = [] if start.method in ("isotonic", "histogram") else list(start.parameters)
     out = {
         "level": LEVEL,
         "kind": "percentile",
