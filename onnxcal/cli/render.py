@@ -9,6 +9,7 @@ from pathlib import Path
 from rich import box
 from rich.table import Table
 
+from ..choose import TABLE_FIELDS, Choice
 from ..fit import FitSummary
 from ..graph import ModelInfo, TensorSpec
 from ..metrics import METRIC_LABELS
@@ -75,6 +76,7 @@ def _describe_site(site) -> str:
 
 
 _METRIC_ROWS = tuple(METRIC_LABELS.items())
+_CHOICE_LABELS = {"nll": "NLL", "ece": "ECE", "brier": "Brier", "accuracy": "accuracy"}
 
 
 def _interval(pair) -> str:
@@ -110,9 +112,35 @@ def render_fit(summary: FitSummary) -> None:
             row += [f"{getattr(summary.fit_part[k], key):.4f}" for k in ("before", "after")]
         table.add_row(*row)
     out.print(table)
+    choice = getattr(summary, "choice", None)  # FitSummary.choice comes with the fit package's --method auto
+    if choice is not None:
+        render_choice(choice)
     for note in summary.notes:
         out.print(f"note: {note}", soft_wrap=True)
     warn(summary.warnings)
+
+
+def _with_interval(value: float, pair: list[float] | None) -> str:
+    return f"{value:.4f}" if pair is None else f"{value:.4f} [{pair[0]:.4f}, {pair[1]:.4f}]"
+
+
+def render_choice(choice: Choice) -> None:
+    """The comparison table of ``--method auto`` and the choice, with its reason."""
+    where = "held-out" if choice.basis == "held-out" else "in-sample"
+    table = Table(title=f"--method auto: every applicable method, {where} figures [95% bootstrap interval]",
+                  title_justify="left", box=box.SIMPLE_HEAD)
+    for col in ("method", "parameters", *(_CHOICE_LABELS[f] for f in TABLE_FIELDS), ""):
+        table.add_column(col, justify="left" if col in ("method", "") else "right", no_wrap=col != "")
+    for c in choice.candidates:
+        mark = "chosen" if c.method == choice.chosen else ""
+        if c.method == choice.best:
+            mark = f"{mark}, lowest NLL" if mark else "lowest NLL"
+        if not c.converged:
+            mark = f"{mark}, did not converge" if mark else "did not converge"
+        cells = [_with_interval(c.metrics[f], c.intervals.get(f)) for f in TABLE_FIELDS]
+        table.add_row(c.method, str(c.n_parameters), *cells, mark)
+    out.print(table)
+    out.print(f"chosen: {choice.chosen}: {choice.reason}", soft_wrap=True)
 
 
 _REFERENCE_FROM = {
@@ -152,6 +180,10 @@ def render_report(result: ReportResult, verdict: bool = True) -> None:
               + ", ".join(Path(f).name for f in result.files), soft_wrap=True)
 
 
+_NODES = {"temperature": "Div", "vector": "Mul + Add", "platt": "Mul + Add", "matrix": "MatMul + Add",
+          "dirichlet": "log-softmax + MatMul + Add", "beta": "the beta map (softplus, Mul, Add)"}
+
+
 def how_patched(r) -> str:
     """One line on what the patch did to the graph."""
     if r.folded:
@@ -160,7 +192,7 @@ def how_patched(r) -> str:
         how += "; Softmax appended" if r.rewrite == "append-softmax" else ""
         how += "; Sigmoid appended" if r.rewrite == "append-sigmoid" else ""
         return how
-    nodes = "Div" if r.method == "temperature" else "Mul + Add"
+    nodes = _NODES.get(r.method, f"the {r.method} map (standard operators)")
     how = {
         "insert-before-activation": f"{nodes} inserted before the existing activation",
         "append-softmax": f"{nodes} + Softmax appended",
