@@ -44,7 +44,7 @@ from .fit import FitOptions, FitSummary
 from .graph import ModelInfo, Record
 from .metrics import DEFAULT_BINS, evaluate, scores_from_probabilities
 from .report import ReportResult
-from .scaling import METHODS, MULTILABEL_MODES, Scaling, check_scaling, kind_of
+from .scaling import METHODS, MULTILABEL_MODES, PENALISED_METHODS, Scaling, check_scaling, kind_of
 from .verify import Check, VerifyResult
 
 DEFAULT_LATENCY_RUNS = 100
@@ -271,16 +271,16 @@ def check_fit_options(options: FitOptions) -> FitOptions:
         scaling), ``--holdout`` 0 to 0.9, ``--seed`` 0 to 2^32 - 1,
         ``--bootstrap`` 0 to 10 000, ``--bins`` 2 to 100 000.
     """
-    if options.method not in METHODS:
-        raise OnnxcalError(f"--method {options.method!r} is not one of: {', '.join(METHODS)}")
+    if options.method not in (*METHODS, "auto"):
+        raise OnnxcalError(f"--method {options.method!r} is not one of: {', '.join(METHODS)}, auto")
     if options.multilabel is not None and options.multilabel not in MULTILABEL_MODES:
         raise OnnxcalError(
             f"--multilabel {options.multilabel!r} is not one of: {', '.join(MULTILABEL_MODES)}"
         )
     # 1e6 times the penalty pins w to 1 and b to 0 already (the NLL is a mean, of order 1)
     check_range(options.l2, 0.0, MAX_L2, "--l2", "a penalty (0 for none)")
-    if options.l2 > 0 and options.method == "temperature":
-        raise OnnxcalError("--l2 applies to --method vector and platt, not temperature")
+    if options.l2 > 0 and options.method not in (*PENALISED_METHODS, "auto"):
+        raise OnnxcalError(f"--l2 applies to --method {', '.join(PENALISED_METHODS)} and auto, not {options.method}")
     check_range(options.holdout, 0.0, 0.9, "--holdout", "a fraction (0 scores in-sample)")
     check_range(options.seed, 0, MAX_SEED, "--seed", "a seed")
     check_range(options.bootstrap, 0, MAX_BOOTSTRAP, "--bootstrap", "a number of replicates (0 skips the intervals)")

@@ -138,6 +138,10 @@ def _order(c: Candidate) -> tuple[int, int]:
     return c.n_parameters, METHODS.index(c.method)
 
 
+def _count(n: int) -> str:
+    return f"{n} parameter{'' if n == 1 else 's'}"
+
+
 def choose(candidates: Sequence[Candidate], basis: str = "held-out") -> Choice:
     """Apply the rule to the candidates.
 
@@ -165,7 +169,7 @@ def choose(candidates: Sequence[Candidate], basis: str = "held-out") -> Choice:
                   "and no method with fewer parameters lies within that interval")
     else:
         reason = (f"{best.method} has the lowest {what} NLL ({best.nll:.4g}, 95% bootstrap interval {interval}); "
-                  f"{chosen.method} ({chosen.n_parameters} parameters against {best.n_parameters}) has {what} NLL "
+                  f"{chosen.method} ({_count(chosen.n_parameters)} against {best.n_parameters}) has {what} NLL "
                   f"{chosen.nll:.4g}, within that interval, so the simpler {chosen.method} is chosen")
     return Choice(chosen.method, best.method, reason, basis, tuple(candidates))
 

@@ -33,6 +33,7 @@ from __future__ import annotations
 
 import json
 import os
+from warnings import warn
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
@@ -41,10 +42,13 @@ import scipy.optimize
 
 from . import __version__, resample
 from ._files import atomic_write_bytes, require_file
-from .errors import OnnxcalError, first_line
+from .errors import OnnxcalError, OnnxcalWarning, first_line
 from .metrics import DEFAULT_BINS, Metrics, evaluate, iter_chunks, sigmoid
 from .passes import fit_and_score
-from .scaling import METHODS_FOR, MULTILABEL_MODES, Scaling, check_scaling, is_far_from_one, kind_of
+from .auto import fit_all
+from .choose import Choice, choice_from_dict
+from .fit_maps import fit_map, slow_fit_warning
+from .scaling import MAP_METHODS, METHODS_FOR, MULTILABEL_MODES, Scaling, check_scaling, is_far_from_one, kind_of
 from .sweep import one_blas_thread
 from .tempfit import fit_beta
 
@@ -59,6 +63,7 @@ _STEP_TOL = 1e-7
 _WARM_START_ROWS = 40_000
 _WARM_START_SAMPLE = 10_000
 MIN_PER_CLASS = 20
+AUTO = "auto"  # --method auto: every applicable method, one chosen (onnxcal.auto, onnxcal.choose)
 FORMAT = 2
 
 
@@ -147,11 +152,12 @@ class FitResult:
 def _softmax_terms(z: np.ndarray, y: np.ndarray, beta: float) -> dict[str, np.ndarray]:
     """Per-sample NLL of softmax(beta z) and its first two derivatives in beta.
 
-    ``z`` (float64, a private copy) is shifted in place by its row maximum.
+    ``z`` is left as it is: a float64 chunk of the caller's logits is a view
+    of them (``metrics.iter_chunks``), so the shift by the row maximum makes
+    a new array.
     """
     r = np.arange(len(y))
-    zmax = z.max(axis=1)
-    z -= zmax[:, None]
+    z = z - z.max(axis=1, keepdims=True)
     zy = z[r, y]
     e = np.multiply(z, beta)
     np.exp(e, out=e)
@@ -598,7 +604,7 @@ def resolve_kind(logits: np.ndarray, labels: np.ndarray, options: FitOptions) ->
                 "drop --multilabel, or capture with multi-label labels",
             )
     allowed = METHODS_FOR[kind]
-    if options.method not in allowed:
+    if options.method not in allowed and options.method != AUTO:
         what = {"multiclass": "a multiclass softmax", "binary": "a single-logit binary", "multilabel": "a multi-label"}[kind]
         raise OnnxcalError(
             f"--method {options.method} does not apply to {what} classifier "
@@ -624,11 +630,24 @@ def fit_scaling(
     kind = resolve_kind(logits, labels, options)
     if options.method in ("vector", "platt"):
         return _fit_affine(logits, labels, options.method, options.l2, rows, weights, start, kind)
+    if options.method in MAP_METHODS:
+        return _fit_map(logits, labels, options, kind, rows, weights, start)
     t0 = None if start is None else start.arrays()["temperature"]
     if kind == "multiclass":
         return fit_temperature(logits, labels, rows=rows, weights=weights, start=None if t0 is None else float(t0))
     per_label = kind == "multilabel" and options.multilabel == "per-label"
     return fit_sigmoid_temperature(logits, labels, per_label=per_label, rows=rows, weights=weights, start=t0)
+
+
+def _fit_map(logits, labels, options, kind, rows, weights, start) -> FitResult:
+    """A map of onnxcal.maps: its own solver (ensemble temperature scaling: T from fit_temperature)."""
+    extra = {}
+    if options.method == "ensemble-temperature":
+        extra["temperature"] = fit_temperature(logits, labels, rows=rows, weights=weights).temperature
+    scaling, passes, converged, notes = fit_map(
+        logits, labels, options.method, kind, options.l2, rows=rows, weights=weights, start=start, **extra
+    )
+    return FitResult(scaling, passes, converged, on_bound=False, warnings=notes)
 
 
 def data_warnings(labels: np.ndarray, num_classes: int) -> list[str]:
@@ -697,6 +716,9 @@ class FitSummary:
         Bootstrap percentile intervals (see ``onnxcal.resample``).
     options : FitOptions
     warnings, notes : tuple of str
+    choice : Choice or None
+        With ``--method auto``: every method's held-out figures and why
+        this one was chosen (:mod:`onnxcal.choose`).
     """
 
     result: FitResult
@@ -711,6 +733,7 @@ class FitSummary:
     options: FitOptions = FitOptions()
     warnings: tuple[str, ...] = ()
     notes: tuple[str, ...] = ()
+    choice: Choice | None = None
 
     @property
     def scaling(self) -> Scaling:
@@ -745,6 +768,7 @@ class FitSummary:
             "warnings": list(self.warnings),
             "notes": list(self.notes),
             "capture": dict(self.capture),
+            "choice": None if self.choice is None else self.choice.to_dict(),
         }
 
 
@@ -801,6 +825,9 @@ def summarize(
     FitSummary
     """
     with one_blas_thread():
+        if options.method == AUTO:
+            kind = resolve_kind(logits, labels, options)
+            return fit_all(logits, labels, capture_meta, options, kind, _summarize, threads)[0]
         return _summarize(logits, labels, capture_meta, options, threads)
 
 
@@ -808,6 +835,9 @@ def _summarize(logits, labels, capture_meta, options, threads) -> FitSummary:
     kind = resolve_kind(logits, labels, options)
     n = len(logits)
     notes, warnings = [], data_warnings(labels, logits.shape[1])
+    if slow := slow_fit_warning(options.method, n, logits.shape[1]):
+        warn(slow, OnnxcalWarning, stacklevel=3)  # before the fit, which may take minutes
+        warnings.append(slow)
     if options.holdout > 0:
         fit_rows, eval_rows = resample.split_holdout(labels, options.holdout, options.seed)
     else:
@@ -911,6 +941,7 @@ def summary_from_dict(data: dict) -> FitSummary:
         options=FitOptions(**data["options"]),
         warnings=tuple(data.get("warnings", ())),
         notes=tuple(data.get("notes", ())),
+        choice=None if data.get("choice") is None else choice_from_dict(data["choice"]),
     )
 
 

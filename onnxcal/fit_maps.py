@@ -52,9 +52,17 @@ def fit_map(
     rows: np.ndarray | None = None,
     weights: np.ndarray | None = None,
     start: Scaling | None = None,
+    temperature: float | None = None,
 ) -> tuple[Scaling, float, bool, tuple[str, ...]]:
-    """Fit ``method`` to the logits: (scaling, passes, converged, warnings)."""
-    res = maps.module(method).fit(logits, labels, rows=rows, weights=weights, **map_keywords(method, l2, start))
+    """Fit ``method`` to the logits: (scaling, passes, converged, warnings).
+
+    ``temperature``: ensemble temperature scaling's T, fitted by the caller
+    (onnxcal.fit's temperature solver), which fixes it for the weights.
+    """
+    kw = map_keywords(method, l2, start)
+    if temperature is not None:
+        kw["temperature"] = temperature
+    res = maps.module(method).fit(logits, labels, rows=rows, weights=weights, **kw)
     notes = list(res.notes)
     if not res.converged and not notes:
         notes.append(f"the {method} solver stopped at its budget of passes before converging")

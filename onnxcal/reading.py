@@ -254,7 +254,16 @@ def _params(records: tuple[Record, ...]) -> str:
         return "T = 1"
     if methods <= {"temperature", "vector", "platt"}:
         return "the identity (T = 1, w = 1, b = 0)"
-    return "the identity (T = 1, w = 1, b = 0; W = I; beta a = b = 1, c = 0; ensemble weights (0, 1, 0))"
+    words = dict.fromkeys(_IDENTITY[m] for m in sorted(methods) if m in _IDENTITY)
+    return f"the identity ({'; '.join(words)})"
+
+
+# Each method's identity parameters, in words (graph.mapped.identity_parameters for the maps).
+_IDENTITY = {
+    "temperature": "T = 1", "vector": "w = 1, b = 0", "platt": "w = 1, b = 0", "matrix": "matrix W = I, b = 0",
+    "dirichlet": "Dirichlet W = I, b = 0", "beta": "beta a = b = 1, c = 0",
+    "ensemble-temperature": "ensemble weights (0, 1, 0)", "ovr-platt": "one-vs-rest Platt a = 1, b = 0",
+}
 
 
 def identity(

@@ -34,7 +34,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__, _signals
+from . import __version__, _signals, maps
 from .capture import Capture
 from .fit import FitSummary, data_warnings
 from .metrics import DEFAULT_BINS, METRIC_FIELDS, METRIC_LABELS, Metrics, evaluate, reliability
@@ -115,6 +115,8 @@ class Evaluation:
 
 def describe_scaling(scaling: Scaling, intervals: dict | None = None) -> str:
     """One line naming the method and its parameters, with the T interval if any."""
+    if not scaling.is_affine:
+        return maps.describe(scaling.method, scaling.parameters)
     iv = (intervals or {}).get("parameters", {})
     if scaling.temperature is not None:
         t = iv.get("temperature")

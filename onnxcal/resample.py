@@ -167,6 +167,10 @@ def _draws(rng: np.random.Generator, replicates: int, n_fit: int, n_eval: int | 
         yield Draw(fit, n_fit, held, n_fit if n_eval is None else n_eval)
 
 
+# A lookup's tables change size from one replicate to the next: no interval per entry.
+_LOOKUPS = ("isotonic", "histogram")
+
+
 def _percentile(values: np.ndarray) -> list:
     """[low, high] per column of (replicates, ...) values; None where any is NaN."""
     q = np.percentile(values, [100 * (1 - LEVEL) / 2, 100 * (1 + LEVEL) / 2], axis=0)
@@ -226,8 +230,7 @@ def bootstrap(
     else:
         params, metrics = run.exact(draws)
         fallbacks = 0
-    # A lookup's tables change size from one replicate to the next: no interval per entry.
-    names = [] if start.method in ("isotonic", "histogram") else list(start.parameters)
+    names = [] if start.method in _LOOKUPS else list(start.parameters)
     out = {
         "level": LEVEL,
         "kind": "percentile",
@@ -278,7 +281,7 @@ class Replicates:
         params, metrics = [], []
         for draw in draws:
             res = self._refit(draw.fit_counts)
-            params.append(res.scaling.arrays())
+            params.append({} if res.scaling.method in _LOOKUPS else res.scaling.arrays())
             metrics.append(self._score(res.scaling, draw.held_counts))
         return params, metrics
 

@@ -112,33 +112,37 @@ def render_fit(summary: FitSummary) -> None:
             row += [f"{getattr(summary.fit_part[k], key):.4f}" for k in ("before", "after")]
         table.add_row(*row)
     out.print(table)
-    choice = getattr(summary, "choice", None)  # FitSummary.choice comes with the fit package's --method auto
-    if choice is not None:
-        render_choice(choice)
+    if summary.choice is not None:
+        render_choice(summary.choice)
     for note in summary.notes:
         out.print(f"note: {note}", soft_wrap=True)
     warn(summary.warnings)
 
 
+def _short(x: float) -> str:
+    text = f"{x:.3f}"
+    return text[1:] if text.startswith("0.") else text
+
+
 def _with_interval(value: float, pair: list[float] | None) -> str:
-    return f"{value:.4f}" if pair is None else f"{value:.4f} [{pair[0]:.4f}, {pair[1]:.4f}]"
+    return f"{value:.4f}" if pair is None else f"{value:.4f}\n{_short(pair[0])}-{_short(pair[1])}"
 
 
 def render_choice(choice: Choice) -> None:
-    """The comparison table of ``--method auto`` and the choice, with its reason."""
+    """The comparison table of ``--method auto`` (each figure over its 95% interval) and the choice."""
     where = "held-out" if choice.basis == "held-out" else "in-sample"
-    table = Table(title=f"--method auto: every applicable method, {where} figures [95% bootstrap interval]",
-                  title_justify="left", box=box.SIMPLE_HEAD)
-    for col in ("method", "parameters", *(_CHOICE_LABELS[f] for f in TABLE_FIELDS), ""):
-        table.add_column(col, justify="left" if col in ("method", "") else "right", no_wrap=col != "")
+    table = Table(title=f"--method auto: every applicable method, {where} figures (below: 95% bootstrap interval)",
+                  title_justify="left", box=box.SIMPLE_HEAD, padding=(0, 1))
+    table.add_column("method", no_wrap=True)
+    table.add_column("params", justify="right", no_wrap=True)
+    for f in TABLE_FIELDS:
+        table.add_column(_CHOICE_LABELS[f], justify="right", no_wrap=True, min_width=9)
     for c in choice.candidates:
-        mark = "chosen" if c.method == choice.chosen else ""
-        if c.method == choice.best:
-            mark = f"{mark}, lowest NLL" if mark else "lowest NLL"
-        if not c.converged:
-            mark = f"{mark}, did not converge" if mark else "did not converge"
-        cells = [_with_interval(c.metrics[f], c.intervals.get(f)) for f in TABLE_FIELDS]
-        table.add_row(c.method, str(c.n_parameters), *cells, mark)
+        marks = ["chosen"] if c.method == choice.chosen else []
+        marks += ["lowest NLL"] if c.method == choice.best else []
+        marks += ["not converged"] if not c.converged else []
+        name = c.method + (f"\n({', '.join(marks)})" if marks else "")
+        table.add_row(name, str(c.n_parameters), *(_with_interval(c.metrics[f], c.intervals.get(f)) for f in TABLE_FIELDS))
     out.print(table)
     out.print(f"chosen: {choice.chosen}: {choice.reason}", soft_wrap=True)
 
