@@ -48,6 +48,7 @@ from .passes import fit_and_score
 from .auto import fit_all
 from .choose import Choice, choice_from_dict
 from .fit_maps import fit_map, slow_fit_warning
+from .maps import LOOKUP_METHODS
 from .scaling import MAP_METHODS, METHODS_FOR, MULTILABEL_MODES, Scaling, check_scaling, is_far_from_one, kind_of
 from .sweep import one_blas_thread
 from .tempfit import fit_beta
@@ -835,6 +836,11 @@ def _summarize(logits, labels, capture_meta, options, threads) -> FitSummary:
     kind = resolve_kind(logits, labels, options)
     n = len(logits)
     notes, warnings = [], data_warnings(labels, logits.shape[1])
+    if options.method in LOOKUP_METHODS:
+        notes.append(
+            f"{options.method} calibration can change the ranking of the classes and the argmax (ties, flat steps): "
+            "verify checks its decisions against its reference, not against the original model"
+        )
     if slow := slow_fit_warning(options.method, n, logits.shape[1]):
         warn(slow, OnnxcalWarning, stacklevel=3)  # before the fit, which may take minutes
         warnings.append(slow)
