@@ -86,6 +86,7 @@ class OnnxClassifier(ClassifierMixin, BaseEstimator):
 
 
 def metrics(p: np.ndarray, y: np.ndarray) -> dict[str, float]:
+    p = p / p.sum(axis=1, keepdims=True)  # float32 outputs sum to 1 within rounding; log_loss warns otherwise
     k = p.shape[1]
     onehot = np.eye(k)[y]
     return {
@@ -136,7 +137,8 @@ def one_split(entry: dict, seed: int, bootstrap: int) -> tuple[dict[str, dict[st
     x_cal, x_test, y_cal, y_test = train_test_split(x, y, test_size=0.5, stratify=y, random_state=seed)
     # Every fixture's output holds K >= 2 probabilities, captured as K log-probabilities: multiclass maps.
     methods = candidate_methods("multiclass")
-    rows: dict[str, dict[str, float]] = {"uncalibrated": metrics(_run(FIXTURES / entry["model"], entry["output"], x_test), y_test)}
+    base = _run(FIXTURES / entry["model"], entry["output"], x_test)
+    rows: dict[str, dict[str, float]] = {"uncalibrated": metrics(base, y_test)}
     with tempfile.TemporaryDirectory() as tmp:
         ours = onnxcal_route(entry, x_cal, y_cal, x_test, methods, bootstrap, Path(tmp))
     for m, (p, _) in ours.items():
