@@ -24,15 +24,14 @@ import numpy as np
 
 from .choose import Choice, candidate, candidate_methods, choose
 
-
 # summarize_one(logits, labels, capture_meta, options, threads) -> FitSummary
-SummarizeOne = Callable[[np.ndarray, np.ndarray, dict, Any, Any], Any]
+SummarizeOne = Callable[[np.ndarray, np.ndarray, dict[str, Any], Any, Any], Any]
 
 
 def fit_all(
     logits: np.ndarray,
     labels: np.ndarray,
-    capture_meta: dict,
+    capture_meta: dict[str, Any],
     options: Any,
     kind: str,
     summarize_one: SummarizeOne,

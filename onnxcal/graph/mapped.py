@@ -12,6 +12,8 @@ model give the original's outputs (``verify``'s identity check).
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 import onnx
 from onnx import numpy_helper
@@ -44,7 +46,7 @@ def map_values(scaling: Scaling, dtype: str, num_classes: int) -> dict[str, np.n
     return {t.name: numpy_helper.to_array(t).astype(np.float64) for t in sub.initializers if is_parameter(t)}
 
 
-def identity_parameters(scaling: Scaling, num_classes: int) -> dict | None:
+def identity_parameters(scaling: Scaling, num_classes: int) -> dict[str, Any] | None:
     """Parameters of the same map under which it gives back the model's own probabilities, or None.
 
     Matrix and Dirichlet: W = I, b = 0 (softmax(log softmax z) = softmax z);
@@ -103,7 +105,7 @@ def _site_of(model: onnx.ModelProto, record: Record) -> tuple[str, int]:
     return record.compute_dtype or site.dtype, width
 
 
-def recorded_values(model: onnx.ModelProto, record: Record) -> dict:
+def recorded_values(model: onnx.ModelProto, record: Record) -> dict[str, Any]:
     """What the record says the graph's parameter initializers hold, by role.
 
     The record's parameters for the affine maps; for a map of
