@@ -37,7 +37,7 @@ from math import factorial
 
 import numpy as np
 
-from .binning import ece_from_bins, lerp_quantiles, mce_from_bins
+from .metrics.binning import ece_from_bins, lerp_quantiles, mce_from_bins
 from .sweep import Selection, run_pass
 from .tempfit import ORDER, taylor_root
 

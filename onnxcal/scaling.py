@@ -52,7 +52,7 @@ AFFINE_METHODS = ("temperature", "vector", "platt")
 # The maps of onnxcal.maps, in the order `--method auto` lists them.
 MAP_METHODS = ("matrix", "dirichlet", "beta", "isotonic", "histogram", "ensemble-temperature", "ovr-platt")
 METHODS = AFFINE_METHODS + MAP_METHODS
-# The methods with a penalty --l2 sets (see onnxcal.fit_maps for the maps').
+# The methods with a penalty --l2 sets (see onnxcal.fit.maps for the maps').
 PENALISED_METHODS = ("vector", "platt", "matrix", "dirichlet", "beta", "ovr-platt")
 MULTILABEL_MODES = ("shared", "per-label")
 # Which methods apply to which kind of classifier.

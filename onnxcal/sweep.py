@@ -5,8 +5,8 @@ the same way: row chunks, ``e = exp(beta z)``, the row sums of ``e`` and,
 when asked, of ``e x^j`` and ``e^2 x^j`` (x = beta z, shifted). This
 module does that once per pass, for the solver, the metrics and the
 bootstrap together, and hands the per-row results of each chunk to
-*consumers* (:class:`MomentSums` here, the metric sums in
-:mod:`onnxcal.metrics`).
+*consumers* (:class:`MomentSums` here, the metric sums
+:class:`onnxcal.metrics.score_sums.ScoreSums`).
 
 Precision. Float32 logits are exponentiated in float32 (the exponential
 is what a pass costs) and everything derived from the row sums is float64;
@@ -44,8 +44,6 @@ from math import comb
 from typing import Protocol
 
 import numpy as np
-
-from .binning import bin_ids
 
 CHUNK_ELEMENTS = 1 << 18
 """Logit values per chunk (1 MiB of float32): large enough that the few hundred numpy
@@ -449,101 +447,4 @@ class MomentSums:
             out.sums += other.sums
             out.weight += other.weight
             out.wrong += other.wrong
-        return out
-
-
-class RowScores:
-    """Per-row scores of one pass, written by every lane at its rows' positions (9 bytes a row)."""
-
-    def __init__(self, n: int) -> None:
-        self.conf = np.empty(n)  # probability of the top class
-        self.correct = np.empty(n, dtype=bool)  # the top class is the label
-
-
-class ScoreSums:
-    """Sums behind the metrics of softmax(beta z), per part (a pass consumer).
-
-    Chunk by chunk: the total weight, NLL and Brier sums per part, the
-    top-label reliability sums (counts, confidence, correct) over
-    ``n_bins`` equal-width bins, and the classwise sums (probability and
-    label indicator per (class, bin), flat index class * M + bin). Per row
-    it keeps the top-label confidence and correctness (in a shared
-    :class:`RowScores`: the adaptive ECE needs them all). The probability
-    side of the classwise sums needs every entry: a softmax row has fewer than M
-    probabilities above the first edge 1/M; only those are binned one by
-    one, found by one comparison of the exponentials with a threshold per
-    chunk. The first bin of each class gets the rest, by subtraction from
-    the class's column sum (a matrix-vector product).
-    """
-
-    def __init__(self, parts: int, k: int, n_bins: int, rows: RowScores) -> None:
-        self.parts, self.k, self.n_bins, self.rows = parts, k, n_bins, rows
-        self.weight, self.nll, self.brier = np.zeros(parts), np.zeros(parts), np.zeros(parts)
-        self.bins = np.zeros((parts, 3, n_bins))
-        self.p_sum = np.zeros(parts * k * n_bins)
-        self.y_sum = np.zeros(parts * k * n_bins)
-        self.column = np.zeros(parts * k)  # sum of p per (part, class)
-        self.upper = np.zeros(parts * k)  # of which above the first edge
-        self.first = float(np.linspace(0.0, 1.0, n_bins + 1)[1])
-
-    def add(self, chunk: Chunk, terms: ExpTerms) -> None:
-        c = len(chunk.y)
-        at = slice(chunk.start, chunk.start + c)
-        log_total, beta, P = terms.log_total, terms.beta, self.parts
-        w = np.ones(c) if chunk.w is None else chunk.w
-        part = np.zeros(c, np.intp) if chunk.part is None else chunk.part.astype(np.intp)
-        conf = np.exp(beta * terms.zmax - log_total, out=self.rows.conf[at])
-        correct = np.equal(terms.top, chunk.y, out=self.rows.correct[at])
-        ids = bin_ids(conf, self.n_bins) + self.n_bins * part
-        for j, v in enumerate((w, w * conf, w * correct)):
-            self.bins[:, j] += np.bincount(ids, v, P * self.n_bins).reshape(P, self.n_bins)
-        log_py = beta * terms.zy - log_total
-        # sum_k (p_k - y_k)^2 = sum_k p_k^2 - 2 p_y + 1, sum_k p_k^2 = exp(L(2 beta) - 2 L(beta))
-        brier = np.exp(terms.sq_log_total - 2.0 * log_total) - 2.0 * np.exp(log_py) + 1.0
-        self.weight += np.bincount(part, w, P)
-        self.nll -= np.bincount(part, w * log_py, P)
-        self.brier += np.bincount(part, w * brier, P)
-        p_y = terms.probabilities(np.arange(c), chunk.y)  # as the classwise bins see it
-        np.add.at(self.y_sum, bin_ids(p_y, self.n_bins) + self.n_bins * chunk.y + (self.k * self.n_bins) * part, w)
-        self._classwise(terms, w, part)
-
-    def _classwise(self, terms: ExpTerms, w: np.ndarray, part: np.ndarray) -> None:
-        e, total, k, M = terms.e, terms.total, self.k, self.n_bins
-        c = len(total)
-        inv = (w / total).astype(e.dtype)
-        for p in range(self.parts):
-            coef = inv if self.parts == 1 else np.where(part == p, inv, e.dtype.type(0))
-            col = coef @ e
-            if terms.eps:  # p = e (1 + eps x) / total
-                col += e.dtype.type(terms.eps) * (coef @ terms.ex)
-            self.column[p * k : (p + 1) * k] += col
-        lo = float(total.min()) * self.first * (1.0 - 1e-5)  # p > 1/M needs e > total / M, give or take eps x
-        cand = np.flatnonzero(e.ravel() > e.dtype.type(lo))
-        if len(cand) > 4 * c * M:  # rows of very different totals: a threshold per row
-            lim = (total * self.first * (1.0 - 1e-5)).astype(e.dtype)
-            cand = np.flatnonzero((e > lim[:, None]).ravel())
-        rows, cols = np.divmod(cand, k)
-        p = terms.probabilities(rows, cols)
-        keep = p > self.first
-        rows, cols, p = rows[keep], cols[keep], p[keep]
-        wp = p * w[rows]
-        where = cols + k * part[rows]
-        np.add.at(self.p_sum, bin_ids(p, M) + M * where, wp)
-        np.add.at(self.upper, where, wp)
-
-
-    def classwise(self, part: int) -> tuple[np.ndarray, np.ndarray]:
-        """The (class, bin) sums of probabilities and labels of one part."""
-        size = self.k * self.n_bins
-        p_sum = self.p_sum[part * size : (part + 1) * size].copy()
-        rest = self.column - self.upper
-        p_sum[:: self.n_bins] += rest[part * self.k : (part + 1) * self.k]
-        return p_sum, self.y_sum[part * size : (part + 1) * size]
-
-    @staticmethod
-    def merge(lanes: Sequence[ScoreSums]) -> ScoreSums:
-        out = lanes[0]
-        for o in lanes[1:]:
-            for name in ("weight", "nll", "brier", "bins", "p_sum", "y_sum", "column", "upper"):
-                getattr(out, name).__iadd__(getattr(o, name))
         return out

@@ -119,6 +119,42 @@ def files_in(directory: Path) -> dict[str, bytes]:
     return {str(p.relative_to(directory)): p.read_bytes() for p in directory.rglob("*") if p.is_file()}
 
 
+# -- shared by tests/capture/ -------------------------------------------------
+
+
+def capture_of(model, ds, **kw):
+    """``capture.capture`` with a made-up model path and hash."""
+    from onnxcal.capture import capture
+
+    return capture(model, ds, model_path="m.onnx", model_sha256="ab", **kw)
+
+
+def per_sample(model, x):
+    """onnxruntime on the model as exported, one sample per call (the reference)."""
+    import onnxruntime as ort
+
+    sess = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
+    name = sess.get_inputs()[0].name
+    return np.concatenate([sess.run(None, {name: x[i : i + 1]})[0] for i in range(len(x))])
+
+
+@pytest.fixture
+def npz_set(tmp_path, rng):
+    """A random 4-class MLP and a 120-row .npz set for it."""
+    model = random_mlp(rng)
+    x = rng.normal(size=(120, 6)).astype(np.float32)
+    np.savez(tmp_path / "val.npz", x=x, labels=rng.integers(0, 4, 120))
+    return model, tmp_path / "val.npz"
+
+
+def load_set(model, path, **selection):
+    """The .npz set at ``path`` for ``model``'s first input, with a row selection."""
+    from onnxcal import graph
+    from onnxcal.data import DataSpec, Selection, load_dataset
+
+    return load_dataset(DataSpec(path=path, selection=Selection(**selection)), [graph.tensor_spec(model.graph.input[0])])
+
+
 def onehot_int_model() -> onnx.ModelProto:
     """A model whose only output is int64 (ArgMax): nothing to calibrate."""
     graph = helper.make_graph(

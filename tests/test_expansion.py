@@ -3,7 +3,7 @@
 import numpy as np
 
 from onnxcal import expansion, resample
-from onnxcal.binning import _binned
+from onnxcal.metrics.binning import _binned
 from onnxcal.fit import FitOptions, fit_scaling, fit_temperature, summarize
 
 

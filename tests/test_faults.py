@@ -393,7 +393,7 @@ def test_signals_at_random_moments_leave_nothing_behind(work):
         assert _what_is_left(work, inputs) == {*CALIBRATE_OUTPUTS, "rep"}
         shutil.rmtree(work / "rep")
         (work / "cal.onnx").unlink()
-        if len(runs) == wanted or time.monotonic() - started > budget - took:
+        if len(runs) == wanted or (len(runs) >= 2 and time.monotonic() - started > budget - took):
             break
         name, delay = rng.choice(["SIGINT", "SIGTERM"]), rng.uniform(0.0, 1.1 * took)
         code, err, _ = _calibrate_run(work, name, delay)

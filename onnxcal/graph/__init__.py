@@ -29,7 +29,11 @@ unique deterministic names and notes every change so it can be undone:
 * ``_append_activation``: raw logits; add the scaling and a Softmax (per
   class axis, also below opset 13) or Sigmoid as a new output.
 * ``_rewrite_ml``: probabilities from an ai.onnx.ml classifier; replace
-  them by softmax(scale(log max(p, tiny))) and recompute its label output.
+  them by softmax(scale(z)), z its raw scores (``post_transform`` NONE) when
+  they reproduce p, else log max(p, tiny). Its label output is kept as the
+  converter wrote it: temperature scaling cannot change the argmax, and a
+  label that disagreed with the argmax before (an SVM with Platt
+  probabilities) must not change.
 * ``_fold``: fold the scaling (w * z + b per class) into a Gemm /
   MatMul(+Add)'s weight and bias instead of adding nodes.
 

@@ -22,7 +22,7 @@ from typing import Any
 
 import numpy as np
 
-from .choose import Choice, candidate, candidate_methods, choose
+from ..choose import Choice, candidate, candidate_methods, choose
 
 # summarize_one(logits, labels, capture_meta, options, threads) -> FitSummary
 SummarizeOne = Callable[[np.ndarray, np.ndarray, dict[str, Any], Any, Any], Any]

@@ -15,8 +15,8 @@ from typing import Any
 
 import numpy as np
 
-from . import maps
-from .scaling import Scaling
+from .. import maps
+from ..scaling import Scaling
 
 # The maps whose solver takes a previous fit as its starting point (bootstrap replicates).
 _WARM = ("matrix", "dirichlet", "beta", "ovr-platt")

@@ -1,0 +1,218 @@
+"""``calibrate``: capture, fit, patch and verify in one go, and write a report."""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import onnx
+
+from .. import graph
+from .. import reading as _reading
+from .._files import atomic_write_files, one_command
+from .._limits import DEFAULT_MAX_MODEL_BYTES, check_bins_memory
+from .._numeric import max_abs
+from ..capture import CPU, Capture, ProgressFn, RunOptions, finite_mask
+from ..data import Dataset, DataSpec
+from ..errors import OnnxcalError
+from ..fit import FitOptions, FitSummary
+from ..graph import Record
+from ..report import FORMATS, ReportResult
+from ..report import build as build_report
+from ..verify import VerifyResult
+from .capture_fit import check_fit_options, summarize_capture
+from .checks import compare_as_it_runs, record_checks
+from .common import (
+    DataSource,
+    check_columns,
+    check_model_outputs,
+    data_spec,
+    finite_capture,
+    load_data,
+    model_byte_limit,
+    model_files,
+    read_and_capture,
+    run_options,
+    warn_nonfinite_inputs,
+    with_note,
+)
+from .patching import PatchOptions, PatchResult
+from .reporting import capture_names, report_files, report_targets
+
+
+@dataclass(frozen=True)
+class CalibrateResult:
+    """Everything ``calibrate`` did: the fit, the patched model, its verification and report."""
+
+    summary: FitSummary
+    patch: PatchResult | None
+    verification: VerifyResult
+    report: ReportResult | None = None
+
+
+def _check_not_calibrated(model, model_path, output: str | None) -> None:
+    """``calibrate`` fits an output once: another output of a calibrated model may be calibrated."""
+    records = graph.read_records(model)
+    if not records:
+        return
+    done = next((r for r in records if output in (r.output, r.source_output)), None)
+    if output is None or done is not None:
+        what = done or records[-1]
+        raise OnnxcalError(
+            f"'{model_path}' is already calibrated by onnxcal ({what.method} scaling of output '{what.source_output}')",
+            f"calibrate the original model ({what.source_name}), change T with 'onnxcal patch', or calibrate "
+            "another output with --output",
+        )
+
+
+@dataclass(frozen=True)
+class _Source:
+    """The model being calibrated, its data and how to run it."""
+
+    model: onnx.ModelProto
+    path: str | os.PathLike
+    sha: str
+    dataset: Dataset
+    run: RunOptions
+    progress: ProgressFn | None
+
+
+@dataclass(frozen=True)
+class _Captured:
+    """The capture of every row (``full``), the mask of rows with finite logits, and those rows alone (``cap``)."""
+
+    full: Capture
+    keep: np.ndarray
+    cap: Capture
+    dropped: str | None  # the note on the rows left out, if any
+
+
+def _check_outputs(out, report, model_path, spec: DataSpec, force: bool, limit: int) -> bool:
+    """Check the model's output (and its data file) and the report's files before any work; True if external."""
+    external = check_model_outputs(out, [model_path, *spec.files()], model_path, force, limit)
+    if report is not None:
+        outputs = [out, *([graph.external_data_path(out)] if external else [])]
+        inputs = [*model_files(model_path, limit), *spec.files(), *outputs]
+        report_targets(report, FORMATS, inputs, force, "--report")
+    return external
+
+
+def _capture_finite(source: _Source, patching: PatchOptions, drop: bool) -> _Captured:
+    """Capture the model's logits; the rows holding NaN or Inf are refused or (``drop``) left out."""
+    cap = read_and_capture(
+        source.model, source.dataset, source.path, source.sha, patching.output, patching.output_holds,
+        patching.activation, source.run, source.progress, columns=patching.score_columns,
+    )
+    keep = finite_mask(cap)
+    kept, dropped = finite_capture(cap, source.dataset.source, drop)
+    return _Captured(cap, keep, kept, dropped)
+
+
+def _fit_captured(seen: _Captured, options: FitOptions) -> FitSummary:
+    """The fit of the kept rows, with the capture's notes and the note on dropped rows."""
+    check_bins_memory(options.n_bins, seen.cap.logits.shape[1])
+    summary = summarize_capture(seen.cap, options)
+    for note in (*seen.cap.notes, seen.dropped):
+        summary = with_note(summary, note)
+    return summary
+
+
+def _patch_and_check(
+    source: _Source, patching: PatchOptions, seen: _Captured, summary: FitSummary
+) -> tuple[onnx.ModelProto, Record, VerifyResult]:
+    """The patched model (in memory), its record, and its checks against the captured logits and the original."""
+    cap = seen.cap
+    patched = patching.patch(source.model, summary.scaling, sha=source.sha, path=source.path, fit=summary.to_dict(),
+                             reading=_reading.patch_reading(cap.meta.to_dict()), largest_logit=max_abs(cap.logits))
+    record = graph.read_record(patched, cap.meta.output)
+    run, progress = source.run, source.progress
+    checks = compare_as_it_runs(patched, record, source.dataset, run, progress, seen.full.logits, seen.keep)
+    # other heads: the original's sha256
+    source_sha = source.sha if len(graph.read_records(patched)) == 1 else record.source_sha256
+    checks += record_checks(record, patched, source.model, source_sha)
+    checks.append(_reading.identity(source.model, patched, (record,), source.dataset, run, progress))
+    return patched, record, VerifyResult(checks=tuple(checks), n=source.dataset.n, original=str(source.path))
+
+
+def _report_files(
+    directory, out, external: bool, patched: onnx.ModelProto, cap: Capture, summary: FitSummary, result: VerifyResult
+) -> tuple[dict[Path, bytes], ReportResult]:
+    """The report's files, rendered in memory, with the verification (and the written model, when it passed)."""
+    calibrated = None if not result.passed else {
+        "name": Path(out).name, "path": str(out), "sha256": graph.saved_sha256(patched, out, external=external)
+    }
+    content = build_report(
+        cap, summary.scaling, summary=summary, class_names=capture_names(cap), calibrated=calibrated,
+        verification=result,
+    )
+    return report_files(directory, content, FORMATS)
+
+
+@one_command
+def calibrate(
+    model_path: str | os.PathLike,
+    data: DataSource,
+    out: str | os.PathLike,
+    *,
+    output: str | None = None,
+    output_name: str = graph.DEFAULT_OUTPUT_NAME,
+    drop_logits: bool = False,
+    activation: str | None = None,
+    compute_dtype: str | None = None,
+    fold: bool = False,
+    batch_size: int | None = None,
+    threads: int = 0,
+    optimization: str = "all",
+    provider: str = CPU,
+    force: bool = False,
+    progress: ProgressFn | None = None,
+    options: FitOptions = FitOptions(),
+    report: str | os.PathLike | None = None,
+    drop_nonfinite: bool = False,
+    max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
+    output_holds: str | None = None,
+    score_columns: str | None = None,
+) -> CalibrateResult:
+    """Capture, fit, patch and verify in one go (and write a report).
+
+    The patched model is verified in memory against the captured logits
+    (and, with its parameters at the identity, against the original's own
+    outputs) before it is written; when a check fails nothing is written and
+    ``result.patch`` is None. A model already calibrated by onnxcal may
+    have another output calibrated (``output``); each has its own record. ``data`` and ``batch_size`` ... ``provider``: as
+    for :func:`capture`; ``output`` ... ``fold``: see :class:`PatchOptions`;
+    ``options`` are those of :func:`fit`. With ``report`` (a directory),
+    every file of :func:`report` is written there too, with the
+    verification, also when it failed. The model and the report are written
+    together, only once everything is computed. ``drop_nonfinite`` leaves out
+    samples whose logits hold NaN or Inf (a note says how many; by default
+    they are refused); ``max_model_bytes`` as for :func:`capture`.
+    """
+    check_fit_options(options)
+    check_columns(score_columns)
+    spec = data_spec(data)
+    limit = model_byte_limit(max_model_bytes)
+    external = _check_outputs(out, report, model_path, spec, force, limit)
+    run = run_options(batch_size, threads, optimization, provider)
+    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds,
+                            score_columns)
+    model = graph.load_model(model_path, max_bytes=limit)
+    _check_not_calibrated(model, model_path, output)
+    graph.default_opset(model)  # before the capture: can the patch import the operators it adds?
+    sha = graph.model_sha256(model_path)
+    dataset = load_data(model, spec, batch_size=run.batch_size)
+    source = _Source(model, model_path, sha, dataset, run, progress)
+    seen = _capture_finite(source, patching, drop_nonfinite)
+    warn_nonfinite_inputs(seen.full, dataset.source)
+    summary = _fit_captured(seen, options)
+    patched, record, result = _patch_and_check(source, patching, seen, summary)
+    written = PatchResult(path=str(out), record=record) if result.passed else None
+    files: dict[Path, bytes] = graph.model_files(patched, out, external=external) if written is not None else {}
+    written_report = None
+    if report is not None:
+        report_content, written_report = _report_files(report, out, external, patched, seen.cap, summary, result)
+        files.update(report_content)
+    atomic_write_files(files)
+    return CalibrateResult(summary=summary, patch=written, verification=result, report=written_report)

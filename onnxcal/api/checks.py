@@ -1,0 +1,153 @@
+"""The patched model's outputs against the reference, and its record against the graph: the checks
+``verify`` and ``calibrate`` share.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import onnx
+
+from .. import graph
+from .. import reading as _reading
+from ..capture import (
+    ProgressFn,
+    RunOptions,
+    output_rows,
+    plan_run,
+    run_batches,
+    run_model,
+)
+from ..data import Dataset
+from ..errors import OnnxcalError
+from ..graph import Record
+from ..verify import (
+    Check,
+    Comparison,
+    compare,
+    folded_record_check,
+    record_check,
+    skipped,
+    source_check,
+)
+
+
+def run_output(model, site, dataset: Dataset, run: RunOptions, progress) -> np.ndarray:
+    """The values of ``site``'s output for every sample, class axis last: (rows, k)."""
+    (values,) = run_model(
+        graph.expose(model, [site.tensor]),
+        dataset,
+        [site.tensor],
+        options=run,
+        progress=progress,
+        description="running patched model",
+    )
+    return output_rows(values, site)
+
+
+def reference_checks(
+    rows: np.ndarray, site, record: Record, logits: np.ndarray, patched, original_model, source_sha: str | None,
+    file_only_sha: str | None = None,
+) -> list[Check]:
+    """Checks (1)-(3): the outputs against the reference, the record against the graph and the source.
+
+    The reference is post(activation(scale(logits))) with the post-processing
+    the record noted when the model was patched; the tolerance follows every
+    dtype the values pass through in the patched graph (``site.dtypes``).
+    """
+    checks = list(compare(rows, logits, record.scaling, record.activation, site_dtypes(site),
+                                  graph.post.from_json(record.post)))
+    return checks + record_checks(record, patched, original_model, source_sha, file_only_sha)
+
+
+def site_dtypes(site) -> tuple[str, ...]:
+    """Every dtype the calibrated values pass through (the tolerance follows the coarsest)."""
+    return tuple(dict.fromkeys([site.dtype, site.output_dtype or site.dtype, *site.dtypes]))
+
+
+def record_checks(
+    record: Record, patched, original_model, source_sha: str | None, file_only_sha: str | None = None
+) -> list[Check]:
+    """Check (3): the record against the graph's parameters, and the original's sha256 against the record's."""
+    checks: list[Check] = []
+    if record.folded and original_model is None:
+        checks.append(
+            skipped(
+                "record", "the parameters are folded into the weights; reading them back needs the "
+                "original model (--original)"
+            )
+        )
+    elif record.folded:
+        found = graph.folded_values(patched, record, original_model)
+        checks.append(folded_record_check(record.scaling, found))
+    else:
+        in_graph = graph.parameter_values(patched, record)
+        expected = graph.recorded_values(patched, record)
+        checks.append(record_check(expected, in_graph, graph.temperature_dtype(patched, record)))
+    if source_sha is None:
+        checks.append(
+            skipped(
+                "source", f"no original model or scores to compare with the record's sha256 {record.source_sha256[:12]}..."
+            )
+        )
+    else:
+        checks.append(source_check(record.source_sha256, source_sha, file_only_sha))
+    return checks
+
+
+def compare_as_it_runs(
+    patched: onnx.ModelProto, record: Record, dataset: Dataset, run: RunOptions, progress: ProgressFn | None,
+    logits: np.ndarray, keep: np.ndarray,
+) -> list[Check]:
+    """Checks (1)-(2) of ``calibrate``: the patched model run batch by batch, each batch compared
+    with the captured logits of its rows (those in ``keep``) as it comes.
+
+    Nothing of the patched outputs is kept beyond a batch, so the command
+    holds the logits and little else (docs/benchmarks.md, calibrate's memory).
+    """
+    site = graph.find_recorded(patched, record)
+    plan = plan_run(graph.expose(patched, [site.tensor]), dataset, [site.tensor], run)
+    post = graph.post.from_json(record.post)
+    comparison = Comparison(record.scaling, record.activation, site_dtypes(site), post)
+    done = 0
+    batches = run_batches(plan, dataset, progress=progress, description="running patched model")
+    for _, _, (values,) in batches:
+        rows = output_rows(values, site)
+        span = slice(done, done + len(rows))
+        done += len(rows)
+        if done > len(logits):
+            break
+        mask = keep[span]
+        if mask.all():
+            comparison.add(rows, logits[span])
+        else:
+            comparison.add(rows[mask], logits[span][mask])
+    if done != len(logits):
+        raise OnnxcalError(
+            f"the patched model gives {done} rows of scores but the original gave {len(logits)} on '{dataset.source}'",
+            "report this with the model's inspect output",
+        )
+    return list(comparison.checks())
+
+
+def source_site(base, record: Record):
+    """The class-score site of the uncalibrated model the record was made from, read as then."""
+    kw = _reading.patch_reading({"spelling": record.spelling, "holds": record.holds, "logits_from": record.logits_from,
+                                 "score_columns": record.score_columns})
+    if record.rewrite == "ml-log-probabilities":  # format 2: ai.onnx.ml probabilities were read through log p
+        kw["logits_from"] = "log"
+    # records written before source_output existed name the output or the scores
+    output = record.source_output or (record.output if record.rewrite == "insert-before-activation" else record.scores)
+    site = graph.find_scores(base, output, logits_from=kw.get("logits_from"), score_columns=kw.get("score_columns"))
+    if "holds" in kw:
+        site = graph.read_as(site, kw["holds"], record.scaling.activation, source=kw["holds_from"])
+    return site
+
+
+def recover_unpatched(patched, patched_path):
+    try:
+        return graph.unpatch(patched)
+    except OnnxcalError as exc:
+        raise OnnxcalError(
+            f"cannot recover the uncalibrated graph from '{patched_path}': {exc.message}",
+            "pass --original MODEL or --scores CAPTURE",
+        ) from exc

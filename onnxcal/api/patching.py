@@ -1,0 +1,230 @@
+"""``patch``: write a copy of the model that outputs calibrated probabilities."""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .. import graph
+from .. import reading as _reading
+from .._files import one_command
+from .._limits import DEFAULT_MAX_MODEL_BYTES
+from .._numeric import check_in_dtype
+from ..errors import OnnxcalError
+from ..fit import FitSummary, load_fit
+from ..graph import Record
+from ..scaling import Scaling
+from .common import (
+    check_columns,
+    check_model_outputs,
+    file_only_sha256,
+    model_byte_limit,
+)
+
+
+@dataclass(frozen=True)
+class PatchResult:
+    """A written patched model and its calibration record."""
+
+    path: str
+    record: Record
+
+
+@dataclass(frozen=True)
+class PatchOptions:
+    """How to rewrite the graph (the patch options shared by patch and calibrate).
+
+    Attributes
+    ----------
+    output : str, optional
+        The class-score output (the likeliest float output by default).
+    output_name : str, default "probabilities"
+        Name of the added output when the model ends in raw logits.
+    drop_logits : bool
+        Remove the logits output in that case.
+    activation : {"softmax", "sigmoid"}, optional
+        What follows raw logits (default: sigmoid for one logit, else softmax).
+    compute_dtype : {"float32", "float64"}, optional
+        Run the Div and activation in this dtype (e.g. for float16 models).
+    fold : bool
+        Fold the scaling into the weight and bias of the final Gemm /
+        MatMul(+Add) instead of adding nodes (every method).
+    output_holds : {"logits", "probabilities", "log-probabilities"}, optional
+        What the output holds, when the graph cannot tell.
+    score_columns : str, optional
+        ``"START:STOP"``: calibrate only these positions of an output that
+        concatenates class scores with other values.
+    """
+
+    output: str | None = None
+    output_name: str = graph.DEFAULT_OUTPUT_NAME
+    drop_logits: bool = False
+    activation: str | None = None
+    compute_dtype: str | None = None
+    fold: bool = False
+    output_holds: str | None = None
+    score_columns: str | None = None
+
+    def patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict, reading: dict | None = None,
+              fitted_on: str = "", largest_logit=None):
+        """``graph.patch`` with these options, its parameters checked against the dtype the graph
+        computes them in (and, given ``largest_logit``, against the logits seen; see ``_numeric``).
+        ``reading`` says how a capture read the model."""
+        with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):  # checked below
+            patched = self._patch(model, calibration, sha=sha, path=path, fit=fit, reading=reading, fitted_on=fitted_on)
+        for record in graph.read_records(patched):
+            dtype = record.compute_dtype or graph.temperature_dtype(patched, record) or "float32"
+            check_in_dtype(record.scaling, dtype, largest_logit=largest_logit)
+        return patched
+
+    def _patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict, reading: dict | None,
+               fitted_on: str):
+        if reading is None:
+            reading = {} if self.output_holds is None else {"holds": self.output_holds, "holds_from": "stated"}
+        if self.score_columns is not None:
+            reading = {**reading, "score_columns": self.score_columns}
+        return graph.patch(
+            model,
+            calibration,
+            source_sha256=sha,
+            source_name=Path(path).name,
+            output=self.output,
+            new_output=self.output_name,
+            drop_logits=self.drop_logits,
+            fit=_portable(fit),
+            activation=self.activation,
+            compute_dtype=self.compute_dtype,
+            fold=self.fold,
+            fitted_on_sha256=fitted_on,
+            **reading,
+        )
+
+
+def _portable(fit: dict) -> dict:
+    """A fit summary without the user's directories: file names only (the record goes inside the model)."""
+    capture = fit.get("capture")
+    if not isinstance(capture, dict):
+        return fit
+    capture = dict(capture)
+    for key in ("model_path", "data_source"):
+        if isinstance(capture.get(key), str):
+            capture[key] = " + ".join(_name(part) for part in capture[key].split(" + "))
+    if isinstance(capture.get("merged_from"), (list, tuple)):
+        capture["merged_from"] = [_name(p) for p in capture["merged_from"]]
+    return {**fit, "capture": capture}
+
+
+def _name(text: str) -> str:
+    """The last component of a path written POSIX or Windows style."""
+    return text.replace("\\", "/").rstrip("/").rsplit("/", 1)[-1] or text
+
+
+def _resolve_scaling(
+    temperature: float | None, fit_source: FitSummary | str | os.PathLike | None
+) -> tuple[float | Scaling, dict]:
+    if (temperature is None) == (fit_source is None):
+        raise OnnxcalError("give exactly one of --temperature and --fit")
+    if temperature is not None:
+        return graph.check_temperature(temperature), {"method": "temperature", "given": True}
+    summary = fit_source if isinstance(fit_source, FitSummary) else load_fit(fit_source)
+    return summary.scaling, summary.to_dict()
+
+
+@one_command
+def patch(
+    model_path: str | os.PathLike,
+    out: str | os.PathLike,
+    *,
+    temperature: float | None = None,
+    fit: FitSummary | str | os.PathLike | None = None,
+    output: str | None = None,
+    output_name: str = graph.DEFAULT_OUTPUT_NAME,
+    drop_logits: bool = False,
+    activation: str | None = None,
+    compute_dtype: str | None = None,
+    fold: bool = False,
+    force: bool = False,
+    max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
+    output_holds: str | None = None,
+    fitted_on_twin: bool = False,
+    score_columns: str | None = None,
+) -> PatchResult:
+    """Write a copy of the model that outputs calibrated probabilities.
+
+    Parameters
+    ----------
+    model_path : path
+        The ONNX model; never modified. A model already patched by onnxcal
+        has the patch of the same output undone first (so patches never
+        stack); the calibration of other outputs is kept.
+    out : path
+        The patched model; must differ from ``model_path``. A model with
+        external data is written with its weights in ``out``.data, streamed
+        from the model's files (never loaded; only ``fold`` reads the one
+        weight it scales).
+    temperature : float, optional
+        T; or give ``fit``.
+    fit : FitSummary or path, optional
+        A fit (or FIT.json) whose parameters are baked in and recorded.
+    output, output_name, drop_logits, activation, compute_dtype, fold, output_holds, score_columns
+        See :class:`PatchOptions`. With ``fit``, the output and how it was
+        read (e.g. probabilities read through log p, the score columns)
+        are the capture's, unless given.
+    force : bool
+        Replace an existing ``out``.
+    max_model_bytes : int or str, default 8 GiB
+        Larger model files are refused unread (the external data do not count: patch never loads them).
+    fitted_on_twin : bool
+        The fit was made on another build of this model (its float16 or
+        quantized twin): a fit whose capture's model sha256 differs from
+        this model's (and from its recorded original's) is refused without
+        it. The record then holds both hashes.
+    """
+    limit = model_byte_limit(max_model_bytes)
+    check_columns(score_columns)
+    inputs = [model_path] + ([fit] if isinstance(fit, (str, os.PathLike)) else [])
+    external = check_model_outputs(out, inputs, model_path, force, limit)
+    calibration, fit_dict = _resolve_scaling(temperature, fit)
+    if fitted_on_twin and fit is None:
+        raise OnnxcalError("--fitted-on-twin applies to --fit (a fit made on another build of the model)")
+    model = graph.load_model(model_path, max_bytes=limit, count_external=False)
+    sha = graph.model_sha256(model_path)
+    records = graph.read_records(model)
+    for previous in records:  # re-patching undoes a head: its record must fit the graph
+        graph.check_record(model, previous, f"'{model_path}'")
+    fitted_on = _provenance(fit_dict, fit, model_path, sha, records, fitted_on_twin)
+    meta = fit_dict.get("capture") if isinstance(fit_dict.get("capture"), dict) else {}
+    if output is None and meta.get("output") in {o.name for o in model.graph.output} and not records:
+        output = meta["output"]
+    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds,
+                            score_columns)
+    reading = _reading.patch_reading(meta) if output_holds is None and meta else None
+    patched = patching.patch(model, calibration, sha=sha, path=model_path, fit=fit_dict, reading=reading,
+                             fitted_on=fitted_on)
+    graph.save_model(patched, out, external=external)
+    return PatchResult(path=str(out), record=graph.read_record(patched, output))
+
+
+def _provenance(fit_dict: dict, fit, model_path, sha: str, records, twin: bool) -> str:
+    """The sha256 of the twin the fit was made on ("" for this model); a fit of another model is refused.
+
+    The fit's capture names the model it ran (sha256). It may be this file,
+    or, for a model already patched, the original the records name.
+    """
+    meta = fit_dict.get("capture") if isinstance(fit_dict.get("capture"), dict) else {}
+    fitted = meta.get("model_sha256") if isinstance(meta.get("model_sha256"), str) else None
+    mine = {sha, file_only_sha256(model_path), *(r.source_sha256 for r in records)}
+    if fit is None or not fitted or fitted in mine:
+        return ""
+    if not twin:
+        where = f"'{fit}'" if isinstance(fit, (str, os.PathLike)) else "the fit"
+        raise OnnxcalError(
+            f"{where} was fitted on the model with sha256 {fitted[:12]}..., not on '{model_path}' "
+            f"(sha256 {sha[:12]}...)",
+            "patch the model the fit was made on, or add --fitted-on-twin if this model is a build of it "
+            "(its float16 or quantized twin)",
+        )
+    return fitted

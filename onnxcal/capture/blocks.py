@@ -1,0 +1,160 @@
+"""Running over the whole set in blocks of batches, with the automatic batch size."""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable, Iterator, Mapping, Sequence
+
+import numpy as np
+import onnx
+
+from ..data import Dataset
+from ..errors import OnnxcalError, first_line
+from .nonfinite import InputWatch
+from .plan import RunPlan, padded, plan_run
+from .session import RunOptions, resolve_options
+
+ProgressFn = Callable[[str, int, int], None]
+"""Called as ``progress(description, samples_done, samples_total)`` after each batch."""
+
+RELEASE_BYTES = 16 << 20
+"""Memory-mapped input pages are handed back to the kernel every this many bytes."""
+BLOCK_BYTES = 1 << 20
+"""Inputs are read, cast and checked, and outputs handed on, this many bytes of inputs at a time."""
+OVERHEAD = 0.05
+"""An automatic batch size doubles while onnxcal's own time per call exceeds this share of the call."""
+AUTO_BATCH_BYTES = 8 << 20
+"""An automatic batch size stops growing before one batch of inputs exceeds this."""
+AUTO_BATCH_ROWS = 1 << 14
+"""... or this many samples."""
+
+
+def _run_block(
+    plan: RunPlan, dataset: Dataset, feed: Mapping[str, np.ndarray], start: int, step: int, timed: bool
+) -> tuple[list[np.ndarray], float]:
+    """Run a block's inputs ``step`` samples per call: the outputs concatenated, and
+    (when ``timed``) the seconds spent in the runtime."""
+    count = len(next(iter(feed.values())))
+    names, items, run = list(plan.names), list(feed.items()), plan.session.run
+    got: list[list[np.ndarray]] = []
+    spent, s = 0.0, 0
+    try:
+        for s in range(0, count, step):
+            batch = {k: v[s : s + step] for k, v in items}
+            if plan.pad is not None and count - s < plan.pad:  # pad a short batch of a fixed-batch model
+                batch = padded(batch, plan.pad)
+            if timed:
+                t0 = time.perf_counter()
+                got.append(run(names, batch))
+                spent += time.perf_counter() - t0
+            else:
+                got.append(run(names, batch))
+    except Exception as exc:  # onnxruntime raises its own exception types
+        rows = dataset.row_numbers()
+        raise OnnxcalError(
+            f"onnxruntime failed on rows {int(rows[start + s])}..{int(rows[start + min(s + step, count) - 1])} of "
+            f"'{dataset.source}': {first_line(exc)}",
+            "check that the data matches the model's inputs",
+        ) from exc
+    outs = []
+    for i in range(len(names)):
+        parts = [np.asarray(g[i]) for g in got]
+        if plan.pad is not None:
+            parts[-1] = parts[-1][: count - (len(got) - 1) * step]
+        outs.append(parts[0] if len(parts) == 1 else np.concatenate(parts))
+    return outs, spent
+
+
+def _grown(step: int, wall: float, spent: float, row_bytes: float) -> int | None:
+    """The next automatic batch size, or None to keep ``step`` from now on.
+
+    ``wall`` is a block's whole time (reading, checking, running, handing
+    on), ``spent`` its time in the runtime: their difference is onnxcal's
+    own work, which must stay below OVERHEAD of the runtime's.
+    """
+    if wall - spent <= OVERHEAD * spent:
+        return None
+    bigger = 2 * step
+    if bigger > AUTO_BATCH_ROWS or bigger * row_bytes > AUTO_BATCH_BYTES:
+        return None
+    return bigger
+
+
+def run_batches(
+    plan: RunPlan,
+    dataset: Dataset,
+    *,
+    progress: ProgressFn | None = None,
+    description: str = "running model",
+    watch: InputWatch | None = None,
+) -> Iterator[tuple[int, int, list[np.ndarray]]]:
+    """Yield ``(start, stop, outputs)`` block by block over the selected rows.
+
+    A block is as many whole batches as make about :data:`BLOCK_BYTES` of
+    inputs (at least one batch): its inputs are read and cast in one copy
+    and handed to ``watch`` (which counts rows holding NaN or Inf; flushed
+    after the last block), the model runs on views of them one batch per
+    call, and the block's outputs come back concatenated. So onnxcal's own
+    work per call is a slice and a few Python operations, whatever the
+    batch size; the rest is per block.
+
+    With ``plan.grow`` the batch size is automatic: after each block,
+    while onnxcal's own time (the block's time outside the runtime, the
+    consumer's included) exceeds :data:`OVERHEAD` of the runtime's, the
+    batch size doubles (up to :data:`AUTO_BATCH_ROWS` samples or
+    :data:`AUTO_BATCH_BYTES` of inputs); the first time it does not, it
+    stays. A model whose calls take more than a few microseconds settles
+    at :data:`DEFAULT_BATCH` after the first block.
+
+    After each block has been consumed ``progress`` is called; the input
+    pages of consumed rows are released (:meth:`Dataset.release`) whenever
+    they add up to :data:`RELEASE_BYTES`, so the resident size stays bounded
+    without paying a page-table flush on every small block.
+    """
+    n = dataset.n
+    mapped = dataset.mapped_row_bytes
+    released, start, step, block, grow = 0, 0, plan.step, plan.step, plan.grow
+    while start < n:
+        t0 = time.perf_counter()
+        stop = min(start + block, n)
+        feed = dataset.batch(start, stop, plan.dtypes)
+        if watch is not None:
+            watch.add(feed, start, stop)
+        outs, spent = _run_block(plan, dataset, feed, start, step, grow)
+        yield start, stop, outs
+        if mapped and ((stop - released) * mapped >= RELEASE_BYTES or stop == n):
+            dataset.release(released, stop)
+            released = stop
+        if progress is not None:
+            progress(description, stop, n)
+        row_bytes = sum(v.nbytes for v in feed.values()) / (stop - start)
+        if grow and start > 0:  # the first block (one batch) pays the runtime's warm-up
+            bigger = _grown(step, time.perf_counter() - t0, spent, row_bytes)
+            step, grow = (bigger, True) if bigger else (step, False)
+        block = max(step, int(BLOCK_BYTES // max(row_bytes, 1.0)) // step * step)
+        start = stop
+    if watch is not None:
+        watch.flush()
+
+
+def run_model(
+    model: onnx.ModelProto,
+    dataset: Dataset,
+    names: Sequence[str],
+    *,
+    batch_size: int | None = None,
+    options: RunOptions | None = None,
+    progress: ProgressFn | None = None,
+    description: str = "running model",
+) -> list[np.ndarray]:
+    """Run ``model`` over ``dataset`` in batches; return the tensors ``names``.
+
+    Each returned array has the samples along axis 0. Inputs are cast to the
+    model's dtypes batch by batch, so memory-mapped inputs are read lazily.
+    """
+    plan = plan_run(model, dataset, names, resolve_options(options, batch_size))
+    parts: list[list[np.ndarray]] = [[] for _ in names]
+    for _, _, outs in run_batches(plan, dataset, progress=progress, description=description):
+        for part, out in zip(parts, outs, strict=True):
+            part.append(out)
+    return [np.concatenate(p) for p in parts]

@@ -1,0 +1,147 @@
+"""The sums behind the metrics of softmax(beta z), gathered in one :mod:`onnxcal.sweep` pass.
+
+:class:`ScoreSums` is a consumer of the pass: chunk by chunk it adds the
+NLL, Brier, reliability and classwise sums of each part of the rows;
+:class:`RowScores` keeps every row's top-label confidence and correctness
+(the adaptive ECE needs them all). :func:`onnxcal.metrics.score_metrics`
+turns them into :class:`~onnxcal.metrics.Metrics`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+
+import numpy as np
+
+from ..sweep import ALL_ROWS, Chunk, ExpTerms, Selection, run_pass
+from .binning import DEFAULT_BINS, bin_ids
+
+
+class RowScores:
+    """Per-row scores of one pass, written by every lane at its rows' positions (9 bytes a row)."""
+
+    def __init__(self, n: int) -> None:
+        self.conf = np.empty(n)  # probability of the top class
+        self.correct = np.empty(n, dtype=bool)  # the top class is the label
+
+
+class ScoreSums:
+    """Sums behind the metrics of softmax(beta z), per part (a pass consumer).
+
+    Chunk by chunk: the total weight, NLL and Brier sums per part, the
+    top-label reliability sums (counts, confidence, correct) over
+    ``n_bins`` equal-width bins, and the classwise sums (probability and
+    label indicator per (class, bin), flat index class * M + bin). Per row
+    it keeps the top-label confidence and correctness (in a shared
+    :class:`RowScores`: the adaptive ECE needs them all). The probability
+    side of the classwise sums needs every entry: a softmax row has fewer than M
+    probabilities above the first edge 1/M; only those are binned one by
+    one, found by one comparison of the exponentials with a threshold per
+    chunk. The first bin of each class gets the rest, by subtraction from
+    the class's column sum (a matrix-vector product).
+    """
+
+    def __init__(self, parts: int, k: int, n_bins: int, rows: RowScores) -> None:
+        self.parts, self.k, self.n_bins, self.rows = parts, k, n_bins, rows
+        self.weight, self.nll, self.brier = np.zeros(parts), np.zeros(parts), np.zeros(parts)
+        self.bins = np.zeros((parts, 3, n_bins))
+        self.p_sum = np.zeros(parts * k * n_bins)
+        self.y_sum = np.zeros(parts * k * n_bins)
+        self.column = np.zeros(parts * k)  # sum of p per (part, class)
+        self.upper = np.zeros(parts * k)  # of which above the first edge
+        self.first = float(np.linspace(0.0, 1.0, n_bins + 1)[1])
+
+    def add(self, chunk: Chunk, terms: ExpTerms) -> None:
+        c = len(chunk.y)
+        at = slice(chunk.start, chunk.start + c)
+        log_total, beta, P = terms.log_total, terms.beta, self.parts
+        w = np.ones(c) if chunk.w is None else chunk.w
+        part = np.zeros(c, np.intp) if chunk.part is None else chunk.part.astype(np.intp)
+        conf = np.exp(beta * terms.zmax - log_total, out=self.rows.conf[at])
+        correct = np.equal(terms.top, chunk.y, out=self.rows.correct[at])
+        ids = bin_ids(conf, self.n_bins) + self.n_bins * part
+        for j, v in enumerate((w, w * conf, w * correct)):
+            self.bins[:, j] += np.bincount(ids, v, P * self.n_bins).reshape(P, self.n_bins)
+        log_py = beta * terms.zy - log_total
+        # sum_k (p_k - y_k)^2 = sum_k p_k^2 - 2 p_y + 1, sum_k p_k^2 = exp(L(2 beta) - 2 L(beta))
+        brier = np.exp(terms.sq_log_total - 2.0 * log_total) - 2.0 * np.exp(log_py) + 1.0
+        self.weight += np.bincount(part, w, P)
+        self.nll -= np.bincount(part, w * log_py, P)
+        self.brier += np.bincount(part, w * brier, P)
+        p_y = terms.probabilities(np.arange(c), chunk.y)  # as the classwise bins see it
+        np.add.at(self.y_sum, bin_ids(p_y, self.n_bins) + self.n_bins * chunk.y + (self.k * self.n_bins) * part, w)
+        self._classwise(terms, w, part)
+
+    def _classwise(self, terms: ExpTerms, w: np.ndarray, part: np.ndarray) -> None:
+        e, total, k, M = terms.e, terms.total, self.k, self.n_bins
+        c = len(total)
+        inv = (w / total).astype(e.dtype)
+        for p in range(self.parts):
+            coef = inv if self.parts == 1 else np.where(part == p, inv, e.dtype.type(0))
+            col = coef @ e
+            if terms.eps:  # p = e (1 + eps x) / total
+                col += e.dtype.type(terms.eps) * (coef @ terms.ex)
+            self.column[p * k : (p + 1) * k] += col
+        lo = float(total.min()) * self.first * (1.0 - 1e-5)  # p > 1/M needs e > total / M, give or take eps x
+        cand = np.flatnonzero(e.ravel() > e.dtype.type(lo))
+        if len(cand) > 4 * c * M:  # rows of very different totals: a threshold per row
+            lim = (total * self.first * (1.0 - 1e-5)).astype(e.dtype)
+            cand = np.flatnonzero((e > lim[:, None]).ravel())
+        rows, cols = np.divmod(cand, k)
+        p = terms.probabilities(rows, cols)
+        keep = p > self.first
+        rows, cols, p = rows[keep], cols[keep], p[keep]
+        wp = p * w[rows]
+        where = cols + k * part[rows]
+        np.add.at(self.p_sum, bin_ids(p, M) + M * where, wp)
+        np.add.at(self.upper, where, wp)
+
+    def classwise(self, part: int) -> tuple[np.ndarray, np.ndarray]:
+        """The (class, bin) sums of probabilities and labels of one part."""
+        size = self.k * self.n_bins
+        p_sum = self.p_sum[part * size : (part + 1) * size].copy()
+        rest = self.column - self.upper
+        p_sum[:: self.n_bins] += rest[part * self.k : (part + 1) * self.k]
+        return p_sum, self.y_sum[part * size : (part + 1) * size]
+
+    @staticmethod
+    def merge(lanes: Sequence[ScoreSums]) -> ScoreSums:
+        out = lanes[0]
+        for o in lanes[1:]:
+            for name in ("weight", "nll", "brier", "bins", "p_sum", "y_sum", "column", "upper"):
+                getattr(out, name).__iadd__(getattr(o, name))
+        return out
+
+
+def temperature_pass(
+    logits: np.ndarray,
+    labels: np.ndarray,
+    beta: float,
+    n_bins: int = DEFAULT_BINS,
+    *,
+    selection: Selection = ALL_ROWS,
+    parts: int = 1,
+    moments: int = 0,
+    sq_moments: int = 0,
+    sq_part: int | None = None,
+    extra: Callable[[], Sequence] | None = None,
+    threads: int | None = None,
+) -> tuple[ScoreSums, list]:
+    """One pass scoring softmax(beta z) per part (and feeding ``extra`` consumers).
+
+    Returns the merged :class:`~onnxcal.metrics.score_sums.ScoreSums` and,
+    per lane, the ``extra`` consumers (for the caller to merge).
+    """
+    n = len(logits) if selection.rows is None else len(selection.rows)
+    rows = RowScores(n)
+    k = logits.shape[1]
+
+    def make():
+        return (ScoreSums(parts, k, n_bins, rows), *(extra() if extra else ()))
+
+    lanes = run_pass(
+        logits, labels, beta, make, selection=selection, moments=moments, sq_moments=sq_moments,
+        sq_part=sq_part, threads=threads,
+    )
+    sums = ScoreSums.merge([lane[0] for lane in lanes])
+    return sums, [lane[1:] for lane in lanes]

@@ -1,0 +1,120 @@
+"""onnxcal.capture.blocks: blocks of batches, progress and the automatic batch size."""
+
+import importlib
+from dataclasses import replace
+
+import numpy as np
+import onnxruntime as ort
+
+from conftest import capture_of, per_sample, random_mlp
+from onnxcal.capture import RunOptions
+from onnxcal.data import Dataset
+
+
+def test_progress_is_reported(rng):
+    model = random_mlp(rng)
+    ds = Dataset({"x": np.zeros((10, 6), np.float32)}, np.zeros(10, np.int64), "mem")
+    seen = []
+    capture_of(model, ds, batch_size=4, progress=lambda d, done, total: seen.append((done, total)))
+    # after the first batch, then per block of batches (here one block holds the rest)
+    assert seen == [(4, 10), (10, 10)]
+
+
+class _Recorder:
+    """Wraps a session: records the batch size of every call, optionally sleeping in it."""
+
+    def __init__(self, session, sleep: float = 0.0):
+        self.session, self.sleep, self.sizes = session, sleep, []
+
+    def run(self, names, feed):
+        self.sizes.append(len(next(iter(feed.values()))))
+        if self.sleep:
+            import time
+
+            time.sleep(self.sleep)
+        return self.session.run(names, feed)
+
+
+def _batches(model, x, options, sleep=0.0):
+    from onnxcal.capture import plan_run, run_batches
+
+    ds = Dataset({"x": x}, np.zeros(len(x), np.int64), "mem")
+    plan = plan_run(model, ds, [model.graph.output[0].name], options)
+    rec = _Recorder(plan.session, sleep)
+    plan = replace(plan, session=rec)
+    blocks = list(run_batches(plan, ds))
+    return rec.sizes, blocks
+
+
+def test_blocks_are_whole_batches_and_give_the_same_logits(rng):
+    model = random_mlp(rng)
+    x = rng.normal(size=(30_000, 6)).astype(np.float32)
+    sizes, blocks = _batches(model, x, RunOptions(batch_size=100))
+    assert set(sizes[:-1]) == {100} and sizes[-1] == 100  # 30 000 = 300 batches of 100
+    assert [b[0] for b in blocks] == sorted(b[0] for b in blocks) and blocks[-1][1] == 30_000
+    assert all((stop - start) % 100 == 0 for start, stop, _ in blocks)
+    got = np.concatenate([outs[0] for _, _, outs in blocks])
+    np.testing.assert_allclose(got, per_sample(model, x), rtol=1e-5, atol=1e-6)
+
+
+class _Clock:
+    """A clock the test moves: a runtime call costs ``fixed + per_sample * size``, and the
+    consumer of a block ``own`` per call (onnxcal's own work, as the wall time counts it)."""
+
+    def __init__(self, fixed: float, per_sample: float, own: float):
+        self.t, self.fixed, self.per_sample, self.own = 0.0, fixed, per_sample, own
+
+    def perf_counter(self) -> float:
+        return self.t
+
+
+class _TimedRecorder(_Recorder):
+    def __init__(self, session, clock: _Clock):
+        super().__init__(session)
+        self.clock = clock
+
+    def run(self, names, feed):
+        out = super().run(names, feed)
+        self.clock.t += self.clock.fixed + self.clock.per_sample * self.sizes[-1]
+        return out
+
+
+def test_automatic_batch_size_grows_while_onnxcal_costs_more_than_5_percent(rng, monkeypatch):
+    # Deterministic: a clock the test moves, not the machine's. A call costs 10 units plus
+    # 0.01 per sample and onnxcal's own work 1 unit per call: its share is 1 / 10.64 at 64
+    # samples (9.4 %), 1 / 11.28 at 128, 1 / 12.56 at 256, 1 / 15.12 at 512 (6.6 %), and first
+    # falls under 5 % at 1024 (1 / 20.24 = 4.9 %), where the batch size stays.
+    blocks_module = importlib.import_module("onnxcal.capture.blocks")  # where run_batches reads its clock
+    from onnxcal.capture import plan_run, run_batches
+
+    clock = _Clock(fixed=10.0, per_sample=0.01, own=1.0)
+    monkeypatch.setattr(blocks_module, "time", clock)
+    model = random_mlp(rng)
+    x = rng.normal(size=(400_000, 6)).astype(np.float32)
+    ds = Dataset({"x": x}, np.zeros(len(x), np.int64), "mem")
+    plan = plan_run(model, ds, [model.graph.output[0].name], RunOptions(threads=1))
+    rec = _TimedRecorder(plan.session, clock)
+    blocks = []
+    for start, stop, outs in run_batches(replace(plan, session=rec), ds):
+        clock.t += clock.own * -(-(stop - start) // rec.sizes[-1])  # onnxcal's work: per call of the block
+        blocks.append((start, stop, outs))
+    steps = rec.sizes[:-1]
+    assert steps[0] == 64 and steps == sorted(steps)
+    assert set(steps) == {64, 128, 256, 512, 1024}
+    sess = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
+    want = sess.run(None, {"x": x})[0]  # onnxruntime on the whole set in one call
+    np.testing.assert_allclose(np.concatenate([o[0] for _, _, o in blocks]), want, rtol=1e-5, atol=1e-6)
+
+
+def test_an_explicit_batch_size_is_kept(rng):
+    model = random_mlp(rng)
+    x = rng.normal(size=(20_000, 6)).astype(np.float32)
+    sizes, _ = _batches(model, x, RunOptions(batch_size=64, threads=1))
+    assert set(sizes[:-1]) == {64}
+
+
+def test_automatic_batch_size_stays_for_a_slow_model(rng):
+    model = random_mlp(rng)
+    x = rng.normal(size=(3000, 6)).astype(np.float32)
+    sizes, _ = _batches(model, x, RunOptions(), sleep=0.002)  # 2 ms per call: onnxcal's share is tiny
+    assert set(sizes[:-1]) == {64}
