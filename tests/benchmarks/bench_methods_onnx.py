@@ -59,8 +59,8 @@ MODELS = (
     ("skl2onnx_mlp_tensor", "mlp/digits"),
     ("skl2onnx_svc_tensor", "svc/breast cancer"),
     ("skl2onnx_logreg_saturated_tensor", "logreg-saturated/breast cancer"),
-    ("onnxmltools_lightgbm_multiclass_tensor", "lightgbm/iris"),
-    ("onnxmltools_xgboost_multiclass_tensor", "xgboost/iris"),
+    # Not here: the onnxmltools LightGBM and XGBoost exports import default-domain opset 9 (their IR
+    # version allows no later one), and the maps' subgraphs need opset 13, so patch refuses them.
 )
 SKLEARN = ("sigmoid", "isotonic", "temperature")
 
