@@ -17,9 +17,9 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 import pytest
+from conftest import random_mlp
 from onnx.reference import ReferenceEvaluator
 
-from conftest import random_mlp
 from onnxcal import graph
 from onnxcal.errors import OnnxcalError
 from onnxcal.maps import MODULES

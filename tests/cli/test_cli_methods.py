@@ -16,8 +16,8 @@ import json
 import numpy as np
 import onnxruntime as ort
 import pytest
-
 from conftest import FIXTURES
+
 from onnxcal.choose import candidate_methods
 from onnxcal.scaling import Scaling
 
