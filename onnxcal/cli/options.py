@@ -86,7 +86,10 @@ MethodOpt = Annotated[
     typer.Option(
         "--method",
         help="temperature (softmax(z/T), or sigmoid(z/T) for one logit), vector "
-        "(softmax(w*z+b), per class) or platt (sigmoid(a*z+b), one logit).",
+        "(softmax(w*z+b), per class), platt (sigmoid(a*z+b), one logit), matrix (softmax(W z+b)), dirichlet "
+        "(softmax(W log p+b)), beta (one logit), isotonic, histogram (binning), ensemble-temperature, ovr-platt "
+        "(one-vs-rest, renormalised), or auto (every applicable method fitted, the simplest within the best "
+        "held-out NLL's bootstrap interval chosen). isotonic and histogram can change the ranking and the argmax.",
     ),
 ]
 MultilabelOpt = Annotated[
@@ -98,7 +101,12 @@ MultilabelOpt = Annotated[
 ]
 L2Opt = Annotated[
     float,
-    typer.Option("--l2", help="Penalty l2*(sum (w-1)^2 + sum b^2) added to the NLL (vector, platt; 0 to 1e6)."),
+    typer.Option(
+        "--l2",
+        help="Penalty weight added to the NLL, 0 to 1e6: vector and platt l2*(sum (w-1)^2 + sum b^2); beta and "
+        "ovr-platt a pull toward the identity; matrix and dirichlet the off-diagonal and intercept penalty "
+        "(0: the default 100). The other methods have none.",
+    ),
 ]
 HoldoutOpt = Annotated[
     float,

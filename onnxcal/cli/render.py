@@ -9,6 +9,7 @@ from pathlib import Path
 from rich import box
 from rich.table import Table
 
+from ..choose import TABLE_FIELDS, Choice
 from ..fit import FitSummary
 from ..graph import ModelInfo, TensorSpec
 from ..metrics import METRIC_LABELS
@@ -75,6 +76,7 @@ def _describe_site(site) -> str:
 
 
 _METRIC_ROWS = tuple(METRIC_LABELS.items())
+_CHOICE_LABELS = {"nll": "NLL", "ece": "ECE", "brier": "Brier", "accuracy": "accuracy"}
 
 
 def _interval(pair) -> str:
@@ -119,9 +121,39 @@ def render_fit(summary: FitSummary) -> None:
             row += [f"{getattr(summary.fit_part[k], key):.4f}" for k in ("before", "after")]
         table.add_row(*row)
     out.print(table)
+    if summary.choice is not None:
+        render_choice(summary.choice)
     for note in summary.notes:
         out.print(f"note: {note}", soft_wrap=True)
     warn(summary.warnings)
+
+
+def _short(x: float) -> str:
+    text = f"{x:.3f}"
+    return text[1:] if text.startswith("0.") else text
+
+
+def _with_interval(value: float, pair: list[float] | None) -> str:
+    return f"{value:.4f}" if pair is None else f"{value:.4f}\n{_short(pair[0])}-{_short(pair[1])}"
+
+
+def render_choice(choice: Choice) -> None:
+    """The comparison table of ``--method auto`` (each figure over its 95% interval) and the choice."""
+    where = "held-out" if choice.basis == "held-out" else "in-sample"
+    table = Table(title=f"--method auto: every applicable method, {where} figures (below: 95% bootstrap interval)",
+                  title_justify="left", box=box.SIMPLE_HEAD, padding=(0, 1))
+    table.add_column("method", no_wrap=True)
+    table.add_column("params", justify="right", no_wrap=True)
+    for f in TABLE_FIELDS:
+        table.add_column(_CHOICE_LABELS[f], justify="right", no_wrap=True, min_width=9)
+    for c in choice.candidates:
+        marks = ["chosen"] if c.method == choice.chosen else []
+        marks += ["lowest NLL"] if c.method == choice.best else []
+        marks += ["not converged"] if not c.converged else []
+        name = c.method + (f"\n({', '.join(marks)})" if marks else "")
+        table.add_row(name, str(c.n_parameters), *(_with_interval(c.metrics[f], c.intervals.get(f)) for f in TABLE_FIELDS))
+    out.print(table)
+    out.print(f"chosen: {choice.chosen}: {choice.reason}", soft_wrap=True)
 
 
 _REFERENCE_FROM = {
@@ -171,6 +203,10 @@ def render_report(result: ReportResult, verdict: bool = True) -> None:
               + ", ".join(Path(f).name for f in result.files), soft_wrap=True)
 
 
+_NODES = {"temperature": "Div", "vector": "Mul + Add", "platt": "Mul + Add", "matrix": "MatMul + Add",
+          "dirichlet": "log-softmax + MatMul + Add", "beta": "the beta map (softplus, Mul, Add)"}
+
+
 def how_patched(r) -> str:
     """One line on what the patch did to the graph."""
     if r.folded:
@@ -179,7 +215,7 @@ def how_patched(r) -> str:
         how += "; Softmax appended" if r.rewrite == "append-softmax" else ""
         how += "; Sigmoid appended" if r.rewrite == "append-sigmoid" else ""
         return how
-    nodes = "Div" if r.method == "temperature" else "Mul + Add"
+    nodes = _NODES.get(r.method, f"the {r.method} map (standard operators)")
     how = {
         "insert-before-activation": f"{nodes} inserted before the existing activation",
         "append-softmax": f"{nodes} + Softmax appended",

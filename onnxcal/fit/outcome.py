@@ -78,6 +78,9 @@ class FitSummary:
         Bootstrap percentile intervals (see ``onnxcal.resample``).
     options : FitOptions
     warnings, notes : tuple of str
+    choice : Choice or None
+        With ``--method auto``: every method's held-out figures and why
+        this one was chosen (:mod:`onnxcal.choose`).
     """
 
     result: FitResult
@@ -92,6 +95,7 @@ class FitSummary:
     options: FitOptions = FitOptions()
     warnings: tuple[str, ...] = ()
     notes: tuple[str, ...] = ()
+    choice: Choice | None = None
 
     @property
     def scaling(self) -> Scaling:
@@ -126,6 +130,7 @@ class FitSummary:
             "warnings": list(self.warnings),
             "notes": list(self.notes),
             "capture": dict(self.capture),
+            "choice": None if self.choice is None else self.choice.to_dict(),
         }
 
 

@@ -33,8 +33,9 @@ import numpy as np
 import scipy.optimize
 
 from ..errors import OnnxcalError
-from ..metrics import sigmoid
-from ._base import GraphBuilder, MapFit, Subgraph, binary_targets, check_kind, chunks, field_array, require_fields, total_weight
+from ._base import (
+    GraphBuilder, MapFit, Subgraph, binary_targets, check_kind, chunks, field_array, require_fields, sigmoid, total_weight,
+)
 
 METHOD = "beta"
 KINDS = ("binary",)

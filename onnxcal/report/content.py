@@ -14,7 +14,7 @@ from typing import Any
 
 import numpy as np
 
-from .. import __version__
+from .. import __version__, maps
 from ..capture import Capture
 from ..fit import FitSummary, data_warnings
 from ..l1_sigmoid import identity
@@ -72,6 +72,8 @@ class Evaluation:
 
 def describe_scaling(scaling: Scaling, intervals: dict | None = None) -> str:
     """One line naming the method and its parameters, with the T interval if any."""
+    if not scaling.is_affine:
+        return maps.describe(scaling.method, scaling.parameters)
     iv = (intervals or {}).get("parameters", {})
     if scaling.temperature is not None:
         t = iv.get("temperature")
@@ -327,6 +329,7 @@ def build(
             "interval_level": (intervals or {}).get("level"),
             "given": summary is None,
             "figures_use": dict(ev.scaling.parameters),
+            "choice": summary.choice.to_dict() if summary is not None and summary.choice is not None else None,
         },
         "metrics": {
             "basis": ev.basis,

@@ -210,6 +210,10 @@ CASES = [
     # ---- fit files
     case("fit-negative-temperature", "patch", "model.onnx", "--fit", "fit_negative_t.json", "--out", "p.onnx", message=r"temperature -1.5 is not a positive finite number"),
     case("fit-non-numeric-temperature", "report", "cap.npz", "--out", "rep", "--fit", "fit_text_t.json", message=r"'warm' is not a number"),
+    case("fit-matrix-w-shape", "patch", "model.onnx", "--fit", "fit_matrix_w_shape.json", "--out", "p.onnx", message=r"matrix parameter 'W' has shape 3 x 3, expected 4 x 4"),
+    case("fit-ets-weights", "report", "cap.npz", "--out", "rep", "--fit", "fit_ets_weights.json", message=r"ensemble-temperature parameter 'weights' is \[0.5, 0.6, 0.1\], but it must be three numbers >= 0 adding up to 1"),
+    case("fit-isotonic-decreasing", "patch", "model.onnx", "--fit", "fit_isotonic_decreasing.json", "--out", "p.onnx", message=r"isotonic parameter 'y\[0\]' decreases"),
+    case("fit-unknown-method", "patch", "model.onnx", "--fit", "fit_unknown_method.json", "--out", "p.onnx", message=r"unknown calibration method 'magic'"),
     case("fit-not-json", "patch", "model.onnx", "--fit", "fit_not_json.json", "--out", "p.onnx", message=r"'fit_not_json.json' is not an onnxcal fit file"),
     case("report-dir-is-a-file", "calibrate", "model.onnx", *NPZ, "--out", "o.onnx", "--report", "fit_deep.json", message=r"--report 'fit_deep.json' is a file"),
     case("fit-json-nested-too-deep", "patch", "model.onnx", "--fit", "fit_deep.json", "--out", "p.onnx", message=r"'fit_deep.json' is not an onnxcal fit file"),
