@@ -9,9 +9,9 @@ import os
 import sys
 import traceback
 import warnings
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Any
 
 import typer
 
@@ -19,6 +19,7 @@ from .. import __version__, _files, _runenv, _signals
 from ..errors import OnnxcalError, OnnxcalWarning
 from . import commands
 from .console import err, out, printable, warn
+from .options import HelpCommand
 
 app = typer.Typer(
     name="onnxcal",
@@ -45,7 +46,7 @@ def _show_version(value: bool) -> None:
 @app.callback()
 def _root(
     debug: Annotated[
-        bool, typer.Option("--debug", help="Show tracebacks for errors (put it before the command).")
+        bool, typer.Option("--debug", help="Show the traceback behind an error (may go anywhere on the line).")
     ] = False,
     version: Annotated[
         bool,
@@ -55,14 +56,24 @@ def _root(
     pass
 
 
+def _summary(fn: Callable[..., Any]) -> str:
+    """The first paragraph of a command's docstring, whole: ``onnxcal --help`` lists it
+    (click's own short help stops at the first '. ', which cut "e.g." in two)."""
+    return " ".join((fn.__doc__ or "").strip().split("\n\n")[0].split())
+
+
+def _register(fn: Callable[..., Any], **kwargs: Any) -> None:
+    app.command(cls=HelpCommand, short_help=_summary(fn), **kwargs)(fn)
+
+
 # The commands, in the order --help lists them.
-app.command()(commands.inspect)
-app.command()(commands.capture)
-app.command()(commands.fit)
-app.command()(commands.patch)
-app.command(epilog=commands.VERIFY_EPILOG)(commands.verify)
-app.command()(commands.report)
-app.command()(commands.calibrate)
+_register(commands.inspect)
+_register(commands.capture)
+_register(commands.fit)
+_register(commands.patch)
+_register(commands.verify, epilog=commands.VERIFY_EPILOG)
+_register(commands.report)
+_register(commands.calibrate)
 
 
 def _one_line(text: str) -> str:

@@ -7,17 +7,12 @@ the typer app (the function's name is the command's, its docstring the help).
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated, Optional
+from typing import TYPE_CHECKING, Annotated, Any, Optional
 
 import typer
 
-from .. import api
-from ..data import DataSpec
-from ..fit import FitOptions
-from ..graph import DEFAULT_OUTPUT_NAME
-from ..metrics import DEFAULT_BINS
-from ..report import FORMATS
 from .console import err, out, print_json, progress_bar
+from .defaults import DEFAULT_BINS, DEFAULT_LATENCY_RUNS, DEFAULT_OUTPUT_NAME, FORMATS
 from .options import (
     MAX_MODEL_BYTES,
     ActivationOpt,
@@ -41,6 +36,8 @@ from .options import (
     QuietOpt,
     ScoreColumnsOpt,
     SeedOpt,
+    CHECKS_PANEL,
+    OUTPUT_PANEL,
     data_options,
 )
 from .render import (
@@ -52,9 +49,18 @@ from .render import (
     render_verify,
 )
 
+if TYPE_CHECKING:
+    from ..data import DataSpec
+
+# The library (onnx, numpy, scipy) is imported inside each command, when it runs: --help and
+# --version stay fast (tests/cli/test_cli_startup.py checks that importing this package does not
+# import them).
+
 
 def inspect(model: ModelArg, as_json: JsonOpt = False, max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES) -> None:
     """Show a model's inputs, outputs, opset, class-score output and calibration record."""
+    from .. import api
+
     info = api.inspect(model, max_model_bytes=max_model_bytes)
     print_json(info.to_dict()) if as_json else render_info(info)
 
@@ -63,7 +69,7 @@ def inspect(model: ModelArg, as_json: JsonOpt = False, max_model_bytes: MaxModel
 def capture(
     model: ModelArg,
     out_path: Annotated[
-        Path, typer.Option("--out", help="Capture file to write (.npz).", show_default=False)
+        Path, typer.Option("--out", help="Capture file to write (.npz).", show_default=False, metavar="LOGITS.npz")
     ],
     output: OutputOpt = None,
     activation: ActivationOpt = None,
@@ -74,12 +80,14 @@ def capture(
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
     *,
     data: DataSpec,
-    runtime: dict,
+    runtime: dict[str, Any],
 ) -> None:
     """Run the model on CPU over a labelled set and save its logits and labels.
 
     The logits stream into the file batch by batch; it appears only when complete.
     """
+    from .. import api
+
     with progress_bar(quiet) as progress:
         cap = api.capture(
             model,
@@ -108,7 +116,7 @@ def fit(
         typer.Argument(help="Capture file(s) from 'onnxcal capture'; several (e.g. shards) are merged.",
                        metavar="LOGITS.npz...", show_default=False),
     ],
-    out_path: Annotated[Optional[Path], typer.Option("--out", help="Write the fit to this JSON file.")] = None,
+    out_path: Annotated[Optional[Path], typer.Option("--out", help="Write the fit to this JSON file.", metavar="FIT.json")] = None,
     method: MethodOpt = "temperature",
     multilabel: MultilabelOpt = None,
     l2: L2Opt = 0.0,
@@ -125,6 +133,9 @@ def fit(
     The headline figures are on a held-out part (--holdout), with bootstrap
     95% intervals (--bootstrap); the parameters written are refitted on all samples.
     """
+    from .. import api
+    from ..fit import FitOptions
+
     options = FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins)
     summary = api.fit(logits, out=out_path, force=force, options=options, drop_nonfinite=drop_nonfinite)
     if as_json:
@@ -138,9 +149,9 @@ def fit(
 
 def patch(
     model: ModelArg,
-    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False)],
-    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to bake in.")] = None,
-    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.")] = None,
+    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False, metavar="OUT.onnx")],
+    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to bake in.", metavar="T")] = None,
+    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.", metavar="FIT.json")] = None,
     output: OutputOpt = None,
     output_name: OutputNameOpt = DEFAULT_OUTPUT_NAME,
     drop_logits: DropLogitsOpt = False,
@@ -161,6 +172,8 @@ def patch(
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
 ) -> None:
     """Rewrite the graph so the model outputs calibrated probabilities (e.g. softmax(logits / T))."""
+    from .. import api
+
     result = api.patch(
         model,
         out_path,
@@ -192,10 +205,11 @@ VERIFY_EPILOG = (
 
 @data_options()
 def verify(
-    patched: Annotated[Path, typer.Argument(help="Patched model.", show_default=False)],
+    patched: Annotated[Path, typer.Argument(help="Patched model.", show_default=False, metavar="PATCHED")],
     original: Annotated[
         Optional[Path],
-        typer.Option("--original", help="The uncalibrated model (default: the path in the record)."),
+        typer.Option("--original", help="The uncalibrated model (default: the path in the record).",
+                     metavar="MODEL"),
     ] = None,
     scores: Annotated[
         Optional[list[Path]],
@@ -208,28 +222,38 @@ def verify(
         ),
     ] = None,
     max_ece: Annotated[
-        Optional[float], typer.Option("--max-ece", help="Fail when the patched model's ECE on the labels is above this.")
+        Optional[float],
+        typer.Option("--max-ece", help="Fail when the patched model's ECE on the labels is above this.",
+                     metavar="X", rich_help_panel=CHECKS_PANEL)
     ] = None,
     max_nll: Annotated[
-        Optional[float], typer.Option("--max-nll", help="Fail when its NLL on the labels is above this.")
+        Optional[float],
+        typer.Option("--max-nll", help="Fail when its NLL on the labels is above this.", metavar="X",
+                     rich_help_panel=CHECKS_PANEL)
     ] = None,
     min_accuracy: Annotated[
-        Optional[float], typer.Option("--min-accuracy", help="Fail when its accuracy on the labels is below this.")
+        Optional[float],
+        typer.Option("--min-accuracy", help="Fail when its accuracy on the labels is below this.", metavar="X",
+                     rich_help_panel=CHECKS_PANEL)
     ] = None,
     bins: BinsOpt = DEFAULT_BINS,
     latency: Annotated[
         bool,
-        typer.Option("--latency", help="Time the patched model against the original, alternating runs; report the ratio."),
+        typer.Option("--latency", help="Time the patched model against the original, alternating runs; report the ratio.",
+                     rich_help_panel=CHECKS_PANEL),
     ] = False,
     max_latency_ratio: Annotated[
         Optional[float],
-        typer.Option("--max-latency-ratio", help="Fail when median patched / original latency is above this (implies --latency)."),
+        typer.Option("--max-latency-ratio", help="Fail when median patched / original latency is above this (implies --latency).",
+                     metavar="X", rich_help_panel=CHECKS_PANEL),
     ] = None,
     latency_runs: Annotated[
-        int, typer.Option("--latency-runs", help="Timed runs of each model for --latency (1 to 100000).")
-    ] = api.DEFAULT_LATENCY_RUNS,
+        int, typer.Option("--latency-runs", help="Timed runs of each model for --latency (1 to 100000).", metavar="N",
+                          rich_help_panel=CHECKS_PANEL)
+    ] = DEFAULT_LATENCY_RUNS,
     junit: Annotated[
-        Optional[Path], typer.Option("--junit", help="Also write the checks as JUnit XML to this file.")
+        Optional[Path], typer.Option("--junit", help="Also write the checks as JUnit XML to this file.", metavar="FILE.xml",
+                     rich_help_panel=OUTPUT_PANEL)
     ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
@@ -238,7 +262,7 @@ def verify(
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
     *,
     data: DataSpec,
-    runtime: dict,
+    runtime: dict[str, Any],
 ) -> None:
     """Check a patched model, e.g. for a CI gate; each check is reported with its figure.
 
@@ -251,6 +275,8 @@ def verify(
     --latency. Without --original (or the recorded path) and --scores, (1)
     and (2) use the patched graph's own logits and say so.
     """
+    from .. import api
+
     with progress_bar(quiet or as_json) as progress:
         result = api.verify(
             patched,
@@ -288,23 +314,24 @@ def report(
         ),
     ],
     out_dir: Annotated[
-        Path, typer.Option("--out", help="Directory for the report (created if missing).", show_default=False)
+        Path, typer.Option("--out", help="Directory for the report (created if missing).", show_default=False, metavar="DIR")
     ],
-    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to report on.")] = None,
-    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.")] = None,
+    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to report on.", metavar="T")] = None,
+    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.", metavar="FIT.json")] = None,
     model: Annotated[
-        Optional[Path], typer.Option("--model", help="A patched model: its calibration record gives the parameters.")
+        Optional[Path], typer.Option("--model", help="A patched model: its calibration record gives the parameters.", metavar="MODEL")
     ] = None,
     formats: Annotated[
-        str, typer.Option("--format", help=f"Comma-separated outputs among {','.join(FORMATS)}.")
+        str, typer.Option("--format", help="Comma-separated outputs, any of these.", metavar=",".join(FORMATS),
+                     rich_help_panel=OUTPUT_PANEL)
     ] = ",".join(FORMATS),
     class_names: Annotated[
         Optional[Path],
         typer.Option("--classes", help="Class names, one per line, in the model's class order "
-                     "(default: those recorded in the capture)."),
+                     "(default: those recorded in the capture).", metavar="FILE"),
     ] = None,
     bins: Annotated[
-        Optional[int], typer.Option("--bins", help="Bins, 2 to 100000 (default: the fit's, else 15).")
+        Optional[int], typer.Option("--bins", help="Bins, 2 to 100000 (default: the fit's, else 15).", metavar="N")
     ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
@@ -315,6 +342,8 @@ def report(
     Give the parameters with one of --temperature, --fit or --model. On the
     capture a fit was made on, the figures are those of its held-out part.
     """
+    from .. import api
+
     result = api.report(
         captures,
         out_dir,
@@ -338,7 +367,7 @@ def report(
 @data_options()
 def calibrate(
     model: ModelArg,
-    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False)],
+    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False, metavar="OUT.onnx")],
     output: OutputOpt = None,
     output_name: OutputNameOpt = DEFAULT_OUTPUT_NAME,
     drop_logits: DropLogitsOpt = False,
@@ -356,7 +385,8 @@ def calibrate(
     bins: BinsOpt = 15,
     report_dir: Annotated[
         Optional[Path],
-        typer.Option("--report", help="Also write the report (as 'onnxcal report') into this directory."),
+        typer.Option("--report", help="Also write the report (as 'onnxcal report') into this directory.",
+                     metavar="DIR", rich_help_panel=OUTPUT_PANEL),
     ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
@@ -365,13 +395,16 @@ def calibrate(
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
     *,
     data: DataSpec,
-    runtime: dict,
+    runtime: dict[str, Any],
 ) -> None:
     """Capture, fit, patch and verify in one go; print the before/after table.
 
     The patched model is not written when verification fails (exit 1); the
     report, when asked for, is written either way.
     """
+    from .. import api
+    from ..fit import FitOptions
+
     with progress_bar(quiet or as_json) as progress:
         result = api.calibrate(
             model,

@@ -10,6 +10,7 @@ import struct
 import sys
 import time
 from collections.abc import Iterator, Sequence
+from typing import TYPE_CHECKING
 
 from rich.console import Console
 from rich.progress import (
@@ -22,7 +23,8 @@ from rich.progress import (
 )
 from rich.text import Text
 
-from ..capture import ProgressFn
+if TYPE_CHECKING:
+    from ..capture import ProgressFn
 
 
 def printable(text: str) -> str:

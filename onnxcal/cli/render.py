@@ -5,16 +5,18 @@ before/after table of a fit, the checks of verify, the files of a report.
 from __future__ import annotations
 
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from rich import box
 from rich.table import Table
 
-from ..fit import FitSummary
-from ..graph import ModelInfo, TensorSpec
-from ..metrics import METRIC_LABELS
-from ..report import ReportResult, describe_scaling
-from ..verify import VerifyResult, format_figure
 from .console import out, warn
+
+if TYPE_CHECKING:  # the library is imported when a table is drawn, not with the CLI
+    from ..fit import FitSummary
+    from ..graph import ModelInfo, TensorSpec
+    from ..report import ReportResult
+    from ..verify import VerifyResult
 
 CAUTION = (
     "Calibration holds only for data like the validation set and drifts under "
@@ -74,18 +76,19 @@ def _describe_site(site) -> str:
     )
 
 
-_METRIC_ROWS = tuple(METRIC_LABELS.items())
-
-
 def _interval(pair) -> str:
     return "-" if pair is None else f"{pair[0]:.3f} to {pair[1]:.3f}"
 
 
 def _describe_scaling(summary: FitSummary) -> str:
+    from ..report import describe_scaling
+
     return describe_scaling(summary.scaling, summary.intervals)
 
 
 def render_fit(summary: FitSummary) -> None:
+    from ..metrics import METRIC_LABELS
+
     b, a = summary.before, summary.after
     where = f"{b.n} held-out samples" if summary.basis == "held-out" else f"{b.n} samples, in-sample"
     table = Table(
@@ -102,7 +105,7 @@ def render_fit(summary: FitSummary) -> None:
     if summary.fit_part is not None:
         table.add_column("fit part\nbefore", justify="right", no_wrap=True)
         table.add_column("fit part\nafter", justify="right", no_wrap=True)
-    for key, label in _METRIC_ROWS:
+    for key, label in METRIC_LABELS.items():
         row = [label.format(bins=b.n_bins), f"{getattr(b, key):.4f}", f"{getattr(a, key):.4f}"]
         if intervals is not None:
             row.append(_interval(intervals.get(key)))
@@ -123,6 +126,8 @@ _REFERENCE_FROM = {
 
 
 def render_verify(result: VerifyResult) -> None:
+    from ..verify import format_figure
+
     if result.reference_from in _REFERENCE_FROM:
         where = f" ({result.original})" if result.original else ""
         title = f"verify: reference from {_REFERENCE_FROM[result.reference_from]}{where}, {result.n} samples"
