@@ -106,6 +106,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     both signals ignored, so it is never cut short by a second one.
     """
     args = list(sys.argv[1:] if argv is None else argv)
+    if [a for a in args if a != "--debug"][:1] == ["--version"]:  # at once: typer need not build the commands
+        out.print(f"onnxcal {__version__}")
+        return 0
     debug = "--debug" in args
     if debug:  # accept --debug anywhere on the line
         args = ["--debug"] + [a for a in args if a != "--debug"]

@@ -4,7 +4,6 @@ They are plain functions here; :mod:`onnxcal.cli.app` registers them with
 the typer app (the function's name is the command's, its docstring the help).
 """
 
-from __future__ import annotations
 
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, Any, Optional
@@ -14,7 +13,9 @@ import typer
 from .console import err, out, print_json, progress_bar
 from .defaults import DEFAULT_BINS, DEFAULT_LATENCY_RUNS, DEFAULT_OUTPUT_NAME, FORMATS
 from .options import (
+    CHECKS_PANEL,
     MAX_MODEL_BYTES,
+    OUTPUT_PANEL,
     ActivationOpt,
     BinsOpt,
     BootstrapOpt,
@@ -36,8 +37,6 @@ from .options import (
     QuietOpt,
     ScoreColumnsOpt,
     SeedOpt,
-    CHECKS_PANEL,
-    OUTPUT_PANEL,
     data_options,
 )
 from .render import (
@@ -79,7 +78,7 @@ def capture(
     quiet: QuietOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
     *,
-    data: DataSpec,
+    data: "DataSpec",
     runtime: dict[str, Any],
 ) -> None:
     """Run the model on CPU over a labelled set and save its logits and labels.
@@ -261,7 +260,7 @@ def verify(
     quiet: QuietOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
     *,
-    data: DataSpec,
+    data: "DataSpec",
     runtime: dict[str, Any],
 ) -> None:
     """Check a patched model, e.g. for a CI gate; each check is reported with its figure.
@@ -394,7 +393,7 @@ def calibrate(
     quiet: QuietOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
     *,
-    data: DataSpec,
+    data: "DataSpec",
     runtime: dict[str, Any],
 ) -> None:
     """Capture, fit, patch and verify in one go; print the before/after table.
