@@ -449,7 +449,10 @@ def test_sigterm_while_a_capture_streams_removes_the_temporary(work):
     finally:
         proc.kill()
         proc.wait()
-    assert proc.returncode == 143 and err.strip() == "onnxcal: interrupted by SIGTERM; no output was written"
+    # the line names what stopped (the command and its stage) after saying that nothing was written
+    assert proc.returncode == 143 and err.strip() == (
+        "onnxcal: interrupted by SIGTERM; no output was written (capture stopped while capturing logits)"
+    )
     assert _what_is_left(work, inputs) == set()
 
 

@@ -10,7 +10,7 @@ from typing import TYPE_CHECKING, Annotated, Any, Optional
 
 import typer
 
-from .console import err, out, print_json, progress_bar
+from .console import err, print_json, progress_bar, say, warn
 from .defaults import DEFAULT_BINS, DEFAULT_LATENCY_RUNS, DEFAULT_OUTPUT_NAME, FORMATS
 from .options import (
     CHECKS_PANEL,
@@ -41,11 +41,14 @@ from .options import (
 )
 from .render import (
     CAUTION,
+    describe_fit,
     how_patched,
     render_fit,
     render_info,
     render_report,
     render_verify,
+    report_line,
+    verdict_line,
 )
 
 if TYPE_CHECKING:
@@ -101,12 +104,14 @@ def capture(
             score_columns=score_columns,
             **runtime,
         )
-    for note in cap.notes:
-        out.print(f"note: {note}", soft_wrap=True)
-    out.print(
-        f"captured {cap.meta.n} x {cap.meta.num_classes} logits from '{cap.meta.scores}' "
-        f"-> {out_path}"
-    )
+    for note in cap.notes if not quiet else ():
+        say(f"note: {note}")
+    say(f"captured {cap.meta.n} x {cap.meta.num_classes} logits from '{cap.meta.scores}' -> {out_path}")
+
+
+def _fit_stage(bootstrap: int) -> str:
+    """The fit stage as the progress bar names it (it has no counts: elapsed time is shown)."""
+    return f"fitting ({bootstrap} bootstrap replicates)" if bootstrap else "fitting"
 
 
 def fit(
@@ -126,6 +131,7 @@ def fit(
     drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
     as_json: JsonOpt = False,
+    quiet: QuietOpt = False,
 ) -> None:
     """Fit a calibration map to captured logits by minimising NLL; print before/after metrics.
 
@@ -136,14 +142,19 @@ def fit(
     from ..fit import FitOptions
 
     options = FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins)
-    summary = api.fit(logits, out=out_path, force=force, options=options, drop_nonfinite=drop_nonfinite)
+    with progress_bar(quiet or as_json, start=_fit_stage(bootstrap)):
+        summary = api.fit(logits, out=out_path, force=force, options=options, drop_nonfinite=drop_nonfinite)
     if as_json:
         print_json(summary.to_dict())
         return
+    if quiet:
+        warn(summary.warnings)
+        say(describe_fit(summary) + (f"; wrote {out_path}" if out_path is not None else ""))
+        return
     render_fit(summary)
     if out_path is not None:
-        out.print(f"wrote {out_path}")
-    out.print(f"caution: {CAUTION}", soft_wrap=True)
+        say(f"wrote {out_path}")
+    say(f"caution: {CAUTION}")
 
 
 def patch(
@@ -192,7 +203,7 @@ def patch(
     )
     r = result.record
     what = f"T = {r.temperature:.4f}" if r.temperature is not None else f"{r.method} scaling"
-    out.print(f"{what}: {how_patched(r)}; calibrated output '{r.output}' -> {result.path}")
+    say(f"{what}: {how_patched(r)}; calibrated output '{r.output}' -> {result.path}")
 
 
 VERIFY_EPILOG = (
@@ -296,9 +307,18 @@ def verify(
             drop_nonfinite=drop_nonfinite,
             **runtime,
         )
-    print_json(result.to_dict()) if as_json else render_verify(result)
+    if as_json:
+        print_json(result.to_dict())
+    elif quiet:
+        for c in result.failed:
+            say(f"failed: {c.name}: {c.detail}")
+        say(verdict_line(result))
+    else:
+        render_verify(result)
+        say(verdict_line(result))
+        say(f"caution: {CAUTION}")
     if junit is not None and not as_json:
-        out.print(f"wrote {junit}")
+        say(f"wrote {junit}")
     if not result.passed:
         raise typer.Exit(1)
 
@@ -334,6 +354,7 @@ def report(
     ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
+    quiet: QuietOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
 ) -> None:
     """Write report.html (self-contained), summary.md, report.json and the plots as PNG files.
@@ -356,11 +377,14 @@ def report(
         drop_nonfinite=drop_nonfinite,
         max_model_bytes=max_model_bytes,
     )
-    for note in result.content["notes"]:
-        if note.startswith("dropped "):
-            out.print(f"note: {note}", soft_wrap=True)
-    render_report(result)
-    out.print(f"caution: {CAUTION}", soft_wrap=True)
+    if not quiet:
+        for note in result.content["notes"]:
+            if note.startswith("dropped "):
+                say(f"note: {note}")
+        render_report(result)
+    say(report_line(result))
+    if not quiet:
+        say(f"caution: {CAUTION}")
 
 
 @data_options()
@@ -404,7 +428,7 @@ def calibrate(
     from .. import api
     from ..fit import FitOptions
 
-    with progress_bar(quiet or as_json) as progress:
+    with progress_bar(quiet or as_json, then={"capturing logits": _fit_stage(bootstrap)}) as progress:
         result = api.calibrate(
             model,
             data,
@@ -435,14 +459,20 @@ def calibrate(
             }
         )
     else:
-        render_fit(result.summary)
-        render_verify(result.verification)
+        if quiet:
+            warn(result.summary.warnings)
+        else:
+            render_fit(result.summary)
+            render_verify(result.verification)
+        if not quiet or not result.verification.passed:
+            say(verdict_line(result.verification))
         if result.report is not None:
-            render_report(result.report, verdict=False)
+            say(report_line(result.report))
         if result.patch is not None:
             r = result.patch.record
-            out.print(f"wrote {result.patch.path} (calibrated output '{r.output}')")
-            out.print(f"caution: {CAUTION}", soft_wrap=True)
+            say(f"{describe_fit(result.summary)}; wrote {result.patch.path} (calibrated output '{r.output}')")
+        if not quiet:
+            say(f"caution: {CAUTION}")
     if result.patch is None:
-        err.print(f"error: verification failed; '{out_path}' was not written")
+        err.print(f"error: verification failed; '{out_path}' was not written", soft_wrap=True)
         raise typer.Exit(1)

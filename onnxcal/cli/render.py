@@ -7,10 +7,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from rich import box
-from rich.table import Table
-
-from .console import out, warn
+from .console import Column, Grid, say, show_table, warn
 
 if TYPE_CHECKING:  # the library is imported when a table is drawn, not with the CLI
     from ..fit import FitSummary
@@ -34,29 +31,30 @@ def _shape(spec: TensorSpec) -> str:
 def render_info(info: ModelInfo) -> None:
     opsets = ", ".join(f"{d} {v}" for d, v in (info.opsets or {}).items() if d != "ai.onnx")
     opset = f"opset {info.opset}" if info.opset else "no default-domain opset"
-    table = Table(title=f"{info.path}  ({opset}{', ' + opsets if opsets else ''})", title_justify="left")
-    for col in ("", "name", "dtype", "shape"):
-        table.add_column(col)
+    table = Grid(
+        f"{info.path}  ({opset}{', ' + opsets if opsets else ''})",
+        [Column(""), Column("name"), Column("dtype"), Column("shape")],
+    )
     for kind, specs in (("input", info.inputs), ("output", info.outputs)):
         for s in specs:
             table.add_row(kind, s.name, s.dtype, _shape(s))
-    out.print(table)
+    show_table(table)
     site = info.site
     if site is None:
-        out.print(f"class scores: none found ({info.site_problem})", soft_wrap=True)
+        say(f"class scores: none found ({info.site_problem})")
     else:
-        out.print(f"found: {info.reading}", soft_wrap=True)
-        out.print(f"class scores: {_describe_site(site)}", soft_wrap=True)
+        say(f"found: {info.reading}")
+        say(f"class scores: {_describe_site(site)}")
     if info.external_data:
-        out.print(f"external data: {', '.join(info.external_data)}", soft_wrap=True)
-    out.print(f"batch dim: {'fixed' if info.batch_fixed else 'dynamic'}")
+        say(f"external data: {', '.join(info.external_data)}")
+    say(f"batch dim: {'fixed' if info.batch_fixed else 'dynamic'}")
     if info.records:
         for r in info.records:
             what = f"T = {r.temperature:.4f}" if r.temperature is not None else f"{r.method} scaling"
-            out.print(f"calibration record: {what} on output '{r.output}' ({how_patched(r)})", soft_wrap=True)
+            say(f"calibration record: {what} on output '{r.output}' ({how_patched(r)})")
     else:
-        out.print("calibration record: none")
-    out.print(f"sha256: {info.sha256}")
+        say("calibration record: none")
+    say(f"sha256: {info.sha256}")
 
 
 def _describe_site(site) -> str:
@@ -86,25 +84,24 @@ def _describe_scaling(summary: FitSummary) -> str:
     return describe_scaling(summary.scaling, summary.intervals)
 
 
+def describe_fit(summary: FitSummary) -> str:
+    """The fit's result line: the map and its parameters (with their interval)."""
+    return _describe_scaling(summary)
+
+
 def render_fit(summary: FitSummary) -> None:
     from ..metrics import METRIC_LABELS
 
     b, a = summary.before, summary.after
     where = f"{b.n} held-out samples" if summary.basis == "held-out" else f"{b.n} samples, in-sample"
-    table = Table(
-        title=f"{_describe_scaling(summary)}\nbefore/after on {where}",
-        title_justify="left",
-        box=box.SIMPLE_HEAD,
-    )
-    table.add_column("metric", no_wrap=True)
-    table.add_column("before", justify="right", no_wrap=True)
-    table.add_column("after", justify="right", no_wrap=True)
     intervals = (summary.intervals or {}).get("after")
+    columns = [Column("metric"), Column("before", right=True), Column("after", right=True)]
     if intervals is not None:
-        table.add_column("after:\n95% interval", justify="right", no_wrap=True)
+        columns.append(Column("after:\n95% interval", right=True))
     if summary.fit_part is not None:
-        table.add_column("fit part\nbefore", justify="right", no_wrap=True)
-        table.add_column("fit part\nafter", justify="right", no_wrap=True)
+        columns += [Column("fit part\nbefore", right=True), Column("fit part\nafter", right=True)]
+    say(_describe_scaling(summary))
+    table = Grid(f"before/after on {where}", columns, boxed=False)
     for key, label in METRIC_LABELS.items():
         row = [label.format(bins=b.n_bins), f"{getattr(b, key):.4f}", f"{getattr(a, key):.4f}"]
         if intervals is not None:
@@ -112,9 +109,9 @@ def render_fit(summary: FitSummary) -> None:
         if summary.fit_part is not None:
             row += [f"{getattr(summary.fit_part[k], key):.4f}" for k in ("before", "after")]
         table.add_row(*row)
-    out.print(table)
+    show_table(table)
     for note in summary.notes:
-        out.print(f"note: {note}", soft_wrap=True)
+        say(f"note: {note}")
     warn(summary.warnings)
 
 
@@ -133,28 +130,36 @@ def render_verify(result: VerifyResult) -> None:
         title = f"verify: reference from {_REFERENCE_FROM[result.reference_from]}{where}, {result.n} samples"
     else:
         title = f"verify: no reference (no calibration record), {result.n} samples"
-    table = Table(title=title, title_justify="left")
-    for col in ("check", "result", "value", "limit", "what"):
-        table.add_column(col)
+    table = Grid(title, [Column("check"), Column("result"), Column("value", right=True),
+                         Column("limit", right=True), Column("what", prose=True)])
     for c in result.checks:
         status = {"pass": "pass", "fail": "FAIL", "skip": "skipped"}[c.status]
         table.add_row(c.name, status, format_figure(c.value), format_figure(c.limit), c.detail)
-    out.print(table)
+    show_table(table)
     for note in result.notes:
-        out.print(f"note: {note}", soft_wrap=True)
+        say(f"note: {note}")
+    if not result.passed:
+        for c in result.failed:  # each failure as a full sentence
+            say(f"failed: {c.name}: {c.detail}")
+
+
+def verdict_line(result: VerifyResult) -> str:
+    """verify's verdict, the line ``--quiet`` keeps."""
     if result.passed:
-        out.print("verify: all checks passed")
-    else:
-        for c in result.failed:  # each failure as a full sentence, unwrapped
-            out.print(f"failed: {c.name}: {c.detail}", soft_wrap=True)
-        out.print(f"verify: FAILED ({', '.join(c.name for c in result.failed)})")
+        return "verify: all checks passed"
+    return f"verify: FAILED ({', '.join(c.name for c in result.failed)})"
 
 
 def render_report(result: ReportResult, verdict: bool = True) -> None:
     for line in result.content["verdict"] if verdict else ():
-        out.print(f"  {line}", soft_wrap=True)
-    out.print(f"wrote {len(result.files)} report files to {result.directory}: "
-              + ", ".join(Path(f).name for f in result.files), soft_wrap=True)
+        say(f"  {line}", indent=4)
+
+
+def report_line(result: ReportResult) -> str:
+    """The line that says what a report wrote."""
+    n = len(result.files)
+    return (f"wrote {n} report file{'' if n == 1 else 's'} to {result.directory}: "
+            + ", ".join(Path(f).name for f in result.files))
 
 
 def how_patched(r) -> str:
