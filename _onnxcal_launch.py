@@ -35,6 +35,11 @@ def main() -> int:
     """Run the onnxcal command line; return its exit status."""
     for s in SIGNALS:
         signal.signal(s, _note)
+    if [a for a in sys.argv[1:] if a != "--debug"] == ["--version"]:  # without importing the command line
+        from onnxcal import __version__
+
+        sys.stdout.write(f"onnxcal {__version__}\n")
+        return 0
     from onnxcal import _signals, cli  # a signal meanwhile is only noted
 
     try:

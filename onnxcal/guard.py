@@ -28,7 +28,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.special import logsumexp
 
 SUM_TOL = 1e-3
 VALUE_TOL = 1e-6
@@ -60,6 +59,8 @@ class RowStats:
         unit = finite & (r >= -VALUE_TOL).all(axis=1) & (r <= 1 + VALUE_TOL).all(axis=1)
         self.unit += int(unit.sum())
         self.probabilities += int((unit & (np.abs(r.sum(axis=1) - 1) <= SUM_TOL)).sum()) if r.shape[1] > 1 else 0
+        from scipy.special import logsumexp  # here, not at import: scipy.special takes ~0.5 s to import
+
         with np.errstate(invalid="ignore", over="ignore"):
             lse = logsumexp(np.where(finite[:, None], r, 0.0), axis=1)
         logp = finite & (r <= VALUE_TOL).all(axis=1) & (np.abs(lse) <= SUM_TOL)

@@ -29,7 +29,6 @@ but the kind's name.
 from __future__ import annotations
 
 import numpy as np
-import scipy.special
 
 from .scaling import SIGMOID_L1, Scaling, kind_of
 
@@ -66,6 +65,8 @@ def probabilities(logits: np.ndarray, temperature: float = 1.0) -> np.ndarray:
     array([[0.5, 0.5],
            [0. , 1. ]])
     """
+    import scipy.special  # here, not at import: scipy takes ~0.5 s to import and inspect needs none
+
     log_s = -np.logaddexp(0.0, -np.asarray(logits, dtype=np.float64) / temperature)
     out: np.ndarray = np.exp(log_s - scipy.special.logsumexp(log_s, axis=-1, keepdims=True))
     return out
@@ -77,6 +78,8 @@ def nll_terms(z: np.ndarray, y: np.ndarray, beta: float, order: int = 1) -> tupl
     ``z`` is one chunk of logits (n x K, float64), ``y`` class indices.
     Returns (f,), (f, f') or (f, f', f''), each of n values.
     """
+    import scipy.special  # here, not at import (see probabilities)
+
     r = np.arange(len(y))
     s = beta * z
     log_s = -np.logaddexp(0.0, -s)  # log sigmoid(s) = -softplus(-s)

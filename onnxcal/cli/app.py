@@ -9,16 +9,17 @@ import os
 import sys
 import traceback
 import warnings
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Any
 
 import typer
 
 from .. import __version__, _files, _runenv, _signals
 from ..errors import OnnxcalError, OnnxcalWarning
-from . import commands
+from . import commands, console
 from .console import err, out, printable, warn
+from .options import HelpCommand
 
 app = typer.Typer(
     name="onnxcal",
@@ -45,7 +46,7 @@ def _show_version(value: bool) -> None:
 @app.callback()
 def _root(
     debug: Annotated[
-        bool, typer.Option("--debug", help="Show tracebacks for errors (put it before the command).")
+        bool, typer.Option("--debug", help="Show the traceback behind an error (may go anywhere on the line).")
     ] = False,
     version: Annotated[
         bool,
@@ -55,14 +56,25 @@ def _root(
     pass
 
 
+def _summary(fn: Callable[..., Any]) -> str:
+    """The first paragraph of a command's docstring, whole: ``onnxcal --help`` lists it
+    (click's own short help stops at the first '. ', which cut "e.g." in two)."""
+    return " ".join((fn.__doc__ or "").strip().split("\n\n")[0].split())
+
+
+def _register(fn: Callable[..., Any], **kwargs: Any) -> None:
+    app.command(cls=HelpCommand, short_help=_summary(fn), **kwargs)(fn)
+
+
 # The commands, in the order --help lists them.
-app.command()(commands.inspect)
-app.command()(commands.capture)
-app.command()(commands.fit)
-app.command()(commands.patch)
-app.command(epilog=commands.VERIFY_EPILOG)(commands.verify)
-app.command()(commands.report)
-app.command()(commands.calibrate)
+COMMANDS = ("inspect", "capture", "fit", "patch", "verify", "report", "calibrate")
+_register(commands.inspect)
+_register(commands.capture)
+_register(commands.fit)
+_register(commands.patch)
+_register(commands.verify, epilog=commands.VERIFY_EPILOG)
+_register(commands.report)
+_register(commands.calibrate)
 
 
 def _one_line(text: str) -> str:
@@ -95,6 +107,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     both signals ignored, so it is never cut short by a second one.
     """
     args = list(sys.argv[1:] if argv is None else argv)
+    console.reset()  # this run's terminal and COLUMNS
+    if [a for a in args if a != "--debug"][:1] == ["--version"]:  # at once: typer need not build the commands
+        out.print(f"onnxcal {__version__}")
+        return 0
     debug = "--debug" in args
     if debug:  # accept --debug anywhere on the line
         args = ["--debug"] + [a for a in args if a != "--debug"]
@@ -106,11 +122,19 @@ def main(argv: Sequence[str] | None = None) -> int:
                 rv = app(args=args, prog_name="onnxcal", standalone_mode=False)
         except BaseException as exc:  # noqa: B036 - every ending is reported on one line
             _signals.stopping()
-            return _report_failure(exc, debug, run.written)
+            return _report_failure(exc, debug, run.written, args)
     return rv if isinstance(rv, int) else 0
 
 
-def _report_failure(exc: BaseException, debug: bool, written: Sequence[Path]) -> int:
+def _what_stopped(args: Sequence[str]) -> str:
+    """' (calibrate stopped while capturing logits)': the command and its stage, when known."""
+    command = next((a for a in args if a in COMMANDS), None)
+    if command is None:
+        return ""
+    return f" ({command} stopped{' while ' + console.stage[-1] if console.stage else ''})"
+
+
+def _report_failure(exc: BaseException, debug: bool, written: Sequence[Path], args: Sequence[str] = ()) -> int:
     """Print the one line that says how the run ended; return the exit status."""
     if isinstance(exc, SystemExit):  # typer.Exit and --version end the run normally
         return exc.code if isinstance(exc.code, int) else 0
@@ -125,13 +149,16 @@ def _report_failure(exc: BaseException, debug: bool, written: Sequence[Path]) ->
             return 2
         ctx = getattr(exc, "ctx", None)
         message = exc.format_message() if hasattr(exc, "format_message") else str(exc)
-        see = f"; see '{ctx.command_path} --help'" if ctx is not None else ""
-        err.print(f"onnxcal: error: {_one_line(message).rstrip('.')}{see}", soft_wrap=True)
+        message = _one_line(message).rstrip(".")
+        if ctx is not None:  # "... Did you mean 'fit'? See ...", "Missing option '--out'; see ..."
+            see = f"see '{ctx.command_path} --help'"
+            message += f" S{see[1:]}" if message.endswith("?") else f"; {see}"
+        err.print(f"onnxcal: error: {message}", soft_wrap=True)
         return 2
     if isinstance(exc, (_signals.Interrupted, KeyboardInterrupt, typer.Abort)):
         cause = exc.__cause__ if isinstance(exc, typer.Abort) and exc.__cause__ is not None else exc
         name = _signals.name_of(cause)
-        err.print(f"onnxcal: interrupted by {name}; {_written(written)}", soft_wrap=True)
+        err.print(f"onnxcal: interrupted by {name}; {_written(written)}{_what_stopped(args)}", soft_wrap=True)
         return _signals.exit_status(name)
     if isinstance(exc, OSError):  # a file error the api did not word (e.g. a file removed meanwhile)
         where = f" '{printable(os.fsdecode(exc.filename))}'" if exc.filename else ""

@@ -4,37 +4,26 @@ They are plain functions here; :mod:`onnxcal.cli.app` registers them with
 the typer app (the function's name is the command's, its docstring the help).
 """
 
-from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated, Optional
+from typing import TYPE_CHECKING, Annotated, Any, Optional
 
 import typer
 
-from .. import api
-from ..data import DataSpec
-from ..fit import FitOptions
-from ..graph import DEFAULT_OUTPUT_NAME
-from ..metrics import DEFAULT_BINS
-from ..report import FORMATS
-from .console import err, out, print_json, progress_bar
+from .console import err, print_json, progress_bar, say, warn
+from .defaults import DEFAULT_BINS, DEFAULT_LATENCY_RUNS, DEFAULT_OUTPUT_NAME, FORMATS
 from .options import (
+    CHECKS_PANEL,
     MAX_MODEL_BYTES,
+    OUTPUT_PANEL,
     AcceptConfidenceOpt,
     AcceptErrorOpt,
     AcceptMethodOpt,
-    DecisionDataOpt,
-    SetCoverageOpt,
-    SetPerClassOpt,
-    SetScoreOpt,
-    VerifyAcceptConfidenceOpt,
-    VerifyAcceptErrorOpt,
-    VerifySetCoverageOpt,
-    decision_options,
     ActivationOpt,
     BinsOpt,
     BootstrapOpt,
     ComputeDtypeOpt,
+    DecisionDataOpt,
     DropLogitsOpt,
     DropNonfiniteOpt,
     FoldOpt,
@@ -52,21 +41,40 @@ from .options import (
     QuietOpt,
     ScoreColumnsOpt,
     SeedOpt,
+    SetCoverageOpt,
+    SetPerClassOpt,
+    SetScoreOpt,
+    VerifyAcceptConfidenceOpt,
+    VerifyAcceptErrorOpt,
+    VerifySetCoverageOpt,
     data_options,
+    decision_options,
 )
 from .render import (
     CAUTION,
+    describe_fit,
     how_patched,
     render_decisions,
     render_fit,
     render_info,
     render_report,
     render_verify,
+    report_line,
+    verdict_line,
 )
+
+if TYPE_CHECKING:
+    from ..data import DataSpec
+
+# The library (onnx, numpy, scipy) is imported inside each command, when it runs: --help and
+# --version stay fast (tests/cli/test_cli_startup.py checks that importing this package does not
+# import them).
 
 
 def inspect(model: ModelArg, as_json: JsonOpt = False, max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES) -> None:
     """Show a model's inputs, outputs, opset, class-score output and calibration record."""
+    from .. import api
+
     info = api.inspect(model, max_model_bytes=max_model_bytes)
     print_json(info.to_dict()) if as_json else render_info(info)
 
@@ -75,7 +83,7 @@ def inspect(model: ModelArg, as_json: JsonOpt = False, max_model_bytes: MaxModel
 def capture(
     model: ModelArg,
     out_path: Annotated[
-        Path, typer.Option("--out", help="Capture file to write (.npz).", show_default=False)
+        Path, typer.Option("--out", help="Capture file to write (.npz).", show_default=False, metavar="LOGITS.npz")
     ],
     output: OutputOpt = None,
     activation: ActivationOpt = None,
@@ -85,13 +93,15 @@ def capture(
     quiet: QuietOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
     *,
-    data: DataSpec,
-    runtime: dict,
+    data: "DataSpec",
+    runtime: dict[str, Any],
 ) -> None:
     """Run the model on CPU over a labelled set and save its logits and labels.
 
     The logits stream into the file batch by batch; it appears only when complete.
     """
+    from .. import api
+
     with progress_bar(quiet) as progress:
         cap = api.capture(
             model,
@@ -106,12 +116,14 @@ def capture(
             score_columns=score_columns,
             **runtime,
         )
-    for note in cap.notes:
-        out.print(f"note: {note}", soft_wrap=True)
-    out.print(
-        f"captured {cap.meta.n} x {cap.meta.num_classes} logits from '{cap.meta.scores}' "
-        f"-> {out_path}"
-    )
+    for note in cap.notes if not quiet else ():
+        say(f"note: {note}")
+    say(f"captured {cap.meta.n} x {cap.meta.num_classes} logits from '{cap.meta.scores}' -> {out_path}")
+
+
+def _fit_stage(bootstrap: int) -> str:
+    """The fit stage as the progress bar names it (it has no counts: elapsed time is shown)."""
+    return f"fitting ({bootstrap} bootstrap replicates)" if bootstrap else "fitting"
 
 
 def fit(
@@ -120,7 +132,7 @@ def fit(
         typer.Argument(help="Capture file(s) from 'onnxcal capture'; several (e.g. shards) are merged.",
                        metavar="LOGITS.npz...", show_default=False),
     ],
-    out_path: Annotated[Optional[Path], typer.Option("--out", help="Write the fit to this JSON file.")] = None,
+    out_path: Annotated[Optional[Path], typer.Option("--out", help="Write the fit to this JSON file.", metavar="FIT.json")] = None,
     method: MethodOpt = "temperature",
     multilabel: MultilabelOpt = None,
     l2: L2Opt = 0.0,
@@ -131,28 +143,37 @@ def fit(
     drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
     as_json: JsonOpt = False,
+    quiet: QuietOpt = False,
 ) -> None:
     """Fit a calibration map to captured logits by minimising NLL; print before/after metrics.
 
     The headline figures are on a held-out part (--holdout), with bootstrap
     95% intervals (--bootstrap); the parameters written are refitted on all samples.
     """
+    from .. import api
+    from ..fit import FitOptions
+
     options = FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins)
-    summary = api.fit(logits, out=out_path, force=force, options=options, drop_nonfinite=drop_nonfinite)
+    with progress_bar(quiet or as_json, start=_fit_stage(bootstrap)):
+        summary = api.fit(logits, out=out_path, force=force, options=options, drop_nonfinite=drop_nonfinite)
     if as_json:
         print_json(summary.to_dict())
         return
+    if quiet:
+        warn(summary.warnings)
+        say(describe_fit(summary) + (f"; wrote {out_path}" if out_path is not None else ""))
+        return
     render_fit(summary)
     if out_path is not None:
-        out.print(f"wrote {out_path}")
-    out.print(f"caution: {CAUTION}", soft_wrap=True)
+        say(f"wrote {out_path}")
+    say(f"caution: {CAUTION}")
 
 
 def patch(
     model: ModelArg,
-    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False)],
-    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to bake in.")] = None,
-    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.")] = None,
+    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False, metavar="OUT.onnx")],
+    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to bake in.", metavar="T")] = None,
+    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.", metavar="FIT.json")] = None,
     output: OutputOpt = None,
     output_name: OutputNameOpt = DEFAULT_OUTPUT_NAME,
     drop_logits: DropLogitsOpt = False,
@@ -184,6 +205,8 @@ def patch(
     With --accept-error or --set-coverage, also decision outputs beside them,
     their thresholds chosen on the labelled set --decision-data.
     """
+    from .. import api
+
     result = api.patch(
         model,
         out_path,
@@ -206,7 +229,7 @@ def patch(
     )
     r = result.record
     what = f"T = {r.temperature:.4f}" if r.temperature is not None else f"{r.method} scaling"
-    out.print(f"{what}: {how_patched(r)}; calibrated output '{r.output}' -> {result.path}")
+    say(f"{what}: {how_patched(r)}; calibrated output '{r.output}' -> {result.path}")
     if result.decisions is not None:
         render_decisions(result.decisions.lines())
 
@@ -220,10 +243,11 @@ VERIFY_EPILOG = (
 
 @data_options()
 def verify(
-    patched: Annotated[Path, typer.Argument(help="Patched model.", show_default=False)],
+    patched: Annotated[Path, typer.Argument(help="Patched model.", show_default=False, metavar="PATCHED")],
     original: Annotated[
         Optional[Path],
-        typer.Option("--original", help="The uncalibrated model (default: the path in the record)."),
+        typer.Option("--original", help="The uncalibrated model (default: the path in the record).",
+                     metavar="MODEL"),
     ] = None,
     scores: Annotated[
         Optional[list[Path]],
@@ -236,28 +260,38 @@ def verify(
         ),
     ] = None,
     max_ece: Annotated[
-        Optional[float], typer.Option("--max-ece", help="Fail when the patched model's ECE on the labels is above this.")
+        Optional[float],
+        typer.Option("--max-ece", help="Fail when the patched model's ECE on the labels is above this.",
+                     metavar="X", rich_help_panel=CHECKS_PANEL)
     ] = None,
     max_nll: Annotated[
-        Optional[float], typer.Option("--max-nll", help="Fail when its NLL on the labels is above this.")
+        Optional[float],
+        typer.Option("--max-nll", help="Fail when its NLL on the labels is above this.", metavar="X",
+                     rich_help_panel=CHECKS_PANEL)
     ] = None,
     min_accuracy: Annotated[
-        Optional[float], typer.Option("--min-accuracy", help="Fail when its accuracy on the labels is below this.")
+        Optional[float],
+        typer.Option("--min-accuracy", help="Fail when its accuracy on the labels is below this.", metavar="X",
+                     rich_help_panel=CHECKS_PANEL)
     ] = None,
     bins: BinsOpt = DEFAULT_BINS,
     latency: Annotated[
         bool,
-        typer.Option("--latency", help="Time the patched model against the original, alternating runs; report the ratio."),
+        typer.Option("--latency", help="Time the patched model against the original, alternating runs; report the ratio.",
+                     rich_help_panel=CHECKS_PANEL),
     ] = False,
     max_latency_ratio: Annotated[
         Optional[float],
-        typer.Option("--max-latency-ratio", help="Fail when median patched / original latency is above this (implies --latency)."),
+        typer.Option("--max-latency-ratio", help="Fail when median patched / original latency is above this (implies --latency).",
+                     metavar="X", rich_help_panel=CHECKS_PANEL),
     ] = None,
     latency_runs: Annotated[
-        int, typer.Option("--latency-runs", help="Timed runs of each model for --latency (1 to 100000).")
-    ] = api.DEFAULT_LATENCY_RUNS,
+        int, typer.Option("--latency-runs", help="Timed runs of each model for --latency (1 to 100000).", metavar="N",
+                          rich_help_panel=CHECKS_PANEL)
+    ] = DEFAULT_LATENCY_RUNS,
     junit: Annotated[
-        Optional[Path], typer.Option("--junit", help="Also write the checks as JUnit XML to this file.")
+        Optional[Path], typer.Option("--junit", help="Also write the checks as JUnit XML to this file.", metavar="FILE.xml",
+                     rich_help_panel=OUTPUT_PANEL)
     ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
     accept_error: VerifyAcceptErrorOpt = None,
@@ -268,8 +302,8 @@ def verify(
     quiet: QuietOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
     *,
-    data: DataSpec,
-    runtime: dict,
+    data: "DataSpec",
+    runtime: dict[str, Any],
 ) -> None:
     """Check a patched model, e.g. for a CI gate; each check is reported with its figure.
 
@@ -282,6 +316,8 @@ def verify(
     --latency. Without --original (or the recorded path) and --scores, (1)
     and (2) use the patched graph's own logits and say so.
     """
+    from .. import api
+
     with progress_bar(quiet or as_json) as progress:
         result = api.verify(
             patched,
@@ -305,9 +341,18 @@ def verify(
             set_coverage=set_coverage,
             **runtime,
         )
-    print_json(result.to_dict()) if as_json else render_verify(result)
+    if as_json:
+        print_json(result.to_dict())
+    elif quiet:
+        for c in result.failed:
+            say(f"failed: {c.name}: {c.detail}")
+        say(verdict_line(result))
+    else:
+        render_verify(result)
+        say(verdict_line(result))
+        say(f"caution: {CAUTION}")
     if junit is not None and not as_json:
-        out.print(f"wrote {junit}")
+        say(f"wrote {junit}")
     if not result.passed:
         raise typer.Exit(1)
 
@@ -322,26 +367,28 @@ def report(
         ),
     ],
     out_dir: Annotated[
-        Path, typer.Option("--out", help="Directory for the report (created if missing).", show_default=False)
+        Path, typer.Option("--out", help="Directory for the report (created if missing).", show_default=False, metavar="DIR")
     ],
-    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to report on.")] = None,
-    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.")] = None,
+    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to report on.", metavar="T")] = None,
+    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.", metavar="FIT.json")] = None,
     model: Annotated[
-        Optional[Path], typer.Option("--model", help="A patched model: its calibration record gives the parameters.")
+        Optional[Path], typer.Option("--model", help="A patched model: its calibration record gives the parameters.", metavar="MODEL")
     ] = None,
     formats: Annotated[
-        str, typer.Option("--format", help=f"Comma-separated outputs among {','.join(FORMATS)}.")
+        str, typer.Option("--format", help="Comma-separated outputs, any of these.", metavar=",".join(FORMATS),
+                     rich_help_panel=OUTPUT_PANEL)
     ] = ",".join(FORMATS),
     class_names: Annotated[
         Optional[Path],
         typer.Option("--classes", help="Class names, one per line, in the model's class order "
-                     "(default: those recorded in the capture)."),
+                     "(default: those recorded in the capture).", metavar="FILE"),
     ] = None,
     bins: Annotated[
-        Optional[int], typer.Option("--bins", help="Bins, 2 to 100000 (default: the fit's, else 15).")
+        Optional[int], typer.Option("--bins", help="Bins, 2 to 100000 (default: the fit's, else 15).", metavar="N")
     ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
+    quiet: QuietOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
 ) -> None:
     """Write report.html (self-contained), summary.md, report.json and the plots as PNG files.
@@ -349,6 +396,8 @@ def report(
     Give the parameters with one of --temperature, --fit or --model. On the
     capture a fit was made on, the figures are those of its held-out part.
     """
+    from .. import api
+
     result = api.report(
         captures,
         out_dir,
@@ -362,17 +411,20 @@ def report(
         drop_nonfinite=drop_nonfinite,
         max_model_bytes=max_model_bytes,
     )
-    for note in result.content["notes"]:
-        if note.startswith("dropped "):
-            out.print(f"note: {note}", soft_wrap=True)
-    render_report(result)
-    out.print(f"caution: {CAUTION}", soft_wrap=True)
+    if not quiet:
+        for note in result.content["notes"]:
+            if note.startswith("dropped "):
+                say(f"note: {note}")
+        render_report(result)
+    say(report_line(result))
+    if not quiet:
+        say(f"caution: {CAUTION}")
 
 
 @data_options()
 def calibrate(
     model: ModelArg,
-    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False)],
+    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False, metavar="OUT.onnx")],
     output: OutputOpt = None,
     output_name: OutputNameOpt = DEFAULT_OUTPUT_NAME,
     drop_logits: DropLogitsOpt = False,
@@ -390,7 +442,8 @@ def calibrate(
     bins: BinsOpt = 15,
     report_dir: Annotated[
         Optional[Path],
-        typer.Option("--report", help="Also write the report (as 'onnxcal report') into this directory."),
+        typer.Option("--report", help="Also write the report (as 'onnxcal report') into this directory.",
+                     metavar="DIR", rich_help_panel=OUTPUT_PANEL),
     ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
     accept_error: AcceptErrorOpt = None,
@@ -405,8 +458,8 @@ def calibrate(
     quiet: QuietOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
     *,
-    data: DataSpec,
-    runtime: dict,
+    data: "DataSpec",
+    runtime: dict[str, Any],
 ) -> None:
     """Capture, fit, patch and verify in one go; print the before/after table.
 
@@ -416,7 +469,10 @@ def calibrate(
     thresholds chosen on the held-out rows (the map baked in is then the one
     fitted on the other rows) or on --decision-data.
     """
-    with progress_bar(quiet or as_json) as progress:
+    from .. import api
+    from ..fit import FitOptions
+
+    with progress_bar(quiet or as_json, then={"capturing logits": _fit_stage(bootstrap)}) as progress:
         result = api.calibrate(
             model,
             data,
@@ -451,16 +507,22 @@ def calibrate(
             }
         )
     else:
-        render_fit(result.summary)
-        if result.decisions is not None:
-            render_decisions(result.decisions.lines())
-        render_verify(result.verification)
+        if quiet:
+            warn(result.summary.warnings)
+        else:
+            render_fit(result.summary)
+            if result.decisions is not None:
+                render_decisions(result.decisions.lines())
+            render_verify(result.verification)
+        if not quiet or not result.verification.passed:
+            say(verdict_line(result.verification))
         if result.report is not None:
-            render_report(result.report, verdict=False)
+            say(report_line(result.report))
         if result.patch is not None:
             r = result.patch.record
-            out.print(f"wrote {result.patch.path} (calibrated output '{r.output}')")
-            out.print(f"caution: {CAUTION}", soft_wrap=True)
+            say(f"{describe_fit(result.summary)}; wrote {result.patch.path} (calibrated output '{r.output}')")
+        if not quiet:
+            say(f"caution: {CAUTION}")
     if result.patch is None:
-        err.print(f"error: verification failed; '{out_path}' was not written")
+        err.print(f"error: verification failed; '{out_path}' was not written", soft_wrap=True)
         raise typer.Exit(1)

@@ -12,55 +12,101 @@ import inspect as _inspect
 import typing
 from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import Annotated, Optional
+from typing import Annotated, Any, Optional
 
 import typer
+from typer.core import TyperCommand
 
-from ..capture import CPU, DEFAULT_BATCH, OPTIMIZATION_LEVELS
-from ..data import IMAGE_OPTIONS, DataSpec, Selection, parse_shard
-from ..decisions.plan import DecisionOptions
 from ..errors import OnnxcalError
+from .defaults import (
+    ACTIVATIONS,
+    AUTO,
+    COMPUTE_DTYPES,
+    CPU,
+    DEFAULT_BATCH,
+    HOLDS,
+    IMAGE_OPTIONS,
+    INTERPOLATIONS,
+    METHODS,
+    MULTILABEL_MODES,
+    OPTIMIZATION_LEVELS,
+    choices,
+)
+
+if typing.TYPE_CHECKING:
+    from ..data import DataSpec
+    from ..decisions.plan import DecisionOptions
+
+# --------------------------------------------------------------------------
+# Help panels: the options of a command are listed under these headings, in
+# this order (HelpCommand); an option with no panel goes under "Options".
+
+MODEL_PANEL = "Model"
+DATA_PANEL = "Data"
+IMAGE_PANEL = "Image preprocessing"
+RUNTIME_PANEL = "Runtime"
+FIT_PANEL = "Fit"
+CHECKS_PANEL = "Checks"
+DECISIONS_PANEL = "Decisions"
+OUTPUT_PANEL = "Output"
+PANELS = (
+    "Options", MODEL_PANEL, DATA_PANEL, IMAGE_PANEL, RUNTIME_PANEL, FIT_PANEL, CHECKS_PANEL, DECISIONS_PANEL,
+    OUTPUT_PANEL,
+)
 
 # --------------------------------------------------------------------------
 # Shared options
 
-ModelArg = Annotated[Path, typer.Argument(help="The ONNX model file.", show_default=False)]
+ModelArg = Annotated[Path, typer.Argument(help="The ONNX model file.", show_default=False, metavar="MODEL")]
 OutputOpt = Annotated[
     Optional[str],
-    typer.Option("--output", help="The class-score output (default: the likeliest float output)."),
+    typer.Option("--output", help="The class-score output (default: the likeliest float output).",
+                 metavar="NAME", rich_help_panel=MODEL_PANEL),
 ]
-ForceOpt = Annotated[bool, typer.Option("--force", help="Replace an existing output file.")]
-JsonOpt = Annotated[bool, typer.Option("--json", help="Print JSON instead of a table.")]
-QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress bar.")]
+ForceOpt = Annotated[bool, typer.Option("--force", help="Replace an existing output file.",
+                                        rich_help_panel=OUTPUT_PANEL)]
+JsonOpt = Annotated[bool, typer.Option("--json", help="Print JSON instead of a table.", rich_help_panel=OUTPUT_PANEL)]
+QuietOpt = Annotated[
+    bool,
+    typer.Option("--quiet", "-q", help="Print only the result line and warnings: no progress, tables or notes.",
+                 rich_help_panel=OUTPUT_PANEL),
+]
 OutputNameOpt = Annotated[
-    str, typer.Option("--output-name", help="Name of the added output when the model ends in logits.")
+    str, typer.Option("--output-name", help="Name of the added output when the model ends in logits.",
+                      metavar="NAME", rich_help_panel=OUTPUT_PANEL)
 ]
 DropLogitsOpt = Annotated[
-    bool, typer.Option("--drop-logits", help="Remove the logits output when a new output is added.")
+    bool, typer.Option("--drop-logits", help="Remove the logits output when a new output is added.",
+                       rich_help_panel=OUTPUT_PANEL)
 ]
 ActivationOpt = Annotated[
     Optional[str],
     typer.Option(
         "--activation",
-        help="softmax or sigmoid: what turns raw logits into probabilities "
-        "(default: sigmoid for one logit, softmax otherwise).",
+        help="What turns raw logits into probabilities (default: sigmoid for one logit, softmax otherwise).",
+        metavar=choices(ACTIVATIONS),
+        rich_help_panel=MODEL_PANEL,
     ),
 ]
 ComputeDtypeOpt = Annotated[
     Optional[str],
     typer.Option(
         "--compute-dtype",
-        help="float32 or float64: run the Div and activation in this dtype (Casts "
+        help="Run the Div and activation in this dtype (Casts "
         "around them; e.g. for float16 models). The output keeps its dtype.",
+        metavar=choices(COMPUTE_DTYPES),
+        rich_help_panel=OUTPUT_PANEL,
     ),
 ]
 OutputHoldsOpt = Annotated[
     Optional[str],
     typer.Option(
         "--output-holds",
-        help="logits, probabilities or log-probabilities: what the output holds, when the graph cannot tell "
+        help="What the output holds, when the graph cannot tell "
         "(checked against the data; by default the graph says, and an output of raw logits whose rows are "
         "probabilities is read as probabilities).",
+        metavar=choices(HOLDS),
+        rich_help_panel=MODEL_PANEL,
     ),
 ]
 ScoreColumnsOpt = Annotated[
@@ -71,6 +117,7 @@ ScoreColumnsOpt = Annotated[
         help="When the output concatenates class scores with other values (a detector's boxes and "
         "sigmoid scores), calibrate only the scores: positions START to STOP-1 along the Concat's axis, as "
         "the refusal lists them. The other positions stay byte-identical.",
+        rich_help_panel=MODEL_PANEL,
     ),
 ]
 FoldOpt = Annotated[
@@ -79,6 +126,7 @@ FoldOpt = Annotated[
         "--fold",
         help="Fold the scaling into the weight and bias of the Gemm / MatMul(+Add) computing the "
         "logits (1/T, or per class w and b for vector, Platt and per-label scaling) instead of adding nodes.",
+        rich_help_panel=OUTPUT_PANEL,
     ),
 ]
 MethodOpt = Annotated[
@@ -90,6 +138,8 @@ MethodOpt = Annotated[
         "(softmax(W log p+b)), beta (one logit), isotonic, histogram (binning), ensemble-temperature, ovr-platt "
         "(one-vs-rest, renormalised), or auto (every applicable method fitted, the simplest within the best "
         "held-out NLL's bootstrap interval chosen). isotonic and histogram can change the ranking and the argmax.",
+        metavar=choices((*METHODS, AUTO)),
+        rich_help_panel=FIT_PANEL,
     ),
 ]
 MultilabelOpt = Annotated[
@@ -97,6 +147,8 @@ MultilabelOpt = Annotated[
     typer.Option(
         "--multilabel",
         help="For N x K 0/1 labels: 'shared' (one T for all labels, the default) or 'per-label' (one T each).",
+        metavar=choices(MULTILABEL_MODES),
+        rich_help_panel=FIT_PANEL,
     ),
 ]
 L2Opt = Annotated[
@@ -106,6 +158,8 @@ L2Opt = Annotated[
         help="Penalty weight added to the NLL, 0 to 1e6: vector and platt l2*(sum (w-1)^2 + sum b^2); beta and "
         "ovr-platt a pull toward the identity; matrix and dirichlet the off-diagonal and intercept penalty "
         "(0: the default 100). The other methods have none.",
+        metavar="X",
+        rich_help_panel=FIT_PANEL,
     ),
 ]
 HoldoutOpt = Annotated[
@@ -113,13 +167,18 @@ HoldoutOpt = Annotated[
     typer.Option(
         "--holdout",
         help="Fraction held out (stratified) to score the fit on, 0 to 0.9; 0 scores in-sample.",
+        metavar="FRACTION",
+        rich_help_panel=FIT_PANEL,
     ),
 ]
-SeedOpt = Annotated[int, typer.Option("--seed", help="Seed of the holdout split and the bootstrap (0 to 2^32-1).")]
+SeedOpt = Annotated[int, typer.Option("--seed", help="Seed of the holdout split and the bootstrap (0 to 2^32-1).",
+                                      metavar="SEED", rich_help_panel=FIT_PANEL)]
 BootstrapOpt = Annotated[
-    int, typer.Option("--bootstrap", help="Bootstrap replicates for 95% intervals (0 to 10000); 0 skips them.")
+    int, typer.Option("--bootstrap", help="Bootstrap replicates for 95% intervals (0 to 10000); 0 skips them.",
+                      metavar="N", rich_help_panel=FIT_PANEL)
 ]
-BinsOpt = Annotated[int, typer.Option("--bins", help="Bins of the ECEs (2 to 100000).")]
+BinsOpt = Annotated[int, typer.Option("--bins", help="Bins of the ECEs (2 to 100000).", metavar="N",
+                                      rich_help_panel=FIT_PANEL)]
 MaxModelBytesOpt = Annotated[
     str,
     typer.Option(
@@ -127,6 +186,7 @@ MaxModelBytesOpt = Annotated[
         help="Refuse a model file larger than this, before reading it (with its external data when the "
         "command runs the model): bytes, or a size such as 512MiB or 8GiB.",
         metavar="SIZE",
+        rich_help_panel=MODEL_PANEL,
     ),
 ]
 MAX_MODEL_BYTES = "8GiB"
@@ -138,12 +198,14 @@ AcceptErrorOpt = Annotated[
         help="Add a boolean output 'accept': a row is accepted when its confidence clears a threshold chosen so "
         "that the error among accepted rows is at most EPS with probability --accept-confidence "
         "(docs/decisions.md).",
+        rich_help_panel=DECISIONS_PANEL,
     ),
 ]
 AcceptConfidenceOpt = Annotated[
     float,
     typer.Option("--accept-confidence", metavar="1-DELTA",
-                 help="The probability that the chosen acceptance threshold meets --accept-error."),
+                 help="The probability that the chosen acceptance threshold meets --accept-error.",
+                 rich_help_panel=DECISIONS_PANEL),
 ]
 SetCoverageOpt = Annotated[
     Optional[float],
@@ -152,19 +214,23 @@ SetCoverageOpt = Annotated[
         metavar="1-ALPHA",
         help="Add outputs 'class_set' (N x K booleans) and 'class_set_size': conformal prediction sets that "
         "hold the true class with probability at least 1-ALPHA (marginal, for data like the validation set).",
+        rich_help_panel=DECISIONS_PANEL,
     ),
 ]
 SetScoreOpt = Annotated[
     str,
-    typer.Option("--set-score", help="las (least ambiguous sets) or aps (adaptive prediction sets)."),
+    typer.Option("--set-score", help="las (least ambiguous sets) or aps (adaptive prediction sets).",
+                 metavar="las|aps", rich_help_panel=DECISIONS_PANEL),
 ]
 SetPerClassOpt = Annotated[
-    bool, typer.Option("--set-per-class", help="One set threshold per class (per-class coverage).")
+    bool, typer.Option("--set-per-class", help="One set threshold per class (per-class coverage).",
+                       rich_help_panel=DECISIONS_PANEL)
 ]
 AcceptMethodOpt = Annotated[
     str,
     typer.Option("--accept-method",
-                 help="ltt (Learn then Test) or sgr (selection with guaranteed risk): how the threshold is chosen."),
+                 help="ltt (Learn then Test) or sgr (selection with guaranteed risk): how the threshold is chosen.",
+                 metavar="ltt|sgr", rich_help_panel=DECISIONS_PANEL),
 ]
 DecisionDataOpt = Annotated[
     Optional[Path],
@@ -172,22 +238,27 @@ DecisionDataOpt = Annotated[
         "--decision-data",
         help="Choose the decision thresholds on this labelled set (same form and options as --data) instead of "
         "the held-out rows; needed by patch.",
+        metavar="PATH",
+        rich_help_panel=DECISIONS_PANEL,
     ),
 ]
 VerifyAcceptErrorOpt = Annotated[
     Optional[float],
     typer.Option("--accept-error", metavar="EPS",
-                 help="Gate the error among accepted rows against EPS (default: the record's target)."),
+                 help="Gate the error among accepted rows against EPS (default: the record's target).",
+                 rich_help_panel=CHECKS_PANEL),
 ]
 VerifyAcceptConfidenceOpt = Annotated[
     Optional[float],
     typer.Option("--accept-confidence", metavar="1-DELTA",
-                 help="Level of the gates' intervals (default: the record's --accept-confidence)."),
+                 help="Level of the gates' intervals (default: the record's --accept-confidence).",
+                 rich_help_panel=CHECKS_PANEL),
 ]
 VerifySetCoverageOpt = Annotated[
     Optional[float],
     typer.Option("--set-coverage", metavar="1-ALPHA",
-                 help="Gate the sets' coverage against 1-ALPHA (default: the record's target)."),
+                 help="Gate the sets' coverage against 1-ALPHA (default: the record's target).",
+                 rich_help_panel=CHECKS_PANEL),
 ]
 
 
@@ -196,6 +267,8 @@ def decision_options(
     set_per_class: bool, accept_method: str,
 ) -> DecisionOptions:
     """The decision options of calibrate and patch, as the api takes them."""
+    from ..decisions.plan import DecisionOptions
+
     return DecisionOptions(accept_error, accept_confidence, set_coverage, set_score, set_per_class, accept_method)
 
 
@@ -204,6 +277,7 @@ DropNonfiniteOpt = Annotated[
     typer.Option(
         "--drop-nonfinite",
         help="Leave out the samples whose logits are NaN or Inf (and say how many) instead of refusing them.",
+        rich_help_panel=DATA_PANEL,
     ),
 ]
 
@@ -212,60 +286,67 @@ DropNonfiniteOpt = Annotated[
 # Data, image and runtime options, shared by capture, calibrate and verify
 
 
-def _option(name: str, kind, default, flag: str, help: str, **extra) -> _inspect.Parameter:
+def _option(
+    name: str, kind: Any, default: Any, flag: str, help: str, panel: str, **extra: Any
+) -> _inspect.Parameter:
     extra.setdefault("show_default", default is not None)
-    option = typer.Option(flag, help=help, **extra)
+    option = typer.Option(flag, help=help, rich_help_panel=panel, **extra)
     return _inspect.Parameter(
         name, _inspect.Parameter.KEYWORD_ONLY, default=default, annotation=Annotated[kind, option]
     )
 
 
+_D, _I, _R = DATA_PANEL, IMAGE_PANEL, RUNTIME_PANEL
 _SHARED_OPTIONS = (
     _option("data", Optional[Path], None, "--data",
             "Validation set: .npz (one array per model input, plus 'labels'), .npy (a one-input "
-            "model), .csv table, or a folder of images (one subfolder per class)."),
+            "model), .csv table, or a folder of images (one subfolder per class).", _D, metavar="PATH"),
     _option("inputs", Optional[list[str]], None, "--input",
-            "One .npy per model input (memory-mapped); repeat for each input.", metavar="NAME=FILE.npy"),
+            "One .npy per model input (memory-mapped); repeat for each input.", _D, metavar="NAME=FILE.npy"),
     _option("labels", Optional[Path], None, "--labels",
             "Labels .npy (with --input), or a CSV mapping image files to classes "
-            "(columns 'file' and the label column)."),
-    _option("label_column", Optional[str], None, "--label-column", "Label column of a CSV (default 'label')."),
+            "(columns 'file' and the label column).", _D, metavar="FILE"),
+    _option("label_column", Optional[str], None, "--label-column", "Label column of a CSV (default 'label').",
+            _D, metavar="NAME"),
     _option("feature_columns", Optional[str], None, "--feature-columns",
-            "CSV columns fed to the model, in order (default: all but the label).", metavar="A,B,..."),
+            "CSV columns fed to the model, in order (default: all but the label).", _D, metavar="A,B,..."),
     _option("classes", Optional[Path], None, "--classes",
-            "Class names, one per line, in the model's class order; string labels are mapped through it."),
-    _option("limit", Optional[int], None, "--limit", "Use at most N samples (N >= 1).", metavar="N"),
+            "Class names, one per line, in the model's class order; string labels are mapped through it.", _D,
+            metavar="FILE"),
+    _option("limit", Optional[int], None, "--limit", "Use at most N samples (N >= 1).", _D, metavar="N"),
     _option("shuffle_seed", Optional[int], None, "--shuffle-seed",
-            "Take --limit/--shard samples from a random permutation with this seed (0 to 2^32-1).", metavar="SEED"),
+            "Take --limit/--shard samples from a random permutation with this seed (0 to 2^32-1).", _D,
+            metavar="SEED"),
     _option("shard", Optional[str], None, "--shard",
-            "Capture the I-th of N deterministic slices (1 <= I <= N); 'onnxcal fit' merges the files.",
+            "Capture the I-th of N deterministic slices (1 <= I <= N); 'onnxcal fit' merges the files.", _D,
             metavar="I/N"),
     _option("preprocess", Optional[Path], None, "--preprocess",
-            "Image options below as a TOML or JSON file (options given here win)."),
-    _option("resize", Optional[int], None, "--resize", "Image: resize the shorter side to N pixels (1 to 65535).",
+            "The image options below as a TOML or JSON file (options given here win).", _I, metavar="FILE"),
+    _option("resize", Optional[int], None, "--resize", "Resize the shorter side to N pixels (1 to 65535).", _I,
             metavar="N"),
-    _option("crop", Optional[str], None, "--crop", "Image: centre crop (sides of 1 to 65535 pixels).", metavar="N|HxW"),
+    _option("crop", Optional[str], None, "--crop", "Centre crop (sides of 1 to 65535 pixels).", _I,
+            metavar="N|HxW"),
     _option("scale", Optional[bool], None, "--scale/--no-scale",
-            "Image: divide pixels by 255 (default: yes for float inputs).", show_default=False),
-    _option("mean", Optional[str], None, "--mean", "Image: per-channel mean, subtracted after scaling.",
+            "Divide pixels by 255 (default: yes for float inputs).", _I, show_default=False),
+    _option("mean", Optional[str], None, "--mean", "Per-channel mean, subtracted after scaling.", _I,
             metavar="M[,M,M]"),
-    _option("std", Optional[str], None, "--std", "Image: per-channel std, divided by after the mean.",
+    _option("std", Optional[str], None, "--std", "Per-channel std, divided by after the mean.", _I,
             metavar="S[,S,S]"),
-    _option("channel_order", Optional[str], None, "--channel-order", "Image: RGB (default) or BGR.",
+    _option("channel_order", Optional[str], None, "--channel-order", "Channel order (default RGB).", _I,
             metavar="RGB|BGR"),
-    _option("layout", Optional[str], None, "--layout", "Image: NCHW or NHWC (default: from the model).",
+    _option("layout", Optional[str], None, "--layout", "Layout of the input (default: from the model).", _I,
             metavar="NCHW|NHWC"),
-    _option("dtype", Optional[str], None, "--dtype", "Image: input dtype (default: the model's).", metavar="DTYPE"),
-    _option("interpolation", Optional[str], None, "--interpolation",
-            "Image: resize filter: nearest, bilinear (default), bicubic, lanczos.", metavar="FILTER"),
+    _option("dtype", Optional[str], None, "--dtype", "Input dtype (default: the model's).", _I, metavar="DTYPE"),
+    _option("interpolation", Optional[str], None, "--interpolation", "Resize filter (default bilinear).", _I,
+            metavar=choices(INTERPOLATIONS)),
     _option("batch_size", Optional[int], None, "--batch-size",
             f"Samples per onnxruntime call, 1 to 16777216 (default: {DEFAULT_BATCH}, doubled while onnxcal's own "
-            "work per call costs more than 5 % of the call).", min=1, metavar="N"),
+            "work per call costs more than 5 % of the call).", _R, min=1, metavar="N"),
     _option("threads", int, 0, "--threads",
-            "onnxruntime intra-op threads (0: its default; at most 4 per core, or 64).", min=0),
-    _option("optimization", str, "all", "--optimization",
-            f"Graph optimisation level: {', '.join(OPTIMIZATION_LEVELS)}."),
-    _option("provider", str, CPU, "--provider", "onnxruntime execution provider."),
+            "onnxruntime intra-op threads (0: its default; at most 4 per core, or 64).", _R, min=0, metavar="N"),
+    _option("optimization", str, "all", "--optimization", "Graph optimisation level of onnxruntime.", _R,
+            metavar=choices(OPTIMIZATION_LEVELS)),
+    _option("provider", str, CPU, "--provider", "onnxruntime execution provider.", _R, metavar="NAME"),
 )
 """Data, image and runtime options shared by capture, calibrate and verify."""
 
@@ -275,11 +356,11 @@ _FEEDING_OPTIONS = (
     _option("constants", list[str] | None, None, "--constant",
             "A model input given once and fed with every batch: a number, an .npy array, or 'zeros' "
             "(shaped like the declared input, its batch dim set per batch); e.g. a sample rate or a "
-            "recurrent state. Repeat for each input.", metavar="NAME=VALUE|FILE.npy|zeros"),
+            "recurrent state. Repeat for each input.", _D, metavar="NAME=VALUE|FILE.npy|zeros"),
     _option("batch_axes", list[str] | None, None, "--batch-axis",
             "The axis of an input that holds the samples, when not 0 (e.g. h0=1 for a state shaped "
             "1 x N x H); its array in the data has the samples on that axis. Repeat for each input.",
-            metavar="NAME=AXIS"),
+            _D, metavar="NAME=AXIS"),
 )
 
 
@@ -323,6 +404,8 @@ def _input_files(values: Sequence[str] | None) -> dict[str, str]:
 
 
 def _spec(values: dict) -> DataSpec:
+    from ..data import DataSpec, Selection, parse_shard
+
     columns = values["feature_columns"]
     shard = values.get("shard")
     return DataSpec(
@@ -351,7 +434,9 @@ def data_options(*, shard: bool = False) -> Callable:
     shared = [p for p in (*_SHARED_OPTIONS, *_FEEDING_OPTIONS) if shard or p.name != "shard"]
 
     def decorate(fn: Callable) -> Callable:
-        own_hints = typing.get_type_hints(fn, include_extras=True)
+        # DataSpec is imported only when a command runs (a fast --help); the annotation of
+        # ``data`` is not read, since typer gets the signature below.
+        own_hints = typing.get_type_hints(fn, localns={"DataSpec": object}, include_extras=True)
         own = [
             p.replace(kind=_inspect.Parameter.KEYWORD_ONLY, annotation=own_hints[p.name])
             for p in _inspect.signature(fn).parameters.values()
@@ -360,7 +445,7 @@ def data_options(*, shard: bool = False) -> Callable:
         names = [p.name for p in shared]
 
         @functools.wraps(fn)
-        def command(**kwargs):
+        def command(**kwargs: Any) -> Any:
             values = {name: kwargs.pop(name) for name in names}
             runtime = {k: values[k] for k in _RUNTIME_KEYS}
             return fn(**kwargs, data=_spec(values), runtime=runtime)
@@ -372,3 +457,46 @@ def data_options(*, shard: bool = False) -> Callable:
         return command
 
     return decorate
+
+
+class HelpCommand(TyperCommand):
+    """A command whose ``--help`` lists its options under the headings of :data:`PANELS`.
+
+    The options carry their heading as typer's ``rich_help_panel``; this
+    class prints them as plain sections (no rich boxes), so the help reads
+    the same in a terminal, a pipe and a CI log. Values are shown by their
+    metavar (``N``, ``PATH``, ``a|b|c``), never by a Python type such as
+    ``<int range>`` or ``<list[Path]>``, and arguments by their name only.
+    """
+
+    def _metavars(self, ctx: Any) -> list[Any]:
+        params = self.get_params(ctx)
+        for param in params:  # an option or argument declared without one gets its name in capitals
+            if param.metavar is None and not getattr(param, "is_flag", False) and param.name:
+                param.metavar = param.name.upper()
+        return params
+
+    def collect_usage_pieces(self, ctx: Any) -> list[str]:
+        pieces = [self.options_metavar] if self.options_metavar else []
+        for param in self._metavars(ctx):
+            if param.param_type_name == "argument":
+                name = param.metavar + ("..." if param.nargs != 1 and not param.metavar.endswith("...") else "")
+                pieces.append(name if param.required else f"[{name}]")
+        return pieces
+
+    def format_options(self, ctx: Any, formatter: Any) -> None:  # click's Context and HelpFormatter
+        arguments: list[tuple[str, str]] = []
+        panels: dict[str, list[tuple[str, str]]] = {}
+        for param in self._metavars(ctx):
+            if param.param_type_name == "argument":
+                arguments.append((param.metavar, param.help or ""))
+                continue
+            record = param.get_help_record(ctx)
+            if record is not None:
+                panels.setdefault(getattr(param, "rich_help_panel", None) or PANELS[0], []).append(record)
+        if arguments:
+            with formatter.section("Arguments"):
+                formatter.write_dl(arguments)
+        for name in sorted(panels, key=lambda p: PANELS.index(p) if p in PANELS else len(PANELS)):
+            with formatter.section(name if name == PANELS[0] else f"{name} options"):
+                formatter.write_dl(panels[name])

@@ -5,17 +5,16 @@ before/after table of a fit, the checks of verify, the files of a report.
 from __future__ import annotations
 
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-from rich import box
-from rich.table import Table
+from .console import Column, Grid, say, show_table, warn
 
-from ..choose import TABLE_FIELDS, Choice
-from ..fit import FitSummary
-from ..graph import ModelInfo, TensorSpec
-from ..metrics import METRIC_LABELS
-from ..report import ReportResult, describe_scaling
-from ..verify import VerifyResult, format_figure
-from .console import out, warn
+if TYPE_CHECKING:  # the library is imported when a table is drawn, not with the CLI
+    from ..choose import Choice
+    from ..fit import FitSummary
+    from ..graph import ModelInfo, TensorSpec
+    from ..report import ReportResult
+    from ..verify import VerifyResult
 
 CAUTION = (
     "Calibration holds only for data like the validation set and drifts under "
@@ -33,29 +32,30 @@ def _shape(spec: TensorSpec) -> str:
 def render_info(info: ModelInfo) -> None:
     opsets = ", ".join(f"{d} {v}" for d, v in (info.opsets or {}).items() if d != "ai.onnx")
     opset = f"opset {info.opset}" if info.opset else "no default-domain opset"
-    table = Table(title=f"{info.path}  ({opset}{', ' + opsets if opsets else ''})", title_justify="left")
-    for col in ("", "name", "dtype", "shape"):
-        table.add_column(col)
+    table = Grid(
+        f"{info.path}  ({opset}{', ' + opsets if opsets else ''})",
+        [Column(""), Column("name"), Column("dtype"), Column("shape")],
+    )
     for kind, specs in (("input", info.inputs), ("output", info.outputs)):
         for s in specs:
             table.add_row(kind, s.name, s.dtype, _shape(s))
-    out.print(table)
+    show_table(table)
     site = info.site
     if site is None:
-        out.print(f"class scores: none found ({info.site_problem})", soft_wrap=True)
+        say(f"class scores: none found ({info.site_problem})")
     else:
-        out.print(f"found: {info.reading}", soft_wrap=True)
-        out.print(f"class scores: {_describe_site(site)}", soft_wrap=True)
+        say(f"found: {info.reading}")
+        say(f"class scores: {_describe_site(site)}")
     if info.external_data:
-        out.print(f"external data: {', '.join(info.external_data)}", soft_wrap=True)
-    out.print(f"batch dim: {'fixed' if info.batch_fixed else 'dynamic'}")
+        say(f"external data: {', '.join(info.external_data)}")
+    say(f"batch dim: {'fixed' if info.batch_fixed else 'dynamic'}")
     if info.records:
         for r in info.records:
             what = f"T = {r.temperature:.4f}" if r.temperature is not None else f"{r.method} scaling"
-            out.print(f"calibration record: {what} on output '{r.output}' ({how_patched(r)})", soft_wrap=True)
+            say(f"calibration record: {what} on output '{r.output}' ({how_patched(r)})")
     else:
-        out.print("calibration record: none")
-    out.print(f"sha256: {info.sha256}")
+        say("calibration record: none")
+    say(f"sha256: {info.sha256}")
 
 
 def _describe_site(site) -> str:
@@ -75,7 +75,6 @@ def _describe_site(site) -> str:
     )
 
 
-_METRIC_ROWS = tuple(METRIC_LABELS.items())
 _CHOICE_LABELS = {"nll": "NLL", "ece": "ECE", "brier": "Brier", "accuracy": "accuracy"}
 
 
@@ -84,6 +83,8 @@ def _interval(pair) -> str:
 
 
 def _describe_scaling(summary: FitSummary) -> str:
+    from ..report import describe_scaling
+
     return describe_scaling(summary.scaling, summary.intervals)
 
 
@@ -96,35 +97,36 @@ def _figures_on(summary: FitSummary) -> str:
     return f"{n} held-out samples" if held else f"{n} samples, in-sample"
 
 
+def describe_fit(summary: FitSummary) -> str:
+    """The fit's result line: the map and its parameters (with their interval)."""
+    return _describe_scaling(summary)
+
+
 def render_fit(summary: FitSummary) -> None:
+    from ..metrics import METRIC_LABELS
+
     b, a = summary.before, summary.after
     where = _figures_on(summary)
-    table = Table(
-        title=f"{_describe_scaling(summary)}\nbefore/after on {where}",
-        title_justify="left",
-        box=box.SIMPLE_HEAD,
-    )
-    table.add_column("metric", no_wrap=True)
-    table.add_column("before", justify="right", no_wrap=True)
-    table.add_column("after", justify="right", no_wrap=True)
     intervals = (summary.intervals or {}).get("after")
+    columns = [Column("metric"), Column("before", right=True), Column("after", right=True)]
     if intervals is not None:
-        table.add_column("after:\n95% interval", justify="right", no_wrap=True)
+        columns.append(Column("after:\n95% interval", right=True))
     if summary.fit_part is not None:
-        table.add_column("fit part\nbefore", justify="right", no_wrap=True)
-        table.add_column("fit part\nafter", justify="right", no_wrap=True)
-    for key, label in _METRIC_ROWS:
+        columns += [Column("fit part\nbefore", right=True), Column("fit part\nafter", right=True)]
+    say(_describe_scaling(summary))
+    table = Grid(f"before/after on {where}", columns, boxed=False)
+    for key, label in METRIC_LABELS.items():
         row = [label.format(bins=b.n_bins), f"{getattr(b, key):.4f}", f"{getattr(a, key):.4f}"]
         if intervals is not None:
             row.append(_interval(intervals.get(key)))
         if summary.fit_part is not None:
             row += [f"{getattr(summary.fit_part[k], key):.4f}" for k in ("before", "after")]
         table.add_row(*row)
-    out.print(table)
+    show_table(table)
     if summary.choice is not None:
         render_choice(summary.choice)
     for note in summary.notes:
-        out.print(f"note: {note}", soft_wrap=True)
+        say(f"note: {note}")
     warn(summary.warnings)
 
 
@@ -134,26 +136,26 @@ def _short(x: float) -> str:
 
 
 def _with_interval(value: float, pair: list[float] | None) -> str:
-    return f"{value:.4f}" if pair is None else f"{value:.4f}\n{_short(pair[0])}-{_short(pair[1])}"
+    return f"{value:.4f}" if pair is None else f"{value:.4f} ({_short(pair[0])}-{_short(pair[1])})"
 
 
 def render_choice(choice: Choice) -> None:
-    """The comparison table of ``--method auto`` (each figure over its 95% interval) and the choice."""
+    """The comparison table of ``--method auto`` (each figure with its 95% interval) and the choice."""
+    from ..choose import TABLE_FIELDS
+
     where = "held-out" if choice.basis == "held-out" else "in-sample"
-    table = Table(title=f"--method auto: every applicable method, {where} figures (below: 95% bootstrap interval)",
-                  title_justify="left", box=box.SIMPLE_HEAD, padding=(0, 1))
-    table.add_column("method", no_wrap=True)
-    table.add_column("params", justify="right", no_wrap=True)
-    for f in TABLE_FIELDS:
-        table.add_column(_CHOICE_LABELS[f], justify="right", no_wrap=True, min_width=9)
+    columns = [Column("method"), Column("params", right=True)]
+    columns += [Column(_CHOICE_LABELS[f], right=True) for f in TABLE_FIELDS]
+    table = Grid(f"--method auto: every applicable method, {where} figures (in brackets: 95% bootstrap interval)",
+                 columns, boxed=False)
     for c in choice.candidates:
         marks = ["chosen"] if c.method == choice.chosen else []
         marks += ["lowest NLL"] if c.method == choice.best else []
         marks += ["not converged"] if not c.converged else []
-        name = c.method + (f"\n({', '.join(marks)})" if marks else "")
+        name = c.method + (f" ({', '.join(marks)})" if marks else "")
         table.add_row(name, str(c.n_parameters), *(_with_interval(c.metrics[f], c.intervals.get(f)) for f in TABLE_FIELDS))
-    out.print(table)
-    out.print(f"chosen: {choice.chosen}: {choice.reason}", soft_wrap=True)
+    show_table(table)
+    say(f"chosen: {choice.chosen}: {choice.reason}")
 
 
 _REFERENCE_FROM = {
@@ -166,41 +168,51 @@ _REFERENCE_FROM = {
 def render_decisions(lines: list[str]) -> None:
     """The decision thresholds chosen, what they do on the rows they come from, and where those are."""
     for line in lines:
-        out.print(line, soft_wrap=True)
+        say(line)
 
 
 def render_verify(result: VerifyResult) -> None:
+    from ..verify import format_figure
+
     if result.reference_from in _REFERENCE_FROM:
         where = f" ({result.original})" if result.original else ""
         title = f"verify: reference from {_REFERENCE_FROM[result.reference_from]}{where}, {result.n} samples"
     else:
         title = f"verify: no reference (no calibration record), {result.n} samples"
-    table = Table(title=title, title_justify="left")
-    for col in ("check", "result", "value", "limit", "what"):
-        table.add_column(col)
+    table = Grid(title, [Column("check"), Column("result"), Column("value", right=True),
+                         Column("limit", right=True), Column("what", prose=True)])
     for c in result.checks:
         status = {"pass": "pass", "fail": "FAIL", "skip": "skipped", "undecided": "undecided"}[c.status]
         table.add_row(c.name, status, format_figure(c.value), format_figure(c.limit), c.detail)
-    out.print(table)
+    show_table(table)
     for note in result.notes:
-        out.print(f"note: {note}", soft_wrap=True)
+        say(f"note: {note}")
     undecided = [c.name for c in result.checks if c.status == "undecided"]
     for name in undecided:  # not a failure: the data cannot tell either way
-        out.print(f"undecided: {name}: the interval straddles the target; more labelled rows would tell",
-                  soft_wrap=True)
+        say(f"undecided: {name}: the interval straddles the target; more labelled rows would tell")
+    if not result.passed:
+        for c in result.failed:  # each failure as a full sentence
+            say(f"failed: {c.name}: {c.detail}")
+
+
+def verdict_line(result: VerifyResult) -> str:
+    """verify's verdict, the line ``--quiet`` keeps."""
     if result.passed:
-        out.print("verify: all checks passed" + (f" ({len(undecided)} undecided)" if undecided else ""))
-    else:
-        for c in result.failed:  # each failure as a full sentence, unwrapped
-            out.print(f"failed: {c.name}: {c.detail}", soft_wrap=True)
-        out.print(f"verify: FAILED ({', '.join(c.name for c in result.failed)})")
+        undecided = sum(c.status == "undecided" for c in result.checks)
+        return "verify: all checks passed" + (f" ({undecided} undecided)" if undecided else "")
+    return f"verify: FAILED ({', '.join(c.name for c in result.failed)})"
 
 
 def render_report(result: ReportResult, verdict: bool = True) -> None:
     for line in result.content["verdict"] if verdict else ():
-        out.print(f"  {line}", soft_wrap=True)
-    out.print(f"wrote {len(result.files)} report files to {result.directory}: "
-              + ", ".join(Path(f).name for f in result.files), soft_wrap=True)
+        say(f"  {line}", indent=4)
+
+
+def report_line(result: ReportResult) -> str:
+    """The line that says what a report wrote."""
+    n = len(result.files)
+    return (f"wrote {n} report file{'' if n == 1 else 's'} to {result.directory}: "
+            + ", ".join(Path(f).name for f in result.files))
 
 
 _NODES = {"temperature": "Div", "vector": "Mul + Add", "platt": "Mul + Add", "matrix": "MatMul + Add",

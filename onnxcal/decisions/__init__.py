@@ -27,7 +27,15 @@ guarantees hold only for data exchangeable with those rows: data like the
 validation set, not data after a shift. docs/decisions.md has the maths.
 """
 
-from .binomial import Proportion, Verdict, clopper_pearson, proportion, tail_pvalue, upper_bound, verdict
+from .binomial import (
+    Proportion,
+    Verdict,
+    clopper_pearson,
+    proportion,
+    tail_pvalue,
+    upper_bound,
+    verdict,
+)
 from .conformal import (
     SetThreshold,
     choose_set_threshold,

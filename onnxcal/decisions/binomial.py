@@ -28,7 +28,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import special
 
 LEVEL = 0.95
 OUTCOMES = ("pass", "fail", "undecided")
@@ -69,6 +68,9 @@ def clopper_pearson(
     >>> float(low), round(float(high), 4)
     (0.0, 0.3085)
     """
+    from scipy import (
+        special,  # here, not at import: scipy takes ~0.5 s and inspect needs none
+    )
     k = np.asarray(successes, dtype=np.float64)
     n = np.asarray(trials, dtype=np.float64)
     tail = (1.0 - level) / 2.0
@@ -92,6 +94,9 @@ def upper_bound(errors: np.ndarray | int, trials: np.ndarray | int, delta: float
     >>> round(float(upper_bound(0, 29, 0.05)), 4)   # 1 - 0.05 ** (1 / 29)
     0.0981
     """
+    from scipy import (
+        special,  # here, not at import: scipy takes ~0.5 s and inspect needs none
+    )
     k = np.asarray(errors, dtype=np.float64)
     n = np.asarray(trials, dtype=np.float64)
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -114,6 +119,9 @@ def tail_pvalue(errors: np.ndarray | int, trials: np.ndarray | int, target: floa
     >>> round(float(tail_pvalue(0, 29, 0.1)), 4)    # 0.9 ** 29
     0.0471
     """
+    from scipy import (
+        special,  # here, not at import: scipy takes ~0.5 s and inspect needs none
+    )
     k = np.asarray(errors, dtype=np.int64)
     n = np.asarray(trials, dtype=np.int64)
     return np.asarray(np.where(n > 0, special.bdtr(k, n, target), 1.0), dtype=np.float64)

@@ -58,7 +58,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import special
 
 from ..errors import OnnxcalError
 from ._inputs import check_fraction, compute_dtype, predictions, two_classes
@@ -144,6 +143,9 @@ def conditional_coverage_floor(n: int, alpha: float, confidence: float = 0.95) -
     >>> round(conditional_coverage_floor(999, 0.1, 0.95), 4)   # Beta(900, 100): mean 0.9, sd 0.0095
     0.884
     """
+    from scipy import (
+        special,  # here, not at import: scipy takes ~0.5 s and inspect needs none
+    )
     k = conformal_rank(n, alpha)
     if k > n:
         return 1.0

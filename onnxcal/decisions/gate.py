@@ -32,7 +32,13 @@ import numpy as np
 from ..verify import Check
 from ._inputs import compute_dtype
 from .binomial import LEVEL, Verdict, verdict
-from .conformal import SetThreshold, _mass_before, class_set, class_set_size, conditional_coverage_floor
+from .conformal import (
+    SetThreshold,
+    _mass_before,
+    class_set,
+    class_set_size,
+    conditional_coverage_floor,
+)
 from .selective import accept
 
 Outputs = dict[str, np.ndarray]

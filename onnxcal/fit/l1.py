@@ -24,7 +24,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-import scipy.optimize
 
 from .. import resample
 from ..errors import OnnxcalError
@@ -110,6 +109,8 @@ def _minimum(f: _Objective, a: float, ga: float, b: float, gb: float, low_end: b
              ) -> tuple[float, bool]:
     """The minimum in [a, b] (u, converged): a bound when the NLL rises from it (falls to it), else
     the root of the slope (``scipy.optimize.brentq``), else Brent's bounded method on the NLL."""
+    import scipy.optimize  # here, not at import: scipy takes ~0.5 s to import and inspect needs none
+
     if low_end and ga >= 0:
         return a, True
     if high_end and gb <= 0:

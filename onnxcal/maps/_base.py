@@ -23,7 +23,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import onnx
-import scipy.special
 from onnx import helper, numpy_helper
 
 from ..errors import OnnxcalError
@@ -92,16 +91,19 @@ B_MAX = 100.0
 
 def softmax(z: np.ndarray, axis: int = -1) -> np.ndarray:
     """Softmax along ``axis`` in float64 (scipy.special.softmax, which subtracts the maximum)."""
+    import scipy.special  # here, not at import: scipy takes ~0.5 s and inspect needs none
     return np.asarray(scipy.special.softmax(np.asarray(z, dtype=np.float64), axis=axis))
 
 
 def log_softmax(z: np.ndarray, axis: int = -1) -> np.ndarray:
     """Log-softmax along ``axis`` in float64 (scipy.special.log_softmax)."""
+    import scipy.special  # here, not at import: scipy takes ~0.5 s and inspect needs none
     return np.asarray(scipy.special.log_softmax(np.asarray(z, dtype=np.float64), axis=axis))
 
 
 def sigmoid(z: np.ndarray) -> np.ndarray:
     """The logistic function in float64, without overflow (scipy.special.expit)."""
+    import scipy.special  # here, not at import: scipy takes ~0.5 s and inspect needs none
     return np.asarray(scipy.special.expit(np.asarray(z, dtype=np.float64)))
 
 

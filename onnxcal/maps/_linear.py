@@ -28,12 +28,21 @@ import time
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.optimize
 
 from ..errors import OnnxcalError
 from ._base import (
-    CHUNK_ELEMENTS, GraphBuilder, MapFit, Subgraph, check_kind, chunks, field_array, log_softmax, plain, require_fields,
-    softmax, total_weight,
+    CHUNK_ELEMENTS,
+    GraphBuilder,
+    MapFit,
+    Subgraph,
+    check_kind,
+    chunks,
+    field_array,
+    log_softmax,
+    plain,
+    require_fields,
+    softmax,
+    total_weight,
 )
 
 KINDS = ("multiclass",)
@@ -153,6 +162,7 @@ def fit(
     start: dict | None = None,
     max_passes: int = MAX_PASSES,
 ) -> MapFit:
+    import scipy.optimize  # here, not at import: scipy takes ~0.5 s and inspect needs none
     k = scores.shape[1]
     penalty = Penalty(float(l2), float(l2 if l2_intercept is None else l2_intercept))
     # A change of variables, not of the objective: the solver works on

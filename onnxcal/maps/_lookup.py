@@ -34,7 +34,17 @@ from collections.abc import Callable, Iterator
 import numpy as np
 
 from ..errors import OnnxcalError
-from ._base import GraphBuilder, Subgraph, check_kind, chunks, field_array, plain, require_fields, sigmoid, softmax
+from ._base import (
+    GraphBuilder,
+    Subgraph,
+    check_kind,
+    chunks,
+    field_array,
+    plain,
+    require_fields,
+    sigmoid,
+    softmax,
+)
 
 KINDS = ("multiclass", "binary")
 PAD = 2.0  # knot/edge padding: above every probability

@@ -30,11 +30,19 @@ Mul, Add, Sigmoid; opset >= 13.
 from __future__ import annotations
 
 import numpy as np
-import scipy.optimize
 
 from ..errors import OnnxcalError
 from ._base import (
-    GraphBuilder, MapFit, Subgraph, binary_targets, check_kind, chunks, field_array, require_fields, sigmoid, total_weight,
+    GraphBuilder,
+    MapFit,
+    Subgraph,
+    binary_targets,
+    check_kind,
+    chunks,
+    field_array,
+    require_fields,
+    sigmoid,
+    total_weight,
 )
 
 METHOD = "beta"
@@ -156,6 +164,7 @@ def fit(
     ----------
     Kull, Silva Filho, Flach, AISTATS 2017, sec. 3.
     """
+    import scipy.optimize  # here, not at import: scipy takes ~0.5 s and inspect needs none
     evals = 0
     centre = np.array([1.0, 1.0, 0.0])
 

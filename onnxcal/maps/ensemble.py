@@ -34,11 +34,20 @@ Graph: Div, Softmax, Softmax, Mul, Mul, Add, Add; opset >= 13; no fold.
 from __future__ import annotations
 
 import numpy as np
-import scipy.optimize
 
 from ..errors import OnnxcalError
 from ._base import (
-    T_MAX, T_MIN, GraphBuilder, MapFit, Subgraph, check_kind, chunks, field_array, log_softmax, plain, require_fields,
+    T_MAX,
+    T_MIN,
+    GraphBuilder,
+    MapFit,
+    Subgraph,
+    check_kind,
+    chunks,
+    field_array,
+    log_softmax,
+    plain,
+    require_fields,
     softmax,
 )
 
@@ -106,6 +115,7 @@ def components(
 
 def simplex_weights(a: np.ndarray, w: np.ndarray | None) -> tuple[np.ndarray, bool]:
     """argmin over the simplex of -sum_i w_i log(a_i . v) (convex), and whether it converged."""
+    import scipy.optimize  # here, not at import: scipy takes ~0.5 s and inspect needs none
     total = float(len(a) if w is None else w.sum())
     wt = np.ones(len(a)) if w is None else w
     tiny = np.finfo(np.float64).tiny
@@ -150,6 +160,7 @@ def fit_temperature(
     passes its own solver's T instead (``temperature=``); this one keeps
     the module usable on its own. Returns (T, passes, on a bound).
     """
+    import scipy.optimize  # here, not at import: scipy takes ~0.5 s and inspect needs none
     res = scipy.optimize.minimize_scalar(
         lambda u: _nll(scores, labels, rows, weights, float(np.exp(u))),
         bounds=(np.log(T_MIN), np.log(T_MAX)), method="bounded", options={"xatol": 1e-9},

@@ -36,7 +36,6 @@ class (one list for a one-logit model). Graph: see :mod:`onnxcal.maps._lookup`.
 from __future__ import annotations
 
 import numpy as np
-import scipy.optimize
 
 from ..errors import OnnxcalError
 from . import _lookup
@@ -68,6 +67,7 @@ def knots(p: np.ndarray, t: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.n
     >>> x.tolist(), y.tolist()
     ([0.1, 0.2, 0.3, 0.4], [0.0, 0.5, 0.5, 1.0])
     """
+    import scipy.optimize  # here, not at import: scipy takes ~0.5 s and inspect needs none
     order = np.argsort(p, kind="stable")
     p, t, w = p[order], t[order], w[order]
     # Ties: values closer than float64's resolution (1e-15) to the previous

@@ -45,12 +45,22 @@ diag(a) A and a * c + b; the Sigmoid and the renormalisation stay.
 from __future__ import annotations
 
 import numpy as np
-import scipy.optimize
 
 from ..errors import OnnxcalError
 from . import _lookup
 from ._base import (
-    B_MAX, T_MAX, T_MIN, GraphBuilder, MapFit, Subgraph, check_kind, chunks, field_array, plain, require_fields, sigmoid,
+    B_MAX,
+    T_MAX,
+    T_MIN,
+    GraphBuilder,
+    MapFit,
+    Subgraph,
+    check_kind,
+    chunks,
+    field_array,
+    plain,
+    require_fields,
+    sigmoid,
     total_weight,
 )
 
@@ -146,6 +156,7 @@ def fit(
     ----------
     Platt 1999; Zadrozny & Elkan, KDD 2002, sec. 5.
     """
+    import scipy.optimize  # here, not at import: scipy takes ~0.5 s and inspect needs none
     k = scores.shape[1]
     evals = 0
     idx = np.arange(len(scores)) if rows is None else rows

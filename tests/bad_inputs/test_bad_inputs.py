@@ -319,7 +319,7 @@ def test_the_fixes_the_errors_suggest_work(corpus, run_cli, monkeypatch):
     before = snapshot(corpus)
     r = run_cli("fit", "nonfinite_cap.npz", "--drop-nonfinite", "--bootstrap", "0")
     assert r.code == 0 and "note: dropped 4 rows: the logits in 'nonfinite_cap.npz' contain NaN or Inf" in r.out
-    r = run_cli("verify", "patched3.onnx", "--data", "nonfinite.npz", "--max-ece", "0.5", "--drop-nonfinite", "-q")
+    r = run_cli("verify", "patched3.onnx", "--data", "nonfinite.npz", "--max-ece", "0.5", "--drop-nonfinite")
     assert r.code == 0 and "note: dropped 4 rows" in r.out and "all checks passed" in r.out
     assert run_cli("inspect", "model.onnx", "--max-model-bytes", "1KiB").code == 0
     assert run_cli("capture", "huge_input.onnx", *NPZ, "--out", "c.npz", "--batch-size", "1").code == 2  # still 16 TiB

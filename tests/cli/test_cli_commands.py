@@ -15,7 +15,7 @@ from onnxcal import graph
 
 def test_demo_end_to_end(tmp_path, run_cli):
     out = tmp_path / "calibrated.onnx"
-    r = run_cli("calibrate", DEMO_MODEL, "--data", DEMO_VAL, "--out", out, "--quiet")
+    r = run_cli("calibrate", DEMO_MODEL, "--data", DEMO_VAL, "--out", out)
     assert r.code == 0, r.err
     assert "ECE (15 bins)" in r.out and "all checks passed" in r.out
     assert "validation set" in r.out  # the caution is printed

@@ -164,7 +164,7 @@ def test_verify_without_original_or_scores_uses_the_patched_graph(gate, tmp_path
 
     suite = ET.parse(tmp_path / "j.xml").getroot().find("testsuite")
     assert suite.get("skipped") == "1" and [c.get("name") for c in suite.iter("testcase") if c.find("skipped") is not None] == ["source"]
-    r = run_cli("verify", gate / "orphan.onnx", "--data", DEMO_TEST, "-q")
+    r = run_cli("verify", gate / "orphan.onnx", "--data", DEMO_TEST)  # the table and notes (not -q)
     assert "patched graph's own logits" in r.out
     # A wrong T inside the orphan is still caught by the recomputed reference.
     model = onnx.load(str(gate / "orphan.onnx"))

@@ -1,0 +1,163 @@
+"""What the commands print (onnxcal/cli/console.py, render.py, commands.py): tables that never cut
+a figure or a name, prose wrapped at word boundaries on a terminal, --quiet, the caution once, the
+help, the grammar of the lines.
+
+A terminal is simulated with rich's TTY_COMPATIBLE=1 and its width with COLUMNS (rich reads both
+when the console is made, once per run); without them the output is a pipe's.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import re
+from pathlib import Path
+
+import pytest
+from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL
+
+from onnxcal.cli import console
+from onnxcal.cli.app import COMMANDS
+
+ANSI = re.compile(r"\x1b\[[0-9;?]*[A-Za-z]")
+FIGURE = re.compile(r"-?\d+\.\d{3,}")
+
+
+@pytest.fixture(scope="module")
+def capture_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    from onnxcal import api
+
+    path = tmp_path_factory.mktemp("out") / "cap.npz"
+    api.capture(DEMO_MODEL, DEMO_VAL, out=path)
+    return path
+
+
+def _terminal(monkeypatch: pytest.MonkeyPatch, columns: int) -> None:
+    monkeypatch.setenv("TTY_COMPATIBLE", "1")
+    monkeypatch.setenv("COLUMNS", str(columns))
+    monkeypatch.setenv("NO_COLOR", "1")
+
+
+def test_piped_tables_are_plain_full_width_and_never_cut(capture_file, run_cli, monkeypatch):
+    monkeypatch.setenv("COLUMNS", "40")  # a pipe ignores the width
+    r = run_cli("fit", capture_file, "--bootstrap", "20")
+    assert r.code == 0, r.err
+    assert "…" not in r.out and all(line == line.rstrip() for line in r.out.splitlines())
+    header = next(line for line in r.out.splitlines() if line.startswith("metric"))
+    assert "after: 95% interval" in header and "fit part before" in header and "fit part after" in header
+    summary = json.loads(run_cli("fit", capture_file, "--bootstrap", "20", "--json").out)
+    nll = next(line for line in r.out.splitlines() if line.startswith("NLL "))
+    before, after = summary["metrics"]["before"]["nll"], summary["metrics"]["after"]["nll"]
+    assert nll.split()[1:3] == [f"{before:.4f}", f"{after:.4f}"]  # whole figures, in their columns
+    r = run_cli("inspect", DEMO_MODEL)
+    assert re.search(r"^input +band_energies +float32 +\[batch, 16\]$", r.out, re.M), r.out
+    # a long path stays on one line, untruncated
+    assert f"{DEMO_MODEL}  (opset" in r.out
+
+
+def test_narrow_terminal_stacks_the_table_with_every_figure_whole(capture_file, run_cli, monkeypatch):
+    piped = run_cli("fit", capture_file, "--bootstrap", "20")
+    _terminal(monkeypatch, 44)
+    r = run_cli("fit", capture_file, "--bootstrap", "20")
+    assert r.code == 0, r.err
+    text = ANSI.sub("", r.out)
+    assert "…" not in text
+    assert max(len(line) for line in text.splitlines()) <= 44
+    assert sorted(FIGURE.findall(piped.out)) == sorted(FIGURE.findall(text))
+    assert "  fit part after: " in text  # the stacked layout names each cell
+
+
+def test_wide_terminal_draws_a_table_and_names_stay_whole(run_cli, monkeypatch):
+    _terminal(monkeypatch, 120)
+    text = ANSI.sub("", run_cli("inspect", DEMO_MODEL).out)
+    assert re.search(r"│ input +│ band_energies +│ float32 +│ \[batch, 16\] +│", text), text
+    _terminal(monkeypatch, 30)
+    text = ANSI.sub("", run_cli("inspect", DEMO_MODEL).out)
+    assert "band_energies" in text and "[batch, 16]" in text and "…" not in text
+
+
+def test_prose_wraps_at_word_boundaries_on_a_terminal_and_keeps_paths_whole() -> None:
+    from rich.console import Console
+
+    buffer = io.StringIO()
+    console.out._console = Console(file=buffer, width=30, force_terminal=True, color_system=None)
+    path = "/a/very/long/path/that/is/wider/than/the/terminal.onnx"
+    text = f"note: the reference is recomputed from {path} and checked, row by row"
+    try:
+        console.say(text)
+    finally:
+        console.reset()
+    lines = buffer.getvalue().splitlines()
+    assert len(lines) > 2 and "  " + path in lines  # the path alone on its line, not broken
+    assert all(len(line) <= 30 for line in lines if path not in line)
+    assert " ".join(" ".join(lines).split()) == text  # no word split, nothing lost
+    assert all(line.startswith("  ") for line in lines[1:])  # following lines indented
+
+
+def test_quiet_prints_the_result_line_and_the_verdict(tmp_path, run_cli):
+    out = tmp_path / "c.onnx"
+    r = run_cli("calibrate", DEMO_MODEL, "--data", DEMO_VAL, "--out", out, "-q", "--bootstrap", "10")
+    assert r.code == 0, r.err
+    (line,) = r.out.splitlines()  # one line: the fitted map and what was written
+    assert line.startswith("temperature scaling, softmax(z / T): T = ")
+    assert line.endswith(f"; wrote {out} (calibrated output 'probabilities')")
+    assert r.err == ""
+    r = run_cli("verify", out, "--data", DEMO_TEST, "-q")
+    assert r.code == 0 and r.out == "verify: all checks passed\n" and r.err == ""
+    r = run_cli("fit", tmp_path / "missing.npz", "-q")
+    assert r.code == 2 and r.out == ""
+    cap = tmp_path / "cap.npz"
+    r = run_cli("capture", DEMO_MODEL, "--data", DEMO_VAL, "--out", cap, "-q")
+    assert r.out.splitlines() == [f"captured 2000 x 5 logits from 'logits' -> {cap}"] and r.err == ""
+    r = run_cli("fit", cap, "-q", "--bootstrap", "10")
+    assert len(r.out.splitlines()) == 1 and r.out.startswith("temperature scaling") and r.err == ""
+    r = run_cli("report", cap, "--out", tmp_path / "rep", "--temperature", "2", "--format", "json", "-q")
+    assert r.out == f"wrote 1 report file to {tmp_path / 'rep'}: report.json\n"  # and its grammar
+
+
+def test_the_caution_is_printed_once_where_probabilities_are_produced_or_judged(tmp_path, run_cli):
+    caution = "Calibration holds only for data like the validation set"
+    out, cap = tmp_path / "c.onnx", tmp_path / "cap.npz"
+    r = run_cli("calibrate", DEMO_MODEL, "--data", DEMO_VAL, "--out", out, "--bootstrap", "10",
+                "--report", tmp_path / "rep")
+    assert r.out.count(caution) == 1
+    assert run_cli("verify", out, "--data", DEMO_TEST).out.count(caution) == 1
+    assert run_cli("capture", DEMO_MODEL, "--data", DEMO_VAL, "--out", cap).out.count(caution) == 0
+    assert run_cli("fit", cap, "--bootstrap", "10").out.count(caution) == 1
+    assert run_cli("report", cap, "--out", tmp_path / "r2", "--temperature", "2").out.count(caution) == 1
+    assert run_cli("patch", DEMO_MODEL, "--temperature", "2", "--out", tmp_path / "p.onnx").out.count(caution) == 0
+    assert run_cli("inspect", out).out.count(caution) == 0
+
+
+@pytest.mark.parametrize("command", ["", *COMMANDS])
+def test_help_shows_forms_and_choices_not_python_types(run_cli, monkeypatch, command):
+    monkeypatch.setenv("COLUMNS", "200")
+    r = run_cli(*([command] if command else []), "--help")
+    assert r.code == 0, r.err
+    assert not re.search(r"<[a-z]|[{}]|\blist\[|int range", r.out), r.out
+    assert not re.search(r"--[a-z-]+ [A-Z_]{3,}_[A-Z]", r.out), r.out  # OUT_PATH and the like
+    if command in ("capture", "verify", "calibrate"):
+        for heading in ("Data options:", "Image preprocessing options:", "Runtime options:", "Output options:"):
+            assert heading in r.out, heading
+        assert "--optimization disable|basic|extended|all" in r.out
+        assert "--interpolation nearest|bilinear|bicubic|lanczos" in r.out
+    if command in ("fit", "calibrate"):
+        assert "--method temperature|vector|platt" in r.out and "--multilabel shared|per-label" in r.out
+
+
+def test_command_summaries_are_whole_and_debug_goes_anywhere(run_cli, monkeypatch):
+    monkeypatch.setenv("COLUMNS", "200")
+    r = run_cli("--help")
+    flat = " ".join(r.out.split())
+    assert "verify Check a patched model, e.g. for a CI gate; each check is reported with its figure." in flat
+    assert "inspect Show a model's inputs, outputs, opset, class-score output and calibration record." in flat
+    assert "..." not in r.out.split("Commands:")[1]  # no summary cut short
+    assert "--debug Show the traceback behind an error (may go anywhere on the line)." in flat
+    r = run_cli("verify", "--help", "--debug")  # accepted after the command too
+    assert r.code == 0
+
+
+def test_did_you_mean_reads_as_a_sentence(run_cli):
+    r = run_cli("calibrat")
+    assert r.code == 2
+    assert r.err.strip() == "onnxcal: error: No such command 'calibrat'. Did you mean 'calibrate'? See 'onnxcal --help'"
