@@ -24,7 +24,8 @@ import stat
 import sys
 import time
 import warnings
-from collections.abc import Callable, Iterator, Set as AbstractSet
+from collections.abc import Callable, Iterator
+from collections.abc import Set as AbstractSet
 from pathlib import Path
 
 from . import _signals

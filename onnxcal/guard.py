@@ -123,8 +123,8 @@ def agrees(stats: RowStats, holds: str, kind: str) -> str | None:
                   "log-probabilities": "log-probabilities"}[holds]
     if stats.share(field_name) < STATED_SHARE:
         got = getattr(stats, field_name.replace("-", "_"))
-        return (f"only {got} of {stats.rows} rows ({_percent(stats.share(field_name))}) are "
-                f"{'probability vectors' if field_name == 'probabilities' else 'in [0, 1]' if field_name == 'unit' else 'log-probability vectors'}")
+        what = {"probabilities": "probability vectors", "unit": "in [0, 1]"}.get(field_name, "log-probability vectors")
+        return f"only {got} of {stats.rows} rows ({_percent(stats.share(field_name))}) are {what}"
     return None
 
 

@@ -148,7 +148,8 @@ def capture_check(site: ScoreSite, kind: str):
                 f"{_guard.describe(stats)}",
                 "say what it holds with --output-holds",
             )
-        if site.spelling == "data" and site.logits_from == "log" and stats.share("log-probabilities") < _guard.AUTO_SHARE:
+        if (site.spelling == "data" and site.logits_from == "log"
+                and stats.share("log-probabilities") < _guard.AUTO_SHARE):
             raise OnnxcalError(
                 f"output '{site.output}' was read as probabilities from its first rows, but over the whole set only "
                 f"{stats.log_probabilities} of {stats.rows} rows are probability vectors",
@@ -275,7 +276,7 @@ def identity(
     want = run_model(original, dataset, names, options=run, progress=progress, description="running the original")
     got = run_model(at_one, dataset, names, options=run, progress=progress, description="running at the identity")
     tols = _tolerances(patched, original, records, names)
-    check = identity_check([(n, w, g, tols[n]) for n, w, g in zip(names, want, got)], _params(records))
+    check = identity_check([(n, w, g, tols[n]) for n, w, g in zip(names, want, got, strict=True)], _params(records))
     others = [f"'{o.name}'" for o in kept if o.name not in names]
     if others:  # a recurrent state (1 x N x H), a single number: batches do not stack on axis 0
         check = replace(check, detail=f"{check.detail}; not compared: {', '.join(others)} (samples not on axis 0)")

@@ -18,7 +18,7 @@ import time
 import xml.etree.ElementTree as ET
 from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 
 import numpy as np
 
@@ -255,7 +255,8 @@ class Comparison:
             if self.summable:
                 checks.append(Check("row-sums", self.sums <= tol, self.sums, tol, "max |sum_k p_k - 1| over rows"))
             else:
-                checks.append(skipped("row-sums", f"the output is post-processed ({then[7:]}), its rows need not sum to 1"))
+                checks.append(skipped("row-sums",
+                                      f"the output is post-processed ({then[7:]}), its rows need not sum to 1"))
             agree = self.agree / self.rows if self.rows else 1.0
             what = "unchanged" if self.scaling.method == "temperature" else "as in the reference"
             detail = f"fraction of rows whose argmax is {what} (up to rounding ties)"
@@ -575,7 +576,7 @@ def junit_xml(result: VerifyResult, *, suite: str, elapsed: float = 0.0) -> byte
         "time": f"{elapsed:.3f}",
     }
     root = ET.Element("testsuites", {"name": "onnxcal verify", **counts})
-    stamp = datetime.now(timezone.utc).replace(microsecond=0).isoformat()
+    stamp = datetime.now(UTC).replace(microsecond=0).isoformat()
     ts = ET.SubElement(root, "testsuite", {"name": suite, **counts, "timestamp": stamp})
     props = ET.SubElement(ts, "properties")
     for key, value in (("samples", result.n), ("reference_from", result.reference_from), ("original", result.original)):

@@ -32,9 +32,9 @@ from pathlib import Path
 import numpy as np
 import onnx
 import pytest
+from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, FIXTURES, files_in
 from onnx import TensorProto, helper, numpy_helper
 
-from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, FIXTURES, files_in
 from onnxcal import _files, api
 from onnxcal.capture import load_capture
 

@@ -251,7 +251,8 @@ def do_patch(model, t=T, **kw):
 def test_the_finder_reads_each_spelling(name):
     case = CASES[name]()
     site = graph.find_scores(case.model)
-    assert (site.output, site.scores, site.spelling, site.holds) == (case.output, case.logits, case.spelling, case.holds)
+    assert (site.output, site.scores, site.spelling, site.holds) == (case.output, case.logits, case.spelling,
+                                                                     case.holds)
     assert site.scores_axis == 1 and site.num_classes == K
     assert [type(p) for p in site.post] == list(case.post_kinds)
     assert site.output in graph.describe_site(site)
@@ -263,7 +264,8 @@ def test_each_spelling_is_patched_drop_in_and_matches_scipy(name, runner, x):
     case = CASES[name]()
     patched = do_patch(case.model)
     # Drop-in: the same outputs (names, element types, shapes).
-    assert [o.SerializeToString() for o in patched.graph.output] == [o.SerializeToString() for o in case.model.graph.output]
+    outputs = [o.SerializeToString() for o in case.model.graph.output]
+    assert [o.SerializeToString() for o in patched.graph.output] == outputs
     (got,) = runner(patched, x, [case.output])
     want = case.reference(logits_of(x) / T)
     gain = 100.0 if post.Scale in case.post_kinds else 1.0

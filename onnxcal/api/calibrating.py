@@ -181,8 +181,8 @@ def calibrate(
     (and, with its parameters at the identity, against the original's own
     outputs) before it is written; when a check fails nothing is written and
     ``result.patch`` is None. A model already calibrated by onnxcal may
-    have another output calibrated (``output``); each has its own record. ``data`` and ``batch_size`` ... ``provider``: as
-    for :func:`capture`; ``output`` ... ``fold``: see :class:`PatchOptions`;
+    have another output calibrated (``output``); each has its own record. ``data`` and ``batch_size`` ...
+    ``provider``: as for :func:`capture`; ``output`` ... ``fold``: see :class:`PatchOptions`;
     ``options`` are those of :func:`fit`. With ``report`` (a directory),
     every file of :func:`report` is written there too, with the
     verification, also when it failed. The model and the report are written

@@ -41,7 +41,8 @@ def finite_capture(cap: Capture, source: str, drop: bool) -> tuple[Capture, str 
     if bad.count == len(cap.logits):
         raise OnnxcalError(f"{what}: every row, so nothing is left to work on", "check the model and its inputs")
     if not drop:
-        raise OnnxcalError(what, "check the model and the inputs of those rows, or pass --drop-nonfinite to leave them out")
+        raise OnnxcalError(what,
+                           "check the model and the inputs of those rows, or pass --drop-nonfinite to leave them out")
     rows = len(cap.logits) - bad.count
     check_memory(rows * cap.logits.shape[1] * 4, f"a copy of the logits of the {rows} rows kept", "use --limit")
     kept = without_nonfinite(cap)

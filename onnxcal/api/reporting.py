@@ -253,7 +253,8 @@ def _record_of(model_path, limit: int) -> Record:
     record = graph.read_record(model)
     if record is None:
         raise OnnxcalError(
-            f"'{model_path}' has no onnxcal calibration record", "give a model written by 'onnxcal patch' or 'calibrate'"
+            f"'{model_path}' has no onnxcal calibration record",
+            "give a model written by 'onnxcal patch' or 'calibrate'",
         )
     graph.check_record(model, record, f"'{model_path}'")
     if not record.folded:

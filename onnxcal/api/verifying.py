@@ -70,8 +70,10 @@ class _Reference:
     file_only_sha: str | None = None  # the original's .onnx file alone, when it has external data
 
 
-def _reference(patched, patched_path, record: Record, dataset, cap, original, base, score_paths, run, progress) -> _Reference:
-    """The original's logits: captured (``--scores``), run (``--original``, loaded as ``base``), or the patched graph's own."""
+def _reference(patched, patched_path, record: Record, dataset, cap, original, base, score_paths, run,
+               progress) -> _Reference:
+    """The original's logits: captured (``--scores``), run (``--original``, loaded as ``base``), or the patched
+    graph's own."""
     if cap is not None:
         return _Reference(cap.logits, "scores", ", ".join(map(str, score_paths)), cap.meta.model_sha256, None)
     if base is not None:
@@ -189,7 +191,7 @@ def _latency(base, patched, dataset: Dataset, run: RunOptions, runs: int, max_ra
         if plan.pad is not None and size < plan.pad:  # a fixed batch dim: pad as the runs do
             feed = {k: np.concatenate([v, np.repeat(v[-1:], plan.pad - size, axis=0)]) for k, v in feed.items()}
         feeds.append(feed)
-    calls = [lambda p=p, f=f: p.session.run(None, f) for p, f in zip(plans, feeds)]
+    calls = [lambda p=p, f=f: p.session.run(None, f) for p, f in zip(plans, feeds, strict=True)]
     times = time_alternately(calls, runs, warmup=max(3, runs // 10))
     return latency_check(times[0], times[1], max_ratio, batch=size, against=against)
 

@@ -7,7 +7,7 @@ the typer app (the function's name is the command's, its docstring the help).
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated, Optional
+from typing import Annotated
 
 import typer
 
@@ -108,7 +108,7 @@ def fit(
         typer.Argument(help="Capture file(s) from 'onnxcal capture'; several (e.g. shards) are merged.",
                        metavar="LOGITS.npz...", show_default=False),
     ],
-    out_path: Annotated[Optional[Path], typer.Option("--out", help="Write the fit to this JSON file.")] = None,
+    out_path: Annotated[Path | None, typer.Option("--out", help="Write the fit to this JSON file.")] = None,
     method: MethodOpt = "temperature",
     multilabel: MultilabelOpt = None,
     l2: L2Opt = 0.0,
@@ -139,8 +139,8 @@ def fit(
 def patch(
     model: ModelArg,
     out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False)],
-    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to bake in.")] = None,
-    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.")] = None,
+    temperature: Annotated[float | None, typer.Option("--temperature", help="T to bake in.")] = None,
+    fit_file: Annotated[Path | None, typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.")] = None,
     output: OutputOpt = None,
     output_name: OutputNameOpt = DEFAULT_OUTPUT_NAME,
     drop_logits: DropLogitsOpt = False,
@@ -194,11 +194,11 @@ VERIFY_EPILOG = (
 def verify(
     patched: Annotated[Path, typer.Argument(help="Patched model.", show_default=False)],
     original: Annotated[
-        Optional[Path],
+        Path | None,
         typer.Option("--original", help="The uncalibrated model (default: the path in the record)."),
     ] = None,
     scores: Annotated[
-        Optional[list[Path]],
+        list[Path] | None,
         typer.Option(
             "--scores",
             help="Capture file of the original model on the same data, instead of running it "
@@ -208,28 +208,30 @@ def verify(
         ),
     ] = None,
     max_ece: Annotated[
-        Optional[float], typer.Option("--max-ece", help="Fail when the patched model's ECE on the labels is above this.")
+        float | None, typer.Option("--max-ece", help="Fail when the patched model's ECE on the labels is above this.")
     ] = None,
     max_nll: Annotated[
-        Optional[float], typer.Option("--max-nll", help="Fail when its NLL on the labels is above this.")
+        float | None, typer.Option("--max-nll", help="Fail when its NLL on the labels is above this.")
     ] = None,
     min_accuracy: Annotated[
-        Optional[float], typer.Option("--min-accuracy", help="Fail when its accuracy on the labels is below this.")
+        float | None, typer.Option("--min-accuracy", help="Fail when its accuracy on the labels is below this.")
     ] = None,
     bins: BinsOpt = DEFAULT_BINS,
     latency: Annotated[
         bool,
-        typer.Option("--latency", help="Time the patched model against the original, alternating runs; report the ratio."),
+        typer.Option("--latency",
+                     help="Time the patched model against the original, alternating runs; report the ratio."),
     ] = False,
     max_latency_ratio: Annotated[
-        Optional[float],
-        typer.Option("--max-latency-ratio", help="Fail when median patched / original latency is above this (implies --latency)."),
+        float | None,
+        typer.Option("--max-latency-ratio",
+                     help="Fail when median patched / original latency is above this (implies --latency)."),
     ] = None,
     latency_runs: Annotated[
         int, typer.Option("--latency-runs", help="Timed runs of each model for --latency (1 to 100000).")
     ] = api.DEFAULT_LATENCY_RUNS,
     junit: Annotated[
-        Optional[Path], typer.Option("--junit", help="Also write the checks as JUnit XML to this file.")
+        Path | None, typer.Option("--junit", help="Also write the checks as JUnit XML to this file.")
     ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
@@ -290,21 +292,21 @@ def report(
     out_dir: Annotated[
         Path, typer.Option("--out", help="Directory for the report (created if missing).", show_default=False)
     ],
-    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to report on.")] = None,
-    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.")] = None,
+    temperature: Annotated[float | None, typer.Option("--temperature", help="T to report on.")] = None,
+    fit_file: Annotated[Path | None, typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.")] = None,
     model: Annotated[
-        Optional[Path], typer.Option("--model", help="A patched model: its calibration record gives the parameters.")
+        Path | None, typer.Option("--model", help="A patched model: its calibration record gives the parameters.")
     ] = None,
     formats: Annotated[
         str, typer.Option("--format", help=f"Comma-separated outputs among {','.join(FORMATS)}.")
     ] = ",".join(FORMATS),
     class_names: Annotated[
-        Optional[Path],
+        Path | None,
         typer.Option("--classes", help="Class names, one per line, in the model's class order "
                      "(default: those recorded in the capture)."),
     ] = None,
     bins: Annotated[
-        Optional[int], typer.Option("--bins", help="Bins, 2 to 100000 (default: the fit's, else 15).")
+        int | None, typer.Option("--bins", help="Bins, 2 to 100000 (default: the fit's, else 15).")
     ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
@@ -355,7 +357,7 @@ def calibrate(
     bootstrap: BootstrapOpt = 200,
     bins: BinsOpt = 15,
     report_dir: Annotated[
-        Optional[Path],
+        Path | None,
         typer.Option("--report", help="Also write the report (as 'onnxcal report') into this directory."),
     ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,

@@ -12,7 +12,7 @@ import inspect as _inspect
 import typing
 from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import Annotated, Optional
+from typing import Annotated
 
 import typer
 
@@ -25,7 +25,7 @@ from ..errors import OnnxcalError
 
 ModelArg = Annotated[Path, typer.Argument(help="The ONNX model file.", show_default=False)]
 OutputOpt = Annotated[
-    Optional[str],
+    str | None,
     typer.Option("--output", help="The class-score output (default: the likeliest float output)."),
 ]
 ForceOpt = Annotated[bool, typer.Option("--force", help="Replace an existing output file.")]
@@ -38,7 +38,7 @@ DropLogitsOpt = Annotated[
     bool, typer.Option("--drop-logits", help="Remove the logits output when a new output is added.")
 ]
 ActivationOpt = Annotated[
-    Optional[str],
+    str | None,
     typer.Option(
         "--activation",
         help="softmax or sigmoid: what turns raw logits into probabilities "
@@ -46,7 +46,7 @@ ActivationOpt = Annotated[
     ),
 ]
 ComputeDtypeOpt = Annotated[
-    Optional[str],
+    str | None,
     typer.Option(
         "--compute-dtype",
         help="float32 or float64: run the Div and activation in this dtype (Casts "
@@ -54,7 +54,7 @@ ComputeDtypeOpt = Annotated[
     ),
 ]
 OutputHoldsOpt = Annotated[
-    Optional[str],
+    str | None,
     typer.Option(
         "--output-holds",
         help="logits, probabilities or log-probabilities: what the output holds, when the graph cannot tell "
@@ -63,7 +63,7 @@ OutputHoldsOpt = Annotated[
     ),
 ]
 ScoreColumnsOpt = Annotated[
-    Optional[str],
+    str | None,
     typer.Option(
         "--score-columns",
         metavar="START:STOP",
@@ -89,7 +89,7 @@ MethodOpt = Annotated[
     ),
 ]
 MultilabelOpt = Annotated[
-    Optional[str],
+    str | None,
     typer.Option(
         "--multilabel",
         help="For N x K 0/1 labels: 'shared' (one T for all labels, the default) or 'per-label' (one T each).",
@@ -143,44 +143,44 @@ def _option(name: str, kind, default, flag: str, help: str, **extra) -> _inspect
 
 
 _SHARED_OPTIONS = (
-    _option("data", Optional[Path], None, "--data",
+    _option("data", Path | None, None, "--data",
             "Validation set: .npz (one array per model input, plus 'labels'), .npy (a one-input "
             "model), .csv table, or a folder of images (one subfolder per class)."),
-    _option("inputs", Optional[list[str]], None, "--input",
+    _option("inputs", list[str] | None, None, "--input",
             "One .npy per model input (memory-mapped); repeat for each input.", metavar="NAME=FILE.npy"),
-    _option("labels", Optional[Path], None, "--labels",
+    _option("labels", Path | None, None, "--labels",
             "Labels .npy (with --input), or a CSV mapping image files to classes "
             "(columns 'file' and the label column)."),
-    _option("label_column", Optional[str], None, "--label-column", "Label column of a CSV (default 'label')."),
-    _option("feature_columns", Optional[str], None, "--feature-columns",
+    _option("label_column", str | None, None, "--label-column", "Label column of a CSV (default 'label')."),
+    _option("feature_columns", str | None, None, "--feature-columns",
             "CSV columns fed to the model, in order (default: all but the label).", metavar="A,B,..."),
-    _option("classes", Optional[Path], None, "--classes",
+    _option("classes", Path | None, None, "--classes",
             "Class names, one per line, in the model's class order; string labels are mapped through it."),
-    _option("limit", Optional[int], None, "--limit", "Use at most N samples (N >= 1).", metavar="N"),
-    _option("shuffle_seed", Optional[int], None, "--shuffle-seed",
+    _option("limit", int | None, None, "--limit", "Use at most N samples (N >= 1).", metavar="N"),
+    _option("shuffle_seed", int | None, None, "--shuffle-seed",
             "Take --limit/--shard samples from a random permutation with this seed (0 to 2^32-1).", metavar="SEED"),
-    _option("shard", Optional[str], None, "--shard",
+    _option("shard", str | None, None, "--shard",
             "Capture the I-th of N deterministic slices (1 <= I <= N); 'onnxcal fit' merges the files.",
             metavar="I/N"),
-    _option("preprocess", Optional[Path], None, "--preprocess",
+    _option("preprocess", Path | None, None, "--preprocess",
             "Image options below as a TOML or JSON file (options given here win)."),
-    _option("resize", Optional[int], None, "--resize", "Image: resize the shorter side to N pixels (1 to 65535).",
+    _option("resize", int | None, None, "--resize", "Image: resize the shorter side to N pixels (1 to 65535).",
             metavar="N"),
-    _option("crop", Optional[str], None, "--crop", "Image: centre crop (sides of 1 to 65535 pixels).", metavar="N|HxW"),
-    _option("scale", Optional[bool], None, "--scale/--no-scale",
+    _option("crop", str | None, None, "--crop", "Image: centre crop (sides of 1 to 65535 pixels).", metavar="N|HxW"),
+    _option("scale", bool | None, None, "--scale/--no-scale",
             "Image: divide pixels by 255 (default: yes for float inputs).", show_default=False),
-    _option("mean", Optional[str], None, "--mean", "Image: per-channel mean, subtracted after scaling.",
+    _option("mean", str | None, None, "--mean", "Image: per-channel mean, subtracted after scaling.",
             metavar="M[,M,M]"),
-    _option("std", Optional[str], None, "--std", "Image: per-channel std, divided by after the mean.",
+    _option("std", str | None, None, "--std", "Image: per-channel std, divided by after the mean.",
             metavar="S[,S,S]"),
-    _option("channel_order", Optional[str], None, "--channel-order", "Image: RGB (default) or BGR.",
+    _option("channel_order", str | None, None, "--channel-order", "Image: RGB (default) or BGR.",
             metavar="RGB|BGR"),
-    _option("layout", Optional[str], None, "--layout", "Image: NCHW or NHWC (default: from the model).",
+    _option("layout", str | None, None, "--layout", "Image: NCHW or NHWC (default: from the model).",
             metavar="NCHW|NHWC"),
-    _option("dtype", Optional[str], None, "--dtype", "Image: input dtype (default: the model's).", metavar="DTYPE"),
-    _option("interpolation", Optional[str], None, "--interpolation",
+    _option("dtype", str | None, None, "--dtype", "Image: input dtype (default: the model's).", metavar="DTYPE"),
+    _option("interpolation", str | None, None, "--interpolation",
             "Image: resize filter: nearest, bilinear (default), bicubic, lanczos.", metavar="FILTER"),
-    _option("batch_size", Optional[int], None, "--batch-size",
+    _option("batch_size", int | None, None, "--batch-size",
             f"Samples per onnxruntime call, 1 to 16777216 (default: {DEFAULT_BATCH}, doubled while onnxcal's own "
             "work per call costs more than 5 % of the call).", min=1, metavar="N"),
     _option("threads", int, 0, "--threads",

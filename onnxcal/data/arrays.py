@@ -199,7 +199,8 @@ def read_npy(path: str | os.PathLike, what: str) -> np.ndarray:
         with open(p, "rb") as fh:
             header = _member_header(fh)
     except OSError as exc:
-        raise OnnxcalError(f"cannot read {what} '{p}': {exc.strerror or exc}", "check that the file is readable") from exc
+        raise OnnxcalError(f"cannot read {what} '{p}': {exc.strerror or exc}",
+                           "check that the file is readable") from exc
     if header is None:
         if zipfile.is_zipfile(p):  # an .npz given where an .npy was expected
             raise OnnxcalError(f"{what} '{p}' is not an .npy file", "give one array saved with numpy.save")

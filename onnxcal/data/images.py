@@ -43,7 +43,8 @@ class ImageArray:
         self._check_size(height, width)
         self.shape_hw = (height, width)
         c = plan.channels
-        self.shape = (len(self.files), c, height, width) if plan.layout == "NCHW" else (len(self.files), height, width, c)
+        self.shape = (len(self.files), c, height, width) if plan.layout == "NCHW" else (len(self.files), height, width,
+                                                                                        c)
         self.dtype = plan.dtype
         self.ndim = 4
         o = plan.options
@@ -172,7 +173,7 @@ class ImageArray:
     def __getitem__(self, key) -> np.ndarray:
         idx = range(len(self.files))[key] if isinstance(key, slice) else np.atleast_1d(key)
         images = [self._load(int(i)) for i in idx]
-        for i, img in zip(idx, images):
+        for i, img in zip(idx, images, strict=True):
             if img.shape[:2] != self.shape_hw:
                 self._check_size(*img.shape[:2], name=self.files[int(i)])
         batch = np.stack(images)[..., self._chan]
@@ -304,7 +305,8 @@ def _class_folders(root: Path, classes: Sequence[str] | None) -> tuple[list[str]
         )
     folders = sorted(p.name for p in root.iterdir() if p.is_dir() and not p.name.startswith("."))
     if not folders:
-        raise OnnxcalError(f"'{root}' has no class subfolders", "put the images of each class in a subfolder named after it")
+        raise OnnxcalError(f"'{root}' has no class subfolders",
+                           "put the images of each class in a subfolder named after it")
     names = tuple(classes) if classes is not None else tuple(shown(f) for f in folders)
     if classes is not None:
         index = class_indices(np.array(folders), classes, lambda i: f"subfolder '{folders[i]}' of '{root}'")
@@ -312,10 +314,11 @@ def _class_folders(root: Path, classes: Sequence[str] | None) -> tuple[list[str]
         index = np.arange(len(folders))
     files: list[str] = []
     labels: list[np.ndarray] = []
-    for folder, k in zip(folders, index):
+    for folder, k in zip(folders, index, strict=True):
         found = [f"{folder}/{f}" for f in _image_files(root / folder)]
         if not found:
-            raise OnnxcalError(f"class subfolder '{root / folder}' holds no images", f"add images ({', '.join(sorted(IMAGE_SUFFIXES))}) or remove it")
+            raise OnnxcalError(f"class subfolder '{root / folder}' holds no images",
+                               f"add images ({', '.join(sorted(IMAGE_SUFFIXES))}) or remove it")
         files += found
         labels.append(np.full(len(found), k, dtype=np.int64))
     return files, np.concatenate(labels), names

@@ -67,7 +67,7 @@ def match_inputs(dataset: Dataset, specs: Sequence[TensorSpec]) -> None:
                 f"but rank {len(spec.shape)} in the model (shape {show_shape(spec.shape)})",
                 "reshape the array so samples are on axis 0 and the rest matches the model",
             )
-        for axis, (have, need) in enumerate(zip(arr.shape[1:], spec.shape[1:]), start=1):
+        for axis, (have, need) in enumerate(zip(arr.shape[1:], spec.shape[1:], strict=True), start=1):
             if isinstance(need, int) and need > 0 and have != need:
                 raise OnnxcalError(
                     f"input '{spec.name}' has size {have} on axis {axis} in the data "

@@ -81,7 +81,8 @@ def read_preprocess_file(path: str | os.PathLike) -> dict:
     except (OSError, UnicodeDecodeError, ValueError) as exc:  # TOMLDecodeError is a ValueError
         raise OnnxcalError(f"preprocessing file '{p}' cannot be parsed ({exc})", "check its syntax") from exc
     if not isinstance(data, dict):
-        raise OnnxcalError(f"preprocessing file '{p}' is not a table of options", f"use the keys {', '.join(IMAGE_OPTIONS)}")
+        raise OnnxcalError(f"preprocessing file '{p}' is not a table of options",
+                           f"use the keys {', '.join(IMAGE_OPTIONS)}")
     return data
 
 
@@ -106,7 +107,8 @@ def image_options(values: Mapping[str, object], file: str | os.PathLike | None =
             merged[key] = (value, f"--{key.replace('_', '-')}")
     unknown = [where for key, (_, where) in merged.items() if key not in IMAGE_OPTIONS]
     if unknown:
-        raise OnnxcalError(f"{unknown[0]} is not a preprocessing option", f"the options are: {', '.join(IMAGE_OPTIONS)}")
+        raise OnnxcalError(f"{unknown[0]} is not a preprocessing option",
+                           f"the options are: {', '.join(IMAGE_OPTIONS)}")
     out = {key: _image_value(key, value, where) for key, (value, where) in merged.items()}
     return ImageOptions(**out)
 

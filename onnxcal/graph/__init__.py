@@ -49,11 +49,11 @@ The calibration record is JSON in ``metadata_props`` under ``RECORD_KEY``.
 
 from . import post
 from .describe import ModelInfo, describe, describe_site
+from .expose import at_identity, expose, expose_scores
+from .external import check_model, for_onnxruntime, tensor_array
 from .find import HOLDS, Branch, ScoreSite, find_scores, fit_kind, read_as
 from .fold import FoldedValues, folded_values
 from .io import _model_tensors as _model_tensors
-from .external import check_model, for_onnxruntime, tensor_array
-from .nested import parse_columns
 from .io import (
     external_data_files,
     external_data_path,
@@ -63,6 +63,7 @@ from .io import (
     save_model,
     saved_sha256,
 )
+from .nested import parse_columns
 from .record import (
     Record,
     check_record,
@@ -74,7 +75,6 @@ from .record import (
 )
 from .record import _write_record as _write_record
 from .record import _write_records as _write_records
-from .expose import at_identity, expose, expose_scores
 from .rewrite import (
     check_temperature,
     find_recorded,

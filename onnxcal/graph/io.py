@@ -100,7 +100,8 @@ def _parse(p: Path) -> onnx.ModelProto:
     try:
         return onnx.load(str(p), load_external_data=False)
     except OSError as exc:
-        raise OnnxcalError(f"cannot read model '{p}': {exc.strerror or exc}", "check that the file is readable") from exc
+        raise OnnxcalError(f"cannot read model '{p}': {exc.strerror or exc}",
+                           "check that the file is readable") from exc
     except Exception as exc:  # protobuf DecodeError, ...
         raise OnnxcalError(
             f"'{p}' is not a readable ONNX model (its bytes do not parse as an ONNX ModelProto: "

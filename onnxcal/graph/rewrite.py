@@ -348,7 +348,8 @@ def _check_options(
     if fold and site.from_probabilities:
         what = ("an ai.onnx.ml classifier, which has no logits layer" if site.spelling == "ml-classifier"
                 else f"logits computed from other values ({site.logits_from}), with no layer")
-        raise OnnxcalError(f"--fold: output '{site.output}' comes from {what} to fold the scaling into", "leave out --fold")
+        raise OnnxcalError(f"--fold: output '{site.output}' comes from {what} to fold the scaling into",
+                           "leave out --fold")
     if compute_dtype == site.dtype:
         return None
     return compute_dtype

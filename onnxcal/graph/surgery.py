@@ -215,13 +215,15 @@ def build_logits(s: _Surgery, site: ScoreSite, source: str) -> str:
     if how == "logit":  # log p - log(1 - p): sigmoid of it is p
         one = s.constant("onnxcal_one", _scalar("", 1.0, site.dtype))
         rest = s.node("Sub", [one, source], f"{source}_complement")
-        return s.node("Sub", [_log_clamped(s, source, site.dtype), _log_clamped(s, rest, site.dtype)], f"{source}_logit")
+        return s.node("Sub", [_log_clamped(s, source, site.dtype), _log_clamped(s, rest, site.dtype)],
+                      f"{source}_logit")
     if how == "log-sigmoid":  # log sigmoid(x) = -softplus(-x)
         neg = s.node("Neg", [source], f"{source}_negated")
         return s.node("Neg", [s.node("Softplus", [neg], f"{source}_softplus")], f"{source}_log_sigmoid")
     if how == "dequantized":
         qlinear = s.graph.node[site.node]
-        inputs = [source, qlinear.input[1]] + ([qlinear.input[2]] if len(qlinear.input) > 2 and qlinear.input[2] else [])
+        inputs = [source,
+                  qlinear.input[1]] + ([qlinear.input[2]] if len(qlinear.input) > 2 and qlinear.input[2] else [])
         return s.node("DequantizeLinear", inputs, f"{source}_dequantized")
     if how == "raw-scores":
         return _raw_scores(s, site)
@@ -262,7 +264,8 @@ def _raw_scores(s: _Surgery, site: ScoreSite) -> str:
     if site.ml_transform == "SOFTMAX":
         return raw
     if site.num_classes == 2:
-        mask = s.constant("onnxcal_positive_column", numpy_helper.from_array(np.array([0.0, 1.0], np_dtype(site.dtype))))
+        mask = s.constant("onnxcal_positive_column", numpy_helper.from_array(np.array([0.0, 1.0],
+                                                                                      np_dtype(site.dtype))))
         return s.node("Mul", [raw, mask], f"{raw}_logits")
     neg = s.node("Neg", [raw], f"{raw}_negated")
     return s.node("Neg", [s.node("Softplus", [neg], f"{raw}_softplus")], f"{raw}_log_sigmoid")

@@ -65,4 +65,5 @@ def module(method: str) -> ModuleType:
         raise OnnxcalError(f"unknown calibration method {method!r}", f"use one of: {', '.join(METHODS)}") from None
 
 
-__all__ = ["METHODS", "METHODS_FOR", "MODULES", "KEEPS_DECISIONS", "LOOKUP_METHODS", "MapFit", "Subgraph", "module", "standalone_model"]
+__all__ = ["METHODS", "METHODS_FOR", "MODULES", "KEEPS_DECISIONS", "LOOKUP_METHODS", "MapFit", "Subgraph", "module",
+           "standalone_model"]

@@ -88,7 +88,9 @@ class MapFit:
 def require_fields(params: Mapping, names: Collection[str], method: str) -> None:
     """Refuse a parameter dict whose fields are not exactly ``names``."""
     if not isinstance(params, Mapping):
-        raise OnnxcalError(f"{method} parameters must be a mapping of field names to values, got {type(params).__name__}")
+        raise OnnxcalError(
+            f"{method} parameters must be a mapping of field names to values, got {type(params).__name__}"
+        )
     if sorted(params) != sorted(names):
         raise OnnxcalError(
             f"{method} calibration needs parameters {', '.join(sorted(names))}, "
@@ -130,7 +132,8 @@ def field_array(params: Mapping, name: str, method: str, *, ndim: int, shape: tu
 
 def check_kind(kind: str, allowed: Collection[str], method: str) -> None:
     if kind not in allowed:
-        raise OnnxcalError(f"{method} calibration does not apply to a {kind} classifier", f"use it on: {', '.join(allowed)}")
+        raise OnnxcalError(f"{method} calibration does not apply to a {kind} classifier",
+                           f"use it on: {', '.join(allowed)}")
 
 
 def plain(a: np.ndarray | float) -> float | list:
@@ -234,7 +237,8 @@ class GraphBuilder:
         self, x: str, dtype: str, prefix: str, taken: Collection[str] = (), compute_dtype: str | None = None
     ) -> None:
         if dtype not in _ELEM:
-            raise OnnxcalError(f"unsupported dtype {dtype!r} for a calibration subgraph", f"use one of: {', '.join(_ELEM)}")
+            raise OnnxcalError(f"unsupported dtype {dtype!r} for a calibration subgraph",
+                               f"use one of: {', '.join(_ELEM)}")
         self.input = x
         self.dtype = dtype
         self.compute = compute_dtype or ("float32" if dtype == "float16" else dtype)

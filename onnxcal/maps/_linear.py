@@ -32,7 +32,18 @@ import scipy.optimize
 
 from ..errors import OnnxcalError
 from ..metrics import log_softmax, softmax
-from ._base import CHUNK_ELEMENTS, GraphBuilder, MapFit, Subgraph, check_kind, chunks, field_array, plain, require_fields, total_weight
+from ._base import (
+    CHUNK_ELEMENTS,
+    GraphBuilder,
+    MapFit,
+    Subgraph,
+    check_kind,
+    chunks,
+    field_array,
+    plain,
+    require_fields,
+    total_weight,
+)
 
 KINDS = ("multiclass",)
 # lambda = mu. On the benchmark's calibration sets (44 to 450 rows, 3 to 10

@@ -34,7 +34,17 @@ import scipy.optimize
 
 from ..errors import OnnxcalError
 from ..metrics import sigmoid
-from ._base import GraphBuilder, MapFit, Subgraph, binary_targets, check_kind, chunks, field_array, require_fields, total_weight
+from ._base import (
+    GraphBuilder,
+    MapFit,
+    Subgraph,
+    binary_targets,
+    check_kind,
+    chunks,
+    field_array,
+    require_fields,
+    total_weight,
+)
 
 METHOD = "beta"
 KINDS = ("binary",)

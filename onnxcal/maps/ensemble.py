@@ -191,8 +191,10 @@ def build(
     w1, w2, w3 = p["weights"]
     g = GraphBuilder(x, dtype, "onnxcal_ets", taken, compute_dtype)
     z = g.start()
-    sharp = g.node("Softmax", [g.node("Div", [z, g.const("temperature", p["temperature"])], "scaled")], "p_scaled", axis=-1)
+    sharp = g.node("Softmax", [g.node("Div", [z, g.const("temperature", p["temperature"])], "scaled")], "p_scaled",
+                   axis=-1)
     plain_p = g.node("Softmax", [z], "p_plain", axis=-1)
-    mix = g.node("Add", [g.node("Mul", [sharp, g.const("w1", w1)], "w1_p"), g.node("Mul", [plain_p, g.const("w2", w2)], "w2_p")], "mix")
+    mix = g.node("Add", [g.node("Mul", [sharp, g.const("w1", w1)], "w1_p"), g.node("Mul", [plain_p, g.const("w2", w2)],
+                                                                                   "w2_p")], "mix")
     out = g.node("Add", [mix, g.const("w3_uniform", w3 / num_classes)], "probabilities")
     return g.finish(out)

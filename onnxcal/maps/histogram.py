@@ -90,7 +90,8 @@ def binned(p: np.ndarray, t: np.ndarray, w: np.ndarray, bins: int, strategy: str
 def calibrate_columns(params: dict, p: np.ndarray) -> np.ndarray:
     q = np.empty_like(p)
     for k, (e, v) in enumerate(zip(params["edges"], params["values"], strict=True)):
-        q[:, k] = np.asarray(v, dtype=np.float64)[np.searchsorted(np.asarray(e, dtype=np.float64), p[:, k], side="left")]
+        q[:, k] = np.asarray(v, dtype=np.float64)[np.searchsorted(np.asarray(e, dtype=np.float64), p[:, k],
+                                                                  side="left")]
     return q
 
 
@@ -119,10 +120,14 @@ def check_parameters(params: dict, num_classes: int | None = None, kind: str | N
     """
     edges, values = _lookup.check_tables(params, ("edges", "values"), num_classes, METHOD, kind)
     if len(edges) != len(values):
-        raise OnnxcalError(f"histogram parameters 'edges' and 'values' have {len(edges)} and {len(values)} per-class lists")
+        raise OnnxcalError(
+            f"histogram parameters 'edges' and 'values' have {len(edges)} and {len(values)} per-class lists"
+        )
     for k, (e, v) in enumerate(zip(edges, values, strict=True)):
         if len(v) != len(e) + 1:
-            raise OnnxcalError(f"histogram parameter 'values[{k}]' has {len(v)} values for {len(e)} edges (needs one more)")
+            raise OnnxcalError(
+                f"histogram parameter 'values[{k}]' has {len(v)} values for {len(e)} edges (needs one more)"
+            )
         _lookup.strictly_increasing(e, f"edges[{k}]", METHOD)
     return {"edges": _lookup.as_lists(edges), "values": _lookup.as_lists(values)}
 
@@ -161,8 +166,10 @@ def fit(
         raise OnnxcalError(f"unknown binning strategy {strategy!r}", f"use one of: {', '.join(STRATEGIES)}")
     if bins < 1:
         raise OnnxcalError(f"histogram binning needs at least one bin, got {bins}")
-    per_class, passes = _lookup.fit_per_class(scores, labels, rows, weights, partial(binned, bins=bins, strategy=strategy))
-    params = {"edges": _lookup.as_lists([e for e, _ in per_class]), "values": _lookup.as_lists([v for _, v in per_class])}
+    per_class, passes = _lookup.fit_per_class(scores, labels, rows, weights, partial(binned, bins=bins,
+                                                                                     strategy=strategy))
+    params = {"edges": _lookup.as_lists([e for e, _ in per_class]), "values": _lookup.as_lists([v for _,
+                                                                                                v in per_class])}
     return MapFit(METHOD, _lookup.kind_of_scores(scores.shape[1]), params, True, float(passes))
 
 

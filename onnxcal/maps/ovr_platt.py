@@ -102,7 +102,10 @@ def _pass(scores, labels, a, b, rows, weights):
     k = scores.shape[1]
     f, ga, gb, total = 0.0, np.zeros(k), np.zeros(k), 0.0
     for z, y, w in chunks(scores, labels, rows, weights):
-        t = np.asarray(y, dtype=np.float64).reshape(len(y), 1) if k == 1 else (np.asarray(y)[:, None] == np.arange(k)).astype(np.float64)
+        if k == 1:
+            t = np.asarray(y, dtype=np.float64).reshape(len(y), 1)
+        else:
+            t = (np.asarray(y)[:, None] == np.arange(k)).astype(np.float64)
         s = z * a + b
         loss = np.logaddexp(0.0, s) - t * s
         r = sigmoid(s) - t
@@ -159,7 +162,8 @@ def fit(
         f += l2 * (float(np.sum((a - 1.0) ** 2)) + float(b @ b))
         return f, np.concatenate([(ga + 2.0 * l2 * (a - 1.0)) / c, gb + 2.0 * l2 * b])
 
-    a0, b0 = (np.ones(k), np.zeros(k)) if start is None else (np.asarray(start["a"], float), np.asarray(start["b"], float))
+    a0, b0 = (np.ones(k), np.zeros(k)) if start is None else (np.asarray(start["a"], float), np.asarray(start["b"],
+                                                                                                        float))
     bounds = [(c * A_MIN, c * A_MAX)] * k + [(-B_MAX, B_MAX)] * k
     res = scipy.optimize.minimize(
         objective, np.concatenate([c * a0, b0]), jac=True, method="L-BFGS-B", bounds=bounds,
@@ -173,7 +177,8 @@ def fit(
             f"{METHOD}: the scale or bias of classes {', '.join(map(str, np.flatnonzero(on_bound)[:5]))} lies on "
             "its bound: a class that is absent, always present, or perfectly separated on this set"
         )
-    return MapFit(METHOD, _lookup.kind_of_scores(k), {"a": plain(a), "b": plain(b)}, bool(res.success), float(evals), tuple(notes))
+    return MapFit(METHOD, _lookup.kind_of_scores(k), {"a": plain(a), "b": plain(b)}, bool(res.success), float(evals),
+                  tuple(notes))
 
 
 def build(
@@ -193,6 +198,7 @@ def build(
     p = check_parameters(params, num_classes)
     g = GraphBuilder(x, dtype, "onnxcal_ovr_platt", taken, compute_dtype)
     z = g.start()
-    s = g.node("Add", [g.node("Mul", [z, g.const("a", np.asarray(p["a"]))], "a_z"), g.const("b", np.asarray(p["b"]))], "logits")
+    s = g.node("Add", [g.node("Mul", [z, g.const("a", np.asarray(p["a"]))], "a_z"), g.const("b", np.asarray(p["b"]))],
+               "logits")
     q = g.node("Sigmoid", [s], "q")
     return _lookup.finish(g, q, num_classes)

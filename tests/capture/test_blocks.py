@@ -5,8 +5,8 @@ from dataclasses import replace
 
 import numpy as np
 import onnxruntime as ort
-
 from conftest import capture_of, per_sample, random_mlp
+
 from onnxcal.capture import RunOptions
 from onnxcal.data import Dataset
 
