@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass, replace
+from typing import Any
 
 import numpy as np
 import onnx
@@ -230,9 +231,9 @@ def check_label_coverage(labels: np.ndarray, k: int, site: ScoreSite, class_name
         warnings.warn(OnnxcalWarning(f"output '{site.output}': {warn}"), stacklevel=3)
 
 
-def patch_reading(meta: dict) -> dict:
+def patch_reading(meta: dict[str, Any]) -> dict[str, Any]:
     """The keyword arguments of ``graph.patch`` that read a model as a capture read it."""
-    kw: dict = {}
+    kw: dict[str, Any] = {}
     if meta.get("spelling") in ("stated", "data") and meta.get("holds"):
         kw.update(holds=meta["holds"], holds_from=meta["spelling"])
     if meta.get("spelling") == "ml-classifier" and meta.get("logits_from") == "log":
@@ -242,7 +243,7 @@ def patch_reading(meta: dict) -> dict:
     return kw
 
 
-def site_reading(site: ScoreSite) -> dict:
+def site_reading(site: ScoreSite) -> dict[str, Any]:
     """The keyword arguments of ``graph.patch`` that read a model as ``site`` does."""
     columns = "" if site.columns is None else f"{site.columns[1]}:{site.columns[2]}"
     return patch_reading({"spelling": site.spelling, "holds": site.holds, "logits_from": site.logits_from,

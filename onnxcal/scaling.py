@@ -29,6 +29,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -63,7 +64,7 @@ class Scaling:
     """
 
     method: str
-    parameters: dict = field(default_factory=dict)
+    parameters: dict[str, Any] = field(default_factory=dict)
     kind: str = "multiclass"
 
     @classmethod
@@ -134,7 +135,7 @@ class Scaling:
         a = self.arrays()
         return 1.0 / a["temperature"] if self.method == "temperature" else a["w"]
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return {"method": self.method, "kind": self.kind, "parameters": dict(self.parameters)}
 
 

@@ -19,6 +19,7 @@ import xml.etree.ElementTree as ET
 from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass
 from datetime import UTC, datetime
+from typing import Any
 
 import numpy as np
 
@@ -79,7 +80,7 @@ class Check:
         """``"pass"``, ``"fail"`` or ``"skip"``."""
         return "skip" if self.skipped else ("pass" if self.passed else "fail")
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         """JSON-ready: a NaN or infinite figure becomes None."""
         d = asdict(self)
         for key in ("value", "limit"):
@@ -128,7 +129,7 @@ class VerifyResult:
     def failed(self) -> tuple[Check, ...]:
         return tuple(c for c in self.checks if not c.passed)
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return {
             "passed": self.passed,
             "n": self.n,
@@ -150,7 +151,7 @@ def _describe(scaling: Scaling) -> str:
 
 
 def reference_probabilities(
-    logits: np.ndarray, scaling: Scaling | float, activation: str, post: tuple = ()
+    logits: np.ndarray, scaling: Scaling | float, activation: str, post: tuple[Any, ...] = ()
 ) -> np.ndarray:
     """The NumPy reference: post(activation(scale(logits))), float64.
 
@@ -170,7 +171,7 @@ def reference_probabilities(
     return _post.apply(p, tuple(post))
 
 
-def output_tolerance(dtypes: str | tuple[str, ...], post: tuple = ()) -> float:
+def output_tolerance(dtypes: str | tuple[str, ...], post: tuple[Any, ...] = ()) -> float:
     """The tolerance for an output: the dtype's (:func:`tolerance`), times what a constant
     factor multiplies the values by, plus one quantization step when the output is quantized
     (a float softmax quantized by onnxcal and a quantized kernel may round one step apart)."""
@@ -190,7 +191,7 @@ class Comparison:
     """
 
     def __init__(
-        self, scaling: Scaling | float, activation: str, dtype: str | tuple[str, ...], post: tuple = ()
+        self, scaling: Scaling | float, activation: str, dtype: str | tuple[str, ...], post: tuple[Any, ...] = ()
     ) -> None:
         self.scaling, self.activation, self.post = _as_scaling(scaling), activation, tuple(post)
         self.tol = output_tolerance(dtype, self.post)
@@ -274,7 +275,7 @@ def compare(
     scaling: Scaling | float,
     activation: str,
     dtype: str | tuple[str, ...],
-    post: tuple = (),
+    post: tuple[Any, ...] = (),
 ) -> tuple[Check, ...]:
     """Checks (1) max abs error vs reference, (2) row sums, (3) argmax agreement
     (for a sigmoid, or one class's probability: the 0.5-threshold decisions).

@@ -72,7 +72,7 @@ class _Source:
     """The model being calibrated, its data and how to run it."""
 
     model: onnx.ModelProto
-    path: str | os.PathLike
+    path: str | os.PathLike[str]
     sha: str
     dataset: Dataset
     run: RunOptions
@@ -152,9 +152,9 @@ def _report_files(
 
 @one_command
 def calibrate(
-    model_path: str | os.PathLike,
+    model_path: str | os.PathLike[str],
     data: DataSource,
-    out: str | os.PathLike,
+    out: str | os.PathLike[str],
     *,
     output: str | None = None,
     output_name: str = graph.DEFAULT_OUTPUT_NAME,
@@ -169,7 +169,7 @@ def calibrate(
     force: bool = False,
     progress: ProgressFn | None = None,
     options: FitOptions = FitOptions(),
-    report: str | os.PathLike | None = None,
+    report: str | os.PathLike[str] | None = None,
     drop_nonfinite: bool = False,
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
     output_holds: str | None = None,

@@ -17,7 +17,7 @@ from .result import Capture, CaptureMeta
 from .rows import label_rows
 
 
-def load_capture(path: str | os.PathLike) -> Capture:
+def load_capture(path: str | os.PathLike[str]) -> Capture:
     """Read a capture file written by :func:`capture` or :func:`save_capture`.
 
     The logits are a read-only memory map of the file.
@@ -188,7 +188,7 @@ def _short(value: object) -> str:
     return text[:12] + "..." if len(text) > 15 else text
 
 
-def load_captures(paths: str | os.PathLike | Sequence[str | os.PathLike]) -> Capture:
+def load_captures(paths: str | os.PathLike[str] | Sequence[str | os.PathLike[str]]) -> Capture:
     """Load one capture file, or several merged into one (see :func:`merge_captures`)."""
     if isinstance(paths, (str, os.PathLike)):
         paths = [paths]

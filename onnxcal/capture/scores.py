@@ -94,13 +94,13 @@ def capture(
     model: onnx.ModelProto,
     dataset: Dataset,
     *,
-    model_path: str | os.PathLike,
+    model_path: str | os.PathLike[str],
     model_sha256: str,
     output: str | None = None,
     batch_size: int | None = None,
     options: RunOptions | None = None,
     progress: ProgressFn | None = None,
-    out: str | os.PathLike | None = None,
+    out: str | os.PathLike[str] | None = None,
     activation: str | None = None,
     site: ScoreSite | None = None,
     check: Callable[[RowStats], None] | None = None,
@@ -194,7 +194,7 @@ def _check_class_names(dataset: Dataset, k: int, kind: str) -> None:
 
 
 def _meta(
-    dataset: Dataset, site: ScoreSite, sink: Rows, mode: str, kind: str, path: str | os.PathLike, sha: str
+    dataset: Dataset, site: ScoreSite, sink: Rows, mode: str, kind: str, path: str | os.PathLike[str], sha: str
 ) -> CaptureMeta:
     sel = dataset.selection
     return CaptureMeta(

@@ -144,7 +144,7 @@ class NpyRows(Rows):
 
 
 @contextlib.contextmanager
-def open_archive(path: str | os.PathLike) -> Iterator[zipfile.ZipFile]:
+def open_archive(path: str | os.PathLike[str]) -> Iterator[zipfile.ZipFile]:
     """A capture file open for writing: an uncompressed zip written atomically (see ``_files.atomic_path``)."""
     with atomic_path(Path(path)) as tmp, zipfile.ZipFile(tmp, "w", zipfile.ZIP_STORED, allowZip64=True) as zf:
         yield zf
@@ -165,7 +165,7 @@ def write_tail(
     _write_member(zf, "meta", np.array(json.dumps(meta.to_dict(), sort_keys=True)))
 
 
-def save_capture(path: str | os.PathLike, cap: Capture) -> None:
+def save_capture(path: str | os.PathLike[str], cap: Capture) -> None:
     """Write a capture file atomically."""
     with open_archive(path) as zf:
         _write_member(zf, "logits", np.asarray(cap.logits, dtype=np.float32))

@@ -7,7 +7,7 @@ the typer app (the function's name is the command's, its docstring the help).
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Any
 
 import typer
 
@@ -74,7 +74,7 @@ def capture(
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
     *,
     data: DataSpec,
-    runtime: dict,
+    runtime: dict[str, Any],
 ) -> None:
     """Run the model on CPU over a labelled set and save its logits and labels.
 
@@ -240,7 +240,7 @@ def verify(
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
     *,
     data: DataSpec,
-    runtime: dict,
+    runtime: dict[str, Any],
 ) -> None:
     """Check a patched model, e.g. for a CI gate; each check is reported with its figure.
 
@@ -367,7 +367,7 @@ def calibrate(
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
     *,
     data: DataSpec,
-    runtime: dict,
+    runtime: dict[str, Any],
 ) -> None:
     """Capture, fit, patch and verify in one go; print the before/after table.
 

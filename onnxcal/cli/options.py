@@ -12,7 +12,7 @@ import inspect as _inspect
 import typing
 from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Any
 
 import typer
 
@@ -206,7 +206,7 @@ def _input_files(values: Sequence[str] | None) -> dict[str, str]:
     return files
 
 
-def _spec(values: dict) -> DataSpec:
+def _spec(values: dict[str, Any]) -> DataSpec:
     columns = values["feature_columns"]
     shard = values.get("shard")
     return DataSpec(
@@ -222,7 +222,7 @@ def _spec(values: dict) -> DataSpec:
     )
 
 
-def data_options(*, shard: bool = False) -> Callable:
+def data_options(*, shard: bool = False) -> Callable[..., Any]:
     """Give a command the shared data/image/runtime options.
 
     The command declares keyword parameters ``data`` (it receives a
@@ -232,7 +232,7 @@ def data_options(*, shard: bool = False) -> Callable:
     """
     shared = [p for p in _SHARED_OPTIONS if shard or p.name != "shard"]
 
-    def decorate(fn: Callable) -> Callable:
+    def decorate(fn: Callable[..., Any]) -> Callable[..., Any]:
         own_hints = typing.get_type_hints(fn, include_extras=True)
         own = [
             p.replace(kind=_inspect.Parameter.KEYWORD_ONLY, annotation=own_hints[p.name])

@@ -149,7 +149,7 @@ def read_npz(path: Path, hint: str) -> dict[str, np.ndarray]:
     return arrays
 
 
-def load_npz(path: str | os.PathLike, *, require_labels: bool = True) -> Dataset:
+def load_npz(path: str | os.PathLike[str], *, require_labels: bool = True) -> Dataset:
     """Read an ``.npz`` whose arrays are named after the model inputs, plus ``labels``.
 
     Raises
@@ -187,7 +187,7 @@ def _same_lengths(arrays: Mapping[str, np.ndarray], labels: np.ndarray | None, s
         raise OnnxcalError(f"'{source}' holds no samples", "give a non-empty validation set")
 
 
-def read_npy(path: str | os.PathLike, what: str) -> np.ndarray:
+def read_npy(path: str | os.PathLike[str], what: str) -> np.ndarray:
     """Open one ``.npy`` with ``mmap_mode='r'`` (never unpickling).
 
     The header is read first: an array of Python objects is refused from
@@ -217,8 +217,8 @@ def read_npy(path: str | os.PathLike, what: str) -> np.ndarray:
 
 
 def load_npy(
-    files: Mapping[str, str | os.PathLike],
-    labels: str | os.PathLike | None,
+    files: Mapping[str, str | os.PathLike[str]],
+    labels: str | os.PathLike[str] | None,
     *,
     require_labels: bool = True,
 ) -> Dataset:
@@ -233,7 +233,7 @@ def load_npy(
     return Dataset(inputs=arrays, labels=label_array, source=source, data_id=combine(parts))
 
 
-def with_npy_labels(ds: Dataset, labels: str | os.PathLike) -> Dataset:
+def with_npy_labels(ds: Dataset, labels: str | os.PathLike[str]) -> Dataset:
     """``ds`` with the labels of a ``.npy`` (``--labels`` beside an ``.npz`` without them)."""
     arr = read_npy(labels, "labels file")
     _same_lengths(ds.inputs, arr, f"{ds.source} + {labels}")

@@ -95,7 +95,7 @@ def _check_fits(values: np.ndarray, dtype: np.dtype, where: str, lines: list[int
 
 
 def load_csv(
-    path: str | os.PathLike,
+    path: str | os.PathLike[str],
     model_input: TensorSpec,
     *,
     label_column: str | None = None,

@@ -36,7 +36,7 @@ _UNKNOWN_RANGE = {"I": "32-bit integer", "F": "32-bit floating-point", "I;32": "
 class ImageArray:
     """Images as a lazy array (n, C, H, W) or (n, H, W, C): decoded when indexed."""
 
-    def __init__(self, root: Path, files: Sequence[str], plan: ImagePlan, spec: TensorSpec):
+    def __init__(self, root: Path, files: Sequence[str], plan: ImagePlan, spec: TensorSpec) -> None:
         self.root, self.files, self.plan, self.spec = root, list(files), plan, spec
         self._warned = False
         height, width = self._planned_size(0)  # from the header: nothing decoded before the memory checks
@@ -199,7 +199,7 @@ def _pillow():
     return Image
 
 
-def shown(name: str | os.PathLike) -> str:
+def shown(name: str | os.PathLike[str]) -> str:
     r"""A file name as the user can read it: bytes that are not UTF-8 shown escaped.
 
     Names come from the file system as str with undecodable bytes kept as
@@ -249,11 +249,11 @@ def _image_files(folder: Path) -> list[str]:
 
 
 def load_image_folder(
-    folder: str | os.PathLike,
+    folder: str | os.PathLike[str],
     model_input: TensorSpec,
     options: ImageOptions,
     *,
-    labels_csv: str | os.PathLike | None = None,
+    labels_csv: str | os.PathLike[str] | None = None,
     label_column: str | None = None,
     classes: Sequence[str] | None = None,
 ) -> Dataset:

@@ -12,6 +12,7 @@ import re
 import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass
+from typing import Any, Never
 
 import numpy as np
 
@@ -67,7 +68,7 @@ class ImageOptions:
     interpolation: str = "bilinear"
 
 
-def read_preprocess_file(path: str | os.PathLike) -> dict:
+def read_preprocess_file(path: str | os.PathLike[str]) -> dict[str, Any]:
     """The preprocessing options of a ``.toml`` or ``.json`` file."""
     p = require_file(path, "preprocessing file")
     try:
@@ -86,7 +87,7 @@ def read_preprocess_file(path: str | os.PathLike) -> dict:
     return data
 
 
-def image_options(values: Mapping[str, object], file: str | os.PathLike | None = None) -> ImageOptions:
+def image_options(values: Mapping[str, object], file: str | os.PathLike[str] | None = None) -> ImageOptions:
     """Validate preprocessing options: those of ``file``, overridden by ``values``.
 
     Values may be typed (``256``, ``[0.5, 0.5, 0.5]``) or strings as typed on
@@ -114,7 +115,7 @@ def image_options(values: Mapping[str, object], file: str | os.PathLike | None =
 
 
 def _image_value(key: str, value, where: str):
-    def fail(what: str):
+    def fail(what: str) -> Never:
         raise OnnxcalError(f"{where} = {value!r} is not {what}")
 
     if key == "resize":
@@ -182,7 +183,7 @@ class ImagePlan:
     dtype: np.dtype
     scale: bool
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         o = self.options
         return {
             "resize": o.resize, "crop": list(o.crop) if o.crop else None, "scale": self.scale,

@@ -14,6 +14,7 @@ import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -86,7 +87,7 @@ class Dataset:
     rows: np.ndarray | None = None
     data_id: str = ""
     selection: Selection = field(default_factory=Selection)
-    preprocess: dict | None = None
+    preprocess: dict[str, Any] | None = None
 
     @property
     def total(self) -> int:
@@ -257,13 +258,13 @@ class DataSpec:
     selection : Selection
     """
 
-    path: str | os.PathLike | None = None
-    inputs: Mapping[str, str | os.PathLike] = field(default_factory=dict)
-    labels: str | os.PathLike | None = None
+    path: str | os.PathLike[str] | None = None
+    inputs: Mapping[str, str | os.PathLike[str]] = field(default_factory=dict)
+    labels: str | os.PathLike[str] | None = None
     label_column: str | None = None
     feature_columns: Sequence[str] | None = None
-    classes: str | os.PathLike | None = None
-    preprocess: str | os.PathLike | None = None
+    classes: str | os.PathLike[str] | None = None
+    preprocess: str | os.PathLike[str] | None = None
     image: Mapping[str, object] = field(default_factory=dict)
     selection: Selection = field(default_factory=Selection)
 

@@ -7,6 +7,7 @@ Also the parameter bounds every solver shares and the notes a result carries
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass
+from typing import Any
 
 import numpy as np
 
@@ -52,7 +53,7 @@ class FitOptions:
     bootstrap: int = 200
     n_bins: int = DEFAULT_BINS
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return asdict(self)
 
 
@@ -93,7 +94,7 @@ class FitResult:
     def method(self) -> str:
         return self.scaling.method
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return {
             "passes": self.passes,
             "converged": self.converged,

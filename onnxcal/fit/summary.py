@@ -7,6 +7,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -150,12 +151,12 @@ class FitSummary:
     result: FitResult
     before: Metrics
     after: Metrics
-    capture: dict
+    capture: dict[str, Any]
     basis: str = "in-sample"
-    fit_part: dict | None = None
+    fit_part: dict[str, Any] | None = None
     holdout_result: FitResult | None = None
-    split: dict = field(default_factory=dict)
-    intervals: dict | None = None
+    split: dict[str, Any] = field(default_factory=dict)
+    intervals: dict[str, Any] | None = None
     options: FitOptions = FitOptions()
     warnings: tuple[str, ...] = ()
     notes: tuple[str, ...] = ()
@@ -168,7 +169,7 @@ class FitSummary:
     def temperature(self) -> float | None:
         return self.result.temperature
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         s = self.result.scaling
         held = None
         if self.holdout_result is not None:
@@ -226,7 +227,7 @@ def _temperature_passes(logits, labels, options, fit_rows, eval_rows, threads):
 def summarize(
     logits: np.ndarray,
     labels: np.ndarray,
-    capture_meta: dict,
+    capture_meta: dict[str, Any],
     options: FitOptions = DEFAULT_OPTIONS,
     *,
     threads: int | None = None,

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import os
 from pathlib import Path, PurePosixPath, PureWindowsPath
+from typing import Any
 
 import numpy as np
 import onnx
@@ -355,7 +356,7 @@ def _check_options(
     return compute_dtype
 
 
-def _file_name(source: str | os.PathLike) -> str:
+def _file_name(source: str | os.PathLike[str]) -> str:
     """The file name of a path, POSIX or Windows style (the record holds no directory)."""
     text = os.fspath(source)
     return (PureWindowsPath(text) if "\\" in text else PurePosixPath(text)).name or Path(text).name
@@ -366,11 +367,11 @@ def patch(
     calibration: float | Scaling,
     *,
     source_sha256: str,
-    source_name: str | os.PathLike,
+    source_name: str | os.PathLike[str],
     output: str | None = None,
     new_output: str = DEFAULT_OUTPUT_NAME,
     drop_logits: bool = False,
-    fit: dict | None = None,
+    fit: dict[str, Any] | None = None,
     activation: str | None = None,
     compute_dtype: str | None = None,
     fold: bool = False,

@@ -13,7 +13,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from functools import partial
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import onnx
@@ -42,7 +42,7 @@ class _Surgery:
         self.ir_version = ir_version
         self.taken = _all_names(graph)
         self.nodes: list[onnx.NodeProto] = []
-        self.changes: dict = {"nodes": [], "initializers": [], "outputs": [], "renamed": {}}
+        self.changes: dict[str, Any] = {"nodes": [], "initializers": [], "outputs": [], "renamed": {}}
         self.parameters: dict[str, str] = {}  # role -> initializer name (e.g. "temperature")
         self.root = self
 

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 from collections.abc import Collection, Iterator, Mapping
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import onnx
@@ -65,12 +66,12 @@ class MapFit:
 
     method: str
     kind: str
-    parameters: dict
+    parameters: dict[str, Any]
     converged: bool = True
     passes: float = 0.0
     notes: tuple[str, ...] = ()
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return {
             "method": self.method,
             "kind": self.kind,
@@ -85,7 +86,7 @@ class MapFit:
 # Parameter checks (values read from a file)
 
 
-def require_fields(params: Mapping, names: Collection[str], method: str) -> None:
+def require_fields(params: Mapping[str, Any], names: Collection[str], method: str) -> None:
     """Refuse a parameter dict whose fields are not exactly ``names``."""
     if not isinstance(params, Mapping):
         raise OnnxcalError(
@@ -98,7 +99,8 @@ def require_fields(params: Mapping, names: Collection[str], method: str) -> None
         )
 
 
-def field_array(params: Mapping, name: str, method: str, *, ndim: int, shape: tuple | None = None) -> np.ndarray:
+def field_array(params: Mapping[str, Any], name: str, method: str, *, ndim: int,
+                shape: tuple[Any, ...] | None = None) -> np.ndarray:
     """The field ``name`` as a finite float64 array of rank ``ndim`` (and ``shape``).
 
     ``shape`` may hold None for a dimension of any size.
@@ -136,7 +138,7 @@ def check_kind(kind: str, allowed: Collection[str], method: str) -> None:
                            f"use it on: {', '.join(allowed)}")
 
 
-def plain(a: np.ndarray | float) -> float | list:
+def plain(a: np.ndarray | float) -> float | list[Any]:
     """A float64 array as JSON-ready Python numbers (nested lists)."""
     arr = np.asarray(a, dtype=np.float64)
     return float(arr) if arr.ndim == 0 else arr.tolist()

@@ -33,6 +33,8 @@ Graph: Div, Softmax, Softmax, Mul, Mul, Add, Add; opset >= 13; no fold.
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 import scipy.optimize
 
@@ -46,11 +48,11 @@ KINDS = ("multiclass",)
 _SUM_TOL = 1e-6
 
 
-def n_parameters(num_classes: int = 0, params: dict | None = None) -> int:
+def n_parameters(num_classes: int = 0, params: dict[str, Any] | None = None) -> int:
     return 3  # T and two free weights
 
 
-def apply(params: dict, scores: np.ndarray) -> np.ndarray:
+def apply(params: dict[str, Any], scores: np.ndarray) -> np.ndarray:
     """Calibrated probabilities, float64 (the NumPy reference).
 
     Examples
@@ -67,7 +69,8 @@ def apply(params: dict, scores: np.ndarray) -> np.ndarray:
     return w1 * softmax(z / t, axis=-1) + w2 * softmax(z, axis=-1) + w3 / z.shape[-1]
 
 
-def check_parameters(params: dict, num_classes: int | None = None, kind: str = "multiclass") -> dict:
+def check_parameters(params: dict[str, Any], num_classes: int | None = None, kind: str = "multiclass") -> dict[str,
+                                                                                                               Any]:
     """Validate parameters read from a file; returns them as plain numbers.
 
     Raises
@@ -176,7 +179,7 @@ def build(
     x: str,
     dtype: str,
     num_classes: int,
-    params: dict,
+    params: dict[str, Any],
     *,
     taken=(),
     compute_dtype: str | None = None,

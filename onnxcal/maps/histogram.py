@@ -35,6 +35,7 @@ Gather).
 from __future__ import annotations
 
 from functools import partial
+from typing import Any
 
 import numpy as np
 
@@ -48,7 +49,7 @@ DEFAULT_BINS = 10  # Zadrozny & Elkan 2001 used 10 bins (from memory)
 STRATEGIES = ("quantile", "uniform")
 
 
-def n_parameters(num_classes: int, params: dict | None = None) -> int:
+def n_parameters(num_classes: int, params: dict[str, Any] | None = None) -> int:
     """Edges and values over all classes (the fit decides how many: ``params`` is needed)."""
     if params is None:
         raise ValueError("a binning's size depends on its fit: pass params")
@@ -87,7 +88,7 @@ def binned(p: np.ndarray, t: np.ndarray, w: np.ndarray, bins: int, strategy: str
     return edges, np.clip(values, 0.0, 1.0)
 
 
-def calibrate_columns(params: dict, p: np.ndarray) -> np.ndarray:
+def calibrate_columns(params: dict[str, Any], p: np.ndarray) -> np.ndarray:
     q = np.empty_like(p)
     for k, (e, v) in enumerate(zip(params["edges"], params["values"], strict=True)):
         q[:, k] = np.asarray(v, dtype=np.float64)[np.searchsorted(np.asarray(e, dtype=np.float64), p[:, k],
@@ -95,7 +96,7 @@ def calibrate_columns(params: dict, p: np.ndarray) -> np.ndarray:
     return q
 
 
-def apply(params: dict, scores: np.ndarray) -> np.ndarray:
+def apply(params: dict[str, Any], scores: np.ndarray) -> np.ndarray:
     """Calibrated probabilities, float64 (the NumPy reference).
 
     Examples
@@ -108,7 +109,7 @@ def apply(params: dict, scores: np.ndarray) -> np.ndarray:
     return _lookup.renormalise(calibrate_columns(params, p))
 
 
-def check_parameters(params: dict, num_classes: int | None = None, kind: str | None = None) -> dict:
+def check_parameters(params: dict[str, Any], num_classes: int | None = None, kind: str | None = None) -> dict[str, Any]:
     """Validate parameters read from a file; returns them as plain numbers.
 
     Raises
@@ -173,7 +174,7 @@ def fit(
     return MapFit(METHOD, _lookup.kind_of_scores(scores.shape[1]), params, True, float(passes))
 
 
-def tables(params: dict) -> dict[str, np.ndarray]:
+def tables(params: dict[str, Any]) -> dict[str, np.ndarray]:
     """The padded thresholds (K x M) and values (K x (M + 1)) the graph holds."""
     edges = [np.asarray(e, dtype=np.float64) for e in params["edges"]]
     values = [np.asarray(v, dtype=np.float64) for v in params["values"]]
@@ -189,7 +190,7 @@ def build(
     x: str,
     dtype: str,
     num_classes: int,
-    params: dict,
+    params: dict[str, Any],
     *,
     taken=(),
     compute_dtype: str | None = None,

@@ -44,6 +44,8 @@ diag(a) A and a * c + b; the Sigmoid and the renormalisation stay.
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 import scipy.optimize
 
@@ -58,11 +60,11 @@ KINDS = ("multiclass", "binary")
 A_MIN, A_MAX = 1.0 / T_MAX, 1.0 / T_MIN
 
 
-def n_parameters(num_classes: int, params: dict | None = None) -> int:
+def n_parameters(num_classes: int, params: dict[str, Any] | None = None) -> int:
     return 2 * num_classes
 
 
-def apply(params: dict, scores: np.ndarray) -> np.ndarray:
+def apply(params: dict[str, Any], scores: np.ndarray) -> np.ndarray:
     """Calibrated probabilities, float64 (the NumPy reference).
 
     Examples
@@ -76,7 +78,7 @@ def apply(params: dict, scores: np.ndarray) -> np.ndarray:
     return _lookup.renormalise(q)
 
 
-def check_parameters(params: dict, num_classes: int | None = None, kind: str | None = None) -> dict:
+def check_parameters(params: dict[str, Any], num_classes: int | None = None, kind: str | None = None) -> dict[str, Any]:
     """Validate parameters read from a file; returns them as plain numbers.
 
     Raises
@@ -126,7 +128,7 @@ def fit(
     rows: np.ndarray | None = None,
     weights: np.ndarray | None = None,
     l2: float = 0.0,
-    start: dict | None = None,
+    start: dict[str, Any] | None = None,
 ) -> MapFit:
     """Fit a_k, b_k for every class by its binary cross-entropy (L-BFGS-B, analytic gradient).
 
@@ -185,7 +187,7 @@ def build(
     x: str,
     dtype: str,
     num_classes: int,
-    params: dict,
+    params: dict[str, Any],
     *,
     taken=(),
     compute_dtype: str | None = None,

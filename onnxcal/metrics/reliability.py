@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -64,10 +65,10 @@ class Reliability:
         gaps = np.abs(self.observed[full] - self.confidence[full]) * self.counts[full]
         return float(gaps.sum() / self.counts.sum()) if full.any() else float("nan")
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         """JSON-ready: arrays as lists, NaN (empty bins) as None."""
 
-        def plain(a: np.ndarray) -> list:
+        def plain(a: np.ndarray) -> list[Any]:
             return [None if not np.isfinite(v) else float(v) for v in np.asarray(a, dtype=np.float64)]
 
         return {

@@ -10,6 +10,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -49,7 +50,7 @@ class ReportResult:
 
     directory: str
     files: tuple[str, ...]
-    content: dict
+    content: dict[str, Any]
 
 
 @dataclass(frozen=True)
@@ -67,7 +68,7 @@ class Evaluation:
 # Describing a scaling (shared with the CLI)
 
 
-def describe_scaling(scaling: Scaling, intervals: dict | None = None) -> str:
+def describe_scaling(scaling: Scaling, intervals: dict[str, Any] | None = None) -> str:
     """One line naming the method and its parameters, with the T interval if any."""
     iv = (intervals or {}).get("parameters", {})
     if scaling.temperature is not None:
@@ -144,7 +145,7 @@ def evaluation(cap: Capture, scaling: Scaling, summary: FitSummary | None, n_bin
     )
 
 
-def _balance(labels: np.ndarray, kind: str, names: list[str]) -> list[dict]:
+def _balance(labels: np.ndarray, kind: str, names: list[str]) -> list[dict[str, Any]]:
     n = len(labels)
     if kind == "multiclass":
         counts = np.bincount(labels, minlength=len(names))
@@ -164,7 +165,7 @@ def _default_names(kind: str, k: int) -> list[str]:
     return [f"{word} {i}" for i in range(k)]
 
 
-def _metric_table(metrics: Metrics) -> dict:
+def _metric_table(metrics: Metrics) -> dict[str, Any]:
     return {f: _plain(getattr(metrics, f)) for f in METRIC_FIELDS} | {"n": metrics.n, "n_bins": metrics.n_bins}
 
 
@@ -176,7 +177,7 @@ def _plain(v):
     return v if np.isfinite(v) else None
 
 
-def _verdict(content: dict) -> list[str]:
+def _verdict(content: dict[str, Any]) -> list[str]:
     """Short plain sentences a reviewer reads first."""
     m = content["metrics"]
     before, after = m["before"], m["after"]
@@ -224,9 +225,9 @@ def build(
     summary: FitSummary | None = None,
     class_names: list[str] | None = None,
     n_bins: int | None = None,
-    calibrated: dict | None = None,
+    calibrated: dict[str, Any] | None = None,
     verification: VerifyResult | None = None,
-) -> dict:
+) -> dict[str, Any]:
     """Every number of the report, as the JSON-ready dictionary report.json holds.
 
     Parameters

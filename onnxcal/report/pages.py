@@ -5,6 +5,7 @@ from __future__ import annotations
 import base64
 import html
 import json
+from typing import Any
 
 from ..metrics import METRIC_FIELDS, METRIC_LABELS
 from ..scaling import Scaling
@@ -74,7 +75,7 @@ def _table(head: list[str], rows: list[list[str]], numeric_from: int = 1) -> str
     return "\n".join(out)
 
 
-def metric_rows(content: dict) -> tuple[list[str], list[list[str]]]:
+def metric_rows(content: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
     """Header and rows of the before/after table (HTML and Markdown)."""
     m = content["metrics"]
     head = ["metric", "before", "after"]
@@ -93,7 +94,7 @@ def metric_rows(content: dict) -> tuple[list[str], list[list[str]]]:
     return head, rows
 
 
-def _parameter_rows(content: dict) -> list[list[str]]:
+def _parameter_rows(content: dict[str, Any]) -> list[list[str]]:
     """One row per parameter value: name, value, 95% interval (when known)."""
     c = content["calibration"]
     names = content["data"]["class_names"]
@@ -111,7 +112,7 @@ def _parameter_rows(content: dict) -> list[list[str]]:
     return rows
 
 
-def _model_rows(content: dict) -> list[list[str]]:
+def _model_rows(content: dict[str, Any]) -> list[list[str]]:
     m = content["model"]
     rows = [["original model", m["name"]], ["original model sha256", m["sha256"]],
             ["class-score output", m["output"]], ["logits tensor", m["scores"]]]
@@ -131,14 +132,14 @@ def _verdict_item(line: str) -> str:
     return f"<li{marked}>{_e(line)}</li>"
 
 
-def _verification_html(v: dict) -> str:
+def _verification_html(v: dict[str, Any]) -> str:
     rows = [[c["name"], c["status"].upper() if c["status"] == "fail" else c["status"],
              format_figure(c["value"]), format_figure(c["limit"]), c["detail"]] for c in v["checks"]]
     head = f"<p>{v['n']} samples; reference from: {_e(v['reference_from'])} ({_e(v['original'])}).</p>"
     return head + _table(["check", "result", "value", "limit", "what"], rows, numeric_from=9)
 
 
-def render_html(content: dict, pngs: dict[str, bytes]) -> str:
+def render_html(content: dict[str, Any], pngs: dict[str, bytes]) -> str:
     """The self-contained report.html: inline CSS, plots as base64 PNG, no external links."""
     d, c, m = content["data"], content["calibration"], content["metrics"]
     title = f"Calibration report: {content['model']['name']}"
@@ -213,7 +214,7 @@ def _md(text) -> str:
     return str(text).replace("|", "\\|")
 
 
-def render_markdown(content: dict) -> str:
+def render_markdown(content: dict[str, Any]) -> str:
     """summary.md: a short before/after table and the verdict, for a pull-request comment."""
     c, m = content["calibration"], content["metrics"]
     head, rows = metric_rows(content)
@@ -236,7 +237,7 @@ def render_markdown(content: dict) -> str:
     return "\n".join(lines)
 
 
-def render_json(content: dict) -> str:
+def render_json(content: dict[str, Any]) -> str:
     return json.dumps(content, indent=2, sort_keys=True, allow_nan=False) + "\n"
 
 
@@ -259,7 +260,7 @@ def _utf8(text: str) -> bytes:
         return raw.decode("utf-8", "backslashreplace").encode()
 
 
-def render(content: dict, formats) -> dict[str, bytes]:
+def render(content: dict[str, Any], formats) -> dict[str, bytes]:
     """Every file of the report for ``formats``, by file name, in memory."""
     pngs = draw(content)
     files: dict[str, bytes] = {}

@@ -6,6 +6,7 @@ Colours are the Okabe-Ito palette; before and after also differ by hatching and 
 from __future__ import annotations
 
 import io
+from typing import Any
 
 import numpy as np
 
@@ -76,7 +77,7 @@ def _array(values) -> np.ndarray:
     return np.array([np.nan if v is None else v for v in values], dtype=np.float64)
 
 
-def _panel_titles(content: dict) -> tuple[str, str]:
+def _panel_titles(content: dict[str, Any]) -> tuple[str, str]:
     m = content["metrics"]
     after = "after calibration"
     t = Scaling(content["calibration"]["method"], content["calibration"]["figures_use"]).temperature
@@ -85,7 +86,7 @@ def _panel_titles(content: dict) -> tuple[str, str]:
     return f"before calibration, {m['before']['n']} samples", after
 
 
-def _reliability_plot(content: dict) -> bytes:
+def _reliability_plot(content: dict[str, Any]) -> bytes:
     rel = content["reliability"]
     x_label, y_label, _ = _axis_words(rel["before"]["quantity"])
     fig, axes = _new_figure(2)
@@ -127,7 +128,7 @@ def _reliability_plot(content: dict) -> bytes:
     return _png(fig)
 
 
-def _confidence_plot(content: dict) -> bytes:
+def _confidence_plot(content: dict[str, Any]) -> bytes:
     rel = content["reliability"]
     x_label, _, what = _axis_words(rel["before"]["quantity"])
     fig, axes = _new_figure(2)
@@ -158,7 +159,7 @@ def _confidence_plot(content: dict) -> bytes:
     return _png(fig)
 
 
-def _classes_plot(content: dict) -> bytes:
+def _classes_plot(content: dict[str, Any]) -> bytes:
     rel = content["reliability"]
     names = content["data"]["class_names"]
     before, after = _array(rel["before"]["class_error"]), _array(rel["after"]["class_error"])
@@ -184,7 +185,7 @@ def _classes_plot(content: dict) -> bytes:
     return _png(fig)
 
 
-def draw(content: dict) -> dict[str, bytes]:
+def draw(content: dict[str, Any]) -> dict[str, bytes]:
     """The plots of a report as PNG bytes, by name (see ``PLOTS``).
 
     Each is ``PLOT_PIXELS`` (width, height): the reliability diagrams before
