@@ -98,7 +98,7 @@ def write_error(exc: OSError, dests: str | os.PathLike[str] | Sequence[str | os.
     if isinstance(dests, (str, os.PathLike)):
         dests = [dests]
     names = ", ".join(f"'{d}'" for d in dests)
-    reason, hint = _REASONS.get(exc.errno, (exc.strerror or str(exc), "check the output path and its disk"))
+    reason, hint = _REASONS.get(exc.errno or 0, (exc.strerror or str(exc), "check the output path and its disk"))
     detail = f" ({exc.strerror})" if exc.strerror and exc.strerror.lower() != reason else ""
     return OnnxcalError(f"cannot write {names}: {reason}{detail}", f"{hint}; no output was written")
 
@@ -322,7 +322,7 @@ def atomic_paths(dests: Sequence[str | os.PathLike[str]], *, replace: bool | Non
                 t.discard()
 
 
-def _step(action, dest: Path) -> None:
+def _step(action: Callable[[], object], dest: Path) -> None:
     try:
         action()
     except OSError as exc:

@@ -33,7 +33,7 @@ from . import _signals
 from .errors import OnnxcalWarning
 
 try:
-    import fcntl
+    import fcntl as fcntl  # re-exported: _files locks through the same name (None where absent)
 except ImportError:  # Windows: no locks, so stale temporaries are left alone
     fcntl = None  # type: ignore[assignment]
 

@@ -61,7 +61,7 @@ class RowStats:
         self.unit += int(unit.sum())
         self.probabilities += int((unit & (np.abs(r.sum(axis=1) - 1) <= SUM_TOL)).sum()) if r.shape[1] > 1 else 0
         with np.errstate(invalid="ignore", over="ignore"):
-            lse = logsumexp(np.where(finite[:, None], r, 0.0), axis=1)
+            lse = logsumexp(np.where(finite.reshape(-1, 1), r, 0.0), axis=1)
         logp = finite & (r <= VALUE_TOL).all(axis=1) & (np.abs(lse) <= SUM_TOL)
         self.log_probabilities += int(logp.sum()) if r.shape[1] > 1 else 0
 

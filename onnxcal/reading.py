@@ -15,6 +15,7 @@ use to catch a misreading.
 from __future__ import annotations
 
 import warnings
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, replace
 from typing import Any
 
@@ -23,7 +24,7 @@ import onnx
 
 from . import graph
 from . import guard as _guard
-from .capture import RunOptions, probe, run_model
+from .capture import ProgressFn, RunOptions, probe, run_model
 from .data import Dataset, check_labels
 from .errors import OnnxcalError, OnnxcalWarning
 from .fit import FitSummary
@@ -125,7 +126,7 @@ def _mismatch(z: np.ndarray, values: np.ndarray, site: ScoreSite) -> str | None:
     return None if err <= tol else f"they differ by up to {err:.3g}, more than {tol:.3g}"
 
 
-def capture_check(site: ScoreSite, kind: str):
+def capture_check(site: ScoreSite, kind: str) -> Callable[[_guard.RowStats], None]:
     """The check ``capture`` runs on the statistics of every captured row (before writing).
 
     Refuses logits behind a recognised softmax that are themselves
@@ -211,7 +212,9 @@ def warn_saturated(site: ScoreSite, stats: _guard.RowStats | None) -> None:
     )
 
 
-def check_label_coverage(labels: np.ndarray, k: int, site: ScoreSite, class_names, source: str) -> None:
+def check_label_coverage(
+    labels: np.ndarray, k: int, site: ScoreSite, class_names: Sequence[str] | None, source: str
+) -> None:
     """Refuse (or warn about) an output with far more values per row than the labels have classes.
 
     The labels are checked first (class indices in [0, K)), so a bad label
@@ -261,7 +264,7 @@ def identity(
     records: tuple[Record, ...],
     dataset: Dataset,
     run: RunOptions,
-    progress=None,
+    progress: ProgressFn | None = None,
 ) -> Check:
     """``verify.identity_check`` of the patched model at the identity against ``original``."""
     if original is None:
@@ -294,7 +297,9 @@ def _samples_first(spec: graph.TensorSpec) -> bool:
     return not (isinstance(spec.shape[0], int) and any(not isinstance(d, int) for d in spec.shape[1:]))
 
 
-def _tolerances(patched: onnx.ModelProto, original: onnx.ModelProto, records, names: list[str]) -> dict[str, float]:
+def _tolerances(
+    patched: onnx.ModelProto, original: onnx.ModelProto, records: tuple[Record, ...], names: list[str]
+) -> dict[str, float]:
     """Per output: the calibrated ones follow the dtypes their values pass through; others their own dtype."""
     specs = {vi.name: graph.tensor_spec(vi) for vi in original.graph.output}
     tols = {n: (tolerance(specs[n].dtype) if specs[n].is_float else 0.0) for n in names}

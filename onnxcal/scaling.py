@@ -32,6 +32,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from .errors import OnnxcalError
 
@@ -68,17 +69,17 @@ class Scaling:
     kind: str = "multiclass"
 
     @classmethod
-    def of_temperature(cls, temperature, kind: str = "multiclass") -> Scaling:
+    def of_temperature(cls, temperature: ArrayLike, kind: str = "multiclass") -> Scaling:
         """Temperature scaling with one T (a number) or one T per label (a sequence)."""
         t = np.asarray(temperature, dtype=np.float64)
         value = float(t) if t.ndim == 0 else [float(v) for v in t]
         return cls("temperature", {"temperature": value}, kind)
 
     @classmethod
-    def of_affine(cls, w, b, method: str, kind: str) -> Scaling:
+    def of_affine(cls, w: ArrayLike, b: ArrayLike, method: str, kind: str) -> Scaling:
         """Vector scaling (lists) or Platt scaling (numbers): w * z + b."""
-        def plain(a):
-            a = np.asarray(a, dtype=np.float64)
+        def plain(value: ArrayLike) -> float | list[float]:
+            a = np.asarray(value, dtype=np.float64)
             return float(a) if a.ndim == 0 else [float(v) for v in a]
 
         return cls(method, {"w": plain(w), "b": plain(b)}, kind)
@@ -111,8 +112,10 @@ class Scaling:
         z = np.asarray(logits, dtype=np.float64)
         a = self.arrays()
         if self.method == "temperature":
-            return z / a["temperature"]
-        return z * a["w"] + a["b"]
+            scaled: np.ndarray = z / a["temperature"]
+        else:
+            scaled = z * a["w"] + a["b"]
+        return scaled
 
     def affine(self) -> tuple[np.ndarray, np.ndarray]:
         """``(w, b)`` with ``apply(z) = w * z + b``, float64: ``(1/T, 0)`` for temperature scaling.
@@ -139,7 +142,7 @@ class Scaling:
         return {"method": self.method, "kind": self.kind, "parameters": dict(self.parameters)}
 
 
-def _finite_numbers(value, what: str) -> np.ndarray:
+def _finite_numbers(value: object, what: str) -> np.ndarray:
     try:
         arr = np.asarray(value, dtype=np.float64)
     except (TypeError, ValueError) as exc:

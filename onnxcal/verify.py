@@ -22,8 +22,9 @@ from datetime import UTC, datetime
 from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
-from .graph import np_dtype
+from .graph import FoldedValues, np_dtype
 from .graph import post as _post
 from .metrics import METRIC_LABELS, Metrics, chunk_rows, log_softmax, sigmoid
 from .scaling import Scaling
@@ -321,7 +322,7 @@ def identity_check(outputs: list[tuple[str, np.ndarray, np.ndarray, float]], par
                  f"with {params} the patched model reproduces the original's outputs {names} (max difference)")
 
 
-def _difference(a, b) -> float:
+def _difference(a: ArrayLike, b: ArrayLike) -> float:
     """Largest difference between two outputs: numbers (float or not), or ZipMap lists of maps."""
     a, b = np.asarray(a), np.asarray(b)
     if a.dtype == object:  # a ZipMap's sequence of maps: compare the values, key by key
@@ -364,13 +365,16 @@ def _top_class_agreeing(got: np.ndarray, ref: np.ndarray, tol: float) -> int:
     return int(np.count_nonzero(chosen >= ref.max(axis=-1) - 2 * tol))
 
 
-def _flat(values) -> np.ndarray:
+def _flat(values: ArrayLike | dict[str, ArrayLike]) -> np.ndarray:
     if isinstance(values, dict):
         return np.concatenate([np.asarray(values[k], dtype=np.float64).reshape(-1) for k in sorted(values)])
     return np.asarray(values, dtype=np.float64).reshape(-1)
 
 
-def record_check(recorded, in_graph, dtype: str | None = "float32") -> Check:
+def record_check(
+    recorded: float | dict[str, ArrayLike], in_graph: float | dict[str, ArrayLike] | None,
+    dtype: str | None = "float32",
+) -> Check:
     """Check that the record's parameters are the ones the graph uses.
 
     ``recorded`` and ``in_graph`` are a temperature, or dicts of parameter
@@ -405,7 +409,7 @@ def record_check(recorded, in_graph, dtype: str | None = "float32") -> Check:
 FOLD_LIMIT = {"float64": 1e-12, "float32": 4 * 2.0**-24, "float16": 4 * 2.0**-11, "bfloat16": 4 * 2.0**-8}
 
 
-def folded_record_check(recorded: Scaling, found) -> Check:
+def folded_record_check(recorded: Scaling, found: FoldedValues | None) -> Check:
     """Check that a folded model's weights carry the record's parameters.
 
     ``found`` (``graph.folded_values``) holds the per-class w and b
