@@ -177,7 +177,8 @@ def solve(
 
 
 def moment_pass(
-    logits: np.ndarray, labels: np.ndarray, beta: float, selection: Selection = ALL_ROWS, threads: int | None = None, order: int = ORDER
+    logits: np.ndarray, labels: np.ndarray, beta: float, selection: Selection = ALL_ROWS,
+    threads: int | None = None, order: int = ORDER,
 ) -> MomentSums:
     """Weighted sums of the NLL's first ``order`` derivatives at beta (one part)."""
     lanes = run_pass(

@@ -247,7 +247,9 @@ def _summarize(
         before = evaluate(logits, labels, one, options.n_bins, threads=threads)
         after = evaluate(logits, labels, result.scaling, options.n_bins, threads=threads)
         fit_part, basis = None, "in-sample"
-        notes.append("--holdout 0: the figures are in-sample (on the data the parameters were fitted on), so optimistic")
+        notes.append(
+            "--holdout 0: the figures are in-sample (on the data the parameters were fitted on), so optimistic"
+        )
     intervals = None
     if options.bootstrap > 0:
         intervals = resample.bootstrap(
