@@ -10,7 +10,7 @@ from dataclasses import replace
 
 import numpy as np
 
-from .._files import require_file
+from .._paths import require_file
 from ..data import read_npz
 from ..errors import OnnxcalError, OnnxcalWarning, first_line
 from .result import Capture, CaptureMeta
@@ -155,8 +155,8 @@ def _samples_in_order(captures: Sequence[Capture], sources: Sequence[str], membe
 def _check_coverage(parts: Sequence[Capture], sources: Sequence[str]) -> None:
     """Shards i/N of one set, all present, must cover it; warn when some are missing."""
     metas = [c.meta for c in parts]
-    shards = [m.shard for m in metas]
-    if any(s is None for s in shards) or any(m.limit is not None for m in metas):
+    shards = [m.shard for m in metas if m.shard is not None]
+    if len(shards) < len(metas) or any(m.limit is not None for m in metas):
         return
     counts = {int(s.split("/")[1]) for s in shards}
     seeds = {m.shuffle_seed for m in metas}

@@ -111,8 +111,8 @@ class Dataset:
             return slice(int(r[0]), int(r[-1]) + 1)
         return r
 
-    def batch(self, start: int, stop: int, dtypes: Mapping[str, str]) -> dict[str, np.ndarray]:
-        """The inputs of selected rows ``start..stop-1``, contiguous, cast to ``dtypes``."""
+    def batch(self, start: int, stop: int, dtypes: Mapping[str, str | None]) -> dict[str, np.ndarray]:
+        """The inputs of selected rows ``start..stop-1``, contiguous, cast to ``dtypes`` (None: as they are)."""
         key = self._key(start, stop)
         return {
             name: np.ascontiguousarray(self.inputs[name][key], dtype=dtypes[name]) for name in dtypes
