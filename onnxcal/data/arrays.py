@@ -15,18 +15,22 @@ import zipfile
 from collections.abc import Mapping
 from dataclasses import replace
 from pathlib import Path
+from typing import IO, TYPE_CHECKING, Any
 
 import numpy as np
 
-from .._files import require_file
 from .._limits import check_memory, format_bytes
+from .._paths import require_file
 from ..errors import OnnxcalError, first_line
 from .fingerprint import combine, file_fingerprint
 from .inputs import show_shape
 from .spec import LABELS_KEY, Dataset
 
+if TYPE_CHECKING:
+    from .images import ImageArray
 
-def _member_header(fh) -> tuple[tuple[int, ...], bool, np.dtype] | None:
+
+def _member_header(fh: IO[bytes]) -> tuple[tuple[int, ...], bool, np.dtype] | None:
     """The shape, order and dtype in an ``.npy`` header read from ``fh``, or None."""
     try:
         version = np.lib.format.read_magic(fh)
@@ -92,7 +96,7 @@ def _checked_text(arr: np.ndarray, key: str, path: Path) -> np.ndarray:
     return arr
 
 
-def _read_member(path: Path, npz, zf: zipfile.ZipFile, info: zipfile.ZipInfo | None, key: str) -> np.ndarray:
+def _read_member(path: Path, npz: Any, zf: zipfile.ZipFile, info: zipfile.ZipInfo | None, key: str) -> np.ndarray:
     """One member of an ``.npz``: its header read first, then mapped in place or read whole.
 
     Python objects are refused from the header's dtype, before numpy reads
@@ -118,7 +122,8 @@ def _read_member(path: Path, npz, zf: zipfile.ZipFile, info: zipfile.ZipInfo | N
             f"array '{key}' in '{path}' (compressed, shape {show_shape(shape)} {dtype})",
             "save the data uncompressed (numpy.savez), which onnxcal reads without loading it whole",
         )
-    return npz[key]
+    member: np.ndarray = npz[key]  # numpy.lib.npyio.NpzFile: its members are arrays
+    return member
 
 
 def read_npz(path: Path, hint: str) -> dict[str, np.ndarray]:
@@ -173,7 +178,7 @@ def load_npz(path: str | os.PathLike[str], *, require_labels: bool = True) -> Da
     return Dataset(inputs=arrays, labels=labels, source=str(p), data_id=combine([("npz", file_fingerprint(p))]))
 
 
-def _same_lengths(arrays: Mapping[str, np.ndarray], labels: np.ndarray | None, source: str) -> None:
+def _same_lengths(arrays: Mapping[str, np.ndarray | ImageArray], labels: np.ndarray | None, source: str) -> None:
     lengths = {k: (a.shape[0] if a.ndim else None) for k, a in arrays.items()}
     if labels is not None:
         lengths[LABELS_KEY] = labels.shape[0] if labels.ndim else None
@@ -213,7 +218,8 @@ def read_npy(path: str | os.PathLike[str], what: str) -> np.ndarray:
         arr = np.load(p, mmap_mode="r", allow_pickle=False)
     except (ValueError, OSError, EOFError) as exc:
         raise OnnxcalError(f"{what} '{p}' is not a readable .npy file ({first_line(exc)})", hint) from exc
-    return arr
+    checked: np.ndarray = arr  # allow_pickle=False: an array, not a pickled object
+    return checked
 
 
 def load_npy(

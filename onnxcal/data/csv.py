@@ -12,7 +12,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .._files import require_file
+from .._paths import require_file
 from ..errors import OnnxcalError
 from ..graph import TensorSpec
 from .fingerprint import combine, file_fingerprint

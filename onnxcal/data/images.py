@@ -10,12 +10,14 @@ import re
 import warnings
 from collections.abc import Sequence
 from pathlib import Path
+from types import ModuleType
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from .. import _signals
-from .._files import require_file
 from .._limits import check_memory, format_bytes
+from .._paths import require_file
 from ..errors import OnnxcalError, OnnxcalWarning, first_line
 from ..graph import TensorSpec
 from .csv import column, csv_labels, read_table
@@ -23,6 +25,9 @@ from .fingerprint import combine, file_fingerprint
 from .labels import class_indices
 from .preprocess import ImageOptions, ImagePlan, plan_images
 from .spec import Dataset
+
+if TYPE_CHECKING:
+    from PIL.Image import Image as PILImage
 
 IMAGE_SUFFIXES = frozenset({".png", ".jpg", ".jpeg", ".bmp", ".gif", ".tif", ".tiff", ".webp", ".ppm", ".pgm"})
 
@@ -61,7 +66,8 @@ class ImageArray:
         if dims is None:
             return None, None
         want = (dims[2], dims[3]) if self.plan.layout == "NCHW" else (dims[1], dims[2])
-        return tuple(w if isinstance(w, int) and w > 0 else None for w in want)
+        height, width = (w if isinstance(w, int) and w > 0 else None for w in want)
+        return height, width
 
     def _check_size(self, height: int, width: int, name: str | None = None) -> None:
         """Refuse an image that does not come out at the model's (or the first image's) size."""
@@ -122,7 +128,7 @@ class ImageArray:
         box = self._crop_box(name, w, h)
         return (h, w) if box is None else (box[3] - box[1], box[2] - box[0])
 
-    def _open(self, name: str):
+    def _open(self, name: str) -> PILImage:
         """The image ``name``, opened (its header read): Pillow's errors as OnnxcalError."""
         Image = _pillow()
 
@@ -130,7 +136,8 @@ class ImageArray:
             with warnings.catch_warnings():
                 # Pillow warns above MAX_IMAGE_PIXELS and raises at twice that; refuse both
                 warnings.simplefilter("error", Image.DecompressionBombWarning)
-                return Image.open(self.root / name)
+                opened: PILImage = Image.open(self.root / name)
+                return opened
         except Exception as exc:
             raise self._unreadable(name, exc) from exc
 
@@ -170,12 +177,12 @@ class ImageArray:
             raise self._unreadable(name, exc) from exc
         return arr[:, :, None] if arr.ndim == 2 else arr
 
-    def __getitem__(self, key) -> np.ndarray:
+    def __getitem__(self, key: int | slice | Sequence[int] | np.ndarray) -> np.ndarray:
         idx = range(len(self.files))[key] if isinstance(key, slice) else np.atleast_1d(key)
         images = [self._load(int(i)) for i in idx]
         for i, img in zip(idx, images, strict=True):
             if img.shape[:2] != self.shape_hw:
-                self._check_size(*img.shape[:2], name=self.files[int(i)])
+                self._check_size(img.shape[0], img.shape[1], name=self.files[int(i)])
         batch = np.stack(images)[..., self._chan]
         p = self.plan
         if p.dtype.kind == "f":
@@ -191,7 +198,7 @@ class ImageArray:
         return np.ascontiguousarray(batch, dtype=p.dtype)
 
 
-def _pillow():
+def _pillow() -> ModuleType:
     """``PIL.Image``, imported with SIGINT and SIGTERM held back (an extension module's import
     interrupted by a signal can crash the process)."""
     with _signals.deferred():
@@ -211,7 +218,7 @@ def shown(name: str | os.PathLike[str]) -> str:
     return os.fsencode(name).decode("utf-8", "backslashreplace")
 
 
-def _eight_bits(img, name: str):
+def _eight_bits(img: PILImage, name: str) -> PILImage:
     """``img`` with 8-bit channels: 16-bit greyscale reduced by its high byte.
 
     Pillow opens a 16-bit greyscale PNG as mode ``I;16`` and its
@@ -224,7 +231,8 @@ def _eight_bits(img, name: str):
     Image = _pillow()
 
     if img.mode in _SIXTEEN_BITS:
-        return Image.fromarray((np.asarray(img, dtype=np.uint16) >> 8).astype(np.uint8), mode="L")
+        reduced: PILImage = Image.fromarray((np.asarray(img, dtype=np.uint16) >> 8).astype(np.uint8), mode="L")
+        return reduced
     if img.mode in _UNKNOWN_RANGE:
         raise OnnxcalError(
             f"image '{name}' has {_UNKNOWN_RANGE[img.mode]} pixels (Pillow mode '{img.mode}'), whose range "

@@ -9,7 +9,7 @@ from collections.abc import Callable, Sequence
 
 import numpy as np
 
-from .._files import require_file
+from .._paths import require_file
 from ..errors import OnnxcalError
 
 

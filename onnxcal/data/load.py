@@ -42,18 +42,18 @@ def load_dataset(
     path = Path(spec.path) if spec.path is not None else None
     form = "images" if path is not None and path.is_dir() else "csv" if _is_csv(path) else "arrays"
     _check_options_apply(spec, form)
-    if form == "images":
+    if form == "images" and path is not None:
         ds = load_image_folder(
             path, _single_input(model_inputs, path), image_options(spec.image, spec.preprocess),
             labels_csv=spec.labels, label_column=spec.label_column, classes=classes,
         )
-    elif form == "csv":
+    elif form == "csv" and path is not None:
         ds = load_csv(
             path, _single_input(model_inputs, path), label_column=spec.label_column,
             feature_columns=spec.feature_columns, classes=classes, require_labels=require_labels,
         )
-    elif spec.inputs or path.suffix.lower() == ".npy":
-        files = dict(spec.inputs) or {_single_input(model_inputs, path).name: path}
+    elif path is None or spec.inputs or path.suffix.lower() == ".npy":
+        files = dict(spec.inputs) if spec.inputs or path is None else {_single_input(model_inputs, path).name: path}
         ds = load_npy(files, spec.labels, require_labels=require_labels)
     else:
         ds = load_npz(path, require_labels=require_labels and spec.labels is None)

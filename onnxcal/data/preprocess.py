@@ -10,13 +10,13 @@ import json
 import os
 import re
 import tomllib
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, Never
 
 import numpy as np
 
-from .._files import require_file
+from .._paths import require_file
 from ..errors import OnnxcalError
 from ..graph import TensorSpec
 from .inputs import show_shape
@@ -114,7 +114,7 @@ def image_options(values: Mapping[str, object], file: str | os.PathLike[str] | N
     return ImageOptions(**out)
 
 
-def _image_value(key: str, value, where: str):
+def _image_value(key: str, value: object, where: str) -> Any:  # the type of ImageOptions' field ``key``
     def fail(what: str) -> Never:
         raise OnnxcalError(f"{where} = {value!r} is not {what}")
 
@@ -140,9 +140,11 @@ def _image_value(key: str, value, where: str):
             return False
         fail("true or false")
     if key in ("mean", "std"):
-        parts = value.split(",") if isinstance(value, str) else value if isinstance(value, (list, tuple)) else [value]
+        values: Sequence[Any] = (
+            value.split(",") if isinstance(value, str) else value if isinstance(value, (list, tuple)) else [value]
+        )
         try:
-            nums = tuple(float(v) for v in parts)
+            nums = tuple(float(v) for v in values)
         except (TypeError, ValueError):
             fail("a list of numbers, one per channel")
         if not nums or not all(np.isfinite(nums)) or (key == "std" and min(nums) <= 0):
@@ -163,7 +165,7 @@ def _image_value(key: str, value, where: str):
     return text if text in _INTERPOLATION else fail(f"one of {', '.join(_INTERPOLATION)}")
 
 
-def _as_int(value) -> int | None:
+def _as_int(value: object) -> int | None:
     if isinstance(value, bool):
         return None
     if isinstance(value, int):

@@ -14,12 +14,15 @@ import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from .._limits import check_range
 from ..errors import OnnxcalError
+
+if TYPE_CHECKING:
+    from .images import ImageArray
 
 LABELS_KEY = "labels"
 """The array of an ``.npz`` that holds the labels."""
@@ -80,7 +83,7 @@ class Dataset:
         The resolved image preprocessing, for the capture's record.
     """
 
-    inputs: Mapping[str, np.ndarray]
+    inputs: Mapping[str, np.ndarray | ImageArray]
     labels: np.ndarray | None
     source: str
     class_names: tuple[str, ...] | None = None
@@ -123,7 +126,7 @@ class Dataset:
         """Bytes per row of the memory-mapped inputs (0 when none is mapped)."""
         return sum(
             arr.strides[0] for arr in self.inputs.values()
-            if getattr(arr, "_mmap", None) is not None and arr.ndim
+            if isinstance(arr, np.ndarray) and getattr(arr, "_mmap", None) is not None and arr.ndim
         )
 
     def release(self, start: int, stop: int) -> None:
@@ -138,9 +141,11 @@ class Dataset:
             _release_rows(arr, first, last)
 
 
-def _release_rows(arr, first: int, stop: int) -> None:
+def _release_rows(arr: np.ndarray | ImageArray, first: int, stop: int) -> None:
     mm = getattr(arr, "_mmap", None)  # numpy.memmap keeps its mmap object here
-    if mm is None or not hasattr(mm, "madvise") or not arr.flags.c_contiguous or arr.ndim == 0:
+    if not isinstance(arr, np.memmap) or mm is None or not hasattr(mm, "madvise"):
+        return
+    if not arr.flags.c_contiguous or arr.ndim == 0:
         return
     row = arr.strides[0]
     delta = arr.offset % mmap.ALLOCATIONGRANULARITY  # the map starts at a granularity boundary
