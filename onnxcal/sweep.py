@@ -38,7 +38,7 @@ import os
 import threading
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
-from contextlib import nullcontext
+from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
 from math import comb
 from typing import Any, Protocol
@@ -60,7 +60,7 @@ UNSHIFTED_LIMIT = 20.0
 _BLAS: list[Any] = []
 
 
-def one_blas_thread():
+def one_blas_thread() -> AbstractContextManager[Any]:
     """A context in which BLAS (numpy's dot products) runs on one thread.
 
     onnxcal's passes and bootstrap replicates run on threads of their own; a

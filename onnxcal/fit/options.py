@@ -6,6 +6,7 @@ Also the parameter bounds every solver shares and the notes a result carries
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import asdict, dataclass
 from typing import Any
 
@@ -103,9 +104,9 @@ class FitResult:
         }
 
 
-def _first(idx) -> str:
-    idx = [int(i) for i in idx]
-    return ", ".join(map(str, idx[:5])) + (", ..." if len(idx) > 5 else "")
+def _first(idx: Iterable[int]) -> str:
+    shown = [int(i) for i in idx]
+    return ", ".join(map(str, shown[:5])) + (", ..." if len(shown) > 5 else "")
 
 
 def _bound_warning(temperature: float) -> str:

@@ -13,7 +13,7 @@ from ..errors import OnnxcalError, first_line
 from ..metrics import Metrics
 from ..scaling import Scaling, check_scaling
 from .options import FitOptions, FitResult
-from .summary import FitSummary
+from .outcome import FitSummary
 
 
 def save_fit(path: str | os.PathLike[str], summary: FitSummary) -> None:

@@ -12,7 +12,8 @@ import numpy as np
 
 from .. import resample
 from ..errors import OnnxcalError
-from ..metrics import evaluate
+from ..expansion import Expansion
+from ..metrics import Metrics, evaluate
 from ..passes import fit_and_score
 from ..scaling import METHODS_FOR, MULTILABEL_MODES, SIGMOID_L1, Scaling, kind_of
 from ..sweep import one_blas_thread
@@ -90,8 +91,13 @@ def fit_scaling(
 # --------------------------------------------------------------------------
 # The summary FIT.json holds
 
+_Scores = tuple[tuple[Metrics, ...], ...]
+"""The metrics before and after calibration, per part (fit part, held-out part; or all rows)."""
 
-def _fit_and_evaluate(logits, labels, options, fit_rows, eval_rows):
+
+def _fit_and_evaluate(
+    logits: np.ndarray, labels: np.ndarray, options: FitOptions, fit_rows: np.ndarray, eval_rows: np.ndarray
+) -> tuple[FitResult, FitResult, _Scores]:
     """Fit on the fit part, score both parts before and after, refit on all (any method)."""
     if fit_rows is eval_rows:
         result = fit_scaling(logits, labels, options)
@@ -106,7 +112,10 @@ def _fit_and_evaluate(logits, labels, options, fit_rows, eval_rows):
     return part, fit_scaling(logits, labels, options, start=part.scaling), scores
 
 
-def _temperature_passes(logits, labels, options, fit_rows, eval_rows, threads):
+def _temperature_passes(
+    logits: np.ndarray, labels: np.ndarray, options: FitOptions, fit_rows: np.ndarray, eval_rows: np.ndarray,
+    threads: int | None,
+) -> tuple[FitResult, FitResult, _Scores, Expansion | None]:
     """The same for a multiclass temperature, in three passes (see :mod:`onnxcal.passes`)."""
     scored = fit_and_score(
         logits, labels, fit_rows, eval_rows, options.n_bins, (1.0 / T_MAX, 1.0 / T_MIN), options.bootstrap > 0,
@@ -149,7 +158,9 @@ def summarize(
         return _summarize(logits, labels, capture_meta, options, threads)
 
 
-def _summarize(logits, labels, capture_meta, options, threads) -> FitSummary:
+def _summarize(
+    logits: np.ndarray, labels: np.ndarray, capture_meta: dict[str, Any], options: FitOptions, threads: int | None
+) -> FitSummary:
     kind = resolve_kind(logits, labels, options)
     n = len(logits)
     notes, warnings = [], data_warnings(labels, logits.shape[1])
