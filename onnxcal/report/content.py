@@ -170,12 +170,12 @@ def _metric_table(metrics: Metrics) -> dict[str, Any]:
     return {f: _plain(getattr(metrics, f)) for f in METRIC_FIELDS} | {"n": metrics.n, "n_bins": metrics.n_bins}
 
 
-def _plain(v):
+def _plain(v: float | None) -> float | None:
     """A JSON-safe number: NaN and infinities become None."""
     if v is None:
         return None
-    v = float(v)
-    return v if np.isfinite(v) else None
+    x = float(v)
+    return x if np.isfinite(x) else None
 
 
 def _verdict(content: dict[str, Any]) -> list[str]:
@@ -304,10 +304,10 @@ def build(
             "n_bins": bins,
             "before": _metric_table(before),
             "after": _metric_table(after),
-            "after_interval": intervals.get("after") if use_intervals else None,
+            "after_interval": intervals.get("after") if use_intervals and intervals is not None else None,
             "fit_part": (
                 {part: _metric_table(m) for part, m in summary.fit_part.items()}
-                if ev.summary_reproduced and summary.fit_part is not None
+                if ev.summary_reproduced and summary is not None and summary.fit_part is not None
                 else None
             ),
         },

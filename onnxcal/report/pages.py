@@ -5,6 +5,7 @@ from __future__ import annotations
 import base64
 import html
 import json
+from collections.abc import Collection, Sequence
 from typing import Any
 
 from ..metrics import METRIC_FIELDS, METRIC_LABELS
@@ -13,7 +14,7 @@ from ..verify import format_figure
 from .plots import PLOT_PIXELS, PLOTS, draw
 
 FORMATS = ("html", "md", "json", "png")
-FILES = {"html": ("report.html",), "md": ("summary.md",), "json": ("report.json",)}
+FILES: dict[str, tuple[str, ...]] = {"html": ("report.html",), "md": ("summary.md",), "json": ("report.json",)}
 FILES["png"] = tuple(f"{p}.png" for p in PLOTS)
 
 
@@ -52,15 +53,15 @@ figcaption { font-size: .9rem; color: #333; }
 """
 
 
-def _e(value) -> str:
+def _e(value: object) -> str:
     return html.escape(str(value), quote=True)
 
 
-def _num(v, digits: int = 4) -> str:
+def _num(v: float | None, digits: int = 4) -> str:
     return "-" if v is None else f"{v:.{digits}f}"
 
 
-def _interval(pair, digits: int = 4) -> str:
+def _interval(pair: Sequence[float | None] | None, digits: int = 4) -> str:
     return "-" if not pair or pair[0] is None else f"{pair[0]:.{digits}f} to {pair[1]:.{digits}f}"
 
 
@@ -210,7 +211,7 @@ def render_html(content: dict[str, Any], pngs: dict[str, bytes]) -> str:
     return "\n".join(parts)
 
 
-def _md(text) -> str:
+def _md(text: object) -> str:
     return str(text).replace("|", "\\|")
 
 
@@ -241,7 +242,7 @@ def render_json(content: dict[str, Any]) -> str:
     return json.dumps(content, indent=2, sort_keys=True, allow_nan=False) + "\n"
 
 
-def outputs(formats) -> list[str]:
+def outputs(formats: Collection[str]) -> list[str]:
     """File names written for ``formats``, in order."""
     return [name for f in FORMATS if f in formats for name in FILES[f]]
 
@@ -260,7 +261,7 @@ def _utf8(text: str) -> bytes:
         return raw.decode("utf-8", "backslashreplace").encode()
 
 
-def render(content: dict[str, Any], formats) -> dict[str, bytes]:
+def render(content: dict[str, Any], formats: Collection[str]) -> dict[str, bytes]:
     """Every file of the report for ``formats``, by file name, in memory."""
     pngs = draw(content)
     files: dict[str, bytes] = {}

@@ -6,12 +6,16 @@ Colours are the Okabe-Ito palette; before and after also differ by hatching and 
 from __future__ import annotations
 
 import io
-from typing import Any
+from collections.abc import Iterable
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from .. import _signals
 from ..scaling import Scaling
+
+if TYPE_CHECKING:
+    from matplotlib.figure import Figure
 
 PLOTS = ("reliability", "confidence", "classes")
 
@@ -56,7 +60,7 @@ def _axis_words(quantity: str) -> tuple[str, str, str]:
     )
 
 
-def _new_figure(ncols: int):
+def _new_figure(ncols: int) -> tuple[Figure, np.ndarray]:
     with _signals.deferred():  # a signal inside an extension module's import can crash it
         from matplotlib.backends.backend_agg import FigureCanvasAgg
         from matplotlib.figure import Figure
@@ -67,13 +71,13 @@ def _new_figure(ncols: int):
     return fig, axes
 
 
-def _png(fig) -> bytes:
+def _png(fig: Figure) -> bytes:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=DPI, metadata={"Software": None})
     return buf.getvalue()
 
 
-def _array(values) -> np.ndarray:
+def _array(values: Iterable[float | None]) -> np.ndarray:
     return np.array([np.nan if v is None else v for v in values], dtype=np.float64)
 
 
