@@ -10,6 +10,7 @@ import struct
 import sys
 import time
 from collections.abc import Iterator, Sequence
+from typing import Any
 
 from rich.console import Console
 from rich.progress import (
@@ -17,6 +18,8 @@ from rich.progress import (
     MofNCompleteColumn,
     Progress,
     ProgressColumn,
+    Task,
+    TaskID,
     TextColumn,
     TimeRemainingColumn,
 )
@@ -55,7 +58,7 @@ def _escaped(o: int) -> str:
 class _Console(Console):
     """A rich Console whose strings (printed, or in tables) pass through :func:`printable`."""
 
-    def render_str(self, text: str, **kwargs):
+    def render_str(self, text: str, **kwargs: Any) -> Text:
         return super().render_str(printable(text), **kwargs)
 
 
@@ -66,7 +69,7 @@ err = _Console(stderr=True, highlight=False, markup=False)
 class _RateColumn(ProgressColumn):
     """Samples per second."""
 
-    def render(self, task) -> Text:
+    def render(self, task: Task) -> Text:
         speed = task.finished_speed or task.speed
         return Text(f"{speed:,.0f} samples/s" if speed else "- samples/s")
 
@@ -86,7 +89,7 @@ def progress_bar(quiet: bool) -> Iterator[ProgressFn | None]:
         console=err,
         transient=False,
     )
-    tasks: dict[str, int] = {}
+    tasks: dict[str, TaskID] = {}
 
     shown: dict[str, float] = {}
 
@@ -115,5 +118,5 @@ def warn(messages: Sequence[str]) -> None:
         err.print(f"warning: {m}", soft_wrap=True)
 
 
-def print_json(data) -> None:
+def print_json(data: Any) -> None:
     sys.stdout.write(json.dumps(data, indent=2, sort_keys=True, default=str) + "\n")

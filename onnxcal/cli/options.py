@@ -134,7 +134,7 @@ DropNonfiniteOpt = Annotated[
 # Data, image and runtime options, shared by capture, calibrate and verify
 
 
-def _option(name: str, kind, default, flag: str, help: str, **extra) -> _inspect.Parameter:
+def _option(name: str, kind: Any, default: object, flag: str, help: str, **extra: Any) -> _inspect.Parameter:
     extra.setdefault("show_default", default is not None)
     option = typer.Option(flag, help=help, **extra)
     return _inspect.Parameter(
@@ -242,13 +242,13 @@ def data_options(*, shard: bool = False) -> Callable[..., Any]:
         names = [p.name for p in shared]
 
         @functools.wraps(fn)
-        def command(**kwargs):
+        def command(**kwargs: Any) -> Any:
             values = {name: kwargs.pop(name) for name in names}
             runtime = {k: values[k] for k in _RUNTIME_KEYS}
             return fn(**kwargs, data=_spec(values), runtime=runtime)
 
         params = own + shared
-        command.__signature__ = _inspect.Signature(params)
+        command.__signature__ = _inspect.Signature(params)  # type: ignore[attr-defined]  # read by typer
         command.__annotations__ = {p.name: p.annotation for p in params}
         del command.__wrapped__  # typer must read the new signature, not fn's
         return command

@@ -4,13 +4,14 @@ before/after table of a fit, the checks of verify, the files of a report.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from pathlib import Path
 
 from rich import box
 from rich.table import Table
 
 from ..fit import FitSummary
-from ..graph import ModelInfo, TensorSpec
+from ..graph import ModelInfo, Record, ScoreSite, TensorSpec
 from ..metrics import METRIC_LABELS
 from ..report import ReportResult, describe_scaling
 from ..verify import VerifyResult, format_figure
@@ -57,7 +58,7 @@ def render_info(info: ModelInfo) -> None:
     out.print(f"sha256: {info.sha256}")
 
 
-def _describe_site(site) -> str:
+def _describe_site(site: ScoreSite) -> str:
     names = {"softmax": "Softmax", "logsoftmax": "LogSoftmax", "sigmoid": "Sigmoid"}
     if site.spelling == "ml-classifier":
         ends = f"probabilities of an ai.onnx.ml classifier, tensor '{site.scores}'"
@@ -77,7 +78,7 @@ def _describe_site(site) -> str:
 _METRIC_ROWS = tuple(METRIC_LABELS.items())
 
 
-def _interval(pair) -> str:
+def _interval(pair: Sequence[float] | None) -> str:
     return "-" if pair is None else f"{pair[0]:.3f} to {pair[1]:.3f}"
 
 
@@ -152,7 +153,7 @@ def render_report(result: ReportResult, verdict: bool = True) -> None:
               + ", ".join(Path(f).name for f in result.files), soft_wrap=True)
 
 
-def how_patched(r) -> str:
+def how_patched(r: Record) -> str:
     """One line on what the patch did to the graph."""
     if r.folded:
         what = "1/T" if r.temperature is not None else f"{r.method} scaling"
@@ -167,7 +168,7 @@ def how_patched(r) -> str:
         "append-sigmoid": f"{nodes} + Sigmoid appended",
         "ml-log-probabilities": "classifier probabilities replaced by softmax(scaled log p)",
         "replace-values": f"values replaced in place by the activation of the scaled logits ({r.logits_from})",
-    }.get(r.rewrite, r.rewrite)
+    }.get(r.rewrite, str(r.rewrite))
     if r.compute_dtype:
         how += f", computed in {r.compute_dtype}"
     return how
