@@ -10,7 +10,7 @@ from typing import Any
 
 import numpy as np
 
-from .. import __version__
+from .. import __version__, resample
 from ..metrics import Metrics
 from ..scaling import Scaling
 from .options import FORMAT, MIN_PER_CLASS, FitOptions, FitResult, _first
@@ -130,3 +130,17 @@ class FitSummary:
         }
 
 
+
+
+def split_record(
+    options: FitOptions, labels: np.ndarray, fit_rows: np.ndarray, eval_rows: np.ndarray
+) -> dict[str, Any]:
+    """FitSummary's ``split``: the holdout fraction, its seed, the rows in each part, what it is stratified by."""
+    held = options.holdout > 0
+    return {
+        "fraction": options.holdout,
+        "seed": options.seed,
+        "n_fit": int(len(fit_rows)),
+        "n_holdout": int(len(eval_rows)) if held else 0,
+        "stratified_by": resample.strata_name(labels) if held else None,
+    }

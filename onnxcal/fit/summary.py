@@ -26,7 +26,7 @@ from .options import (
     FitOptions,
     FitResult,
 )
-from .outcome import FitSummary, data_warnings
+from .outcome import FitSummary, data_warnings, split_record
 from .temperature import _temperature_result, fit_sigmoid_temperature, fit_temperature
 
 # --------------------------------------------------------------------------
@@ -205,13 +205,7 @@ def _summarize(
         basis=basis,
         fit_part=fit_part,
         holdout_result=part if options.holdout > 0 else None,
-        split={
-            "fraction": options.holdout,
-            "seed": options.seed,
-            "n_fit": int(len(fit_rows)),
-            "n_holdout": int(len(eval_rows)) if options.holdout > 0 else 0,
-            "stratified_by": resample.strata_name(labels) if options.holdout > 0 else None,
-        },
+        split=split_record(options, labels, fit_rows, eval_rows),
         intervals=intervals,
         options=options,
         warnings=tuple(warnings),
