@@ -274,27 +274,35 @@ def identity(
     if at_one is None:
         return skipped("identity", "the parameters are folded into the weights; give --original")
     kept = [o for o in original.graph.output if o.name in {p.name for p in patched.graph.output}]
-    names = [o.name for o in kept if _samples_first(graph.tensor_spec(o))]
+    axes = {o.name: _samples_axis(graph.tensor_spec(o)) for o in kept}
+    names = [o.name for o in kept if axes[o.name] is not None]
     if not names:
         return skipped("identity", "the patched model keeps none of the original's outputs")
-    want = run_model(original, dataset, names, options=run, progress=progress, description="running the original")
-    got = run_model(at_one, dataset, names, options=run, progress=progress, description="running at the identity")
+    out_axes = [axes[n] or 0 for n in names]
+    want = run_model(original, dataset, names, options=run, progress=progress, description="running the original",
+                     out_axes=out_axes)
+    got = run_model(at_one, dataset, names, options=run, progress=progress, description="running at the identity",
+                    out_axes=out_axes)
     tols = _tolerances(patched, original, records, names)
     check = identity_check([(n, w, g, tols[n]) for n, w, g in zip(names, want, got, strict=True)], _params(records))
     others = [f"'{o.name}'" for o in kept if o.name not in names]
-    if others:  # a recurrent state (1 x N x H), a single number: batches do not stack on axis 0
-        check = replace(check, detail=f"{check.detail}; not compared: {', '.join(others)} (samples not on axis 0)")
+    if others:  # a single number, or no telling which axis holds the samples
+        check = replace(check, detail=f"{check.detail}; not compared: {', '.join(others)} (no known samples axis)")
     return check
 
 
-def _samples_first(spec: graph.TensorSpec) -> bool:
-    """True unless the declared shape says the samples are not on axis 0: a single number, or a
-    fixed first dim before a dynamic one (an LSTM's state, num_directions x N x H)."""
+def _samples_axis(spec: graph.TensorSpec) -> int | None:
+    """The axis of an output's samples: 0, unless the declared shape has a fixed first dim before
+    dynamic ones: its only dynamic one (an LSTM's state, num_directions x N x H: 1), or None when
+    there are several (which one holds the samples is unknown); None for a single number."""
     if spec.shape is None:
-        return True
+        return 0
     if not spec.shape:
-        return False
-    return not (isinstance(spec.shape[0], int) and any(not isinstance(d, int) for d in spec.shape[1:]))
+        return None
+    open_dims = [i for i, d in enumerate(spec.shape) if not (isinstance(d, int) and d > 0)]
+    if not (isinstance(spec.shape[0], int) and spec.shape[0] > 0) or not open_dims:
+        return 0
+    return open_dims[0] if len(open_dims) == 1 else None
 
 
 def _tolerances(

@@ -36,8 +36,18 @@ interval (it would need every class probability of every row per
 replicate). The refitting function is passed in (``refit``), so this
 module does not depend on :mod:`onnxcal.fit`.
 
+Dense outputs (a per-position N x T x K or per-pixel N x K x H x W head)
+give many score rows per sample, and the rows of one sample are not
+independent (neighbouring pixels share their errors). Given ``groups`` (the
+sample of each row), the holdout splits samples, not rows, and every
+replicate draws whole samples with replacement (the cluster bootstrap:
+Davison & Hinkley 1997, section 3.8), so the intervals reflect how many
+independent samples there are, not how many rows.
+
 References
 ----------
+Davison & Hinkley, "Bootstrap Methods and their Application", Cambridge
+University Press 1997, section 3.8 (resampling clusters).
 Efron, "Bootstrap Methods: Another Look at the Jackknife", Annals of
 Statistics 7(1), 1979. Efron & Tibshirani, "An Introduction to the
 Bootstrap", Chapman & Hall 1993, ch. 13 (percentile intervals).
@@ -45,8 +55,9 @@ Bootstrap", Chapman & Hall 1993, ch. 13 (percentile intervals).
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -95,13 +106,70 @@ def strata_name(labels: np.ndarray) -> str:
     return "class" if np.ndim(labels) == 1 else "rarest label present"
 
 
-def split_holdout(labels: np.ndarray, fraction: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
+@dataclass(frozen=True)
+class Samples:
+    """The samples of a run of score rows: each one's first row and its number of rows.
+
+    Built by :func:`samples_of` from the sample number of each row (sorted:
+    a capture's rows are sample-major).
+    """
+
+    starts: np.ndarray
+    sizes: np.ndarray
+
+    @property
+    def count(self) -> int:
+        return len(self.starts)
+
+    def rows(self, drawn: np.ndarray) -> np.ndarray:
+        """The row positions of the samples ``drawn`` (with repeats), sample after sample."""
+        sizes = self.sizes[drawn]
+        ends = np.cumsum(sizes)
+        first = np.repeat(self.starts[drawn] - ends + sizes, sizes)  # each row's sample start, less its place
+        return np.asarray(np.arange(int(ends[-1]) if len(ends) else 0) + first, dtype=np.int64)
+
+
+def samples_of(groups: np.ndarray) -> Samples:
+    """The :class:`Samples` of rows whose sample numbers are ``groups`` (non-decreasing).
+
+    >>> samples_of(np.array([0, 0, 0, 4, 4, 7])).sizes.tolist()
+    [3, 2, 1]
+    """
+    g = np.asarray(groups)
+    if len(g) > 1 and bool(np.any(g[1:] < g[:-1])):
+        raise ValueError("groups must be sorted: the rows of each sample together, samples in order")
+    first = np.ones(len(g), dtype=bool)
+    first[1:] = g[1:] != g[:-1]
+    starts = np.flatnonzero(first).astype(np.int64)
+    return Samples(starts, np.diff(np.append(starts, len(g))).astype(np.int64))
+
+
+def _sample_strata(labels: np.ndarray, samples: Samples) -> np.ndarray:
+    """One stratum per sample: its most frequent class over its rows; for multi-label rows,
+    the rarest label present in any of its rows."""
+    labels = np.asarray(labels)
+    if labels.ndim == 1:
+        k = int(labels.max()) + 1 if len(labels) else 1
+        owner = np.repeat(np.arange(samples.count), samples.sizes)
+        counts = np.bincount(owner * k + labels.astype(np.int64), minlength=samples.count * k)
+        return np.asarray(counts.reshape(samples.count, k).argmax(axis=1), dtype=np.int64)
+    present = np.add.reduceat((labels > 0).astype(np.int64), samples.starts, axis=0) > 0
+    return _strata(present.astype(np.uint8))
+
+
+def split_holdout(
+    labels: np.ndarray, fraction: float, seed: int, groups: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray]:
     """Stratified split into (fit rows, held-out rows), both sorted.
 
     From each stratum (class; for multi-label rows, the rarest label
     present, a simple form of stratification common in practice) a random
     round(fraction * size) rows are held out, so every class keeps its share
-    in both parts.
+    in both parts. With ``groups`` (the sample of each row, sorted) whole
+    samples are split: a sample's stratum is its most frequent class (or
+    the rarest label present in any of its rows), the rounding applies to
+    samples, and each part holds every row of its samples, so no sample is
+    in both. One row per sample gives the split of ``groups=None``.
 
     Raises
     ------
@@ -114,14 +182,51 @@ def split_holdout(labels: np.ndarray, fraction: float, seed: int) -> tuple[np.nd
     >>> len(held), sorted(np.array([0, 0, 0, 0, 1, 1, 1, 1])[held].tolist())
     (2, [0, 1])
     """
-    strata = _strata(labels)
+    if groups is None:
+        held = _held_out(_strata(labels), fraction, seed)
+        return np.flatnonzero(~held), np.flatnonzero(held)
+    samples = samples_of(groups)
+    held_samples = _held_out(_sample_strata(labels, samples), fraction, seed)
+    held = np.repeat(held_samples, samples.sizes)
+    return np.flatnonzero(~held), np.flatnonzero(held)
+
+
+def split_samples(groups: np.ndarray | None, fit_rows: np.ndarray, eval_rows: np.ndarray) -> dict[str, object]:
+    """For the record of a split of rows grouped by sample: how many samples each part holds and
+    how many rows a sample has (empty for one row per sample)."""
+    if groups is None:
+        return {}
+    g = np.asarray(groups)
+    per = np.bincount(g)
+    sizes = sorted(set(per[per > 0].tolist()))
+    return {
+        "grouped_by": "sample",
+        "rows_per_sample": sizes[0] if len(sizes) == 1 else sizes,
+        "samples_fit": samples_of(g[fit_rows]).count,
+        "samples_holdout": samples_of(g[eval_rows]).count if eval_rows is not fit_rows else 0,
+    }
+
+
+def rows_of_samples(rows: int, samples: int | None) -> str:
+    """A count for the notes: ``'1920 rows of 30 samples'``, or ``'30 samples'`` when each sample
+    is one row.
+
+    >>> rows_of_samples(1920, 30), rows_of_samples(30, None)
+    ('1920 rows of 30 samples', '30 samples')
+    """
+    if samples is None or samples == rows:
+        return f"{rows} samples"
+    return f"{rows} rows of {samples} samples"
+
+
+def _held_out(strata: np.ndarray, fraction: float, seed: int) -> np.ndarray:
+    """Which units (rows, or samples) are held out: round(fraction * size) random ones of each stratum."""
     n = len(strata)
     rng = np.random.default_rng(seed)
     perm = rng.permutation(n)
     order = perm[np.argsort(strata[perm], kind="stable")]  # a random order within each stratum
     del perm
     sizes = np.bincount(strata)
-    del strata
     starts = np.concatenate([[0], np.cumsum(sizes)[:-1]])
     take = np.floor(fraction * sizes + 0.5).astype(np.int64)
     held = np.zeros(n, dtype=bool)
@@ -133,7 +238,7 @@ def split_holdout(labels: np.ndarray, fraction: float, seed: int) -> tuple[np.nd
             "held out",
             "use a larger set, a fraction between 0.1 and 0.5, or --holdout 0 (in-sample figures)",
         )
-    return np.flatnonzero(~held), np.flatnonzero(held)
+    return held
 
 
 # --------------------------------------------------------------------------
@@ -160,12 +265,29 @@ class Draw:
         return np.bincount(self.held, minlength=self.n_held).astype(np.float64)
 
 
-def _draws(rng: np.random.Generator, replicates: int, n_fit: int, n_eval: int | None):
-    """Yield one :class:`Draw` per replicate (the fit part's draws first, then the held-out part's)."""
+def _draws(
+    rng: np.random.Generator,
+    replicates: int,
+    n_fit: int,
+    n_eval: int | None,
+    fit_samples: Samples | None = None,
+    eval_samples: Samples | None = None,
+) -> Iterator[Draw]:
+    """Yield one :class:`Draw` per replicate (the fit part's draws first, then the held-out part's).
+
+    With ``fit_samples``/``eval_samples``, a part's draw takes whole samples
+    (as many as the part has, with replacement) and every row of each.
+    """
     for _ in range(replicates):
-        fit = rng.integers(0, n_fit, n_fit)
-        held = fit if n_eval is None else rng.integers(0, n_eval, n_eval)
+        fit = _draw(rng, n_fit, fit_samples)
+        held = fit if n_eval is None else _draw(rng, n_eval, eval_samples)
         yield Draw(fit, n_fit, held, n_fit if n_eval is None else n_eval)
+
+
+def _draw(rng: np.random.Generator, n: int, samples: Samples | None) -> np.ndarray:
+    if samples is None:
+        return rng.integers(0, n, n)
+    return samples.rows(rng.integers(0, samples.count, samples.count))
 
 
 def _percentile(values: np.ndarray) -> list[Any]:
@@ -187,6 +309,7 @@ def bootstrap(
     refit: Refit,
     expansion: Expansion | None = None,
     threads: int | None = None,
+    groups: np.ndarray | None = None,
 ) -> dict[str, Any]:
     """Percentile intervals for the parameters and every after-metric.
 
@@ -206,18 +329,25 @@ def bootstrap(
         caller's pass made them; else a pass makes them here.
     threads : int, optional
         Threads for the passes and the replicates; the result does not depend on it.
+    groups : ndarray of int, optional
+        The sample of each row (sorted), for outputs with several rows per
+        sample: replicates then draw whole samples (see the module docstring).
 
     Returns
     -------
     dict
         ``level``, ``replicates``, ``parameters`` ({name: [low, high] or a list
         of them}), ``after`` ({metric: [low, high] or None}), ``method``
-        (how the replicates were computed) and ``notes``.
+        (how the replicates were computed), ``resampled`` (``"rows"`` or
+        ``"samples"``, with ``samples_fit`` and ``samples_holdout``) and ``notes``.
     """
     rng = np.random.default_rng([options.seed, 1])
     same = fit_rows is eval_rows
     fast = start.method == "temperature" and start.kind == "multiclass"
-    draws = _draws(rng, options.bootstrap, len(fit_rows), None if same else len(eval_rows))
+    fit_samples = None if groups is None else samples_of(np.asarray(groups)[fit_rows])
+    eval_samples = fit_samples if groups is None or same else samples_of(np.asarray(groups)[eval_rows])
+    draws = _draws(rng, options.bootstrap, len(fit_rows), None if same else len(eval_rows), fit_samples,
+                   eval_samples)
     run = Replicates(logits, labels, options, fit_rows, eval_rows, start, refit, threads)
     how = "exact"
     if fast:
@@ -237,13 +367,15 @@ def bootstrap(
         "parameters": {name: _percentile(np.array([p[name] for p in params])) for name in names},
         "after": {f: _percentile(np.array([m[f] for m in metrics])) for f in METRIC_FIELDS},
         "notes": [],
+        **_resampled(fit_samples, eval_samples),
     }
     if start.temperature is not None:
         out["temperature"] = out["parameters"]["temperature"]
     what = "held-out" if not same else "in-sample"
+    by = "" if fit_samples is None else ", drawing whole samples with all their rows"
     out["notes"].append(
         f"95% percentile intervals from {options.bootstrap} bootstrap replicates (refit on a resampled "
-        f"fit part, scored on a resampled {what} part)"
+        f"fit part, scored on a resampled {what} part{by})"
     )
     if out["after"]["classwise_ece"] is None:
         out["notes"].append(
@@ -254,6 +386,13 @@ def bootstrap(
         where = "outside the interpolation grid" if how == "grid" else "too far from the fit for its expansion"
         out["notes"].append(f"{fallbacks} replicates fell {where} and were refitted exactly")
     return out
+
+
+def _resampled(fit_samples: Samples | None, eval_samples: Samples | None) -> dict[str, object]:
+    """What the replicates drew, for the record."""
+    if fit_samples is None or eval_samples is None:
+        return {"resampled": "rows"}
+    return {"resampled": "samples", "samples_fit": fit_samples.count, "samples_holdout": eval_samples.count}
 
 
 # Replicates ------------------------------------------------------------------

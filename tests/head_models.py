@@ -317,3 +317,42 @@ def per_position() -> onnx.ModelProto:
 
 def per_position_logits(x: np.ndarray) -> np.ndarray:
     return x.astype(np.float64) @ POS_W + POS_B
+
+
+# --------------------------------------------------------------------------
+# 4. Inputs that are not samples
+
+STATE_H = 3  # state size of the model with a state input
+STATE_W = {"then": (RNG.normal(size=(F + STATE_H, 1)) * 1.4, 0.3),
+           "else": (RNG.normal(size=(F + STATE_H, 1)) * 0.9, -0.2)}
+SR_LIMIT = 12000
+
+
+def _state_branch(tag: str) -> onnx.GraphProto:
+    """A branch of the model with a state input: logits of [x, h] (N x 1), Sigmoid (outer-scope ``feat``)."""
+    w, b = STATE_W[tag]
+    nodes = [
+        helper.make_node("MatMul", ["feat", f"{tag}_w"], [f"{tag}_proj"], name=f"{tag}_matmul"),
+        helper.make_node("Add", [f"{tag}_proj", f"{tag}_b"], [f"{tag}_logits"], name=f"{tag}_add"),
+        helper.make_node("Sigmoid", [f"{tag}_logits"], [f"{tag}_prob"], name=f"{tag}_sigmoid"),
+    ]
+    inits = [_f32(f"{tag}_w", w), _f32(f"{tag}_b", [b])]
+    return helper.make_graph(nodes, f"{tag}_branch", [], [_vi(f"{tag}_prob", ["N", 1])], initializer=inits)
+
+
+def speech_with_state() -> onnx.ModelProto:
+    """x (N x F), a scalar sample rate ``sr`` (int64, shape []) and a state ``h0`` (1 x N x H):
+    ``If(sr > 12000)`` chooses the branch, each a MatMul + Add on Concat(x, h0[0]) and a Sigmoid;
+    outputs ``speech_prob`` (N x 1) and the next state ``hn`` (1 x N x H, tanh(h0 + 0.5))."""
+    nodes = [
+        helper.make_node("Squeeze", ["h0", "zero_axis"], ["h"], name="squeeze_state"),
+        helper.make_node("Concat", ["x", "h"], ["feat"], name="concat_feat", axis=1),
+        helper.make_node("Greater", ["sr", "sr_limit"], ["wide"], name="greater_sr"),
+        helper.make_node("If", ["wide"], ["speech_prob"], name="by_rate",
+                         then_branch=_state_branch("then"), else_branch=_state_branch("else")),
+        helper.make_node("Add", ["h0", "half"], ["h_shift"], name="shift_state"),
+        helper.make_node("Tanh", ["h_shift"], ["hn"], name="next_state"),
+    ]
+    inits = [_i64("zero_axis", [0]), _i64("sr_limit", SR_LIMIT), _f32("half", 0.5)]
+    inputs = [_vi("x", ["N", F]), _vi("sr", [], TensorProto.INT64), _vi("h0", [1, "N", STATE_H])]
+    return _model(nodes, inputs, [_vi("speech_prob", ["N", 1]), _vi("hn", [1, "N", STATE_H])], inits)

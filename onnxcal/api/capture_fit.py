@@ -207,8 +207,10 @@ def fit(
 
 def summarize_capture(cap: Capture, options: FitOptions) -> FitSummary:
     """``fit.summarize`` on a capture, with the checks that need what the fit does not know:
-    how the capture read the logits (``reading.fit_read_logits``) and the search bounds of T."""
-    summary = _reading.fit_read_logits(summarize(cap.logits, cap.labels, cap.meta.to_dict(), options))
+    how the capture read the logits (``reading.fit_read_logits``) and the search bounds of T.
+    The rows of a sample (a per-position or per-pixel output) are split and resampled together."""
+    fitted = summarize(cap.logits, cap.labels, cap.meta.to_dict(), options, groups=cap.groups())
+    summary = _reading.fit_read_logits(fitted)
     bound = _bound_warnings(summary.intervals)
     return replace(summary, warnings=(*summary.warnings, *bound)) if bound else summary
 

@@ -28,7 +28,7 @@ from ..capture import (
     load_captures,
     plan_run,
 )
-from ..data import Dataset, DataSpec
+from ..data import Dataset, DataSpec, recorded_feeding
 from ..errors import OnnxcalError
 from ..graph import Record
 from ..metrics import DEFAULT_BINS, evaluate, scores_from_probabilities
@@ -191,7 +191,7 @@ def _latency(base, patched, dataset: Dataset, run: RunOptions, runs: int, max_ra
         feed = dataset.batch(0, size, plan.dtypes)
         if plan.pad is not None and size < plan.pad:  # a fixed batch dim: pad as the runs do
             feed = {k: np.concatenate([v, np.repeat(v[-1:], plan.pad - size, axis=0)]) for k, v in feed.items()}
-        feeds.append(feed)
+        feeds.append(dataset.feed(feed))  # constants and batch axes as the model takes them
     calls = [lambda p=p, f=f: p.session.run(None, f) for p, f in zip(plans, feeds, strict=True)]
     times = time_alternately(calls, runs, warmup=max(3, runs // 10))
     return latency_check(times[0], times[1], max_ratio, batch=size, against=against)
@@ -314,6 +314,14 @@ class _Heads:
     activation: str | None
 
 
+def _recorded_capture(records: tuple[Record, ...]) -> dict[str, object] | None:
+    """The capture meta of the last calibration's fit: its constants and batch axes are re-used
+    when verify is given none (inputs that are not samples, issue 12)."""
+    fit = records[-1].fit if records else None
+    capture = fit.get("capture") if isinstance(fit, dict) else None
+    return capture if isinstance(capture, dict) else None
+
+
 def _load_target(
     patched_path: str | os.PathLike[str], spec: DataSpec, original: str | os.PathLike[str] | None,
     score_paths: list[Any],
@@ -327,6 +335,7 @@ def _load_target(
     limit = model_byte_limit(max_model_bytes)
     patched = graph.load_model(patched_path, max_bytes=limit)
     records = graph.read_records(patched)
+    spec = recorded_feeding(spec, _recorded_capture(records), f"'{patched_path}'")
     beside, why_not = (None, None) if original is not None or score_paths else _default_original(patched_path, records)
     if junit is not None:
         models = [patched_path, *([original] if original is not None else []), *([beside] if beside else [])]

@@ -11,7 +11,7 @@ import onnx
 from ..data import Dataset
 from ..errors import OnnxcalError, first_line
 from .nonfinite import InputWatch
-from .plan import RunPlan, padded, plan_run
+from .plan import RunPlan, first, padded, plan_run
 from .session import RunOptions, resolve_options
 
 ProgressFn = Callable[[str, int, int], None]
@@ -35,7 +35,7 @@ def _run_block(
     """Run a block's inputs ``step`` samples per call: the outputs concatenated, and
     (when ``timed``) the seconds spent in the runtime."""
     count = len(next(iter(feed.values())))
-    names, items, run = list(plan.names), list(feed.items()), plan.session.run
+    names, items, run, fed = list(plan.names), list(feed.items()), plan.session.run, dataset.feed
     got: list[list[np.ndarray]] = []
     spent, s = 0.0, 0
     try:
@@ -45,10 +45,10 @@ def _run_block(
                 batch = padded(batch, plan.pad)
             if timed:
                 t0 = time.perf_counter()
-                got.append(run(names, batch))
+                got.append(run(names, fed(batch)))
                 spent += time.perf_counter() - t0
             else:
-                got.append(run(names, batch))
+                got.append(run(names, fed(batch)))
     except Exception as exc:  # onnxruntime raises its own exception types
         rows = dataset.row_numbers()
         raise OnnxcalError(
@@ -60,8 +60,8 @@ def _run_block(
     for i in range(len(names)):
         parts = [np.asarray(g[i]) for g in got]
         if plan.pad is not None:
-            parts[-1] = parts[-1][: count - (len(got) - 1) * step]
-        outs.append(parts[0] if len(parts) == 1 else np.concatenate(parts))
+            parts[-1] = first(parts[-1], count - (len(got) - 1) * step, plan.axis(i))
+        outs.append(parts[0] if len(parts) == 1 else np.concatenate(parts, axis=plan.axis(i)))
     return outs, spent
 
 
@@ -146,15 +146,17 @@ def run_model(
     options: RunOptions | None = None,
     progress: ProgressFn | None = None,
     description: str = "running model",
+    out_axes: Sequence[int] = (),
 ) -> list[np.ndarray]:
     """Run ``model`` over ``dataset`` in batches; return the tensors ``names``.
 
-    Each returned array has the samples along axis 0. Inputs are cast to the
+    Each returned array has the samples along axis 0, or along its entry of
+    ``out_axes`` (a recurrent state 1 x N x H: 1). Inputs are cast to the
     model's dtypes batch by batch, so memory-mapped inputs are read lazily.
     """
-    plan = plan_run(model, dataset, names, resolve_options(options, batch_size))
+    plan = plan_run(model, dataset, names, resolve_options(options, batch_size), out_axes)
     parts: list[list[np.ndarray]] = [[] for _ in names]
     for _, _, outs in run_batches(plan, dataset, progress=progress, description=description):
         for part, out in zip(parts, outs, strict=True):
             part.append(out)
-    return [np.concatenate(p) for p in parts]
+    return [np.concatenate(p, axis=plan.axis(i)) for i, p in enumerate(parts)]

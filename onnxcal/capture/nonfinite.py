@@ -94,23 +94,19 @@ def nonfinite_rows(logits: np.ndarray, chunk: int = 1 << 16) -> np.ndarray:
     return np.concatenate(parts)
 
 
-def _rows_per_sample(cap: Capture) -> int:
-    return max(1, len(cap.logits) // max(1, len(cap.sample_indices())))
-
-
 def nonfinite_logits(cap: Capture) -> Nonfinite:
     """The score rows of ``cap`` holding NaN or Inf, with the set's row numbers of the first samples."""
     rows = nonfinite_rows(cap.logits)
     found = Nonfinite()
     if rows.size:
-        found.add(np.ones(rows.size, bool), cap.sample_indices()[rows // _rows_per_sample(cap)])
+        found.add(np.ones(rows.size, bool), cap.sample_indices()[rows // cap.rows_per_sample])
     return found
 
 
 def finite_mask(cap: Capture) -> np.ndarray:
     """True for the score rows of the samples whose logits are all finite (every row of a sample alike)."""
     rows = nonfinite_rows(cap.logits)
-    r = _rows_per_sample(cap)
+    r = cap.rows_per_sample
     keep_samples = np.ones(len(cap.logits) // r, bool)
     keep_samples[rows // r] = False
     return np.repeat(keep_samples, r)
@@ -122,7 +118,7 @@ def without_nonfinite(cap: Capture) -> Capture:
     if keep.all():
         return cap
     logits = np.asarray(cap.logits)[keep]
-    samples = cap.sample_indices()[keep[:: _rows_per_sample(cap)]]
+    samples = cap.sample_indices()[keep[:: cap.rows_per_sample]]
     return Capture(
         logits, cap.labels[keep], replace(cap.meta, n=int(len(logits))), samples, cap.nonfinite_inputs, cap.stats
     )

@@ -25,29 +25,40 @@ def graph_inputs(model: onnx.ModelProto) -> list[onnx.ValueInfoProto]:
     return [vi for vi in model.graph.input if vi.name not in init]
 
 
-def _fixed_batch(model: onnx.ModelProto) -> int | None:
+def _fixed_batch(model: onnx.ModelProto, dataset: Dataset | None = None) -> int | None:
+    """The fixed batch size of the first input the data feed per sample (on its batch axis), or None."""
+    constants = dataset.constants if dataset is not None else {}
+    axes = dataset.batch_axes if dataset is not None else {}
     for vi in graph_inputs(model):
         shape = tensor_spec(vi).shape
-        if shape and isinstance(shape[0], int) and shape[0] > 0:
-            return shape[0]
+        if vi.name in constants or not shape:
+            continue
+        dim = shape[axes.get(vi.name, 0)]
+        if isinstance(dim, int) and dim > 0:
+            return dim
     return None
 
 
-def free_batch_dim(model: onnx.ModelProto, batch: int) -> onnx.ModelProto:
-    """A copy of ``model`` whose inputs' and outputs' leading dim ``batch`` is symbolic.
+def free_batch_dim(
+    model: onnx.ModelProto, batch: int, axes: Mapping[str, int] | None = None, constants: Sequence[str] = ()
+) -> onnx.ModelProto:
+    """A copy of ``model`` whose inputs' and outputs' batch dim ``batch`` is symbolic.
 
-    Intermediate shape annotations (``value_info``) are dropped from the copy
-    so that onnxruntime infers them again; the copy is for running only.
+    The batch dim is the leading one, or the one ``axes`` gives for an input;
+    ``constants`` (inputs fed as they are) keep their shape. Intermediate
+    shape annotations (``value_info``) are dropped from the copy so that
+    onnxruntime infers them again; the copy is for running only.
     """
     out = onnx.ModelProto()
     out.CopyFrom(model)
-    init = {i.name for i in out.graph.initializer}
+    init = {i.name for i in out.graph.initializer} | set(constants)
     for vi in [*out.graph.input, *out.graph.output]:
         if vi.name in init or not vi.type.HasField("tensor_type"):
             continue
         dims = vi.type.tensor_type.shape.dim
-        if len(dims) and dims[0].HasField("dim_value") and dims[0].dim_value == batch:
-            dims[0].dim_param = "onnxcal_batch"
+        at = (axes or {}).get(vi.name, 0)
+        if len(dims) > at and dims[at].HasField("dim_value") and dims[at].dim_value == batch:
+            dims[at].dim_param = "onnxcal_batch"
     del out.graph.value_info[:]
     return out
 
@@ -58,7 +69,9 @@ class RunPlan:
 
     ``mode`` is ``"batched"``, ``"freed"`` or ``"fixed"`` (see :class:`CaptureMeta`);
     ``pad`` is the fixed batch size that short batches are padded to; with
-    ``grow`` the batch size ``step`` is automatic (see :func:`run_batches`).
+    ``grow`` the batch size ``step`` is automatic (see :func:`run_batches`);
+    ``out_axes`` gives, per name, the axis of its samples when not 0 (a
+    recurrent state 1 x N x H), along which batches are cut and joined.
     """
 
     session: Any  # an onnxruntime.InferenceSession (onnxruntime ships no type hints)
@@ -68,7 +81,16 @@ class RunPlan:
     pad: int | None
     mode: str
     grow: bool = False
+    out_axes: tuple[int, ...] = ()
 
+    def axis(self, i: int) -> int:
+        """The samples' axis of output ``i``."""
+        return self.out_axes[i] if self.out_axes else 0
+
+
+def first(arr: np.ndarray, count: int, axis: int) -> np.ndarray:
+    """The first ``count`` samples of ``arr`` along ``axis`` (a padded batch cut back)."""
+    return arr[(slice(None),) * axis + (slice(0, count),)]
 
 def _dtypes(model: onnx.ModelProto, session: Any) -> dict[str, str | None]:
     """The dtype to cast each session input to (None when the model does not say)."""
@@ -100,11 +122,13 @@ def check_input_memory(model: onnx.ModelProto, batch_size: int, dataset: Dataset
         Naming the largest input, its shape and ``--batch-size``.
     """
     needs = []
+    constants = dataset.constants if dataset is not None else {}
+    axes = dataset.batch_axes if dataset is not None else {}
     for vi in graph_inputs(model):
         spec = tensor_spec(vi)
-        if spec.shape is None or not spec.shape:
+        if spec.shape is None or not spec.shape or spec.name in constants:  # constants: one copy, not per sample
             continue
-        first = spec.shape[0]
+        first = spec.shape[axes.get(spec.name, 0)]
         batch = max(batch_size, first if isinstance(first, int) and first > 0 else 0)
         if dataset is not None and spec.name in dataset.inputs:
             row, where = tuple(dataset.inputs[spec.name].shape[1:]), "in the data"
@@ -130,24 +154,28 @@ def plan_run(
     dataset: Dataset,
     names: Sequence[str],
     options: RunOptions | None = None,
+    out_axes: Sequence[int] = (),
 ) -> RunPlan:
-    """Open a session for ``model`` and decide the batching (see the module docstring)."""
+    """Open a session for ``model`` and decide the batching (see the module docstring);
+    ``out_axes`` as in :class:`RunPlan`."""
+    axes = tuple(out_axes)
     options = options or RunOptions()
     grow = options.batch_size is None
     batch = DEFAULT_BATCH if options.batch_size is None else options.batch_size
     check_input_memory(model, batch, dataset)
     session = make_session(model, options)
     dtypes = _dtypes(model, session)
-    fixed = _fixed_batch(model)
+    fixed = _fixed_batch(model, dataset)
     if fixed is None:
-        return RunPlan(session, tuple(names), dtypes, batch, None, "batched", grow)
-    native = RunPlan(session, tuple(names), dtypes, fixed, fixed, "fixed")
+        return RunPlan(session, tuple(names), dtypes, batch, None, "batched", grow, axes)
+    native = RunPlan(session, tuple(names), dtypes, fixed, fixed, "fixed", out_axes=axes)
     if batch <= fixed or dataset.n <= fixed:
         return native
     probe = min(batch, dataset.n)
     try:
-        freed = RunPlan(make_session(free_batch_dim(model, fixed), options), tuple(names), dtypes,
-                        batch, None, "freed", grow)
+        copy = free_batch_dim(model, fixed, dataset.batch_axes, tuple(dataset.constants))
+        freed = RunPlan(make_session(copy, options), tuple(names), dtypes,
+                        batch, None, "freed", grow, axes)
         got = run_batch(freed, dataset, 0, probe)
         reason = _disagreement(got, run_span(native, dataset, 0, probe), names, probe, fixed)
     except OnnxcalError as exc:
@@ -168,7 +196,7 @@ def plan_run(
 def run_span(plan: RunPlan, dataset: Dataset, start: int, stop: int) -> list[np.ndarray]:
     """Selected rows ``start..stop-1`` run ``plan.step`` samples per call, the outputs concatenated."""
     parts = [run_batch(plan, dataset, s, min(s + plan.step, stop)) for s in range(start, stop, plan.step)]
-    return [np.concatenate(p) for p in zip(*parts, strict=True)]
+    return [np.concatenate(p, axis=plan.axis(i)) for i, p in enumerate(zip(*parts, strict=True))]
 
 
 def _disagreement(
@@ -209,14 +237,16 @@ def run_batch(
     if plan.pad is not None and count < plan.pad:  # pad a short batch of a fixed-batch model
         feed = padded(feed, plan.pad)
     try:
-        outs = plan.session.run(list(plan.names), feed)
+        outs = plan.session.run(list(plan.names), dataset.feed(feed))
     except Exception as exc:  # onnxruntime raises its own exception types
         rows = dataset.row_numbers()
         raise OnnxcalError(
             f"{runtime_failure(exc)} on rows {int(rows[start])}..{int(rows[stop - 1])} of '{dataset.source}'",
             "check that the data matches the model's inputs",
         ) from exc
-    return [np.asarray(o)[:count] if plan.pad is not None else np.asarray(o) for o in outs]
+    if plan.pad is None:
+        return [np.asarray(o) for o in outs]
+    return [first(np.asarray(o), count, plan.axis(i)) for i, o in enumerate(outs)]
 
 
 def padded(feed: Mapping[str, np.ndarray], size: int) -> dict[str, np.ndarray]:

@@ -59,6 +59,8 @@ _SAME = (
     ("class_axis", "have different class axes"),
     ("num_classes", "have different numbers of classes"),
     ("class_names", "have different class lists"),
+    ("constants", "were run with different constant inputs (--constant)"),
+    ("batch_axes", "were run with different batch axes (--batch-axis)"),
 )
 
 

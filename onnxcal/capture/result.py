@@ -67,6 +67,13 @@ class CaptureMeta:
     score_columns : str
         ``"START:STOP"`` when only these positions of a Concat output are
         class scores (``--score-columns``); "" otherwise.
+    constants : dict of str to str
+        Inputs given once (``--constant``): the number, ``zeros``, or the
+        file name (``array`` from Python) and SHA-256 of an array's bytes.
+        ``verify`` of a model patched from this capture re-uses the numbers
+        and zeros when given none.
+    batch_axes : dict of str to int
+        Inputs whose samples lie on another axis than 0 (``--batch-axis``).
     """
 
     model_sha256: str
@@ -93,6 +100,8 @@ class CaptureMeta:
     logits_from: str = "tensor"
     spelling: str = ""
     score_columns: str = ""
+    constants: dict[str, str] = field(default_factory=dict)
+    batch_axes: dict[str, int] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -154,3 +163,14 @@ class Capture:
         if self.indices is not None:
             return self.indices
         return np.arange(self.meta.data_total or len(self.labels), dtype=np.int64)
+
+    @property
+    def rows_per_sample(self) -> int:
+        """Score rows per sample: 1 for a classifier, T for a per-position head, H x W per pixel."""
+        return max(1, len(self.logits) // max(1, len(self.sample_indices())))
+
+    def groups(self) -> np.ndarray | None:
+        """The sample of each score row (0, 0, ..., 1, 1, ...: rows are sample-major), or None
+        when every sample is one row; the holdout and the bootstrap resample whole samples by it."""
+        r = self.rows_per_sample
+        return None if r == 1 else np.arange(len(self.logits), dtype=np.int64) // r

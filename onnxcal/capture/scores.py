@@ -10,7 +10,7 @@ from pathlib import Path
 import numpy as np
 import onnx
 
-from ..data import Dataset, check_labels, match_inputs, read_npz
+from ..data import Dataset, check_labels, constant_record, match_inputs, read_npz
 from ..errors import OnnxcalError, OnnxcalWarning
 from ..graph import ScoreSite, expose_scores, find_scores, fit_kind, np_dtype, tensor_spec
 from ..guard import PROBE_ROWS, RowStats
@@ -223,4 +223,6 @@ def _meta(
         logits_from=site.logits_from,
         spelling=site.spelling,
         score_columns="" if site.columns is None else f"{site.columns[1]}:{site.columns[2]}",
+        constants=constant_record(dataset),
+        batch_axes=dict(sorted(dataset.batch_axes.items())),
     )

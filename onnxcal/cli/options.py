@@ -191,6 +191,44 @@ _SHARED_OPTIONS = (
 )
 """Data, image and runtime options shared by capture, calibrate and verify."""
 
+# -- Inputs that are not samples (issue 12): --constant, --batch-axis ---------------------------
+
+_FEEDING_OPTIONS = (
+    _option("constants", list[str] | None, None, "--constant",
+            "A model input given once and fed with every batch: a number, an .npy array, or 'zeros' "
+            "(shaped like the declared input, its batch dim set per batch); e.g. a sample rate or a "
+            "recurrent state. Repeat for each input.", metavar="NAME=VALUE|FILE.npy|zeros"),
+    _option("batch_axes", list[str] | None, None, "--batch-axis",
+            "The axis of an input that holds the samples, when not 0 (e.g. h0=1 for a state shaped "
+            "1 x N x H); its array in the data has the samples on that axis. Repeat for each input.",
+            metavar="NAME=AXIS"),
+)
+
+
+def _pairs(values: Sequence[str] | None, option: str, example: str) -> dict[str, str]:
+    """``NAME=VALUE`` items of a repeated option, each name once."""
+    pairs: dict[str, str] = {}
+    for item in values or ():
+        name, sep, value = item.partition("=")
+        if not sep or not name.strip() or not value.strip():
+            raise OnnxcalError(f"{option} '{item}' is not of the form NAME=VALUE", f"e.g. {option} {example}")
+        if name.strip() in pairs:
+            raise OnnxcalError(f"{option} gives model input '{name.strip()}' twice", "give each input once")
+        pairs[name.strip()] = value.strip()
+    return pairs
+
+
+def _batch_axes(values: Sequence[str] | None) -> dict[str, int]:
+    axes = {}
+    for name, text in _pairs(values, "--batch-axis", "h0=1").items():
+        if not text.isdigit():
+            raise OnnxcalError(f"--batch-axis {name}={text}: the axis must be a whole number from 0",
+                               f"e.g. --batch-axis {name}=1")
+        axes[name] = int(text)
+    return axes
+
+# -- end of the options of inputs that are not samples -------------------------------------------
+
 _RUNTIME_KEYS = ("batch_size", "threads", "optimization", "provider")
 
 
@@ -219,6 +257,8 @@ def _spec(values: dict[str, Any]) -> DataSpec:
         preprocess=values["preprocess"],
         image={k: values[k] for k in IMAGE_OPTIONS if values[k] is not None},
         selection=Selection(values["limit"], values["shuffle_seed"], parse_shard(shard) if shard else None),
+        constants=_pairs(values["constants"], "--constant", "sr=16000"),  # _FEEDING_OPTIONS
+        batch_axes=_batch_axes(values["batch_axes"]),
     )
 
 
@@ -230,7 +270,7 @@ def data_options(*, shard: bool = False) -> Callable[..., Any]:
     ``api`` run keywords); the options themselves are :data:`_SHARED_OPTIONS`,
     so every command documents them alike.
     """
-    shared = [p for p in _SHARED_OPTIONS if shard or p.name != "shard"]
+    shared = [p for p in (*_SHARED_OPTIONS, *_FEEDING_OPTIONS) if shard or p.name != "shard"]
 
     def decorate(fn: Callable[..., Any]) -> Callable[..., Any]:
         own_hints = typing.get_type_hints(fn, include_extras=True)

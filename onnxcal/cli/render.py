@@ -86,9 +86,18 @@ def _describe_scaling(summary: FitSummary) -> str:
     return describe_scaling(summary.scaling, summary.intervals)
 
 
+def _figures_on(summary: FitSummary) -> str:
+    """What the before/after figures are on: rows of how many whole samples, for a dense output."""
+    n, held, split = summary.before.n, summary.basis == "held-out", summary.split or {}
+    if split.get("grouped_by") == "sample":  # issue 12: several rows per sample, resampled by sample
+        samples = split["samples_holdout"] if held else split["samples_fit"]
+        return f"{n} held-out rows of {samples} samples" if held else f"{n} rows of {samples} samples, in-sample"
+    return f"{n} held-out samples" if held else f"{n} samples, in-sample"
+
+
 def render_fit(summary: FitSummary) -> None:
     b, a = summary.before, summary.after
-    where = f"{b.n} held-out samples" if summary.basis == "held-out" else f"{b.n} samples, in-sample"
+    where = _figures_on(summary)
     table = Table(
         title=f"{_describe_scaling(summary)}\nbefore/after on {where}",
         title_justify="left",

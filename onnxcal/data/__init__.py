@@ -26,7 +26,9 @@ uses ``allow_pickle=False``.
 """
 
 from .arrays import load_npy, load_npz, read_npy, read_npz
+from .axes import ZEROS
 from .csv import load_csv
+from .feeding import check_feeding, constant_record, make_constant, recorded_feeding, with_constants
 from .fingerprint import file_fingerprint
 from .images import ENLARGE_WARNING, IMAGE_SUFFIXES, ImageArray, load_image_folder, shown
 from .inputs import match_inputs
@@ -36,6 +38,7 @@ from .preprocess import IMAGE_OPTIONS, MAX_SIDE, ImageOptions, image_options, re
 from .spec import (
     LABELS_KEY,
     MAX_SEED,
+    Constant,
     Dataset,
     DataSpec,
     Selection,
@@ -52,16 +55,20 @@ __all__ = [
     "LABELS_KEY",
     "MAX_SEED",
     "MAX_SIDE",
+    "ZEROS",
+    "Constant",
     "DataSpec",
     "Dataset",
     "ImageArray",
     "ImageOptions",
     "Selection",
+    "check_feeding",
     "check_label_array",
     "check_labels",
     "check_multilabel",
     "check_selection",
     "class_indices",
+    "constant_record",
     "file_fingerprint",
     "image_options",
     "load_csv",
@@ -69,6 +76,7 @@ __all__ = [
     "load_image_folder",
     "load_npy",
     "load_npz",
+    "make_constant",
     "map_labels",
     "match_inputs",
     "parse_shard",
@@ -76,7 +84,9 @@ __all__ = [
     "read_npy",
     "read_npz",
     "read_preprocess_file",
+    "recorded_feeding",
     "select",
     "selected_rows",
     "shown",
+    "with_constants",
 ]

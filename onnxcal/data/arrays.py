@@ -12,7 +12,8 @@ from __future__ import annotations
 import os
 import struct
 import zipfile
-from collections.abc import Mapping
+from collections import Counter
+from collections.abc import Collection, Mapping, Sequence
 from dataclasses import replace
 from pathlib import Path
 from typing import IO, TYPE_CHECKING, Any
@@ -22,6 +23,8 @@ import numpy as np
 from .._limits import check_memory, format_bytes
 from .._paths import require_file
 from ..errors import OnnxcalError, first_line
+from ..graph import TensorSpec
+from .axes import lengths_hint, samples_first
 from .fingerprint import combine, file_fingerprint
 from .inputs import show_shape
 from .spec import LABELS_KEY, Dataset
@@ -154,8 +157,22 @@ def read_npz(path: Path, hint: str) -> dict[str, np.ndarray]:
     return arrays
 
 
-def load_npz(path: str | os.PathLike[str], *, require_labels: bool = True) -> Dataset:
+def load_npz(
+    path: str | os.PathLike[str],
+    *,
+    require_labels: bool = True,
+    batch_axes: Mapping[str, int] | None = None,
+    specs: Sequence[TensorSpec] = (),
+    constants: Collection[str] = (),
+) -> Dataset:
     """Read an ``.npz`` whose arrays are named after the model inputs, plus ``labels``.
+
+    An input named in ``batch_axes`` has its samples on that axis (a view
+    moves it first); an array of rank 0 is left for the caller to take as a
+    constant (one number for every sample), and so are the arrays named in
+    ``constants`` (given once as well: the caller refuses them). ``specs``,
+    the model's inputs, only sharpen the message when the arrays disagree
+    on the sample count.
 
     Raises
     ------
@@ -174,20 +191,33 @@ def load_npz(path: str | os.PathLike[str], *, require_labels: bool = True) -> Da
         )
     if not arrays:
         raise OnnxcalError(f"'{p}' holds no input arrays", "add one array per model input")
-    _same_lengths(arrays, labels, str(p))
+    arrays = samples_first(arrays, batch_axes or {}, str(p))
+    _same_lengths({k: a for k, a in arrays.items() if k not in constants}, labels, str(p), specs, batch_axes)
     return Dataset(inputs=arrays, labels=labels, source=str(p), data_id=combine([("npz", file_fingerprint(p))]))
 
 
-def _same_lengths(arrays: Mapping[str, np.ndarray | ImageArray], labels: np.ndarray | None, source: str) -> None:
-    lengths = {k: (a.shape[0] if a.ndim else None) for k, a in arrays.items()}
+def _same_lengths(
+    arrays: Mapping[str, np.ndarray | ImageArray],
+    labels: np.ndarray | None,
+    source: str,
+    specs: Sequence[TensorSpec] = (),
+    batch_axes: Mapping[str, int] | None = None,
+) -> None:
+    """Every array of rank > 0 and the labels hold the same number of samples on axis 0."""
+    lengths = {k: a.shape[0] for k, a in arrays.items() if a.ndim}
     if labels is not None:
         lengths[LABELS_KEY] = labels.shape[0] if labels.ndim else None
     if len(set(lengths.values())) != 1 or None in lengths.values():
+        n = lengths.get(LABELS_KEY) or Counter(lengths.values()).most_common(1)[0][0]
+        if (refusal := lengths_hint(arrays, n, specs, batch_axes or {})) is not None:
+            raise refusal
         shown = ", ".join(f"{k}: {v}" for k, v in lengths.items())
         raise OnnxcalError(
             f"arrays in '{source}' have different numbers of samples ({shown})",
             "every array needs the samples along its first axis, the same count each",
         )
+    if not lengths:
+        raise OnnxcalError(f"'{source}' holds no array with samples", "add one array per model input")
     if next(iter(lengths.values())) == 0:
         raise OnnxcalError(f"'{source}' holds no samples", "give a non-empty validation set")
 
@@ -227,14 +257,19 @@ def load_npy(
     labels: str | os.PathLike[str] | None,
     *,
     require_labels: bool = True,
+    batch_axes: Mapping[str, int] | None = None,
+    specs: Sequence[TensorSpec] = (),
+    constants: Collection[str] = (),
 ) -> Dataset:
-    """One memory-mapped ``.npy`` per model input, plus a labels ``.npy``."""
+    """One memory-mapped ``.npy`` per model input, plus a labels ``.npy``
+    (``batch_axes``, ``specs`` and ``constants`` as for :func:`load_npz`)."""
     arrays = {name: read_npy(path, f"input '{name}'") for name, path in files.items()}
     source = ", ".join(f"{name}={path}" for name, path in files.items())
     if labels is None and require_labels:
         raise OnnxcalError(f"no labels for '{source}'", "pass --labels FILE.npy")
     label_array = read_npy(labels, "labels file") if labels is not None else None
-    _same_lengths(arrays, label_array, source)
+    arrays = samples_first(arrays, batch_axes or {}, source)
+    _same_lengths({k: a for k, a in arrays.items() if k not in constants}, label_array, source, specs, batch_axes)
     parts = [(f"input:{name}", file_fingerprint(Path(p))) for name, p in sorted(files.items())]
     return Dataset(inputs=arrays, labels=label_array, source=source, data_id=combine(parts))
 

@@ -13,6 +13,7 @@ from ..errors import OnnxcalError
 from ..graph import TensorSpec
 from .arrays import load_npy, load_npz, with_npy_labels
 from .csv import load_csv
+from .feeding import check_feeding, with_constants
 from .images import load_image_folder
 from .inputs import match_inputs
 from .labels import map_labels, read_classes
@@ -42,21 +43,25 @@ def load_dataset(
     path = Path(spec.path) if spec.path is not None else None
     form = "images" if path is not None and path.is_dir() else "csv" if _is_csv(path) else "arrays"
     _check_options_apply(spec, form)
+    check_feeding(spec, model_inputs)
+    fed = [s for s in model_inputs if s.name not in spec.constants]  # inputs the data feed
     if form == "images" and path is not None:
         ds = load_image_folder(
-            path, _single_input(model_inputs, path), image_options(spec.image, spec.preprocess),
+            path, _single_input(fed, path), image_options(spec.image, spec.preprocess),
             labels_csv=spec.labels, label_column=spec.label_column, classes=classes,
         )
     elif form == "csv" and path is not None:
         ds = load_csv(
-            path, _single_input(model_inputs, path), label_column=spec.label_column,
+            path, _single_input(fed, path), label_column=spec.label_column,
             feature_columns=spec.feature_columns, classes=classes, require_labels=require_labels,
         )
     elif path is None or spec.inputs or path.suffix.lower() == ".npy":
-        files = dict(spec.inputs) if spec.inputs or path is None else {_single_input(model_inputs, path).name: path}
-        ds = load_npy(files, spec.labels, require_labels=require_labels)
+        files = dict(spec.inputs) if spec.inputs or path is None else {_single_input(fed, path).name: path}
+        ds = load_npy(files, spec.labels, require_labels=require_labels, batch_axes=spec.batch_axes,
+                      specs=model_inputs, constants=tuple(spec.constants))
     else:
-        ds = load_npz(path, require_labels=require_labels and spec.labels is None)
+        ds = load_npz(path, require_labels=require_labels and spec.labels is None, batch_axes=spec.batch_axes,
+                      specs=model_inputs, constants=tuple(spec.constants))
         if spec.labels is not None:
             if ds.labels is not None:
                 raise OnnxcalError(
@@ -68,6 +73,9 @@ def load_dataset(
         ds = replace(ds, labels=map_labels(ds.labels, classes, ds.source, classes_file=spec.classes))
     if classes is not None:
         ds = replace(ds, class_names=classes)
+    ds = with_constants(ds, spec, model_inputs)
+    if spec.batch_axes:
+        ds = replace(ds, batch_axes={k: v for k, v in spec.batch_axes.items() if k in ds.inputs})
     match_inputs(ds, model_inputs)
     return select(ds, spec.selection)
 
@@ -87,6 +95,10 @@ def _check_options_apply(spec: DataSpec, form: str) -> None:
     if form == "csv" and spec.labels is not None:
         raise OnnxcalError(
             "--labels does not apply to CSV data", "name the label column with --label-column"
+        )
+    if form != "arrays" and spec.batch_axes:
+        raise OnnxcalError(
+            "--batch-axis applies to array data (.npz or --input NAME=FILE.npy) only", "drop it for this data"
         )
     if form == "arrays" and spec.label_column is not None:
         raise OnnxcalError(

@@ -58,6 +58,35 @@ class Selection:
 
 
 @dataclass(frozen=True)
+class Constant:
+    """A model input given once and fed with every batch (``--constant``).
+
+    Attributes
+    ----------
+    value : ndarray
+        The array fed, in the model's dtype; along ``axis`` (when set) it
+        has size 1 and is repeated to each batch's sample count.
+    axis : int or None
+        The input's batch axis, or None to feed ``value`` as it is.
+    given : str
+        How it was given, for the capture's record: the number, ``zeros``,
+        or a file name or ``array`` with the SHA-256 of the bytes.
+    """
+
+    value: np.ndarray
+    axis: int | None = None
+    given: str = ""
+
+    def fed(self, count: int) -> np.ndarray:
+        """The array for a batch of ``count`` samples."""
+        if self.axis is None:
+            return self.value
+        shape = list(self.value.shape)
+        shape[self.axis] = count
+        return np.ascontiguousarray(np.broadcast_to(self.value, tuple(shape)))
+
+
+@dataclass(frozen=True)
 class Dataset:
     """Model inputs by name, labels, and the rows selected.
 
@@ -81,6 +110,12 @@ class Dataset:
         How ``rows`` were chosen.
     preprocess : dict or None
         The resolved image preprocessing, for the capture's record.
+    constants : mapping of str to Constant
+        Model inputs given once (``--constant``), fed with every batch.
+    batch_axes : mapping of str to int
+        Inputs whose samples lie on another axis than 0 in the model
+        (``--batch-axis``): their arrays in ``inputs`` are views with that
+        axis moved first, and :meth:`feed` moves it back.
     """
 
     inputs: Mapping[str, np.ndarray | ImageArray]
@@ -91,6 +126,8 @@ class Dataset:
     data_id: str = ""
     selection: Selection = field(default_factory=Selection)
     preprocess: dict[str, Any] | None = None
+    constants: Mapping[str, Constant] = field(default_factory=dict)
+    batch_axes: Mapping[str, int] = field(default_factory=dict)
 
     @property
     def total(self) -> int:
@@ -118,8 +155,22 @@ class Dataset:
         """The inputs of selected rows ``start..stop-1``, contiguous, cast to ``dtypes`` (None: as they are)."""
         key = self._key(start, stop)
         return {
-            name: np.ascontiguousarray(self.inputs[name][key], dtype=dtypes[name]) for name in dtypes
+            name: np.ascontiguousarray(self.inputs[name][key], dtype=dtypes[name])
+            for name in dtypes if name in self.inputs
         }
+
+    def feed(self, batch: Mapping[str, np.ndarray]) -> Mapping[str, np.ndarray]:
+        """A batch of :meth:`batch` (samples on axis 0) as the model takes it:
+        each input's samples moved to its batch axis, the constants added."""
+        if not self.batch_axes and not self.constants:
+            return batch
+        count = len(next(iter(batch.values())))
+        fed = dict(batch)
+        for name, axis in self.batch_axes.items():
+            fed[name] = np.ascontiguousarray(np.moveaxis(batch[name], 0, axis))
+        for name, constant in self.constants.items():
+            fed[name] = constant.fed(count)
+        return fed
 
     @property
     def mapped_row_bytes(self) -> int:
@@ -127,6 +178,7 @@ class Dataset:
         return sum(
             arr.strides[0] for arr in self.inputs.values()
             if isinstance(arr, np.ndarray) and getattr(arr, "_mmap", None) is not None and arr.ndim
+            and arr.flags.c_contiguous
         )
 
     def release(self, start: int, stop: int) -> None:
@@ -261,6 +313,13 @@ class DataSpec:
         Image preprocessing options (override ``preprocess``); see
         :data:`~onnxcal.data.preprocess.IMAGE_OPTIONS`.
     selection : Selection
+    constants : mapping of str to value
+        Model inputs given once and fed with every batch (``--constant``):
+        a number, ``"zeros"`` (zeros shaped like the declared input), an
+        ``.npy`` path, or an array.
+    batch_axes : mapping of str to int
+        The axis of an input's array that holds the samples, when not 0
+        (``--batch-axis``; e.g. 1 for a recurrent state 1 x N x H).
     """
 
     path: str | os.PathLike[str] | None = None
@@ -272,8 +331,15 @@ class DataSpec:
     preprocess: str | os.PathLike[str] | None = None
     image: Mapping[str, object] = field(default_factory=dict)
     selection: Selection = field(default_factory=Selection)
+    constants: Mapping[str, str | os.PathLike[str] | int | float | np.ndarray] = field(default_factory=dict)
+    batch_axes: Mapping[str, int] = field(default_factory=dict)
 
     def files(self) -> list[Path]:
         """Every file or folder this spec reads (for output-path checks)."""
         paths = [self.path, *self.inputs.values(), self.labels, self.classes, self.preprocess]
-        return [Path(p) for p in paths if p is not None]
+        files = [c for c in self.constants.values() if isinstance(c, (str, os.PathLike)) and _is_npy(c)]
+        return [Path(p) for p in [*paths, *files] if p is not None]
+
+
+def _is_npy(value: str | os.PathLike[str]) -> bool:
+    return str(value).lower().endswith(".npy")

@@ -33,7 +33,7 @@ from ..metrics import evaluate, iter_chunks
 from ..scaling import Scaling, is_far_from_one
 from ..sweep import one_blas_thread
 from .options import T_MAX, T_MIN, FitOptions, FitResult
-from .outcome import FitSummary, data_warnings, split_record
+from .outcome import FitSummary, data_warnings, holdout_notes, split_record
 
 GRID = 19  # values of log T on [log T_MIN, log T_MAX]: a step of 0.51 (T x 1.67)
 _XATOL = 1e-10  # Brent's tolerance on log T
@@ -212,23 +212,25 @@ def check_options(labels: np.ndarray, options: FitOptions) -> None:
 
 def summarize_l1(
     logits: np.ndarray, labels: np.ndarray, capture_meta: dict[str, object], options: FitOptions,
-    *, threads: int | None = None,
+    *, threads: int | None = None, groups: np.ndarray | None = None,
 ) -> FitSummary:
-    """``fit.summarize`` for L1-normalised sigmoids: holdout, fit, scores, bootstrap, refit on all."""
+    """``fit.summarize`` for L1-normalised sigmoids: holdout, fit, scores, bootstrap, refit on all
+    (``groups``: the sample of each row, to split and resample whole samples)."""
     check_options(labels, options)
     with one_blas_thread():
-        return _summarize(logits, labels, capture_meta, options, threads)
+        return _summarize(logits, labels, capture_meta, options, threads, groups)
 
 
 def _summarize(
-    logits: np.ndarray, labels: np.ndarray, capture_meta: dict[str, object], options: FitOptions, threads: int | None
+    logits: np.ndarray, labels: np.ndarray, capture_meta: dict[str, object], options: FitOptions, threads: int | None,
+    groups: np.ndarray | None = None,
 ) -> FitSummary:
     n = len(logits)
     notes: list[str] = []
     warnings = data_warnings(labels, logits.shape[1])
     one = Scaling.of_temperature(1.0, SIGMOID_L1)  # the model as it is
     if options.holdout > 0:
-        fit_rows, eval_rows = resample.split_holdout(labels, options.holdout, options.seed)
+        fit_rows, eval_rows = resample.split_holdout(labels, options.holdout, options.seed, groups=groups)
         part = fit_temperature_l1(logits, labels, rows=fit_rows)
         (fit_before, before), (fit_after, after) = (
             tuple(evaluate(logits, labels, s, options.n_bins, rows=r, threads=threads) for r in (fit_rows, eval_rows))
@@ -236,11 +238,7 @@ def _summarize(
         )
         result = fit_temperature_l1(logits, labels, start=part.temperature)
         fit_part, basis = {"before": fit_before, "after": fit_after}, "held-out"
-        notes.append(
-            f"headline figures are on {len(eval_rows)} held-out samples ({options.holdout:g} of the set, "
-            f"stratified, seed {options.seed}), calibrated with the fit on the other {len(fit_rows)}"
-        )
-        notes.append(f"the parameters baked in are refitted on all {n} samples")
+        notes.extend(holdout_notes(options, fit_rows, eval_rows, groups))
     else:
         fit_rows = eval_rows = np.arange(n)
         part = result = fit_temperature_l1(logits, labels)
@@ -253,7 +251,7 @@ def _summarize(
     intervals = None
     if options.bootstrap > 0:
         intervals = resample.bootstrap(
-            logits, labels, options, fit_rows, eval_rows, part.scaling, refit=refit, threads=threads
+            logits, labels, options, fit_rows, eval_rows, part.scaling, refit=refit, threads=threads, groups=groups
         )
         notes.extend(intervals.get("notes", []))
     for w in (*part.warnings, *result.warnings):
@@ -262,6 +260,6 @@ def _summarize(
     return FitSummary(
         result=result, before=before, after=after, capture=dict(capture_meta), basis=basis, fit_part=fit_part,
         holdout_result=part if options.holdout > 0 else None,
-        split=split_record(options, labels, fit_rows, eval_rows),
+        split=split_record(options, labels, fit_rows, eval_rows, groups),
         intervals=intervals, options=options, warnings=tuple(warnings), notes=tuple(notes),
     )

@@ -130,12 +130,33 @@ class FitSummary:
         }
 
 
+def holdout_notes(
+    options: FitOptions, fit_rows: np.ndarray, eval_rows: np.ndarray, groups: np.ndarray | None
+) -> list[str]:
+    """What the headline figures stand on: held-out samples (rows of whole samples, for a dense output)."""
+    if groups is None:
+        n = len(fit_rows) + len(eval_rows)
+        held, fit, total, by = f"{len(eval_rows)} held-out samples", f"{len(fit_rows)}", f"{n} samples", []
+    else:
+        s_fit, s_held = (resample.samples_of(np.asarray(groups)[rows]).count for rows in (fit_rows, eval_rows))
+        held = f"{len(eval_rows)} held-out rows of {s_held} samples"
+        fit = resample.rows_of_samples(len(fit_rows), s_fit)
+        total = resample.rows_of_samples(len(fit_rows) + len(eval_rows), s_fit + s_held)
+        by = [f"the holdout and the bootstrap take whole samples ({s_fit} to fit, {s_held} held out, with all "
+              "their rows): the rows of one sample are not independent"]
+    return [
+        f"headline figures are on {held} ({options.holdout:g} of the set, stratified, seed {options.seed}), "
+        f"calibrated with the fit on the other {fit}",
+        f"the parameters baked in are refitted on all {total}",
+        *by,
+    ]
 
 
 def split_record(
-    options: FitOptions, labels: np.ndarray, fit_rows: np.ndarray, eval_rows: np.ndarray
+    options: FitOptions, labels: np.ndarray, fit_rows: np.ndarray, eval_rows: np.ndarray, groups: np.ndarray | None
 ) -> dict[str, Any]:
-    """FitSummary's ``split``: the holdout fraction, its seed, the rows in each part, what it is stratified by."""
+    """FitSummary's ``split``: the holdout fraction, its seed, the rows in each part, what it is stratified by,
+    and the samples in each part when rows are grouped by sample."""
     held = options.holdout > 0
     return {
         "fraction": options.holdout,
@@ -143,4 +164,5 @@ def split_record(
         "n_fit": int(len(fit_rows)),
         "n_holdout": int(len(eval_rows)) if held else 0,
         "stratified_by": resample.strata_name(labels) if held else None,
+        **resample.split_samples(groups, fit_rows, eval_rows),
     }

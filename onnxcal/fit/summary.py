@@ -26,7 +26,7 @@ from .options import (
     FitOptions,
     FitResult,
 )
-from .outcome import FitSummary, data_warnings, split_record
+from .outcome import FitSummary, data_warnings, holdout_notes, split_record
 from .temperature import _temperature_result, fit_sigmoid_temperature, fit_temperature
 
 # --------------------------------------------------------------------------
@@ -134,6 +134,7 @@ def summarize(
     options: FitOptions = DEFAULT_OPTIONS,
     *,
     threads: int | None = None,
+    groups: np.ndarray | None = None,
 ) -> FitSummary:
     """Fit on the fit part, score on the held-out part, bootstrap, refit on all.
 
@@ -147,25 +148,31 @@ def summarize(
     threads : int, optional
         Threads for the passes over the logits and the bootstrap (default:
         the cores available); the result does not depend on it.
+    groups : ndarray of int, optional
+        The sample of each row (sorted), when a sample gives several rows (a
+        per-position or per-pixel output: ``Capture.groups()``): the holdout
+        and the bootstrap then take whole samples, and the notes and
+        ``split`` say how many.
 
     Returns
     -------
     FitSummary
     """
     if capture_meta.get("fit_as") == SIGMOID_L1:  # L1(sigmoid(z / T)): a fit of its own
-        return summarize_l1(logits, labels, capture_meta, options, threads=threads)
+        return summarize_l1(logits, labels, capture_meta, options, threads=threads, groups=groups)
     with one_blas_thread():
-        return _summarize(logits, labels, capture_meta, options, threads)
+        return _summarize(logits, labels, capture_meta, options, threads, groups)
 
 
 def _summarize(
-    logits: np.ndarray, labels: np.ndarray, capture_meta: dict[str, Any], options: FitOptions, threads: int | None
+    logits: np.ndarray, labels: np.ndarray, capture_meta: dict[str, Any], options: FitOptions, threads: int | None,
+    groups: np.ndarray | None = None,
 ) -> FitSummary:
     kind = resolve_kind(logits, labels, options)
     n = len(logits)
     notes, warnings = [], data_warnings(labels, logits.shape[1])
     if options.holdout > 0:
-        fit_rows, eval_rows = resample.split_holdout(labels, options.holdout, options.seed)
+        fit_rows, eval_rows = resample.split_holdout(labels, options.holdout, options.seed, groups=groups)
     else:
         fit_rows = eval_rows = np.arange(n)
     if kind == "multiclass" and options.method == "temperature":
@@ -177,11 +184,7 @@ def _summarize(
         (fit_before, before), (fit_after, after) = scores
         fit_part = {"before": fit_before, "after": fit_after}
         basis = "held-out"
-        notes.append(
-            f"headline figures are on {len(eval_rows)} held-out samples ({options.holdout:g} of the set, "
-            f"stratified, seed {options.seed}), calibrated with the fit on the other {len(fit_rows)}"
-        )
-        notes.append(f"the parameters baked in are refitted on all {n} samples")
+        notes.extend(holdout_notes(options, fit_rows, eval_rows, groups))
     else:
         ((before,), (after,)), fit_part, basis = scores, None, "in-sample"
         notes.append(
@@ -191,7 +194,7 @@ def _summarize(
     if options.bootstrap > 0:
         intervals = resample.bootstrap(
             logits, labels, options, fit_rows, eval_rows, part.scaling, refit=fit_scaling, expansion=expansion,
-            threads=threads,
+            threads=threads, groups=groups,
         )
         notes.extend(intervals.get("notes", []))
     for w in (*part.warnings, *result.warnings):
@@ -205,7 +208,7 @@ def _summarize(
         basis=basis,
         fit_part=fit_part,
         holdout_result=part if options.holdout > 0 else None,
-        split=split_record(options, labels, fit_rows, eval_rows),
+        split=split_record(options, labels, fit_rows, eval_rows, groups),
         intervals=intervals,
         options=options,
         warnings=tuple(warnings),

@@ -47,7 +47,7 @@ from .core import (
     softmax,
 )
 from .evaluation import METRIC_FIELDS, METRIC_LABELS, Metrics, evaluate, score_metrics
-from .reliability import Reliability, reliability
+from .reliability import Z_95, Reliability, reliability, wilson_interval
 from .score_sums import RowScores, ScoreSums, temperature_pass
 
 __all__ = [
@@ -56,6 +56,7 @@ __all__ = [
     "METRIC_LABELS",
     "Metrics",
     "Reliability",
+    "Z_95",
     "RowScores",
     "ScoreSums",
     "adaptive_calibration_error",
@@ -79,4 +80,5 @@ __all__ = [
     "softmax",
     "temperature_pass",
     "weighted_quantiles",
+    "wilson_interval",
 ]

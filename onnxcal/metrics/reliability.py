@@ -16,6 +16,64 @@ from .core import iter_chunks, sigmoid, softmax
 from .evaluation import _as_scaling
 from .score_sums import temperature_pass
 
+# The standard normal quantile of 0.975, for 95 % intervals (scipy.stats.norm.ppf(0.975)).
+Z_95 = 1.959963984540054
+
+
+def wilson_interval(
+    successes: np.ndarray, trials: np.ndarray, z: float = Z_95
+) -> tuple[np.ndarray, np.ndarray]:
+    """Wilson score interval of a binomial proportion, element by element.
+
+    The interval is the set of proportions p whose score test does not reject
+    ``successes`` out of ``trials`` at the level of ``z``:
+
+        centre = (k + z²/2) / (n + z²),
+        half   = z / (n + z²) · sqrt(k (n − k) / n + z²/4).
+
+    Unlike the normal approximation k/n ± z sqrt(p̂(1 − p̂)/n) it never leaves
+    [0, 1] and is not empty at k = 0 or k = n, which is why it suits the bins of
+    a reliability diagram, where a bin may hold one prediction.
+
+    Parameters
+    ----------
+    successes : ndarray
+        Predictions that came true (may be float sums of 0/1 values).
+    trials : ndarray
+        Predictions in each bin; a bin of 0 gets NaN bounds.
+    z : float, default Z_95
+        Standard normal quantile (1.96 for 95 %).
+
+    Returns
+    -------
+    (lower, upper) : tuple of ndarray
+
+    References
+    ----------
+    E. B. Wilson, "Probable Inference, the Law of Succession, and Statistical
+    Inference", Journal of the American Statistical Association 22(158),
+    1927, pp. 209-212; A. Agresti & B. A. Coull, "Approximate Is Better than
+    'Exact' for Interval Estimation of Binomial Proportions", The American
+    Statistician 52(2), 1998, eq. (2).
+
+    Examples
+    --------
+    >>> low, high = wilson_interval(np.array([0.0, 5.0]), np.array([1.0, 10.0]))
+    >>> [round(float(v), 4) for v in (low[0], high[0], low[1], high[1])]
+    [0.0, 0.7935, 0.2366, 0.7634]
+    """
+    k = np.asarray(successes, dtype=np.float64)
+    n = np.asarray(trials, dtype=np.float64)
+    z2 = z * z
+    with np.errstate(invalid="ignore", divide="ignore"):
+        centre = (k + z2 / 2) / (n + z2)
+        spread = np.clip(k * (n - k) / n, 0.0, None)  # rounding can make k a hair above n
+        half = z / (n + z2) * np.sqrt(spread + z2 / 4)
+    empty = n <= 0
+    low = np.where(empty, np.nan, np.clip(centre - half, 0.0, 1.0))
+    high = np.where(empty, np.nan, np.clip(centre + half, 0.0, 1.0))
+    return low, high
+
 
 @dataclass(frozen=True)
 class Reliability:
@@ -45,6 +103,10 @@ class Reliability:
         Calibration error of each class's (label's) probability,
         sum_m |B_km|/n |freq_k(B_km) - conf_k(B_km)|; their mean is the
         classwise ECE.
+
+    ``observed_interval`` is each bin's 95 % Wilson interval of the observed
+    fraction (:func:`wilson_interval`); ``mean_confidence`` and
+    ``mean_observed`` are the figures over all bins.
     """
 
     kind: str
@@ -66,11 +128,37 @@ class Reliability:
         gaps = np.abs(self.observed[full] - self.confidence[full]) * self.counts[full]
         return float(gaps.sum() / self.counts.sum()) if full.any() else float("nan")
 
+    @property
+    def observed_interval(self) -> tuple[np.ndarray, np.ndarray]:
+        """Each bin's 95 % Wilson interval of the observed fraction (NaN for an empty bin)."""
+        full = self.counts > 0
+        successes = np.where(full, np.nan_to_num(self.observed) * self.counts, 0.0)
+        return wilson_interval(successes, self.counts)
+
+    @property
+    def mean_confidence(self) -> float:
+        """Mean prediction over every bin (the confidence histogram's mean)."""
+        full = self.counts > 0
+        total = float(self.counts.sum())
+        return float((self.confidence[full] * self.counts[full]).sum() / total) if total else float("nan")
+
+    @property
+    def mean_observed(self) -> float:
+        """Fraction correct (top-label) or present (positive) over every bin."""
+        full = self.counts > 0
+        total = float(self.counts.sum())
+        return float((self.observed[full] * self.counts[full]).sum() / total) if total else float("nan")
+
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready: arrays as lists, NaN (empty bins) as None."""
 
-        def plain(a: np.ndarray) -> list[Any]:
+        def plain(a: np.ndarray) -> list[float | None]:
             return [None if not np.isfinite(v) else float(v) for v in np.asarray(a, dtype=np.float64)]
+
+        def number(v: float) -> float | None:
+            return float(v) if np.isfinite(v) else None
+
+        low, high = self.observed_interval
 
         return {
             "kind": self.kind,
@@ -79,8 +167,13 @@ class Reliability:
             "counts": [int(round(c)) for c in self.counts],
             "confidence": plain(self.confidence),
             "observed": plain(self.observed),
+            "observed_interval": [
+                None if not np.isfinite(lo) else [float(lo), float(hi)] for lo, hi in zip(low, high, strict=True)
+            ],
             "class_error": plain(self.class_error),
-            "error": None if not np.isfinite(self.error) else self.error,
+            "error": number(self.error),
+            "mean_confidence": number(self.mean_confidence),
+            "mean_observed": number(self.mean_observed),
         }
 
 

@@ -26,6 +26,8 @@ The modules, each importing only those above it:
 * ``content``: :func:`build` (every number, the dictionary report.json holds),
   :func:`evaluation`, :func:`describe_scaling`, ``CAUTIONS``, :class:`ReportResult`;
 * ``plots``: :func:`draw` (the PNGs), the colours and sizes of the plots;
+* ``tables``: the tables of the plots' numbers and the footnote on a point estimate
+  outside its own interval;
 * ``pages``: :func:`render` (every file by name), :func:`render_html`,
   :func:`render_markdown`, :func:`render_json`, :func:`outputs`.
 

@@ -104,6 +104,18 @@ def _reproduces(cap: Capture, summary: FitSummary, rows: np.ndarray | None, n_bi
     return m.n == b.n and _close(m.nll, b.nll) and _close(m.brier, b.brier) and _close(m.accuracy, b.accuracy)
 
 
+def _held_out_words(split: dict[str, Any], n: int, n_fit: int, n_held: int) -> str:
+    """The held-out part in words; for whole samples of several rows, the samples too."""
+    fraction, seed = float(split["fraction"]), int(split["seed"])
+    if split.get("grouped_by") != "sample":
+        return (f"{n_held} held-out samples ({fraction:g} of {n}, stratified, seed {seed}), calibrated with the "
+                f"parameters fitted on the other {n_fit}; the parameters baked into the model are refitted on all {n}")
+    s_fit, s_held = int(split["samples_fit"]), int(split["samples_holdout"])
+    return (f"{n_held} held-out rows of {s_held} whole samples ({fraction:g} of {s_fit + s_held} samples, "
+            f"stratified, seed {seed}), calibrated with the parameters fitted on the other {n_fit} rows of "
+            f"{s_fit} samples; the parameters baked into the model are refitted on all {n} rows")
+
+
 def evaluation(cap: Capture, scaling: Scaling, summary: FitSummary | None, n_bins: int) -> Evaluation:
     """Decide what the figures are computed on (see the module docstring)."""
     n = len(cap.logits)
@@ -118,15 +130,14 @@ def evaluation(cap: Capture, scaling: Scaling, summary: FitSummary | None, n_bin
     same_source = summary.capture.get("model_sha256") in (None, cap.meta.model_sha256)
     if same_source and summary.basis == "held-out" and summary.holdout_result is not None:
         split = summary.split
-        fit_rows, eval_rows = split_holdout(cap.labels, float(split["fraction"]), int(split["seed"]))
+        groups = cap.groups() if split.get("grouped_by") == "sample" else None
+        fit_rows, eval_rows = split_holdout(cap.labels, float(split["fraction"]), int(split["seed"]), groups=groups)
         if _reproduces(cap, summary, eval_rows, n_bins):
             return Evaluation(
                 eval_rows,
                 summary.holdout_result.scaling,
                 "held-out",
-                f"{len(eval_rows)} held-out samples ({float(split['fraction']):g} of {n}, stratified, "
-                f"seed {int(split['seed'])}), calibrated with the parameters fitted on the other "
-                f"{len(fit_rows)}; the parameters baked into the model are refitted on all {n}",
+                _held_out_words(split, n, len(fit_rows), len(eval_rows)),
                 summary_reproduced=True,
             )
     if same_source and summary.basis == "in-sample" and _reproduces(cap, summary, None, n_bins):
@@ -178,15 +189,28 @@ def _plain(v: float | None) -> float | None:
     return x if np.isfinite(x) else None
 
 
+def _samples_behind(cap: Capture, rows: np.ndarray | None) -> dict[str, int]:
+    """For an output of several rows per sample (per position, per pixel): rows per sample and how
+    many independent samples the figures stand on; nothing for one row per sample."""
+    r = cap.rows_per_sample
+    if r == 1:
+        return {}
+    picked = np.arange(len(cap.logits)) if rows is None else np.asarray(rows)
+    return {"rows_per_sample": r, "samples_evaluated": int(np.unique(picked // r).size)}
+
+
 def _verdict(content: dict[str, Any]) -> list[str]:
     """Short plain sentences a reviewer reads first."""
     m = content["metrics"]
     before, after = m["before"], m["after"]
+    n = before["n"]
+    samples = content["data"].get("samples_evaluated")
+    rows = f"{n} rows of {samples}" if samples is not None else f"{n}"  # rows of whole samples (issue 12)
     where = {
-        "held-out": f"on {before['n']} held-out samples",
-        "in-sample": f"on the {before['n']} samples the fit used (in-sample, optimistic)",
-        "given": f"on all {before['n']} samples, with parameters given by hand",
-        "other data": f"on {before['n']} samples the fit was not made on",
+        "held-out": f"on {rows} held-out samples",
+        "in-sample": f"on the {rows} samples the fit used (in-sample, optimistic)",
+        "given": f"on all {rows} samples, with parameters given by hand",
+        "other data": f"on {rows} samples the fit was not made on",
     }[m["basis"]]
     lines = []
     for key, name in (("ece", "ECE"), ("nll", "NLL")):
@@ -286,6 +310,7 @@ def build(
             "class_names": names,
             "balance": _balance(cap.labels, before.kind, names),
             "evaluated": int(before.n),
+            **_samples_behind(cap, ev.rows),
         },
         "calibration": {
             "method": scaling.method,

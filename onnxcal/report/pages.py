@@ -11,7 +11,8 @@ from typing import Any
 from ..metrics import METRIC_FIELDS, METRIC_LABELS
 from ..scaling import Scaling
 from ..verify import format_figure
-from .plots import PLOT_PIXELS, PLOTS, draw
+from .plots import PLOT_PIXELS, PLOTS, Content, draw, used_parameters
+from .tables import MARK, bin_table, class_error_table, interval_footnote, outside_interval
 
 FORMATS = ("html", "md", "json", "png")
 FILES: dict[str, tuple[str, ...]] = {"html": ("report.html",), "md": ("summary.md",), "json": ("report.json",)}
@@ -25,8 +26,10 @@ FILES["png"] = tuple(f"{p}.png" for p in PLOTS)
 _CAPTIONS = {
     "reliability": (
         "Reliability diagrams, before and after. Each bar is one bin of predictions: its height is "
-        "the fraction that came true, the hatched box up to the mean confidence in the bin is the "
-        "gap, and a calibrated model keeps the bars on the dashed diagonal."
+        "the fraction that came true, with its 95% Wilson interval as a black line, and the hatched "
+        "box up to the mean confidence in the bin is the gap; a calibrated model keeps the bars on "
+        "the dashed diagonal. A bar is the fainter the fewer predictions its bin holds (the numbers "
+        "along the top): a bin of a handful says little."
     ),
     "confidence": "How the predictions spread over the bins, before and after, with the mean prediction "
     "and the observed rate.",
@@ -50,6 +53,9 @@ code { font-family: ui-monospace, "DejaVu Sans Mono", monospace; font-size: .88e
 figure { margin: 1rem 0 1.5rem; }
 figure img { max-width: 100%; height: auto; border: 1px solid #e0e0e0; }
 figcaption { font-size: .9rem; color: #333; }
+.footnote { font-size: .88rem; color: #333; max-width: 52rem; }
+details { margin: .4rem 0; font-size: .9rem; }
+details summary { cursor: pointer; color: #0060a0; }
 """
 
 
@@ -76,9 +82,14 @@ def _table(head: list[str], rows: list[list[str]], numeric_from: int = 1) -> str
     return "\n".join(out)
 
 
-def metric_rows(content: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
-    """Header and rows of the before/after table (HTML and Markdown)."""
+def metric_rows(content: Content) -> tuple[list[str], list[list[str]]]:
+    """Header and rows of the before/after table (HTML and Markdown).
+
+    An interval that does not hold its own point estimate is marked (``MARK``),
+    and :func:`interval_footnote` says why.
+    """
     m = content["metrics"]
+    marked = outside_interval(content)
     head = ["metric", "before", "after"]
     if m["after_interval"]:
         head.append("after, 95% interval")
@@ -88,29 +99,56 @@ def metric_rows(content: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
     for key in METRIC_FIELDS:
         row = [METRIC_LABELS[key].format(bins=m["n_bins"]), _num(m["before"][key]), _num(m["after"][key])]
         if m["after_interval"]:
-            row.append(_interval(m["after_interval"].get(key)))
+            row.append(_interval(m["after_interval"].get(key)) + (f" {MARK}" if key in marked else ""))
         if m["fit_part"]:
             row += [_num(m["fit_part"][p][key]) for p in ("before", "after")]
         rows.append(row)
     return head, rows
 
 
-def _parameter_rows(content: dict[str, Any]) -> list[list[str]]:
-    """One row per parameter value: name, value, 95% interval (when known)."""
+def _parameter_table(content: Content) -> tuple[list[str], list[list[str]]]:
+    """One row per parameter value: name, value baked in, 95% interval (when known), and the
+    fit part's own value when the figures use it (held-out figures)."""
     c = content["calibration"]
     names = content["data"]["class_names"]
     interval = c["interval"] or {}
+    fit_part = c["figures_use"] if c["figures_use"] != c["parameters"] else None
+    head = ["parameter", "value baked in", "95% interval"]
+    if fit_part is not None:
+        head.append("fitted on the fit part alone (the figures and plots use it)")
     rows = []
     for key, value in c["parameters"].items():
         label = {"temperature": "T", "w": "w (scale)", "b": "b (bias)"}.get(key, key)
         iv = interval.get(key)
+        own: Any = fit_part.get(key) if fit_part is not None else None  # a number or a list, like value
         if isinstance(value, list):
             for i, v in enumerate(value):
-                rows.append([f"{label}, {names[i] if i < len(names) else i}", _num(v),
-                             _interval(iv[i]) if iv else "-"])
+                row = [f"{label}, {names[i] if i < len(names) else i}", _num(v), _interval(iv[i]) if iv else "-"]
+                rows.append(row + ([_num(own[i])] if fit_part is not None else []))
         else:
-            rows.append([label, _num(value), _interval(iv) if iv else "-"])
-    return rows
+            rows.append([label, _num(value), _interval(iv) if iv else "-"]
+                        + ([_num(own)] if fit_part is not None else []))
+    return head, rows
+
+
+def _figure_tables(content: Content, name: str) -> str:
+    """The numbers a plot draws, as tables under it (folded: a reviewer opens them to check a bar)."""
+    if name == "classes":
+        head, rows = class_error_table(content)
+        return ('<details><summary>The numbers of this chart</summary>'
+                + _table(head, rows) + "</details>")
+    if name != "reliability":
+        return ""
+    out = ['<details><summary>The numbers of these diagrams and histograms, bin by bin</summary>']
+    for part, title in zip(("before", "after"), _panel_words(content), strict=True):
+        head, rows = bin_table(content, part)
+        out += [f"<p>{_e(title)}</p>", _table(head, rows)]
+    out.append("</details>")
+    return "".join(out)
+
+
+def _panel_words(content: Content) -> tuple[str, str]:
+    return "Before calibration", f"After calibration with {used_parameters(content)}"
 
 
 def _model_rows(content: dict[str, Any]) -> list[list[str]]:
@@ -169,7 +207,7 @@ def render_html(content: dict[str, Any], pngs: dict[str, bytes]) -> str:
         f"<p>{_e(c['description'])}"
         + (" (given by hand, not fitted: no interval)." if c["given"] else ".")
         + "</p>",
-        _table(["parameter", "value baked in", "95% interval"], _parameter_rows(content)),
+        _table(*_parameter_table(content)),
     ]
     if c["figures_use"] != c["parameters"]:
         t = Scaling(c["method"], c["figures_use"]).temperature
@@ -177,19 +215,22 @@ def render_html(content: dict[str, Any], pngs: dict[str, bytes]) -> str:
         parts.append(f"<p>The held-out figures use {_e(used)} as fitted on the fit part alone, "
                      "without the held-out samples.</p>")
     head, rows = metric_rows(content)
+    footnote = interval_footnote(content)
     parts += [
         '<h2 id="metrics">Metrics before and after</h2>',
         f"<p>On {_e(m['description'])}. Lower is better for every row except accuracy; the gap is "
         "mean confidence minus accuracy (positive: overconfident).</p>",
         _table(head, rows),
+        *([f'<p class="footnote" id="outside-interval">{_e(footnote)}</p>'] if footnote else []),
         '<h2 id="plots">Plots</h2>',
+        f"<p>The after panels use {_e(used_parameters(content))}.</p>",
     ]
     for name in PLOTS:
         data = base64.b64encode(pngs[name]).decode("ascii")
         parts.append(
             f'<figure id="plot-{name}"><img src="data:image/png;base64,{data}" width="{PLOT_PIXELS[0]}" '
             f'height="{PLOT_PIXELS[1]}" alt="{_e(_CAPTIONS[name])}">'
-            f"<figcaption>{_e(_CAPTIONS[name])}</figcaption></figure>"
+            f"<figcaption>{_e(_CAPTIONS[name])}</figcaption>{_figure_tables(content, name)}</figure>"
         )
     if content["verification"] is not None:
         parts += ['<h2 id="verification">Verification</h2>', _verification_html(content["verification"])]
@@ -232,6 +273,9 @@ def render_markdown(content: dict[str, Any]) -> str:
         "",
         *[f"- {_md(line)}" for line in content["verdict"]],
     ]
+    footnote = interval_footnote(content)
+    if footnote:
+        lines += ["", _md(footnote)]
     if content["warnings"]:
         lines += ["", "Warnings:", *[f"- {_md(w)}" for w in content["warnings"]]]
     lines += ["", "> **Cautions.** " + " ".join(content["cautions"]), ""]

@@ -226,6 +226,27 @@ def bad_models(d: Path, rng: np.random.Generator) -> None:
     )
     _save(_finish(lstm), d / "recurrent.onnx")
 
+    # inputs that are not samples (issue 12): a scalar sample rate and a state 1 x N x 3
+    state = helper.make_graph(
+        [helper.make_node("Squeeze", ["h0", "zero"], ["h"], name="squeeze_state"),
+         helper.make_node("Concat", ["x", "h"], ["feat"], axis=1, name="concat"),
+         helper.make_node("Cast", ["sr"], ["sr_f"], to=TensorProto.FLOAT, name="cast_sr"),
+         helper.make_node("Div", ["sr_f", "sr_unit"], ["sr_scale"], name="scale_sr"),
+         helper.make_node("MatMul", ["feat", "state_w"], ["proj"], name="matmul"),
+         helper.make_node("Mul", ["proj", "sr_scale"], ["logits"], name="by_rate"),
+         helper.make_node("Softmax", ["logits"], ["probs"], axis=-1, name="softmax")],
+        "stateful",
+        [_vi("x", ["N", D]), _vi("sr", [], TensorProto.INT64), _vi("h0", [1, "N", h])],
+        [_vi("probs", ["N", K])],
+        initializer=[numpy_helper.from_array(rng.normal(size=(D + h, K)).astype(np.float32), "state_w"),
+                     numpy_helper.from_array(np.array(16000.0, np.float32), "sr_unit"),
+                     numpy_helper.from_array(np.array([0], np.int64), "zero")],
+    )
+    _save(_finish(state), d / "stateful.onnx")
+    n = 24
+    np.savez(d / "val_state.npz", x=rng.normal(size=(n, D)).astype(np.float32),
+             h0=rng.normal(size=(1, n, h)).astype(np.float32), labels=np.arange(n) % K)
+
     # an If whose branches compute the output differently: a Sigmoid in one, raw values in the other
     def branch(tag: str, sigmoid: bool) -> onnx.GraphProto:
         nodes = [helper.make_node("MatMul", ["x", f"{tag}_w"], [f"{tag}_z"], name=f"{tag}_matmul")]

@@ -4,8 +4,10 @@ import importlib
 from dataclasses import replace
 
 import numpy as np
+import onnx
 import onnxruntime as ort
 from conftest import capture_of, per_sample, random_mlp
+from onnx import TensorProto, helper, numpy_helper
 
 from onnxcal.capture import RunOptions
 from onnxcal.data import Dataset
@@ -118,3 +120,26 @@ def test_automatic_batch_size_stays_for_a_slow_model(rng):
     x = rng.normal(size=(3000, 6)).astype(np.float32)
     sizes, _ = _batches(model, x, RunOptions(), sleep=0.002)  # 2 ms per call: onnxcal's share is tiny
     assert set(sizes[:-1]) == {64}
+
+
+def _with_state_output(batch: int | str) -> onnx.ModelProto:
+    """x (B x 3) -> y = 2x (B x 3) and s = Unsqueeze(x, 0) (1 x B x 3: samples on axis 1)."""
+    g = helper.make_graph(
+        [helper.make_node("Mul", ["x", "two"], ["y"]), helper.make_node("Unsqueeze", ["x", "zero"], ["s"])],
+        "state_out", [helper.make_tensor_value_info("x", TensorProto.FLOAT, [batch, 3])],
+        [helper.make_tensor_value_info("y", TensorProto.FLOAT, [batch, 3]),
+         helper.make_tensor_value_info("s", TensorProto.FLOAT, [1, batch, 3])],
+        [numpy_helper.from_array(np.float32(2.0), "two"), numpy_helper.from_array(np.array([0], np.int64), "zero")],
+    )
+    return helper.make_model(g, opset_imports=[helper.make_opsetid("", 17)])
+
+
+def test_outputs_with_samples_on_axis_1_are_joined_along_it():
+    from onnxcal.capture import run_model
+
+    x = np.arange(13 * 3, dtype=np.float32).reshape(13, 3)
+    ds = Dataset({"x": x}, None, "mem")
+    for batch, size in (("N", 4), (2, None), (2, 2)):  # batched; a fixed batch of 2 freed; run 2 at a time, padded
+        y, s = run_model(_with_state_output(batch), ds, ["y", "s"], batch_size=size, out_axes=[0, 1])
+        np.testing.assert_array_equal(y, 2 * x)
+        np.testing.assert_array_equal(s, x[None])  # NumPy's expand_dims, the Unsqueeze of the ONNX spec
