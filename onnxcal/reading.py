@@ -255,7 +255,20 @@ def site_reading(site: ScoreSite) -> dict[str, Any]:
 
 def _params(records: tuple[Record, ...]) -> str:
     methods = {r.method for r in records}
-    return "T = 1" if methods == {"temperature"} else "the identity (T = 1, w = 1, b = 0)"
+    if methods == {"temperature"}:
+        return "T = 1"
+    if methods <= {"temperature", "vector", "platt"}:
+        return "the identity (T = 1, w = 1, b = 0)"
+    words = dict.fromkeys(_IDENTITY[m] for m in sorted(methods) if m in _IDENTITY)
+    return f"the identity ({'; '.join(words)})"
+
+
+# Each method's identity parameters, in words (graph.mapped.identity_parameters for the maps).
+_IDENTITY = {
+    "temperature": "T = 1", "vector": "w = 1, b = 0", "platt": "w = 1, b = 0", "matrix": "matrix W = I, b = 0",
+    "dirichlet": "Dirichlet W = I, b = 0", "beta": "beta a = b = 1, c = 0",
+    "ensemble-temperature": "ensemble weights (0, 1, 0)", "ovr-platt": "one-vs-rest Platt a = 1, b = 0",
+}
 
 
 def identity(
@@ -270,6 +283,8 @@ def identity(
     if original is None:
         return skipped("identity", "no original model: the patch cannot be undone exactly (folded weights), "
                                    "give --original")
+    if why := graph.identity_unavailable(records):
+        return skipped("identity", why)
     at_one = graph.at_identity(patched, records, original)
     if at_one is None:
         return skipped("identity", "the parameters are folded into the weights; give --original")

@@ -290,6 +290,10 @@ def _draw(rng: np.random.Generator, n: int, samples: Samples | None) -> np.ndarr
     return samples.rows(rng.integers(0, samples.count, samples.count))
 
 
+# A lookup's tables change size from one replicate to the next: no interval per entry.
+_LOOKUPS = ("isotonic", "histogram")
+
+
 def _percentile(values: np.ndarray) -> list[Any]:
     """[low, high] per column of (replicates, ...) values; None where any is NaN."""
     q = np.percentile(values, [100 * (1 - LEVEL) / 2, 100 * (1 + LEVEL) / 2], axis=0)
@@ -357,7 +361,7 @@ def bootstrap(
     else:
         params, metrics = run.exact(draws)
         fallbacks = 0
-    names = list(start.parameters)
+    names = [] if start.method in _LOOKUPS else list(start.parameters)
     out = {
         "level": LEVEL,
         "kind": "percentile",
@@ -417,7 +421,7 @@ class Replicates:
         params, metrics = [], []
         for draw in draws:
             res = self._refit(draw.fit_counts)
-            params.append(res.scaling.arrays())
+            params.append({} if res.scaling.method in _LOOKUPS else res.scaling.arrays())
             metrics.append(self._score(res.scaling, draw.held_counts))
         return params, metrics
 

@@ -17,6 +17,18 @@ vector         multiclass   ``w``: [w_k], ``b``: [b_k]   softmax(w * z + b)
 platt          binary       ``w``: a, ``b``: b           sigmoid(a z + b)
 =============  ===========  ===========================  =======================
 
+The maps of :mod:`onnxcal.maps` (``matrix``, ``dirichlet``, ``beta``,
+``isotonic``, ``histogram``, ``ensemble-temperature``, ``ovr-platt``) are
+methods here too: their parameters are the JSON dicts their modules take,
+:meth:`Scaling.probabilities` is their float64 reference, and ``apply``
+gives *calibrated logits* whose softmax (sigmoid for one logit) is those
+probabilities: the map's own logits where it has them (matrix, Dirichlet,
+beta), else log p (multiclass) or logit p (one logit) with p clipped to
+[1e-15, 1 - 1e-15] as scikit-learn's ``log_loss`` clips (its ``eps`` before
+version 1.5), so that an exact 0 of a lookup gives a finite NLL. Every
+stage that reads calibrated logits (metrics, verify, the graph's activation)
+then works unchanged for them.
+
 References
 ----------
 Guo, Pleiss, Sun, Weinberger, "On Calibration of Modern Neural Networks",
@@ -40,15 +52,26 @@ from .errors import OnnxcalError
 SIGMOID_L1 = "sigmoid-l1"
 """One sigmoid per class, L1-normalised: p_k = sigmoid(z_k / T) / sum_j sigmoid(z_j / T) (``l1_sigmoid``)."""
 KINDS = ("multiclass", "binary", "multilabel", SIGMOID_L1)
-METHODS = ("temperature", "vector", "platt")
+# The affine maps (w * z + b per class), fitted by onnxcal.fit itself.
+AFFINE_METHODS = ("temperature", "vector", "platt")
+# The maps of onnxcal.maps, in the order `--method auto` lists them.
+MAP_METHODS = ("matrix", "dirichlet", "beta", "isotonic", "histogram", "ensemble-temperature", "ovr-platt")
+METHODS = AFFINE_METHODS + MAP_METHODS
+# The methods with a penalty --l2 sets (see onnxcal.fit.maps for the maps').
+PENALISED_METHODS = ("vector", "platt", "matrix", "dirichlet", "beta", "ovr-platt")
 MULTILABEL_MODES = ("shared", "per-label")
 # Which methods apply to which kind of classifier.
 METHODS_FOR = {
-    "multiclass": ("temperature", "vector"),
-    "binary": ("temperature", "platt"),
+    "multiclass": (
+        "temperature", "vector", "matrix", "dirichlet", "isotonic", "histogram", "ensemble-temperature", "ovr-platt",
+    ),
+    "binary": ("temperature", "platt", "beta", "isotonic", "histogram", "ovr-platt"),
     "multilabel": ("temperature",),
     SIGMOID_L1: ("temperature",),
 }
+# Probabilities are clipped to [PROBABILITY_FLOOR, 1 - PROBABILITY_FLOOR] before
+# their log is taken (scikit-learn's log_loss, eps = 1e-15 before version 1.5).
+PROBABILITY_FLOOR = 1e-15
 
 
 @dataclass(frozen=True)
@@ -118,12 +141,42 @@ class Scaling:
         array([[1.5, 2. ]])
         """
         z = np.asarray(logits, dtype=np.float64)
+        if self.method in MAP_METHODS:
+            return _map_logits(self, z)
         a = self.arrays()
         if self.method == "temperature":
             scaled: np.ndarray = z / a["temperature"]
         else:
             scaled = z * a["w"] + a["b"]
         return scaled
+
+    @property
+    def is_affine(self) -> bool:
+        """True for the maps that are w * z + b per class (temperature, vector, Platt)."""
+        return self.method in AFFINE_METHODS
+
+    def probabilities(self, logits: np.ndarray) -> np.ndarray:
+        """The calibrated probabilities, float64, class axis last (the NumPy reference).
+
+        Softmax of :meth:`apply` for a multiclass classifier, its sigmoid
+        otherwise; for the maps of :mod:`onnxcal.maps`, their own ``apply``
+        (unclipped).
+
+        Examples
+        --------
+        >>> Scaling("ensemble-temperature", {"temperature": 1.0, "weights": [0.0, 0.0, 1.0]}).probabilities(
+        ...     np.array([[3.0, 0.0]]))
+        array([[0.5, 0.5]])
+        """
+        z = np.asarray(logits, dtype=np.float64)
+        if self.method in MAP_METHODS:
+            return _map_probabilities(self, z)
+        s = self.apply(z)
+        if self.kind == "multiclass":
+            e = np.exp(s - s.max(axis=-1, keepdims=True))
+            p: np.ndarray = e / e.sum(axis=-1, keepdims=True)
+            return p
+        return 0.5 * (1.0 + np.tanh(0.5 * s))
 
     def affine(self) -> tuple[np.ndarray, np.ndarray]:
         """``(w, b)`` with ``apply(z) = w * z + b``, float64: ``(1/T, 0)`` for temperature scaling.
@@ -136,18 +189,54 @@ class Scaling:
         >>> Scaling.of_temperature([2.0, 4.0], "multilabel").affine()
         (array([0.5 , 0.25]), array([0., 0.]))
         """
+        if not self.is_affine:
+            raise OnnxcalError(f"{self.method} calibration is not an affine map per class of the logits")
         a = self.arrays()
         if self.method == "temperature":
             return 1.0 / a["temperature"], np.zeros_like(a["temperature"])
         return a["w"], a["b"]
 
     def scale(self) -> np.ndarray:
-        """The multiplier of the logits: 1/T, or w (for warnings on its size)."""
+        """The multiplier of the logits: 1/T, or w (for warnings on its size); 1 for the other maps."""
+        if not self.is_affine:
+            return np.ones(1)
         a = self.arrays()
         return 1.0 / a["temperature"] if self.method == "temperature" else a["w"]
 
     def to_dict(self) -> dict[str, Any]:
         return {"method": self.method, "kind": self.kind, "parameters": dict(self.parameters)}
+
+
+def _rows(z: np.ndarray) -> tuple[np.ndarray, tuple[int, ...]]:
+    """Logits as rows (N x K; a vector of one-logit scores as N x 1) and the shape to give back."""
+    if z.ndim <= 1:
+        return z.reshape(-1, 1), z.shape
+    return z.reshape(-1, z.shape[-1]), z.shape
+
+
+def _map_probabilities(scaling: Scaling, z: np.ndarray) -> np.ndarray:
+    from . import maps  # maps imports fit and metrics, which import this module
+
+    rows, shape = _rows(z)
+    p: np.ndarray = maps.module(scaling.method).apply(scaling.parameters, rows).reshape(shape)
+    return p
+
+
+def _map_logits(scaling: Scaling, z: np.ndarray) -> np.ndarray:
+    """Logits whose softmax (sigmoid for one logit) is the map's probabilities."""
+    from . import maps
+
+    rows, shape = _rows(z)
+    mod = maps.module(scaling.method)
+    if hasattr(mod, "calibrated_logits"):  # matrix, Dirichlet, beta: the map's own logits
+        return np.asarray(mod.calibrated_logits(scaling.parameters, rows), dtype=np.float64).reshape(shape)
+    p: np.ndarray = mod.apply(scaling.parameters, rows)
+    if rows.shape[1] == 1:
+        p = np.clip(p, PROBABILITY_FLOOR, 1.0 - PROBABILITY_FLOOR)
+        logit: np.ndarray = (np.log(p) - np.log1p(-p)).reshape(shape)
+        return logit
+    logp: np.ndarray = np.log(np.clip(p, PROBABILITY_FLOOR, 1.0)).reshape(shape)
+    return logp
 
 
 def _finite_numbers(value: object, what: str) -> np.ndarray:
@@ -178,6 +267,11 @@ def check_scaling(scaling: Scaling, num_classes: int | None = None) -> Scaling:
         raise OnnxcalError(f"unknown kind of classifier {scaling.kind!r}", f"use one of: {', '.join(KINDS)}")
     if scaling.method not in METHODS_FOR[scaling.kind]:
         raise OnnxcalError(f"{scaling.method} scaling does not apply to a {scaling.kind} classifier")
+    if scaling.method in MAP_METHODS:
+        from . import maps
+
+        maps.module(scaling.method).check_parameters(scaling.parameters, num_classes, scaling.kind)
+        return scaling
     names = ("temperature",) if scaling.method == "temperature" else ("w", "b")
     if sorted(scaling.parameters) != sorted(names):
         raise OnnxcalError(

@@ -68,6 +68,9 @@ class Check:
         What was measured, in words.
     skipped : bool
         The check could not be run (``detail`` says why); it does not fail.
+    undecided : bool
+        A statistical gate whose interval straddles its target (more data
+        would tell); it does not fail.
     """
 
     name: str
@@ -76,11 +79,14 @@ class Check:
     limit: float | None
     detail: str
     skipped: bool = False
+    undecided: bool = False
 
     @property
     def status(self) -> str:
-        """``"pass"``, ``"fail"`` or ``"skip"``."""
-        return "skip" if self.skipped else ("pass" if self.passed else "fail")
+        """``"pass"``, ``"fail"``, ``"skip"`` or ``"undecided"``."""
+        if self.skipped:
+            return "skip"
+        return "undecided" if self.undecided and self.passed else ("pass" if self.passed else "fail")
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready: a NaN or infinite figure becomes None."""
@@ -149,7 +155,28 @@ def _as_scaling(scaling: Scaling | float) -> Scaling:
 def _describe(scaling: Scaling) -> str:
     if scaling.temperature is not None:
         return f"logits / {scaling.temperature:.6g}"
+    if not scaling.is_affine:
+        return f"{scaling.method} map of logits"
     return "logits / T_k" if scaling.method == "temperature" else "w * logits + b"
+
+
+# Maps that can change a row's argmax or a 0.5 decision through ties or flat steps
+# (piecewise-constant or piecewise-linear lookups): their decisions are checked
+# against the reference's, not the original model's.
+LOOKUP_METHODS = ("isotonic", "histogram")
+
+
+def decisions_detail(scaling: Scaling, multiclass: bool) -> str:
+    """What the argmax / decision check compares, in words."""
+    if multiclass:
+        what = "unchanged" if scaling.method == "temperature" else "as in the reference"
+        text = f"fraction of rows whose argmax is {what} (up to rounding ties)"
+    else:
+        text = "fraction of 0.5-threshold decisions as in the reference"
+    if scaling.method in LOOKUP_METHODS:
+        text += (f"; {scaling.method} can change the ranking and the decision (ties, flat steps), so it is "
+                 "checked against the reference, not against the original model")
+    return text
 
 
 def reference_probabilities(
@@ -266,13 +293,10 @@ class Comparison:
                 checks.append(skipped("row-sums",
                                       f"the output is post-processed ({then[7:]}), its rows need not sum to 1"))
             agree = self.agree / self.rows if self.rows else 1.0
-            what = "unchanged" if self.scaling.method == "temperature" else "as in the reference"
-            detail = f"fraction of rows whose argmax is {what} (up to rounding ties)"
-            checks.append(Check("argmax", agree == 1.0, agree, 1.0, detail))
+            checks.append(Check("argmax", agree == 1.0, agree, 1.0, decisions_detail(self.scaling, True)))
         else:
             decide = self.agree / self.values if self.values else 1.0
-            detail = "fraction of 0.5-threshold decisions as in the reference"
-            checks.append(Check("decisions", decide == 1.0, decide, 1.0, detail))
+            checks.append(Check("decisions", decide == 1.0, decide, 1.0, decisions_detail(self.scaling, False)))
         return tuple(checks)
 
 

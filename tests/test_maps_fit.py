@@ -545,3 +545,20 @@ def test_fit_leaves_float64_scores_unchanged(method, rng):
     before = z.copy()
     MODULES[method].fit(z, y)
     assert np.array_equal(z, before)
+
+
+def test_maps_bounds_are_the_fit_bounds():
+    # onnxcal.maps keeps its own copy of the bounds so that it imports nothing of the fit.
+    from onnxcal.fit import B_MAX, T_MAX, T_MIN
+    from onnxcal.maps import _base
+
+    assert (_base.T_MIN, _base.T_MAX, _base.B_MAX) == (T_MIN, T_MAX, B_MAX)
+
+
+def test_ensemble_own_temperature_is_the_fit_temperature(rng):
+    # The bounded scalar search of maps.ensemble and onnxcal.fit's Newton solver reach the same T.
+    z = rng.normal(scale=3.0, size=(600, 5))
+    y = np.argmax(z / 2.0 + rng.gumbel(size=z.shape), axis=1)
+    t_own, _, on_bound = ensemble.fit_temperature(z, y)
+    assert not on_bound
+    assert t_own == pytest.approx(fit_temperature(z.astype(np.float32), y).temperature, rel=1e-5)

@@ -16,12 +16,14 @@ from .._limits import DEFAULT_MAX_MODEL_BYTES, check_bins_memory
 from .._numeric import max_abs
 from ..capture import CPU, Capture, ProgressFn, RunOptions, finite_mask
 from ..data import Dataset, DataSpec
+from ..decisions.plan import NO_DECISIONS, DecisionOptions, Decisions
 from ..errors import OnnxcalError
 from ..fit import FitOptions, FitSummary
 from ..graph import Record
 from ..report import FORMATS, ReportResult
 from ..report import build as build_report
-from ..verify import VerifyResult
+from ..verify import VerifyResult, reference_probabilities
+from . import deciding
 from .capture_fit import check_fit_options, summarize_capture
 from .checks import compare_as_it_runs, record_checks
 from .common import (
@@ -50,6 +52,7 @@ class CalibrateResult:
     patch: PatchResult | None
     verification: VerifyResult
     report: ReportResult | None = None
+    decisions: Decisions | None = None
 
 
 def _check_not_calibrated(model, model_path, output: str | None) -> None:
@@ -89,12 +92,13 @@ class _Captured:
     dropped: str | None  # the note on the rows left out, if any
 
 
-def _check_outputs(out, report, model_path, spec: DataSpec, force: bool, limit: int) -> bool:
+def _check_outputs(out, report, model_path, specs: list[DataSpec], force: bool, limit: int) -> bool:
     """Check the model's output (and its data file) and the report's files before any work; True if external."""
-    external = check_model_outputs(out, [model_path, *spec.files()], model_path, force, limit)
+    files = [f for spec in specs for f in spec.files()]
+    external = check_model_outputs(out, [model_path, *files], model_path, force, limit)
     if report is not None:
         outputs = [out, *([graph.external_data_path(out)] if external else [])]
-        inputs = [*model_files(model_path, limit), *spec.files(), *outputs]
+        inputs = [*model_files(model_path, limit), *files, *outputs]
         report_targets(report, FORMATS, inputs, force, "--report")
     return external
 
@@ -119,21 +123,40 @@ def _fit_captured(seen: _Captured, options: FitOptions) -> FitSummary:
     return summary
 
 
+@dataclass(frozen=True)
+class _Deciding:
+    """The decision options of a calibrate run and the separate set to choose on (None: the held-out rows)."""
+
+    options: DecisionOptions
+    separate: DataSpec | None
+    fit: FitOptions
+
+
 def _patch_and_check(
-    source: _Source, patching: PatchOptions, seen: _Captured, summary: FitSummary
-) -> tuple[onnx.ModelProto, Record, VerifyResult]:
-    """The patched model (in memory), its record, and its checks against the captured logits and the original."""
+    source: _Source, patching: PatchOptions, seen: _Captured, summary: FitSummary, to_decide: _Deciding
+) -> tuple[onnx.ModelProto, Record, VerifyResult, Decisions | None]:
+    """The patched model (in memory), its record, its checks against the captured logits and the original,
+    and the decision thresholds it carries (when asked for)."""
     cap = seen.cap
     patched = patching.patch(source.model, summary.scaling, sha=source.sha, path=source.path, fit=summary.to_dict(),
                              reading=_reading.patch_reading(cap.meta.to_dict()), largest_logit=max_abs(cap.logits))
     record = graph.read_record(patched, cap.meta.output)
     run, progress = source.run, source.progress
+    chosen = None
+    if to_decide.options.wanted:
+        patched, record, chosen = deciding.for_calibrate(
+            patched, record, cap.labels, seen.keep, source.dataset, to_decide.separate, to_decide.fit,
+            to_decide.options, run, progress)
     checks = compare_as_it_runs(patched, record, source.dataset, run, progress, seen.full.logits, seen.keep)
+    if chosen is not None:
+        reference = reference_probabilities(cap.logits, record.scaling, record.activation)
+        checks += deciding.exact_checks(patched, record, source.dataset, run, progress, reference, seen.keep)[0]
     # other heads: the original's sha256
     source_sha = source.sha if len(graph.read_records(patched)) == 1 else record.source_sha256
     checks += record_checks(record, patched, source.model, source_sha)
     checks.append(_reading.identity(source.model, patched, (record,), source.dataset, run, progress))
-    return patched, record, VerifyResult(checks=tuple(checks), n=source.dataset.n, original=str(source.path))
+    result = VerifyResult(checks=tuple(checks), n=source.dataset.n, original=str(source.path))
+    return patched, record, result, chosen
 
 
 def _report_files(
@@ -145,7 +168,7 @@ def _report_files(
     }
     content = build_report(
         cap, summary.scaling, summary=summary, class_names=capture_names(cap), calibrated=calibrated,
-        verification=result,
+        verification=result, decisions=graph.read_record(patched, cap.meta.output).decisions,
     )
     return report_files(directory, content, FORMATS)
 
@@ -174,6 +197,8 @@ def calibrate(
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
     output_holds: str | None = None,
     score_columns: str | None = None,
+    decisions: DecisionOptions = NO_DECISIONS,
+    decision_data: DataSource | None = None,
 ) -> CalibrateResult:
     """Capture, fit, patch and verify in one go (and write a report).
 
@@ -189,12 +214,18 @@ def calibrate(
     together, only once everything is computed. ``drop_nonfinite`` leaves out
     samples whose logits hold NaN or Inf (a note says how many; by default
     they are refused); ``max_model_bytes`` as for :func:`capture`.
+    ``decisions`` adds decision outputs beside the probabilities
+    (docs/decisions.md), their thresholds chosen on the held-out rows (the
+    map baked in is then the one fitted on the other rows) or on
+    ``decision_data``, a separate labelled set (read with ``data``'s options).
     """
     check_fit_options(options)
     check_columns(score_columns)
     spec = data_spec(data)
+    deciding.check_request(decisions, decision_data is not None, options)
+    to_decide = _Deciding(decisions, deciding.decision_spec(decisions, decision_data, spec), options)
     limit = model_byte_limit(max_model_bytes)
-    external = _check_outputs(out, report, model_path, spec, force, limit)
+    external = _check_outputs(out, report, model_path, [spec, *filter(None, [to_decide.separate])], force, limit)
     run = run_options(batch_size, threads, optimization, provider)
     patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds,
                             score_columns)
@@ -206,8 +237,8 @@ def calibrate(
     source = _Source(model, model_path, sha, dataset, run, progress)
     seen = _capture_finite(source, patching, drop_nonfinite)
     warn_nonfinite_inputs(seen.full, dataset.source)
-    summary = _fit_captured(seen, options)
-    patched, record, result = _patch_and_check(source, patching, seen, summary)
+    summary = deciding.baked_summary(_fit_captured(seen, options), decisions, to_decide.separate is not None)
+    patched, record, result, chosen = _patch_and_check(source, patching, seen, summary, to_decide)
     written = PatchResult(path=str(out), record=record) if result.passed else None
     files: dict[Path, bytes] = graph.model_files(patched, out, external=external) if written is not None else {}
     written_report = None
@@ -215,4 +246,5 @@ def calibrate(
         report_content, written_report = _report_files(report, out, external, patched, seen.cap, summary, result)
         files.update(report_content)
     atomic_write_files(files)
-    return CalibrateResult(summary=summary, patch=written, verification=result, report=written_report)
+    return CalibrateResult(summary=summary, patch=written, verification=result, report=written_report,
+                           decisions=chosen)

@@ -16,7 +16,7 @@ from ..capture import CPU, Capture, ProgressFn, load_captures, nonfinite_logits
 from ..errors import OnnxcalError, OnnxcalWarning
 from ..fit import T_MAX, T_MIN, FitOptions, FitSummary, save_fit, summarize
 from ..graph import ModelInfo
-from ..scaling import METHODS, MULTILABEL_MODES
+from ..scaling import METHODS, MULTILABEL_MODES, PENALISED_METHODS
 from .common import (
     DataSource,
     check_columns,
@@ -148,16 +148,16 @@ def check_fit_options(options: FitOptions) -> FitOptions:
         scaling), ``--holdout`` 0 to 0.9, ``--seed`` 0 to 2^32 - 1,
         ``--bootstrap`` 0 to 10 000, ``--bins`` 2 to 100 000.
     """
-    if options.method not in METHODS:
-        raise OnnxcalError(f"--method {options.method!r} is not one of: {', '.join(METHODS)}")
+    if options.method not in (*METHODS, "auto"):
+        raise OnnxcalError(f"--method {options.method!r} is not one of: {', '.join(METHODS)}, auto")
     if options.multilabel is not None and options.multilabel not in MULTILABEL_MODES:
         raise OnnxcalError(
             f"--multilabel {options.multilabel!r} is not one of: {', '.join(MULTILABEL_MODES)}"
         )
     # 1e6 times the penalty pins w to 1 and b to 0 already (the NLL is a mean, of order 1)
     check_range(options.l2, 0.0, MAX_L2, "--l2", "a penalty (0 for none)")
-    if options.l2 > 0 and options.method == "temperature":
-        raise OnnxcalError("--l2 applies to --method vector and platt, not temperature")
+    if options.l2 > 0 and options.method not in (*PENALISED_METHODS, "auto"):
+        raise OnnxcalError(f"--l2 applies to --method {', '.join(PENALISED_METHODS)} and auto, not {options.method}")
     check_range(options.holdout, 0.0, 0.9, "--holdout", "a fraction (0 scores in-sample)")
     check_range(options.seed, 0, MAX_SEED, "--seed", "a seed")
     check_range(options.bootstrap, 0, MAX_BOOTSTRAP, "--bootstrap", "a number of replicates (0 skips the intervals)")

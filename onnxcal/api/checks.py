@@ -81,7 +81,8 @@ def record_checks(
         checks.append(folded_record_check(record.scaling, found))
     else:
         in_graph = graph.parameter_values(patched, record)
-        checks.append(record_check(record.parameters, in_graph, graph.temperature_dtype(patched, record)))
+        expected = graph.recorded_values(patched, record)
+        checks.append(record_check(expected, in_graph, graph.temperature_dtype(patched, record)))
     if source_sha is None:
         checks.append(
             skipped(

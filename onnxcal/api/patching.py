@@ -14,10 +14,13 @@ from .. import reading as _reading
 from .._files import one_command
 from .._limits import DEFAULT_MAX_MODEL_BYTES
 from .._numeric import check_in_dtype
+from ..data import DataSpec
+from ..decisions.plan import NO_DECISIONS, DecisionOptions, Decisions
 from ..errors import OnnxcalError
 from ..fit import FitSummary, load_fit
 from ..graph import Record
 from ..scaling import Scaling
+from . import deciding
 from .common import (
     check_columns,
     check_model_outputs,
@@ -32,6 +35,7 @@ class PatchResult:
 
     path: str
     record: Record
+    decisions: Decisions | None = None
 
 
 @dataclass(frozen=True)
@@ -154,6 +158,8 @@ def patch(
     output_holds: str | None = None,
     fitted_on_twin: bool = False,
     score_columns: str | None = None,
+    decisions: DecisionOptions = NO_DECISIONS,
+    decision_data: str | os.PathLike | DataSpec | None = None,
 ) -> PatchResult:
     """Write a copy of the model that outputs calibrated probabilities.
 
@@ -185,10 +191,18 @@ def patch(
         quantized twin): a fit whose capture's model sha256 differs from
         this model's (and from its recorded original's) is refused without
         it. The record then holds both hashes.
+    decisions, decision_data
+        Decision outputs beside the calibrated probabilities (``accept``,
+        ``class_set``, ``class_set_size``; docs/decisions.md), their
+        thresholds chosen on ``decision_data``, a labelled set the map was
+        not fitted on, run through the patched model (required with them).
     """
     limit = model_byte_limit(max_model_bytes)
     check_columns(score_columns)
+    deciding.check_request(decisions, decision_data is not None, None)
+    separate = deciding.decision_spec(decisions, decision_data, None)
     inputs = [model_path] + ([fit] if isinstance(fit, (str, os.PathLike)) else [])
+    inputs += separate.files() if separate is not None else []
     external = check_model_outputs(out, inputs, model_path, force, limit)
     calibration, fit_dict = _resolve_scaling(temperature, fit)
     if fitted_on_twin and fit is None:
@@ -207,8 +221,11 @@ def patch(
     reading = _reading.patch_reading(meta) if output_holds is None and meta else None
     patched = patching.patch(model, calibration, sha=sha, path=model_path, fit=fit_dict, reading=reading,
                              fitted_on=fitted_on)
+    chosen = None
+    if separate is not None:
+        patched, chosen = deciding.for_patch(patched, output, separate, decisions)
     graph.save_model(patched, out, external=external)
-    return PatchResult(path=str(out), record=graph.read_record(patched, output))
+    return PatchResult(path=str(out), record=graph.read_record(patched, output), decisions=chosen)
 
 
 def _provenance(fit_dict: dict[str, Any], fit, model_path, sha: str, records, twin: bool) -> str:

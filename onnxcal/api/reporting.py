@@ -147,6 +147,7 @@ class _Calibration:
     source_sha: str | None  # the sha256 of the model they were made for, when known
     what: str  # how messages name them
     calibrated: dict[str, Any] | None = None  # the patched model given with --model: name, path, sha256
+    decisions: dict[str, Any] | None = None  # its record's decisions section (docs/decisions.md)
 
 
 def _calibration_of(temperature: float | None, fit, model, cap: Capture, limit: int) -> _Calibration:
@@ -161,7 +162,8 @@ def _calibration_of(temperature: float | None, fit, model, cap: Capture, limit: 
     record = _record_of(model, limit)
     summary = _fit_from_record(record, model)
     calibrated = {"name": Path(model).name, "path": str(model), "sha256": graph.model_sha256(model)}
-    return _Calibration(record.scaling, summary, record.source_sha256, f"the calibration in '{model}'", calibrated)
+    return _Calibration(record.scaling, summary, record.source_sha256, f"the calibration in '{model}'", calibrated,
+                        record.decisions)
 
 
 @one_command
@@ -238,7 +240,8 @@ def report(
     check_bins_memory(n_bins or (summary.options.n_bins if summary is not None else DEFAULT_BINS), cap.logits.shape[1])
     names = _class_names(class_names, cap.logits.shape[1]) or capture_names(cap)
     content = build_report(
-        cap, cal.scaling, summary=summary, class_names=names, n_bins=n_bins, calibrated=cal.calibrated
+        cap, cal.scaling, summary=summary, class_names=names, n_bins=n_bins, calibrated=cal.calibrated,
+        decisions=cal.decisions,
     )
     if dropped is not None:
         content["notes"] = [*content.get("notes", []), dropped]

@@ -42,6 +42,7 @@ from ..verify import (
     threshold_checks,
     time_alternately,
 )
+from . import deciding
 from .checks import recover_unpatched, reference_checks, run_output, source_site
 from .common import (
     DataSource,
@@ -432,6 +433,9 @@ def verify(
     progress: ProgressFn | None = None,
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
     drop_nonfinite: bool = False,
+    accept_error: float | None = None,
+    accept_confidence: float | None = None,
+    set_coverage: float | None = None,
 ) -> VerifyResult:
     """Check a patched model for CI: reference, decisions, record, thresholds, latency.
 
@@ -481,6 +485,12 @@ def verify(
         Leave out the rows where the patched outputs or the reference
         logits hold NaN or Inf (a note says how many); by default they are
         refused.
+    accept_error, accept_confidence, set_coverage : float, optional
+        For a model with decision outputs (docs/decisions.md): the targets of
+        the gates ``accept-error`` and ``set-coverage`` on labelled data
+        (default: the record's) and the level of their intervals. The checks
+        ``decision-record``, ``decision-outputs`` and ``decision-reference``
+        run whenever the model has decision outputs.
 
     Returns
     -------
@@ -498,6 +508,7 @@ def verify(
     spec = data_spec(data)
     run = run_options(batch_size, threads, optimization, provider)
     _check_gate(max_ece, max_nll, min_accuracy, n_bins, max_latency_ratio, latency_runs)
+    targets = deciding.check_targets(accept_error, accept_confidence, set_coverage)
     gate = _Gate(max_ece, max_nll, min_accuracy, n_bins, latency or max_latency_ratio is not None, max_latency_ratio,
                  latency_runs)
     target = _load_target(patched_path, spec, original, as_paths(scores), junit, force, max_model_bytes, run)
@@ -506,6 +517,9 @@ def verify(
     heads = step(target, run, progress, drop_nonfinite)
     ref = heads.ref if target.why_not is None else replace(heads.ref, notes=(target.why_not, *heads.ref.notes))
     checks = [*heads.checks, *_gate_checks(target, heads, ref, gate, run)]
+    checks += deciding.for_verify(target.model, target.records, target.dataset, None if target.cap is None else
+                                  target.cap.labels, ref.logits, heads.keep, targets, accept_confidence, run, progress,
+                                  patched_path)
     result = VerifyResult(
         checks=tuple(checks), n=target.dataset.n, original=ref.where, reference_from=ref.mode, notes=ref.notes
     )

@@ -20,10 +20,14 @@ from ..report import FORMATS
 from .console import err, out, print_json, progress_bar
 from .options import (
     MAX_MODEL_BYTES,
+    AcceptConfidenceOpt,
+    AcceptErrorOpt,
+    AcceptMethodOpt,
     ActivationOpt,
     BinsOpt,
     BootstrapOpt,
     ComputeDtypeOpt,
+    DecisionDataOpt,
     DropLogitsOpt,
     DropNonfiniteOpt,
     FoldOpt,
@@ -41,11 +45,19 @@ from .options import (
     QuietOpt,
     ScoreColumnsOpt,
     SeedOpt,
+    SetCoverageOpt,
+    SetPerClassOpt,
+    SetScoreOpt,
+    VerifyAcceptConfidenceOpt,
+    VerifyAcceptErrorOpt,
+    VerifySetCoverageOpt,
     data_options,
+    decision_options,
 )
 from .render import (
     CAUTION,
     how_patched,
+    render_decisions,
     render_fit,
     render_info,
     render_report,
@@ -157,10 +169,21 @@ def patch(
             "without it a fit of a model with another sha256 is refused.",
         ),
     ] = False,
+    accept_error: AcceptErrorOpt = None,
+    accept_confidence: AcceptConfidenceOpt = 0.95,
+    set_coverage: SetCoverageOpt = None,
+    set_score: SetScoreOpt = "las",
+    set_per_class: SetPerClassOpt = False,
+    accept_method: AcceptMethodOpt = "ltt",
+    decision_data: DecisionDataOpt = None,
     force: ForceOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
 ) -> None:
-    """Rewrite the graph so the model outputs calibrated probabilities (e.g. softmax(logits / T))."""
+    """Rewrite the graph so the model outputs calibrated probabilities (e.g. softmax(logits / T)).
+
+    With --accept-error or --set-coverage, also decision outputs beside them,
+    their thresholds chosen on the labelled set --decision-data.
+    """
     result = api.patch(
         model,
         out_path,
@@ -177,10 +200,15 @@ def patch(
         output_holds=output_holds,
         score_columns=score_columns,
         fitted_on_twin=fitted_on_twin,
+        decisions=decision_options(accept_error, accept_confidence, set_coverage, set_score, set_per_class,
+                                   accept_method),
+        decision_data=decision_data,
     )
     r = result.record
     what = f"T = {r.temperature:.4f}" if r.temperature is not None else f"{r.method} scaling"
     out.print(f"{what}: {how_patched(r)}; calibrated output '{r.output}' -> {result.path}")
+    if result.decisions is not None:
+        render_decisions(result.decisions.lines())
 
 
 VERIFY_EPILOG = (
@@ -234,6 +262,9 @@ def verify(
         Path | None, typer.Option("--junit", help="Also write the checks as JUnit XML to this file.")
     ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
+    accept_error: VerifyAcceptErrorOpt = None,
+    accept_confidence: VerifyAcceptConfidenceOpt = None,
+    set_coverage: VerifySetCoverageOpt = None,
     force: ForceOpt = False,
     as_json: JsonOpt = False,
     quiet: QuietOpt = False,
@@ -271,6 +302,9 @@ def verify(
             progress=progress,
             max_model_bytes=max_model_bytes,
             drop_nonfinite=drop_nonfinite,
+            accept_error=accept_error,
+            accept_confidence=accept_confidence,
+            set_coverage=set_coverage,
             **runtime,
         )
     print_json(result.to_dict()) if as_json else render_verify(result)
@@ -361,6 +395,13 @@ def calibrate(
         typer.Option("--report", help="Also write the report (as 'onnxcal report') into this directory."),
     ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
+    accept_error: AcceptErrorOpt = None,
+    accept_confidence: AcceptConfidenceOpt = 0.95,
+    set_coverage: SetCoverageOpt = None,
+    set_score: SetScoreOpt = "las",
+    set_per_class: SetPerClassOpt = False,
+    accept_method: AcceptMethodOpt = "ltt",
+    decision_data: DecisionDataOpt = None,
     force: ForceOpt = False,
     as_json: JsonOpt = False,
     quiet: QuietOpt = False,
@@ -372,7 +413,10 @@ def calibrate(
     """Capture, fit, patch and verify in one go; print the before/after table.
 
     The patched model is not written when verification fails (exit 1); the
-    report, when asked for, is written either way.
+    report, when asked for, is written either way. With --accept-error or
+    --set-coverage, decision outputs are added beside the probabilities, their
+    thresholds chosen on the held-out rows (the map baked in is then the one
+    fitted on the other rows) or on --decision-data.
     """
     with progress_bar(quiet or as_json) as progress:
         result = api.calibrate(
@@ -393,12 +437,16 @@ def calibrate(
             max_model_bytes=max_model_bytes,
             output_holds=output_holds,
             score_columns=score_columns,
+            decisions=decision_options(accept_error, accept_confidence, set_coverage, set_score, set_per_class,
+                                       accept_method),
+            decision_data=decision_data,
             **runtime,
         )
     if as_json:
         print_json(
             {
                 "fit": result.summary.to_dict(),
+                "decisions": result.decisions.section() if result.decisions else None,
                 "verify": result.verification.to_dict(),
                 "written": result.patch.path if result.patch else None,
                 "report": list(result.report.files) if result.report else None,
@@ -406,6 +454,8 @@ def calibrate(
         )
     else:
         render_fit(result.summary)
+        if result.decisions is not None:
+            render_decisions(result.decisions.lines())
         render_verify(result.verification)
         if result.report is not None:
             render_report(result.report, verdict=False)

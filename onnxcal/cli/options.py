@@ -18,6 +18,7 @@ import typer
 
 from ..capture import CPU, DEFAULT_BATCH, OPTIMIZATION_LEVELS
 from ..data import IMAGE_OPTIONS, DataSpec, Selection, parse_shard
+from ..decisions.plan import DecisionOptions
 from ..errors import OnnxcalError
 
 # --------------------------------------------------------------------------
@@ -85,7 +86,10 @@ MethodOpt = Annotated[
     typer.Option(
         "--method",
         help="temperature (softmax(z/T), or sigmoid(z/T) for one logit), vector "
-        "(softmax(w*z+b), per class) or platt (sigmoid(a*z+b), one logit).",
+        "(softmax(w*z+b), per class), platt (sigmoid(a*z+b), one logit), matrix (softmax(W z+b)), dirichlet "
+        "(softmax(W log p+b)), beta (one logit), isotonic, histogram (binning), ensemble-temperature, ovr-platt "
+        "(one-vs-rest, renormalised), or auto (every applicable method fitted, the simplest within the best "
+        "held-out NLL's bootstrap interval chosen). isotonic and histogram can change the ranking and the argmax.",
     ),
 ]
 MultilabelOpt = Annotated[
@@ -97,7 +101,12 @@ MultilabelOpt = Annotated[
 ]
 L2Opt = Annotated[
     float,
-    typer.Option("--l2", help="Penalty l2*(sum (w-1)^2 + sum b^2) added to the NLL (vector, platt; 0 to 1e6)."),
+    typer.Option(
+        "--l2",
+        help="Penalty weight added to the NLL, 0 to 1e6: vector and platt l2*(sum (w-1)^2 + sum b^2); beta and "
+        "ovr-platt a pull toward the identity; matrix and dirichlet the off-diagonal and intercept penalty "
+        "(0: the default 100). The other methods have none.",
+    ),
 ]
 HoldoutOpt = Annotated[
     float,
@@ -121,6 +130,75 @@ MaxModelBytesOpt = Annotated[
     ),
 ]
 MAX_MODEL_BYTES = "8GiB"
+AcceptErrorOpt = Annotated[
+    float | None,
+    typer.Option(
+        "--accept-error",
+        metavar="EPS",
+        help="Add a boolean output 'accept': a row is accepted when its confidence clears a threshold chosen so "
+        "that the error among accepted rows is at most EPS with probability --accept-confidence "
+        "(docs/decisions.md).",
+    ),
+]
+AcceptConfidenceOpt = Annotated[
+    float,
+    typer.Option("--accept-confidence", metavar="1-DELTA",
+                 help="The probability that the chosen acceptance threshold meets --accept-error."),
+]
+SetCoverageOpt = Annotated[
+    float | None,
+    typer.Option(
+        "--set-coverage",
+        metavar="1-ALPHA",
+        help="Add outputs 'class_set' (N x K booleans) and 'class_set_size': conformal prediction sets that "
+        "hold the true class with probability at least 1-ALPHA (marginal, for data like the validation set).",
+    ),
+]
+SetScoreOpt = Annotated[
+    str,
+    typer.Option("--set-score", help="las (least ambiguous sets) or aps (adaptive prediction sets)."),
+]
+SetPerClassOpt = Annotated[
+    bool, typer.Option("--set-per-class", help="One set threshold per class (per-class coverage).")
+]
+AcceptMethodOpt = Annotated[
+    str,
+    typer.Option("--accept-method",
+                 help="ltt (Learn then Test) or sgr (selection with guaranteed risk): how the threshold is chosen."),
+]
+DecisionDataOpt = Annotated[
+    Path | None,
+    typer.Option(
+        "--decision-data",
+        help="Choose the decision thresholds on this labelled set (same form and options as --data) instead of "
+        "the held-out rows; needed by patch.",
+    ),
+]
+VerifyAcceptErrorOpt = Annotated[
+    float | None,
+    typer.Option("--accept-error", metavar="EPS",
+                 help="Gate the error among accepted rows against EPS (default: the record's target)."),
+]
+VerifyAcceptConfidenceOpt = Annotated[
+    float | None,
+    typer.Option("--accept-confidence", metavar="1-DELTA",
+                 help="Level of the gates' intervals (default: the record's --accept-confidence)."),
+]
+VerifySetCoverageOpt = Annotated[
+    float | None,
+    typer.Option("--set-coverage", metavar="1-ALPHA",
+                 help="Gate the sets' coverage against 1-ALPHA (default: the record's target)."),
+]
+
+
+def decision_options(
+    accept_error: float | None, accept_confidence: float, set_coverage: float | None, set_score: str,
+    set_per_class: bool, accept_method: str,
+) -> DecisionOptions:
+    """The decision options of calibrate and patch, as the api takes them."""
+    return DecisionOptions(accept_error, accept_confidence, set_coverage, set_score, set_per_class, accept_method)
+
+
 DropNonfiniteOpt = Annotated[
     bool,
     typer.Option(

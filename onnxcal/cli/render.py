@@ -10,6 +10,7 @@ from pathlib import Path
 from rich import box
 from rich.table import Table
 
+from ..choose import TABLE_FIELDS, Choice
 from ..fit import FitSummary
 from ..graph import ModelInfo, Record, ScoreSite, TensorSpec
 from ..metrics import METRIC_LABELS
@@ -76,6 +77,7 @@ def _describe_site(site: ScoreSite) -> str:
 
 
 _METRIC_ROWS = tuple(METRIC_LABELS.items())
+_CHOICE_LABELS = {"nll": "NLL", "ece": "ECE", "brier": "Brier", "accuracy": "accuracy"}
 
 
 def _interval(pair: Sequence[float] | None) -> str:
@@ -120,9 +122,40 @@ def render_fit(summary: FitSummary) -> None:
             row += [f"{getattr(summary.fit_part[k], key):.4f}" for k in ("before", "after")]
         table.add_row(*row)
     out.print(table)
+    if summary.choice is not None:
+        render_choice(summary.choice)
     for note in summary.notes:
         out.print(f"note: {note}", soft_wrap=True)
     warn(summary.warnings)
+
+
+def _short(x: float) -> str:
+    text = f"{x:.3f}"
+    return text[1:] if text.startswith("0.") else text
+
+
+def _with_interval(value: float, pair: list[float] | None) -> str:
+    return f"{value:.4f}" if pair is None else f"{value:.4f}\n{_short(pair[0])}-{_short(pair[1])}"
+
+
+def render_choice(choice: Choice) -> None:
+    """The comparison table of ``--method auto`` (each figure over its 95% interval) and the choice."""
+    where = "held-out" if choice.basis == "held-out" else "in-sample"
+    table = Table(title=f"--method auto: every applicable method, {where} figures (below: 95% bootstrap interval)",
+                  title_justify="left", box=box.SIMPLE_HEAD, padding=(0, 1))
+    table.add_column("method", no_wrap=True)
+    table.add_column("params", justify="right", no_wrap=True)
+    for f in TABLE_FIELDS:
+        table.add_column(_CHOICE_LABELS[f], justify="right", no_wrap=True, min_width=9)
+    for c in choice.candidates:
+        marks = ["chosen"] if c.method == choice.chosen else []
+        marks += ["lowest NLL"] if c.method == choice.best else []
+        marks += ["not converged"] if not c.converged else []
+        name = c.method + (f"\n({', '.join(marks)})" if marks else "")
+        table.add_row(name, str(c.n_parameters), *(_with_interval(c.metrics[f],
+                                                                  c.intervals.get(f)) for f in TABLE_FIELDS))
+    out.print(table)
+    out.print(f"chosen: {choice.chosen}: {choice.reason}", soft_wrap=True)
 
 
 _REFERENCE_FROM = {
@@ -130,6 +163,12 @@ _REFERENCE_FROM = {
     "scores": "captured scores",
     "patched-graph": "the patched graph's own logits",
 }
+
+
+def render_decisions(lines: list[str]) -> None:
+    """The decision thresholds chosen, what they do on the rows they come from, and where those are."""
+    for line in lines:
+        out.print(line, soft_wrap=True)
 
 
 def render_verify(result: VerifyResult) -> None:
@@ -142,13 +181,17 @@ def render_verify(result: VerifyResult) -> None:
     for col in ("check", "result", "value", "limit", "what"):
         table.add_column(col)
     for c in result.checks:
-        status = {"pass": "pass", "fail": "FAIL", "skip": "skipped"}[c.status]
+        status = {"pass": "pass", "fail": "FAIL", "skip": "skipped", "undecided": "undecided"}[c.status]
         table.add_row(c.name, status, format_figure(c.value), format_figure(c.limit), c.detail)
     out.print(table)
     for note in result.notes:
         out.print(f"note: {note}", soft_wrap=True)
+    undecided = [c.name for c in result.checks if c.status == "undecided"]
+    for name in undecided:  # not a failure: the data cannot tell either way
+        out.print(f"undecided: {name}: the interval straddles the target; more labelled rows would tell",
+                  soft_wrap=True)
     if result.passed:
-        out.print("verify: all checks passed")
+        out.print("verify: all checks passed" + (f" ({len(undecided)} undecided)" if undecided else ""))
     else:
         for c in result.failed:  # each failure as a full sentence, unwrapped
             out.print(f"failed: {c.name}: {c.detail}", soft_wrap=True)
@@ -162,6 +205,10 @@ def render_report(result: ReportResult, verdict: bool = True) -> None:
               + ", ".join(Path(f).name for f in result.files), soft_wrap=True)
 
 
+_NODES = {"temperature": "Div", "vector": "Mul + Add", "platt": "Mul + Add", "matrix": "MatMul + Add",
+          "dirichlet": "log-softmax + MatMul + Add", "beta": "the beta map (softplus, Mul, Add)"}
+
+
 def how_patched(r: Record) -> str:
     """One line on what the patch did to the graph."""
     if r.folded:
@@ -170,7 +217,7 @@ def how_patched(r: Record) -> str:
         how += "; Softmax appended" if r.rewrite == "append-softmax" else ""
         how += "; Sigmoid appended" if r.rewrite == "append-sigmoid" else ""
         return how
-    nodes = "Div" if r.method == "temperature" else "Mul + Add"
+    nodes = _NODES.get(r.method, f"the {r.method} map (standard operators)")
     how = {
         "insert-before-activation": f"{nodes} inserted before the existing activation",
         "append-softmax": f"{nodes} + Softmax appended",

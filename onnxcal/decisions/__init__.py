@@ -14,6 +14,11 @@ from labelled rows, as pure functions over NumPy arrays:
   ``class_set_size`` as the graph computes them.
 - :mod:`.binomial`: exact (Clopper-Pearson) intervals, bounds and p-values,
   and the pass / fail / undecided ``verdict`` of a gate.
+- :mod:`.plan`: the options of ``calibrate`` and ``patch`` (``DecisionOptions``)
+  and choosing the thresholds a patch bakes in (``choose`` -> ``Decisions``,
+  with the record's ``decisions`` section).
+- :mod:`.gate`: ``verify``'s checks of the decision outputs (against the NumPy
+  references, and the gates on labelled data).
 
 Data hygiene: every choosing function takes the ``rows`` to use, and they
 must be rows the calibration map was not fitted on (the held-out part of

@@ -6,7 +6,7 @@ the solvers of other kinds (:mod:`onnxcal.fit.l1`) can build a summary without i
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -14,6 +14,9 @@ from .. import __version__, resample
 from ..metrics import Metrics
 from ..scaling import Scaling
 from .options import FORMAT, MIN_PER_CLASS, FitOptions, FitResult, _first
+
+if TYPE_CHECKING:
+    from ..choose import Choice
 
 
 def data_warnings(labels: np.ndarray, num_classes: int) -> list[str]:
@@ -79,6 +82,9 @@ class FitSummary:
         Bootstrap percentile intervals (see ``onnxcal.resample``).
     options : FitOptions
     warnings, notes : tuple of str
+    choice : Choice or None
+        With ``--method auto``: every method's held-out figures and why
+        this one was chosen (:mod:`onnxcal.choose`).
     """
 
     result: FitResult
@@ -93,6 +99,7 @@ class FitSummary:
     options: FitOptions = FitOptions()
     warnings: tuple[str, ...] = ()
     notes: tuple[str, ...] = ()
+    choice: Choice | None = None
 
     @property
     def scaling(self) -> Scaling:
@@ -127,6 +134,7 @@ class FitSummary:
             "warnings": list(self.warnings),
             "notes": list(self.notes),
             "capture": dict(self.capture),
+            "choice": None if self.choice is None else self.choice.to_dict(),
         }
 
 

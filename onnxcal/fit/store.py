@@ -9,6 +9,7 @@ from typing import Any
 
 from .._files import atomic_write_bytes
 from .._paths import require_file
+from ..choose import choice_from_dict
 from ..errors import OnnxcalError, first_line
 from ..metrics import Metrics
 from ..scaling import Scaling, check_scaling
@@ -66,6 +67,7 @@ def summary_from_dict(data: dict[str, Any]) -> FitSummary:
         options=FitOptions(**data["options"]),
         warnings=tuple(data.get("warnings", ())),
         notes=tuple(data.get("notes", ())),
+        choice=None if data.get("choice") is None else choice_from_dict(data["choice"]),
     )
 
 

@@ -7,18 +7,22 @@
 from __future__ import annotations
 
 from typing import Any
+from warnings import warn
 
 import numpy as np
 
 from .. import resample
-from ..errors import OnnxcalError
+from ..errors import OnnxcalError, OnnxcalWarning
 from ..expansion import Expansion
+from ..maps import LOOKUP_METHODS
 from ..metrics import Metrics, evaluate
 from ..passes import fit_and_score
-from ..scaling import METHODS_FOR, MULTILABEL_MODES, SIGMOID_L1, Scaling, kind_of
+from ..scaling import MAP_METHODS, METHODS_FOR, MULTILABEL_MODES, SIGMOID_L1, Scaling, kind_of
 from ..sweep import one_blas_thread
 from .affine import _fit_affine
+from .auto import fit_all
 from .l1 import summarize_l1
+from .maps import fit_map, slow_fit_warning
 from .options import (
     DEFAULT_OPTIONS,
     T_MAX,
@@ -31,6 +35,9 @@ from .temperature import _temperature_result, fit_sigmoid_temperature, fit_tempe
 
 # --------------------------------------------------------------------------
 # Dispatch and warnings on the data
+
+
+AUTO = "auto"  # --method auto: every applicable method, one chosen (fit.auto, onnxcal.choose)
 
 
 def resolve_kind(logits: np.ndarray, labels: np.ndarray, options: FitOptions) -> str:
@@ -53,7 +60,7 @@ def resolve_kind(logits: np.ndarray, labels: np.ndarray, options: FitOptions) ->
                 "drop --multilabel, or capture with multi-label labels",
             )
     allowed = METHODS_FOR[kind]
-    if options.method not in allowed:
+    if options.method not in allowed and options.method != AUTO:
         what = {
             "multiclass": "a multiclass softmax", "binary": "a single-logit binary", "multilabel": "a multi-label",
         }[kind]
@@ -81,11 +88,27 @@ def fit_scaling(
     kind = resolve_kind(logits, labels, options)
     if options.method in ("vector", "platt"):
         return _fit_affine(logits, labels, options.method, options.l2, rows, weights, start, kind)
+    if options.method in MAP_METHODS:
+        return _fit_map(logits, labels, options, kind, rows, weights, start)
     t0 = None if start is None else start.arrays()["temperature"]
     if kind == "multiclass":
         return fit_temperature(logits, labels, rows=rows, weights=weights, start=None if t0 is None else float(t0))
     per_label = kind == "multilabel" and options.multilabel == "per-label"
     return fit_sigmoid_temperature(logits, labels, per_label=per_label, rows=rows, weights=weights, start=t0)
+
+
+def _fit_map(
+    logits: np.ndarray, labels: np.ndarray, options: FitOptions, kind: str, rows: np.ndarray | None,
+    weights: np.ndarray | None, start: Scaling | None,
+) -> FitResult:
+    """A map of onnxcal.maps: its own solver (ensemble temperature scaling: T from fit_temperature)."""
+    extra = {}
+    if options.method == "ensemble-temperature":
+        extra["temperature"] = fit_temperature(logits, labels, rows=rows, weights=weights).temperature
+    scaling, passes, converged, notes = fit_map(
+        logits, labels, options.method, kind, options.l2, rows=rows, weights=weights, start=start, **extra
+    )
+    return FitResult(scaling, passes, converged, on_bound=False, warnings=notes)
 
 
 # --------------------------------------------------------------------------
@@ -161,6 +184,16 @@ def summarize(
     if capture_meta.get("fit_as") == SIGMOID_L1:  # L1(sigmoid(z / T)): a fit of its own
         return summarize_l1(logits, labels, capture_meta, options, threads=threads, groups=groups)
     with one_blas_thread():
+        if options.method == AUTO:
+            kind = resolve_kind(logits, labels, options)
+
+            def one(  # every candidate on the same split (whole samples with groups)
+                lg: np.ndarray, lb: np.ndarray, meta: dict[str, Any], opts: FitOptions, th: int | None
+            ) -> FitSummary:
+                return _summarize(lg, lb, meta, opts, th, groups)
+
+            chosen: FitSummary = fit_all(logits, labels, capture_meta, options, kind, one, threads)[0]
+            return chosen
         return _summarize(logits, labels, capture_meta, options, threads, groups)
 
 
@@ -171,6 +204,14 @@ def _summarize(
     kind = resolve_kind(logits, labels, options)
     n = len(logits)
     notes, warnings = [], data_warnings(labels, logits.shape[1])
+    if options.method in LOOKUP_METHODS:
+        notes.append(
+            f"{options.method} calibration can change the ranking of the classes and the argmax (ties, flat steps): "
+            "verify checks its decisions against its reference, not against the original model"
+        )
+    if slow := slow_fit_warning(options.method, n, logits.shape[1]):
+        warn(slow, OnnxcalWarning, stacklevel=3)  # before the fit, which may take minutes
+        warnings.append(slow)
     if options.holdout > 0:
         fit_rows, eval_rows = resample.split_holdout(labels, options.holdout, options.seed, groups=groups)
     else:

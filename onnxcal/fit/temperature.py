@@ -37,11 +37,12 @@ _RowsPass = Callable[[np.ndarray, bool, np.ndarray | None, np.ndarray | None], _
 def _softmax_terms(z: np.ndarray, y: np.ndarray, beta: float) -> dict[str, np.ndarray]:
     """Per-sample NLL of softmax(beta z) and its first two derivatives in beta.
 
-    ``z`` (float64, a private copy) is shifted in place by its row maximum.
+    ``z`` is left as it is: a float64 chunk of the caller's logits is a view
+    of them (``metrics.iter_chunks``), so the shift by the row maximum makes
+    a new array.
     """
     r = np.arange(len(y))
-    zmax = z.max(axis=1)
-    z -= zmax[:, None]
+    z = z - z.max(axis=1, keepdims=True)
     zy = z[r, y]
     e = np.multiply(z, beta)
     np.exp(e, out=e)

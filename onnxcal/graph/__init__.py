@@ -44,6 +44,9 @@ made by ``scale_fn`` from the fitted ``Scaling``: ``divide_by_temperature``
 Re-patching a patched model first undoes the previous patch (``unpatch``),
 so patches never stack.
 
+``decide.add_decisions`` adds decision outputs (``accept``, ``class_set``,
+``class_set_size``) beside a patched model's calibrated probabilities.
+
 The calibration record is JSON in ``metadata_props`` under ``RECORD_KEY``.
 """
 
@@ -63,6 +66,7 @@ from .io import (
     save_model,
     saved_sha256,
 )
+from .mapped import identity_unavailable, recorded_values
 from .nested import parse_columns
 from .record import (
     Record,
@@ -112,7 +116,9 @@ __all__ = [
     "ScoreSite", "TensorSpec", "at_identity", "check_model", "check_record", "check_temperature", "default_opset",
     "describe", "describe_site", "divide_by_temperature", "expose", "expose_scores", "external_data_files",
     "external_data_path", "find_recorded", "find_scores", "fit_kind", "folded_values", "for_onnxruntime",
+    "identity_unavailable",
     "load_model", "model_files", "model_sha256", "multiply_add", "np_dtype", "opset_version", "parameter_values",
-    "parse_columns", "patch", "post", "read_as", "read_record", "read_records", "save_model", "saved_sha256",
+    "parse_columns", "patch", "post", "read_as", "read_record", "read_records", "recorded_values", "save_model",
+    "saved_sha256",
     "scale_fn", "temperature_dtype", "temperature_value", "tensor_array", "tensor_spec", "unique_name", "unpatch",
 ]

@@ -17,6 +17,7 @@ from onnx import helper, numpy_helper
 
 from .external import tensor_array
 from .fold import _constants
+from .mapped import map_identity
 from .record import Record
 from .site import Branch, ScoreSite
 from .surgery import _Surgery, add_default_opset, build_logits
@@ -133,6 +134,10 @@ def at_identity(
             for name in record.changes.get("scaled", []):
                 if name in source and name in target:
                     target[name].CopyFrom(source[name])
+            continue
+        if not record.scaling.is_affine:
+            if not map_identity(out, record):
+                return None
             continue
         for role, name in (record.initializers or {"temperature": record.temperature_initializer}).items():
             init = inits.get(name)

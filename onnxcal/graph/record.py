@@ -89,6 +89,10 @@ class Record:
     score_columns : str
         ``"START:STOP"`` when only these positions of a Concat output were
         calibrated (``--score-columns``); "" otherwise.
+    decisions : dict
+        The decision outputs beside ``output`` (``graph.decide``), empty when
+        none: the thresholds, how and on which rows they were chosen, the
+        initializers holding them.
     onnxcal_version : str
     format : int
     """
@@ -116,6 +120,7 @@ class Record:
     post: list[Any] = field(default_factory=list)
     fitted_on_sha256: str = ""
     score_columns: str = ""
+    decisions: dict = field(default_factory=dict)
     onnxcal_version: str = __version__
     format: int = RECORD_FORMAT
 
@@ -134,7 +139,7 @@ _RECORD_TYPES = {
     "compute_dtype": (str, type(None)),
     "folded": (bool,),
     "format": (int,),
-    **{k: (dict,) for k in ("fit", "parameters", "initializers", "changes")},
+    **{k: (dict,) for k in ("fit", "parameters", "initializers", "changes", "decisions")},
     "post": (list,),
 }
 _CHANGE_LISTS = ("nodes", "initializers", "outputs", "value_info", "scaled", "inputs")

@@ -47,6 +47,7 @@ from .surgery import (
     _Surgery,
     add_default_opset,
     build_logits,
+    check_map_site,
     scale_fn,
 )
 from .tensors import (
@@ -375,6 +376,12 @@ def _check_options(
             "--compute-dtype sets the dtype of the inserted Div, and with --fold there is none",
             "give one of --fold and --compute-dtype",
         )
+    if fold and not scaling.is_affine:
+        raise OnnxcalError(
+            f"--fold: {scaling.method} calibration is not a per-class w * z + b, which is what onnxcal folds "
+            "into a linear layer",
+            "leave out --fold (the map is added as nodes in front of the activation)",
+        )
     if fold and (site.branches or site.columns):
         where = "inside subgraphs" if site.branches else "in one part of a Concat"
         raise OnnxcalError(f"--fold: the logits of output '{site.output}' are {where}; folding works on one "
@@ -492,6 +499,7 @@ def patch(
     compute = _check_options(site, compute_dtype, fold, scaling)
     s = _Surgery(out.graph, out.ir_version)
     opset = add_default_opset(s, out)
+    check_map_site(scaling, site, opset)
     if rounded := _roundings(previous):
         s.changes["rounded"] = rounded
     if fold:

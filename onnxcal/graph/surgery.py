@@ -21,6 +21,7 @@ from onnx import helper, numpy_helper
 
 from ..errors import OnnxcalError
 from ..scaling import Scaling
+from .mapped import build_options, is_parameter
 from .tensors import _ELEM, _all_names, _scalar, np_dtype, opset_version, unique_name
 
 if TYPE_CHECKING:
@@ -155,8 +156,86 @@ def multiply_add(surgery: _Surgery, x: str, dtype: str, *, w, b, site: ScoreSite
     return surgery.node("Add", [scaled, b_name], f"{x}_calibrated")
 
 
+_BUILD_DTYPES = ("float16", "float32", "float64")
+
+
+def map_logits(surgery: _Surgery, x: str, dtype: str, *, scaling: Scaling, site: ScoreSite) -> str:
+    """A map of :mod:`onnxcal.maps` as calibrated logits for the site's activation.
+
+    The map's own subgraph (standard operators, opset >= 13) is added:
+    matrix, Dirichlet and beta stop at their logits; the others end in
+    probabilities p, turned into log max(p, tiny) (softmax of it is p, as
+    p sums to 1) or, for one logit, log p - log(1 - p) (sigmoid of it is p),
+    so every rewrite feeds the model's own activation, drop-in. The
+    reference (``Scaling.apply``) makes the same logits in float64.
+    """
+    from ..maps import module
+
+    if dtype not in _BUILD_DTYPES:
+        raise OnnxcalError(
+            f"{scaling.method} calibration cannot run in {dtype}",
+            f"patch with --compute-dtype float32 (the map runs in one of {', '.join(_BUILD_DTYPES)})",
+        )
+    one_dim = site.scores_rank == 1
+    if one_dim:  # one score per row: the map reads N x 1
+        axes = surgery.constant("onnxcal_axes_last", numpy_helper.from_array(np.array([-1], dtype=np.int64), ""))
+        x = surgery.node("Unsqueeze", [x, axes], f"{x}_column")
+    extra = build_options(scaling.method)
+    num_classes = map_width(site)
+    build = module(scaling.method).build
+    sub = build(x, dtype, num_classes, scaling.parameters, taken=surgery.taken, **extra)
+    alone = build("x", dtype, num_classes, scaling.parameters, **extra)  # the roles: names in a graph of its own
+    surgery.taken.update(sub.names)
+    for tensor, role in zip(sub.initializers, alone.initializers, strict=True):
+        surgery.root.graph.initializer.append(tensor)
+        surgery.changes["initializers"].append(tensor.name)
+        if is_parameter(tensor):
+            surgery.parameters.setdefault(role.name, tensor.name)
+    for node in sub.nodes:
+        surgery.nodes.append(node)
+        surgery.changes["nodes"].append(node.name)
+    out = sub.output
+    if not extra:
+        out = _probabilities_as_logits(surgery, out, dtype, num_classes)
+    if one_dim:
+        out = surgery.node("Squeeze", [out, axes], f"{x}_calibrated")
+    return out
+
+
+def map_width(site: ScoreSite) -> int:
+    """The width of the logits a map reads at ``site`` (one score per row: 1)."""
+    return 1 if site.scores_rank == 1 else int(site.num_classes or 1)
+
+
+def _probabilities_as_logits(surgery: _Surgery, p: str, dtype: str, num_classes: int) -> str:
+    if num_classes > 1:
+        return _log_clamped(surgery, p, dtype)
+    one = surgery.constant("onnxcal_one", _scalar("", 1.0, dtype))
+    rest = surgery.node("Sub", [one, p], f"{p}_complement")
+    return surgery.node("Sub", [_log_clamped(surgery, p, dtype), _log_clamped(surgery, rest, dtype)], f"{p}_logit")
+
+
+def check_map_site(scaling: Scaling, site: ScoreSite, opset: int) -> None:
+    """Refuse a map of :mod:`onnxcal.maps` where its subgraph cannot go."""
+    if scaling.is_affine:
+        return
+    if opset < 13:
+        raise OnnxcalError(
+            f"{scaling.method} calibration needs default-domain opset 13 or later, the model imports opset {opset}",
+            "re-export the model at opset 13 or later, or use --method temperature",
+        )
+    if site.scores_rank > 1 and site.scores_axis != site.scores_rank - 1:
+        raise OnnxcalError(
+            f"{scaling.method} calibration needs the class axis last; output '{site.output}' has its classes on "
+            f"axis {site.scores_axis} of {site.scores_rank}",
+            "use --method temperature or vector, which work on any class axis",
+        )
+
+
 def scale_fn(scaling: Scaling, site: ScoreSite) -> ScaleFn:
     """The ``ScaleFn`` that bakes ``scaling`` in front of ``site``'s activation."""
+    if not scaling.is_affine:
+        return partial(map_logits, scaling=scaling, site=site)
     if scaling.method == "temperature":
         return partial(divide_by_temperature, temperature=scaling.parameters["temperature"], site=site)
     return partial(multiply_add, w=scaling.parameters["w"], b=scaling.parameters["b"], site=site)

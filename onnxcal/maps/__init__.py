@@ -34,6 +34,8 @@ from __future__ import annotations
 
 from types import ModuleType
 
+import numpy as np
+
 from ..errors import OnnxcalError
 from . import beta, dirichlet, ensemble, histogram, isotonic, matrix, ovr_platt
 from ._base import MapFit, Subgraph, standalone_model
@@ -51,6 +53,45 @@ KEEPS_DECISIONS = {name: name == "ensemble-temperature" for name in MODULES}
 LOOKUP_METHODS = ("isotonic", "histogram")
 
 
+_FORMULA = {
+    "matrix": "softmax(W z + b)",
+    "dirichlet": "softmax(W log softmax(z) + b)",
+    "beta": "sigmoid(a ln p - b ln(1 - p) + c)",
+    "isotonic": "isotonic lookup of each class's probability, renormalised",
+    "histogram": "histogram binning of each class's probability, renormalised",
+    "ensemble-temperature": "w1 softmax(z / T) + w2 softmax(z) + w3 / K",
+    "ovr-platt": "one-vs-rest sigmoid(a_k z_k + b_k), renormalised",
+}
+
+
+def describe(method: str, params: dict) -> str:
+    """One line naming a fitted map and its parameters (CLI, report).
+
+    Examples
+    --------
+    >>> describe("beta", {"a": 1.5, "b": 0.5, "c": 0.25})
+    'beta calibration, sigmoid(a ln p - b ln(1 - p) + c): a = 1.5000, b = 0.5000, c = 0.2500'
+    """
+    head = f"{method} calibration, {_FORMULA[method]}"
+    if method in ("matrix", "dirichlet"):
+        w = np.asarray(params["W"], dtype=np.float64)
+        off = w[~np.eye(len(w), dtype=bool)]
+        return (f"{head}: {len(w)} x {len(w)} W, diagonal from {np.diag(w).min():.4f} to {np.diag(w).max():.4f}, "
+                f"largest off-diagonal |W_jk| {np.abs(off).max() if off.size else 0.0:.4f}")
+    if method == "beta":
+        return f"{head}: a = {params['a']:.4f}, b = {params['b']:.4f}, c = {params['c']:.4f}"
+    if method == "ensemble-temperature":
+        w1, w2, w3 = params["weights"]
+        return f"{head}: T = {params['temperature']:.4f}, w = ({w1:.4f}, {w2:.4f}, {w3:.4f})"
+    if method == "ovr-platt":
+        a = np.asarray(params["a"], dtype=np.float64)
+        return f"{head}: {a.size} classes, a from {a.min():.4f} to {a.max():.4f}"
+    table = params["x"] if method == "isotonic" else params["values"]
+    sizes = [len(t) for t in table]
+    what = "knots" if method == "isotonic" else "bins"
+    return f"{head}: {len(sizes)} table{'s' if len(sizes) > 1 else ''} of {min(sizes)} to {max(sizes)} {what}"
+
+
 def module(method: str) -> ModuleType:
     """The module of a method name.
 
@@ -65,5 +106,7 @@ def module(method: str) -> ModuleType:
         raise OnnxcalError(f"unknown calibration method {method!r}", f"use one of: {', '.join(METHODS)}") from None
 
 
-__all__ = ["METHODS", "METHODS_FOR", "MODULES", "KEEPS_DECISIONS", "LOOKUP_METHODS", "MapFit", "Subgraph", "module",
-           "standalone_model"]
+__all__ = [
+    "METHODS", "METHODS_FOR", "MODULES", "KEEPS_DECISIONS", "LOOKUP_METHODS", "MapFit", "Subgraph", "describe",
+    "module", "standalone_model",
+]

@@ -24,6 +24,7 @@ from typing import Any
 
 import numpy as np
 import onnx
+import scipy.special
 from onnx import helper, numpy_helper
 
 from ..errors import OnnxcalError
@@ -80,6 +81,29 @@ class MapFit:
             "passes": self.passes,
             "notes": list(self.notes),
         }
+
+
+# The bounds of onnxcal.fit's temperature and Platt solvers (a test checks they
+# agree): onnxcal.maps imports nothing of onnxcal but errors, so that the
+# scalings, the fit and the graph can all import it.
+T_MIN = 0.01
+T_MAX = 100.0
+B_MAX = 100.0
+
+
+def softmax(z: np.ndarray, axis: int = -1) -> np.ndarray:
+    """Softmax along ``axis`` in float64 (scipy.special.softmax, which subtracts the maximum)."""
+    return np.asarray(scipy.special.softmax(np.asarray(z, dtype=np.float64), axis=axis))
+
+
+def log_softmax(z: np.ndarray, axis: int = -1) -> np.ndarray:
+    """Log-softmax along ``axis`` in float64 (scipy.special.log_softmax)."""
+    return np.asarray(scipy.special.log_softmax(np.asarray(z, dtype=np.float64), axis=axis))
+
+
+def sigmoid(z: np.ndarray) -> np.ndarray:
+    """The logistic function in float64, without overflow (scipy.special.expit)."""
+    return np.asarray(scipy.special.expit(np.asarray(z, dtype=np.float64)))
 
 
 # --------------------------------------------------------------------------

@@ -32,7 +32,6 @@ import numpy as np
 import scipy.optimize
 
 from ..errors import OnnxcalError
-from ..metrics import log_softmax, softmax
 from ._base import (
     CHUNK_ELEMENTS,
     GraphBuilder,
@@ -41,8 +40,10 @@ from ._base import (
     check_kind,
     chunks,
     field_array,
+    log_softmax,
     plain,
     require_fields,
+    softmax,
     total_weight,
 )
 

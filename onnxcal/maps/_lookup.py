@@ -35,8 +35,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import OnnxcalError
-from ..metrics import sigmoid, softmax
-from ._base import GraphBuilder, Subgraph, check_kind, chunks, field_array, plain, require_fields
+from ._base import GraphBuilder, Subgraph, check_kind, chunks, field_array, plain, require_fields, sigmoid, softmax
 
 KINDS = ("multiclass", "binary")
 PAD = 2.0  # knot/edge padding: above every probability

@@ -35,7 +35,6 @@ import numpy as np
 import scipy.optimize
 
 from ..errors import OnnxcalError
-from ..metrics import sigmoid
 from ._base import (
     GraphBuilder,
     MapFit,
@@ -45,6 +44,7 @@ from ._base import (
     chunks,
     field_array,
     require_fields,
+    sigmoid,
     total_weight,
 )
 

@@ -8,7 +8,7 @@ and the uniform distribution, the weights on the simplex
 temperature scaling and adds expressiveness at the cost of two parameters.
 
 **Fitting.** As in the paper, in two stages: T is the temperature-scaling
-fit (onnxcal's, by NLL: :func:`onnxcal.fit.fit_temperature`), then the
+fit (by NLL: onnxcal.fit passes its own fit_temperature's T; alone, a bounded scalar search), then the
 weights are fitted with T fixed. The paper's experiments fit the weights
 (and T) by the mean squared error of the probabilities, with the NLL as an
 alternative (from memory); onnxcal fits the weights by the NLL, as every
@@ -39,9 +39,20 @@ import numpy as np
 import scipy.optimize
 
 from ..errors import OnnxcalError
-from ..fit import fit_temperature
-from ..metrics import softmax
-from ._base import GraphBuilder, MapFit, Subgraph, check_kind, chunks, field_array, plain, require_fields
+from ._base import (
+    T_MAX,
+    T_MIN,
+    GraphBuilder,
+    MapFit,
+    Subgraph,
+    check_kind,
+    chunks,
+    field_array,
+    log_softmax,
+    plain,
+    require_fields,
+    softmax,
+)
 
 METHOD = "ensemble-temperature"
 KINDS = ("multiclass",)
@@ -129,6 +140,37 @@ def simplex_weights(a: np.ndarray, w: np.ndarray | None) -> tuple[np.ndarray, bo
     return v / v.sum(), bool(best.success)
 
 
+def _nll(scores: np.ndarray, labels: np.ndarray, rows: np.ndarray | None, weights: np.ndarray | None,
+         temperature: float) -> float:
+    total = 0.0
+    start = 0
+    for z, y, _ in chunks(scores, labels, rows):
+        terms = -log_softmax(z / temperature)[np.arange(len(y)), y]
+        w = None if weights is None else weights[start : start + len(y)]
+        total += float(terms.sum() if w is None else w @ terms)
+        start += len(y)
+    return total
+
+
+def fit_temperature(
+    scores: np.ndarray, labels: np.ndarray, rows: np.ndarray | None = None, weights: np.ndarray | None = None
+) -> tuple[float, float, bool]:
+    """The T of temperature scaling, by a bounded scalar minimisation of the NLL over log T.
+
+    The NLL is convex in 1/T (Guo et al. 2017, sec. 4.2; onnxcal.fit's
+    Newton solver relies on the same fact), so Brent's bounded method on
+    log T in [log T_MIN, log T_MAX] finds the one minimum. ``onnxcal.fit``
+    passes its own solver's T instead (``temperature=``); this one keeps
+    the module usable on its own. Returns (T, passes, on a bound).
+    """
+    res = scipy.optimize.minimize_scalar(
+        lambda u: _nll(scores, labels, rows, weights, float(np.exp(u))),
+        bounds=(np.log(T_MIN), np.log(T_MAX)), method="bounded", options={"xatol": 1e-9},
+    )
+    t = float(np.exp(res.x))
+    return t, float(res.nfev), bool(t <= T_MIN * 1.0001 or t >= T_MAX * 0.9999)
+
+
 def fit(
     scores: np.ndarray,
     labels: np.ndarray,
@@ -161,12 +203,9 @@ def fit(
     notes: list[str] = []
     passes = 0.0
     if temperature is None:
-        # Explicit rows make fit_temperature gather (copy) every chunk: given
-        # float64 scores and no rows it shifts the caller's array in place.
-        every = np.arange(len(scores)) if rows is None else rows
-        ts = fit_temperature(scores, labels, rows=every, weights=weights)
-        temperature, passes = float(ts.scaling.arrays()["temperature"]), ts.passes
-        notes.extend(ts.warnings)
+        temperature, passes, at_bound = fit_temperature(scores, labels, rows, weights)
+        if at_bound:
+            notes.append(f"T = {temperature:.3g} is on its bound [{T_MIN:g}, {T_MAX:g}]")
     a, w = components(scores, labels, temperature, rows, weights)
     v, converged = simplex_weights(a, w)
     if v[0] + v[1] <= 1e-12:

@@ -50,10 +50,22 @@ import numpy as np
 import scipy.optimize
 
 from ..errors import OnnxcalError
-from ..fit import B_MAX, T_MAX, T_MIN
-from ..metrics import sigmoid
 from . import _lookup
-from ._base import GraphBuilder, MapFit, Subgraph, check_kind, chunks, field_array, plain, require_fields, total_weight
+from ._base import (
+    B_MAX,
+    T_MAX,
+    T_MIN,
+    GraphBuilder,
+    MapFit,
+    Subgraph,
+    check_kind,
+    chunks,
+    field_array,
+    plain,
+    require_fields,
+    sigmoid,
+    total_weight,
+)
 
 METHOD = "ovr-platt"
 KINDS = ("multiclass", "binary")

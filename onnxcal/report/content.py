@@ -7,14 +7,14 @@ the cautions every report carries.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from .. import __version__
+from .. import __version__, maps
 from ..capture import Capture
 from ..fit import FitSummary, data_warnings
 from ..l1_sigmoid import identity
@@ -22,6 +22,7 @@ from ..metrics import DEFAULT_BINS, METRIC_FIELDS, Metrics, evaluate, reliabilit
 from ..resample import split_holdout
 from ..scaling import SIGMOID_L1, Scaling
 from ..verify import VerifyResult
+from . import decisions as decision_figures
 
 FORMAT = 1
 
@@ -71,6 +72,8 @@ class Evaluation:
 
 def describe_scaling(scaling: Scaling, intervals: dict[str, Any] | None = None) -> str:
     """One line naming the method and its parameters, with the T interval if any."""
+    if not scaling.is_affine:
+        return maps.describe(scaling.method, scaling.parameters)
     iv = (intervals or {}).get("parameters", {})
     if scaling.temperature is not None:
         t = iv.get("temperature")
@@ -252,6 +255,7 @@ def build(
     n_bins: int | None = None,
     calibrated: dict[str, Any] | None = None,
     verification: VerifyResult | None = None,
+    decisions: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
     """Every number of the report, as the JSON-ready dictionary report.json holds.
 
@@ -271,6 +275,9 @@ def build(
         ``name``, ``path``, ``sha256`` of the patched model.
     verification : VerifyResult, optional
         Shown when given (``calibrate --report``).
+    decisions : dict, optional
+        The record's ``decisions`` section: the risk-coverage curve and the
+        set sizes on the rows the figures are on (``report.decisions``).
     """
     bins = n_bins or (summary.options.n_bins if summary is not None else DEFAULT_BINS)
     k = cap.logits.shape[1]
@@ -290,7 +297,7 @@ def build(
             "on, so this report shows no intervals for the metrics"
         )
     meta = cap.meta
-    content = {
+    content: dict[str, Any] = {
         "format": FORMAT,
         "onnxcal_version": __version__,
         "created": datetime.now(UTC).replace(microsecond=0).isoformat(),
@@ -322,6 +329,7 @@ def build(
             "interval_level": (intervals or {}).get("level"),
             "given": summary is None,
             "figures_use": dict(ev.scaling.parameters),
+            "choice": summary.choice.to_dict() if summary is not None and summary.choice is not None else None,
         },
         "metrics": {
             "basis": ev.basis,
@@ -342,5 +350,19 @@ def build(
         "verification": verification.to_dict() if verification is not None else None,
         "cautions": list(CAUTIONS),
     }
+    if decisions and decisions.get("rows", {}).get("source") == "holdout" and ev.basis == "held-out":
+        ev = replace(ev, description=ev.description.replace(
+            f"the parameters baked into the model are refitted on all {len(cap.logits)}",
+            "these are the parameters baked into the model (not refitted: the decision thresholds come from "
+            "the held-out samples)"))
+        content["metrics"]["description"] = ev.description
+    content["decisions"] = _decision_figures(cap, ev, decisions)
     content["verdict"] = _verdict(content)
     return content
+
+
+def _decision_figures(cap: Capture, ev: Evaluation, decisions: dict[str, Any] | None) -> dict[str, Any] | None:
+    """report.json's ``decisions`` (None without decision outputs), on the rows the figures are on."""
+    rows = ev.rows if ev.rows is not None else np.arange(len(cap.logits))
+    return decision_figures.section(cap.logits, cap.labels, rows, ev.scaling, ev.scaling.activation,
+                                    decisions or {}, ev.description)

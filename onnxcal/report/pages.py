@@ -11,12 +11,13 @@ from typing import Any
 from ..metrics import METRIC_FIELDS, METRIC_LABELS
 from ..scaling import Scaling
 from ..verify import format_figure
+from . import decisions as decision_figures
 from .plots import PLOT_PIXELS, PLOTS, Content, draw, used_parameters
 from .tables import MARK, bin_table, class_error_table, interval_footnote, outside_interval
 
 FORMATS = ("html", "md", "json", "png")
 FILES: dict[str, tuple[str, ...]] = {"html": ("report.html",), "md": ("summary.md",), "json": ("report.json",)}
-FILES["png"] = tuple(f"{p}.png" for p in PLOTS)
+FILES["png"] = (*(f"{p}.png" for p in PLOTS), "decisions.png")  # the last only with decision outputs
 
 
 # --------------------------------------------------------------------------
@@ -106,6 +107,14 @@ def metric_rows(content: Content) -> tuple[list[str], list[list[str]]]:
     return head, rows
 
 
+def _table_size(value: list[Any]) -> str:
+    """A nested list of numbers in words: ``10 x 10`` or ``10 tables of 4 to 12 values``."""
+    sizes = [len(v) for v in value]
+    if len(set(sizes)) == 1:
+        return f"{len(value)} x {sizes[0]} table"
+    return f"{len(value)} tables of {min(sizes)} to {max(sizes)} values"
+
+
 def _parameter_table(content: Content) -> tuple[list[str], list[list[str]]]:
     """One row per parameter value: name, value baked in, 95% interval (when known), and the
     fit part's own value when the figures use it (held-out figures)."""
@@ -118,6 +127,9 @@ def _parameter_table(content: Content) -> tuple[list[str], list[list[str]]]:
         head.append("fitted on the fit part alone (the figures and plots use it)")
     rows = []
     for key, value in c["parameters"].items():
+        if isinstance(value, list) and value and isinstance(value[0], list):  # W, a lookup's tables
+            rows.append([key, _table_size(value), "-"] + (["-"] if fit_part is not None else []))
+            continue
         label = {"temperature": "T", "w": "w (scale)", "b": "b (bias)"}.get(key, key)
         iv = interval.get(key)
         own: Any = fit_part.get(key) if fit_part is not None else None  # a number or a list, like value
@@ -178,6 +190,35 @@ def _verification_html(v: dict[str, Any]) -> str:
     return head + _table(["check", "result", "value", "limit", "what"], rows, numeric_from=9)
 
 
+def choice_rows(choice: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
+    """The comparison table of ``--method auto``: head and rows (figure and 95% interval per metric)."""
+    head = ["method", "parameters", "NLL", "ECE", "Brier score", "accuracy", ""]
+    rows = []
+    for cand in choice["candidates"]:
+        marks = (("chosen", cand["method"] == choice["chosen"]), ("lowest NLL", cand["method"] == choice["best"]),
+                 ("did not converge", not cand["converged"]))
+        figures = [
+            f"{_num(cand['metrics'][f])} ({_interval(cand['intervals'][f])})" if cand["intervals"].get(f)
+            else _num(cand["metrics"][f])
+            for f in ("nll", "ece", "brier", "accuracy")
+        ]
+        rows.append([cand["method"], str(cand["n_parameters"]), *figures, ", ".join(w for w, on in marks if on)])
+    return head, rows
+
+
+def _choice_html(choice: dict[str, Any] | None) -> list[str]:
+    if choice is None:
+        return []
+    head, rows = choice_rows(choice)
+    where = "held-out" if choice["basis"] == "held-out" else "in-sample"
+    return [
+        '<h3 id="choice">How the method was chosen (--method auto)</h3>',
+        f"<p>Every applicable method was fitted on the fit part and scored on the {where} part "
+        f"(figures with their 95% bootstrap intervals). Rule: {_e(choice['rule'])}. {_e(choice['reason'])}.</p>",
+        _table(head, rows, numeric_from=1),
+    ]
+
+
 def render_html(content: dict[str, Any], pngs: dict[str, bytes]) -> str:
     """The self-contained report.html: inline CSS, plots as base64 PNG, no external links."""
     d, c, m = content["data"], content["calibration"], content["metrics"]
@@ -208,6 +249,7 @@ def render_html(content: dict[str, Any], pngs: dict[str, bytes]) -> str:
         + (" (given by hand, not fitted: no interval)." if c["given"] else ".")
         + "</p>",
         _table(*_parameter_table(content)),
+        *_choice_html(c.get("choice")),
     ]
     if c["figures_use"] != c["parameters"]:
         t = Scaling(c["method"], c["figures_use"]).temperature
@@ -232,6 +274,8 @@ def render_html(content: dict[str, Any], pngs: dict[str, bytes]) -> str:
             f'height="{PLOT_PIXELS[1]}" alt="{_e(_CAPTIONS[name])}">'
             f"<figcaption>{_e(_CAPTIONS[name])}</figcaption>{_figure_tables(content, name)}</figure>"
         )
+    if content.get("decisions"):
+        parts.append(decision_figures.html(content["decisions"], pngs["decisions"], PLOT_PIXELS))
     if content["verification"] is not None:
         parts += ['<h2 id="verification">Verification</h2>', _verification_html(content["verification"])]
     parts.append('<h2 id="warnings">Warnings</h2>')
@@ -276,6 +320,13 @@ def render_markdown(content: dict[str, Any]) -> str:
     footnote = interval_footnote(content)
     if footnote:
         lines += ["", _md(footnote)]
+    if content.get("decisions"):
+        lines += ["", "Decisions:", *[f"- {_md(x)}" for x in decision_figures.lines(content["decisions"])]]
+    if c.get("choice") is not None:
+        chead, crows = choice_rows(c["choice"])
+        lines += ["", f"`--method auto`: {_md(c['choice']['reason'])}.", "",
+                  "| " + " | ".join(chead) + " |", "|---|" + "---:|" * (len(chead) - 2) + "---|",
+                  *["| " + " | ".join(_md(x) for x in row) + " |" for row in crows]]
     if content["warnings"]:
         lines += ["", "Warnings:", *[f"- {_md(w)}" for w in content["warnings"]]]
     lines += ["", "> **Cautions.** " + " ".join(content["cautions"]), ""]
@@ -316,5 +367,5 @@ def render(content: dict[str, Any], formats: Collection[str]) -> dict[str, bytes
     if "json" in formats:
         files["report.json"] = render_json(content).encode()
     if "png" in formats:
-        files.update({f"{name}.png": pngs[name] for name in PLOTS})
+        files.update({f"{name}.png": png for name, png in pngs.items()})
     return files

@@ -13,6 +13,7 @@ import numpy as np
 from .. import _signals
 from ..metrics import METRIC_LABELS
 from ..scaling import Scaling
+from . import decisions as decision_figures
 
 if TYPE_CHECKING:
     from matplotlib.axes import Axes
@@ -278,4 +279,7 @@ def draw(content: Content) -> dict[str, bytes]:
     opacity growing with its count), the confidence histograms before and
     after, and the per-class calibration errors.
     """
-    return {name: _png(fig) for name, fig in figures(content).items()}
+    pngs = {name: _png(fig) for name, fig in figures(content).items()}
+    if content.get("decisions"):  # a model with decision outputs: the risk-coverage curve and the set sizes
+        pngs["decisions"] = decision_figures.plot(content, _new_figure, _png, OKABE_ITO)
+    return pngs

@@ -73,6 +73,7 @@ def good_files(d: Path, rng: np.random.Generator) -> None:
     y = np.arange(N) % K
     np.savez(d / "val.npz", x=x, labels=y)
     np.savez(d / "val3.npz", x=x[:, :3], labels=np.arange(N) % 3)  # for the 3-input models
+    np.savez(d / "unlabelled.npz", x=x)  # inputs only (issue 16: --decision-data needs labels)
     header = ",".join(f"f{i}" for i in range(D)) + ",label\n"
     rows = "".join(",".join(f"{v:.4f}" for v in row) + f",{label}\n" for row, label in zip(x, y, strict=True))
     (d / "val.csv").write_text(header + rows)
@@ -476,6 +477,17 @@ def bad_fits(d: Path) -> None:
     tiny["temperature"] = tiny["parameters"]["temperature"] = 1e-300
     (d / "fit_tiny_t.json").write_text(json.dumps(tiny, indent=2))
     (d / "fit_deep.json").write_text("[" * 100_000 + "]" * 100_000)
+    maps = {  # the maps of issue 15, each with one bad field (the corpus model has 4 classes)
+        "matrix_w_shape": ("matrix", {"W": np.eye(3).tolist(), "b": [0.0] * 3}),
+        "ets_weights": ("ensemble-temperature", {"temperature": 1.0, "weights": [0.5, 0.6, 0.1]}),
+        "isotonic_decreasing": ("isotonic", {"x": [[0.0, 0.5, 1.0]] * 4, "y": [[0.9, 0.5, 0.1]] * 4}),
+        "unknown_method": ("magic", {"t": 1.0}),
+    }
+    for name, (method, params) in maps.items():
+        bad = json.loads(json.dumps(fit))
+        bad["method"], bad["parameters"], bad["temperature"] = method, params, None
+        bad["split"]["fit_part"] = None
+        (d / f"fit_{name}.json").write_text(json.dumps(bad, indent=2))
 
 
 def l1_sigmoid_files(d: Path) -> None:

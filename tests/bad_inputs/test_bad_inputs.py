@@ -209,6 +209,10 @@ CASES = [
     # ---- fit files
     case("fit-negative-temperature", "patch", "model.onnx", "--fit", "fit_negative_t.json", "--out", "p.onnx", message=r"temperature -1.5 is not a positive finite number"),
     case("fit-non-numeric-temperature", "report", "cap.npz", "--out", "rep", "--fit", "fit_text_t.json", message=r"'warm' is not a number"),
+    case("fit-matrix-w-shape", "patch", "model.onnx", "--fit", "fit_matrix_w_shape.json", "--out", "p.onnx", message=r"matrix parameter 'W' has shape 3 x 3, expected 4 x 4"),
+    case("fit-ets-weights", "report", "cap.npz", "--out", "rep", "--fit", "fit_ets_weights.json", message=r"ensemble-temperature parameter 'weights' is \[0.5, 0.6, 0.1\], but it must be three numbers >= 0 adding up to 1"),
+    case("fit-isotonic-decreasing", "patch", "model.onnx", "--fit", "fit_isotonic_decreasing.json", "--out", "p.onnx", message=r"isotonic parameter 'y\[0\]' decreases"),
+    case("fit-unknown-method", "patch", "model.onnx", "--fit", "fit_unknown_method.json", "--out", "p.onnx", message=r"unknown calibration method 'magic'"),
     case("fit-not-json", "patch", "model.onnx", "--fit", "fit_not_json.json", "--out", "p.onnx", message=r"'fit_not_json.json' is not an onnxcal fit file"),
     case("report-dir-is-a-file", "calibrate", "model.onnx", *NPZ, "--out", "o.onnx", "--report", "fit_deep.json", message=r"--report 'fit_deep.json' is a file"),
     case("fit-json-nested-too-deep", "patch", "model.onnx", "--fit", "fit_deep.json", "--out", "p.onnx", message=r"'fit_deep.json' is not an onnxcal fit file"),
@@ -268,6 +272,14 @@ CASES = [
     case("csv-float16-overflow", "capture", "f16.onnx", "--data", "f16_overflow.csv", "--out", "c.npz", message=r"line 6, column 'f1' of 'f16_overflow.csv' holds 70000, outside what model input 'x' \(float16\) can hold \(-65504 to 65504\)"),
     # ---- issue 11: a model that fails at run time: one line naming the node and the rows
     case("model-fails-at-run-time", "capture", "reshape_fails.onnx", *NPZ, "--out", "c.npz", "-q", message=r"node 'impossible_reshape' \(Reshape\) failed \(.*cannot be reshaped.*\) on rows 0\.\.39 of 'val.npz'"),
+    # ---- issue 16: decision outputs
+    case("accept-error-out-of-range", "calibrate", "model.onnx", *NPZ, "--out", "o.onnx", "--accept-error", "1.5", message=r"--accept-error must be a number strictly between 0 and 1, got 1.5"),
+    case("set-score-unknown", "calibrate", "model.onnx", *NPZ, "--out", "o.onnx", "--set-coverage", "0.9", "--set-score", "raps", message=r"--set-score 'raps' is not one of: las, aps"),
+    case("set-per-class-without-coverage", "patch", "model.onnx", *T2, "--out", "p.onnx", "--set-per-class", message=r"--set-score and --set-per-class apply to --set-coverage"),
+    case("decisions-with-holdout-0", "calibrate", "model.onnx", *NPZ, "--out", "o.onnx", "--holdout", "0", "--accept-error", "0.1", message=r"with --holdout 0 every row is fitted on.*--decision-data"),
+    case("patch-decisions-without-rows", "patch", "model.onnx", *T2, "--out", "p.onnx", "--set-coverage", "0.9", message=r"patch has none.*--decision-data"),
+    case("decision-data-without-labels", "patch", "model.onnx", *T2, "--out", "p.onnx", "--accept-error", "0.1", "--decision-data", "unlabelled.npz", message=r"'unlabelled.npz' has no array named 'labels'"),
+    case("verify-targets-without-decisions", "verify", "patched.onnx", *NPZ, "--accept-error", "0.1", message=r"hold the model's decision outputs to targets, and it has none"),
 ]
 
 

@@ -164,7 +164,8 @@ BAD_FIT = [
     (["--multilabel", "shared"], "--multilabel needs an N x K"),
     (["--bootstrap", "-1"],
      r"--bootstrap -1 is out of range: give a number of replicates \(0 skips the intervals\) from 0 to 10000"),
-    (["--l2", "0.1"], "--l2 applies to --method vector and platt"),
+    (["--l2", "0.1"],
+     "--l2 applies to --method vector, platt, matrix, dirichlet, beta, ovr-platt and auto, not temperature"),
 ]
 
 

@@ -1,0 +1,210 @@
+"""Every method end to end through ONNX, and ``--method auto``, side by side with CalibratedClassifierCV.
+
+    .venv/bin/python tests/benchmarks/bench_methods_onnx.py                 # --repeats 5
+    .venv/bin/python tests/benchmarks/bench_methods_onnx.py --bootstrap 100 --out /tmp/table.md
+
+The models are real exports (fixtures/exporters/, made by skl2onnx and
+onnxmltools from scikit-learn, LightGBM and XGBoost models trained on
+scikit-learn's bundled sets; see fixtures/exporters/README.md), each with
+its validation set. Each repeat splits a set (stratified, seed = repeat)
+into a calibration half and a test half. onnxcal sees only the
+calibration half, through its own API as the CLI runs it: ``capture`` of
+the ONNX model, ``fit`` (holdout 0.25 and the bootstrap for the held-out
+report and ``auto``), ``patch``; the patched ONNX model is then run by
+onnxruntime on the test half, and its output is what is scored. So every
+figure goes through the graph onnxcal wrote.
+
+scikit-learn: ``CalibratedClassifierCV(FrozenEstimator(m), method=...)``
+for sigmoid, isotonic and temperature, where ``m`` is the same ONNX model
+run by onnxruntime (its probabilities as ``predict_proba``), fitted on the
+same calibration half, scored on the same test half.
+
+Metrics on the test half: NLL (sklearn.metrics.log_loss, which clips),
+top-label ECE with 15 equal-width bins (onnxcal.metrics), Brier score in
+its multiclass form mean_i sum_k (p_ik - y_ik)^2 over all columns (binary
+problems included, i.e. twice the binary form), accuracy. Means over the
+repeats. The summary line counts, per model, whether ``auto``'s test NLL
+is no worse than the best scikit-learn method's (within 1e-4), and better.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import tempfile
+import time
+import warnings
+from collections import defaultdict
+from pathlib import Path
+
+import numpy as np
+import onnxruntime as ort
+from sklearn.base import BaseEstimator, ClassifierMixin
+from sklearn.calibration import CalibratedClassifierCV
+from sklearn.frozen import FrozenEstimator
+from sklearn.metrics import log_loss
+from sklearn.model_selection import train_test_split
+
+from onnxcal import api
+from onnxcal.choose import candidate_methods
+from onnxcal.data import DataSpec
+from onnxcal.fit import FitOptions
+from onnxcal.metrics import expected_calibration_error
+
+FIXTURES = Path(__file__).resolve().parents[2] / "fixtures" / "exporters"
+# (fixture name in the manifest, short label)
+MODELS = (
+    ("skl2onnx_logreg_pipeline_tensor", "logreg/wine"),
+    ("skl2onnx_random_forest_tensor", "forest/wine"),
+    ("skl2onnx_mlp_tensor", "mlp/digits"),
+    ("skl2onnx_svc_tensor", "svc/breast cancer"),
+    ("skl2onnx_logreg_saturated_tensor", "logreg-saturated/breast cancer"),
+    # Not here: the onnxmltools LightGBM and XGBoost exports import default-domain opset 9 (their IR
+    # version allows no later one), and the maps' subgraphs need opset 13, so patch refuses them.
+)
+SKLEARN = ("sigmoid", "isotonic", "temperature")
+
+
+class OnnxClassifier(ClassifierMixin, BaseEstimator):
+    """An ONNX classifier as a fitted scikit-learn estimator: predict_proba runs it with onnxruntime."""
+
+    def __init__(self, path: str = "", output: str = "", classes: int = 2) -> None:
+        self.path, self.output, self.classes = path, output, classes
+
+    def fit(self, x: np.ndarray, y: np.ndarray) -> OnnxClassifier:
+        self.classes_ = np.arange(self.classes)
+        return self
+
+    def predict_proba(self, x: np.ndarray) -> np.ndarray:
+        sess = ort.InferenceSession(self.path, providers=["CPUExecutionProvider"])
+        name = sess.get_inputs()[0].name
+        p = sess.run([self.output], {name: np.asarray(x, dtype=np.float32)})[0]
+        return np.asarray(p, dtype=np.float64)
+
+    def predict(self, x: np.ndarray) -> np.ndarray:
+        return self.predict_proba(x).argmax(axis=1)
+
+
+def metrics(p: np.ndarray, y: np.ndarray) -> dict[str, float]:
+    p = p / p.sum(axis=1, keepdims=True)  # float32 outputs sum to 1 within rounding; log_loss warns otherwise
+    k = p.shape[1]
+    onehot = np.eye(k)[y]
+    return {
+        "nll": float(log_loss(y, p, labels=np.arange(k))),
+        "ece": expected_calibration_error(p.max(axis=1), (p.argmax(axis=1) == y).astype(float), 15),
+        "brier": float(np.mean(np.sum((p - onehot) ** 2, axis=1))),
+        "accuracy": float(np.mean(p.argmax(axis=1) == y)),
+    }
+
+
+def _run(path: Path, output: str, x: np.ndarray) -> np.ndarray:
+    sess = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
+    return np.asarray(sess.run([output], {sess.get_inputs()[0].name: x.astype(np.float32)})[0], dtype=np.float64)
+
+
+def onnxcal_route(entry: dict, x_cal, y_cal, x_test, methods, bootstrap: int, work: Path) -> dict[str, tuple]:
+    """Per method: (test probabilities, the fit summary); "auto" too."""
+    model = FIXTURES / entry["model"]
+    np.savez(work / "cal.npz", X=x_cal.astype(np.float32), labels=y_cal)
+    cap = api.capture(model, DataSpec(work / "cal.npz"), out=work / "cal_logits.npz", force=True)
+    out: dict[str, tuple] = {}
+    for method in (*methods, "auto"):
+        options = FitOptions(method=method, holdout=0.25, bootstrap=bootstrap if method == "auto" else 0)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            summary = api.fit(cap, out=work / f"fit_{method}.json", force=True, options=options)
+        patched = work / f"patched_{method}.onnx"
+        api.patch(model, patched, fit=summary, force=True)
+        p = _run(patched, entry["output"], x_test)
+        out[method] = (p, summary)
+    return out
+
+
+def sklearn_route(entry: dict, x_cal, y_cal, x_test) -> dict[str, np.ndarray]:
+    base = OnnxClassifier(str(FIXTURES / entry["model"]), entry["output"], entry["num_classes"]).fit(x_cal, y_cal)
+    out = {}
+    for m in SKLEARN:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            cal = CalibratedClassifierCV(FrozenEstimator(base), method=m).fit(x_cal, y_cal)
+        out[f"sklearn {m}"] = cal.predict_proba(x_test)
+    return out
+
+
+def one_split(entry: dict, seed: int, bootstrap: int) -> tuple[dict[str, dict[str, float]], str, dict]:
+    data = np.load(FIXTURES / entry["val"])
+    x, y = data["X"], data["labels"].astype(np.int64)
+    x_cal, x_test, y_cal, y_test = train_test_split(x, y, test_size=0.5, stratify=y, random_state=seed)
+    # Every fixture's output holds K >= 2 probabilities, captured as K log-probabilities: multiclass maps.
+    methods = candidate_methods("multiclass")
+    base = _run(FIXTURES / entry["model"], entry["output"], x_test)
+    rows: dict[str, dict[str, float]] = {"uncalibrated": metrics(base, y_test)}
+    with tempfile.TemporaryDirectory() as tmp:
+        ours = onnxcal_route(entry, x_cal, y_cal, x_test, methods, bootstrap, Path(tmp))
+    for m, (p, _) in ours.items():
+        rows[m] = metrics(p, y_test)
+    for m, p in sklearn_route(entry, x_cal, y_cal, x_test).items():
+        rows[m] = metrics(p, y_test)
+    summary = ours["auto"][1]
+    return rows, summary.choice.chosen, summary.choice.to_dict()
+
+
+def table(name: str, results: list[dict[str, dict[str, float]]], chosen: list[str]) -> str:
+    mean: dict[str, dict[str, float]] = defaultdict(dict)
+    for m in results[0]:
+        for f in ("nll", "ece", "brier", "accuracy"):
+            mean[m][f] = float(np.mean([r[m][f] for r in results]))
+    lines = [f"**{name}** (auto chose: {', '.join(chosen)})", "",
+             "| method | NLL | ECE | Brier | accuracy |", "|---|---:|---:|---:|---:|"]
+    for m, v in mean.items():
+        lines.append(f"| {m} | {v['nll']:.4f} | {v['ece']:.4f} | {v['brier']:.4f} | {v['accuracy']:.4f} |")
+    return "\n".join(lines)
+
+
+def verdicts(results: list[dict[str, dict[str, float]]]) -> tuple[int, int, int]:
+    """Splits where auto's test NLL is better than / equal to / worse than the best scikit-learn method's."""
+    better = equal = worse = 0
+    for r in results:
+        best = min(r[f"sklearn {m}"]["nll"] for m in SKLEARN)
+        d = r["auto"]["nll"] - best
+        better += d < -1e-4
+        equal += abs(d) <= 1e-4
+        worse += d > 1e-4
+    return better, equal, worse
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--repeats", type=int, default=5)
+    ap.add_argument("--bootstrap", type=int, default=200, help="bootstrap replicates of --method auto")
+    ap.add_argument("--out", default=None, help="write the Markdown tables to this file too")
+    ap.add_argument("--only", default=None, help="one fixture name")
+    args = ap.parse_args()
+    manifest = {e["name"]: e for e in json.loads((FIXTURES / "manifest.json").read_text())}
+    parts, totals = [], [0, 0, 0]
+    for name, label in MODELS:
+        if args.only and name != args.only:
+            continue
+        t0 = time.perf_counter()
+        results, chosen = [], []
+        for seed in range(args.repeats):
+            rows, pick, _ = one_split(manifest[name], seed, args.bootstrap)
+            results.append(rows)
+            chosen.append(pick)
+        b, e, w = verdicts(results)
+        totals = [totals[0] + b, totals[1] + e, totals[2] + w]
+        parts.append(table(f"{label} ({name}, {len(np.load(FIXTURES / manifest[name]['val'])['labels'])} rows)",
+                           results, chosen)
+                     + "\n\nauto vs the best scikit-learn method, test NLL per split: "
+                     f"better {b}, equal {e}, worse {w} "
+                     f"({time.perf_counter() - t0:.0f} s)\n")
+        print(parts[-1], flush=True)
+    text = "\n".join(parts) + (f"\nAll splits: auto better than the best scikit-learn method on {totals[0]}, "
+                               f"equal on {totals[1]}, worse on {totals[2]}.\n")
+    print(text.splitlines()[-1])
+    if args.out:
+        Path(args.out).write_text(text)
+
+
+if __name__ == "__main__":
+    main()
