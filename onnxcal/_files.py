@@ -35,6 +35,7 @@ import tempfile
 import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from pathlib import Path
+from typing import Any
 
 from . import _signals, _temporaries
 from ._paths import (  # noqa: F401 - re-exported: the stages, graph.io and tests import them from _files
@@ -92,12 +93,12 @@ _REASONS = {
 }
 
 
-def write_error(exc: OSError, dests: str | os.PathLike | Sequence[str | os.PathLike]) -> OnnxcalError:
+def write_error(exc: OSError, dests: str | os.PathLike[str] | Sequence[str | os.PathLike[str]]) -> OnnxcalError:
     """An OnnxcalError for a failed write of ``dests`` (disk full, permission denied, ...)."""
     if isinstance(dests, (str, os.PathLike)):
         dests = [dests]
     names = ", ".join(f"'{d}'" for d in dests)
-    reason, hint = _REASONS.get(exc.errno, (exc.strerror or str(exc), "check the output path and its disk"))
+    reason, hint = _REASONS.get(exc.errno or 0, (exc.strerror or str(exc), "check the output path and its disk"))
     detail = f" ({exc.strerror})" if exc.strerror and exc.strerror.lower() != reason else ""
     return OnnxcalError(f"cannot write {names}: {reason}{detail}", f"{hint}; no output was written")
 
@@ -115,7 +116,7 @@ def appeared_error(dest: Path) -> OnnxcalError:
 # Temporaries
 
 
-def remove_stale_temporaries(dest: str | os.PathLike) -> list[Path]:
+def remove_stale_temporaries(dest: str | os.PathLike[str]) -> list[Path]:
     """Remove the temporaries of ``dest`` a stopped onnxcal process left, never an input of this command
     (see :func:`onnxcal._temporaries.remove_stale_temporaries` for when a temporary counts as stale)."""
     run = _COMMAND.get()
@@ -132,7 +133,7 @@ class _Temporary:
         self.owner: Path | None = None
         self.identity: tuple[int, int] | None = None
         self._fd = -1
-        self._record: dict = {}
+        self._record: dict[str, Any] = {}
         remove_stale_temporaries(dest)
         parent = dest.parent if str(dest.parent) else Path(".")
         try:
@@ -284,7 +285,7 @@ def _publish_group(temporaries: list[_Temporary]) -> None:
 
 
 @contextlib.contextmanager
-def atomic_paths(dests: Sequence[str | os.PathLike], *, replace: bool | None = None) -> Iterator[list[Path]]:
+def atomic_paths(dests: Sequence[str | os.PathLike[str]], *, replace: bool | None = None) -> Iterator[list[Path]]:
     """Yield temporary paths beside ``dests``; move each onto its destination on success.
 
     The caller writes every file to its temporary. On normal exit all of
@@ -321,7 +322,7 @@ def atomic_paths(dests: Sequence[str | os.PathLike], *, replace: bool | None = N
                 t.discard()
 
 
-def _step(action, dest: Path) -> None:
+def _step(action: Callable[[], object], dest: Path) -> None:
     try:
         action()
     except OSError as exc:
@@ -329,7 +330,7 @@ def _step(action, dest: Path) -> None:
 
 
 @contextlib.contextmanager
-def atomic_path(dest: str | os.PathLike, *, replace: bool | None = None) -> Iterator[Path]:
+def atomic_path(dest: str | os.PathLike[str], *, replace: bool | None = None) -> Iterator[Path]:
     """Yield a temporary path beside ``dest``; move it onto ``dest`` on success.
 
     The caller writes the whole file to the yielded path. On normal exit the
@@ -348,7 +349,7 @@ Writer = Callable[[Path], None]
 """Writes a whole file to the (temporary) path it is given: a file too large to hold as bytes."""
 
 
-def atomic_write_files(files: Mapping[str | os.PathLike, bytes | Writer], *, replace: bool | None = None) -> None:
+def atomic_write_files(files: Mapping[str | os.PathLike[str], bytes | Writer], *, replace: bool | None = None) -> None:
     """Write several files together, each atomically (see :func:`atomic_paths`).
 
     Each value is the file's bytes, or a :data:`Writer` that writes it to
@@ -388,6 +389,6 @@ def atomic_write_files(files: Mapping[str | os.PathLike, bytes | Writer], *, rep
         raise
 
 
-def atomic_write_bytes(dest: str | os.PathLike, data: bytes, *, replace: bool | None = None) -> None:
+def atomic_write_bytes(dest: str | os.PathLike[str], data: bytes, *, replace: bool | None = None) -> None:
     """Write ``data`` to ``dest`` atomically (see :func:`atomic_path`)."""
     atomic_write_files({dest: data}, replace=replace)

@@ -12,6 +12,7 @@ from __future__ import annotations
 import os
 import re
 from pathlib import Path
+from typing import Any
 
 from .errors import OnnxcalError
 
@@ -128,7 +129,7 @@ def check_memory(needed: int, what: str, hint: str) -> None:
         )
 
 
-def check_range(value, low, high, option: str, what: str = "a number") -> None:
+def check_range(value: Any, low: float, high: float | None, option: str, what: str = "a number") -> None:
     """Refuse an option's value outside [low, high] (``high`` None: no upper bound), with the range in the message.
 
     >>> check_range(100000, 0, 64, "--threads", "a number of threads")
@@ -142,7 +143,7 @@ def check_range(value, low, high, option: str, what: str = "a number") -> None:
         raise OnnxcalError(f"{option} {value!r} is out of range: give {what} {span}")
 
 
-def _plain(x) -> str:
+def _plain(x: float) -> str:
     return str(x) if isinstance(x, int) else f"{x:g}"
 
 

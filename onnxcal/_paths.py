@@ -16,14 +16,14 @@ import os
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TypeVar
+from typing import Any, TypeVar
 
 from .errors import OnnxcalError
 
 _CHUNK = 1 << 20
 
 
-def sha256_file(path: str | os.PathLike) -> str:
+def sha256_file(path: str | os.PathLike[str]) -> str:
     """Return the hex SHA-256 of a file, read in 1 MiB chunks."""
     digest = hashlib.sha256()
     try:
@@ -150,7 +150,7 @@ def command() -> Iterator[Command]:
         _COMMAND.reset(token)
 
 
-F = TypeVar("F", bound=Callable)
+F = TypeVar("F", bound=Callable[..., Any])
 
 
 def one_command(fn: F) -> F:
@@ -169,11 +169,11 @@ def current_command() -> Command | None:
     return _COMMAND.get()
 
 
-def _key(path: str | os.PathLike) -> str:
+def _key(path: str | os.PathLike[str]) -> str:
     return os.path.abspath(os.fspath(path))
 
 
-def _protect(paths: Iterable[str | os.PathLike]) -> None:
+def _protect(paths: Iterable[str | os.PathLike[str]]) -> None:
     run = _COMMAND.get()
     if run is None:
         return
@@ -183,7 +183,7 @@ def _protect(paths: Iterable[str | os.PathLike]) -> None:
             run.protected.add((st.st_dev, st.st_ino))
 
 
-def require_file(path: str | os.PathLike, what: str) -> Path:
+def require_file(path: str | os.PathLike[str], what: str) -> Path:
     """Return ``path`` as a Path if it is an existing regular file, else raise."""
     p = Path(path)
     if not p.exists():
@@ -213,7 +213,7 @@ def _inside(path: Path, folder: Path) -> bool:
 
 
 def check_not_input(
-    out: str | os.PathLike, inputs: Iterable[str | os.PathLike] = (), option: str = "--out"
+    out: str | os.PathLike[str], inputs: Iterable[str | os.PathLike[str]] = (), option: str = "--out"
 ) -> Path:
     """Refuse an output that is one of the inputs, or lies in an input folder.
 
@@ -237,7 +237,7 @@ def check_not_input(
     return p
 
 
-def check_writable(directory: str | os.PathLike, option: str = "--out") -> None:
+def check_writable(directory: str | os.PathLike[str], option: str = "--out") -> None:
     """Refuse a directory the OS says this process may not create files in.
 
     Asked of the OS (``os.access``) so that the refusal comes before any
@@ -252,8 +252,8 @@ def check_writable(directory: str | os.PathLike, option: str = "--out") -> None:
 
 
 def check_output_path(
-    out: str | os.PathLike,
-    inputs: Iterable[str | os.PathLike] = (),
+    out: str | os.PathLike[str],
+    inputs: Iterable[str | os.PathLike[str]] = (),
     *,
     force: bool = False,
     option: str = "--out",

@@ -118,7 +118,7 @@ def stopping() -> None:
 def name_of(exc: BaseException) -> str:
     """The signal an Interrupted (or a KeyboardInterrupt) stands for: its argument, else SIGINT."""
     if exc.args and exc.args[0] in ("SIGINT", "SIGTERM"):
-        return exc.args[0]
+        return str(exc.args[0])
     return "SIGINT"
 
 

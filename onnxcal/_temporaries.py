@@ -24,14 +24,16 @@ import stat
 import sys
 import time
 import warnings
-from collections.abc import Callable, Iterator, Set as AbstractSet
+from collections.abc import Callable, Iterator
+from collections.abc import Set as AbstractSet
 from pathlib import Path
+from typing import Any
 
 from . import _signals
 from .errors import OnnxcalWarning
 
 try:
-    import fcntl
+    import fcntl as fcntl  # re-exported: _files locks through the same name (None where absent)
 except ImportError:  # Windows: no locks, so stale temporaries are left alone
     fcntl = None  # type: ignore[assignment]
 
@@ -47,7 +49,7 @@ OWNER_KIND = "onnxcal temporary owner"
 _TOKEN = r"[a-z0-9_]{8}"  # tempfile.mkstemp's random part
 
 
-def _owner_pattern(dest: Path) -> re.Pattern:
+def _owner_pattern(dest: Path) -> re.Pattern[str]:
     return re.compile(re.escape(f".{dest.name}.") + f"({_TOKEN})" + re.escape(".owner"))
 
 
@@ -55,7 +57,7 @@ def temporary_name(dest: Path, token: str) -> str:
     return f".{dest.name}.{token}.tmp"
 
 
-def _process_gone(record: dict, age: float) -> bool:
+def _process_gone(record: dict[str, Any], age: float) -> bool:
     """True when the process that wrote ``record`` has ended (or, on another host, long ago)."""
     if record.get("host") != socket.gethostname():
         return age >= STALE_SECONDS
@@ -71,7 +73,7 @@ def _process_gone(record: dict, age: float) -> bool:
     return False
 
 
-def _read_owner(fd: int, st: os.stat_result) -> dict | None:
+def _read_owner(fd: int, st: os.stat_result) -> dict[str, Any] | None:
     """The owner record open at ``fd``, if it is one and describes itself (its own inode)."""
     if not stat.S_ISREG(st.st_mode) or st.st_size > 4096:
         return None
@@ -88,7 +90,7 @@ def _read_owner(fd: int, st: os.stat_result) -> dict | None:
 
 def _stale_pair(
     parent: Path, name: str, token: str, dest: Path, protected: AbstractSet[tuple[int, int]]
-) -> tuple[Path, Path | None, dict] | None:
+) -> tuple[Path, Path | None, dict[str, Any]] | None:
     """(owner, its temporary or None, record) when ``name`` is a provably stale owner record; else None.
 
     Holds the owner's lock while deciding and removing, so two runs cannot
@@ -134,7 +136,7 @@ def _stale_pair(
 
 
 def remove_stale_temporaries(
-    dest: str | os.PathLike, protected: AbstractSet[tuple[int, int]] = frozenset()
+    dest: str | os.PathLike[str], protected: AbstractSet[tuple[int, int]] = frozenset()
 ) -> list[Path]:
     """Remove the temporaries of ``dest`` that a stopped onnxcal process left beside it.
 

@@ -34,6 +34,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from math import factorial
+from typing import Any
 
 import numpy as np
 
@@ -112,7 +113,7 @@ class Expansion:
             return None
         return found[0]
 
-    def metrics(self, drawn: np.ndarray, d: float, n_bins: int) -> dict | None:
+    def metrics(self, drawn: np.ndarray, d: float, n_bins: int) -> dict[str, Any] | None:
         """Every metric but the classwise ECE at beta0 + d (``drawn``: the positions drawn
         from the held-out part); None if out of the series' reach."""
         log_top = _series(self.log_top, self.top_max, d)

@@ -62,7 +62,7 @@ class RowStats:
         from scipy.special import logsumexp  # here, not at import: scipy.special takes ~0.5 s to import
 
         with np.errstate(invalid="ignore", over="ignore"):
-            lse = logsumexp(np.where(finite[:, None], r, 0.0), axis=1)
+            lse = logsumexp(np.where(finite.reshape(-1, 1), r, 0.0), axis=1)
         logp = finite & (r <= VALUE_TOL).all(axis=1) & (np.abs(lse) <= SUM_TOL)
         self.log_probabilities += int(logp.sum()) if r.shape[1] > 1 else 0
 
@@ -124,8 +124,8 @@ def agrees(stats: RowStats, holds: str, kind: str) -> str | None:
                   "log-probabilities": "log-probabilities"}[holds]
     if stats.share(field_name) < STATED_SHARE:
         got = getattr(stats, field_name.replace("-", "_"))
-        return (f"only {got} of {stats.rows} rows ({_percent(stats.share(field_name))}) are "
-                f"{'probability vectors' if field_name == 'probabilities' else 'in [0, 1]' if field_name == 'unit' else 'log-probability vectors'}")
+        what = {"probabilities": "probability vectors", "unit": "in [0, 1]"}.get(field_name, "log-probability vectors")
+        return f"only {got} of {stats.rows} rows ({_percent(stats.share(field_name))}) are {what}"
     return None
 
 

@@ -22,6 +22,7 @@ logits again only when that step's error bound is too large.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import cast
 
 import numpy as np
 
@@ -32,6 +33,7 @@ from .tempfit import (
     ACCEPT,
     MAX_PASSES,
     ORDER,
+    PassFn,
     Solved,
     derivatives,
     fit_beta,
@@ -80,12 +82,15 @@ def _settled(beta: float, derivs: np.ndarray, bounds: tuple[float, float], tol: 
     return root is not None and abs(root[0]) <= tol * beta
 
 
-def _passes(logits, labels, rows, threads, first=None):
+def _passes(
+    logits: np.ndarray, labels: np.ndarray, rows: np.ndarray | None, threads: int | None,
+    first: tuple[np.ndarray, float, float] | None = None,
+) -> PassFn:
     """A solver pass function over ``rows``; its first call returns ``first`` when given (a pass already made)."""
     pending = [] if first is None else [first]
     snap = snapped(logits)
 
-    def pass_fn(beta):
+    def pass_fn(beta: float) -> tuple[np.ndarray, float, float]:
         if pending:
             return pending.pop()
         at = snap(beta)
@@ -94,7 +99,10 @@ def _passes(logits, labels, rows, threads, first=None):
     return pass_fn
 
 
-def _refit(logits, labels, sums: MomentSums, beta: float, high: np.ndarray, bounds, threads) -> Solved:
+def _refit(
+    logits: np.ndarray, labels: np.ndarray, sums: MomentSums, beta: float, high: np.ndarray,
+    bounds: tuple[float, float], threads: int | None,
+) -> Solved:
     """The refit on all rows from pass 3's sums and pass 2's higher derivatives.
 
     Pass 3 gives the first three derivatives of f over all rows at the fit
@@ -140,7 +148,7 @@ def fit_and_score(
     for _ in range(MAX_PASSES):
         exp = new_expansion(beta, len(fit_rows), len(eval_rows)) if bootstrap else None
 
-        def extra(exp=exp):
+        def extra(exp: Expansion | None = exp) -> tuple[MomentSums | ExpansionRows, ...]:
             return (MomentSums(parts, order),) + ((ExpansionRows(exp, local),) if exp is not None else ())
 
         scores, lanes = temperature_pass(
@@ -148,7 +156,7 @@ def fit_and_score(
             sq_moments=SQ_ORDER if bootstrap else 0, sq_part=1 if holdout else None, extra=extra,
             threads=threads,
         )
-        sums = MomentSums.merge([lane[0] for lane in lanes])
+        sums = MomentSums.merge([cast(MomentSums, lane[0]) for lane in lanes])  # extra()'s first consumer
         passes += 1  # the check of the fit, shared with the scores
         own, wrong, _ = derivatives(sums, beta, 0)
         check = np.concatenate([own, high[order:]])

@@ -15,14 +15,16 @@ use to catch a misreading.
 from __future__ import annotations
 
 import warnings
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, replace
+from typing import Any
 
 import numpy as np
 import onnx
 
 from . import graph
 from . import guard as _guard
-from .capture import RunOptions, probe, run_model
+from .capture import ProgressFn, RunOptions, probe, run_model
 from .data import Dataset, check_labels
 from .errors import OnnxcalError, OnnxcalWarning
 from .fit import FitSummary
@@ -124,7 +126,7 @@ def _mismatch(z: np.ndarray, values: np.ndarray, site: ScoreSite) -> str | None:
     return None if err <= tol else f"they differ by up to {err:.3g}, more than {tol:.3g}"
 
 
-def capture_check(site: ScoreSite, kind: str):
+def capture_check(site: ScoreSite, kind: str) -> Callable[[_guard.RowStats], None]:
     """The check ``capture`` runs on the statistics of every captured row (before writing).
 
     Refuses logits behind a recognised softmax that are themselves
@@ -148,7 +150,8 @@ def capture_check(site: ScoreSite, kind: str):
                 f"{_guard.describe(stats)}",
                 "say what it holds with --output-holds",
             )
-        if site.spelling == "data" and site.logits_from == "log" and stats.share("log-probabilities") < _guard.AUTO_SHARE:
+        if (site.spelling == "data" and site.logits_from == "log"
+                and stats.share("log-probabilities") < _guard.AUTO_SHARE):
             raise OnnxcalError(
                 f"output '{site.output}' was read as probabilities from its first rows, but over the whole set only "
                 f"{stats.log_probabilities} of {stats.rows} rows are probability vectors",
@@ -209,7 +212,9 @@ def warn_saturated(site: ScoreSite, stats: _guard.RowStats | None) -> None:
     )
 
 
-def check_label_coverage(labels: np.ndarray, k: int, site: ScoreSite, class_names, source: str) -> None:
+def check_label_coverage(
+    labels: np.ndarray, k: int, site: ScoreSite, class_names: Sequence[str] | None, source: str
+) -> None:
     """Refuse (or warn about) an output with far more values per row than the labels have classes.
 
     The labels are checked first (class indices in [0, K)), so a bad label
@@ -229,9 +234,9 @@ def check_label_coverage(labels: np.ndarray, k: int, site: ScoreSite, class_name
         warnings.warn(OnnxcalWarning(f"output '{site.output}': {warn}"), stacklevel=3)
 
 
-def patch_reading(meta: dict) -> dict:
+def patch_reading(meta: dict[str, Any]) -> dict[str, Any]:
     """The keyword arguments of ``graph.patch`` that read a model as a capture read it."""
-    kw: dict = {}
+    kw: dict[str, Any] = {}
     if meta.get("spelling") in ("stated", "data") and meta.get("holds"):
         kw.update(holds=meta["holds"], holds_from=meta["spelling"])
     if meta.get("spelling") == "ml-classifier" and meta.get("logits_from") == "log":
@@ -241,7 +246,7 @@ def patch_reading(meta: dict) -> dict:
     return kw
 
 
-def site_reading(site: ScoreSite) -> dict:
+def site_reading(site: ScoreSite) -> dict[str, Any]:
     """The keyword arguments of ``graph.patch`` that read a model as ``site`` does."""
     columns = "" if site.columns is None else f"{site.columns[1]}:{site.columns[2]}"
     return patch_reading({"spelling": site.spelling, "holds": site.holds, "logits_from": site.logits_from,
@@ -272,7 +277,7 @@ def identity(
     records: tuple[Record, ...],
     dataset: Dataset,
     run: RunOptions,
-    progress=None,
+    progress: ProgressFn | None = None,
 ) -> Check:
     """``verify.identity_check`` of the patched model at the identity against ``original``."""
     if original is None:
@@ -294,7 +299,7 @@ def identity(
     got = run_model(at_one, dataset, names, options=run, progress=progress, description="running at the identity",
                     out_axes=out_axes)
     tols = _tolerances(patched, original, records, names)
-    check = identity_check([(n, w, g, tols[n]) for n, w, g in zip(names, want, got)], _params(records))
+    check = identity_check([(n, w, g, tols[n]) for n, w, g in zip(names, want, got, strict=True)], _params(records))
     others = [f"'{o.name}'" for o in kept if o.name not in names]
     if others:  # a single number, or no telling which axis holds the samples
         check = replace(check, detail=f"{check.detail}; not compared: {', '.join(others)} (no known samples axis)")
@@ -315,7 +320,9 @@ def _samples_axis(spec: graph.TensorSpec) -> int | None:
     return open_dims[0] if len(open_dims) == 1 else None
 
 
-def _tolerances(patched: onnx.ModelProto, original: onnx.ModelProto, records, names: list[str]) -> dict[str, float]:
+def _tolerances(
+    patched: onnx.ModelProto, original: onnx.ModelProto, records: tuple[Record, ...], names: list[str]
+) -> dict[str, float]:
     """Per output: the calibrated ones follow the dtypes their values pass through; others their own dtype."""
     specs = {vi.name: graph.tensor_spec(vi) for vi in original.graph.output}
     tols = {n: (tolerance(specs[n].dtype) if specs[n].is_float else 0.0) for n in names}

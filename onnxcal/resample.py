@@ -58,6 +58,7 @@ from __future__ import annotations
 from collections.abc import Callable, Iterator
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -293,7 +294,7 @@ def _draw(rng: np.random.Generator, n: int, samples: Samples | None) -> np.ndarr
 _LOOKUPS = ("isotonic", "histogram")
 
 
-def _percentile(values: np.ndarray) -> list:
+def _percentile(values: np.ndarray) -> list[Any]:
     """[low, high] per column of (replicates, ...) values; None where any is NaN."""
     q = np.percentile(values, [100 * (1 - LEVEL) / 2, 100 * (1 + LEVEL) / 2], axis=0)
     if q.ndim == 1:
@@ -313,7 +314,7 @@ def bootstrap(
     expansion: Expansion | None = None,
     threads: int | None = None,
     groups: np.ndarray | None = None,
-) -> dict:
+) -> dict[str, Any]:
     """Percentile intervals for the parameters and every after-metric.
 
     Parameters
@@ -412,7 +413,7 @@ class Replicates:
     def _refit(self, cf):
         return self.refit(self.logits, self.labels, self.options, rows=self.fit_rows, weights=cf, start=self.start)
 
-    def _score(self, scaling, ce) -> dict:
+    def _score(self, scaling, ce) -> dict[str, Any]:
         m = evaluate(self.logits, self.labels, scaling, self.options.n_bins, rows=self.eval_rows, weights=ce)
         return m.to_dict()
 
@@ -452,7 +453,7 @@ class Replicates:
         return [r[0] for r in done], [r[1] for r in done], sum(r[2] for r in done)
 
 
-def _map_in_order(fn, items, threads: int) -> list:
+def _map_in_order(fn, items, threads: int) -> list[Any]:
     """[fn(item) for item in items], on ``threads`` threads, items drawn in order."""
     if threads <= 1:
         return [fn(item) for item in items]
@@ -574,7 +575,7 @@ def _hermite_root(h, s0, d0, s1, d1) -> float:
     return 0.5 * (lo + hi)
 
 
-def _interpolated_metrics(held, weights, j, t, h, n_bins) -> dict:
+def _interpolated_metrics(held, weights, j, t, h, n_bins) -> dict[str, Any]:
     def at(name, deriv):
         y = held[name].astype(np.float64)
         d = held[deriv].astype(np.float64)

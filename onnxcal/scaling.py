@@ -42,8 +42,10 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from .errors import OnnxcalError
 
@@ -91,21 +93,21 @@ class Scaling:
     """
 
     method: str
-    parameters: dict = field(default_factory=dict)
+    parameters: dict[str, Any] = field(default_factory=dict)
     kind: str = "multiclass"
 
     @classmethod
-    def of_temperature(cls, temperature, kind: str = "multiclass") -> Scaling:
+    def of_temperature(cls, temperature: ArrayLike, kind: str = "multiclass") -> Scaling:
         """Temperature scaling with one T (a number) or one T per label (a sequence)."""
         t = np.asarray(temperature, dtype=np.float64)
         value = float(t) if t.ndim == 0 else [float(v) for v in t]
         return cls("temperature", {"temperature": value}, kind)
 
     @classmethod
-    def of_affine(cls, w, b, method: str, kind: str) -> Scaling:
+    def of_affine(cls, w: ArrayLike, b: ArrayLike, method: str, kind: str) -> Scaling:
         """Vector scaling (lists) or Platt scaling (numbers): w * z + b."""
-        def plain(a):
-            a = np.asarray(a, dtype=np.float64)
+        def plain(value: ArrayLike) -> float | list[float]:
+            a = np.asarray(value, dtype=np.float64)
             return float(a) if a.ndim == 0 else [float(v) for v in a]
 
         return cls(method, {"w": plain(w), "b": plain(b)}, kind)
@@ -143,8 +145,10 @@ class Scaling:
             return _map_logits(self, z)
         a = self.arrays()
         if self.method == "temperature":
-            return z / a["temperature"]
-        return z * a["w"] + a["b"]
+            scaled: np.ndarray = z / a["temperature"]
+        else:
+            scaled = z * a["w"] + a["b"]
+        return scaled
 
     @property
     def is_affine(self) -> bool:
@@ -170,7 +174,8 @@ class Scaling:
         s = self.apply(z)
         if self.kind == "multiclass":
             e = np.exp(s - s.max(axis=-1, keepdims=True))
-            return e / e.sum(axis=-1, keepdims=True)
+            p: np.ndarray = e / e.sum(axis=-1, keepdims=True)
+            return p
         return 0.5 * (1.0 + np.tanh(0.5 * s))
 
     def affine(self) -> tuple[np.ndarray, np.ndarray]:
@@ -198,7 +203,7 @@ class Scaling:
         a = self.arrays()
         return 1.0 / a["temperature"] if self.method == "temperature" else a["w"]
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return {"method": self.method, "kind": self.kind, "parameters": dict(self.parameters)}
 
 
@@ -213,7 +218,8 @@ def _map_probabilities(scaling: Scaling, z: np.ndarray) -> np.ndarray:
     from . import maps  # maps imports fit and metrics, which import this module
 
     rows, shape = _rows(z)
-    return maps.module(scaling.method).apply(scaling.parameters, rows).reshape(shape)
+    p: np.ndarray = maps.module(scaling.method).apply(scaling.parameters, rows).reshape(shape)
+    return p
 
 
 def _map_logits(scaling: Scaling, z: np.ndarray) -> np.ndarray:
@@ -224,14 +230,16 @@ def _map_logits(scaling: Scaling, z: np.ndarray) -> np.ndarray:
     mod = maps.module(scaling.method)
     if hasattr(mod, "calibrated_logits"):  # matrix, Dirichlet, beta: the map's own logits
         return np.asarray(mod.calibrated_logits(scaling.parameters, rows), dtype=np.float64).reshape(shape)
-    p = mod.apply(scaling.parameters, rows)
+    p: np.ndarray = mod.apply(scaling.parameters, rows)
     if rows.shape[1] == 1:
         p = np.clip(p, PROBABILITY_FLOOR, 1.0 - PROBABILITY_FLOOR)
-        return (np.log(p) - np.log1p(-p)).reshape(shape)
-    return np.log(np.clip(p, PROBABILITY_FLOOR, 1.0)).reshape(shape)
+        logit: np.ndarray = (np.log(p) - np.log1p(-p)).reshape(shape)
+        return logit
+    logp: np.ndarray = np.log(np.clip(p, PROBABILITY_FLOOR, 1.0)).reshape(shape)
+    return logp
 
 
-def _finite_numbers(value, what: str) -> np.ndarray:
+def _finite_numbers(value: object, what: str) -> np.ndarray:
     try:
         arr = np.asarray(value, dtype=np.float64)
     except (TypeError, ValueError) as exc:

@@ -38,10 +38,10 @@ import os
 import threading
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
-from contextlib import nullcontext
+from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
 from math import comb
-from typing import Protocol
+from typing import Any, Protocol
 
 import numpy as np
 
@@ -57,10 +57,10 @@ UNSHIFTED_LIMIT = 20.0
 """float32 rows are left unshifted when |beta max z| is at most this (exp(2 * 20) is far from overflow)."""
 
 
-_BLAS: list = []
+_BLAS: list[Any] = []
 
 
-def one_blas_thread():
+def one_blas_thread() -> AbstractContextManager[Any]:
     """A context in which BLAS (numpy's dot products) runs on one thread.
 
     onnxcal's passes and bootstrap replicates run on threads of their own; a
@@ -201,7 +201,7 @@ def cumulants_from_moments(mu: np.ndarray) -> np.ndarray:
     return kappa
 
 
-_ONES: dict = {}
+_ONES: dict[str, Any] = {}
 
 
 def _ones(k: int, dtype: np.dtype) -> np.ndarray:

@@ -28,6 +28,7 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass
 from math import factorial
+from typing import cast
 
 import numpy as np
 
@@ -100,7 +101,7 @@ BORROWED_ERROR = 0.1
 
 def next_beta(
     beta: float, derivs: np.ndarray, lo: float, hi: float, b_min: float, b_max: float, accept: float, own: int = 0
-):
+) -> tuple[float, bool]:
     """The next iterate and whether it is final (its error bound is below ``accept``).
 
     ``derivs[own:]`` (when ``own``) were borrowed from a pass at a nearby
@@ -117,8 +118,8 @@ def next_beta(
                 bound += BORROWED_ERROR * borrowed_terms(derivs, own, d) / h
             cand = beta + d
             if lo < cand < hi and abs(np.log(cand / beta)) <= 0.1:
-                return cand, bound <= accept * cand
-    return new, abs(np.log(new / beta)) <= STEP_TOL
+                return cand, bool(bound <= accept * cand)
+    return new, bool(abs(np.log(new / beta)) <= STEP_TOL)
 
 
 def borrowed_terms(derivs: np.ndarray, own: int, d: float) -> float:
@@ -176,14 +177,15 @@ def solve(
 
 
 def moment_pass(
-    logits, labels, beta: float, selection: Selection = ALL_ROWS, threads: int | None = None, order: int = ORDER
+    logits: np.ndarray, labels: np.ndarray, beta: float, selection: Selection = ALL_ROWS,
+    threads: int | None = None, order: int = ORDER,
 ) -> MomentSums:
     """Weighted sums of the NLL's first ``order`` derivatives at beta (one part)."""
     lanes = run_pass(
         logits, labels, beta, lambda: (MomentSums(1, order),), selection=selection, moments=order,
         threads=threads,
     )
-    return MomentSums.merge([lane[0] for lane in lanes])
+    return MomentSums.merge([cast(MomentSums, lane[0]) for lane in lanes])  # the consumers made above
 
 
 def derivatives(sums: MomentSums, beta: float, part: int = 0) -> tuple[np.ndarray, float, float]:
@@ -217,11 +219,11 @@ def fit_beta(
 
     snap = snapped(logits)
 
-    def on(r, w, first_order=ORDER):
+    def on(r: np.ndarray | None, w: np.ndarray | None, first_order: int = ORDER) -> PassFn:
         sel = Selection(rows=r, weights=w)
         orders = [first_order]
 
-        def pass_fn(beta):
+        def pass_fn(beta: float) -> tuple[np.ndarray, float, float]:
             at = snap(beta)
             order = orders.pop() if orders else ORDER
             return derivatives(moment_pass(logits, labels, at, sel, threads, order), at)

@@ -18,12 +18,14 @@ import time
 import xml.etree.ElementTree as ET
 from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass
-from datetime import datetime, timezone
+from datetime import UTC, datetime
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from . import l1_sigmoid as _l1
-from .graph import np_dtype
+from .graph import FoldedValues, np_dtype
 from .graph import post as _post
 from .metrics import METRIC_LABELS, Metrics, chunk_rows, log_softmax, sigmoid
 from .scaling import Scaling
@@ -86,7 +88,7 @@ class Check:
             return "skip"
         return "undecided" if self.undecided and self.passed else ("pass" if self.passed else "fail")
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         """JSON-ready: a NaN or infinite figure becomes None."""
         d = asdict(self)
         for key in ("value", "limit"):
@@ -135,7 +137,7 @@ class VerifyResult:
     def failed(self) -> tuple[Check, ...]:
         return tuple(c for c in self.checks if not c.passed)
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return {
             "passed": self.passed,
             "n": self.n,
@@ -178,7 +180,7 @@ def decisions_detail(scaling: Scaling, multiclass: bool) -> str:
 
 
 def reference_probabilities(
-    logits: np.ndarray, scaling: Scaling | float, activation: str, post: tuple = ()
+    logits: np.ndarray, scaling: Scaling | float, activation: str, post: tuple[Any, ...] = ()
 ) -> np.ndarray:
     """The NumPy reference: post(activation(scale(logits))), float64.
 
@@ -201,7 +203,7 @@ def reference_probabilities(
     return _post.apply(p, post)
 
 
-def output_tolerance(dtypes: str | tuple[str, ...], post: tuple = ()) -> float:
+def output_tolerance(dtypes: str | tuple[str, ...], post: tuple[Any, ...] = ()) -> float:
     """The tolerance for an output: the dtype's (:func:`tolerance`), times what a constant
     factor multiplies the values by, plus one quantization step when the output is quantized
     (a float softmax quantized by onnxcal and a quantized kernel may round one step apart)."""
@@ -221,7 +223,7 @@ class Comparison:
     """
 
     def __init__(
-        self, scaling: Scaling | float, activation: str, dtype: str | tuple[str, ...], post: tuple = ()
+        self, scaling: Scaling | float, activation: str, dtype: str | tuple[str, ...], post: tuple[Any, ...] = ()
     ) -> None:
         self.scaling, self.activation, self.post = _as_scaling(scaling), activation, tuple(post)
         self.tol = output_tolerance(dtype, self.post)
@@ -288,7 +290,8 @@ class Comparison:
             if self.summable:
                 checks.append(Check("row-sums", self.sums <= tol, self.sums, tol, "max |sum_k p_k - 1| over rows"))
             else:
-                checks.append(skipped("row-sums", f"the output is post-processed ({then[7:]}), its rows need not sum to 1"))
+                checks.append(skipped("row-sums",
+                                      f"the output is post-processed ({then[7:]}), its rows need not sum to 1"))
             agree = self.agree / self.rows if self.rows else 1.0
             checks.append(Check("argmax", agree == 1.0, agree, 1.0, decisions_detail(self.scaling, True)))
         else:
@@ -303,7 +306,7 @@ def compare(
     scaling: Scaling | float,
     activation: str,
     dtype: str | tuple[str, ...],
-    post: tuple = (),
+    post: tuple[Any, ...] = (),
 ) -> tuple[Check, ...]:
     """Checks (1) max abs error vs reference, (2) row sums, (3) argmax agreement
     (for a sigmoid, or one class's probability: the 0.5-threshold decisions).
@@ -349,7 +352,7 @@ def identity_check(outputs: list[tuple[str, np.ndarray, np.ndarray, float]], par
                  f"with {params} the patched model reproduces the original's outputs {names} (max difference)")
 
 
-def _difference(a, b) -> float:
+def _difference(a: ArrayLike, b: ArrayLike) -> float:
     """Largest difference between two outputs: numbers (float or not), or ZipMap lists of maps."""
     a, b = np.asarray(a), np.asarray(b)
     if a.dtype == object:  # a ZipMap's sequence of maps: compare the values, key by key
@@ -392,13 +395,16 @@ def _top_class_agreeing(got: np.ndarray, ref: np.ndarray, tol: float) -> int:
     return int(np.count_nonzero(chosen >= ref.max(axis=-1) - 2 * tol))
 
 
-def _flat(values) -> np.ndarray:
+def _flat(values: ArrayLike | dict[str, ArrayLike]) -> np.ndarray:
     if isinstance(values, dict):
         return np.concatenate([np.asarray(values[k], dtype=np.float64).reshape(-1) for k in sorted(values)])
     return np.asarray(values, dtype=np.float64).reshape(-1)
 
 
-def record_check(recorded, in_graph, dtype: str | None = "float32") -> Check:
+def record_check(
+    recorded: float | dict[str, ArrayLike], in_graph: float | dict[str, ArrayLike] | None,
+    dtype: str | None = "float32",
+) -> Check:
     """Check that the record's parameters are the ones the graph uses.
 
     ``recorded`` and ``in_graph`` are a temperature, or dicts of parameter
@@ -433,7 +439,7 @@ def record_check(recorded, in_graph, dtype: str | None = "float32") -> Check:
 FOLD_LIMIT = {"float64": 1e-12, "float32": 4 * 2.0**-24, "float16": 4 * 2.0**-11, "bfloat16": 4 * 2.0**-8}
 
 
-def folded_record_check(recorded: Scaling, found) -> Check:
+def folded_record_check(recorded: Scaling, found: FoldedValues | None) -> Check:
     """Check that a folded model's weights carry the record's parameters.
 
     ``found`` (``graph.folded_values``) holds the per-class w and b
@@ -605,7 +611,7 @@ def junit_xml(result: VerifyResult, *, suite: str, elapsed: float = 0.0) -> byte
         "time": f"{elapsed:.3f}",
     }
     root = ET.Element("testsuites", {"name": "onnxcal verify", **counts})
-    stamp = datetime.now(timezone.utc).replace(microsecond=0).isoformat()
+    stamp = datetime.now(UTC).replace(microsecond=0).isoformat()
     ts = ET.SubElement(root, "testsuite", {"name": suite, **counts, "timestamp": stamp})
     props = ET.SubElement(ts, "properties")
     for key, value in (("samples", result.n), ("reference_from", result.reference_from), ("original", result.original)):

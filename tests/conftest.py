@@ -2,10 +2,9 @@
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass
 from pathlib import Path
-
-import os
 
 import numpy as np
 import onnx
@@ -152,7 +151,8 @@ def load_set(model, path, **selection):
     from onnxcal import graph
     from onnxcal.data import DataSpec, Selection, load_dataset
 
-    return load_dataset(DataSpec(path=path, selection=Selection(**selection)), [graph.tensor_spec(model.graph.input[0])])
+    return load_dataset(DataSpec(path=path, selection=Selection(**selection)),
+                        [graph.tensor_spec(model.graph.input[0])])
 
 
 def onehot_int_model() -> onnx.ModelProto:

@@ -15,9 +15,9 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 import pytest
+from conftest import random_mlp
 from onnx.reference import ReferenceEvaluator
 
-from conftest import random_mlp
 from onnxcal import decisions, graph
 from onnxcal.decisions import SetThreshold
 from onnxcal.errors import OnnxcalError

@@ -19,10 +19,10 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 import pytest
-from scipy import stats
-
 from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, random_mlp, save_model
 from digits_model import make_digits
+from scipy import stats
+
 from onnxcal import api, graph
 from onnxcal.decisions import conditional_coverage_floor
 from onnxcal.decisions.plan import DecisionOptions

@@ -3,8 +3,8 @@
 import numpy as np
 
 from onnxcal import expansion, resample
-from onnxcal.metrics.binning import _binned
 from onnxcal.fit import FitOptions, fit_scaling, fit_temperature, summarize
+from onnxcal.metrics.binning import _binned
 
 
 def gumbel_set(seed, n, k, t_true=1.4):

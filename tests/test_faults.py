@@ -32,9 +32,9 @@ from pathlib import Path
 import numpy as np
 import onnx
 import pytest
+from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, FIXTURES, files_in
 from onnx import TensorProto, helper, numpy_helper
 
-from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, FIXTURES, files_in
 from onnxcal import _files, api
 from onnxcal.capture import load_capture
 from onnxcal.cli.app import COMMANDS
@@ -333,7 +333,7 @@ def _assert_clean_ending(work: Path, inputs: list[Path], name: str, code: int, e
     assert code == 128 + getattr(signal, name), (code, err)
     assert len(lines) == 1 and lines[0].startswith(f"onnxcal: interrupted by {name}; "), err
     left = _what_is_left(work, inputs)
-    said = re.sub(r" \((?:%s) stopped[^)]*\)$" % "|".join(COMMANDS), "", lines[0])  # what was running, named last
+    said = re.sub(r" \((?:{}) stopped[^)]*\)$".format("|".join(COMMANDS)), "", lines[0])  # what was running, named last
     if said.endswith("no output was written"):
         assert left == set(), left
         return False

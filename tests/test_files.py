@@ -14,8 +14,8 @@ import time
 from pathlib import Path
 
 import pytest
-
 from conftest import DEMO_MODEL, DEMO_VAL, files_in, random_mlp
+
 from onnxcal import _files, _temporaries, api
 from onnxcal.errors import OnnxcalError, OnnxcalWarning
 from onnxcal.fit import FitOptions
@@ -91,7 +91,8 @@ def test_several_files_appear_all_or_none(tmp_path, monkeypatch):
     (tmp_path / "b.bin").write_bytes(b"kept")
     files = {tmp_path / "a.bin": b"A" * 100, tmp_path / "b.bin": b"B" * 100, tmp_path / "c.bin": b"C" * 100}
     _fail_nth_write(monkeypatch, 3)
-    with pytest.raises(OnnxcalError, match=r"cannot write '.*c.bin': the disk is full \(No space left on device\); free space"):
+    with pytest.raises(OnnxcalError,
+                       match=r"cannot write '.*c.bin': the disk is full \(No space left on device\); free space"):
         _files.atomic_write_files(files, replace=True)
     assert files_in(tmp_path) == {"b.bin": b"kept"}  # no new file, the old one untouched, no temporaries
     monkeypatch.undo()
@@ -118,7 +119,8 @@ def test_a_refused_temporary_file_is_a_clean_error(tmp_path, monkeypatch):
         raise PermissionError(errno.EACCES, "Permission denied")
 
     monkeypatch.setattr(tempfile, "mkstemp", refuse)
-    with pytest.raises(OnnxcalError, match=r"cannot write '.*out.bin': permission denied; write the output to a directory"):
+    with pytest.raises(OnnxcalError,
+                       match=r"cannot write '.*out.bin': permission denied; write the output to a directory"):
         _files.atomic_write_bytes(tmp_path / "out.bin", b"x")
     assert list(tmp_path.iterdir()) == []
 

@@ -8,14 +8,14 @@ import onnx
 import onnxruntime as ort
 import pytest
 import scipy.special
+from conftest import identity_model, onehot_int_model, random_mlp, save_model
 from onnx import helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 
-from conftest import identity_model, onehot_int_model, random_mlp, save_model
 from onnxcal import graph
 from onnxcal.errors import OnnxcalError
-from onnxcal.verify import folded_record_check, tolerance
 from onnxcal.scaling import Scaling
+from onnxcal.verify import folded_record_check, tolerance
 
 SHA = "0" * 64
 
@@ -418,7 +418,8 @@ def test_unpatch_restores_a_dropped_output_in_place(rng):
 def test_record_without_changes_cannot_be_undone(rng):
     patched = do_patch(random_mlp(rng), 2.0)
     record = graph.read_record(patched)
-    old = {k: v for k, v in record.to_dict().items() if k not in ("changes", "folded", "compute_dtype", "source_output")}
+    old = {k: v for k, v in record.to_dict().items() if k not in ("changes", "folded", "compute_dtype",
+                                                                  "source_output")}
     old["format"] = 1
     for p in patched.metadata_props:
         if p.key == graph.RECORD_KEY:

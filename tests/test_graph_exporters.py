@@ -66,7 +66,8 @@ FIXTURE_LIST = [
     Fixture("belt_surface_logits_op11", "belt_surface", "logits", None, 3, rank=4),
     Fixture("belt_surface_softmax_op11", "belt_surface", "probabilities", "softmax", 3, rank=4),
     Fixture("belt_tear_sigmoid_op17", "belt_tear_sigmoid_op17", "tear_probability", "sigmoid", 1, foldable=True),
-    Fixture("belt_faults_multilabel_op17", "belt_faults_multilabel_op17", "fault_probabilities", "sigmoid", 4, foldable=True),
+    Fixture("belt_faults_multilabel_op17", "belt_faults_multilabel_op17", "fault_probabilities", "sigmoid", 4,
+            foldable=True),
     Fixture("digits_logreg_tensor", "digits", "probabilities", "softmax", 10, ml=True),
     Fixture("digits_logreg_zipmap", "digits", "output_probability", "softmax", 10, ml=True),
     Fixture("wine_boosted_tensor", "wine", "probabilities", "softmax", 3, ml=True),
@@ -357,8 +358,9 @@ def test_ml_label_output_is_the_classifiers_own(models):
         patched = do_patch(model, 0.5)  # T < 1 sharpens; the argmax still stays
         label_name = patched.graph.output[0].name
         classifier = next(n for n in model.graph.node if n.domain == "ai.onnx.ml" and n.op_type.endswith("Classifier"))
-        assert any(n.SerializeToString() == classifier.SerializeToString() or
-                   (n.op_type == classifier.op_type and n.output[0] == classifier.output[0]) for n in patched.graph.node)
+        assert any(n.SerializeToString() == classifier.SerializeToString()
+                   or (n.op_type == classifier.op_type and n.output[0] == classifier.output[0])
+                   for n in patched.graph.node)
         assert not any(n.op_type in ("ArgMax", "Gather") and label_name in n.output for n in patched.graph.node)
         site = graph.find_scores(patched, fx.output)
         labels, probs = run_ort(graph.expose(patched, [site.tensor]), feed, [label_name, site.tensor])

@@ -123,7 +123,8 @@ def test_summary_holds_out_bootstraps_and_round_trips(data):
     assert s.after.nll == pytest.approx(log_loss(y[eval_rows], l1(z[eval_rows], t_part), labels=range(6)), rel=1e-9)
     assert s.after.nll < s.before.nll
     iv = s.intervals
-    assert iv["replicates_by"] == "exact" and iv["parameters"]["temperature"][0] < t_part < iv["parameters"]["temperature"][1]
+    low, high = iv["parameters"]["temperature"][0], iv["parameters"]["temperature"][1]
+    assert iv["replicates_by"] == "exact" and low < t_part < high
     back = summary_from_dict(json.loads(json.dumps(s.to_dict())))
     assert back.scaling == s.scaling and back.holdout_result.scaling.kind == "sigmoid-l1"
 

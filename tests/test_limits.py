@@ -7,9 +7,9 @@ import os
 import numpy as np
 import onnx
 import pytest
+from conftest import DEMO_MODEL, DEMO_VAL, random_mlp, save_model
 from onnx import TensorProto, helper
 
-from conftest import DEMO_MODEL, DEMO_VAL, random_mlp, save_model
 from onnxcal import _limits, api, graph
 from onnxcal.errors import OnnxcalError
 
@@ -73,7 +73,8 @@ def test_a_batch_that_does_not_fit_in_memory_is_refused_before_running(tmp_path,
 def test_symbolic_dims_are_checked_with_the_data(tmp_path, monkeypatch):
     # a declared shape [N, F] says nothing of F; the data's 600 features decide
     g = helper.make_graph(
-        [helper.make_node("ReduceMean", ["x"], ["m"], axes=[1], keepdims=1), helper.make_node("Concat", ["m", "m"], ["scores"], axis=1)],
+        [helper.make_node("ReduceMean", ["x"], ["m"], axes=[1], keepdims=1), helper.make_node("Concat", ["m", "m"],
+                                                                                              ["scores"], axis=1)],
         "sym", [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", "F"])],
         [helper.make_tensor_value_info("scores", TensorProto.FLOAT, ["N", 2])],
     )

@@ -154,7 +154,8 @@ def test_matrix_fold_into_a_gemm_equals_the_map_on_the_models_own_logits(rng):
             [helper.make_node("Gemm", ["h", "A", "c"], ["z"], transB=1)], "g",
             [helper.make_tensor_value_info("h", TensorProto.FLOAT, ["N", 5])],
             [helper.make_tensor_value_info("z", TensorProto.FLOAT, ["N", 3])],
-            [numpy_helper.from_array(weight.astype(np.float32), "A"), numpy_helper.from_array(bias.astype(np.float32), "c")],
+            [numpy_helper.from_array(weight.astype(np.float32), "A"), numpy_helper.from_array(bias.astype(np.float32),
+                                                                                              "c")],
         )
         m = helper.make_model(g, opset_imports=[helper.make_opsetid("", 13)])
         return ort.InferenceSession(m.SerializeToString(), providers=["CPUExecutionProvider"])
@@ -253,7 +254,8 @@ def test_isotonic_equals_scikit_learn_isotonic_regression(rng):
     z_new = rng.normal(scale=3.0, size=(500, 3))
     p_new = softmax(z_new)
     for k in range(3):
-        ref = IsotonicRegression(increasing=True, out_of_bounds="clip").fit(p[:, k], (y == k).astype(float), sample_weight=counts)
+        ref = IsotonicRegression(increasing=True, out_of_bounds="clip").fit(p[:, k], (y == k).astype(float),
+                                                                            sample_weight=counts)
         np.testing.assert_allclose(ours["x"][k], ref.X_thresholds_, atol=1e-12)
         np.testing.assert_allclose(ours["y"][k], ref.y_thresholds_, atol=1e-4)
         np.testing.assert_allclose(isotonic.calibrate_columns(ours, p_new)[:, k], ref.predict(p_new[:, k]), atol=1e-4)
@@ -528,7 +530,8 @@ def test_fit_improves_held_out_nll_on_a_real_model(method):
     half = len(z) // 2
     fitted = MODULES[method].fit(z[:half], y_rest[:half]).parameters
     p = MODULES[method].apply(fitted, z[half:])
-    p_true = p[np.arange(len(p)), y_rest[half:]] if p.shape[1] > 1 else np.where(y_rest[half:] == 1, p[:, 0], 1 - p[:, 0])
+    p_true = p[np.arange(len(p)), y_rest[half:]] if p.shape[1] > 1 else np.where(y_rest[half:] == 1, p[:, 0], 1 - p[:,
+                                                                                                                    0])
     before = scipy.special.expit(np.where(y_rest[half:] == 1, f[half:], -f[half:]))
     nll = lambda q: -np.log(np.clip(q, 1e-15, 1.0)).mean()  # noqa: E731
     assert nll(p_true) < nll(before)

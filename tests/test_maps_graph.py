@@ -59,7 +59,8 @@ def _params(method: str, z: np.ndarray, y: np.ndarray, rng: np.random.Generator)
 
 # Every method at every width it takes: K logits (multiclass), one (binary).
 CASES = [
-    (name, k) for name, m in MODULES.items() for k in ((K,) if "multiclass" in m.KINDS else ()) + ((1,) if "binary" in m.KINDS else ())
+    (name, k) for name, m in MODULES.items()
+    for k in ((K,) if "multiclass" in m.KINDS else ()) + ((1,) if "binary" in m.KINDS else ())
 ]
 
 
@@ -140,7 +141,8 @@ def test_names_unique_deterministic_standard_domain(method, k):
     # Names already used in a host graph are avoided.
     taken = set(first.names)
     other = mod.build("logits", "float32", k, params, taken=taken)
-    produced = [o for n in other.nodes for o in n.output] + [n.name for n in other.nodes] + [t.name for t in other.initializers]
+    produced = ([o for n in other.nodes for o in n.output] + [n.name for n in other.nodes]
+                + [t.name for t in other.initializers])
     assert not taken & set(produced)
     assert len(produced) == len(set(produced))
     # Standard operators only (ONNX operator specification, default domain).

@@ -162,7 +162,8 @@ def test_record_keeps_method_and_parameters(rng):
 def test_record_check_reads_the_map_back(rng, method, kind):
     from onnxcal.verify import record_check
 
-    model = random_mlp(rng, k=1 if kind == "binary" else K, scale=3.0, final="Sigmoid" if kind == "binary" else "Softmax")
+    model = random_mlp(rng, k=1 if kind == "binary" else K, scale=3.0,
+                       final="Sigmoid" if kind == "binary" else "Softmax")
     scaling = fitted(method, kind, rng)
     patched = do_patch(model, scaling)
     record = graph.read_record(patched)

@@ -16,12 +16,12 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 import scipy.special
+from conftest import random_mlp, save_model
 from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 from onnx import helper
 
-from conftest import random_mlp, save_model
 from onnxcal import api, graph, metrics
 from onnxcal.errors import OnnxcalError
 from onnxcal.fit import fit_sigmoid_temperature, fit_temperature

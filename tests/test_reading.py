@@ -64,7 +64,8 @@ def softmax_model(extra_outputs=(), extra_nodes=()) -> onnx.ModelProto:
                   [("probs", 1, ["N", K]), *extra_outputs])
 
 
-def data(tmp_path: Path, n: int = 300, seed: int = 0, name: str = "val.npz", t_true: float = 2.0) -> tuple[Path, np.ndarray]:
+def data(tmp_path: Path, n: int = 300, seed: int = 0, name: str = "val.npz", t_true: float = 2.0) -> tuple[Path,
+                                                                                                           np.ndarray]:
     """Inputs and labels drawn from softmax(z / t_true): an over-confident model, as in practice."""
     rng = np.random.default_rng(seed)
     x = rng.normal(size=(n, D)).astype(np.float32)
@@ -147,7 +148,8 @@ def test_log_probabilities_are_kept_log_probabilities(tmp_path):
 
 def test_a_softmax_of_probabilities_is_refused(tmp_path):
     model = _model(
-        [helper.make_node("Softmax", ["fc_out"], ["p1"], axis=1), helper.make_node("Softmax", ["p1"], ["probs"], axis=1)],
+        [helper.make_node("Softmax", ["fc_out"], ["p1"], axis=1), helper.make_node("Softmax", ["p1"], ["probs"],
+                                                                                   axis=1)],
         [("probs", 1, ["N", K])],
     )
     path = save_model(model, tmp_path / "m.onnx")
@@ -442,7 +444,8 @@ def two_heads() -> onnx.ModelProto:
         helper.make_node("Gemm", ["x", "head_b.weight", "head_b.bias"], ["head_b_out"], name="/head_b/Gemm"),
         helper.make_node("Softmax", ["head_b_out"], ["probs_b"], axis=1),
     ]
-    inits = [numpy_helper.from_array(w2, "head_b.weight"), numpy_helper.from_array(np.zeros(K, np.float32), "head_b.bias")]
+    inits = [numpy_helper.from_array(w2, "head_b.weight"), numpy_helper.from_array(np.zeros(K, np.float32),
+                                                                                   "head_b.bias")]
     return _model(nodes, [("probs_a", 1, ["N", K]), ("probs_b", 1, ["N", K])], inits)
 
 
@@ -534,7 +537,8 @@ def _qdq_model() -> onnx.ModelProto:
          helper.make_node("QuantizeLinear", ["p", "s", "zp"], ["p_q"]),
          helper.make_node("DequantizeLinear", ["p_q", "s", "zp"], ["probs"])],
         [("probs", 1, ["N", K])],
-        [numpy_helper.from_array(np.array(1 / 256, np.float32), "s"), numpy_helper.from_array(np.array(0, np.uint8), "zp")],
+        [numpy_helper.from_array(np.array(1 / 256, np.float32), "s"), numpy_helper.from_array(np.array(0, np.uint8),
+                                                                                              "zp")],
     )
 
 

@@ -445,7 +445,8 @@ XFAIL_SECOND_HEAD: dict[str, str] = {}
 
 def _model_cases(table: dict[str, str]) -> list:
     return [
-        pytest.param(m, id=m, marks=[pytest.mark.xfail(strict=True, reason=f"issue 10: {table[m]}")] if m in table else [])
+        pytest.param(m, id=m, marks=[pytest.mark.xfail(strict=True,
+                                                       reason=f"issue 10: {table[m]}")] if m in table else [])
         for m in TWO_HEAD_MODELS
     ]
 

@@ -24,10 +24,10 @@ import numpy as np
 import onnx
 import onnx.external_data_helper
 import pytest
+from conftest import DEMO_MODEL, DEMO_VAL
 from onnx import TensorProto, helper, numpy_helper
 
 import onnxcal
-from conftest import DEMO_MODEL, DEMO_VAL
 from onnxcal import api, graph
 from onnxcal.errors import OnnxcalError
 
@@ -162,7 +162,8 @@ def test_onnxcal_refuses_external_data_outside_without_onnx_checks(ext, onnx_unc
 def test_external_data_inside_the_directory_still_loads(ext, onnx_unchecked):
     model = graph.load_model(ext / "ext_good" / "model.onnx")
     assert all(t.data_location != TensorProto.EXTERNAL for t in model.graph.initializer)
-    assert graph.external_data_files(ext / "ext_good" / "model.onnx") == ((ext / "ext_good" / "model.onnx.data").resolve(),)
+    good = ext / "ext_good"
+    assert graph.external_data_files(good / "model.onnx") == ((good / "model.onnx.data").resolve(),)
 
 
 def _with_external(tensor: onnx.TensorProto, location: str) -> onnx.TensorProto:
@@ -186,7 +187,8 @@ def _function_model(tensor: onnx.TensorProto) -> onnx.ModelProto:
         [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 4])],
         [helper.make_tensor_value_info("scores", TensorProto.FLOAT, ["N", 4])],
     )
-    m = helper.make_model(g, opset_imports=[helper.make_opsetid("", 17), helper.make_opsetid("local.belt", 1)], functions=[fn])
+    m = helper.make_model(g, opset_imports=[helper.make_opsetid("", 17), helper.make_opsetid("local.belt", 1)],
+                          functions=[fn])
     m.ir_version = 8
     return m
 
@@ -272,7 +274,8 @@ def test_escape_sequences_in_a_model_are_shown_not_obeyed(tmp_path, run_cli):
     model.ir_version = 8
     path = tmp_path / "hostile.onnx"
     path.write_bytes(model.SerializeToString())
-    for args in (["inspect", path], ["inspect", path, "--json"], ["patch", path, "--temperature", "2", "--output", "nope", "--out", tmp_path / "p.onnx"]):
+    for args in (["inspect", path], ["inspect", path, "--json"], ["patch", path, "--temperature", "2", "--output",
+                                                                  "nope", "--out", tmp_path / "p.onnx"]):
         r = run_cli(*args)
         assert "\x1b" not in r.out + r.err and "\x07" not in r.out + r.err
     assert "probs\\x1b]0;pwned\\x07" in run_cli("inspect", path).out.replace("\n", "")  # shown, escaped

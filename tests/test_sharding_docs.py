@@ -22,10 +22,10 @@ from typing import Any
 
 import numpy as np
 import pytest
-
 from conftest import DEMO_MODEL, DEMO_VAL, CliResult
-from onnxcal.capture import load_captures
 from slurm_cluster import ClusterUnavailable, SlurmCluster, start_cluster
+
+from onnxcal.capture import load_captures
 
 DOC = Path(__file__).resolve().parents[1] / "docs" / "sharding.md"
 SHARDS = 16  # as in the doc's examples

@@ -266,7 +266,8 @@ def do_patch(model, t=T, **kw):
 def test_the_finder_reads_each_spelling(name):
     case = CASES[name]()
     site = graph.find_scores(case.model)
-    assert (site.output, site.scores, site.spelling, site.holds) == (case.output, case.logits, case.spelling, case.holds)
+    assert (site.output, site.scores, site.spelling, site.holds) == (case.output, case.logits, case.spelling,
+                                                                     case.holds)
     assert site.scores_axis == 1 and site.num_classes == K
     assert [type(p) for p in site.post] == list(case.post_kinds)
     assert site.output in graph.describe_site(site)
@@ -278,7 +279,8 @@ def test_each_spelling_is_patched_drop_in_and_matches_scipy(name, runner, x):
     case = CASES[name]()
     patched = do_patch(case.model)
     # Drop-in: the same outputs (names, element types, shapes).
-    assert [o.SerializeToString() for o in patched.graph.output] == [o.SerializeToString() for o in case.model.graph.output]
+    outputs = [o.SerializeToString() for o in case.model.graph.output]
+    assert [o.SerializeToString() for o in patched.graph.output] == outputs
     (got,) = runner(patched, x, [case.output])
     want = case.reference(logits_of(x) / T)
     gain = 100.0 if post.Scale in case.post_kinds else 1.0
@@ -306,7 +308,8 @@ def test_l1_normalised_sigmoids_are_scaled_where_the_logits_enter(kind, x):
     small T gives no 0 / 0 (onnxruntime's float32 Sigmoid is 0 below about -17: measured)."""
     case = post_case(kind)
     site = graph.find_scores(case.model)
-    assert (site.spelling, site.logits_from, site.scores, site.post) == ("sigmoid", "tensor", "fc_out", (post.Normalize(),))
+    assert (site.spelling, site.logits_from, site.scores, site.post) == ("sigmoid", "tensor", "fc_out",
+                                                                         (post.Normalize(),))
     assert graph.fit_kind(site) == "sigmoid-l1" and "then L1-normalised" in graph.describe_site(site)
     z = logits_of(x)
     t = 0.05  # z / T reaches below -100 on these rows

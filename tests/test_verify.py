@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 import scipy.special
 
-from onnxcal.scaling import Scaling
 from onnxcal.graph import FoldedValues
+from onnxcal.scaling import Scaling
 from onnxcal.verify import compare, folded_record_check, record_check, reference_probabilities, source_check
 
 

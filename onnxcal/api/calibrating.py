@@ -75,7 +75,7 @@ class _Source:
     """The model being calibrated, its data and how to run it."""
 
     model: onnx.ModelProto
-    path: str | os.PathLike
+    path: str | os.PathLike[str]
     sha: str
     dataset: Dataset
     run: RunOptions
@@ -175,9 +175,9 @@ def _report_files(
 
 @one_command
 def calibrate(
-    model_path: str | os.PathLike,
+    model_path: str | os.PathLike[str],
     data: DataSource,
-    out: str | os.PathLike,
+    out: str | os.PathLike[str],
     *,
     output: str | None = None,
     output_name: str = graph.DEFAULT_OUTPUT_NAME,
@@ -192,7 +192,7 @@ def calibrate(
     force: bool = False,
     progress: ProgressFn | None = None,
     options: FitOptions = FitOptions(),
-    report: str | os.PathLike | None = None,
+    report: str | os.PathLike[str] | None = None,
     drop_nonfinite: bool = False,
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
     output_holds: str | None = None,
@@ -206,8 +206,8 @@ def calibrate(
     (and, with its parameters at the identity, against the original's own
     outputs) before it is written; when a check fails nothing is written and
     ``result.patch`` is None. A model already calibrated by onnxcal may
-    have another output calibrated (``output``); each has its own record. ``data`` and ``batch_size`` ... ``provider``: as
-    for :func:`capture`; ``output`` ... ``fold``: see :class:`PatchOptions`;
+    have another output calibrated (``output``); each has its own record. ``data`` and ``batch_size`` ...
+    ``provider``: as for :func:`capture`; ``output`` ... ``fold``: see :class:`PatchOptions`;
     ``options`` are those of :func:`fit`. With ``report`` (a directory),
     every file of :func:`report` is written there too, with the
     verification, also when it failed. The model and the report are written

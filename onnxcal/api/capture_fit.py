@@ -6,6 +6,7 @@ import os
 import warnings
 from collections.abc import Sequence
 from dataclasses import replace
+from typing import Any
 
 from .. import graph
 from .. import reading as _reading
@@ -31,7 +32,7 @@ from .common import (
 )
 
 
-def inspect(model_path: str | os.PathLike, *, max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES) -> ModelInfo:
+def inspect(model_path: str | os.PathLike[str], *, max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES) -> ModelInfo:
     """Describe a model: inputs, outputs, opset, class-score output, record.
 
     ``max_model_bytes`` (an int or a size such as ``"8GiB"``): larger model
@@ -45,10 +46,10 @@ def inspect(model_path: str | os.PathLike, *, max_model_bytes: int | str = DEFAU
 
 @one_command
 def capture(
-    model_path: str | os.PathLike,
+    model_path: str | os.PathLike[str],
     data: DataSource,
     *,
-    out: str | os.PathLike | None = None,
+    out: str | os.PathLike[str] | None = None,
     output: str | None = None,
     batch_size: int | None = None,
     threads: int = 0,
@@ -166,9 +167,9 @@ def check_fit_options(options: FitOptions) -> FitOptions:
 
 @one_command
 def fit(
-    source: Capture | str | os.PathLike | Sequence[str | os.PathLike],
+    source: Capture | str | os.PathLike[str] | Sequence[str | os.PathLike[str]],
     *,
-    out: str | os.PathLike | None = None,
+    out: str | os.PathLike[str] | None = None,
     force: bool = False,
     options: FitOptions = FitOptions(),
     drop_nonfinite: bool = False,
@@ -214,7 +215,7 @@ def summarize_capture(cap: Capture, options: FitOptions) -> FitSummary:
     return replace(summary, warnings=(*summary.warnings, *bound)) if bound else summary
 
 
-def _bound_warnings(intervals: dict | None) -> list[str]:
+def _bound_warnings(intervals: dict[str, Any] | None) -> list[str]:
     """Warnings for bootstrap intervals of T that reach the fit's search bounds.
 
     A replicate whose resampled fit part is (nearly) separated perfectly
@@ -244,5 +245,5 @@ def _bound_warnings(intervals: dict | None) -> list[str]:
     return out
 
 
-def _capture_paths(source: str | os.PathLike | Sequence[str | os.PathLike]) -> list:
+def _capture_paths(source: str | os.PathLike[str] | Sequence[str | os.PathLike[str]]) -> list[Any]:
     return [source] if isinstance(source, (str, os.PathLike)) else list(source)

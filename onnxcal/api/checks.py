@@ -86,7 +86,8 @@ def record_checks(
     if source_sha is None:
         checks.append(
             skipped(
-                "source", f"no original model or scores to compare with the record's sha256 {record.source_sha256[:12]}..."
+                "source",
+                f"no original model or scores to compare with the record's sha256 {record.source_sha256[:12]}...",
             )
         )
     else:

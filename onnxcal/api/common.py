@@ -8,6 +8,7 @@ import os
 import warnings
 from dataclasses import replace
 from pathlib import Path
+from typing import Any
 
 from .. import graph
 from .. import reading as _reading
@@ -41,7 +42,8 @@ def finite_capture(cap: Capture, source: str, drop: bool) -> tuple[Capture, str 
     if bad.count == len(cap.logits):
         raise OnnxcalError(f"{what}: every row, so nothing is left to work on", "check the model and its inputs")
     if not drop:
-        raise OnnxcalError(what, "check the model and the inputs of those rows, or pass --drop-nonfinite to leave them out")
+        raise OnnxcalError(what,
+                           "check the model and the inputs of those rows, or pass --drop-nonfinite to leave them out")
     rows = len(cap.logits) - bad.count
     check_memory(rows * cap.logits.shape[1] * 4, f"a copy of the logits of the {rows} rows kept", "use --limit")
     kept = without_nonfinite(cap)
@@ -56,12 +58,12 @@ def warn_nonfinite_inputs(cap: Capture, source: str) -> None:
         )
 
 
-def model_files(model_path, limit: int) -> list:
+def model_files(model_path, limit: int) -> list[Any]:
     """A model file and its external data files: inputs that no output may be."""
     return [model_path, *graph.external_data_files(model_path, max_bytes=limit)]
 
 
-DataSource = str | os.PathLike | DataSpec
+DataSource = str | os.PathLike[str] | DataSpec
 """A validation set: a path (``.npz``, ``.npy``, ``.csv`` or an image folder) or a DataSpec."""
 
 
@@ -118,7 +120,7 @@ def with_note(summary: FitSummary, note: str | None) -> FitSummary:
     return summary if note is None else replace(summary, notes=(*summary.notes, note))
 
 
-def as_paths(value) -> list:
+def as_paths(value) -> list[Any]:
     if value is None:
         return []
     if isinstance(value, (str, os.PathLike)):
@@ -135,7 +137,7 @@ def file_only_sha256(model_path) -> str | None:
     return sha256_file(model_path) if graph.external_data_files(model_path) else None
 
 
-def check_model_outputs(out, inputs: list, model_path, force: bool, limit: int) -> bool:
+def check_model_outputs(out, inputs: list[Any], model_path, force: bool, limit: int) -> bool:
     """Check ``out`` (and, for a model with external data, ``out``.data); True if external.
 
     Neither may be one of ``inputs`` or of the model's external data files.

@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -13,10 +14,10 @@ from .. import reading as _reading
 from .._files import one_command
 from .._limits import DEFAULT_MAX_MODEL_BYTES
 from .._numeric import check_in_dtype
-from ..errors import OnnxcalError
 from ..data import DataSpec
-from ..fit import FitSummary, load_fit
 from ..decisions.plan import NO_DECISIONS, DecisionOptions, Decisions
+from ..errors import OnnxcalError
+from ..fit import FitSummary, load_fit
 from ..graph import Record
 from ..scaling import Scaling
 from . import deciding
@@ -72,7 +73,8 @@ class PatchOptions:
     output_holds: str | None = None
     score_columns: str | None = None
 
-    def patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict, reading: dict | None = None,
+    def patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict[str, Any],
+              reading: dict[str, Any] | None = None,
               fitted_on: str = "", largest_logit=None):
         """``graph.patch`` with these options, its parameters checked against the dtype the graph
         computes them in (and, given ``largest_logit``, against the logits seen; see ``_numeric``).
@@ -84,7 +86,8 @@ class PatchOptions:
             check_in_dtype(record.scaling, dtype, largest_logit=largest_logit)
         return patched
 
-    def _patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict, reading: dict | None,
+    def _patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict[str, Any],
+               reading: dict[str, Any] | None,
                fitted_on: str):
         if reading is None:
             reading = {} if self.output_holds is None else {"holds": self.output_holds, "holds_from": "stated"}
@@ -107,7 +110,7 @@ class PatchOptions:
         )
 
 
-def _portable(fit: dict) -> dict:
+def _portable(fit: dict[str, Any]) -> dict[str, Any]:
     """A fit summary without the user's directories: file names only (the record goes inside the model)."""
     capture = fit.get("capture")
     if not isinstance(capture, dict):
@@ -127,8 +130,8 @@ def _name(text: str) -> str:
 
 
 def _resolve_scaling(
-    temperature: float | None, fit_source: FitSummary | str | os.PathLike | None
-) -> tuple[float | Scaling, dict]:
+    temperature: float | None, fit_source: FitSummary | str | os.PathLike[str] | None
+) -> tuple[float | Scaling, dict[str, Any]]:
     if (temperature is None) == (fit_source is None):
         raise OnnxcalError("give exactly one of --temperature and --fit")
     if temperature is not None:
@@ -139,11 +142,11 @@ def _resolve_scaling(
 
 @one_command
 def patch(
-    model_path: str | os.PathLike,
-    out: str | os.PathLike,
+    model_path: str | os.PathLike[str],
+    out: str | os.PathLike[str],
     *,
     temperature: float | None = None,
-    fit: FitSummary | str | os.PathLike | None = None,
+    fit: FitSummary | str | os.PathLike[str] | None = None,
     output: str | None = None,
     output_name: str = graph.DEFAULT_OUTPUT_NAME,
     drop_logits: bool = False,
@@ -225,7 +228,7 @@ def patch(
     return PatchResult(path=str(out), record=graph.read_record(patched, output), decisions=chosen)
 
 
-def _provenance(fit_dict: dict, fit, model_path, sha: str, records, twin: bool) -> str:
+def _provenance(fit_dict: dict[str, Any], fit, model_path, sha: str, records, twin: bool) -> str:
     """The sha256 of the twin the fit was made on ("" for this model); a fit of another model is refused.
 
     The fit's capture names the model it ran (sha256). It may be this file,

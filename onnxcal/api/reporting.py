@@ -6,6 +6,7 @@ import os
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 from .. import graph
 from .._files import (
@@ -61,14 +62,14 @@ def report_targets(directory, formats, inputs, force: bool, option: str) -> list
     return targets
 
 
-def report_files(directory, content: dict, formats) -> tuple[dict[Path, bytes], ReportResult]:
+def report_files(directory, content: dict[str, Any], formats) -> tuple[dict[Path, bytes], ReportResult]:
     """Every file of a report, rendered in memory, and the result that describes them."""
     d = Path(directory)
     files = {d / name: data for name, data in render_report(content, formats).items()}
     return files, ReportResult(directory=str(d), files=tuple(map(str, files)), content=content)
 
 
-def _write_report(directory, content: dict, formats) -> ReportResult:
+def _write_report(directory, content: dict[str, Any], formats) -> ReportResult:
     """Render every file in memory, then write them together (a new directory is removed again if writing fails)."""
     files, result = report_files(directory, content, formats)
     atomic_write_files(files)
@@ -145,8 +146,8 @@ class _Calibration:
     summary: FitSummary | None
     source_sha: str | None  # the sha256 of the model they were made for, when known
     what: str  # how messages name them
-    calibrated: dict | None = None  # the patched model given with --model: name, path, sha256
-    decisions: dict | None = None  # its record's decisions section (docs/decisions.md)
+    calibrated: dict[str, Any] | None = None  # the patched model given with --model: name, path, sha256
+    decisions: dict[str, Any] | None = None  # its record's decisions section (docs/decisions.md)
 
 
 def _calibration_of(temperature: float | None, fit, model, cap: Capture, limit: int) -> _Calibration:
@@ -167,14 +168,14 @@ def _calibration_of(temperature: float | None, fit, model, cap: Capture, limit: 
 
 @one_command
 def report(
-    captures: Capture | str | os.PathLike | Sequence[str | os.PathLike],
-    out: str | os.PathLike,
+    captures: Capture | str | os.PathLike[str] | Sequence[str | os.PathLike[str]],
+    out: str | os.PathLike[str],
     *,
     temperature: float | None = None,
-    fit: FitSummary | str | os.PathLike | None = None,
-    model: str | os.PathLike | None = None,
+    fit: FitSummary | str | os.PathLike[str] | None = None,
+    model: str | os.PathLike[str] | None = None,
     formats: str | Sequence[str] = FORMATS,
-    class_names: str | os.PathLike | Sequence[str] | None = None,
+    class_names: str | os.PathLike[str] | Sequence[str] | None = None,
     n_bins: int | None = None,
     force: bool = False,
     drop_nonfinite: bool = False,
@@ -257,7 +258,8 @@ def _record_of(model_path, limit: int) -> Record:
     record = graph.read_record(model)
     if record is None:
         raise OnnxcalError(
-            f"'{model_path}' has no onnxcal calibration record", "give a model written by 'onnxcal patch' or 'calibrate'"
+            f"'{model_path}' has no onnxcal calibration record",
+            "give a model written by 'onnxcal patch' or 'calibrate'",
         )
     graph.check_record(model, record, f"'{model_path}'")
     if not record.folded:

@@ -7,6 +7,7 @@ import time
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import onnx
@@ -71,8 +72,10 @@ class _Reference:
     file_only_sha: str | None = None  # the original's .onnx file alone, when it has external data
 
 
-def _reference(patched, patched_path, record: Record, dataset, cap, original, base, score_paths, run, progress) -> _Reference:
-    """The original's logits: captured (``--scores``), run (``--original``, loaded as ``base``), or the patched graph's own."""
+def _reference(patched, patched_path, record: Record, dataset, cap, original, base, score_paths, run,
+               progress) -> _Reference:
+    """The original's logits: captured (``--scores``), run (``--original``, loaded as ``base``), or the patched
+    graph's own."""
     if cap is not None:
         return _Reference(cap.logits, "scores", ", ".join(map(str, score_paths)), cap.meta.model_sha256, None)
     if base is not None:
@@ -197,7 +200,7 @@ def _latency(base, patched, dataset: Dataset, run: RunOptions, runs: int, max_ra
 
 def _threshold_checks(
     rows, activation, site, dataset: Dataset, cap: Capture | None, n_bins, limits, keep=None, record=None
-) -> tuple:
+) -> tuple[Any, ...]:
     """Check (4): metrics of the patched model's own outputs against the labels (the rows ``keep`` only).
 
     Post-processing the output carries (x100, one class of two) is undone
@@ -284,13 +287,13 @@ class _Gate:
 class _Target:
     """What verify checks and against what: the patched model, its records, the data, the reference's source."""
 
-    path: str | os.PathLike
+    path: str | os.PathLike[str]
     model: onnx.ModelProto
     records: tuple[Record, ...]
     dataset: Dataset
     cap: Capture | None  # --scores, loaded
-    score_paths: tuple[str | os.PathLike, ...]
-    original: str | os.PathLike | None  # --original, or the recorded original beside the patched model
+    score_paths: tuple[str | os.PathLike[str], ...]
+    original: str | os.PathLike[str] | None  # --original, or the recorded original beside the patched model
     why_not: str | None  # why a file beside the patched model was not taken for the original
     limit: int
 
@@ -321,8 +324,9 @@ def _recorded_capture(records: tuple[Record, ...]) -> dict[str, object] | None:
 
 
 def _load_target(
-    patched_path: str | os.PathLike, spec: DataSpec, original: str | os.PathLike | None, score_paths: list,
-    junit: str | os.PathLike | None, force: bool, max_model_bytes: int | str, run: RunOptions,
+    patched_path: str | os.PathLike[str], spec: DataSpec, original: str | os.PathLike[str] | None,
+    score_paths: list[Any],
+    junit: str | os.PathLike[str] | None, force: bool, max_model_bytes: int | str, run: RunOptions,
 ) -> _Target:
     """The patched model, its data and the reference's source, loaded; ``junit`` checked before any run."""
     if original is not None and score_paths:
@@ -408,11 +412,11 @@ def _latency_reference(target: _Target, ref: _Reference) -> onnx.ModelProto:
 
 @one_command
 def verify(
-    patched_path: str | os.PathLike,
+    patched_path: str | os.PathLike[str],
     data: DataSource,
     *,
-    original: str | os.PathLike | None = None,
-    scores: str | os.PathLike | Sequence[str | os.PathLike] | None = None,
+    original: str | os.PathLike[str] | None = None,
+    scores: str | os.PathLike[str] | Sequence[str | os.PathLike[str]] | None = None,
     max_ece: float | None = None,
     max_nll: float | None = None,
     min_accuracy: float | None = None,
@@ -420,7 +424,7 @@ def verify(
     latency: bool = False,
     max_latency_ratio: float | None = None,
     latency_runs: int = DEFAULT_LATENCY_RUNS,
-    junit: str | os.PathLike | None = None,
+    junit: str | os.PathLike[str] | None = None,
     force: bool = False,
     batch_size: int | None = None,
     threads: int = 0,

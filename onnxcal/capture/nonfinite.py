@@ -68,7 +68,7 @@ class InputWatch:
         """Test what is pending."""
         if not self._pending:
             return
-        for i, name in enumerate(self._floats):
+        for i, name in enumerate(self._floats or ()):
             parts = [arrays[i] for arrays in self._pending]
             block = parts[0] if len(parts) == 1 else np.concatenate(parts)
             if not block.size or _surely_finite(block):

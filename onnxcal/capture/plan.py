@@ -74,7 +74,7 @@ class RunPlan:
     recurrent state 1 x N x H), along which batches are cut and joined.
     """
 
-    session: object
+    session: Any  # an onnxruntime.InferenceSession (onnxruntime ships no type hints)
     names: tuple[str, ...]
     dtypes: Mapping[str, str | None]
     step: int
@@ -140,7 +140,7 @@ def check_input_memory(model: onnx.ModelProto, batch_size: int, dataset: Dataset
         return
     total = sum(n[0] for n in needs)
     _, per_sample, batch, spec, where = max(needs, key=lambda n: n[0])
-    shape = "[" + ", ".join("?" if d is None else str(d) for d in spec.shape) + "]"
+    shape = "[" + ", ".join("?" if d is None else str(d) for d in spec.shape or ()) + "]"
     check_memory(
         total,
         f"a batch of {batch} samples of input '{spec.name}' (shape {shape} {where}, {spec.dtype}, "
@@ -161,7 +161,7 @@ def plan_run(
     axes = tuple(out_axes)
     options = options or RunOptions()
     grow = options.batch_size is None
-    batch = DEFAULT_BATCH if grow else options.batch_size
+    batch = DEFAULT_BATCH if options.batch_size is None else options.batch_size
     check_input_memory(model, batch, dataset)
     session = make_session(model, options)
     dtypes = _dtypes(model, session)

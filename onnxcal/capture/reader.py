@@ -10,14 +10,14 @@ from dataclasses import replace
 
 import numpy as np
 
-from .._files import require_file
+from .._paths import require_file
 from ..data import read_npz
 from ..errors import OnnxcalError, OnnxcalWarning, first_line
 from .result import Capture, CaptureMeta
 from .rows import label_rows
 
 
-def load_capture(path: str | os.PathLike) -> Capture:
+def load_capture(path: str | os.PathLike[str]) -> Capture:
     """Read a capture file written by :func:`capture` or :func:`save_capture`.
 
     The logits are a read-only memory map of the file.
@@ -157,8 +157,8 @@ def _samples_in_order(captures: Sequence[Capture], sources: Sequence[str], membe
 def _check_coverage(parts: Sequence[Capture], sources: Sequence[str]) -> None:
     """Shards i/N of one set, all present, must cover it; warn when some are missing."""
     metas = [c.meta for c in parts]
-    shards = [m.shard for m in metas]
-    if any(s is None for s in shards) or any(m.limit is not None for m in metas):
+    shards = [m.shard for m in metas if m.shard is not None]
+    if len(shards) < len(metas) or any(m.limit is not None for m in metas):
         return
     counts = {int(s.split("/")[1]) for s in shards}
     seeds = {m.shuffle_seed for m in metas}
@@ -190,7 +190,7 @@ def _short(value: object) -> str:
     return text[:12] + "..." if len(text) > 15 else text
 
 
-def load_captures(paths: str | os.PathLike | Sequence[str | os.PathLike]) -> Capture:
+def load_captures(paths: str | os.PathLike[str] | Sequence[str | os.PathLike[str]]) -> Capture:
     """Load one capture file, or several merged into one (see :func:`merge_captures`)."""
     if isinstance(paths, (str, os.PathLike)):
         paths = [paths]

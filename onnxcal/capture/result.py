@@ -5,7 +5,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import asdict, dataclass, field
-from typing import ClassVar
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -93,7 +93,7 @@ class CaptureMeta:
     shard: str | None = None
     limit: int | None = None
     shuffle_seed: int | None = None
-    preprocess: dict | None = None
+    preprocess: dict[str, Any] | None = None
     batching: str = ""
     merged_from: tuple[str, ...] = ()
     holds: str = ""
@@ -103,11 +103,11 @@ class CaptureMeta:
     constants: dict[str, str] = field(default_factory=dict)
     batch_axes: dict[str, int] = field(default_factory=dict)
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return asdict(self)
 
     @classmethod
-    def from_dict(cls, data: dict) -> CaptureMeta:
+    def from_dict(cls, data: dict[str, Any]) -> CaptureMeta:
         """Inverse of :meth:`to_dict` (JSON lists back to tuples)."""
         data = dict(data)
         for key in ("class_names", "merged_from"):

@@ -41,7 +41,8 @@ def log_probabilities(p: np.ndarray) -> np.ndarray:
     class (common practice). ``tiny`` is the dtype's smallest normal number.
     (Capture builds the same in the graph, ``graph.expose_scores``.)
     """
-    return np.log(np.maximum(p, np.finfo(p.dtype).tiny))
+    logp: np.ndarray = np.log(np.maximum(p, np.finfo(p.dtype).tiny))
+    return logp
 
 
 def label_rows(labels: np.ndarray, shape: tuple[int, int], kind: str, source: str) -> np.ndarray:

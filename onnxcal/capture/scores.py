@@ -94,13 +94,13 @@ def capture(
     model: onnx.ModelProto,
     dataset: Dataset,
     *,
-    model_path: str | os.PathLike,
+    model_path: str | os.PathLike[str],
     model_sha256: str,
     output: str | None = None,
     batch_size: int | None = None,
     options: RunOptions | None = None,
     progress: ProgressFn | None = None,
-    out: str | os.PathLike | None = None,
+    out: str | os.PathLike[str] | None = None,
     activation: str | None = None,
     site: ScoreSite | None = None,
     check: Callable[[RowStats], None] | None = None,
@@ -140,6 +140,7 @@ def capture(
     """
     if dataset.labels is None:
         raise OnnxcalError(f"'{dataset.source}' has no labels", "add a 'labels' array")
+    given: np.ndarray = dataset.labels
     options = resolve_options(options, batch_size)
     site = site if site is not None else find_scores(model, output)
     kind = fit_kind(site, activation)
@@ -153,8 +154,10 @@ def capture(
         return found
 
     def finish(sink: Rows, mode: str) -> tuple[np.ndarray, CaptureMeta]:
-        checked = labels is not None and (len(labels), site.num_classes) == (sink.total, sink.k)
-        final = labels if checked else label_rows(dataset.labels, (sink.total, sink.k), kind, dataset.source)
+        if labels is not None and (len(labels), site.num_classes) == (sink.total, sink.k):
+            final = labels  # checked before the run
+        else:
+            final = label_rows(given, (sink.total, sink.k), kind, dataset.source)
         _check_class_names(dataset, sink.k, kind)
         return final, _meta(dataset, site, sink, mode, kind, model_path, model_sha256)
 
@@ -175,9 +178,9 @@ def capture(
 def _labels_before_the_run(dataset: Dataset, site: ScoreSite, kind: str) -> np.ndarray | None:
     """Class-index labels checked against the model's K before anything runs (None when the rows
     must be seen first), and the class list against K."""
-    labels = None
-    if site.num_classes is not None and kind != "sigmoid" and np.ndim(dataset.labels) == 1:  # class indices
-        labels = check_labels(dataset.labels, dataset.n, site.num_classes, dataset.source)
+    labels, given = None, dataset.labels
+    if site.num_classes is not None and kind != "sigmoid" and given is not None and np.ndim(given) == 1:  # indices
+        labels = check_labels(given, dataset.n, site.num_classes, dataset.source)
     if site.num_classes is not None:
         _check_class_names(dataset, site.num_classes, kind)
     return labels
@@ -194,7 +197,7 @@ def _check_class_names(dataset: Dataset, k: int, kind: str) -> None:
 
 
 def _meta(
-    dataset: Dataset, site: ScoreSite, sink: Rows, mode: str, kind: str, path: str | os.PathLike, sha: str
+    dataset: Dataset, site: ScoreSite, sink: Rows, mode: str, kind: str, path: str | os.PathLike[str], sha: str
 ) -> CaptureMeta:
     sel = dataset.selection
     return CaptureMeta(

@@ -74,7 +74,8 @@ def onnxruntime() -> ModuleType:
     with _signals.deferred():  # a signal inside an extension module's import can crash it
         import onnxruntime as ort
 
-    return ort
+    module: ModuleType = ort
+    return module
 
 
 def check_run_options(options: RunOptions) -> RunOptions:

@@ -8,7 +8,7 @@ import os
 import zipfile
 from collections.abc import Callable, Iterator
 from pathlib import Path
-from typing import TypeVar
+from typing import IO, TypeVar
 
 import numpy as np
 
@@ -90,16 +90,17 @@ class NpyRows(Rows):
     def __init__(self, samples: int, archive: zipfile.ZipFile) -> None:
         super().__init__(samples)
         self.archive = archive
-        self.fh = None
+        self.fh: IO[bytes] | None = None
         self.held = 0
 
     def _open(self) -> None:
-        self.fh = self.archive.open("logits.npy", "w", force_zip64=True)
+        self.fh = fh = self.archive.open("logits.npy", "w", force_zip64=True)
         header = {"descr": "<f4", "fortran_order": False, "shape": (self.total, self.k)}
-        np.lib.format.write_array_header_1_0(self.fh, header)
+        np.lib.format.write_array_header_1_0(fh, header)
         self.buffer = np.empty((max(1, self.BUFFER_BYTES // (4 * self.k)), self.k), dtype="<f4")
 
     def _write(self, rows: np.ndarray) -> None:
+        assert self.fh is not None  # opened by _open before the first rows
         if self.held + len(rows) > len(self.buffer):
             self._flush()
         if len(rows) > len(self.buffer):
@@ -110,6 +111,7 @@ class NpyRows(Rows):
 
     def _flush(self) -> None:
         if self.held:
+            assert self.fh is not None  # rows are held only once it is open
             self.fh.write(self.buffer[: self.held].data)
             self.held = 0
 
@@ -144,7 +146,7 @@ class NpyRows(Rows):
 
 
 @contextlib.contextmanager
-def open_archive(path: str | os.PathLike) -> Iterator[zipfile.ZipFile]:
+def open_archive(path: str | os.PathLike[str]) -> Iterator[zipfile.ZipFile]:
     """A capture file open for writing: an uncompressed zip written atomically (see ``_files.atomic_path``)."""
     with atomic_path(Path(path)) as tmp, zipfile.ZipFile(tmp, "w", zipfile.ZIP_STORED, allowZip64=True) as zf:
         yield zf
@@ -165,7 +167,7 @@ def write_tail(
     _write_member(zf, "meta", np.array(json.dumps(meta.to_dict(), sort_keys=True)))
 
 
-def save_capture(path: str | os.PathLike, cap: Capture) -> None:
+def save_capture(path: str | os.PathLike[str], cap: Capture) -> None:
     """Write a capture file atomically."""
     with open_archive(path) as zf:
         _write_member(zf, "logits", np.asarray(cap.logits, dtype=np.float32))

@@ -11,11 +11,11 @@ import traceback
 import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import Annotated, Any
+from typing import Annotated, Any, TextIO
 
 import typer
 
-from .. import __version__, _files, _runenv, _signals
+from .. import __version__, _paths, _runenv, _signals
 from ..errors import OnnxcalError, OnnxcalWarning
 from . import commands, console
 from .console import err, out, printable, warn
@@ -77,11 +77,14 @@ _register(commands.report)
 _register(commands.calibrate)
 
 
-def _one_line(text: str) -> str:
+def _one_line(text: object) -> str:
     return " ".join(str(text).split())
 
 
-def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+def _show_warning(
+    message: Warning | str, category: type[Warning], filename: str, lineno: int, file: TextIO | None = None,
+    line: str | None = None,
+) -> None:
     """Every warning as one 'warning:' line on stderr: onnxcal's as they are, a library's
     (numpy's RuntimeWarning, say) with its category, without Python's source line."""
     if issubclass(category, OnnxcalWarning):
@@ -114,7 +117,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     debug = "--debug" in args
     if debug:  # accept --debug anywhere on the line
         args = ["--debug"] + [a for a in args if a != "--debug"]
-    with _signals.interrupting(), _files.command() as run:
+    with _signals.interrupting(), _paths.command() as run:
         try:
             with warnings.catch_warnings(), _runenv.private_caches(), _runenv.one_line_logging(lambda m: warn([m])):
                 warnings.simplefilter("always", OnnxcalWarning)
@@ -145,7 +148,7 @@ def _report_failure(exc: BaseException, debug: bool, written: Sequence[Path], ar
         return exc.exit_code
     if isinstance(exc, typer.TyperException):  # bad usage: the parser's message, on one line too
         if type(exc).__name__ == "NoArgsIsHelpError":  # 'onnxcal' alone: the help
-            exc.show()
+            exc.show()  # type: ignore[attr-defined]  # click's NoArgsIsHelpError is a UsageError, which shows
             return 2
         ctx = getattr(exc, "ctx", None)
         message = exc.format_message() if hasattr(exc, "format_message") else str(exc)

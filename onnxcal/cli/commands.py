@@ -6,7 +6,7 @@ the typer app (the function's name is the command's, its docstring the help).
 
 
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated, Any, Optional
+from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
 
@@ -132,7 +132,8 @@ def fit(
         typer.Argument(help="Capture file(s) from 'onnxcal capture'; several (e.g. shards) are merged.",
                        metavar="LOGITS.npz...", show_default=False),
     ],
-    out_path: Annotated[Optional[Path], typer.Option("--out", help="Write the fit to this JSON file.", metavar="FIT.json")] = None,
+    out_path: Annotated[Path | None, typer.Option("--out", help="Write the fit to this JSON file.",
+                                                  metavar="FIT.json")] = None,
     method: MethodOpt = "temperature",
     multilabel: MultilabelOpt = None,
     l2: L2Opt = 0.0,
@@ -171,9 +172,11 @@ def fit(
 
 def patch(
     model: ModelArg,
-    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False, metavar="OUT.onnx")],
-    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to bake in.", metavar="T")] = None,
-    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.", metavar="FIT.json")] = None,
+    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False,
+                                           metavar="OUT.onnx")],
+    temperature: Annotated[float | None, typer.Option("--temperature", help="T to bake in.", metavar="T")] = None,
+    fit_file: Annotated[Path | None, typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.",
+                                                  metavar="FIT.json")] = None,
     output: OutputOpt = None,
     output_name: OutputNameOpt = DEFAULT_OUTPUT_NAME,
     drop_logits: DropLogitsOpt = False,
@@ -245,12 +248,12 @@ VERIFY_EPILOG = (
 def verify(
     patched: Annotated[Path, typer.Argument(help="Patched model.", show_default=False, metavar="PATCHED")],
     original: Annotated[
-        Optional[Path],
+        Path | None,
         typer.Option("--original", help="The uncalibrated model (default: the path in the record).",
                      metavar="MODEL"),
     ] = None,
     scores: Annotated[
-        Optional[list[Path]],
+        list[Path] | None,
         typer.Option(
             "--scores",
             help="Capture file of the original model on the same data, instead of running it "
@@ -260,29 +263,31 @@ def verify(
         ),
     ] = None,
     max_ece: Annotated[
-        Optional[float],
+        float | None,
         typer.Option("--max-ece", help="Fail when the patched model's ECE on the labels is above this.",
                      metavar="X", rich_help_panel=CHECKS_PANEL)
     ] = None,
     max_nll: Annotated[
-        Optional[float],
+        float | None,
         typer.Option("--max-nll", help="Fail when its NLL on the labels is above this.", metavar="X",
                      rich_help_panel=CHECKS_PANEL)
     ] = None,
     min_accuracy: Annotated[
-        Optional[float],
+        float | None,
         typer.Option("--min-accuracy", help="Fail when its accuracy on the labels is below this.", metavar="X",
                      rich_help_panel=CHECKS_PANEL)
     ] = None,
     bins: BinsOpt = DEFAULT_BINS,
     latency: Annotated[
         bool,
-        typer.Option("--latency", help="Time the patched model against the original, alternating runs; report the ratio.",
+        typer.Option("--latency",
+                     help="Time the patched model against the original, alternating runs; report the ratio.",
                      rich_help_panel=CHECKS_PANEL),
     ] = False,
     max_latency_ratio: Annotated[
-        Optional[float],
-        typer.Option("--max-latency-ratio", help="Fail when median patched / original latency is above this (implies --latency).",
+        float | None,
+        typer.Option("--max-latency-ratio",
+                     help="Fail when median patched / original latency is above this (implies --latency).",
                      metavar="X", rich_help_panel=CHECKS_PANEL),
     ] = None,
     latency_runs: Annotated[
@@ -290,7 +295,8 @@ def verify(
                           rich_help_panel=CHECKS_PANEL)
     ] = DEFAULT_LATENCY_RUNS,
     junit: Annotated[
-        Optional[Path], typer.Option("--junit", help="Also write the checks as JUnit XML to this file.", metavar="FILE.xml",
+        Path | None, typer.Option("--junit", help="Also write the checks as JUnit XML to this file.",
+                                  metavar="FILE.xml",
                      rich_help_panel=OUTPUT_PANEL)
     ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
@@ -367,24 +373,27 @@ def report(
         ),
     ],
     out_dir: Annotated[
-        Path, typer.Option("--out", help="Directory for the report (created if missing).", show_default=False, metavar="DIR")
+        Path, typer.Option("--out", help="Directory for the report (created if missing).", show_default=False,
+                           metavar="DIR")
     ],
-    temperature: Annotated[Optional[float], typer.Option("--temperature", help="T to report on.", metavar="T")] = None,
-    fit_file: Annotated[Optional[Path], typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.", metavar="FIT.json")] = None,
+    temperature: Annotated[float | None, typer.Option("--temperature", help="T to report on.", metavar="T")] = None,
+    fit_file: Annotated[Path | None, typer.Option("--fit", help="FIT.json from 'onnxcal fit --out'.",
+                                                  metavar="FIT.json")] = None,
     model: Annotated[
-        Optional[Path], typer.Option("--model", help="A patched model: its calibration record gives the parameters.", metavar="MODEL")
+        Path | None, typer.Option("--model", help="A patched model: its calibration record gives the parameters.",
+                                  metavar="MODEL")
     ] = None,
     formats: Annotated[
         str, typer.Option("--format", help="Comma-separated outputs, any of these.", metavar=",".join(FORMATS),
                      rich_help_panel=OUTPUT_PANEL)
     ] = ",".join(FORMATS),
     class_names: Annotated[
-        Optional[Path],
+        Path | None,
         typer.Option("--classes", help="Class names, one per line, in the model's class order "
                      "(default: those recorded in the capture).", metavar="FILE"),
     ] = None,
     bins: Annotated[
-        Optional[int], typer.Option("--bins", help="Bins, 2 to 100000 (default: the fit's, else 15).", metavar="N")
+        int | None, typer.Option("--bins", help="Bins, 2 to 100000 (default: the fit's, else 15).", metavar="N")
     ] = None,
     drop_nonfinite: DropNonfiniteOpt = False,
     force: ForceOpt = False,
@@ -424,7 +433,8 @@ def report(
 @data_options()
 def calibrate(
     model: ModelArg,
-    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False, metavar="OUT.onnx")],
+    out_path: Annotated[Path, typer.Option("--out", help="Patched model to write.", show_default=False,
+                                           metavar="OUT.onnx")],
     output: OutputOpt = None,
     output_name: OutputNameOpt = DEFAULT_OUTPUT_NAME,
     drop_logits: DropLogitsOpt = False,
@@ -441,7 +451,7 @@ def calibrate(
     bootstrap: BootstrapOpt = 200,
     bins: BinsOpt = 15,
     report_dir: Annotated[
-        Optional[Path],
+        Path | None,
         typer.Option("--report", help="Also write the report (as 'onnxcal report') into this directory.",
                      metavar="DIR", rich_help_panel=OUTPUT_PANEL),
     ] = None,

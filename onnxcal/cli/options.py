@@ -12,7 +12,7 @@ import inspect as _inspect
 import typing
 from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import Annotated, Any, Optional
+from typing import Annotated, Any
 
 import typer
 from typer.core import TyperCommand
@@ -59,7 +59,7 @@ PANELS = (
 
 ModelArg = Annotated[Path, typer.Argument(help="The ONNX model file.", show_default=False, metavar="MODEL")]
 OutputOpt = Annotated[
-    Optional[str],
+    str | None,
     typer.Option("--output", help="The class-score output (default: the likeliest float output).",
                  metavar="NAME", rich_help_panel=MODEL_PANEL),
 ]
@@ -80,7 +80,7 @@ DropLogitsOpt = Annotated[
                        rich_help_panel=OUTPUT_PANEL)
 ]
 ActivationOpt = Annotated[
-    Optional[str],
+    str | None,
     typer.Option(
         "--activation",
         help="What turns raw logits into probabilities (default: sigmoid for one logit, softmax otherwise).",
@@ -89,7 +89,7 @@ ActivationOpt = Annotated[
     ),
 ]
 ComputeDtypeOpt = Annotated[
-    Optional[str],
+    str | None,
     typer.Option(
         "--compute-dtype",
         help="Run the Div and activation in this dtype (Casts "
@@ -99,7 +99,7 @@ ComputeDtypeOpt = Annotated[
     ),
 ]
 OutputHoldsOpt = Annotated[
-    Optional[str],
+    str | None,
     typer.Option(
         "--output-holds",
         help="What the output holds, when the graph cannot tell "
@@ -110,7 +110,7 @@ OutputHoldsOpt = Annotated[
     ),
 ]
 ScoreColumnsOpt = Annotated[
-    Optional[str],
+    str | None,
     typer.Option(
         "--score-columns",
         metavar="START:STOP",
@@ -143,7 +143,7 @@ MethodOpt = Annotated[
     ),
 ]
 MultilabelOpt = Annotated[
-    Optional[str],
+    str | None,
     typer.Option(
         "--multilabel",
         help="For N x K 0/1 labels: 'shared' (one T for all labels, the default) or 'per-label' (one T each).",
@@ -191,7 +191,7 @@ MaxModelBytesOpt = Annotated[
 ]
 MAX_MODEL_BYTES = "8GiB"
 AcceptErrorOpt = Annotated[
-    Optional[float],
+    float | None,
     typer.Option(
         "--accept-error",
         metavar="EPS",
@@ -208,7 +208,7 @@ AcceptConfidenceOpt = Annotated[
                  rich_help_panel=DECISIONS_PANEL),
 ]
 SetCoverageOpt = Annotated[
-    Optional[float],
+    float | None,
     typer.Option(
         "--set-coverage",
         metavar="1-ALPHA",
@@ -233,7 +233,7 @@ AcceptMethodOpt = Annotated[
                  metavar="ltt|sgr", rich_help_panel=DECISIONS_PANEL),
 ]
 DecisionDataOpt = Annotated[
-    Optional[Path],
+    Path | None,
     typer.Option(
         "--decision-data",
         help="Choose the decision thresholds on this labelled set (same form and options as --data) instead of "
@@ -243,19 +243,19 @@ DecisionDataOpt = Annotated[
     ),
 ]
 VerifyAcceptErrorOpt = Annotated[
-    Optional[float],
+    float | None,
     typer.Option("--accept-error", metavar="EPS",
                  help="Gate the error among accepted rows against EPS (default: the record's target).",
                  rich_help_panel=CHECKS_PANEL),
 ]
 VerifyAcceptConfidenceOpt = Annotated[
-    Optional[float],
+    float | None,
     typer.Option("--accept-confidence", metavar="1-DELTA",
                  help="Level of the gates' intervals (default: the record's --accept-confidence).",
                  rich_help_panel=CHECKS_PANEL),
 ]
 VerifySetCoverageOpt = Annotated[
-    Optional[float],
+    float | None,
     typer.Option("--set-coverage", metavar="1-ALPHA",
                  help="Gate the sets' coverage against 1-ALPHA (default: the record's target).",
                  rich_help_panel=CHECKS_PANEL),
@@ -298,48 +298,48 @@ def _option(
 
 _D, _I, _R = DATA_PANEL, IMAGE_PANEL, RUNTIME_PANEL
 _SHARED_OPTIONS = (
-    _option("data", Optional[Path], None, "--data",
+    _option("data", Path | None, None, "--data",
             "Validation set: .npz (one array per model input, plus 'labels'), .npy (a one-input "
             "model), .csv table, or a folder of images (one subfolder per class).", _D, metavar="PATH"),
-    _option("inputs", Optional[list[str]], None, "--input",
+    _option("inputs", list[str] | None, None, "--input",
             "One .npy per model input (memory-mapped); repeat for each input.", _D, metavar="NAME=FILE.npy"),
-    _option("labels", Optional[Path], None, "--labels",
+    _option("labels", Path | None, None, "--labels",
             "Labels .npy (with --input), or a CSV mapping image files to classes "
             "(columns 'file' and the label column).", _D, metavar="FILE"),
-    _option("label_column", Optional[str], None, "--label-column", "Label column of a CSV (default 'label').",
+    _option("label_column", str | None, None, "--label-column", "Label column of a CSV (default 'label').",
             _D, metavar="NAME"),
-    _option("feature_columns", Optional[str], None, "--feature-columns",
+    _option("feature_columns", str | None, None, "--feature-columns",
             "CSV columns fed to the model, in order (default: all but the label).", _D, metavar="A,B,..."),
-    _option("classes", Optional[Path], None, "--classes",
+    _option("classes", Path | None, None, "--classes",
             "Class names, one per line, in the model's class order; string labels are mapped through it.", _D,
             metavar="FILE"),
-    _option("limit", Optional[int], None, "--limit", "Use at most N samples (N >= 1).", _D, metavar="N"),
-    _option("shuffle_seed", Optional[int], None, "--shuffle-seed",
+    _option("limit", int | None, None, "--limit", "Use at most N samples (N >= 1).", _D, metavar="N"),
+    _option("shuffle_seed", int | None, None, "--shuffle-seed",
             "Take --limit/--shard samples from a random permutation with this seed (0 to 2^32-1).", _D,
             metavar="SEED"),
-    _option("shard", Optional[str], None, "--shard",
+    _option("shard", str | None, None, "--shard",
             "Capture the I-th of N deterministic slices (1 <= I <= N); 'onnxcal fit' merges the files.", _D,
             metavar="I/N"),
-    _option("preprocess", Optional[Path], None, "--preprocess",
+    _option("preprocess", Path | None, None, "--preprocess",
             "The image options below as a TOML or JSON file (options given here win).", _I, metavar="FILE"),
-    _option("resize", Optional[int], None, "--resize", "Resize the shorter side to N pixels (1 to 65535).", _I,
+    _option("resize", int | None, None, "--resize", "Resize the shorter side to N pixels (1 to 65535).", _I,
             metavar="N"),
-    _option("crop", Optional[str], None, "--crop", "Centre crop (sides of 1 to 65535 pixels).", _I,
+    _option("crop", str | None, None, "--crop", "Centre crop (sides of 1 to 65535 pixels).", _I,
             metavar="N|HxW"),
-    _option("scale", Optional[bool], None, "--scale/--no-scale",
+    _option("scale", bool | None, None, "--scale/--no-scale",
             "Divide pixels by 255 (default: yes for float inputs).", _I, show_default=False),
-    _option("mean", Optional[str], None, "--mean", "Per-channel mean, subtracted after scaling.", _I,
+    _option("mean", str | None, None, "--mean", "Per-channel mean, subtracted after scaling.", _I,
             metavar="M[,M,M]"),
-    _option("std", Optional[str], None, "--std", "Per-channel std, divided by after the mean.", _I,
+    _option("std", str | None, None, "--std", "Per-channel std, divided by after the mean.", _I,
             metavar="S[,S,S]"),
-    _option("channel_order", Optional[str], None, "--channel-order", "Channel order (default RGB).", _I,
+    _option("channel_order", str | None, None, "--channel-order", "Channel order (default RGB).", _I,
             metavar="RGB|BGR"),
-    _option("layout", Optional[str], None, "--layout", "Layout of the input (default: from the model).", _I,
+    _option("layout", str | None, None, "--layout", "Layout of the input (default: from the model).", _I,
             metavar="NCHW|NHWC"),
-    _option("dtype", Optional[str], None, "--dtype", "Input dtype (default: the model's).", _I, metavar="DTYPE"),
-    _option("interpolation", Optional[str], None, "--interpolation", "Resize filter (default bilinear).", _I,
+    _option("dtype", str | None, None, "--dtype", "Input dtype (default: the model's).", _I, metavar="DTYPE"),
+    _option("interpolation", str | None, None, "--interpolation", "Resize filter (default bilinear).", _I,
             metavar=choices(INTERPOLATIONS)),
-    _option("batch_size", Optional[int], None, "--batch-size",
+    _option("batch_size", int | None, None, "--batch-size",
             f"Samples per onnxruntime call, 1 to 16777216 (default: {DEFAULT_BATCH}, doubled while onnxcal's own "
             "work per call costs more than 5 % of the call).", _R, min=1, metavar="N"),
     _option("threads", int, 0, "--threads",
@@ -403,7 +403,7 @@ def _input_files(values: Sequence[str] | None) -> dict[str, str]:
     return files
 
 
-def _spec(values: dict) -> DataSpec:
+def _spec(values: dict[str, Any]) -> DataSpec:
     from ..data import DataSpec, Selection, parse_shard
 
     columns = values["feature_columns"]
@@ -423,7 +423,7 @@ def _spec(values: dict) -> DataSpec:
     )
 
 
-def data_options(*, shard: bool = False) -> Callable:
+def data_options(*, shard: bool = False) -> Callable[..., Any]:
     """Give a command the shared data/image/runtime options.
 
     The command declares keyword parameters ``data`` (it receives a
@@ -433,7 +433,7 @@ def data_options(*, shard: bool = False) -> Callable:
     """
     shared = [p for p in (*_SHARED_OPTIONS, *_FEEDING_OPTIONS) if shard or p.name != "shard"]
 
-    def decorate(fn: Callable) -> Callable:
+    def decorate(fn: Callable[..., Any]) -> Callable[..., Any]:
         # DataSpec is imported only when a command runs (a fast --help); the annotation of
         # ``data`` is not read, since typer gets the signature below.
         own_hints = typing.get_type_hints(fn, localns={"DataSpec": object}, include_extras=True)
@@ -451,7 +451,7 @@ def data_options(*, shard: bool = False) -> Callable:
             return fn(**kwargs, data=_spec(values), runtime=runtime)
 
         params = own + shared
-        command.__signature__ = _inspect.Signature(params)
+        command.__signature__ = _inspect.Signature(params)  # type: ignore[attr-defined]  # read by typer
         command.__annotations__ = {p.name: p.annotation for p in params}
         del command.__wrapped__  # typer must read the new signature, not fn's
         return command

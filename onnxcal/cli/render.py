@@ -4,6 +4,7 @@ before/after table of a fit, the checks of verify, the files of a report.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -12,7 +13,7 @@ from .console import Column, Grid, say, show_table, warn
 if TYPE_CHECKING:  # the library is imported when a table is drawn, not with the CLI
     from ..choose import Choice
     from ..fit import FitSummary
-    from ..graph import ModelInfo, TensorSpec
+    from ..graph import ModelInfo, Record, ScoreSite, TensorSpec
     from ..report import ReportResult
     from ..verify import VerifyResult
 
@@ -58,7 +59,7 @@ def render_info(info: ModelInfo) -> None:
     say(f"sha256: {info.sha256}")
 
 
-def _describe_site(site) -> str:
+def _describe_site(site: ScoreSite) -> str:
     names = {"softmax": "Softmax", "logsoftmax": "LogSoftmax", "sigmoid": "Sigmoid"}
     if site.spelling == "ml-classifier":
         ends = f"probabilities of an ai.onnx.ml classifier, tensor '{site.scores}'"
@@ -78,7 +79,7 @@ def _describe_site(site) -> str:
 _CHOICE_LABELS = {"nll": "NLL", "ece": "ECE", "brier": "Brier", "accuracy": "accuracy"}
 
 
-def _interval(pair) -> str:
+def _interval(pair: Sequence[float] | None) -> str:
     return "-" if pair is None else f"{pair[0]:.3f} to {pair[1]:.3f}"
 
 
@@ -153,7 +154,8 @@ def render_choice(choice: Choice) -> None:
         marks += ["lowest NLL"] if c.method == choice.best else []
         marks += ["not converged"] if not c.converged else []
         name = c.method + (f" ({', '.join(marks)})" if marks else "")
-        table.add_row(name, str(c.n_parameters), *(_with_interval(c.metrics[f], c.intervals.get(f)) for f in TABLE_FIELDS))
+        figures = (_with_interval(c.metrics[f], c.intervals.get(f)) for f in TABLE_FIELDS)
+        table.add_row(name, str(c.n_parameters), *figures)
     show_table(table)
     say(f"chosen: {choice.chosen}: {choice.reason}")
 
@@ -219,7 +221,7 @@ _NODES = {"temperature": "Div", "vector": "Mul + Add", "platt": "Mul + Add", "ma
           "dirichlet": "log-softmax + MatMul + Add", "beta": "the beta map (softplus, Mul, Add)"}
 
 
-def how_patched(r) -> str:
+def how_patched(r: Record) -> str:
     """One line on what the patch did to the graph."""
     if r.folded:
         what = "1/T" if r.temperature is not None else f"{r.method} scaling"
@@ -234,7 +236,7 @@ def how_patched(r) -> str:
         "append-sigmoid": f"{nodes} + Sigmoid appended",
         "ml-log-probabilities": "classifier probabilities replaced by softmax(scaled log p)",
         "replace-values": f"values replaced in place by the activation of the scaled logits ({r.logits_from})",
-    }.get(r.rewrite, r.rewrite)
+    }.get(r.rewrite, str(r.rewrite))
     if r.compute_dtype:
         how += f", computed in {r.compute_dtype}"
     return how

@@ -26,8 +26,9 @@ uses ``allow_pickle=False``.
 """
 
 from .arrays import load_npy, load_npz, read_npy, read_npz
+from .axes import ZEROS
 from .csv import load_csv
-from .feeding import ZEROS, check_feeding, constant_record, make_constant, recorded_feeding, with_constants
+from .feeding import check_feeding, constant_record, make_constant, recorded_feeding, with_constants
 from .fingerprint import file_fingerprint
 from .images import ENLARGE_WARNING, IMAGE_SUFFIXES, ImageArray, load_image_folder, shown
 from .inputs import match_inputs

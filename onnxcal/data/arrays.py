@@ -16,11 +16,12 @@ from collections import Counter
 from collections.abc import Collection, Mapping, Sequence
 from dataclasses import replace
 from pathlib import Path
+from typing import IO, TYPE_CHECKING, Any
 
 import numpy as np
 
-from .._files import require_file
 from .._limits import check_memory, format_bytes
+from .._paths import require_file
 from ..errors import OnnxcalError, first_line
 from ..graph import TensorSpec
 from .axes import lengths_hint, samples_first
@@ -28,8 +29,11 @@ from .fingerprint import combine, file_fingerprint
 from .inputs import show_shape
 from .spec import LABELS_KEY, Dataset
 
+if TYPE_CHECKING:
+    from .images import ImageArray
 
-def _member_header(fh) -> tuple[tuple[int, ...], bool, np.dtype] | None:
+
+def _member_header(fh: IO[bytes]) -> tuple[tuple[int, ...], bool, np.dtype] | None:
     """The shape, order and dtype in an ``.npy`` header read from ``fh``, or None."""
     try:
         version = np.lib.format.read_magic(fh)
@@ -95,7 +99,7 @@ def _checked_text(arr: np.ndarray, key: str, path: Path) -> np.ndarray:
     return arr
 
 
-def _read_member(path: Path, npz, zf: zipfile.ZipFile, info: zipfile.ZipInfo | None, key: str) -> np.ndarray:
+def _read_member(path: Path, npz: Any, zf: zipfile.ZipFile, info: zipfile.ZipInfo | None, key: str) -> np.ndarray:
     """One member of an ``.npz``: its header read first, then mapped in place or read whole.
 
     Python objects are refused from the header's dtype, before numpy reads
@@ -121,7 +125,8 @@ def _read_member(path: Path, npz, zf: zipfile.ZipFile, info: zipfile.ZipInfo | N
             f"array '{key}' in '{path}' (compressed, shape {show_shape(shape)} {dtype})",
             "save the data uncompressed (numpy.savez), which onnxcal reads without loading it whole",
         )
-    return npz[key]
+    member: np.ndarray = npz[key]  # numpy.lib.npyio.NpzFile: its members are arrays
+    return member
 
 
 def read_npz(path: Path, hint: str) -> dict[str, np.ndarray]:
@@ -153,7 +158,7 @@ def read_npz(path: Path, hint: str) -> dict[str, np.ndarray]:
 
 
 def load_npz(
-    path: str | os.PathLike,
+    path: str | os.PathLike[str],
     *,
     require_labels: bool = True,
     batch_axes: Mapping[str, int] | None = None,
@@ -192,7 +197,7 @@ def load_npz(
 
 
 def _same_lengths(
-    arrays: Mapping[str, np.ndarray],
+    arrays: Mapping[str, np.ndarray | ImageArray],
     labels: np.ndarray | None,
     source: str,
     specs: Sequence[TensorSpec] = (),
@@ -217,7 +222,7 @@ def _same_lengths(
         raise OnnxcalError(f"'{source}' holds no samples", "give a non-empty validation set")
 
 
-def read_npy(path: str | os.PathLike, what: str) -> np.ndarray:
+def read_npy(path: str | os.PathLike[str], what: str) -> np.ndarray:
     """Open one ``.npy`` with ``mmap_mode='r'`` (never unpickling).
 
     The header is read first: an array of Python objects is refused from
@@ -229,7 +234,8 @@ def read_npy(path: str | os.PathLike, what: str) -> np.ndarray:
         with open(p, "rb") as fh:
             header = _member_header(fh)
     except OSError as exc:
-        raise OnnxcalError(f"cannot read {what} '{p}': {exc.strerror or exc}", "check that the file is readable") from exc
+        raise OnnxcalError(f"cannot read {what} '{p}': {exc.strerror or exc}",
+                           "check that the file is readable") from exc
     if header is None:
         if zipfile.is_zipfile(p):  # an .npz given where an .npy was expected
             raise OnnxcalError(f"{what} '{p}' is not an .npy file", "give one array saved with numpy.save")
@@ -242,12 +248,13 @@ def read_npy(path: str | os.PathLike, what: str) -> np.ndarray:
         arr = np.load(p, mmap_mode="r", allow_pickle=False)
     except (ValueError, OSError, EOFError) as exc:
         raise OnnxcalError(f"{what} '{p}' is not a readable .npy file ({first_line(exc)})", hint) from exc
-    return arr
+    checked: np.ndarray = arr  # allow_pickle=False: an array, not a pickled object
+    return checked
 
 
 def load_npy(
-    files: Mapping[str, str | os.PathLike],
-    labels: str | os.PathLike | None,
+    files: Mapping[str, str | os.PathLike[str]],
+    labels: str | os.PathLike[str] | None,
     *,
     require_labels: bool = True,
     batch_axes: Mapping[str, int] | None = None,
@@ -267,7 +274,7 @@ def load_npy(
     return Dataset(inputs=arrays, labels=label_array, source=source, data_id=combine(parts))
 
 
-def with_npy_labels(ds: Dataset, labels: str | os.PathLike) -> Dataset:
+def with_npy_labels(ds: Dataset, labels: str | os.PathLike[str]) -> Dataset:
     """``ds`` with the labels of a ``.npy`` (``--labels`` beside an ``.npz`` without them)."""
     arr = read_npy(labels, "labels file")
     _same_lengths(ds.inputs, arr, f"{ds.source} + {labels}")

@@ -7,11 +7,15 @@ number, a state with its samples on a later axis). Used by the loaders (``arrays
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from ..errors import OnnxcalError
 from ..graph import TensorSpec
+
+if TYPE_CHECKING:
+    from .images import ImageArray
 
 ZEROS = "zeros"
 """``--constant NAME=zeros``: zeros shaped like the declared input."""
@@ -80,7 +84,8 @@ def samples_first(
 
 
 def lengths_hint(
-    arrays: Mapping[str, np.ndarray], n: int | None, specs: Sequence[TensorSpec], batch_axes: Mapping[str, int]
+    arrays: Mapping[str, np.ndarray | ImageArray], n: int | None, specs: Sequence[TensorSpec],
+    batch_axes: Mapping[str, int],
 ) -> OnnxcalError | None:
     """When arrays disagree on their sample count: a refusal naming an input that
     cannot be fed per sample on axis 0 (a single number; a state with its samples

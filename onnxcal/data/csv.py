@@ -12,7 +12,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .._files import require_file
+from .._paths import require_file
 from ..errors import OnnxcalError
 from ..graph import TensorSpec
 from .fingerprint import combine, file_fingerprint
@@ -95,7 +95,7 @@ def _check_fits(values: np.ndarray, dtype: np.dtype, where: str, lines: list[int
 
 
 def load_csv(
-    path: str | os.PathLike,
+    path: str | os.PathLike[str],
     model_input: TensorSpec,
     *,
     label_column: str | None = None,

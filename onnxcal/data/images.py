@@ -10,12 +10,14 @@ import re
 import warnings
 from collections.abc import Sequence
 from pathlib import Path
+from types import ModuleType
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from .. import _signals
-from .._files import require_file
 from .._limits import check_memory, format_bytes
+from .._paths import require_file
 from ..errors import OnnxcalError, OnnxcalWarning, first_line
 from ..graph import TensorSpec
 from .csv import column, csv_labels, read_table
@@ -23,6 +25,9 @@ from .fingerprint import combine, file_fingerprint
 from .labels import class_indices
 from .preprocess import ImageOptions, ImagePlan, plan_images
 from .spec import Dataset
+
+if TYPE_CHECKING:
+    from PIL.Image import Image as PILImage
 
 IMAGE_SUFFIXES = frozenset({".png", ".jpg", ".jpeg", ".bmp", ".gif", ".tif", ".tiff", ".webp", ".ppm", ".pgm"})
 
@@ -36,14 +41,15 @@ _UNKNOWN_RANGE = {"I": "32-bit integer", "F": "32-bit floating-point", "I;32": "
 class ImageArray:
     """Images as a lazy array (n, C, H, W) or (n, H, W, C): decoded when indexed."""
 
-    def __init__(self, root: Path, files: Sequence[str], plan: ImagePlan, spec: TensorSpec):
+    def __init__(self, root: Path, files: Sequence[str], plan: ImagePlan, spec: TensorSpec) -> None:
         self.root, self.files, self.plan, self.spec = root, list(files), plan, spec
         self._warned = False
         height, width = self._planned_size(0)  # from the header: nothing decoded before the memory checks
         self._check_size(height, width)
         self.shape_hw = (height, width)
         c = plan.channels
-        self.shape = (len(self.files), c, height, width) if plan.layout == "NCHW" else (len(self.files), height, width, c)
+        self.shape = (len(self.files), c, height, width) if plan.layout == "NCHW" else (len(self.files), height, width,
+                                                                                        c)
         self.dtype = plan.dtype
         self.ndim = 4
         o = plan.options
@@ -60,7 +66,8 @@ class ImageArray:
         if dims is None:
             return None, None
         want = (dims[2], dims[3]) if self.plan.layout == "NCHW" else (dims[1], dims[2])
-        return tuple(w if isinstance(w, int) and w > 0 else None for w in want)
+        height, width = (w if isinstance(w, int) and w > 0 else None for w in want)
+        return height, width
 
     def _check_size(self, height: int, width: int, name: str | None = None) -> None:
         """Refuse an image that does not come out at the model's (or the first image's) size."""
@@ -121,7 +128,7 @@ class ImageArray:
         box = self._crop_box(name, w, h)
         return (h, w) if box is None else (box[3] - box[1], box[2] - box[0])
 
-    def _open(self, name: str):
+    def _open(self, name: str) -> PILImage:
         """The image ``name``, opened (its header read): Pillow's errors as OnnxcalError."""
         Image = _pillow()
 
@@ -129,7 +136,8 @@ class ImageArray:
             with warnings.catch_warnings():
                 # Pillow warns above MAX_IMAGE_PIXELS and raises at twice that; refuse both
                 warnings.simplefilter("error", Image.DecompressionBombWarning)
-                return Image.open(self.root / name)
+                opened: PILImage = Image.open(self.root / name)
+                return opened
         except Exception as exc:
             raise self._unreadable(name, exc) from exc
 
@@ -169,12 +177,12 @@ class ImageArray:
             raise self._unreadable(name, exc) from exc
         return arr[:, :, None] if arr.ndim == 2 else arr
 
-    def __getitem__(self, key) -> np.ndarray:
+    def __getitem__(self, key: int | slice | Sequence[int] | np.ndarray) -> np.ndarray:
         idx = range(len(self.files))[key] if isinstance(key, slice) else np.atleast_1d(key)
         images = [self._load(int(i)) for i in idx]
-        for i, img in zip(idx, images):
+        for i, img in zip(idx, images, strict=True):
             if img.shape[:2] != self.shape_hw:
-                self._check_size(*img.shape[:2], name=self.files[int(i)])
+                self._check_size(img.shape[0], img.shape[1], name=self.files[int(i)])
         batch = np.stack(images)[..., self._chan]
         p = self.plan
         if p.dtype.kind == "f":
@@ -190,7 +198,7 @@ class ImageArray:
         return np.ascontiguousarray(batch, dtype=p.dtype)
 
 
-def _pillow():
+def _pillow() -> ModuleType:
     """``PIL.Image``, imported with SIGINT and SIGTERM held back (an extension module's import
     interrupted by a signal can crash the process)."""
     with _signals.deferred():
@@ -198,7 +206,7 @@ def _pillow():
     return Image
 
 
-def shown(name: str | os.PathLike) -> str:
+def shown(name: str | os.PathLike[str]) -> str:
     r"""A file name as the user can read it: bytes that are not UTF-8 shown escaped.
 
     Names come from the file system as str with undecodable bytes kept as
@@ -210,7 +218,7 @@ def shown(name: str | os.PathLike) -> str:
     return os.fsencode(name).decode("utf-8", "backslashreplace")
 
 
-def _eight_bits(img, name: str):
+def _eight_bits(img: PILImage, name: str) -> PILImage:
     """``img`` with 8-bit channels: 16-bit greyscale reduced by its high byte.
 
     Pillow opens a 16-bit greyscale PNG as mode ``I;16`` and its
@@ -223,7 +231,8 @@ def _eight_bits(img, name: str):
     Image = _pillow()
 
     if img.mode in _SIXTEEN_BITS:
-        return Image.fromarray((np.asarray(img, dtype=np.uint16) >> 8).astype(np.uint8), mode="L")
+        reduced: PILImage = Image.fromarray((np.asarray(img, dtype=np.uint16) >> 8).astype(np.uint8), mode="L")
+        return reduced
     if img.mode in _UNKNOWN_RANGE:
         raise OnnxcalError(
             f"image '{name}' has {_UNKNOWN_RANGE[img.mode]} pixels (Pillow mode '{img.mode}'), whose range "
@@ -248,11 +257,11 @@ def _image_files(folder: Path) -> list[str]:
 
 
 def load_image_folder(
-    folder: str | os.PathLike,
+    folder: str | os.PathLike[str],
     model_input: TensorSpec,
     options: ImageOptions,
     *,
-    labels_csv: str | os.PathLike | None = None,
+    labels_csv: str | os.PathLike[str] | None = None,
     label_column: str | None = None,
     classes: Sequence[str] | None = None,
 ) -> Dataset:
@@ -304,7 +313,8 @@ def _class_folders(root: Path, classes: Sequence[str] | None) -> tuple[list[str]
         )
     folders = sorted(p.name for p in root.iterdir() if p.is_dir() and not p.name.startswith("."))
     if not folders:
-        raise OnnxcalError(f"'{root}' has no class subfolders", "put the images of each class in a subfolder named after it")
+        raise OnnxcalError(f"'{root}' has no class subfolders",
+                           "put the images of each class in a subfolder named after it")
     names = tuple(classes) if classes is not None else tuple(shown(f) for f in folders)
     if classes is not None:
         index = class_indices(np.array(folders), classes, lambda i: f"subfolder '{folders[i]}' of '{root}'")
@@ -312,10 +322,11 @@ def _class_folders(root: Path, classes: Sequence[str] | None) -> tuple[list[str]
         index = np.arange(len(folders))
     files: list[str] = []
     labels: list[np.ndarray] = []
-    for folder, k in zip(folders, index):
+    for folder, k in zip(folders, index, strict=True):
         found = [f"{folder}/{f}" for f in _image_files(root / folder)]
         if not found:
-            raise OnnxcalError(f"class subfolder '{root / folder}' holds no images", f"add images ({', '.join(sorted(IMAGE_SUFFIXES))}) or remove it")
+            raise OnnxcalError(f"class subfolder '{root / folder}' holds no images",
+                               f"add images ({', '.join(sorted(IMAGE_SUFFIXES))}) or remove it")
         files += found
         labels.append(np.full(len(found), k, dtype=np.int64))
     return files, np.concatenate(labels), names

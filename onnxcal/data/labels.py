@@ -9,11 +9,11 @@ from collections.abc import Callable, Sequence
 
 import numpy as np
 
-from .._files import require_file
+from .._paths import require_file
 from ..errors import OnnxcalError
 
 
-def read_classes(path: str | os.PathLike) -> tuple[str, ...]:
+def read_classes(path: str | os.PathLike[str]) -> tuple[str, ...]:
     """Class names from a text file, one per line, in the model's class order.
 
     Raises
@@ -51,7 +51,7 @@ def class_indices(
     values: np.ndarray,
     classes: Sequence[str],
     describe: Callable[[int], str],
-    classes_file: str | os.PathLike | None = None,
+    classes_file: str | os.PathLike[str] | None = None,
 ) -> np.ndarray:
     """Map class names to their indices in ``classes`` (vectorised).
 
@@ -80,7 +80,7 @@ def map_labels(
     classes: Sequence[str] | None,
     source: str,
     *,
-    classes_file: str | os.PathLike | None = None,
+    classes_file: str | os.PathLike[str] | None = None,
     describe: Callable[[int], str] | None = None,
 ) -> np.ndarray:
     """String labels mapped to class indices; numeric labels unchanged."""

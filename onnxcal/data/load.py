@@ -45,18 +45,18 @@ def load_dataset(
     _check_options_apply(spec, form)
     check_feeding(spec, model_inputs)
     fed = [s for s in model_inputs if s.name not in spec.constants]  # inputs the data feed
-    if form == "images":
+    if form == "images" and path is not None:
         ds = load_image_folder(
             path, _single_input(fed, path), image_options(spec.image, spec.preprocess),
             labels_csv=spec.labels, label_column=spec.label_column, classes=classes,
         )
-    elif form == "csv":
+    elif form == "csv" and path is not None:
         ds = load_csv(
             path, _single_input(fed, path), label_column=spec.label_column,
             feature_columns=spec.feature_columns, classes=classes, require_labels=require_labels,
         )
-    elif spec.inputs or path.suffix.lower() == ".npy":
-        files = dict(spec.inputs) or {_single_input(fed, path).name: path}
+    elif path is None or spec.inputs or path.suffix.lower() == ".npy":
+        files = dict(spec.inputs) if spec.inputs or path is None else {_single_input(fed, path).name: path}
         ds = load_npy(files, spec.labels, require_labels=require_labels, batch_axes=spec.batch_axes,
                       specs=model_inputs, constants=tuple(spec.constants))
     else:

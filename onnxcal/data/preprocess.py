@@ -10,12 +10,13 @@ import json
 import os
 import re
 import tomllib
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from typing import Any, Never
 
 import numpy as np
 
-from .._files import require_file
+from .._paths import require_file
 from ..errors import OnnxcalError
 from ..graph import TensorSpec
 from .inputs import show_shape
@@ -67,7 +68,7 @@ class ImageOptions:
     interpolation: str = "bilinear"
 
 
-def read_preprocess_file(path: str | os.PathLike) -> dict:
+def read_preprocess_file(path: str | os.PathLike[str]) -> dict[str, Any]:
     """The preprocessing options of a ``.toml`` or ``.json`` file."""
     p = require_file(path, "preprocessing file")
     try:
@@ -81,11 +82,12 @@ def read_preprocess_file(path: str | os.PathLike) -> dict:
     except (OSError, UnicodeDecodeError, ValueError) as exc:  # TOMLDecodeError is a ValueError
         raise OnnxcalError(f"preprocessing file '{p}' cannot be parsed ({exc})", "check its syntax") from exc
     if not isinstance(data, dict):
-        raise OnnxcalError(f"preprocessing file '{p}' is not a table of options", f"use the keys {', '.join(IMAGE_OPTIONS)}")
+        raise OnnxcalError(f"preprocessing file '{p}' is not a table of options",
+                           f"use the keys {', '.join(IMAGE_OPTIONS)}")
     return data
 
 
-def image_options(values: Mapping[str, object], file: str | os.PathLike | None = None) -> ImageOptions:
+def image_options(values: Mapping[str, object], file: str | os.PathLike[str] | None = None) -> ImageOptions:
     """Validate preprocessing options: those of ``file``, overridden by ``values``.
 
     Values may be typed (``256``, ``[0.5, 0.5, 0.5]``) or strings as typed on
@@ -106,13 +108,14 @@ def image_options(values: Mapping[str, object], file: str | os.PathLike | None =
             merged[key] = (value, f"--{key.replace('_', '-')}")
     unknown = [where for key, (_, where) in merged.items() if key not in IMAGE_OPTIONS]
     if unknown:
-        raise OnnxcalError(f"{unknown[0]} is not a preprocessing option", f"the options are: {', '.join(IMAGE_OPTIONS)}")
+        raise OnnxcalError(f"{unknown[0]} is not a preprocessing option",
+                           f"the options are: {', '.join(IMAGE_OPTIONS)}")
     out = {key: _image_value(key, value, where) for key, (value, where) in merged.items()}
     return ImageOptions(**out)
 
 
-def _image_value(key: str, value, where: str):
-    def fail(what: str):
+def _image_value(key: str, value: object, where: str) -> Any:  # the type of ImageOptions' field ``key``
+    def fail(what: str) -> Never:
         raise OnnxcalError(f"{where} = {value!r} is not {what}")
 
     if key == "resize":
@@ -137,9 +140,11 @@ def _image_value(key: str, value, where: str):
             return False
         fail("true or false")
     if key in ("mean", "std"):
-        parts = value.split(",") if isinstance(value, str) else value if isinstance(value, (list, tuple)) else [value]
+        values: Sequence[Any] = (
+            value.split(",") if isinstance(value, str) else value if isinstance(value, (list, tuple)) else [value]
+        )
         try:
-            nums = tuple(float(v) for v in parts)
+            nums = tuple(float(v) for v in values)
         except (TypeError, ValueError):
             fail("a list of numbers, one per channel")
         if not nums or not all(np.isfinite(nums)) or (key == "std" and min(nums) <= 0):
@@ -160,7 +165,7 @@ def _image_value(key: str, value, where: str):
     return text if text in _INTERPOLATION else fail(f"one of {', '.join(_INTERPOLATION)}")
 
 
-def _as_int(value) -> int | None:
+def _as_int(value: object) -> int | None:
     if isinstance(value, bool):
         return None
     if isinstance(value, int):
@@ -180,7 +185,7 @@ class ImagePlan:
     dtype: np.dtype
     scale: bool
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         o = self.options
         return {
             "resize": o.resize, "crop": list(o.crop) if o.crop else None, "scale": self.scale,

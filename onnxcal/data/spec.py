@@ -14,11 +14,15 @@ import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from .._limits import check_range
 from ..errors import OnnxcalError
+
+if TYPE_CHECKING:
+    from .images import ImageArray
 
 LABELS_KEY = "labels"
 """The array of an ``.npz`` that holds the labels."""
@@ -114,14 +118,14 @@ class Dataset:
         axis moved first, and :meth:`feed` moves it back.
     """
 
-    inputs: Mapping[str, np.ndarray]
+    inputs: Mapping[str, np.ndarray | ImageArray]
     labels: np.ndarray | None
     source: str
     class_names: tuple[str, ...] | None = None
     rows: np.ndarray | None = None
     data_id: str = ""
     selection: Selection = field(default_factory=Selection)
-    preprocess: dict | None = None
+    preprocess: dict[str, Any] | None = None
     constants: Mapping[str, Constant] = field(default_factory=dict)
     batch_axes: Mapping[str, int] = field(default_factory=dict)
 
@@ -147,8 +151,8 @@ class Dataset:
             return slice(int(r[0]), int(r[-1]) + 1)
         return r
 
-    def batch(self, start: int, stop: int, dtypes: Mapping[str, str]) -> dict[str, np.ndarray]:
-        """The inputs of selected rows ``start..stop-1``, contiguous, cast to ``dtypes``."""
+    def batch(self, start: int, stop: int, dtypes: Mapping[str, str | None]) -> dict[str, np.ndarray]:
+        """The inputs of selected rows ``start..stop-1``, contiguous, cast to ``dtypes`` (None: as they are)."""
         key = self._key(start, stop)
         return {
             name: np.ascontiguousarray(self.inputs[name][key], dtype=dtypes[name])
@@ -173,7 +177,8 @@ class Dataset:
         """Bytes per row of the memory-mapped inputs (0 when none is mapped)."""
         return sum(
             arr.strides[0] for arr in self.inputs.values()
-            if getattr(arr, "_mmap", None) is not None and arr.ndim and arr.flags.c_contiguous
+            if isinstance(arr, np.ndarray) and getattr(arr, "_mmap", None) is not None and arr.ndim
+            and arr.flags.c_contiguous
         )
 
     def release(self, start: int, stop: int) -> None:
@@ -188,9 +193,11 @@ class Dataset:
             _release_rows(arr, first, last)
 
 
-def _release_rows(arr, first: int, stop: int) -> None:
+def _release_rows(arr: np.ndarray | ImageArray, first: int, stop: int) -> None:
     mm = getattr(arr, "_mmap", None)  # numpy.memmap keeps its mmap object here
-    if mm is None or not hasattr(mm, "madvise") or not arr.flags.c_contiguous or arr.ndim == 0:
+    if not isinstance(arr, np.memmap) or mm is None or not hasattr(mm, "madvise"):
+        return
+    if not arr.flags.c_contiguous or arr.ndim == 0:
         return
     row = arr.strides[0]
     delta = arr.offset % mmap.ALLOCATIONGRANULARITY  # the map starts at a granularity boundary
@@ -315,13 +322,13 @@ class DataSpec:
         (``--batch-axis``; e.g. 1 for a recurrent state 1 x N x H).
     """
 
-    path: str | os.PathLike | None = None
-    inputs: Mapping[str, str | os.PathLike] = field(default_factory=dict)
-    labels: str | os.PathLike | None = None
+    path: str | os.PathLike[str] | None = None
+    inputs: Mapping[str, str | os.PathLike[str]] = field(default_factory=dict)
+    labels: str | os.PathLike[str] | None = None
     label_column: str | None = None
     feature_columns: Sequence[str] | None = None
-    classes: str | os.PathLike | None = None
-    preprocess: str | os.PathLike | None = None
+    classes: str | os.PathLike[str] | None = None
+    preprocess: str | os.PathLike[str] | None = None
     image: Mapping[str, object] = field(default_factory=dict)
     selection: Selection = field(default_factory=Selection)
     constants: Mapping[str, str | os.PathLike[str] | int | float | np.ndarray] = field(default_factory=dict)

@@ -52,8 +52,9 @@ from .options import (
     FitOptions,
     FitResult,
 )
+from .outcome import FitSummary, data_warnings
 from .store import load_fit, save_fit, summary_from_dict
-from .summary import FitSummary, data_warnings, fit_scaling, resolve_kind, summarize
+from .summary import fit_scaling, resolve_kind, summarize
 from .temperature import fit_sigmoid_temperature, fit_temperature, nll_derivatives
 
 __all__ = [

@@ -13,10 +13,14 @@ from .temperature import _dot
 # Vector and Platt scaling: L-BFGS-B on (w, b)
 
 
-def _affine_pass(logits, labels, w, b, rows, weights, softmax: bool):
+def _affine_pass(
+    logits: np.ndarray, labels: np.ndarray, w: np.ndarray, b: np.ndarray, rows: np.ndarray | None,
+    weights: np.ndarray | None, softmax: bool,
+) -> tuple[float | np.ndarray, np.ndarray, np.ndarray]:
     """Mean NLL of act(w * z + b) and its gradient in w and b."""
     k = logits.shape[1]
-    f, gw, gb, total = 0.0, np.zeros(k), np.zeros(k), 0.0
+    f: float | np.ndarray = 0.0  # a number, or a 0-d array once a chunk is added
+    gw, gb, total = np.zeros(k), np.zeros(k), 0.0
     for z, y, wt in iter_chunks(logits, labels, rows, weights):
         s = z * w + b
         if softmax:
@@ -40,14 +44,17 @@ def _affine_pass(logits, labels, w, b, rows, weights, softmax: bool):
     return f / total, gw / total, gb / total
 
 
-def _logit_scale(logits, rows) -> float:
+def _logit_scale(logits: np.ndarray, rows: np.ndarray | None) -> float:
     """RMS of the logits on up to ~10 000 evenly spaced rows (to precondition w)."""
     idx = np.arange(len(logits)) if rows is None else rows
     sample = np.asarray(logits[idx[:: max(1, len(idx) // 10_000)]], dtype=np.float64)
     return float(np.sqrt(np.mean(sample * sample))) or 1.0
 
 
-def _fit_affine(logits, labels, method, l2, rows, weights, start, kind) -> FitResult:
+def _fit_affine(
+    logits: np.ndarray, labels: np.ndarray, method: str, l2: float, rows: np.ndarray | None,
+    weights: np.ndarray | None, start: Scaling | None, kind: str,
+) -> FitResult:
     k = logits.shape[1]
     softmax = method == "vector"
     evals = 0
@@ -56,13 +63,13 @@ def _fit_affine(logits, labels, method, l2, rows, weights, start, kind) -> FitRe
     # Hessian; without this it needs many more passes on large logits).
     c = _logit_scale(logits, rows)
 
-    def objective(x):
+    def objective(x: np.ndarray) -> tuple[float, np.ndarray]:
         nonlocal evals
         evals += 1
         w, b = x[:k] / c, x[k:]
         f, gw, gb = _affine_pass(logits, labels, w, b, rows, weights, softmax)
         f += l2 * (np.sum((w - 1.0) ** 2) + np.sum(b * b))
-        return f, np.concatenate([(gw + 2.0 * l2 * (w - 1.0)) / c, gb + 2.0 * l2 * b])
+        return float(f), np.concatenate([(gw + 2.0 * l2 * (w - 1.0)) / c, gb + 2.0 * l2 * b])
 
     if start is None:
         x0 = np.concatenate([np.full(k, c), np.zeros(k)])
@@ -100,7 +107,9 @@ def _fit_affine(logits, labels, method, l2, rows, weights, start, kind) -> FitRe
     return _result(scaling, evals * (1.0 if rows is None else len(rows) / max(n_rows, 1)), converged, notes)
 
 
-def _unseparated(logits, labels, rows, weights, softmax: bool) -> int:
+def _unseparated(
+    logits: np.ndarray, labels: np.ndarray, rows: np.ndarray | None, weights: np.ndarray | None, softmax: bool
+) -> int:
     """Rows (entries) whose true score is not strictly on the right side."""
     count = 0
     for z, y, w in iter_chunks(logits, labels, rows, weights):
@@ -113,7 +122,7 @@ def _unseparated(logits, labels, rows, weights, softmax: bool) -> int:
     return count
 
 
-def _projected(grad, x, bounds):
+def _projected(grad: np.ndarray, x: np.ndarray, bounds: list[tuple[float, float]]) -> np.ndarray:
     lo = np.array([b[0] for b in bounds])
     hi = np.array([b[1] for b in bounds])
     g = np.asarray(grad, dtype=np.float64).copy()
@@ -122,7 +131,7 @@ def _projected(grad, x, bounds):
     return g
 
 
-def _affine_bound_notes(w, b, labels, softmax) -> list[str]:
+def _affine_bound_notes(w: np.ndarray, b: np.ndarray, labels: np.ndarray, softmax: bool) -> list[str]:
     notes = []
     high = np.flatnonzero(w >= (1.0 / T_MIN) * (1 - 1e-9))
     low = np.flatnonzero(w <= (1.0 / T_MAX) * (1 + 1e-9))

@@ -32,7 +32,7 @@ from ..metrics import evaluate, iter_chunks
 from ..scaling import Scaling, is_far_from_one
 from ..sweep import one_blas_thread
 from .options import T_MAX, T_MIN, FitOptions, FitResult
-from .outcome import FitSummary, data_warnings, holdout_notes
+from .outcome import FitSummary, data_warnings, holdout_notes, split_record
 
 GRID = 19  # values of log T on [log T_MIN, log T_MAX]: a step of 0.51 (T x 1.67)
 _XATOL = 1e-10  # Brent's tolerance on log T
@@ -246,7 +246,9 @@ def _summarize(
         before = evaluate(logits, labels, one, options.n_bins, threads=threads)
         after = evaluate(logits, labels, result.scaling, options.n_bins, threads=threads)
         fit_part, basis = None, "in-sample"
-        notes.append("--holdout 0: the figures are in-sample (on the data the parameters were fitted on), so optimistic")
+        notes.append(
+            "--holdout 0: the figures are in-sample (on the data the parameters were fitted on), so optimistic"
+        )
     intervals = None
     if options.bootstrap > 0:
         intervals = resample.bootstrap(
@@ -259,13 +261,6 @@ def _summarize(
     return FitSummary(
         result=result, before=before, after=after, capture=dict(capture_meta), basis=basis, fit_part=fit_part,
         holdout_result=part if options.holdout > 0 else None,
-        split={
-            "fraction": options.holdout,
-            "seed": options.seed,
-            "n_fit": int(len(fit_rows)),
-            "n_holdout": int(len(eval_rows)) if options.holdout > 0 else 0,
-            "stratified_by": resample.strata_name(labels) if options.holdout > 0 else None,
-            **resample.split_samples(groups, fit_rows, eval_rows),
-        },
+        split=split_record(options, labels, fit_rows, eval_rows, groups),
         intervals=intervals, options=options, warnings=tuple(warnings), notes=tuple(notes),
     )

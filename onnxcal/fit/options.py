@@ -6,7 +6,9 @@ Also the parameter bounds every solver shares and the notes a result carries
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import asdict, dataclass
+from typing import Any
 
 import numpy as np
 
@@ -52,7 +54,7 @@ class FitOptions:
     bootstrap: int = 200
     n_bins: int = DEFAULT_BINS
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return asdict(self)
 
 
@@ -93,7 +95,7 @@ class FitResult:
     def method(self) -> str:
         return self.scaling.method
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return {
             "passes": self.passes,
             "converged": self.converged,
@@ -102,9 +104,9 @@ class FitResult:
         }
 
 
-def _first(idx) -> str:
-    idx = [int(i) for i in idx]
-    return ", ".join(map(str, idx[:5])) + (", ..." if len(idx) > 5 else "")
+def _first(idx: Iterable[int]) -> str:
+    shown = [int(i) for i in idx]
+    return ", ".join(map(str, shown[:5])) + (", ..." if len(shown) > 5 else "")
 
 
 def _bound_warning(temperature: float) -> str:

@@ -6,6 +6,7 @@ the solvers of other kinds (:mod:`onnxcal.fit.l1`) can build a summary without i
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -13,6 +14,9 @@ from .. import __version__, resample
 from ..metrics import Metrics
 from ..scaling import Scaling
 from .options import FORMAT, MIN_PER_CLASS, FitOptions, FitResult, _first
+
+if TYPE_CHECKING:
+    from ..choose import Choice
 
 
 def data_warnings(labels: np.ndarray, num_classes: int) -> list[str]:
@@ -86,12 +90,12 @@ class FitSummary:
     result: FitResult
     before: Metrics
     after: Metrics
-    capture: dict
+    capture: dict[str, Any]
     basis: str = "in-sample"
-    fit_part: dict | None = None
+    fit_part: dict[str, Any] | None = None
     holdout_result: FitResult | None = None
-    split: dict = field(default_factory=dict)
-    intervals: dict | None = None
+    split: dict[str, Any] = field(default_factory=dict)
+    intervals: dict[str, Any] | None = None
     options: FitOptions = FitOptions()
     warnings: tuple[str, ...] = ()
     notes: tuple[str, ...] = ()
@@ -105,7 +109,7 @@ class FitSummary:
     def temperature(self) -> float | None:
         return self.result.temperature
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         s = self.result.scaling
         held = None
         if self.holdout_result is not None:
@@ -154,3 +158,19 @@ def holdout_notes(
         f"the parameters baked in are refitted on all {total}",
         *by,
     ]
+
+
+def split_record(
+    options: FitOptions, labels: np.ndarray, fit_rows: np.ndarray, eval_rows: np.ndarray, groups: np.ndarray | None
+) -> dict[str, Any]:
+    """FitSummary's ``split``: the holdout fraction, its seed, the rows in each part, what it is stratified by,
+    and the samples in each part when rows are grouped by sample."""
+    held = options.holdout > 0
+    return {
+        "fraction": options.holdout,
+        "seed": options.seed,
+        "n_fit": int(len(fit_rows)),
+        "n_holdout": int(len(eval_rows)) if held else 0,
+        "stratified_by": resample.strata_name(labels) if held else None,
+        **resample.split_samples(groups, fit_rows, eval_rows),
+    }

@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import os
 from pathlib import Path
+from typing import Any
 
 from .._files import atomic_write_bytes
 from .._paths import require_file
@@ -13,16 +14,16 @@ from ..errors import OnnxcalError, first_line
 from ..metrics import Metrics
 from ..scaling import Scaling, check_scaling
 from .options import FitOptions, FitResult
-from .summary import FitSummary
+from .outcome import FitSummary
 
 
-def save_fit(path: str | os.PathLike, summary: FitSummary) -> None:
+def save_fit(path: str | os.PathLike[str], summary: FitSummary) -> None:
     """Write FIT.json atomically."""
     text = json.dumps(summary.to_dict(), indent=2, sort_keys=True) + "\n"
     atomic_write_bytes(Path(path), text.encode())
 
 
-def _result_from(parameters: dict, fit: dict, method: str, kind: str) -> FitResult:
+def _result_from(parameters: dict[str, Any], fit: dict[str, Any], method: str, kind: str) -> FitResult:
     scaling = check_scaling(Scaling(method, dict(parameters), kind))
     return FitResult(
         scaling=scaling,
@@ -33,7 +34,7 @@ def _result_from(parameters: dict, fit: dict, method: str, kind: str) -> FitResu
     )
 
 
-def summary_from_dict(data: dict) -> FitSummary:
+def summary_from_dict(data: dict[str, Any]) -> FitSummary:
     """Rebuild a FitSummary from :meth:`FitSummary.to_dict` output.
 
     Raises
@@ -70,7 +71,7 @@ def summary_from_dict(data: dict) -> FitSummary:
     )
 
 
-def load_fit(path: str | os.PathLike) -> FitSummary:
+def load_fit(path: str | os.PathLike[str]) -> FitSummary:
     """Read FIT.json written by :func:`save_fit`, checking the parameters.
 
     Raises

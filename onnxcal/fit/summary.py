@@ -6,14 +6,14 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from typing import Any
 from warnings import warn
 
 import numpy as np
 
-from .. import __version__, resample
-from ..choose import Choice
+from .. import resample
 from ..errors import OnnxcalError, OnnxcalWarning
+from ..expansion import Expansion
 from ..maps import LOOKUP_METHODS
 from ..metrics import Metrics, evaluate
 from ..passes import fit_and_score
@@ -25,15 +25,12 @@ from .l1 import summarize_l1
 from .maps import fit_map, slow_fit_warning
 from .options import (
     DEFAULT_OPTIONS,
-    FORMAT,
-    MIN_PER_CLASS,
     T_MAX,
     T_MIN,
     FitOptions,
     FitResult,
-    _first,
 )
-from .outcome import FitSummary, data_warnings, holdout_notes
+from .outcome import FitSummary, data_warnings, holdout_notes, split_record
 from .temperature import _temperature_result, fit_sigmoid_temperature, fit_temperature
 
 # --------------------------------------------------------------------------
@@ -100,7 +97,10 @@ def fit_scaling(
     return fit_sigmoid_temperature(logits, labels, per_label=per_label, rows=rows, weights=weights, start=t0)
 
 
-def _fit_map(logits, labels, options, kind, rows, weights, start) -> FitResult:
+def _fit_map(
+    logits: np.ndarray, labels: np.ndarray, options: FitOptions, kind: str, rows: np.ndarray | None,
+    weights: np.ndarray | None, start: Scaling | None,
+) -> FitResult:
     """A map of onnxcal.maps: its own solver (ensemble temperature scaling: T from fit_temperature)."""
     extra = {}
     if options.method == "ensemble-temperature":
@@ -114,8 +114,13 @@ def _fit_map(logits, labels, options, kind, rows, weights, start) -> FitResult:
 # --------------------------------------------------------------------------
 # The summary FIT.json holds
 
+_Scores = tuple[tuple[Metrics, ...], ...]
+"""The metrics before and after calibration, per part (fit part, held-out part; or all rows)."""
 
-def _fit_and_evaluate(logits, labels, options, fit_rows, eval_rows):
+
+def _fit_and_evaluate(
+    logits: np.ndarray, labels: np.ndarray, options: FitOptions, fit_rows: np.ndarray, eval_rows: np.ndarray
+) -> tuple[FitResult, FitResult, _Scores]:
     """Fit on the fit part, score both parts before and after, refit on all (any method)."""
     if fit_rows is eval_rows:
         result = fit_scaling(logits, labels, options)
@@ -130,7 +135,10 @@ def _fit_and_evaluate(logits, labels, options, fit_rows, eval_rows):
     return part, fit_scaling(logits, labels, options, start=part.scaling), scores
 
 
-def _temperature_passes(logits, labels, options, fit_rows, eval_rows, threads):
+def _temperature_passes(
+    logits: np.ndarray, labels: np.ndarray, options: FitOptions, fit_rows: np.ndarray, eval_rows: np.ndarray,
+    threads: int | None,
+) -> tuple[FitResult, FitResult, _Scores, Expansion | None]:
     """The same for a multiclass temperature, in three passes (see :mod:`onnxcal.passes`)."""
     scored = fit_and_score(
         logits, labels, fit_rows, eval_rows, options.n_bins, (1.0 / T_MAX, 1.0 / T_MIN), options.bootstrap > 0,
@@ -145,7 +153,7 @@ def _temperature_passes(logits, labels, options, fit_rows, eval_rows, threads):
 def summarize(
     logits: np.ndarray,
     labels: np.ndarray,
-    capture_meta: dict,
+    capture_meta: dict[str, Any],
     options: FitOptions = DEFAULT_OPTIONS,
     *,
     threads: int | None = None,
@@ -179,14 +187,20 @@ def summarize(
         if options.method == AUTO:
             kind = resolve_kind(logits, labels, options)
 
-            def one(lg, lb, meta, opts, th):  # every candidate on the same split (whole samples with groups)
+            def one(  # every candidate on the same split (whole samples with groups)
+                lg: np.ndarray, lb: np.ndarray, meta: dict[str, Any], opts: FitOptions, th: int | None
+            ) -> FitSummary:
                 return _summarize(lg, lb, meta, opts, th, groups)
 
-            return fit_all(logits, labels, capture_meta, options, kind, one, threads)[0]
+            chosen: FitSummary = fit_all(logits, labels, capture_meta, options, kind, one, threads)[0]
+            return chosen
         return _summarize(logits, labels, capture_meta, options, threads, groups)
 
 
-def _summarize(logits, labels, capture_meta, options, threads, groups=None) -> FitSummary:
+def _summarize(
+    logits: np.ndarray, labels: np.ndarray, capture_meta: dict[str, Any], options: FitOptions, threads: int | None,
+    groups: np.ndarray | None = None,
+) -> FitSummary:
     kind = resolve_kind(logits, labels, options)
     n = len(logits)
     notes, warnings = [], data_warnings(labels, logits.shape[1])
@@ -235,14 +249,7 @@ def _summarize(logits, labels, capture_meta, options, threads, groups=None) -> F
         basis=basis,
         fit_part=fit_part,
         holdout_result=part if options.holdout > 0 else None,
-        split={
-            "fraction": options.holdout,
-            "seed": options.seed,
-            "n_fit": int(len(fit_rows)),
-            "n_holdout": int(len(eval_rows)) if options.holdout > 0 else 0,
-            "stratified_by": resample.strata_name(labels) if options.holdout > 0 else None,
-            **resample.split_samples(groups, fit_rows, eval_rows),
-        },
+        split=split_record(options, labels, fit_rows, eval_rows, groups),
         intervals=intervals,
         options=options,
         warnings=tuple(warnings),

@@ -6,7 +6,10 @@ multi-label classifier, or one T per label.
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ..metrics import iter_chunks, sigmoid
 from ..scaling import Scaling, kind_of
@@ -20,6 +23,11 @@ _STEP_TOL = 1e-7
 # Above this many rows, the first Newton steps run on every m-th row only.
 _WARM_START_ROWS = 40_000
 _WARM_START_SAMPLE = 10_000
+
+_Sums = tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]
+"""A pass's mean f, f', f'' at each beta and the count of unseparated rows (arrays)."""
+_RowsPass = Callable[[np.ndarray, bool, np.ndarray | None, np.ndarray | None], _Sums]
+"""``pass_fn(beta, first, rows, weights)``: a pass over those rows (first: count the unseparated ones)."""
 
 
 # --------------------------------------------------------------------------
@@ -50,9 +58,15 @@ def _softmax_terms(z: np.ndarray, y: np.ndarray, beta: float) -> dict[str, np.nd
     }
 
 
-def _softmax_pass(logits, labels, beta, rows=None, weights=None, count_ties=False):
+def _softmax_pass(
+    logits: np.ndarray, labels: np.ndarray, beta: np.ndarray, rows: np.ndarray | None = None,
+    weights: np.ndarray | None = None, count_ties: bool = False,
+) -> _Sums:
     """Sums of f, f', f'' at ``beta`` (arrays of one), total weight, unseparated rows."""
-    f = g = h = total = 0.0
+    f: float | np.ndarray = 0.0  # a number, or a 0-d array once a chunk is added
+    g: float | np.ndarray = 0.0
+    h: float | np.ndarray = 0.0
+    total = 0.0
     unseparated = 0
     for z, y, w in iter_chunks(logits, labels, rows, weights):
         if count_ties:
@@ -82,11 +96,15 @@ def nll_derivatives(
     return float(f[0]), float(g[0]), float(h[0])
 
 
-def _dot(x: np.ndarray, w: np.ndarray | None, axis: int = 0):
-    return x.sum(axis=axis) if w is None else np.tensordot(w, x, axes=([0], [axis]))
+def _dot(x: np.ndarray, w: np.ndarray | None, axis: int = 0) -> np.ndarray:
+    total: np.ndarray = x.sum(axis=axis) if w is None else np.tensordot(w, x, axes=([0], [axis]))
+    return total
 
 
-def _sigmoid_pass(logits, labels, beta, rows=None, weights=None, count_ties=False, shared=True):
+def _sigmoid_pass(
+    logits: np.ndarray, labels: np.ndarray, beta: np.ndarray, rows: np.ndarray | None = None,
+    weights: np.ndarray | None = None, count_ties: bool = False, shared: bool = True,
+) -> _Sums:
     """Binary cross-entropy of sigmoid(beta * z) and its beta-derivatives.
 
     With ``shared`` one beta for every label (arrays of one), else one per
@@ -117,7 +135,9 @@ def _sigmoid_pass(logits, labels, beta, rows=None, weights=None, count_ties=Fals
     return f / per, g / per, h / per, unsep
 
 
-def _newton(pass_fn, beta0: np.ndarray, b_min: float, b_max: float):
+def _newton(
+    pass_fn: Callable[[np.ndarray, bool], _Sums], beta0: np.ndarray, b_min: float, b_max: float
+) -> tuple[np.ndarray, int, np.ndarray]:
     """Newton on log(beta) for each element of ``beta0`` at once.
 
     ``pass_fn(beta, first)`` returns (f, f', f'', unseparated) arrays; on the
@@ -157,7 +177,10 @@ def _newton(pass_fn, beta0: np.ndarray, b_min: float, b_max: float):
     return beta, passes, done
 
 
-def _solve_beta(pass_fn, n_rows: int, rows, weights, start, size: int):
+def _solve_beta(
+    pass_fn: _RowsPass, n_rows: int, rows: np.ndarray | None, weights: np.ndarray | None,
+    start: np.ndarray | None, size: int,
+) -> tuple[np.ndarray, float, bool]:
     """Newton from ``start``; on a large set, warm-started on a strided subsample."""
     beta0 = np.ones(size) if start is None else np.broadcast_to(start, (size,)).astype(float)
     b_min, b_max = 1.0 / T_MAX, 1.0 / T_MIN
@@ -173,7 +196,9 @@ def _solve_beta(pass_fn, n_rows: int, rows, weights, start, size: int):
     return beta, passes + p, bool(done.all())
 
 
-def _temperature_result(beta: np.ndarray, passes, converged, kind, shared=True) -> FitResult:
+def _temperature_result(
+    beta: np.ndarray, passes: float, converged: bool, kind: str, shared: bool = True
+) -> FitResult:
     t = 1.0 / beta
     at_bound = (beta <= 1.0 / T_MAX) | (beta >= 1.0 / T_MIN)
     notes = []
@@ -241,7 +266,7 @@ def fit_sigmoid_temperature(
     per_label: bool = False,
     rows: np.ndarray | None = None,
     weights: np.ndarray | None = None,
-    start=None,
+    start: ArrayLike | None = None,
 ) -> FitResult:
     """Fit T (or one T per label) minimising the binary cross-entropy of sigmoid(z / T).
 
@@ -269,7 +294,7 @@ def fit_sigmoid_temperature(
     kind = kind_of(logits.shape[1], np.ndim(labels))
     size = logits.shape[1] if per_label else 1
 
-    def pass_fn(beta, first, r, w):
+    def pass_fn(beta: np.ndarray, first: bool, r: np.ndarray | None, w: np.ndarray | None) -> _Sums:
         return _sigmoid_pass(logits, labels, beta, r, w, count_ties=first, shared=not per_label)
 
     beta0 = None if start is None else 1.0 / np.asarray(start, dtype=np.float64)

@@ -52,11 +52,11 @@ The calibration record is JSON in ``metadata_props`` under ``RECORD_KEY``.
 
 from . import post
 from .describe import ModelInfo, describe, describe_site
+from .expose import at_identity, expose, expose_scores
+from .external import check_model, for_onnxruntime, tensor_array
 from .find import HOLDS, Branch, ScoreSite, find_scores, fit_kind, read_as
 from .fold import FoldedValues, folded_values
 from .io import _model_tensors as _model_tensors
-from .external import check_model, for_onnxruntime, tensor_array
-from .nested import parse_columns
 from .io import (
     external_data_files,
     external_data_path,
@@ -66,6 +66,8 @@ from .io import (
     save_model,
     saved_sha256,
 )
+from .mapped import identity_unavailable, recorded_values
+from .nested import parse_columns
 from .record import (
     Record,
     check_record,
@@ -77,8 +79,6 @@ from .record import (
 )
 from .record import _write_record as _write_record
 from .record import _write_records as _write_records
-from .expose import at_identity, expose, expose_scores
-from .mapped import identity_unavailable, recorded_values
 from .rewrite import (
     check_temperature,
     find_recorded,
@@ -115,8 +115,10 @@ __all__ = [
     "ML_DOMAIN", "RECORD_FORMAT", "RECORD_KEY", "Branch", "FoldedValues", "ModelInfo", "Record", "ScaleFn",
     "ScoreSite", "TensorSpec", "at_identity", "check_model", "check_record", "check_temperature", "default_opset",
     "describe", "describe_site", "divide_by_temperature", "expose", "expose_scores", "external_data_files",
-    "external_data_path", "find_recorded", "find_scores", "fit_kind", "folded_values", "for_onnxruntime", "identity_unavailable",
+    "external_data_path", "find_recorded", "find_scores", "fit_kind", "folded_values", "for_onnxruntime",
+    "identity_unavailable",
     "load_model", "model_files", "model_sha256", "multiply_add", "np_dtype", "opset_version", "parameter_values",
-    "parse_columns", "patch", "post", "read_as", "read_record", "read_records", "recorded_values", "save_model", "saved_sha256",
+    "parse_columns", "patch", "post", "read_as", "read_record", "read_records", "recorded_values", "save_model",
+    "saved_sha256",
     "scale_fn", "temperature_dtype", "temperature_value", "tensor_array", "tensor_spec", "unique_name", "unpatch",
 ]

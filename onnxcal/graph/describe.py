@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import os
 from dataclasses import asdict, dataclass
+from typing import Any
 
 import onnx
 
@@ -34,7 +35,7 @@ class ModelInfo:
     opsets: dict[str, int] | None = None
     reading: str = ""
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         d = asdict(self)
         d["record"] = self.record.to_dict() if self.record else None
         d["records"] = [r.to_dict() for r in self.records]
@@ -97,7 +98,7 @@ def _classes(site: ScoreSite) -> str:
 
 def describe(
     model: onnx.ModelProto,
-    path: str | os.PathLike,
+    path: str | os.PathLike[str],
     sha256: str,
     external_data: tuple[str, ...] = (),
 ) -> ModelInfo:

@@ -119,7 +119,7 @@ def _number(t: onnx.TensorProto, entries: dict[str, str], key: str) -> int | Non
     return int(text)
 
 
-def open_contained(folder: str | os.PathLike, location: str) -> int:
+def open_contained(folder: str | os.PathLike[str], location: str) -> int:
     """A read-only descriptor of ``location`` inside ``folder``, opened component by component.
 
     Each directory on the way and the file itself are opened without

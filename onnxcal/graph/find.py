@@ -13,6 +13,7 @@ reading, which capture, patch and verify all work from.
 from __future__ import annotations
 
 from dataclasses import replace
+from typing import Any
 
 import numpy as np
 import onnx
@@ -131,7 +132,7 @@ def _choose(view: View, columns: tuple[int, int] | None = None) -> ScoreSite:
     )
 
 
-def _shape_text(shape: tuple | None) -> str:
+def _shape_text(shape: tuple[Any, ...] | None) -> str:
     return "?" if shape is None else "[" + ", ".join("?" if d is None else str(d) for d in shape) + "]"
 
 

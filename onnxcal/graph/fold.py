@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass, replace
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import onnx
@@ -56,7 +56,7 @@ class _FoldSite:
     beta: float = 1.0
     weight_axis: int | None = None
     class_from_end: int | None = None
-    bias_before: dict | None = None
+    bias_before: dict[str, Any] | None = None
 
 
 def _axis_backward(node: onnx.NodeProto, axis: int, rank: int, shapes: _Shapes) -> tuple[int, int] | None:

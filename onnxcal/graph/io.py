@@ -100,7 +100,8 @@ def _parse(p: Path) -> onnx.ModelProto:
     try:
         return onnx.load(str(p), load_external_data=False)
     except OSError as exc:
-        raise OnnxcalError(f"cannot read model '{p}': {exc.strerror or exc}", "check that the file is readable") from exc
+        raise OnnxcalError(f"cannot read model '{p}': {exc.strerror or exc}",
+                           "check that the file is readable") from exc
     except Exception as exc:  # protobuf DecodeError, ...
         raise OnnxcalError(
             f"'{p}' is not a readable ONNX model (its bytes do not parse as an ONNX ModelProto: "
@@ -109,7 +110,7 @@ def _parse(p: Path) -> onnx.ModelProto:
         ) from exc
 
 
-def _sized_model_file(path: str | os.PathLike, max_bytes: int) -> Path:
+def _sized_model_file(path: str | os.PathLike[str], max_bytes: int) -> Path:
     p = require_file(path, "model")
     check_model_size(p, 0, max_bytes)
     if p.stat().st_size == 0:
@@ -118,7 +119,7 @@ def _sized_model_file(path: str | os.PathLike, max_bytes: int) -> Path:
 
 
 def external_data_files(
-    path: str | os.PathLike, *, max_bytes: int = DEFAULT_MAX_MODEL_BYTES
+    path: str | os.PathLike[str], *, max_bytes: int = DEFAULT_MAX_MODEL_BYTES
 ) -> tuple[Path, ...]:
     """The external data files a model file uses (checked to lie beside it)."""
     p = _sized_model_file(path, max_bytes)
@@ -130,7 +131,7 @@ def external_data_files(
 
 
 def load_model(
-    path: str | os.PathLike, *, max_bytes: int = DEFAULT_MAX_MODEL_BYTES, count_external: bool = True
+    path: str | os.PathLike[str], *, max_bytes: int = DEFAULT_MAX_MODEL_BYTES, count_external: bool = True
 ) -> onnx.ModelProto:
     """Load and check an ONNX model file, with errors that name the file; weights stay in their files.
 
@@ -241,7 +242,7 @@ def _listing_line(digest: str, name: str) -> str:
     return "\\" + f"{digest}  " + name.replace("\\", "\\\\").replace("\n", "\\n") + "\n"
 
 
-def model_sha256(path: str | os.PathLike) -> str:
+def model_sha256(path: str | os.PathLike[str]) -> str:
     """The SHA-256 that identifies a model: of its file, and with external data of its files' listing.
 
     Without external data: the file's SHA-256 (``sha256sum model.onnx``).
@@ -371,7 +372,7 @@ def _data_writer(pieces: list[tuple[int, Span | bytes]], size: int) -> Writer:
     return write
 
 
-def external_data_path(path: str | os.PathLike) -> Path:
+def external_data_path(path: str | os.PathLike[str]) -> Path:
     """Where ``save_model(..., external=True)`` puts the weights of ``path``."""
     p = Path(path)
     return p.with_name(p.name + ".data")
@@ -393,7 +394,7 @@ def _check_room(path: Path, needed: int) -> None:
 
 
 def model_files(
-    model: onnx.ModelProto, path: str | os.PathLike, *, external: bool = False
+    model: onnx.ModelProto, path: str | os.PathLike[str], *, external: bool = False
 ) -> dict[Path, bytes | Writer]:
     """What ``save_model`` writes: ``path``'s bytes, and with external data ``<path>.data``'s writer.
 
@@ -413,7 +414,7 @@ def model_files(
     return {data: _data_writer(pieces, size), Path(path): graph_bytes}
 
 
-def saved_sha256(model: onnx.ModelProto, path: str | os.PathLike, *, external: bool = False) -> str:
+def saved_sha256(model: onnx.ModelProto, path: str | os.PathLike[str], *, external: bool = False) -> str:
     """:func:`model_sha256` of the files ``save_model(model, path, external=...)`` writes, before writing them.
 
     The weights are streamed from their files through the hash (read once more).
@@ -445,7 +446,7 @@ def external_tensors_of(model: onnx.ModelProto) -> bool:
     return any(is_external(t) for t in _model_tensors(model))
 
 
-def save_model(model: onnx.ModelProto, path: str | os.PathLike, *, external: bool = False) -> None:
+def save_model(model: onnx.ModelProto, path: str | os.PathLike[str], *, external: bool = False) -> None:
     """Write ``model`` atomically to ``path`` (see :func:`model_files`).
 
     With external data both files are complete before either is renamed into place.

@@ -29,7 +29,7 @@ that added this module).
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, Union
+from typing import Any
 
 import numpy as np
 import onnx
@@ -72,7 +72,7 @@ class Either:
     options: tuple[Pattern, ...]
 
 
-Pattern = Union[Var, Const, Op, Either]
+Pattern = Var | Const | Op | Either
 
 
 def op(op_type: str | tuple[str, ...], *inputs: Pattern, **kw: Any) -> Op:

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
+from typing import Any
 
 import onnx
 
@@ -52,7 +53,7 @@ class Composed:
     size: int | None
     dtype: str
     words: str
-    post: tuple = ()
+    post: tuple[Any, ...] = ()
     rewire: tuple[tuple[int, int], ...] = ()
     branches: tuple[Branch, ...] = ()
     layout: tuple[int, ...] = ()
@@ -134,7 +135,7 @@ def _all(graph: onnx.GraphProto) -> Iterator[onnx.NodeProto]:
             yield from _all(g)
 
 
-def _signature(site: ScoreSite) -> tuple:
+def _signature(site: ScoreSite) -> tuple[Any, ...]:
     return (site.activation, site.holds, site.logits_from, site.post, site.class_axis, site.rank,
             site.scores_axis, site.scores_rank, site.dtype, site.inserts)
 

@@ -97,7 +97,7 @@ def _qdq(found: Found, view: View) -> Step | None:
     if any(v is not None and np.asarray(v).size != 1 for v in a + b):
         return None  # per-axis quantization of probabilities: not a single grid
     same = all((x is None and y is None) or (x is not None and y is not None and np.array_equal(x, y))
-               for x, y in zip(a, b))
+               for x, y in zip(a, b, strict=True))
     if not same:
         return None
     return Step(found.tensors["p"], tuple(found.matched), _quantize(a[0], a[1]))

@@ -120,7 +120,8 @@ def _softmax_axis(found: Found, view: View, rank: int | None) -> int:
         raise OnnxcalError(
             f"the {node.op_type} '{node.name or node.output[0]}' (opset {opset}, axis {axis}, rank {rank}) "
             f"normalises over axes {axis}..{(rank or axis + 2) - 1} jointly, not per class",
-            "onnxcal cannot calibrate this as class probabilities; re-export the model with the Softmax on the class axis",
+            "onnxcal cannot calibrate this as class probabilities; "
+            "re-export the model with the Softmax on the class axis",
         )
     return axis
 

@@ -21,7 +21,7 @@ class                   ONNX operators (ONNX operator spec)          what it kee
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass
-from typing import Any, Union
+from typing import Any
 
 import numpy as np
 
@@ -102,7 +102,7 @@ class Normalize:
         return "L1-normalised"
 
 
-PostOp = Union[Scale, Clip, Take, Quantize, Normalize]
+PostOp = Scale | Clip | Take | Quantize | Normalize
 _KINDS: dict[str, type] = {c.__name__.lower(): c for c in (Scale, Clip, Take, Quantize, Normalize)}
 
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import PurePosixPath, PureWindowsPath
+from typing import Any
 
 import numpy as np
 import onnx
@@ -104,26 +105,26 @@ class Record:
     temperature_initializer: str
     source_sha256: str
     source_name: str
-    fit: dict = field(default_factory=dict)
+    fit: dict[str, Any] = field(default_factory=dict)
     method: str = "temperature"
-    parameters: dict = field(default_factory=dict)
-    initializers: dict = field(default_factory=dict)
+    parameters: dict[str, Any] = field(default_factory=dict)
+    initializers: dict[str, Any] = field(default_factory=dict)
     kind: str = "multiclass"
     folded: bool = False
     compute_dtype: str | None = None
     source_output: str = ""
-    changes: dict = field(default_factory=dict)
+    changes: dict[str, Any] = field(default_factory=dict)
     holds: str = ""
     spelling: str = ""
     logits_from: str = "tensor"
-    post: list = field(default_factory=list)
+    post: list[Any] = field(default_factory=list)
     fitted_on_sha256: str = ""
     score_columns: str = ""
     decisions: dict = field(default_factory=dict)
     onnxcal_version: str = __version__
     format: int = RECORD_FORMAT
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return asdict(self)
 
     @property

@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import os
 from pathlib import Path, PurePosixPath, PureWindowsPath
+from typing import Any
 
 import numpy as np
 import onnx
@@ -388,13 +389,14 @@ def _check_options(
     if fold and site.from_probabilities:
         what = ("an ai.onnx.ml classifier, which has no logits layer" if site.spelling == "ml-classifier"
                 else f"logits computed from other values ({site.logits_from}), with no layer")
-        raise OnnxcalError(f"--fold: output '{site.output}' comes from {what} to fold the scaling into", "leave out --fold")
+        raise OnnxcalError(f"--fold: output '{site.output}' comes from {what} to fold the scaling into",
+                           "leave out --fold")
     if compute_dtype == site.dtype:
         return None
     return compute_dtype
 
 
-def _file_name(source: str | os.PathLike) -> str:
+def _file_name(source: str | os.PathLike[str]) -> str:
     """The file name of a path, POSIX or Windows style (the record holds no directory)."""
     text = os.fspath(source)
     return (PureWindowsPath(text) if "\\" in text else PurePosixPath(text)).name or Path(text).name
@@ -405,11 +407,11 @@ def patch(
     calibration: float | Scaling,
     *,
     source_sha256: str,
-    source_name: str | os.PathLike,
+    source_name: str | os.PathLike[str],
     output: str | None = None,
     new_output: str = DEFAULT_OUTPUT_NAME,
     drop_logits: bool = False,
-    fit: dict | None = None,
+    fit: dict[str, Any] | None = None,
     activation: str | None = None,
     compute_dtype: str | None = None,
     fold: bool = False,

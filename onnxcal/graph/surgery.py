@@ -13,7 +13,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from functools import partial
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import onnx
@@ -43,7 +43,7 @@ class _Surgery:
         self.ir_version = ir_version
         self.taken = _all_names(graph)
         self.nodes: list[onnx.NodeProto] = []
-        self.changes: dict = {"nodes": [], "initializers": [], "outputs": [], "renamed": {}}
+        self.changes: dict[str, Any] = {"nodes": [], "initializers": [], "outputs": [], "renamed": {}}
         self.parameters: dict[str, str] = {}  # role -> initializer name (e.g. "temperature")
         self.root = self
 
@@ -294,13 +294,15 @@ def build_logits(s: _Surgery, site: ScoreSite, source: str) -> str:
     if how == "logit":  # log p - log(1 - p): sigmoid of it is p
         one = s.constant("onnxcal_one", _scalar("", 1.0, site.dtype))
         rest = s.node("Sub", [one, source], f"{source}_complement")
-        return s.node("Sub", [_log_clamped(s, source, site.dtype), _log_clamped(s, rest, site.dtype)], f"{source}_logit")
+        return s.node("Sub", [_log_clamped(s, source, site.dtype), _log_clamped(s, rest, site.dtype)],
+                      f"{source}_logit")
     if how == "log-sigmoid":  # log sigmoid(x) = -softplus(-x)
         neg = s.node("Neg", [source], f"{source}_negated")
         return s.node("Neg", [s.node("Softplus", [neg], f"{source}_softplus")], f"{source}_log_sigmoid")
     if how == "dequantized":
         qlinear = s.graph.node[site.node]
-        inputs = [source, qlinear.input[1]] + ([qlinear.input[2]] if len(qlinear.input) > 2 and qlinear.input[2] else [])
+        inputs = [source,
+                  qlinear.input[1]] + ([qlinear.input[2]] if len(qlinear.input) > 2 and qlinear.input[2] else [])
         return s.node("DequantizeLinear", inputs, f"{source}_dequantized")
     if how == "raw-scores":
         return _raw_scores(s, site)
@@ -341,7 +343,8 @@ def _raw_scores(s: _Surgery, site: ScoreSite) -> str:
     if site.ml_transform == "SOFTMAX":
         return raw
     if site.num_classes == 2:
-        mask = s.constant("onnxcal_positive_column", numpy_helper.from_array(np.array([0.0, 1.0], np_dtype(site.dtype))))
+        mask = s.constant("onnxcal_positive_column", numpy_helper.from_array(np.array([0.0, 1.0],
+                                                                                      np_dtype(site.dtype))))
         return s.node("Mul", [raw, mask], f"{raw}_logits")
     neg = s.node("Neg", [raw], f"{raw}_negated")
     return s.node("Neg", [s.node("Softplus", [neg], f"{raw}_softplus")], f"{raw}_log_sigmoid")

@@ -107,6 +107,6 @@ def module(method: str) -> ModuleType:
 
 
 __all__ = [
-    "METHODS", "METHODS_FOR", "MODULES", "KEEPS_DECISIONS", "LOOKUP_METHODS", "MapFit", "Subgraph", "describe", "module",
-    "standalone_model",
+    "METHODS", "METHODS_FOR", "MODULES", "KEEPS_DECISIONS", "LOOKUP_METHODS", "MapFit", "Subgraph", "describe",
+    "module", "standalone_model",
 ]

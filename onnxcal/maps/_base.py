@@ -20,6 +20,7 @@ from __future__ import annotations
 
 from collections.abc import Collection, Iterator, Mapping
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import onnx
@@ -65,12 +66,12 @@ class MapFit:
 
     method: str
     kind: str
-    parameters: dict
+    parameters: dict[str, Any]
     converged: bool = True
     passes: float = 0.0
     notes: tuple[str, ...] = ()
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return {
             "method": self.method,
             "kind": self.kind,
@@ -111,10 +112,12 @@ def sigmoid(z: np.ndarray) -> np.ndarray:
 # Parameter checks (values read from a file)
 
 
-def require_fields(params: Mapping, names: Collection[str], method: str) -> None:
+def require_fields(params: Mapping[str, Any], names: Collection[str], method: str) -> None:
     """Refuse a parameter dict whose fields are not exactly ``names``."""
     if not isinstance(params, Mapping):
-        raise OnnxcalError(f"{method} parameters must be a mapping of field names to values, got {type(params).__name__}")
+        raise OnnxcalError(
+            f"{method} parameters must be a mapping of field names to values, got {type(params).__name__}"
+        )
     if sorted(params) != sorted(names):
         raise OnnxcalError(
             f"{method} calibration needs parameters {', '.join(sorted(names))}, "
@@ -122,7 +125,8 @@ def require_fields(params: Mapping, names: Collection[str], method: str) -> None
         )
 
 
-def field_array(params: Mapping, name: str, method: str, *, ndim: int, shape: tuple | None = None) -> np.ndarray:
+def field_array(params: Mapping[str, Any], name: str, method: str, *, ndim: int,
+                shape: tuple[Any, ...] | None = None) -> np.ndarray:
     """The field ``name`` as a finite float64 array of rank ``ndim`` (and ``shape``).
 
     ``shape`` may hold None for a dimension of any size.
@@ -156,10 +160,11 @@ def field_array(params: Mapping, name: str, method: str, *, ndim: int, shape: tu
 
 def check_kind(kind: str, allowed: Collection[str], method: str) -> None:
     if kind not in allowed:
-        raise OnnxcalError(f"{method} calibration does not apply to a {kind} classifier", f"use it on: {', '.join(allowed)}")
+        raise OnnxcalError(f"{method} calibration does not apply to a {kind} classifier",
+                           f"use it on: {', '.join(allowed)}")
 
 
-def plain(a: np.ndarray | float) -> float | list:
+def plain(a: np.ndarray | float) -> float | list[Any]:
     """A float64 array as JSON-ready Python numbers (nested lists)."""
     arr = np.asarray(a, dtype=np.float64)
     return float(arr) if arr.ndim == 0 else arr.tolist()
@@ -260,7 +265,8 @@ class GraphBuilder:
         self, x: str, dtype: str, prefix: str, taken: Collection[str] = (), compute_dtype: str | None = None
     ) -> None:
         if dtype not in _ELEM:
-            raise OnnxcalError(f"unsupported dtype {dtype!r} for a calibration subgraph", f"use one of: {', '.join(_ELEM)}")
+            raise OnnxcalError(f"unsupported dtype {dtype!r} for a calibration subgraph",
+                               f"use one of: {', '.join(_ELEM)}")
         self.input = x
         self.dtype = dtype
         self.compute = compute_dtype or ("float32" if dtype == "float16" else dtype)

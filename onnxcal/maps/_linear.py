@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -69,21 +70,21 @@ def features(scores: np.ndarray, log_probs: bool) -> np.ndarray:
     return log_softmax(z, axis=-1) if log_probs else z
 
 
-def arrays(params: dict) -> tuple[np.ndarray, np.ndarray]:
+def arrays(params: dict[str, Any]) -> tuple[np.ndarray, np.ndarray]:
     return np.asarray(params["W"], dtype=np.float64), np.asarray(params["b"], dtype=np.float64)
 
 
-def calibrated_logits(params: dict, scores: np.ndarray, log_probs: bool) -> np.ndarray:
+def calibrated_logits(params: dict[str, Any], scores: np.ndarray, log_probs: bool) -> np.ndarray:
     """W x + b for every row (float64), the softmax's input."""
     w, b = arrays(params)
     return features(scores, log_probs) @ w.T + b
 
 
-def apply(params: dict, scores: np.ndarray, log_probs: bool) -> np.ndarray:
+def apply(params: dict[str, Any], scores: np.ndarray, log_probs: bool) -> np.ndarray:
     return softmax(calibrated_logits(params, scores, log_probs), axis=-1)
 
 
-def check(params: dict, num_classes: int | None, method: str, kind: str = "multiclass") -> dict:
+def check(params: dict[str, Any], num_classes: int | None, method: str, kind: str = "multiclass") -> dict[str, Any]:
     check_kind(kind, KINDS, method)
     require_fields(params, ("W", "b"), method)
     w = field_array(params, "W", method, ndim=2, shape=(num_classes, num_classes))
@@ -159,7 +160,7 @@ def fit(
     weights: np.ndarray | None = None,
     l2: float = DEFAULT_L2,
     l2_intercept: float | None = None,
-    start: dict | None = None,
+    start: dict[str, Any] | None = None,
     max_passes: int = MAX_PASSES,
 ) -> MapFit:
     import scipy.optimize  # here, not at import: scipy takes ~0.5 s and inspect needs none
@@ -275,7 +276,7 @@ def build(
     x: str,
     dtype: str,
     num_classes: int,
-    params: dict,
+    params: dict[str, Any],
     *,
     method: str,
     log_probs: bool,

@@ -30,6 +30,7 @@ edges over the classes (tens to a few hundred in practice).
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator
+from typing import Any
 
 import numpy as np
 
@@ -135,7 +136,7 @@ def fit_per_class(
 
 
 def check_tables(
-    params: dict, names: tuple[str, str], num_classes: int | None, method: str, kind: str | None
+    params: dict[str, Any], names: tuple[str, str], num_classes: int | None, method: str, kind: str | None
 ) -> tuple[list[np.ndarray], list[np.ndarray]]:
     """Two per-class lists of number lists (K of each), finite and within [0, 1]."""
     if kind is not None:
@@ -166,7 +167,7 @@ def strictly_increasing(values: np.ndarray, what: str, method: str) -> None:
         raise OnnxcalError(f"{method} parameter '{what}' must be strictly increasing")
 
 
-def as_lists(tables: list[np.ndarray]) -> list:
+def as_lists(tables: list[np.ndarray]) -> list[Any]:
     return [plain(t) for t in tables]
 
 

@@ -29,6 +29,8 @@ Mul, Add, Sigmoid; opset >= 13.
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
 from ..errors import OnnxcalError
@@ -51,7 +53,7 @@ A_MAX = 100.0  # a, b in [0, A_MAX] (a bound for separable data)
 C_MAX = 1000.0
 
 
-def n_parameters(num_classes: int = 1, params: dict | None = None) -> int:
+def n_parameters(num_classes: int = 1, params: dict[str, Any] | None = None) -> int:
     return 3
 
 
@@ -67,14 +69,14 @@ def features(scores: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return -softplus(-np.asarray(scores, dtype=np.float64)), sp
 
 
-def calibrated_logits(params: dict, scores: np.ndarray) -> np.ndarray:
+def calibrated_logits(params: dict[str, Any], scores: np.ndarray) -> np.ndarray:
     """a ln p - b ln(1 - p) + c (float64, the same shape as ``scores``)."""
     a, b, c = (float(params[k]) for k in ("a", "b", "c"))
     log_p, minus_log_q = features(scores)
     return a * log_p + b * minus_log_q + c
 
 
-def apply(params: dict, scores: np.ndarray) -> np.ndarray:
+def apply(params: dict[str, Any], scores: np.ndarray) -> np.ndarray:
     """Calibrated probability of the positive class, float64 (the NumPy reference).
 
     Examples
@@ -89,7 +91,7 @@ def apply(params: dict, scores: np.ndarray) -> np.ndarray:
     return sigmoid(calibrated_logits(params, scores))
 
 
-def check_parameters(params: dict, num_classes: int | None = 1, kind: str = "binary") -> dict:
+def check_parameters(params: dict[str, Any], num_classes: int | None = 1, kind: str = "binary") -> dict[str, Any]:
     """Validate parameters read from a file; returns them as plain numbers.
 
     Raises
@@ -136,7 +138,7 @@ def fit(
     rows: np.ndarray | None = None,
     weights: np.ndarray | None = None,
     l2: float = 0.0,
-    start: dict | None = None,
+    start: dict[str, Any] | None = None,
 ) -> MapFit:
     """Fit a, b, c by the likelihood (binary cross-entropy), with a, b >= 0.
 
@@ -209,7 +211,7 @@ def build(
     x: str,
     dtype: str,
     num_classes: int,
-    params: dict,
+    params: dict[str, Any],
     *,
     taken=(),
     compute_dtype: str | None = None,

@@ -28,6 +28,8 @@ when W's row sums are equal (then fold as matrix scaling; see
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
 from . import _linear
@@ -38,11 +40,11 @@ KINDS = _linear.KINDS
 DEFAULT_L2 = _linear.DEFAULT_L2
 
 
-def n_parameters(num_classes: int, params: dict | None = None) -> int:
+def n_parameters(num_classes: int, params: dict[str, Any] | None = None) -> int:
     return num_classes * num_classes + num_classes
 
 
-def apply(params: dict, scores: np.ndarray) -> np.ndarray:
+def apply(params: dict[str, Any], scores: np.ndarray) -> np.ndarray:
     """Calibrated probabilities softmax(log_softmax(z) W^T + b), float64 (the NumPy reference).
 
     Examples
@@ -53,12 +55,13 @@ def apply(params: dict, scores: np.ndarray) -> np.ndarray:
     return _linear.apply(params, scores, log_probs=True)
 
 
-def calibrated_logits(params: dict, scores: np.ndarray) -> np.ndarray:
+def calibrated_logits(params: dict[str, Any], scores: np.ndarray) -> np.ndarray:
     """log_softmax(z) W^T + b, the softmax's input (float64)."""
     return _linear.calibrated_logits(params, scores, log_probs=True)
 
 
-def check_parameters(params: dict, num_classes: int | None = None, kind: str = "multiclass") -> dict:
+def check_parameters(params: dict[str, Any], num_classes: int | None = None, kind: str = "multiclass") -> dict[str,
+                                                                                                               Any]:
     """Validate parameters read from a file (see :func:`onnxcal.maps.matrix.check_parameters`)."""
     return _linear.check(params, num_classes, METHOD, kind)
 
@@ -71,7 +74,7 @@ def fit(
     weights: np.ndarray | None = None,
     l2: float = DEFAULT_L2,
     l2_intercept: float | None = None,
-    start: dict | None = None,
+    start: dict[str, Any] | None = None,
 ) -> MapFit:
     """Fit W, b minimising the mean NLL plus the ODIR penalty, on log_softmax(scores).
 
@@ -103,7 +106,7 @@ def build(
     x: str,
     dtype: str,
     num_classes: int,
-    params: dict,
+    params: dict[str, Any],
     *,
     taken=(),
     compute_dtype: str | None = None,
@@ -123,7 +126,7 @@ def build(
     )
 
 
-def row_sums_equal(params: dict, tol: float = 1e-12) -> bool:
+def row_sums_equal(params: dict[str, Any], tol: float = 1e-12) -> bool:
     """True when W 1 is a multiple of 1: then the map equals matrix scaling of the logits."""
     w, _ = _linear.arrays(params)
     sums = w.sum(axis=1)

@@ -33,6 +33,8 @@ Graph: Div, Softmax, Softmax, Mul, Mul, Add, Add; opset >= 13; no fold.
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
 from ..errors import OnnxcalError
@@ -56,11 +58,11 @@ KINDS = ("multiclass",)
 _SUM_TOL = 1e-6
 
 
-def n_parameters(num_classes: int = 0, params: dict | None = None) -> int:
+def n_parameters(num_classes: int = 0, params: dict[str, Any] | None = None) -> int:
     return 3  # T and two free weights
 
 
-def apply(params: dict, scores: np.ndarray) -> np.ndarray:
+def apply(params: dict[str, Any], scores: np.ndarray) -> np.ndarray:
     """Calibrated probabilities, float64 (the NumPy reference).
 
     Examples
@@ -77,7 +79,8 @@ def apply(params: dict, scores: np.ndarray) -> np.ndarray:
     return w1 * softmax(z / t, axis=-1) + w2 * softmax(z, axis=-1) + w3 / z.shape[-1]
 
 
-def check_parameters(params: dict, num_classes: int | None = None, kind: str = "multiclass") -> dict:
+def check_parameters(params: dict[str, Any], num_classes: int | None = None, kind: str = "multiclass") -> dict[str,
+                                                                                                               Any]:
     """Validate parameters read from a file; returns them as plain numbers.
 
     Raises
@@ -216,7 +219,7 @@ def build(
     x: str,
     dtype: str,
     num_classes: int,
-    params: dict,
+    params: dict[str, Any],
     *,
     taken=(),
     compute_dtype: str | None = None,
@@ -231,8 +234,10 @@ def build(
     w1, w2, w3 = p["weights"]
     g = GraphBuilder(x, dtype, "onnxcal_ets", taken, compute_dtype)
     z = g.start()
-    sharp = g.node("Softmax", [g.node("Div", [z, g.const("temperature", p["temperature"])], "scaled")], "p_scaled", axis=-1)
+    sharp = g.node("Softmax", [g.node("Div", [z, g.const("temperature", p["temperature"])], "scaled")], "p_scaled",
+                   axis=-1)
     plain_p = g.node("Softmax", [z], "p_plain", axis=-1)
-    mix = g.node("Add", [g.node("Mul", [sharp, g.const("w1", w1)], "w1_p"), g.node("Mul", [plain_p, g.const("w2", w2)], "w2_p")], "mix")
+    mix = g.node("Add", [g.node("Mul", [sharp, g.const("w1", w1)], "w1_p"), g.node("Mul", [plain_p, g.const("w2", w2)],
+                                                                                   "w2_p")], "mix")
     out = g.node("Add", [mix, g.const("w3_uniform", w3 / num_classes)], "probabilities")
     return g.finish(out)

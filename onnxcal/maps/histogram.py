@@ -35,6 +35,7 @@ Gather).
 from __future__ import annotations
 
 from functools import partial
+from typing import Any
 
 import numpy as np
 
@@ -48,7 +49,7 @@ DEFAULT_BINS = 10  # Zadrozny & Elkan 2001 used 10 bins (from memory)
 STRATEGIES = ("quantile", "uniform")
 
 
-def n_parameters(num_classes: int, params: dict | None = None) -> int:
+def n_parameters(num_classes: int, params: dict[str, Any] | None = None) -> int:
     """Edges and values over all classes (the fit decides how many: ``params`` is needed)."""
     if params is None:
         raise ValueError("a binning's size depends on its fit: pass params")
@@ -87,14 +88,15 @@ def binned(p: np.ndarray, t: np.ndarray, w: np.ndarray, bins: int, strategy: str
     return edges, np.clip(values, 0.0, 1.0)
 
 
-def calibrate_columns(params: dict, p: np.ndarray) -> np.ndarray:
+def calibrate_columns(params: dict[str, Any], p: np.ndarray) -> np.ndarray:
     q = np.empty_like(p)
     for k, (e, v) in enumerate(zip(params["edges"], params["values"], strict=True)):
-        q[:, k] = np.asarray(v, dtype=np.float64)[np.searchsorted(np.asarray(e, dtype=np.float64), p[:, k], side="left")]
+        q[:, k] = np.asarray(v, dtype=np.float64)[np.searchsorted(np.asarray(e, dtype=np.float64), p[:, k],
+                                                                  side="left")]
     return q
 
 
-def apply(params: dict, scores: np.ndarray) -> np.ndarray:
+def apply(params: dict[str, Any], scores: np.ndarray) -> np.ndarray:
     """Calibrated probabilities, float64 (the NumPy reference).
 
     Examples
@@ -107,7 +109,7 @@ def apply(params: dict, scores: np.ndarray) -> np.ndarray:
     return _lookup.renormalise(calibrate_columns(params, p))
 
 
-def check_parameters(params: dict, num_classes: int | None = None, kind: str | None = None) -> dict:
+def check_parameters(params: dict[str, Any], num_classes: int | None = None, kind: str | None = None) -> dict[str, Any]:
     """Validate parameters read from a file; returns them as plain numbers.
 
     Raises
@@ -119,10 +121,14 @@ def check_parameters(params: dict, num_classes: int | None = None, kind: str | N
     """
     edges, values = _lookup.check_tables(params, ("edges", "values"), num_classes, METHOD, kind)
     if len(edges) != len(values):
-        raise OnnxcalError(f"histogram parameters 'edges' and 'values' have {len(edges)} and {len(values)} per-class lists")
+        raise OnnxcalError(
+            f"histogram parameters 'edges' and 'values' have {len(edges)} and {len(values)} per-class lists"
+        )
     for k, (e, v) in enumerate(zip(edges, values, strict=True)):
         if len(v) != len(e) + 1:
-            raise OnnxcalError(f"histogram parameter 'values[{k}]' has {len(v)} values for {len(e)} edges (needs one more)")
+            raise OnnxcalError(
+                f"histogram parameter 'values[{k}]' has {len(v)} values for {len(e)} edges (needs one more)"
+            )
         _lookup.strictly_increasing(e, f"edges[{k}]", METHOD)
     return {"edges": _lookup.as_lists(edges), "values": _lookup.as_lists(values)}
 
@@ -161,12 +167,14 @@ def fit(
         raise OnnxcalError(f"unknown binning strategy {strategy!r}", f"use one of: {', '.join(STRATEGIES)}")
     if bins < 1:
         raise OnnxcalError(f"histogram binning needs at least one bin, got {bins}")
-    per_class, passes = _lookup.fit_per_class(scores, labels, rows, weights, partial(binned, bins=bins, strategy=strategy))
-    params = {"edges": _lookup.as_lists([e for e, _ in per_class]), "values": _lookup.as_lists([v for _, v in per_class])}
+    per_class, passes = _lookup.fit_per_class(scores, labels, rows, weights, partial(binned, bins=bins,
+                                                                                     strategy=strategy))
+    params = {"edges": _lookup.as_lists([e for e, _ in per_class]), "values": _lookup.as_lists([v for _,
+                                                                                                v in per_class])}
     return MapFit(METHOD, _lookup.kind_of_scores(scores.shape[1]), params, True, float(passes))
 
 
-def tables(params: dict) -> dict[str, np.ndarray]:
+def tables(params: dict[str, Any]) -> dict[str, np.ndarray]:
     """The padded thresholds (K x M) and values (K x (M + 1)) the graph holds."""
     edges = [np.asarray(e, dtype=np.float64) for e in params["edges"]]
     values = [np.asarray(v, dtype=np.float64) for v in params["values"]]
@@ -182,7 +190,7 @@ def build(
     x: str,
     dtype: str,
     num_classes: int,
-    params: dict,
+    params: dict[str, Any],
     *,
     taken=(),
     compute_dtype: str | None = None,

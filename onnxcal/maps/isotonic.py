@@ -35,6 +35,8 @@ class (one list for a one-logit model). Graph: see :mod:`onnxcal.maps._lookup`.
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
 from ..errors import OnnxcalError
@@ -46,7 +48,7 @@ KINDS = _lookup.KINDS
 TIE_RESOLUTION = float(np.finfo(np.float64).resolution)
 
 
-def n_parameters(num_classes: int, params: dict | None = None) -> int:
+def n_parameters(num_classes: int, params: dict[str, Any] | None = None) -> int:
     """Knots and values over all classes (the fit decides how many: ``params`` is needed)."""
     if params is None:
         raise ValueError("an isotonic map's size depends on its fit: pass params")
@@ -85,7 +87,7 @@ def knots(p: np.ndarray, t: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.n
     return u[keep], fitted[keep]
 
 
-def calibrate_columns(params: dict, p: np.ndarray) -> np.ndarray:
+def calibrate_columns(params: dict[str, Any], p: np.ndarray) -> np.ndarray:
     """Each column's isotonic map, before renormalisation (float64)."""
     q = np.empty_like(p)
     for k, (x, y) in enumerate(zip(params["x"], params["y"], strict=True)):
@@ -93,7 +95,7 @@ def calibrate_columns(params: dict, p: np.ndarray) -> np.ndarray:
     return q
 
 
-def apply(params: dict, scores: np.ndarray) -> np.ndarray:
+def apply(params: dict[str, Any], scores: np.ndarray) -> np.ndarray:
     """Calibrated probabilities, float64 (the NumPy reference).
 
     ``scores`` are logits, N x K (softmax) or N x 1 (sigmoid); the result
@@ -109,7 +111,7 @@ def apply(params: dict, scores: np.ndarray) -> np.ndarray:
     return _lookup.renormalise(calibrate_columns(params, p))
 
 
-def check_parameters(params: dict, num_classes: int | None = None, kind: str | None = None) -> dict:
+def check_parameters(params: dict[str, Any], num_classes: int | None = None, kind: str | None = None) -> dict[str, Any]:
     """Validate parameters read from a file; returns them as plain numbers.
 
     Raises
@@ -173,7 +175,7 @@ def fit(
     return MapFit(METHOD, kind, params, True, float(passes), tuple(notes))
 
 
-def tables(params: dict) -> dict[str, np.ndarray]:
+def tables(params: dict[str, Any]) -> dict[str, np.ndarray]:
     """The padded lookup tables the graph holds: thresholds K x M, base_x, base_y, slope K x (M + 1).
 
     Segment j = #{m : x_m <= p}: j = 0 is below the first knot (value y_0),
@@ -199,7 +201,7 @@ def build(
     x: str,
     dtype: str,
     num_classes: int,
-    params: dict,
+    params: dict[str, Any],
     *,
     taken=(),
     compute_dtype: str | None = None,

@@ -26,6 +26,8 @@ replace the layer's weight by W A and its bias by W c + b (docs/maths.md).
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
 from . import _linear
@@ -36,11 +38,11 @@ KINDS = _linear.KINDS
 DEFAULT_L2 = _linear.DEFAULT_L2
 
 
-def n_parameters(num_classes: int, params: dict | None = None) -> int:
+def n_parameters(num_classes: int, params: dict[str, Any] | None = None) -> int:
     return num_classes * num_classes + num_classes
 
 
-def apply(params: dict, scores: np.ndarray) -> np.ndarray:
+def apply(params: dict[str, Any], scores: np.ndarray) -> np.ndarray:
     """Calibrated probabilities softmax(z W^T + b), float64 (the NumPy reference).
 
     Examples
@@ -51,12 +53,13 @@ def apply(params: dict, scores: np.ndarray) -> np.ndarray:
     return _linear.apply(params, scores, log_probs=False)
 
 
-def calibrated_logits(params: dict, scores: np.ndarray) -> np.ndarray:
+def calibrated_logits(params: dict[str, Any], scores: np.ndarray) -> np.ndarray:
     """z W^T + b, the softmax's input (float64)."""
     return _linear.calibrated_logits(params, scores, log_probs=False)
 
 
-def check_parameters(params: dict, num_classes: int | None = None, kind: str = "multiclass") -> dict:
+def check_parameters(params: dict[str, Any], num_classes: int | None = None, kind: str = "multiclass") -> dict[str,
+                                                                                                               Any]:
     """Validate parameters read from a file; returns them as plain numbers.
 
     Raises
@@ -76,7 +79,7 @@ def fit(
     weights: np.ndarray | None = None,
     l2: float = DEFAULT_L2,
     l2_intercept: float | None = None,
-    start: dict | None = None,
+    start: dict[str, Any] | None = None,
 ) -> MapFit:
     """Fit W, b minimising the mean NLL plus the ODIR penalty.
 
@@ -123,7 +126,7 @@ def build(
     x: str,
     dtype: str,
     num_classes: int,
-    params: dict,
+    params: dict[str, Any],
     *,
     taken=(),
     compute_dtype: str | None = None,
@@ -158,7 +161,7 @@ def build(
     )
 
 
-def fold(params: dict, weight: np.ndarray, bias: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def fold(params: dict[str, Any], weight: np.ndarray, bias: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """The weight and bias of a linear layer z = h A^T + c with the map folded in.
 
     ``weight`` is A (K x d, the layer's z = A h + c), ``bias`` is c (K).

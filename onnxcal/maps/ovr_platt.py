@@ -44,6 +44,8 @@ diag(a) A and a * c + b; the Sigmoid and the renormalisation stay.
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
 from ..errors import OnnxcalError
@@ -69,11 +71,11 @@ KINDS = ("multiclass", "binary")
 A_MIN, A_MAX = 1.0 / T_MAX, 1.0 / T_MIN
 
 
-def n_parameters(num_classes: int, params: dict | None = None) -> int:
+def n_parameters(num_classes: int, params: dict[str, Any] | None = None) -> int:
     return 2 * num_classes
 
 
-def apply(params: dict, scores: np.ndarray) -> np.ndarray:
+def apply(params: dict[str, Any], scores: np.ndarray) -> np.ndarray:
     """Calibrated probabilities, float64 (the NumPy reference).
 
     Examples
@@ -87,7 +89,7 @@ def apply(params: dict, scores: np.ndarray) -> np.ndarray:
     return _lookup.renormalise(q)
 
 
-def check_parameters(params: dict, num_classes: int | None = None, kind: str | None = None) -> dict:
+def check_parameters(params: dict[str, Any], num_classes: int | None = None, kind: str | None = None) -> dict[str, Any]:
     """Validate parameters read from a file; returns them as plain numbers.
 
     Raises
@@ -113,7 +115,10 @@ def _pass(scores, labels, a, b, rows, weights):
     k = scores.shape[1]
     f, ga, gb, total = 0.0, np.zeros(k), np.zeros(k), 0.0
     for z, y, w in chunks(scores, labels, rows, weights):
-        t = np.asarray(y, dtype=np.float64).reshape(len(y), 1) if k == 1 else (np.asarray(y)[:, None] == np.arange(k)).astype(np.float64)
+        if k == 1:
+            t = np.asarray(y, dtype=np.float64).reshape(len(y), 1)
+        else:
+            t = (np.asarray(y)[:, None] == np.arange(k)).astype(np.float64)
         s = z * a + b
         loss = np.logaddexp(0.0, s) - t * s
         r = sigmoid(s) - t
@@ -134,7 +139,7 @@ def fit(
     rows: np.ndarray | None = None,
     weights: np.ndarray | None = None,
     l2: float = 0.0,
-    start: dict | None = None,
+    start: dict[str, Any] | None = None,
 ) -> MapFit:
     """Fit a_k, b_k for every class by its binary cross-entropy (L-BFGS-B, analytic gradient).
 
@@ -171,7 +176,8 @@ def fit(
         f += l2 * (float(np.sum((a - 1.0) ** 2)) + float(b @ b))
         return f, np.concatenate([(ga + 2.0 * l2 * (a - 1.0)) / c, gb + 2.0 * l2 * b])
 
-    a0, b0 = (np.ones(k), np.zeros(k)) if start is None else (np.asarray(start["a"], float), np.asarray(start["b"], float))
+    a0, b0 = (np.ones(k), np.zeros(k)) if start is None else (np.asarray(start["a"], float), np.asarray(start["b"],
+                                                                                                        float))
     bounds = [(c * A_MIN, c * A_MAX)] * k + [(-B_MAX, B_MAX)] * k
     res = scipy.optimize.minimize(
         objective, np.concatenate([c * a0, b0]), jac=True, method="L-BFGS-B", bounds=bounds,
@@ -185,14 +191,15 @@ def fit(
             f"{METHOD}: the scale or bias of classes {', '.join(map(str, np.flatnonzero(on_bound)[:5]))} lies on "
             "its bound: a class that is absent, always present, or perfectly separated on this set"
         )
-    return MapFit(METHOD, _lookup.kind_of_scores(k), {"a": plain(a), "b": plain(b)}, bool(res.success), float(evals), tuple(notes))
+    return MapFit(METHOD, _lookup.kind_of_scores(k), {"a": plain(a), "b": plain(b)}, bool(res.success), float(evals),
+                  tuple(notes))
 
 
 def build(
     x: str,
     dtype: str,
     num_classes: int,
-    params: dict,
+    params: dict[str, Any],
     *,
     taken=(),
     compute_dtype: str | None = None,
@@ -205,6 +212,7 @@ def build(
     p = check_parameters(params, num_classes)
     g = GraphBuilder(x, dtype, "onnxcal_ovr_platt", taken, compute_dtype)
     z = g.start()
-    s = g.node("Add", [g.node("Mul", [z, g.const("a", np.asarray(p["a"]))], "a_z"), g.const("b", np.asarray(p["b"]))], "logits")
+    s = g.node("Add", [g.node("Mul", [z, g.const("a", np.asarray(p["a"]))], "a_z"), g.const("b", np.asarray(p["b"]))],
+               "logits")
     q = g.node("Sigmoid", [s], "q")
     return _lookup.finish(g, q, num_classes)

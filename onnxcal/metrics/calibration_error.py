@@ -160,7 +160,7 @@ def classwise_calibration_error(
     return _classwise_from_sums(p_sum, y_sum, len(p), p.shape[1])
 
 
-def _classwise_add(p_sum, y_sum, p, y, w, n_bins, onehot=None):
+def _classwise_add(p_sum, y_sum, p, y, w, n_bins, onehot=None) -> None:
     """Add a chunk's classwise-ECE sums, flat (class, bin) index k * M + m.
 
     Only entries above the first edge are binned one by one (fewer than M

@@ -11,6 +11,7 @@ bin edges need all of them.
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass
+from typing import Any
 
 import numpy as np
 
@@ -81,7 +82,7 @@ class Metrics:
     n_bins: int = DEFAULT_BINS
     kind: str = "multiclass"
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         return asdict(self)
 
 

@@ -10,6 +10,7 @@ turns them into :class:`~onnxcal.metrics.Metrics`.
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
+from typing import Any
 
 import numpy as np
 
@@ -124,9 +125,9 @@ def temperature_pass(
     moments: int = 0,
     sq_moments: int = 0,
     sq_part: int | None = None,
-    extra: Callable[[], Sequence] | None = None,
+    extra: Callable[[], Sequence[Any]] | None = None,
     threads: int | None = None,
-) -> tuple[ScoreSums, list]:
+) -> tuple[ScoreSums, list[Any]]:
     """One pass scoring softmax(beta z) per part (and feeding ``extra`` consumers).
 
     Returns the merged :class:`~onnxcal.metrics.score_sums.ScoreSums` and,

@@ -52,7 +52,7 @@ class ReportResult:
 
     directory: str
     files: tuple[str, ...]
-    content: dict
+    content: dict[str, Any]
 
 
 @dataclass(frozen=True)
@@ -70,7 +70,7 @@ class Evaluation:
 # Describing a scaling (shared with the CLI)
 
 
-def describe_scaling(scaling: Scaling, intervals: dict | None = None) -> str:
+def describe_scaling(scaling: Scaling, intervals: dict[str, Any] | None = None) -> str:
     """One line naming the method and its parameters, with the T interval if any."""
     if not scaling.is_affine:
         return maps.describe(scaling.method, scaling.parameters)
@@ -160,7 +160,7 @@ def evaluation(cap: Capture, scaling: Scaling, summary: FitSummary | None, n_bin
     )
 
 
-def _balance(labels: np.ndarray, kind: str, names: list[str]) -> list[dict]:
+def _balance(labels: np.ndarray, kind: str, names: list[str]) -> list[dict[str, Any]]:
     n = len(labels)
     if kind == "multiclass":
         counts = np.bincount(labels, minlength=len(names))
@@ -180,16 +180,16 @@ def _default_names(kind: str, k: int) -> list[str]:
     return [f"{word} {i}" for i in range(k)]
 
 
-def _metric_table(metrics: Metrics) -> dict:
+def _metric_table(metrics: Metrics) -> dict[str, Any]:
     return {f: _plain(getattr(metrics, f)) for f in METRIC_FIELDS} | {"n": metrics.n, "n_bins": metrics.n_bins}
 
 
-def _plain(v):
+def _plain(v: float | None) -> float | None:
     """A JSON-safe number: NaN and infinities become None."""
     if v is None:
         return None
-    v = float(v)
-    return v if np.isfinite(v) else None
+    x = float(v)
+    return x if np.isfinite(x) else None
 
 
 def _samples_behind(cap: Capture, rows: np.ndarray | None) -> dict[str, int]:
@@ -202,7 +202,7 @@ def _samples_behind(cap: Capture, rows: np.ndarray | None) -> dict[str, int]:
     return {"rows_per_sample": r, "samples_evaluated": int(np.unique(picked // r).size)}
 
 
-def _verdict(content: dict) -> list[str]:
+def _verdict(content: dict[str, Any]) -> list[str]:
     """Short plain sentences a reviewer reads first."""
     m = content["metrics"]
     before, after = m["before"], m["after"]
@@ -253,10 +253,10 @@ def build(
     summary: FitSummary | None = None,
     class_names: list[str] | None = None,
     n_bins: int | None = None,
-    calibrated: dict | None = None,
+    calibrated: dict[str, Any] | None = None,
     verification: VerifyResult | None = None,
-    decisions: dict | None = None,
-) -> dict:
+    decisions: dict[str, Any] | None = None,
+) -> dict[str, Any]:
     """Every number of the report, as the JSON-ready dictionary report.json holds.
 
     Parameters
@@ -297,7 +297,7 @@ def build(
             "on, so this report shows no intervals for the metrics"
         )
     meta = cap.meta
-    content = {
+    content: dict[str, Any] = {
         "format": FORMAT,
         "onnxcal_version": __version__,
         "created": datetime.now(UTC).replace(microsecond=0).isoformat(),
@@ -337,10 +337,10 @@ def build(
             "n_bins": bins,
             "before": _metric_table(before),
             "after": _metric_table(after),
-            "after_interval": intervals.get("after") if use_intervals else None,
+            "after_interval": intervals.get("after") if use_intervals and intervals is not None else None,
             "fit_part": (
                 {part: _metric_table(m) for part, m in summary.fit_part.items()}
-                if ev.summary_reproduced and summary.fit_part is not None
+                if ev.summary_reproduced and summary is not None and summary.fit_part is not None
                 else None
             ),
         },
@@ -361,7 +361,7 @@ def build(
     return content
 
 
-def _decision_figures(cap: Capture, ev: Evaluation, decisions: dict | None) -> dict | None:
+def _decision_figures(cap: Capture, ev: Evaluation, decisions: dict[str, Any] | None) -> dict[str, Any] | None:
     """report.json's ``decisions`` (None without decision outputs), on the rows the figures are on."""
     rows = ev.rows if ev.rows is not None else np.arange(len(cap.logits))
     return decision_figures.section(cap.logits, cap.labels, rows, ev.scaling, ev.scaling.activation,

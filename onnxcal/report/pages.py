@@ -5,6 +5,8 @@ from __future__ import annotations
 import base64
 import html
 import json
+from collections.abc import Collection, Sequence
+from typing import Any
 
 from ..metrics import METRIC_FIELDS, METRIC_LABELS
 from ..scaling import Scaling
@@ -14,7 +16,7 @@ from .plots import PLOT_PIXELS, PLOTS, Content, draw, used_parameters
 from .tables import MARK, bin_table, class_error_table, interval_footnote, outside_interval
 
 FORMATS = ("html", "md", "json", "png")
-FILES = {"html": ("report.html",), "md": ("summary.md",), "json": ("report.json",)}
+FILES: dict[str, tuple[str, ...]] = {"html": ("report.html",), "md": ("summary.md",), "json": ("report.json",)}
 FILES["png"] = (*(f"{p}.png" for p in PLOTS), "decisions.png")  # the last only with decision outputs
 
 
@@ -58,15 +60,15 @@ details summary { cursor: pointer; color: #0060a0; }
 """
 
 
-def _e(value) -> str:
+def _e(value: object) -> str:
     return html.escape(str(value), quote=True)
 
 
-def _num(v, digits: int = 4) -> str:
+def _num(v: float | None, digits: int = 4) -> str:
     return "-" if v is None else f"{v:.{digits}f}"
 
 
-def _interval(pair, digits: int = 4) -> str:
+def _interval(pair: Sequence[float | None] | None, digits: int = 4) -> str:
     return "-" if not pair or pair[0] is None else f"{pair[0]:.{digits}f} to {pair[1]:.{digits}f}"
 
 
@@ -105,7 +107,7 @@ def metric_rows(content: Content) -> tuple[list[str], list[list[str]]]:
     return head, rows
 
 
-def _table_size(value: list) -> str:
+def _table_size(value: list[Any]) -> str:
     """A nested list of numbers in words: ``10 x 10`` or ``10 tables of 4 to 12 values``."""
     sizes = [len(v) for v in value]
     if len(set(sizes)) == 1:
@@ -130,7 +132,7 @@ def _parameter_table(content: Content) -> tuple[list[str], list[list[str]]]:
             continue
         label = {"temperature": "T", "w": "w (scale)", "b": "b (bias)"}.get(key, key)
         iv = interval.get(key)
-        own = fit_part.get(key) if fit_part is not None else None
+        own: Any = fit_part.get(key) if fit_part is not None else None  # a number or a list, like value
         if isinstance(value, list):
             for i, v in enumerate(value):
                 row = [f"{label}, {names[i] if i < len(names) else i}", _num(v), _interval(iv[i]) if iv else "-"]
@@ -161,7 +163,7 @@ def _panel_words(content: Content) -> tuple[str, str]:
     return "Before calibration", f"After calibration with {used_parameters(content)}"
 
 
-def _model_rows(content: dict) -> list[list[str]]:
+def _model_rows(content: dict[str, Any]) -> list[list[str]]:
     m = content["model"]
     rows = [["original model", m["name"]], ["original model sha256", m["sha256"]],
             ["class-score output", m["output"]], ["logits tensor", m["scores"]]]
@@ -181,14 +183,14 @@ def _verdict_item(line: str) -> str:
     return f"<li{marked}>{_e(line)}</li>"
 
 
-def _verification_html(v: dict) -> str:
+def _verification_html(v: dict[str, Any]) -> str:
     rows = [[c["name"], c["status"].upper() if c["status"] == "fail" else c["status"],
              format_figure(c["value"]), format_figure(c["limit"]), c["detail"]] for c in v["checks"]]
     head = f"<p>{v['n']} samples; reference from: {_e(v['reference_from'])} ({_e(v['original'])}).</p>"
     return head + _table(["check", "result", "value", "limit", "what"], rows, numeric_from=9)
 
 
-def choice_rows(choice: dict) -> tuple[list[str], list[list[str]]]:
+def choice_rows(choice: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
     """The comparison table of ``--method auto``: head and rows (figure and 95% interval per metric)."""
     head = ["method", "parameters", "NLL", "ECE", "Brier score", "accuracy", ""]
     rows = []
@@ -204,7 +206,7 @@ def choice_rows(choice: dict) -> tuple[list[str], list[list[str]]]:
     return head, rows
 
 
-def _choice_html(choice: dict | None) -> list[str]:
+def _choice_html(choice: dict[str, Any] | None) -> list[str]:
     if choice is None:
         return []
     head, rows = choice_rows(choice)
@@ -217,7 +219,7 @@ def _choice_html(choice: dict | None) -> list[str]:
     ]
 
 
-def render_html(content: dict, pngs: dict[str, bytes]) -> str:
+def render_html(content: dict[str, Any], pngs: dict[str, bytes]) -> str:
     """The self-contained report.html: inline CSS, plots as base64 PNG, no external links."""
     d, c, m = content["data"], content["calibration"], content["metrics"]
     title = f"Calibration report: {content['model']['name']}"
@@ -294,11 +296,11 @@ def render_html(content: dict, pngs: dict[str, bytes]) -> str:
     return "\n".join(parts)
 
 
-def _md(text) -> str:
+def _md(text: object) -> str:
     return str(text).replace("|", "\\|")
 
 
-def render_markdown(content: dict) -> str:
+def render_markdown(content: dict[str, Any]) -> str:
     """summary.md: a short before/after table and the verdict, for a pull-request comment."""
     c, m = content["calibration"], content["metrics"]
     head, rows = metric_rows(content)
@@ -331,11 +333,11 @@ def render_markdown(content: dict) -> str:
     return "\n".join(lines)
 
 
-def render_json(content: dict) -> str:
+def render_json(content: dict[str, Any]) -> str:
     return json.dumps(content, indent=2, sort_keys=True, allow_nan=False) + "\n"
 
 
-def outputs(formats) -> list[str]:
+def outputs(formats: Collection[str]) -> list[str]:
     """File names written for ``formats``, in order."""
     return [name for f in FORMATS if f in formats for name in FILES[f]]
 
@@ -354,7 +356,7 @@ def _utf8(text: str) -> bytes:
         return raw.decode("utf-8", "backslashreplace").encode()
 
 
-def render(content: dict, formats) -> dict[str, bytes]:
+def render(content: dict[str, Any], formats: Collection[str]) -> dict[str, bytes]:
     """Every file of the report for ``formats``, by file name, in memory."""
     pngs = draw(content)
     files: dict[str, bytes] = {}

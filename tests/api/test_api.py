@@ -40,12 +40,14 @@ def _labelled(tmp_path, rng, model, name, make_labels):
     return tmp_path / f"{name}.onnx", tmp_path / f"{name}.npz"
 
 
-@pytest.mark.parametrize("final, method", [(None, "platt"), ("Sigmoid", "platt"), (None, "temperature"), ("Sigmoid", "temperature")])
+@pytest.mark.parametrize("final, method", [(None, "platt"), ("Sigmoid", "platt"), (None, "temperature"),
+                                           ("Sigmoid", "temperature")])
 def test_binary_single_logit_end_to_end(tmp_path, rng, final, method):
     model = random_mlp(rng, k=1, scale=3.0, final=final)
     # Labels from sigmoid(z / 2 - 0.5): the model is overconfident and biased.
     path, data = _labelled(
-        tmp_path, rng, model, "binary", lambda z: (rng.random(len(z)) < 1 / (1 + np.exp(-(z[:, 0] / 2 - 0.5)))).astype(int)
+        tmp_path, rng, model, "binary", lambda z: (rng.random(len(z)) < 1 / (1 + np.exp(-(z[:,
+                                                                                            0] / 2 - 0.5)))).astype(int)
     )
     cap = api.capture(path, data, out=tmp_path / "cap.npz")
     summary = api.fit(tmp_path / "cap.npz", out=tmp_path / "fit.json", options=FitOptions(method=method, bootstrap=20))

@@ -49,7 +49,7 @@ def digits_setup(tmp_path_factory):
             hidden_layer_sizes=(128,), alpha=0.0, max_iter=2000, tol=1e-12,
             n_iter_no_change=2000, random_state=0,
         ).fit(x_train, y_train)
-    layers = list(zip(clf.coefs_, clf.intercepts_))
+    layers = list(zip(clf.coefs_, clf.intercepts_, strict=True))
     model = mlp_model(layers, final="Softmax", input_name="pixels", output_name="probabilities")
     d = tmp_path_factory.mktemp("digits")
     onnx.save(model, d / "digits.onnx")

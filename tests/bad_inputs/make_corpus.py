@@ -75,7 +75,7 @@ def good_files(d: Path, rng: np.random.Generator) -> None:
     np.savez(d / "val3.npz", x=x[:, :3], labels=np.arange(N) % 3)  # for the 3-input models
     np.savez(d / "unlabelled.npz", x=x)  # inputs only (issue 16: --decision-data needs labels)
     header = ",".join(f"f{i}" for i in range(D)) + ",label\n"
-    rows = "".join(",".join(f"{v:.4f}" for v in row) + f",{label}\n" for row, label in zip(x, y))
+    rows = "".join(",".join(f"{v:.4f}" for v in row) + f",{label}\n" for row, label in zip(x, y, strict=True))
     (d / "val.csv").write_text(header + rows)
     api.capture(d / "model.onnx", d / "val.npz", out=d / "cap.npz")
     api.capture(d / "other_model.onnx", d / "val.npz", out=d / "other_cap.npz")

@@ -29,9 +29,8 @@ import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
-import pytest
-
 import make_corpus
+import pytest
 
 
 @pytest.fixture(scope="session")

@@ -47,7 +47,7 @@ def mlp(widths: list[int], batch: int | str = "N", seed: int = 0) -> onnx.ModelP
     """Gemm/Relu layers of the given widths, raw logits out."""
     rng = np.random.default_rng(seed)
     nodes, inits, x = [], [], "x"
-    for i, (a, b) in enumerate(zip(widths[:-1], widths[1:])):
+    for i, (a, b) in enumerate(zip(widths[:-1], widths[1:], strict=True)):
         inits += [
             numpy_helper.from_array((rng.normal(size=(a, b)) / np.sqrt(a)).astype(np.float32), f"w{i}"),
             numpy_helper.from_array(np.zeros(b, np.float32), f"b{i}"),
@@ -110,7 +110,8 @@ from onnxcal.data import DataSpec
 marks = []
 t0 = time.perf_counter()
 cap = api.capture({model!r}, DataSpec(path={x!r}, labels={labels!r}), out={out!r}, batch_size={batch},
-                  threads={threads}, force=True, progress=lambda d, done, total: marks.append((time.perf_counter(), done)))
+                  threads={threads}, force=True,
+                  progress=lambda d, done, total: marks.append((time.perf_counter(), done)))
 seconds = time.perf_counter() - t0
 steady = (marks[-1][1] - marks[0][1]) / (marks[-1][0] - marks[0][0]) if len(marks) > 1 else float("nan")
 hwm = [l for l in open("/proc/self/status") if l.startswith("VmHWM")][0].split()[1]
@@ -231,7 +232,7 @@ def bench_batch1(work: Path, args) -> None:
         write_set(d, n, widths[0], widths[-1])
         kw = dict(model=model, x=d / "x.npy", labels=d / "labels.npy", threads=args.threads)
         rows = []
-        for r in range(args.rounds):
+        for _ in range(args.rounds):
             loop = run(BARE, out=d / "bare.npy", batch=1, name="x", **kw)["seconds"]
             cap = run(ONNXCAL, out=d / "cap.npz", batch=args.batch, **kw)
             rows.append((loop, cap["seconds"], cap["batching"]))
@@ -267,7 +268,8 @@ def bench_rss(work: Path, args) -> None:
         budget = model_b + 2 * batch_b + logits_b + 200 * mib
         print(f"peak RSS, {args.rss_n} x {widths[0]} float32 .npy = {size / 2**30:.2f} GiB, batch {args.batch}:")
         print(f"  onnxcal capture peak RSS      {peak / mib:8.1f} MiB  ({args.rss_n / cap['seconds']:.0f} samples/s)")
-        print(f"  budget (model {model_b / mib:.2f} + 2 batches {2 * batch_b / mib:.2f} + logits {logits_b / mib:.1f} + 200 MiB) = {budget / mib:.1f} MiB")
+        print(f"  budget (model {model_b / mib:.2f} + 2 batches {2 * batch_b / mib:.2f} + logits {logits_b / mib:.1f}"
+              f" + 200 MiB) = {budget / mib:.1f} MiB")
         print(f"  for scale: python + numpy + onnxruntime + onnxcal imported: {base / mib:.1f} MiB; "
               f"a bare onnxruntime loop over the same memmap: {bare / mib:.1f} MiB")
         print(f"  ratio peak / budget: {peak / budget:.3f} (target <= 1)")

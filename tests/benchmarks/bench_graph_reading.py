@@ -90,7 +90,8 @@ def main() -> None:
         base_mem, base_time = min(r[0] for r in rows["dicts"]), min(r[1] for r in rows["dicts"])
         for mode, runs in rows.items():
             mem, secs = min(r[0] for r in runs), min(r[1] for r in runs)
-            print(f"{mode:8s} peak {mem:6.0f} MiB ({mem / base_mem:.2f}x dicts)  {secs:5.2f} s ({secs / base_time:.2f}x dicts)")
+            print(f"{mode:8s} peak {mem:6.0f} MiB ({mem / base_mem:.2f}x dicts)  "
+                  f"{secs:5.2f} s ({secs / base_time:.2f}x dicts)")
 
 
 if __name__ == "__main__":

@@ -73,10 +73,12 @@ DATASETS: dict[str, Callable] = {"digits": load_digits, "wine": load_wine, "brea
 MODELS: dict[str, Callable[[int], object]] = {
     "logreg": lambda seed: make_pipeline(StandardScaler(), LogisticRegression(C=100.0, max_iter=5000)),
     "forest": lambda seed: RandomForestClassifier(n_estimators=100, random_state=seed),
-    "mlp": lambda seed: make_pipeline(StandardScaler(), MLPClassifier((64,), alpha=1e-6, max_iter=2000, random_state=seed)),
+    "mlp": lambda seed: make_pipeline(StandardScaler(), MLPClassifier((64,), alpha=1e-6, max_iter=2000,
+                                                                      random_state=seed)),
     "svm": lambda seed: make_pipeline(StandardScaler(), SVC(C=1.0)),
 }
-ONNXCAL_MULTICLASS = ("temperature", "vector", "matrix", "dirichlet", "ensemble-temperature", "ovr-platt", "isotonic", "histogram")
+ONNXCAL_MULTICLASS = ("temperature", "vector", "matrix", "dirichlet", "ensemble-temperature", "ovr-platt", "isotonic",
+                      "histogram")
 ONNXCAL_BINARY = ("temperature", "platt", "beta", "isotonic", "histogram")
 SKLEARN = ("sigmoid", "isotonic", "temperature")
 AUTOS = ("auto", "auto-paired", "auto-cv", "auto-cv-paired")
@@ -260,10 +262,12 @@ def report(results, times, repeats: int) -> str:
                 else:
                     losses += 1
                     worse_pairs.add(" / ".join(pair))
-        out.append(f"better on {wins}, equal (within 1e-4) on {ties}, worse on {losses} of {wins + ties + losses} splits"
+        out.append(f"better on {wins}, equal (within 1e-4) on {ties}, worse on {losses} "
+                   f"of {wins + ties + losses} splits"
                    + (f" (worse on: {', '.join(sorted(worse_pairs))})." if worse_pairs else "."))
         out.append("Choices: " + ", ".join(f"{m} {n}" for m, n in sorted(picks.items(), key=lambda kv: -kv[1])) + ".")
-    out.append("\nMean fit time per method (s, on the calibration part): " + ", ".join(f"{m} {np.mean(t):.3f}" for m, t in times.items()))
+    out.append("\nMean fit time per method (s, on the calibration part): " + ", ".join(f"{m} {np.mean(t):.3f}" for m,
+                                                                                       t in times.items()))
     return "\n".join(out) + "\n"
 
 

@@ -193,8 +193,10 @@ def main() -> None:
             chosen.append(pick)
         b, e, w = verdicts(results)
         totals = [totals[0] + b, totals[1] + e, totals[2] + w]
-        parts.append(table(f"{label} ({name}, {len(np.load(FIXTURES / manifest[name]['val'])['labels'])} rows)", results, chosen)
-                     + f"\n\nauto vs the best scikit-learn method, test NLL per split: better {b}, equal {e}, worse {w} "
+        parts.append(table(f"{label} ({name}, {len(np.load(FIXTURES / manifest[name]['val'])['labels'])} rows)",
+                           results, chosen)
+                     + "\n\nauto vs the best scikit-learn method, test NLL per split: "
+                     f"better {b}, equal {e}, worse {w} "
                      f"({time.perf_counter() - t0:.0f} s)\n")
         print(parts[-1], flush=True)
     text = "\n".join(parts) + (f"\nAll splits: auto better than the best scikit-learn method on {totals[0]}, "

@@ -44,7 +44,7 @@ def mlp(sizes: list[int], seed: int) -> onnx.ModelProto:
     """Gemm + Relu layers of ``sizes`` (input first), ending in Softmax, like an exporter writes them."""
     rng = np.random.default_rng(seed)
     nodes, inits, x = [], [], "x"
-    for i, (a, b) in enumerate(zip(sizes[:-1], sizes[1:])):
+    for i, (a, b) in enumerate(zip(sizes[:-1], sizes[1:], strict=True)):
         w = (rng.normal(size=(a, b)) / np.sqrt(a)).astype(np.float32)
         inits += [numpy_helper.from_array(w, f"w{i}"), numpy_helper.from_array(np.zeros(b, np.float32), f"b{i}")]
         y = f"h{i}"
@@ -96,7 +96,7 @@ def measure(models: dict[str, onnx.ModelProto], feed, options: RunOptions, budge
     for _ in range(rounds):
         times = time_alternately(calls, repeats, warmup=max(5, repeats // 20))
         med = np.median(times, axis=1)
-        results.append(dict(zip(models, med)))
+        results.append(dict(zip(models, med, strict=True)))
     return results, repeats
 
 

@@ -6,9 +6,9 @@ from dataclasses import replace
 import numpy as np
 import onnx
 import onnxruntime as ort
+from conftest import capture_of, per_sample, random_mlp
 from onnx import TensorProto, helper, numpy_helper
 
-from conftest import capture_of, per_sample, random_mlp
 from onnxcal.capture import RunOptions
 from onnxcal.data import Dataset
 

@@ -5,9 +5,9 @@ import warnings
 import numpy as np
 import onnx
 import pytest
+from conftest import capture_of, per_sample, random_mlp
 from onnx import TensorProto, helper, numpy_helper
 
-from conftest import capture_of, per_sample, random_mlp
 from onnxcal.data import Dataset
 from onnxcal.errors import OnnxcalWarning
 
@@ -68,7 +68,8 @@ def test_batch1_model_is_freed_and_batched(rng):
     assert model.graph.input[0].type.tensor_type.shape.dim[0].dim_value == 1
 
 
-@pytest.mark.parametrize("kind, reason", [("reshape", "fails on a batch of 32"), ("coupled", "differs from 1-sample runs")])
+@pytest.mark.parametrize("kind, reason", [("reshape", "fails on a batch of 32"), ("coupled",
+                                                                                  "differs from 1-sample runs")])
 def test_batch1_model_that_cannot_be_freed_falls_back(rng, kind, reason):
     model = batch1_model(kind, rng)
     x = rng.normal(size=(40, 6)).astype(np.float32)

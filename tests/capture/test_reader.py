@@ -4,8 +4,8 @@ from dataclasses import replace
 
 import numpy as np
 import pytest
-
 from conftest import capture_of, load_set, random_mlp
+
 from onnxcal.capture import capture, load_capture, load_captures, merge_captures, save_capture
 from onnxcal.data import Dataset
 from onnxcal.errors import OnnxcalError, OnnxcalWarning
@@ -21,7 +21,9 @@ def test_old_capture_files_without_indices_still_load(tmp_path, rng):
     model = random_mlp(rng)
     ds = Dataset({"x": rng.normal(size=(9, 6)).astype(np.float32)}, rng.integers(0, 4, 9), "mem")
     cap = capture_of(model, ds)
-    meta = {k: v for k, v in cap.meta.to_dict().items() if k in ("model_sha256", "model_path", "output", "scores", "activation", "class_axis", "num_classes", "n", "data_source", "onnxcal_version")}
+    kept = ("model_sha256", "model_path", "output", "scores", "activation", "class_axis", "num_classes", "n",
+            "data_source", "onnxcal_version")
+    meta = {k: v for k, v in cap.meta.to_dict().items() if k in kept}
     import json
     np.savez(tmp_path / "old.npz", logits=cap.logits, labels=cap.labels, meta=np.array(json.dumps(meta)))
     old = load_capture(tmp_path / "old.npz")

@@ -3,8 +3,6 @@
 import numpy as np
 import onnxruntime as ort
 import pytest
-from onnx.reference import ReferenceEvaluator
-
 from conftest import (
     DEMO_MODEL,
     DEMO_VAL,
@@ -15,6 +13,8 @@ from conftest import (
     capture_of,
     random_mlp,
 )
+from onnx.reference import ReferenceEvaluator
+
 from onnxcal import graph
 from onnxcal.capture import run_model
 from onnxcal.data import Dataset, DataSpec, load_dataset, load_npz

@@ -2,8 +2,8 @@
 
 import numpy as np
 import pytest
-
 from conftest import capture_of, random_mlp
+
 from onnxcal.capture import RunOptions, check_run_options
 from onnxcal.data import Dataset
 from onnxcal.errors import OnnxcalError
@@ -20,9 +20,12 @@ def test_threads_and_optimisation_levels_give_the_same_logits(rng):
 @pytest.mark.parametrize(
     "options, message",
     [
-        (RunOptions(provider="NoSuchExecutionProvider"), "--provider NoSuchExecutionProvider is not available.*CPUExecutionProvider"),
+        (RunOptions(provider="NoSuchExecutionProvider"),
+         "--provider NoSuchExecutionProvider is not available.*CPUExecutionProvider"),
         (RunOptions(optimization="max"), "--optimization 'max' .*disable, basic, extended, all"),
-        (RunOptions(threads=-1), r"--threads -1 is out of range: give a number of threads \(0: onnxruntime.s default, one per core\) from 0 to \d+"),
+        (RunOptions(threads=-1),
+         r"--threads -1 is out of range: give a number of threads "
+         r"\(0: onnxruntime.s default, one per core\) from 0 to \d+"),
         (RunOptions(batch_size=0), "--batch-size 0 is out of range: give a number of samples from 1 to 16777216"),
     ],
 )

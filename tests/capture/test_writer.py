@@ -2,8 +2,8 @@
 
 import numpy as np
 import pytest
-
 from conftest import BELT_CLASSES, BELT_MODEL, capture_of, files_in, load_set, random_mlp
+
 from onnxcal import graph
 from onnxcal.capture import load_capture, save_capture
 from onnxcal.data import Dataset, DataSpec, load_dataset, load_npz

@@ -9,7 +9,6 @@ from pathlib import Path
 import numpy as np
 import onnx
 import pytest
-
 from conftest import DEMO_MODEL, files_in, identity_model, onehot_int_model, random_mlp, save_model
 
 
@@ -41,7 +40,8 @@ def test_verify_help_documents_the_exit_codes(run_cli):
     assert r.code == 0
     text = " ".join(r.out.split())
     assert "0 every check passed" in text and "1 a check failed" in text and "2 bad input" in text
-    for option in ("--max-ece", "--max-nll", "--min-accuracy", "--latency", "--max-latency-ratio", "--junit", "--scores"):
+    for option in ("--max-ece", "--max-nll", "--min-accuracy", "--latency", "--max-latency-ratio", "--junit",
+                   "--scores"):
         assert option in text
 
 
@@ -93,10 +93,12 @@ BAD = [
     (["capture", "model.onnx", "--data", "nolabels.npz", "--out", "c.npz"], "no array named 'labels'"),
     (["calibrate", "model.onnx", "--data", "biglabels.npz", "--out", "o.onnx"], r"label 4 at row 0 .*outside \[0, 4\)"),
     (["capture", "model.onnx", "--data", "short.npz", "--out", "c.npz"], "different numbers of samples"),
-    (["calibrate", "identity.onnx", "--data", "nan.npz", "--out", "o.onnx", "-q"], "NaN or Inf in 4 of 20 rows .first rows: 2, 5, 7, 11"),
+    (["calibrate", "identity.onnx", "--data", "nan.npz", "--out", "o.onnx", "-q"],
+     "NaN or Inf in 4 of 20 rows .first rows: 2, 5, 7, 11"),
     (["patch", "model.onnx", "--temperature", "2", "--out", "model.onnx"], "is the input file"),
     (["patch", "model.onnx", "--temperature", "2", "--out", "./sub/../model.onnx"], "is the input file"),
-    (["calibrate", "model.onnx", "--data", "val.npz", "--out", "missing_dir/o.onnx"], "output directory .* does not exist"),
+    (["calibrate", "model.onnx", "--data", "val.npz", "--out", "missing_dir/o.onnx"],
+     "output directory .* does not exist"),
     (["patch", "model.onnx", "--temperature", "0", "--out", "o.onnx"], "not a positive finite number"),
     (["patch", "model.onnx", "--temperature", "2", "--output", "nope", "--out", "o.onnx"], "no output named 'nope'"),
     (["fit", "val.npz"], "not an onnxcal capture file"),
@@ -144,11 +146,16 @@ DATA_BAD = [
     (["capture", "model.onnx", "--data", "val.npz", "--out", "c.npz", "--shard", "0/3"], "--shard 0/3 is out of range"),
     (["capture", "model.onnx", "--input", "x", "--out", "c.npz"], "--input 'x' is not of the form NAME=FILE.npy"),
     (["capture", "model.onnx", "--out", "c.npz"], "no validation data given; pass --data PATH or --input"),
-    (["capture", "model.onnx", "--data", "val.npz", "--resize", "8", "--out", "c.npz"], "--resize applies to image folders only"),
-    (["calibrate", "model.onnx", "--data", "val.npz", "--provider", "Nope", "--out", "o.onnx"], "--provider Nope is not available"),
-    (["calibrate", "model.onnx", "--data", "val.npz", "--optimization", "max", "--out", "o.onnx"], "--optimization 'max'"),
-    (["capture", "model.onnx", "--data", "bad.csv", "--out", "c.npz"], "line 3, column 'b' .* holds 'oops', not a number"),
-    (["verify", "model.onnx", "--data", "val.npz", "--limit", "0"], "--limit 0 is out of range: give a number of samples of at least 1"),
+    (["capture", "model.onnx", "--data", "val.npz", "--resize", "8", "--out", "c.npz"],
+     "--resize applies to image folders only"),
+    (["calibrate", "model.onnx", "--data", "val.npz", "--provider", "Nope", "--out", "o.onnx"],
+     "--provider Nope is not available"),
+    (["calibrate", "model.onnx", "--data", "val.npz", "--optimization", "max", "--out", "o.onnx"],
+     "--optimization 'max'"),
+    (["capture", "model.onnx", "--data", "bad.csv", "--out", "c.npz"],
+     "line 3, column 'b' .* holds 'oops', not a number"),
+    (["verify", "model.onnx", "--data", "val.npz", "--limit", "0"],
+     "--limit 0 is out of range: give a number of samples of at least 1"),
     (["capture", "model.onnx", "--data", "val.npz", "--out", "val.npz", "--force"], "is the input file"),
 ]
 

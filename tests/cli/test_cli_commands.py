@@ -6,9 +6,8 @@ import re
 import numpy as np
 import onnx
 import pytest
-from onnx import numpy_helper
-
 from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, FIXTURES, save_model
+from onnx import numpy_helper
 
 from onnxcal import graph
 
@@ -135,7 +134,8 @@ def demo_capture(tmp_path_factory):
 def test_fit_table_shows_held_out_intervals_and_fit_part(demo_capture, run_cli):
     r = run_cli("fit", demo_capture, "--bootstrap", "30", "--seed", "3")
     assert r.code == 0, r.err
-    for text in ("held-out", "95% interval", "fit part", "MCE", "adaptive ECE", "classwise ECE", "gap", "refitted on all 2000"):
+    for text in ("held-out", "95% interval", "fit part", "MCE", "adaptive ECE", "classwise ECE", "gap",
+                 "refitted on all 2000"):
         assert text in r.out, text
     r = run_cli("fit", demo_capture, "--holdout", "0", "--bootstrap", "0")
     assert "in-sample" in r.out and "95% interval" not in r.out and "fit part" not in r.out
@@ -162,8 +162,10 @@ BAD_FIT = [
     (["--method", "platt"], "--method platt does not apply to a multiclass"),
     (["--method", "nope"], "--method 'nope' is not one of"),
     (["--multilabel", "shared"], "--multilabel needs an N x K"),
-    (["--bootstrap", "-1"], r"--bootstrap -1 is out of range: give a number of replicates \(0 skips the intervals\) from 0 to 10000"),
-    (["--l2", "0.1"], "--l2 applies to --method vector, platt, matrix, dirichlet, beta, ovr-platt and auto, not temperature"),
+    (["--bootstrap", "-1"],
+     r"--bootstrap -1 is out of range: give a number of replicates \(0 skips the intervals\) from 0 to 10000"),
+    (["--l2", "0.1"],
+     "--l2 applies to --method vector, platt, matrix, dirichlet, beta, ovr-platt and auto, not temperature"),
 ]
 
 

@@ -23,7 +23,8 @@ from onnxcal.scaling import Scaling
 
 EXPORTERS = FIXTURES / "exporters"
 MULTICLASS = (EXPORTERS / "skl2onnx_mlp_tensor.onnx", EXPORTERS / "digits_features_val.npz", "probabilities")
-BINARY = (EXPORTERS / "torch_script_cnn_sigmoid_binary_op17.onnx", EXPORTERS / "digits_images_odd_val.npz", "probability")
+BINARY = (EXPORTERS / "torch_script_cnn_sigmoid_binary_op17.onnx", EXPORTERS / "digits_images_odd_val.npz",
+          "probability")
 # ovr-platt on one logit is Platt scaling; it is run here too (auto leaves it out).
 CASES = [(m, MULTICLASS) for m in candidate_methods("multiclass")[1:]] + [
     (m, BINARY) for m in (*candidate_methods("binary")[1:], "ovr-platt")
@@ -66,7 +67,8 @@ def test_fit_patch_verify_report(tmp_path, run_cli, method, case):
     scaling = Scaling(saved["method"], saved["parameters"], saved["kind"])
     got = _run(patched, output, data)
     want = scaling.probabilities(logits)
-    want = want[:, 0] if got.ndim == 1 else (np.c_[1 - want, want] if got.shape[1] == 2 and want.shape[1] == 1 else want)
+    want = want[:, 0] if got.ndim == 1 else (np.c_[1 - want,
+                                                   want] if got.shape[1] == 2 and want.shape[1] == 1 else want)
     np.testing.assert_allclose(got.reshape(want.shape), want, atol=1e-5)
     r = run_cli("verify", patched, "--data", data, "--original", model, "--json")
     assert r.code == 0, r.out

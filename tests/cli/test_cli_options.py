@@ -32,7 +32,8 @@ def test_images_and_npy_inputs_on_the_command_line(tmp_path, run_cli):
 
 def test_capture_shards_then_fit_them_together(tmp_path, run_cli):
     for i in (1, 2):
-        r = run_cli("capture", DEMO_MODEL, "--data", DEMO_VAL, "--shard", f"{i}/2", "--out", tmp_path / f"{i}.npz", "-q")
+        r = run_cli("capture", DEMO_MODEL, "--data", DEMO_VAL, "--shard", f"{i}/2", "--out", tmp_path / f"{i}.npz",
+                    "-q")
         assert r.code == 0, r.err
     r = run_cli("fit", tmp_path / "1.npz", tmp_path / "2.npz", "--json", "--bootstrap", "0")
     assert r.code == 0, r.err

@@ -10,9 +10,8 @@ from pathlib import Path
 import numpy as np
 import onnx
 import pytest
-from onnx import numpy_helper
-
 from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, ROOT, files_in, save_model
+from onnx import numpy_helper
 
 from onnxcal import graph
 
@@ -112,7 +111,8 @@ FAILURES = [
     ("max-ece", lambda g, t: [g / "calibrated.onnx", "--max-ece", "0.001"], {"max-ece"}),
     ("max-nll", lambda g, t: [g / "calibrated.onnx", "--max-nll", "0.01"], {"max-nll"}),
     ("min-accuracy", lambda g, t: [g / "calibrated.onnx", "--min-accuracy", "0.99"], {"min-accuracy"}),
-    ("latency", lambda g, t: [g / "calibrated.onnx", "--max-latency-ratio", "1e-6", "--latency-runs", "3"], {"latency"}),
+    ("latency", lambda g, t: [g / "calibrated.onnx", "--max-latency-ratio", "1e-6", "--latency-runs", "3"],
+     {"latency"}),
 ]
 
 
@@ -163,7 +163,8 @@ def test_verify_without_original_or_scores_uses_the_patched_graph(gate, tmp_path
     import xml.etree.ElementTree as ET
 
     suite = ET.parse(tmp_path / "j.xml").getroot().find("testsuite")
-    assert suite.get("skipped") == "1" and [c.get("name") for c in suite.iter("testcase") if c.find("skipped") is not None] == ["source"]
+    assert suite.get("skipped") == "1"
+    assert [c.get("name") for c in suite.iter("testcase") if c.find("skipped") is not None] == ["source"]
     r = run_cli("verify", gate / "orphan.onnx", "--data", DEMO_TEST)  # the table and notes (not -q)
     assert "patched graph's own logits" in r.out
     # A wrong T inside the orphan is still caught by the recomputed reference.
@@ -239,7 +240,8 @@ def test_ci_example_works_as_written(tmp_path):
     env = {**os.environ, "PATH": f"{Path(sys.executable).parent}{os.pathsep}{os.environ['PATH']}"}
 
     def bash(script):
-        return subprocess.run(["bash", "-c", script], cwd=tmp_path, env=env, capture_output=True, text=True, timeout=300)
+        return subprocess.run(["bash", "-c", script], cwd=tmp_path, env=env, capture_output=True, text=True,
+                              timeout=300)
 
     for kind, body in blocks:
         if kind == "run":

@@ -2,7 +2,6 @@
 
 import numpy as np
 import pytest
-
 from conftest import TICKETS, TICKETS_LABELS
 from data_helpers import SPEC, TICKET_SPECS, load, write
 

@@ -2,7 +2,6 @@
 
 import numpy as np
 import pytest
-
 from conftest import DEMO_CLASSES, DEMO_CSV, DEMO_VAL
 from data_helpers import DEMO_SPEC, load
 

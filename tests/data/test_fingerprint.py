@@ -1,7 +1,6 @@
 """The data_id of a set: its files' contents, not their paths (onnxcal/data/fingerprint.py)."""
 
 import numpy as np
-
 from data_helpers import load, write
 
 

@@ -2,10 +2,9 @@
 
 import numpy as np
 import pytest
-from PIL import Image
-
 from conftest import BELT_CLASSES, BELT_IMAGES, BELT_LABELS, BELT_PREPROCESS
 from data_helpers import IMAGE_SPEC, load
+from PIL import Image
 
 from onnxcal.errors import OnnxcalError
 from onnxcal.graph import TensorSpec
@@ -50,7 +49,7 @@ def test_image_folder_without_class_list_uses_sorted_folder_names():
 def test_image_labels_csv_gives_the_same_labels_as_the_folders():
     folders = load(IMAGE_SPEC, path=BELT_IMAGES, classes=BELT_CLASSES, preprocess=BELT_PREPROCESS)
     listed = load(IMAGE_SPEC, path=BELT_IMAGES, labels=BELT_LABELS, classes=BELT_CLASSES, preprocess=BELT_PREPROCESS)
-    by_file = dict(zip(folders.inputs["image"].files, folders.labels.tolist()))
+    by_file = dict(zip(folders.inputs["image"].files, folders.labels.tolist(), strict=True))
     assert [by_file[f] for f in listed.inputs["image"].files] == listed.labels.tolist()
     assert listed.inputs["image"].files != folders.inputs["image"].files  # CSV order kept
 

@@ -2,7 +2,6 @@
 
 import numpy as np
 import pytest
-
 from data_helpers import SPEC, write
 
 from onnxcal.data import load_npz, match_inputs

@@ -2,7 +2,6 @@
 
 import numpy as np
 import pytest
-
 from data_helpers import load, write
 
 from onnxcal.data import check_label_array, check_labels, read_classes
@@ -27,7 +26,8 @@ def test_npz_string_labels_are_mapped_through_the_class_list(tmp_path):
 
 @pytest.mark.parametrize(
     "text, message",
-    [("a\n\nb\n", "line 2 .* is blank"), ("a\nb\na\n", "class 'a' is listed twice in .* .lines 1 and 3"), ("\n\n", "no class names")],
+    [("a\n\nb\n", "line 2 .* is blank"), ("a\nb\na\n", "class 'a' is listed twice in .* .lines 1 and 3"),
+     ("\n\n", "no class names")],
 )
 def test_class_file_errors(tmp_path, text, message):
     path = tmp_path / "c.txt"

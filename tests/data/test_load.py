@@ -2,7 +2,6 @@
 
 import numpy as np
 import pytest
-
 from conftest import DEMO_CSV, DEMO_VAL, TICKETS, TICKETS_LABELS
 from data_helpers import DEMO_SPEC, TICKET_SPECS, load
 

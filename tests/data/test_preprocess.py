@@ -4,7 +4,6 @@ import json
 
 import numpy as np
 import pytest
-
 from conftest import BELT_IMAGES, BELT_PREPROCESS
 from data_helpers import IMAGE_SPEC, load
 

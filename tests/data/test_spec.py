@@ -2,7 +2,6 @@
 
 import numpy as np
 import pytest
-
 from conftest import DEMO_VAL
 from data_helpers import DEMO_SPEC, load, write
 
@@ -59,7 +58,8 @@ def test_limit_and_shuffle_seed():
 
 @pytest.mark.parametrize(
     "text, message",
-    [("2", "not of the form I/N"), ("0/4", "shards are numbered 1 to N"), ("5/4", "out of range"), ("a/b", "not of the form")],
+    [("2", "not of the form I/N"), ("0/4", "shards are numbered 1 to N"), ("5/4", "out of range"), ("a/b",
+                                                                                                    "not of the form")],
 )
 def test_parse_shard_errors(text, message):
     with pytest.raises(OnnxcalError, match=message):

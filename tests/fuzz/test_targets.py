@@ -11,7 +11,6 @@ from __future__ import annotations
 import random
 
 import pytest
-
 import targets
 
 MUTATIONS = {"model": 300, "npz": 150, "capture": 150, "fit": 150}

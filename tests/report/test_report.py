@@ -12,9 +12,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, FIXTURES, files_in
 from PIL import Image
 
-from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL, FIXTURES, files_in
 from onnxcal import api
 from onnxcal.fit import FitOptions
 from onnxcal.metrics import METRIC_FIELDS, evaluate
@@ -156,7 +156,7 @@ def test_summary_md_has_the_before_after_table(demo):
     assert re.fullmatch(r"\|---\|(---:\|)+", lines[start + 1])
     rows = [line.strip("|").split("|") for line in lines[start + 2 : start + 2 + len(METRIC_FIELDS)]]
     assert len(rows) == len(METRIC_FIELDS)
-    for key, row in zip(METRIC_FIELDS, rows):
+    for key, row in zip(METRIC_FIELDS, rows, strict=True):
         cells = [c.strip() for c in row]
         assert cells[1] == f"{content['metrics']['before'][key]:.4f}"
         assert cells[2] == f"{content['metrics']['after'][key]:.4f}"
@@ -167,7 +167,8 @@ def test_summary_md_has_the_before_after_table(demo):
 
 
 def test_format_selects_the_outputs(demo, tmp_path, run_cli):
-    r = run_cli("report", demo / "scores.npz", "--fit", demo / "fit.json", "--out", tmp_path / "r", "--format", "md,json")
+    r = run_cli("report", demo / "scores.npz", "--fit", demo / "fit.json", "--out", tmp_path / "r", "--format",
+                "md,json")
     assert r.code == 0, r.err
     assert {p.name for p in (tmp_path / "r").iterdir()} == {"summary.md", "report.json"}
     assert "validation set" in r.out  # the caution
@@ -220,7 +221,8 @@ def test_binary_and_multilabel_variants(tmp_path, model, data, kind):
     k = c["data"]["num_classes"]
     assert len(c["reliability"]["after"]["class_error"]) == k
     # The per-label errors average to the classwise ECE of the table.
-    assert np.mean(c["reliability"]["after"]["class_error"]) == pytest.approx(c["metrics"]["after"]["classwise_ece"], rel=1e-9)
+    assert np.mean(c["reliability"]["after"]["class_error"]) == pytest.approx(c["metrics"]["after"]["classwise_ece"],
+                                                                              rel=1e-9)
     if kind == "binary":
         assert [b["name"] for b in c["data"]["balance"]] == ["positive class absent (0)", "positive class present (1)"]
     text = " ".join(_page(tmp_path / "r" / "report.html").text)
@@ -266,7 +268,8 @@ def test_bad_report_input(demo, tmp_path, run_cli, rng, args, message):
     other = save_model(random_mlp(rng, d=16, k=5), tmp_path / "other.onnx")
     x = np.load(DEMO_VAL)
     np.savez(tmp_path / "other.npz", x=x["band_energies"], labels=x["labels"])
-    api.fit(api.capture(other, tmp_path / "other.npz"), out=tmp_path / "other_fit.json", options=FitOptions(bootstrap=0))
+    api.fit(api.capture(other, tmp_path / "other.npz"), out=tmp_path / "other_fit.json",
+            options=FitOptions(bootstrap=0))
     swap = {"FIT": demo / "fit.json", "THREE": tmp_path / "three.txt", "DEMO": DEMO_MODEL,
             "OTHERFIT": tmp_path / "other_fit.json"}
     before = files_in(tmp_path)
