@@ -38,8 +38,10 @@ from .common import (
     warn_nonfinite_inputs,
     with_note,
 )
+from .models import models_in_memory
 from .patching import PatchOptions, PatchResult
 from .reporting import capture_names, report_files, report_targets
+from .sampling import VERIFY_ROWS, subset, verification_sample
 
 
 @dataclass(frozen=True)
@@ -120,20 +122,28 @@ def _fit_captured(seen: _Captured, options: FitOptions) -> FitSummary:
 
 
 def _patch_and_check(
-    source: _Source, patching: PatchOptions, seen: _Captured, summary: FitSummary
+    source: _Source, patching: PatchOptions, seen: _Captured, summary: FitSummary, verify_rows: int | None
 ) -> tuple[onnx.ModelProto, Record, VerifyResult]:
-    """The patched model (in memory), its record, and its checks against the captured logits and the original."""
-    cap = seen.cap
+    """The patched model (in memory), its record, and its checks against the captured logits and the original,
+    on every row or (``verify_rows``) on a sample of them (:func:`.sampling.verification_sample`)."""
+    cap, dataset, logits, keep = seen.cap, source.dataset, seen.full.logits, seen.keep
+    sample = verification_sample(seen.full.labels, logits, keep, verify_rows)
+    identity_set = dataset
+    if sample is not None:
+        rows = sample.positions
+        dataset, logits, keep = subset(dataset, rows), logits[rows], keep[rows]
+        identity_set = subset(source.dataset, sample.identity_positions)
     patched = patching.patch(source.model, summary.scaling, sha=source.sha, path=source.path, fit=summary.to_dict(),
                              reading=_reading.patch_reading(cap.meta.to_dict()), largest_logit=max_abs(cap.logits))
     record = graph.read_record(patched, cap.meta.output)
     run, progress = source.run, source.progress
-    checks = compare_as_it_runs(patched, record, source.dataset, run, progress, seen.full.logits, seen.keep)
+    checks = compare_as_it_runs(patched, record, dataset, run, progress, logits, keep)
     # other heads: the original's sha256
     source_sha = source.sha if len(graph.read_records(patched)) == 1 else record.source_sha256
     checks += record_checks(record, patched, source.model, source_sha)
-    checks.append(_reading.identity(source.model, patched, (record,), source.dataset, run, progress))
-    return patched, record, VerifyResult(checks=tuple(checks), n=source.dataset.n, original=str(source.path))
+    checks.append(_reading.identity(source.model, patched, (record,), identity_set, run, progress))
+    notes = () if sample is None else (sample.note,)
+    return patched, record, VerifyResult(checks=tuple(checks), n=dataset.n, original=str(source.path), notes=notes)
 
 
 def _report_files(
@@ -150,9 +160,18 @@ def _report_files(
     return report_files(directory, content, FORMATS)
 
 
+def check_verify_rows(verify_rows: int | None) -> int | None:
+    if verify_rows is not None and (isinstance(verify_rows, bool) or not isinstance(verify_rows, int)
+                                    or verify_rows < 1):
+        raise OnnxcalError(f"verify_rows must be a whole number of rows of at least 1, or None for every row; got "
+                           f"{verify_rows!r}", "pass verify_rows=None to check every row")
+    return verify_rows
+
+
+@models_in_memory("model_path")
 @one_command
 def calibrate(
-    model_path: str | os.PathLike,
+    model_path: str | os.PathLike | onnx.ModelProto,
     data: DataSource,
     out: str | os.PathLike,
     *,
@@ -174,6 +193,7 @@ def calibrate(
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
     output_holds: str | None = None,
     score_columns: str | None = None,
+    verify_rows: int | None = VERIFY_ROWS,
 ) -> CalibrateResult:
     """Capture, fit, patch and verify in one go (and write a report).
 
@@ -189,9 +209,14 @@ def calibrate(
     together, only once everything is computed. ``drop_nonfinite`` leaves out
     samples whose logits hold NaN or Inf (a note says how many; by default
     they are refused); ``max_model_bytes`` as for :func:`capture`.
+    ``verify_rows``: the patched model is checked on at most this many
+    rows (stratified by label, with the rows of largest absolute logit;
+    :data:`VERIFY_ROWS` by default), or on every row with None; ``verify``
+    always checks every row.
     """
     check_fit_options(options)
     check_columns(score_columns)
+    verify_rows = check_verify_rows(verify_rows)
     spec = data_spec(data)
     limit = model_byte_limit(max_model_bytes)
     external = _check_outputs(out, report, model_path, spec, force, limit)
@@ -207,7 +232,7 @@ def calibrate(
     seen = _capture_finite(source, patching, drop_nonfinite)
     warn_nonfinite_inputs(seen.full, dataset.source)
     summary = _fit_captured(seen, options)
-    patched, record, result = _patch_and_check(source, patching, seen, summary)
+    patched, record, result = _patch_and_check(source, patching, seen, summary, verify_rows)
     written = PatchResult(path=str(out), record=record) if result.passed else None
     files: dict[Path, bytes] = graph.model_files(patched, out, external=external) if written is not None else {}
     written_report = None

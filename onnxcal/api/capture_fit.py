@@ -7,6 +7,8 @@ import warnings
 from collections.abc import Sequence
 from dataclasses import replace
 
+import onnx
+
 from .. import graph
 from .. import reading as _reading
 from .._files import check_output_path, one_command
@@ -29,9 +31,11 @@ from .common import (
     warn_nonfinite_inputs,
     with_note,
 )
+from .models import models_in_memory
 
 
-def inspect(model_path: str | os.PathLike, *, max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES) -> ModelInfo:
+@models_in_memory("model_path")
+def inspect(model_path: str | os.PathLike | onnx.ModelProto, *, max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES) -> ModelInfo:
     """Describe a model: inputs, outputs, opset, class-score output, record.
 
     ``max_model_bytes`` (an int or a size such as ``"8GiB"``): larger model
@@ -43,9 +47,10 @@ def inspect(model_path: str | os.PathLike, *, max_model_bytes: int | str = DEFAU
     return graph.describe(model, model_path, graph.model_sha256(model_path), external)
 
 
+@models_in_memory("model_path")
 @one_command
 def capture(
-    model_path: str | os.PathLike,
+    model_path: str | os.PathLike | onnx.ModelProto,
     data: DataSource,
     *,
     out: str | os.PathLike | None = None,

@@ -7,6 +7,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+import onnx
 
 from .. import graph
 from .. import reading as _reading
@@ -23,6 +24,7 @@ from .common import (
     file_only_sha256,
     model_byte_limit,
 )
+from .models import models_in_memory
 
 
 @dataclass(frozen=True)
@@ -133,9 +135,10 @@ def _resolve_scaling(
     return summary.scaling, summary.to_dict()
 
 
+@models_in_memory("model_path")
 @one_command
 def patch(
-    model_path: str | os.PathLike,
+    model_path: str | os.PathLike | onnx.ModelProto,
     out: str | os.PathLike,
     *,
     temperature: float | None = None,

@@ -7,6 +7,8 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
+import onnx
+
 from .. import graph
 from .._files import (
     atomic_write_files,
@@ -30,6 +32,7 @@ from ..report import render as render_report
 from ..scaling import Scaling, check_scaling, kind_of
 from ..verify import record_check
 from .common import as_paths, finite_capture, model_byte_limit, model_files
+from .models import models_in_memory
 
 
 def _check_formats(formats) -> tuple[str, ...]:
@@ -162,6 +165,7 @@ def _calibration_of(temperature: float | None, fit, model, cap: Capture, limit: 
     return _Calibration(record.scaling, summary, record.source_sha256, f"the calibration in '{model}'", calibrated)
 
 
+@models_in_memory("model")
 @one_command
 def report(
     captures: Capture | str | os.PathLike | Sequence[str | os.PathLike],
@@ -169,7 +173,7 @@ def report(
     *,
     temperature: float | None = None,
     fit: FitSummary | str | os.PathLike | None = None,
-    model: str | os.PathLike | None = None,
+    model: str | os.PathLike | onnx.ModelProto | None = None,
     formats: str | Sequence[str] = FORMATS,
     class_names: str | os.PathLike | Sequence[str] | None = None,
     n_bins: int | None = None,

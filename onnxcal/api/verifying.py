@@ -52,6 +52,7 @@ from .common import (
     model_files,
     run_options,
 )
+from .models import models_in_memory
 
 DEFAULT_LATENCY_RUNS = 100
 MAX_LATENCY_RUNS = 100_000
@@ -394,12 +395,13 @@ def _latency_reference(target: _Target, ref: _Reference) -> onnx.ModelProto:
     return recover_unpatched(target.model, target.path)
 
 
+@models_in_memory("patched_path", "original")
 @one_command
 def verify(
-    patched_path: str | os.PathLike,
+    patched_path: str | os.PathLike | onnx.ModelProto,
     data: DataSource,
     *,
-    original: str | os.PathLike | None = None,
+    original: str | os.PathLike | onnx.ModelProto | None = None,
     scores: str | os.PathLike | Sequence[str | os.PathLike] | None = None,
     max_ece: float | None = None,
     max_nll: float | None = None,

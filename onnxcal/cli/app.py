@@ -16,7 +16,7 @@ from typing import Annotated
 import typer
 
 from .. import __version__, _files, _runenv, _signals
-from ..errors import OnnxcalError, OnnxcalWarning
+from ..errors import OnnxcalError, OnnxcalWarning, cli_spelling
 from . import commands
 from .console import err, out, printable, warn
 
@@ -98,7 +98,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     debug = "--debug" in args
     if debug:  # accept --debug anywhere on the line
         args = ["--debug"] + [a for a in args if a != "--debug"]
-    with _signals.interrupting(), _files.command() as run:
+    with _signals.interrupting(), _files.command() as run, cli_spelling():
         try:
             with warnings.catch_warnings(), _runenv.private_caches(), _runenv.one_line_logging(lambda m: warn([m])):
                 warnings.simplefilter("always", OnnxcalWarning)

@@ -363,6 +363,14 @@ def calibrate(
     as_json: JsonOpt = False,
     quiet: QuietOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
+    verify_rows: Annotated[
+        int,
+        typer.Option("--verify-rows", min=1, metavar="N",
+                     help="Check the patched model on at most N rows, stratified by label (verify checks all)."),
+    ] = api.VERIFY_ROWS,
+    verify_all: Annotated[
+        bool, typer.Option("--verify-all", help="Check the patched model on every row, not a sample.")
+    ] = False,
     *,
     data: DataSpec,
     runtime: dict,
@@ -391,6 +399,7 @@ def calibrate(
             max_model_bytes=max_model_bytes,
             output_holds=output_holds,
             score_columns=score_columns,
+            verify_rows=None if verify_all else verify_rows,
             **runtime,
         )
     if as_json:

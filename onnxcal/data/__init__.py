@@ -25,7 +25,7 @@ larger than memory keeps the resident size at about one batch. Every load
 uses ``allow_pickle=False``.
 """
 
-from .arrays import load_npy, load_npz, read_npy, read_npz
+from .arrays import MEMORY_SOURCE, load_arrays, load_npy, load_npz, read_npy, read_npz
 from .csv import load_csv
 from .fingerprint import file_fingerprint
 from .images import ENLARGE_WARNING, IMAGE_SUFFIXES, ImageArray, load_image_folder, shown
@@ -51,6 +51,7 @@ __all__ = [
     "IMAGE_SUFFIXES",
     "LABELS_KEY",
     "MAX_SEED",
+    "MEMORY_SOURCE",
     "MAX_SIDE",
     "DataSpec",
     "Dataset",
@@ -64,6 +65,7 @@ __all__ = [
     "class_indices",
     "file_fingerprint",
     "image_options",
+    "load_arrays",
     "load_csv",
     "load_dataset",
     "load_image_folder",

@@ -233,7 +233,8 @@ class DataSpec:
     """Where a validation set is and how to read it (the ``--data`` options).
 
     Give ``path`` (an ``.npz``, a ``.npy`` for a one-input model, a ``.csv``,
-    or a folder of images) or ``inputs`` (model input name -> ``.npy``).
+    or a folder of images), ``inputs`` (model input name -> ``.npy``) or
+    ``arrays`` (in memory).
 
     Attributes
     ----------
@@ -255,6 +256,10 @@ class DataSpec:
         Image preprocessing options (override ``preprocess``); see
         :data:`~onnxcal.data.preprocess.IMAGE_OPTIONS`.
     selection : Selection
+    arrays : mapping of str to array, or None
+        A set in memory, checked as an ``.npz`` of the same arrays would be:
+        model input name -> array, plus ``labels`` (the key ``None`` names
+        the only input of a one-input model).
     """
 
     path: str | os.PathLike | None = None
@@ -266,6 +271,7 @@ class DataSpec:
     preprocess: str | os.PathLike | None = None
     image: Mapping[str, object] = field(default_factory=dict)
     selection: Selection = field(default_factory=Selection)
+    arrays: Mapping[str | None, object] | None = None
 
     def files(self) -> list[Path]:
         """Every file or folder this spec reads (for output-path checks)."""
