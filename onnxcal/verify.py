@@ -65,6 +65,9 @@ class Check:
         What was measured, in words.
     skipped : bool
         The check could not be run (``detail`` says why); it does not fail.
+    undecided : bool
+        The check was run but its figure cannot be told from its limit
+        (the latency ratio's interval straddles it); it does not fail.
     """
 
     name: str
@@ -73,11 +76,16 @@ class Check:
     limit: float | None
     detail: str
     skipped: bool = False
+    undecided: bool = False
 
     @property
     def status(self) -> str:
-        """``"pass"``, ``"fail"`` or ``"skip"``."""
-        return "skip" if self.skipped else ("pass" if self.passed else "fail")
+        """``"pass"``, ``"fail"``, ``"skip"`` or ``"undecided"``."""
+        if self.skipped:
+            return "skip"
+        if self.undecided:
+            return "undecided"
+        return "pass" if self.passed else "fail"
 
     def to_dict(self) -> dict:
         """JSON-ready: a NaN or infinite figure becomes None."""
@@ -534,22 +542,87 @@ def time_alternately(
     return times
 
 
+LATENCY_CONFIDENCE = 0.95
+"""Confidence of the latency ratio's interval."""
+LATENCY_PRECISION = 0.01
+"""The latency gate stops, undecided, once its interval is this narrow (relative) and still holds the limit."""
+LATENCY_CHUNKS = 10
+"""The latency gate times at most this many times ``latency_runs`` rounds ..."""
+LATENCY_BUDGET = 30.0
+"""... or for about this many seconds, whichever comes first."""
+
+
+def median_interval(x: np.ndarray, confidence: float = LATENCY_CONFIDENCE) -> tuple[float, float]:
+    """Distribution-free interval for the median of ``x`` from its order statistics.
+
+    [x_(j), x_(n-j+1)] covers the median with probability 1 - 2 P(B <= j - 1),
+    B ~ Binomial(n, 1/2); j is the largest with that at least ``confidence``
+    (W. J. Conover, Practical Nonparametric Statistics, 3rd ed., 1999, section
+    3.2). With too few values for the confidence (n < 6 at 95 %) the interval
+    is unbounded.
+    """
+    from scipy.stats import binom
+
+    n = len(x)
+    j = int(np.count_nonzero(binom.cdf(np.arange(n), n, 0.5) <= (1.0 - confidence) / 2.0))
+    if j == 0:
+        return -np.inf, np.inf
+    s = np.sort(x)
+    return float(s[j - 1]), float(s[n - j])
+
+
+@dataclass(frozen=True)
+class LatencyRatio:
+    """The patched model's latency over the original's: the median of the per-round ratios and its interval."""
+
+    ratio: float
+    low: float
+    high: float
+    rounds: int
+    original: float  # median seconds per call
+    patched: float
+
+    def decided(self, max_ratio: float | None) -> bool:
+        """The interval lies on one side of ``max_ratio``, or is too narrow to tell it from it."""
+        if max_ratio is None:
+            return True
+        return self.high <= max_ratio or self.low > max_ratio or self.high <= self.low * (1.0 + LATENCY_PRECISION)
+
+
+def latency_ratio(original: np.ndarray, patched: np.ndarray) -> LatencyRatio:
+    """The ratio of the two models' seconds per call, round by round (from :func:`time_alternately`, whose
+    rounds run the two back to back, so a change in the machine's load hits both of a round alike)."""
+    ratios = np.log(np.asarray(patched, np.float64)) - np.log(np.asarray(original, np.float64))
+    low, high = median_interval(ratios)
+    return LatencyRatio(float(np.exp(np.median(ratios))), float(np.exp(low)), float(np.exp(high)), len(ratios),
+                        float(np.median(original)), float(np.median(patched)))
+
+
 def latency_check(
     original: np.ndarray, patched: np.ndarray, max_ratio: float | None = None, *, batch: int, against: str = "original"
 ) -> Check:
-    """Median latency of the patched model over the original's, as a ratio.
+    """Latency of the patched model over the original's: the median of the per-round ratios.
 
     ``original`` and ``patched`` are seconds per call from
-    :func:`time_alternately`; without ``max_ratio`` the figure is reported
-    and the check passes.
+    :func:`time_alternately`. Without ``max_ratio`` the figure is reported
+    and the check passes. With it, the check passes when the ratio's 95 %
+    interval (:func:`median_interval`) lies at or below ``max_ratio``, fails
+    only when it lies wholly above, and is undecided (not failed) when it
+    holds ``max_ratio``: noise never fails the gate.
     """
-    a, b = float(np.median(original)), float(np.median(patched))
-    ratio = b / a if a > 0 else float("inf")
+    r = latency_ratio(original, patched)
+    interval = "unbounded" if not np.isfinite(r.high - r.low) else f"{r.low:.3f} to {r.high:.3f}"
     detail = (
-        f"median latency, patched {b * 1e3:.3g} ms / {against} {a * 1e3:.3g} ms, "
-        f"{len(patched)} alternating runs each on a batch of {batch}"
+        f"median ratio of {r.rounds} alternating runs each on a batch of {batch} (95% interval {interval}); "
+        f"median latency, patched {r.patched * 1e3:.3g} ms / {against} {r.original * 1e3:.3g} ms"
     )
-    return Check("latency", max_ratio is None or ratio <= max_ratio, ratio, max_ratio, detail)
+    if max_ratio is None or r.high <= max_ratio:
+        return Check("latency", True, r.ratio, max_ratio, detail)
+    if r.low > max_ratio:
+        return Check("latency", False, r.ratio, max_ratio, f"{detail}; the whole interval lies above the limit")
+    return Check("latency", True, r.ratio, max_ratio,
+                 f"undecided: the interval holds the limit {max_ratio:g}, so the runs cannot tell the ratio from it; "
+                 f"{detail}", undecided=True)
 
 
 def _line(c: Check) -> str:
@@ -571,7 +644,7 @@ def junit_xml(result: VerifyResult, *, suite: str, elapsed: float = 0.0) -> byte
         "tests": str(len(checks)),
         "failures": str(len(result.failed)),
         "errors": "0",
-        "skipped": str(sum(c.skipped for c in checks)),
+        "skipped": str(sum(c.skipped or c.undecided for c in checks)),
         "time": f"{elapsed:.3f}",
     }
     root = ET.Element("testsuites", {"name": "onnxcal verify", **counts})
@@ -582,7 +655,7 @@ def junit_xml(result: VerifyResult, *, suite: str, elapsed: float = 0.0) -> byte
         ET.SubElement(props, "property", {"name": key, "value": str(value)})
     for c in checks:
         case = ET.SubElement(ts, "testcase", {"classname": suite, "name": c.name, "time": "0"})
-        if c.skipped:
+        if c.skipped or c.undecided:
             ET.SubElement(case, "skipped", {"message": c.detail})
         elif not c.passed:
             fail = ET.SubElement(case, "failure", {"message": _line(c), "type": "check failed"})

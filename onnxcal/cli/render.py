@@ -52,9 +52,35 @@ def render_info(info: ModelInfo) -> None:
         for r in info.records:
             what = f"T = {r.temperature:.4f}" if r.temperature is not None else f"{r.method} scaling"
             out.print(f"calibration record: {what} on output '{r.output}' ({how_patched(r)})", soft_wrap=True)
+            for line in record_lines(r):
+                out.print(f"  {line}", soft_wrap=True)
     else:
         out.print("calibration record: none")
     out.print(f"sha256: {info.sha256}")
+
+
+_RECORD_METRICS = (("nll", "NLL"), ("ece", "ECE"), ("accuracy", "accuracy"))
+
+
+def record_lines(r) -> list[str]:
+    """What a calibration record says beyond its parameters: the source model (name and sha256, in
+    full), the twin it was fitted on, and the fit's figures before and after, on the basis it names."""
+    lines = [f"source: {r.source_name}, sha256 {r.source_sha256}"]
+    if r.fitted_on_sha256 and r.fitted_on_sha256 != r.source_sha256:
+        lines.append(f"fitted on: a twin with sha256 {r.fitted_on_sha256}")
+    metrics = (r.fit or {}).get("metrics") or {}
+    before, after = metrics.get("before"), metrics.get("after")
+    if before and after:
+        basis = metrics.get("basis", "")
+        where = f"{after.get('n')} {basis} samples" if basis else f"{after.get('n')} samples"
+        figures = ", ".join(
+            f"{label} {before[key]:.4f} -> {after[key]:.4f}"
+            for key, label in _RECORD_METRICS if before.get(key) is not None and after.get(key) is not None
+        )
+        lines.append(f"fit: {figures} ({where})")
+    else:
+        lines.append("fit: none recorded (parameters given by hand)")
+    return lines
 
 
 def _describe_site(site) -> str:
@@ -132,7 +158,7 @@ def render_verify(result: VerifyResult) -> None:
     for col in ("check", "result", "value", "limit", "what"):
         table.add_column(col)
     for c in result.checks:
-        status = {"pass": "pass", "fail": "FAIL", "skip": "skipped"}[c.status]
+        status = {"pass": "pass", "fail": "FAIL", "skip": "skipped", "undecided": "undecided"}[c.status]
         table.add_row(c.name, status, format_figure(c.value), format_figure(c.limit), c.detail)
     out.print(table)
     for note in result.notes:
