@@ -146,3 +146,13 @@ def test_the_sample_is_stratified_seeded_and_holds_the_extreme_rows() -> None:
     multilabel = (rng.random((3000, 4)) < 0.2).astype(np.uint8)
     m = verification_sample(multilabel, logits[:3000, :4], keep[:3000], 100)
     assert m is not None and len(m.positions) == 100
+
+
+def test_cli_verify_rows_and_verify_all(tmp_path: Path, run_cli) -> None:
+    base = ("calibrate", str(DEMO_MODEL), "--data", str(DEMO_VAL), "--bootstrap", "0", "--json")
+    import json
+
+    sampled = json.loads(run_cli(*base, "--out", str(tmp_path / "a.onnx"), "--verify-rows", "100").out)
+    assert sampled["verify"]["n"] == 100 and "checked on 100 of the 2000 rows" in sampled["verify"]["notes"][0]
+    full = json.loads(run_cli(*base, "--out", str(tmp_path / "b.onnx"), "--verify-all").out)
+    assert full["verify"]["n"] == 2000 and full["verify"]["notes"] == []
