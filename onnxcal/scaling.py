@@ -12,6 +12,7 @@ method         kind         parameters                   calibrated probabilitie
 temperature    multiclass   ``temperature``: T           softmax(z / T)
 temperature    binary       ``temperature``: T           sigmoid(z / T)
 temperature    multilabel   ``temperature``: T or [T_k]  sigmoid(z_k / T_k)
+temperature    sigmoid-l1   ``temperature``: T           L1(sigmoid(z / T))
 vector         multiclass   ``w``: [w_k], ``b``: [b_k]   softmax(w * z + b)
 platt          binary       ``w``: a, ``b``: b           sigmoid(a z + b)
 =============  ===========  ===========================  =======================
@@ -34,7 +35,9 @@ import numpy as np
 
 from .errors import OnnxcalError
 
-KINDS = ("multiclass", "binary", "multilabel")
+SIGMOID_L1 = "sigmoid-l1"
+"""One sigmoid per class, L1-normalised: p_k = sigmoid(z_k / T) / sum_j sigmoid(z_j / T) (``l1_sigmoid``)."""
+KINDS = ("multiclass", "binary", "multilabel", SIGMOID_L1)
 METHODS = ("temperature", "vector", "platt")
 MULTILABEL_MODES = ("shared", "per-label")
 # Which methods apply to which kind of classifier.
@@ -42,6 +45,7 @@ METHODS_FOR = {
     "multiclass": ("temperature", "vector"),
     "binary": ("temperature", "platt"),
     "multilabel": ("temperature",),
+    SIGMOID_L1: ("temperature",),
 }
 
 
@@ -58,8 +62,9 @@ class Scaling:
         per-label multi-label temperatures) or ``{"w": ..., "b": ...}``
         (lists of K values for vector scaling, numbers for Platt scaling).
     kind : str
-        ``"multiclass"`` (softmax), ``"binary"`` (one logit, sigmoid) or
-        ``"multilabel"`` (K independent sigmoids).
+        ``"multiclass"`` (softmax), ``"binary"`` (one logit, sigmoid),
+        ``"multilabel"`` (K independent sigmoids) or ``"sigmoid-l1"`` (K
+        sigmoids divided by their sum; class labels, see ``l1_sigmoid``).
     """
 
     method: str
@@ -90,7 +95,10 @@ class Scaling:
 
     @property
     def activation(self) -> str:
-        """``"softmax"`` for multiclass, ``"sigmoid"`` for binary and multi-label."""
+        """``"softmax"`` for multiclass, ``"sigmoid"`` for binary and multi-label, ``"sigmoid-l1"``
+        for L1-normalised sigmoids (how ``graph.fit_kind`` names the way a site is fitted)."""
+        if self.kind == SIGMOID_L1:
+            return SIGMOID_L1
         return "softmax" if self.kind == "multiclass" else "sigmoid"
 
     def arrays(self) -> dict[str, np.ndarray]:

@@ -21,8 +21,7 @@ e. whenever ``calibrate`` writes a model at all, (c) holds.
 
 Cases the code gets wrong are marked ``xfail(strict=True)`` with the reason;
 a fix turns them into an XPASS, which fails until the marker is removed.
-Issue 10 fixed every misreading these fixtures reproduced; one difference of
-definition is left marked (L1-normalised sigmoids, see WHAT_GOES_WRONG).
+Issue 10 fixed every misreading these fixtures reproduced.
 """
 
 from __future__ import annotations
@@ -119,19 +118,9 @@ BY_NAME = {f.name: f for f in FIXTURE_LIST}
 # Once the finder is fixed these XPASS, which fails: remove the name here.
 
 # Issue 10 fixed every misreading these fixtures reproduced (the finder's spellings, the output
-# choice, ai.onnx.ml raw scores and imports, the label output, float16 tolerances, several heads).
-# One difference of definition is left, for the lead to decide: onnxcal calibrates L1-normalised
-# sigmoids as temperature scaling of their probabilities, softmax(log sigmoid(z) / T) (as it does
-# for every probability output), while these fixtures' reference divides z before the Sigmoid,
-# L1(sigmoid(z / T)); the captured logits are then log sigmoid(z), not z. Both are one-parameter
-# maps; fitting the second needs a fit kind of its own (see /work/notes/issue-10.md).
-_SIGMOID_L1 = (
-    "issue 10 design: Sigmoid -> L1 normalisation is calibrated as softmax(log sigmoid(z) / T), "
-    "the reference is L1(sigmoid(z / T))"
-)
-WHAT_GOES_WRONG: dict[str, str] = {
-    f"torch_{e}_cnn_sigmoid_l1_op{o}": _SIGMOID_L1 for e, o in (("script", 17), ("dynamo", 18))
-}
+# choice, ai.onnx.ml raw scores and imports, the label output, float16 tolerances, several heads),
+# and L1-normalised sigmoids are calibrated as the reference here means, L1(sigmoid(z / T)).
+WHAT_GOES_WRONG: dict[str, str] = {}
 
 
 def _table(names: set[str]) -> dict[str, str]:

@@ -129,7 +129,7 @@ def read_and_capture(
                                score_columns=columns)
     site = read.site
     kind = graph.fit_kind(site, activation)
-    if kind == "softmax":
+    if kind != "sigmoid":  # class labels (softmax, sigmoid-l1)
         _reading.check_label_coverage(dataset.labels, read.k, site, dataset.class_names, dataset.source)
     cap = capture_logits(
         model, dataset, model_path=Path(model_path).name, model_sha256=sha, options=run, progress=progress,

@@ -24,12 +24,13 @@ from ..capture import Capture, load_captures
 from ..errors import OnnxcalError
 from ..fit import FitSummary, load_fit, summary_from_dict
 from ..graph import Record
+from ..l1_sigmoid import capture_kind
 from ..metrics import DEFAULT_BINS
 from ..report import FORMATS, ReportResult
 from ..report import build as build_report
 from ..report import outputs as report_outputs
 from ..report import render as render_report
-from ..scaling import Scaling, check_scaling, kind_of
+from ..scaling import Scaling, check_scaling
 from ..verify import record_check
 from .common import as_paths, finite_capture, model_byte_limit, model_files
 from .models import models_in_memory
@@ -124,7 +125,7 @@ def _fit_from_record(record: Record, model_path) -> FitSummary | None:
 
 
 def _check_report_scaling(scaling: Scaling, cap: Capture, source_sha: str | None, what: str) -> None:
-    kind = kind_of(cap.logits.shape[1], cap.labels.ndim)
+    kind = capture_kind(cap.logits.shape[1], cap.labels.ndim, cap.meta.fit_as)
     if scaling.kind != kind:
         raise OnnxcalError(
             f"{what} is for a {scaling.kind} classifier, but the capture holds {kind} scores",
@@ -153,7 +154,7 @@ class _Calibration:
 def _calibration_of(temperature: float | None, fit, model, cap: Capture, limit: int) -> _Calibration:
     """The calibration given by hand (``temperature``), by a fit, or by a patched model's record."""
     if temperature is not None:
-        kind = kind_of(cap.logits.shape[1], cap.labels.ndim)
+        kind = capture_kind(cap.logits.shape[1], cap.labels.ndim, cap.meta.fit_as)
         return _Calibration(Scaling.of_temperature(graph.check_temperature(temperature), kind), None, None,
                             "the temperature")
     if fit is not None:

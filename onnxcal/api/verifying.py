@@ -223,6 +223,8 @@ def _threshold_checks(
     if activation is None:  # raw logits (a model without a record)
         logits, kind = rows, graph.fit_kind(site)
     else:
+        if activation == "sigmoid" and graph.post.normalises(post):  # L1-normalised sigmoids: probability rows
+            activation = "softmax"
         logits, kind = scores_from_probabilities(rows, activation), "sigmoid" if activation == "sigmoid" else "softmax"
     if dataset.labels is not None:
         labels = label_rows(dataset.labels, rows.shape, kind, dataset.source)

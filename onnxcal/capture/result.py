@@ -38,8 +38,10 @@ class CaptureMeta:
     data_source : str
         The validation set.
     fit_as : str
-        ``"softmax"`` (labels are class indices, one per row) or
-        ``"sigmoid"`` (labels are 0/1, one per logit: binary or multi-label).
+        ``"softmax"`` (labels are class indices, one per row),
+        ``"sigmoid"`` (labels are 0/1, one per logit: binary or multi-label)
+        or ``"sigmoid-l1"`` (class indices; the logits enter one sigmoid per
+        class, L1-normalised after: fitted as L1(sigmoid(z / T)), ``fit.l1``).
     onnxcal_version : str
     class_names : tuple of str or None
         Names of the classes, when known (``--classes`` or folder names).

@@ -59,7 +59,7 @@ def label_rows(labels: np.ndarray, shape: tuple[int, int], kind: str, source: st
     """
     labels = np.asarray(labels)
     rows, k = shape
-    if kind == "softmax":
+    if kind != "sigmoid":  # softmax, sigmoid-l1: class indices
         if labels.ndim > 1 and labels.size == rows:
             labels = labels.reshape(-1)
         elif labels.ndim > 1:

@@ -176,7 +176,7 @@ def _labels_before_the_run(dataset: Dataset, site: ScoreSite, kind: str) -> np.n
     """Class-index labels checked against the model's K before anything runs (None when the rows
     must be seen first), and the class list against K."""
     labels = None
-    if site.num_classes is not None and kind == "softmax" and np.ndim(dataset.labels) == 1:
+    if site.num_classes is not None and kind != "sigmoid" and np.ndim(dataset.labels) == 1:  # class indices
         labels = check_labels(dataset.labels, dataset.n, site.num_classes, dataset.source)
     if site.num_classes is not None:
         _check_class_names(dataset, site.num_classes, kind)

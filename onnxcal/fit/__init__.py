@@ -39,8 +39,19 @@ The modules, each importing only those above it:
 * ``store``: FIT.json (:func:`save_fit`, :func:`load_fit`).
 """
 
-from .affine import _affine_pass as _affine_pass  # re-exported: tests check its gradient
-from .options import B_MAX, DEFAULT_OPTIONS, FORMAT, MIN_PER_CLASS, T_MAX, T_MIN, FitOptions, FitResult
+from .affine import (
+    _affine_pass as _affine_pass,  # re-exported: tests check its gradient
+)
+from .options import (
+    B_MAX,
+    DEFAULT_OPTIONS,
+    FORMAT,
+    MIN_PER_CLASS,
+    T_MAX,
+    T_MIN,
+    FitOptions,
+    FitResult,
+)
 from .store import load_fit, save_fit, summary_from_dict
 from .summary import FitSummary, data_warnings, fit_scaling, resolve_kind, summarize
 from .temperature import fit_sigmoid_temperature, fit_temperature, nll_derivatives

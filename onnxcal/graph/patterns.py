@@ -17,9 +17,12 @@ com.microsoft contrib operators of onnxruntime (``QLinearSoftmax``).
 * ``"log"``: z = log(max(p, tiny)) of probabilities p (softmax(log p) = p);
 * ``"raw-scores"``: z from a copy of an ai.onnx.ml classifier whose
   ``post_transform`` is NONE (its scores before the SOFTMAX or LOGISTIC);
-* ``"log-sigmoid"``: z = log sigmoid(x) = -softplus(-x), for sigmoid scores
-  that are L1-normalised: x_k's sigmoid over the sum is softmax(log sigmoid(x));
 * ``"dequantized"``: z = DequantizeLinear of a quantized input (QLinearSoftmax).
+
+A Sigmoid whose values are then L1-normalised (``Div`` by their
+``ReduceSum``/``ReduceL1``, or an ai.onnx.ml ``Normalizer(norm="L1")``) is
+the ``sigmoid`` spelling followed by a ``post.Normalize`` step (``passes``):
+the scaling goes in before the Sigmoid, p = L1(sigmoid(z / T)).
 """
 
 from __future__ import annotations
@@ -186,12 +189,6 @@ def _per_tensor(*names: str) -> Callable[[Found, View], bool]:
     return check
 
 
-def _l1(found: Found, view: View) -> bool:
-    if "norm" in found.nodes:
-        return _attr(view.node(found.nodes["norm"]), "norm", b"MAX") in (b"L1", "L1")
-    return _one_axis_reductions("sum")(found, view)
-
-
 def _ml_axis(found: Found, view: View, rank: int | None) -> int:
     return 1
 
@@ -221,14 +218,6 @@ SPELLINGS: tuple[Spelling, ...] = (
     Spelling(
         "log-softmax", "LogSoftmax", "LogSoftmax",
         op("LogSoftmax", z, name="act"), "logsoftmax", _softmax_axis,
-    ),
-    Spelling(
-        "sigmoid-l1", "Sigmoid then L1 normalisation", "Sigmoid, Div + ReduceSum or ai.onnx.ml Normalizer(L1)",
-        either(
-            op("Div", _sigmoid, reduced(("ReduceSum", "ReduceL1"), _sigmoid, "sum")),
-            op("Normalizer", _sigmoid, domain=ML_DOMAIN, name="norm"),
-        ),
-        "softmax", _sigmoid_axis, logits_from="log-sigmoid", check=_l1,
     ),
     Spelling(
         "sigmoid", "Sigmoid", "Sigmoid",

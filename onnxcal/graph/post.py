@@ -135,6 +135,11 @@ def takes_one(post: tuple[PostOp, ...]) -> bool:
     return any(isinstance(op, Take) for op in post)
 
 
+def normalises(post: tuple[PostOp, ...]) -> bool:
+    """True when the values are L1-normalised (after a Sigmoid: the ``sigmoid-l1`` kind of fit)."""
+    return any(isinstance(op, Normalize) for op in post)
+
+
 def describe(post: tuple[PostOp, ...]) -> str:
     """``"then x100 (percent), then class 1 taken"``, or "" when there is none."""
     return "".join(f", then {op.describe()}" for op in post)

@@ -12,6 +12,10 @@ Three rewrites, chosen from the ``ScoreSite``:
 * ``_append_activation``: raw logits; ``activation(scale(z))`` is added as a
   new output.
 
+A Sigmoid whose values are L1-normalised after is calibrated as
+L1(sigmoid(scale(z))): ``_replace_normalised_sigmoid`` replaces its values
+by that, computed without underflow (drop-in; the normalisation stays).
+
 Several outputs of one model may be calibrated (one record each); a head
 whose values pass through what another head's patch added is refused.
 """
@@ -26,12 +30,12 @@ import onnx
 from onnx import helper
 
 from ..errors import OnnxcalError
-from ..scaling import Scaling, check_scaling
+from ..scaling import SIGMOID_L1, Scaling, check_scaling
 from .expose import _subgraph
 from .external import check_model
 from .find import ScoreSite, find_scores, fit_kind, read_as
 from .fold import _fold, _roundings, _unfold
-from .post import to_json
+from .post import normalises, to_json
 from .record import Record, _damaged, _write_records, check_record, read_records
 from .surgery import (
     ScaleFn,
@@ -121,6 +125,30 @@ def _replace_values(s: _Surgery, site: ScoreSite, scale: ScaleFn, compute: str |
         s.node("QuantizeLinear", [inner, *y], wanted, output=wanted)
     else:
         _cast_back(s, inner, site.dtype, compute, wanted)
+    s.flush(index + 1)
+
+
+def _replace_normalised_sigmoid(s: _Surgery, site: ScoreSite, scale: ScaleFn, compute: str | None, opset: int) -> None:
+    """A Sigmoid whose values are L1-normalised after: its values become L1(sigmoid(scale(z))).
+
+    Computed as Softmax(-Softplus(-scale(z))) over the class axis (log
+    sigmoid(x) = -softplus(-x); every sigmoid is positive, so softmax of
+    their logarithms is their L1 normalisation), under the Sigmoid's output
+    name: the model's own normalisation after it then divides by 1. A
+    Sigmoid of z / T would do in exact arithmetic, but onnxruntime's float32
+    Sigmoid gives 0 below about -17 (measured), so a small T would turn
+    whole rows into 0 / 0. The Sigmoid node stays, its output renamed and unread.
+    """
+    index = site.node
+    act = s.graph.node[index]
+    wanted = act.output[0]
+    s.rename_output(act, 0, f"{wanted}_uncalibrated")
+    scaled = _scaled(s, site.scores, site.dtype, scale, compute)
+    minus = s.node("Neg", [scaled], f"{wanted}_neg")
+    log_sigmoid = s.node("Neg", [s.node("Softplus", [minus], f"{wanted}_softplus")], f"{wanted}_log_sigmoid")
+    inner = s.name(f"{wanted}_{compute}") if compute else wanted
+    _softmax_on_axis(s, log_sigmoid, site.scores_axis, site.scores_rank, opset, inner)
+    _cast_back(s, inner, site.dtype, compute, wanted)
     s.flush(index + 1)
 
 
@@ -307,12 +335,15 @@ def _site_scaling(calibration: float | Scaling, site: ScoreSite, activation: str
     """The scaling to bake in, checked against the site it goes to.
 
     A bare temperature becomes temperature scaling of the site's kind
-    (softmax: multiclass; sigmoid: binary for one logit, else multi-label).
+    (softmax: multiclass; sigmoid: binary for one logit, else multi-label;
+    a sigmoid then L1 normalisation: sigmoid-l1).
     """
     if isinstance(calibration, Scaling):
         scaling = check_scaling(calibration, site.num_classes)
         # For raw logits the fitted scaling says what to append, unless --activation does.
         requested = activation if (activation or site.activation) else scaling.activation
+        if requested == SIGMOID_L1:  # a fit of normalised sigmoids, on raw logits: no such activation to append
+            requested = None
         kind = fit_kind(site, requested)
         if scaling.activation != kind:
             raise OnnxcalError(
@@ -325,6 +356,8 @@ def _site_scaling(calibration: float | Scaling, site: ScoreSite, activation: str
     t = check_temperature(calibration)
     if kind == "softmax":
         return Scaling.of_temperature(t, "multiclass")
+    if kind == SIGMOID_L1:
+        return Scaling.of_temperature(t, SIGMOID_L1)
     return Scaling.of_temperature(t, "binary" if site.num_classes == 1 or site.rank == 1 else "multilabel")
 
 
@@ -520,6 +553,9 @@ def _rewrite(
     new_output: str, drop_logits: bool, opset: int, fold: bool,
 ) -> tuple[str, str]:
     """Apply the rewrite the site calls for; its name and the calibrated output."""
+    if site.activation == "sigmoid" and normalises(site.post) and site.rewire == ((site.node, 0),):
+        _replace_normalised_sigmoid(s, site, scale, compute, opset)  # scale: none when folded
+        return "replace-values", site.output
     if site.inserts:
         if not fold:
             _insert_before(s, site, scale, compute)

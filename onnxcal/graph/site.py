@@ -6,6 +6,7 @@ from __future__ import annotations
 from dataclasses import dataclass, replace
 
 from ..errors import OnnxcalError
+from ..scaling import SIGMOID_L1
 from . import post as _post
 from .patterns import BY_NAME
 from .tensors import ACTIVATION_CHOICES
@@ -211,9 +212,11 @@ def read_as(site: ScoreSite, holds: str, kind: str | None = None, *, source: str
 
 
 def fit_kind(site: ScoreSite, requested: str | None = None) -> str:
-    """How the calibrated scores become probabilities: ``"softmax"`` or ``"sigmoid"``.
+    """How the calibrated scores become probabilities: ``"softmax"``, ``"sigmoid"`` or ``"sigmoid-l1"``.
 
-    An activation in the model decides; for raw logits ``requested`` (the
+    An activation in the model decides (a Sigmoid whose values are then
+    L1-normalised: ``"sigmoid-l1"``, fitted against class labels as
+    L1(sigmoid(z / T)), see ``onnxcal.l1_sigmoid``); for raw logits ``requested`` (the
     ``--activation`` option) does, else one logit means a sigmoid and more
     mean a softmax (common practice).
 
@@ -228,6 +231,8 @@ def fit_kind(site: ScoreSite, requested: str | None = None) -> str:
         )
     if site.activation is not None:
         kind = "sigmoid" if site.activation == "sigmoid" else "softmax"
+        if kind == "sigmoid" and _post.normalises(site.post):
+            kind = SIGMOID_L1
         if requested is not None and requested != kind:
             what = "an ai.onnx.ml classifier" if site.spelling == "ml-classifier" else site.activation
             raise OnnxcalError(

@@ -38,7 +38,14 @@ from .calibration_error import (
     expected_calibration_error,
     maximum_calibration_error,
 )
-from .core import chunk_rows, iter_chunks, log_softmax, scores_from_probabilities, sigmoid, softmax
+from .core import (
+    chunk_rows,
+    iter_chunks,
+    log_softmax,
+    scores_from_probabilities,
+    sigmoid,
+    softmax,
+)
 from .evaluation import METRIC_FIELDS, METRIC_LABELS, Metrics, evaluate, score_metrics
 from .reliability import Reliability, reliability
 from .score_sums import RowScores, ScoreSums, temperature_pass

@@ -10,7 +10,14 @@ from __future__ import annotations
 
 import numpy as np
 
-from .binning import DEFAULT_BINS, bin_ids, ece_from_bins, equal_mass_bins, mce_from_bins, reliability_bins
+from .binning import (
+    DEFAULT_BINS,
+    bin_ids,
+    ece_from_bins,
+    equal_mass_bins,
+    mce_from_bins,
+    reliability_bins,
+)
 
 
 def expected_calibration_error(

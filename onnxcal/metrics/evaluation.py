@@ -14,9 +14,16 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 
+from .. import l1_sigmoid as _l1
 from ..scaling import Scaling, kind_of
 from ..sweep import Selection
-from .binning import DEFAULT_BINS, ece_from_bins, equal_mass_bins, mce_from_bins, reliability_bins
+from .binning import (
+    DEFAULT_BINS,
+    ece_from_bins,
+    equal_mass_bins,
+    mce_from_bins,
+    reliability_bins,
+)
 from .calibration_error import _classwise_add, _classwise_from_sums
 from .core import iter_chunks, sigmoid
 from .score_sums import ScoreSums, temperature_pass
@@ -154,6 +161,9 @@ def evaluate(
     >>> m.accuracy
     0.5
     """
+    if _l1.uses(scaling):  # L1(sigmoid(z / T)) = softmax(log sigmoid(z / T)) (l1_sigmoid)
+        rows_l1 = _l1.LogSigmoidRows(logits, scaling.temperature)
+        return evaluate(rows_l1, labels, 1.0, n_bins, rows=rows, weights=weights, threads=threads)
     k = logits.shape[1]
     kind = kind_of(k, np.ndim(labels))
     scaling = _as_scaling(scaling, kind)

@@ -6,6 +6,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .. import l1_sigmoid as _l1
 from ..scaling import Scaling, kind_of
 from ..sweep import Selection
 from .binning import DEFAULT_BINS, reliability_bins
@@ -126,6 +127,8 @@ def reliability(
     >>> int(r.counts[8]), float(r.observed[8])
     (2, 0.5)
     """
+    if _l1.uses(scaling):  # scored as softmax(log sigmoid(z / T)), see evaluate
+        return reliability(_l1.LogSigmoidRows(logits, scaling.temperature), labels, 1.0, n_bins, rows=rows)
     k = logits.shape[1]
     kind = kind_of(k, np.ndim(labels))
     scaling = _as_scaling(scaling, kind)

@@ -33,8 +33,25 @@ The modules, each importing only those above it:
 which this package exports: a function of that name here would hide the module.)
 """
 
-from .content import CAUTIONS, FORMAT, Evaluation, ReportResult, build, describe_scaling, evaluation
-from .pages import FILES, FORMATS, metric_rows, outputs, render, render_html, render_json, render_markdown
+from .content import (
+    CAUTIONS,
+    FORMAT,
+    Evaluation,
+    ReportResult,
+    build,
+    describe_scaling,
+    evaluation,
+)
+from .pages import (
+    FILES,
+    FORMATS,
+    metric_rows,
+    outputs,
+    render,
+    render_html,
+    render_json,
+    render_markdown,
+)
 from .plots import (
     AFTER_COLOUR,
     BEFORE_COLOUR,

@@ -16,9 +16,10 @@ import numpy as np
 from .. import __version__
 from ..capture import Capture
 from ..fit import FitSummary, data_warnings
+from ..l1_sigmoid import identity
 from ..metrics import DEFAULT_BINS, METRIC_FIELDS, Metrics, evaluate, reliability
 from ..resample import split_holdout
-from ..scaling import Scaling
+from ..scaling import SIGMOID_L1, Scaling
 from ..verify import VerifyResult
 
 FORMAT = 1
@@ -73,7 +74,7 @@ def describe_scaling(scaling: Scaling, intervals: dict | None = None) -> str:
     if scaling.temperature is not None:
         t = iv.get("temperature")
         extra = f" (fit-part 95% interval {t[0]:.4f} to {t[1]:.4f})" if t else ""
-        how = "sigmoid(z / T)" if scaling.kind != "multiclass" else "softmax(z / T)"
+        how = {"multiclass": "softmax(z / T)", SIGMOID_L1: "L1(sigmoid(z / T))"}.get(scaling.kind, "sigmoid(z / T)")
         return f"temperature scaling, {how}: T = {scaling.temperature:.4f}{extra}"
     a = scaling.arrays()
     if scaling.method == "temperature":
@@ -97,7 +98,7 @@ def _close(a: float, b: float) -> bool:
 
 def _reproduces(cap: Capture, summary: FitSummary, rows: np.ndarray | None, n_bins: int) -> bool:
     """True when the uncalibrated figures on ``rows`` are the summary's own."""
-    m = evaluate(cap.logits, cap.labels, 1.0, n_bins, rows=rows)
+    m = evaluate(cap.logits, cap.labels, identity(summary.scaling), n_bins, rows=rows)
     b = summary.before
     return m.n == b.n and _close(m.nll, b.nll) and _close(m.brier, b.brier) and _close(m.accuracy, b.accuracy)
 
@@ -249,10 +250,10 @@ def build(
     bins = n_bins or (summary.options.n_bins if summary is not None else DEFAULT_BINS)
     k = cap.logits.shape[1]
     ev = evaluation(cap, scaling, summary, bins)
-    before = evaluate(cap.logits, cap.labels, 1.0, bins, rows=ev.rows)
+    before = evaluate(cap.logits, cap.labels, identity(scaling), bins, rows=ev.rows)
     names = list(class_names) if class_names else _default_names(before.kind, k)
     after = evaluate(cap.logits, cap.labels, ev.scaling, bins, rows=ev.rows)
-    rel_before = reliability(cap.logits, cap.labels, 1.0, bins, rows=ev.rows)
+    rel_before = reliability(cap.logits, cap.labels, identity(scaling), bins, rows=ev.rows)
     rel_after = reliability(cap.logits, cap.labels, ev.scaling, bins, rows=ev.rows)
     intervals = summary.intervals if summary is not None else None
     use_intervals = ev.summary_reproduced and intervals is not None

@@ -457,6 +457,23 @@ def bad_fits(d: Path) -> None:
     (d / "fit_deep.json").write_text("[" * 100_000 + "]" * 100_000)
 
 
+def l1_sigmoid_files(d: Path) -> None:
+    """A model whose probabilities are L1-normalised sigmoids, its capture and its fit (own seed: the
+    other files' draws stay as they were)."""
+    rng = np.random.default_rng(SEED + 1)
+    model = random_mlp(rng, d=D, k=K, final="Sigmoid", output_name="sig")
+    g = model.graph
+    g.node.extend([
+        helper.make_node("ReduceSum", ["sig", "sum_axes"], ["sig_sum"], keepdims=1),
+        helper.make_node("Div", ["sig", "sig_sum"], ["probs"]),
+    ])
+    g.initializer.append(numpy_helper.from_array(np.array([1], np.int64), "sum_axes"))
+    g.output[0].name = "probs"
+    _save(model, d / "l1_model.onnx")
+    api.capture(d / "l1_model.onnx", d / "val.npz", out=d / "l1_cap.npz")
+    api.fit(d / "l1_cap.npz", out=d / "l1_fit.json", options=FitOptions(bootstrap=0))
+
+
 def make(directory: str | os.PathLike) -> Path:
     """Write the whole corpus into ``directory`` (created; must not exist)."""
     d = Path(directory)
@@ -468,6 +485,7 @@ def make(directory: str | os.PathLike) -> Path:
     bad_data(d, rng)
     bad_images(d)
     bad_fits(d)
+    l1_sigmoid_files(d)
     return d
 
 
