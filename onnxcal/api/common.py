@@ -63,7 +63,7 @@ def model_files(model_path, limit: int) -> list:
     return [model_path, *graph.external_data_files(model_path, max_bytes=limit)]
 
 
-DataSource = str | os.PathLike | DataSpec | Mapping[str, Any] | tuple[Any, Any]
+DataSource = str | os.PathLike[str] | DataSpec | Mapping[str, Any] | tuple[Any, Any]
 """A validation set: a path (``.npz``, ``.npy``, ``.csv`` or an image folder), a DataSpec, a
 mapping of model input name to array (with the labels under ``"labels"``), or an
 ``(inputs, labels)`` pair (inputs: such a mapping, or one array for a one-input model)."""
@@ -76,7 +76,8 @@ def data_spec(data: DataSource) -> DataSpec:
     elif isinstance(data, (str, os.PathLike)):
         spec = DataSpec(path=data)
     elif isinstance(data, Mapping):
-        spec = DataSpec(arrays=dict(data))
+        arrays: dict[str | None, object] = dict(data)
+        spec = DataSpec(arrays=arrays)
     elif isinstance(data, tuple) and len(data) == 2:
         inputs, labels = data
         if isinstance(inputs, Mapping):

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
+from typing import Any
 from concurrent.futures import Future, ThreadPoolExecutor
 
 import numpy as np
@@ -129,7 +130,7 @@ class _Reader:
     second block in memory.
     """
 
-    def __init__(self, dataset: Dataset, dtypes: Mapping[str, str]) -> None:
+    def __init__(self, dataset: Dataset, dtypes: Mapping[str, Any]) -> None:
         self.dataset, self.dtypes = dataset, dtypes
         decoded = any(not isinstance(v, np.ndarray) for v in dataset.inputs.values())
         self.pool = ThreadPoolExecutor(1, thread_name_prefix="onnxcal-decode") if decoded else None

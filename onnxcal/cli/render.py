@@ -10,7 +10,7 @@ from rich import box
 from rich.table import Table
 
 from ..fit import FitSummary
-from ..graph import ModelInfo, TensorSpec
+from ..graph import ModelInfo, Record, TensorSpec
 from ..metrics import METRIC_LABELS
 from ..report import ReportResult, describe_scaling
 from ..verify import VerifyResult, format_figure
@@ -62,7 +62,7 @@ def render_info(info: ModelInfo) -> None:
 _RECORD_METRICS = (("nll", "NLL"), ("ece", "ECE"), ("accuracy", "accuracy"))
 
 
-def record_lines(r) -> list[str]:
+def record_lines(r: Record) -> list[str]:
     """What a calibration record says beyond its parameters: the source model (name and sha256, in
     full), the twin it was fitted on, and the fit's figures before and after, on the basis it names."""
     lines = [f"source: {r.source_name}, sha256 {r.source_sha256}"]

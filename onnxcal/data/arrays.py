@@ -183,7 +183,7 @@ MEMORY_SOURCE = "the arrays given"
 
 
 def load_arrays(
-    given: Mapping[str, object], model_inputs: Sequence[TensorSpec], *, require_labels: bool = True
+    given: Mapping[str | None, object], model_inputs: Sequence[TensorSpec], *, require_labels: bool = True
 ) -> Dataset:
     """A set given in memory: model input name -> array, plus ``labels``; or one array under the
     name ``None`` for a one-input model. The same checks as an ``.npz`` of those arrays.

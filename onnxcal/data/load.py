@@ -69,7 +69,9 @@ def load_dataset(
     return _checked(ds, spec, model_inputs, classes)
 
 
-def _checked(ds: Dataset, spec: DataSpec, model_inputs: Sequence[TensorSpec], classes) -> Dataset:
+def _checked(
+    ds: Dataset, spec: DataSpec, model_inputs: Sequence[TensorSpec], classes: tuple[str, ...] | None
+) -> Dataset:
     """String labels mapped through the classes, the inputs checked against the model's, the selection applied."""
     if ds.labels is not None:
         ds = replace(ds, labels=map_labels(ds.labels, classes, ds.source, classes_file=spec.classes))
@@ -79,7 +81,9 @@ def _checked(ds: Dataset, spec: DataSpec, model_inputs: Sequence[TensorSpec], cl
     return select(ds, spec.selection)
 
 
-def _load_memory(spec: DataSpec, model_inputs: Sequence[TensorSpec], classes, require_labels: bool) -> Dataset:
+def _load_memory(
+    spec: DataSpec, model_inputs: Sequence[TensorSpec], classes: tuple[str, ...] | None, require_labels: bool
+) -> Dataset:
     """A set given as arrays in memory (the Python API), with every check of an ``.npz``."""
     if spec.path is not None or spec.inputs:
         raise OnnxcalError("give the validation set either as arrays or as files, not both",
