@@ -127,7 +127,9 @@ def _patch_and_check(
     """The patched model (in memory), its record, and its checks against the captured logits and the original,
     on every row or (``verify_rows``) on a sample of them (:func:`.sampling.verification_sample`)."""
     cap, dataset, logits, keep = seen.cap, source.dataset, seen.full.logits, seen.keep
-    sample = verification_sample(seen.full.labels, logits, keep, verify_rows)
+    # one score row per sample (not a segmentation's rows of pixels): the sample is of samples
+    one_row_each = len(logits) == source.dataset.n
+    sample = verification_sample(seen.full.labels, logits, keep, verify_rows) if one_row_each else None
     identity_set = dataset
     if sample is not None:
         rows = sample.positions

@@ -156,3 +156,23 @@ def test_cli_verify_rows_and_verify_all(tmp_path: Path, run_cli) -> None:
     assert sampled["verify"]["n"] == 100 and "checked on 100 of the 2000 rows" in sampled["verify"]["notes"][0]
     full = json.loads(run_cli(*base, "--out", str(tmp_path / "b.onnx"), "--verify-all").out)
     assert full["verify"]["n"] == 2000 and full["verify"]["notes"] == []
+
+
+def test_a_model_with_many_score_rows_per_sample_is_checked_on_every_row(tmp_path: Path) -> None:
+    """A segmentation head (one score row per pixel): the sample is of rows of logits, which are not
+    samples of the data, so calibrate checks every row."""
+    from onnx import TensorProto, helper, numpy_helper
+
+    rng = np.random.default_rng(0)
+    w = numpy_helper.from_array(rng.normal(size=(4, 2, 1, 1)).astype(np.float32), "w")
+    graph = helper.make_graph(
+        [helper.make_node("Conv", ["x", "w"], ["logits"])], "seg",
+        [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 2, 3, 3])],
+        [helper.make_tensor_value_info("logits", TensorProto.FLOAT, ["N", 4, 3, 3])], [w],
+    )
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
+    x = rng.normal(size=(60, 2, 3, 3)).astype(np.float32)
+    labels = rng.integers(0, 4, size=(60, 3, 3))
+    got = api.calibrate(model, {"x": x, "labels": labels}, tmp_path / "seg.onnx", options=QUICK, verify_rows=50)
+    assert got.patch is not None and got.verification.passed
+    assert got.verification.n == 60 and not got.verification.notes
