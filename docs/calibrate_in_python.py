@@ -82,6 +82,24 @@ result = onnxcal.calibrate(MODEL, data, OUT / "calibrated_again.onnx", report=OU
 print("written:", result.patch.path if result.patch else None, "| checks passed:", result.verification.passed)
 
 # %% [markdown]
+# A notebook often holds the model and the data in memory already: an
+# `onnx.ModelProto` goes wherever a model path does, and a mapping of arrays
+# (input name -> array, with the labels under "labels", as `numpy.load` gives
+# an .npz) or an `(inputs, labels)` pair wherever a validation set does, with
+# the same checks and errors as files. `calibrate` checks the patched model on
+# a sample of 256 rows (`verify_rows=None` checks every row, as `verify` does).
+
+# %%
+import numpy as np
+import onnx
+
+model = onnx.load(MODEL)
+arrays = dict(np.load(VALIDATION))  # {"band_energies": (2000, 16) float32, "labels": (2000,) int64}
+inputs, labels = {"band_energies": arrays["band_energies"]}, arrays["labels"]
+result = onnxcal.calibrate(model, (inputs, labels), OUT / "calibrated_in_memory.onnx", force=True)
+print(f"T = {result.summary.temperature:.4f};", result.verification.notes[0])
+
+# %% [markdown]
 # Calibration holds only for data like the validation set and drifts under
 # distribution shift; re-check it after any change to the data or the model.
 # It is no substitute for validation under your local regulations and for

@@ -8,6 +8,28 @@ with status 2; library callers catch it like any other exception.
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+from contextlib import contextmanager
+from contextvars import ContextVar
+
+_CLI: ContextVar[bool] = ContextVar("onnxcal_cli_spelling", default=False)
+
+
+@contextmanager
+def cli_spelling() -> Iterator[None]:
+    """Within it, messages name options as typed on the command line (``--force``), not as the
+    Python API's keywords (``force=True``); the CLI runs every command in it."""
+    token = _CLI.set(True)
+    try:
+        yield
+    finally:
+        _CLI.reset(token)
+
+
+def spelled(cli: str, python: str) -> str:
+    """How a message names an option: ``cli`` when the command line is running, else ``python``."""
+    return cli if _CLI.get() else python
+
 
 class OnnxcalError(Exception):
     """A problem with the user's input, reported without a traceback.

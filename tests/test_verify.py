@@ -215,11 +215,52 @@ def test_time_alternately_interleaves_and_reverses():
 def test_latency_check_ratio_and_limit():
     from onnxcal.verify import latency_check
 
-    a, b = np.array([1.0, 2.0, 3.0]), np.array([2.0, 4.0, 100.0])
+    a = np.array([1.0, 2.0, 3.0, 1.0, 2.0, 3.0, 1.0, 2.0, 3.0, 1.0])
+    b = 2.0 * a
+    b[2] = 300.0  # one outlier: the median of the per-round ratios ignores it
     c = latency_check(a, b, None, batch=8)
-    assert c.value == pytest.approx(2.0) and c.passed and c.limit is None  # medians 2 and 4
-    assert not latency_check(a, b, 1.5, batch=8).passed
-    assert latency_check(a, b, 2.0, batch=8).passed and "batch of 8" in c.detail
+    assert c.value == pytest.approx(2.0) and c.passed and c.limit is None and "batch of 8" in c.detail
+    assert "95% interval 2.000 to 2.000" in c.detail
+    failed = latency_check(a, b, 1.5, batch=8)  # the whole interval above the limit
+    assert not failed.passed and failed.status == "fail" and "whole interval lies above" in failed.detail
+    assert latency_check(a, b, 2.0, batch=8).status == "pass"
+
+
+def test_median_interval_from_order_statistics():
+    from scipy.stats import binom
+
+    from onnxcal.verify import median_interval
+
+    x = np.arange(10.0)[::-1]
+    # n = 10 at 95 %: (X(2), X(9)), coverage 1 - 2 P(B <= 1) = 1 - 22/1024 (Conover 1999, section 3.2;
+    # the tail by hand: (1 + 10) / 2^10)
+    assert median_interval(x) == (1.0, 8.0)
+    assert 1 - 2 * binom.cdf(1, 10, 0.5) == pytest.approx(1 - 22 / 1024)
+    assert median_interval(np.arange(5.0)) == (-np.inf, np.inf)  # 2 / 2^5 > 0.05: no interval from 5 values
+    assert median_interval(np.arange(6.0)) == (0.0, 5.0)  # 2 / 2^6 = 0.031 <= 0.05
+    # coverage on skewed data, as timings are: at least 95 % (simulation, 2000 samples of 40)
+    rng = np.random.default_rng(0)
+    draws = rng.lognormal(0.0, 1.0, size=(2000, 40))
+    bounds = np.array([median_interval(d) for d in draws])
+    covered = (bounds[:, 0] <= 1.0) & (1.0 <= bounds[:, 1])  # the lognormal(0, 1) median is e^0 = 1
+    assert covered.mean() >= 0.94
+
+
+def test_latency_noise_is_undecided_not_failed():
+    """Two runs of the same model: a limit just above 1 is never failed, only passed or undecided."""
+    from onnxcal.verify import latency_check, latency_ratio
+
+    rng = np.random.default_rng(3)
+    for _ in range(200):
+        base = rng.lognormal(-7.0, 0.3, size=100)
+        same = base * rng.lognormal(0.0, 0.05, size=100)  # the same model: per-round noise only
+        c = latency_check(base, same, 1.01, batch=1)
+        assert c.passed and c.status in ("pass", "undecided")
+    c = latency_check(base, same, 1.0, batch=1)
+    assert c.status == "undecided" and c.detail.startswith("undecided: the interval holds the limit 1")
+    assert latency_ratio(base, same).decided(1.0) is False
+    # a model 20 % slower is failed against 1.05, whatever the noise
+    assert not latency_check(base, base * 1.2 * rng.lognormal(0.0, 0.05, size=100), 1.05, batch=1).passed
 
 
 def test_junit_xml_has_one_testcase_per_check():

@@ -35,6 +35,7 @@ from .capture_fit import (
 from .common import DataSource
 from .patching import PatchOptions, PatchResult, patch
 from .reporting import report
+from .sampling import VERIFY_ROWS
 from .verifying import DEFAULT_LATENCY_RUNS, MAX_LATENCY_RUNS, verify
 
 __all__ = [
@@ -43,6 +44,7 @@ __all__ = [
     "MAX_L2",
     "MAX_LATENCY_RUNS",
     "MAX_SEED",
+    "VERIFY_ROWS",
     "CalibrateResult",
     "Capture",
     "Check",

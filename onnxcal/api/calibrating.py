@@ -40,8 +40,10 @@ from .common import (
     warn_nonfinite_inputs,
     with_note,
 )
+from .models import models_in_memory
 from .patching import PatchOptions, PatchResult
 from .reporting import capture_names, report_files, report_targets
+from .sampling import VERIFY_ROWS, subset, verification_sample
 
 
 @dataclass(frozen=True)
@@ -133,11 +135,21 @@ class _Deciding:
 
 
 def _patch_and_check(
-    source: _Source, patching: PatchOptions, seen: _Captured, summary: FitSummary, to_decide: _Deciding
+    source: _Source, patching: PatchOptions, seen: _Captured, summary: FitSummary, to_decide: _Deciding,
+    verify_rows: int | None,
 ) -> tuple[onnx.ModelProto, Record, VerifyResult, Decisions | None]:
-    """The patched model (in memory), its record, its checks against the captured logits and the original,
-    and the decision thresholds it carries (when asked for)."""
-    cap = seen.cap
+    """The patched model (in memory), its record, its checks against the captured logits and the original
+    (on every row, or with ``verify_rows`` on a sample of them: :func:`.sampling.verification_sample`), and
+    the decision thresholds it carries (when asked for)."""
+    cap, dataset, logits, keep = seen.cap, source.dataset, seen.full.logits, seen.keep
+    # one score row per sample (not a segmentation's rows of pixels): the sample is of samples
+    one_row_each = len(logits) == source.dataset.n
+    sample = verification_sample(seen.full.labels, logits, keep, verify_rows) if one_row_each else None
+    identity_set = dataset
+    if sample is not None:
+        rows = sample.positions
+        dataset, logits, keep = subset(dataset, rows), logits[rows], keep[rows]
+        identity_set = subset(source.dataset, sample.identity_positions)
     patched = patching.patch(source.model, summary.scaling, sha=source.sha, path=source.path, fit=summary.to_dict(),
                              reading=_reading.patch_reading(cap.meta.to_dict()), largest_logit=max_abs(cap.logits))
     record = graph.read_record(patched, cap.meta.output)
@@ -147,15 +159,16 @@ def _patch_and_check(
         patched, record, chosen = deciding.for_calibrate(
             patched, record, cap.labels, seen.keep, source.dataset, to_decide.separate, to_decide.fit,
             to_decide.options, run, progress)
-    checks = compare_as_it_runs(patched, record, source.dataset, run, progress, seen.full.logits, seen.keep)
+    checks = compare_as_it_runs(patched, record, dataset, run, progress, logits, keep)
     if chosen is not None:
         reference = reference_probabilities(cap.logits, record.scaling, record.activation)
         checks += deciding.exact_checks(patched, record, source.dataset, run, progress, reference, seen.keep)[0]
     # other heads: the original's sha256
     source_sha = source.sha if len(graph.read_records(patched)) == 1 else record.source_sha256
     checks += record_checks(record, patched, source.model, source_sha)
-    checks.append(_reading.identity(source.model, patched, (record,), source.dataset, run, progress))
-    result = VerifyResult(checks=tuple(checks), n=source.dataset.n, original=str(source.path))
+    checks.append(_reading.identity(source.model, patched, (record,), identity_set, run, progress))
+    notes = () if sample is None else (sample.note,)
+    result = VerifyResult(checks=tuple(checks), n=dataset.n, original=str(source.path), notes=notes)
     return patched, record, result, chosen
 
 
@@ -173,9 +186,18 @@ def _report_files(
     return report_files(directory, content, FORMATS)
 
 
+def check_verify_rows(verify_rows: int | None) -> int | None:
+    if verify_rows is not None and (isinstance(verify_rows, bool) or not isinstance(verify_rows, int)
+                                    or verify_rows < 1):
+        raise OnnxcalError(f"verify_rows must be a whole number of rows of at least 1, or None for every row; got "
+                           f"{verify_rows!r}", "pass verify_rows=None to check every row")
+    return verify_rows
+
+
+@models_in_memory("model_path")
 @one_command
 def calibrate(
-    model_path: str | os.PathLike[str],
+    model_path: str | os.PathLike[str] | onnx.ModelProto,
     data: DataSource,
     out: str | os.PathLike[str],
     *,
@@ -199,6 +221,7 @@ def calibrate(
     score_columns: str | None = None,
     decisions: DecisionOptions = NO_DECISIONS,
     decision_data: DataSource | None = None,
+    verify_rows: int | None = VERIFY_ROWS,
 ) -> CalibrateResult:
     """Capture, fit, patch and verify in one go (and write a report).
 
@@ -218,9 +241,14 @@ def calibrate(
     (docs/decisions.md), their thresholds chosen on the held-out rows (the
     map baked in is then the one fitted on the other rows) or on
     ``decision_data``, a separate labelled set (read with ``data``'s options).
+    ``verify_rows``: the patched model is checked on at most this many
+    rows (stratified by label, with the rows of largest absolute logit;
+    :data:`VERIFY_ROWS` by default), or on every row with None; ``verify``
+    always checks every row.
     """
     check_fit_options(options)
     check_columns(score_columns)
+    verify_rows = check_verify_rows(verify_rows)
     spec = data_spec(data)
     deciding.check_request(decisions, decision_data is not None, options)
     to_decide = _Deciding(decisions, deciding.decision_spec(decisions, decision_data, spec), options)
@@ -238,7 +266,7 @@ def calibrate(
     seen = _capture_finite(source, patching, drop_nonfinite)
     warn_nonfinite_inputs(seen.full, dataset.source)
     summary = deciding.baked_summary(_fit_captured(seen, options), decisions, to_decide.separate is not None)
-    patched, record, result, chosen = _patch_and_check(source, patching, seen, summary, to_decide)
+    patched, record, result, chosen = _patch_and_check(source, patching, seen, summary, to_decide, verify_rows)
     written = PatchResult(path=str(out), record=record) if result.passed else None
     files: dict[Path, bytes] = graph.model_files(patched, out, external=external) if written is not None else {}
     written_report = None

@@ -8,6 +8,8 @@ from collections.abc import Sequence
 from dataclasses import replace
 from typing import Any
 
+import onnx
+
 from .. import graph
 from .. import reading as _reading
 from .._files import check_output_path, one_command
@@ -30,9 +32,13 @@ from .common import (
     warn_nonfinite_inputs,
     with_note,
 )
+from .models import models_in_memory
 
 
-def inspect(model_path: str | os.PathLike[str], *, max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES) -> ModelInfo:
+@models_in_memory("model_path")
+def inspect(
+    model_path: str | os.PathLike[str] | onnx.ModelProto, *, max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES
+) -> ModelInfo:
     """Describe a model: inputs, outputs, opset, class-score output, record.
 
     ``max_model_bytes`` (an int or a size such as ``"8GiB"``): larger model
@@ -44,9 +50,10 @@ def inspect(model_path: str | os.PathLike[str], *, max_model_bytes: int | str = 
     return graph.describe(model, model_path, graph.model_sha256(model_path), external)
 
 
+@models_in_memory("model_path")
 @one_command
 def capture(
-    model_path: str | os.PathLike[str],
+    model_path: str | os.PathLike[str] | onnx.ModelProto,
     data: DataSource,
     *,
     out: str | os.PathLike[str] | None = None,

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import os
 import warnings
+from collections.abc import Mapping
 from dataclasses import replace
 from pathlib import Path
 from typing import Any
@@ -24,7 +25,7 @@ from ..capture import (
     without_nonfinite,
 )
 from ..capture import capture as capture_logits
-from ..data import Dataset, DataSpec, check_selection, load_dataset
+from ..data import LABELS_KEY, Dataset, DataSpec, check_selection, load_dataset
 from ..errors import OnnxcalError, OnnxcalWarning
 from ..fit import FitSummary
 
@@ -63,12 +64,36 @@ def model_files(model_path, limit: int) -> list[Any]:
     return [model_path, *graph.external_data_files(model_path, max_bytes=limit)]
 
 
-DataSource = str | os.PathLike[str] | DataSpec
-"""A validation set: a path (``.npz``, ``.npy``, ``.csv`` or an image folder) or a DataSpec."""
+DataSource = str | os.PathLike[str] | DataSpec | Mapping[str, Any] | tuple[Any, Any]
+"""A validation set: a path (``.npz``, ``.npy``, ``.csv`` or an image folder), a DataSpec, a
+mapping of model input name to array (with the labels under ``"labels"``), or an
+``(inputs, labels)`` pair (inputs: such a mapping, or one array for a one-input model)."""
 
 
 def data_spec(data: DataSource) -> DataSpec:
-    spec = data if isinstance(data, DataSpec) else DataSpec(path=data)
+    """``data`` as a DataSpec; arrays in memory are checked later, as an ``.npz`` of them would be."""
+    if isinstance(data, DataSpec):
+        spec = data
+    elif isinstance(data, (str, os.PathLike)):
+        spec = DataSpec(path=data)
+    elif isinstance(data, Mapping):
+        arrays: dict[str | None, object] = dict(data)
+        spec = DataSpec(arrays=arrays)
+    elif isinstance(data, tuple) and len(data) == 2:
+        inputs, labels = data
+        if isinstance(inputs, Mapping):
+            if LABELS_KEY in inputs:
+                raise OnnxcalError(f"the inputs of (inputs, labels) hold '{LABELS_KEY}' too",
+                                   f"drop '{LABELS_KEY}' from the inputs, or pass the mapping alone")
+            spec = DataSpec(arrays={**inputs, LABELS_KEY: labels})
+        else:
+            spec = DataSpec(arrays={None: inputs, LABELS_KEY: labels})
+    else:
+        raise OnnxcalError(
+            f"a validation set cannot be a {type(data).__name__}",
+            "give a path, a DataSpec, a mapping of input name to array (labels under 'labels'), "
+            "or an (inputs, labels) pair",
+        )
     check_selection(spec.selection)  # before any work
     return spec
 

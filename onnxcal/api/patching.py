@@ -8,6 +8,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import onnx
 
 from .. import graph
 from .. import reading as _reading
@@ -27,6 +28,7 @@ from .common import (
     file_only_sha256,
     model_byte_limit,
 )
+from .models import models_in_memory
 
 
 @dataclass(frozen=True)
@@ -140,9 +142,10 @@ def _resolve_scaling(
     return summary.scaling, summary.to_dict()
 
 
+@models_in_memory("model_path")
 @one_command
 def patch(
-    model_path: str | os.PathLike[str],
+    model_path: str | os.PathLike[str] | onnx.ModelProto,
     out: str | os.PathLike[str],
     *,
     temperature: float | None = None,

@@ -8,6 +8,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+import onnx
+
 from .. import graph
 from .._files import (
     atomic_write_files,
@@ -32,6 +34,7 @@ from ..report import render as render_report
 from ..scaling import Scaling, check_scaling
 from ..verify import record_check
 from .common import as_paths, finite_capture, model_byte_limit, model_files
+from .models import models_in_memory
 
 
 def _check_formats(formats) -> tuple[str, ...]:
@@ -166,6 +169,7 @@ def _calibration_of(temperature: float | None, fit, model, cap: Capture, limit: 
                         record.decisions)
 
 
+@models_in_memory("model")
 @one_command
 def report(
     captures: Capture | str | os.PathLike[str] | Sequence[str | os.PathLike[str]],
@@ -173,7 +177,7 @@ def report(
     *,
     temperature: float | None = None,
     fit: FitSummary | str | os.PathLike[str] | None = None,
-    model: str | os.PathLike[str] | None = None,
+    model: str | os.PathLike[str] | onnx.ModelProto | None = None,
     formats: str | Sequence[str] = FORMATS,
     class_names: str | os.PathLike[str] | Sequence[str] | None = None,
     n_bins: int | None = None,

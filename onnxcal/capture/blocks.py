@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
+from concurrent.futures import Future, ThreadPoolExecutor
+from typing import Any
 
 import numpy as np
 import onnx
@@ -111,13 +113,62 @@ def run_batches(
     they add up to :data:`RELEASE_BYTES`, so the resident size stays bounded
     without paying a page-table flush on every small block.
     """
+    reader = _Reader(dataset, plan.dtypes)
+    try:
+        yield from _blocks(plan, dataset, reader, progress, description, watch)
+    finally:
+        reader.close()
+
+
+class _Reader:
+    """Reads a block of inputs; for a set that is decoded as it is read (images), the next block is
+    decoded in a worker thread while the runtime runs the current one.
+
+    Pillow and onnxruntime release the GIL while they work, so decoding and
+    running overlap on two cores. Arrays and memory maps are read in place
+    (a copy of a few MiB, no worker): prefetching them would only hold a
+    second block in memory.
+    """
+
+    def __init__(self, dataset: Dataset, dtypes: Mapping[str, Any]) -> None:
+        self.dataset, self.dtypes = dataset, dtypes
+        decoded = any(not isinstance(v, np.ndarray) for v in dataset.inputs.values())
+        self.pool = ThreadPoolExecutor(1, thread_name_prefix="onnxcal-decode") if decoded else None
+        self.ahead: tuple[int, int, Future[dict[str, np.ndarray]]] | None = None
+
+    def read(self, start: int, stop: int) -> dict[str, np.ndarray]:
+        ahead, self.ahead = self.ahead, None
+        if ahead is not None and ahead[:2] == (start, stop):
+            return ahead[2].result()
+        if ahead is not None and not ahead[2].cancel():
+            ahead[2].exception()  # wait for it: the set is not read from two threads at once
+        return self.dataset.batch(start, stop, self.dtypes)
+
+    def prefetch(self, start: int, stop: int) -> None:
+        if self.pool is not None and start < stop:
+            self.ahead = (start, stop, self.pool.submit(self.dataset.batch, start, stop, self.dtypes))
+
+    def close(self) -> None:
+        if self.pool is not None:
+            if self.ahead is not None:
+                self.ahead[2].cancel()
+            self.pool.shutdown(wait=True)
+
+
+def _blocks(
+    plan: RunPlan, dataset: Dataset, reader: _Reader, progress: ProgressFn | None, description: str,
+    watch: InputWatch | None,
+) -> Iterator[tuple[int, int, list[np.ndarray]]]:
     n = dataset.n
     mapped = dataset.mapped_row_bytes
     released, start, step, block, grow = 0, 0, plan.step, plan.step, plan.grow
     while start < n:
         t0 = time.perf_counter()
         stop = min(start + block, n)
-        feed = dataset.batch(start, stop, plan.dtypes)
+        feed = reader.read(start, stop)
+        row_bytes = sum(v.nbytes for v in feed.values()) / (stop - start)
+        # the next block at the present batch size (a batch size that grows later runs it in fewer calls)
+        reader.prefetch(stop, min(stop + max(step, int(BLOCK_BYTES // max(row_bytes, 1.0)) // step * step), n))
         if watch is not None:
             watch.add(feed, start, stop)
         outs, spent = _run_block(plan, dataset, feed, start, step, grow)
@@ -127,7 +178,6 @@ def run_batches(
             released = stop
         if progress is not None:
             progress(description, stop, n)
-        row_bytes = sum(v.nbytes for v in feed.values()) / (stop - start)
         if grow and start > 0:  # the first block (one batch) pays the runtime's warm-up
             bigger = _grown(step, time.perf_counter() - t0, spent, row_bytes)
             step, grow = (bigger, True) if bigger else (step, False)

@@ -16,7 +16,7 @@ from typing import Annotated, Any, TextIO
 import typer
 
 from .. import __version__, _paths, _runenv, _signals
-from ..errors import OnnxcalError, OnnxcalWarning
+from ..errors import OnnxcalError, OnnxcalWarning, cli_spelling
 from . import commands, console
 from .console import err, out, printable, warn
 from .options import HelpCommand
@@ -117,7 +117,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     debug = "--debug" in args
     if debug:  # accept --debug anywhere on the line
         args = ["--debug"] + [a for a in args if a != "--debug"]
-    with _signals.interrupting(), _paths.command() as run:
+    with _signals.interrupting(), _paths.command() as run, cli_spelling():
         try:
             with warnings.catch_warnings(), _runenv.private_caches(), _runenv.one_line_logging(lambda m: warn([m])):
                 warnings.simplefilter("always", OnnxcalWarning)

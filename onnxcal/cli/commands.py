@@ -11,7 +11,7 @@ from typing import TYPE_CHECKING, Annotated, Any
 import typer
 
 from .console import err, print_json, progress_bar, say, warn
-from .defaults import DEFAULT_BINS, DEFAULT_LATENCY_RUNS, DEFAULT_OUTPUT_NAME, FORMATS
+from .defaults import DEFAULT_BINS, DEFAULT_LATENCY_RUNS, DEFAULT_OUTPUT_NAME, FORMATS, VERIFY_ROWS
 from .options import (
     CHECKS_PANEL,
     MAX_MODEL_BYTES,
@@ -467,6 +467,15 @@ def calibrate(
     as_json: JsonOpt = False,
     quiet: QuietOpt = False,
     max_model_bytes: MaxModelBytesOpt = MAX_MODEL_BYTES,
+    verify_rows: Annotated[
+        int,
+        typer.Option("--verify-rows", min=1, metavar="N", rich_help_panel=CHECKS_PANEL,
+                     help="Check the patched model on at most N rows, stratified by label (verify checks all)."),
+    ] = VERIFY_ROWS,
+    verify_all: Annotated[
+        bool, typer.Option("--verify-all", help="Check the patched model on every row, not a sample.",
+                           rich_help_panel=CHECKS_PANEL)
+    ] = False,
     *,
     data: "DataSpec",
     runtime: dict[str, Any],
@@ -504,6 +513,7 @@ def calibrate(
             decisions=decision_options(accept_error, accept_confidence, set_coverage, set_score, set_per_class,
                                        accept_method),
             decision_data=decision_data,
+            verify_rows=None if verify_all else verify_rows,
             **runtime,
         )
     if as_json:

@@ -19,6 +19,7 @@ DEFAULT_OUTPUT_NAME = "probabilities"  # onnxcal.graph.DEFAULT_OUTPUT_NAME
 DEFAULT_BINS = 15  # onnxcal.metrics.DEFAULT_BINS
 FORMATS = ("html", "md", "json", "png")  # onnxcal.report.FORMATS
 DEFAULT_LATENCY_RUNS = 100  # onnxcal.api.DEFAULT_LATENCY_RUNS
+VERIFY_ROWS = 256  # onnxcal.api.VERIFY_ROWS
 METHODS = (  # onnxcal.scaling.METHODS
     "temperature", "vector", "platt", "matrix", "dirichlet", "beta", "isotonic", "histogram", "ensemble-temperature",
     "ovr-platt",

@@ -54,9 +54,35 @@ def render_info(info: ModelInfo) -> None:
         for r in info.records:
             what = f"T = {r.temperature:.4f}" if r.temperature is not None else f"{r.method} scaling"
             say(f"calibration record: {what} on output '{r.output}' ({how_patched(r)})")
+            for line in record_lines(r):
+                say(f"  {line}", indent=4)
     else:
         say("calibration record: none")
     say(f"sha256: {info.sha256}")
+
+
+_RECORD_METRICS = (("nll", "NLL"), ("ece", "ECE"), ("accuracy", "accuracy"))
+
+
+def record_lines(r: Record) -> list[str]:
+    """What a calibration record says beyond its parameters: the source model (name and sha256, in
+    full), the twin it was fitted on, and the fit's figures before and after, on the basis it names."""
+    lines = [f"source: {r.source_name}, sha256 {r.source_sha256}"]
+    if r.fitted_on_sha256 and r.fitted_on_sha256 != r.source_sha256:
+        lines.append(f"fitted on: a twin with sha256 {r.fitted_on_sha256}")
+    metrics = (r.fit or {}).get("metrics") or {}
+    before, after = metrics.get("before"), metrics.get("after")
+    if before and after:
+        basis = metrics.get("basis", "")
+        where = f"{after.get('n')} {basis} samples" if basis else f"{after.get('n')} samples"
+        figures = ", ".join(
+            f"{label} {before[key]:.4f} -> {after[key]:.4f}"
+            for key, label in _RECORD_METRICS if before.get(key) is not None and after.get(key) is not None
+        )
+        lines.append(f"fit: {figures} ({where})")
+    else:
+        lines.append("fit: none recorded (parameters given by hand)")
+    return lines
 
 
 def _describe_site(site: ScoreSite) -> str:

@@ -25,7 +25,7 @@ larger than memory keeps the resident size at about one batch. Every load
 uses ``allow_pickle=False``.
 """
 
-from .arrays import load_npy, load_npz, read_npy, read_npz
+from .arrays import MEMORY_SOURCE, load_arrays, load_npy, load_npz, read_npy, read_npz
 from .axes import ZEROS
 from .csv import load_csv
 from .feeding import check_feeding, constant_record, make_constant, recorded_feeding, with_constants
@@ -54,6 +54,7 @@ __all__ = [
     "IMAGE_SUFFIXES",
     "LABELS_KEY",
     "MAX_SEED",
+    "MEMORY_SOURCE",
     "MAX_SIDE",
     "ZEROS",
     "Constant",
@@ -71,6 +72,7 @@ __all__ = [
     "constant_record",
     "file_fingerprint",
     "image_options",
+    "load_arrays",
     "load_csv",
     "load_dataset",
     "load_image_folder",

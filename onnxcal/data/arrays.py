@@ -9,6 +9,7 @@ objects is refused from its header's dtype before numpy reads it.
 
 from __future__ import annotations
 
+import hashlib
 import os
 import struct
 import zipfile
@@ -31,6 +32,9 @@ from .spec import LABELS_KEY, Dataset
 
 if TYPE_CHECKING:
     from .images import ImageArray
+if TYPE_CHECKING:
+    from ..graph import TensorSpec
+
 
 
 def _member_header(fh: IO[bytes]) -> tuple[tuple[int, ...], bool, np.dtype] | None:
@@ -194,6 +198,74 @@ def load_npz(
     arrays = samples_first(arrays, batch_axes or {}, str(p))
     _same_lengths({k: a for k, a in arrays.items() if k not in constants}, labels, str(p), specs, batch_axes)
     return Dataset(inputs=arrays, labels=labels, source=str(p), data_id=combine([("npz", file_fingerprint(p))]))
+
+
+MEMORY_SOURCE = "the arrays given"
+"""How messages name a validation set given as arrays in memory."""
+
+
+def load_arrays(
+    given: Mapping[str | None, object], model_inputs: Sequence[TensorSpec], *, require_labels: bool = True
+) -> Dataset:
+    """A set given in memory: model input name -> array, plus ``labels``; or one array under the
+    name ``None`` for a one-input model. The same checks as an ``.npz`` of those arrays.
+
+    Raises
+    ------
+    OnnxcalError
+        A value that is not a numeric or text array, Python objects, no
+        ``labels`` when required, arrays of different lengths.
+    """
+    arrays: dict[str, np.ndarray] = {}
+    for key, value in given.items():
+        name = key if key is not None else _only_input(model_inputs)
+        if not isinstance(name, str):
+            raise OnnxcalError(f"the arrays given are keyed by {type(key).__name__} {key!r}",
+                               "key each array by the name of the model input it feeds (a str), labels by 'labels'")
+        arrays[name] = _memory_array(value, name)
+    labels = arrays.pop(LABELS_KEY, None)
+    if labels is None and require_labels:
+        raise OnnxcalError(f"{MEMORY_SOURCE} hold no '{LABELS_KEY}'",
+                           f"add the class labels under '{LABELS_KEY}', or pass (inputs, labels)")
+    if not arrays:
+        raise OnnxcalError(f"{MEMORY_SOURCE} hold no input arrays", "add one array per model input, keyed by its name")
+    _same_lengths(arrays, labels, MEMORY_SOURCE)
+    parts = [(name, _array_fingerprint(a)) for name, a in sorted(arrays.items())]
+    if labels is not None:
+        parts.append((LABELS_KEY, _array_fingerprint(labels)))
+    return Dataset(inputs=arrays, labels=labels, source=MEMORY_SOURCE, data_id=combine(parts))
+
+
+def _only_input(model_inputs: Sequence[TensorSpec]) -> str:
+    if len(model_inputs) != 1:
+        names = ", ".join(s.name for s in model_inputs)
+        raise OnnxcalError(
+            f"one array was given, but the model has {len(model_inputs)} inputs ({names})",
+            "give a mapping of input name to array",
+        )
+    return model_inputs[0].name
+
+
+def _memory_array(value: object, key: str) -> np.ndarray:
+    """``value`` as an ndarray (no copy of an ndarray), refused when it holds Python objects."""
+    try:
+        arr = np.asarray(value)
+    except Exception as exc:  # ragged lists and other values numpy cannot make an array of
+        raise OnnxcalError(f"'{key}' of {MEMORY_SOURCE} is not an array ({first_line(exc)})",
+                           "give numpy arrays with the samples along the first axis") from exc
+    if arr.dtype.hasobject or arr.dtype.kind not in "biufcUS":
+        raise OnnxcalError(f"'{key}' of {MEMORY_SOURCE} holds {arr.dtype} values, not numbers",
+                           "give a numeric numpy array (or text labels as a str array)")
+    return arr
+
+
+def _array_fingerprint(arr: np.ndarray) -> str:
+    """SHA-256 of an array's dtype, shape and its first and last MiB of bytes (as for a file)."""
+    digest = hashlib.sha256(f"{arr.dtype.str}{arr.shape}".encode())
+    flat = np.ascontiguousarray(arr).reshape(-1).view(np.uint8) if arr.size else np.zeros(0, np.uint8)
+    digest.update(flat[: 1 << 20].tobytes())
+    digest.update(flat[-(1 << 20):].tobytes())
+    return digest.hexdigest()
 
 
 def _same_lengths(

@@ -11,7 +11,7 @@ from pathlib import Path
 
 from ..errors import OnnxcalError
 from ..graph import TensorSpec
-from .arrays import load_npy, load_npz, with_npy_labels
+from .arrays import load_arrays, load_npy, load_npz, with_npy_labels
 from .csv import load_csv
 from .feeding import check_feeding, with_constants
 from .images import load_image_folder
@@ -36,6 +36,8 @@ def load_dataset(
     """
     check_selection(spec.selection)
     classes = read_classes(spec.classes) if spec.classes is not None else None
+    if spec.arrays is not None:
+        return _load_memory(spec, model_inputs, classes, require_labels)
     if spec.inputs and spec.path is not None:
         raise OnnxcalError("give either --data or --input NAME=FILE.npy, not both")
     if not spec.inputs and spec.path is None:
@@ -69,6 +71,13 @@ def load_dataset(
                     "drop --labels or the array",
                 )
             ds = with_npy_labels(ds, spec.labels)
+    return _checked(ds, spec, model_inputs, classes)
+
+
+def _checked(
+    ds: Dataset, spec: DataSpec, model_inputs: Sequence[TensorSpec], classes: tuple[str, ...] | None
+) -> Dataset:
+    """String labels mapped through the classes, the inputs checked against the model's, the selection applied."""
     if ds.labels is not None:
         ds = replace(ds, labels=map_labels(ds.labels, classes, ds.source, classes_file=spec.classes))
     if classes is not None:
@@ -78,6 +87,21 @@ def load_dataset(
         ds = replace(ds, batch_axes={k: v for k, v in spec.batch_axes.items() if k in ds.inputs})
     match_inputs(ds, model_inputs)
     return select(ds, spec.selection)
+
+
+def _load_memory(
+    spec: DataSpec, model_inputs: Sequence[TensorSpec], classes: tuple[str, ...] | None, require_labels: bool
+) -> Dataset:
+    """A set given as arrays in memory (the Python API), with every check of an ``.npz``."""
+    if spec.path is not None or spec.inputs:
+        raise OnnxcalError("give the validation set either as arrays or as files, not both",
+                           "drop path/inputs from the DataSpec, or its arrays")
+    _check_options_apply(spec, "arrays")
+    if spec.labels is not None:
+        raise OnnxcalError("labels are given as a file and the validation set as arrays",
+                           "add the labels to the arrays under 'labels'")
+    assert spec.arrays is not None
+    return _checked(load_arrays(spec.arrays, model_inputs, require_labels=require_labels), spec, model_inputs, classes)
 
 
 def _is_csv(path: Path | None) -> bool:

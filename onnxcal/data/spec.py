@@ -291,7 +291,8 @@ class DataSpec:
     """Where a validation set is and how to read it (the ``--data`` options).
 
     Give ``path`` (an ``.npz``, a ``.npy`` for a one-input model, a ``.csv``,
-    or a folder of images) or ``inputs`` (model input name -> ``.npy``).
+    or a folder of images), ``inputs`` (model input name -> ``.npy``) or
+    ``arrays`` (in memory).
 
     Attributes
     ----------
@@ -320,6 +321,10 @@ class DataSpec:
     batch_axes : mapping of str to int
         The axis of an input's array that holds the samples, when not 0
         (``--batch-axis``; e.g. 1 for a recurrent state 1 x N x H).
+    arrays : mapping of str to array, or None
+        A set in memory, checked as an ``.npz`` of the same arrays would be:
+        model input name -> array, plus ``labels`` (the key ``None`` names
+        the only input of a one-input model).
     """
 
     path: str | os.PathLike[str] | None = None
@@ -333,6 +338,7 @@ class DataSpec:
     selection: Selection = field(default_factory=Selection)
     constants: Mapping[str, str | os.PathLike[str] | int | float | np.ndarray] = field(default_factory=dict)
     batch_axes: Mapping[str, int] = field(default_factory=dict)
+    arrays: Mapping[str | None, object] | None = None
 
     def files(self) -> list[Path]:
         """Every file or folder this spec reads (for output-path checks)."""

@@ -121,7 +121,9 @@ def test_notebook_style_example_runs(tmp_path):
     assert re.search(r"T = 3\.4\d+ \(fit-part 95% interval", r.stdout)
     assert "verify: all checks passed" in r.stdout and "checks passed: True" in r.stdout
     assert "ECE fell" in r.stdout
+    # the model and the arrays in memory give the fit of the files
+    assert re.search(r"T = 3\.4136; the patched model was checked on 256 of the 2000 rows", r.stdout), r.stdout
     out = tmp_path / "calibration-demo"
     for name in ("scores.npz", "fit.json", "calibrated.onnx", "verify.xml", "report/report.html",
-                 "report/summary.md", "report_again/report.json", "calibrated_again.onnx"):
+                 "report/summary.md", "report_again/report.json", "calibrated_again.onnx", "calibrated_in_memory.onnx"):
         assert (out / name).is_file(), name

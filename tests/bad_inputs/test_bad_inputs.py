@@ -129,6 +129,7 @@ CASES = [
     # ---- the command line itself
     case("option-not-a-number", "fit", "cap.npz", "--bins", "many", message=r"Invalid value for '--bins'.*; see 'onnxcal fit --help'"),
     case("missing-option", "patch", "model.onnx", *T2, message=r"Missing option '--out'; see 'onnxcal patch --help'"),
+    case("verify-rows-zero", "calibrate", "model.onnx", *NPZ, "--out", "o.onnx", "--verify-rows", "0", message=r"Invalid value for '--verify-rows': Input should be greater than or equal to 1"),
     case("unknown-option", "verify", "patched.onnx", *NPZ, "--max-ec", "0.1", message=r"No such option: --max-ec"),
     # ---- ONNX files that are not (usable) models
     case("truncated-onnx", "inspect", "truncated.onnx", message=r"'truncated.onnx' is not a readable ONNX model"),

@@ -143,3 +143,61 @@ def test_outputs_with_samples_on_axis_1_are_joined_along_it():
         y, s = run_model(_with_state_output(batch), ds, ["y", "s"], batch_size=size, out_axes=[0, 1])
         np.testing.assert_array_equal(y, 2 * x)
         np.testing.assert_array_equal(s, x[None])  # NumPy's expand_dims, the Unsqueeze of the ONNX spec
+
+
+class _Decoded:
+    """A lazy input like the image folder's ImageArray: its rows are made when indexed, slowly; records
+    which thread asked for which rows, and fails on the rows of ``fail_at``."""
+
+    def __init__(self, x: np.ndarray, fail_at: int | None = None) -> None:
+        self.x, self.fail_at, self.calls = x, fail_at, []
+        self.shape, self.dtype, self.ndim = x.shape, x.dtype, x.ndim
+
+    def __len__(self) -> int:
+        return len(self.x)
+
+    def __getitem__(self, key):
+        import threading
+        import time
+
+        from onnxcal.errors import OnnxcalError
+
+        rows = range(len(self.x))[key] if isinstance(key, slice) else np.atleast_1d(key)
+        self.calls.append((threading.current_thread().name, rows[0], rows[-1] + 1))
+        if self.fail_at is not None and self.fail_at in rows:
+            raise OnnxcalError(f"image {self.fail_at} cannot be decoded")
+        time.sleep(0.01)
+        return self.x[key]
+
+
+def test_a_decoded_set_is_read_one_block_ahead_in_a_worker(rng, monkeypatch):
+    """Image folders: the next block is decoded in a worker thread while the runtime runs the current
+    one; every block is decoded once, in order, and the logits are those of the arrays themselves."""
+    import threading
+
+    import pytest
+
+    from onnxcal.capture import blocks
+    from onnxcal.errors import OnnxcalError
+
+    monkeypatch.setattr(blocks, "BLOCK_BYTES", 32 * 6 * 4)  # blocks of two batches of 16 rows
+    model = random_mlp(rng)
+    x = rng.normal(size=(300, 6)).astype(np.float32)
+    lazy = _Decoded(x)
+    got = capture_of(model, Dataset({"x": lazy}, np.zeros(300, np.int64), "images"), batch_size=16)
+    want = capture_of(model, Dataset({"x": x}, np.zeros(300, np.int64), "arrays"), batch_size=16)
+    np.testing.assert_array_equal(got.logits, want.logits)
+    spans = [(start, stop) for _, start, stop in lazy.calls]
+    assert spans[0][0] == 0 and spans[-1][1] == 300
+    assert all(a[1] == b[0] for a, b in zip(spans, spans[1:], strict=False)), spans  # each row decoded once, in order
+    threads = [name for name, _, _ in lazy.calls]
+    assert threads[0] == threading.current_thread().name  # the first block: nothing to overlap with yet
+    assert len(threads) > 2 and all(t.startswith("onnxcal-decode") for t in threads[1:])
+    # an error in the worker reaches the caller as it is; no worker thread is left behind
+    failing = _Decoded(x, fail_at=200)
+    with pytest.raises(OnnxcalError, match="image 200 cannot be decoded"):
+        capture_of(model, Dataset({"x": failing}, np.zeros(300, np.int64), "images"), batch_size=16)
+    assert not [t for t in threading.enumerate() if t.name.startswith("onnxcal-decode")]
+    # arrays and memory maps are read in place: no worker
+    plain = Dataset({"x": x}, np.zeros(300, np.int64), "arrays")
+    assert blocks._Reader(plain, {"x": "float32"}).pool is None

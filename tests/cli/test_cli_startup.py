@@ -65,7 +65,7 @@ def test_the_api_names_are_the_functions_whatever_was_imported_first() -> None:
 
 def test_cli_defaults_are_the_librarys() -> None:
     # onnxcal/cli/defaults.py writes the library's constants out so that --help imports nothing.
-    from onnxcal.api import DEFAULT_LATENCY_RUNS
+    from onnxcal.api import DEFAULT_LATENCY_RUNS, VERIFY_ROWS
     from onnxcal.capture import CPU, DEFAULT_BATCH, OPTIMIZATION_LEVELS
     from onnxcal.cli import defaults
     from onnxcal.data import IMAGE_OPTIONS
@@ -82,6 +82,7 @@ def test_cli_defaults_are_the_librarys() -> None:
     assert defaults.IMAGE_OPTIONS == tuple(IMAGE_OPTIONS) and defaults.INTERPOLATIONS == tuple(_INTERPOLATION)
     assert defaults.DEFAULT_OUTPUT_NAME == DEFAULT_OUTPUT_NAME and defaults.DEFAULT_BINS == DEFAULT_BINS
     assert defaults.FORMATS == tuple(FORMATS) and defaults.DEFAULT_LATENCY_RUNS == DEFAULT_LATENCY_RUNS
+    assert defaults.VERIFY_ROWS == VERIFY_ROWS
     assert defaults.METHODS == tuple(METHODS) and defaults.MULTILABEL_MODES == tuple(MULTILABEL_MODES)
     assert defaults.HOLDS == tuple(HOLDS) and defaults.COMPUTE_DTYPES == tuple(COMPUTE_DTYPES)
     assert defaults.ACTIVATIONS == tuple(ACTIVATION_CHOICES)

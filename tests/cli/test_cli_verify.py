@@ -3,8 +3,10 @@ written (onnxcal/cli/commands.py, the verify command)."""
 
 import json
 import re
+import shlex
 import subprocess
 import sys
+import sysconfig
 from pathlib import Path
 
 import numpy as np
@@ -223,8 +225,8 @@ def _ci_blocks() -> list[tuple[str, str]]:
 
     The blocks are marked with HTML comments (invisible when rendered):
     ``run`` is run in the repository root, ``file PATH`` is written to PATH,
-    ``job`` is the CI job (its ``PATH=`` line is run with this test's onnxcal
-    on PATH; its install lines need a network and a package index).
+    ``job`` is the CI job, run line by line as written: a fresh venv, onnxcal
+    installed into it from ``$ONNXCAL_SOURCE`` (this checkout), the CI step.
     """
     text = (ROOT / "docs" / "ci.md").read_text()
     return re.findall(r"<!-- ci-example: (.+?) -->\n```sh\n(.*?)```", text, re.S)
@@ -250,8 +252,22 @@ def test_ci_example_works_as_written(tmp_path):
         elif kind.startswith("file "):
             (tmp_path / kind.split(" ", 1)[1]).write_text(body)
         else:
-            assert "python3 -m venv .venv" in body and "pip install" in body
-            (job,) = [line for line in body.splitlines() if line.startswith("PATH=")]
+            venv, install, job = body.splitlines()
+    assert venv == "python3 -m venv .venv" and job.startswith("PATH=")
+    # without ONNXCAL_SOURCE the install line stops, naming it (it never installs a bare name from an index)
+    r = bash(install)
+    assert r.returncode != 0 and "ONNXCAL_SOURCE: set it to a checkout of onnxcal or a pinned wheel file" in r.stderr
+    assert bash(venv).returncode == 0
+    # onnxcal's dependencies come from this test's environment (a .pth file), so the test downloads no
+    # numpy or onnxruntime; onnxcal itself is built and installed from the checkout by the line as written
+    job_python = tmp_path / ".venv" / "bin" / "python"
+    purelib = "import sysconfig; print(sysconfig.get_paths()['purelib'])"
+    site = Path(subprocess.run([job_python, "-c", purelib], capture_output=True, text=True, check=True).stdout.strip())
+    (site / "_onnxcal_test_dependencies.pth").write_text(sysconfig.get_paths()["purelib"] + "\n")
+    r = bash(f"export ONNXCAL_SOURCE={shlex.quote(str(ROOT))}\n{install}")
+    assert r.returncode == 0, r.stderr
+    assert (tmp_path / ".venv" / "bin" / "onnxcal").is_file()
+    env["PATH"] = os.environ["PATH"]  # the job's onnxcal is the one on PATH, not this test's
     r = bash(job)
     assert r.returncode == 0, r.stdout + r.stderr
     junit = ET.parse(tmp_path / "reports" / "calibration-junit.xml").getroot()
