@@ -41,7 +41,7 @@ from concurrent.futures import ThreadPoolExecutor
 from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
 from math import comb
-from typing import Any, Protocol
+from typing import Any, Protocol, cast
 
 import numpy as np
 
@@ -74,7 +74,7 @@ def one_blas_thread() -> AbstractContextManager[Any]:
 
     if not _BLAS:
         _BLAS.append(ThreadpoolController())
-    return _BLAS[0].limit(limits=1, user_api="blas")
+    return cast("AbstractContextManager[Any]", _BLAS[0].limit(limits=1, user_api="blas"))
 
 
 def default_threads() -> int:
@@ -154,7 +154,8 @@ class ExpTerms:
         e = self.e[rows, cols].astype(np.float64)
         if self.eps:
             e *= 1.0 + self.eps * self.x[rows, cols]
-        return e / self.total[rows]
+        p: np.ndarray = e / self.total[rows]
+        return p
 
 
 class _Buffers:
@@ -201,7 +202,7 @@ def cumulants_from_moments(mu: np.ndarray) -> np.ndarray:
     return kappa
 
 
-_ONES: dict[str, Any] = {}
+_ONES: dict[tuple[int, np.dtype[Any]], np.ndarray] = {}
 
 
 def _ones(k: int, dtype: np.dtype) -> np.ndarray:
@@ -211,7 +212,9 @@ def _ones(k: int, dtype: np.dtype) -> np.ndarray:
     return _ONES[key]
 
 
-def _power_sums(w, x, count: int, first, scratch, out) -> np.ndarray:
+def _power_sums(
+    w: np.ndarray, x: np.ndarray, count: int, first: np.ndarray, scratch: np.ndarray, out: np.ndarray
+) -> np.ndarray:
     """Row sums of w x^j, j = 0..count, as float64 rows (count + 1, rows).
 
     ``first`` receives w x, ``scratch`` the higher powers (either may be
@@ -228,7 +231,7 @@ def _power_sums(w, x, count: int, first, scratch, out) -> np.ndarray:
     return out.astype(np.float64)
 
 
-def _cumulants(sums: np.ndarray, eps: float, m: int, s: np.ndarray, b: float) -> tuple[np.ndarray, np.ndarray]:
+def _cumulants(sums: np.ndarray, eps: float, m: int, s: float | np.ndarray, b: float) -> tuple[np.ndarray, np.ndarray]:
     """Row totals at the exact beta and the cumulants 1..m of z = (x + s) / b (an (m, c) array).
 
     ``sums`` holds the row sums of w x^j (j = 0..max(m, 1)); the weights at the
@@ -300,7 +303,9 @@ def exp_terms(
     return terms
 
 
-def _squares(terms: ExpTerms, buf: _Buffers, sq_moments: int, s, scale: float, sq_rows) -> None:
+def _squares(
+    terms: ExpTerms, buf: _Buffers, sq_moments: int, s: float | np.ndarray, scale: float, sq_rows: np.ndarray | None
+) -> None:
     """L(2 beta) of every row, and the cumulants at 2 beta of the rows in ``sq_rows`` (weights e^2)."""
     c = len(terms.zy)
     e2 = np.multiply(terms.e, terms.e, out=buf.p[:c])
@@ -313,13 +318,14 @@ def _squares(terms: ExpTerms, buf: _Buffers, sq_moments: int, s, scale: float, s
     if not sq_moments:
         return
     count = max(sq_moments, extra)
+    pick: slice | np.ndarray
     if sq_rows is None:
         pick, w2, xs, ss = slice(None), e2, terms.x, s
         out = buf.sums[: count + 1, :c]
     else:
         pick = np.flatnonzero(sq_rows)
         w2, xs = e2[pick], terms.x[pick]
-        ss = s if np.isscalar(s) else s[pick]
+        ss = s[pick] if isinstance(s, np.ndarray) else s  # s: 0.0 or a per-row array
         out = np.empty((count + 1, len(pick)), e2.dtype)
     scratch = q if sq_rows is None else w2
     sums = _power_sums(w2, xs, count, scratch, scratch, out)
@@ -344,8 +350,9 @@ class Selection:
 ALL_ROWS = Selection()
 
 
-def _chunk(logits, labels, sel: Selection, step: int, index: int) -> Chunk:
+def _chunk(logits: np.ndarray, labels: np.ndarray, sel: Selection, step: int, index: int) -> Chunk:
     start = index * step
+    key: slice | np.ndarray
     if sel.rows is None:
         key = slice(start, start + step)
     else:

@@ -7,6 +7,8 @@ calibration errors from them and re-exports them.
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import numpy as np
 
 DEFAULT_BINS = 15
@@ -56,7 +58,7 @@ def bin_ids(p: np.ndarray, n_bins: int) -> np.ndarray:
     """
     p = np.asarray(p, dtype=np.float64)
     f = p * n_bins
-    ids = np.ceil(f)
+    ids: np.ndarray = np.ceil(f)
     ids -= 1.0
     np.clip(ids, 0, n_bins - 1, out=ids)
     # Only values within rounding of an edge can disagree with the edges as
@@ -71,7 +73,9 @@ def bin_ids(p: np.ndarray, n_bins: int) -> np.ndarray:
     return ids
 
 
-def _binned(ids, confidence, correct, n_bins, weights):
+def _binned(
+    ids: np.ndarray, confidence: np.ndarray, correct: np.ndarray, n_bins: int, weights: np.ndarray | None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     w = np.ones(len(ids)) if weights is None else np.asarray(weights, dtype=np.float64)
     counts = np.bincount(ids, weights=w, minlength=n_bins)
     conf_sum = np.bincount(ids, weights=w * confidence, minlength=n_bins)
@@ -114,6 +118,7 @@ def equal_mass_bins(
     """
     confidence = np.asarray(confidence, dtype=np.float64).ravel()
     qs = np.linspace(0.0, 1.0, n_bins + 1)
+    edges: np.ndarray | None
     if weights is None:
         if confidence.size == 0:
             return np.zeros(n_bins), np.zeros(n_bins), np.zeros(n_bins)
@@ -165,7 +170,7 @@ def weighted_quantiles(
     return lerp_quantiles(pair, n, qs)
 
 
-def lerp_quantiles(pair, n: int, qs: np.ndarray) -> np.ndarray:
+def lerp_quantiles(pair: Callable[[int], tuple[float, float]], n: int, qs: np.ndarray) -> np.ndarray:
     """Quantiles ``qs`` of a pool of n values by numpy's default ("linear") method.
 
     ``pair(j)`` gives the pool's order statistics j and j + 1 (0-based; the

@@ -10,11 +10,11 @@ turns them into :class:`~onnxcal.metrics.Metrics`.
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 
-from ..sweep import ALL_ROWS, Chunk, ExpTerms, Selection, run_pass
+from ..sweep import ALL_ROWS, Chunk, Consumer, ExpTerms, Selection, run_pass
 from .binning import DEFAULT_BINS, bin_ids
 
 
@@ -64,6 +64,8 @@ class ScoreSums:
         for j, v in enumerate((w, w * conf, w * correct)):
             self.bins[:, j] += np.bincount(ids, v, P * self.n_bins).reshape(P, self.n_bins)
         log_py = beta * terms.zy - log_total
+        # ScoreSums runs only in temperature_pass, whose sq_moments is an int, so L(2 beta) is there
+        assert terms.sq_log_total is not None
         # sum_k (p_k - y_k)^2 = sum_k p_k^2 - 2 p_y + 1, sum_k p_k^2 = exp(L(2 beta) - 2 L(beta))
         brier = np.exp(terms.sq_log_total - 2.0 * log_total) - 2.0 * np.exp(log_py) + 1.0
         self.weight += np.bincount(part, w, P)
@@ -77,12 +79,12 @@ class ScoreSums:
         e, total, k, M = terms.e, terms.total, self.k, self.n_bins
         c = len(total)
         inv = (w / total).astype(e.dtype)
-        for p in range(self.parts):
-            coef = inv if self.parts == 1 else np.where(part == p, inv, e.dtype.type(0))
+        for i in range(self.parts):
+            coef = inv if self.parts == 1 else np.where(part == i, inv, e.dtype.type(0))
             col = coef @ e
             if terms.eps:  # p = e (1 + eps x) / total
                 col += e.dtype.type(terms.eps) * (coef @ terms.ex)
-            self.column[p * k : (p + 1) * k] += col
+            self.column[i * k : (i + 1) * k] += col
         lo = float(total.min()) * self.first * (1.0 - 1e-5)  # p > 1/M needs e > total / M, give or take eps x
         cand = np.flatnonzero(e.ravel() > e.dtype.type(lo))
         if len(cand) > 4 * c * M:  # rows of very different totals: a threshold per row
@@ -137,12 +139,12 @@ def temperature_pass(
     rows = RowScores(n)
     k = logits.shape[1]
 
-    def make():
+    def make() -> tuple[Consumer, ...]:
         return (ScoreSums(parts, k, n_bins, rows), *(extra() if extra else ()))
 
     lanes = run_pass(
         logits, labels, beta, make, selection=selection, moments=moments, sq_moments=sq_moments,
         sq_part=sq_part, threads=threads,
     )
-    sums = ScoreSums.merge([lane[0] for lane in lanes])
+    sums = ScoreSums.merge([cast(ScoreSums, lane[0]) for lane in lanes])  # make() puts it first
     return sums, [lane[1:] for lane in lanes]
