@@ -33,6 +33,7 @@ method                      kinds        calibrated probabilities               
 from __future__ import annotations
 
 from types import ModuleType
+from typing import Any
 
 import numpy as np
 
@@ -64,7 +65,7 @@ _FORMULA = {
 }
 
 
-def describe(method: str, params: dict) -> str:
+def describe(method: str, params: dict[str, Any]) -> str:
     """One line naming a fitted map and its parameters (CLI, report).
 
     Examples

@@ -293,7 +293,7 @@ class GraphBuilder:
         self.initializers.append(tensor)
         return tensor.name
 
-    def node(self, op: str, inputs: list[str], base: str, **attrs) -> str:
+    def node(self, op: str, inputs: list[str], base: str, **attrs: Any) -> str:
         out = self.name(base)
         self.nodes.append(helper.make_node(op, inputs, [out], name=self.name(f"{op.lower()}"), **attrs))
         return out

@@ -25,8 +25,9 @@ products); :func:`estimate_cost` turns that into seconds on this machine.
 from __future__ import annotations
 
 import time
+from collections.abc import Collection
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 
@@ -77,7 +78,7 @@ def arrays(params: dict[str, Any]) -> tuple[np.ndarray, np.ndarray]:
 def calibrated_logits(params: dict[str, Any], scores: np.ndarray, log_probs: bool) -> np.ndarray:
     """W x + b for every row (float64), the softmax's input."""
     w, b = arrays(params)
-    return features(scores, log_probs) @ w.T + b
+    return cast(np.ndarray, features(scores, log_probs) @ w.T + b)
 
 
 def apply(params: dict[str, Any], scores: np.ndarray, log_probs: bool) -> np.ndarray:
@@ -101,7 +102,16 @@ def check(params: dict[str, Any], num_classes: int | None, method: str, kind: st
 # Solver
 
 
-def _pass(scores, labels, w, bias, rows, weights, log_probs, centre=None):
+def _pass(
+    scores: np.ndarray,
+    labels: np.ndarray,
+    w: np.ndarray,
+    bias: np.ndarray,
+    rows: np.ndarray | None,
+    weights: np.ndarray | None,
+    log_probs: bool,
+    centre: np.ndarray | None = None,
+) -> tuple[float, np.ndarray, np.ndarray]:
     """Mean NLL of softmax(W (x - centre) + b) and its gradients in W and b (one pass)."""
     k = w.shape[0]
     f, gw, gb, total = 0.0, np.zeros((k, k)), np.zeros(k), 0.0
@@ -127,7 +137,7 @@ def _pass(scores, labels, w, bias, rows, weights, log_probs, centre=None):
     return f / total, gw / total, gb / total
 
 
-def _feature_moments(scores, rows, log_probs) -> tuple[np.ndarray, np.ndarray]:
+def _feature_moments(scores: np.ndarray, rows: np.ndarray | None, log_probs: bool) -> tuple[np.ndarray, np.ndarray]:
     """Per-feature mean and standard deviation on up to ~10 000 evenly spaced rows."""
     idx = np.arange(len(scores)) if rows is None else rows
     sample = features(scores[idx[:: max(1, len(idx) // 10_000)]], log_probs)
@@ -174,12 +184,12 @@ def fit(
     m, sd = _feature_moments(scores, rows, log_probs)
     passes = 0
 
-    def unpack(theta):
+    def unpack(theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         w = theta[: k * k].reshape(k, k) / sd
         b_centred = theta[k * k :]
         return w, b_centred, b_centred - w @ m
 
-    def objective(theta):
+    def objective(theta: np.ndarray) -> tuple[float, np.ndarray]:
         nonlocal passes
         passes += 1
         w, b_centred, b = unpack(theta)
@@ -280,7 +290,7 @@ def build(
     *,
     method: str,
     log_probs: bool,
-    taken=(),
+    taken: Collection[str] = (),
     compute_dtype: str | None = None,
     output: str = "probabilities",
 ) -> Subgraph:

@@ -30,7 +30,7 @@ edges over the classes (tens to a few hundred in practice).
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 
@@ -81,7 +81,7 @@ def targets(labels: np.ndarray, k: int, num_classes: int) -> np.ndarray:
     y = np.asarray(labels)
     if num_classes == 1:
         return y.reshape(len(y)).astype(np.float64)
-    return (y == k).astype(np.float64)
+    return cast(np.ndarray, (y == k).astype(np.float64))
 
 
 def class_blocks(

@@ -29,7 +29,8 @@ Mul, Add, Sigmoid; opset >= 13.
 
 from __future__ import annotations
 
-from typing import Any
+from collections.abc import Collection
+from typing import Any, cast
 
 import numpy as np
 
@@ -60,7 +61,7 @@ def n_parameters(num_classes: int = 1, params: dict[str, Any] | None = None) -> 
 def softplus(z: np.ndarray) -> np.ndarray:
     """log(1 + exp(z)) without overflow, float64."""
     z = np.asarray(z, dtype=np.float64)
-    return np.maximum(z, 0.0) + np.log1p(np.exp(-np.abs(z)))
+    return cast(np.ndarray, np.maximum(z, 0.0) + np.log1p(np.exp(-np.abs(z))))
 
 
 def features(scores: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -114,7 +115,13 @@ def check_parameters(params: dict[str, Any], num_classes: int | None = 1, kind: 
     return out
 
 
-def _pass(scores, labels, theta, rows, weights):
+def _pass(
+    scores: np.ndarray,
+    labels: np.ndarray,
+    theta: np.ndarray,
+    rows: np.ndarray | None,
+    weights: np.ndarray | None,
+) -> tuple[float, np.ndarray]:
     """Mean binary cross-entropy of sigmoid(a x1 + b x2 + c) and its gradient."""
     f, g, total = 0.0, np.zeros(3), 0.0
     for z, y, w in chunks(scores, labels, rows, weights):
@@ -170,7 +177,7 @@ def fit(
     evals = 0
     centre = np.array([1.0, 1.0, 0.0])
 
-    def objective(theta):
+    def objective(theta: np.ndarray) -> tuple[float, np.ndarray]:
         nonlocal evals
         evals += 1
         f, g = _pass(scores, labels, theta, rows, weights)
@@ -199,7 +206,7 @@ def fit(
     return MapFit(METHOD, "binary", {"a": a, "b": b, "c": c}, converged, float(evals), tuple(notes))
 
 
-def _projected(grad, x, bounds):
+def _projected(grad: np.ndarray, x: np.ndarray, bounds: list[tuple[float, float]]) -> np.ndarray:
     g = np.asarray(grad, dtype=np.float64).copy()
     for i, (lo, hi) in enumerate(bounds):
         if (x[i] <= lo and g[i] > 0) or (x[i] >= hi and g[i] < 0):
@@ -213,7 +220,7 @@ def build(
     num_classes: int,
     params: dict[str, Any],
     *,
-    taken=(),
+    taken: Collection[str] = (),
     compute_dtype: str | None = None,
     output: str = "probabilities",
 ) -> Subgraph:

@@ -28,6 +28,7 @@ when W's row sums are equal (then fold as matrix scaling; see
 
 from __future__ import annotations
 
+from collections.abc import Collection
 from typing import Any
 
 import numpy as np
@@ -108,7 +109,7 @@ def build(
     num_classes: int,
     params: dict[str, Any],
     *,
-    taken=(),
+    taken: Collection[str] = (),
     compute_dtype: str | None = None,
     output: str = "probabilities",
 ) -> Subgraph:

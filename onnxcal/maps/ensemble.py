@@ -33,7 +33,8 @@ Graph: Div, Softmax, Softmax, Mul, Mul, Add, Add; opset >= 13; no fold.
 
 from __future__ import annotations
 
-from typing import Any
+from collections.abc import Collection
+from typing import Any, cast
 
 import numpy as np
 
@@ -76,7 +77,7 @@ def apply(params: dict[str, Any], scores: np.ndarray) -> np.ndarray:
     z = np.asarray(scores, dtype=np.float64)
     t = float(params["temperature"])
     w1, w2, w3 = (float(v) for v in params["weights"])
-    return w1 * softmax(z / t, axis=-1) + w2 * softmax(z, axis=-1) + w3 / z.shape[-1]
+    return cast(np.ndarray, w1 * softmax(z / t, axis=-1) + w2 * softmax(z, axis=-1) + w3 / z.shape[-1])
 
 
 def check_parameters(params: dict[str, Any], num_classes: int | None = None, kind: str = "multiclass") -> dict[str,
@@ -104,7 +105,11 @@ def check_parameters(params: dict[str, Any], num_classes: int | None = None, kin
 
 
 def components(
-    scores: np.ndarray, labels: np.ndarray, temperature: float, rows=None, weights=None
+    scores: np.ndarray,
+    labels: np.ndarray,
+    temperature: float,
+    rows: np.ndarray | None = None,
+    weights: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray | None]:
     """Per row, the true class's probability under each component (n x 3), and the weights."""
     parts = []
@@ -123,14 +128,15 @@ def simplex_weights(a: np.ndarray, w: np.ndarray | None) -> tuple[np.ndarray, bo
     wt = np.ones(len(a)) if w is None else w
     tiny = np.finfo(np.float64).tiny
 
-    def objective(v):
+    def objective(v: np.ndarray) -> tuple[float, np.ndarray]:
         m = np.maximum(a @ v, tiny)
         return -float(wt @ np.log(m)) / total, -(a.T @ (wt / m)) / total
 
     runs = [
         scipy.optimize.minimize(
             objective, v0, jac=True, method="SLSQP", bounds=[(0.0, 1.0)] * 3,
-            constraints=[{"type": "eq", "fun": lambda v: v.sum() - 1.0, "jac": lambda v: np.ones(3)}],
+            # scipy calls a constraint as fun(x, *args); the *_ lets the stubs match (args is empty)
+            constraints=[{"type": "eq", "fun": lambda v, *_: v.sum() - 1.0, "jac": lambda v, *_: np.ones(3)}],
             options={"ftol": 1e-15, "maxiter": 500},
         )
         for v0 in (np.array([0.8, 0.1, 0.1]), np.array([1 / 3, 1 / 3, 1 / 3]))
@@ -221,7 +227,7 @@ def build(
     num_classes: int,
     params: dict[str, Any],
     *,
-    taken=(),
+    taken: Collection[str] = (),
     compute_dtype: str | None = None,
 ) -> Subgraph:
     """ONNX nodes computing w1 Softmax(z / T) + w2 Softmax(z) + w3 / K from the logits ``x`` (N x K).

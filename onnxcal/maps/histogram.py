@@ -34,8 +34,9 @@ Gather).
 
 from __future__ import annotations
 
+from collections.abc import Collection
 from functools import partial
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 
@@ -73,7 +74,7 @@ def bin_edges(p: np.ndarray, w: np.ndarray, bins: int, strategy: str) -> np.ndar
     cum = np.cumsum(np.add.reduceat(w[order], first))
     at = np.searchsorted(cum, cum[-1] * np.arange(1, bins) / bins, side="left")
     at = np.unique(at[at < len(u) - 1])
-    return (u[at] + u[at + 1]) / 2.0
+    return cast(np.ndarray, (u[at] + u[at + 1]) / 2.0)
 
 
 def binned(p: np.ndarray, t: np.ndarray, w: np.ndarray, bins: int, strategy: str) -> tuple[np.ndarray, np.ndarray]:
@@ -192,7 +193,7 @@ def build(
     num_classes: int,
     params: dict[str, Any],
     *,
-    taken=(),
+    taken: Collection[str] = (),
     compute_dtype: str | None = None,
 ) -> Subgraph:
     """ONNX nodes computing the calibrated probabilities from the logits ``x`` (N x K).

@@ -35,6 +35,7 @@ class (one list for a one-logit model). Graph: see :mod:`onnxcal.maps._lookup`.
 
 from __future__ import annotations
 
+from collections.abc import Collection
 from typing import Any
 
 import numpy as np
@@ -203,7 +204,7 @@ def build(
     num_classes: int,
     params: dict[str, Any],
     *,
-    taken=(),
+    taken: Collection[str] = (),
     compute_dtype: str | None = None,
 ) -> Subgraph:
     """ONNX nodes computing the calibrated probabilities from the logits ``x`` (N x K).

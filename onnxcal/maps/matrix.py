@@ -26,6 +26,7 @@ replace the layer's weight by W A and its bias by W c + b (docs/maths.md).
 
 from __future__ import annotations
 
+from collections.abc import Collection
 from typing import Any
 
 import numpy as np
@@ -128,7 +129,7 @@ def build(
     num_classes: int,
     params: dict[str, Any],
     *,
-    taken=(),
+    taken: Collection[str] = (),
     compute_dtype: str | None = None,
     output: str = "probabilities",
 ) -> Subgraph:

@@ -44,6 +44,7 @@ diag(a) A and a * c + b; the Sigmoid and the renormalisation stay.
 
 from __future__ import annotations
 
+from collections.abc import Collection
 from typing import Any
 
 import numpy as np
@@ -110,7 +111,14 @@ def check_parameters(params: dict[str, Any], num_classes: int | None = None, kin
     return {"a": plain(a), "b": plain(b)}
 
 
-def _pass(scores, labels, a, b, rows, weights):
+def _pass(
+    scores: np.ndarray,
+    labels: np.ndarray,
+    a: np.ndarray,
+    b: np.ndarray,
+    rows: np.ndarray | None,
+    weights: np.ndarray | None,
+) -> tuple[float, np.ndarray, np.ndarray]:
     """Mean over rows of the summed per-class cross-entropies, and its gradient in a and b."""
     k = scores.shape[1]
     f, ga, gb, total = 0.0, np.zeros(k), np.zeros(k), 0.0
@@ -168,7 +176,7 @@ def fit(
     sample = np.asarray(scores[idx[:: max(1, len(idx) // 10_000)]], dtype=np.float64)
     c = float(np.sqrt(np.mean(sample * sample))) or 1.0  # optimise c * a (as fit._fit_affine)
 
-    def objective(x):
+    def objective(x: np.ndarray) -> tuple[float, np.ndarray]:
         nonlocal evals
         evals += 1
         a, b = x[:k] / c, x[k:]
@@ -201,7 +209,7 @@ def build(
     num_classes: int,
     params: dict[str, Any],
     *,
-    taken=(),
+    taken: Collection[str] = (),
     compute_dtype: str | None = None,
 ) -> Subgraph:
     """ONNX nodes computing the renormalised sigmoid(a z + b) from the logits ``x`` (N x K).

@@ -8,6 +8,8 @@ with :func:`_classwise_add` for the classwise sums.
 
 from __future__ import annotations
 
+from typing import cast
+
 import numpy as np
 
 from .binning import (
@@ -109,7 +111,7 @@ def _per_class_errors(p_sum: np.ndarray, y_sum: np.ndarray, n: float, n_classes:
     """Each class's calibration error from flat (class, bin) sums: the terms of the classwise ECE."""
     if not n:
         return np.full(n_classes, np.nan)
-    return np.abs(y_sum - p_sum).reshape(n_classes, -1).sum(axis=1) / n
+    return cast(np.ndarray, np.abs(y_sum - p_sum).reshape(n_classes, -1).sum(axis=1) / n)
 
 
 def _classwise_from_sums(p_sum: np.ndarray, y_sum: np.ndarray, n: float, n_classes: int) -> float:
@@ -160,7 +162,15 @@ def classwise_calibration_error(
     return _classwise_from_sums(p_sum, y_sum, len(p), p.shape[1])
 
 
-def _classwise_add(p_sum, y_sum, p, y, w, n_bins, onehot=None) -> None:
+def _classwise_add(
+    p_sum: np.ndarray,
+    y_sum: np.ndarray,
+    p: np.ndarray,
+    y: np.ndarray,
+    w: np.ndarray | None,
+    n_bins: int,
+    onehot: np.ndarray | None = None,
+) -> None:
     """Add a chunk's classwise-ECE sums, flat (class, bin) index k * M + m.
 
     Only entries above the first edge are binned one by one (fewer than M

@@ -11,6 +11,7 @@ into scores for :func:`onnxcal.metrics.evaluate`.
 from __future__ import annotations
 
 from collections.abc import Iterator
+from typing import cast
 
 import numpy as np
 
@@ -59,7 +60,7 @@ def log_softmax(z: np.ndarray, axis: int = -1) -> np.ndarray:
     """
     z = np.asarray(z, dtype=np.float64)
     shifted = z - np.max(z, axis=axis, keepdims=True)
-    return shifted - np.log(np.sum(np.exp(shifted), axis=axis, keepdims=True))
+    return cast(np.ndarray, shifted - np.log(np.sum(np.exp(shifted), axis=axis, keepdims=True)))
 
 
 def softmax(z: np.ndarray, axis: int = -1) -> np.ndarray:
@@ -70,7 +71,7 @@ def softmax(z: np.ndarray, axis: int = -1) -> np.ndarray:
     >>> softmax(np.array([[1.0, 1.0]]))
     array([[0.5, 0.5]])
     """
-    return np.exp(log_softmax(z, axis=axis))
+    return cast(np.ndarray, np.exp(log_softmax(z, axis=axis)))
 
 
 def sigmoid(z: np.ndarray) -> np.ndarray:
@@ -83,7 +84,7 @@ def sigmoid(z: np.ndarray) -> np.ndarray:
     """
     z = np.asarray(z, dtype=np.float64)
     e = np.exp(-np.abs(z))
-    return np.where(z >= 0, 1.0 / (1.0 + e), e / (1.0 + e))
+    return cast(np.ndarray, np.where(z >= 0, 1.0 / (1.0 + e), e / (1.0 + e)))
 
 
 def scores_from_probabilities(output: np.ndarray, activation: str) -> np.ndarray:
@@ -109,5 +110,5 @@ def scores_from_probabilities(output: np.ndarray, activation: str) -> np.ndarray
     tiny = np.finfo(p.dtype).tiny
     log_p = np.log(np.maximum(p, tiny).astype(np.float64))
     if activation == "sigmoid":
-        return log_p - np.log(np.maximum(1.0 - p, tiny).astype(np.float64))
-    return log_p
+        return cast(np.ndarray, log_p - np.log(np.maximum(1.0 - p, tiny).astype(np.float64)))
+    return cast(np.ndarray, log_p)

@@ -10,8 +10,9 @@ bin edges need all of them.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import asdict, dataclass
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 
@@ -163,13 +164,17 @@ def evaluate(
     0.5
     """
     if _l1.uses(scaling):  # L1(sigmoid(z / T)) = softmax(log sigmoid(z / T)) (l1_sigmoid)
+        assert isinstance(scaling, Scaling)  # uses() is true only for a Scaling
+        assert scaling.temperature is not None  # an L1-sigmoid scaling is a single temperature
         rows_l1 = _l1.LogSigmoidRows(logits, scaling.temperature)
-        return evaluate(rows_l1, labels, 1.0, n_bins, rows=rows, weights=weights, threads=threads)
+        # LogSigmoidRows reads like a 2-D array (shape, len, row indexing), all evaluate needs
+        return evaluate(cast(np.ndarray, rows_l1), labels, 1.0, n_bins, rows=rows, weights=weights, threads=threads)
     k = logits.shape[1]
     kind = kind_of(k, np.ndim(labels))
     scaling = _as_scaling(scaling, kind)
     if kind == "multiclass" and scaling.method == "temperature":
         sel = Selection(rows=rows, weights=weights)
+        assert scaling.temperature is not None  # method "temperature" on multiclass: a single T
         beta = 1.0 / float(scaling.temperature)
         sums, _ = temperature_pass(logits, labels, beta, n_bins, selection=sel, threads=threads)
         return score_metrics(sums, 0, None, weights)
@@ -190,12 +195,12 @@ class _Sums:
         self.confs: list[np.ndarray] = []
         self.corrects: list[np.ndarray] = []
 
-    def add_top_label(self, conf, correct, w) -> None:
+    def add_top_label(self, conf: np.ndarray, correct: np.ndarray, w: np.ndarray | None) -> None:
         self.bins += reliability_bins(conf, correct, self.n_bins, w)
         self.confs.append(conf)
         self.corrects.append(correct)
 
-    def metrics(self, n: float, per_sample: int, weights, kind: str) -> Metrics:
+    def metrics(self, n: float, per_sample: int, weights: np.ndarray | None, kind: str) -> Metrics:
         """Metrics from the sums; ``per_sample`` predictions per sample (K for multi-label)."""
         conf = np.concatenate(self.confs) if self.confs else np.zeros(0)
         correct = np.concatenate(self.corrects) if self.corrects else np.zeros(0, bool)
@@ -207,7 +212,17 @@ class _Sums:
         )
 
 
-def _metrics_from(n, per_sample, bins, nll, brier, top_label, classwise, kind, order=None) -> Metrics:
+def _metrics_from(
+    n: float,
+    per_sample: int,
+    bins: np.ndarray,
+    nll: float,
+    brier: float,
+    top_label: tuple[np.ndarray, np.ndarray, np.ndarray | None, np.ndarray | None],
+    classwise: float,
+    kind: str,
+    order: np.ndarray | None = None,
+) -> Metrics:
     """Metrics from the sums of one evaluation.
 
     ``top_label`` = (confidence, correctness, weights, order) of every
@@ -242,7 +257,7 @@ def score_metrics(sums: ScoreSums, part: int, mask: np.ndarray | None, weights: 
     ``mask`` selects the part's rows among the pass's positions (None: all),
     ``weights`` the pass's per-row weights (None: unweighted).
     """
-    pick = (lambda a: a) if mask is None else (lambda a: a[mask])
+    pick: Callable[[np.ndarray], np.ndarray] = (lambda a: a) if mask is None else (lambda a: a[mask])
     n = float(sums.weight[part])
     p_sum, y_sum = sums.classwise(part)
     top = (pick(sums.rows.conf), pick(sums.rows.correct), None if weights is None else pick(weights), None)
@@ -252,13 +267,20 @@ def score_metrics(sums: ScoreSums, part: int, mask: np.ndarray | None, weights: 
     )
 
 
-def _total(logits, rows, weights) -> float:
+def _total(logits: np.ndarray, rows: np.ndarray | None, weights: np.ndarray | None) -> float:
     if weights is not None:
         return float(np.sum(weights))
     return float(len(logits) if rows is None else len(rows))
 
 
-def _evaluate_softmax(logits, labels, scaling, n_bins, rows, weights) -> Metrics:
+def _evaluate_softmax(
+    logits: np.ndarray,
+    labels: np.ndarray,
+    scaling: Scaling,
+    n_bins: int,
+    rows: np.ndarray | None,
+    weights: np.ndarray | None,
+) -> Metrics:
     sums = _Sums(logits.shape[1], n_bins)
     for z, y, w in iter_chunks(logits, labels, rows, weights):
         r = np.arange(len(y))
@@ -278,7 +300,15 @@ def _evaluate_softmax(logits, labels, scaling, n_bins, rows, weights) -> Metrics
     return sums.metrics(_total(logits, rows, weights), 1, weights, "multiclass")
 
 
-def _evaluate_sigmoid(logits, labels, scaling, n_bins, rows, weights, kind) -> Metrics:
+def _evaluate_sigmoid(
+    logits: np.ndarray,
+    labels: np.ndarray,
+    scaling: Scaling,
+    n_bins: int,
+    rows: np.ndarray | None,
+    weights: np.ndarray | None,
+    kind: str,
+) -> Metrics:
     k = logits.shape[1]
     sums = _Sums(k, n_bins)
     for z, y, w in iter_chunks(logits, labels, rows, weights):

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 
@@ -222,14 +222,19 @@ def reliability(
     (2, 0.5)
     """
     if _l1.uses(scaling):  # scored as softmax(log sigmoid(z / T)), see evaluate
-        return reliability(_l1.LogSigmoidRows(logits, scaling.temperature), labels, 1.0, n_bins, rows=rows)
+        assert isinstance(scaling, Scaling)  # uses() is true only for a Scaling
+        assert scaling.temperature is not None  # an L1-sigmoid scaling is a single temperature
+        # LogSigmoidRows reads like a 2-D array (shape, len, row indexing), all reliability needs
+        log_rows = cast(np.ndarray, _l1.LogSigmoidRows(logits, scaling.temperature))
+        return reliability(log_rows, labels, 1.0, n_bins, rows=rows)
     k = logits.shape[1]
     kind = kind_of(k, np.ndim(labels))
     scaling = _as_scaling(scaling, kind)
     bins = np.zeros((3, n_bins))
     p_sum, y_sum = np.zeros(k * n_bins), np.zeros(k * n_bins)
-    n = 0
+    n: float = 0
     if kind == "multiclass" and scaling.method == "temperature":  # the pass evaluate makes
+        assert scaling.temperature is not None  # method "temperature" on multiclass: a single T
         sums, _ = temperature_pass(
             logits, labels, 1.0 / float(scaling.temperature), n_bins, selection=Selection(rows=rows)
         )
