@@ -53,10 +53,10 @@ The calibration record is JSON in ``metadata_props`` under ``RECORD_KEY``.
 from . import post
 from .describe import ModelInfo, describe, describe_site
 from .expose import at_identity, expose, expose_scores
+from .external import _model_tensors as _model_tensors
 from .external import check_model, for_onnxruntime, tensor_array
 from .find import HOLDS, Branch, ScoreSite, find_scores, fit_kind, read_as
 from .fold import FoldedValues, folded_values
-from .io import _model_tensors as _model_tensors
 from .io import (
     external_data_files,
     external_data_path,

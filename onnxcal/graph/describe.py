@@ -10,10 +10,10 @@ import onnx
 
 from ..errors import OnnxcalError
 from . import post as _post
-from .find import ScoreSite, _words_of, find_scores
+from .find import ScoreSite, find_scores
 from .record import Record, read_records
 from .rewrite import find_recorded
-from .site import COMPOSED_WORDS
+from .site import COMPOSED_WORDS, _words_of
 from .tensors import TensorSpec, opset_version, tensor_spec
 
 

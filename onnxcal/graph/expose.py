@@ -11,6 +11,8 @@ which must reproduce the original's outputs.
 
 from __future__ import annotations
 
+from typing import cast
+
 import numpy as np
 import onnx
 from onnx import helper, numpy_helper
@@ -33,7 +35,7 @@ def _copy(model: onnx.ModelProto) -> onnx.ModelProto:
 def _subgraph(graph: onnx.GraphProto, branch: Branch) -> onnx.GraphProto:
     """The subgraph a ``Branch`` reads (an attribute of one of ``graph``'s nodes)."""
     node = graph.node[branch.node]
-    return next(a.g for a in node.attribute if a.name == branch.attribute)
+    return cast(onnx.GraphProto, next(a.g for a in node.attribute if a.name == branch.attribute))
 
 
 def expose(model: onnx.ModelProto, tensors: list[str]) -> onnx.ModelProto:

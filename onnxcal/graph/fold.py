@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass, replace
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
 import onnx
@@ -68,7 +68,7 @@ def _axis_backward(node: onnx.NodeProto, axis: int, rank: int, shapes: _Shapes) 
         perm = list(_attr(node, "perm", [])) or list(range(rank))[::-1]
         return (perm[axis], rank) if axis < len(perm) else None
     moved = _axis_through_reshape(axis, shapes.shape(node.output[0]), in_shape)
-    return None if moved is None else (moved, len(in_shape))
+    return None if moved is None or in_shape is None else (moved, len(in_shape))
 
 
 def _fold_site(model: onnx.ModelProto, site: ScoreSite, drop_logits: bool, per_class: bool) -> _FoldSite:
@@ -92,7 +92,10 @@ def _fold_site(model: onnx.ModelProto, site: ScoreSite, drop_logits: bool, per_c
     fed = overridable(model)
     why = "leave out --fold to insert the scaling as nodes instead"
     shapes = _Shapes(model)
+    tracked: tuple[int, int] | None
+    lost: onnx.NodeProto | None
     tensor, tracked, lost = site.scores, (site.scores_axis, site.scores_rank), None
+    node: onnx.NodeProto | None
     # Each tensor on the way down has one reader: the activation (or, for raw
     # logits, the output that --drop-logits removes), then the next node down.
     if site.activation is None:
@@ -119,6 +122,7 @@ def _fold_site(model: onnx.ModelProto, site: ScoreSite, drop_logits: bool, per_c
         break
 
     def constant(name: str, role: str) -> str:
+        assert node is not None  # the loop above raised otherwise
         if node.op_type in _QUANTIZED or (name in producers and graph.node[producers[name]].op_type in _QUANTIZED):
             raise OnnxcalError(f"--fold: the {role} of '{node.name or node.op_type}' is quantized", why)
         if name not in inits or name in fed:
@@ -132,6 +136,7 @@ def _fold_site(model: onnx.ModelProto, site: ScoreSite, drop_logits: bool, per_c
             raise OnnxcalError(f"--fold: the {role} '{name}' is shared with other nodes", why)
         return name
 
+    assert node is not None  # the loop above raised otherwise
     if node.op_type in _QUANTIZED:
         raise OnnxcalError(f"--fold: the logits come from a quantized {node.op_type}", why)
     bias = ""
@@ -164,6 +169,7 @@ def _fold_site(model: onnx.ModelProto, site: ScoreSite, drop_logits: bool, per_c
     if not per_class:
         return fold
     if tracked is None:
+        assert lost is not None  # tracked only becomes None at a layout node
         raise OnnxcalError(
             f"--fold: cannot tell which part of weight '{weight}' belongs to which class: the class "
             f"axis is lost through the {lost.op_type} node '{lost.name or lost.output[0]}' "
@@ -188,6 +194,7 @@ def _along(v: np.ndarray, axis: int | None, ndim: int) -> np.ndarray:
     """Per-class values laid along ``axis`` of an ``ndim``-D array (a 0-d ``v`` as it is)."""
     if v.ndim == 0:
         return v
+    assert axis is not None  # per-class values come with a weight axis
     shape = [1] * ndim
     shape[axis] = v.size
     return v.reshape(shape)
@@ -195,7 +202,10 @@ def _along(v: np.ndarray, axis: int | None, ndim: int) -> np.ndarray:
 
 def _from_end(v: np.ndarray, class_from_end: int | None) -> np.ndarray:
     """Per-class values that broadcast (trailing dims aligned) along axis ``-class_from_end``."""
-    return v if v.ndim == 0 else v.reshape((v.size,) + (1,) * (class_from_end - 1))
+    if v.ndim == 0:
+        return v
+    assert class_from_end is not None  # per-class values come with a class axis
+    return v.reshape((v.size,) + (1,) * (class_from_end - 1))
 
 
 def _fold_affine(scaling: Scaling) -> tuple[np.ndarray, np.ndarray]:
@@ -259,10 +269,12 @@ def _fold(s: _Surgery, model: onnx.ModelProto, site: ScoreSite, scaling: Scaling
             f"of {scaling.method} scaling", "leave out --fold to insert Mul + Add instead",
         )
     weight = _array(s.graph, fold.weight)
+    assert weight is not None  # _fold_site checked it is a constant
     arrays = {fold.weight: weight.astype(np.float64) * _along(w, fold.weight_axis, weight.ndim)}
     dtypes = {fold.weight: weight.dtype}
     if fold.bias:
         bias = _array(s.graph, fold.bias)
+        assert bias is not None  # _fold_site checked it is a constant
         offset = _from_end(b, fold.class_from_end) / fold.beta if shift else 0.0
         arrays[fold.bias] = bias.astype(np.float64) * _from_end(w, fold.class_from_end) + offset
         dtypes[fold.bias] = bias.dtype
@@ -294,11 +306,14 @@ def _unfold(graph: onnx.GraphProto, record: Record) -> None:
     fold = _recorded_fold(record)
     w, _ = _fold_affine(record.scaling)
     weight = _array(graph, fold.weight)
+    assert weight is not None  # check_record found every scaled constant in the graph
     arrays = {fold.weight: weight.astype(np.float64) / _along(w, fold.weight_axis, weight.ndim)}
     if fold.bias_before is not None:
         arrays[fold.bias] = np.reshape(fold.bias_before["values"], fold.bias_before["dims"])
     elif fold.bias:  # a record from before per-class folding: the bias was divided by T
-        arrays[fold.bias] = _array(graph, fold.bias).astype(np.float64) / w
+        bias = _array(graph, fold.bias)
+        assert bias is not None  # check_record found every scaled constant in the graph
+        arrays[fold.bias] = bias.astype(np.float64) / w
     _put_arrays(graph, arrays)
 
 
@@ -311,7 +326,7 @@ def _roundings(record: Record | None) -> int:
     """
     if record is None:
         return 0
-    return record.changes.get("rounded", 0) + (2 if record.folded else 0)
+    return cast(int, record.changes.get("rounded", 0)) + (2 if record.folded else 0)
 
 
 @dataclass(frozen=True)

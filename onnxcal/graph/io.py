@@ -11,13 +11,15 @@ import errno
 import hashlib
 import os
 import shutil
+from collections.abc import Mapping
 from pathlib import Path, PureWindowsPath
-from typing import Any
+from typing import Any, cast
 
 import onnx
 
-from .._files import Writer, _data_runs, atomic_write_files, copy_range, require_file, sha256_bytes, sha256_file
+from .._files import Writer, atomic_write_files
 from .._limits import DEFAULT_MAX_MODEL_BYTES, check_model_size, format_bytes
+from .._paths import _data_runs, copy_range, require_file, sha256_bytes, sha256_file
 from ..errors import OnnxcalError, first_line
 from . import external
 from .external import Span, _model_tensors, is_external, open_contained
@@ -276,12 +278,12 @@ def model_sha256(path: str | os.PathLike[str]) -> str:
     return sha256_bytes("".join(lines).encode())
 
 
-def _repeated(fd) -> bool:
+def _repeated(fd: Any) -> bool:
     flag = getattr(fd, "is_repeated", None)  # protobuf >= 6; older ones have only the label
     return bool(flag) if flag is not None else fd.label == fd.LABEL_REPEATED
 
 
-def _non_text(message) -> str | None:
+def _non_text(message: Any) -> str | None:
     """The first string field (depth first) of a protobuf message whose value is not text.
 
     protobuf hands over the bytes of a ``string`` field that is not valid
@@ -293,7 +295,7 @@ def _non_text(message) -> str | None:
         for v in value if _repeated(fd) else (value,):
             if fd.type == fd.TYPE_STRING:
                 if not isinstance(v, str):
-                    return fd.full_name
+                    return cast(str, fd.full_name)
             elif (found := _non_text(v)) is not None:
                 return found
     return None
@@ -320,8 +322,9 @@ def _plan_data(model: onnx.ModelProto, location: str) -> tuple[onnx.ModelProto, 
     end = 0
     for i, t in enumerate(_model_tensors(copy)):
         if is_external(t):
-            piece: Span | bytes = external.span(t)
-            length = piece.length
+            span = external.span(t)
+            piece: Span | bytes = span
+            length = span.length
         elif i < main and t.HasField("raw_data") and len(t.raw_data) >= EXTERNAL_THRESHOLD:
             piece = t.raw_data
             length = len(piece)
@@ -451,4 +454,5 @@ def save_model(model: onnx.ModelProto, path: str | os.PathLike[str], *, external
 
     With external data both files are complete before either is renamed into place.
     """
-    atomic_write_files(model_files(model, path, external=external))
+    files = model_files(model, path, external=external)
+    atomic_write_files(cast("Mapping[str | os.PathLike[str], bytes | Writer]", files))

@@ -29,7 +29,7 @@ that added this module).
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 import onnx
@@ -101,15 +101,15 @@ class View:
         parent: View | None = None,
     ) -> None:
         self.model = model
-        self.graph = model.graph if graph is None else graph
+        self.graph: onnx.GraphProto = model.graph if graph is None else graph
         self.parent = parent
         self.opset = opset or 0
         self.producers = {out: i for i, n in enumerate(self.graph.node) for out in n.output if out}
         skip = overridable(model) if parent is None else set()
         self._inits = {i.name: i for i in self.graph.initializer if i.name not in skip}
         self._inputs = {vi.name for vi in self.graph.input} if parent is not None else set()
-        self.shapes = parent.shapes if parent is not None else _Shapes(model)
-        self.output = parent.output if parent is not None else ""  # the output being read, for messages
+        self.shapes: _Shapes = parent.shapes if parent is not None else _Shapes(model)
+        self.output: str = parent.output if parent is not None else ""  # the output being read, for messages
 
     def sub(self, graph: onnx.GraphProto) -> View:
         """The view of ``graph``, a subgraph of an attribute of one of this graph's nodes."""
@@ -119,7 +119,7 @@ class View:
         return self.producers.get(tensor)
 
     def node(self, index: int) -> onnx.NodeProto:
-        return self.graph.node[index]
+        return cast(onnx.NodeProto, self.graph.node[index])
 
     def constant(self, tensor: str) -> np.ndarray | None:
         """The value of ``tensor`` when it is a constant of the graph (or of a scope around it), else None."""
@@ -211,6 +211,7 @@ def _match_inputs(p: Op, inputs: list[str], view: View, found: Found) -> Found |
     got: Found | None = found.copy()
     for i, sub in enumerate(p.inputs):
         name = inputs[i] if i < len(inputs) else ""
+        assert got is not None  # None returned below
         got = _match(sub, name, view, got)
         if got is None:
             return None

@@ -29,7 +29,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 import onnx
@@ -279,6 +279,6 @@ def _same_grid(found: Found) -> bool:
     return all(
         (found.constants.get(a) is None and found.constants.get(b) is None)
         or (found.constants.get(a) is not None and found.constants.get(b) is not None
-            and np.array_equal(found.constants[a], found.constants[b]))
+            and np.array_equal(cast(np.ndarray, found.constants[a]), cast(np.ndarray, found.constants[b])))
         for a, b in pairs
     )

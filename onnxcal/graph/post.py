@@ -21,7 +21,7 @@ class                   ONNX operators (ONNX operator spec)          what it kee
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 
@@ -47,7 +47,7 @@ class Clip:
     high: float | None
 
     def reference(self, p: np.ndarray) -> np.ndarray:
-        return np.clip(p, self.low, self.high)
+        return cast(np.ndarray, np.clip(p, self.low, self.high))
 
     def describe(self) -> str:
         low = "-inf" if self.low is None else f"{self.low:g}"
@@ -85,7 +85,7 @@ class Quantize:
     def reference(self, p: np.ndarray) -> np.ndarray:
         info = np.iinfo(np.dtype(self.dtype))
         q = np.clip(np.rint(p / self.scale) + self.zero_point, info.min, info.max)
-        return (q - self.zero_point) * self.scale
+        return cast(np.ndarray, (q - self.zero_point) * self.scale)
 
     def describe(self) -> str:
         return f"quantized to {self.dtype} (scale {self.scale:.4g}, zero point {self.zero_point}) and back"
@@ -96,7 +96,7 @@ class Normalize:
     """The vector divided by its sum (L1 normalisation; a probability vector stays as it is)."""
 
     def reference(self, p: np.ndarray) -> np.ndarray:
-        return p / np.sum(np.abs(p), axis=-1, keepdims=True)
+        return cast(np.ndarray, p / np.sum(np.abs(p), axis=-1, keepdims=True))
 
     def describe(self) -> str:
         return "L1-normalised"

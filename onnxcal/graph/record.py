@@ -120,7 +120,7 @@ class Record:
     post: list[Any] = field(default_factory=list)
     fitted_on_sha256: str = ""
     score_columns: str = ""
-    decisions: dict = field(default_factory=dict)
+    decisions: dict[str, Any] = field(default_factory=dict)
     onnxcal_version: str = __version__
     format: int = RECORD_FORMAT
 
@@ -145,7 +145,7 @@ _RECORD_TYPES = {
 _CHANGE_LISTS = ("nodes", "initializers", "outputs", "value_info", "scaled", "inputs")
 
 
-def _check_record_fields(data) -> None:
+def _check_record_fields(data: Any) -> None:
     """Refuse a record whose fields are not of the types onnxcal writes (a garbled or forged record)."""
     if not isinstance(data, dict):
         raise TypeError(f"it is a JSON {type(data).__name__}, not an object")
@@ -162,7 +162,7 @@ def _check_record_fields(data) -> None:
         raise TypeError("changes 'renamed' is not a map of names")
 
 
-def _from_dict(data) -> Record:
+def _from_dict(data: Any) -> Record:
     """A Record from its JSON form (format 2 or 3), checked."""
     _check_record_fields(data)
     data = dict(data)
@@ -317,10 +317,11 @@ def parameter_values(
             return {"temperature": 1.0 / found.w}
         return {"w": found.w, "b": found.b.reshape(-1)}
     inits = record.initializers or {"temperature": record.temperature_initializer}
-    found = {k: _initializer(model.graph, n) for k, n in inits.items()}
-    if any(v is None for v in found.values()):
+    tensors = {k: _initializer(model.graph, n) for k, n in inits.items()}
+    present = {k: v for k, v in tensors.items() if v is not None}
+    if len(present) < len(tensors):
         return None
-    return {k: tensor_array(v).astype(np.float64).reshape(-1) for k, v in found.items()}
+    return {k: tensor_array(v).astype(np.float64).reshape(-1) for k, v in present.items()}
 
 
 def temperature_dtype(model: onnx.ModelProto, record: Record) -> str | None:

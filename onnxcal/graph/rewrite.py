@@ -83,6 +83,7 @@ def _insert_before(s: _Surgery, site: ScoreSite, scale: ScaleFn, compute: str | 
     inserted = len(s.nodes)
     s.flush(first)
     if single:  # the activation now runs in `compute`; cast its result back
+        assert site.node is not None  # a single activation op: its index
         at = site.node + inserted
         act = s.graph.node[at]
         wanted = act.output[0]
@@ -142,6 +143,7 @@ def _replace_normalised_sigmoid(s: _Surgery, site: ScoreSite, scale: ScaleFn, co
     whole rows into 0 / 0. The Sigmoid node stays, its output renamed and unread.
     """
     index = site.node
+    assert index is not None  # the Sigmoid's index
     act = s.graph.node[index]
     wanted = act.output[0]
     s.rename_output(act, 0, f"{wanted}_uncalibrated")

@@ -75,7 +75,7 @@ class _Surgery:
             self.changes.setdefault("inputs", []).append(tensor.name)
         return tensor.name
 
-    def node(self, op: str, inputs: list[str], out: str, output: str | None = None, **attrs) -> str:
+    def node(self, op: str, inputs: list[str], out: str, output: str | None = None, **attrs: Any) -> str:
         """Queue ``op``; its output is ``output`` or a new name from ``out``."""
         result = output or self.name(out)
         name = self.name(f"onnxcal_{op.lower()}")
@@ -114,7 +114,7 @@ Initializers it adds go in ``surgery.parameters`` by role."""
 _PARAMETER_NAMES = {"temperature": "onnxcal_temperature", "w": "onnxcal_scale", "b": "onnxcal_bias"}
 
 
-def _parameter(s: _Surgery, role: str, value, dtype: str, site: ScoreSite) -> str:
+def _parameter(s: _Surgery, role: str, value: Any, dtype: str, site: ScoreSite) -> str:
     """A parameter initializer: a scalar, or one value per class shaped to
     broadcast along the class axis of the scores (ONNX multidirectional
     broadcasting aligns trailing dims; ONNX operator spec, Broadcasting)."""
@@ -129,7 +129,7 @@ def _parameter(s: _Surgery, role: str, value, dtype: str, site: ScoreSite) -> st
 
 
 def divide_by_temperature(
-    surgery: _Surgery, x: str, dtype: str, *, temperature, site: ScoreSite
+    surgery: _Surgery, x: str, dtype: str, *, temperature: Any, site: ScoreSite
 ) -> str:
     """Temperature scaling: ``Div(x, T)``, T a scalar (or one per label) in ``dtype``.
 
@@ -142,7 +142,7 @@ def divide_by_temperature(
     return surgery.node("Div", [x, t_name], f"{x}_calibrated")
 
 
-def multiply_add(surgery: _Surgery, x: str, dtype: str, *, w, b, site: ScoreSite) -> str:
+def multiply_add(surgery: _Surgery, x: str, dtype: str, *, w: Any, b: Any, site: ScoreSite) -> str:
     """Vector scaling (per class) or Platt scaling (scalars): ``Add(Mul(x, w), b)``.
 
     References
@@ -194,7 +194,7 @@ def map_logits(surgery: _Surgery, x: str, dtype: str, *, scaling: Scaling, site:
     for node in sub.nodes:
         surgery.nodes.append(node)
         surgery.changes["nodes"].append(node.name)
-    out = sub.output
+    out: str = sub.output
     if not extra:
         out = _probabilities_as_logits(surgery, out, dtype, num_classes)
     if one_dim:
@@ -337,7 +337,7 @@ def _raw_scores(s: _Surgery, site: ScoreSite) -> str:
     copy.attribute.extend(kept)
     s.nodes.append(copy)
     s.changes["nodes"].append(copy.name)
-    raw = copy.output[1]
+    raw: str = copy.output[1]
     # onnx infers no type for some ai.onnx.ml ops (TreeEnsembleClassifier-1); strict inference needs one
     s.value_info(helper.make_tensor_value_info(raw, _ELEM[site.dtype], [None, None]))
     if site.ml_transform == "SOFTMAX":

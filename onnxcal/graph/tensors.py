@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import onnx
@@ -113,7 +115,7 @@ def _producers(graph: onnx.GraphProto) -> dict[str, int]:
     return {out: i for i, node in enumerate(graph.node) for out in node.output}
 
 
-def _attr(node: onnx.NodeProto, name: str, default):
+def _attr(node: onnx.NodeProto, name: str, default: Any) -> Any:
     for a in node.attribute:
         if a.name == name:
             return helper.get_attribute_value(a)
@@ -162,7 +164,7 @@ def subgraphs(node: onnx.NodeProto) -> list[tuple[str, onnx.GraphProto]]:
     return out
 
 
-def all_nodes(graph: onnx.GraphProto):
+def all_nodes(graph: onnx.GraphProto) -> Iterator[onnx.NodeProto]:
     """Every node of ``graph`` and of its subgraphs, depth first."""
     for node in graph.node:
         yield node
@@ -213,11 +215,11 @@ def _without_weights(model: onnx.ModelProto) -> onnx.ModelProto:
     return light
 
 
-def _rank(shape) -> int | None:
+def _rank(shape: Sequence[int | str | None] | None) -> int | None:
     return len(shape) if shape is not None else None
 
 
-def _same_dims(a, b) -> bool:
+def _same_dims(a: Sequence[int | str | None], b: Sequence[int | str | None]) -> bool:
     """Products of two dim lists are equal (symbolic dims compared by name)."""
     if any(d is None for d in [*a, *b]):
         return False
@@ -228,7 +230,9 @@ def _same_dims(a, b) -> bool:
     return ints_a == ints_b and syms_a == syms_b
 
 
-def _axis_through_reshape(axis: int, before, after) -> int | None:
+def _axis_through_reshape(
+    axis: int, before: Sequence[int | str | None] | None, after: Sequence[int | str | None] | None
+) -> int | None:
     """Where the class axis ends up when a reshape keeps it whole, else None.
 
     The class axis survives when some output axis has its size and the same
