@@ -5,15 +5,17 @@ from __future__ import annotations
 import os
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any, cast
 
 import numpy as np
 import onnx
 
 from .. import graph
 from .. import reading as _reading
-from .._files import atomic_write_files, one_command
+from .._files import Writer, atomic_write_files
 from .._limits import DEFAULT_MAX_MODEL_BYTES, check_bins_memory
 from .._numeric import max_abs
+from .._paths import one_command
 from ..capture import CPU, Capture, ProgressFn, RunOptions, finite_mask
 from ..data import Dataset, DataSpec
 from ..decisions.plan import NO_DECISIONS, DecisionOptions, Decisions
@@ -57,7 +59,7 @@ class CalibrateResult:
     decisions: Decisions | None = None
 
 
-def _check_not_calibrated(model, model_path, output: str | None) -> None:
+def _check_not_calibrated(model: onnx.ModelProto, model_path: str | os.PathLike[str], output: str | None) -> None:
     """``calibrate`` fits an output once: another output of a calibrated model may be calibrated."""
     records = graph.read_records(model)
     if not records:
@@ -89,12 +91,15 @@ class _Captured:
     """The capture of every row (``full``), the mask of rows with finite logits, and those rows alone (``cap``)."""
 
     full: Capture
-    keep: np.ndarray
+    keep: np.ndarray[Any, Any]
     cap: Capture
     dropped: str | None  # the note on the rows left out, if any
 
 
-def _check_outputs(out, report, model_path, specs: list[DataSpec], force: bool, limit: int) -> bool:
+def _check_outputs(
+    out: str | os.PathLike[str], report: str | os.PathLike[str] | None, model_path: str | os.PathLike[str],
+    specs: list[DataSpec], force: bool, limit: int,
+) -> bool:
     """Check the model's output (and its data file) and the report's files before any work; True if external."""
     files = [f for spec in specs for f in spec.files()]
     external = check_model_outputs(out, [model_path, *files], model_path, force, limit)
@@ -153,6 +158,7 @@ def _patch_and_check(
     patched = patching.patch(source.model, summary.scaling, sha=source.sha, path=source.path, fit=summary.to_dict(),
                              reading=_reading.patch_reading(cap.meta.to_dict()), largest_logit=max_abs(cap.logits))
     record = graph.read_record(patched, cap.meta.output)
+    assert record is not None  # the patch just wrote the record of this output
     run, progress = source.run, source.progress
     chosen = None
     if to_decide.options.wanted:
@@ -173,15 +179,18 @@ def _patch_and_check(
 
 
 def _report_files(
-    directory, out, external: bool, patched: onnx.ModelProto, cap: Capture, summary: FitSummary, result: VerifyResult
+    directory: str | os.PathLike[str], out: str | os.PathLike[str], external: bool, patched: onnx.ModelProto,
+    cap: Capture, summary: FitSummary, result: VerifyResult,
 ) -> tuple[dict[Path, bytes], ReportResult]:
     """The report's files, rendered in memory, with the verification (and the written model, when it passed)."""
     calibrated = None if not result.passed else {
         "name": Path(out).name, "path": str(out), "sha256": graph.saved_sha256(patched, out, external=external)
     }
+    record = graph.read_record(patched, cap.meta.output)
+    assert record is not None  # the patch wrote the record of this output
     content = build_report(
         cap, summary.scaling, summary=summary, class_names=capture_names(cap), calibrated=calibrated,
-        verification=result, decisions=graph.read_record(patched, cap.meta.output).decisions,
+        verification=result, decisions=record.decisions,
     )
     return report_files(directory, content, FORMATS)
 
@@ -268,11 +277,14 @@ def calibrate(
     summary = deciding.baked_summary(_fit_captured(seen, options), decisions, to_decide.separate is not None)
     patched, record, result, chosen = _patch_and_check(source, patching, seen, summary, to_decide, verify_rows)
     written = PatchResult(path=str(out), record=record) if result.passed else None
-    files: dict[Path, bytes] = graph.model_files(patched, out, external=external) if written is not None else {}
+    files: dict[Path, bytes | Writer] = (
+        graph.model_files(patched, out, external=external) if written is not None else {}
+    )
     written_report = None
     if report is not None:
         report_content, written_report = _report_files(report, out, external, patched, seen.cap, summary, result)
         files.update(report_content)
-    atomic_write_files(files)
+    # the Mapping's key type is invariant: a dict keyed by Path is the str | PathLike keys it accepts
+    atomic_write_files(cast("dict[str | os.PathLike[str], bytes | Writer]", files))
     return CalibrateResult(summary=summary, patch=written, verification=result, report=written_report,
                            decisions=chosen)

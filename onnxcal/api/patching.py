@@ -3,18 +3,19 @@
 from __future__ import annotations
 
 import os
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 import onnx
 
 from .. import graph
 from .. import reading as _reading
-from .._files import one_command
 from .._limits import DEFAULT_MAX_MODEL_BYTES
 from .._numeric import check_in_dtype
+from .._paths import one_command
 from ..data import DataSpec
 from ..decisions.plan import NO_DECISIONS, DecisionOptions, Decisions
 from ..errors import OnnxcalError
@@ -75,9 +76,9 @@ class PatchOptions:
     output_holds: str | None = None
     score_columns: str | None = None
 
-    def patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict[str, Any],
-              reading: dict[str, Any] | None = None,
-              fitted_on: str = "", largest_logit=None):
+    def patch(self, model: onnx.ModelProto, calibration: float | Scaling, *, sha: str, path: str | os.PathLike[str],
+              fit: dict[str, Any], reading: dict[str, Any] | None = None,
+              fitted_on: str = "", largest_logit: float | None = None) -> onnx.ModelProto:
         """``graph.patch`` with these options, its parameters checked against the dtype the graph
         computes them in (and, given ``largest_logit``, against the logits seen; see ``_numeric``).
         ``reading`` says how a capture read the model."""
@@ -88,9 +89,9 @@ class PatchOptions:
             check_in_dtype(record.scaling, dtype, largest_logit=largest_logit)
         return patched
 
-    def _patch(self, model, calibration: float | Scaling, *, sha: str, path, fit: dict[str, Any],
-               reading: dict[str, Any] | None,
-               fitted_on: str):
+    def _patch(self, model: onnx.ModelProto, calibration: float | Scaling, *, sha: str, path: str | os.PathLike[str],
+               fit: dict[str, Any], reading: dict[str, Any] | None,
+               fitted_on: str) -> onnx.ModelProto:
         if reading is None:
             reading = {} if self.output_holds is None else {"holds": self.output_holds, "holds_from": "stated"}
         if self.score_columns is not None:
@@ -138,6 +139,7 @@ def _resolve_scaling(
         raise OnnxcalError("give exactly one of --temperature and --fit")
     if temperature is not None:
         return graph.check_temperature(temperature), {"method": "temperature", "given": True}
+    assert fit_source is not None  # exactly one of the two is given (checked above)
     summary = fit_source if isinstance(fit_source, FitSummary) else load_fit(fit_source)
     return summary.scaling, summary.to_dict()
 
@@ -162,7 +164,7 @@ def patch(
     fitted_on_twin: bool = False,
     score_columns: str | None = None,
     decisions: DecisionOptions = NO_DECISIONS,
-    decision_data: str | os.PathLike | DataSpec | None = None,
+    decision_data: str | os.PathLike[str] | DataSpec | None = None,
 ) -> PatchResult:
     """Write a copy of the model that outputs calibrated probabilities.
 
@@ -216,7 +218,7 @@ def patch(
     for previous in records:  # re-patching undoes a head: its record must fit the graph
         graph.check_record(model, previous, f"'{model_path}'")
     fitted_on = _provenance(fit_dict, fit, model_path, sha, records, fitted_on_twin)
-    meta = fit_dict.get("capture") if isinstance(fit_dict.get("capture"), dict) else {}
+    meta = cast("dict[str, Any]", fit_dict.get("capture")) if isinstance(fit_dict.get("capture"), dict) else {}
     if output is None and meta.get("output") in {o.name for o in model.graph.output} and not records:
         output = meta["output"]
     patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds,
@@ -228,17 +230,22 @@ def patch(
     if separate is not None:
         patched, chosen = deciding.for_patch(patched, output, separate, decisions)
     graph.save_model(patched, out, external=external)
-    return PatchResult(path=str(out), record=graph.read_record(patched, output), decisions=chosen)
+    record = graph.read_record(patched, output)
+    assert record is not None  # the patch just wrote the record of this output (or, without output, the last one)
+    return PatchResult(path=str(out), record=record, decisions=chosen)
 
 
-def _provenance(fit_dict: dict[str, Any], fit, model_path, sha: str, records, twin: bool) -> str:
+def _provenance(
+    fit_dict: dict[str, Any], fit: FitSummary | str | os.PathLike[str] | None, model_path: str | os.PathLike[str],
+    sha: str, records: Sequence[Record], twin: bool,
+) -> str:
     """The sha256 of the twin the fit was made on ("" for this model); a fit of another model is refused.
 
     The fit's capture names the model it ran (sha256). It may be this file,
     or, for a model already patched, the original the records name.
     """
-    meta = fit_dict.get("capture") if isinstance(fit_dict.get("capture"), dict) else {}
-    fitted = meta.get("model_sha256") if isinstance(meta.get("model_sha256"), str) else None
+    meta = cast("dict[str, Any]", fit_dict.get("capture")) if isinstance(fit_dict.get("capture"), dict) else {}
+    fitted = cast("str", meta.get("model_sha256")) if isinstance(meta.get("model_sha256"), str) else None
     mine = {sha, file_only_sha256(model_path), *(r.source_sha256 for r in records)}
     if fit is None or not fitted or fitted in mine:
         return ""

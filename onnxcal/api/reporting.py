@@ -6,21 +6,16 @@ import os
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 import onnx
+from numpy.typing import ArrayLike
 
 from .. import graph
-from .._files import (
-    atomic_write_files,
-    check_not_input,
-    check_output_path,
-    check_writable,
-    one_command,
-    require_file,
-)
+from .._files import Writer, atomic_write_files
 from .._limits import DEFAULT_MAX_MODEL_BYTES, MAX_BINS, check_bins_memory, check_range
 from .._numeric import check_in_dtype, max_abs
+from .._paths import check_not_input, check_output_path, check_writable, one_command, require_file
 from ..capture import Capture, load_captures
 from ..errors import OnnxcalError
 from ..fit import FitSummary, load_fit, summary_from_dict
@@ -37,7 +32,7 @@ from .common import as_paths, finite_capture, model_byte_limit, model_files
 from .models import models_in_memory
 
 
-def _check_formats(formats) -> tuple[str, ...]:
+def _check_formats(formats: str | Sequence[str]) -> tuple[str, ...]:
     if isinstance(formats, str):
         formats = [f.strip() for f in formats.split(",") if f.strip()]
     bad = [f for f in formats if f not in FORMATS]
@@ -49,7 +44,10 @@ def _check_formats(formats) -> tuple[str, ...]:
     return tuple(f for f in FORMATS if f in formats)
 
 
-def report_targets(directory, formats, inputs, force: bool, option: str) -> list[Path]:
+def report_targets(
+    directory: str | os.PathLike[str], formats: Sequence[str], inputs: Sequence[str | os.PathLike[str]], force: bool,
+    option: str,
+) -> list[Path]:
     """The report's files, checked before any work; the directory may not exist yet."""
     d = check_not_input(directory, inputs, option)
     if d.exists() and not d.is_dir():
@@ -65,21 +63,24 @@ def report_targets(directory, formats, inputs, force: bool, option: str) -> list
     return targets
 
 
-def report_files(directory, content: dict[str, Any], formats) -> tuple[dict[Path, bytes], ReportResult]:
+def report_files(
+    directory: str | os.PathLike[str], content: dict[str, Any], formats: Sequence[str]
+) -> tuple[dict[Path, bytes], ReportResult]:
     """Every file of a report, rendered in memory, and the result that describes them."""
     d = Path(directory)
     files = {d / name: data for name, data in render_report(content, formats).items()}
     return files, ReportResult(directory=str(d), files=tuple(map(str, files)), content=content)
 
 
-def _write_report(directory, content: dict[str, Any], formats) -> ReportResult:
+def _write_report(directory: str | os.PathLike[str], content: dict[str, Any], formats: Sequence[str]) -> ReportResult:
     """Render every file in memory, then write them together (a new directory is removed again if writing fails)."""
     files, result = report_files(directory, content, formats)
-    atomic_write_files(files)
+    # the Mapping's key type is invariant: a dict keyed by Path is the str | PathLike keys it accepts
+    atomic_write_files(cast("dict[str | os.PathLike[str], bytes | Writer]", files))
     return result
 
 
-def _class_names(value, k: int) -> list[str] | None:
+def _class_names(value: str | os.PathLike[str] | Sequence[str] | None, k: int) -> list[str] | None:
     """Class names from a list or a text file (one per line), checked against K."""
     if value is None:
         return None
@@ -113,7 +114,7 @@ def capture_names(cap: Capture) -> list[str] | None:
     return list(names) if len(names) == k else None
 
 
-def _fit_from_record(record: Record, model_path) -> FitSummary | None:
+def _fit_from_record(record: Record, model_path: str | os.PathLike[str]) -> FitSummary | None:
     if "metrics" not in record.fit:  # patched with a given T: no fit to show
         return None
     try:
@@ -153,8 +154,12 @@ class _Calibration:
     decisions: dict[str, Any] | None = None  # its record's decisions section (docs/decisions.md)
 
 
-def _calibration_of(temperature: float | None, fit, model, cap: Capture, limit: int) -> _Calibration:
+def _calibration_of(
+    temperature: float | None, fit: FitSummary | str | os.PathLike[str] | None, model: str | os.PathLike[str] | None,
+    cap: Capture, limit: int,
+) -> _Calibration:
     """The calibration given by hand (``temperature``), by a fit, or by a patched model's record."""
+    summary: FitSummary | None  # the fit's, or the record's (None when patched with a given T)
     if temperature is not None:
         kind = capture_kind(cap.logits.shape[1], cap.labels.ndim, cap.meta.fit_as)
         return _Calibration(Scaling.of_temperature(graph.check_temperature(temperature), kind), None, None,
@@ -162,6 +167,7 @@ def _calibration_of(temperature: float | None, fit, model, cap: Capture, limit: 
     if fit is not None:
         summary = fit if isinstance(fit, FitSummary) else load_fit(fit)
         return _Calibration(summary.scaling, summary, summary.capture.get("model_sha256"), "the fit")
+    assert model is not None  # report() checked that exactly one of temperature, fit and model is given
     record = _record_of(model, limit)
     summary = _fit_from_record(record, model)
     calibrated = {"name": Path(model).name, "path": str(model), "sha256": graph.model_sha256(model)}
@@ -252,7 +258,7 @@ def report(
     return _write_report(out, content, formats)
 
 
-def _record_of(model_path, limit: int) -> Record:
+def _record_of(model_path: str | os.PathLike[str], limit: int) -> Record:
     """The calibration record of a patched model, checked to describe its graph and its parameters.
 
     For a folded model the parameters cannot be read back without the
@@ -268,7 +274,10 @@ def _record_of(model_path, limit: int) -> Record:
     graph.check_record(model, record, f"'{model_path}'")
     if not record.folded:
         check = record_check(
-            record.parameters, graph.parameter_values(model, record), graph.temperature_dtype(model, record)
+            record.parameters,
+            # dict is invariant in its values: arrays are the ArrayLike record_check reads
+            cast("dict[str, ArrayLike] | None", graph.parameter_values(model, record)),
+            graph.temperature_dtype(model, record),
         )
         if not check.passed:
             raise OnnxcalError(
