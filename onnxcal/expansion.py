@@ -34,12 +34,12 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from math import factorial
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 
 from .metrics.binning import ece_from_bins, lerp_quantiles, mce_from_bins
-from .sweep import Selection, run_pass
+from .sweep import Chunk, ExpTerms, Selection, run_pass
 from .tempfit import ORDER, taylor_root
 
 TERMS = 3
@@ -70,7 +70,7 @@ def _series(derivs: np.ndarray, largest: np.ndarray, d: float) -> np.ndarray | N
         top -= 1
     if top == len(derivs) - 1 and largest[top] * abs(d) ** top / factorial(top) > SERIES_LIMIT:
         return None
-    acc = derivs[top].copy()
+    acc: np.ndarray = derivs[top].copy()
     for j in range(top - 1, -1, -1):
         acc *= d / (j + 1)
         acc += derivs[j]
@@ -107,6 +107,7 @@ class Expansion:
     def root(self, counts: np.ndarray) -> float | None:
         """The replicate's d = beta - beta0 (``counts``: how often each fit row was drawn),
         or None when the expansion cannot give it to TAYLOR_TOL."""
+        assert self.high is not None  # set by finish(), which expand() always calls
         derivs = np.concatenate([self.fit_terms @ counts, float(counts.sum()) * self.high])
         found = taylor_root(derivs)
         if found is None or found[1] > TAYLOR_TOL * self.beta0:
@@ -116,6 +117,9 @@ class Expansion:
     def metrics(self, drawn: np.ndarray, d: float, n_bins: int) -> dict[str, Any] | None:
         """Every metric but the classwise ECE at beta0 + d (``drawn``: the positions drawn
         from the held-out part); None if out of the series' reach."""
+        # set by finish() when the expansion is accurate, the only case where metrics() is called
+        assert self.top_max is not None and self.sq_max is not None
+        assert self.rank is not None and self.u is not None
         log_top = _series(self.log_top, self.top_max, d)
         log_sq = _series(self.log_sq, self.sq_max, d)
         if log_top is None or log_sq is None:
@@ -183,7 +187,7 @@ class _Prefix:
     products, without a cumulative array for the confidences).
     """
 
-    def __init__(self, u, v, c, correct, delta) -> None:
+    def __init__(self, u: np.ndarray, v: np.ndarray, c: np.ndarray, correct: np.ndarray, delta: float) -> None:
         self.u, self.v, self.c, self.correct, self.delta = u, v, c, correct, delta
         self.cum = np.zeros(len(c) + 1)
         np.cumsum(c, out=self.cum[1:])
@@ -250,7 +254,7 @@ class ExpansionRows:
         self.exp, self.local = exp, local
         self.high = np.zeros(ORDER - TERMS)  # sums of kappa_4, kappa_5 over the fit rows, when the pass has them
 
-    def add(self, chunk, terms) -> None:
+    def add(self, chunk: Chunk, terms: ExpTerms) -> None:
         c = len(chunk.y)
         pos = np.arange(chunk.start, chunk.start + c)
         fit = slice(None) if chunk.part is None else chunk.part == 0
@@ -269,6 +273,8 @@ class ExpansionRows:
         top[1] = terms.zmax - kappa[:, 0]
         top[2:] = -kappa[:, 1:].T
         self.exp.log_top[:, at_held] = top[:, held]
+        # every pass that carries an ExpansionRows asks for sq_moments=SQ_ORDER (expand, passes)
+        assert terms.sq_log_total is not None and terms.sq_cumulants is not None
         sq = np.empty((SQ_ORDER + 1, c))
         sq[0] = terms.sq_log_total - 2.0 * terms.log_total
         for j in range(1, SQ_ORDER + 1):
@@ -289,7 +295,9 @@ def new_expansion(beta0: float, n_fit: int, n_held: int) -> Expansion:
     )
 
 
-def expansion_parts(n: int, fit_rows: np.ndarray, eval_rows: np.ndarray, local: bool = True):
+def expansion_parts(
+    n: int, fit_rows: np.ndarray, eval_rows: np.ndarray, local: bool = True
+) -> tuple[np.ndarray | None, np.ndarray | None]:
     """(part per row or None, index within its part per row or None) for a pass over all n rows."""
     if fit_rows is eval_rows:
         return None, None
@@ -297,13 +305,20 @@ def expansion_parts(n: int, fit_rows: np.ndarray, eval_rows: np.ndarray, local: 
     part[eval_rows] = 1
     if not local:
         return part, None
-    local = np.empty(n, np.intp)
-    local[fit_rows] = np.arange(len(fit_rows))
-    local[eval_rows] = np.arange(len(eval_rows))
-    return part, local
+    within = np.empty(n, np.intp)  # not reusing the bool parameter's name, for the type checker
+    within[fit_rows] = np.arange(len(fit_rows))
+    within[eval_rows] = np.arange(len(eval_rows))
+    return part, within
 
 
-def expand(logits, labels, fit_rows, eval_rows, beta0: float, threads=None) -> Expansion:
+def expand(
+    logits: np.ndarray,
+    labels: np.ndarray,
+    fit_rows: np.ndarray,
+    eval_rows: np.ndarray,
+    beta0: float,
+    threads: int | None = None,
+) -> Expansion:
     """One pass at beta0 over both parts, filling an :class:`Expansion`."""
     part, local = expansion_parts(len(logits), fit_rows, eval_rows)
     exp = new_expansion(beta0, len(fit_rows), len(eval_rows))
@@ -311,4 +326,5 @@ def expand(logits, labels, fit_rows, eval_rows, beta0: float, threads=None) -> E
         logits, labels, beta0, lambda: (ExpansionRows(exp, local),), selection=Selection(part=part),
         moments=ORDER, sq_moments=SQ_ORDER, sq_part=None if part is None else 1, threads=threads,
     )
-    return exp.finish(sum(lane[0].high for lane in lanes) / max(len(fit_rows), 1))
+    high = sum(cast(ExpansionRows, lane[0]).high for lane in lanes)  # each lane's only consumer
+    return exp.finish(np.asarray(high) / max(len(fit_rows), 1))

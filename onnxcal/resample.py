@@ -55,10 +55,10 @@ Bootstrap", Chapman & Hall 1993, ch. 13 (percentile intervals).
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator
-from concurrent.futures import ThreadPoolExecutor
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any, TypeVar, cast
 
 import numpy as np
 
@@ -76,8 +76,14 @@ from .metrics import (
 from .scaling import Scaling
 from .sweep import default_threads
 
+if TYPE_CHECKING:  # onnxcal.fit imports this module
+    from .fit.options import FitOptions, FitResult
+
 Refit = Callable[..., object]
 """``refit(logits, labels, options, rows=, weights=, start=)`` -> a FitResult."""
+
+_Item = TypeVar("_Item")
+_Out = TypeVar("_Out")
 
 LEVEL = 0.95
 GRID_POINTS = 9
@@ -96,7 +102,7 @@ def _strata(labels: np.ndarray) -> np.ndarray:
         return labels.astype(np.int64)
     freq = labels.sum(axis=0).astype(np.float64)
     masked = np.where(labels > 0, freq[None, :], np.inf)
-    strata = masked.argmin(axis=1)
+    strata: np.ndarray = masked.argmin(axis=1)
     strata[~(labels > 0).any(axis=1)] = labels.shape[1]  # rows with no label present
     return strata
 
@@ -294,7 +300,7 @@ def _draw(rng: np.random.Generator, n: int, samples: Samples | None) -> np.ndarr
 _LOOKUPS = ("isotonic", "histogram")
 
 
-def _percentile(values: np.ndarray) -> list[Any]:
+def _percentile(values: np.ndarray) -> list[Any] | None:
     """[low, high] per column of (replicates, ...) values; None where any is NaN."""
     q = np.percentile(values, [100 * (1 - LEVEL) / 2, 100 * (1 + LEVEL) / 2], axis=0)
     if q.ndim == 1:
@@ -305,7 +311,7 @@ def _percentile(values: np.ndarray) -> list[Any]:
 def bootstrap(
     logits: np.ndarray,
     labels: np.ndarray,
-    options,
+    options: FitOptions,
     fit_rows: np.ndarray,
     eval_rows: np.ndarray,
     start: Scaling,
@@ -355,6 +361,7 @@ def bootstrap(
     run = Replicates(logits, labels, options, fit_rows, eval_rows, start, refit, threads)
     how = "exact"
     if fast:
+        assert start.temperature is not None  # fast: a multiclass temperature scaling has its T
         expansion = expansion or expand(logits, labels, fit_rows, eval_rows, 1.0 / start.temperature, threads)
         how = "taylor" if expansion.accurate else "grid"
         params, metrics, fallbacks = (run.taylor(expansion, draws) if expansion.accurate else run.grid(draws))
@@ -362,7 +369,7 @@ def bootstrap(
         params, metrics = run.exact(draws)
         fallbacks = 0
     names = [] if start.method in _LOOKUPS else list(start.parameters)
-    out = {
+    out: dict[str, Any] = {
         "level": LEVEL,
         "kind": "percentile",
         "replicates": options.bootstrap,
@@ -405,41 +412,59 @@ def _resampled(fit_samples: Samples | None, eval_samples: Samples | None) -> dic
 class Replicates:
     """The replicates of one bootstrap: refitted exactly, on the grid, or from the expansion."""
 
-    def __init__(self, logits, labels, options, fit_rows, eval_rows, start, refit, threads) -> None:
+    def __init__(
+        self,
+        logits: np.ndarray,
+        labels: np.ndarray,
+        options: FitOptions,
+        fit_rows: np.ndarray,
+        eval_rows: np.ndarray,
+        start: Scaling,
+        refit: Refit,
+        threads: int | None,
+    ) -> None:
         self.logits, self.labels, self.options = logits, labels, options
         self.fit_rows, self.eval_rows, self.start = fit_rows, eval_rows, start
         self.refit, self.threads = refit, threads
 
-    def _refit(self, cf):
-        return self.refit(self.logits, self.labels, self.options, rows=self.fit_rows, weights=cf, start=self.start)
+    def _refit(self, cf: np.ndarray) -> FitResult:
+        return cast(
+            "FitResult",
+            self.refit(self.logits, self.labels, self.options, rows=self.fit_rows, weights=cf, start=self.start),
+        )
 
-    def _score(self, scaling, ce) -> dict[str, Any]:
+    def _score(self, scaling: Scaling | float, ce: np.ndarray) -> dict[str, Any]:
         m = evaluate(self.logits, self.labels, scaling, self.options.n_bins, rows=self.eval_rows, weights=ce)
         return m.to_dict()
 
-    def exact(self, draws):
-        params, metrics = [], []
+    def exact(self, draws: Iterable[Draw]) -> tuple[list[dict[str, np.ndarray]], list[dict[str, Any]]]:
+        params: list[dict[str, np.ndarray]] = []
+        metrics: list[dict[str, Any]] = []
         for draw in draws:
             res = self._refit(draw.fit_counts)
             params.append({} if res.scaling.method in _LOOKUPS else res.scaling.arrays())
             metrics.append(self._score(res.scaling, draw.held_counts))
         return params, metrics
 
-    def grid(self, draws):
+    def grid(self, draws: Iterable[Draw]) -> tuple[list[dict[str, np.ndarray]], list[dict[str, Any]], int]:
         return _grid_replicates(
             self.logits, self.labels, self.options, self.fit_rows, self.eval_rows, self.start, draws, self.refit
         )
 
-    def taylor(self, exp: Expansion, draws):
+    def taylor(
+        self, exp: Expansion, draws: Iterable[Draw]
+    ) -> tuple[list[dict[str, np.ndarray]], list[dict[str, Any]], int]:
         """Each replicate from the expansion; refitted exactly when its root is too far out."""
         n_bins = self.options.n_bins
         exact_eval = len(self.eval_rows) * self.logits.shape[1] * self.options.bootstrap <= EXACT_EVAL_BUDGET
 
-        def one(draw):
+        def one(draw: Draw) -> tuple[dict[str, np.ndarray], dict[str, Any], bool]:
             counts = draw.fit_counts
             d = exp.root(counts)
             if d is None:
-                beta = 1.0 / self._refit(counts).temperature
+                t = self._refit(counts).temperature
+                assert t is not None  # a multiclass temperature refit has its T
+                beta = 1.0 / t
             else:
                 beta = exp.beta0 + d
             m = None if exact_eval or d is None else exp.metrics(draw.held, d, n_bins)
@@ -453,12 +478,13 @@ class Replicates:
         return [r[0] for r in done], [r[1] for r in done], sum(r[2] for r in done)
 
 
-def _map_in_order(fn, items, threads: int) -> list[Any]:
+def _map_in_order(fn: Callable[[_Item], _Out], items: Iterable[_Item], threads: int) -> list[_Out]:
     """[fn(item) for item in items], on ``threads`` threads, items drawn in order."""
     if threads <= 1:
         return [fn(item) for item in items]
     with ThreadPoolExecutor(threads) as pool:
-        pending, out = [], []
+        pending: list[Future[_Out]] = []
+        out: list[_Out] = []
         for item in items:  # the draws come from one generator, in order
             pending.append(pool.submit(fn, item))
             if len(pending) > 2 * threads:
@@ -470,7 +496,9 @@ def _map_in_order(fn, items, threads: int) -> list[Any]:
 # The grid (multiclass temperature scaling on small sets) --------------------
 
 
-def _grid_terms(logits, labels, rows, betas, held_out: bool) -> dict[str, np.ndarray]:
+def _grid_terms(
+    logits: np.ndarray, labels: np.ndarray, rows: np.ndarray, betas: Sequence[float] | np.ndarray, held_out: bool
+) -> dict[str, np.ndarray]:
     """Per-row terms at each beta of the grid, float32 arrays of shape (rows, G).
 
     Fit part: ``g`` (dNLL/dbeta) and ``h`` (d2NLL/dbeta2). Held-out part:
@@ -479,7 +507,7 @@ def _grid_terms(logits, labels, rows, betas, held_out: bool) -> dict[str, np.nda
     """
     g_count = len(betas)
     names = ("nll", "g", "conf", "dconf", "brier", "dbrier") if held_out else ("g", "h")
-    out = {k: np.empty((len(rows), g_count), dtype=np.float32) for k in names}
+    out: dict[str, np.ndarray] = {k: np.empty((len(rows), g_count), dtype=np.float32) for k in names}
     correct = np.empty(len(rows), dtype=bool)
     start = 0
     for z, y, _ in iter_chunks(logits, labels, rows):
@@ -512,7 +540,7 @@ def _grid_terms(logits, labels, rows, betas, held_out: bool) -> dict[str, np.nda
     return out
 
 
-def _hermite(t, h, y0, d0, y1, d1):
+def _hermite(t: float, h: float, y0: Any, d0: Any, y1: Any, d1: Any) -> Any:  # floats or arrays
     """Cubic Hermite interpolation on an interval of length h at t in [0, 1]."""
     t2, t3 = t * t, t * t * t
     return (
@@ -520,7 +548,7 @@ def _hermite(t, h, y0, d0, y1, d1):
     )
 
 
-def _grid(logits, labels, fit_rows, beta_hat) -> np.ndarray:
+def _grid(logits: np.ndarray, labels: np.ndarray, fit_rows: np.ndarray, beta_hat: float) -> np.ndarray:
     """Betas around the fit, +-GRID_HALF_WIDTH sandwich standard errors of log(beta)."""
     terms = _grid_terms(logits, labels, fit_rows, [beta_hat], held_out=False)
     g = terms["g"][:, 0].astype(np.float64)
@@ -528,10 +556,21 @@ def _grid(logits, labels, fit_rows, beta_hat) -> np.ndarray:
     # Sandwich variance of an M-estimator: Var(beta) = sum g_i^2 / (sum h_i)^2.
     se_log = float(np.sqrt(np.sum(g * g)) / max(np.sum(h), 1e-300) / beta_hat)
     half = GRID_HALF_WIDTH * max(se_log, 1e-4)
-    return beta_hat * np.exp(np.linspace(-half, half, GRID_POINTS))
+    betas: np.ndarray = beta_hat * np.exp(np.linspace(-half, half, GRID_POINTS))
+    return betas
 
 
-def _grid_replicates(logits, labels, options, fit_rows, eval_rows, start, draws, refit):
+def _grid_replicates(
+    logits: np.ndarray,
+    labels: np.ndarray,
+    options: FitOptions,
+    fit_rows: np.ndarray,
+    eval_rows: np.ndarray,
+    start: Scaling,
+    draws: Iterable[Draw],
+    refit: Refit,
+) -> tuple[list[dict[str, np.ndarray]], list[dict[str, Any]], int]:
+    assert start.temperature is not None  # called for a multiclass temperature scaling only
     betas = _grid(logits, labels, fit_rows, 1.0 / start.temperature)
     fit_terms = _grid_terms(logits, labels, fit_rows, betas, held_out=False)
     g_terms, h_terms = fit_terms["g"].astype(np.float64), fit_terms["h"].astype(np.float64)
@@ -539,31 +578,36 @@ def _grid_replicates(logits, labels, options, fit_rows, eval_rows, start, draws,
     exact_eval = len(eval_rows) * n_classes * options.bootstrap <= EXACT_EVAL_BUDGET
     held = None if exact_eval else _grid_terms(logits, labels, eval_rows, betas, held_out=True)
     steps = np.diff(betas)
-    params, metrics, fallbacks = [], [], 0
+    params: list[dict[str, np.ndarray]] = []
+    metrics: list[dict[str, Any]] = []
+    fallbacks = 0
     for draw in draws:
         cf, ce = draw.fit_counts, draw.held_counts
         s = cf @ g_terms  # weighted gradient at each grid beta
         d = cf @ h_terms
+        j: int | None  # None: refitted exactly
         j = int(np.searchsorted(s, 0.0)) - 1  # s is increasing in beta (convex NLL)
         if j < 0 or j >= len(betas) - 1:
-            res = refit(logits, labels, options, rows=fit_rows, weights=cf, start=start)
+            res = cast("FitResult", refit(logits, labels, options, rows=fit_rows, weights=cf, start=start))
+            assert res.temperature is not None  # a multiclass temperature refit has its T
             beta, j = 1.0 / res.temperature, None
             fallbacks += 1
         else:
-            t = _hermite_root(steps[j], s[j], d[j], s[j + 1], d[j + 1])
-            beta = betas[j] + t * steps[j]
+            t = _hermite_root(float(steps[j]), float(s[j]), float(d[j]), float(s[j + 1]), float(d[j + 1]))
+            beta = float(betas[j] + t * steps[j])
         params.append({"temperature": np.array(1.0 / beta)})
         if exact_eval or j is None:
             m = evaluate(logits, labels, 1.0 / beta, options.n_bins, rows=eval_rows, weights=ce).to_dict()
             if held is not None:
                 m["classwise_ece"] = float("nan")
         else:
+            assert held is not None  # made whenever exact_eval is False
             m = _interpolated_metrics(held, ce, j, t, steps[j], options.n_bins)
         metrics.append(m)
     return params, metrics, fallbacks
 
 
-def _hermite_root(h, s0, d0, s1, d1) -> float:
+def _hermite_root(h: float, s0: float, d0: float, s1: float, d1: float) -> float:
     """t in [0, 1] where the Hermite cubic through (s0, d0), (s1, d1) crosses 0."""
     lo, hi = 0.0, 1.0
     for _ in range(60):  # bisection: the cubic is increasing between two such points
@@ -575,11 +619,13 @@ def _hermite_root(h, s0, d0, s1, d1) -> float:
     return 0.5 * (lo + hi)
 
 
-def _interpolated_metrics(held, weights, j, t, h, n_bins) -> dict[str, Any]:
-    def at(name, deriv):
+def _interpolated_metrics(
+    held: dict[str, np.ndarray], weights: np.ndarray, j: int, t: float, h: float, n_bins: int
+) -> dict[str, Any]:
+    def at(name: str, deriv: str) -> np.ndarray:
         y = held[name].astype(np.float64)
         d = held[deriv].astype(np.float64)
-        return _hermite(t, h, y[:, j], d[:, j], y[:, j + 1], d[:, j + 1])
+        return cast(np.ndarray, _hermite(t, h, y[:, j], d[:, j], y[:, j + 1], d[:, j + 1]))
 
     total = weights.sum()
     nll = float(weights @ at("nll", "g")) / total
