@@ -134,7 +134,10 @@ def fit_and_score(
     holdout = fit_rows is not eval_rows
     part, local = expansion_parts(len(logits), fit_rows, eval_rows, local=bootstrap)
     parts = 2 if holdout else 1
-    masks = [part == p for p in range(parts)] if holdout else [None]
+    masks: list[np.ndarray | None] = [None]
+    if holdout:
+        assert part is not None  # expansion_parts gives every row's part whenever there is a held-out part
+        masks = [np.asarray(part == p) for p in range(parts)]
     sel = Selection(part=part) if holdout else ALL_ROWS
     first, _ = temperature_pass(logits, labels, 1.0, n_bins, selection=sel, parts=parts, threads=threads)
     before = [score_metrics(first, p, masks[p], None) for p in range(parts)]
