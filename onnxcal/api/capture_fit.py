@@ -12,8 +12,8 @@ import onnx
 
 from .. import graph
 from .. import reading as _reading
-from .._files import check_output_path, one_command
 from .._limits import DEFAULT_MAX_MODEL_BYTES, MAX_BINS, check_bins_memory, check_range
+from .._paths import check_output_path, one_command
 from ..capture import CPU, Capture, ProgressFn, load_captures, nonfinite_logits
 from ..errors import OnnxcalError, OnnxcalWarning
 from ..fit import T_MAX, T_MIN, FitOptions, FitSummary, save_fit, summarize

@@ -4,8 +4,12 @@
 
 from __future__ import annotations
 
+import os
+from typing import cast
+
 import numpy as np
 import onnx
+from numpy.typing import ArrayLike
 
 from .. import graph
 from .. import reading as _reading
@@ -19,7 +23,7 @@ from ..capture import (
 )
 from ..data import Dataset
 from ..errors import OnnxcalError
-from ..graph import Record
+from ..graph import Record, ScoreSite
 from ..verify import (
     Check,
     Comparison,
@@ -31,7 +35,9 @@ from ..verify import (
 )
 
 
-def run_output(model, site, dataset: Dataset, run: RunOptions, progress) -> np.ndarray:
+def run_output(
+    model: onnx.ModelProto, site: ScoreSite, dataset: Dataset, run: RunOptions, progress: ProgressFn | None
+) -> np.ndarray:
     """The values of ``site``'s output for every sample, class axis last: (rows, k)."""
     (values,) = run_model(
         graph.expose(model, [site.tensor]),
@@ -45,8 +51,8 @@ def run_output(model, site, dataset: Dataset, run: RunOptions, progress) -> np.n
 
 
 def reference_checks(
-    rows: np.ndarray, site, record: Record, logits: np.ndarray, patched, original_model, source_sha: str | None,
-    file_only_sha: str | None = None,
+    rows: np.ndarray, site: ScoreSite, record: Record, logits: np.ndarray, patched: onnx.ModelProto,
+    original_model: onnx.ModelProto | None, source_sha: str | None, file_only_sha: str | None = None,
 ) -> list[Check]:
     """Checks (1)-(3): the outputs against the reference, the record against the graph and the source.
 
@@ -59,13 +65,14 @@ def reference_checks(
     return checks + record_checks(record, patched, original_model, source_sha, file_only_sha)
 
 
-def site_dtypes(site) -> tuple[str, ...]:
+def site_dtypes(site: ScoreSite) -> tuple[str, ...]:
     """Every dtype the calibrated values pass through (the tolerance follows the coarsest)."""
     return tuple(dict.fromkeys([site.dtype, site.output_dtype or site.dtype, *site.dtypes]))
 
 
 def record_checks(
-    record: Record, patched, original_model, source_sha: str | None, file_only_sha: str | None = None
+    record: Record, patched: onnx.ModelProto, original_model: onnx.ModelProto | None, source_sha: str | None,
+    file_only_sha: str | None = None,
 ) -> list[Check]:
     """Check (3): the record against the graph's parameters, and the original's sha256 against the record's."""
     checks: list[Check] = []
@@ -77,12 +84,15 @@ def record_checks(
             )
         )
     elif record.folded:
+        assert original_model is not None  # the branch above took a folded record without one
         found = graph.folded_values(patched, record, original_model)
         checks.append(folded_record_check(record.scaling, found))
     else:
         in_graph = graph.parameter_values(patched, record)
         expected = graph.recorded_values(patched, record)
-        checks.append(record_check(expected, in_graph, graph.temperature_dtype(patched, record)))
+        # dict is invariant: the graph's dict[str, ndarray] is the dict[str, ArrayLike] record_check reads
+        checks.append(record_check(expected, cast("dict[str, ArrayLike] | None", in_graph),
+                                   graph.temperature_dtype(patched, record)))
     if source_sha is None:
         checks.append(
             skipped(
@@ -130,7 +140,7 @@ def compare_as_it_runs(
     return list(comparison.checks())
 
 
-def source_site(base, record: Record):
+def source_site(base: onnx.ModelProto, record: Record) -> ScoreSite:
     """The class-score site of the uncalibrated model the record was made from, read as then."""
     kw = _reading.patch_reading({"spelling": record.spelling, "holds": record.holds, "logits_from": record.logits_from,
                                  "score_columns": record.score_columns})
@@ -144,7 +154,7 @@ def source_site(base, record: Record):
     return site
 
 
-def recover_unpatched(patched, patched_path):
+def recover_unpatched(patched: onnx.ModelProto, patched_path: str | os.PathLike[str]) -> onnx.ModelProto:
     try:
         return graph.unpatch(patched)
     except OnnxcalError as exc:

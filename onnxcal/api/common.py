@@ -6,18 +6,21 @@ from __future__ import annotations
 
 import os
 import warnings
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from dataclasses import replace
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
+
+import onnx
 
 from .. import graph
 from .. import reading as _reading
-from .._files import check_output_path, sha256_file
 from .._limits import check_memory, parse_size
+from .._paths import check_output_path, sha256_file
 from ..capture import (
     DEFAULT_BATCH,
     Capture,
+    ProgressFn,
     RunOptions,
     check_input_memory,
     check_run_options,
@@ -59,7 +62,7 @@ def warn_nonfinite_inputs(cap: Capture, source: str) -> None:
         )
 
 
-def model_files(model_path, limit: int) -> list[Any]:
+def model_files(model_path: str | os.PathLike[str], limit: int) -> list[Any]:
     """A model file and its external data files: inputs that no output may be."""
     return [model_path, *graph.external_data_files(model_path, max_bytes=limit)]
 
@@ -77,7 +80,8 @@ def data_spec(data: DataSource) -> DataSpec:
     elif isinstance(data, (str, os.PathLike)):
         spec = DataSpec(path=data)
     elif isinstance(data, Mapping):
-        arrays: dict[str | None, object] = dict(data)
+        # a mapping of input name to array: its str keys are a case of DataSpec's str | None keys
+        arrays = cast("dict[str | None, object]", dict(data))
         spec = DataSpec(arrays=arrays)
     elif isinstance(data, tuple) and len(data) == 2:
         inputs, labels = data
@@ -98,7 +102,9 @@ def data_spec(data: DataSource) -> DataSpec:
     return spec
 
 
-def load_data(model, data: DataSource, require_labels: bool = True, batch_size: int | None = None) -> Dataset:
+def load_data(
+    model: onnx.ModelProto, data: DataSource, require_labels: bool = True, batch_size: int | None = None
+) -> Dataset:
     """Load the set for ``model``'s inputs (checked against them).
 
     A model whose declared input shapes need more memory per batch than is
@@ -120,8 +126,9 @@ def check_columns(score_columns: str | None) -> None:
 
 
 def read_and_capture(
-    model, dataset: Dataset, model_path, sha: str, output, holds, activation, run: RunOptions, progress, out=None,
-    columns: str | None = None,
+    model: onnx.ModelProto, dataset: Dataset, model_path: str | os.PathLike[str], sha: str, output: str | None,
+    holds: str | None, activation: str | None, run: RunOptions, progress: ProgressFn | None,
+    out: str | os.PathLike[str] | None = None, columns: str | None = None,
 ) -> Capture:
     """Read the model (checked on the first rows), check the labels against it, capture its logits."""
     if dataset.labels is None:
@@ -145,7 +152,7 @@ def with_note(summary: FitSummary, note: str | None) -> FitSummary:
     return summary if note is None else replace(summary, notes=(*summary.notes, note))
 
 
-def as_paths(value) -> list[Any]:
+def as_paths(value: str | os.PathLike[str] | Iterable[str | os.PathLike[str]] | None) -> list[Any]:
     if value is None:
         return []
     if isinstance(value, (str, os.PathLike)):
@@ -153,7 +160,7 @@ def as_paths(value) -> list[Any]:
     return list(value)
 
 
-def file_only_sha256(model_path) -> str | None:
+def file_only_sha256(model_path: str | os.PathLike[str]) -> str | None:
     """The sha256 of the .onnx file alone, for a model with external data (None without).
 
     onnxcal before external data were hashed (docs/graph.md, "What the source
@@ -162,7 +169,9 @@ def file_only_sha256(model_path) -> str | None:
     return sha256_file(model_path) if graph.external_data_files(model_path) else None
 
 
-def check_model_outputs(out, inputs: list[Any], model_path, force: bool, limit: int) -> bool:
+def check_model_outputs(
+    out: str | os.PathLike[str], inputs: list[Any], model_path: str | os.PathLike[str], force: bool, limit: int
+) -> bool:
     """Check ``out`` (and, for a model with external data, ``out``.data); True if external.
 
     Neither may be one of ``inputs`` or of the model's external data files.

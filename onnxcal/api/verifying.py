@@ -15,8 +15,9 @@ import onnx
 from .. import graph
 from .. import guard as _guard
 from .. import reading as _reading
-from .._files import atomic_write_bytes, check_output_path, one_command
+from .._files import atomic_write_bytes
 from .._limits import DEFAULT_MAX_MODEL_BYTES, MAX_BINS, check_bins_memory, check_range
+from .._paths import check_output_path, one_command
 from ..capture import (
     CPU,
     Capture,
@@ -31,15 +32,13 @@ from ..capture import (
 from ..data import Dataset, DataSpec, recorded_feeding
 from ..errors import OnnxcalError
 from ..graph import Record
+from ..latency import LATENCY_BUDGET, LATENCY_CHUNKS, latency_ratio
 from ..metrics import DEFAULT_BINS, evaluate, scores_from_probabilities
 from ..verify import (
-    LATENCY_BUDGET,
-    LATENCY_CHUNKS,
     Check,
     VerifyResult,
     junit_xml,
     latency_check,
-    latency_ratio,
     reading_check,
     skipped,
     threshold_checks,
@@ -71,18 +70,22 @@ class _Reference:
     mode: str
     where: str
     source_sha: str | None  # the original's sha256, when known
-    original_model: object | None  # to read folded parameters back against
+    original_model: onnx.ModelProto | None  # to read folded parameters back against
     notes: tuple[str, ...] = ()
     file_only_sha: str | None = None  # the original's .onnx file alone, when it has external data
 
 
-def _reference(patched, patched_path, record: Record, dataset, cap, original, base, score_paths, run,
-               progress) -> _Reference:
+def _reference(
+    patched: onnx.ModelProto, patched_path: str | os.PathLike[str], record: Record, dataset: Dataset,
+    cap: Capture | None, original: str | os.PathLike[str] | None, base: onnx.ModelProto | None,
+    score_paths: Sequence[str | os.PathLike[str]], run: RunOptions, progress: ProgressFn | None,
+) -> _Reference:
     """The original's logits: captured (``--scores``), run (``--original``, loaded as ``base``), or the patched
     graph's own."""
     if cap is not None:
         return _Reference(cap.logits, "scores", ", ".join(map(str, score_paths)), cap.meta.model_sha256, None)
     if base is not None:
+        assert original is not None  # base is the model loaded from original
         logits = capture_scores(base, dataset, source_site(base, record), options=run, progress=progress)
         return _Reference(logits, "original", str(original), graph.model_sha256(original), base,
                           file_only_sha=file_only_sha256(original))
@@ -107,7 +110,11 @@ def _raw_reading_check(logits: np.ndarray, record: Record) -> Check:
     return reading_check(None if seen == "logits" else _guard.describe(stats))
 
 
-def _head_checks(patched, patched_path, records, dataset, cap, original, base, score_paths, run, progress, drop):
+def _head_checks(
+    patched: onnx.ModelProto, patched_path: str | os.PathLike[str], records: tuple[Record, ...], dataset: Dataset,
+    cap: Capture | None, original: str | os.PathLike[str] | None, base: onnx.ModelProto | None,
+    score_paths: Sequence[str | os.PathLike[str]], run: RunOptions, progress: ProgressFn | None, drop: bool,
+) -> tuple[list[Check], np.ndarray, graph.ScoreSite, np.ndarray | None, _Reference]:
     """Checks (1)-(3) of every calibrated output; the last head's rows, site and keep mask; the reference."""
     several = len(records) > 1
     checks: list[Check] = []
@@ -115,6 +122,7 @@ def _head_checks(patched, patched_path, records, dataset, cap, original, base, s
     for record in records:
         own = cap if cap is not None and (not several or cap.meta.output == record.source_output) else None
         ref = _reference(patched, patched_path, record, dataset, own, original, base, score_paths, run, progress)
+        assert ref.logits is not None  # _reference gives the captured or the run logits, never None
         site = graph.find_recorded(patched, record)
         rows = run_output(patched, site, dataset, run, progress)
         if len(rows) != len(ref.logits):
@@ -139,10 +147,13 @@ def _head_checks(patched, patched_path, records, dataset, cap, original, base, s
                 f"sha256 is {record.source_sha256[:12]}..."
             )
         ref = replace(ref, notes=tuple(dict.fromkeys([*(ref.notes or ()), *notes])))
+    assert ref is not None  # records is never empty: only a model with a record gets here
     return checks, rows, site, keep, ref
 
 
-def _default_original(patched_path, records) -> tuple[Path | None, str | None]:
+def _default_original(
+    patched_path: str | os.PathLike[str], records: tuple[Record, ...]
+) -> tuple[Path | None, str | None]:
     """The recorded original beside the patched model, when its sha256 is the record's; else a note why not."""
     if not records:
         return None, None
@@ -155,7 +166,7 @@ def _default_original(patched_path, records) -> tuple[Path | None, str | None]:
     return candidate, None
 
 
-def _unrecorded_checks(site) -> list[Check]:
+def _unrecorded_checks(site: graph.ScoreSite) -> list[Check]:
     """A model without a calibration record: the record check fails, the reference checks cannot run."""
     decision = "decisions" if site.activation == "sigmoid" else "argmax"
     return [
@@ -173,7 +184,10 @@ def _unrecorded_checks(site) -> list[Check]:
     ]
 
 
-def _check_gate(max_ece, max_nll, min_accuracy, n_bins, max_latency_ratio, latency_runs) -> None:
+def _check_gate(
+    max_ece: float | None, max_nll: float | None, min_accuracy: float | None, n_bins: int,
+    max_latency_ratio: float | None, latency_runs: int,
+) -> None:
     for option, value in (("--max-ece", max_ece), ("--min-accuracy", min_accuracy)):
         if value is not None and not (np.isfinite(value) and 0 <= value <= 1):
             raise OnnxcalError(f"{option} {value!r} is not a number between 0 and 1")
@@ -187,7 +201,10 @@ def _check_gate(max_ece, max_nll, min_accuracy, n_bins, max_latency_ratio, laten
     check_range(n_bins, 2, MAX_BINS, "--bins", "a number of bins")
 
 
-def _latency(base, patched, dataset: Dataset, run: RunOptions, runs: int, max_ratio, against: str) -> Check:
+def _latency(
+    base: onnx.ModelProto, patched: onnx.ModelProto, dataset: Dataset, run: RunOptions, runs: int,
+    max_ratio: float | None, against: str,
+) -> Check:
     """Check (5): both models on the first batch of the data, timed alternately."""
     plans = [plan_run(m, dataset, [o.name for o in m.graph.output], run) for m in (base, patched)]
     size = min(plans[1].step, dataset.n)
@@ -208,7 +225,8 @@ def _latency(base, patched, dataset: Dataset, run: RunOptions, runs: int, max_ra
 
 
 def _threshold_checks(
-    rows, activation, site, dataset: Dataset, cap: Capture | None, n_bins, limits, keep=None, record=None
+    rows: np.ndarray, activation: str | None, site: graph.ScoreSite, dataset: Dataset, cap: Capture | None,
+    n_bins: int, limits: dict[str, float | None], keep: np.ndarray | None = None, record: Record | None = None,
 ) -> tuple[Any, ...]:
     """Check (4): metrics of the patched model's own outputs against the labels (the rows ``keep`` only).
 
@@ -217,13 +235,14 @@ def _threshold_checks(
     """
     post = graph.post.from_json(record.post) if record is not None else ()
     if post:
-        rows = graph.post.invert(rows, post, site.num_classes or 0)
-        if rows is None:
+        inverted = graph.post.invert(rows, post, site.num_classes or 0)
+        if inverted is None:
             raise OnnxcalError(
                 f"--max-ece, --max-nll and --min-accuracy need every class's probability, and output "
                 f"'{site.output}' holds one class's of {site.num_classes}",
                 "leave out the thresholds, or verify an output that holds every class",
             )
+        rows = inverted
     if activation is None:  # raw logits (a model without a record)
         logits, kind = rows, graph.fit_kind(site)
     else:
@@ -233,6 +252,7 @@ def _threshold_checks(
     if dataset.labels is not None:
         labels = label_rows(dataset.labels, rows.shape, kind, dataset.source)
     else:
+        assert cap is not None  # thresholds without labels in the data need --scores (_check_can_compare)
         labels = cap.labels
         if len(labels) != len(rows):
             raise OnnxcalError(
@@ -245,7 +265,9 @@ def _threshold_checks(
     return threshold_checks(evaluate(logits, labels, 1.0, n_bins), **limits)
 
 
-def _finite_outputs(rows: np.ndarray, reference, dataset: Dataset, drop: bool) -> tuple[np.ndarray | None, str | None]:
+def _finite_outputs(
+    rows: np.ndarray, reference: np.ndarray | None, dataset: Dataset, drop: bool
+) -> tuple[np.ndarray | None, str | None]:
     """The rows where the patched outputs (and the reference logits) are finite; None when all are.
 
     Refused, with the count and first rows of the set, unless ``drop``; then a note says how many.
