@@ -98,7 +98,8 @@ def test_coverage_gate_pass_fail_undecided(coverage: float, outcome: str) -> Non
 def test_an_undecided_gate_passes_and_says_so_in_junit() -> None:
     import xml.etree.ElementTree as ET
 
-    from onnxcal.verify import Check, VerifyResult, junit_xml
+    from onnxcal.junit import junit_xml
+    from onnxcal.verify import Check, VerifyResult
 
     undecided = Check("set-coverage", True, 0.89, 0.884, "interval straddles", undecided=True)
     result = VerifyResult(checks=(undecided, Check("accept-error", False, 0.2, 0.05, "above")), n=10, original="m")

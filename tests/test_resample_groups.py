@@ -14,7 +14,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from onnxcal import resample
+from onnxcal import holdout, resample
 from onnxcal.fit import FitOptions, fit_scaling
 
 M = 4  # rows per sample
@@ -48,7 +48,7 @@ def test_the_grouped_split_of_duplicated_rows_is_the_split_of_the_samples() -> N
 def test_a_sample_is_stratified_by_its_most_frequent_class() -> None:
     labels = np.array([0, 0, 1, 1, 1, 2, 2, 2, 2, 0, 2, 2])  # samples of 3 rows
     groups = np.repeat(np.arange(4), 3)
-    strata = resample._sample_strata(labels, resample.samples_of(groups))
+    strata = holdout._sample_strata(labels, resample.samples_of(groups))
     assert strata.tolist() == [0, 1, 2, 2]
 
 

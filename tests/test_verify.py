@@ -268,7 +268,8 @@ def test_junit_xml_has_one_testcase_per_check():
     # (the JUnit XML convention of Ant's junitreport, common practice).
     import xml.etree.ElementTree as ET
 
-    from onnxcal.verify import Check, VerifyResult, junit_xml, skipped
+    from onnxcal.junit import junit_xml
+    from onnxcal.verify import Check, VerifyResult, skipped
 
     result = VerifyResult(
         checks=(

@@ -32,12 +32,12 @@ from ..capture import (
 from ..data import Dataset, DataSpec, recorded_feeding
 from ..errors import OnnxcalError
 from ..graph import Record
+from ..junit import junit_xml
 from ..latency import LATENCY_BUDGET, LATENCY_CHUNKS, latency_ratio
 from ..metrics import DEFAULT_BINS, evaluate, scores_from_probabilities
 from ..verify import (
     Check,
     VerifyResult,
-    junit_xml,
     latency_check,
     reading_check,
     skipped,
