@@ -28,6 +28,7 @@ from ..verify import (
     Check,
     Comparison,
     compare,
+    folded_matrix_check,
     folded_record_check,
     record_check,
     skipped,
@@ -83,6 +84,9 @@ def record_checks(
                 "original model (--original)"
             )
         )
+    elif record.folded and graph.folds_matrix(record):
+        assert original_model is not None  # the first branch took a folded record without one
+        checks.append(folded_matrix_check(graph.matrix_fold_error(patched, record, original_model)))
     elif record.folded:
         assert original_model is not None  # the branch above took a folded record without one
         found = graph.folded_values(patched, record, original_model)

@@ -9,7 +9,7 @@ Dirichlet calibration folds the same way when the row sums of its W are
 equal (then W log softmax(z) + b and W z + b differ by the same amount in
 every class, which the softmax cancels).
 
-Unlike a per-class w_k, W mixes the classes: the original weight is not
+Unlike a per-class w_k, W folds_matrix the classes: the original weight is not
 the folded one divided by anything, and inverting W would give it back
 only up to W's conditioning. So the fold keeps the original weight's and
 bias's tensors in the record (serialized, with their SHA-256), and
@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import base64
 import hashlib
-from dataclasses import replace
+from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -68,8 +68,8 @@ def fold_refusal(scaling: Scaling) -> str | None:
     return _WHY_NOT.get(scaling.method, f"{scaling.method} calibration is not a linear map of the logits")
 
 
-def mixes(record: Record) -> bool:
-    """True when ``record`` is a fold of a map that mixes the classes (its tensors are kept)."""
+def folds_matrix(record: Record) -> bool:
+    """True when ``record`` is a fold of a map that folds_matrix the classes (its tensors are kept)."""
     return record.folded and record.method in MIXING
 
 
@@ -99,6 +99,7 @@ def _keep(tensor: onnx.TensorProto) -> dict[str, str]:
     copy.CopyFrom(tensor)
     if is_external(copy):  # bring the values in: unpatch must not need the source's data file
         _make_resident(copy, read_span(span(tensor)))
+        copy.ClearField("data_location")  # as a tensor that was never in a file
     data = copy.SerializeToString()
     return {"tensor": base64.b64encode(data).decode("ascii"), "sha256": hashlib.sha256(data).hexdigest()}
 
@@ -173,18 +174,28 @@ def unfold_matrix(graph: onnx.GraphProto, record: Record) -> None:
         tensors[name].CopyFrom(_kept_tensor(kept, name))
 
 
-def matrix_fold_error(
-    model: onnx.ModelProto, record: Record, original: onnx.ModelProto
-) -> tuple[float, str, str] | None:
-    """How far ``model``'s folded weight and bias are from the record's W and b folded into ``original``'s.
+@dataclass(frozen=True)
+class MatrixFoldError:
+    """How far a matrix fold's weights are from the record's W and b folded into the original's.
 
-    Each entry's difference is relative to the sum of the absolute terms
-    it is made of (sum_k |W_ik| |A_k|, and |b_i / beta| for the bias): one
-    rounding to the weights' dtype gives at most its unit roundoff there.
-    Also compares the record's kept copies with the original's tensors.
-    Returns (largest difference, the weights' dtype, what differs), or None
-    when a folded tensor is missing or its shape does not fit.
+    ``difference``: the largest difference of a folded weight or bias entry
+    from the record's map folded into the original's, relative to the sum
+    of the absolute terms it is made of (sum_k |W_ik| |A_k|, plus |b_i / beta|
+    for the bias), where one rounding to the weights' dtype gives at most
+    its unit roundoff; and of the record's kept copies from the original's
+    tensors, entry by entry relative to the original's. ``roundings``: how
+    many times the weights were rounded (1, more after re-patching a
+    vector or temperature fold, whose unfold rounds).
     """
+
+    difference: float
+    dtype: str
+    detail: str
+    roundings: int = 1
+
+
+def matrix_fold_error(model: onnx.ModelProto, record: Record, original: onnx.ModelProto) -> MatrixFoldError | None:
+    """See :class:`MatrixFoldError`; None when a folded tensor is missing or its shape does not fit."""
     fold = _recorded_fold(record)
     w, b = _matrix(record.scaling)
     before, after = _constants(original.graph), _constants(model.graph)
@@ -198,20 +209,24 @@ def matrix_fold_error(
     if fold.bias:
         c0 = _full_bias(tensor_array(before[fold.bias]).astype(np.float64), len(w), cfe)
         c1 = tensor_array(after[fold.bias])
-        offset = _from_end(b, cfe) / fold.beta
         if c1.shape != c0.shape:
             return None
+        offset = _from_end(b, cfe) / fold.beta
         pairs.append((c1, _mix(c0, w, c0.ndim - cfe) + offset,
                       _mix(np.abs(c0), np.abs(w), c0.ndim - cfe) + np.abs(offset)))
-    tiny = np.finfo(np.float64).tiny
-    diff = max(float(np.max(np.abs(got.astype(np.float64) - want) / np.maximum(scale, tiny), initial=0.0))
-               for got, want, scale in pairs)
-    what = f"{record.method} W, b of {len(w)} classes folded into the original's weights"
     for name, kept in (fold.kept or {}).items():
         try:
-            same = np.array_equal(tensor_array(_kept_tensor(kept, name)), tensor_array(before[name]))
+            copy = tensor_array(_kept_tensor(kept, name)).astype(np.float64)
         except (ValueError, TypeError, KeyError):  # a damaged copy
-            same = False
-        if not same:
-            diff, what = float("inf"), f"the record's copy of '{name}' is not the original's"
-    return diff, a1.dtype.name, what
+            return MatrixFoldError(float("inf"), a1.dtype.name, f"the record's copy of '{name}' is damaged")
+        original_values = tensor_array(before[name]).astype(np.float64)
+        if copy.shape != original_values.shape:
+            return MatrixFoldError(float("inf"), a1.dtype.name, f"the record's copy of '{name}' has another shape")
+        pairs.append((copy, original_values, np.abs(original_values)))
+    tiny = np.finfo(np.float64).tiny
+    with np.errstate(invalid="ignore"):
+        diff = max(float(np.max(np.abs(got.astype(np.float64) - want) / np.maximum(scale, tiny), initial=0.0))
+                   for got, want, scale in pairs)
+    detail = (f"{record.method} W, b of {len(w)} classes folded into the original's weights, and the record's "
+              "copy of them")
+    return MatrixFoldError(diff, a1.dtype.name, detail, int(record.changes.get("rounded", 0)) + 1)

@@ -36,7 +36,7 @@ from .expose import _subgraph
 from .external import check_model
 from .find import ScoreSite, find_scores, fit_kind, read_as
 from .fold import _fold, _roundings, _unfold
-from .fold_matrix import MIXING, fold_matrix, fold_refusal, mixes, unfold_matrix
+from .fold_matrix import MIXING, fold_matrix, fold_refusal, folds_matrix, unfold_matrix
 from .post import normalises, to_json
 from .record import Record, _damaged, _write_records, check_record, read_records
 from .surgery import (
@@ -269,7 +269,7 @@ def _undo(model: onnx.ModelProto, record: Record) -> None:
         del model.opset_import[:]
         model.opset_import.extend(kept)
     if record.folded:
-        (unfold_matrix if mixes(record) else _unfold)(g, record)
+        (unfold_matrix if folds_matrix(record) else _unfold)(g, record)
 
 
 def _undo_nodes(g: onnx.GraphProto, added: set[str], renamed: dict[str, str]) -> None:
