@@ -328,3 +328,44 @@ def test_fold_on_exported_models_against_the_framework_logits(rng, name):
     tol = 1e-4 * (1.0 + np.abs(mixed).max())
     np.testing.assert_allclose(got, want, atol=tol, rtol=0)
     assert graph.unpatch(folded).SerializeToString() == model.SerializeToString()
+
+
+# -- end to end through the CLI ---------------------------------------------------------------------------
+
+
+def test_fit_patch_fold_verify_through_the_cli(tmp_path, run_cli):
+    # skl2onnx's MLP on scikit-learn's digits features (MatMul + Add, Softmax), as tests/cli/test_cli_methods.py
+    model, data = EXPORTERS / "skl2onnx_mlp_tensor.onnx", EXPORTERS / "digits_features_val.npz"
+    cap, fit, folded = tmp_path / "cap.npz", tmp_path / "fit.json", tmp_path / "folded.onnx"
+    assert run_cli("capture", model, "--data", data, "--out", cap, "-q").code == 0
+    r = run_cli("fit", cap, "--method", "matrix", "--bootstrap", "5", "--out", fit)
+    assert r.code == 0, r.err
+    r = run_cli("patch", model, "--fit", fit, "--fold", "--out", folded)
+    assert r.code == 0, r.err
+    assert "matrix scaling folded into the weight and bias" in r.out
+    saved = json.loads(fit.read_text())
+    w, b = np.asarray(saved["parameters"]["W"]), np.asarray(saved["parameters"]["b"])
+    sess = ort.InferenceSession(str(folded), providers=["CPUExecutionProvider"])
+    with np.load(data) as npz:
+        x = npz[next(k for k in npz.files if k != "labels")].astype(np.float32)
+    got = sess.run(["probabilities"], {sess.get_inputs()[0].name: x})[0]
+    # Reference: scipy.special.softmax of the captured original logits mixed by the fitted W (the capture
+    # holds the logits onnxruntime gave for the original model).
+    want = scipy.special.softmax(np.load(cap)["logits"].astype(np.float64) @ w.T + b, axis=1)
+    np.testing.assert_allclose(got, want, atol=1e-5, rtol=0)
+    assert len(onnx.load(str(folded)).graph.node) == len(onnx.load(str(model)).graph.node)
+    r = run_cli("verify", folded, "--data", data, "--original", model, "--json")
+    assert r.code == 0, r.out
+    checks = {c["name"]: c for c in json.loads(r.out)["checks"]}
+    for name in ("reference", "record", "source", "identity"):
+        assert checks[name]["status"] == "pass", checks[name]
+    assert "folded into the original's weights" in checks["record"]["detail"]
+    # Without the original: the reference comes from the patch undone with the record's copy of the weights.
+    r = run_cli("verify", folded, "--data", data, "--json")
+    assert r.code == 0, r.out
+    result = json.loads(r.out)
+    checks = {c["name"]: c for c in result["checks"]}
+    assert checks["reference"]["status"] == "pass" and checks["record"]["status"] == "skip"
+    assert any("record's copy of the original weight and bias" in n for n in result["notes"])
+    # unpatch through the library gives the original file's bytes
+    assert graph.unpatch(graph.load_model(folded)).SerializeToString() == graph.load_model(model).SerializeToString()

@@ -72,7 +72,9 @@ class Record:
         output), ``scaled`` (initializers changed when folded), ``fold``
         (the layer, its weight and bias, Gemm's beta, which weight axis and
         output axis hold the classes, the bias's dims and values before
-        folding) and ``rounded`` (how many times earlier folds and unfolds
+        folding; for matrix scaling ``kept``, the weight's and bias's
+        tensors before folding, serialized in base64 with their SHA-256,
+        which ``unpatch`` puts back byte for byte) and ``rounded`` (how many times earlier folds and unfolds
         rounded the weights, when re-patching a folded model).
     holds : str
         What ``source_output`` holds: logits, probabilities or log-probabilities.
