@@ -262,6 +262,44 @@ def test_fold_refused_where_the_layer_cannot_take_the_matrix(rng, make, match):
     assert model.SerializeToString() == before
 
 
+def test_a_weight_on_the_left_and_the_class_axis_not_last(rng):
+    # MatMul(W, x): row k of W is class k, the class axis of the output is the second-last and the (K, 1) bias
+    # broadcasts along it (ONNX operator spec: MatMul follows numpy.matmul; Broadcasting.md).
+    inits = [numpy_helper.from_array(rng.normal(size=(K, 6)).astype(np.float32), "weight"),
+             numpy_helper.from_array(rng.normal(size=(K, 1)).astype(np.float32), "bias")]
+    nodes = [helper.make_node("MatMul", ["weight", "x"], ["mm"]), helper.make_node("Add", ["mm", "bias"], ["logits"]),
+             helper.make_node("Softmax", ["logits"], ["scores"], axis=1)]
+    g = helper.make_graph(nodes, "left", [helper.make_tensor_value_info("x", 1, ["N", 6, 5])],
+                          [helper.make_tensor_value_info("scores", 1, ["N", K, 5])], initializer=inits)
+    model = helper.make_model(g, opset_imports=[helper.make_opsetid("", 17)])
+    model.ir_version = 8
+    scaling, w, b = matrix(rng)
+    folded = do_patch(model, scaling, fold=True)
+    assert graph.read_record(folded).changes["fold"]["weight_axis"] == 0
+    x = rng.normal(size=(3, 6, 5)).astype(np.float32)
+    z = original_logits(model, x)  # N x K x 5
+    # Reference library: scipy.special.softmax over the class axis of W z + b (numpy.einsum mixes the classes).
+    want = scipy.special.softmax(np.einsum("ik,nkl->nil", w, z) + b[None, :, None], axis=1)
+    for runner in (run_ort, run_reference):
+        np.testing.assert_allclose(runner(folded, x)[0], want, atol=1e-5, rtol=0)
+    assert graph.unpatch(folded).SerializeToString() == model.SerializeToString()
+
+
+def test_a_weight_held_in_a_constant_node(rng):
+    # exporters write weights as initializers or as Constant nodes (ONNX operator spec, Constant)
+    model = linear_model(rng, op="MatMul")
+    weight = next(i for i in model.graph.initializer if i.name == "weight")
+    model.graph.node.insert(0, helper.make_node("Constant", [], ["weight"], value=numpy_helper.from_array(
+        numpy_helper.to_array(weight), "")))
+    model.graph.initializer.remove(weight)
+    x = rng.normal(size=(16, 6)).astype(np.float32)
+    scaling, w, b = matrix(rng)
+    folded = do_patch(model, scaling, fold=True)
+    want = scipy.special.softmax(original_logits(model, x) @ w.T + b, axis=1)  # scipy.special, as above
+    np.testing.assert_allclose(run_ort(folded, x)[0], want, atol=1e-5, rtol=0)
+    assert graph.unpatch(folded).SerializeToString() == model.SerializeToString()
+
+
 def test_a_weight_too_large_to_keep_is_refused(rng, monkeypatch):
     monkeypatch.setattr(fold_matrix, "KEEP_LIMIT", 64)  # the test layer: 6 x 4 float32 + 4 = 112 bytes
     with pytest.raises(OnnxcalError, match="needs a copy of weight 'weight' .* in the calibration record, and "
