@@ -9,7 +9,7 @@ Dirichlet calibration folds the same way when the row sums of its W are
 equal (then W log softmax(z) + b and W z + b differ by the same amount in
 every class, which the softmax cancels).
 
-Unlike a per-class w_k, W folds_matrix the classes: the original weight is not
+Unlike a per-class w_k, W mixes the classes: the original weight is not
 the folded one divided by anything, and inverting W would give it back
 only up to W's conditioning. So the fold keeps the original weight's and
 bias's tensors in the record (serialized, with their SHA-256), and
@@ -69,7 +69,7 @@ def fold_refusal(scaling: Scaling) -> str | None:
 
 
 def folds_matrix(record: Record) -> bool:
-    """True when ``record`` is a fold of a map that folds_matrix the classes (its tensors are kept)."""
+    """True when ``record`` is a fold of a map that mixes the classes (its tensors are kept)."""
     return record.folded and record.method in MIXING
 
 
