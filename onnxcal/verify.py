@@ -23,7 +23,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from . import l1_sigmoid as _l1
-from .graph import FoldedValues, MatrixFoldError, np_dtype
+from .graph import FoldedValues, np_dtype
 from .graph import post as _post
 from .latency import (  # noqa: F401 - re-exported: the latency gate's names, for api and tests
     LATENCY_BUDGET,
@@ -477,22 +477,6 @@ def folded_record_check(recorded: Scaling, found: FoldedValues | None) -> Check:
     else:
         shown = f"{recorded.method} w, b of {max(w.size, found.w.size)} classes estimated from the folded weights"
     return Check("record", diff <= limit, diff, limit, f"{shown} ({found.dtype}; max relative difference)")
-
-
-def folded_matrix_check(found: MatrixFoldError | None) -> Check:
-    """Check that a matrix fold's weights are the record's W and b folded into the original's.
-
-    ``found`` (``graph.matrix_fold_error``) is the largest difference, each
-    relative to the sum of the absolute terms it is made of (one rounding
-    to the dtype: at most its unit roundoff), or None when a folded tensor
-    is missing. Limit: :data:`FOLD_LIMIT` of the weights' dtype, times
-    (r + 1) / 2 for weights rounded r times.
-    """
-    if found is None:
-        return Check("record", False, float("nan"), float("nan"), "folded weights not found in both models")
-    limit = FOLD_LIMIT.get(found.dtype, FOLD_LIMIT["float32"]) * (found.roundings + 1) / 2
-    ok = bool(found.difference <= limit)
-    return Check("record", ok, found.difference, limit, f"{found.detail} ({found.dtype}; max relative difference)")
 
 
 def source_check(recorded_sha: str, original_sha: str, file_only_sha: str | None = None) -> Check:

@@ -23,10 +23,10 @@ from onnx import helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 
 from onnxcal import graph
+from onnxcal.api.checks import folded_matrix_check
 from onnxcal.errors import OnnxcalError
 from onnxcal.graph import fold_matrix
 from onnxcal.scaling import Scaling
-from onnxcal.verify import folded_matrix_check
 
 SHA = "0" * 64
 K = 4
@@ -162,6 +162,7 @@ def test_the_record_check_reads_the_matrix_back(rng):
     record = graph.read_record(folded)
     good = folded_matrix_check(graph.matrix_fold_error(folded, record, model))
     assert good.passed and good.value <= good.limit, good
+    assert graph.parameter_values(folded, record, model) is None  # W is checked, not read back per class
     # a record whose W is not the one folded in
     other = replace(record, parameters={"W": (w + 1e-3 * np.eye(K)).tolist(), "b": b.tolist()})
     assert not folded_matrix_check(graph.matrix_fold_error(folded, other, model)).passed

@@ -309,8 +309,12 @@ def parameter_values(
 
     For a folded model they are estimated from the weights against
     ``original``'s (see :func:`folded_values`): T_k = 1 / w_k for
-    temperature scaling, else w and b.
+    temperature scaling, else w and b. None for a matrix fold, whose W is
+    not read back (:func:`~onnxcal.graph.fold_matrix.matrix_fold_error`
+    checks it against the original's weights instead).
     """
+    if record.folded and record.method in ("matrix", "dirichlet"):
+        return None
     if record.folded:
         found = None if original is None else folded_values(model, record, original)
         if found is None:
