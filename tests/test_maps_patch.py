@@ -127,10 +127,11 @@ def test_compute_dtype(rng, method, compute):
     np.testing.assert_allclose(got, scaling.probabilities(z), atol=1e-5)
 
 
-def test_fold_is_refused_for_a_map(rng):
+def test_fold_is_refused_for_a_map_that_is_not_linear(rng):
+    # matrix scaling folds (tests/test_fold_matrix.py); a lookup table does not
     model = random_mlp(rng, k=K)
-    with pytest.raises(OnnxcalError, match="--fold: matrix calibration is not a per-class"):
-        do_patch(model, fitted("matrix", "multiclass", rng), fold=True)
+    with pytest.raises(OnnxcalError, match="--fold: isotonic regression is a lookup table on the probability"):
+        do_patch(model, fitted("isotonic", "multiclass", rng), fold=True)
 
 
 def test_map_for_the_wrong_kind_is_refused(rng):

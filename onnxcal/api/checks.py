@@ -23,8 +23,9 @@ from ..capture import (
 )
 from ..data import Dataset
 from ..errors import OnnxcalError
-from ..graph import Record, ScoreSite
+from ..graph import MatrixFoldError, Record, ScoreSite
 from ..verify import (
+    FOLD_LIMIT,
     Check,
     Comparison,
     compare,
@@ -83,6 +84,9 @@ def record_checks(
                 "original model (--original)"
             )
         )
+    elif record.folded and graph.folds_matrix(record):
+        assert original_model is not None  # the first branch took a folded record without one
+        checks.append(folded_matrix_check(graph.matrix_fold_error(patched, record, original_model)))
     elif record.folded:
         assert original_model is not None  # the branch above took a folded record without one
         found = graph.folded_values(patched, record, original_model)
@@ -103,6 +107,22 @@ def record_checks(
     else:
         checks.append(source_check(record.source_sha256, source_sha, file_only_sha))
     return checks
+
+
+def folded_matrix_check(found: MatrixFoldError | None) -> Check:
+    """Check that a matrix fold's weights are the record's W and b folded into the original's.
+
+    ``found`` (``graph.matrix_fold_error``) is the largest difference, each
+    relative to the sum of the absolute terms it is made of (one rounding
+    to the dtype: at most its unit roundoff), or None when a folded tensor
+    is missing. Limit: :data:`onnxcal.verify.FOLD_LIMIT` of the weights' dtype, times
+    (r + 1) / 2 for weights rounded r times.
+    """
+    if found is None:
+        return Check("record", False, float("nan"), float("nan"), "folded weights not found in both models")
+    limit = FOLD_LIMIT.get(found.dtype, FOLD_LIMIT["float32"]) * (found.roundings + 1) / 2
+    ok = bool(found.difference <= limit)
+    return Check("record", ok, found.difference, limit, f"{found.detail} ({found.dtype}; max relative difference)")
 
 
 def compare_as_it_runs(

@@ -59,7 +59,9 @@ class PatchOptions:
         Run the Div and activation in this dtype (e.g. for float16 models).
     fold : bool
         Fold the scaling into the weight and bias of the final Gemm /
-        MatMul(+Add) instead of adding nodes (every method).
+        MatMul(+Add) instead of adding nodes (temperature, vector, Platt
+        and matrix scaling; refused, with the reason, for the maps that are
+        not linear in the logits).
     output_holds : {"logits", "probabilities", "log-probabilities"}, optional
         What the output holds, when the graph cannot tell.
     score_columns : str, optional

@@ -96,7 +96,11 @@ def _reference(
         f"reference is recomputed from the patched graph's own logits tensor '{record.scores}' (the patch undone in "
         "memory), so it checks the calibration nodes, not that the logits are the original model's"
     ]
-    if record.folded:
+    if graph.folds_matrix(record):
+        notes.append("the matrix is folded into the weights; the patch was undone from the record's copy of the "
+                     "original weight and bias, so that reference checks the parameters against that copy; give "
+                     "--original or --scores to check them against the original model")
+    elif record.folded:
         notes.append("the parameters are folded into the weights, so that reference only re-checks the "
                      "activation; give --original or --scores to check the parameters")
     return _Reference(logits, "patched-graph", str(patched_path), None, None, tuple(notes))

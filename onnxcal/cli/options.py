@@ -125,7 +125,8 @@ FoldOpt = Annotated[
     typer.Option(
         "--fold",
         help="Fold the scaling into the weight and bias of the Gemm / MatMul(+Add) computing the "
-        "logits (1/T, or per class w and b for vector, Platt and per-label scaling) instead of adding nodes.",
+        "logits (1/T, or per class w and b for vector, Platt and per-label scaling; W A and W c + b for "
+        "matrix scaling) instead of adding nodes.",
         rich_help_panel=OUTPUT_PANEL,
     ),
 ]

@@ -35,7 +35,9 @@ unique deterministic names and notes every change so it can be undone:
   label that disagreed with the argmax before (an SVM with Platt
   probabilities) must not change.
 * ``_fold``: fold the scaling (w * z + b per class) into a Gemm /
-  MatMul(+Add)'s weight and bias instead of adding nodes.
+  MatMul(+Add)'s weight and bias instead of adding nodes;
+  ``fold_matrix.fold_matrix`` folds matrix scaling (W z + b) there, keeping
+  the original weight and bias in the record for ``unpatch``.
 
 What goes in front of the activation is one function of type ``ScaleFn``,
 made by ``scale_fn`` from the fitted ``Scaling``: ``divide_by_temperature``
@@ -57,6 +59,7 @@ from .external import _model_tensors as _model_tensors
 from .external import check_model, for_onnxruntime, tensor_array
 from .find import HOLDS, Branch, ScoreSite, find_scores, fit_kind, read_as
 from .fold import FoldedValues, folded_values
+from .fold_matrix import MatrixFoldError, folds_matrix, matrix_fold_error
 from .io import (
     external_data_files,
     external_data_path,
@@ -115,8 +118,8 @@ __all__ = [
     "ML_DOMAIN", "RECORD_FORMAT", "RECORD_KEY", "Branch", "FoldedValues", "ModelInfo", "Record", "ScaleFn",
     "ScoreSite", "TensorSpec", "at_identity", "check_model", "check_record", "check_temperature", "default_opset",
     "describe", "describe_site", "divide_by_temperature", "expose", "expose_scores", "external_data_files",
-    "external_data_path", "find_recorded", "find_scores", "fit_kind", "folded_values", "for_onnxruntime",
-    "identity_unavailable",
+    "external_data_path", "find_recorded", "find_scores", "fit_kind", "folded_values", "folds_matrix",
+    "for_onnxruntime", "identity_unavailable", "matrix_fold_error", "MatrixFoldError",
     "load_model", "model_files", "model_sha256", "multiply_add", "np_dtype", "opset_version", "parameter_values",
     "parse_columns", "patch", "post", "read_as", "read_record", "read_records", "recorded_values", "save_model",
     "saved_sha256",

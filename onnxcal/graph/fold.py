@@ -47,7 +47,10 @@ class _FoldSite:
     ``unpatch`` restores it exactly (also when folding expanded a scalar
     bias to one per class); subtracting b back out of it would lose up to
     |b_k / beta| / |w_k| times the dtype's rounding. Stored in
-    ``Record.changes["fold"]``.
+    ``Record.changes["fold"]``. ``kept``: the weight's and bias's tensors
+    before folding, serialized (base64, with their SHA-256), by name, for
+    the maps that mix the classes (matrix scaling), whose weight cannot be
+    divided back (``graph.fold_matrix``).
     """
 
     layer: str
@@ -57,6 +60,7 @@ class _FoldSite:
     weight_axis: int | None = None
     class_from_end: int | None = None
     bias_before: dict[str, Any] | None = None
+    kept: dict[str, dict[str, str]] | None = None
 
 
 def _axis_backward(node: onnx.NodeProto, axis: int, rank: int, shapes: _Shapes) -> tuple[int, int] | None:
@@ -258,16 +262,7 @@ def _fold(s: _Surgery, model: onnx.ModelProto, site: ScoreSite, scaling: Scaling
             "--fold: the scaling multiplies some class's logit by 0, so the folded weights could "
             "not be restored", "leave out --fold to insert the scaling as nodes instead",
         )
-    if shift and not fold.bias:
-        raise OnnxcalError(
-            f"--fold: '{fold.layer}' has no bias to take the offset b of {scaling.method} scaling",
-            "leave out --fold to insert Mul + Add instead, or fit temperature scaling (no offset)",
-        )
-    if shift and fold.beta == 0:
-        raise OnnxcalError(
-            f"--fold: '{fold.layer}' multiplies its bias by beta = 0, so it cannot take the offset b "
-            f"of {scaling.method} scaling", "leave out --fold to insert Mul + Add instead",
-        )
+    _check_offset(fold, scaling.method, shift)
     weight = _array(s.graph, fold.weight)
     assert weight is not None  # _fold_site checked it is a constant
     arrays = {fold.weight: weight.astype(np.float64) * _along(w, fold.weight_axis, weight.ndim)}
@@ -279,6 +274,26 @@ def _fold(s: _Surgery, model: onnx.ModelProto, site: ScoreSite, scaling: Scaling
         arrays[fold.bias] = bias.astype(np.float64) * _from_end(w, fold.class_from_end) + offset
         dtypes[fold.bias] = bias.dtype
         fold = replace(fold, bias_before={"dims": list(bias.shape), "values": [float(v) for v in bias.ravel()]})
+    _store(s, fold, arrays, dtypes)
+
+
+def _check_offset(fold: _FoldSite, method: str, shift: bool) -> None:
+    """Refuse a map with an offset b where the layer cannot take it (no bias, or Gemm's beta = 0)."""
+    nodes = "MatMul + Add" if method in ("matrix", "dirichlet") else "Mul + Add"
+    if shift and not fold.bias:
+        raise OnnxcalError(
+            f"--fold: '{fold.layer}' has no bias to take the offset b of {method} scaling",
+            f"leave out --fold to insert {nodes} instead, or fit temperature scaling (no offset)",
+        )
+    if shift and fold.beta == 0:
+        raise OnnxcalError(
+            f"--fold: '{fold.layer}' multiplies its bias by beta = 0, so it cannot take the offset b "
+            f"of {method} scaling", f"leave out --fold to insert {nodes} instead",
+        )
+
+
+def _store(s: _Surgery, fold: _FoldSite, arrays: dict[str, np.ndarray], dtypes: dict[str, np.dtype[Any]]) -> None:
+    """Write the folded ``arrays`` (float64) into the graph, each rounded to its dtype, and note the fold."""
     for name, arr in arrays.items():
         dtype = dtypes[name]
         with np.errstate(over="ignore"):
@@ -326,7 +341,8 @@ def _roundings(record: Record | None) -> int:
     """
     if record is None:
         return 0
-    return cast(int, record.changes.get("rounded", 0)) + (2 if record.folded else 0)
+    mixed = record.method in ("matrix", "dirichlet")  # unfolded from the kept copy: no rounding
+    return cast(int, record.changes.get("rounded", 0)) + (2 if record.folded and not mixed else 0)
 
 
 @dataclass(frozen=True)

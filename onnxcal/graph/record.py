@@ -72,7 +72,9 @@ class Record:
         output), ``scaled`` (initializers changed when folded), ``fold``
         (the layer, its weight and bias, Gemm's beta, which weight axis and
         output axis hold the classes, the bias's dims and values before
-        folding) and ``rounded`` (how many times earlier folds and unfolds
+        folding; for matrix scaling ``kept``, the weight's and bias's
+        tensors before folding, serialized in base64 with their SHA-256,
+        which ``unpatch`` puts back byte for byte) and ``rounded`` (how many times earlier folds and unfolds
         rounded the weights, when re-patching a folded model).
     holds : str
         What ``source_output`` holds: logits, probabilities or log-probabilities.
@@ -307,8 +309,12 @@ def parameter_values(
 
     For a folded model they are estimated from the weights against
     ``original``'s (see :func:`folded_values`): T_k = 1 / w_k for
-    temperature scaling, else w and b.
+    temperature scaling, else w and b. None for a matrix fold, whose W is
+    not read back (:func:`~onnxcal.graph.fold_matrix.matrix_fold_error`
+    checks it against the original's weights instead).
     """
+    if record.folded and record.method in ("matrix", "dirichlet"):
+        return None
     if record.folded:
         found = None if original is None else folded_values(model, record, original)
         if found is None:

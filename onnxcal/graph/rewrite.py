@@ -36,6 +36,7 @@ from .expose import _subgraph
 from .external import check_model
 from .find import ScoreSite, find_scores, fit_kind, read_as
 from .fold import _fold, _roundings, _unfold
+from .fold_matrix import MIXING, fold_matrix, fold_refusal, folds_matrix, unfold_matrix
 from .post import normalises, to_json
 from .record import Record, _damaged, _write_records, check_record, read_records
 from .surgery import (
@@ -268,7 +269,7 @@ def _undo(model: onnx.ModelProto, record: Record) -> None:
         del model.opset_import[:]
         model.opset_import.extend(kept)
     if record.folded:
-        _unfold(g, record)
+        (unfold_matrix if folds_matrix(record) else _unfold)(g, record)
 
 
 def _undo_nodes(g: onnx.GraphProto, added: set[str], renamed: dict[str, str]) -> None:
@@ -378,10 +379,9 @@ def _check_options(
             "--compute-dtype sets the dtype of the inserted Div, and with --fold there is none",
             "give one of --fold and --compute-dtype",
         )
-    if fold and not scaling.is_affine:
+    if fold and (why := fold_refusal(scaling)):
         raise OnnxcalError(
-            f"--fold: {scaling.method} calibration is not a per-class w * z + b, which is what onnxcal folds "
-            "into a linear layer",
+            f"--fold: {why}, so it cannot be folded into a linear layer",
             "leave out --fold (the map is added as nodes in front of the activation)",
         )
     if fold and (site.branches or site.columns):
@@ -501,11 +501,12 @@ def patch(
     compute = _check_options(site, compute_dtype, fold, scaling)
     s = _Surgery(out.graph, out.ir_version)
     opset = add_default_opset(s, out)
-    check_map_site(scaling, site, opset)
+    if not fold:  # a fold adds no map nodes (the map is in the layer's weights)
+        check_map_site(scaling, site, opset)
     if rounded := _roundings(previous):
         s.changes["rounded"] = rounded
     if fold:
-        _fold(s, out, site, scaling, drop_logits)
+        (fold_matrix if scaling.method in MIXING else _fold)(s, out, site, scaling, drop_logits)
     scale: ScaleFn = _no_scaling if fold else scale_fn(scaling, site)
     rewrite, calibrated = _rewrite(s, site, scale, compute, scaling, new_output, drop_logits, opset, fold)
     record = Record(

@@ -39,6 +39,7 @@ from onnxcal import api  # noqa: E402
 from onnxcal.data import DataSpec, Selection  # noqa: E402
 from onnxcal.errors import OnnxcalWarning  # noqa: E402
 from onnxcal.fit import FitOptions  # noqa: E402
+from onnxcal.graph import model_sha256  # noqa: E402
 
 SEED = 20270107
 N = 40  # rows of the good validation set
@@ -507,6 +508,29 @@ def l1_sigmoid_files(d: Path) -> None:
     api.fit(d / "l1_cap.npz", out=d / "l1_fit.json", options=FitOptions(bootstrap=0))
 
 
+def fold_files(d: Path) -> None:
+    """Fits that --fold refuses: a map that is not linear in the logits, and a matrix whose layer's
+    weight another node reads too (issue 15)."""
+    fit = json.loads((d / "fit.json").read_text())
+    maps = {
+        "ets_good": ("ensemble-temperature", {"temperature": 1.5, "weights": [0.6, 0.3, 0.1]}),
+        "matrix_good": ("matrix", {"W": (np.eye(K) * 0.8).tolist(), "b": [0.1] * K}),
+    }
+    shared = onnx.load(str(d / "model.onnx"))
+    last = shared.graph.node[-1].input[1]  # the final Gemm's weight, read once more for a second output
+    shared.graph.node.append(helper.make_node("ReduceSum", [last], ["weight_sum"], keepdims=0))
+    shared.graph.output.append(_vi("weight_sum", []))
+    _save(shared, d / "fold_shared_weight.onnx")
+    for name, (method, params) in maps.items():
+        good = json.loads(json.dumps(fit))
+        good["method"], good["parameters"], good["temperature"] = method, params, None
+        good["split"]["fit_part"] = None
+        if method == "matrix":  # fitted on the model with the shared weight (same logits)
+            good["capture"]["model_sha256"] = model_sha256(d / "fold_shared_weight.onnx")
+            good["capture"]["model_path"] = "fold_shared_weight.onnx"
+        (d / f"fit_{name}.json").write_text(json.dumps(good, indent=2))
+
+
 def make(directory: str | os.PathLike) -> Path:
     """Write the whole corpus into ``directory`` (created; must not exist)."""
     d = Path(directory)
@@ -519,6 +543,7 @@ def make(directory: str | os.PathLike) -> Path:
     bad_images(d)
     bad_fits(d)
     l1_sigmoid_files(d)
+    fold_files(d)
     return d
 
 

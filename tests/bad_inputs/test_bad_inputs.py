@@ -214,6 +214,8 @@ CASES = [
     case("fit-ets-weights", "report", "cap.npz", "--out", "rep", "--fit", "fit_ets_weights.json", message=r"ensemble-temperature parameter 'weights' is \[0.5, 0.6, 0.1\], but it must be three numbers >= 0 adding up to 1"),
     case("fit-isotonic-decreasing", "patch", "model.onnx", "--fit", "fit_isotonic_decreasing.json", "--out", "p.onnx", message=r"isotonic parameter 'y\[0\]' decreases"),
     case("fit-unknown-method", "patch", "model.onnx", "--fit", "fit_unknown_method.json", "--out", "p.onnx", message=r"unknown calibration method 'magic'"),
+    case("fold-map-not-linear", "patch", "model.onnx", "--fit", "fit_ets_good.json", "--fold", "--drop-logits", "--out", "p.onnx", message=r"--fold: ensemble temperature scaling is a weighted mixture of softmaxes, not one softmax of a linear map of the logits, so it cannot be folded into a linear layer"),
+    case("fold-matrix-shared-weight", "patch", "fold_shared_weight.onnx", "--fit", "fit_matrix_good.json", "--fold", "--drop-logits", "--out", "p.onnx", message=r"--fold: the weight 'w1' is shared with other nodes; leave out --fold"),
     case("fit-not-json", "patch", "model.onnx", "--fit", "fit_not_json.json", "--out", "p.onnx", message=r"'fit_not_json.json' is not an onnxcal fit file"),
     case("report-dir-is-a-file", "calibrate", "model.onnx", *NPZ, "--out", "o.onnx", "--report", "fit_deep.json", message=r"--report 'fit_deep.json' is a file"),
     case("fit-json-nested-too-deep", "patch", "model.onnx", "--fit", "fit_deep.json", "--out", "p.onnx", message=r"'fit_deep.json' is not an onnxcal fit file"),
