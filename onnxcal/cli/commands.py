@@ -470,7 +470,8 @@ def calibrate(
     verify_rows: Annotated[
         int,
         typer.Option("--verify-rows", min=1, metavar="N", rich_help_panel=CHECKS_PANEL,
-                     help="Check the patched model on at most N rows, stratified by label (verify checks all)."),
+                     help="Check the patched model on at most N rows (N >= 1), stratified by label "
+                     "(verify checks all)."),
     ] = VERIFY_ROWS,
     verify_all: Annotated[
         bool, typer.Option("--verify-all", help="Check the patched model on every row, not a sample.",

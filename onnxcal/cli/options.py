@@ -491,7 +491,7 @@ class HelpCommand(TyperCommand):
             if param.param_type_name == "argument":
                 arguments.append((param.metavar, param.help or ""))
                 continue
-            record = param.get_help_record(ctx)
+            record = _help_record(param, ctx)
             if record is not None:
                 panels.setdefault(getattr(param, "rich_help_panel", None) or PANELS[0], []).append(record)
         if arguments:
@@ -500,3 +500,18 @@ class HelpCommand(TyperCommand):
         for name in sorted(panels, key=lambda p: PANELS.index(p) if p in PANELS else len(PANELS)):
             with formatter.section(name if name == PANELS[0] else f"{name} options"):
                 formatter.write_dl(panels[name])
+
+
+def _help_record(param: Any, ctx: Any) -> tuple[str, str] | None:
+    """The option's help line without the range hint typer adds for ``min=``/``max=`` ("x>=1"):
+    the help text says the range in words, and the bounds still apply when the value is parsed."""
+    bounds = getattr(param, "min", None), getattr(param, "max", None)
+    if bounds == (None, None):
+        record: tuple[str, str] | None = param.get_help_record(ctx)
+        return record
+    param.min = param.max = None
+    try:
+        record = param.get_help_record(ctx)
+    finally:
+        param.min, param.max = bounds
+    return record
