@@ -163,7 +163,7 @@ def test_the_refusals_name_the_input_and_why(case: dict[str, object]) -> None:
     model = _dir(case) / "model.onnx"
     with pytest.raises(OnnxcalError, match=r"input 'h0' has shape \[1, N, 3\] in the model, samples on axis 1") as e:
         api.capture(model, DataSpec(path=_dir(case) / "val.npz", constants={"sr": 16000}))
-    assert "--batch-axis h0=1" in e.value.hint and "--constant h0=zeros" in e.value.hint
+    assert "batch_axes h0=1" in e.value.hint and "constants h0=zeros" in e.value.hint  # the api's keywords
     with pytest.raises(OnnxcalError, match=r"input 'sr' is a single number \(shape \[\]\)"):
         api.capture(model, DataSpec(path=_dir(case) / "val.npz", batch_axes={"h0": 1}))
     with pytest.raises(OnnxcalError, match=r"constant 'h0' has size 2 on axis 1, the batch axis"):

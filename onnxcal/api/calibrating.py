@@ -19,7 +19,7 @@ from .._paths import one_command
 from ..capture import CPU, Capture, ProgressFn, RunOptions, finite_mask
 from ..data import Dataset, DataSpec
 from ..decisions.plan import NO_DECISIONS, DecisionOptions, Decisions
-from ..errors import OnnxcalError
+from ..errors import OnnxcalError, keyword_errors
 from ..fit import FitOptions, FitSummary
 from ..graph import Record
 from ..report import FORMATS, ReportResult
@@ -203,6 +203,7 @@ def check_verify_rows(verify_rows: int | None) -> int | None:
     return verify_rows
 
 
+@keyword_errors
 @models_in_memory("model_path")
 @one_command
 def calibrate(

@@ -15,7 +15,7 @@ from .. import reading as _reading
 from .._limits import DEFAULT_MAX_MODEL_BYTES, MAX_BINS, check_bins_memory, check_range
 from .._paths import check_output_path, one_command
 from ..capture import CPU, Capture, ProgressFn, load_captures, nonfinite_logits
-from ..errors import OnnxcalError, OnnxcalWarning
+from ..errors import OnnxcalError, OnnxcalWarning, keyword_errors
 from ..fit import T_MAX, T_MIN, FitOptions, FitSummary, save_fit, summarize
 from ..graph import ModelInfo
 from ..scaling import METHODS, MULTILABEL_MODES, PENALISED_METHODS
@@ -35,6 +35,7 @@ from .common import (
 from .models import models_in_memory
 
 
+@keyword_errors
 @models_in_memory("model_path")
 def inspect(
     model_path: str | os.PathLike[str] | onnx.ModelProto, *, max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES
@@ -50,6 +51,7 @@ def inspect(
     return graph.describe(model, model_path, graph.model_sha256(model_path), external)
 
 
+@keyword_errors
 @models_in_memory("model_path")
 @one_command
 def capture(
@@ -172,6 +174,7 @@ def check_fit_options(options: FitOptions) -> FitOptions:
     return options
 
 
+@keyword_errors
 @one_command
 def fit(
     source: Capture | str | os.PathLike[str] | Sequence[str | os.PathLike[str]],

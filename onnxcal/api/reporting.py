@@ -17,7 +17,7 @@ from .._limits import DEFAULT_MAX_MODEL_BYTES, MAX_BINS, check_bins_memory, chec
 from .._numeric import check_in_dtype, max_abs
 from .._paths import check_not_input, check_output_path, check_writable, one_command, require_file
 from ..capture import Capture, load_captures
-from ..errors import OnnxcalError
+from ..errors import OnnxcalError, keyword_errors
 from ..fit import FitSummary, load_fit, summary_from_dict
 from ..graph import Record
 from ..l1_sigmoid import capture_kind
@@ -175,6 +175,7 @@ def _calibration_of(
                         record.decisions)
 
 
+@keyword_errors
 @models_in_memory("model")
 @one_command
 def report(
