@@ -183,6 +183,7 @@ def fit(
     force: bool = False,
     options: FitOptions = FitOptions(),
     drop_nonfinite: bool = False,
+    progress: ProgressFn | None = None,
 ) -> FitSummary:
     """Fit a calibration map to captured logits; return (and write) the summary.
 
@@ -200,6 +201,10 @@ def fit(
     drop_nonfinite : bool
         Leave out the samples whose logits hold NaN or Inf (a note says how
         many); by default they are refused, with their count and first rows.
+    progress : callable, optional
+        ``progress(stage, done, total)`` as the fit goes: ``"fitting"`` (its
+        passes or steps) and ``"bootstrap"`` (replicates done, out of
+        ``options.bootstrap``); see :func:`onnxcal.fit.summarize`.
     """
     check_fit_options(options)
     inputs = [] if isinstance(source, Capture) else _capture_paths(source)
@@ -209,17 +214,17 @@ def fit(
     where = cap.meta.data_source if isinstance(source, Capture) else ", ".join(map(str, inputs))
     cap, dropped = finite_capture(cap, where, drop_nonfinite)
     check_bins_memory(options.n_bins, cap.logits.shape[1])
-    summary = with_note(summarize_capture(cap, options), dropped)
+    summary = with_note(summarize_capture(cap, options, progress), dropped)
     if out is not None:
         save_fit(out, summary)
     return summary
 
 
-def summarize_capture(cap: Capture, options: FitOptions) -> FitSummary:
+def summarize_capture(cap: Capture, options: FitOptions, progress: ProgressFn | None = None) -> FitSummary:
     """``fit.summarize`` on a capture, with the checks that need what the fit does not know:
     how the capture read the logits (``reading.fit_read_logits``) and the search bounds of T.
     The rows of a sample (a per-position or per-pixel output) are split and resampled together."""
-    fitted = summarize(cap.logits, cap.labels, cap.meta.to_dict(), options, groups=cap.groups())
+    fitted = summarize(cap.logits, cap.labels, cap.meta.to_dict(), options, groups=cap.groups(), progress=progress)
     summary = _reading.fit_read_logits(fitted)
     bound = _bound_warnings(summary.intervals)
     return replace(summary, warnings=(*summary.warnings, *bound)) if bound else summary

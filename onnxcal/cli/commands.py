@@ -121,11 +121,6 @@ def capture(
     say(f"captured {cap.meta.n} x {cap.meta.num_classes} logits from '{cap.meta.scores}' -> {out_path}")
 
 
-def _fit_stage(bootstrap: int) -> str:
-    """The fit stage as the progress bar names it (it has no counts: elapsed time is shown)."""
-    return f"fitting ({bootstrap} bootstrap replicates)" if bootstrap else "fitting"
-
-
 def fit(
     logits: Annotated[
         list[Path],
@@ -155,8 +150,9 @@ def fit(
     from ..fit import FitOptions
 
     options = FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins)
-    with progress_bar(quiet or as_json, start=_fit_stage(bootstrap)):
-        summary = api.fit(logits, out=out_path, force=force, options=options, drop_nonfinite=drop_nonfinite)
+    with progress_bar(quiet or as_json) as progress:
+        summary = api.fit(logits, out=out_path, force=force, options=options, drop_nonfinite=drop_nonfinite,
+                          progress=progress)
     if as_json:
         print_json(summary.to_dict())
         return
@@ -492,7 +488,7 @@ def calibrate(
     from .. import api
     from ..fit import FitOptions
 
-    with progress_bar(quiet or as_json, then={"capturing logits": _fit_stage(bootstrap)}) as progress:
+    with progress_bar(quiet or as_json) as progress:
         result = api.calibrate(
             model,
             data,

@@ -115,6 +115,48 @@ def test_quiet_prints_the_result_line_and_the_verdict(tmp_path, run_cli):
     assert r.out == f"wrote 1 report file to {tmp_path / 'rep'}: report.json\n"  # and its grammar
 
 
+def _bars(err: str) -> dict[str, str]:
+    """The progress lines on stderr by stage: {"bootstrap": "20/20 ...", ...}."""
+    lines = [ANSI.sub("", line) for line in err.splitlines()]
+    found = {}
+    stages = "capturing logits|fitting|bootstrap|running patched model|writing the report"
+    for line in lines:
+        m = re.match(rf"^({stages})\s+\S*\s+(\d+/\d+.*)$", line)
+        if m:
+            found[m.group(1)] = m.group(2)
+    return found
+
+
+def test_fit_shows_its_stages_and_counts_the_bootstrap_on_stderr(capture_file, run_cli, tmp_path):
+    # stderr is not a terminal here: each bar is printed once, complete, as for capture
+    r = run_cli("fit", capture_file, "--bootstrap", "20")
+    assert r.code == 0, r.err
+    bars = _bars(r.err)
+    assert bars["bootstrap"].startswith("20/20 ") and "replicates/s" in bars["bootstrap"]
+    assert bars["fitting"].startswith("3/3")
+    assert "samples/s" not in r.err  # a fit counts replicates and passes, not samples
+    assert not _bars(r.out) and "━" not in r.out  # progress goes to stderr only
+    r = run_cli("calibrate", DEMO_MODEL, "--data", DEMO_VAL, "--out", tmp_path / "c.onnx", "--bootstrap", "7",
+                "--report", tmp_path / "rep")
+    bars = _bars(r.err)
+    assert bars["capturing logits"].startswith("2000/2000") and bars["bootstrap"].startswith("7/7 ")
+    assert list(bars)[:3] == ["capturing logits", "fitting", "bootstrap"]
+    assert bars["writing the report"].startswith("1/1")
+    for quiet in (["-q"], ["--json"]):  # no progress at all
+        r = run_cli("fit", capture_file, "--bootstrap", "20", *quiet)
+        assert r.code == 0 and r.err == "", r.err
+
+
+def test_fit_progress_on_a_terminal_is_redrawn_on_stderr(capture_file, run_cli, monkeypatch):
+    _terminal(monkeypatch, 100)
+    r = run_cli("fit", capture_file, "--bootstrap", "20")
+    assert r.code == 0, r.err
+    assert "bootstrap" in r.err and "20/20" in ANSI.sub("", r.err)
+    assert not _bars(r.out) and "━" not in r.out  # not on stdout
+    r = run_cli("fit", capture_file, "--bootstrap", "20", "-q")
+    assert r.err == "", r.err
+
+
 def test_the_caution_is_printed_once_where_probabilities_are_produced_or_judged(tmp_path, run_cli):
     caution = "Calibration holds only for data like the validation set"
     out, cap = tmp_path / "c.onnx", tmp_path / "cap.npz"
