@@ -20,14 +20,12 @@ from typer.core import TyperCommand
 from ..errors import OnnxcalError
 from .defaults import (
     ACTIVATIONS,
-    AUTO,
     COMPUTE_DTYPES,
     CPU,
     DEFAULT_BATCH,
     HOLDS,
     IMAGE_OPTIONS,
     INTERPOLATIONS,
-    METHODS,
     MULTILABEL_MODES,
     OPTIMIZATION_LEVELS,
     choices,
@@ -133,12 +131,12 @@ MethodOpt = Annotated[
     str,
     typer.Option(
         "--method",
-        help="temperature (softmax(z/T), or sigmoid(z/T) for one logit), vector "
+        help="One of: temperature (softmax(z/T), or sigmoid(z/T) for one logit), vector "
         "(softmax(w*z+b), per class), platt (sigmoid(a*z+b), one logit), matrix (softmax(W z+b)), dirichlet "
         "(softmax(W log p+b)), beta (one logit), isotonic, histogram (binning), ensemble-temperature, ovr-platt "
         "(one-vs-rest, renormalised), or auto (every applicable method fitted, the simplest within the best "
         "held-out NLL's bootstrap interval chosen). isotonic and histogram can change the ranking and the argmax.",
-        metavar=choices((*METHODS, AUTO)),
+        metavar="METHOD",  # the eleven choices, as a|b|c, would not fit a narrow terminal's line: the help lists them
         rich_help_panel=FIT_PANEL,
     ),
 ]

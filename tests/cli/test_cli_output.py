@@ -18,6 +18,7 @@ from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL
 
 from onnxcal.cli import console
 from onnxcal.cli.app import COMMANDS
+from onnxcal.cli.defaults import METHODS
 
 ANSI = re.compile(r"\x1b\[[0-9;?]*[A-Za-z]")
 FIGURE = re.compile(r"-?\d+\.\d{3,}")
@@ -184,7 +185,20 @@ def test_help_shows_forms_and_choices_not_python_types(run_cli, monkeypatch, com
         assert "--optimization disable|basic|extended|all" in r.out
         assert "--interpolation nearest|bilinear|bicubic|lanczos" in r.out
     if command in ("fit", "calibrate"):
-        assert "--method temperature|vector|platt" in r.out and "--multilabel shared|per-label" in r.out
+        assert "--method METHOD" in r.out and "--multilabel shared|per-label" in r.out
+        flat = " ".join(r.out.split())
+        for method in (*METHODS, "auto"):  # each choice is listed in the help
+            assert f" {method} " in flat or f" {method} (" in flat or f" {method}," in flat, method
+
+
+@pytest.mark.parametrize("command", ["", *COMMANDS])
+@pytest.mark.parametrize("columns", [60, 120])
+def test_help_lines_fit_the_terminal(run_cli, monkeypatch, command, columns):
+    # a line wider than the terminal is broken by the terminal wherever it falls, mid-word
+    monkeypatch.setenv("COLUMNS", str(columns))
+    r = run_cli(*([command] if command else []), "--help")
+    assert r.code == 0, r.err
+    assert max(len(line) for line in r.out.splitlines()) <= columns, r.out
 
 
 @pytest.mark.parametrize("command", ["", *COMMANDS])
