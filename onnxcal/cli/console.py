@@ -217,7 +217,9 @@ def _rate_column() -> Any:
             if not what:
                 return Text("")
             speed = task.finished_speed or task.speed
-            return Text(f"{speed:,.0f} {what}/s" if speed else f"- {what}/s")
+            if not speed:  # too quick to measure ("" once done), or not yet measured
+                return Text("" if task.finished else f"- {what}/s")
+            return Text(f"{speed:,.0f} {what}/s")
 
     return RateColumn()
 

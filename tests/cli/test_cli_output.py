@@ -237,3 +237,19 @@ def test_did_you_mean_reads_as_a_sentence(run_cli):
     r = run_cli("calibrat")
     assert r.code == 2
     assert r.err.strip() == "onnxcal: error: No such command 'calibrat'. Did you mean 'calibrate'? See 'onnxcal --help'"
+
+
+def test_an_estimate_outside_its_interval_is_marked_and_explained(capture_file, run_cli):
+    # as the report does (report/tables.py): the example, classwise ECE 0.0307 with 0.035 to 0.050
+    from onnxcal.metrics import METRIC_LABELS
+
+    data = json.loads(run_cli("fit", capture_file, "--json").out)
+    after, intervals = data["metrics"]["after"], data["intervals"]["after"]
+    outside = {k for k, pair in intervals.items() if pair and not pair[0] <= after[k] <= pair[1]}
+    assert "classwise_ece" in outside  # the demo's case; the rest is checked against the JSON's own figures
+    lines = run_cli("fit", capture_file).out.splitlines()
+    for key, label in METRIC_LABELS.items():
+        (row,) = [line for line in lines if line.startswith(label.format(bins=15) + "  ")]
+        assert ("†" in row) == (key in outside), row
+    notes = [line for line in lines if line.startswith("note: † The point estimate lies outside its own 95%")]
+    assert len(notes) == 1 and "(classwise ECE)" in notes[0] and "biased upward" in notes[0]
