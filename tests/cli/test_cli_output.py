@@ -253,3 +253,20 @@ def test_an_estimate_outside_its_interval_is_marked_and_explained(capture_file, 
         assert ("†" in row) == (key in outside), row
     notes = [line for line in lines if line.startswith("note: † The point estimate lies outside its own 95%")]
     assert len(notes) == 1 and "(classwise ECE)" in notes[0] and "biased upward" in notes[0]
+
+
+@pytest.mark.parametrize(
+    ("stages", "said"),
+    [
+        ([], " (fit stopped)"),
+        (["capturing logits"], " (fit stopped while capturing logits)"),
+        (["fitting", "bootstrap"], " (fit stopped during 'bootstrap')"),  # a stage named by a noun reads as one
+        (["vector: bootstrap"], " (fit stopped during 'vector: bootstrap')"),
+    ],
+)
+def test_the_interruption_line_names_the_stage_in_a_sentence(monkeypatch, stages, said):
+    import importlib
+
+    app = importlib.import_module("onnxcal.cli.app")  # the module (onnxcal.cli.app is also the typer app's name)
+    monkeypatch.setattr(console, "stage", list(stages))
+    assert app._what_stopped(["fit", "cap.npz"]) == said
