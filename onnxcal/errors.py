@@ -57,7 +57,8 @@ KEYWORDS = {
 CLI_ONLY = frozenset({"help", "debug", "version", "quiet", "json"})
 """Options of the command line alone, left as they are."""
 
-_OPTION = re.compile(r"(?<![\w-])--([a-z][a-z0-9]*(?:-[a-z0-9]+)*)")
+# an option starts a word (after a space, a bracket, a comma or nothing): "--x" inside a path stays
+_OPTION = re.compile(r"(?<![^\s(\[,])--([a-z][a-z0-9]*(?:-[a-z0-9]+)*)\b(?!-)")
 _COMMAND_LINE = re.compile(r"'onnxcal ([a-z]+)((?: [^']*)?)'")  # a command line quoted in a message
 
 
@@ -77,6 +78,8 @@ def python_spelling(text: str) -> str:
     "out 'a.npz' already exists; pass force=True to replace it"
     >>> python_spelling("give a file written by 'onnxcal fit --out'")
     'give a file written by onnxcal.fit(out=...)'
+    >>> python_spelling("cannot read '/data/--runs/x.npz' (--data)")
+    "cannot read '/data/--runs/x.npz' (data)"
     """
 
     def command(m: re.Match[str]) -> str:
