@@ -44,7 +44,7 @@ from .common import (
 )
 from .models import models_in_memory
 from .patching import PatchOptions, PatchResult
-from .reporting import capture_names, report_files, report_targets
+from .reporting import WRITING, capture_names, report_files, report_targets
 from .sampling import VERIFY_ROWS, subset, verification_sample
 
 
@@ -284,10 +284,10 @@ def calibrate(
     written_report = None
     if report is not None:
         told = progress or (lambda stage, done, total: None)
-        told("writing the report", 0, 1)  # its plots take a second or more
+        told(WRITING, 0, 1)  # its plots take a second or more
         report_content, written_report = _report_files(report, out, external, patched, seen.cap, summary, result)
         files.update(report_content)
-        told("writing the report", 1, 1)
+        told(WRITING, 1, 1)
     # the Mapping's key type is invariant: a dict keyed by Path is the str | PathLike keys it accepts
     atomic_write_files(cast("dict[str | os.PathLike[str], bytes | Writer]", files))
     return CalibrateResult(summary=summary, patch=written, verification=result, report=written_report,

@@ -403,19 +403,21 @@ def report(
     """
     from .. import api
 
-    result = api.report(
-        captures,
-        out_dir,
-        temperature=temperature,
-        fit=fit_file,
-        model=model,
-        formats=formats,
-        class_names=class_names,
-        n_bins=bins,
-        force=force,
-        drop_nonfinite=drop_nonfinite,
-        max_model_bytes=max_model_bytes,
-    )
+    with progress_bar(quiet) as progress:
+        result = api.report(
+            captures,
+            out_dir,
+            temperature=temperature,
+            fit=fit_file,
+            model=model,
+            formats=formats,
+            class_names=class_names,
+            n_bins=bins,
+            force=force,
+            drop_nonfinite=drop_nonfinite,
+            max_model_bytes=max_model_bytes,
+            progress=progress,
+        )
     if not quiet:
         for note in result.content["notes"]:
             if note.startswith("dropped "):

