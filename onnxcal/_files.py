@@ -56,7 +56,7 @@ from ._paths import (  # noqa: F401 - re-exported: the stages, graph.io and test
     sha256_file,
 )
 from ._temporaries import STALE_SECONDS, fcntl  # noqa: F401 - STALE_SECONDS: the rule, for tests and docs
-from .errors import OnnxcalError, spelled
+from .errors import OnnxcalError
 
 
 def _fsync_directory(directory: Path) -> None:
@@ -108,7 +108,7 @@ def appeared_error(dest: Path) -> OnnxcalError:
     return OnnxcalError(
         f"'{dest}' was written by another run or program while this one worked (it did not exist when "
         "this run started); it was left as it is and this run wrote nothing",
-        f"pass {spelled('--force', 'force=True')} to replace it, or write to another path",
+        "pass --force to replace it, or write to another path",
     )
 
 

@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, TypeVar
 
-from .errors import OnnxcalError, spelled
+from .errors import OnnxcalError
 
 _CHUNK = 1 << 20
 
@@ -277,7 +277,7 @@ def check_output_path(
     if p.exists() and not p.is_file():  # a device, a FIFO: --force would replace it with a file
         raise OnnxcalError(f"{option} '{p}' is not a regular file (a device or a pipe)", "give the path of a file")
     if p.exists() and not force:
-        raise OnnxcalError(f"{option} '{p}' already exists", f"pass {spelled('--force', 'force=True')} to replace it")
+        raise OnnxcalError(f"{option} '{p}' already exists", "pass --force to replace it")
     check_writable(parent, option)
     if (run := _COMMAND.get()) is not None:  # at the end, replace only with --force
         run.replace[_key(p)] = force

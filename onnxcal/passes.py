@@ -21,6 +21,7 @@ logits again only when that step's error bound is too large.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import cast
 
@@ -42,6 +43,8 @@ from .tempfit import (
     solve,
     taylor_root,
 )
+
+FITTING = "fitting"  # the stage progress() is told about
 
 CHECK_FLOAT32 = 1e-7
 """How far (relative) pass 3 may put the fit part's optimum from the fit, for float32 logits.
@@ -126,11 +129,15 @@ def fit_and_score(
     bounds: tuple[float, float],
     bootstrap: bool,
     threads: int | None = None,
+    progress: Callable[[str, int, int], None] | None = None,
 ) -> Scored:
     """Fit a temperature on ``fit_rows``, score both parts before and after, refit on all rows.
 
     ``eval_rows is fit_rows`` means an in-sample evaluation (one part, all rows).
+    ``progress("fitting", done, 3)`` hears of each of the three passes.
     """
+    told = progress or (lambda stage, done, total: None)
+    told(FITTING, 0, 3)
     holdout = fit_rows is not eval_rows
     part, local = expansion_parts(len(logits), fit_rows, eval_rows, local=bootstrap)
     parts = 2 if holdout else 1
@@ -142,11 +149,13 @@ def fit_and_score(
     first, _ = temperature_pass(logits, labels, 1.0, n_bins, selection=sel, parts=parts, threads=threads)
     before = [score_metrics(first, p, masks[p], None) for p in range(parts)]
     del first  # its per-row scores
+    told(FITTING, 1, 3)
     fit_on = fit_rows if holdout else None
     tol = CHECK_FLOAT32 if compute_dtype(logits) == np.float32 else ACCEPT
     fit = fit_beta(logits, labels, fit_on, None, None, bounds, threads)
     beta, passes, converged = snapped(logits)(fit.beta), fit.passes, fit.converged
     high = fit.derivs if fit.derivs is not None and len(fit.derivs) == ORDER else np.zeros(ORDER)
+    told(FITTING, 2, 3)
     order = TERMS  # the first three derivatives on all rows: the check, the refit's step, the expansion
     for _ in range(MAX_PASSES):
         exp = new_expansion(beta, len(fit_rows), len(eval_rows)) if bootstrap else None
@@ -170,6 +179,7 @@ def fit_and_score(
         if redo.derivs is not None and len(redo.derivs) == ORDER:
             high = redo.derivs
     after = [score_metrics(scores, p, masks[p], None) for p in range(parts)]
+    told(FITTING, 3, 3)
     if holdout:
         full = _refit(logits, labels, sums, beta, high, bounds, threads)
     else:

@@ -105,6 +105,7 @@ LEVEL = 0.95
 GRID_POINTS = 9
 GRID_HALF_WIDTH = 6.0  # standard errors of log(beta) on each side of the fit
 EXACT_EVAL_BUDGET = 2e7  # held-out rows x classes x replicates scored exactly
+BOOTSTRAP = "bootstrap"  # the stage progress() is told about
 
 
 # --------------------------------------------------------------------------
@@ -150,6 +151,15 @@ def _draws(
         yield Draw(fit, n_fit, held, n_fit if n_eval is None else n_eval)
 
 
+def _counted(draws: Iterator[Draw], progress: Callable[[str, int, int], None], total: int) -> Iterator[Draw]:
+    """``draws``, calling ``progress("bootstrap", k, total)`` when the replicate after the k-th is
+    drawn (the k-th is done; with threads, up to two per thread are still running) and at the end."""
+    progress(BOOTSTRAP, 0, total)
+    for k, draw in enumerate(draws, 1):
+        yield draw
+        progress(BOOTSTRAP, k, total)
+
+
 def _draw(rng: np.random.Generator, n: int, samples: Samples | None) -> np.ndarray:
     if samples is None:
         return rng.integers(0, n, n)
@@ -180,6 +190,7 @@ def bootstrap(
     expansion: Expansion | None = None,
     threads: int | None = None,
     groups: np.ndarray | None = None,
+    progress: Callable[[str, int, int], None] | None = None,
 ) -> dict[str, Any]:
     """Percentile intervals for the parameters and every after-metric.
 
@@ -202,6 +213,8 @@ def bootstrap(
     groups : ndarray of int, optional
         The sample of each row (sorted), for outputs with several rows per
         sample: replicates then draw whole samples (see the module docstring).
+    progress : callable, optional
+        ``progress("bootstrap", done, total)``: at the start and after each replicate, in order.
 
     Returns
     -------
@@ -218,6 +231,8 @@ def bootstrap(
     eval_samples = fit_samples if groups is None or same else samples_of(np.asarray(groups)[eval_rows])
     draws = _draws(rng, options.bootstrap, len(fit_rows), None if same else len(eval_rows), fit_samples,
                    eval_samples)
+    if progress is not None:
+        draws = _counted(draws, progress, options.bootstrap)
     run = Replicates(logits, labels, options, fit_rows, eval_rows, start, refit, threads)
     how = "exact"
     if fast:

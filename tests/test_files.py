@@ -17,7 +17,7 @@ import pytest
 from conftest import DEMO_MODEL, DEMO_VAL, files_in, random_mlp
 
 from onnxcal import _files, _temporaries, api
-from onnxcal.errors import OnnxcalError, OnnxcalWarning, cli_spelling
+from onnxcal.errors import OnnxcalError, OnnxcalWarning, cli_spelling, keyword_errors
 from onnxcal.fit import FitOptions
 
 # --------------------------------------------------------------------------
@@ -58,11 +58,14 @@ def test_nothing_is_written_into_an_input_folder(inputs):
 def test_existing_output_needs_force_and_a_writable_directory(inputs, monkeypatch):
     existing = inputs / "old.npz"
     existing.write_bytes(b"old")
-    # from Python the hint names the keyword; on the command line, the option
+    # the hint names the option; a public api function (errors.keyword_errors) names the keyword
+    # from Python, and the option again on the command line
+    with pytest.raises(OnnxcalError, match=r"already exists; pass --force to replace it$"):
+        _files.check_output_path(existing)
     with pytest.raises(OnnxcalError, match=r"already exists; pass force=True to replace it$"):
-        _files.check_output_path(existing)
+        keyword_errors(_files.check_output_path)(existing)
     with cli_spelling(), pytest.raises(OnnxcalError, match=r"already exists; pass --force to replace it$"):
-        _files.check_output_path(existing)
+        keyword_errors(_files.check_output_path)(existing)
     assert _files.check_output_path(existing, force=True) == existing
     # What an unprivileged user gets for a directory without write permission (as root,
     # os.access says yes whatever the mode; the real refusal: tests/bad_inputs/).
@@ -441,7 +444,7 @@ def test_publication_never_replaces_a_file_that_appeared_meanwhile(tmp_path):
     with _files.command():
         _files.check_output_path(dest)  # absent at the check: the write may not replace anything
         with pytest.raises(OnnxcalError, match=r"'.*out.onnx' was written by another run or program while this one "
-                           r"worked .*left as it is and this run wrote nothing; pass force=True"):
+                           r"worked .*left as it is and this run wrote nothing; pass --force"):
             with _files.atomic_path(dest) as tmp:
                 tmp.write_bytes(b"ours")
                 dest.write_bytes(b"theirs")  # another program, while this run works

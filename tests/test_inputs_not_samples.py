@@ -163,7 +163,7 @@ def test_the_refusals_name_the_input_and_why(case: dict[str, object]) -> None:
     model = _dir(case) / "model.onnx"
     with pytest.raises(OnnxcalError, match=r"input 'h0' has shape \[1, N, 3\] in the model, samples on axis 1") as e:
         api.capture(model, DataSpec(path=_dir(case) / "val.npz", constants={"sr": 16000}))
-    assert "--batch-axis h0=1" in e.value.hint and "--constant h0=zeros" in e.value.hint
+    assert "batch_axes h0=1" in e.value.hint and "constants h0=zeros" in e.value.hint  # the api's keywords
     with pytest.raises(OnnxcalError, match=r"input 'sr' is a single number \(shape \[\]\)"):
         api.capture(model, DataSpec(path=_dir(case) / "val.npz", batch_axes={"h0": 1}))
     with pytest.raises(OnnxcalError, match=r"constant 'h0' has size 2 on axis 1, the batch axis"):
@@ -189,3 +189,50 @@ def test_a_csv_table_feeds_the_other_input_beside_a_constant(tmp_path: Path) -> 
     x_csv = np.loadtxt(tmp_path / "val.csv", delimiter=",", skiprows=1, usecols=(0, 1, 2), dtype=np.float32)
     want = (x_csv @ w) * np.float32(2.5)  # ONNX MatMul and Mul, by NumPy
     np.testing.assert_allclose(cap.logits, want, rtol=1e-5, atol=1e-6)
+
+
+# Arrays in memory (the Python API) take the same constants and batch axes as a file, with the same checks.
+
+
+def _in_memory(case: dict[str, object], *names: str) -> dict[str, np.ndarray]:
+    return {k: _arr(case, k) for k in names}
+
+
+@pytest.mark.parametrize("form", ["mapping", "pair"])
+def test_arrays_in_memory_take_a_constant_and_a_batch_axis(case: dict[str, object], form: str) -> None:
+    inputs = _in_memory(case, "x", "h0")
+    arrays = {**inputs, "labels": _arr(case, "labels")} if form == "mapping" else (inputs, _arr(case, "labels"))
+    spec = DataSpec(arrays=arrays, constants={"sr": 8000}, batch_axes={"h0": 1})
+    cap = api.capture(_dir(case) / "model.onnx", spec, batch_size=7)
+    # the reference: the cut model run by hand in onnxruntime (the case fixture)
+    np.testing.assert_allclose(cap.logits[:, 0], _z(case, 8000), rtol=0, atol=1e-5)
+    assert cap.meta.constants == {"sr": "8000"} and cap.meta.batch_axes == {"h0": 1}
+    from_file = api.capture(_dir(case) / "model.onnx",
+                            DataSpec(path=_dir(case) / "val.npz", constants={"sr": 8000}, batch_axes={"h0": 1}))
+    np.testing.assert_array_equal(cap.logits, from_file.logits)
+
+
+def test_a_single_number_among_arrays_in_memory_is_a_constant(case: dict[str, object]) -> None:
+    arrays = {**_in_memory(case, "x", "h0"), "sr": np.int64(16000), "labels": _arr(case, "labels")}
+    cap = api.capture(_dir(case) / "model.onnx", DataSpec(arrays=arrays, batch_axes={"h0": 1}))
+    np.testing.assert_allclose(cap.logits[:, 0], _z(case, 16000), rtol=0, atol=1e-5)
+
+
+def test_arrays_in_memory_get_the_refusals_of_a_file(case: dict[str, object]) -> None:
+    model = _dir(case) / "model.onnx"
+    x, h0, y = _arr(case, "x"), _arr(case, "h0"), _arr(case, "labels")
+    # each refusal is the path form's, checked on the same arrays saved in val.npz
+    for arrays, extra, message in [
+        ({"x": x, "h0": h0, "labels": y}, {"constants": {"sr": 16000}},
+         r"input 'h0' has shape \[1, N, 3\] in the model, samples on axis 1"),
+        ({"x": x, "h0": h0, "labels": y}, {"constants": {"sr": 1, "nope": 2}, "batch_axes": {"h0": 1}},
+         r"names 'nope', which is not a model input"),
+        ({"x": x, "h0": h0, "labels": y}, {"constants": {"sr": 1}, "batch_axes": {"h0": 5}},
+         r"h0=5 is out of range: input 'h0' has rank 3"),
+        ({"x": x, "h0": h0, "labels": y}, {"constants": {"sr": 1, "h0": "zeros"}, "batch_axes": {"h0": 1}},
+         r"input 'h0' is given both in"),
+    ]:
+        with pytest.raises(OnnxcalError, match=message):
+            api.capture(model, DataSpec(arrays=arrays, **extra))
+        with pytest.raises(OnnxcalError, match=message):
+            api.capture(model, DataSpec(path=_dir(case) / "val.npz", **extra))

@@ -215,3 +215,11 @@ def test_verify_reference_has_no_zero_over_zero_and_a_nan_output_fails():
     assert not checks["reference"].passed and checks["reference"].value == np.inf
     checks = {c.name: c for c in compare(ref, z, 1.0, "sigmoid", "float32", (Normalize(),))}
     assert checks["reference"].passed and checks["row-sums"].passed and checks["argmax"].passed
+
+
+def test_progress_hears_the_fit_and_every_replicate(data):
+    calls: list[tuple[str, int, int]] = []
+    summarize(data[0], data[1], {"fit_as": "sigmoid-l1"}, FitOptions(bootstrap=4),
+              progress=lambda stage, done, total: calls.append((stage, done, total)))
+    assert calls[0] == ("fitting", 0, 1) and calls[1] == ("fitting", 1, 1)
+    assert calls[2:] == [("bootstrap", i, 4) for i in range(5)]

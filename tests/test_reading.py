@@ -119,10 +119,10 @@ def test_probabilities_read_as_logits_are_caught_by_the_data(tmp_path):
 def test_output_holds_is_checked_against_the_data(tmp_path):
     val, _ = data(tmp_path)
     probs = save_model(unknown_softmax(), tmp_path / "p.onnx")
-    with pytest.raises(OnnxcalError, match="--output-holds logits: .* they hold probabilities, not logits"):
+    with pytest.raises(OnnxcalError, match="output_holds logits: .* they hold probabilities, not logits"):
         api.capture(probs, val, output_holds="logits")
     logits = save_model(_model([], [("fc_out", 1, ["N", K])]), tmp_path / "z.onnx")
-    with pytest.raises(OnnxcalError, match="--output-holds probabilities: .* only 0 of 256 rows"):
+    with pytest.raises(OnnxcalError, match="output_holds probabilities: .* only 0 of 256 rows"):
         api.capture(logits, val, output_holds="probabilities")
     softmax = save_model(softmax_model(), tmp_path / "s.onnx")
     with pytest.raises(OnnxcalError, match="comes from Softmax, so it holds probabilities, not logits"):
@@ -474,7 +474,7 @@ def test_calibrating_two_heads_one_after_the_other_and_verifying_both(tmp_path):
     model = save_model(two_heads(), tmp_path / "m.onnx")
     val, _ = data(tmp_path)
     api.calibrate(model, val, tmp_path / "a.onnx", output="probs_a", options=NO_BOOT)
-    with pytest.raises(OnnxcalError, match="already calibrated.*another output with --output"):
+    with pytest.raises(OnnxcalError, match="already calibrated.*another output with output$"):
         api.calibrate(tmp_path / "a.onnx", val, tmp_path / "x.onnx", output="probs_a", options=NO_BOOT)
     second = api.calibrate(tmp_path / "a.onnx", val, tmp_path / "ab.onnx", output="probs_b", options=NO_BOOT)
     assert second.verification.passed, second.verification.failed

@@ -416,13 +416,13 @@ HINTED_NAME = "calibrated_probabilities"
 def test_no_run_writes_a_wrong_model(fx, workdir):
     """(e) calibrate may refuse (OnnxcalError, or a failed verify and no file), never write a wrong model.
 
-    A refusal whose hint is to choose another name with --output-name is
+    A refusal whose hint is to choose another name with output_name (--output-name) is
     followed, as a user would, and that run is held to the same rule.
     """
     try:
         result, written = calibrated(fx, workdir)
     except OnnxcalError as exc:
-        if "--output-name" not in str(exc):
+        if "output_name" not in str(exc):  # the api names the keyword (errors.keyword_errors)
             return
         out = workdir / f"{fx.name}_hinted.onnx"
         options = {"output": fx.output_option, **fx.calibrate_options}

@@ -19,7 +19,7 @@ from .._paths import one_command
 from ..capture import CPU, Capture, ProgressFn, RunOptions, finite_mask
 from ..data import Dataset, DataSpec
 from ..decisions.plan import NO_DECISIONS, DecisionOptions, Decisions
-from ..errors import OnnxcalError
+from ..errors import OnnxcalError, keyword_errors
 from ..fit import FitOptions, FitSummary
 from ..graph import Record
 from ..report import FORMATS, ReportResult
@@ -44,7 +44,7 @@ from .common import (
 )
 from .models import models_in_memory
 from .patching import PatchOptions, PatchResult
-from .reporting import capture_names, report_files, report_targets
+from .reporting import WRITING, capture_names, report_files, report_targets
 from .sampling import VERIFY_ROWS, subset, verification_sample
 
 
@@ -121,10 +121,10 @@ def _capture_finite(source: _Source, patching: PatchOptions, drop: bool) -> _Cap
     return _Captured(cap, keep, kept, dropped)
 
 
-def _fit_captured(seen: _Captured, options: FitOptions) -> FitSummary:
+def _fit_captured(seen: _Captured, options: FitOptions, progress: ProgressFn | None) -> FitSummary:
     """The fit of the kept rows, with the capture's notes and the note on dropped rows."""
     check_bins_memory(options.n_bins, seen.cap.logits.shape[1])
-    summary = summarize_capture(seen.cap, options)
+    summary = summarize_capture(seen.cap, options, progress)
     for note in (*seen.cap.notes, seen.dropped):
         summary = with_note(summary, note)
     return summary
@@ -203,6 +203,7 @@ def check_verify_rows(verify_rows: int | None) -> int | None:
     return verify_rows
 
 
+@keyword_errors
 @models_in_memory("model_path")
 @one_command
 def calibrate(
@@ -274,7 +275,7 @@ def calibrate(
     source = _Source(model, model_path, sha, dataset, run, progress)
     seen = _capture_finite(source, patching, drop_nonfinite)
     warn_nonfinite_inputs(seen.full, dataset.source)
-    summary = deciding.baked_summary(_fit_captured(seen, options), decisions, to_decide.separate is not None)
+    summary = deciding.baked_summary(_fit_captured(seen, options, progress), decisions, to_decide.separate is not None)
     patched, record, result, chosen = _patch_and_check(source, patching, seen, summary, to_decide, verify_rows)
     written = PatchResult(path=str(out), record=record) if result.passed else None
     files: dict[Path, bytes | Writer] = (
@@ -282,8 +283,11 @@ def calibrate(
     )
     written_report = None
     if report is not None:
+        told = progress or (lambda stage, done, total: None)
+        told(WRITING, 0, 1)  # its plots take a second or more
         report_content, written_report = _report_files(report, out, external, patched, seen.cap, summary, result)
         files.update(report_content)
+        told(WRITING, 1, 1)
     # the Mapping's key type is invariant: a dict keyed by Path is the str | PathLike keys it accepts
     atomic_write_files(cast("dict[str | os.PathLike[str], bytes | Writer]", files))
     return CalibrateResult(summary=summary, patch=written, verification=result, report=written_report,

@@ -15,7 +15,7 @@ from .. import reading as _reading
 from .._limits import DEFAULT_MAX_MODEL_BYTES, MAX_BINS, check_bins_memory, check_range
 from .._paths import check_output_path, one_command
 from ..capture import CPU, Capture, ProgressFn, load_captures, nonfinite_logits
-from ..errors import OnnxcalError, OnnxcalWarning
+from ..errors import OnnxcalError, OnnxcalWarning, keyword_errors
 from ..fit import T_MAX, T_MIN, FitOptions, FitSummary, save_fit, summarize
 from ..graph import ModelInfo
 from ..scaling import METHODS, MULTILABEL_MODES, PENALISED_METHODS
@@ -35,6 +35,7 @@ from .common import (
 from .models import models_in_memory
 
 
+@keyword_errors
 @models_in_memory("model_path")
 def inspect(
     model_path: str | os.PathLike[str] | onnx.ModelProto, *, max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES
@@ -50,6 +51,7 @@ def inspect(
     return graph.describe(model, model_path, graph.model_sha256(model_path), external)
 
 
+@keyword_errors
 @models_in_memory("model_path")
 @one_command
 def capture(
@@ -172,6 +174,7 @@ def check_fit_options(options: FitOptions) -> FitOptions:
     return options
 
 
+@keyword_errors
 @one_command
 def fit(
     source: Capture | str | os.PathLike[str] | Sequence[str | os.PathLike[str]],
@@ -180,6 +183,7 @@ def fit(
     force: bool = False,
     options: FitOptions = FitOptions(),
     drop_nonfinite: bool = False,
+    progress: ProgressFn | None = None,
 ) -> FitSummary:
     """Fit a calibration map to captured logits; return (and write) the summary.
 
@@ -197,6 +201,10 @@ def fit(
     drop_nonfinite : bool
         Leave out the samples whose logits hold NaN or Inf (a note says how
         many); by default they are refused, with their count and first rows.
+    progress : callable, optional
+        ``progress(stage, done, total)`` as the fit goes: ``"fitting"`` (its
+        passes or steps) and ``"bootstrap"`` (replicates done, out of
+        ``options.bootstrap``); see :func:`onnxcal.fit.summarize`.
     """
     check_fit_options(options)
     inputs = [] if isinstance(source, Capture) else _capture_paths(source)
@@ -206,17 +214,17 @@ def fit(
     where = cap.meta.data_source if isinstance(source, Capture) else ", ".join(map(str, inputs))
     cap, dropped = finite_capture(cap, where, drop_nonfinite)
     check_bins_memory(options.n_bins, cap.logits.shape[1])
-    summary = with_note(summarize_capture(cap, options), dropped)
+    summary = with_note(summarize_capture(cap, options, progress), dropped)
     if out is not None:
         save_fit(out, summary)
     return summary
 
 
-def summarize_capture(cap: Capture, options: FitOptions) -> FitSummary:
+def summarize_capture(cap: Capture, options: FitOptions, progress: ProgressFn | None = None) -> FitSummary:
     """``fit.summarize`` on a capture, with the checks that need what the fit does not know:
     how the capture read the logits (``reading.fit_read_logits``) and the search bounds of T.
     The rows of a sample (a per-position or per-pixel output) are split and resampled together."""
-    fitted = summarize(cap.logits, cap.labels, cap.meta.to_dict(), options, groups=cap.groups())
+    fitted = summarize(cap.logits, cap.labels, cap.meta.to_dict(), options, groups=cap.groups(), progress=progress)
     summary = _reading.fit_read_logits(fitted)
     bound = _bound_warnings(summary.intervals)
     return replace(summary, warnings=(*summary.warnings, *bound)) if bound else summary

@@ -28,7 +28,7 @@ from ..capture import (
     without_nonfinite,
 )
 from ..capture import capture as capture_logits
-from ..data import LABELS_KEY, Dataset, DataSpec, check_selection, load_dataset
+from ..data import Dataset, DataSpec, check_selection, load_dataset
 from ..errors import OnnxcalError, OnnxcalWarning
 from ..fit import FitSummary
 
@@ -84,14 +84,7 @@ def data_spec(data: DataSource) -> DataSpec:
         arrays = cast("dict[str | None, object]", dict(data))
         spec = DataSpec(arrays=arrays)
     elif isinstance(data, tuple) and len(data) == 2:
-        inputs, labels = data
-        if isinstance(inputs, Mapping):
-            if LABELS_KEY in inputs:
-                raise OnnxcalError(f"the inputs of (inputs, labels) hold '{LABELS_KEY}' too",
-                                   f"drop '{LABELS_KEY}' from the inputs, or pass the mapping alone")
-            spec = DataSpec(arrays={**inputs, LABELS_KEY: labels})
-        else:
-            spec = DataSpec(arrays={None: inputs, LABELS_KEY: labels})
+        spec = DataSpec(arrays=data)  # (inputs, labels): data.arrays.memory_arrays reads it
     else:
         raise OnnxcalError(
             f"a validation set cannot be a {type(data).__name__}",

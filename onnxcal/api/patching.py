@@ -18,7 +18,7 @@ from .._numeric import check_in_dtype
 from .._paths import one_command
 from ..data import DataSpec
 from ..decisions.plan import NO_DECISIONS, DecisionOptions, Decisions
-from ..errors import OnnxcalError
+from ..errors import OnnxcalError, keyword_errors
 from ..fit import FitSummary, load_fit
 from ..graph import Record
 from ..scaling import Scaling
@@ -146,6 +146,7 @@ def _resolve_scaling(
     return summary.scaling, summary.to_dict()
 
 
+@keyword_errors
 @models_in_memory("model_path")
 @one_command
 def patch(

@@ -16,8 +16,8 @@ from .._files import Writer, atomic_write_files
 from .._limits import DEFAULT_MAX_MODEL_BYTES, MAX_BINS, check_bins_memory, check_range
 from .._numeric import check_in_dtype, max_abs
 from .._paths import check_not_input, check_output_path, check_writable, one_command, require_file
-from ..capture import Capture, load_captures
-from ..errors import OnnxcalError
+from ..capture import Capture, ProgressFn, load_captures
+from ..errors import OnnxcalError, keyword_errors
 from ..fit import FitSummary, load_fit, summary_from_dict
 from ..graph import Record
 from ..l1_sigmoid import capture_kind
@@ -175,6 +175,7 @@ def _calibration_of(
                         record.decisions)
 
 
+@keyword_errors
 @models_in_memory("model")
 @one_command
 def report(
@@ -190,6 +191,7 @@ def report(
     force: bool = False,
     drop_nonfinite: bool = False,
     max_model_bytes: int | str = DEFAULT_MAX_MODEL_BYTES,
+    progress: ProgressFn | None = None,
 ) -> ReportResult:
     """Write a report on a calibration into the directory ``out``.
 
@@ -225,6 +227,9 @@ def report(
         report); by default they are refused.
     max_model_bytes : int or str, default 8 GiB
         A larger ``model`` file is refused unread.
+    progress : callable, optional
+        ``progress("writing the report", done, 1)`` before and after the
+        figures and plots are computed and written (a second or more).
 
     Returns
     -------
@@ -249,13 +254,21 @@ def report(
     summary = cal.summary
     check_bins_memory(n_bins or (summary.options.n_bins if summary is not None else DEFAULT_BINS), cap.logits.shape[1])
     names = _class_names(class_names, cap.logits.shape[1]) or capture_names(cap)
+    told = progress or (lambda stage, done, total: None)
+    told(WRITING, 0, 1)
     content = build_report(
         cap, cal.scaling, summary=summary, class_names=names, n_bins=n_bins, calibrated=cal.calibrated,
         decisions=cal.decisions,
     )
     if dropped is not None:
         content["notes"] = [*content.get("notes", []), dropped]
-    return _write_report(out, content, formats)
+    written = _write_report(out, content, formats)
+    told(WRITING, 1, 1)
+    return written
+
+
+WRITING = "writing the report"
+"""The stage ``progress`` is told about while the report is computed and written."""
 
 
 def _record_of(model_path: str | os.PathLike[str], limit: int) -> Record:

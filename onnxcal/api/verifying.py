@@ -30,7 +30,7 @@ from ..capture import (
     plan_run,
 )
 from ..data import Dataset, DataSpec, recorded_feeding
-from ..errors import OnnxcalError
+from ..errors import OnnxcalError, keyword_errors
 from ..graph import Record
 from ..junit import junit_xml
 from ..latency import LATENCY_BUDGET, LATENCY_CHUNKS, latency_ratio
@@ -445,6 +445,7 @@ def _latency_reference(target: _Target, ref: _Reference) -> onnx.ModelProto:
     return recover_unpatched(target.model, target.path)
 
 
+@keyword_errors
 @models_in_memory("patched_path", "original")
 @one_command
 def verify(

@@ -134,7 +134,11 @@ def _what_stopped(args: Sequence[str]) -> str:
     command = next((a for a in args if a in COMMANDS), None)
     if command is None:
         return ""
-    return f" ({command} stopped{' while ' + console.stage[-1] if console.stage else ''})"
+    if not console.stage:
+        return f" ({command} stopped)"
+    now = console.stage[-1]  # "capturing logits", "fitting"; or a stage named by a noun, "vector: bootstrap"
+    when = f"while {now}" if now.split()[0].endswith("ing") else f"during '{now}'"
+    return f" ({command} stopped {when})"
 
 
 def _report_failure(exc: BaseException, debug: bool, written: Sequence[Path], args: Sequence[str] = ()) -> int:

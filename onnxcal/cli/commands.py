@@ -121,11 +121,6 @@ def capture(
     say(f"captured {cap.meta.n} x {cap.meta.num_classes} logits from '{cap.meta.scores}' -> {out_path}")
 
 
-def _fit_stage(bootstrap: int) -> str:
-    """The fit stage as the progress bar names it (it has no counts: elapsed time is shown)."""
-    return f"fitting ({bootstrap} bootstrap replicates)" if bootstrap else "fitting"
-
-
 def fit(
     logits: Annotated[
         list[Path],
@@ -155,8 +150,9 @@ def fit(
     from ..fit import FitOptions
 
     options = FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins)
-    with progress_bar(quiet or as_json, start=_fit_stage(bootstrap)):
-        summary = api.fit(logits, out=out_path, force=force, options=options, drop_nonfinite=drop_nonfinite)
+    with progress_bar(quiet or as_json) as progress:
+        summary = api.fit(logits, out=out_path, force=force, options=options, drop_nonfinite=drop_nonfinite,
+                          progress=progress)
     if as_json:
         print_json(summary.to_dict())
         return
@@ -407,19 +403,21 @@ def report(
     """
     from .. import api
 
-    result = api.report(
-        captures,
-        out_dir,
-        temperature=temperature,
-        fit=fit_file,
-        model=model,
-        formats=formats,
-        class_names=class_names,
-        n_bins=bins,
-        force=force,
-        drop_nonfinite=drop_nonfinite,
-        max_model_bytes=max_model_bytes,
-    )
+    with progress_bar(quiet) as progress:
+        result = api.report(
+            captures,
+            out_dir,
+            temperature=temperature,
+            fit=fit_file,
+            model=model,
+            formats=formats,
+            class_names=class_names,
+            n_bins=bins,
+            force=force,
+            drop_nonfinite=drop_nonfinite,
+            max_model_bytes=max_model_bytes,
+            progress=progress,
+        )
     if not quiet:
         for note in result.content["notes"]:
             if note.startswith("dropped "):
@@ -470,7 +468,8 @@ def calibrate(
     verify_rows: Annotated[
         int,
         typer.Option("--verify-rows", min=1, metavar="N", rich_help_panel=CHECKS_PANEL,
-                     help="Check the patched model on at most N rows, stratified by label (verify checks all)."),
+                     help="Check the patched model on at most N rows (N >= 1), stratified by label "
+                     "(verify checks all)."),
     ] = VERIFY_ROWS,
     verify_all: Annotated[
         bool, typer.Option("--verify-all", help="Check the patched model on every row, not a sample.",
@@ -491,7 +490,7 @@ def calibrate(
     from .. import api
     from ..fit import FitOptions
 
-    with progress_bar(quiet or as_json, then={"capturing logits": _fit_stage(bootstrap)}) as progress:
+    with progress_bar(quiet or as_json) as progress:
         result = api.calibrate(
             model,
             data,

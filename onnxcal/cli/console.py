@@ -194,29 +194,45 @@ def _rich_table(grid: Grid) -> Any:
     return table
 
 
+def unit(description: str) -> str:
+    """What a stage counts: samples when it runs the model, replicates for a bootstrap, else steps.
+
+    >>> unit("capturing logits"), unit("vector: bootstrap"), unit("fitting")
+    ('samples', 'replicates', '')
+    """
+    if description.startswith(("capturing", "running")):
+        return "samples"
+    return "replicates" if description.endswith("bootstrap") else ""
+
+
 def _rate_column() -> Any:
     from rich.progress import ProgressColumn
     from rich.text import Text
 
     class RateColumn(ProgressColumn):
-        """Samples per second."""
+        """Samples (or replicates) per second; nothing for a stage counted in steps."""
 
         def render(self, task: Any) -> Text:
+            what = unit(task.description)
+            if not what:
+                return Text("")
             speed = task.finished_speed or task.speed
-            return Text(f"{speed:,.0f} samples/s" if speed else "- samples/s")
+            if not speed:  # too quick to measure ("" once done), or not yet measured
+                return Text("" if task.finished else f"- {what}/s")
+            return Text(f"{speed:,.0f} {what}/s")
 
     return RateColumn()
 
 
 @contextlib.contextmanager
-def progress_bar(quiet: bool, start: str | None = None, then: dict[str, str] | None = None) -> Iterator[ProgressFn]:
-    """A rich progress bar on stderr, fed by the stages' progress callback.
-
-    ``start`` names a stage without counts shown (elapsed time, a pulsing
-    bar) from the start, e.g. a fit; ``then`` maps a counted stage to the
-    stage without counts that follows it once it completes (the fit after
-    the capture in ``calibrate``), shown until the next counted stage. With
-    ``quiet`` nothing is drawn, but the stage is still noted (:data:`stage`).
+def progress_bar(quiet: bool) -> Iterator[ProgressFn]:
+    """A rich progress bar on stderr, fed by the stages' progress callback
+    ``progress(stage, done, total)``: one bar per stage (capturing logits,
+    fitting, bootstrap, running the patched model, ...), drawn from the
+    stage's first call. On a terminal the bars are redrawn as they go;
+    elsewhere (a pipe, a CI log) rich prints each bar once, complete, when
+    the run ends. With ``quiet`` nothing is drawn, but the stage is still
+    noted (:data:`stage`) for the line an interruption prints.
     """
     stage.clear()
     if quiet:
@@ -246,39 +262,20 @@ def progress_bar(quiet: bool, start: str | None = None, then: dict[str, str] | N
     )
     tasks: dict[str, Any] = {}
     shown: dict[str, float] = {}
-    pending: list[Any] = []  # the stage without counts being shown
-
-    def uncounted(description: str) -> None:
-        if not tasks:
-            bar.start()
-        stage.append(description)
-        tasks[description] = bar.add_task(description, total=None)
-        pending.append(tasks[description])
-
-    def finish_pending() -> None:
-        while pending:
-            task = pending.pop()
-            bar.update(task, total=1, completed=1)
 
     def update(description: str, done: int, total: int) -> None:
-        if not tasks:  # start drawing at the first batch, not before
+        if not tasks:  # start drawing at the first call, not before
             bar.start()
         if description not in tasks:
-            finish_pending()
             stage.append(description)
             tasks[description] = bar.add_task(description, total=total)
         now = time.monotonic()
         if done >= total or now - shown.get(description, 0.0) >= 0.05:  # cheap on tiny batches
             shown[description] = now
             bar.update(tasks[description], completed=done)
-        if done >= total and then and description in then and then[description] not in tasks:
-            uncounted(then[description])
 
-    if start is not None:
-        uncounted(start)
     try:
         yield update
-        finish_pending()
     except BaseException:
         bar.live.transient = True  # a failure: its one line, without the bars above it
         raise

@@ -20,14 +20,12 @@ from typer.core import TyperCommand
 from ..errors import OnnxcalError
 from .defaults import (
     ACTIVATIONS,
-    AUTO,
     COMPUTE_DTYPES,
     CPU,
     DEFAULT_BATCH,
     HOLDS,
     IMAGE_OPTIONS,
     INTERPOLATIONS,
-    METHODS,
     MULTILABEL_MODES,
     OPTIMIZATION_LEVELS,
     choices,
@@ -134,12 +132,12 @@ MethodOpt = Annotated[
     str,
     typer.Option(
         "--method",
-        help="temperature (softmax(z/T), or sigmoid(z/T) for one logit), vector "
+        help="One of: temperature (softmax(z/T), or sigmoid(z/T) for one logit), vector "
         "(softmax(w*z+b), per class), platt (sigmoid(a*z+b), one logit), matrix (softmax(W z+b)), dirichlet "
         "(softmax(W log p+b)), beta (one logit), isotonic, histogram (binning), ensemble-temperature, ovr-platt "
         "(one-vs-rest, renormalised), or auto (every applicable method fitted, the simplest within the best "
         "held-out NLL's bootstrap interval chosen). isotonic and histogram can change the ranking and the argmax.",
-        metavar=choices((*METHODS, AUTO)),
+        metavar="METHOD",  # the eleven choices, as a|b|c, would not fit a narrow terminal's line: the help lists them
         rich_help_panel=FIT_PANEL,
     ),
 ]
@@ -492,7 +490,7 @@ class HelpCommand(TyperCommand):
             if param.param_type_name == "argument":
                 arguments.append((param.metavar, param.help or ""))
                 continue
-            record = param.get_help_record(ctx)
+            record = _help_record(param, ctx)
             if record is not None:
                 panels.setdefault(getattr(param, "rich_help_panel", None) or PANELS[0], []).append(record)
         if arguments:
@@ -501,3 +499,18 @@ class HelpCommand(TyperCommand):
         for name in sorted(panels, key=lambda p: PANELS.index(p) if p in PANELS else len(PANELS)):
             with formatter.section(name if name == PANELS[0] else f"{name} options"):
                 formatter.write_dl(panels[name])
+
+
+def _help_record(param: Any, ctx: Any) -> tuple[str, str] | None:
+    """The option's help line without the range hint typer adds for ``min=``/``max=`` ("x>=1"):
+    the help text says the range in words, and the bounds still apply when the value is parsed."""
+    bounds = getattr(param, "min", None), getattr(param, "max", None)
+    if bounds == (None, None):
+        record: tuple[str, str] | None = param.get_help_record(ctx)
+        return record
+    param.min = param.max = None
+    try:
+        record = param.get_help_record(ctx)
+    finally:
+        param.min, param.max = bounds
+    return record

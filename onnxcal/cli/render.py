@@ -131,10 +131,14 @@ def describe_fit(summary: FitSummary) -> str:
 
 def render_fit(summary: FitSummary) -> None:
     from ..metrics import METRIC_LABELS
+    from ..report.tables import MARK, interval_footnote, outside_interval
 
     b, a = summary.before, summary.after
     where = _figures_on(summary)
     intervals = (summary.intervals or {}).get("after")
+    # as in the report: an estimate outside its own interval is marked, and a note says why that is no error
+    marks = {"metrics": {"after_interval": intervals, "after": a.to_dict(), "n_bins": b.n_bins}}
+    marked = set(outside_interval(marks)) if intervals is not None else set()
     columns = [Column("metric"), Column("before", right=True), Column("after", right=True)]
     if intervals is not None:
         columns.append(Column("after:\n95% interval", right=True))
@@ -145,7 +149,7 @@ def render_fit(summary: FitSummary) -> None:
     for key, label in METRIC_LABELS.items():
         row = [label.format(bins=b.n_bins), f"{getattr(b, key):.4f}", f"{getattr(a, key):.4f}"]
         if intervals is not None:
-            row.append(_interval(intervals.get(key)))
+            row.append(_interval(intervals.get(key)) + (f" {MARK}" if key in marked else ""))
         if summary.fit_part is not None:
             row += [f"{getattr(summary.fit_part[k], key):.4f}" for k in ("before", "after")]
         table.add_row(*row)
@@ -154,6 +158,8 @@ def render_fit(summary: FitSummary) -> None:
         render_choice(summary.choice)
     for note in summary.notes:
         say(f"note: {note}")
+    if marked:
+        say(f"note: {interval_footnote(marks)}")
     warn(summary.warnings)
 
 

@@ -205,10 +205,17 @@ MEMORY_SOURCE = "the arrays given"
 
 
 def load_arrays(
-    given: Mapping[str | None, object], model_inputs: Sequence[TensorSpec], *, require_labels: bool = True
+    given: Mapping[str | None, object] | tuple[Any, Any],
+    model_inputs: Sequence[TensorSpec],
+    *,
+    require_labels: bool = True,
+    batch_axes: Mapping[str, int] | None = None,
+    constants: Collection[str] = (),
 ) -> Dataset:
     """A set given in memory: model input name -> array, plus ``labels``; or one array under the
-    name ``None`` for a one-input model. The same checks as an ``.npz`` of those arrays.
+    name ``None`` for a one-input model; or an ``(inputs, labels)`` pair (:func:`memory_arrays`).
+    The same checks as an ``.npz`` of those arrays (``batch_axes`` and ``constants`` as for
+    :func:`load_npz`).
 
     Raises
     ------
@@ -217,7 +224,7 @@ def load_arrays(
         ``labels`` when required, arrays of different lengths.
     """
     arrays: dict[str, np.ndarray] = {}
-    for key, value in given.items():
+    for key, value in memory_arrays(given).items():
         name = key if key is not None else _only_input(model_inputs)
         if not isinstance(name, str):
             raise OnnxcalError(f"the arrays given are keyed by {type(key).__name__} {key!r}",
@@ -229,11 +236,30 @@ def load_arrays(
                            f"add the class labels under '{LABELS_KEY}', or pass (inputs, labels)")
     if not arrays:
         raise OnnxcalError(f"{MEMORY_SOURCE} hold no input arrays", "add one array per model input, keyed by its name")
-    _same_lengths(arrays, labels, MEMORY_SOURCE)
+    arrays = samples_first(arrays, batch_axes or {}, MEMORY_SOURCE)
+    _same_lengths({k: a for k, a in arrays.items() if k not in constants}, labels, MEMORY_SOURCE, model_inputs,
+                  batch_axes)
     parts = [(name, _array_fingerprint(a)) for name, a in sorted(arrays.items())]
     if labels is not None:
         parts.append((LABELS_KEY, _array_fingerprint(labels)))
     return Dataset(inputs=arrays, labels=labels, source=MEMORY_SOURCE, data_id=combine(parts))
+
+
+def memory_arrays(given: Mapping[str | None, object] | tuple[Any, Any]) -> Mapping[str | None, object]:
+    """A set in memory as one mapping: an ``(inputs, labels)`` pair (inputs a mapping of input
+    name to array, or one array for a one-input model) becomes inputs plus ``labels``."""
+    if not isinstance(given, tuple):
+        return given
+    if len(given) != 2:
+        raise OnnxcalError(f"{MEMORY_SOURCE} are a tuple of {len(given)}, not an (inputs, labels) pair",
+                           "give (inputs, labels), or a mapping of input name to array with 'labels'")
+    inputs, labels = given
+    if not isinstance(inputs, Mapping):
+        return {None: inputs, LABELS_KEY: labels}
+    if LABELS_KEY in inputs:
+        raise OnnxcalError(f"the inputs of (inputs, labels) hold '{LABELS_KEY}' too",
+                           f"drop '{LABELS_KEY}' from the inputs, or pass the mapping alone")
+    return {**inputs, LABELS_KEY: labels}
 
 
 def _only_input(model_inputs: Sequence[TensorSpec]) -> str:

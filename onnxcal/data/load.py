@@ -101,7 +101,10 @@ def _load_memory(
         raise OnnxcalError("labels are given as a file and the validation set as arrays",
                            "add the labels to the arrays under 'labels'")
     assert spec.arrays is not None
-    return _checked(load_arrays(spec.arrays, model_inputs, require_labels=require_labels), spec, model_inputs, classes)
+    check_feeding(spec, model_inputs)
+    ds = load_arrays(spec.arrays, model_inputs, require_labels=require_labels, batch_axes=spec.batch_axes,
+                     constants=tuple(spec.constants))
+    return _checked(ds, spec, model_inputs, classes)
 
 
 def _is_csv(path: Path | None) -> bool:

@@ -321,10 +321,12 @@ class DataSpec:
     batch_axes : mapping of str to int
         The axis of an input's array that holds the samples, when not 0
         (``--batch-axis``; e.g. 1 for a recurrent state 1 x N x H).
-    arrays : mapping of str to array, or None
+    arrays : mapping of str to array, (inputs, labels) pair, or None
         A set in memory, checked as an ``.npz`` of the same arrays would be:
         model input name -> array, plus ``labels`` (the key ``None`` names
-        the only input of a one-input model).
+        the only input of a one-input model); or a pair of such a mapping
+        (or one array, for a one-input model) and the labels. ``constants``,
+        ``batch_axes``, ``classes`` and ``selection`` apply as to a file.
     """
 
     path: str | os.PathLike[str] | None = None
@@ -338,7 +340,7 @@ class DataSpec:
     selection: Selection = field(default_factory=Selection)
     constants: Mapping[str, str | os.PathLike[str] | int | float | np.ndarray] = field(default_factory=dict)
     batch_axes: Mapping[str, int] = field(default_factory=dict)
-    arrays: Mapping[str | None, object] | None = None
+    arrays: Mapping[str | None, object] | tuple[Any, Any] | None = None
 
     def files(self) -> list[Path]:
         """Every file or folder this spec reads (for output-path checks)."""

@@ -22,6 +22,7 @@ scaling), the refit on all rows, and bootstrap intervals from exact refits.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 
 import numpy as np
 
@@ -214,18 +215,22 @@ def check_options(labels: np.ndarray, options: FitOptions) -> None:
 def summarize_l1(
     logits: np.ndarray, labels: np.ndarray, capture_meta: dict[str, object], options: FitOptions,
     *, threads: int | None = None, groups: np.ndarray | None = None,
+    progress: Callable[[str, int, int], None] | None = None,
 ) -> FitSummary:
     """``fit.summarize`` for L1-normalised sigmoids: holdout, fit, scores, bootstrap, refit on all
-    (``groups``: the sample of each row, to split and resample whole samples)."""
+    (``groups``: the sample of each row, to split and resample whole samples; ``progress`` as for
+    ``fit.summarize``)."""
     check_options(labels, options)
     with one_blas_thread():
-        return _summarize(logits, labels, capture_meta, options, threads, groups)
+        return _summarize(logits, labels, capture_meta, options, threads, groups, progress)
 
 
 def _summarize(
     logits: np.ndarray, labels: np.ndarray, capture_meta: dict[str, object], options: FitOptions, threads: int | None,
-    groups: np.ndarray | None = None,
+    groups: np.ndarray | None = None, progress: Callable[[str, int, int], None] | None = None,
 ) -> FitSummary:
+    told = progress or (lambda stage, done, total: None)
+    told("fitting", 0, 1)
     n = len(logits)
     notes: list[str] = []
     warnings = data_warnings(labels, logits.shape[1])
@@ -249,10 +254,12 @@ def _summarize(
         notes.append(
             "--holdout 0: the figures are in-sample (on the data the parameters were fitted on), so optimistic"
         )
+    told("fitting", 1, 1)
     intervals = None
     if options.bootstrap > 0:
         intervals = resample.bootstrap(
-            logits, labels, options, fit_rows, eval_rows, part.scaling, refit=refit, threads=threads, groups=groups
+            logits, labels, options, fit_rows, eval_rows, part.scaling, refit=refit, threads=threads, groups=groups,
+            progress=progress,
         )
         notes.extend(intervals.get("notes", []))
     for w in (*part.warnings, *result.warnings):

@@ -6,6 +6,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from typing import Any
 from warnings import warn
 
@@ -38,6 +39,14 @@ from .temperature import _temperature_result, fit_sigmoid_temperature, fit_tempe
 
 
 AUTO = "auto"  # --method auto: every applicable method, one chosen (fit.auto, onnxcal.choose)
+
+Progress = Callable[[str, int, int], None]
+"""``progress(stage, done, total)``: the fit's stages ("fitting", "bootstrap"), as capture's progress."""
+FITTING = "fitting"
+
+
+def _silent(stage: str, done: int, total: int) -> None:
+    """The progress callback when none is given."""
 
 
 def resolve_kind(logits: np.ndarray, labels: np.ndarray, options: FitOptions) -> str:
@@ -119,30 +128,39 @@ _Scores = tuple[tuple[Metrics, ...], ...]
 
 
 def _fit_and_evaluate(
-    logits: np.ndarray, labels: np.ndarray, options: FitOptions, fit_rows: np.ndarray, eval_rows: np.ndarray
+    logits: np.ndarray, labels: np.ndarray, options: FitOptions, fit_rows: np.ndarray, eval_rows: np.ndarray,
+    progress: Progress = _silent,
 ) -> tuple[FitResult, FitResult, _Scores]:
-    """Fit on the fit part, score both parts before and after, refit on all (any method)."""
+    """Fit on the fit part, score both parts before and after, refit on all (any method);
+    ``progress("fitting", done, 3)`` after each of the three steps."""
+    progress(FITTING, 0, 3)
     if fit_rows is eval_rows:
         result = fit_scaling(logits, labels, options)
+        progress(FITTING, 1, 3)
         before = evaluate(logits, labels, 1.0, options.n_bins)
         after = evaluate(logits, labels, result.scaling, options.n_bins)
+        progress(FITTING, 3, 3)
         return result, result, ((before,), (after,))
     part = fit_scaling(logits, labels, options, rows=fit_rows)
+    progress(FITTING, 1, 3)
     scores = tuple(
         tuple(evaluate(logits, labels, s, options.n_bins, rows=rows) for rows in (fit_rows, eval_rows))
         for s in (1.0, part.scaling)
     )
-    return part, fit_scaling(logits, labels, options, start=part.scaling), scores
+    progress(FITTING, 2, 3)
+    full = fit_scaling(logits, labels, options, start=part.scaling)
+    progress(FITTING, 3, 3)
+    return part, full, scores
 
 
 def _temperature_passes(
     logits: np.ndarray, labels: np.ndarray, options: FitOptions, fit_rows: np.ndarray, eval_rows: np.ndarray,
-    threads: int | None,
+    threads: int | None, progress: Progress = _silent,
 ) -> tuple[FitResult, FitResult, _Scores, Expansion | None]:
     """The same for a multiclass temperature, in three passes (see :mod:`onnxcal.passes`)."""
     scored = fit_and_score(
         logits, labels, fit_rows, eval_rows, options.n_bins, (1.0 / T_MAX, 1.0 / T_MIN), options.bootstrap > 0,
-        threads,
+        threads, progress=progress,
     )
     part, full = (
         _temperature_result(np.array([s.beta]), s.passes, s.converged, "multiclass") for s in (scored.part, scored.full)
@@ -158,6 +176,7 @@ def summarize(
     *,
     threads: int | None = None,
     groups: np.ndarray | None = None,
+    progress: Progress | None = None,
 ) -> FitSummary:
     """Fit on the fit part, score on the held-out part, bootstrap, refit on all.
 
@@ -176,13 +195,19 @@ def summarize(
         per-position or per-pixel output: ``Capture.groups()``): the holdout
         and the bootstrap then take whole samples, and the notes and
         ``split`` say how many.
+    progress : callable, optional
+        ``progress(stage, done, total)`` as the fit goes: ``"fitting"`` (its
+        passes or steps, out of 3) and ``"bootstrap"`` (replicates done, out
+        of ``options.bootstrap``); with ``method="auto"`` each stage is
+        prefixed by the method (``"vector: bootstrap"``).
 
     Returns
     -------
     FitSummary
     """
+    told = progress or _silent
     if capture_meta.get("fit_as") == SIGMOID_L1:  # L1(sigmoid(z / T)): a fit of its own
-        return summarize_l1(logits, labels, capture_meta, options, threads=threads, groups=groups)
+        return summarize_l1(logits, labels, capture_meta, options, threads=threads, groups=groups, progress=told)
     with one_blas_thread():
         if options.method == AUTO:
             kind = resolve_kind(logits, labels, options)
@@ -190,16 +215,19 @@ def summarize(
             def one(  # every candidate on the same split (whole samples with groups)
                 lg: np.ndarray, lb: np.ndarray, meta: dict[str, Any], opts: FitOptions, th: int | None
             ) -> FitSummary:
-                return _summarize(lg, lb, meta, opts, th, groups)
+                def each(stage: str, done: int, total: int) -> None:
+                    told(f"{opts.method}: {stage}", done, total)
+
+                return _summarize(lg, lb, meta, opts, th, groups, each)
 
             chosen: FitSummary = fit_all(logits, labels, capture_meta, options, kind, one, threads)[0]
             return chosen
-        return _summarize(logits, labels, capture_meta, options, threads, groups)
+        return _summarize(logits, labels, capture_meta, options, threads, groups, told)
 
 
 def _summarize(
     logits: np.ndarray, labels: np.ndarray, capture_meta: dict[str, Any], options: FitOptions, threads: int | None,
-    groups: np.ndarray | None = None,
+    groups: np.ndarray | None = None, progress: Progress = _silent,
 ) -> FitSummary:
     kind = resolve_kind(logits, labels, options)
     n = len(logits)
@@ -217,9 +245,11 @@ def _summarize(
     else:
         fit_rows = eval_rows = np.arange(n)
     if kind == "multiclass" and options.method == "temperature":
-        part, result, scores, expansion = _temperature_passes(logits, labels, options, fit_rows, eval_rows, threads)
+        part, result, scores, expansion = _temperature_passes(
+            logits, labels, options, fit_rows, eval_rows, threads, progress
+        )
     else:
-        part, result, scores = _fit_and_evaluate(logits, labels, options, fit_rows, eval_rows)
+        part, result, scores = _fit_and_evaluate(logits, labels, options, fit_rows, eval_rows, progress)
         expansion = None
     if options.holdout > 0:
         (fit_before, before), (fit_after, after) = scores
@@ -235,7 +265,7 @@ def _summarize(
     if options.bootstrap > 0:
         intervals = resample.bootstrap(
             logits, labels, options, fit_rows, eval_rows, part.scaling, refit=fit_scaling, expansion=expansion,
-            threads=threads, groups=groups,
+            threads=threads, groups=groups, progress=progress,
         )
         notes.extend(intervals.get("notes", []))
     for w in (*part.warnings, *result.warnings):

@@ -70,3 +70,20 @@ def test_dropping_nonfinite_rows_fits_as_the_finite_rows_alone(tmp_path):
                                drop_nonfinite=True)
     assert result.patch is not None and result.verification.passed
     assert result.summary.temperature == pytest.approx(clean.temperature, rel=1e-12)
+
+
+def test_fit_and_calibrate_report_progress_of_every_stage(tmp_path):
+    calls: list[tuple[str, int, int]] = []
+
+    def progress(stage: str, done: int, total: int) -> None:
+        calls.append((stage, done, total))
+
+    api.fit(api.capture(DEMO_MODEL, DEMO_VAL), options=FitOptions(bootstrap=12), progress=progress)
+    assert [c for c in calls if c[0] == "bootstrap"] == [("bootstrap", i, 12) for i in range(13)]
+    assert calls[0] == ("fitting", 0, 3) and ("fitting", 3, 3) in calls
+    calls.clear()
+    api.calibrate(DEMO_MODEL, DEMO_VAL, tmp_path / "c.onnx", options=FitOptions(bootstrap=7), progress=progress)
+    stages = [s for i, (s, _, _) in enumerate(calls) if i == 0 or calls[i - 1][0] != s]
+    assert stages[:3] == ["capturing logits", "fitting", "bootstrap"], stages
+    assert "running patched model" in stages[3:]
+    assert [d for s, d, _ in calls if s == "bootstrap"] == list(range(8))

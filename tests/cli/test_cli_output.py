@@ -18,6 +18,7 @@ from conftest import DEMO_MODEL, DEMO_TEST, DEMO_VAL
 
 from onnxcal.cli import console
 from onnxcal.cli.app import COMMANDS
+from onnxcal.cli.defaults import METHODS
 
 ANSI = re.compile(r"\x1b\[[0-9;?]*[A-Za-z]")
 FIGURE = re.compile(r"-?\d+\.\d{3,}")
@@ -115,6 +116,56 @@ def test_quiet_prints_the_result_line_and_the_verdict(tmp_path, run_cli):
     assert r.out == f"wrote 1 report file to {tmp_path / 'rep'}: report.json\n"  # and its grammar
 
 
+def _bars(err: str) -> dict[str, str]:
+    """The progress lines on stderr by stage: {"bootstrap": "20/20 ...", ...}."""
+    lines = [ANSI.sub("", line) for line in err.splitlines()]
+    found = {}
+    stages = "capturing logits|fitting|bootstrap|running patched model|writing the report"
+    for line in lines:
+        m = re.match(rf"^({stages})\s+\S*\s+(\d+/\d+.*)$", line)
+        if m:
+            found[m.group(1)] = m.group(2)
+    return found
+
+
+def test_fit_shows_its_stages_and_counts_the_bootstrap_on_stderr(capture_file, run_cli, tmp_path):
+    # stderr is not a terminal here: each bar is printed once, complete, as for capture
+    r = run_cli("fit", capture_file, "--bootstrap", "20")
+    assert r.code == 0, r.err
+    bars = _bars(r.err)
+    assert bars["bootstrap"].startswith("20/20 ")  # (its rate, replicates/s, when rich could time it)
+    assert bars["fitting"].startswith("3/3")
+    assert "samples/s" not in r.err  # a fit counts replicates and passes, not samples
+    assert not _bars(r.out) and "━" not in r.out  # progress goes to stderr only
+    r = run_cli("calibrate", DEMO_MODEL, "--data", DEMO_VAL, "--out", tmp_path / "c.onnx", "--bootstrap", "7",
+                "--report", tmp_path / "rep")
+    bars = _bars(r.err)
+    assert bars["capturing logits"].startswith("2000/2000") and bars["bootstrap"].startswith("7/7 ")
+    assert list(bars)[:3] == ["capturing logits", "fitting", "bootstrap"]
+    assert bars["writing the report"].startswith("1/1")
+    for quiet in (["-q"], ["--json"]):  # no progress at all
+        r = run_cli("fit", capture_file, "--bootstrap", "20", *quiet)
+        assert r.code == 0 and r.err == "", r.err
+
+
+def test_report_shows_its_writing_on_stderr(capture_file, run_cli, tmp_path):
+    r = run_cli("report", capture_file, "--out", tmp_path / "rep", "--temperature", "2")
+    assert r.code == 0, r.err
+    assert _bars(r.err)["writing the report"].startswith("1/1") and not _bars(r.out)
+    r = run_cli("report", capture_file, "--out", tmp_path / "rep2", "--temperature", "2", "-q")
+    assert r.code == 0 and r.err == "", r.err
+
+
+def test_fit_progress_on_a_terminal_is_redrawn_on_stderr(capture_file, run_cli, monkeypatch):
+    _terminal(monkeypatch, 100)
+    r = run_cli("fit", capture_file, "--bootstrap", "20")
+    assert r.code == 0, r.err
+    assert "bootstrap" in r.err and "20/20" in ANSI.sub("", r.err)
+    assert not _bars(r.out) and "━" not in r.out  # not on stdout
+    r = run_cli("fit", capture_file, "--bootstrap", "20", "-q")
+    assert r.err == "", r.err
+
+
 def test_the_caution_is_printed_once_where_probabilities_are_produced_or_judged(tmp_path, run_cli):
     caution = "Calibration holds only for data like the validation set"
     out, cap = tmp_path / "c.onnx", tmp_path / "cap.npz"
@@ -142,7 +193,40 @@ def test_help_shows_forms_and_choices_not_python_types(run_cli, monkeypatch, com
         assert "--optimization disable|basic|extended|all" in r.out
         assert "--interpolation nearest|bilinear|bicubic|lanczos" in r.out
     if command in ("fit", "calibrate"):
-        assert "--method temperature|vector|platt" in r.out and "--multilabel shared|per-label" in r.out
+        assert "--method METHOD" in r.out and "--multilabel shared|per-label" in r.out
+        flat = " ".join(r.out.split())
+        for method in (*METHODS, "auto"):  # each choice is listed in the help
+            assert f" {method} " in flat or f" {method} (" in flat or f" {method}," in flat, method
+
+
+@pytest.mark.parametrize("command", ["", *COMMANDS])
+@pytest.mark.parametrize("columns", [60, 120])
+def test_help_lines_fit_the_terminal(run_cli, monkeypatch, command, columns):
+    # a line wider than the terminal is broken by the terminal wherever it falls, mid-word
+    monkeypatch.setenv("COLUMNS", str(columns))
+    r = run_cli(*([command] if command else []), "--help")
+    assert r.code == 0, r.err
+    assert max(len(line) for line in r.out.splitlines()) <= columns, r.out
+
+
+@pytest.mark.parametrize("command", ["", *COMMANDS])
+def test_help_shows_no_range_hints(run_cli, monkeypatch, command):
+    # typer adds "[x>=1]" to an option declared with min=; the help says the range in words instead
+    monkeypatch.setenv("COLUMNS", "120")
+    r = run_cli(*([command] if command else []), "--help")
+    assert r.code == 0, r.err
+    assert not re.search(r"\bx\s*[<>]=|[<>]=\s*x\b", r.out), r.out
+    if command in ("capture", "verify", "calibrate"):
+        assert "1 to 16777216" in " ".join(r.out.split())  # --batch-size's range, in words
+
+
+def test_range_checks_stay_when_the_hints_go(run_cli, tmp_path):
+    r = run_cli("calibrate", DEMO_MODEL, "--data", DEMO_VAL, "--out", tmp_path / "c.onnx", "--verify-rows", "0")
+    assert r.code == 2 and "--verify-rows" in r.err and not (tmp_path / "c.onnx").exists()
+    r = run_cli("capture", DEMO_MODEL, "--data", DEMO_VAL, "--out", tmp_path / "c.npz", "--batch-size", "0")
+    assert r.code == 2 and "--batch-size" in r.err
+    r = run_cli("capture", DEMO_MODEL, "--data", DEMO_VAL, "--out", tmp_path / "c.npz", "--threads", "-1")
+    assert r.code == 2 and "--threads" in r.err
 
 
 def test_command_summaries_are_whole_and_debug_goes_anywhere(run_cli, monkeypatch):
@@ -161,3 +245,36 @@ def test_did_you_mean_reads_as_a_sentence(run_cli):
     r = run_cli("calibrat")
     assert r.code == 2
     assert r.err.strip() == "onnxcal: error: No such command 'calibrat'. Did you mean 'calibrate'? See 'onnxcal --help'"
+
+
+def test_an_estimate_outside_its_interval_is_marked_and_explained(capture_file, run_cli):
+    # as the report does (report/tables.py): the issue's example, classwise ECE 0.0307 with 0.035 to 0.050
+    from onnxcal.metrics import METRIC_LABELS
+
+    data = json.loads(run_cli("fit", capture_file, "--json").out)
+    after, intervals = data["metrics"]["after"], data["intervals"]["after"]
+    outside = {k for k, pair in intervals.items() if pair and not pair[0] <= after[k] <= pair[1]}
+    assert "classwise_ece" in outside  # the demo's case; the rest is checked against the JSON's own figures
+    lines = run_cli("fit", capture_file).out.splitlines()
+    for key, label in METRIC_LABELS.items():
+        (row,) = [line for line in lines if line.startswith(label.format(bins=15) + "  ")]
+        assert ("†" in row) == (key in outside), row
+    notes = [line for line in lines if line.startswith("note: † The point estimate lies outside its own 95%")]
+    assert len(notes) == 1 and "(classwise ECE)" in notes[0] and "biased upward" in notes[0]
+
+
+@pytest.mark.parametrize(
+    ("stages", "said"),
+    [
+        ([], " (fit stopped)"),
+        (["capturing logits"], " (fit stopped while capturing logits)"),
+        (["fitting", "bootstrap"], " (fit stopped during 'bootstrap')"),  # a stage named by a noun reads as one
+        (["vector: bootstrap"], " (fit stopped during 'vector: bootstrap')"),
+    ],
+)
+def test_the_interruption_line_names_the_stage_in_a_sentence(monkeypatch, stages, said):
+    import importlib
+
+    app = importlib.import_module("onnxcal.cli.app")  # the module (onnxcal.cli.app is also the typer app's name)
+    monkeypatch.setattr(console, "stage", list(stages))
+    assert app._what_stopped(["fit", "cap.npz"]) == said

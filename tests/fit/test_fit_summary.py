@@ -192,3 +192,53 @@ def test_memory_stays_bounded_beyond_the_logits(rng):
         peak = tracemalloc.get_traced_memory()[1] - base
         tracemalloc.stop()
         assert peak < 20 * 2**20, peak
+
+
+# --------------------------------------------------------------------------
+# Progress: the fit's stages and every bootstrap replicate, in order
+
+
+def _heard() -> tuple[list[tuple[str, int, int]], object]:
+    calls: list[tuple[str, int, int]] = []
+    return calls, lambda stage, done, total: calls.append((stage, done, total))
+
+
+def _stages(calls: list[tuple[str, int, int]]) -> list[str]:
+    return [s for i, (s, _, _) in enumerate(calls) if i == 0 or calls[i - 1][0] != s]
+
+
+@pytest.mark.parametrize(
+    ("options", "labels"),
+    [
+        (FitOptions(bootstrap=17), "multiclass"),  # temperature: the three passes, the expansion's replicates
+        (FitOptions(bootstrap=17, holdout=0.0), "multiclass"),  # in-sample
+        (FitOptions(method="vector", bootstrap=5), "multiclass"),  # exact refits
+        (FitOptions(bootstrap=9), "binary"),  # a sigmoid temperature
+    ],
+)
+def test_progress_hears_the_stages_and_every_replicate_in_order(rng, options, labels):
+    k = 4 if labels == "multiclass" else 1
+    z = rng.normal(scale=2.0, size=(3000, k))
+    y = gumbel_labels(rng, z, 2.0) if k > 1 else bernoulli_labels(rng, z[:, 0] / 2.0)
+    calls, progress = _heard()
+    s = summarize(z, y, {}, options, progress=progress)
+    assert _stages(calls) == ["fitting", "bootstrap"]
+    fitting = [(d, t) for st, d, t in calls if st == "fitting"]
+    assert fitting[0] == (0, 3) and fitting[-1] == (3, 3) and [d for d, _ in fitting] == sorted(d for d, _ in fitting)
+    boot = [(d, t) for st, d, t in calls if st == "bootstrap"]
+    assert boot == [(i, options.bootstrap) for i in range(options.bootstrap + 1)]  # each replicate once, in order
+    assert s.intervals["replicates"] == options.bootstrap
+    quiet = summarize(z, y, {}, options)  # the callback changes nothing
+    assert quiet.to_dict() == s.to_dict()
+
+
+def test_progress_of_auto_names_each_method(rng):
+    z = rng.normal(scale=2.0, size=(600, 3))
+    y = gumbel_labels(rng, z, 2.0)
+    calls, progress = _heard()
+    summarize(z, y, {}, FitOptions(method="auto", bootstrap=2), progress=progress)
+    stages = _stages(calls)
+    assert "temperature: fitting" in stages and "temperature: bootstrap" in stages
+    assert "vector: bootstrap" in stages
+    for st in {s for s in stages if s.endswith("bootstrap")}:
+        assert [d for s2, d, _ in calls if s2 == st] == [0, 1, 2], st
