@@ -1,17 +1,35 @@
-"""``--method auto``: every applicable method fitted on the fit part, one chosen on the held-out part.
+"""``--method auto``: every applicable method cross-fitted on all rows, the simplest of the best chosen.
 
-The rule (issue 15): the method with the lowest held-out NLL is the *best*;
-the chosen one is the simplest (fewest parameters, then the order of
-:data:`onnxcal.scaling.METHODS`) whose held-out NLL lies within the best
-one's bootstrap percentile interval. With no interval (``--bootstrap 0``)
-the best is chosen. A simpler map whose NLL the data cannot tell from the
-best's is preferred because it has less to overfit and, for temperature
-scaling, keeps every decision of the model (common practice: the principle
-of parsimony).
+The rule (issue 15, made robust on small sets):
 
-Pure functions over plain numbers: the fitting is ``onnxcal.fit``'s, which
-hands :func:`choose` one :class:`Candidate` per method (made by
-:func:`candidate`) and stores the :class:`Choice` in FIT.json.
+1. *Cross-fitted NLL.* The rows are split into :data:`FOLDS` stratified
+   folds (whole samples when a sample gives several rows); every method is
+   fitted on all folds but one and scores the rows of that one, so every
+   row is held out exactly once. A method's cross-fitted NLL is the mean
+   of these per-row out-of-fold NLLs. One small held-out part (a dozen
+   rows of a small set) makes a noisy score that rewards a lucky
+   overfitted map; cross-fitting scores every row, with the same rows for
+   every method.
+2. *Best.* The method with the lowest cross-fitted NLL.
+3. *Paired comparison.* For every other method, the per-row differences
+   of its out-of-fold NLL and the best one's; their mean's 95 % bootstrap
+   percentile interval (the same resamples of rows for every method; with
+   ``--bootstrap 0``, mean +- 1.96 standard errors). The rows are the same
+   for both methods, so the interval of the difference is much narrower
+   than the interval of the best one's NLL alone (which holds the rows'
+   own spread, common to both).
+4. *Chosen.* The method with the fewest parameters (then the order of
+   :data:`onnxcal.scaling.METHODS`) among the best and the methods whose
+   interval reaches 0 or below, i.e. that the data cannot tell from the
+   best. A simpler map has less to overfit and, for temperature scaling,
+   keeps every decision of the model (common practice: the principle of
+   parsimony). The chosen method is then fitted as ``--method NAME`` (its
+   held-out report, its bootstrap; the parameters baked in fitted on all
+   rows).
+
+Pure functions over plain numbers: the fitting is :mod:`onnxcal.fit.auto`'s,
+which hands :func:`choose` one :class:`Candidate` per method and stores the
+:class:`Choice` in FIT.json.
 """
 
 from __future__ import annotations
@@ -25,23 +43,31 @@ from .scaling import AFFINE_METHODS, METHODS, METHODS_FOR, Scaling
 
 # The metrics of the comparison table, in its column order.
 TABLE_FIELDS = ("nll", "ece", "brier", "accuracy")
+# Folds of the cross-fitting (fewer when a set has fewer samples).
+FOLDS = 5
+# A paired interval whose lower end is at most this is taken to reach 0 (rounding of equal fits).
+_TIE = 1e-12
 
 
 @dataclass(frozen=True)
 class Candidate:
-    """One method's fit, scored on the held-out part.
+    """One method, cross-fitted and scored on every row held out once.
 
     Attributes
     ----------
     method : str
     n_parameters : int
-        Numbers the map holds (a lookup's: its fitted table sizes).
+        Numbers the map holds (a lookup's: the largest fitted table size
+        over the folds).
     metrics : dict
-        Held-out figures after calibration (:data:`TABLE_FIELDS`).
+        Out-of-fold figures (:data:`TABLE_FIELDS`).
     intervals : dict
         Their bootstrap percentile intervals, ``[low, high]`` or None.
     converged : bool
-        False when the solver's budget ran out.
+        False when the solver's budget ran out on any fold.
+    difference : list of float or None
+        The 95 % interval of the mean per-row NLL difference to the best
+        method (this one's minus the best one's); None for the best.
     """
 
     method: str
@@ -49,6 +75,7 @@ class Candidate:
     metrics: dict[str, float]
     intervals: dict[str, list[float] | None] = field(default_factory=dict)
     converged: bool = True
+    difference: list[float] | None = None
 
     @property
     def nll(self) -> float:
@@ -67,13 +94,18 @@ class Choice:
     chosen : str
         The method baked in.
     best : str
-        The method with the lowest held-out NLL.
+        The method with the lowest cross-fitted NLL.
     reason : str
         Why ``chosen``, in one sentence (printed, and in the report).
     basis : str
-        ``"held-out"`` or ``"in-sample"`` (``--holdout 0``).
+        What the figures are: ``"cross-fitted"`` (every row held out once).
     candidates : tuple of Candidate
         The comparison table, in the order the methods were tried.
+    folds : int
+        Folds of the cross-fitting.
+    replicates : int
+        Bootstrap resamples behind the intervals (0: the paired intervals
+        are mean +- 1.96 standard errors, the others absent).
     """
 
     chosen: str
@@ -81,6 +113,8 @@ class Choice:
     reason: str
     basis: str
     candidates: tuple[Candidate, ...]
+    folds: int = FOLDS
+    replicates: int = 0
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -89,13 +123,16 @@ class Choice:
             "reason": self.reason,
             "basis": self.basis,
             "rule": RULE,
+            "folds": self.folds,
+            "replicates": self.replicates,
             "candidates": [c.to_dict() for c in self.candidates],
         }
 
 
 RULE = (
-    "lowest held-out NLL; among the methods whose held-out NLL lies within the best one's bootstrap "
-    "interval, the one with the fewest parameters"
+    "every method cross-fitted (each row held out once); the lowest mean out-of-fold NLL is the best; among the "
+    "best and the methods whose paired per-row NLL difference to it has a 95% interval reaching 0, the one with "
+    "the fewest parameters"
 )
 
 
@@ -119,21 +156,6 @@ def n_parameters(scaling: Scaling, num_classes: int) -> int:
     return int(maps.module(scaling.method).n_parameters(num_classes, scaling.parameters))
 
 
-def candidate(
-    scaling: Scaling, num_classes: int, after: Mapping[str, float], intervals: Mapping[str, Any] | None,
-    converged: bool = True,
-) -> Candidate:
-    """A :class:`Candidate` from a fit's held-out figures and bootstrap intervals (``intervals["after"]``)."""
-    spans = (intervals or {}).get("after") or {}
-    return Candidate(
-        method=scaling.method,
-        n_parameters=n_parameters(scaling, num_classes),
-        metrics={f: float(after[f]) for f in TABLE_FIELDS},
-        intervals={f: spans.get(f) for f in TABLE_FIELDS},
-        converged=converged,
-    )
-
-
 def _order(c: Candidate) -> tuple[int, int]:
     return c.n_parameters, METHODS.index(c.method)
 
@@ -142,36 +164,48 @@ def _count(n: int) -> str:
     return f"{n} parameter{'' if n == 1 else 's'}"
 
 
-def choose(candidates: Sequence[Candidate], basis: str = "held-out") -> Choice:
-    """Apply the rule to the candidates.
+def _span(pair: Sequence[float]) -> str:
+    return f"{pair[0]:+.4f} to {pair[1]:+.4f}"
+
+
+def _reaches_zero(c: Candidate) -> bool:
+    return c.difference is not None and c.difference[0] <= _TIE
+
+
+def choose(candidates: Sequence[Candidate], basis: str = "cross-fitted", folds: int = FOLDS,
+           replicates: int = 0) -> Choice:
+    """Apply the rule to the candidates (each with its paired ``difference`` to the best).
+
+    A candidate without a ``difference`` other than the best counts as
+    told apart from it.
 
     Examples
     --------
-    >>> a = Candidate("temperature", 1, {"nll": 0.30, "ece": 0, "brier": 0, "accuracy": 1}, {"nll": [0.27, 0.33]})
-    >>> b = Candidate("matrix", 20, {"nll": 0.28, "ece": 0, "brier": 0, "accuracy": 1}, {"nll": [0.25, 0.31]})
+    >>> a = Candidate("temperature", 1, {"nll": 0.30}, difference=[-0.004, 0.03])
+    >>> b = Candidate("matrix", 20, {"nll": 0.28})
     >>> choose([a, b]).chosen
     'temperature'
     """
     if not candidates:
         raise OnnxcalError("no calibration method applies to these scores")
     best = min(candidates, key=lambda c: (c.nll, _order(c)))
-    span = best.intervals.get("nll")
-    what = "held-out" if basis == "held-out" else "in-sample"
-    if span is None:
-        reason = (f"{best.method} has the lowest {what} NLL ({best.nll:.4g}); with no bootstrap interval "
-                  "(--bootstrap 0) no simpler method is preferred")
-        return Choice(best.method, best.method, reason, basis, tuple(candidates))
-    within = [c for c in candidates if c.nll <= span[1]]
+    within = [best, *(c for c in candidates if c is not best and _reaches_zero(c))]
     chosen = min(within, key=_order)
-    interval = f"{span[0]:.4g} to {span[1]:.4g}"
+    how = "bootstrap" if replicates else "normal-approximation"
     if chosen is best:
-        reason = (f"{best.method} has the lowest {what} NLL ({best.nll:.4g}, 95% bootstrap interval {interval}) "
-                  "and no method with fewer parameters lies within that interval")
+        simpler = [c for c in candidates if _order(c) < _order(best)]
+        reason = (f"{best.method} has the lowest {basis} NLL ({best.nll:.4g}) and "
+                  + (f"every method with fewer parameters is worse by a paired per-row NLL difference whose 95% "
+                     f"{how} interval lies above 0" if simpler else "no method has fewer parameters"))
+        if len(candidates) == 1:
+            reason = f"{best.method} is the only method that applies"
     else:
-        reason = (f"{best.method} has the lowest {what} NLL ({best.nll:.4g}, 95% bootstrap interval {interval}); "
-                  f"{chosen.method} ({_count(chosen.n_parameters)} against {best.n_parameters}) has {what} NLL "
-                  f"{chosen.nll:.4g}, within that interval, so the simpler {chosen.method} is chosen")
-    return Choice(chosen.method, best.method, reason, basis, tuple(candidates))
+        assert chosen.difference is not None  # in `within` and not the best
+        reason = (f"{best.method} has the lowest {basis} NLL ({best.nll:.4g}); {chosen.method} "
+                  f"({_count(chosen.n_parameters)} against {best.n_parameters}) has {chosen.nll:.4g}, and the 95% "
+                  f"{how} interval of its paired per-row NLL difference to {best.method} "
+                  f"({_span(chosen.difference)}) reaches 0, so the simpler {chosen.method} is chosen")
+    return Choice(chosen.method, best.method, reason, basis, tuple(candidates), folds, replicates)
 
 
 def choice_from_dict(data: Mapping[str, Any]) -> Choice:
@@ -191,10 +225,12 @@ def choice_from_dict(data: Mapping[str, Any]) -> Choice:
             metrics={k: float(v) for k, v in c["metrics"].items()},
             intervals={k: (None if v is None else [float(v[0]), float(v[1])]) for k, v in c["intervals"].items()},
             converged=bool(c["converged"]),
+            difference=None if c.get("difference") is None else [float(v) for v in c["difference"][:2]],
         )
         for c in data["candidates"]
     )
     for name in (data["chosen"], data["best"], *(c.method for c in candidates)):
         if name not in METHODS:
             raise OnnxcalError(f"'choice' names an unknown method {name!r}", f"use one of: {', '.join(METHODS)}")
-    return Choice(str(data["chosen"]), str(data["best"]), str(data["reason"]), str(data["basis"]), candidates)
+    return Choice(str(data["chosen"]), str(data["best"]), str(data["reason"]), str(data["basis"]), candidates,
+                  int(data.get("folds", FOLDS)), int(data.get("replicates", 0)))

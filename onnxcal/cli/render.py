@@ -176,10 +176,11 @@ def render_choice(choice: Choice) -> None:
     """The comparison table of ``--method auto`` (each figure with its 95% interval) and the choice."""
     from ..choose import TABLE_FIELDS
 
-    where = "held-out" if choice.basis == "held-out" else "in-sample"
     columns = [Column("method"), Column("params", right=True)]
     columns += [Column(_CHOICE_LABELS[f], right=True) for f in TABLE_FIELDS]
-    table = Grid(f"--method auto: every applicable method, {where} figures (in brackets: 95% bootstrap interval)",
+    columns += [Column("NLL - best", right=True)]
+    table = Grid(f"--method auto: every applicable method, {choice.basis} on {choice.folds} folds (every row held "
+                 "out once; in brackets: 95% interval; NLL - best: paired per-row difference to the lowest NLL)",
                  columns, boxed=False)
     for c in choice.candidates:
         marks = ["chosen"] if c.method == choice.chosen else []
@@ -187,7 +188,8 @@ def render_choice(choice: Choice) -> None:
         marks += ["not converged"] if not c.converged else []
         name = c.method + (f" ({', '.join(marks)})" if marks else "")
         figures = (_with_interval(c.metrics[f], c.intervals.get(f)) for f in TABLE_FIELDS)
-        table.add_row(name, str(c.n_parameters), *figures)
+        diff = "-" if c.difference is None else f"{_short(c.difference[0])} to {_short(c.difference[1])}"
+        table.add_row(name, str(c.n_parameters), *figures, diff)
     show_table(table)
     say(f"chosen: {choice.chosen}: {choice.reason}")
 

@@ -212,7 +212,7 @@ def summarize(
         if options.method == AUTO:
             kind = resolve_kind(logits, labels, options)
 
-            def one(  # every candidate on the same split (whole samples with groups)
+            def one(  # the chosen method, summarised as --method NAME (whole samples with groups)
                 lg: np.ndarray, lb: np.ndarray, meta: dict[str, Any], opts: FitOptions, th: int | None
             ) -> FitSummary:
                 def each(stage: str, done: int, total: int) -> None:
@@ -220,7 +220,10 @@ def summarize(
 
                 return _summarize(lg, lb, meta, opts, th, groups, each)
 
-            chosen: FitSummary = fit_all(logits, labels, capture_meta, options, kind, one, threads)[0]
+            chosen: FitSummary = fit_all(
+                logits, labels, capture_meta, options, kind, one, fit_scaling, groups=groups, threads=threads,
+                progress=told,
+            )[0]
             return chosen
         return _summarize(logits, labels, capture_meta, options, threads, groups, told)
 

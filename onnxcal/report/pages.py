@@ -192,7 +192,7 @@ def _verification_html(v: dict[str, Any]) -> str:
 
 def choice_rows(choice: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
     """The comparison table of ``--method auto``: head and rows (figure and 95% interval per metric)."""
-    head = ["method", "parameters", "NLL", "ECE", "Brier score", "accuracy", ""]
+    head = ["method", "parameters", "NLL", "ECE", "Brier score", "accuracy", "NLL − best (paired)", ""]
     rows = []
     for cand in choice["candidates"]:
         marks = (("chosen", cand["method"] == choice["chosen"]), ("lowest NLL", cand["method"] == choice["best"]),
@@ -202,7 +202,10 @@ def choice_rows(choice: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
             else _num(cand["metrics"][f])
             for f in ("nll", "ece", "brier", "accuracy")
         ]
-        rows.append([cand["method"], str(cand["n_parameters"]), *figures, ", ".join(w for w, on in marks if on)])
+        diff = cand.get("difference")
+        paired = "" if diff is None else _interval(diff)
+        rows.append([cand["method"], str(cand["n_parameters"]), *figures, paired,
+                     ", ".join(w for w, on in marks if on)])
     return head, rows
 
 
@@ -210,11 +213,13 @@ def _choice_html(choice: dict[str, Any] | None) -> list[str]:
     if choice is None:
         return []
     head, rows = choice_rows(choice)
-    where = "held-out" if choice["basis"] == "held-out" else "in-sample"
+    folds = choice.get("folds", 5)
     return [
         '<h3 id="choice">How the method was chosen (--method auto)</h3>',
-        f"<p>Every applicable method was fitted on the fit part and scored on the {where} part "
-        f"(figures with their 95% bootstrap intervals). Rule: {_e(choice['rule'])}. {_e(choice['reason'])}.</p>",
+        f"<p>Every applicable method was cross-fitted on {folds} folds of all the rows: fitted on all folds but "
+        "one and scored on that one, so every row is held out once (figures with their 95% intervals; "
+        "the last column: the interval of the mean per-row NLL difference to the lowest one, on the same rows). "
+        f"Rule: {_e(choice['rule'])}. {_e(choice['reason'])}.</p>",
         _table(head, rows, numeric_from=1),
     ]
 

@@ -24,18 +24,16 @@ route comes with the integration into ``calibrate``.
 scikit-learn: CalibratedClassifierCV(FrozenEstimator(model), method=m) for
 m in sigmoid, isotonic, temperature, fitted on the same calibration part.
 
-"auto" (a stand-in): what ``--method auto`` is meant to do, written here
-until the real one exists: split the calibration part 75/25 (onnxcal's
-stratified holdout), fit every applicable onnxcal method on the 75 %,
-score the NLL on the 25 %, take the lowest, then among the methods whose
-NLL lies inside the best one's 95 % bootstrap interval (200 resamples of
-the 25 %) choose the one with the fewest parameters; the table shows that
-method fitted on the whole calibration part. It never sees the held-out
-part. "auto-cv": the same rule on out-of-fold NLLs from 5-fold stratified
-cross-fitting of the calibration part (every row scored once). "-paired":
-a method counts as good as the best when the 95 % bootstrap interval of
-the mean per-row NLL difference to it contains 0 (paired resamples), which
-is tighter than comparing with the best one's own interval.
+"auto": onnxcal's own ``--method auto`` rule (onnxcal.fit.auto.compare:
+every applicable method cross-fitted on 5 stratified folds of the
+calibration part, the lowest mean out-of-fold NLL is the best, the simplest
+method whose paired per-row NLL difference to it has a 95 % bootstrap
+interval reaching 0 is chosen); the table shows that method fitted on the
+whole calibration part. "auto (one split)": the rule before cross-fitting,
+for comparison (split the calibration part 75/25 with onnxcal's stratified
+holdout, fit on the 75 %, the simplest method whose NLL on the 25 % lies
+inside the best one's 95 % bootstrap interval). Neither sees the held-out
+part.
 
 Metrics on the held-out part: NLL (sklearn.metrics.log_loss, which clips
 probabilities to [eps, 1 - eps]), top-label ECE with 15 equal-width bins
@@ -67,6 +65,7 @@ from sklearn.svm import SVC
 
 from onnxcal import maps, resample
 from onnxcal.fit import FitOptions, fit_scaling
+from onnxcal.fit.auto import compare
 from onnxcal.metrics import expected_calibration_error, sigmoid, softmax
 
 DATASETS: dict[str, Callable] = {"digits": load_digits, "wine": load_wine, "breast_cancer": load_breast_cancer}
@@ -81,7 +80,7 @@ ONNXCAL_MULTICLASS = ("temperature", "vector", "matrix", "dirichlet", "ensemble-
                       "histogram")
 ONNXCAL_BINARY = ("temperature", "platt", "beta", "isotonic", "histogram")
 SKLEARN = ("sigmoid", "isotonic", "temperature")
-AUTOS = ("auto", "auto-paired", "auto-cv", "auto-cv-paired")
+AUTOS = ("auto", "auto (one split)")
 
 
 def scores_of(model, x: np.ndarray, binary: bool) -> np.ndarray:
@@ -136,42 +135,28 @@ def fit_onnxcal(method: str, z: np.ndarray, y: np.ndarray, **kw) -> Callable[[np
     return (lambda s: two_columns(mod.apply(params, s))), n_parameters(method, z.shape[1], params)
 
 
-def auto_choice(methods, z, y, seed: int, folds: int = 0, n_boot: int = 200) -> dict[str, str]:
-    """The stand-ins for --method auto (see the module docstring), by rule.
-
-    ``folds`` 0: one stratified 75/25 holdout (onnxcal's split), the NLL on
-    the 25 %; ``folds`` > 1: out-of-fold NLL of every row by stratified
-    cross-fitting, so the interval uses every calibration row. Rules:
-    ``"interval"``, the issue's (the simplest method whose mean NLL lies
-    inside the best one's 95 % bootstrap interval); ``"paired"``, the
-    simplest method whose 95 % bootstrap interval of the mean per-row NLL
-    difference to the best one contains 0 (the same resamples for both).
-    """
-    if folds:
-        from sklearn.model_selection import StratifiedKFold
-
-        splits = list(StratifiedKFold(folds, shuffle=True, random_state=seed).split(z, y))
-    else:
-        splits = [resample.split_holdout(y, 0.25, seed)]
+def one_split_choice(methods, z, y, seed: int, n_boot: int = 200) -> str:
+    """The rule before cross-fitting (see the module docstring)."""
+    fit_rows, eval_rows = resample.split_holdout(y, 0.25, seed)
     losses: dict[str, np.ndarray] = {}
     sizes = {}
     for m in methods:
-        parts = []
-        for fit_rows, eval_rows in splits:
-            predict, sizes[m] = fit_onnxcal(m, z[fit_rows], y[fit_rows])
-            p = np.clip(predict(z[eval_rows]), 1e-15, 1.0)
-            parts.append(-np.log(p[np.arange(len(eval_rows)), y[eval_rows]]))
-        losses[m] = np.concatenate(parts)
+        predict, sizes[m] = fit_onnxcal(m, z[fit_rows], y[fit_rows])
+        p = np.clip(predict(z[eval_rows]), 1e-15, 1.0)
+        losses[m] = -np.log(p[np.arange(len(eval_rows)), y[eval_rows]])
     means = {m: float(v.mean()) for m, v in losses.items()}
     best = min(means, key=means.__getitem__)
     rng = np.random.default_rng(seed)
     n = len(losses[best])
-    draws = [rng.integers(0, n, n) for _ in range(n_boot)]
-    hi = float(np.percentile([losses[best][d].mean() for d in draws], 97.5))
-    interval = [m for m in methods if means[m] <= hi]
-    paired = [m for m in methods if np.percentile([(losses[m] - losses[best])[d].mean() for d in draws], 2.5) <= 0.0]
-    simplest = lambda pool: min(pool, key=lambda m: (sizes[m], means[m]))  # noqa: E731
-    return {"interval": simplest(interval), "paired": simplest(paired)}
+    hi = float(np.percentile([losses[best][rng.integers(0, n, n)].mean() for _ in range(n_boot)], 97.5))
+    return min((m for m in methods if means[m] <= hi), key=lambda m: (sizes[m], means[m]))
+
+
+def auto_choice(z: np.ndarray, y: np.ndarray, seed: int, n_boot: int = 200) -> str:
+    """onnxcal's --method auto rule on these scores (cross-fitted, paired)."""
+    kind = "binary" if z.shape[1] == 1 else "multiclass"
+    options = FitOptions(method="auto", bootstrap=n_boot, seed=seed)
+    return compare(np.ascontiguousarray(z, dtype=np.float32), y, options, kind, fit_scaling)[0].chosen
 
 
 # --------------------------------------------------------------------------
@@ -192,10 +177,9 @@ def one_pair(dataset: str, model_name: str, seed: int, grid: list[float] | None)
         predict, _ = fit_onnxcal(m, z_cal, y_cal)
         timing[m] = time.perf_counter() - t0
         rows[m] = metrics(predict(z_te), y_te)
-    for suffix, folds in (("", 0), ("-cv", 5)):
-        for rule, choice in auto_choice(methods, z_cal, y_cal, seed, folds).items():
-            name = "auto" + suffix + ("" if rule == "interval" else "-paired")
-            rows[name] = dict(rows[choice], choice=choice)
+    for name, choice in (("auto", auto_choice(z_cal, y_cal, seed)),
+                         ("auto (one split)", one_split_choice(methods, z_cal, y_cal, seed))):
+        rows[name] = dict(rows[choice], choice=choice)
     for m in SKLEARN:
         cal = CalibratedClassifierCV(FrozenEstimator(model), method=m).fit(x_cal, y_cal)
         rows[f"sklearn {m}"] = metrics(cal.predict_proba(x_te), y_te)
@@ -212,12 +196,13 @@ def main() -> None:
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--l2-grid", action="store_true", help="also fit matrix/Dirichlet at l2 = 1e-2, 1, 10, 100, 1000")
     ap.add_argument("--out", default=None, help="write the Markdown tables to this file too")
+    ap.add_argument("--sets", default=",".join(DATASETS), help="comma-separated: digits, wine, breast_cancer")
     args = ap.parse_args()
     warnings.simplefilter("ignore")
     grid = [1e-2, 1.0, 10.0, 100.0, 1000.0] if args.l2_grid else None
     results: dict[tuple[str, str], list[dict]] = defaultdict(list)
     times: dict[str, list[float]] = defaultdict(list)
-    for dataset in DATASETS:
+    for dataset in args.sets.split(","):
         for model_name in MODELS:
             for seed in range(args.repeats):
                 rows, timing = one_pair(dataset, model_name, seed, grid)
@@ -245,8 +230,19 @@ def report(results, times, repeats: int) -> str:
                 vals = [r[c][metric] for r in runs if c in r]
                 cells.append(f"{np.mean(vals):.3f}" if vals else "")
             out.append(f"| {dataset} / {model} | " + " | ".join(cells) + " |")
+    out.append("\n### auto against the best scikit-learn method per pair (mean held-out NLL)\n")
+    out.append("| set / model | auto | auto (one split) | best scikit-learn | auto vs it | one split vs it |")
+    out.append("|---|---:|---:|---|---|---|")
+    for (dataset, model), runs in results.items():
+        sk = {m: float(np.mean([r[f"sklearn {m}"]["nll"] for r in runs])) for m in SKLEARN}
+        best = min(sk, key=sk.__getitem__)
+        ours = {a: float(np.mean([r[a]["nll"] for r in runs])) for a in AUTOS}
+        word = {a: "better" if ours[a] < sk[best] - 1e-4 else "equal" if ours[a] <= sk[best] + 1e-4 else "worse"
+                for a in AUTOS}
+        out.append(f"| {dataset} / {model} | {ours['auto']:.4f} | {ours['auto (one split)']:.4f} | "
+                   f"{best} {sk[best]:.4f} | {word['auto']} | {word['auto (one split)']} |")
     for name in AUTOS:
-        out.append(f"\n### {name} (stand-in) against the best scikit-learn method, per split (held-out NLL)\n")
+        out.append(f"\n### {name} against the best scikit-learn method, per split (held-out NLL)\n")
         wins = ties = losses = 0
         picks: dict[str, int] = defaultdict(int)
         worse_pairs = set()

@@ -99,13 +99,9 @@ def test_auto_chooses_and_says_why(tmp_path, run_cli, case):
     assert saved["method"] == choice["chosen"] and saved["options"]["method"] == "auto"
     assert "--method auto: every applicable method" in r.out and f"chosen: {choice['chosen']}" in r.out
     # The rule, checked on the table FIT.json holds.
-    cands = {c["method"]: c for c in choice["candidates"]}
-    best = min(cands.values(), key=lambda c: c["metrics"]["nll"])
-    assert choice["best"] == best["method"]
-    upper = best["intervals"]["nll"][1]
-    within = [c for c in cands.values() if c["metrics"]["nll"] <= upper]
-    assert cands[choice["chosen"]]["n_parameters"] == min(c["n_parameters"] for c in within)
-    # calibrate --method auto without a bootstrap: no interval, so the lowest NLL is chosen, and said so;
+    _check_rule(choice)
+    assert choice["basis"] == "cross-fitted" and choice["replicates"] == 8
+    # calibrate --method auto without a bootstrap: the paired intervals are normal approximations, said so;
     # the record keeps the choice; the report shows the table.
     out = tmp_path / "calibrated.onnx"
     r = run_cli("calibrate", model, "--data", data, "--out", out, "--method", "auto", "--bootstrap", "0",
@@ -114,5 +110,16 @@ def test_auto_chooses_and_says_why(tmp_path, run_cli, case):
     r = run_cli("inspect", out, "--json")
     record = json.loads(r.out)["record"]
     kept = record["fit"]["choice"]
-    assert kept["chosen"] == kept["best"] == record["method"] and "--bootstrap 0" in kept["reason"]
+    assert kept["chosen"] == record["method"] and kept["replicates"] == 0
+    _check_rule(kept)
     assert "How the method was chosen" in (tmp_path / "rep" / "report.html").read_text()
+
+
+def _check_rule(choice: dict) -> None:
+    """The lowest cross-fitted NLL is the best; the chosen one has the fewest parameters among the best and the
+    methods whose paired NLL difference interval reaches 0."""
+    cands = {c["method"]: c for c in choice["candidates"]}
+    best = min(cands.values(), key=lambda c: c["metrics"]["nll"])
+    assert choice["best"] == best["method"] and best["difference"] is None
+    within = [best, *(c for c in cands.values() if c["difference"] is not None and c["difference"][0] <= 1e-12)]
+    assert cands[choice["chosen"]]["n_parameters"] == min(c["n_parameters"] for c in within)
