@@ -232,13 +232,14 @@ def test_progress_hears_the_stages_and_every_replicate_in_order(rng, options, la
     assert quiet.to_dict() == s.to_dict()
 
 
-def test_progress_of_auto_names_each_method(rng):
+def test_progress_of_auto_counts_the_methods_then_names_the_chosen_one(rng):
     z = rng.normal(scale=2.0, size=(600, 3))
     y = gumbel_labels(rng, z, 2.0)
     calls, progress = _heard()
-    summarize(z, y, {}, FitOptions(method="auto", bootstrap=2), progress=progress)
-    stages = _stages(calls)
-    assert "temperature: fitting" in stages and "temperature: bootstrap" in stages
-    assert "vector: bootstrap" in stages
-    for st in {s for s in stages if s.endswith("bootstrap")}:
-        assert [d for s2, d, _ in calls if s2 == st] == [0, 1, 2], st
+    s = summarize(z, y, {}, FitOptions(method="auto", bootstrap=2), progress=progress)
+    chosen = s.choice.chosen
+    assert _stages(calls) == ["cross-fitting", f"{chosen}: fitting", f"{chosen}: bootstrap"]
+    crossed = [(d, t) for st, d, t in calls if st == "cross-fitting"]
+    n = len(s.choice.candidates)
+    assert crossed == [(i, n) for i in range(n + 1)]  # every method compared, counted in order
+    assert [d for st, d, _ in calls if st == f"{chosen}: bootstrap"] == [0, 1, 2]
