@@ -260,13 +260,18 @@ def _power_sums(
 ) -> np.ndarray:
     """Row sums of w x^j, j = 0..count, into the rows of ``out`` (count + 1, rows), in w's dtype.
 
-    ``first`` receives w x, ``scratch`` the higher powers (either may be
-    ``w`` itself when it is not needed afterwards).
+    ``first`` receives w x, ``scratch`` the higher powers but the last
+    (either may be ``w`` itself when it is not needed afterwards). The last
+    power beyond the first is a row-wise dot product (``numpy.vecdot``: one
+    sweep instead of a product and a sum).
     """
     ones = _ones(w.shape[1], w.dtype)
     np.matmul(w, ones, out=out[0])
     prev = w
     for j in range(1, count + 1):
+        if j == count and j >= 2:
+            np.vecdot(prev, x, out=out[j])
+            break
         dest = first if j == 1 else scratch
         np.multiply(prev, x, out=dest)
         np.matmul(dest, ones, out=out[j])
@@ -374,16 +379,21 @@ def _tile(
         hook(Tile(a, e, x, ex if count else None, total, eps))
     if sq_moments is None:
         return
-    e2, q = np.multiply(e, e, out=buf.p[:t]), buf.q[:t]
-    if pick is None:  # every row alike: the total at 2 beta, and its cumulants when asked for
+    if eps:
+        e2, q = np.multiply(e, e, out=buf.p[:t]), buf.q[:t]
+        _power_sums(e2, x, 1 if pick is not None else sq_count, q, q, buf.sq_sums[: sq_count + 1, a:end])
+    elif pick is None and sq_count:  # every row's cumulants at 2 beta
+        e2, q = np.multiply(e, e, out=buf.p[:t]), buf.q[:t]
         _power_sums(e2, x, sq_count, q, q, buf.sq_sums[: sq_count + 1, a:end])
+    else:  # the total at 2 beta: sum e^2, one sweep
+        np.vecdot(e, e, out=buf.sq_sums[0, a:end])
+    if pick is None:
         return
-    extra = 1 if eps else 0
-    _power_sums(e2, x, extra, q, q, buf.sq_sums[: extra + 1, a:end])
     lo, hi = np.searchsorted(pick, [a, end])
     if hi > lo:  # the cumulants at 2 beta of the rows asked for, gathered
         local = pick[lo:hi] - a
-        w2 = e2[local]
+        w2 = e[local]
+        np.multiply(w2, w2, out=w2)
         out = np.empty((sq_count + 1, hi - lo), dtype)
         _power_sums(w2, x[local], sq_count, w2, w2, out)
         buf.sq_sums[: sq_count + 1, pick[lo:hi]] = out
