@@ -208,6 +208,7 @@ class _Buffers:
         self.r = np.arange(rows)
         self.sums = np.empty((powers + 1, rows), dtype)
         self.sq_sums = np.empty((powers + 1, rows), dtype)
+        self.sq_picked = np.empty((powers + 1, rows), dtype)  # the same, gathered, for the rows asked for
 
 
 def cumulants_from_moments(mu: np.ndarray) -> np.ndarray:
@@ -350,7 +351,8 @@ def exp_terms(
         terms.sq_cumulants = np.full((c, sq_moments), np.nan)
         if sq_moments:
             rows = slice(None) if pick is None else pick
-            sums = buf.sq_sums[: sq_count + 1, :c][:, rows].astype(np.float64)
+            source = buf.sq_sums if pick is None else buf.sq_picked
+            sums = source[: sq_count + 1, :c][:, rows].astype(np.float64)
             _, sq_kappa = _cumulants(sums, 2.0 * eps, sq_moments, s if s32 is None else cast(np.ndarray, s)[rows], b)
             terms.sq_cumulants[rows] = sq_kappa.T
     return terms
@@ -379,14 +381,11 @@ def _tile(
         hook(Tile(a, e, x, ex if count else None, total, eps))
     if sq_moments is None:
         return
-    if eps:
+    higher = sq_count if pick is None else (1 if eps else 0)  # the powers of x every row needs at 2 beta
+    if higher:
         e2, q = np.multiply(e, e, out=buf.p[:t]), buf.q[:t]
-        _power_sums(e2, x, 1 if pick is not None else sq_count, q, q, buf.sq_sums[: sq_count + 1, a:end])
-    elif pick is None and sq_count:  # every row's cumulants at 2 beta
-        e2, q = np.multiply(e, e, out=buf.p[:t]), buf.q[:t]
-        _power_sums(e2, x, sq_count, q, q, buf.sq_sums[: sq_count + 1, a:end])
-    else:  # the total at 2 beta: sum e^2, one sweep
-        np.vecdot(e, e, out=buf.sq_sums[0, a:end])
+        _power_sums(e2, x, higher, q, q, buf.sq_sums[: higher + 1, a:end])
+    np.vecdot(e, e, out=buf.sq_sums[0, a:end])  # the total at 2 beta, one sweep, the same on every path
     if pick is None:
         return
     lo, hi = np.searchsorted(pick, [a, end])
@@ -396,7 +395,7 @@ def _tile(
         np.multiply(w2, w2, out=w2)
         out = np.empty((sq_count + 1, hi - lo), dtype)
         _power_sums(w2, x[local], sq_count, w2, w2, out)
-        buf.sq_sums[: sq_count + 1, pick[lo:hi]] = out
+        buf.sq_picked[: sq_count + 1, pick[lo:hi]] = out
 
 
 # --------------------------------------------------------------------------
