@@ -256,6 +256,15 @@ def _ones(k: int, dtype: np.dtype) -> np.ndarray:
     return _ONES[key]
 
 
+def _row_dot(a: np.ndarray, b: np.ndarray, out: np.ndarray) -> None:
+    """Row-wise dot products of two (rows, k) arrays into ``out`` (``numpy.vecdot``, numpy >= 2;
+    einsum, slower, before)."""
+    if hasattr(np, "vecdot"):
+        np.vecdot(a, b, out=out)
+    else:  # numpy 1.26
+        np.einsum("ij,ij->i", a, b, out=out)
+
+
 def _power_sums(
     w: np.ndarray, x: np.ndarray, count: int, first: np.ndarray, scratch: np.ndarray, out: np.ndarray
 ) -> np.ndarray:
@@ -263,7 +272,7 @@ def _power_sums(
 
     ``first`` receives w x, ``scratch`` the higher powers but the last
     (either may be ``w`` itself when it is not needed afterwards). The last
-    power beyond the first is a row-wise dot product (``numpy.vecdot``: one
+    power beyond the first is a row-wise dot product (:func:`_row_dot`: one
     sweep instead of a product and a sum).
     """
     ones = _ones(w.shape[1], w.dtype)
@@ -271,7 +280,7 @@ def _power_sums(
     prev = w
     for j in range(1, count + 1):
         if j == count and j >= 2:
-            np.vecdot(prev, x, out=out[j])
+            _row_dot(prev, x, out[j])
             break
         dest = first if j == 1 else scratch
         np.multiply(prev, x, out=dest)
@@ -385,7 +394,7 @@ def _tile(
     if higher:
         e2, q = np.multiply(e, e, out=buf.p[:t]), buf.q[:t]
         _power_sums(e2, x, higher, q, q, buf.sq_sums[: higher + 1, a:end])
-    np.vecdot(e, e, out=buf.sq_sums[0, a:end])  # the total at 2 beta, one sweep, the same on every path
+    _row_dot(e, e, buf.sq_sums[0, a:end])  # the total at 2 beta, one sweep, the same on every path
     if pick is None:
         return
     lo, hi = np.searchsorted(pick, [a, end])
