@@ -45,10 +45,13 @@ from typing import Any, Protocol, cast
 
 import numpy as np
 
-CHUNK_ELEMENTS = 1 << 18
-"""Logit values per chunk (1 MiB of float32): large enough that the few hundred numpy
-calls a chunk takes cost little beside its arithmetic, small enough that its five
-scratch arrays stay in the cache (measured fastest among 2^16 to 2^20 on 1 000 classes)."""
+CHUNK_ELEMENTS = 1 << 19
+"""Logit values per chunk (2 MiB of float32): the per-row work of a chunk (a few hundred numpy
+calls by the consumers) costs little beside its arithmetic at this size."""
+TILE_ELEMENTS = 1 << 17
+"""Logit values per tile, the unit of the work on whole rows (exponentials, row and column sums):
+its scratch arrays (512 KiB each in float32) stay in or near the core's own cache (of 64, 128 and
+256 rows of 1 000 classes, 128 ran the same operations fastest)."""
 LANES = 4
 """Accumulator lanes: results are the same for 1 to LANES threads."""
 PARALLEL_ELEMENTS = 1 << 21
@@ -109,7 +112,34 @@ class Chunk:
 
 
 class Consumer(Protocol):
+    """A pass consumer: ``add`` per chunk; it may also have ``tile(chunk, view)``, called with
+    each :class:`Tile` of the chunk's exponentials (the only time they exist)."""
+
     def add(self, chunk: Chunk, terms: ExpTerms) -> None: ...
+
+
+@dataclass
+class Tile:
+    """The exponentials of rows ``start..start+len(total)-1`` of a chunk (scratch, valid during the call).
+
+    ``e = exp(x)``, ``x = b z - s`` and ``ex`` = e x (or None), as in
+    :class:`ExpTerms`; ``total`` the rows' totals at the exact beta (float64).
+    """
+
+    start: int
+    e: np.ndarray
+    x: np.ndarray
+    ex: np.ndarray | None
+    total: np.ndarray
+    eps: float
+
+    def probabilities(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+        """Probabilities of the entries (rows, cols) of the tile, float64."""
+        e = self.e[rows, cols].astype(np.float64)
+        if self.eps:
+            e *= 1.0 + self.eps * self.x[rows, cols]
+        p: np.ndarray = e / self.total[rows]
+        return p
 
 
 @dataclass
@@ -121,9 +151,11 @@ class ExpTerms:
     times the row maximum). The exact beta differs from b by the factor
     1 + ``eps``; weights at the exact beta are ``e exp(eps x)``, which the
     sums take to first order (``eps`` is below 6e-8, so the error is of
-    order 1e-12). ``e``, ``x`` and ``ex`` (= e x, or None) are scratch
-    buffers, valid only while the consumers run. ``total`` is
-    sum_k e_k (1 + eps x_k), so a probability is e (1 + eps x) / total.
+    order 1e-12). The exponentials exist only tile by tile (see
+    :class:`Tile`); :meth:`entries` computes a few of them again from the
+    chunk's logits ``z`` and the rows' shifts ``shift`` (None: 0).
+    ``total`` is sum_k e_k (1 + eps x_k), so a probability is
+    e (1 + eps x) / total.
 
     ``log_total`` is L(beta) = log sum_k exp(beta z_k), ``cumulants[:, j-1]``
     the j-th cumulant of z under softmax(beta z) (the j-th derivative of L),
@@ -133,9 +165,8 @@ class ExpTerms:
     beta: float
     b: float
     eps: float
-    x: np.ndarray
-    e: np.ndarray
-    ex: np.ndarray | None
+    z: np.ndarray
+    shift: np.ndarray | None
     total: np.ndarray
     log_total: np.ndarray
     top: np.ndarray
@@ -149,22 +180,35 @@ class ExpTerms:
     def nll(self) -> np.ndarray:
         return self.log_total - self.beta * self.zy
 
+    def entries(self, rows: np.ndarray, cols: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """e and x at the entries (rows, cols) of the chunk, computed as the tiles computed them."""
+        x = self.z[rows, cols]
+        if self.shift is not None or self.b != 1.0:
+            x = x * x.dtype.type(self.b)
+        if self.shift is not None:
+            x = x - self.shift[rows]
+        return np.exp(x), x
+
     def probabilities(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
         """Probabilities of the entries (rows, cols) of the chunk, float64."""
-        e = self.e[rows, cols].astype(np.float64)
+        e32, x = self.entries(rows, cols)
+        e = e32.astype(np.float64)
         if self.eps:
-            e *= 1.0 + self.eps * self.x[rows, cols]
+            e *= 1.0 + self.eps * x
         p: np.ndarray = e / self.total[rows]
         return p
 
 
 class _Buffers:
-    """Scratch arrays of one thread: five chunk-sized arrays and the row sums."""
+    """Scratch arrays of one thread: five tile-sized arrays and a chunk's row sums."""
 
     def __init__(self, rows: int, k: int, dtype: np.dtype, powers: int = 8) -> None:
-        self.x, self.e, self.ex, self.p, self.q = (np.empty((rows, k), dtype) for _ in range(5))
+        self.tile = max(1, min(rows, TILE_ELEMENTS // max(1, k)))
+        self.x, self.e, self.ex, self.p, self.q = (np.empty((self.tile, k), dtype) for _ in range(5))
         self.r = np.arange(rows)
         self.sums = np.empty((powers + 1, rows), dtype)
+        self.sq_sums = np.empty((powers + 1, rows), dtype)
+        self.sq_picked = np.empty((powers + 1, rows), dtype)  # the same, gathered, for the rows asked for
 
 
 def cumulants_from_moments(mu: np.ndarray) -> np.ndarray:
@@ -212,23 +256,37 @@ def _ones(k: int, dtype: np.dtype) -> np.ndarray:
     return _ONES[key]
 
 
+def _row_dot(a: np.ndarray, b: np.ndarray, out: np.ndarray) -> None:
+    """Row-wise dot products of two (rows, k) arrays into ``out`` (``numpy.vecdot``, numpy >= 2;
+    einsum, slower, before)."""
+    if hasattr(np, "vecdot"):
+        np.vecdot(a, b, out=out)
+    else:  # numpy 1.26
+        np.einsum("ij,ij->i", a, b, out=out)
+
+
 def _power_sums(
     w: np.ndarray, x: np.ndarray, count: int, first: np.ndarray, scratch: np.ndarray, out: np.ndarray
 ) -> np.ndarray:
-    """Row sums of w x^j, j = 0..count, as float64 rows (count + 1, rows).
+    """Row sums of w x^j, j = 0..count, into the rows of ``out`` (count + 1, rows), in w's dtype.
 
-    ``first`` receives w x, ``scratch`` the higher powers (either may be
-    ``w`` itself when it is not needed afterwards); ``out`` takes the sums.
+    ``first`` receives w x, ``scratch`` the higher powers but the last
+    (either may be ``w`` itself when it is not needed afterwards). The last
+    power beyond the first is a row-wise dot product (:func:`_row_dot`: one
+    sweep instead of a product and a sum).
     """
     ones = _ones(w.shape[1], w.dtype)
     np.matmul(w, ones, out=out[0])
     prev = w
     for j in range(1, count + 1):
+        if j == count and j >= 2:
+            _row_dot(prev, x, out[j])
+            break
         dest = first if j == 1 else scratch
         np.multiply(prev, x, out=dest)
         np.matmul(dest, ones, out=out[j])
         prev = dest
-    return out.astype(np.float64)
+    return out
 
 
 def _cumulants(sums: np.ndarray, eps: float, m: int, s: float | np.ndarray, b: float) -> tuple[np.ndarray, np.ndarray]:
@@ -259,6 +317,7 @@ def exp_terms(
     sq_moments: int | None,
     buf: _Buffers,
     sq_rows: np.ndarray | None = None,
+    tile_hook: Callable[[Tile], None] | None = None,
 ) -> ExpTerms:
     """The exponentials of one chunk and their row sums (see :class:`ExpTerms`).
 
@@ -266,6 +325,9 @@ def exp_terms(
     ``sq_moments``: None for nothing at 2 beta, else L(2 beta) for every row
     and cumulants 1..sq_moments under softmax(2 beta z) for the rows of the
     boolean mask ``sq_rows`` (all when None; NaN elsewhere).
+    The work on whole rows of logits after the row maxima runs tile by tile
+    (:data:`TILE_ELEMENTS` values, whose arrays stay in the core's own
+    cache), and ``tile_hook`` sees each tile's exponentials.
     """
     c = len(y)
     r = buf.r[:c]
@@ -277,60 +339,72 @@ def exp_terms(
     b = float(dtype.type(beta))
     eps = beta / b - 1.0
     unshifted = dtype == np.float32 and c > 0 and b * max(abs(zmax.max()), abs(zmax.min())) <= UNSHIFTED_LIMIT
-    x, e = buf.x[:c], buf.e[:c]
-    if unshifted:
-        s = 0.0
-        if b == 1.0:
-            x = z
-        else:
-            np.multiply(z, dtype.type(b), out=x)
-    else:
-        s32 = (b * zmax).astype(dtype)
-        s = s32.astype(np.float64)
-        np.multiply(z, dtype.type(b), out=x)
-        np.subtract(x, s32[:, None], out=x)
-    np.exp(x, out=e)
+    s32 = None if unshifted else (b * zmax).astype(dtype)
+    s: float | np.ndarray = 0.0 if s32 is None else s32.astype(np.float64)
     count = max(moments, 1 if eps else 0)  # the total at the exact beta needs the first power
-    sums = _power_sums(e, x, count, buf.ex[:c], buf.p[:c], buf.sums[: count + 1, :c])
-    total, kappa = _cumulants(sums, eps, moments, s, b)
+    extra = 1 if eps else 0
+    sq_count = max(sq_moments or 0, extra)
+    pick = None if sq_rows is None or not sq_moments else np.flatnonzero(sq_rows)
+    for a in range(0, c, buf.tile):
+        _tile(z, a, min(a + buf.tile, c), b, s32, eps, count, sq_moments, sq_count, pick, buf, tile_hook)
+    total, kappa = _cumulants(buf.sums[: count + 1, :c].astype(np.float64), eps, moments, s, b)
     scale = beta / b
     log_total = np.log(total)
     if not unshifted:
         log_total += scale * s
-    terms = ExpTerms(beta, b, eps, x, e, buf.ex[:c] if count else None, total, log_total, top, zmax, zy, kappa.T)
+    terms = ExpTerms(beta, b, eps, z, s32, total, log_total, top, zmax, zy, kappa.T)
     if sq_moments is not None:
-        _squares(terms, buf, sq_moments, s, scale, sq_rows)
+        sums = buf.sq_sums[: extra + 1, :c].astype(np.float64)
+        sq_total = sums[0] + 2.0 * eps * sums[1] if extra else sums[0]
+        terms.sq_log_total = np.log(sq_total) + 2.0 * scale * s
+        terms.sq_cumulants = np.full((c, sq_moments), np.nan)
+        if sq_moments:
+            rows = slice(None) if pick is None else pick
+            source = buf.sq_sums if pick is None else buf.sq_picked
+            sums = source[: sq_count + 1, :c][:, rows].astype(np.float64)
+            _, sq_kappa = _cumulants(sums, 2.0 * eps, sq_moments, s if s32 is None else cast(np.ndarray, s)[rows], b)
+            terms.sq_cumulants[rows] = sq_kappa.T
     return terms
 
 
-def _squares(
-    terms: ExpTerms, buf: _Buffers, sq_moments: int, s: float | np.ndarray, scale: float, sq_rows: np.ndarray | None
+def _tile(
+    z: np.ndarray, a: int, end: int, b: float, s32: np.ndarray | None, eps: float, count: int,
+    sq_moments: int | None, sq_count: int, pick: np.ndarray | None, buf: _Buffers, hook: Callable[[Tile], None] | None,
 ) -> None:
-    """L(2 beta) of every row, and the cumulants at 2 beta of the rows in ``sq_rows`` (weights e^2)."""
-    c = len(terms.zy)
-    e2 = np.multiply(terms.e, terms.e, out=buf.p[:c])
-    q = buf.q[:c]
-    extra = 1 if terms.eps else 0
-    sums = _power_sums(e2, terms.x, extra, q, q, buf.sums[: extra + 1, :c])
-    total = sums[0] + 2.0 * terms.eps * sums[1] if extra else sums[0]
-    terms.sq_log_total = np.log(total) + 2.0 * scale * s
-    terms.sq_cumulants = np.full((c, sq_moments), np.nan)
-    if not sq_moments:
-        return
-    count = max(sq_moments, extra)
-    pick: slice | np.ndarray
-    if sq_rows is None:
-        pick, w2, xs, ss = slice(None), e2, terms.x, s
-        out = buf.sums[: count + 1, :c]
+    """Rows a..end-1 of a chunk: their exponentials and the sums over their classes, into ``buf``."""
+    t, dtype = end - a, buf.e.dtype
+    zt, x, e = z[a:end], buf.x[:t], buf.e[:t]
+    if s32 is None and b == 1.0:
+        x = zt
     else:
-        pick = np.flatnonzero(sq_rows)
-        w2, xs = e2[pick], terms.x[pick]
-        ss = s[pick] if isinstance(s, np.ndarray) else s  # s: 0.0 or a per-row array
-        out = np.empty((count + 1, len(pick)), e2.dtype)
-    scratch = q if sq_rows is None else w2
-    sums = _power_sums(w2, xs, count, scratch, scratch, out)
-    _, kappa = _cumulants(sums, 2.0 * terms.eps, sq_moments, ss, terms.b)
-    terms.sq_cumulants[pick] = kappa.T
+        np.multiply(zt, dtype.type(b), out=x)
+        if s32 is not None:
+            np.subtract(x, s32[a:end, None], out=x)
+    np.exp(x, out=e)
+    ex = buf.ex[:t]
+    _power_sums(e, x, count, ex, buf.p[:t], buf.sums[: count + 1, a:end])
+    if hook is not None:
+        total = buf.sums[0, a:end].astype(np.float64)
+        if eps:
+            total += eps * buf.sums[1, a:end].astype(np.float64)
+        hook(Tile(a, e, x, ex if count else None, total, eps))
+    if sq_moments is None:
+        return
+    higher = sq_count if pick is None else (1 if eps else 0)  # the powers of x every row needs at 2 beta
+    if higher:
+        e2, q = np.multiply(e, e, out=buf.p[:t]), buf.q[:t]
+        _power_sums(e2, x, higher, q, q, buf.sq_sums[: higher + 1, a:end])
+    _row_dot(e, e, buf.sq_sums[0, a:end])  # the total at 2 beta, one sweep, the same on every path
+    if pick is None:
+        return
+    lo, hi = np.searchsorted(pick, [a, end])
+    if hi > lo:  # the cumulants at 2 beta of the rows asked for, gathered
+        local = pick[lo:hi] - a
+        w2 = e[local]
+        np.multiply(w2, w2, out=w2)
+        out = np.empty((sq_count + 1, hi - lo), dtype)
+        _power_sums(w2, x[local], sq_count, w2, w2, out)
+        buf.sq_picked[: sq_count + 1, pick[lo:hi]] = out
 
 
 # --------------------------------------------------------------------------
@@ -377,7 +451,7 @@ def run_pass(
     sq_part: int | None = None,
     threads: int | None = None,
 ) -> list[Sequence[Consumer]]:
-    """One pass: call every consumer on every chunk; return the consumers of each lane.
+    """One pass: call every consumer on every chunk (and tile); return the consumers of each lane.
 
     ``consumers()`` makes the consumers of one lane. Lanes hold disjoint sets
     of chunks (chunk i in lane i mod LANES); merge their sums in lane order.
@@ -402,7 +476,15 @@ def run_pass(
                 continue
             chunk = _chunk(logits, labels, selection, step, index)
             mask = None if sq_part is None or chunk.part is None else chunk.part == sq_part
-            terms = exp_terms(chunk.z, chunk.y, beta, moments, sq_moments, buf, mask)
+            tiles: list[Callable[[Chunk, Tile], None]] = [
+                fn for fn in (getattr(c, "tile", None) for c in lanes[lane]) if fn is not None
+            ]
+
+            def hook(tile: Tile, chunk: Chunk = chunk, tiles: list[Callable[[Chunk, Tile], None]] = tiles) -> None:
+                for fn in tiles:
+                    fn(chunk, tile)
+
+            terms = exp_terms(chunk.z, chunk.y, beta, moments, sq_moments, buf, mask, hook if tiles else None)
             for consumer in lanes[lane]:
                 consumer.add(chunk, terms)
 

@@ -89,3 +89,35 @@ def test_chunk_size_changes_only_the_order_of_float64_sums(rng, monkeypatch):
     chunked = evaluate(z, y, 1.4, threads=2)
     for key in METRIC_FIELDS:
         assert getattr(chunked, key) == pytest.approx(getattr(whole, key), rel=1e-12)
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_tile_size_changes_only_the_order_of_sums(rng, monkeypatch, dtype):
+    # The exponentials and the sums over a row's classes are made tile by tile; tiles of
+    # three rows (so many tiles per chunk, the last one short) must give what one tile
+    # per chunk gives: every metric of both parts, before and after, and the fit.
+    z = rng.normal(scale=3.0, size=(1500, 13)).astype(dtype)
+    y = np.argmax(z + 1.5 * rng.gumbel(size=z.shape), axis=1)
+    _pass_everywhere(monkeypatch, chunk=13 * 100)
+    monkeypatch.setattr(sweep, "TILE_ELEMENTS", 13 * 100)
+    whole = summarize(z, y, {}, FitOptions(bootstrap=0), threads=1)
+    at = evaluate(z, y, 1.7, threads=1)  # 1/1.7 is not a float32 number: the correction terms too
+    monkeypatch.setattr(sweep, "TILE_ELEMENTS", 13 * 3)
+    tiled = summarize(z, y, {}, FitOptions(bootstrap=0), threads=1)
+    tiled_at = evaluate(z, y, 1.7, threads=1)
+    # float32 column sums (the classwise ECE) are rounded per tile
+    rel = 1e-12 if dtype == np.float64 else 1e-6
+    assert tiled.result.temperature == pytest.approx(whole.result.temperature, rel=rel)
+    for got, want in ((tiled.before, whole.before), (tiled.after, whole.after), (tiled_at, at),
+                      (tiled.fit_part["after"], whole.fit_part["after"])):
+        for key in METRIC_FIELDS:
+            assert getattr(got, key) == pytest.approx(getattr(want, key), rel=rel, abs=1e-12), key
+
+
+def test_word_search_finds_what_flatnonzero_finds(rng):
+    from onnxcal.metrics.score_sums import _flat_true
+
+    for shape in [(0, 5), (1, 7), (3, 8), (17, 13), (262, 1000)]:
+        for density in (0.0, 0.003, 0.5, 1.0):
+            mask = rng.random(shape) < density
+            np.testing.assert_array_equal(_flat_true(mask), np.flatnonzero(mask))

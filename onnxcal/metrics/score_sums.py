@@ -14,8 +14,25 @@ from typing import Any, cast
 
 import numpy as np
 
-from ..sweep import ALL_ROWS, Chunk, Consumer, ExpTerms, Selection, run_pass
+from ..sweep import ALL_ROWS, Chunk, Consumer, ExpTerms, Selection, Tile, run_pass
 from .binning import DEFAULT_BINS, bin_ids
+
+
+def _flat_true(mask: np.ndarray) -> np.ndarray:
+    """``numpy.flatnonzero(mask)`` for a C-contiguous boolean array with few True entries.
+
+    The search runs over 8-byte words first (an eighth of the entries),
+    then over the bytes of the words that are not zero.
+    """
+    flat = mask.reshape(-1)
+    whole = flat.size // 8 * 8
+    words = flat[:whole].view(np.uint64)
+    found = np.flatnonzero(words != 0)
+    inside = np.flatnonzero(words[found].view(np.bool_))
+    found = found[inside >> 3] * 8 + (inside & 7)
+    if whole < flat.size:
+        found = np.concatenate([found, whole + np.flatnonzero(flat[whole:])])
+    return found
 
 
 class RowScores:
@@ -38,7 +55,8 @@ class ScoreSums:
     side of the classwise sums needs every entry: a softmax row has fewer than M
     probabilities above the first edge 1/M; only those are binned one by
     one, found by one comparison of the exponentials with a threshold per
-    chunk. The first bin of each class gets the rest, by subtraction from
+    tile, tile by tile (:meth:`tile`, while the exponentials exist), and
+    computed again from their logits. The first bin of each class gets the rest, by subtraction from
     the class's column sum (a matrix-vector product).
     """
 
@@ -51,51 +69,75 @@ class ScoreSums:
         self.column = np.zeros(parts * k)  # sum of p per (part, class)
         self.upper = np.zeros(parts * k)  # of which above the first edge
         self.first = float(np.linspace(0.0, 1.0, n_bins + 1)[1])
+        self._mask = np.zeros((0, k), bool)  # the current chunk's entries that may be above 1/M
+        self._w = np.zeros((parts, 0))  # the current chunk's weights per part
 
     def add(self, chunk: Chunk, terms: ExpTerms) -> None:
         c = len(chunk.y)
         at = slice(chunk.start, chunk.start + c)
-        log_total, beta, P = terms.log_total, terms.beta, self.parts
+        log_total, beta, P, M = terms.log_total, terms.beta, self.parts, self.n_bins
         w = np.ones(c) if chunk.w is None else chunk.w
-        part = np.zeros(c, np.intp) if chunk.part is None else chunk.part.astype(np.intp)
+        part = None if chunk.part is None else chunk.part.astype(np.intp)
         conf = np.exp(beta * terms.zmax - log_total, out=self.rows.conf[at])
         correct = np.equal(terms.top, chunk.y, out=self.rows.correct[at])
-        ids = bin_ids(conf, self.n_bins) + self.n_bins * part
-        for j, v in enumerate((w, w * conf, w * correct)):
-            self.bins[:, j] += np.bincount(ids, v, P * self.n_bins).reshape(P, self.n_bins)
+        ids = bin_ids(conf, M) if part is None else bin_ids(conf, M) + M * part
+        # the three reliability sums in one bincount: index j * (P M) + part * M + bin
+        flat = np.concatenate([ids, ids + P * M, ids + 2 * P * M])
+        sums = np.bincount(flat, np.concatenate([w, w * conf, w * correct]), 3 * P * M)
+        self.bins += sums.reshape(3, P, M).swapaxes(0, 1)
         log_py = beta * terms.zy - log_total
         # ScoreSums runs only in temperature_pass, whose sq_moments is an int, so L(2 beta) is there
         assert terms.sq_log_total is not None
         # sum_k (p_k - y_k)^2 = sum_k p_k^2 - 2 p_y + 1, sum_k p_k^2 = exp(L(2 beta) - 2 L(beta))
         brier = np.exp(terms.sq_log_total - 2.0 * log_total) - 2.0 * np.exp(log_py) + 1.0
-        self.weight += np.bincount(part, w, P)
-        self.nll -= np.bincount(part, w * log_py, P)
-        self.brier += np.bincount(part, w * brier, P)
+        if part is None:
+            self.weight += w.sum()
+            self.nll -= w @ log_py
+            self.brier += w @ brier
+        else:
+            sums = np.bincount(
+                np.concatenate([part, part + P, part + 2 * P]), np.concatenate([w, w * log_py, w * brier]), 3 * P
+            )
+            self.weight += sums[:P]
+            self.nll -= sums[P : 2 * P]
+            self.brier += sums[2 * P :]
         p_y = terms.probabilities(np.arange(c), chunk.y)  # as the classwise bins see it
-        np.add.at(self.y_sum, bin_ids(p_y, self.n_bins) + self.n_bins * chunk.y + (self.k * self.n_bins) * part, w)
-        self._classwise(terms, w, part)
+        where = bin_ids(p_y, M) + M * chunk.y
+        if part is not None:
+            where += (self.k * M) * part
+        np.add.at(self.y_sum, where, w)
+        self._upper_bins(chunk, terms, w, part)
 
-    def _classwise(self, terms: ExpTerms, w: np.ndarray, part: np.ndarray) -> None:
-        e, total, k, M = terms.e, terms.total, self.k, self.n_bins
-        c = len(total)
-        inv = (w / total).astype(e.dtype)
-        for i in range(self.parts):
-            coef = inv if self.parts == 1 else np.where(part == i, inv, e.dtype.type(0))
-            col = coef @ e
-            if terms.eps:  # p = e (1 + eps x) / total
-                col += e.dtype.type(terms.eps) * (coef @ terms.ex)
-            self.column[i * k : (i + 1) * k] += col
-        lo = float(total.min()) * self.first * (1.0 - 1e-5)  # p > 1/M needs e > total / M, give or take eps x
-        cand = np.flatnonzero(e.ravel() > e.dtype.type(lo))
-        if len(cand) > 4 * c * M:  # rows of very different totals: a threshold per row
-            lim = (total * self.first * (1.0 - 1e-5)).astype(e.dtype)
-            cand = np.flatnonzero((e > lim[:, None]).ravel())
-        rows, cols = np.divmod(cand, k)
+    def tile(self, chunk: Chunk, terms: Tile) -> None:
+        """From a tile's exponentials: the column sums of p per part, and which entries may be above 1/M."""
+        e, total = terms.e, terms.total
+        t, dtype = len(total), e.dtype
+        at = slice(terms.start, terms.start + t)
+        if terms.start == 0:  # the chunk's first tile
+            self._mask = np.empty((len(chunk.y), self.k), bool)
+            w = np.ones(len(chunk.y)) if chunk.w is None else chunk.w
+            if self.parts == 1:
+                self._w = w[None, :]
+            else:  # row p: the weights of the part's rows, 0 elsewhere
+                self._w = np.zeros((self.parts, len(w)))
+                self._w[cast(np.ndarray, chunk.part), np.arange(len(w))] = w  # parts > 1: the pass has parts
+        # p > 1/M needs e > total / M, give or take eps x (below 1e-6)
+        np.greater(e, dtype.type(float(total.min()) * self.first * (1.0 - 1e-5)), out=self._mask[at])
+        coef = (self._w[:, at] / total).astype(dtype)
+        col = coef @ e
+        if terms.eps:  # p = e (1 + eps x) / total
+            col += dtype.type(terms.eps) * (coef @ terms.ex)
+        self.column += col.ravel()
+
+    def _upper_bins(self, chunk: Chunk, terms: ExpTerms, w: np.ndarray, part: np.ndarray | None) -> None:
+        """The classwise sums of the entries above the first edge 1/M (the tiles marked the candidates)."""
+        k, M = self.k, self.n_bins
+        rows, cols = np.divmod(_flat_true(self._mask), k)
         p = terms.probabilities(rows, cols)
         keep = p > self.first
         rows, cols, p = rows[keep], cols[keep], p[keep]
         wp = p * w[rows]
-        where = cols + k * part[rows]
+        where = cols if part is None else cols + k * part[rows]
         np.add.at(self.p_sum, bin_ids(p, M) + M * where, wp)
         np.add.at(self.upper, where, wp)
 

@@ -79,3 +79,18 @@ def test_bin_ids_follow_the_searchsorted_rule(rng):
         p = np.concatenate([rng.random(5000), edges, np.nextafter(edges, 2), np.nextafter(edges, -1)])
         p = np.clip(p, 0, 1)
         np.testing.assert_array_equal(metrics.bin_ids(p, m), np.searchsorted(edges[1:-1], p))
+
+
+def test_small_arrays_are_binned_as_large_ones(rng):
+    # Arrays up to SEARCH_BELOW values go to numpy.searchsorted directly, larger ones
+    # through ceil(p M) - 1; both are the rule of sklearn's calibration_curve (searchsorted
+    # on the inner edges), including the values on and next to an edge.
+    from onnxcal.metrics import binning
+
+    for m in (7, 10, 15):
+        edges = np.linspace(0.0, 1.0, m + 1)
+        small = np.concatenate([rng.random(500), edges, np.nextafter(edges, 2.0), np.nextafter(edges, -1.0)])
+        large = np.tile(small, binning.SEARCH_BELOW // len(small) + 1)
+        assert len(small) <= binning.SEARCH_BELOW < len(large)
+        np.testing.assert_array_equal(binning.bin_ids(small, m), binning.bin_ids(large, m)[: len(small)])
+        np.testing.assert_array_equal(binning.bin_ids(small, m), np.searchsorted(edges[1:-1], small))
