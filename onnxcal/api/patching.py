@@ -6,23 +6,19 @@ import os
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
-from typing import Any, cast
+from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
 import onnx
 
 from .. import graph
-from .. import reading as _reading
 from .._limits import DEFAULT_MAX_MODEL_BYTES
 from .._numeric import check_in_dtype
 from .._paths import one_command
-from ..data import DataSpec
-from ..decisions.plan import NO_DECISIONS, DecisionOptions, Decisions
+from ..decisions.plan import NO_DECISIONS, DecisionOptions, Decisions, check_decision_options
 from ..errors import OnnxcalError
-from ..fit import FitSummary, load_fit
 from ..graph import Record
 from ..scaling import Scaling
-from . import deciding
 from .common import (
     check_columns,
     check_model_outputs,
@@ -30,6 +26,10 @@ from .common import (
     model_byte_limit,
 )
 from .models import models_in_memory
+
+if TYPE_CHECKING:  # the fit, data and decision stages are imported when the options ask for them
+    from ..data import DataSpec
+    from ..fit import FitSummary
 
 
 @dataclass(frozen=True)
@@ -140,6 +140,8 @@ def _resolve_scaling(
     if temperature is not None:
         return graph.check_temperature(temperature), {"method": "temperature", "given": True}
     assert fit_source is not None  # exactly one of the two is given (checked above)
+    from ..fit import FitSummary, load_fit
+
     summary = fit_source if isinstance(fit_source, FitSummary) else load_fit(fit_source)
     return summary.scaling, summary.to_dict()
 
@@ -204,8 +206,7 @@ def patch(
     """
     limit = model_byte_limit(max_model_bytes)
     check_columns(score_columns)
-    deciding.check_request(decisions, decision_data is not None, None)
-    separate = deciding.decision_spec(decisions, decision_data, None)
+    separate = _decision_set(decisions, decision_data)
     inputs = [model_path] + ([fit] if isinstance(fit, (str, os.PathLike)) else [])
     inputs += separate.files() if separate is not None else []
     external = check_model_outputs(out, inputs, model_path, force, limit)
@@ -235,11 +236,17 @@ def _patch_and_save(
     meta = cast("dict[str, Any]", fit_dict.get("capture")) if isinstance(fit_dict.get("capture"), dict) else {}
     if patching.output is None and meta.get("output") in {o.name for o in model.graph.output} and not records:
         patching = replace(patching, output=meta["output"])
-    reading = _reading.patch_reading(meta) if patching.output_holds is None and meta else None
+    reading = None
+    if patching.output_holds is None and meta:
+        from .. import reading as _reading
+
+        reading = _reading.patch_reading(meta)
     patched = patching.patch(model, calibration, sha=graph.PENDING_SHA256, path=model_path, fit=fit_dict,
                              reading=reading, fitted_on=fitted_on)
     chosen = None
     if separate is not None:
+        from . import deciding
+
         patched, chosen = deciding.for_patch(patched, patching.output, separate, decisions)
 
     def fill(message: onnx.ModelProto) -> None:
@@ -250,6 +257,21 @@ def _patch_and_save(
     record = graph.read_record(patched, patching.output)
     assert record is not None  # the patch just wrote the record of this output (or, without output, the last one)
     return PatchResult(path=str(out), record=record, decisions=chosen)
+
+
+def _decision_set(decisions: DecisionOptions, decision_data: str | os.PathLike[str] | DataSpec | None
+                  ) -> DataSpec | None:
+    """The labelled set to choose decision thresholds on (None: no decision outputs), checked before any work.
+
+    The decision stage (onnxruntime, the data loaders) is imported only when decisions are asked for.
+    """
+    if not decisions.wanted:
+        check_decision_options(decisions)  # deciding.check_request's whole check when none are wanted
+        return None
+    from . import deciding
+
+    deciding.check_request(decisions, decision_data is not None, None)
+    return deciding.decision_spec(decisions, decision_data, None)
 
 
 def _provenance(
