@@ -372,13 +372,19 @@ def test_a_failed_copy_or_hash_leaves_no_output_and_no_temporary(tmp_path, rng, 
 def test_a_refusal_stops_the_hash_and_writes_nothing(tmp_path, rng, monkeypatch):
     path, _ = _two_data_files(tmp_path, rng)
     inputs = sorted(os.listdir(tmp_path))
-    stopped = []
+    stopped, hashing, real_read = [], threading.Event(), graph.read_records
 
     def hash_until_stopped(folder, location, stop):  # a hash that would take 30 s unless stopped
+        hashing.set()
         stopped.append(stop.wait(timeout=30))
         raise graph.io._Stopped
 
+    def read_once_hashing(model):  # patch reads the records first: the hash is then under way
+        assert hashing.wait(timeout=30)
+        return real_read(model)
+
     monkeypatch.setattr(graph.io, "_sha256_contained", hash_until_stopped)
+    monkeypatch.setattr(graph, "read_records", read_once_hashing)
     with pytest.raises(OnnxcalError, match="no output named 'nope'|'nope'"):
         api.patch(path, tmp_path / "out.onnx", temperature=T, output="nope")
     assert stopped == [True] and not _hash_threads()
