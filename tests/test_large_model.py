@@ -11,10 +11,12 @@ than 2 GB".
 
 from __future__ import annotations
 
+import errno
 import os
 import shutil
 import subprocess
 import tempfile
+import threading
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -252,3 +254,160 @@ def test_the_output_keeps_small_tensors_in_its_graph_and_the_rest_in_its_data_fi
     first = [(tmp_path / n).read_bytes() for n in ("out.onnx", "out.onnx.data")]
     api.patch(path, tmp_path / "out.onnx", temperature=T, fold=True, force=True)
     assert [(tmp_path / n).read_bytes() for n in ("out.onnx", "out.onnx.data")] == first
+
+
+# --------------------------------------------------------------------------
+# The source hash computed on a second thread while the weights are copied
+
+
+def _two_data_files(tmp_path: Path, rng: np.random.Generator) -> tuple[Path, onnx.ModelProto]:
+    """model.onnx with w0 and b0 in weights.bin and w1 and b1 in a.bin (listed first: sorted by name).
+
+    w0 (600 x 600) and w1 (600 x 500) are over 1 MiB: they stay in their files and are copied."""
+    model = random_mlp(rng, d=600, k=500, hidden=600, final="Softmax")
+    path = tmp_path / "model.onnx"
+    _save_external(model, path, "weights.bin")
+    saved = onnx.load(str(path), load_external_data=False)
+    blob = (tmp_path / "weights.bin").read_bytes()
+    moved, offset = bytearray(), 0
+    for t in saved.graph.initializer:
+        if t.name in ("w1", "b1"):
+            entries = {e.key: e.value for e in t.external_data}
+            part = blob[int(entries.get("offset", 0)):int(entries.get("offset", 0)) + int(entries["length"])]
+            del t.external_data[:]
+            _external(t, "a.bin", offset, len(part))
+            moved += part
+            offset += len(part)
+    (tmp_path / "a.bin").write_bytes(bytes(moved))
+    path.write_bytes(saved.SerializeToString())
+    return path, model
+
+
+def _listing_hash(folder: Path) -> str:
+    # GNU coreutils' sha256sum, as docs/graph.md defines the source hash ("What the source hash covers")
+    script = "{ sha256sum < model.onnx; sha256sum a.bin weights.bin; } | sha256sum"
+    done = subprocess.run(["sh", "-c", script], cwd=folder, capture_output=True, text=True, check=True)
+    return done.stdout.split()[0]
+
+
+def test_the_hash_made_beside_the_copy_is_the_listing_and_the_bytes_are_the_sequential_ones(tmp_path, rng,
+                                                                                             monkeypatch):
+    if shutil.which("sha256sum") is None:
+        pytest.skip("GNU sha256sum is not installed")
+    path, model = _two_data_files(tmp_path, rng)
+    listed = _listing_hash(tmp_path)
+    # the hash of the data files waits until the copy into out.onnx.data has begun: a patch that
+    # waited for the hash before copying would stop here (and fail below), not run them side by side
+    copying = threading.Event()
+    real_copy, real_hash = graph.io.copy_range, graph.io._sha256_contained
+
+    def copy(*args, **kwargs):
+        copying.set()
+        return real_copy(*args, **kwargs)
+
+    def hash_when_copying(*args, **kwargs):
+        started = copying.wait(timeout=30)
+        return real_hash(*args, **kwargs) + ("" if started else "-not-concurrent")
+
+    monkeypatch.setattr(graph.io, "copy_range", copy)
+    monkeypatch.setattr(graph.io, "_sha256_contained", hash_when_copying)
+    result = api.patch(path, tmp_path / "out.onnx", temperature=T)
+    assert result.record.source_sha256 == listed
+    written = graph.read_record(onnx.load(str(tmp_path / "out.onnx"), load_external_data=False))
+    assert written is not None and written.source_sha256 == listed
+    # the same bytes as a patch that knew the hash first (graph.patch, then save_model)
+    monkeypatch.undo()
+    loaded = graph.load_model(path)
+    before = graph.patch(loaded, T, source_sha256=graph.model_sha256(path), source_name="model.onnx", fit={
+        "method": "temperature", "given": True})
+    graph.save_model(before, tmp_path / "before.onnx", external=True)
+    assert (tmp_path / "out.onnx.data").read_bytes() == (tmp_path / "before.onnx.data").read_bytes()
+    after = onnx.load(str(tmp_path / "out.onnx"), load_external_data=False)
+    for t in _tensors_in(after):  # the only difference: the name of the data file
+        for e in t.external_data:
+            if e.key == "location":
+                e.value = "before.onnx.data"
+    assert after.SerializeToString() == (tmp_path / "before.onnx").read_bytes()
+    # and the output runs: scipy's softmax of the NumPy logits / T
+    x = rng.normal(size=(8, 600)).astype(np.float32)
+    (p,) = ort.InferenceSession(str(tmp_path / "out.onnx"), providers=["CPUExecutionProvider"]).run(None, {"x": x})
+    np.testing.assert_allclose(p, softmax(_logits(model, x) / T, axis=1), atol=1e-5)
+
+
+def _tensors_in(model: onnx.ModelProto) -> list[onnx.TensorProto]:
+    return [t for t in model.graph.initializer if t.data_location == TensorProto.EXTERNAL]
+
+
+def _hash_threads() -> list[threading.Thread]:
+    return [t for t in threading.enumerate() if t.name == "onnxcal-source-hash"]
+
+
+def test_a_failed_copy_or_hash_leaves_no_output_and_no_temporary(tmp_path, rng, monkeypatch):
+    path, _ = _two_data_files(tmp_path, rng)
+    inputs = sorted(os.listdir(tmp_path))
+    calls, real_copy = [], graph.io.copy_range
+
+    def copy_then_fail(*args, **kwargs):  # the disk fills up after the first tensor
+        calls.append(args)
+        if len(calls) > 1:
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        return real_copy(*args, **kwargs)
+
+    monkeypatch.setattr(graph.io, "copy_range", copy_then_fail)
+    with pytest.raises(OnnxcalError, match="No space left on device") as failed:
+        api.patch(path, tmp_path / "out.onnx", temperature=T)
+    assert "out.onnx" in str(failed.value)
+    assert len(calls) == 2 and sorted(os.listdir(tmp_path)) == inputs and not _hash_threads()
+    monkeypatch.undo()
+
+    def unreadable(*args, **kwargs):  # a data file that cannot be read while it is hashed
+        raise OSError(errno.EIO, os.strerror(errno.EIO))
+
+    monkeypatch.setattr(graph.io, "_sha256_contained", unreadable)
+    with pytest.raises(OnnxcalError, match=r"cannot read the external data of .*Input/output error"):
+        api.patch(path, tmp_path / "out.onnx", temperature=T)
+    assert sorted(os.listdir(tmp_path)) == inputs and not _hash_threads()
+
+
+def test_a_refusal_stops_the_hash_and_writes_nothing(tmp_path, rng, monkeypatch):
+    path, _ = _two_data_files(tmp_path, rng)
+    inputs = sorted(os.listdir(tmp_path))
+    stopped, hashing, real_read = [], threading.Event(), graph.read_records
+
+    def hash_until_stopped(folder, location, stop):  # a hash that would take 30 s unless stopped
+        hashing.set()
+        stopped.append(stop.wait(timeout=30))
+        raise graph.io._Stopped
+
+    def read_once_hashing(model):  # patch reads the records first: the hash is then under way
+        assert hashing.wait(timeout=30)
+        return real_read(model)
+
+    monkeypatch.setattr(graph.io, "_sha256_contained", hash_until_stopped)
+    monkeypatch.setattr(graph, "read_records", read_once_hashing)
+    with pytest.raises(OnnxcalError, match="no output named 'nope'|'nope'"):
+        api.patch(path, tmp_path / "out.onnx", temperature=T, output="nope")
+    assert stopped == [True] and not _hash_threads()
+    assert sorted(os.listdir(tmp_path)) == inputs
+
+
+def test_a_fit_is_compared_with_the_whole_hash_before_anything_is_written(tmp_path, rng):
+    # the fit's capture names the model by its whole hash (weights included): patch waits for the
+    # hash to accept it, and refuses the fit for a model whose weights differ before writing anything
+    path, model = _two_data_files(tmp_path, rng)
+    x = rng.normal(size=(200, 600)).astype(np.float32)
+    labels = (_logits(model, x) + rng.gumbel(size=(200, 500)) * 2).argmax(axis=1)
+    np.savez(tmp_path / "val.npz", x=x, labels=labels)
+    api.fit(api.capture(path, tmp_path / "val.npz"), out=tmp_path / "fit.json", options=FitOptions(bootstrap=0))
+    result = api.patch(path, tmp_path / "out.onnx", fit=tmp_path / "fit.json")
+    assert result.record.source_sha256 == graph.model_sha256(path) and result.record.fitted_on_sha256 == ""
+    other = tmp_path / "other"
+    other.mkdir()
+    for name in ("model.onnx", "a.bin", "weights.bin"):
+        shutil.copyfile(tmp_path / name, other / name)
+    changed = bytearray((other / "a.bin").read_bytes())
+    changed[0] ^= 1  # one weight differs; the .onnx file is the same
+    (other / "a.bin").write_bytes(bytes(changed))
+    with pytest.raises(OnnxcalError, match="was fitted on the model with sha256"):
+        api.patch(other / "model.onnx", other / "out.onnx", fit=tmp_path / "fit.json")
+    assert sorted(os.listdir(other)) == ["a.bin", "model.onnx", "weights.bin"] and not _hash_threads()

@@ -9,28 +9,19 @@ import warnings
 from collections.abc import Iterable, Mapping
 from dataclasses import replace
 from pathlib import Path
-from typing import Any, cast
+from typing import TYPE_CHECKING, Any, cast
 
 import onnx
 
 from .. import graph
-from .. import reading as _reading
 from .._limits import check_memory, parse_size
 from .._paths import check_output_path, sha256_file
-from ..capture import (
-    DEFAULT_BATCH,
-    Capture,
-    ProgressFn,
-    RunOptions,
-    check_input_memory,
-    check_run_options,
-    nonfinite_logits,
-    without_nonfinite,
-)
-from ..capture import capture as capture_logits
 from ..data import Dataset, DataSpec, check_selection, load_dataset
 from ..errors import OnnxcalError, OnnxcalWarning
-from ..fit import FitSummary
+
+if TYPE_CHECKING:  # the capture, fit and reading stages are imported where they run: patch needs none of them
+    from ..capture import Capture, ProgressFn, RunOptions
+    from ..fit import FitSummary
 
 
 def model_byte_limit(max_model_bytes: int | str) -> int:
@@ -39,6 +30,8 @@ def model_byte_limit(max_model_bytes: int | str) -> int:
 
 def finite_capture(cap: Capture, source: str, drop: bool) -> tuple[Capture, str | None]:
     """``cap`` when its logits are finite; else refused, or (``drop``) without those samples and a note."""
+    from ..capture import nonfinite_logits, without_nonfinite
+
     bad = nonfinite_logits(cap)
     if not bad.count:
         return cap, None
@@ -103,6 +96,8 @@ def load_data(
     A model whose declared input shapes need more memory per batch than is
     available is refused first, before any data file is opened.
     """
+    from ..capture import DEFAULT_BATCH, check_input_memory
+
     check_input_memory(model, batch_size or DEFAULT_BATCH)
     init = {i.name for i in model.graph.initializer}
     specs = [graph.tensor_spec(vi) for vi in model.graph.input if vi.name not in init]
@@ -110,6 +105,8 @@ def load_data(
 
 
 def run_options(batch_size: int | None, threads: int, optimization: str, provider: str) -> RunOptions:
+    from ..capture import RunOptions, check_run_options
+
     return check_run_options(RunOptions(batch_size, threads, optimization, provider))
 
 
@@ -124,6 +121,10 @@ def read_and_capture(
     out: str | os.PathLike[str] | None = None, columns: str | None = None,
 ) -> Capture:
     """Read the model (checked on the first rows), check the labels against it, capture its logits."""
+    from .. import reading as _reading
+    from ..capture import DEFAULT_BATCH, check_input_memory
+    from ..capture import capture as capture_logits
+
     if dataset.labels is None:
         raise OnnxcalError(f"'{dataset.source}' has no labels", "add a 'labels' array")
     check_input_memory(model, run.batch_size or DEFAULT_BATCH, dataset)

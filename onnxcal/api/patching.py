@@ -4,25 +4,21 @@ from __future__ import annotations
 
 import os
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
-from typing import Any, cast
+from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
 import onnx
 
 from .. import graph
-from .. import reading as _reading
 from .._limits import DEFAULT_MAX_MODEL_BYTES
 from .._numeric import check_in_dtype
 from .._paths import one_command
-from ..data import DataSpec
-from ..decisions.plan import NO_DECISIONS, DecisionOptions, Decisions
+from ..decisions.plan import NO_DECISIONS, DecisionOptions, Decisions, check_decision_options
 from ..errors import OnnxcalError, keyword_errors
-from ..fit import FitSummary, load_fit
 from ..graph import Record
 from ..scaling import Scaling
-from . import deciding
 from .common import (
     check_columns,
     check_model_outputs,
@@ -30,6 +26,10 @@ from .common import (
     model_byte_limit,
 )
 from .models import models_in_memory
+
+if TYPE_CHECKING:  # the fit, data and decision stages are imported when the options ask for them
+    from ..data import DataSpec
+    from ..fit import FitSummary
 
 
 @dataclass(frozen=True)
@@ -142,6 +142,8 @@ def _resolve_scaling(
     if temperature is not None:
         return graph.check_temperature(temperature), {"method": "temperature", "given": True}
     assert fit_source is not None  # exactly one of the two is given (checked above)
+    from ..fit import FitSummary, load_fit
+
     summary = fit_source if isinstance(fit_source, FitSummary) else load_fit(fit_source)
     return summary.scaling, summary.to_dict()
 
@@ -207,8 +209,7 @@ def patch(
     """
     limit = model_byte_limit(max_model_bytes)
     check_columns(score_columns)
-    deciding.check_request(decisions, decision_data is not None, None)
-    separate = deciding.decision_spec(decisions, decision_data, None)
+    separate = _decision_set(decisions, decision_data)
     inputs = [model_path] + ([fit] if isinstance(fit, (str, os.PathLike)) else [])
     inputs += separate.files() if separate is not None else []
     external = check_model_outputs(out, inputs, model_path, force, limit)
@@ -216,47 +217,87 @@ def patch(
     if fitted_on_twin and fit is None:
         raise OnnxcalError("--fitted-on-twin applies to --fit (a fit made on another build of the model)")
     model = graph.load_model(model_path, max_bytes=limit, count_external=False)
-    sha = graph.model_sha256(model_path)
+    with graph.SourceHash(model_path) as sha:  # hashed on a second thread while the weights are copied
+        return _patch_and_save(model, model_path, out, sha, calibration, fit_dict, fit, fitted_on_twin, external,
+                               PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold,
+                                            output_holds, score_columns), separate, decisions)
+
+
+def _patch_and_save(
+    model: onnx.ModelProto, model_path: str | os.PathLike[str], out: str | os.PathLike[str], sha: graph.SourceHash,
+    calibration: float | Scaling, fit_dict: dict[str, Any], fit: FitSummary | str | os.PathLike[str] | None,
+    fitted_on_twin: bool, external: bool, patching: PatchOptions, separate: DataSpec | None,
+    decisions: DecisionOptions,
+) -> PatchResult:
+    """``patch`` once the model is loaded, while ``sha`` is computed: the record holds
+    ``PENDING_SHA256`` until the weights are copied, then the hash (waited for only here, or
+    earlier by ``_provenance``, before anything is written, when the fit's model must be compared)."""
     records = graph.read_records(model)
     for previous in records:  # re-patching undoes a head: its record must fit the graph
         graph.check_record(model, previous, f"'{model_path}'")
     fitted_on = _provenance(fit_dict, fit, model_path, sha, records, fitted_on_twin)
     meta = cast("dict[str, Any]", fit_dict.get("capture")) if isinstance(fit_dict.get("capture"), dict) else {}
-    if output is None and meta.get("output") in {o.name for o in model.graph.output} and not records:
-        output = meta["output"]
-    patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds,
-                            score_columns)
-    reading = _reading.patch_reading(meta) if output_holds is None and meta else None
-    patched = patching.patch(model, calibration, sha=sha, path=model_path, fit=fit_dict, reading=reading,
-                             fitted_on=fitted_on)
+    if patching.output is None and meta.get("output") in {o.name for o in model.graph.output} and not records:
+        patching = replace(patching, output=meta["output"])
+    reading = None
+    if patching.output_holds is None and meta:
+        from .. import reading as _reading
+
+        reading = _reading.patch_reading(meta)
+    patched = patching.patch(model, calibration, sha=graph.PENDING_SHA256, path=model_path, fit=fit_dict,
+                             reading=reading, fitted_on=fitted_on)
     chosen = None
     if separate is not None:
-        patched, chosen = deciding.for_patch(patched, output, separate, decisions)
-    graph.save_model(patched, out, external=external)
-    record = graph.read_record(patched, output)
+        from . import deciding
+
+        patched, chosen = deciding.for_patch(patched, patching.output, separate, decisions)
+
+    def fill(message: onnx.ModelProto) -> None:
+        graph.fill_source_sha256(message, sha.result())
+
+    graph.save_model(patched, out, external=external, finish=fill)
+    fill(patched)
+    record = graph.read_record(patched, patching.output)
     assert record is not None  # the patch just wrote the record of this output (or, without output, the last one)
     return PatchResult(path=str(out), record=record, decisions=chosen)
 
 
+def _decision_set(decisions: DecisionOptions, decision_data: str | os.PathLike[str] | DataSpec | None
+                  ) -> DataSpec | None:
+    """The labelled set to choose decision thresholds on (None: no decision outputs), checked before any work.
+
+    The decision stage (onnxruntime, the data loaders) is imported only when decisions are asked for.
+    """
+    if not decisions.wanted:
+        check_decision_options(decisions)  # deciding.check_request's whole check when none are wanted
+        return None
+    from . import deciding
+
+    deciding.check_request(decisions, decision_data is not None, None)
+    return deciding.decision_spec(decisions, decision_data, None)
+
+
 def _provenance(
     fit_dict: dict[str, Any], fit: FitSummary | str | os.PathLike[str] | None, model_path: str | os.PathLike[str],
-    sha: str, records: Sequence[Record], twin: bool,
+    sha: graph.SourceHash, records: Sequence[Record], twin: bool,
 ) -> str:
     """The sha256 of the twin the fit was made on ("" for this model); a fit of another model is refused.
 
     The fit's capture names the model it ran (sha256). It may be this file,
-    or, for a model already patched, the original the records name.
+    or, for a model already patched, the original the records name. The
+    model's own hash is waited for only when the others do not match.
     """
     meta = cast("dict[str, Any]", fit_dict.get("capture")) if isinstance(fit_dict.get("capture"), dict) else {}
     fitted = cast("str", meta.get("model_sha256")) if isinstance(meta.get("model_sha256"), str) else None
-    mine = {sha, file_only_sha256(model_path), *(r.source_sha256 for r in records)}
-    if fit is None or not fitted or fitted in mine:
+    if fit is None or not fitted:
+        return ""
+    if fitted in {file_only_sha256(model_path), *(r.source_sha256 for r in records)} or fitted == sha.result():
         return ""
     if not twin:
         where = f"'{fit}'" if isinstance(fit, (str, os.PathLike)) else "the fit"
         raise OnnxcalError(
             f"{where} was fitted on the model with sha256 {fitted[:12]}..., not on '{model_path}' "
-            f"(sha256 {sha[:12]}...)",
+            f"(sha256 {sha.result()[:12]}...)",
             "patch the model the fit was made on, or add --fitted-on-twin if this model is a build of it "
             "(its float16 or quantized twin)",
         )

@@ -61,6 +61,7 @@ from .find import HOLDS, Branch, ScoreSite, find_scores, fit_kind, read_as
 from .fold import FoldedValues, folded_values
 from .fold_matrix import MatrixFoldError, folds_matrix, matrix_fold_error
 from .io import (
+    SourceHash,
     external_data_files,
     external_data_path,
     load_model,
@@ -72,8 +73,10 @@ from .io import (
 from .mapped import identity_unavailable, recorded_values
 from .nested import parse_columns
 from .record import (
+    PENDING_SHA256,
     Record,
     check_record,
+    fill_source_sha256,
     parameter_values,
     read_record,
     read_records,
@@ -115,10 +118,12 @@ from .tensors import _initializer as _initializer
 
 __all__ = [
     "ACTIVATIONS", "ACTIVATION_CHOICES", "COMPUTE_DTYPES", "DEFAULT_OUTPUT_NAME", "EXTERNAL_THRESHOLD", "HOLDS",
-    "ML_DOMAIN", "RECORD_FORMAT", "RECORD_KEY", "Branch", "FoldedValues", "ModelInfo", "Record", "ScaleFn",
-    "ScoreSite", "TensorSpec", "at_identity", "check_model", "check_record", "check_temperature", "default_opset",
+    "ML_DOMAIN", "PENDING_SHA256", "RECORD_FORMAT", "RECORD_KEY", "Branch", "FoldedValues", "ModelInfo", "Record",
+    "ScaleFn", "ScoreSite", "SourceHash", "TensorSpec", "at_identity", "check_model", "check_record",
+    "check_temperature", "default_opset",
     "describe", "describe_site", "divide_by_temperature", "expose", "expose_scores", "external_data_files",
-    "external_data_path", "find_recorded", "find_scores", "fit_kind", "folded_values", "folds_matrix",
+    "external_data_path", "fill_source_sha256", "find_recorded", "find_scores", "fit_kind", "folded_values",
+    "folds_matrix",
     "for_onnxruntime", "identity_unavailable", "matrix_fold_error", "MatrixFoldError",
     "load_model", "model_files", "model_sha256", "multiply_add", "np_dtype", "opset_version", "parameter_values",
     "parse_columns", "patch", "post", "read_as", "read_record", "read_records", "recorded_values", "save_model",

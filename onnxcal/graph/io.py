@@ -11,7 +11,8 @@ import errno
 import hashlib
 import os
 import shutil
-from collections.abc import Mapping
+import threading
+from collections.abc import Callable, Mapping
 from pathlib import Path, PureWindowsPath
 from typing import Any, cast
 
@@ -202,37 +203,64 @@ def load_model(
 _HASH_BLOCK = 1 << 22
 
 
-def _hash_range(digest: Any, fd: int, offset: int, length: int | None) -> None:
+class _Stopped(Exception):
+    """A hash stopped before its end (:meth:`SourceHash.close`)."""
+
+
+def _check_stop(stop: threading.Event | None) -> None:
+    if stop is not None and stop.is_set():
+        raise _Stopped
+
+
+def _hash_range(digest: Any, fd: int, offset: int, length: int | None, stop: threading.Event | None = None) -> None:
     """Feed ``length`` bytes of ``fd`` from ``offset`` (None: to the end) to ``digest``.
 
     One buffer is read into again and again (a new bytes object per read
     would have its pages cleared by the kernel first); the holes of a
     sparse file are hashed as the zeros they read as, without reading them.
+    Once ``stop`` is set, the next block raises ``_Stopped``.
     """
     end = os.fstat(fd).st_size if length is None else offset + length
     buffer = memoryview(bytearray(_HASH_BLOCK))
     zeros = memoryview(bytes(_HASH_BLOCK))
     pos = offset
-    for start, stop in [*_data_runs(fd, offset, end), (end, end)]:
+    for start, run_end in [*_data_runs(fd, offset, end), (end, end)]:
         while pos < start:  # a hole before this run
+            _check_stop(stop)
             n = min(_HASH_BLOCK, start - pos)
             digest.update(zeros[:n])
             pos += n
-        while pos < stop:
-            n = os.preadv(fd, [buffer[:min(_HASH_BLOCK, stop - pos)]], pos)
+        while pos < run_end:
+            _check_stop(stop)
+            n = os.preadv(fd, [buffer[:min(_HASH_BLOCK, run_end - pos)]], pos)
             if n == 0:
                 raise OSError(errno.EIO, f"the file ends {end - pos} bytes early")
             digest.update(buffer[:n])
             pos += n
 
 
-def _sha256_contained(folder: Path, location: str) -> str:
+def _sha256_contained(folder: Path, location: str, stop: threading.Event | None = None) -> str:
     digest = hashlib.sha256()
     fd = open_contained(folder, location)
     try:
-        _hash_range(digest, fd, 0, None)
+        _hash_range(digest, fd, 0, None, stop)
     finally:
         os.close(fd)
+    return digest.hexdigest()
+
+
+def _file_sha256(p: Path, stop: threading.Event | None) -> str:
+    """:func:`~onnxcal._paths.sha256_file` (read to the end, the same error), stopping once ``stop`` is set."""
+    if stop is None:
+        return sha256_file(p)
+    digest, buffer = hashlib.sha256(), memoryview(bytearray(_HASH_BLOCK))
+    try:
+        with open(p, "rb", buffering=0) as fh:
+            while n := fh.readinto(buffer):
+                _check_stop(stop)
+                digest.update(buffer[:n])
+    except OSError as exc:
+        raise OnnxcalError(f"cannot read '{p}': {exc.strerror or exc}", "check that the file is readable") from exc
     return digest.hexdigest()
 
 
@@ -244,7 +272,7 @@ def _listing_line(digest: str, name: str) -> str:
     return "\\" + f"{digest}  " + name.replace("\\", "\\\\").replace("\n", "\\n") + "\n"
 
 
-def model_sha256(path: str | os.PathLike[str]) -> str:
+def model_sha256(path: str | os.PathLike[str], *, stop: threading.Event | None = None) -> str:
     """The SHA-256 that identifies a model: of its file, and with external data of its files' listing.
 
     Without external data: the file's SHA-256 (``sha256sum model.onnx``).
@@ -257,25 +285,72 @@ def model_sha256(path: str | os.PathLike[str]) -> str:
         cd MODEL_FOLDER && { sha256sum < model.onnx; sha256sum LOCATION...; } | sha256sum
 
     Every byte is read, streamed; the locations are checked as by
-    :func:`load_model` first (docs/graph.md).
+    :func:`load_model` first (docs/graph.md). :class:`SourceHash` runs this
+    on a second thread (``stop`` ends it early).
     """
     p = Path(path)
     try:
         model = onnx.load(str(p), load_external_data=False)
     except Exception:  # not a model: hash the bytes (load_model says what is wrong)
-        return sha256_file(p)
+        return _file_sha256(p, stop)
     locations = _external_locations(model)
     if not locations:
-        return sha256_file(p)
+        return _file_sha256(p, stop)
     _check_locations(locations, p)
     folder = p.resolve().parent
-    lines = [_listing_line(sha256_file(p), "-")]
+    lines = [_listing_line(_file_sha256(p, stop), "-")]
     try:
-        lines += [_listing_line(_sha256_contained(folder, loc), loc) for loc in locations]
+        lines += [_listing_line(_sha256_contained(folder, loc, stop), loc) for loc in locations]
     except OSError as exc:
         raise OnnxcalError(f"cannot read the external data of '{p}' ({exc.strerror or exc})",
                            "check that the weights files beside it are readable") from exc
     return sha256_bytes("".join(lines).encode())
+
+
+class SourceHash:
+    """:func:`model_sha256` of a model, computed on a second thread while the caller works on.
+
+    The reads and hashlib release the GIL (hashlib on buffers over 2 KiB), so
+    ``patch`` copies the weights into the output's data file (the kernel's
+    copy) on one core while the source is hashed on the other; the record,
+    which holds the hash, is written last. :meth:`result` waits for the
+    hash and raises what :func:`model_sha256` raised; :meth:`close` (also
+    on leaving a ``with`` block) stops it early, within one block of 4 MiB,
+    and waits for the thread to end, so that a refusal is not held up by a
+    hash nobody needs.
+    """
+
+    def __init__(self, path: str | os.PathLike[str]) -> None:
+        self._stop = threading.Event()
+        self._value: str | None = None
+        self._error: BaseException | None = None
+        self._thread = threading.Thread(target=self._run, args=(path,), name="onnxcal-source-hash", daemon=True)
+        self._thread.start()
+
+    def _run(self, path: str | os.PathLike[str]) -> None:
+        try:
+            self._value = model_sha256(path, stop=self._stop)
+        except BaseException as exc:  # handed to the thread that asks for the result
+            self._error = exc
+
+    def result(self) -> str:
+        """The hash, once computed (raises the hash's error, e.g. an unreadable data file)."""
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+        assert self._value is not None  # the thread ended without an error
+        return self._value
+
+    def close(self) -> None:
+        """Stop the hash, if it still runs, and wait for its thread."""
+        self._stop.set()
+        self._thread.join()
+
+    def __enter__(self) -> SourceHash:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
 
 
 def _repeated(fd: Any) -> bool:
@@ -367,6 +442,7 @@ def _data_writer(pieces: list[tuple[int, Span | bytes]], size: int) -> Writer:
                     )
                 copy_range(sources[key], fd, piece.length, piece.offset, offset, skip_holes=True)
             os.ftruncate(fd, size)
+            os.fsync(fd)  # now, while a SourceHash may still run (the write's own fsync then finds nothing to do)
         finally:
             fh.close()
             for src in sources.values():
@@ -396,8 +472,13 @@ def _check_room(path: Path, needed: int) -> None:
         )
 
 
+Finish = Callable[[onnx.ModelProto], None]
+"""Completes, in place, the model about to be serialised, once the data file is written (see
+:func:`model_files`); it must not change the serialised size (e.g. a pending hash of the same length)."""
+
+
 def model_files(
-    model: onnx.ModelProto, path: str | os.PathLike[str], *, external: bool = False
+    model: onnx.ModelProto, path: str | os.PathLike[str], *, external: bool = False, finish: Finish | None = None
 ) -> dict[Path, bytes | Writer]:
     """What ``save_model`` writes: ``path``'s bytes, and with external data ``<path>.data``'s writer.
 
@@ -407,14 +488,29 @@ def model_files(
     does not depend on the input's files), and the initializers of at least
     ``EXTERNAL_THRESHOLD`` bytes held in memory. The layout is deterministic:
     the same model gives the same bytes.
+
+    ``finish``: ``path`` becomes a writer that first calls ``finish`` on the
+    message it serialises (``model`` itself, or with external data its
+    copy that points at the data file), after the data file is written.
+    ``patch`` fills in the source hash this way, computed meanwhile by a
+    :class:`SourceHash`.
     """
     if not external and not external_tensors_of(model):
-        return {Path(path): model.SerializeToString()}
+        return {Path(path): model.SerializeToString() if finish is None else _graph_writer(model, finish)}
     data = external_data_path(path)
     copy, pieces, size = _plan_data(model, data.name)
     graph_bytes = copy.SerializeToString()
     _check_room(Path(path), size + len(graph_bytes))
-    return {data: _data_writer(pieces, size), Path(path): graph_bytes}
+    graph_file = graph_bytes if finish is None else _graph_writer(copy, finish)
+    return {data: _data_writer(pieces, size), Path(path): graph_file}
+
+
+def _graph_writer(model: onnx.ModelProto, finish: Finish) -> Writer:
+    def write(path: Path) -> None:
+        finish(model)
+        Path(path).write_bytes(model.SerializeToString())
+
+    return write
 
 
 def saved_sha256(model: onnx.ModelProto, path: str | os.PathLike[str], *, external: bool = False) -> str:
@@ -449,10 +545,13 @@ def external_tensors_of(model: onnx.ModelProto) -> bool:
     return any(is_external(t) for t in _model_tensors(model))
 
 
-def save_model(model: onnx.ModelProto, path: str | os.PathLike[str], *, external: bool = False) -> None:
-    """Write ``model`` atomically to ``path`` (see :func:`model_files`).
+def save_model(
+    model: onnx.ModelProto, path: str | os.PathLike[str], *, external: bool = False, finish: Finish | None = None
+) -> None:
+    """Write ``model`` atomically to ``path`` (see :func:`model_files`, also for ``finish``).
 
-    With external data both files are complete before either is renamed into place.
+    With external data both files are complete before either is renamed into
+    place, the data file first: an error in ``finish`` leaves neither.
     """
-    files = model_files(model, path, external=external)
+    files = model_files(model, path, external=external, finish=finish)
     atomic_write_files(cast("Mapping[str | os.PathLike[str], bytes | Writer]", files))

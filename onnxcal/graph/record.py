@@ -355,6 +355,19 @@ def _write_records(model: onnx.ModelProto, records: list[Record] | tuple[Record,
         entry.value = json.dumps([r.to_dict() for r in records], sort_keys=True)
 
 
+PENDING_SHA256 = "0" * 64
+"""The source hash a record holds until :func:`fill_source_sha256` writes the real one (same length,
+so the serialised model keeps its size)."""
+
+
+def fill_source_sha256(model: onnx.ModelProto, sha256: str) -> None:
+    """Write ``sha256`` into the records of ``model`` (in place) that hold :data:`PENDING_SHA256`."""
+    records = read_records(model)
+    if any(r.source_sha256 == PENDING_SHA256 for r in records):
+        _write_records(model, [replace(r, source_sha256=sha256) if r.source_sha256 == PENDING_SHA256 else r
+                               for r in records])
+
+
 def _write_record(model: onnx.ModelProto, record: Record | None) -> None:
     """Store one record (the model's only one), or none."""
     _write_records(model, [] if record is None else [record])

@@ -50,6 +50,31 @@ def test_inspect_loads_no_scipy_onnxruntime_or_matplotlib() -> None:
     assert not loaded & {"scipy", "onnxruntime", "matplotlib", "PIL"}
 
 
+def _modules_after(code: str) -> set[str]:
+    probe = f"{code}\nimport json, sys\nprint(json.dumps(sorted(sys.modules)))"
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=True)
+    return set(json.loads(done.stdout.splitlines()[-1]))
+
+
+def test_patch_imports_no_stage_it_does_not_run(tmp_path) -> None:
+    # patch --temperature reads, rewrites and writes a graph: it runs no model, fits nothing, draws
+    # nothing; onnx (which it reads the model with) is its one heavy import (docs/benchmarks.md)
+    from conftest import DEMO_MODEL
+
+    out = tmp_path / "patched.onnx"
+    code = (
+        "import contextlib, io\nfrom onnxcal.cli import main\n"
+        f"with contextlib.redirect_stdout(io.StringIO()):\n"
+        f"    assert main(['patch', {str(DEMO_MODEL)!r}, '--temperature', '1.5', '--out', {str(out)!r}]) == 0"
+    )
+    loaded = _modules_after(code)
+    assert out.is_file() and "onnx" in loaded
+    assert not {m.split(".")[0] for m in loaded} & {"scipy", "onnxruntime", "matplotlib", "PIL", "threadpoolctl"}
+    stages = ("capture", "fit", "maps", "metrics", "report", "verify", "reading", "sweep", "resample")
+    assert not {m for m in loaded if m.split(".")[:2] in [["onnxcal", s] for s in stages]}
+    assert "onnxcal.api.calibrating" not in loaded and "onnxcal.api.deciding" not in loaded
+
+
 def test_the_api_names_are_the_functions_whatever_was_imported_first() -> None:
     # The package attributes resolve lazily; a stage module imported before them must not
     # take their place (onnxcal.fit stays the function, the module stays importable).
