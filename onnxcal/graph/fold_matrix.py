@@ -27,7 +27,6 @@ import numpy as np
 import onnx
 
 from ..errors import OnnxcalError
-from ..maps import dirichlet
 from ..scaling import Scaling
 from .external import _make_resident, is_external, read_span, span, tensor_array
 from .fold import _check_offset, _constants, _fold_site, _FoldSite, _from_end, _recorded_fold, _store
@@ -59,6 +58,8 @@ def fold_refusal(scaling: Scaling) -> str | None:
     if scaling.is_affine or scaling.method == "matrix":
         return None
     if scaling.method == "dirichlet":
+        from ..maps import dirichlet  # here, not at the top: patch --temperature loads no map (start-up)
+
         if dirichlet.row_sums_equal(scaling.parameters):
             return None
         return ("Dirichlet calibration acts on log p = z - logsumexp(z); it folds as matrix scaling only when the "
