@@ -314,6 +314,7 @@ def atomic_paths(dests: Sequence[str | os.PathLike[str]], *, replace: bool | Non
         for t in temporaries:
             _step(t.sync, t.dest)
         _pause_for_tests(temporaries)
+        _signals.raise_if_received()  # a signal whose Interrupted a callback swallowed: publish nothing
         with _signals.deferred():
             _publish_group(temporaries)
     finally:

@@ -16,16 +16,26 @@ KeyboardInterrupt, or the default action of SIGTERM). It works at the
 Python level, so it holds whichever thread the kernel delivered the signal
 to (onnxruntime runs threads of its own, which ``pthread_sigmask`` in the
 main thread would not cover).
+
+A signal's Interrupted can be lost: raised while Python runs a garbage
+collector's callback or a ``__del__`` (a weakref callback of a plotting
+library), it is printed as "Exception ignored" and the run goes on. So
+:func:`_raise` also notes the signal: :func:`interrupting` keeps such a lost
+Interrupted off stderr, :func:`raise_if_received` (called before a group of
+outputs is published) raises it again, and the command line ends a run that
+received one as interrupted.
 """
 
 from __future__ import annotations
 
 import contextlib
 import signal
+import sys
 import threading
 from collections.abc import Iterator
 
 SIGNALS = (signal.SIGINT, signal.SIGTERM)
+_received: list[str] = []  # the signals _raise was called for in this run, in order
 
 
 class Interrupted(BaseException):
@@ -68,7 +78,27 @@ def deferred() -> Iterator[None]:
 def _raise(signum: int, frame: object) -> None:
     for s in SIGNALS:  # the run is stopping: later signals must not cut the clean-up short
         signal.signal(s, _note)
-    raise Interrupted(signal.Signals(signum).name)
+    name = signal.Signals(signum).name
+    _received.append(name)
+    raise Interrupted(name)
+
+
+def received() -> str | None:
+    """The first signal that stopped (or should have stopped) this run, else None."""
+    return _received[0] if _received else None
+
+
+def raise_if_received() -> None:
+    """Raise Interrupted again when a signal's was lost (see the module's doc); else nothing."""
+    if _received:
+        raise Interrupted(_received[0])
+
+
+def _quiet_lost_interrupt(unraisable: sys.UnraisableHookArgs) -> None:
+    """sys.unraisablehook: an Interrupted lost in a callback is noted already, not printed."""
+    if isinstance(unraisable.exc_value, Interrupted):
+        return
+    sys.__unraisablehook__(unraisable)
 
 
 def _note(signum: int, frame: object) -> None:
@@ -91,10 +121,14 @@ def interrupting() -> Iterator[None]:
         return
     previous = {s: signal.getsignal(s) for s in SIGNALS}
     installed_before = all(h in (_raise, _note) for h in previous.values())
+    hook = sys.unraisablehook
+    _received.clear()
     install()
+    sys.unraisablehook = _quiet_lost_interrupt
     try:
         yield
     finally:
+        sys.unraisablehook = hook
         for s, handler in previous.items():
             if installed_before:
                 signal.signal(s, _note)

@@ -569,3 +569,41 @@ def test_a_temporary_closes_its_descriptor_once_whatever_the_order(tmp_path, mon
     t.discard()  # the clean-up after a signal that came between the rename and the bookkeeping
     t.discard()
     assert closes.count(fd) == 1 and _leftovers(tmp_path) == [] and (tmp_path / "out.bin").read_bytes() == b"x"
+
+
+class _RaisesSignalWhenCollected:
+    """Its __del__ raises SIGINT: the handler's Interrupted is raised inside __del__, where Python
+    cannot propagate it (it calls sys.unraisablehook instead: common practice for any exception
+    raised in __del__ or a weakref callback, as a plotting library's cleanup may be)."""
+
+    def __del__(self) -> None:
+        signal.raise_signal(signal.SIGINT)
+
+
+def test_an_interrupt_lost_in_a_callback_still_stops_the_publish(tmp_path, capfd):
+    from onnxcal import _signals
+
+    dest = tmp_path / "out.txt"
+    with pytest.raises(_signals.Interrupted, match="SIGINT"), _signals.interrupting():
+        with _files.atomic_paths([dest]) as (tmp,):
+            tmp.write_text("complete")
+            _RaisesSignalWhenCollected()  # collected at once; its Interrupted is lost in __del__
+            assert _signals.received() == "SIGINT"  # ... yet the run knows it was stopped
+    assert not dest.exists() and files_in(tmp_path) == {}  # nothing published, no temporary left
+    assert "Exception ignored" not in capfd.readouterr().err  # the lost Interrupted is not printed
+    assert signal.getsignal(signal.SIGINT) is not _signals._raise  # handlers restored after the block
+
+
+def test_the_command_line_ends_a_run_whose_interrupt_was_lost_as_interrupted(tmp_path, monkeypatch, capsys):
+    import importlib
+
+    cli_app = importlib.import_module("onnxcal.cli.app")  # the module (onnxcal.cli.app is also the typer app)
+    real = cli_app.app
+
+    def runs_then_loses_an_interrupt(*args, **kwargs):
+        _RaisesSignalWhenCollected()
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(cli_app, "app", runs_then_loses_an_interrupt)
+    assert cli_app.main(["inspect", str(DEMO_MODEL)]) == 130  # 128 + SIGINT, as a shell reports it
+    assert "interrupted by SIGINT" in capsys.readouterr().err

@@ -123,6 +123,7 @@ def main(argv: Sequence[str] | None = None) -> int:
                 warnings.simplefilter("always", OnnxcalWarning)
                 warnings.showwarning = _show_warning
                 rv = app(args=args, prog_name="onnxcal", standalone_mode=False)
+            _signals.raise_if_received()  # a signal whose Interrupted a callback swallowed: the run was stopped
         except BaseException as exc:  # noqa: B036 - every ending is reported on one line
             _signals.stopping()
             return _report_failure(exc, debug, run.written, args)
