@@ -129,6 +129,8 @@ def interrupting() -> Iterator[None]:
         yield
     finally:
         sys.unraisablehook = hook
+        if not installed_before:  # called in-process (tests): what this run received ends with it
+            _received.clear()
         for s, handler in previous.items():
             if installed_before:
                 signal.signal(s, _note)

@@ -592,6 +592,7 @@ def test_an_interrupt_lost_in_a_callback_still_stops_the_publish(tmp_path, capfd
     assert not dest.exists() and files_in(tmp_path) == {}  # nothing published, no temporary left
     assert "Exception ignored" not in capfd.readouterr().err  # the lost Interrupted is not printed
     assert signal.getsignal(signal.SIGINT) is not _signals._raise  # handlers restored after the block
+    assert _signals.received() is None  # and what the run received ends with it (the next run starts afresh)
 
 
 def test_the_command_line_ends_a_run_whose_interrupt_was_lost_as_interrupted(tmp_path, monkeypatch, capsys):
