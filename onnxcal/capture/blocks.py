@@ -32,12 +32,13 @@ AUTO_BATCH_ROWS = 1 << 14
 
 
 def _run_block(
-    plan: RunPlan, dataset: Dataset, feed: Mapping[str, np.ndarray], start: int, step: int, timed: bool
+    plan: RunPlan, names: Sequence[str], dataset: Dataset, feed: Mapping[str, np.ndarray], start: int, step: int,
+    timed: bool,
 ) -> tuple[list[np.ndarray], float]:
-    """Run a block's inputs ``step`` samples per call: the outputs concatenated, and
+    """Run a block's inputs ``step`` samples per call: the outputs ``names`` concatenated, and
     (when ``timed``) the seconds spent in the runtime."""
     count = len(next(iter(feed.values())))
-    names, items, run, fed = list(plan.names), list(feed.items()), plan.session.run, dataset.feed
+    names, items, run, fed = list(names), list(feed.items()), plan.session.run, dataset.feed
     got: list[list[np.ndarray]] = []
     spent, s = 0.0, 0
     try:
@@ -113,11 +114,8 @@ def run_batches(
     they add up to :data:`RELEASE_BYTES`, so the resident size stays bounded
     without paying a page-table flush on every small block.
     """
-    reader = _Reader(dataset, plan.dtypes)
-    try:
-        yield from _blocks(plan, dataset, reader, progress, description, watch)
-    finally:
-        reader.close()
+    with Pass(plan, dataset, watch=watch) as run:
+        yield from run.blocks(progress=progress, description=description)
 
 
 class _Reader:
@@ -155,36 +153,73 @@ class _Reader:
             self.pool.shutdown(wait=True)
 
 
-def _blocks(
-    plan: RunPlan, dataset: Dataset, reader: _Reader, progress: ProgressFn | None, description: str,
-    watch: InputWatch | None,
-) -> Iterator[tuple[int, int, list[np.ndarray]]]:
-    n = dataset.n
-    mapped = dataset.mapped_row_bytes
-    released, start, step, block, grow = 0, 0, plan.step, plan.step, plan.grow
-    while start < n:
-        t0 = time.perf_counter()
-        stop = min(start + block, n)
-        feed = reader.read(start, stop)
-        row_bytes = sum(v.nbytes for v in feed.values()) / (stop - start)
-        # the next block at the present batch size (a batch size that grows later runs it in fewer calls)
-        reader.prefetch(stop, min(stop + max(step, int(BLOCK_BYTES // max(row_bytes, 1.0)) // step * step), n))
-        if watch is not None:
-            watch.add(feed, start, stop)
-        outs, spent = _run_block(plan, dataset, feed, start, step, grow)
-        yield start, stop, outs
-        if mapped and ((stop - released) * mapped >= RELEASE_BYTES or stop == n):
-            dataset.release(released, stop)
-            released = stop
-        if progress is not None:
-            progress(description, stop, n)
-        if grow and start > 0:  # the first block (one batch) pays the runtime's warm-up
-            bigger = _grown(step, time.perf_counter() - t0, spent, row_bytes)
-            step, grow = (bigger, True) if bigger else (step, False)
-        block = max(step, int(BLOCK_BYTES // max(row_bytes, 1.0)) // step * step)
-        start = stop
-    if watch is not None:
-        watch.flush()
+class Pass:
+    """One pass over the selected rows with one session, read in parts (see :func:`run_batches`).
+
+    :meth:`blocks` runs the rows from where the last part stopped up to
+    ``until``: so the first rows can be run with more outputs than the rest
+    (the probe that checks the reading wants the model's output beside the
+    logits; the capture that follows wants the logits alone) and no row
+    runs twice. The batch size, the block ahead being decoded and the input
+    watch carry over from one part to the next. Close it (or use it as a
+    context manager) to stop the decoding worker.
+    """
+
+    def __init__(self, plan: RunPlan, dataset: Dataset, *, watch: InputWatch | None = None) -> None:
+        self.plan, self.dataset, self.watch = plan, dataset, watch
+        self.reader = _Reader(dataset, plan.dtypes)
+        self.done = self.released = 0
+        self.step, self.block, self.grow = plan.step, plan.step, plan.grow
+
+    def __enter__(self) -> Pass:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        self.reader.close()
+
+    def _block_size(self, row_bytes: float) -> int:
+        """Rows per block at the present batch size: whole batches, about BLOCK_BYTES of inputs."""
+        return max(self.step, int(BLOCK_BYTES // max(row_bytes, 1.0)) // self.step * self.step)
+
+    def blocks(
+        self, names: Sequence[str] | None = None, until: int | None = None, *, progress: ProgressFn | None = None,
+        description: str = "running model",
+    ) -> Iterator[tuple[int, int, list[np.ndarray]]]:
+        """Yield ``(start, stop, outputs)`` from the first row not yet run up to ``until`` (every row by
+        default); ``names`` (default: the plan's) must be the first of the plan's names."""
+        names = tuple(self.plan.names if names is None else names)
+        assert names == self.plan.names[: len(names)]  # the samples' axis of output i is the plan's
+        n, dataset, reader = self.dataset.n, self.dataset, self.reader
+        end = n if until is None else min(until, n)
+        mapped = dataset.mapped_row_bytes
+        while self.done < end:
+            t0 = time.perf_counter()
+            start = self.done
+            stop = min(start + self.block, end)
+            feed = reader.read(start, stop)
+            row_bytes = sum(v.nbytes for v in feed.values()) / (stop - start)
+            # the next block at the present batch size (a batch size that grows later runs it in fewer calls);
+            # past ``end`` too, where the next part starts
+            reader.prefetch(stop, min(stop + self._block_size(row_bytes), end if stop < end else n))
+            if self.watch is not None:
+                self.watch.add(feed, start, stop)
+            outs, spent = _run_block(self.plan, names, dataset, feed, start, self.step, self.grow)
+            self.done = stop
+            yield start, stop, outs
+            if mapped and ((stop - self.released) * mapped >= RELEASE_BYTES or stop == n):
+                dataset.release(self.released, stop)
+                self.released = stop
+            if progress is not None:
+                progress(description, stop, n)
+            if self.grow and start > 0:  # the first block (one batch) pays the runtime's warm-up
+                bigger = _grown(self.step, time.perf_counter() - t0, spent, row_bytes)
+                self.step, self.grow = (bigger, True) if bigger else (self.step, False)
+            self.block = self._block_size(row_bytes)
+        if self.watch is not None and self.done == n:
+            self.watch.flush()
 
 
 def run_model(
@@ -205,7 +240,14 @@ def run_model(
     model's dtypes batch by batch, so memory-mapped inputs are read lazily.
     """
     plan = plan_run(model, dataset, names, resolve_options(options, batch_size), out_axes)
-    parts: list[list[np.ndarray]] = [[] for _ in names]
+    return run_plan(plan, dataset, progress=progress, description=description)
+
+
+def run_plan(
+    plan: RunPlan, dataset: Dataset, *, progress: ProgressFn | None = None, description: str = "running model"
+) -> list[np.ndarray]:
+    """:func:`run_model` with a session already open: the tensors ``plan.names`` over ``dataset``."""
+    parts: list[list[np.ndarray]] = [[] for _ in plan.names]
     for _, _, outs in run_batches(plan, dataset, progress=progress, description=description):
         for part, out in zip(parts, outs, strict=True):
             part.append(out)

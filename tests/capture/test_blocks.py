@@ -201,3 +201,40 @@ def test_a_decoded_set_is_read_one_block_ahead_in_a_worker(rng, monkeypatch):
     # arrays and memory maps are read in place: no worker
     plain = Dataset({"x": x}, np.zeros(300, np.int64), "arrays")
     assert blocks._Reader(plain, {"x": "float32"}).pool is None
+
+
+def test_the_rows_the_reading_is_checked_on_are_the_captures_first_rows_run_once(rng, monkeypatch):
+    """The probe (the first rows, run to check the reading against the model's own output) and the
+    capture are one pass of one session: every row is read and run once, in order, the decoding worker
+    going on across the two; the logits, the labels and the inputs' NaN rows are those of a capture
+    run alone, on the arrays themselves."""
+    from onnxcal.api.common import read_and_capture
+    from onnxcal.capture import blocks, plan
+    from onnxcal.guard import PROBE_ROWS
+
+    monkeypatch.setattr(blocks, "BLOCK_BYTES", 32 * 6 * 4)  # blocks of two batches of 16 rows
+    sessions = []
+    make_session = plan.make_session
+    monkeypatch.setattr(plan, "make_session", lambda *a, **kw: sessions.append(1) or make_session(*a, **kw))
+    model = random_mlp(rng, final="Softmax")
+    x = rng.normal(size=(600, 6)).astype(np.float32)
+    x[3, 1] = np.nan  # a row the probe runs
+    x[400, 0] = np.inf  # one the capture runs after it
+    labels = rng.integers(0, 4, 600)
+    lazy = _Decoded(x)
+    seen = []
+    cap = read_and_capture(model, Dataset({"x": lazy}, labels, "images"), "m.onnx", "ab", None, None, None,
+                           RunOptions(batch_size=16), lambda d, done, total: seen.append(done))
+    assert len(sessions) == 1
+    spans = [(start, stop) for _, start, stop in lazy.calls]
+    assert spans[0][0] == 0 and spans[-1][1] == 600 and PROBE_ROWS in {a for a, _ in spans}
+    assert all(a[1] == b[0] for a, b in zip(spans, spans[1:], strict=False)), spans  # each row once, in order
+    assert [name for name, _, _ in lazy.calls][-1].startswith("onnxcal-decode")
+    assert seen[0] == PROBE_ROWS and seen[-1] == 600
+    sessions.clear()
+    want = capture_of(model, Dataset({"x": x}, labels, "arrays"), batch_size=16)
+    assert len(sessions) == 1
+    np.testing.assert_array_equal(cap.logits, want.logits)
+    np.testing.assert_array_equal(cap.labels, want.labels)
+    assert cap.nonfinite_inputs["x"].count == 2 == want.nonfinite_inputs["x"].count
+    assert cap.meta.activation == "softmax"
