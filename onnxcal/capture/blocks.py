@@ -13,7 +13,7 @@ import onnx
 from ..data import Dataset
 from ..errors import OnnxcalError, first_line
 from .nonfinite import InputWatch
-from .plan import RunPlan, first, padded, plan_run
+from .plan import RunPlan, decoded_as_read, first, padded, plan_run
 from .session import RunOptions, resolve_options
 
 ProgressFn = Callable[[str, int, int], None]
@@ -107,7 +107,10 @@ def run_batches(
     batch size doubles (up to :data:`AUTO_BATCH_ROWS` samples or
     :data:`AUTO_BATCH_BYTES` of inputs); the first time it does not, it
     stays. A model whose calls take more than a few microseconds settles
-    at :data:`DEFAULT_BATCH` after the first block.
+    at :data:`DEFAULT_BATCH` after the first block. For a set decoded as
+    it is read, waiting for the decoder is not counted (a larger batch
+    would not decode faster), so an image folder runs the batch size its
+    pre-decoded arrays run.
 
     After each block has been consumed ``progress`` is called; the input
     pages of consumed rows are released (:meth:`Dataset.release`) whenever
@@ -123,14 +126,18 @@ class _Reader:
     decoded in a worker thread while the runtime runs the current one.
 
     Pillow and onnxruntime release the GIL while they work, so decoding and
-    running overlap on two cores. Arrays and memory maps are read in place
-    (a copy of a few MiB, no worker): prefetching them would only hold a
-    second block in memory.
+    running overlap; the session of such a set is opened without spinning
+    (``plan_run``): onnxruntime's intra-op threads then sleep between its
+    parallel sections instead of holding the cores the decoder needs (with
+    spinning, the image capture took 1.15 times as long as without the
+    worker on 2 busy cores; docs/benchmarks.md). Arrays and memory maps
+    are read in place (a copy of a few MiB, no worker): prefetching them
+    would only hold a second block in memory.
     """
 
     def __init__(self, dataset: Dataset, dtypes: Mapping[str, Any]) -> None:
         self.dataset, self.dtypes = dataset, dtypes
-        decoded = any(not isinstance(v, np.ndarray) for v in dataset.inputs.values())
+        decoded = decoded_as_read(dataset)
         self.pool = ThreadPoolExecutor(1, thread_name_prefix="onnxcal-decode") if decoded else None
         self.ahead: tuple[int, int, Future[dict[str, np.ndarray]]] | None = None
 
@@ -200,6 +207,8 @@ class Pass:
             start = self.done
             stop = min(start + self.block, end)
             feed = reader.read(start, stop)
+            if reader.pool is not None:  # decoding costs the same per image at any batch size: not counted
+                t0 = time.perf_counter()
             row_bytes = sum(v.nbytes for v in feed.values()) / (stop - start)
             # the next block at the present batch size (a batch size that grows later runs it in fewer calls);
             # past ``end`` too, where the next part starts

@@ -238,3 +238,35 @@ def test_the_rows_the_reading_is_checked_on_are_the_captures_first_rows_run_once
     np.testing.assert_array_equal(cap.labels, want.labels)
     assert cap.nonfinite_inputs["x"].count == 2 == want.nonfinite_inputs["x"].count
     assert cap.meta.activation == "softmax"
+
+
+def test_waiting_for_the_decoder_does_not_grow_the_batch(rng, monkeypatch):
+    """Decoding costs the same per image at any batch size: a decoder slower than the runtime must not
+    make the automatic batch size grow (an image folder runs the batch size of its pre-decoded arrays)."""
+    from onnxcal.capture import blocks, plan_run, run_batches
+
+    monkeypatch.setattr(blocks, "BLOCK_BYTES", 128 * 6 * 4)  # blocks of two batches of 64 rows
+    model = random_mlp(rng)
+    x = rng.normal(size=(1500, 6)).astype(np.float32)
+    ds = Dataset({"x": _Decoded(x)}, np.zeros(len(x), np.int64), "images")  # 10 ms per block decoded
+    plan = plan_run(model, ds, [model.graph.output[0].name], RunOptions())
+    rec = _Recorder(plan.session, sleep=0.002)  # 4 ms per block in the runtime
+    list(run_batches(replace(plan, session=rec), ds))
+    assert set(rec.sizes[:-1]) == {64}
+
+
+def test_a_decoded_set_runs_in_a_session_without_spinning(rng):
+    """onnxruntime's idle intra-op threads sleep instead of spinning on the cores the decoder needs."""
+    from onnxcal.capture import plan_run
+
+    model = random_mlp(rng)
+    x = rng.normal(size=(10, 6)).astype(np.float32)
+
+    def spinning(run_plan):
+        try:  # onnxruntime raises for an entry never set (its default: spinning)
+            return run_plan.session.get_session_options().get_session_config_entry("session.intra_op.allow_spinning")
+        except RuntimeError:
+            return None
+
+    assert spinning(plan_run(model, Dataset({"x": _Decoded(x)}, np.zeros(10, np.int64), "images"), ["logits"])) == "0"
+    assert spinning(plan_run(model, Dataset({"x": x}, np.zeros(10, np.int64), "arrays"), ["logits"])) is None
