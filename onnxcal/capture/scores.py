@@ -5,7 +5,7 @@ from __future__ import annotations
 import os
 import warnings
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -41,7 +41,6 @@ class Probe:
     plan: RunPlan
     run: Pass
     watch: InputWatch
-    blocks: list[tuple[int, np.ndarray]] = field(default_factory=list)  # (samples, logits as the model gave them)
 
     def close(self) -> None:
         self.run.close()
@@ -65,8 +64,7 @@ def _fill_scores(
     stats = RowStats()
     tiny = float(np.finfo(np_dtype(site.dtype)).tiny)
 
-    def take(scores: np.ndarray, count: int) -> None:
-        rows = as_rows(scores, site.class_axis)
+    def take(rows: np.ndarray, count: int) -> None:
         stats.add(rows)
         if site.logits_from == "log":
             stats.add_saturated(rows, tiny)
@@ -74,25 +72,26 @@ def _fill_scores(
 
     description = "capturing logits"
     if head is not None and head.site is site:
-        for count, scores in head.blocks:
-            take(scores, count)
+        take(head.z, head.samples)
         if progress is not None and head.samples:
             progress(description, head.samples, dataset.n)
-        return _continue(head.plan, head.run, (head.name,), head.watch, take, stats, progress, description)
+        _continue(head.run, (head.name,), site, take, progress, description)
+        return head.plan.mode, head.watch.found, stats
     exposed, name = expose_scores(model, site)
     plan = plan_run(exposed, dataset, [name], options)
     watch = InputWatch(dataset)
     with Pass(plan, dataset, watch=watch) as run:
-        return _continue(plan, run, (name,), watch, take, stats, progress, description)
+        _continue(run, (name,), site, take, progress, description)
+    return plan.mode, watch.found, stats
 
 
 def _continue(
-    plan: RunPlan, run: Pass, names: tuple[str, ...], watch: InputWatch, take: Callable[[np.ndarray, int], None],
-    stats: RowStats, progress: ProgressFn | None, description: str,
-) -> tuple[str, dict[str, Nonfinite], RowStats]:
+    run: Pass, names: tuple[str, ...], site: ScoreSite, take: Callable[[np.ndarray, int], None],
+    progress: ProgressFn | None, description: str,
+) -> None:
+    """The rest of the pass: every block's logits, as rows, to ``take``."""
     for start, stop, (scores, *_) in run.blocks(names, progress=progress, description=description):
-        take(scores, stop - start)
-    return plan.mode, watch.found, stats
+        take(as_rows(scores, site.class_axis), stop - start)
 
 
 def probe(
@@ -111,19 +110,18 @@ def probe(
         plan = plan_run(exposed, dataset, [name, site.tensor], options or RunOptions())
     watch = InputWatch(dataset)
     run = Pass(plan, dataset, watch=watch)
-    blocks: list[tuple[int, np.ndarray]] = []
+    logits: list[np.ndarray] = []
     values: list[np.ndarray] = []
     try:
-        for start, stop, (z, v) in run.blocks(until=min(rows, dataset.n)):
-            blocks.append((stop - start, z))
+        for _, _, (z, v) in run.blocks(until=min(rows, dataset.n)):
+            logits.append(z)
             values.append(v)
     except BaseException:
         run.close()
         raise
-    z_all = np.concatenate([z for _, z in blocks]) if len(blocks) > 1 else blocks[0][1]
+    z_all = np.concatenate(logits) if len(logits) > 1 else logits[0]
     v_all = np.concatenate(values) if len(values) > 1 else values[0]
-    return Probe(site, as_rows(z_all, site.class_axis), output_rows(v_all, site), run.done, name, plan, run, watch,
-                 blocks)
+    return Probe(site, as_rows(z_all, site.class_axis), output_rows(v_all, site), run.done, name, plan, run, watch)
 
 
 def _check_data(model: onnx.ModelProto, dataset: Dataset) -> None:

@@ -238,6 +238,12 @@ def test_the_rows_the_reading_is_checked_on_are_the_captures_first_rows_run_once
     np.testing.assert_array_equal(cap.labels, want.labels)
     assert cap.nonfinite_inputs["x"].count == 2 == want.nonfinite_inputs["x"].count
     assert cap.meta.activation == "softmax"
+    assert cap.stats.rows == 600  # the whole set's rows are checked against the reading, the probe's too
+    # a set no longer than the probe: the capture is the probe's rows alone
+    small = read_and_capture(model, Dataset({"x": _Decoded(x[:40])}, labels[:40], "images"), "m.onnx", "ab", None,
+                             None, None, RunOptions(batch_size=16), None)
+    np.testing.assert_array_equal(small.logits, want.logits[:40])
+    assert small.stats.rows == 40 and small.nonfinite_inputs["x"].count == 1
 
 
 def test_waiting_for_the_decoder_does_not_grow_the_batch(rng, monkeypatch):
