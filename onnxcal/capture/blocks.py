@@ -11,10 +11,10 @@ import numpy as np
 import onnx
 
 from ..data import Dataset
-from ..errors import OnnxcalError, first_line
+from ..errors import OnnxcalError
 from .nonfinite import InputWatch
 from .plan import RunPlan, decoded_as_read, first, padded, plan_run
-from .session import RunOptions, resolve_options
+from .session import RunOptions, resolve_options, runtime_failure
 
 ProgressFn = Callable[[str, int, int], None]
 """Called as ``progress(description, samples_done, samples_total)`` after each batch."""
@@ -54,9 +54,9 @@ def _run_block(
                 got.append(run(names, fed(batch)))
     except Exception as exc:  # onnxruntime raises its own exception types
         rows = dataset.row_numbers()
-        raise OnnxcalError(
-            f"onnxruntime failed on rows {int(rows[start + s])}..{int(rows[start + min(s + step, count) - 1])} of "
-            f"'{dataset.source}': {first_line(exc)}",
+        raise OnnxcalError(  # worded as run_batch words it: the node, its reason, the rows
+            f"{runtime_failure(exc)} on rows {int(rows[start + s])}..{int(rows[start + min(s + step, count) - 1])} "
+            f"of '{dataset.source}'",
             "check that the data matches the model's inputs",
         ) from exc
     outs = []
