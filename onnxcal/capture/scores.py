@@ -41,6 +41,7 @@ class Probe:
     plan: RunPlan
     run: Pass
     watch: InputWatch
+    warned: tuple[Warning, ...] = ()  # what opening the session warned about (the batching), for the capture
 
     def close(self) -> None:
         self.run.close()
@@ -72,6 +73,8 @@ def _fill_scores(
 
     description = "capturing logits"
     if head is not None and head.site is site:
+        for warning in head.warned:  # the capture's session is the probe's: its warnings are the capture's
+            warnings.warn(warning, stacklevel=3)
         take(head.z, head.samples)
         if progress is not None and head.samples:
             progress(description, head.samples, dataset.n)
@@ -105,9 +108,13 @@ def probe(
     probe (``head``) goes on from there.
     """
     exposed, name = expose_scores(model, site, also=(site.tensor,))
-    with warnings.catch_warnings():  # the capture that follows warns about the batching, once
-        warnings.simplefilter("ignore", OnnxcalWarning)
+    with warnings.catch_warnings(record=True) as caught:  # the capture that goes on from here warns, once
+        warnings.simplefilter("always", OnnxcalWarning)
         plan = plan_run(exposed, dataset, [name, site.tensor], options or RunOptions())
+    warned = tuple(w.message for w in caught if isinstance(w.message, OnnxcalWarning))
+    for w in caught:  # any other warning as it came
+        if not isinstance(w.message, OnnxcalWarning):
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     watch = InputWatch(dataset)
     run = Pass(plan, dataset, watch=watch)
     logits: list[np.ndarray] = []
@@ -121,7 +128,8 @@ def probe(
         raise
     z_all = np.concatenate(logits) if len(logits) > 1 else logits[0]
     v_all = np.concatenate(values) if len(values) > 1 else values[0]
-    return Probe(site, as_rows(z_all, site.class_axis), output_rows(v_all, site), run.done, name, plan, run, watch)
+    return Probe(site, as_rows(z_all, site.class_axis), output_rows(v_all, site), run.done, name, plan, run, watch,
+                 warned)
 
 
 def _check_data(model: onnx.ModelProto, dataset: Dataset) -> None:
