@@ -24,7 +24,7 @@ import onnx
 
 from . import graph
 from . import guard as _guard
-from .capture import ProgressFn, RunOptions, probe, run_model
+from .capture import Probe, ProgressFn, RunOptions, RunPlan, probe, run_model, run_plan
 from .data import Dataset, check_labels
 from .errors import OnnxcalError, OnnxcalWarning
 from .fit import FitSummary
@@ -41,11 +41,20 @@ from .verify import (
 
 @dataclass(frozen=True)
 class Reading:
-    """How the model is read, and what the first rows showed."""
+    """How the model is read, and what the first rows showed.
+
+    ``head`` is the probe of the final reading: its rows and its pass, which
+    the capture continues (:func:`onnxcal.capture.capture`); close it when done.
+    """
 
     site: ScoreSite
     notes: tuple[str, ...] = ()
     k: int = 0
+    head: Probe | None = None
+
+    def close(self) -> None:
+        if self.head is not None:
+            self.head.close()
 
 
 def read_model(
@@ -68,19 +77,37 @@ def read_model(
     """
     site = graph.find_scores(model, output, score_columns=score_columns)
     kind = graph.fit_kind(site, activation)
-    notes: list[str] = []
     if holds is not None:
         site = graph.read_as(site, holds, kind, source="stated")
-    z, values = probe(model, dataset, site, run)
-    if site.logits_from == "raw-scores" and _mismatch(z, values, site) is not None:
+    probes = [probe(model, dataset, site, run)]  # the last one is the reading's
+
+    def again(new: ScoreSite) -> Probe:
+        probes[-1].close()
+        probes.append(probe(model, dataset, new, run))
+        return probes[-1]
+
+    try:
+        return _checked(dataset, probes[0], again, holds, kind)
+    except BaseException:
+        probes[-1].close()
+        raise
+
+
+def _checked(
+    dataset: Dataset, head: Probe, again: Callable[[ScoreSite], Probe], holds: str | None, kind: str
+) -> Reading:
+    """The reading checked on the probe's rows (``again`` probes another reading)."""
+    notes: list[str] = []
+    site = head.site
+    if site.logits_from == "raw-scores" and _mismatch(head.z, head.values, site) is not None:
         notes.append(
             f"the raw scores of the {site.ml_transform} classifier behind output '{site.output}' do not "
             "reproduce its probabilities, so onnxcal calibrates log p instead"
         )
-        site = replace(site, logits_from="log")
-        z, values = probe(model, dataset, site, run)
+        head = again(replace(site, logits_from="log"))
+        site = head.site
     stats = _guard.RowStats()
-    stats.add(values)
+    stats.add(head.values)
     if holds is not None:
         if (why := _guard.agrees(stats, holds, kind)) is not None:
             raise OnnxcalError(
@@ -90,20 +117,21 @@ def read_model(
     elif site.activation is None:
         seen = _guard.looks_like(stats, kind)
         if seen != "logits":
-            site = graph.read_as(site, seen, kind, source="data")
-            z, values = probe(model, dataset, site, run)
+            head = again(graph.read_as(site, seen, kind, source="data"))
+            site = head.site
             notes.append(
                 f"output '{site.output}' holds {seen}, not logits: {_guard.describe(stats)}; onnxcal "
                 f"calibrates them through z = {_Z[site.logits_from]} and replaces the output's values in place "
                 "(say otherwise with --output-holds)"
             )
-    if site.activation is not None and (why := _mismatch(z, values, site)) is not None:
+    z = head.z
+    if site.activation is not None and (why := _mismatch(z, head.values, site)) is not None:
         raise OnnxcalError(
             f"onnxcal's reading of output '{site.output}' ({graph.describe_site(site)}) does not reproduce the "
             f"model's own output on the first rows ({why})",
             "choose another output with --output, or say what it holds with --output-holds",
         )
-    return Reading(site, tuple(notes), int(z.shape[1]) if z.ndim == 2 else 0)
+    return Reading(site, tuple(notes), int(z.shape[1]) if z.ndim == 2 else 0, head)
 
 
 _Z = {"log": "log p", "logit": "log p - log(1 - p)", "log-probabilities": "the log-probabilities themselves"}
@@ -278,8 +306,15 @@ def identity(
     dataset: Dataset,
     run: RunOptions,
     progress: ProgressFn | None = None,
+    original_run: RunPlan | None = None,
 ) -> Check:
-    """``verify.identity_check`` of the patched model at the identity against ``original``."""
+    """``verify.identity_check`` of the patched model at the identity against ``original``.
+
+    ``original_run``, when given, is a session that gives the original's
+    outputs unchanged (the capture's copy of it, whose added nodes compute
+    the logits and touch none of the original's): it runs the original's
+    side instead of a session of its own.
+    """
     if original is None:
         return skipped("identity", "no original model: the patch cannot be undone exactly (folded weights), "
                                    "give --original")
@@ -294,8 +329,12 @@ def identity(
     if not names:
         return skipped("identity", "the patched model keeps none of the original's outputs")
     out_axes = [axes[n] or 0 for n in names]
-    want = run_model(original, dataset, names, options=run, progress=progress, description="running the original",
-                     out_axes=out_axes)
+    if original_run is not None:
+        want = run_plan(replace(original_run, names=tuple(names), out_axes=tuple(out_axes)), dataset,
+                        progress=progress, description="running the original")
+    else:
+        want = run_model(original, dataset, names, options=run, progress=progress,
+                         description="running the original", out_axes=out_axes)
     got = run_model(at_one, dataset, names, options=run, progress=progress, description="running at the identity",
                     out_axes=out_axes)
     tols = _tolerances(patched, original, records, names)

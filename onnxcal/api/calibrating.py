@@ -16,7 +16,7 @@ from .._files import Writer, atomic_write_files
 from .._limits import DEFAULT_MAX_MODEL_BYTES, check_bins_memory
 from .._numeric import max_abs
 from .._paths import one_command
-from ..capture import CPU, Capture, ProgressFn, RunOptions, finite_mask
+from ..capture import CPU, Capture, ProgressFn, RunOptions, RunPlan, finite_mask
 from ..data import Dataset, DataSpec
 from ..decisions.plan import NO_DECISIONS, DecisionOptions, Decisions
 from ..errors import OnnxcalError, keyword_errors
@@ -30,6 +30,7 @@ from .capture_fit import check_fit_options, summarize_capture
 from .checks import compare_as_it_runs, record_checks
 from .common import (
     DataSource,
+    capture_read,
     check_columns,
     check_model_outputs,
     data_spec,
@@ -37,7 +38,6 @@ from .common import (
     load_data,
     model_byte_limit,
     model_files,
-    read_and_capture,
     run_options,
     warn_nonfinite_inputs,
     with_note,
@@ -94,6 +94,7 @@ class _Captured:
     keep: np.ndarray[Any, Any]
     cap: Capture
     dropped: str | None  # the note on the rows left out, if any
+    original: RunPlan | None = None  # the capture's session, which gives the original's outputs unchanged
 
 
 def _check_outputs(
@@ -112,13 +113,13 @@ def _check_outputs(
 
 def _capture_finite(source: _Source, patching: PatchOptions, drop: bool) -> _Captured:
     """Capture the model's logits; the rows holding NaN or Inf are refused or (``drop``) left out."""
-    cap = read_and_capture(
+    cap, original = capture_read(
         source.model, source.dataset, source.path, source.sha, patching.output, patching.output_holds,
         patching.activation, source.run, source.progress, columns=patching.score_columns,
     )
     keep = finite_mask(cap)
     kept, dropped = finite_capture(cap, source.dataset.source, drop)
-    return _Captured(cap, keep, kept, dropped)
+    return _Captured(cap, keep, kept, dropped, original)
 
 
 def _fit_captured(seen: _Captured, options: FitOptions, progress: ProgressFn | None) -> FitSummary:
@@ -172,7 +173,7 @@ def _patch_and_check(
     # other heads: the original's sha256
     source_sha = source.sha if len(graph.read_records(patched)) == 1 else record.source_sha256
     checks += record_checks(record, patched, source.model, source_sha)
-    checks.append(_reading.identity(source.model, patched, (record,), identity_set, run, progress))
+    checks.append(_reading.identity(source.model, patched, (record,), identity_set, run, progress, seen.original))
     notes = () if sample is None else (sample.note,)
     result = VerifyResult(checks=tuple(checks), n=dataset.n, original=str(source.path), notes=notes)
     return patched, record, result, chosen

@@ -20,7 +20,7 @@ from ..data import Dataset, DataSpec, check_selection, load_dataset
 from ..errors import OnnxcalError, OnnxcalWarning
 
 if TYPE_CHECKING:  # the capture, fit and reading stages are imported where they run: patch needs none of them
-    from ..capture import Capture, ProgressFn, RunOptions
+    from ..capture import Capture, ProgressFn, RunOptions, RunPlan
     from ..fit import FitSummary
 
 
@@ -121,6 +121,19 @@ def read_and_capture(
     out: str | os.PathLike[str] | None = None, columns: str | None = None,
 ) -> Capture:
     """Read the model (checked on the first rows), check the labels against it, capture its logits."""
+    return capture_read(model, dataset, model_path, sha, output, holds, activation, run, progress, out, columns)[0]
+
+
+def capture_read(
+    model: onnx.ModelProto, dataset: Dataset, model_path: str | os.PathLike[str], sha: str, output: str | None,
+    holds: str | None, activation: str | None, run: RunOptions, progress: ProgressFn | None,
+    out: str | os.PathLike[str] | None = None, columns: str | None = None,
+) -> tuple[Capture, RunPlan | None]:
+    """:func:`read_and_capture`, and the session that ran the original's copy when it gives the original's
+    outputs unchanged (no head inside subgraphs: the copy only adds nodes), for the identity check.
+
+    The rows the reading was checked on are the capture's first rows, run once.
+    """
     from .. import reading as _reading
     from ..capture import DEFAULT_BATCH, check_input_memory
     from ..capture import capture as capture_logits
@@ -130,16 +143,20 @@ def read_and_capture(
     check_input_memory(model, run.batch_size or DEFAULT_BATCH, dataset)
     read = _reading.read_model(model, dataset, output=output, holds=holds, activation=activation, run=run,
                                score_columns=columns)
-    site = read.site
-    kind = graph.fit_kind(site, activation)
-    if kind != "sigmoid":  # class labels (softmax, sigmoid-l1)
-        _reading.check_label_coverage(dataset.labels, read.k, site, dataset.class_names, dataset.source)
-    cap = capture_logits(
-        model, dataset, model_path=Path(model_path).name, model_sha256=sha, options=run, progress=progress,
-        activation=activation, out=out, site=site, check=_reading.capture_check(site, kind),
-    )
+    try:
+        site = read.site
+        kind = graph.fit_kind(site, activation)
+        if kind != "sigmoid":  # class labels (softmax, sigmoid-l1)
+            _reading.check_label_coverage(dataset.labels, read.k, site, dataset.class_names, dataset.source)
+        cap = capture_logits(
+            model, dataset, model_path=Path(model_path).name, model_sha256=sha, options=run, progress=progress,
+            activation=activation, out=out, site=site, check=_reading.capture_check(site, kind), head=read.head,
+        )
+    finally:
+        read.close()
     _reading.warn_saturated(site, cap.stats)
-    return replace(cap, notes=read.notes)
+    original = read.head.plan if read.head is not None and not site.branches else None
+    return replace(cap, notes=read.notes), original
 
 
 def with_note(summary: FitSummary, note: str | None) -> FitSummary:

@@ -25,7 +25,7 @@ The modules, in the order a capture uses them: ``session`` (onnxruntime,
 :class:`RunOptions`, a session, the wording of run-time failures), ``plan``
 (:func:`plan_run`: the batch plan, freeing a fixed batch dim; one batch run),
 ``blocks`` (:func:`run_batches`: blocks of batches, the automatic batch
-size; :func:`run_model`), ``nonfinite`` (NaN and Inf in inputs and logits),
+size; :class:`Pass`, a pass read in parts; :func:`run_model`), ``nonfinite`` (NaN and Inf in inputs and logits),
 ``rows`` (score rows and the labels lined up with them), ``writer`` (where
 rows go: memory or the streamed file; :func:`save_capture`), ``scores``
 (:func:`capture`, :func:`capture_scores`, :func:`probe`), ``reader``
@@ -41,16 +41,18 @@ from .blocks import (
     BLOCK_BYTES,
     OVERHEAD,
     RELEASE_BYTES,
+    Pass,
     ProgressFn,
     run_batches,
     run_model,
+    run_plan,
 )
 from .nonfinite import InputWatch, finite_mask, nonfinite_logits, nonfinite_rows, without_nonfinite
 from .plan import RunPlan, check_input_memory, free_batch_dim, plan_run, run_batch
 from .reader import load_capture, load_captures, merge_captures
 from .result import Capture, CaptureMeta, Nonfinite
 from .rows import as_rows, label_rows, log_probabilities, output_rows
-from .scores import capture, capture_scores, probe
+from .scores import Probe, capture, capture_scores, probe
 from .session import (
     CPU,
     DEFAULT_BATCH,
@@ -79,6 +81,8 @@ __all__ = [
     "CaptureMeta",
     "InputWatch",
     "Nonfinite",
+    "Pass",
+    "Probe",
     "ProgressFn",
     "RunOptions",
     "RunPlan",
@@ -105,6 +109,7 @@ __all__ = [
     "run_batch",
     "run_batches",
     "run_model",
+    "run_plan",
     "runtime_failure",
     "save_capture",
     "without_nonfinite",

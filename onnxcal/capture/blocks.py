@@ -11,10 +11,10 @@ import numpy as np
 import onnx
 
 from ..data import Dataset
-from ..errors import OnnxcalError, first_line
+from ..errors import OnnxcalError
 from .nonfinite import InputWatch
-from .plan import RunPlan, first, padded, plan_run
-from .session import RunOptions, resolve_options
+from .plan import RunPlan, decoded_as_read, first, padded, plan_run
+from .session import RunOptions, resolve_options, runtime_failure
 
 ProgressFn = Callable[[str, int, int], None]
 """Called as ``progress(description, samples_done, samples_total)`` after each batch."""
@@ -32,12 +32,13 @@ AUTO_BATCH_ROWS = 1 << 14
 
 
 def _run_block(
-    plan: RunPlan, dataset: Dataset, feed: Mapping[str, np.ndarray], start: int, step: int, timed: bool
+    plan: RunPlan, names: Sequence[str], dataset: Dataset, feed: Mapping[str, np.ndarray], start: int, step: int,
+    timed: bool,
 ) -> tuple[list[np.ndarray], float]:
-    """Run a block's inputs ``step`` samples per call: the outputs concatenated, and
+    """Run a block's inputs ``step`` samples per call: the outputs ``names`` concatenated, and
     (when ``timed``) the seconds spent in the runtime."""
     count = len(next(iter(feed.values())))
-    names, items, run, fed = list(plan.names), list(feed.items()), plan.session.run, dataset.feed
+    names, items, run, fed = list(names), list(feed.items()), plan.session.run, dataset.feed
     got: list[list[np.ndarray]] = []
     spent, s = 0.0, 0
     try:
@@ -53,9 +54,9 @@ def _run_block(
                 got.append(run(names, fed(batch)))
     except Exception as exc:  # onnxruntime raises its own exception types
         rows = dataset.row_numbers()
-        raise OnnxcalError(
-            f"onnxruntime failed on rows {int(rows[start + s])}..{int(rows[start + min(s + step, count) - 1])} of "
-            f"'{dataset.source}': {first_line(exc)}",
+        raise OnnxcalError(  # worded as run_batch words it: the node, its reason, the rows
+            f"{runtime_failure(exc)} on rows {int(rows[start + s])}..{int(rows[start + min(s + step, count) - 1])} "
+            f"of '{dataset.source}'",
             "check that the data matches the model's inputs",
         ) from exc
     outs = []
@@ -106,18 +107,18 @@ def run_batches(
     batch size doubles (up to :data:`AUTO_BATCH_ROWS` samples or
     :data:`AUTO_BATCH_BYTES` of inputs); the first time it does not, it
     stays. A model whose calls take more than a few microseconds settles
-    at :data:`DEFAULT_BATCH` after the first block.
+    at :data:`DEFAULT_BATCH` after the first block. For a set decoded as
+    it is read, waiting for the decoder is not counted (a larger batch
+    would not decode faster), so an image folder runs the batch size its
+    pre-decoded arrays run.
 
     After each block has been consumed ``progress`` is called; the input
     pages of consumed rows are released (:meth:`Dataset.release`) whenever
     they add up to :data:`RELEASE_BYTES`, so the resident size stays bounded
     without paying a page-table flush on every small block.
     """
-    reader = _Reader(dataset, plan.dtypes)
-    try:
-        yield from _blocks(plan, dataset, reader, progress, description, watch)
-    finally:
-        reader.close()
+    with Pass(plan, dataset, watch=watch) as run:
+        yield from run.blocks(progress=progress, description=description)
 
 
 class _Reader:
@@ -125,14 +126,18 @@ class _Reader:
     decoded in a worker thread while the runtime runs the current one.
 
     Pillow and onnxruntime release the GIL while they work, so decoding and
-    running overlap on two cores. Arrays and memory maps are read in place
-    (a copy of a few MiB, no worker): prefetching them would only hold a
-    second block in memory.
+    running overlap; the session of such a set is opened without spinning
+    (``plan_run``): onnxruntime's intra-op threads then sleep between its
+    parallel sections instead of holding the cores the decoder needs (with
+    spinning, the image capture took 1.15 times as long as without the
+    worker on 2 busy cores; docs/benchmarks.md). Arrays and memory maps
+    are read in place (a copy of a few MiB, no worker): prefetching them
+    would only hold a second block in memory.
     """
 
     def __init__(self, dataset: Dataset, dtypes: Mapping[str, Any]) -> None:
         self.dataset, self.dtypes = dataset, dtypes
-        decoded = any(not isinstance(v, np.ndarray) for v in dataset.inputs.values())
+        decoded = decoded_as_read(dataset)
         self.pool = ThreadPoolExecutor(1, thread_name_prefix="onnxcal-decode") if decoded else None
         self.ahead: tuple[int, int, Future[dict[str, np.ndarray]]] | None = None
 
@@ -155,36 +160,75 @@ class _Reader:
             self.pool.shutdown(wait=True)
 
 
-def _blocks(
-    plan: RunPlan, dataset: Dataset, reader: _Reader, progress: ProgressFn | None, description: str,
-    watch: InputWatch | None,
-) -> Iterator[tuple[int, int, list[np.ndarray]]]:
-    n = dataset.n
-    mapped = dataset.mapped_row_bytes
-    released, start, step, block, grow = 0, 0, plan.step, plan.step, plan.grow
-    while start < n:
-        t0 = time.perf_counter()
-        stop = min(start + block, n)
-        feed = reader.read(start, stop)
-        row_bytes = sum(v.nbytes for v in feed.values()) / (stop - start)
-        # the next block at the present batch size (a batch size that grows later runs it in fewer calls)
-        reader.prefetch(stop, min(stop + max(step, int(BLOCK_BYTES // max(row_bytes, 1.0)) // step * step), n))
-        if watch is not None:
-            watch.add(feed, start, stop)
-        outs, spent = _run_block(plan, dataset, feed, start, step, grow)
-        yield start, stop, outs
-        if mapped and ((stop - released) * mapped >= RELEASE_BYTES or stop == n):
-            dataset.release(released, stop)
-            released = stop
-        if progress is not None:
-            progress(description, stop, n)
-        if grow and start > 0:  # the first block (one batch) pays the runtime's warm-up
-            bigger = _grown(step, time.perf_counter() - t0, spent, row_bytes)
-            step, grow = (bigger, True) if bigger else (step, False)
-        block = max(step, int(BLOCK_BYTES // max(row_bytes, 1.0)) // step * step)
-        start = stop
-    if watch is not None:
-        watch.flush()
+class Pass:
+    """One pass over the selected rows with one session, read in parts (see :func:`run_batches`).
+
+    :meth:`blocks` runs the rows from where the last part stopped up to
+    ``until``: so the first rows can be run with more outputs than the rest
+    (the probe that checks the reading wants the model's output beside the
+    logits; the capture that follows wants the logits alone) and no row
+    runs twice. The batch size, the block ahead being decoded and the input
+    watch carry over from one part to the next. Close it (or use it as a
+    context manager) to stop the decoding worker.
+    """
+
+    def __init__(self, plan: RunPlan, dataset: Dataset, *, watch: InputWatch | None = None) -> None:
+        self.plan, self.dataset, self.watch = plan, dataset, watch
+        self.reader = _Reader(dataset, plan.dtypes)
+        self.done = self.released = 0
+        self.step, self.block, self.grow = plan.step, plan.step, plan.grow
+
+    def __enter__(self) -> Pass:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        self.reader.close()
+
+    def _block_size(self, row_bytes: float) -> int:
+        """Rows per block at the present batch size: whole batches, about BLOCK_BYTES of inputs."""
+        return max(self.step, int(BLOCK_BYTES // max(row_bytes, 1.0)) // self.step * self.step)
+
+    def blocks(
+        self, names: Sequence[str] | None = None, until: int | None = None, *, progress: ProgressFn | None = None,
+        description: str = "running model",
+    ) -> Iterator[tuple[int, int, list[np.ndarray]]]:
+        """Yield ``(start, stop, outputs)`` from the first row not yet run up to ``until`` (every row by
+        default); ``names`` (default: the plan's) must be the first of the plan's names."""
+        names = tuple(self.plan.names if names is None else names)
+        assert names == self.plan.names[: len(names)]  # the samples' axis of output i is the plan's
+        n, dataset, reader = self.dataset.n, self.dataset, self.reader
+        end = n if until is None else min(until, n)
+        mapped = dataset.mapped_row_bytes
+        while self.done < end:
+            t0 = time.perf_counter()
+            start = self.done
+            stop = min(start + self.block, end)
+            feed = reader.read(start, stop)
+            if reader.pool is not None:  # decoding costs the same per image at any batch size: not counted
+                t0 = time.perf_counter()
+            row_bytes = sum(v.nbytes for v in feed.values()) / (stop - start)
+            # the next block at the present batch size (a batch size that grows later runs it in fewer calls);
+            # past ``end`` too, where the next part starts
+            reader.prefetch(stop, min(stop + self._block_size(row_bytes), end if stop < end else n))
+            if self.watch is not None:
+                self.watch.add(feed, start, stop)
+            outs, spent = _run_block(self.plan, names, dataset, feed, start, self.step, self.grow)
+            self.done = stop
+            yield start, stop, outs
+            if mapped and ((stop - self.released) * mapped >= RELEASE_BYTES or stop == n):
+                dataset.release(self.released, stop)
+                self.released = stop
+            if progress is not None:
+                progress(description, stop, n)
+            if self.grow and start > 0:  # the first block (one batch) pays the runtime's warm-up
+                bigger = _grown(self.step, time.perf_counter() - t0, spent, row_bytes)
+                self.step, self.grow = (bigger, True) if bigger else (self.step, False)
+            self.block = self._block_size(row_bytes)
+        if self.watch is not None and self.done == n:
+            self.watch.flush()
 
 
 def run_model(
@@ -205,7 +249,14 @@ def run_model(
     model's dtypes batch by batch, so memory-mapped inputs are read lazily.
     """
     plan = plan_run(model, dataset, names, resolve_options(options, batch_size), out_axes)
-    parts: list[list[np.ndarray]] = [[] for _ in names]
+    return run_plan(plan, dataset, progress=progress, description=description)
+
+
+def run_plan(
+    plan: RunPlan, dataset: Dataset, *, progress: ProgressFn | None = None, description: str = "running model"
+) -> list[np.ndarray]:
+    """:func:`run_model` with a session already open: the tensors ``plan.names`` over ``dataset``."""
+    parts: list[list[np.ndarray]] = [[] for _ in plan.names]
     for _, _, outs in run_batches(plan, dataset, progress=progress, description=description):
         for part, out in zip(parts, outs, strict=True):
             part.append(out)

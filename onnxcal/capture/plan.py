@@ -25,6 +25,11 @@ def graph_inputs(model: onnx.ModelProto) -> list[onnx.ValueInfoProto]:
     return [vi for vi in model.graph.input if vi.name not in init]
 
 
+def decoded_as_read(dataset: Dataset) -> bool:
+    """Whether the set is decoded as it is read (an image folder), not read from arrays or memory maps."""
+    return any(not isinstance(v, np.ndarray) for v in dataset.inputs.values())
+
+
 def _fixed_batch(model: onnx.ModelProto, dataset: Dataset | None = None) -> int | None:
     """The fixed batch size of the first input the data feed per sample (on its batch axis), or None."""
     constants = dataset.constants if dataset is not None else {}
@@ -163,7 +168,8 @@ def plan_run(
     grow = options.batch_size is None
     batch = DEFAULT_BATCH if options.batch_size is None else options.batch_size
     check_input_memory(model, batch, dataset)
-    session = make_session(model, options)
+    spinning = not decoded_as_read(dataset)
+    session = make_session(model, options, spinning=spinning)
     dtypes = _dtypes(model, session)
     fixed = _fixed_batch(model, dataset)
     if fixed is None:
@@ -174,7 +180,7 @@ def plan_run(
     probe = min(batch, dataset.n)
     try:
         copy = free_batch_dim(model, fixed, dataset.batch_axes, tuple(dataset.constants))
-        freed = RunPlan(make_session(copy, options), tuple(names), dtypes,
+        freed = RunPlan(make_session(copy, options, spinning=spinning), tuple(names), dtypes,
                         batch, None, "freed", grow, axes)
         got = run_batch(freed, dataset, 0, probe)
         reason = _disagreement(got, run_span(native, dataset, 0, probe), names, probe, fixed)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 import warnings
 from collections.abc import Callable
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -14,13 +15,36 @@ from ..data import Dataset, check_labels, constant_record, match_inputs, read_np
 from ..errors import OnnxcalError, OnnxcalWarning
 from ..graph import ScoreSite, expose_scores, find_scores, fit_kind, np_dtype, tensor_spec
 from ..guard import PROBE_ROWS, RowStats
-from .blocks import ProgressFn, run_batches
+from .blocks import Pass, ProgressFn
 from .nonfinite import InputWatch
-from .plan import graph_inputs, plan_run, run_span
+from .plan import RunPlan, graph_inputs, plan_run
 from .result import Capture, CaptureMeta, Nonfinite
 from .rows import as_rows, label_rows, output_rows
 from .session import RunOptions, resolve_options
 from .writer import MemoryRows, NpyRows, Rows, open_archive, write_tail
+
+
+@dataclass
+class Probe:
+    """The first rows of a pass over the set: the logits and the output's values the reading is checked
+    on (:func:`probe`), and the pass itself, which :func:`capture` continues so that no row runs twice.
+
+    ``plan`` is the session of the copy of the model that outputs the logits
+    (``name``) beside its own outputs; close the probe when done with it.
+    """
+
+    site: ScoreSite
+    z: np.ndarray  # the logits, as rows
+    values: np.ndarray  # the output's values, as rows
+    samples: int  # the samples they come from
+    name: str  # the logits' output in the copy
+    plan: RunPlan
+    run: Pass
+    watch: InputWatch
+    warned: tuple[Warning, ...] = ()  # what opening the session warned about (the batching), for the capture
+
+    def close(self) -> None:
+        self.run.close()
 
 
 def _fill_scores(
@@ -30,39 +54,82 @@ def _fill_scores(
     sink: Rows,
     options: RunOptions,
     progress: ProgressFn | None,
+    head: Probe | None = None,
 ) -> tuple[str, dict[str, Nonfinite], RowStats]:
     """Run the model and pass its logits to ``sink``; return the batching mode, the
-    inputs whose rows held NaN or Inf, and what the rows look like (``guard``)."""
-    exposed, name = expose_scores(model, site)
-    plan = plan_run(exposed, dataset, [name], options)
-    watch = InputWatch(dataset)
+    inputs whose rows held NaN or Inf, and what the rows look like (``guard``).
+
+    With ``head`` (a probe of the same reading) its rows come first and the
+    pass goes on from where it stopped; else a pass of its own runs every row.
+    """
     stats = RowStats()
     tiny = float(np.finfo(np_dtype(site.dtype)).tiny)
-    batches = run_batches(plan, dataset, progress=progress, description="capturing logits", watch=watch)
-    for start, stop, (scores,) in batches:
-        rows = as_rows(scores, site.class_axis)
+
+    def take(rows: np.ndarray, count: int) -> None:
         stats.add(rows)
         if site.logits_from == "log":
             stats.add_saturated(rows, tiny)
-        sink.add(rows, stop - start)
+        sink.add(rows, count)
+
+    description = "capturing logits"
+    if head is not None and head.site is site:
+        for warning in head.warned:  # the capture's session is the probe's: its warnings are the capture's
+            warnings.warn(warning, stacklevel=3)
+        take(head.z, head.samples)
+        if progress is not None and head.samples:
+            progress(description, head.samples, dataset.n)
+        _continue(head.run, (head.name,), site, take, progress, description)
+        return head.plan.mode, head.watch.found, stats
+    exposed, name = expose_scores(model, site)
+    plan = plan_run(exposed, dataset, [name], options)
+    watch = InputWatch(dataset)
+    with Pass(plan, dataset, watch=watch) as run:
+        _continue(run, (name,), site, take, progress, description)
     return plan.mode, watch.found, stats
+
+
+def _continue(
+    run: Pass, names: tuple[str, ...], site: ScoreSite, take: Callable[[np.ndarray, int], None],
+    progress: ProgressFn | None, description: str,
+) -> None:
+    """The rest of the pass: every block's logits, as rows, to ``take``."""
+    for start, stop, (scores, *_) in run.blocks(names, progress=progress, description=description):
+        take(as_rows(scores, site.class_axis), stop - start)
 
 
 def probe(
     model: onnx.ModelProto, dataset: Dataset, site: ScoreSite, options: RunOptions | None = None,
     rows: int = PROBE_ROWS,
-) -> tuple[np.ndarray, np.ndarray]:
+) -> Probe:
     """The logits and the output's values of the first ``rows`` samples, as rows.
 
     Run before a capture to check the reading against the model's own
-    output and to see what the output holds.
+    output and to see what the output holds; :func:`capture` given the
+    probe (``head``) goes on from there.
     """
     exposed, name = expose_scores(model, site, also=(site.tensor,))
-    with warnings.catch_warnings():  # the capture that follows warns about the batching, once
-        warnings.simplefilter("ignore", OnnxcalWarning)
+    with warnings.catch_warnings(record=True) as caught:  # the capture that goes on from here warns, once
+        warnings.simplefilter("always", OnnxcalWarning)
         plan = plan_run(exposed, dataset, [name, site.tensor], options or RunOptions())
-    z, values = run_span(plan, dataset, 0, min(rows, dataset.n))
-    return as_rows(z, site.class_axis), output_rows(values, site)
+    warned = tuple(w.message for w in caught if isinstance(w.message, OnnxcalWarning))
+    for w in caught:  # any other warning as it came
+        if not isinstance(w.message, OnnxcalWarning):
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    watch = InputWatch(dataset)
+    run = Pass(plan, dataset, watch=watch)
+    logits: list[np.ndarray] = []
+    values: list[np.ndarray] = []
+    try:
+        for _, _, (z, v) in run.blocks(until=min(rows, dataset.n)):
+            logits.append(z)
+            values.append(v)
+    except BaseException:
+        run.close()
+        raise
+    z_all = np.concatenate(logits) if len(logits) > 1 else logits[0]
+    v_all = np.concatenate(values) if len(values) > 1 else values[0]
+    return Probe(site, as_rows(z_all, site.class_axis), output_rows(v_all, site), run.done, name, plan, run, watch,
+                 warned)
 
 
 def _check_data(model: onnx.ModelProto, dataset: Dataset) -> None:
@@ -104,6 +171,7 @@ def capture(
     activation: str | None = None,
     site: ScoreSite | None = None,
     check: Callable[[RowStats], None] | None = None,
+    head: Probe | None = None,
 ) -> Capture:
     """Run the model over a labelled set and return its logits.
 
@@ -133,6 +201,9 @@ def capture(
     check : callable, optional
         Called with the statistics of every captured row (``guard.RowStats``)
         before anything is written; it raises to refuse the capture.
+    head : Probe, optional
+        The first rows, already run by :func:`probe` for this reading: the
+        capture goes on from there (its pass is not closed here).
 
     Returns
     -------
@@ -148,7 +219,7 @@ def capture(
     _check_data(model, dataset)
 
     def fill(sink: Rows) -> tuple[str, dict[str, Nonfinite], RowStats]:
-        found = _fill_scores(model, dataset, site, sink, options, progress)
+        found = _fill_scores(model, dataset, site, sink, options, progress, head)
         if check is not None:
             check(found[2])
         return found

@@ -105,11 +105,14 @@ def resolve_options(options: RunOptions | None, batch_size: int | None) -> RunOp
     return options if batch_size is None else replace(options, batch_size=batch_size)
 
 
-def make_session(model: onnx.ModelProto, options: RunOptions | None = None) -> Any:
+def make_session(model: onnx.ModelProto, options: RunOptions | None = None, *, spinning: bool = True) -> Any:
     """An onnxruntime session for an in-memory model (CPU unless ``options`` say else).
 
     Weights the model keeps in external data are read by onnxruntime from
     their files (never serialised into one message, which could not exceed 2 GiB).
+    Without ``spinning`` the runtime's idle intra-op threads sleep instead of
+    spinning: for a set decoded in a worker thread while the model runs
+    (images), which needs a core the spinning threads would hold.
     """
     ort = onnxruntime()
     options = options or RunOptions()
@@ -119,6 +122,8 @@ def make_session(model: onnx.ModelProto, options: RunOptions | None = None) -> A
     opts.log_severity_level = 4
     if options.threads:
         opts.intra_op_num_threads = options.threads
+    if not spinning:
+        opts.add_session_config_entry("session.intra_op.allow_spinning", "0")
     opts.graph_optimization_level = getattr(
         ort.GraphOptimizationLevel, OPTIMIZATION_LEVELS[options.optimization]
     )

@@ -96,6 +96,26 @@ def test_demo_calibration(tmp_path):
     assert evaluate(z, test["labels"], s.temperature).ece < evaluate(z, test["labels"]).ece
 
 
+def test_calibrate_opens_three_sessions_and_runs_the_checked_rows_once(digits_setup, monkeypatch, tmp_path):
+    """One session of the original's copy serves the reading's probe, the capture (which goes on from the
+    probe's rows) and the original's side of the identity check; one runs the patched model, one the
+    patched model at T = 1. The checks are those of verify on the same rows."""
+    from onnxcal.capture import plan
+
+    d, *_ = digits_setup
+    opened = []
+    make_session = plan.make_session
+    monkeypatch.setattr(plan, "make_session", lambda *a, **kw: opened.append(1) or make_session(*a, **kw))
+    result = api.calibrate(d / "digits.onnx", d / "val.npz", tmp_path / "c.onnx")
+    assert len(opened) == 3
+    checks = {c.name: c for c in result.verification.checks}
+    assert checks["identity"].passed and not checks["identity"].skipped and checks["reference"].passed
+    # the written model checked on every row by verify (its own sessions): the same verdicts
+    full = {c.name: c for c in api.verify(tmp_path / "c.onnx", d / "val.npz", original=d / "digits.onnx").checks}
+    assert full["identity"].passed and full["reference"].passed
+    assert checks["identity"].value == pytest.approx(full["identity"].value, abs=1e-6)
+
+
 def test_digits_vector_scaling_end_to_end(digits_setup):
     d, clf, x_test, y_test = digits_setup
     out = d / "vector.onnx"

@@ -201,3 +201,78 @@ def test_a_decoded_set_is_read_one_block_ahead_in_a_worker(rng, monkeypatch):
     # arrays and memory maps are read in place: no worker
     plain = Dataset({"x": x}, np.zeros(300, np.int64), "arrays")
     assert blocks._Reader(plain, {"x": "float32"}).pool is None
+
+
+def test_the_rows_the_reading_is_checked_on_are_the_captures_first_rows_run_once(rng, monkeypatch):
+    """The probe (the first rows, run to check the reading against the model's own output) and the
+    capture are one pass of one session: every row is read and run once, in order, the decoding worker
+    going on across the two; the logits, the labels and the inputs' NaN rows are those of a capture
+    run alone, on the arrays themselves."""
+    from onnxcal.api.common import read_and_capture
+    from onnxcal.capture import blocks, plan
+    from onnxcal.guard import PROBE_ROWS
+
+    monkeypatch.setattr(blocks, "BLOCK_BYTES", 32 * 6 * 4)  # blocks of two batches of 16 rows
+    sessions = []
+    make_session = plan.make_session
+    monkeypatch.setattr(plan, "make_session", lambda *a, **kw: sessions.append(1) or make_session(*a, **kw))
+    model = random_mlp(rng, final="Softmax")
+    x = rng.normal(size=(600, 6)).astype(np.float32)
+    x[3, 1] = np.nan  # a row the probe runs
+    x[400, 0] = np.inf  # one the capture runs after it
+    labels = rng.integers(0, 4, 600)
+    lazy = _Decoded(x)
+    seen = []
+    cap = read_and_capture(model, Dataset({"x": lazy}, labels, "images"), "m.onnx", "ab", None, None, None,
+                           RunOptions(batch_size=16), lambda d, done, total: seen.append(done))
+    assert len(sessions) == 1
+    spans = [(start, stop) for _, start, stop in lazy.calls]
+    assert spans[0][0] == 0 and spans[-1][1] == 600 and PROBE_ROWS in {a for a, _ in spans}
+    assert all(a[1] == b[0] for a, b in zip(spans, spans[1:], strict=False)), spans  # each row once, in order
+    assert [name for name, _, _ in lazy.calls][-1].startswith("onnxcal-decode")
+    assert seen[0] == PROBE_ROWS and seen[-1] == 600
+    sessions.clear()
+    want = capture_of(model, Dataset({"x": x}, labels, "arrays"), batch_size=16)
+    assert len(sessions) == 1
+    np.testing.assert_array_equal(cap.logits, want.logits)
+    np.testing.assert_array_equal(cap.labels, want.labels)
+    assert cap.nonfinite_inputs["x"].count == 2 == want.nonfinite_inputs["x"].count
+    assert cap.meta.activation == "softmax"
+    assert cap.stats.rows == 600  # the whole set's rows are checked against the reading, the probe's too
+    # a set no longer than the probe: the capture is the probe's rows alone
+    small = read_and_capture(model, Dataset({"x": _Decoded(x[:40])}, labels[:40], "images"), "m.onnx", "ab", None,
+                             None, None, RunOptions(batch_size=16), None)
+    np.testing.assert_array_equal(small.logits, want.logits[:40])
+    assert small.stats.rows == 40 and small.nonfinite_inputs["x"].count == 1
+
+
+def test_waiting_for_the_decoder_does_not_grow_the_batch(rng, monkeypatch):
+    """Decoding costs the same per image at any batch size: a decoder slower than the runtime must not
+    make the automatic batch size grow (an image folder runs the batch size of its pre-decoded arrays)."""
+    from onnxcal.capture import blocks, plan_run, run_batches
+
+    monkeypatch.setattr(blocks, "BLOCK_BYTES", 128 * 6 * 4)  # blocks of two batches of 64 rows
+    model = random_mlp(rng)
+    x = rng.normal(size=(1500, 6)).astype(np.float32)
+    ds = Dataset({"x": _Decoded(x)}, np.zeros(len(x), np.int64), "images")  # 10 ms per block decoded
+    plan = plan_run(model, ds, [model.graph.output[0].name], RunOptions())
+    rec = _Recorder(plan.session, sleep=0.002)  # 4 ms per block in the runtime
+    list(run_batches(replace(plan, session=rec), ds))
+    assert set(rec.sizes[:-1]) == {64}
+
+
+def test_a_decoded_set_runs_in_a_session_without_spinning(rng):
+    """onnxruntime's idle intra-op threads sleep instead of spinning on the cores the decoder needs."""
+    from onnxcal.capture import plan_run
+
+    model = random_mlp(rng)
+    x = rng.normal(size=(10, 6)).astype(np.float32)
+
+    def spinning(run_plan):
+        try:  # onnxruntime raises for an entry never set (its default: spinning)
+            return run_plan.session.get_session_options().get_session_config_entry("session.intra_op.allow_spinning")
+        except RuntimeError:
+            return None
+
+    assert spinning(plan_run(model, Dataset({"x": _Decoded(x)}, np.zeros(10, np.int64), "images"), ["logits"])) == "0"
+    assert spinning(plan_run(model, Dataset({"x": x}, np.zeros(10, np.int64), "arrays"), ["logits"])) is None
