@@ -56,9 +56,26 @@ class LatencyRatio:
 
 
 def latency_ratio(original: np.ndarray, patched: np.ndarray) -> LatencyRatio:
-    """The ratio of the two models' seconds per call, round by round (from :func:`time_alternately`, whose
-    rounds run the two back to back, so a change in the machine's load hits both of a round alike)."""
-    ratios = np.log(np.asarray(patched, np.float64)) - np.log(np.asarray(original, np.float64))
+    """The ratio of the two models' seconds per call, from :func:`time_alternately`'s rounds.
+
+    Its rounds run the two back to back in turns (A B, B A, ...), so a change in
+    the machine's load hits both of a round alike; but a call's time also
+    depends on its place (the call after the other model's, whose idle threads
+    may still hold a core, or whose data left the cache, is slower). So the
+    ratio is taken over pairs of consecutive rounds, one in each order: each
+    pair's time of the patched model over the original's, with both places in
+    both sums (common practice: a balanced, crossover design). The median of
+    those ratios and its distribution-free interval; an odd last round is left
+    out.
+    """
+    o = np.asarray(original, np.float64)
+    p = np.asarray(patched, np.float64)
+    n = len(o) - len(o) % 2
+    if n >= 2:
+        o_pairs, p_pairs = o[:n].reshape(-1, 2).sum(axis=1), p[:n].reshape(-1, 2).sum(axis=1)
+    else:
+        o_pairs, p_pairs = o, p
+    ratios = np.log(p_pairs) - np.log(o_pairs)
     low, high = median_interval(ratios)
-    return LatencyRatio(float(np.exp(np.median(ratios))), float(np.exp(low)), float(np.exp(high)), len(ratios),
-                        float(np.median(original)), float(np.median(patched)))
+    return LatencyRatio(float(np.exp(np.median(ratios))), float(np.exp(low)), float(np.exp(high)), len(o),
+                        float(np.median(o)), float(np.median(p)))

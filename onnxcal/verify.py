@@ -548,7 +548,7 @@ def threshold_checks(
 
 
 def time_alternately(
-    runs: Sequence[Callable[[], object]], repeats: int, warmup: int = 3
+    runs: Sequence[Callable[[], object]], repeats: int, warmup: int = 3, start: int = 0
 ) -> np.ndarray:
     """Wall time of each callable, ``repeats`` times, interleaved in one process.
 
@@ -557,7 +557,8 @@ def time_alternately(
     equally often and a change in the machine's load, or a cache warmed by
     the previous call, hits every callable alike (common practice for
     side-by-side timing on a shared machine). ``warmup`` rounds are run
-    first and not timed.
+    first and not timed. ``start``: the number of rounds timed before (a
+    continuation goes on with the order where the last call left it).
 
     Returns
     -------
@@ -570,10 +571,10 @@ def time_alternately(
     times = np.empty((len(runs), repeats))
     k = len(runs)
     for r in range(repeats):
-        for i in [(r + j) % k for j in range(k)]:
-            start = time.perf_counter()
+        for i in [(start + r + j) % k for j in range(k)]:
+            began = time.perf_counter()
             runs[i]()
-            times[i, r] = time.perf_counter() - start
+            times[i, r] = time.perf_counter() - began
     return times
 
 
@@ -592,7 +593,8 @@ def latency_check(
     r = latency_ratio(original, patched)
     interval = "unbounded" if not np.isfinite(r.high - r.low) else f"{r.low:.3f} to {r.high:.3f}"
     detail = (
-        f"median ratio of {r.rounds} alternating runs each on a batch of {batch} (95% interval {interval}); "
+        f"median ratio over {r.rounds // 2} pairs of alternating runs (A B, B A) each on a batch of {batch} "
+        f"(95% interval {interval}); "
         f"median latency, patched {r.patched * 1e3:.3g} ms / {against} {r.original * 1e3:.3g} ms"
     )
     if max_ratio is None or r.high <= max_ratio:

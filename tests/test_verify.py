@@ -210,20 +210,39 @@ def test_time_alternately_interleaves_and_reverses():
     calls.clear()
     time_alternately([lambda c=c: calls.append(c) for c in "abc"], repeats=3, warmup=0)
     assert "".join(calls) == "abc" + "bca" + "cab"  # each in each position once
+    calls.clear()
+    time_alternately([lambda: calls.append("a"), lambda: calls.append("b")], repeats=2, warmup=0, start=3)
+    assert "".join(calls) == "ba" + "ab"  # a continuation after 3 rounds goes on with the order: B A, A B
 
 
 def test_latency_check_ratio_and_limit():
     from onnxcal.verify import latency_check
 
-    a = np.array([1.0, 2.0, 3.0, 1.0, 2.0, 3.0, 1.0, 2.0, 3.0, 1.0])
+    a = np.tile([1.0, 2.0, 3.0, 1.0], 5)  # 20 rounds: 10 pairs (A B, B A)
     b = 2.0 * a
-    b[2] = 300.0  # one outlier: the median of the per-round ratios ignores it
+    b[2] = 300.0  # one outlier: the median of the per-pair ratios ignores it
     c = latency_check(a, b, None, batch=8)
     assert c.value == pytest.approx(2.0) and c.passed and c.limit is None and "batch of 8" in c.detail
-    assert "95% interval 2.000 to 2.000" in c.detail
+    assert "95% interval 2.000 to 2.000" in c.detail and "10 pairs" in c.detail
     failed = latency_check(a, b, 1.5, batch=8)  # the whole interval above the limit
     assert not failed.passed and failed.status == "fail" and "whole interval lies above" in failed.detail
     assert latency_check(a, b, 2.0, batch=8).status == "pass"
+
+
+def test_latency_ratio_cancels_an_effect_of_the_place_in_a_round():
+    """Same model twice, but the second call of each round is 40 % slower (the other session's idle threads
+    or cache): per-round ratios are 1.4 and 1 / 1.4 by turns; each pair of rounds (A B, B A) holds both
+    places for both models, so its ratio is 1 (a balanced crossover design, common practice)."""
+    from onnxcal.verify import latency_check, latency_ratio
+
+    rng = np.random.default_rng(5)
+    base = rng.lognormal(-9.0, 0.02, size=100)
+    second = np.where(np.arange(100) % 2 == 0, 1.4, 1.0)  # round r: A B when r is even, B A when odd
+    original, patched = base * (2.4 - second), base * second  # original second when r is odd
+    r = latency_ratio(original, patched)
+    assert r.ratio == pytest.approx(1.0, abs=0.03) and r.low <= 1.0 <= r.high * 1.03
+    assert r.high < 1.05  # narrow: per-round ratios would give an interval from about 0.71 to 1.4
+    assert latency_check(original, patched, 1.05, batch=1).status == "pass"  # decided, not undecided
 
 
 def test_median_interval_from_order_statistics():

@@ -210,7 +210,9 @@ def _latency(
     max_ratio: float | None, against: str,
 ) -> Check:
     """Check (5): both models on the first batch of the data, timed alternately."""
-    plans = [plan_run(m, dataset, [o.name for o in m.graph.output], run) for m in (base, patched)]
+    # without spinning: the idle threads of one session would hold the cores the other's next call needs,
+    # which no deployment (one model) sees
+    plans = [plan_run(m, dataset, [o.name for o in m.graph.output], run, spinning=False) for m in (base, patched)]
     size = min(plans[1].step, dataset.n)
     feeds = []
     for plan in plans:
@@ -224,7 +226,7 @@ def _latency(
     # with a limit: more rounds until the ratio's interval decides, or the budget is spent (then undecided)
     while (not latency_ratio(times[0], times[1]).decided(max_ratio) and times.shape[1] < LATENCY_CHUNKS * runs
            and time.perf_counter() - started < LATENCY_BUDGET):
-        times = np.concatenate([times, time_alternately(calls, runs, warmup=0)], axis=1)
+        times = np.concatenate([times, time_alternately(calls, runs, warmup=0, start=times.shape[1])], axis=1)
     return latency_check(times[0], times[1], max_ratio, batch=size, against=against)
 
 

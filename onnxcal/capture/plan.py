@@ -160,15 +160,18 @@ def plan_run(
     names: Sequence[str],
     options: RunOptions | None = None,
     out_axes: Sequence[int] = (),
+    spinning: bool | None = None,
 ) -> RunPlan:
     """Open a session for ``model`` and decide the batching (see the module docstring);
-    ``out_axes`` as in :class:`RunPlan`."""
+    ``out_axes`` as in :class:`RunPlan`; ``spinning`` as in :func:`make_session` (by default off only
+    for a set decoded as it is read)."""
     axes = tuple(out_axes)
     options = options or RunOptions()
     grow = options.batch_size is None
     batch = DEFAULT_BATCH if options.batch_size is None else options.batch_size
     check_input_memory(model, batch, dataset)
-    spinning = not decoded_as_read(dataset)
+    if spinning is None:
+        spinning = not decoded_as_read(dataset)
     session = make_session(model, options, spinning=spinning)
     dtypes = _dtypes(model, session)
     fixed = _fixed_batch(model, dataset)
