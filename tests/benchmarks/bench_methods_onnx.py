@@ -52,10 +52,10 @@ from pathlib import Path
 
 import numpy as np
 import onnxruntime as ort
+from bench_methods import metrics as numpy_route_metrics  # the sibling script, on sys.path[0]
 from sklearn.base import BaseEstimator, ClassifierMixin
 from sklearn.calibration import CalibratedClassifierCV
 from sklearn.frozen import FrozenEstimator
-from sklearn.metrics import log_loss
 from sklearn.model_selection import train_test_split
 
 from onnxcal import api, resample
@@ -63,7 +63,6 @@ from onnxcal.choose import METHODS, candidate_methods, n_parameters
 from onnxcal.data import DataSpec
 from onnxcal.fit import FitOptions, fit_scaling
 from onnxcal.fit.auto import row_nll
-from onnxcal.metrics import expected_calibration_error
 
 FIXTURES = Path(__file__).resolve().parents[2] / "fixtures" / "exporters"
 # (fixture name in the manifest, short label)
@@ -98,15 +97,9 @@ class OnnxClassifier(ClassifierMixin, BaseEstimator):
 
 
 def metrics(p: np.ndarray, y: np.ndarray) -> dict[str, float]:
-    p = p / p.sum(axis=1, keepdims=True)  # float32 outputs sum to 1 within rounding; log_loss warns otherwise
-    k = p.shape[1]
-    onehot = np.eye(k)[y]
-    return {
-        "nll": float(log_loss(y, p, labels=np.arange(k))),
-        "ece": expected_calibration_error(p.max(axis=1), (p.argmax(axis=1) == y).astype(float), 15),
-        "brier": float(np.mean(np.sum((p - onehot) ** 2, axis=1))),
-        "accuracy": float(np.mean(p.argmax(axis=1) == y)),
-    }
+    """bench_methods.metrics (the same four figures on both routes) on rows renormalised first:
+    float32 outputs sum to 1 within rounding, and log_loss warns otherwise."""
+    return numpy_route_metrics(p / p.sum(axis=1, keepdims=True), y)
 
 
 def _run(path: Path, output: str, x: np.ndarray) -> np.ndarray:
