@@ -15,7 +15,7 @@ import sys
 
 import pytest
 
-HEAVY = ("onnx", "onnxruntime", "scipy", "matplotlib", "numpy", "PIL", "ml_dtypes", "threadpoolctl")
+HEAVY = ("onnx", "onnxruntime", "scipy", "matplotlib", "numpy", "PIL", "ml_dtypes", "threadpoolctl", "numba")
 
 
 def _loaded_after(code: str) -> set[str]:
