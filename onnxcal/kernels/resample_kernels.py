@@ -32,6 +32,10 @@ from numba.extending import intrinsic
 
 _JIT: dict[str, Any] = {"nogil": True, "fastmath": True, "cache": True, "error_model": "numpy"}
 
+_NO_REASSOC = {"nnan", "ninf", "nsz", "arcp", "contract", "afn"}
+"""fastmath without reassociation, for :func:`_exp`: its range reduction x - k ln2_hi - k ln2_lo must be
+evaluated in that order (the compiler inlines the function into the loops, keeping these flags)."""
+
 _LOG2E = 1.4426950408889634
 _LN2_HI = 0.6931471803691238  # ln 2 split in two (Cody & Waite): LN2_HI has its low 21 bits zero, so k LN2_HI is
 _LN2_LO = 1.9082149292705877e-10  # exact for |k| < 2^21
@@ -62,7 +66,7 @@ def _as_bits_typer(typingctx: Any, x: Any) -> Any:
 _as_bits: Any = intrinsic(_as_bits_typer)
 
 
-@njit(inline="always", **_JIT)
+@njit(nogil=True, cache=True, error_model="numpy", fastmath=_NO_REASSOC)
 def _exp(x: float) -> float:
     """exp(x) for x in [-700, 700] (clamped there): 2^k exp(r), |r| <= ln(2)/2, exp(r) to degree 13
     (truncation below 2e-16 relative)."""
@@ -306,22 +310,34 @@ def running_counts(c: np.ndarray, cum: np.ndarray) -> None:
 def order_pair(
     u: np.ndarray, v: np.ndarray, c: np.ndarray, cum: np.ndarray, delta: float, j: int, n: int
 ) -> tuple[float, float]:
-    """Order statistics j and min(j + 1, n - 1) of the pool of v (row i c[i] times); rows in ascending u, every
-    v within ``delta`` of its u (as ``expansion._Prefix.quantiles``)."""
+    """Order statistics j and min(j + 1, n - 1) (0-based) of the pool of v (row i c[i] times); rows in ascending
+    u, every v within ``delta`` of its u.
+
+    The pool's order statistics move by at most delta from those of the pool of u (U_j = u[r0], U_j1 = u[r1]), so
+    X_j and X_j1 lie in [U_j - delta, U_j1 + delta]; every row with v there has u within 2 delta of that range. The
+    values of those rows, each as often as drawn, are sorted; the rows below count from ``cum`` and the window.
+    """
     j1 = min(j + 1, n - 1)
     r0 = min(np.searchsorted(cum, j, side="right") - 1, u.shape[0] - 1)
     r1 = min(np.searchsorted(cum, j1, side="right") - 1, u.shape[0] - 1)
-    lo = np.searchsorted(u, u[r0] - 2 * delta, side="left")
-    hi = np.searchsorted(u, u[r1] + 2 * delta, side="right")
-    vals = v[lo:hi]
-    o = np.argsort(vals, kind="mergesort")
-    before = cum[lo]
-    running = 0.0
-    a = -1.0
-    for k in range(o.shape[0]):  # the first value whose running count exceeds j - before, then j1 - before
-        running += c[lo + o[k]]
-        if a < 0 and running > j - before:
-            a = vals[o[k]]
-        if running > j1 - before:
-            return a, vals[o[k]]
-    return a, vals[o[-1]]
+    low, high = u[r0] - delta, u[r1] + delta
+    lo = np.searchsorted(u, low - delta, side="left")
+    hi = np.searchsorted(u, high + delta, side="right")
+    below = cum[lo]
+    m = 0
+    for i in range(lo, hi):
+        if v[i] < low:
+            below += c[i]
+        elif v[i] <= high:
+            m += c[i]
+    vals = np.empty(m)
+    m = 0
+    for i in range(lo, hi):
+        if low <= v[i] <= high:
+            for _ in range(c[i]):
+                vals[m] = v[i]
+                m += 1
+    vals.sort()
+    a = int(j - below)
+    b = int(j1 - below)
+    return vals[a], vals[b]
