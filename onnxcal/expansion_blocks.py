@@ -35,6 +35,19 @@ class Drawn(Protocol):
     held: np.ndarray
 
 
+class Source(Protocol):
+    """The generator the replicates draw rows from, and how (:class:`onnxcal.resample.DirectDraws`)."""
+
+    rng: np.random.Generator
+    replicates: int
+    n_fit: int
+    n_eval: int | None  # None: the held-out part is the fit part (an in-sample bootstrap)
+
+    def redraw(self) -> Drawn: ...
+
+    def told(self, done: int) -> None: ...
+
+
 @dataclass
 class Block:
     """A block's counts: ``fit`` (replicates, fit rows) and ``held`` (replicates, held-out rows in ascending
@@ -71,6 +84,40 @@ class CompiledReplicates:
                 pending = []
         if pending:
             yield self._count(pending)
+
+    def drawn_blocks(self, source: Source, size: int = BLOCK) -> Iterator[Block]:
+        """The blocks of the replicates that ``source`` draws, counted as they are drawn (:func:`draw_counts`: the
+        same positions as numpy's ``integers``, and the generator left in the same state), without the arrays of
+        drawn positions. A replicate with a count that reached 255 is drawn again from the same state by
+        ``source.redraw()`` and takes the numpy path."""
+        exp = self.exp
+        assert exp.order is not None
+        n_held = source.n_fit if source.n_eval is None else source.n_eval
+        source.told(0)
+        for first in range(0, source.replicates, size):
+            count = min(size, source.replicates - first)
+            fit = np.zeros((count, source.n_fit), np.uint8)
+            held = np.zeros((count, n_held), np.uint8)
+            wrapped: list[Any] = []
+            for r in range(count):
+                state = source.rng.bit_generator.state
+                full = self._draw_counts(source.rng, source.n_fit, fit[r], None)
+                if source.n_eval is None:
+                    held[r] = fit[r][exp.order]
+                else:
+                    full |= self._draw_counts(source.rng, source.n_eval, held[r], self.rank)
+                if full:
+                    source.rng.bit_generator.state = state
+                wrapped.append(source.redraw() if full else None)
+                source.told(first + r + 1)
+            yield Block(fit, held, [source.n_fit] * count, [n_held] * count, wrapped)
+
+    def _draw_counts(self, rng: np.random.Generator, n: int, counts: np.ndarray, rank: np.ndarray | None) -> bool:
+        if draws_like_numpy(rng, n):
+            return draw_counts(self.kernels, rng, n, counts, rank)
+        k = self.kernels
+        drawn = rng.integers(0, n, n, dtype=np.int32)
+        return bool(k.add_counts(drawn, counts) if rank is None else k.add_ranked_counts(drawn, rank, counts))
 
     def _count(self, draws: list[Drawn]) -> Block:
         k = self.kernels
@@ -142,3 +189,70 @@ class CompiledReplicates:
             return sums[0], sums[1], sums[2]
 
         return replicate_metrics((float(out[0]), float(out[1]), float(out[2])), binned(inner), binned(edges), float(n))
+
+
+def draw_counts(
+    k: Any, rng: np.random.Generator, n: int, counts: np.ndarray, rank: np.ndarray | None,
+    positions: np.ndarray | None = None,
+) -> bool:
+    """counts[p] (or counts[rank[p]]) += 1 for n positions p drawn in [0, n) as ``rng.integers(0, n, n)`` draws
+    them, leaving ``rng`` as that call leaves it; True if a count reached 255. (Given ``positions``, draw
+    len(positions) of them into it instead, as ``rng.integers(0, n, len(positions))``.)
+
+    numpy draws a position from a 32-bit value of its bit generator (two per 64-bit output, the low half first; a
+    half left over is kept for the next call in the generator's state: ``has_uint32``, ``uinteger``). Here the
+    64-bit outputs come from ``bit_generator.random_raw``, never more than the positions still to draw could use,
+    and the kernel (:func:`onnxcal.kernels.resample_kernels.bounded_counts`) draws from their halves.
+    """
+    size = n if positions is None else len(positions)
+    out = np.empty(0, np.int64) if positions is None else positions
+    if n == 1:  # numpy draws nothing from the generator for a range of one value
+        if positions is None:
+            counts[0 if rank is None else rank[0]] += size
+        else:
+            positions[:] = 0
+        return bool(positions is None and counts.max() == 255)
+    bits = rng.bit_generator
+    state = bits.state
+    stream = np.array([state["uinteger"]] if state["has_uint32"] else [], np.uint32)
+    last = state["uinteger"]
+    order = np.empty(0, np.int64) if rank is None else rank
+    done, full = 0, False
+    while True:
+        got, used, wrapped = k.bounded_counts(stream, n, size - done, order, counts, out[done:])
+        done, full, stream = done + got, full or wrapped, stream[used:]
+        if done == size:
+            break
+        raw = bits.random_raw(max(1, (size - done - len(stream) + 1) // 2))
+        last = int(raw[-1] >> np.uint64(32))
+        stream = np.concatenate([stream, raw.view(np.uint32)])
+    state = dict(bits.state)
+    state["has_uint32"], state["uinteger"] = (1, int(stream[0])) if len(stream) else (0, last)
+    bits.state = state
+    return bool(full)
+
+
+_CHECKED: dict[str, bool] = {}
+
+
+def draws_like_numpy(rng: np.random.Generator, n: int) -> bool:
+    """Whether :func:`draw_counts` gives the counts and state of ``rng.integers(0, n, n)`` for this generator:
+    a PCG64 bit generator (``numpy.random.default_rng``), 0 < n < 2^31, and, checked once per process, the same
+    positions and final state as numpy's own on a few ranges (a half left over before, many rejections)."""
+    name = rng.bit_generator.state.get("bit_generator")
+    if name != "PCG64" or not 0 < n < 2**31:
+        return False
+    if name not in _CHECKED:
+        from .kernels import resample_kernels
+
+        same = True
+        for m, size in ((1, 3), (2, 1001), (5, 1000), (99_999, 99_999), (2**31 - 1, 5000), (3 * 2**29, 5001)):
+            a, b = np.random.default_rng([m, 7]), np.random.default_rng([m, 7])
+            a.integers(0, 3, 1, dtype=np.int32)  # leaves a half over
+            b.integers(0, 3, 1, dtype=np.int32)
+            want = a.integers(0, m, size, dtype=np.int32)
+            got = np.empty(size, np.int64)
+            draw_counts(resample_kernels, b, m, np.empty(0, np.uint8), None, got)
+            same = same and bool(np.array_equal(got, want)) and a.bit_generator.state == b.bit_generator.state
+        _CHECKED[name] = same
+    return _CHECKED[name]

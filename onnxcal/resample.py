@@ -153,6 +153,28 @@ def _draws(
         yield Draw(fit, n_fit, held, n_fit if n_eval is None else n_eval)
 
 
+class DirectDraws:
+    """Where the replicates' row draws come from (the draws of :func:`_draws`, without groups), for
+    :meth:`onnxcal.expansion_blocks.CompiledReplicates.drawn_blocks`, which counts them as it draws them."""
+
+    def __init__(
+        self, rng: np.random.Generator, replicates: int, n_fit: int, n_eval: int | None,
+        progress: Callable[[str, int, int], None] | None,
+    ) -> None:
+        self.rng, self.replicates, self.n_fit, self.n_eval, self.progress = rng, replicates, n_fit, n_eval, progress
+
+    def redraw(self) -> Draw:
+        """The next replicate's draw, as :func:`_draws` makes it."""
+        fit = _draw(self.rng, self.n_fit, None)
+        held = fit if self.n_eval is None else _draw(self.rng, self.n_eval, None)
+        return Draw(fit, self.n_fit, held, self.n_fit if self.n_eval is None else self.n_eval)
+
+    def told(self, done: int) -> None:
+        """Tell progress that ``done`` replicates are drawn (as :func:`_counted`)."""
+        if self.progress is not None:
+            self.progress(BOOTSTRAP, done, self.replicates)
+
+
 def _counted(draws: Iterator[Draw], progress: Callable[[str, int, int], None], total: int) -> Iterator[Draw]:
     """``draws``, calling ``progress("bootstrap", k, total)`` when the replicate after the k-th is
     drawn (the k-th is done; with threads, up to two per thread are still running) and at the end."""
@@ -244,7 +266,9 @@ def bootstrap(
         assert start.temperature is not None  # fast: a multiclass temperature scaling has its T
         expansion = expansion or expand(logits, labels, fit_rows, eval_rows, 1.0 / start.temperature, threads)
         how = "taylor" if expansion.accurate else "grid"
-        params, metrics, fallbacks = (run.taylor(expansion, draws) if expansion.accurate else run.grid(draws))
+        direct = None if fit_samples is not None else DirectDraws(
+            rng, options.bootstrap, len(fit_rows), None if same else len(eval_rows), progress)
+        params, metrics, fallbacks = (run.taylor(expansion, draws, direct) if expansion.accurate else run.grid(draws))
     else:
         params, metrics = run.exact(draws)
         fallbacks = 0
@@ -332,7 +356,7 @@ class Replicates:
         )
 
     def taylor(
-        self, exp: Expansion, draws: Iterable[Draw]
+        self, exp: Expansion, draws: Iterable[Draw], direct: DirectDraws | None = None
     ) -> tuple[list[dict[str, np.ndarray]], list[dict[str, Any]], int]:
         """Each replicate from the expansion; refitted exactly when its root is too far out."""
         n_bins = self.options.n_bins
@@ -378,7 +402,8 @@ class Replicates:
             ) -> tuple[dict[str, np.ndarray], dict[str, Any], bool]:
                 return settle(d, m, lambda: fast.fit_counts(b, r), lambda: fast.held_counts(b, r))
 
-            done = [r for b in _map_in_order(block, fast.blocks(draws), threads) for r in b]
+            blocks = fast.blocks(draws) if direct is None else fast.drawn_blocks(direct)
+            done = [r for b in _map_in_order(block, blocks, threads) for r in b]
         return [r[0] for r in done], [r[1] for r in done], sum(r[2] for r in done)
 
 

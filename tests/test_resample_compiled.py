@@ -4,7 +4,7 @@ numpy path they replace, which stays the reference (ONNXCAL_COMPILED=0), and aga
 import numpy as np
 import pytest
 
-from onnxcal import expansion, kernels, resample
+from onnxcal import expansion, expansion_blocks, kernels, resample
 from onnxcal.expansion_blocks import CompiledReplicates
 from onnxcal.fit import FitOptions, fit_scaling, fit_temperature
 from onnxcal.holdout import samples_of
@@ -142,3 +142,65 @@ def test_bin_sums_and_order_statistics_are_numpys(rng, delta):
     for j in (0, 1, 777, len(pool) // 2, len(pool) - 2, len(pool) - 1):
         got_pair = resample_kernels.order_pair(u, v, c, cum, bound, j, len(pool))
         assert got_pair == (pool[j], pool[min(j + 1, len(pool) - 1)])
+
+
+def test_counts_drawn_in_the_kernel_are_numpys_draws():
+    # expansion_blocks.draw_counts reads the generator's raw 64-bit outputs: the same positions as numpy's
+    # Generator.integers (the reference), and the generator left in the same state (so what is drawn after is too).
+    for n in (1, 2, 3, 7, 1000, 99_999, 250_001):
+        a, b = np.random.default_rng([n, 1]), np.random.default_rng([n, 1])
+        for _ in range(3):
+            want = np.bincount(a.integers(0, n, n), minlength=n)
+            counts = np.zeros(n, np.uint8)
+            assert not expansion_blocks.draw_counts(resample_kernels, b, n, counts, None)
+            np.testing.assert_array_equal(counts, want)
+            assert a.bit_generator.state == b.bit_generator.state
+    rank = np.random.default_rng(0).permutation(1000)
+    a, b = np.random.default_rng(2), np.random.default_rng(2)
+    counts = np.zeros(1000, np.uint8)
+    expansion_blocks.draw_counts(resample_kernels, b, 1000, counts, rank)
+    np.testing.assert_array_equal(counts[rank], np.bincount(a.integers(0, 1000, 1000), minlength=1000))
+    # ranges where about half the 32-bit values are rejected and drawn again
+    for n in (2**31 - 1, 3 * 2**29 + 1):
+        a, b = np.random.default_rng(n), np.random.default_rng(n)
+        got = np.empty(20_001, np.int64)
+        expansion_blocks.draw_counts(resample_kernels, b, n, np.empty(0, np.uint8), None, got)
+        np.testing.assert_array_equal(got, a.integers(0, n, len(got)))
+        assert a.bit_generator.state == b.bit_generator.state
+    assert expansion_blocks.draws_like_numpy(np.random.default_rng(0), 10)
+    assert not expansion_blocks.draws_like_numpy(np.random.Generator(np.random.MT19937(0)), 10)
+
+
+@pytest.mark.parametrize("holdout", [0.25, 0.0])
+def test_drawn_blocks_give_the_numpy_intervals(monkeypatch, holdout):
+    # The replicates drawn and counted in the kernel (held-out and in-sample), one of them with a count made to
+    # look wrapped (it is drawn again from the same state by numpy and takes the numpy path): the intervals of
+    # the numpy path, and the generator in the same state after.
+    monkeypatch.setattr(expansion, "TAYLOR_TOL", 1e-6)
+    monkeypatch.setattr(resample, "EXACT_EVAL_BUDGET", 0)
+    z, y = gumbel_set(13, 40000, 10)
+    fit_rows, held = resample.split_holdout(y, holdout, seed=0) if holdout else (np.arange(len(y)),) * 2
+    start = fit_temperature(z, y, rows=fit_rows).scaling
+    exp = expansion.expand(z, y, fit_rows, held, 1.0 / start.temperature, threads=1)
+    assert exp.accurate
+    opts = FitOptions(bootstrap=19, seed=6)
+    told = []
+    monkeypatch.setenv(kernels.ENV, "0")
+    want = resample.bootstrap(z, y, opts, fit_rows, held, start, refit=fit_scaling, expansion=exp, threads=2)
+    monkeypatch.setenv(kernels.ENV, "1")
+    monkeypatch.setattr(kernels, "MIN_VALUES", 0)
+    calls = []
+    real = expansion_blocks.draw_counts
+
+    def draw_counts(*args):
+        calls.append(1)
+        return real(*args) or len(calls) == 3
+
+    monkeypatch.setattr(expansion_blocks, "draw_counts", draw_counts)
+    got = resample.bootstrap(z, y, opts, fit_rows, held, start, refit=fit_scaling, expansion=exp, threads=2,
+                             progress=lambda *a: told.append(a))
+    assert told == [("bootstrap", k, 19) for k in range(20)]
+    np.testing.assert_allclose(got["temperature"], want["temperature"], rtol=1e-12)
+    for key, interval in want["after"].items():
+        if interval is not None:
+            np.testing.assert_allclose(got["after"][key], interval, rtol=1e-12, err_msg=key)
