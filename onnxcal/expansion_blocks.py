@@ -72,7 +72,8 @@ class CompiledReplicates:
         from .kernels import resample_kernels  # numba is imported only when a kernel is needed
 
         assert exp.rank is not None and exp.u is not None  # an accurate expansion, finished
-        self.kernels, self.exp, self.rank = resample_kernels, exp, exp.rank
+        self.kernels, self.exp = resample_kernels, exp
+        self.rank = exp.rank.astype(np.int32) if len(exp.rank) < 2**31 else exp.rank  # half the bytes to gather
 
     def blocks(self, draws: Iterable[Drawn], size: int = BLOCK) -> Iterator[Block]:
         """The draws' counts, ``size`` replicates a block (the last may be smaller)."""
