@@ -215,20 +215,24 @@ def draw_counts(
         return bool(positions is None and counts.max() == 255)
     bits = rng.bit_generator
     state = bits.state
-    stream = np.array([state["uinteger"]] if state["has_uint32"] else [], np.uint32)
+    head = np.array([state["uinteger"]] if state["has_uint32"] else [], np.uint32)
+    stream = np.empty(0, np.uint32)
     last = state["uinteger"]
     order = np.empty(0, np.int64) if rank is None else rank
     done, full = 0, False
     while True:
-        got, used, wrapped = k.bounded_counts(stream, n, size - done, order, counts, out[done:])
-        done, full, stream = done + got, full or wrapped, stream[used:]
+        got, used, wrapped = k.bounded_counts(head, stream, n, size - done, order, counts, out[done:])
+        done, full = done + got, full or wrapped
+        # the values left: those of a position cut short by the end of the values (a few), or at most one
+        head = np.concatenate([head[used:], stream]) if used < len(head) else stream[used - len(head):].copy()
         if done == size:
             break
-        raw = bits.random_raw(max(1, (size - done - len(stream) + 1) // 2))
+        raw = bits.random_raw(max(1, (size - done - len(head) + 1) // 2))
         last = int(raw[-1] >> np.uint64(32))
-        stream = np.concatenate([stream, raw.view(np.uint32)])
+        stream = raw.view(np.uint32)
+    assert len(head) <= 1  # never more 64-bit outputs than the positions left could use
     state = dict(bits.state)
-    state["has_uint32"], state["uinteger"] = (1, int(stream[0])) if len(stream) else (0, last)
+    state["has_uint32"], state["uinteger"] = (1, int(head[0])) if len(head) else (0, last)
     bits.state = state
     return bool(full)
 

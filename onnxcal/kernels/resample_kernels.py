@@ -345,47 +345,47 @@ def order_pair(
 
 @njit(**_JIT)
 def bounded_counts(
-    stream: np.ndarray, n: int, todo: int, rank: np.ndarray, counts: np.ndarray, positions: np.ndarray
+    head: np.ndarray, stream: np.ndarray, n: int, todo: int, rank: np.ndarray, counts: np.ndarray,
+    positions: np.ndarray,
 ) -> tuple[int, int, bool]:
-    """Draw up to ``todo`` positions in [0, n) from ``stream`` (uint32 values, in the order the bit generator
-    hands them out) as numpy's ``Generator.integers(0, n, size)`` does for n < 2^32 (Lemire's multiply-and-reject
-    method: the position is the top half of x n, redrawn while the bottom half is below (2^32 - n) mod n), and count
-    them: counts[rank[p]] += 1 (``rank`` empty: counts[p] += 1); or, if ``positions`` is not empty, store them
-    there instead (from positions[0]: for the checks against numpy).
+    """Draw up to ``todo`` positions in [0, n) from the uint32 values of ``head`` then ``stream`` (in the order
+    the bit generator hands them out) as numpy's ``Generator.integers(0, n, size)`` does for n < 2^32 (Lemire's
+    multiply-and-reject method: the position is the top half of x n, redrawn while the bottom half is below
+    (2^32 - n) mod n), and count them: counts[rank[p]] += 1 (``rank`` empty: counts[p] += 1); or, if
+    ``positions`` is not empty, store them there instead (from positions[0]: for the checks against numpy).
 
-    Returns (positions drawn, stream values used, whether a count reached 255). Stops when the stream runs out
-    in the middle of a position: the caller appends more values to the unused ones and calls again.
+    Returns (positions drawn, values used, whether a count reached 255). Stops when the values run out in the
+    middle of a position: the caller keeps the unused ones and calls again with more.
     """
     nn = np.uint64(n)
     low = np.uint64(0xFFFFFFFF)
     threshold = (np.uint64(0x100000000) - nn) % nn
     ranked = rank.shape[0] > 0
+    store = positions.shape[0] > 0
+    h = head.shape[0]
+    size = h + stream.shape[0]
     full = False
     used = 0
     done = 0
-    size = stream.shape[0]
-    while done < todo:
+    while done < todo and used < size:
         at = used
-        if at >= size:
-            break
-        m = np.uint64(stream[at]) * nn
+        m = np.uint64(head[at] if at < h else stream[at - h]) * nn
         at += 1
         if (m & low) < nn:
             while (m & low) < threshold and at < size:
-                m = np.uint64(stream[at]) * nn
+                m = np.uint64(head[at] if at < h else stream[at - h]) * nn
                 at += 1
-            if (m & low) < threshold:  # the stream ran out while rejecting
+            if (m & low) < threshold:  # the values ran out while rejecting
                 break
         used = at
         p = np.int64(m >> np.uint64(32))
-        if positions.shape[0] > 0:
+        if store:
             positions[done] = p
-            done += 1
-            continue
-        if ranked:
-            p = rank[p]
-        x = counts[p]
-        full |= x == 255
-        counts[p] = x + 1
+        else:
+            if ranked:
+                p = rank[p]
+            x = counts[p]
+            full |= x == 255
+            counts[p] = x + 1
         done += 1
     return done, used, full
