@@ -343,6 +343,36 @@ def order_pair(
     return vals[a], vals[b]
 
 
+RUN = 1024
+"""Values checked at once for a rejection by :func:`bounded_counts` (none in a run: its positions are counted
+without the one-by-one bookkeeping)."""
+
+
+@njit(**_JIT)
+def _rejects(values: np.ndarray, nn: np.uint64, threshold: np.uint64) -> bool:
+    """Whether any of ``values`` would be rejected (vectorised)."""
+    low = np.uint64(0xFFFFFFFF)
+    bad = False
+    for i in range(values.shape[0]):
+        bad |= ((np.uint64(values[i]) * nn) & low) < threshold
+    return bad
+
+
+@njit(**_JIT)
+def _count_run(values: np.ndarray, nn: np.uint64, rank: np.ndarray, counts: np.ndarray) -> bool:
+    """counts[rank[p]] (or counts[p]) += 1 for the position p = top half of x n of each value (none rejected)."""
+    full = False
+    ranked = rank.shape[0] > 0
+    for i in range(values.shape[0]):
+        p = np.int64((np.uint64(values[i]) * nn) >> np.uint64(32))
+        if ranked:
+            p = rank[p]
+        x = counts[p]
+        full |= x == 255
+        counts[p] = x + 1
+    return full
+
+
 @njit(**_JIT)
 def bounded_counts(
     head: np.ndarray, stream: np.ndarray, n: int, todo: int, rank: np.ndarray, counts: np.ndarray,
@@ -367,7 +397,16 @@ def bounded_counts(
     full = False
     used = 0
     done = 0
+    slow_until = 0  # a run with a rejection goes one position at a time to its end
     while done < todo and used < size:
+        if not store and used >= max(h, slow_until) and used + RUN <= size and done + RUN <= todo:
+            run = stream[used - h : used - h + RUN]
+            if not _rejects(run, nn, threshold):
+                full |= _count_run(run, nn, rank, counts)
+                used += RUN
+                done += RUN
+                continue
+            slow_until = used + RUN
         at = used
         m = np.uint64(head[at] if at < h else stream[at - h]) * nn
         at += 1
