@@ -352,7 +352,7 @@ without the one-by-one bookkeeping)."""
 def _rejects(values: np.ndarray, nn: np.uint64, threshold: np.uint64) -> bool:
     """Whether any of ``values`` would be rejected (vectorised)."""
     low = np.uint64(0xFFFFFFFF)
-    bad = np.False_
+    bad: np.bool = np.False_
     for i in range(values.shape[0]):
         bad |= ((np.uint64(values[i]) * nn) & low) < threshold
     return bool(bad)
