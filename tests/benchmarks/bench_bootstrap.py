@@ -7,10 +7,11 @@ Data: the logits of ``bench_fit.py command`` (``--cache``; made there if missing
 defaults: a stratified 25 % holdout, the temperature fit on the fit part, the pass at the fit that keeps the
 per-row terms (:func:`onnxcal.expansion.expand`), then :func:`onnxcal.resample.bootstrap` with ``--replicates``
 replicates: through the numpy code (``ONNXCAL_COMPILED=0``) and through the compiled kernels, on one and on two
-threads. Every bootstrap is timed between two float32 logsumexp passes over the logits (``bench_fit.logsumexp_pass``,
-one thread) and divided by their mean; one thread in CPU time of the process, two threads in wall time (CPU time
-printed beside). The four cases alternate, in reversed order every other round. The kernels are compiled (or loaded
-from numba's cache) and checked once before the first round. Printed: every round, the medians, and the largest
+threads (under ``sweep.one_blas_thread()``, as ``summarize`` runs it). Every bootstrap is timed between two float32
+logsumexp passes over the logits (``bench_fit.logsumexp_pass``, one thread) and divided by their mean; one thread
+in CPU time of the process, two threads in wall time (CPU time printed beside). The four cases alternate, in
+reversed order every other round. The kernels are compiled (or loaded from numba's cache) and checked once before
+the first round. Printed: every round, the medians, and the largest
 relative difference between the two paths' interval ends (same seed, same draws).
 """
 
@@ -31,6 +32,7 @@ from bench_fit import cached_data, logsumexp_pass  # noqa: E402
 from onnxcal import kernels, resample  # noqa: E402
 from onnxcal.expansion import expand  # noqa: E402
 from onnxcal.fit import FitOptions, fit_scaling, fit_temperature  # noqa: E402
+from onnxcal.sweep import one_blas_thread  # noqa: E402
 
 
 def main() -> None:
@@ -51,8 +53,9 @@ def main() -> None:
 
     def boot(compiled: bool, threads: int) -> dict[str, object]:
         os.environ[kernels.ENV] = "1" if compiled else "0"
-        return resample.bootstrap(z, y, opts, fit_rows, eval_rows, start, refit=fit_scaling, expansion=exp,
-                                  threads=threads)
+        with one_blas_thread():  # as summarize runs it: a threaded BLAS under onnxcal's threads oversubscribes
+            return resample.bootstrap(z, y, opts, fit_rows, eval_rows, start, refit=fit_scaling, expansion=exp,
+                                      threads=threads)
 
     boot(True, 1)  # compile or load the kernels, and numba's one-time check of the draws
     logsumexp_pass(z)
