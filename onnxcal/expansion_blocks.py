@@ -168,7 +168,7 @@ class CompiledReplicates:
         out = np.empty((len(ds), 4))
         self.kernels.held_sums(exp.log_top, exp.log_sq, exp.gap, exp.u, block.held, series, v, out)
         found: list[dict[str, Any] | None] = [None] * len(ds)
-        cum = np.empty(len(exp.u) + 1)
+        cum = np.empty(len(exp.u) + 1, np.int64)
         for r in used:
             found[r] = self._binned(block.held[r], v[r], out[r], cum, block.n_held[r], n_bins)
         return found

@@ -130,7 +130,7 @@ def test_bin_sums_and_order_statistics_are_numpys(rng, delta):
     v[np.searchsorted(u, inner)] = inner  # some exactly on an edge
     c = rng.integers(0, 4, n).astype(np.uint8)
     correct = (rng.random(n) < v).astype(np.float64)
-    cum = np.empty(n + 1)
+    cum = np.empty(n + 1, np.int64)
     resample_kernels.running_counts(c, cum)
     np.testing.assert_array_equal(cum, np.concatenate([[0], np.cumsum(c)]))
     bound = float(np.abs(v - u).max()) * (1 + 1e-9) + 1e-15

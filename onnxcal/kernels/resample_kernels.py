@@ -301,9 +301,10 @@ def bin_sums(
 
 @njit(**_JIT)
 def running_counts(c: np.ndarray, cum: np.ndarray) -> None:
-    """cum[0] = 0, cum[i + 1] = c[0] + ... + c[i] (exact: integers)."""
-    total = 0.0
-    cum[0] = 0.0
+    """cum[0] = 0, cum[i + 1] = c[0] + ... + c[i] (int64 ``cum``: an integer running sum, whose additions do not
+    wait on each other as floating-point ones do)."""
+    total = np.int64(0)
+    cum[0] = 0
     for i in range(c.shape[0]):
         total += c[i]
         cum[i + 1] = total
