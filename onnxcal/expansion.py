@@ -57,6 +57,16 @@ HALF_WIDTH = 6.0
 """Standard errors of beta on each side of the fit the expansion must cover."""
 
 
+def _series_top(largest: np.ndarray, d: float) -> int | None:
+    """The highest order a series needs at d (see :func:`_series`), or None if it is not converging there."""
+    top = len(largest) - 1
+    while top > 0 and largest[top] * abs(d) ** top / factorial(top) <= TERM_TOL:
+        top -= 1
+    if top == len(largest) - 1 and largest[top] * abs(d) ** top / factorial(top) > SERIES_LIMIT:
+        return None
+    return top
+
+
 def _series(derivs: np.ndarray, largest: np.ndarray, d: float) -> np.ndarray | None:
     """sum_j derivs[j] d^j / j! over the columns, to the order the terms need.
 
@@ -65,10 +75,8 @@ def _series(derivs: np.ndarray, largest: np.ndarray, d: float) -> np.ndarray | N
     for some row: the series is then not converging at d (the replicate's
     root, accepted by its own bound, keeps d far inside that).
     """
-    top = len(derivs) - 1
-    while top > 0 and largest[top] * abs(d) ** top / factorial(top) <= TERM_TOL:
-        top -= 1
-    if top == len(derivs) - 1 and largest[top] * abs(d) ** top / factorial(top) > SERIES_LIMIT:
+    top = _series_top(largest, d)
+    if top is None:
         return None
     acc: np.ndarray = derivs[top].copy()
     for j in range(top - 1, -1, -1):
@@ -107,8 +115,12 @@ class Expansion:
     def root(self, counts: np.ndarray) -> float | None:
         """The replicate's d = beta - beta0 (``counts``: how often each fit row was drawn),
         or None when the expansion cannot give it to TAYLOR_TOL."""
+        return self.root_of(self.fit_terms @ counts, float(counts.sum()))
+
+    def root_of(self, sums: np.ndarray, weight: float) -> float | None:
+        """:meth:`root` from the replicate's sums of the fit terms and its total weight."""
         assert self.high is not None  # set by finish(), which expand() always calls
-        derivs = np.concatenate([self.fit_terms @ counts, float(counts.sum()) * self.high])
+        derivs = np.concatenate([sums, weight * self.high])
         found = taylor_root(derivs)
         if found is None or found[1] > TAYLOR_TOL * self.beta0:
             return None
@@ -133,20 +145,10 @@ class Expansion:
         delta = float(np.abs(v - self.u).max()) * (1 + 1e-9) + 1e-15
         sums = _Prefix(self.u, v, c, self.correct, delta)
         edges = np.linspace(0.0, 1.0, n_bins + 1)[1:-1]
-        counts, conf_sum, corr_sum = sums.bins(edges)
+        width = sums.bins(edges)
         mass = sums.bins(sums.quantiles(np.linspace(0.0, 1.0, n_bins + 1)[1:-1]))  # the inner edges
-        accuracy, mean_conf = corr_sum.sum() / total, conf_sum.sum() / total
-        return {
-            "nll": -float(c @ log_py) / total,
-            "ece": ece_from_bins(counts, conf_sum, corr_sum),
-            "mce": mce_from_bins(counts, conf_sum, corr_sum),
-            "adaptive_ece": ece_from_bins(*mass),
-            "classwise_ece": float("nan"),
-            "brier": (float(c @ np.exp(log_sq)) - 2.0 * float(c @ np.exp(log_py))) / total + 1.0,
-            "accuracy": float(accuracy),
-            "mean_confidence": float(mean_conf),
-            "gap": float(mean_conf - accuracy),
-        }
+        smooth = (float(c @ log_py), float(c @ np.exp(log_sq)), float(c @ np.exp(log_py)))
+        return replicate_metrics(smooth, width, mass, total)
 
     def finish(self, high: np.ndarray) -> Expansion:
         """Take the fit part's mean kappa_4, kappa_5 (``high``), sort the held-out rows by
@@ -175,6 +177,29 @@ class Expansion:
             self.top_max = np.abs(self.log_top).max(axis=1)
             self.sq_max = np.abs(self.log_sq).max(axis=1)
         return self
+
+
+def replicate_metrics(
+    smooth: tuple[float, float, float],
+    width: tuple[np.ndarray, np.ndarray, np.ndarray],
+    mass: tuple[np.ndarray, np.ndarray, np.ndarray],
+    total: float,
+) -> dict[str, Any]:
+    """A replicate's metrics from its sums: ``smooth`` = (sum c log p_y, sum c sum_k p_k^2, sum c p_y), the
+    (count, confidence, correct) sums of the equal-width bins and of the equal-mass bins, and the total count."""
+    counts, conf_sum, corr_sum = width
+    accuracy, mean_conf = corr_sum.sum() / total, conf_sum.sum() / total
+    return {
+        "nll": -smooth[0] / total,
+        "ece": ece_from_bins(counts, conf_sum, corr_sum),
+        "mce": mce_from_bins(counts, conf_sum, corr_sum),
+        "adaptive_ece": ece_from_bins(*mass),
+        "classwise_ece": float("nan"),
+        "brier": (smooth[1] - 2.0 * smooth[2]) / total + 1.0,
+        "accuracy": float(accuracy),
+        "mean_confidence": float(mean_conf),
+        "gap": float(mean_conf - accuracy),
+    }
 
 
 class _Prefix:
@@ -328,3 +353,4 @@ def expand(
     )
     high = sum(cast(ExpansionRows, lane[0]).high for lane in lanes)  # each lane's only consumer
     return exp.finish(np.asarray(high) / max(len(fit_rows), 1))
+

@@ -61,7 +61,9 @@ from typing import TYPE_CHECKING, Any, TypeVar, cast
 
 import numpy as np
 
+from . import kernels
 from .expansion import Expansion, expand
+from .expansion_blocks import Block, CompiledReplicates
 from .holdout import (  # re-exported: the split is part of resample's interface
     Samples as Samples,
 )
@@ -151,6 +153,28 @@ def _draws(
         yield Draw(fit, n_fit, held, n_fit if n_eval is None else n_eval)
 
 
+class DirectDraws:
+    """Where the replicates' row draws come from (the draws of :func:`_draws`, without groups), for
+    :meth:`onnxcal.expansion_blocks.CompiledReplicates.drawn_blocks`, which counts them as it draws them."""
+
+    def __init__(
+        self, rng: np.random.Generator, replicates: int, n_fit: int, n_eval: int | None,
+        progress: Callable[[str, int, int], None] | None,
+    ) -> None:
+        self.rng, self.replicates, self.n_fit, self.n_eval, self.progress = rng, replicates, n_fit, n_eval, progress
+
+    def redraw(self) -> Draw:
+        """The next replicate's draw, as :func:`_draws` makes it."""
+        fit = _draw(self.rng, self.n_fit, None)
+        held = fit if self.n_eval is None else _draw(self.rng, self.n_eval, None)
+        return Draw(fit, self.n_fit, held, self.n_fit if self.n_eval is None else self.n_eval)
+
+    def told(self, done: int) -> None:
+        """Tell progress that ``done`` replicates are drawn (as :func:`_counted`)."""
+        if self.progress is not None:
+            self.progress(BOOTSTRAP, done, self.replicates)
+
+
 def _counted(draws: Iterator[Draw], progress: Callable[[str, int, int], None], total: int) -> Iterator[Draw]:
     """``draws``, calling ``progress("bootstrap", k, total)`` when the replicate after the k-th is
     drawn (the k-th is done; with threads, up to two per thread are still running) and at the end."""
@@ -161,9 +185,12 @@ def _counted(draws: Iterator[Draw], progress: Callable[[str, int, int], None], t
 
 
 def _draw(rng: np.random.Generator, n: int, samples: Samples | None) -> np.ndarray:
-    if samples is None:
-        return rng.integers(0, n, n)
-    return samples.rows(rng.integers(0, samples.count, samples.count))
+    # int32 positions where they fit: numpy draws them with the same 32-bit bounded generator as int64 ones, so
+    # the values and the generator's state after are the same (tests/test_resample_compiled.py checks it), in
+    # half the memory
+    m = n if samples is None else samples.count
+    drawn = rng.integers(0, m, m, dtype=np.int32 if m < 2**31 else np.int64)
+    return drawn if samples is None else samples.rows(drawn)
 
 
 # A lookup's tables change size from one replicate to the next: no interval per entry.
@@ -239,7 +266,9 @@ def bootstrap(
         assert start.temperature is not None  # fast: a multiclass temperature scaling has its T
         expansion = expansion or expand(logits, labels, fit_rows, eval_rows, 1.0 / start.temperature, threads)
         how = "taylor" if expansion.accurate else "grid"
-        params, metrics, fallbacks = (run.taylor(expansion, draws) if expansion.accurate else run.grid(draws))
+        direct = None if fit_samples is not None else DirectDraws(
+            rng, options.bootstrap, len(fit_rows), None if same else len(eval_rows), progress)
+        params, metrics, fallbacks = (run.taylor(expansion, draws, direct) if expansion.accurate else run.grid(draws))
     else:
         params, metrics = run.exact(draws)
         fallbacks = 0
@@ -327,29 +356,54 @@ class Replicates:
         )
 
     def taylor(
-        self, exp: Expansion, draws: Iterable[Draw]
+        self, exp: Expansion, draws: Iterable[Draw], direct: DirectDraws | None = None
     ) -> tuple[list[dict[str, np.ndarray]], list[dict[str, Any]], int]:
         """Each replicate from the expansion; refitted exactly when its root is too far out."""
         n_bins = self.options.n_bins
         exact_eval = len(self.eval_rows) * self.logits.shape[1] * self.options.bootstrap <= EXACT_EVAL_BUDGET
 
-        def one(draw: Draw) -> tuple[dict[str, np.ndarray], dict[str, Any], bool]:
-            counts = draw.fit_counts
-            d = exp.root(counts)
+        def settle(
+            d: float | None, m: dict[str, Any] | None, fit_counts: Callable[[], np.ndarray],
+            held_counts: Callable[[], np.ndarray],
+        ) -> tuple[dict[str, np.ndarray], dict[str, Any], bool]:
+            """The replicate's result; refitted exactly when d is None, scored exactly when m is None."""
             if d is None:
-                t = self._refit(counts).temperature
+                t = self._refit(fit_counts()).temperature
                 assert t is not None  # a multiclass temperature refit has its T
                 beta = 1.0 / t
             else:
                 beta = exp.beta0 + d
-            m = None if exact_eval or d is None else exp.metrics(draw.held, d, n_bins)
             if m is None:
-                m = self._score(1.0 / beta, draw.held_counts)
+                m = self._score(1.0 / beta, held_counts())
                 if not exact_eval:
                     m["classwise_ece"] = float("nan")
             return {"temperature": np.array(1.0 / beta)}, m, d is None
 
-        done = _map_in_order(one, draws, default_threads() if self.threads is None else self.threads)
+        def one(draw: Draw) -> tuple[dict[str, np.ndarray], dict[str, Any], bool]:
+            counts = draw.fit_counts
+            d = exp.root(counts)
+            m = None if exact_eval or d is None else exp.metrics(draw.held, d, n_bins)
+            return settle(d, m, lambda: counts, lambda: draw.held_counts)
+
+        threads = default_threads() if self.threads is None else self.threads
+        if exact_eval or not kernels.worth_it(self.options.bootstrap * (len(self.fit_rows) + len(self.eval_rows))):
+            done = _map_in_order(one, draws, threads)
+        else:
+            fast = CompiledReplicates(exp)
+
+            def block(b: Block) -> list[tuple[dict[str, np.ndarray], dict[str, Any], bool]]:
+                ds = fast.roots(b)
+                ms = fast.metrics(b, ds, n_bins)
+                return [one(b.wrapped[r]) if b.wrapped[r] is not None else in_block(b, r, d, m)
+                        for r, (d, m) in enumerate(zip(ds, ms, strict=True))]
+
+            def in_block(
+                b: Block, r: int, d: float | None, m: dict[str, Any] | None
+            ) -> tuple[dict[str, np.ndarray], dict[str, Any], bool]:
+                return settle(d, m, lambda: fast.fit_counts(b, r), lambda: fast.held_counts(b, r))
+
+            blocks = fast.blocks(draws) if direct is None else fast.drawn_blocks(direct)
+            done = [r for b in _map_in_order(block, blocks, threads) for r in b]
         return [r[0] for r in done], [r[1] for r in done], sum(r[2] for r in done)
 
 
