@@ -19,8 +19,9 @@ The rule (issue 15, made robust on small sets):
    than the interval of the best one's NLL alone (which holds the rows'
    own spread, common to both).
 4. *Chosen.* The model as it is (:data:`IDENTITY`, no parameters) when its
-   own probabilities have the lowest cross-fitted NLL: no map improved on
-   them. Otherwise the method with the fewest parameters (then the order of
+   own probabilities have the lowest cross-fitted NLL and every map is
+   worse by a paired interval above 0: no map improved on them. Otherwise
+   the method with the fewest parameters (then the order of
    :data:`onnxcal.scaling.METHODS`) among the best and the methods whose
    interval reaches 0 or below, i.e. that the data cannot tell from the
    best. A simpler map has less to overfit and, for temperature scaling,
@@ -149,9 +150,9 @@ class Choice:
 
 RULE = (
     "every method cross-fitted (each row held out once; fitted to Platt's smoothed targets when every row is "
-    "classified correctly); the lowest mean out-of-fold NLL is the best; the model is left as it is when its own "
-    "probabilities are the best; else, among the best and the methods whose paired per-row NLL difference to it "
-    "has a 95% interval reaching 0, the one with the fewest parameters"
+    "classified correctly); the lowest mean out-of-fold NLL is the best; among the best and the maps whose paired "
+    "per-row NLL difference to it has a 95% interval reaching 0, the one with the fewest parameters; the model is "
+    "left as it is only when its own probabilities are the best and every map's interval lies above 0"
 )
 
 
@@ -196,8 +197,10 @@ def choose(candidates: Sequence[Candidate], basis: str = "cross-fitted", folds: 
     """Apply the rule to the candidates (each with its paired ``difference`` to the best).
 
     A candidate without a ``difference`` other than the best counts as
-    told apart from it. The :data:`IDENTITY` candidate is chosen only when
-    it is the best.
+    told apart from it. The :data:`IDENTITY` candidate (the model as it
+    is) is chosen only when it is the best and every map's interval lies
+    above 0: cross-fitting scores a map by fits on part of the rows, which
+    handicaps it against the unfitted identity on a small set.
 
     Examples
     --------
@@ -209,19 +212,28 @@ def choose(candidates: Sequence[Candidate], basis: str = "cross-fitted", folds: 
     if not candidates:
         raise OnnxcalError("no calibration method applies to these scores")
     best = min(candidates, key=lambda c: (c.nll, _order(c)))
-    within = [best, *(c for c in candidates if c is not best and c.method != IDENTITY and _reaches_zero(c))]
-    chosen = min(within, key=_order)
+    within = [c for c in candidates if c.method != IDENTITY and (c is best or _reaches_zero(c))]
     how = "bootstrap" if replicates else "normal-approximation"
-    if chosen.method == IDENTITY:
-        reason = (f"no map improved the {basis} NLL: the model's own probabilities have the lowest "
-                  f"({best.nll:.4g}), so the model is left as it is (temperature T = 1 is baked in: the same "
-                  "probabilities, with the record)")
+    if not within:  # the model as it is is the best, and every map is worse by an interval above 0
+        chosen = best
+        reason = (f"no map improved the {basis} NLL: the model's own probabilities have the lowest ({best.nll:.4g}) "
+                  f"and every map is worse by a paired per-row NLL difference whose 95% {how} interval lies above "
+                  "0, so the model is left as it is (temperature T = 1 is baked in: the same probabilities, with "
+                  "the record)")
+        return _choice(chosen, best, reason, basis, candidates, folds, replicates, smoothed_targets)
+    chosen = min(within, key=_order)
+    if best.method == IDENTITY:
+        assert chosen.difference is not None
+        reason = (f"the model's own probabilities have the lowest {basis} NLL ({best.nll:.4g}), but {chosen.method} "
+                  f"({_count(chosen.n_parameters)}, {chosen.nll:.4g}) cannot be told from them (its paired per-row "
+                  f"NLL difference has a 95% {how} interval {_span(chosen.difference)} reaching 0); the model is left "
+                  "as it is only when every map is worse by an interval above 0")
     elif chosen is best:
         simpler = [c for c in candidates if _order(c) < _order(best) and c.method != IDENTITY]
         reason = (f"{best.method} has the lowest {basis} NLL ({best.nll:.4g}) and "
                   + (f"every method with fewer parameters is worse by a paired per-row NLL difference whose 95% "
                      f"{how} interval lies above 0" if simpler else "no method has fewer parameters"))
-        if len(candidates) == 1:
+        if len([c for c in candidates if c.method != IDENTITY]) == 1:
             reason = f"{best.method} is the only method that applies"
     else:
         assert chosen.difference is not None  # in `within` and not the best
@@ -229,8 +241,13 @@ def choose(candidates: Sequence[Candidate], basis: str = "cross-fitted", folds: 
                   f"({_count(chosen.n_parameters)} against {best.n_parameters}) has {chosen.nll:.4g}, and the 95% "
                   f"{how} interval of its paired per-row NLL difference to {best.method} "
                   f"({_span(chosen.difference)}) reaches 0, so the simpler {chosen.method} is chosen")
+    return _choice(chosen, best, reason, basis, candidates, folds, replicates, smoothed_targets)
+
+
+def _choice(chosen: Candidate, best: Candidate, reason: str, basis: str, candidates: Sequence[Candidate], folds: int,
+            replicates: int, smoothed_targets: bool) -> Choice:
     if smoothed_targets:
-        reason += "; every candidate fitted to Platt's smoothed targets"
+        reason += "; every map fitted to Platt's smoothed targets"
     return Choice(chosen.method, best.method, reason, basis, tuple(candidates), folds, replicates, smoothed_targets)
 
 

@@ -173,6 +173,7 @@ def compare(
     """
     fold = fold_ids(labels, FOLDS, options.seed, groups)
     scored, notes = [], []
+    asked = bool(options.smoothed_targets)
     smooth = smoothed_fits(logits, labels, options, kind)
     options = replace(options, smoothed_targets=smooth)
     methods = (IDENTITY, *candidate_methods(kind))
@@ -196,7 +197,11 @@ def compare(
             diff = _percentile(s.draws - best.draws) if options.bootstrap else _normal_difference(d, groups)
         candidates.append(Candidate(s.method, s.size, s.metrics, s.intervals, s.converged, diff))
     n_folds = int(len(np.unique(fold)))
-    return choose(candidates, "cross-fitted", n_folds, int(options.bootstrap), smooth), notes
+    choice = choose(candidates, "cross-fitted", n_folds, int(options.bootstrap), smooth)
+    if smooth and not asked:
+        choice = replace(choice, reason=choice.reason + " (every row is classified correctly, so no "
+                         "maximum-likelihood fit exists)")
+    return choice, notes
 
 
 def smoothed_fits(logits: np.ndarray, labels: np.ndarray, options: Any, kind: str) -> bool:
