@@ -18,10 +18,10 @@ The rule (issue 15, made robust on small sets):
    for both methods, so the interval of the difference is much narrower
    than the interval of the best one's NLL alone (which holds the rows'
    own spread, common to both).
-4. *Chosen.* The model as it is (:data:`IDENTITY`, no parameters) when its
-   own probabilities have the lowest cross-fitted NLL and every map is
-   worse by a paired interval above 0: no map improved on them. Otherwise
-   the method with the fewest parameters (then the order of
+4. *Chosen.* The model as it is (:data:`IDENTITY`, no parameters) when
+   every map's paired per-row NLL difference to its own probabilities has
+   an interval above 0: no map improved on them. Otherwise the method with
+   the fewest parameters (then the order of
    :data:`onnxcal.scaling.METHODS`) among the best and the methods whose
    interval reaches 0 or below, i.e. that the data cannot tell from the
    best. A simpler map has less to overfit and, for temperature scaling,
@@ -150,9 +150,9 @@ class Choice:
 
 RULE = (
     "every method cross-fitted (each row held out once; fitted to Platt's smoothed targets when every row is "
-    "classified correctly); the lowest mean out-of-fold NLL is the best; among the best and the maps whose paired "
-    "per-row NLL difference to it has a 95% interval reaching 0, the one with the fewest parameters; the model is "
-    "left as it is only when its own probabilities are the best and every map's interval lies above 0"
+    "classified correctly); the map with the lowest mean out-of-fold NLL is the best; among it and the maps whose "
+    "paired per-row NLL difference to it has a 95% interval reaching 0, the one with the fewest parameters; the "
+    "model is left as it is when every map's paired difference to its own probabilities has a 95% interval above 0"
 )
 
 
@@ -193,14 +193,18 @@ def _reaches_zero(c: Candidate) -> bool:
 
 
 def choose(candidates: Sequence[Candidate], basis: str = "cross-fitted", folds: int = FOLDS,
-           replicates: int = 0, smoothed_targets: bool = False) -> Choice:
+           replicates: int = 0, smoothed_targets: bool = False, keep_model: bool = False) -> Choice:
     """Apply the rule to the candidates (each with its paired ``difference`` to the best).
 
     A candidate without a ``difference`` other than the best counts as
-    told apart from it. The :data:`IDENTITY` candidate (the model as it
-    is) is chosen only when it is the best and every map's interval lies
-    above 0: cross-fitting scores a map by fits on part of the rows, which
-    handicaps it against the unfitted identity on a small set.
+    told apart from it. ``best`` is the map with the lowest NLL (the
+    :data:`IDENTITY` row, the model as it is, is not a map: its
+    ``difference`` is to that map too). The model as it is is chosen only
+    with ``keep_model``: every map is worse than it by a paired interval
+    above 0 (:func:`onnxcal.fit.auto.compare` decides). Cross-fitting
+    scores a map by fits on part of the rows, which handicaps it against
+    the unfitted identity on a small set, so a lower mean alone is not
+    enough.
 
     Examples
     --------
@@ -211,29 +215,25 @@ def choose(candidates: Sequence[Candidate], basis: str = "cross-fitted", folds: 
     """
     if not candidates:
         raise OnnxcalError("no calibration method applies to these scores")
-    best = min(candidates, key=lambda c: (c.nll, _order(c)))
-    within = [c for c in candidates if c.method != IDENTITY and (c is best or _reaches_zero(c))]
+    maps = [c for c in candidates if c.method != IDENTITY]
+    if not maps:
+        raise OnnxcalError("no calibration method applies to these scores")
+    best = min(maps, key=lambda c: (c.nll, _order(c)))
     how = "bootstrap" if replicates else "normal-approximation"
-    if not within:  # the model as it is is the best, and every map is worse by an interval above 0
-        chosen = best
-        reason = (f"no map improved the {basis} NLL: the model's own probabilities have the lowest ({best.nll:.4g}) "
-                  f"and every map is worse by a paired per-row NLL difference whose 95% {how} interval lies above "
-                  "0, so the model is left as it is (temperature T = 1 is baked in: the same probabilities, with "
-                  "the record)")
-        return _choice(chosen, best, reason, basis, candidates, folds, replicates, smoothed_targets)
+    if keep_model:
+        model = next(c for c in candidates if c.method == IDENTITY)
+        reason = (f"no map improved the {basis} NLL: the model's own probabilities have {model.nll:.4g}, and every "
+                  f"map is worse by a paired per-row NLL difference whose 95% {how} interval lies above 0, so the "
+                  "model is left as it is (temperature T = 1 is baked in: the same probabilities, with the record)")
+        return _choice(model, best, reason, basis, candidates, folds, replicates, smoothed_targets)
+    within = [best, *(c for c in maps if c is not best and _reaches_zero(c))]
     chosen = min(within, key=_order)
-    if best.method == IDENTITY:
-        assert chosen.difference is not None
-        reason = (f"the model's own probabilities have the lowest {basis} NLL ({best.nll:.4g}), but {chosen.method} "
-                  f"({_count(chosen.n_parameters)}, {chosen.nll:.4g}) cannot be told from them (its paired per-row "
-                  f"NLL difference has a 95% {how} interval {_span(chosen.difference)} reaching 0); the model is left "
-                  "as it is only when every map is worse by an interval above 0")
-    elif chosen is best:
-        simpler = [c for c in candidates if _order(c) < _order(best) and c.method != IDENTITY]
+    if chosen is best:
+        simpler = [c for c in maps if _order(c) < _order(best)]
         reason = (f"{best.method} has the lowest {basis} NLL ({best.nll:.4g}) and "
                   + (f"every method with fewer parameters is worse by a paired per-row NLL difference whose 95% "
                      f"{how} interval lies above 0" if simpler else "no method has fewer parameters"))
-        if len([c for c in candidates if c.method != IDENTITY]) == 1:
+        if len(maps) == 1:
             reason = f"{best.method} is the only method that applies"
     else:
         assert chosen.difference is not None  # in `within` and not the best

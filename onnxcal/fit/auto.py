@@ -188,20 +188,34 @@ def compare(
         progress("cross-fitting", len(methods), len(methods))
     if not scored:
         raise OnnxcalError("--method auto could not fit any method on these scores", "; ".join(notes) or None)
-    best = min(scored, key=lambda s: float(s.metrics["nll"]))
+    maps = [s for s in scored if s.method != IDENTITY]
+    if not maps:
+        raise OnnxcalError("--method auto could not fit any method on these scores", "; ".join(notes) or None)
+    best = min(maps, key=lambda s: float(s.metrics["nll"]))
     candidates = []
     for s in scored:
-        diff = None
-        if s is not best:
-            d = s.losses - best.losses
-            diff = _percentile(s.draws - best.draws) if options.bootstrap else _normal_difference(d, groups)
+        diff = None if s is best else _difference(s, best, options, groups)
         candidates.append(Candidate(s.method, s.size, s.metrics, s.intervals, s.converged, diff))
     n_folds = int(len(np.unique(fold)))
-    choice = choose(candidates, "cross-fitted", n_folds, int(options.bootstrap), smooth)
+    model = next((s for s in scored if s.method == IDENTITY), None)
+    keep = model is not None and all(_above_zero(_difference(m, model, options, groups)) for m in maps)
+    choice = choose(candidates, "cross-fitted", n_folds, int(options.bootstrap), smooth, keep)
     if smooth and not asked:
         choice = replace(choice, reason=choice.reason + " (every row is classified correctly, so no "
                          "maximum-likelihood fit exists)")
     return choice, notes
+
+
+def _difference(s: _Scored, ref: _Scored, options: Any, groups: np.ndarray | None) -> list[float] | None:
+    """The 95 % interval of the mean per-row NLL of ``s`` minus ``ref`` (bootstrap, or normal approximation);
+    None when a resample gave a non-finite figure."""
+    if options.bootstrap:
+        return _percentile(s.draws - ref.draws)
+    return _normal_difference(s.losses - ref.losses, groups)
+
+
+def _above_zero(interval: list[float] | None) -> bool:
+    return interval is not None and interval[0] > 0
 
 
 def smoothed_fits(logits: np.ndarray, labels: np.ndarray, options: Any, kind: str) -> bool:
