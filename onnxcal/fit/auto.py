@@ -222,6 +222,8 @@ def smoothed_fits(logits: np.ndarray, labels: np.ndarray, options: Any, kind: st
     """Whether ``auto`` fits its candidates to smoothed targets: asked for, or every row classified correctly
     (then no maximum-likelihood fit exists); never for multi-label labels."""
     if kind == "multilabel":
+        if options.smoothed_targets:
+            smoothed.expanded(logits[:1], labels[:1])  # raises: no smoothed targets for multi-label labels
         return False
     return bool(options.smoothed_targets) or smoothed.all_correct(logits, labels)
 

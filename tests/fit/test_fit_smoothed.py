@@ -118,6 +118,15 @@ def test_expanded_refuses_multilabel_and_huge_sets():
         expanded(big, np.zeros(100_000, dtype=np.int64))
 
 
+@pytest.mark.parametrize("method", ["temperature", "auto"])
+def test_multilabel_labels_refused_with_the_option_named(rng, method):
+    z = rng.normal(size=(40, 3))
+    y = (rng.random((40, 3)) < 0.5).astype(np.uint8)
+    with pytest.raises(OnnxcalError, match="multi-label") as e:
+        summarize(z, y, {}, FitOptions(method=method, smoothed_targets=True, bootstrap=0))
+    assert "--smoothed-targets" in e.value.hint
+
+
 def test_auto_fits_smoothed_on_error_free_rows(rng):
     z, y = _separable_draw(rng, 60)
     s = summarize(z, y, {}, FitOptions(method="auto", bootstrap=20))
