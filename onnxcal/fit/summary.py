@@ -105,6 +105,14 @@ def fit_scaling(
         plain = replace(options, smoothed_targets=False)
         return _fit_labels(z, y, plain, rows=None, weights=w, start=start)
     result = _fit_labels(logits, labels, options, rows=rows, weights=weights, start=start)
+    return _said_if_no_estimate(result, logits, labels, rows, weights)
+
+
+def _said_if_no_estimate(
+    result: FitResult, logits: np.ndarray, labels: np.ndarray, rows: np.ndarray | None = None,
+    weights: np.ndarray | None = None,
+) -> FitResult:
+    """A fit on its bound over rows all classified correctly: its bound note replaced by the no-estimate warning."""
     if result.on_bound and smoothed.all_correct(logits, labels, rows, weights):
         rest = tuple(w for w in result.warnings if " bound" not in w)  # said again, with the reason and the remedies
         return replace(result, warnings=(smoothed.no_estimate_warning(_bound_what(result)), *rest))
@@ -199,6 +207,8 @@ def _temperature_passes(
     part, full = (
         _temperature_result(np.array([s.beta]), s.passes, s.converged, "multiclass") for s in (scored.part, scored.full)
     )
+    part = _said_if_no_estimate(part, logits, labels, fit_rows)
+    full = _said_if_no_estimate(full, logits, labels)
     return part, full, (tuple(scored.before), tuple(scored.after)), scored.expansion
 
 

@@ -102,6 +102,16 @@ def test_warning_fires_on_error_free_rows_only(rng):
     assert not any(NO_ESTIMATE in w for w in fit_scaling(z, y, FitOptions(smoothed_targets=True)).warnings)
 
 
+def test_the_fit_command_says_it_too(rng):
+    # multiclass temperature goes through the three-pass fit, not fit_scaling: the warning must come out there too
+    z, y = _separable_draw(rng, 40)
+    s = summarize(z, y, {}, FitOptions(bootstrap=0))
+    assert any(NO_ESTIMATE in w for w in s.warnings)
+    smooth = summarize(z, y, {}, FitOptions(bootstrap=0, smoothed_targets=True))
+    assert not any(NO_ESTIMATE in w for w in smooth.warnings) and smooth.scaling.temperature > T_MIN
+    assert smooth.to_dict()["options"]["smoothed_targets"] is True
+
+
 def test_every_method_fits_smoothed_targets(rng):
     z, y = _separable_draw(rng, 30)
     for method in ("vector", "matrix", "dirichlet", "ensemble-temperature", "ovr-platt", "isotonic", "histogram"):
