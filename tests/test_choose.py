@@ -7,10 +7,13 @@ import json
 import warnings
 
 import numpy as np
+import onnxruntime as ort
 import pytest
 import scipy.special
+from conftest import random_mlp
+from onnx.reference import ReferenceEvaluator
 
-from onnxcal import resample
+from onnxcal import graph, resample
 from onnxcal.choose import (
     IDENTITY,
     METHODS,
@@ -266,3 +269,20 @@ def test_the_model_as_it_is_summary_bakes_t_one(tmp_path):
     assert kept.holdout_result.scaling.temperature == 1.0 and kept.intervals is None
     save_fit(tmp_path / "fit.json", kept)
     assert load_fit(tmp_path / "fit.json").scaling.temperature == 1.0
+
+
+def test_the_model_as_it_is_patched_gives_the_original_probabilities(rng, tmp_path):
+    # Baked in, the identity (T = 1) must give the original model's own output, run by onnxruntime and by
+    # onnx's ReferenceEvaluator (onnx's own Python implementation of the operators).
+    model = random_mlp(rng, d=6, k=3, final="Softmax")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        z, y = _gumbel_max(np.random.default_rng(4), 120, lambda s: s)
+        kept = _as_it_is(summarize(z, y, {}, FitOptions(bootstrap=0)))
+    patched = graph.patch(model, kept.scaling, source_sha256="0" * 64, source_name="model.onnx")
+    x = rng.normal(size=(32, 6)).astype(np.float32)
+    want = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"]).run(None, {"x": x})[0]
+    got = ort.InferenceSession(patched.SerializeToString(), providers=["CPUExecutionProvider"]).run(None, {"x": x})[0]
+    ref = ReferenceEvaluator(patched).run(None, {"x": x})[0]
+    assert np.allclose(got, want, atol=1e-6) and np.allclose(ref, want, atol=1e-6)
+    assert graph.read_record(patched).temperature == 1.0
