@@ -220,12 +220,18 @@ def _above_zero(interval: list[float] | None) -> bool:
 
 def smoothed_fits(logits: np.ndarray, labels: np.ndarray, options: Any, kind: str) -> bool:
     """Whether ``auto`` fits its candidates to smoothed targets: asked for, or every row classified correctly
-    (then no maximum-likelihood fit exists); never for multi-label labels."""
+    (then no maximum-likelihood fit exists) on a set small enough to repeat once per class (else the fits say
+    that no maximum-likelihood estimate exists); never for multi-label labels."""
     if kind == "multilabel":
         if options.smoothed_targets:
             smoothed.expanded(logits[:1], labels[:1])  # raises: no smoothed targets for multi-label labels
         return False
-    return bool(options.smoothed_targets) or smoothed.all_correct(logits, labels)
+    if options.smoothed_targets:
+        return True
+    k = max(logits.shape[1], 2)
+    if len(logits) * k * logits.shape[1] > smoothed.MAX_EXPANDED:  # too large to repeat: the fits warn instead
+        return False
+    return smoothed.all_correct(logits, labels)
 
 
 def fit_all(
