@@ -18,7 +18,10 @@ The rule (issue 15, made robust on small sets):
    for both methods, so the interval of the difference is much narrower
    than the interval of the best one's NLL alone (which holds the rows'
    own spread, common to both).
-4. *Chosen.* The method with the fewest parameters (then the order of
+4. *Chosen.* The model as it is (:data:`IDENTITY`, no parameters) when
+   every map's paired per-row NLL difference to its own probabilities has
+   an interval above 0: no map improved on them. Otherwise the method with
+   the fewest parameters (then the order of
    :data:`onnxcal.scaling.METHODS`) among the best and the methods whose
    interval reaches 0 or below, i.e. that the data cannot tell from the
    best. A simpler map has less to overfit and, for temperature scaling,
@@ -26,6 +29,10 @@ The rule (issue 15, made robust on small sets):
    parsimony). The chosen method is then fitted as ``--method NAME`` (its
    held-out report, its bootstrap; the parameters baked in fitted on all
    rows).
+
+When every calibration row is classified correctly the maximum-likelihood
+fits do not exist (:mod:`onnxcal.fit.smoothed`); every candidate is then
+fitted to Platt's smoothed targets, and ``Choice.smoothed_targets`` says so.
 
 Pure functions over plain numbers: the fitting is :mod:`onnxcal.fit.auto`'s,
 which hands :func:`choose` one :class:`Candidate` per method and stores the
@@ -47,6 +54,8 @@ TABLE_FIELDS = ("nll", "ece", "brier", "accuracy")
 FOLDS = 5
 # A paired interval whose lower end is at most this is taken to reach 0 (rounding of equal fits).
 _TIE = 1e-12
+# The candidate "the model as it is" (no map: temperature scaling at T = 1 is what gets baked in).
+IDENTITY = "uncalibrated"
 
 
 @dataclass(frozen=True)
@@ -106,6 +115,9 @@ class Choice:
     replicates : int
         Bootstrap resamples behind the intervals (0: the paired intervals
         are mean +- 1.96 standard errors, the others absent).
+    smoothed_targets : bool
+        Every candidate was fitted to Platt's smoothed targets (the
+        calibration rows are all classified correctly, or the user asked).
     """
 
     chosen: str
@@ -115,6 +127,12 @@ class Choice:
     candidates: tuple[Candidate, ...]
     folds: int = FOLDS
     replicates: int = 0
+    smoothed_targets: bool = False
+
+    @property
+    def method(self) -> str:
+        """The method baked in (the model as it is: temperature scaling at T = 1)."""
+        return "temperature" if self.chosen == IDENTITY else self.chosen
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -125,14 +143,16 @@ class Choice:
             "rule": RULE,
             "folds": self.folds,
             "replicates": self.replicates,
+            "smoothed_targets": self.smoothed_targets,
             "candidates": [c.to_dict() for c in self.candidates],
         }
 
 
 RULE = (
-    "every method cross-fitted (each row held out once); the lowest mean out-of-fold NLL is the best; among the "
-    "best and the methods whose paired per-row NLL difference to it has a 95% interval reaching 0, the one with "
-    "the fewest parameters"
+    "every method cross-fitted (each row held out once; fitted to Platt's smoothed targets when every row is "
+    "classified correctly); the map with the lowest mean out-of-fold NLL is the best; among it and the maps whose "
+    "paired per-row NLL difference to it has a 95% interval reaching 0, the one with the fewest parameters; the "
+    "model is left as it is when every map's paired difference to its own probabilities has a 95% interval above 0"
 )
 
 
@@ -157,7 +177,7 @@ def n_parameters(scaling: Scaling, num_classes: int) -> int:
 
 
 def _order(c: Candidate) -> tuple[int, int]:
-    return c.n_parameters, METHODS.index(c.method)
+    return c.n_parameters, -1 if c.method == IDENTITY else METHODS.index(c.method)
 
 
 def _count(n: int) -> str:
@@ -173,11 +193,18 @@ def _reaches_zero(c: Candidate) -> bool:
 
 
 def choose(candidates: Sequence[Candidate], basis: str = "cross-fitted", folds: int = FOLDS,
-           replicates: int = 0) -> Choice:
+           replicates: int = 0, smoothed_targets: bool = False, keep_model: bool = False) -> Choice:
     """Apply the rule to the candidates (each with its paired ``difference`` to the best).
 
     A candidate without a ``difference`` other than the best counts as
-    told apart from it.
+    told apart from it. ``best`` is the map with the lowest NLL (the
+    :data:`IDENTITY` row, the model as it is, is not a map: its
+    ``difference`` is to that map too). The model as it is is chosen only
+    with ``keep_model``: every map is worse than it by a paired interval
+    above 0 (:func:`onnxcal.fit.auto.compare` decides). Cross-fitting
+    scores a map by fits on part of the rows, which handicaps it against
+    the unfitted identity on a small set, so a lower mean alone is not
+    enough.
 
     Examples
     --------
@@ -188,16 +215,25 @@ def choose(candidates: Sequence[Candidate], basis: str = "cross-fitted", folds: 
     """
     if not candidates:
         raise OnnxcalError("no calibration method applies to these scores")
-    best = min(candidates, key=lambda c: (c.nll, _order(c)))
-    within = [best, *(c for c in candidates if c is not best and _reaches_zero(c))]
-    chosen = min(within, key=_order)
+    maps = [c for c in candidates if c.method != IDENTITY]
+    if not maps:
+        raise OnnxcalError("no calibration method applies to these scores")
+    best = min(maps, key=lambda c: (c.nll, _order(c)))
     how = "bootstrap" if replicates else "normal-approximation"
+    if keep_model:
+        model = next(c for c in candidates if c.method == IDENTITY)
+        reason = (f"no map improved the {basis} NLL: the model's own probabilities have {model.nll:.4g}, and every "
+                  f"map is worse by a paired per-row NLL difference whose 95% {how} interval lies above 0, so the "
+                  "model is left as it is (temperature T = 1 is baked in: the same probabilities, with the record)")
+        return _choice(model, best, reason, basis, candidates, folds, replicates, smoothed_targets)
+    within = [best, *(c for c in maps if c is not best and _reaches_zero(c))]
+    chosen = min(within, key=_order)
     if chosen is best:
-        simpler = [c for c in candidates if _order(c) < _order(best)]
+        simpler = [c for c in maps if _order(c) < _order(best)]
         reason = (f"{best.method} has the lowest {basis} NLL ({best.nll:.4g}) and "
                   + (f"every method with fewer parameters is worse by a paired per-row NLL difference whose 95% "
                      f"{how} interval lies above 0" if simpler else "no method has fewer parameters"))
-        if len(candidates) == 1:
+        if len(maps) == 1:
             reason = f"{best.method} is the only method that applies"
     else:
         assert chosen.difference is not None  # in `within` and not the best
@@ -205,7 +241,14 @@ def choose(candidates: Sequence[Candidate], basis: str = "cross-fitted", folds: 
                   f"({_count(chosen.n_parameters)} against {best.n_parameters}) has {chosen.nll:.4g}, and the 95% "
                   f"{how} interval of its paired per-row NLL difference to {best.method} "
                   f"({_span(chosen.difference)}) reaches 0, so the simpler {chosen.method} is chosen")
-    return Choice(chosen.method, best.method, reason, basis, tuple(candidates), folds, replicates)
+    return _choice(chosen, best, reason, basis, candidates, folds, replicates, smoothed_targets)
+
+
+def _choice(chosen: Candidate, best: Candidate, reason: str, basis: str, candidates: Sequence[Candidate], folds: int,
+            replicates: int, smoothed_targets: bool) -> Choice:
+    if smoothed_targets:
+        reason += "; every map fitted to Platt's smoothed targets"
+    return Choice(chosen.method, best.method, reason, basis, tuple(candidates), folds, replicates, smoothed_targets)
 
 
 def choice_from_dict(data: Mapping[str, Any]) -> Choice:
@@ -230,7 +273,8 @@ def choice_from_dict(data: Mapping[str, Any]) -> Choice:
         for c in data["candidates"]
     )
     for name in (data["chosen"], data["best"], *(c.method for c in candidates)):
-        if name not in METHODS:
+        if name not in METHODS and name != IDENTITY:
             raise OnnxcalError(f"'choice' names an unknown method {name!r}", f"use one of: {', '.join(METHODS)}")
     return Choice(str(data["chosen"]), str(data["best"]), str(data["reason"]), str(data["basis"]), candidates,
-                  int(data.get("folds", FOLDS)), int(data.get("replicates", 0)))
+                  int(data.get("folds", FOLDS)), int(data.get("replicates", 0)),
+                  bool(data.get("smoothed_targets", False)))

@@ -7,10 +7,15 @@ import json
 import warnings
 
 import numpy as np
+import onnxruntime as ort
 import pytest
+import scipy.special
+from conftest import random_mlp
+from onnx.reference import ReferenceEvaluator
 
-from onnxcal import resample
+from onnxcal import graph, resample
 from onnxcal.choose import (
+    IDENTITY,
     METHODS,
     Candidate,
     candidate_methods,
@@ -19,8 +24,8 @@ from onnxcal.choose import (
     n_parameters,
 )
 from onnxcal.errors import OnnxcalError
-from onnxcal.fit import FitOptions, fit_scaling
-from onnxcal.fit.auto import compare, fold_ids, out_of_fold, row_nll
+from onnxcal.fit import FitOptions, fit_scaling, load_fit, save_fit, summarize
+from onnxcal.fit.auto import _as_it_is, compare, fold_ids, out_of_fold, row_nll
 from onnxcal.metrics import evaluate
 from onnxcal.scaling import Scaling
 
@@ -215,3 +220,69 @@ def test_without_a_bootstrap_the_paired_interval_is_a_normal_approximation():
     for c in choice.candidates:
         assert all(v is None for v in c.intervals.values())
         assert (c.difference is None) == (c.method == choice.best)
+
+
+# --------------------------------------------------------------------------
+# The model as it is (IDENTITY)
+
+
+def test_the_model_as_it_is_is_kept_only_when_every_map_is_worse_by_an_interval_above_zero():
+    table = [cand(IDENTITY, 0, 0.200, [-0.02, -0.001]), cand("temperature", 1, 0.210),
+             cand("vector", 6, 0.230, [0.01, 0.05])]
+    c = choose(table, keep_model=True)
+    assert c.chosen == IDENTITY and c.method == "temperature" and c.best == "temperature"
+    assert "no map improved" in c.reason and "left as it is" in c.reason
+    # without that evidence the maps are compared among themselves: the identity row is not a map
+    c = choose(table)
+    assert c.chosen == c.best == c.method == "temperature"
+    back = choice_from_dict(json.loads(json.dumps(choose(table, smoothed_targets=True, keep_model=True).to_dict())))
+    assert back.chosen == IDENTITY and back.smoothed_targets
+
+
+def test_calibrated_model_gets_the_identity_or_a_temperature_near_one_and_a_miscalibrated_one_a_map():
+    # Gumbel-max draws from softmax(z): the model is calibrated; from softmax(z / 2): it is not (T = 2).
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        z, y = _gumbel_max(np.random.default_rng(3), 400, lambda s: s)
+        s = summarize(z, y, {}, FitOptions(method="auto", bootstrap=100))
+        z2, y2 = _gumbel_max(np.random.default_rng(3), 400, lambda s: s / 2.0)
+        s2 = summarize(z2, y2, {}, FitOptions(method="auto", bootstrap=100))
+    rows = {c.method: c for c in s.choice.candidates}
+    assert rows[IDENTITY].n_parameters == 0
+    # its own probabilities' NLL; reference: scipy.special.log_softmax
+    own = -scipy.special.log_softmax(z.astype(np.float64), axis=1)[np.arange(len(y)), y].mean()
+    assert rows[IDENTITY].nll == pytest.approx(own, rel=1e-6)
+    assert s.choice.chosen == IDENTITY or abs(s.scaling.temperature - 1.0) < 0.15
+    assert s2.choice.chosen != IDENTITY and s2.choice.candidates[0].method == IDENTITY
+    assert {c.method: c for c in s2.choice.candidates}[IDENTITY].difference[0] > 0  # the maps beat it
+    assert s2.scaling.temperature is None or s2.scaling.temperature > 1.5
+
+
+def test_the_model_as_it_is_summary_bakes_t_one(tmp_path):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        z, y = _gumbel_max(np.random.default_rng(4), 200, lambda s: s)
+        t = summarize(z, y, {}, FitOptions(bootstrap=0))
+    kept = _as_it_is(t)
+    assert kept.scaling.method == "temperature" and kept.scaling.temperature == 1.0
+    assert kept.after == kept.before and kept.fit_part["after"] == kept.fit_part["before"]
+    assert kept.holdout_result.scaling.temperature == 1.0 and kept.intervals is None
+    save_fit(tmp_path / "fit.json", kept)
+    assert load_fit(tmp_path / "fit.json").scaling.temperature == 1.0
+
+
+def test_the_model_as_it_is_patched_gives_the_original_probabilities(rng, tmp_path):
+    # Baked in, the identity (T = 1) must give the original model's own output, run by onnxruntime and by
+    # onnx's ReferenceEvaluator (onnx's own Python implementation of the operators).
+    model = random_mlp(rng, d=6, k=3, final="Softmax")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        z, y = _gumbel_max(np.random.default_rng(4), 120, lambda s: s)
+        kept = _as_it_is(summarize(z, y, {}, FitOptions(bootstrap=0)))
+    patched = graph.patch(model, kept.scaling, source_sha256="0" * 64, source_name="model.onnx")
+    x = rng.normal(size=(32, 6)).astype(np.float32)
+    want = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"]).run(None, {"x": x})[0]
+    got = ort.InferenceSession(patched.SerializeToString(), providers=["CPUExecutionProvider"]).run(None, {"x": x})[0]
+    ref = ReferenceEvaluator(patched).run(None, {"x": x})[0]
+    assert np.allclose(got, want, atol=1e-6) and np.allclose(ref, want, atol=1e-6)
+    assert graph.read_record(patched).temperature == 1.0

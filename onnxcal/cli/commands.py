@@ -44,6 +44,7 @@ from .options import (
     SetCoverageOpt,
     SetPerClassOpt,
     SetScoreOpt,
+    SmoothedTargetsOpt,
     VerifyAcceptConfidenceOpt,
     VerifyAcceptErrorOpt,
     VerifySetCoverageOpt,
@@ -132,6 +133,7 @@ def fit(
     method: MethodOpt = "temperature",
     multilabel: MultilabelOpt = None,
     l2: L2Opt = 0.0,
+    smoothed_targets: SmoothedTargetsOpt = False,
     holdout: HoldoutOpt = 0.25,
     seed: SeedOpt = 0,
     bootstrap: BootstrapOpt = 200,
@@ -149,7 +151,7 @@ def fit(
     from .. import api
     from ..fit import FitOptions
 
-    options = FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins)
+    options = FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins, smoothed_targets)
     with progress_bar(quiet or as_json) as progress:
         summary = api.fit(logits, out=out_path, force=force, options=options, drop_nonfinite=drop_nonfinite,
                           progress=progress)
@@ -444,6 +446,7 @@ def calibrate(
     method: MethodOpt = "temperature",
     multilabel: MultilabelOpt = None,
     l2: L2Opt = 0.0,
+    smoothed_targets: SmoothedTargetsOpt = False,
     holdout: HoldoutOpt = 0.25,
     seed: SeedOpt = 0,
     bootstrap: BootstrapOpt = 200,
@@ -503,7 +506,7 @@ def calibrate(
             fold=fold,
             force=force,
             progress=progress,
-            options=FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins),
+            options=FitOptions(method, multilabel, l2, holdout, seed, bootstrap, bins, smoothed_targets),
             report=report_dir,
             drop_nonfinite=drop_nonfinite,
             max_model_bytes=max_model_bytes,

@@ -135,8 +135,9 @@ MethodOpt = Annotated[
         help="One of: temperature (softmax(z/T), or sigmoid(z/T) for one logit), vector "
         "(softmax(w*z+b), per class), platt (sigmoid(a*z+b), one logit), matrix (softmax(W z+b)), dirichlet "
         "(softmax(W log p+b)), beta (one logit), isotonic, histogram (binning), ensemble-temperature, ovr-platt "
-        "(one-vs-rest, renormalised), or auto (every applicable method fitted, the simplest within the best "
-        "held-out NLL's bootstrap interval chosen). isotonic and histogram can change the ranking and the argmax.",
+        "(one-vs-rest, renormalised), or auto (every applicable method cross-fitted; the model left as it is "
+        "when no map lowers the NLL, else the simplest the data cannot tell from the best). isotonic and "
+        "histogram can change the ranking and the argmax.",
         metavar="METHOD",  # the eleven choices, as a|b|c, would not fit a narrow terminal's line: the help lists them
         rich_help_panel=FIT_PANEL,
     ),
@@ -158,6 +159,16 @@ L2Opt = Annotated[
         "ovr-platt a pull toward the identity; matrix and dirichlet the off-diagonal and intercept penalty "
         "(0: the default 100). The other methods have none.",
         metavar="X",
+        rich_help_panel=FIT_PANEL,
+    ),
+]
+SmoothedTargetsOpt = Annotated[
+    bool,
+    typer.Option(
+        "--smoothed-targets",
+        help="Fit to Platt's smoothed targets instead of the 0/1 labels: (N+1)/(N+2) for a row's class (N: the "
+        "rows of that class), the rest shared by the others. The fit stays finite when every row is classified "
+        "correctly (auto does this by itself then). Multiclass and binary only.",
         rich_help_panel=FIT_PANEL,
     ),
 ]

@@ -174,13 +174,15 @@ def _with_interval(value: float, pair: list[float] | None) -> str:
 
 def render_choice(choice: Choice) -> None:
     """The comparison table of ``--method auto`` (each figure with its 95% interval) and the choice."""
-    from ..choose import TABLE_FIELDS
+    from ..choose import IDENTITY, TABLE_FIELDS
 
     columns = [Column("method"), Column("params", right=True)]
     columns += [Column(_CHOICE_LABELS[f], right=True) for f in TABLE_FIELDS]
     columns += [Column("NLL - best", right=True)]
+    targets = "; every map fitted to Platt's smoothed targets" if choice.smoothed_targets else ""
     table = Grid(f"--method auto: every applicable method, {choice.basis} on {choice.folds} folds (every row held "
-                 "out once; in brackets: 95% interval; NLL - best: paired per-row difference to the lowest NLL)",
+                 "out once; in brackets: 95% interval; NLL - best: paired per-row difference to the map with the "
+                 f"lowest NLL; {IDENTITY}: the model as it is{targets})",
                  columns, boxed=False)
     for c in choice.candidates:
         marks = ["chosen"] if c.method == choice.chosen else []
@@ -191,7 +193,8 @@ def render_choice(choice: Choice) -> None:
         diff = "-" if c.difference is None else f"{_short(c.difference[0])} to {_short(c.difference[1])}"
         table.add_row(name, str(c.n_parameters), *figures, diff)
     show_table(table)
-    say(f"chosen: {choice.chosen}: {choice.reason}")
+    chosen = "the model as it is (T = 1)" if choice.chosen == IDENTITY else choice.chosen
+    say(f"chosen: {chosen}: {choice.reason}")
 
 
 _REFERENCE_FROM = {

@@ -25,11 +25,13 @@ from typing import Any
 
 import numpy as np
 
-from ..choose import FOLDS, TABLE_FIELDS, Candidate, Choice, candidate_methods, choose, n_parameters
+from ..choose import FOLDS, IDENTITY, TABLE_FIELDS, Candidate, Choice, candidate_methods, choose, n_parameters
 from ..errors import OnnxcalError
 from ..holdout import _sample_strata, _strata, samples_of
 from ..metrics import evaluate
 from ..metrics.core import log_softmax
+from ..scaling import Scaling
+from . import smoothed
 
 # summarize_one(logits, labels, capture_meta, options, threads) -> FitSummary
 SummarizeOne = Callable[[np.ndarray, np.ndarray, dict[str, Any], Any, Any], Any]
@@ -139,7 +141,10 @@ class _Scored:
 
 def _score(method: str, logits: np.ndarray, labels: np.ndarray, options: Any, fold: np.ndarray, refit: Refit,
            groups: np.ndarray | None, threads: int | None) -> _Scored:
-    oof, size, converged = out_of_fold(logits, labels, replace(options, method=method), fold, refit)
+    if method == IDENTITY:  # the model as it is: nothing fitted, every row scored by its own probabilities
+        oof, size, converged = Scaling.of_temperature(1.0).apply(np.asarray(logits, dtype=np.float64)), 0, True
+    else:
+        oof, size, converged = out_of_fold(logits, labels, replace(options, method=method), fold, refit)
     whole = evaluate(oof, labels, 1.0, options.n_bins, threads=threads).to_dict()
     losses = row_nll(oof, labels)
     per: dict[str, list[float]] = {f: [] for f in TABLE_FIELDS}
@@ -161,11 +166,17 @@ def compare(
 ) -> tuple[Choice, list[str]]:
     """Cross-fit every candidate method and apply the rule; the choice and notes (methods left out).
 
+    The candidates are the model as it is (:data:`~onnxcal.choose.IDENTITY`)
+    and every applicable method, fitted to Platt's smoothed targets when
+    every row is classified correctly (or ``options.smoothed_targets``).
     ``progress("cross-fitting", done, total)`` counts the methods compared.
     """
     fold = fold_ids(labels, FOLDS, options.seed, groups)
     scored, notes = [], []
-    methods = candidate_methods(kind)
+    asked = bool(options.smoothed_targets)
+    smooth = smoothed_fits(logits, labels, options, kind)
+    options = replace(options, smoothed_targets=smooth)
+    methods = (IDENTITY, *candidate_methods(kind))
     for i, method in enumerate(methods):
         if progress is not None:
             progress("cross-fitting", i, len(methods))
@@ -177,16 +188,50 @@ def compare(
         progress("cross-fitting", len(methods), len(methods))
     if not scored:
         raise OnnxcalError("--method auto could not fit any method on these scores", "; ".join(notes) or None)
-    best = min(scored, key=lambda s: float(s.metrics["nll"]))
+    maps = [s for s in scored if s.method != IDENTITY]
+    if not maps:
+        raise OnnxcalError("--method auto could not fit any method on these scores", "; ".join(notes) or None)
+    best = min(maps, key=lambda s: float(s.metrics["nll"]))
     candidates = []
     for s in scored:
-        diff = None
-        if s is not best:
-            d = s.losses - best.losses
-            diff = _percentile(s.draws - best.draws) if options.bootstrap else _normal_difference(d, groups)
+        diff = None if s is best else _difference(s, best, options, groups)
         candidates.append(Candidate(s.method, s.size, s.metrics, s.intervals, s.converged, diff))
     n_folds = int(len(np.unique(fold)))
-    return choose(candidates, "cross-fitted", n_folds, int(options.bootstrap)), notes
+    model = next((s for s in scored if s.method == IDENTITY), None)
+    keep = model is not None and all(_above_zero(_difference(m, model, options, groups)) for m in maps)
+    choice = choose(candidates, "cross-fitted", n_folds, int(options.bootstrap), smooth, keep)
+    if smooth and not asked:
+        choice = replace(choice, reason=choice.reason + " (every row is classified correctly, so no "
+                         "maximum-likelihood fit exists)")
+    return choice, notes
+
+
+def _difference(s: _Scored, ref: _Scored, options: Any, groups: np.ndarray | None) -> list[float] | None:
+    """The 95 % interval of the mean per-row NLL of ``s`` minus ``ref`` (bootstrap, or normal approximation);
+    None when a resample gave a non-finite figure."""
+    if options.bootstrap:
+        return _percentile(s.draws - ref.draws)
+    return _normal_difference(s.losses - ref.losses, groups)
+
+
+def _above_zero(interval: list[float] | None) -> bool:
+    return interval is not None and interval[0] > 0
+
+
+def smoothed_fits(logits: np.ndarray, labels: np.ndarray, options: Any, kind: str) -> bool:
+    """Whether ``auto`` fits its candidates to smoothed targets: asked for, or every row classified correctly
+    (then no maximum-likelihood fit exists) on a set small enough to repeat once per class (else the fits say
+    that no maximum-likelihood estimate exists); never for multi-label labels."""
+    if kind == "multilabel":
+        if options.smoothed_targets:
+            smoothed.expanded(logits[:1], labels[:1])  # raises: no smoothed targets for multi-label labels
+        return False
+    if options.smoothed_targets:
+        return True
+    k = max(logits.shape[1], 2)
+    if len(logits) * k * logits.shape[1] > smoothed.MAX_EXPANDED:  # too large to repeat: the fits warn instead
+        return False
+    return smoothed.all_correct(logits, labels)
 
 
 def fit_all(
@@ -209,10 +254,29 @@ def fit_all(
     """
     choice, left_out = compare(logits, labels, options, kind, refit, groups=groups, threads=threads,
                                progress=progress)
-    chosen = summarize_one(logits, labels, capture_meta, replace(options, method=choice.chosen), threads)
-    note = (f"--method auto compared {len(choice.candidates)} methods, each cross-fitted on {choice.folds} "
+    options = replace(options, smoothed_targets=choice.smoothed_targets)
+    if choice.chosen == IDENTITY:
+        chosen = _as_it_is(summarize_one(logits, labels, capture_meta,
+                                         replace(options, method="temperature", smoothed_targets=False, bootstrap=0),
+                                         threads))
+    else:
+        chosen = summarize_one(logits, labels, capture_meta, replace(options, method=choice.chosen), threads)
+    note = (f"--method auto compared {len(choice.candidates)} candidates, each cross-fitted on {choice.folds} "
             f"folds: {choice.reason}")
     return replace(chosen, choice=choice, options=options, notes=(*chosen.notes, *left_out, note)), choice
+
+
+def _as_it_is(summary: Any) -> Any:
+    """A temperature summary (without bootstrap) turned into the model as it is: T = 1, after = before."""
+    result = summary.result
+    same = replace(result, scaling=Scaling.of_temperature(1.0, result.scaling.kind), passes=0.0, converged=True,
+                   on_bound=False, warnings=())
+    fit_part = None if summary.fit_part is None else {"before": summary.fit_part["before"],
+                                                      "after": summary.fit_part["before"]}
+    return replace(summary, result=same, after=summary.before, fit_part=fit_part,
+                   holdout_result=None if summary.holdout_result is None else same, intervals=None,
+                   warnings=tuple(w for w in summary.warnings if w not in result.warnings),
+                   notes=(*summary.notes, "the model is left as it is (T = 1): no map to put intervals on"))
 
 
 def describe_candidates(choice: Choice) -> Sequence[str]:

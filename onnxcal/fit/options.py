@@ -44,6 +44,9 @@ class FitOptions:
         Bootstrap replicates for the intervals (0: none).
     n_bins : int
         Bins of the ECEs.
+    smoothed_targets : bool
+        Fit to Platt's smoothed targets instead of the 0/1 labels
+        (:mod:`onnxcal.fit.smoothed`; multiclass and binary).
     """
 
     method: str = "temperature"
@@ -53,6 +56,7 @@ class FitOptions:
     seed: int = 0
     bootstrap: int = 200
     n_bins: int = DEFAULT_BINS
+    smoothed_targets: bool = False
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)

@@ -7,6 +7,7 @@
 from __future__ import annotations
 
 from collections.abc import Callable
+from dataclasses import replace
 from typing import Any
 from warnings import warn
 
@@ -20,6 +21,7 @@ from ..metrics import Metrics, evaluate
 from ..passes import fit_and_score
 from ..scaling import MAP_METHODS, METHODS_FOR, MULTILABEL_MODES, SIGMOID_L1, Scaling, kind_of
 from ..sweep import one_blas_thread
+from . import smoothed
 from .affine import _fit_affine
 from .auto import fit_all
 from .l1 import summarize_l1
@@ -93,7 +95,46 @@ def fit_scaling(
     """Fit the method of ``options`` to the logits (optionally a weighted subset).
 
     ``start`` (a previous fit of the same method) warm-starts the solver.
+    With ``options.smoothed_targets`` the fit is to Platt's smoothed targets
+    (the same solver on the repeated set of :func:`smoothed.expanded`);
+    otherwise a fit that stops at its bound on rows all classified correctly
+    says that the maximum-likelihood estimate does not exist.
     """
+    if options.smoothed_targets:
+        z, y, w = smoothed.expanded(logits, labels, rows, weights)
+        plain = replace(options, smoothed_targets=False)
+        return _fit_labels(z, y, plain, rows=None, weights=w, start=start)
+    result = _fit_labels(logits, labels, options, rows=rows, weights=weights, start=start)
+    return _said_if_no_estimate(result, logits, labels, rows, weights)
+
+
+def _said_if_no_estimate(
+    result: FitResult, logits: np.ndarray, labels: np.ndarray, rows: np.ndarray | None = None,
+    weights: np.ndarray | None = None,
+) -> FitResult:
+    """A fit on its bound over rows all classified correctly: its bound note replaced by the no-estimate warning."""
+    if result.on_bound and smoothed.all_correct(logits, labels, rows, weights):
+        rest = tuple(w for w in result.warnings if " bound" not in w)  # said again, with the reason and the remedies
+        return replace(result, warnings=(smoothed.no_estimate_warning(_bound_what(result)), *rest))
+    return result
+
+
+def _bound_what(result: FitResult) -> str:
+    if result.method == "temperature":
+        return "the temperature"
+    return f"a parameter of {result.method} scaling"
+
+
+def _fit_labels(
+    logits: np.ndarray,
+    labels: np.ndarray,
+    options: FitOptions,
+    *,
+    rows: np.ndarray | None = None,
+    weights: np.ndarray | None = None,
+    start: Scaling | None = None,
+) -> FitResult:
+    """:func:`fit_scaling` on the labels as they are."""
     kind = resolve_kind(logits, labels, options)
     if options.method in ("vector", "platt"):
         return _fit_affine(logits, labels, options.method, options.l2, rows, weights, start, kind)
@@ -117,7 +158,8 @@ def _fit_map(
     scaling, passes, converged, notes = fit_map(
         logits, labels, options.method, kind, options.l2, rows=rows, weights=weights, start=start, **extra
     )
-    return FitResult(scaling, passes, converged, on_bound=False, warnings=notes)
+    on_bound = any(" bound" in n for n in notes)  # the maps say when a parameter lies on its bound
+    return FitResult(scaling, passes, converged, on_bound=on_bound, warnings=notes)
 
 
 # --------------------------------------------------------------------------
@@ -165,6 +207,8 @@ def _temperature_passes(
     part, full = (
         _temperature_result(np.array([s.beta]), s.passes, s.converged, "multiclass") for s in (scored.part, scored.full)
     )
+    part = _said_if_no_estimate(part, logits, labels, fit_rows)
+    full = _said_if_no_estimate(full, logits, labels)
     return part, full, (tuple(scored.before), tuple(scored.after)), scored.expansion
 
 
@@ -247,7 +291,7 @@ def _summarize(
         fit_rows, eval_rows = resample.split_holdout(labels, options.holdout, options.seed, groups=groups)
     else:
         fit_rows = eval_rows = np.arange(n)
-    if kind == "multiclass" and options.method == "temperature":
+    if kind == "multiclass" and options.method == "temperature" and not options.smoothed_targets:
         part, result, scores, expansion = _temperature_passes(
             logits, labels, options, fit_rows, eval_rows, threads, progress
         )

@@ -214,12 +214,16 @@ def _choice_html(choice: dict[str, Any] | None) -> list[str]:
         return []
     head, rows = choice_rows(choice)
     folds = choice.get("folds", 5)
+    targets = (" Every calibration row is classified correctly, or smoothed targets were asked for: every map "
+               "was fitted to Platt's smoothed targets, (N+1)/(N+2) for a row's own class, not to the 0/1 labels."
+               if choice.get("smoothed_targets") else "")
     return [
         '<h3 id="choice">How the method was chosen (--method auto)</h3>',
         f"<p>Every applicable method was cross-fitted on {folds} folds of all the rows: fitted on all folds but "
         "one and scored on that one, so every row is held out once (figures with their 95% intervals; "
-        "the last column: the interval of the mean per-row NLL difference to the lowest one, on the same rows). "
-        f"Rule: {_e(choice['rule'])}. {_e(choice['reason'])}.</p>",
+        "the last column: the interval of the mean per-row NLL difference to the map with the lowest one, on the "
+        "same rows; 'uncalibrated': the model as it is, its own probabilities). "
+        f"Rule: {_e(choice['rule'])}. {_e(choice['reason'])}.{_e(targets)}</p>",
         _table(head, rows, numeric_from=1),
     ]
 

@@ -22,6 +22,10 @@ for sigmoid, isotonic and temperature, where ``m`` is the same ONNX model
 run by onnxruntime (its probabilities as ``predict_proba``), fitted on the
 same calibration half, scored on the same test half.
 
+"auto chose" names each split's choice ("uncalibrated": the model left as
+it is; "(smoothed targets)": every candidate fitted to Platt's smoothed
+targets, the calibration half being classified without error).
+
 "auto (one split)": the rule before cross-fitting, for comparison (fit on
 75 % of the calibration half, the simplest method whose NLL on the other
 25 % lies within the best one's 95 % bootstrap interval), computed here from
@@ -172,7 +176,8 @@ def one_split(entry: dict, seed: int, bootstrap: int) -> tuple[dict[str, dict[st
     rows["auto (one split)"] = dict(rows[old])
     for m, p in sklearn_route(entry, x_cal, y_cal, x_test).items():
         rows[m] = metrics(p, y_test)
-    return rows, ours["auto"][1].choice.chosen, old, seconds
+    choice = ours["auto"][1].choice
+    return rows, choice.chosen + (" (smoothed targets)" if choice.smoothed_targets else ""), old, seconds
 
 
 def table(name: str, results: list[dict[str, dict[str, float]]], chosen: list[str], old: list[str]) -> str:

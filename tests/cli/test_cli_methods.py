@@ -16,9 +16,10 @@ import json
 import numpy as np
 import onnxruntime as ort
 import pytest
+import scipy.special
 from conftest import FIXTURES
 
-from onnxcal.choose import candidate_methods
+from onnxcal.choose import IDENTITY, candidate_methods
 from onnxcal.scaling import Scaling
 
 EXPORTERS = FIXTURES / "exporters"
@@ -95,9 +96,9 @@ def test_auto_chooses_and_says_why(tmp_path, run_cli, case):
     saved = json.loads(fit.read_text())
     choice = saved["choice"]
     kind = "binary" if case is BINARY else "multiclass"
-    assert [c["method"] for c in choice["candidates"]] == list(candidate_methods(kind))
-    assert saved["method"] == choice["chosen"] and saved["options"]["method"] == "auto"
-    assert "--method auto: every applicable method" in r.out and f"chosen: {choice['chosen']}" in r.out
+    assert [c["method"] for c in choice["candidates"]] == [IDENTITY, *candidate_methods(kind)]
+    assert saved["method"] == _baked(choice) and saved["options"]["method"] == "auto"
+    assert "--method auto: every applicable method" in r.out and "chosen: " in r.out
     # The rule, checked on the table FIT.json holds.
     _check_rule(choice)
     assert choice["basis"] == "cross-fitted" and choice["replicates"] == 8
@@ -110,16 +111,49 @@ def test_auto_chooses_and_says_why(tmp_path, run_cli, case):
     r = run_cli("inspect", out, "--json")
     record = json.loads(r.out)["record"]
     kept = record["fit"]["choice"]
-    assert kept["chosen"] == record["method"] and kept["replicates"] == 0
+    assert _baked(kept) == record["method"] and kept["replicates"] == 0
     _check_rule(kept)
     assert "How the method was chosen" in (tmp_path / "rep" / "report.html").read_text()
 
 
+def _baked(choice: dict) -> str:
+    """The method baked in: the chosen one, or temperature (T = 1) for the model as it is."""
+    return "temperature" if choice["chosen"] == IDENTITY else choice["chosen"]
+
+
 def _check_rule(choice: dict) -> None:
-    """The lowest cross-fitted NLL is the best; the chosen one has the fewest parameters among the best and the
-    methods whose paired NLL difference interval reaches 0."""
+    """The map with the lowest cross-fitted NLL is the best; the chosen one has the fewest parameters among the
+    best and the maps whose paired NLL difference interval reaches 0 (or is the model as it is, with every map's
+    NLL above its own)."""
     cands = {c["method"]: c for c in choice["candidates"]}
+    model = cands.pop(IDENTITY)
+    assert model["n_parameters"] == 0
     best = min(cands.values(), key=lambda c: c["metrics"]["nll"])
     assert choice["best"] == best["method"] and best["difference"] is None
+    if choice["chosen"] == IDENTITY:
+        assert all(c["metrics"]["nll"] > model["metrics"]["nll"] for c in cands.values())
+        return
     within = [best, *(c for c in cands.values() if c["difference"] is not None and c["difference"][0] <= 1e-12)]
     assert cands[choice["chosen"]]["n_parameters"] == min(c["n_parameters"] for c in within)
+
+
+def test_smoothed_targets_through_the_cli(tmp_path, run_cli):
+    model, data, output = MULTICLASS
+    cap = _capture(run_cli, tmp_path, model, data)
+    fits = {}
+    for flag in ((), ("--smoothed-targets",)):
+        fit = tmp_path / f"fit{len(flag)}.json"
+        r = run_cli("fit", cap, "--bootstrap", "0", "--out", fit, *flag)
+        assert r.code == 0, r.err
+        fits[bool(flag)] = json.loads(fit.read_text())
+    assert fits[True]["options"]["smoothed_targets"] and not fits[False]["options"]["smoothed_targets"]
+    # Platt's targets ask for less than certainty: the smoothed fit is the softer one (a higher T)
+    assert fits[True]["temperature"] > fits[False]["temperature"]
+    out = tmp_path / "patched.onnx"
+    r = run_cli("patch", model, "--fit", tmp_path / "fit1.json", "--out", out)
+    assert r.code == 0, r.err
+    # reference: the original model run by onnxruntime, its probabilities tempered with scipy
+    with np.errstate(divide="ignore"):
+        log_p = np.log(_run(model, output, data))
+    want = scipy.special.softmax(log_p / fits[True]["temperature"], axis=1)
+    assert np.allclose(_run(out, output, data), want, atol=1e-5)
