@@ -116,6 +116,36 @@ def test_calibrate_opens_three_sessions_and_runs_the_checked_rows_once(digits_se
     assert checks["identity"].value == pytest.approx(full["identity"].value, abs=1e-6)
 
 
+@pytest.mark.parametrize("head", ["raw logits", "softmax of an output"])
+def test_the_identity_rides_in_the_patched_models_session(digits_setup, monkeypatch, tmp_path, head):
+    """When the nodes the identity computes differently read only the written graph's outputs (raw logits,
+    to which the patch appends the probabilities; a Softmax over logits that are an output too), the
+    identity check runs in the patched model's session (graph.identity_rider): two sessions in all, and
+    the verdicts of verify on every row, with its own sessions."""
+    from onnxcal.capture import plan
+
+    d, clf, *_ = digits_setup
+    layers = list(zip(clf.coefs_, clf.intercepts_, strict=True))
+    if head == "raw logits":
+        model, output = mlp_model(layers, input_name="pixels", output_name="logits"), None
+    else:
+        model, output = mlp_model(layers, final="Softmax", input_name="pixels", output_name="probabilities"), None
+        model.graph.output.append(onnx.helper.make_tensor_value_info("logits", onnx.TensorProto.FLOAT, ["N", 10]))
+        output = "probabilities"
+    onnx.save(model, tmp_path / "m.onnx")
+    opened = []
+    make_session = plan.make_session
+    monkeypatch.setattr(plan, "make_session", lambda *a, **kw: opened.append(1) or make_session(*a, **kw))
+    result = api.calibrate(tmp_path / "m.onnx", d / "val.npz", tmp_path / "c.onnx", output=output)
+    assert len(opened) == 2
+    checks = {c.name: c for c in result.verification.checks}
+    assert checks["identity"].passed and not checks["identity"].skipped and checks["reference"].passed
+    assert all(f"'{name}'" in checks["identity"].detail for name in ("logits", output or "logits"))
+    full = {c.name: c for c in api.verify(tmp_path / "c.onnx", d / "val.npz", original=tmp_path / "m.onnx").checks}
+    assert full["identity"].passed and full["reference"].passed
+    assert checks["identity"].value <= full["identity"].value + 1e-7
+
+
 def test_digits_vector_scaling_end_to_end(digits_setup):
     d, clf, x_test, y_test = digits_setup
     out = d / "vector.onnx"

@@ -44,6 +44,7 @@ from onnx import TensorProto, helper, numpy_helper
 
 ROOT = Path(__file__).resolve().parents[2]
 CLASSES = 10
+FROM_SOURCE = False  # --from-source: the environment as it is, no bytecode compiled beforehand
 
 EXPERT = '''
 import sys, numpy as np, onnx, onnxruntime as ort
@@ -153,12 +154,34 @@ def images(work: Path, model: Path, n: int, size: int, seed: int = 0) -> tuple[n
     return decoded[order], labels[order].astype(np.int64)
 
 
+def child_env() -> dict[str, str]:
+    """The environment of the commands timed: this one without ``PYTHONDONTWRITEBYTECODE``.
+
+    An installed package runs from bytecode (pip compiles it at install), as
+    do numpy, onnx, onnxruntime and scipy here; with the variable set, an
+    editable onnxcal compiles its 120-odd modules from source on every run
+    (about 0.2 s of CPU), which the script's imports never pay.
+    """
+    if FROM_SOURCE:
+        return dict(os.environ)
+    return {k: v for k, v in os.environ.items() if k != "PYTHONDONTWRITEBYTECODE"}
+
+
+def compile_onnxcal(cwd: Path) -> str:
+    """Compile the bytecode of the onnxcal that the commands import (``PYTHONPATH`` honoured); its folder."""
+    code = ("import compileall, os, onnxcal; d = os.path.dirname(onnxcal.__file__); "
+            "compileall.compile_dir(d, quiet=1); print(d)")
+    done = subprocess.run([sys.executable, "-c", code], check=True, cwd=cwd, env=child_env(), capture_output=True,
+                          text=True)
+    return done.stdout.strip()
+
+
 def timed(cmd: list[str], cwd: Path) -> tuple[float, float]:
     """Seconds ``cmd`` takes, wall and CPU (user + system of the process), run in ``cwd`` (not the checkout:
     ``python -m`` would import the package from there, ahead of a PYTHONPATH that names the tree to measure)."""
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t0 = time.perf_counter()
-    subprocess.run(cmd, check=True, cwd=cwd, stdout=subprocess.DEVNULL)
+    subprocess.run(cmd, check=True, cwd=cwd, stdout=subprocess.DEVNULL, env=child_env())
     wall = time.perf_counter() - t0
     after = resource.getrusage(resource.RUSAGE_CHILDREN)
     return wall, (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
@@ -201,7 +224,12 @@ def main() -> None:
     parser.add_argument("--keep", type=Path, default=None,
                         help="make the model and images in this folder and keep them; a later run with the same "
                              "--keep, --images and --size reuses them (making 2 000 images of 224 x 224 takes minutes)")
+    parser.add_argument("--from-source", action="store_true",
+                        help="keep PYTHONDONTWRITEBYTECODE and compile no bytecode first (as the runs before "
+                             "December 2026 measured, in an environment that sets it)")
     args = parser.parse_args()
+    global FROM_SOURCE
+    FROM_SOURCE = args.from_source
     with tempfile.TemporaryDirectory(dir=args.workdir) as tmp:
         work = Path(tmp) if args.keep is None else args.keep / f"{args.images}x{args.size}"
         model, npz, script = work / "resnet18_like.onnx", work / "decoded.npz", work / "expert.py"
@@ -216,6 +244,9 @@ def main() -> None:
         py = sys.executable
         print(f"{args.images} images of {args.size}x{args.size}, ResNet-18 convolutions, {args.rounds} rounds; "
               f"load average at the start {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores", flush=True)
+        if not FROM_SOURCE:
+            print(f"onnxcal measured: {compile_onnxcal(work)} (bytecode compiled, as pip does at install)",
+                  flush=True)
         summary = []
         if args.which in ("calibrate", "all"):
             summary.append(alternate(
