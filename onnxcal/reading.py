@@ -340,6 +340,7 @@ def identity(
     original_run: RunPlan | None = None,
     prepared: IdentityRun | Check | None = None,
     got: list[np.ndarray] | None = None,
+    want: list[np.ndarray] | None = None,
 ) -> Check:
     """``verify.identity_check`` of the patched model at the identity against ``original``.
 
@@ -350,17 +351,17 @@ def identity(
     :func:`identity_run` of the same arguments when already made; ``got``
     the outputs at the identity on ``dataset``'s rows (``prepared.names``,
     from :func:`onnxcal.graph.identity_rider` in the patched model's
-    session), when already run.
+    session), when already run; ``want`` the original's outputs on those rows, when the capture has them.
     """
     plan = identity_run(original, patched, records) if prepared is None else prepared
     if isinstance(plan, Check):
         return plan
     assert original is not None  # identity_run skips without one
     names, out_axes = list(plan.names), list(plan.out_axes)
-    if original_run is not None:
+    if want is None and original_run is not None:
         want = run_plan(replace(original_run, names=tuple(names), out_axes=tuple(out_axes)), dataset,
                         progress=progress, description="running the original")
-    else:
+    elif want is None:
         want = run_model(original, dataset, names, options=run, progress=progress,
                          description="running the original", out_axes=out_axes)
     if got is None:

@@ -175,8 +175,9 @@ def _patch_and_check(
     # other heads: the original's sha256
     source_sha = source.sha if len(graph.read_records(patched)) == 1 else record.source_sha256
     checks += record_checks(record, patched, source.model, source_sha)
+    want = _captured_outputs(source.model, seen, prepared, dataset.n if sample is None else None, sample)
     checks.append(_reading.identity(source.model, patched, (record,), identity_set, run, progress, seen.original,
-                                    prepared, got))
+                                    prepared, got, want))
     notes = () if sample is None else (sample.note,)
     result = VerifyResult(checks=tuple(checks), n=dataset.n, original=str(source.path), notes=notes)
     return patched, record, result, chosen
@@ -199,6 +200,32 @@ def _riding(
         return None
     rows = np.ones(n, bool) if sample is None else np.isin(sample.positions, sample.identity_positions)
     return RiderRun(rider, prepared.out_axes, rows)
+
+
+def _captured_outputs(
+    model: onnx.ModelProto, seen: _Captured, prepared: _reading.IdentityRun | Check, n: int | None,
+    sample: Sample | None,
+) -> list[np.ndarray] | None:
+    """The original's side of the identity check taken from the capture, when the one output it compares is
+    the tensor the capture read, row for row (raw logits: its session ran the original on every row
+    already, and running it again on the identity's rows would give the same values); else None.
+
+    Rows are the output's own when the capture exposed the output itself (no logits recipe), it is 2-D
+    with samples first, and its dtype widens to the capture's float32 exactly (float32, float16).
+    """
+    plan = seen.original
+    if plan is None or isinstance(prepared, Check) or len(prepared.names) != 1 or prepared.out_axes != (0,):
+        return None
+    (name,) = prepared.names
+    if plan.names[:2] != (name, name) or seen.full.logits.ndim != 2:
+        return None
+    spec = next((graph.tensor_spec(o) for o in model.graph.output if o.name == name), None)
+    if spec is None or spec.dtype not in ("float32", "float16") or spec.shape is None or len(spec.shape) != 2:
+        return None
+    rows = seen.full.logits if sample is None else seen.full.logits[sample.identity_positions]
+    if sample is None and len(rows) != n:
+        return None
+    return [np.asarray(rows, np.float32)]
 
 
 def _report_files(

@@ -122,6 +122,7 @@ def test_the_identity_rides_in_the_patched_models_session(digits_setup, monkeypa
     to which the patch appends the probabilities; a Softmax over logits that are an output too), the
     identity check runs in the patched model's session (graph.identity_rider): two sessions in all, and
     the verdicts of verify on every row, with its own sessions."""
+    from onnxcal import reading
     from onnxcal.capture import plan
 
     d, clf, *_ = digits_setup
@@ -133,11 +134,16 @@ def test_the_identity_rides_in_the_patched_models_session(digits_setup, monkeypa
         model.graph.output.append(onnx.helper.make_tensor_value_info("logits", onnx.TensorProto.FLOAT, ["N", 10]))
         output = "probabilities"
     onnx.save(model, tmp_path / "m.onnx")
-    opened = []
+    opened, ran = [], []
     make_session = plan.make_session
     monkeypatch.setattr(plan, "make_session", lambda *a, **kw: opened.append(1) or make_session(*a, **kw))
+    run_plan = reading.run_plan
+    monkeypatch.setattr(reading, "run_plan", lambda p, data, **kw: ran.append(data.n) or run_plan(p, data, **kw))
     result = api.calibrate(tmp_path / "m.onnx", d / "val.npz", tmp_path / "c.onnx", output=output)
     assert len(opened) == 2
+    # raw logits: the one output compared is the tensor captured, so the original's side is the capture's
+    # rows (its session ran them already); else those rows run again in the capture's session
+    assert ran == ([] if head == "raw logits" else [64])
     checks = {c.name: c for c in result.verification.checks}
     assert checks["identity"].passed and not checks["identity"].skipped and checks["reference"].passed
     assert all(f"'{name}'" in checks["identity"].detail for name in ("logits", output or "logits"))
