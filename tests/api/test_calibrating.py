@@ -193,3 +193,30 @@ def test_csv_and_npz_of_the_same_rows_fit_the_same_temperature(tmp_path):
         DEMO_MODEL, DataSpec(path=DEMO_VAL, selection=Selection(limit=400)), tmp_path / "b.onnx", options=QUICK
     ).summary
     assert csv_fit.temperature == npz_fit.temperature
+
+
+NOT_ON_CALIBRATES_PATH = ("matplotlib", "PIL", "onnx.reference", "scipy.optimize", "scipy.stats", "sklearn",
+                          "jinja2")
+
+
+def test_calibrate_imports_nothing_it_does_not_use(tmp_path):
+    """``onnxcal calibrate`` with its defaults on arrays (no report, no images) in a fresh interpreter: the
+    plotting, image, reference-evaluator and optimiser modules are never imported (each costs start-up
+    time, which the time-to-a-calibrated-model benchmark counts; docs/benchmarks.md)."""
+    import subprocess
+    import sys
+
+    code = (
+        "import sys\n"
+        "from onnxcal.cli.app import main\n"
+        f"sys.argv = ['onnxcal', 'calibrate', {str(DEMO_MODEL)!r}, '--data', {str(DEMO_VAL)!r}, '--out', "
+        f"{str(tmp_path / 'c.onnx')!r}, '--quiet']\n"
+        "try:\n    main()\nexcept SystemExit:\n    pass\n"
+        f"tops = {[n.split('.')[0] for n in NOT_ON_CALIBRATES_PATH]!r}\n"
+        "print(sorted(m for m in sys.modules if m.split('.')[0] in tops))\n"
+    )
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=tmp_path)
+    assert (tmp_path / "c.onnx").exists(), done.stderr
+    loaded = eval(done.stdout.strip().splitlines()[-1])  # a list of module names printed by the child
+    for name in NOT_ON_CALIBRATES_PATH:
+        assert not any(m == name or m.startswith(name + ".") for m in loaded), (name, loaded)
