@@ -317,11 +317,12 @@ def calibrate(
     run = run_options(batch_size, threads, optimization, provider)
     patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds,
                             score_columns)
-    model = graph.load_model(model_path, max_bytes=limit)
-    _check_not_calibrated(model, model_path, output)
-    graph.default_opset(model)  # before the capture: can the patch import the operators it adds?
-    sha = graph.model_sha256(model_path)
-    dataset = load_data(model, spec, batch_size=run.batch_size)
+    with graph.SourceHash(model_path) as hashing:  # hashed on a second thread while the model and data load
+        model = graph.load_model(model_path, max_bytes=limit)
+        _check_not_calibrated(model, model_path, output)
+        graph.default_opset(model)  # before the capture: can the patch import the operators it adds?
+        dataset = load_data(model, spec, batch_size=run.batch_size)
+        sha = hashing.result()
     source = _Source(model, model_path, sha, dataset, run, progress)
     seen = _capture_finite(source, patching, drop_nonfinite)
     warn_nonfinite_inputs(seen.full, dataset.source)
