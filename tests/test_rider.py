@@ -92,3 +92,62 @@ def test_no_rider_for_a_folded_head_or_graphs_that_differ_in_nodes():
     other.graph.node[-1].name = "renamed"
     assert graph.identity_rider(patched, other, ["probabilities"]) is None
     assert graph.identity_rider(patched, patched, ["probabilities"]) is None  # nothing differs: nothing to ride
+
+
+def _optimized(model: onnx.ModelProto, tmp_path, name: str) -> list[onnx.NodeProto]:
+    """The nodes of ``model`` as onnxruntime's optimiser leaves them (level all, its saved optimised graph)."""
+    options = ort.SessionOptions()
+    options.optimized_model_filepath = str(tmp_path / f"{name}.onnx")
+    options.log_severity_level = 3
+    ort.InferenceSession(model.SerializeToString(), options, providers=["CPUExecutionProvider"])
+    return list(onnx.load(str(tmp_path / f"{name}.onnx")).graph.node)
+
+
+def _optimized_ops(model: onnx.ModelProto, tmp_path, name: str) -> list[str]:
+    return [n.op_type for n in _optimized(model, tmp_path, name)]
+
+
+def test_why_the_rider_reads_only_graph_outputs(tmp_path):
+    """What the rider relies on, asked of onnxruntime's own optimiser: it fuses a MatMul and a Div by a
+    constant scalar into one FusedMatMul when the MatMul's output has that one reader and is no graph
+    output; a second reader (a copy of the Div) blocks the fusion, so a copy reading an inner tensor would
+    change how the written nodes run; when the output is a graph output it is never fused, with or
+    without the second reader, so a copy reading it changes nothing."""
+    from onnx import numpy_helper
+
+    def model(y_is_output: bool, second_reader: bool) -> onnx.ModelProto:
+        inits = [numpy_helper.from_array(RNG.normal(size=(6, 4)).astype(np.float32), "W"),
+                 numpy_helper.from_array(np.array(2.5, np.float32), "T"),
+                 numpy_helper.from_array(np.array(1.0, np.float32), "T" + SUFFIX)]
+        nodes = [helper.make_node("MatMul", ["x", "W"], ["y"]), helper.make_node("Div", ["y", "T"], ["z"])]
+        outs = [helper.make_tensor_value_info("z", onnx.TensorProto.FLOAT, ["N", 4])]
+        if second_reader:
+            nodes.append(helper.make_node("Div", ["y", "T" + SUFFIX], ["z" + SUFFIX]))
+            outs.append(helper.make_tensor_value_info("z" + SUFFIX, onnx.TensorProto.FLOAT, ["N", 4]))
+        if y_is_output:
+            outs.append(helper.make_tensor_value_info("y", onnx.TensorProto.FLOAT, ["N", 4]))
+        graph_ = helper.make_graph(nodes, "g", [helper.make_tensor_value_info("x", onnx.TensorProto.FLOAT, ["N", 6])],
+                                   outs, inits)
+        return helper.make_model(graph_, opset_imports=[helper.make_opsetid("", 17)])
+
+    assert _optimized_ops(model(False, False), tmp_path, "a") == ["FusedMatMul"]
+    assert "FusedMatMul" not in _optimized_ops(model(False, True), tmp_path, "b")
+    assert _optimized_ops(model(True, False), tmp_path, "c") == ["MatMul", "Div"]
+    assert _optimized_ops(model(True, True), tmp_path, "d")[:2] == ["MatMul", "Div"]
+
+
+def test_the_written_nodes_are_optimised_as_they_are_alone(tmp_path):
+    """The rider of the two-output model, optimised by onnxruntime: leaving out the copy's nodes (their
+    outputs are renamed), the nodes are those of the written graph optimised alone."""
+    model = _two_outputs()
+    patched, at_one = _patched(model, output="probabilities")
+    rider = graph.identity_rider(patched, at_one, ["probabilities", "logits"])
+
+    def described(nodes: list[onnx.NodeProto]) -> list[tuple[str, tuple[str, ...], tuple[str, ...]]]:
+        return sorted((n.op_type, tuple(n.input), tuple(n.output)) for n in nodes)
+
+    alone = _optimized(patched, tmp_path, "alone")
+    both = _optimized(rider.model, tmp_path, "both")
+    copies = [n for n in both if any(o.endswith(SUFFIX) for o in n.output)]
+    assert copies and "FusedGemm" in [n.op_type for n in alone]
+    assert described([n for n in both if n not in copies]) == described(alone)
