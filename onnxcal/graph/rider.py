@@ -16,10 +16,11 @@ the added consumers cannot change how the written nodes are optimised, and
 the check still runs the graph that is written (asked of onnxruntime's own
 optimiser in tests/test_rider.py: a MatMul followed by a Div by a constant
 becomes one FusedMatMul when the MatMul's output has one reader and is no
-output; a second reader blocks that fusion, and so does the MatMul's output being an output). When the copy would read
-an inner tensor (a folded weight, a head whose input is not an output,
-``drop_logits``), or anything that differs sits in a subgraph, there is no
-rider and the identity runs in a session of its own, as ``verify`` runs it.
+output; a second reader blocks that fusion, and so does the MatMul's
+output being an output). When the copy would read an inner tensor (a
+folded weight, a head whose input is not an output, ``drop_logits``), or
+anything that differs sits in a subgraph, there is no rider and the
+identity runs in a session of its own, as ``verify`` runs it.
 """
 
 from __future__ import annotations
