@@ -143,7 +143,18 @@ class OnnxcalWarning(UserWarning):
 
     Raised through :func:`warnings.warn` (e.g. a fixed-batch model that must
     run one sample at a time); the CLI prints it as one ``warning:`` line.
+    Like an error leaving the Python API (:func:`keyword_errors`), its
+    message names the keywords (``drop_nonfinite=True``) unless the command
+    line is running (:func:`cli_spelling`), whose lines keep the options
+    (``--drop-nonfinite``). The spelling is chosen when the warning is made,
+    in the context it is made in: a worker thread that may warn runs in a
+    copy of its caller's context (``contextvars.copy_context``).
     """
+
+    def __init__(self, *args: object) -> None:
+        if args and isinstance(args[0], str) and not _CLI.get():
+            args = (python_spelling(args[0]), *args[1:])
+        super().__init__(*args)
 
 
 def first_line(exc: BaseException, limit: int = 300) -> str:

@@ -299,22 +299,20 @@ _IDENTITY = {
 }
 
 
-def identity(
-    original: onnx.ModelProto | None,
-    patched: onnx.ModelProto,
-    records: tuple[Record, ...],
-    dataset: Dataset,
-    run: RunOptions,
-    progress: ProgressFn | None = None,
-    original_run: RunPlan | None = None,
-) -> Check:
-    """``verify.identity_check`` of the patched model at the identity against ``original``.
+@dataclass(frozen=True)
+class IdentityRun:
+    """What the identity check runs: the patched graph at the identity (``at_one``), the original's outputs it
+    compares (``names``, the samples of each along ``out_axes``) and those it cannot (``others``, quoted)."""
 
-    ``original_run``, when given, is a session that gives the original's
-    outputs unchanged (the capture's copy of it, whose added nodes compute
-    the logits and touch none of the original's): it runs the original's
-    side instead of a session of its own.
-    """
+    at_one: onnx.ModelProto
+    names: tuple[str, ...]
+    out_axes: tuple[int, ...]
+    others: tuple[str, ...]
+
+
+def identity_run(original: onnx.ModelProto | None, patched: onnx.ModelProto, records: tuple[Record, ...]
+                 ) -> IdentityRun | Check:
+    """The identity check's run (:class:`IdentityRun`), or the check skipped with the reason."""
     if original is None:
         return skipped("identity", "no original model: the patch cannot be undone exactly (folded weights), "
                                    "give --original")
@@ -328,20 +326,51 @@ def identity(
     names = [o.name for o in kept if axes[o.name] is not None]
     if not names:
         return skipped("identity", "the patched model keeps none of the original's outputs")
-    out_axes = [axes[n] or 0 for n in names]
-    if original_run is not None:
+    others = tuple(f"'{o.name}'" for o in kept if o.name not in names)
+    return IdentityRun(at_one, tuple(names), tuple(axes[n] or 0 for n in names), others)
+
+
+def identity(
+    original: onnx.ModelProto | None,
+    patched: onnx.ModelProto,
+    records: tuple[Record, ...],
+    dataset: Dataset,
+    run: RunOptions,
+    progress: ProgressFn | None = None,
+    original_run: RunPlan | None = None,
+    prepared: IdentityRun | Check | None = None,
+    got: list[np.ndarray] | None = None,
+    want: list[np.ndarray] | None = None,
+) -> Check:
+    """``verify.identity_check`` of the patched model at the identity against ``original``.
+
+    ``original_run``, when given, is a session that gives the original's
+    outputs unchanged (the capture's copy of it, whose added nodes compute
+    the logits and touch none of the original's): it runs the original's
+    side instead of a session of its own. ``prepared`` is
+    :func:`identity_run` of the same arguments when already made; ``got``
+    the outputs at the identity on ``dataset``'s rows (``prepared.names``,
+    from :func:`onnxcal.graph.identity_rider` in the patched model's
+    session), when already run; ``want`` the original's outputs on those rows, when the capture has them.
+    """
+    plan = identity_run(original, patched, records) if prepared is None else prepared
+    if isinstance(plan, Check):
+        return plan
+    assert original is not None  # identity_run skips without one
+    names, out_axes = list(plan.names), list(plan.out_axes)
+    if want is None and original_run is not None:
         want = run_plan(replace(original_run, names=tuple(names), out_axes=tuple(out_axes)), dataset,
                         progress=progress, description="running the original")
-    else:
+    elif want is None:
         want = run_model(original, dataset, names, options=run, progress=progress,
                          description="running the original", out_axes=out_axes)
-    got = run_model(at_one, dataset, names, options=run, progress=progress, description="running at the identity",
-                    out_axes=out_axes)
+    if got is None:
+        got = run_model(plan.at_one, dataset, names, options=run, progress=progress,
+                        description="running at the identity", out_axes=out_axes)
     tols = _tolerances(patched, original, records, names)
     check = identity_check([(n, w, g, tols[n]) for n, w, g in zip(names, want, got, strict=True)], _params(records))
-    others = [f"'{o.name}'" for o in kept if o.name not in names]
-    if others:  # a single number, or no telling which axis holds the samples
-        check = replace(check, detail=f"{check.detail}; not compared: {', '.join(others)} (no known samples axis)")
+    if plan.others:  # a single number, or no telling which axis holds the samples
+        check = replace(check, detail=f"{check.detail}; not compared: {', '.join(plan.others)} (no known samples axis)")
     return check
 
 

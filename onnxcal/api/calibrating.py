@@ -24,10 +24,10 @@ from ..fit import FitOptions, FitSummary
 from ..graph import Record
 from ..report import FORMATS, ReportResult
 from ..report import build as build_report
-from ..verify import VerifyResult, reference_probabilities
+from ..verify import Check, VerifyResult, reference_probabilities
 from . import deciding
 from .capture_fit import check_fit_options, summarize_capture
-from .checks import compare_as_it_runs, record_checks
+from .checks import RiderRun, compare_as_it_runs, record_checks
 from .common import (
     DataSource,
     capture_read,
@@ -45,7 +45,7 @@ from .common import (
 from .models import models_in_memory
 from .patching import PatchOptions, PatchResult
 from .reporting import WRITING, capture_names, report_files, report_targets
-from .sampling import VERIFY_ROWS, subset, verification_sample
+from .sampling import VERIFY_ROWS, Sample, subset, verification_sample
 
 
 @dataclass(frozen=True)
@@ -166,17 +166,66 @@ def _patch_and_check(
         patched, record, chosen = deciding.for_calibrate(
             patched, record, cap.labels, seen.keep, source.dataset, to_decide.separate, to_decide.fit,
             to_decide.options, run, progress)
-    checks = compare_as_it_runs(patched, record, dataset, run, progress, logits, keep)
+    prepared = _reading.identity_run(source.model, patched, (record,))
+    riding = _riding(patched, prepared, seen.original, dataset.n, sample)
+    checks, got = compare_as_it_runs(patched, record, dataset, run, progress, logits, keep, riding)
     if chosen is not None:
         reference = reference_probabilities(cap.logits, record.scaling, record.activation)
         checks += deciding.exact_checks(patched, record, source.dataset, run, progress, reference, seen.keep)[0]
     # other heads: the original's sha256
     source_sha = source.sha if len(graph.read_records(patched)) == 1 else record.source_sha256
     checks += record_checks(record, patched, source.model, source_sha)
-    checks.append(_reading.identity(source.model, patched, (record,), identity_set, run, progress, seen.original))
+    want = _captured_outputs(source.model, seen, prepared, dataset.n if sample is None else None, sample)
+    checks.append(_reading.identity(source.model, patched, (record,), identity_set, run, progress, seen.original,
+                                    prepared, got, want))
     notes = () if sample is None else (sample.note,)
     result = VerifyResult(checks=tuple(checks), n=dataset.n, original=str(source.path), notes=notes)
     return patched, record, result, chosen
+
+
+def _riding(
+    patched: onnx.ModelProto, prepared: _reading.IdentityRun | Check, original: RunPlan | None, n: int,
+    sample: Sample | None,
+) -> RiderRun | None:
+    """The identity check's run in the patched model's session (:func:`graph.identity_rider`), when the
+    capture's session gives the original's side; None to run it in a session of its own.
+
+    The identity compares the sample's identity rows, a subset of the ``n`` rows checked (all of them
+    without a sample).
+    """
+    if original is None or isinstance(prepared, Check):
+        return None
+    rider = graph.identity_rider(patched, prepared.at_one, prepared.names)
+    if rider is None:
+        return None
+    rows = np.ones(n, bool) if sample is None else np.isin(sample.positions, sample.identity_positions)
+    return RiderRun(rider, prepared.out_axes, rows)
+
+
+def _captured_outputs(
+    model: onnx.ModelProto, seen: _Captured, prepared: _reading.IdentityRun | Check, n: int | None,
+    sample: Sample | None,
+) -> list[np.ndarray] | None:
+    """The original's side of the identity check taken from the capture, when the one output it compares is
+    the tensor the capture read, row for row (raw logits: its session ran the original on every row
+    already, and running it again on the identity's rows would give the same values); else None.
+
+    Rows are the output's own when the capture exposed the output itself (no logits recipe), it is 2-D
+    with samples first, and its dtype widens to the capture's float32 exactly (float32, float16).
+    """
+    plan = seen.original
+    if plan is None or isinstance(prepared, Check) or len(prepared.names) != 1 or prepared.out_axes != (0,):
+        return None
+    (name,) = prepared.names
+    if plan.names[:2] != (name, name) or seen.full.logits.ndim != 2:
+        return None
+    spec = next((graph.tensor_spec(o) for o in model.graph.output if o.name == name), None)
+    if spec is None or spec.dtype not in ("float32", "float16") or spec.shape is None or len(spec.shape) != 2:
+        return None
+    rows = seen.full.logits if sample is None else seen.full.logits[sample.identity_positions]
+    if sample is None and len(rows) != n:
+        return None
+    return [np.asarray(rows, np.float32)]
 
 
 def _report_files(
@@ -268,11 +317,12 @@ def calibrate(
     run = run_options(batch_size, threads, optimization, provider)
     patching = PatchOptions(output, output_name, drop_logits, activation, compute_dtype, fold, output_holds,
                             score_columns)
-    model = graph.load_model(model_path, max_bytes=limit)
-    _check_not_calibrated(model, model_path, output)
-    graph.default_opset(model)  # before the capture: can the patch import the operators it adds?
-    sha = graph.model_sha256(model_path)
-    dataset = load_data(model, spec, batch_size=run.batch_size)
+    with graph.SourceHash(model_path) as hashing:  # hashed on a second thread while the model and data load
+        model = graph.load_model(model_path, max_bytes=limit)
+        _check_not_calibrated(model, model_path, output)
+        graph.default_opset(model)  # before the capture: can the patch import the operators it adds?
+        dataset = load_data(model, spec, batch_size=run.batch_size)
+        sha = hashing.result()
     source = _Source(model, model_path, sha, dataset, run, progress)
     seen = _capture_finite(source, patching, drop_nonfinite)
     warn_nonfinite_inputs(seen.full, dataset.source)

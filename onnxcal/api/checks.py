@@ -5,6 +5,7 @@
 from __future__ import annotations
 
 import os
+from dataclasses import dataclass
 from typing import cast
 
 import numpy as np
@@ -24,6 +25,7 @@ from ..capture import (
 from ..data import Dataset
 from ..errors import OnnxcalError
 from ..graph import MatrixFoldError, Record, ScoreSite
+from ..graph.rider import Rider
 from ..verify import (
     FOLD_LIMIT,
     Check,
@@ -125,23 +127,44 @@ def folded_matrix_check(found: MatrixFoldError | None) -> Check:
     return Check("record", ok, found.difference, limit, f"{found.detail} ({found.dtype}; max relative difference)")
 
 
+@dataclass(frozen=True)
+class RiderRun:
+    """The identity's outputs to take from the patched model's session: the rider (its model is run instead
+    of the patched one), their samples' axes (``out_axes``, in ``rider.outputs``' order) and which rows of
+    the set checked the identity check compares (``rows``, a mask)."""
+
+    rider: Rider
+    out_axes: tuple[int, ...]
+    rows: np.ndarray
+
+
 def compare_as_it_runs(
     patched: onnx.ModelProto, record: Record, dataset: Dataset, run: RunOptions, progress: ProgressFn | None,
-    logits: np.ndarray, keep: np.ndarray,
-) -> list[Check]:
+    logits: np.ndarray, keep: np.ndarray, riding: RiderRun | None = None,
+) -> tuple[list[Check], list[np.ndarray] | None]:
     """Checks (1)-(2) of ``calibrate``: the patched model run batch by batch, each batch compared
-    with the captured logits of its rows (those in ``keep``) as it comes.
+    with the captured logits of its rows (those in ``keep``) as it comes; and with ``riding``, the
+    identity's outputs on the rows of ``riding.rows`` (one array per output, else None).
 
     Nothing of the patched outputs is kept beyond a batch, so the command
     holds the logits and little else (docs/benchmarks.md, calibrate's memory).
+    With ``riding`` the session runs ``riding.rider.model``: the patched
+    graph unchanged, with the nodes the identity computes differently beside
+    it (:func:`onnxcal.graph.identity_rider`).
     """
     site = graph.find_recorded(patched, record)
-    plan = plan_run(graph.expose(patched, [site.tensor]), dataset, [site.tensor], run)
+    extra = () if riding is None else tuple(riding.rider.outputs.values())
+    ran = patched if riding is None else riding.rider.model
+    # the calibrated output is an output of the written graph: then the graph itself runs, not a copy of it
+    model = ran if site.tensor in {o.name for o in ran.graph.output} else graph.expose(ran, [site.tensor])
+    axes = () if riding is None else (0, *riding.out_axes)
+    plan = plan_run(model, dataset, [site.tensor, *extra], run, out_axes=axes)
     post = graph.post.from_json(record.post)
     comparison = Comparison(record.scaling, record.activation, site_dtypes(site), post)
     done = 0
+    taken: list[list[np.ndarray]] = [[] for _ in extra]
     batches = run_batches(plan, dataset, progress=progress, description="running patched model")
-    for _, _, (values,) in batches:
+    for start, stop, (values, *others) in batches:
         rows = output_rows(values, site)
         span = slice(done, done + len(rows))
         done += len(rows)
@@ -152,12 +175,19 @@ def compare_as_it_runs(
             comparison.add(rows, logits[span])
         else:
             comparison.add(rows[mask], logits[span][mask])
+        if riding is not None:
+            wanted = riding.rows[start:stop]
+            for part, out, axis in zip(taken, others, riding.out_axes, strict=True):
+                part.append(np.compress(wanted, out, axis=axis))
     if done != len(logits):
         raise OnnxcalError(
             f"the patched model gives {done} rows of scores but the original gave {len(logits)} on '{dataset.source}'",
             "report this with the model's inspect output",
         )
-    return list(comparison.checks())
+    got = None if riding is None else [
+        np.concatenate(part, axis=axis) for part, axis in zip(taken, riding.out_axes, strict=True)
+    ]
+    return list(comparison.checks()), got
 
 
 def source_site(base: onnx.ModelProto, record: Record) -> ScoreSite:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextvars
 import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -151,7 +152,9 @@ class _Reader:
 
     def prefetch(self, start: int, stop: int) -> None:
         if self.pool is not None and start < stop:
-            self.ahead = (start, stop, self.pool.submit(self.dataset.batch, start, stop, self.dtypes))
+            # in the caller's context: a warning made while decoding is spelled as the caller's (errors.OnnxcalWarning)
+            work = contextvars.copy_context().run
+            self.ahead = (start, stop, self.pool.submit(work, self.dataset.batch, start, stop, self.dtypes))
 
     def close(self) -> None:
         if self.pool is not None:

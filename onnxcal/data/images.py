@@ -164,27 +164,33 @@ class ImageArray:
         try:
             with img, warnings.catch_warnings():
                 warnings.simplefilter("error", Image.DecompressionBombWarning)
-                img = _eight_bits(img, shown(name)).convert("L" if self.plan.channels == 1 else "RGB")
+                img = _eight_bits(img, shown(name))
+                mode = "L" if self.plan.channels == 1 else "RGB"
+                if img.mode != mode:  # convert() to the mode an image has already would only copy it
+                    img = img.convert(mode)
                 size = self._resized(name, *img.size)
                 if size != img.size:
                     img = img.resize(size, getattr(Image.Resampling, self.plan.options.interpolation.upper()))
                 if (box := self._crop_box(name, *img.size)) is not None:
                     img = img.crop(box)
-                arr = np.asarray(img, dtype=np.uint8)
+                # the bytes numpy.asarray(img) reads too (Pillow's __array_interface__), without its detour
+                raw = img.tobytes()
+                width, height = img.size
         except OnnxcalError:
             raise
         except Exception as exc:
             raise self._unreadable(name, exc) from exc
-        return arr[:, :, None] if arr.ndim == 2 else arr
+        return np.frombuffer(raw, np.uint8).reshape(height, width, len(mode))
 
     def __getitem__(self, key: int | slice | Sequence[int] | np.ndarray) -> np.ndarray:
         idx = range(len(self.files))[key] if isinstance(key, slice) else np.atleast_1d(key)
-        images = [self._load(int(i)) for i in idx]
-        for i, img in zip(idx, images, strict=True):
+        p = self.plan
+        batch = np.empty((len(idx), *self.shape_hw, p.channels), np.uint8)  # (n, H, W, C), each image in place
+        for j, i in enumerate(idx):
+            img = self._load(int(i))
             if img.shape[:2] != self.shape_hw:
                 self._check_size(img.shape[0], img.shape[1], name=self.files[int(i)])
-        batch = np.stack(images)[..., self._chan]  # uint8 (n, H, W, C)
-        p = self.plan
+            batch[j] = img[..., self._chan]
         channels: tuple[slice | None, ...] = (slice(None),)
         if p.layout == "NCHW":  # laid out while still bytes: the float work below then runs on contiguous rows
             batch, channels = np.ascontiguousarray(batch.transpose(0, 3, 1, 2)), (slice(None), None, None)

@@ -91,6 +91,7 @@ from .rewrite import (
     patch,
     unpatch,
 )
+from .rider import Rider, identity_rider
 from .surgery import (
     ScaleFn,
     default_opset,
@@ -119,9 +120,10 @@ from .tensors import _initializer as _initializer
 __all__ = [
     "ACTIVATIONS", "ACTIVATION_CHOICES", "COMPUTE_DTYPES", "DEFAULT_OUTPUT_NAME", "EXTERNAL_THRESHOLD", "HOLDS",
     "ML_DOMAIN", "PENDING_SHA256", "RECORD_FORMAT", "RECORD_KEY", "Branch", "FoldedValues", "ModelInfo", "Record",
-    "ScaleFn", "ScoreSite", "SourceHash", "TensorSpec", "at_identity", "check_model", "check_record",
+    "ScaleFn", "ScoreSite", "SourceHash", "TensorSpec", "Rider", "at_identity", "check_model", "check_record",
     "check_temperature", "default_opset",
     "describe", "describe_site", "divide_by_temperature", "expose", "expose_scores", "external_data_files",
+    "identity_rider",
     "external_data_path", "fill_source_sha256", "find_recorded", "find_scores", "fit_kind", "folded_values",
     "folds_matrix",
     "for_onnxruntime", "identity_unavailable", "matrix_fold_error", "MatrixFoldError",

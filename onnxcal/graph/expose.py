@@ -38,14 +38,17 @@ def _subgraph(graph: onnx.GraphProto, branch: Branch) -> onnx.GraphProto:
     return cast(onnx.GraphProto, next(a.g for a in node.attribute if a.name == branch.attribute))
 
 
-def expose(model: onnx.ModelProto, tensors: list[str]) -> onnx.ModelProto:
+def expose(model: onnx.ModelProto, tensors: list[str], *, copy: bool = True) -> onnx.ModelProto:
     """A copy of ``model`` with ``tensors`` added as graph outputs (for capture).
 
     Types come from shape inference; the copy is for running, never saved.
+    With ``copy=False`` the model itself is returned when every tensor is
+    an output already, and changed in place otherwise (a copy the caller
+    made): a model of hundreds of MB is not copied for nothing.
     """
-    out = _copy(model)
-    existing = {vi.name for vi in out.graph.output}
+    existing = {vi.name for vi in model.graph.output}
     missing = [t for t in tensors if t not in existing]
+    out = _copy(model) if copy else model
     if not missing:
         return out
     try:
@@ -75,7 +78,7 @@ def expose_scores(
     s = _Surgery(out.graph, out.ir_version)
     add_default_opset(s, out)
     tensor = _laid_out_logits(s, site)
-    return expose(out, [tensor, *also]), tensor
+    return expose(out, [tensor, *also], copy=False), tensor  # ``out`` is this function's copy
 
 
 def _laid_out_logits(s: _Surgery, site: ScoreSite) -> str:

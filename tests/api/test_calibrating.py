@@ -116,6 +116,42 @@ def test_calibrate_opens_three_sessions_and_runs_the_checked_rows_once(digits_se
     assert checks["identity"].value == pytest.approx(full["identity"].value, abs=1e-6)
 
 
+@pytest.mark.parametrize("head", ["raw logits", "softmax of an output"])
+def test_the_identity_rides_in_the_patched_models_session(digits_setup, monkeypatch, tmp_path, head):
+    """When the nodes the identity computes differently read only the written graph's outputs (raw logits,
+    to which the patch appends the probabilities; a Softmax over logits that are an output too), the
+    identity check runs in the patched model's session (graph.identity_rider): two sessions in all, and
+    the verdicts of verify on every row, with its own sessions."""
+    from onnxcal import reading
+    from onnxcal.capture import plan
+
+    d, clf, *_ = digits_setup
+    layers = list(zip(clf.coefs_, clf.intercepts_, strict=True))
+    if head == "raw logits":
+        model, output = mlp_model(layers, input_name="pixels", output_name="logits"), None
+    else:
+        model, output = mlp_model(layers, final="Softmax", input_name="pixels", output_name="probabilities"), None
+        model.graph.output.append(onnx.helper.make_tensor_value_info("logits", onnx.TensorProto.FLOAT, ["N", 10]))
+        output = "probabilities"
+    onnx.save(model, tmp_path / "m.onnx")
+    opened, ran = [], []
+    make_session = plan.make_session
+    monkeypatch.setattr(plan, "make_session", lambda *a, **kw: opened.append(1) or make_session(*a, **kw))
+    run_plan = reading.run_plan
+    monkeypatch.setattr(reading, "run_plan", lambda p, data, **kw: ran.append(data.n) or run_plan(p, data, **kw))
+    result = api.calibrate(tmp_path / "m.onnx", d / "val.npz", tmp_path / "c.onnx", output=output)
+    assert len(opened) == 2
+    # raw logits: the one output compared is the tensor captured, so the original's side is the capture's
+    # rows (its session ran them already); else those rows run again in the capture's session
+    assert ran == ([] if head == "raw logits" else [64])
+    checks = {c.name: c for c in result.verification.checks}
+    assert checks["identity"].passed and not checks["identity"].skipped and checks["reference"].passed
+    assert all(f"'{name}'" in checks["identity"].detail for name in ("logits", output or "logits"))
+    full = {c.name: c for c in api.verify(tmp_path / "c.onnx", d / "val.npz", original=tmp_path / "m.onnx").checks}
+    assert full["identity"].passed and full["reference"].passed
+    assert checks["identity"].value <= full["identity"].value + 1e-7
+
+
 def test_digits_vector_scaling_end_to_end(digits_setup):
     d, clf, x_test, y_test = digits_setup
     out = d / "vector.onnx"
@@ -157,3 +193,30 @@ def test_csv_and_npz_of_the_same_rows_fit_the_same_temperature(tmp_path):
         DEMO_MODEL, DataSpec(path=DEMO_VAL, selection=Selection(limit=400)), tmp_path / "b.onnx", options=QUICK
     ).summary
     assert csv_fit.temperature == npz_fit.temperature
+
+
+NOT_ON_CALIBRATES_PATH = ("matplotlib", "PIL", "onnx.reference", "scipy.optimize", "scipy.stats", "sklearn",
+                          "jinja2")
+
+
+def test_calibrate_imports_nothing_it_does_not_use(tmp_path):
+    """``onnxcal calibrate`` with its defaults on arrays (no report, no images) in a fresh interpreter: the
+    plotting, image, reference-evaluator and optimiser modules are never imported (each costs start-up
+    time, which the time-to-a-calibrated-model benchmark counts; docs/benchmarks.md)."""
+    import subprocess
+    import sys
+
+    code = (
+        "import sys\n"
+        "from onnxcal.cli.app import main\n"
+        f"sys.argv = ['onnxcal', 'calibrate', {str(DEMO_MODEL)!r}, '--data', {str(DEMO_VAL)!r}, '--out', "
+        f"{str(tmp_path / 'c.onnx')!r}, '--quiet']\n"
+        "try:\n    main()\nexcept SystemExit:\n    pass\n"
+        f"tops = {[n.split('.')[0] for n in NOT_ON_CALIBRATES_PATH]!r}\n"
+        "print(sorted(m for m in sys.modules if m.split('.')[0] in tops))\n"
+    )
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=tmp_path)
+    assert (tmp_path / "c.onnx").exists(), done.stderr
+    loaded = eval(done.stdout.strip().splitlines()[-1])  # a list of module names printed by the child
+    for name in NOT_ON_CALIBRATES_PATH:
+        assert not any(m == name or m.startswith(name + ".") for m in loaded), (name, loaded)

@@ -8,9 +8,11 @@ the source checks that every option a message can name has a keyword to be named
 
 from __future__ import annotations
 
+import ast
 import dataclasses
 import inspect
 import re
+import warnings
 from dataclasses import replace
 from pathlib import Path
 
@@ -23,7 +25,7 @@ from onnxcal.capture import Capture
 from onnxcal.data import DataSpec, Selection
 from onnxcal.data.preprocess import IMAGE_OPTIONS
 from onnxcal.decisions.plan import DecisionOptions
-from onnxcal.errors import CLI_ONLY, OnnxcalError, keyword
+from onnxcal.errors import CLI_ONLY, OnnxcalError, OnnxcalWarning, keyword
 from onnxcal.fit import FitOptions
 
 Q = FitOptions(bootstrap=0)
@@ -159,3 +161,90 @@ def test_every_option_a_message_names_has_a_keyword() -> None:
             if m.group(1) not in CLI_ONLY and name not in known:
                 missing[m.group(1)] = str(path.relative_to(package))
     assert not missing, missing
+
+
+# Warnings: the same spelling as errors (errors.OnnxcalWarning picks it when it is made)
+
+
+@pytest.fixture(scope="module")
+def nan_set(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The demo's first 300 rows with NaN in one row's inputs: its logits are NaN too."""
+    data = dict(np.load(DEMO_VAL))
+    data = {k: v[:300].copy() for k, v in data.items()}
+    data["band_energies"][7, 3] = np.nan
+    path = tmp_path_factory.mktemp("kw-warn") / "nan.npz"
+    np.savez(path, **data)
+    return path
+
+
+def test_api_warnings_name_keywords_not_options(nan_set: Path) -> None:
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        onnxcal.capture(DEMO_MODEL, nan_set)
+    texts = [str(w.message) for w in caught if issubclass(w.category, OnnxcalWarning)]
+    logits = [t for t in texts if "logits of" in t]
+    assert len(logits) == 1, texts
+    assert "unless drop_nonfinite=True" in logits[0] and "onnxcal.fit()" in logits[0], logits[0]
+    assert not any(OPTION.search(t) for t in texts), texts
+
+
+def test_cli_warnings_name_the_options(nan_set: Path, run_cli, tmp_path: Path) -> None:
+    r = run_cli("capture", DEMO_MODEL, "--data", nan_set, "--out", tmp_path / "c.npz")
+    assert r.code == 0, r.err
+    assert "'onnxcal fit' refuses them unless --drop-nonfinite" in r.err, r.err
+    assert "=True" not in r.err
+
+
+def test_a_warning_made_in_the_decoding_worker_is_spelled_as_its_caller(monkeypatch) -> None:
+    """The decoder runs in a worker thread (capture.blocks): it runs in a copy of the caller's context, so a
+    warning it makes is spelled as the caller's, keywords from Python and options under the command line."""
+    import contextlib
+
+    from onnxcal.capture import blocks
+    from onnxcal.errors import cli_spelling
+
+    class Warns:
+        """A set decoded as it is read (capture.plan.decoded_as_read), whose decoding warns."""
+
+        def batch(self, start, stop, dtypes):
+            warnings.warn(OnnxcalWarning("check --resize"), stacklevel=1)
+            return {}
+
+    monkeypatch.setattr(blocks, "decoded_as_read", lambda dataset: True)
+    for spelled, expected in ((False, "check resize"), (True, "check --resize")):
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            with cli_spelling() if spelled else contextlib.nullcontext():
+                reader = blocks._Reader(Warns(), {})
+                reader.prefetch(0, 2)
+                assert reader.ahead is not None
+                reader.read(0, 2)
+                reader.close()
+        assert [str(w.message) for w in caught] == [expected]
+
+
+def _warns_outside_onnxcal_warning(path: Path) -> list[int]:
+    """Lines of ``path`` calling warnings.warn with a message not made as an OnnxcalWarning."""
+    bad = []
+    for node in ast.walk(ast.parse(path.read_text())):
+        if not (isinstance(node, ast.Call) and getattr(node.func, "attr", getattr(node.func, "id", "")) == "warn"):
+            continue
+        first = node.args[0] if node.args else None
+        category = node.args[1] if len(node.args) > 1 else next(
+            (k.value for k in node.keywords if k.arg == "category"), None)
+        made = isinstance(first, ast.Call) and getattr(first.func, "id", "") == "OnnxcalWarning"
+        named = isinstance(category, ast.Name) and category.id == "OnnxcalWarning"
+        passed_on = isinstance(first, ast.Name) and category is None  # a warning object made elsewhere, re-given
+        if not (made or named or passed_on):
+            bad.append(node.lineno)
+    return bad
+
+
+def test_every_warning_is_an_onnxcal_warning() -> None:
+    """A scan of the source: every warnings.warn outside the command line gives an OnnxcalWarning (made
+    there, or named as the category), whose message follows the spelling of errors; the scan of option
+    names above covers their messages."""
+    package = Path(onnxcal.__file__).parent
+    bad = {str(p.relative_to(package)): lines for p in package.rglob("*.py")
+           if p.parent.name != "cli" and (lines := _warns_outside_onnxcal_warning(p))}
+    assert not bad, bad

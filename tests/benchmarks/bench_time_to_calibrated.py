@@ -18,6 +18,10 @@ to 10 logits; no batch norm), random weights, built with onnx.helper: about
 
     .venv/bin/python tests/benchmarks/bench_time_to_calibrated.py all --images 2000
 
+  revisions  ``onnxcal calibrate`` of this tree (or PYTHONPATH) vs of another
+             revision's onnxcal (--baseline DIR), alternately (target: 1.0,
+             i.e. not slower)
+
 --size 112 quarters the cost per image (the ratios are what is compared);
 --keep DIR keeps the model and images for the next run. Each round prints
 as it ends; the last lines give each median ratio against its target (wall
@@ -44,6 +48,7 @@ from onnx import TensorProto, helper, numpy_helper
 
 ROOT = Path(__file__).resolve().parents[2]
 CLASSES = 10
+FROM_SOURCE = False  # --from-source: the environment as it is, no bytecode compiled beforehand
 
 EXPERT = '''
 import sys, numpy as np, onnx, onnxruntime as ort
@@ -153,19 +158,46 @@ def images(work: Path, model: Path, n: int, size: int, seed: int = 0) -> tuple[n
     return decoded[order], labels[order].astype(np.int64)
 
 
-def timed(cmd: list[str], cwd: Path) -> tuple[float, float]:
+def child_env() -> dict[str, str]:
+    """The environment of the commands timed: this one without ``PYTHONDONTWRITEBYTECODE``.
+
+    An installed package runs from bytecode (pip compiles it at install), as
+    do numpy, onnx, onnxruntime and scipy here; with the variable set, an
+    editable onnxcal compiles its 120-odd modules from source on every run
+    (about 0.2 s of CPU), which the script's imports never pay.
+    """
+    if FROM_SOURCE:
+        return dict(os.environ)
+    return {k: v for k, v in os.environ.items() if k != "PYTHONDONTWRITEBYTECODE"}
+
+
+def compile_onnxcal(cwd: Path, pythonpath: str | None = None) -> str:
+    """Compile the bytecode of the onnxcal that the commands import (``PYTHONPATH``, or ``pythonpath``, honoured);
+    its folder."""
+    code = ("import compileall, os, onnxcal; d = os.path.dirname(onnxcal.__file__); "
+            "compileall.compile_dir(d, quiet=1); print(d)")
+    env = child_env() if pythonpath is None else {**child_env(), "PYTHONPATH": pythonpath}
+    done = subprocess.run([sys.executable, "-c", code], check=True, cwd=cwd, env=env, capture_output=True, text=True)
+    return done.stdout.strip()
+
+
+def timed(cmd: list[str], cwd: Path, pythonpath: str | None = None) -> tuple[float, float]:
     """Seconds ``cmd`` takes, wall and CPU (user + system of the process), run in ``cwd`` (not the checkout:
     ``python -m`` would import the package from there, ahead of a PYTHONPATH that names the tree to measure)."""
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t0 = time.perf_counter()
-    subprocess.run(cmd, check=True, cwd=cwd, stdout=subprocess.DEVNULL)
+    env = child_env() if pythonpath is None else {**child_env(), "PYTHONPATH": pythonpath}
+    subprocess.run(cmd, check=True, cwd=cwd, stdout=subprocess.DEVNULL, env=env)
     wall = time.perf_counter() - t0
     after = resource.getrusage(resource.RUSAGE_CHILDREN)
     return wall, (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
 
 
-def alternate(label: str, a: list[str], b: list[str], rounds: int, cwd: Path, target: float) -> str:
+def alternate(label: str, a: list[str], b: list[str], rounds: int, cwd: Path, target: float,
+              b_path: str | None = None) -> str:
     """Time ``a`` and ``b`` alternately; print every round as it ends; return the summary lines.
+
+    ``b_path``: the ``PYTHONPATH`` of ``b`` (another revision's onnxcal), when not this process's.
 
     The target is on wall time. CPU time (user + system) is printed beside it: on a busy machine it moves
     less than wall time, but onnxruntime's spinning threads count in it (the image-folder capture runs
@@ -176,7 +208,7 @@ def alternate(label: str, a: list[str], b: list[str], rounds: int, cwd: Path, ta
     ca: list[float] = []
     cb: list[float] = []
     for i in range(rounds):
-        (wa, ua), (wb, ub) = timed(a, cwd), timed(b, cwd)
+        (wa, ua), (wb, ub) = timed(a, cwd), timed(b, cwd, b_path)
         for series, value in ((ta, wa), (tb, wb), (ca, ua), (cb, ub)):
             series.append(value)
         print(f"  {label}, round {i + 1}: wall {wa:.1f} s vs {wb:.1f} s, ratio {wa / wb:.3f}; "
@@ -193,7 +225,7 @@ def alternate(label: str, a: list[str], b: list[str], rounds: int, cwd: Path, ta
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    parser.add_argument("which", choices=["calibrate", "images", "all"])
+    parser.add_argument("which", choices=["calibrate", "images", "all", "revisions"])
     parser.add_argument("--images", type=int, default=2000)
     parser.add_argument("--size", type=int, default=224)
     parser.add_argument("--rounds", type=int, default=3)
@@ -201,7 +233,15 @@ def main() -> None:
     parser.add_argument("--keep", type=Path, default=None,
                         help="make the model and images in this folder and keep them; a later run with the same "
                              "--keep, --images and --size reuses them (making 2 000 images of 224 x 224 takes minutes)")
+    parser.add_argument("--baseline", type=Path, default=None,
+                        help="revisions: a folder holding another revision's onnxcal package (git archive REV "
+                             "onnxcal | tar -x -C DIR); calibrate of this tree against calibrate of that one")
+    parser.add_argument("--from-source", action="store_true",
+                        help="keep PYTHONDONTWRITEBYTECODE and compile no bytecode first (as the runs before "
+                             "December 2026 measured, in an environment that sets it)")
     args = parser.parse_args()
+    global FROM_SOURCE
+    FROM_SOURCE = args.from_source
     with tempfile.TemporaryDirectory(dir=args.workdir) as tmp:
         work = Path(tmp) if args.keep is None else args.keep / f"{args.images}x{args.size}"
         model, npz, script = work / "resnet18_like.onnx", work / "decoded.npz", work / "expert.py"
@@ -216,6 +256,9 @@ def main() -> None:
         py = sys.executable
         print(f"{args.images} images of {args.size}x{args.size}, ResNet-18 convolutions, {args.rounds} rounds; "
               f"load average at the start {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores", flush=True)
+        if not FROM_SOURCE:
+            print(f"onnxcal measured: {compile_onnxcal(work)} (bytecode compiled, as pip does at install)",
+                  flush=True)
         summary = []
         if args.which in ("calibrate", "all"):
             summary.append(alternate(
@@ -224,6 +267,17 @@ def main() -> None:
                  "--quiet"],
                 [py, str(script), str(model), str(npz), str(work / "expert.onnx")],
                 args.rounds, work, 1.3,
+            ))
+        if args.which == "revisions":
+            if args.baseline is None:
+                parser.error("revisions needs --baseline DIR")
+            if not FROM_SOURCE:
+                print(f"baseline: {compile_onnxcal(work, str(args.baseline))} (bytecode compiled)", flush=True)
+            cal = ["calibrate", str(model), "--data", str(npz), "--force", "--quiet"]
+            summary.append(alternate(
+                f"calibrate of this tree vs of {args.baseline}",
+                [*onnxcal, *cal, "--out", str(work / "cal.onnx")], [*onnxcal, *cal, "--out", str(work / "base.onnx")],
+                args.rounds, work, 1.0, b_path=str(args.baseline.resolve()),
             ))
         if args.which in ("images", "all"):
             summary.append(alternate(

@@ -169,3 +169,61 @@ def test_a_labels_csv_cannot_reach_outside_the_image_folder(tmp_path, name):
     message = f"line 3 of '.*labels.csv' names '{name}', which is outside the image folder"
     with pytest.raises(OnnxcalError, match=message):
         load(IMAGE_SPEC, path=root, labels=table)
+
+
+def _pillow_array(path, mode, resize=None, crop=None):
+    """The pixels the plain way: Pillow's convert, resize and crop, then numpy.asarray (uint8 H x W x C)."""
+    img = Image.open(path).convert(mode)
+    if resize is not None:
+        w, h = img.size
+        s = resize / min(w, h)
+        img = img.resize((max(1, round(w * s)), max(1, round(h * s))), Image.Resampling.BILINEAR)
+    if crop is not None:
+        w, h = img.size
+        left, top = (w - crop) // 2, (h - crop) // 2
+        img = img.crop((left, top, left + crop, top + crop))
+    arr = np.asarray(img, dtype=np.uint8)
+    return arr[:, :, None] if arr.ndim == 2 else arr
+
+
+@pytest.mark.parametrize("case", ["rgb", "bgr-mean-std", "resize-crop", "grey", "palette", "nhwc-uint8"])
+def test_decoded_pixels_are_pillows_to_the_bit(tmp_path, case):
+    """Each image decoded into its place in the batch (no per-image convert to the mode it has, bytes read
+    once) gives what Pillow's convert + numpy.asarray give, then x * float32(1/255), - mean, / std in
+    float32: for JPEG (RGB), greyscale and palette PNGs, with resize, crop, BGR and NHWC uint8."""
+    rng = np.random.default_rng(5)
+    folder = tmp_path / "imgs" / "a"
+    folder.mkdir(parents=True)
+    side = 40 if case == "resize-crop" else 24
+    for i in range(7):
+        low = rng.integers(0, 256, (6, 6, 3)).astype(np.uint8)
+        img = Image.fromarray(low).resize((side + i % 2 * 6, side), Image.BILINEAR)
+        if case == "palette":
+            img.convert("P", palette=Image.Palette.ADAPTIVE).save(folder / f"{i}.png")
+        elif case == "grey":
+            img.convert("L").save(folder / f"{i}.png")
+        else:
+            img.save(folder / f"{i}.jpg", quality=85)
+    channels = 1 if case == "grey" else 3
+    dtype = "uint8" if case == "nhwc-uint8" else "float32"
+    shape = ("batch", 24, 24, channels) if case == "nhwc-uint8" else ("batch", channels, 24, 24)
+    image = {"crop": [24, 24]} if case in ("rgb", "palette", "grey", "nhwc-uint8", "bgr-mean-std") else {
+        "resize": 30, "crop": [24, 24]}
+    if case == "bgr-mean-std":
+        image.update(channel_order="BGR", mean=[0.4, 0.5, 0.6], std=[0.2, 0.25, 0.3])
+    spec = [TensorSpec("image", dtype, shape, True)]
+    got = load(spec, path=tmp_path / "imgs", image=image).inputs["image"][0:7]
+    files = sorted(folder.iterdir())
+    mode = "L" if channels == 1 else "RGB"
+    raw = np.stack([_pillow_array(f, mode, image.get("resize"), 24) for f in files])
+    if case == "nhwc-uint8":
+        np.testing.assert_array_equal(got, raw)
+        assert got.dtype == np.uint8
+        return
+    if case == "bgr-mean-std":
+        raw = raw[..., ::-1]
+    want = raw.transpose(0, 3, 1, 2) * np.float32(1.0 / 255.0)
+    if case == "bgr-mean-std":
+        want = (want - np.float32([0.4, 0.5, 0.6])[:, None, None]) / np.float32([0.2, 0.25, 0.3])[:, None, None]
+    assert got.dtype == np.float32 and want.dtype == np.float32
+    assert got.tobytes() == want.tobytes()
