@@ -71,7 +71,7 @@ def smoothed_targets(
     Platt's targets for 3 positive and 1 negative rows (K = 2): the
     positive class gets 4/5 on a positive row and 1/3 on a negative one.
 
-    >>> smoothed_targets(np.array([1, 1, 1, 0]), 2)[[0, 3], 1].tolist() == [4 / 5, 1 / 3]
+    >>> np.allclose(smoothed_targets(np.array([1, 1, 1, 0]), 2)[[0, 3], 1], [4 / 5, 1 / 3], rtol=0, atol=1e-15)
     True
     """
     r, w = _fitted(len(labels), rows, weights)
