@@ -45,6 +45,8 @@ from typing import Any, Protocol, cast
 
 import numpy as np
 
+from . import kernels
+
 CHUNK_ELEMENTS = 1 << 19
 """Logit values per chunk (2 MiB of float32): the per-row work of a chunk (a few hundred numpy
 calls by the consumers) costs little beside its arithmetic at this size."""
@@ -142,6 +144,23 @@ class Tile:
         return p
 
 
+@dataclass(frozen=True)
+class Columns:
+    """What a consumer asks the compiled kernel to do with a chunk's exponentials, in place of its ``tile``.
+
+    The column sums of p = e (1 + eps x) / total weighted by ``weights``, per
+    part (``part``, 0..parts-1), and the flat indices (row k + class) of the
+    entries with e > total ``first`` (1 - 1e-5): the numpy tiles' work in
+    :meth:`onnxcal.metrics.score_sums.ScoreSums.tile`, with a threshold per row.
+    """
+
+    weights: np.ndarray
+    part: np.ndarray
+    parts: int
+    first: float
+    n_bins: int
+
+
 @dataclass
 class ExpTerms:
     """Per-row results of one chunk at one beta (float64 arrays of the chunk's length).
@@ -160,6 +179,9 @@ class ExpTerms:
     ``log_total`` is L(beta) = log sum_k exp(beta z_k), ``cumulants[:, j-1]``
     the j-th cumulant of z under softmax(beta z) (the j-th derivative of L),
     ``sq_log_total`` and ``sq_cumulants`` the same at 2 beta (from e^2).
+    From the compiled kernel (see :class:`Columns`): ``columns`` the column
+    sums per part and ``candidates`` the flat indices of the entries that may
+    be above the first edge; None from the numpy code (the tiles did that work).
     """
 
     beta: float
@@ -175,6 +197,8 @@ class ExpTerms:
     cumulants: np.ndarray
     sq_log_total: np.ndarray | None = None
     sq_cumulants: np.ndarray | None = None
+    columns: np.ndarray | None = None
+    candidates: np.ndarray | None = None
 
     @property
     def nll(self) -> np.ndarray:
@@ -200,14 +224,22 @@ class ExpTerms:
 
 
 class _Buffers:
-    """Scratch arrays of one thread: five tile-sized arrays and a chunk's row sums."""
+    """Scratch arrays of one thread: five tile-sized arrays and a chunk's row sums (numpy), or the
+    compiled kernel's per-row outputs (``compiled``: float32 logits, see :mod:`onnxcal.kernels`)."""
 
-    def __init__(self, rows: int, k: int, dtype: np.dtype, powers: int = 8) -> None:
+    def __init__(self, rows: int, k: int, dtype: np.dtype, powers: int = 8, compiled: bool = False) -> None:
+        self.compiled = compiled
         self.tile = max(1, min(rows, TILE_ELEMENTS // max(1, k)))
-        self.x, self.e, self.ex, self.p, self.q = (np.empty((self.tile, k), dtype) for _ in range(5))
         self.r = np.arange(rows)
-        self.sums = np.empty((powers + 1, rows), dtype)
-        self.sq_sums = np.empty((powers + 1, rows), dtype)
+        sums = np.float64 if compiled else dtype
+        self.sums = np.empty((powers + 1, rows), sums)
+        self.sq_sums = np.empty((powers + 1, rows), sums)
+        if compiled:
+            self.top = np.empty(rows, np.int64)
+            self.shift = np.empty(rows, np.float32)
+            self.all_rows = np.ones(rows, bool)
+            return
+        self.x, self.e, self.ex, self.p, self.q = (np.empty((self.tile, k), dtype) for _ in range(5))
         self.sq_picked = np.empty((powers + 1, rows), dtype)  # the same, gathered, for the rows asked for
 
 
@@ -318,6 +350,7 @@ def exp_terms(
     buf: _Buffers,
     sq_rows: np.ndarray | None = None,
     tile_hook: Callable[[Tile], None] | None = None,
+    columns: Columns | None = None,
 ) -> ExpTerms:
     """The exponentials of one chunk and their row sums (see :class:`ExpTerms`).
 
@@ -327,32 +360,45 @@ def exp_terms(
     boolean mask ``sq_rows`` (all when None; NaN elsewhere).
     The work on whole rows of logits after the row maxima runs tile by tile
     (:data:`TILE_ELEMENTS` values, whose arrays stay in the core's own
-    cache), and ``tile_hook`` sees each tile's exponentials.
+    cache), and ``tile_hook`` sees each tile's exponentials; with
+    ``buf.compiled`` it is one compiled call instead (:func:`_compiled`),
+    which does the work of ``columns`` in place of the tile hook.
     """
     c = len(y)
     r = buf.r[:c]
-    dtype = buf.e.dtype
+    dtype = np.dtype(np.float32) if buf.compiled else buf.e.dtype
     z = np.asarray(z, dtype=dtype)
-    top = z.argmax(axis=1)
-    zmax = z[r, top].astype(np.float64)
-    zy = z[r, y].astype(np.float64)
     b = float(dtype.type(beta))
     eps = beta / b - 1.0
-    unshifted = dtype == np.float32 and c > 0 and b * max(abs(zmax.max()), abs(zmax.min())) <= UNSHIFTED_LIMIT
-    s32 = None if unshifted else (b * zmax).astype(dtype)
-    s: float | np.ndarray = 0.0 if s32 is None else s32.astype(np.float64)
     count = max(moments, 1 if eps else 0)  # the total at the exact beta needs the first power
     extra = 1 if eps else 0
     sq_count = max(sq_moments or 0, extra)
     pick = None if sq_rows is None or not sq_moments else np.flatnonzero(sq_rows)
-    for a in range(0, c, buf.tile):
-        _tile(z, a, min(a + buf.tile, c), b, s32, eps, count, sq_moments, sq_count, pick, buf, tile_hook)
+    found: tuple[np.ndarray, np.ndarray] | None = None
+    if buf.compiled:
+        picked = None if pick is None else sq_rows
+        z, top, s32, found = _compiled(z, b, eps, count, sq_moments, sq_count, extra, picked, buf, columns)
+        sq_source = buf.sq_sums
+    else:
+        top = z.argmax(axis=1)
+        zmax_all = z[r, top]
+        largest = max(abs(float(zmax_all.max())), abs(float(zmax_all.min()))) if c else 0.0
+        unshifted = dtype == np.float32 and c > 0 and b * largest <= UNSHIFTED_LIMIT
+        s32 = None if unshifted else (b * zmax_all.astype(np.float64)).astype(dtype)
+        for a in range(0, c, buf.tile):
+            _tile(z, a, min(a + buf.tile, c), b, s32, eps, count, sq_moments, sq_count, pick, buf, tile_hook)
+        sq_source = buf.sq_sums if pick is None else buf.sq_picked
+    zmax = z[r, top].astype(np.float64)
+    zy = z[r, y].astype(np.float64)
+    s: float | np.ndarray = 0.0 if s32 is None else s32.astype(np.float64)
     total, kappa = _cumulants(buf.sums[: count + 1, :c].astype(np.float64), eps, moments, s, b)
     scale = beta / b
     log_total = np.log(total)
-    if not unshifted:
+    if s32 is not None:
         log_total += scale * s
     terms = ExpTerms(beta, b, eps, z, s32, total, log_total, top, zmax, zy, kappa.T)
+    if found is not None:
+        terms.columns, terms.candidates = found
     if sq_moments is not None:
         sums = buf.sq_sums[: extra + 1, :c].astype(np.float64)
         sq_total = sums[0] + 2.0 * eps * sums[1] if extra else sums[0]
@@ -360,11 +406,43 @@ def exp_terms(
         terms.sq_cumulants = np.full((c, sq_moments), np.nan)
         if sq_moments:
             rows = slice(None) if pick is None else pick
-            source = buf.sq_sums if pick is None else buf.sq_picked
-            sums = source[: sq_count + 1, :c][:, rows].astype(np.float64)
+            sums = sq_source[: sq_count + 1, :c][:, rows].astype(np.float64)
             _, sq_kappa = _cumulants(sums, 2.0 * eps, sq_moments, s if s32 is None else cast(np.ndarray, s)[rows], b)
             terms.sq_cumulants[rows] = sq_kappa.T
     return terms
+
+
+def _compiled(
+    z: np.ndarray, b: float, eps: float, count: int, sq_moments: int | None, sq_count: int, extra: int,
+    picked: np.ndarray | None, buf: _Buffers, columns: Columns | None,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, tuple[np.ndarray, np.ndarray] | None]:
+    """The compiled kernel on a float32 chunk: (z, top, shift, (columns, candidates) or None), sums into ``buf``.
+
+    Every row is shifted by b times its maximum. At 2 beta the rows of ``picked``
+    (all when None) get the powers up to ``sq_count``, the others up to ``extra``.
+    """
+    from .kernels.sweep_kernels import chunk_pass
+
+    c, k = z.shape
+    z = np.ascontiguousarray(z)
+    sq_all = -1 if sq_moments is None else (sq_count if picked is None else extra)
+    rows = buf.all_rows[:c] if picked is None else np.ascontiguousarray(picked, dtype=bool)
+    if columns is None:
+        w, part, parts, first, cap = buf.r[:0].astype(np.float64), buf.r[:0], 0, 0.0, 0
+    else:
+        w = np.ascontiguousarray(columns.weights, dtype=np.float64)
+        part, parts, first = np.ascontiguousarray(columns.part, dtype=np.intp), columns.parts, columns.first
+        cap = c * (columns.n_bins + 1)  # e > total (1 - 1e-5) / M holds for at most M entries of a row
+    col = np.zeros((max(parts, 1), k))
+    cand = np.empty(cap, np.int64)
+    top, shift = buf.top[:c], buf.shift[:c]
+    found = chunk_pass(
+        z, np.float32(b), eps, count, sq_all, max(sq_count, sq_all), rows, w, part, parts, first, top, shift,
+        buf.sums[:, :c], buf.sq_sums[:, :c], col, cand,
+    )
+    if found < 0:
+        raise RuntimeError("the compiled pass found more candidate entries than a softmax row can have")
+    return z, top, shift, (None if columns is None else (col[:parts], cand[:found]))
 
 
 def _tile(
@@ -467,15 +545,26 @@ def run_pass(
     threads = default_threads() if threads is None else max(1, min(int(threads), LANES))
     if n * k < PARALLEL_ELEMENTS:
         threads = 1
+    compiled = dtype == np.float32 and kernels.worth_it(n * k)
+    if compiled:  # numba's import and the kernel's compilation or cache load: here, before any chunk, in this thread
+        from .kernels import sweep_kernels  # noqa: F401
 
     def work(worker: int) -> None:
-        buf = _Buffers(min(step, max(n, 1)), k, dtype)
+        buf = _Buffers(min(step, max(n, 1)), k, dtype, compiled=compiled)
         for index in range(n_chunks):
             lane = index % LANES
             if lane % threads != worker:
                 continue
             chunk = _chunk(logits, labels, selection, step, index)
             mask = None if sq_part is None or chunk.part is None else chunk.part == sq_part
+            if compiled:  # the kernel does the tiles' work, for the consumer that asks for Columns
+                asks = [fn for fn in (getattr(c, "columns", None) for c in lanes[lane]) if fn is not None]
+                assert len(asks) <= 1, "one consumer per pass may ask for column sums"
+                columns = asks[0](chunk) if asks else None
+                terms = exp_terms(chunk.z, chunk.y, beta, moments, sq_moments, buf, mask, None, columns)
+                for consumer in lanes[lane]:
+                    consumer.add(chunk, terms)
+                continue
             tiles: list[Callable[[Chunk, Tile], None]] = [
                 fn for fn in (getattr(c, "tile", None) for c in lanes[lane]) if fn is not None
             ]

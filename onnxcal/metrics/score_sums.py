@@ -14,7 +14,7 @@ from typing import Any, cast
 
 import numpy as np
 
-from ..sweep import ALL_ROWS, Chunk, Consumer, ExpTerms, Selection, Tile, run_pass
+from ..sweep import ALL_ROWS, Chunk, Columns, Consumer, ExpTerms, Selection, Tile, run_pass
 from .binning import DEFAULT_BINS, bin_ids
 
 
@@ -108,6 +108,13 @@ class ScoreSums:
         np.add.at(self.y_sum, where, w)
         self._upper_bins(chunk, terms, w, part)
 
+    def columns(self, chunk: Chunk) -> Columns:
+        """What the compiled pass computes for :meth:`tile`'s work (the classwise column sums, the candidates)."""
+        c = len(chunk.y)
+        w = np.ones(c) if chunk.w is None else chunk.w
+        part = np.zeros(c, np.intp) if chunk.part is None else chunk.part.astype(np.intp)
+        return Columns(w, part, self.parts, self.first, self.n_bins)
+
     def tile(self, chunk: Chunk, terms: Tile) -> None:
         """From a tile's exponentials: the column sums of p per part, and which entries may be above 1/M."""
         e, total = terms.e, terms.total
@@ -132,7 +139,12 @@ class ScoreSums:
     def _upper_bins(self, chunk: Chunk, terms: ExpTerms, w: np.ndarray, part: np.ndarray | None) -> None:
         """The classwise sums of the entries above the first edge 1/M (the tiles marked the candidates)."""
         k, M = self.k, self.n_bins
-        rows, cols = np.divmod(_flat_true(self._mask), k)
+        if terms.columns is not None and terms.candidates is not None:  # the compiled pass did the tiles' work
+            self.column += terms.columns.ravel()
+            flat = terms.candidates
+        else:
+            flat = _flat_true(self._mask)
+        rows, cols = np.divmod(flat, k)
         p = terms.probabilities(rows, cols)
         keep = p > self.first
         rows, cols, p = rows[keep], cols[keep], p[keep]

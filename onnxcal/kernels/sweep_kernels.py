@@ -1,0 +1,196 @@
+"""The float32 chunk of a :mod:`onnxcal.sweep` pass as one compiled loop per row.
+
+:func:`chunk_pass` does for one chunk of float32 logits what the numpy code of
+``sweep._tile`` and ``ScoreSums.tile`` does (that code stays, as the reference
+the tests compare this against; ``ONNXCAL_COMPILED=0`` selects it): per row
+the maximum and its first index, the shift s = b max z, x = b z - s,
+e = exp(x), the power sums sum e x^j, the sums at 2 beta sum e^2 x^j, and,
+for the metric passes, the classwise ECE's column sums of p = e (1 + eps x) / total
+per part and the entries that may lie above 1/M. Each value of the chunk is read
+once from memory; the row's x and e live in four row-sized scratch arrays (in
+the core's first-level cache) between the loops over them.
+
+Precision and fast-math. x is computed by :func:`_shifted`, compiled without
+fast-math flags, so that it is rounded as numpy rounds it (a product, then a
+difference, never fused), and every row is shifted (x <= 0). The exponential
+is computed in :func:`_exps` (see docs/maths.md: Cody & Waite's argument reduction
+and a degree-7 polynomial whose coefficients are those of the Cephes library's
+expf, from memory; below 2 ulp of the float64 exponential on [-87.3, 0], and 0
+below -87.3, where float32 results are subnormal). The loops are compiled with
+the fast-math flags ``nnan ninf nsz reassoc contract``: they let LLVM vectorise
+the sums (reordering them: a different float32 rounding of each sum, not a
+larger one) and fuse the polynomial's products and sums. They assume no NaN or
+infinity, which holds because logits are checked finite when they are captured
+or loaded, and they change no comparison: max and equality are exact in any
+order, and the comparisons (the underflow cut, the candidates' threshold) are
+between finite numbers. Sums are accumulated in float32 within a row (as the
+numpy code's BLAS sums are) and returned in float64.
+
+Compiled with ``cache=True`` for the one signature used (eagerly, when this
+module is first imported: in the thread that starts the pass, before any
+chunk; see :func:`onnxcal.sweep.run_pass`). ``nogil=True``: the lanes of a pass
+run these calls on their own threads.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+FAST = {"nnan", "ninf", "nsz", "reassoc", "contract"}
+
+LOW = np.float32(-87.3)
+"""Below this x, exp(x) < 2^-125.9 and is taken as 0 (float32's normal range ends at 2^-126)."""
+_LOG2E = np.float32(1.4426950408889634)
+_C1 = np.float32(0.693359375)  # ln 2 = C1 + C2; C1 has 9 significant bits, so n C1 is exact (Cody & Waite 1980)
+_C2 = np.float32(-2.12194440e-4)
+# exp(r) = 1 + r + r^2 P(r) on |r| <= ln(2)/2, P's coefficients as in Cephes' expf (from memory)
+_P0 = np.float32(1.9875691500e-4)
+_P1 = np.float32(1.3981999507e-3)
+_P2 = np.float32(8.3334519073e-3)
+_P3 = np.float32(4.1665795894e-2)
+_P4 = np.float32(1.6666665459e-1)
+_P5 = np.float32(5.0000001201e-1)
+_ONE = np.float32(1.0)
+_HALF = np.float32(0.5)
+_BIAS = np.int32(127)
+_MANT = np.int32(23)
+_ZERO = np.float32(0.0)
+
+CHUNK_SIG = (
+    "int64(float32[:, ::1], float32, float64, int64, int64, int64, boolean[::1], float64[::1], intp[::1], int64,"
+    " float64, int64[::1], float32[::1], float64[:, :], float64[:, :], float64[:, ::1], int64[::1])"
+)
+
+
+@njit("float32(float32, float32, float32)", nogil=True, cache=True)
+def _shifted(b: np.float32, z: np.float32, s: np.float32) -> np.float32:
+    """x = b z - s rounded as numpy rounds it (no fast-math: the product and the difference are not fused)."""
+    return b * z - s  # type: ignore[no-any-return]
+
+
+@njit("float32(float32, float32)", nogil=True, cache=True)
+def _reduced(x: np.float32, n: np.float32) -> np.float32:
+    """r = x - n C1 - n C2 in this order (no fast-math: reassociated, it would become x - n ln 2 rounded)."""
+    return x - n * _C1 - n * _C2  # type: ignore[no-any-return]
+
+
+@njit(nogil=True, cache=True, fastmath=FAST)
+def exp_values(x, out, xb, eb, ib):  # type: ignore[no-untyped-def]
+    """e = exp(x) for a 1-d float32 array in rows of the scratch arrays' length (for the tests)."""
+    k = len(eb)
+    fb = ib.view(np.float32)
+    for a in range(0, len(x), k):
+        t = min(k, len(x) - a)
+        for j in range(t):
+            xb[j] = x[a + j]
+        _exps(xb, eb, ib, fb, t)
+        for j in range(t):
+            out[a + j] = eb[j]
+
+
+@njit(nogil=True, cache=True, fastmath=FAST, inline="always")
+def _exps(xb, eb, ib, fb, k):  # type: ignore[no-untyped-def]
+    """eb[:k] = exp(xb[:k]) for x >= LOW, 0 below.
+
+    Cody & Waite: n = round(x / ln 2), r = x - n C1 - n C2 (|r| <= ln(2)/2), exp(x) = 2^n exp(r);
+    exp(r) = 1 + r + r^2 P(r). Two vectorised loops: the polynomial and the bits of the float32 2^n
+    (n + 127 in the exponent field), then their product.
+    """
+    for j in range(k):
+        x = max(xb[j], LOW)
+        n = np.floor(x * _LOG2E + _HALF)
+        r = _reduced(x, n)
+        poly = ((((_P0 * r + _P1) * r + _P2) * r + _P3) * r + _P4) * r + _P5
+        eb[j] = poly * (r * r) + r + _ONE
+        ib[j] = (np.int32(n) + _BIAS) << _MANT
+    for j in range(k):
+        e = eb[j] * fb[j]
+        eb[j] = e if xb[j] >= LOW else _ZERO
+
+
+@njit(nogil=True, cache=True, fastmath=FAST, inline="always")
+def _power_sums(w, xb, k, count, out, i):  # type: ignore[no-untyped-def]
+    """out[j, i] = sum w x^j for j = 0..count; w (a scratch row) is overwritten with w x^count."""
+    for p in range(count + 1):
+        acc = _ZERO
+        if p < count:
+            for j in range(k):
+                v = w[j]
+                acc += v
+                w[j] = v * xb[j]
+        else:
+            for j in range(k):
+                acc += w[j]
+        out[p, i] = acc
+
+
+@njit(CHUNK_SIG, nogil=True, cache=True, fastmath=FAST, boundscheck=False)
+def chunk_pass(  # type: ignore[no-untyped-def]
+    z, b, eps, count, sq_all, sq_pick, picked, w, part, parts, first, top, shift, sums, sq_sums, columns, cand
+):
+    """One chunk: see the module docstring. Returns the number of candidates written to ``cand`` (-1: no room).
+
+    z (c, k): the chunk's logits; b: beta in float32; eps = beta / b - 1.
+    count: sums[j, i] = sum_k e x^j for j = 0..count.
+    sq_all: -1 for nothing at 2 beta, else sq_sums[j, i] = sum e^2 x^j for j = 0..sq_all on every row,
+    and for j = 0..sq_pick on the rows where ``picked``.
+    parts: 0 for no column sums; else columns[part[i], :] += w[i] / total_i * e (1 + eps x), and the
+    flat indices i k + j of the entries with e > total first (1 - 1e-5) go to ``cand``.
+    top[i] the first index of the row maximum, shift[i] = b max z (float32).
+    """
+    c, k = z.shape
+    xb = np.empty(k, np.float32)
+    eb = np.empty(k, np.float32)
+    wb = np.empty(k, np.float32)
+    ib = np.empty(k, np.int32)
+    fb = ib.view(np.float32)
+    acc = np.zeros((max(parts, 1), k), np.float32)
+    eps32 = np.float32(eps)
+    n_cand = 0
+    for i in range(c):
+        row = z[i]
+        m = row[0]
+        for j in range(k):
+            m = max(m, row[j])
+        t = 0
+        while row[t] != m:
+            t += 1
+        top[i] = t
+        s = b * m
+        shift[i] = s
+        for j in range(k):
+            xb[j] = _shifted(b, row[j], s)
+        _exps(xb, eb, ib, fb, k)
+        for j in range(k):
+            wb[j] = eb[j]
+        _power_sums(wb, xb, k, count, sums, i)
+        if sq_all >= 0:
+            for j in range(k):
+                wb[j] = eb[j] * eb[j]
+            _power_sums(wb, xb, k, sq_pick if picked[i] else sq_all, sq_sums, i)
+        if parts == 0:
+            continue
+        total = sums[0, i] + eps * sums[1, i] if eps != 0.0 else sums[0, i]
+        coef = np.float32(w[i] / total)
+        into = acc[part[i]]
+        if eps != 0.0:
+            for j in range(k):
+                into[j] += coef * (eb[j] + eps32 * eb[j] * xb[j])
+        else:
+            for j in range(k):
+                into[j] += coef * eb[j]
+        threshold = np.float32(total * first * (1.0 - 1e-5))
+        if threshold < np.float32(1.0):  # e <= 1 everywhere (x <= 0): nothing above it otherwise
+            for j in range(k):
+                if eb[j] > threshold:
+                    if n_cand == len(cand):
+                        return -1
+                    cand[n_cand] = i * k + j
+                    n_cand += 1
+        if (i + 1) % 128 == 0 or i == c - 1:  # float32 column sums of 128 rows, then float64 (as the numpy tiles)
+            for p in range(parts):
+                for j in range(k):
+                    columns[p, j] += acc[p, j]
+                    acc[p, j] = _ZERO
+    return n_cand
