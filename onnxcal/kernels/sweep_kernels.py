@@ -91,11 +91,11 @@ def exp_values(x, out, xb, eb, ib):  # type: ignore[no-untyped-def]
 
 @njit(nogil=True, cache=True, fastmath=FAST, inline="always")
 def _exps(xb, eb, ib, fb, k):  # type: ignore[no-untyped-def]
-    """eb[:k] = exp(xb[:k]) for x >= LOW, 0 below.
+    """eb[:k] = exp(xb[:k]) for x >= LOW, 0 below; returns sum e and sum e^2.
 
     Cody & Waite: n = round(x / ln 2), r = x - n C1 - n C2 (|r| <= ln(2)/2), exp(x) = 2^n exp(r);
     exp(r) = 1 + r + r^2 P(r). Two vectorised loops: the polynomial and the bits of the float32 2^n
-    (n + 127 in the exponent field), then their product.
+    (n + 127 in the exponent field), then their product (and the two sums).
     """
     for j in range(k):
         x = max(xb[j], LOW)
@@ -104,25 +104,91 @@ def _exps(xb, eb, ib, fb, k):  # type: ignore[no-untyped-def]
         poly = ((((_P0 * r + _P1) * r + _P2) * r + _P3) * r + _P4) * r + _P5
         eb[j] = poly * (r * r) + r + _ONE
         ib[j] = (np.int32(n) + _BIAS) << _MANT
+    s0 = _ZERO
+    sq = _ZERO
     for j in range(k):
         e = eb[j] * fb[j]
-        eb[j] = e if xb[j] >= LOW else _ZERO
+        e = e if xb[j] >= LOW else _ZERO
+        eb[j] = e
+        s0 += e
+        sq += e * e
+    return s0, sq
 
 
 @njit(nogil=True, cache=True, fastmath=FAST, inline="always")
-def _power_sums(w, xb, k, count, out, i):  # type: ignore[no-untyped-def]
-    """out[j, i] = sum w x^j for j = 0..count; w (a scratch row) is overwritten with w x^count."""
-    for p in range(count + 1):
+def _higher_sums(w, square, xb, k, count, out, i):  # type: ignore[no-untyped-def]
+    """out[j, i] = sum_k w x^j for j = 1..count, w = e or e^2 (``square``); the scratch row ``w`` ends as w x^count."""
+    if count < 1:
+        return
+    acc = _ZERO
+    if square:
+        for j in range(k):
+            v = w[j] * w[j] * xb[j]
+            acc += v
+            w[j] = v
+    else:
+        for j in range(k):
+            v = w[j] * xb[j]
+            acc += v
+            w[j] = v
+    out[1, i] = acc
+    for p in range(2, count + 1):
         acc = _ZERO
-        if p < count:
-            for j in range(k):
-                v = w[j]
-                acc += v
-                w[j] = v * xb[j]
-        else:
-            for j in range(k):
-                acc += w[j]
+        for j in range(k):
+            v = w[j] * xb[j]
+            acc += v
+            w[j] = v
         out[p, i] = acc
+
+
+@njit(nogil=True, cache=True, fastmath=FAST, inline="always")
+def _row_max(row, k, ib, fb):  # type: ignore[no-untyped-def]
+    """The row's maximum and the first index where it occurs (numpy's max and argmax), in two vectorised loops.
+
+    The maximum is taken over integer keys, which order float32 numbers as their values do (the bits of
+    a negative number with the magnitude bits flipped); the index is the least j with row[j] equal to it
+    (a float comparison, so -0 and +0 are equal, as for numpy). Integer reductions vectorise; a float
+    maximum with a select does not here.
+    """
+    bits = row.view(np.int32)
+    mk = np.int32(-2147483648)
+    for j in range(k):
+        v = bits[j]
+        mk = max(mk, v ^ ((v >> np.int32(31)) & np.int32(0x7FFFFFFF)))
+    ib[0] = mk ^ ((mk >> np.int32(31)) & np.int32(0x7FFFFFFF))
+    m = fb[0]
+    t = np.int64(k)
+    for j in range(k):
+        t = min(t, np.int64(j) if row[j] == m else np.int64(k))
+    return m, t
+
+
+@njit(nogil=True, cache=True, fastmath=FAST, inline="always")
+def _candidates(eb, k, threshold, i, cand, n_cand):  # type: ignore[no-untyped-def]
+    """Append i k + j for the e_j > threshold to ``cand`` from ``n_cand`` on; returns the new count (-1: no room).
+
+    Blocks of 64 are counted in one vectorised loop; only blocks with entries above are scanned one by one.
+    """
+    full = k - k % 64
+    for a in range(0, full, 64):
+        hits = 0
+        for j in range(a, a + 64):  # a constant trip count: vectorised
+            hits += 1 if eb[j] > threshold else 0
+        if hits == 0:
+            continue
+        if n_cand + hits > len(cand):
+            return -1
+        for j in range(a, a + 64):
+            if eb[j] > threshold:
+                cand[n_cand] = i * k + j
+                n_cand += 1
+    for j in range(full, k):
+        if eb[j] > threshold:
+            if n_cand == len(cand):
+                return -1
+            cand[n_cand] = i * k + j
+            n_cand += 1
+    return n_cand
 
 
 @njit(CHUNK_SIG, nogil=True, cache=True, fastmath=FAST, boundscheck=False)
@@ -150,25 +216,24 @@ def chunk_pass(  # type: ignore[no-untyped-def]
     n_cand = 0
     for i in range(c):
         row = z[i]
-        m = row[0]
-        for j in range(k):
-            m = max(m, row[j])
-        t = 0
-        while row[t] != m:
-            t += 1
-        top[i] = t
+        m, top[i] = _row_max(row, k, ib, fb)
         s = b * m
         shift[i] = s
         for j in range(k):
             xb[j] = _shifted(b, row[j], s)
-        _exps(xb, eb, ib, fb, k)
-        for j in range(k):
-            wb[j] = eb[j]
-        _power_sums(wb, xb, k, count, sums, i)
-        if sq_all >= 0:
+        s0, sq = _exps(xb, eb, ib, fb, k)
+        sums[0, i] = s0
+        if count:
             for j in range(k):
-                wb[j] = eb[j] * eb[j]
-            _power_sums(wb, xb, k, sq_pick if picked[i] else sq_all, sq_sums, i)
+                wb[j] = eb[j]
+            _higher_sums(wb, False, xb, k, count, sums, i)
+        if sq_all >= 0:
+            sq_sums[0, i] = sq
+            n_sq = sq_pick if picked[i] else sq_all
+            if n_sq:
+                for j in range(k):
+                    wb[j] = eb[j]
+                _higher_sums(wb, True, xb, k, n_sq, sq_sums, i)
         if parts == 0:
             continue
         total = sums[0, i] + eps * sums[1, i] if eps != 0.0 else sums[0, i]
@@ -182,12 +247,9 @@ def chunk_pass(  # type: ignore[no-untyped-def]
                 into[j] += coef * eb[j]
         threshold = np.float32(total * first * (1.0 - 1e-5))
         if threshold < np.float32(1.0):  # e <= 1 everywhere (x <= 0): nothing above it otherwise
-            for j in range(k):
-                if eb[j] > threshold:
-                    if n_cand == len(cand):
-                        return -1
-                    cand[n_cand] = i * k + j
-                    n_cand += 1
+            n_cand = _candidates(eb, k, threshold, i, cand, n_cand)
+            if n_cand < 0:
+                return -1
         if (i + 1) % 128 == 0 or i == c - 1:  # float32 column sums of 128 rows, then float64 (as the numpy tiles)
             for p in range(parts):
                 for j in range(k):
