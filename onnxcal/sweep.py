@@ -50,6 +50,9 @@ from . import kernels
 CHUNK_ELEMENTS = 1 << 19
 """Logit values per chunk (2 MiB of float32): the per-row work of a chunk (a few hundred numpy
 calls by the consumers) costs little beside its arithmetic at this size."""
+COMPILED_CHUNK_ELEMENTS = 1 << 21
+"""Logit values per chunk for the compiled kernel (8 MiB of float32): it works row by row, so the chunk
+is only the unit of the consumers' per-row numpy work, paid once per chunk."""
 TILE_ELEMENTS = 1 << 17
 """Logit values per tile, the unit of the work on whole rows (exponentials, row and column sums):
 its scratch arrays (512 KiB each in float32) stay in or near the core's own cache (of 64, 128 and
@@ -97,8 +100,8 @@ def compute_dtype(logits: np.ndarray) -> np.dtype:
     return np.dtype(np.float32) if dt.kind == "f" and dt.itemsize <= 4 else np.dtype(np.float64)
 
 
-def rows_per_chunk(n_classes: int) -> int:
-    return max(1, CHUNK_ELEMENTS // max(1, n_classes))
+def rows_per_chunk(n_classes: int, compiled: bool = False) -> int:
+    return max(1, (COMPILED_CHUNK_ELEMENTS if compiled else CHUNK_ELEMENTS) // max(1, n_classes))
 
 
 @dataclass(frozen=True)
@@ -375,6 +378,7 @@ def exp_terms(
     sq_count = max(sq_moments or 0, extra)
     pick = None if sq_rows is None or not sq_moments else np.flatnonzero(sq_rows)
     found: tuple[np.ndarray, np.ndarray] | None = None
+    s32: np.ndarray | None
     if buf.compiled:
         picked = None if pick is None else sq_rows
         z, top, s32, found = _compiled(z, b, eps, count, sq_moments, sq_count, extra, picked, buf, columns)
@@ -538,14 +542,14 @@ def run_pass(
     """
     n = len(logits) if selection.rows is None else len(selection.rows)
     k = logits.shape[1]
-    step = rows_per_chunk(k)
+    dtype = compute_dtype(logits)
+    compiled = dtype == np.float32 and kernels.worth_it(n * k)
+    step = rows_per_chunk(k, compiled)
     n_chunks = -(-n // step)
     lanes = [consumers() for _ in range(LANES)]
-    dtype = compute_dtype(logits)
     threads = default_threads() if threads is None else max(1, min(int(threads), LANES))
     if n * k < PARALLEL_ELEMENTS:
         threads = 1
-    compiled = dtype == np.float32 and kernels.worth_it(n * k)
     if compiled:  # numba's import and the kernel's compilation or cache load: here, before any chunk, in this thread
         from .kernels import sweep_kernels  # noqa: F401
 

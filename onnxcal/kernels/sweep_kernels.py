@@ -66,13 +66,13 @@ CHUNK_SIG = (
 @njit("float32(float32, float32, float32)", nogil=True, cache=True)
 def _shifted(b: np.float32, z: np.float32, s: np.float32) -> np.float32:
     """x = b z - s rounded as numpy rounds it (no fast-math: the product and the difference are not fused)."""
-    return b * z - s  # type: ignore[no-any-return]
+    return b * z - s
 
 
 @njit("float32(float32, float32)", nogil=True, cache=True)
 def _reduced(x: np.float32, n: np.float32) -> np.float32:
     """r = x - n C1 - n C2 in this order (no fast-math: reassociated, it would become x - n ln 2 rounded)."""
-    return x - n * _C1 - n * _C2  # type: ignore[no-any-return]
+    return x - n * _C1 - n * _C2
 
 
 @njit(nogil=True, cache=True, fastmath=FAST)
