@@ -364,8 +364,9 @@ def exp_terms(
     The work on whole rows of logits after the row maxima runs tile by tile
     (:data:`TILE_ELEMENTS` values, whose arrays stay in the core's own
     cache), and ``tile_hook`` sees each tile's exponentials; with
-    ``buf.compiled`` it is one compiled call instead (:func:`_compiled`),
-    which does the work of ``columns`` in place of the tile hook.
+    ``buf.compiled`` it is one compiled call instead
+    (:func:`onnxcal.kernels.sweep_kernels.chunk_pass`), which does the work
+    of ``columns`` in place of the tile hook.
     """
     c = len(y)
     r = buf.r[:c]
@@ -379,9 +380,15 @@ def exp_terms(
     pick = None if sq_rows is None or not sq_moments else np.flatnonzero(sq_rows)
     found: tuple[np.ndarray, np.ndarray] | None = None
     s32: np.ndarray | None
-    if buf.compiled:
-        picked = None if pick is None else sq_rows
-        z, top, s32, found = _compiled(z, b, eps, count, sq_moments, sq_count, extra, picked, buf, columns)
+    if buf.compiled:  # one compiled call; it shifts every row by b times its maximum
+        from .kernels.sweep_kernels import run_chunk
+
+        z = np.ascontiguousarray(z)
+        sq_all = -1 if sq_moments is None else (sq_count if pick is None else extra)  # the powers at 2 beta
+        marked = buf.all_rows[:c] if pick is None else np.ascontiguousarray(sq_rows, dtype=bool)
+        top, s32 = buf.top[:c], buf.shift[:c]
+        sums_at = (buf.sums[:, :c], buf.sq_sums[:, :c])
+        found = run_chunk(z, b, eps, count, sq_all, sq_count, marked, columns, top, s32, *sums_at)
         sq_source = buf.sq_sums
     else:
         top = z.argmax(axis=1)
@@ -414,39 +421,6 @@ def exp_terms(
             _, sq_kappa = _cumulants(sums, 2.0 * eps, sq_moments, s if s32 is None else cast(np.ndarray, s)[rows], b)
             terms.sq_cumulants[rows] = sq_kappa.T
     return terms
-
-
-def _compiled(
-    z: np.ndarray, b: float, eps: float, count: int, sq_moments: int | None, sq_count: int, extra: int,
-    picked: np.ndarray | None, buf: _Buffers, columns: Columns | None,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, tuple[np.ndarray, np.ndarray] | None]:
-    """The compiled kernel on a float32 chunk: (z, top, shift, (columns, candidates) or None), sums into ``buf``.
-
-    Every row is shifted by b times its maximum. At 2 beta the rows of ``picked``
-    (all when None) get the powers up to ``sq_count``, the others up to ``extra``.
-    """
-    from .kernels.sweep_kernels import chunk_pass
-
-    c, k = z.shape
-    z = np.ascontiguousarray(z)
-    sq_all = -1 if sq_moments is None else (sq_count if picked is None else extra)
-    rows = buf.all_rows[:c] if picked is None else np.ascontiguousarray(picked, dtype=bool)
-    if columns is None:
-        w, part, parts, first, cap = buf.r[:0].astype(np.float64), buf.r[:0], 0, 0.0, 0
-    else:
-        w = np.ascontiguousarray(columns.weights, dtype=np.float64)
-        part, parts, first = np.ascontiguousarray(columns.part, dtype=np.intp), columns.parts, columns.first
-        cap = c * (columns.n_bins + 1)  # e > total (1 - 1e-5) / M holds for at most M entries of a row
-    col = np.zeros((max(parts, 1), k))
-    cand = np.empty(cap, np.int64)
-    top, shift = buf.top[:c], buf.shift[:c]
-    found = chunk_pass(
-        z, np.float32(b), eps, count, sq_all, max(sq_count, sq_all), rows, w, part, parts, first, top, shift,
-        buf.sums[:, :c], buf.sq_sums[:, :c], col, cand,
-    )
-    if found < 0:
-        raise RuntimeError("the compiled pass found more candidate entries than a softmax row can have")
-    return z, top, shift, (None if columns is None else (col[:parts], cand[:found]))
 
 
 def _tile(

@@ -34,6 +34,8 @@ run these calls on their own threads.
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 from numba import njit
 
@@ -256,3 +258,29 @@ def chunk_pass(  # type: ignore[no-untyped-def]
                     columns[p, j] += acc[p, j]
                     acc[p, j] = _ZERO
     return n_cand
+
+
+def run_chunk(
+    z: np.ndarray, b: float, eps: float, count: int, sq_all: int, sq_pick: int, picked: np.ndarray,
+    columns: Any, top: np.ndarray, shift: np.ndarray, sums: np.ndarray, sq_sums: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray] | None:
+    """:func:`chunk_pass` with ``columns`` (an :class:`onnxcal.sweep.Columns`, or None) unpacked.
+
+    Returns the column sums per part and the candidates' flat indices, or None without ``columns``.
+    """
+    c, k = z.shape
+    if columns is None:
+        w, part, parts, first, room = np.zeros(0), np.zeros(0, np.intp), 0, 0.0, 0
+    else:
+        w = np.ascontiguousarray(columns.weights, dtype=np.float64)
+        part, parts, first = np.ascontiguousarray(columns.part, dtype=np.intp), columns.parts, columns.first
+        room = c * (columns.n_bins + 1)  # e > total (1 - 1e-5) / M holds for at most M entries of a row
+    col = np.zeros((max(parts, 1), k))
+    cand = np.empty(room, np.int64)
+    found = chunk_pass(
+        z, np.float32(b), eps, count, sq_all, max(sq_pick, sq_all), picked, w, part, parts, first, top, shift,
+        sums, sq_sums, col, cand,
+    )
+    if found < 0:
+        raise RuntimeError("the compiled pass found more candidate entries than a softmax row can have")
+    return None if columns is None else (col[:parts], cand[:found])
