@@ -118,29 +118,38 @@ def _exps(xb, eb, ib, fb, k):  # type: ignore[no-untyped-def]
 
 
 @njit(nogil=True, cache=True, fastmath=FAST, inline="always")
-def _higher_sums(w, square, xb, k, count, out, i):  # type: ignore[no-untyped-def]
-    """out[j, i] = sum_k w x^j for j = 1..count, w = e or e^2 (``square``); the scratch row ``w`` ends as w x^count."""
+def _higher_sums(eb, square, xb, k, count, out, i):  # type: ignore[no-untyped-def]
+    """out[j, i] = sum_k w x^j for j = 1..count (count <= 5), w = e, or e^2 when ``square``.
+
+    One loop with five accumulators when count > 2 (the unused ones cost a few products per value,
+    less than another sweep of the row), one with two otherwise.
+    """
     if count < 1:
         return
-    acc = _ZERO
-    if square:
+    a1 = a2 = a3 = a4 = a5 = _ZERO
+    if count <= 2:
         for j in range(k):
-            v = w[j] * w[j] * xb[j]
-            acc += v
-            w[j] = v
+            w = eb[j] * eb[j] if square else eb[j]
+            x = xb[j]
+            v = w * x
+            a1 += v
+            a2 += v * x
     else:
         for j in range(k):
-            v = w[j] * xb[j]
-            acc += v
-            w[j] = v
-    out[1, i] = acc
-    for p in range(2, count + 1):
-        acc = _ZERO
-        for j in range(k):
-            v = w[j] * xb[j]
-            acc += v
-            w[j] = v
-        out[p, i] = acc
+            w = eb[j] * eb[j] if square else eb[j]
+            x = xb[j]
+            v1 = w * x
+            v2 = v1 * x
+            v3 = v2 * x
+            v4 = v3 * x
+            a1 += v1
+            a2 += v2
+            a3 += v3
+            a4 += v4
+            a5 += v4 * x
+    acc = (a1, a2, a3, a4, a5)
+    for p in range(count):
+        out[p + 1, i] = acc[p]
 
 
 @njit(nogil=True, cache=True, fastmath=FAST, inline="always")
@@ -210,7 +219,6 @@ def chunk_pass(  # type: ignore[no-untyped-def]
     c, k = z.shape
     xb = np.empty(k, np.float32)
     eb = np.empty(k, np.float32)
-    wb = np.empty(k, np.float32)
     ib = np.empty(k, np.int32)
     fb = ib.view(np.float32)
     acc = np.zeros((max(parts, 1), k), np.float32)
@@ -225,17 +233,10 @@ def chunk_pass(  # type: ignore[no-untyped-def]
             xb[j] = _shifted(b, row[j], s)
         s0, sq = _exps(xb, eb, ib, fb, k)
         sums[0, i] = s0
-        if count:
-            for j in range(k):
-                wb[j] = eb[j]
-            _higher_sums(wb, False, xb, k, count, sums, i)
+        _higher_sums(eb, False, xb, k, count, sums, i)
         if sq_all >= 0:
             sq_sums[0, i] = sq
-            n_sq = sq_pick if picked[i] else sq_all
-            if n_sq:
-                for j in range(k):
-                    wb[j] = eb[j]
-                _higher_sums(wb, True, xb, k, n_sq, sq_sums, i)
+            _higher_sums(eb, True, xb, k, sq_pick if picked[i] else sq_all, sq_sums, i)
         if parts == 0:
             continue
         total = sums[0, i] + eps * sums[1, i] if eps != 0.0 else sums[0, i]
