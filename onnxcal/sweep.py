@@ -45,7 +45,7 @@ from typing import Any, Protocol, cast
 
 import numpy as np
 
-from . import kernels
+from . import _signals, kernels
 
 CHUNK_ELEMENTS = 1 << 19
 """Logit values per chunk (2 MiB of float32): the per-row work of a chunk (a few hundred numpy
@@ -524,8 +524,9 @@ def run_pass(
     threads = default_threads() if threads is None else max(1, min(int(threads), LANES))
     if n * k < PARALLEL_ELEMENTS:
         threads = 1
-    if compiled:  # numba's import and the kernel's compilation or cache load: here, before any chunk, in this thread
-        from .kernels import sweep_kernels  # noqa: F401
+    if compiled:  # numba's import and the kernel's compilation or cache load: before any chunk, in this thread
+        with _signals.deferred():  # a signal inside an extension module's import can crash it
+            from .kernels import sweep_kernels  # noqa: F401
 
     def work(worker: int) -> None:
         buf = _Buffers(min(step, max(n, 1)), k, dtype, compiled=compiled)

@@ -222,3 +222,19 @@ def test_the_switch_and_the_size_rule(rng, monkeypatch):
     monkeypatch.setenv(kernels.ENV, "1")
     evaluate(z, y, 1.0)
     assert calls
+
+
+def test_read_only_logits_and_a_memory_map(rng, either, tmp_path):
+    # captures are opened with mmap_mode="r": the kernel takes read-only arrays
+    z = (rng.normal(scale=3.0, size=(500, 30))).astype(np.float32)
+    y = rng.integers(0, 30, 500)
+    np.save(tmp_path / "z.npy", z)
+    mapped = np.load(tmp_path / "z.npy", mmap_mode="r")
+    want, got = _both(either, lambda: evaluate(mapped, y, 1.3))
+    for key in METRIC_FIELDS:
+        assert getattr(got, key) == pytest.approx(getattr(want, key), rel=1e-5, abs=1e-7), key
+    rows = np.sort(rng.choice(500, 300, replace=False))  # a selection of rows: gathered chunks
+    sel = Selection(rows=rows)
+    want, got = _both(either, lambda: temperature_pass(mapped, y, 0.9, 15, selection=sel)[0])
+    assert got.nll == pytest.approx(want.nll, rel=1e-6)
+    np.testing.assert_array_equal(got.bins[:, 0], want.bins[:, 0])

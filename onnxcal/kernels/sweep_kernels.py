@@ -37,7 +37,7 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
-from numba import njit
+from numba import njit, types
 
 FAST = {"nnan", "ninf", "nsz", "reassoc", "contract"}
 
@@ -59,9 +59,18 @@ _BIAS = np.int32(127)
 _MANT = np.int32(23)
 _ZERO = np.float32(0.0)
 
-CHUNK_SIG = (
-    "int64(float32[:, ::1], float32, float64, int64, int64, int64, boolean[::1], float64[::1], intp[::1], int64,"
-    " float64, int64[::1], float32[::1], float64[:, :], float64[:, :], float64[:, ::1], int64[::1])"
+
+def _array(dtype, ndim, layout="C", readonly=False):  # type: ignore[no-untyped-def]
+    return types.Array(dtype, ndim, layout, readonly=readonly)
+
+
+# The inputs are read-only arrays (a writable array converts to one; logits may be a read-only memory map).
+CHUNK_SIG = types.int64(
+    _array(types.float32, 2, readonly=True), types.float32, types.float64, types.int64, types.int64, types.int64,
+    _array(types.boolean, 1, readonly=True), _array(types.float64, 1, readonly=True),
+    _array(types.intp, 1, readonly=True), types.int64, types.float64, _array(types.int64, 1),
+    _array(types.float32, 1), _array(types.float64, 2, "A"), _array(types.float64, 2, "A"), _array(types.float64, 2),
+    _array(types.int64, 1),
 )
 
 
