@@ -60,7 +60,7 @@ _MANT = np.int32(23)
 _ZERO = np.float32(0.0)
 
 
-def _array(dtype, ndim, layout="C", readonly=False):  # type: ignore[no-untyped-def]
+def _array(dtype: Any, ndim: int, layout: str = "C", readonly: bool = False) -> Any:
     return types.Array(dtype, ndim, layout, readonly=readonly)
 
 
