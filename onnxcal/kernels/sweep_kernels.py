@@ -34,7 +34,7 @@ run these calls on their own threads.
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 from numba import njit, types
@@ -60,7 +60,7 @@ _MANT = np.int32(23)
 _ZERO = np.float32(0.0)
 
 
-def _array(dtype: Any, ndim: int, layout: str = "C", readonly: bool = False) -> Any:
+def _array(dtype: Any, ndim: int, layout: Literal["C", "A"] = "C", readonly: bool = False) -> Any:
     return types.Array(dtype, ndim, layout, readonly=readonly)
 
 
