@@ -106,7 +106,12 @@ def rows_per_chunk(n_classes: int, compiled: bool = False) -> int:
 
 @dataclass(frozen=True)
 class Chunk:
-    """Rows ``start..start+len(y)-1`` of a pass (positions among its selected rows)."""
+    """Rows ``start..start+len(y)-1`` of a pass (positions among its selected rows).
+
+    ``z`` holds the chunk's logits, or, when ``rows`` is given (the compiled
+    pass reads scattered rows in place), the whole logits array, of which
+    rows ``rows`` are the chunk's.
+    """
 
     index: int
     start: int
@@ -114,6 +119,7 @@ class Chunk:
     y: np.ndarray
     w: np.ndarray | None
     part: np.ndarray | None
+    rows: np.ndarray | None = None
 
 
 class Consumer(Protocol):
@@ -202,6 +208,7 @@ class ExpTerms:
     sq_cumulants: np.ndarray | None = None
     columns: np.ndarray | None = None
     candidates: np.ndarray | None = None
+    index: np.ndarray | None = None
 
     @property
     def nll(self) -> np.ndarray:
@@ -209,7 +216,7 @@ class ExpTerms:
 
     def entries(self, rows: np.ndarray, cols: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """e and x at the entries (rows, cols) of the chunk, computed as the tiles computed them."""
-        x = self.z[rows, cols]
+        x = self.z[rows if self.index is None else self.index[rows], cols]
         if self.shift is not None or self.b != 1.0:
             x = x * x.dtype.type(self.b)
         if self.shift is not None:
@@ -354,6 +361,7 @@ def exp_terms(
     sq_rows: np.ndarray | None = None,
     tile_hook: Callable[[Tile], None] | None = None,
     columns: Columns | None = None,
+    index: np.ndarray | None = None,
 ) -> ExpTerms:
     """The exponentials of one chunk and their row sums (see :class:`ExpTerms`).
 
@@ -366,7 +374,8 @@ def exp_terms(
     cache), and ``tile_hook`` sees each tile's exponentials; with
     ``buf.compiled`` it is one compiled call instead
     (:func:`onnxcal.kernels.sweep_kernels.chunk_pass`), which does the work
-    of ``columns`` in place of the tile hook.
+    of ``columns`` in place of the tile hook, and reads rows ``index`` of ``z``
+    in place when given (compiled only).
     """
     c = len(y)
     r = buf.r[:c]
@@ -387,8 +396,9 @@ def exp_terms(
         sq_all = -1 if sq_moments is None else (sq_count if pick is None else extra)  # the powers at 2 beta
         marked = buf.all_rows[:c] if pick is None else np.ascontiguousarray(sq_rows, dtype=bool)
         top, s32 = buf.top[:c], buf.shift[:c]
+        at = r if index is None else np.asarray(index, dtype=np.int64)
         sums_at = (buf.sums[:, :c], buf.sq_sums[:, :c])
-        found = run_chunk(z, b, eps, count, sq_all, sq_count, marked, columns, top, s32, *sums_at)
+        found = run_chunk(z, at, b, eps, count, sq_all, sq_count, marked, columns, top, s32, *sums_at)
         sq_source = buf.sq_sums
     else:
         top = z.argmax(axis=1)
@@ -399,15 +409,16 @@ def exp_terms(
         for a in range(0, c, buf.tile):
             _tile(z, a, min(a + buf.tile, c), b, s32, eps, count, sq_moments, sq_count, pick, buf, tile_hook)
         sq_source = buf.sq_sums if pick is None else buf.sq_picked
-    zmax = z[r, top].astype(np.float64)
-    zy = z[r, y].astype(np.float64)
+    at = r if index is None else index
+    zmax = z[at, top].astype(np.float64)
+    zy = z[at, y].astype(np.float64)
     s: float | np.ndarray = 0.0 if s32 is None else s32.astype(np.float64)
     total, kappa = _cumulants(buf.sums[: count + 1, :c].astype(np.float64), eps, moments, s, b)
     scale = beta / b
     log_total = np.log(total)
     if s32 is not None:
         log_total += scale * s
-    terms = ExpTerms(beta, b, eps, z, s32, total, log_total, top, zmax, zy, kappa.T)
+    terms = ExpTerms(beta, b, eps, z, s32, total, log_total, top, zmax, zy, kappa.T, index=index)
     if found is not None:
         terms.columns, terms.candidates = found
     if sq_moments is not None:
@@ -480,7 +491,10 @@ class Selection:
 ALL_ROWS = Selection()
 
 
-def _chunk(logits: np.ndarray, labels: np.ndarray, sel: Selection, step: int, index: int) -> Chunk:
+def _chunk(
+    logits: np.ndarray, labels: np.ndarray, sel: Selection, step: int, index: int, gather: bool = True
+) -> Chunk:
+    """The chunk ``index``; scattered rows are copied out unless ``gather`` is False (then ``Chunk.rows``)."""
     start = index * step
     key: slice | np.ndarray
     if sel.rows is None:
@@ -492,6 +506,8 @@ def _chunk(logits: np.ndarray, labels: np.ndarray, sel: Selection, step: int, in
     pick = slice(start, start + step)
     w = None if sel.weights is None else np.asarray(sel.weights[pick], dtype=np.float64)
     part = None if sel.part is None else sel.part[pick]
+    if not gather and isinstance(key, np.ndarray):
+        return Chunk(index, start, logits, np.asarray(labels[key]), w, part, key)
     return Chunk(index, start, logits[key], np.asarray(labels[key]), w, part)
 
 
@@ -518,6 +534,7 @@ def run_pass(
     k = logits.shape[1]
     dtype = compute_dtype(logits)
     compiled = dtype == np.float32 and kernels.worth_it(n * k)
+    in_place = compiled and logits.dtype == np.float32 and logits.flags.c_contiguous  # the kernel reads rows by index
     step = rows_per_chunk(k, compiled)
     n_chunks = -(-n // step)
     lanes = [consumers() for _ in range(LANES)]
@@ -534,13 +551,13 @@ def run_pass(
             lane = index % LANES
             if lane % threads != worker:
                 continue
-            chunk = _chunk(logits, labels, selection, step, index)
+            chunk = _chunk(logits, labels, selection, step, index, gather=not in_place)
             mask = None if sq_part is None or chunk.part is None else chunk.part == sq_part
             if compiled:  # the kernel does the tiles' work, for the consumer that asks for Columns
                 asks = [fn for fn in (getattr(c, "columns", None) for c in lanes[lane]) if fn is not None]
                 assert len(asks) <= 1, "one consumer per pass may ask for column sums"
                 columns = asks[0](chunk) if asks else None
-                terms = exp_terms(chunk.z, chunk.y, beta, moments, sq_moments, buf, mask, None, columns)
+                terms = exp_terms(chunk.z, chunk.y, beta, moments, sq_moments, buf, mask, None, columns, chunk.rows)
                 for consumer in lanes[lane]:
                     consumer.add(chunk, terms)
                 continue

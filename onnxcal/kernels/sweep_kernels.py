@@ -66,7 +66,8 @@ def _array(dtype: Any, ndim: int, layout: Literal["C", "A"] = "C", readonly: boo
 
 # The inputs are read-only arrays (a writable array converts to one; logits may be a read-only memory map).
 CHUNK_SIG = types.int64(
-    _array(types.float32, 2, readonly=True), types.float32, types.float64, types.int64, types.int64, types.int64,
+    _array(types.float32, 2, readonly=True), _array(types.int64, 1, readonly=True),
+    types.float32, types.float64, types.int64, types.int64, types.int64,
     _array(types.boolean, 1, readonly=True), _array(types.float64, 1, readonly=True),
     _array(types.intp, 1, readonly=True), types.int64, types.float64, _array(types.int64, 1),
     _array(types.float32, 1), _array(types.float64, 2, "A"), _array(types.float64, 2, "A"), _array(types.float64, 2),
@@ -213,11 +214,11 @@ def _candidates(eb, k, threshold, i, cand, n_cand):  # type: ignore[no-untyped-d
 
 @njit(CHUNK_SIG, nogil=True, cache=True, fastmath=FAST, boundscheck=False)
 def chunk_pass(  # type: ignore[no-untyped-def]
-    z, b, eps, count, sq_all, sq_pick, picked, w, part, parts, first, top, shift, sums, sq_sums, columns, cand
+    z, at, b, eps, count, sq_all, sq_pick, picked, w, part, parts, first, top, shift, sums, sq_sums, columns, cand
 ):
     """One chunk: see the module docstring. Returns the number of candidates written to ``cand`` (-1: no room).
 
-    z (c, k): the chunk's logits; b: beta in float32; eps = beta / b - 1.
+    z: logits, of which rows ``at`` (c of them) are the chunk's; b: beta in float32; eps = beta / b - 1.
     count: sums[j, i] = sum_k e x^j for j = 0..count.
     sq_all: -1 for nothing at 2 beta, else sq_sums[j, i] = sum e^2 x^j for j = 0..sq_all on every row,
     and for j = 0..sq_pick on the rows where ``picked``.
@@ -225,7 +226,7 @@ def chunk_pass(  # type: ignore[no-untyped-def]
     flat indices i k + j of the entries with e > total first (1 - 1e-5) go to ``cand``.
     top[i] the first index of the row maximum, shift[i] = b max z (float32).
     """
-    c, k = z.shape
+    c, k = len(at), z.shape[1]
     xb = np.empty(k, np.float32)
     eb = np.empty(k, np.float32)
     ib = np.empty(k, np.int32)
@@ -234,7 +235,7 @@ def chunk_pass(  # type: ignore[no-untyped-def]
     eps32 = np.float32(eps)
     n_cand = 0
     for i in range(c):
-        row = z[i]
+        row = z[at[i]]
         m, top[i] = _row_max(row, k, ib, fb)
         s = b * m
         shift[i] = s
@@ -271,14 +272,14 @@ def chunk_pass(  # type: ignore[no-untyped-def]
 
 
 def run_chunk(
-    z: np.ndarray, b: float, eps: float, count: int, sq_all: int, sq_pick: int, picked: np.ndarray,
+    z: np.ndarray, at: np.ndarray, b: float, eps: float, count: int, sq_all: int, sq_pick: int, picked: np.ndarray,
     columns: Any, top: np.ndarray, shift: np.ndarray, sums: np.ndarray, sq_sums: np.ndarray,
 ) -> tuple[np.ndarray, np.ndarray] | None:
     """:func:`chunk_pass` with ``columns`` (an :class:`onnxcal.sweep.Columns`, or None) unpacked.
 
     Returns the column sums per part and the candidates' flat indices, or None without ``columns``.
     """
-    c, k = z.shape
+    c, k = len(at), z.shape[1]
     if columns is None:
         w, part, parts, first, room = np.zeros(0), np.zeros(0, np.intp), 0, 0.0, 0
     else:
@@ -288,7 +289,7 @@ def run_chunk(
     col = np.zeros((max(parts, 1), k))
     cand = np.empty(room, np.int64)
     found = chunk_pass(
-        z, np.float32(b), eps, count, sq_all, max(sq_pick, sq_all), picked, w, part, parts, first, top, shift,
+        z, at, np.float32(b), eps, count, sq_all, max(sq_pick, sq_all), picked, w, part, parts, first, top, shift,
         sums, sq_sums, col, cand,
     )
     if found < 0:
