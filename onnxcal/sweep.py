@@ -36,6 +36,7 @@ from __future__ import annotations
 
 import os
 import threading
+import warnings
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import AbstractContextManager, nullcontext
@@ -155,19 +156,27 @@ class Tile:
 
 @dataclass(frozen=True)
 class Columns:
-    """What a consumer asks the compiled kernel to do with a chunk's exponentials, in place of its ``tile``.
+    """The classwise ECE's sums of a chunk, asked of the compiled kernel by a consumer (its ``tile`` work and more).
 
-    The column sums of p = e (1 + eps x) / total weighted by ``weights``, per
-    part (``part``, 0..parts-1), and the flat indices (row k + class) of the
-    entries with e > total ``first`` (1 - 1e-5): the numpy tiles' work in
-    :meth:`onnxcal.metrics.score_sums.ScoreSums.tile`, with a threshold per row.
+    With p = e (1 + eps x) / total, weights ``weights``, parts ``part``
+    (0..parts-1), labels ``labels`` and the M - 1 inner bin ``edges``: the
+    kernel adds w p to ``column`` (parts, k); for the entries with p >
+    ``first`` (1/M) w p to ``p_sum`` at ((part k + class) M + bin) and to
+    ``upper`` at (part k + class); and w to ``y_sum`` at ((part k + label) M
+    + the bin of the label's p): what
+    :meth:`onnxcal.metrics.score_sums.ScoreSums.tile` and ``add`` do with numpy.
     """
 
     weights: np.ndarray
     part: np.ndarray
     parts: int
     first: float
-    n_bins: int
+    labels: np.ndarray
+    edges: np.ndarray
+    column: np.ndarray
+    p_sum: np.ndarray
+    upper: np.ndarray
+    y_sum: np.ndarray
 
 
 @dataclass
@@ -188,9 +197,8 @@ class ExpTerms:
     ``log_total`` is L(beta) = log sum_k exp(beta z_k), ``cumulants[:, j-1]``
     the j-th cumulant of z under softmax(beta z) (the j-th derivative of L),
     ``sq_log_total`` and ``sq_cumulants`` the same at 2 beta (from e^2).
-    From the compiled kernel (see :class:`Columns`): ``columns`` the column
-    sums per part and ``candidates`` the flat indices of the entries that may
-    be above the first edge; None from the numpy code (the tiles did that work).
+    ``classwise``: the compiled kernel added the classwise sums of a
+    :class:`Columns` (the numpy code leaves them to the consumer's tiles).
     """
 
     beta: float
@@ -206,8 +214,7 @@ class ExpTerms:
     cumulants: np.ndarray
     sq_log_total: np.ndarray | None = None
     sq_cumulants: np.ndarray | None = None
-    columns: np.ndarray | None = None
-    candidates: np.ndarray | None = None
+    classwise: bool = False
     index: np.ndarray | None = None
 
     @property
@@ -387,7 +394,7 @@ def exp_terms(
     extra = 1 if eps else 0
     sq_count = max(sq_moments or 0, extra)
     pick = None if sq_rows is None or not sq_moments else np.flatnonzero(sq_rows)
-    found: tuple[np.ndarray, np.ndarray] | None = None
+    found = False
     s32: np.ndarray | None
     if buf.compiled:  # one compiled call; it shifts every row by b times its maximum
         from .kernels.sweep_kernels import run_chunk
@@ -419,8 +426,7 @@ def exp_terms(
     if s32 is not None:
         log_total += scale * s
     terms = ExpTerms(beta, b, eps, z, s32, total, log_total, top, zmax, zy, kappa.T, index=index)
-    if found is not None:
-        terms.columns, terms.candidates = found
+    terms.classwise = found
     if sq_moments is not None:
         sums = buf.sq_sums[: extra + 1, :c].astype(np.float64)
         sq_total = sums[0] + 2.0 * eps * sums[1] if extra else sums[0]
@@ -511,6 +517,18 @@ def _chunk(
     return Chunk(index, start, logits[key], np.asarray(labels[key]), w, part)
 
 
+def _kernels_loaded() -> bool:
+    """Import the compiled kernel (numba's import, the kernel's compilation or cache load), in this thread,
+    before any chunk; False, with a warning, if that fails (the numpy code then runs: same results)."""
+    try:
+        with _signals.deferred():  # a signal inside an extension module's import can crash it
+            from .kernels import sweep_kernels  # noqa: F401
+    except Exception as exc:  # an optimisation: never worth failing a fit for
+        warnings.warn(f"the compiled pass is not available ({exc}); using numpy", RuntimeWarning, stacklevel=3)
+        return False
+    return True
+
+
 def run_pass(
     logits: np.ndarray,
     labels: np.ndarray,
@@ -533,7 +551,7 @@ def run_pass(
     n = len(logits) if selection.rows is None else len(selection.rows)
     k = logits.shape[1]
     dtype = compute_dtype(logits)
-    compiled = dtype == np.float32 and kernels.worth_it(n * k)
+    compiled = dtype == np.float32 and kernels.worth_it(n * k) and _kernels_loaded()
     in_place = compiled and logits.dtype == np.float32 and logits.flags.c_contiguous  # the kernel reads rows by index
     step = rows_per_chunk(k, compiled)
     n_chunks = -(-n // step)
@@ -541,9 +559,6 @@ def run_pass(
     threads = default_threads() if threads is None else max(1, min(int(threads), LANES))
     if n * k < PARALLEL_ELEMENTS:
         threads = 1
-    if compiled:  # numba's import and the kernel's compilation or cache load: before any chunk, in this thread
-        with _signals.deferred():  # a signal inside an extension module's import can crash it
-            from .kernels import sweep_kernels  # noqa: F401
 
     def work(worker: int) -> None:
         buf = _Buffers(min(step, max(n, 1)), k, dtype, compiled=compiled)

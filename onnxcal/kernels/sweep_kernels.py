@@ -69,9 +69,10 @@ CHUNK_SIG = types.int64(
     _array(types.float32, 2, readonly=True), _array(types.int64, 1, readonly=True),
     types.float32, types.float64, types.int64, types.int64, types.int64,
     _array(types.boolean, 1, readonly=True), _array(types.float64, 1, readonly=True),
-    _array(types.intp, 1, readonly=True), types.int64, types.float64, _array(types.int64, 1),
-    _array(types.float32, 1), _array(types.float64, 2, "A"), _array(types.float64, 2, "A"), _array(types.float64, 2),
-    _array(types.int64, 1),
+    _array(types.intp, 1, readonly=True), types.int64, types.float64,
+    _array(types.int64, 1, readonly=True), _array(types.float64, 1, readonly=True),
+    _array(types.int64, 1), _array(types.float32, 1), _array(types.float64, 2, "A"), _array(types.float64, 2, "A"),
+    _array(types.float64, 2), _array(types.float64, 1), _array(types.float64, 1), _array(types.float64, 1),
 )
 
 
@@ -184,60 +185,94 @@ def _row_max(row, k, ib, fb):  # type: ignore[no-untyped-def]
     return m, t
 
 
-@njit(nogil=True, cache=True, fastmath=FAST, inline="always")
-def _candidates(eb, k, threshold, i, cand, n_cand):  # type: ignore[no-untyped-def]
-    """Append i k + j for the e_j > threshold to ``cand`` from ``n_cand`` on; returns the new count (-1: no room).
+@njit(nogil=True, cache=True, inline="always")
+def _bin(p, edges):  # type: ignore[no-untyped-def]
+    """The bin of p among M equal-width bins: the number of inner edges below p (``np.searchsorted``)."""
+    n = 0
+    for edge in edges:
+        n += 1 if edge < p else 0
+    return n
 
-    Blocks of 64 are counted in one vectorised loop; only blocks with entries above are scanned one by one.
+
+@njit(nogil=True, cache=True, fastmath=FAST, inline="always")
+def _candidates(eb, xb, k, threshold, i, cand, cand_e, cand_x, n):  # type: ignore[no-untyped-def]
+    """Append the entries of row i with e > ``threshold`` (flat index i k + j, e, x); returns the new count.
+
+    Blocks of 64 are counted in one vectorised loop; only blocks with entries above are looked at one by
+    one. ``cand`` has room for k entries more than the chunk can give (the room is checked per row).
     """
     full = k - k % 64
     for a in range(0, full, 64):
         hits = 0
         for j in range(a, a + 64):  # a constant trip count: vectorised
             hits += 1 if eb[j] > threshold else 0
-        if hits == 0:
-            continue
-        if n_cand + hits > len(cand):
-            return -1
-        for j in range(a, a + 64):
-            if eb[j] > threshold:
-                cand[n_cand] = i * k + j
-                n_cand += 1
+        if hits:
+            for j in range(a, a + 64):
+                if eb[j] > threshold:
+                    cand[n] = i * k + j
+                    cand_e[n] = eb[j]
+                    cand_x[n] = xb[j]
+                    n += 1
     for j in range(full, k):
         if eb[j] > threshold:
-            if n_cand == len(cand):
-                return -1
-            cand[n_cand] = i * k + j
-            n_cand += 1
-    return n_cand
+            cand[n] = i * k + j
+            cand_e[n] = eb[j]
+            cand_x[n] = xb[j]
+            n += 1
+    return n
+
+
+@njit(nogil=True, cache=True)
+def _upper_entries(cand, cand_e, cand_x, n, k, eps, totals, w, part, first, edges, p_sum, upper):  # type: ignore[no-untyped-def]
+    """The classwise sums of the candidates (``ScoreSums._upper_bins``): p = e (1 + eps x) / total in
+    float64; if p > ``first``, w p goes to p_sum at ((part k + class) M + bin) and to upper at (part k + class)."""
+    m = len(edges) + 1
+    for t in range(n):
+        i = cand[t] // k
+        j = cand[t] - i * k
+        p = np.float64(cand_e[t]) * (1.0 + eps * np.float64(cand_x[t])) / totals[i]
+        if p > first:
+            at = part[i] * k + j
+            wp = w[i] * p
+            p_sum[at * m + _bin(p, edges)] += wp
+            upper[at] += wp
 
 
 @njit(CHUNK_SIG, nogil=True, cache=True, fastmath=FAST, boundscheck=False)
 def chunk_pass(  # type: ignore[no-untyped-def]
-    z, at, b, eps, count, sq_all, sq_pick, picked, w, part, parts, first, top, shift, sums, sq_sums, columns, cand
+    z, at, b, eps, count, sq_all, sq_pick, picked, w, part, parts, first, y, edges, top, shift, sums, sq_sums,
+    columns, p_sum, upper, y_sum,
 ):
-    """One chunk: see the module docstring. Returns the number of candidates written to ``cand`` (-1: no room).
+    """One chunk: see the module docstring.
 
     z: logits, of which rows ``at`` (c of them) are the chunk's; b: beta in float32; eps = beta / b - 1.
     count: sums[j, i] = sum_k e x^j for j = 0..count.
     sq_all: -1 for nothing at 2 beta, else sq_sums[j, i] = sum e^2 x^j for j = 0..sq_all on every row,
     and for j = 0..sq_pick on the rows where ``picked``.
-    parts: 0 for no column sums; else columns[part[i], :] += w[i] / total_i * e (1 + eps x), and the
-    flat indices i k + j of the entries with e > total first (1 - 1e-5) go to ``cand``.
-    top[i] the first index of the row maximum, shift[i] = b max z (float32).
+    parts: 0 for no classwise sums; else, with p = e (1 + eps x) / total, weights ``w``, parts ``part``,
+    labels ``y`` and the M - 1 inner bin edges ``edges``: columns[part, :] += w p (float32 over 128
+    rows at a time, then float64, as the numpy tiles), the sums of the entries above ``first`` (1/M)
+    into p_sum and upper (see :func:`_upper_entries`), and w into y_sum at ((part k + y) M + bin of p_y).
+    top[i] the first index of the row maximum, shift[i] = b max z (float32). Returns 0.
     """
     c, k = len(at), z.shape[1]
+    m = len(edges) + 1
     xb = np.empty(k, np.float32)
     eb = np.empty(k, np.float32)
     ib = np.empty(k, np.int32)
     fb = ib.view(np.float32)
+    room = c * m + k if parts else 0
+    cand = np.empty(room, np.int64)
+    cand_e = np.empty(room, np.float32)
+    cand_x = np.empty(room, np.float32)
+    totals = np.empty(c if parts else 0)
+    n_cand = 0
     acc = np.zeros((max(parts, 1), k), np.float32)
     eps32 = np.float32(eps)
-    n_cand = 0
     for i in range(c):
         row = z[at[i]]
-        m, top[i] = _row_max(row, k, ib, fb)
-        s = b * m
+        mx, top[i] = _row_max(row, k, ib, fb)
+        s = b * mx
         shift[i] = s
         for j in range(k):
             xb[j] = _shifted(b, row[j], s)
@@ -250,7 +285,8 @@ def chunk_pass(  # type: ignore[no-untyped-def]
         if parts == 0:
             continue
         total = sums[0, i] + eps * sums[1, i] if eps != 0.0 else sums[0, i]
-        coef = np.float32(w[i] / total)
+        wi = w[i]
+        coef = np.float32(wi / total)
         into = acc[part[i]]
         if eps != 0.0:
             for j in range(k):
@@ -258,40 +294,47 @@ def chunk_pass(  # type: ignore[no-untyped-def]
         else:
             for j in range(k):
                 into[j] += coef * eb[j]
+        base = part[i] * k
         threshold = np.float32(total * first * (1.0 - 1e-5))
+        totals[i] = total
         if threshold < np.float32(1.0):  # e <= 1 everywhere (x <= 0): nothing above it otherwise
-            n_cand = _candidates(eb, k, threshold, i, cand, n_cand)
-            if n_cand < 0:
-                return -1
-        if (i + 1) % 128 == 0 or i == c - 1:  # float32 column sums of 128 rows, then float64 (as the numpy tiles)
+            if n_cand + k > len(cand):  # flush the candidates (rarely: there is room for M per row)
+                _upper_entries(cand, cand_e, cand_x, n_cand, k, eps, totals, w, part, first, edges, p_sum, upper)
+                n_cand = 0
+            n_cand = _candidates(eb, xb, k, threshold, i, cand, cand_e, cand_x, n_cand)
+        label = y[i]
+        p_y = np.float64(eb[label]) * (1.0 + eps * np.float64(xb[label])) / total
+        y_sum[(base + label) * m + _bin(p_y, edges)] += wi
+        if (i + 1) % 128 == 0 or i == c - 1:
             for p in range(parts):
                 for j in range(k):
                     columns[p, j] += acc[p, j]
                     acc[p, j] = _ZERO
-    return n_cand
+    if parts:
+        _upper_entries(cand, cand_e, cand_x, n_cand, k, eps, totals, w, part, first, edges, p_sum, upper)
+    return 0
 
 
 def run_chunk(
     z: np.ndarray, at: np.ndarray, b: float, eps: float, count: int, sq_all: int, sq_pick: int, picked: np.ndarray,
     columns: Any, top: np.ndarray, shift: np.ndarray, sums: np.ndarray, sq_sums: np.ndarray,
-) -> tuple[np.ndarray, np.ndarray] | None:
+) -> bool:
     """:func:`chunk_pass` with ``columns`` (an :class:`onnxcal.sweep.Columns`, or None) unpacked.
 
-    Returns the column sums per part and the candidates' flat indices, or None without ``columns``.
+    Returns whether the classwise sums were added (into the arrays of ``columns``).
     """
-    c, k = len(at), z.shape[1]
+    k = z.shape[1]
     if columns is None:
-        w, part, parts, first, room = np.zeros(0), np.zeros(0, np.intp), 0, 0.0, 0
+        none = np.zeros(0)
+        w, part, parts, first, y, edges = none, np.zeros(0, np.intp), 0, 0.0, np.zeros(0, np.int64), none
+        col, p_sum, upper, y_sum = np.zeros((1, k)), none, none, none
     else:
         w = np.ascontiguousarray(columns.weights, dtype=np.float64)
         part, parts, first = np.ascontiguousarray(columns.part, dtype=np.intp), columns.parts, columns.first
-        room = c * (columns.n_bins + 1)  # e > total (1 - 1e-5) / M holds for at most M entries of a row
-    col = np.zeros((max(parts, 1), k))
-    cand = np.empty(room, np.int64)
-    found = chunk_pass(
-        z, at, np.float32(b), eps, count, sq_all, max(sq_pick, sq_all), picked, w, part, parts, first, top, shift,
-        sums, sq_sums, col, cand,
+        y, edges = np.ascontiguousarray(columns.labels, dtype=np.int64), columns.edges
+        col, p_sum, upper, y_sum = columns.column, columns.p_sum, columns.upper, columns.y_sum
+    chunk_pass(
+        z, at, np.float32(b), eps, count, sq_all, max(sq_pick, sq_all), picked, w, part, parts, first, y, edges,
+        top, shift, sums, sq_sums, col, p_sum, upper, y_sum,
     )
-    if found < 0:
-        raise RuntimeError("the compiled pass found more candidate entries than a softmax row can have")
-    return None if columns is None else (col[:parts], cand[:found])
+    return columns is not None

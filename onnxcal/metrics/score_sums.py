@@ -101,6 +101,8 @@ class ScoreSums:
             self.weight += sums[:P]
             self.nll -= sums[P : 2 * P]
             self.brier += sums[2 * P :]
+        if terms.classwise:  # the compiled pass added the classwise sums (Columns)
+            return
         p_y = terms.probabilities(np.arange(c), chunk.y)  # as the classwise bins see it
         where = bin_ids(p_y, M) + M * chunk.y
         if part is not None:
@@ -109,11 +111,13 @@ class ScoreSums:
         self._upper_bins(chunk, terms, w, part)
 
     def columns(self, chunk: Chunk) -> Columns:
-        """What the compiled pass computes for :meth:`tile`'s work (the classwise column sums, the candidates)."""
+        """The classwise sums of a chunk, for the compiled pass to add (for :meth:`tile` and part of ``add``)."""
         c = len(chunk.y)
         w = np.ones(c) if chunk.w is None else chunk.w
         part = np.zeros(c, np.intp) if chunk.part is None else chunk.part.astype(np.intp)
-        return Columns(w, part, self.parts, self.first, self.n_bins)
+        edges = np.linspace(0.0, 1.0, self.n_bins + 1)[1:-1]  # bin_ids' rule: np.searchsorted on the inner edges
+        column = self.column.reshape(self.parts, self.k)
+        return Columns(w, part, self.parts, self.first, chunk.y, edges, column, self.p_sum, self.upper, self.y_sum)
 
     def tile(self, chunk: Chunk, terms: Tile) -> None:
         """From a tile's exponentials: the column sums of p per part, and which entries may be above 1/M."""
@@ -139,12 +143,7 @@ class ScoreSums:
     def _upper_bins(self, chunk: Chunk, terms: ExpTerms, w: np.ndarray, part: np.ndarray | None) -> None:
         """The classwise sums of the entries above the first edge 1/M (the tiles marked the candidates)."""
         k, M = self.k, self.n_bins
-        if terms.columns is not None and terms.candidates is not None:  # the compiled pass did the tiles' work
-            self.column += terms.columns.ravel()
-            flat = terms.candidates
-        else:
-            flat = _flat_true(self._mask)
-        rows, cols = np.divmod(flat, k)
+        rows, cols = np.divmod(_flat_true(self._mask), k)
         p = terms.probabilities(rows, cols)
         keep = p > self.first
         rows, cols, p = rows[keep], cols[keep], p[keep]
