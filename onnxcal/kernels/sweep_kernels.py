@@ -1,14 +1,16 @@
 """The float32 chunk of a :mod:`onnxcal.sweep` pass as one compiled loop per row.
 
 :func:`chunk_pass` does for one chunk of float32 logits what the numpy code of
-``sweep._tile`` and ``ScoreSums.tile`` does (that code stays, as the reference
-the tests compare this against; ``ONNXCAL_COMPILED=0`` selects it): per row
-the maximum and its first index, the shift s = b max z, x = b z - s,
-e = exp(x), the power sums sum e x^j, the sums at 2 beta sum e^2 x^j, and,
-for the metric passes, the classwise ECE's column sums of p = e (1 + eps x) / total
-per part and the entries that may lie above 1/M. Each value of the chunk is read
-once from memory; the row's x and e live in four row-sized scratch arrays (in
-the core's first-level cache) between the loops over them.
+``sweep._tile``, ``ScoreSums.tile`` and the classwise part of ``ScoreSums.add``
+does (that code stays, as the reference the tests compare this against;
+``ONNXCAL_COMPILED=0`` selects it): per row the maximum and its first index,
+the shift s = b max z, x = b z - s, e = exp(x), the power sums sum e x^j, the
+sums at 2 beta sum e^2 x^j, and, for the metric passes, the classwise ECE's
+column sums of p = e (1 + eps x) / total per part, the sums of the entries
+above 1/M per (class, bin) and the labels' bins. Each value of the chunk is
+read once from memory (selected rows in place, by index); the row's x and e
+live in row-sized scratch arrays (in the core's first-level cache) between
+the loops over them.
 
 Precision and fast-math. x is computed by :func:`_shifted`, compiled without
 fast-math flags, so that it is rounded as numpy rounds it (a product, then a
@@ -20,8 +22,10 @@ below -87.3, where float32 results are subnormal). The loops are compiled with
 the fast-math flags ``nnan ninf nsz reassoc contract``: they let LLVM vectorise
 the sums (reordering them: a different float32 rounding of each sum, not a
 larger one) and fuse the polynomial's products and sums. They assume no NaN or
-infinity, which holds because logits are checked finite when they are captured
-or loaded, and they change no comparison: max and equality are exact in any
+infinity: the commands refuse logits with NaN or Inf (or drop those rows, with
+``--drop-nonfinite``) before any pass (``api/common.py``); a library caller who
+passes them gets unspecified numbers where numpy would give NaN. They change no
+comparison: max and equality are exact in any
 order, and the comparisons (the underflow cut, the candidates' threshold) are
 between finite numbers. Sums are accumulated in float32 within a row (as the
 numpy code's BLAS sums are) and returned in float64.
