@@ -41,12 +41,12 @@ from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
-from math import comb
 from typing import Any, Protocol, cast
 
 import numpy as np
 
 from . import _signals, kernels
+from .cumulants import row_cumulants
 
 CHUNK_ELEMENTS = 1 << 19
 """Logit values per chunk (2 MiB of float32): the per-row work of a chunk (a few hundred numpy
@@ -260,41 +260,6 @@ class _Buffers:
         self.sq_picked = np.empty((powers + 1, rows), dtype)  # the same, gathered, for the rows asked for
 
 
-def cumulants_from_moments(mu: np.ndarray) -> np.ndarray:
-    """Cumulants kappa_1..kappa_m from raw moments mu_1..mu_m (rows of an (m, n) array).
-
-    Up to m = 5 from the central moments c_j (kappa_2 = c_2, kappa_3 = c_3,
-    kappa_4 = c_4 - 3 c_2^2, kappa_5 = c_5 - 10 c_3 c_2); beyond, by the
-    recursion kappa_n = mu_n - sum_{j=1}^{n-1} C(n-1, j-1) kappa_j mu_{n-j}
-    (both common practice).
-    """
-    m = len(mu)
-    if m > 5:
-        kappa = np.empty_like(mu)
-        for n in range(1, m + 1):
-            acc = mu[n - 1].copy()
-            for j in range(1, n):
-                acc -= comb(n - 1, j - 1) * kappa[j - 1] * mu[n - j - 1]
-            kappa[n - 1] = acc
-        return kappa
-    kappa = np.empty_like(mu)
-    if m == 0:
-        return kappa
-    m1 = kappa[0] = mu[0]
-    if m >= 2:
-        sq = m1 * m1
-        c2 = kappa[1] = mu[1] - sq
-    if m >= 3:
-        c3 = kappa[2] = mu[2] - m1 * (3.0 * mu[1] - 2.0 * sq)
-    if m >= 4:
-        c4 = mu[3] - m1 * (4.0 * mu[2] - m1 * (6.0 * mu[1] - 3.0 * sq))
-        kappa[3] = c4 - 3.0 * c2 * c2
-    if m >= 5:
-        c5 = mu[4] - m1 * (5.0 * mu[3] - m1 * (10.0 * mu[2] - m1 * (10.0 * mu[1] - 4.0 * sq)))
-        kappa[4] = c5 - 10.0 * c3 * c2
-    return kappa
-
-
 _ONES: dict[tuple[int, np.dtype[Any]], np.ndarray] = {}
 
 
@@ -336,26 +301,6 @@ def _power_sums(
         np.matmul(dest, ones, out=out[j])
         prev = dest
     return out
-
-
-def _cumulants(sums: np.ndarray, eps: float, m: int, s: float | np.ndarray, b: float) -> tuple[np.ndarray, np.ndarray]:
-    """Row totals at the exact beta and the cumulants 1..m of z = (x + s) / b (an (m, c) array).
-
-    ``sums`` holds the row sums of w x^j (j = 0..max(m, 1)); the weights at the
-    exact beta are w exp(eps x), to first order w (1 + eps x), so the sum of
-    order j needs that of order j + 1. The highest one is left at b: its
-    correction is about eps x ~ 1e-7 of itself, and the top cumulant only
-    ever enters multiplied by d^m, d a step in beta (at most ~1e-2).
-    """
-    at = sums[: m + 1].copy()
-    if eps:
-        top = min(m, len(sums) - 2)
-        at[: top + 1] += eps * sums[1 : top + 2]
-    kappa = cumulants_from_moments(at[1:] / at[0])
-    if m:
-        kappa[0] += s
-        kappa /= (b ** np.arange(1, m + 1))[:, None]
-    return at[0], kappa
 
 
 def exp_terms(
@@ -403,7 +348,7 @@ def exp_terms(
         sq_all = -1 if sq_moments is None else (sq_count if pick is None else extra)  # the powers at 2 beta
         marked = buf.all_rows[:c] if pick is None else np.ascontiguousarray(sq_rows, dtype=bool)
         top, s32 = buf.top[:c], buf.shift[:c]
-        at = r if index is None else np.asarray(index, dtype=np.int64)
+        at = r if index is None else np.ascontiguousarray(index, dtype=np.int64)  # a selection may be strided
         sums_at = (buf.sums[:, :c], buf.sq_sums[:, :c])
         found = run_chunk(z, at, b, eps, count, sq_all, sq_count, marked, columns, top, s32, *sums_at)
         sq_source = buf.sq_sums
@@ -420,7 +365,7 @@ def exp_terms(
     zmax = z[at, top].astype(np.float64)
     zy = z[at, y].astype(np.float64)
     s: float | np.ndarray = 0.0 if s32 is None else s32.astype(np.float64)
-    total, kappa = _cumulants(buf.sums[: count + 1, :c].astype(np.float64), eps, moments, s, b)
+    total, kappa = row_cumulants(buf.sums[: count + 1, :c].astype(np.float64), eps, moments, s, b)
     scale = beta / b
     log_total = np.log(total)
     if s32 is not None:
@@ -435,7 +380,7 @@ def exp_terms(
         if sq_moments:
             rows = slice(None) if pick is None else pick
             sums = sq_source[: sq_count + 1, :c][:, rows].astype(np.float64)
-            _, sq_kappa = _cumulants(sums, 2.0 * eps, sq_moments, s if s32 is None else cast(np.ndarray, s)[rows], b)
+            _, sq_kappa = row_cumulants(sums, 2.0 * eps, sq_moments, s if s32 is None else cast(np.ndarray, s)[rows], b)
             terms.sq_cumulants[rows] = sq_kappa.T
     return terms
 
@@ -560,11 +505,13 @@ def run_pass(
     if n * k < PARALLEL_ELEMENTS:
         threads = 1
 
+    stop = threading.Event()  # set when the calling thread is interrupted: the workers end after their chunk
+
     def work(worker: int) -> None:
         buf = _Buffers(min(step, max(n, 1)), k, dtype, compiled=compiled)
         for index in range(n_chunks):
             lane = index % LANES
-            if lane % threads != worker:
+            if lane % threads != worker or stop.is_set():
                 continue
             chunk = _chunk(logits, labels, selection, step, index, gather=not in_place)
             mask = None if sq_part is None or chunk.part is None else chunk.part == sq_part
@@ -593,8 +540,12 @@ def run_pass(
             work(0)
         else:
             with ThreadPoolExecutor(threads) as pool:
-                for f in [pool.submit(work, t) for t in range(threads)]:
-                    f.result()
+                try:
+                    for f in [pool.submit(work, t) for t in range(threads)]:
+                        f.result()
+                except BaseException:  # Ctrl-C (or an error): do not wait for the other chunks
+                    stop.set()
+                    raise
     return lanes
 
 

@@ -233,8 +233,13 @@ def test_read_only_logits_and_a_memory_map(rng, either, tmp_path):
     want, got = _both(either, lambda: evaluate(mapped, y, 1.3))
     for key in METRIC_FIELDS:
         assert getattr(got, key) == pytest.approx(getattr(want, key), rel=1e-5, abs=1e-7), key
-    rows = np.sort(rng.choice(500, 300, replace=False))  # a selection of rows: gathered chunks
-    sel = Selection(rows=rows)
-    want, got = _both(either, lambda: temperature_pass(mapped, y, 0.9, 15, selection=sel)[0])
-    assert got.nll == pytest.approx(want.nll, rel=1e-6)
-    np.testing.assert_array_equal(got.bins[:, 0], want.bins[:, 0])
+    rows = np.sort(rng.choice(500, 300, replace=False))  # a selection of rows: read in place by index
+    for sel in (Selection(rows=rows), Selection(rows=np.arange(500)[::3])):  # (strided, as the fit's subsamples)
+        want, got = _both(either, lambda sel=sel: temperature_pass(mapped, y, 0.9, 15, selection=sel)[0])
+        assert got.nll == pytest.approx(want.nll, rel=1e-6)
+        np.testing.assert_array_equal(got.bins[:, 0], want.bins[:, 0])
+    # the fit itself, whose subsample stages select every n-th row (a strided index array)
+    z = (rng.normal(scale=3.0, size=(60_000, 10))).astype(np.float32)
+    y = np.argmax(z / 1.5 + rng.gumbel(size=z.shape), axis=1)
+    want, got = _both(either, lambda: summarize(z, y, {}, FitOptions(bootstrap=0), threads=1))
+    assert got.result.temperature == pytest.approx(want.result.temperature, rel=1e-6)
