@@ -251,7 +251,7 @@ class _Buffers:
         sums = np.float64 if compiled else dtype
         self.sums = np.empty((powers + 1, rows), sums)
         self.sq_sums = np.empty((powers + 1, rows), sums)
-        if compiled:
+        if compiled:  # ExpTerms.top and .shift are views of these: valid until the thread's next chunk
             self.top = np.empty(rows, np.int64)
             self.shift = np.empty(rows, np.float32)
             self.all_rows = np.ones(rows, bool)
