@@ -36,18 +36,24 @@ from __future__ import annotations
 
 import os
 import threading
+import warnings
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
-from math import comb
 from typing import Any, Protocol, cast
 
 import numpy as np
 
+from . import _signals, kernels
+from .cumulants import row_cumulants
+
 CHUNK_ELEMENTS = 1 << 19
 """Logit values per chunk (2 MiB of float32): the per-row work of a chunk (a few hundred numpy
 calls by the consumers) costs little beside its arithmetic at this size."""
+COMPILED_CHUNK_ELEMENTS = 1 << 21
+"""Logit values per chunk for the compiled kernel (8 MiB of float32): it works row by row, so the chunk
+is only the unit of the consumers' per-row numpy work, paid once per chunk."""
 TILE_ELEMENTS = 1 << 17
 """Logit values per tile, the unit of the work on whole rows (exponentials, row and column sums):
 its scratch arrays (512 KiB each in float32) stay in or near the core's own cache (of 64, 128 and
@@ -95,13 +101,18 @@ def compute_dtype(logits: np.ndarray) -> np.dtype:
     return np.dtype(np.float32) if dt.kind == "f" and dt.itemsize <= 4 else np.dtype(np.float64)
 
 
-def rows_per_chunk(n_classes: int) -> int:
-    return max(1, CHUNK_ELEMENTS // max(1, n_classes))
+def rows_per_chunk(n_classes: int, compiled: bool = False) -> int:
+    return max(1, (COMPILED_CHUNK_ELEMENTS if compiled else CHUNK_ELEMENTS) // max(1, n_classes))
 
 
 @dataclass(frozen=True)
 class Chunk:
-    """Rows ``start..start+len(y)-1`` of a pass (positions among its selected rows)."""
+    """Rows ``start..start+len(y)-1`` of a pass (positions among its selected rows).
+
+    ``z`` holds the chunk's logits, or, when ``rows`` is given (the compiled
+    pass reads scattered rows in place), the whole logits array, of which
+    rows ``rows`` are the chunk's.
+    """
 
     index: int
     start: int
@@ -109,6 +120,7 @@ class Chunk:
     y: np.ndarray
     w: np.ndarray | None
     part: np.ndarray | None
+    rows: np.ndarray | None = None
 
 
 class Consumer(Protocol):
@@ -142,6 +154,31 @@ class Tile:
         return p
 
 
+@dataclass(frozen=True)
+class Columns:
+    """The classwise ECE's sums of a chunk, asked of the compiled kernel by a consumer (its ``tile`` work and more).
+
+    With p = e (1 + eps x) / total, weights ``weights``, parts ``part``
+    (0..parts-1), labels ``labels`` and the M - 1 inner bin ``edges``: the
+    kernel adds w p to ``column`` (parts, k); for the entries with p >
+    ``first`` (1/M) w p to ``p_sum`` at ((part k + class) M + bin) and to
+    ``upper`` at (part k + class); and w to ``y_sum`` at ((part k + label) M
+    + the bin of the label's p): what
+    :meth:`onnxcal.metrics.score_sums.ScoreSums.tile` and ``add`` do with numpy.
+    """
+
+    weights: np.ndarray
+    part: np.ndarray
+    parts: int
+    first: float
+    labels: np.ndarray
+    edges: np.ndarray
+    column: np.ndarray
+    p_sum: np.ndarray
+    upper: np.ndarray
+    y_sum: np.ndarray
+
+
 @dataclass
 class ExpTerms:
     """Per-row results of one chunk at one beta (float64 arrays of the chunk's length).
@@ -160,6 +197,8 @@ class ExpTerms:
     ``log_total`` is L(beta) = log sum_k exp(beta z_k), ``cumulants[:, j-1]``
     the j-th cumulant of z under softmax(beta z) (the j-th derivative of L),
     ``sq_log_total`` and ``sq_cumulants`` the same at 2 beta (from e^2).
+    ``classwise``: the compiled kernel added the classwise sums of a
+    :class:`Columns` (the numpy code leaves them to the consumer's tiles).
     """
 
     beta: float
@@ -175,6 +214,8 @@ class ExpTerms:
     cumulants: np.ndarray
     sq_log_total: np.ndarray | None = None
     sq_cumulants: np.ndarray | None = None
+    classwise: bool = False
+    index: np.ndarray | None = None
 
     @property
     def nll(self) -> np.ndarray:
@@ -182,7 +223,7 @@ class ExpTerms:
 
     def entries(self, rows: np.ndarray, cols: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """e and x at the entries (rows, cols) of the chunk, computed as the tiles computed them."""
-        x = self.z[rows, cols]
+        x = self.z[rows if self.index is None else self.index[rows], cols]
         if self.shift is not None or self.b != 1.0:
             x = x * x.dtype.type(self.b)
         if self.shift is not None:
@@ -200,50 +241,23 @@ class ExpTerms:
 
 
 class _Buffers:
-    """Scratch arrays of one thread: five tile-sized arrays and a chunk's row sums."""
+    """Scratch arrays of one thread: five tile-sized arrays and a chunk's row sums (numpy), or the
+    compiled kernel's per-row outputs (``compiled``: float32 logits, see :mod:`onnxcal.kernels`)."""
 
-    def __init__(self, rows: int, k: int, dtype: np.dtype, powers: int = 8) -> None:
+    def __init__(self, rows: int, k: int, dtype: np.dtype, powers: int = 8, compiled: bool = False) -> None:
+        self.compiled = compiled
         self.tile = max(1, min(rows, TILE_ELEMENTS // max(1, k)))
-        self.x, self.e, self.ex, self.p, self.q = (np.empty((self.tile, k), dtype) for _ in range(5))
         self.r = np.arange(rows)
-        self.sums = np.empty((powers + 1, rows), dtype)
-        self.sq_sums = np.empty((powers + 1, rows), dtype)
+        sums = np.float64 if compiled else dtype
+        self.sums = np.empty((powers + 1, rows), sums)
+        self.sq_sums = np.empty((powers + 1, rows), sums)
+        if compiled:  # ExpTerms.top and .shift are views of these: valid until the thread's next chunk
+            self.top = np.empty(rows, np.int64)
+            self.shift = np.empty(rows, np.float32)
+            self.all_rows = np.ones(rows, bool)
+            return
+        self.x, self.e, self.ex, self.p, self.q = (np.empty((self.tile, k), dtype) for _ in range(5))
         self.sq_picked = np.empty((powers + 1, rows), dtype)  # the same, gathered, for the rows asked for
-
-
-def cumulants_from_moments(mu: np.ndarray) -> np.ndarray:
-    """Cumulants kappa_1..kappa_m from raw moments mu_1..mu_m (rows of an (m, n) array).
-
-    Up to m = 5 from the central moments c_j (kappa_2 = c_2, kappa_3 = c_3,
-    kappa_4 = c_4 - 3 c_2^2, kappa_5 = c_5 - 10 c_3 c_2); beyond, by the
-    recursion kappa_n = mu_n - sum_{j=1}^{n-1} C(n-1, j-1) kappa_j mu_{n-j}
-    (both common practice).
-    """
-    m = len(mu)
-    if m > 5:
-        kappa = np.empty_like(mu)
-        for n in range(1, m + 1):
-            acc = mu[n - 1].copy()
-            for j in range(1, n):
-                acc -= comb(n - 1, j - 1) * kappa[j - 1] * mu[n - j - 1]
-            kappa[n - 1] = acc
-        return kappa
-    kappa = np.empty_like(mu)
-    if m == 0:
-        return kappa
-    m1 = kappa[0] = mu[0]
-    if m >= 2:
-        sq = m1 * m1
-        c2 = kappa[1] = mu[1] - sq
-    if m >= 3:
-        c3 = kappa[2] = mu[2] - m1 * (3.0 * mu[1] - 2.0 * sq)
-    if m >= 4:
-        c4 = mu[3] - m1 * (4.0 * mu[2] - m1 * (6.0 * mu[1] - 3.0 * sq))
-        kappa[3] = c4 - 3.0 * c2 * c2
-    if m >= 5:
-        c5 = mu[4] - m1 * (5.0 * mu[3] - m1 * (10.0 * mu[2] - m1 * (10.0 * mu[1] - 4.0 * sq)))
-        kappa[4] = c5 - 10.0 * c3 * c2
-    return kappa
 
 
 _ONES: dict[tuple[int, np.dtype[Any]], np.ndarray] = {}
@@ -289,26 +303,6 @@ def _power_sums(
     return out
 
 
-def _cumulants(sums: np.ndarray, eps: float, m: int, s: float | np.ndarray, b: float) -> tuple[np.ndarray, np.ndarray]:
-    """Row totals at the exact beta and the cumulants 1..m of z = (x + s) / b (an (m, c) array).
-
-    ``sums`` holds the row sums of w x^j (j = 0..max(m, 1)); the weights at the
-    exact beta are w exp(eps x), to first order w (1 + eps x), so the sum of
-    order j needs that of order j + 1. The highest one is left at b: its
-    correction is about eps x ~ 1e-7 of itself, and the top cumulant only
-    ever enters multiplied by d^m, d a step in beta (at most ~1e-2).
-    """
-    at = sums[: m + 1].copy()
-    if eps:
-        top = min(m, len(sums) - 2)
-        at[: top + 1] += eps * sums[1 : top + 2]
-    kappa = cumulants_from_moments(at[1:] / at[0])
-    if m:
-        kappa[0] += s
-        kappa /= (b ** np.arange(1, m + 1))[:, None]
-    return at[0], kappa
-
-
 def exp_terms(
     z: np.ndarray,
     y: np.ndarray,
@@ -318,6 +312,8 @@ def exp_terms(
     buf: _Buffers,
     sq_rows: np.ndarray | None = None,
     tile_hook: Callable[[Tile], None] | None = None,
+    columns: Columns | None = None,
+    index: np.ndarray | None = None,
 ) -> ExpTerms:
     """The exponentials of one chunk and their row sums (see :class:`ExpTerms`).
 
@@ -327,32 +323,55 @@ def exp_terms(
     boolean mask ``sq_rows`` (all when None; NaN elsewhere).
     The work on whole rows of logits after the row maxima runs tile by tile
     (:data:`TILE_ELEMENTS` values, whose arrays stay in the core's own
-    cache), and ``tile_hook`` sees each tile's exponentials.
+    cache), and ``tile_hook`` sees each tile's exponentials; with
+    ``buf.compiled`` it is one compiled call instead
+    (:func:`onnxcal.kernels.sweep_kernels.chunk_pass`), which does the work
+    of ``columns`` in place of the tile hook, and reads rows ``index`` of ``z``
+    in place when given (compiled only).
     """
     c = len(y)
     r = buf.r[:c]
-    dtype = buf.e.dtype
+    dtype = np.dtype(np.float32) if buf.compiled else buf.e.dtype
     z = np.asarray(z, dtype=dtype)
-    top = z.argmax(axis=1)
-    zmax = z[r, top].astype(np.float64)
-    zy = z[r, y].astype(np.float64)
     b = float(dtype.type(beta))
     eps = beta / b - 1.0
-    unshifted = dtype == np.float32 and c > 0 and b * max(abs(zmax.max()), abs(zmax.min())) <= UNSHIFTED_LIMIT
-    s32 = None if unshifted else (b * zmax).astype(dtype)
-    s: float | np.ndarray = 0.0 if s32 is None else s32.astype(np.float64)
     count = max(moments, 1 if eps else 0)  # the total at the exact beta needs the first power
     extra = 1 if eps else 0
     sq_count = max(sq_moments or 0, extra)
     pick = None if sq_rows is None or not sq_moments else np.flatnonzero(sq_rows)
-    for a in range(0, c, buf.tile):
-        _tile(z, a, min(a + buf.tile, c), b, s32, eps, count, sq_moments, sq_count, pick, buf, tile_hook)
-    total, kappa = _cumulants(buf.sums[: count + 1, :c].astype(np.float64), eps, moments, s, b)
+    found = False
+    s32: np.ndarray | None
+    if buf.compiled:  # one compiled call; it shifts every row by b times its maximum
+        from .kernels.sweep_kernels import run_chunk
+
+        z = np.ascontiguousarray(z)
+        sq_all = -1 if sq_moments is None else (sq_count if pick is None else extra)  # the powers at 2 beta
+        marked = buf.all_rows[:c] if pick is None else np.ascontiguousarray(sq_rows, dtype=bool)
+        top, s32 = buf.top[:c], buf.shift[:c]
+        at = r if index is None else np.ascontiguousarray(index, dtype=np.int64)  # a selection may be strided
+        sums_at = (buf.sums[:, :c], buf.sq_sums[:, :c])
+        found = run_chunk(z, at, b, eps, count, sq_all, sq_count, marked, columns, top, s32, *sums_at)
+        sq_source = buf.sq_sums
+    else:
+        top = z.argmax(axis=1)
+        zmax_all = z[r, top]
+        largest = max(abs(float(zmax_all.max())), abs(float(zmax_all.min()))) if c else 0.0
+        unshifted = dtype == np.float32 and c > 0 and b * largest <= UNSHIFTED_LIMIT
+        s32 = None if unshifted else (b * zmax_all.astype(np.float64)).astype(dtype)
+        for a in range(0, c, buf.tile):
+            _tile(z, a, min(a + buf.tile, c), b, s32, eps, count, sq_moments, sq_count, pick, buf, tile_hook)
+        sq_source = buf.sq_sums if pick is None else buf.sq_picked
+    at = r if index is None else index
+    zmax = z[at, top].astype(np.float64)
+    zy = z[at, y].astype(np.float64)
+    s: float | np.ndarray = 0.0 if s32 is None else s32.astype(np.float64)
+    total, kappa = row_cumulants(buf.sums[: count + 1, :c].astype(np.float64), eps, moments, s, b)
     scale = beta / b
     log_total = np.log(total)
-    if not unshifted:
+    if s32 is not None:
         log_total += scale * s
-    terms = ExpTerms(beta, b, eps, z, s32, total, log_total, top, zmax, zy, kappa.T)
+    terms = ExpTerms(beta, b, eps, z, s32, total, log_total, top, zmax, zy, kappa.T, index=index)
+    terms.classwise = found
     if sq_moments is not None:
         sums = buf.sq_sums[: extra + 1, :c].astype(np.float64)
         sq_total = sums[0] + 2.0 * eps * sums[1] if extra else sums[0]
@@ -360,9 +379,8 @@ def exp_terms(
         terms.sq_cumulants = np.full((c, sq_moments), np.nan)
         if sq_moments:
             rows = slice(None) if pick is None else pick
-            source = buf.sq_sums if pick is None else buf.sq_picked
-            sums = source[: sq_count + 1, :c][:, rows].astype(np.float64)
-            _, sq_kappa = _cumulants(sums, 2.0 * eps, sq_moments, s if s32 is None else cast(np.ndarray, s)[rows], b)
+            sums = sq_source[: sq_count + 1, :c][:, rows].astype(np.float64)
+            _, sq_kappa = row_cumulants(sums, 2.0 * eps, sq_moments, s if s32 is None else cast(np.ndarray, s)[rows], b)
             terms.sq_cumulants[rows] = sq_kappa.T
     return terms
 
@@ -424,7 +442,10 @@ class Selection:
 ALL_ROWS = Selection()
 
 
-def _chunk(logits: np.ndarray, labels: np.ndarray, sel: Selection, step: int, index: int) -> Chunk:
+def _chunk(
+    logits: np.ndarray, labels: np.ndarray, sel: Selection, step: int, index: int, gather: bool = True
+) -> Chunk:
+    """The chunk ``index``; scattered rows are copied out unless ``gather`` is False (then ``Chunk.rows``)."""
     start = index * step
     key: slice | np.ndarray
     if sel.rows is None:
@@ -436,7 +457,21 @@ def _chunk(logits: np.ndarray, labels: np.ndarray, sel: Selection, step: int, in
     pick = slice(start, start + step)
     w = None if sel.weights is None else np.asarray(sel.weights[pick], dtype=np.float64)
     part = None if sel.part is None else sel.part[pick]
+    if not gather and isinstance(key, np.ndarray):
+        return Chunk(index, start, logits, np.asarray(labels[key]), w, part, key)
     return Chunk(index, start, logits[key], np.asarray(labels[key]), w, part)
+
+
+def _kernels_loaded() -> bool:
+    """Import the compiled kernel (numba's import, the kernel's compilation or cache load), in this thread,
+    before any chunk; False, with a warning, if that fails (the numpy code then runs: same results)."""
+    try:
+        with _signals.deferred():  # a signal inside an extension module's import can crash it
+            from .kernels import sweep_kernels  # noqa: F401
+    except Exception as exc:  # an optimisation: never worth failing a fit for
+        warnings.warn(f"the compiled pass is not available ({exc}); using numpy", RuntimeWarning, stacklevel=3)
+        return False
+    return True
 
 
 def run_pass(
@@ -460,22 +495,34 @@ def run_pass(
     """
     n = len(logits) if selection.rows is None else len(selection.rows)
     k = logits.shape[1]
-    step = rows_per_chunk(k)
+    dtype = compute_dtype(logits)
+    compiled = dtype == np.float32 and kernels.worth_it(n * k) and _kernels_loaded()
+    in_place = compiled and logits.dtype == np.float32 and logits.flags.c_contiguous  # the kernel reads rows by index
+    step = rows_per_chunk(k, compiled)
     n_chunks = -(-n // step)
     lanes = [consumers() for _ in range(LANES)]
-    dtype = compute_dtype(logits)
     threads = default_threads() if threads is None else max(1, min(int(threads), LANES))
     if n * k < PARALLEL_ELEMENTS:
         threads = 1
 
+    stop = threading.Event()  # set when the calling thread is interrupted: the workers end after their chunk
+
     def work(worker: int) -> None:
-        buf = _Buffers(min(step, max(n, 1)), k, dtype)
+        buf = _Buffers(min(step, max(n, 1)), k, dtype, compiled=compiled)
         for index in range(n_chunks):
             lane = index % LANES
-            if lane % threads != worker:
+            if lane % threads != worker or stop.is_set():
                 continue
-            chunk = _chunk(logits, labels, selection, step, index)
+            chunk = _chunk(logits, labels, selection, step, index, gather=not in_place)
             mask = None if sq_part is None or chunk.part is None else chunk.part == sq_part
+            if compiled:  # the kernel does the tiles' work, for the consumer that asks for Columns
+                asks = [fn for fn in (getattr(c, "columns", None) for c in lanes[lane]) if fn is not None]
+                assert len(asks) <= 1, "one consumer per pass may ask for column sums"
+                columns = asks[0](chunk) if asks else None
+                terms = exp_terms(chunk.z, chunk.y, beta, moments, sq_moments, buf, mask, None, columns, chunk.rows)
+                for consumer in lanes[lane]:
+                    consumer.add(chunk, terms)
+                continue
             tiles: list[Callable[[Chunk, Tile], None]] = [
                 fn for fn in (getattr(c, "tile", None) for c in lanes[lane]) if fn is not None
             ]
@@ -493,8 +540,12 @@ def run_pass(
             work(0)
         else:
             with ThreadPoolExecutor(threads) as pool:
-                for f in [pool.submit(work, t) for t in range(threads)]:
-                    f.result()
+                try:
+                    for f in [pool.submit(work, t) for t in range(threads)]:
+                        f.result()
+                except BaseException:  # Ctrl-C (or an error): do not wait for the other chunks
+                    stop.set()
+                    raise
     return lanes
 
 

@@ -14,7 +14,7 @@ from typing import Any, cast
 
 import numpy as np
 
-from ..sweep import ALL_ROWS, Chunk, Consumer, ExpTerms, Selection, Tile, run_pass
+from ..sweep import ALL_ROWS, Chunk, Columns, Consumer, ExpTerms, Selection, Tile, run_pass
 from .binning import DEFAULT_BINS, bin_ids
 
 
@@ -101,12 +101,23 @@ class ScoreSums:
             self.weight += sums[:P]
             self.nll -= sums[P : 2 * P]
             self.brier += sums[2 * P :]
+        if terms.classwise:  # the compiled pass added the classwise sums (Columns)
+            return
         p_y = terms.probabilities(np.arange(c), chunk.y)  # as the classwise bins see it
         where = bin_ids(p_y, M) + M * chunk.y
         if part is not None:
             where += (self.k * M) * part
         np.add.at(self.y_sum, where, w)
         self._upper_bins(chunk, terms, w, part)
+
+    def columns(self, chunk: Chunk) -> Columns:
+        """The classwise sums of a chunk, for the compiled pass to add (for :meth:`tile` and part of ``add``)."""
+        c = len(chunk.y)
+        w = np.ones(c) if chunk.w is None else chunk.w
+        part = np.zeros(c, np.intp) if chunk.part is None else chunk.part.astype(np.intp)
+        edges = np.linspace(0.0, 1.0, self.n_bins + 1)[1:-1]  # bin_ids' rule: np.searchsorted on the inner edges
+        column = self.column.reshape(self.parts, self.k)
+        return Columns(w, part, self.parts, self.first, chunk.y, edges, column, self.p_sum, self.upper, self.y_sum)
 
     def tile(self, chunk: Chunk, terms: Tile) -> None:
         """From a tile's exponentials: the column sums of p per part, and which entries may be above 1/M."""
