@@ -386,7 +386,9 @@ class Replicates:
             return settle(d, m, lambda: counts, lambda: draw.held_counts)
 
         threads = default_threads() if self.threads is None else self.threads
-        if exact_eval or not kernels.worth_it(self.options.bootstrap * (len(self.fit_rows) + len(self.eval_rows))):
+        if exact_eval or not kernels.worth_it(
+            self.options.bootstrap * (len(self.fit_rows) + len(self.eval_rows)), kernels.MIN_REPLICATE_ROWS
+        ):
             done = _map_in_order(one, draws, threads)
         else:
             fast = CompiledReplicates(exp)

@@ -63,7 +63,7 @@ def test_compiled_replicates_equal_the_numpy_path(monkeypatch):
     monkeypatch.setenv(kernels.ENV, "0")
     ref_p, ref_m, ref_fb = run.taylor(exp, resample._draws(np.random.default_rng(3), 21, len(fit_rows), len(held)))
     monkeypatch.setenv(kernels.ENV, "1")
-    monkeypatch.setattr(kernels, "MIN_VALUES", 0)
+    monkeypatch.setattr(kernels, "MIN_REPLICATE_ROWS", 0)
     for threads in (1, 2):
         run.threads = threads
         draws = resample._draws(np.random.default_rng(3), 21, len(fit_rows), len(held))
@@ -85,7 +85,7 @@ def test_compiled_intervals_equal_the_numpy_intervals(monkeypatch):
     monkeypatch.setenv(kernels.ENV, "0")
     want = resample.bootstrap(z, y, opts, fit_rows, held, start, refit=fit_scaling, expansion=exp, threads=2)
     monkeypatch.setenv(kernels.ENV, "1")
-    monkeypatch.setattr(kernels, "MIN_VALUES", 0)
+    monkeypatch.setattr(kernels, "MIN_REPLICATE_ROWS", 0)
     got = resample.bootstrap(z, y, opts, fit_rows, held, start, refit=fit_scaling, expansion=exp, threads=2)
     assert got["replicates_by"] == want["replicates_by"] == "taylor"
     np.testing.assert_allclose(got["temperature"], want["temperature"], rtol=1e-12)
@@ -110,7 +110,7 @@ def test_a_count_that_would_wrap_takes_the_numpy_path(monkeypatch):
     run = resample.Replicates(z, y, opts, fit_rows, held, start, fit_scaling, 1)
     monkeypatch.setenv(kernels.ENV, "0")
     want = run.taylor(exp, draws)
-    monkeypatch.setattr(kernels, "MIN_VALUES", 0)
+    monkeypatch.setattr(kernels, "MIN_REPLICATE_ROWS", 0)
     monkeypatch.setenv(kernels.ENV, "1")
     got = run.taylor(exp, draws)
     for g, w in zip(got[1], want[1], strict=True):
@@ -188,7 +188,7 @@ def test_drawn_blocks_give_the_numpy_intervals(monkeypatch, holdout):
     monkeypatch.setenv(kernels.ENV, "0")
     want = resample.bootstrap(z, y, opts, fit_rows, held, start, refit=fit_scaling, expansion=exp, threads=2)
     monkeypatch.setenv(kernels.ENV, "1")
-    monkeypatch.setattr(kernels, "MIN_VALUES", 0)
+    monkeypatch.setattr(kernels, "MIN_REPLICATE_ROWS", 0)
     calls = []
     real = expansion_blocks.draw_counts
 

@@ -20,8 +20,13 @@ import os
 
 ENV = "ONNXCAL_COMPILED"
 
-# Below this many values a pass costs a few tens of milliseconds with numpy: numba's import alone would cost more.
-MIN_VALUES = 1 << 24
+# In a fresh process numba's import and loading a kernel from its cache cost 0.8 to 1.2 s (measured: 0.2-0.48 s
+# import, 0.59-0.81 s cache load, the same for a one-line function); a compiled sweep pass saves about 40 % of a numpy
+# pass of ~1 ns per value, so a fit of three or four passes repays that from about 3e8 values (300 000 rows x 1 000
+# classes). The bootstrap saves about 7 ns per replicate and row (18 ms -> 8 ms per replicate at 1 000 000 rows): it
+# repays the same cost from about 1.3e8 replicate-rows (200 replicates of 670 000 rows).
+MIN_VALUES = 1 << 28
+MIN_REPLICATE_ROWS = 1 << 27
 
 
 def enabled() -> bool:
@@ -29,6 +34,6 @@ def enabled() -> bool:
     return os.environ.get(ENV, "1").strip().lower() not in {"0", "false", "no", "off"}
 
 
-def worth_it(values: int) -> bool:
-    """Whether a job over ``values`` numbers should use the compiled kernels."""
-    return enabled() and values >= MIN_VALUES
+def worth_it(values: int, minimum: int | None = None) -> bool:
+    """Whether a job over ``values`` numbers should use the compiled kernels (``minimum``: default ``MIN_VALUES``)."""
+    return enabled() and values >= (MIN_VALUES if minimum is None else minimum)
