@@ -47,6 +47,7 @@ import numpy as np
 
 from . import _signals, kernels
 from .cumulants import row_cumulants
+from .errors import OnnxcalWarning
 
 CHUNK_ELEMENTS = 1 << 19
 """Logit values per chunk (2 MiB of float32): the per-row work of a chunk (a few hundred numpy
@@ -469,7 +470,7 @@ def _kernels_loaded() -> bool:
         with _signals.deferred():  # a signal inside an extension module's import can crash it
             from .kernels import sweep_kernels  # noqa: F401
     except Exception as exc:  # an optimisation: never worth failing a fit for
-        warnings.warn(f"the compiled pass is not available ({exc}); using numpy", RuntimeWarning, stacklevel=3)
+        warnings.warn(OnnxcalWarning(f"the compiled pass is not available ({exc}); using numpy"), stacklevel=3)
         return False
     return True
 
