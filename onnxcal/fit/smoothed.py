@@ -44,6 +44,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import OnnxcalError
+from ..metrics.core import iter_chunks
 
 # The repeated set (rows x classes copies of K scores) is refused above this many numbers (~800 MB as float32).
 MAX_EXPANDED = 200_000_000
@@ -91,15 +92,18 @@ def all_correct(
     One logit (binary): the logit's sign agrees with the label (0 counts as
     wrong). Multi-label labels: every label's logit sign agrees.
     """
-    r, w = _fitted(len(logits), rows, weights)
-    r = r[w > 0]
-    z = np.asarray(logits[r], dtype=np.float64)
-    lab = np.asarray(labels)[r]
-    if z.shape[1] == 1 or np.ndim(labels) > 1:
-        sign = 2.0 * lab.reshape(len(r), -1).astype(np.float64) - 1.0
-        return bool(np.all(sign * z > 0))
-    top = z[np.arange(len(r)), lab.astype(np.int64)]
-    return bool(np.all((z < top[:, None]).sum(axis=1) == z.shape[1] - 1))
+    for z, lab, w in iter_chunks(logits, labels, rows, weights):  # bounded memory: a capture may be many GB
+        if w is not None:
+            z, lab = z[w > 0], lab[w > 0]
+        if z.shape[1] == 1 or np.ndim(labels) > 1:
+            sign = 2.0 * lab.reshape(len(z), -1).astype(np.float64) - 1.0
+            correct = bool(np.all(sign * z > 0))
+        else:
+            top = z[np.arange(len(z)), lab.astype(np.int64)]
+            correct = bool(np.all((z < top[:, None]).sum(axis=1) == z.shape[1] - 1))
+        if not correct:
+            return False
+    return True
 
 
 def expanded(

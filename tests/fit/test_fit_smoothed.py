@@ -69,6 +69,27 @@ def _separable_draw(rng, n):
             return z, y
 
 
+def test_all_correct_over_many_chunks_with_rows_and_weights(rng):
+    # 300 rows of 1 000 classes span several of iter_chunks' chunks (65 rows each); the definition, row by row
+    z = rng.normal(size=(300, 1000)).astype(np.float32)
+    y = z.argmax(axis=1)
+    assert all_correct(z, y)
+    wrong = 291  # in the last chunk, an odd row
+    y_bad = y.copy()
+    y_bad[wrong] = (y[wrong] + 1) % 1000
+    assert not all_correct(z, y_bad)
+    rows = np.arange(0, 300, 2)
+    assert all_correct(z, y_bad, rows=rows)  # even rows only: the wrong row is not fitted on
+    weights = np.ones(300)
+    weights[wrong] = 0.0
+    assert all_correct(z, y_bad, rows=np.arange(300), weights=weights)  # weight 0: not fitted on
+    weights[wrong] = 2.0
+    assert not all_correct(z, y_bad, rows=np.arange(300), weights=weights)
+    tied = z.copy()
+    tied[5, (y[5] + 3) % 1000] = tied[5, y[5]]  # a tie with the top is not a strict top
+    assert not all_correct(tied, y)
+
+
 def test_separable_rows_smoothed_fit_finite_and_better_on_fresh_data(rng):
     z, y = _separable_draw(rng, 20)
     with warnings.catch_warnings():
