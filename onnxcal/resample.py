@@ -148,9 +148,17 @@ def _draws(
     (as many as the part has, with replacement) and every row of each.
     """
     for _ in range(replicates):
-        fit = _draw(rng, n_fit, fit_samples)
-        held = fit if n_eval is None else _draw(rng, n_eval, eval_samples)
-        yield Draw(fit, n_fit, held, n_fit if n_eval is None else n_eval)
+        yield _one_draw(rng, n_fit, n_eval, fit_samples, eval_samples)
+
+
+def _one_draw(
+    rng: np.random.Generator, n_fit: int, n_eval: int | None, fit_samples: Samples | None = None,
+    eval_samples: Samples | None = None,
+) -> Draw:
+    """One replicate's :class:`Draw` (see :func:`_draws`)."""
+    fit = _draw(rng, n_fit, fit_samples)
+    held = fit if n_eval is None else _draw(rng, n_eval, eval_samples)
+    return Draw(fit, n_fit, held, n_fit if n_eval is None else n_eval)
 
 
 class DirectDraws:
@@ -165,9 +173,7 @@ class DirectDraws:
 
     def redraw(self) -> Draw:
         """The next replicate's draw, as :func:`_draws` makes it."""
-        fit = _draw(self.rng, self.n_fit, None)
-        held = fit if self.n_eval is None else _draw(self.rng, self.n_eval, None)
-        return Draw(fit, self.n_fit, held, self.n_fit if self.n_eval is None else self.n_eval)
+        return _one_draw(self.rng, self.n_fit, self.n_eval)
 
     def told(self, done: int) -> None:
         """Tell progress that ``done`` replicates are drawn (as :func:`_counted`)."""
