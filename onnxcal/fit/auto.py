@@ -186,8 +186,6 @@ def compare(
             notes.append(f"--method auto left out {method}: {e.message}")
     if progress is not None:
         progress("cross-fitting", len(methods), len(methods))
-    if not scored:
-        raise OnnxcalError("--method auto could not fit any method on these scores", "; ".join(notes) or None)
     maps = [s for s in scored if s.method != IDENTITY]
     if not maps:
         raise OnnxcalError("--method auto could not fit any method on these scores", "; ".join(notes) or None)
