@@ -5,19 +5,25 @@ The rule (issue 15, made robust on small sets):
 1. *Cross-fitted NLL.* The rows are split into :data:`FOLDS` stratified
    folds (whole samples when a sample gives several rows); every method is
    fitted on all folds but one and scores the rows of that one, so every
-   row is held out exactly once. A method's cross-fitted NLL is the mean
-   of these per-row out-of-fold NLLs. One small held-out part (a dozen
+   row is held out exactly once. On small sets (:data:`REPEAT_VALUES`)
+   this is done :data:`REPEATS` times with different folds and each row's
+   out-of-fold NLL averaged over the repeats (repeated cross-validation):
+   which rows share a fold otherwise moves the scores of a set of a few
+   dozen rows by more than the methods differ. A method's cross-fitted
+   NLL is the mean of these per-row out-of-fold NLLs. One small held-out part (a dozen
    rows of a small set) makes a noisy score that rewards a lucky
    overfitted map; cross-fitting scores every row, with the same rows for
    every method.
 2. *Best.* The method with the lowest cross-fitted NLL.
 3. *Paired comparison.* For every other method, the per-row differences
-   of its out-of-fold NLL and the best one's; their mean's 95 % bootstrap
-   percentile interval (the same resamples of rows for every method; with
-   ``--bootstrap 0``, mean +- 1.96 standard errors). The rows are the same
-   for both methods, so the interval of the difference is much narrower
-   than the interval of the best one's NLL alone (which holds the rows'
-   own spread, common to both).
+   of its out-of-fold NLL and the best one's; their mean's 95 % BCa
+   bootstrap interval (:mod:`onnxcal.fit.paired`; the same resamples of
+   rows for every method; with ``--bootstrap 0``, mean +- 1.96 standard
+   errors). The rows are the same for both methods, so the interval of the
+   difference is much narrower than the interval of the best one's NLL
+   alone (which holds the rows' own spread, common to both); BCa, not the
+   plain percentile interval, because a few confidently wrong rows make
+   these differences heavily skewed.
 4. *Chosen.* The model as it is (:data:`IDENTITY`, no parameters) when
    every map's paired per-row NLL difference to its own probabilities has
    an interval above 0: no map improved on them. Otherwise the method with
@@ -33,6 +39,10 @@ The rule (issue 15, made robust on small sets):
 When every calibration row is classified correctly the maximum-likelihood
 fits do not exist (:mod:`onnxcal.fit.smoothed`); every candidate is then
 fitted to Platt's smoothed targets, and ``Choice.smoothed_targets`` says so.
+Each single fit, on a fold or on all rows, is also fitted to them when its
+own estimate does not exist (:func:`onnxcal.fit.auto.fit_with_estimate`:
+a fold without an error, or a map that classifies every row it was fitted
+on correctly), so every candidate is scored as it would be baked in.
 
 Pure functions over plain numbers: the fitting is :mod:`onnxcal.fit.auto`'s,
 which hands :func:`choose` one :class:`Candidate` per method and stores the
@@ -52,6 +62,11 @@ from .scaling import AFFINE_METHODS, METHODS, METHODS_FOR, Scaling
 TABLE_FIELDS = ("nll", "ece", "brier", "accuracy")
 # Folds of the cross-fitting (fewer when a set has fewer samples).
 FOLDS = 5
+# Repeats of the cross-fitting, each with its own folds, on sets of at most REPEAT_VALUES scores (rows x classes):
+# on a small set which rows share a fold moves a method's score by more than the methods differ; above it one
+# repeat is enough, and every repeat keeps its out-of-fold scores (3 x 16 MB at the limit).
+REPEATS = 3
+REPEAT_VALUES = 2_000_000
 # A paired interval whose lower end is at most this is taken to reach 0 (rounding of equal fits).
 _TIE = 1e-12
 # The candidate "the model as it is" (no map: temperature scaling at T = 1 is what gets baked in).
@@ -77,6 +92,10 @@ class Candidate:
     difference : list of float or None
         The 95 % interval of the mean per-row NLL difference to the best
         method (this one's minus the best one's); None for the best.
+    smoothed_folds : int
+        Folds whose fit was to Platt's smoothed targets because its
+        maximum-likelihood estimate does not exist there (the fold's rows,
+        or the map fitted to them, classify every row correctly).
     """
 
     method: str
@@ -85,6 +104,7 @@ class Candidate:
     intervals: dict[str, list[float] | None] = field(default_factory=dict)
     converged: bool = True
     difference: list[float] | None = None
+    smoothed_folds: int = 0
 
     @property
     def nll(self) -> float:
@@ -112,12 +132,17 @@ class Choice:
         The comparison table, in the order the methods were tried.
     folds : int
         Folds of the cross-fitting.
+    repeats : int
+        Repeats of the cross-fitting, each with its own folds (a
+        candidate's per-row NLL is its mean over them).
     replicates : int
         Bootstrap resamples behind the intervals (0: the paired intervals
         are mean +- 1.96 standard errors, the others absent).
     smoothed_targets : bool
         Every candidate was fitted to Platt's smoothed targets (the
         calibration rows are all classified correctly, or the user asked).
+        The chosen map alone may be too (its fit on all rows classifies
+        every row correctly): the reason says so, and FIT.json's options.
     """
 
     chosen: str
@@ -128,6 +153,7 @@ class Choice:
     folds: int = FOLDS
     replicates: int = 0
     smoothed_targets: bool = False
+    repeats: int = 1
 
     @property
     def method(self) -> str:
@@ -142,6 +168,7 @@ class Choice:
             "basis": self.basis,
             "rule": RULE,
             "folds": self.folds,
+            "repeats": self.repeats,
             "replicates": self.replicates,
             "smoothed_targets": self.smoothed_targets,
             "candidates": [c.to_dict() for c in self.candidates],
@@ -149,10 +176,13 @@ class Choice:
 
 
 RULE = (
-    "every method cross-fitted (each row held out once; fitted to Platt's smoothed targets when every row is "
-    "classified correctly); the map with the lowest mean out-of-fold NLL is the best; among it and the maps whose "
-    "paired per-row NLL difference to it has a 95% interval reaching 0, the one with the fewest parameters; the "
-    "model is left as it is when every map's paired difference to its own probabilities has a 95% interval above 0"
+    "every method cross-fitted (each row held out once, per repeat on small sets; each fit to Platt's smoothed "
+    "targets when its maximum-likelihood estimate does not exist: every row it is fitted on classified correctly, by "
+    "the model or by the fitted map, or a lookup step of probability 0 or 1); the map with the lowest mean "
+    "out-of-fold NLL is the best; among it and the maps whose paired per-row NLL difference to it has a 95% BCa "
+    "bootstrap interval reaching 0, the one with the fewest "
+    "parameters; the model is left as it is when every map's paired difference to its own probabilities has a 95% "
+    "interval above 0"
 )
 
 
@@ -269,6 +299,7 @@ def choice_from_dict(data: Mapping[str, Any]) -> Choice:
             intervals={k: (None if v is None else [float(v[0]), float(v[1])]) for k, v in c["intervals"].items()},
             converged=bool(c["converged"]),
             difference=None if c.get("difference") is None else [float(v) for v in c["difference"][:2]],
+            smoothed_folds=int(c.get("smoothed_folds", 0)),
         )
         for c in data["candidates"]
     )
@@ -277,4 +308,4 @@ def choice_from_dict(data: Mapping[str, Any]) -> Choice:
             raise OnnxcalError(f"'choice' names an unknown method {name!r}", f"use one of: {', '.join(METHODS)}")
     return Choice(str(data["chosen"]), str(data["best"]), str(data["reason"]), str(data["basis"]), candidates,
                   int(data.get("folds", FOLDS)), int(data.get("replicates", 0)),
-                  bool(data.get("smoothed_targets", False)))
+                  bool(data.get("smoothed_targets", False)), int(data.get("repeats", 1)))

@@ -17,6 +17,8 @@ from onnxcal import graph, resample
 from onnxcal.choose import (
     IDENTITY,
     METHODS,
+    REPEAT_VALUES,
+    REPEATS,
     Candidate,
     candidate_methods,
     choice_from_dict,
@@ -25,7 +27,7 @@ from onnxcal.choose import (
 )
 from onnxcal.errors import OnnxcalError
 from onnxcal.fit import FitOptions, fit_scaling, load_fit, save_fit, summarize
-from onnxcal.fit.auto import _as_it_is, compare, fold_ids, out_of_fold, row_nll
+from onnxcal.fit.auto import _as_it_is, compare, fold_ids, out_of_fold, repeats_for, row_nll
 from onnxcal.metrics import evaluate
 from onnxcal.scaling import Scaling
 
@@ -135,11 +137,38 @@ def test_out_of_fold_rows_are_scored_by_a_fit_that_did_not_see_them():
     z = rng.normal(size=(60, 3)).astype(np.float32) * 3
     y = rng.integers(0, 3, 60)
     fold = fold_ids(y, 3, seed=1)
-    oof, size, converged = out_of_fold(z, y, FitOptions(method="temperature"), fold, fit_scaling)
+    oof, size, converged, _ = out_of_fold(z, y, FitOptions(method="temperature"), fold, fit_scaling)
     assert size == 1 and converged
     for f in range(3):  # refit by hand on the other folds: the same calibrated logits
         t = fit_scaling(z, y, FitOptions(method="temperature"), rows=np.flatnonzero(fold != f)).temperature
         np.testing.assert_allclose(oof[fold == f], z[fold == f] / t, rtol=1e-6)
+
+
+def test_small_sets_are_cross_fitted_several_times_and_each_rows_nll_averaged():
+    # The table's NLL of temperature scaling: each row's NLL (scipy.special.log_softmax of the out-of-fold
+    # logits) averaged over the repeats, whose folds come from --seed, --seed + 1, ...; then over the rows.
+    rng = np.random.default_rng(3)
+    z = (rng.normal(size=(90, 3)) * 3).astype(np.float32)
+    y = (z / 2 + rng.gumbel(size=(90, 3))).argmax(axis=1)
+    options = FitOptions(method="auto", bootstrap=0, seed=7)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        choice, _ = compare(z, y, options, "multiclass", fit_scaling)
+        per_repeat = []
+        for r in range(REPEATS):
+            oof, *_ = out_of_fold(z, y, FitOptions(method="temperature"), fold_ids(y, 5, 7 + r), fit_scaling)
+            per_repeat.append(-scipy.special.log_softmax(oof, axis=1)[np.arange(90), y])
+    assert choice.repeats == REPEATS and choice.to_dict()["repeats"] == REPEATS
+    row = {c.method: c for c in choice.candidates}["temperature"]
+    assert row.nll == pytest.approx(np.mean(per_repeat), rel=1e-9)
+    # the repeats differ (else averaging would be pointless), and one alone is not the table's figure
+    assert abs(per_repeat[0].mean() - np.mean(per_repeat)) > 1e-6
+    assert choice_from_dict(json.loads(json.dumps(choice.to_dict()))).repeats == REPEATS
+
+
+def test_large_sets_are_cross_fitted_once():
+    assert repeats_for(np.broadcast_to(np.float32(0), (REPEAT_VALUES // 4, 4))) == REPEATS
+    assert repeats_for(np.broadcast_to(np.float32(0), (REPEAT_VALUES // 4 + 1, 4))) == 1
 
 
 @pytest.mark.parametrize("kind", ["multiclass", "binary", "multilabel"])

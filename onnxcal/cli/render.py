@@ -180,14 +180,18 @@ def render_choice(choice: Choice) -> None:
     columns += [Column(_CHOICE_LABELS[f], right=True) for f in TABLE_FIELDS]
     columns += [Column("NLL - best", right=True)]
     targets = "; every map fitted to Platt's smoothed targets" if choice.smoothed_targets else ""
-    table = Grid(f"--method auto: every applicable method, {choice.basis} on {choice.folds} folds (every row held "
-                 "out once; in brackets: 95% interval; NLL - best: paired per-row difference to the map with the "
+    times = "" if choice.repeats == 1 else f", {choice.repeats} times"
+    table = Grid(f"--method auto: every applicable method, {choice.basis} on {choice.folds} folds{times} (every row "
+                 "held out once per repeat; in brackets: 95% interval; NLL - best: paired per-row difference to the "
+                 "map with the "
                  f"lowest NLL; {IDENTITY}: the model as it is{targets})",
                  columns, boxed=False)
     for c in choice.candidates:
         marks = ["chosen"] if c.method == choice.chosen else []
         marks += ["lowest NLL"] if c.method == choice.best else []
         marks += ["not converged"] if not c.converged else []
+        marks += [f"smoothed targets on {c.smoothed_folds} of {choice.folds * choice.repeats} fold fits"] if (
+            c.smoothed_folds and not choice.smoothed_targets) else []
         name = c.method + (f" ({', '.join(marks)})" if marks else "")
         figures = (_with_interval(c.metrics[f], c.intervals.get(f)) for f in TABLE_FIELDS)
         diff = "-" if c.difference is None else f"{_short(c.difference[0])} to {_short(c.difference[1])}"

@@ -25,19 +25,29 @@ from typing import Any
 
 import numpy as np
 
-from ..choose import FOLDS, IDENTITY, TABLE_FIELDS, Candidate, Choice, candidate_methods, choose, n_parameters
+from ..choose import (
+    FOLDS,
+    IDENTITY,
+    REPEAT_VALUES,
+    REPEATS,
+    TABLE_FIELDS,
+    Candidate,
+    Choice,
+    candidate_methods,
+    choose,
+    n_parameters,
+)
 from ..errors import OnnxcalError
 from ..holdout import _sample_strata, _strata, samples_of
 from ..metrics import evaluate
 from ..metrics.core import log_softmax
 from ..scaling import Scaling
-from . import smoothed
+from . import paired, smoothed
 
 # summarize_one(logits, labels, capture_meta, options, threads) -> FitSummary
 SummarizeOne = Callable[[np.ndarray, np.ndarray, dict[str, Any], Any, Any], Any]
 # refit(logits, labels, options, rows=...) -> FitResult (onnxcal.fit.fit_scaling)
 Refit = Callable[..., Any]
-_Z = 1.959963984540054  # the 97.5 % point of the standard normal (scipy.stats.norm.ppf(0.975))
 
 
 def fold_ids(labels: np.ndarray, folds: int, seed: int, groups: np.ndarray | None = None) -> np.ndarray:
@@ -77,18 +87,56 @@ def fold_ids(labels: np.ndarray, folds: int, seed: int, groups: np.ndarray | Non
 
 def out_of_fold(
     logits: np.ndarray, labels: np.ndarray, options: Any, fold: np.ndarray, refit: Refit
-) -> tuple[np.ndarray, int, bool]:
-    """Calibrated logits of every row by the fit on the other folds; the largest parameter count; all converged."""
+) -> tuple[np.ndarray, int, bool, int]:
+    """Calibrated logits of every row by the fit on the other folds (:func:`fit_with_estimate`); the largest
+    parameter count; all converged; the folds fitted to smoothed targets."""
     out = np.empty(logits.shape, dtype=np.float64)
-    sizes, converged = [], True
+    sizes, converged, smoothed_folds = [], True, 0
     for f in np.unique(fold):
         rows = np.flatnonzero(fold != f)
-        result = refit(logits, labels, options, rows=rows)
+        result, smooth = fit_with_estimate(refit, logits, labels, options, rows)
         held = np.flatnonzero(fold == f)
         out[held] = result.scaling.apply(np.asarray(logits[held]))
         sizes.append(n_parameters(result.scaling, logits.shape[1]))
         converged = converged and bool(result.converged)
-    return out, max(sizes), converged
+        smoothed_folds += smooth
+    return out, max(sizes), converged, smoothed_folds
+
+
+# Lookups (and their table of probabilities): a bin or step of one class only holds probability 0 or 1 exactly.
+LOOKUP_TABLES = {"isotonic": "y", "histogram": "values"}
+
+
+def fit_with_estimate(
+    refit: Refit, logits: np.ndarray, labels: np.ndarray, options: Any, rows: np.ndarray | None = None
+) -> tuple[Any, bool]:
+    """A fit, to smoothed targets when the maximum-likelihood estimate does not exist on these rows; and which.
+
+    It does not exist when every fitted row is classified correctly by the
+    model, or, for the ``smoothed.SEPARATING`` maps, by the fitted map itself
+    (``FitResult.separable``, set by ``fit_scaling``: the rows are separable
+    by the map, e.g. vector scaling on a few dozen rows of three classes).
+    The ML fit then stops at a bound, or wherever its solver gives up, and is
+    overconfident on the first error new data brings. A lookup
+    (:data:`LOOKUP_TABLES`) whose table holds probability 0 or 1 (a bin or
+    step of one class only) is refitted too: its smoothed bins lie strictly
+    inside (0, 1). This holds for the fit on all rows as for each fold's
+    fit (a fold may have no error when the whole set has one), so ``auto``
+    scores every candidate as it would bake it in.
+    """
+    if options.smoothed_targets or smoothed.without_estimate(logits, labels, rows):
+        return refit(logits, labels, replace(options, smoothed_targets=True), rows=rows), True
+    result = refit(logits, labels, options, rows=rows)
+    if not smoothed.can_expand(logits, labels, rows):
+        return result, False
+    table = LOOKUP_TABLES.get(options.method)
+    if result.separable or (table is not None and _certain(result.scaling.parameters[table])):
+        return refit(logits, labels, replace(options, smoothed_targets=True), rows=rows), True
+    return result, False
+
+
+def _certain(tables: list[list[float]]) -> bool:
+    return any(v <= 0.0 or v >= 1.0 for table in tables for v in table)
 
 
 def row_nll(calibrated: np.ndarray, labels: np.ndarray) -> np.ndarray:
@@ -112,51 +160,49 @@ def _resamples(n: int, replicates: int, seed: int, groups: np.ndarray | None) ->
         yield np.bincount(drawn, minlength=n).astype(np.float64)
 
 
-def _percentile(values: Sequence[float]) -> list[float] | None:
-    v = np.asarray(values, dtype=np.float64)
-    if len(v) == 0 or not np.all(np.isfinite(v)):
-        return None
-    lo, hi = np.percentile(v, [2.5, 97.5])
-    return [float(lo), float(hi)]
-
-
-def _normal_difference(d: np.ndarray, groups: np.ndarray | None) -> list[float]:
-    """mean +- 1.96 standard errors of the mean per-row difference (sample sums with ``groups``)."""
-    per = d if groups is None else np.add.reduceat(d, samples_of(groups).starts)
-    if len(per) < 2:
-        return [float("-inf"), float("inf")]
-    mean = float(d.sum() / len(d))
-    se = float(np.sqrt(len(per)) * np.std(per, ddof=1) / len(d))
-    return [mean - _Z * se, mean + _Z * se]
-
-
 class _Scored:
     """One candidate's out-of-fold figures, per-row NLL and per-resample NLL means."""
 
     def __init__(self, method: str, size: int, converged: bool, metrics: dict[str, float],
-                 intervals: dict[str, list[float] | None], losses: np.ndarray, draws: np.ndarray) -> None:
+                 intervals: dict[str, list[float] | None], losses: np.ndarray, draws: np.ndarray,
+                 smoothed_folds: int) -> None:
         self.method, self.size, self.converged = method, size, converged
         self.metrics, self.intervals, self.losses, self.draws = metrics, intervals, losses, draws
+        self.smoothed_folds = smoothed_folds
 
 
-def _score(method: str, logits: np.ndarray, labels: np.ndarray, options: Any, fold: np.ndarray, refit: Refit,
-           groups: np.ndarray | None, threads: int | None) -> _Scored:
-    if method == IDENTITY:  # the model as it is: nothing fitted, every row scored by its own probabilities
-        oof, size, converged = Scaling.of_temperature(1.0).apply(np.asarray(logits, dtype=np.float64)), 0, True
-    else:
-        oof, size, converged = out_of_fold(logits, labels, replace(options, method=method), fold, refit)
-    whole = evaluate(oof, labels, 1.0, options.n_bins, threads=threads).to_dict()
-    losses = row_nll(oof, labels)
+def _score(method: str, logits: np.ndarray, labels: np.ndarray, options: Any, folds: Sequence[np.ndarray],
+           refit: Refit, groups: np.ndarray | None, threads: int | None) -> _Scored:
+    """One candidate over every repeat of the cross-fitting: its figures pooled over the repeats (each row once per
+    repeat), its per-row NLL averaged over them."""
+    smoothed_folds, size, converged, oofs = 0, 0, True, []
+    for fold in folds:
+        if method == IDENTITY:  # the model as it is: nothing fitted, every row scored by its own probabilities
+            oofs.append(Scaling.of_temperature(1.0).apply(np.asarray(logits, dtype=np.float64)))
+            continue
+        oof, most, ok, smooth = out_of_fold(logits, labels, replace(options, method=method), fold, refit)
+        oofs.append(oof)
+        size, converged, smoothed_folds = max(size, most), converged and ok, smoothed_folds + smooth
+    oof = np.concatenate(oofs)
+    pooled = np.concatenate([np.asarray(labels)] * len(folds))
+    whole = evaluate(oof, pooled, 1.0, options.n_bins, threads=threads).to_dict()
+    losses = row_nll(oof, pooled).reshape(len(folds), len(labels)).mean(axis=0)
     per: dict[str, list[float]] = {f: [] for f in TABLE_FIELDS}
     draws = []
     for counts in _resamples(len(losses), options.bootstrap, options.seed, groups):
         draws.append(float(counts @ losses / counts.sum()))
-        m = evaluate(oof, labels, 1.0, options.n_bins, weights=counts, threads=threads).to_dict()
+        m = evaluate(oof, pooled, 1.0, options.n_bins, weights=np.tile(counts, len(folds)), threads=threads).to_dict()
         for f in TABLE_FIELDS:
             per[f].append(float(m[f]) if m[f] is not None else float("nan"))
-    intervals = {f: _percentile(per[f]) if options.bootstrap else None for f in TABLE_FIELDS}
+    intervals = {f: paired.percentile(np.asarray(per[f])) if options.bootstrap else None for f in TABLE_FIELDS}
     metrics = {f: float(whole[f]) for f in TABLE_FIELDS}
-    return _Scored(method, size, converged, metrics, intervals, losses, np.asarray(draws))
+    return _Scored(method, size, converged, metrics, intervals, losses, np.asarray(draws), smoothed_folds)
+
+
+def repeats_for(logits: np.ndarray) -> int:
+    """Repeats of the cross-fitting: :data:`~onnxcal.choose.REPEATS` up to
+    :data:`~onnxcal.choose.REPEAT_VALUES` scores, then one."""
+    return REPEATS if logits.shape[0] * logits.shape[1] <= REPEAT_VALUES else 1
 
 
 def compare(
@@ -168,10 +214,12 @@ def compare(
 
     The candidates are the model as it is (:data:`~onnxcal.choose.IDENTITY`)
     and every applicable method, fitted to Platt's smoothed targets when
-    every row is classified correctly (or ``options.smoothed_targets``).
+    every row is classified correctly (or ``options.smoothed_targets``),
+    each fold's fit also when its own estimate does not exist
+    (:func:`fit_with_estimate`).
     ``progress("cross-fitting", done, total)`` counts the methods compared.
     """
-    fold = fold_ids(labels, FOLDS, options.seed, groups)
+    folds = [fold_ids(labels, FOLDS, options.seed + r, groups) for r in range(repeats_for(logits))]
     scored, notes = [], []
     asked = bool(options.smoothed_targets)
     smooth = smoothed_fits(logits, labels, options, kind)
@@ -181,7 +229,7 @@ def compare(
         if progress is not None:
             progress("cross-fitting", i, len(methods))
         try:
-            scored.append(_score(method, logits, labels, options, fold, refit, groups, threads))
+            scored.append(_score(method, logits, labels, options, folds, refit, groups, threads))
         except OnnxcalError as e:  # e.g. a map that cannot be fitted on a fold: left out, said so
             notes.append(f"--method auto left out {method}: {e.message}")
     if progress is not None:
@@ -193,11 +241,12 @@ def compare(
     candidates = []
     for s in scored:
         diff = None if s is best else _difference(s, best, options, groups)
-        candidates.append(Candidate(s.method, s.size, s.metrics, s.intervals, s.converged, diff))
-    n_folds = int(len(np.unique(fold)))
+        candidates.append(Candidate(s.method, s.size, s.metrics, s.intervals, s.converged, diff, s.smoothed_folds))
+    n_folds = int(len(np.unique(folds[0])))
     model = next((s for s in scored if s.method == IDENTITY), None)
     keep = model is not None and all(_above_zero(_difference(m, model, options, groups)) for m in maps)
-    choice = choose(candidates, "cross-fitted", n_folds, int(options.bootstrap), smooth, keep)
+    choice = replace(choose(candidates, "cross-fitted", n_folds, int(options.bootstrap), smooth, keep),
+                     repeats=len(folds))
     if smooth and not asked:
         choice = replace(choice, reason=choice.reason + " (every row is classified correctly, so no "
                          "maximum-likelihood fit exists)")
@@ -205,11 +254,11 @@ def compare(
 
 
 def _difference(s: _Scored, ref: _Scored, options: Any, groups: np.ndarray | None) -> list[float] | None:
-    """The 95 % interval of the mean per-row NLL of ``s`` minus ``ref`` (bootstrap, or normal approximation);
+    """The 95 % interval of the mean per-row NLL of ``s`` minus ``ref`` (BCa bootstrap, or normal approximation);
     None when a resample gave a non-finite figure."""
     if options.bootstrap:
-        return _percentile(s.draws - ref.draws)
-    return _normal_difference(s.losses - ref.losses, groups)
+        return paired.bca(s.losses - ref.losses, s.draws - ref.draws, groups)
+    return paired.normal(s.losses - ref.losses, groups)
 
 
 def _above_zero(interval: list[float] | None) -> bool:
@@ -224,12 +273,7 @@ def smoothed_fits(logits: np.ndarray, labels: np.ndarray, options: Any, kind: st
         if options.smoothed_targets:
             smoothed.expanded(logits[:1], labels[:1])  # raises: no smoothed targets for multi-label labels
         return False
-    if options.smoothed_targets:
-        return True
-    k = max(logits.shape[1], 2)
-    if len(logits) * k * logits.shape[1] > smoothed.MAX_EXPANDED:  # too large to repeat: the fits warn instead
-        return False
-    return smoothed.all_correct(logits, labels)
+    return bool(options.smoothed_targets) or smoothed.without_estimate(logits, labels)
 
 
 def fit_all(
@@ -259,8 +303,16 @@ def fit_all(
                                          threads))
     else:
         chosen = summarize_one(logits, labels, capture_meta, replace(options, method=choice.chosen), threads)
+        if not options.smoothed_targets and chosen.result.separable and smoothed.can_expand(logits, labels):
+            # as fit_with_estimate does for each fold: the map fitted on all rows classifies every one correctly
+            options = replace(options, smoothed_targets=True)
+            chosen = summarize_one(logits, labels, capture_meta, replace(options, method=choice.chosen), threads)
+            choice = replace(choice, reason=f"{choice.reason}; {choice.chosen} fitted on all rows classifies every "
+                             "one correctly, so its maximum-likelihood fit does not exist: it is fitted to Platt's "
+                             "smoothed targets")
+    times = "" if choice.repeats == 1 else f" {choice.repeats} times"
     note = (f"--method auto compared {len(choice.candidates)} candidates, each cross-fitted on {choice.folds} "
-            f"folds: {choice.reason}")
+            f"folds{times}: {choice.reason}")
     return replace(chosen, choice=choice, options=options, notes=(*chosen.notes, *left_out, note)), choice
 
 

@@ -83,6 +83,11 @@ class FitResult:
         True when a parameter lies on (or beyond) its bound.
     warnings : tuple of str
         Human-readable notes on the fit (bound hit and why, T far from 1, ...).
+    separable : bool
+        True when the map, fitted by maximum likelihood, classifies every
+        row it was fitted on correctly (the maps that can move the decision:
+        ``onnxcal.fit.smoothed.SEPARATING``): its maximum-likelihood
+        estimate does not exist. Not stored in FIT.json (its warning is).
     """
 
     scaling: Scaling
@@ -90,6 +95,7 @@ class FitResult:
     converged: bool
     on_bound: bool
     warnings: tuple[str, ...] = ()
+    separable: bool = False
 
     @property
     def temperature(self) -> float | None:

@@ -45,6 +45,7 @@ import numpy as np
 
 from ..errors import OnnxcalError
 from ..metrics.core import iter_chunks
+from ..scaling import Scaling
 
 # The repeated set (rows x classes copies of K scores) is refused above this many numbers (~800 MB as float32).
 MAX_EXPANDED = 200_000_000
@@ -95,15 +96,61 @@ def all_correct(
     for z, lab, w in iter_chunks(logits, labels, rows, weights):  # bounded memory: a capture may be many GB
         if w is not None:
             z, lab = z[w > 0], lab[w > 0]
-        if z.shape[1] == 1 or np.ndim(labels) > 1:
-            sign = 2.0 * lab.reshape(len(z), -1).astype(np.float64) - 1.0
-            correct = bool(np.all(sign * z > 0))
-        else:
-            top = z[np.arange(len(z)), lab.astype(np.int64)]
-            correct = bool(np.all((z < top[:, None]).sum(axis=1) == z.shape[1] - 1))
-        if not correct:
+        if not _correct(z, lab, np.ndim(labels) > 1):
             return False
     return True
+
+
+def _correct(z: np.ndarray, lab: np.ndarray, multilabel: bool) -> bool:
+    if z.shape[1] == 1 or multilabel:
+        sign = 2.0 * lab.reshape(len(z), -1).astype(np.float64) - 1.0
+        return bool(np.all(sign * z > 0))
+    top = z[np.arange(len(z)), lab.astype(np.int64)]
+    return bool(np.all((z < top[:, None]).sum(axis=1) == z.shape[1] - 1))
+
+
+# Maps that can move the model's decision and hold every positive multiple of their own output logits: when the
+# fitted map classifies every fitted row correctly, scaling its outputs up raises the likelihood without end.
+SEPARATING = ("vector", "platt", "matrix", "dirichlet", "beta")
+# Rows read first by separates(): a set with errors usually shows one among them.
+_FIRST_ROWS = 1024
+
+
+def separates(
+    scaling: Scaling, logits: np.ndarray, labels: np.ndarray, rows: np.ndarray | None = None,
+    weights: np.ndarray | None = None,
+) -> bool:
+    """True when the fitted map classifies every row fitted on (weight > 0) correctly, as :func:`all_correct`.
+
+    The first :data:`_FIRST_ROWS` rows are read first, then the rest chunk
+    by chunk, stopping at the first error: a set with errors costs about
+    one small read.
+    """
+    r = np.arange(len(logits)) if rows is None else np.asarray(rows, dtype=np.int64)
+    if weights is not None:
+        r = r[np.asarray(weights) > 0]
+    for part in (r[:_FIRST_ROWS], r[_FIRST_ROWS:]):
+        for z, lab, _ in iter_chunks(logits, labels, part):
+            if not _correct(scaling.apply(z), lab, np.ndim(labels) > 1):
+                return False
+    return True
+
+
+def without_estimate(logits: np.ndarray, labels: np.ndarray, rows: np.ndarray | None = None) -> bool:
+    """True when a maximum-likelihood fit on these rows does not exist and smoothed targets can replace it.
+
+    Every row is classified correctly (:func:`all_correct`), the labels are
+    one class per row (no smoothed targets for multi-label labels), and the
+    repeated set stays within :data:`MAX_EXPANDED` (above it the fits warn
+    instead).
+    """
+    return can_expand(logits, labels, rows) and all_correct(logits, labels, rows)
+
+
+def can_expand(logits: np.ndarray, labels: np.ndarray, rows: np.ndarray | None = None) -> bool:
+    """Whether smoothed targets apply: one class per row, and a repeated set within :data:`MAX_EXPANDED`."""
+    n = len(logits) if rows is None else len(rows)
+    return np.ndim(labels) == 1 and n * max(logits.shape[1], 2) * logits.shape[1] <= MAX_EXPANDED
 
 
 def expanded(
@@ -135,6 +182,16 @@ def expanded(
     t = smoothed_targets(y, k, r, w) * w[:, None]
     z = np.repeat(np.asarray(logits[r]), k, axis=0)
     return np.ascontiguousarray(z), np.tile(np.arange(k, dtype=np.int64), len(r)), t.ravel()
+
+
+def separated_warning(method: str) -> str:
+    """The warning for a map that, fitted by maximum likelihood, classifies every calibration row correctly."""
+    return (
+        f"{method} scaling, fitted, classifies every calibration row correctly, so its maximum-likelihood fit does "
+        "not exist: its parameters grew until the solver stopped, and the map will be overconfident on the first "
+        "error new data brings; calibrate on more (or harder) rows, use a map that keeps the model's decisions "
+        "(temperature), or fit with --smoothed-targets"
+    )
 
 
 def no_estimate_warning(what: str) -> str:

@@ -112,10 +112,14 @@ def _said_if_no_estimate(
     result: FitResult, logits: np.ndarray, labels: np.ndarray, rows: np.ndarray | None = None,
     weights: np.ndarray | None = None,
 ) -> FitResult:
-    """A fit on its bound over rows all classified correctly: its bound note replaced by the no-estimate warning."""
+    """A fit on its bound over rows all classified correctly: its bound note replaced by the no-estimate warning.
+    A map of ``smoothed.SEPARATING`` that classifies all of them correctly: ``separable``, and its warning."""
     if result.on_bound and smoothed.all_correct(logits, labels, rows, weights):
         rest = tuple(w for w in result.warnings if " bound" not in w)  # said again, with the reason and the remedies
         return replace(result, warnings=(smoothed.no_estimate_warning(_bound_what(result)), *rest))
+    if result.method in smoothed.SEPARATING and smoothed.separates(result.scaling, logits, labels, rows, weights):
+        rest = tuple(w for w in result.warnings if " bound" not in w)
+        return replace(result, separable=True, warnings=(smoothed.separated_warning(result.method), *rest))
     return result
 
 

@@ -196,7 +196,10 @@ def choice_rows(choice: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
     rows = []
     for cand in choice["candidates"]:
         marks = (("chosen", cand["method"] == choice["chosen"]), ("lowest NLL", cand["method"] == choice["best"]),
-                 ("did not converge", not cand["converged"]))
+                 ("did not converge", not cand["converged"]),
+                 (f"smoothed targets on {cand.get('smoothed_folds', 0)} of "
+                  f"{choice.get('folds', 5) * choice.get('repeats', 1)} fold fits",
+                  bool(cand.get("smoothed_folds")) and not choice.get("smoothed_targets")))
         figures = [
             f"{_num(cand['metrics'][f])} ({_interval(cand['intervals'][f])})" if cand["intervals"].get(f)
             else _num(cand["metrics"][f])
@@ -214,14 +217,17 @@ def _choice_html(choice: dict[str, Any] | None) -> list[str]:
         return []
     head, rows = choice_rows(choice)
     folds = choice.get("folds", 5)
+    repeats = int(choice.get("repeats", 1))
+    again = "" if repeats == 1 else (f", {repeats} times with different folds (each row's NLL averaged over the "
+                                      "repeats)")
     targets = (" Every calibration row is classified correctly, or smoothed targets were asked for: every map "
                "was fitted to Platt's smoothed targets, (N+1)/(N+2) for a row's own class, not to the 0/1 labels."
                if choice.get("smoothed_targets") else "")
     return [
         '<h3 id="choice">How the method was chosen (--method auto)</h3>',
         f"<p>Every applicable method was cross-fitted on {folds} folds of all the rows: fitted on all folds but "
-        "one and scored on that one, so every row is held out once (figures with their 95% intervals; "
-        "the last column: the interval of the mean per-row NLL difference to the map with the lowest one, on the "
+        f"one and scored on that one, so every row is held out once{again} (figures with their 95% intervals; "
+        "the last column: the BCa interval of the mean per-row NLL difference to the map with the lowest one, on the "
         "same rows; 'uncalibrated': the model as it is, its own probabilities). "
         f"Rule: {_e(choice['rule'])}. {_e(choice['reason'])}.{_e(targets)}</p>",
         _table(head, rows, numeric_from=1),
