@@ -4,6 +4,10 @@ Every candidate method is fitted :data:`~onnxcal.choose.FOLDS` times, each
 time on all stratified folds but one, and the rows of the left-out fold
 are calibrated with that fit (:func:`out_of_fold`): every row is scored
 once, by a map that did not see it, and every method scores the same rows.
+On small sets this is repeated with other folds (:func:`repeats_for`) and
+each row's NLL averaged over the repeats. Each fit is to smoothed targets
+where its maximum-likelihood estimate does not exist
+(:func:`fit_with_estimate`), as the fit baked in would be.
 The table's figures are :func:`onnxcal.metrics.evaluate`'s on those
 out-of-fold probabilities; their intervals and the paired NLL differences
 come from the same bootstrap resamples of rows for every method (no refit:
@@ -183,8 +187,8 @@ def _score(method: str, logits: np.ndarray, labels: np.ndarray, options: Any, fo
         oof, most, ok, smooth = out_of_fold(logits, labels, replace(options, method=method), fold, refit)
         oofs.append(oof)
         size, converged, smoothed_folds = max(size, most), converged and ok, smoothed_folds + smooth
-    oof = np.concatenate(oofs)
-    pooled = np.concatenate([np.asarray(labels)] * len(folds))
+    oof = oofs[0] if len(oofs) == 1 else np.concatenate(oofs)  # one repeat (a large set): no copy
+    pooled = np.asarray(labels) if len(oofs) == 1 else np.concatenate([np.asarray(labels)] * len(folds))
     whole = evaluate(oof, pooled, 1.0, options.n_bins, threads=threads).to_dict()
     losses = row_nll(oof, pooled).reshape(len(folds), len(labels)).mean(axis=0)
     per: dict[str, list[float]] = {f: [] for f in TABLE_FIELDS}

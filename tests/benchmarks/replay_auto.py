@@ -1,168 +1,114 @@
-"""Variants of ``--method auto``'s rule replayed at NumPy level on bench_methods_onnx.py's splits.
+"""Variants of ``--method auto``'s rule replayed on bench_methods_onnx.py's splits, from replay_tables.py's cache.
 
-    .venv/bin/python tests/benchmarks/replay_auto.py                       # 5 pairs x 10 splits
-    .venv/bin/python tests/benchmarks/replay_auto.py --only skl2onnx_random_forest_tensor
+    .venv/bin/python tests/benchmarks/replay_tables.py --cache /tmp/replay --seeds 0-5   # ~1.5 min per seed, once
+    .venv/bin/python tests/benchmarks/replay_auto.py --cache /tmp/replay --seeds 0-5     # the variants, in seconds
 
-The same calibration and test halves as bench_methods_onnx.py (stratified,
-seed = repeat), captured with onnxcal's ``capture`` (so the logits are the
-ones ``fit`` sees); every candidate method is cross-fitted once with
-maximum likelihood and once with Platt's smoothed targets (onnxcal's own
-folds and resamples, ``onnxcal.fit.auto``), and each variant of the rule
-picks from those same per-row out-of-fold NLLs. The pick is then fitted
-on the whole calibration half and scored on the test half with its NumPy
-reference (the end-to-end benchmark runs the patched ONNX model instead;
-for the adopted rule both give the same test NLL to 4 decimals). scikit-
-learn: CalibratedClassifierCV(FrozenEstimator(...)) on the ONNX model's
-own probabilities, as in bench_methods_onnx.py.
+Each cached split holds, per candidate method, its per-row out-of-fold NLL
+on the calibration half (onnxcal's own folds for auto's ``--seed`` s) and its
+test-half NLL when fitted on the whole half, as ``fit`` bakes it in. A
+variant of the rule picks a method from the out-of-fold NLLs; its figure is
+that method's test NLL. ``--repeats R`` averages each row's out-of-fold NLL
+over R consecutive seeds (s, s+1, ..., as ``auto --seed s`` does), so seeds
+0-5 give 6 realisations of R = 1 and 2 of R = 3; the figures are means over
+realisations and splits, against the best scikit-learn calibrator's mean.
 
-Variants (docs/maths.md, "Choosing automatically"): ``ml`` the rule with
-maximum-likelihood fits (before smoothed targets); ``smoothed`` every fit
-to smoothed targets; ``adopted-targets`` smoothed targets only when every
-calibration row is classified correctly; then, on top of that, the model
-as it is (the identity) as a candidate: ``id-parsimony`` (0 parameters,
-chosen when its interval reaches 0), ``id-lowest`` (chosen when its
-cross-fitted NLL is the lowest), ``adopted`` (chosen only when every map is
-worse than it by a paired interval above 0).
+Intervals of the paired per-row NLL difference (``onnxcal.fit.paired``):
+``percentile`` (the rule before BCa), ``bca`` (adopted), ``one-se``
+(mean +- one bootstrap standard error: the one-standard-error rule of
+cross-validated model selection). Resamples: auto's, with the realisation's
+first seed.
+
+The rule before 3 December 2026 (smoothed targets only when the whole set is
+classified correctly, one cross-fitting, percentile interval) is replayed by
+this file and the fitting code of commit 921d8f7
+(``git show 921d8f7:tests/benchmarks/replay_auto.py``).
 """
 
 from __future__ import annotations
 
 import argparse
-import json
-import tempfile
-import warnings
+import pickle
 from pathlib import Path
 
 import numpy as np
-from bench_methods_onnx import FIXTURES, MODELS, _run, metrics
-from sklearn.base import BaseEstimator, ClassifierMixin
-from sklearn.calibration import CalibratedClassifierCV
-from sklearn.frozen import FrozenEstimator
-from sklearn.model_selection import train_test_split
+from bench_methods_onnx import MODELS
+from replay_tables import DIFFERENCE, parse_seeds
 
-from onnxcal import api
-from onnxcal.choose import FOLDS, METHODS, candidate_methods
-from onnxcal.data import DataSpec
-from onnxcal.fit import FitOptions, fit_scaling
-from onnxcal.fit.auto import _percentile, _resamples, fold_ids, out_of_fold, row_nll
-from onnxcal.fit.smoothed import all_correct
-from onnxcal.scaling import Scaling
+from onnxcal.choose import METHODS
+from onnxcal.fit import paired
+from onnxcal.fit.auto import _resamples
 
-VARIANTS = ("ml", "smoothed", "adopted-targets", "id-parsimony", "id-lowest", "adopted")
+INTERVALS = ("percentile", "bca", "one-se")
+SKLEARN = ("sigmoid", "isotonic", "temperature")
 
 
-class Cached(ClassifierMixin, BaseEstimator):
-    """A fitted classifier whose predict_proba looks rows up by index (column 0 of X)."""
-
-    def __init__(self, p: np.ndarray | None = None) -> None:
-        self.p = p
-
-    def fit(self, x, y):
-        self.classes_ = np.arange(self.p.shape[1])
-        return self
-
-    def predict_proba(self, x):
-        return self.p[np.asarray(x[:, 0], dtype=int)]
-
-    def predict(self, x):
-        return self.predict_proba(x).argmax(axis=1)
+def load(cache: Path, name: str, split: int, seeds: list[int]) -> dict:
+    """One split's table, each row's out-of-fold NLL averaged over ``seeds``' cross-fittings."""
+    tables = [pickle.loads((cache / f"seed{s}" / f"{name}_{split}.pkl").read_bytes()) for s in seeds]
+    t = tables[0]
+    for m, row in t["methods"].items():
+        for tag in ("ml", "sm"):
+            if tag in row:
+                row[tag] = np.mean([u["methods"][m][tag] for u in tables], axis=0)
+    return t
 
 
-def halves(entry: dict, seed: int, work: Path) -> dict[str, np.ndarray]:
-    data = np.load(FIXTURES / entry["val"])
-    x, y = data["X"], data["labels"].astype(np.int64)
-    x_cal, x_test, y_cal, y_test = train_test_split(x, y, test_size=0.5, stratify=y, random_state=seed)
-    out = {}
-    for part, xx, yy in (("cal", x_cal, y_cal), ("test", x_test, y_test)):
-        np.savez(work / "d.npz", X=xx.astype(np.float32), labels=yy)
-        cap = api.capture(FIXTURES / entry["model"], DataSpec(work / "d.npz"), out=work / "c.npz", force=True)
-        out[f"{part}_z"], out[f"{part}_y"] = np.asarray(cap.logits, dtype=np.float32), np.asarray(cap.labels)
-        out[f"{part}_p"] = _run(FIXTURES / entry["model"], entry["output"], xx)
-    return out
+def _order(name: str, size: int) -> tuple[int, float]:
+    return size, -1 if name == "identity" else METHODS.index(name.split(" ")[0]) + (0.5 if DIFFERENCE in name else 0)
 
 
-def sklearn_best(h: dict[str, np.ndarray]) -> dict[str, float]:
-    p = np.r_[h["cal_p"], h["test_p"]]
-    n = len(h["cal_y"])
-    out = {}
-    for m in ("sigmoid", "isotonic", "temperature"):
-        cal = CalibratedClassifierCV(FrozenEstimator(Cached(p).fit(None, None)), method=m)
-        q = cal.fit(np.arange(n)[:, None], h["cal_y"]).predict_proba(np.arange(n, len(p))[:, None])
-        out[m] = metrics(q, h["test_y"])["nll"]
-    return out
+def pick(t: dict, interval: str, seed: int, with_difference: bool = False) -> str:
+    """The rule of onnxcal.choose with ``interval`` for the paired differences."""
+    tag = "sm" if t["separable"] else "ml"
+    ms = {k: v for k, v in t["methods"].items() if with_difference or DIFFERENCE not in k}
+    counts = np.array(list(_resamples(len(t["y"]), 200, seed, None)))
+    draws = {k: counts @ v[tag] / counts.sum(axis=1) for k, v in ms.items()}
 
+    def span(a: str, b: str) -> list[float]:
+        d, r = ms[a][tag] - ms[b][tag], draws[a] - draws[b]
+        if interval == "percentile":
+            return paired.percentile(r) or [np.inf, np.inf]
+        if interval == "bca":
+            return paired.bca(d, r) or [np.inf, np.inf]
+        se = float(r.std(ddof=1))
+        return [float(d.mean()) - se, float(d.mean()) + se]
 
-def scored(z: np.ndarray, y: np.ndarray, smoothed: bool, fold: np.ndarray) -> dict[str, tuple]:
-    """Per method: (parameters, per-row out-of-fold NLL, bootstrap means); the identity too."""
-    out = {}
-    draws = list(_resamples(len(y), 200, 0, None))
-    for m in ("identity", *candidate_methods("multiclass")):
-        if m == "identity":
-            oof, size = Scaling.of_temperature(1.0).apply(z.astype(np.float64)), 0
-        else:
-            oof, size, _ = out_of_fold(z, y, FitOptions(method=m, smoothed_targets=smoothed), fold, fit_scaling)
-        losses = row_nll(oof, y)
-        out[m] = (size, losses, np.array([c @ losses / c.sum() for c in draws]))
-    return out
-
-
-def pick(table: dict[str, tuple], identity: str) -> str:
-    maps = {m: v for m, v in table.items() if m != "identity"}
-    best = min(maps, key=lambda m: maps[m][1].mean())
-    model = table["identity"]
-    if identity == "adopted" and all(_percentile(v[2] - model[2])[0] > 0 for v in maps.values()):
+    maps = {k: v for k, v in ms.items() if k != "identity"}
+    best = min(maps, key=lambda k: (maps[k][tag].mean(), _order(k, maps[k]["size"])))
+    if all(span(m, "identity")[0] > 0 for m in maps):
         return "identity"
-    if identity == "lowest" and model[1].mean() < maps[best][1].mean():
-        return "identity"
-    pool = table if identity == "parsimony" else maps
-    if identity == "parsimony" and model[1].mean() < maps[best][1].mean():
-        best = "identity"
-    within = [best, *(m for m in pool if m != best and _percentile(pool[m][2] - pool[best][2])[0] <= 1e-12)]
-    return min(within, key=lambda m: (pool[m][0], -1 if m == "identity" else METHODS.index(m)))
-
-
-def test_nll(h: dict[str, np.ndarray], method: str, smoothed: bool) -> float:
-    if method == "identity":
-        return metrics(h["test_p"], h["test_y"])["nll"]
-    s = fit_scaling(h["cal_z"], h["cal_y"], FitOptions(method=method, smoothed_targets=smoothed)).scaling
-    return metrics(s.probabilities(h["test_z"].astype(np.float64)), h["test_y"])["nll"]
-
-
-def one_split(entry: dict, seed: int) -> dict[str, float]:
-    with tempfile.TemporaryDirectory() as tmp:
-        h = halves(entry, seed, Path(tmp))
-    z, y = h["cal_z"], h["cal_y"]
-    fold = fold_ids(y, FOLDS, 0)
-    ml, sm = scored(z, y, False, fold), scored(z, y, True, fold)
-    separable = all_correct(z, y)
-    chosen = {"ml": ("ml", pick(ml, "none")), "smoothed": ("sm", pick(sm, "none"))}
-    adopted = sm if separable else ml
-    for name, identity in (("adopted-targets", "none"), ("id-parsimony", "parsimony"), ("id-lowest", "lowest"),
-                           ("adopted", "adopted")):
-        chosen[name] = ("sm" if separable else "ml", pick(adopted, identity))
-    row = {v: test_nll(h, m, tag == "sm") for v, (tag, m) in chosen.items()}
-    row.update({f"sklearn {m}": v for m, v in sklearn_best(h).items()})
-    row["uncalibrated"] = metrics(h["test_p"], h["test_y"])["nll"]
-    return row
+    within = [best, *(m for m in maps if m != best and span(m, best)[0] <= 1e-12)]
+    return min(within, key=lambda k: _order(k, maps[k]["size"]))
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--repeats", type=int, default=10)
-    ap.add_argument("--only", default=None, help="one fixture name")
+    ap.add_argument("--cache", type=Path, required=True)
+    ap.add_argument("--seeds", default="0-5", help="seeds cached by replay_tables.py, e.g. 0-5 or 0,1,2")
+    ap.add_argument("--splits", type=int, default=10)
+    ap.add_argument("--difference", action="store_true", help="also the binary maps on z1 - z0 (two classes)")
     args = ap.parse_args()
-    warnings.simplefilter("ignore")
-    manifest = {e["name"]: e for e in json.loads((FIXTURES / "manifest.json").read_text())}
-    print("| pair | best scikit-learn (mean) | uncalibrated | " + " | ".join(VARIANTS) + " |")
-    print("|---|" + "---:|" * (len(VARIANTS) + 2))
+    seeds = parse_seeds(args.seeds)
+    variants = [(r, i) for r in (1, 3) if len(seeds) >= r for i in INTERVALS]
+    print("| pair | best scikit-learn | " + " | ".join(f"R={r} {i}" for r, i in variants) + " |")
+    print("|---|---|" + "---:|" * len(variants))
     for name, label in MODELS:
-        if args.only and name != args.only:
-            continue
-        rows = [one_split(manifest[name], seed) for seed in range(args.repeats)]
-        sk = min(("sigmoid", "isotonic", "temperature"), key=lambda m: np.mean([r[f"sklearn {m}"] for r in rows]))
-        cells = [f"{sk} {np.mean([r[f'sklearn {sk}'] for r in rows]):.4f}"]
-        cells += [f"{np.mean([r[c] for r in rows]):.4f}" for c in ("uncalibrated", *VARIANTS)]
-        print(f"| {label} | " + " | ".join(cells) + " |", flush=True)
+        cells, sk = [], None
+        for r, interval in variants:
+            groups = [seeds[k:k + r] for k in range(0, len(seeds) - r + 1, r)]
+            values, sklearn = [], []
+            for group in groups:
+                for split in range(args.splits):
+                    t = load(args.cache, name, split, group)
+                    tag = "sm" if t["separable"] else "ml"
+                    values.append(t["methods"][pick(t, interval, group[0], args.difference)]["test"][tag])
+                    sklearn.append(t["sklearn"])
+            means = {m: float(np.mean([s[m] for s in sklearn])) for m in SKLEARN}
+            sk = sk or min(means, key=lambda m: means[m])
+            mean, ref = float(np.mean(values)), means[sk]
+            verdict = "equal" if abs(mean - ref) <= 1e-4 else ("better" if mean < ref else "worse")
+            cells.append(f"{mean:.4f} {verdict}")
+        print(f"| {label} | {sk} {means[sk]:.4f} | " + " | ".join(cells) + " |", flush=True)
 
 
 if __name__ == "__main__":
