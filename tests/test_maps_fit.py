@@ -562,3 +562,29 @@ def test_ensemble_own_temperature_is_the_fit_temperature(rng):
     t_own, _, on_bound = ensemble.fit_temperature(z, y)
     assert not on_bound
     assert t_own == pytest.approx(fit_temperature(z.astype(np.float32), y).temperature, rel=1e-5)
+
+
+def test_a_parameter_on_its_bound_is_flagged_not_only_said():
+    # Separable scores (every positive above every negative): beta's scale runs to its bound A_MAX, and the fit says
+    # so in a field (onnxcal.fit reads it) as well as in its note; overlapping scores stay inside.
+    y = np.arange(40) % 2
+    z = np.where(y == 1, 1.0, -1.0) * np.linspace(0.01, 0.05, 40)  # near 0: only a large scale separates them
+    res = beta.fit(z[:, None], y)
+    assert res.on_bound and any("bound" in n for n in res.notes)
+    noisy = z + np.random.default_rng(0).normal(scale=0.05, size=40)
+    res = beta.fit(noisy[:, None], y)
+    assert not res.on_bound and not any("bound" in n for n in res.notes)
+
+
+def test_ensemble_temperature_inherits_the_bound_of_its_temperature():
+    # Every row classified correctly: temperature scaling's T falls to its bound, and ensemble temperature scaling,
+    # which takes that T, is on its bound too; onnxcal.fit then says the maximum-likelihood fit does not exist.
+    from onnxcal.fit import FitOptions, fit_scaling
+
+    y = np.arange(30) % 3
+    z = np.eye(3)[y] * 2.0 + np.random.default_rng(1).normal(scale=0.1, size=(30, 3))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = fit_scaling(z, y, FitOptions(method="ensemble-temperature"))
+    assert res.on_bound
+    assert any("maximum-likelihood fit does not exist" in w for w in res.warnings)

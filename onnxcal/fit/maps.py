@@ -53,8 +53,8 @@ def fit_map(
     weights: np.ndarray | None = None,
     start: Scaling | None = None,
     temperature: float | None = None,
-) -> tuple[Scaling, float, bool, tuple[str, ...]]:
-    """Fit ``method`` to the logits: (scaling, passes, converged, warnings).
+) -> tuple[Scaling, float, bool, tuple[str, ...], bool]:
+    """Fit ``method`` to the logits: (scaling, passes, converged, warnings, a parameter on its bound).
 
     ``temperature``: ensemble temperature scaling's T, fitted by the caller
     (onnxcal.fit's temperature solver), which fixes it for the weights.
@@ -66,4 +66,5 @@ def fit_map(
     notes = list(res.notes)
     if not res.converged and not notes:
         notes.append(f"the {method} solver stopped at its budget of passes before converging")
-    return Scaling(method, dict(res.parameters), kind), float(res.passes), bool(res.converged), tuple(notes)
+    return (Scaling(method, dict(res.parameters), kind), float(res.passes), bool(res.converged), tuple(notes),
+            bool(res.on_bound))

@@ -156,14 +156,15 @@ def _fit_map(
     weights: np.ndarray | None, start: Scaling | None,
 ) -> FitResult:
     """A map of onnxcal.maps: its own solver (ensemble temperature scaling: T from fit_temperature)."""
-    extra = {}
-    if options.method == "ensemble-temperature":
-        extra["temperature"] = fit_temperature(logits, labels, rows=rows, weights=weights).temperature
-    scaling, passes, converged, notes = fit_map(
+    extra: dict[str, float | None] = {}
+    t_bound, t_notes = False, tuple[str, ...]()
+    if options.method == "ensemble-temperature":  # its T is temperature scaling's, with its bound and its notes
+        t = fit_temperature(logits, labels, rows=rows, weights=weights)
+        extra["temperature"], t_bound, t_notes = t.temperature, t.on_bound, t.warnings
+    scaling, passes, converged, notes, on_bound = fit_map(
         logits, labels, options.method, kind, options.l2, rows=rows, weights=weights, start=start, **extra
     )
-    on_bound = any(" bound" in n for n in notes)  # the maps say when a parameter lies on its bound
-    return FitResult(scaling, passes, converged, on_bound=on_bound, warnings=notes)
+    return FitResult(scaling, passes, converged, on_bound=on_bound or t_bound, warnings=(*t_notes, *notes))
 
 
 # --------------------------------------------------------------------------

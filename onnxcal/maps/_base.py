@@ -62,6 +62,9 @@ class MapFit:
         Passes over the scores the solver made.
     notes : tuple of str
         Things the user should know about this fit.
+    on_bound : bool
+        A parameter lies on the bound of its search (one of the notes says
+        which and why).
     """
 
     method: str
@@ -70,6 +73,7 @@ class MapFit:
     converged: bool = True
     passes: float = 0.0
     notes: tuple[str, ...] = ()
+    on_bound: bool = False
 
     def to_dict(self) -> dict[str, Any]:
         return {

@@ -192,7 +192,8 @@ def fit(
     )
     a, b, c = (float(v) for v in res.x)
     notes = []
-    if max(a, b) >= A_MAX * (1 - 1e-9):
+    on_bound = max(a, b) >= A_MAX * (1 - 1e-9)
+    if on_bound:
         notes.append(
             f"beta parameter {'a' if a >= b else 'b'} lies at its bound {A_MAX:g}: the scores separate the "
             "labels (nearly) perfectly on this set; use a larger or harder validation set"
@@ -203,7 +204,7 @@ def fit(
             "is active): the map is flat in that direction"
         )
     converged = bool(res.success) or float(np.max(np.abs(_projected(res.jac, res.x, bounds)))) < 1e-7
-    return MapFit(METHOD, "binary", {"a": a, "b": b, "c": c}, converged, float(evals), tuple(notes))
+    return MapFit(METHOD, "binary", {"a": a, "b": b, "c": c}, converged, float(evals), tuple(notes), on_bound)
 
 
 def _projected(grad: np.ndarray, x: np.ndarray, bounds: list[tuple[float, float]]) -> np.ndarray:

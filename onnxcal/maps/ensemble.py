@@ -208,7 +208,7 @@ def fit(
     """
     del l2
     notes: list[str] = []
-    passes = 0.0
+    passes, at_bound = 0.0, False
     if temperature is None:
         temperature, passes, at_bound = fit_temperature(scores, labels, rows, weights)
         if at_bound:
@@ -218,7 +218,7 @@ def fit(
     if v[0] + v[1] <= 1e-12:
         notes.append("the fitted weights put everything on the uniform distribution: every class gets 1/K")
     params = {"temperature": float(temperature), "weights": plain(v)}
-    return MapFit(METHOD, "multiclass", params, converged, passes + 1.0, tuple(notes))
+    return MapFit(METHOD, "multiclass", params, converged, passes + 1.0, tuple(notes), bool(at_bound))
 
 
 def build(

@@ -200,7 +200,7 @@ def fit(
             "its bound: a class that is absent, always present, or perfectly separated on this set"
         )
     return MapFit(METHOD, _lookup.kind_of_scores(k), {"a": plain(a), "b": plain(b)}, bool(res.success), float(evals),
-                  tuple(notes))
+                  tuple(notes), bool(on_bound.any()))
 
 
 def build(
