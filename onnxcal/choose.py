@@ -178,7 +178,7 @@ class Choice:
 RULE = (
     "every method cross-fitted (each row held out once, per repeat on small sets; each fit to Platt's smoothed "
     "targets when its maximum-likelihood estimate does not exist: every row it is fitted on classified correctly, by "
-    "the model or by the fitted map, or a lookup step of probability 0 or 1); the map with the lowest mean "
+    "the model or by the fitted map); the map with the lowest mean "
     "out-of-fold NLL is the best; among it and the maps whose paired per-row NLL difference to it has a 95% BCa "
     "bootstrap interval reaching 0, the one with the fewest "
     "parameters; the model is left as it is when every map's paired difference to its own probabilities has a 95% "

@@ -107,10 +107,6 @@ def out_of_fold(
     return out, max(sizes), converged, smoothed_folds
 
 
-# Lookups (and their table of probabilities): a bin or step of one class only holds probability 0 or 1 exactly.
-LOOKUP_TABLES = {"isotonic": "y", "histogram": "values"}
-
-
 def fit_with_estimate(
     refit: Refit, logits: np.ndarray, labels: np.ndarray, options: Any, rows: np.ndarray | None = None
 ) -> tuple[Any, bool]:
@@ -121,26 +117,19 @@ def fit_with_estimate(
     (``FitResult.separable``, set by ``fit_scaling``: the rows are separable
     by the map, e.g. vector scaling on a few dozen rows of three classes).
     The ML fit then stops at a bound, or wherever its solver gives up, and is
-    overconfident on the first error new data brings. A lookup
-    (:data:`LOOKUP_TABLES`) whose table holds probability 0 or 1 (a bin or
-    step of one class only) is refitted too: its smoothed bins lie strictly
-    inside (0, 1). This holds for the fit on all rows as for each fold's
-    fit (a fold may have no error when the whole set has one), so ``auto``
-    scores every candidate as it would bake it in.
+    overconfident on the first error new data brings. This holds for the
+    fit on all rows as for each fold's fit (a fold may have no error when
+    the whole set has one), so ``auto`` scores every candidate as it would
+    bake it in. Lookups (isotonic, histogram) whose steps reach probability
+    0 or 1 keep their fit: smoothing them too made them look better when
+    cross-fitted than on new rows (docs/maths.md, "Choosing automatically").
     """
     if options.smoothed_targets or smoothed.without_estimate(logits, labels, rows):
         return refit(logits, labels, replace(options, smoothed_targets=True), rows=rows), True
     result = refit(logits, labels, options, rows=rows)
-    if not smoothed.can_expand(logits, labels, rows):
-        return result, False
-    table = LOOKUP_TABLES.get(options.method)
-    if result.separable or (table is not None and _certain(result.scaling.parameters[table])):
+    if result.separable and smoothed.can_expand(logits, labels, rows):
         return refit(logits, labels, replace(options, smoothed_targets=True), rows=rows), True
     return result, False
-
-
-def _certain(tables: list[list[float]]) -> bool:
-    return any(v <= 0.0 or v >= 1.0 for table in tables for v in table)
 
 
 def row_nll(calibrated: np.ndarray, labels: np.ndarray) -> np.ndarray:

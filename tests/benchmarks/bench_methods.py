@@ -26,13 +26,13 @@ m in sigmoid, isotonic, temperature, fitted on the same calibration part.
 
 "auto": onnxcal's own ``--method auto`` rule (onnxcal.fit.auto.compare:
 every applicable method cross-fitted on 5 stratified folds of the
-calibration part, the lowest mean out-of-fold NLL is the best, the simplest
-method whose paired per-row NLL difference to it has a 95 % bootstrap
-interval reaching 0 is chosen; fitted to Platt's smoothed targets when
-every calibration row is classified correctly; the model left as it is
-when every map is worse than its own probabilities by a paired interval
-above 0); the table shows that method fitted on the whole calibration
-part (with smoothed targets when auto used them). "auto (one split)": the rule before cross-fitting,
+calibration part, 3 times on small sets, each fit to Platt's smoothed
+targets where its maximum-likelihood estimate does not exist; the lowest
+mean out-of-fold NLL is the best, the simplest method whose paired per-row
+NLL difference to it has a 95 % BCa interval reaching 0 is chosen; the
+model left as it is when every map is worse than its own probabilities by
+a paired interval above 0); the table shows that method fitted on the
+whole calibration part as auto bakes it in (``fit_with_estimate``). "auto (one split)": the rule before cross-fitting,
 for comparison (split the calibration part 75/25 with onnxcal's stratified
 holdout, fit on the 75 %, the simplest method whose NLL on the 25 % lies
 inside the best one's 95 % bootstrap interval). Neither sees the held-out
@@ -69,7 +69,7 @@ from sklearn.svm import SVC
 from onnxcal import maps, resample
 from onnxcal.choose import IDENTITY, Choice
 from onnxcal.fit import FitOptions, fit_scaling
-from onnxcal.fit.auto import compare
+from onnxcal.fit.auto import compare, fit_with_estimate
 from onnxcal.metrics import expected_calibration_error, sigmoid, softmax
 
 DATASETS: dict[str, Callable] = {"digits": load_digits, "wine": load_wine, "breast_cancer": load_breast_cancer}
@@ -165,14 +165,15 @@ def auto_choice(z: np.ndarray, y: np.ndarray, seed: int, n_boot: int = 200) -> C
 
 def auto_rows(choice: Choice, rows: dict, z_cal: np.ndarray, y_cal: np.ndarray, z_te: np.ndarray,
               y_te: np.ndarray) -> dict:
-    """The held-out figures of auto's choice: the model as it is, the method's row, or its smoothed-target fit."""
+    """The held-out figures of auto's choice: the model as it is, or the chosen method fitted on the whole
+    calibration part as auto bakes it in (fit_with_estimate: smoothed targets where its estimate does not exist)."""
     if choice.chosen == IDENTITY:
         return dict(rows["uncalibrated"], choice=IDENTITY)
-    if not choice.smoothed_targets:
-        return dict(rows[choice.chosen], choice=choice.chosen)
     z32 = np.ascontiguousarray(z_cal, dtype=np.float32)
-    scaling = fit_scaling(z32, y_cal, FitOptions(method=choice.chosen, smoothed_targets=True)).scaling
-    return dict(metrics(probs_of_scores(scaling.apply(z_te)), y_te), choice=f"{choice.chosen} (smoothed)")
+    options = FitOptions(method=choice.chosen, smoothed_targets=choice.smoothed_targets)
+    result, smoothed = fit_with_estimate(fit_scaling, z32, y_cal, options)
+    name = choice.chosen + (" (smoothed)" if smoothed else "")
+    return dict(metrics(probs_of_scores(result.scaling.apply(z_te)), y_te), choice=name)
 
 
 # --------------------------------------------------------------------------

@@ -23,8 +23,9 @@ run by onnxruntime (its probabilities as ``predict_proba``), fitted on the
 same calibration half, scored on the same test half.
 
 "auto chose" names each split's choice ("uncalibrated": the model left as
-it is; "(smoothed targets)": every candidate fitted to Platt's smoothed
-targets, the calibration half being classified without error).
+it is; "(smoothed targets)": the map baked in was fitted to Platt's smoothed
+targets: the calibration half is classified without error, or the chosen
+map, fitted, classifies all of it correctly).
 
 "auto (one split)": the rule before cross-fitting, for comparison (fit on
 75 % of the calibration half, the simplest method whose NLL on the other
@@ -177,7 +178,8 @@ def one_split(entry: dict, seed: int, bootstrap: int) -> tuple[dict[str, dict[st
     for m, p in sklearn_route(entry, x_cal, y_cal, x_test).items():
         rows[m] = metrics(p, y_test)
     choice = ours["auto"][1].choice
-    return rows, choice.chosen + (" (smoothed targets)" if choice.smoothed_targets else ""), old, seconds
+    smoothed = ours["auto"][1].options.smoothed_targets  # every candidate, or the chosen map's own fit
+    return rows, choice.chosen + (" (smoothed targets)" if smoothed else ""), old, seconds
 
 
 def table(name: str, results: list[dict[str, dict[str, float]]], chosen: list[str], old: list[str]) -> str:
