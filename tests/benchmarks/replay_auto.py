@@ -12,6 +12,11 @@ over R consecutive seeds (s, s+1, ..., as ``auto --seed s`` does), so seeds
 0-5 give 6 realisations of R = 1 and 2 of R = 3; the figures are means over
 realisations and splits, against the best scikit-learn calibrator's mean.
 
+``before``: the rule of commit 921d8f7 on the same splits (one
+cross-fitting, each fold fitted as asked whether its estimate exists or
+not, smoothed targets only when every row is classified correctly,
+percentile intervals).
+
 Intervals of the paired per-row NLL difference (``onnxcal.fit.paired``):
 ``percentile`` (the rule before BCa), ``bca`` (adopted), ``one-se``
 (mean +- one bootstrap standard error: the one-standard-error rule of
@@ -27,6 +32,7 @@ this file and the fitting code of commit 921d8f7
 from __future__ import annotations
 
 import argparse
+import json
 import pickle
 from pathlib import Path
 
@@ -44,22 +50,29 @@ SKLEARN = ("sigmoid", "isotonic", "temperature")
 
 def load(cache: Path, name: str, split: int, seeds: list[int]) -> dict:
     """One split's table, each row's out-of-fold NLL averaged over ``seeds``' cross-fittings."""
-    tables = [pickle.loads((cache / f"seed{s}" / f"{name}_{split}.pkl").read_bytes()) for s in seeds]
+    tables = [pickle.loads((cache / f"seed{s}" / f"{name.replace('/', '_')}_{split}.pkl").read_bytes())
+              for s in seeds]
     t = tables[0]
     for m, row in t["methods"].items():
-        for tag in ("ml", "sm"):
+        for tag in ("ml", "sm", "plain"):
             if tag in row:
                 row[tag] = np.mean([u["methods"][m][tag] for u in tables], axis=0)
     return t
+
+
+def tag_of(t: dict, before: bool) -> str:
+    """The fits a rule scores: smoothed when every row is correct; else auto's (``ml``) or the rule before's."""
+    return "sm" if t["separable"] else ("plain" if before else "ml")
 
 
 def _order(name: str, size: int) -> tuple[int, float]:
     return size, -1 if name == "identity" else METHODS.index(name.split(" ")[0]) + (0.5 if DIFFERENCE in name else 0)
 
 
-def pick(t: dict, interval: str, seed: int, with_difference: bool = False) -> str:
-    """The rule of onnxcal.choose with ``interval`` for the paired differences."""
-    tag = "sm" if t["separable"] else "ml"
+def pick(t: dict, interval: str, seed: int, with_difference: bool = False, before: bool = False) -> str:
+    """The rule of onnxcal.choose with ``interval`` for the paired differences (``before``: on the fits of the
+    rule before, each fold fitted as asked whether its estimate exists or not)."""
+    tag = tag_of(t, before)
     ms = {k: v for k, v in t["methods"].items() if with_difference or DIFFERENCE not in k}
     counts = np.array(list(_resamples(len(t["y"]), 200, seed, None)))
     draws = {k: counts @ v[tag] / counts.sum(axis=1) for k, v in ms.items()}
@@ -89,20 +102,29 @@ def main() -> None:
     ap.add_argument("--difference", action="store_true", help="also the binary maps on z1 - z0 (two classes)")
     args = ap.parse_args()
     seeds = parse_seeds(args.seeds)
-    variants = [(r, i) for r in (1, 3) if len(seeds) >= r for i in INTERVALS]
-    print("| pair | best scikit-learn | " + " | ".join(f"R={r} {i}" for r, i in variants) + " |")
+    listed = args.cache / "pairs.json"
+    todo = [tuple(p) for p in json.loads(listed.read_text())] if listed.exists() else list(MODELS)
+    variants = [("before", 1, "percentile"), *((f"R={r} {i}", r, i) for r in (1, 3) if len(seeds) >= r
+                                               for i in INTERVALS)]
+    print("| pair | best scikit-learn | " + " | ".join(v[0] for v in variants) + " |")
     print("|---|---|" + "---:|" * len(variants))
-    for name, label in MODELS:
+    for name, label in todo:
         cells, sk = [], None
-        for r, interval in variants:
+        for title, r, interval in variants:
             groups = [seeds[k:k + r] for k in range(0, len(seeds) - r + 1, r)]
             values, sklearn = [], []
             for group in groups:
                 for split in range(args.splits):
                     t = load(args.cache, name, split, group)
-                    tag = "sm" if t["separable"] else "ml"
-                    values.append(t["methods"][pick(t, interval, group[0], args.difference)]["test"][tag])
+                    before = title == "before"
+                    if before and "plain" not in t["methods"]["temperature"]:
+                        continue  # a cache made before the rule's fits were kept
+                    tag = tag_of(t, before)
+                    values.append(t["methods"][pick(t, interval, group[0], args.difference, before)]["test"][tag])
                     sklearn.append(t["sklearn"])
+            if not values:
+                cells.append("-")
+                continue
             means = {m: float(np.mean([s[m] for s in sklearn])) for m in SKLEARN}
             sk = sk or min(means, key=lambda m: means[m])
             mean, ref = float(np.mean(values)), means[sk]

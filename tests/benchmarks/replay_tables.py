@@ -91,7 +91,7 @@ def sklearn_nll(h: dict[str, np.ndarray]) -> dict[str, float]:
 
 def _methods(k: int) -> list[tuple[str, str]]:
     """(name in the table, onnxcal method)."""
-    out = [(m, m) for m in candidate_methods("multiclass")]
+    out = [(m, m) for m in candidate_methods("binary" if k == 1 else "multiclass")]
     if k == 2:
         out += [(m + DIFFERENCE, m) for m in BINARY_ON_DIFFERENCE]
     return out
@@ -101,37 +101,77 @@ def _view(name: str, z: np.ndarray) -> np.ndarray:
     return (z[:, 1:] - z[:, :1]).astype(z.dtype) if name.endswith(DIFFERENCE) else z
 
 
-def tables(entry: dict, seed: int, fold_seed: int = 0) -> dict:
-    """One split's table (see the module docstring); ``fold_seed`` is auto's ``--seed`` (folds)."""
-    with tempfile.TemporaryDirectory() as tmp:
-        h = halves(entry, seed, Path(tmp))
-    z, y = h["cal_z"], h["cal_y"]
-    fold = fold_ids(y, FOLDS, fold_seed)
-    out: dict = {"y": y, "separable": bool(all_correct(z, y)), "sklearn": sklearn_nll(h),
-                 "uncalibrated": metrics(h["test_p"], h["test_y"])["nll"], "methods": {}}
-    out["methods"]["identity"] = {"size": 0, "ml": row_nll(Scaling.of_temperature(1.0).apply(z.astype(np.float64)), y),
-                                  "test": {"ml": out["uncalibrated"], "sm": out["uncalibrated"]}}
-    for name, method in _methods(z.shape[1]):
-        zz, tz = _view(name, z), _view(name, h["test_z"])
-        row: dict = {"test": {}}
-        for tag, smooth in (("ml", False), ("sm", True)):
-            options = FitOptions(method=method, smoothed_targets=smooth)
-            try:
-                oof, size, _, _ = out_of_fold(zz, y, options, fold, fit_scaling)
-                s = fit_with_estimate(fit_scaling, zz, y, options)[0].scaling
-            except Exception as e:  # noqa: BLE001 - a method that cannot be fitted here is left out, said so
-                print(f"  {entry['name']} split {seed}: {name} ({tag}) left out: {e}")
-                row = {}
-                break
-            row["size"], row[tag] = size, row_nll(oof, y)
-            p = s.probabilities(tz.astype(np.float64))
-            if p.shape[1] == 1:
-                p = np.c_[1 - p, p]
-            row["test"][tag] = metrics(p, h["test_y"])["nll"]
-        if row:
-            out["methods"][name] = row
-    out["methods"]["identity"]["sm"] = out["methods"]["identity"]["ml"]
+def _plain_out_of_fold(z: np.ndarray, y: np.ndarray, options: FitOptions, fold: np.ndarray) -> np.ndarray:
+    """Out-of-fold logits with every fold fitted as asked, whether its estimate exists or not (the rule before)."""
+    out = np.empty(z.shape, dtype=np.float64)
+    for f in np.unique(fold):
+        s = fit_scaling(z, y, options, rows=np.flatnonzero(fold != f)).scaling
+        out[fold == f] = s.apply(np.asarray(z[fold == f], dtype=np.float64))
     return out
+
+
+def table(z: np.ndarray, y: np.ndarray, z_test: np.ndarray, y_test: np.ndarray, test_p: np.ndarray,
+          sklearn: dict[str, float], score, fold_seed: int, label: str) -> dict:
+    """One split's table from its arrays (see the module docstring). ``score(p, y)`` gives the test metrics."""
+    fold = fold_ids(y, FOLDS, fold_seed)
+    out: dict = {"y": y, "separable": bool(all_correct(z, y)), "sklearn": sklearn,
+                 "uncalibrated": score(test_p, y_test)["nll"], "methods": {}}
+    own = row_nll(Scaling.of_temperature(1.0).apply(z.astype(np.float64)), y)
+    out["methods"]["identity"] = {"size": 0, "ml": own, "sm": own, "plain": own,
+                                  "test": {t: out["uncalibrated"] for t in ("ml", "sm", "plain")}}
+    for name, method in _methods(z.shape[1]):
+        zz, tz = _view(name, z), _view(name, z_test)
+        row: dict = {"test": {}}
+        try:
+            for tag, smooth in (("ml", False), ("sm", True), ("plain", False)):
+                options = FitOptions(method=method, smoothed_targets=smooth)
+                if tag == "plain":
+                    oof, s = _plain_out_of_fold(zz, y, options, fold), fit_scaling(zz, y, options).scaling
+                else:
+                    oof, row["size"], _, _ = out_of_fold(zz, y, options, fold, fit_scaling)
+                    s = fit_with_estimate(fit_scaling, zz, y, options)[0].scaling
+                row[tag] = row_nll(oof, y)
+                p = s.probabilities(tz.astype(np.float64))
+                row["test"][tag] = score(np.c_[1 - p, p] if p.shape[1] == 1 else p, y_test)["nll"]
+        except Exception as e:  # noqa: BLE001 - a method that cannot be fitted here is left out, said so
+            print(f"  {label}: {name} left out: {e}")
+            continue
+        out["methods"][name] = row
+    return out
+
+
+def onnx_tables(entry: dict, split: int, fold_seed: int) -> dict:
+    """A split of bench_methods_onnx.py: its halves captured by onnxcal, its ONNX model's own probabilities."""
+    with tempfile.TemporaryDirectory() as tmp:
+        h = halves(entry, split, Path(tmp))
+    return table(h["cal_z"], h["cal_y"], h["test_z"], h["test_y"], h["test_p"], sklearn_nll(h), metrics, fold_seed,
+                 f"{entry['name']} split {split}")
+
+
+def numpy_tables(pair: str, split: int, fold_seed: int) -> dict:
+    """A split of bench_methods.py (route (a): its scores, its models trained here, seed = split)."""
+    import bench_methods as bm
+
+    dataset, model_name = pair.split("/")
+    x, y = bm.DATASETS[dataset](return_X_y=True)
+    binary = len(np.unique(y)) == 2
+    x_tr, x_rest, y_tr, y_rest = train_test_split(x, y, test_size=0.5, random_state=split, stratify=y)
+    x_cal, x_te, y_cal, y_te = train_test_split(x_rest, y_rest, test_size=0.5, random_state=split, stratify=y_rest)
+    model = bm.MODELS[model_name](split).fit(x_tr, y_tr)
+    z_cal, z_te = bm.scores_of(model, x_cal, binary), bm.scores_of(model, x_te, binary)
+    sk = {m: bm.metrics(CalibratedClassifierCV(FrozenEstimator(model), method=m).fit(x_cal, y_cal).predict_proba(x_te),
+                        y_te)["nll"] for m in ("sigmoid", "isotonic", "temperature")}
+    return table(z_cal.astype(np.float32), y_cal, z_te.astype(np.float32), y_te, bm.probs_of_scores(z_te), sk,
+                 bm.metrics, fold_seed, f"{pair} split {split}")
+
+
+def pairs(route: str, sets: str) -> list[tuple[str, str]]:
+    """(name in the cache, label) of a route's pairs."""
+    if route == "onnx":
+        return list(MODELS)
+    import bench_methods as bm
+
+    return [(f"{d}/{m}", f"{d} / {m}") for d in sets.split(",") for m in bm.MODELS]
 
 
 def parse_seeds(text: str) -> list[int]:
@@ -145,22 +185,27 @@ def parse_seeds(text: str) -> list[int]:
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--cache", type=Path, required=True)
+    ap.add_argument("--route", choices=("onnx", "numpy"), default="onnx",
+                    help="onnx: bench_methods_onnx.py's exported fixtures; numpy: bench_methods.py's models")
+    ap.add_argument("--sets", default="wine,breast_cancer", help="the numpy route's data sets")
     ap.add_argument("--repeats", type=int, default=10, help="splits per pair")
-    ap.add_argument("--only", default=None, help="one fixture name")
     ap.add_argument("--seeds", default="0", help="auto's --seed values (its folds), e.g. 0-5")
     args = ap.parse_args()
     warnings.simplefilter("ignore")
+    args.cache.mkdir(parents=True, exist_ok=True)
+    todo = pairs(args.route, args.sets)
+    (args.cache / "pairs.json").write_text(json.dumps(todo))
     manifest = {e["name"]: e for e in json.loads((FIXTURES / "manifest.json").read_text())}
     for seed in parse_seeds(args.seeds):
         folder = args.cache / f"seed{seed}"
         folder.mkdir(parents=True, exist_ok=True)
-        for name, label in MODELS:
-            if args.only and name != args.only:
-                continue
+        for name, label in todo:
             for split in range(args.repeats):
-                path = folder / f"{name}_{split}.pkl"
+                path = folder / f"{name.replace('/', '_')}_{split}.pkl"
                 if not path.exists():
-                    path.write_bytes(pickle.dumps(tables(manifest[name], split, seed)))
+                    t = (onnx_tables(manifest[name], split, seed) if args.route == "onnx"
+                         else numpy_tables(name, split, seed))
+                    path.write_bytes(pickle.dumps(t))
             print(f"seed {seed}: {label} cached", flush=True)
 
 
