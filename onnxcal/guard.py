@@ -58,7 +58,8 @@ class RowStats:
         finite = np.isfinite(r).all(axis=1)
         unit = finite & (r >= -VALUE_TOL).all(axis=1) & (r <= 1 + VALUE_TOL).all(axis=1)
         self.unit += int(unit.sum())
-        self.probabilities += int((unit & (np.abs(r.sum(axis=1) - 1) <= SUM_TOL)).sum()) if r.shape[1] > 1 else 0
+        sums = np.where(finite.reshape(-1, 1), r, 0.0).sum(axis=1)  # a row of inf and -inf would warn: not summed
+        self.probabilities += int((unit & (np.abs(sums - 1) <= SUM_TOL)).sum()) if r.shape[1] > 1 else 0
         from scipy.special import logsumexp  # here, not at import: scipy.special takes ~0.5 s to import
 
         with np.errstate(invalid="ignore", over="ignore"):

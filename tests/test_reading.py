@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import json
 import os
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -593,3 +594,16 @@ def test_format_2_records_are_still_read_and_undone():
     assert graph.unpatch(patched).SerializeToString() == model.SerializeToString()
     again = graph.patch(patched, 3.0, source_sha256="1" * 64, source_name="other.onnx")
     assert graph.read_record(again).source_name == "m.onnx"  # kept from the record when re-patching
+
+
+def test_row_counts_take_non_finite_rows_without_a_numpy_warning():
+    # A model fed an inf input can answer inf and -inf in one row; summing that row warned ("invalid value
+    # encountered in reduce") on every capture holding one. Such rows count as neither probabilities nor log p.
+    from onnxcal.guard import RowStats
+
+    stats = RowStats()
+    rows = np.array([[0.25, 0.75], [np.inf, -np.inf], [np.nan, 0.5], [-0.1, -2.4]])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        stats.add(rows)
+    assert (stats.rows, stats.probabilities, stats.unit) == (4, 1, 1)
