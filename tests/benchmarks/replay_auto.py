@@ -1,14 +1,16 @@
-"""Variants of ``--method auto``'s rule replayed on bench_methods_onnx.py's splits, from replay_tables.py's cache.
+"""Variants of ``--method auto``'s rule replayed on the benchmarks' splits, from replay_tables.py's cache.
 
-    .venv/bin/python tests/benchmarks/replay_tables.py --cache /tmp/replay --seeds 0-5   # ~1.5 min per seed, once
+    .venv/bin/python tests/benchmarks/replay_tables.py --cache /tmp/replay --seeds 0-5   # ~2 min per seed, once
     .venv/bin/python tests/benchmarks/replay_auto.py --cache /tmp/replay --seeds 0-5     # the variants, in seconds
+    .venv/bin/python tests/benchmarks/replay_tables.py --route numpy --cache /tmp/np --seeds 0-2  # bench_methods.py
+    .venv/bin/python tests/benchmarks/replay_auto.py --cache /tmp/np --seeds 0-2
 
 Each cached split holds, per candidate method, its per-row out-of-fold NLL
 on the calibration half (onnxcal's own folds for auto's ``--seed`` s) and its
 test-half NLL when fitted on the whole half, as ``fit`` bakes it in. A
 variant of the rule picks a method from the out-of-fold NLLs; its figure is
-that method's test NLL. ``--repeats R`` averages each row's out-of-fold NLL
-over R consecutive seeds (s, s+1, ..., as ``auto --seed s`` does), so seeds
+that method's test NLL. The ``R=3`` columns average each row's out-of-fold
+NLL over 3 consecutive seeds (s, s+1, ..., as ``auto --seed s`` does), so seeds
 0-5 give 6 realisations of R = 1 and 2 of R = 3; the figures are means over
 realisations and splits, against the best scikit-learn calibrator's mean.
 
@@ -22,11 +24,6 @@ Intervals of the paired per-row NLL difference (``onnxcal.fit.paired``):
 (mean +- one bootstrap standard error: the one-standard-error rule of
 cross-validated model selection). Resamples: auto's, with the realisation's
 first seed.
-
-The rule before 3 December 2026 (smoothed targets only when the whole set is
-classified correctly, one cross-fitting, percentile interval) is replayed by
-this file and the fitting code of commit 921d8f7
-(``git show 921d8f7:tests/benchmarks/replay_auto.py``).
 """
 
 from __future__ import annotations

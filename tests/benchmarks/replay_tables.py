@@ -16,7 +16,14 @@ reference; scikit-learn's three calibrators on the ONNX model's own
 probabilities (CalibratedClassifierCV on a frozen estimator).
 On two-class softmax pairs also the binary maps (Platt, beta, isotonic,
 histogram) on the logit difference z1 - z0, which is the same 2-class
-softmax model.
+softmax model. A third set of out-of-fold NLLs, ``plain``, fits every fold
+as asked whether its estimate exists or not (the rule before 3 December
+2026; replay_auto.py's ``before`` column).
+
+``--route numpy``: the same for bench_methods.py's splits instead (its
+scikit-learn models trained in the script on half of a bundled set, its
+scores as a capture of their export would hold, calibration and test
+quarters; seed = split).
 """
 
 from __future__ import annotations
