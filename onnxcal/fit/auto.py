@@ -320,15 +320,3 @@ def _as_it_is(summary: Any) -> Any:
                    holdout_result=None if summary.holdout_result is None else same, intervals=None,
                    warnings=tuple(w for w in summary.warnings if w not in result.warnings),
                    notes=(*summary.notes, "the model is left as it is (T = 1): no map to put intervals on"))
-
-
-def describe_candidates(choice: Choice) -> Sequence[str]:
-    """The comparison as plain lines (the report's Markdown, logs)."""
-    lines = []
-    for c in choice.candidates:
-        span = c.intervals.get("nll")
-        interval = "" if span is None else f" [{span[0]:.4f}, {span[1]:.4f}]"
-        diff = "" if c.difference is None else f", vs best [{c.difference[0]:+.4f}, {c.difference[1]:+.4f}]"
-        mark = " (chosen)" if c.method == choice.chosen else ""
-        lines.append(f"{c.method}: {c.n_parameters} parameters, NLL {c.nll:.4f}{interval}{diff}{mark}")
-    return lines
