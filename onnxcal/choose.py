@@ -16,14 +16,12 @@ The rule (issue 15, made robust on small sets):
    every method.
 2. *Best.* The method with the lowest cross-fitted NLL.
 3. *Paired comparison.* For every other method, the per-row differences
-   of its out-of-fold NLL and the best one's; their mean's 95 % BCa
-   bootstrap interval (:mod:`onnxcal.fit.paired`; the same resamples of
+   of its out-of-fold NLL and the best one's; their mean's 95 % bootstrap
+   percentile interval (:mod:`onnxcal.fit.paired`; the same resamples of
    rows for every method; with ``--bootstrap 0``, mean +- 1.96 standard
    errors). The rows are the same for both methods, so the interval of the
    difference is much narrower than the interval of the best one's NLL
-   alone (which holds the rows' own spread, common to both); BCa, not the
-   plain percentile interval, because a few confidently wrong rows make
-   these differences heavily skewed.
+   alone (which holds the rows' own spread, common to both).
 4. *Chosen.* The model as it is (:data:`IDENTITY`, no parameters) when
    every map's paired per-row NLL difference to its own probabilities has
    an interval above 0: no map improved on them. Otherwise the method with
@@ -178,9 +176,8 @@ class Choice:
 RULE = (
     "every method cross-fitted (each row held out once, per repeat on small sets; each fit to Platt's smoothed "
     "targets when its maximum-likelihood estimate does not exist: every row it is fitted on classified correctly, by "
-    "the model or by the fitted map); the map with the lowest mean "
-    "out-of-fold NLL is the best; among it and the maps whose paired per-row NLL difference to it has a 95% BCa "
-    "bootstrap interval reaching 0, the one with the fewest "
+    "the model or by the fitted map); the map with the lowest mean out-of-fold NLL is the best; among it and the "
+    "maps whose paired per-row NLL difference to it has a 95% bootstrap interval reaching 0, the one with the fewest "
     "parameters; the model is left as it is when every map's paired difference to its own probabilities has a 95% "
     "interval above 0"
 )

@@ -247,10 +247,10 @@ def compare(
 
 
 def _difference(s: _Scored, ref: _Scored, options: Any, groups: np.ndarray | None) -> list[float] | None:
-    """The 95 % interval of the mean per-row NLL of ``s`` minus ``ref`` (BCa bootstrap, or normal approximation);
-    None when a resample gave a non-finite figure."""
+    """The 95 % interval of the mean per-row NLL of ``s`` minus ``ref`` (bootstrap percentiles, or normal
+    approximation); None when a resample gave a non-finite figure."""
     if options.bootstrap:
-        return paired.bca(s.losses - ref.losses, s.draws - ref.draws, groups)
+        return paired.percentile(s.draws - ref.draws)
     return paired.normal(s.losses - ref.losses, groups)
 
 

@@ -227,7 +227,7 @@ def _choice_html(choice: dict[str, Any] | None) -> list[str]:
         '<h3 id="choice">How the method was chosen (--method auto)</h3>',
         f"<p>Every applicable method was cross-fitted on {folds} folds of all the rows: fitted on all folds but "
         f"one and scored on that one, so every row is held out once{again} (figures with their 95% intervals; "
-        "the last column: the BCa interval of the mean per-row NLL difference to the map with the lowest one, on the "
+        "the last column: the interval of the mean per-row NLL difference to the map with the lowest one, on the "
         "same rows; 'uncalibrated': the model as it is, its own probabilities). "
         f"Rule: {_e(choice['rule'])}. {_e(choice['reason'])}.{_e(targets)}</p>",
         _table(head, rows, numeric_from=1),
