@@ -91,9 +91,10 @@ class Candidate:
         The 95 % interval of the mean per-row NLL difference to the best
         method (this one's minus the best one's); None for the best.
     smoothed_folds : int
-        Folds whose fit was to Platt's smoothed targets because its
-        maximum-likelihood estimate does not exist there (the fold's rows,
-        or the map fitted to them, classify every row correctly).
+        Fold fits (over every repeat) made to Platt's smoothed targets
+        because their maximum-likelihood estimate does not exist (the
+        fold's rows, or the map fitted to them, classify every row
+        correctly).
     """
 
     method: str

@@ -187,7 +187,7 @@ def expanded(
 def separated_warning(method: str) -> str:
     """The warning for a map that, fitted by maximum likelihood, classifies every calibration row correctly."""
     return (
-        f"{method} scaling, fitted, classifies every calibration row correctly, so its maximum-likelihood fit does "
+        f"the fitted {method} map classifies every calibration row correctly, so its maximum-likelihood fit does "
         "not exist: its parameters grew until the solver stopped, and the map will be overconfident on the first "
         "error new data brings; calibrate on more (or harder) rows, use a map that keeps the model's decisions "
         "(temperature), or fit with --smoothed-targets"
