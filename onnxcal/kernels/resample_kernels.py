@@ -106,16 +106,21 @@ TILE = 2048
 every replicate of the block reads them."""
 
 
+@njit(inline="always", **_JIT)
+def _bump(counts: np.ndarray, p: int) -> bool:
+    """counts[p] += 1 (uint8); True if it was 255 before (it has wrapped: the caller must not use the counts)."""
+    x = counts[p]
+    counts[p] = x + 1
+    return bool(x == 255)
+
+
 @njit(**_JIT)
 def add_counts(drawn: np.ndarray, counts: np.ndarray) -> bool:
     """counts[p] += 1 for each drawn position p (uint8 counts); True if a count reached 255 (it may have wrapped:
     the caller must not use these counts)."""
     full = False
     for i in range(drawn.shape[0]):
-        p = drawn[i]
-        x = counts[p]
-        full |= x == 255
-        counts[p] = x + 1
+        full |= _bump(counts, drawn[i])
     return full
 
 
@@ -124,10 +129,7 @@ def add_ranked_counts(drawn: np.ndarray, rank: np.ndarray, counts: np.ndarray) -
     """counts[rank[p]] += 1 for each drawn position p, as :func:`add_counts`."""
     full = False
     for i in range(drawn.shape[0]):
-        p = rank[drawn[i]]
-        x = counts[p]
-        full |= x == 255
-        counts[p] = x + 1
+        full |= _bump(counts, rank[drawn[i]])
     return full
 
 
@@ -371,9 +373,7 @@ def _count_run(values: np.ndarray, nn: np.uint64, rank: np.ndarray, counts: np.n
         p = np.int64((np.uint64(values[i]) * nn) >> np.uint64(32))
         if ranked:
             p = rank[p]
-        x = counts[p]
-        full |= x == 255
-        counts[p] = x + 1
+        full |= _bump(counts, p)
     return full
 
 
@@ -427,8 +427,6 @@ def bounded_counts(
         else:
             if ranked:
                 p = rank[p]
-            x = counts[p]
-            full |= x == 255
-            counts[p] = x + 1
+            full |= _bump(counts, p)
         done += 1
     return done, used, full
