@@ -169,8 +169,10 @@ def _score(method: str, logits: np.ndarray, labels: np.ndarray, options: Any, fo
     """One candidate over every repeat of the cross-fitting: its figures pooled over the repeats (each row once per
     repeat), its per-row NLL averaged over them."""
     smoothed_folds, size, converged, oofs = 0, 0, True, []
+    if method == IDENTITY:  # the model as it is: nothing fitted, every row scored by its own probabilities, the
+        folds = folds[:1]   # same in every repeat (scored once: its figures are those of any number of copies)
     for fold in folds:
-        if method == IDENTITY:  # the model as it is: nothing fitted, every row scored by its own probabilities
+        if method == IDENTITY:
             oofs.append(Scaling.of_temperature(1.0).apply(np.asarray(logits, dtype=np.float64)))
             continue
         oof, most, ok, smooth = out_of_fold(logits, labels, replace(options, method=method), fold, refit)
