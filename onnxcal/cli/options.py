@@ -168,7 +168,8 @@ SmoothedTargetsOpt = Annotated[
         "--smoothed-targets",
         help="Fit to Platt's smoothed targets instead of the 0/1 labels: (N+1)/(N+2) for a row's class (N: the "
         "rows of that class), the rest shared by the others. The fit stays finite when every row is classified "
-        "correctly (auto does this by itself then). Multiclass and binary only.",
+        "correctly (auto does this by itself wherever a fit's maximum-likelihood estimate does not exist). Multiclass "
+        "and binary only.",
         rich_help_panel=FIT_PANEL,
     ),
 ]
@@ -181,8 +182,8 @@ HoldoutOpt = Annotated[
         rich_help_panel=FIT_PANEL,
     ),
 ]
-SeedOpt = Annotated[int, typer.Option("--seed", help="Seed of the holdout split and the bootstrap (0 to 2^32-1).",
-                                      metavar="SEED", rich_help_panel=FIT_PANEL)]
+SeedOpt = Annotated[int, typer.Option("--seed", help="Seed of the holdout split, the bootstrap and auto's folds "
+                                      "(0 to 2^32-1).", metavar="SEED", rich_help_panel=FIT_PANEL)]
 BootstrapOpt = Annotated[
     int, typer.Option("--bootstrap", help="Bootstrap replicates for 95% intervals (0 to 10000); 0 skips them.",
                       metavar="N", rich_help_panel=FIT_PANEL)
