@@ -7,9 +7,9 @@ mean difference is the difference of the two replicates' means.
 
 With resamples, the interval is their 2.5 % and 97.5 % percentiles (the
 percentile interval, Efron & Tibshirani, "An Introduction to the
-Bootstrap", 1993, ch. 13); without, mean +- 1.96 standard errors.
+Bootstrap", 1993, ch. 13, from memory); without, mean +- 1.96 standard errors.
 
-The bias-corrected and accelerated (BCa) interval (Efron, JASA 82, 1987)
+The bias-corrected and accelerated (BCa) interval (Efron, JASA 82, 1987, from memory)
 was tried for this comparison and dropped on the evidence: its
 acceleration, estimated on a few dozen skewed per-row differences, told a
 richer map apart from temperature scaling too often, and the richer map

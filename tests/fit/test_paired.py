@@ -8,7 +8,8 @@ from onnxcal.fit.paired import normal, percentile
 
 
 def test_percentile_interval_is_numpys_2_5_and_97_5_percentiles():
-    # Reference: numpy.percentile (linear interpolation), the percentile interval of Efron & Tibshirani (1993, ch. 13)
+    # Reference: numpy.percentile (linear interpolation); the percentile interval of Efron & Tibshirani
+    # (1993, ch. 13; from memory)
     reps = np.random.default_rng(2).normal(0.1, 0.3, 400)
     assert percentile(reps) == pytest.approx(list(np.percentile(reps, [2.5, 97.5])), rel=1e-15)
     assert percentile(np.r_[reps, np.nan]) is None and percentile(np.array([])) is None
